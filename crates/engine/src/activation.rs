@@ -1,0 +1,306 @@
+//! Activation functions and their backward step.
+//!
+//! Closed forms used (any calculus text): σ′ = σ(1 − σ), tanh′ = 1 − tanh², softplus′ = σ,
+//! ELU′ = 1 for z > 0 and α·eᶻ otherwise. GELU is the tanh approximation of Hendrycks & Gimpel
+//! (arXiv 1606.08415): ½·z·(1 + tanh(√(2/π)·(z + 0.044715·z³))). At a kink (z = 0 for ReLU-like
+//! units) the derivative taken is the one from the left: 0 for ReLU, the slope for leaky ReLU, α for ELU.
+
+use std::fmt;
+
+use ndarray::{Array2, ArrayView2, Axis, Zip};
+
+use crate::Scalar;
+
+/// √(2/π), the constant of the tanh form of GELU.
+const GELU_C: f64 = 0.797_884_560_802_865_4;
+/// The cubic coefficient of the tanh form of GELU.
+const GELU_K: f64 = 0.044_715;
+
+/// A layer's activation function.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Activation {
+    Identity,
+    Sigmoid,
+    Tanh,
+    Relu,
+    /// max(z, slope·z) for 0 ≤ slope < 1.
+    LeakyRelu {
+        slope: f64,
+    },
+    /// z for z > 0, α·(eᶻ − 1) otherwise.
+    Elu {
+        alpha: f64,
+    },
+    Softplus,
+    /// The tanh approximation (see the module doc).
+    Gelu,
+    /// Row-wise softmax; output layer only.
+    Softmax,
+}
+
+impl Activation {
+    /// The names a network description uses, in the order the docs list them.
+    pub const NAMES: [&'static str; 9] = [
+        "identity",
+        "sigmoid",
+        "tanh",
+        "relu",
+        "leaky-relu",
+        "elu",
+        "softplus",
+        "gelu",
+        "softmax",
+    ];
+
+    /// The description's name of this activation.
+    pub fn name(&self) -> &'static str {
+        match self {
+            Activation::Identity => "identity",
+            Activation::Sigmoid => "sigmoid",
+            Activation::Tanh => "tanh",
+            Activation::Relu => "relu",
+            Activation::LeakyRelu { .. } => "leaky-relu",
+            Activation::Elu { .. } => "elu",
+            Activation::Softplus => "softplus",
+            Activation::Gelu => "gelu",
+            Activation::Softmax => "softmax",
+        }
+    }
+
+    /// Where the function is not differentiable, if anywhere: a finite difference whose stencil
+    /// straddles this pre-activation value is not to be trusted.
+    pub fn kink(&self) -> Option<f64> {
+        match *self {
+            Activation::Relu => Some(0.0),
+            Activation::LeakyRelu { slope } if slope != 1.0 => Some(0.0),
+            Activation::Elu { alpha } if alpha != 1.0 => Some(0.0),
+            _ => None,
+        }
+    }
+
+    /// g(z) for one element (not for softmax, which needs the whole row).
+    #[inline]
+    pub fn value<S: Scalar>(&self, z: S) -> S {
+        match *self {
+            Activation::Identity => z,
+            Activation::Sigmoid => sigmoid(z),
+            Activation::Tanh => z.tanh(),
+            Activation::Relu => {
+                if z.re() > 0.0 {
+                    z
+                } else {
+                    S::zero()
+                }
+            }
+            Activation::LeakyRelu { slope } => {
+                if z.re() > 0.0 {
+                    z
+                } else {
+                    S::from_f64(slope) * z
+                }
+            }
+            Activation::Elu { alpha } => {
+                if z.re() > 0.0 {
+                    z
+                } else {
+                    S::from_f64(alpha) * z.exp_m1()
+                }
+            }
+            Activation::Softplus => softplus(z),
+            Activation::Gelu => {
+                let t = gelu_tanh(z);
+                S::from_f64(0.5) * z * (S::one() + t)
+            }
+            Activation::Softmax => panic!("softmax is applied row-wise, not per element"),
+        }
+    }
+
+    /// g′(z) for one element, given a = g(z) as well (not for softmax).
+    #[inline]
+    pub fn slope<S: Scalar>(&self, z: S, a: S) -> S {
+        match *self {
+            Activation::Identity => S::one(),
+            Activation::Sigmoid => a * (S::one() - a),
+            Activation::Tanh => S::one() - a * a,
+            Activation::Relu => {
+                if z.re() > 0.0 {
+                    S::one()
+                } else {
+                    S::zero()
+                }
+            }
+            Activation::LeakyRelu { slope } => {
+                if z.re() > 0.0 {
+                    S::one()
+                } else {
+                    S::from_f64(slope)
+                }
+            }
+            Activation::Elu { alpha } => {
+                if z.re() > 0.0 {
+                    S::one()
+                } else {
+                    S::from_f64(alpha) * z.exp()
+                }
+            }
+            Activation::Softplus => sigmoid(z),
+            Activation::Gelu => {
+                let t = gelu_tanh(z);
+                let half = S::from_f64(0.5);
+                let inner = S::from_f64(GELU_C) * (S::one() + S::from_f64(3.0 * GELU_K) * z * z);
+                half * (S::one() + t) + half * z * (S::one() - t * t) * inner
+            }
+            Activation::Softmax => panic!("softmax has a Jacobian, not a slope"),
+        }
+    }
+
+    /// a = g(z) for a batch of pre-activations (one sample per row).
+    pub fn apply<S: Scalar>(&self, z: ArrayView2<S>) -> Array2<S> {
+        match self {
+            Activation::Softmax => {
+                let mut out = z.to_owned();
+                for mut row in out.axis_iter_mut(Axis(0)) {
+                    // Shift by the row's largest real part; any shift gives the same softmax.
+                    let shift = row
+                        .iter()
+                        .fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
+                    let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
+                    let mut total = S::zero();
+                    for v in row.iter_mut() {
+                        *v = (*v - shift).exp();
+                        total += *v;
+                    }
+                    for v in row.iter_mut() {
+                        *v = *v / total;
+                    }
+                }
+                out
+            }
+            act => z.mapv(|v| act.value(v)),
+        }
+    }
+
+    /// The backward step through the activation: dJ/dz from dJ/da, given z and a = g(z).
+    ///
+    /// Element-wise functions multiply by g′(z); softmax applies its Jacobian row by row,
+    /// dz = a ⊙ (da − ⟨da, a⟩).
+    pub fn backward<S: Scalar>(
+        &self,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        upstream: Array2<S>,
+    ) -> Array2<S> {
+        let mut out = upstream;
+        match self {
+            Activation::Identity => {}
+            Activation::Softmax => {
+                for (mut d, arow) in out.axis_iter_mut(Axis(0)).zip(a.axis_iter(Axis(0))) {
+                    let mut dot = S::zero();
+                    for (dv, av) in d.iter().zip(arow.iter()) {
+                        dot += *dv * *av;
+                    }
+                    for (dv, av) in d.iter_mut().zip(arow.iter()) {
+                        *dv = *av * (*dv - dot);
+                    }
+                }
+            }
+            act => {
+                Zip::from(&mut out)
+                    .and(z)
+                    .and(a)
+                    .for_each(|d, &zv, &av| *d = *d * act.slope(zv, av));
+            }
+        }
+        out
+    }
+}
+
+impl fmt::Display for Activation {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Activation::LeakyRelu { slope } => write!(f, "leaky-relu (slope {slope})"),
+            Activation::Elu { alpha } => write!(f, "elu (alpha {alpha})"),
+            other => f.write_str(other.name()),
+        }
+    }
+}
+
+/// The logistic function, evaluated on the side that cannot overflow.
+#[inline]
+pub(crate) fn sigmoid<S: Scalar>(z: S) -> S {
+    if z.re() >= 0.0 {
+        S::one() / (S::one() + (-z).exp())
+    } else {
+        let e = z.exp();
+        e / (S::one() + e)
+    }
+}
+
+/// ln(1 + eᶻ), evaluated on the side that cannot overflow.
+#[inline]
+pub(crate) fn softplus<S: Scalar>(z: S) -> S {
+    if z.re() > 0.0 {
+        z + (-z).exp().ln_1p()
+    } else {
+        z.exp().ln_1p()
+    }
+}
+
+#[inline]
+fn gelu_tanh<S: Scalar>(z: S) -> S {
+    (S::from_f64(GELU_C) * (z + S::from_f64(GELU_K) * z * z * z)).tanh()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // The slopes against central differences of the values: an internal consistency check of each
+    // closed form (the independent check against num-dual lives in tests/dual.rs).
+    #[test]
+    fn slopes_match_central_differences_away_from_kinks() {
+        let acts = [
+            Activation::Identity,
+            Activation::Sigmoid,
+            Activation::Tanh,
+            Activation::Relu,
+            Activation::LeakyRelu { slope: 0.1 },
+            Activation::Elu { alpha: 0.7 },
+            Activation::Softplus,
+            Activation::Gelu,
+        ];
+        for act in acts {
+            for &z in &[-3.1f64, -0.8, -0.05, 0.05, 0.6, 2.9] {
+                let h = 1e-6;
+                let numeric = (act.value(z + h) - act.value(z - h)) / (2.0 * h);
+                let analytic = act.slope(z, act.value(z));
+                assert!(
+                    (numeric - analytic).abs() < 1e-8,
+                    "{act}: at {z}: {numeric} vs {analytic}"
+                );
+            }
+        }
+    }
+
+    // Published values [pub: the logistic function, tanh and softplus are closed forms; numbers
+    // computed here by std's exp/tanh]: σ(0) = ½, tanh(0) = 0, softplus(0) = ln 2, GELU(0) = 0.
+    #[test]
+    fn values_at_zero_are_the_closed_forms() {
+        assert_eq!(Activation::Sigmoid.value(0.0), 0.5);
+        assert_eq!(Activation::Tanh.value(0.0), 0.0);
+        assert!((Activation::Softplus.value(0.0) - std::f64::consts::LN_2).abs() < 1e-16);
+        assert_eq!(Activation::Gelu.value(0.0), 0.0);
+    }
+
+    #[test]
+    fn extreme_inputs_stay_finite() {
+        for act in [Activation::Sigmoid, Activation::Softplus, Activation::Tanh] {
+            for z in [-800.0f64, 800.0] {
+                assert!(act.value(z).is_finite(), "{act} at {z}");
+            }
+        }
+        let z = ndarray::array![[1000.0f64, 0.0, -1000.0]];
+        let p = Activation::Softmax.apply(z.view());
+        assert!((p[[0, 0]] - 1.0).abs() < 1e-15 && p.iter().all(|v| v.is_finite()));
+    }
+}

@@ -1,0 +1,139 @@
+//! The data term of the loss, and its gradient with respect to the output pre-activations.
+//!
+//! Every loss is a mean over the m samples of the batch.
+//! - cross-entropy with softmax outputs (categorical): J = −(1/m) Σᵢ Σₖ yᵢₖ · ln pᵢₖ, computed as
+//!   (1/m) Σᵢ Σₖ yᵢₖ · (lseᵢ − zᵢₖ) with a shifted log-sum-exp; dJ/dz = (p · Σₖ yₖ − y)/m, which is the
+//!   familiar (p − y)/m when each row of y sums to one.
+//! - cross-entropy with sigmoid outputs (binary, summed over output units):
+//!   J = −(1/m) Σ [y ln σ(z) + (1 − y) ln(1 − σ(z))] = (1/m) Σ [softplus(z) − y·z]; dJ/dz = (a − y)/m.
+//! - squared error: J = (1/2m) Σ ‖a − y‖²; dJ/dz = the activation's backward step applied to (a − y)/m.
+
+use std::fmt;
+
+use ndarray::{Array2, ArrayView2, Axis, Zip};
+
+use crate::activation::softplus;
+use crate::{Activation, Scalar};
+
+/// The data term of the loss.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Loss {
+    CrossEntropy,
+    SquaredError,
+}
+
+impl Loss {
+    /// The names a network description uses.
+    pub const NAMES: [&'static str; 2] = ["cross-entropy", "squared-error"];
+
+    pub fn name(&self) -> &'static str {
+        match self {
+            Loss::CrossEntropy => "cross-entropy",
+            Loss::SquaredError => "squared-error",
+        }
+    }
+
+    /// Whether this loss is defined for that output activation.
+    pub fn accepts(&self, output: Activation) -> bool {
+        match self {
+            Loss::CrossEntropy => matches!(output, Activation::Sigmoid | Activation::Softmax),
+            Loss::SquaredError => true,
+        }
+    }
+
+    /// The mean data loss of a batch, from the output pre-activations z and activations a.
+    pub fn value<S: Scalar>(
+        &self,
+        output: Activation,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let m = S::from_f64(z.nrows() as f64);
+        let mut total = S::zero();
+        match (self, output) {
+            (Loss::CrossEntropy, Activation::Softmax) => {
+                for (zrow, yrow) in z.axis_iter(Axis(0)).zip(y.axis_iter(Axis(0))) {
+                    let lse = log_sum_exp(zrow);
+                    for (&zv, &yv) in zrow.iter().zip(yrow.iter()) {
+                        total += yv * (lse - zv);
+                    }
+                }
+            }
+            (Loss::CrossEntropy, Activation::Sigmoid) => {
+                Zip::from(z)
+                    .and(y)
+                    .for_each(|&zv, &yv| total += softplus(zv) - yv * zv);
+            }
+            (Loss::CrossEntropy, other) => {
+                panic!("cross-entropy is not defined for {other} outputs (checked at construction)")
+            }
+            (Loss::SquaredError, _) => {
+                Zip::from(a).and(y).for_each(|&av, &yv| {
+                    let d = av - yv;
+                    total += d * d;
+                });
+                total = total * S::from_f64(0.5);
+            }
+        }
+        total / m
+    }
+
+    /// dJ/dz for the output layer: the start of backpropagation.
+    pub fn output_delta<S: Scalar>(
+        &self,
+        output: Activation,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> Array2<S> {
+        let inv_m = S::one() / S::from_f64(z.nrows() as f64);
+        match (self, output) {
+            (Loss::CrossEntropy, Activation::Softmax) => {
+                let mut d = Array2::zeros(a.raw_dim());
+                for ((mut drow, arow), yrow) in d
+                    .axis_iter_mut(Axis(0))
+                    .zip(a.axis_iter(Axis(0)))
+                    .zip(y.axis_iter(Axis(0)))
+                {
+                    let mass = yrow.iter().fold(S::zero(), |acc, &v| acc + v);
+                    Zip::from(&mut drow)
+                        .and(arow)
+                        .and(yrow)
+                        .for_each(|dv, &av, &yv| *dv = (av * mass - yv) * inv_m);
+                }
+                d
+            }
+            (Loss::CrossEntropy, _) => {
+                let mut d = a.to_owned();
+                Zip::from(&mut d)
+                    .and(y)
+                    .for_each(|dv, &yv| *dv = (*dv - yv) * inv_m);
+                d
+            }
+            (Loss::SquaredError, act) => {
+                let mut d = a.to_owned();
+                Zip::from(&mut d)
+                    .and(y)
+                    .for_each(|dv, &yv| *dv = (*dv - yv) * inv_m);
+                act.backward(z, a, d)
+            }
+        }
+    }
+}
+
+impl fmt::Display for Loss {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// ln Σ eᶻ over a row, shifted by the largest real part so that nothing overflows.
+fn log_sum_exp<S: Scalar>(row: ndarray::ArrayView1<S>) -> S {
+    let shift = row
+        .iter()
+        .fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
+    let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
+    let sum = row.iter().fold(S::zero(), |acc, &v| acc + (v - shift).exp());
+    shift + sum.ln()
+}

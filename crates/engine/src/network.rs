@@ -1,0 +1,372 @@
+//! A network of dense layers: construction, the batched forward pass and analytic backpropagation.
+
+use ndarray::{Array2, ArrayView2, Axis, s};
+use thiserror::Error;
+
+use crate::{Activation, Loss, Scalar, Weights};
+
+/// One dense layer: `inputs` units (without the bias unit) mapped to `units` units.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LayerSpec {
+    pub inputs: usize,
+    pub units: usize,
+    pub activation: Activation,
+}
+
+impl LayerSpec {
+    /// The augmented matrix's shape: units × (inputs + 1), column 0 multiplies the bias unit.
+    pub fn shape(&self) -> (usize, usize) {
+        (self.units, self.inputs + 1)
+    }
+
+    /// Parameters of this layer, the bias weights included.
+    pub fn parameters(&self) -> usize {
+        self.units * (self.inputs + 1)
+    }
+}
+
+/// Why a network cannot be built. Layers are numbered from 1, as in the description.
+#[derive(Clone, Debug, PartialEq, Error)]
+pub enum NetworkError {
+    #[error("the network has no layers: add at least one [[layer]]")]
+    NoLayers,
+    #[error("`inputs` is 0: a network needs at least one input feature")]
+    NoInputs,
+    #[error("layer {layer} has 0 units: every layer needs at least one")]
+    NoUnits { layer: usize },
+    #[error(
+        "layer {layer} uses softmax, which is only allowed on the output layer (layer {last}); use another activation there"
+    )]
+    SoftmaxHidden { layer: usize, last: usize },
+    #[error(
+        "layer {layer} is a softmax over a single unit, which is always 1; use sigmoid for one output"
+    )]
+    SoftmaxSingleUnit { layer: usize },
+    #[error(
+        "cross-entropy needs sigmoid or softmax outputs, but the output layer uses {activation}; change the output activation or use squared-error"
+    )]
+    LossNeedsProbabilities { activation: String },
+    #[error("l2 is {value}; it must be a finite number ≥ 0")]
+    BadL2 { value: f64 },
+    #[error("layer {layer}: {what} is {value}; {rule}")]
+    BadActivationParameter {
+        layer: usize,
+        what: &'static str,
+        value: f64,
+        rule: &'static str,
+    },
+}
+
+/// A dense network with its loss and L2 strength: the architecture, without the weights.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Network {
+    layers: Vec<LayerSpec>,
+    loss: Loss,
+    l2: f64,
+}
+
+/// What the forward pass leaves behind for the backward pass and for inspection.
+///
+/// `z[l]` is the pre-activation that layer `l` (0-based) produces, m × s_{l+2} in the 1-based
+/// numbering of the docs; `a[0]` is the input batch and `a[l + 1] = g(z[l])`.
+#[derive(Clone, Debug)]
+pub struct Trace<S> {
+    pub z: Vec<Array2<S>>,
+    pub a: Vec<Array2<S>>,
+}
+
+impl<S> Trace<S> {
+    /// The network's output for the batch.
+    pub fn output(&self) -> &Array2<S> {
+        self.a.last().expect("a trace always holds the input")
+    }
+}
+
+impl Network {
+    /// Builds a network from the number of inputs and (units, activation) per layer, checking every
+    /// rule a description must obey.
+    pub fn new(
+        inputs: usize,
+        layers: &[(usize, Activation)],
+        loss: Loss,
+        l2: f64,
+    ) -> Result<Self, NetworkError> {
+        if layers.is_empty() {
+            return Err(NetworkError::NoLayers);
+        }
+        if inputs == 0 {
+            return Err(NetworkError::NoInputs);
+        }
+        if !(l2.is_finite() && l2 >= 0.0) {
+            return Err(NetworkError::BadL2 { value: l2 });
+        }
+        let last = layers.len();
+        let mut specs = Vec::with_capacity(layers.len());
+        let mut fan_in = inputs;
+        for (i, &(units, activation)) in layers.iter().enumerate() {
+            let layer = i + 1;
+            if units == 0 {
+                return Err(NetworkError::NoUnits { layer });
+            }
+            check_activation(layer, activation)?;
+            if activation == Activation::Softmax {
+                if layer != last {
+                    return Err(NetworkError::SoftmaxHidden { layer, last });
+                }
+                if units == 1 {
+                    return Err(NetworkError::SoftmaxSingleUnit { layer });
+                }
+            }
+            specs.push(LayerSpec {
+                inputs: fan_in,
+                units,
+                activation,
+            });
+            fan_in = units;
+        }
+        let output = specs[last - 1].activation;
+        if !loss.accepts(output) {
+            return Err(NetworkError::LossNeedsProbabilities {
+                activation: output.to_string(),
+            });
+        }
+        Ok(Network {
+            layers: specs,
+            loss,
+            l2,
+        })
+    }
+
+    pub fn layers(&self) -> &[LayerSpec] {
+        &self.layers
+    }
+
+    pub fn loss(&self) -> Loss {
+        self.loss
+    }
+
+    /// λ of the L2 term (λ / 2m) · Σ w² over the non-bias weights.
+    pub fn l2(&self) -> f64 {
+        self.l2
+    }
+
+    /// s_1, the number of input features.
+    pub fn inputs(&self) -> usize {
+        self.layers[0].inputs
+    }
+
+    /// The number of output units.
+    pub fn outputs(&self) -> usize {
+        self.layers[self.layers.len() - 1].units
+    }
+
+    /// Parameters over all layers, bias weights included.
+    pub fn parameters(&self) -> usize {
+        self.layers.iter().map(LayerSpec::parameters).sum()
+    }
+
+    /// Whether a weight set has one augmented matrix of the right shape per layer.
+    pub fn fits<S>(&self, weights: &Weights<S>) -> bool {
+        weights.layers().len() == self.layers.len()
+            && self
+                .layers
+                .iter()
+                .zip(weights.layers())
+                .all(|(spec, w)| w.dim() == spec.shape())
+    }
+
+    /// Checks a batch against the network: m ≥ 1 samples, the right number of features and targets.
+    pub fn check_batch<S>(&self, x: ArrayView2<S>, y: ArrayView2<S>) -> Result<(), String> {
+        if x.nrows() == 0 {
+            return Err("the batch has no samples".into());
+        }
+        if x.nrows() != y.nrows() {
+            return Err(format!(
+                "the batch has {} feature rows but {} target rows",
+                x.nrows(),
+                y.nrows()
+            ));
+        }
+        if x.ncols() != self.inputs() {
+            return Err(format!(
+                "the batch has {} features per sample; the network takes {}",
+                x.ncols(),
+                self.inputs()
+            ));
+        }
+        if y.ncols() != self.outputs() {
+            return Err(format!(
+                "the batch has {} targets per sample; the network has {} outputs",
+                y.ncols(),
+                self.outputs()
+            ));
+        }
+        Ok(())
+    }
+
+    /// One layer's pre-activation for a batch: z = a · Wᵀ + b, with W and b the augmented matrix's
+    /// columns 1.. and 0. One matrix product for the whole batch.
+    pub fn affine<S: Scalar>(theta: ArrayView2<S>, a: ArrayView2<S>) -> Array2<S> {
+        let w = theta.slice(s![.., 1..]);
+        let mut z = a.dot(&w.t());
+        z += &theta.column(0);
+        z
+    }
+
+    /// Layer `l` (0-based) applied to the activations `a` of the layer below: (z, g(z)).
+    pub fn layer_forward<S: Scalar>(
+        &self,
+        l: usize,
+        theta: ArrayView2<S>,
+        a: ArrayView2<S>,
+    ) -> (Array2<S>, Array2<S>) {
+        let z = Self::affine(theta, a);
+        let out = self.layers[l].activation.apply(z.view());
+        (z, out)
+    }
+
+    /// The forward pass over a batch (one sample per row of `x`), keeping every layer's values.
+    pub fn forward<S: Scalar>(&self, weights: &Weights<S>, x: ArrayView2<S>) -> Trace<S> {
+        self.forward_from(weights, 0, x)
+    }
+
+    /// The forward pass from layer `start` (0-based) upward, given that layer's input activations;
+    /// the trace's `a[0]` is `input`, and `z`, `a` hold only the layers from `start` on.
+    pub fn forward_from<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        start: usize,
+        input: ArrayView2<S>,
+    ) -> Trace<S> {
+        self.assert_fits(weights);
+        let n = self.layers.len() - start;
+        let mut z = Vec::with_capacity(n);
+        let mut a = Vec::with_capacity(n + 1);
+        a.push(input.to_owned());
+        for l in start..self.layers.len() {
+            let (zl, al) = self.layer_forward(l, weights.layer(l).view(), a[a.len() - 1].view());
+            z.push(zl);
+            a.push(al);
+        }
+        Trace { z, a }
+    }
+
+    /// The L2 term (λ / 2m) · Σ w² over every non-bias weight of every layer.
+    pub fn l2_penalty<S: Scalar>(&self, weights: &Weights<S>, m: usize) -> S {
+        if self.l2 == 0.0 {
+            return S::zero();
+        }
+        let mut sum = S::zero();
+        for w in weights.layers() {
+            for &v in w.slice(s![.., 1..]).iter() {
+                sum += v * v;
+            }
+        }
+        S::from_f64(self.l2 / (2.0 * m as f64)) * sum
+    }
+
+    /// The data term of the loss from a finished forward pass.
+    pub fn data_loss<S: Scalar>(&self, trace: &Trace<S>, y: ArrayView2<S>) -> S {
+        let out = self.layers[self.layers.len() - 1].activation;
+        let z = trace.z.last().expect("a network has at least one layer");
+        self.loss.value(out, z.view(), trace.output().view(), y)
+    }
+
+    /// The full loss J(θ): data term plus L2 term.
+    pub fn loss_value<S: Scalar>(&self, weights: &Weights<S>, x: ArrayView2<S>, y: ArrayView2<S>) -> S {
+        let trace = self.forward(weights, x);
+        self.data_loss(&trace, y) + self.l2_penalty(weights, x.nrows())
+    }
+
+    /// The full loss evaluated from layer `start` (0-based) upward, with the layers below held fixed:
+    /// `input` is layer `start`'s input activations (the trace's `a[start]`). The L2 term still covers
+    /// every layer, so the value equals J(θ) for the same weights.
+    pub fn loss_from<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        start: usize,
+        input: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let trace = self.forward_from(weights, start, input);
+        self.data_loss(&trace, y) + self.l2_penalty(weights, input.nrows())
+    }
+
+    /// The loss and its gradient by analytic backpropagation, one augmented matrix per layer.
+    pub fn gradient<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> (S, Weights<S>) {
+        let trace = self.forward(weights, x);
+        let loss = self.data_loss(&trace, y) + self.l2_penalty(weights, x.nrows());
+        (loss, self.backward(weights, &trace, y))
+    }
+
+    /// Backpropagation through a finished forward pass.
+    pub fn backward<S: Scalar>(&self, weights: &Weights<S>, trace: &Trace<S>, y: ArrayView2<S>) -> Weights<S> {
+        let depth = self.layers.len();
+        let m = trace.a[0].nrows();
+        let reg = S::from_f64(self.l2 / m as f64);
+        let out = self.layers[depth - 1].activation;
+        let mut delta = self.loss.output_delta(
+            out,
+            trace.z[depth - 1].view(),
+            trace.a[depth].view(),
+            y,
+        );
+        let mut grads = Vec::with_capacity(depth);
+        for l in (0..depth).rev() {
+            let theta = weights.layer(l);
+            let (units, cols) = theta.dim();
+            let mut g = Array2::zeros((units, cols));
+            g.column_mut(0).assign(&delta.sum_axis(Axis(0)));
+            let mut gw = g.slice_mut(s![.., 1..]);
+            gw.assign(&delta.t().dot(&trace.a[l]));
+            if self.l2 != 0.0 {
+                gw.zip_mut_with(&theta.slice(s![.., 1..]), |gv, &wv| *gv += reg * wv);
+            }
+            grads.push(g);
+            if l > 0 {
+                let upstream = delta.dot(&theta.slice(s![.., 1..]));
+                delta = self.layers[l - 1].activation.backward(
+                    trace.z[l - 1].view(),
+                    trace.a[l].view(),
+                    upstream,
+                );
+            }
+        }
+        grads.reverse();
+        Weights::new(grads)
+    }
+
+    fn assert_fits<S>(&self, weights: &Weights<S>) {
+        assert!(
+            self.fits(weights),
+            "weights do not fit the network (check with Network::fits before calling)"
+        );
+    }
+}
+
+fn check_activation(layer: usize, activation: Activation) -> Result<(), NetworkError> {
+    match activation {
+        Activation::LeakyRelu { slope } if !(slope.is_finite() && (0.0..1.0).contains(&slope)) => {
+            Err(NetworkError::BadActivationParameter {
+                layer,
+                what: "the leaky-relu slope",
+                value: slope,
+                rule: "it must be ≥ 0 and < 1",
+            })
+        }
+        Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
+            Err(NetworkError::BadActivationParameter {
+                layer,
+                what: "the elu alpha",
+                value: alpha,
+                rule: "it must be a finite number > 0",
+            })
+        }
+        _ => Ok(()),
+    }
+}
