@@ -8,7 +8,11 @@ use std::hint::black_box;
 fn backprop(c: &mut Criterion) {
     let net = Network::new(
         784,
-        &[(256, Activation::Relu), (128, Activation::Relu), (10, Activation::Softmax)],
+        &[
+            (256, Activation::Relu),
+            (128, Activation::Relu),
+            (10, Activation::Softmax),
+        ],
         Loss::CrossEntropy,
         1e-4,
     )

@@ -161,9 +161,7 @@ impl Activation {
                 let mut out = z.to_owned();
                 for mut row in out.axis_iter_mut(Axis(0)) {
                     // Shift by the row's largest real part; any shift gives the same softmax.
-                    let shift = row
-                        .iter()
-                        .fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
+                    let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
                     let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
                     let mut total = S::zero();
                     for v in row.iter_mut() {
@@ -208,7 +206,7 @@ impl Activation {
                 Zip::from(&mut out)
                     .and(z)
                     .and(a)
-                    .for_each(|d, &zv, &av| *d = *d * act.slope(zv, av));
+                    .for_each(|d, &zv, &av| *d *= act.slope(zv, av));
             }
         }
         out

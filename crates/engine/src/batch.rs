@@ -24,10 +24,7 @@ impl Batch {
     /// The batch in another scalar type (f32 for a single-precision run; complex or dual with no
     /// perturbation part).
     pub fn cast<S: Scalar>(&self) -> (Array2<S>, Array2<S>) {
-        (
-            self.x.mapv(S::from_f64),
-            self.y.mapv(S::from_f64),
-        )
+        (self.x.mapv(S::from_f64), self.y.mapv(S::from_f64))
     }
 
     /// A seeded synthetic batch for a network, used when no data file is given: standard-normal

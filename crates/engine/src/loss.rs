@@ -73,7 +73,7 @@ impl Loss {
                     let d = av - yv;
                     total += d * d;
                 });
-                total = total * S::from_f64(0.5);
+                total *= S::from_f64(0.5);
             }
         }
         total / m
@@ -130,10 +130,10 @@ impl fmt::Display for Loss {
 
 /// ln Σ eᶻ over a row, shifted by the largest real part so that nothing overflows.
 fn log_sum_exp<S: Scalar>(row: ndarray::ArrayView1<S>) -> S {
-    let shift = row
-        .iter()
-        .fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
+    let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
     let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
-    let sum = row.iter().fold(S::zero(), |acc, &v| acc + (v - shift).exp());
+    let sum = row
+        .iter()
+        .fold(S::zero(), |acc, &v| acc + (v - shift).exp());
     shift + sum.ln()
 }

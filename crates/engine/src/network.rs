@@ -273,7 +273,12 @@ impl Network {
     }
 
     /// The full loss J(θ): data term plus L2 term.
-    pub fn loss_value<S: Scalar>(&self, weights: &Weights<S>, x: ArrayView2<S>, y: ArrayView2<S>) -> S {
+    pub fn loss_value<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
         let trace = self.forward(weights, x);
         self.data_loss(&trace, y) + self.l2_penalty(weights, x.nrows())
     }
@@ -305,17 +310,19 @@ impl Network {
     }
 
     /// Backpropagation through a finished forward pass.
-    pub fn backward<S: Scalar>(&self, weights: &Weights<S>, trace: &Trace<S>, y: ArrayView2<S>) -> Weights<S> {
+    pub fn backward<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        trace: &Trace<S>,
+        y: ArrayView2<S>,
+    ) -> Weights<S> {
         let depth = self.layers.len();
         let m = trace.a[0].nrows();
         let reg = S::from_f64(self.l2 / m as f64);
         let out = self.layers[depth - 1].activation;
-        let mut delta = self.loss.output_delta(
-            out,
-            trace.z[depth - 1].view(),
-            trace.a[depth].view(),
-            y,
-        );
+        let mut delta =
+            self.loss
+                .output_delta(out, trace.z[depth - 1].view(), trace.a[depth].view(), y);
         let mut grads = Vec::with_capacity(depth);
         for l in (0..depth).rev() {
             let theta = weights.layer(l);

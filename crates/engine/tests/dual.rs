@@ -48,7 +48,10 @@ fn check(net: &Network, seed: u64, m: usize, soft: bool) {
         "loss {loss} vs num-dual {dual_loss} for {net:?}"
     );
     let err = max_relative(&grad, &dual_grad, FLOOR);
-    assert!(err <= TOL, "relative error {err:e} for {net:?} (seed {seed})");
+    assert!(
+        err <= TOL,
+        "relative error {err:e} for {net:?} (seed {seed})"
+    );
 }
 
 #[test]
@@ -65,8 +68,13 @@ fn every_hidden_activation_with_both_losses_and_l2() {
             check(&ce, 10 + i as u64, 4, false);
             let se = Network::new(3, &[(7, act), (2, act)], Loss::SquaredError, l2).unwrap();
             check(&se, 40 + i as u64, 5, false);
-            let bce = Network::new(3, &[(6, act), (2, Activation::Sigmoid)], Loss::CrossEntropy, l2)
-                .unwrap();
+            let bce = Network::new(
+                3,
+                &[(6, act), (2, Activation::Sigmoid)],
+                Loss::CrossEntropy,
+                l2,
+            )
+            .unwrap();
             check(&bce, 70 + i as u64, 3, true);
         }
     }
@@ -74,11 +82,24 @@ fn every_hidden_activation_with_both_losses_and_l2() {
 
 #[test]
 fn softmax_output_with_squared_error_and_soft_targets() {
-    let net = Network::new(4, &[(5, Activation::Gelu), (3, Activation::Softmax)], Loss::SquaredError, 0.1)
-        .unwrap();
+    let net = Network::new(
+        4,
+        &[(5, Activation::Gelu), (3, Activation::Softmax)],
+        Loss::SquaredError,
+        0.1,
+    )
+    .unwrap();
     check(&net, 3, 6, false);
-    let ce = Network::new(4, &[(5, Activation::Elu { alpha: 1.0 }), (4, Activation::Softmax)], Loss::CrossEntropy, 0.0)
-        .unwrap();
+    let ce = Network::new(
+        4,
+        &[
+            (5, Activation::Elu { alpha: 1.0 }),
+            (4, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.0,
+    )
+    .unwrap();
     check(&ce, 4, 6, true);
 }
 
@@ -88,16 +109,25 @@ fn random_architectures() {
     let mut rng = Rng::new(2026);
     for seed in 0..60 {
         let depth = 1 + rng.below(3);
-        let mut layers: Vec<(usize, Activation)> =
-            (0..depth).map(|_| (1 + rng.below(7), HIDDEN[rng.below(HIDDEN.len())])).collect();
-        let loss = if rng.uniform() < 0.5 { Loss::CrossEntropy } else { Loss::SquaredError };
+        let mut layers: Vec<(usize, Activation)> = (0..depth)
+            .map(|_| (1 + rng.below(7), HIDDEN[rng.below(HIDDEN.len())]))
+            .collect();
+        let loss = if rng.uniform() < 0.5 {
+            Loss::CrossEntropy
+        } else {
+            Loss::SquaredError
+        };
         let out = match loss {
             Loss::CrossEntropy if rng.uniform() < 0.5 => (2 + rng.below(4), Activation::Softmax),
             Loss::CrossEntropy => (1 + rng.below(4), Activation::Sigmoid),
             Loss::SquaredError => (1 + rng.below(4), HIDDEN[rng.below(HIDDEN.len())]),
         };
         layers.push(out);
-        let l2 = if rng.uniform() < 0.5 { 0.0 } else { rng.uniform() };
+        let l2 = if rng.uniform() < 0.5 {
+            0.0
+        } else {
+            rng.uniform()
+        };
         let net = Network::new(1 + rng.below(5), &layers, loss, l2).unwrap();
         check(&net, seed, 3 + rng.below(6), rng.uniform() < 0.3);
     }
@@ -107,8 +137,13 @@ fn random_architectures() {
 /// to what single precision allows (common practice: a few hundred ε₃₂ relative on a small network).
 #[test]
 fn single_precision_tracks_double() {
-    let net = Network::new(4, &[(6, Activation::Tanh), (3, Activation::Softmax)], Loss::CrossEntropy, 0.1)
-        .unwrap();
+    let net = Network::new(
+        4,
+        &[(6, Activation::Tanh), (3, Activation::Softmax)],
+        Loss::CrossEntropy,
+        0.1,
+    )
+    .unwrap();
     let mut rng = Rng::new(5);
     let w = random_weights(&net, &mut rng);
     let batch = Batch::synthetic(&net, 16, 5);

@@ -7,13 +7,21 @@ use plumb_engine::{Activation, Init, Loss, Network, Rng};
 /// U(−a, a) has standard deviation a/√3 [pub: any probability text].
 #[test]
 fn sample_spread_matches_the_formulas() {
-    let net = Network::new(300, &[(200, Activation::Tanh), (10, Activation::Softmax)], Loss::CrossEntropy, 0.0)
-        .unwrap();
+    let net = Network::new(
+        300,
+        &[(200, Activation::Tanh), (10, Activation::Softmax)],
+        Loss::CrossEntropy,
+        0.0,
+    )
+    .unwrap();
     let (fan_in, fan_out) = (300.0f64, 200.0f64);
     for init in Init::ALL {
         let w = init.weights(&net, &mut Rng::new(99));
         let first = w.layer(0);
-        assert!(first.column(0).iter().all(|&b| b == 0.0), "biases start at zero");
+        assert!(
+            first.column(0).iter().all(|&b| b == 0.0),
+            "biases start at zero"
+        );
         let vals: Vec<f64> = first.slice(ndarray::s![.., 1..]).iter().copied().collect();
         let n = vals.len() as f64;
         let mean = vals.iter().sum::<f64>() / n;
@@ -33,7 +41,10 @@ fn sample_spread_matches_the_formulas() {
         if init.is_uniform() {
             assert!(max <= 3f64.sqrt() * want + 1e-15);
         } else {
-            assert!(max > 3.0 * want, "a normal sample this large reaches past 3σ");
+            assert!(
+                max > 3.0 * want,
+                "a normal sample this large reaches past 3σ"
+            );
         }
     }
 }

@@ -32,13 +32,21 @@ fn iris_has_the_published_size() {
     // Fisher 1936: 150 flowers, 4 measurements, 3 species of 50 each.
     let b = iris();
     assert_eq!(b.x.dim(), (150, 4));
-    assert_eq!(b.y.sum_axis(ndarray::Axis(0)).to_vec(), vec![50.0, 50.0, 50.0]);
+    assert_eq!(
+        b.y.sum_axis(ndarray::Axis(0)).to_vec(),
+        vec![50.0, 50.0, 50.0]
+    );
 }
 
 #[test]
 fn gradient_matches_num_dual_on_iris() {
-    let net = Network::new(4, &[(8, Activation::Tanh), (3, Activation::Softmax)], Loss::CrossEntropy, 0.05)
-        .unwrap();
+    let net = Network::new(
+        4,
+        &[(8, Activation::Tanh), (3, Activation::Softmax)],
+        Loss::CrossEntropy,
+        0.05,
+    )
+    .unwrap();
     let batch = iris();
     for seed in [1, 2, 3] {
         let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));

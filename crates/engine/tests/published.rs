@@ -9,8 +9,13 @@ use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng, Weights};
 /// 9); each value is asserted to the last digit the source prints.
 #[test]
 fn mazur_worked_example() {
-    let net = Network::new(2, &[(2, Activation::Sigmoid), (2, Activation::Sigmoid)], Loss::SquaredError, 0.0)
-        .unwrap();
+    let net = Network::new(
+        2,
+        &[(2, Activation::Sigmoid), (2, Activation::Sigmoid)],
+        Loss::SquaredError,
+        0.0,
+    )
+    .unwrap();
     // Augmented rows: [bias, w from i1, w from i2]; w1, w2 into h1; w3, w4 into h2; w5, w6 into o1;
     // w7, w8 into o2; biases 0.35 (hidden) and 0.60 (output).
     let w = Weights::new(vec![
@@ -22,7 +27,10 @@ fn mazur_worked_example() {
     let trace = net.forward(&w, x.view());
     let close = |got: f64, want: f64, digits: i32| {
         let unit = 10f64.powi(-digits);
-        assert!((got - want).abs() <= 0.5 * unit + 1e-15, "{got} vs {want} (to 1e-{digits})");
+        assert!(
+            (got - want).abs() <= 0.5 * unit + 1e-15,
+            "{got} vs {want} (to 1e-{digits})"
+        );
     };
     close(trace.a[1][[0, 0]], 0.593269992, 9);
     close(trace.a[1][[0, 1]], 0.596884378, 9);
@@ -105,7 +113,11 @@ fn sigmoid_binary_cross_entropy_delta_is_a_minus_y() {
 #[test]
 fn l2_adds_lambda_over_m_times_w_to_non_bias_weights_only() {
     let lambda = 0.7;
-    let layers = [(5, Activation::Tanh), (4, Activation::Relu), (3, Activation::Softmax)];
+    let layers = [
+        (5, Activation::Tanh),
+        (4, Activation::Relu),
+        (3, Activation::Softmax),
+    ];
     let with = Network::new(6, &layers, Loss::CrossEntropy, lambda).unwrap();
     let without = Network::new(6, &layers, Loss::CrossEntropy, 0.0).unwrap();
     let w = Init::HeNormal.weights(&with, &mut Rng::new(4));
@@ -113,13 +125,24 @@ fn l2_adds_lambda_over_m_times_w_to_non_bias_weights_only() {
     let m = batch.len() as f64;
     let (j1, g1) = with.gradient(&w, batch.x.view(), batch.y.view());
     let (j0, g0) = without.gradient(&w, batch.x.view(), batch.y.view());
-    let sum_sq: f64 = w.layers().iter().map(|t| t.slice(s![.., 1..]).mapv(|v| v * v).sum()).sum();
+    let sum_sq: f64 = w
+        .layers()
+        .iter()
+        .map(|t| t.slice(s![.., 1..]).mapv(|v| v * v).sum())
+        .sum();
     assert!((j1 - j0 - lambda / (2.0 * m) * sum_sq).abs() < 1e-14);
     for l in 0..3 {
         let diff = g1.layer(l) - g0.layer(l);
         for ((r, c), &d) in diff.indexed_iter() {
-            let want = if c == 0 { 0.0 } else { lambda / m * w.layer(l)[[r, c]] };
-            assert!((d - want).abs() < 1e-15, "layer {l} ({r}, {c}): {d} vs {want}");
+            let want = if c == 0 {
+                0.0
+            } else {
+                lambda / m * w.layer(l)[[r, c]]
+            };
+            assert!(
+                (d - want).abs() < 1e-15,
+                "layer {l} ({r}, {c}): {d} vs {want}"
+            );
         }
     }
 }
@@ -130,7 +153,11 @@ fn l2_adds_lambda_over_m_times_w_to_non_bias_weights_only() {
 fn loss_from_a_layer_equals_the_full_loss() {
     let net = Network::new(
         4,
-        &[(6, Activation::Elu { alpha: 1.0 }), (5, Activation::Sigmoid), (3, Activation::Softmax)],
+        &[
+            (6, Activation::Elu { alpha: 1.0 }),
+            (5, Activation::Sigmoid),
+            (3, Activation::Softmax),
+        ],
         Loss::CrossEntropy,
         0.2,
     )
@@ -141,6 +168,9 @@ fn loss_from_a_layer_equals_the_full_loss() {
     let trace = net.forward(&w, batch.x.view());
     for start in 0..3 {
         let part = net.loss_from(&w, start, trace.a[start].view(), batch.y.view());
-        assert!((part - full).abs() <= 1e-15 * full.abs(), "from layer {start}: {part} vs {full}");
+        assert!(
+            (part - full).abs() <= 1e-15 * full.abs(),
+            "from layer {start}: {part} vs {full}"
+        );
     }
 }
