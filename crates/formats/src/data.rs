@@ -1,0 +1,438 @@
+//! Data files: a CSV with a header row, or an NPZ with arrays `x` and `y`, turned into a batch of
+//! features and targets for a network with `inputs` inputs and `outputs` output units.
+//!
+//! A single integer target column (or 1-D `y`) with several output units holds class labels, which
+//! are one-hot encoded: that is how labelled data is usually kept, and refusing it would only make
+//! people write a conversion script.
+
+use std::path::{Path, PathBuf};
+
+use ndarray::Array2;
+use plumb_engine::Batch;
+
+use crate::tensor::{Tensor, TensorFileError, shape_text};
+use crate::{FileFormat, read_tensors};
+
+/// Offending text is quoted up to this many characters.
+const QUOTE_CHARS: usize = 40;
+
+/// Why a data file could not be used. Every variant names the file and the place in it: line
+/// (1-based, the header being line 1) and column for CSV, array and index for NPZ.
+#[derive(Debug, thiserror::Error)]
+pub enum DataError {
+    #[error("{}: cannot read the file: {source}", .path.display())]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+
+    #[error(
+        "{}: unknown data file extension; plumb reads .csv (with a header row) and .npz (arrays \
+         `x` and `y`)",
+        .path.display()
+    )]
+    UnknownExtension { path: PathBuf },
+
+    #[error(
+        "{}: the file is empty; a data file starts with a header row naming the columns, then one \
+         sample per line",
+        .path.display()
+    )]
+    Empty { path: PathBuf },
+
+    #[error(
+        "{}: line 1 holds only numbers, but it must name the columns; add a header row (plumb \
+         would otherwise take the first sample for one)",
+        .path.display()
+    )]
+    NoHeader { path: PathBuf },
+
+    #[error(
+        "{}: there is a header row but no samples; add one sample per line after it",
+        .path.display()
+    )]
+    NoSamples { path: PathBuf },
+
+    #[error(
+        "{}: line 1: the header has {found} columns, but the network needs {inputs} features + \
+         {outputs} targets = {}{}; add or remove columns, or fix `inputs` and the output layer's \
+         units in the network description",
+        .path.display(), .inputs + .outputs, label_alternative(*.inputs, *.outputs)
+    )]
+    ColumnCount {
+        path: PathBuf,
+        found: usize,
+        inputs: usize,
+        outputs: usize,
+    },
+
+    #[error(
+        "{}: line {line}: {found} fields where the header has {expected}; every row needs one \
+         value per column",
+        .path.display()
+    )]
+    Ragged {
+        path: PathBuf,
+        line: u64,
+        expected: usize,
+        found: usize,
+    },
+
+    #[error("{}: line {line}, column `{column}`: {problem}", .path.display())]
+    BadValue {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        /// What is wrong, with the offending text quoted.
+        problem: String,
+    },
+
+    #[error(
+        "{}: line {line}: {source}; save the data as UTF-8 comma-separated text",
+        .path.display()
+    )]
+    Csv {
+        path: PathBuf,
+        line: u64,
+        #[source]
+        source: csv::Error,
+    },
+
+    /// The NPZ could not be read as a tensor file (boxed: it is by far the largest variant).
+    #[error(transparent)]
+    Tensors(Box<TensorFileError>),
+
+    #[error(
+        "{}: no array `{name}` (the archive holds {}); save the data with \
+         np.savez(path, x=..., y=...)",
+        .path.display(), list(.found)
+    )]
+    MissingArray {
+        path: PathBuf,
+        name: &'static str,
+        found: Vec<String>,
+    },
+
+    #[error("{}: array `{array}` has shape {}, {expected}", .path.display(), shape_text(.shape))]
+    ArrayShape {
+        path: PathBuf,
+        array: &'static str,
+        shape: Vec<usize>,
+        /// What shape was expected and why.
+        expected: String,
+    },
+
+    #[error("{}: array `{array}`, element {}: {problem}", .path.display(), index_text(.index))]
+    BadElement {
+        path: PathBuf,
+        array: &'static str,
+        index: Vec<usize>,
+        problem: String,
+    },
+}
+
+impl From<TensorFileError> for DataError {
+    fn from(error: TensorFileError) -> DataError {
+        DataError::Tensors(Box::new(error))
+    }
+}
+
+fn label_alternative(inputs: usize, outputs: usize) -> String {
+    if outputs > 1 {
+        format!(
+            " columns, or {inputs} features + 1 label column = {}",
+            inputs + 1
+        )
+    } else {
+        " columns".to_string()
+    }
+}
+
+/// An index as NumPy takes it: `[3]`, `[2, 1]`.
+fn index_text(index: &[usize]) -> String {
+    let parts: Vec<String> = index.iter().map(usize::to_string).collect();
+    format!("[{}]", parts.join(", "))
+}
+
+fn list(names: &[String]) -> String {
+    if names.is_empty() {
+        return "no arrays".to_string();
+    }
+    let quoted: Vec<String> = names.iter().map(|n| format!("`{n}`")).collect();
+    quoted.join(", ")
+}
+
+fn quote(text: &str) -> String {
+    let mut chars = text.chars();
+    let head: String = chars.by_ref().take(QUOTE_CHARS).collect();
+    if chars.next().is_some() {
+        format!("`{head}…`")
+    } else {
+        format!("`{head}`")
+    }
+}
+
+/// Read a data file (by extension: `.csv` or `.npz`) for a network with `inputs` features and
+/// `outputs` output units.
+pub fn read_data(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
+    let extension = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase);
+    match extension.as_deref() {
+        Some("csv") => read_csv(path, inputs, outputs),
+        Some("npz") => read_npz(path, inputs, outputs),
+        _ => Err(DataError::UnknownExtension {
+            path: path.to_path_buf(),
+        }),
+    }
+}
+
+/// How the target columns of a file are to be read.
+#[derive(Clone, Copy)]
+enum Targets {
+    /// One column per output unit, taken as they are.
+    Values,
+    /// One column of class labels 0..outputs−1.
+    Labels,
+}
+
+fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
+    let bytes = std::fs::read(path).map_err(|source| DataError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        // Row lengths are checked here, to report them with the header's count.
+        .flexible(true)
+        .trim(csv::Trim::All)
+        .from_reader(&bytes[..]);
+    let csv_error = |line: u64, source: csv::Error| DataError::Csv {
+        path: path.to_path_buf(),
+        line,
+        source,
+    };
+    let header = reader.headers().map_err(|e| csv_error(1, e))?.clone();
+    if header.is_empty() || (header.len() == 1 && header[0].is_empty()) {
+        return Err(DataError::Empty {
+            path: path.to_path_buf(),
+        });
+    }
+    if header.iter().all(|name| name.parse::<f64>().is_ok()) {
+        return Err(DataError::NoHeader {
+            path: path.to_path_buf(),
+        });
+    }
+    let columns = header.len();
+    let targets = if columns == inputs + outputs {
+        Targets::Values
+    } else if outputs > 1 && columns == inputs + 1 {
+        Targets::Labels
+    } else {
+        return Err(DataError::ColumnCount {
+            path: path.to_path_buf(),
+            found: columns,
+            inputs,
+            outputs,
+        });
+    };
+
+    let mut x = Vec::new();
+    let mut y = Vec::new();
+    let mut rows = 0usize;
+    let mut record = csv::StringRecord::new();
+    loop {
+        let line = reader.position().line();
+        match reader.read_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => break,
+            Err(e) => {
+                let line = e.position().map_or(line, |p| p.line());
+                return Err(csv_error(line, e));
+            }
+        }
+        let line = record.position().map_or(line, |p| p.line());
+        // A line of nothing but separators or spaces is a blank line, not a sample.
+        if record.iter().all(str::is_empty) && record.len() <= 1 {
+            continue;
+        }
+        if record.len() != columns {
+            return Err(DataError::Ragged {
+                path: path.to_path_buf(),
+                line,
+                expected: columns,
+                found: record.len(),
+            });
+        }
+        let bad = |column: usize, problem: String| DataError::BadValue {
+            path: path.to_path_buf(),
+            line,
+            column: header[column].to_string(),
+            problem,
+        };
+        for (column, field) in record.iter().enumerate() {
+            let value = number(field).map_err(|problem| bad(column, problem))?;
+            if column < inputs {
+                x.push(value);
+            } else {
+                match targets {
+                    Targets::Values => y.push(value),
+                    Targets::Labels => {
+                        let class = label(value, outputs).map_err(|problem| {
+                            bad(column, format!("{} {problem}", quote(field)))
+                        })?;
+                        y.extend((0..outputs).map(|k| if k == class { 1.0 } else { 0.0 }));
+                    }
+                }
+            }
+        }
+        rows += 1;
+    }
+    if rows == 0 {
+        return Err(DataError::NoSamples {
+            path: path.to_path_buf(),
+        });
+    }
+    Ok(Batch {
+        x: Array2::from_shape_vec((rows, inputs), x).expect("one row of features per sample"),
+        y: Array2::from_shape_vec((rows, outputs), y).expect("one row of targets per sample"),
+    })
+}
+
+/// A finite number, or what is wrong with the text.
+fn number(field: &str) -> Result<f64, String> {
+    if field.is_empty() {
+        return Err("the field is empty; every sample needs a number in every column".to_string());
+    }
+    match field.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(_) => Err(format!(
+            "{} is not a finite number; data must be finite — remove or impute the sample",
+            quote(field)
+        )),
+        Err(_) => Err(format!("{} is not a number", quote(field))),
+    }
+}
+
+/// The class a label value names, or why it names none.
+fn label(value: f64, classes: usize) -> Result<usize, String> {
+    let valid = format!(
+        "labels are integers 0 to {} (the output layer has {classes} units)",
+        classes - 1
+    );
+    if value.fract() != 0.0 {
+        return Err(format!("is not an integer class label; {valid}"));
+    }
+    if value < 0.0 || value >= classes as f64 {
+        return Err(format!("is outside 0..={}; {valid}", classes - 1));
+    }
+    Ok(value as usize)
+}
+
+fn read_npz(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
+    let file = read_tensors(path)?;
+    debug_assert_eq!(file.format, FileFormat::Npz);
+    let find = |name: &'static str| {
+        file.get(name).ok_or_else(|| DataError::MissingArray {
+            path: path.to_path_buf(),
+            name,
+            found: file.tensors.iter().map(|t| t.name.clone()).collect(),
+        })
+    };
+    let (x, y) = (find("x")?, find("y")?);
+    let shape_error = |array, tensor: &Tensor, expected: String| DataError::ArrayShape {
+        path: path.to_path_buf(),
+        array,
+        shape: tensor.shape.clone(),
+        expected,
+    };
+
+    // x: m × inputs (1-D accepted for a single input).
+    let rows = match x.shape[..] {
+        [m, n] if n == inputs => m,
+        [m] if inputs == 1 => m,
+        _ => {
+            return Err(shape_error(
+                "x",
+                x,
+                format!("but the network has {inputs} inputs: x must be (samples, {inputs})"),
+            ));
+        }
+    };
+    if rows == 0 {
+        return Err(DataError::NoSamples {
+            path: path.to_path_buf(),
+        });
+    }
+    check_finite(path, "x", x)?;
+    check_finite(path, "y", y)?;
+
+    let targets = match y.shape[..] {
+        [m, n] if m == rows && n == outputs => Targets::Values,
+        [m] if m == rows && outputs == 1 => Targets::Values,
+        [m, 1] | [m] if m == rows && outputs > 1 => Targets::Labels,
+        _ => {
+            let alternative = if outputs > 1 {
+                format!(", or ({rows},) / ({rows}, 1) of class labels")
+            } else {
+                String::new()
+            };
+            return Err(shape_error(
+                "y",
+                y,
+                format!(
+                    "but x has {rows} samples and the network {outputs} outputs: y must be \
+                     ({rows}, {outputs}){alternative}"
+                ),
+            ));
+        }
+    };
+    let y = match targets {
+        Targets::Values => y.data.clone(),
+        Targets::Labels => {
+            let mut one_hot = Vec::with_capacity(rows * outputs);
+            for (i, &value) in y.data.iter().enumerate() {
+                let class = label(value, outputs).map_err(|problem| DataError::BadElement {
+                    path: path.to_path_buf(),
+                    array: "y",
+                    index: if y.shape.len() == 2 {
+                        vec![i, 0]
+                    } else {
+                        vec![i]
+                    },
+                    problem: format!("the value {value} {problem}"),
+                })?;
+                one_hot.extend((0..outputs).map(|k| if k == class { 1.0 } else { 0.0 }));
+            }
+            one_hot
+        }
+    };
+    Ok(Batch {
+        x: Array2::from_shape_vec((rows, inputs), x.data.clone()).expect("checked shape of x"),
+        y: Array2::from_shape_vec((rows, outputs), y).expect("checked shape of y"),
+    })
+}
+
+fn check_finite(path: &Path, array: &'static str, tensor: &Tensor) -> Result<(), DataError> {
+    let Some(flat) = tensor.data.iter().position(|v| !v.is_finite()) else {
+        return Ok(());
+    };
+    // Turn the flat C-order position back into an index, for the message.
+    let mut index = vec![0; tensor.shape.len()];
+    let mut rest = flat;
+    for (slot, &dim) in index.iter_mut().zip(&tensor.shape).rev() {
+        *slot = rest % dim;
+        rest /= dim;
+    }
+    Err(DataError::BadElement {
+        path: path.to_path_buf(),
+        array,
+        index,
+        problem: format!(
+            "{} is not finite; data must be finite — remove or impute the sample",
+            tensor.data[flat]
+        ),
+    })
+}

@@ -1,0 +1,157 @@
+//! NPZ archives: a zip of `.npy` members, stored (`np.savez`) or deflated (`np.savez_compressed`),
+//! read from bytes in memory. NumPy writes every member with a zip64 extra field; the `zip` crate
+//! reads those as it reads any other.
+//!
+//! A member's declared sizes are checked before anything is inflated, and inflation is capped at
+//! the declared size, so a crafted archive cannot make us allocate more than deflate could really
+//! have produced from the bytes in the file.
+
+use std::collections::HashSet;
+use std::io::{Cursor, Read, Write};
+use std::path::Path;
+
+use zip::write::SimpleFileOptions;
+use zip::{CompressionMethod, ZipArchive, ZipWriter};
+
+use crate::npy;
+use crate::tensor::{DType, Tensor, TensorFileError};
+
+/// Deflate's longest match (258 bytes) takes at least two bits to encode, so a stream inflates at
+/// most 1032-fold. A member declaring more than that for its compressed size is lying.
+const DEFLATE_MAX_RATIO: u64 = 1032;
+
+/// Slack for the stream's own framing on tiny members.
+const DEFLATE_SLACK: u64 = 1024;
+
+/// Read every member of an archive, in archive order, each named after its member without `.npy`.
+pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileError> {
+    let zip_error = |member: Option<String>, source| TensorFileError::Zip {
+        path: path.to_path_buf(),
+        member,
+        source,
+    };
+    let mut archive = ZipArchive::new(Cursor::new(bytes)).map_err(|e| zip_error(None, e))?;
+    if archive.has_duplicate_names() {
+        return Err(TensorFileError::DuplicateMembers {
+            path: path.to_path_buf(),
+        });
+    }
+
+    let mut tensors = Vec::with_capacity(archive.len());
+    let mut names = HashSet::new();
+    for index in 0..archive.len() {
+        let listed = archive
+            .name_for_index(index)
+            .and_then(Result::ok)
+            .map(|name| name.into_owned());
+        let mut file = archive.by_index(index).map_err(|e| zip_error(listed, e))?;
+        let member = String::from_utf8_lossy(file.name_raw()).into_owned();
+        let bad = |problem: String| TensorFileError::BadMember {
+            path: path.to_path_buf(),
+            member: member.clone(),
+            problem,
+        };
+        let Some(name) = member.strip_suffix(".npy") else {
+            return Err(bad(
+                "an NPZ archive holds only `.npy` members, and this is not one; remove it from \
+                 the archive or write the archive again with np.savez"
+                    .to_string(),
+            ));
+        };
+        let name = name.to_string();
+        if !names.insert(name.clone()) {
+            return Err(bad(format!(
+                "a second array named `{name}`; array names in an archive must be unique"
+            )));
+        }
+
+        let declared = file.size();
+        let compressed = file.compressed_size();
+        let limit = match file.compression() {
+            CompressionMethod::Stored if declared != compressed => {
+                return Err(bad(format!(
+                    "stored uncompressed, it declares {declared} bytes of content in \
+                     {compressed} stored bytes; the archive is damaged — write it again"
+                )));
+            }
+            CompressionMethod::Stored => declared,
+            CompressionMethod::Deflated => {
+                let most = compressed
+                    .saturating_mul(DEFLATE_MAX_RATIO)
+                    .saturating_add(DEFLATE_SLACK);
+                if declared > most {
+                    return Err(bad(format!(
+                        "it declares {declared} bytes inflated from {compressed} compressed \
+                         bytes, more than deflate can produce (at most {most}); the \
+                         archive is damaged — write it again"
+                    )));
+                }
+                declared
+            }
+            other => {
+                return Err(bad(format!(
+                    "compressed with {other}, which plumb does not read; write the archive with \
+                     np.savez or np.savez_compressed (stored or deflate)"
+                )));
+            }
+        };
+        let mut content = Vec::new();
+        // One byte past the declared size tells an over-long stream from an exact one.
+        let read = file
+            .by_ref()
+            .take(limit.saturating_add(1))
+            .read_to_end(&mut content);
+        if let Err(e) = read {
+            return Err(bad(format!(
+                "cannot inflate it: {e}; the archive is damaged — write it again"
+            )));
+        }
+        if content.len() as u64 != declared {
+            return Err(bad(format!(
+                "it declares {declared} bytes but holds {}{}; the archive is damaged — \
+                 write it again",
+                if content.len() as u64 > declared {
+                    "more than "
+                } else {
+                    ""
+                },
+                content.len().min(limit as usize)
+            )));
+        }
+        drop(file);
+        tensors.push(npy::read(path, Some(&member), &name, &content)?);
+    }
+    Ok(tensors)
+}
+
+/// Serialise tensors as a deflated archive, the way `np.savez_compressed` does, in the given order.
+pub(crate) fn write(
+    path: &Path,
+    tensors: &[Tensor],
+    dtype: DType,
+) -> Result<Vec<u8>, TensorFileError> {
+    // Zip errors here can only come from the in-memory writer; report them as a failed write.
+    let failed = |e: zip::result::ZipError| TensorFileError::Io {
+        path: path.to_path_buf(),
+        action: "write",
+        source: std::io::Error::other(e),
+    };
+    let mut writer = ZipWriter::new(Cursor::new(Vec::new()));
+    for tensor in tensors {
+        let content = npy::write(tensor, dtype);
+        let options = SimpleFileOptions::default()
+            .compression_method(CompressionMethod::Deflated)
+            .large_file(content.len() as u64 >= u32::MAX as u64);
+        writer
+            .start_file(format!("{}.npy", tensor.name), options)
+            .map_err(failed)?;
+        writer
+            .write_all(&content)
+            .map_err(|source| TensorFileError::Io {
+                path: path.to_path_buf(),
+                action: "write",
+                source,
+            })?;
+    }
+    Ok(writer.finish().map_err(failed)?.into_inner())
+}

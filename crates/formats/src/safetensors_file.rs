@@ -1,0 +1,141 @@
+//! safetensors files, through the `safetensors` crate: it validates the header (size, JSON, that
+//! the data offsets tile the buffer exactly, with checked arithmetic) before we touch any data.
+//!
+//! F64, F32, F16 and BF16 are read and widened; integer and bool tensors are converted so a shape
+//! audit can still name them. The 8-bit and smaller float formats and complex numbers are refused.
+
+use std::path::Path;
+
+use safetensors::tensor::{Dtype, TensorView};
+use safetensors::{SafeTensorError, SafeTensors};
+
+use crate::npy;
+use crate::tensor::{DType, Tensor, TensorFileError};
+
+/// Read every tensor, in the order of their data offsets (the order they were written in).
+pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileError> {
+    let (header_len, metadata) =
+        SafeTensors::read_metadata(bytes).map_err(|source| TensorFileError::Safetensors {
+            path: path.to_path_buf(),
+            hint: hint(&source),
+            source,
+        })?;
+    let data_start = 8 + header_len;
+    let mut tensors = Vec::new();
+    for name in metadata.offset_keys() {
+        let Some(info) = metadata.info(&name) else {
+            continue;
+        };
+        let (start, end) = info.data_offsets;
+        let offset = (data_start + start) as u64;
+        let dtype = dtype_of(info.dtype).ok_or_else(|| TensorFileError::UnsupportedDType {
+            path: path.to_path_buf(),
+            member: None,
+            tensor: name.clone(),
+            offset,
+            dtype: format!("{:?} ({})", info.dtype, gloss(info.dtype)),
+        })?;
+        // read_metadata checked that the offsets tile the data exactly and match each shape.
+        let Some(raw) = bytes.get(data_start + start..data_start + end) else {
+            return Err(TensorFileError::Safetensors {
+                path: path.to_path_buf(),
+                hint: "the file is truncated",
+                source: SafeTensorError::InvalidOffset(name),
+            });
+        };
+        tensors.push(Tensor {
+            name,
+            shape: info.shape.clone(),
+            dtype,
+            data: npy::decode(raw, dtype, false),
+        });
+    }
+    Ok(tensors)
+}
+
+fn dtype_of(dtype: Dtype) -> Option<DType> {
+    Some(match dtype {
+        Dtype::F64 => DType::F64,
+        Dtype::F32 => DType::F32,
+        Dtype::F16 => DType::F16,
+        Dtype::BF16 => DType::BF16,
+        Dtype::I8 => DType::I8,
+        Dtype::I16 => DType::I16,
+        Dtype::I32 => DType::I32,
+        Dtype::I64 => DType::I64,
+        Dtype::U8 => DType::U8,
+        Dtype::U16 => DType::U16,
+        Dtype::U32 => DType::U32,
+        Dtype::U64 => DType::U64,
+        Dtype::BOOL => DType::Bool,
+        _ => return None,
+    })
+}
+
+fn gloss(dtype: Dtype) -> &'static str {
+    match dtype {
+        Dtype::C64 => "complex",
+        _ => "a float format narrower than 16 bits",
+    }
+}
+
+/// What the crate's error most likely means for the user.
+fn hint(error: &SafeTensorError) -> &'static str {
+    match error {
+        SafeTensorError::HeaderTooSmall
+        | SafeTensorError::InvalidHeaderLength
+        | SafeTensorError::MetadataIncompleteBuffer => {
+            "the file is truncated, has bytes appended, or is not a safetensors file"
+        }
+        SafeTensorError::HeaderTooLarge => {
+            "the header-length field is implausible, so this is probably not a safetensors file"
+        }
+        SafeTensorError::InvalidHeader(_)
+        | SafeTensorError::InvalidHeaderDeserialization(_)
+        | SafeTensorError::JsonError(_) => "the JSON header is damaged",
+        _ => "the header's shapes, dtypes and data offsets do not agree",
+    }
+}
+
+/// Serialise tensors as F32 or F64. The crate orders tensors by name within a dtype (as the Python
+/// library does), so the file's order is alphabetical, not the order given.
+pub(crate) fn write(
+    path: &Path,
+    tensors: &[Tensor],
+    dtype: DType,
+) -> Result<Vec<u8>, TensorFileError> {
+    let (st_dtype, size) = match dtype {
+        DType::F32 => (Dtype::F32, 4),
+        _ => (Dtype::F64, 8),
+    };
+    let buffers: Vec<Vec<u8>> = tensors
+        .iter()
+        .map(|tensor| {
+            let mut raw = Vec::with_capacity(tensor.data.len() * size);
+            for &value in &tensor.data {
+                if dtype == DType::F32 {
+                    raw.extend_from_slice(&(value as f32).to_le_bytes());
+                } else {
+                    raw.extend_from_slice(&value.to_le_bytes());
+                }
+            }
+            raw
+        })
+        .collect();
+    let mut views = Vec::with_capacity(tensors.len());
+    for (tensor, raw) in tensors.iter().zip(&buffers) {
+        let view = TensorView::new(st_dtype, tensor.shape.clone(), raw).map_err(|e| {
+            TensorFileError::BadTensor {
+                path: path.to_path_buf(),
+                tensor: tensor.name.clone(),
+                problem: e.to_string(),
+            }
+        })?;
+        views.push((tensor.name.clone(), view));
+    }
+    safetensors::serialize(views, None).map_err(|e| TensorFileError::BadTensor {
+        path: path.to_path_buf(),
+        tensor: String::new(),
+        problem: format!("the safetensors library refused the tensors: {e}"),
+    })
+}

@@ -1,0 +1,581 @@
+//! The shared model of a weight or gradient file — named tensors widened to f64 — and the dispatch
+//! from a path to the reader or writer of its format.
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+use ndarray::Array2;
+
+use crate::{npy, npz, safetensors_file};
+
+/// The element type a tensor is stored in. Values are always handed out as f64; the stored type
+/// still matters: it sets the precision a gradient check can expect, and a shape audit reports it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum DType {
+    F16,
+    BF16,
+    F32,
+    F64,
+    I8,
+    I16,
+    I32,
+    I64,
+    U8,
+    U16,
+    U32,
+    U64,
+    Bool,
+}
+
+impl DType {
+    /// Whether the type holds floating-point values (weights and gradients normally do).
+    pub fn is_float(&self) -> bool {
+        matches!(self, DType::F16 | DType::BF16 | DType::F32 | DType::F64)
+    }
+
+    /// NumPy's name for the type (`float32`, `bfloat16`, `int64`, `bool`, …).
+    pub fn name(&self) -> &'static str {
+        match self {
+            DType::F16 => "float16",
+            DType::BF16 => "bfloat16",
+            DType::F32 => "float32",
+            DType::F64 => "float64",
+            DType::I8 => "int8",
+            DType::I16 => "int16",
+            DType::I32 => "int32",
+            DType::I64 => "int64",
+            DType::U8 => "uint8",
+            DType::U16 => "uint16",
+            DType::U32 => "uint32",
+            DType::U64 => "uint64",
+            DType::Bool => "bool",
+        }
+    }
+
+    /// Bytes per element in the file.
+    pub fn size(&self) -> usize {
+        match self {
+            DType::I8 | DType::U8 | DType::Bool => 1,
+            DType::F16 | DType::BF16 | DType::I16 | DType::U16 => 2,
+            DType::F32 | DType::I32 | DType::U32 => 4,
+            DType::F64 | DType::I64 | DType::U64 => 8,
+        }
+    }
+}
+
+impl fmt::Display for DType {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// One named tensor. `data` is in C (row-major) order whatever the file's order, and widened to
+/// f64 whatever the file's type, so that integer or bool tensors can still be reported by a shape
+/// audit instead of being refused at the door.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Tensor {
+    pub name: String,
+    pub shape: Vec<usize>,
+    pub dtype: DType,
+    pub data: Vec<f64>,
+}
+
+impl Tensor {
+    /// Number of elements.
+    pub fn len(&self) -> usize {
+        self.data.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.data.is_empty()
+    }
+
+    /// The tensor as a matrix, if it is 2-D (and its data matches its shape).
+    pub fn to_array2(&self) -> Option<Array2<f64>> {
+        match self.shape[..] {
+            [rows, cols] => Array2::from_shape_vec((rows, cols), self.data.clone()).ok(),
+            _ => None,
+        }
+    }
+
+    /// A float64 tensor holding a matrix.
+    pub fn from_array2(name: impl Into<String>, matrix: &Array2<f64>) -> Tensor {
+        Tensor {
+            name: name.into(),
+            shape: vec![matrix.nrows(), matrix.ncols()],
+            dtype: DType::F64,
+            // `iter` walks in logical row-major order even for a transposed or sliced view.
+            data: matrix.iter().copied().collect(),
+        }
+    }
+
+    /// A float64 vector (a bias, say).
+    pub fn from_vec1(name: impl Into<String>, values: Vec<f64>) -> Tensor {
+        Tensor {
+            name: name.into(),
+            shape: vec![values.len()],
+            dtype: DType::F64,
+            data: values,
+        }
+    }
+}
+
+/// The tensor-file formats plumb reads and writes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum FileFormat {
+    Npy,
+    Npz,
+    Safetensors,
+}
+
+impl FileFormat {
+    /// The format a path's extension names (case-insensitive), if any.
+    pub fn from_path(path: &Path) -> Option<FileFormat> {
+        let extension = path.extension()?.to_str()?.to_ascii_lowercase();
+        match extension.as_str() {
+            "npy" => Some(FileFormat::Npy),
+            "npz" => Some(FileFormat::Npz),
+            "safetensors" => Some(FileFormat::Safetensors),
+            _ => None,
+        }
+    }
+
+    /// A short name for messages and reports.
+    pub fn name(&self) -> &'static str {
+        match self {
+            FileFormat::Npy => "NPY",
+            FileFormat::Npz => "NPZ",
+            FileFormat::Safetensors => "safetensors",
+        }
+    }
+
+    /// What the bytes look like, judged by magic numbers only. `None` when nothing is recognised:
+    /// the reader for the extension then says what is wrong in its own terms.
+    fn sniff(bytes: &[u8]) -> Option<FileFormat> {
+        if bytes.starts_with(npy::MAGIC) {
+            return Some(FileFormat::Npy);
+        }
+        // Local file header, or the end record of an empty archive.
+        if bytes.starts_with(b"PK\x03\x04") || bytes.starts_with(b"PK\x05\x06") {
+            return Some(FileFormat::Npz);
+        }
+        // An 8-byte little-endian header length that fits in the file, then a JSON object.
+        if let (Some(len), Some(b'{')) = (bytes.get(..8), bytes.get(8)) {
+            let len = u64::from_le_bytes(len.try_into().ok()?);
+            if len <= bytes.len() as u64 - 8 {
+                return Some(FileFormat::Safetensors);
+            }
+        }
+        None
+    }
+}
+
+impl fmt::Display for FileFormat {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// The tensors of one file, in the file's own order: NPZ archive order, safetensors data-offset
+/// order (the order a model's layers were usually saved in).
+#[derive(Clone, Debug, PartialEq)]
+pub struct TensorFile {
+    pub format: FileFormat,
+    pub tensors: Vec<Tensor>,
+}
+
+impl TensorFile {
+    /// The tensor of that name, if the file has one.
+    pub fn get(&self, name: &str) -> Option<&Tensor> {
+        self.tensors.iter().find(|t| t.name == name)
+    }
+}
+
+/// Why a tensor file could not be read or written. Every variant carries the path and, where one
+/// applies, the NPZ member or tensor and the byte offset (within the member for NPZ), so the CLI can
+/// print it as it stands.
+#[derive(Debug, thiserror::Error)]
+pub enum TensorFileError {
+    #[error("{}: cannot {action} the file: {source}", .path.display())]
+    Io {
+        path: PathBuf,
+        action: &'static str,
+        #[source]
+        source: std::io::Error,
+    },
+
+    #[error(
+        "{}: unknown tensor file extension{}; plumb reads and writes .npy, .npz and .safetensors{}",
+        .path.display(), ext_note(.path), content_note(*.content)
+    )]
+    UnknownExtension {
+        path: PathBuf,
+        /// What the content looks like, when its magic bytes say so.
+        content: Option<FileFormat>,
+    },
+
+    #[error(
+        "{}: the name says {expected} but the content is {}; rename the file to .{}",
+        .path.display(), content_description(*.found), extension(*.found)
+    )]
+    WrongContent {
+        path: PathBuf,
+        expected: FileFormat,
+        found: FileFormat,
+    },
+
+    #[error(
+        "{}: not {} file: it starts with {found} instead of {expected}; the file is damaged or of \
+         another kind — write it again with {}",
+        place(.path, .member, Some(0)), article(*.format), writer(*.format)
+    )]
+    BadMagic {
+        path: PathBuf,
+        member: Option<String>,
+        format: FileFormat,
+        expected: &'static str,
+        /// The first bytes found, already rendered for the message.
+        found: String,
+    },
+
+    #[error(
+        "{}: {problem}; the NPY header is damaged — write the file again with np.save",
+        place(.path, .member, Some(*.offset))
+    )]
+    BadHeader {
+        path: PathBuf,
+        member: Option<String>,
+        offset: u64,
+        problem: String,
+    },
+
+    #[error(
+        "{}: tensor `{tensor}` is stored as {dtype}, which plumb does not read; store it as \
+         float16/32/64, an integer type or bool (e.g. arr.astype(np.float64))",
+        place(.path, .member, Some(*.offset))
+    )]
+    UnsupportedDType {
+        path: PathBuf,
+        member: Option<String>,
+        tensor: String,
+        offset: u64,
+        /// The type as the file spells it (`'<c16'`, `'|O'`, `C64`, …) with a gloss.
+        dtype: String,
+    },
+
+    #[error(
+        "{}: the header declares shape {} of {dtype}, more bytes than any file can hold; the header \
+         is damaged — write the file again",
+        place(.path, .member, Some(*.offset)), shape_text(.shape)
+    )]
+    SizeOverflow {
+        path: PathBuf,
+        member: Option<String>,
+        tensor: String,
+        offset: u64,
+        shape: Box<[usize]>,
+        dtype: DType,
+    },
+
+    #[error(
+        "{}: the header declares shape {} of {dtype} ({} bytes) but only {available} bytes \
+         follow; the file is truncated — write it again",
+        place(.path, .member, Some(*.offset)), shape_text(.shape), byte_count(.shape, *.dtype)
+    )]
+    Truncated {
+        path: PathBuf,
+        member: Option<String>,
+        tensor: String,
+        /// Where the data starts.
+        offset: u64,
+        shape: Box<[usize]>,
+        dtype: DType,
+        /// Bytes present after the header (the bytes needed follow from shape and dtype).
+        available: u64,
+    },
+
+    #[error(
+        "{}: the header declares shape {} of {dtype} ({} bytes) but {available} bytes \
+         follow; the shape in the header does not match the data — write the file again",
+        place(.path, .member, Some(*.offset)), shape_text(.shape), byte_count(.shape, *.dtype)
+    )]
+    TrailingBytes {
+        path: PathBuf,
+        member: Option<String>,
+        tensor: String,
+        offset: u64,
+        shape: Box<[usize]>,
+        dtype: DType,
+        /// Bytes present after the header (the bytes needed follow from shape and dtype).
+        available: u64,
+    },
+
+    #[error(
+        "{}: not a readable zip archive: {source}; an NPZ file is a zip of .npy members — write \
+         it again with np.savez or np.savez_compressed",
+        place(.path, .member, None)
+    )]
+    Zip {
+        path: PathBuf,
+        member: Option<String>,
+        #[source]
+        source: zip::result::ZipError,
+    },
+
+    #[error("{}: member `{member}`: {problem}", .path.display())]
+    BadMember {
+        path: PathBuf,
+        member: String,
+        /// What is wrong and how to fix it.
+        problem: String,
+    },
+
+    #[error(
+        "{}: two or more members have the same name, so which array is meant is ambiguous; write \
+         the archive again with np.savez",
+        .path.display()
+    )]
+    DuplicateMembers { path: PathBuf },
+
+    #[error(
+        "{}: not a valid safetensors file: {source} ({hint}); write it again with safetensors' \
+         save_file",
+        .path.display()
+    )]
+    Safetensors {
+        path: PathBuf,
+        /// What the library's complaint most likely means.
+        hint: &'static str,
+        #[source]
+        source: safetensors::SafeTensorError,
+    },
+
+    #[error(
+        "{}: cannot write {dtype}: plumb writes float32 or float64 tensor files",
+        .path.display()
+    )]
+    WriteDType { path: PathBuf, dtype: DType },
+
+    #[error("{}: cannot write tensor `{tensor}`: {problem}", .path.display())]
+    BadTensor {
+        path: PathBuf,
+        tensor: String,
+        problem: String,
+    },
+}
+
+impl TensorFileError {
+    /// The file the error is about.
+    pub fn path(&self) -> &Path {
+        match self {
+            TensorFileError::Io { path, .. }
+            | TensorFileError::UnknownExtension { path, .. }
+            | TensorFileError::WrongContent { path, .. }
+            | TensorFileError::BadMagic { path, .. }
+            | TensorFileError::BadHeader { path, .. }
+            | TensorFileError::UnsupportedDType { path, .. }
+            | TensorFileError::SizeOverflow { path, .. }
+            | TensorFileError::Truncated { path, .. }
+            | TensorFileError::TrailingBytes { path, .. }
+            | TensorFileError::Zip { path, .. }
+            | TensorFileError::BadMember { path, .. }
+            | TensorFileError::DuplicateMembers { path }
+            | TensorFileError::Safetensors { path, .. }
+            | TensorFileError::WriteDType { path, .. }
+            | TensorFileError::BadTensor { path, .. } => path,
+        }
+    }
+}
+
+/// "weights.npz: member `layer1.npy`, byte 10" — the prefix every located message starts with.
+fn place(path: &Path, member: &Option<String>, offset: Option<u64>) -> String {
+    let mut text = path.display().to_string();
+    if let Some(member) = member {
+        text.push_str(&format!(": member `{member}`"));
+    }
+    if let Some(offset) = offset {
+        text.push_str(if member.is_some() { ", " } else { ": " });
+        text.push_str(&format!("byte {offset}"));
+    }
+    text
+}
+
+/// The bytes a shape of a dtype needs (only called for shapes already checked not to overflow).
+fn byte_count(shape: &[usize], dtype: DType) -> u128 {
+    shape.iter().fold(dtype.size() as u128, |acc, &d| {
+        acc.saturating_mul(d as u128)
+    })
+}
+
+/// A shape as Python prints a tuple: `(3, 4)`, `(3,)`, `()`.
+pub(crate) fn shape_text(shape: &[usize]) -> String {
+    match shape {
+        [] => "()".to_string(),
+        [n] => format!("({n},)"),
+        _ => {
+            let dims: Vec<String> = shape.iter().map(usize::to_string).collect();
+            format!("({})", dims.join(", "))
+        }
+    }
+}
+
+fn ext_note(path: &Path) -> String {
+    match path.extension() {
+        Some(ext) => format!(" `.{}`", ext.to_string_lossy()),
+        None => " (none)".to_string(),
+    }
+}
+
+fn content_note(content: Option<FileFormat>) -> String {
+    match content {
+        Some(format) => format!(
+            "; the content looks like {} — rename the file to .{}",
+            content_description(format),
+            extension(format)
+        ),
+        None => String::new(),
+    }
+}
+
+fn content_description(format: FileFormat) -> &'static str {
+    match format {
+        FileFormat::Npy => "a single NPY array",
+        FileFormat::Npz => "a zip archive (an NPZ file)",
+        FileFormat::Safetensors => "a safetensors file",
+    }
+}
+
+fn extension(format: FileFormat) -> &'static str {
+    match format {
+        FileFormat::Npy => "npy",
+        FileFormat::Npz => "npz",
+        FileFormat::Safetensors => "safetensors",
+    }
+}
+
+fn article(format: FileFormat) -> &'static str {
+    match format {
+        FileFormat::Npy => "an NPY",
+        FileFormat::Npz => "an NPZ",
+        FileFormat::Safetensors => "a safetensors",
+    }
+}
+
+fn writer(format: FileFormat) -> &'static str {
+    match format {
+        FileFormat::Npy => "np.save",
+        FileFormat::Npz => "np.savez",
+        FileFormat::Safetensors => "safetensors' save_file",
+    }
+}
+
+/// Read every tensor of a `.npy`, `.npz` or `.safetensors` file (chosen by extension). A single
+/// `.npy` holds one tensor, named after the file stem.
+pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
+    let format = FileFormat::from_path(path);
+    // Reading the whole file bounds every later allocation by what is really there.
+    let bytes = std::fs::read(path).map_err(|source| TensorFileError::Io {
+        path: path.to_path_buf(),
+        action: "read",
+        source,
+    })?;
+    let content = FileFormat::sniff(&bytes);
+    let Some(format) = format else {
+        return Err(TensorFileError::UnknownExtension {
+            path: path.to_path_buf(),
+            content,
+        });
+    };
+    if let Some(found) = content
+        && found != format
+    {
+        return Err(TensorFileError::WrongContent {
+            path: path.to_path_buf(),
+            expected: format,
+            found,
+        });
+    }
+    let tensors = match format {
+        FileFormat::Npy => {
+            let name = path
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            vec![npy::read(path, None, &name, &bytes)?]
+        }
+        FileFormat::Npz => npz::read(path, &bytes)?,
+        FileFormat::Safetensors => safetensors_file::read(path, &bytes)?,
+    };
+    Ok(TensorFile { format, tensors })
+}
+
+/// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a
+/// half-written file. A `.npy` takes exactly one tensor (its name is not stored).
+pub fn write_tensors(
+    path: &Path,
+    format: FileFormat,
+    tensors: &[Tensor],
+    dtype: DType,
+) -> Result<(), TensorFileError> {
+    if !matches!(dtype, DType::F32 | DType::F64) {
+        return Err(TensorFileError::WriteDType {
+            path: path.to_path_buf(),
+            dtype,
+        });
+    }
+    check_for_writing(path, tensors)?;
+    let bytes = match format {
+        FileFormat::Npy => match tensors {
+            [tensor] => npy::write(tensor, dtype),
+            _ => {
+                return Err(TensorFileError::BadTensor {
+                    path: path.to_path_buf(),
+                    tensor: tensors.first().map(|t| t.name.clone()).unwrap_or_default(),
+                    problem: format!(
+                        "an NPY file holds exactly one tensor, and {} were given; write an .npz \
+                         or .safetensors file instead",
+                        tensors.len()
+                    ),
+                });
+            }
+        },
+        FileFormat::Npz => npz::write(path, tensors, dtype)?,
+        FileFormat::Safetensors => safetensors_file::write(path, tensors, dtype)?,
+    };
+    crate::write_atomically(path, &bytes).map_err(|source| TensorFileError::Io {
+        path: path.to_path_buf(),
+        action: "write",
+        source,
+    })
+}
+
+/// Refuse tensors whose data does not fill their shape, and repeated names, before any bytes are
+/// produced: either would make a file that reads back as something else.
+fn check_for_writing(path: &Path, tensors: &[Tensor]) -> Result<(), TensorFileError> {
+    let mut seen = std::collections::HashSet::new();
+    for tensor in tensors {
+        let elements = tensor
+            .shape
+            .iter()
+            .try_fold(1usize, |acc, &d| acc.checked_mul(d));
+        if elements != Some(tensor.data.len()) {
+            return Err(TensorFileError::BadTensor {
+                path: path.to_path_buf(),
+                tensor: tensor.name.clone(),
+                problem: format!(
+                    "its shape {} does not match its {} values",
+                    shape_text(&tensor.shape),
+                    tensor.data.len()
+                ),
+            });
+        }
+        if !seen.insert(tensor.name.as_str()) {
+            return Err(TensorFileError::BadTensor {
+                path: path.to_path_buf(),
+                tensor: tensor.name.clone(),
+                problem: "the name is given twice; tensor names in a file must be unique".into(),
+            });
+        }
+    }
+    Ok(())
+}
