@@ -1,0 +1,25 @@
+//! The findings model every command reports through, and the renderers that turn a report into a
+//! terminal table, Markdown or JSON.
+//!
+//! A command builds two things from its result: a typed, serialisable report (the JSON, whose schema
+//! is documented in `docs/json.md`) and a [`Document`] — headings, text, tables and findings — for the
+//! human formats. Renderers write to any `impl Write`, so adding one touches no command.
+//!
+//! ```
+//! use plumb_report::{Block, Document, Finding, Severity, Table, render_markdown};
+//!
+//! let mut doc = Document::new("plumb shapes");
+//! doc.push(Block::Table(Table::new(["tensor", "shape"]).row(["layer1", "(5, 5)"])));
+//! doc.push(Block::Findings(vec![Finding::new("tensor-missing", Severity::Error, "layer2 is missing")]));
+//! let mut out = Vec::new();
+//! render_markdown(&doc, &mut out).unwrap();
+//! assert!(String::from_utf8(out).unwrap().contains("| layer1 | (5, 5) |"));
+//! ```
+
+mod document;
+mod finding;
+mod render;
+
+pub use document::{Block, Cell, Document, Table, Tone};
+pub use finding::{Finding, Severity, Verdict};
+pub use render::{ColorChoice, Format, render_json, render_markdown, render_table, use_color};
