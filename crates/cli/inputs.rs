@@ -1,0 +1,239 @@
+//! Loading what a command runs on: the description, the weights (a file, or drawn from a seed) and
+//! the data (a file, or a seeded synthetic batch), with errors that say which file and how to fix it.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use plumb_audit::audit_shapes;
+use plumb_engine::{Batch, Init, Rng, Weights};
+use plumb_formats::{
+    DType, Description, FileFormat, TensorFile, assemble, read_data, read_tensors,
+};
+use plumb_report::{Severity, Verdict};
+use serde::Serialize;
+
+use crate::args::{InitArg, Inputs};
+
+/// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo.
+const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
+
+/// Where the weights came from.
+#[derive(Clone, Debug, Serialize)]
+#[serde(tag = "source", rename_all = "kebab-case")]
+pub enum WeightsSource {
+    File {
+        path: PathBuf,
+        format: &'static str,
+        dtype: &'static str,
+    },
+    Init {
+        scheme: &'static str,
+        seed: u64,
+    },
+}
+
+/// Where the data came from.
+#[derive(Clone, Debug, Serialize)]
+#[serde(tag = "source", rename_all = "kebab-case")]
+pub enum DataSource {
+    File { path: PathBuf, samples: usize },
+    Synthetic { samples: usize, seed: u64 },
+}
+
+impl DataSource {
+    pub fn describe(&self) -> String {
+        match self {
+            DataSource::File { path, samples } => format!("{} ({samples} samples)", path.display()),
+            DataSource::Synthetic { samples, seed } => {
+                format!("synthetic batch of {samples} samples (seed {seed}; no --data given)")
+            }
+        }
+    }
+}
+
+impl WeightsSource {
+    pub fn describe(&self) -> String {
+        match self {
+            WeightsSource::File {
+                path,
+                format,
+                dtype,
+            } => {
+                format!("{} ({format}, {dtype})", path.display())
+            }
+            WeightsSource::Init { scheme, seed } => {
+                format!("drawn {scheme} from seed {seed} (no --weights given)")
+            }
+        }
+    }
+
+    /// The element type a gradient of these weights should be written in by default.
+    pub fn dtype(&self) -> DType {
+        match self {
+            WeightsSource::File { dtype, .. } if *dtype != "float64" => DType::F32,
+            _ => DType::F64,
+        }
+    }
+}
+
+/// Everything a command that runs the engine needs.
+pub struct Loaded {
+    pub desc: Description,
+    pub weights: Weights<f64>,
+    pub weights_source: WeightsSource,
+    pub batch: Batch,
+    pub data_source: DataSource,
+}
+
+pub fn init_scheme(arg: InitArg) -> Init {
+    match arg {
+        InitArg::GlorotUniform => Init::GlorotUniform,
+        InitArg::GlorotNormal => Init::GlorotNormal,
+        InitArg::HeUniform => Init::HeUniform,
+        InitArg::HeNormal => Init::HeNormal,
+        InitArg::LecunNormal => Init::LecunNormal,
+    }
+}
+
+pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
+    let desc = Description::read(&inputs.net)?;
+    let (weights, weights_source) = match &inputs.weights {
+        Some(path) => {
+            let file = read_tensors(path)?;
+            let weights = weights_from_file(&desc, &file, path)?;
+            let dtype = widest_float(&file);
+            (
+                weights,
+                WeightsSource::File {
+                    path: path.clone(),
+                    format: file.format.name(),
+                    dtype,
+                },
+            )
+        }
+        None => {
+            let scheme = init_scheme(inputs.init);
+            let w = scheme.weights(&desc.network, &mut Rng::new(seed));
+            (
+                w,
+                WeightsSource::Init {
+                    scheme: scheme.name(),
+                    seed,
+                },
+            )
+        }
+    };
+    let net = &desc.network;
+    let (batch, data_source) = match &inputs.data {
+        Some(path) => {
+            let batch = read_data(path, net.inputs(), net.outputs())?;
+            let samples = batch.len();
+            (
+                batch,
+                DataSource::File {
+                    path: path.clone(),
+                    samples,
+                },
+            )
+        }
+        None => {
+            let m = inputs.batch;
+            if m == 0 {
+                bail!("--batch is 0: a synthetic batch needs at least one sample");
+            }
+            let values = m.checked_mul(net.inputs() + net.outputs());
+            if values.is_none_or(|v| v > MAX_SYNTHETIC_VALUES) {
+                bail!(
+                    "--batch {m} would draw more than {MAX_SYNTHETIC_VALUES} values for this network; use a smaller batch or give --data"
+                );
+            }
+            (
+                Batch::synthetic(net, m, seed),
+                DataSource::Synthetic { samples: m, seed },
+            )
+        }
+    };
+    Ok(Loaded {
+        desc,
+        weights,
+        weights_source,
+        batch,
+        data_source,
+    })
+}
+
+/// The weights of a file, after the dimension audit has found nothing wrong with it.
+fn weights_from_file(desc: &Description, file: &TensorFile, path: &Path) -> Result<Weights<f64>> {
+    let audit = audit_shapes(desc, Some(file));
+    if audit.verdict == Verdict::Fail {
+        let problems: Vec<String> = audit
+            .findings
+            .iter()
+            .filter(|f| f.severity == Severity::Error)
+            .take(4)
+            .map(|f| match &f.tensor {
+                Some(t) => format!("  - {t}: {} ({})", f.message, f.code),
+                None => format!("  - {} ({})", f.message, f.code),
+            })
+            .collect();
+        bail!(
+            "{}: the weights do not fit {}:\n{}\nrun `plumb shapes {} --weights {}` for the full dimension audit",
+            path.display(),
+            desc.path.display(),
+            problems.join("\n"),
+            desc.path.display(),
+            path.display()
+        );
+    }
+    Ok(assemble(desc, file, path)?)
+}
+
+/// The widest floating-point type among a file's tensors (float64 if any, else the narrower).
+fn widest_float(file: &TensorFile) -> &'static str {
+    let rank = |d: DType| match d {
+        DType::F64 => 3,
+        DType::F32 => 2,
+        DType::F16 | DType::BF16 => 1,
+        _ => 0,
+    };
+    file.tensors
+        .iter()
+        .map(|t| t.dtype)
+        .max_by_key(|&d| rank(d))
+        .map_or("float64", |d| d.name())
+}
+
+/// The format an output path asks for by its extension.
+pub fn output_format(path: &Path) -> Result<FileFormat> {
+    FileFormat::from_path(path).with_context(|| {
+        format!(
+            "{}: unknown extension; write the gradient to a .npz, .safetensors or .npy file",
+            path.display()
+        )
+    })
+}
+
+/// Refuses to replace an existing file unless asked, and never replaces an input.
+pub fn check_output(path: &Path, force: bool, inputs: &[&Path]) -> Result<()> {
+    let same = |a: &Path, b: &Path| match (a.canonicalize(), b.canonicalize()) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => false,
+    };
+    if let Some(i) = inputs.iter().find(|i| same(path, i)) {
+        bail!(
+            "{}: this is an input of the run ({}); write the output elsewhere",
+            path.display(),
+            i.display()
+        );
+    }
+    if path.exists() && !force {
+        bail!(
+            "{}: the file exists; pass --force to replace it, or choose another name",
+            path.display()
+        );
+    }
+    if path.is_dir() {
+        bail!("{}: is a directory; give a file name", path.display());
+    }
+    Ok(())
+}

@@ -1,0 +1,34 @@
+//! The `plumb` command: parses the command line, runs the command, renders its report and sets the
+//! exit code (0 everything checked holds, 1 a finding of severity error, 2 unusable input).
+
+mod args;
+mod commands;
+mod demo;
+mod inputs;
+mod output;
+
+use std::process::ExitCode;
+
+use clap::Parser;
+use plumb_report::Verdict;
+
+use args::{Cli, Command};
+use output::Settings;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let settings = Settings::from_args(&cli.common);
+    let result = match &cli.command {
+        Command::Demo(a) => demo::run(a, &settings),
+        Command::Shapes(a) => commands::shapes::run(a, &settings),
+        Command::Grad(a) => commands::grad::run(a, &settings),
+    };
+    match result {
+        Ok(Verdict::Pass) => ExitCode::SUCCESS,
+        Ok(Verdict::Fail) => ExitCode::from(1),
+        Err(e) => {
+            eprintln!("plumb: error: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}

@@ -1,0 +1,220 @@
+//! The JSON reports, pinned: each is deserialised into structs that reject unknown fields, so any
+//! change to the documented schema (docs/json.md) fails here first.
+
+mod util;
+
+use serde::Deserialize;
+use util::plumb;
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Finding {
+    code: String,
+    severity: String,
+    tensor: Option<String>,
+    layer: Option<usize>,
+    message: String,
+    #[serde(default)]
+    figures: serde_json::Map<String, serde_json::Value>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct TensorShape {
+    name: String,
+    role: String,
+    expected: Vec<usize>,
+    found: Option<Vec<usize>>,
+    dtype: Option<String>,
+    status: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct LayerShapes {
+    layer: usize,
+    inputs: usize,
+    units: usize,
+    activation: String,
+    parameters: usize,
+    tensors: Vec<TensorShape>,
+    verdict: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Stray {
+    name: String,
+    shape: Vec<usize>,
+    dtype: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Shapes {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    description: String,
+    weights: Option<String>,
+    layout: String,
+    detected_layout: Option<String>,
+    layers: Vec<LayerShapes>,
+    unexpected: Vec<Stray>,
+    total_parameters: usize,
+    findings: Vec<Finding>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct TensorGradient {
+    name: String,
+    layer: usize,
+    shape: Vec<usize>,
+    norm: Option<f64>,
+    max_abs: Option<f64>,
+    max_at: Vec<usize>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields, tag = "source", rename_all = "kebab-case")]
+#[allow(dead_code)]
+enum WeightsSource {
+    File {
+        path: String,
+        format: String,
+        dtype: String,
+    },
+    Init {
+        scheme: String,
+        seed: u64,
+    },
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields, tag = "source", rename_all = "kebab-case")]
+#[allow(dead_code)]
+enum DataSource {
+    File { path: String, samples: usize },
+    Synthetic { samples: usize, seed: u64 },
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Grad {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    description: String,
+    weights: WeightsSource,
+    data: DataSource,
+    samples: usize,
+    loss: Option<f64>,
+    data_loss: Option<f64>,
+    l2_term: Option<f64>,
+    tensors: Vec<TensorGradient>,
+    output: Option<String>,
+    findings: Vec<Finding>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Demo {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    scenario: String,
+    seed: u64,
+    shapes: Shapes,
+    shapes_planted: Shapes,
+    grad: Grad,
+    written: Vec<String>,
+}
+
+fn first_key(stdout: &str) -> &str {
+    stdout
+        .trim_start()
+        .trim_start_matches('{')
+        .trim_start()
+        .split(':')
+        .next()
+        .unwrap()
+}
+
+#[test]
+fn shapes_report_schema() {
+    for (net, w, verdict) in [
+        ("nets/small.toml", "weights/small-augmented.npz", "pass"),
+        (
+            "nets/small.toml",
+            "weights/mistakes/tensor-unexpected.npz",
+            "fail",
+        ),
+        (
+            "nets/small-split.toml",
+            "weights/mistakes/split-bias-wrong-length.npz",
+            "fail",
+        ),
+    ] {
+        let run = plumb(&["shapes", net, "-w", w, "--format", "json"]);
+        assert_eq!(first_key(&run.stdout), "\"verdict\"");
+        let r: Shapes = serde_json::from_str(&run.stdout).unwrap();
+        assert_eq!(r.verdict, verdict);
+        assert_eq!((r.schema_version, r.command.as_str()), (1, "shapes"));
+        assert!(
+            r.findings
+                .iter()
+                .all(|f| ["error", "warning", "note"].contains(&f.severity.as_str()))
+        );
+    }
+    let r: Shapes =
+        serde_json::from_str(&plumb(&["shapes", "nets/small.toml", "--format", "json"]).stdout)
+            .unwrap();
+    assert!(r.weights.is_none());
+    assert!(r.layers.iter().all(|l| l.verdict == "unchecked"));
+}
+
+#[test]
+fn grad_report_schema() {
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented.npz",
+        "-d",
+        "data/small.csv",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(first_key(&run.stdout), "\"verdict\"");
+    let r: Grad = serde_json::from_str(&run.stdout).unwrap();
+    assert_eq!(
+        (r.schema_version, r.command.as_str(), r.verdict.as_str()),
+        (1, "grad", "pass")
+    );
+    assert!(matches!(r.weights, WeightsSource::File { .. }));
+    assert!(matches!(r.data, DataSource::File { samples: 8, .. }));
+    let r: Grad =
+        serde_json::from_str(&plumb(&["grad", "nets/small.toml", "--format", "json"]).stdout)
+            .unwrap();
+    assert!(matches!(r.weights, WeightsSource::Init { .. }));
+}
+
+#[test]
+fn demo_report_schema() {
+    let run = plumb(&["demo", "--format", "json"]);
+    run.assert_code(0);
+    let r: Demo = serde_json::from_str(&run.stdout).unwrap();
+    assert_eq!(r.verdict, "pass");
+    assert_eq!(r.shapes.verdict, "pass");
+    assert_eq!(r.shapes_planted.verdict, "fail");
+    assert!(r.scenario.contains("invented"));
+}

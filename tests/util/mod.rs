@@ -1,0 +1,70 @@
+//! Running the built `plumb` binary on the files under fixtures/.
+
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+/// The repository's fixtures directory.
+pub fn fixture(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures")
+        .join(rel)
+}
+
+/// A fresh empty directory under the target directory, unique per call.
+pub fn scratch(name: &str) -> PathBuf {
+    static N: AtomicUsize = AtomicUsize::new(0);
+    let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join(format!(
+        "{name}-{}-{}",
+        std::process::id(),
+        N.fetch_add(1, Ordering::SeqCst)
+    ));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// The outcome of one run.
+pub struct Run {
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+impl Run {
+    pub fn assert_code(&self, code: i32) -> &Self {
+        assert_eq!(
+            self.code, code,
+            "exit code {} (wanted {code})\n--- stdout\n{}\n--- stderr\n{}",
+            self.code, self.stdout, self.stderr
+        );
+        self
+    }
+
+    pub fn json(&self) -> serde_json::Value {
+        serde_json::from_str(&self.stdout)
+            .unwrap_or_else(|e| panic!("stdout is not JSON ({e}):\n{}", self.stdout))
+    }
+}
+
+/// Runs plumb with the arguments, colour off and NO_COLOR set, in the given directory.
+pub fn plumb_in(dir: &Path, args: &[&str]) -> Run {
+    let out: Output = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .current_dir(dir)
+        .env("NO_COLOR", "1")
+        .output()
+        .expect("run plumb");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+/// Runs plumb from the fixtures directory, so relative fixture paths work.
+pub fn plumb(args: &[&str]) -> Run {
+    plumb_in(&fixture(""), args)
+}
