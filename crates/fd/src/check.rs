@@ -1,0 +1,606 @@
+//! The finite-difference check of a gradient, coordinate by coordinate and along random directions.
+//!
+//! Verdict per coordinate: `mismatch` only when |a − n| exceeds the error the method can explain
+//! (its bound) *and* the relative error |a − n| / max(|a|, |n|, floor) exceeds the precision's
+//! tolerance. The floor is 10% of the largest |a| in the same layer (of ‖g‖ over the direction's
+//! span, for a direction): entries near zero are judged against their layer's scale rather than
+//! their own, since round-off leaves every entry an absolute error of about the same size; `unreliable` when a ReLU-like unit changes side inside the stencil even after retrying
+//! with steps 10, 100 and 1000 times smaller; `match` otherwise.
+//!
+//! Tolerances [practice, no formal source]: relative errors above 1e-4 are suspicious and above
+//! 1e-2 almost surely wrong in f64, below 1e-7 good for smooth networks. plumb calls a coordinate
+//! wrong above 1e-6 in f64 and 1e-3 in f32 — but only where the error bound is exceeded too.
+
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use ndarray::Array2;
+use num_complex::Complex;
+use plumb_engine::{Batch, Coord, Network, Rng, Scalar, Weights};
+use rayon::prelude::*;
+use thiserror::Error;
+
+use crate::evaluate::Base;
+use crate::method::{Estimate, complex_estimate};
+use crate::{Method, Sample, coverage};
+
+/// The arithmetic the check runs the engine in.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Precision {
+    F64,
+    F32,
+}
+
+impl Precision {
+    pub fn name(&self) -> &'static str {
+        match self {
+            Precision::F64 => "f64",
+            Precision::F32 => "f32",
+        }
+    }
+
+    pub fn epsilon(&self) -> f64 {
+        match self {
+            Precision::F64 => f64::EPSILON,
+            Precision::F32 => f32::EPSILON as f64,
+        }
+    }
+
+    /// The relative error above which a coordinate can be called wrong (see the module doc).
+    pub fn tolerance(&self) -> f64 {
+        match self {
+            Precision::F64 => 1e-6,
+            Precision::F32 => 1e-3,
+        }
+    }
+}
+
+/// What to check and how.
+#[derive(Clone, Debug)]
+pub struct CheckConfig {
+    pub method: Method,
+    /// A fixed step for every coordinate instead of the scaled default.
+    pub step: Option<f64>,
+    pub precision: Precision,
+    /// `None`: [`Sample::default_for`] the network.
+    pub sample: Option<Sample>,
+    /// Random directions per part (and globally); `None`: [`DEFAULT_DIRECTIONS`].
+    pub directions: Option<usize>,
+    pub seed: u64,
+    /// Overrides the precision's relative tolerance.
+    pub tolerance: Option<f64>,
+}
+
+impl CheckConfig {
+    pub fn new(method: Method, precision: Precision) -> CheckConfig {
+        CheckConfig {
+            method,
+            step: None,
+            precision,
+            sample: None,
+            directions: None,
+            seed: 0,
+            tolerance: None,
+        }
+    }
+}
+
+/// One evaluation of the loss is taken to carry round-off of this many ε of |J|. The measured
+/// difference between two step sizes carries the actual round-off as well; this term is the floor
+/// under it for when the two happen to agree.
+const NOISE: f64 = 4.0;
+
+/// The relative error's floor, as a fraction of the layer's largest |entry|.
+pub const FLOOR: f64 = 0.1;
+
+/// Directions checked per part and globally when not asked otherwise.
+pub const DEFAULT_DIRECTIONS: usize = 4;
+
+/// Why a check cannot run.
+#[derive(Clone, Debug, Error, PartialEq)]
+pub enum CheckError {
+    #[error("the step {0} is not usable: give a finite step > 0")]
+    BadStep(f64),
+    #[error("{0}")]
+    BadSample(String),
+    #[error("the batch does not fit the network: {0}")]
+    BadBatch(String),
+    #[error("the gradient to check does not have the network's shapes")]
+    BadGradient,
+}
+
+/// The verdict on one coordinate or direction.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum Status {
+    Match,
+    Unreliable,
+    Mismatch,
+}
+
+impl Status {
+    pub fn name(&self) -> &'static str {
+        match self {
+            Status::Match => "match",
+            Status::Unreliable => "unreliable",
+            Status::Mismatch => "mismatch",
+        }
+    }
+}
+
+/// One coordinate's check.
+#[derive(Clone, Debug, PartialEq)]
+pub struct CoordCheck {
+    pub coord: Coord,
+    pub analytic: f64,
+    pub numeric: f64,
+    pub abs_error: f64,
+    pub rel_error: f64,
+    /// The error the method can explain here (absolute).
+    pub bound: f64,
+    pub step: f64,
+    pub status: Status,
+    /// Whether a smaller step was needed to step off a kink.
+    pub retried: bool,
+}
+
+/// What a direction spans.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Scope {
+    /// Every parameter of the network.
+    Global,
+    /// One layer's bias weights (`bias`) or its other weights.
+    Part { layer: usize, bias: bool },
+}
+
+/// One random-direction check: J(θ ± h·v) against g·v.
+#[derive(Clone, Debug, PartialEq)]
+pub struct DirectionCheck {
+    pub scope: Scope,
+    pub analytic: f64,
+    pub numeric: f64,
+    pub abs_error: f64,
+    pub rel_error: f64,
+    pub bound: f64,
+    pub step: f64,
+    pub status: Status,
+}
+
+/// What a check covered.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Coverage {
+    pub sample: Sample,
+    /// Whether the sample was the default for the network's size.
+    pub default_sample: bool,
+    pub directions: usize,
+    pub parameters: usize,
+    pub checked: usize,
+}
+
+/// The result of a check.
+#[derive(Clone, Debug)]
+pub struct CheckResult {
+    pub method: Method,
+    pub precision: Precision,
+    /// J(θ) in the precision checked.
+    pub loss: f64,
+    pub coverage: Coverage,
+    /// The relative tolerance, and the floor of the relative error's denominator per layer.
+    pub tolerance: f64,
+    pub floors: Vec<f64>,
+    pub coords: Vec<CoordCheck>,
+    pub directions: Vec<DirectionCheck>,
+    /// The gradient checked (the engine's own unless one was given).
+    pub analytic: Weights<f64>,
+}
+
+/// Progress: called with (done, total) as coordinates finish, from any thread.
+pub type Progress<'a> = &'a (dyn Fn(usize, usize) + Sync);
+
+/// Checks the engine's own gradient of `net` at `weights` on `batch`.
+pub fn check(
+    net: &Network,
+    weights: &Weights<f64>,
+    batch: &Batch,
+    config: &CheckConfig,
+    progress: Progress<'_>,
+) -> Result<CheckResult, CheckError> {
+    net.check_batch(batch.x.view(), batch.y.view())
+        .map_err(CheckError::BadBatch)?;
+    let analytic = match config.precision {
+        Precision::F64 => net.gradient(weights, batch.x.view(), batch.y.view()).1,
+        Precision::F32 => {
+            let (x, y) = batch.cast::<f32>();
+            net.gradient(&weights.cast::<f32>(), x.view(), y.view())
+                .1
+                .map(|&v| v as f64)
+        }
+    };
+    check_gradient(net, weights, batch, &analytic, config, progress)
+}
+
+/// Checks a given gradient (the engine's, a corrupted copy, or an outside one) against finite
+/// differences of the reference loss.
+pub fn check_gradient(
+    net: &Network,
+    weights: &Weights<f64>,
+    batch: &Batch,
+    analytic: &Weights<f64>,
+    config: &CheckConfig,
+    progress: Progress<'_>,
+) -> Result<CheckResult, CheckError> {
+    net.check_batch(batch.x.view(), batch.y.view())
+        .map_err(CheckError::BadBatch)?;
+    if !net.fits(analytic) || !net.fits(weights) {
+        return Err(CheckError::BadGradient);
+    }
+    if let Some(h) = config.step.filter(|h| !(h.is_finite() && *h > 0.0)) {
+        return Err(CheckError::BadStep(h));
+    }
+    let default_sample = config.sample.is_none();
+    let sample = config.sample.unwrap_or_else(|| Sample::default_for(net));
+    let coords = coverage::select(net, sample, config.seed).map_err(CheckError::BadSample)?;
+    let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
+    let directions = directions(net, k, config.seed);
+    let eps = config.precision.epsilon();
+    let tolerance = config.tolerance.unwrap_or(config.precision.tolerance());
+    let scale = analytic
+        .layers()
+        .iter()
+        .flat_map(|l| l.iter())
+        .fold(0.0f64, |m, v| m.max(v.abs()));
+    let floors = analytic
+        .layers()
+        .iter()
+        .map(|l| FLOOR * l.iter().fold(0.0f64, |m, v| m.max(v.abs())))
+        .collect();
+    let judge = Judge {
+        eps,
+        tolerance,
+        floors,
+        scale,
+    };
+    let run = Run {
+        net,
+        weights,
+        batch,
+        analytic,
+        config,
+        judge: &judge,
+        progress,
+        done: AtomicUsize::new(0),
+        total: coords.len() + directions.len(),
+    };
+    let (loss, coord_checks, direction_checks) = match (config.method, config.precision) {
+        (Method::ComplexStep, Precision::F64) => run.complex::<Complex<f64>>(&coords, &directions),
+        (Method::ComplexStep, Precision::F32) => run.complex::<Complex<f32>>(&coords, &directions),
+        (_, Precision::F64) => run.real::<f64>(&coords, &directions),
+        (_, Precision::F32) => run.real::<f32>(&coords, &directions),
+    };
+    Ok(CheckResult {
+        method: config.method,
+        precision: config.precision,
+        loss,
+        coverage: Coverage {
+            sample,
+            default_sample,
+            directions: k,
+            parameters: net.parameters(),
+            checked: coord_checks.len(),
+        },
+        tolerance,
+        floors: judge.floors.clone(),
+        coords: coord_checks,
+        directions: direction_checks,
+        analytic: analytic.clone(),
+    })
+}
+
+/// A random unit direction per part and K global ones, drawn up front from the seed so that the
+/// result does not depend on the thread count.
+fn directions(net: &Network, k: usize, seed: u64) -> Vec<(Scope, Weights<f64>)> {
+    let mut rng = Rng::new(seed ^ 0xd1_7ec7);
+    let mut out = Vec::new();
+    let mut scopes = vec![Scope::Global];
+    for l in 0..net.layers().len() {
+        scopes.push(Scope::Part {
+            layer: l,
+            bias: false,
+        });
+        scopes.push(Scope::Part {
+            layer: l,
+            bias: true,
+        });
+    }
+    for scope in scopes {
+        for _ in 0..k {
+            let mut v = Weights::new(
+                net.layers()
+                    .iter()
+                    .enumerate()
+                    .map(|(l, spec)| {
+                        Array2::from_shape_fn(spec.shape(), |(_, c)| match scope {
+                            Scope::Global => rng.normal(),
+                            Scope::Part { layer, bias } if layer == l && bias == (c == 0) => {
+                                rng.normal()
+                            }
+                            Scope::Part { .. } => 0.0,
+                        })
+                    })
+                    .collect(),
+            );
+            let norm = v
+                .layers()
+                .iter()
+                .flat_map(|l| l.iter())
+                .map(|x| x * x)
+                .sum::<f64>()
+                .sqrt();
+            for l in v.layers_mut() {
+                l.mapv_inplace(|x| x / norm);
+            }
+            out.push((scope, v));
+        }
+    }
+    out
+}
+
+/// The verdict rule (module doc).
+struct Judge {
+    eps: f64,
+    tolerance: f64,
+    /// The relative error's floor per layer.
+    floors: Vec<f64>,
+    /// The largest |entry| of the gradient checked.
+    scale: f64,
+}
+
+impl Judge {
+    /// (abs error, rel error, bound, status) for an analytic value against an estimate.
+    fn judge(
+        &self,
+        a: f64,
+        n: f64,
+        floor: f64,
+        method_error: f64,
+        crossed: bool,
+    ) -> (f64, f64, f64, Status) {
+        let e = (a - n).abs();
+        // Allowance for the analytic value's own rounding: a few dozen ε of the values compared,
+        // and of the gradient's scale (entries that cancel to near zero keep that much error).
+        let bound = method_error + 64.0 * self.eps * (a.abs().max(n.abs()) + self.scale);
+        let den = a.abs().max(n.abs()).max(floor);
+        let rel = if den > 0.0 { e / den } else { 0.0 };
+        let status = if crossed {
+            Status::Unreliable
+        } else if (e > bound && rel > self.tolerance) || !n.is_finite() || !a.is_finite() {
+            Status::Mismatch
+        } else {
+            Status::Match
+        };
+        (e, rel, bound, status)
+    }
+}
+
+struct Run<'a> {
+    net: &'a Network,
+    weights: &'a Weights<f64>,
+    batch: &'a Batch,
+    analytic: &'a Weights<f64>,
+    config: &'a CheckConfig,
+    judge: &'a Judge,
+    progress: Progress<'a>,
+    done: AtomicUsize,
+    total: usize,
+}
+
+/// Kink retries: steps 10, 100 and 1000 times smaller.
+const RETRIES: [f64; 3] = [0.1, 0.01, 0.001];
+
+/// A complex number type the complex step can run in.
+trait ComplexScalar: Scalar {
+    /// i·h.
+    fn imaginary(h: f64) -> Self;
+    fn im(self) -> f64;
+}
+
+impl ComplexScalar for Complex<f64> {
+    fn imaginary(h: f64) -> Self {
+        Complex::new(0.0, h)
+    }
+    fn im(self) -> f64 {
+        self.im
+    }
+}
+
+impl ComplexScalar for Complex<f32> {
+    fn imaginary(h: f64) -> Self {
+        Complex::new(0.0, h as f32)
+    }
+    fn im(self) -> f64 {
+        self.im as f64
+    }
+}
+
+/// A step as the precision S stores it, so a quotient divides by the step actually taken.
+fn round_to<S: Scalar>(h: f64) -> f64 {
+    S::from_f64(h).re()
+}
+
+impl Run<'_> {
+    fn tick(&self) {
+        let d = self.done.fetch_add(1, Ordering::Relaxed) + 1;
+        (self.progress)(d, self.total);
+    }
+
+    /// Real methods in precision S.
+    fn real<S: Scalar>(
+        &self,
+        coords: &[Coord],
+        directions: &[(Scope, Weights<f64>)],
+    ) -> (f64, Vec<CoordCheck>, Vec<DirectionCheck>) {
+        let w: Weights<S> = self.weights.cast();
+        let (x, y) = self.batch.cast::<S>();
+        let base = Base::new(self.net, &w, x.view(), &y);
+        let j0 = base.loss().re();
+        let noise = NOISE * self.judge.eps * j0.abs();
+        let method = self.config.method;
+        let fixed = self.config.step;
+        let coord_checks = self.each_coord(coords, |c| {
+            let f = |d: f64| {
+                let (j, crossed) = base.perturbed(c, S::from_f64(d));
+                (j.re(), crossed)
+            };
+            let h0 =
+                fixed.unwrap_or_else(|| method.default_step(*self.weights.get(c), self.judge.eps));
+            let est = method.estimate(&f, j0, h0, noise, round_to::<S>);
+            if est.crossed && fixed.is_none() {
+                for r in RETRIES {
+                    let e = method.estimate(&f, j0, h0 * r, noise, round_to::<S>);
+                    if !e.crossed {
+                        return (e, true);
+                    }
+                }
+            }
+            (est, false)
+        });
+        let direction_checks = self.each_direction(directions, |scope, v| {
+            let vs: Weights<S> = v.cast();
+            let f = |t: f64| {
+                let (j, crossed) = base.along(&vs, S::from_f64(t));
+                (j.re(), crossed)
+            };
+            let h = fixed
+                .unwrap_or_else(|| method.default_step(self.scope_scale(scope), self.judge.eps));
+            method.estimate(&f, j0, h, noise, round_to::<S>)
+        });
+        (j0, coord_checks, direction_checks)
+    }
+
+    /// The complex step in the complex type C.
+    fn complex<C: ComplexScalar>(
+        &self,
+        coords: &[Coord],
+        directions: &[(Scope, Weights<f64>)],
+    ) -> (f64, Vec<CoordCheck>, Vec<DirectionCheck>) {
+        let w: Weights<C> = self.weights.cast();
+        let (x, y) = self.batch.cast::<C>();
+        let base = Base::new(self.net, &w, x.view(), &y);
+        let j0 = base.loss().re();
+        let eps = self.judge.eps;
+        let fixed = self.config.step;
+        let coord_checks = self.each_coord(coords, |c| {
+            let g = |h: f64| {
+                let (j, crossed) = base.perturbed(c, C::imaginary(h));
+                (j.im(), crossed)
+            };
+            let h = fixed
+                .unwrap_or_else(|| Method::ComplexStep.default_step(*self.weights.get(c), eps));
+            (complex_estimate(&g, h, eps), false)
+        });
+        let direction_checks = self.each_direction(directions, |scope, v| {
+            let vs: Weights<C> = v.cast();
+            let g = |h: f64| {
+                let (j, crossed) = base.along(&vs, C::imaginary(h));
+                (j.im(), crossed)
+            };
+            let h = fixed
+                .unwrap_or_else(|| Method::ComplexStep.default_step(self.scope_scale(scope), eps));
+            complex_estimate(&g, h, eps)
+        });
+        (j0, coord_checks, direction_checks)
+    }
+
+    /// Estimates every coordinate in parallel (order kept, so the result does not depend on the
+    /// number of threads) and judges it.
+    fn each_coord(
+        &self,
+        coords: &[Coord],
+        estimate: impl Fn(Coord) -> (Estimate, bool) + Sync,
+    ) -> Vec<CoordCheck> {
+        coords
+            .par_iter()
+            .map(|&c| {
+                let (est, retried) = estimate(c);
+                let a = *self.analytic.get(c);
+                let floor = self.judge.floors[c.layer];
+                let (abs_error, rel_error, bound, status) =
+                    self.judge
+                        .judge(a, est.value, floor, est.error, est.crossed);
+                self.tick();
+                CoordCheck {
+                    coord: c,
+                    analytic: a,
+                    numeric: est.value,
+                    abs_error,
+                    rel_error,
+                    bound,
+                    step: est.step,
+                    status,
+                    retried,
+                }
+            })
+            .collect()
+    }
+
+    fn each_direction(
+        &self,
+        directions: &[(Scope, Weights<f64>)],
+        estimate: impl Fn(Scope, &Weights<f64>) -> Estimate + Sync,
+    ) -> Vec<DirectionCheck> {
+        directions
+            .par_iter()
+            .map(|(scope, v)| {
+                let est = estimate(*scope, v);
+                let a = dot(self.analytic, v);
+                let floor = FLOOR * self.span_norm(*scope);
+                let (abs_error, rel_error, bound, status) =
+                    self.judge
+                        .judge(a, est.value, floor, est.error, est.crossed);
+                self.tick();
+                DirectionCheck {
+                    scope: *scope,
+                    analytic: a,
+                    numeric: est.value,
+                    abs_error,
+                    rel_error,
+                    bound,
+                    step: est.step,
+                    status,
+                }
+            })
+            .collect()
+    }
+
+    /// The largest |θ| a direction moves, for its step.
+    fn scope_scale(&self, scope: Scope) -> f64 {
+        fold_scope(self.weights, scope, |m, v| m.max(v.abs()))
+    }
+
+    /// ‖g‖ over a direction's span: the largest |g·v| a unit direction there can give.
+    fn span_norm(&self, scope: Scope) -> f64 {
+        fold_scope(self.analytic, scope, |m, v| m + v * v).sqrt()
+    }
+}
+
+fn fold_scope(w: &Weights<f64>, scope: Scope, f: impl Fn(f64, f64) -> f64) -> f64 {
+    let mut acc = 0.0f64;
+    for (l, m) in w.layers().iter().enumerate() {
+        for ((_, c), &v) in m.indexed_iter() {
+            let inside = match scope {
+                Scope::Global => true,
+                Scope::Part { layer, bias } => layer == l && bias == (c == 0),
+            };
+            if inside {
+                acc = f(acc, v);
+            }
+        }
+    }
+    acc
+}
+
+fn dot(g: &Weights<f64>, v: &Weights<f64>) -> f64 {
+    g.layers()
+        .iter()
+        .zip(v.layers())
+        .map(|(a, b)| a.iter().zip(b.iter()).map(|(x, y)| x * y).sum::<f64>())
+        .sum()
+}

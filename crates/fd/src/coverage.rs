@@ -1,0 +1,246 @@
+//! Which coordinates a check looks at: all, a seeded sample, or a sample per layer — stratified so
+//! that a small part such as a layer's bias weights is never left out.
+
+use std::fmt;
+
+use plumb_engine::{Coord, Network, Rng};
+
+/// `--sample`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Sample {
+    All,
+    /// N coordinates over the whole network, spread over the layers by size.
+    Total(usize),
+    /// N coordinates in every layer (all of a smaller layer).
+    PerLayer(usize),
+}
+
+/// Networks up to this many parameters are checked in full by default.
+pub const FULL_CHECK_LIMIT: usize = 20_000;
+/// The default sample per layer above that size.
+pub const DEFAULT_PER_LAYER: usize = 1_000;
+/// Every stratum (a layer's bias weights, or its other weights) gets at least this many
+/// coordinates, or all of them if it has fewer.
+const STRATUM_MINIMUM: usize = 10;
+
+impl Sample {
+    /// The default for a network: everything up to [`FULL_CHECK_LIMIT`] parameters, else
+    /// [`DEFAULT_PER_LAYER`] per layer.
+    pub fn default_for(net: &Network) -> Sample {
+        if net.parameters() <= FULL_CHECK_LIMIT {
+            Sample::All
+        } else {
+            Sample::PerLayer(DEFAULT_PER_LAYER)
+        }
+    }
+
+    /// Parses `all`, `N` or `per-layer:N`.
+    pub fn parse(text: &str) -> Result<Sample, String> {
+        let count = |s: &str| -> Result<usize, String> {
+            match s.trim().parse::<usize>() {
+                Ok(0) => Err("the sample size must be at least 1".into()),
+                Ok(n) => Ok(n),
+                Err(_) => Err(format!("`{s}` is not a whole number")),
+            }
+        };
+        match text.trim() {
+            "all" => Ok(Sample::All),
+            t => match t.strip_prefix("per-layer:") {
+                Some(n) => Ok(Sample::PerLayer(count(n)?)),
+                None => count(t).map(Sample::Total).map_err(|e| {
+                    format!("{e}; write `all`, a number of coordinates, or `per-layer:N`")
+                }),
+            },
+        }
+    }
+}
+
+impl fmt::Display for Sample {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Sample::All => f.write_str("all"),
+            Sample::Total(n) => write!(f, "{n}"),
+            Sample::PerLayer(n) => write!(f, "per-layer:{n}"),
+        }
+    }
+}
+
+/// The coordinates to check, in layer-major, row-major order. `Total(n)` with n above the number
+/// of parameters is an error the caller reports.
+pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, String> {
+    let mut rng = Rng::new(seed ^ 0xc0_0bd5);
+    let layers = net.layers();
+    let quotas: Vec<usize> = match sample {
+        Sample::All => layers.iter().map(|l| l.parameters()).collect(),
+        Sample::PerLayer(n) => layers.iter().map(|l| n.min(l.parameters())).collect(),
+        Sample::Total(n) => {
+            let total = net.parameters();
+            if n > total {
+                return Err(format!(
+                    "--sample {n} is more than the network's {total} parameters; use `all` or a smaller number"
+                ));
+            }
+            // Every layer gets its strata minimum; the rest is shared in proportion to what is
+            // left of each layer, by largest remainder, so the total is exactly n (or the minimums,
+            // when n is smaller than they add up to).
+            let mut q: Vec<usize> = layers
+                .iter()
+                .map(|l| l.parameters().min(2 * STRATUM_MINIMUM))
+                .collect();
+            let rest = n.saturating_sub(q.iter().sum());
+            let room: Vec<usize> = layers
+                .iter()
+                .zip(&q)
+                .map(|(l, &b)| l.parameters() - b)
+                .collect();
+            let total_room: usize = room.iter().sum();
+            if rest > 0 && total_room > 0 {
+                let mut shares: Vec<(usize, usize, usize)> = room
+                    .iter()
+                    .enumerate()
+                    .map(|(i, &r)| (i, rest * r / total_room, rest * r % total_room))
+                    .collect();
+                for &(i, share, _) in &shares {
+                    q[i] += share;
+                }
+                let mut left = rest - shares.iter().map(|s| s.1).sum::<usize>();
+                shares.sort_by_key(|&(i, _, rem)| (std::cmp::Reverse(rem), i));
+                for &(i, _, _) in &shares {
+                    if left == 0 {
+                        break;
+                    }
+                    if q[i] < layers[i].parameters() {
+                        q[i] += 1;
+                        left -= 1;
+                    }
+                }
+            }
+            q
+        }
+    };
+    let mut out = Vec::new();
+    for (l, (spec, &quota)) in layers.iter().zip(&quotas).enumerate() {
+        let (units, cols) = spec.shape();
+        let params = spec.parameters();
+        if quota >= params {
+            for row in 0..units {
+                for col in 0..cols {
+                    out.push(Coord { layer: l, row, col });
+                }
+            }
+            continue;
+        }
+        // Bias weights: their share of the quota, but at least the stratum minimum.
+        let bias = (quota * units)
+            .div_ceil(params)
+            .max(STRATUM_MINIMUM)
+            .min(units)
+            .min(quota);
+        let weights = quota - bias;
+        let mut chosen: Vec<Coord> = pick(units, &mut rng, bias)
+            .into_iter()
+            .map(|row| Coord {
+                layer: l,
+                row,
+                col: 0,
+            })
+            .collect();
+        let w_cols = cols - 1;
+        chosen.extend(
+            pick(units * w_cols, &mut rng, weights)
+                .into_iter()
+                .map(|k| Coord {
+                    layer: l,
+                    row: k / w_cols,
+                    col: 1 + k % w_cols,
+                }),
+        );
+        chosen.sort();
+        out.extend(chosen);
+    }
+    Ok(out)
+}
+
+/// k distinct indices of 0..n, seeded (partial Fisher–Yates over a sparse map, so picking a few
+/// coordinates of a huge layer costs no more than the few).
+fn pick(n: usize, rng: &mut Rng, k: usize) -> Vec<usize> {
+    use std::collections::HashMap;
+    let mut swapped: HashMap<usize, usize> = HashMap::new();
+    let mut out = Vec::with_capacity(k);
+    for i in 0..k.min(n) {
+        let j = i + rng.below(n - i);
+        let vi = *swapped.get(&i).unwrap_or(&i);
+        let vj = *swapped.get(&j).unwrap_or(&j);
+        swapped.insert(j, vi);
+        out.push(vj);
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use plumb_engine::{Activation, Loss};
+
+    fn net() -> Network {
+        Network::new(
+            300,
+            &[(100, Activation::Relu), (10, Activation::Softmax)],
+            Loss::CrossEntropy,
+            0.0,
+        )
+        .unwrap()
+    }
+
+    #[test]
+    fn all_is_every_coordinate_once() {
+        let n = net();
+        let c = select(&n, Sample::All, 1).unwrap();
+        assert_eq!(c.len(), n.parameters());
+        let mut d = c.clone();
+        d.dedup();
+        assert_eq!(d.len(), c.len());
+    }
+
+    #[test]
+    fn samples_are_distinct_seeded_and_never_miss_a_bias() {
+        let n = net();
+        for sample in [Sample::Total(500), Sample::PerLayer(200), Sample::Total(30)] {
+            let a = select(&n, sample, 7).unwrap();
+            assert_eq!(a, select(&n, sample, 7).unwrap(), "seeded");
+            assert_ne!(a, select(&n, sample, 8).unwrap());
+            let mut d = a.clone();
+            d.dedup();
+            assert_eq!(d.len(), a.len(), "distinct");
+            for layer in 0..2 {
+                assert!(
+                    a.iter().any(|c| c.layer == layer && c.col == 0),
+                    "{sample}: bias of layer {layer}"
+                );
+                assert!(
+                    a.iter().any(|c| c.layer == layer && c.col > 0),
+                    "{sample}: weights of layer {layer}"
+                );
+            }
+        }
+        assert_eq!(select(&n, Sample::Total(500), 1).unwrap().len(), 500);
+        // The 10 × 101 output layer is smaller than 200: all of it.
+        let per = select(&n, Sample::PerLayer(200), 1).unwrap();
+        assert_eq!(per.iter().filter(|c| c.layer == 0).count(), 200);
+        assert_eq!(
+            per.iter().filter(|c| c.layer == 1).count(),
+            200.min(10 * 101)
+        );
+        assert!(select(&n, Sample::Total(n.parameters() + 1), 1).is_err());
+    }
+
+    #[test]
+    fn parsing() {
+        assert_eq!(Sample::parse("all"), Ok(Sample::All));
+        assert_eq!(Sample::parse("250"), Ok(Sample::Total(250)));
+        assert_eq!(Sample::parse("per-layer:40"), Ok(Sample::PerLayer(40)));
+        assert!(Sample::parse("0").is_err());
+        assert!(Sample::parse("per-layer:x").is_err());
+        assert!(Sample::parse("some").is_err());
+    }
+}

@@ -1,0 +1,159 @@
+//! Accuracy of every method on smooth networks in f64, against the engine's analytic gradient
+//! (itself checked against num-dual in plumb-engine's tests). Targets from NR §5.7 [pub]: central
+//! differences reach ~ε^(2/3) ≈ 4e-11 relative; the complex step reaches rounding; Ridders'
+//! extrapolation lies in between.
+
+use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_fd::{Base, CheckConfig, Method, Precision, Sample, Status, check, full_loss, select};
+
+fn smooth_nets() -> Vec<Network> {
+    vec![
+        Network::new(
+            5,
+            &[
+                (7, Activation::Tanh),
+                (4, Activation::Sigmoid),
+                (3, Activation::Softmax),
+            ],
+            Loss::CrossEntropy,
+            0.05,
+        )
+        .unwrap(),
+        Network::new(
+            3,
+            &[(6, Activation::Softplus), (2, Activation::Sigmoid)],
+            Loss::CrossEntropy,
+            0.2,
+        )
+        .unwrap(),
+        Network::new(
+            4,
+            &[(5, Activation::Gelu), (3, Activation::Tanh)],
+            Loss::SquaredError,
+            0.1,
+        )
+        .unwrap(),
+    ]
+}
+
+/// (largest per-coordinate relative error, largest per-layer norm-wise relative error
+/// ‖a − n‖₂ / ‖a‖₂) over three seeds, after checking that no coordinate or direction is a false
+/// mismatch.
+fn errors(net: &Network, method: Method) -> (f64, f64) {
+    let (mut coord, mut norm) = (0.0f64, 0.0f64);
+    for seed in 0..3 {
+        let w = Init::GlorotUniform.weights(net, &mut Rng::new(seed));
+        let batch = Batch::synthetic(net, 12, seed);
+        let mut cfg = CheckConfig::new(method, Precision::F64);
+        cfg.sample = Some(Sample::All);
+        let r = check(net, &w, &batch, &cfg, &|_, _| {}).unwrap();
+        assert!(
+            r.coords.iter().all(|c| c.status == Status::Match),
+            "{method}: a false mismatch"
+        );
+        assert!(
+            r.directions.iter().all(|c| c.status == Status::Match),
+            "{method}: a false direction mismatch"
+        );
+        coord = r.coords.iter().map(|c| c.rel_error).fold(coord, f64::max);
+        for l in 0..net.layers().len() {
+            let (mut d2, mut a2) = (0.0, 0.0);
+            for c in r.coords.iter().filter(|c| c.coord.layer == l) {
+                d2 += (c.analytic - c.numeric).powi(2);
+                a2 += c.analytic.powi(2);
+            }
+            norm = norm.max((d2 / a2).sqrt());
+        }
+    }
+    (coord, norm)
+}
+
+// Central differences: NR §5.7 [pub] puts their accuracy at ~ε^(2/3) ≈ 4e-11 of the function's
+// scale. The loss is O(1) here while first-layer gradients are O(1e-3), so round-off alone leaves
+// those entries ~1e-8 relative: per coordinate (relative to max(|a|, 10% of the layer's largest))
+// the bound is 5e-8; norm-wise per layer it is 1e-8.
+#[test]
+fn central_differences_within_1e_8_per_layer() {
+    for (i, net) in smooth_nets().iter().enumerate() {
+        let (coord, norm) = errors(net, Method::Central);
+        assert!(norm <= 1e-8, "net {i}: norm-wise {norm:e}");
+        assert!(coord <= 5e-8, "net {i}: per coordinate {coord:e}");
+    }
+}
+
+// The complex step has no cancellation (Squire & Trapp 1998 [pub]): agreement to rounding.
+#[test]
+fn complex_step_within_1e_13() {
+    for (i, net) in smooth_nets().iter().enumerate() {
+        let (coord, _) = errors(net, Method::ComplexStep);
+        assert!(coord <= 1e-13, "net {i}: {coord:e}");
+    }
+}
+
+// Ridders' extrapolation (NR §5.7 [pub]) removes the truncation error of central differences.
+#[test]
+fn richardson_within_1e_10_per_layer() {
+    for (i, net) in smooth_nets().iter().enumerate() {
+        let (coord, norm) = errors(net, Method::Richardson);
+        assert!(norm <= 1e-10, "net {i}: norm-wise {norm:e}");
+        assert!(coord <= 1e-9, "net {i}: per coordinate {coord:e}");
+    }
+}
+
+#[test]
+fn forward_and_five_point_pass_a_correct_gradient() {
+    for net in smooth_nets() {
+        // NR §5.7: forward differences reach ~√ε ≈ 1.5e-8 of the scale at best; five-point ~ε^(4/5).
+        assert!(errors(&net, Method::Forward).1 < 1e-5);
+        assert!(errors(&net, Method::FivePoint).1 < 1e-9);
+    }
+}
+
+/// The incremental evaluation is the same function as a whole forward pass with the weight moved.
+#[test]
+fn incremental_loss_equals_the_full_forward_pass() {
+    let net = Network::new(
+        4,
+        &[
+            (6, Activation::Relu),
+            (5, Activation::Tanh),
+            (4, Activation::Elu { alpha: 0.5 }),
+            (3, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.3,
+    )
+    .unwrap();
+    let w = Init::HeNormal.weights(&net, &mut Rng::new(3));
+    let batch = Batch::synthetic(&net, 9, 3);
+    let base = Base::new(&net, &w, batch.x.view(), &batch.y);
+    for c in select(&net, Sample::All, 0).unwrap() {
+        for d in [1e-3, -0.2, 0.7] {
+            let (inc, _) = base.perturbed(c, d);
+            let full = full_loss(&net, &w, batch.x.view(), batch.y.view(), c, d);
+            assert!(
+                (inc - full).abs() <= 1e-13 * full.abs(),
+                "{c:?} {d}: {inc} vs {full}"
+            );
+        }
+    }
+}
+
+/// Results do not depend on the number of threads.
+#[test]
+fn identical_results_on_one_and_two_threads() {
+    let net = &smooth_nets()[0];
+    let w = Init::GlorotUniform.weights(net, &mut Rng::new(9));
+    let batch = Batch::synthetic(net, 8, 9);
+    let cfg = CheckConfig::new(Method::Central, Precision::F64);
+    let on = |threads: usize| {
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap();
+        pool.install(|| check(net, &w, &batch, &cfg, &|_, _| {}).unwrap())
+    };
+    let (a, b) = (on(1), on(2));
+    assert_eq!(a.coords, b.coords);
+    assert_eq!(a.directions, b.directions);
+}

@@ -1,0 +1,303 @@
+//! Verdicts in both directions: no false alarm on correct gradients (ReLU networks with kinks, f32),
+//! and every planted error found where it was planted.
+
+use ndarray::{Array2, s};
+use plumb_engine::{Activation, Batch, Coord, Init, Loss, Network, Rng, Weights};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, Scope, Status, check, check_gradient};
+
+fn relu_net() -> Network {
+    Network::new(
+        6,
+        &[
+            (10, Activation::Relu),
+            (8, Activation::Relu),
+            (7, Activation::LeakyRelu { slope: 0.1 }),
+            (3, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.01,
+    )
+    .unwrap()
+}
+
+fn config(method: Method, precision: Precision) -> CheckConfig {
+    let mut c = CheckConfig::new(method, precision);
+    c.sample = Some(Sample::All);
+    c
+}
+
+fn none(_: usize, _: usize) {}
+
+/// He-initialised ReLU networks (He et al. 2015 [pub] for the scale), 20 seeds: no coordinate and no
+/// direction is a mismatch, with central differences and with the complex step.
+#[test]
+fn relu_networks_raise_no_false_alarm_over_20_seeds() {
+    let net = relu_net();
+    for seed in 0..20 {
+        let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
+        // Non-zero biases, so that pre-activations sit on both sides of the kink.
+        let mut rng = Rng::new(seed + 100);
+        for l in w.layers_mut() {
+            l.column_mut(0).mapv_inplace(|_| 0.1 * rng.normal());
+        }
+        let batch = Batch::synthetic(&net, 16, seed);
+        for method in [Method::Central, Method::ComplexStep] {
+            let r = check(&net, &w, &batch, &config(method, Precision::F64), &none).unwrap();
+            let bad: Vec<_> = r
+                .coords
+                .iter()
+                .filter(|c| c.status == Status::Mismatch)
+                .collect();
+            assert!(bad.is_empty(), "seed {seed} {method}: {:?}", bad.first());
+            assert!(
+                r.directions.iter().all(|d| d.status != Status::Mismatch),
+                "seed {seed} {method}"
+            );
+        }
+    }
+}
+
+/// A sample of zeros with zero biases puts every first-layer unit exactly on its kink: perturbing a
+/// first-layer bias moves it across for any step, so those coordinates are `unreliable`, not
+/// mismatches. A unit 3e-7 from its kink is crossed by the default step (6e-6) but not by one a
+/// hundred times smaller: the retry resolves it.
+#[test]
+fn kinks_are_unreliable_and_retried() {
+    let net = Network::new(
+        3,
+        &[(4, Activation::Relu), (2, Activation::Softmax)],
+        Loss::CrossEntropy,
+        0.0,
+    )
+    .unwrap();
+    let mut w = Init::HeNormal.weights(&net, &mut Rng::new(1));
+    let mut x = Array2::from_shape_fn((5, 3), |(i, j)| ((i * 3 + j) as f64 * 0.37).sin());
+    x.row_mut(0).fill(0.0);
+    let mut y = Array2::zeros((5, 2));
+    for i in 0..5 {
+        y[[i, i % 2]] = 1.0;
+    }
+    let batch = Batch { x, y };
+    let r = check(
+        &net,
+        &w,
+        &batch,
+        &config(Method::Central, Precision::F64),
+        &none,
+    )
+    .unwrap();
+    for c in &r.coords {
+        if c.coord.layer == 0 && c.coord.col == 0 {
+            assert_eq!(c.status, Status::Unreliable, "{:?}", c.coord);
+        }
+        assert_ne!(c.status, Status::Mismatch, "{:?}", c.coord);
+    }
+    // Unit 0 of layer 1 at 3e-7 on the zero sample; all other units far from 0 there.
+    w.layers_mut()[0]
+        .column_mut(0)
+        .assign(&ndarray::array![3e-7, 0.5, 0.5, 0.5]);
+    let r = check(
+        &net,
+        &w,
+        &batch,
+        &config(Method::Central, Precision::F64),
+        &none,
+    )
+    .unwrap();
+    let bias0 = r
+        .coords
+        .iter()
+        .find(|c| {
+            c.coord
+                == Coord {
+                    layer: 0,
+                    row: 0,
+                    col: 0,
+                }
+        })
+        .unwrap();
+    assert!(bias0.retried, "{bias0:?}");
+    assert_eq!(bias0.status, Status::Match);
+    assert!(bias0.step < 6e-8 * 1.01, "{}", bias0.step);
+}
+
+/// The engine's gradient, one entry of one layer made 1% larger: found at that (layer, row, column)
+/// and nowhere else. Entries are drawn among those at least 10% of their layer's largest, since 1%
+/// of a near-zero entry is below any method's resolution.
+#[test]
+fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
+    let net = Network::new(
+        5,
+        &[
+            (7, Activation::Tanh),
+            (6, Activation::Relu),
+            (3, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.05,
+    )
+    .unwrap();
+    let mut rng = Rng::new(77);
+    for seed in 0..12 {
+        let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
+        let batch = Batch::synthetic(&net, 10, seed);
+        let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
+        let layer = seed as usize % 3;
+        let big: Vec<Coord> = {
+            let m = g.layer(layer);
+            let top = m.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+            m.indexed_iter()
+                .filter(|(_, v)| v.abs() >= 0.1 * top)
+                .map(|((row, col), _)| Coord { layer, row, col })
+                .collect()
+        };
+        let target = big[rng.below(big.len())];
+        let mut bad = g.clone();
+        *bad.get_mut(target) *= 1.01;
+        for (method, precision) in [
+            (Method::Central, Precision::F64),
+            (Method::ComplexStep, Precision::F64),
+        ] {
+            let r =
+                check_gradient(&net, &w, &batch, &bad, &config(method, precision), &none).unwrap();
+            let found: Vec<Coord> = r
+                .coords
+                .iter()
+                .filter(|c| c.status == Status::Mismatch)
+                .map(|c| c.coord)
+                .collect();
+            assert_eq!(found, vec![target], "seed {seed} {method}");
+        }
+    }
+}
+
+/// Random directions: the gradient of one part (a layer's weights, or its bias weights) made wrong
+/// by 1% of its norm in a random direction. `--directions 4` flags that part in all of 20 seeds,
+/// and no other part.
+#[test]
+fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
+    let net = Network::new(
+        6,
+        &[
+            (9, Activation::Tanh),
+            (7, Activation::Sigmoid),
+            (4, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.05,
+    )
+    .unwrap();
+    for seed in 0..20u64 {
+        let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
+        let batch = Batch::synthetic(&net, 12, seed);
+        let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
+        let layer = (seed % 3) as usize;
+        let bias = seed % 2 == 0;
+        let mut bad = g.clone();
+        let mut rng = Rng::new(seed + 500);
+        {
+            let m = &mut bad.layers_mut()[layer];
+            let mut part = if bias {
+                m.slice_mut(s![.., 0..1])
+            } else {
+                m.slice_mut(s![.., 1..])
+            };
+            let norm = part.iter().map(|v| v * v).sum::<f64>().sqrt();
+            let noise: Vec<f64> = (0..part.len()).map(|_| rng.normal()).collect();
+            let nn = noise.iter().map(|v| v * v).sum::<f64>().sqrt();
+            for (v, e) in part.iter_mut().zip(&noise) {
+                *v += 0.01 * norm * e / nn;
+            }
+        }
+        let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
+        cfg.sample = Some(Sample::Total(20));
+        cfg.directions = Some(4);
+        cfg.seed = seed;
+        let r = check_gradient(&net, &w, &batch, &bad, &cfg, &none).unwrap();
+        let flagged: Vec<Scope> = r
+            .directions
+            .iter()
+            .filter(|d| d.status == Status::Mismatch)
+            .map(|d| d.scope)
+            .collect();
+        assert!(
+            flagged.contains(&Scope::Part { layer, bias }),
+            "seed {seed}: {flagged:?}"
+        );
+        for s in &flagged {
+            assert!(
+                matches!(s, Scope::Global) || *s == Scope::Part { layer, bias },
+                "seed {seed}: {s:?} flagged"
+            );
+        }
+    }
+}
+
+/// f32: the engine in single precision, bands from f32's ε. A correct network passes; the same
+/// gradient with one large entry 1% off fails there.
+#[test]
+fn single_precision_passes_right_and_fails_wrong() {
+    let nets = [
+        Network::new(
+            5,
+            &[(8, Activation::Tanh), (3, Activation::Softmax)],
+            Loss::CrossEntropy,
+            0.05,
+        )
+        .unwrap(),
+        relu_net(),
+    ];
+    for net in &nets {
+        for seed in 0..5 {
+            let w = Init::GlorotUniform.weights(net, &mut Rng::new(seed));
+            let batch = Batch::synthetic(net, 16, seed);
+            let r = check(
+                net,
+                &w,
+                &batch,
+                &config(Method::Central, Precision::F32),
+                &none,
+            )
+            .unwrap();
+            let bad: Vec<_> = r
+                .coords
+                .iter()
+                .filter(|c| c.status == Status::Mismatch)
+                .collect();
+            assert!(bad.is_empty(), "seed {seed}: {:?}", bad.first());
+
+            let mut wrong = r.analytic.clone();
+            let (layer, row, col) = largest(&wrong);
+            let target = Coord { layer, row, col };
+            *wrong.get_mut(target) *= 1.01;
+            let r = check_gradient(
+                net,
+                &w,
+                &batch,
+                &wrong,
+                &config(Method::Central, Precision::F32),
+                &none,
+            )
+            .unwrap();
+            let found: Vec<Coord> = r
+                .coords
+                .iter()
+                .filter(|c| c.status == Status::Mismatch)
+                .map(|c| c.coord)
+                .collect();
+            assert_eq!(found, vec![target], "seed {seed}");
+        }
+    }
+}
+
+fn largest(g: &Weights<f64>) -> (usize, usize, usize) {
+    let mut best = (0, 0, 0, 0.0f64);
+    for (l, m) in g.layers().iter().enumerate() {
+        for ((r, c), &v) in m.indexed_iter() {
+            if v.abs() > best.3 {
+                best = (l, r, c, v.abs());
+            }
+        }
+    }
+    (best.0, best.1, best.2)
+}
