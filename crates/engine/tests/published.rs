@@ -69,7 +69,7 @@ fn softmax_cross_entropy_delta_is_p_minus_y() {
     let (net, w, batch) = one_layer(Activation::Softmax, 4, 0.0);
     let m = batch.len() as f64;
     let theta = w.layer(0);
-    let z = batch.x.dot(&theta.slice(s![.., 1..]).t()) + &theta.column(0);
+    let z = batch.x.dot(&theta.slice(s![.., 1..]).t()) + theta.column(0);
     let mut p = z.mapv(f64::exp);
     for mut row in p.rows_mut() {
         let total = row.sum();
@@ -94,7 +94,7 @@ fn sigmoid_binary_cross_entropy_delta_is_a_minus_y() {
     let (net, w, batch) = one_layer(Activation::Sigmoid, 2, 0.0);
     let m = batch.len() as f64;
     let theta = w.layer(0);
-    let z = batch.x.dot(&theta.slice(s![.., 1..]).t()) + &theta.column(0);
+    let z = batch.x.dot(&theta.slice(s![.., 1..]).t()) + theta.column(0);
     let a = z.mapv(|v| 1.0 / (1.0 + (-v).exp()));
     let delta = (&a - &batch.y) / m;
     let (_, grad) = net.gradient(&w, batch.x.view(), batch.y.view());
