@@ -1,4 +1,4 @@
-//! `plumb grad` end to end, against the loss and gradient of an independent NumPy backpropagation
+//! `plumb grad` end to end, against the loss and gradient of a second backpropagation written in NumPy
 //! (fixtures/generate.py, `forward_backward`, committed as fixtures/expected/).
 
 mod util;

@@ -127,6 +127,138 @@ struct Grad {
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 #[allow(dead_code)]
+struct Coordinate {
+    tensor: String,
+    index: Vec<usize>,
+    layer: usize,
+    row: usize,
+    column: usize,
+    unit: usize,
+    bias: bool,
+    analytic: f64,
+    numeric: f64,
+    abs_error: f64,
+    rel_error: f64,
+    bound: f64,
+    step: f64,
+    status: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct CheckTensor {
+    name: String,
+    layer: usize,
+    parameters: usize,
+    checked: usize,
+    max_rel_error: f64,
+    median_rel_error: f64,
+    norm_rel_error: f64,
+    max_bound: f64,
+    median_bound: f64,
+    mismatches: usize,
+    unreliable: usize,
+    directions: usize,
+    direction_mismatches: usize,
+    verdict: String,
+    worst: Vec<Coordinate>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Direction {
+    scope: String,
+    analytic: f64,
+    numeric: f64,
+    rel_error: f64,
+    bound: f64,
+    status: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct CheckCoverage {
+    sample: String,
+    default_sample: bool,
+    parameters: usize,
+    checked: usize,
+    directions_per_part: usize,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Check {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    description: String,
+    weights: WeightsSource,
+    data: DataSource,
+    samples: usize,
+    method: String,
+    step_rule: String,
+    precision: String,
+    tolerance: f64,
+    floor_fraction: f64,
+    loss: f64,
+    coverage: CheckCoverage,
+    tensors: Vec<CheckTensor>,
+    worst: Vec<Coordinate>,
+    directions: Vec<Direction>,
+    findings: Vec<Finding>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct MethodCurve {
+    method: String,
+    errors: Vec<Option<f64>>,
+    best_step: f64,
+    best_error: f64,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct SweptCoordinate {
+    tensor: String,
+    index: Vec<usize>,
+    layer: usize,
+    row: usize,
+    column: usize,
+    unit: usize,
+    bias: bool,
+    analytic: f64,
+    chosen: String,
+    methods: Vec<MethodCurve>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Sweep {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    description: String,
+    weights: WeightsSource,
+    data: DataSource,
+    precision: String,
+    tolerance: f64,
+    steps: Vec<f64>,
+    coordinates: Vec<SweptCoordinate>,
+    plot: Option<String>,
+    findings: Vec<Finding>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
 struct Demo {
     verdict: String,
     schema_version: u32,
@@ -136,6 +268,7 @@ struct Demo {
     shapes: Shapes,
     shapes_planted: Shapes,
     grad: Grad,
+    check: Check,
     written: Vec<String>,
 }
 
@@ -217,4 +350,40 @@ fn demo_report_schema() {
     assert_eq!(r.shapes.verdict, "pass");
     assert_eq!(r.shapes_planted.verdict, "fail");
     assert!(r.scenario.contains("invented"));
+}
+
+#[test]
+fn check_and_sweep_report_schemas() {
+    let run = plumb(&[
+        "check",
+        "nets/small-split.toml",
+        "-w",
+        "weights/small-split.npz",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(first_key(&run.stdout), "\"verdict\"");
+    let r: Check = serde_json::from_str(&run.stdout).unwrap();
+    assert_eq!(
+        (r.command.as_str(), r.verdict.as_str(), r.tensors.len()),
+        ("check", "pass", 4)
+    );
+    let run = plumb(&[
+        "sweep",
+        "nets/small.toml",
+        "--coords",
+        "1:0:0",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(first_key(&run.stdout), "\"verdict\"");
+    let r: Sweep = serde_json::from_str(&run.stdout).unwrap();
+    assert_eq!(
+        (
+            r.command.as_str(),
+            r.coordinates.len(),
+            r.coordinates[0].methods.len()
+        ),
+        ("sweep", 1, 5)
+    );
 }

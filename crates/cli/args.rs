@@ -49,6 +49,10 @@ pub enum Command {
     Shapes(ShapesArgs),
     /// The reference loss and gradient (to a file with -o).
     Grad(GradArgs),
+    /// Finite-difference check of the reference engine's gradient on this network.
+    Check(CheckArgs),
+    /// Error against step size for chosen coordinates, per method (the V-curve).
+    Sweep(SweepArgs),
 }
 
 #[derive(Debug, Args)]
@@ -105,6 +109,74 @@ pub struct GradArgs {
     /// Let -o replace a file that already exists.
     #[arg(long)]
     pub force: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct CheckArgs {
+    #[command(flatten)]
+    pub inputs: Inputs,
+    /// Arithmetic to run the engine in; f32 sets the tolerances from f32's epsilon.
+    #[arg(long, value_enum, default_value_t = PrecisionArg::F64)]
+    pub precision: PrecisionArg,
+    /// Finite-difference method.
+    #[arg(long, value_enum, default_value_t = MethodArg::Central)]
+    pub method: MethodArg,
+    /// A fixed step for every coordinate, instead of the method's rule scaled to each parameter.
+    #[arg(long, value_name = "H", allow_hyphen_values = true)]
+    pub step: Option<f64>,
+    /// Coordinates to check: `all`, a number N (spread over the layers), or `per-layer:N`
+    /// [default: all up to 20000 parameters, else per-layer:1000].
+    #[arg(long, value_name = "SAMPLE")]
+    pub sample: Option<String>,
+    /// Random directions per tensor part and over the whole network (J(θ ± h·v) against g·v).
+    #[arg(long, value_name = "K", default_value_t = 4)]
+    pub directions: usize,
+    /// Relative error above which a coordinate can be a mismatch [default: 1e-6 in f64, 1e-3 in f32].
+    #[arg(long, value_name = "T", allow_hyphen_values = true)]
+    pub tolerance: Option<f64>,
+    /// How many of the worst coordinates to list.
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub worst: usize,
+}
+
+#[derive(Debug, Args)]
+pub struct SweepArgs {
+    #[command(flatten)]
+    pub inputs: Inputs,
+    /// Arithmetic to run the engine in.
+    #[arg(long, value_enum, default_value_t = PrecisionArg::F64)]
+    pub precision: PrecisionArg,
+    /// Coordinates as LAYER:ROW:COL in the augmented matrix (layer from 1, row and column from 0,
+    /// column 0 the bias), comma-separated [default: the worst of a quick central check and 3 random ones].
+    #[arg(long, value_name = "LIST")]
+    pub coords: Option<String>,
+    /// Steps FROM:TO:N, log-spaced.
+    #[arg(long, value_name = "FROM:TO:N", default_value = "1e-1:1e-14:27")]
+    pub steps: String,
+    /// Methods to sweep, comma-separated [default: all five].
+    #[arg(long, value_name = "LIST")]
+    pub methods: Option<String>,
+    /// Write the curves as an SVG plot (log-log, one line per method).
+    #[arg(long, value_name = "FILE")]
+    pub plot: Option<PathBuf>,
+    /// Let --plot replace a file that already exists.
+    #[arg(long)]
+    pub force: bool,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum MethodArg {
+    Central,
+    Forward,
+    FivePoint,
+    Richardson,
+    ComplexStep,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum PrecisionArg {
+    F64,
+    F32,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

@@ -6,6 +6,7 @@ mod commands;
 mod demo;
 mod inputs;
 mod output;
+mod progress;
 
 use std::process::ExitCode;
 
@@ -22,6 +23,8 @@ fn main() -> ExitCode {
         Command::Demo(a) => demo::run(a, &settings),
         Command::Shapes(a) => commands::shapes::run(a, &settings),
         Command::Grad(a) => commands::grad::run(a, &settings),
+        Command::Check(a) => commands::check::run(a, &settings),
+        Command::Sweep(a) => commands::sweep::run(a, &settings),
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,

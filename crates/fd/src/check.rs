@@ -20,7 +20,7 @@ use rayon::prelude::*;
 use thiserror::Error;
 
 use crate::evaluate::Base;
-use crate::method::{Estimate, complex_estimate};
+use crate::method::{ComplexScalar, Estimate, complex_estimate, round_to};
 use crate::{Method, Sample, coverage};
 
 /// The arithmetic the check runs the engine in.
@@ -394,36 +394,6 @@ struct Run<'a> {
 
 /// Kink retries: steps 10, 100 and 1000 times smaller.
 const RETRIES: [f64; 3] = [0.1, 0.01, 0.001];
-
-/// A complex number type the complex step can run in.
-trait ComplexScalar: Scalar {
-    /// i·h.
-    fn imaginary(h: f64) -> Self;
-    fn im(self) -> f64;
-}
-
-impl ComplexScalar for Complex<f64> {
-    fn imaginary(h: f64) -> Self {
-        Complex::new(0.0, h)
-    }
-    fn im(self) -> f64 {
-        self.im
-    }
-}
-
-impl ComplexScalar for Complex<f32> {
-    fn imaginary(h: f64) -> Self {
-        Complex::new(0.0, h as f32)
-    }
-    fn im(self) -> f64 {
-        self.im as f64
-    }
-}
-
-/// A step as the precision S stores it, so a quotient divides by the step actually taken.
-fn round_to<S: Scalar>(h: f64) -> f64 {
-    S::from_f64(h).re()
-}
 
 impl Run<'_> {
     fn tick(&self) {

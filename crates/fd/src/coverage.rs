@@ -87,6 +87,10 @@ pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, St
                 .iter()
                 .map(|l| l.parameters().min(2 * STRATUM_MINIMUM))
                 .collect();
+            if q.iter().sum::<usize>() > n {
+                // Too few for the strata minimums: one bias and one other weight per layer.
+                q = layers.iter().map(|l| l.parameters().min(2)).collect();
+            }
             let rest = n.saturating_sub(q.iter().sum());
             let room: Vec<usize> = layers
                 .iter()
@@ -130,12 +134,13 @@ pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, St
             }
             continue;
         }
-        // Bias weights: their share of the quota, but at least the stratum minimum.
+        // Bias weights: their share of the quota, at least the stratum minimum, leaving at least
+        // one coordinate for the other weights.
         let bias = (quota * units)
             .div_ceil(params)
             .max(STRATUM_MINIMUM)
             .min(units)
-            .min(quota);
+            .min(quota.saturating_sub(1).max(1));
         let weights = quota - bias;
         let mut chosen: Vec<Coord> = pick(units, &mut rng, bias)
             .into_iter()

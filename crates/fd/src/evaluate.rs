@@ -97,17 +97,14 @@ impl<'a, S: Scalar> Base<'a, S> {
                 zrow.zip_mut_with(&wcol, |zv, &wv| *zv += d * wv);
             }
             crossed |= crosses(layers[l + 1].activation, t.z[l + 1].iter(), z.iter());
-            if l + 1 == last {
-                self.output_loss(&z)
-            } else {
-                let a = layers[l + 1].activation.apply(z.view());
-                let rest = net.forward_from(self.weights, l + 2, a.view());
-                for (k, zk) in rest.z.iter().enumerate() {
-                    let layer = l + 2 + k;
-                    crossed |= crosses(layers[layer].activation, t.z[layer].iter(), zk.iter());
-                }
-                net.data_loss(&rest, self.y.view())
+            // The layers above, without keeping a trace: each pre-activation is compared with the
+            // unperturbed one for kinks as it is made, then only its activation is kept.
+            for layer in l + 2..=last {
+                let a = layers[layer - 1].activation.apply(z.view());
+                z = Network::affine(self.weights.layer(layer).view(), a.view());
+                crossed |= crosses(layers[layer].activation, t.z[layer].iter(), z.iter());
             }
+            self.output_loss(&z)
         };
         let mut l2_sum = self.l2_sum;
         if c.col != 0 && net.l2() != 0.0 {

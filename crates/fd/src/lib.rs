@@ -21,6 +21,8 @@ mod check;
 mod coverage;
 mod evaluate;
 mod method;
+mod summary;
+mod sweep;
 
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
@@ -29,3 +31,5 @@ pub use check::{
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
 pub use method::{Estimate, Method, complex_estimate};
+pub use summary::{Part, PartSummary, summarise};
+pub use sweep::{Curve, SweepPlan, steps, sweep};

@@ -15,6 +15,9 @@
 
 use std::fmt;
 
+use num_complex::Complex;
+use plumb_engine::Scalar;
+
 /// A finite-difference method.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Method {
@@ -227,6 +230,36 @@ fn ridders(f: &dyn Fn(f64) -> (f64, bool), h: f64, noise: f64, round: fn(f64) ->
         step: last_step,
         crossed,
     }
+}
+
+/// A complex number type the complex step can run in.
+pub(crate) trait ComplexScalar: Scalar {
+    /// i·h.
+    fn imaginary(h: f64) -> Self;
+    fn im(self) -> f64;
+}
+
+impl ComplexScalar for Complex<f64> {
+    fn imaginary(h: f64) -> Self {
+        Complex::new(0.0, h)
+    }
+    fn im(self) -> f64 {
+        self.im
+    }
+}
+
+impl ComplexScalar for Complex<f32> {
+    fn imaginary(h: f64) -> Self {
+        Complex::new(0.0, h as f32)
+    }
+    fn im(self) -> f64 {
+        self.im as f64
+    }
+}
+
+/// A step as the precision S stores it, so a quotient divides by the step actually taken.
+pub(crate) fn round_to<S: Scalar>(h: f64) -> f64 {
+    S::from_f64(h).re()
 }
 
 impl fmt::Display for Method {

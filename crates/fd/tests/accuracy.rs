@@ -157,3 +157,56 @@ fn identical_results_on_one_and_two_threads() {
     assert_eq!(a.coords, b.coords);
     assert_eq!(a.directions, b.directions);
 }
+
+/// The V-curve (NR §5.7 [pub]): central-difference error falls as h² while truncation dominates and
+/// rises as ε/h once round-off does, bottoming near ∛ε ≈ 6e-6; forward differences fall as h and
+/// bottom near √ε ≈ 1.5e-8.
+#[test]
+fn sweep_shows_the_v_curve_with_its_minimum_where_nr_puts_it() {
+    use plumb_fd::{SweepPlan, steps, sweep};
+    let net = &smooth_nets()[0];
+    let w = Init::GlorotUniform.weights(net, &mut Rng::new(4));
+    let batch = Batch::synthetic(net, 12, 4);
+    let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
+    // The coordinate with the largest gradient in the output layer: a smooth, well-scaled one.
+    let m = g.layer(2);
+    let ((row, col), _) = m
+        .indexed_iter()
+        .max_by(|a, b| a.1.abs().total_cmp(&b.1.abs()))
+        .unwrap();
+    let coord = plumb_engine::Coord { layer: 2, row, col };
+    let hs = steps(1e-1, 1e-14, 53);
+    let plan = SweepPlan {
+        coords: vec![coord],
+        methods: vec![Method::Central, Method::Forward],
+        steps: hs.clone(),
+        precision: Precision::F64,
+    };
+    let curves = sweep(net, &w, &batch, &g, &plan);
+    let c = &curves[0];
+    let slope = |m: usize, h1: f64, h2: f64| {
+        let i = hs.iter().position(|&h| h <= h1 * 1.0001).unwrap();
+        let j = hs.iter().position(|&h| h <= h2 * 1.0001).unwrap();
+        (c.error(m, i, 0.0).log10() - c.error(m, j, 0.0).log10()) / (hs[i].log10() - hs[j].log10())
+    };
+    // Truncation side: slope 2 for central, 1 for forward.
+    let s = slope(0, 1e-2, 1e-4);
+    assert!((s - 2.0).abs() < 0.3, "central truncation slope {s}");
+    let s = slope(1, 1e-2, 1e-5);
+    assert!((s - 1.0).abs() < 0.3, "forward truncation slope {s}");
+    // Round-off side: slope −1 (error ∝ ε/h), read over three decades so noise averages out.
+    let s = slope(0, 1e-10, 1e-13);
+    assert!((s + 1.0).abs() < 0.5, "central round-off slope {s}");
+    let best_c = hs[c.best(0, 0.0)];
+    let best_f = hs[c.best(1, 0.0)];
+    let cbrt = f64::EPSILON.cbrt();
+    let sqrt = f64::EPSILON.sqrt();
+    assert!(
+        best_c > cbrt / 30.0 && best_c < cbrt * 30.0,
+        "central best at {best_c:e}"
+    );
+    assert!(
+        best_f > sqrt / 30.0 && best_f < sqrt * 30.0,
+        "forward best at {best_f:e}"
+    );
+}

@@ -18,8 +18,10 @@
 
 mod document;
 mod finding;
+mod plot;
 mod render;
 
 pub use document::{Block, Cell, Document, Table, Tone};
 pub use finding::{Finding, Severity, Verdict};
+pub use plot::{StepPanel, step_plot};
 pub use render::{ColorChoice, Format, render_json, render_markdown, render_table, use_color};

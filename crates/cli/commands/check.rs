@@ -1,0 +1,515 @@
+//! `plumb check`: the finite-difference check of the reference engine's gradient.
+
+use std::path::PathBuf;
+
+use anyhow::{Result, bail};
+use plumb_fd::{
+    CheckConfig, CheckResult, FLOOR, Method, PartSummary, Precision, Sample, Scope, Status, check,
+    summarise,
+};
+use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use serde::Serialize;
+
+use crate::args::{CheckArgs, MethodArg, PrecisionArg};
+use crate::commands::locate::{Place, Tensors};
+use crate::inputs::{DataSource, Loaded, WeightsSource, load};
+use crate::output::{SCHEMA_VERSION, Settings, num};
+use crate::progress::Progress;
+
+pub fn method(m: MethodArg) -> Method {
+    match m {
+        MethodArg::Central => Method::Central,
+        MethodArg::Forward => Method::Forward,
+        MethodArg::FivePoint => Method::FivePoint,
+        MethodArg::Richardson => Method::Richardson,
+        MethodArg::ComplexStep => Method::ComplexStep,
+    }
+}
+
+pub fn precision(p: PrecisionArg) -> Precision {
+    match p {
+        PrecisionArg::F64 => Precision::F64,
+        PrecisionArg::F32 => Precision::F32,
+    }
+}
+
+/// `--step` must be a usable step.
+pub fn step(h: Option<f64>) -> Result<Option<f64>> {
+    match h {
+        Some(h) if !(h.is_finite() && h > 0.0) => {
+            bail!("--step {h}: a step must be a finite number > 0 (e.g. --step 1e-6)")
+        }
+        other => Ok(other),
+    }
+}
+
+/// One coordinate of the report.
+#[derive(Clone, Debug, Serialize)]
+pub struct CoordReport {
+    #[serde(flatten)]
+    pub place: Place,
+    pub analytic: f64,
+    pub numeric: f64,
+    pub abs_error: f64,
+    pub rel_error: f64,
+    pub bound: f64,
+    pub step: f64,
+    pub status: &'static str,
+}
+
+/// One tensor of the report.
+#[derive(Clone, Debug, Serialize)]
+pub struct TensorReport {
+    pub name: String,
+    pub layer: usize,
+    pub parameters: usize,
+    pub checked: usize,
+    pub max_rel_error: f64,
+    pub median_rel_error: f64,
+    pub norm_rel_error: f64,
+    pub max_bound: f64,
+    pub median_bound: f64,
+    pub mismatches: usize,
+    pub unreliable: usize,
+    pub directions: usize,
+    pub direction_mismatches: usize,
+    pub verdict: Verdict,
+    pub worst: Vec<CoordReport>,
+}
+
+/// One direction of the report.
+#[derive(Clone, Debug, Serialize)]
+pub struct DirectionReport {
+    /// The tensor it spans, or "all" for a global direction.
+    pub scope: String,
+    pub analytic: f64,
+    pub numeric: f64,
+    pub rel_error: f64,
+    pub bound: f64,
+    pub status: &'static str,
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct CoverageReport {
+    pub sample: String,
+    pub default_sample: bool,
+    pub parameters: usize,
+    pub checked: usize,
+    pub directions_per_part: usize,
+}
+
+/// The JSON report of `plumb check` (docs/json.md).
+#[derive(Serialize)]
+pub struct CheckReport {
+    pub verdict: Verdict,
+    pub schema_version: u32,
+    pub command: &'static str,
+    pub description: PathBuf,
+    pub weights: WeightsSource,
+    pub data: DataSource,
+    pub samples: usize,
+    pub method: &'static str,
+    pub step_rule: String,
+    pub precision: &'static str,
+    pub tolerance: f64,
+    pub floor_fraction: f64,
+    pub loss: f64,
+    pub coverage: CoverageReport,
+    pub tensors: Vec<TensorReport>,
+    pub worst: Vec<CoordReport>,
+    pub directions: Vec<DirectionReport>,
+    pub findings: Vec<Finding>,
+}
+
+pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
+    let c = &result.coords[i];
+    CoordReport {
+        place: tensors.place(c.coord),
+        analytic: c.analytic,
+        numeric: c.numeric,
+        abs_error: c.abs_error,
+        rel_error: c.rel_error,
+        bound: c.bound,
+        step: c.step,
+        status: c.status.name(),
+    }
+}
+
+pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
+    let sample = args
+        .sample
+        .as_deref()
+        .map(Sample::parse)
+        .transpose()
+        .map_err(|e| anyhow::anyhow!("--sample: {e}"))?;
+    if let Some(t) = args.tolerance.filter(|t| !(t.is_finite() && *t > 0.0)) {
+        bail!("--tolerance {t}: give a finite relative tolerance > 0 (e.g. 1e-6)");
+    }
+    let mut config = CheckConfig::new(method(args.method), precision(args.precision));
+    config.step = step(args.step)?;
+    config.sample = sample;
+    config.directions = Some(args.directions);
+    config.seed = settings.seed;
+    config.tolerance = args.tolerance;
+    let loaded = load(&args.inputs, settings.seed)?;
+    let progress = Progress::new(settings, "checking");
+    let report = compute(&loaded, &config, args.worst, &|d, t| progress.update(d, t))?;
+    progress.finish();
+    let doc = document(&report);
+    settings.emit(&report, &doc)?;
+    Ok(report.verdict)
+}
+
+/// Runs the check and builds its report (shared with the demo).
+pub fn compute(
+    loaded: &Loaded,
+    config: &CheckConfig,
+    worst_n: usize,
+    progress: plumb_fd::Progress<'_>,
+) -> Result<CheckReport> {
+    let net = &loaded.desc.network;
+    let result = check(net, &loaded.weights, &loaded.batch, config, progress)?;
+    let tensors = Tensors::new(&loaded.desc);
+    let summaries = summarise(&result, &tensors.parts());
+    Ok(build(
+        loaded, &tensors, &result, &summaries, worst_n, config,
+    ))
+}
+
+fn build(
+    loaded: &Loaded,
+    tensors: &Tensors,
+    result: &CheckResult,
+    summaries: &[PartSummary],
+    worst_n: usize,
+    config: &CheckConfig,
+) -> CheckReport {
+    let mut findings = Vec::new();
+    let mut tensor_reports = Vec::new();
+    for (s, e) in summaries.iter().zip(&tensors.expected) {
+        let worst: Vec<CoordReport> = s
+            .worst
+            .iter()
+            .map(|&i| coord_report(tensors, result, i))
+            .collect();
+        if s.mismatches > 0 {
+            let w = &worst[0];
+            findings.push(
+                Finding::new(
+                    "gradient-mismatch",
+                    Severity::Error,
+                    format!(
+                        "{} of {} checked coordinates disagree beyond what {} differences can explain; worst at {} (layer {}, row {}, column {}{}, unit {}): analytic {}, numeric {}, relative error {}, bound {}",
+                        s.mismatches,
+                        s.checked,
+                        result.method,
+                        w.place.label(),
+                        w.place.layer,
+                        w.place.row,
+                        w.place.column,
+                        if w.place.bias { " = bias" } else { "" },
+                        w.place.unit,
+                        num(w.analytic),
+                        num(w.numeric),
+                        num(w.rel_error),
+                        num(w.bound),
+                    ),
+                )
+                .tensor(&e.name)
+                .layer(e.layer + 1)
+                .figure("mismatches", s.mismatches)
+                .figure("checked", s.checked)
+                .figure("max_rel_error", s.max_rel_error),
+            );
+        }
+        if s.direction_mismatches > 0 {
+            findings.push(
+                Finding::new(
+                    "direction-mismatch",
+                    Severity::Error,
+                    format!(
+                        "{} of {} random directions over this tensor disagree: its gradient is wrong somewhere, checked coordinate or not",
+                        s.direction_mismatches, s.directions
+                    ),
+                )
+                .tensor(&e.name)
+                .layer(e.layer + 1)
+                .figure("direction_mismatches", s.direction_mismatches),
+            );
+        }
+        if s.unreliable > 0 {
+            findings.push(
+                Finding::new(
+                    "kink-unreliable",
+                    Severity::Note,
+                    format!(
+                        "{} coordinate{} straddle a ReLU-like kink at every step tried (down to 1/1000 of the default), so finite differences cannot judge {}; not counted as mismatches",
+                        s.unreliable,
+                        if s.unreliable == 1 { "" } else { "s" },
+                        if s.unreliable == 1 { "it" } else { "them" }
+                    ),
+                )
+                .tensor(&e.name)
+                .layer(e.layer + 1)
+                .figure("unreliable", s.unreliable),
+            );
+        }
+        tensor_reports.push(TensorReport {
+            name: e.name.clone(),
+            layer: e.layer + 1,
+            parameters: s.parameters,
+            checked: s.checked,
+            max_rel_error: s.max_rel_error,
+            median_rel_error: s.median_rel_error,
+            norm_rel_error: s.norm_rel_error,
+            max_bound: s.max_bound,
+            median_bound: s.median_bound,
+            mismatches: s.mismatches,
+            unreliable: s.unreliable,
+            directions: s.directions,
+            direction_mismatches: s.direction_mismatches,
+            verdict: if s.passed() {
+                Verdict::Pass
+            } else {
+                Verdict::Fail
+            },
+            worst,
+        });
+    }
+    let global_bad = result
+        .directions
+        .iter()
+        .filter(|d| d.scope == Scope::Global && d.status == Status::Mismatch)
+        .count();
+    if global_bad > 0 {
+        findings.push(
+            Finding::new(
+                "direction-mismatch",
+                Severity::Error,
+                format!("{global_bad} random directions over the whole network disagree with the gradient"),
+            )
+            .figure("direction_mismatches", global_bad),
+        );
+    }
+    let retried = result.coords.iter().filter(|c| c.retried).count();
+    if retried > 0 {
+        findings.push(
+            Finding::new(
+                "kink-retried",
+                Severity::Note,
+                format!("{retried} coordinates straddled a kink at the default step and were checked with a smaller one"),
+            )
+            .figure("retried", retried),
+        );
+    }
+    let mut order: Vec<usize> = (0..result.coords.len()).collect();
+    order.sort_by(|&i, &j| {
+        let (a, b) = (&result.coords[i], &result.coords[j]);
+        (b.status, b.rel_error)
+            .partial_cmp(&(a.status, a.rel_error))
+            .unwrap_or(std::cmp::Ordering::Equal)
+    });
+    let worst = order
+        .iter()
+        .take(worst_n)
+        .map(|&i| coord_report(tensors, result, i))
+        .collect();
+    let directions = result
+        .directions
+        .iter()
+        .map(|d| DirectionReport {
+            scope: match d.scope {
+                Scope::Global => "all".to_string(),
+                Scope::Part { layer, bias } => tensors.name_of(layer, bias),
+            },
+            analytic: d.analytic,
+            numeric: d.numeric,
+            rel_error: d.rel_error,
+            bound: d.bound,
+            status: d.status.name(),
+        })
+        .collect();
+    let step_rule = match config.step {
+        Some(h) => format!("fixed h = {h:e} (--step)"),
+        None => result.method.step_rule().to_string(),
+    };
+    CheckReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "check",
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        samples: loaded.batch.len(),
+        method: result.method.name(),
+        step_rule,
+        precision: result.precision.name(),
+        tolerance: result.tolerance,
+        floor_fraction: FLOOR,
+        loss: result.loss,
+        coverage: CoverageReport {
+            sample: result.coverage.sample.to_string(),
+            default_sample: result.coverage.default_sample,
+            parameters: result.coverage.parameters,
+            checked: result.coverage.checked,
+            directions_per_part: result.coverage.directions,
+        },
+        tensors: tensor_reports,
+        worst,
+        directions,
+        findings,
+    }
+}
+
+/// What was covered, in one sentence.
+pub fn coverage_text(c: &CoverageReport) -> String {
+    let what = if c.checked == c.parameters {
+        format!("all {} parameters", c.parameters)
+    } else {
+        format!(
+            "{} of {} parameters (--sample {})",
+            c.checked, c.parameters, c.sample
+        )
+    };
+    let default = if c.default_sample && c.checked != c.parameters {
+        " — the default for networks over 20000 parameters; --sample all checks every one"
+    } else {
+        ""
+    };
+    format!(
+        "{what}{default}; plus {} random directions per tensor part and over the whole network",
+        c.directions_per_part
+    )
+}
+
+pub fn document(r: &CheckReport) -> Document {
+    let mut doc = Document::new("plumb check — finite differences against the reference gradient");
+    doc.push(Block::Facts(vec![
+        ("description".into(), r.description.display().to_string()),
+        ("weights".into(), r.weights.describe()),
+        ("data".into(), r.data.describe()),
+        ("method".into(), format!("{} ({}), in {}", r.method, r.step_rule, r.precision)),
+        ("coverage".into(), coverage_text(&r.coverage)),
+        (
+            "verdict rule".into(),
+            format!(
+                "mismatch when |a − n| exceeds the method's own error bound and the relative error |a − n| / max(|a|, |n|, {}% of the layer's largest |a|) exceeds {:e}",
+                (r.floor_fraction * 100.0).round(),
+                r.tolerance
+            ),
+        ),
+    ]));
+    let mut t = Table::new([
+        "tensor",
+        "parameters",
+        "checked",
+        "max rel",
+        "median rel",
+        "bound",
+        "mismatch",
+        "unreliable",
+        "directions",
+        "verdict",
+    ]);
+    for tr in &r.tensors {
+        let bad = |n: usize| if n > 0 { Tone::Bad } else { Tone::Plain };
+        t.push([
+            Cell::from(tr.name.clone()),
+            Cell::from(tr.parameters.to_string()),
+            Cell::from(tr.checked.to_string()),
+            Cell::new(num(tr.max_rel_error), bad(tr.mismatches)),
+            Cell::from(num(tr.median_rel_error)),
+            Cell::from(num(tr.median_bound)),
+            Cell::new(tr.mismatches.to_string(), bad(tr.mismatches)),
+            Cell::new(
+                tr.unreliable.to_string(),
+                if tr.unreliable > 0 {
+                    Tone::Warn
+                } else {
+                    Tone::Plain
+                },
+            ),
+            Cell::new(
+                format!(
+                    "{}/{}",
+                    tr.directions - tr.direction_mismatches,
+                    tr.directions
+                ),
+                bad(tr.direction_mismatches),
+            ),
+            verdict_cell(tr.verdict),
+        ]);
+    }
+    doc.push(Block::Table(t));
+    if !r.worst.is_empty() {
+        doc.push(Block::Heading("worst coordinates".into()));
+        doc.push(Block::Table(worst_table(&r.worst)));
+    }
+    doc.push(Block::Findings(r.findings.clone()));
+    let errors = r
+        .findings
+        .iter()
+        .filter(|f| f.severity == Severity::Error)
+        .count();
+    let summary = if errors == 0 {
+        format!(
+            "the reference gradient agrees with {} differences on everything checked",
+            r.method
+        )
+    } else {
+        format!(
+            "{errors} disagreement finding{}",
+            if errors == 1 { "" } else { "s" }
+        )
+    };
+    doc.push(Block::Verdict(r.verdict, summary));
+    doc
+}
+
+pub fn verdict_cell(v: Verdict) -> Cell {
+    match v {
+        Verdict::Pass => Cell::new("pass", Tone::Good),
+        Verdict::Fail => Cell::new("fail", Tone::Bad),
+    }
+}
+
+pub fn worst_table(worst: &[CoordReport]) -> Table {
+    let mut t = Table::new([
+        "where",
+        "layer",
+        "row",
+        "col",
+        "unit",
+        "analytic",
+        "numeric",
+        "rel error",
+        "rel bound",
+        "status",
+    ]);
+    for w in worst {
+        let tone = match w.status {
+            "mismatch" => Tone::Bad,
+            "unreliable" => Tone::Warn,
+            _ => Tone::Plain,
+        };
+        t.push([
+            Cell::from(w.place.label()),
+            Cell::from(w.place.layer.to_string()),
+            Cell::from(w.place.row.to_string()),
+            Cell::from(if w.place.bias {
+                "0 (bias)".to_string()
+            } else {
+                w.place.column.to_string()
+            }),
+            Cell::from(w.place.unit.to_string()),
+            Cell::from(format!("{:.9e}", w.analytic)),
+            Cell::from(format!("{:.9e}", w.numeric)),
+            Cell::new(num(w.rel_error), tone),
+            Cell::from(num(
+                w.bound / w.analytic.abs().max(w.numeric.abs()).max(f64::MIN_POSITIVE)
+            )),
+            Cell::new(w.status, tone),
+        ]);
+    }
+    t
+}

@@ -1,0 +1,117 @@
+//! Where a coordinate of the engine's augmented matrices sits in the weight file's own tensors.
+
+use plumb_engine::Coord;
+use plumb_fd::Part;
+use plumb_formats::{Description, ExpectedTensor, Layout, Role, expected_tensors};
+use serde::Serialize;
+
+/// A coordinate located for people and for JSON.
+#[derive(Clone, Debug, Serialize)]
+pub struct Place {
+    /// The tensor of the weight file, under the description's layout.
+    pub tensor: String,
+    /// Its index in that tensor's own shape.
+    pub index: Vec<usize>,
+    /// 1-based layer, and the augmented matrix's row and column (column 0: the bias weight).
+    pub layer: usize,
+    pub row: usize,
+    pub column: usize,
+    /// 1-based unit of layer j+1 the weight feeds.
+    pub unit: usize,
+    pub bias: bool,
+}
+
+impl Place {
+    /// `layer2.weight[3, 1]`.
+    pub fn label(&self) -> String {
+        let idx: Vec<String> = self.index.iter().map(usize::to_string).collect();
+        format!("{}[{}]", self.tensor, idx.join(", "))
+    }
+}
+
+/// The tensors of the description's layout, as parts of the network with their sizes.
+pub struct Tensors {
+    pub expected: Vec<ExpectedTensor>,
+    layout: Layout,
+}
+
+impl Tensors {
+    pub fn new(desc: &Description) -> Tensors {
+        Tensors {
+            expected: expected_tensors(desc, desc.layout),
+            layout: desc.layout,
+        }
+    }
+
+    /// Each tensor as an fd part, with its parameter count.
+    pub fn parts(&self) -> Vec<(Part, usize)> {
+        self.expected
+            .iter()
+            .map(|e| {
+                let part = Part {
+                    layer: e.layer,
+                    bias: e.role != Role::Weight,
+                    weights: e.role != Role::Bias,
+                };
+                (part, e.shape.iter().product())
+            })
+            .collect()
+    }
+
+    /// The tensor holding a coordinate and its index there.
+    pub fn place(&self, c: Coord) -> Place {
+        let e = self
+            .expected
+            .iter()
+            .find(|e| {
+                e.layer == c.layer
+                    && match e.role {
+                        Role::Augmented => true,
+                        Role::Bias => c.col == 0,
+                        Role::Weight => c.col > 0,
+                    }
+            })
+            .expect("every coordinate belongs to a tensor of the layout");
+        let index = match (e.role, self.layout) {
+            (Role::Augmented, _) => vec![c.row, c.col],
+            (Role::Bias, _) => vec![c.row],
+            (Role::Weight, Layout::SplitTransposed) => vec![c.col - 1, c.row],
+            (Role::Weight, _) => vec![c.row, c.col - 1],
+        };
+        Place {
+            tensor: e.name.clone(),
+            index,
+            layer: c.layer + 1,
+            row: c.row,
+            column: c.col,
+            unit: c.row + 1,
+            bias: c.col == 0,
+        }
+    }
+
+    /// The tensor a direction's span belongs to.
+    pub fn name_of(&self, layer: usize, bias: bool) -> String {
+        self.expected
+            .iter()
+            .find(|e| {
+                e.layer == layer
+                    && match e.role {
+                        Role::Augmented => true,
+                        Role::Bias => bias,
+                        Role::Weight => !bias,
+                    }
+            })
+            .map(|e| {
+                if e.role == Role::Augmented {
+                    format!(
+                        "{} ({})",
+                        e.name,
+                        if bias { "bias column" } else { "weights" }
+                    )
+                } else {
+                    e.name.clone()
+                }
+            })
+            .unwrap_or_default()
+    }
+}
