@@ -26,7 +26,9 @@ fn written_files_replay_the_demo() {
     let demo = plumb(&["demo", "--write", d, "--format", "json"]);
     demo.assert_code(0);
     let shown = demo.json()["grad"]["loss"].as_f64().unwrap();
-    assert_eq!(demo.json()["written"].as_array().unwrap().len(), 4);
+    assert_eq!(demo.json()["written"].as_array().unwrap().len(), 5);
+    let readme = std::fs::read_to_string(dir.join("pump-README.txt")).unwrap();
+    assert!(readme.contains("invented"));
 
     plumb_in(&dir, &["shapes", "pump.toml", "-w", "pump-weights.npz"]).assert_code(0);
     let bad = plumb_in(

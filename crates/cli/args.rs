@@ -103,7 +103,7 @@ pub struct GradArgs {
     /// (.npz, .safetensors, or .npy for a one-tensor layout).
     #[arg(short, long, value_name = "G")]
     pub output: Option<PathBuf>,
-    /// Element type of the gradient file [default: that of the weight file, f64 without one].
+    /// Element type of the gradient file [default: f64 for float64 weights or none, else f32].
     #[arg(long, value_enum)]
     pub dtype: Option<DTypeArg>,
     /// Let -o replace a file that already exists.

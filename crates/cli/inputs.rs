@@ -5,7 +5,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
 use plumb_audit::audit_shapes;
-use plumb_engine::{Batch, Init, Rng, Weights};
+use plumb_engine::{Batch, Init, Loss, Rng, Weights};
 use plumb_formats::{
     DType, Description, FileFormat, TensorFile, assemble, read_data, read_tensors,
 };
@@ -16,6 +16,8 @@ use crate::args::{InitArg, Inputs};
 
 /// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo.
 const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
+/// The most pre-activation and activation values a forward pass may hold (2²⁷ = 1 GiB of f64).
+const MAX_ACTIVATION_VALUES: usize = 1 << 27;
 
 /// Where the weights came from.
 #[derive(Clone, Debug, Serialize)]
@@ -153,6 +155,20 @@ pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
             )
         }
     };
+    let units: usize = net.inputs() + net.layers().iter().map(|l| l.units).sum::<usize>();
+    let values = batch.len().checked_mul(2 * units);
+    if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
+        bail!(
+            "{}: a batch of {} samples through this network needs {} activation values, more than the {} plumb holds; use fewer samples (--batch, or a smaller data file) or check the unit counts",
+            desc.path.display(),
+            batch.len(),
+            values.map_or("too many".to_string(), |v| v.to_string()),
+            MAX_ACTIVATION_VALUES
+        );
+    }
+    if net.loss() == Loss::CrossEntropy {
+        check_probabilities(&batch, &data_source)?;
+    }
     Ok(Loaded {
         desc,
         weights,
@@ -160,6 +176,68 @@ pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
         batch,
         data_source,
     })
+}
+
+/// Cross-entropy needs targets in [0, 1]: one-hot labels or probabilities.
+fn check_probabilities(batch: &Batch, source: &DataSource) -> Result<()> {
+    let bad = batch
+        .y
+        .indexed_iter()
+        .find(|(_, v)| !(0.0..=1.0).contains(*v));
+    if let Some(((i, k), v)) = bad {
+        let place = match source {
+            DataSource::File { path, .. } => {
+                let line = if path
+                    .extension()
+                    .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
+                {
+                    format!(" (line {})", i + 2)
+                } else {
+                    String::new()
+                };
+                format!(
+                    "{}: sample {}{line}, target {}",
+                    path.display(),
+                    i + 1,
+                    k + 1
+                )
+            }
+            DataSource::Synthetic { .. } => format!("synthetic sample {}, target {}", i + 1, k + 1),
+        };
+        bail!(
+            "{place}: {v} is outside [0, 1]; cross-entropy needs targets between 0 and 1 (one-hot labels or probabilities) — use squared-error for other targets"
+        );
+    }
+    Ok(())
+}
+
+/// Non-finite weights make every figure meaningless: name the first, and how many there are.
+fn check_finite(file: &TensorFile, path: &Path) -> Result<()> {
+    for t in &file.tensors {
+        let mut bad = t.data.iter().enumerate().filter(|(_, v)| !v.is_finite());
+        if let Some((k, v)) = bad.next() {
+            let more = bad.count();
+            let mut index = vec![0; t.shape.len()];
+            let mut rest = k;
+            for (i, &d) in t.shape.iter().enumerate().rev() {
+                index[i] = rest % d.max(1);
+                rest /= d.max(1);
+            }
+            let idx: Vec<String> = index.iter().map(usize::to_string).collect();
+            bail!(
+                "{}: tensor `{}` holds {v} at [{}]{}; a loss or gradient of such weights means nothing — fix the export (byte order or dtype?) or the training run that produced it",
+                path.display(),
+                t.name,
+                idx.join(", "),
+                if more > 0 {
+                    format!(" and {more} more non-finite values")
+                } else {
+                    String::new()
+                }
+            );
+        }
+    }
+    Ok(())
 }
 
 /// The weights of a file, after the dimension audit has found nothing wrong with it.
@@ -185,6 +263,7 @@ fn weights_from_file(desc: &Description, file: &TensorFile, path: &Path) -> Resu
             path.display()
         );
     }
+    check_finite(file, path)?;
     Ok(assemble(desc, file, path)?)
 }
 

@@ -30,8 +30,21 @@ fn main() -> ExitCode {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,
         Ok(Verdict::Fail) => ExitCode::from(1),
         Err(e) => {
-            eprintln!("plumb: error: {e:#}");
+            eprintln!("plumb: error: {}", message(&e));
             ExitCode::from(2)
         }
     }
+}
+
+/// The error and its causes, leaving out a cause whose text the message already carries.
+fn message(e: &anyhow::Error) -> String {
+    let mut out = e.to_string();
+    for cause in e.chain().skip(1) {
+        let text = cause.to_string();
+        if !out.contains(&text) {
+            out.push_str(": ");
+            out.push_str(&text);
+        }
+    }
+    out
 }

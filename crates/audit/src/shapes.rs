@@ -8,8 +8,8 @@
 use std::collections::BTreeSet;
 
 use plumb_formats::{
-    Description, ExpectedTensor, Layout, Role, Tensor, TensorFile, expected_tensors, shape_fits,
-    shape_text,
+    Description, ExpectedTensor, Layout, Role, Tensor, TensorFile, bind, expected_tensors,
+    shape_fits, shape_text,
 };
 use plumb_report::{Finding, Severity, Verdict};
 use serde::Serialize;
@@ -81,6 +81,8 @@ pub struct ShapeAudit {
 
 /// Audits a weight file (or, with `None`, just lists what the description expects).
 pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit {
+    let bound = file.map(|f| bind(desc, f));
+    let file = bound.as_deref();
     let expected = expected_tensors(desc, desc.layout);
     let mut findings = Vec::new();
     let mut detected_layout = None;
@@ -351,13 +353,14 @@ fn explain_wrong_shape(
     statuses: &[(Option<&Tensor>, Status)],
 ) -> (&'static str, String) {
     let layer = e.layer + 1;
-    // Another layer expects exactly this shape in this role, and its own tensor does not fit it:
-    // the layers are stored in another order.
-    if let Some(other) = all.iter().zip(statuses).find_map(|(o, (_, st))| {
+    // Another layer expects exactly this shape in this role, and its tensor has the shape this
+    // layer expects: the two are swapped, the layers stored in another order.
+    if let Some(other) = all.iter().zip(statuses).find_map(|(o, (t, st))| {
         (o.layer != e.layer
             && o.role == e.role
             && *st != Status::Ok
-            && shape_fits(o.role, &o.shape, found))
+            && shape_fits(o.role, &o.shape, found)
+            && t.is_some_and(|t| shape_fits(e.role, &e.shape, &t.shape)))
         .then_some(o)
     }) {
         return (

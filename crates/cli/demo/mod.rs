@@ -277,6 +277,7 @@ fn write_files(
         "pump-weights.npz",
         "pump-weights-transposed.npz",
         "pump-data.csv",
+        "pump-README.txt",
     ];
     let paths: Vec<PathBuf> = files.iter().map(|f| dir.join(f)).collect();
     if let Some(p) = paths.iter().find(|p| !force && p.exists()) {
@@ -292,5 +293,15 @@ fn write_files(
     write_tensors(&paths[2], FileFormat::Npz, &planted.tensors, DType::F64)?;
     write_atomically(&paths[3], pump.csv().as_bytes())
         .with_context(|| format!("{}: cannot write", paths[3].display()))?;
+    let readme = format!(
+        "plumb demo files\n\n{INVENTED}\n\n\
+         pump.toml                    the network description\n\
+         pump-weights.npz             weights trained by plumb on the invented data (augmented layout)\n\
+         pump-weights-transposed.npz  the same with layer 2 transposed: a planted exporter mistake\n\
+         pump-data.csv                the invented readings, standardised (z-scores), and the state\n\
+         \x20                            label (0 normal, 1 cavitating, 2 bearing wear)\n"
+    );
+    write_atomically(&paths[4], readme.as_bytes())
+        .with_context(|| format!("{}: cannot write", paths[4].display()))?;
     Ok(paths)
 }

@@ -9,12 +9,12 @@ use ndarray::Array2;
 use plumb_engine::{Batch, Init, Rng, Weights};
 use plumb_formats::Description;
 
-/// The sensor readings, in the order of the input columns.
+/// The sensor readings, in the order of the input columns (standardised: z-scores, no units).
 pub const FEATURES: [&str; 4] = [
-    "suction_kpa",
-    "discharge_kpa",
-    "vibration_mm_s",
-    "motor_current_a",
+    "suction_pressure_z",
+    "discharge_pressure_z",
+    "vibration_rms_z",
+    "motor_current_z",
 ];
 
 /// The pump states, in the order of the output units.

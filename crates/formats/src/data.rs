@@ -23,7 +23,6 @@ pub enum DataError {
     #[error("{}: cannot read the file: {source}", .path.display())]
     Io {
         path: PathBuf,
-        #[source]
         source: std::io::Error,
     },
 
@@ -95,7 +94,6 @@ pub enum DataError {
     Csv {
         path: PathBuf,
         line: u64,
-        #[source]
         source: csv::Error,
     },
 
@@ -199,10 +197,11 @@ enum Targets {
 }
 
 fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
-    let bytes = std::fs::read(path).map_err(|source| DataError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
+    let bytes =
+        crate::input::read_input(path, crate::MAX_DATA_BYTES).map_err(|source| DataError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
         // Row lengths are checked here, to report them with the header's count.

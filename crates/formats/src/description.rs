@@ -95,9 +95,10 @@ fn place(line: Option<usize>, column: Option<usize>) -> String {
     }
 }
 
-/// The largest network plumb accepts: 2²⁸ parameters (2 GiB per copy in f64), far beyond any
-/// hand-written network, and a guard against a typo that would ask for terabytes.
-pub const MAX_PARAMETERS: usize = 1 << 28;
+/// The largest network plumb accepts: 2²⁶ parameters (512 MiB per copy in f64; a check holds a few
+/// copies), far beyond any hand-written network, and a guard against a typo that would ask for
+/// terabytes.
+pub const MAX_PARAMETERS: usize = 1 << 26;
 
 const TOP_KEYS: [&str; 5] = ["inputs", "loss", "l2", "layout", "layer"];
 const LAYER_KEYS: [&str; 6] = ["units", "activation", "slope", "alpha", "weight", "bias"];
@@ -105,11 +106,13 @@ const LAYER_KEYS: [&str; 6] = ["units", "activation", "slope", "alpha", "weight"
 impl Description {
     /// Reads and validates a description file.
     pub fn read(path: &Path) -> Result<Description, DescriptionError> {
-        let bytes = std::fs::read(path).map_err(|e| DescriptionError {
-            path: path.to_path_buf(),
-            line: None,
-            column: None,
-            message: format!("cannot read the network description: {e}"),
+        let bytes = crate::input::read_input(path, crate::MAX_DESCRIPTION_BYTES).map_err(|e| {
+            DescriptionError {
+                path: path.to_path_buf(),
+                line: None,
+                column: None,
+                message: format!("cannot read the network description: {e}"),
+            }
         })?;
         let text = String::from_utf8(bytes).map_err(|e| {
             let offset = e.utf8_error().valid_up_to();
@@ -328,12 +331,33 @@ impl<'a> Parser<'a> {
             self.error(span, e.to_string())
         })?;
 
-        Ok(Description {
+        let desc = Description {
             path: self.path.to_path_buf(),
             layout,
             layers,
             network,
-        })
+        };
+        // Two layers (or a weight and a bias) under one name would read one tensor twice.
+        let names = crate::layout::expected_tensors(&desc, layout);
+        for (i, a) in names.iter().enumerate() {
+            if let Some(b) = names[..i].iter().find(|b| b.name == a.name) {
+                let line = desc.layers[a.layer].line;
+                return Err(DescriptionError {
+                    path: self.path.to_path_buf(),
+                    line: Some(line),
+                    column: None,
+                    message: format!(
+                        "the tensor name `{}` is used twice: by layer {}'s {} and by layer {}'s {}; give each tensor its own name",
+                        a.name,
+                        b.layer + 1,
+                        b.role.name(),
+                        a.layer + 1,
+                        a.role.name()
+                    ),
+                });
+            }
+        }
+        Ok(desc)
     }
 
     fn layer(
@@ -737,6 +761,18 @@ activation = "softmax"
         assert!(e.message.contains("augmented layout keeps the bias"), "{e}");
         let d = parse(&format!("layout = \"split\"\n{text}")).unwrap();
         assert_eq!(d.layers[1].bias.as_deref(), Some("out.b"));
+    }
+
+    #[test]
+    fn tensor_names_must_be_distinct() {
+        let text = format!("layout = \"split\"\n{GOOD}")
+            .replace("units = 3\n", "units = 3\nweight = \"layer1.weight\"\n");
+        let e = parse(&text).unwrap_err();
+        assert!(e.message.contains("`layer1.weight` is used twice"), "{e}");
+        assert_eq!(e.line, Some(12));
+        let text = format!("layout = \"split\"\n{GOOD}")
+            .replace("units = 3\n", "units = 3\nweight = \"w\"\nbias = \"w\"\n");
+        assert!(parse(&text).is_err());
     }
 
     #[test]

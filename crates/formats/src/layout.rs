@@ -101,6 +101,20 @@ pub fn shape_fits(role: Role, expected: &[usize], found: &[usize]) -> bool {
         && found.iter().product::<usize>() == expected[0]
 }
 
+/// A `.npy` file holds one tensor, named after the file; when the layout expects exactly one
+/// tensor, that is the one, whatever the file is called.
+pub fn bind<'f>(desc: &Description, file: &'f TensorFile) -> std::borrow::Cow<'f, TensorFile> {
+    let expected = expected_tensors(desc, desc.layout);
+    match (file.format, file.tensors.as_slice(), expected.as_slice()) {
+        (crate::FileFormat::Npy, [t], [e]) if t.name != e.name => {
+            let mut renamed = file.clone();
+            renamed.tensors[0].name = e.name.clone();
+            std::borrow::Cow::Owned(renamed)
+        }
+        _ => std::borrow::Cow::Borrowed(file),
+    }
+}
+
 /// The weights of a file as the engine's augmented matrices, under the description's layout.
 /// Tensors the layout does not use are ignored here (`plumb shapes` reports them).
 pub fn assemble(
@@ -108,6 +122,8 @@ pub fn assemble(
     file: &TensorFile,
     path: &Path,
 ) -> Result<Weights<f64>, LayoutError> {
+    let bound = bind(desc, file);
+    let file: &TensorFile = &bound;
     let err = |tensor: &str, message: String| LayoutError {
         path: path.to_path_buf(),
         tensor: tensor.to_string(),

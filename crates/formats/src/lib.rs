@@ -8,6 +8,7 @@
 mod atomic;
 mod data;
 mod description;
+mod input;
 mod layout;
 mod npy;
 mod npz;
@@ -15,10 +16,17 @@ mod safetensors_file;
 mod tensor;
 
 pub use atomic::write_atomically;
+
+/// The largest weight or gradient file plumb reads (16 GiB).
+pub const MAX_TENSOR_BYTES: u64 = 16 << 30;
+/// The largest data file plumb reads (4 GiB).
+pub const MAX_DATA_BYTES: u64 = 4 << 30;
+/// The largest network description plumb reads (1 MiB: a description is a few lines).
+pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout};
 pub use layout::{
-    ExpectedTensor, LayoutError, Role, assemble, disassemble, expected_tensors, shape_fits,
+    ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
     shape_text,
 };
 pub use tensor::{

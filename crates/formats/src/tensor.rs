@@ -200,7 +200,6 @@ pub enum TensorFileError {
     Io {
         path: PathBuf,
         action: &'static str,
-        #[source]
         source: std::io::Error,
     },
 
@@ -318,7 +317,6 @@ pub enum TensorFileError {
     Zip {
         path: PathBuf,
         member: Option<String>,
-        #[source]
         source: zip::result::ZipError,
     },
 
@@ -346,7 +344,6 @@ pub enum TensorFileError {
         path: PathBuf,
         /// What the library's complaint most likely means.
         hint: &'static str,
-        #[source]
         source: safetensors::SafeTensorError,
     },
 
@@ -474,10 +471,12 @@ fn writer(format: FileFormat) -> &'static str {
 pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
     let format = FileFormat::from_path(path);
     // Reading the whole file bounds every later allocation by what is really there.
-    let bytes = std::fs::read(path).map_err(|source| TensorFileError::Io {
-        path: path.to_path_buf(),
-        action: "read",
-        source,
+    let bytes = crate::input::read_input(path, crate::MAX_TENSOR_BYTES).map_err(|source| {
+        TensorFileError::Io {
+            path: path.to_path_buf(),
+            action: "read",
+            source,
+        }
     })?;
     let content = FileFormat::sniff(&bytes);
     let Some(format) = format else {

@@ -1,0 +1,154 @@
+//! Regression tests, each named after what it guards (found in review of the first version).
+
+mod util;
+
+use util::{plumb, plumb_in, scratch};
+
+#[test]
+fn a_npy_gradient_plumb_wrote_reads_back_as_weights() {
+    let dir = scratch("npy-back");
+    std::fs::write(
+        dir.join("one.toml"),
+        "inputs = 3\nloss = \"squared-error\"\n[[layer]]\nunits = 2\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    plumb_in(&dir, &["grad", "one.toml", "-o", "g1.npy"]).assert_code(0);
+    plumb_in(&dir, &["shapes", "one.toml", "-w", "g1.npy"]).assert_code(0);
+    plumb_in(&dir, &["grad", "one.toml", "-w", "g1.npy"]).assert_code(0);
+}
+
+#[test]
+fn missing_bias_columns_everywhere_are_not_called_a_layer_swap() {
+    let run = plumb(&[
+        "shapes",
+        "nets/five-four-four.toml",
+        "-w",
+        "weights/mistakes/bias-missing-everywhere.npz",
+        "--format",
+        "json",
+    ]);
+    run.assert_code(1);
+    let j = run.json();
+    let codes: Vec<&str> = j["findings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f["code"].as_str().unwrap())
+        .collect();
+    assert_eq!(
+        codes
+            .iter()
+            .filter(|c| **c == "bias-column-missing")
+            .count(),
+        2,
+        "{codes:?}"
+    );
+    assert!(!codes.contains(&"layers-out-of-order"), "{codes:?}");
+}
+
+#[test]
+fn one_tensor_name_for_two_layers_is_refused() {
+    let dir = scratch("dup-names");
+    std::fs::write(
+        dir.join("dup.toml"),
+        "inputs = 2\nloss = \"squared-error\"\nlayout = \"split\"\n[[layer]]\nunits = 2\nactivation = \"tanh\"\nweight = \"w\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\nweight = \"w\"\n",
+    )
+    .unwrap();
+    let run = plumb_in(&dir, &["shapes", "dup.toml"]);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("dup.toml:8") && run.stderr.contains("`w` is used twice"),
+        "{}",
+        run.stderr
+    );
+}
+
+#[test]
+fn cross_entropy_targets_outside_zero_to_one_are_refused() {
+    let dir = scratch("ce-targets");
+    std::fs::write(
+        dir.join("d.csv"),
+        "f1,f2,f3,f4,t1,t2,t3\n0,0,0,0,0,1,0\n1,2,3,4,0,5,1\n",
+    )
+    .unwrap();
+    let d = dir.join("d.csv");
+    let run = plumb(&["grad", "nets/small.toml", "-d", d.to_str().unwrap()]);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("sample 2 (line 3), target 2") && run.stderr.contains("outside [0, 1]"),
+        "{}",
+        run.stderr
+    );
+}
+
+#[test]
+fn non_finite_weights_are_located_and_refused() {
+    // A 5 × 5 float64 NPY written here byte by byte (the NPY 1.0 layout: magic, version, header
+    // length, header padded to 64 bytes), entry 7 — row 1, column 2 — a NaN.
+    let dir = scratch("nan");
+    let file = dir.join("nan.npy");
+    let mut bytes = Vec::new();
+    bytes.extend_from_slice(b"\x93NUMPY\x01\x00");
+    let header = "{'descr': '<f8', 'fortran_order': False, 'shape': (5, 5), }";
+    let mut h = header.to_string();
+    while !(10 + h.len() + 1).is_multiple_of(64) {
+        h.push(' ');
+    }
+    h.push('\n');
+    bytes.extend_from_slice(&(h.len() as u16).to_le_bytes());
+    bytes.extend_from_slice(h.as_bytes());
+    for k in 0..25 {
+        let v = if k == 7 { f64::NAN } else { 0.1 * k as f64 };
+        bytes.extend_from_slice(&v.to_le_bytes());
+    }
+    std::fs::write(&file, bytes).unwrap();
+    std::fs::write(
+        dir.join("one.toml"),
+        "inputs = 4\nloss = \"squared-error\"\n[[layer]]\nunits = 5\nactivation = \"tanh\"\n",
+    )
+    .unwrap();
+    let run = plumb_in(&dir, &["grad", "one.toml", "-w", "nan.npy"]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("holds NaN at [1, 2]"), "{}", run.stderr);
+}
+
+#[test]
+fn devices_and_directories_are_never_read() {
+    for args in [
+        vec!["shapes", "nets/small.toml", "-w", "/dev/zero"],
+        vec!["shapes", "/dev/zero"],
+        vec!["grad", "nets/small.toml", "-d", "/dev/zero"],
+        vec!["shapes", "nets/small.toml", "-w", "weights"],
+    ] {
+        let run = plumb(&args);
+        run.assert_code(2);
+        assert!(
+            run.stderr.contains("regular file")
+                || run.stderr.contains("directory")
+                || run.stderr.contains("extension"),
+            "{args:?}: {}",
+            run.stderr
+        );
+    }
+}
+
+#[test]
+fn a_network_too_large_to_hold_is_refused_before_allocating() {
+    let dir = scratch("huge");
+    std::fs::write(
+        dir.join("wide.toml"),
+        "inputs = 1\nloss = \"squared-error\"\n[[layer]]\nunits = 30000000\nactivation = \"identity\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    let run = plumb_in(&dir, &["grad", "wide.toml"]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("wide.toml:7"), "{}", run.stderr);
+    std::fs::write(
+        dir.join("deep.toml"),
+        "inputs = 1\nloss = \"squared-error\"\n[[layer]]\nunits = 3000000\nactivation = \"identity\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    let run = plumb_in(&dir, &["grad", "deep.toml", "--batch", "64"]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("activation values"), "{}", run.stderr);
+}
