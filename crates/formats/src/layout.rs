@@ -6,6 +6,7 @@ use ndarray::{Array2, s};
 use plumb_engine::Weights;
 use thiserror::Error;
 
+use crate::tensor::shape_text;
 use crate::{DType, Description, Layout, Tensor, TensorFile};
 
 /// What part of a layer a tensor holds.
@@ -225,19 +226,4 @@ pub fn disassemble(desc: &Description, weights: &Weights<f64>) -> Vec<Tensor> {
 
 fn matrix(t: &Tensor, rows: usize, cols: usize) -> Array2<f64> {
     Array2::from_shape_vec((rows, cols), t.data.clone()).expect("shape checked against the data")
-}
-
-/// A shape as NumPy prints it: (3, 4), (5,), ().
-pub fn shape_text(shape: &[usize]) -> String {
-    match shape {
-        [n] => format!("({n},)"),
-        _ => format!(
-            "({})",
-            shape
-                .iter()
-                .map(usize::to_string)
-                .collect::<Vec<_>>()
-                .join(", ")
-        ),
-    }
 }

@@ -4,6 +4,18 @@
 //! Formats know nothing of gradients: they turn bytes into named tensors, networks and batches, and
 //! back. Every error names the file and the place in it (key and line, tensor, byte offset), says
 //! what is wrong and how to fix it.
+//!
+//! ```
+//! use std::path::Path;
+//! use plumb_formats::{Description, Layout, expected_tensors};
+//!
+//! let text = "inputs = 4\nloss = \"cross-entropy\"\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n";
+//! let desc = Description::parse(Path::new("net.toml"), text)?;
+//! let split: Vec<(String, Vec<usize>)> =
+//!     expected_tensors(&desc, Layout::Split).into_iter().map(|t| (t.name, t.shape)).collect();
+//! assert_eq!(split, [("layer1.weight".into(), vec![3, 4]), ("layer1.bias".into(), vec![3])]);
+//! # Ok::<(), plumb_formats::DescriptionError>(())
+//! ```
 
 mod atomic;
 mod data;
@@ -27,8 +39,7 @@ pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout};
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
-    shape_text,
 };
 pub use tensor::{
-    DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, write_tensors,
+    DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, shape_text, write_tensors,
 };

@@ -405,7 +405,7 @@ fn byte_count(shape: &[usize], dtype: DType) -> u128 {
 }
 
 /// A shape as Python prints a tuple: `(3, 4)`, `(3,)`, `()`.
-pub(crate) fn shape_text(shape: &[usize]) -> String {
+pub fn shape_text(shape: &[usize]) -> String {
     match shape {
         [] => "()".to_string(),
         [n] => format!("({n},)"),
