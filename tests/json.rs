@@ -387,3 +387,125 @@ fn check_and_sweep_report_schemas() {
         ("sweep", 1, 5)
     );
 }
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct DiagnosisJson {
+    code: String,
+    detail: Option<String>,
+    residual: Option<f64>,
+    factor: Option<f64>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct PlaceJson {
+    tensor: String,
+    index: Vec<usize>,
+    layer: usize,
+    row: usize,
+    column: usize,
+    unit: usize,
+    bias: bool,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct WorstJson {
+    place: Option<PlaceJson>,
+    index: Vec<usize>,
+    outside: f64,
+    reference: f64,
+    rel_error: f64,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct CompareTensor {
+    name: String,
+    verdict: String,
+    expected_shape: Vec<usize>,
+    found_shape: Option<Vec<usize>>,
+    max_rel_error: Option<f64>,
+    median_rel_error: Option<f64>,
+    cosine: Option<f64>,
+    scale: Option<f64>,
+    worst: Option<WorstJson>,
+    diagnosis: Option<DiagnosisJson>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Certification {
+    method: String,
+    checked: usize,
+    parameters: usize,
+    max_rel_error: f64,
+    certified: bool,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct LossJson {
+    outside: f64,
+    reference: f64,
+    rel_error: f64,
+    matches: bool,
+    explanation: Option<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct Compare {
+    verdict: String,
+    schema_version: u32,
+    command: String,
+    description: String,
+    weights: WeightsSource,
+    data: DataSource,
+    gradient: String,
+    precision: String,
+    tolerance: f64,
+    residual_tolerance: f64,
+    reference: Certification,
+    loss: Option<LossJson>,
+    tensors: Vec<CompareTensor>,
+    findings: Vec<Finding>,
+}
+
+#[test]
+fn compare_report_schema() {
+    for (g, verdict) in [
+        ("compare/correct-f64.npz", "pass"),
+        ("compare/layers-swapped.npz", "fail"),
+        ("compare/constant-factor.npz", "fail"),
+    ] {
+        let run = plumb(&[
+            "compare",
+            "nets/compare.toml",
+            "-w",
+            "weights/compare.npz",
+            "-d",
+            "data/compare.csv",
+            "-g",
+            g,
+            "--loss",
+            "1.0",
+            "--format",
+            "json",
+        ]);
+        assert_eq!(first_key(&run.stdout), "\"verdict\"");
+        let r: Compare = serde_json::from_str(&run.stdout)
+            .unwrap_or_else(|e| panic!("{g}: {e}\n{}", run.stdout));
+        assert_eq!(r.command, "compare");
+        assert_eq!(r.tensors.len(), 3);
+        let _ = verdict;
+    }
+}

@@ -53,6 +53,8 @@ pub enum Command {
     Check(CheckArgs),
     /// Error against step size for chosen coordinates, per method (the V-curve).
     Sweep(SweepArgs),
+    /// An outside gradient file against the reference, with the diagnosis of what is wrong.
+    Compare(CompareArgs),
 }
 
 #[derive(Debug, Args)]
@@ -162,6 +164,19 @@ pub struct SweepArgs {
     /// Let --plot replace a file that already exists.
     #[arg(long)]
     pub force: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct CompareArgs {
+    #[command(flatten)]
+    pub inputs: Inputs,
+    /// The outside gradient (.npy, .npz, .safetensors): one tensor per weight tensor, same names and
+    /// shapes. Its dtype sets the precision expected.
+    #[arg(short, long = "gradient", value_name = "G")]
+    pub gradient: PathBuf,
+    /// The loss the outside code computed for the same weights and data, to compare as well.
+    #[arg(long, value_name = "VALUE", allow_hyphen_values = true)]
+    pub loss: Option<f64>,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

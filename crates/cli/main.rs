@@ -25,6 +25,7 @@ fn main() -> ExitCode {
         Command::Grad(a) => commands::grad::run(a, &settings),
         Command::Check(a) => commands::check::run(a, &settings),
         Command::Sweep(a) => commands::sweep::run(a, &settings),
+        Command::Compare(a) => commands::compare::run(a, &settings),
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,

@@ -89,6 +89,28 @@ impl Tensors {
         }
     }
 
+    /// The 1-based layer of a tensor.
+    pub fn layer_of(&self, name: &str) -> Option<usize> {
+        self.expected
+            .iter()
+            .find(|e| e.name == name)
+            .map(|e| e.layer + 1)
+    }
+
+    /// The coordinate of an index in a tensor of the layout (the inverse of [`Tensors::place`]).
+    pub fn coord_of(&self, name: &str, index: &[usize]) -> Option<Coord> {
+        let e = self.expected.iter().find(|e| e.name == name)?;
+        let layer = e.layer;
+        let (row, col) = match (e.role, self.layout, index) {
+            (Role::Augmented, _, &[r, c]) => (r, c),
+            (Role::Bias, _, &[r]) => (r, 0),
+            (Role::Weight, Layout::SplitTransposed, &[c, r]) => (r, c + 1),
+            (Role::Weight, _, &[r, c]) => (r, c + 1),
+            _ => return None,
+        };
+        Some(Coord { layer, row, col })
+    }
+
     /// The tensor a direction's span belongs to.
     pub fn name_of(&self, layer: usize, bias: bool) -> String {
         self.expected

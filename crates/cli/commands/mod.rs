@@ -1,6 +1,7 @@
 //! One module per command: validate its flags, call the libraries, build its report.
 
 pub mod check;
+pub mod compare;
 pub mod grad;
 pub mod locate;
 pub mod shapes;

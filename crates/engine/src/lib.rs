@@ -24,6 +24,7 @@ mod loss;
 mod network;
 mod rng;
 mod scalar;
+mod variant;
 mod weights;
 
 pub use activation::Activation;
@@ -33,4 +34,5 @@ pub use loss::Loss;
 pub use network::{LayerSpec, Network, NetworkError, Trace};
 pub use rng::Rng;
 pub use scalar::Scalar;
+pub use variant::{Regularization, Samples, Variant};
 pub use weights::{Coord, Weights};

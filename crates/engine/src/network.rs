@@ -3,7 +3,8 @@
 use ndarray::{Array2, ArrayView2, Axis, s};
 use thiserror::Error;
 
-use crate::{Activation, Loss, Scalar, Weights};
+use crate::variant::{Regularization, Samples};
+use crate::{Activation, Loss, Scalar, Variant, Weights};
 
 /// One dense layer: `inputs` units (without the bias unit) mapped to `units` units.
 #[derive(Clone, Debug, PartialEq)]
@@ -316,32 +317,89 @@ impl Network {
         trace: &Trace<S>,
         y: ArrayView2<S>,
     ) -> Weights<S> {
+        self.backward_with(weights, trace, y, &Variant::REFERENCE)
+    }
+
+    /// The gradient a backward pass with one departure from the reference produces (see
+    /// [`Variant`]); `Variant::REFERENCE` gives the reference gradient.
+    pub fn backward_with<S: Scalar>(
+        &self,
+        weights: &Weights<S>,
+        trace: &Trace<S>,
+        y: ArrayView2<S>,
+        variant: &Variant,
+    ) -> Weights<S> {
         let depth = self.layers.len();
         let m = trace.a[0].nrows();
-        let reg = S::from_f64(self.l2 / m as f64);
         let out = self.layers[depth - 1].activation;
-        let mut delta =
-            self.loss
-                .output_delta(out, trace.z[depth - 1].view(), trace.a[depth].view(), y);
+        let (z_out, a_out) = (trace.z[depth - 1].view(), trace.a[depth].view());
+        let mut delta = if variant.other_loss_delta {
+            let other = match self.loss {
+                Loss::CrossEntropy => Loss::SquaredError,
+                Loss::SquaredError => Loss::CrossEntropy,
+            };
+            match other {
+                Loss::SquaredError => Loss::SquaredError.output_delta(out, z_out, a_out, y),
+                // (a − y)/m with no activation step, whatever the output activation.
+                Loss::CrossEntropy => {
+                    Loss::CrossEntropy.output_delta(Activation::Sigmoid, z_out, a_out, y)
+                }
+            }
+        } else {
+            self.loss.output_delta(out, z_out, a_out, y)
+        };
+        let reg = match variant.regularization {
+            Regularization::Missing => 0.0,
+            Regularization::Unscaled => self.l2,
+            Regularization::Scaled | Regularization::OnBias => self.l2 / m as f64,
+        };
+        let reg = S::from_f64(reg);
+        let scale = S::from_f64(variant.data_scale);
+        let rows = match variant.samples {
+            Samples::All => 0..m,
+            Samples::First => 0..1,
+            Samples::Last => m - 1..m,
+        };
         let mut grads = Vec::with_capacity(depth);
         for l in (0..depth).rev() {
             let theta = weights.layer(l);
             let (units, cols) = theta.dim();
             let mut g = Array2::zeros((units, cols));
-            g.column_mut(0).assign(&delta.sum_axis(Axis(0)));
-            let mut gw = g.slice_mut(s![.., 1..]);
-            gw.assign(&delta.t().dot(&trace.a[l]));
+            let d = delta.slice(s![rows.clone(), ..]);
+            let a = trace.a[l].slice(s![rows.clone(), ..]);
+            g.column_mut(0).assign(&d.sum_axis(Axis(0)));
+            g.slice_mut(s![.., 1..]).assign(&d.t().dot(&a));
+            if variant.data_scale != 1.0 {
+                g.mapv_inplace(|v| v * scale);
+            }
             if self.l2 != 0.0 {
-                gw.zip_mut_with(&theta.slice(s![.., 1..]), |gv, &wv| *gv += reg * wv);
+                let from = if variant.regularization == Regularization::OnBias {
+                    0
+                } else {
+                    1
+                };
+                g.slice_mut(s![.., from..])
+                    .zip_mut_with(&theta.slice(s![.., from..]), |gv, &wv| *gv += reg * wv);
             }
             grads.push(g);
             if l > 0 {
-                let upstream = delta.dot(&theta.slice(s![.., 1..]));
-                delta = self.layers[l - 1].activation.backward(
-                    trace.z[l - 1].view(),
-                    trace.a[l].view(),
-                    upstream,
-                );
+                let hidden = l - 1;
+                let upstream = if variant.bias_unit_kept == Some(hidden) {
+                    // The full augmented product, bias column first, with its last column dropped.
+                    let full = delta.dot(theta);
+                    full.slice(s![.., ..cols - 1]).to_owned()
+                } else {
+                    delta.dot(&theta.slice(s![.., 1..]))
+                };
+                let act = self.layers[hidden].activation;
+                delta = if variant.slope_missing == Some(hidden) {
+                    upstream
+                } else if variant.slope_at_activation == Some(hidden) {
+                    let at = &trace.a[l];
+                    act.backward(at.view(), act.apply(at.view()).view(), upstream)
+                } else {
+                    act.backward(trace.z[hidden].view(), trace.a[l].view(), upstream)
+                };
             }
         }
         grads.reverse();

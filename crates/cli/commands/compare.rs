@@ -1,0 +1,490 @@
+//! `plumb compare`: an outside gradient file against the reference gradient, with the diagnosis.
+
+use std::path::PathBuf;
+
+use anyhow::{Result, bail};
+use plumb_diagnose::{Expected, Named, Problem, TensorJudgement, Tolerances, judge};
+use plumb_engine::Weights;
+use plumb_fd::{CheckConfig, Method, Precision, Status, check};
+use plumb_formats::{DType, Description, Role, bind, disassemble, expected_tensors, read_tensors};
+use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use serde::Serialize;
+
+use crate::args::CompareArgs;
+use crate::commands::check::verdict_cell;
+use crate::commands::locate::{Place, Tensors};
+use crate::inputs::{DataSource, Loaded, WeightsSource, load};
+use crate::output::{SCHEMA_VERSION, Settings, num, shape};
+
+/// The diagnosis of one tensor, for JSON.
+#[derive(Clone, Debug, Serialize)]
+pub struct DiagnosisReport {
+    pub code: &'static str,
+    #[serde(skip_serializing_if = "String::is_empty")]
+    pub detail: String,
+    pub residual: Option<f64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub factor: Option<f64>,
+}
+
+/// Where a tensor is worst.
+#[derive(Clone, Debug, Serialize)]
+pub struct Worst {
+    /// The coordinate in the augmented matrices (with the tensor and its index there).
+    pub place: Option<Place>,
+    pub index: Vec<usize>,
+    pub outside: f64,
+    pub reference: f64,
+    pub rel_error: f64,
+}
+
+/// One tensor of the report.
+#[derive(Clone, Debug, Serialize)]
+pub struct TensorReport {
+    pub name: String,
+    pub verdict: Verdict,
+    pub expected_shape: Vec<usize>,
+    pub found_shape: Option<Vec<usize>>,
+    pub max_rel_error: Option<f64>,
+    pub median_rel_error: Option<f64>,
+    pub cosine: Option<f64>,
+    pub scale: Option<f64>,
+    pub worst: Option<Worst>,
+    pub diagnosis: Option<DiagnosisReport>,
+}
+
+/// The complex-step certification of the reference.
+#[derive(Clone, Debug, Serialize)]
+pub struct Certification {
+    pub method: &'static str,
+    pub checked: usize,
+    pub parameters: usize,
+    pub max_rel_error: f64,
+    pub certified: bool,
+}
+
+/// The user's loss against the reference loss.
+#[derive(Clone, Debug, Serialize)]
+pub struct LossReport {
+    pub outside: f64,
+    pub reference: f64,
+    pub rel_error: f64,
+    pub matches: bool,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub explanation: Option<&'static str>,
+}
+
+/// The JSON report of `plumb compare` (docs/json.md).
+#[derive(Serialize)]
+pub struct CompareReport {
+    pub verdict: Verdict,
+    pub schema_version: u32,
+    pub command: &'static str,
+    pub description: PathBuf,
+    pub weights: WeightsSource,
+    pub data: DataSource,
+    pub gradient: PathBuf,
+    pub precision: &'static str,
+    pub tolerance: f64,
+    pub residual_tolerance: f64,
+    pub reference: Certification,
+    pub loss: Option<LossReport>,
+    pub tensors: Vec<TensorReport>,
+    pub findings: Vec<Finding>,
+}
+
+/// The layout's tensors of an augmented gradient, as named tensors.
+pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Named> {
+    disassemble(desc, w)
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect()
+}
+
+pub fn expected(desc: &Description) -> Vec<Expected> {
+    expected_tensors(desc, desc.layout)
+        .into_iter()
+        .map(|e| Expected {
+            name: e.name,
+            shape: e.shape,
+            bias: e.role == Role::Bias,
+        })
+        .collect()
+}
+
+/// The reference certified by the complex step on the default sample.
+pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification> {
+    let mut cfg = CheckConfig::new(Method::ComplexStep, Precision::F64);
+    cfg.directions = Some(0);
+    cfg.seed = seed;
+    let r = check(
+        &loaded.desc.network,
+        &loaded.weights,
+        &loaded.batch,
+        &cfg,
+        &|_, _| {},
+    )?;
+    Ok(Certification {
+        method: "complex-step",
+        checked: r.coverage.checked,
+        parameters: r.coverage.parameters,
+        max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),
+        certified: r.coords.iter().all(|c| c.status != Status::Mismatch),
+    })
+}
+
+/// The verdicts on an outside gradient and their findings (shared with `probe`).
+pub fn judge_gradient(
+    loaded: &Loaded,
+    outside: &[Named],
+    tol: Tolerances,
+) -> (Vec<TensorReport>, Vec<Finding>) {
+    let desc = &loaded.desc;
+    let to_tensors = |w: &Weights<f64>| layout_tensors(desc, w);
+    let problem = Problem::new(&desc.network, &loaded.weights, &loaded.batch, &to_tensors);
+    let judged = judge(&problem, outside, &expected(desc), tol);
+    let tensors = Tensors::new(desc);
+    let mut findings = Vec::new();
+    let mut reports = Vec::new();
+    for j in &judged {
+        let report = tensor_report(&tensors, j, outside);
+        if report.verdict == Verdict::Fail {
+            findings.push(mismatch_finding(&report, tensors.layer_of(&j.name)));
+        }
+        reports.push(report);
+    }
+    for u in outside {
+        if !judged.iter().any(|j| j.name == u.name) {
+            findings.push(
+                Finding::new(
+                    "gradient-tensor-unexpected",
+                    Severity::Warning,
+                    format!(
+                        "{} is in the gradient, but no tensor of the layout has that name",
+                        shape(&u.shape)
+                    ),
+                )
+                .tensor(&u.name),
+            );
+        }
+    }
+    (reports, findings)
+}
+
+fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> TensorReport {
+    let worst = j.comparison.as_ref().map(|c| {
+        let u = outside.iter().find(|t| t.name == j.name).expect("compared");
+        let index = u.index_of(c.worst);
+        Worst {
+            place: tensors
+                .coord_of(&j.name, &index)
+                .map(|co| tensors.place(co)),
+            index,
+            outside: c.worst_outside,
+            reference: c.worst_reference,
+            rel_error: c.max_rel_error,
+        }
+    });
+    TensorReport {
+        name: j.name.clone(),
+        verdict: if j.matches {
+            Verdict::Pass
+        } else {
+            Verdict::Fail
+        },
+        expected_shape: j.expected_shape.clone(),
+        found_shape: j.found_shape.clone(),
+        max_rel_error: j.comparison.as_ref().map(|c| c.max_rel_error),
+        median_rel_error: j.comparison.as_ref().map(|c| c.median_rel_error),
+        cosine: j.comparison.as_ref().map(|c| c.cosine),
+        scale: j.comparison.as_ref().map(|c| c.scale),
+        worst,
+        diagnosis: j.diagnosis.as_ref().map(|d| DiagnosisReport {
+            code: d.code,
+            detail: d.label.clone(),
+            residual: d.residual.is_finite().then_some(d.residual),
+            factor: d.factor,
+        }),
+    }
+}
+
+fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
+    let d = t.diagnosis.as_ref();
+    let code = d.map_or("unexplained", |d| d.code);
+    let what = match code {
+        "unexplained" => "wrong, and no catalogued mistake reproduces it".to_string(),
+        c => {
+            let mut s = format!("wrong: {c}");
+            if let Some(d) = d {
+                if !d.detail.is_empty() {
+                    s.push_str(&format!(" ({})", d.detail));
+                }
+                if let Some(f) = d.factor {
+                    s.push_str(&format!(", factor {}", num(f)));
+                }
+                if let Some(r) = d.residual {
+                    s.push_str(&format!(" reproduces it to a residual of {}", num(r)));
+                }
+            }
+            s
+        }
+    };
+    let figures = match (&t.max_rel_error, &t.worst, &t.found_shape) {
+        (Some(m), Some(w), _) => format!(
+            "; max relative error {}, worst at {} (outside {:.6e}, reference {:.6e}), cosine {}, scale {}",
+            num(*m),
+            w.place
+                .as_ref()
+                .map_or_else(|| format!("{:?}", w.index), |p| p.label()),
+            w.outside,
+            w.reference,
+            t.cosine.map_or("—".into(), |c| format!("{c:.6}")),
+            t.scale.map_or("—".into(), num),
+        ),
+        (_, _, Some(found)) => format!(
+            "; its shape is {}, expected {}",
+            shape(found),
+            shape(&t.expected_shape)
+        ),
+        (_, _, None) => "; the tensor is absent from the gradient".to_string(),
+    };
+    let mut f = Finding::new(
+        "gradient-mismatch",
+        Severity::Error,
+        format!("{what}{figures}"),
+    )
+    .tensor(&t.name);
+    if let Some(l) = layer {
+        f = f.layer(l);
+    }
+    f = f.figure("diagnosis", code);
+    if let Some(fa) = d.and_then(|d| d.factor) {
+        f = f.figure("factor", fa);
+    }
+    f
+}
+
+/// The outside loss against the reference, with the likely reason when they differ.
+pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, Option<Finding>) {
+    let net = &loaded.desc.network;
+    let b = &loaded.batch;
+    let trace = net.forward(&loaded.weights, b.x.view());
+    let data = net.data_loss(&trace, b.y.view());
+    let l2 = net.l2_penalty(&loaded.weights, b.len());
+    let reference = data + l2;
+    let tol = if single { 1e-4 } else { 1e-8 };
+    let rel = |v: f64, r: f64| (v - r).abs() / r.abs().max(f64::MIN_POSITIVE);
+    let err = rel(outside, reference);
+    let matches = err <= tol;
+    let m = b.len() as f64;
+    let explanation = if matches {
+        None
+    } else if l2 > 0.0 && rel(outside, data) <= tol {
+        Some("the L2 term is left out of the loss")
+    } else if rel(outside, m * data + l2) <= tol || rel(outside, m * data + m * l2) <= tol {
+        Some("the loss is summed over the batch, not averaged")
+    } else if l2 > 0.0 && rel(outside, data + m * l2) <= tol {
+        Some("the L2 term is λ/2·Σw² instead of (λ/2m)·Σw²")
+    } else {
+        None
+    };
+    let finding = (!matches).then(|| {
+        Finding::new(
+            "loss-mismatch",
+            Severity::Error,
+            format!(
+                "the outside loss is {outside:.12e}, the reference {reference:.12e} (relative error {}){}",
+                num(err),
+                explanation.map_or(String::new(), |e| format!(": {e}"))
+            ),
+        )
+        .figure("outside", outside)
+        .figure("reference", reference)
+    });
+    (
+        LossReport {
+            outside,
+            reference,
+            rel_error: err,
+            matches,
+            explanation,
+        },
+        finding,
+    )
+}
+
+pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
+    let loaded = load(&args.inputs, settings.seed)?;
+    let file = read_tensors(&args.gradient)?;
+    let file = bind(&loaded.desc, &file).into_owned();
+    if let Some(t) = file.tensors.iter().find(|t| !t.dtype.is_float()) {
+        bail!(
+            "{}: tensor `{}` holds {} values; a gradient must be floating point (float32 or float64)",
+            args.gradient.display(),
+            t.name,
+            t.dtype.name()
+        );
+    }
+    let single = !file.tensors.iter().any(|t| t.dtype == DType::F64);
+    let tol = Tolerances::for_precision(single);
+    let outside: Vec<Named> = file
+        .tensors
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect();
+    let reference = certify(&loaded, settings.seed)?;
+    let (tensors, mut findings) = judge_gradient(&loaded, &outside, tol);
+    if !reference.certified {
+        findings.push(Finding::new(
+            "reference-uncertified",
+            Severity::Warning,
+            "the complex step disagrees with the reference gradient somewhere on this network; run `plumb check --method complex-step` before trusting the diagnosis",
+        ));
+    }
+    let loss = args.loss.map(|v| {
+        let (r, f) = judge_loss(&loaded, v, single);
+        findings.extend(f);
+        r
+    });
+    let report = CompareReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "compare",
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        gradient: args.gradient.clone(),
+        precision: if single { "f32" } else { "f64" },
+        tolerance: tol.agreement,
+        residual_tolerance: tol.residual,
+        reference,
+        loss,
+        tensors,
+        findings,
+    };
+    let doc = document(&report);
+    settings.emit(&report, &doc)?;
+    Ok(report.verdict)
+}
+
+fn document(r: &CompareReport) -> Document {
+    let mut doc = Document::new("plumb compare — an outside gradient against the reference");
+    let mut facts = vec![
+        (
+            "description".to_string(),
+            r.description.display().to_string(),
+        ),
+        ("weights".to_string(), r.weights.describe()),
+        ("data".to_string(), r.data.describe()),
+        (
+            "gradient".to_string(),
+            format!(
+                "{} ({}: agreement within {:e}, diagnosis residual {:e})",
+                r.gradient.display(),
+                r.precision,
+                r.tolerance,
+                r.residual_tolerance
+            ),
+        ),
+    ];
+    facts.push(("reference".to_string(), certification_text(&r.reference)));
+    if let Some(l) = &r.loss {
+        facts.push((
+            "loss".to_string(),
+            format!(
+                "outside {:.12e}, reference {:.12e}, relative error {}",
+                l.outside,
+                l.reference,
+                num(l.rel_error)
+            ),
+        ));
+    }
+    doc.push(Block::Facts(facts));
+    doc.push(Block::Table(tensor_table(&r.tensors)));
+    doc.push(Block::Findings(r.findings.clone()));
+    let bad = r
+        .tensors
+        .iter()
+        .filter(|t| t.verdict == Verdict::Fail)
+        .count();
+    let summary = if r.verdict == Verdict::Pass {
+        "the outside gradient agrees with the reference on every tensor".to_string()
+    } else if bad == 0 {
+        "the gradient agrees, but see the findings".to_string()
+    } else {
+        format!("{bad} of {} tensors wrong", r.tensors.len())
+    };
+    doc.push(Block::Verdict(r.verdict, summary));
+    doc
+}
+
+pub fn certification_text(c: &Certification) -> String {
+    format!(
+        "certified by the complex step on {} of {} parameters (max relative error {}){}",
+        c.checked,
+        c.parameters,
+        num(c.max_rel_error),
+        if c.certified {
+            ""
+        } else {
+            " — NOT certified"
+        }
+    )
+}
+
+pub fn tensor_table(tensors: &[TensorReport]) -> Table {
+    let mut t = Table::new([
+        "tensor",
+        "shape",
+        "max rel",
+        "median rel",
+        "cosine",
+        "scale",
+        "worst at",
+        "verdict",
+        "diagnosis",
+    ]);
+    for tr in tensors {
+        let shape_text = match &tr.found_shape {
+            Some(f) if f != &tr.expected_shape => {
+                format!("{} (expected {})", shape(f), shape(&tr.expected_shape))
+            }
+            Some(f) => shape(f),
+            None => "absent".to_string(),
+        };
+        let diag = tr.diagnosis.as_ref().map_or(String::new(), |d| {
+            let mut s = d.code.to_string();
+            if let Some(f) = d.factor {
+                s.push_str(&format!(" ×{}", num(f)));
+            }
+            if !d.detail.is_empty() {
+                s.push_str(&format!(" ({})", d.detail));
+            }
+            s
+        });
+        let fmt = |v: Option<f64>| v.map_or("—".to_string(), num);
+        t.push([
+            Cell::from(tr.name.clone()),
+            Cell::from(shape_text),
+            Cell::from(fmt(tr.max_rel_error)),
+            Cell::from(fmt(tr.median_rel_error)),
+            Cell::from(tr.cosine.map_or("—".to_string(), |c| format!("{c:.6}"))),
+            Cell::from(fmt(tr.scale)),
+            Cell::from(tr.worst.as_ref().map_or("—".to_string(), |w| {
+                w.place
+                    .as_ref()
+                    .map_or_else(|| format!("{:?}", w.index), |p| p.label())
+            })),
+            verdict_cell(tr.verdict),
+            Cell::new(
+                diag,
+                if tr.verdict == Verdict::Fail {
+                    Tone::Bad
+                } else {
+                    Tone::Plain
+                },
+            ),
+        ]);
+    }
+    t
+}

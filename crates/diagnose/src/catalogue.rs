@@ -1,0 +1,311 @@
+//! The catalogue of mistakes (docs/mistakes.md): each entry computes, from the reference engine,
+//! the gradient its mistake would produce. Adding a mistake is adding an entry here.
+
+use ndarray::s;
+use plumb_engine::{Batch, Network, Regularization, Samples, Trace, Variant, Weights};
+
+use crate::Named;
+
+/// What a hypothesis needs: the network, where it is evaluated, the reference gradient, and how the
+/// engine's augmented matrices map to the tensors of the weight file's layout.
+pub struct Problem<'a> {
+    pub net: &'a Network,
+    pub weights: &'a Weights<f64>,
+    pub batch: &'a Batch,
+    pub to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Named>,
+    trace: Trace<f64>,
+    pub reference: Weights<f64>,
+    pub reference_tensors: Vec<Named>,
+}
+
+impl<'a> Problem<'a> {
+    pub fn new(
+        net: &'a Network,
+        weights: &'a Weights<f64>,
+        batch: &'a Batch,
+        to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Named>,
+    ) -> Problem<'a> {
+        let trace = net.forward(weights, batch.x.view());
+        let reference = net.backward(weights, &trace, batch.y.view());
+        let reference_tensors = to_tensors(&reference);
+        Problem {
+            net,
+            weights,
+            batch,
+            to_tensors,
+            trace,
+            reference,
+            reference_tensors,
+        }
+    }
+
+    /// The gradient of a departure from the reference backward pass, as layout tensors.
+    pub fn variant(&self, v: &Variant) -> Vec<Named> {
+        let g = self
+            .net
+            .backward_with(self.weights, &self.trace, self.batch.y.view(), v);
+        (self.to_tensors)(&g)
+    }
+
+    /// The engine indices of the hidden layers (every layer but the output layer).
+    fn hidden(&self) -> std::ops::Range<usize> {
+        0..self.net.layers().len() - 1
+    }
+
+    fn m(&self) -> f64 {
+        self.batch.len() as f64
+    }
+}
+
+/// One way the mistake could have been made, and the gradient it gives.
+#[derive(Clone, Debug)]
+pub struct Hypothesis {
+    /// Where or how, for the report ("hidden layer 2", "last sample", …); empty when there is one way.
+    pub label: String,
+    pub tensors: Vec<Named>,
+    /// Per tensor, the factor of a `constant-factor` hypothesis.
+    pub factors: Option<Vec<f64>>,
+}
+
+impl Hypothesis {
+    fn plain(tensors: Vec<Named>) -> Hypothesis {
+        Hypothesis {
+            label: String::new(),
+            tensors,
+            factors: None,
+        }
+    }
+
+    fn at(label: String, tensors: Vec<Named>) -> Hypothesis {
+        Hypothesis {
+            label,
+            tensors,
+            factors: None,
+        }
+    }
+}
+
+/// A catalogued mistake.
+pub struct Mistake {
+    pub code: &'static str,
+    pub summary: &'static str,
+    /// The hypotheses for a problem; `outside` is the gradient under diagnosis (used only by
+    /// mistakes that fit a parameter to it, such as a constant factor).
+    pub hypotheses: fn(&Problem<'_>, &[Named]) -> Vec<Hypothesis>,
+}
+
+fn with(v: impl FnOnce(&mut Variant)) -> Variant {
+    let mut out = Variant::REFERENCE;
+    v(&mut out);
+    out
+}
+
+fn scaled(tensors: &[Named], f: f64) -> Vec<Named> {
+    tensors
+        .iter()
+        .map(|t| {
+            Named::new(
+                t.name.clone(),
+                t.shape.clone(),
+                t.data.iter().map(|v| v * f).collect(),
+            )
+        })
+        .collect()
+}
+
+/// The catalogue, in the order ties are broken.
+pub const CATALOGUE: &[Mistake] = &[
+    Mistake {
+        code: "sign-flipped",
+        summary: "the gradient of −J (ascent instead of descent)",
+        hypotheses: |p, _| vec![Hypothesis::plain(scaled(&p.reference_tensors, -1.0))],
+    },
+    Mistake {
+        code: "missing-batch-mean",
+        summary: "the data term summed over the batch, not averaged (a factor m)",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(
+                p.variant(&with(|v| v.data_scale = p.m())),
+            )]
+        },
+    },
+    Mistake {
+        code: "double-batch-mean",
+        summary: "the data term averaged twice (a factor 1/m)",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(
+                p.variant(&with(|v| v.data_scale = 1.0 / p.m())),
+            )]
+        },
+    },
+    Mistake {
+        code: "bias-regularized",
+        summary: "the L2 term applied to the bias weights too",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(p.variant(&with(|v| {
+                v.regularization = Regularization::OnBias
+            })))]
+        },
+    },
+    Mistake {
+        code: "regularization-missing",
+        summary: "the L2 gradient left out",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(p.variant(&with(|v| {
+                v.regularization = Regularization::Missing
+            })))]
+        },
+    },
+    Mistake {
+        code: "regularization-unscaled",
+        summary: "λ·w instead of (λ/m)·w",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(p.variant(&with(|v| {
+                v.regularization = Regularization::Unscaled
+            })))]
+        },
+    },
+    Mistake {
+        code: "activation-derivative-missing",
+        summary: "the g′(z) factor left out of a backward step",
+        hypotheses: |p, _| {
+            p.hidden()
+                .map(|k| {
+                    Hypothesis::at(
+                        format!("hidden layer {}", k + 1),
+                        p.variant(&with(|v| v.slope_missing = Some(k))),
+                    )
+                })
+                .collect()
+        },
+    },
+    Mistake {
+        code: "derivative-at-output",
+        summary: "g′ evaluated at the activation a instead of the pre-activation z",
+        hypotheses: |p, _| {
+            p.hidden()
+                .map(|k| {
+                    Hypothesis::at(
+                        format!("hidden layer {}", k + 1),
+                        p.variant(&with(|v| v.slope_at_activation = Some(k))),
+                    )
+                })
+                .collect()
+        },
+    },
+    Mistake {
+        code: "output-delta-mismatch",
+        summary: "the output error term of the other loss",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(
+                p.variant(&with(|v| v.other_loss_delta = true)),
+            )]
+        },
+    },
+    Mistake {
+        code: "transposed",
+        summary: "the gradient's rows and columns swapped",
+        hypotheses: |p, _| {
+            vec![Hypothesis::plain(
+                p.reference_tensors.iter().map(Named::transposed).collect(),
+            )]
+        },
+    },
+    Mistake {
+        code: "bias-gradient-missing",
+        summary: "the bias part zero or absent",
+        hypotheses: |p, _| {
+            let mut g = p.reference.clone();
+            for l in g.layers_mut() {
+                l.slice_mut(s![.., 0]).fill(0.0);
+            }
+            vec![Hypothesis::plain((p.to_tensors)(&g))]
+        },
+    },
+    Mistake {
+        code: "bias-rows-shifted",
+        summary: "the bias unit's delta not dropped: a hidden layer's rows shifted by one",
+        hypotheses: |p, _| {
+            p.hidden()
+                .map(|k| {
+                    Hypothesis::at(
+                        format!("hidden layer {}", k + 1),
+                        p.variant(&with(|v| v.bias_unit_kept = Some(k))),
+                    )
+                })
+                .collect()
+        },
+    },
+    Mistake {
+        code: "partial-batch",
+        summary: "the gradient of one sample only (= instead of +=)",
+        hypotheses: |p, _| {
+            vec![
+                Hypothesis::at(
+                    "last sample".into(),
+                    p.variant(&with(|v| v.samples = Samples::Last)),
+                ),
+                Hypothesis::at(
+                    "first sample".into(),
+                    p.variant(&with(|v| v.samples = Samples::First)),
+                ),
+            ]
+        },
+    },
+    Mistake {
+        code: "layers-swapped",
+        summary: "gradients assigned to the wrong layers",
+        hypotheses: |p, _| {
+            let r = &p.reference_tensors;
+            let mut out = Vec::new();
+            for i in 0..r.len() {
+                for j in i + 1..r.len() {
+                    let mut t = r.clone();
+                    t[i] = Named::new(r[i].name.clone(), r[j].shape.clone(), r[j].data.clone());
+                    t[j] = Named::new(r[j].name.clone(), r[i].shape.clone(), r[i].data.clone());
+                    out.push(Hypothesis::at(format!("{} ↔ {}", r[i].name, r[j].name), t));
+                }
+            }
+            out
+        },
+    },
+    Mistake {
+        code: "constant-factor",
+        summary: "off by a constant factor",
+        hypotheses: |p, outside| {
+            let m = p.m();
+            let mut factors = Vec::new();
+            let tensors = p
+                .reference_tensors
+                .iter()
+                .map(|r| {
+                    let c = outside
+                        .iter()
+                        .find(|u| u.name == r.name && u.shape == r.shape)
+                        .map(|u| {
+                            let rr: f64 = r.data.iter().map(|v| v * v).sum();
+                            let ur: f64 = u.data.iter().zip(&r.data).map(|(a, b)| a * b).sum();
+                            if rr > 0.0 { ur / rr } else { 0.0 }
+                        })
+                        .unwrap_or(0.0);
+                    // Factors that other entries explain (or that mean "right") are not this one.
+                    let named = [1.0, -1.0, m, 1.0 / m]
+                        .iter()
+                        .any(|k| ((c - k) / k).abs() < 1e-3);
+                    let c = if named || c == 0.0 { f64::NAN } else { c };
+                    factors.push(c);
+                    Named::new(
+                        r.name.clone(),
+                        r.shape.clone(),
+                        r.data.iter().map(|v| v * c).collect(),
+                    )
+                })
+                .collect();
+            vec![Hypothesis {
+                label: String::new(),
+                tensors,
+                factors: Some(factors),
+            }]
+        },
+    },
+];

@@ -1,0 +1,153 @@
+//! One outside tensor against the reference: how far apart, how aligned, and where it is worst.
+
+/// A named tensor in C order, in the weight file's own layout.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Named {
+    pub name: String,
+    pub shape: Vec<usize>,
+    pub data: Vec<f64>,
+}
+
+impl Named {
+    pub fn new(name: impl Into<String>, shape: Vec<usize>, data: Vec<f64>) -> Named {
+        Named {
+            name: name.into(),
+            shape,
+            data,
+        }
+    }
+
+    pub fn norm(&self) -> f64 {
+        self.data.iter().map(|v| v * v).sum::<f64>().sqrt()
+    }
+
+    /// A 2-D tensor transposed (shape reversed); others unchanged.
+    pub fn transposed(&self) -> Named {
+        match self.shape.as_slice() {
+            &[r, c] => {
+                let mut data = vec![0.0; self.data.len()];
+                for i in 0..r {
+                    for j in 0..c {
+                        data[j * r + i] = self.data[i * c + j];
+                    }
+                }
+                Named::new(self.name.clone(), vec![c, r], data)
+            }
+            _ => self.clone(),
+        }
+    }
+
+    /// The multi-index of a flat C-order position.
+    pub fn index_of(&self, mut k: usize) -> Vec<usize> {
+        let mut idx = vec![0; self.shape.len()];
+        for (i, &d) in self.shape.iter().enumerate().rev() {
+            idx[i] = k % d.max(1);
+            k /= d.max(1);
+        }
+        idx
+    }
+}
+
+/// The relative error's floor, as a fraction of the reference tensor's largest |entry| (the same
+/// rule as the finite-difference check: entries near zero are judged against the tensor's scale).
+pub const FLOOR: f64 = 0.1;
+
+/// The figures of one outside tensor against the reference (same shape).
+#[derive(Clone, Debug, PartialEq)]
+pub struct TensorComparison {
+    pub max_rel_error: f64,
+    pub median_rel_error: f64,
+    /// cos ∠(outside, reference); 1 when both are zero.
+    pub cosine: f64,
+    /// The least-squares factor s minimising ‖outside − s·reference‖.
+    pub scale: f64,
+    /// Flat index of the largest relative error, with the two values there.
+    pub worst: usize,
+    pub worst_outside: f64,
+    pub worst_reference: f64,
+    /// Every entry within `tolerance` (relative, with the floor).
+    pub matches: bool,
+}
+
+/// Compares two tensors of the same shape. `tolerance` is the largest relative error that counts as
+/// agreement.
+pub fn compare_tensor(outside: &Named, reference: &Named, tolerance: f64) -> TensorComparison {
+    assert_eq!(
+        outside.shape, reference.shape,
+        "compare tensors of the same shape"
+    );
+    let scale_max = reference.data.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    let floor = FLOOR * scale_max;
+    let mut rel: Vec<f64> = Vec::with_capacity(outside.data.len());
+    let (mut dot, mut uu, mut rr) = (0.0, 0.0, 0.0);
+    for (&u, &r) in outside.data.iter().zip(&reference.data) {
+        let den = u.abs().max(r.abs()).max(floor);
+        rel.push(if den > 0.0 { (u - r).abs() / den } else { 0.0 });
+        dot += u * r;
+        uu += u * u;
+        rr += r * r;
+    }
+    let (worst, max_rel) = rel
+        .iter()
+        .copied()
+        .enumerate()
+        .fold((0, 0.0f64), |(bi, bv), (i, v)| {
+            if v > bv || v.is_nan() {
+                (i, v)
+            } else {
+                (bi, bv)
+            }
+        });
+    let mut sorted = rel.clone();
+    sorted.sort_by(f64::total_cmp);
+    let n = sorted.len();
+    let median = match n {
+        0 => 0.0,
+        _ if n % 2 == 1 => sorted[n / 2],
+        _ => 0.5 * (sorted[n / 2 - 1] + sorted[n / 2]),
+    };
+    let cosine = if uu == 0.0 && rr == 0.0 {
+        1.0
+    } else if uu == 0.0 || rr == 0.0 {
+        0.0
+    } else {
+        dot / (uu.sqrt() * rr.sqrt())
+    };
+    TensorComparison {
+        max_rel_error: max_rel,
+        median_rel_error: median,
+        cosine,
+        scale: if rr > 0.0 { dot / rr } else { 0.0 },
+        worst,
+        worst_outside: outside.data.get(worst).copied().unwrap_or(0.0),
+        worst_reference: reference.data.get(worst).copied().unwrap_or(0.0),
+        matches: max_rel <= tolerance && outside.data.iter().all(|v| v.is_finite()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn figures_of_a_scaled_copy() {
+        let r = Named::new("t", vec![3], vec![1.0, 2.0, -3.0]);
+        let u = Named::new("t", vec![3], vec![2.0, 4.0, -6.0]);
+        let c = compare_tensor(&u, &r, 1e-6);
+        assert!((c.scale - 2.0).abs() < 1e-15);
+        assert!((c.cosine - 1.0).abs() < 1e-15);
+        // |6 − 3| / max(6, 3, 0.3) = 0.5 at the largest entry, likewise elsewhere.
+        assert!((c.max_rel_error - 0.5).abs() < 1e-15);
+        assert!(!c.matches);
+        assert!(compare_tensor(&r, &r, 0.0).matches);
+    }
+
+    #[test]
+    fn transposition_and_indices() {
+        let t = Named::new("t", vec![2, 3], vec![0.0, 1.0, 2.0, 3.0, 4.0, 5.0]);
+        let tt = t.transposed();
+        assert_eq!(tt.shape, [3, 2]);
+        assert_eq!(tt.data, [0.0, 3.0, 1.0, 4.0, 2.0, 5.0]);
+        assert_eq!(t.index_of(4), [1, 1]);
+    }
+}

@@ -1,0 +1,115 @@
+//! Every tensor of an outside gradient judged: compared with the reference where the shapes allow,
+//! and diagnosed where it is wrong.
+
+use crate::catalogue::Problem;
+use crate::compare::{Named, TensorComparison, compare_tensor};
+use crate::diagnose::{Diagnosis, diagnose};
+
+/// How strict to be, set from the outside gradient's precision.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Tolerances {
+    /// The largest relative error (with the floor) that counts as agreement.
+    pub agreement: f64,
+    /// The largest residual at which a hypothesis counts as reproducing a tensor.
+    pub residual: f64,
+}
+
+impl Tolerances {
+    /// float64 outside gradients: agreement 1e-6, residual 1e-6; float32: 1e-3 and 1e-4 (a few
+    /// hundred ε of each type, allowing for another order of summation).
+    pub fn for_precision(single: bool) -> Tolerances {
+        if single {
+            Tolerances {
+                agreement: 1e-3,
+                residual: 1e-4,
+            }
+        } else {
+            Tolerances {
+                agreement: 1e-6,
+                residual: 1e-6,
+            }
+        }
+    }
+}
+
+/// A tensor the layout expects.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Expected {
+    pub name: String,
+    pub shape: Vec<usize>,
+    /// Whether it holds only bias weights (a split layout's bias vector).
+    pub bias: bool,
+}
+
+/// The verdict on one tensor.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TensorJudgement {
+    pub name: String,
+    pub expected_shape: Vec<usize>,
+    /// The outside tensor's shape, if it is there.
+    pub found_shape: Option<Vec<usize>>,
+    /// The figures, when the shapes agree.
+    pub comparison: Option<TensorComparison>,
+    pub matches: bool,
+    /// Why it is wrong, when it is.
+    pub diagnosis: Option<Diagnosis>,
+}
+
+/// Judges the outside gradient tensor by tensor.
+pub fn judge(
+    problem: &Problem<'_>,
+    outside: &[Named],
+    expected: &[Expected],
+    tol: Tolerances,
+) -> Vec<TensorJudgement> {
+    let mut out: Vec<TensorJudgement> = expected
+        .iter()
+        .map(|e| {
+            let u = outside.iter().find(|t| t.name == e.name);
+            let r = problem
+                .reference_tensors
+                .iter()
+                .find(|t| t.name == e.name)
+                .expect("reference has every tensor");
+            let comparison = u
+                .filter(|u| u.shape == r.shape)
+                .map(|u| compare_tensor(u, r, tol.agreement));
+            TensorJudgement {
+                name: e.name.clone(),
+                expected_shape: e.shape.clone(),
+                found_shape: u.map(|u| u.shape.clone()),
+                matches: comparison.as_ref().is_some_and(|c| c.matches),
+                comparison,
+                diagnosis: None,
+            }
+        })
+        .collect();
+    let wrong: Vec<String> = out
+        .iter()
+        .filter(|j| !j.matches && j.found_shape.is_some())
+        .map(|j| j.name.clone())
+        .collect();
+    let found = diagnose(problem, outside, &wrong, tol.residual);
+    for (name, d) in wrong.iter().zip(found) {
+        if let Some(j) = out.iter_mut().find(|j| &j.name == name) {
+            j.diagnosis = Some(d);
+        }
+    }
+    // An absent bias tensor is the bias gradient missing; any other absent tensor is unexplained.
+    for (j, e) in out.iter_mut().zip(expected) {
+        if j.found_shape.is_none() {
+            j.diagnosis = Some(Diagnosis {
+                code: if e.bias {
+                    "bias-gradient-missing"
+                } else {
+                    "unexplained"
+                },
+                label: "tensor absent".into(),
+                residual: if e.bias { 0.0 } else { f64::INFINITY },
+                factor: None,
+                runners_up: Vec::new(),
+            });
+        }
+    }
+    out
+}

@@ -1,0 +1,27 @@
+//! An outside gradient against the reference gradient, tensor by tensor, and the diagnosis of a
+//! wrong one by hypothesis: for each mistake of the catalogue (docs/mistakes.md) the reference
+//! engine computes the gradient that mistake would produce, and the one that reproduces a tensor to
+//! a tight residual is named for it.
+//!
+//! The crate works on named tensors in the weight file's own layout; the caller says how the
+//! engine's augmented matrices map to them.
+//!
+//! ```
+//! use plumb_diagnose::{Named, compare_tensor};
+//!
+//! let reference = Named::new("layer1", vec![2, 2], vec![1.0, -2.0, 0.5, 4.0]);
+//! let outside = Named::new("layer1", vec![2, 2], vec![-1.0, 2.0, -0.5, -4.0]);
+//! let c = compare_tensor(&outside, &reference, 1e-6);
+//! assert!(!c.matches);
+//! assert!((c.scale + 1.0).abs() < 1e-15 && (c.cosine + 1.0).abs() < 1e-15);
+//! ```
+
+mod catalogue;
+mod compare;
+mod diagnose;
+mod judge;
+
+pub use catalogue::{CATALOGUE, Hypothesis, Mistake, Problem};
+pub use compare::{Named, TensorComparison, compare_tensor};
+pub use diagnose::{Diagnosis, diagnose};
+pub use judge::{Expected, TensorJudgement, Tolerances, judge};
