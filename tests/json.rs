@@ -259,6 +259,15 @@ struct Sweep {
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 #[allow(dead_code)]
+struct Planted {
+    code: String,
+    tensors: Vec<serde_json::Value>,
+    findings: Vec<Finding>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
 struct Demo {
     verdict: String,
     schema_version: u32,
@@ -269,6 +278,7 @@ struct Demo {
     shapes_planted: Shapes,
     grad: Grad,
     check: Check,
+    planted: Planted,
     written: Vec<String>,
 }
 

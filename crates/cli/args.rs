@@ -55,6 +55,8 @@ pub enum Command {
     Sweep(SweepArgs),
     /// An outside gradient file against the reference, with the diagnosis of what is wrong.
     Compare(CompareArgs),
+    /// Drive your own program over plumb's wire protocol and check its loss and gradient.
+    Probe(ProbeArgs),
 }
 
 #[derive(Debug, Args)]
@@ -177,6 +179,36 @@ pub struct CompareArgs {
     /// The loss the outside code computed for the same weights and data, to compare as well.
     #[arg(long, value_name = "VALUE", allow_hyphen_values = true)]
     pub loss: Option<f64>,
+}
+
+#[derive(Debug, Args)]
+pub struct ProbeArgs {
+    #[command(flatten)]
+    pub inputs: Inputs,
+    /// Finite-difference method for checking the program against its own loss (the complex step
+    /// needs complex arithmetic inside the program, so it cannot apply).
+    #[arg(long, value_enum, default_value_t = MethodArg::Central)]
+    pub method: MethodArg,
+    /// A fixed step for every coordinate.
+    #[arg(long, value_name = "H", allow_hyphen_values = true)]
+    pub step: Option<f64>,
+    /// Coordinates to check against the program's own loss: `all`, N, or `per-layer:N` (per
+    /// tensor) [default: all up to 20000 parameters, else per-layer:1000].
+    #[arg(long, value_name = "SAMPLE")]
+    pub sample: Option<String>,
+    /// Random directions per tensor and over all of them.
+    #[arg(long, value_name = "K", default_value_t = 4)]
+    pub directions: usize,
+    /// Seconds to wait for each reply before stopping the program.
+    #[arg(long, value_name = "SECS", default_value_t = 60.0)]
+    pub timeout: f64,
+    /// A model the description cannot express: use only the program's own tensors, and check it
+    /// against its own loss only (no comparison with the reference).
+    #[arg(long)]
+    pub blackbox: bool,
+    /// The program and its arguments, after `--`.
+    #[arg(last = true, required = true, value_name = "CMD")]
+    pub command: Vec<String>,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

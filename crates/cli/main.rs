@@ -26,6 +26,7 @@ fn main() -> ExitCode {
         Command::Check(a) => commands::check::run(a, &settings),
         Command::Sweep(a) => commands::sweep::run(a, &settings),
         Command::Compare(a) => commands::compare::run(a, &settings),
+        Command::Probe(a) => commands::probe::run(a, &settings),
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,

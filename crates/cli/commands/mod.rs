@@ -4,5 +4,6 @@ pub mod check;
 pub mod compare;
 pub mod grad;
 pub mod locate;
+pub mod probe;
 pub mod shapes;
 pub mod sweep;

@@ -10,6 +10,8 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
 use plumb_audit::audit_shapes;
+use plumb_diagnose::Tolerances;
+use plumb_engine::{Regularization, Variant};
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
     DType, FileFormat, Tensor, TensorFile, disassemble, write_atomically, write_tensors,
@@ -19,6 +21,7 @@ use serde::Serialize;
 
 use crate::args::DemoArgs;
 use crate::commands::check::{self, CheckReport};
+use crate::commands::compare;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
 use crate::inputs::{DataSource, Loaded, WeightsSource};
@@ -34,6 +37,53 @@ const CAUTION: &str = "A passing check says only what it checked: here, that the
                        not a safety assessment: a model that decides about machinery or people \
                        needs the validation, standards and qualified review that apply there.";
 
+/// The planted bug of the demo's "hand-written" gradient and what the diagnosis made of it.
+#[derive(Serialize)]
+struct PlantedReport<'a> {
+    code: &'static str,
+    tensors: &'a [compare::TensorReport],
+    findings: &'a [plumb_report::Finding],
+}
+
+/// The demo's bugs, one picked by the seed: (code, where, the backward pass that makes it).
+fn planted_bug(seed: u64) -> (&'static str, &'static str, Variant) {
+    let mut v = Variant::REFERENCE;
+    match seed % 4 {
+        0 => {
+            v.slope_missing = Some(1);
+            (
+                "activation-derivative-missing",
+                "the tanh derivative of hidden layer 2 is left out",
+                v,
+            )
+        }
+        1 => {
+            v.regularization = Regularization::OnBias;
+            (
+                "bias-regularized",
+                "the L2 term is applied to the bias weights too",
+                v,
+            )
+        }
+        2 => {
+            v.data_scale = 60.0;
+            (
+                "missing-batch-mean",
+                "the data term is summed over the 60 samples, not averaged",
+                v,
+            )
+        }
+        _ => {
+            v.slope_at_activation = Some(0);
+            (
+                "derivative-at-output",
+                "tanh′ of hidden layer 1 is taken at the activation, not at z",
+                v,
+            )
+        }
+    }
+}
+
 /// The JSON report of `plumb demo` (docs/json.md).
 #[derive(Serialize)]
 struct DemoReport<'a> {
@@ -46,6 +96,7 @@ struct DemoReport<'a> {
     shapes_planted: ShapesReport<'a>,
     grad: &'a GradReport,
     check: &'a CheckReport,
+    planted: PlantedReport<'a>,
     written: Vec<PathBuf>,
 }
 
@@ -100,6 +151,16 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         &|_, _| {},
     )?;
 
+    // The "hand-written" implementation's bug, planted from the seed, and what compare makes of it.
+    let (bug_code, bug_label, bug_variant) = planted_bug(settings.seed);
+    let trace = desc.network.forward(&pump.weights, pump.batch.x.view());
+    let buggy =
+        desc.network
+            .backward_with(&pump.weights, &trace, pump.batch.y.view(), &bug_variant);
+    let outside = compare::layout_tensors(desc, &buggy);
+    let (bug_tensors, bug_findings) =
+        compare::judge_gradient(&loaded, &outside, Tolerances::for_precision(false));
+
     let written = match &args.write {
         Some(dir) => write_files(dir, args.force, &pump, &good, &planted)?,
         None => Vec::new(),
@@ -139,6 +200,11 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         },
         grad: &computed.report,
         check: &checked,
+        planted: PlantedReport {
+            code: bug_code,
+            tensors: &bug_tensors,
+            findings: &bug_findings,
+        },
         written: written.clone(),
     };
 
@@ -207,6 +273,18 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     push_all(&mut doc, check::document(&checked));
 
+    doc.push(Block::Heading(
+        "6. A hand-written gradient with a bug".into(),
+    ));
+    doc.push(Block::Text(format!(
+        "The pump team's own backpropagation has a bug (planted by the demo from the seed: {bug_label}; \
+         simulated here by the reference engine with that one change — for real programs, see `plumb \
+         probe` and examples/). `plumb compare` tests every catalogued mistake as a hypothesis and \
+         names the one that reproduces each wrong tensor:"
+    )));
+    doc.push(Block::Table(compare::tensor_table(&bug_tensors)));
+    doc.push(Block::Findings(bug_findings.clone()));
+
     doc.push(Block::Heading("Try it yourself".into()));
     let dir = args.write.clone().unwrap_or_else(|| PathBuf::from("DIR"));
     let p = |name: &str| dir.join(name).display().to_string();
@@ -215,7 +293,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         steps.push_str("plumb demo --write DIR   (writes the example's files)\n");
     }
     steps.push_str(&format!(
-        "plumb shapes {} --weights {}\nplumb shapes {} --weights {}\nplumb grad {} -w {} -d {} -o {}\nplumb check {} -w {} -d {}\nplumb sweep {} -w {} -d {} --plot {}",
+        "plumb shapes {} --weights {}\nplumb shapes {} --weights {}\nplumb grad {} -w {} -d {} -o {}\nplumb check {} -w {} -d {}\nplumb sweep {} -w {} -d {} --plot {}\nplumb probe {} -w {} -d {} -- python3 examples/python/pump_numpy.py --plant {}",
         p("pump.toml"),
         p("pump-weights.npz"),
         p("pump.toml"),
@@ -231,12 +309,16 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         p("pump-weights.npz"),
         p("pump-data.csv"),
         p("pump-sweep.svg"),
+        p("pump.toml"),
+        p("pump-weights.npz"),
+        p("pump-data.csv"),
+        bug_code,
     ));
     doc.push(Block::Text(steps));
     doc.push(Block::Verdict(
         verdict,
         if ok {
-            "the correct file passes, the planted transposition is named, the reference gradient agrees with finite differences"
+            "the correct file passes, the planted transposition and the planted bug are named, the reference agrees with finite differences"
                 .into()
         } else {
             "the demo did not behave as expected: please report this".into()

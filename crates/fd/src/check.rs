@@ -87,7 +87,7 @@ impl CheckConfig {
 /// One evaluation of the loss is taken to carry round-off of this many ε of |J|. The measured
 /// difference between two step sizes carries the actual round-off as well; this term is the floor
 /// under it for when the two happen to agree.
-const NOISE: f64 = 4.0;
+pub const NOISE: f64 = 4.0;
 
 /// The relative error's floor, as a fraction of the layer's largest |entry|.
 pub const FLOOR: f64 = 0.1;
@@ -343,6 +343,36 @@ fn directions(net: &Network, k: usize, seed: u64) -> Vec<(Scope, Weights<f64>)> 
     out
 }
 
+/// The verdict rule (module doc) for values compared outside a [`check`]: machine epsilon of the
+/// precision, the relative tolerance, and the largest |entry| of the gradient.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Rule {
+    pub eps: f64,
+    pub tolerance: f64,
+    pub scale: f64,
+}
+
+impl Rule {
+    /// (abs error, rel error, bound, status) of an analytic value `a` against an estimate `n` whose
+    /// method can explain `method_error`, with the relative error's `floor`.
+    pub fn judge(
+        &self,
+        a: f64,
+        n: f64,
+        floor: f64,
+        method_error: f64,
+        crossed: bool,
+    ) -> (f64, f64, f64, Status) {
+        Judge {
+            eps: self.eps,
+            tolerance: self.tolerance,
+            floors: Vec::new(),
+            scale: self.scale,
+        }
+        .judge(a, n, floor, method_error, crossed)
+    }
+}
+
 /// The verdict rule (module doc).
 struct Judge {
     eps: f64,
@@ -393,7 +423,7 @@ struct Run<'a> {
 }
 
 /// Kink retries: steps 10, 100 and 1000 times smaller.
-const RETRIES: [f64; 3] = [0.1, 0.01, 0.001];
+pub(crate) const RETRIES: [f64; 3] = [0.1, 0.01, 0.001];
 
 impl Run<'_> {
     fn tick(&self) {

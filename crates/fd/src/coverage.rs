@@ -168,7 +168,7 @@ pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, St
 
 /// k distinct indices of 0..n, seeded (partial Fisher–Yates over a sparse map, so picking a few
 /// coordinates of a huge layer costs no more than the few).
-fn pick(n: usize, rng: &mut Rng, k: usize) -> Vec<usize> {
+pub(crate) fn pick(n: usize, rng: &mut Rng, k: usize) -> Vec<usize> {
     use std::collections::HashMap;
     let mut swapped: HashMap<usize, usize> = HashMap::new();
     let mut out = Vec::with_capacity(k);

@@ -20,16 +20,21 @@
 mod check;
 mod coverage;
 mod evaluate;
+mod external;
 mod method;
 mod summary;
 mod sweep;
 
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
-    FLOOR, Precision, Progress, Scope, Status, check, check_gradient,
+    FLOOR, NOISE, Precision, Progress, Rule, Scope, Status, check, check_gradient,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
+pub use external::{
+    Change, ExternalConfig, ExternalResult, OutsideCoord, OutsideDirection, OutsideTensor,
+    check_external, select_flat,
+};
 pub use method::{Estimate, Method, complex_estimate};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};

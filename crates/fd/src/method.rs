@@ -109,6 +109,29 @@ impl Method {
         }
     }
 
+    /// The steps δ at which [`Method::estimate`] evaluates f for a first step h (besides f(0)), in
+    /// no particular order: an outside program can then be asked for all of them in one request.
+    /// Empty for the complex step, which needs complex arithmetic.
+    pub fn stencil(&self, h: f64, round: fn(f64) -> f64) -> Vec<f64> {
+        let h = round(h);
+        let both = |d: f64| [d, -d];
+        match self {
+            Method::Central => [h, 2.0 * h].into_iter().flat_map(both).collect(),
+            Method::Forward => vec![h, 2.0 * h],
+            Method::FivePoint => [h, 2.0 * h, 4.0 * h].into_iter().flat_map(both).collect(),
+            Method::Richardson => {
+                let mut out = both(h).to_vec();
+                let mut hh = h;
+                for _ in 1..RIDDERS_SIZE {
+                    hh = round(hh / RIDDERS_SHRINK);
+                    out.extend(both(hh));
+                }
+                out
+            }
+            Method::ComplexStep => Vec::new(),
+        }
+    }
+
     /// Estimates f′(0) for a real method. `f(δ)` is the loss at θ + δ with a flag for a kink
     /// crossing; `f0` is the loss at θ; `noise` the absolute round-off of one evaluation of f;
     /// `round` rounds a step to the precision f computes in, so the quotient divides by the step

@@ -210,3 +210,28 @@ fn sweep_shows_the_v_curve_with_its_minimum_where_nr_puts_it() {
         "forward best at {best_f:e}"
     );
 }
+
+/// The stencil lists exactly the steps `estimate` asks for, so an outside program can be asked for
+/// all of them at once.
+#[test]
+fn stencils_are_the_steps_estimate_takes() {
+    use std::cell::RefCell;
+    for method in [
+        Method::Central,
+        Method::Forward,
+        Method::FivePoint,
+        Method::Richardson,
+    ] {
+        let asked = RefCell::new(Vec::new());
+        let f = |d: f64| {
+            asked.borrow_mut().push(d);
+            ((0.3 + d).sin(), false)
+        };
+        let h = method.default_step(0.3, f64::EPSILON);
+        method.estimate(&f, 0.3f64.sin(), h, 1e-16, |h| h as f32 as f64);
+        let stencil = method.stencil(h, |h| h as f32 as f64);
+        for d in asked.borrow().iter() {
+            assert!(stencil.contains(d), "{method}: {d} not in the stencil");
+        }
+    }
+}

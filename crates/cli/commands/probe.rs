@@ -1,0 +1,620 @@
+//! `plumb probe NET -- CMD ARGS`: drive the user's program over the wire protocol and check it three
+//! ways — against its own loss (is it self-consistent?), its loss against the reference loss, and
+//! its gradient against the reference gradient, with the diagnosis.
+
+use std::path::PathBuf;
+use std::time::Duration;
+
+use anyhow::{Context, Result, bail};
+use plumb_diagnose::{Named, Tolerances};
+use plumb_engine::{Rng, Weights};
+use plumb_fd::{
+    Base, Change, ExternalConfig, ExternalResult, Method, OutsideTensor, Precision, Sample, Status,
+    check_external,
+};
+use plumb_formats::read_tensors;
+use plumb_probe::{Program, TensorSpec};
+use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use serde::Serialize;
+
+use crate::args::ProbeArgs;
+use crate::commands::check::{method, step, verdict_cell};
+use crate::commands::compare::{
+    Certification, LossReport, TensorReport, certification_text, certify, judge_gradient,
+    judge_loss, layout_tensors, tensor_table,
+};
+use crate::commands::locate::Tensors;
+use crate::inputs::{DataSource, Loaded, WeightsSource, load};
+use crate::output::{SCHEMA_VERSION, Settings, num, shape};
+
+#[derive(Clone, Debug, Serialize)]
+pub struct ProgramReport {
+    pub command: String,
+    pub name: String,
+    pub dtype: String,
+}
+
+/// The worst coordinate of a tensor in the self-check.
+#[derive(Clone, Debug, Serialize)]
+pub struct SelfWorst {
+    pub index: Vec<usize>,
+    pub gradient: f64,
+    pub differences: f64,
+    pub rel_error: f64,
+    pub bound: f64,
+    pub status: &'static str,
+}
+
+/// One tensor of the self-check: the program's gradient against differences of its own loss.
+#[derive(Clone, Debug, Serialize)]
+pub struct SelfTensor {
+    pub name: String,
+    pub verdict: Verdict,
+    pub parameters: usize,
+    pub checked: usize,
+    pub max_rel_error: f64,
+    pub median_rel_error: f64,
+    pub mismatches: usize,
+    pub unreliable: usize,
+    pub directions: usize,
+    pub direction_mismatches: usize,
+    pub worst: Option<SelfWorst>,
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct SelfCheck {
+    pub method: &'static str,
+    pub step_rule: String,
+    pub tolerance: f64,
+    pub sample: String,
+    pub checked: usize,
+    pub parameters: usize,
+    pub directions_per_tensor: usize,
+    pub tensors: Vec<SelfTensor>,
+}
+
+/// The JSON report of `plumb probe` (docs/json.md).
+#[derive(Serialize)]
+pub struct ProbeReport {
+    pub verdict: Verdict,
+    pub schema_version: u32,
+    pub command: &'static str,
+    pub program: ProgramReport,
+    pub blackbox: bool,
+    pub description: PathBuf,
+    pub weights: WeightsSource,
+    pub data: DataSource,
+    pub self_check: SelfCheck,
+    pub loss: Option<LossReport>,
+    pub reference: Option<Certification>,
+    pub tensors: Vec<TensorReport>,
+    pub findings: Vec<Finding>,
+}
+
+pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
+    let method = method(args.method);
+    if method == Method::ComplexStep {
+        bail!(
+            "--method complex-step: the complex step needs the program to compute with complex numbers, which an outside program does not; use central, forward, five-point or richardson"
+        );
+    }
+    let fixed = step(args.step)?;
+    let sample = args
+        .sample
+        .as_deref()
+        .map(Sample::parse)
+        .transpose()
+        .map_err(|e| anyhow::anyhow!("--sample: {e}"))?;
+    if !(args.timeout.is_finite() && args.timeout > 0.0 && args.timeout <= 86_400.0) {
+        bail!(
+            "--timeout {}: give the seconds to wait for each reply, between 0 and 86400",
+            args.timeout
+        );
+    }
+    let loaded = load(&args.inputs, settings.seed)?;
+    let desc = &loaded.desc;
+    let layout = layout_tensors(desc, &loaded.weights);
+    let specs: Vec<TensorSpec> = layout
+        .iter()
+        .map(|t| TensorSpec {
+            name: t.name.clone(),
+            shape: t.shape.clone(),
+        })
+        .collect();
+
+    let mut program = Program::start_with(
+        &args.command,
+        Duration::from_secs_f64(args.timeout),
+        settings.quiet,
+    )?;
+    let hello = program.hello((!args.blackbox).then_some(&specs[..]))?;
+    let params: Vec<Named> = if args.blackbox {
+        blackbox_parameters(&hello.tensors, &args.inputs.weights, settings.seed)?
+    } else {
+        layout
+    };
+    let b = &loaded.batch;
+    let (m, n, k) = (b.len(), b.x.ncols(), b.y.ncols());
+    let x: Vec<f64> = b.x.iter().copied().collect();
+    let y: Vec<f64> = b.y.iter().copied().collect();
+    let with_data: Vec<(TensorSpec, &[f64])> = hello
+        .tensors
+        .iter()
+        .zip(&params)
+        .map(|(s, p)| (s.clone(), p.data.as_slice()))
+        .collect();
+    program.load(&with_data, (&[m, n], &x), (&[m, k], &y))?;
+    let (loss, grads) = program.gradient()?;
+    check_reply_shapes(&hello.tensors, &grads, args.blackbox)?;
+
+    // (a) The program against its own loss, on the tensors whose gradient fits their parameters.
+    let single = hello.dtype == "f32";
+    let precision = if single {
+        Precision::F32
+    } else {
+        Precision::F64
+    };
+    let fitting: Vec<usize> = (0..params.len())
+        .filter(|&i| grads[i].0.shape == params[i].shape)
+        .collect();
+    let outside: Vec<OutsideTensor> = fitting
+        .iter()
+        .map(|&i| OutsideTensor {
+            name: params[i].name.clone(),
+            values: params[i].data.clone(),
+            gradient: grads[i].1.clone(),
+        })
+        .collect();
+    let sample = sample.unwrap_or(
+        if params.iter().map(|p| p.data.len()).sum::<usize>() <= plumb_fd::FULL_CHECK_LIMIT {
+            Sample::All
+        } else {
+            Sample::PerLayer(plumb_fd::DEFAULT_PER_LAYER)
+        },
+    );
+    if let Sample::Total(s) = sample {
+        let total: usize = outside.iter().map(|t| t.values.len()).sum();
+        if s > total {
+            bail!(
+                "--sample {s} is more than the program's {total} parameters; use `all` or a smaller number"
+            );
+        }
+    }
+    let cfg = ExternalConfig {
+        method,
+        step: fixed,
+        sample,
+        directions: args.directions,
+        seed: settings.seed,
+        eps: precision.epsilon(),
+        tolerance: precision.tolerance(),
+    };
+    // Kinks are seen through the reference engine, which runs the same network (not for a black box).
+    let reference_tensors = Tensors::new(desc);
+    let w64: &Weights<f64> = &loaded.weights;
+    let base = (!args.blackbox).then(|| Base::new(&desc.network, w64, b.x.view(), &b.y));
+    let crossed = |t: usize, flat: usize, d: f64| -> bool {
+        let Some(base) = &base else { return false };
+        let p = &params[fitting[t]];
+        let index = Named::index_of(p, flat);
+        reference_tensors
+            .coord_of(&p.name, &index)
+            .is_some_and(|c| base.perturbed(c, d).1)
+    };
+    let mut ask = |count: usize, changes: &[Change]| {
+        let wire: Vec<plumb_probe::Change> = changes
+            .iter()
+            .map(|c| plumb_probe::Change {
+                perturbation: c.perturbation,
+                tensor: fitting[c.tensor as usize] as u32,
+                index: c.index,
+                delta: c.delta,
+            })
+            .collect();
+        program.losses(count, &wire)
+    };
+    let result = check_external(&outside, loss, &mut ask, &crossed, &cfg)?;
+    let mut findings = Vec::new();
+    let self_check = self_check_report(&params, &fitting, &grads, &result, &cfg, &mut findings);
+
+    // (b) and (c): the loss and the gradient against the reference.
+    let (loss_report, reference, tensors) = if args.blackbox {
+        (None, None, Vec::new())
+    } else {
+        let (lr, lf) = judge_loss(&loaded, loss, single);
+        findings.extend(lf);
+        let outside: Vec<Named> = grads
+            .iter()
+            .map(|(s, d)| Named::new(s.name.clone(), s.shape.clone(), d.clone()))
+            .collect();
+        let (tr, tf) = judge_gradient(&loaded, &outside, Tolerances::for_precision(single));
+        findings.extend(tf);
+        let cert = certify(&loaded, settings.seed)?;
+        (Some(lr), Some(cert), tr)
+    };
+    let command = program.command().to_string();
+    program.finish();
+
+    let report = ProbeReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "probe",
+        program: ProgramReport {
+            command,
+            name: hello.name,
+            dtype: hello.dtype,
+        },
+        blackbox: args.blackbox,
+        description: desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        self_check,
+        loss: loss_report,
+        reference,
+        tensors,
+        findings,
+    };
+    let doc = document(&report, &loaded);
+    settings.emit(&report, &doc)?;
+    Ok(report.verdict)
+}
+
+/// A gradient tensor of another shape than declared is a protocol failure, unless (outside a black
+/// box) it has the shape of a rearrangement the diagnosis can test: reversed, or another tensor's.
+fn check_reply_shapes(
+    declared: &[TensorSpec],
+    grads: &[(TensorSpec, Vec<f64>)],
+    blackbox: bool,
+) -> Result<()> {
+    let names: Vec<&str> = grads.iter().map(|(s, _)| s.name.as_str()).collect();
+    let want: Vec<&str> = declared.iter().map(|s| s.name.as_str()).collect();
+    if names != want {
+        bail!(
+            "the program's gradient lists the tensors {names:?}; it declared {want:?} in its hello, in that order"
+        );
+    }
+    for ((s, _), d) in grads.iter().zip(declared) {
+        if s.shape == d.shape {
+            continue;
+        }
+        let reversed: Vec<usize> = d.shape.iter().rev().copied().collect();
+        let another = declared.iter().any(|o| o.shape == s.shape);
+        if blackbox || !(s.shape == reversed || another) {
+            bail!(
+                "the program returned the gradient of `{}` with shape {}, but declared {}; a gradient must have its tensor's shape",
+                s.name,
+                shape(&s.shape),
+                shape(&d.shape)
+            );
+        }
+    }
+    Ok(())
+}
+
+/// A black box's parameters: from the weight file by name, or drawn from the seed with a 1/√fan-in
+/// scale (fan-in: a matrix's last dimension; vectors start at 0.1 scale).
+fn blackbox_parameters(
+    tensors: &[TensorSpec],
+    weights: &Option<PathBuf>,
+    seed: u64,
+) -> Result<Vec<Named>> {
+    match weights {
+        Some(path) => {
+            let file = read_tensors(path)?;
+            tensors
+                .iter()
+                .map(|s| {
+                    let t = file.get(&s.name).with_context(|| {
+                        format!(
+                            "{}: no tensor `{}`, which the program declares",
+                            path.display(),
+                            s.name
+                        )
+                    })?;
+                    if t.shape != s.shape {
+                        bail!(
+                            "{}: tensor `{}` is {}, the program declares {}",
+                            path.display(),
+                            s.name,
+                            shape(&t.shape),
+                            shape(&s.shape)
+                        );
+                    }
+                    Ok(Named::new(s.name.clone(), s.shape.clone(), t.data.clone()))
+                })
+                .collect()
+        }
+        None => {
+            let mut rng = Rng::new(seed ^ 0xb1ac_b0c5);
+            Ok(tensors
+                .iter()
+                .map(|s| {
+                    let sd = match s.shape.as_slice() {
+                        [.., fan_in] if s.shape.len() >= 2 => 1.0 / (*fan_in.max(&1) as f64).sqrt(),
+                        _ => 0.1,
+                    };
+                    Named::new(
+                        s.name.clone(),
+                        s.shape.clone(),
+                        (0..s.len()).map(|_| sd * rng.normal()).collect(),
+                    )
+                })
+                .collect())
+        }
+    }
+}
+
+fn self_check_report(
+    params: &[Named],
+    fitting: &[usize],
+    grads: &[(TensorSpec, Vec<f64>)],
+    r: &ExternalResult,
+    cfg: &ExternalConfig,
+    findings: &mut Vec<Finding>,
+) -> SelfCheck {
+    let mut tensors = Vec::new();
+    for (i, p) in params.iter().enumerate() {
+        let Some(t) = fitting.iter().position(|&f| f == i) else {
+            findings.push(
+                Finding::new(
+                    "self-inconsistent",
+                    Severity::Error,
+                    format!(
+                        "the program's gradient of this tensor has shape {}, its parameters {}: it cannot be the gradient of its own loss",
+                        shape(&grads[i].0.shape),
+                        shape(&p.shape)
+                    ),
+                )
+                .tensor(&p.name),
+            );
+            tensors.push(SelfTensor {
+                name: p.name.clone(),
+                verdict: Verdict::Fail,
+                parameters: p.data.len(),
+                checked: 0,
+                max_rel_error: f64::NAN,
+                median_rel_error: f64::NAN,
+                mismatches: 0,
+                unreliable: 0,
+                directions: 0,
+                direction_mismatches: 0,
+                worst: None,
+            });
+            continue;
+        };
+        let coords: Vec<_> = r.coords.iter().filter(|c| c.tensor == t).collect();
+        let dirs: Vec<_> = r
+            .directions
+            .iter()
+            .filter(|d| d.tensor == Some(t))
+            .collect();
+        let mut rel: Vec<f64> = coords.iter().map(|c| c.rel_error).collect();
+        rel.sort_by(f64::total_cmp);
+        let worst = coords.iter().max_by(|a, b| {
+            (a.status, a.rel_error)
+                .partial_cmp(&(b.status, b.rel_error))
+                .unwrap_or(std::cmp::Ordering::Equal)
+        });
+        let mismatches = coords
+            .iter()
+            .filter(|c| c.status == Status::Mismatch)
+            .count();
+        let unreliable = coords
+            .iter()
+            .filter(|c| c.status == Status::Unreliable)
+            .count();
+        let direction_mismatches = dirs.iter().filter(|d| d.status == Status::Mismatch).count();
+        let worst = worst.map(|w| SelfWorst {
+            index: Named::index_of(p, w.index),
+            gradient: w.analytic,
+            differences: w.numeric,
+            rel_error: w.rel_error,
+            bound: w.bound,
+            status: w.status.name(),
+        });
+        if mismatches > 0 || direction_mismatches > 0 {
+            let at = worst.as_ref().map_or(String::new(), |w| {
+                format!(
+                    "; worst at {}{:?}: gradient {:.6e}, differences {:.6e} (relative error {}, bound {})",
+                    p.name,
+                    w.index,
+                    w.gradient,
+                    w.differences,
+                    num(w.rel_error),
+                    num(w.bound)
+                )
+            });
+            findings.push(
+                Finding::new(
+                    "self-inconsistent",
+                    Severity::Error,
+                    format!(
+                        "the program's gradient disagrees with {} differences of its own loss at {mismatches} of {} coordinates and {direction_mismatches} of {} directions{at}",
+                        cfg.method,
+                        coords.len(),
+                        dirs.len()
+                    ),
+                )
+                .tensor(&p.name)
+                .figure("mismatches", mismatches)
+                .figure("direction_mismatches", direction_mismatches),
+            );
+        }
+        if unreliable > 0 {
+            findings.push(
+                Finding::new(
+                    "kink-unreliable",
+                    Severity::Note,
+                    format!("{unreliable} coordinates straddle a ReLU-like kink at every step tried; not judged"),
+                )
+                .tensor(&p.name),
+            );
+        }
+        tensors.push(SelfTensor {
+            name: p.name.clone(),
+            verdict: if mismatches == 0 && direction_mismatches == 0 {
+                Verdict::Pass
+            } else {
+                Verdict::Fail
+            },
+            parameters: p.data.len(),
+            checked: coords.len(),
+            max_rel_error: rel.last().copied().unwrap_or(0.0),
+            median_rel_error: rel.get(rel.len() / 2).copied().unwrap_or(0.0),
+            mismatches,
+            unreliable,
+            directions: dirs.len(),
+            direction_mismatches,
+            worst,
+        });
+    }
+    let global_bad = r
+        .directions
+        .iter()
+        .filter(|d| d.tensor.is_none() && d.status == Status::Mismatch)
+        .count();
+    if global_bad > 0 {
+        findings.push(Finding::new(
+            "self-inconsistent",
+            Severity::Error,
+            format!("{global_bad} random directions over all tensors disagree with differences of the program's own loss"),
+        ));
+    }
+    SelfCheck {
+        method: cfg.method.name(),
+        step_rule: cfg.step.map_or_else(
+            || cfg.method.step_rule().to_string(),
+            |h| format!("fixed h = {h:e} (--step)"),
+        ),
+        tolerance: cfg.tolerance,
+        sample: cfg.sample.to_string(),
+        checked: r.coords.len(),
+        parameters: params.iter().map(|p| p.data.len()).sum(),
+        directions_per_tensor: cfg.directions,
+        tensors,
+    }
+}
+
+fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
+    let mut doc =
+        Document::new("plumb probe — your program against its own loss and the reference");
+    let p = &r.program;
+    let mut facts = vec![
+        (
+            "program".to_string(),
+            format!(
+                "{} ({}, computes in {})",
+                p.command,
+                if p.name.is_empty() {
+                    "unnamed"
+                } else {
+                    &p.name
+                },
+                p.dtype
+            ),
+        ),
+        (
+            "description".to_string(),
+            r.description.display().to_string(),
+        ),
+        (
+            "weights".to_string(),
+            if r.blackbox && matches!(r.weights, WeightsSource::Init { .. }) {
+                "drawn from the seed for the program's own tensors (--blackbox)".to_string()
+            } else {
+                r.weights.describe()
+            },
+        ),
+        ("data".to_string(), r.data.describe()),
+    ];
+    if let Some(c) = &r.reference {
+        facts.push(("reference".to_string(), certification_text(c)));
+    }
+    doc.push(Block::Facts(facts));
+
+    let s = &r.self_check;
+    doc.push(Block::Heading(
+        "1. Is it self-consistent? Its gradient against differences of its own loss".into(),
+    ));
+    doc.push(Block::Text(format!(
+        "{} differences ({}), tolerance {:e}; {} of {} parameters, {} random directions per tensor.",
+        s.method, s.step_rule, s.tolerance, s.checked, s.parameters, s.directions_per_tensor
+    )));
+    let mut t = Table::new([
+        "tensor",
+        "parameters",
+        "checked",
+        "max rel",
+        "median rel",
+        "mismatch",
+        "unreliable",
+        "directions",
+        "verdict",
+    ]);
+    for st in &s.tensors {
+        let bad = |n: usize| if n > 0 { Tone::Bad } else { Tone::Plain };
+        t.push([
+            Cell::from(st.name.clone()),
+            Cell::from(st.parameters.to_string()),
+            Cell::from(st.checked.to_string()),
+            Cell::new(num(st.max_rel_error), bad(st.mismatches)),
+            Cell::from(num(st.median_rel_error)),
+            Cell::new(st.mismatches.to_string(), bad(st.mismatches)),
+            Cell::from(st.unreliable.to_string()),
+            Cell::new(
+                format!(
+                    "{}/{}",
+                    st.directions - st.direction_mismatches,
+                    st.directions
+                ),
+                bad(st.direction_mismatches),
+            ),
+            verdict_cell(st.verdict),
+        ]);
+    }
+    doc.push(Block::Table(t));
+
+    if let Some(l) = &r.loss {
+        doc.push(Block::Heading(
+            "2. Does it compute the loss the description says?".into(),
+        ));
+        doc.push(Block::Text(format!(
+            "program {:.12e}, reference {:.12e} ({} {}): {}{}",
+            l.outside,
+            l.reference,
+            loaded.desc.network.loss(),
+            if loaded.desc.network.l2() > 0.0 {
+                "with L2"
+            } else {
+                "without L2"
+            },
+            if l.matches {
+                "they agree"
+            } else {
+                "they differ"
+            },
+            l.explanation.map_or(String::new(), |e| format!(" — {e}")),
+        )));
+        doc.push(Block::Heading(
+            "3. Its gradient against the reference gradient".into(),
+        ));
+        doc.push(Block::Table(tensor_table(&r.tensors)));
+    }
+    doc.push(Block::Findings(r.findings.clone()));
+    let summary = match r.verdict {
+        Verdict::Pass if r.blackbox => {
+            "the program's gradient is consistent with its own loss".to_string()
+        }
+        Verdict::Pass => "self-consistent, the right loss, and the reference gradient".to_string(),
+        Verdict::Fail => {
+            let n = r
+                .findings
+                .iter()
+                .filter(|f| f.severity == Severity::Error)
+                .count();
+            format!("{n} error finding{}", if n == 1 { "" } else { "s" })
+        }
+    };
+    doc.push(Block::Verdict(r.verdict, summary));
+    doc
+}

@@ -1,0 +1,592 @@
+//! A running outside program and the requests plumb makes of it.
+//!
+//! Three threads keep the main one from ever blocking on the program: one writes requests to its
+//! stdin, one reads and frames its stdout, one keeps the last lines of its stderr (and passes them
+//! through). The main thread only waits on a channel, with the timeout.
+
+use std::collections::VecDeque;
+use std::io::{BufRead, BufReader, Read, Write};
+use std::process::{Child, ChildStdout, Command, Stdio};
+use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender};
+use std::sync::{Arc, Mutex};
+use std::thread;
+use std::time::{Duration, Instant};
+
+use serde_json::{Value, json};
+
+use crate::ProbeError;
+
+/// The protocol version this plumb speaks.
+pub const PROTOCOL: u32 = 1;
+
+/// The longest header line plumb reads (a header is a few hundred bytes).
+const MAX_LINE: u64 = 1 << 20;
+/// The most float64 values one reply may carry (1 GiB).
+const MAX_VALUES: u64 = 1 << 27;
+/// Lines of the program's stderr kept for error messages.
+const TAIL: usize = 12;
+
+/// A tensor as the protocol names it.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct TensorSpec {
+    pub name: String,
+    pub shape: Vec<usize>,
+}
+
+impl TensorSpec {
+    pub fn len(&self) -> usize {
+        self.shape.iter().product()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    fn json(&self) -> Value {
+        json!({"name": self.name, "shape": self.shape})
+    }
+}
+
+/// A gradient reply: the loss, and each tensor with the values the program sent for it.
+pub type Gradient = (f64, Vec<(TensorSpec, Vec<f64>)>);
+
+/// The program's answer to hello.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Hello {
+    pub name: String,
+    /// `"f64"` or `"f32"`: the arithmetic it computes in.
+    pub dtype: String,
+    pub tensors: Vec<TensorSpec>,
+}
+
+/// One change of a perturbation: add `delta` to entry `index` (flat, C order) of tensor `tensor`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Change {
+    pub perturbation: u32,
+    pub tensor: u32,
+    pub index: u64,
+    pub delta: f64,
+}
+
+struct Message {
+    header: Value,
+    payload: Vec<f64>,
+}
+
+enum ReadError {
+    Eof,
+    Garbage(String),
+    Malformed(String),
+}
+
+/// A running program.
+pub struct Program {
+    child: Child,
+    command: String,
+    writer: Option<Sender<Vec<u8>>>,
+    replies: Receiver<Result<Message, ReadError>>,
+    stderr: Arc<Mutex<VecDeque<String>>>,
+    timeout: Duration,
+}
+
+impl Program {
+    /// Starts `command[0]` with the rest as arguments; its stderr lines are passed through to
+    /// plumb's stderr unless `quiet`.
+    pub fn start(command: &[String], timeout: Duration) -> Result<Program, ProbeError> {
+        Program::start_with(command, timeout, false)
+    }
+
+    pub fn start_with(
+        command: &[String],
+        timeout: Duration,
+        quiet: bool,
+    ) -> Result<Program, ProbeError> {
+        let text = command.join(" ");
+        let Some((cmd, args)) = command.split_first() else {
+            return Err(ProbeError::Spawn {
+                command: text,
+                reason: "no command given".into(),
+            });
+        };
+        let mut child = Command::new(cmd)
+            .args(args)
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .map_err(|e| ProbeError::Spawn {
+                command: text.clone(),
+                reason: e.to_string(),
+            })?;
+        let mut stdin = child.stdin.take().expect("piped");
+        let stdout = child.stdout.take().expect("piped");
+        let stderr = child.stderr.take().expect("piped");
+
+        let (wtx, wrx) = mpsc::channel::<Vec<u8>>();
+        thread::spawn(move || {
+            for buf in wrx {
+                if stdin.write_all(&buf).and_then(|_| stdin.flush()).is_err() {
+                    break;
+                }
+            }
+        });
+        let (rtx, rrx) = mpsc::channel();
+        thread::spawn(move || read_replies(stdout, rtx));
+        let tail = Arc::new(Mutex::new(VecDeque::new()));
+        let keep = Arc::clone(&tail);
+        thread::spawn(move || {
+            for line in BufReader::new(stderr).lines() {
+                let Ok(line) = line else { break };
+                if !quiet {
+                    eprintln!("  [program] {line}");
+                }
+                let mut t = keep.lock().expect("not poisoned");
+                if t.len() == TAIL {
+                    t.pop_front();
+                }
+                t.push_back(line);
+            }
+        });
+        Ok(Program {
+            child,
+            command: text,
+            writer: Some(wtx),
+            replies: rrx,
+            stderr: tail,
+            timeout,
+        })
+    }
+
+    /// The command line, for reports.
+    pub fn command(&self) -> &str {
+        &self.command
+    }
+
+    /// The handshake. With `expected`, the program's tensors must be exactly those (names, shapes,
+    /// order); without it (a black box), its declaration is taken as it is.
+    pub fn hello(&mut self, expected: Option<&[TensorSpec]>) -> Result<Hello, ProbeError> {
+        let mut header = json!({"type": "hello", "protocol": PROTOCOL});
+        if let Some(e) = expected {
+            header["tensors"] = Value::Array(e.iter().map(TensorSpec::json).collect());
+        }
+        let reply = self.request("hello", &header, &[], "hello")?;
+        let h = &reply.header;
+        match h.get("protocol").and_then(Value::as_u64) {
+            Some(p) if p == PROTOCOL as u64 => {}
+            other => {
+                return Err(ProbeError::Version {
+                    theirs: other.map_or_else(|| "(none given)".to_string(), |p| p.to_string()),
+                    ours: PROTOCOL,
+                });
+            }
+        }
+        let dtype = h
+            .get("dtype")
+            .and_then(Value::as_str)
+            .unwrap_or("")
+            .to_string();
+        if dtype != "f64" && dtype != "f32" {
+            return Err(malformed(
+                "hello",
+                format!(
+                    "`dtype` must be \"f64\" or \"f32\", not {}",
+                    h.get("dtype").unwrap_or(&Value::Null)
+                ),
+            ));
+        }
+        let tensors = specs(h, "hello")?;
+        if let Some(e) = expected
+            && tensors != e
+        {
+            {
+                return Err(ProbeError::Mismatch(format!(
+                    "the program declares the tensors {}, but the description expects {}; name and shape them as the description's layout does, or use --blackbox for a model the description cannot express",
+                    list(&tensors),
+                    list(e)
+                )));
+            }
+        }
+        Ok(Hello {
+            name: h
+                .get("name")
+                .and_then(Value::as_str)
+                .unwrap_or("")
+                .to_string(),
+            dtype,
+            tensors,
+        })
+    }
+
+    /// Sends the parameters (in the hello's order) and the data; waits for `ready`.
+    pub fn load(
+        &mut self,
+        tensors: &[(TensorSpec, &[f64])],
+        x: (&[usize; 2], &[f64]),
+        y: (&[usize; 2], &[f64]),
+    ) -> Result<(), ProbeError> {
+        let header = json!({
+            "type": "load",
+            "tensors": tensors.iter().map(|(s, _)| s.json()).collect::<Vec<_>>(),
+            "x": {"shape": x.0},
+            "y": {"shape": y.0},
+        });
+        let mut payload = Vec::new();
+        for (_, data) in tensors {
+            push_f64(&mut payload, data);
+        }
+        push_f64(&mut payload, x.1);
+        push_f64(&mut payload, y.1);
+        self.request("load", &header, &payload, "ready").map(|_| ())
+    }
+
+    /// The program's loss at the loaded parameters.
+    pub fn loss(&mut self) -> Result<f64, ProbeError> {
+        let r = self.request("loss", &json!({"type": "loss"}), &[], "loss")?;
+        finite_loss(&r.header, "loss")
+    }
+
+    /// The program's loss and gradient; each tensor with the shape the reply gives it.
+    pub fn gradient(&mut self) -> Result<Gradient, ProbeError> {
+        let r = self.request("gradient", &json!({"type": "gradient"}), &[], "gradient")?;
+        let loss = finite_loss(&r.header, "gradient")?;
+        let specs = specs(&r.header, "gradient")?;
+        let mut out = Vec::with_capacity(specs.len());
+        let mut at = 0;
+        for s in specs {
+            let n = s.len();
+            let data = r.payload[at..at + n].to_vec();
+            at += n;
+            if let Some((k, v)) = data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+                let mut index = vec![0; s.shape.len()];
+                let mut rest = k;
+                for (i, &d) in s.shape.iter().enumerate().rev() {
+                    index[i] = rest % d.max(1);
+                    rest /= d.max(1);
+                }
+                return Err(ProbeError::NonFinite {
+                    what: "gradient".into(),
+                    value: *v,
+                    place: format!("at {index:?} of `{}`", s.name),
+                });
+            }
+            out.push((s, data));
+        }
+        Ok((loss, out))
+    }
+
+    /// The loss at `count` perturbations of the loaded parameters, each the changes with its number.
+    pub fn losses(&mut self, count: usize, changes: &[Change]) -> Result<Vec<f64>, ProbeError> {
+        let header = json!({"type": "losses", "perturbations": count, "changes": changes.len()});
+        let mut payload = Vec::with_capacity(changes.len() * 24);
+        for c in changes {
+            payload.extend_from_slice(&c.perturbation.to_le_bytes());
+            payload.extend_from_slice(&c.tensor.to_le_bytes());
+            payload.extend_from_slice(&c.index.to_le_bytes());
+            payload.extend_from_slice(&c.delta.to_le_bytes());
+        }
+        let r = self.request("losses", &header, &payload, "losses")?;
+        if r.payload.len() != count {
+            return Err(malformed(
+                "losses",
+                format!("{} losses for {count} perturbations", r.payload.len()),
+            ));
+        }
+        if let Some((k, v)) = r.payload.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            return Err(ProbeError::NonFinite {
+                what: "loss".into(),
+                value: *v,
+                place: format!("at perturbation {k}"),
+            });
+        }
+        Ok(r.payload)
+    }
+
+    /// Says goodbye and waits for the program to exit (killing it after the timeout).
+    pub fn finish(mut self) {
+        if let Some(w) = self.writer.take() {
+            let _ = w.send(b"{\"type\":\"bye\"}\n".to_vec());
+        }
+        let start = Instant::now();
+        while start.elapsed() < self.timeout {
+            if let Ok(Some(_)) = self.child.try_wait() {
+                return;
+            }
+            thread::sleep(Duration::from_millis(10));
+        }
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    fn tail(&self) -> Vec<String> {
+        self.stderr
+            .lock()
+            .map(|t| t.iter().cloned().collect())
+            .unwrap_or_default()
+    }
+
+    fn request(
+        &mut self,
+        request: &str,
+        header: &Value,
+        payload: &[u8],
+        reply: &str,
+    ) -> Result<Message, ProbeError> {
+        let mut buf = serde_json::to_vec(header).expect("a header serialises");
+        buf.push(b'\n');
+        buf.extend_from_slice(payload);
+        let sent = self.writer.as_ref().is_some_and(|w| w.send(buf).is_ok());
+        if !sent {
+            return Err(ProbeError::Send {
+                request: request.into(),
+                reason: "the program's stdin is closed".into(),
+                stderr: self.tail(),
+            });
+        }
+        match self.replies.recv_timeout(self.timeout) {
+            Ok(Ok(m)) => {
+                let kind = m.header.get("type").and_then(Value::as_str).unwrap_or("");
+                if kind == "error" {
+                    let message = m
+                        .header
+                        .get("message")
+                        .and_then(Value::as_str)
+                        .unwrap_or("(no message)");
+                    return Err(ProbeError::Remote {
+                        request: request.into(),
+                        message: message.into(),
+                    });
+                }
+                if kind != reply {
+                    return Err(malformed(
+                        request,
+                        format!("a reply of type `{kind}`, expected `{reply}`"),
+                    ));
+                }
+                Ok(m)
+            }
+            Ok(Err(ReadError::Garbage(text))) => {
+                self.stop();
+                Err(ProbeError::Garbage {
+                    request: request.into(),
+                    text,
+                })
+            }
+            Ok(Err(ReadError::Malformed(what))) => {
+                self.stop();
+                Err(malformed(request, what))
+            }
+            Ok(Err(ReadError::Eof)) | Err(RecvTimeoutError::Disconnected) => {
+                let status = self.exit_status();
+                Err(ProbeError::Exited {
+                    status,
+                    when: format!("before answering the {request} request"),
+                    stderr: self.tail(),
+                })
+            }
+            Err(RecvTimeoutError::Timeout) => {
+                self.stop();
+                Err(ProbeError::Timeout {
+                    request: request.into(),
+                    seconds: self.timeout.as_secs().max(1),
+                    stderr: self.tail(),
+                })
+            }
+        }
+    }
+
+    fn stop(&mut self) {
+        self.writer.take();
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    /// The exit status, waiting a moment for the process to be reaped.
+    fn exit_status(&mut self) -> String {
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(2) {
+            if let Ok(Some(s)) = self.child.try_wait() {
+                return match s.code() {
+                    Some(c) => format!("status {c}"),
+                    None => format!("killed by a signal: {s}"),
+                };
+            }
+            thread::sleep(Duration::from_millis(10));
+        }
+        self.stop();
+        "it closed its stdout without exiting; plumb stopped it".into()
+    }
+}
+
+impl Drop for Program {
+    fn drop(&mut self) {
+        if let Ok(None) = self.child.try_wait() {
+            let _ = self.child.kill();
+            let _ = self.child.wait();
+        }
+    }
+}
+
+fn malformed(request: &str, what: String) -> ProbeError {
+    ProbeError::Malformed {
+        request: request.into(),
+        what,
+    }
+}
+
+fn push_f64(out: &mut Vec<u8>, data: &[f64]) {
+    out.reserve(data.len() * 8);
+    for v in data {
+        out.extend_from_slice(&v.to_le_bytes());
+    }
+}
+
+fn finite_loss(h: &Value, request: &str) -> Result<f64, ProbeError> {
+    let v = h
+        .get("loss")
+        .and_then(Value::as_f64)
+        .ok_or_else(|| malformed(request, "no number `loss`".into()))?;
+    if !v.is_finite() {
+        return Err(ProbeError::NonFinite {
+            what: "loss".into(),
+            value: v,
+            place: String::new(),
+        });
+    }
+    Ok(v)
+}
+
+fn specs(h: &Value, request: &str) -> Result<Vec<TensorSpec>, ProbeError> {
+    let Some(list) = h.get("tensors").and_then(Value::as_array) else {
+        return Err(malformed(request, "no list `tensors`".into()));
+    };
+    list.iter()
+        .map(|t| {
+            let name = t.get("name").and_then(Value::as_str);
+            let shape: Option<Vec<usize>> =
+                t.get("shape").and_then(Value::as_array).and_then(|s| {
+                    s.iter()
+                        .map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok()))
+                        .collect()
+                });
+            match (name, shape) {
+                (Some(n), Some(s)) => Ok(TensorSpec {
+                    name: n.to_string(),
+                    shape: s,
+                }),
+                _ => Err(malformed(
+                    request,
+                    format!("a tensor without a name and a shape: {t}"),
+                )),
+            }
+        })
+        .collect()
+}
+
+fn list(t: &[TensorSpec]) -> String {
+    let items: Vec<String> = t
+        .iter()
+        .map(|s| format!("{} {:?}", s.name, s.shape))
+        .collect();
+    format!("[{}]", items.join(", "))
+}
+
+/// Frames the program's stdout into messages until it ends or breaks.
+fn read_replies(stdout: ChildStdout, tx: Sender<Result<Message, ReadError>>) {
+    let mut r = BufReader::new(stdout);
+    loop {
+        let mut line = Vec::new();
+        match (&mut r).take(MAX_LINE).read_until(b'\n', &mut line) {
+            Ok(0) => {
+                let _ = tx.send(Err(ReadError::Eof));
+                return;
+            }
+            Ok(_) if line.last() != Some(&b'\n') => {
+                let _ = tx.send(Err(ReadError::Garbage(shorten(&line))));
+                return;
+            }
+            Ok(_) => {}
+            Err(_) => {
+                let _ = tx.send(Err(ReadError::Eof));
+                return;
+            }
+        }
+        let header: Value = match serde_json::from_slice(&line) {
+            Ok(v @ Value::Object(_)) if v.get("type").is_some_and(Value::is_string) => v,
+            _ => {
+                let _ = tx.send(Err(ReadError::Garbage(shorten(&line))));
+                return;
+            }
+        };
+        let count = match payload_values(&header) {
+            Ok(n) => n,
+            Err(what) => {
+                let _ = tx.send(Err(ReadError::Malformed(what)));
+                return;
+            }
+        };
+        let mut bytes = vec![0u8; count as usize * 8];
+        if r.read_exact(&mut bytes).is_err() {
+            let _ = tx.send(Err(ReadError::Malformed(format!(
+                "its payload of {count} float64 values is cut short"
+            ))));
+            return;
+        }
+        let payload = bytes
+            .chunks_exact(8)
+            .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")))
+            .collect();
+        if tx.send(Ok(Message { header, payload })).is_err() {
+            return;
+        }
+    }
+}
+
+/// How many float64 values follow a header, refusing counts beyond what plumb will hold.
+fn payload_values(h: &Value) -> Result<u64, String> {
+    let n = match h.get("type").and_then(Value::as_str) {
+        Some("gradient") => {
+            let mut total: u64 = 0;
+            for t in h
+                .get("tensors")
+                .and_then(Value::as_array)
+                .into_iter()
+                .flatten()
+            {
+                let dims = t
+                    .get("shape")
+                    .and_then(Value::as_array)
+                    .ok_or("a tensor without a shape")?;
+                let mut n: u64 = 1;
+                for d in dims {
+                    let d = d
+                        .as_u64()
+                        .ok_or("a shape that is not a list of whole numbers")?;
+                    n = n.checked_mul(d).ok_or("a shape too large to hold")?;
+                }
+                total = total.checked_add(n).ok_or("shapes too large to hold")?;
+            }
+            total
+        }
+        Some("losses") => h
+            .get("count")
+            .and_then(Value::as_u64)
+            .ok_or("no whole number `count`")?,
+        _ => 0,
+    };
+    if n > MAX_VALUES {
+        return Err(format!(
+            "it announces {n} float64 values, more than the {MAX_VALUES} plumb will take"
+        ));
+    }
+    Ok(n)
+}
+
+fn shorten(line: &[u8]) -> String {
+    let text = String::from_utf8_lossy(line);
+    let text = text.trim_end();
+    if text.chars().count() > 120 {
+        format!("{}…", text.chars().take(120).collect::<String>())
+    } else {
+        text.to_string()
+    }
+}

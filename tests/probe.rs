@@ -1,0 +1,287 @@
+//! `plumb probe` end to end against the example programs (examples/python/pump_numpy.py, a
+//! hand-written NumPy backprop of the invented pump classifier, and examples/c/pump.c), with each
+//! catalogued mistake planted through their `--plant` switch. Needs python3 with NumPy (installed by
+//! .ci/run) and a C compiler.
+
+mod util;
+
+use std::path::{Path, PathBuf};
+use std::sync::OnceLock;
+use std::time::Instant;
+
+use util::{plumb, plumb_in, scratch};
+
+fn repo() -> &'static Path {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+}
+
+/// The demo's files (weights trained on the invented data), written once.
+fn demo() -> &'static PathBuf {
+    static DIR: OnceLock<PathBuf> = OnceLock::new();
+    DIR.get_or_init(|| {
+        let ok = std::process::Command::new("python3")
+            .args(["-c", "import numpy"])
+            .status()
+            .is_ok_and(|s| s.success());
+        assert!(
+            ok,
+            "these tests need python3 with NumPy: pip install numpy (see .ci/run)"
+        );
+        let dir = scratch("probe-demo");
+        plumb(&["demo", "--write", dir.to_str().unwrap(), "--quiet"]).assert_code(0);
+        dir
+    })
+}
+
+fn probe(extra: &[&str], program: &[&str]) -> util::Run {
+    let d = demo();
+    let w = d.join("pump-weights.npz");
+    let data = d.join("pump-data.csv");
+    let net = repo().join("examples/pump.toml");
+    let mut args = vec![
+        "probe",
+        net.to_str().unwrap(),
+        "-w",
+        w.to_str().unwrap(),
+        "-d",
+        data.to_str().unwrap(),
+        "--quiet",
+        "--format",
+        "json",
+    ];
+    args.extend_from_slice(extra);
+    args.push("--");
+    args.extend_from_slice(program);
+    plumb_in(repo(), &args)
+}
+
+fn numpy(extra: &[&str]) -> Vec<String> {
+    let mut v = vec![
+        "python3".to_string(),
+        "examples/python/pump_numpy.py".to_string(),
+    ];
+    v.extend(extra.iter().map(|s| s.to_string()));
+    v
+}
+
+fn diagnoses(j: &serde_json::Value) -> Vec<Option<String>> {
+    j["tensors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t["diagnosis"]["code"].as_str().map(String::from))
+        .collect()
+}
+
+#[test]
+fn every_planted_mistake_is_named_through_the_protocol() {
+    // (plant, expected code per tensor of the 4-8-6-3 pump network). Hidden-layer mistakes at k
+    // change layers 1..k (docs/mistakes.md).
+    let all = |c: &str| vec![Some(c.to_string()); 3];
+    let upto = |c: &str, k: usize| {
+        (0..3)
+            .map(|i| (i < k).then(|| c.to_string()))
+            .collect::<Vec<_>>()
+    };
+    let cases: Vec<(&str, Vec<Option<String>>)> = vec![
+        ("sign-flipped", all("sign-flipped")),
+        ("missing-batch-mean", all("missing-batch-mean")),
+        ("double-batch-mean", all("double-batch-mean")),
+        ("constant-factor", all("constant-factor")),
+        ("bias-regularized", all("bias-regularized")),
+        ("regularization-missing", all("regularization-missing")),
+        ("regularization-unscaled", all("regularization-unscaled")),
+        ("output-delta-mismatch", all("output-delta-mismatch")),
+        ("transposed", all("transposed")),
+        ("bias-gradient-missing", all("bias-gradient-missing")),
+        ("partial-batch", all("partial-batch")),
+        (
+            "activation-derivative-missing:1",
+            upto("activation-derivative-missing", 1),
+        ),
+        (
+            "activation-derivative-missing:2",
+            upto("activation-derivative-missing", 2),
+        ),
+        ("derivative-at-output:1", upto("derivative-at-output", 1)),
+        ("derivative-at-output:2", upto("derivative-at-output", 2)),
+        ("bias-rows-shifted:1", upto("bias-rows-shifted", 1)),
+        ("bias-rows-shifted:2", upto("bias-rows-shifted", 2)),
+        ("layers-swapped", upto("layers-swapped", 2)),
+        (
+            "sign-flipped:2",
+            vec![None, Some("sign-flipped".into()), None],
+        ),
+        (
+            "missing-batch-mean:3",
+            vec![None, None, Some("missing-batch-mean".into())],
+        ),
+    ];
+    for (plant, want) in cases {
+        let prog = numpy(&["--plant", plant]);
+        let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+        let run = probe(&[], &prog);
+        run.assert_code(1);
+        let j = run.json();
+        assert_eq!(diagnoses(&j), want, "{plant}: {:#}", j["tensors"]);
+        // The gradient is also inconsistent with the program's own (right) loss where it is wrong.
+        for (t, w) in j["self_check"]["tensors"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .zip(&want)
+        {
+            assert_eq!(
+                t["verdict"] == "fail",
+                w.is_some(),
+                "{plant}: self-check of {}",
+                t["name"]
+            );
+        }
+        assert_eq!(
+            j["loss"]["matches"], true,
+            "{plant}: the loss itself is right"
+        );
+    }
+}
+
+#[test]
+fn a_correct_program_passes_in_f64_f32_and_with_relu() {
+    for extra in [vec![], vec!["--dtype", "f32"]] {
+        let prog = numpy(&extra);
+        let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+        let run = probe(&[], &prog);
+        run.assert_code(0);
+        let j = run.json();
+        assert_eq!(
+            j["program"]["dtype"],
+            if extra.is_empty() { "f64" } else { "f32" }
+        );
+        assert!(
+            j["findings"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .all(|f| f["severity"] != "error"),
+            "{:#}",
+            j["findings"]
+        );
+    }
+    let net = repo().join("examples/pump-relu.toml");
+    let run = plumb_in(
+        repo(),
+        &[
+            "probe",
+            net.to_str().unwrap(),
+            "--quiet",
+            "--",
+            "python3",
+            "examples/python/pump_numpy.py",
+            "--hidden",
+            "relu",
+        ],
+    );
+    run.assert_code(0);
+}
+
+/// No false alarm over 20 seeds: seeded weights and synthetic data, each a fresh program.
+#[test]
+fn no_false_alarm_over_20_seeds() {
+    let net = repo().join("examples/pump.toml");
+    for seed in 0..20 {
+        let s = seed.to_string();
+        let run = plumb_in(
+            repo(),
+            &[
+                "probe",
+                net.to_str().unwrap(),
+                "--seed",
+                &s,
+                "--quiet",
+                "--",
+                "python3",
+                "examples/python/pump_numpy.py",
+            ],
+        );
+        assert_eq!(run.code, 0, "seed {seed}: {}", run.stdout);
+    }
+}
+
+#[test]
+fn the_c_program_speaks_the_protocol_too() {
+    let built = std::process::Command::new("make")
+        .args(["-s", "-C", "examples/c"])
+        .current_dir(repo())
+        .status();
+    assert!(
+        built.is_ok_and(|s| s.success()),
+        "make -C examples/c failed"
+    );
+    let run = probe(&[], &["examples/c/pump"]);
+    run.assert_code(0);
+    let run = probe(
+        &[],
+        &[
+            "examples/c/pump",
+            "--plant",
+            "activation-derivative-missing:2",
+        ],
+    );
+    run.assert_code(1);
+    let want: Vec<Option<String>> = vec![
+        Some("activation-derivative-missing".into()),
+        Some("activation-derivative-missing".into()),
+        None,
+    ];
+    assert_eq!(diagnoses(&run.json()), want);
+}
+
+#[test]
+fn a_black_box_is_checked_against_its_own_loss_only() {
+    let prog = numpy(&[]);
+    let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+    let run = probe(&["--blackbox"], &prog);
+    run.assert_code(0);
+    let j = run.json();
+    assert_eq!(j["blackbox"], true);
+    assert!(j["tensors"].as_array().unwrap().is_empty() && j["loss"].is_null());
+    let prog = numpy(&["--plant", "missing-batch-mean"]);
+    let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+    let run = probe(&["--blackbox"], &prog);
+    run.assert_code(1);
+    assert_eq!(run.json()["findings"][0]["code"], "self-inconsistent");
+}
+
+/// Each failing program gives exit 2 and a message saying what happened, within the timeout.
+#[test]
+fn broken_programs_exit_2_with_the_reason() {
+    for (fail, needle) in [
+        ("crash", "exited (status 3)"),
+        ("hang", "did not answer the gradient request within 2 s"),
+        ("garbage", "not a protocol message"),
+        ("shape", "with shape (7, 5), but declared (8, 5)"),
+        ("nan", "not finite (NaN) at [2, 3] of `layer2`"),
+        ("version", "protocol version 99"),
+    ] {
+        let prog = numpy(&["--fail", fail]);
+        let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+        let start = Instant::now();
+        let run = probe(&["--timeout", "2"], &prog);
+        run.assert_code(2);
+        assert!(run.stderr.contains(needle), "{fail}: {}", run.stderr);
+        assert!(
+            start.elapsed().as_secs_f64() < 12.0,
+            "{fail} took {:?}",
+            start.elapsed()
+        );
+    }
+    let run = probe(&[], &["/nonexistent/program"]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("cannot start"), "{}", run.stderr);
+    let run = probe(
+        &["--method", "complex-step"],
+        &["python3", "examples/python/pump_numpy.py"],
+    );
+    run.assert_code(2);
+    assert!(run.stderr.contains("complex numbers"), "{}", run.stderr);
+}
