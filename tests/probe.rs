@@ -285,3 +285,98 @@ fn broken_programs_exit_2_with_the_reason() {
     run.assert_code(2);
     assert!(run.stderr.contains("complex numbers"), "{}", run.stderr);
 }
+
+/// The JSON report of probe, pinned: top-level and self-check fields exactly as docs/json.md lists.
+#[test]
+fn probe_report_schema() {
+    use std::collections::BTreeSet;
+    let prog = numpy(&["--plant", "constant-factor"]);
+    let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
+    let run = probe(&[], &prog);
+    assert!(
+        run.stdout
+            .trim_start()
+            .trim_start_matches('{')
+            .trim_start()
+            .starts_with("\"verdict\"")
+    );
+    let j = run.json();
+    let keys = |v: &serde_json::Value| {
+        v.as_object()
+            .unwrap()
+            .keys()
+            .cloned()
+            .collect::<BTreeSet<String>>()
+    };
+    let set = |k: &[&str]| {
+        k.iter()
+            .map(|s| s.to_string())
+            .collect::<BTreeSet<String>>()
+    };
+    assert_eq!(
+        keys(&j),
+        set(&[
+            "verdict",
+            "schema_version",
+            "command",
+            "program",
+            "blackbox",
+            "description",
+            "weights",
+            "data",
+            "self_check",
+            "loss",
+            "reference",
+            "tensors",
+            "findings"
+        ])
+    );
+    assert_eq!(keys(&j["program"]), set(&["command", "name", "dtype"]));
+    assert_eq!(
+        keys(&j["self_check"]),
+        set(&[
+            "method",
+            "step_rule",
+            "tolerance",
+            "sample",
+            "checked",
+            "parameters",
+            "directions_per_tensor",
+            "tensors"
+        ])
+    );
+    assert_eq!(
+        keys(&j["self_check"]["tensors"][0]),
+        set(&[
+            "name",
+            "verdict",
+            "parameters",
+            "checked",
+            "max_rel_error",
+            "median_rel_error",
+            "mismatches",
+            "unreliable",
+            "directions",
+            "direction_mismatches",
+            "worst"
+        ])
+    );
+    let t = &j["tensors"][0];
+    assert_eq!(t["diagnosis"]["code"], "constant-factor");
+    assert!((t["diagnosis"]["factor"].as_f64().unwrap() - 2.0).abs() < 1e-9);
+    assert_eq!(
+        keys(t),
+        set(&[
+            "name",
+            "verdict",
+            "expected_shape",
+            "found_shape",
+            "max_rel_error",
+            "median_rel_error",
+            "cosine",
+            "scale",
+            "worst",
+            "diagnosis"
+        ])
+    );
+}
