@@ -279,6 +279,7 @@ struct Demo {
     grad: Grad,
     check: Check,
     planted: Planted,
+    audit: serde_json::Value,
     written: Vec<String>,
 }
 
@@ -518,4 +519,98 @@ fn compare_report_schema() {
         assert_eq!(r.tensors.len(), 3);
         let _ = verdict;
     }
+}
+
+#[test]
+fn audit_report_schema() {
+    use std::collections::BTreeSet;
+    let run = plumb(&[
+        "audit",
+        "nets/audit.toml",
+        "-w",
+        "audit/dead-unit.npz",
+        "-d",
+        "data/audit.csv",
+        "--init",
+        "he-normal",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(first_key(&run.stdout), "\"verdict\"");
+    let j = run.json();
+    let keys = |v: &serde_json::Value| {
+        v.as_object()
+            .unwrap()
+            .keys()
+            .cloned()
+            .collect::<BTreeSet<String>>()
+    };
+    let set = |k: &[&str]| {
+        k.iter()
+            .map(|s| s.to_string())
+            .collect::<BTreeSet<String>>()
+    };
+    assert_eq!(
+        keys(&j),
+        set(&[
+            "verdict",
+            "schema_version",
+            "command",
+            "description",
+            "weights",
+            "data",
+            "fail_on",
+            "claimed_init",
+            "thresholds",
+            "shapes",
+            "health",
+            "init",
+            "flow",
+            "skipped",
+            "findings"
+        ])
+    );
+    assert_eq!(
+        keys(&j["health"][0]),
+        set(&[
+            "layer",
+            "activation",
+            "units",
+            "measure",
+            "fractions",
+            "flagged",
+            "histogram",
+            "range"
+        ])
+    );
+    assert_eq!(
+        keys(&j["init"][0]),
+        set(&[
+            "layer",
+            "tensor",
+            "fan_in",
+            "fan_out",
+            "std",
+            "closest",
+            "ratio",
+            "reference",
+            "reference_ratio",
+            "test"
+        ])
+    );
+    assert_eq!(
+        keys(&j["init"][0]["test"]),
+        set(&["scheme", "statistic", "p_value", "passed"])
+    );
+    assert_eq!(
+        keys(&j["flow"][0]),
+        set(&[
+            "layer",
+            "activation_std",
+            "gradient_norm",
+            "gradient_rms",
+            "sigma_max"
+        ])
+    );
+    assert_eq!(j["health"][0]["flagged"], serde_json::json!([5]));
 }

@@ -57,6 +57,9 @@ pub enum Command {
     Compare(CompareArgs),
     /// Drive your own program over plumb's wire protocol and check its loss and gradient.
     Probe(ProbeArgs),
+    /// Release audit of a weight file on probe data: shapes, values, symmetry, unit health,
+    /// initialisation, signal and gradient flow.
+    Audit(AuditArgs),
 }
 
 #[derive(Debug, Args)]
@@ -94,9 +97,9 @@ pub struct Inputs {
     /// Initialisation scheme for weights drawn without --weights.
     #[arg(long, value_enum, default_value_t = InitArg::GlorotUniform)]
     pub init: InitArg,
-    /// Samples in the synthetic batch drawn without --data.
-    #[arg(long, value_name = "M", default_value_t = 32)]
-    pub batch: usize,
+    /// Samples in the synthetic batch drawn without --data [default: 32; 1000 for audit].
+    #[arg(long, value_name = "M")]
+    pub batch: Option<usize>,
 }
 
 #[derive(Debug, Args)]
@@ -209,6 +212,58 @@ pub struct ProbeArgs {
     /// The program and its arguments, after `--`.
     #[arg(last = true, required = true, value_name = "CMD")]
     pub command: Vec<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct AuditArgs {
+    /// The network description (TOML).
+    #[arg(value_name = "NET")]
+    pub net: PathBuf,
+    /// The weight file to audit (.npy, .npz, .safetensors).
+    #[arg(short, long, value_name = "W")]
+    pub weights: PathBuf,
+    /// Probe data (CSV with a header row, or .npz with x and y); without it, a seeded synthetic batch.
+    #[arg(short, long, value_name = "PROBE")]
+    pub data: Option<PathBuf>,
+    /// Samples in the synthetic probe batch drawn without --data.
+    #[arg(long, value_name = "M", default_value_t = 1000)]
+    pub batch: usize,
+    /// The scheme the weights are said to be drawn from: test every layer against it (KS test).
+    #[arg(long, value_enum, value_name = "SCHEME")]
+    pub init: Option<InitArg>,
+    /// The lowest severity that fails the run (exit 1).
+    #[arg(long, value_enum, default_value_t = FailOn::Error)]
+    pub fail_on: FailOn,
+    /// |w| beyond which a value is implausible for a trained network.
+    #[arg(long, value_name = "X", default_value_t = 1e6)]
+    pub max_magnitude: f64,
+    /// Relative distance under which two units' incoming weights count as identical.
+    #[arg(long, value_name = "X", default_value_t = 1e-6)]
+    pub symmetry_tolerance: f64,
+    /// Distance from an asymptote within which a sigmoid or tanh output counts as saturated.
+    #[arg(long, value_name = "X", default_value_t = 0.01)]
+    pub saturation: f64,
+    /// Fraction of probe samples on which a unit must be saturated to be reported.
+    #[arg(long, value_name = "F", default_value_t = 0.99)]
+    pub saturated_fraction: f64,
+    /// Fraction of a layer's units dead or saturated that makes it a layer-wide error.
+    #[arg(long, value_name = "F", default_value_t = 0.5)]
+    pub layer_fraction: f64,
+    /// Factor off the scale the layer's activation calls for (He or Glorot) that is flagged.
+    #[arg(long, value_name = "X", default_value_t = 10.0)]
+    pub scale_factor: f64,
+    /// Orders of magnitude of gradient change across the layers that is flagged.
+    #[arg(long, value_name = "N", default_value_t = 3.0)]
+    pub flow_orders: f64,
+    /// Level of the Kolmogorov–Smirnov test against --init.
+    #[arg(long, value_name = "A", default_value_t = 0.01)]
+    pub ks_alpha: f64,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum FailOn {
+    Warning,
+    Error,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

@@ -14,6 +14,9 @@ use serde::Serialize;
 
 use crate::args::{InitArg, Inputs};
 
+/// Samples in a synthetic batch when --batch is not given.
+pub const DEFAULT_BATCH: usize = 32;
+
 /// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo.
 const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
 /// The most pre-activation and activation values a forward pass may hold (2²⁷ = 1 GiB of f64).
@@ -125,50 +128,7 @@ pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
             )
         }
     };
-    let net = &desc.network;
-    let (batch, data_source) = match &inputs.data {
-        Some(path) => {
-            let batch = read_data(path, net.inputs(), net.outputs())?;
-            let samples = batch.len();
-            (
-                batch,
-                DataSource::File {
-                    path: path.clone(),
-                    samples,
-                },
-            )
-        }
-        None => {
-            let m = inputs.batch;
-            if m == 0 {
-                bail!("--batch is 0: a synthetic batch needs at least one sample");
-            }
-            let values = m.checked_mul(net.inputs() + net.outputs());
-            if values.is_none_or(|v| v > MAX_SYNTHETIC_VALUES) {
-                bail!(
-                    "--batch {m} would draw more than {MAX_SYNTHETIC_VALUES} values for this network; use a smaller batch or give --data"
-                );
-            }
-            (
-                Batch::synthetic(net, m, seed),
-                DataSource::Synthetic { samples: m, seed },
-            )
-        }
-    };
-    let units: usize = net.inputs() + net.layers().iter().map(|l| l.units).sum::<usize>();
-    let values = batch.len().checked_mul(2 * units);
-    if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
-        bail!(
-            "{}: a batch of {} samples through this network needs {} activation values, more than the {} plumb holds; use fewer samples (--batch, or a smaller data file) or check the unit counts",
-            desc.path.display(),
-            batch.len(),
-            values.map_or("too many".to_string(), |v| v.to_string()),
-            MAX_ACTIVATION_VALUES
-        );
-    }
-    if net.loss() == Loss::CrossEntropy {
-        check_probabilities(&batch, &data_source)?;
-    }
+    let (batch, data_source) = load_batch(inputs, &desc, seed, DEFAULT_BATCH)?;
     Ok(Loaded {
         desc,
         weights,
@@ -238,6 +198,61 @@ fn check_finite(file: &TensorFile, path: &Path) -> Result<()> {
         }
     }
     Ok(())
+}
+
+/// The probe or training batch: the data file, or a seeded synthetic batch of `--batch` samples
+/// (`default_batch` when not given), checked against the network and the memory budget.
+pub fn load_batch(
+    inputs: &Inputs,
+    desc: &Description,
+    seed: u64,
+    default_batch: usize,
+) -> Result<(Batch, DataSource)> {
+    let net = &desc.network;
+    let (batch, data_source) = match &inputs.data {
+        Some(path) => {
+            let batch = read_data(path, net.inputs(), net.outputs())?;
+            let samples = batch.len();
+            (
+                batch,
+                DataSource::File {
+                    path: path.clone(),
+                    samples,
+                },
+            )
+        }
+        None => {
+            let m = inputs.batch.unwrap_or(default_batch);
+            if m == 0 {
+                bail!("--batch is 0: a synthetic batch needs at least one sample");
+            }
+            let values = m.checked_mul(net.inputs() + net.outputs());
+            if values.is_none_or(|v| v > MAX_SYNTHETIC_VALUES) {
+                bail!(
+                    "--batch {m} would draw more than {MAX_SYNTHETIC_VALUES} values for this network; use a smaller batch or give --data"
+                );
+            }
+            (
+                Batch::synthetic(net, m, seed),
+                DataSource::Synthetic { samples: m, seed },
+            )
+        }
+    };
+    let units: usize = net.inputs() + net.layers().iter().map(|l| l.units).sum::<usize>();
+    let values = batch.len().checked_mul(2 * units);
+    if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
+        bail!(
+            "{}: a batch of {} samples through this network needs {} activation values, more than the {} plumb holds; use fewer samples (--batch, or a smaller data file) or check the unit counts",
+            desc.path.display(),
+            batch.len(),
+            values.map_or("too many".to_string(), |v| v.to_string()),
+            MAX_ACTIVATION_VALUES
+        );
+    }
+    if net.loss() == Loss::CrossEntropy {
+        check_probabilities(&batch, &data_source)?;
+    }
+    Ok((batch, data_source))
 }
 
 /// The weights of a file, after the dimension audit has found nothing wrong with it.

@@ -27,6 +27,7 @@ fn main() -> ExitCode {
         Command::Sweep(a) => commands::sweep::run(a, &settings),
         Command::Compare(a) => commands::compare::run(a, &settings),
         Command::Probe(a) => commands::probe::run(a, &settings),
+        Command::Audit(a) => commands::audit::run(a, &settings),
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,

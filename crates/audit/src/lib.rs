@@ -1,9 +1,9 @@
 //! Audits of a weight file against its network description.
 //!
-//! So far: the dimension audit ([`audit_shapes`]), which compares the tensors a description implies
-//! with those a file holds and names the usual mistakes (transposed matrix, missing or extra bias
-//! column, wrong bias length, another layout, layers out of order, missing or unexpected tensors,
-//! non-float dtypes).
+//! [`audit_shapes`] is the dimension audit (`plumb shapes`); [`audit`] is the release audit
+//! (`plumb audit`): the shapes, then the values (non-finite, implausible magnitudes, constant
+//! tensors), symmetric units, unit health on probe data, the initialisation scale (and a
+//! Kolmogorov–Smirnov test against a claimed scheme), and the flow of signal and gradient.
 //!
 //! ```
 //! use std::path::Path;
@@ -20,6 +20,18 @@
 //! # Ok::<(), plumb_formats::DescriptionError>(())
 //! ```
 
+mod flow;
+mod health;
+mod init;
+mod release;
 mod shapes;
+mod symmetry;
+mod values;
 
+pub use flow::{LayerFlow, layer_flow, sigma_max};
+pub use health::{BINS, LayerHealth, layer_health, sparkline};
+pub use init::{KsTest, LayerInit, ks_test, layer_init, q_ks, scheme_cdf};
+pub use release::{Audit, Thresholds, audit};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
+pub use symmetry::symmetric_groups;
+pub use values::check_values;

@@ -1,5 +1,6 @@
 //! One module per command: validate its flags, call the libraries, build its report.
 
+pub mod audit;
 pub mod check;
 pub mod compare;
 pub mod grad;

@@ -9,7 +9,7 @@ mod pump;
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use plumb_audit::audit_shapes;
+use plumb_audit::{Thresholds, audit_shapes};
 use plumb_diagnose::Tolerances;
 use plumb_engine::{Regularization, Variant};
 use plumb_fd::{CheckConfig, Method, Precision};
@@ -21,9 +21,9 @@ use serde::Serialize;
 
 use crate::args::DemoArgs;
 use crate::commands::check::{self, CheckReport};
-use crate::commands::compare;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
+use crate::commands::{audit, compare};
 use crate::inputs::{DataSource, Loaded, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
 
@@ -97,6 +97,7 @@ struct DemoReport<'a> {
     grad: &'a GradReport,
     check: &'a CheckReport,
     planted: PlantedReport<'a>,
+    audit: &'a plumb_audit::Audit,
     written: Vec<PathBuf>,
 }
 
@@ -161,6 +162,15 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     let (bug_tensors, bug_findings) =
         compare::judge_gradient(&loaded, &outside, Tolerances::for_precision(false));
 
+    let shipped = plumb_audit::audit(
+        desc,
+        &good,
+        &pump.batch,
+        None,
+        &Thresholds::default(),
+        settings.seed,
+    );
+
     let written = match &args.write {
         Some(dir) => write_files(dir, args.force, &pump, &good, &planted)?,
         None => Vec::new(),
@@ -205,6 +215,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             tensors: &bug_tensors,
             findings: &bug_findings,
         },
+        audit: &shipped,
         written: written.clone(),
     };
 
@@ -285,6 +296,18 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     doc.push(Block::Table(compare::tensor_table(&bug_tensors)));
     doc.push(Block::Findings(bug_findings.clone()));
 
+    doc.push(Block::Heading("7. Is the weight file fit to ship?".into()));
+    doc.push(Block::Text(
+        "`plumb audit` reads the file's values (finite, plausible, not constant), looks for units that \
+         can never differ, runs the probe data through it for dead and saturated units, compares each \
+         layer's scale with the initialisation schemes, and follows the gradient across the layers."
+            .into(),
+    ));
+    for b in audit::sections(&shipped) {
+        doc.push(b);
+    }
+    doc.push(Block::Findings(shipped.findings.clone()));
+
     doc.push(Block::Heading("Try it yourself".into()));
     let dir = args.write.clone().unwrap_or_else(|| PathBuf::from("DIR"));
     let p = |name: &str| dir.join(name).display().to_string();
@@ -313,6 +336,12 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         p("pump-weights.npz"),
         p("pump-data.csv"),
         bug_code,
+    ));
+    steps.push_str(&format!(
+        "\nplumb audit {} -w {} -d {}",
+        p("pump.toml"),
+        p("pump-weights.npz"),
+        p("pump-data.csv")
     ));
     doc.push(Block::Text(steps));
     doc.push(Block::Verdict(

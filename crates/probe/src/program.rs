@@ -198,13 +198,11 @@ impl Program {
         if let Some(e) = expected
             && tensors != e
         {
-            {
-                return Err(ProbeError::Mismatch(format!(
-                    "the program declares the tensors {}, but the description expects {}; name and shape them as the description's layout does, or use --blackbox for a model the description cannot express",
-                    list(&tensors),
-                    list(e)
-                )));
-            }
+            return Err(ProbeError::Mismatch(format!(
+                "the program declares the tensors {}, but the description expects {}; name and shape them as the description's layout does, or use --blackbox for a model the description cannot express",
+                list(&tensors),
+                list(e)
+            )));
         }
         Ok(Hello {
             name: h

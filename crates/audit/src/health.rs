@@ -1,0 +1,130 @@
+//! Unit health on probe data: ReLU units that never fire, sigmoid and tanh units stuck near an
+//! asymptote. Thresholds [practice, no formal source]: a unit is dead when it outputs 0 on every
+//! probe sample (the definition Lu, Shin, Su & Karniadakis, Commun. Comput. Phys. 28:1671, 2020, use
+//! for a dead network), saturated when its output is within 0.01 of an asymptote on 99% of them.
+
+use plumb_engine::{Activation, Network, Trace};
+use serde::Serialize;
+
+/// Whether a (pre-activation, activation) pair shows the measured condition.
+type Test = Box<dyn Fn(f64, f64) -> bool>;
+
+/// Bins of the activation histogram.
+pub const BINS: usize = 16;
+
+/// One hidden layer's health.
+#[derive(Clone, Debug, Serialize)]
+pub struct LayerHealth {
+    /// 1-based layer.
+    pub layer: usize,
+    pub activation: String,
+    pub units: usize,
+    /// What `fractions` measure: `inactive` (ReLU), `negative` (leaky ReLU, ELU), `saturated`
+    /// (sigmoid, tanh), or null.
+    pub measure: Option<&'static str>,
+    /// Per unit, the fraction of probe samples on which the measure holds.
+    pub fractions: Vec<f64>,
+    /// 1-based units that are dead (ReLU) or saturated (sigmoid, tanh).
+    pub flagged: Vec<usize>,
+    /// Counts of the layer's activations in `BINS` equal bins over `range`.
+    pub histogram: Vec<usize>,
+    pub range: (f64, f64),
+}
+
+/// The health of every hidden layer (the output layer's confidence is not a defect).
+pub fn layer_health(
+    net: &Network,
+    trace: &Trace<f64>,
+    saturation: f64,
+    saturated_fraction: f64,
+) -> Vec<LayerHealth> {
+    let layers = net.layers();
+    (0..layers.len() - 1)
+        .map(|l| {
+            let act = layers[l].activation;
+            let (z, a) = (&trace.z[l], &trace.a[l + 1]);
+            let m = z.nrows() as f64;
+            let (measure, test): (Option<&'static str>, Test) = match act {
+                Activation::Relu => (Some("inactive"), Box::new(|z, _| z <= 0.0)),
+                Activation::LeakyRelu { .. } | Activation::Elu { .. } => {
+                    (Some("negative"), Box::new(|z, _| z <= 0.0))
+                }
+                Activation::Sigmoid => (
+                    Some("saturated"),
+                    Box::new(move |_, a| a < saturation || a > 1.0 - saturation),
+                ),
+                Activation::Tanh => (
+                    Some("saturated"),
+                    Box::new(move |_, a: f64| a.abs() > 1.0 - saturation),
+                ),
+                _ => (None, Box::new(|_, _| false)),
+            };
+            let fractions: Vec<f64> = (0..z.ncols())
+                .map(|u| {
+                    z.column(u)
+                        .iter()
+                        .zip(a.column(u))
+                        .filter(|&(&zv, &av)| test(zv, av))
+                        .count() as f64
+                        / m
+                })
+                .collect();
+            let flagged = fractions
+                .iter()
+                .enumerate()
+                .filter(|&(_, &f)| match act {
+                    Activation::Relu => f >= 1.0,
+                    Activation::Sigmoid | Activation::Tanh => f >= saturated_fraction,
+                    _ => false,
+                })
+                .map(|(u, _)| u + 1)
+                .collect();
+            let range = match act {
+                Activation::Tanh => (-1.0, 1.0),
+                Activation::Sigmoid => (0.0, 1.0),
+                _ => {
+                    let lo = a.iter().copied().fold(f64::INFINITY, f64::min);
+                    let hi = a.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+                    if lo.is_finite() && hi > lo {
+                        (lo, hi)
+                    } else {
+                        (lo.min(0.0), lo.max(0.0) + 1.0)
+                    }
+                }
+            };
+            let mut histogram = vec![0; BINS];
+            for &v in a.iter() {
+                let t = ((v - range.0) / (range.1 - range.0) * BINS as f64).floor();
+                if t.is_finite() {
+                    histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;
+                }
+            }
+            LayerHealth {
+                layer: l + 1,
+                activation: act.to_string(),
+                units: z.ncols(),
+                measure,
+                fractions,
+                flagged,
+                histogram,
+                range,
+            }
+        })
+        .collect()
+}
+
+/// A histogram as a one-line sparkline of block characters.
+pub fn sparkline(counts: &[usize]) -> String {
+    const BARS: [char; 8] = ['▁', '▂', '▃', '▄', '▅', '▆', '▇', '█'];
+    let max = counts.iter().copied().max().unwrap_or(0);
+    counts
+        .iter()
+        .map(|&c| {
+            if c == 0 {
+                ' '
+            } else {
+                BARS[((c as f64 / max as f64) * 7.0).round() as usize]
+            }
+        })
+        .collect()
+}

@@ -1,0 +1,326 @@
+//! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file.
+
+use std::path::PathBuf;
+
+use anyhow::{Result, bail};
+use plumb_audit::{Audit, Thresholds, audit, sparkline};
+use plumb_formats::{Description, read_tensors};
+use plumb_report::{Block, Cell, Document, Severity, Table, Tone, Verdict};
+use serde::Serialize;
+
+use crate::args::{AuditArgs, FailOn, Inputs};
+use crate::commands::shapes;
+use crate::inputs::{DataSource, init_scheme, load_batch};
+use crate::output::{SCHEMA_VERSION, Settings, num};
+
+/// The JSON report of `plumb audit` (docs/json.md).
+#[derive(Serialize)]
+pub struct AuditReport<'a> {
+    pub verdict: Verdict,
+    pub schema_version: u32,
+    pub command: &'static str,
+    pub description: &'a std::path::Path,
+    pub weights: &'a std::path::Path,
+    pub data: DataSource,
+    pub fail_on: &'static str,
+    pub claimed_init: Option<&'static str>,
+    pub thresholds: &'a Thresholds,
+    #[serde(flatten)]
+    pub audit: &'a Audit,
+}
+
+pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
+    let checks: [(&str, f64, bool); 8] = [
+        (
+            "--max-magnitude",
+            args.max_magnitude,
+            args.max_magnitude > 0.0,
+        ),
+        (
+            "--symmetry-tolerance",
+            args.symmetry_tolerance,
+            args.symmetry_tolerance >= 0.0,
+        ),
+        (
+            "--saturation",
+            args.saturation,
+            args.saturation > 0.0 && args.saturation < 0.5,
+        ),
+        (
+            "--saturated-fraction",
+            args.saturated_fraction,
+            args.saturated_fraction > 0.0 && args.saturated_fraction <= 1.0,
+        ),
+        (
+            "--layer-fraction",
+            args.layer_fraction,
+            args.layer_fraction > 0.0 && args.layer_fraction <= 1.0,
+        ),
+        ("--scale-factor", args.scale_factor, args.scale_factor > 1.0),
+        ("--flow-orders", args.flow_orders, args.flow_orders > 0.0),
+        (
+            "--ks-alpha",
+            args.ks_alpha,
+            args.ks_alpha > 0.0 && args.ks_alpha < 1.0,
+        ),
+    ];
+    for (flag, v, ok) in checks {
+        if !(v.is_finite() && ok) {
+            bail!(
+                "{flag} {v}: out of range; see `plumb audit --help` for what it means and its default"
+            );
+        }
+    }
+    let t = Thresholds {
+        max_magnitude: args.max_magnitude,
+        symmetry_tolerance: args.symmetry_tolerance,
+        saturation: args.saturation,
+        saturated_fraction: args.saturated_fraction,
+        layer_fraction: args.layer_fraction,
+        scale_factor: args.scale_factor,
+        flow_orders: args.flow_orders,
+        ks_alpha: args.ks_alpha,
+    };
+    let desc = Description::read(&args.net)?;
+    let file = read_tensors(&args.weights)?;
+    let inputs = Inputs {
+        net: args.net.clone(),
+        weights: None,
+        data: args.data.clone(),
+        init: crate::args::InitArg::GlorotUniform,
+        batch: Some(args.batch),
+    };
+    let (batch, data) = load_batch(&inputs, &desc, settings.seed, args.batch)?;
+    let claimed = args.init.map(init_scheme);
+    let result = audit(&desc, &file, &batch, claimed, &t, settings.seed);
+    // A file none of whose tensors fits, in any layout, is not this network's: unusable input.
+    let fits_any = result.shapes.detected_layout.is_some()
+        || result
+            .shapes
+            .layers
+            .iter()
+            .flat_map(|l| &l.tensors)
+            .any(|t| t.status == plumb_audit::Status::Ok);
+    if !fits_any {
+        let found: Vec<String> = file
+            .tensors
+            .iter()
+            .take(6)
+            .map(|t| format!("`{}` {}", t.name, crate::output::shape(&t.shape)))
+            .collect();
+        bail!(
+            "{}: none of its tensors fits {} in any layout (it holds {}); these weights belong to another network — run `plumb shapes` to compare",
+            args.weights.display(),
+            args.net.display(),
+            found.join(", ")
+        );
+    }
+    let level = match args.fail_on {
+        FailOn::Warning => Severity::Warning,
+        FailOn::Error => Severity::Error,
+    };
+    let verdict = if result.findings.iter().any(|f| f.severity >= level) {
+        Verdict::Fail
+    } else {
+        Verdict::Pass
+    };
+    let report = AuditReport {
+        verdict,
+        schema_version: SCHEMA_VERSION,
+        command: "audit",
+        description: &args.net,
+        weights: &args.weights,
+        data,
+        fail_on: level.name(),
+        claimed_init: claimed.map(|c| c.name()),
+        thresholds: &t,
+        audit: &result,
+    };
+    let doc = document(&report, &desc, &file, &args.weights);
+    settings.emit(&report, &doc)?;
+    Ok(verdict)
+}
+
+fn document(
+    r: &AuditReport<'_>,
+    desc: &Description,
+    file: &plumb_formats::TensorFile,
+    weights: &PathBuf,
+) -> Document {
+    let a = r.audit;
+    let mut doc = Document::new("plumb audit — is this weight file fit to ship?");
+    doc.push(Block::Facts(vec![
+        ("description".into(), r.description.display().to_string()),
+        (
+            "weights".into(),
+            format!(
+                "{} ({}, {} tensors)",
+                weights.display(),
+                file.format.name(),
+                file.tensors.len()
+            ),
+        ),
+        ("probe data".into(), r.data.describe()),
+        (
+            "claimed init".into(),
+            r.claimed_init
+                .map_or("none (--init tests a claim)".to_string(), str::to_string),
+        ),
+        ("fails on".into(), format!("{} and worse", r.fail_on)),
+    ]));
+
+    doc.push(Block::Heading("shapes".into()));
+    let mut sd = shapes::document(desc, r.description, Some((weights, file)), &a.shapes);
+    sd.blocks.retain(|b| matches!(b, Block::Table(_)));
+    for b in sd.blocks {
+        doc.push(b);
+    }
+
+    for b in sections(a) {
+        doc.push(b);
+    }
+    for s in &a.skipped {
+        doc.push(Block::Text(format!("Not checked — {s}.")));
+    }
+    doc.push(Block::Findings(a.findings.clone()));
+    let count = |s: Severity| a.findings.iter().filter(|f| f.severity == s).count();
+    doc.push(Block::Verdict(
+        r.verdict,
+        format!(
+            "{} errors, {} warnings, {} notes",
+            count(Severity::Error),
+            count(Severity::Warning),
+            count(Severity::Note)
+        ),
+    ));
+    doc.push(Block::Caution(
+        "This audit checks the file's structure and health on the probe data. It is not a safety \
+         assessment: it says nothing of accuracy, robustness or fairness. A model that will decide \
+         about machinery, vehicles, medicine or people needs the validation the applicable standards \
+         require and review by people qualified to give it."
+            .into(),
+    ));
+    doc
+}
+
+/// The health, initialisation and flow tables of an audit (shared with the demo).
+pub fn sections(a: &Audit) -> Vec<Block> {
+    let mut out = Vec::new();
+    if !a.health.is_empty() {
+        out.push(Block::Heading("unit health on the probe data".into()));
+        let mut t = Table::new([
+            "layer",
+            "activation",
+            "units",
+            "measure",
+            "mean",
+            "worst",
+            "flagged",
+            "activations",
+        ]);
+        for h in &a.health {
+            let mean = if h.fractions.is_empty() {
+                0.0
+            } else {
+                h.fractions.iter().sum::<f64>() / h.fractions.len() as f64
+            };
+            let worst = h.fractions.iter().copied().fold(0.0, f64::max);
+            t.push([
+                Cell::from(h.layer.to_string()),
+                Cell::from(h.activation.clone()),
+                Cell::from(h.units.to_string()),
+                Cell::from(h.measure.unwrap_or("—")),
+                Cell::from(if h.measure.is_some() {
+                    format!("{:.1}%", mean * 100.0)
+                } else {
+                    "—".into()
+                }),
+                Cell::from(if h.measure.is_some() {
+                    format!("{:.1}%", worst * 100.0)
+                } else {
+                    "—".into()
+                }),
+                Cell::new(
+                    if h.flagged.is_empty() {
+                        "none".to_string()
+                    } else {
+                        format!("{:?}", h.flagged)
+                    },
+                    if h.flagged.is_empty() {
+                        Tone::Good
+                    } else {
+                        Tone::Bad
+                    },
+                ),
+                Cell::from(format!(
+                    "{:.2} {} {:.2}",
+                    h.range.0,
+                    sparkline(&h.histogram),
+                    h.range.1
+                )),
+            ]);
+        }
+        out.push(Block::Table(t));
+    }
+    if !a.init.is_empty() {
+        out.push(Block::Heading("initialisation scale".into()));
+        let mut t = Table::new([
+            "layer",
+            "tensor",
+            "fan in",
+            "fan out",
+            "std",
+            "closest",
+            "called for",
+            "KS test",
+        ]);
+        for i in &a.init {
+            let ks = i.test.as_ref().map_or("—".to_string(), |k| {
+                format!(
+                    "{}: D {:.4}, p {}{}",
+                    k.scheme,
+                    k.statistic,
+                    num(k.p_value),
+                    if k.passed { "" } else { " ✗" }
+                )
+            });
+            let tone = if i.test.as_ref().is_some_and(|k| !k.passed) {
+                Tone::Bad
+            } else {
+                Tone::Plain
+            };
+            t.push([
+                Cell::from(i.layer.to_string()),
+                Cell::from(i.tensor.clone()),
+                Cell::from(i.fan_in.to_string()),
+                Cell::from(i.fan_out.to_string()),
+                Cell::from(num(i.std)),
+                Cell::from(format!("{} ({:.2}×)", i.closest, i.ratio)),
+                Cell::from(format!("{} ({:.2}×)", i.reference, i.reference_ratio)),
+                Cell::new(ks, tone),
+            ]);
+        }
+        out.push(Block::Table(t));
+    }
+    if !a.flow.is_empty() {
+        out.push(Block::Heading("signal and gradient flow".into()));
+        let mut t = Table::new([
+            "layer",
+            "activation std",
+            "gradient norm",
+            "gradient RMS",
+            "largest singular value",
+        ]);
+        for f in &a.flow {
+            t.push([
+                Cell::from(f.layer.to_string()),
+                Cell::from(num(f.activation_std)),
+                Cell::from(num(f.gradient_norm)),
+                Cell::from(num(f.gradient_rms)),
+                Cell::from(num(f.sigma_max)),
+            ]);
+        }
+        out.push(Block::Table(t));
+    }
+    out
+}
