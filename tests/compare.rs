@@ -200,3 +200,35 @@ fn an_unusable_gradient_file_exits_2() {
     run.assert_code(2);
     assert!(run.stderr.contains("int64"), "{}", run.stderr);
 }
+
+/// A loss summed over the batch with its L2 term (J·m): the gradient is m·G exactly. Named as
+/// missing-batch-mean with that detail (regression: review found it unexplained). The gradient is
+/// the NumPy fixture's correct one, scaled here by the batch size of fixtures/data/compare.csv (10).
+#[test]
+fn a_fully_summed_loss_is_named() {
+    use plumb_formats::{DType, FileFormat, read_tensors, write_tensors};
+    let dir = util::scratch("summed");
+    let mut g = read_tensors(&fixture("compare/correct-f64.npz")).unwrap();
+    for t in &mut g.tensors {
+        t.data.iter_mut().for_each(|v| *v *= 10.0);
+    }
+    let out = dir.join("summed.npz");
+    write_tensors(&out, FileFormat::Npz, &g.tensors, DType::F64).unwrap();
+    let run = plumb(&[
+        "compare",
+        "nets/compare.toml",
+        "-w",
+        "weights/compare.npz",
+        "-d",
+        "data/compare.csv",
+        "-g",
+        out.to_str().unwrap(),
+        "--format",
+        "json",
+    ]);
+    let j = run.json();
+    for t in j["tensors"].as_array().unwrap() {
+        assert_eq!(t["diagnosis"]["code"], "missing-batch-mean", "{t:#}");
+        assert_eq!(t["diagnosis"]["detail"], "the L2 term summed too");
+    }
+}

@@ -140,6 +140,7 @@ struct Coordinate {
     abs_error: f64,
     rel_error: f64,
     bound: f64,
+    rel_bound: f64,
     step: f64,
     status: String,
 }
@@ -280,6 +281,7 @@ struct Demo {
     check: Check,
     planted: Planted,
     audit: serde_json::Value,
+    probe: Option<serde_json::Value>,
     written: Vec<String>,
 }
 

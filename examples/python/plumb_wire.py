@@ -20,7 +20,11 @@ def serve(name, dtype, tensors, loss_fn, grad_fn):
     ftype = {"f64": np.float64, "f32": np.float32}[dtype]
 
     def send(header, arrays=()):
-        out.write(json.dumps(header).encode() + b"\n")
+        try:  # JSON has no NaN or Infinity: a non-finite loss is an error, said as one
+            text = json.dumps(header, allow_nan=False)
+        except ValueError:
+            raise ValueError(f"the {header['type']} is not finite: {header}") from None
+        out.write(text.encode() + b"\n")
         for a in arrays:
             out.write(np.ascontiguousarray(a, dtype="<f8").tobytes())
         out.flush()

@@ -14,6 +14,8 @@ through plumb_wire.py; anything for people goes to stderr.
   --dtype f32|f64       compute in that type end to end, and say so in the hello (default f64)
   --hidden tanh|relu    the hidden activation (default tanh)
   --fail MODE           misbehave for plumb's failure tests: crash, hang, garbage, shape, nan, version
+  --units A,B           other hidden widths (default 8,6), e.g. 96,96 for the ~10k-parameter
+                        benchmark network of benches/probe-10k.toml
 """
 import argparse
 import json
@@ -171,7 +173,13 @@ def main():
     ap.add_argument("--dtype", choices=["f64", "f32"], default="f64")
     ap.add_argument("--hidden", choices=["tanh", "relu"], default="tanh")
     ap.add_argument("--fail", choices=["crash", "hang", "garbage", "shape", "nan", "version"])
+    ap.add_argument("--units", type=lambda t: [int(u) for u in t.split(",")], default=None)
     args = ap.parse_args()
+    if args.units:  # the same code for wider hidden layers (the benchmark network)
+        global SIZES, NAMES, SHAPES
+        SIZES = [4, *args.units, 3]
+        NAMES = [f"layer{j + 1}" for j in range(len(SIZES) - 1)]
+        SHAPES = [(SIZES[j + 1], SIZES[j] + 1) for j in range(len(SIZES) - 1)]
     code, where = args.plant
     if args.fail in ("crash", "garbage", "version"):
         return fail_at_hello(args.fail)

@@ -43,6 +43,18 @@ pub fn step(h: Option<f64>) -> Result<Option<f64>> {
     }
 }
 
+/// A number in scientific notation with nine decimals (enough to see two close values differ).
+struct Sci(f64);
+
+impl std::fmt::Display for Sci {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{:.9e}", self.0)
+    }
+}
+
+/// The most random directions per part a run takes (each costs four whole forward passes).
+pub const MAX_DIRECTIONS: usize = 1000;
+
 /// One coordinate of the report.
 #[derive(Clone, Debug, Serialize)]
 pub struct CoordReport {
@@ -53,6 +65,9 @@ pub struct CoordReport {
     pub abs_error: f64,
     pub rel_error: f64,
     pub bound: f64,
+    /// The bound over the relative error's denominator, max(|a|, |n|, floor): comparable with
+    /// `rel_error`.
+    pub rel_bound: f64,
     pub step: f64,
     pub status: &'static str,
 }
@@ -123,7 +138,13 @@ pub struct CheckReport {
 
 pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
     let c = &result.coords[i];
+    let den = c
+        .analytic
+        .abs()
+        .max(c.numeric.abs())
+        .max(result.floors[c.coord.layer]);
     CoordReport {
+        rel_bound: if den > 0.0 { c.bound / den } else { 0.0 },
         place: tensors.place(c.coord),
         analytic: c.analytic,
         numeric: c.numeric,
@@ -142,6 +163,12 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
         .map(Sample::parse)
         .transpose()
         .map_err(|e| anyhow::anyhow!("--sample: {e}"))?;
+    if args.directions > MAX_DIRECTIONS {
+        bail!(
+            "--directions {}: at most {MAX_DIRECTIONS} random directions per tensor part",
+            args.directions
+        );
+    }
     if let Some(t) = args.tolerance.filter(|t| !(t.is_finite() && *t > 0.0)) {
         bail!("--tolerance {t}: give a finite relative tolerance > 0 (e.g. 1e-6)");
     }
@@ -199,7 +226,7 @@ fn build(
                     "gradient-mismatch",
                     Severity::Error,
                     format!(
-                        "{} of {} checked coordinates disagree beyond what {} differences can explain; worst at {} (layer {}, row {}, column {}{}, unit {}): analytic {}, numeric {}, relative error {}, bound {}",
+                        "{} of {} checked coordinates disagree beyond what {} differences can explain; worst at {} (layer {}, row {}, column {}{}, unit {}): analytic {}, numeric {}, relative error {}, relative bound {}",
                         s.mismatches,
                         s.checked,
                         result.method,
@@ -209,10 +236,10 @@ fn build(
                         w.place.column,
                         if w.place.bias { " = bias" } else { "" },
                         w.place.unit,
-                        num(w.analytic),
-                        num(w.numeric),
+                        Sci(w.analytic),
+                        Sci(w.numeric),
                         num(w.rel_error),
-                        num(w.bound),
+                        num(w.rel_bound),
                     ),
                 )
                 .tensor(&e.name)
@@ -235,6 +262,32 @@ fn build(
                 .tensor(&e.name)
                 .layer(e.layer + 1)
                 .figure("direction_mismatches", s.direction_mismatches),
+            );
+        }
+        let unresolved = result
+            .coords
+            .iter()
+            .filter(|c| {
+                s.part.contains(c)
+                    && c.status == Status::Match
+                    && c.bound >= c.analytic.abs().max(c.numeric.abs())
+            })
+            .count();
+        if unresolved > 0 {
+            findings.push(
+                Finding::new(
+                    "unresolved",
+                    Severity::Note,
+                    format!(
+                        "{unresolved} coordinate{} below what {} differences resolve in {} here (the error they can explain exceeds the value): they pass but say little; try --method complex-step or richardson",
+                        if unresolved == 1 { " is" } else { "s are" },
+                        result.method,
+                        result.precision.name()
+                    ),
+                )
+                .tensor(&e.name)
+                .layer(e.layer + 1)
+                .figure("unresolved", unresolved),
             );
         }
         if s.unreliable > 0 {

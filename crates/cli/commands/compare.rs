@@ -137,7 +137,7 @@ pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification> {
 pub fn judge_gradient(
     loaded: &Loaded,
     outside: &[Named],
-    tol: Tolerances,
+    tol: &dyn Fn(&str) -> Tolerances,
 ) -> (Vec<TensorReport>, Vec<Finding>) {
     let desc = &loaded.desc;
     let to_tensors = |w: &Weights<f64>| layout_tensors(desc, w);
@@ -152,6 +152,33 @@ pub fn judge_gradient(
             findings.push(mismatch_finding(&report, tensors.layer_of(&j.name)));
         }
         reports.push(report);
+    }
+    // Tensors under other names with the missing ones' shapes, in order: say which name goes where.
+    let absent: Vec<&TensorJudgement> = judged.iter().filter(|j| j.found_shape.is_none()).collect();
+    let strays: Vec<&Named> = outside
+        .iter()
+        .filter(|u| !judged.iter().any(|j| j.name == u.name))
+        .collect();
+    if !absent.is_empty()
+        && absent.len() == strays.len()
+        && absent
+            .iter()
+            .zip(&strays)
+            .all(|(a, u)| a.expected_shape == u.shape)
+    {
+        let pairs: Vec<String> = absent
+            .iter()
+            .zip(&strays)
+            .map(|(a, u)| format!("`{}` → `{}`", u.name, a.name))
+            .collect();
+        findings.push(Finding::new(
+            "gradient-names",
+            Severity::Error,
+            format!(
+                "the gradient's tensors have the layout's shapes under other names ({}): write them under the layout's names, or name the weight file's tensors in the description (weight = …, bias = …) and save the gradient the same way",
+                pairs.join(", ")
+            ),
+        ));
     }
     for u in outside {
         if !judged.iter().any(|j| j.name == u.name) {
@@ -326,6 +353,22 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
         );
     }
     let single = !file.tensors.iter().any(|t| t.dtype == DType::F64);
+    // Each tensor is held to the precision it was stored in.
+    let eps_of: std::collections::HashMap<String, f64> = file
+        .tensors
+        .iter()
+        .map(|t| {
+            let eps = match t.dtype {
+                DType::F64 => f64::EPSILON,
+                DType::F32 => f32::EPSILON as f64,
+                DType::F16 => 9.765625e-4,
+                _ => 7.8125e-3,
+            };
+            (t.name.clone(), eps)
+        })
+        .collect();
+    let tol_of =
+        |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
     let tol = Tolerances::for_precision(single);
     let outside: Vec<Named> = file
         .tensors
@@ -333,7 +376,7 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
         .map(|t| Named::new(t.name, t.shape, t.data))
         .collect();
     let reference = certify(&loaded, settings.seed)?;
-    let (tensors, mut findings) = judge_gradient(&loaded, &outside, tol);
+    let (tensors, mut findings) = judge_gradient(&loaded, &outside, &tol_of);
     if !reference.certified {
         findings.push(Finding::new(
             "reference-uncertified",

@@ -9,8 +9,8 @@ use anyhow::{Context, Result, bail};
 use plumb_diagnose::{Named, Tolerances};
 use plumb_engine::{Rng, Weights};
 use plumb_fd::{
-    Base, Change, ExternalConfig, ExternalResult, Method, OutsideTensor, Precision, Sample, Status,
-    check_external,
+    Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, Sample,
+    Status, check_external, gradient_magnitude, loss_magnitude,
 };
 use plumb_formats::read_tensors;
 use plumb_probe::{Program, TensorSpec};
@@ -105,6 +105,13 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         .map(Sample::parse)
         .transpose()
         .map_err(|e| anyhow::anyhow!("--sample: {e}"))?;
+    if args.directions > crate::commands::check::MAX_DIRECTIONS {
+        bail!(
+            "--directions {}: at most {} random directions per tensor",
+            args.directions,
+            crate::commands::check::MAX_DIRECTIONS
+        );
+    }
     if !(args.timeout.is_finite() && args.timeout > 0.0 && args.timeout <= 86_400.0) {
         bail!(
             "--timeout {}: give the seconds to wait for each reply, between 0 and 86400",
@@ -112,6 +119,37 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         );
     }
     let loaded = load(&args.inputs, settings.seed)?;
+    let opts = ProbeOptions {
+        command: args.command.clone(),
+        method,
+        step: fixed,
+        sample,
+        directions: args.directions,
+        timeout: args.timeout,
+        blackbox: args.blackbox,
+        weights: args.inputs.weights.clone(),
+    };
+    let report = compute(&loaded, &opts, settings)?;
+    let doc = document(&report, &loaded);
+    settings.emit(&report, &doc)?;
+    Ok(report.verdict)
+}
+
+/// How to probe a program.
+pub struct ProbeOptions {
+    pub command: Vec<String>,
+    pub method: Method,
+    pub step: Option<f64>,
+    pub sample: Option<Sample>,
+    pub directions: usize,
+    pub timeout: f64,
+    pub blackbox: bool,
+    /// The weight file (a black box's parameters come from it by name).
+    pub weights: Option<PathBuf>,
+}
+
+/// Runs the program through the three checks and builds the report (shared with the demo).
+pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Result<ProbeReport> {
     let desc = &loaded.desc;
     let layout = layout_tensors(desc, &loaded.weights);
     let specs: Vec<TensorSpec> = layout
@@ -122,14 +160,22 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         })
         .collect();
 
+    let started = std::time::Instant::now();
     let mut program = Program::start_with(
-        &args.command,
-        Duration::from_secs_f64(args.timeout),
+        &opts.command,
+        Duration::from_secs_f64(opts.timeout),
         settings.quiet,
     )?;
-    let hello = program.hello((!args.blackbox).then_some(&specs[..]))?;
-    let params: Vec<Named> = if args.blackbox {
-        blackbox_parameters(&hello.tensors, &args.inputs.weights, settings.seed)?
+    let hello = program.hello((!opts.blackbox).then_some(&specs[..]))?;
+    let declared: usize = hello.tensors.iter().map(TensorSpec::len).sum();
+    if declared > plumb_formats::MAX_PARAMETERS {
+        bail!(
+            "the program declares {declared} parameters, more than the {} plumb handles",
+            plumb_formats::MAX_PARAMETERS
+        );
+    }
+    let params: Vec<Named> = if opts.blackbox {
+        blackbox_parameters(&hello.tensors, &opts.weights, settings.seed)?
     } else {
         layout
     };
@@ -145,7 +191,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         .collect();
     program.load(&with_data, (&[m, n], &x), (&[m, k], &y))?;
     let (loss, grads) = program.gradient()?;
-    check_reply_shapes(&hello.tensors, &grads, args.blackbox)?;
+    check_reply_shapes(&hello.tensors, &grads, opts.blackbox)?;
 
     // (a) The program against its own loss, on the tensors whose gradient fits their parameters.
     let single = hello.dtype == "f32";
@@ -157,15 +203,16 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
     let fitting: Vec<usize> = (0..params.len())
         .filter(|&i| grads[i].0.shape == params[i].shape)
         .collect();
-    let outside: Vec<OutsideTensor> = fitting
+    let mut outside: Vec<OutsideTensor> = fitting
         .iter()
         .map(|&i| OutsideTensor {
             name: params[i].name.clone(),
             values: params[i].data.clone(),
             gradient: grads[i].1.clone(),
+            gross: Vec::new(),
         })
         .collect();
-    let sample = sample.unwrap_or(
+    let sample = opts.sample.unwrap_or(
         if params.iter().map(|p| p.data.len()).sum::<usize>() <= plumb_fd::FULL_CHECK_LIMIT {
             Sample::All
         } else {
@@ -181,10 +228,10 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         }
     }
     let cfg = ExternalConfig {
-        method,
-        step: fixed,
+        method: opts.method,
+        step: opts.step,
         sample,
-        directions: args.directions,
+        directions: opts.directions,
         seed: settings.seed,
         eps: precision.epsilon(),
         tolerance: precision.tolerance(),
@@ -192,7 +239,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
     // Kinks are seen through the reference engine, which runs the same network (not for a black box).
     let reference_tensors = Tensors::new(desc);
     let w64: &Weights<f64> = &loaded.weights;
-    let base = (!args.blackbox).then(|| Base::new(&desc.network, w64, b.x.view(), &b.y));
+    let base = (!opts.blackbox).then(|| Base::new(&desc.network, w64, b.x.view(), &b.y));
     let crossed = |t: usize, flat: usize, d: f64| -> bool {
         let Some(base) = &base else { return false };
         let p = &params[fitting[t]];
@@ -200,6 +247,43 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         reference_tensors
             .coord_of(&p.name, &index)
             .is_some_and(|c| base.perturbed(c, d).1)
+    };
+    // Along a direction: the direction's entries placed into the augmented matrices.
+    let crossed_along = |v: &[Vec<f64>], d: f64| -> bool {
+        let Some(base) = &base else { return false };
+        let mut dir = w64.map(|_| 0.0);
+        for (t, vt) in v.iter().enumerate() {
+            let p = &params[fitting[t]];
+            for (k, &x) in vt.iter().enumerate() {
+                if x != 0.0
+                    && let Some(c) = reference_tensors.coord_of(&p.name, &Named::index_of(p, k))
+                {
+                    *dir.get_mut(c) = x;
+                }
+            }
+        }
+        base.along(&dir, d).1
+    };
+    let loss_gross = base.as_ref().map_or(0.0, |bs| {
+        loss_magnitude(&desc.network, w64, bs.trace(), &b.y)
+    });
+    if let Some(bs) = &base {
+        let gross = layout_tensors(
+            desc,
+            &gradient_magnitude(&desc.network, w64, bs.trace(), &b.y),
+        );
+        for (o, &i) in outside.iter_mut().zip(&fitting) {
+            o.gross = gross
+                .iter()
+                .find(|g| g.name == params[i].name)
+                .map(|g| g.data.clone())
+                .unwrap_or_default();
+        }
+    }
+    let inside = Inside {
+        crossed: &crossed,
+        crossed_along: &crossed_along,
+        loss_gross,
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<plumb_probe::Change> = changes
@@ -213,26 +297,31 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
             .collect();
         program.losses(count, &wire)
     };
-    let result = check_external(&outside, loss, &mut ask, &crossed, &cfg)?;
+    let result = check_external(&outside, loss, &mut ask, &inside, &cfg)?;
     let mut findings = Vec::new();
     let self_check = self_check_report(&params, &fitting, &grads, &result, &cfg, &mut findings);
 
     // (b) and (c): the loss and the gradient against the reference.
-    let (loss_report, reference, tensors) = if args.blackbox {
+    let (loss_report, reference, tensors) = if opts.blackbox {
         (None, None, Vec::new())
     } else {
-        let (lr, lf) = judge_loss(&loaded, loss, single);
+        let (lr, lf) = judge_loss(loaded, loss, single);
         findings.extend(lf);
         let outside: Vec<Named> = grads
             .iter()
             .map(|(s, d)| Named::new(s.name.clone(), s.shape.clone(), d.clone()))
             .collect();
-        let (tr, tf) = judge_gradient(&loaded, &outside, Tolerances::for_precision(single));
+        let (tr, tf) = judge_gradient(loaded, &outside, &|_| Tolerances::for_precision(single));
         findings.extend(tf);
-        let cert = certify(&loaded, settings.seed)?;
+        let cert = certify(loaded, settings.seed)?;
         (Some(lr), Some(cert), tr)
     };
     let command = program.command().to_string();
+    let (requests, asked) = program.traffic();
+    settings.note(&format!(
+        "{requests} requests to the program, {asked} losses at perturbed parameters, {:.1} s",
+        started.elapsed().as_secs_f64()
+    ));
     program.finish();
 
     let report = ProbeReport {
@@ -244,7 +333,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
             name: hello.name,
             dtype: hello.dtype,
         },
-        blackbox: args.blackbox,
+        blackbox: opts.blackbox,
         description: desc.path.clone(),
         weights: loaded.weights_source.clone(),
         data: loaded.data_source.clone(),
@@ -254,9 +343,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         tensors,
         findings,
     };
-    let doc = document(&report, &loaded);
-    settings.emit(&report, &doc)?;
-    Ok(report.verdict)
+    Ok(report)
 }
 
 /// A gradient tensor of another shape than declared is a protocol failure, unless (outside a black
@@ -413,7 +500,8 @@ fn self_check_report(
             status: w.status.name(),
         });
         if mismatches > 0 || direction_mismatches > 0 {
-            let at = worst.as_ref().map_or(String::new(), |w| {
+            // Only a coordinate that disagrees is quoted (not an unreliable one).
+            let at = worst.as_ref().filter(|w| w.status == "mismatch").map_or(String::new(), |w| {
                 format!(
                     "; worst at {}{:?}: gradient {:.6e}, differences {:.6e} (relative error {}, bound {})",
                     p.name,
@@ -495,7 +583,7 @@ fn self_check_report(
     }
 }
 
-fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
+pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
     let mut doc =
         Document::new("plumb probe — your program against its own loss and the reference");
     let p = &r.program;

@@ -77,6 +77,9 @@ fn parse_steps(text: &str) -> Result<Vec<f64>> {
     let Ok(n) = n.trim().parse::<usize>() else {
         bail!("--steps `{text}`: N must be a whole number; {usage}");
     };
+    if !(1e-30..=10.0).contains(&from) || !(1e-30..=10.0).contains(&to) {
+        bail!("--steps `{text}`: steps must lie between 1e-30 and 10; {usage}");
+    }
     if !(2..=MAX_STEPS).contains(&n) || from == to {
         bail!("--steps `{text}`: give two different steps and 2 ≤ N ≤ {MAX_STEPS}; {usage}");
     }

@@ -23,7 +23,7 @@ use crate::args::DemoArgs;
 use crate::commands::check::{self, CheckReport};
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
-use crate::commands::{audit, compare};
+use crate::commands::{audit, compare, probe};
 use crate::inputs::{DataSource, Loaded, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
 
@@ -43,6 +43,50 @@ struct PlantedReport<'a> {
     code: &'static str,
     tensors: &'a [compare::TensorReport],
     findings: &'a [plumb_report::Finding],
+}
+
+/// The same bug planted in the NumPy example (examples/python/pump_numpy.py --plant).
+fn plant_switch(code: &str) -> &'static str {
+    match code {
+        "activation-derivative-missing" => "activation-derivative-missing:2",
+        "bias-regularized" => "bias-regularized",
+        "missing-batch-mean" => "missing-batch-mean",
+        _ => "derivative-at-output:1",
+    }
+}
+
+/// Probes the NumPy example with the demo's bug planted, when it is there to run (from a checkout
+/// of the repository, with python3 and NumPy); `None` otherwise.
+fn probe_example(loaded: &Loaded, code: &str, settings: &Settings) -> Option<probe::ProbeReport> {
+    let script = Path::new("examples/python/pump_numpy.py");
+    let numpy = std::process::Command::new("python3")
+        .args(["-c", "import numpy"])
+        .stderr(std::process::Stdio::null())
+        .status()
+        .is_ok_and(|s| s.success());
+    if !script.exists() || !numpy {
+        return None;
+    }
+    let opts = probe::ProbeOptions {
+        command: vec![
+            "python3".into(),
+            script.display().to_string(),
+            "--plant".into(),
+            plant_switch(code).into(),
+        ],
+        method: Method::Central,
+        step: None,
+        sample: None,
+        directions: 4,
+        timeout: 60.0,
+        blackbox: false,
+        weights: None,
+    };
+    let quiet = Settings {
+        quiet: true,
+        ..settings.clone()
+    };
+    probe::compute(loaded, &opts, &quiet).ok()
 }
 
 /// The demo's bugs, one picked by the seed: (code, where, the backward pass that makes it).
@@ -98,6 +142,8 @@ struct DemoReport<'a> {
     check: &'a CheckReport,
     planted: PlantedReport<'a>,
     audit: &'a plumb_audit::Audit,
+    /// The NumPy example probed with the same bug, when it could be run.
+    probe: Option<&'a probe::ProbeReport>,
     written: Vec<PathBuf>,
 }
 
@@ -160,8 +206,9 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             .backward_with(&pump.weights, &trace, pump.batch.y.view(), &bug_variant);
     let outside = compare::layout_tensors(desc, &buggy);
     let (bug_tensors, bug_findings) =
-        compare::judge_gradient(&loaded, &outside, Tolerances::for_precision(false));
+        compare::judge_gradient(&loaded, &outside, &|_| Tolerances::for_precision(false));
 
+    let probed = probe_example(&loaded, bug_code, settings);
     let shipped = plumb_audit::audit(
         desc,
         &good,
@@ -216,6 +263,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             findings: &bug_findings,
         },
         audit: &shipped,
+        probe: probed.as_ref(),
         written: written.clone(),
     };
 
@@ -295,6 +343,25 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     )));
     doc.push(Block::Table(compare::tensor_table(&bug_tensors)));
     doc.push(Block::Findings(bug_findings.clone()));
+
+    match &probed {
+        Some(r) => {
+            doc.push(Block::Text(format!(
+                "The same bug planted in a real program — examples/python/pump_numpy.py --plant {}, a hand-written NumPy backprop talking to plumb over its wire protocol — and what `plumb probe` finds: its gradient against differences of its own loss, its loss against the reference, its gradient against the reference:",
+                plant_switch(bug_code)
+            )));
+            for b in probe::document(r, &loaded).blocks {
+                if matches!(b, Block::Table(_)) {
+                    doc.push(b);
+                }
+            }
+        }
+        None => doc.push(Block::Text(
+            "(Run the demo from a checkout of the repository with python3 and NumPy installed to see \
+             `plumb probe` drive examples/python/pump_numpy.py with the same bug planted.)"
+                .into(),
+        )),
+    }
 
     doc.push(Block::Heading("7. Is the weight file fit to ship?".into()));
     doc.push(Block::Text(

@@ -124,9 +124,14 @@ pub const CATALOGUE: &[Mistake] = &[
         code: "missing-batch-mean",
         summary: "the data term summed over the batch, not averaged (a factor m)",
         hypotheses: |p, _| {
-            vec![Hypothesis::plain(
-                p.variant(&with(|v| v.data_scale = p.m())),
-            )]
+            vec![
+                Hypothesis::plain(p.variant(&with(|v| v.data_scale = p.m()))),
+                // The whole loss summed, its L2 term included: m·G.
+                Hypothesis::at(
+                    "the L2 term summed too".into(),
+                    scaled(&p.reference_tensors, p.m()),
+                ),
+            ]
         },
     },
     Mistake {

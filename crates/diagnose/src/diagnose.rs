@@ -19,12 +19,13 @@ pub struct Diagnosis {
 }
 
 /// Diagnoses each of `names` (tensors already found wrong) against every hypothesis of the
-/// catalogue; a hypothesis explains a tensor when its residual is at most `tolerance`.
+/// catalogue; a hypothesis explains a tensor when its residual is at most that tensor's entry of
+/// `tolerances`.
 pub fn diagnose(
     problem: &Problem<'_>,
     outside: &[Named],
     names: &[String],
-    tolerance: f64,
+    tolerances: &[f64],
 ) -> Vec<Diagnosis> {
     // Every hypothesis once, for all tensors.
     let hypotheses: Vec<(&'static str, crate::Hypothesis)> = CATALOGUE
@@ -37,7 +38,8 @@ pub fn diagnose(
         .collect();
     names
         .iter()
-        .map(|name| {
+        .zip(tolerances)
+        .map(|(name, &tolerance)| {
             let u = outside.iter().find(|t| &t.name == name);
             let r = problem.reference_tensors.iter().find(|t| &t.name == name);
             let mut scored: Vec<(&'static str, String, f64, Option<f64>)> = Vec::new();

@@ -30,6 +30,26 @@ impl Tolerances {
             }
         }
     }
+
+    /// From the machine epsilon of the type a tensor was stored in: float64 and float32 as above;
+    /// float16 (ε ≈ 9.8e-4) 2e-2 and 1e-2; bfloat16 (ε ≈ 7.8e-3) 1e-1 and 5e-2.
+    pub fn for_epsilon(eps: f64) -> Tolerances {
+        if eps <= 1e-15 {
+            Tolerances::for_precision(false)
+        } else if eps <= 2e-7 {
+            Tolerances::for_precision(true)
+        } else if eps <= 1e-3 {
+            Tolerances {
+                agreement: 2e-2,
+                residual: 1e-2,
+            }
+        } else {
+            Tolerances {
+                agreement: 1e-1,
+                residual: 5e-2,
+            }
+        }
+    }
 }
 
 /// A tensor the layout expects.
@@ -55,12 +75,12 @@ pub struct TensorJudgement {
     pub diagnosis: Option<Diagnosis>,
 }
 
-/// Judges the outside gradient tensor by tensor.
+/// Judges the outside gradient tensor by tensor, each with the tolerances `tol` gives its name.
 pub fn judge(
     problem: &Problem<'_>,
     outside: &[Named],
     expected: &[Expected],
-    tol: Tolerances,
+    tol: &dyn Fn(&str) -> Tolerances,
 ) -> Vec<TensorJudgement> {
     let mut out: Vec<TensorJudgement> = expected
         .iter()
@@ -73,7 +93,7 @@ pub fn judge(
                 .expect("reference has every tensor");
             let comparison = u
                 .filter(|u| u.shape == r.shape)
-                .map(|u| compare_tensor(u, r, tol.agreement));
+                .map(|u| compare_tensor(u, r, tol(&e.name).agreement));
             TensorJudgement {
                 name: e.name.clone(),
                 expected_shape: e.shape.clone(),
@@ -89,7 +109,8 @@ pub fn judge(
         .filter(|j| !j.matches && j.found_shape.is_some())
         .map(|j| j.name.clone())
         .collect();
-    let found = diagnose(problem, outside, &wrong, tol.residual);
+    let limits: Vec<f64> = wrong.iter().map(|n| tol(n).residual).collect();
+    let found = diagnose(problem, outside, &wrong, &limits);
     for (name, d) in wrong.iter().zip(found) {
         if let Some(j) = out.iter_mut().find(|j| &j.name == name) {
             j.diagnosis = Some(d);

@@ -20,6 +20,7 @@ use rayon::prelude::*;
 use thiserror::Error;
 
 use crate::evaluate::Base;
+use crate::gross::{gradient_magnitude, loss_magnitude};
 use crate::method::{ComplexScalar, Estimate, complex_estimate, round_to};
 use crate::{Method, Sample, coverage};
 
@@ -258,7 +259,10 @@ pub fn check_gradient(
         floors,
         scale,
     };
+    let trace = net.forward(weights, batch.x.view());
     let run = Run {
+        gross: gradient_magnitude(net, weights, &trace, &batch.y),
+        loss_gross: loss_magnitude(net, weights, &trace, &batch.y),
         net,
         weights,
         batch,
@@ -355,11 +359,13 @@ pub struct Rule {
 impl Rule {
     /// (abs error, rel error, bound, status) of an analytic value `a` against an estimate `n` whose
     /// method can explain `method_error`, with the relative error's `floor`.
+    /// `gross` bounds the pieces `a` was summed from (see `gradient_magnitude`), 0 if unknown.
     pub fn judge(
         &self,
         a: f64,
         n: f64,
         floor: f64,
+        gross: f64,
         method_error: f64,
         crossed: bool,
     ) -> (f64, f64, f64, Status) {
@@ -369,7 +375,7 @@ impl Rule {
             floors: Vec::new(),
             scale: self.scale,
         }
-        .judge(a, n, floor, method_error, crossed)
+        .judge(a, n, floor, gross, method_error, crossed)
     }
 }
 
@@ -390,13 +396,17 @@ impl Judge {
         a: f64,
         n: f64,
         floor: f64,
+        gross: f64,
         method_error: f64,
         crossed: bool,
     ) -> (f64, f64, f64, Status) {
         let e = (a - n).abs();
-        // Allowance for the analytic value's own rounding: a few dozen ε of the values compared,
-        // and of the gradient's scale (entries that cancel to near zero keep that much error).
-        let bound = method_error + 64.0 * self.eps * (a.abs().max(n.abs()) + self.scale);
+        // Allowance for the analytic value's own rounding: a few dozen ε of the values compared and
+        // of the gradient's scale, and of the pieces it was summed from (`gross`: a − y near 1
+        // for a confident network keeps ε of 1 whatever its size).
+        let bound = method_error
+            + 64.0 * self.eps * (a.abs().max(n.abs()) + self.scale)
+            + 16.0 * self.eps * gross;
         let den = a.abs().max(n.abs()).max(floor);
         let rel = if den > 0.0 { e / den } else { 0.0 };
         let status = if crossed {
@@ -412,6 +422,9 @@ impl Judge {
 
 struct Run<'a> {
     net: &'a Network,
+    /// The pieces of each gradient entry and of the loss, for the round-off allowances.
+    gross: Weights<f64>,
+    loss_gross: f64,
     weights: &'a Weights<f64>,
     batch: &'a Batch,
     analytic: &'a Weights<f64>,
@@ -441,7 +454,7 @@ impl Run<'_> {
         let (x, y) = self.batch.cast::<S>();
         let base = Base::new(self.net, &w, x.view(), &y);
         let j0 = base.loss().re();
-        let noise = NOISE * self.judge.eps * j0.abs();
+        let noise = NOISE * self.judge.eps * j0.abs().max(self.loss_gross);
         let method = self.config.method;
         let fixed = self.config.step;
         let coord_checks = self.each_coord(coords, |c| {
@@ -470,7 +483,16 @@ impl Run<'_> {
             };
             let h = fixed
                 .unwrap_or_else(|| method.default_step(self.scope_scale(scope), self.judge.eps));
-            method.estimate(&f, j0, h, noise, round_to::<S>)
+            let est = method.estimate(&f, j0, h, noise, round_to::<S>);
+            if est.crossed && fixed.is_none() {
+                for r in RETRIES {
+                    let e = method.estimate(&f, j0, h * r, noise, round_to::<S>);
+                    if !e.crossed {
+                        return e;
+                    }
+                }
+            }
+            est
         });
         (j0, coord_checks, direction_checks)
     }
@@ -522,9 +544,10 @@ impl Run<'_> {
                 let (est, retried) = estimate(c);
                 let a = *self.analytic.get(c);
                 let floor = self.judge.floors[c.layer];
+                let gross = *self.gross.get(c);
                 let (abs_error, rel_error, bound, status) =
                     self.judge
-                        .judge(a, est.value, floor, est.error, est.crossed);
+                        .judge(a, est.value, floor, gross, est.error, est.crossed);
                 self.tick();
                 CoordCheck {
                     coord: c,
@@ -552,9 +575,10 @@ impl Run<'_> {
                 let est = estimate(*scope, v);
                 let a = dot(self.analytic, v);
                 let floor = FLOOR * self.span_norm(*scope);
+                let gross = dot_abs(&self.gross, v);
                 let (abs_error, rel_error, bound, status) =
                     self.judge
-                        .judge(a, est.value, floor, est.error, est.crossed);
+                        .judge(a, est.value, floor, gross, est.error, est.crossed);
                 self.tick();
                 DirectionCheck {
                     scope: *scope,
@@ -595,6 +619,20 @@ fn fold_scope(w: &Weights<f64>, scope: Scope, f: impl Fn(f64, f64) -> f64) -> f6
         }
     }
     acc
+}
+
+/// Σ |g|·|v|: the pieces of a directional derivative.
+fn dot_abs(g: &Weights<f64>, v: &Weights<f64>) -> f64 {
+    g.layers()
+        .iter()
+        .zip(v.layers())
+        .map(|(a, b)| {
+            a.iter()
+                .zip(b.iter())
+                .map(|(x, y)| (x * y).abs())
+                .sum::<f64>()
+        })
+        .sum()
 }
 
 fn dot(g: &Weights<f64>, v: &Weights<f64>) -> f64 {

@@ -16,6 +16,28 @@ pub struct OutsideTensor {
     pub name: String,
     pub values: Vec<f64>,
     pub gradient: Vec<f64>,
+    /// A bound on the pieces each gradient entry is summed from (`gradient_magnitude` of the
+    /// reference), for the round-off allowance; empty when nothing is known of the inside.
+    pub gross: Vec<f64>,
+}
+
+/// What plumb knows of the program's inside, from the reference engine running the same network:
+/// whether a step crosses a ReLU-like kink, along one coordinate or a direction (one vector per
+/// tensor), and the pieces the loss is summed from. `Inside::opaque()` for a black box.
+pub struct Inside<'a> {
+    pub crossed: &'a dyn Fn(usize, usize, f64) -> bool,
+    pub crossed_along: &'a dyn Fn(&[Vec<f64>], f64) -> bool,
+    pub loss_gross: f64,
+}
+
+impl Inside<'static> {
+    pub fn opaque() -> Inside<'static> {
+        Inside {
+            crossed: &|_, _, _| false,
+            crossed_along: &|_, _| false,
+            loss_gross: 0.0,
+        }
+    }
 }
 
 /// One change of a perturbation: add `delta` to entry `index` of tensor `tensor`.
@@ -78,20 +100,21 @@ pub type Losses<'a, E> = dyn FnMut(usize, &[Change]) -> Result<Vec<f64>, E> + 'a
 const BATCH: usize = 2048;
 
 /// Checks each tensor's gradient against differences of the outside loss. `losses(count, changes)`
-/// returns the loss at `count` perturbations; `crossed(tensor, index, delta)` says whether a
-/// ReLU-like unit changes side for that step (false when nothing is known about the inside); `f0`
-/// is the loss at the parameters.
+/// returns the loss at `count` perturbations; `inside` says what is known of kinks and round-off;
+/// `f0` is the loss at the parameters. Steps that cross a kink are retried 10, 100, 1000× smaller.
 pub fn check_external<E>(
     tensors: &[OutsideTensor],
     f0: f64,
     losses: &mut Losses<'_, E>,
-    crossed: &dyn Fn(usize, usize, f64) -> bool,
+    inside: &Inside<'_>,
     config: &ExternalConfig,
 ) -> Result<ExternalResult, E> {
+    let crossed = inside.crossed;
     let method = config.method;
     let sizes: Vec<usize> = tensors.iter().map(|t| t.values.len()).collect();
     let picked = select_flat(&sizes, config.sample, config.seed);
-    let noise = NOISE * config.eps * f0.abs();
+    let noise = NOISE * config.eps * f0.abs().max(inside.loss_gross);
+    let gross = |t: usize, k: usize| tensors[t].gross.get(k).copied().unwrap_or(0.0);
     let round = |h: f64| h;
     let scale = tensors
         .iter()
@@ -172,7 +195,7 @@ pub fn check_external<E>(
             let (est, retried) = e.expect("every coordinate estimated");
             let a = tensors[t].gradient[k];
             let (abs_error, rel_error, bound, status) =
-                rule.judge(a, est.value, floors[t], est.error, est.crossed);
+                rule.judge(a, est.value, floors[t], gross(t, k), est.error, est.crossed);
             OutsideCoord {
                 tensor: t,
                 index: k,
@@ -215,33 +238,46 @@ pub fn check_external<E>(
                 .filter(|(t, _)| scope.is_none_or(|s| s == *t))
                 .flat_map(|(_, x)| x.values.iter())
                 .fold(0.0f64, |m, v| m.max(v.abs()));
-            let h = config
+            let h0 = config
                 .step
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
-            let deltas = method.stencil(h, round);
-            let mut changes = Vec::new();
-            for (p, &d) in deltas.iter().enumerate() {
-                for (t, vt) in v.iter().enumerate() {
-                    for (k, &vk) in vt.iter().enumerate() {
-                        if vk != 0.0 {
-                            changes.push(Change {
-                                perturbation: p as u32,
-                                tensor: t as u32,
-                                index: k as u64,
-                                delta: d * vk,
-                            });
+            let mut est = None;
+            for factor in std::iter::once(1.0).chain(RETRIES) {
+                let h = h0 * factor;
+                let deltas = method.stencil(h, round);
+                let mut changes = Vec::new();
+                for (p, &d) in deltas.iter().enumerate() {
+                    for (t, vt) in v.iter().enumerate() {
+                        for (k, &vk) in vt.iter().enumerate() {
+                            if vk != 0.0 {
+                                changes.push(Change {
+                                    perturbation: p as u32,
+                                    tensor: t as u32,
+                                    index: k as u64,
+                                    delta: d * vk,
+                                });
+                            }
                         }
                     }
                 }
+                let values = losses(deltas.len(), &changes)?;
+                let table: HashMap<u64, f64> = deltas
+                    .iter()
+                    .zip(&values)
+                    .map(|(d, v)| (d.to_bits(), *v))
+                    .collect();
+                let f = |d: f64| {
+                    let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
+                    (value, (inside.crossed_along)(&v, d))
+                };
+                let e = method.estimate(&f, f0, h, noise, round);
+                let done = !e.crossed || config.step.is_some();
+                est = Some(e);
+                if done {
+                    break;
+                }
             }
-            let values = losses(deltas.len(), &changes)?;
-            let table: HashMap<u64, f64> = deltas
-                .iter()
-                .zip(&values)
-                .map(|(d, v)| (d.to_bits(), *v))
-                .collect();
-            let f = |d: f64| (table.get(&d.to_bits()).copied().unwrap_or(f64::NAN), false);
-            let est = method.estimate(&f, f0, h, noise, round);
+            let est = est.expect("estimated at least once");
             let a: f64 = tensors
                 .iter()
                 .zip(&v)
@@ -255,8 +291,25 @@ pub fn check_external<E>(
                 .map(|g| g * g)
                 .sum::<f64>()
                 .sqrt();
-            let (_, rel_error, bound, status) =
-                rule.judge(a, est.value, FLOOR * span, est.error, false);
+            let gross_dir: f64 = tensors
+                .iter()
+                .zip(&v)
+                .map(|(x, vt)| {
+                    x.gross
+                        .iter()
+                        .zip(vt)
+                        .map(|(g, w)| (g * w).abs())
+                        .sum::<f64>()
+                })
+                .sum();
+            let (_, rel_error, bound, status) = rule.judge(
+                a,
+                est.value,
+                FLOOR * span,
+                gross_dir,
+                est.error,
+                est.crossed,
+            );
             directions.push(OutsideDirection {
                 tensor: scope,
                 analytic: a,

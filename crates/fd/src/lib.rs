@@ -21,6 +21,7 @@ mod check;
 mod coverage;
 mod evaluate;
 mod external;
+mod gross;
 mod method;
 mod summary;
 mod sweep;
@@ -32,9 +33,10 @@ pub use check::{
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
 pub use external::{
-    Change, ExternalConfig, ExternalResult, OutsideCoord, OutsideDirection, OutsideTensor,
-    check_external, select_flat,
+    Change, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
+    OutsideTensor, check_external, select_flat,
 };
+pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};

@@ -38,7 +38,14 @@ impl Curve {
     /// The step index with the smallest error for method `m`.
     pub fn best(&self, m: usize, floor: f64) -> usize {
         (0..self.estimates[m].len())
-            .min_by(|&i, &j| self.error(m, i, floor).total_cmp(&self.error(m, j, floor)))
+            .min_by(|&i, &j| {
+                // A NaN error (a step too large or too small to evaluate) is never the best.
+                let key = |k: usize| {
+                    let e = self.error(m, k, floor);
+                    if e.is_nan() { f64::INFINITY } else { e }
+                };
+                key(i).total_cmp(&key(j))
+            })
             .unwrap_or(0)
     }
 }

@@ -1,7 +1,9 @@
 //! The check against a loss plumb can only ask for, with the engine playing the outside program.
 
 use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng, Weights};
-use plumb_fd::{Change, ExternalConfig, Method, OutsideTensor, Sample, Status, check_external};
+use plumb_fd::{
+    Change, ExternalConfig, Inside, Method, OutsideTensor, Sample, Status, check_external,
+};
 
 fn setup() -> (Network, Weights<f64>, Batch) {
     let net = Network::new(
@@ -31,6 +33,7 @@ fn run(grad: &Weights<f64>, method: Method) -> plumb_fd::ExternalResult {
             name: format!("layer{}", i + 1),
             values: v.iter().copied().collect(),
             gradient: g.iter().copied().collect(),
+            gross: Vec::new(),
         })
         .collect();
     let f0 = net.loss_value(&w, b.x.view(), b.y.view());
@@ -57,7 +60,7 @@ fn run(grad: &Weights<f64>, method: Method) -> plumb_fd::ExternalResult {
         eps: f64::EPSILON,
         tolerance: 1e-6,
     };
-    check_external(&tensors, f0, &mut losses, &|_, _, _| false, &cfg).unwrap()
+    check_external(&tensors, f0, &mut losses, &Inside::opaque(), &cfg).unwrap()
 }
 
 #[test]

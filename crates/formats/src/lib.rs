@@ -36,7 +36,7 @@ pub const MAX_DATA_BYTES: u64 = 4 << 30;
 /// The largest network description plumb reads (1 MiB: a description is a few lines).
 pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 pub use data::{DataError, read_data};
-pub use description::{Description, DescriptionError, LayerDescription, Layout};
+pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };

@@ -6,7 +6,7 @@ use thiserror::Error;
 pub enum ProbeError {
     #[error("cannot start `{command}`: {reason}; check the command after `--`")]
     Spawn { command: String, reason: String },
-    #[error("the program exited ({status}) {when}{}", tail(.stderr))]
+    #[error("the program {status} {when}{}", tail(.stderr))]
     Exited {
         status: String,
         when: String,

@@ -7,6 +7,7 @@
 use std::collections::VecDeque;
 use std::io::{BufRead, BufReader, Read, Write};
 use std::process::{Child, ChildStdout, Command, Stdio};
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender};
 use std::sync::{Arc, Mutex};
 use std::thread;
@@ -75,13 +76,24 @@ struct Message {
 
 enum ReadError {
     Eof,
+    /// The program stopped in the middle of a line.
+    Cut(String),
     Garbage(String),
     Malformed(String),
+    NonFinite(String),
 }
 
 /// A running program.
 pub struct Program {
     child: Child,
+    /// The most float64 values the reply to the current request may announce (the reader checks
+    /// before it allocates).
+    limit: Arc<AtomicU64>,
+    /// The parameters the program declared (for the gradient reply's limit).
+    declared: u64,
+    /// Requests made, and losses asked for in `losses` requests.
+    requests: usize,
+    losses_asked: usize,
     command: String,
     writer: Option<Sender<Vec<u8>>>,
     replies: Receiver<Result<Message, ReadError>>,
@@ -108,8 +120,15 @@ impl Program {
                 reason: "no command given".into(),
             });
         };
-        let mut child = Command::new(cmd)
-            .args(args)
+        let mut command = Command::new(cmd);
+        command.args(args);
+        // Its own process group, so that a timeout stops everything it started, not only itself.
+        #[cfg(unix)]
+        {
+            use std::os::unix::process::CommandExt;
+            command.process_group(0);
+        }
+        let mut child = command
             .stdin(Stdio::piped())
             .stdout(Stdio::piped())
             .stderr(Stdio::piped())
@@ -131,12 +150,22 @@ impl Program {
             }
         });
         let (rtx, rrx) = mpsc::channel();
-        thread::spawn(move || read_replies(stdout, rtx));
+        let limit = Arc::new(AtomicU64::new(0));
+        let reader_limit = Arc::clone(&limit);
+        thread::spawn(move || read_replies(stdout, rtx, reader_limit));
         let tail = Arc::new(Mutex::new(VecDeque::new()));
         let keep = Arc::clone(&tail);
         thread::spawn(move || {
-            for line in BufReader::new(stderr).lines() {
-                let Ok(line) = line else { break };
+            // Bytes, in bounded pieces, to the end: a program must never block on a full stderr
+            // pipe, and neither invalid UTF-8 nor a line without end may stop or swell the reader.
+            let mut r = BufReader::new(stderr);
+            loop {
+                let mut piece = Vec::new();
+                match (&mut r).take(4096).read_until(b'\n', &mut piece) {
+                    Ok(0) | Err(_) => break,
+                    Ok(_) => {}
+                }
+                let line = String::from_utf8_lossy(&piece).trim_end().to_string();
                 if !quiet {
                     eprintln!("  [program] {line}");
                 }
@@ -149,6 +178,10 @@ impl Program {
         });
         Ok(Program {
             child,
+            limit,
+            declared: 0,
+            requests: 0,
+            losses_asked: 0,
             command: text,
             writer: Some(wtx),
             replies: rrx,
@@ -160,6 +193,11 @@ impl Program {
     /// The command line, for reports.
     pub fn command(&self) -> &str {
         &self.command
+    }
+
+    /// (requests made, losses asked for through `losses`): the round trips a check cost.
+    pub fn traffic(&self) -> (usize, usize) {
+        (self.requests, self.losses_asked)
     }
 
     /// The handshake. With `expected`, the program's tensors must be exactly those (names, shapes,
@@ -204,6 +242,7 @@ impl Program {
                 list(e)
             )));
         }
+        self.declared = tensors.iter().map(|t| t.len() as u64).sum();
         Ok(Hello {
             name: h
                 .get("name")
@@ -305,13 +344,14 @@ impl Program {
             let _ = w.send(b"{\"type\":\"bye\"}\n".to_vec());
         }
         let start = Instant::now();
-        while start.elapsed() < self.timeout {
+        let grace = self.timeout.min(Duration::from_secs(5));
+        while start.elapsed() < grace {
             if let Ok(Some(_)) = self.child.try_wait() {
                 return;
             }
             thread::sleep(Duration::from_millis(10));
         }
-        let _ = self.child.kill();
+        self.kill_group();
         let _ = self.child.wait();
     }
 
@@ -329,6 +369,20 @@ impl Program {
         payload: &[u8],
         reply: &str,
     ) -> Result<Message, ProbeError> {
+        // The reader refuses to allocate more than this request calls for.
+        let limit = match reply {
+            "gradient" => self.declared,
+            "losses" => header
+                .get("perturbations")
+                .and_then(Value::as_u64)
+                .unwrap_or(0),
+            _ => 0,
+        };
+        self.limit.store(limit, Ordering::SeqCst);
+        self.requests += 1;
+        if reply == "losses" {
+            self.losses_asked += limit as usize;
+        }
         let mut buf = serde_json::to_vec(header).expect("a header serialises");
         buf.push(b'\n');
         buf.extend_from_slice(payload);
@@ -373,6 +427,24 @@ impl Program {
                 self.stop();
                 Err(malformed(request, what))
             }
+            Ok(Err(ReadError::NonFinite(text))) => {
+                self.stop();
+                Err(ProbeError::NonFinite {
+                    what: format!("reply to the {request} request"),
+                    value: f64::NAN,
+                    place: format!("(it writes NaN or Infinity into its JSON: `{text}`)"),
+                })
+            }
+            Ok(Err(ReadError::Cut(text))) => {
+                let status = self.exit_status();
+                Err(ProbeError::Exited {
+                    status,
+                    when: format!(
+                        "in the middle of its reply to the {request} request (it wrote `{text}` and no end of line)"
+                    ),
+                    stderr: self.tail(),
+                })
+            }
             Ok(Err(ReadError::Eof)) | Err(RecvTimeoutError::Disconnected) => {
                 let status = self.exit_status();
                 Err(ProbeError::Exited {
@@ -394,8 +466,22 @@ impl Program {
 
     fn stop(&mut self) {
         self.writer.take();
-        let _ = self.child.kill();
+        self.kill_group();
         let _ = self.child.wait();
+    }
+
+    /// Kills the program and everything in its process group.
+    fn kill_group(&mut self) {
+        #[cfg(unix)]
+        {
+            if let Ok(pid) = i32::try_from(self.child.id()) {
+                // SAFETY: kill(2) with a negative pid signals the process group we created.
+                unsafe {
+                    libc::kill(-pid, libc::SIGKILL);
+                }
+            }
+        }
+        let _ = self.child.kill();
     }
 
     /// The exit status, waiting a moment for the process to be reaped.
@@ -404,21 +490,21 @@ impl Program {
         while start.elapsed() < Duration::from_secs(2) {
             if let Ok(Some(s)) = self.child.try_wait() {
                 return match s.code() {
-                    Some(c) => format!("status {c}"),
-                    None => format!("killed by a signal: {s}"),
+                    Some(c) => format!("exited with status {c}"),
+                    None => format!("was ended by a signal ({s})"),
                 };
             }
             thread::sleep(Duration::from_millis(10));
         }
         self.stop();
-        "it closed its stdout without exiting; plumb stopped it".into()
+        "closed its stdout without exiting (so plumb stopped it)".into()
     }
 }
 
 impl Drop for Program {
     fn drop(&mut self) {
         if let Ok(None) = self.child.try_wait() {
-            let _ = self.child.kill();
+            self.kill_group();
             let _ = self.child.wait();
         }
     }
@@ -466,8 +552,21 @@ fn specs(h: &Value, request: &str) -> Result<Vec<TensorSpec>, ProbeError> {
                         .map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok()))
                         .collect()
                 });
-            match (name, shape) {
-                (Some(n), Some(s)) => Ok(TensorSpec {
+            let size = shape
+                .as_ref()
+                .and_then(|s| s.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d as u64)));
+            match (name, shape, size) {
+                (Some(_), Some(_), Some(n)) if n > MAX_VALUES => Err(malformed(
+                    request,
+                    format!(
+                        "a tensor of {n} values, more than the {MAX_VALUES} plumb will hold: {t}"
+                    ),
+                )),
+                (_, Some(_), None) => Err(malformed(
+                    request,
+                    format!("a tensor too large to hold: {t}"),
+                )),
+                (Some(n), Some(s), Some(_)) => Ok(TensorSpec {
                     name: n.to_string(),
                     shape: s,
                 }),
@@ -489,7 +588,11 @@ fn list(t: &[TensorSpec]) -> String {
 }
 
 /// Frames the program's stdout into messages until it ends or breaks.
-fn read_replies(stdout: ChildStdout, tx: Sender<Result<Message, ReadError>>) {
+fn read_replies(
+    stdout: ChildStdout,
+    tx: Sender<Result<Message, ReadError>>,
+    limit: Arc<AtomicU64>,
+) {
     let mut r = BufReader::new(stdout);
     loop {
         let mut line = Vec::new();
@@ -498,8 +601,16 @@ fn read_replies(stdout: ChildStdout, tx: Sender<Result<Message, ReadError>>) {
                 let _ = tx.send(Err(ReadError::Eof));
                 return;
             }
-            Ok(_) if line.last() != Some(&b'\n') => {
-                let _ = tx.send(Err(ReadError::Garbage(shorten(&line))));
+            Ok(n) if line.last() != Some(&b'\n') => {
+                let e = if n as u64 >= MAX_LINE {
+                    ReadError::Garbage(format!(
+                        "a line of more than {MAX_LINE} bytes: {}",
+                        shorten(&line)
+                    ))
+                } else {
+                    ReadError::Cut(shorten(&line))
+                };
+                let _ = tx.send(Err(e));
                 return;
             }
             Ok(_) => {}
@@ -511,7 +622,16 @@ fn read_replies(stdout: ChildStdout, tx: Sender<Result<Message, ReadError>>) {
         let header: Value = match serde_json::from_slice(&line) {
             Ok(v @ Value::Object(_)) if v.get("type").is_some_and(Value::is_string) => v,
             _ => {
-                let _ = tx.send(Err(ReadError::Garbage(shorten(&line))));
+                // JSON has no NaN or Infinity; some writers (Python's json) emit them anyway.
+                let text = String::from_utf8_lossy(&line);
+                let nonfinite =
+                    text.starts_with('{') && ["NaN", "Infinity"].iter().any(|t| text.contains(t));
+                let e = if nonfinite {
+                    ReadError::NonFinite(shorten(&line))
+                } else {
+                    ReadError::Garbage(shorten(&line))
+                };
+                let _ = tx.send(Err(e));
                 return;
             }
         };
@@ -522,6 +642,13 @@ fn read_replies(stdout: ChildStdout, tx: Sender<Result<Message, ReadError>>) {
                 return;
             }
         };
+        let allowed = limit.load(Ordering::SeqCst);
+        if count > allowed {
+            let _ = tx.send(Err(ReadError::Malformed(format!(
+                "it announces {count} float64 values, but the request calls for {allowed}"
+            ))));
+            return;
+        }
         let mut bytes = vec![0u8; count as usize * 8];
         if r.read_exact(&mut bytes).is_err() {
             let _ = tx.send(Err(ReadError::Malformed(format!(
