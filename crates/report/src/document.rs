@@ -81,13 +81,62 @@ pub enum Block {
     Verdict(Verdict, String),
     /// A caution the reader must not miss (e.g. that a passing check is not a safety assessment).
     Caution(String),
+    /// A picture, as a standalone SVG document (shown by the HTML renderer; the text renderers
+    /// name it only).
+    Plot {
+        title: String,
+        svg: String,
+    },
 }
 
-/// A titled list of blocks.
+/// One check of a run as a test case (JUnit XML, baselines): a tensor, a coordinate, a check.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Case {
+    /// Unique within the run: e.g. `layer1` or `self-check layer2`.
+    pub name: String,
+    pub passed: bool,
+    /// Why it failed (the finding's code and message); empty when it passed.
+    pub message: String,
+    /// The code of the finding that failed it, if one did.
+    pub code: Option<String>,
+    /// The figures a baseline records and compares, by name.
+    pub figures: std::collections::BTreeMap<String, f64>,
+}
+
+impl Case {
+    pub fn new(name: impl Into<String>, passed: bool) -> Case {
+        Case {
+            name: name.into(),
+            passed,
+            message: String::new(),
+            code: None,
+            figures: Default::default(),
+        }
+    }
+
+    pub fn failing(mut self, code: &str, message: impl Into<String>) -> Case {
+        self.passed = false;
+        self.code = Some(code.to_string());
+        self.message = message.into();
+        self
+    }
+
+    pub fn figure(mut self, name: &str, value: f64) -> Case {
+        self.figures.insert(name.to_string(), value);
+        self
+    }
+}
+
+/// A titled list of blocks, and the run's checks as test cases.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Document {
     pub title: String,
     pub blocks: Vec<Block>,
+    /// The command (`check`, `audit`, …): the JUnit suite and the baseline's key.
+    pub command: String,
+    pub cases: Vec<Case>,
+    /// The network the run was made on, for baselines.
+    pub network: Option<crate::NetworkId>,
 }
 
 impl Document {
@@ -95,7 +144,18 @@ impl Document {
         Document {
             title: title.into(),
             blocks: Vec::new(),
+            command: String::new(),
+            cases: Vec::new(),
+            network: None,
         }
+    }
+
+    /// The verdict block's verdict, if the document has one.
+    pub fn verdict(&self) -> Option<crate::Verdict> {
+        self.blocks.iter().rev().find_map(|b| match b {
+            Block::Verdict(v, _) => Some(*v),
+            _ => None,
+        })
     }
 
     pub fn push(&mut self, block: Block) {

@@ -1,5 +1,5 @@
 //! The findings model every command reports through, and the renderers that turn a report into a
-//! terminal table, Markdown or JSON.
+//! terminal table, Markdown, JSON, JUnit XML or a self-contained HTML page.
 //!
 //! A command builds two things from its result: a typed, serialisable report (the JSON, whose schema
 //! is documented in `docs/json.md`) and a [`Document`] — headings, text, tables and findings — for the
@@ -16,12 +16,18 @@
 //! assert!(String::from_utf8(out).unwrap().contains("| layer1 | (5, 5) |"));
 //! ```
 
+mod baseline;
 mod document;
 mod finding;
+mod html;
+mod junit;
 mod plot;
 mod render;
 
-pub use document::{Block, Cell, Document, Table, Tone};
+pub use baseline::{BASELINE_VERSION, Baseline, NetworkId, Recorded};
+pub use document::{Block, Case, Cell, Document, Table, Tone};
 pub use finding::{Finding, Severity, Verdict};
-pub use plot::{StepPanel, step_plot};
+pub use html::render_html;
+pub use junit::render_junit;
+pub use plot::{HeatRow, StepPanel, StripSeries, error_strip, heatmap, histogram, step_plot};
 pub use render::{ColorChoice, Format, render_json, render_markdown, render_table, use_color};

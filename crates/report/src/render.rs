@@ -101,6 +101,11 @@ pub fn render_table(doc: &Document, out: &mut impl Write, color: bool) -> io::Re
                 let word = format!("verdict: {}", v.name().to_uppercase());
                 writeln!(out, "{} — {summary}", paint.tone(&paint.bold(&word), tone))?;
             }
+            Block::Plot { title, .. } => writeln!(
+                out,
+                "{}",
+                paint.dim(&format!("[plot: {title} — in the HTML report (--html)]"))
+            )?,
             Block::Caution(c) => {
                 for (i, line) in wrap(c, WIDTH - 2).iter().enumerate() {
                     let mark = if i == 0 { "! " } else { "  " };
@@ -169,6 +174,9 @@ pub fn render_markdown(doc: &Document, out: &mut impl Write) -> io::Result<()> {
                 writeln!(out, "**Verdict: {}** — {}", v.name(), md(summary))?
             }
             Block::Caution(c) => writeln!(out, "> **Caution:** {}", md(c))?,
+            Block::Plot { title, .. } => {
+                writeln!(out, "_Plot: {} (in the HTML report)._", md(title))?
+            }
         }
     }
     Ok(())
