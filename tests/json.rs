@@ -143,6 +143,7 @@ struct Coordinate {
     rel_bound: f64,
     step: f64,
     status: String,
+    retried: bool,
 }
 
 #[derive(Deserialize)]
@@ -171,6 +172,8 @@ struct CheckTensor {
 #[allow(dead_code)]
 struct Direction {
     scope: String,
+    layer: Option<usize>,
+    bias: Option<bool>,
     analytic: f64,
     numeric: f64,
     rel_error: f64,
@@ -207,8 +210,12 @@ struct Check {
     floor_fraction: f64,
     loss: f64,
     coverage: CheckCoverage,
+    shard: Option<[usize; 2]>,
+    floors: Vec<f64>,
     tensors: Vec<CheckTensor>,
     worst: Vec<Coordinate>,
+    #[serde(default)]
+    coordinates: Option<Vec<Coordinate>>,
     directions: Vec<Direction>,
     findings: Vec<Finding>,
 }

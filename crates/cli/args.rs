@@ -39,6 +39,22 @@ pub struct Common {
     /// No notes or progress on stderr; the report still goes to stdout.
     #[arg(long, short = 'q', global = true)]
     pub quiet: bool,
+    /// Also write the report as JUnit XML (one test case per tensor or check) to FILE.
+    #[arg(long, global = true, value_name = "FILE")]
+    pub junit: Option<PathBuf>,
+    /// Also write the report as one self-contained HTML page (with plots) to FILE.
+    #[arg(long, global = true, value_name = "FILE")]
+    pub html: Option<PathBuf>,
+    /// Record this run's figures as a baseline in FILE (a passing run only).
+    #[arg(long, global = true, value_name = "FILE")]
+    pub save_baseline: Option<PathBuf>,
+    /// Fail when a figure got worse than in the baseline FILE, a new finding appeared, or the
+    /// network changed shape.
+    #[arg(long, global = true, value_name = "FILE")]
+    pub baseline: Option<PathBuf>,
+    /// Let outputs (-o, --plot, --write, --junit, --html, --save-baseline) replace existing files.
+    #[arg(long, global = true)]
+    pub force: bool,
 }
 
 #[derive(Debug, Subcommand)]
@@ -60,6 +76,18 @@ pub enum Command {
     /// Release audit of a weight file on probe data: shapes, values, symmetry, unit health,
     /// initialisation, signal and gradient flow.
     Audit(AuditArgs),
+    /// Join the JSON reports of the N shards of a `plumb check --shard K/N` into one report.
+    Merge(MergeArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct MergeArgs {
+    /// The shards' JSON reports (`plumb check --shard K/N --format json`), one per shard.
+    #[arg(value_name = "SHARD", required = true)]
+    pub shards: Vec<PathBuf>,
+    /// How many of the worst coordinates to list.
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub worst: usize,
 }
 
 #[derive(Debug, Args)]
@@ -67,9 +95,6 @@ pub struct DemoArgs {
     /// Also write the example's files (description, weights, data) into this directory.
     #[arg(long, value_name = "DIR")]
     pub write: Option<PathBuf>,
-    /// Let --write replace files that already exist.
-    #[arg(long)]
-    pub force: bool,
 }
 
 #[derive(Debug, Args)]
@@ -113,9 +138,6 @@ pub struct GradArgs {
     /// Element type of the gradient file [default: f64 for float64 weights or none, else f32].
     #[arg(long, value_enum)]
     pub dtype: Option<DTypeArg>,
-    /// Let -o replace a file that already exists.
-    #[arg(long)]
-    pub force: bool,
 }
 
 #[derive(Debug, Args)]
@@ -144,6 +166,10 @@ pub struct CheckArgs {
     /// How many of the worst coordinates to list.
     #[arg(long, value_name = "N", default_value_t = 5)]
     pub worst: usize,
+    /// Check only the K-th of N deterministic shares of the coordinates and directions (for a
+    /// check split over N CI jobs); join the shards' JSON with `plumb merge`.
+    #[arg(long, value_name = "K/N")]
+    pub shard: Option<String>,
 }
 
 #[derive(Debug, Args)]
@@ -166,9 +192,6 @@ pub struct SweepArgs {
     /// Write the curves as an SVG plot (log-log, one line per method).
     #[arg(long, value_name = "FILE")]
     pub plot: Option<PathBuf>,
-    /// Let --plot replace a file that already exists.
-    #[arg(long)]
-    pub force: bool,
 }
 
 #[derive(Debug, Args)]

@@ -10,7 +10,7 @@ use plumb_formats::{
     DType, Description, FileFormat, TensorFile, assemble, read_data, read_tensors,
 };
 use plumb_report::{Severity, Verdict};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::args::{InitArg, Inputs};
 
@@ -23,22 +23,22 @@ const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
 const MAX_ACTIVATION_VALUES: usize = 1 << 27;
 
 /// Where the weights came from.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(tag = "source", rename_all = "kebab-case")]
 pub enum WeightsSource {
     File {
         path: PathBuf,
-        format: &'static str,
-        dtype: &'static str,
+        format: String,
+        dtype: String,
     },
     Init {
-        scheme: &'static str,
+        scheme: String,
         seed: u64,
     },
 }
 
 /// Where the data came from.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(tag = "source", rename_all = "kebab-case")]
 pub enum DataSource {
     File { path: PathBuf, samples: usize },
@@ -111,8 +111,8 @@ pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
                 weights,
                 WeightsSource::File {
                     path: path.clone(),
-                    format: file.format.name(),
-                    dtype,
+                    format: file.format.name().into(),
+                    dtype: dtype.into(),
                 },
             )
         }
@@ -122,7 +122,7 @@ pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
             (
                 w,
                 WeightsSource::Init {
-                    scheme: scheme.name(),
+                    scheme: scheme.name().into(),
                     seed,
                 },
             )

@@ -19,6 +19,10 @@ use output::Settings;
 fn main() -> ExitCode {
     let cli = Cli::parse();
     let settings = Settings::from_args(&cli.common);
+    if let Err(e) = settings.check_outputs() {
+        eprintln!("plumb: error: {}", message(&e));
+        return ExitCode::from(2);
+    }
     let result = match &cli.command {
         Command::Demo(a) => demo::run(a, &settings),
         Command::Shapes(a) => commands::shapes::run(a, &settings),
@@ -28,6 +32,7 @@ fn main() -> ExitCode {
         Command::Compare(a) => commands::compare::run(a, &settings),
         Command::Probe(a) => commands::probe::run(a, &settings),
         Command::Audit(a) => commands::audit::run(a, &settings),
+        Command::Merge(a) => commands::merge::run(a, &settings),
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,

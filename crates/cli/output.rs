@@ -1,10 +1,15 @@
-//! Where reports go and how they look: the validated form of the common flags.
+//! Where reports go and how they look: the validated form of the common flags, and the one place a
+//! report is rendered — to stdout in the chosen format, and to the JUnit, HTML and baseline files
+//! asked for — so that adding a renderer touches no command.
 
 use std::io::{IsTerminal, Write};
+use std::path::PathBuf;
 
-use anyhow::Result;
+use anyhow::{Context, Result, bail};
+use plumb_formats::{Description, expected_tensors, write_atomically};
 use plumb_report::{
-    ColorChoice, Document, Format, render_json, render_markdown, render_table, use_color,
+    Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Verdict, render_html,
+    render_json, render_junit, render_markdown, render_table, use_color,
 };
 use serde::Serialize;
 
@@ -20,6 +25,11 @@ pub struct Settings {
     pub color: bool,
     pub seed: u64,
     pub quiet: bool,
+    pub junit: Option<PathBuf>,
+    pub html: Option<PathBuf>,
+    pub save_baseline: Option<PathBuf>,
+    pub baseline: Option<PathBuf>,
+    pub force: bool,
 }
 
 impl Settings {
@@ -48,7 +58,29 @@ impl Settings {
             color,
             seed: c.seed,
             quiet: c.quiet,
+            junit: c.junit.clone(),
+            html: c.html.clone(),
+            save_baseline: c.save_baseline.clone(),
+            baseline: c.baseline.clone(),
+            force: c.force,
         }
+    }
+
+    /// Refuses, before any work, output files that exist (without --force) or that are directories.
+    pub fn check_outputs(&self) -> Result<()> {
+        for p in [&self.junit, &self.html, &self.save_baseline]
+            .into_iter()
+            .flatten()
+        {
+            crate::inputs::check_output(p, self.force, &[])?;
+        }
+        if let Some(b) = self.baseline.as_ref().filter(|b| !b.is_file()) {
+            bail!(
+                "{}: no such baseline file; record one with --save-baseline",
+                b.display()
+            );
+        }
+        Ok(())
     }
 
     /// A note for the user on stderr (not part of the report), unless --quiet.
@@ -58,20 +90,147 @@ impl Settings {
         }
     }
 
-    /// Renders a report to stdout in the chosen format.
-    pub fn emit<T: Serialize>(&self, json: &T, doc: &Document) -> Result<()> {
+    /// Renders a report — against the baseline when asked, to stdout, and to the JUnit, HTML and
+    /// baseline files asked for — and returns the run's verdict.
+    pub fn emit<T: Serialize>(&self, json: &T, mut doc: Document) -> Result<Verdict> {
+        let mut value = serde_json::to_value(json).context("the report serialises")?;
+        let findings = all_findings(&doc);
+        let mut verdict = doc.verdict().unwrap_or(Verdict::Pass);
+        if let Some(path) = &self.baseline {
+            let text = std::fs::read_to_string(path)
+                .with_context(|| format!("{}: cannot read the baseline", path.display()))?;
+            let base: Baseline = serde_json::from_str(&text).with_context(|| {
+                format!(
+                    "{}: not a plumb baseline (record one with --save-baseline)",
+                    path.display()
+                )
+            })?;
+            let changes = base.compare(&doc, &findings);
+            if let Some(obj) = value.as_object_mut() {
+                obj.insert(
+                    "baseline".into(),
+                    serde_json::json!({"path": path, "changes": changes.len()}),
+                );
+                if let Some(list) = obj.get_mut("findings").and_then(|f| f.as_array_mut()) {
+                    list.extend(
+                        changes
+                            .iter()
+                            .map(|f| serde_json::to_value(f).expect("a finding serialises")),
+                    );
+                }
+            }
+            let summary = if changes.is_empty() {
+                format!("nothing got worse than the baseline {}", path.display())
+            } else {
+                format!(
+                    "{} change{} for the worse since the baseline",
+                    changes.len(),
+                    if changes.len() == 1 { "" } else { "s" }
+                )
+            };
+            insert_before_verdict(
+                &mut doc,
+                vec![
+                    Block::Heading(format!("against the baseline {}", path.display())),
+                    Block::Findings(changes.clone()),
+                ],
+            );
+            if !changes.is_empty() {
+                verdict = Verdict::Fail;
+                set_verdict(&mut doc, verdict, &summary);
+                if let Some(obj) = value.as_object_mut() {
+                    obj.insert("verdict".into(), serde_json::json!("fail"));
+                }
+            }
+        }
         let mut buf = Vec::new();
         match self.format {
-            Format::Json => render_json(json, &mut buf)?,
-            Format::Markdown => render_markdown(doc, &mut buf)?,
-            Format::Table => render_table(doc, &mut buf, self.color)?,
+            Format::Json => render_json(&value, &mut buf)?,
+            Format::Markdown => render_markdown(&doc, &mut buf)?,
+            Format::Table => render_table(&doc, &mut buf, self.color)?,
+        }
+        if let Some(p) = &self.junit {
+            let mut x = Vec::new();
+            render_junit(&doc, &mut x)?;
+            write_atomically(p, &x)
+                .with_context(|| format!("{}: cannot write the JUnit report", p.display()))?;
+        }
+        if let Some(p) = &self.html {
+            let mut h = Vec::new();
+            render_html(&doc, &mut h)?;
+            write_atomically(p, &h)
+                .with_context(|| format!("{}: cannot write the HTML report", p.display()))?;
+            self.note(&format!("wrote the HTML report to {}", p.display()));
         }
         let mut out = std::io::stdout().lock();
         match out.write_all(&buf).and_then(|_| out.flush()) {
             // A reader that stopped reading (`| head`) is not an error of ours.
-            Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
-            other => Ok(other?),
+            Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => {}
+            other => other?,
         }
+        if let Some(p) = &self.save_baseline {
+            if verdict == Verdict::Fail {
+                bail!(
+                    "{}: not saved — a baseline records a passing run, and this one failed",
+                    p.display()
+                );
+            }
+            let base = Baseline::record(&doc, &findings);
+            let text = serde_json::to_string_pretty(&base).expect("a baseline serialises");
+            write_atomically(p, text.as_bytes())
+                .with_context(|| format!("{}: cannot write the baseline", p.display()))?;
+            self.note(&format!("recorded the baseline in {}", p.display()));
+        }
+        Ok(verdict)
+    }
+}
+
+/// The network a run is about, for baselines: a hash of the canonical description and the shapes.
+pub fn network_id(desc: &Description) -> NetworkId {
+    let text = desc.to_toml("");
+    // FNV-1a, 64 bits: enough to tell descriptions apart, stable across versions and machines.
+    let hash = text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+        (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
+    });
+    NetworkId {
+        hash: format!("{hash:016x}"),
+        shapes: expected_tensors(desc, desc.layout)
+            .into_iter()
+            .map(|e| (e.name, e.shape))
+            .collect(),
+    }
+}
+
+fn all_findings(doc: &Document) -> Vec<Finding> {
+    doc.blocks
+        .iter()
+        .filter_map(|b| match b {
+            Block::Findings(f) => Some(f.clone()),
+            _ => None,
+        })
+        .flatten()
+        .collect()
+}
+
+fn insert_before_verdict(doc: &mut Document, blocks: Vec<Block>) {
+    let at = doc
+        .blocks
+        .iter()
+        .rposition(|b| matches!(b, Block::Verdict(..)))
+        .unwrap_or(doc.blocks.len());
+    for (i, b) in blocks.into_iter().enumerate() {
+        doc.blocks.insert(at + i, b);
+    }
+}
+
+fn set_verdict(doc: &mut Document, v: Verdict, summary: &str) {
+    if let Some(b) = doc
+        .blocks
+        .iter_mut()
+        .rev()
+        .find(|b| matches!(b, Block::Verdict(..)))
+    {
+        *b = Block::Verdict(v, summary.to_string());
     }
 }
 

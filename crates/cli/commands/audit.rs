@@ -4,14 +4,18 @@ use std::path::PathBuf;
 
 use anyhow::{Result, bail};
 use plumb_audit::{Audit, Thresholds, audit, sparkline};
-use plumb_formats::{Description, read_tensors};
-use plumb_report::{Block, Cell, Document, Severity, Table, Tone, Verdict};
+use plumb_engine::Init;
+use plumb_formats::{Description, assemble, bind, read_tensors};
+use plumb_report::{
+    Block, Case, Cell, Document, HeatRow, Severity, Table, Tone, Verdict, heatmap, histogram,
+};
 use serde::Serialize;
 
 use crate::args::{AuditArgs, FailOn, Inputs};
+use crate::commands::check::plot;
 use crate::commands::shapes;
 use crate::inputs::{DataSource, init_scheme, load_batch};
-use crate::output::{SCHEMA_VERSION, Settings, num};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -136,9 +140,133 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         thresholds: &t,
         audit: &result,
     };
-    let doc = document(&report, &desc, &file, &args.weights);
-    settings.emit(&report, &doc)?;
-    Ok(verdict)
+    let mut doc = document(&report, &desc, &file, &args.weights);
+    doc.command = "audit".into();
+    doc.network = Some(network_id(&desc));
+    doc.cases = cases(&result, level);
+    if settings.html.is_some() {
+        crate::commands::check::insert_before_findings(&mut doc, plots(&result, &desc, &file));
+    }
+    settings.emit(&report, doc)
+}
+
+/// The shape cases, one case per layer's tensor for the other checks, and one for the network.
+pub fn cases(a: &Audit, level: Severity) -> Vec<Case> {
+    let mut out = shapes::cases(&a.shapes);
+    let failing = |tensor: Option<&str>| {
+        a.findings
+            .iter()
+            .filter(|f| {
+                f.severity >= level && !f.code.starts_with("shape") && f.tensor.as_deref() == tensor
+            })
+            .find(|f| {
+                !matches!(
+                    f.code.as_str(),
+                    "transposed-matrix"
+                        | "bias-column-missing"
+                        | "bias-column-extra"
+                        | "bias-wrong-length"
+                        | "layers-out-of-order"
+                        | "wrong-shape"
+                        | "tensor-missing"
+                        | "tensor-unexpected"
+                        | "other-layout"
+                        | "dtype-not-float"
+                )
+            })
+    };
+    for i in &a.init {
+        let flagged = a
+            .health
+            .iter()
+            .find(|h| h.layer == i.layer)
+            .map_or(0, |h| h.flagged.len());
+        let mut c = Case::new(format!("audit {}", i.tensor), true)
+            .figure("flagged units count", flagged as f64)
+            .figure("std over the scheme called for", i.reference_ratio);
+        if let Some(f) = failing(Some(&i.tensor)) {
+            c = c.failing(&f.code, f.message.clone());
+        }
+        out.push(c);
+    }
+    let mut c = Case::new("audit network", true);
+    if let Some(f) = failing(None) {
+        c = c.failing(&f.code, f.message.clone());
+    }
+    out.push(c);
+    out
+}
+
+/// The audit's pictures: unit health as a heatmap, each layer's weights against its scheme's density.
+pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) -> Vec<Block> {
+    let mut out = Vec::new();
+    let rows: Vec<HeatRow> = a
+        .health
+        .iter()
+        .filter(|h| h.measure.is_some())
+        .map(|h| HeatRow {
+            label: format!("layer {} ({})", h.layer, h.activation),
+            values: h.fractions.clone(),
+        })
+        .collect();
+    if !rows.is_empty()
+        && let Ok(svg) = heatmap(
+            "fraction of probe samples on which each unit is inactive (ReLU) or saturated (sigmoid, tanh)",
+            &rows,
+        )
+    {
+        out.push(plot(
+            "Unit health on the probe data: one cell per unit, white 0, red 1.",
+            svg,
+        ));
+    }
+    let Ok(weights) = assemble(desc, &bind(desc, file), &desc.path) else {
+        return out;
+    };
+    for (l, i) in a.init.iter().enumerate() {
+        let values: Vec<f64> = weights
+            .layer(l)
+            .slice(ndarray::s![.., 1..])
+            .iter()
+            .copied()
+            .collect();
+        let scheme = i
+            .test
+            .as_ref()
+            .and_then(|t| Init::from_name(t.scheme))
+            .or(Init::from_name(i.closest))
+            .unwrap_or(Init::GlorotUniform);
+        let sd = scheme.std_dev(i.fan_in, i.fan_out);
+        let density = move |x: f64| {
+            if scheme.is_uniform() {
+                let half = 3f64.sqrt() * sd;
+                if x.abs() <= half {
+                    1.0 / (2.0 * half)
+                } else {
+                    0.0
+                }
+            } else {
+                (-(x * x) / (2.0 * sd * sd)).exp() / (sd * (2.0 * std::f64::consts::PI).sqrt())
+            }
+        };
+        let label = format!("{} density", scheme.name());
+        if let Ok(svg) = histogram(
+            &format!("{} weights (bias aside)", i.tensor),
+            &values,
+            40,
+            Some((&label, &density)),
+        ) {
+            out.push(plot(
+                &format!(
+                    "Weights of {} against the {} density.",
+                    i.tensor,
+                    scheme.name()
+                ),
+                svg,
+            ));
+        }
+    }
+    out
 }
 
 fn document(

@@ -4,16 +4,18 @@ use std::path::PathBuf;
 
 use anyhow::{Result, bail};
 use plumb_fd::{
-    CheckConfig, CheckResult, FLOOR, Method, PartSummary, Precision, Sample, Scope, Status, check,
-    summarise,
+    CheckConfig, CheckResult, FLOOR, Method, Precision, Sample, Scope, Status, check, summarise,
 };
-use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use plumb_report::{
+    Block, Case, Cell, Document, Finding, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
+    error_strip, step_plot,
+};
 use serde::Serialize;
 
 use crate::args::{CheckArgs, MethodArg, PrecisionArg};
 use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
-use crate::output::{SCHEMA_VERSION, Settings, num};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
 use crate::progress::Progress;
 
 pub fn method(m: MethodArg) -> Method {
@@ -30,6 +32,22 @@ pub fn precision(p: PrecisionArg) -> Precision {
     match p {
         PrecisionArg::F64 => Precision::F64,
         PrecisionArg::F32 => Precision::F32,
+    }
+}
+
+/// `--shard K/N`, 1 ≤ K ≤ N.
+fn parse_shard(text: &str) -> Result<(usize, usize)> {
+    let parsed = text.split_once('/').and_then(|(k, n)| {
+        Some((
+            k.trim().parse::<usize>().ok()?,
+            n.trim().parse::<usize>().ok()?,
+        ))
+    });
+    match parsed {
+        Some((k, n)) if k >= 1 && k <= n && n <= 10_000 => Ok((k, n)),
+        _ => bail!(
+            "--shard `{text}`: write K/N with 1 ≤ K ≤ N ≤ 10000, e.g. --shard 2/4 for the second of four"
+        ),
     }
 }
 
@@ -70,6 +88,8 @@ pub struct CoordReport {
     pub rel_bound: f64,
     pub step: f64,
     pub status: &'static str,
+    /// Whether a smaller step was needed to step off a kink.
+    pub retried: bool,
 }
 
 /// One tensor of the report.
@@ -97,6 +117,9 @@ pub struct TensorReport {
 pub struct DirectionReport {
     /// The tensor it spans, or "all" for a global direction.
     pub scope: String,
+    /// The 1-based layer and part (bias weights or the others) it spans; null for a global one.
+    pub layer: Option<usize>,
+    pub bias: Option<bool>,
     pub analytic: f64,
     pub numeric: f64,
     pub rel_error: f64,
@@ -130,10 +153,20 @@ pub struct CheckReport {
     pub floor_fraction: f64,
     pub loss: f64,
     pub coverage: CoverageReport,
+    /// (k, n) when this run checked the k-th of n shares (--shard k/n).
+    pub shard: Option<[usize; 2]>,
+    /// The relative error's floor per layer.
+    pub floors: Vec<f64>,
     pub tensors: Vec<TensorReport>,
     pub worst: Vec<CoordReport>,
+    /// Every checked coordinate, in a sharded run (what `plumb merge` joins).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub coordinates: Option<Vec<CoordReport>>,
     pub directions: Vec<DirectionReport>,
     pub findings: Vec<Finding>,
+    /// Every checked coordinate's relative error, per tensor (for the HTML plot; not in JSON).
+    #[serde(skip)]
+    pub rel_errors: Vec<(String, Vec<f64>)>,
 }
 
 pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
@@ -153,6 +186,7 @@ pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordR
         bound: c.bound,
         step: c.step,
         status: c.status.name(),
+        retried: c.retried,
     }
 }
 
@@ -178,13 +212,149 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
     config.directions = Some(args.directions);
     config.seed = settings.seed;
     config.tolerance = args.tolerance;
+    config.shard = args.shard.as_deref().map(parse_shard).transpose()?;
     let loaded = load(&args.inputs, settings.seed)?;
     let progress = Progress::new(settings, "checking");
     let report = compute(&loaded, &config, args.worst, &|d, t| progress.update(d, t))?;
     progress.finish();
-    let doc = document(&report);
-    settings.emit(&report, &doc)?;
-    Ok(report.verdict)
+    let mut doc = document(&report);
+    doc.command = "check".into();
+    doc.network = Some(network_id(&loaded.desc));
+    doc.cases = cases(&report);
+    if settings.html.is_some() {
+        insert_before_findings(&mut doc, plots(&report, &loaded, config.precision));
+    }
+    settings.emit(&report, doc)
+}
+
+/// One case per tensor (shared with the demo).
+pub fn cases(r: &CheckReport) -> Vec<Case> {
+    r.tensors
+        .iter()
+        .map(|t| {
+            let c = Case::new(format!("gradient {}", t.name), t.verdict == Verdict::Pass)
+                .figure("max_rel_error", t.max_rel_error)
+                .figure("median_rel_error", t.median_rel_error)
+                .figure("norm_rel_error", t.norm_rel_error)
+                .figure("median_bound", t.median_bound)
+                .figure("mismatches", t.mismatches as f64)
+                .figure("unreliable", t.unreliable as f64)
+                .figure("direction_mismatches", t.direction_mismatches as f64);
+            if t.verdict == Verdict::Pass {
+                c
+            } else {
+                let f = r.findings.iter().find(|f| {
+                    f.tensor.as_deref() == Some(&t.name) && f.severity == Severity::Error
+                });
+                c.failing(
+                    f.map_or("gradient-mismatch", |f| f.code.as_str()),
+                    f.map_or(String::new(), |f| f.message.clone()),
+                )
+            }
+        })
+        .collect()
+}
+
+/// The check's pictures: relative error per tensor against the practice bands, and the V-curve of
+/// the worst coordinates (shared with the demo).
+pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Block> {
+    let mut out = Vec::new();
+    let series: Vec<StripSeries> = r
+        .rel_errors
+        .iter()
+        .map(|(n, v)| StripSeries {
+            label: n.clone(),
+            values: v.clone(),
+        })
+        .collect();
+    if let Ok(svg) = error_strip(
+        "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
+        &series,
+        &[
+            (1e-7, "good (smooth)"),
+            (1e-4, "suspicious"),
+            (1e-2, "almost surely wrong"),
+        ],
+    ) {
+        out.push(plot(
+            "Relative error per tensor; the bands are common practice, not a standard.",
+            svg,
+        ));
+    }
+    let net = &loaded.desc.network;
+    let coords: Vec<plumb_engine::Coord> = r
+        .worst
+        .iter()
+        .take(2)
+        .map(|w| plumb_engine::Coord {
+            layer: w.place.layer - 1,
+            row: w.place.row,
+            col: w.place.column,
+        })
+        .collect();
+    if coords.is_empty() {
+        return out;
+    }
+    let (_, analytic) = net.gradient(
+        &loaded.weights,
+        loaded.batch.x.view(),
+        loaded.batch.y.view(),
+    );
+    let hs = plumb_fd::steps(1e-1, 1e-14, 27);
+    let plan = plumb_fd::SweepPlan {
+        coords,
+        methods: Method::ALL.to_vec(),
+        steps: hs.clone(),
+        precision,
+    };
+    let curves = plumb_fd::sweep(net, &loaded.weights, &loaded.batch, &analytic, &plan);
+    let tensors = Tensors::new(&loaded.desc);
+    let eps = precision.epsilon();
+    let panels: Vec<StepPanel> = curves
+        .iter()
+        .map(|c| StepPanel {
+            title: format!(
+                "{} (worst), analytic {:.4e}",
+                tensors.place(c.coord).label(),
+                c.analytic
+            ),
+            steps: hs.clone(),
+            series: Method::ALL
+                .iter()
+                .enumerate()
+                .map(|(m, name)| {
+                    (
+                        name.name().to_string(),
+                        (0..hs.len()).map(|i| c.error(m, i, 0.0)).collect(),
+                    )
+                })
+                .collect(),
+            marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
+        })
+        .collect();
+    if let Ok(svg) = step_plot(&panels) {
+        out.push(plot("Error against step size for the worst coordinates: truncation falls as h shrinks until round-off (ε/h) takes over.", svg));
+    }
+    out
+}
+
+pub fn plot(title: &str, svg: String) -> Block {
+    Block::Plot {
+        title: title.to_string(),
+        svg,
+    }
+}
+
+/// Blocks placed before the document's first findings.
+pub fn insert_before_findings(doc: &mut Document, blocks: Vec<Block>) {
+    let at = doc
+        .blocks
+        .iter()
+        .position(|b| matches!(b, Block::Findings(_)))
+        .unwrap_or(doc.blocks.len());
+    for (i, b) in blocks.into_iter().enumerate() {
+        doc.blocks.insert(at + i, b);
+    }
 }
 
 /// Runs the check and builds its report (shared with the demo).
@@ -196,21 +366,35 @@ pub fn compute(
 ) -> Result<CheckReport> {
     let net = &loaded.desc.network;
     let result = check(net, &loaded.weights, &loaded.batch, config, progress)?;
-    let tensors = Tensors::new(&loaded.desc);
-    let summaries = summarise(&result, &tensors.parts());
-    Ok(build(
-        loaded, &tensors, &result, &summaries, worst_n, config,
-    ))
+    let facts = RunFacts {
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        samples: loaded.batch.len(),
+        step: config.step,
+        shard: config.shard,
+    };
+    Ok(build(&facts, &Tensors::new(&loaded.desc), &result, worst_n))
 }
 
-fn build(
-    loaded: &Loaded,
+/// What a report says of the run besides its results.
+pub struct RunFacts {
+    pub description: PathBuf,
+    pub weights: WeightsSource,
+    pub data: DataSource,
+    pub samples: usize,
+    pub step: Option<f64>,
+    pub shard: Option<(usize, usize)>,
+}
+
+/// The report of a check's results (shared with `plumb merge`).
+pub fn build(
+    facts: &RunFacts,
     tensors: &Tensors,
     result: &CheckResult,
-    summaries: &[PartSummary],
     worst_n: usize,
-    config: &CheckConfig,
 ) -> CheckReport {
+    let summaries = &summarise(result, &tensors.parts());
     let mut findings = Vec::new();
     let mut tensor_reports = Vec::new();
     for (s, e) in summaries.iter().zip(&tensors.expected) {
@@ -375,6 +559,14 @@ fn build(
                 Scope::Global => "all".to_string(),
                 Scope::Part { layer, bias } => tensors.name_of(layer, bias),
             },
+            layer: match d.scope {
+                Scope::Global => None,
+                Scope::Part { layer, .. } => Some(layer + 1),
+            },
+            bias: match d.scope {
+                Scope::Global => None,
+                Scope::Part { bias, .. } => Some(bias),
+            },
             analytic: d.analytic,
             numeric: d.numeric,
             rel_error: d.rel_error,
@@ -382,7 +574,7 @@ fn build(
             status: d.status.name(),
         })
         .collect();
-    let step_rule = match config.step {
+    let step_rule = match facts.step {
         Some(h) => format!("fixed h = {h:e} (--step)"),
         None => result.method.step_rule().to_string(),
     };
@@ -390,10 +582,10 @@ fn build(
         verdict: Verdict::of(&findings),
         schema_version: SCHEMA_VERSION,
         command: "check",
-        description: loaded.desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        samples: loaded.batch.len(),
+        description: facts.description.clone(),
+        weights: facts.weights.clone(),
+        data: facts.data.clone(),
+        samples: facts.samples,
         method: result.method.name(),
         step_rule,
         precision: result.precision.name(),
@@ -407,10 +599,30 @@ fn build(
             checked: result.coverage.checked,
             directions_per_part: result.coverage.directions,
         },
+        shard: facts.shard.map(|(k, n)| [k, n]),
+        floors: result.floors.clone(),
         tensors: tensor_reports,
         worst,
+        coordinates: facts.shard.map(|_| {
+            (0..result.coords.len())
+                .map(|i| coord_report(tensors, result, i))
+                .collect()
+        }),
         directions,
         findings,
+        rel_errors: summaries
+            .iter()
+            .zip(&tensors.expected)
+            .map(|(s, e)| {
+                let v = result
+                    .coords
+                    .iter()
+                    .filter(|c| s.part.contains(c))
+                    .map(|c| c.rel_error)
+                    .collect();
+                (e.name.clone(), v)
+            })
+            .collect(),
     }
 }
 

@@ -7,14 +7,14 @@ use plumb_diagnose::{Expected, Named, Problem, TensorJudgement, Tolerances, judg
 use plumb_engine::Weights;
 use plumb_fd::{CheckConfig, Method, Precision, Status, check};
 use plumb_formats::{DType, Description, Role, bind, disassemble, expected_tensors, read_tensors};
-use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::CompareArgs;
 use crate::commands::check::verdict_cell;
 use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
-use crate::output::{SCHEMA_VERSION, Settings, num, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
 
 /// The diagnosis of one tensor, for JSON.
 #[derive(Clone, Debug, Serialize)]
@@ -405,9 +405,51 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
         tensors,
         findings,
     };
-    let doc = document(&report);
-    settings.emit(&report, &doc)?;
-    Ok(report.verdict)
+    let mut doc = document(&report);
+    doc.command = "compare".into();
+    doc.network = Some(network_id(&loaded.desc));
+    doc.cases = gradient_cases("", &report.tensors);
+    if let Some(l) = &report.loss {
+        let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
+        doc.cases.push(if l.matches {
+            c
+        } else {
+            c.failing(
+                "loss-mismatch",
+                l.explanation
+                    .unwrap_or("the loss differs from the reference"),
+            )
+        });
+    }
+    settings.emit(&report, doc)
+}
+
+/// One case per tensor of an outside gradient (shared with probe).
+pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
+    tensors
+        .iter()
+        .map(|t| {
+            let mut c = Case::new(format!("{prefix}{}", t.name), t.verdict == Verdict::Pass);
+            if let Some(m) = t.max_rel_error {
+                c = c.figure("max_rel_error", m);
+            }
+            if let Some(m) = t.median_rel_error {
+                c = c.figure("median_rel_error", m);
+            }
+            if t.verdict == Verdict::Fail {
+                let code = t.diagnosis.as_ref().map_or("gradient-mismatch", |d| d.code);
+                let why = t.diagnosis.as_ref().map_or_else(String::new, |d| {
+                    if d.detail.is_empty() {
+                        d.code.to_string()
+                    } else {
+                        format!("{} ({})", d.code, d.detail)
+                    }
+                });
+                c = c.failing(code, format!("the gradient is wrong: {why}"));
+            }
+            c
+        })
+        .collect()
 }
 
 fn document(r: &CompareReport) -> Document {

@@ -4,12 +4,12 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
 use plumb_formats::{DType, FileFormat, Tensor, disassemble, write_tensors};
-use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::{DTypeArg, GradArgs};
 use crate::inputs::{DataSource, Loaded, WeightsSource, check_output, load, output_format};
-use crate::output::{SCHEMA_VERSION, Settings, num, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
 
 /// Per-tensor summary of the gradient.
 #[derive(Clone, Debug, Serialize)]
@@ -149,7 +149,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
             let mut ins: Vec<&Path> = vec![&inputs.net];
             ins.extend(inputs.weights.as_deref());
             ins.extend(inputs.data.as_deref());
-            check_output(path, args.force, &ins)?;
+            check_output(path, settings.force, &ins)?;
             Some(output_format(path)?)
         }
         None => None,
@@ -179,9 +179,27 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
             path.display()
         ));
     }
-    let doc = document(&computed.report);
-    settings.emit(&computed.report, &doc)?;
-    Ok(computed.report.verdict)
+    let mut doc = document(&computed.report);
+    doc.command = "grad".into();
+    doc.network = Some(network_id(&loaded.desc));
+    doc.cases = computed
+        .report
+        .tensors
+        .iter()
+        .map(|t| {
+            let c = Case::new(format!("gradient {}", t.name), t.norm.is_finite())
+                .figure("norm", t.norm);
+            if t.norm.is_finite() {
+                c
+            } else {
+                c.failing(
+                    "non-finite-gradient",
+                    "the gradient holds NaN or infinite entries",
+                )
+            }
+        })
+        .collect();
+    settings.emit(&computed.report, doc)
 }
 
 /// The human form of the report.

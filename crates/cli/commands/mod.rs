@@ -5,6 +5,7 @@ pub mod check;
 pub mod compare;
 pub mod grad;
 pub mod locate;
+pub mod merge;
 pub mod probe;
 pub mod shapes;
 pub mod sweep;

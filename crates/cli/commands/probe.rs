@@ -14,18 +14,18 @@ use plumb_fd::{
 };
 use plumb_formats::read_tensors;
 use plumb_probe::{Program, TensorSpec};
-use plumb_report::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ProbeArgs;
 use crate::commands::check::{method, step, verdict_cell};
 use crate::commands::compare::{
-    Certification, LossReport, TensorReport, certification_text, certify, judge_gradient,
-    judge_loss, layout_tensors, tensor_table,
+    Certification, LossReport, TensorReport, certification_text, certify, gradient_cases,
+    judge_gradient, judge_loss, layout_tensors, tensor_table,
 };
 use crate::commands::locate::Tensors;
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
-use crate::output::{SCHEMA_VERSION, Settings, num, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
 
 #[derive(Clone, Debug, Serialize)]
 pub struct ProgramReport {
@@ -130,9 +130,43 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         weights: args.inputs.weights.clone(),
     };
     let report = compute(&loaded, &opts, settings)?;
-    let doc = document(&report, &loaded);
-    settings.emit(&report, &doc)?;
-    Ok(report.verdict)
+    let mut doc = document(&report, &loaded);
+    doc.command = "probe".into();
+    doc.network = (!args.blackbox).then(|| network_id(&loaded.desc));
+    doc.cases = report
+        .self_check
+        .tensors
+        .iter()
+        .map(|t| {
+            let c = Case::new(format!("self-check {}", t.name), t.verdict == Verdict::Pass)
+                .figure("max_rel_error", t.max_rel_error)
+                .figure("mismatches", t.mismatches as f64)
+                .figure("direction_mismatches", t.direction_mismatches as f64);
+            if t.verdict == Verdict::Pass {
+                c
+            } else {
+                c.failing(
+                    "self-inconsistent",
+                    "the gradient disagrees with differences of the program's own loss",
+                )
+            }
+        })
+        .collect();
+    doc.cases
+        .extend(gradient_cases("reference ", &report.tensors));
+    if let Some(l) = &report.loss {
+        let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
+        doc.cases.push(if l.matches {
+            c
+        } else {
+            c.failing(
+                "loss-mismatch",
+                l.explanation
+                    .unwrap_or("the loss differs from the reference"),
+            )
+        });
+    }
+    settings.emit(&report, doc)
 }
 
 /// How to probe a program.

@@ -5,11 +5,11 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 use plumb_audit::{ShapeAudit, Status, audit_shapes};
 use plumb_formats::{Description, TensorFile, read_tensors};
-use plumb_report::{Block, Cell, Document, Table, Tone, Verdict};
+use plumb_report::{Block, Case, Cell, Document, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ShapesArgs;
-use crate::output::{SCHEMA_VERSION, Settings, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, shape};
 
 /// The JSON report of `plumb shapes` (docs/json.md).
 #[derive(Serialize)]
@@ -41,8 +41,48 @@ pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
         args.weights.as_ref().zip(file.as_ref()),
         &audit,
     );
-    settings.emit(&report, &doc)?;
-    Ok(audit.verdict)
+    let mut doc = doc;
+    doc.command = "shapes".into();
+    doc.network = Some(network_id(&desc));
+    if file.is_some() {
+        doc.cases = cases(&audit);
+    }
+    settings.emit(&report, doc)
+}
+
+/// One case per tensor the layout expects, and per stray tensor.
+pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
+    let failing = |name: &str| {
+        audit
+            .findings
+            .iter()
+            .find(|f| {
+                f.severity == plumb_report::Severity::Error && f.tensor.as_deref() == Some(name)
+            })
+            .or_else(|| audit.findings.iter().find(|f| f.code == "other-layout"))
+    };
+    let mut out = Vec::new();
+    for l in &audit.layers {
+        for t in &l.tensors {
+            let mut c = Case::new(format!("shape {}", t.name), t.status == Status::Ok)
+                .figure("parameters", t.expected.iter().product::<usize>() as f64);
+            if t.status != Status::Ok {
+                let (code, message) = failing(&t.name).map_or(
+                    ("wrong-shape".to_string(), format!("{:?}", t.status)),
+                    |f| (f.code.clone(), f.message.clone()),
+                );
+                c = c.failing(&code, message);
+            }
+            out.push(c);
+        }
+    }
+    for s in &audit.unexpected {
+        out.push(
+            Case::new(format!("shape {}", s.name), false)
+                .failing("tensor-unexpected", "no layer uses this tensor"),
+        );
+    }
+    out
 }
 
 /// The human form of the audit.

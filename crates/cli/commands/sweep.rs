@@ -7,7 +7,7 @@ use plumb_engine::{Coord, Network, Rng};
 use plumb_fd::{CheckConfig, Method, Sample, SweepPlan, check, steps, sweep};
 use plumb_formats::write_atomically;
 use plumb_report::{
-    Block, Cell, Document, Finding, Severity, StepPanel, Table, Tone, Verdict, step_plot,
+    Block, Case, Cell, Document, Finding, Severity, StepPanel, Table, Tone, Verdict, step_plot,
 };
 use serde::Serialize;
 
@@ -15,7 +15,7 @@ use crate::args::SweepArgs;
 use crate::commands::check::precision;
 use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, WeightsSource, check_output, load};
-use crate::output::{SCHEMA_VERSION, Settings, num};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
 
 /// The most steps a sweep takes (each costs a few loss evaluations per method and coordinate).
 const MAX_STEPS: usize = 200;
@@ -136,7 +136,7 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         let mut ins = vec![args.inputs.net.as_path()];
         ins.extend(args.inputs.weights.as_deref());
         ins.extend(args.inputs.data.as_deref());
-        check_output(p, args.force, &ins)?;
+        check_output(p, settings.force, &ins)?;
     }
     let loaded = load(&args.inputs, settings.seed)?;
     let net = &loaded.desc.network;
@@ -272,9 +272,56 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         plot: args.plot.clone(),
         findings,
     };
-    let doc = document(&report, &methods, eps);
-    settings.emit(&report, &doc)?;
-    Ok(report.verdict)
+    let mut doc = document(&report, &methods, eps);
+    doc.command = "sweep".into();
+    doc.network = Some(network_id(&loaded.desc));
+    doc.cases = report
+        .coordinates
+        .iter()
+        .map(|c| {
+            let best = c
+                .methods
+                .iter()
+                .map(|m| m.best_error)
+                .fold(f64::INFINITY, f64::min);
+            let mut case = Case::new(format!("sweep {}", c.place.label()), best <= tolerance)
+                .figure("best_error", best);
+            for m in &c.methods {
+                case = case.figure(&format!("{} best_error", m.method), m.best_error);
+            }
+            if best > tolerance {
+                case.failing("no-agreement", "no method agrees at any step")
+            } else {
+                case
+            }
+        })
+        .collect();
+    if settings.html.is_some() {
+        let panels: Vec<StepPanel> = report
+            .coordinates
+            .iter()
+            .map(|c| StepPanel {
+                title: format!(
+                    "{} ({}), analytic {:.4e}",
+                    c.place.label(),
+                    c.chosen,
+                    c.analytic
+                ),
+                steps: report.steps.clone(),
+                series: c
+                    .methods
+                    .iter()
+                    .map(|m| (m.method.to_string(), m.errors.clone()))
+                    .collect(),
+                marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
+            })
+            .collect();
+        if let Ok(svg) = step_plot(&panels) {
+            let b = crate::commands::check::plot("Error against step size, per method", svg);
+            crate::commands::check::insert_before_findings(&mut doc, vec![b]);
+        }
+    }
+    settings.emit(&report, doc)
 }
 
 fn document(r: &SweepReport, methods: &[Method], eps: f64) -> Document {

@@ -16,7 +16,7 @@ use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
     DType, FileFormat, Tensor, TensorFile, disassemble, write_atomically, write_tensors,
 };
-use plumb_report::{Block, Document, Verdict};
+use plumb_report::{Block, Case, Document, Verdict};
 use serde::Serialize;
 
 use crate::args::DemoArgs;
@@ -181,8 +181,8 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         weights: pump.weights.clone(),
         weights_source: WeightsSource::File {
             path: weights_path.clone(),
-            format: FileFormat::Npz.name(),
-            dtype: "float64",
+            format: FileFormat::Npz.name().into(),
+            dtype: "float64".into(),
         },
         batch: pump.batch.clone(),
         data_source: DataSource::File {
@@ -219,7 +219,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     );
 
     let written = match &args.write {
-        Some(dir) => write_files(dir, args.force, &pump, &good, &planted)?,
+        Some(dir) => write_files(dir, settings.force, &pump, &good, &planted)?,
         None => Vec::new(),
     };
 
@@ -229,8 +229,17 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         .findings
         .iter()
         .any(|f| f.code == "transposed-matrix" && f.tensor.as_deref() == Some("layer2"));
-    let ok =
-        audit_good.verdict == Verdict::Pass && caught && computed.report.verdict == Verdict::Pass;
+    let named = bug_tensors.iter().any(|t| t.verdict == Verdict::Fail)
+        && bug_tensors
+            .iter()
+            .filter(|t| t.verdict == Verdict::Fail)
+            .all(|t| t.diagnosis.as_ref().is_some_and(|d| d.code == bug_code));
+    let ok = audit_good.verdict == Verdict::Pass
+        && caught
+        && computed.report.verdict == Verdict::Pass
+        && checked.verdict == Verdict::Pass
+        && named
+        && shipped.verdict == Verdict::Pass;
     let verdict = if ok { Verdict::Pass } else { Verdict::Fail };
 
     let report = DemoReport {
@@ -331,6 +340,8 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             .into(),
     ));
     push_all(&mut doc, check::document(&checked));
+    doc.blocks
+        .extend(check::plots(&checked, &loaded, Precision::F64));
 
     doc.push(Block::Heading(
         "6. A hand-written gradient with a bug".into(),
@@ -373,6 +384,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     for b in audit::sections(&shipped) {
         doc.push(b);
     }
+    doc.blocks.extend(audit::plots(&shipped, desc, &good));
     doc.push(Block::Findings(shipped.findings.clone()));
 
     doc.push(Block::Heading("Try it yourself".into()));
@@ -421,8 +433,76 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         },
     ));
     doc.push(Block::Caution(CAUTION.into()));
-    settings.emit(&report, &doc)?;
-    Ok(verdict)
+
+    doc.command = "demo".into();
+    doc.network = Some(crate::output::network_id(desc));
+    let case = |name: &str, ok: bool, code: &str| {
+        let c = Case::new(name, ok);
+        if ok {
+            c
+        } else {
+            c.failing(code, "the demo did not behave as expected")
+        }
+    };
+    doc.cases = vec![
+        case(
+            "the correct export fits its description",
+            audit_good.verdict == Verdict::Pass,
+            "shapes",
+        ),
+        case(
+            "the planted transposition is named",
+            caught,
+            "transposed-matrix",
+        ),
+        case(
+            "the reference gradient is finite",
+            computed.report.verdict == Verdict::Pass,
+            "non-finite-gradient",
+        ),
+        case(
+            "the reference agrees with central differences",
+            checked.verdict == Verdict::Pass,
+            "gradient-mismatch",
+        ),
+        case("the planted bug is named", named, bug_code),
+        case(
+            "the weight file passes its audit",
+            shipped.verdict == Verdict::Pass,
+            "audit",
+        ),
+    ];
+    doc.cases.extend(check::cases(&checked));
+
+    // The demo always ends with its HTML report: where --html says, beside the written files, or in
+    // the system's temporary directory.
+    let html = match (&settings.html, &args.write) {
+        (Some(p), _) => p.clone(),
+        (None, Some(dir)) => dir.join("pump-report.html"),
+        (None, None) => {
+            std::env::temp_dir().join(format!("plumb-demo-report-seed{}.html", settings.seed))
+        }
+    };
+    let force = settings.force || (settings.html.is_none() && args.write.is_none());
+    if !force && settings.html.is_none() && html.exists() {
+        anyhow::bail!(
+            "{}: the file exists; pass --force to replace the demo's files",
+            html.display()
+        );
+    }
+    let with_html = Settings {
+        html: Some(html.clone()),
+        force,
+        ..settings.clone()
+    };
+    let v = with_html.emit(&report, doc)?;
+    if !settings.quiet {
+        eprintln!(
+            "plumb: the demo's HTML report (invented data) is at {}",
+            html.display()
+        );
+    }
+    Ok(v)
 }
 
 /// Sub-reports keep their blocks but not their titles or their own closing caution.

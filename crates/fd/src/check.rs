@@ -69,6 +69,9 @@ pub struct CheckConfig {
     pub seed: u64,
     /// Overrides the precision's relative tolerance.
     pub tolerance: Option<f64>,
+    /// (k, n): check only the k-th (1-based) of n deterministic shares of the coordinates and
+    /// directions, for a check split over several jobs.
+    pub shard: Option<(usize, usize)>,
 }
 
 impl CheckConfig {
@@ -81,6 +84,7 @@ impl CheckConfig {
             directions: None,
             seed: 0,
             tolerance: None,
+            shard: None,
         }
     }
 }
@@ -238,9 +242,26 @@ pub fn check_gradient(
     }
     let default_sample = config.sample.is_none();
     let sample = config.sample.unwrap_or_else(|| Sample::default_for(net));
-    let coords = coverage::select(net, sample, config.seed).map_err(CheckError::BadSample)?;
+    let mut coords = coverage::select(net, sample, config.seed).map_err(CheckError::BadSample)?;
     let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
-    let directions = directions(net, k, config.seed);
+    let mut directions = directions(net, k, config.seed);
+    if let Some((part, of)) = config.shard {
+        // Every n-th item from the k-th: the shards are disjoint, cover everything, and do not
+        // depend on anything but the sample.
+        let mine = |i: usize| i % of == part - 1;
+        coords = coords
+            .into_iter()
+            .enumerate()
+            .filter(|(i, _)| mine(*i))
+            .map(|(_, c)| c)
+            .collect();
+        directions = directions
+            .into_iter()
+            .enumerate()
+            .filter(|(i, _)| mine(*i))
+            .map(|(_, d)| d)
+            .collect();
+    }
     let eps = config.precision.epsilon();
     let tolerance = config.tolerance.unwrap_or(config.precision.tolerance());
     let scale = analytic
