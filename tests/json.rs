@@ -159,6 +159,7 @@ struct CheckTensor {
     norm_rel_error: f64,
     max_bound: f64,
     median_bound: f64,
+    gradient_norm: f64,
     mismatches: usize,
     unreliable: usize,
     directions: usize,

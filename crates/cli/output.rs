@@ -8,8 +8,8 @@ use std::path::PathBuf;
 use anyhow::{Context, Result, bail};
 use plumb_formats::{Description, expected_tensors, write_atomically};
 use plumb_report::{
-    Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Verdict, render_html,
-    render_json, render_junit, render_markdown, render_table, use_color,
+    Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Severity, Verdict,
+    render_html, render_json, render_junit, render_markdown, render_table, use_color,
 };
 use serde::Serialize;
 
@@ -106,10 +106,14 @@ impl Settings {
                 )
             })?;
             let changes = base.compare(&doc, &findings);
+            let worse = changes
+                .iter()
+                .filter(|f| f.severity == Severity::Error)
+                .count();
             if let Some(obj) = value.as_object_mut() {
                 obj.insert(
                     "baseline".into(),
-                    serde_json::json!({"path": path, "changes": changes.len()}),
+                    serde_json::json!({"path": path, "changes": changes.len(), "worse": worse}),
                 );
                 if let Some(list) = obj.get_mut("findings").and_then(|f| f.as_array_mut()) {
                     list.extend(
@@ -119,15 +123,6 @@ impl Settings {
                     );
                 }
             }
-            let summary = if changes.is_empty() {
-                format!("nothing got worse than the baseline {}", path.display())
-            } else {
-                format!(
-                    "{} change{} for the worse since the baseline",
-                    changes.len(),
-                    if changes.len() == 1 { "" } else { "s" }
-                )
-            };
             insert_before_verdict(
                 &mut doc,
                 vec![
@@ -135,7 +130,12 @@ impl Settings {
                     Block::Findings(changes.clone()),
                 ],
             );
-            if !changes.is_empty() {
+            if worse > 0 {
+                let summary = format!(
+                    "{worse} change{} for the worse since the baseline {}",
+                    if worse == 1 { "" } else { "s" },
+                    path.display()
+                );
                 verdict = Verdict::Fail;
                 set_verdict(&mut doc, verdict, &summary);
                 if let Some(obj) = value.as_object_mut() {

@@ -182,8 +182,16 @@ pub fn cases(a: &Audit, level: Severity) -> Vec<Case> {
             .find(|h| h.layer == i.layer)
             .map_or(0, |h| h.flagged.len());
         let mut c = Case::new(format!("audit {}", i.tensor), true)
-            .figure("flagged units count", flagged as f64)
-            .figure("std over the scheme called for", i.reference_ratio);
+            .about(&i.tensor)
+            .figure("flagged_units", flagged as f64)
+            .figure("weight_std", i.std)
+            .figure("std_ratio", i.reference_ratio);
+        if let Some(f) = a.flow.iter().find(|f| f.layer == i.layer) {
+            c = c
+                .figure("activation_std", f.activation_std)
+                .figure("gradient_norm", f.gradient_norm)
+                .figure("sigma_max", f.sigma_max);
+        }
         if let Some(f) = failing(Some(&i.tensor)) {
             c = c.failing(&f.code, f.message.clone());
         }

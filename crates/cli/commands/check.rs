@@ -3,8 +3,10 @@
 use std::path::PathBuf;
 
 use anyhow::{Result, bail};
+use plumb_engine::Weights;
 use plumb_fd::{
-    CheckConfig, CheckResult, FLOOR, Method, Precision, Sample, Scope, Status, check, summarise,
+    CheckConfig, CheckResult, FLOOR, Method, Part, Precision, Sample, Scope, Status, check,
+    summarise,
 };
 use plumb_report::{
     Block, Case, Cell, Document, Finding, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
@@ -102,6 +104,8 @@ pub struct TensorReport {
     pub max_rel_error: f64,
     pub median_rel_error: f64,
     pub norm_rel_error: f64,
+    /// ‖∂J/∂Θ‖₂ over the whole tensor (the reference gradient).
+    pub gradient_norm: f64,
     pub max_bound: f64,
     pub median_bound: f64,
     pub mismatches: usize,
@@ -233,9 +237,11 @@ pub fn cases(r: &CheckReport) -> Vec<Case> {
         .iter()
         .map(|t| {
             let c = Case::new(format!("gradient {}", t.name), t.verdict == Verdict::Pass)
+                .about(&t.name)
                 .figure("max_rel_error", t.max_rel_error)
                 .figure("median_rel_error", t.median_rel_error)
                 .figure("norm_rel_error", t.norm_rel_error)
+                .figure("gradient_norm", t.gradient_norm)
                 .figure("median_bound", t.median_bound)
                 .figure("mismatches", t.mismatches as f64)
                 .figure("unreliable", t.unreliable as f64)
@@ -373,6 +379,11 @@ pub fn compute(
         samples: loaded.batch.len(),
         step: config.step,
         shard: config.shard,
+        gradient_norms: Tensors::new(&loaded.desc)
+            .parts()
+            .iter()
+            .map(|(p, _)| part_norm(&result.analytic, p))
+            .collect(),
     };
     Ok(build(&facts, &Tensors::new(&loaded.desc), &result, worst_n))
 }
@@ -385,6 +396,19 @@ pub struct RunFacts {
     pub samples: usize,
     pub step: Option<f64>,
     pub shard: Option<(usize, usize)>,
+    /// ‖∂J/∂Θ‖₂ of each tensor, over all its entries (checked or not).
+    pub gradient_norms: Vec<f64>,
+}
+
+/// The 2-norm of a gradient over a part (a tensor under the layout).
+fn part_norm(gradient: &Weights<f64>, part: &Part) -> f64 {
+    let layer = gradient.layer(part.layer);
+    let sum: f64 = layer
+        .indexed_iter()
+        .filter(|((_, col), _)| if *col == 0 { part.bias } else { part.weights })
+        .map(|(_, v)| v * v)
+        .sum();
+    sum.sqrt()
 }
 
 /// The report of a check's results (shared with `plumb merge`).
@@ -499,6 +523,11 @@ pub fn build(
             max_rel_error: s.max_rel_error,
             median_rel_error: s.median_rel_error,
             norm_rel_error: s.norm_rel_error,
+            gradient_norm: facts
+                .gradient_norms
+                .get(tensor_reports.len())
+                .copied()
+                .unwrap_or(f64::NAN),
             max_bound: s.max_bound,
             median_bound: s.median_bound,
             mismatches: s.mismatches,

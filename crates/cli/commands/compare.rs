@@ -408,7 +408,7 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
     let mut doc = document(&report);
     doc.command = "compare".into();
     doc.network = Some(network_id(&loaded.desc));
-    doc.cases = gradient_cases("", &report.tensors);
+    doc.cases = gradient_cases("gradient ", &report.tensors);
     if let Some(l) = &report.loss {
         let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
         doc.cases.push(if l.matches {
@@ -429,7 +429,8 @@ pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
     tensors
         .iter()
         .map(|t| {
-            let mut c = Case::new(format!("{prefix}{}", t.name), t.verdict == Verdict::Pass);
+            let mut c =
+                Case::new(format!("{prefix}{}", t.name), t.verdict == Verdict::Pass).about(&t.name);
             if let Some(m) = t.max_rel_error {
                 c = c.figure("max_rel_error", m);
             }

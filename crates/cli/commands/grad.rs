@@ -188,6 +188,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         .iter()
         .map(|t| {
             let c = Case::new(format!("gradient {}", t.name), t.norm.is_finite())
+                .about(&t.name)
                 .figure("norm", t.norm);
             if t.norm.is_finite() {
                 c

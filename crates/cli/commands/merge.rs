@@ -69,17 +69,27 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
     let path = first["description"].as_str().unwrap_or_default();
     let desc = Description::read(Path::new(path))?;
     let tensors = Tensors::new(&desc);
+    // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check): put
+    // each back in its place, so the merged lists are in the unsharded run's order.
     let mut coords = Vec::new();
     let mut directions = Vec::new();
-    for (_, v) in &shards {
-        for c in v["coordinates"].as_array().into_iter().flatten() {
-            coords.push(coord(c)?);
+    for (k, v) in &shards {
+        for (j, c) in v["coordinates"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .enumerate()
+        {
+            coords.push((k - 1 + j * n, coord(c)?));
         }
-        for d in v["directions"].as_array().into_iter().flatten() {
-            directions.push(direction(d)?);
+        for (j, d) in v["directions"].as_array().into_iter().flatten().enumerate() {
+            directions.push((k - 1 + j * n, direction(d)?));
         }
     }
-    coords.sort_by_key(|c: &CoordCheck| c.coord);
+    coords.sort_by_key(|(i, _)| *i);
+    directions.sort_by_key(|(i, _)| *i);
+    let coords: Vec<CoordCheck> = coords.into_iter().map(|(_, c)| c).collect();
+    let directions: Vec<DirectionCheck> = directions.into_iter().map(|(_, d)| d).collect();
     let method = Method::from_name(first["method"].as_str().unwrap_or_default())
         .context("an unknown method in the shards")?;
     let precision = if first["precision"] == "f32" {
@@ -123,6 +133,13 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
             .and_then(|r| r.split(' ').next())
             .and_then(|h| h.parse().ok()),
         shard: None,
+        // The reference gradient's norms are the whole tensor's, the same in every shard.
+        gradient_norms: first["tensors"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .map(|t| t["gradient_norm"].as_f64().unwrap_or(f64::NAN))
+            .collect(),
     };
     let mut report = build(&facts, &tensors, &result, args.worst);
     report.coordinates = Some(

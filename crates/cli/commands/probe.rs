@@ -139,6 +139,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         .iter()
         .map(|t| {
             let c = Case::new(format!("self-check {}", t.name), t.verdict == Verdict::Pass)
+                .about(&t.name)
                 .figure("max_rel_error", t.max_rel_error)
                 .figure("mismatches", t.mismatches as f64)
                 .figure("direction_mismatches", t.direction_mismatches as f64);

@@ -65,6 +65,7 @@ pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
     for l in &audit.layers {
         for t in &l.tensors {
             let mut c = Case::new(format!("shape {}", t.name), t.status == Status::Ok)
+                .about(&t.name)
                 .figure("parameters", t.expected.iter().product::<usize>() as f64);
             if t.status != Status::Ok {
                 let (code, message) = failing(&t.name).map_or(
@@ -79,6 +80,7 @@ pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
     for s in &audit.unexpected {
         out.push(
             Case::new(format!("shape {}", s.name), false)
+                .about(&s.name)
                 .failing("tensor-unexpected", "no layer uses this tensor"),
         );
     }

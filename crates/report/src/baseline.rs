@@ -1,15 +1,18 @@
 //! Baselines: the figures of a passing run, recorded, so that a later run fails when a figure got
 //! worse, a new finding appeared, or the network changed shape — and says exactly what changed.
 //!
-//! A figure is worse when it is an error or a count that grew (`*error*`, `*bound*`, mismatches,
-//! unreliable, dead or saturated units, …) and it grew tenfold over its recorded value (plus an
-//! absolute slack of 1e-12 for values at rounding level), or crossed one of the bands 1e-7, 1e-4,
-//! 1e-2 of relative error [practice] upward, or a count rose at all.
+//! An error figure (`*error*`, `*bound*`, `*residual*`) is worse when it grew tenfold over its
+//! recorded value (plus an absolute slack of 1e-12 for values at rounding level) or, for a relative
+//! error, crossed one of the bands 1e-7, 1e-4, 1e-2 upward [practice]; a count of things gone wrong
+//! (`*mismatches`, `unreliable`, `*_units`) is worse when it rose at all. Any other figure (a
+//! gradient norm, a weight's standard deviation) is a property of the run: a change beyond one
+//! part in a million is a warning that this is not the baseline's run, not a failure.
 
 use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
 
+use crate::document::figure;
 use crate::{Document, Finding, Severity};
 
 /// What identifies the network a run was made on.
@@ -83,24 +86,42 @@ impl Baseline {
             ));
             return out;
         }
+        let mut same_network = true;
         if let (Some(old), Some(new)) = (&self.network, &doc.network) {
-            if old.shapes != new.shapes {
-                let describe = |s: &[(String, Vec<usize>)]| {
-                    s.iter()
-                        .map(|(n, sh)| format!("{n} {sh:?}"))
-                        .collect::<Vec<_>>()
-                        .join(", ")
-                };
-                out.push(Finding::new(
-                    "baseline-shape-changed",
-                    Severity::Error,
-                    format!(
-                        "the network changed shape: it was {}, it is {}",
-                        describe(&old.shapes),
-                        describe(&new.shapes)
+            let shape_of = |list: &[(String, Vec<usize>)], name: &str| {
+                list.iter().find(|(n, _)| n == name).map(|(_, s)| s.clone())
+            };
+            let mut names: Vec<&String> = old.shapes.iter().map(|(n, _)| n).collect();
+            for (n, _) in &new.shapes {
+                if !names.contains(&n) {
+                    names.push(n);
+                }
+            }
+            for name in names {
+                let message = match (shape_of(&old.shapes, name), shape_of(&new.shapes, name)) {
+                    (Some(a), Some(b)) if a == b => continue,
+                    (Some(a), Some(b)) => format!(
+                        "the network changed shape: {name} was {} in the baseline and is {} now",
+                        tuple(&a),
+                        tuple(&b)
                     ),
-                ));
-            } else if old.hash != new.hash {
+                    (Some(a), None) => format!(
+                        "the network changed shape: {name} ({}) is in the baseline and no longer in the network",
+                        tuple(&a)
+                    ),
+                    (None, Some(b)) => format!(
+                        "the network changed shape: {name} ({}) is new since the baseline",
+                        tuple(&b)
+                    ),
+                    (None, None) => continue,
+                };
+                same_network = false;
+                out.push(
+                    Finding::new("baseline-shape-changed", Severity::Error, message).tensor(name),
+                );
+            }
+            if same_network && old.hash != new.hash {
+                same_network = false;
                 out.push(Finding::new(
                     "baseline-description-changed",
                     Severity::Error,
@@ -112,46 +133,65 @@ impl Baseline {
             let Some(old) = self.cases.get(&c.name) else {
                 continue;
             };
+            let about = |f: Finding| match &c.tensor {
+                Some(t) => f.tensor(t),
+                None => f,
+            };
             if old.passed && !c.passed {
-                out.push(
-                    Finding::new(
-                        "baseline-regressed",
-                        Severity::Error,
-                        format!(
-                            "{} passed in the baseline and fails now: {}",
-                            c.name, c.message
-                        ),
-                    )
-                    .tensor(&c.name),
-                );
+                let code = c.code.as_deref().unwrap_or("failed");
+                out.push(about(Finding::new(
+                    "baseline-regressed",
+                    Severity::Error,
+                    format!("{} passed in the baseline and fails now ({code})", c.name),
+                )));
             }
             for (name, &now) in &c.figures {
                 let Some(&then) = old.figures.get(name) else {
                     continue;
                 };
-                if let Some(why) = worse(name, then, now) {
-                    out.push(
-                        Finding::new(
-                            "baseline-worse",
-                            Severity::Error,
-                            format!("{}: {name} went from {then:e} to {now:e} ({why})", c.name),
-                        )
-                        .tensor(&c.name)
-                        .figure("figure", name)
-                        .figure("baseline", then)
-                        .figure("now", now),
-                    );
+                let Some((severity, why)) = change(name, then, now) else {
+                    continue;
+                };
+                // A property of another network is bound to differ; the shape finding says why.
+                if severity < Severity::Error && !same_network {
+                    continue;
                 }
+                let code = if severity == Severity::Error {
+                    "baseline-worse"
+                } else {
+                    "baseline-drifted"
+                };
+                out.push(about(
+                    Finding::new(
+                        code,
+                        severity,
+                        format!(
+                            "`{name}` of {} went from {} to {} ({why})",
+                            c.name,
+                            figure(then),
+                            figure(now)
+                        ),
+                    )
+                    .figure("case", &c.name)
+                    .figure("figure", name)
+                    .figure("baseline", then)
+                    .figure("now", now),
+                ));
             }
         }
         let known = &self.findings;
         for (f, key) in findings.iter().zip(keys(findings)) {
             if f.severity >= Severity::Warning && !known.contains(&key) {
+                let gist = f.message.split("; ").next().unwrap_or_default();
                 let mut n = Finding::new(
                     "baseline-new-finding",
                     Severity::Error,
-                    format!("a new {} finding `{}`: {}", f.severity, f.code, f.message),
-                );
+                    format!(
+                        "a new {} `{}` the baseline did not have: {gist}",
+                        f.severity, f.code
+                    ),
+                )
+                .figure("code", &f.code);
                 if let Some(t) = &f.tensor {
                     n = n.tensor(t);
                 }
@@ -169,38 +209,83 @@ fn keys(findings: &[Finding]) -> Vec<String> {
         .collect()
 }
 
-/// Whether a figure got worse, and how.
-fn worse(name: &str, then: f64, now: f64) -> Option<String> {
-    let is_count = [
-        "mismatch",
-        "unreliable",
-        "dead",
-        "saturated",
-        "count",
-        "errors",
-        "warnings",
-    ]
-    .iter()
-    .any(|k| name.contains(k));
-    let is_error = name.contains("error") || name.contains("bound") || name.contains("residual");
-    if !now.is_finite() && then.is_finite() {
-        return Some("it is no longer finite".into());
+/// What a figure measures, which decides what counts as a change for the worse.
+#[derive(Debug, PartialEq)]
+enum Kind {
+    /// Things that went wrong (mismatches, unreliable coordinates, flagged units): any rise is worse.
+    Count,
+    /// An error or an error bound: worse when it grew tenfold or crossed a band.
+    Error,
+    /// A property of the network, weights and data (a gradient norm, a standard deviation): a
+    /// change is not worse in itself but means the run is not the baseline's run.
+    Property,
+}
+
+fn kind(name: &str) -> Kind {
+    if name.ends_with("mismatches") || name == "unreliable" || name.ends_with("_units") {
+        Kind::Count
+    } else if name.contains("error") || name.contains("bound") || name.contains("residual") {
+        Kind::Error
+    } else {
+        Kind::Property
     }
-    if is_count {
-        return (now > then).then(|| "the count rose".into());
+}
+
+/// Relative change beyond which a property counts as changed: far above the run-to-run noise of
+/// a parallel sum in f64, far below any change of weights or data that matters.
+const PROPERTY_TOLERANCE: f64 = 1e-6;
+
+/// Whether a figure changed for the worse (an error) or changed at all (a warning), and how.
+fn change(name: &str, then: f64, now: f64) -> Option<(Severity, String)> {
+    let worse = |why: String| Some((Severity::Error, why));
+    if then.is_finite() && !now.is_finite() {
+        return worse("it is no longer finite".into());
     }
-    if is_error {
-        if now > 10.0 * then + 1e-12 {
-            return Some(format!(
-                "{:.1}× the baseline",
-                now / then.max(f64::MIN_POSITIVE)
-            ));
+    match kind(name) {
+        Kind::Count => (now > then).then(|| (Severity::Error, "the count rose".into())),
+        Kind::Error => {
+            if now > 10.0 * then + 1e-12 {
+                let ratio = now / then.max(f64::MIN_POSITIVE);
+                return worse(format!("{}× the baseline; 10× is allowed", figure(ratio)));
+            }
+            let bands = if name.contains("rel_error") {
+                &BANDS[..]
+            } else {
+                &[]
+            };
+            bands
+                .iter()
+                .find(|&&b| then <= b && now > b)
+                .and_then(|b| worse(format!("it crossed the {b:e} band")))
         }
-        if let Some(b) = BANDS.iter().find(|&&b| then <= b && now > b) {
-            return Some(format!("it crossed {b:e}"));
+        Kind::Property => {
+            let rel = (now - then).abs() / then.abs().max(now.abs()).max(f64::MIN_POSITIVE);
+            (rel > PROPERTY_TOLERANCE).then(|| {
+                (
+                    Severity::Warning,
+                    format!(
+                        "{:+.3}%: the weights, data or settings differ from the baseline's",
+                        100.0 * (now - then) / then.abs().max(f64::MIN_POSITIVE)
+                    ),
+                )
+            })
         }
     }
-    None
+}
+
+/// A shape as a tuple, `(3, 6)`.
+fn tuple(shape: &[usize]) -> String {
+    match shape {
+        [n] => format!("({n},)"),
+        _ => format!(
+            "({})",
+            shape
+                .iter()
+                .map(|d| d.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ),
+    }
 }
 
 #[cfg(test)]
@@ -217,6 +302,7 @@ mod tests {
         });
         d.cases.push(
             Case::new("layer1", true)
+                .about("layer1")
                 .figure("max_rel_error", err)
                 .figure("mismatches", 0.0),
         );
@@ -231,12 +317,19 @@ mod tests {
         let f = b.compare(&doc(2e-9, 3), &[]);
         assert_eq!(f[0].code, "baseline-worse");
         assert!(
-            f[0].message.contains("layer1: max_rel_error"),
+            f[0].message
+                .contains("`max_rel_error` of layer1 went from 1.000e-10 to 2.000e-9"),
             "{}",
             f[0].message
         );
+        assert_eq!(f[0].tensor.as_deref(), Some("layer1"));
         let f = b.compare(&doc(1e-10, 4), &[]);
         assert_eq!(f[0].code, "baseline-shape-changed");
+        assert_eq!(f[0].tensor.as_deref(), Some("layer1"));
+        assert!(
+            f[0].message
+                .contains("was (3, 5) in the baseline and is (4, 5) now")
+        );
         let new = [Finding::new("gradient-mismatch", Severity::Error, "x").tensor("layer1")];
         assert_eq!(
             b.compare(&doc(1e-10, 3), &new)[0].code,

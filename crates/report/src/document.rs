@@ -101,6 +101,8 @@ pub struct Case {
     pub code: Option<String>,
     /// The figures a baseline records and compares, by name.
     pub figures: std::collections::BTreeMap<String, f64>,
+    /// The tensor the case is about, if it is about one.
+    pub tensor: Option<String>,
 }
 
 impl Case {
@@ -111,7 +113,14 @@ impl Case {
             message: String::new(),
             code: None,
             figures: Default::default(),
+            tensor: None,
         }
+    }
+
+    /// The case is about this tensor (a baseline's findings then name it).
+    pub fn about(mut self, tensor: &str) -> Case {
+        self.tensor = Some(tensor.to_string());
+        self
     }
 
     pub fn failing(mut self, code: &str, message: impl Into<String>) -> Case {
@@ -160,5 +169,41 @@ impl Document {
 
     pub fn push(&mut self, block: Block) {
         self.blocks.push(block);
+    }
+}
+
+/// A figure in a message: integers as they are, otherwise four significant digits, in exponent
+/// form when very large or small.
+pub(crate) fn figure(v: f64) -> String {
+    if v.is_finite() && v.fract() == 0.0 && v.abs() < 1e9 {
+        format!("{}", v as i64)
+    } else if v.is_finite() && v != 0.0 && !(1e-3..1e6).contains(&v.abs()) {
+        format!("{v:.3e}")
+    } else if v.is_finite() {
+        let decimals = (3 - v.abs().log10().floor() as i32).max(0) as usize;
+        let text = format!("{v:.decimals$}");
+        if text.contains('.') {
+            text.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            text
+        }
+    } else {
+        format!("{v}")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::figure;
+
+    #[test]
+    fn figures_keep_four_significant_digits() {
+        assert_eq!(figure(3.0), "3");
+        assert_eq!(figure(0.0099), "0.0099");
+        assert_eq!(figure(0.123456), "0.1235");
+        assert_eq!(figure(12.5), "12.5");
+        assert_eq!(figure(1.605e-15), "1.605e-15");
+        assert_eq!(figure(6.169e12), "6.169e12");
+        assert_eq!(figure(f64::NAN), "NaN");
     }
 }

@@ -4,6 +4,7 @@
 
 use std::io::{self, Write};
 
+use crate::document::figure;
 use crate::{Block, Document};
 
 /// Writes a document's cases as a JUnit XML report.
@@ -56,34 +57,44 @@ pub fn render_junit(doc: &Document, out: &mut impl Write) -> io::Result<()> {
                 &doc.command
             }
         );
-        if c.passed {
+        let figures: Vec<String> = c
+            .figures
+            .iter()
+            .map(|(k, v)| format!("{k} = {}", figure(*v)))
+            .collect();
+        if c.passed && figures.is_empty() {
             writeln!(
                 out,
                 r#"    <testcase classname="{}" name="{}" time="0"/>"#,
                 xml(&classname),
                 xml(&c.name)
             )?;
-        } else {
-            writeln!(
-                out,
-                r#"    <testcase classname="{}" name="{}" time="0">"#,
-                xml(&classname),
-                xml(&c.name)
-            )?;
-            let figures: Vec<String> = c
-                .figures
-                .iter()
-                .map(|(k, v)| format!("{k} = {v:e}"))
-                .collect();
+            continue;
+        }
+        writeln!(
+            out,
+            r#"    <testcase classname="{}" name="{}" time="0">"#,
+            xml(&classname),
+            xml(&c.name)
+        )?;
+        if !c.passed {
             writeln!(
                 out,
                 r#"      <failure type="{}" message="{}">{}</failure>"#,
                 xml(c.code.as_deref().unwrap_or("failed")),
                 xml(&c.message),
+                xml(&c.message)
+            )?;
+        }
+        if !figures.is_empty() {
+            // The figures behind the case, for whoever opens it in the CI's test view.
+            writeln!(
+                out,
+                "      <system-out>{}</system-out>",
                 xml(&figures.join("\n"))
             )?;
-            writeln!(out, "    </testcase>")?;
         }
+        writeln!(out, "    </testcase>")?;
     }
     if let Some(v) = doc.verdict() {
         writeln!(out, "    <system-out>verdict: {}</system-out>", v.name())?;
