@@ -203,6 +203,7 @@ struct Check {
     description: String,
     weights: WeightsSource,
     data: DataSource,
+    seed: u64,
     samples: usize,
     method: String,
     step_rule: String,

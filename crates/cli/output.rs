@@ -8,8 +8,8 @@ use std::path::PathBuf;
 use anyhow::{Context, Result, bail};
 use plumb_formats::{Description, expected_tensors, write_atomically};
 use plumb_report::{
-    Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Severity, Verdict,
-    render_html, render_json, render_junit, render_markdown, render_table, use_color,
+    BASELINE_VERSION, Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Severity,
+    Verdict, render_html, render_json, render_junit, render_markdown, render_table, use_color,
 };
 use serde::Serialize;
 
@@ -105,6 +105,23 @@ impl Settings {
                     path.display()
                 )
             })?;
+            if base.command != doc.command {
+                bail!(
+                    "{}: the baseline was recorded by `plumb {}`, and this run is `plumb {}`: \
+                     give a baseline this command recorded (--save-baseline)",
+                    path.display(),
+                    base.command,
+                    doc.command
+                );
+            }
+            if base.plumb_baseline != BASELINE_VERSION {
+                bail!(
+                    "{}: a baseline of format {}, and this plumb reads format {BASELINE_VERSION}: \
+                     record it again with --save-baseline",
+                    path.display(),
+                    base.plumb_baseline
+                );
+            }
             let changes = base.compare(&doc, &findings);
             let worse = changes
                 .iter()

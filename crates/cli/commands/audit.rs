@@ -261,7 +261,7 @@ pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) ->
         if let Ok(svg) = histogram(
             &format!("{} weights (bias aside)", i.tensor),
             &values,
-            40,
+            0,
             Some((&label, &density)),
         ) {
             out.push(plot(

@@ -37,6 +37,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
         "description",
         "weights",
         "data",
+        "seed",
         "samples",
         "method",
         "step_rule",
@@ -126,6 +127,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
         weights: serde_json::from_value(first["weights"].clone())
             .context("the shards' `weights`")?,
         data: serde_json::from_value(first["data"].clone()).context("the shards' `data`")?,
+        seed: first["seed"].as_u64().unwrap_or(0),
         samples: first["samples"].as_u64().unwrap_or(0) as usize,
         step: first["step_rule"]
             .as_str()

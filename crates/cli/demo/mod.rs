@@ -287,7 +287,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         pump.batch.len()
     )));
     doc.push(Block::Heading("1. The network description".into()));
-    doc.push(Block::Text(pump::DESCRIPTION.trim_end().to_string()));
+    doc.push(Block::Code(pump::DESCRIPTION.trim_end().to_string()));
 
     doc.push(Block::Heading(
         "2. Dimension audit of the exported weights".into(),
@@ -422,7 +422,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         p("pump-weights.npz"),
         p("pump-data.csv")
     ));
-    doc.push(Block::Text(steps));
+    doc.push(Block::Code(steps));
     doc.push(Block::Verdict(
         verdict,
         if ok {

@@ -72,6 +72,8 @@ pub enum Block {
     Heading(String),
     /// A paragraph of prose.
     Text(String),
+    /// Lines shown exactly as they are, in a fixed-width font: a file's text, commands to run.
+    Code(String),
     /// "name: value" lines.
     Facts(Vec<(String, String)>),
     Table(Table),

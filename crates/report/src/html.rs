@@ -14,7 +14,7 @@ th{background:#f5f5f5}td.num{text-align:right;font-variant-numeric:tabular-nums}
 .good{color:#0b6b2f}.bad{color:#b00}.warn{color:#8a5a00}.dim{color:#777}\
 dl{display:grid;grid-template-columns:max-content auto;gap:.15rem 1rem}dt{color:#555}dd{margin:0}\
 .finding{margin:.3rem 0;padding:.35rem .6rem;border-left:4px solid #bbb}.finding.error{border-color:#c00}.finding.warning{border-color:#d90}\
-code{background:#f3f3f3;padding:0 .25rem;border-radius:.2rem}pre{background:#f7f7f7;padding:.6rem;overflow-x:auto}\
+code{background:#f3f3f3;padding:0 .25rem;border-radius:.2rem}pre{background:#f7f7f7;padding:.6rem;overflow-x:auto;white-space:pre-wrap;overflow-wrap:anywhere}\
 figure{margin:1rem 0}figcaption{color:#555;font-size:.9rem}figure svg{max-width:100%;height:auto}\
 .caution{background:#fff6e0;border-left:4px solid #d90;padding:.5rem .8rem}\
 @media print{body{margin:0;max-width:none}h2{break-after:avoid}figure,table{break-inside:avoid}}";
@@ -52,13 +52,8 @@ pub fn render_html(doc: &Document, out: &mut impl Write) -> io::Result<()> {
     for b in &doc.blocks {
         match b {
             Block::Heading(h) => writeln!(out, "<h2>{}</h2>", esc(h))?,
-            Block::Text(t) => {
-                if t.lines().count() > 3 && t.lines().all(|l| l.len() < 110) && t.contains('\n') {
-                    writeln!(out, "<pre>{}</pre>", esc(t))?
-                } else {
-                    writeln!(out, "<p>{}</p>", esc(t))?
-                }
-            }
+            Block::Text(t) => writeln!(out, "<p>{}</p>", esc(t))?,
+            Block::Code(t) => writeln!(out, "<pre>{}</pre>", esc(t))?,
             Block::Facts(f) => {
                 writeln!(out, "<dl>")?;
                 for (k, v) in f {

@@ -65,6 +65,15 @@ pub fn render_table(doc: &Document, out: &mut impl Write, color: bool) -> io::Re
                     writeln!(out, "{line}")?;
                 }
             }
+            Block::Code(t) => {
+                for line in t.trim_end().lines() {
+                    if line.is_empty() {
+                        writeln!(out)?;
+                    } else {
+                        writeln!(out, "  {line}")?;
+                    }
+                }
+            }
             Block::Facts(facts) => {
                 let w = facts.iter().map(|(k, _)| width(k)).max().unwrap_or(0);
                 for (k, v) in facts {
@@ -125,6 +134,7 @@ pub fn render_markdown(doc: &Document, out: &mut impl Write) -> io::Result<()> {
         match block {
             Block::Heading(h) => writeln!(out, "## {h}")?,
             Block::Text(t) => writeln!(out, "{t}")?,
+            Block::Code(t) => writeln!(out, "```\n{}\n```", t.trim_end())?,
             Block::Facts(facts) => {
                 for (k, v) in facts {
                     writeln!(out, "- **{}**: {}", md(k), md(v))?;
