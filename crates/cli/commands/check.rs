@@ -266,29 +266,12 @@ pub fn cases(r: &CheckReport) -> Vec<Case> {
 /// The check's pictures: relative error per tensor against the practice bands, and the V-curve of
 /// the worst coordinates (shared with the demo).
 pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Block> {
-    let mut out = Vec::new();
-    let series: Vec<StripSeries> = r
-        .rel_errors
-        .iter()
-        .map(|(n, v)| StripSeries {
-            label: n.clone(),
-            values: v.clone(),
-        })
-        .collect();
-    if let Ok(svg) = error_strip(
+    let mut out: Vec<Block> = strip_plot(
         "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
-        &series,
-        &[
-            (1e-7, "good (smooth)"),
-            (1e-4, "suspicious"),
-            (1e-2, "almost surely wrong"),
-        ],
-    ) {
-        out.push(plot(
-            "Relative error per tensor; the bands are common practice, not a standard.",
-            svg,
-        ));
-    }
+        &r.rel_errors,
+    )
+    .into_iter()
+    .collect();
     let net = &loaded.desc.network;
     let coords: Vec<plumb_engine::Coord> = r
         .worst
@@ -344,6 +327,27 @@ pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Bloc
         out.push(plot("Error against step size for the worst coordinates: truncation falls as h shrinks until round-off (ε/h) takes over.", svg));
     }
     out
+}
+
+/// Relative errors per tensor on a log axis against the practice bands (check, compare, probe).
+pub fn strip_plot(title: &str, rel_errors: &[(String, Vec<f64>)]) -> Option<Block> {
+    let series: Vec<StripSeries> = rel_errors
+        .iter()
+        .map(|(n, v)| StripSeries {
+            label: n.clone(),
+            values: v.clone(),
+        })
+        .collect();
+    let bands = [
+        (1e-7, "good (smooth)"),
+        (1e-4, "suspicious"),
+        (1e-2, "almost surely wrong"),
+    ];
+    let svg = error_strip(title, &series, &bands).ok()?;
+    Some(plot(
+        "Relative error per tensor; the bands are common practice, not a standard.",
+        svg,
+    ))
 }
 
 pub fn plot(title: &str, svg: String) -> Block {

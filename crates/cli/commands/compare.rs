@@ -11,7 +11,7 @@ use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, 
 use serde::Serialize;
 
 use crate::args::CompareArgs;
-use crate::commands::check::verdict_cell;
+use crate::commands::check::{strip_plot, verdict_cell};
 use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
@@ -51,6 +51,9 @@ pub struct TensorReport {
     pub scale: Option<f64>,
     pub worst: Option<Worst>,
     pub diagnosis: Option<DiagnosisReport>,
+    /// Every entry's relative error (for the HTML plot; not in JSON).
+    #[serde(skip)]
+    pub rel_errors: Vec<f64>,
 }
 
 /// The complex-step certification of the reference.
@@ -232,6 +235,10 @@ fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> T
             residual: d.residual.is_finite().then_some(d.residual),
             factor: d.factor,
         }),
+        rel_errors: j
+            .comparison
+            .as_ref()
+            .map_or_else(Vec::new, |c| c.rel_errors.clone()),
     }
 }
 
@@ -453,6 +460,22 @@ pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
         .collect()
 }
 
+/// The outside gradient's relative error per entry, per tensor, against the practice bands.
+pub fn error_plot(tensors: &[TensorReport]) -> Option<Block> {
+    let series: Vec<(String, Vec<f64>)> = tensors
+        .iter()
+        .filter(|t| !t.rel_errors.is_empty())
+        .map(|t| (t.name.clone(), t.rel_errors.clone()))
+        .collect();
+    if series.is_empty() {
+        return None;
+    }
+    strip_plot(
+        "relative error |outside − reference| / max(|outside|, |reference|, floor) of every entry",
+        &series,
+    )
+}
+
 fn document(r: &CompareReport) -> Document {
     let mut doc = Document::new("plumb compare — an outside gradient against the reference");
     let mut facts = vec![
@@ -487,6 +510,9 @@ fn document(r: &CompareReport) -> Document {
     }
     doc.push(Block::Facts(facts));
     doc.push(Block::Table(tensor_table(&r.tensors)));
+    if let Some(p) = error_plot(&r.tensors) {
+        doc.push(p);
+    }
     doc.push(Block::Findings(r.findings.clone()));
     let bad = r
         .tensors

@@ -20,8 +20,8 @@ use serde::Serialize;
 use crate::args::ProbeArgs;
 use crate::commands::check::{method, step, verdict_cell};
 use crate::commands::compare::{
-    Certification, LossReport, TensorReport, certification_text, certify, gradient_cases,
-    judge_gradient, judge_loss, layout_tensors, tensor_table,
+    Certification, LossReport, TensorReport, certification_text, certify, error_plot,
+    gradient_cases, judge_gradient, judge_loss, layout_tensors, tensor_table,
 };
 use crate::commands::locate::Tensors;
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
@@ -722,6 +722,9 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             "3. Its gradient against the reference gradient".into(),
         ));
         doc.push(Block::Table(tensor_table(&r.tensors)));
+        if let Some(p) = error_plot(&r.tensors) {
+            doc.push(p);
+        }
     }
     doc.push(Block::Findings(r.findings.clone()));
     let summary = match r.verdict {

@@ -67,6 +67,8 @@ pub struct TensorComparison {
     pub worst_reference: f64,
     /// Every entry within `tolerance` (relative, with the floor).
     pub matches: bool,
+    /// Every entry's relative error, in the tensor's C order (for plots).
+    pub rel_errors: Vec<f64>,
 }
 
 /// Compares two tensors of the same shape. `tolerance` is the largest relative error that counts as
@@ -122,6 +124,7 @@ pub fn compare_tensor(outside: &Named, reference: &Named, tolerance: f64) -> Ten
         worst_outside: outside.data.get(worst).copied().unwrap_or(0.0),
         worst_reference: reference.data.get(worst).copied().unwrap_or(0.0),
         matches: max_rel <= tolerance && outside.data.iter().all(|v| v.is_finite()),
+        rel_errors: rel,
     }
 }
 

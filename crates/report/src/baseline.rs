@@ -179,6 +179,23 @@ impl Baseline {
                 ));
             }
         }
+        if same_network {
+            for name in self.cases.keys() {
+                if !doc.cases.iter().any(|c| &c.name == name) {
+                    out.push(
+                        Finding::new(
+                            "baseline-case-missing",
+                            Severity::Warning,
+                            format!(
+                                "{name} is in the baseline and was not checked now (another --sample, \
+                                 --directions or layout?)"
+                            ),
+                        )
+                        .figure("case", name),
+                    );
+                }
+            }
+        }
         let known = &self.findings;
         for (f, key) in findings.iter().zip(keys(findings)) {
             if f.severity >= Severity::Warning && !known.contains(&key) {
@@ -338,5 +355,62 @@ mod tests {
         // A band crossed upward is worse even when under tenfold.
         let b = Baseline::record(&doc(0.9e-7, 3), &[]);
         assert_eq!(b.compare(&doc(2e-7, 3), &[])[0].code, "baseline-worse");
+    }
+
+    fn with(d: Document, case: Case) -> Document {
+        let mut d = d;
+        d.cases[0] = case;
+        d
+    }
+
+    #[test]
+    fn counts_properties_and_cases_each_follow_their_rule() {
+        let case = |passed: bool, mismatches: f64, norm: f64| {
+            Case::new("layer1", passed)
+                .about("layer1")
+                .figure("max_rel_error", 1e-10)
+                .figure("mismatches", mismatches)
+                .figure("gradient_norm", norm)
+        };
+        let b = Baseline::record(&with(doc(1e-10, 3), case(true, 0.0, 0.25)), &[]);
+        // A count may not rise at all.
+        let f = b.compare(&with(doc(1e-10, 3), case(true, 1.0, 0.25)), &[]);
+        assert_eq!(f.len(), 1, "{f:?}");
+        assert_eq!(
+            (f[0].code.as_str(), f[0].severity),
+            ("baseline-worse", Severity::Error)
+        );
+        // A property that moved is a warning, not a failure; within one part in 10⁶ it is silent.
+        let f = b.compare(&with(doc(1e-10, 3), case(true, 0.0, 0.26)), &[]);
+        assert_eq!(f.len(), 1, "{f:?}");
+        assert_eq!(
+            (f[0].code.as_str(), f[0].severity),
+            ("baseline-drifted", Severity::Warning)
+        );
+        assert!(
+            b.compare(
+                &with(doc(1e-10, 3), case(true, 0.0, 0.25 * (1.0 + 1e-8))),
+                &[]
+            )
+            .is_empty()
+        );
+        // A case that passed and fails now.
+        let failing = case(false, 0.0, 0.25).failing("gradient-mismatch", "wrong");
+        let f = b.compare(&with(doc(1e-10, 3), failing), &[]);
+        assert_eq!(f[0].code, "baseline-regressed", "{f:?}");
+        assert!(
+            f[0].message.contains("(gradient-mismatch)"),
+            "{}",
+            f[0].message
+        );
+        // A case the run no longer has.
+        let mut other = doc(1e-10, 3);
+        other.cases[0].name = "layer9".into();
+        let f = b.compare(&other, &[]);
+        assert!(f.iter().any(|f| f.code == "baseline-case-missing"), "{f:?}");
+        // Another command's baseline says so.
+        let mut other = doc(1e-10, 3);
+        other.command = "probe".into();
+        assert_eq!(b.compare(&other, &[])[0].code, "baseline-other-command");
     }
 }

@@ -19,6 +19,11 @@ figure{margin:1rem 0}figcaption{color:#555;font-size:.9rem}figure svg{max-width:
 .caution{background:#fff6e0;border-left:4px solid #d90;padding:.5rem .8rem}\
 @media print{body{margin:0;max-width:none}h2{break-after:avoid}figure,table{break-inside:avoid}}";
 
+/// The closing caution of a page whose command gave none of its own.
+const GENERAL_CAUTION: &str = "This report says only what plumb checked. A pass is not a safety \
+     assessment: a model that decides about machinery, vehicles, medicine or people needs the \
+     validation, standards and qualified review that apply there.";
+
 /// Writes a document as one self-contained HTML page.
 pub fn render_html(doc: &Document, out: &mut impl Write) -> io::Result<()> {
     writeln!(
@@ -81,6 +86,15 @@ pub fn render_html(doc: &Document, out: &mut impl Write) -> io::Result<()> {
         writeln!(
             out,
             "<p class=\"dim\">Exit code 1: a finding of severity error.</p>"
+        )?;
+    }
+    // A page may be attached to a release and read without the command that made it: it always
+    // says what a pass does not mean.
+    if !doc.blocks.iter().any(|b| matches!(b, Block::Caution(_))) {
+        writeln!(
+            out,
+            "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+            esc(GENERAL_CAUTION)
         )?;
     }
     writeln!(out, "</body>\n</html>")

@@ -224,7 +224,8 @@ const STRIP_FLOOR: f64 = 1e-18;
 ///
 /// Dots are spread across the column by their index (not at random) so the same report always
 /// draws the same picture. Values that are zero, negative or not finite cannot be placed on a log
-/// axis and are left out; positive values below 1e-18 are drawn at 1e-18.
+/// axis and are left out; positive values below 1e-18 are drawn at 1e-18. A column of more than
+/// 1500 values shows its worst 100 and an even sample of the rest by rank.
 pub fn error_strip(
     title: &str,
     series: &[StripSeries],
@@ -240,7 +241,7 @@ pub fn error_strip(
                 .filter(|v| v.is_finite() && *v > 0.0)
                 .map(|v| v.max(STRIP_FLOOR))
                 .collect();
-            (shorten(&s.label, 28), kept)
+            (shorten(&s.label, 28), thinned(kept))
         })
         .collect();
     let mut bands: Vec<(f64, &str)> = bands
@@ -266,6 +267,31 @@ pub fn error_strip(
     render_svg(height, |root| {
         draw_strip(root, title, &columns, &bands, upright, label_area)
     })
+}
+
+/// At most this many dots per strip column: beyond it the SVG grows by megabytes and shows no more.
+const STRIP_DOTS: usize = 1500;
+
+/// A column of more than [`STRIP_DOTS`] values cut down to that many: the largest 100 (the ones a
+/// reader looks for, the worst included, so the column's bar stays exact), then every k-th of the
+/// rest by rank, so the spread keeps its shape. The kept values stay in their original order.
+fn thinned(values: Vec<f64>) -> Vec<f64> {
+    const TOP: usize = 100;
+    if values.len() <= STRIP_DOTS {
+        return values;
+    }
+    let mut order: Vec<usize> = (0..values.len()).collect();
+    order.sort_by(|&a, &b| values[b].total_cmp(&values[a]));
+    let stride = (values.len() - TOP).div_ceil(STRIP_DOTS - TOP);
+    let mut keep = vec![false; values.len()];
+    for (rank, &i) in order.iter().enumerate() {
+        keep[i] = rank < TOP || (rank - TOP).is_multiple_of(stride);
+    }
+    values
+        .into_iter()
+        .zip(keep)
+        .filter_map(|(v, k)| k.then_some(v))
+        .collect()
 }
 
 fn draw_strip<DB: DrawingBackend>(
@@ -786,6 +812,26 @@ fn draw_histogram<DB: DrawingBackend>(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_long_column_keeps_its_worst_values_and_its_spread() {
+        let values: Vec<f64> = (0..100_000)
+            .map(|i| ((i * 7919) % 100_000) as f64)
+            .collect();
+        let kept = thinned(values.clone());
+        assert!(
+            kept.len() <= STRIP_DOTS && kept.len() > STRIP_DOTS - 50,
+            "{}",
+            kept.len()
+        );
+        let max = kept.iter().copied().fold(0.0, f64::max);
+        assert_eq!(max, 99_999.0);
+        assert_eq!(kept.iter().filter(|&&v| v >= 99_900.0).count(), 100);
+        // The rest is spread over the whole range: a tenth of it below 10% of the largest value.
+        let low = kept.iter().filter(|&&v| v < 10_000.0).count() as f64 / kept.len() as f64;
+        assert!((0.08..0.12).contains(&low), "{low}");
+        assert_eq!(thinned(vec![3.0, 1.0, 2.0]), vec![3.0, 1.0, 2.0]);
+    }
 
     #[test]
     fn ticks_stay_short_at_any_scale() {
