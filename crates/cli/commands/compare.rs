@@ -416,19 +416,22 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
     doc.command = "compare".into();
     doc.network = Some(network_id(&loaded.desc));
     doc.cases = gradient_cases("gradient ", &report.tensors);
-    if let Some(l) = &report.loss {
-        let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
-        doc.cases.push(if l.matches {
-            c
-        } else {
-            c.failing(
-                "loss-mismatch",
-                l.explanation
-                    .unwrap_or("the loss differs from the reference"),
-            )
-        });
-    }
+    doc.cases.extend(report.loss.as_ref().map(loss_case));
     settings.emit(&report, doc)
+}
+
+/// The case of the outside loss against the reference loss (shared with probe).
+pub fn loss_case(l: &LossReport) -> Case {
+    let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
+    if l.matches {
+        c
+    } else {
+        c.failing(
+            "loss-mismatch",
+            l.explanation
+                .unwrap_or("the loss differs from the reference"),
+        )
+    }
 }
 
 /// One case per tensor of an outside gradient (shared with probe).

@@ -21,7 +21,7 @@ use crate::args::ProbeArgs;
 use crate::commands::check::{method, step, verdict_cell};
 use crate::commands::compare::{
     Certification, LossReport, TensorReport, certification_text, certify, error_plot,
-    gradient_cases, judge_gradient, judge_loss, layout_tensors, tensor_table,
+    gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
 };
 use crate::commands::locate::Tensors;
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
@@ -155,18 +155,7 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         .collect();
     doc.cases
         .extend(gradient_cases("reference ", &report.tensors));
-    if let Some(l) = &report.loss {
-        let c = Case::new("loss", l.matches).figure("loss_rel_error", l.rel_error);
-        doc.cases.push(if l.matches {
-            c
-        } else {
-            c.failing(
-                "loss-mismatch",
-                l.explanation
-                    .unwrap_or("the loss differs from the reference"),
-            )
-        });
-    }
+    doc.cases.extend(report.loss.as_ref().map(loss_case));
     settings.emit(&report, doc)
 }
 

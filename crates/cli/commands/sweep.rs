@@ -234,25 +234,8 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
     }
 
     let eps = prec.epsilon();
+    let panels = step_panels(&out, &hs, eps);
     if let Some(p) = &args.plot {
-        let panels: Vec<StepPanel> = out
-            .iter()
-            .map(|c| StepPanel {
-                title: format!(
-                    "{} ({}), analytic {:.4e}",
-                    c.place.label(),
-                    c.chosen,
-                    c.analytic
-                ),
-                steps: hs.clone(),
-                series: c
-                    .methods
-                    .iter()
-                    .map(|m| (m.method.to_string(), m.errors.clone()))
-                    .collect(),
-                marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
-            })
-            .collect();
         let svg = step_plot(&panels).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
         write_atomically(p, svg.as_bytes())
             .with_context(|| format!("{}: cannot write the plot", p.display()))?;
@@ -296,32 +279,35 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
             }
         })
         .collect();
-    if settings.html.is_some() {
-        let panels: Vec<StepPanel> = report
-            .coordinates
-            .iter()
-            .map(|c| StepPanel {
-                title: format!(
-                    "{} ({}), analytic {:.4e}",
-                    c.place.label(),
-                    c.chosen,
-                    c.analytic
-                ),
-                steps: report.steps.clone(),
-                series: c
-                    .methods
-                    .iter()
-                    .map(|m| (m.method.to_string(), m.errors.clone()))
-                    .collect(),
-                marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
-            })
-            .collect();
-        if let Ok(svg) = step_plot(&panels) {
-            let b = crate::commands::check::plot("Error against step size, per method", svg);
-            crate::commands::check::insert_before_findings(&mut doc, vec![b]);
-        }
+    if settings.html.is_some()
+        && let Ok(svg) = step_plot(&panels)
+    {
+        let b = crate::commands::check::plot("Error against step size, per method", svg);
+        crate::commands::check::insert_before_findings(&mut doc, vec![b]);
     }
     settings.emit(&report, doc)
+}
+
+/// One plot panel per swept coordinate: every method's error against the step.
+fn step_panels(coords: &[CoordSweep], steps: &[f64], eps: f64) -> Vec<StepPanel> {
+    coords
+        .iter()
+        .map(|c| StepPanel {
+            title: format!(
+                "{} ({}), analytic {:.4e}",
+                c.place.label(),
+                c.chosen,
+                c.analytic
+            ),
+            steps: steps.to_vec(),
+            series: c
+                .methods
+                .iter()
+                .map(|m| (m.method.to_string(), m.errors.clone()))
+                .collect(),
+            marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
+        })
+        .collect()
 }
 
 fn document(r: &SweepReport, methods: &[Method], eps: f64) -> Document {
