@@ -150,7 +150,9 @@ fn every_renderer_matches_its_golden_file() {
     );
 }
 
-/// A seeded finite-difference check, with its figures masked.
+/// A seeded finite-difference check, with its figures masked. Which coordinates are the worst
+/// depends on the last bits of round-off, which a matrix kernel chosen for another CPU may change:
+/// `--worst 0` leaves that list out.
 #[test]
 fn a_seeded_check_matches_its_golden_files() {
     let dir = scratch("golden-check");
@@ -162,6 +164,8 @@ fn a_seeded_check_matches_its_golden_files() {
         "data/small.csv",
         "--seed",
         "7",
+        "--worst",
+        "0",
     ];
     for (format, ext) in [("table", "txt"), ("markdown", "md")] {
         let mut a = base.to_vec();

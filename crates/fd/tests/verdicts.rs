@@ -118,7 +118,8 @@ fn kinks_are_unreliable_and_retried() {
         .unwrap();
     assert!(bias0.retried, "{bias0:?}");
     assert_eq!(bias0.status, Status::Match);
-    assert!(bias0.step < 6e-8 * 1.01, "{}", bias0.step);
+    // The retried step stays on the unit's side of 0.
+    assert!(bias0.step < 3e-7, "{}", bias0.step);
 }
 
 /// The engine's gradient, one entry of one layer made 1% larger: found at that (layer, row, column)
