@@ -156,10 +156,16 @@ impl Activation {
 
     /// a = g(z) for a batch of pre-activations (one sample per row).
     pub fn apply<S: Scalar>(&self, z: ArrayView2<S>) -> Array2<S> {
+        let mut out = z.to_owned();
+        self.apply_in_place(&mut out);
+        out
+    }
+
+    /// z ← g(z), for a batch of pre-activations the caller no longer needs.
+    pub fn apply_in_place<S: Scalar>(&self, z: &mut Array2<S>) {
         match self {
             Activation::Softmax => {
-                let mut out = z.to_owned();
-                for mut row in out.axis_iter_mut(Axis(0)) {
+                for mut row in z.axis_iter_mut(Axis(0)) {
                     // Shift by the row's largest real part; any shift gives the same softmax.
                     let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
                     let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
@@ -172,9 +178,16 @@ impl Activation {
                         *v = *v / total;
                     }
                 }
-                out
             }
-            act => z.mapv(|v| act.value(v)),
+            // The common cases get a loop of their own, so the function inlines into it (and
+            // vectorises) instead of a call and a match per element.
+            Activation::Tanh => match z.as_slice_mut() {
+                Some(values) => S::tanh_all(values),
+                None => z.mapv_inplace(Scalar::tanh),
+            },
+            Activation::Relu => z.mapv_inplace(|v| if v.re() > 0.0 { v } else { S::zero() }),
+            Activation::Identity => {}
+            act => z.mapv_inplace(|v| act.value(v)),
         }
     }
 

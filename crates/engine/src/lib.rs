@@ -19,6 +19,7 @@
 
 mod activation;
 mod batch;
+mod elementary;
 mod init;
 mod loss;
 mod network;

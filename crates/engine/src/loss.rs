@@ -33,6 +33,12 @@ impl Loss {
         }
     }
 
+    /// Whether [`Loss::value`] reads the output activations a. Cross-entropy does not: it is
+    /// computed from z (log-sum-exp, softplus), which is both stabler and cheaper.
+    pub fn reads_activations(&self) -> bool {
+        matches!(self, Loss::SquaredError)
+    }
+
     /// Whether this loss is defined for that output activation.
     pub fn accepts(&self, output: Activation) -> bool {
         match self {
@@ -41,7 +47,8 @@ impl Loss {
         }
     }
 
-    /// The mean data loss of a batch, from the output pre-activations z and activations a.
+    /// The mean data loss of a batch, from the output pre-activations z and activations a (which
+    /// may be empty when the loss does not [read](Loss::reads_activations) them).
     pub fn value<S: Scalar>(
         &self,
         output: Activation,
@@ -69,6 +76,7 @@ impl Loss {
                 panic!("cross-entropy is not defined for {other} outputs (checked at construction)")
             }
             (Loss::SquaredError, _) => {
+                assert_eq!(a.dim(), y.dim(), "squared error needs the activations");
                 Zip::from(a).and(y).for_each(|&av, &yv| {
                     let d = av - yv;
                     total += d * d;

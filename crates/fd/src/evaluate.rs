@@ -100,7 +100,8 @@ impl<'a, S: Scalar> Base<'a, S> {
             // The layers above, without keeping a trace: each pre-activation is compared with the
             // unperturbed one for kinks as it is made, then only its activation is kept.
             for layer in l + 2..=last {
-                let a = layers[layer - 1].activation.apply(z.view());
+                let mut a = z;
+                layers[layer - 1].activation.apply_in_place(&mut a);
                 z = Network::affine(self.weights.layer(layer).view(), a.view());
                 crossed |= crosses(layers[layer].activation, t.z[layer].iter(), z.iter());
             }
@@ -142,10 +143,14 @@ impl<'a, S: Scalar> Base<'a, S> {
 
     fn output_loss(&self, z: &Array2<S>) -> S {
         let act = self.net.layers()[self.net.layers().len() - 1].activation;
-        let a = act.apply(z.view());
-        self.net
-            .loss()
-            .value(act, z.view(), a.view(), self.y.view())
+        let loss = self.net.loss();
+        // Cross-entropy needs only z: skip the output activations (a softmax is an exp per value).
+        let a = if loss.reads_activations() {
+            act.apply(z.view())
+        } else {
+            Array2::zeros((0, 0))
+        };
+        loss.value(act, z.view(), a.view(), self.y.view())
     }
 }
 
