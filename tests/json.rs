@@ -201,6 +201,7 @@ struct Check {
     schema_version: u32,
     command: String,
     description: String,
+    description_hash: String,
     weights: WeightsSource,
     data: DataSource,
     seed: u64,

@@ -896,3 +896,233 @@ fn shards_that_do_not_belong_together_exit_2() {
     let merged = plumb(&["merge", &a, &b, "--quiet"]);
     merged.assert_code(0);
 }
+
+/// Shards that do not form one split, or were edited, are refused with the file named — never a
+/// panic, never a report of something that was not checked.
+#[test]
+fn broken_or_foreign_shards_exit_2_naming_the_file() {
+    let dir = scratch("shards-hostile");
+    let run_shard = |spec: &str, extra: &[&str]| {
+        let mut a = vec![
+            "check",
+            "nets/small.toml",
+            "--seed",
+            "4",
+            "--shard",
+            spec,
+            "--format",
+            "json",
+            "--quiet",
+        ];
+        a.extend(extra);
+        let run = plumb(&a);
+        run.assert_code(0);
+        run.json()
+    };
+    let write = |name: &str, v: &serde_json::Value| {
+        let p = dir.join(name);
+        std::fs::write(&p, v.to_string()).unwrap();
+        p.to_str().unwrap().to_string()
+    };
+    let half1 = run_shard("1/2", &[]);
+    let half2 = run_shard("2/2", &[]);
+    let quarter2 = run_shard("2/4", &[]);
+    let fewer_dirs = run_shard("2/2", &["--directions", "1"]);
+    let h1 = write("h1.json", &half1);
+    let mut cases: Vec<(String, Vec<String>, &str)> = vec![
+        (
+            "another split".into(),
+            vec![h1.clone(), write("q2.json", &quarter2)],
+            "ways",
+        ),
+        (
+            "other directions".into(),
+            vec![h1.clone(), write("d.json", &fewer_dirs)],
+            "directions_per_part",
+        ),
+    ];
+    let edit = |name: &str, f: &dyn Fn(&mut serde_json::Value)| {
+        let mut v = half2.clone();
+        f(&mut v);
+        write(name, &v)
+    };
+    for (name, says, f) in [
+        (
+            "layer0.json",
+            "not a layer",
+            &(|v: &mut serde_json::Value| v["coordinates"][0]["layer"] = 0.into())
+                as &dyn Fn(&mut serde_json::Value),
+        ),
+        ("layer99.json", "not a layer", &|v| {
+            v["coordinates"][0]["layer"] = 99.into()
+        }),
+        ("row.json", "is not in layer", &|v| {
+            v["coordinates"][0]["row"] = 1_000_000.into()
+        }),
+        ("huge-n.json", "not [K, N]", &|v| {
+            v["shard"] = serde_json::json!([2, 4_611_686_018_427_387_904u64])
+        }),
+        ("floors.json", "differs", &|v| {
+            v["floors"] = serde_json::json!([])
+        }),
+        ("short.json", "cut short", &|v| {
+            v["coordinates"].as_array_mut().unwrap().pop();
+        }),
+        ("status.json", "unknown status", &|v| {
+            v["coordinates"][0]["status"] = "fine".into()
+        }),
+    ] {
+        cases.push((name.into(), vec![h1.clone(), edit(name, f)], says));
+    }
+    for (what, files, says) in &cases {
+        let mut args = vec!["merge"];
+        args.extend(files.iter().map(String::as_str));
+        let run = plumb(&args);
+        run.assert_code(2);
+        assert!(
+            run.stderr.contains(says) && !run.stderr.contains("panicked"),
+            "{what}: {}",
+            run.stderr
+        );
+        assert!(
+            files.iter().any(|f| run.stderr.contains(f.as_str())),
+            "{what}: no file named in {}",
+            run.stderr
+        );
+    }
+    // The description changed under the shards: refused as well.
+    let mut other = half2.clone();
+    other["description"] = "nets/five-four-four.toml".into();
+    let mut first = half1.clone();
+    first["description"] = "nets/five-four-four.toml".into();
+    let run = plumb(&[
+        "merge",
+        &write("o1.json", &first),
+        &write("o2.json", &other),
+    ]);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("not the one the shards were run on"),
+        "{}",
+        run.stderr
+    );
+}
+
+/// A regression the baseline finds fails the JUnit case of the tensor it names.
+#[test]
+fn a_baseline_regression_is_a_failing_junit_case() {
+    let dir = scratch("baseline-junit");
+    let b = dir.join("baseline.json");
+    compare(
+        "compare/correct-f64.npz",
+        &["--save-baseline", b.to_str().unwrap()],
+    )
+    .assert_code(0);
+    let mut file = read_tensors(&fixture("compare/correct-f64.npz")).unwrap();
+    let t = file
+        .tensors
+        .iter_mut()
+        .find(|t| t.name == "layer3")
+        .unwrap();
+    // Within compare's own tolerance (1e-6), beyond the baseline's tenfold.
+    t.data.iter_mut().for_each(|v| *v *= 1.0 + 1e-9);
+    let nudged = dir.join("nudged.npz");
+    write_tensors(&nudged, FileFormat::Npz, &file.tensors, DType::F64).unwrap();
+    let junit = dir.join("junit.xml");
+    let run = compare(
+        nudged.to_str().unwrap(),
+        &[
+            "--baseline",
+            b.to_str().unwrap(),
+            "--junit",
+            junit.to_str().unwrap(),
+        ],
+    );
+    run.assert_code(1);
+    let xml = std::fs::read_to_string(&junit).unwrap();
+    let case = xml
+        .split("<testcase ")
+        .find(|c| c.contains("name=\"gradient layer3\""))
+        .expect("a case for layer3");
+    assert!(case.contains("<failure type=\"baseline-worse\""), "{case}");
+    assert!(!xml.contains("failures=\"0\""), "{xml}");
+}
+
+#[test]
+fn no_output_replaces_an_input_even_with_force() {
+    let dir = scratch("output-input");
+    let net = dir.join("net.toml");
+    std::fs::copy(fixture("nets/small.toml"), &net).unwrap();
+    let before = std::fs::read(&net).unwrap();
+    for flag in ["--html", "--junit", "--save-baseline"] {
+        let run = plumb(&[
+            "check",
+            net.to_str().unwrap(),
+            "--quiet",
+            flag,
+            net.to_str().unwrap(),
+            "--force",
+        ]);
+        run.assert_code(2);
+        assert!(
+            run.stderr.contains("an input of the run"),
+            "{flag}: {}",
+            run.stderr
+        );
+    }
+    assert_eq!(std::fs::read(&net).unwrap(), before);
+}
+
+/// A dead ReLU unit (bias −100, no L2) has every error exactly 0: the V-curve of its weight has
+/// nothing a log axis can show, and the report says so instead of hanging.
+#[test]
+fn a_plot_with_nothing_to_show_says_so() {
+    let dir = scratch("plot-empty");
+    let net = dir.join("dead.toml");
+    std::fs::write(
+        &net,
+        "inputs = 4\nloss = \"cross-entropy\"\n[[layer]]\nunits = 5\nactivation = \"relu\"\n\
+         [[layer]]\nunits = 3\nactivation = \"softmax\"\n",
+    )
+    .unwrap();
+    let tensor = |name: &str, rows: usize, cols: usize| plumb_formats::Tensor {
+        name: name.into(),
+        shape: vec![rows, cols],
+        dtype: DType::F64,
+        data: (0..rows * cols)
+            .map(|i| {
+                if name == "layer1" && i == 0 {
+                    -100.0
+                } else {
+                    ((i * 37 % 11) as f64 - 5.0) / 10.0
+                }
+            })
+            .collect(),
+    };
+    let weights = dir.join("dead.npz");
+    write_tensors(
+        &weights,
+        FileFormat::Npz,
+        &[tensor("layer1", 5, 5), tensor("layer2", 3, 6)],
+        DType::F64,
+    )
+    .unwrap();
+    let html = dir.join("dead.html");
+    let run = plumb(&[
+        "sweep",
+        net.to_str().unwrap(),
+        "-w",
+        weights.to_str().unwrap(),
+        "--coords",
+        "1:0:2",
+        "--html",
+        html.to_str().unwrap(),
+        "--quiet",
+    ]);
+    run.assert_code(0);
+    assert!(
+        std::fs::read_to_string(&html)
+            .unwrap()
+            .contains("no finite values")
+    );
+}

@@ -1,6 +1,6 @@
 //! The command line as parsed, before validation (see `main.rs` for how each command validates it).
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use clap::{Args, Parser, Subcommand, ValueEnum};
 
@@ -331,6 +331,55 @@ pub enum InitArg {
 pub enum DTypeArg {
     F32,
     F64,
+}
+
+impl Inputs {
+    fn paths(&self) -> Vec<&Path> {
+        let mut out = vec![self.net.as_path()];
+        out.extend(self.weights.as_deref());
+        out.extend(self.data.as_deref());
+        out
+    }
+}
+
+impl Command {
+    /// The command its report names (a merge reports a check).
+    pub fn report_name(&self) -> &'static str {
+        match self {
+            Command::Demo(_) => "demo",
+            Command::Shapes(_) => "shapes",
+            Command::Grad(_) => "grad",
+            Command::Check(_) | Command::Merge(_) => "check",
+            Command::Sweep(_) => "sweep",
+            Command::Compare(_) => "compare",
+            Command::Probe(_) => "probe",
+            Command::Audit(_) => "audit",
+        }
+    }
+
+    /// The files the run reads, which no output of it may replace (not even with --force).
+    pub fn inputs(&self) -> Vec<&Path> {
+        match self {
+            Command::Demo(_) => Vec::new(),
+            Command::Shapes(a) => std::iter::once(a.net.as_path())
+                .chain(a.weights.as_deref())
+                .collect(),
+            Command::Grad(a) => a.inputs.paths(),
+            Command::Check(a) => a.inputs.paths(),
+            Command::Sweep(a) => a.inputs.paths(),
+            Command::Compare(a) => {
+                let mut v = a.inputs.paths();
+                v.push(&a.gradient);
+                v
+            }
+            Command::Probe(a) => a.inputs.paths(),
+            Command::Audit(a) => std::iter::once(a.net.as_path())
+                .chain(std::iter::once(a.weights.as_path()))
+                .chain(a.data.as_deref())
+                .collect(),
+            Command::Merge(a) => a.shards.iter().map(PathBuf::as_path).collect(),
+        }
+    }
 }
 
 #[cfg(test)]

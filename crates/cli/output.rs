@@ -3,7 +3,7 @@
 //! asked for — so that adding a renderer touches no command.
 
 use std::io::{IsTerminal, Write};
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
 use plumb_formats::{Description, expected_tensors, write_atomically};
@@ -66,19 +66,27 @@ impl Settings {
         }
     }
 
-    /// Refuses, before any work, output files that exist (without --force) or that are directories.
-    pub fn check_outputs(&self) -> Result<()> {
+    /// Refuses, before any work, output files that exist (without --force), that are directories,
+    /// or that are an input of the run (the baseline included), and a baseline that cannot be read.
+    pub fn check_outputs(&self, command: &str, inputs: &[&Path]) -> Result<()> {
+        let mut inputs = inputs.to_vec();
+        inputs.extend(self.baseline.as_deref());
         for p in [&self.junit, &self.html, &self.save_baseline]
             .into_iter()
             .flatten()
         {
-            crate::inputs::check_output(p, self.force, &[])?;
+            crate::inputs::check_output(p, self.force, &inputs)?;
         }
-        if let Some(b) = self.baseline.as_ref().filter(|b| !b.is_file()) {
-            bail!(
-                "{}: no such baseline file; record one with --save-baseline",
-                b.display()
-            );
+        if let Some(b) = &self.baseline {
+            let base = read_baseline(b)?;
+            if base.command != command {
+                bail!(
+                    "{}: the baseline was recorded by `plumb {}`, and this run is `plumb {command}`: \
+                     give a baseline this command recorded (--save-baseline)",
+                    b.display(),
+                    base.command
+                );
+            }
         }
         Ok(())
     }
@@ -97,14 +105,7 @@ impl Settings {
         let findings = all_findings(&doc);
         let mut verdict = doc.verdict().unwrap_or(Verdict::Pass);
         if let Some(path) = &self.baseline {
-            let text = std::fs::read_to_string(path)
-                .with_context(|| format!("{}: cannot read the baseline", path.display()))?;
-            let base: Baseline = serde_json::from_str(&text).with_context(|| {
-                format!(
-                    "{}: not a plumb baseline (record one with --save-baseline)",
-                    path.display()
-                )
-            })?;
+            let base = read_baseline(path)?;
             if base.command != doc.command {
                 bail!(
                     "{}: the baseline was recorded by `plumb {}`, and this run is `plumb {}`: \
@@ -112,14 +113,6 @@ impl Settings {
                     path.display(),
                     base.command,
                     doc.command
-                );
-            }
-            if base.plumb_baseline != BASELINE_VERSION {
-                bail!(
-                    "{}: a baseline of format {}, and this plumb reads format {BASELINE_VERSION}: \
-                     record it again with --save-baseline",
-                    path.display(),
-                    base.plumb_baseline
                 );
             }
             let changes = base.compare(&doc, &findings);
@@ -160,6 +153,14 @@ impl Settings {
                 }
             }
         }
+        // The JUnit cases must fail where the findings do (baseline changes included).
+        let mut every = findings.clone();
+        every.extend(
+            all_findings(&doc)
+                .into_iter()
+                .filter(|f| f.code.starts_with("baseline-")),
+        );
+        doc.fail_cases_for(&every);
         let mut buf = Vec::new();
         match self.format {
             Format::Json => render_json(&value, &mut buf)?,
@@ -200,6 +201,33 @@ impl Settings {
         }
         Ok(verdict)
     }
+}
+
+/// Reads a baseline file, refusing one of another format version.
+fn read_baseline(path: &Path) -> Result<Baseline> {
+    if !path.is_file() {
+        bail!(
+            "{}: no such baseline file; record one with --save-baseline",
+            path.display()
+        );
+    }
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("{}: cannot read the baseline", path.display()))?;
+    let base: Baseline = serde_json::from_str(&text).with_context(|| {
+        format!(
+            "{}: not a plumb baseline (record one with --save-baseline)",
+            path.display()
+        )
+    })?;
+    if base.plumb_baseline != BASELINE_VERSION {
+        bail!(
+            "{}: a baseline of format {}, and this plumb reads format {BASELINE_VERSION}: record \
+             it again with --save-baseline",
+            path.display(),
+            base.plumb_baseline
+        );
+    }
+    Ok(base)
 }
 
 /// The network a run is about, for baselines: a hash of the canonical description and the shapes.

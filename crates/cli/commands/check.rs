@@ -147,6 +147,9 @@ pub struct CheckReport {
     pub schema_version: u32,
     pub command: &'static str,
     pub description: PathBuf,
+    /// The network's identity (docs/json.md, baselines): `plumb merge` checks the description
+    /// it reads is the one the shards ran on.
+    pub description_hash: String,
     pub weights: WeightsSource,
     pub data: DataSource,
     /// The seed of the sample, the directions and any initialised weights or synthetic data.
@@ -380,6 +383,7 @@ pub fn compute(
     let result = check(net, &loaded.weights, &loaded.batch, config, progress)?;
     let facts = RunFacts {
         description: loaded.desc.path.clone(),
+        description_hash: network_id(&loaded.desc).hash,
         weights: loaded.weights_source.clone(),
         data: loaded.data_source.clone(),
         seed: config.seed,
@@ -398,6 +402,7 @@ pub fn compute(
 /// What a report says of the run besides its results.
 pub struct RunFacts {
     pub description: PathBuf,
+    pub description_hash: String,
     pub weights: WeightsSource,
     pub data: DataSource,
     pub seed: u64,
@@ -620,6 +625,7 @@ pub fn build(
         schema_version: SCHEMA_VERSION,
         command: "check",
         description: facts.description.clone(),
+        description_hash: facts.description_hash.clone(),
         weights: facts.weights.clone(),
         data: facts.data.clone(),
         seed: facts.seed,

@@ -4,7 +4,7 @@
 use std::path::Path;
 
 use anyhow::{Context, Result, bail};
-use plumb_engine::{Coord, Weights};
+use plumb_engine::{Coord, Network, Weights};
 use plumb_fd::{
     CheckResult, CoordCheck, Coverage, DirectionCheck, Method, Precision, Sample, Scope, Status,
 };
@@ -13,135 +13,219 @@ use plumb_report::Verdict;
 use serde_json::Value;
 
 use crate::args::MergeArgs;
-use crate::commands::check::{RunFacts, build, cases, document};
+use crate::commands::check::{
+    RunFacts, build, cases, document, insert_before_findings, strip_plot,
+};
 use crate::commands::locate::Tensors;
 use crate::output::{Settings, network_id};
 
+/// The most shards a check can be split into (the bound `--shard` gives).
+const MAX_SHARDS: u64 = 10_000;
+
+/// One shard's report, with what identifies its place.
+struct Shard<'a> {
+    path: &'a Path,
+    k: usize,
+    n: usize,
+    v: Value,
+}
+
+impl<'a> Shard<'a> {
+    fn read(path: &'a Path) -> Result<Shard<'a>> {
+        let text = std::fs::read_to_string(path)
+            .with_context(|| format!("{}: cannot read the shard", path.display()))?;
+        let v: Value = serde_json::from_str(&text)
+            .with_context(|| format!("{}: not a JSON report", path.display()))?;
+        check_shard(path, &v)?;
+        let (k, n) = match (v["shard"][0].as_u64(), v["shard"][1].as_u64()) {
+            (Some(k), Some(n)) if (1..=MAX_SHARDS).contains(&n) && (1..=n).contains(&k) => {
+                (k as usize, n as usize)
+            }
+            _ => bail!(
+                "{}: `shard` is {}, not [K, N] with 1 ≤ K ≤ N ≤ {MAX_SHARDS}",
+                path.display(),
+                v["shard"]
+            ),
+        };
+        Ok(Shard { path, k, n, v })
+    }
+
+    fn list(&self, key: &str) -> &[Value] {
+        self.v[key].as_array().map_or(&[], Vec::as_slice)
+    }
+}
+
 pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
-    let shards: Vec<(usize, Value)> = args
+    let shards: Vec<Shard> = args
         .shards
         .iter()
-        .map(|p| {
-            let text = std::fs::read_to_string(p)
-                .with_context(|| format!("{}: cannot read the shard", p.display()))?;
-            let v: Value = serde_json::from_str(&text)
-                .with_context(|| format!("{}: not a JSON report", p.display()))?;
-            check_shard(p, &v)?;
-            Ok((v["shard"][0].as_u64().unwrap_or(0) as usize, v))
-        })
+        .map(|p| Shard::read(p))
         .collect::<Result<_>>()?;
-    let first = &shards[0].1;
-    let n = first["shard"][1].as_u64().unwrap_or(0) as usize;
-    // The same run split n ways: same inputs and settings, each share once.
-    for key in [
-        "description",
-        "weights",
-        "data",
-        "seed",
-        "samples",
-        "method",
-        "step_rule",
-        "precision",
-        "tolerance",
-        "floors",
-        "coverage",
-    ] {
-        for (p, (_, v)) in args.shards.iter().zip(&shards) {
-            let same = if key == "coverage" {
-                v[key]["sample"] == first[key]["sample"]
-                    && v[key]["parameters"] == first[key]["parameters"]
-            } else {
-                v[key] == first[key]
-            };
-            if !same {
+    let first = &shards[0];
+    let n = first.n;
+    // The same run split the same n ways: same inputs and settings, each share once.
+    for s in &shards {
+        if s.n != n {
+            bail!(
+                "{}: shard {}/{} of a run split {} ways, and {} is {}/{n}: merge the shards of one split",
+                s.path.display(),
+                s.k,
+                s.n,
+                s.n,
+                first.path.display(),
+                first.k
+            );
+        }
+        for key in [
+            "description",
+            "description_hash",
+            "weights",
+            "data",
+            "seed",
+            "samples",
+            "method",
+            "step_rule",
+            "precision",
+            "tolerance",
+            "floors",
+            "coverage/sample",
+            "coverage/parameters",
+            "coverage/default_sample",
+            "coverage/directions_per_part",
+        ] {
+            let pointer = format!("/{key}");
+            if s.v.pointer(&pointer) != first.v.pointer(&pointer) {
                 bail!(
                     "{}: `{key}` differs from {}'s: these are shards of different runs",
-                    p.display(),
-                    args.shards[0].display()
+                    s.path.display(),
+                    first.path.display()
                 );
             }
         }
     }
-    let mut seen: Vec<usize> = shards.iter().map(|(k, _)| *k).collect();
+    let mut seen: Vec<usize> = shards.iter().map(|s| s.k).collect();
     seen.sort_unstable();
     if seen != (1..=n).collect::<Vec<_>>() {
-        bail!("the shards are {seen:?} of {n}: give each of 1 to {n} exactly once");
+        bail!("the shards given are {seen:?} of {n}: give each of 1 to {n} exactly once");
     }
-    let path = first["description"].as_str().unwrap_or_default();
+    let path = first.v["description"].as_str().unwrap_or_default();
     let desc = Description::read(Path::new(path))?;
+    let id = network_id(&desc);
+    if first.v["description_hash"].as_str() != Some(id.hash.as_str()) {
+        bail!(
+            "{path}: the description is not the one the shards were run on (its hash is {}, the \
+             shards' {}): merge where the shards' inputs are, unchanged",
+            id.hash,
+            first.v["description_hash"]
+        );
+    }
     let tensors = Tensors::new(&desc);
-    // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check): put
-    // each back in its place, so the merged lists are in the unsharded run's order.
+    let net = &desc.network;
+    // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check): a
+    // whole of T items gives shard k ⌈(T − k + 1)/n⌉ of them. Put each back in its place, so the
+    // merged lists are in the unsharded run's order.
+    for key in ["coordinates", "directions"] {
+        let total: usize = shards.iter().map(|s| s.list(key).len()).sum();
+        for s in &shards {
+            let expected = (total + n - s.k) / n;
+            if s.list(key).len() != expected {
+                bail!(
+                    "{}: {} {key} where shard {}/{n} of {total} must have {expected}: a shard \
+                     was cut short or edited",
+                    s.path.display(),
+                    s.list(key).len(),
+                    s.k
+                );
+            }
+        }
+    }
     let mut coords = Vec::new();
     let mut directions = Vec::new();
-    for (k, v) in &shards {
-        for (j, c) in v["coordinates"]
-            .as_array()
-            .into_iter()
-            .flatten()
-            .enumerate()
-        {
-            coords.push((k - 1 + j * n, coord(c)?));
+    for s in &shards {
+        for (j, c) in s.list("coordinates").iter().enumerate() {
+            let c = coord(c, net)
+                .with_context(|| format!("{}: coordinate {}", s.path.display(), j + 1))?;
+            coords.push((s.k - 1 + j * n, c));
         }
-        for (j, d) in v["directions"].as_array().into_iter().flatten().enumerate() {
-            directions.push((k - 1 + j * n, direction(d)?));
+        for (j, d) in s.list("directions").iter().enumerate() {
+            let d = direction(d, net)
+                .with_context(|| format!("{}: direction {}", s.path.display(), j + 1))?;
+            directions.push((s.k - 1 + j * n, d));
         }
     }
     coords.sort_by_key(|(i, _)| *i);
     directions.sort_by_key(|(i, _)| *i);
     let coords: Vec<CoordCheck> = coords.into_iter().map(|(_, c)| c).collect();
     let directions: Vec<DirectionCheck> = directions.into_iter().map(|(_, d)| d).collect();
-    let method = Method::from_name(first["method"].as_str().unwrap_or_default())
-        .context("an unknown method in the shards")?;
-    let precision = if first["precision"] == "f32" {
+    let at = |key: &str| format!("{}: `{key}`", first.path.display());
+    let floors: Vec<f64> = first
+        .list("floors")
+        .iter()
+        .map(|f| f.as_f64().unwrap_or(f64::NAN))
+        .collect();
+    if floors.len() != net.layers().len() {
+        bail!(
+            "{} lists {} floors for a network of {} layers",
+            at("floors"),
+            floors.len(),
+            net.layers().len()
+        );
+    }
+    let norms: Vec<f64> = first
+        .list("tensors")
+        .iter()
+        .map(|t| t["gradient_norm"].as_f64().unwrap_or(f64::NAN))
+        .collect();
+    if norms.len() != tensors.expected.len() {
+        bail!(
+            "{} lists {} tensors, and the description's layout has {}",
+            at("tensors"),
+            norms.len(),
+            tensors.expected.len()
+        );
+    }
+    let method = Method::from_name(first.v["method"].as_str().unwrap_or_default())
+        .with_context(|| format!("{} is not a method plumb knows", at("method")))?;
+    let precision = if first.v["precision"] == "f32" {
         Precision::F32
     } else {
         Precision::F64
     };
-    let cov = &first["coverage"];
+    let cov = &first.v["coverage"];
     let result = CheckResult {
         method,
         precision,
-        loss: first["loss"].as_f64().unwrap_or(f64::NAN),
+        loss: first.v["loss"].as_f64().unwrap_or(f64::NAN),
         coverage: Coverage {
             sample: Sample::parse(cov["sample"].as_str().unwrap_or("all"))
-                .map_err(anyhow::Error::msg)?,
+                .map_err(|e| anyhow::anyhow!("{}: {e}", at("coverage")))?,
             default_sample: cov["default_sample"].as_bool().unwrap_or(false),
             directions: cov["directions_per_part"].as_u64().unwrap_or(0) as usize,
             parameters: cov["parameters"].as_u64().unwrap_or(0) as usize,
             checked: coords.len(),
         },
-        tolerance: first["tolerance"].as_f64().unwrap_or(0.0),
-        floors: first["floors"]
-            .as_array()
-            .into_iter()
-            .flatten()
-            .map(|f| f.as_f64().unwrap_or(0.0))
-            .collect(),
+        tolerance: first.v["tolerance"].as_f64().unwrap_or(0.0),
+        floors,
         coords,
         directions,
         analytic: Weights::new(Vec::new()),
     };
     let facts = RunFacts {
         description: path.into(),
-        weights: serde_json::from_value(first["weights"].clone())
-            .context("the shards' `weights`")?,
-        data: serde_json::from_value(first["data"].clone()).context("the shards' `data`")?,
-        seed: first["seed"].as_u64().unwrap_or(0),
-        samples: first["samples"].as_u64().unwrap_or(0) as usize,
-        step: first["step_rule"]
+        description_hash: id.hash.clone(),
+        weights: serde_json::from_value(first.v["weights"].clone())
+            .with_context(|| at("weights"))?,
+        data: serde_json::from_value(first.v["data"].clone()).with_context(|| at("data"))?,
+        seed: first.v["seed"].as_u64().unwrap_or(0),
+        samples: first.v["samples"].as_u64().unwrap_or(0) as usize,
+        step: first.v["step_rule"]
             .as_str()
             .and_then(|r| r.strip_prefix("fixed h = "))
             .and_then(|r| r.split(' ').next())
             .and_then(|h| h.parse().ok()),
         shard: None,
         // The reference gradient's norms are the whole tensor's, the same in every shard.
-        gradient_norms: first["tensors"]
-            .as_array()
-            .into_iter()
-            .flatten()
-            .map(|t| t["gradient_norm"].as_f64().unwrap_or(f64::NAN))
-            .collect(),
+        gradient_norms: norms,
     };
     let mut report = build(&facts, &tensors, &result, args.worst);
     report.coordinates = Some(
@@ -150,8 +234,21 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
             .collect(),
     );
     let mut doc = document(&report);
+    if settings.html.is_some() {
+        // The strip of every coordinate; the V-curve needs the weights and data, which a merge
+        // does not load (run `plumb sweep` on the worst coordinates for it).
+        insert_before_findings(
+            &mut doc,
+            strip_plot(
+                "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
+                &report.rel_errors,
+            )
+            .into_iter()
+            .collect(),
+        );
+    }
     doc.command = "check".into();
-    doc.network = Some(network_id(&desc));
+    doc.network = Some(id);
     doc.cases = cases(&report);
     settings.emit(&report, doc)
 }
@@ -174,53 +271,71 @@ fn status(s: &str) -> Result<Status> {
         "match" => Status::Match,
         "mismatch" => Status::Mismatch,
         "unreliable" => Status::Unreliable,
-        other => bail!("an unknown status `{other}` in a shard"),
+        other => bail!("an unknown status `{other}`"),
     })
 }
 
-fn num(v: &Value, key: &str) -> Result<f64> {
+fn num(v: &Value, key: &str) -> f64 {
     // NaN and infinities are written as null.
-    Ok(v.get(key).and_then(Value::as_f64).unwrap_or(f64::NAN))
+    v.get(key).and_then(Value::as_f64).unwrap_or(f64::NAN)
 }
 
-fn coord(c: &Value) -> Result<CoordCheck> {
-    let idx = |k: &str| {
-        c[k].as_u64()
-            .map(|v| v as usize)
-            .with_context(|| format!("a coordinate without `{k}` in a shard"))
+/// A 1-based layer of the network, as a 0-based index.
+fn layer_of(v: &Value, net: &Network) -> Result<usize> {
+    match v["layer"].as_u64() {
+        Some(l) if (1..=net.layers().len() as u64).contains(&l) => Ok(l as usize - 1),
+        _ => bail!(
+            "`layer` is {}, not a layer of this {}-layer network",
+            v["layer"],
+            net.layers().len()
+        ),
+    }
+}
+
+fn coord(c: &Value, net: &Network) -> Result<CoordCheck> {
+    let layer = layer_of(c, net)?;
+    let (rows, cols) = net.layers()[layer].shape();
+    let (row, col) = match (c["row"].as_u64(), c["column"].as_u64()) {
+        (Some(r), Some(k)) if r < rows as u64 && k < cols as u64 => (r as usize, k as usize),
+        _ => bail!(
+            "(row {}, column {}) is not in layer {}'s {rows} × {cols} matrix",
+            c["row"],
+            c["column"],
+            layer + 1
+        ),
     };
     Ok(CoordCheck {
-        coord: Coord {
-            layer: idx("layer")? - 1,
-            row: idx("row")?,
-            col: idx("column")?,
-        },
-        analytic: num(c, "analytic")?,
-        numeric: num(c, "numeric")?,
-        abs_error: num(c, "abs_error")?,
-        rel_error: num(c, "rel_error")?,
-        bound: num(c, "bound")?,
-        step: num(c, "step")?,
+        coord: Coord { layer, row, col },
+        analytic: num(c, "analytic"),
+        numeric: num(c, "numeric"),
+        abs_error: num(c, "abs_error"),
+        rel_error: num(c, "rel_error"),
+        bound: num(c, "bound"),
+        step: num(c, "step"),
         status: status(c["status"].as_str().unwrap_or_default())?,
         retried: c["retried"].as_bool().unwrap_or(false),
     })
 }
 
-fn direction(d: &Value) -> Result<DirectionCheck> {
-    let scope = match (d["layer"].as_u64(), d["bias"].as_bool()) {
-        (Some(l), Some(b)) => Scope::Part {
-            layer: l as usize - 1,
-            bias: b,
-        },
-        _ => Scope::Global,
+fn direction(d: &Value, net: &Network) -> Result<DirectionCheck> {
+    let scope = if d["layer"].is_null() {
+        Scope::Global
+    } else {
+        let bias = d["bias"]
+            .as_bool()
+            .context("a direction over a layer without `bias`")?;
+        Scope::Part {
+            layer: layer_of(d, net)?,
+            bias,
+        }
     };
     Ok(DirectionCheck {
         scope,
-        analytic: num(d, "analytic")?,
-        numeric: num(d, "numeric")?,
-        abs_error: (num(d, "analytic")? - num(d, "numeric")?).abs(),
-        rel_error: num(d, "rel_error")?,
-        bound: num(d, "bound")?,
+        analytic: num(d, "analytic"),
+        numeric: num(d, "numeric"),
+        abs_error: (num(d, "analytic") - num(d, "numeric")).abs(),
+        rel_error: num(d, "rel_error"),
+        bound: num(d, "bound"),
         step: 0.0,
         status: status(d["status"].as_str().unwrap_or_default())?,
     })

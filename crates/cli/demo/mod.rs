@@ -148,6 +148,22 @@ struct DemoReport<'a> {
 }
 
 pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
+    // The demo always ends with its HTML report: where --html says, beside the written files, or in
+    // the system's temporary directory. Refused before anything is written, like every output.
+    let html = match (&settings.html, &args.write) {
+        (Some(p), _) => p.clone(),
+        (None, Some(dir)) => dir.join("pump-report.html"),
+        (None, None) => {
+            std::env::temp_dir().join(format!("plumb-demo-report-seed{}.html", settings.seed))
+        }
+    };
+    let force = settings.force || (settings.html.is_none() && args.write.is_none());
+    if !force && settings.html.is_none() && html.exists() {
+        anyhow::bail!(
+            "{}: the file exists; pass --force to replace the demo's files",
+            html.display()
+        );
+    }
     let pump = Pump::generate(settings.seed);
     let desc = &pump.description;
     let net_path = PathBuf::from("pump.toml");
@@ -474,22 +490,6 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ];
     doc.cases.extend(check::cases(&checked));
 
-    // The demo always ends with its HTML report: where --html says, beside the written files, or in
-    // the system's temporary directory.
-    let html = match (&settings.html, &args.write) {
-        (Some(p), _) => p.clone(),
-        (None, Some(dir)) => dir.join("pump-report.html"),
-        (None, None) => {
-            std::env::temp_dir().join(format!("plumb-demo-report-seed{}.html", settings.seed))
-        }
-    };
-    let force = settings.force || (settings.html.is_none() && args.write.is_none());
-    if !force && settings.html.is_none() && html.exists() {
-        anyhow::bail!(
-            "{}: the file exists; pass --force to replace the demo's files",
-            html.display()
-        );
-    }
     let with_html = Settings {
         html: Some(html.clone()),
         force,

@@ -28,7 +28,17 @@ pub struct NetworkId {
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Recorded {
     pub passed: bool,
+    /// A figure that was not finite is written as null (JSON has no NaN) and read back as NaN.
+    #[serde(deserialize_with = "nulls_as_nan")]
     pub figures: BTreeMap<String, f64>,
+}
+
+fn nulls_as_nan<'de, D: serde::Deserializer<'de>>(d: D) -> Result<BTreeMap<String, f64>, D::Error> {
+    let raw: BTreeMap<String, Option<f64>> = Deserialize::deserialize(d)?;
+    Ok(raw
+        .into_iter()
+        .map(|(k, v)| (k, v.unwrap_or(f64::NAN)))
+        .collect())
 }
 
 /// A baseline file.
@@ -262,28 +272,35 @@ fn change(name: &str, then: f64, now: f64) -> Option<(Severity, String)> {
         Kind::Count => (now > then).then(|| (Severity::Error, "the count rose".into())),
         Kind::Error => {
             if now > 10.0 * then + 1e-12 {
-                let ratio = now / then.max(f64::MIN_POSITIVE);
-                return worse(format!("{}× the baseline; 10× is allowed", figure(ratio)));
+                return worse(if then > 0.0 {
+                    format!("{}× the baseline; 10× is allowed", figure(now / then))
+                } else {
+                    "it was 0 in the baseline; 10× (+1e-12) is allowed".into()
+                });
             }
             let bands = if name.contains("rel_error") {
                 &BANDS[..]
             } else {
                 &[]
             };
+            // A band counts only when crossed by real growth (at least 2×): a figure that sits at
+            // a band, such as f32 round-off near 1e-7, would otherwise cross it back and forth.
             bands
                 .iter()
-                .find(|&&b| then <= b && now > b)
+                .find(|&&b| then <= b && now > b && now >= 2.0 * then)
                 .and_then(|b| worse(format!("it crossed the {b:e} band")))
         }
         Kind::Property => {
             let rel = (now - then).abs() / then.abs().max(now.abs()).max(f64::MIN_POSITIVE);
             (rel > PROPERTY_TOLERANCE).then(|| {
+                let by = if then != 0.0 {
+                    format!("{:+.3}%", 100.0 * (now - then) / then.abs())
+                } else {
+                    "from 0".to_string()
+                };
                 (
                     Severity::Warning,
-                    format!(
-                        "{:+.3}%: the weights, data or settings differ from the baseline's",
-                        100.0 * (now - then) / then.abs().max(f64::MIN_POSITIVE)
-                    ),
+                    format!("{by}: the weights, data or settings differ from the baseline's"),
                 )
             })
         }
@@ -355,6 +372,21 @@ mod tests {
         // A band crossed upward is worse even when under tenfold.
         let b = Baseline::record(&doc(0.9e-7, 3), &[]);
         assert_eq!(b.compare(&doc(2e-7, 3), &[])[0].code, "baseline-worse");
+        // … but not by noise around it.
+        assert!(b.compare(&doc(1.2e-7, 3), &[]).is_empty());
+        // A figure of 0 in the baseline, and a NaN one read back from JSON's null.
+        let b = Baseline::record(&doc(0.0, 3), &[]);
+        let f = b.compare(&doc(1e-9, 3), &[]);
+        assert!(
+            f[0].message.contains("it was 0 in the baseline"),
+            "{}",
+            f[0].message
+        );
+        let b = Baseline::record(&doc(f64::NAN, 3), &[]);
+        let text = serde_json::to_string(&b).unwrap();
+        assert!(text.contains("null"), "{text}");
+        let back: Baseline = serde_json::from_str(&text).unwrap();
+        assert!(back.cases["layer1"].figures["max_rel_error"].is_nan());
     }
 
     fn with(d: Document, case: Case) -> Document {

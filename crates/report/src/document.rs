@@ -1,6 +1,6 @@
 //! A report as the human formats see it: a title and a list of blocks.
 
-use crate::{Finding, Verdict};
+use crate::{Finding, Severity, Verdict};
 
 /// The mood of a table cell or line, which the terminal renderer may colour.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -167,6 +167,46 @@ impl Document {
             Block::Verdict(v, _) => Some(*v),
             _ => None,
         })
+    }
+
+    /// Makes the test cases tell what the findings tell, so a CI system never shows a failing
+    /// run as all green: an error finding fails the case it names (`figures.case`, as baseline
+    /// findings carry), else a case about its tensor; error findings with no case of their own
+    /// (a global direction, a whole-run problem) fail one case named `findings`.
+    pub fn fail_cases_for(&mut self, findings: &[Finding]) {
+        let mut loose: Vec<&Finding> = Vec::new();
+        for f in findings.iter().filter(|f| f.severity == Severity::Error) {
+            let named = f.figures.get("case").and_then(|v| v.as_str());
+            let by_name = named.and_then(|n| self.cases.iter().position(|c| c.name == n));
+            let about: Vec<usize> = match &f.tensor {
+                Some(t) => (0..self.cases.len())
+                    .filter(|&i| self.cases[i].tensor.as_deref() == Some(t))
+                    .collect(),
+                None => Vec::new(),
+            };
+            let target = match by_name {
+                Some(i) => Some(i),
+                None if about.iter().any(|&i| !self.cases[i].passed) => continue,
+                None => about.first().copied(),
+            };
+            match target {
+                Some(i) if self.cases[i].passed => {
+                    let c = self.cases[i].clone().failing(&f.code, f.message.clone());
+                    self.cases[i] = c;
+                }
+                Some(_) => {}
+                None => loose.push(f),
+            }
+        }
+        if let Some(first) = loose.first() {
+            let message = loose
+                .iter()
+                .map(|f| format!("{}: {}", f.code, f.message))
+                .collect::<Vec<_>>()
+                .join("\n");
+            self.cases
+                .push(Case::new("findings", false).failing(&first.code, message));
+        }
     }
 
     pub fn push(&mut self, block: Block) {

@@ -115,7 +115,8 @@ fn xml(s: &str) -> String {
             '\'' => out.push_str("&apos;"),
             '\n' => out.push_str("&#10;"),
             '\t' | '\r' => out.push(' '),
-            c if (c as u32) < 0x20 => {}
+            // What XML 1.0 cannot hold at all: other control characters, U+FFFE and U+FFFF.
+            c if (c as u32) < 0x20 || c == '\u{fffe}' || c == '\u{ffff}' => {}
             c => out.push(c),
         }
     }

@@ -326,9 +326,14 @@ fn wrap(text: &str, width_limit: usize) -> Vec<String> {
 }
 
 /// Escapes the characters that would break a Markdown table cell or start markup.
+/// Text for a Markdown table cell or list item: a file or tensor name is shown as written, not
+/// taken for markup, a table pipe or raw HTML.
 fn md(s: &str) -> String {
     s.replace('\\', "\\\\")
         .replace('|', "\\|")
+        .replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
         .replace('\n', " ")
 }
 

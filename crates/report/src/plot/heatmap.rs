@@ -12,6 +12,19 @@ pub struct HeatRow {
     pub values: Vec<f64>,
 }
 
+/// The most cells a row is drawn with: beyond that the SVG grows by megabytes and the cells are
+/// thinner than a pixel.
+const MAX_CELLS: usize = 1000;
+
+/// The largest finite value of a group of units (NaN when none is finite).
+fn worst(group: &[f64]) -> f64 {
+    group
+        .iter()
+        .copied()
+        .filter(|v| v.is_finite())
+        .fold(f64::NAN, f64::max)
+}
+
 /// White at 0, a strong red at 1: a fraction (of dead inputs, of saturated steps) reads as "how bad".
 fn heat_color(fraction: f64) -> RGBColor {
     let t = fraction.clamp(0.0, 1.0);
@@ -43,8 +56,32 @@ fn wrap(text: &str, width: usize) -> Vec<String> {
 /// The first line of `title` is the title; any further lines are a caption printed under the
 /// legend. Rows may differ in length: every cell is as wide as the longest row's would be, so a
 /// unit's position means the same thing in every row. Values that are not finite are left out and
-/// show as the grey of the row's background, distinct from the white of a true 0.
+/// show as the grey of the row's background, distinct from the white of a true 0. Rows of more
+/// than 1,000 units are drawn as 1,000 cells or fewer, each the worst of the units it stands for
+/// (so one dead unit still shows), and the caption says so.
 pub fn heatmap(title: &str, rows: &[HeatRow]) -> Result<String, String> {
+    let widest = rows.iter().map(|r| r.values.len()).max().unwrap_or(0);
+    let per_cell = widest.div_ceil(MAX_CELLS).max(1);
+    let binned: Vec<HeatRow>;
+    let (rows, title) = if per_cell > 1 {
+        binned = rows
+            .iter()
+            .map(|r| HeatRow {
+                label: r.label.clone(),
+                values: r.values.chunks(per_cell).map(worst).collect(),
+            })
+            .collect();
+        let note = format!("each cell is the worst of {per_cell} neighbouring units");
+        let title = if title.contains('\n') {
+            format!("{title} ({note})")
+        } else {
+            format!("{title}\n{note}")
+        };
+        (&binned[..], title)
+    } else {
+        (rows, title.to_string())
+    };
+    let title = title.as_str();
     let (head, caption) = match title.split_once('\n') {
         Some((h, c)) => (h, c.trim()),
         None => (title, ""),
@@ -170,4 +207,30 @@ fn draw_heatmap<DB: DrawingBackend>(
         ))?;
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_wide_layer_is_binned_and_keeps_its_dead_unit() {
+        let mut values = vec![0.0; 100_000];
+        values[54_321] = 1.0;
+        let svg = heatmap(
+            "health",
+            &[HeatRow {
+                label: "layer 1".into(),
+                values,
+            }],
+        )
+        .unwrap();
+        assert!(svg.len() < 400_000, "{} bytes", svg.len());
+        assert!(svg.contains("worst of 100 neighbouring units"));
+        // The dead unit's cell is drawn in the full red of 1.
+        assert!(
+            svg.contains("#BE141E") || svg.to_lowercase().contains("#be141e"),
+            "no red cell"
+        );
+    }
 }

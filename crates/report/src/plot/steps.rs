@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{PALETTE, WIDTH};
+use super::{PALETTE, WIDTH, draw_no_data};
 
 /// One panel of a log-log plot: error against step size, a line per method.
 #[derive(Clone, Debug)]
@@ -35,18 +35,36 @@ fn draw_panel<DB: DrawingBackend>(
     area: &DrawingArea<DB, plotters::coord::Shift>,
     panel: &StepPanel,
 ) -> Result<(), DrawingAreaErrorKind<DB::ErrorType>> {
+    // What a log axis can show: positive and finite, errors within 1e-18..1e6 (a relative error
+    // is at most 2; beyond that the picture says nothing more).
     let finite = |v: f64| v.is_finite() && v > 0.0;
     let xs = &panel.steps;
     let (xmin, xmax) = xs
         .iter()
+        .filter(|&&x| finite(x))
         .fold((f64::MAX, f64::MIN), |(a, b), &x| (a.min(x), b.max(x)));
     let ys: Vec<f64> = panel
         .series
         .iter()
         .flat_map(|(_, v)| v.iter().copied())
         .filter(|&v| finite(v))
+        .map(|v| v.clamp(1e-18, 1e6))
         .collect();
-    let ymin = ys.iter().copied().fold(f64::MAX, f64::min).max(1e-18) / 3.0;
+    if ys.is_empty() || xmin > xmax {
+        area.draw(&Text::new(
+            panel.title.clone(),
+            (12, 12),
+            ("sans-serif", 16).into_font(),
+        ))?;
+        let (w, h) = area.dim_in_pixel();
+        return draw_no_data(area, w as i32 / 2, h as i32 / 2);
+    }
+    let (xmin, xmax) = if xmin < xmax {
+        (xmin, xmax)
+    } else {
+        (xmin / 10.0, xmax * 10.0)
+    };
+    let ymin = ys.iter().copied().fold(f64::MAX, f64::min) / 3.0;
     let ymax = ys.iter().copied().fold(f64::MIN, f64::max).max(ymin * 10.0) * 3.0;
     let mut chart = ChartBuilder::on(area)
         .caption(&panel.title, ("sans-serif", 16))
@@ -67,7 +85,8 @@ fn draw_panel<DB: DrawingBackend>(
             .iter()
             .copied()
             .zip(errs.iter().copied())
-            .filter(|&(_, e)| finite(e))
+            .filter(|&(h, e)| finite(h) && finite(e))
+            .map(|(h, e)| (h, e.clamp(1e-18, 1e6)))
             .collect();
         chart
             .draw_series(LineSeries::new(points.clone(), color.stroke_width(2)))?
@@ -124,8 +143,24 @@ mod tests {
             ],
             marks: vec![("∛ε".into(), 6e-6)],
         };
-        let svg = step_plot(&[panel]).unwrap();
+        let svg = step_plot(std::slice::from_ref(&panel)).unwrap();
         assert!(svg.starts_with("<svg"), "{}", &svg[..100]);
+        // Nothing a log axis can show (a dead unit: every error 0 or NaN), or a single step:
+        // a panel that says so, at once.
+        let empty = StepPanel {
+            series: vec![
+                ("central".into(), vec![0.0; 10]),
+                ("forward".into(), vec![f64::NAN; 10]),
+            ],
+            ..panel.clone()
+        };
+        assert!(step_plot(&[empty]).unwrap().contains("no finite values"));
+        let single = StepPanel {
+            steps: vec![1e-5],
+            series: vec![("central".into(), vec![1e-9])],
+            ..panel
+        };
+        assert!(step_plot(&[single]).unwrap().contains("<polyline"));
         assert!(svg.matches("<polyline").count() >= 2);
         assert!(svg.contains("central") && svg.contains("relative error"));
     }

@@ -26,13 +26,15 @@ const BAND_COLORS: [RGBColor; 4] = [
 /// Errors below this are all "exact" as far as a double can tell; clamping keeps the log axis from
 /// spanning hundreds of empty decades.
 const STRIP_FLOOR: f64 = 1e-18;
+/// A relative error is at most 2; larger values (from another measure) are drawn at 1e6.
+const STRIP_CEILING: f64 = 1e6;
 
 /// Relative errors per tensor on a log axis: a column of dots per series, the column's worst value
 /// marked with a bar, and a dashed line for each `(value, label)` band.
 ///
 /// Dots are spread across the column by their index (not at random) so the same report always
 /// draws the same picture. Values that are zero, negative or not finite cannot be placed on a log
-/// axis and are left out; positive values below 1e-18 are drawn at 1e-18. A column of more than
+/// axis and are left out; positive values below 1e-18 are drawn at 1e-18, above 1e6 at 1e6. A column of more than
 /// 1500 values shows its worst 100 and an even sample of the rest by rank.
 pub fn error_strip(
     title: &str,
@@ -47,7 +49,7 @@ pub fn error_strip(
                 .iter()
                 .copied()
                 .filter(|v| v.is_finite() && *v > 0.0)
-                .map(|v| v.max(STRIP_FLOOR))
+                .map(|v| v.clamp(STRIP_FLOOR, STRIP_CEILING))
                 .collect();
             (shorten(&s.label, 28), thinned(kept))
         })
@@ -56,7 +58,7 @@ pub fn error_strip(
         .iter()
         .copied()
         .filter(|(v, _)| v.is_finite() && *v > 0.0)
-        .map(|(v, l)| (v.max(STRIP_FLOOR), l))
+        .map(|(v, l)| (v.clamp(STRIP_FLOOR, STRIP_CEILING), l))
         .collect();
     bands.sort_by(|a, b| a.0.total_cmp(&b.0));
 
