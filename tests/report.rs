@@ -647,9 +647,10 @@ fn the_html_report_is_self_contained_and_says_its_data_is_invented() {
     assert!(verdict < first_table, "the verdict comes first");
     assert!(html.contains("invented"));
     assert!(html.contains("not a safety assessment"));
-    // Error strip, V-curve, unit heatmap, and a weight histogram per layer.
+    // Error strips (the reference's check, the planted bug), the V-curve, the unit heatmap, and a
+    // weight histogram per layer.
     let sizes = svg_sizes(&html);
-    assert_eq!(sizes.len(), 6, "{sizes:?}");
+    assert_eq!(sizes.len(), 7, "{sizes:?}");
     for caption in [
         "Relative error per tensor",
         "Error against step size",
@@ -733,7 +734,7 @@ fn the_html_report_renders_in_chromium() {
     let html = std::fs::read_to_string(&report).unwrap();
     let (dom, console) = chromium_run(&chrome, &report, &["--dump-dom".into()]);
     assert!(console.is_empty(), "console messages: {console:#?}");
-    assert_eq!(dom.matches("<svg").count(), 6, "the DOM lost plots");
+    assert_eq!(dom.matches("<svg").count(), 7, "the DOM lost plots");
     for element in ["<circle", "<polyline", "<rect", "<text"] {
         assert!(dom.contains(element), "no {element} in the rendered plots");
     }

@@ -369,6 +369,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
          names the one that reproduces each wrong tensor:"
     )));
     doc.push(Block::Table(compare::tensor_table(&bug_tensors)));
+    doc.extend(compare::error_plot(&bug_tensors));
     doc.push(Block::Findings(bug_findings.clone()));
 
     match &probed {

@@ -209,6 +209,11 @@ impl Document {
         }
     }
 
+    /// Appends blocks, e.g. an optional plot.
+    pub fn extend(&mut self, blocks: impl IntoIterator<Item = Block>) {
+        self.blocks.extend(blocks);
+    }
+
     pub fn push(&mut self, block: Block) {
         self.blocks.push(block);
     }
