@@ -101,6 +101,19 @@ fn strip_survives_empty_and_single_inputs() {
     let only_bad = error_strip("bad", &[series("w", &[f64::NAN, 0.0])], &BANDS).unwrap();
     assert_eq!(count(well_formed(&only_bad), "<circle"), 0);
 
+    // Exact agreement (every error 0) is said, not shown as missing data.
+    let exact = error_strip(
+        "exact",
+        &[series("a", &[0.0, 0.0]), series("b", &[1e-12, 0.0])],
+        &BANDS,
+    )
+    .unwrap();
+    let words = texts(well_formed(&exact));
+    assert!(words.contains(&"all exact (0)".to_string()), "{words:?}");
+    assert_eq!(count(&exact, "<circle"), 1);
+    let all_exact = error_strip("exact", &[series("a", &[0.0])], &BANDS).unwrap();
+    assert!(texts(well_formed(&all_exact)).contains(&"every value is exactly 0".to_string()));
+
     let one = error_strip("one", &[series("w", &[3e-9])], &[]).unwrap();
     assert_eq!(count(well_formed(&one), "<circle"), 1);
     // Even one value gets an axis with decades to read it against.

@@ -34,7 +34,8 @@ const STRIP_CEILING: f64 = 1e6;
 ///
 /// Dots are spread across the column by their index (not at random) so the same report always
 /// draws the same picture. Values that are zero, negative or not finite cannot be placed on a log
-/// axis and are left out; positive values below 1e-18 are drawn at 1e-18, above 1e6 at 1e6. A column of more than
+/// axis and are left out (a column of exact zeros says "all exact (0)"); positive values below
+/// 1e-18 are drawn at 1e-18, above 1e6 at 1e6. A column of more than
 /// 1500 values shows its worst 100 and an even sample of the rest by rank.
 pub fn error_strip(
     title: &str,
@@ -53,6 +54,11 @@ pub fn error_strip(
                 .collect();
             (shorten(&s.label, 28), thinned(kept))
         })
+        .collect();
+    // A column of exact agreements has no dot to draw on a log axis: it says so instead.
+    let exact: Vec<bool> = series
+        .iter()
+        .map(|s| !s.values.is_empty() && s.values.iter().all(|&v| v == 0.0))
         .collect();
     let mut bands: Vec<(f64, &str)> = bands
         .iter()
@@ -75,7 +81,7 @@ pub fn error_strip(
     let label_area = if upright { 44 } else { longest + 14 };
     let height = 420 + label_area as u32;
     render_svg(height, |root| {
-        draw_strip(root, title, &columns, &bands, upright, label_area)
+        draw_strip(root, title, &columns, &exact, &bands, upright, label_area)
     })
 }
 
@@ -108,6 +114,7 @@ fn draw_strip<DB: DrawingBackend>(
     area: &Area<DB>,
     title: &str,
     columns: &[(String, Vec<f64>)],
+    exact: &[bool],
     bands: &[(f64, &str)],
     upright: bool,
     label_area: i32,
@@ -217,9 +224,14 @@ fn draw_strip<DB: DrawingBackend>(
                 (x, y),
                 text_style(12, HPos::Center, VPos::Top),
             ))?;
-            if let Some(worst) = worst {
+            let note = match worst {
+                Some(worst) => Some(format!("max {worst:.1e}")),
+                None if exact[i] => Some("all exact (0)".to_string()),
+                None => None,
+            };
+            if let Some(note) = note {
                 area.draw(&Text::new(
-                    format!("max {worst:.1e}"),
+                    note,
                     (x, y + 16),
                     text_style(10, HPos::Center, VPos::Top).color(&BLACK.mix(0.6)),
                 ))?;
@@ -231,7 +243,16 @@ fn draw_strip<DB: DrawingBackend>(
         }
     }
 
-    if columns.iter().all(|(_, v)| v.is_empty()) {
+    if !exact.is_empty() && exact.iter().all(|&e| e) {
+        area.draw(&Text::new(
+            "every value is exactly 0",
+            (
+                (xs.start + xs.end) / 2 - base.0,
+                (ys.start + ys.end) / 2 - base.1,
+            ),
+            text_style(14, HPos::Center, VPos::Center).color(&BLACK.mix(0.5)),
+        ))?;
+    } else if columns.iter().all(|(_, v)| v.is_empty()) {
         draw_no_data(
             area,
             (xs.start + xs.end) / 2 - base.0,
