@@ -618,7 +618,10 @@ pub fn build(
         .collect();
     let step_rule = match facts.step {
         Some(h) => format!("fixed h = {h:e} (--step)"),
-        None => result.method.step_rule().to_string(),
+        None => result
+            .method
+            .step_rule(result.precision.epsilon())
+            .to_string(),
     };
     CheckReport {
         verdict: Verdict::of(&findings),

@@ -595,7 +595,7 @@ fn self_check_report(
     SelfCheck {
         method: cfg.method.name(),
         step_rule: cfg.step.map_or_else(
-            || cfg.method.step_rule().to_string(),
+            || cfg.method.step_rule(cfg.eps).to_string(),
             |h| format!("fixed h = {h:e} (--step)"),
         ),
         tolerance: cfg.tolerance,

@@ -483,10 +483,12 @@ impl Run<'_> {
                 let (j, crossed) = base.perturbed(c, S::from_f64(d));
                 (j.re(), crossed)
             };
-            let h0 =
-                fixed.unwrap_or_else(|| method.default_step(*self.weights.get(c), self.judge.eps));
+            if let Some(h) = fixed {
+                return (method.estimate_at(&f, j0, h, noise, round_to::<S>), false);
+            }
+            let h0 = method.default_step(*self.weights.get(c), self.judge.eps);
             let est = method.estimate(&f, j0, h0, noise, round_to::<S>);
-            if est.crossed && fixed.is_none() {
+            if est.crossed {
                 for r in RETRIES {
                     let e = method.estimate(&f, j0, h0 * r, noise, round_to::<S>);
                     if !e.crossed {
@@ -502,10 +504,12 @@ impl Run<'_> {
                 let (j, crossed) = base.along(&vs, S::from_f64(t));
                 (j.re(), crossed)
             };
-            let h = fixed
-                .unwrap_or_else(|| method.default_step(self.scope_scale(scope), self.judge.eps));
+            if let Some(h) = fixed {
+                return method.estimate_at(&f, j0, h, noise, round_to::<S>);
+            }
+            let h = method.default_step(self.scope_scale(scope), self.judge.eps);
             let est = method.estimate(&f, j0, h, noise, round_to::<S>);
-            if est.crossed && fixed.is_none() {
+            if est.crossed {
                 for r in RETRIES {
                     let e = method.estimate(&f, j0, h * r, noise, round_to::<S>);
                     if !e.crossed {

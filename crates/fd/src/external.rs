@@ -175,7 +175,12 @@ pub fn check_external<E>(
                         crossed(t, k, d),
                     )
                 };
-                let est = method.estimate(&f, f0, step_of(t, k) * factor, noise, round);
+                let h = step_of(t, k) * factor;
+                let est = if config.step.is_some() {
+                    method.estimate_at(&f, f0, h, noise, round)
+                } else {
+                    method.estimate(&f, f0, h, noise, round)
+                };
                 if est.crossed && round_no < RETRIES.len() && config.step.is_none() {
                     next.push(i);
                     if estimates[i].is_none() {
@@ -270,7 +275,11 @@ pub fn check_external<E>(
                     let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
                     (value, (inside.crossed_along)(&v, d))
                 };
-                let e = method.estimate(&f, f0, h, noise, round);
+                let e = if config.step.is_some() {
+                    method.estimate_at(&f, f0, h, noise, round)
+                } else {
+                    method.estimate(&f, f0, h, noise, round)
+                };
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
                 if done {

@@ -49,12 +49,18 @@ const RIDDERS_SAFE: f64 = 2.0;
 /// The complex step's size relative to the parameter: anything far below ε works.
 const COMPLEX_STEP: f64 = 1e-20;
 
-/// Central differences start from h = 2∛ε·max(|θ|, 1) and also take 2h. The optimal step is
-/// (3ε|J|/|J‴|)^(1/3) (NR §5.7); a network's loss bends slowly enough along one weight that this
-/// lies above ∛ε: on six smooth architectures with Glorot and He weights (20 seeds each) the
-/// largest error per coordinate was 4e-8 at ∛ε, 2e-8 at 2∛ε, and 1.2e-8 when each coordinate also
-/// takes 2h where round-off dominates (crates/fd/tests/accuracy.rs keeps it measured).
-const CENTRAL_FACTOR: f64 = 2.0;
+/// In f64, central differences start from h = 2∛ε·max(|θ|, 1) and also take 2h. The optimal
+/// step is (3ε|J|/|J‴|)^(1/3) (NR §5.7); a network's loss bends slowly enough along one weight
+/// that this lies above ∛ε: on six smooth architectures with Glorot and He weights (20 seeds
+/// each) the largest error per coordinate was 4e-8 at ∛ε, 2e-8 at 2∛ε, and 1.2e-8 when each
+/// coordinate also takes 2h where round-off dominates (crates/fd/tests/accuracy.rs keeps it
+/// measured). In f32, ∛ε is already 5e-3: a step twice that leaves the quadratic regime on
+/// networks with large weights, where the two-step bound then undercounts (a review found false
+/// mismatches with weights 4× their initial scale), so f32 keeps h = ∛ε·max(|θ|, 1).
+const CENTRAL_FACTOR_F64: f64 = 2.0;
+
+/// Machine epsilons below this are f64's (or finer).
+const F64_EPSILON_LIMIT: f64 = 1e-10;
 
 impl Method {
     pub const ALL: [Method; 5] = [
@@ -80,12 +86,13 @@ impl Method {
     }
 
     /// The default step for a parameter of value θ in a precision with machine epsilon ε:
-    /// h = c(ε) · max(|θ|, 1), with c = 2∛ε (central), √ε (forward), ε^(1/5) (five-point), 0.01 as
+    /// h = c(ε) · max(|θ|, 1), with c = 2∛ε in f64 and ∛ε in f32 (central), √ε (forward), ε^(1/5) (five-point), 0.01 as
     /// the first step of Ridders' tableau, 1e-20 for the complex step.
     pub fn default_step(&self, theta: f64, eps: f64) -> f64 {
         let scale = theta.abs().max(1.0);
         let c = match self {
-            Method::Central => CENTRAL_FACTOR * eps.cbrt(),
+            Method::Central if eps < F64_EPSILON_LIMIT => CENTRAL_FACTOR_F64 * eps.cbrt(),
+            Method::Central => eps.cbrt(),
             Method::Forward => eps.sqrt(),
             Method::FivePoint => eps.powf(0.2),
             Method::Richardson => RIDDERS_START,
@@ -94,11 +101,14 @@ impl Method {
         c * scale
     }
 
-    /// A sentence stating the step rule, for reports.
-    pub fn step_rule(&self) -> &'static str {
+    /// A sentence stating the step rule in a precision with machine epsilon ε, for reports.
+    pub fn step_rule(&self, eps: f64) -> &'static str {
         match self {
-            Method::Central => {
+            Method::Central if eps < F64_EPSILON_LIMIT => {
                 "h = 2∛ε · max(|θ|, 1), or 2h where round-off dominates (the smaller error bound)"
+            }
+            Method::Central => {
+                "h = ∛ε · max(|θ|, 1), or 2h where round-off dominates (the smaller error bound)"
             }
             Method::Forward => "h = √ε · max(|θ|, 1)",
             Method::FivePoint => "h = ε^(1/5) · max(|θ|, 1)",
@@ -153,6 +163,31 @@ impl Method {
         noise: f64,
         round: fn(f64) -> f64,
     ) -> Estimate {
+        self.estimate_with(f, f0, h, noise, round, true)
+    }
+
+    /// As [`Method::estimate`], but at exactly the step h: central differences do not switch to
+    /// 2h (for a step the user fixed with --step).
+    pub fn estimate_at(
+        &self,
+        f: &dyn Fn(f64) -> (f64, bool),
+        f0: f64,
+        h: f64,
+        noise: f64,
+        round: fn(f64) -> f64,
+    ) -> Estimate {
+        self.estimate_with(f, f0, h, noise, round, false)
+    }
+
+    fn estimate_with(
+        &self,
+        f: &dyn Fn(f64) -> (f64, bool),
+        f0: f64,
+        h: f64,
+        noise: f64,
+        round: fn(f64) -> f64,
+        may_double: bool,
+    ) -> Estimate {
         let h = round(h);
         match self {
             Method::Central => {
@@ -169,7 +204,7 @@ impl Method {
                 let bound1 = 2.0 * t1 + 2.0 * noise / h;
                 let bound2 = 8.0 * t1 + noise / h;
                 let crossed = c1 || c2 || c3 || c4;
-                if bound2 < bound1 {
+                if may_double && bound2 < bound1 {
                     Estimate {
                         value: d2,
                         error: bound2,

@@ -59,8 +59,9 @@ fn relu_networks_raise_no_false_alarm_over_20_seeds() {
 
 /// A sample of zeros with zero biases puts every first-layer unit exactly on its kink: perturbing a
 /// first-layer bias moves it across for any step, so those coordinates are `unreliable`, not
-/// mismatches. A unit 3e-7 from its kink is crossed by the default step (6e-6) but not by one a
-/// hundred times smaller: the retry resolves it.
+/// mismatches. A unit 3e-7 from its kink is crossed by the default step (1.2e-5, reaching out to
+/// 2.4e-5) but not by one a hundred times smaller, whose stencil reaches 2.4e-7: the retry
+/// resolves it.
 #[test]
 fn kinks_are_unreliable_and_retried() {
     let net = Network::new(
@@ -397,4 +398,44 @@ fn relu_directions_in_f32_are_retried_off_their_kinks() {
         judged * 2 > total,
         "only {judged} of {total} directions judged"
     );
+}
+
+/// A deep tanh network whose weights are 4× their He scale, checked in f32: the loss is far from
+/// quadratic over f32's steps (∛ε ≈ 5e-3), and a step twice as long once made correct gradients
+/// fail here (found in review). No false alarm over 20 seeds.
+#[test]
+fn single_precision_with_large_weights_raises_no_false_alarm() {
+    let net = Network::new(
+        10,
+        &[
+            (16, Activation::Tanh),
+            (16, Activation::Tanh),
+            (8, Activation::Tanh),
+            (4, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        0.0,
+    )
+    .unwrap();
+    for seed in 0..20 {
+        let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
+        for layer in w.layers_mut() {
+            layer.mapv_inplace(|v| 4.0 * v);
+        }
+        let batch = Batch::synthetic(&net, 32, seed);
+        let r = check(
+            &net,
+            &w,
+            &batch,
+            &config(Method::Central, Precision::F32),
+            &|_, _| {},
+        )
+        .unwrap();
+        let bad: Vec<_> = r
+            .coords
+            .iter()
+            .filter(|c| c.status == Status::Mismatch)
+            .collect();
+        assert!(bad.is_empty(), "seed {seed}: {bad:?}");
+    }
 }
