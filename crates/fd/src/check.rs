@@ -478,25 +478,34 @@ impl Run<'_> {
         let noise = NOISE * self.judge.eps * j0.abs().max(self.loss_gross);
         let method = self.config.method;
         let fixed = self.config.step;
+        // A fixed step is taken as it is; the default one is retried smaller off a kink.
+        let estimate = |f: &dyn Fn(f64) -> (f64, bool), default_step: f64| match fixed {
+            Some(h) => (
+                method.estimate_with(f, j0, h, noise, round_to::<S>, false),
+                false,
+            ),
+            None => {
+                let est = method.estimate(f, j0, default_step, noise, round_to::<S>);
+                if est.crossed {
+                    for r in RETRIES {
+                        let e = method.estimate(f, j0, default_step * r, noise, round_to::<S>);
+                        if !e.crossed {
+                            return (e, true);
+                        }
+                    }
+                }
+                (est, false)
+            }
+        };
         let coord_checks = self.each_coord(coords, |c| {
             let f = |d: f64| {
                 let (j, crossed) = base.perturbed(c, S::from_f64(d));
                 (j.re(), crossed)
             };
-            if let Some(h) = fixed {
-                return (method.estimate_at(&f, j0, h, noise, round_to::<S>), false);
-            }
-            let h0 = method.default_step(*self.weights.get(c), self.judge.eps);
-            let est = method.estimate(&f, j0, h0, noise, round_to::<S>);
-            if est.crossed {
-                for r in RETRIES {
-                    let e = method.estimate(&f, j0, h0 * r, noise, round_to::<S>);
-                    if !e.crossed {
-                        return (e, true);
-                    }
-                }
-            }
-            (est, false)
+            estimate(
+                &f,
+                method.default_step(*self.weights.get(c), self.judge.eps),
+            )
         });
         let direction_checks = self.each_direction(directions, |scope, v| {
             let vs: Weights<S> = v.cast();
@@ -504,20 +513,11 @@ impl Run<'_> {
                 let (j, crossed) = base.along(&vs, S::from_f64(t));
                 (j.re(), crossed)
             };
-            if let Some(h) = fixed {
-                return method.estimate_at(&f, j0, h, noise, round_to::<S>);
-            }
-            let h = method.default_step(self.scope_scale(scope), self.judge.eps);
-            let est = method.estimate(&f, j0, h, noise, round_to::<S>);
-            if est.crossed {
-                for r in RETRIES {
-                    let e = method.estimate(&f, j0, h * r, noise, round_to::<S>);
-                    if !e.crossed {
-                        return e;
-                    }
-                }
-            }
-            est
+            estimate(
+                &f,
+                method.default_step(self.scope_scale(scope), self.judge.eps),
+            )
+            .0
         });
         (j0, coord_checks, direction_checks)
     }

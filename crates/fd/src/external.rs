@@ -176,11 +176,7 @@ pub fn check_external<E>(
                     )
                 };
                 let h = step_of(t, k) * factor;
-                let est = if config.step.is_some() {
-                    method.estimate_at(&f, f0, h, noise, round)
-                } else {
-                    method.estimate(&f, f0, h, noise, round)
-                };
+                let est = method.estimate_with(&f, f0, h, noise, round, config.step.is_none());
                 if est.crossed && round_no < RETRIES.len() && config.step.is_none() {
                     next.push(i);
                     if estimates[i].is_none() {
@@ -275,11 +271,7 @@ pub fn check_external<E>(
                     let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
                     (value, (inside.crossed_along)(&v, d))
                 };
-                let e = if config.step.is_some() {
-                    method.estimate_at(&f, f0, h, noise, round)
-                } else {
-                    method.estimate(&f, f0, h, noise, round)
-                };
+                let e = method.estimate_with(&f, f0, h, noise, round, config.step.is_none());
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
                 if done {

@@ -166,20 +166,9 @@ impl Method {
         self.estimate_with(f, f0, h, noise, round, true)
     }
 
-    /// As [`Method::estimate`], but at exactly the step h: central differences do not switch to
-    /// 2h (for a step the user fixed with --step).
-    pub fn estimate_at(
-        &self,
-        f: &dyn Fn(f64) -> (f64, bool),
-        f0: f64,
-        h: f64,
-        noise: f64,
-        round: fn(f64) -> f64,
-    ) -> Estimate {
-        self.estimate_with(f, f0, h, noise, round, false)
-    }
-
-    fn estimate_with(
+    /// As [`Method::estimate`]; with `may_double` false, central differences keep exactly the
+    /// step h rather than switching to 2h (for a step the user fixed with --step).
+    pub fn estimate_with(
         &self,
         f: &dyn Fn(f64) -> (f64, bool),
         f0: f64,
