@@ -325,7 +325,6 @@ fn wrap(text: &str, width_limit: usize) -> Vec<String> {
     lines
 }
 
-/// Escapes the characters that would break a Markdown table cell or start markup.
 /// Text for a Markdown table cell or list item: a file or tensor name is shown as written, not
 /// taken for markup, a table pipe or raw HTML.
 fn md(s: &str) -> String {
