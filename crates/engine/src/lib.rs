@@ -20,6 +20,7 @@
 mod activation;
 mod batch;
 mod elementary;
+pub mod graph;
 mod init;
 mod loss;
 mod network;
