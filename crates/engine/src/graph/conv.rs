@@ -11,7 +11,9 @@
 use ndarray::{Array2, ArrayD, ArrayView2, Axis, IxDyn};
 
 use super::window::{Scatter, Window};
-use super::{Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, unravel};
+use super::{
+    Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, reshape, unravel,
+};
 use crate::Scalar;
 
 /// How a convolution pads its input.

@@ -6,7 +6,7 @@
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s};
 
-use super::{Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step};
+use super::{Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, reshape};
 
 /// A dense layer bound to its input shape.
 #[derive(Clone, Debug)]
@@ -55,7 +55,7 @@ impl Dense {
     fn rows<'a, S>(&self, x: ArrayView2<'a, S>) -> ArrayView2<'a, S> {
         let r = self.input.rows();
         x.into_shape_with_order((x.nrows() * r, self.fan_in()))
-            .expect("batch rows are standard layout")
+            .expect("the graph hands layers standard-layout batches")
     }
 }
 
@@ -119,9 +119,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
         let mut z = self.rows(x).dot(&w.t());
         z += &b;
         let m = x.nrows();
-        let out = z
-            .into_shape_with_order((m, self.output().size()))
-            .expect("standard layout");
+        let out = reshape(z, (m, self.output().size()));
         Step::plain(out)
     }
 
@@ -138,18 +136,10 @@ impl<S: LayerScalar> Layer<S> for Dense {
             .into_dimensionality::<Ix2>()
             .expect("weight");
         let r = self.input.rows();
-        let d = dout.to_owned();
-        let d = d
-            .view()
-            .into_shape_with_order((dout.nrows() * r, self.units))
-            .expect("standard layout")
-            .to_owned();
+        let d = reshape(dout.to_owned(), (dout.nrows() * r, self.units));
         let dw = d.t().dot(&self.rows(x));
         let db = d.sum_axis(Axis(0));
-        let dx = d
-            .dot(&w)
-            .into_shape_with_order((x.nrows(), self.input.size()))
-            .expect("standard layout");
+        let dx = reshape(d.dot(&w), (x.nrows(), self.input.size()));
         Back {
             params: vec![dw.into_dyn(), db.into_dyn()],
             dx,

@@ -122,7 +122,7 @@ impl LossConfig {
         if self.reduction == Reduction::Sum {
             d.mapv_inplace(|v| v * S::from_f64(n as f64));
         }
-        d.into_shape_with_order((m, size)).expect("standard layout")
+        super::reshape(d, (m, size))
     }
 }
 

@@ -296,6 +296,17 @@ pub enum ShapeError {
     Epsilon { value: f64 },
 }
 
+/// A matrix reshaped in C order whatever its memory layout (a matrix product may hand back a
+/// column-major result).
+pub(crate) fn reshape<S: Clone>(a: Array2<S>, shape: (usize, usize)) -> Array2<S> {
+    let a = if a.is_standard_layout() {
+        a
+    } else {
+        a.as_standard_layout().into_owned()
+    };
+    a.into_shape_with_order(shape).expect("same element count")
+}
+
 /// The multi-index of flat index `flat` in C order of `shape`.
 pub(crate) fn unravel(mut flat: usize, shape: &[usize]) -> Vec<usize> {
     let mut index = vec![0; shape.len()];
