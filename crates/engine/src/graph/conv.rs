@@ -307,7 +307,8 @@ impl<S: LayerScalar> Layer<S> for Conv {
             });
         }
         let shape = self.weight_shape();
-        let mut dw = dw
+        let dims = dw.dim();
+        let mut dw = reshape(dw, dims)
             .into_shape_with_order(IxDyn(&shape))
             .expect("weight shape");
         if mistake == Some("channels-swapped") {
