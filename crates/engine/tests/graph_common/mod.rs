@@ -112,6 +112,20 @@ pub fn max_relative<'a>(
         .fold(0.0, f64::max)
 }
 
+/// The largest entry-wise |a − r| / max(|a|, |r|, floor): the floor given in absolute terms (a
+/// tensor whose gradient is zero up to rounding — a conv bias under a batch norm — is judged
+/// against the network's gradient scale, not its own).
+pub fn max_relative_floored(got: &[f64], reference: &[f64], floor: f64) -> f64 {
+    assert_eq!(got.len(), reference.len(), "same number of entries");
+    got.iter()
+        .zip(reference)
+        .map(|(&a, &r)| {
+            let den = a.abs().max(r.abs()).max(floor);
+            if den > 0.0 { (a - r).abs() / den } else { 0.0 }
+        })
+        .fold(0.0, f64::max)
+}
+
 /// The worst relative difference over every tensor and the input gradient, and where it is.
 pub fn worst(got: &Gradient<f64>, reference: &Gradient<f64>, floor: f64) -> (f64, String) {
     let mut worst = (0.0, String::new());
