@@ -147,3 +147,19 @@ impl<S: LayerScalar> Layer<S> for Dense {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    // DESIGN §4.3: the augmented matrix is units × (fan-in + 1) with column 0 the bias.
+    #[test]
+    fn augmented_matrix_puts_the_bias_in_column_zero_and_splits_back() {
+        let w = array![[1.0, 2.0, 3.0], [4.0, 5.0, 6.0]];
+        let b = array![7.0, 8.0];
+        let aug = Dense::join(&w, &b);
+        assert_eq!(aug, array![[7.0, 1.0, 2.0, 3.0], [8.0, 4.0, 5.0, 6.0]]);
+        assert_eq!(Dense::split(&aug), (w, b));
+    }
+}
