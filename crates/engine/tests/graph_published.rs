@@ -375,4 +375,45 @@ fn impossible_shapes_are_typed_errors_that_say_what_would_fix_them() {
         GraphBuilder::new(Shape::Flat(3), LossConfig::cross_entropy()).finish(),
         Err(GraphError::NoLayers)
     ));
+
+    // Values that do not fit: named tensor, expected and found shapes; batch sizes.
+    let mut b = GraphBuilder::new(Shape::Flat(3), LossConfig::squared_error());
+    b.push(Some("d"), Activation::Tanh, |s| Dense::new(2, s))
+        .unwrap();
+    let g = b.finish().unwrap();
+    let w = ArrayD::<f64>::zeros(IxDyn(&[3, 2]));
+    let bias = ArrayD::<f64>::zeros(IxDyn(&[2]));
+    assert_eq!(
+        g.check_params(&[w, bias.clone()]),
+        Err(GraphError::TensorShape {
+            name: "d.weight".into(),
+            found: vec![3, 2],
+            expected: vec![2, 3]
+        })
+    );
+    assert!(matches!(
+        g.check_params(&[bias]),
+        Err(GraphError::TensorCount {
+            found: 1,
+            expected: 2
+        })
+    ));
+    let x = Array2::<f64>::zeros((4, 3));
+    assert!(
+        g.check_batch(x.view(), Array2::<f64>::zeros((4, 2)).view())
+            .is_ok()
+    );
+    assert!(
+        g.check_batch(x.view(), Array2::<f64>::zeros((3, 2)).view())
+            .is_err()
+    );
+    assert!(
+        g.check_batch(x.view(), Array2::<f64>::zeros((4, 3)).view())
+            .is_err()
+    );
+    let empty = Array2::<f64>::zeros((0, 3));
+    assert!(
+        g.check_batch(empty.view(), Array2::<f64>::zeros((0, 2)).view())
+            .is_err()
+    );
 }

@@ -101,6 +101,16 @@ pub enum GraphError {
     LossNeedsProbabilities { activation: String },
     #[error("l2 is {value}; it must be a finite number ≥ 0")]
     BadL2 { value: f64 },
+    #[error("{found} parameter tensors were given; the network has {expected}")]
+    TensorCount { found: usize, expected: usize },
+    #[error("tensor {name} has shape {found:?}; the network expects {expected:?}")]
+    TensorShape {
+        name: String,
+        found: Vec<usize>,
+        expected: Vec<usize>,
+    },
+    #[error("the batch {what}")]
+    Batch { what: String },
     #[error("no layer is named \"{name}\"")]
     UnknownLayer { name: String },
     #[error(
@@ -402,7 +412,9 @@ impl Graph {
 
     /// The forward pass over a batch (m × input size).
     pub fn forward<S: LayerScalar>(&self, params: &[ArrayD<S>], x: ArrayView2<S>) -> Trace<S> {
-        self.check_params(params);
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
         let x = x.as_standard_layout();
         let mut steps: Vec<Step<S>> = Vec::with_capacity(self.nodes.len());
         let mut outputs: Vec<Array2<S>> = Vec::with_capacity(self.nodes.len());
@@ -598,17 +610,51 @@ impl Graph {
         )
     }
 
-    /// Panics unless the parameter list fits the graph: one tensor per spec, canonical shapes.
-    /// Callers (formats) check shapes with the user's names first; this guards the engine.
-    fn check_params<S>(&self, params: &[ArrayD<S>]) {
-        assert_eq!(
-            params.len(),
-            self.tensors.len(),
-            "one array per parameter tensor"
-        );
-        for (p, t) in params.iter().zip(&self.tensors) {
-            assert_eq!(p.shape(), &t.spec.shape[..], "tensor {}", t.name);
+    /// Whether a parameter list fits the graph: one tensor per [`TensorSpec`], canonical shapes.
+    /// The passes assume it (and panic otherwise): callers check first.
+    pub fn check_params<S>(&self, params: &[ArrayD<S>]) -> Result<(), GraphError> {
+        if params.len() != self.tensors.len() {
+            return Err(GraphError::TensorCount {
+                found: params.len(),
+                expected: self.tensors.len(),
+            });
         }
+        for (p, t) in params.iter().zip(&self.tensors) {
+            if p.shape() != &t.spec.shape[..] {
+                return Err(GraphError::TensorShape {
+                    name: t.name.clone(),
+                    found: p.shape().to_vec(),
+                    expected: t.spec.shape.clone(),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Whether a batch fits the graph: m ≥ 1 samples of the input's size, targets of the output's.
+    pub fn check_batch<S>(&self, x: ArrayView2<S>, y: ArrayView2<S>) -> Result<(), GraphError> {
+        let what = if x.nrows() == 0 {
+            "has no samples".to_string()
+        } else if x.nrows() != y.nrows() {
+            format!("has {} input rows but {} target rows", x.nrows(), y.nrows())
+        } else if x.ncols() != self.input.size() {
+            format!(
+                "has {} values per sample; the input {} holds {}",
+                x.ncols(),
+                self.input,
+                self.input.size()
+            )
+        } else if y.ncols() != self.output().size() {
+            format!(
+                "has {} targets per sample; the output {} holds {}",
+                y.ncols(),
+                self.output(),
+                self.output().size()
+            )
+        } else {
+            return Ok(());
+        };
+        Err(GraphError::Batch { what })
     }
 }
 
