@@ -376,6 +376,18 @@ fn impossible_shapes_are_typed_errors_that_say_what_would_fix_them() {
         Err(GraphError::NoLayers)
     ));
 
+    let mut b = GraphBuilder::new(Shape::Flat(3), LossConfig::squared_error());
+    assert!(matches!(
+        b.push(None, Activation::LeakyRelu { slope: 1.5 }, |s| Dense::new(
+            2, s
+        )),
+        Err(GraphError::ActivationParameter { layer: 1, .. })
+    ));
+    assert!(matches!(
+        b.push(None, Activation::Elu { alpha: 0.0 }, |s| Dense::new(2, s)),
+        Err(GraphError::ActivationParameter { layer: 1, .. })
+    ));
+
     // Values that do not fit: named tensor, expected and found shapes; batch sizes.
     let mut b = GraphBuilder::new(Shape::Flat(3), LossConfig::squared_error());
     b.push(Some("d"), Activation::Tanh, |s| Dense::new(2, s))

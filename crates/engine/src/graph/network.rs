@@ -99,6 +99,14 @@ pub enum GraphError {
         "cross-entropy needs sigmoid or softmax outputs, but the last layer uses {activation}; change its activation or use squared-error"
     )]
     LossNeedsProbabilities { activation: String },
+    #[error("layer {layer} (\"{name}\"): {what} is {value}; {rule}")]
+    ActivationParameter {
+        layer: usize,
+        name: String,
+        what: &'static str,
+        value: f64,
+        rule: &'static str,
+    },
     #[error("l2 is {value}; it must be a finite number ≥ 0")]
     BadL2 { value: f64 },
     #[error("{found} parameter tensors were given; the network has {expected}")]
@@ -163,6 +171,28 @@ impl GraphBuilder {
                 name,
                 first: first + 1,
             });
+        }
+        let bad = |what, value, rule| GraphError::ActivationParameter {
+            layer,
+            name: name.clone(),
+            what,
+            value,
+            rule,
+        };
+        match activation {
+            Activation::LeakyRelu { slope }
+                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
+            {
+                return Err(bad("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"));
+            }
+            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
+                return Err(bad(
+                    "the elu alpha",
+                    alpha,
+                    "it must be a finite number > 0",
+                ));
+            }
+            _ => {}
         }
         let input = self.shape();
         let built = build(&input).map_err(|source| GraphError::Layer {
