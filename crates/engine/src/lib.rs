@@ -5,6 +5,9 @@
 //! feature, num-dual's dual numbers. Every pass works on a whole batch at once (one sample per row)
 //! with matrix products.
 //!
+//! [`graph`] is the layer graph (convolution, pooling, normalisation, residual additions) that
+//! replaces the dense network step by step (docs/engine.md); nothing outside the engine uses it yet.
+//!
 //! ```
 //! use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
 //!
@@ -20,6 +23,7 @@
 mod activation;
 mod batch;
 mod elementary;
+pub mod graph;
 mod init;
 mod loss;
 mod network;

@@ -1,0 +1,71 @@
+//! `add`: a residual connection. The output is the previous layer's output plus the output of the
+//! earlier layer named by `from` (same shape; the graph checks it); the gradient of the output
+//! flows unchanged into both.
+//!
+//! Catalogued mistake: `skip-gradient-dropped` — the gradient through the connection (to `from`)
+//! left out; only tensors below the tapped layer change.
+
+use ndarray::{ArrayD, ArrayView2};
+
+use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
+
+/// A residual addition bound to its input shape and the name of its tap.
+#[derive(Clone, Debug)]
+pub struct Add {
+    from: String,
+    input: Shape,
+}
+
+impl Add {
+    pub fn new(from: &str, input: &Shape) -> Result<Add, ShapeError> {
+        Ok(Add {
+            from: from.to_string(),
+            input: *input,
+        })
+    }
+}
+
+impl Kind for Add {
+    fn kind(&self) -> &'static str {
+        "add"
+    }
+
+    fn input(&self) -> Shape {
+        self.input
+    }
+
+    fn output(&self) -> Shape {
+        self.input
+    }
+
+    fn mistakes(&self) -> &'static [&'static str] {
+        &["skip-gradient-dropped"]
+    }
+
+    fn tap(&self) -> Option<&str> {
+        Some(&self.from)
+    }
+}
+
+impl<S: LayerScalar> Layer<S> for Add {
+    fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, skip: Option<ArrayView2<S>>) -> Step<S> {
+        let skip = skip.expect("the graph hands `add` its tap");
+        Step::plain(&x + &skip)
+    }
+
+    fn backward(
+        &self,
+        _: &[ArrayD<S>],
+        _: ArrayView2<S>,
+        _: &Step<S>,
+        dout: ArrayView2<S>,
+        mistake: Option<&str>,
+    ) -> Back<S> {
+        let dskip = (mistake != Some("skip-gradient-dropped")).then(|| dout.to_owned());
+        Back {
+            params: Vec::new(),
+            dx: dout.to_owned(),
+            dskip,
+        }
+    }
+}

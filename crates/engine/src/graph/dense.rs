@@ -1,0 +1,165 @@
+//! `dense`: z = W x + b, W units × fan-in. On a sequence it applies to every step.
+//!
+//! Storage (DESIGN §4.3): the canonical tensors are the split ones (`weight` units × fan-in,
+//! `bias`); `split-transposed` is the permutation `io` of `oi` ([`super::Storage`]); the augmented
+//! matrix is [`Dense::join`] / [`Dense::split`].
+
+use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s};
+
+use super::{Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, reshape};
+
+/// A dense layer bound to its input shape.
+#[derive(Clone, Debug)]
+pub struct Dense {
+    units: usize,
+    input: Shape,
+}
+
+impl Dense {
+    pub fn new(units: usize, input: &Shape) -> Result<Dense, ShapeError> {
+        if units == 0 {
+            return Err(ShapeError::Zero { key: "units" });
+        }
+        match input {
+            Shape::Flat(_) | Shape::Sequence { .. } => Ok(Dense {
+                units,
+                input: *input,
+            }),
+            _ => Err(ShapeError::Input {
+                kind: "dense",
+                needs: "[features] or [steps, width]",
+                found: *input,
+                fix: "put a flatten or global-avg-pool layer before it",
+            }),
+        }
+    }
+
+    fn fan_in(&self) -> usize {
+        self.input.size() / self.input.rows()
+    }
+
+    /// The augmented matrix units × (fan-in + 1), column 0 the bias, from the split tensors.
+    pub fn join<T: Clone>(weight: &Array2<T>, bias: &Array1<T>) -> Array2<T> {
+        concatenate![Axis(1), bias.view().insert_axis(Axis(1)), weight.view()]
+    }
+
+    /// The split tensors (weight, bias) of an augmented matrix.
+    pub fn split<T: Clone>(augmented: &Array2<T>) -> (Array2<T>, Array1<T>) {
+        (
+            augmented.slice(s![.., 1..]).to_owned(),
+            augmented.column(0).to_owned(),
+        )
+    }
+
+    /// (m · rows) × fan-in: one row per sample and step.
+    fn rows<'a, S>(&self, x: ArrayView2<'a, S>) -> ArrayView2<'a, S> {
+        let r = self.input.rows();
+        x.into_shape_with_order((x.nrows() * r, self.fan_in()))
+            .expect("the graph hands layers standard-layout batches")
+    }
+}
+
+impl Kind for Dense {
+    fn kind(&self) -> &'static str {
+        "dense"
+    }
+
+    fn input(&self) -> Shape {
+        self.input
+    }
+
+    fn output(&self) -> Shape {
+        match self.input {
+            Shape::Sequence { steps, .. } => Shape::Sequence {
+                steps,
+                width: self.units,
+            },
+            _ => Shape::Flat(self.units),
+        }
+    }
+
+    fn params(&self) -> Vec<ParamSpec> {
+        vec![
+            ParamSpec {
+                suffix: "weight",
+                shape: vec![self.units, self.fan_in()],
+                role: Role::Weight,
+                decays: true,
+                fan_in: self.fan_in(),
+                fan_out: self.units,
+            },
+            ParamSpec {
+                suffix: "bias",
+                shape: vec![self.units],
+                role: Role::Bias,
+                decays: false,
+                fan_in: 1,
+                fan_out: self.units,
+            },
+        ]
+    }
+
+    fn locate(&self, tensor: usize, flat: usize) -> String {
+        if tensor == 1 {
+            format!("unit {flat}")
+        } else {
+            let n = self.fan_in();
+            format!("unit {}, input {}", flat / n, flat % n)
+        }
+    }
+}
+
+impl<S: LayerScalar> Layer<S> for Dense {
+    fn forward(&self, params: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+        let w = params[0]
+            .view()
+            .into_dimensionality::<Ix2>()
+            .expect("weight");
+        let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+        let mut z = self.rows(x).dot(&w.t());
+        z += &b;
+        let m = x.nrows();
+        let out = reshape(z, (m, self.output().size()));
+        Step::plain(out)
+    }
+
+    fn backward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: &Step<S>,
+        dout: ArrayView2<S>,
+        _: Option<&str>,
+    ) -> Back<S> {
+        let w = params[0]
+            .view()
+            .into_dimensionality::<Ix2>()
+            .expect("weight");
+        let r = self.input.rows();
+        let d = reshape(dout.to_owned(), (dout.nrows() * r, self.units));
+        let dw = d.t().dot(&self.rows(x));
+        let db = d.sum_axis(Axis(0));
+        let dx = reshape(d.dot(&w), (x.nrows(), self.input.size()));
+        Back {
+            params: vec![dw.into_dyn(), db.into_dyn()],
+            dx,
+            dskip: None,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    // DESIGN §4.3: the augmented matrix is units × (fan-in + 1) with column 0 the bias.
+    #[test]
+    fn augmented_matrix_puts_the_bias_in_column_zero_and_splits_back() {
+        let w = array![[1.0, 2.0, 3.0], [4.0, 5.0, 6.0]];
+        let b = array![7.0, 8.0];
+        let aug = Dense::join(&w, &b);
+        assert_eq!(aug, array![[7.0, 1.0, 2.0, 3.0], [8.0, 4.0, 5.0, 6.0]]);
+        assert_eq!(Dense::split(&aug), (w, b));
+    }
+}

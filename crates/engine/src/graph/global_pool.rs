@@ -1,0 +1,81 @@
+//! `global-avg-pool`: each channel's mean over its positions, [channels, …] → [channels].
+
+use ndarray::{Array2, ArrayD, ArrayView2};
+
+use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
+
+/// A global average pool bound to its input shape.
+#[derive(Clone, Debug)]
+pub struct GlobalAvgPool {
+    input: Shape,
+    channels: usize,
+    positions: usize,
+}
+
+impl GlobalAvgPool {
+    pub fn new(input: &Shape) -> Result<GlobalAvgPool, ShapeError> {
+        let (channels, hw) = input.spatial().ok_or(ShapeError::Input {
+            kind: "global-avg-pool",
+            needs: "[channels, length] or [channels, height, width]",
+            found: *input,
+            fix: "remove it: the input has no positions to average over",
+        })?;
+        Ok(GlobalAvgPool {
+            input: *input,
+            channels,
+            positions: hw[0] * hw[1],
+        })
+    }
+}
+
+impl Kind for GlobalAvgPool {
+    fn kind(&self) -> &'static str {
+        "global-avg-pool"
+    }
+
+    fn input(&self) -> Shape {
+        self.input
+    }
+
+    fn output(&self) -> Shape {
+        Shape::Flat(self.channels)
+    }
+}
+
+impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
+    fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+        let (p, scale) = (
+            self.positions,
+            S::one() / S::from_f64(self.positions as f64),
+        );
+        let out = Array2::from_shape_fn((x.nrows(), self.channels), |(i, c)| {
+            x.row(i)
+                .iter()
+                .skip(c * p)
+                .take(p)
+                .fold(S::zero(), |acc, &v| acc + v)
+                * scale
+        });
+        Step::plain(out)
+    }
+
+    fn backward(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: &Step<S>,
+        dout: ArrayView2<S>,
+        _: Option<&str>,
+    ) -> Back<S> {
+        let (p, scale) = (
+            self.positions,
+            S::one() / S::from_f64(self.positions as f64),
+        );
+        let dx = Array2::from_shape_fn(x.raw_dim(), |(i, q)| dout[[i, q / p]] * scale);
+        Back {
+            params: Vec::new(),
+            dx,
+            dskip: None,
+        }
+    }
+}

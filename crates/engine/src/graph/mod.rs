@@ -1,0 +1,318 @@
+//! The layer graph: a chain of layers of many kinds (dense, convolution, pooling, normalisation,
+//! residual additions) with named taps, its loss under the description's conventions, and the
+//! analytic backward pass with the input gradient and per-kind catalogued mistakes.
+//!
+//! Each kind is one module that provides everything about it: the output shape from the input
+//! shape (with typed errors), its parameter tensors ([`ParamSpec`]), the forward and backward pass
+//! generic over the scalar ([`Layer`]), the branches it takes at non-smooth points, and its
+//! mistakes. The graph never matches on kinds: it holds `Box<dyn AnyLayer>` and asks each scalar
+//! for its view of the layer ([`LayerScalar::layer`]). Adding a kind is adding a file.
+//!
+//! Activations flow between layers as `Array2<S>`: one sample per row, the sample's values in C
+//! order of its [`Shape`] ([channels, height, width] for an image).
+//!
+//! ```
+//! use ndarray::{Array2, ArrayD, IxDyn};
+//! use plumb_engine::Activation;
+//! use plumb_engine::graph::{Conv, ConvSettings, Dense, Flatten, GraphBuilder, LossConfig, Shape};
+//!
+//! let mut b = GraphBuilder::new(Shape::Signal { channels: 2, length: 9 }, LossConfig::squared_error());
+//! b.push(None, Activation::Relu, |s| Conv::new(&ConvSettings::conv1d(3, 3), s))?;
+//! b.push(None, Activation::Identity, |s| Flatten::new(s))?;
+//! b.push(None, Activation::Identity, |s| Dense::new(1, s))?;
+//! let g = b.finish()?;
+//! let params: Vec<ArrayD<f64>> =
+//!     g.tensors().iter().map(|t| ArrayD::from_elem(IxDyn(&t.spec.shape), 0.1)).collect();
+//! let x = Array2::from_elem((4, 18), 0.5);
+//! let y = Array2::zeros((4, 1));
+//! let grad = g.gradient(&params, x.view(), y.view(), None);
+//! assert_eq!(grad.params[0].shape(), &[3, 2, 3]); // out-channels × in-channels × kernel
+//! assert_eq!(grad.input.dim(), (4, 18));
+//! # Ok::<(), plumb_engine::graph::GraphError>(())
+//! ```
+
+mod add;
+mod batch_norm;
+mod conv;
+mod dense;
+mod flatten;
+mod global_pool;
+mod layer_norm;
+mod loss;
+mod network;
+mod norm;
+mod pool;
+mod rms_norm;
+mod shape;
+mod storage;
+mod window;
+
+use std::fmt::Debug;
+
+use ndarray::{Array2, ArrayD, ArrayView2};
+use num_complex::{Complex32, Complex64};
+use thiserror::Error;
+
+use crate::Scalar;
+
+pub use add::Add;
+pub use batch_norm::BatchNorm;
+pub use conv::{Conv, ConvSettings, Padding};
+pub use dense::Dense;
+pub use flatten::Flatten;
+pub use global_pool::GlobalAvgPool;
+pub use layer_norm::LayerNorm;
+pub use loss::{L2Divisor, LossConfig, Reduction};
+pub use network::{
+    Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, TensorSpec,
+    Trace,
+};
+pub use pool::{Pool, PoolKind};
+pub use rms_norm::RmsNorm;
+pub use shape::Shape;
+pub use storage::{Storage, StorageError};
+pub use window::output_size;
+
+/// What a parameter tensor is for: it decides L2 decay, initialisation and the audit's measures.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Role {
+    Weight,
+    Bias,
+    Scale,
+    Shift,
+    Table,
+}
+
+/// One parameter tensor a layer declares, in its canonical axis order.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ParamSpec {
+    /// The name after the layer's prefix: "weight", "bias", "scale", "shift".
+    pub suffix: &'static str,
+    /// Canonical shape: a dense weight is units × fan-in, a conv weight o × i × (h × w | k).
+    pub shape: Vec<usize>,
+    pub role: Role,
+    /// Whether the L2 term covers it (weights do; biases only under `l2-on-bias`).
+    pub decays: bool,
+    /// The values one output reads (a conv's fan-in is in-channels × kernel area, He et al. 2015).
+    pub fan_in: usize,
+    /// The outputs one input value feeds through this tensor.
+    pub fan_out: usize,
+}
+
+/// What a layer's forward pass hands on: its output (before the graph's activation) and what its
+/// backward pass needs again.
+#[derive(Clone, Debug)]
+pub struct Step<S> {
+    /// m × output size.
+    pub out: Array2<S>,
+    /// Whatever the kind keeps for its backward pass (columns of a convolution, a norm's x̂ …).
+    pub saved: Vec<ArrayD<S>>,
+    /// The branch the kind took at each non-smooth point (max-pool: the argmax of each window as
+    /// an index into the sample's input); empty for smooth kinds.
+    pub branches: Vec<u32>,
+    /// How many of those choices were ties at this point (a tie is itself a non-smooth point).
+    pub ties: usize,
+}
+
+impl<S> Step<S> {
+    /// A step that keeps nothing and branches nowhere.
+    pub fn plain(out: Array2<S>) -> Self {
+        Step {
+            out,
+            saved: Vec::new(),
+            branches: Vec::new(),
+            ties: 0,
+        }
+    }
+}
+
+/// What a layer's backward pass returns.
+#[derive(Clone, Debug)]
+pub struct Back<S> {
+    /// One gradient per declared parameter tensor, canonical shapes.
+    pub params: Vec<ArrayD<S>>,
+    /// The gradient with respect to the layer's input (m × input size).
+    pub dx: Array2<S>,
+    /// The gradient with respect to the tapped layer's output (`add` only); `None` when none
+    /// flows there.
+    pub dskip: Option<Array2<S>>,
+}
+
+/// The scalar-free side of a layer kind: shapes, parameters, mistakes.
+pub trait Kind: Send + Sync + Debug {
+    /// The description's name of the kind ("conv2d", "batch-norm", …).
+    fn kind(&self) -> &'static str;
+    /// One sample's shape going in.
+    fn input(&self) -> Shape;
+    /// One sample's shape coming out.
+    fn output(&self) -> Shape;
+    /// The parameter tensors, in the order [`Layer`] receives them.
+    fn params(&self) -> Vec<ParamSpec> {
+        Vec::new()
+    }
+    /// The catalogued mistake codes (DESIGN §7) this kind's backward pass can reproduce.
+    fn mistakes(&self) -> &'static [&'static str] {
+        &[]
+    }
+    /// The earlier layer whose output this one reads besides its input (`add`'s `from`).
+    fn tap(&self) -> Option<&str> {
+        None
+    }
+    /// Whether the forward pass records branch choices in [`Step::branches`].
+    fn branches(&self) -> bool {
+        false
+    }
+    /// A flat index of parameter tensor `tensor` in the layer's own terms (unit, channel, kernel
+    /// position). The default names the canonical multi-index.
+    fn locate(&self, tensor: usize, flat: usize) -> String {
+        let shape = &self.params()[tensor].shape;
+        format!("index {:?}", unravel(flat, shape))
+    }
+}
+
+/// The forward and backward pass of a kind in one scalar type.
+pub trait Layer<S: LayerScalar>: Send + Sync {
+    /// The layer's output for a batch `x` (m × input size); `skip` is the tapped layer's output
+    /// when the kind has a [tap](Kind::tap).
+    fn forward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+    ) -> Step<S>;
+
+    /// The gradients of the layer's parameters and input from `dout`, the gradient of its output.
+    /// `mistake`, one of the kind's [catalogued codes](Kind::mistakes), asks for the gradient that
+    /// mistake would produce instead.
+    fn backward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        step: &Step<S>,
+        dout: ArrayView2<S>,
+        mistake: Option<&str>,
+    ) -> Back<S>;
+}
+
+/// Dual numbers join the scalars a layer must support when the `dual` feature is on.
+#[cfg(feature = "dual")]
+pub trait DualLayer: Layer<num_dual::Dual64> {}
+#[cfg(feature = "dual")]
+impl<T: Layer<num_dual::Dual64> + ?Sized> DualLayer for T {}
+/// Dual numbers join the scalars a layer must support when the `dual` feature is on.
+#[cfg(not(feature = "dual"))]
+pub trait DualLayer {}
+#[cfg(not(feature = "dual"))]
+impl<T: ?Sized> DualLayer for T {}
+
+/// A layer in every scalar the engine computes in: what the graph holds.
+pub trait AnyLayer:
+    Kind + Layer<f64> + Layer<f32> + Layer<Complex64> + Layer<Complex32> + DualLayer
+{
+}
+
+impl<T> AnyLayer for T where
+    T: Kind + Layer<f64> + Layer<f32> + Layer<Complex64> + Layer<Complex32> + DualLayer
+{
+}
+
+/// The scalars the graph computes in: [`Scalar`] plus what the new kinds need (a square root for
+/// the norms) and the way to see a layer in this scalar.
+///
+/// Kept apart from [`Scalar`] while the dense engine still uses that alone; the two merge when it
+/// moves onto the graph.
+pub trait LayerScalar: Scalar + 'static {
+    fn sqrt(self) -> Self;
+    /// This scalar's view of a layer (trait upcasting).
+    fn layer(layer: &dyn AnyLayer) -> &dyn Layer<Self>;
+}
+
+macro_rules! layer_scalar {
+    ($t:ty, $sqrt:expr) => {
+        impl LayerScalar for $t {
+            #[inline]
+            fn sqrt(self) -> Self {
+                $sqrt(self)
+            }
+            fn layer(layer: &dyn AnyLayer) -> &dyn Layer<Self> {
+                layer
+            }
+        }
+    };
+}
+
+layer_scalar!(f64, f64::sqrt);
+layer_scalar!(f32, f32::sqrt);
+layer_scalar!(Complex64, Complex64::sqrt);
+layer_scalar!(Complex32, Complex32::sqrt);
+#[cfg(feature = "dual")]
+layer_scalar!(num_dual::Dual64, |v: num_dual::Dual64| {
+    num_dual::DualNum::sqrt(&v)
+});
+
+/// Why a layer cannot take the shape it is given.
+#[derive(Clone, Debug, PartialEq, Error)]
+pub enum ShapeError {
+    #[error("{kind} reads {needs}, but its input is {found}; {fix}")]
+    Input {
+        kind: &'static str,
+        needs: &'static str,
+        found: Shape,
+        fix: &'static str,
+    },
+    #[error("`{key}` is 0; it must be at least 1")]
+    Zero { key: &'static str },
+    #[error(
+        "the {axis} kernel spans {extent} positions (kernel {kernel}, dilation {dilation}) but the padded input has {padded}; use a smaller kernel or dilation, or pad by at least {need} more"
+    )]
+    KernelTooLarge {
+        axis: &'static str,
+        kernel: usize,
+        dilation: usize,
+        extent: usize,
+        padded: usize,
+        need: usize,
+    },
+    #[error(
+        "the {axis} window has {size} positions but the input has {found}; use a window of at most {found}"
+    )]
+    WindowTooLarge {
+        axis: &'static str,
+        size: usize,
+        found: usize,
+    },
+    #[error(
+        "`padding = \"same\"` needs stride 1 (stride is {stride}); give the padding as a number"
+    )]
+    SameNeedsStride1 { stride: usize },
+    #[error("`{key}` has {found} values; {kind} takes {needs}")]
+    Arity {
+        key: &'static str,
+        kind: &'static str,
+        found: usize,
+        needs: usize,
+    },
+    #[error("`epsilon` is {value}; it must be a finite number > 0")]
+    Epsilon { value: f64 },
+}
+
+/// A matrix reshaped in C order whatever its memory layout (a matrix product may hand back a
+/// column-major result).
+pub(crate) fn reshape<S: Clone>(a: Array2<S>, shape: (usize, usize)) -> Array2<S> {
+    let a = if a.is_standard_layout() {
+        a
+    } else {
+        a.as_standard_layout().into_owned()
+    };
+    a.into_shape_with_order(shape).expect("same element count")
+}
+
+/// The multi-index of flat index `flat` in C order of `shape`.
+pub(crate) fn unravel(mut flat: usize, shape: &[usize]) -> Vec<usize> {
+    let mut index = vec![0; shape.len()];
+    for (slot, &n) in index.iter_mut().zip(shape).rev() {
+        *slot = flat % n.max(1);
+        flat /= n.max(1);
+    }
+    index
+}

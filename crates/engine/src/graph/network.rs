@@ -1,0 +1,696 @@
+//! The graph: a chain of layers with named taps, its forward pass (with the branches taken at
+//! non-smooth points), its loss and the backward pass down to the input.
+
+use std::ops::Range;
+
+use ndarray::{Array2, ArrayD, ArrayView2, Zip};
+use thiserror::Error;
+
+use super::loss::by_rows;
+use super::{AnyLayer, LayerScalar, LossConfig, ParamSpec, Role, Shape, ShapeError, Step};
+use crate::{Activation, Scalar};
+
+/// One layer of the graph: its kind, the activation the graph applies after it, its name.
+#[derive(Debug)]
+pub struct Node {
+    /// The description's `name`, default `layerJ` (J counting every layer from 1).
+    pub name: String,
+    pub layer: Box<dyn AnyLayer>,
+    pub activation: Activation,
+    /// The index of the layer named by the kind's tap.
+    tap: Option<usize>,
+    /// This layer's tensors in the graph's list.
+    tensors: Range<usize>,
+}
+
+impl Node {
+    /// The indices of this layer's tensors in [`Graph::tensors`].
+    pub fn tensors(&self) -> Range<usize> {
+        self.tensors.clone()
+    }
+}
+
+/// One parameter tensor of the graph: a parameter is identified by (tensor index, flat index).
+#[derive(Clone, Debug, PartialEq)]
+pub struct TensorSpec {
+    /// `prefix.suffix`, the prefix being the layer's name.
+    pub name: String,
+    /// The index of its layer.
+    pub layer: usize,
+    pub spec: ParamSpec,
+}
+
+/// Why a graph cannot be built, or a request on it not served. Layers are numbered from 1.
+#[derive(Clone, Debug, PartialEq, Error)]
+pub enum GraphError {
+    #[error("layer {layer} (\"{name}\"): {source}")]
+    Layer {
+        layer: usize,
+        name: String,
+        source: ShapeError,
+    },
+    #[error("the network has no layers: add at least one [[layer]]")]
+    NoLayers,
+    #[error("the input has a zero-length axis ({shape}); every axis needs at least 1")]
+    EmptyInput { shape: Shape },
+    #[error(
+        "layer {layer}: the name \"{name}\" is already used by layer {first}; names must be unique"
+    )]
+    DuplicateName {
+        layer: usize,
+        name: String,
+        first: usize,
+    },
+    #[error(
+        "layer {layer} (\"{name}\"): `from = \"{from}\"` names no earlier layer; name one of the layers above it"
+    )]
+    TapUnknown {
+        layer: usize,
+        name: String,
+        from: String,
+    },
+    #[error(
+        "layer {layer} (\"{name}\"): `from = \"{from}\"` has output {found} but the layer's input is {expected}; the two must have the same shape"
+    )]
+    TapShape {
+        layer: usize,
+        name: String,
+        from: String,
+        found: Shape,
+        expected: Shape,
+    },
+    #[error(
+        "layer {layer} (\"{name}\") uses softmax, which is only allowed on the last layer; use another activation there"
+    )]
+    SoftmaxHidden { layer: usize, name: String },
+    #[error(
+        "layer {layer} (\"{name}\"): softmax is over the last axis of [features] or [steps, width] outputs, but this output is {shape}; add flatten or global-avg-pool and a dense layer"
+    )]
+    SoftmaxShape {
+        layer: usize,
+        name: String,
+        shape: Shape,
+    },
+    #[error(
+        "layer {layer} (\"{name}\"): a softmax over a single value is always 1; use sigmoid for one output"
+    )]
+    SoftmaxSingle { layer: usize, name: String },
+    #[error(
+        "cross-entropy needs sigmoid or softmax outputs, but the last layer uses {activation}; change its activation or use squared-error"
+    )]
+    LossNeedsProbabilities { activation: String },
+    #[error("layer {layer} (\"{name}\"): {what} is {value}; {rule}")]
+    ActivationParameter {
+        layer: usize,
+        name: String,
+        what: &'static str,
+        value: f64,
+        rule: &'static str,
+    },
+    #[error("l2 is {value}; it must be a finite number ≥ 0")]
+    BadL2 { value: f64 },
+    #[error("{found} parameter tensors were given; the network has {expected}")]
+    TensorCount { found: usize, expected: usize },
+    #[error("tensor {name} has shape {found:?}; the network expects {expected:?}")]
+    TensorShape {
+        name: String,
+        found: Vec<usize>,
+        expected: Vec<usize>,
+    },
+    #[error("the batch {what}")]
+    Batch { what: String },
+    #[error("no layer is named \"{name}\"")]
+    UnknownLayer { name: String },
+    #[error(
+        "layer \"{name}\" is a {kind}, whose mistakes are {known:?}; \"{code}\" is not one of them"
+    )]
+    UnknownMistake {
+        name: String,
+        kind: &'static str,
+        code: String,
+        known: &'static [&'static str],
+    },
+}
+
+/// Builds a graph layer by layer; each layer is made from the shape the previous one produces.
+#[derive(Debug)]
+pub struct GraphBuilder {
+    input: Shape,
+    loss: LossConfig,
+    nodes: Vec<Node>,
+    tensors: Vec<TensorSpec>,
+}
+
+impl GraphBuilder {
+    pub fn new(input: Shape, loss: LossConfig) -> Self {
+        GraphBuilder {
+            input,
+            loss,
+            nodes: Vec::new(),
+            tensors: Vec::new(),
+        }
+    }
+
+    /// The shape the next layer reads.
+    pub fn shape(&self) -> Shape {
+        self.nodes.last().map_or(self.input, |n| n.layer.output())
+    }
+
+    /// Appends a layer built by `build` from the current shape. `name` defaults to `layerJ`.
+    pub fn push<L: AnyLayer + 'static>(
+        &mut self,
+        name: Option<&str>,
+        activation: Activation,
+        build: impl FnOnce(&Shape) -> Result<L, ShapeError>,
+    ) -> Result<&mut Self, GraphError> {
+        let layer = self.nodes.len() + 1;
+        let name = name.map_or_else(|| format!("layer{layer}"), str::to_string);
+        if let Some(first) = self.nodes.iter().position(|n| n.name == name) {
+            return Err(GraphError::DuplicateName {
+                layer,
+                name,
+                first: first + 1,
+            });
+        }
+        let bad = |what, value, rule| GraphError::ActivationParameter {
+            layer,
+            name: name.clone(),
+            what,
+            value,
+            rule,
+        };
+        match activation {
+            Activation::LeakyRelu { slope }
+                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
+            {
+                return Err(bad("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"));
+            }
+            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
+                return Err(bad(
+                    "the elu alpha",
+                    alpha,
+                    "it must be a finite number > 0",
+                ));
+            }
+            _ => {}
+        }
+        let input = self.shape();
+        let built = build(&input).map_err(|source| GraphError::Layer {
+            layer,
+            name: name.clone(),
+            source,
+        })?;
+        let tap = match built.tap() {
+            None => None,
+            Some(from) => {
+                let t = self
+                    .nodes
+                    .iter()
+                    .position(|n| n.name == from)
+                    .ok_or_else(|| GraphError::TapUnknown {
+                        layer,
+                        name: name.clone(),
+                        from: from.to_string(),
+                    })?;
+                let found = self.nodes[t].layer.output();
+                if found != input {
+                    return Err(GraphError::TapShape {
+                        layer,
+                        name,
+                        from: from.to_string(),
+                        found,
+                        expected: input,
+                    });
+                }
+                Some(t)
+            }
+        };
+        let start = self.tensors.len();
+        for spec in built.params() {
+            self.tensors.push(TensorSpec {
+                name: format!("{name}.{}", spec.suffix),
+                layer: layer - 1,
+                spec,
+            });
+        }
+        self.nodes.push(Node {
+            name,
+            layer: Box::new(built),
+            activation,
+            tap,
+            tensors: start..self.tensors.len(),
+        });
+        Ok(self)
+    }
+
+    /// Checks the rules that concern the whole chain and returns the graph.
+    pub fn finish(self) -> Result<Graph, GraphError> {
+        if self.nodes.is_empty() {
+            return Err(GraphError::NoLayers);
+        }
+        if self.input.dims().contains(&0) {
+            return Err(GraphError::EmptyInput { shape: self.input });
+        }
+        if !(self.loss.l2.is_finite() && self.loss.l2 >= 0.0) {
+            return Err(GraphError::BadL2 {
+                value: self.loss.l2,
+            });
+        }
+        let last = self.nodes.len() - 1;
+        for (j, node) in self.nodes.iter().enumerate() {
+            if node.activation != Activation::Softmax {
+                continue;
+            }
+            let (layer, name) = (j + 1, node.name.clone());
+            let shape = node.layer.output();
+            if j != last {
+                return Err(GraphError::SoftmaxHidden { layer, name });
+            }
+            if !matches!(shape, Shape::Flat(_) | Shape::Sequence { .. }) {
+                return Err(GraphError::SoftmaxShape { layer, name, shape });
+            }
+            if shape.size() / shape.rows() == 1 {
+                return Err(GraphError::SoftmaxSingle { layer, name });
+            }
+        }
+        let output = self.nodes[last].activation;
+        if !self.loss.loss.accepts(output) {
+            return Err(GraphError::LossNeedsProbabilities {
+                activation: output.to_string(),
+            });
+        }
+        Ok(Graph {
+            input: self.input,
+            loss: self.loss,
+            nodes: self.nodes,
+            tensors: self.tensors,
+        })
+    }
+}
+
+/// A chain of layers with taps, its loss and conventions: the architecture without its values.
+#[derive(Debug)]
+pub struct Graph {
+    input: Shape,
+    loss: LossConfig,
+    nodes: Vec<Node>,
+    tensors: Vec<TensorSpec>,
+}
+
+/// What the forward pass leaves for the backward pass and for inspection.
+#[derive(Clone, Debug)]
+pub struct Trace<S> {
+    /// Per layer, its kind's step (output before the activation, and what it saved).
+    pub steps: Vec<Step<S>>,
+    /// Per layer, its output after the activation.
+    pub outputs: Vec<Array2<S>>,
+}
+
+impl<S> Trace<S> {
+    /// The network's output for the batch.
+    pub fn output(&self) -> &Array2<S> {
+        self.outputs.last().expect("a graph has at least one layer")
+    }
+}
+
+/// The branches one layer took: its kind's choices and its activation's sides.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct LayerBranches {
+    /// The kind's choices ([`Step::branches`]).
+    pub kind: Vec<u32>,
+    /// For a ReLU-like activation, per value whether z > 0; empty for smooth activations.
+    pub sides: Vec<bool>,
+    /// Choices that were ties (max-pool) plus values sitting exactly on the activation's kink.
+    pub ties: usize,
+}
+
+/// The branches a forward pass took at every non-smooth point: two evaluations whose branches are
+/// equal lie on one smooth piece (as far as the graph's kinks go).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Branches {
+    pub layers: Vec<LayerBranches>,
+}
+
+impl Branches {
+    /// The layers (0-based) whose branches differ between two evaluations of the same graph.
+    pub fn changed(&self, other: &Branches) -> Vec<usize> {
+        self.layers
+            .iter()
+            .zip(&other.layers)
+            .enumerate()
+            .filter(|(_, (a, b))| a.kind != b.kind || a.sides != b.sides)
+            .map(|(j, _)| j)
+            .collect()
+    }
+
+    /// Whether the evaluation sat on a tie or a kink itself.
+    pub fn ties(&self) -> usize {
+        self.layers.iter().map(|l| l.ties).sum()
+    }
+}
+
+/// A catalogued mistake planted in one layer's backward pass (checked against its kind).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Planted {
+    layer: usize,
+    code: &'static str,
+}
+
+impl Planted {
+    /// The layer (0-based) whose backward pass departs.
+    pub fn layer(&self) -> usize {
+        self.layer
+    }
+
+    pub fn code(&self) -> &'static str {
+        self.code
+    }
+}
+
+/// The loss and its gradient with respect to every parameter tensor and to the input.
+#[derive(Clone, Debug)]
+pub struct Gradient<S> {
+    pub loss: S,
+    /// One per [`Graph::tensors`] entry, canonical shapes.
+    pub params: Vec<ArrayD<S>>,
+    /// m × input size.
+    pub input: Array2<S>,
+}
+
+impl Graph {
+    pub fn input(&self) -> Shape {
+        self.input
+    }
+
+    pub fn output(&self) -> Shape {
+        self.nodes.last().expect("non-empty").layer.output()
+    }
+
+    pub fn loss_config(&self) -> LossConfig {
+        self.loss
+    }
+
+    pub fn nodes(&self) -> &[Node] {
+        &self.nodes
+    }
+
+    pub fn tensors(&self) -> &[TensorSpec] {
+        &self.tensors
+    }
+
+    /// Parameters over all tensors.
+    pub fn parameters(&self) -> usize {
+        self.tensors
+            .iter()
+            .map(|t| t.spec.shape.iter().product::<usize>())
+            .sum()
+    }
+
+    /// The index of the layer with this name.
+    pub fn layer(&self, name: &str) -> Result<usize, GraphError> {
+        self.nodes
+            .iter()
+            .position(|n| n.name == name)
+            .ok_or_else(|| GraphError::UnknownLayer {
+                name: name.to_string(),
+            })
+    }
+
+    /// A mistake of layer `name`'s kind, to hand to [`Graph::gradient`].
+    pub fn plant(&self, name: &str, code: &str) -> Result<Planted, GraphError> {
+        let layer = self.layer(name)?;
+        let kind = &self.nodes[layer].layer;
+        let known = kind.mistakes();
+        let code =
+            known
+                .iter()
+                .find(|&&c| c == code)
+                .ok_or_else(|| GraphError::UnknownMistake {
+                    name: name.to_string(),
+                    kind: kind.kind(),
+                    code: code.to_string(),
+                    known,
+                })?;
+        Ok(Planted { layer, code })
+    }
+
+    /// Whether the L2 term covers tensor `t`.
+    pub fn decays(&self, t: usize) -> bool {
+        let spec = &self.tensors[t].spec;
+        spec.decays || (self.loss.l2_on_bias && spec.role == Role::Bias)
+    }
+
+    /// The forward pass over a batch (m × input size).
+    pub fn forward<S: LayerScalar>(&self, params: &[ArrayD<S>], x: ArrayView2<S>) -> Trace<S> {
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
+        let x = x.as_standard_layout();
+        let mut steps: Vec<Step<S>> = Vec::with_capacity(self.nodes.len());
+        let mut outputs: Vec<Array2<S>> = Vec::with_capacity(self.nodes.len());
+        for (j, node) in self.nodes.iter().enumerate() {
+            let input = if j == 0 {
+                x.view()
+            } else {
+                outputs[j - 1].view()
+            };
+            let skip = node.tap.map(|t| outputs[t].view());
+            let step = S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
+            let a = self.activate(node, &step.out);
+            steps.push(step);
+            outputs.push(a);
+        }
+        Trace { steps, outputs }
+    }
+
+    fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
+        match node.activation {
+            Activation::Identity => z.clone(),
+            Activation::Softmax => {
+                let rows = node.layer.output().rows();
+                let n = z.nrows() * rows;
+                let mut a = by_rows(z.view(), n).to_owned();
+                Activation::Softmax.apply_in_place(&mut a);
+                a.into_shape_with_order(z.raw_dim()).expect("same size")
+            }
+            act => act.apply(z.view()),
+        }
+    }
+
+    /// The branches a forward pass took (see [`Branches`]).
+    pub fn branches<S: Scalar>(&self, trace: &Trace<S>) -> Branches {
+        let layers = self
+            .nodes
+            .iter()
+            .zip(&trace.steps)
+            .map(|(node, step)| {
+                let (sides, on_kink) = match node.activation.kink() {
+                    Some(k) => (
+                        step.out.iter().map(|v| v.re() > k).collect(),
+                        step.out.iter().filter(|v| v.re() == k).count(),
+                    ),
+                    None => (Vec::new(), 0),
+                };
+                LayerBranches {
+                    kind: step.branches.clone(),
+                    sides,
+                    ties: step.ties + on_kink,
+                }
+            })
+            .collect();
+        Branches { layers }
+    }
+
+    /// The loss of a batch: the data term under the declared reduction plus the L2 term.
+    pub fn loss<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let trace = self.forward(params, x);
+        self.loss_of(params, &trace, y)
+    }
+
+    /// The loss from a forward pass already made.
+    pub fn loss_of<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        trace: &Trace<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let last = self.nodes.last().expect("non-empty");
+        let z = &trace.steps.last().expect("non-empty").out;
+        let a = trace.output();
+        let m = z.nrows();
+        let y = y.as_standard_layout();
+        let mut total = self.loss.data(
+            last.activation,
+            last.layer.output().rows(),
+            z.view(),
+            a.view(),
+            y.view(),
+        );
+        let factor = self.loss.l2_factor(m);
+        if factor != 0.0 {
+            let mut sq = S::zero();
+            for (t, p) in params.iter().enumerate() {
+                if self.decays(t) {
+                    p.iter().for_each(|&w| sq += w * w);
+                }
+            }
+            total += S::from_f64(factor) * sq;
+        }
+        total
+    }
+
+    /// The loss and its analytic gradient; `planted` makes one layer's backward pass reproduce a
+    /// catalogued mistake.
+    pub fn gradient<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        planted: Option<&Planted>,
+    ) -> Gradient<S> {
+        let trace = self.forward(params, x);
+        let loss = self.loss_of(params, &trace, y);
+        let (params_grad, input) = self.backward(params, x, y, &trace, planted);
+        Gradient {
+            loss,
+            params: params_grad,
+            input,
+        }
+    }
+
+    /// The backward pass from a forward pass already made: (parameter gradients, input gradient).
+    pub fn backward<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        trace: &Trace<S>,
+        planted: Option<&Planted>,
+    ) -> (Vec<ArrayD<S>>, Array2<S>) {
+        let x = x.as_standard_layout();
+        let y = y.as_standard_layout();
+        let m = x.nrows();
+        let n = self.nodes.len();
+        let mut grads: Vec<ArrayD<S>> = params.iter().map(|p| ArrayD::zeros(p.raw_dim())).collect();
+        // The gradient with respect to each layer's output (after its activation), gathered from
+        // the layer above and from every `add` that taps it.
+        let mut upstream: Vec<Option<Array2<S>>> = vec![None; n];
+        let last = &self.nodes[n - 1];
+        let mut input_grad = None;
+        for j in (0..n).rev() {
+            let node = &self.nodes[j];
+            let step = &trace.steps[j];
+            let dz = if j == n - 1 {
+                self.loss.delta(
+                    last.activation,
+                    last.layer.output().rows(),
+                    step.out.view(),
+                    trace.outputs[j].view(),
+                    y.view(),
+                )
+            } else {
+                let da = upstream[j]
+                    .take()
+                    .unwrap_or_else(|| Array2::zeros(step.out.raw_dim()));
+                node.activation
+                    .backward(step.out.view(), trace.outputs[j].view(), da)
+            };
+            let input = if j == 0 {
+                x.view()
+            } else {
+                trace.outputs[j - 1].view()
+            };
+            let mistake = planted.filter(|p| p.layer == j).map(|p| p.code);
+            let back = S::layer(node.layer.as_ref()).backward(
+                &params[node.tensors()],
+                input,
+                step,
+                dz.view(),
+                mistake,
+            );
+            for (t, g) in node.tensors().zip(back.params) {
+                grads[t] = g;
+            }
+            if let (Some(t), Some(ds)) = (node.tap, back.dskip) {
+                accumulate(&mut upstream[t], ds);
+            }
+            if j == 0 {
+                input_grad = Some(back.dx);
+            } else {
+                accumulate(&mut upstream[j - 1], back.dx);
+            }
+        }
+        let factor = self.loss.l2_factor(m);
+        if factor != 0.0 {
+            let two = S::from_f64(2.0 * factor);
+            for (t, (g, p)) in grads.iter_mut().zip(params).enumerate() {
+                if self.decays(t) {
+                    Zip::from(g).and(p).for_each(|g, &w| *g += two * w);
+                }
+            }
+        }
+        (
+            grads,
+            input_grad.expect("the first layer hands back the input gradient"),
+        )
+    }
+
+    /// Whether a parameter list fits the graph: one tensor per [`TensorSpec`], canonical shapes.
+    /// The passes assume it (and panic otherwise): callers check first.
+    pub fn check_params<S>(&self, params: &[ArrayD<S>]) -> Result<(), GraphError> {
+        if params.len() != self.tensors.len() {
+            return Err(GraphError::TensorCount {
+                found: params.len(),
+                expected: self.tensors.len(),
+            });
+        }
+        for (p, t) in params.iter().zip(&self.tensors) {
+            if p.shape() != &t.spec.shape[..] {
+                return Err(GraphError::TensorShape {
+                    name: t.name.clone(),
+                    found: p.shape().to_vec(),
+                    expected: t.spec.shape.clone(),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Whether a batch fits the graph: m ≥ 1 samples of the input's size, targets of the output's.
+    pub fn check_batch<S>(&self, x: ArrayView2<S>, y: ArrayView2<S>) -> Result<(), GraphError> {
+        let what = if x.nrows() == 0 {
+            "has no samples".to_string()
+        } else if x.nrows() != y.nrows() {
+            format!("has {} input rows but {} target rows", x.nrows(), y.nrows())
+        } else if x.ncols() != self.input.size() {
+            format!(
+                "has {} values per sample; the input {} holds {}",
+                x.ncols(),
+                self.input,
+                self.input.size()
+            )
+        } else if y.ncols() != self.output().size() {
+            format!(
+                "has {} targets per sample; the output {} holds {}",
+                y.ncols(),
+                self.output(),
+                self.output().size()
+            )
+        } else {
+            return Ok(());
+        };
+        Err(GraphError::Batch { what })
+    }
+}
+
+fn accumulate<S: Scalar>(slot: &mut Option<Array2<S>>, g: Array2<S>) {
+    match slot {
+        Some(acc) => *acc += &g,
+        None => *slot = Some(g),
+    }
+}
