@@ -19,6 +19,7 @@
 
 mod activation;
 mod batch;
+mod convention;
 mod elementary;
 mod init;
 mod loss;
@@ -30,6 +31,7 @@ mod weights;
 
 pub use activation::Activation;
 pub use batch::Batch;
+pub use convention::{Conventions, L2Divisor, Reduction};
 pub use init::Init;
 pub use loss::Loss;
 pub use network::{LayerSpec, Network, NetworkError, Trace};
