@@ -23,9 +23,9 @@ pub enum Regularization {
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Samples {
     All,
-    /// Only the first sample (still divided by m).
+    /// Only the first sample (still reduced as declared: divided by m under the mean).
     First,
-    /// Only the last sample (still divided by m): a loop that assigns instead of adding.
+    /// Only the last sample (reduced as declared): a loop that assigns instead of adding.
     Last,
 }
 
@@ -34,7 +34,8 @@ pub enum Samples {
 /// index k − 1).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Variant {
-    /// Factor on the data term (m: summed instead of averaged; 1/m: averaged twice).
+    /// Factor on the data term, relative to the declared reduction (m: summed where averaged;
+    /// 1/m: divided by m once more).
     pub data_scale: f64,
     pub regularization: Regularization,
     /// The output delta of the other loss (cross-entropy ↔ squared error).
