@@ -419,6 +419,27 @@ struct DiagnosisJson {
     detail: Option<String>,
     residual: Option<f64>,
     factor: Option<f64>,
+    first_wrong_layer: Option<usize>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct NameJson {
+    file: String,
+    parameter: String,
+    matched: String,
+    habit: Option<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct ConventionsJson {
+    reduction: String,
+    l2: f64,
+    l2_divisor: String,
+    l2_on_bias: bool,
 }
 
 #[derive(Deserialize)]
@@ -495,6 +516,9 @@ struct Compare {
     data: DataSource,
     gradient: String,
     precision: String,
+    precision_from: String,
+    conventions: ConventionsJson,
+    names: Vec<NameJson>,
     tolerance: f64,
     residual_tolerance: f64,
     reference: Certification,
@@ -529,6 +553,20 @@ fn compare_report_schema() {
             .unwrap_or_else(|e| panic!("{g}: {e}\n{}", run.stdout));
         assert_eq!(r.command, "compare");
         assert_eq!(r.tensors.len(), 3);
+        assert_eq!(r.names.len(), 3);
+        assert!(
+            r.names
+                .iter()
+                .all(|n| n.matched == "exact" && n.habit.is_none())
+        );
+        assert_eq!(
+            (
+                r.conventions.reduction.as_str(),
+                r.conventions.l2_divisor.as_str()
+            ),
+            ("mean", "2m")
+        );
+        assert_eq!(r.precision_from, "dtype");
         let _ = verdict;
     }
 }

@@ -479,3 +479,58 @@ def load():
         "grandchild still running: {stat}"
     );
 }
+
+/// A program written under `reduction = "sum"` passes against a description that declares it, in
+/// all three checks; the same program averaging (the default) is named `double-batch-mean`
+/// against that description — the diagnosis names departures from the declared convention.
+#[test]
+fn a_declared_reduction_is_the_reference_through_the_protocol() {
+    let dir = scratch("probe-sum");
+    let text = std::fs::read_to_string(repo().join("examples/pump.toml")).unwrap();
+    let net = dir.join("pump-sum.toml");
+    std::fs::write(&net, format!("reduction = \"sum\"\n{text}")).unwrap();
+    let d = demo();
+    let (w, data) = (d.join("pump-weights.npz"), d.join("pump-data.csv"));
+    let run_with = |program: &[&str]| {
+        let mut args = vec![
+            "probe",
+            net.to_str().unwrap(),
+            "-w",
+            w.to_str().unwrap(),
+            "-d",
+            data.to_str().unwrap(),
+            "--quiet",
+            "--format",
+            "json",
+            "--",
+        ];
+        args.extend_from_slice(program);
+        plumb_in(repo(), &args)
+    };
+    let program = numpy(&["--reduction", "sum"]);
+    let program: Vec<&str> = program.iter().map(String::as_str).collect();
+    let run = run_with(&program);
+    run.assert_code(0);
+    let j = run.json();
+    assert_eq!(j["loss"]["matches"], true);
+    assert!(diagnoses(&j).iter().all(Option::is_none));
+
+    let program = numpy(&[]);
+    let program: Vec<&str> = program.iter().map(String::as_str).collect();
+    let run = run_with(&program);
+    run.assert_code(1);
+    let j = run.json();
+    assert!(
+        diagnoses(&j)
+            .iter()
+            .all(|d| d.as_deref() == Some("double-batch-mean")),
+        "{:?}",
+        diagnoses(&j)
+    );
+    assert!(
+        j["loss"]["explanation"]
+            .as_str()
+            .unwrap()
+            .contains("averaged over the batch")
+    );
+}

@@ -152,3 +152,39 @@ fn a_network_too_large_to_hold_is_refused_before_allocating() {
     run.assert_code(2);
     assert!(run.stderr.contains("activation values"), "{}", run.stderr);
 }
+
+/// Baselines recorded before the convention keys existed stay valid: the description hash of
+/// nets/small.toml is the value the version before them wrote (e71c426d9d660f75, read from that
+/// build's `check --format json`), also with the defaults spelled out; a declared convention
+/// changes it.
+#[test]
+fn default_conventions_keep_the_description_hash() {
+    let hash_of = |dir: &std::path::Path, net: &str| {
+        plumb_in(
+            dir,
+            &[
+                "check",
+                net,
+                "--sample",
+                "3",
+                "--directions",
+                "0",
+                "--format",
+                "json",
+            ],
+        )
+        .json()["description_hash"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    };
+    let fixtures = util::fixture("");
+    assert_eq!(hash_of(&fixtures, "nets/small.toml"), "e71c426d9d660f75");
+    let dir = scratch("hash");
+    let text = std::fs::read_to_string(fixtures.join("nets/small.toml")).unwrap();
+    let spelled = format!("reduction = \"mean\"\nl2-divisor = \"2m\"\nl2-on-bias = false\n{text}");
+    std::fs::write(dir.join("spelled.toml"), spelled).unwrap();
+    assert_eq!(hash_of(&dir, "spelled.toml"), "e71c426d9d660f75");
+    std::fs::write(dir.join("sum.toml"), format!("reduction = \"sum\"\n{text}")).unwrap();
+    assert_ne!(hash_of(&dir, "sum.toml"), "e71c426d9d660f75");
+}

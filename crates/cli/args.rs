@@ -198,10 +198,15 @@ pub struct SweepArgs {
 pub struct CompareArgs {
     #[command(flatten)]
     pub inputs: Inputs,
-    /// The outside gradient (.npy, .npz, .safetensors): one tensor per weight tensor, same names and
-    /// shapes. Its dtype sets the precision expected.
+    /// The outside gradient (.npy, .npz, .safetensors): one tensor per weight tensor, same shapes,
+    /// named as the parameters or by a common habit (dW1, grad_W1, W1.grad…). Its dtype sets the
+    /// precision expected.
     #[arg(short, long = "gradient", value_name = "G")]
     pub gradient: PathBuf,
+    /// Which gradient tensor is which parameter, where the names do not say: FILE=PARAM pairs,
+    /// comma-separated (e.g. `--map gw1=W1,gb1=b1`); may be repeated.
+    #[arg(long, value_name = "FILE=PARAM,…")]
+    pub map: Vec<String>,
     /// The loss the outside code computed for the same weights and data, to compare as well.
     #[arg(long, value_name = "VALUE", allow_hyphen_values = true)]
     pub loss: Option<f64>,

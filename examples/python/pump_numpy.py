@@ -63,13 +63,24 @@ def run_forward(params, x, hidden):
     return ins, logits, e / e.sum(axis=1, keepdims=True)
 
 
+# The data term's reduction over the batch: "mean" (the description's default) or "sum"
+# (--reduction sum, for a description that declares reduction = "sum").
+REDUCTION = "mean"
+
+
+def per_sample(m):
+    """What the data term's sum over the samples is divided by."""
+    return m if REDUCTION == "mean" else 1
+
+
 def pump_loss(params, x, y, hidden):
-    """Mean cross-entropy plus (l2 / 2m) times the sum of squared non-bias weights."""
+    """Cross-entropy (mean, or summed under --reduction sum) plus (l2 / 2m) times the sum of
+    squared non-bias weights."""
     m = x.shape[0]
     _, logits, _ = run_forward(params, x, hidden)
     log_p = logits - np.log(np.exp(logits).sum(axis=1, keepdims=True))
     penalty = sum((theta[:, 1:] ** 2).sum() for theta in params)
-    return -(y * log_p).sum() / m + L2 / (2 * m) * penalty
+    return -(y * log_p).sum() / per_sample(m) + L2 / (2 * m) * penalty
 
 
 def pump_gradient(params, x, y, hidden, code=None, where=None, factor=2.0):
@@ -77,9 +88,9 @@ def pump_gradient(params, x, y, hidden, code=None, where=None, factor=2.0):
     m = x.shape[0]
     ins, _, p = run_forward(params, x, hidden)
     # Error at the output logits: softmax with cross-entropy gives (p * sum(y) - y) / m.
-    err = (p * y.sum(axis=1, keepdims=True) - y) / m
+    err = (p * y.sum(axis=1, keepdims=True) - y) / per_sample(m)
     if code == "output-delta-mismatch":  # squared error's: softmax's Jacobian applied to (p - y) / m
-        r = (p - y) / m
+        r = (p - y) / per_sample(m)
         err = p * (r - (p * r).sum(axis=1, keepdims=True))
     data, last_only = [None] * len(params), [None] * len(params)
     for j in reversed(range(len(params))):  # j is 0-based: params[j] is layer j + 1
@@ -174,7 +185,10 @@ def main():
     ap.add_argument("--hidden", choices=["tanh", "relu"], default="tanh")
     ap.add_argument("--fail", choices=["crash", "hang", "garbage", "shape", "nan", "version"])
     ap.add_argument("--units", type=lambda t: [int(u) for u in t.split(",")], default=None)
+    ap.add_argument("--reduction", choices=["mean", "sum"], default="mean")
     args = ap.parse_args()
+    global REDUCTION
+    REDUCTION = args.reduction
     if args.units:  # the same code for wider hidden layers (the benchmark network)
         global SIZES, NAMES, SHAPES
         SIZES = [4, *args.units, 3]

@@ -3,8 +3,11 @@
 use std::path::PathBuf;
 
 use anyhow::{Result, bail};
-use plumb_diagnose::{Expected, Named, Problem, TensorJudgement, Tolerances, judge};
-use plumb_engine::Weights;
+use plumb_diagnose::{
+    Binding, Expected, Named, Problem, TensorJudgement, Tolerances, bind_gradient, holds_only_f32,
+    judge, parse_map,
+};
+use plumb_engine::{Reduction, Weights};
 use plumb_fd::{CheckConfig, Method, Precision, Status, check};
 use plumb_formats::{DType, Description, Role, bind, disassemble, expected_tensors, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
@@ -25,6 +28,38 @@ pub struct DiagnosisReport {
     pub residual: Option<f64>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub factor: Option<f64>,
+    /// For `unexplained`: the 1-based layer whose backward step first goes wrong.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub first_wrong_layer: Option<usize>,
+}
+
+/// Which tensor of the gradient file went to which parameter, and how the names were matched.
+#[derive(Clone, Debug, Serialize)]
+pub struct NameReport {
+    pub file: String,
+    pub parameter: String,
+    /// "exact", "habit" or "map".
+    pub matched: &'static str,
+    /// For a habit: the prefix and suffix around the parameter's name, as `d…` or `….grad`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub habit: Option<String>,
+}
+
+impl NameReport {
+    fn of(b: &Binding) -> NameReport {
+        use plumb_diagnose::Matched;
+        let (matched, habit) = match b.matched {
+            Matched::Exact => ("exact", None),
+            Matched::Habit(p, s) => ("habit", Some(format!("{p}…{s}"))),
+            Matched::Map => ("map", None),
+        };
+        NameReport {
+            file: b.file.clone(),
+            parameter: b.parameter.clone(),
+            matched,
+            habit,
+        }
+    }
 }
 
 /// Where a tensor is worst.
@@ -74,7 +109,7 @@ pub struct LossReport {
     pub rel_error: f64,
     pub matches: bool,
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub explanation: Option<&'static str>,
+    pub explanation: Option<String>,
 }
 
 /// The JSON report of `plumb compare` (docs/json.md).
@@ -88,6 +123,13 @@ pub struct CompareReport {
     pub data: DataSource,
     pub gradient: PathBuf,
     pub precision: &'static str,
+    /// "dtype": the precision is the file's dtype; "values": a float64 file whose values are all
+    /// float32 values, judged as float32.
+    pub precision_from: &'static str,
+    /// The conventions the reference follows (from the description).
+    pub conventions: ConventionsReport,
+    /// Which file tensor went to which parameter.
+    pub names: Vec<NameReport>,
     pub tolerance: f64,
     pub residual_tolerance: f64,
     pub reference: Certification,
@@ -104,10 +146,47 @@ pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Named> {
         .collect()
 }
 
+/// The declared conventions, for reports.
+#[derive(Clone, Debug, Serialize)]
+pub struct ConventionsReport {
+    pub reduction: &'static str,
+    pub l2: f64,
+    pub l2_divisor: &'static str,
+    pub l2_on_bias: bool,
+}
+
+impl ConventionsReport {
+    pub fn of(desc: &Description) -> ConventionsReport {
+        let c = desc.network.conventions();
+        ConventionsReport {
+            reduction: c.reduction.name(),
+            l2: desc.network.l2(),
+            l2_divisor: c.l2_divisor.name(),
+            l2_on_bias: c.l2_on_bias,
+        }
+    }
+
+    /// "mean; L2 (0.1/2m)·Σw² on the weights" and the like.
+    pub fn describe(&self) -> String {
+        let l2 = if self.l2 == 0.0 {
+            "no L2 term".to_string()
+        } else {
+            format!(
+                "L2 term ({}/{})·Σw² over the weights{}",
+                self.l2,
+                self.l2_divisor,
+                if self.l2_on_bias { " and biases" } else { "" }
+            )
+        };
+        format!("data term {} over the batch; {l2}", self.reduction)
+    }
+}
+
 pub fn expected(desc: &Description) -> Vec<Expected> {
     expected_tensors(desc, desc.layout)
         .into_iter()
         .map(|e| Expected {
+            layer: e.layer,
             name: e.name,
             shape: e.shape,
             bias: e.role == Role::Bias,
@@ -172,14 +251,15 @@ pub fn judge_gradient(
         let pairs: Vec<String> = absent
             .iter()
             .zip(&strays)
-            .map(|(a, u)| format!("`{}` → `{}`", u.name, a.name))
+            .map(|(a, u)| format!("{}={}", u.name, a.name))
             .collect();
         findings.push(Finding::new(
             "gradient-names",
             Severity::Error,
             format!(
-                "the gradient's tensors have the layout's shapes under other names ({}): write them under the layout's names, or name the weight file's tensors in the description (weight = …, bias = …) and save the gradient the same way",
-                pairs.join(", ")
+                "the gradient's tensors have the layout's shapes under names plumb cannot match ({}): if they are in that order, run again with --map {}; or write them under the parameters' names",
+                pairs.join(", "),
+                pairs.join(",")
             ),
         ));
     }
@@ -234,6 +314,7 @@ fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> T
             detail: d.label.clone(),
             residual: d.residual.is_finite().then_some(d.residual),
             factor: d.factor,
+            first_wrong_layer: d.first_wrong_layer.map(|l| l + 1),
         }),
         rel_errors: j
             .comparison
@@ -311,16 +392,32 @@ pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, O
     let err = rel(outside, reference);
     let matches = err <= tol;
     let m = b.len() as f64;
+    let c = net.conventions();
+    // The L2 term under each divisor, from the declared one.
+    let declared = c.l2_divisor.value(b.len());
+    let other_divisor = plumb_engine::L2Divisor::ALL
+        .into_iter()
+        .filter(|d| *d != c.l2_divisor)
+        .find(|d| l2 > 0.0 && rel(outside, data + l2 * declared / d.value(b.len())) <= tol);
     let explanation = if matches {
         None
     } else if l2 > 0.0 && rel(outside, data) <= tol {
-        Some("the L2 term is left out of the loss")
-    } else if rel(outside, m * data + l2) <= tol || rel(outside, m * data + m * l2) <= tol {
-        Some("the loss is summed over the batch, not averaged")
-    } else if l2 > 0.0 && rel(outside, data + m * l2) <= tol {
-        Some("the L2 term is λ/2·Σw² instead of (λ/2m)·Σw²")
+        Some("the L2 term is left out of the loss".to_string())
+    } else if c.reduction == Reduction::Mean
+        && (rel(outside, m * data + l2) <= tol || rel(outside, m * data + m * l2) <= tol)
+    {
+        Some("the loss is summed over the batch, not averaged as reduction = \"mean\" says".into())
+    } else if c.reduction == Reduction::Sum
+        && (rel(outside, data / m + l2) <= tol || rel(outside, (data + l2) / m) <= tol)
+    {
+        Some("the loss is averaged over the batch, not summed as reduction = \"sum\" says".into())
     } else {
-        None
+        other_divisor.map(|d| {
+            format!(
+                "the L2 term is (λ/{d})·Σw², not (λ/{})·Σw² as l2-divisor = \"{}\" says",
+                c.l2_divisor, c.l2_divisor
+            )
+        })
     };
     let finding = (!matches).then(|| {
         Finding::new(
@@ -329,7 +426,9 @@ pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, O
             format!(
                 "the outside loss is {outside:.12e}, the reference {reference:.12e} (relative error {}){}",
                 num(err),
-                explanation.map_or(String::new(), |e| format!(": {e}"))
+                explanation
+                    .as_deref()
+                    .map_or(String::new(), |e| format!(": {e}"))
             ),
         )
         .figure("outside", outside)
@@ -359,13 +458,43 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
             t.dtype.name()
         );
     }
-    let single = !file.tensors.iter().any(|t| t.dtype == DType::F64);
-    // Each tensor is held to the precision it was stored in.
-    let eps_of: std::collections::HashMap<String, f64> = file
+    // A float64 file whose values are all float32 values was computed in float32: judge it so.
+    let f64_values = || {
+        file.tensors
+            .iter()
+            .filter(|t| t.dtype == DType::F64)
+            .flat_map(|t| t.data.iter().copied())
+    };
+    let widened = f64_values().next().is_some()
+        && f64_values().any(|v| v != 0.0)
+        && file
+            .tensors
+            .iter()
+            .filter(|t| t.dtype == DType::F64)
+            .all(|t| holds_only_f32(&t.data));
+    let stored = |d: DType| {
+        if widened && d == DType::F64 {
+            DType::F32
+        } else {
+            d
+        }
+    };
+    let single = !file.tensors.iter().any(|t| stored(t.dtype) == DType::F64);
+    let map = parse_map(&args.map.join(","))?;
+    let dtypes: Vec<DType> = file.tensors.iter().map(|t| stored(t.dtype)).collect();
+    let outside: Vec<Named> = file
         .tensors
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect();
+    let (outside, bindings) = bind_gradient(&expected(&loaded.desc), outside, &map)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", args.gradient.display()))?;
+    // Each tensor is held to the precision it was stored (or computed) in.
+    let eps_of: std::collections::HashMap<String, f64> = outside
         .iter()
-        .map(|t| {
-            let eps = match t.dtype {
+        .zip(&dtypes)
+        .map(|(t, d)| {
+            let eps = match d {
                 DType::F64 => f64::EPSILON,
                 DType::F32 => f32::EPSILON as f64,
                 DType::F16 => 9.765625e-4,
@@ -377,13 +506,15 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
     let tol_of =
         |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
     let tol = Tolerances::for_precision(single);
-    let outside: Vec<Named> = file
-        .tensors
-        .into_iter()
-        .map(|t| Named::new(t.name, t.shape, t.data))
-        .collect();
     let reference = certify(&loaded, settings.seed)?;
     let (tensors, mut findings) = judge_gradient(&loaded, &outside, &tol_of);
+    if widened {
+        findings.push(Finding::new(
+            "gradient-precision",
+            Severity::Note,
+            "the gradient is stored as float64, but every value is exactly a float32 value: it was computed in float32, and is judged at float32's resolution",
+        ));
+    }
     if !reference.certified {
         findings.push(Finding::new(
             "reference-uncertified",
@@ -405,6 +536,9 @@ pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
         data: loaded.data_source.clone(),
         gradient: args.gradient.clone(),
         precision: if single { "f32" } else { "f64" },
+        precision_from: if widened { "values" } else { "dtype" },
+        conventions: ConventionsReport::of(&loaded.desc),
+        names: bindings.iter().map(NameReport::of).collect(),
         tolerance: tol.agreement,
         residual_tolerance: tol.residual,
         reference,
@@ -429,6 +563,7 @@ pub fn loss_case(l: &LossReport) -> Case {
         c.failing(
             "loss-mismatch",
             l.explanation
+                .as_deref()
                 .unwrap_or("the loss differs from the reference"),
         )
     }
@@ -493,11 +628,17 @@ fn document(r: &CompareReport) -> Document {
             format!(
                 "{} ({}: agreement within {:e}, diagnosis residual {:e})",
                 r.gradient.display(),
-                r.precision,
+                if r.precision_from == "values" {
+                    "f32, from its values: float64 holding only float32 values"
+                } else {
+                    r.precision
+                },
                 r.tolerance,
                 r.residual_tolerance
             ),
         ),
+        ("names".to_string(), names_text(&r.names)),
+        ("conventions".to_string(), r.conventions.describe()),
     ];
     facts.push(("reference".to_string(), certification_text(&r.reference)));
     if let Some(l) = &r.loss {
@@ -531,6 +672,25 @@ fn document(r: &CompareReport) -> Document {
     };
     doc.push(Block::Verdict(r.verdict, summary));
     doc
+}
+
+/// Which file tensor went to which parameter, for the facts block.
+pub fn names_text(names: &[NameReport]) -> String {
+    if names.is_empty() {
+        return "no tensor of the file matches a parameter".into();
+    }
+    if names.iter().all(|n| n.matched == "exact") {
+        return "every tensor under its parameter's name".into();
+    }
+    names
+        .iter()
+        .map(|n| match (&n.habit, n.matched) {
+            (_, "exact") => format!("{} (exact)", n.parameter),
+            (Some(h), _) => format!("{} → {} ({h})", n.file, n.parameter),
+            _ => format!("{} → {} (--map)", n.file, n.parameter),
+        })
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 pub fn certification_text(c: &Certification) -> String {

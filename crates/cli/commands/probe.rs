@@ -705,7 +705,9 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             } else {
                 "they differ"
             },
-            l.explanation.map_or(String::new(), |e| format!(" — {e}")),
+            l.explanation
+                .as_deref()
+                .map_or(String::new(), |e| format!(" — {e}")),
         )));
         doc.push(Block::Heading(
             "3. Its gradient against the reference gradient".into(),

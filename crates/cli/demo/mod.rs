@@ -102,7 +102,7 @@ fn planted_bug(seed: u64) -> (&'static str, &'static str, Variant) {
             )
         }
         1 => {
-            v.regularization = Regularization::OnBias;
+            v.regularization = Regularization::BiasToggled;
             (
                 "bias-regularized",
                 "the L2 term is applied to the bias weights too",

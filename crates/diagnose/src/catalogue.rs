@@ -1,8 +1,15 @@
 //! The catalogue of mistakes (docs/mistakes.md): each entry computes, from the reference engine,
 //! the gradient its mistake would produce. Adding a mistake is adding an entry here.
+//!
+//! Every entry is a departure from the conventions the description declares (reduction, L2
+//! divisor, bias decay), never from plumb's defaults: code that follows its declared convention is
+//! right, and the reference already follows it.
 
 use ndarray::s;
-use plumb_engine::{Batch, Network, Regularization, Samples, Trace, Variant, Weights};
+use plumb_engine::{
+    Batch, Conventions, L2Divisor, Network, Reduction, Regularization, Samples, Trace, Variant,
+    Weights,
+};
 
 use crate::Named;
 
@@ -55,6 +62,10 @@ impl<'a> Problem<'a> {
     fn m(&self) -> f64 {
         self.batch.len() as f64
     }
+
+    fn conventions(&self) -> Conventions {
+        self.net.conventions()
+    }
 }
 
 /// One way the mistake could have been made, and the gradient it gives.
@@ -66,6 +77,10 @@ pub struct Hypothesis {
     /// Per tensor, the factor of a `constant-factor` hypothesis.
     pub factors: Option<Vec<f64>>,
 }
+
+/// The code whose hypothesis is a fitted factor: named only when no other code reproduces a tensor
+/// (a factor −1 or m fits whenever `sign-flipped` or a batch-mean code does).
+pub const CONSTANT_FACTOR: &str = "constant-factor";
 
 impl Hypothesis {
     fn plain(tensors: Vec<Named>) -> Hypothesis {
@@ -122,34 +137,53 @@ pub const CATALOGUE: &[Mistake] = &[
     },
     Mistake {
         code: "missing-batch-mean",
-        summary: "the data term summed over the batch, not averaged (a factor m)",
-        hypotheses: |p, _| {
-            vec![
+        summary: "the data term summed over the batch where the declared reduction averages it (a factor m)",
+        hypotheses: |p, _| match p.conventions().reduction {
+            Reduction::Mean => vec![
                 Hypothesis::plain(p.variant(&with(|v| v.data_scale = p.m()))),
                 // The whole loss summed, its L2 term included: m·G.
                 Hypothesis::at(
                     "the L2 term summed too".into(),
                     scaled(&p.reference_tensors, p.m()),
                 ),
-            ]
+            ],
+            // A sum has no mean to miss.
+            Reduction::Sum => Vec::new(),
         },
     },
     Mistake {
         code: "double-batch-mean",
-        summary: "the data term averaged twice (a factor 1/m)",
+        summary: "the data term divided by m once more than the declared reduction does: averaged twice, or averaged where the reduction is a sum",
         hypotheses: |p, _| {
-            vec![Hypothesis::plain(
-                p.variant(&with(|v| v.data_scale = 1.0 / p.m())),
-            )]
+            let (plain, whole) = match p.conventions().reduction {
+                Reduction::Mean => ("", "the L2 term divided by m too"),
+                Reduction::Sum => (
+                    "averaged over the batch, though reduction = \"sum\"",
+                    "the whole loss averaged, L2 term included, though reduction = \"sum\"",
+                ),
+            };
+            vec![
+                Hypothesis::at(
+                    plain.into(),
+                    p.variant(&with(|v| v.data_scale = 1.0 / p.m())),
+                ),
+                Hypothesis::at(whole.into(), scaled(&p.reference_tensors, 1.0 / p.m())),
+            ]
         },
     },
     Mistake {
         code: "bias-regularized",
-        summary: "the L2 term applied to the bias weights too",
+        summary: "the L2 term's reach over the biases other than declared: biases decayed under l2-on-bias = false, or not decayed under true",
         hypotheses: |p, _| {
-            vec![Hypothesis::plain(p.variant(&with(|v| {
-                v.regularization = Regularization::OnBias
-            })))]
+            let label = if p.conventions().l2_on_bias {
+                "the biases not decayed, though l2-on-bias = true"
+            } else {
+                ""
+            };
+            vec![Hypothesis::at(
+                label.into(),
+                p.variant(&with(|v| v.regularization = Regularization::BiasToggled)),
+            )]
         },
     },
     Mistake {
@@ -163,11 +197,23 @@ pub const CATALOGUE: &[Mistake] = &[
     },
     Mistake {
         code: "regularization-unscaled",
-        summary: "λ·w instead of (λ/m)·w",
+        summary: "the L2 gradient formed with another divisor than the declared l2-divisor (e.g. λ·w instead of (λ/m)·w)",
         hypotheses: |p, _| {
-            vec![Hypothesis::plain(p.variant(&with(|v| {
-                v.regularization = Regularization::Unscaled
-            })))]
+            let declared = p.conventions().l2_divisor;
+            L2Divisor::ALL
+                .into_iter()
+                .filter(|&d| d != declared)
+                .map(|d| {
+                    Hypothesis::at(
+                        format!(
+                            "{} instead of {}: as if l2-divisor = \"{d}\", not \"{declared}\"",
+                            slope_text(d),
+                            slope_text(declared)
+                        ),
+                        p.variant(&with(|v| v.regularization = Regularization::Divisor(d))),
+                    )
+                })
+                .collect()
         },
     },
     Mistake {
@@ -275,10 +321,9 @@ pub const CATALOGUE: &[Mistake] = &[
         },
     },
     Mistake {
-        code: "constant-factor",
+        code: CONSTANT_FACTOR,
         summary: "off by a constant factor",
         hypotheses: |p, outside| {
-            let m = p.m();
             let mut factors = Vec::new();
             let tensors = p
                 .reference_tensors
@@ -293,11 +338,9 @@ pub const CATALOGUE: &[Mistake] = &[
                             if rr > 0.0 { ur / rr } else { 0.0 }
                         })
                         .unwrap_or(0.0);
-                    // Factors that other entries explain (or that mean "right") are not this one.
-                    let named = [1.0, -1.0, m, 1.0 / m]
-                        .iter()
-                        .any(|k| ((c - k) / k).abs() < 1e-3);
-                    let c = if named || c == 0.0 { f64::NAN } else { c };
+                    // A factor within the precision of 1 leaves the tensor unchanged, and factors
+                    // other entries explain rank after them: the diagnosis sees to both.
+                    let c = if c == 0.0 { f64::NAN } else { c };
                     factors.push(c);
                     Named::new(
                         r.name.clone(),
@@ -314,3 +357,13 @@ pub const CATALOGUE: &[Mistake] = &[
         },
     },
 ];
+
+/// The L2 gradient's factor on w under a divisor, as the report writes it.
+fn slope_text(d: L2Divisor) -> &'static str {
+    match d {
+        L2Divisor::TwoM => "(λ/m)·w",
+        L2Divisor::Two => "λ·w",
+        L2Divisor::M => "(2λ/m)·w",
+        L2Divisor::One => "2λ·w",
+    }
+}

@@ -48,10 +48,6 @@ impl Named {
     }
 }
 
-/// The relative error's floor, as a fraction of the reference tensor's largest |entry| (the same
-/// rule as the finite-difference check: entries near zero are judged against the tensor's scale).
-pub const FLOOR: f64 = 0.1;
-
 /// The figures of one outside tensor against the reference (same shape).
 #[derive(Clone, Debug, PartialEq)]
 pub struct TensorComparison {
@@ -72,14 +68,18 @@ pub struct TensorComparison {
 }
 
 /// Compares two tensors of the same shape. `tolerance` is the largest relative error that counts as
-/// agreement.
-pub fn compare_tensor(outside: &Named, reference: &Named, tolerance: f64) -> TensorComparison {
+/// agreement; `floor` the least denominator of a relative error (`plumb_fd::relative_floor`: the
+/// tensor's scale, or the network's for a tensor that is zero or tiny).
+pub fn compare_tensor(
+    outside: &Named,
+    reference: &Named,
+    tolerance: f64,
+    floor: f64,
+) -> TensorComparison {
     assert_eq!(
         outside.shape, reference.shape,
         "compare tensors of the same shape"
     );
-    let scale_max = reference.data.iter().fold(0.0f64, |m, v| m.max(v.abs()));
-    let floor = FLOOR * scale_max;
     let mut rel: Vec<f64> = Vec::with_capacity(outside.data.len());
     let (mut dot, mut uu, mut rr) = (0.0, 0.0, 0.0);
     for (&u, &r) in outside.data.iter().zip(&reference.data) {
@@ -136,13 +136,13 @@ mod tests {
     fn figures_of_a_scaled_copy() {
         let r = Named::new("t", vec![3], vec![1.0, 2.0, -3.0]);
         let u = Named::new("t", vec![3], vec![2.0, 4.0, -6.0]);
-        let c = compare_tensor(&u, &r, 1e-6);
+        let c = compare_tensor(&u, &r, 1e-6, 0.3);
         assert!((c.scale - 2.0).abs() < 1e-15);
         assert!((c.cosine - 1.0).abs() < 1e-15);
         // |6 − 3| / max(6, 3, 0.3) = 0.5 at the largest entry, likewise elsewhere.
         assert!((c.max_rel_error - 0.5).abs() < 1e-15);
         assert!(!c.matches);
-        assert!(compare_tensor(&r, &r, 0.0).matches);
+        assert!(compare_tensor(&r, &r, 0.0, 0.3).matches);
     }
 
     #[test]

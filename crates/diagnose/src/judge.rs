@@ -4,14 +4,18 @@
 use crate::catalogue::Problem;
 use crate::compare::{Named, TensorComparison, compare_tensor};
 use crate::diagnose::{Diagnosis, diagnose};
+use plumb_fd::relative_floor;
 
 /// How strict to be, set from the outside gradient's precision.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Tolerances {
     /// The largest relative error (with the floor) that counts as agreement.
     pub agreement: f64,
-    /// The largest residual at which a hypothesis counts as reproducing a tensor.
+    /// The largest residual at which a hypothesis counts as reproducing a tensor, and within which
+    /// a hypothesis counts as leaving a tensor unchanged.
     pub residual: f64,
+    /// The machine epsilon of the precision judged (for the floor of `plumb_fd::relative_floor`).
+    pub epsilon: f64,
 }
 
 impl Tolerances {
@@ -22,11 +26,13 @@ impl Tolerances {
             Tolerances {
                 agreement: 1e-3,
                 residual: 1e-4,
+                epsilon: f32::EPSILON as f64,
             }
         } else {
             Tolerances {
                 agreement: 1e-6,
                 residual: 1e-6,
+                epsilon: f64::EPSILON,
             }
         }
     }
@@ -42,20 +48,32 @@ impl Tolerances {
             Tolerances {
                 agreement: 2e-2,
                 residual: 1e-2,
+                epsilon: eps,
             }
         } else {
             Tolerances {
                 agreement: 1e-1,
                 residual: 5e-2,
+                epsilon: eps,
             }
         }
     }
+}
+
+/// Whether every value is exactly a float32 value (widened): a gradient computed in float32 and
+/// saved as float64. Such a file is judged at float32's resolution, not float64's.
+pub fn holds_only_f32(values: &[f64]) -> bool {
+    values
+        .iter()
+        .all(|&v| !v.is_finite() || (v as f32) as f64 == v)
 }
 
 /// A tensor the layout expects.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Expected {
     pub name: String,
+    /// The 0-based layer it belongs to.
+    pub layer: usize,
     pub shape: Vec<usize>,
     /// Whether it holds only bias weights (a split layout's bias vector).
     pub bias: bool,
@@ -82,6 +100,12 @@ pub fn judge(
     expected: &[Expected],
     tol: &dyn Fn(&str) -> Tolerances,
 ) -> Vec<TensorJudgement> {
+    // The network's gradient scale, against which a zero or tiny tensor is judged.
+    let network = problem
+        .reference_tensors
+        .iter()
+        .flat_map(|t| t.data.iter())
+        .fold(0.0f64, |m, v| m.max(v.abs()));
     let mut out: Vec<TensorJudgement> = expected
         .iter()
         .map(|e| {
@@ -91,9 +115,12 @@ pub fn judge(
                 .iter()
                 .find(|t| t.name == e.name)
                 .expect("reference has every tensor");
+            let t = tol(&e.name);
+            let own = r.data.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+            let floor = relative_floor(own, network, t.epsilon, t.agreement);
             let comparison = u
                 .filter(|u| u.shape == r.shape)
-                .map(|u| compare_tensor(u, r, tol(&e.name).agreement));
+                .map(|u| compare_tensor(u, r, t.agreement, floor));
             TensorJudgement {
                 name: e.name.clone(),
                 expected_shape: e.shape.clone(),
@@ -111,7 +138,23 @@ pub fn judge(
         .collect();
     let limits: Vec<f64> = wrong.iter().map(|n| tol(n).residual).collect();
     let found = diagnose(problem, outside, &wrong, &limits);
-    for (name, d) in wrong.iter().zip(found) {
+    // Backpropagation runs from the output down: the wrong tensor nearest the output is where the
+    // error first enters.
+    let first_wrong_layer = wrong
+        .iter()
+        .filter_map(|n| expected.iter().find(|e| &e.name == n))
+        .map(|e| e.layer)
+        .max();
+    for (name, mut d) in wrong.iter().zip(found) {
+        if d.code == "unexplained" {
+            d.first_wrong_layer = first_wrong_layer;
+            if let Some(l) = first_wrong_layer {
+                d.label = format!(
+                    "the error first appears in layer {}'s backward step (the wrong tensor nearest the output)",
+                    l + 1
+                );
+            }
+        }
         if let Some(j) = out.iter_mut().find(|j| &j.name == name) {
             j.diagnosis = Some(d);
         }
@@ -129,6 +172,7 @@ pub fn judge(
                 residual: if e.bias { 0.0 } else { f64::INFINITY },
                 factor: None,
                 runners_up: Vec::new(),
+                first_wrong_layer: None,
             });
         }
     }

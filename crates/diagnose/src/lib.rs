@@ -11,7 +11,7 @@
 //!
 //! let reference = Named::new("layer1", vec![2, 2], vec![1.0, -2.0, 0.5, 4.0]);
 //! let outside = Named::new("layer1", vec![2, 2], vec![-1.0, 2.0, -0.5, -4.0]);
-//! let c = compare_tensor(&outside, &reference, 1e-6);
+//! let c = compare_tensor(&outside, &reference, 1e-6, 0.4);
 //! assert!(!c.matches);
 //! assert!((c.scale + 1.0).abs() < 1e-15 && (c.cosine + 1.0).abs() < 1e-15);
 //! ```
@@ -20,8 +20,10 @@ mod catalogue;
 mod compare;
 mod diagnose;
 mod judge;
+mod names;
 
-pub use catalogue::{CATALOGUE, Hypothesis, Mistake, Problem};
+pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
 pub use compare::{Named, TensorComparison, compare_tensor};
 pub use diagnose::{Diagnosis, diagnose};
-pub use judge::{Expected, TensorJudgement, Tolerances, judge};
+pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};
+pub use names::{Binding, HABITS, Matched, NameError, bind_gradient, match_names, parse_map};

@@ -22,6 +22,7 @@
 
 mod activation;
 mod batch;
+mod convention;
 mod elementary;
 pub mod graph;
 mod init;
@@ -34,6 +35,7 @@ mod weights;
 
 pub use activation::Activation;
 pub use batch::Batch;
+pub use convention::{Conventions, L2Divisor, Reduction};
 pub use init::Init;
 pub use loss::Loss;
 pub use network::{LayerSpec, Network, NetworkError, Trace};

@@ -1,6 +1,7 @@
 //! The data term of the loss, and its gradient with respect to the output pre-activations.
 //!
-//! Every loss is a mean over the m samples of the batch.
+//! Every loss is written below as a mean over the m samples of the batch (the default reduction);
+//! under `reduction = "sum"` the 1/m factor is left out of the value and of dJ/dz.
 //! - cross-entropy with softmax outputs (categorical): J = −(1/m) Σᵢ Σₖ yᵢₖ · ln pᵢₖ, computed as
 //!   (1/m) Σᵢ Σₖ yᵢₖ · (lseᵢ − zᵢₖ) with a shifted log-sum-exp; dJ/dz = (p · Σₖ yₖ − y)/m, which is the
 //!   familiar (p − y)/m when each row of y sums to one.
@@ -13,7 +14,7 @@ use std::fmt;
 use ndarray::{Array2, ArrayView2, Axis, Zip};
 
 use crate::activation::softplus;
-use crate::{Activation, Scalar};
+use crate::{Activation, Reduction, Scalar};
 
 /// The data term of the loss.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -56,7 +57,18 @@ impl Loss {
         a: ArrayView2<S>,
         y: ArrayView2<S>,
     ) -> S {
-        let m = S::from_f64(z.nrows() as f64);
+        self.value_with(Reduction::Mean, output, z, a, y)
+    }
+
+    /// The data loss of a batch under a reduction (see [`Loss::value`]).
+    pub fn value_with<S: Scalar>(
+        &self,
+        reduction: Reduction,
+        output: Activation,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
         let mut total = S::zero();
         match (self, output) {
             (Loss::CrossEntropy, Activation::Softmax) => {
@@ -84,7 +96,10 @@ impl Loss {
                 total *= S::from_f64(0.5);
             }
         }
-        total / m
+        match reduction {
+            Reduction::Mean => total / S::from_f64(z.nrows() as f64),
+            Reduction::Sum => total,
+        }
     }
 
     /// dJ/dz for the output layer: the start of backpropagation.
@@ -95,7 +110,19 @@ impl Loss {
         a: ArrayView2<S>,
         y: ArrayView2<S>,
     ) -> Array2<S> {
-        let inv_m = S::one() / S::from_f64(z.nrows() as f64);
+        self.output_delta_with(Reduction::Mean, output, z, a, y)
+    }
+
+    /// dJ/dz for the output layer under a reduction (see [`Loss::output_delta`]).
+    pub fn output_delta_with<S: Scalar>(
+        &self,
+        reduction: Reduction,
+        output: Activation,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> Array2<S> {
+        let inv_m = S::from_f64(reduction.factor(z.nrows()));
         match (self, output) {
             (Loss::CrossEntropy, Activation::Softmax) => {
                 let mut d = Array2::zeros(a.raw_dim());

@@ -4,7 +4,7 @@ use ndarray::{Array2, ArrayView2, Axis, s};
 use thiserror::Error;
 
 use crate::variant::{Regularization, Samples};
-use crate::{Activation, Loss, Scalar, Variant, Weights};
+use crate::{Activation, Conventions, Loss, Scalar, Variant, Weights};
 
 /// One dense layer: `inputs` units (without the bias unit) mapped to `units` units.
 #[derive(Clone, Debug, PartialEq)]
@@ -58,12 +58,14 @@ pub enum NetworkError {
     },
 }
 
-/// A dense network with its loss and L2 strength: the architecture, without the weights.
+/// A dense network with its loss, L2 strength and conventions: the architecture, without the
+/// weights.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Network {
     layers: Vec<LayerSpec>,
     loss: Loss,
     l2: f64,
+    conventions: Conventions,
 }
 
 /// What the forward pass leaves behind for the backward pass and for inspection.
@@ -135,7 +137,18 @@ impl Network {
             layers: specs,
             loss,
             l2,
+            conventions: Conventions::default(),
         })
+    }
+
+    /// The same network under other conventions (reduction, L2 divisor, bias decay).
+    pub fn with_conventions(mut self, conventions: Conventions) -> Network {
+        self.conventions = conventions;
+        self
+    }
+
+    pub fn conventions(&self) -> Conventions {
+        self.conventions
     }
 
     pub fn layers(&self) -> &[LayerSpec] {
@@ -146,7 +159,7 @@ impl Network {
         self.loss
     }
 
-    /// λ of the L2 term (λ / 2m) · Σ w² over the non-bias weights.
+    /// λ of the L2 term (λ / divisor) · Σ w² over the weights that decay (see [`Conventions`]).
     pub fn l2(&self) -> f64 {
         self.l2
     }
@@ -252,25 +265,55 @@ impl Network {
         Trace { z, a }
     }
 
-    /// The L2 term (λ / 2m) · Σ w² over every non-bias weight of every layer.
+    /// Whether a parameter decays under the L2 term: every non-bias weight, and the bias weights
+    /// (column 0) when `l2-on-bias` is declared.
+    pub fn decays(&self, c: crate::Coord) -> bool {
+        c.col != 0 || self.conventions.l2_on_bias
+    }
+
+    /// The first column of an augmented matrix the L2 term covers.
+    fn first_decaying(&self) -> usize {
+        usize::from(!self.conventions.l2_on_bias)
+    }
+
+    /// Σ w² over the weights that decay.
+    pub fn l2_sum<S: Scalar>(&self, weights: &Weights<S>) -> S {
+        let mut sum = S::zero();
+        for w in weights.layers() {
+            for &v in w.slice(s![.., self.first_decaying()..]).iter() {
+                sum += v * v;
+            }
+        }
+        sum
+    }
+
+    /// The L2 term from Σ w²: (λ / divisor) · Σ w², with the declared divisor for m samples.
+    pub fn l2_term<S: Scalar>(&self, l2_sum: S, m: usize) -> S {
+        if self.l2 == 0.0 {
+            return S::zero();
+        }
+        S::from_f64(self.conventions.l2_factor(self.l2, m)) * l2_sum
+    }
+
+    /// The L2 term (λ / divisor) · Σ w² over the weights that decay.
     pub fn l2_penalty<S: Scalar>(&self, weights: &Weights<S>, m: usize) -> S {
         if self.l2 == 0.0 {
             return S::zero();
         }
-        let mut sum = S::zero();
-        for w in weights.layers() {
-            for &v in w.slice(s![.., 1..]).iter() {
-                sum += v * v;
-            }
-        }
-        S::from_f64(self.l2 / (2.0 * m as f64)) * sum
+        self.l2_term(self.l2_sum(weights), m)
     }
 
-    /// The data term of the loss from a finished forward pass.
+    /// The data term of the loss from a finished forward pass, under the declared reduction.
     pub fn data_loss<S: Scalar>(&self, trace: &Trace<S>, y: ArrayView2<S>) -> S {
         let out = self.layers[self.layers.len() - 1].activation;
         let z = trace.z.last().expect("a network has at least one layer");
-        self.loss.value(out, z.view(), trace.output().view(), y)
+        self.loss.value_with(
+            self.conventions.reduction,
+            out,
+            z.view(),
+            trace.output().view(),
+            y,
+        )
     }
 
     /// The full loss J(θ): data term plus L2 term.
@@ -333,25 +376,40 @@ impl Network {
         let m = trace.a[0].nrows();
         let out = self.layers[depth - 1].activation;
         let (z_out, a_out) = (trace.z[depth - 1].view(), trace.a[depth].view());
+        let reduction = self.conventions.reduction;
         let mut delta = if variant.other_loss_delta {
             let other = match self.loss {
                 Loss::CrossEntropy => Loss::SquaredError,
                 Loss::SquaredError => Loss::CrossEntropy,
             };
             match other {
-                Loss::SquaredError => Loss::SquaredError.output_delta(out, z_out, a_out, y),
-                // (a − y)/m with no activation step, whatever the output activation.
-                Loss::CrossEntropy => {
-                    Loss::CrossEntropy.output_delta(Activation::Sigmoid, z_out, a_out, y)
+                Loss::SquaredError => {
+                    Loss::SquaredError.output_delta_with(reduction, out, z_out, a_out, y)
                 }
+                // (a − y)/m with no activation step, whatever the output activation.
+                Loss::CrossEntropy => Loss::CrossEntropy.output_delta_with(
+                    reduction,
+                    Activation::Sigmoid,
+                    z_out,
+                    a_out,
+                    y,
+                ),
             }
         } else {
-            self.loss.output_delta(out, z_out, a_out, y)
+            self.loss.output_delta_with(reduction, out, z_out, a_out, y)
         };
-        let reg = match variant.regularization {
-            Regularization::Missing => 0.0,
-            Regularization::Unscaled => self.l2,
-            Regularization::Scaled | Regularization::OnBias => self.l2 / m as f64,
+        let declared = self.conventions;
+        let (reg, on_bias) = match variant.regularization {
+            Regularization::Declared => (declared.l2_slope(self.l2, m), declared.l2_on_bias),
+            Regularization::Missing => (0.0, declared.l2_on_bias),
+            Regularization::Divisor(d) => {
+                let other = Conventions {
+                    l2_divisor: d,
+                    ..declared
+                };
+                (other.l2_slope(self.l2, m), declared.l2_on_bias)
+            }
+            Regularization::BiasToggled => (declared.l2_slope(self.l2, m), !declared.l2_on_bias),
         };
         let reg = S::from_f64(reg);
         let scale = S::from_f64(variant.data_scale);
@@ -373,11 +431,7 @@ impl Network {
                 g.mapv_inplace(|v| v * scale);
             }
             if self.l2 != 0.0 {
-                let from = if variant.regularization == Regularization::OnBias {
-                    0
-                } else {
-                    1
-                };
+                let from = usize::from(!on_bias);
                 g.slice_mut(s![.., from..])
                     .zip_mut_with(&theta.slice(s![.., from..]), |gv, &wv| *gv += reg * wv);
             }

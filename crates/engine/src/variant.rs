@@ -3,26 +3,29 @@
 //! these hypotheses against an outside gradient; they live here because each needs the inside of
 //! the backward pass.
 
-/// How the regularisation term is formed.
+use crate::L2Divisor;
+
+/// How the regularisation term's gradient is formed, relative to the declared conventions.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Regularization {
-    /// (λ/m)·w on the non-bias weights: the reference.
-    Scaled,
+    /// (2λ / divisor)·w on the weights that decay, as declared: the reference.
+    Declared,
     /// Left out.
     Missing,
-    /// λ·w instead of (λ/m)·w.
-    Unscaled,
-    /// (λ/m)·w on the bias weights as well.
-    OnBias,
+    /// Formed with another divisor than the declared one (e.g. λ·w instead of (λ/m)·w).
+    Divisor(L2Divisor),
+    /// Applied to the biases when the description says they do not decay, or left off them when
+    /// it says they do.
+    BiasToggled,
 }
 
 /// Which samples the data term sums over.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Samples {
     All,
-    /// Only the first sample (still divided by m).
+    /// Only the first sample (still reduced as declared: divided by m under the mean).
     First,
-    /// Only the last sample (still divided by m): a loop that assigns instead of adding.
+    /// Only the last sample (reduced as declared): a loop that assigns instead of adding.
     Last,
 }
 
@@ -31,7 +34,8 @@ pub enum Samples {
 /// index k − 1).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Variant {
-    /// Factor on the data term (m: summed instead of averaged; 1/m: averaged twice).
+    /// Factor on the data term, relative to the declared reduction (m: summed where averaged;
+    /// 1/m: divided by m once more).
     pub data_scale: f64,
     pub regularization: Regularization,
     /// The output delta of the other loss (cross-entropy ↔ squared error).
@@ -48,7 +52,7 @@ pub struct Variant {
 impl Variant {
     pub const REFERENCE: Variant = Variant {
         data_scale: 1.0,
-        regularization: Regularization::Scaled,
+        regularization: Regularization::Declared,
         other_loss_delta: false,
         slope_missing: None,
         slope_at_activation: None,

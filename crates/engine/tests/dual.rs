@@ -153,3 +153,70 @@ fn single_precision_tracks_double() {
     let err = max_relative(&g32.map(|&v| v as f64), &g64, 1e-3);
     assert!(err < 300.0 * f32::EPSILON as f64, "{err:e}");
 }
+
+/// Every declared convention (DESIGN §4.1: reduction, l2-divisor, l2-on-bias): the analytic gradient
+/// is num-dual's derivative of the loss under that convention, and the loss is the formula the
+/// description promises — the data term m times the mean one under "sum", the L2 term
+/// (λ / divisor)·Σ w² with Σ over the non-bias weights, or all weights under l2-on-bias, summed
+/// here by hand from the weights.
+#[test]
+fn every_convention() {
+    use plumb_engine::{Conventions, L2Divisor, Reduction};
+    let (m, l2) = (5, 0.3);
+    let base = Network::new(
+        4,
+        &[(5, Activation::Tanh), (3, Activation::Softmax)],
+        Loss::CrossEntropy,
+        l2,
+    )
+    .unwrap();
+    let mut rng = Rng::new(77);
+    let w = random_weights(&base, &mut rng);
+    let x = Array2::from_shape_fn((m, 4), |_| rng.normal());
+    let y = targets(&base, m, &mut rng, false);
+    let batch = Batch { x, y };
+    let trace = base.forward(&w, batch.x.view());
+    let mean_data = base.data_loss(&trace, batch.y.view());
+    let squares = |from: usize| -> f64 {
+        w.layers()
+            .iter()
+            .map(|l| {
+                l.columns()
+                    .into_iter()
+                    .skip(from)
+                    .flatten()
+                    .map(|v| v * v)
+                    .sum::<f64>()
+            })
+            .sum()
+    };
+    for reduction in Reduction::ALL {
+        for divisor in L2Divisor::ALL {
+            for on_bias in [false, true] {
+                let c = Conventions {
+                    reduction,
+                    l2_divisor: divisor,
+                    l2_on_bias: on_bias,
+                };
+                let net = base.clone().with_conventions(c);
+                check(&net, 90, m, false);
+                let data = match reduction {
+                    Reduction::Mean => mean_data,
+                    Reduction::Sum => m as f64 * mean_data,
+                };
+                let d = match divisor {
+                    L2Divisor::TwoM => 2.0 * m as f64,
+                    L2Divisor::Two => 2.0,
+                    L2Divisor::M => m as f64,
+                    L2Divisor::One => 1.0,
+                };
+                let want = data + l2 / d * squares(usize::from(!on_bias));
+                let got = net.loss_value(&w, batch.x.view(), batch.y.view());
+                assert!(
+                    (got - want).abs() <= 1e-13 * want.abs(),
+                    "{c:?}: loss {got} against the formula's {want}"
+                );
+            }
+        }
+    }
+}

@@ -22,7 +22,7 @@ use thiserror::Error;
 use crate::evaluate::Base;
 use crate::gross::{gradient_magnitude, loss_magnitude};
 use crate::method::{ComplexScalar, Estimate, complex_estimate, round_to};
-use crate::{Method, Sample, coverage};
+use crate::{FLOOR, Method, Sample, coverage, relative_floor};
 
 /// The arithmetic the check runs the engine in.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -93,9 +93,6 @@ impl CheckConfig {
 /// difference between two step sizes carries the actual round-off as well; this term is the floor
 /// under it for when the two happen to agree.
 pub const NOISE: f64 = 4.0;
-
-/// The relative error's floor, as a fraction of the layer's largest |entry|.
-pub const FLOOR: f64 = 0.1;
 
 /// Directions checked per part and globally when not asked otherwise.
 pub const DEFAULT_DIRECTIONS: usize = 4;
@@ -272,7 +269,14 @@ pub fn check_gradient(
     let floors = analytic
         .layers()
         .iter()
-        .map(|l| FLOOR * l.iter().fold(0.0f64, |m, v| m.max(v.abs())))
+        .map(|l| {
+            relative_floor(
+                l.iter().fold(0.0f64, |m, v| m.max(v.abs())),
+                scale,
+                eps,
+                tolerance,
+            )
+        })
         .collect();
     let judge = Judge {
         eps,

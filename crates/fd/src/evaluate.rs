@@ -19,7 +19,7 @@ pub struct Base<'a, S> {
     weights: &'a Weights<S>,
     y: &'a Array2<S>,
     trace: Trace<S>,
-    /// Σ w² over the non-bias weights, for the L2 term.
+    /// Σ w² over the weights that decay, for the L2 term.
     l2_sum: S,
     loss: S,
 }
@@ -33,14 +33,9 @@ impl<'a, S: Scalar> Base<'a, S> {
         y: &'a Array2<S>,
     ) -> Self {
         let trace = net.forward(weights, x);
-        let mut l2_sum = S::zero();
-        for w in weights.layers() {
-            for &v in w.slice(ndarray::s![.., 1..]).iter() {
-                l2_sum += v * v;
-            }
-        }
+        let l2_sum = net.l2_sum(weights);
         let m = x.nrows();
-        let loss = net.data_loss(&trace, y.view()) + penalty(net, l2_sum, m);
+        let loss = net.data_loss(&trace, y.view()) + net.l2_term(l2_sum, m);
         Base {
             net,
             weights,
@@ -108,12 +103,12 @@ impl<'a, S: Scalar> Base<'a, S> {
             self.output_loss(&z)
         };
         let mut l2_sum = self.l2_sum;
-        if c.col != 0 && net.l2() != 0.0 {
+        if net.decays(c) && net.l2() != 0.0 {
             let w = *self.weights.get(c);
             let moved = w + delta;
             l2_sum = l2_sum - w * w + moved * moved;
         }
-        (data + penalty(net, l2_sum, m), crossed)
+        (data + net.l2_term(l2_sum, m), crossed)
     }
 
     /// J(θ + δ·v) for a whole direction v (one matrix per layer), by a full forward pass, with the
@@ -150,7 +145,13 @@ impl<'a, S: Scalar> Base<'a, S> {
         } else {
             Array2::zeros((0, 0))
         };
-        loss.value(act, z.view(), a.view(), self.y.view())
+        loss.value_with(
+            self.net.conventions().reduction,
+            act,
+            z.view(),
+            a.view(),
+            self.y.view(),
+        )
     }
 }
 
@@ -167,14 +168,6 @@ pub fn full_loss<S: Scalar>(
     let mut moved = weights.clone();
     *moved.get_mut(c) += delta;
     net.loss_value(&moved, x, y)
-}
-
-fn penalty<S: Scalar>(net: &Network, l2_sum: S, m: usize) -> S {
-    if net.l2() == 0.0 {
-        S::zero()
-    } else {
-        S::from_f64(net.l2() / (2.0 * m as f64)) * l2_sum
-    }
 }
 
 /// The side of a kink a pre-activation is on, as the activation's own branch decides it.

@@ -8,7 +8,7 @@ use plumb_engine::Rng;
 
 use crate::check::{RETRIES, Rule, Status};
 use crate::method::Method;
-use crate::{FLOOR, NOISE, Sample};
+use crate::{FLOOR, NOISE, Sample, relative_floor};
 
 /// One tensor of the outside program: its parameters and the gradient it returned for them.
 #[derive(Clone, Debug)]
@@ -122,7 +122,10 @@ pub fn check_external<E>(
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let floors: Vec<f64> = tensors
         .iter()
-        .map(|t| FLOOR * t.gradient.iter().fold(0.0f64, |m, v| m.max(v.abs())))
+        .map(|t| {
+            let own = t.gradient.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+            relative_floor(own, scale, config.eps, config.tolerance)
+        })
         .collect();
     let rule = Rule {
         eps: config.eps,

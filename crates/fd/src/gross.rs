@@ -6,7 +6,8 @@
 use ndarray::{Array2, Axis, s};
 use plumb_engine::{Activation, Loss, Network, Trace, Weights};
 
-/// (1/m) Σ of the absolute values of the terms the loss sums, plus the L2 term.
+/// Σ of the absolute values of the terms the loss sums (times 1/m under the mean reduction), plus
+/// the L2 term.
 pub fn loss_magnitude(
     net: &Network,
     weights: &Weights<f64>,
@@ -16,7 +17,7 @@ pub fn loss_magnitude(
     let depth = net.layers().len();
     let out = net.layers()[depth - 1].activation;
     let (z, a) = (&trace.z[depth - 1], &trace.a[depth]);
-    let m = z.nrows() as f64;
+    let reduce = net.conventions().reduction.factor(z.nrows());
     let data: f64 = match (net.loss(), out) {
         (Loss::CrossEntropy, Activation::Softmax) => z
             .rows()
@@ -44,7 +45,7 @@ pub fn loss_magnitude(
                 .sum::<f64>()
         }
     };
-    data / m + net.l2_penalty(weights, z.nrows())
+    data * reduce + net.l2_penalty(weights, z.nrows())
 }
 
 /// A bound on each gradient entry's pieces: backpropagation of absolute values (|a| + |y| at the
@@ -56,10 +57,11 @@ pub fn gradient_magnitude(
     y: &Array2<f64>,
 ) -> Weights<f64> {
     let depth = net.layers().len();
-    let m = trace.a[0].nrows() as f64;
+    let m = trace.a[0].nrows();
+    let conventions = net.conventions();
     let out = net.layers()[depth - 1].activation;
     let a_out = &trace.a[depth];
-    let mut delta = (a_out.mapv(f64::abs) + y.mapv(f64::abs)) / m;
+    let mut delta = (a_out.mapv(f64::abs) + y.mapv(f64::abs)) * conventions.reduction.factor(m);
     if net.loss() == Loss::SquaredError && out != Activation::Identity {
         let slope = match out {
             // |∂softmax| is bounded by a(1 + a) per entry.
@@ -78,9 +80,10 @@ pub fn gradient_magnitude(
         g.slice_mut(s![.., 1..])
             .assign(&delta.t().dot(&trace.a[l].mapv(f64::abs)));
         if net.l2() != 0.0 {
-            let reg = net.l2() / m;
-            g.slice_mut(s![.., 1..])
-                .zip_mut_with(&theta.slice(s![.., 1..]), |gv, wv| *gv += reg * wv.abs());
+            let reg = conventions.l2_slope(net.l2(), m);
+            let from = usize::from(!conventions.l2_on_bias);
+            g.slice_mut(s![.., from..])
+                .zip_mut_with(&theta.slice(s![.., from..]), |gv, wv| *gv += reg * wv.abs());
         }
         grads.push(g);
         if l > 0 {

@@ -21,6 +21,7 @@ mod check;
 mod coverage;
 mod evaluate;
 mod external;
+mod floor;
 mod gross;
 mod method;
 mod summary;
@@ -28,7 +29,7 @@ mod sweep;
 
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
-    FLOOR, NOISE, Precision, Progress, Rule, Scope, Status, check, check_gradient,
+    NOISE, Precision, Progress, Rule, Scope, Status, check, check_gradient,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
@@ -36,6 +37,7 @@ pub use external::{
     Change, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
     OutsideTensor, check_external, select_flat,
 };
+pub use floor::{FLOOR, ROUND_OFF, relative_floor};
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate};
 pub use summary::{Part, PartSummary, summarise};

@@ -8,7 +8,7 @@ use std::fmt;
 use std::ops::Range;
 use std::path::{Path, PathBuf};
 
-use plumb_engine::{Activation, Loss, Network, NetworkError};
+use plumb_engine::{Activation, Conventions, L2Divisor, Loss, Network, NetworkError, Reduction};
 use thiserror::Error;
 use toml::Spanned;
 use toml::de::{DeTable, DeValue};
@@ -100,7 +100,16 @@ fn place(line: Option<usize>, column: Option<usize>) -> String {
 /// terabytes.
 pub const MAX_PARAMETERS: usize = 1 << 26;
 
-const TOP_KEYS: [&str; 5] = ["inputs", "loss", "l2", "layout", "layer"];
+const TOP_KEYS: [&str; 8] = [
+    "inputs",
+    "loss",
+    "reduction",
+    "l2",
+    "l2-divisor",
+    "l2-on-bias",
+    "layout",
+    "layer",
+];
 const LAYER_KEYS: [&str; 6] = ["units", "activation", "slope", "alpha", "weight", "bias"];
 
 impl Description {
@@ -148,6 +157,19 @@ impl Description {
         out.push_str(&format!("inputs = {}\n", net.inputs()));
         out.push_str(&format!("loss = \"{}\"\n", net.loss().name()));
         out.push_str(&format!("l2 = {:?}\n", net.l2()));
+        // The conventions only when they depart from the defaults: the text is what a baseline's
+        // description hash is taken of, and descriptions written before these keys keep theirs.
+        let c = net.conventions();
+        let default = Conventions::default();
+        if c.reduction != default.reduction {
+            out.push_str(&format!("reduction = \"{}\"\n", c.reduction));
+        }
+        if c.l2_divisor != default.l2_divisor {
+            out.push_str(&format!("l2-divisor = \"{}\"\n", c.l2_divisor));
+        }
+        if c.l2_on_bias != default.l2_on_bias {
+            out.push_str(&format!("l2-on-bias = {}\n", c.l2_on_bias));
+        }
         out.push_str(&format!("layout = \"{}\"\n", self.layout.name()));
         for layer in &self.layers {
             out.push_str(&format!("\n[[layer]]\nunits = {}\n", layer.units));
@@ -243,6 +265,7 @@ impl<'a> Parser<'a> {
             }
             None => 0.0,
         };
+        let conventions = self.conventions(table)?;
         let layout = match find(table, "layout") {
             Some(e) => {
                 let name = self.string(e, "layout")?;
@@ -316,20 +339,22 @@ impl<'a> Parser<'a> {
 
         let spec: Vec<(usize, Activation)> =
             layers.iter().map(|l| (l.units, l.activation)).collect();
-        let network = Network::new(inputs, &spec, loss, l2).map_err(|e| {
-            let span = match &e {
-                NetworkError::NoInputs => Some(inputs_entry.1.span()),
-                NetworkError::NoUnits { layer } => Some(spans[layer - 1].units.clone()),
-                NetworkError::SoftmaxHidden { layer, .. }
-                | NetworkError::SoftmaxSingleUnit { layer }
-                | NetworkError::BadActivationParameter { layer, .. } => {
-                    Some(spans[layer - 1].activation.clone())
-                }
-                NetworkError::LossNeedsProbabilities { .. } => Some(loss_entry.1.span()),
-                NetworkError::BadL2 { .. } | NetworkError::NoLayers => None,
-            };
-            self.error(span, e.to_string())
-        })?;
+        let network = Network::new(inputs, &spec, loss, l2)
+            .map_err(|e| {
+                let span = match &e {
+                    NetworkError::NoInputs => Some(inputs_entry.1.span()),
+                    NetworkError::NoUnits { layer } => Some(spans[layer - 1].units.clone()),
+                    NetworkError::SoftmaxHidden { layer, .. }
+                    | NetworkError::SoftmaxSingleUnit { layer }
+                    | NetworkError::BadActivationParameter { layer, .. } => {
+                        Some(spans[layer - 1].activation.clone())
+                    }
+                    NetworkError::LossNeedsProbabilities { .. } => Some(loss_entry.1.span()),
+                    NetworkError::BadL2 { .. } | NetworkError::NoLayers => None,
+                };
+                self.error(span, e.to_string())
+            })?
+            .with_conventions(conventions);
 
         let desc = Description {
             path: self.path.to_path_buf(),
@@ -358,6 +383,58 @@ impl<'a> Parser<'a> {
             }
         }
         Ok(desc)
+    }
+
+    /// `reduction`, `l2-divisor` and `l2-on-bias`, each with its default when absent.
+    fn conventions(&self, table: &DeTable<'_>) -> Result<Conventions, DescriptionError> {
+        let mut c = Conventions::default();
+        if let Some(e) = find(table, "reduction") {
+            let name = self.string(e, "reduction")?;
+            let names = Reduction::ALL.map(|r| r.name());
+            c.reduction = Reduction::from_name(&name).ok_or_else(|| {
+                self.error(
+                    Some(e.1.span()),
+                    format!(
+                        "unknown reduction \"{name}\"{}; the reductions are {} (\"mean\": the loss averaged over the samples, the default; \"sum\": summed)",
+                        suggest(&name, &names),
+                        list(&names)
+                    ),
+                )
+            })?;
+        }
+        if let Some(e) = find(table, "l2-divisor") {
+            let name = match e.1.get_ref() {
+                // `l2-divisor = 2` or `= 1` written as a number means the same as the string.
+                DeValue::Integer(i) => i.as_str().to_string(),
+                _ => self.string(e, "l2-divisor")?,
+            };
+            let names = L2Divisor::ALL.map(|d| d.name());
+            c.l2_divisor = L2Divisor::from_name(&name).ok_or_else(|| {
+                self.error(
+                    Some(e.1.span()),
+                    format!(
+                        "unknown l2-divisor \"{name}\"{}; the L2 term is (λ / divisor) · Σ w², with the divisor one of {} (m is the number of samples; \"2m\" is the default)",
+                        suggest(&name, &names),
+                        list(&names)
+                    ),
+                )
+            })?;
+        }
+        if let Some(e) = find(table, "l2-on-bias") {
+            c.l2_on_bias = match e.1.get_ref() {
+                DeValue::Boolean(b) => *b,
+                other => {
+                    return Err(self.error(
+                        Some(e.1.span()),
+                        format!(
+                            "`l2-on-bias` must be true or false (no quotes), but it is {}",
+                            kind(other)
+                        ),
+                    ));
+                }
+            };
+        }
+        Ok(c)
     }
 
     fn layer(
@@ -773,6 +850,48 @@ activation = "softmax"
         let text = format!("layout = \"split\"\n{GOOD}")
             .replace("units = 3\n", "units = 3\nweight = \"w\"\nbias = \"w\"\n");
         assert!(parse(&text).is_err());
+    }
+
+    #[test]
+    fn conventions_are_read_and_default_to_mean_2m_no_bias() {
+        let d = parse(GOOD).unwrap();
+        assert_eq!(d.network.conventions(), Conventions::default());
+        let text = format!("reduction = \"sum\"\nl2-divisor = \"2\"\nl2-on-bias = true\n{GOOD}");
+        let d = parse(&text).unwrap();
+        let c = d.network.conventions();
+        assert_eq!(c.reduction, Reduction::Sum);
+        assert_eq!(c.l2_divisor, L2Divisor::Two);
+        assert!(c.l2_on_bias);
+        let again = parse(&d.to_toml("")).unwrap();
+        assert_eq!(again.network, d.network);
+        // A number for the divisor reads as the same name.
+        let d = parse(&format!("l2-divisor = 1\n{GOOD}")).unwrap();
+        assert_eq!(d.network.conventions().l2_divisor, L2Divisor::One);
+    }
+
+    #[test]
+    fn default_conventions_leave_the_canonical_text_unchanged() {
+        // Baselines hash this text: a description written before the keys existed, and the same
+        // one with the defaults spelled out, must give the same text.
+        let plain = parse(GOOD).unwrap().to_toml("");
+        let spelled =
+            format!("reduction = \"mean\"\nl2-divisor = \"2m\"\nl2-on-bias = false\n{GOOD}");
+        assert_eq!(parse(&spelled).unwrap().to_toml(""), plain);
+        assert!(!plain.contains("reduction") && !plain.contains("l2-divisor"));
+    }
+
+    #[test]
+    fn convention_errors_name_the_key_the_line_and_the_fix() {
+        let e = parse(&format!("reduction = \"sun\"\n{GOOD}")).unwrap_err();
+        assert_eq!(e.line, Some(1));
+        assert!(e.message.contains("did you mean `sum`"), "{e}");
+        let e = parse(&format!("\nl2-divisor = \"2M\"\n{GOOD}")).unwrap_err();
+        assert_eq!(e.line, Some(2));
+        assert!(e.message.contains("`2m`"), "{e}");
+        let e = parse(&format!("l2-on-bias = \"yes\"\n{GOOD}")).unwrap_err();
+        assert!(e.message.contains("true or false"), "{e}");
+        let e = parse(&format!("l2-divisr = \"2\"\n{GOOD}")).unwrap_err();
+        assert!(e.message.contains("did you mean `l2-divisor`"), "{e}");
     }
 
     #[test]
