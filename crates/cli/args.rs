@@ -272,13 +272,18 @@ pub struct AuditArgs {
     /// Fraction of a layer's units dead or saturated that makes it a layer-wide error.
     #[arg(long, value_name = "F", default_value_t = 0.5)]
     pub layer_fraction: f64,
+    /// Mean fraction over a layer's units (inactive for ReLU, saturated for sigmoid and tanh) at
+    /// which the layer is flagged even when no unit reaches the per-unit rule.
+    #[arg(long, value_name = "F", default_value_t = 0.85)]
+    pub layer_mean: f64,
     /// Factor off the scale the layer's activation calls for (He or Glorot) that is flagged.
     #[arg(long, value_name = "X", default_value_t = 10.0)]
     pub scale_factor: f64,
     /// Orders of magnitude of gradient change across the layers that is flagged.
     #[arg(long, value_name = "N", default_value_t = 3.0)]
     pub flow_orders: f64,
-    /// Level of the Kolmogorov–Smirnov test against --init.
+    /// Family-wise level of the Kolmogorov–Smirnov tests against --init (Holm's correction across
+    /// the layers).
     #[arg(long, value_name = "A", default_value_t = 0.01)]
     pub ks_alpha: f64,
 }

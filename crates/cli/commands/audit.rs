@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Result, bail};
-use plumb_audit::{Audit, Thresholds, audit, sparkline};
+use plumb_audit::{Audit, Thresholds, audit, sparkline, unit_ranges};
 use plumb_engine::Init;
 use plumb_formats::{Description, assemble, bind, read_tensors};
 use plumb_report::{
@@ -34,7 +34,7 @@ pub struct AuditReport<'a> {
 }
 
 pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
-    let checks: [(&str, f64, bool); 8] = [
+    let checks: [(&str, f64, bool); 9] = [
         (
             "--max-magnitude",
             args.max_magnitude,
@@ -60,6 +60,11 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             args.layer_fraction,
             args.layer_fraction > 0.0 && args.layer_fraction <= 1.0,
         ),
+        (
+            "--layer-mean",
+            args.layer_mean,
+            args.layer_mean > 0.0 && args.layer_mean <= 1.0,
+        ),
         ("--scale-factor", args.scale_factor, args.scale_factor > 1.0),
         ("--flow-orders", args.flow_orders, args.flow_orders > 0.0),
         (
@@ -81,9 +86,14 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         saturation: args.saturation,
         saturated_fraction: args.saturated_fraction,
         layer_fraction: args.layer_fraction,
+        layer_mean: args.layer_mean,
         scale_factor: args.scale_factor,
         flow_orders: args.flow_orders,
         ks_alpha: args.ks_alpha,
+        fail_on: match args.fail_on {
+            FailOn::Warning => Severity::Warning,
+            FailOn::Error => Severity::Error,
+        },
     };
     let desc = Description::read(&args.net)?;
     let file = read_tensors(&args.weights)?;
@@ -119,17 +129,9 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             found.join(", ")
         );
     }
-    let level = match args.fail_on {
-        FailOn::Warning => Severity::Warning,
-        FailOn::Error => Severity::Error,
-    };
-    let verdict = if result.findings.iter().any(|f| f.severity >= level) {
-        Verdict::Fail
-    } else {
-        Verdict::Pass
-    };
+    let level = t.fail_on;
     let report = AuditReport {
-        verdict,
+        verdict: result.verdict,
         schema_version: SCHEMA_VERSION,
         command: "audit",
         description: &args.net,
@@ -143,6 +145,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     let mut doc = document(&report, &desc, &file, &args.weights);
     doc.command = "audit".into();
     doc.network = Some(network_id(&desc));
+    doc.fail_on = level;
     doc.cases = cases(&result, level);
     if settings.html.is_some() {
         crate::commands::check::insert_before_findings(&mut doc, plots(&result, &desc, &file));
@@ -319,16 +322,7 @@ fn document(
         doc.push(Block::Text(format!("Not checked — {s}.")));
     }
     doc.push(Block::Findings(a.findings.clone()));
-    let count = |s: Severity| a.findings.iter().filter(|f| f.severity == s).count();
-    doc.push(Block::Verdict(
-        r.verdict,
-        format!(
-            "{} errors, {} warnings, {} notes",
-            count(Severity::Error),
-            count(Severity::Warning),
-            count(Severity::Note)
-        ),
-    ));
+    doc.push(Block::Verdict(r.verdict, a.summary()));
     doc.push(Block::Caution(
         "This audit checks the file's structure and health on the probe data. It is not a safety \
          assessment: it says nothing of accuracy, robustness or fairness. A model that will decide \
@@ -355,11 +349,7 @@ pub fn sections(a: &Audit) -> Vec<Block> {
             "activations",
         ]);
         for h in &a.health {
-            let mean = if h.fractions.is_empty() {
-                0.0
-            } else {
-                h.fractions.iter().sum::<f64>() / h.fractions.len() as f64
-            };
+            let mean = h.mean_fraction;
             let worst = h.fractions.iter().copied().fold(0.0, f64::max);
             t.push([
                 Cell::from(h.layer.to_string()),
@@ -380,7 +370,7 @@ pub fn sections(a: &Audit) -> Vec<Block> {
                     if h.flagged.is_empty() {
                         "none".to_string()
                     } else {
-                        format!("{:?}", h.flagged)
+                        unit_ranges(&h.flagged)
                     },
                     if h.flagged.is_empty() {
                         Tone::Good
@@ -413,10 +403,11 @@ pub fn sections(a: &Audit) -> Vec<Block> {
         for i in &a.init {
             let ks = i.test.as_ref().map_or("—".to_string(), |k| {
                 format!(
-                    "{}: D {:.4}, p {}{}",
+                    "{}: D {:.4}, p {} (Holm {}){}",
                     k.scheme,
                     k.statistic,
                     num(k.p_value),
+                    num(k.adjusted_p_value),
                     if k.passed { "" } else { " ✗" }
                 )
             });
@@ -431,8 +422,8 @@ pub fn sections(a: &Audit) -> Vec<Block> {
                 Cell::from(i.fan_in.to_string()),
                 Cell::from(i.fan_out.to_string()),
                 Cell::from(num(i.std)),
-                Cell::from(format!("{} ({:.2}×)", i.closest, i.ratio)),
-                Cell::from(format!("{} ({:.2}×)", i.reference, i.reference_ratio)),
+                Cell::from(format!("{} ({}×)", i.closest, ratio(i.ratio))),
+                Cell::from(format!("{} ({}×)", i.reference, ratio(i.reference_ratio))),
                 Cell::new(ks, tone),
             ]);
         }
@@ -459,4 +450,13 @@ pub fn sections(a: &Audit) -> Vec<Block> {
         out.push(Block::Table(t));
     }
     out
+}
+
+/// A ratio to a scheme's scale: two decimals near 1, the table's number form far from it.
+fn ratio(r: f64) -> String {
+    if r.is_finite() && (1e-2..1e3).contains(&r.abs()) {
+        format!("{r:.2}")
+    } else {
+        num(r)
+    }
 }
