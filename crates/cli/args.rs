@@ -122,8 +122,9 @@ pub struct Inputs {
     /// Initialisation scheme for weights drawn without --weights.
     #[arg(long, value_enum, default_value_t = InitArg::GlorotUniform)]
     pub init: InitArg,
-    /// Samples in the synthetic batch drawn without --data [default: 32; 1000 for audit].
-    #[arg(long, value_name = "M")]
+    /// Samples in the synthetic batch drawn without --data [default: 32] (refused with --data,
+    /// whose file sets the samples).
+    #[arg(long, value_name = "M", conflicts_with = "data")]
     pub batch: Option<usize>,
 }
 
@@ -212,9 +213,9 @@ pub struct ProbeArgs {
     #[command(flatten)]
     pub inputs: Inputs,
     /// Finite-difference method for checking the program against its own loss (the complex step
-    /// needs complex arithmetic inside the program, so it cannot apply).
-    #[arg(long, value_enum, default_value_t = MethodArg::Central)]
-    pub method: MethodArg,
+    /// needs complex arithmetic inside the program, so it is not offered).
+    #[arg(long, value_enum, default_value_t = ProbeMethodArg::Central)]
+    pub method: ProbeMethodArg,
     /// A fixed step for every coordinate.
     #[arg(long, value_name = "H", allow_hyphen_values = true)]
     pub step: Option<f64>,
@@ -248,8 +249,14 @@ pub struct AuditArgs {
     /// Probe data (CSV with a header row, or .npz with x and y); without it, a seeded synthetic batch.
     #[arg(short, long, value_name = "PROBE")]
     pub data: Option<PathBuf>,
-    /// Samples in the synthetic probe batch drawn without --data.
-    #[arg(long, value_name = "M", default_value_t = 1000)]
+    /// Samples in the synthetic probe batch drawn without --data (refused with --data, whose file
+    /// sets the samples).
+    #[arg(
+        long,
+        value_name = "M",
+        default_value_t = 1000,
+        conflicts_with = "data"
+    )]
     pub batch: usize,
     /// The scheme the weights are said to be drawn from: test every layer against it (KS test).
     #[arg(long, value_enum, value_name = "SCHEME")]
@@ -301,6 +308,30 @@ pub enum MethodArg {
     FivePoint,
     Richardson,
     ComplexStep,
+}
+
+/// The methods `probe` offers for an outside program: all but the complex step, which is accepted
+/// only to be refused with the reason (its help and its list of values do not show it).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum ProbeMethodArg {
+    Central,
+    Forward,
+    FivePoint,
+    Richardson,
+    #[value(hide = true)]
+    ComplexStep,
+}
+
+impl From<ProbeMethodArg> for MethodArg {
+    fn from(m: ProbeMethodArg) -> MethodArg {
+        match m {
+            ProbeMethodArg::Central => MethodArg::Central,
+            ProbeMethodArg::Forward => MethodArg::Forward,
+            ProbeMethodArg::FivePoint => MethodArg::FivePoint,
+            ProbeMethodArg::Richardson => MethodArg::Richardson,
+            ProbeMethodArg::ComplexStep => MethodArg::ComplexStep,
+        }
+    }
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
