@@ -287,14 +287,5 @@ pub fn shape(s: &[usize]) -> String {
 
 /// A number for a table: 4 significant digits, scientific when far from 1.
 pub fn num(v: f64) -> String {
-    if v == 0.0 {
-        "0".into()
-    } else if !v.is_finite() {
-        format!("{v}")
-    } else if (1e-3..1e5).contains(&v.abs()) {
-        let digits = (3 - v.abs().log10().floor() as i32).max(0) as usize;
-        format!("{v:.digits$}")
-    } else {
-        format!("{v:.3e}")
-    }
+    plumb_report::number(v)
 }

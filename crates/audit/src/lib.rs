@@ -24,6 +24,7 @@ mod flow;
 mod health;
 mod init;
 mod release;
+mod report;
 mod robust;
 mod shapes;
 mod symmetry;

@@ -75,9 +75,12 @@ impl Default for Thresholds {
 /// The whole audit.
 #[derive(Clone, Debug, Serialize)]
 pub struct Audit {
-    /// `fail` when a finding reaches the thresholds' `fail_on`.
+    /// `fail` when a finding reaches `fail_on`.
     #[serde(skip)]
     pub verdict: Verdict,
+    /// The lowest severity that fails the audit (the thresholds' `fail_on`).
+    #[serde(skip)]
+    pub fail_on: Severity,
     pub shapes: ShapeAudit,
     pub health: Vec<LayerHealth>,
     pub init: Vec<LayerInit>,
@@ -190,6 +193,7 @@ pub fn audit(
     }
     Audit {
         verdict: verdict_at(&findings, t.fail_on),
+        fail_on: t.fail_on,
         shapes,
         health,
         init,

@@ -406,7 +406,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
          layer's scale with the initialisation schemes, and follows the gradient across the layers."
             .into(),
     ));
-    for b in audit::sections(&shipped) {
+    for b in shipped.sections() {
         doc.push(b);
     }
     doc.blocks.extend(audit::plots(&shipped, desc, &good));

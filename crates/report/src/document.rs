@@ -224,6 +224,20 @@ impl Document {
     }
 }
 
+/// A number for a table cell: 4 significant digits, in exponent form when far from 1.
+pub fn number(v: f64) -> String {
+    if v == 0.0 {
+        "0".into()
+    } else if !v.is_finite() {
+        format!("{v}")
+    } else if (1e-3..1e5).contains(&v.abs()) {
+        let digits = (3 - v.abs().log10().floor() as i32).max(0) as usize;
+        format!("{v:.digits$}")
+    } else {
+        format!("{v:.3e}")
+    }
+}
+
 /// A figure in a message: integers as they are, otherwise four significant digits, in exponent
 /// form when very large or small.
 pub(crate) fn figure(v: f64) -> String {
