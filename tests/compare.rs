@@ -60,7 +60,7 @@ fn every_planted_mistake_is_named_where_it_was_planted() {
             }
         }
     }
-    // Every code of DESIGN.md §7 is exercised.
+    // Every code of docs/mistakes.md is exercised.
     for code in [
         "sign-flipped",
         "missing-batch-mean",

@@ -628,6 +628,7 @@ fn audit_report_schema() {
             "units",
             "measure",
             "fractions",
+            "mean_fraction",
             "flagged",
             "histogram",
             "range"
@@ -650,7 +651,13 @@ fn audit_report_schema() {
     );
     assert_eq!(
         keys(&j["init"][0]["test"]),
-        set(&["scheme", "statistic", "p_value", "passed"])
+        set(&[
+            "scheme",
+            "statistic",
+            "p_value",
+            "adjusted_p_value",
+            "passed"
+        ])
     );
     assert_eq!(
         keys(&j["flow"][0]),

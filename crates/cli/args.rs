@@ -122,8 +122,9 @@ pub struct Inputs {
     /// Initialisation scheme for weights drawn without --weights.
     #[arg(long, value_enum, default_value_t = InitArg::GlorotUniform)]
     pub init: InitArg,
-    /// Samples in the synthetic batch drawn without --data [default: 32; 1000 for audit].
-    #[arg(long, value_name = "M")]
+    /// Samples in the synthetic batch drawn without --data [default: 32] (refused with --data,
+    /// whose file sets the samples).
+    #[arg(long, value_name = "M", conflicts_with = "data")]
     pub batch: Option<usize>,
 }
 
@@ -217,9 +218,9 @@ pub struct ProbeArgs {
     #[command(flatten)]
     pub inputs: Inputs,
     /// Finite-difference method for checking the program against its own loss (the complex step
-    /// needs complex arithmetic inside the program, so it cannot apply).
-    #[arg(long, value_enum, default_value_t = MethodArg::Central)]
-    pub method: MethodArg,
+    /// needs complex arithmetic inside the program, so it is not offered).
+    #[arg(long, value_enum, default_value_t = ProbeMethodArg::Central)]
+    pub method: ProbeMethodArg,
     /// A fixed step for every coordinate.
     #[arg(long, value_name = "H", allow_hyphen_values = true)]
     pub step: Option<f64>,
@@ -253,8 +254,14 @@ pub struct AuditArgs {
     /// Probe data (CSV with a header row, or .npz with x and y); without it, a seeded synthetic batch.
     #[arg(short, long, value_name = "PROBE")]
     pub data: Option<PathBuf>,
-    /// Samples in the synthetic probe batch drawn without --data.
-    #[arg(long, value_name = "M", default_value_t = 1000)]
+    /// Samples in the synthetic probe batch drawn without --data (refused with --data, whose file
+    /// sets the samples).
+    #[arg(
+        long,
+        value_name = "M",
+        default_value_t = 1000,
+        conflicts_with = "data"
+    )]
     pub batch: usize,
     /// The scheme the weights are said to be drawn from: test every layer against it (KS test).
     #[arg(long, value_enum, value_name = "SCHEME")]
@@ -277,13 +284,18 @@ pub struct AuditArgs {
     /// Fraction of a layer's units dead or saturated that makes it a layer-wide error.
     #[arg(long, value_name = "F", default_value_t = 0.5)]
     pub layer_fraction: f64,
+    /// Mean fraction over a layer's units (inactive for ReLU, saturated for sigmoid and tanh) at
+    /// which the layer is flagged even when no unit reaches the per-unit rule.
+    #[arg(long, value_name = "F", default_value_t = 0.85)]
+    pub layer_mean: f64,
     /// Factor off the scale the layer's activation calls for (He or Glorot) that is flagged.
     #[arg(long, value_name = "X", default_value_t = 10.0)]
     pub scale_factor: f64,
     /// Orders of magnitude of gradient change across the layers that is flagged.
     #[arg(long, value_name = "N", default_value_t = 3.0)]
     pub flow_orders: f64,
-    /// Level of the Kolmogorov–Smirnov test against --init.
+    /// Family-wise level of the Kolmogorov–Smirnov tests against --init (Holm's correction across
+    /// the layers).
     #[arg(long, value_name = "A", default_value_t = 0.01)]
     pub ks_alpha: f64,
 }
@@ -301,6 +313,30 @@ pub enum MethodArg {
     FivePoint,
     Richardson,
     ComplexStep,
+}
+
+/// The methods `probe` offers for an outside program: all but the complex step, which is accepted
+/// only to be refused with the reason (its help and its list of values do not show it).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum ProbeMethodArg {
+    Central,
+    Forward,
+    FivePoint,
+    Richardson,
+    #[value(hide = true)]
+    ComplexStep,
+}
+
+impl From<ProbeMethodArg> for MethodArg {
+    fn from(m: ProbeMethodArg) -> MethodArg {
+        match m {
+            ProbeMethodArg::Central => MethodArg::Central,
+            ProbeMethodArg::Forward => MethodArg::Forward,
+            ProbeMethodArg::FivePoint => MethodArg::FivePoint,
+            ProbeMethodArg::Richardson => MethodArg::Richardson,
+            ProbeMethodArg::ComplexStep => MethodArg::ComplexStep,
+        }
+    }
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result, bail};
 use plumb_formats::{Description, expected_tensors, write_atomically};
 use plumb_report::{
-    BASELINE_VERSION, Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Severity,
-    Verdict, render_html, render_json, render_junit, render_markdown, render_table, use_color,
+    BASELINE_VERSION, Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Verdict,
+    render_html, render_json, render_junit, render_markdown, render_table, tally, use_color,
 };
 use serde::Serialize;
 
@@ -111,10 +111,8 @@ impl Settings {
             let base = read_baseline(path)?;
             let changes = base.compare(&doc, &findings);
             every.extend(changes.iter().cloned());
-            let worse = changes
-                .iter()
-                .filter(|f| f.severity == Severity::Error)
-                .count();
+            // Changes judged like findings: those at the run's --fail-on level or worse fail it.
+            let worse = changes.iter().filter(|f| f.severity >= doc.fail_on).count();
             if let Some(obj) = value.as_object_mut() {
                 obj.insert(
                     "baseline".into(),
@@ -135,17 +133,25 @@ impl Settings {
                     Block::Findings(changes.clone()),
                 ],
             );
-            if worse > 0 {
-                let summary = format!(
-                    "{worse} change{} for the worse since the baseline {}",
-                    if worse == 1 { "" } else { "s" },
-                    path.display()
-                );
-                verdict = Verdict::Fail;
-                set_verdict(&mut doc, verdict, &summary);
-                if let Some(obj) = value.as_object_mut() {
-                    obj.insert("verdict".into(), serde_json::json!("fail"));
+            if !changes.is_empty() {
+                // The verdict line counts what the report lists: the baseline's changes too.
+                let since = format!("since the baseline {}: {}", path.display(), tally(&changes));
+                let summary = match (worse, verdict_summary(&doc)) {
+                    (0, Some(own)) => format!("{own}; {since}"),
+                    (0, None) => since,
+                    _ => format!(
+                        "{worse} change{} at {} or worse {since}",
+                        if worse == 1 { "" } else { "s" },
+                        doc.fail_on
+                    ),
+                };
+                if worse > 0 {
+                    verdict = Verdict::Fail;
+                    if let Some(obj) = value.as_object_mut() {
+                        obj.insert("verdict".into(), serde_json::json!("fail"));
+                    }
                 }
+                set_verdict(&mut doc, verdict, &summary);
             }
         }
         doc.fail_cases_for(&every);
@@ -256,6 +262,13 @@ fn insert_before_verdict(doc: &mut Document, blocks: Vec<Block>) {
     }
 }
 
+fn verdict_summary(doc: &Document) -> Option<String> {
+    doc.blocks.iter().rev().find_map(|b| match b {
+        Block::Verdict(_, s) => Some(s.clone()),
+        _ => None,
+    })
+}
+
 fn set_verdict(doc: &mut Document, v: Verdict, summary: &str) {
     if let Some(b) = doc
         .blocks
@@ -274,14 +287,5 @@ pub fn shape(s: &[usize]) -> String {
 
 /// A number for a table: 4 significant digits, scientific when far from 1.
 pub fn num(v: f64) -> String {
-    if v == 0.0 {
-        "0".into()
-    } else if !v.is_finite() {
-        format!("{v}")
-    } else if (1e-3..1e5).contains(&v.abs()) {
-        let digits = (3 - v.abs().log10().floor() as i32).max(0) as usize;
-        format!("{v:.digits$}")
-    } else {
-        format!("{v:.3e}")
-    }
+    plumb_report::number(v)
 }

@@ -2,6 +2,8 @@
 //! asymptote. Thresholds [practice, no formal source]: a unit is dead when it outputs 0 on every
 //! probe sample (the definition Lu, Shin, Su & Karniadakis, Commun. Comput. Phys. 28:1671, 2020, use
 //! for a dead network), saturated when its output is within 0.01 of an asymptote on 99% of them.
+//! A layer is judged by the share of its units so flagged and by the mean of the fractions over its
+//! units, which sees a layer saturated on most samples in every unit but on 99% in none.
 
 use plumb_engine::{Activation, Network, Trace};
 use serde::Serialize;
@@ -24,6 +26,8 @@ pub struct LayerHealth {
     pub measure: Option<&'static str>,
     /// Per unit, the fraction of probe samples on which the measure holds.
     pub fractions: Vec<f64>,
+    /// The mean of `fractions`: the share of the layer's (unit, sample) pairs on which it holds.
+    pub mean_fraction: f64,
     /// 1-based units that are dead (ReLU) or saturated (sigmoid, tanh).
     pub flagged: Vec<usize>,
     /// Counts of the layer's activations in `BINS` equal bins over `range`.
@@ -99,11 +103,13 @@ pub fn layer_health(
                     histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;
                 }
             }
+            let mean_fraction = fractions.iter().sum::<f64>() / fractions.len().max(1) as f64;
             LayerHealth {
                 layer: l + 1,
                 activation: act.to_string(),
                 units: z.ncols(),
                 measure,
+                mean_fraction,
                 fractions,
                 flagged,
                 histogram,

@@ -2,6 +2,11 @@
 //! against the scheme's distribution (statrs's Normal and Uniform CDFs), with the p-value from the
 //! Kolmogorov distribution, Q_KS(λ) = 2 Σ (−1)^{j−1} e^{−2j²λ²} at λ = (√n + 0.12 + 0.11/√n)·D
 //! (Numerical Recipes, 2nd ed., §14.3). Scales from the published formulas (plumb_engine::Init).
+//!
+//! One test per layer at level α would reject a genuine file's layer with probability α each, so a
+//! deep network would fail its own scheme often; the layers' p-values are corrected together by
+//! Holm's step-down procedure (Holm, Scandinavian Journal of Statistics 6(2):65–70, 1979), which
+//! keeps the chance of rejecting any genuine layer of the file at most α.
 
 use plumb_engine::{Init, LayerSpec};
 use serde::Serialize;
@@ -83,8 +88,45 @@ pub struct LayerInit {
 pub struct KsTest {
     pub scheme: &'static str,
     pub statistic: f64,
+    /// The layer's own p-value.
     pub p_value: f64,
+    /// The p-value after Holm's correction across the layers tested ([`correct_across_layers`]).
+    pub adjusted_p_value: f64,
+    /// Whether the adjusted p-value is at least the level.
     pub passed: bool,
+}
+
+/// Holm's adjusted p-values (Holm 1979): with the m p-values sorted ascending, the i-th (from 1)
+/// becomes max over j ≤ i of min(1, (m − j + 1)·p₍ⱼ₎); rejecting where the adjusted value is below
+/// α is Holm's step-down test at family-wise level α.
+pub fn holm(p: &[f64]) -> Vec<f64> {
+    let m = p.len();
+    let mut order: Vec<usize> = (0..m).collect();
+    order.sort_by(|&a, &b| p[a].total_cmp(&p[b]));
+    let mut out = vec![0.0; m];
+    let mut running = 0.0f64;
+    for (i, &k) in order.iter().enumerate() {
+        running = running.max(((m - i) as f64 * p[k]).min(1.0));
+        out[k] = running;
+    }
+    out
+}
+
+/// Corrects the layers' KS tests together (Holm) and decides each at level `alpha`.
+pub fn correct_across_layers(layers: &mut [LayerInit], alpha: f64) {
+    let tested: Vec<usize> = (0..layers.len())
+        .filter(|&i| layers[i].test.is_some())
+        .collect();
+    let raw: Vec<f64> = tested
+        .iter()
+        .filter_map(|&i| layers[i].test.as_ref().map(|t| t.p_value))
+        .collect();
+    for (&i, adjusted) in tested.iter().zip(holm(&raw)) {
+        if let Some(t) = layers[i].test.as_mut() {
+            t.adjusted_p_value = adjusted;
+            t.passed = adjusted >= alpha;
+        }
+    }
 }
 
 /// The figures of one layer's non-bias weights.
@@ -97,17 +139,10 @@ pub fn layer_init(
     alpha: f64,
 ) -> LayerInit {
     let (fan_in, fan_out, activation) = (spec.inputs, spec.units, spec.activation);
-    let n = weights.len().max(1) as f64;
-    let mean = weights.iter().sum::<f64>() / n;
-    let var = weights.iter().map(|w| (w - mean).powi(2)).sum::<f64>() / n;
-    let std = var.sqrt();
-    let kurt = if var > 0.0 {
-        weights.iter().map(|w| (w - mean).powi(4)).sum::<f64>() / n / (var * var)
-    } else {
-        3.0
-    };
+    let m = crate::robust::moments(weights);
+    let std = m.std;
     // Uniform has kurtosis 1.8, the normal 3: split at 2.4.
-    let uniform = kurt < 2.4;
+    let uniform = m.kurtosis < 2.4;
     let closest = Init::ALL
         .into_iter()
         .filter(|i| i.is_uniform() == uniform || (!uniform && *i == Init::LecunNormal))
@@ -128,6 +163,7 @@ pub fn layer_init(
             scheme: scheme.name(),
             statistic,
             p_value,
+            adjusted_p_value: p_value,
             passed: p_value >= alpha,
         }
     });
@@ -158,6 +194,21 @@ mod tests {
         assert!((q_ks(1.628) - 0.01).abs() < 2e-4, "{}", q_ks(1.628));
         assert!((q_ks(1.224) - 0.10).abs() < 1e-3, "{}", q_ks(1.224));
         assert_eq!(q_ks(0.0), 1.0);
+    }
+
+    // Holm's procedure by its definition, on p = (0.01, 0.04, 0.03, 0.005) with m = 4: sorted
+    // 0.005, 0.01, 0.03, 0.04 are multiplied by 4, 3, 2, 1 → 0.02, 0.03, 0.06, 0.04, and a running
+    // maximum keeps the order: 0.02, 0.03, 0.06, 0.06. At α = 0.05 the step-down test rejects the
+    // first two and stops at 0.03 > 0.05/2, as the adjusted values say.
+    #[test]
+    fn holm_adjusts_by_its_step_down_definition() {
+        let adj = holm(&[0.01, 0.04, 0.03, 0.005]);
+        let want = [0.03, 0.06, 0.06, 0.02];
+        for (a, w) in adj.iter().zip(want) {
+            assert!((a - w).abs() < 1e-15, "{adj:?}");
+        }
+        assert_eq!(holm(&[0.9, 0.8]), vec![1.0, 1.0]);
+        assert_eq!(holm(&[0.004]), vec![0.004]);
     }
 
     // The statistic by hand: for the sample {0.25, 0.75} against U(0, 1), F_n jumps 0 → ½ → 1 at

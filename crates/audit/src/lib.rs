@@ -24,14 +24,21 @@ mod flow;
 mod health;
 mod init;
 mod release;
+mod report;
+mod robust;
 mod shapes;
 mod symmetry;
+mod units;
 mod values;
 
 pub use flow::{LayerFlow, layer_flow, sigma_max};
 pub use health::{BINS, LayerHealth, layer_health, sparkline};
-pub use init::{KsTest, LayerInit, ks_test, layer_init, q_ks, scheme_cdf};
-pub use release::{Audit, Thresholds, audit};
+pub use init::{
+    KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
+};
+pub use release::{Audit, Thresholds, audit, verdict_at};
+pub use robust::{Moments, largest, moments, norm};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
-pub use symmetry::symmetric_groups;
+pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
+pub use units::{unit_ranges, units_phrase};
 pub use values::check_values;

@@ -2,13 +2,30 @@
 
 use plumb_engine::{Batch, Init};
 use plumb_formats::{Description, Role, TensorFile, assemble, bind, expected_tensors};
-use plumb_report::{Finding, Severity, Verdict};
+use plumb_report::{Finding, Severity, Verdict, tally};
 use serde::Serialize;
 
 use crate::{
-    LayerFlow, LayerHealth, LayerInit, ShapeAudit, audit_shapes, check_values, layer_flow,
-    layer_health, layer_init, symmetric_groups,
+    LayerFlow, LayerHealth, LayerInit, ShapeAudit, SymmetricGroup, audit_shapes, check_values,
+    correct_across_layers, layer_flow, layer_health, layer_init, symmetry, unit_ranges,
+    units_phrase,
 };
+
+/// `fail` when any finding reaches `level`.
+pub fn verdict_at(findings: &[Finding], level: Severity) -> Verdict {
+    if findings.iter().any(|f| f.severity >= level) {
+        Verdict::Fail
+    } else {
+        Verdict::Pass
+    }
+}
+
+impl Audit {
+    /// The verdict line's summary: the findings counted by severity.
+    pub fn summary(&self) -> String {
+        tally(&self.findings)
+    }
+}
 
 /// The thresholds of the audit; `Default` gives the documented defaults (docs/audit.md).
 #[derive(Clone, Debug, Serialize)]
@@ -23,12 +40,19 @@ pub struct Thresholds {
     pub saturated_fraction: f64,
     /// Fraction of a layer's units dead or saturated that makes the layer itself a finding.
     pub layer_fraction: f64,
+    /// Mean fraction over a layer's units (inactive for ReLU, saturated for sigmoid and tanh) that
+    /// makes the layer a finding even when no single unit reaches the per-unit rule.
+    pub layer_mean: f64,
     /// Factor off the scheme the activation calls for beyond which a layer's scale is flagged.
     pub scale_factor: f64,
     /// Orders of magnitude of gradient change from the output layer to the first that is flagged.
     pub flow_orders: f64,
-    /// Level of the Kolmogorov–Smirnov test against a claimed initialisation.
+    /// Family-wise level of the Kolmogorov–Smirnov tests against a claimed initialisation (Holm's
+    /// correction across the layers).
     pub ks_alpha: f64,
+    /// The lowest severity that fails the audit (the report states it as `fail_on`).
+    #[serde(skip)]
+    pub fail_on: Severity,
 }
 
 impl Default for Thresholds {
@@ -39,9 +63,11 @@ impl Default for Thresholds {
             saturation: 0.01,
             saturated_fraction: 0.99,
             layer_fraction: 0.5,
+            layer_mean: 0.85,
             scale_factor: 10.0,
             flow_orders: 3.0,
             ks_alpha: 0.01,
+            fail_on: Severity::Error,
         }
     }
 }
@@ -49,8 +75,12 @@ impl Default for Thresholds {
 /// The whole audit.
 #[derive(Clone, Debug, Serialize)]
 pub struct Audit {
+    /// `fail` when a finding reaches `fail_on`.
     #[serde(skip)]
     pub verdict: Verdict,
+    /// The lowest severity that fails the audit (the thresholds' `fail_on`).
+    #[serde(skip)]
+    pub fail_on: Severity,
     pub shapes: ShapeAudit,
     pub health: Vec<LayerHealth>,
     pub init: Vec<LayerInit>,
@@ -101,26 +131,9 @@ pub fn audit(
         .collect();
     let net = &desc.network;
     if let Some(w) = &weights {
-        for (l, groups) in symmetric_groups(w, t.symmetry_tolerance)
-            .into_iter()
-            .enumerate()
-        {
-            for g in groups {
-                let units: Vec<usize> = g.iter().map(|u| u + 1).collect();
-                findings.push(
-                    Finding::new(
-                        "symmetric-units",
-                        Severity::Error,
-                        format!(
-                            "units {units:?} of layer {} have the same incoming weights and bias: they compute the same value, get the same gradient, and will never differ",
-                            l + 2
-                        ),
-                    )
-                    .tensor(&names[l])
-                    .layer(l + 1)
-                    .figure("units", &units),
-                );
-            }
+        for g in symmetry(w, t.symmetry_tolerance) {
+            let output = g.layer == desc.layers.len();
+            findings.extend(symmetry_findings(&g, &names[g.layer - 1], output));
         }
     }
     if let (Some(w), true) = (&weights, finite) {
@@ -136,9 +149,18 @@ pub fn audit(
                 .iter()
                 .copied()
                 .collect();
-            let li = layer_init(l + 1, &names[l], &values, spec, claimed, t.ks_alpha);
-            init_findings(&li, spec.activation.name(), t, &mut findings);
-            init.push(li);
+            init.push(layer_init(
+                l + 1,
+                &names[l],
+                &values,
+                spec,
+                claimed,
+                t.ks_alpha,
+            ));
+        }
+        correct_across_layers(&mut init, t.ks_alpha);
+        for (li, spec) in init.iter().zip(net.layers()) {
+            init_findings(li, spec.activation.name(), t, &mut findings);
         }
         flow = layer_flow(net, w, &trace, batch.y.view(), seed);
         if let (Some(first), Some(last)) = (flow.first(), flow.last())
@@ -170,7 +192,8 @@ pub fn audit(
         }
     }
     Audit {
-        verdict: Verdict::of(&findings),
+        verdict: verdict_at(&findings, t.fail_on),
+        fail_on: t.fail_on,
         shapes,
         health,
         init,
@@ -180,6 +203,53 @@ pub fn audit(
     }
 }
 
+/// Identical incoming rows: the same activation (a warning); identical outgoing columns as well:
+/// the same gradient for ever (an error).
+fn symmetry_findings(g: &SymmetricGroup, tensor: &str, output: bool) -> Vec<Finding> {
+    let mut out = Vec::new();
+    let all_inseparable = g.inseparable.len() == 1 && g.inseparable[0].len() == g.units.len();
+    if !all_inseparable {
+        let outgoing = if output {
+            "they are output units, whose gradients differ with the targets, so training can still separate them"
+        } else if g.inseparable.is_empty() {
+            "their outgoing weights differ, so they receive different gradients and training can still separate them"
+        } else {
+            "their outgoing weights are not all identical, so not all of them receive the same gradient"
+        };
+        out.push(
+            Finding::new(
+                "duplicate-units",
+                Severity::Warning,
+                format!(
+                    "units {} of layer {} have identical incoming weights and bias: they compute the same activation on every input; {outgoing}",
+                    unit_ranges(&g.units),
+                    g.layer
+                ),
+            )
+            .tensor(tensor)
+            .layer(g.layer)
+            .figure("units", &g.units),
+        );
+    }
+    for units in &g.inseparable {
+        out.push(
+            Finding::new(
+                "symmetric-units",
+                Severity::Error,
+                format!(
+                    "units {} of layer {} have identical incoming weights and bias and identical outgoing weights: they compute the same activation and receive the same gradient, so gradient descent can never separate them",
+                    unit_ranges(units),
+                    g.layer
+                ),
+            )
+            .tensor(tensor)
+            .layer(g.layer)
+            .figure("units", units),
+        );
+    }
+    out
+}
+
 fn health_findings(
     h: &LayerHealth,
     tensor: &str,
@@ -187,64 +257,97 @@ fn health_findings(
     samples: usize,
     out: &mut Vec<Finding>,
 ) {
-    if h.flagged.is_empty() {
-        return;
-    }
-    let relu = h.measure == Some("inactive");
-    let (unit_code, layer_code, what) = if relu {
-        (
+    // What a flagged unit does, said of one unit and of several.
+    let (unit_code, layer_code, mean_code, one, many) = match h.measure {
+        Some("inactive") => (
             "dead-unit",
             "dead-layer",
+            "mostly-inactive-layer",
             format!("outputs 0 on all {samples} probe samples: it is dead and learns no more"),
-        )
-    } else {
-        (
-            "saturated-unit",
-            "saturated-layer",
             format!(
-                "is within {} of an asymptote on at least {:.0}% of the {samples} probe samples: its gradient all but vanishes",
+                "each output 0 on all {samples} probe samples: they are dead and learn no more"
+            ),
+        ),
+        Some("saturated") => {
+            let near = format!(
+                "within {} of an asymptote on at least {:.0}% of the {samples} probe samples",
                 t.saturation,
                 t.saturated_fraction * 100.0
-            ),
-        )
+            );
+            (
+                "saturated-unit",
+                "saturated-layer",
+                "mostly-saturated-layer",
+                format!("is {near}: its gradient all but vanishes"),
+                format!("are each {near}: their gradients all but vanish"),
+            )
+        }
+        _ => return,
     };
-    let share = h.flagged.len() as f64 / h.units as f64;
-    if share >= t.layer_fraction {
+    let layer = format!("layer {} ({})", h.layer, h.activation);
+    let share = h.flagged.len() as f64 / h.units.max(1) as f64;
+    if !h.flagged.is_empty() && share >= t.layer_fraction {
         out.push(
             Finding::new(
                 layer_code,
                 Severity::Error,
                 format!(
-                    "{} of the {} units of hidden layer {} ({}) — units {:?} — each {what}",
+                    "{} of the {} units of {layer} — {} — {many}",
                     h.flagged.len(),
                     h.units,
-                    h.layer,
-                    h.activation,
-                    h.flagged
+                    units_phrase(&h.flagged),
                 ),
             )
             .tensor(tensor)
             .layer(h.layer)
             .figure("units", &h.flagged)
-            .figure("fraction", share),
+            .figure("fraction", share)
+            .figure("mean_fraction", h.mean_fraction),
         );
-    } else {
-        for &u in &h.flagged {
-            out.push(
-                Finding::new(
-                    unit_code,
-                    Severity::Warning,
-                    format!(
-                        "unit {u} of hidden layer {} ({}) {what}",
-                        h.layer, h.activation
-                    ),
-                )
-                .tensor(tensor)
-                .layer(h.layer)
-                .figure("unit", u)
-                .figure("fraction", h.fractions[u - 1]),
-            );
-        }
+        return;
+    }
+    if h.mean_fraction >= t.layer_mean {
+        let state = if layer_code == "dead-layer" {
+            format!(
+                "its units output 0 on {:.1}% of the (unit, sample) pairs of the probe data",
+                h.mean_fraction * 100.0
+            )
+        } else {
+            format!(
+                "its units are within {} of an asymptote on {:.1}% of the (unit, sample) pairs of the probe data",
+                t.saturation,
+                h.mean_fraction * 100.0
+            )
+        };
+        out.push(
+            Finding::new(
+                mean_code,
+                Severity::Warning,
+                format!(
+                    "{layer}: {state} (at or above {:.0}%), though only {} of its {} units {} the per-unit rule: little signal and gradient pass through it",
+                    t.layer_mean * 100.0,
+                    h.flagged.len(),
+                    h.units,
+                    if h.flagged.len() == 1 { "meets" } else { "meet" }
+                ),
+            )
+            .tensor(tensor)
+            .layer(h.layer)
+            .figure("mean_fraction", h.mean_fraction),
+        );
+    }
+    for &u in &h.flagged {
+        out.push(
+            Finding::new(
+                unit_code,
+                Severity::Warning,
+                format!("unit {u} of {layer} {one}"),
+            )
+            .tensor(tensor)
+            .layer(h.layer)
+            .figure("unit", u)
+            .figure("fraction", h.fractions[u - 1]),
+        );
     }
 }
 
@@ -255,22 +358,24 @@ fn init_findings(li: &LayerInit, activation: &str, t: &Thresholds, out: &mut Vec
         out.push(
                 Finding::new(
                     "init-mismatch",
-                    Severity::Error,
+                    Severity::Warning,
                     format!(
-                        "its weights are not drawn from {} (Kolmogorov–Smirnov D = {:.4}, p = {:.2e} < {}): their standard deviation {:.4} is {:.2}× that scheme's; closest is {} ({:.2}×)",
+                        "its weights are unlikely to be drawn from {} (Kolmogorov–Smirnov D = {:.4}, p = {:.2e}, {:.2e} after Holm's correction across the layers < {}): their standard deviation {:.4} is {}× that scheme's; closest is {} ({}×)",
                         test.scheme,
                         test.statistic,
                         test.p_value,
+                        test.adjusted_p_value,
                         t.ks_alpha,
                         li.std,
-                        scheme_ratio(li, test.scheme),
+                        times(scheme_ratio(li, test.scheme)),
                         li.closest,
-                        li.ratio
+                        times(li.ratio)
                     ),
                 )
                 .tensor(&li.tensor)
                 .layer(li.layer)
                 .figure("p_value", test.p_value)
+                .figure("adjusted_p_value", test.adjusted_p_value)
                 .figure("statistic", test.statistic),
             );
     }
@@ -287,7 +392,7 @@ fn init_findings(li: &LayerInit, activation: &str, t: &Thresholds, out: &mut Vec
             Finding::new(
                 code,
                 Severity::Warning,
-                format!("its weights' standard deviation {:.3e} is {r:.3}× what {} calls for with {activation} units: {why}", li.std, li.reference),
+                format!("its weights' standard deviation {} is {}× what {} calls for with {activation} units: {why}", times(li.std), times(r), li.reference),
             )
             .tensor(&li.tensor)
             .layer(li.layer)
@@ -299,4 +404,14 @@ fn init_findings(li: &LayerInit, activation: &str, t: &Thresholds, out: &mut Vec
 /// std over the σ of a named scheme.
 fn scheme_ratio(li: &LayerInit, scheme: &str) -> f64 {
     Init::from_name(scheme).map_or(f64::NAN, |s| li.std / s.std_dev(li.fan_in, li.fan_out))
+}
+
+/// A figure for a message: three decimals near 1, exponent form when far from it (a byte-swapped
+/// layer's spread is 1e285 times any scheme's).
+fn times(r: f64) -> String {
+    if r.is_finite() && r != 0.0 && !(1e-3..1e4).contains(&r.abs()) {
+        format!("{r:.3e}")
+    } else {
+        format!("{r:.3}")
+    }
 }

@@ -1,6 +1,7 @@
 //! What the numbers of a weight file say before any forward pass: non-finite entries, magnitudes no
 //! trained network has (the sign of bytes read in the wrong order or as the wrong type), and
-//! tensors that are all one value.
+//! tensors that are all one value, and a layer stored at a lower precision than the rest of the
+//! file (the readers widen every tensor to f64, but each keeps the dtype it was stored in).
 
 use plumb_formats::{DType, Description, Role, Tensor, TensorFile, expected_tensors};
 use plumb_report::{Finding, Severity};
@@ -10,6 +11,7 @@ use crate::Thresholds;
 /// Findings on the values of every tensor the layout uses.
 pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Vec<Finding> {
     let mut out = Vec::new();
+    let mut stored: Vec<(String, usize, DType)> = Vec::new();
     for e in expected_tensors(desc, desc.layout) {
         let Some(tensor) = file.get(&e.name) else {
             continue;
@@ -18,6 +20,7 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
             continue; // the shape audit names it
         }
         let layer = e.layer + 1;
+        stored.push((e.name.clone(), layer, tensor.dtype));
         let bad: Vec<usize> = (0..tensor.data.len())
             .filter(|&k| !tensor.data[k].is_finite())
             .collect();
@@ -58,7 +61,7 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
                 Finding::new(
                     "implausible-magnitude",
                     Severity::Error,
-                    format!("its largest |value| is {max:e}, beyond the {:e} no trained network reaches{hint}", t.max_magnitude),
+                    format!("its largest |value| is {max:.3e}, beyond the {:e} no trained network reaches{hint}", t.max_magnitude),
                 )
                 .tensor(&e.name)
                 .layer(layer)
@@ -97,7 +100,49 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
             );
         }
     }
+    out.extend(mixed_precision(&stored));
     out
+}
+
+/// Significant bits of a float type (the stored mantissa and its implicit leading bit).
+fn significant_bits(d: DType) -> u32 {
+    match d {
+        DType::BF16 => 8,
+        DType::F16 => 11,
+        DType::F32 => 24,
+        _ => 53,
+    }
+}
+
+/// A tensor stored at a lower precision than the file's widest: one layer converted on its own.
+fn mixed_precision(stored: &[(String, usize, DType)]) -> Vec<Finding> {
+    let Some(widest) = stored
+        .iter()
+        .map(|(_, _, d)| *d)
+        .max_by_key(|d| significant_bits(*d))
+    else {
+        return Vec::new();
+    };
+    let wide = significant_bits(widest);
+    stored
+        .iter()
+        .filter(|(_, _, d)| significant_bits(*d) < wide)
+        .map(|(name, layer, d)| {
+            let bits = significant_bits(*d);
+            Finding::new(
+                "mixed-precision",
+                Severity::Warning,
+                format!(
+                    "stored as {d} while the file holds {widest} tensors: its values keep {bits} significant bits (about {:.0} decimal digits) against {wide}; a file exported from one model normally has one precision, so this tensor was likely converted on its own",
+                    bits as f64 * 2f64.log10()
+                ),
+            )
+            .tensor(name)
+            .layer(*layer)
+            .figure("dtype", d.name())
+            .figure("widest", widest.name())
+        })
+        .collect()
 }
 
 /// The non-bias and bias values of a layout tensor.

@@ -1,4 +1,4 @@
-//! The initialisation tests against the published scales (CHECK-VALUES.md: Glorot & Bengio 2010,
+//! The initialisation tests against the published scales (Glorot & Bengio 2010,
 //! He et al. 2015, LeCun et al. 1998), through the Kolmogorov–Smirnov test (NR §14.3).
 
 use plumb_audit::{ks_test, layer_init, q_ks, scheme_cdf};

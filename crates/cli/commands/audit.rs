@@ -3,19 +3,17 @@
 use std::path::PathBuf;
 
 use anyhow::{Result, bail};
-use plumb_audit::{Audit, Thresholds, audit, sparkline};
+use plumb_audit::{Audit, Thresholds, audit};
 use plumb_engine::Init;
 use plumb_formats::{Description, assemble, bind, read_tensors};
-use plumb_report::{
-    Block, Case, Cell, Document, HeatRow, Severity, Table, Tone, Verdict, heatmap, histogram,
-};
+use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
 use crate::args::{AuditArgs, FailOn, Inputs};
 use crate::commands::check::plot;
 use crate::commands::shapes;
 use crate::inputs::{DataSource, init_scheme, load_batch};
-use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
+use crate::output::{SCHEMA_VERSION, Settings, network_id};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -34,7 +32,7 @@ pub struct AuditReport<'a> {
 }
 
 pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
-    let checks: [(&str, f64, bool); 8] = [
+    let checks: [(&str, f64, bool); 9] = [
         (
             "--max-magnitude",
             args.max_magnitude,
@@ -60,6 +58,11 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             args.layer_fraction,
             args.layer_fraction > 0.0 && args.layer_fraction <= 1.0,
         ),
+        (
+            "--layer-mean",
+            args.layer_mean,
+            args.layer_mean > 0.0 && args.layer_mean <= 1.0,
+        ),
         ("--scale-factor", args.scale_factor, args.scale_factor > 1.0),
         ("--flow-orders", args.flow_orders, args.flow_orders > 0.0),
         (
@@ -81,9 +84,14 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         saturation: args.saturation,
         saturated_fraction: args.saturated_fraction,
         layer_fraction: args.layer_fraction,
+        layer_mean: args.layer_mean,
         scale_factor: args.scale_factor,
         flow_orders: args.flow_orders,
         ks_alpha: args.ks_alpha,
+        fail_on: match args.fail_on {
+            FailOn::Warning => Severity::Warning,
+            FailOn::Error => Severity::Error,
+        },
     };
     let desc = Description::read(&args.net)?;
     let file = read_tensors(&args.weights)?;
@@ -119,17 +127,9 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             found.join(", ")
         );
     }
-    let level = match args.fail_on {
-        FailOn::Warning => Severity::Warning,
-        FailOn::Error => Severity::Error,
-    };
-    let verdict = if result.findings.iter().any(|f| f.severity >= level) {
-        Verdict::Fail
-    } else {
-        Verdict::Pass
-    };
+    let level = t.fail_on;
     let report = AuditReport {
-        verdict,
+        verdict: result.verdict,
         schema_version: SCHEMA_VERSION,
         command: "audit",
         description: &args.net,
@@ -143,65 +143,18 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     let mut doc = document(&report, &desc, &file, &args.weights);
     doc.command = "audit".into();
     doc.network = Some(network_id(&desc));
-    doc.cases = cases(&result, level);
+    doc.fail_on = level;
+    doc.cases = cases(&result);
     if settings.html.is_some() {
         crate::commands::check::insert_before_findings(&mut doc, plots(&result, &desc, &file));
     }
     settings.emit(&report, doc)
 }
 
-/// The shape cases, one case per layer's tensor for the other checks, and one for the network.
-pub fn cases(a: &Audit, level: Severity) -> Vec<Case> {
+/// The shape cases, then the audit's own (one per layer's tensor, one for the network).
+pub fn cases(a: &Audit) -> Vec<Case> {
     let mut out = shapes::cases(&a.shapes);
-    let failing = |tensor: Option<&str>| {
-        a.findings
-            .iter()
-            .filter(|f| {
-                f.severity >= level && !f.code.starts_with("shape") && f.tensor.as_deref() == tensor
-            })
-            .find(|f| {
-                !matches!(
-                    f.code.as_str(),
-                    "transposed-matrix"
-                        | "bias-column-missing"
-                        | "bias-column-extra"
-                        | "bias-wrong-length"
-                        | "layers-out-of-order"
-                        | "wrong-shape"
-                        | "tensor-missing"
-                        | "tensor-unexpected"
-                        | "other-layout"
-                        | "dtype-not-float"
-                )
-            })
-    };
-    for i in &a.init {
-        let flagged = a
-            .health
-            .iter()
-            .find(|h| h.layer == i.layer)
-            .map_or(0, |h| h.flagged.len());
-        let mut c = Case::new(format!("audit {}", i.tensor), true)
-            .about(&i.tensor)
-            .figure("flagged_units", flagged as f64)
-            .figure("weight_std", i.std)
-            .figure("std_ratio", i.reference_ratio);
-        if let Some(f) = a.flow.iter().find(|f| f.layer == i.layer) {
-            c = c
-                .figure("activation_std", f.activation_std)
-                .figure("gradient_norm", f.gradient_norm)
-                .figure("sigma_max", f.sigma_max);
-        }
-        if let Some(f) = failing(Some(&i.tensor)) {
-            c = c.failing(&f.code, f.message.clone());
-        }
-        out.push(c);
-    }
-    let mut c = Case::new("audit network", true);
-    if let Some(f) = failing(None) {
-        c = c.failing(&f.code, f.message.clone());
-    }
-    out.push(c);
+    out.extend(a.cases());
     out
 }
 
@@ -312,23 +265,14 @@ fn document(
         doc.push(b);
     }
 
-    for b in sections(a) {
+    for b in a.sections() {
         doc.push(b);
     }
     for s in &a.skipped {
         doc.push(Block::Text(format!("Not checked — {s}.")));
     }
     doc.push(Block::Findings(a.findings.clone()));
-    let count = |s: Severity| a.findings.iter().filter(|f| f.severity == s).count();
-    doc.push(Block::Verdict(
-        r.verdict,
-        format!(
-            "{} errors, {} warnings, {} notes",
-            count(Severity::Error),
-            count(Severity::Warning),
-            count(Severity::Note)
-        ),
-    ));
+    doc.push(Block::Verdict(r.verdict, a.summary()));
     doc.push(Block::Caution(
         "This audit checks the file's structure and health on the probe data. It is not a safety \
          assessment: it says nothing of accuracy, robustness or fairness. A model that will decide \
@@ -337,126 +281,4 @@ fn document(
             .into(),
     ));
     doc
-}
-
-/// The health, initialisation and flow tables of an audit (shared with the demo).
-pub fn sections(a: &Audit) -> Vec<Block> {
-    let mut out = Vec::new();
-    if !a.health.is_empty() {
-        out.push(Block::Heading("unit health on the probe data".into()));
-        let mut t = Table::new([
-            "layer",
-            "activation",
-            "units",
-            "measure",
-            "mean",
-            "worst",
-            "flagged",
-            "activations",
-        ]);
-        for h in &a.health {
-            let mean = if h.fractions.is_empty() {
-                0.0
-            } else {
-                h.fractions.iter().sum::<f64>() / h.fractions.len() as f64
-            };
-            let worst = h.fractions.iter().copied().fold(0.0, f64::max);
-            t.push([
-                Cell::from(h.layer.to_string()),
-                Cell::from(h.activation.clone()),
-                Cell::from(h.units.to_string()),
-                Cell::from(h.measure.unwrap_or("—")),
-                Cell::from(if h.measure.is_some() {
-                    format!("{:.1}%", mean * 100.0)
-                } else {
-                    "—".into()
-                }),
-                Cell::from(if h.measure.is_some() {
-                    format!("{:.1}%", worst * 100.0)
-                } else {
-                    "—".into()
-                }),
-                Cell::new(
-                    if h.flagged.is_empty() {
-                        "none".to_string()
-                    } else {
-                        format!("{:?}", h.flagged)
-                    },
-                    if h.flagged.is_empty() {
-                        Tone::Good
-                    } else {
-                        Tone::Bad
-                    },
-                ),
-                Cell::from(format!(
-                    "{:.2} {} {:.2}",
-                    h.range.0,
-                    sparkline(&h.histogram),
-                    h.range.1
-                )),
-            ]);
-        }
-        out.push(Block::Table(t));
-    }
-    if !a.init.is_empty() {
-        out.push(Block::Heading("initialisation scale".into()));
-        let mut t = Table::new([
-            "layer",
-            "tensor",
-            "fan in",
-            "fan out",
-            "std",
-            "closest",
-            "called for",
-            "KS test",
-        ]);
-        for i in &a.init {
-            let ks = i.test.as_ref().map_or("—".to_string(), |k| {
-                format!(
-                    "{}: D {:.4}, p {}{}",
-                    k.scheme,
-                    k.statistic,
-                    num(k.p_value),
-                    if k.passed { "" } else { " ✗" }
-                )
-            });
-            let tone = if i.test.as_ref().is_some_and(|k| !k.passed) {
-                Tone::Bad
-            } else {
-                Tone::Plain
-            };
-            t.push([
-                Cell::from(i.layer.to_string()),
-                Cell::from(i.tensor.clone()),
-                Cell::from(i.fan_in.to_string()),
-                Cell::from(i.fan_out.to_string()),
-                Cell::from(num(i.std)),
-                Cell::from(format!("{} ({:.2}×)", i.closest, i.ratio)),
-                Cell::from(format!("{} ({:.2}×)", i.reference, i.reference_ratio)),
-                Cell::new(ks, tone),
-            ]);
-        }
-        out.push(Block::Table(t));
-    }
-    if !a.flow.is_empty() {
-        out.push(Block::Heading("signal and gradient flow".into()));
-        let mut t = Table::new([
-            "layer",
-            "activation std",
-            "gradient norm",
-            "gradient RMS",
-            "largest singular value",
-        ]);
-        for f in &a.flow {
-            t.push([
-                Cell::from(f.layer.to_string()),
-                Cell::from(num(f.activation_std)),
-                Cell::from(num(f.gradient_norm)),
-                Cell::from(num(f.gradient_rms)),
-                Cell::from(num(f.sigma_max)),
-            ]);
-        }
-        out.push(Block::Table(t));
-    }
-    out
 }

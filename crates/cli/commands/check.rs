@@ -104,7 +104,7 @@ pub struct TensorReport {
     pub max_rel_error: f64,
     pub median_rel_error: f64,
     pub norm_rel_error: f64,
-    /// ‖∂J/∂Θ‖₂ over the whole tensor (the reference gradient).
+    /// ‖∂J/∂(W, b)‖₂ over the whole tensor (the reference gradient).
     pub gradient_norm: f64,
     pub max_bound: f64,
     pub median_bound: f64,
@@ -173,9 +173,10 @@ pub struct CheckReport {
     pub coordinates: Option<Vec<CoordReport>>,
     pub directions: Vec<DirectionReport>,
     pub findings: Vec<Finding>,
-    /// Every checked coordinate's relative error, per tensor (for the HTML plot; not in JSON).
+    /// Every checked coordinate's relative error and relative bound, per tensor (for the HTML
+    /// plot; not in JSON).
     #[serde(skip)]
-    pub rel_errors: Vec<(String, Vec<f64>)>,
+    pub rel_errors: Vec<StripSeries>,
 }
 
 pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
@@ -266,12 +267,14 @@ pub fn cases(r: &CheckReport) -> Vec<Case> {
         .collect()
 }
 
-/// The check's pictures: relative error per tensor against the practice bands, and the V-curve of
-/// the worst coordinates (shared with the demo).
+/// The check's pictures: relative error per tensor against each coordinate's error bound and the
+/// tolerance, and the V-curve of the worst coordinates (shared with the demo).
 pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Block> {
     let mut out: Vec<Block> = strip_plot(
         "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
         &r.rel_errors,
+        r.tolerance,
+        r.precision,
     )
     .into_iter()
     .collect();
@@ -332,25 +335,26 @@ pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Bloc
     out
 }
 
-/// Relative errors per tensor on a log axis against the practice bands (check, compare, probe).
-pub fn strip_plot(title: &str, rel_errors: &[(String, Vec<f64>)]) -> Option<Block> {
-    let series: Vec<StripSeries> = rel_errors
-        .iter()
-        .map(|(n, v)| StripSeries {
-            label: n.clone(),
-            values: v.clone(),
-        })
-        .collect();
-    let bands = [
-        (1e-7, "good (smooth)"),
-        (1e-4, "suspicious"),
-        (1e-2, "almost surely wrong"),
-    ];
-    let svg = error_strip(title, &series, &bands).ok()?;
-    Some(plot(
-        "Relative error per tensor; the bands are common practice, not a standard.",
-        svg,
-    ))
+/// Relative errors per tensor on a log axis (check, compare, probe), against plumb's own figures:
+/// the tolerance of the precision, and each point's error bound where a method measured it.
+pub fn strip_plot(
+    title: &str,
+    series: &[StripSeries],
+    tolerance: f64,
+    precision: &str,
+) -> Option<Block> {
+    let label = format!("tolerance {tolerance:.0e} ({precision})");
+    let svg = error_strip(title, series, &[(tolerance, &label)]).ok()?;
+    let bounds = series.iter().any(|s| !s.bounds.is_empty());
+    let caption = if bounds {
+        "Relative error per tensor: each dot a coordinate, the grey dash at its place across the \
+         error its finite-difference method can explain there, the dashed line plumb's tolerance \
+         for the precision. A coordinate is wrong only above both."
+    } else {
+        "Relative error per tensor: each dot an entry, the dashed line plumb's tolerance for the \
+         precision the gradient was stored in."
+    };
+    Some(plot(caption, svg))
 }
 
 pub fn plot(title: &str, svg: String) -> Block {
@@ -409,7 +413,7 @@ pub struct RunFacts {
     pub samples: usize,
     pub step: Option<f64>,
     pub shard: Option<(usize, usize)>,
-    /// ‖∂J/∂Θ‖₂ of each tensor, over all its entries (checked or not).
+    /// ‖∂J/∂(W, b)‖₂ of each tensor, over all its entries (checked or not).
     pub gradient_norms: Vec<f64>,
 }
 
@@ -661,13 +665,18 @@ pub fn build(
             .iter()
             .zip(&tensors.expected)
             .map(|(s, e)| {
-                let v = result
-                    .coords
-                    .iter()
-                    .filter(|c| s.part.contains(c))
-                    .map(|c| c.rel_error)
-                    .collect();
-                (e.name.clone(), v)
+                let (values, bounds) = (0..result.coords.len())
+                    .filter(|&i| s.part.contains(&result.coords[i]))
+                    .map(|i| {
+                        let c = coord_report(tensors, result, i);
+                        (c.rel_error, c.rel_bound)
+                    })
+                    .unzip();
+                StripSeries {
+                    label: e.name.clone(),
+                    values,
+                    bounds,
+                }
             })
             .collect(),
     }

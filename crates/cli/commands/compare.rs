@@ -10,7 +10,9 @@ use plumb_diagnose::{
 use plumb_engine::{Reduction, Weights};
 use plumb_fd::{CheckConfig, Method, Precision, Status, check};
 use plumb_formats::{DType, Description, Role, bind, disassemble, expected_tensors, read_tensors};
-use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
+use plumb_report::{
+    Block, Case, Cell, Document, Finding, Severity, StripSeries, Table, Tone, Verdict,
+};
 use serde::Serialize;
 
 use crate::args::CompareArgs;
@@ -598,12 +600,17 @@ pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
         .collect()
 }
 
-/// The outside gradient's relative error per entry, per tensor, against the practice bands.
-pub fn error_plot(tensors: &[TensorReport]) -> Option<Block> {
-    let series: Vec<(String, Vec<f64>)> = tensors
+/// The outside gradient's relative error per entry, per tensor, against the tolerance of the
+/// precision it was stored in.
+pub fn error_plot(tensors: &[TensorReport], tolerance: f64, precision: &str) -> Option<Block> {
+    let series: Vec<StripSeries> = tensors
         .iter()
         .filter(|t| !t.rel_errors.is_empty())
-        .map(|t| (t.name.clone(), t.rel_errors.clone()))
+        .map(|t| StripSeries {
+            label: t.name.clone(),
+            values: t.rel_errors.clone(),
+            bounds: Vec::new(),
+        })
         .collect();
     if series.is_empty() {
         return None;
@@ -611,6 +618,8 @@ pub fn error_plot(tensors: &[TensorReport]) -> Option<Block> {
     strip_plot(
         "relative error |outside − reference| / max(|outside|, |reference|, floor) of every entry",
         &series,
+        tolerance,
+        precision,
     )
 }
 
@@ -654,7 +663,7 @@ fn document(r: &CompareReport) -> Document {
     }
     doc.push(Block::Facts(facts));
     doc.push(Block::Table(tensor_table(&r.tensors)));
-    if let Some(p) = error_plot(&r.tensors) {
+    if let Some(p) = error_plot(&r.tensors, r.tolerance, r.precision) {
         doc.push(p);
     }
     doc.push(Block::Findings(r.findings.clone()));

@@ -242,6 +242,8 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
             strip_plot(
                 "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
                 &report.rel_errors,
+                report.tolerance,
+                report.precision,
             )
             .into_iter()
             .collect(),

@@ -92,7 +92,7 @@ pub struct ProbeReport {
 }
 
 pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
-    let method = method(args.method);
+    let method = method(args.method.into());
     if method == Method::ComplexStep {
         bail!(
             "--method complex-step: the complex step needs the program to compute with complex numbers, which an outside program does not; use central, forward, five-point or richardson"
@@ -713,7 +713,9 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             "3. Its gradient against the reference gradient".into(),
         ));
         doc.push(Block::Table(tensor_table(&r.tensors)));
-        if let Some(p) = error_plot(&r.tensors) {
+        let single = r.program.dtype == "f32";
+        let tolerance = Tolerances::for_precision(single).agreement;
+        if let Some(p) = error_plot(&r.tensors, tolerance, if single { "f32" } else { "f64" }) {
             doc.push(p);
         }
     }

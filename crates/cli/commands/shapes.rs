@@ -127,7 +127,7 @@ pub fn document(
 
     let mut t = Table::new([
         "layer",
-        "s_j → s_j+1",
+        "in → out",
         "activation",
         "tensor",
         "expected",

@@ -157,8 +157,12 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             std::env::temp_dir().join(format!("plumb-demo-report-seed{}.html", settings.seed))
         }
     };
-    let force = settings.force || (settings.html.is_none() && args.write.is_none());
-    if !force && settings.html.is_none() && html.exists() {
+    // In the temporary directory the report is the demo's own file, named by its seed: a later run
+    // with the same seed replaces it, and says so. Anywhere else a file is refused without --force.
+    let own_file = settings.html.is_none() && args.write.is_none();
+    let force = settings.force || own_file;
+    let replaces = html.exists();
+    if !force && settings.html.is_none() && replaces {
         anyhow::bail!(
             "{}: the file exists; pass --force to replace the demo's files",
             html.display()
@@ -310,7 +314,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     doc.push(Block::Text(
         "`plumb shapes` compares every tensor in the weight file with the shape the description \
-         implies: under the augmented layout, layer j is s_{j+1} × (s_j + 1) with the bias weights \
+         implies: under the augmented layout, a layer is units × (fan-in + 1) with the bias weights \
          in column 0."
             .into(),
     ));
@@ -369,7 +373,11 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
          names the one that reproduces each wrong tensor:"
     )));
     doc.push(Block::Table(compare::tensor_table(&bug_tensors)));
-    doc.extend(compare::error_plot(&bug_tensors));
+    doc.extend(compare::error_plot(
+        &bug_tensors,
+        Tolerances::for_precision(false).agreement,
+        "f64",
+    ));
     doc.push(Block::Findings(bug_findings.clone()));
 
     match &probed {
@@ -398,7 +406,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
          layer's scale with the initialisation schemes, and follows the gradient across the layers."
             .into(),
     ));
-    for b in audit::sections(&shipped) {
+    for b in shipped.sections() {
         doc.push(b);
     }
     doc.blocks.extend(audit::plots(&shipped, desc, &good));
@@ -497,12 +505,17 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         ..settings.clone()
     };
     let v = with_html.emit(&report, doc)?;
-    if !settings.quiet {
-        eprintln!(
-            "plumb: the demo's HTML report (invented data) is at {}",
+    if own_file && replaces {
+        settings.note(&format!(
+            "replaced the report an earlier `plumb demo --seed {}` left at {} (give --html FILE to keep both)",
+            settings.seed,
             html.display()
-        );
+        ));
     }
+    settings.note(&format!(
+        "the demo's HTML report (invented data) is at {}",
+        html.display()
+    ));
     Ok(v)
 }
 

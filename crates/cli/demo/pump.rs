@@ -1,4 +1,4 @@
-//! The demo scenario: an invented centrifugal-pump state classifier (DESIGN.md §9).
+//! The demo scenario: an invented centrifugal-pump state classifier (what `plumb demo` runs on).
 //!
 //! Everything here is invented and generated from a seed: the sensor readings, the class means and
 //! spreads, and the weights (trained by plumb's own engine). No real pump data is involved.

@@ -70,7 +70,7 @@ pub struct Network {
 
 /// What the forward pass leaves behind for the backward pass and for inspection.
 ///
-/// `z[l]` is the pre-activation that layer `l` (0-based) produces, m × s_{l+2} in the 1-based
+/// `z[l]` is the pre-activation that layer `l` (0-based) produces, m × units of that layer in the 1-based
 /// numbering of the docs; `a[0]` is the input batch and `a[l + 1] = g(z[l])`.
 #[derive(Clone, Debug)]
 pub struct Trace<S> {

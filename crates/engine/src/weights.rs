@@ -4,7 +4,7 @@ use ndarray::Array2;
 
 use crate::Scalar;
 
-/// One augmented matrix per layer, s_{j+1} × (s_j + 1), column 0 multiplying the bias unit.
+/// One augmented matrix per layer, units × (fan-in + 1), column 0 multiplying the bias unit.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Weights<S> {
     layers: Vec<Array2<S>>,

@@ -348,7 +348,7 @@ mod tests {
         h
     }
 
-    // NR §5.7 [pub] and CHECK-VALUES.md: forward differences of exp at 0 in IEEE f64 give
+    // Numerical Recipes, 2nd ed., §5.7 [pub]: forward differences of exp at 0 in IEEE f64 give
     // 1.000050001667141 (h = 1e-4), 0.99999999392252903 (h = 1e-8), 1.000088900582341 (h = 1e-12).
     #[test]
     #[allow(clippy::excessive_precision)] // the digits as published
@@ -396,7 +396,8 @@ mod tests {
         }
     }
 
-    // CHECK-VALUES.md [pub: Squire & Trapp 1998; value by mpmath to 20 digits]:
+    // [pub: Squire & Trapp, SIAM Review 40(1):110–112, 1998; the value computed with mpmath to 20
+    // digits]:
     // f(x) = eˣ / √(sin³x + cos³x) has f′(1.5) = 4.05342789389862; the complex step in f64 reaches it
     // for h from 1e-8 down to 1e-100, while central differences are off by ~5e-10 at h = 1e-5.
     #[test]

@@ -1,5 +1,5 @@
 //! The network description: a TOML file naming the layers, activations, loss, L2 strength and the
-//! weight file's layout (DESIGN.md §4).
+//! weight file's layout (docs/description.md).
 //!
 //! The file is walked by hand over toml's spanned document, not deserialised blindly, so that every
 //! error can name the key and its line, and an unknown key can be answered with the nearest known one.
@@ -16,11 +16,11 @@ use toml::de::{DeTable, DeValue};
 /// How a weight file stores each layer.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub enum Layout {
-    /// Tensor `layerJ`, s_{j+1} × (s_j + 1), the bias weights in column 0.
+    /// Tensor `layerJ`, units × (fan-in + 1), the bias weights in column 0.
     Augmented,
-    /// `layerJ.weight`, s_{j+1} × s_j, and `layerJ.bias` of length s_{j+1}.
+    /// `layerJ.weight`, units × fan-in, and `layerJ.bias` of length units.
     Split,
-    /// `layerJ.weight`, s_j × s_{j+1} (the x·W + b convention), and `layerJ.bias`.
+    /// `layerJ.weight`, fan-in × units (the x·W + b convention), and `layerJ.bias`.
     SplitTransposed,
 }
 

@@ -148,6 +148,10 @@ pub struct Document {
     pub cases: Vec<Case>,
     /// The network the run was made on, for baselines.
     pub network: Option<crate::NetworkId>,
+    /// The lowest severity that fails the run: `error`, or `warning` under `audit --fail-on
+    /// warning`. Findings added after the command built the document (a baseline's) are judged
+    /// by it too.
+    pub fail_on: Severity,
 }
 
 impl Document {
@@ -158,6 +162,7 @@ impl Document {
             command: String::new(),
             cases: Vec::new(),
             network: None,
+            fail_on: Severity::Error,
         }
     }
 
@@ -170,12 +175,12 @@ impl Document {
     }
 
     /// Makes the test cases tell what the findings tell, so a CI system never shows a failing
-    /// run as all green: an error finding fails the case it names (`figures.case`, as baseline
-    /// findings carry), else a case about its tensor; error findings with no case of their own
-    /// (a global direction, a whole-run problem) fail one case named `findings`.
+    /// run as all green: a finding at `fail_on` or worse fails the case it names (`figures.case`,
+    /// as baseline findings carry), else a case about its tensor; such findings with no case of
+    /// their own (a global direction, a whole-run problem) fail one case named `findings`.
     pub fn fail_cases_for(&mut self, findings: &[Finding]) {
         let mut loose: Vec<&Finding> = Vec::new();
-        for f in findings.iter().filter(|f| f.severity == Severity::Error) {
+        for f in findings.iter().filter(|f| f.severity >= self.fail_on) {
             let named = f.figures.get("case").and_then(|v| v.as_str());
             let by_name = named.and_then(|n| self.cases.iter().position(|c| c.name == n));
             let about: Vec<usize> = match &f.tensor {
@@ -216,6 +221,20 @@ impl Document {
 
     pub fn push(&mut self, block: Block) {
         self.blocks.push(block);
+    }
+}
+
+/// A number for a table cell: 4 significant digits, in exponent form when far from 1.
+pub fn number(v: f64) -> String {
+    if v == 0.0 {
+        "0".into()
+    } else if !v.is_finite() {
+        format!("{v}")
+    } else if (1e-3..1e5).contains(&v.abs()) {
+        let digits = (3 - v.abs().log10().floor() as i32).max(0) as usize;
+        format!("{v:.digits$}")
+    } else {
+        format!("{v:.3e}")
     }
 }
 

@@ -30,6 +30,18 @@ impl fmt::Display for Severity {
     }
 }
 
+/// Findings counted by severity, as a verdict line says them: "2 errors, 1 warning, 0 notes".
+pub fn tally(findings: &[Finding]) -> String {
+    [Severity::Error, Severity::Warning, Severity::Note]
+        .iter()
+        .map(|&s| {
+            let n = findings.iter().filter(|f| f.severity == s).count();
+            format!("{n} {}{}", s.name(), if n == 1 { "" } else { "s" })
+        })
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
 /// The outcome of a whole run.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "lowercase")]

@@ -25,8 +25,8 @@ mod plot;
 mod render;
 
 pub use baseline::{BASELINE_VERSION, Baseline, NetworkId, Recorded};
-pub use document::{Block, Case, Cell, Document, Table, Tone};
-pub use finding::{Finding, Severity, Verdict};
+pub use document::{Block, Case, Cell, Document, Table, Tone, number};
+pub use finding::{Finding, Severity, Verdict, tally};
 pub use html::render_html;
 pub use junit::render_junit;
 pub use plot::{HeatRow, StepPanel, StripSeries, error_strip, heatmap, histogram, step_plot};

@@ -57,12 +57,13 @@ fn texts(svg: &str) -> Vec<String> {
         .collect()
 }
 
-const BANDS: [(f64, &str); 3] = [(1e-7, "good"), (1e-4, "suspicious"), (1e-2, "wrong")];
+const BANDS: [(f64, &str); 1] = [(1e-6, "tolerance 1e-6 (f64)")];
 
 fn series(label: &str, values: &[f64]) -> StripSeries {
     StripSeries {
         label: label.into(),
         values: values.to_vec(),
+        bounds: Vec::new(),
     }
 }
 
@@ -82,14 +83,29 @@ fn strip_draws_a_dot_per_positive_finite_value() {
         "layer1.weight",
         "layer1.bias",
         "out &amp; &lt;b&gt;",
-        "good",
-        "suspicious",
-        "wrong",
+        "tolerance 1e-6 (f64)",
     ] {
         assert!(texts.iter().any(|t| t == label), "{label} in {texts:?}");
     }
     assert!(texts.iter().any(|t| t == "max 3.0e-8"), "{texts:?}");
     assert!(texts.contains(&"relative error per tensor".to_string()));
+}
+
+// Each point's error bound is drawn as a short dash (a two-point <polyline>) at its place across;
+// a series without bounds draws none, and a bound that is 0 or not finite is left out.
+#[test]
+fn strip_marks_each_points_bound() {
+    let without = error_strip("e", &[series("w", &[1e-9, 2e-8, 3e-7])], &BANDS).unwrap();
+    let mut with = series("w", &[1e-9, 2e-8, 3e-7]);
+    with.bounds = vec![1e-8, f64::NAN, 0.0];
+    let marked = error_strip("e", &[with], &BANDS).unwrap();
+    well_formed(&marked);
+    assert_eq!(
+        count(&marked, "<polyline") - count(&without, "<polyline"),
+        1,
+        "one finite positive bound, one dash"
+    );
+    assert_eq!(count(&marked, "<circle"), 3);
 }
 
 #[test]

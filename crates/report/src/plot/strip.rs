@@ -1,4 +1,5 @@
-//! Relative errors per tensor on a log axis, against bands.
+//! Relative errors per tensor on a log axis, each against the error bound of the method that
+//! measured it, and against reference lines (plumb's tolerance for the precision).
 
 use plotters::prelude::*;
 use plotters::style::text_anchor::{HPos, VPos};
@@ -8,20 +9,24 @@ use super::{
 };
 
 /// One column of an [`error_strip`]: the relative errors measured for one tensor.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, Default, PartialEq)]
 pub struct StripSeries {
     pub label: String,
     pub values: Vec<f64>,
+    /// Per value, the error the method can explain there, relative like the value (the check's
+    /// `rel_bound`); empty when the values come from no finite-difference method (compare).
+    pub bounds: Vec<f64>,
 }
 
-/// Band lines get these colours in increasing order of value: thresholds on a relative error go
-/// from good to bad as they grow.
-const BAND_COLORS: [RGBColor; 4] = [
-    RGBColor(0, 140, 100),
-    RGBColor(200, 130, 0),
+/// Reference lines get these colours in increasing order of value.
+const LINE_COLORS: [RGBColor; 3] = [
     RGBColor(200, 40, 20),
     RGBColor(120, 0, 60),
+    RGBColor(0, 90, 160),
 ];
+
+/// The colour of the per-point bound marks.
+const BOUND_COLOR: RGBColor = RGBColor(110, 110, 110);
 
 /// Errors below this are all "exact" as far as a double can tell; clamping keeps the log axis from
 /// spanning hundreds of empty decades.
@@ -30,7 +35,8 @@ const STRIP_FLOOR: f64 = 1e-18;
 const STRIP_CEILING: f64 = 1e6;
 
 /// Relative errors per tensor on a log axis: a column of dots per series, the column's worst value
-/// marked with a bar, and a dashed line for each `(value, label)` band.
+/// marked with a bar, each dot's error bound (when given) as a short grey dash at the dot's place
+/// across, and a dashed line for each `(value, label)` reference line.
 ///
 /// Dots are spread across the column by their index (not at random) so the same report always
 /// draws the same picture. Values that are zero, negative or not finite cannot be placed on a log
@@ -40,17 +46,24 @@ const STRIP_CEILING: f64 = 1e6;
 pub fn error_strip(
     title: &str,
     series: &[StripSeries],
-    bands: &[(f64, &'static str)],
+    lines: &[(f64, &str)],
 ) -> Result<String, String> {
-    let columns: Vec<(String, Vec<f64>)> = series
+    let columns: Vec<Column> = series
         .iter()
         .map(|s| {
-            let kept = s
+            let bound = |k: usize| {
+                s.bounds
+                    .get(k)
+                    .copied()
+                    .filter(|b| b.is_finite() && *b > 0.0)
+                    .map(|b| b.clamp(STRIP_FLOOR, STRIP_CEILING))
+            };
+            let kept: Vec<(f64, Option<f64>)> = s
                 .values
                 .iter()
-                .copied()
-                .filter(|v| v.is_finite() && *v > 0.0)
-                .map(|v| v.clamp(STRIP_FLOOR, STRIP_CEILING))
+                .enumerate()
+                .filter(|(_, v)| v.is_finite() && **v > 0.0)
+                .map(|(k, v)| (v.clamp(STRIP_FLOOR, STRIP_CEILING), bound(k)))
                 .collect();
             (shorten(&s.label, 28), thinned(kept))
         })
@@ -60,13 +73,13 @@ pub fn error_strip(
         .iter()
         .map(|s| !s.values.is_empty() && s.values.iter().all(|&v| v == 0.0))
         .collect();
-    let mut bands: Vec<(f64, &str)> = bands
+    let mut lines: Vec<(f64, &str)> = lines
         .iter()
         .copied()
         .filter(|(v, _)| v.is_finite() && *v > 0.0)
         .map(|(v, l)| (v.clamp(STRIP_FLOOR, STRIP_CEILING), l))
         .collect();
-    bands.sort_by(|a, b| a.0.total_cmp(&b.0));
+    lines.sort_by(|a, b| a.0.total_cmp(&b.0));
 
     // Labels go under their column if they fit, else they are turned to read upwards.
     let n = columns.len().max(1);
@@ -81,23 +94,26 @@ pub fn error_strip(
     let label_area = if upright { 44 } else { longest + 14 };
     let height = 420 + label_area as u32;
     render_svg(height, |root| {
-        draw_strip(root, title, &columns, &exact, &bands, upright, label_area)
+        draw_strip(root, title, &columns, &exact, &lines, upright, label_area)
     })
 }
 
 /// At most this many dots per strip column: beyond it the SVG grows by megabytes and shows no more.
 const STRIP_DOTS: usize = 1500;
 
+/// A column's label and its (value, bound) points.
+type Column = (String, Vec<(f64, Option<f64>)>);
+
 /// A column of more than [`STRIP_DOTS`] values cut down to that many: the largest 100 (the ones a
 /// reader looks for, the worst included, so the column's bar stays exact), then every k-th of the
 /// rest by rank, so the spread keeps its shape. The kept values stay in their original order.
-fn thinned(values: Vec<f64>) -> Vec<f64> {
+fn thinned(values: Vec<(f64, Option<f64>)>) -> Vec<(f64, Option<f64>)> {
     const TOP: usize = 100;
     if values.len() <= STRIP_DOTS {
         return values;
     }
     let mut order: Vec<usize> = (0..values.len()).collect();
-    order.sort_by(|&a, &b| values[b].total_cmp(&values[a]));
+    order.sort_by(|&a, &b| values[b].0.total_cmp(&values[a].0));
     let stride = (values.len() - TOP).div_ceil(STRIP_DOTS - TOP);
     let mut keep = vec![false; values.len()];
     for (rank, &i) in order.iter().enumerate() {
@@ -113,16 +129,16 @@ fn thinned(values: Vec<f64>) -> Vec<f64> {
 fn draw_strip<DB: DrawingBackend>(
     area: &Area<DB>,
     title: &str,
-    columns: &[(String, Vec<f64>)],
+    columns: &[Column],
     exact: &[bool],
-    bands: &[(f64, &str)],
+    lines: &[(f64, &str)],
     upright: bool,
     label_area: i32,
 ) -> DrawResult<DB> {
     let all = columns
         .iter()
-        .flat_map(|(_, v)| v.iter().copied())
-        .chain(bands.iter().map(|b| b.0));
+        .flat_map(|(_, v)| v.iter().flat_map(|&(x, b)| std::iter::once(x).chain(b)))
+        .chain(lines.iter().map(|b| b.0));
     let (lo, hi) = all.fold((f64::MAX, f64::MIN), |(a, b), v| (a.min(v), b.max(v)));
     let (lo, hi) = if lo <= hi { (lo, hi) } else { (1e-12, 1.0) };
     // Whole decades with some air, and at least three, so the axis always has labels to read.
@@ -138,7 +154,7 @@ fn draw_strip<DB: DrawingBackend>(
     let n = columns.len().max(1);
     let side = 3usize.saturating_sub(n) as f64 / 2.0;
     let (xmin, xmax) = (-0.5 - side, n as f64 - 0.5 + side);
-    let band_room = bands
+    let line_room = lines
         .iter()
         .map(|(_, l)| text_width(l, 12) + 14)
         .max()
@@ -148,7 +164,7 @@ fn draw_strip<DB: DrawingBackend>(
     let mut chart = ChartBuilder::on(area)
         .caption(title, ("sans-serif", 16))
         .margin(12)
-        .margin_right(band_room)
+        .margin_right(line_room)
         .x_label_area_size(label_area)
         .y_label_area_size(70)
         .build_cartesian_2d(xmin..xmax, (ymin..ymax).log_scale())?;
@@ -174,10 +190,10 @@ fn draw_strip<DB: DrawingBackend>(
         )))?;
     }
 
-    // Bands under the data, labelled in the right margin, nudged apart if they crowd.
+    // Reference lines under the data, labelled in the right margin, nudged apart if they crowd.
     let mut last_label_y = i32::MIN;
-    for (k, (value, label)) in bands.iter().enumerate() {
-        let color = BAND_COLORS[k.min(BAND_COLORS.len() - 1)];
+    for (k, (value, label)) in lines.iter().enumerate() {
+        let color = LINE_COLORS[k.min(LINE_COLORS.len() - 1)];
         chart.draw_series(DashedLineSeries::new(
             vec![(xmin, *value), (xmax, *value)],
             6,
@@ -185,7 +201,7 @@ fn draw_strip<DB: DrawingBackend>(
             color.stroke_width(1),
         ))?;
         let (_, py) = chart.backend_coord(&(xmax, *value));
-        // Bands are sorted upwards, so each label must sit at least a line above the last one.
+        // Lines are sorted upwards, so each label must sit at least a line above the last one.
         let py = if last_label_y == i32::MIN {
             py
         } else {
@@ -200,9 +216,21 @@ fn draw_strip<DB: DrawingBackend>(
     }
 
     let dot = PALETTE[0].mix(0.65).filled();
-    for (i, (label, values)) in columns.iter().enumerate() {
+    let spread = 0.55;
+    let offset = |k: usize| ((k as f64 * 0.618_033_988_75 + 0.5).fract() - 0.5) * spread;
+    for (i, (label, points)) in columns.iter().enumerate() {
         let centre = i as f64;
-        let worst = values.iter().copied().reduce(f64::max);
+        let worst = points.iter().map(|p| p.0).reduce(f64::max);
+        // Each point's bound first, a short dash at the dot's place across, so the dots lie on top.
+        chart.draw_series(points.iter().enumerate().filter_map(|(k, &(_, b))| {
+            let x = centre + offset(k);
+            b.map(|b| {
+                PathElement::new(
+                    vec![(x - 0.03, b), (x + 0.03, b)],
+                    BOUND_COLOR.stroke_width(2),
+                )
+            })
+        }))?;
         if let Some(worst) = worst {
             chart.draw_series(std::iter::once(PathElement::new(
                 vec![(centre - 0.34, worst), (centre + 0.34, worst)],
@@ -211,11 +239,12 @@ fn draw_strip<DB: DrawingBackend>(
         }
         // After the bar, so the worst dot stays visible on top of it. Golden-ratio steps fill the
         // column evenly for any count, and the first dot sits in the middle.
-        let spread = 0.55;
-        chart.draw_series(values.iter().enumerate().map(|(k, &v)| {
-            let offset = ((k as f64 * 0.618_033_988_75 + 0.5).fract() - 0.5) * spread;
-            Circle::new((centre + offset, v), 3, dot)
-        }))?;
+        chart.draw_series(
+            points
+                .iter()
+                .enumerate()
+                .map(|(k, &(v, _))| Circle::new((centre + offset(k), v), 3, dot)),
+        )?;
         let (px, _) = chart.backend_coord(&(centre, ymin));
         let (x, y) = (px - base.0, ys.end + 6 - base.1);
         if upright {
@@ -271,7 +300,10 @@ mod tests {
         let values: Vec<f64> = (0..100_000)
             .map(|i| ((i * 7919) % 100_000) as f64)
             .collect();
-        let kept = thinned(values.clone());
+        let kept: Vec<f64> = thinned(values.iter().map(|&v| (v, None)).collect())
+            .into_iter()
+            .map(|p| p.0)
+            .collect();
         assert!(
             kept.len() <= STRIP_DOTS && kept.len() > STRIP_DOTS - 50,
             "{}",
@@ -283,6 +315,7 @@ mod tests {
         // The rest is spread over the whole range: a tenth of it below 10% of the largest value.
         let low = kept.iter().filter(|&&v| v < 10_000.0).count() as f64 / kept.len() as f64;
         assert!((0.08..0.12).contains(&low), "{low}");
-        assert_eq!(thinned(vec![3.0, 1.0, 2.0]), vec![3.0, 1.0, 2.0]);
+        let few = vec![(3.0, Some(1.0)), (1.0, None), (2.0, Some(4.0))];
+        assert_eq!(thinned(few.clone()), few);
     }
 }

@@ -1,0 +1,198 @@
+//! The audit as a report: its test cases and its tables, built here so that the command only
+//! renders them.
+
+use plumb_report::{Block, Case, Cell, Table, Tone, number};
+
+use crate::{Audit, sparkline, unit_ranges};
+
+impl Audit {
+    /// The audit's test cases beside the shape cases: one per layer's tensor, failed by the first
+    /// finding about it at `fail_on` or worse (shape findings have cases of their own), and one
+    /// for the network, failed by such a finding about no tensor.
+    pub fn cases(&self) -> Vec<Case> {
+        let a = self;
+        let level = self.fail_on;
+        let mut out = Vec::new();
+        let failing = |tensor: Option<&str>| {
+            a.findings
+                .iter()
+                .filter(|f| {
+                    f.severity >= level
+                        && !f.code.starts_with("shape")
+                        && f.tensor.as_deref() == tensor
+                })
+                .find(|f| {
+                    !matches!(
+                        f.code.as_str(),
+                        "transposed-matrix"
+                            | "bias-column-missing"
+                            | "bias-column-extra"
+                            | "bias-wrong-length"
+                            | "layers-out-of-order"
+                            | "wrong-shape"
+                            | "tensor-missing"
+                            | "tensor-unexpected"
+                            | "other-layout"
+                            | "dtype-not-float"
+                    )
+                })
+        };
+        for i in &a.init {
+            let flagged = a
+                .health
+                .iter()
+                .find(|h| h.layer == i.layer)
+                .map_or(0, |h| h.flagged.len());
+            let mut c = Case::new(format!("audit {}", i.tensor), true)
+                .about(&i.tensor)
+                .figure("flagged_units", flagged as f64)
+                .figure("weight_std", i.std)
+                .figure("std_ratio", i.reference_ratio);
+            if let Some(f) = a.flow.iter().find(|f| f.layer == i.layer) {
+                c = c
+                    .figure("activation_std", f.activation_std)
+                    .figure("gradient_norm", f.gradient_norm)
+                    .figure("sigma_max", f.sigma_max);
+            }
+            if let Some(f) = failing(Some(&i.tensor)) {
+                c = c.failing(&f.code, f.message.clone());
+            }
+            out.push(c);
+        }
+        let mut c = Case::new("audit network", true);
+        if let Some(f) = failing(None) {
+            c = c.failing(&f.code, f.message.clone());
+        }
+        out.push(c);
+        out
+    }
+
+    /// The health, initialisation and flow tables of the audit.
+    pub fn sections(&self) -> Vec<Block> {
+        let a = self;
+        let mut out = Vec::new();
+        if !a.health.is_empty() {
+            out.push(Block::Heading("unit health on the probe data".into()));
+            let mut t = Table::new([
+                "layer",
+                "activation",
+                "units",
+                "measure",
+                "mean",
+                "worst",
+                "flagged",
+                "activations",
+            ]);
+            for h in &a.health {
+                let mean = h.mean_fraction;
+                let worst = h.fractions.iter().copied().fold(0.0, f64::max);
+                t.push([
+                    Cell::from(h.layer.to_string()),
+                    Cell::from(h.activation.clone()),
+                    Cell::from(h.units.to_string()),
+                    Cell::from(h.measure.unwrap_or("—")),
+                    Cell::from(if h.measure.is_some() {
+                        format!("{:.1}%", mean * 100.0)
+                    } else {
+                        "—".into()
+                    }),
+                    Cell::from(if h.measure.is_some() {
+                        format!("{:.1}%", worst * 100.0)
+                    } else {
+                        "—".into()
+                    }),
+                    Cell::new(
+                        if h.flagged.is_empty() {
+                            "none".to_string()
+                        } else {
+                            unit_ranges(&h.flagged)
+                        },
+                        if h.flagged.is_empty() {
+                            Tone::Good
+                        } else {
+                            Tone::Bad
+                        },
+                    ),
+                    Cell::from(format!(
+                        "{:.2} {} {:.2}",
+                        h.range.0,
+                        sparkline(&h.histogram),
+                        h.range.1
+                    )),
+                ]);
+            }
+            out.push(Block::Table(t));
+        }
+        if !a.init.is_empty() {
+            out.push(Block::Heading("initialisation scale".into()));
+            let mut t = Table::new([
+                "layer",
+                "tensor",
+                "fan in",
+                "fan out",
+                "std",
+                "closest",
+                "called for",
+                "KS test",
+            ]);
+            for i in &a.init {
+                let ks = i.test.as_ref().map_or("—".to_string(), |k| {
+                    format!(
+                        "{}: D {:.4}, p {} (Holm {}){}",
+                        k.scheme,
+                        k.statistic,
+                        number(k.p_value),
+                        number(k.adjusted_p_value),
+                        if k.passed { "" } else { " ✗" }
+                    )
+                });
+                let tone = if i.test.as_ref().is_some_and(|k| !k.passed) {
+                    Tone::Bad
+                } else {
+                    Tone::Plain
+                };
+                t.push([
+                    Cell::from(i.layer.to_string()),
+                    Cell::from(i.tensor.clone()),
+                    Cell::from(i.fan_in.to_string()),
+                    Cell::from(i.fan_out.to_string()),
+                    Cell::from(number(i.std)),
+                    Cell::from(format!("{} ({}×)", i.closest, ratio(i.ratio))),
+                    Cell::from(format!("{} ({}×)", i.reference, ratio(i.reference_ratio))),
+                    Cell::new(ks, tone),
+                ]);
+            }
+            out.push(Block::Table(t));
+        }
+        if !a.flow.is_empty() {
+            out.push(Block::Heading("signal and gradient flow".into()));
+            let mut t = Table::new([
+                "layer",
+                "activation std",
+                "gradient norm",
+                "gradient RMS",
+                "largest singular value",
+            ]);
+            for f in &a.flow {
+                t.push([
+                    Cell::from(f.layer.to_string()),
+                    Cell::from(number(f.activation_std)),
+                    Cell::from(number(f.gradient_norm)),
+                    Cell::from(number(f.gradient_rms)),
+                    Cell::from(number(f.sigma_max)),
+                ]);
+            }
+            out.push(Block::Table(t));
+        }
+        out
+    }
+}
+
+/// A ratio to a scheme's scale: two decimals near 1, the table's number form far from it.
+fn ratio(r: f64) -> String {
+    if r.is_finite() && (1e-2..1e3).contains(&r.abs()) {
+        format!("{r:.2}")
+    } else {
+        number(r)
+    }
+}
