@@ -272,7 +272,7 @@ pub struct AuditArgs {
     /// |w| beyond which a value is implausible for a trained network.
     #[arg(long, value_name = "X", default_value_t = 1e6)]
     pub max_magnitude: f64,
-    /// Relative distance under which two units' incoming weights count as identical.
+    /// Relative distance under which two units' incoming (or outgoing) weights count as identical.
     #[arg(long, value_name = "X", default_value_t = 1e-6)]
     pub symmetry_tolerance: f64,
     /// Distance from an asymptote within which a sigmoid or tanh output counts as saturated.

@@ -27,12 +27,13 @@ impl Audit {
     }
 }
 
-/// The thresholds of the audit; `Default` gives the documented defaults (docs/audit.md).
+/// The thresholds of the audit; `Default` gives the documented defaults (docs/audit.md), which are
+/// common practice with no formal source unless docs/audit.md names one.
 #[derive(Clone, Debug, Serialize)]
 pub struct Thresholds {
     /// |w| beyond which a value is implausible for any trained network.
     pub max_magnitude: f64,
-    /// Relative distance under which two units' incoming rows count as equal.
+    /// Relative distance under which two units' incoming rows (or outgoing columns) count as equal.
     pub symmetry_tolerance: f64,
     /// Distance from an asymptote within which a sigmoid or tanh output is saturated.
     pub saturation: f64,
@@ -413,5 +414,56 @@ fn times(r: f64) -> String {
         format!("{r:.3e}")
     } else {
         format!("{r:.3}")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn relu_layer(fractions: Vec<f64>, flagged: Vec<usize>) -> LayerHealth {
+        LayerHealth {
+            layer: 1,
+            activation: "relu".into(),
+            units: fractions.len(),
+            measure: Some("inactive"),
+            mean_fraction: fractions.iter().sum::<f64>() / fractions.len() as f64,
+            fractions,
+            flagged,
+            histogram: vec![0; crate::BINS],
+            range: (0.0, 1.0),
+        }
+    }
+
+    fn codes(h: &LayerHealth) -> Vec<(String, Severity)> {
+        let mut out = Vec::new();
+        health_findings(h, "layer1", &Thresholds::default(), 100, &mut out);
+        out.into_iter().map(|f| (f.code, f.severity)).collect()
+    }
+
+    // The three rules on one ReLU layer of 10 units (defaults: 50% of units dead makes the layer
+    // an error; a mean inactive fraction of 85% makes it a warning when too few units are dead).
+    #[test]
+    fn a_layer_is_judged_by_its_dead_share_and_by_its_mean() {
+        // One unit dead, the others inactive on 90%: the mean (0.91) flags the layer.
+        let mut f = vec![0.9; 10];
+        f[4] = 1.0;
+        let c = codes(&relu_layer(f, vec![5]));
+        assert!(
+            c.contains(&("mostly-inactive-layer".into(), Severity::Warning)),
+            "{c:?}"
+        );
+        assert!(
+            c.contains(&("dead-unit".into(), Severity::Warning)),
+            "{c:?}"
+        );
+        // Half the units dead: the layer is an error, and its mean finding is not repeated.
+        let f = [vec![1.0; 5], vec![0.5; 5]].concat();
+        let c = codes(&relu_layer(f, vec![1, 2, 3, 4, 5]));
+        assert_eq!(c, vec![("dead-layer".to_string(), Severity::Error)]);
+        // A healthy layer, inactive on half its pairs: nothing.
+        assert!(codes(&relu_layer(vec![0.5; 10], vec![])).is_empty());
+        // Just under the mean threshold: nothing either.
+        assert!(codes(&relu_layer(vec![0.84; 10], vec![])).is_empty());
     }
 }
