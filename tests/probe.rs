@@ -151,8 +151,21 @@ fn a_correct_program_passes_in_f64_f32_and_with_relu() {
         let prog = numpy(&extra);
         let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
         let run = probe(&[], &prog);
-        run.assert_code(0);
         let j = run.json();
+        // On the demo's trained weights f32 round-off leaves much of the self-check unsettled:
+        // an honest probe says inconclusive (exit 1) and what would settle it, never pass or fail.
+        if extra.is_empty() {
+            run.assert_code(0);
+        } else {
+            assert_eq!(j["verdict"], "inconclusive", "{:#}", j["findings"]);
+            run.assert_code(1);
+            let f = j["findings"].as_array().unwrap();
+            let why = f.iter().find(|f| f["code"] == "inconclusive").unwrap();
+            assert!(
+                why["message"].as_str().unwrap().contains("float64"),
+                "{why}"
+            );
+        }
         assert_eq!(
             j["program"]["dtype"],
             if extra.is_empty() { "f64" } else { "f32" }
@@ -342,6 +355,7 @@ fn probe_report_schema() {
             "checked",
             "parameters",
             "directions_per_tensor",
+            "conclusive",
             "tensors"
         ])
     );
@@ -356,6 +370,7 @@ fn probe_report_schema() {
             "median_rel_error",
             "mismatches",
             "unreliable",
+            "unsettled",
             "directions",
             "direction_mismatches",
             "worst"
@@ -386,6 +401,7 @@ fn probe_report_schema() {
 #[test]
 fn relu_programs_in_f32_raise_no_false_alarm_over_20_seeds() {
     let net = repo().join("examples/pump-relu.toml");
+    let mut inconclusive = 0;
     for seed in 0..20 {
         let s = seed.to_string();
         let run = plumb_in(
@@ -407,8 +423,17 @@ fn relu_programs_in_f32_raise_no_false_alarm_over_20_seeds() {
                 "f32",
             ],
         );
-        assert_eq!(run.code, 0, "seed {seed}: {}", run.stdout);
+        // Never a false alarm; where f32 leaves too much unsettled, inconclusive (exit 1).
+        let open = run.stdout.contains("verdict: INCONCLUSIVE");
+        assert!(
+            run.code == 0 || (run.code == 1 && open),
+            "seed {seed}: {}",
+            run.stdout
+        );
+        inconclusive += usize::from(open);
     }
+    // Seeded weights are not trained ones: most of them settle.
+    assert!(inconclusive <= 5, "{inconclusive} of 20 inconclusive");
 }
 
 /// Programs that misbehave in ways the example cannot: a flood of stderr without newlines and with

@@ -9,8 +9,9 @@ use anyhow::{Context, Result, bail};
 use plumb_diagnose::{Named, Tolerances};
 use plumb_engine::{Rng, Weights};
 use plumb_fd::{
-    Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, Sample,
-    Status, check_external, gradient_magnitude, loss_magnitude,
+    Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, SETTLE,
+    Sample, Settlement, Status, UNSETTLED_SHARE, check_external, gradient_magnitude,
+    loss_magnitude,
 };
 use plumb_formats::read_tensors;
 use plumb_probe::{Program, TensorSpec};
@@ -18,7 +19,7 @@ use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, 
 use serde::Serialize;
 
 use crate::args::ProbeArgs;
-use crate::commands::check::{method, step, verdict_cell};
+use crate::commands::check::{method, remedies, step, verdict_cell};
 use crate::commands::compare::{
     Certification, LossReport, TensorReport, certification_text, certify, error_plot,
     gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
@@ -56,6 +57,8 @@ pub struct SelfTensor {
     pub median_rel_error: f64,
     pub mismatches: usize,
     pub unreliable: usize,
+    /// Coordinates neither a match nor a mismatch (the method's bound exceeds a tenth of the value).
+    pub unsettled: usize,
     pub directions: usize,
     pub direction_mismatches: usize,
     pub worst: Option<SelfWorst>,
@@ -70,6 +73,8 @@ pub struct SelfCheck {
     pub checked: usize,
     pub parameters: usize,
     pub directions_per_tensor: usize,
+    /// Whether enough was settled for a verdict (docs/json.md: the settled share).
+    pub conclusive: bool,
     pub tensors: Vec<SelfTensor>,
 }
 
@@ -142,14 +147,18 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
                 .about(&t.name)
                 .figure("max_rel_error", t.max_rel_error)
                 .figure("mismatches", t.mismatches as f64)
+                .figure("unsettled", t.unsettled as f64)
                 .figure("direction_mismatches", t.direction_mismatches as f64);
-            if t.verdict == Verdict::Pass {
-                c
-            } else {
-                c.failing(
+            match t.verdict {
+                Verdict::Pass => c,
+                Verdict::Inconclusive => c.failing(
+                    "inconclusive",
+                    "too few coordinates or directions settled to tell a match from a mismatch",
+                ),
+                Verdict::Fail => c.failing(
                     "self-inconsistent",
                     "the gradient disagrees with differences of the program's own loss",
-                )
+                ),
             }
         })
         .collect();
@@ -308,6 +317,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         crossed: &crossed,
         crossed_along: &crossed_along,
         loss_gross,
+        sees_kinks: base.is_some(),
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<plumb_probe::Change> = changes
@@ -323,7 +333,15 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     };
     let result = check_external(&outside, loss, &mut ask, &inside, &cfg)?;
     let mut findings = Vec::new();
-    let self_check = self_check_report(&params, &fitting, &grads, &result, &cfg, &mut findings);
+    let self_check = self_check_report(
+        &params,
+        &fitting,
+        &grads,
+        &result,
+        &cfg,
+        precision,
+        &mut findings,
+    );
 
     // (b) and (c): the loss and the gradient against the reference.
     let (loss_report, reference, tensors) = if opts.blackbox {
@@ -349,7 +367,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     program.finish();
 
     let report = ProbeReport {
-        verdict: Verdict::of(&findings),
+        verdict: Verdict::of_check(&findings, self_check.conclusive),
         schema_version: SCHEMA_VERSION,
         command: "probe",
         program: ProgramReport {
@@ -461,9 +479,11 @@ fn self_check_report(
     grads: &[(TensorSpec, Vec<f64>)],
     r: &ExternalResult,
     cfg: &ExternalConfig,
+    precision: Precision,
     findings: &mut Vec<Finding>,
 ) -> SelfCheck {
     let mut tensors = Vec::new();
+    let mut conclusive = true;
     for (i, p) in params.iter().enumerate() {
         let Some(t) = fitting.iter().position(|&f| f == i) else {
             findings.push(
@@ -487,6 +507,7 @@ fn self_check_report(
                 median_rel_error: f64::NAN,
                 mismatches: 0,
                 unreliable: 0,
+                unsettled: 0,
                 directions: 0,
                 direction_mismatches: 0,
                 worst: None,
@@ -557,17 +578,63 @@ fn self_check_report(
                 Finding::new(
                     "kink-unreliable",
                     Severity::Note,
-                    format!("{unreliable} coordinates straddle a ReLU-like kink at every step tried; not judged"),
+                    format!("{unreliable} coordinates straddle a kink (or a break in a derivative the method relies on) at every step tried; not judged"),
                 )
                 .tensor(&p.name),
             );
         }
+        let unsettled = coords
+            .iter()
+            .filter(|c| c.status == Status::Unsettled)
+            .count();
+        let settled_coords = Settlement::of(coords.iter().map(|c| c.status));
+        let settled_dirs = Settlement::of(dirs.iter().map(|d| d.status));
+        // Directions stand in for unchecked coordinates (plumb_fd::PartSummary::conclusive).
+        let settled = settled_coords.conclusive()
+            && (coords.len() >= p.data.len() || settled_dirs.conclusive());
+        conclusive &= settled;
+        if settled_coords.unsettled > 0 || settled_dirs.unsettled > 0 {
+            findings.push(
+                Finding::new(
+                    "unsettled",
+                    if settled {
+                        Severity::Note
+                    } else {
+                        Severity::Warning
+                    },
+                    format!(
+                        "{} of {} coordinates ({unreliable} unreliable at kinks) and {} of {} directions are unsettled: {} differences in {} cannot tell a match from a mismatch there (their error bound exceeds {}% of the value){}",
+                        settled_coords.unsettled,
+                        coords.len(),
+                        settled_dirs.unsettled,
+                        dirs.len(),
+                        cfg.method,
+                        precision.name(),
+                        SETTLE * 100.0,
+                        if settled {
+                            String::new()
+                        } else {
+                            format!(
+                                "; more than the {}% a check may leave open, so this tensor is inconclusive",
+                                UNSETTLED_SHARE * 100.0
+                            )
+                        }
+                    ),
+                )
+                .tensor(&p.name)
+                .figure("unsettled", unsettled)
+                .figure("unreliable", unreliable)
+                .figure("settled_share", settled_coords.share()),
+            );
+        }
         tensors.push(SelfTensor {
             name: p.name.clone(),
-            verdict: if mismatches == 0 && direction_mismatches == 0 {
-                Verdict::Pass
-            } else {
+            verdict: if mismatches > 0 || direction_mismatches > 0 {
                 Verdict::Fail
+            } else if !settled {
+                Verdict::Inconclusive
+            } else {
+                Verdict::Pass
             },
             parameters: p.data.len(),
             checked: coords.len(),
@@ -575,6 +642,7 @@ fn self_check_report(
             median_rel_error: rel.get(rel.len() / 2).copied().unwrap_or(0.0),
             mismatches,
             unreliable,
+            unsettled,
             directions: dirs.len(),
             direction_mismatches,
             worst,
@@ -592,7 +660,52 @@ fn self_check_report(
             format!("{global_bad} random directions over all tensors disagree with differences of the program's own loss"),
         ));
     }
+    let global = Settlement::of(
+        r.directions
+            .iter()
+            .filter(|d| d.tensor.is_none())
+            .map(|d| d.status),
+    );
+    conclusive &=
+        global.conclusive() || r.coords.len() >= params.iter().map(|p| p.data.len()).sum();
+    if !conclusive {
+        let all = Settlement::of(r.coords.iter().map(|c| c.status));
+        let unreliable = r
+            .coords
+            .iter()
+            .filter(|c| c.status == Status::Unreliable)
+            .count();
+        // The complex step does not apply to an outside program, and --step is its larger step.
+        let what = remedies(cfg.method, precision, unreliable, all.unsettled)
+            .split("; ")
+            .filter(|r| !r.contains("complex"))
+            .collect::<Vec<_>>()
+            .join("; ");
+        findings.push(
+            Finding::new(
+                "inconclusive",
+                Severity::Warning,
+                format!(
+                    "{} of {} checked coordinates and {} of {} directions over all tensors are unsettled: more than the {}% a check may leave open, so the program's gradient can neither pass nor fail against its own loss. What would settle them: {}",
+                    all.unsettled,
+                    all.checked,
+                    global.unsettled,
+                    global.checked,
+                    UNSETTLED_SHARE * 100.0,
+                    if precision == Precision::F32 {
+                        what.replace("(--precision f64)", "(the program computing in float64)")
+                    } else {
+                        what
+                    }
+                ),
+            )
+            .figure("unsettled", all.unsettled)
+            .figure("checked", all.checked)
+            .figure("settled_share", all.share()),
+        );
+    }
     SelfCheck {
+        conclusive,
         method: cfg.method.name(),
         step_rule: cfg.step.map_or_else(
             || cfg.method.step_rule(cfg.eps).to_string(),
@@ -660,6 +773,7 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
         "median rel",
         "mismatch",
         "unreliable",
+        "unsettled",
         "directions",
         "verdict",
     ]);
@@ -673,6 +787,14 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             Cell::from(num(st.median_rel_error)),
             Cell::new(st.mismatches.to_string(), bad(st.mismatches)),
             Cell::from(st.unreliable.to_string()),
+            Cell::new(
+                st.unsettled.to_string(),
+                if st.unsettled > 0 {
+                    Tone::Warn
+                } else {
+                    Tone::Plain
+                },
+            ),
             Cell::new(
                 format!(
                     "{}/{}",
@@ -721,6 +843,9 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             "the program's gradient is consistent with its own loss".to_string()
         }
         Verdict::Pass => "self-consistent, the right loss, and the reference gradient".to_string(),
+        Verdict::Inconclusive => {
+            "nothing found wrong, but too little of the check against the program's own loss was settled to pass".to_string()
+        }
         Verdict::Fail => {
             let n = r
                 .findings

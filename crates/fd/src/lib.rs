@@ -28,7 +28,8 @@ mod sweep;
 
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
-    FLOOR, NOISE, Precision, Progress, Rule, Scope, Status, check, check_gradient,
+    FLOOR, NOISE, Precision, Progress, Rule, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE,
+    check, check_gradient,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
@@ -37,6 +38,6 @@ pub use external::{
     OutsideTensor, check_external, select_flat,
 };
 pub use gross::{gradient_magnitude, loss_magnitude};
-pub use method::{Estimate, Method, complex_estimate};
+pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};
