@@ -504,3 +504,70 @@ def load():
         "grandchild still running: {stat}"
     );
 }
+
+/// A black box at the user's own weights and data, with no description: the hello names and
+/// shapes the tensors (and one sample's x and y), the weight file is read by those names, the data
+/// split by those shapes or drawn from them. Both directions, Python and C; and a weight file
+/// that does not fit the declaration is refused naming the file and tensor (exit 2). Before, NET
+/// was required (clap refused the command line, exit 2).
+#[test]
+fn a_black_box_runs_at_the_users_weights_without_a_description() {
+    let d = demo();
+    let w = d.join("pump-weights.npz");
+    let data = d.join("pump-data.csv");
+    let bb = |extra: &[&str], program: &[&str]| {
+        let mut args = vec!["probe", "--blackbox", "-w", w.to_str().unwrap()];
+        args.extend_from_slice(extra);
+        args.extend_from_slice(&["--quiet", "--format", "json", "--"]);
+        args.extend_from_slice(program);
+        plumb_in(repo(), &args)
+    };
+    let py = numpy(&[]);
+    let py: Vec<&str> = py.iter().map(String::as_str).collect();
+    let run = bb(&["-d", data.to_str().unwrap()], &py);
+    run.assert_code(0);
+    let j = run.json();
+    assert!(j["description"].is_null() && j["blackbox"] == true, "{j:#}");
+    assert_eq!(j["weights"]["source"], "file");
+    assert_eq!(j["data"]["samples"], 60);
+    assert_eq!(j["self_check"]["checked"], 115);
+    let planted = numpy(&["--plant", "missing-batch-mean"]);
+    let planted: Vec<&str> = planted.iter().map(String::as_str).collect();
+    let run = bb(&["-d", data.to_str().unwrap()], &planted);
+    run.assert_code(1);
+    assert_eq!(run.json()["findings"][0]["code"], "self-inconsistent");
+
+    let built = std::process::Command::new("make")
+        .args(["-s", "-C", "examples/c"])
+        .current_dir(repo())
+        .status();
+    assert!(
+        built.is_ok_and(|s| s.success()),
+        "make -C examples/c failed"
+    );
+    // No data: a batch drawn from the shapes the C program's hello declares.
+    let run = bb(&[], &["examples/c/pump"]);
+    run.assert_code(0);
+    assert_eq!(run.json()["data"]["source"], "synthetic");
+    let run = bb(&[], &["examples/c/pump", "--plant", "sign-flipped"]);
+    run.assert_code(1);
+
+    let wrong = d.join("pump-weights-transposed.npz");
+    let mut args = vec!["probe", "--blackbox", "-w", wrong.to_str().unwrap(), "--"];
+    args.extend_from_slice(&py);
+    let run = plumb_in(repo(), &args);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("pump-weights-transposed.npz")
+            && run.stderr.contains("tensor `layer")
+            && run.stderr.contains("the program declares"),
+        "{}",
+        run.stderr
+    );
+    // Without --blackbox a description is still required.
+    let mut args = vec!["probe", "--"];
+    args.extend_from_slice(&py);
+    let run = plumb_in(repo(), &args);
+    run.assert_code(2);
+    assert!(run.stderr.contains("--blackbox"), "{}", run.stderr);
+}

@@ -7,7 +7,7 @@ use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use plumb_diagnose::{Named, Tolerances};
-use plumb_engine::{Rng, Weights};
+use plumb_engine::{Batch, Rng};
 use plumb_fd::{
     Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, SETTLE,
     Sample, Settlement, Status, UNSETTLED_SHARE, check_external, gradient_magnitude,
@@ -25,7 +25,7 @@ use crate::commands::compare::{
     gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
 };
 use crate::commands::locate::Tensors;
-use crate::inputs::{DataSource, Loaded, WeightsSource, load};
+use crate::inputs::{DataSource, Loaded, WeightsSource, load, load_batch};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
 
 #[derive(Clone, Debug, Serialize)]
@@ -86,7 +86,8 @@ pub struct ProbeReport {
     pub command: &'static str,
     pub program: ProgramReport,
     pub blackbox: bool,
-    pub description: PathBuf,
+    /// The network description; null for a black box probed without one.
+    pub description: Option<PathBuf>,
     pub weights: WeightsSource,
     pub data: DataSource,
     pub self_check: SelfCheck,
@@ -123,7 +124,6 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
             args.timeout
         );
     }
-    let loaded = load(&args.inputs, settings.seed)?;
     let opts = ProbeOptions {
         command: args.command.clone(),
         method,
@@ -132,12 +132,48 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         directions: args.directions,
         timeout: args.timeout,
         blackbox: args.blackbox,
-        weights: args.inputs.weights.clone(),
+        weights: args.weights.clone(),
     };
-    let report = compute(&loaded, &opts, settings)?;
-    let mut doc = document(&report, &loaded);
+    let (report, doc) = match (args.inputs(), args.blackbox) {
+        (Some(inputs), false) => {
+            let loaded = load(&inputs, settings.seed)?;
+            let report = compute(Source::Described(&loaded), &opts, settings)?;
+            let mut doc = document(&report, Some(&loaded));
+            doc.network = Some(network_id(&loaded.desc));
+            (report, doc)
+        }
+        (None, false) => bail!(
+            "give the network description NET (e.g. plumb probe net.toml -- CMD), or --blackbox to check the program against its own loss with the tensors its hello declares"
+        ),
+        (inputs, true) => {
+            // A black box: the tensors are the program's; a description, if given, only sizes
+            // the data. The weights are read by name (never fitted to a description).
+            let desc = args
+                .net
+                .as_deref()
+                .map(plumb_formats::Description::read)
+                .transpose()?;
+            let seed = settings.seed;
+            let data = args.data.clone();
+            let batch_size = args.batch;
+            let batch = move |hello: &plumb_probe::Hello| match (&desc, &inputs) {
+                (Some(d), Some(i)) => load_batch(i, d, seed, 32),
+                _ => blackbox_batch(hello, data.as_deref(), batch_size.unwrap_or(32), seed),
+            };
+            let report = compute(
+                Source::Blackbox {
+                    description: args.net.clone(),
+                    batch: Box::new(batch),
+                },
+                &opts,
+                settings,
+            )?;
+            let doc = document(&report, None);
+            (report, doc)
+        }
+    };
+    let mut doc = doc;
     doc.command = "probe".into();
-    doc.network = (!args.blackbox).then(|| network_id(&loaded.desc));
     doc.cases = report
         .self_check
         .tensors
@@ -181,10 +217,26 @@ pub struct ProbeOptions {
     pub weights: Option<PathBuf>,
 }
 
+/// What a probe runs on: a description with its weights and data, or a black box whose tensors
+/// its hello declares and whose data is drawn once the hello is known.
+pub enum Source<'a> {
+    Described(&'a Loaded),
+    Blackbox {
+        description: Option<PathBuf>,
+        batch: BatchFor<'a>,
+    },
+}
+
+/// The batch (and where it came from) for a black box, from its hello.
+pub type BatchFor<'a> = Box<dyn FnOnce(&plumb_probe::Hello) -> Result<(Batch, DataSource)> + 'a>;
+
 /// Runs the program through the three checks and builds the report (shared with the demo).
-pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Result<ProbeReport> {
-    let desc = &loaded.desc;
-    let layout = layout_tensors(desc, &loaded.weights);
+pub fn compute(src: Source<'_>, opts: &ProbeOptions, settings: &Settings) -> Result<ProbeReport> {
+    let (loaded, description, batch_for) = match src {
+        Source::Described(l) => (Some(l), Some(l.desc.path.clone()), None),
+        Source::Blackbox { description, batch } => (None, description, Some(batch)),
+    };
+    let layout: Vec<Named> = loaded.map_or_else(Vec::new, |l| layout_tensors(&l.desc, &l.weights));
     let specs: Vec<TensorSpec> = layout
         .iter()
         .map(|t| TensorSpec {
@@ -199,7 +251,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         Duration::from_secs_f64(opts.timeout),
         settings.quiet,
     )?;
-    let hello = program.hello((!opts.blackbox).then_some(&specs[..]))?;
+    let hello = program.hello(loaded.is_some().then_some(&specs[..]))?;
     let declared: usize = hello.tensors.iter().map(TensorSpec::len).sum();
     if declared > plumb_formats::MAX_PARAMETERS {
         bail!(
@@ -207,12 +259,16 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
             plumb_formats::MAX_PARAMETERS
         );
     }
-    let params: Vec<Named> = if opts.blackbox {
-        blackbox_parameters(&hello.tensors, &opts.weights, settings.seed)?
-    } else {
-        layout
+    let (params, weights_source) = match loaded {
+        Some(l) => (layout, l.weights_source.clone()),
+        None => blackbox_parameters(&hello.tensors, &opts.weights, settings.seed)?,
     };
-    let b = &loaded.batch;
+    let (batch, data_source) = match (loaded, batch_for) {
+        (Some(l), _) => (l.batch.clone(), l.data_source.clone()),
+        (None, Some(f)) => f(&hello)?,
+        (None, None) => unreachable!("a black box comes with its batch"),
+    };
+    let b = &batch;
     let (m, n, k) = (b.len(), b.x.ncols(), b.y.ncols());
     let x: Vec<f64> = b.x.iter().copied().collect();
     let y: Vec<f64> = b.y.iter().copied().collect();
@@ -270,11 +326,12 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         tolerance: precision.tolerance(),
     };
     // Kinks are seen through the reference engine, which runs the same network (not for a black box).
-    let reference_tensors = Tensors::new(desc);
-    let w64: &Weights<f64> = &loaded.weights;
-    let base = (!opts.blackbox).then(|| Base::new(&desc.network, w64, b.x.view(), &b.y));
+    let reference_tensors = loaded.map(|l| Tensors::new(&l.desc));
+    let base = loaded.map(|l| Base::new(&l.desc.network, &l.weights, b.x.view(), &b.y));
     let crossed = |t: usize, flat: usize, d: f64| -> bool {
-        let Some(base) = &base else { return false };
+        let (Some(base), Some(reference_tensors)) = (&base, &reference_tensors) else {
+            return false;
+        };
         let p = &params[fitting[t]];
         let index = Named::index_of(p, flat);
         reference_tensors
@@ -283,8 +340,11 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     };
     // Along a direction: the direction's entries placed into the augmented matrices.
     let crossed_along = |v: &[Vec<f64>], d: f64| -> bool {
-        let Some(base) = &base else { return false };
-        let mut dir = w64.map(|_| 0.0);
+        let (Some(base), Some(reference_tensors), Some(l)) = (&base, &reference_tensors, loaded)
+        else {
+            return false;
+        };
+        let mut dir = l.weights.map(|_| 0.0);
         for (t, vt) in v.iter().enumerate() {
             let p = &params[fitting[t]];
             for (k, &x) in vt.iter().enumerate() {
@@ -297,13 +357,14 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         }
         base.along(&dir, d).1
     };
-    let loss_gross = base.as_ref().map_or(0.0, |bs| {
-        loss_magnitude(&desc.network, w64, bs.trace(), &b.y)
-    });
-    if let Some(bs) = &base {
+    let loss_gross = match (&base, loaded) {
+        (Some(bs), Some(l)) => loss_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
+        _ => 0.0,
+    };
+    if let (Some(bs), Some(l)) = (&base, loaded) {
         let gross = layout_tensors(
-            desc,
-            &gradient_magnitude(&desc.network, w64, bs.trace(), &b.y),
+            &l.desc,
+            &gradient_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
         );
         for (o, &i) in outside.iter_mut().zip(&fitting) {
             o.gross = gross
@@ -344,9 +405,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     );
 
     // (b) and (c): the loss and the gradient against the reference.
-    let (loss_report, reference, tensors) = if opts.blackbox {
-        (None, None, Vec::new())
-    } else {
+    let (loss_report, reference, tensors) = if let Some(loaded) = loaded {
         let (lr, lf) = judge_loss(loaded, loss, single);
         findings.extend(lf);
         let outside: Vec<Named> = grads
@@ -357,6 +416,8 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         findings.extend(tf);
         let cert = certify(loaded, settings.seed)?;
         (Some(lr), Some(cert), tr)
+    } else {
+        (None, None, Vec::new())
     };
     let command = program.command().to_string();
     let (requests, asked) = program.traffic();
@@ -375,10 +436,10 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
             name: hello.name,
             dtype: hello.dtype,
         },
-        blackbox: opts.blackbox,
-        description: desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
+        blackbox: loaded.is_none(),
+        description,
+        weights: weights_source,
+        data: data_source,
         self_check,
         loss: loss_report,
         reference,
@@ -426,11 +487,16 @@ fn blackbox_parameters(
     tensors: &[TensorSpec],
     weights: &Option<PathBuf>,
     seed: u64,
-) -> Result<Vec<Named>> {
+) -> Result<(Vec<Named>, WeightsSource)> {
     match weights {
         Some(path) => {
             let file = read_tensors(path)?;
-            tensors
+            let source = WeightsSource::File {
+                path: path.clone(),
+                format: file.format.name().into(),
+                dtype: crate::inputs::widest_float(&file).into(),
+            };
+            let named = tensors
                 .iter()
                 .map(|s| {
                     let t = file.get(&s.name).with_context(|| {
@@ -442,7 +508,7 @@ fn blackbox_parameters(
                     })?;
                     if t.shape != s.shape {
                         bail!(
-                            "{}: tensor `{}` is {}, the program declares {}",
+                            "{}: tensor `{}` is {}, the program declares {}: save it in the program's shape",
                             path.display(),
                             s.name,
                             shape(&t.shape),
@@ -451,11 +517,12 @@ fn blackbox_parameters(
                     }
                     Ok(Named::new(s.name.clone(), s.shape.clone(), t.data.clone()))
                 })
-                .collect()
+                .collect::<Result<_>>()?;
+            Ok((named, source))
         }
         None => {
             let mut rng = Rng::new(seed ^ 0xb1ac_b0c5);
-            Ok(tensors
+            let named = tensors
                 .iter()
                 .map(|s| {
                     let sd = match s.shape.as_slice() {
@@ -468,9 +535,94 @@ fn blackbox_parameters(
                         (0..s.len()).map(|_| sd * rng.normal()).collect(),
                     )
                 })
-                .collect())
+                .collect();
+            Ok((
+                named,
+                WeightsSource::Init {
+                    scheme: "1/√fan-in normal".into(),
+                    seed,
+                },
+            ))
         }
     }
+}
+
+/// A black box's data without a description: an `.npz` with `x` (m, inputs) and `y` (m, targets)
+/// as it is; a CSV split by the sample shapes the hello declares (`x`, `y`); or, without data, a
+/// seeded batch of those shapes (standard-normal x, one-hot rows of y).
+fn blackbox_batch(
+    hello: &plumb_probe::Hello,
+    data: Option<&std::path::Path>,
+    m: usize,
+    seed: u64,
+) -> Result<(Batch, DataSource)> {
+    let flat = |s: &Option<Vec<usize>>| s.as_ref().map(|s| s.iter().product::<usize>());
+    let sizes = flat(&hello.x).zip(flat(&hello.y));
+    let npz = data.is_some_and(|p| p.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz")));
+    if let Some(path) = data {
+        let batch = if npz {
+            let file = read_tensors(path)?;
+            let two_d = |name: &str| -> Result<ndarray::Array2<f64>> {
+                let t = file.get(name).with_context(|| {
+                    format!("{}: no array `{name}`; a black box's .npz data holds x (samples, inputs) and y (samples, targets)", path.display())
+                })?;
+                let (rows, cols) = match t.shape.as_slice() {
+                    [r, c] => (*r, *c),
+                    [r] => (*r, 1),
+                    other => bail!(
+                        "{}: `{name}` is {}; without a description give it as (samples, values)",
+                        path.display(),
+                        shape(other)
+                    ),
+                };
+                Ok(ndarray::Array2::from_shape_vec(
+                    (rows, cols),
+                    t.data.clone(),
+                )?)
+            };
+            let (x, y) = (two_d("x")?, two_d("y")?);
+            if x.nrows() != y.nrows() || x.nrows() == 0 {
+                bail!(
+                    "{}: x has {} samples and y {}: give both the same number, at least one",
+                    path.display(),
+                    x.nrows(),
+                    y.nrows()
+                );
+            }
+            Batch { x, y }
+        } else {
+            let Some((n, k)) = sizes else {
+                bail!(
+                    "{}: a CSV file cannot say which columns are inputs without a description: give NET, an .npz with x and y, or have the program declare one sample's \"x\" and \"y\" shapes in its hello (docs/protocol.md)",
+                    path.display()
+                );
+            };
+            plumb_formats::read_data(path, n, k)?
+        };
+        let samples = batch.len();
+        return Ok((
+            batch,
+            DataSource::File {
+                path: path.to_path_buf(),
+                samples,
+            },
+        ));
+    }
+    let Some((n, k)) = sizes else {
+        bail!(
+            "the program's hello declares no sample shapes (\"x\", \"y\"), so plumb cannot draw data for it: give -d with the data, or NET, or declare them (docs/protocol.md)"
+        );
+    };
+    if m == 0 || m.saturating_mul(n + k) > plumb_formats::MAX_PARAMETERS {
+        bail!("--batch {m}: give between 1 and a batch whose values fit in memory");
+    }
+    let mut rng = Rng::new(seed ^ 0x5eed_da7a);
+    let x = ndarray::Array2::from_shape_fn((m, n), |_| rng.normal());
+    let mut y = ndarray::Array2::zeros((m, k));
+    for mut row in y.rows_mut() {
+        row[rng.below(k)] = 1.0;
+    }
+    Ok((Batch { x, y }, DataSource::Synthetic { samples: m, seed }))
 }
 
 fn self_check_report(
@@ -720,7 +872,7 @@ fn self_check_report(
     }
 }
 
-pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
+pub fn document(r: &ProbeReport, loaded: Option<&Loaded>) -> Document {
     let mut doc =
         Document::new("plumb probe — your program against its own loss and the reference");
     let p = &r.program;
@@ -740,7 +892,10 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
         ),
         (
             "description".to_string(),
-            r.description.display().to_string(),
+            r.description.as_ref().map_or_else(
+                || "none (a black box: the tensors its hello declares)".to_string(),
+                |p| p.display().to_string(),
+            ),
         ),
         (
             "weights".to_string(),
@@ -808,7 +963,7 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
     }
     doc.push(Block::Table(t));
 
-    if let Some(l) = &r.loss {
+    if let (Some(l), Some(loaded)) = (&r.loss, loaded) {
         doc.push(Block::Heading(
             "2. Does it compute the loss the description says?".into(),
         ));
