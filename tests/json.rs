@@ -162,6 +162,8 @@ struct CheckTensor {
     gradient_norm: f64,
     mismatches: usize,
     unreliable: usize,
+    unsettled: usize,
+    settled_share: f64,
     directions: usize,
     direction_mismatches: usize,
     verdict: String,

@@ -151,8 +151,21 @@ fn a_correct_program_passes_in_f64_f32_and_with_relu() {
         let prog = numpy(&extra);
         let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
         let run = probe(&[], &prog);
-        run.assert_code(0);
         let j = run.json();
+        // On the demo's trained weights f32 round-off leaves much of the self-check unsettled:
+        // an honest probe says inconclusive (exit 1) and what would settle it, never pass or fail.
+        if extra.is_empty() {
+            run.assert_code(0);
+        } else {
+            assert_eq!(j["verdict"], "inconclusive", "{:#}", j["findings"]);
+            run.assert_code(1);
+            let f = j["findings"].as_array().unwrap();
+            let why = f.iter().find(|f| f["code"] == "inconclusive").unwrap();
+            assert!(
+                why["message"].as_str().unwrap().contains("float64"),
+                "{why}"
+            );
+        }
         assert_eq!(
             j["program"]["dtype"],
             if extra.is_empty() { "f64" } else { "f32" }
@@ -342,6 +355,7 @@ fn probe_report_schema() {
             "checked",
             "parameters",
             "directions_per_tensor",
+            "conclusive",
             "tensors"
         ])
     );
@@ -356,6 +370,7 @@ fn probe_report_schema() {
             "median_rel_error",
             "mismatches",
             "unreliable",
+            "unsettled",
             "directions",
             "direction_mismatches",
             "worst"
@@ -386,6 +401,7 @@ fn probe_report_schema() {
 #[test]
 fn relu_programs_in_f32_raise_no_false_alarm_over_20_seeds() {
     let net = repo().join("examples/pump-relu.toml");
+    let mut inconclusive = 0;
     for seed in 0..20 {
         let s = seed.to_string();
         let run = plumb_in(
@@ -407,8 +423,17 @@ fn relu_programs_in_f32_raise_no_false_alarm_over_20_seeds() {
                 "f32",
             ],
         );
-        assert_eq!(run.code, 0, "seed {seed}: {}", run.stdout);
+        // Never a false alarm; where f32 leaves too much unsettled, inconclusive (exit 1).
+        let open = run.stdout.contains("verdict: INCONCLUSIVE");
+        assert!(
+            run.code == 0 || (run.code == 1 && open),
+            "seed {seed}: {}",
+            run.stdout
+        );
+        inconclusive += usize::from(open);
     }
+    // Seeded weights are not trained ones: most of them settle.
+    assert!(inconclusive <= 5, "{inconclusive} of 20 inconclusive");
 }
 
 /// Programs that misbehave in ways the example cannot: a flood of stderr without newlines and with
@@ -533,4 +558,71 @@ fn a_declared_reduction_is_the_reference_through_the_protocol() {
             .unwrap()
             .contains("averaged over the batch")
     );
+}
+
+/// A black box at the user's own weights and data, with no description: the hello names and
+/// shapes the tensors (and one sample's x and y), the weight file is read by those names, the data
+/// split by those shapes or drawn from them. Both directions, Python and C; and a weight file
+/// that does not fit the declaration is refused naming the file and tensor (exit 2). Before, NET
+/// was required (clap refused the command line, exit 2).
+#[test]
+fn a_black_box_runs_at_the_users_weights_without_a_description() {
+    let d = demo();
+    let w = d.join("pump-weights.npz");
+    let data = d.join("pump-data.csv");
+    let bb = |extra: &[&str], program: &[&str]| {
+        let mut args = vec!["probe", "--blackbox", "-w", w.to_str().unwrap()];
+        args.extend_from_slice(extra);
+        args.extend_from_slice(&["--quiet", "--format", "json", "--"]);
+        args.extend_from_slice(program);
+        plumb_in(repo(), &args)
+    };
+    let py = numpy(&[]);
+    let py: Vec<&str> = py.iter().map(String::as_str).collect();
+    let run = bb(&["-d", data.to_str().unwrap()], &py);
+    run.assert_code(0);
+    let j = run.json();
+    assert!(j["description"].is_null() && j["blackbox"] == true, "{j:#}");
+    assert_eq!(j["weights"]["source"], "file");
+    assert_eq!(j["data"]["samples"], 60);
+    assert_eq!(j["self_check"]["checked"], 115);
+    let planted = numpy(&["--plant", "missing-batch-mean"]);
+    let planted: Vec<&str> = planted.iter().map(String::as_str).collect();
+    let run = bb(&["-d", data.to_str().unwrap()], &planted);
+    run.assert_code(1);
+    assert_eq!(run.json()["findings"][0]["code"], "self-inconsistent");
+
+    let built = std::process::Command::new("make")
+        .args(["-s", "-C", "examples/c"])
+        .current_dir(repo())
+        .status();
+    assert!(
+        built.is_ok_and(|s| s.success()),
+        "make -C examples/c failed"
+    );
+    // No data: a batch drawn from the shapes the C program's hello declares.
+    let run = bb(&[], &["examples/c/pump"]);
+    run.assert_code(0);
+    assert_eq!(run.json()["data"]["source"], "synthetic");
+    let run = bb(&[], &["examples/c/pump", "--plant", "sign-flipped"]);
+    run.assert_code(1);
+
+    let wrong = d.join("pump-weights-transposed.npz");
+    let mut args = vec!["probe", "--blackbox", "-w", wrong.to_str().unwrap(), "--"];
+    args.extend_from_slice(&py);
+    let run = plumb_in(repo(), &args);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("pump-weights-transposed.npz")
+            && run.stderr.contains("tensor `layer")
+            && run.stderr.contains("the program declares"),
+        "{}",
+        run.stderr
+    );
+    // Without --blackbox a description is still required.
+    let mut args = vec!["probe", "--"];
+    args.extend_from_slice(&py);
+    let run = plumb_in(repo(), &args);
+    run.assert_code(2);
+    assert!(run.stderr.contains("--blackbox"), "{}", run.stderr);
 }

@@ -215,8 +215,23 @@ pub struct CompareArgs {
 
 #[derive(Debug, Args)]
 pub struct ProbeArgs {
-    #[command(flatten)]
-    pub inputs: Inputs,
+    /// The network description (TOML); optional with --blackbox, where the program's hello names
+    /// and shapes the tensors.
+    #[arg(value_name = "NET")]
+    pub net: Option<PathBuf>,
+    /// Weight file (.npy, .npz, .safetensors); under --blackbox its tensors are taken by the names
+    /// the program declares. Without it, weights are drawn from --seed.
+    #[arg(short, long, value_name = "W")]
+    pub weights: Option<PathBuf>,
+    /// Data file (CSV with a header row, or .npz with x and y); without it, a seeded synthetic batch.
+    #[arg(short, long, value_name = "D")]
+    pub data: Option<PathBuf>,
+    /// Initialisation scheme for weights drawn without --weights (with a description).
+    #[arg(long, value_enum, default_value_t = InitArg::GlorotUniform)]
+    pub init: InitArg,
+    /// Samples in the synthetic batch drawn without --data [default: 32].
+    #[arg(long, value_name = "M")]
+    pub batch: Option<usize>,
     /// Finite-difference method for checking the program against its own loss (the complex step
     /// needs complex arithmetic inside the program, so it is not offered).
     #[arg(long, value_enum, default_value_t = ProbeMethodArg::Central)]
@@ -383,6 +398,19 @@ impl Inputs {
     }
 }
 
+impl ProbeArgs {
+    /// The common inputs, when a description is given.
+    pub fn inputs(&self) -> Option<Inputs> {
+        self.net.clone().map(|net| Inputs {
+            net,
+            weights: self.weights.clone(),
+            data: self.data.clone(),
+            init: self.init,
+            batch: self.batch,
+        })
+    }
+}
+
 impl Command {
     /// The command its report names (a merge reports a check).
     pub fn report_name(&self) -> &'static str {
@@ -413,7 +441,13 @@ impl Command {
                 v.push(&a.gradient);
                 v
             }
-            Command::Probe(a) => a.inputs.paths(),
+            Command::Probe(a) => a
+                .net
+                .as_deref()
+                .into_iter()
+                .chain(a.weights.as_deref())
+                .chain(a.data.as_deref())
+                .collect(),
             Command::Audit(a) => std::iter::once(a.net.as_path())
                 .chain(std::iter::once(a.weights.as_path()))
                 .chain(a.data.as_deref())

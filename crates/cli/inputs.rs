@@ -283,7 +283,7 @@ fn weights_from_file(desc: &Description, file: &TensorFile, path: &Path) -> Resu
 }
 
 /// The widest floating-point type among a file's tensors (float64 if any, else the narrower).
-fn widest_float(file: &TensorFile) -> &'static str {
+pub fn widest_float(file: &TensorFile) -> &'static str {
     let rank = |d: DType| match d {
         DType::F64 => 3,
         DType::F32 => 2,

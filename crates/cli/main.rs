@@ -36,7 +36,7 @@ fn main() -> ExitCode {
     };
     match result {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,
-        Ok(Verdict::Fail) => ExitCode::from(1),
+        Ok(Verdict::Fail | Verdict::Inconclusive) => ExitCode::from(1),
         Err(e) => {
             eprintln!("plumb: error: {}", message(&e));
             ExitCode::from(2)

@@ -181,10 +181,15 @@ impl Settings {
             other => other?,
         }
         if let Some(p) = &self.save_baseline {
-            if verdict == Verdict::Fail {
+            if verdict != Verdict::Pass {
                 bail!(
-                    "{}: not saved — a baseline records a passing run, and this one failed",
-                    p.display()
+                    "{}: not saved — a baseline records a passing run, and this one is {}",
+                    p.display(),
+                    if verdict == Verdict::Fail {
+                        "failed"
+                    } else {
+                        "inconclusive"
+                    }
                 );
             }
             let base = Baseline::record(&doc, &findings);

@@ -493,7 +493,8 @@ int main(int argc, char **argv)
         if (strcmp(type, "hello") == 0) {
             printf("{\"type\":\"hello\",\"protocol\":1,\"name\":\"%s\",\"dtype\":\"f64\",\"tensors\":[", NAME);
             reply_tensors();
-            printf("]}\n");
+            /* One sample's shapes: what a black box without a description needs. */
+            printf("],\"x\":{\"shape\":[%d]},\"y\":{\"shape\":[%d]}}\n", SIZE[0], SIZE[LAYERS]);
         } else if (strcmp(type, "load") == 0) {
             load(line);
             loaded = 1;

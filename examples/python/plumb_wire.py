@@ -3,6 +3,8 @@
 serve(name, dtype, tensors, loss_fn, grad_fn) answers plumb's requests on stdin/stdout until "bye".
   tensors: [(name, shape), ...], the program's parameter tensors, in the order of its hello.
   loss_fn(params, x, y) -> loss;  grad_fn(params, x, y) -> (loss, [gradient arrays]).
+  x_shape, y_shape (optional): one sample's input and target shapes, declared in the hello so that
+  `plumb probe --blackbox` can draw or read data without a network description.
 The callbacks get the parameters as a list in the hello's order, and x, y, all of dtype float32 for
 dtype "f32" and float64 for "f64". The wire always carries little-endian float64. A gradient reply
 declares the shapes of the arrays grad_fn returned. Any exception becomes an "error" reply, exit 1.
@@ -15,7 +17,7 @@ import numpy as np
 CHANGE = np.dtype([("k", "<u4"), ("tensor", "<u4"), ("index", "<u8"), ("delta", "<f8")])  # 24 bytes
 
 
-def serve(name, dtype, tensors, loss_fn, grad_fn):
+def serve(name, dtype, tensors, loss_fn, grad_fn, x_shape=None, y_shape=None):
     inp, out = sys.stdin.buffer, sys.stdout.buffer
     ftype = {"f64": np.float64, "f32": np.float32}[dtype]
 
@@ -51,8 +53,11 @@ def serve(name, dtype, tensors, loss_fn, grad_fn):
             req = json.loads(line)
             kind = req["type"]
             if kind == "hello":
-                send({"type": "hello", "protocol": 1, "name": name, "dtype": dtype,
-                      "tensors": [{"name": n, "shape": list(s)} for n, s in tensors]})
+                hello = {"type": "hello", "protocol": 1, "name": name, "dtype": dtype,
+                         "tensors": [{"name": n, "shape": list(s)} for n, s in tensors]}
+                if x_shape is not None:  # one sample's shapes, for a black box without NET
+                    hello["x"], hello["y"] = {"shape": list(x_shape)}, {"shape": list(y_shape)}
+                send(hello)
             elif kind == "load":
                 got = {t["name"]: floats(t["shape"], t["name"]) for t in req["tensors"]}
                 params = [got[n] for n, _ in tensors]  # KeyError names a missing tensor

@@ -214,7 +214,8 @@ def main():
             grads[1][2, 3] = np.nan
         return loss, grads
 
-    serve("pump-numpy", args.dtype, list(zip(NAMES, SHAPES)), loss_fn, grad_fn)
+    serve("pump-numpy", args.dtype, list(zip(NAMES, SHAPES)), loss_fn, grad_fn,
+          x_shape=(SIZES[0],), y_shape=(SIZES[-1],))
 
 
 if __name__ == "__main__":

@@ -5,8 +5,8 @@ use std::path::PathBuf;
 use anyhow::{Result, bail};
 use plumb_engine::Weights;
 use plumb_fd::{
-    CheckConfig, CheckResult, FLOOR, Method, Part, Precision, Sample, Scope, Status, check,
-    summarise,
+    CheckConfig, CheckResult, FLOOR, Method, Part, Precision, SETTLE, Sample, Scope, Settlement,
+    Status, UNSETTLED_SHARE, check, summarise,
 };
 use plumb_report::{
     Block, Case, Cell, Document, Finding, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
@@ -110,6 +110,10 @@ pub struct TensorReport {
     pub median_bound: f64,
     pub mismatches: usize,
     pub unreliable: usize,
+    /// Coordinates neither a match nor a mismatch: the method's bound exceeds a tenth of the value.
+    pub unsettled: usize,
+    /// The share of checked coordinates settled (a match or a mismatch).
+    pub settled_share: f64,
     pub directions: usize,
     pub direction_mismatches: usize,
     pub verdict: Verdict,
@@ -251,9 +255,19 @@ pub fn cases(r: &CheckReport) -> Vec<Case> {
                 .figure("median_bound", t.median_bound)
                 .figure("mismatches", t.mismatches as f64)
                 .figure("unreliable", t.unreliable as f64)
+                .figure("unsettled", t.unsettled as f64)
                 .figure("direction_mismatches", t.direction_mismatches as f64);
             if t.verdict == Verdict::Pass {
                 c
+            } else if t.verdict == Verdict::Inconclusive {
+                let f = r
+                    .findings
+                    .iter()
+                    .find(|f| f.tensor.as_deref() == Some(&t.name) && f.code == "unsettled");
+                c.failing(
+                    "inconclusive",
+                    f.map_or(String::new(), |f| f.message.clone()),
+                )
             } else {
                 let f = r.findings.iter().find(|f| {
                     f.tensor.as_deref() == Some(&t.name) && f.severity == Severity::Error
@@ -489,30 +503,40 @@ pub fn build(
                 .figure("direction_mismatches", s.direction_mismatches),
             );
         }
-        let unresolved = result
-            .coords
-            .iter()
-            .filter(|c| {
-                s.part.contains(c)
-                    && c.status == Status::Match
-                    && c.bound >= c.analytic.abs().max(c.numeric.abs())
-            })
-            .count();
-        if unresolved > 0 {
+        let conclusive = s.conclusive();
+        let open = s.settled_coords.unsettled;
+        if open > 0 || s.settled_directions.unsettled > 0 {
             findings.push(
                 Finding::new(
-                    "unresolved",
-                    Severity::Note,
+                    "unsettled",
+                    if conclusive {
+                        Severity::Note
+                    } else {
+                        Severity::Warning
+                    },
                     format!(
-                        "{unresolved} coordinate{} below what {} differences resolve in {} here (the error they can explain exceeds the value): they pass but say little; try --method complex-step or richardson",
-                        if unresolved == 1 { " is" } else { "s are" },
+                        "{open} of {} checked coordinates ({} unreliable at kinks) and {} of {} directions are unsettled: {} differences in {} cannot tell a match from a mismatch there (their error bound exceeds {}% of the value){}",
+                        s.checked,
+                        s.unreliable,
+                        s.settled_directions.unsettled,
+                        s.directions,
                         result.method,
-                        result.precision.name()
+                        result.precision.name(),
+                        SETTLE * 100.0,
+                        if conclusive {
+                            format!("; within the {}% a check may leave open", UNSETTLED_SHARE * 100.0)
+                        } else {
+                            format!("; more than the {}% a check may leave open, so this tensor is inconclusive", UNSETTLED_SHARE * 100.0)
+                        }
                     ),
                 )
                 .tensor(&e.name)
                 .layer(e.layer + 1)
-                .figure("unresolved", unresolved),
+                .figure("unsettled", s.unsettled)
+                .figure("unreliable", s.unreliable)
+                .figure("checked", s.checked)
+                .figure("settled_share", s.settled_coords.share())
+                .figure("unsettled_directions", s.settled_directions.unsettled),
             );
         }
         if s.unreliable > 0 {
@@ -549,12 +573,16 @@ pub fn build(
             median_bound: s.median_bound,
             mismatches: s.mismatches,
             unreliable: s.unreliable,
+            unsettled: s.unsettled,
+            settled_share: s.settled_coords.share(),
             directions: s.directions,
             direction_mismatches: s.direction_mismatches,
-            verdict: if s.passed() {
-                Verdict::Pass
-            } else {
+            verdict: if !s.passed() {
                 Verdict::Fail
+            } else if !conclusive {
+                Verdict::Inconclusive
+            } else {
+                Verdict::Pass
             },
             worst,
         });
@@ -572,6 +600,44 @@ pub fn build(
                 format!("{global_bad} random directions over the whole network disagree with the gradient"),
             )
             .figure("direction_mismatches", global_bad),
+        );
+    }
+    let global = Settlement::of(
+        result
+            .directions
+            .iter()
+            .filter(|d| d.scope == Scope::Global)
+            .map(|d| d.status),
+    );
+    // Directions stand in for unchecked coordinates: with every coordinate checked, theirs do not
+    // decide (see PartSummary::conclusive).
+    let all_checked = result.coverage.checked >= result.coverage.parameters;
+    let conclusive =
+        (global.conclusive() || all_checked) && summaries.iter().all(|s| s.conclusive());
+    if !conclusive {
+        let all = Settlement::of(result.coords.iter().map(|c| c.status));
+        let unreliable = result
+            .coords
+            .iter()
+            .filter(|c| c.status == Status::Unreliable)
+            .count();
+        findings.push(
+            Finding::new(
+                "inconclusive",
+                Severity::Warning,
+                format!(
+                    "{} of {} checked coordinates and {} of {} directions over the whole network are unsettled: more than the {}% a check may leave open, so it can neither pass nor fail. What would settle them: {}",
+                    all.unsettled,
+                    all.checked,
+                    global.unsettled,
+                    global.checked,
+                    UNSETTLED_SHARE * 100.0,
+                    remedies(result.method, result.precision, unreliable, all.unsettled)
+                ),
+            )
+            .figure("unsettled", all.unsettled)
+            .figure("checked", all.checked)
+            .figure("settled_share", all.share()),
         );
     }
     let retried = result.coords.iter().filter(|c| c.retried).count();
@@ -628,7 +694,7 @@ pub fn build(
             .to_string(),
     };
     CheckReport {
-        verdict: Verdict::of(&findings),
+        verdict: Verdict::of_check(&findings, conclusive),
         schema_version: SCHEMA_VERSION,
         command: "check",
         description: facts.description.clone(),
@@ -682,6 +748,31 @@ pub fn build(
     }
 }
 
+/// What would settle a check that stayed open, in plumb's flags, most effective first.
+pub fn remedies(
+    method: Method,
+    precision: Precision,
+    unreliable: usize,
+    unsettled: usize,
+) -> String {
+    let mut out = Vec::new();
+    if method != Method::ComplexStep {
+        out.push(
+            "the complex step (--method complex-step), which has no round-off from subtraction",
+        );
+    }
+    if precision == Precision::F32 {
+        out.push("f64 (--precision f64): f32's round-off is most of the error bound");
+    }
+    if method != Method::ComplexStep && unsettled > unreliable {
+        out.push("a larger step (--step H) where round-off dominates");
+    }
+    if unreliable > 0 {
+        out.push("fewer coordinates at kinks (data or weights with fewer pre-activations at a kink, or --sample to leave them out)");
+    }
+    out.join("; ")
+}
+
 /// What was covered, in one sentence.
 pub fn coverage_text(c: &CoverageReport) -> String {
     let what = if c.checked == c.parameters {
@@ -714,9 +805,11 @@ pub fn document(r: &CheckReport) -> Document {
         (
             "verdict rule".into(),
             format!(
-                "mismatch when |a − n| exceeds the method's own error bound and the relative error |a − n| / max(|a|, |n|, {}% of the layer's largest |a|) exceeds {:e}",
+                "mismatch when |a − n| exceeds the method's own error bound and the relative error |a − n| / max(|a|, |n|, {}% of the layer's largest |a|) exceeds {:e}; unsettled when it is not a mismatch but the bound exceeds {}% of that denominator; inconclusive when more than {}% of a tensor's checked coordinates (or of its directions, when its coordinates were sampled) are unsettled or unreliable",
                 (r.floor_fraction * 100.0).round(),
-                r.tolerance
+                r.tolerance,
+                SETTLE * 100.0,
+                UNSETTLED_SHARE * 100.0
             ),
         ),
     ]));
@@ -729,6 +822,7 @@ pub fn document(r: &CheckReport) -> Document {
         "bound",
         "mismatch",
         "unreliable",
+        "unsettled",
         "directions",
         "verdict",
     ]);
@@ -745,6 +839,14 @@ pub fn document(r: &CheckReport) -> Document {
             Cell::new(
                 tr.unreliable.to_string(),
                 if tr.unreliable > 0 {
+                    Tone::Warn
+                } else {
+                    Tone::Plain
+                },
+            ),
+            Cell::new(
+                tr.unsettled.to_string(),
+                if tr.unsettled > 0 {
                     Tone::Warn
                 } else {
                     Tone::Plain
@@ -772,7 +874,17 @@ pub fn document(r: &CheckReport) -> Document {
         .iter()
         .filter(|f| f.severity == Severity::Error)
         .count();
-    let summary = if errors == 0 {
+    let summary = if r.verdict == Verdict::Inconclusive {
+        let settled: usize = r
+            .tensors
+            .iter()
+            .map(|t| t.checked - t.unsettled - t.unreliable)
+            .sum();
+        let checked: usize = r.tensors.iter().map(|t| t.checked).sum();
+        format!(
+            "{settled} of {checked} checked coordinates settled: too few to pass, and nothing found wrong"
+        )
+    } else if errors == 0 {
         format!(
             "the reference gradient agrees with {} differences on everything checked",
             r.method
@@ -791,6 +903,7 @@ pub fn verdict_cell(v: Verdict) -> Cell {
     match v {
         Verdict::Pass => Cell::new("pass", Tone::Good),
         Verdict::Fail => Cell::new("fail", Tone::Bad),
+        Verdict::Inconclusive => Cell::new("inconclusive", Tone::Warn),
     }
 }
 
@@ -810,7 +923,7 @@ pub fn worst_table(worst: &[CoordReport]) -> Table {
     for w in worst {
         let tone = match w.status {
             "mismatch" => Tone::Bad,
-            "unreliable" => Tone::Warn,
+            "unreliable" | "unsettled" => Tone::Warn,
             _ => Tone::Plain,
         };
         t.push([

@@ -269,12 +269,10 @@ fn check_shard(p: &Path, v: &Value) -> Result<()> {
 }
 
 fn status(s: &str) -> Result<Status> {
-    Ok(match s {
-        "match" => Status::Match,
-        "mismatch" => Status::Mismatch,
-        "unreliable" => Status::Unreliable,
-        other => bail!("an unknown status `{other}`"),
-    })
+    match Status::from_name(s) {
+        Some(st) => Ok(st),
+        None => bail!("an unknown status `{s}`"),
+    }
 }
 
 fn num(v: &Value, key: &str) -> f64 {

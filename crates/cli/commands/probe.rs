@@ -7,10 +7,11 @@ use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use plumb_diagnose::{Named, Tolerances};
-use plumb_engine::{Rng, Weights};
+use plumb_engine::{Batch, Rng};
 use plumb_fd::{
-    Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, Sample,
-    Status, check_external, gradient_magnitude, loss_magnitude,
+    Base, Change, ExternalConfig, ExternalResult, Inside, Method, OutsideTensor, Precision, SETTLE,
+    Sample, Settlement, Status, UNSETTLED_SHARE, check_external, gradient_magnitude,
+    loss_magnitude,
 };
 use plumb_formats::read_tensors;
 use plumb_probe::{Program, TensorSpec};
@@ -18,13 +19,13 @@ use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, 
 use serde::Serialize;
 
 use crate::args::ProbeArgs;
-use crate::commands::check::{method, step, verdict_cell};
+use crate::commands::check::{method, remedies, step, verdict_cell};
 use crate::commands::compare::{
     Certification, LossReport, TensorReport, certification_text, certify, error_plot,
     gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
 };
 use crate::commands::locate::Tensors;
-use crate::inputs::{DataSource, Loaded, WeightsSource, load};
+use crate::inputs::{DataSource, Loaded, WeightsSource, load, load_batch};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
 
 #[derive(Clone, Debug, Serialize)]
@@ -56,6 +57,8 @@ pub struct SelfTensor {
     pub median_rel_error: f64,
     pub mismatches: usize,
     pub unreliable: usize,
+    /// Coordinates neither a match nor a mismatch (the method's bound exceeds a tenth of the value).
+    pub unsettled: usize,
     pub directions: usize,
     pub direction_mismatches: usize,
     pub worst: Option<SelfWorst>,
@@ -70,6 +73,8 @@ pub struct SelfCheck {
     pub checked: usize,
     pub parameters: usize,
     pub directions_per_tensor: usize,
+    /// Whether enough was settled for a verdict (docs/json.md: the settled share).
+    pub conclusive: bool,
     pub tensors: Vec<SelfTensor>,
 }
 
@@ -81,7 +86,8 @@ pub struct ProbeReport {
     pub command: &'static str,
     pub program: ProgramReport,
     pub blackbox: bool,
-    pub description: PathBuf,
+    /// The network description; null for a black box probed without one.
+    pub description: Option<PathBuf>,
     pub weights: WeightsSource,
     pub data: DataSource,
     pub self_check: SelfCheck,
@@ -118,7 +124,6 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
             args.timeout
         );
     }
-    let loaded = load(&args.inputs, settings.seed)?;
     let opts = ProbeOptions {
         command: args.command.clone(),
         method,
@@ -127,12 +132,48 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         directions: args.directions,
         timeout: args.timeout,
         blackbox: args.blackbox,
-        weights: args.inputs.weights.clone(),
+        weights: args.weights.clone(),
     };
-    let report = compute(&loaded, &opts, settings)?;
-    let mut doc = document(&report, &loaded);
+    let (report, doc) = match (args.inputs(), args.blackbox) {
+        (Some(inputs), false) => {
+            let loaded = load(&inputs, settings.seed)?;
+            let report = compute(Source::Described(&loaded), &opts, settings)?;
+            let mut doc = document(&report, Some(&loaded));
+            doc.network = Some(network_id(&loaded.desc));
+            (report, doc)
+        }
+        (None, false) => bail!(
+            "give the network description NET (e.g. plumb probe net.toml -- CMD), or --blackbox to check the program against its own loss with the tensors its hello declares"
+        ),
+        (inputs, true) => {
+            // A black box: the tensors are the program's; a description, if given, only sizes
+            // the data. The weights are read by name (never fitted to a description).
+            let desc = args
+                .net
+                .as_deref()
+                .map(plumb_formats::Description::read)
+                .transpose()?;
+            let seed = settings.seed;
+            let data = args.data.clone();
+            let batch_size = args.batch;
+            let batch = move |hello: &plumb_probe::Hello| match (&desc, &inputs) {
+                (Some(d), Some(i)) => load_batch(i, d, seed, 32),
+                _ => blackbox_batch(hello, data.as_deref(), batch_size.unwrap_or(32), seed),
+            };
+            let report = compute(
+                Source::Blackbox {
+                    description: args.net.clone(),
+                    batch: Box::new(batch),
+                },
+                &opts,
+                settings,
+            )?;
+            let doc = document(&report, None);
+            (report, doc)
+        }
+    };
+    let mut doc = doc;
     doc.command = "probe".into();
-    doc.network = (!args.blackbox).then(|| network_id(&loaded.desc));
     doc.cases = report
         .self_check
         .tensors
@@ -142,14 +183,18 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
                 .about(&t.name)
                 .figure("max_rel_error", t.max_rel_error)
                 .figure("mismatches", t.mismatches as f64)
+                .figure("unsettled", t.unsettled as f64)
                 .figure("direction_mismatches", t.direction_mismatches as f64);
-            if t.verdict == Verdict::Pass {
-                c
-            } else {
-                c.failing(
+            match t.verdict {
+                Verdict::Pass => c,
+                Verdict::Inconclusive => c.failing(
+                    "inconclusive",
+                    "too few coordinates or directions settled to tell a match from a mismatch",
+                ),
+                Verdict::Fail => c.failing(
                     "self-inconsistent",
                     "the gradient disagrees with differences of the program's own loss",
-                )
+                ),
             }
         })
         .collect();
@@ -172,10 +217,26 @@ pub struct ProbeOptions {
     pub weights: Option<PathBuf>,
 }
 
+/// What a probe runs on: a description with its weights and data, or a black box whose tensors
+/// its hello declares and whose data is drawn once the hello is known.
+pub enum Source<'a> {
+    Described(&'a Loaded),
+    Blackbox {
+        description: Option<PathBuf>,
+        batch: BatchFor<'a>,
+    },
+}
+
+/// The batch (and where it came from) for a black box, from its hello.
+pub type BatchFor<'a> = Box<dyn FnOnce(&plumb_probe::Hello) -> Result<(Batch, DataSource)> + 'a>;
+
 /// Runs the program through the three checks and builds the report (shared with the demo).
-pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Result<ProbeReport> {
-    let desc = &loaded.desc;
-    let layout = layout_tensors(desc, &loaded.weights);
+pub fn compute(src: Source<'_>, opts: &ProbeOptions, settings: &Settings) -> Result<ProbeReport> {
+    let (loaded, description, batch_for) = match src {
+        Source::Described(l) => (Some(l), Some(l.desc.path.clone()), None),
+        Source::Blackbox { description, batch } => (None, description, Some(batch)),
+    };
+    let layout: Vec<Named> = loaded.map_or_else(Vec::new, |l| layout_tensors(&l.desc, &l.weights));
     let specs: Vec<TensorSpec> = layout
         .iter()
         .map(|t| TensorSpec {
@@ -190,7 +251,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         Duration::from_secs_f64(opts.timeout),
         settings.quiet,
     )?;
-    let hello = program.hello((!opts.blackbox).then_some(&specs[..]))?;
+    let hello = program.hello(loaded.is_some().then_some(&specs[..]))?;
     let declared: usize = hello.tensors.iter().map(TensorSpec::len).sum();
     if declared > plumb_formats::MAX_PARAMETERS {
         bail!(
@@ -198,12 +259,16 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
             plumb_formats::MAX_PARAMETERS
         );
     }
-    let params: Vec<Named> = if opts.blackbox {
-        blackbox_parameters(&hello.tensors, &opts.weights, settings.seed)?
-    } else {
-        layout
+    let (params, weights_source) = match loaded {
+        Some(l) => (layout, l.weights_source.clone()),
+        None => blackbox_parameters(&hello.tensors, &opts.weights, settings.seed)?,
     };
-    let b = &loaded.batch;
+    let (batch, data_source) = match (loaded, batch_for) {
+        (Some(l), _) => (l.batch.clone(), l.data_source.clone()),
+        (None, Some(f)) => f(&hello)?,
+        (None, None) => unreachable!("a black box comes with its batch"),
+    };
+    let b = &batch;
     let (m, n, k) = (b.len(), b.x.ncols(), b.y.ncols());
     let x: Vec<f64> = b.x.iter().copied().collect();
     let y: Vec<f64> = b.y.iter().copied().collect();
@@ -261,11 +326,12 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         tolerance: precision.tolerance(),
     };
     // Kinks are seen through the reference engine, which runs the same network (not for a black box).
-    let reference_tensors = Tensors::new(desc);
-    let w64: &Weights<f64> = &loaded.weights;
-    let base = (!opts.blackbox).then(|| Base::new(&desc.network, w64, b.x.view(), &b.y));
+    let reference_tensors = loaded.map(|l| Tensors::new(&l.desc));
+    let base = loaded.map(|l| Base::new(&l.desc.network, &l.weights, b.x.view(), &b.y));
     let crossed = |t: usize, flat: usize, d: f64| -> bool {
-        let Some(base) = &base else { return false };
+        let (Some(base), Some(reference_tensors)) = (&base, &reference_tensors) else {
+            return false;
+        };
         let p = &params[fitting[t]];
         let index = Named::index_of(p, flat);
         reference_tensors
@@ -274,8 +340,11 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     };
     // Along a direction: the direction's entries placed into the augmented matrices.
     let crossed_along = |v: &[Vec<f64>], d: f64| -> bool {
-        let Some(base) = &base else { return false };
-        let mut dir = w64.map(|_| 0.0);
+        let (Some(base), Some(reference_tensors), Some(l)) = (&base, &reference_tensors, loaded)
+        else {
+            return false;
+        };
+        let mut dir = l.weights.map(|_| 0.0);
         for (t, vt) in v.iter().enumerate() {
             let p = &params[fitting[t]];
             for (k, &x) in vt.iter().enumerate() {
@@ -288,13 +357,14 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         }
         base.along(&dir, d).1
     };
-    let loss_gross = base.as_ref().map_or(0.0, |bs| {
-        loss_magnitude(&desc.network, w64, bs.trace(), &b.y)
-    });
-    if let Some(bs) = &base {
+    let loss_gross = match (&base, loaded) {
+        (Some(bs), Some(l)) => loss_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
+        _ => 0.0,
+    };
+    if let (Some(bs), Some(l)) = (&base, loaded) {
         let gross = layout_tensors(
-            desc,
-            &gradient_magnitude(&desc.network, w64, bs.trace(), &b.y),
+            &l.desc,
+            &gradient_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
         );
         for (o, &i) in outside.iter_mut().zip(&fitting) {
             o.gross = gross
@@ -308,6 +378,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         crossed: &crossed,
         crossed_along: &crossed_along,
         loss_gross,
+        sees_kinks: base.is_some(),
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<plumb_probe::Change> = changes
@@ -323,12 +394,18 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     };
     let result = check_external(&outside, loss, &mut ask, &inside, &cfg)?;
     let mut findings = Vec::new();
-    let self_check = self_check_report(&params, &fitting, &grads, &result, &cfg, &mut findings);
+    let self_check = self_check_report(
+        &params,
+        &fitting,
+        &grads,
+        &result,
+        &cfg,
+        precision,
+        &mut findings,
+    );
 
     // (b) and (c): the loss and the gradient against the reference.
-    let (loss_report, reference, tensors) = if opts.blackbox {
-        (None, None, Vec::new())
-    } else {
+    let (loss_report, reference, tensors) = if let Some(loaded) = loaded {
         let (lr, lf) = judge_loss(loaded, loss, single);
         findings.extend(lf);
         let outside: Vec<Named> = grads
@@ -339,6 +416,8 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
         findings.extend(tf);
         let cert = certify(loaded, settings.seed)?;
         (Some(lr), Some(cert), tr)
+    } else {
+        (None, None, Vec::new())
     };
     let command = program.command().to_string();
     let (requests, asked) = program.traffic();
@@ -349,7 +428,7 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
     program.finish();
 
     let report = ProbeReport {
-        verdict: Verdict::of(&findings),
+        verdict: Verdict::of_check(&findings, self_check.conclusive),
         schema_version: SCHEMA_VERSION,
         command: "probe",
         program: ProgramReport {
@@ -357,10 +436,10 @@ pub fn compute(loaded: &Loaded, opts: &ProbeOptions, settings: &Settings) -> Res
             name: hello.name,
             dtype: hello.dtype,
         },
-        blackbox: opts.blackbox,
-        description: desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
+        blackbox: loaded.is_none(),
+        description,
+        weights: weights_source,
+        data: data_source,
         self_check,
         loss: loss_report,
         reference,
@@ -408,11 +487,16 @@ fn blackbox_parameters(
     tensors: &[TensorSpec],
     weights: &Option<PathBuf>,
     seed: u64,
-) -> Result<Vec<Named>> {
+) -> Result<(Vec<Named>, WeightsSource)> {
     match weights {
         Some(path) => {
             let file = read_tensors(path)?;
-            tensors
+            let source = WeightsSource::File {
+                path: path.clone(),
+                format: file.format.name().into(),
+                dtype: crate::inputs::widest_float(&file).into(),
+            };
+            let named = tensors
                 .iter()
                 .map(|s| {
                     let t = file.get(&s.name).with_context(|| {
@@ -424,7 +508,7 @@ fn blackbox_parameters(
                     })?;
                     if t.shape != s.shape {
                         bail!(
-                            "{}: tensor `{}` is {}, the program declares {}",
+                            "{}: tensor `{}` is {}, the program declares {}: save it in the program's shape",
                             path.display(),
                             s.name,
                             shape(&t.shape),
@@ -433,11 +517,12 @@ fn blackbox_parameters(
                     }
                     Ok(Named::new(s.name.clone(), s.shape.clone(), t.data.clone()))
                 })
-                .collect()
+                .collect::<Result<_>>()?;
+            Ok((named, source))
         }
         None => {
             let mut rng = Rng::new(seed ^ 0xb1ac_b0c5);
-            Ok(tensors
+            let named = tensors
                 .iter()
                 .map(|s| {
                     let sd = match s.shape.as_slice() {
@@ -450,9 +535,94 @@ fn blackbox_parameters(
                         (0..s.len()).map(|_| sd * rng.normal()).collect(),
                     )
                 })
-                .collect())
+                .collect();
+            Ok((
+                named,
+                WeightsSource::Init {
+                    scheme: "1/√fan-in normal".into(),
+                    seed,
+                },
+            ))
         }
     }
+}
+
+/// A black box's data without a description: an `.npz` with `x` (m, inputs) and `y` (m, targets)
+/// as it is; a CSV split by the sample shapes the hello declares (`x`, `y`); or, without data, a
+/// seeded batch of those shapes (standard-normal x, one-hot rows of y).
+fn blackbox_batch(
+    hello: &plumb_probe::Hello,
+    data: Option<&std::path::Path>,
+    m: usize,
+    seed: u64,
+) -> Result<(Batch, DataSource)> {
+    let flat = |s: &Option<Vec<usize>>| s.as_ref().map(|s| s.iter().product::<usize>());
+    let sizes = flat(&hello.x).zip(flat(&hello.y));
+    let npz = data.is_some_and(|p| p.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz")));
+    if let Some(path) = data {
+        let batch = if npz {
+            let file = read_tensors(path)?;
+            let two_d = |name: &str| -> Result<ndarray::Array2<f64>> {
+                let t = file.get(name).with_context(|| {
+                    format!("{}: no array `{name}`; a black box's .npz data holds x (samples, inputs) and y (samples, targets)", path.display())
+                })?;
+                let (rows, cols) = match t.shape.as_slice() {
+                    [r, c] => (*r, *c),
+                    [r] => (*r, 1),
+                    other => bail!(
+                        "{}: `{name}` is {}; without a description give it as (samples, values)",
+                        path.display(),
+                        shape(other)
+                    ),
+                };
+                Ok(ndarray::Array2::from_shape_vec(
+                    (rows, cols),
+                    t.data.clone(),
+                )?)
+            };
+            let (x, y) = (two_d("x")?, two_d("y")?);
+            if x.nrows() != y.nrows() || x.nrows() == 0 {
+                bail!(
+                    "{}: x has {} samples and y {}: give both the same number, at least one",
+                    path.display(),
+                    x.nrows(),
+                    y.nrows()
+                );
+            }
+            Batch { x, y }
+        } else {
+            let Some((n, k)) = sizes else {
+                bail!(
+                    "{}: a CSV file cannot say which columns are inputs without a description: give NET, an .npz with x and y, or have the program declare one sample's \"x\" and \"y\" shapes in its hello (docs/protocol.md)",
+                    path.display()
+                );
+            };
+            plumb_formats::read_data(path, n, k)?
+        };
+        let samples = batch.len();
+        return Ok((
+            batch,
+            DataSource::File {
+                path: path.to_path_buf(),
+                samples,
+            },
+        ));
+    }
+    let Some((n, k)) = sizes else {
+        bail!(
+            "the program's hello declares no sample shapes (\"x\", \"y\"), so plumb cannot draw data for it: give -d with the data, or NET, or declare them (docs/protocol.md)"
+        );
+    };
+    if m == 0 || m.saturating_mul(n + k) > plumb_formats::MAX_PARAMETERS {
+        bail!("--batch {m}: give between 1 and a batch whose values fit in memory");
+    }
+    let mut rng = Rng::new(seed ^ 0x5eed_da7a);
+    let x = ndarray::Array2::from_shape_fn((m, n), |_| rng.normal());
+    let mut y = ndarray::Array2::zeros((m, k));
+    for mut row in y.rows_mut() {
+        row[rng.below(k)] = 1.0;
+    }
+    Ok((Batch { x, y }, DataSource::Synthetic { samples: m, seed }))
 }
 
 fn self_check_report(
@@ -461,9 +631,11 @@ fn self_check_report(
     grads: &[(TensorSpec, Vec<f64>)],
     r: &ExternalResult,
     cfg: &ExternalConfig,
+    precision: Precision,
     findings: &mut Vec<Finding>,
 ) -> SelfCheck {
     let mut tensors = Vec::new();
+    let mut conclusive = true;
     for (i, p) in params.iter().enumerate() {
         let Some(t) = fitting.iter().position(|&f| f == i) else {
             findings.push(
@@ -487,6 +659,7 @@ fn self_check_report(
                 median_rel_error: f64::NAN,
                 mismatches: 0,
                 unreliable: 0,
+                unsettled: 0,
                 directions: 0,
                 direction_mismatches: 0,
                 worst: None,
@@ -557,17 +730,63 @@ fn self_check_report(
                 Finding::new(
                     "kink-unreliable",
                     Severity::Note,
-                    format!("{unreliable} coordinates straddle a ReLU-like kink at every step tried; not judged"),
+                    format!("{unreliable} coordinates straddle a kink (or a break in a derivative the method relies on) at every step tried; not judged"),
                 )
                 .tensor(&p.name),
             );
         }
+        let unsettled = coords
+            .iter()
+            .filter(|c| c.status == Status::Unsettled)
+            .count();
+        let settled_coords = Settlement::of(coords.iter().map(|c| c.status));
+        let settled_dirs = Settlement::of(dirs.iter().map(|d| d.status));
+        // Directions stand in for unchecked coordinates (plumb_fd::PartSummary::conclusive).
+        let settled = settled_coords.conclusive()
+            && (coords.len() >= p.data.len() || settled_dirs.conclusive());
+        conclusive &= settled;
+        if settled_coords.unsettled > 0 || settled_dirs.unsettled > 0 {
+            findings.push(
+                Finding::new(
+                    "unsettled",
+                    if settled {
+                        Severity::Note
+                    } else {
+                        Severity::Warning
+                    },
+                    format!(
+                        "{} of {} coordinates ({unreliable} unreliable at kinks) and {} of {} directions are unsettled: {} differences in {} cannot tell a match from a mismatch there (their error bound exceeds {}% of the value){}",
+                        settled_coords.unsettled,
+                        coords.len(),
+                        settled_dirs.unsettled,
+                        dirs.len(),
+                        cfg.method,
+                        precision.name(),
+                        SETTLE * 100.0,
+                        if settled {
+                            String::new()
+                        } else {
+                            format!(
+                                "; more than the {}% a check may leave open, so this tensor is inconclusive",
+                                UNSETTLED_SHARE * 100.0
+                            )
+                        }
+                    ),
+                )
+                .tensor(&p.name)
+                .figure("unsettled", unsettled)
+                .figure("unreliable", unreliable)
+                .figure("settled_share", settled_coords.share()),
+            );
+        }
         tensors.push(SelfTensor {
             name: p.name.clone(),
-            verdict: if mismatches == 0 && direction_mismatches == 0 {
-                Verdict::Pass
-            } else {
+            verdict: if mismatches > 0 || direction_mismatches > 0 {
                 Verdict::Fail
+            } else if !settled {
+                Verdict::Inconclusive
+            } else {
+                Verdict::Pass
             },
             parameters: p.data.len(),
             checked: coords.len(),
@@ -575,6 +794,7 @@ fn self_check_report(
             median_rel_error: rel.get(rel.len() / 2).copied().unwrap_or(0.0),
             mismatches,
             unreliable,
+            unsettled,
             directions: dirs.len(),
             direction_mismatches,
             worst,
@@ -592,7 +812,52 @@ fn self_check_report(
             format!("{global_bad} random directions over all tensors disagree with differences of the program's own loss"),
         ));
     }
+    let global = Settlement::of(
+        r.directions
+            .iter()
+            .filter(|d| d.tensor.is_none())
+            .map(|d| d.status),
+    );
+    conclusive &=
+        global.conclusive() || r.coords.len() >= params.iter().map(|p| p.data.len()).sum();
+    if !conclusive {
+        let all = Settlement::of(r.coords.iter().map(|c| c.status));
+        let unreliable = r
+            .coords
+            .iter()
+            .filter(|c| c.status == Status::Unreliable)
+            .count();
+        // The complex step does not apply to an outside program, and --step is its larger step.
+        let what = remedies(cfg.method, precision, unreliable, all.unsettled)
+            .split("; ")
+            .filter(|r| !r.contains("complex"))
+            .collect::<Vec<_>>()
+            .join("; ");
+        findings.push(
+            Finding::new(
+                "inconclusive",
+                Severity::Warning,
+                format!(
+                    "{} of {} checked coordinates and {} of {} directions over all tensors are unsettled: more than the {}% a check may leave open, so the program's gradient can neither pass nor fail against its own loss. What would settle them: {}",
+                    all.unsettled,
+                    all.checked,
+                    global.unsettled,
+                    global.checked,
+                    UNSETTLED_SHARE * 100.0,
+                    if precision == Precision::F32 {
+                        what.replace("(--precision f64)", "(the program computing in float64)")
+                    } else {
+                        what
+                    }
+                ),
+            )
+            .figure("unsettled", all.unsettled)
+            .figure("checked", all.checked)
+            .figure("settled_share", all.share()),
+        );
+    }
     SelfCheck {
+        conclusive,
         method: cfg.method.name(),
         step_rule: cfg.step.map_or_else(
             || cfg.method.step_rule(cfg.eps).to_string(),
@@ -607,7 +872,7 @@ fn self_check_report(
     }
 }
 
-pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
+pub fn document(r: &ProbeReport, loaded: Option<&Loaded>) -> Document {
     let mut doc =
         Document::new("plumb probe — your program against its own loss and the reference");
     let p = &r.program;
@@ -627,7 +892,10 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
         ),
         (
             "description".to_string(),
-            r.description.display().to_string(),
+            r.description.as_ref().map_or_else(
+                || "none (a black box: the tensors its hello declares)".to_string(),
+                |p| p.display().to_string(),
+            ),
         ),
         (
             "weights".to_string(),
@@ -660,6 +928,7 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
         "median rel",
         "mismatch",
         "unreliable",
+        "unsettled",
         "directions",
         "verdict",
     ]);
@@ -674,6 +943,14 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             Cell::new(st.mismatches.to_string(), bad(st.mismatches)),
             Cell::from(st.unreliable.to_string()),
             Cell::new(
+                st.unsettled.to_string(),
+                if st.unsettled > 0 {
+                    Tone::Warn
+                } else {
+                    Tone::Plain
+                },
+            ),
+            Cell::new(
                 format!(
                     "{}/{}",
                     st.directions - st.direction_mismatches,
@@ -686,7 +963,7 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
     }
     doc.push(Block::Table(t));
 
-    if let Some(l) = &r.loss {
+    if let (Some(l), Some(loaded)) = (&r.loss, loaded) {
         doc.push(Block::Heading(
             "2. Does it compute the loss the description says?".into(),
         ));
@@ -725,6 +1002,9 @@ pub fn document(r: &ProbeReport, loaded: &Loaded) -> Document {
             "the program's gradient is consistent with its own loss".to_string()
         }
         Verdict::Pass => "self-consistent, the right loss, and the reference gradient".to_string(),
+        Verdict::Inconclusive => {
+            "nothing found wrong, but too little of the check against the program's own loss was settled to pass".to_string()
+        }
         Verdict::Fail => {
             let n = r
                 .findings

@@ -86,7 +86,7 @@ fn probe_example(loaded: &Loaded, code: &str, settings: &Settings) -> Option<pro
         quiet: true,
         ..settings.clone()
     };
-    probe::compute(loaded, &opts, &quiet).ok()
+    probe::compute(probe::Source::Described(loaded), &opts, &quiet).ok()
 }
 
 /// The demo's bugs, one picked by the seed: (code, where, the backward pass that makes it).
@@ -386,7 +386,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
                 "The same bug planted in a real program — examples/python/pump_numpy.py --plant {}, a hand-written NumPy backprop talking to plumb over its wire protocol — and what `plumb probe` finds: its gradient against differences of its own loss, its loss against the reference, its gradient against the reference:",
                 plant_switch(bug_code)
             )));
-            for b in probe::document(r, &loaded).blocks {
+            for b in probe::document(r, Some(&loaded)).blocks {
                 if matches!(b, Block::Table(_)) {
                     doc.push(b);
                 }

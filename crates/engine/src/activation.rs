@@ -78,6 +78,16 @@ impl Activation {
         }
     }
 
+    /// Where the function, or one of its first two derivatives, breaks: a kink, or (elu with α = 1,
+    /// whose second derivative jumps from α to 0 at 0) a point where the finite-difference
+    /// methods' error bounds, which assume smooth higher derivatives, do not hold.
+    pub fn break_point(&self) -> Option<f64> {
+        match *self {
+            Activation::Elu { .. } => Some(0.0),
+            _ => self.kink(),
+        }
+    }
+
     /// g(z) for one element (not for softmax, which needs the whole row).
     #[inline]
     pub fn value<S: Scalar>(&self, z: S) -> S {

@@ -4,8 +4,12 @@
 //! (its bound) *and* the relative error |a − n| / max(|a|, |n|, floor) exceeds the precision's
 //! tolerance. The floor is 10% of the largest |a| in the same layer (of ‖g‖ over the direction's
 //! span, for a direction): entries near zero are judged against their layer's scale rather than
-//! their own, since round-off leaves every entry an absolute error of about the same size; `unreliable` when a ReLU-like unit changes side inside the stencil even after retrying
-//! with steps 10, 100 and 1000 times smaller; `match` otherwise.
+//! their own, since round-off leaves every entry an absolute error of about the same size;
+//! `unreliable` when a unit changes side of a kink, or of a break in a derivative the method's
+//! bound relies on, inside the stencil even after retrying with steps 10, 100 and 1000 times
+//! smaller; `unsettled` when it is no mismatch but the bound exceeds [`SETTLE`] of the value judged
+//! (a wrong value could have passed); `match` otherwise. A check whose unsettled and unreliable
+//! items exceed [`UNSETTLED_SHARE`] is inconclusive ([`Settlement`]).
 //!
 //! Tolerances [practice, no formal source]: 1e-6 in f64 and 1e-3 in f32, well above the best
 //! accuracy of a central difference in each (ε^(2/3): about 4e-11 and 2e-5, Numerical Recipes
@@ -115,6 +119,9 @@ pub enum CheckError {
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub enum Status {
     Match,
+    /// Not a mismatch, but the method's error bound exceeds [`SETTLE`] of the value judged: a
+    /// wrong gradient could have passed here, so it is not called a match.
+    Unsettled,
     Unreliable,
     Mismatch,
 }
@@ -123,8 +130,67 @@ impl Status {
     pub fn name(&self) -> &'static str {
         match self {
             Status::Match => "match",
+            Status::Unsettled => "unsettled",
             Status::Unreliable => "unreliable",
             Status::Mismatch => "mismatch",
+        }
+    }
+
+    pub fn from_name(name: &str) -> Option<Status> {
+        [
+            Status::Match,
+            Status::Unsettled,
+            Status::Unreliable,
+            Status::Mismatch,
+        ]
+        .into_iter()
+        .find(|s| s.name() == name)
+    }
+
+    /// Whether the check said something definite here: a match or a mismatch.
+    pub fn settled(&self) -> bool {
+        matches!(self, Status::Match | Status::Mismatch)
+    }
+}
+
+/// A coordinate or direction is settled when its method's error bound is at most this fraction of
+/// the value it judges, max(|a|, |n|, floor): an error of a tenth of the value would then show.
+pub const SETTLE: f64 = 0.1;
+
+/// The largest share of a tensor's checked coordinates (and, apart, of its directions, and of the
+/// directions over the whole network) that may stay unsettled or unreliable for the check to
+/// conclude. Above it the verdict is `inconclusive` unless something is a mismatch.
+pub const UNSETTLED_SHARE: f64 = 0.25;
+
+/// How much of a set of checked items (coordinates or directions) was settled.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Settlement {
+    pub checked: usize,
+    /// Unsettled or unreliable.
+    pub unsettled: usize,
+}
+
+impl Settlement {
+    pub fn of(statuses: impl IntoIterator<Item = Status>) -> Settlement {
+        statuses
+            .into_iter()
+            .fold(Settlement::default(), |s, st| Settlement {
+                checked: s.checked + 1,
+                unsettled: s.unsettled + usize::from(!st.settled()),
+            })
+    }
+
+    /// Whether at most [`UNSETTLED_SHARE`] of the items stayed unsettled.
+    pub fn conclusive(&self) -> bool {
+        self.unsettled as f64 <= UNSETTLED_SHARE * self.checked as f64
+    }
+
+    /// The settled share, 1 for nothing checked.
+    pub fn share(&self) -> f64 {
+        if self.checked == 0 {
+            1.0
+        } else {
+            (self.checked - self.unsettled) as f64 / self.checked as f64
         }
     }
 }
@@ -439,6 +505,8 @@ impl Judge {
             Status::Unreliable
         } else if (e > bound && rel > self.tolerance) || !n.is_finite() || !a.is_finite() {
             Status::Mismatch
+        } else if den > 0.0 && bound > SETTLE * den {
+            Status::Unsettled
         } else {
             Status::Match
         };
@@ -484,16 +552,24 @@ impl Run<'_> {
         let method = self.config.method;
         let fixed = self.config.step;
         // A fixed step is taken as it is; the default one is retried smaller off a kink.
+        let reach = method.reach(self.judge.eps);
         let estimate = |f: &dyn Fn(f64) -> (f64, bool), default_step: f64| match fixed {
             Some(h) => (
-                method.estimate_with(f, j0, h, noise, round_to::<S>, false),
+                method.estimate_with(f, j0, h, noise, round_to::<S>, 0),
                 false,
             ),
             None => {
-                let est = method.estimate(f, j0, default_step, noise, round_to::<S>);
+                let est = method.estimate_with(f, j0, default_step, noise, round_to::<S>, reach);
                 if est.crossed {
                     for r in RETRIES {
-                        let e = method.estimate(f, j0, default_step * r, noise, round_to::<S>);
+                        let e = method.estimate_with(
+                            f,
+                            j0,
+                            default_step * r,
+                            noise,
+                            round_to::<S>,
+                            reach,
+                        );
                         if !e.crossed {
                             return (e, true);
                         }

@@ -175,13 +175,14 @@ fn side<S: Scalar>(v: S, kink: f64) -> bool {
     v.re() > kink
 }
 
-/// Whether any pre-activation moved across the activation's kink (false for smooth activations).
+/// Whether any pre-activation moved across the activation's kink, or a break in a derivative the
+/// methods' bounds rely on (false for smooth activations).
 fn crosses<'x, S: Scalar>(
     act: Activation,
     before: impl IntoIterator<Item = &'x S>,
     after: impl IntoIterator<Item = &'x S>,
 ) -> bool {
-    match act.kink() {
+    match act.break_point() {
         None => false,
         Some(k) => before
             .into_iter()

@@ -7,7 +7,7 @@ use std::collections::HashMap;
 use plumb_engine::Rng;
 
 use crate::check::{RETRIES, Rule, Status};
-use crate::method::Method;
+use crate::method::{Method, second_difference_steps, smooth_across};
 use crate::{FLOOR, NOISE, Sample, relative_floor};
 
 /// One tensor of the outside program: its parameters and the gradient it returned for them.
@@ -28,6 +28,9 @@ pub struct Inside<'a> {
     pub crossed: &'a dyn Fn(usize, usize, f64) -> bool,
     pub crossed_along: &'a dyn Fn(&[Vec<f64>], f64) -> bool,
     pub loss_gross: f64,
+    /// Whether `crossed` sees the kinks. When it does not, a coordinate that would be a mismatch
+    /// is first asked whether the loss is smooth across its stencil ([`smooth_across`]).
+    pub sees_kinks: bool,
 }
 
 impl Inside<'static> {
@@ -36,6 +39,7 @@ impl Inside<'static> {
             crossed: &|_, _, _| false,
             crossed_along: &|_, _| false,
             loss_gross: 0.0,
+            sees_kinks: false,
         }
     }
 }
@@ -116,6 +120,11 @@ pub fn check_external<E>(
     let noise = NOISE * config.eps * f0.abs().max(inside.loss_gross);
     let gross = |t: usize, k: usize| tensors[t].gross.get(k).copied().unwrap_or(0.0);
     let round = |h: f64| h;
+    let reach = if config.step.is_some() {
+        0
+    } else {
+        method.reach(config.eps)
+    };
     let scale = tensors
         .iter()
         .flat_map(|t| t.gradient.iter())
@@ -151,7 +160,7 @@ pub fn check_external<E>(
             let mut slots: Vec<Vec<f64>> = Vec::with_capacity(chunk.len());
             for &i in chunk {
                 let (t, k) = picked[i];
-                let deltas = method.stencil(step_of(t, k) * factor, round);
+                let deltas = method.stencil(step_of(t, k) * factor, reach, round);
                 for &d in &deltas {
                     changes.push(Change {
                         perturbation: changes.len() as u32,
@@ -179,7 +188,7 @@ pub fn check_external<E>(
                     )
                 };
                 let h = step_of(t, k) * factor;
-                let est = method.estimate_with(&f, f0, h, noise, round, config.step.is_none());
+                let est = method.estimate_with(&f, f0, h, noise, round, reach);
                 if est.crossed && round_no < RETRIES.len() && config.step.is_none() {
                     next.push(i);
                     if estimates[i].is_none() {
@@ -192,25 +201,117 @@ pub fn check_external<E>(
         }
         todo = next;
     }
+    let mut estimates: Vec<(crate::Estimate, bool)> = estimates
+        .into_iter()
+        .map(|e| e.expect("every coordinate estimated"))
+        .collect();
+    let judge = |i: usize, est: &crate::Estimate| {
+        let (t, k) = picked[i];
+        rule.judge(
+            tensors[t].gradient[k],
+            est.value,
+            floors[t],
+            gross(t, k),
+            est.error,
+            est.crossed,
+        )
+    };
+    // A black box's kinks are not seen, so a disagreement must hold at smaller steps, on a loss
+    // that looks smooth across the stencil, to be a mismatch. Each suspect is estimated again at
+    // half its step, then 1/10, 1/100, 1/1000: a step that settles it as a match, with a bound
+    // below the first disagreement, wins (a kink had moved the larger ones). Where every step still disagrees, or the steps grow too short to
+    // settle anything, the second differences decide ([`smooth_across`]): smooth, a mismatch;
+    // not, `unreliable`.
+    if !inside.sees_kinks && config.step.is_none() {
+        // The typical round-off of one evaluation, not the worst case the bounds use (4ε): the
+        // test only chooses between mismatch and unreliable, and must see a kink large enough to
+        // move an estimate beyond its bound.
+        let typical = 2.0 * config.eps * f0.abs();
+        let mut suspects: Vec<(usize, f64)> = (0..picked.len())
+            .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
+            .map(|i| (i, estimates[i].0.step))
+            .collect();
+        let ratio = ask(
+            losses,
+            &suspects
+                .iter()
+                .map(|&(i, s0)| (picked[i], second_difference_steps(2.0 * s0).to_vec()))
+                .collect::<Vec<_>>(),
+            6,
+        )?;
+        let smooth: Vec<bool> = suspects
+            .iter()
+            .zip(&ratio)
+            .map(|(&(_, s0), table)| {
+                let r = |d: f64| table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
+                smooth_across(&r, f0, 2.0 * s0, typical)
+            })
+            .collect();
+        let mut open: Vec<usize> = (0..suspects.len()).collect();
+        for factor in std::iter::once(0.5).chain(RETRIES) {
+            if open.is_empty() {
+                break;
+            }
+            let again = ask(
+                losses,
+                &open
+                    .iter()
+                    .map(|&j| {
+                        let (i, s0) = suspects[j];
+                        (picked[i], method.stencil(s0 * factor, 1, round))
+                    })
+                    .collect::<Vec<_>>(),
+                method.evaluations(),
+            )?;
+            let mut next = Vec::new();
+            for (&j, table) in open.iter().zip(&again) {
+                let (i, s0) = suspects[j];
+                let (t, k) = picked[i];
+                let f = |d: f64| {
+                    (
+                        table.get(&d.to_bits()).copied().unwrap_or(f64::NAN),
+                        crossed(t, k, d),
+                    )
+                };
+                let est = method.estimate_with(&f, f0, s0 * factor, noise, round, 1);
+                let (_, _, bound, status) = judge(i, &est);
+                // A match counts only if its bound could have seen the first disagreement.
+                let first = judge(i, &estimates[i].0).0;
+                match status {
+                    Status::Match if bound < first => {
+                        estimates[i] = (est, true);
+                        suspects[j].1 = 0.0;
+                    }
+                    Status::Mismatch => next.push(j),
+                    _ => {}
+                }
+            }
+            open = next;
+        }
+        for (j, &(i, s0)) in suspects.iter().enumerate() {
+            if s0 > 0.0 && !smooth[j] {
+                estimates[i].0.crossed = true;
+                estimates[i].1 = true;
+            }
+        }
+    }
     let coords = picked
         .iter()
-        .zip(estimates)
-        .map(|(&(t, k), e)| {
-            let (est, retried) = e.expect("every coordinate estimated");
-            let a = tensors[t].gradient[k];
-            let (abs_error, rel_error, bound, status) =
-                rule.judge(a, est.value, floors[t], gross(t, k), est.error, est.crossed);
+        .zip(&estimates)
+        .enumerate()
+        .map(|(i, (&(t, k), (est, retried)))| {
+            let (abs_error, rel_error, bound, status) = judge(i, est);
             OutsideCoord {
                 tensor: t,
                 index: k,
-                analytic: a,
+                analytic: tensors[t].gradient[k],
                 numeric: est.value,
                 abs_error,
                 rel_error,
                 bound,
                 step: est.step,
                 status,
-                retried,
+                retried: *retried,
             }
         })
         .collect();
@@ -245,10 +346,8 @@ pub fn check_external<E>(
             let h0 = config
                 .step
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
-            let mut est = None;
-            for factor in std::iter::once(1.0).chain(RETRIES) {
-                let h = h0 * factor;
-                let deltas = method.stencil(h, round);
+            // The loss along v at the given steps.
+            let mut along = |deltas: &[f64]| -> Result<HashMap<u64, f64>, E> {
                 let mut changes = Vec::new();
                 for (p, &d) in deltas.iter().enumerate() {
                     for (t, vt) in v.iter().enumerate() {
@@ -265,23 +364,31 @@ pub fn check_external<E>(
                     }
                 }
                 let values = losses(deltas.len(), &changes)?;
-                let table: HashMap<u64, f64> = deltas
+                Ok(deltas
                     .iter()
                     .zip(&values)
                     .map(|(d, v)| (d.to_bits(), *v))
-                    .collect();
+                    .collect())
+            };
+            let estimate_at = |table: &HashMap<u64, f64>, h: f64, reach: u32| {
                 let f = |d: f64| {
                     let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
                     (value, (inside.crossed_along)(&v, d))
                 };
-                let e = method.estimate_with(&f, f0, h, noise, round, config.step.is_none());
+                method.estimate_with(&f, f0, h, noise, round, reach)
+            };
+            let mut est = None;
+            for factor in std::iter::once(1.0).chain(RETRIES) {
+                let h = h0 * factor;
+                let table = along(&method.stencil(h, reach, round))?;
+                let e = estimate_at(&table, h, reach);
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
                 if done {
                     break;
                 }
             }
-            let est = est.expect("estimated at least once");
+            let mut est = est.expect("estimated at least once");
             let a: f64 = tensors
                 .iter()
                 .zip(&v)
@@ -306,14 +413,34 @@ pub fn check_external<E>(
                         .sum::<f64>()
                 })
                 .sum();
-            let (_, rel_error, bound, status) = rule.judge(
-                a,
-                est.value,
-                FLOOR * span,
-                gross_dir,
-                est.error,
-                est.crossed,
-            );
+            let judge = |e: &crate::Estimate| {
+                rule.judge(a, e.value, FLOOR * span, gross_dir, e.error, e.crossed)
+            };
+            // As for coordinates: a black box's disagreement must hold at a smaller step on a
+            // loss that looks smooth along v.
+            if !inside.sees_kinks && config.step.is_none() && judge(&est).3 == Status::Mismatch {
+                let s0 = est.step;
+                let first = judge(&est).0;
+                let rtable = along(&second_difference_steps(2.0 * s0))?;
+                let r = |d: f64| rtable.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
+                let smooth = smooth_across(&r, f0, 2.0 * s0, 2.0 * config.eps * f0.abs());
+                let mut resolved = false;
+                for factor in std::iter::once(0.5).chain(RETRIES) {
+                    let table = along(&method.stencil(s0 * factor, 1, round))?;
+                    let again = estimate_at(&table, s0 * factor, 1);
+                    let (_, _, bound, status) = judge(&again);
+                    if status == Status::Match && bound < first {
+                        est = again;
+                        resolved = true;
+                        break;
+                    }
+                    if status != Status::Mismatch {
+                        break;
+                    }
+                }
+                est.crossed |= !resolved && !smooth;
+            }
+            let (_, rel_error, bound, status) = judge(&est);
             directions.push(OutsideDirection {
                 tensor: scope,
                 analytic: a,
@@ -325,6 +452,42 @@ pub fn check_external<E>(
         }
     }
     Ok(ExternalResult { coords, directions })
+}
+
+/// The loss at each coordinate's steps, one table (step bits → loss) per coordinate, asked in
+/// requests of at most [`BATCH`] perturbations.
+fn ask<E>(
+    losses: &mut Losses<'_, E>,
+    wanted: &[((usize, usize), Vec<f64>)],
+    per: usize,
+) -> Result<Vec<HashMap<u64, f64>>, E> {
+    let mut out = Vec::with_capacity(wanted.len());
+    for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
+        let mut changes = Vec::new();
+        for ((t, k), deltas) in chunk {
+            for &d in deltas {
+                changes.push(Change {
+                    perturbation: changes.len() as u32,
+                    tensor: *t as u32,
+                    index: *k as u64,
+                    delta: d,
+                });
+            }
+        }
+        let values = losses(changes.len(), &changes)?;
+        let mut at = 0;
+        for (_, deltas) in chunk {
+            out.push(
+                deltas
+                    .iter()
+                    .zip(&values[at..at + deltas.len()])
+                    .map(|(d, v)| (d.to_bits(), *v))
+                    .collect(),
+            );
+            at += deltas.len();
+        }
+    }
+    Ok(out)
 }
 
 /// (tensor, flat index) pairs to check: all, N spread over the tensors by size (each at least 10 or

@@ -29,7 +29,8 @@ mod sweep;
 
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
-    NOISE, Precision, Progress, Rule, Scope, Status, check, check_gradient,
+    NOISE, Precision, Progress, Rule, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check,
+    check_gradient,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
 pub use evaluate::{Base, full_loss};
@@ -39,6 +40,6 @@ pub use external::{
 };
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};
 pub use gross::{gradient_magnitude, loss_magnitude};
-pub use method::{Estimate, Method, complex_estimate};
+pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};

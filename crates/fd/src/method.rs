@@ -59,6 +59,13 @@ const COMPLEX_STEP: f64 = 1e-20;
 /// mismatches with weights 4× their initial scale), so f32 keeps h = ∛ε·max(|θ|, 1).
 const CENTRAL_FACTOR_F64: f64 = 2.0;
 
+/// Doublings of the step central differences may take in f32 (see [`Method::reach`]).
+const F32_REACH: u32 = 6;
+
+/// Ridders' first step in f32: ten times f64's, so that the tableau's smallest steps (h/1.4⁹)
+/// stay near ∛ε rather than where f32's round-off swamps the difference.
+const RIDDERS_START_F32: f64 = 0.1;
+
 /// Machine epsilons below this are f64's (or finer).
 const F64_EPSILON_LIMIT: f64 = 1e-10;
 
@@ -95,7 +102,8 @@ impl Method {
             Method::Central => eps.cbrt(),
             Method::Forward => eps.sqrt(),
             Method::FivePoint => eps.powf(0.2),
-            Method::Richardson => RIDDERS_START,
+            Method::Richardson if eps < F64_EPSILON_LIMIT => RIDDERS_START,
+            Method::Richardson => RIDDERS_START_F32,
             Method::ComplexStep => COMPLEX_STEP,
         };
         c * scale
@@ -108,19 +116,35 @@ impl Method {
                 "h = 2∛ε · max(|θ|, 1), or 2h where round-off dominates (the smaller error bound)"
             }
             Method::Central => {
-                "h = ∛ε · max(|θ|, 1), or 2h where round-off dominates (the smaller error bound)"
+                "h = ∛ε · max(|θ|, 1), or 2h, 4h … 32h where round-off dominates (the smallest error bound; never a step whose stencil crosses a kink)"
             }
             Method::Forward => "h = √ε · max(|θ|, 1)",
             Method::FivePoint => "h = ε^(1/5) · max(|θ|, 1)",
-            Method::Richardson => "Ridders' tableau from h = 0.01 · max(|θ|, 1), shrinking by 1.4",
+            Method::Richardson if eps < F64_EPSILON_LIMIT => {
+                "Ridders' tableau from h = 0.01 · max(|θ|, 1), shrinking by 1.4"
+            }
+            Method::Richardson => "Ridders' tableau from h = 0.1 · max(|θ|, 1), shrinking by 1.4",
             Method::ComplexStep => "h = 1e-20 · max(|θ|, 1) on the imaginary axis",
+        }
+    }
+
+    /// How many doublings of the default step central differences may move to where round-off
+    /// dominates, in a precision with machine epsilon ε: one in f64 (h or 2h), six in f32 (a ladder
+    /// to 64h, of which up to 32h is kept: f32's round-off is large against a trained network's
+    /// small gradient; the ladder stops below the first rung whose stencil crosses a kink). Other
+    /// methods ignore it.
+    pub fn reach(&self, eps: f64) -> u32 {
+        match self {
+            Method::Central if eps < F64_EPSILON_LIMIT => 1,
+            Method::Central => F32_REACH,
+            _ => 0,
         }
     }
 
     /// Evaluations of the loss one estimate costs (besides the unperturbed loss).
     pub fn evaluations(&self) -> usize {
         match self {
-            Method::Central => 4,
+            Method::Central => 2 * (F32_REACH as usize + 1),
             Method::Forward => 2,
             Method::FivePoint => 6,
             Method::Richardson => 2 * RIDDERS_SIZE,
@@ -131,11 +155,14 @@ impl Method {
     /// The steps δ at which [`Method::estimate`] evaluates f for a first step h (besides f(0)), in
     /// no particular order: an outside program can then be asked for all of them in one request.
     /// Empty for the complex step, which needs complex arithmetic.
-    pub fn stencil(&self, h: f64, round: fn(f64) -> f64) -> Vec<f64> {
+    pub fn stencil(&self, h: f64, reach: u32, round: fn(f64) -> f64) -> Vec<f64> {
         let h = round(h);
         let both = |d: f64| [d, -d];
         match self {
-            Method::Central => [h, 2.0 * h].into_iter().flat_map(both).collect(),
+            Method::Central => (0..=reach.max(1))
+                .map(|k| h * f64::from(1u32 << k))
+                .flat_map(both)
+                .collect(),
             Method::Forward => vec![h, 2.0 * h],
             Method::FivePoint => [h, 2.0 * h, 4.0 * h].into_iter().flat_map(both).collect(),
             Method::Richardson => {
@@ -163,11 +190,11 @@ impl Method {
         noise: f64,
         round: fn(f64) -> f64,
     ) -> Estimate {
-        self.estimate_with(f, f0, h, noise, round, true)
+        self.estimate_with(f, f0, h, noise, round, 1)
     }
 
-    /// As [`Method::estimate`]; with `may_double` false, central differences keep exactly the
-    /// step h rather than switching to 2h (for a step the user fixed with --step).
+    /// As [`Method::estimate`], with central differences free to move up to `reach` doublings of
+    /// the step (0: exactly h, for a step the user fixed with --step; see [`Method::reach`]).
     pub fn estimate_with(
         &self,
         f: &dyn Fn(f64) -> (f64, bool),
@@ -175,40 +202,11 @@ impl Method {
         h: f64,
         noise: f64,
         round: fn(f64) -> f64,
-        may_double: bool,
+        reach: u32,
     ) -> Estimate {
         let h = round(h);
         match self {
-            Method::Central => {
-                let (p1, c1) = f(h);
-                let (m1, c2) = f(-h);
-                let (p2, c3) = f(2.0 * h);
-                let (m2, c4) = f(-2.0 * h);
-                let d1 = (p1 - m1) / (2.0 * h);
-                let d2 = (p2 - m2) / (4.0 * h);
-                // Truncation falls as h²: (d2 − d1)/3 estimates d1's, four times that is d2's
-                // (doubled for safety); round-off grows as 1/h. Of the two quotients, the one with
-                // the smaller bound is kept: d2 where round-off dominates.
-                let t1 = (d2 - d1).abs() / 3.0;
-                let bound1 = 2.0 * t1 + 2.0 * noise / h;
-                let bound2 = 8.0 * t1 + noise / h;
-                let crossed = c1 || c2 || c3 || c4;
-                if may_double && bound2 < bound1 {
-                    Estimate {
-                        value: d2,
-                        error: bound2,
-                        step: 2.0 * h,
-                        crossed,
-                    }
-                } else {
-                    Estimate {
-                        value: d1,
-                        error: bound1,
-                        step: h,
-                        crossed,
-                    }
-                }
-            }
+            Method::Central => central_ladder(f, h, noise, reach),
             Method::Forward => {
                 let (p1, c1) = f(h);
                 let (p2, c2) = f(2.0 * h);
@@ -257,6 +255,92 @@ pub fn complex_estimate(g: &dyn Fn(f64) -> (f64, bool), h: f64, eps: f64) -> Est
     }
 }
 
+/// Central differences at h, 2h, … 2^reach·h, keeping the quotient with the smallest error bound.
+/// Truncation falls as h²: |d(2h) − d(h)|/3 estimates d(h)'s truncation, four times that d(2h)'s;
+/// where both neighbours give an estimate the larger is taken (two pairs cannot both cancel by
+/// accident), doubled for safety. Round-off adds 2·noise/h. The ladder stops below the first rung
+/// whose stencil crosses a kink; with fewer than two clean rungs the estimate is `crossed`.
+fn central_ladder(f: &dyn Fn(f64) -> (f64, bool), h: f64, noise: f64, reach: u32) -> Estimate {
+    let rungs = reach.max(1);
+    let mut d: Vec<f64> = Vec::with_capacity(rungs as usize + 1);
+    for k in 0..=rungs {
+        let hk = h * f64::from(1u32 << k);
+        let (p, cp) = f(hk);
+        let (m, cm) = f(-hk);
+        if cp || cm {
+            if d.len() < 2 {
+                // Crossed too soon to judge: the value is reported, not trusted.
+                let value = d.first().copied().unwrap_or((p - m) / (2.0 * hk));
+                return Estimate {
+                    value,
+                    error: f64::INFINITY,
+                    step: h,
+                    crossed: true,
+                };
+            }
+            break;
+        }
+        d.push((p - m) / (2.0 * hk));
+    }
+    // With reach 0 (a fixed step) only h itself may be kept; 2h served to estimate its error. On a
+    // longer ladder the top rung is never kept: its error rests on one pair alone, and far from
+    // the quadratic regime one pair can agree by accident.
+    let last = match (reach, d.len()) {
+        (0, _) => 0,
+        (_, 2) => 1,
+        (_, n) => n - 2,
+    };
+    let mut best = Estimate {
+        value: d[0],
+        error: f64::INFINITY,
+        step: h,
+        crossed: false,
+    };
+    for k in 0..=last {
+        let hk = h * f64::from(1u32 << k);
+        let above = d.get(k + 1).map_or(0.0, |u| (u - d[k]).abs() / 3.0);
+        let below = if k > 0 {
+            4.0 * (d[k] - d[k - 1]).abs() / 3.0
+        } else {
+            0.0
+        };
+        let bound = 2.0 * above.max(below) + 2.0 * noise / hk;
+        if bound < best.error {
+            best = Estimate {
+                value: d[k],
+                error: bound,
+                step: hk,
+                crossed: false,
+            };
+        }
+    }
+    best
+}
+
+/// The points [`smooth_across`] needs, besides f(0): ±s, ±2s, ±4s.
+pub fn second_difference_steps(s: f64) -> [f64; 6] {
+    [s, -s, 2.0 * s, -2.0 * s, 4.0 * s, -4.0 * s]
+}
+
+/// Whether f looks smooth across ±4s, from its second differences: on a smooth function
+/// S(k) = f(ks) − 2f(0) + f(−ks) grows as k², so S(k)/(ks)² (the curvature) is the same at k = 1,
+/// 2, 4 up to O(f⁗s²); a kink at offset u inside the stencil adds c·(ks − u) to S(k), which moves
+/// those three curvatures apart by at least a third of the largest of them, wherever u lies. They
+/// count as apart when they differ by more than a tenth of the largest, plus what the noise of
+/// the evaluations can explain (`noise` each: 4·noise/s² in the first curvature, a quarter and a
+/// sixteenth of that in the others).
+pub fn smooth_across(f: &dyn Fn(f64) -> f64, f0: f64, s: f64, noise: f64) -> bool {
+    let q = |k: f64| (f(k * s) - 2.0 * f0 + f(-k * s)) / (k * s).powi(2);
+    let curv = [q(1.0), q(2.0), q(4.0)];
+    if curv.iter().any(|c| !c.is_finite()) {
+        return false;
+    }
+    let top = curv.iter().fold(0.0f64, |m, c| m.max(c.abs()));
+    let spread = curv.iter().fold(f64::NEG_INFINITY, |m, &c| m.max(c))
+        - curv.iter().fold(f64::INFINITY, |m, &c| m.min(c));
+    spread <= 0.1 * top + 5.0 * noise / (s * s)
+}
+
 /// Ridders' extrapolation of central differences (NR §5.7, `dfridr`), with its error estimate.
 fn ridders(f: &dyn Fn(f64) -> (f64, bool), h: f64, noise: f64, round: fn(f64) -> f64) -> Estimate {
     let n = RIDDERS_SIZE;
@@ -273,10 +357,9 @@ fn ridders(f: &dyn Fn(f64) -> (f64, bool), h: f64, noise: f64, round: fn(f64) ->
     a[0][0] = central(hh);
     let mut best = a[0][0];
     let mut err = f64::INFINITY;
-    let mut last_step = hh;
+    let mut best_step = hh;
     for i in 1..n {
         hh = round(hh / RIDDERS_SHRINK);
-        last_step = hh;
         a[0][i] = central(hh);
         let mut fac = con2;
         for j in 1..=i {
@@ -288,18 +371,24 @@ fn ridders(f: &dyn Fn(f64) -> (f64, bool), h: f64, noise: f64, round: fn(f64) ->
             if errt <= err {
                 err = errt;
                 best = a[j][i];
+                best_step = hh;
             }
         }
-        if (a[i][i] - a[i - 1][i - 1]).abs() >= RIDDERS_SAFE * err {
+        // Stop where the tableau grows worse, or where round-off of the next, smaller step
+        // would already exceed the error reached (in f32 it soon does).
+        if (a[i][i] - a[i - 1][i - 1]).abs() >= RIDDERS_SAFE * err
+            || noise * RIDDERS_SHRINK / hh > err
+        {
             break;
         }
     }
     Estimate {
         value: best,
         // The tableau's estimate is the smallest difference it saw, which can be optimistic:
-        // four times it, never below the round-off of the smallest central difference used.
-        error: (4.0 * err).max(noise / last_step),
-        step: last_step,
+        // four times it, never below twice the round-off of the smallest step the value used
+        // (extrapolation weighs differences by up to about two).
+        error: (4.0 * err).max(2.0 * noise / best_step),
+        step: best_step,
         crossed,
     }
 }

@@ -1,7 +1,7 @@
 //! Per-tensor figures of a check: how much was covered, how far apart the two gradients are, and
 //! the verdict.
 
-use crate::check::{CheckResult, CoordCheck, Scope, Status};
+use crate::check::{CheckResult, CoordCheck, Scope, Settlement, Status};
 
 /// A part of the network a summary covers: a layer's bias weights, its other weights, or both
 /// (one tensor of a weight file, under its layout).
@@ -47,8 +47,12 @@ pub struct PartSummary {
     pub norm_rel_error: f64,
     pub mismatches: usize,
     pub unreliable: usize,
+    pub unsettled: usize,
     pub directions: usize,
     pub direction_mismatches: usize,
+    /// How much of the coordinates, and apart of the directions, was settled.
+    pub settled_coords: Settlement,
+    pub settled_directions: Settlement,
     /// Indices into `CheckResult::coords`, worst first (at most 3).
     pub worst: Vec<usize>,
 }
@@ -56,6 +60,14 @@ pub struct PartSummary {
 impl PartSummary {
     pub fn passed(&self) -> bool {
         self.mismatches == 0 && self.direction_mismatches == 0
+    }
+
+    /// Whether enough of the part was settled for a verdict (see [`Settlement::conclusive`]): its
+    /// coordinates, and its directions unless every coordinate was checked (directions stand in
+    /// for the coordinates a sample leaves out).
+    pub fn conclusive(&self) -> bool {
+        self.settled_coords.conclusive()
+            && (self.checked >= self.parameters || self.settled_directions.conclusive())
     }
 }
 
@@ -110,8 +122,14 @@ pub fn summarise(result: &CheckResult, parts: &[(Part, usize)]) -> Vec<PartSumma
                     .iter()
                     .filter(|c| c.status == Status::Unreliable)
                     .count(),
+                unsettled: coords
+                    .iter()
+                    .filter(|c| c.status == Status::Unsettled)
+                    .count(),
                 directions: dirs.len(),
                 direction_mismatches: dirs.iter().filter(|d| d.status == Status::Mismatch).count(),
+                settled_coords: Settlement::of(coords.iter().map(|c| c.status)),
+                settled_directions: Settlement::of(dirs.iter().map(|d| d.status)),
                 worst,
             }
         })

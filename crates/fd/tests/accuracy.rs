@@ -289,11 +289,17 @@ fn stencils_are_the_steps_estimate_takes() {
             asked.borrow_mut().push(d);
             ((0.3 + d).sin(), false)
         };
-        let h = method.default_step(0.3, f64::EPSILON);
-        method.estimate(&f, 0.3f64.sin(), h, 1e-16, |h| h as f32 as f64);
-        let stencil = method.stencil(h, |h| h as f32 as f64);
-        for d in asked.borrow().iter() {
-            assert!(stencil.contains(d), "{method}: {d} not in the stencil");
+        for reach in [0, 1, method.reach(f32::EPSILON as f64)] {
+            let h = method.default_step(0.3, f64::EPSILON);
+            asked.borrow_mut().clear();
+            method.estimate_with(&f, 0.3f64.sin(), h, 1e-16, |h| h as f32 as f64, reach);
+            let stencil = method.stencil(h, reach, |h| h as f32 as f64);
+            for d in asked.borrow().iter() {
+                assert!(
+                    stencil.contains(d),
+                    "{method} reach {reach}: {d} not in the stencil"
+                );
+            }
         }
     }
 }

@@ -58,6 +58,10 @@ pub struct Hello {
     /// `"f64"` or `"f32"`: the arithmetic it computes in.
     pub dtype: String,
     pub tensors: Vec<TensorSpec>,
+    /// The shape of one sample's input and of its target, if the program says (optional hello
+    /// keys `x` and `y`): what a black box without a description needs to draw data for it.
+    pub x: Option<Vec<usize>>,
+    pub y: Option<Vec<usize>>,
 }
 
 /// One change of a perturbation: add `delta` to entry `index` (flat, C order) of tensor `tensor`.
@@ -243,6 +247,27 @@ impl Program {
             )));
         }
         self.declared = tensors.iter().map(|t| t.len() as u64).sum();
+        let sample = |key: &str| -> Result<Option<Vec<usize>>, ProbeError> {
+            let Some(v) = h.get(key) else {
+                return Ok(None);
+            };
+            let shape: Option<Vec<usize>> =
+                v.get("shape").and_then(Value::as_array).and_then(|s| {
+                    s.iter()
+                        .map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok()))
+                        .filter(|d| d.is_none_or(|d| (1..=1 << 20).contains(&d)))
+                        .collect()
+                });
+            match shape {
+                Some(s) if !s.is_empty() => Ok(Some(s)),
+                _ => Err(malformed(
+                    "hello",
+                    format!(
+                        "`{key}` must be {{\"shape\": [sizes ≥ 1]}}, the shape of one sample, not {v}"
+                    ),
+                )),
+            }
+        };
         Ok(Hello {
             name: h
                 .get("name")
@@ -251,6 +276,8 @@ impl Program {
                 .to_string(),
             dtype,
             tensors,
+            x: sample("x")?,
+            y: sample("y")?,
         })
     }
 

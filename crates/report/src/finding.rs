@@ -42,21 +42,32 @@ pub fn tally(findings: &[Finding]) -> String {
         .join(", ")
 }
 
-/// The outcome of a whole run.
+/// The outcome of a whole run (or of one tensor of it).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Verdict {
     Pass,
     Fail,
+    /// Nothing was found wrong, but too little was settled to say `pass` (exit 1, as a failure:
+    /// a check that cannot vouch for a gradient must not let it through).
+    Inconclusive,
 }
 
 impl Verdict {
     /// `fail` when any finding is an error.
     pub fn of(findings: &[Finding]) -> Verdict {
+        Verdict::of_check(findings, true)
+    }
+
+    /// `fail` when any finding is an error, else `inconclusive` unless the check was conclusive
+    /// (the rule of what is conclusive belongs to the check: `plumb_fd::Settlement`).
+    pub fn of_check(findings: &[Finding], conclusive: bool) -> Verdict {
         if findings.iter().any(|f| f.severity == Severity::Error) {
             Verdict::Fail
-        } else {
+        } else if conclusive {
             Verdict::Pass
+        } else {
+            Verdict::Inconclusive
         }
     }
 
@@ -64,6 +75,7 @@ impl Verdict {
         match self {
             Verdict::Pass => "pass",
             Verdict::Fail => "fail",
+            Verdict::Inconclusive => "inconclusive",
         }
     }
 }

@@ -8,7 +8,7 @@ use crate::{Block, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 const STYLE: &str = "body{font:15px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;max-width:64rem;margin:2rem auto;padding:0 1rem;color:#1b1b1b}\
 h1{font-size:1.5rem;margin-bottom:.2rem}h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px solid #ddd;padding-bottom:.2rem}\
 .verdict{font-size:1.25rem;font-weight:600;padding:.6rem 1rem;border-radius:.4rem;margin:1rem 0}\
-.pass{background:#e6f4ea;color:#0b6b2f}.fail{background:#fde8e8;color:#a11}\
+.pass{background:#e6f4ea;color:#0b6b2f}.fail{background:#fde8e8;color:#a11}.inconclusive{background:#fff6e0;color:#8a5a00}\
 table{border-collapse:collapse;margin:.6rem 0;font-size:.9rem}th,td{padding:.25rem .6rem;border-bottom:1px solid #e4e4e4;text-align:left;vertical-align:top}\
 th{background:#f5f5f5}td.num{text-align:right;font-variant-numeric:tabular-nums}\
 .good{color:#0b6b2f}.bad{color:#b00}.warn{color:#8a5a00}.dim{color:#777}\
@@ -82,11 +82,16 @@ pub fn render_html(doc: &Document, out: &mut impl Write) -> io::Result<()> {
             )?,
         }
     }
-    if let Some((Verdict::Fail, _)) = verdict {
-        writeln!(
+    match verdict {
+        Some((Verdict::Fail, _)) => writeln!(
             out,
             "<p class=\"dim\">Exit code 1: a finding of severity error.</p>"
-        )?;
+        )?,
+        Some((Verdict::Inconclusive, _)) => writeln!(
+            out,
+            "<p class=\"dim\">Exit code 1: too little was settled to pass (inconclusive).</p>"
+        )?,
+        _ => {}
     }
     // A page may be attached to a release and read without the command that made it: it always
     // says what a pass does not mean.

@@ -102,10 +102,10 @@ pub fn render_table(doc: &Document, out: &mut impl Write, color: bool) -> io::Re
                 }
             }
             Block::Verdict(v, summary) => {
-                let tone = if *v == Verdict::Pass {
-                    Tone::Good
-                } else {
-                    Tone::Bad
+                let tone = match v {
+                    Verdict::Pass => Tone::Good,
+                    Verdict::Fail => Tone::Bad,
+                    Verdict::Inconclusive => Tone::Warn,
                 };
                 let word = format!("verdict: {}", v.name().to_uppercase());
                 writeln!(out, "{} — {summary}", paint.tone(&paint.bold(&word), tone))?;
