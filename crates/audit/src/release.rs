@@ -361,13 +361,13 @@ fn init_findings(li: &LayerInit, activation: &str, t: &Thresholds, out: &mut Vec
                     "init-mismatch",
                     Severity::Warning,
                     format!(
-                        "its weights are unlikely to be drawn from {} (Kolmogorov–Smirnov D = {:.4}, p = {:.2e}, {:.2e} after Holm's correction across the layers < {}): their standard deviation {:.4} is {}× that scheme's; closest is {} ({}×)",
+                        "its weights are unlikely to be drawn from {} (Kolmogorov–Smirnov D = {:.4}, p = {:.2e}, {:.2e} after Holm's correction across the layers < {}): their standard deviation {} is {}× that scheme's; closest is {} ({}×)",
                         test.scheme,
                         test.statistic,
                         test.p_value,
                         test.adjusted_p_value,
                         t.ks_alpha,
-                        li.std,
+                        times(li.std),
                         times(scheme_ratio(li, test.scheme)),
                         li.closest,
                         times(li.ratio)
@@ -465,5 +465,41 @@ mod tests {
         assert!(codes(&relu_layer(vec![0.5; 10], vec![])).is_empty());
         // Just under the mean threshold: nothing either.
         assert!(codes(&relu_layer(vec![0.84; 10], vec![])).is_empty());
+    }
+
+    // A byte-swapped layer's spread is near 1e285: the KS finding writes it in exponent form, as
+    // the scale findings do, not as a number of some 290 digits.
+    #[test]
+    fn init_mismatch_of_a_huge_spread_prints_it_in_exponent_form() {
+        let li = LayerInit {
+            layer: 1,
+            tensor: "W1".into(),
+            fan_in: 4,
+            fan_out: 3,
+            std: 1.25e285,
+            closest: "glorot-uniform",
+            ratio: 1e285,
+            reference: "glorot-normal",
+            reference_ratio: 1e285,
+            test: Some(crate::init::KsTest {
+                scheme: "glorot-uniform",
+                statistic: 0.5,
+                p_value: 1e-30,
+                adjusted_p_value: 1e-30,
+                passed: false,
+            }),
+        };
+        let mut out = Vec::new();
+        init_findings(&li, "tanh", &Thresholds::default(), &mut out);
+        let ks = out
+            .iter()
+            .find(|f| f.code == "init-mismatch")
+            .expect("found");
+        assert!(
+            ks.message.contains("deviation 1.250e285 is"),
+            "{}",
+            ks.message
+        );
+        assert!(ks.message.len() < 400, "{}", ks.message);
     }
 }

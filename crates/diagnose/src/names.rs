@@ -22,6 +22,10 @@ pub const HABITS: [(&str, &str); 5] = [
     ("", "_grad"),
 ];
 
+/// Appended to the name of a file tensor left unbound whose name is a parameter's that another
+/// tensor was mapped to.
+pub const UNBOUND: &str = " (not matched)";
+
 /// How a file tensor was matched to its parameter.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Matched {
@@ -180,6 +184,20 @@ pub fn match_names(
             });
         }
     }
+    // A parameter found under its own name whose habit name is in the file too (weights and
+    // gradients saved together): which one is the gradient is the user's to say.
+    for b in out.iter().filter(|b| b.matched == Matched::Exact) {
+        if let Some(&f) = file
+            .iter()
+            .find(|f| !taken_file(&out, f) && habit(f, &b.parameter).is_some())
+        {
+            return Err(NameError::TwoCandidates {
+                parameter: b.parameter.clone(),
+                first: f.to_string(),
+                second: b.file.clone(),
+            });
+        }
+    }
     let mut by_habit: Vec<Binding> = Vec::new();
     for &p in parameters {
         if taken_param(&out, p) {
@@ -222,7 +240,9 @@ pub fn match_names(
 }
 
 /// The outside gradient under the parameters' names: each bound tensor renamed to its parameter,
-/// a bias stored as 1 × n or n × 1 read as its n entries; unbound tensors unchanged.
+/// a bias stored as 1 × n or n × 1 read as its n entries; unbound tensors unchanged, except that one
+/// named like a parameter another tensor was mapped to gets [`UNBOUND`] appended, so that it cannot
+/// be judged in the mapped tensor's place.
 pub fn bind_gradient(
     expected: &[Expected],
     outside: Vec<Named>,
@@ -234,7 +254,11 @@ pub fn bind_gradient(
     let renamed = outside
         .into_iter()
         .map(|mut t| {
-            if let Some(b) = bindings.iter().find(|b| b.file == t.name) {
+            if !bindings.iter().any(|b| b.file == t.name)
+                && bindings.iter().any(|b| b.parameter == t.name)
+            {
+                t.name.push_str(UNBOUND);
+            } else if let Some(b) = bindings.iter().find(|b| b.file == t.name) {
                 t.name = b.parameter.clone();
                 let e = expected
                     .iter()
@@ -335,6 +359,45 @@ mod tests {
         // One file tensor for two parameters: `dW_grad` is `d` + `W_grad` and `dW` + `_grad`.
         let e = match_names(&["W_grad", "dW"], &["dW_grad"], &[]).unwrap_err();
         assert!(matches!(e, NameError::TwoParameters { .. }), "{e}");
+    }
+
+    #[test]
+    fn weights_and_gradients_in_one_file_are_ambiguous() {
+        // `W1` is the parameter's own name and `dW1` its habit name: either could be the gradient.
+        let e = match_names(&["W1", "b1"], &["W1", "dW1", "db1"], &[]).unwrap_err();
+        assert_eq!(
+            e,
+            NameError::TwoCandidates {
+                parameter: "W1".into(),
+                first: "dW1".into(),
+                second: "W1".into(),
+            }
+        );
+        assert!(e.to_string().contains("--map dW1=W1"), "{e}");
+        // A habit name that is another parameter's own name is not ambiguous.
+        let b = match_names(&["W", "dW"], &["W", "dW"], &[]).unwrap();
+        assert_eq!(names(&b), [("W", "W"), ("dW", "dW")]);
+    }
+
+    #[test]
+    fn a_mapped_parameter_is_not_shadowed_by_a_tensor_of_its_name() {
+        let expected = vec![Expected {
+            name: "W1".into(),
+            layer: 0,
+            shape: vec![1, 2],
+            bias: false,
+        }];
+        // The weights first in the file, the gradient second, mapped.
+        let outside = vec![
+            Named::new("W1", vec![1, 2], vec![5.0, 6.0]),
+            Named::new("dW1", vec![1, 2], vec![0.1, 0.2]),
+        ];
+        let map = parse_map("dW1=W1").unwrap();
+        let (t, _) = bind_gradient(&expected, outside, &map).unwrap();
+        let judged: Vec<&Named> = t.iter().filter(|t| t.name == "W1").collect();
+        assert_eq!(judged.len(), 1);
+        assert_eq!(judged[0].data, [0.1, 0.2]);
+        assert_eq!(t[0].name, format!("W1{UNBOUND}"));
     }
 
     #[test]

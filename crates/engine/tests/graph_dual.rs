@@ -455,3 +455,73 @@ fn complex_step_through_the_graph_agrees_with_the_backward_pass() {
         }
     }
 }
+
+/// The borders named one by one (the random tests reach them only by chance): "same" padding with
+/// even kernels under dilation (the odd extra zero at the end), a stride larger than the kernel
+/// (input positions no window reads), explicit padding wider than the kernel's reach, and pools
+/// whose ragged tail is dropped or whose stride skips positions.
+#[test]
+fn conv_and_pool_borders() {
+    let image = Shape::Image {
+        channels: 2,
+        height: 7,
+        width: 8,
+    };
+    let conv = |kernel: [usize; 2], stride, dilation, padding| ConvSettings {
+        stride,
+        dilation,
+        padding,
+        ..ConvSettings::conv2d(2, kernel)
+    };
+    let convs = [
+        (
+            "same, even kernel, dilated",
+            conv([2, 4], [1, 1], [2, 3], Padding::Same),
+        ),
+        (
+            "same, even kernel",
+            conv([4, 2], [1, 1], [1, 1], Padding::Same),
+        ),
+        (
+            "stride > kernel",
+            conv([2, 1], [3, 4], [1, 1], Padding::Explicit([1, 2])),
+        ),
+        (
+            "padding ≥ kernel",
+            conv([2, 2], [2, 1], [1, 2], Padding::Explicit([3, 2])),
+        ),
+    ];
+    for (seed, (what, s)) in convs.into_iter().enumerate() {
+        for act in [Activation::Tanh, Activation::Softplus] {
+            let mut b = GraphBuilder::new(image, LossConfig::squared_error());
+            b.push(None, act, |sh| Conv::new(&s, sh)).unwrap();
+            finish_and_check(b, Activation::Identity, seed as u64, what);
+        }
+    }
+    let pools = [
+        ("ragged tail", [2, 3], [2, 3]),
+        ("stride > size", [1, 2], [3, 3]),
+        ("overlapping", [3, 3], [2, 1]),
+    ];
+    for (seed, (what, size, stride)) in pools.into_iter().enumerate() {
+        for op in [PoolKind::Max, PoolKind::Avg] {
+            for (dims, input) in [
+                (2, image),
+                (
+                    1,
+                    Shape::Signal {
+                        channels: 2,
+                        length: 11,
+                    },
+                ),
+            ] {
+                let mut b = GraphBuilder::new(input, LossConfig::cross_entropy());
+                b.push(None, Activation::Identity, |sh| {
+                    Pool::new(op, dims, size, stride, sh)
+                })
+                .unwrap();
+                finish_and_check(b, Activation::Softmax, 10 + seed as u64, what);
+            }
+        }
+    }
+}
