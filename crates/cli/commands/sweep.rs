@@ -160,7 +160,7 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
             let worst = quick
                 .coords
                 .iter()
-                .max_by(|a, b| a.rel_error.total_cmp(&b.rel_error))
+                .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
                 .map(|c| c.coord)
                 .expect("a network has parameters");
             let mut out = vec![(worst, "worst")];

@@ -23,6 +23,7 @@ mod evaluate;
 mod external;
 mod gross;
 mod method;
+mod order;
 mod summary;
 mod sweep;
 
@@ -38,5 +39,6 @@ pub use external::{
 };
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate};
+pub use order::{worse_error, worst_first};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};
