@@ -21,6 +21,15 @@ pub fn read_input(path: &Path, limit: u64) -> io::Result<Vec<u8>> {
     Ok(bytes)
 }
 
+/// A regular file of at most `limit` bytes, opened for streaming (the same checks as
+/// [`read_input`]; the reader must still stop at `limit`, as the file may grow).
+pub(crate) fn open_input(path: &Path, limit: u64) -> io::Result<File> {
+    regular(&std::fs::metadata(path)?, limit)?;
+    let file = File::open(path)?;
+    regular(&file.metadata()?, limit)?;
+    Ok(file)
+}
+
 /// Refuses what is not a regular file of at most `limit` bytes; returns its length.
 pub(crate) fn regular(meta: &std::fs::Metadata, limit: u64) -> io::Result<u64> {
     if !meta.is_file() {

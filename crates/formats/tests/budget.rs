@@ -144,3 +144,64 @@ fn an_npz_member_inflates_no_further_than_its_npy_header_declares() {
     assert!(peak < 2 << 20, "peak {peak} bytes");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// CSV is streamed: an error on line 3 of a 32 MiB file is found reading a few kilobytes, not
+/// the whole file.
+#[test]
+fn a_csv_error_near_the_top_is_found_without_reading_the_file() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("csv-stream");
+    let path = dir.join("big.csv");
+    let mut text = String::from("a,b,y\n1,2,3\n1,oops,3\n");
+    let row = "0.25,0.5,1\n";
+    text.reserve(32 << 20);
+    while text.len() < 32 << 20 {
+        text.push_str(row);
+    }
+    std::fs::write(&path, &text).unwrap();
+    drop(text);
+    let (result, peak) = peak_during(|| read_data(&path, 2, 1));
+    let message = result.unwrap_err().to_string();
+    assert!(
+        message.contains("big.csv") && message.contains("line 3") && message.contains("oops"),
+        "{message}"
+    );
+    assert!(peak < 1 << 20, "peak {peak} bytes");
+    // Valid rows cost what their numbers hold (8 bytes a value), not the text held twice.
+    let ok = dir.join("ok.csv");
+    let mut text = String::from("a,b,y\n");
+    for _ in 0..100_000 {
+        text.push_str(row);
+    }
+    std::fs::write(&ok, &text).unwrap();
+    let (batch, peak) = peak_during(|| read_data(&ok, 2, 1).unwrap());
+    assert_eq!(batch.x.nrows(), 100_000);
+    // x and y: 2.4 MB of values; their vectors may double while growing.
+    assert!(peak < 3 * 2_400_000 + (1 << 20), "peak {peak} bytes");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A row holding only `""` is a row of one field, an error naming its line (it was silently
+/// dropped: 8 samples became 7); a quote never closed at the end of the file is an error.
+#[test]
+fn csv_rows_of_one_empty_field_and_unclosed_quotes_are_errors() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("csv-edges");
+    let quoted_empty = dir.join("empty-field.csv");
+    std::fs::write(&quoted_empty, "a,b,y\n1,2,3\n\"\"\n4,5,6\n").unwrap();
+    let message = read_data(&quoted_empty, 2, 1).unwrap_err().to_string();
+    assert!(message.contains("line 3"), "{message}");
+    let open = dir.join("open-quote.csv");
+    std::fs::write(&open, "a,b,y\n1,2,3\n4,5,\"6\n").unwrap();
+    let message = read_data(&open, 2, 1).unwrap_err().to_string();
+    assert!(
+        message.contains("open-quote.csv") && message.contains("never closed"),
+        "{message}"
+    );
+    // Quotes that close, and a doubled quote inside a header name, are fine; an empty line is
+    // not a row.
+    let fine = dir.join("fine.csv");
+    std::fs::write(&fine, "\"a\",\"b \"\"x\"\"\",y\n\"1\",2,3\n\n4,5,6\n").unwrap();
+    assert_eq!(read_data(&fine, 2, 1).unwrap().x.nrows(), 2);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
