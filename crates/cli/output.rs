@@ -225,7 +225,7 @@ fn read_baseline(path: &Path) -> Result<Baseline> {
         // A directory, a device or pipe, a symbolic-link loop, a file too large: said as it is.
         other => other.with_context(|| format!("{}: cannot read the baseline", path.display()))?,
     };
-    let base: Baseline = serde_json::from_slice(&bytes).with_context(|| {
+    let base = Baseline::from_json(&bytes).with_context(|| {
         format!(
             "{}: not a plumb baseline (record one with --save-baseline)",
             path.display()

@@ -20,6 +20,8 @@
 mod atomic;
 mod data;
 mod description;
+#[doc(hidden)]
+pub mod fuzz;
 mod input;
 mod layout;
 mod npy;

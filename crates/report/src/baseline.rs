@@ -82,6 +82,11 @@ impl Baseline {
         }
     }
 
+    /// Reads a baseline file's bytes (the format version is the caller's to check).
+    pub fn from_json(bytes: &[u8]) -> Result<Baseline, serde_json::Error> {
+        serde_json::from_slice(bytes)
+    }
+
     /// Why this baseline cannot judge the run, if it cannot: a run made on a network needs the
     /// network's shapes in the baseline, or a change of shape would pass unseen (an edited or
     /// damaged baseline whose `network` is null or missing).
