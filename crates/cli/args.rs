@@ -426,6 +426,15 @@ impl Command {
         }
     }
 
+    /// The files the command itself writes (besides the report files of the common flags).
+    pub fn outputs(&self) -> Vec<&Path> {
+        match self {
+            Command::Grad(a) => a.output.iter().map(PathBuf::as_path).collect(),
+            Command::Sweep(a) => a.plot.iter().map(PathBuf::as_path).collect(),
+            _ => Vec::new(),
+        }
+    }
+
     /// The files the run reads, which no output of it may replace (not even with --force).
     pub fn inputs(&self) -> Vec<&Path> {
         match self {

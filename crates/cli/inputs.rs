@@ -320,14 +320,64 @@ pub fn check_output(path: &Path, force: bool, inputs: &[&Path]) -> Result<()> {
             i.display()
         );
     }
-    if path.exists() && !force {
-        bail!(
-            "{}: the file exists; pass --force to replace it, or choose another name",
+    // What is at the path itself: a dangling symbolic link exists as much as a file does.
+    if let Ok(meta) = std::fs::symlink_metadata(path) {
+        let kind = meta.file_type();
+        if kind.is_dir() || path.is_dir() {
+            bail!("{}: is a directory; give a file name", path.display());
+        }
+        if !kind.is_file() && !kind.is_symlink() {
+            bail!(
+                "{}: not a regular file (a device, a FIFO or a socket); plumb replaces only \
+                 regular files, even with --force: give another name",
+                path.display()
+            );
+        }
+        if !force {
+            bail!(
+                "{}: the file exists{}; pass --force to replace it, or choose another name",
+                path.display(),
+                if path.exists() {
+                    ""
+                } else {
+                    " (a symbolic link to nothing)"
+                }
+            );
+        }
+    }
+    for left in plumb_formats::leftovers(path) {
+        eprintln!(
+            "plumb: warning: {} is left from a plumb run that was killed while writing {}; \
+             remove it",
+            left.display(),
             path.display()
         );
     }
-    if path.is_dir() {
-        bail!("{}: is a directory; give a file name", path.display());
+    Ok(())
+}
+
+/// Refuses one path given for two outputs (`-o X --junit X`): the second would replace the
+/// first. Paths are compared as the files they would name (directory resolved, name kept).
+pub fn distinct_outputs(outputs: &[&Path]) -> Result<()> {
+    let key = |p: &Path| {
+        let dir = match p.parent() {
+            Some(d) if !d.as_os_str().is_empty() => d,
+            _ => Path::new("."),
+        };
+        (
+            dir.canonicalize().unwrap_or_else(|_| dir.to_path_buf()),
+            p.file_name().map(|n| n.to_os_string()),
+        )
+    };
+    for (i, a) in outputs.iter().enumerate() {
+        if let Some(b) = outputs[..i].iter().find(|b| key(b) == key(a)) {
+            bail!(
+                "{}: given for two outputs ({} and {}); give each output its own file",
+                a.display(),
+                b.display(),
+                a.display()
+            );
+        }
     }
     Ok(())
 }

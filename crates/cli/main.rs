@@ -19,7 +19,11 @@ use output::Settings;
 fn main() -> ExitCode {
     let cli = Cli::parse();
     let settings = Settings::from_args(&cli.common);
-    if let Err(e) = settings.check_outputs(cli.command.report_name(), &cli.command.inputs()) {
+    if let Err(e) = settings.check_outputs(
+        cli.command.report_name(),
+        &cli.command.inputs(),
+        &cli.command.outputs(),
+    ) {
         eprintln!("plumb: error: {}", message(&e));
         return ExitCode::from(2);
     }

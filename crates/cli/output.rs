@@ -6,7 +6,9 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use plumb_formats::{Description, expected_tensors, write_atomically};
+use plumb_formats::{
+    Description, Existing, MAX_REPORT_BYTES, expected_tensors, read_input, write_file,
+};
 use plumb_report::{
     BASELINE_VERSION, Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Verdict,
     render_html, render_json, render_junit, render_markdown, render_table, tally, use_color,
@@ -66,11 +68,21 @@ impl Settings {
         }
     }
 
-    /// Refuses, before any work, output files that exist (without --force), that are directories,
-    /// or that are an input of the run (the baseline included), and a baseline that cannot be read.
-    pub fn check_outputs(&self, command: &str, inputs: &[&Path]) -> Result<()> {
+    /// Refuses, before any work, output files that exist (without --force), that are not regular
+    /// files, that are an input of the run (the baseline included), or that two outputs share
+    /// (`outputs` are the command's own), and a baseline that cannot be read. The write itself
+    /// checks again: a file created meanwhile is not replaced either.
+    pub fn check_outputs(&self, command: &str, inputs: &[&Path], outputs: &[&Path]) -> Result<()> {
         let mut inputs = inputs.to_vec();
         inputs.extend(self.baseline.as_deref());
+        let mut all: Vec<&Path> = outputs.to_vec();
+        all.extend(
+            [&self.junit, &self.html, &self.save_baseline]
+                .into_iter()
+                .flatten()
+                .map(PathBuf::as_path),
+        );
+        crate::inputs::distinct_outputs(&all)?;
         for p in [&self.junit, &self.html, &self.save_baseline]
             .into_iter()
             .flatten()
@@ -91,6 +103,15 @@ impl Settings {
         Ok(())
     }
 
+    /// What an output may do to a file already at its path: replace a regular one with --force.
+    pub fn existing(&self) -> Existing {
+        if self.force {
+            Existing::Replace
+        } else {
+            Existing::Keep
+        }
+    }
+
     /// A note for the user on stderr (not part of the report), unless --quiet.
     pub fn note(&self, text: &str) {
         if !self.quiet {
@@ -109,6 +130,9 @@ impl Settings {
         if let Some(path) = &self.baseline {
             // check_outputs has refused an unreadable baseline or another command's.
             let base = read_baseline(path)?;
+            if let Some(why) = base.unfit_for(&doc) {
+                bail!("{}: {why}", path.display());
+            }
             let changes = base.compare(&doc, &findings);
             every.extend(changes.iter().cloned());
             // Changes judged like findings: those at the run's --fail-on level or worse fail it.
@@ -164,13 +188,13 @@ impl Settings {
         if let Some(p) = &self.junit {
             let mut x = Vec::new();
             render_junit(&doc, &mut x)?;
-            write_atomically(p, &x)
+            write_file(p, &x, self.existing())
                 .with_context(|| format!("{}: cannot write the JUnit report", p.display()))?;
         }
         if let Some(p) = &self.html {
             let mut h = Vec::new();
             render_html(&doc, &mut h)?;
-            write_atomically(p, &h)
+            write_file(p, &h, self.existing())
                 .with_context(|| format!("{}: cannot write the HTML report", p.display()))?;
             self.note(&format!("wrote the HTML report to {}", p.display()));
         }
@@ -194,7 +218,7 @@ impl Settings {
             }
             let base = Baseline::record(&doc, &findings);
             let text = serde_json::to_string_pretty(&base).expect("a baseline serialises");
-            write_atomically(p, text.as_bytes())
+            write_file(p, text.as_bytes(), self.existing())
                 .with_context(|| format!("{}: cannot write the baseline", p.display()))?;
             self.note(&format!("recorded the baseline in {}", p.display()));
         }
@@ -204,15 +228,15 @@ impl Settings {
 
 /// Reads a baseline file, refusing one of another format version.
 fn read_baseline(path: &Path) -> Result<Baseline> {
-    if !path.is_file() {
-        bail!(
+    let bytes = match read_input(path, MAX_REPORT_BYTES) {
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => bail!(
             "{}: no such baseline file; record one with --save-baseline",
             path.display()
-        );
-    }
-    let text = std::fs::read_to_string(path)
-        .with_context(|| format!("{}: cannot read the baseline", path.display()))?;
-    let base: Baseline = serde_json::from_str(&text).with_context(|| {
+        ),
+        // A directory, a device or pipe, a symbolic-link loop, a file too large: said as it is.
+        other => other.with_context(|| format!("{}: cannot read the baseline", path.display()))?,
+    };
+    let base = Baseline::from_json(&bytes).with_context(|| {
         format!(
             "{}: not a plumb baseline (record one with --save-baseline)",
             path.display()

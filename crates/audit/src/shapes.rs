@@ -5,7 +5,7 @@
 //! or extra, the bias has the wrong length, the layers are stored in another order, or the tensors
 //! merely have other names (then it says which name to write in the description).
 
-use std::collections::BTreeSet;
+use std::collections::{BTreeSet, HashMap, HashSet};
 
 use plumb_formats::{
     Description, ExpectedTensor, Layout, Role, Tensor, TensorFile, bind, expected_tensors,
@@ -92,8 +92,9 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
     match file {
         None => statuses = expected.iter().map(|_| (None, Status::Unchecked)).collect(),
         Some(file) => {
+            let index = by_name(file);
             for e in &expected {
-                let t = file.get(&e.name);
+                let t = index.get(e.name.as_str()).copied();
                 let status = match t {
                     None => Status::Missing,
                     Some(t) if !shape_fits(e.role, &e.shape, &t.shape) => Status::WrongShape,
@@ -110,10 +111,11 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
                 if let Some((layout, ambiguous)) = other_layout(desc, file) {
                     detected_layout = Some(layout);
                     let names = expected_tensors(desc, layout);
+                    let names: HashSet<&str> = names.iter().map(|n| n.name.as_str()).collect();
                     used.extend(
                         file.tensors
                             .iter()
-                            .filter(|t| names.iter().any(|n| n.name == t.name))
+                            .filter(|t| names.contains(t.name.as_str()))
                             .map(|t| t.name.as_str()),
                     );
                     let mut msg = format!(
@@ -201,11 +203,13 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
         })
         .unwrap_or_default();
     if detected_layout.is_none() {
+        let stand_ins: HashSet<String> = findings
+            .iter()
+            .filter_map(|f| f.figures.get("source").and_then(|v| v.as_str()))
+            .map(str::to_string)
+            .collect();
         for s in &unexpected {
-            if findings
-                .iter()
-                .any(|f| f.figures.get("source").and_then(|v| v.as_str()) == Some(&s.name))
-            {
+            if stand_ins.contains(&s.name) {
                 continue; // already named as the likely stand-in for a missing tensor
             }
             findings.push(
@@ -242,13 +246,25 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
     }
 }
 
+/// The file's tensors by name (the first of a name, as `TensorFile::get` finds it): one lookup
+/// per expected tensor instead of a scan of the file, which may hold 100,000 tensors.
+fn by_name(file: &TensorFile) -> HashMap<&str, &Tensor> {
+    file.tensors
+        .iter()
+        .rev()
+        .map(|t| (t.name.as_str(), t))
+        .collect()
+}
+
 /// The layout, other than the declared one, under which every tensor is present with a fitting
 /// shape; with the second layout that fits as well when split and split-transposed cannot be told
 /// apart (all layers square).
 fn other_layout(desc: &Description, file: &TensorFile) -> Option<(Layout, Option<Layout>)> {
+    let index = by_name(file);
     let fits = |layout: Layout| {
         expected_tensors(desc, layout).iter().all(|e| {
-            file.get(&e.name)
+            index
+                .get(e.name.as_str())
                 .is_some_and(|t| shape_fits(e.role, &e.shape, &t.shape))
         })
     };
@@ -273,6 +289,15 @@ fn diagnose_tensors<'f>(
     used: &mut BTreeSet<&'f str>,
 ) {
     let specs = desc.network.layers();
+    let expected_names: HashSet<&str> = expected.iter().map(|x| x.name.as_str()).collect();
+    // The first unclaimed tensor of each shape, so finding a stand-in is a lookup, not a scan
+    // of the file for every missing tensor.
+    let mut strays: HashMap<&[usize], usize> = HashMap::new();
+    for (i, c) in file.tensors.iter().enumerate() {
+        if !used.contains(c.name.as_str()) && !expected_names.contains(c.name.as_str()) {
+            strays.entry(c.shape.as_slice()).or_insert(i);
+        }
+    }
     for (e, (t, status)) in expected.iter().zip(statuses) {
         let layer = e.layer + 1;
         let want = shape_text(&e.shape);
@@ -298,11 +323,17 @@ fn diagnose_tensors<'f>(
             Status::Missing => {
                 // A tensor under another name with exactly this shape that nothing else claims is
                 // likely the one meant: say which name to write.
-                let stand_in = file.tensors.iter().find(|c| {
-                    !used.contains(c.name.as_str())
-                        && !expected.iter().any(|x| x.name == c.name)
-                        && shape_fits(e.role, &e.shape, &c.shape)
-                });
+                // What shape_fits accepts: the same shape, or for a bias of n also (n, 1), (1, n).
+                let mut shapes = vec![e.shape.clone()];
+                if e.role == Role::Bias && e.shape.len() == 1 {
+                    shapes.extend([vec![e.shape[0], 1], vec![1, e.shape[0]]]);
+                }
+                let stand_in = shapes
+                    .iter()
+                    .filter_map(|s| strays.get(s.as_slice()).copied())
+                    .min()
+                    .map(|i| &file.tensors[i]);
+                debug_assert!(stand_in.is_none_or(|c| shape_fits(e.role, &e.shape, &c.shape)));
                 let key = if e.role == Role::Bias {
                     "bias"
                 } else {

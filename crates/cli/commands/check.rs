@@ -654,9 +654,7 @@ pub fn build(
     let mut order: Vec<usize> = (0..result.coords.len()).collect();
     order.sort_by(|&i, &j| {
         let (a, b) = (&result.coords[i], &result.coords[j]);
-        (b.status, b.rel_error)
-            .partial_cmp(&(a.status, a.rel_error))
-            .unwrap_or(std::cmp::Ordering::Equal)
+        plumb_fd::worst_first((a.status, a.rel_error), (b.status, b.rel_error))
     });
     let worst = order
         .iter()

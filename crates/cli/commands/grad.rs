@@ -3,7 +3,7 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
-use plumb_formats::{DType, FileFormat, Tensor, disassemble, write_tensors};
+use plumb_formats::{DType, FileFormat, Tensor, disassemble, write_tensor_file};
 use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 use serde::Serialize;
 
@@ -170,7 +170,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
             Some(DTypeArg::F64) => DType::F64,
             None => loaded.weights_source.dtype(),
         };
-        write_tensors(path, format, &computed.tensors, dtype)?;
+        write_tensor_file(path, format, &computed.tensors, dtype, settings.existing())?;
         computed.report.output = Some(path.clone());
         settings.note(&format!(
             "wrote the gradient ({} tensors, {}) to {}",

@@ -8,7 +8,7 @@ use plumb_engine::{Coord, Network, Weights};
 use plumb_fd::{
     CheckResult, CoordCheck, Coverage, DirectionCheck, Method, Precision, Sample, Scope, Status,
 };
-use plumb_formats::Description;
+use plumb_formats::{Description, MAX_REPORT_BYTES, read_input};
 use plumb_report::Verdict;
 use serde_json::Value;
 
@@ -17,7 +17,7 @@ use crate::commands::check::{
     RunFacts, build, cases, document, insert_before_findings, strip_plot,
 };
 use crate::commands::locate::Tensors;
-use crate::output::{Settings, network_id};
+use crate::output::{SCHEMA_VERSION, Settings, network_id};
 
 /// The most shards a check can be split into (the bound `--shard` gives).
 const MAX_SHARDS: u64 = 10_000;
@@ -32,9 +32,9 @@ struct Shard<'a> {
 
 impl<'a> Shard<'a> {
     fn read(path: &'a Path) -> Result<Shard<'a>> {
-        let text = std::fs::read_to_string(path)
+        let bytes = read_input(path, MAX_REPORT_BYTES)
             .with_context(|| format!("{}: cannot read the shard", path.display()))?;
-        let v: Value = serde_json::from_str(&text)
+        let v: Value = serde_json::from_slice(&bytes)
             .with_context(|| format!("{}: not a JSON report", path.display()))?;
         check_shard(path, &v)?;
         let (k, n) = match (v["shard"][0].as_u64(), v["shard"][1].as_u64()) {
@@ -103,11 +103,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
             }
         }
     }
-    let mut seen: Vec<usize> = shards.iter().map(|s| s.k).collect();
-    seen.sort_unstable();
-    if seen != (1..=n).collect::<Vec<_>>() {
-        bail!("the shards given are {seen:?} of {n}: give each of 1 to {n} exactly once");
-    }
+    each_share_once(&shards, n)?;
     let path = first.v["description"].as_str().unwrap_or_default();
     let desc = Description::read(Path::new(path))?;
     let id = network_id(&desc);
@@ -121,36 +117,83 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
     }
     let tensors = Tensors::new(&desc);
     let net = &desc.network;
-    // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check): a
-    // whole of T items gives shard k ⌈(T − k + 1)/n⌉ of them. Put each back in its place, so the
-    // merged lists are in the unsharded run's order.
-    for key in ["coordinates", "directions"] {
-        let total: usize = shards.iter().map(|s| s.list(key).len()).sum();
-        for s in &shards {
+    // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check). The
+    // whole lists are known without the shards: the coordinates are the sample drawn from the seed,
+    // the directions K per part. So each item is checked against the one that belongs in its
+    // place: a dropped, repeated or invented item is refused, naming its shard.
+    let cov = &first.v["coverage"];
+    let sample = Sample::parse(cov["sample"].as_str().unwrap_or_default())
+        .map_err(|e| anyhow::anyhow!("{}: `coverage.sample`: {e}", first.path.display()))?;
+    let seed = first.v["seed"]
+        .as_u64()
+        .with_context(|| format!("{}: `seed` is not a whole number", first.path.display()))?;
+    let whole = plumb_fd::select(net, sample, seed)
+        .map_err(|e| anyhow::anyhow!("{}: `coverage.sample`: {e}", first.path.display()))?;
+    let per_part = cov["directions_per_part"].as_u64().with_context(|| {
+        format!(
+            "{}: `coverage.directions_per_part` is not a whole number",
+            first.path.display()
+        )
+    })? as usize;
+    let parts = 1 + 2 * net.layers().len();
+    let whole_directions = per_part.saturating_mul(parts);
+    let mut coords = Vec::new();
+    let mut directions = Vec::new();
+    for s in &shards {
+        for (key, total) in [
+            ("coordinates", whole.len()),
+            ("directions", whole_directions),
+        ] {
             let expected = (total + n - s.k) / n;
             if s.list(key).len() != expected {
                 bail!(
-                    "{}: {} {key} where shard {}/{n} of {total} must have {expected}: a shard \
-                     was cut short or edited",
+                    "{}: {} {key} where shard {}/{n} of the run's {total} must have {expected}: \
+                     this shard was cut short or edited",
                     s.path.display(),
                     s.list(key).len(),
                     s.k
                 );
             }
         }
-    }
-    let mut coords = Vec::new();
-    let mut directions = Vec::new();
-    for s in &shards {
         for (j, c) in s.list("coordinates").iter().enumerate() {
+            let at = s.k - 1 + j * n;
             let c = coord(c, net)
                 .with_context(|| format!("{}: coordinate {}", s.path.display(), j + 1))?;
-            coords.push((s.k - 1 + j * n, c));
+            if c.coord != whole[at] {
+                bail!(
+                    "{}: coordinate {} is {}, and the run's item {} is {}: the shard was edited",
+                    s.path.display(),
+                    j + 1,
+                    place(c.coord),
+                    at + 1,
+                    place(whole[at])
+                );
+            }
+            coords.push((at, c));
         }
         for (j, d) in s.list("directions").iter().enumerate() {
+            let at = s.k - 1 + j * n;
             let d = direction(d, net)
                 .with_context(|| format!("{}: direction {}", s.path.display(), j + 1))?;
-            directions.push((s.k - 1 + j * n, d));
+            let part = at / per_part.max(1);
+            let expected = match part {
+                0 => Scope::Global,
+                p => Scope::Part {
+                    layer: (p - 1) / 2,
+                    bias: (p - 1) % 2 == 1,
+                },
+            };
+            if d.scope != expected {
+                bail!(
+                    "{}: direction {} spans {}, and the run's item {} spans {}: the shard was edited",
+                    s.path.display(),
+                    j + 1,
+                    span(d.scope),
+                    at + 1,
+                    span(expected)
+                );
+            }
+            directions.push((at, d));
         }
     }
     coords.sort_by_key(|(i, _)| *i);
@@ -191,14 +234,12 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
     } else {
         Precision::F64
     };
-    let cov = &first.v["coverage"];
     let result = CheckResult {
         method,
         precision,
         loss: first.v["loss"].as_f64().unwrap_or(f64::NAN),
         coverage: Coverage {
-            sample: Sample::parse(cov["sample"].as_str().unwrap_or("all"))
-                .map_err(|e| anyhow::anyhow!("{}: {e}", at("coverage")))?,
+            sample,
             default_sample: cov["default_sample"].as_bool().unwrap_or(false),
             directions: cov["directions_per_part"].as_u64().unwrap_or(0) as usize,
             parameters: cov["parameters"].as_u64().unwrap_or(0) as usize,
@@ -216,7 +257,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
         weights: serde_json::from_value(first.v["weights"].clone())
             .with_context(|| at("weights"))?,
         data: serde_json::from_value(first.v["data"].clone()).with_context(|| at("data"))?,
-        seed: first.v["seed"].as_u64().unwrap_or(0),
+        seed,
         samples: first.v["samples"].as_u64().unwrap_or(0) as usize,
         step: first.v["step_rule"]
             .as_str()
@@ -259,6 +300,14 @@ fn check_shard(p: &Path, v: &Value) -> Result<()> {
     if v["command"] != "check" {
         bail!("{}: not a `plumb check` report", p.display());
     }
+    if v["schema_version"].as_u64() != Some(SCHEMA_VERSION.into()) {
+        bail!(
+            "{}: `schema_version` is {}, and this plumb reads {SCHEMA_VERSION}: run the check again \
+             with this plumb",
+            p.display(),
+            v["schema_version"]
+        );
+    }
     if !v["shard"].is_array() || !v["coordinates"].is_array() {
         bail!(
             "{}: not a shard: run the check with --shard K/N --format json",
@@ -275,9 +324,71 @@ fn status(s: &str) -> Result<Status> {
     }
 }
 
-fn num(v: &Value, key: &str) -> f64 {
-    // NaN and infinities are written as null.
-    v.get(key).and_then(Value::as_f64).unwrap_or(f64::NAN)
+/// A figure: a number, or null (NaN and infinities are written as null). Any other value, or
+/// none, is an edited report.
+fn num(v: &Value, key: &str) -> Result<f64> {
+    match v.get(key) {
+        Some(Value::Null) => Ok(f64::NAN),
+        Some(x) if x.is_number() => Ok(x.as_f64().unwrap_or(f64::NAN)),
+        Some(x) => bail!("`{key}` is {x}, not a number or null"),
+        None => bail!("`{key}` is missing"),
+    }
+}
+
+/// Each share of the split exactly once, naming the files that repeat a share or the shares
+/// missing.
+fn each_share_once(shards: &[Shard], n: usize) -> Result<()> {
+    let mut given: Vec<Option<&Path>> = vec![None; n];
+    for s in shards {
+        if let Some(other) = given[s.k - 1] {
+            bail!(
+                "{} and {} are both shard {}/{n}: give each of 1 to {n} exactly once",
+                other.display(),
+                s.path.display(),
+                s.k
+            );
+        }
+        given[s.k - 1] = Some(s.path);
+    }
+    let missing: Vec<String> = (1..=n)
+        .filter(|&k| given[k - 1].is_none())
+        .map(|k| format!("{k}/{n}"))
+        .collect();
+    if !missing.is_empty() {
+        let have: Vec<String> = shards
+            .iter()
+            .map(|s| format!("{} ({}/{n})", s.path.display(), s.k))
+            .collect();
+        bail!(
+            "shard{} {} missing; given: {}. Give each of 1 to {n} exactly once",
+            if missing.len() == 1 { " is" } else { "s are" },
+            list_some(&missing),
+            have.join(", ")
+        );
+    }
+    Ok(())
+}
+
+/// The first few items of a list, and how many more.
+fn list_some(items: &[String]) -> String {
+    const SHOWN: usize = 8;
+    let mut text = items[..items.len().min(SHOWN)].join(", ");
+    if items.len() > SHOWN {
+        text.push_str(&format!(" and {} more", items.len() - SHOWN));
+    }
+    text
+}
+
+fn place(c: Coord) -> String {
+    format!("layer {} (row {}, column {})", c.layer + 1, c.row, c.col)
+}
+
+fn span(s: Scope) -> String {
+    match s {
+        Scope::Global => "every parameter".into(),
+        Scope::Part { layer, bias: true } => format!("layer {}'s biases", layer + 1),
+        Scope::Part { layer, bias: false } => format!("layer {}'s other weights", layer + 1),
+    }
 }
 
 /// A 1-based layer of the network, as a 0-based index.
@@ -306,12 +417,12 @@ fn coord(c: &Value, net: &Network) -> Result<CoordCheck> {
     };
     Ok(CoordCheck {
         coord: Coord { layer, row, col },
-        analytic: num(c, "analytic"),
-        numeric: num(c, "numeric"),
-        abs_error: num(c, "abs_error"),
-        rel_error: num(c, "rel_error"),
-        bound: num(c, "bound"),
-        step: num(c, "step"),
+        analytic: num(c, "analytic")?,
+        numeric: num(c, "numeric")?,
+        abs_error: num(c, "abs_error")?,
+        rel_error: num(c, "rel_error")?,
+        bound: num(c, "bound")?,
+        step: num(c, "step")?,
         status: status(c["status"].as_str().unwrap_or_default())?,
         retried: c["retried"].as_bool().unwrap_or(false),
     })
@@ -331,11 +442,11 @@ fn direction(d: &Value, net: &Network) -> Result<DirectionCheck> {
     };
     Ok(DirectionCheck {
         scope,
-        analytic: num(d, "analytic"),
-        numeric: num(d, "numeric"),
-        abs_error: (num(d, "analytic") - num(d, "numeric")).abs(),
-        rel_error: num(d, "rel_error"),
-        bound: num(d, "bound"),
+        analytic: num(d, "analytic")?,
+        numeric: num(d, "numeric")?,
+        abs_error: (num(d, "analytic")? - num(d, "numeric")?).abs(),
+        rel_error: num(d, "rel_error")?,
+        bound: num(d, "bound")?,
         step: 0.0,
         status: status(d["status"].as_str().unwrap_or_default())?,
     })

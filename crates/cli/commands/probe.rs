@@ -674,11 +674,9 @@ fn self_check_report(
             .collect();
         let mut rel: Vec<f64> = coords.iter().map(|c| c.rel_error).collect();
         rel.sort_by(f64::total_cmp);
-        let worst = coords.iter().max_by(|a, b| {
-            (a.status, a.rel_error)
-                .partial_cmp(&(b.status, b.rel_error))
-                .unwrap_or(std::cmp::Ordering::Equal)
-        });
+        let worst = coords
+            .iter()
+            .min_by(|a, b| plumb_fd::worst_first((a.status, a.rel_error), (b.status, b.rel_error)));
         let mismatches = coords
             .iter()
             .filter(|c| c.status == Status::Mismatch)

@@ -5,7 +5,7 @@ use std::path::PathBuf;
 use anyhow::{Context, Result, bail};
 use plumb_engine::{Coord, Network, Rng};
 use plumb_fd::{CheckConfig, Method, Sample, SweepPlan, check, steps, sweep};
-use plumb_formats::write_atomically;
+use plumb_formats::write_file;
 use plumb_report::{
     Block, Case, Cell, Document, Finding, Severity, StepPanel, Table, Tone, Verdict, step_plot,
 };
@@ -160,7 +160,7 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
             let worst = quick
                 .coords
                 .iter()
-                .max_by(|a, b| a.rel_error.total_cmp(&b.rel_error))
+                .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
                 .map(|c| c.coord)
                 .expect("a network has parameters");
             let mut out = vec![(worst, "worst")];
@@ -237,7 +237,7 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
     let panels = step_panels(&out, &hs, eps);
     if let Some(p) = &args.plot {
         let svg = step_plot(&panels).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
-        write_atomically(p, svg.as_bytes())
+        write_file(p, svg.as_bytes(), settings.existing())
             .with_context(|| format!("{}: cannot write the plot", p.display()))?;
         settings.note(&format!("wrote the plot to {}", p.display()));
     }

@@ -14,7 +14,7 @@ use plumb_diagnose::Tolerances;
 use plumb_engine::{Regularization, Variant};
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
-    DType, FileFormat, Tensor, TensorFile, disassemble, write_atomically, write_tensors,
+    DType, Existing, FileFormat, Tensor, TensorFile, disassemble, write_file, write_tensor_file,
 };
 use plumb_report::{Block, Case, Document, Verdict};
 use serde::Serialize;
@@ -558,12 +558,29 @@ fn write_files(
             p.display()
         );
     }
+    let existing = if force {
+        Existing::Replace
+    } else {
+        Existing::Keep
+    };
     let toml = pump::DESCRIPTION;
-    write_atomically(&paths[0], toml.as_bytes())
+    write_file(&paths[0], toml.as_bytes(), existing)
         .with_context(|| format!("{}: cannot write", paths[0].display()))?;
-    write_tensors(&paths[1], FileFormat::Npz, &good.tensors, DType::F64)?;
-    write_tensors(&paths[2], FileFormat::Npz, &planted.tensors, DType::F64)?;
-    write_atomically(&paths[3], pump.csv().as_bytes())
+    write_tensor_file(
+        &paths[1],
+        FileFormat::Npz,
+        &good.tensors,
+        DType::F64,
+        existing,
+    )?;
+    write_tensor_file(
+        &paths[2],
+        FileFormat::Npz,
+        &planted.tensors,
+        DType::F64,
+        existing,
+    )?;
+    write_file(&paths[3], pump.csv().as_bytes(), existing)
         .with_context(|| format!("{}: cannot write", paths[3].display()))?;
     let readme = format!(
         "plumb demo files\n\n{INVENTED}\n\n\
@@ -573,7 +590,7 @@ fn write_files(
          pump-data.csv                the invented readings, standardised (z-scores), and the state\n\
          \x20                            label (0 normal, 1 cavitating, 2 bearing wear)\n"
     );
-    write_atomically(&paths[4], readme.as_bytes())
+    write_file(&paths[4], readme.as_bytes(), existing)
         .with_context(|| format!("{}: cannot write", paths[4].display()))?;
     Ok(paths)
 }

@@ -390,9 +390,62 @@ pub fn check_gradient(
     })
 }
 
-/// A random unit direction per part and K global ones, drawn up front from the seed so that the
-/// result does not depend on the thread count.
-fn directions(net: &Network, k: usize, seed: u64) -> Vec<(Scope, Weights<f64>)> {
+/// A random unit direction: what it spans and the generator state it is drawn from. Only the state
+/// is kept (32 bytes) and the vector is drawn when it is checked, so memory does not grow with
+/// directions × parameters: a network of 2,000 one-unit layers has 4,001 parts.
+#[derive(Clone, Debug)]
+struct Direction {
+    scope: Scope,
+    rng: Rng,
+}
+
+impl Direction {
+    /// The unit vector, drawn as it always was: one normal per entry of the span, in layer and
+    /// row-major order, zero elsewhere.
+    fn vector(&self, net: &Network) -> Weights<f64> {
+        let mut rng = self.rng.clone();
+        let scope = self.scope;
+        let mut v = Weights::new(
+            net.layers()
+                .iter()
+                .enumerate()
+                .map(|(l, spec)| {
+                    Array2::from_shape_fn(spec.shape(), |(_, c)| {
+                        if spans(scope, l, c) {
+                            rng.normal()
+                        } else {
+                            0.0
+                        }
+                    })
+                })
+                .collect(),
+        );
+        let norm = v
+            .layers()
+            .iter()
+            .flat_map(|l| l.iter())
+            .map(|x| x * x)
+            .sum::<f64>()
+            .sqrt();
+        for l in v.layers_mut() {
+            l.mapv_inplace(|x| x / norm);
+        }
+        v
+    }
+}
+
+/// Whether entry (·, c) of layer l is in the span (column 0 of a layer is its bias).
+fn spans(scope: Scope, l: usize, c: usize) -> bool {
+    match scope {
+        Scope::Global => true,
+        Scope::Part { layer, bias } => layer == l && bias == (c == 0),
+    }
+}
+
+/// A random unit direction per part and K global ones, from the seed so that the result does not
+/// depend on the thread count. Each keeps the generator's state at its start, and the generator
+/// is moved past its draws, so direction i is the same vector it would be if all were drawn here.
+fn directions(net: &Network, k: usize, seed: u64) -> Vec<Direction> {
     let mut rng = Rng::new(seed ^ 0xd1_7ec7);
     let mut out = Vec::new();
     let mut scopes = vec![Scope::Global];
@@ -407,33 +460,21 @@ fn directions(net: &Network, k: usize, seed: u64) -> Vec<(Scope, Weights<f64>)> 
         });
     }
     for scope in scopes {
-        for _ in 0..k {
-            let mut v = Weights::new(
-                net.layers()
-                    .iter()
-                    .enumerate()
-                    .map(|(l, spec)| {
-                        Array2::from_shape_fn(spec.shape(), |(_, c)| match scope {
-                            Scope::Global => rng.normal(),
-                            Scope::Part { layer, bias } if layer == l && bias == (c == 0) => {
-                                rng.normal()
-                            }
-                            Scope::Part { .. } => 0.0,
-                        })
-                    })
-                    .collect(),
-            );
-            let norm = v
-                .layers()
-                .iter()
-                .flat_map(|l| l.iter())
-                .map(|x| x * x)
-                .sum::<f64>()
-                .sqrt();
-            for l in v.layers_mut() {
-                l.mapv_inplace(|x| x / norm);
+        let draws = match scope {
+            Scope::Global => net.parameters(),
+            Scope::Part { layer, bias } => {
+                let (rows, cols) = net.layers()[layer].shape();
+                if bias { rows } else { rows * (cols - 1) }
             }
-            out.push((scope, v));
+        };
+        for _ in 0..k {
+            out.push(Direction {
+                scope,
+                rng: rng.clone(),
+            });
+            for _ in 0..draws {
+                rng.normal();
+            }
         }
     }
     out
@@ -542,7 +583,7 @@ impl Run<'_> {
     fn real<S: Scalar>(
         &self,
         coords: &[Coord],
-        directions: &[(Scope, Weights<f64>)],
+        directions: &[Direction],
     ) -> (f64, Vec<CoordCheck>, Vec<DirectionCheck>) {
         let w: Weights<S> = self.weights.cast();
         let (x, y) = self.batch.cast::<S>();
@@ -607,7 +648,7 @@ impl Run<'_> {
     fn complex<C: ComplexScalar>(
         &self,
         coords: &[Coord],
-        directions: &[(Scope, Weights<f64>)],
+        directions: &[Direction],
     ) -> (f64, Vec<CoordCheck>, Vec<DirectionCheck>) {
         let w: Weights<C> = self.weights.cast();
         let (x, y) = self.batch.cast::<C>();
@@ -672,12 +713,13 @@ impl Run<'_> {
 
     fn each_direction(
         &self,
-        directions: &[(Scope, Weights<f64>)],
+        directions: &[Direction],
         estimate: impl Fn(Scope, &Weights<f64>) -> Estimate + Sync,
     ) -> Vec<DirectionCheck> {
         directions
             .par_iter()
-            .map(|(scope, v)| {
+            .map(|d| {
+                let (scope, v) = (&d.scope, &d.vector(self.net));
                 let est = estimate(*scope, v);
                 let a = dot(self.analytic, v);
                 let floor = FLOOR * self.span_norm(*scope);
@@ -715,11 +757,7 @@ fn fold_scope(w: &Weights<f64>, scope: Scope, f: impl Fn(f64, f64) -> f64) -> f6
     let mut acc = 0.0f64;
     for (l, m) in w.layers().iter().enumerate() {
         for ((_, c), &v) in m.indexed_iter() {
-            let inside = match scope {
-                Scope::Global => true,
-                Scope::Part { layer, bias } => layer == l && bias == (c == 0),
-            };
-            if inside {
+            if spans(scope, l, c) {
                 acc = f(acc, v);
             }
         }
@@ -747,4 +785,60 @@ fn dot(g: &Weights<f64>, v: &Weights<f64>) -> f64 {
         .zip(v.layers())
         .map(|(a, b)| a.iter().zip(b.iter()).map(|(x, y)| x * y).sum::<f64>())
         .sum()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use plumb_engine::{Activation, Loss};
+
+    /// Directions drawn when checked are the vectors the eager drawing gave (every direction a
+    /// whole weight set, drawn in order from one generator): the same seed, the same results.
+    #[test]
+    fn directions_drawn_on_demand_equal_the_eager_drawing() {
+        let net = Network::new(
+            3,
+            &[
+                (4, Activation::Tanh),
+                (1, Activation::Tanh),
+                (2, Activation::Softmax),
+            ],
+            Loss::CrossEntropy,
+            0.0,
+        )
+        .unwrap();
+        let k = 3;
+        let lazy = directions(&net, k, 11);
+        let mut rng = Rng::new(11 ^ 0xd1_7ec7);
+        assert_eq!(lazy.len(), k * (1 + 2 * net.layers().len()));
+        for d in &lazy {
+            let mut eager = Weights::new(
+                net.layers()
+                    .iter()
+                    .enumerate()
+                    .map(|(l, spec)| {
+                        Array2::from_shape_fn(spec.shape(), |(_, c)| {
+                            if spans(d.scope, l, c) {
+                                rng.normal()
+                            } else {
+                                0.0
+                            }
+                        })
+                    })
+                    .collect(),
+            );
+            let norm: f64 = eager
+                .layers()
+                .iter()
+                .flat_map(|l| l.iter())
+                .map(|x| x * x)
+                .sum();
+            for l in eager.layers_mut() {
+                l.mapv_inplace(|x| x / norm.sqrt());
+            }
+            assert_eq!(d.vector(&net), eager, "{:?}", d.scope);
+        }
+        // What is kept per direction does not grow with the network.
+        assert!(std::mem::size_of::<Direction>() <= 64);
+    }
 }

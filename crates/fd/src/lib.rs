@@ -24,6 +24,7 @@ mod external;
 mod floor;
 mod gross;
 mod method;
+mod order;
 mod summary;
 mod sweep;
 
@@ -41,5 +42,6 @@ pub use external::{
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
+pub use order::{worse_error, worst_first};
 pub use summary::{Part, PartSummary, summarise};
 pub use sweep::{Curve, SweepPlan, steps, sweep};

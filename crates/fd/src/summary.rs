@@ -2,6 +2,7 @@
 //! the verdict.
 
 use crate::check::{CheckResult, CoordCheck, Scope, Settlement, Status};
+use crate::order::worst_first;
 
 /// A part of the network a summary covers: a layer's bias weights, its other weights, or both
 /// (one tensor of a weight file, under its layout).
@@ -91,9 +92,7 @@ pub fn summarise(result: &CheckResult, parts: &[(Part, usize)]) -> Vec<PartSumma
             let mut worst = idx.clone();
             worst.sort_by(|&i, &j| {
                 let (a, b) = (&result.coords[i], &result.coords[j]);
-                (b.status, b.rel_error)
-                    .partial_cmp(&(a.status, a.rel_error))
-                    .unwrap_or(std::cmp::Ordering::Equal)
+                worst_first((a.status, a.rel_error), (b.status, b.rel_error))
             });
             worst.truncate(3);
             let dirs: Vec<_> = result

@@ -78,6 +78,13 @@ pub enum DataError {
         found: usize,
     },
 
+    #[error(
+        "{}: a quoted field is never closed (an odd number of `\"` in the file; the last line \
+         read is {line}); close the quote, or double a quote inside a field",
+        .path.display()
+    )]
+    Unterminated { path: PathBuf, line: u64 },
+
     #[error("{}: line {line}, column `{column}`: {problem}", .path.display())]
     BadValue {
         path: PathBuf,
@@ -197,8 +204,10 @@ enum Targets {
 }
 
 fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
-    let bytes =
-        crate::input::read_input(path, crate::MAX_DATA_BYTES).map_err(|source| DataError::Io {
+    // Streamed, not read whole: memory is what the samples hold, and an error on line 2 is
+    // found without reading the rest.
+    let file =
+        crate::input::open_input(path, crate::MAX_DATA_BYTES).map_err(|source| DataError::Io {
             path: path.to_path_buf(),
             source,
         })?;
@@ -207,7 +216,10 @@ fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataErr
         // Row lengths are checked here, to report them with the header's count.
         .flexible(true)
         .trim(csv::Trim::All)
-        .from_reader(&bytes[..]);
+        .from_reader(Quotes {
+            inner: std::io::Read::take(file, crate::MAX_DATA_BYTES),
+            count: 0,
+        });
     let csv_error = |line: u64, source: csv::Error| DataError::Csv {
         path: path.to_path_buf(),
         line,
@@ -253,10 +265,9 @@ fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataErr
             }
         }
         let line = record.position().map_or(line, |p| p.line());
-        // A line of nothing but separators or spaces is a blank line, not a sample.
-        if record.iter().all(str::is_empty) && record.len() <= 1 {
-            continue;
-        }
+        // An empty line yields no record at all; any other row of the wrong number of fields is
+        // an error, a row holding only `""` included (it is not a sample, and dropping it would
+        // change the batch silently).
         if record.len() != columns {
             return Err(DataError::Ragged {
                 path: path.to_path_buf(),
@@ -289,6 +300,15 @@ fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataErr
         }
         rows += 1;
     }
+    if reader.get_ref().count % 2 == 1 {
+        // Every field that opens a quote closes it, and a quote inside one is doubled: a
+        // whole file has an even number of them. The reader takes the end of the file as the
+        // closing quote; plumb does not.
+        return Err(DataError::Unterminated {
+            path: path.to_path_buf(),
+            line: reader.position().line(),
+        });
+    }
     if rows == 0 {
         return Err(DataError::NoSamples {
             path: path.to_path_buf(),
@@ -298,6 +318,20 @@ fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataErr
         x: Array2::from_shape_vec((rows, inputs), x).expect("one row of features per sample"),
         y: Array2::from_shape_vec((rows, outputs), y).expect("one row of targets per sample"),
     })
+}
+
+/// A reader that counts the quote characters passing through it.
+struct Quotes<R> {
+    inner: R,
+    count: u64,
+}
+
+impl<R: std::io::Read> std::io::Read for Quotes<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.count += buf[..n].iter().filter(|&&b| b == b'"').count() as u64;
+        Ok(n)
+    }
 }
 
 /// A finite number, or what is wrong with the text.

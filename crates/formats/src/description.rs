@@ -139,7 +139,13 @@ impl Description {
 
     /// Parses and validates a description from its text; `path` is used in messages only.
     pub fn parse(path: &Path, text: &str) -> Result<Description, DescriptionError> {
-        Parser { path, text }.parse()
+        let newlines = text.match_indices('\n').map(|(i, _)| i).collect();
+        Parser {
+            path,
+            text,
+            newlines,
+        }
+        .parse()
     }
 
     /// s_1, the number of input features.
@@ -197,6 +203,8 @@ fn quote(s: &str) -> String {
 struct Parser<'a> {
     path: &'a Path,
     text: &'a str,
+    /// Where each line ends, so a line number costs a search, not a scan of the text before it.
+    newlines: Vec<usize>,
 }
 
 type Entry<'i> = (
@@ -208,7 +216,7 @@ impl<'a> Parser<'a> {
     fn error(&self, span: Option<Range<usize>>, message: impl Into<String>) -> DescriptionError {
         let (line, column) = match span {
             Some(span) => {
-                let (l, c) = line_col(self.text, span.start);
+                let (l, c) = line_col(self.text, &self.newlines, span.start);
                 (Some(l), Some(c))
             }
             None => (None, None),
@@ -364,8 +372,9 @@ impl<'a> Parser<'a> {
         };
         // Two layers (or a weight and a bias) under one name would read one tensor twice.
         let names = crate::layout::expected_tensors(&desc, layout);
+        let mut first = std::collections::HashMap::with_capacity(names.len());
         for (i, a) in names.iter().enumerate() {
-            if let Some(b) = names[..i].iter().find(|b| b.name == a.name) {
+            if let Some(b) = first.insert(a.name.as_str(), i).map(|j| &names[j]) {
                 let line = desc.layers[a.layer].line;
                 return Err(DescriptionError {
                     path: self.path.to_path_buf(),
@@ -520,7 +529,7 @@ impl<'a> Parser<'a> {
                 ),
             ));
         }
-        let (line, _) = line_col(self.text, span.start);
+        let (line, _) = line_col(self.text, &self.newlines, span.start);
         Ok((
             LayerDescription {
                 units,
@@ -679,15 +688,18 @@ fn kind(v: &DeValue<'_>) -> &'static str {
 }
 
 /// 1-based line and column (in characters) of a byte offset.
-fn line_col(text: &str, offset: usize) -> (usize, usize) {
+fn line_col(text: &str, newlines: &[usize], offset: usize) -> (usize, usize) {
     let mut offset = offset.min(text.len());
     while !text.is_char_boundary(offset) {
         offset -= 1;
     }
-    let before = &text[..offset];
-    let line = before.matches('\n').count() + 1;
-    let col = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
-    (line, col)
+    let before = newlines.partition_point(|&n| n < offset);
+    let start = if before == 0 {
+        0
+    } else {
+        newlines[before - 1] + 1
+    };
+    (before + 1, text[start..offset].chars().count() + 1)
 }
 
 fn list(names: &[&str]) -> String {

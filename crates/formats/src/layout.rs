@@ -131,8 +131,15 @@ pub fn assemble(
         message,
     };
     let mut found = Vec::new();
+    // By name, the first of a name as a scan would find it: one lookup per expected tensor.
+    let index: std::collections::HashMap<&str, &crate::Tensor> = file
+        .tensors
+        .iter()
+        .rev()
+        .map(|t| (t.name.as_str(), t))
+        .collect();
     for e in expected_tensors(desc, desc.layout) {
-        let Some(t) = file.tensors.iter().find(|t| t.name == e.name) else {
+        let Some(&t) = index.get(e.name.as_str()) else {
             let names: Vec<String> = file
                 .tensors
                 .iter()

@@ -20,6 +20,8 @@
 mod atomic;
 mod data;
 mod description;
+#[doc(hidden)]
+pub mod fuzz;
 mod input;
 mod layout;
 mod npy;
@@ -27,7 +29,8 @@ mod npz;
 mod safetensors_file;
 mod tensor;
 
-pub use atomic::write_atomically;
+pub use atomic::{Existing, leftovers, write_atomically, write_file};
+pub use input::read_input;
 
 /// The largest weight or gradient file plumb reads (16 GiB).
 pub const MAX_TENSOR_BYTES: u64 = 16 << 30;
@@ -35,11 +38,15 @@ pub const MAX_TENSOR_BYTES: u64 = 16 << 30;
 pub const MAX_DATA_BYTES: u64 = 4 << 30;
 /// The largest network description plumb reads (1 MiB: a description is a few lines).
 pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
+/// The largest JSON report plumb reads back (a shard for `merge`, a `--baseline`): 256 MiB, about
+/// a million coordinates of a check; a JSON value in memory costs a few times its text.
+pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };
 pub use tensor::{
-    DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, shape_text, write_tensors,
+    DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, shape_text,
+    write_tensor_file, write_tensors,
 };

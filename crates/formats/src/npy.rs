@@ -39,6 +39,81 @@ impl At<'_> {
     }
 }
 
+/// The most header an NPZ member may have (NumPy itself refuses headers past 10,000 bytes by
+/// default): the header is inflated before its size is known, so it needs a bound of its own.
+pub(crate) const MAX_MEMBER_HEADER: usize = 1 << 20;
+
+/// What the header of an NPY file says: where the data starts and how many bytes of it follow.
+struct Declared {
+    header_start: usize,
+    header_end: usize,
+    header: Header,
+    needed: usize,
+}
+
+fn declared(at: At<'_>, name: &str, bytes: &[u8]) -> Result<Declared, TensorFileError> {
+    let (header_start, header_len) = preamble(at, bytes)?;
+    let header_end = header_start + header_len;
+    let header = parse_header(at, name, &bytes[header_start..header_end], header_start)?;
+    let needed = header
+        .shape
+        .iter()
+        .try_fold(1usize, |acc, &d| acc.checked_mul(d))
+        .and_then(|n| n.checked_mul(header.dtype.size()))
+        .filter(|&n| n.checked_add(header_end).is_some());
+    let Some(needed) = needed else {
+        return Err(TensorFileError::SizeOverflow {
+            path: at.path.to_path_buf(),
+            member: at.member.map(str::to_string),
+            tensor: name.to_string(),
+            offset: header_end as u64,
+            shape: header.shape.into(),
+            dtype: header.dtype,
+        });
+    };
+    Ok(Declared {
+        header_start,
+        header_end,
+        header,
+        needed,
+    })
+}
+
+/// Where the header of an NPY file ends, from its first 12 bytes (`None` when they are not an NPY
+/// preamble: reading the whole member then reports what is wrong).
+pub(crate) fn header_end(first: &[u8]) -> Option<usize> {
+    let at = At {
+        path: Path::new(""),
+        member: None,
+    };
+    match preamble(at, first) {
+        Ok((start, len)) => Some(start + len),
+        // The header-length field is whole, but more header follows than these bytes hold.
+        Err(_) if first.len() >= 12 && first.starts_with(MAGIC) => {
+            let field = if first[6] == 1 { 2 } else { 4 };
+            let len = if field == 2 {
+                u16::from_le_bytes([first[8], first[9]]) as usize
+            } else {
+                u32::from_le_bytes([first[8], first[9], first[10], first[11]]) as usize
+            };
+            matches!(first[6..8], [1, 0] | [2, 0] | [3, 0]).then_some(8 + field + len)
+        }
+        Err(_) => None,
+    }
+}
+
+/// The whole length an NPY file's header declares (header and data), from bytes holding at least
+/// the whole header.
+pub(crate) fn declared_len(
+    path: &Path,
+    member: Option<&str>,
+    name: &str,
+    head: &[u8],
+) -> Result<usize, TensorFileError> {
+    let d = declared(At { path, member }, name, head)?;
+    Ok(d.header_end + d.needed)
+}
+
 /// Parse a whole NPY file (or NPZ member) into a tensor called `name`.
 pub(crate) fn read(
     path: &Path,
@@ -47,27 +122,14 @@ pub(crate) fn read(
     bytes: &[u8],
 ) -> Result<Tensor, TensorFileError> {
     let at = At { path, member };
-    let (header_start, header_len) = preamble(at, bytes)?;
-    let header_end = header_start + header_len;
-    let header = parse_header(at, name, &bytes[header_start..header_end], header_start)?;
+    let Declared {
+        header_start,
+        header_end,
+        header,
+        needed,
+    } = declared(at, name, bytes)?;
     let dtype = header.dtype;
-
-    let needed = header
-        .shape
-        .iter()
-        .try_fold(1usize, |acc, &d| acc.checked_mul(d))
-        .and_then(|n| n.checked_mul(dtype.size()));
     let offset = header_end as u64;
-    let Some(needed) = needed else {
-        return Err(TensorFileError::SizeOverflow {
-            path: path.to_path_buf(),
-            member: member.map(str::to_string),
-            tensor: name.to_string(),
-            offset,
-            shape: header.shape.into(),
-            dtype,
-        });
-    };
     let available = (bytes.len() - header_end) as u64;
     if needed as u64 != available {
         let (path, member) = (path.to_path_buf(), member.map(str::to_string));

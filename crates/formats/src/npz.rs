@@ -95,17 +95,50 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
                 )));
             }
         };
+        // Inflate no more than the member's own NPY header declares (header and data), so a
+        // stream that inflates far past its array costs nothing: first the preamble, then the
+        // header, then the data it declares, and one byte more to tell an over-long stream.
         let mut content = Vec::new();
-        // One byte past the declared size tells an over-long stream from an exact one.
-        let read = file
-            .by_ref()
-            .take(limit.saturating_add(1))
-            .read_to_end(&mut content);
-        if let Err(e) = read {
-            return Err(bad(format!(
-                "cannot inflate it: {e}; the archive is damaged — write it again"
-            )));
+        let mut inflate = |content: &mut Vec<u8>, upto: usize| {
+            let more = (upto.min(limit as usize)).saturating_sub(content.len());
+            file.by_ref()
+                .take(more as u64)
+                .read_to_end(content)
+                .map_err(|e| {
+                    bad(format!(
+                        "cannot inflate it: {e}; the archive is damaged — write it again"
+                    ))
+                })
+        };
+        inflate(&mut content, 12)?;
+        let Some(end) = npy::header_end(&content) else {
+            // Not an NPY preamble: these bytes are enough to say what is wrong.
+            return Err(npy::read(path, Some(&member), &name, &content)
+                .err()
+                .unwrap_or_else(|| bad("it is not an NPY array".into())));
+        };
+        {
+            if end > npy::MAX_MEMBER_HEADER {
+                return Err(bad(format!(
+                    "its NPY header declares {end} bytes, past the {} plumb reads in an archive; \
+                     a malformed archive — write it again with np.savez",
+                    npy::MAX_MEMBER_HEADER
+                )));
+            }
+            inflate(&mut content, end)?;
+            if content.len() == end {
+                let whole = npy::declared_len(path, Some(&member), &name, &content)?;
+                inflate(&mut content, whole.saturating_add(1))?;
+                if content.len() > whole {
+                    return Err(bad(format!(
+                        "it inflates past the {whole} bytes its NPY header declares (the header \
+                         and the data of its shape and dtype), toward the {declared} the zip \
+                         entry claims; a malformed archive — write it again with np.savez"
+                    )));
+                }
+            }
         }
+        inflate(&mut content, (limit as usize).saturating_add(1))?;
         if content.len() as u64 != declared {
             return Err(bad(format!(
                 "it declares {declared} bytes but holds {}{}; the archive is damaged — \

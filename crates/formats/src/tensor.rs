@@ -509,12 +509,24 @@ pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
 }
 
 /// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a
-/// half-written file. A `.npy` takes exactly one tensor (its name is not stored).
+/// half-written file. A `.npy` takes exactly one tensor (its name is not stored). Replaces an
+/// existing regular file; [`write_tensor_file`] says what may be replaced.
 pub fn write_tensors(
     path: &Path,
     format: FileFormat,
     tensors: &[Tensor],
     dtype: DType,
+) -> Result<(), TensorFileError> {
+    write_tensor_file(path, format, tensors, dtype, crate::Existing::Replace)
+}
+
+/// [`write_tensors`], with what an existing file at `path` allows (see [`crate::write_file`]).
+pub fn write_tensor_file(
+    path: &Path,
+    format: FileFormat,
+    tensors: &[Tensor],
+    dtype: DType,
+    existing: crate::Existing,
 ) -> Result<(), TensorFileError> {
     if !matches!(dtype, DType::F32 | DType::F64) {
         return Err(TensorFileError::WriteDType {
@@ -522,7 +534,7 @@ pub fn write_tensors(
             dtype,
         });
     }
-    check_for_writing(path, tensors)?;
+    check_for_writing(path, format, tensors)?;
     let bytes = match format {
         FileFormat::Npy => match tensors {
             [tensor] => npy::write(tensor, dtype),
@@ -541,7 +553,7 @@ pub fn write_tensors(
         FileFormat::Npz => npz::write(path, tensors, dtype)?,
         FileFormat::Safetensors => safetensors_file::write(path, tensors, dtype)?,
     };
-    crate::write_atomically(path, &bytes).map_err(|source| TensorFileError::Io {
+    crate::write_file(path, &bytes, existing).map_err(|source| TensorFileError::Io {
         path: path.to_path_buf(),
         action: "write",
         source,
@@ -550,9 +562,24 @@ pub fn write_tensors(
 
 /// Refuse tensors whose data does not fill their shape, and repeated names, before any bytes are
 /// produced: either would make a file that reads back as something else.
-fn check_for_writing(path: &Path, tensors: &[Tensor]) -> Result<(), TensorFileError> {
+fn check_for_writing(
+    path: &Path,
+    format: FileFormat,
+    tensors: &[Tensor],
+) -> Result<(), TensorFileError> {
     let mut seen = std::collections::HashSet::new();
     for tensor in tensors {
+        if format == FileFormat::Safetensors && tensor.name == "__metadata__" {
+            // The header's key for free-form metadata: a tensor under it makes a file that no
+            // safetensors reader opens.
+            return Err(TensorFileError::BadTensor {
+                path: path.to_path_buf(),
+                tensor: tensor.name.clone(),
+                problem: "safetensors reserves this name for the file's metadata, so no tensor \
+                          may have it; rename the parameter, or write an .npz file"
+                    .into(),
+            });
+        }
         let elements = tensor
             .shape
             .iter()

@@ -36,6 +36,11 @@ pub enum ProbeError {
         value: f64,
         place: String,
     },
+    #[error("the program closed its stdin before reading the {request} request, and kept running, so plumb stopped it; it must read requests from stdin until plumb closes it{}", tail(.stderr))]
+    StdinClosed {
+        request: String,
+        stderr: Vec<String>,
+    },
     #[error("cannot send the {request} request: {reason}{}", tail(.stderr))]
     Send {
         request: String,

@@ -85,6 +85,9 @@ enum ReadError {
     Garbage(String),
     Malformed(String),
     NonFinite(String),
+    /// Writing the request failed: the program closed its end of the pipe (written by the
+    /// writer thread, not the reader).
+    StdinClosed,
 }
 
 /// A running program.
@@ -100,6 +103,9 @@ pub struct Program {
     losses_asked: usize,
     command: String,
     writer: Option<Sender<Vec<u8>>>,
+    /// The write end of the program's stdin (owned by the writer thread while `writer` lives),
+    /// to tell a program that closed its stdin from one that is slow.
+    stdin_fd: std::os::fd::RawFd,
     replies: Receiver<Result<Message, ReadError>>,
     stderr: Arc<Mutex<VecDeque<String>>>,
     timeout: Duration,
@@ -142,18 +148,25 @@ impl Program {
                 reason: e.to_string(),
             })?;
         let mut stdin = child.stdin.take().expect("piped");
+        let stdin_fd = std::os::fd::AsRawFd::as_raw_fd(&stdin);
         let stdout = child.stdout.take().expect("piped");
         let stderr = child.stderr.take().expect("piped");
 
+        let (rtx, rrx) = mpsc::channel();
         let (wtx, wrx) = mpsc::channel::<Vec<u8>>();
+        let closed = rtx.clone();
         thread::spawn(move || {
             for buf in wrx {
-                if stdin.write_all(&buf).and_then(|_| stdin.flush()).is_err() {
+                if let Err(e) = stdin.write_all(&buf).and_then(|_| stdin.flush()) {
+                    // Said at once, rather than waiting out the timeout for an answer that
+                    // cannot come: the program never read this request.
+                    if e.kind() == std::io::ErrorKind::BrokenPipe {
+                        let _ = closed.send(Err(ReadError::StdinClosed));
+                    }
                     break;
                 }
             }
         });
-        let (rtx, rrx) = mpsc::channel();
         let limit = Arc::new(AtomicU64::new(0));
         let reader_limit = Arc::clone(&limit);
         thread::spawn(move || read_replies(stdout, rtx, reader_limit));
@@ -188,6 +201,7 @@ impl Program {
             losses_asked: 0,
             command: text,
             writer: Some(wtx),
+            stdin_fd,
             replies: rrx,
             stderr: tail,
             timeout,
@@ -472,11 +486,26 @@ impl Program {
                     stderr: self.tail(),
                 })
             }
-            Ok(Err(ReadError::Eof)) | Err(RecvTimeoutError::Disconnected) => {
+            Ok(Err(ReadError::StdinClosed)) if !self.exited() => {
+                self.stop();
+                Err(ProbeError::StdinClosed {
+                    request: request.into(),
+                    stderr: self.tail(),
+                })
+            }
+            Ok(Err(ReadError::Eof | ReadError::StdinClosed))
+            | Err(RecvTimeoutError::Disconnected) => {
                 let status = self.exit_status();
                 Err(ProbeError::Exited {
                     status,
                     when: format!("before answering the {request} request"),
+                    stderr: self.tail(),
+                })
+            }
+            Err(RecvTimeoutError::Timeout) if self.stdin_closed() => {
+                self.stop();
+                Err(ProbeError::StdinClosed {
+                    request: request.into(),
                     stderr: self.tail(),
                 })
             }
@@ -489,6 +518,33 @@ impl Program {
                 })
             }
         }
+    }
+
+    /// Whether nothing reads the program's stdin any more: the write end of a pipe polls as an
+    /// error once its read end is closed (a request written before that sits unread).
+    fn stdin_closed(&self) -> bool {
+        if self.writer.is_none() {
+            return false;
+        }
+        let mut p = libc::pollfd {
+            fd: self.stdin_fd,
+            events: 0,
+            revents: 0,
+        };
+        // SAFETY: polling one descriptor the writer thread keeps open, without waiting.
+        let n = unsafe { libc::poll(&mut p, 1, 0) };
+        n == 1 && p.revents & libc::POLLERR != 0
+    }
+
+    /// Whether the program has ended (it may take a moment after closing its pipes).
+    fn exited(&mut self) -> bool {
+        for _ in 0..20 {
+            if matches!(self.child.try_wait(), Ok(Some(_))) {
+                return true;
+            }
+            thread::sleep(Duration::from_millis(5));
+        }
+        false
     }
 
     fn stop(&mut self) {

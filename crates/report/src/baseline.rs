@@ -80,6 +80,25 @@ impl Baseline {
         }
     }
 
+    /// Reads a baseline file's bytes (the format version is the caller's to check).
+    pub fn from_json(bytes: &[u8]) -> Result<Baseline, serde_json::Error> {
+        serde_json::from_slice(bytes)
+    }
+
+    /// Why this baseline cannot judge the run, if it cannot: a run made on a network needs the
+    /// network's shapes in the baseline, or a change of shape would pass unseen (an edited or
+    /// damaged baseline whose `network` is null or missing).
+    pub fn unfit_for(&self, doc: &Document) -> Option<String> {
+        match (&self.network, &doc.network) {
+            (None, Some(_)) => Some(
+                "the baseline records no network (`network` is null or missing), so a change of \
+                 shape could not be seen: record the baseline again with --save-baseline"
+                    .into(),
+            ),
+            _ => None,
+        }
+    }
+
     /// What got worse since the baseline, as error findings naming the case and the figure.
     pub fn compare(&self, doc: &Document, findings: &[Finding]) -> Vec<Finding> {
         let mut out = Vec::new();
@@ -96,17 +115,22 @@ impl Baseline {
         }
         let mut same_network = true;
         if let (Some(old), Some(new)) = (&self.network, &doc.network) {
-            let shape_of = |list: &[(String, Vec<usize>)], name: &str| {
-                list.iter().find(|(n, _)| n == name).map(|(_, s)| s.clone())
+            // Maps, not scans: a baseline may list as many tensors as it likes.
+            let index = |list: &'_ [(String, Vec<usize>)]| -> BTreeMap<String, Vec<usize>> {
+                list.iter().rev().cloned().collect()
             };
-            let mut names: Vec<&String> = old.shapes.iter().map(|(n, _)| n).collect();
-            for (n, _) in &new.shapes {
-                if !names.contains(&n) {
-                    names.push(n);
-                }
-            }
+            let (old_shapes, new_shapes) = (index(&old.shapes), index(&new.shapes));
+            let mut seen = std::collections::BTreeSet::new();
+            let names: Vec<&String> = old
+                .shapes
+                .iter()
+                .chain(&new.shapes)
+                .map(|(n, _)| n)
+                .filter(|n| seen.insert(*n))
+                .collect();
             for name in names {
-                let message = match (shape_of(&old.shapes, name), shape_of(&new.shapes, name)) {
+                let shape_of = |m: &BTreeMap<String, Vec<usize>>| m.get(name.as_str()).cloned();
+                let message = match (shape_of(&old_shapes), shape_of(&new_shapes)) {
                     (Some(a), Some(b)) if a == b => continue,
                     (Some(a), Some(b)) => format!(
                         "the network changed shape: {name} was {} in the baseline and is {} now",

@@ -1,0 +1,207 @@
+//! The budget of docs/budget.md, held on generated hostile files: reading any input costs memory
+//! a small multiple of what the input really holds, and work near-linear in its size. Memory is
+//! measured by a counting allocator (the peak of live bytes while one read runs); the tests of this
+//! file take a lock so that no other test's allocations are counted.
+
+use std::alloc::{GlobalAlloc, Layout, System};
+use std::io::{Cursor, Write};
+use std::path::PathBuf;
+use std::sync::Mutex;
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use plumb_formats::{read_data, read_tensors};
+use zip::write::SimpleFileOptions;
+use zip::{CompressionMethod, ZipWriter};
+
+struct Counting;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+unsafe impl GlobalAlloc for Counting {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = unsafe { System.alloc(layout) };
+        if !p.is_null() {
+            let now = LIVE.fetch_add(layout.size(), Ordering::Relaxed) + layout.size();
+            PEAK.fetch_max(now, Ordering::Relaxed);
+        }
+        p
+    }
+    unsafe fn dealloc(&self, p: *mut u8, layout: Layout) {
+        unsafe { System.dealloc(p, layout) };
+        LIVE.fetch_sub(layout.size(), Ordering::Relaxed);
+    }
+}
+
+#[global_allocator]
+static ALLOCATOR: Counting = Counting;
+
+static ONE_AT_A_TIME: Mutex<()> = Mutex::new(());
+
+/// The most bytes live at once while `f` runs, above what was live when it started.
+fn peak_during<T>(f: impl FnOnce() -> T) -> (T, usize) {
+    let start = LIVE.load(Ordering::Relaxed);
+    PEAK.store(start, Ordering::Relaxed);
+    let out = f();
+    (out, PEAK.load(Ordering::Relaxed).saturating_sub(start))
+}
+
+fn scratch(test: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!(
+        "plumb-formats-budget-{}-{test}",
+        std::process::id()
+    ));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// An NPY v1.0 file: the header dict padded as NumPy pads it, then the data.
+fn npy(dict: &str, data: &[u8]) -> Vec<u8> {
+    let mut header = dict.as_bytes().to_vec();
+    while !(10 + header.len() + 1).is_multiple_of(64) {
+        header.push(b' ');
+    }
+    header.push(b'\n');
+    let mut out = b"\x93NUMPY\x01\x00".to_vec();
+    out.extend((header.len() as u16).to_le_bytes());
+    out.extend(header);
+    out.extend(data);
+    out
+}
+
+fn deflated_zip(members: &[(&str, &[u8])]) -> Vec<u8> {
+    let mut w = ZipWriter::new(Cursor::new(Vec::new()));
+    for (name, bytes) in members {
+        let options = SimpleFileOptions::default()
+            .compression_method(CompressionMethod::Deflated)
+            .large_file(false);
+        w.start_file(*name, options).unwrap();
+        w.write_all(bytes).unwrap();
+    }
+    w.finish().unwrap().into_inner()
+}
+
+/// A member whose NPY header declares a 5 × 5 array but whose stream inflates to 64 MiB (the
+/// zip entry declaring all of it): refused as malformed after inflating about the 200 bytes the
+/// header declares, not the 64 MiB the zip entry claims. Guards `-w`, `-g` and `-d` alike, which
+/// all read NPZ through `read_tensors`.
+#[test]
+fn an_npz_member_inflates_no_further_than_its_npy_header_declares() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("bomb");
+    let mut member = npy(
+        "{'descr': '<f8', 'fortran_order': False, 'shape': (5, 5), }",
+        &[0; 200],
+    );
+    member.resize(64 << 20, 0);
+    let archive = deflated_zip(&[("w.npy", &member)]);
+    drop(member);
+    assert!(archive.len() < 200 << 10, "{} bytes", archive.len());
+    let path = dir.join("bomb.npz");
+    std::fs::write(&path, &archive).unwrap();
+    let (result, peak) = peak_during(|| read_tensors(&path));
+    let message = result.unwrap_err().to_string();
+    assert!(
+        message.contains("bomb.npz") && message.contains("w.npy") && message.contains("malformed"),
+        "{message}"
+    );
+    // The archive read whole, plus the inflater's window and a few kilobytes.
+    assert!(
+        peak < archive.len() + (1 << 20),
+        "peak {peak} bytes for a {}-byte archive",
+        archive.len()
+    );
+    // And as a data file (`-d`) the same.
+    let data = dir.join("data.npz");
+    std::fs::write(
+        &data,
+        deflated_zip(&[
+            ("x.npy", &{
+                let mut m = npy(
+                    "{'descr': '<f8', 'fortran_order': False, 'shape': (2, 2), }",
+                    &[0; 32],
+                );
+                m.resize(16 << 20, 0);
+                m
+            }),
+            (
+                "y.npy",
+                &npy(
+                    "{'descr': '<f8', 'fortran_order': False, 'shape': (2, 1), }",
+                    &[0; 16],
+                ),
+            ),
+        ]),
+    )
+    .unwrap();
+    let (result, peak) = peak_during(|| read_data(&data, 2, 1));
+    let message = result.unwrap_err().to_string();
+    assert!(
+        message.contains("x.npy") && message.contains("malformed"),
+        "{message}"
+    );
+    assert!(peak < 2 << 20, "peak {peak} bytes");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// CSV is streamed: an error on line 3 of a 32 MiB file is found reading a few kilobytes, not
+/// the whole file.
+#[test]
+fn a_csv_error_near_the_top_is_found_without_reading_the_file() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("csv-stream");
+    let path = dir.join("big.csv");
+    let mut text = String::from("a,b,y\n1,2,3\n1,oops,3\n");
+    let row = "0.25,0.5,1\n";
+    text.reserve(32 << 20);
+    while text.len() < 32 << 20 {
+        text.push_str(row);
+    }
+    std::fs::write(&path, &text).unwrap();
+    drop(text);
+    let (result, peak) = peak_during(|| read_data(&path, 2, 1));
+    let message = result.unwrap_err().to_string();
+    assert!(
+        message.contains("big.csv") && message.contains("line 3") && message.contains("oops"),
+        "{message}"
+    );
+    assert!(peak < 1 << 20, "peak {peak} bytes");
+    // Valid rows cost what their numbers hold (8 bytes a value), not the text held twice.
+    let ok = dir.join("ok.csv");
+    let mut text = String::from("a,b,y\n");
+    for _ in 0..100_000 {
+        text.push_str(row);
+    }
+    std::fs::write(&ok, &text).unwrap();
+    let (batch, peak) = peak_during(|| read_data(&ok, 2, 1).unwrap());
+    assert_eq!(batch.x.nrows(), 100_000);
+    // x and y: 2.4 MB of values; their vectors may double while growing.
+    assert!(peak < 3 * 2_400_000 + (1 << 20), "peak {peak} bytes");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A row holding only `""` is a row of one field, an error naming its line (it was silently
+/// dropped: 8 samples became 7); a quote never closed at the end of the file is an error.
+#[test]
+fn csv_rows_of_one_empty_field_and_unclosed_quotes_are_errors() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("csv-edges");
+    let quoted_empty = dir.join("empty-field.csv");
+    std::fs::write(&quoted_empty, "a,b,y\n1,2,3\n\"\"\n4,5,6\n").unwrap();
+    let message = read_data(&quoted_empty, 2, 1).unwrap_err().to_string();
+    assert!(message.contains("line 3"), "{message}");
+    let open = dir.join("open-quote.csv");
+    std::fs::write(&open, "a,b,y\n1,2,3\n4,5,\"6\n").unwrap();
+    let message = read_data(&open, 2, 1).unwrap_err().to_string();
+    assert!(
+        message.contains("open-quote.csv") && message.contains("never closed"),
+        "{message}"
+    );
+    // Quotes that close, and a doubled quote inside a header name, are fine; an empty line is
+    // not a row.
+    let fine = dir.join("fine.csv");
+    std::fs::write(&fine, "\"a\",\"b \"\"x\"\"\",y\n\"1\",2,3\n\n4,5,6\n").unwrap();
+    assert_eq!(read_data(&fine, 2, 1).unwrap().x.nrows(), 2);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
