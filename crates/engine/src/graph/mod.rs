@@ -1,5 +1,5 @@
 //! The layer graph: a chain of layers of many kinds (dense, convolution, pooling, normalisation,
-//! residual additions) with named taps, its loss under the description's conventions, and the
+//! residual additions, embeddings, recurrent cells, attention) with named taps, its loss under the description's conventions, and the
 //! analytic backward pass with the input gradient and per-kind catalogued mistakes.
 //!
 //! Each kind is one module that provides everything about it: the output shape from the input
