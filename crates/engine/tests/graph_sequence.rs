@@ -650,3 +650,22 @@ fn token_ids_outside_the_vocabulary_are_named_by_sample_and_step() {
         .unwrap();
     assert!(matches!(empty.finish(), Err(GraphError::EmptyInput { .. })));
 }
+
+/// A parameter is located by gate (in the declared order), unit and input; by projection and head.
+#[test]
+fn parameters_are_located_by_gate_head_and_unit() {
+    use plumb_engine::graph::Kind;
+    let seq = Shape::Sequence { steps: 2, width: 3 };
+    let lstm = Lstm::new(2, "fgio", "last", &seq).unwrap();
+    // input.weight is 8 × 3: row 5 is block 2 (declared letter i), unit 1; column 1.
+    assert_eq!(lstm.locate(0, 5 * 3 + 1), "gate i, unit 1, input 1");
+    assert_eq!(lstm.locate(1, 2 * 2), "gate g, unit 0, state 0");
+    assert_eq!(lstm.locate(2, 7), "gate o, unit 1");
+    let att = Attention::new(3, false, &Shape::Sequence { steps: 2, width: 6 }).unwrap();
+    // key.weight row 4 is head 2 (two rows per head).
+    assert_eq!(att.locate(2, 4 * 6 + 5), "key, head 2, out 4, in 5");
+    // The output projection's column says the head.
+    assert_eq!(att.locate(6, 3), "output, head 1, out 0, in 3");
+    let rnn = Rnn::new(2, Activation::Tanh, "all", &seq).unwrap();
+    assert_eq!(rnn.locate(0, 4), "unit 1, input 1");
+}
