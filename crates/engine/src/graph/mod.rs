@@ -1,5 +1,5 @@
 //! The layer graph: a chain of layers of many kinds (dense, convolution, pooling, normalisation,
-//! residual additions) with named taps, its loss under the description's conventions, and the
+//! residual additions, embeddings, recurrent cells, attention) with named taps, its loss under the description's conventions, and the
 //! analytic backward pass with the input gradient and per-kind catalogued mistakes.
 //!
 //! Each kind is one module that provides everything about it: the output shape from the input
@@ -32,17 +32,24 @@
 //! ```
 
 mod add;
+mod attention;
 mod batch_norm;
 mod conv;
 mod dense;
+mod embedding;
 mod flatten;
 mod global_pool;
+mod gru;
 mod layer_norm;
 mod loss;
+mod lstm;
 mod network;
 mod norm;
 mod pool;
+mod recurrent;
 mod rms_norm;
+mod rnn;
+mod sequence;
 mod shape;
 mod storage;
 mod window;
@@ -56,19 +63,25 @@ use thiserror::Error;
 use crate::Scalar;
 
 pub use add::Add;
+pub use attention::Attention;
 pub use batch_norm::BatchNorm;
 pub use conv::{Conv, ConvSettings, Padding};
 pub use dense::Dense;
+pub use embedding::Embedding;
 pub use flatten::Flatten;
 pub use global_pool::GlobalAvgPool;
+pub use gru::{Gru, GruCell, Reset};
 pub use layer_norm::LayerNorm;
 pub use loss::{L2Divisor, LossConfig, Reduction};
+pub use lstm::{Lstm, LstmCell};
 pub use network::{
     Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, TensorSpec,
     Trace,
 };
 pub use pool::{Pool, PoolKind};
+pub use recurrent::{Output, Recurrent};
 pub use rms_norm::RmsNorm;
+pub use rnn::{Rnn, RnnCell};
 pub use shape::Shape;
 pub use storage::{Storage, StorageError};
 pub use window::output_size;
@@ -294,6 +307,25 @@ pub enum ShapeError {
     },
     #[error("`epsilon` is {value}; it must be a finite number > 0")]
     Epsilon { value: f64 },
+    #[error("`{key}` is \"{found}\"; {kind} takes one of {allowed:?}")]
+    Choice {
+        key: &'static str,
+        kind: &'static str,
+        found: String,
+        allowed: &'static [&'static str],
+    },
+    #[error(
+        "`gate-order` is \"{found}\"; {kind} takes each of the letters \"{letters}\" exactly once, in the order the file stacks the gate blocks"
+    )]
+    GateOrder {
+        kind: &'static str,
+        found: String,
+        letters: &'static str,
+    },
+    #[error(
+        "the width {width} is not divisible by `heads = {heads}`; use a number of heads that divides {width}"
+    )]
+    Heads { width: usize, heads: usize },
 }
 
 /// A matrix reshaped in C order whatever its memory layout (a matrix product may hand back a

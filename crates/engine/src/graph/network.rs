@@ -248,7 +248,9 @@ impl GraphBuilder {
         if self.nodes.is_empty() {
             return Err(GraphError::NoLayers);
         }
-        if self.input.dims().contains(&0) {
+        if self.input.dims().contains(&0)
+            || matches!(self.input, Shape::Tokens { vocabulary: 0, .. })
+        {
             return Err(GraphError::EmptyInput { shape: self.input });
         }
         if !(self.loss.l2.is_finite() && self.loss.l2 >= 0.0) {
@@ -662,7 +664,13 @@ impl Graph {
     }
 
     /// Whether a batch fits the graph: m ≥ 1 samples of the input's size, targets of the output's.
-    pub fn check_batch<S>(&self, x: ArrayView2<S>, y: ArrayView2<S>) -> Result<(), GraphError> {
+    /// Token inputs must be whole numbers below the vocabulary (the first one that is not is
+    /// named by sample and step).
+    pub fn check_batch<S: Scalar>(
+        &self,
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> Result<(), GraphError> {
         let what = if x.nrows() == 0 {
             "has no samples".to_string()
         } else if x.nrows() != y.nrows() {
@@ -681,10 +689,28 @@ impl Graph {
                 self.output(),
                 self.output().size()
             )
+        } else if let Some(what) = self.bad_token(x) {
+            what
         } else {
             return Ok(());
         };
         Err(GraphError::Batch { what })
+    }
+
+    /// The first token id that is not a whole number in 0..vocabulary, for token inputs.
+    fn bad_token<S: Scalar>(&self, x: ArrayView2<S>) -> Option<String> {
+        let Shape::Tokens { vocabulary, .. } = self.input else {
+            return None;
+        };
+        x.indexed_iter().find_map(|((i, t), v)| {
+            let id = v.re();
+            (id.fract() != 0.0 || !(0.0..vocabulary as f64).contains(&id)).then(|| {
+                format!(
+                    "has token id {id} at sample {i}, step {t}; ids must be whole numbers from 0 to {}",
+                    vocabulary - 1
+                )
+            })
+        })
     }
 }
 

@@ -17,6 +17,9 @@ pub enum Shape {
     },
     /// [steps, width]: one vector per step (recurrent and attention kinds).
     Sequence { steps: usize, width: usize },
+    /// [steps] integer token ids, each in 0..vocabulary, carried as the scalar's real part (an
+    /// `embedding` reads them). One value per step: a batch is m × steps.
+    Tokens { steps: usize, vocabulary: usize },
 }
 
 impl Shape {
@@ -36,6 +39,7 @@ impl Shape {
                 width,
             } => vec![channels, height, width],
             Shape::Sequence { steps, width } => vec![steps, width],
+            Shape::Tokens { steps, .. } => vec![steps],
         }
     }
 
@@ -73,6 +77,7 @@ impl Shape {
     pub(crate) fn feature_axis(&self) -> (usize, usize, usize) {
         match *self {
             Shape::Flat(n) => (1, n, 1),
+            Shape::Tokens { steps, .. } => (1, steps, 1),
             Shape::Sequence { steps, width } => (steps, width, 1),
             Shape::Signal { channels, length } => (1, channels, length),
             Shape::Image {
@@ -109,6 +114,9 @@ impl fmt::Display for Shape {
                 "[{channels}, {height}, {width}] (channels, height, width)"
             ),
             Shape::Sequence { steps, width } => write!(f, "[{steps}, {width}] (steps, width)"),
+            Shape::Tokens { steps, vocabulary } => {
+                write!(f, "[{steps}] (token ids below {vocabulary})")
+            }
         }
     }
 }
