@@ -4,7 +4,7 @@ use ndarray::Array2;
 
 use crate::{Activation, Network, Rng, Scalar};
 
-/// Features (m × s_1) and targets (m × outputs), in f64 as read from a file.
+/// Features (m × input features) and targets (m × outputs), in f64 as read from a file.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Batch {
     pub x: Array2<f64>,

@@ -164,7 +164,7 @@ impl Network {
         self.l2
     }
 
-    /// s_1, the number of input features.
+    /// The number of input features.
     pub fn inputs(&self) -> usize {
         self.layers[0].inputs
     }

@@ -148,7 +148,7 @@ impl Description {
         .parse()
     }
 
-    /// s_1, the number of input features.
+    /// The number of input features.
     pub fn inputs(&self) -> usize {
         self.network.inputs()
     }
