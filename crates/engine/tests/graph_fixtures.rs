@@ -6,13 +6,13 @@
 
 mod graph_common;
 
-use graph_common::max_relative_floored;
-use ndarray::{Array2, ArrayD, IxDyn};
+use graph_common::{activation, fixture_cases, floats, max_relative_floored, tensor, usizes};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::Loss;
 use plumb_engine::graph::{
     Add, BatchNorm, Conv, ConvSettings, Dense, Flatten, GlobalAvgPool, Graph, GraphBuilder,
     L2Divisor, LayerNorm, LossConfig, Padding, Pool, PoolKind, Reduction, RmsNorm, Shape, Storage,
 };
-use plumb_engine::{Activation, Loss};
 use serde_json::Value;
 
 /// Relative agreement demanded; entries below FLOOR times the gradient's largest entry (a conv
@@ -22,50 +22,12 @@ const TOL: f64 = 1e-10;
 const FLOOR: f64 = 1e-5;
 
 fn cases() -> Vec<Value> {
-    let path = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/../../fixtures/graph/cases.json"
-    );
-    let text = std::fs::read_to_string(path).expect("fixtures/graph/cases.json");
-    let doc: Value = serde_json::from_str(&text).expect("valid JSON");
-    doc["cases"].as_array().expect("cases").clone()
-}
-
-fn usizes(v: &Value) -> Vec<usize> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|n| n.as_u64().expect("integer") as usize)
-        .collect()
+    fixture_cases("cases.json")
 }
 
 fn pair(v: &Value) -> [usize; 2] {
     let u = usizes(v);
     [u[0], u[1]]
-}
-
-fn floats(v: &Value) -> Vec<f64> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|n| n.as_f64().expect("number"))
-        .collect()
-}
-
-fn tensor(v: &Value) -> ArrayD<f64> {
-    ArrayD::from_shape_vec(IxDyn(&usizes(&v["shape"])), floats(&v["values"])).expect("shape")
-}
-
-fn activation(name: &str) -> Activation {
-    match name {
-        "identity" => Activation::Identity,
-        "relu" => Activation::Relu,
-        "tanh" => Activation::Tanh,
-        "sigmoid" => Activation::Sigmoid,
-        "gelu" => Activation::Gelu,
-        "softmax" => Activation::Softmax,
-        other => panic!("activation {other}"),
-    }
 }
 
 /// The graph a case describes, and per tensor the storage order its file values are in.

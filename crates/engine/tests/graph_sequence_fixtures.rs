@@ -6,12 +6,12 @@
 
 mod graph_common;
 
-use graph_common::max_relative_floored;
-use ndarray::{Array2, ArrayD, IxDyn};
+use graph_common::{activation, fixture_cases, floats, max_relative_floored, tensor, usizes};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::Loss;
 use plumb_engine::graph::{
     Attention, Dense, Graph, GraphBuilder, Gru, L2Divisor, LossConfig, Lstm, Reduction, Shape,
 };
-use plumb_engine::{Activation, Loss};
 use serde_json::Value;
 
 /// Relative agreement demanded; entries below FLOOR times the gradient's largest entry (an
@@ -21,46 +21,11 @@ const TOL: f64 = 1e-10;
 const FLOOR: f64 = 1e-5;
 
 fn cases() -> Vec<Value> {
-    let path = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/../../fixtures/graph/sequence.json"
-    );
-    let text = std::fs::read_to_string(path).expect("fixtures/graph/sequence.json");
-    let doc: Value = serde_json::from_str(&text).expect("valid JSON");
-    doc["cases"].as_array().expect("cases").clone()
-}
-
-fn usizes(v: &Value) -> Vec<usize> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|n| n.as_u64().expect("integer") as usize)
-        .collect()
-}
-
-fn floats(v: &Value) -> Vec<f64> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|n| n.as_f64().expect("number"))
-        .collect()
-}
-
-fn tensor(v: &Value) -> ArrayD<f64> {
-    ArrayD::from_shape_vec(IxDyn(&usizes(&v["shape"])), floats(&v["values"])).expect("shape")
+    fixture_cases("sequence.json")
 }
 
 fn matrix(v: &Value) -> Array2<f64> {
     tensor(v).into_dimensionality().expect("2-D")
-}
-
-fn activation(name: &str) -> Activation {
-    match name {
-        "identity" => Activation::Identity,
-        "tanh" => Activation::Tanh,
-        "softmax" => Activation::Softmax,
-        other => panic!("activation {other}"),
-    }
 }
 
 fn graph(case: &Value) -> Graph {

@@ -141,3 +141,46 @@ pub fn worst(got: &Gradient<f64>, reference: &Gradient<f64>, floor: f64) -> (f64
     }
     worst
 }
+
+/// The `cases` of a committed fixture file under fixtures/graph/ (written by its generator there).
+pub fn fixture_cases(file: &str) -> Vec<serde_json::Value> {
+    let path = format!("{}/../../fixtures/graph/{file}", env!("CARGO_MANIFEST_DIR"));
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path}: {e}"));
+    let doc: serde_json::Value = serde_json::from_str(&text).expect("valid JSON");
+    doc["cases"].as_array().expect("cases").clone()
+}
+
+pub fn usizes(v: &serde_json::Value) -> Vec<usize> {
+    v.as_array()
+        .expect("array")
+        .iter()
+        .map(|n| n.as_u64().expect("integer") as usize)
+        .collect()
+}
+
+pub fn floats(v: &serde_json::Value) -> Vec<f64> {
+    v.as_array()
+        .expect("array")
+        .iter()
+        .map(|n| n.as_f64().expect("number"))
+        .collect()
+}
+
+/// A tensor written as {"shape": [...], "values": [...]} in C order.
+pub fn tensor(v: &serde_json::Value) -> ArrayD<f64> {
+    ArrayD::from_shape_vec(IxDyn(&usizes(&v["shape"])), floats(&v["values"])).expect("shape")
+}
+
+/// An activation by the name a fixture gives it.
+pub fn activation(name: &str) -> plumb_engine::Activation {
+    use plumb_engine::Activation;
+    match name {
+        "identity" => Activation::Identity,
+        "relu" => Activation::Relu,
+        "tanh" => Activation::Tanh,
+        "sigmoid" => Activation::Sigmoid,
+        "gelu" => Activation::Gelu,
+        "softmax" => Activation::Softmax,
+        other => panic!("activation {other}"),
+    }
+}
