@@ -8,46 +8,7 @@
 
 use ndarray::{Array2, ArrayView2};
 
-use crate::{Activation, Loss, Scalar};
-
-/// How the data term combines the samples (and steps).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Reduction {
-    Mean,
-    Sum,
-}
-
-/// The divisor of the L2 term (λ / divisor) · Σ w², m the number of samples.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum L2Divisor {
-    TwoM,
-    Two,
-    M,
-    One,
-}
-
-impl L2Divisor {
-    /// The description's names, in this order: "2m", "2", "m", "1".
-    pub const NAMES: [&'static str; 4] = ["2m", "2", "m", "1"];
-
-    pub fn name(&self) -> &'static str {
-        match self {
-            L2Divisor::TwoM => "2m",
-            L2Divisor::Two => "2",
-            L2Divisor::M => "m",
-            L2Divisor::One => "1",
-        }
-    }
-
-    pub fn value(&self, m: usize) -> f64 {
-        match self {
-            L2Divisor::TwoM => 2.0 * m as f64,
-            L2Divisor::Two => 2.0,
-            L2Divisor::M => m as f64,
-            L2Divisor::One => 1.0,
-        }
-    }
-}
+use crate::{Activation, L2Divisor, Loss, Reduction, Scalar};
 
 /// The loss and its conventions: everything of the description's top level the engine needs.
 #[derive(Clone, Copy, Debug, PartialEq)]

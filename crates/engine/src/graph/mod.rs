@@ -62,6 +62,7 @@ use thiserror::Error;
 
 use crate::Scalar;
 
+pub use crate::convention::{L2Divisor, Reduction};
 pub use add::Add;
 pub use attention::Attention;
 pub use batch_norm::BatchNorm;
@@ -72,7 +73,7 @@ pub use flatten::Flatten;
 pub use global_pool::GlobalAvgPool;
 pub use gru::{Gru, GruCell, Reset};
 pub use layer_norm::LayerNorm;
-pub use loss::{L2Divisor, LossConfig, Reduction};
+pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
 pub use network::{
     Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, TensorSpec,
