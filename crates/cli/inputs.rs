@@ -1,7 +1,7 @@
 //! Loading what a command runs on: the description, the weights (a file, or drawn from a seed) and
 //! the data (a file, or a seeded synthetic batch), with errors that say which file and how to fix it.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use anyhow::{Context, Result, bail};
 use plumb_audit::audit_shapes;
@@ -9,8 +9,8 @@ use plumb_engine::{Batch, Init, Loss, Rng, Weights};
 use plumb_formats::{
     DType, Description, FileFormat, TensorFile, assemble, read_data, read_tensors,
 };
+pub use plumb_report::{DataSource, WeightsSource};
 use plumb_report::{Severity, Verdict};
-use serde::{Deserialize, Serialize};
 
 use crate::args::{InitArg, Inputs};
 
@@ -22,62 +22,11 @@ const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
 /// The most pre-activation and activation values a forward pass may hold (2²⁷ = 1 GiB of f64).
 const MAX_ACTIVATION_VALUES: usize = 1 << 27;
 
-/// Where the weights came from.
-#[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(tag = "source", rename_all = "kebab-case")]
-pub enum WeightsSource {
-    File {
-        path: PathBuf,
-        format: String,
-        dtype: String,
-    },
-    Init {
-        scheme: String,
-        seed: u64,
-    },
-}
-
-/// Where the data came from.
-#[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(tag = "source", rename_all = "kebab-case")]
-pub enum DataSource {
-    File { path: PathBuf, samples: usize },
-    Synthetic { samples: usize, seed: u64 },
-}
-
-impl DataSource {
-    pub fn describe(&self) -> String {
-        match self {
-            DataSource::File { path, samples } => format!("{} ({samples} samples)", path.display()),
-            DataSource::Synthetic { samples, seed } => {
-                format!("synthetic batch of {samples} samples (seed {seed}; no --data given)")
-            }
-        }
-    }
-}
-
-impl WeightsSource {
-    pub fn describe(&self) -> String {
-        match self {
-            WeightsSource::File {
-                path,
-                format,
-                dtype,
-            } => {
-                format!("{} ({format}, {dtype})", path.display())
-            }
-            WeightsSource::Init { scheme, seed } => {
-                format!("drawn {scheme} from seed {seed} (no --weights given)")
-            }
-        }
-    }
-
-    /// The element type a gradient of these weights should be written in by default.
-    pub fn dtype(&self) -> DType {
-        match self {
-            WeightsSource::File { dtype, .. } if *dtype != "float64" => DType::F32,
-            _ => DType::F64,
-        }
+/// The element type a gradient of these weights should be written in by default.
+pub fn gradient_dtype(source: &WeightsSource) -> DType {
+    match source {
+        WeightsSource::File { dtype, .. } if *dtype != "float64" => DType::F32,
+        _ => DType::F64,
     }
 }
 

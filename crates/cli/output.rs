@@ -17,8 +17,7 @@ use serde::Serialize;
 
 use crate::args::{ColorArg, Common, FormatArg};
 
-/// The version of every JSON report's schema (docs/json.md). Bumped on any incompatible change.
-pub const SCHEMA_VERSION: u32 = 1;
+pub use plumb_report::SCHEMA_VERSION;
 
 /// The common flags, resolved against the environment.
 #[derive(Clone, Debug)]
@@ -255,13 +254,8 @@ fn read_baseline(path: &Path) -> Result<Baseline> {
 
 /// The network a run is about, for baselines: a hash of the canonical description and the shapes.
 pub fn network_id(desc: &Description) -> NetworkId {
-    let text = desc.to_toml("");
-    // FNV-1a, 64 bits: enough to tell descriptions apart, stable across versions and machines.
-    let hash = text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
-        (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
-    });
     NetworkId {
-        hash: format!("{hash:016x}"),
+        hash: plumb_fd::report::description_hash(desc),
         shapes: expected_tensors(desc, desc.layout)
             .into_iter()
             .map(|e| (e.name, e.shape))

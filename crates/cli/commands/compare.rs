@@ -17,9 +17,9 @@ use serde::Serialize;
 
 use crate::args::CompareArgs;
 use crate::commands::check::{strip_plot, verdict_cell};
-use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, Loaded, WeightsSource, load};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
+use plumb_fd::report::{Place, Tensors};
 
 /// The diagnosis of one tensor, for JSON.
 #[derive(Clone, Debug, Serialize)]

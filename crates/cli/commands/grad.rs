@@ -168,7 +168,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         let dtype = match args.dtype {
             Some(DTypeArg::F32) => DType::F32,
             Some(DTypeArg::F64) => DType::F64,
-            None => loaded.weights_source.dtype(),
+            None => crate::inputs::gradient_dtype(&loaded.weights_source),
         };
         write_tensor_file(path, format, &computed.tensors, dtype, settings.existing())?;
         computed.report.output = Some(path.clone());

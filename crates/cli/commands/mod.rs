@@ -4,7 +4,6 @@ pub mod audit;
 pub mod check;
 pub mod compare;
 pub mod grad;
-pub mod locate;
 pub mod merge;
 pub mod probe;
 pub mod shapes;

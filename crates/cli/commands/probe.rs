@@ -19,14 +19,15 @@ use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, 
 use serde::Serialize;
 
 use crate::args::ProbeArgs;
-use crate::commands::check::{method, remedies, step, verdict_cell};
+use crate::commands::check::{method, step, verdict_cell};
 use crate::commands::compare::{
     Certification, LossReport, TensorReport, certification_text, certify, error_plot,
     gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
 };
-use crate::commands::locate::Tensors;
 use crate::inputs::{DataSource, Loaded, WeightsSource, load, load_batch};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
+use plumb_fd::report::Tensors;
+use plumb_fd::report::{MAX_DIRECTIONS, remedies};
 
 #[derive(Clone, Debug, Serialize)]
 pub struct ProgramReport {
@@ -111,11 +112,11 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         .map(Sample::parse)
         .transpose()
         .map_err(|e| anyhow::anyhow!("--sample: {e}"))?;
-    if args.directions > crate::commands::check::MAX_DIRECTIONS {
+    if args.directions > MAX_DIRECTIONS {
         bail!(
             "--directions {}: at most {} random directions per tensor",
             args.directions,
-            crate::commands::check::MAX_DIRECTIONS
+            MAX_DIRECTIONS
         );
     }
     if !(args.timeout.is_finite() && args.timeout > 0.0 && args.timeout <= 86_400.0) {

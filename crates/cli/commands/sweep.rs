@@ -13,9 +13,9 @@ use serde::Serialize;
 
 use crate::args::SweepArgs;
 use crate::commands::check::precision;
-use crate::commands::locate::{Place, Tensors};
 use crate::inputs::{DataSource, WeightsSource, check_output, load};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
+use plumb_fd::report::{Place, Tensors};
 
 /// The most steps a sweep takes (each costs a few loss evaluations per method and coordinate).
 const MAX_STEPS: usize = 200;

@@ -20,12 +20,13 @@ use plumb_report::{Block, Case, Document, Verdict};
 use serde::Serialize;
 
 use crate::args::DemoArgs;
-use crate::commands::check::{self, CheckReport};
+use crate::commands::check;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
 use crate::commands::{audit, compare, probe};
 use crate::inputs::{DataSource, Loaded, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
+use plumb_fd::report::CheckReport;
 
 pub use pump::Pump;
 

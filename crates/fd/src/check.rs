@@ -153,6 +153,21 @@ impl Status {
     }
 }
 
+/// Written as its name (`"match"`, `"unsettled"`, …), as reports have always said it.
+impl serde::Serialize for Status {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(self.name())
+    }
+}
+
+impl<'de> serde::Deserialize<'de> for Status {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Status, D::Error> {
+        let name = String::deserialize(d)?;
+        Status::from_name(&name)
+            .ok_or_else(|| serde::de::Error::custom(format!("an unknown status `{name}`")))
+    }
+}
+
 /// A coordinate or direction is settled when its method's error bound is at most this fraction of
 /// the value it judges, max(|a|, |n|, floor): an error of a tenth of the value would then show.
 pub const SETTLE: f64 = 0.1;

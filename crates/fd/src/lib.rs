@@ -25,6 +25,7 @@ mod floor;
 mod gross;
 mod method;
 mod order;
+pub mod report;
 mod summary;
 mod sweep;
 

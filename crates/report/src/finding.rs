@@ -3,10 +3,10 @@
 use std::collections::BTreeMap;
 use std::fmt;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 /// How serious a finding is. An `error` fails the run (exit 1).
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Severity {
     Note,
@@ -43,7 +43,7 @@ pub fn tally(findings: &[Finding]) -> String {
 }
 
 /// The outcome of a whole run (or of one tensor of it).
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Verdict {
     Pass,
@@ -82,17 +82,17 @@ impl Verdict {
 
 /// One finding. `figures` holds the numbers behind it, by name, so that JSON consumers need not
 /// parse the message.
-#[derive(Clone, Debug, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Finding {
     pub code: String,
     pub severity: Severity,
-    #[serde(skip_serializing_if = "Option::is_none")]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub tensor: Option<String>,
     /// 1-based layer number, as in the docs.
-    #[serde(skip_serializing_if = "Option::is_none")]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
     pub layer: Option<usize>,
     pub message: String,
-    #[serde(skip_serializing_if = "BTreeMap::is_empty")]
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
     pub figures: BTreeMap<String, serde_json::Value>,
 }
 

@@ -23,6 +23,7 @@ mod html;
 mod junit;
 mod plot;
 mod render;
+mod sources;
 
 pub use baseline::{BASELINE_VERSION, Baseline, NetworkId, Recorded};
 pub use document::{Block, Case, Cell, Document, Table, Tone, number};
@@ -31,3 +32,4 @@ pub use html::render_html;
 pub use junit::render_junit;
 pub use plot::{HeatRow, StepPanel, StripSeries, error_strip, heatmap, histogram, step_plot};
 pub use render::{ColorChoice, Format, render_json, render_markdown, render_table, use_color};
+pub use sources::{DataSource, SCHEMA_VERSION, WeightsSource, figure};

@@ -1,12 +1,13 @@
 //! Where a coordinate of the engine's augmented matrices sits in the weight file's own tensors.
 
 use plumb_engine::Coord;
-use plumb_fd::Part;
 use plumb_formats::{Description, ExpectedTensor, Layout, Role, expected_tensors};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
+
+use crate::Part;
 
 /// A coordinate located for people and for JSON.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Place {
     /// The tensor of the weight file, under the description's layout.
     pub tensor: String,

@@ -1,0 +1,26 @@
+//! The reports of `plumb check` and `plumb merge`: typed (serialised as docs/json.md says, and read
+//! back by merge), built from the checker's results by the rules here, so that the command line
+//! only parses, calls, renders and exits.
+
+mod check;
+mod locate;
+mod shards;
+
+pub use check::{
+    CheckReport, Code, CoordReport, CoverageReport, DirectionReport, MAX_DIRECTIONS, RunFacts,
+    Sources, TensorReport, build, check_report, coord_report, remedies,
+};
+pub use locate::{Place, Tensors};
+pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard};
+
+use plumb_formats::Description;
+
+/// The network's identity: an FNV-1a hash (64 bits) of the canonical description, stable across
+/// versions and machines; a shard and a baseline carry it so that a changed description is seen.
+pub fn description_hash(desc: &Description) -> String {
+    let text = desc.to_toml("");
+    let hash = text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+        (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
+    });
+    format!("{hash:016x}")
+}
