@@ -154,8 +154,8 @@ pub struct CheckArgs {
     /// A fixed step for every coordinate, instead of the method's rule scaled to each parameter.
     #[arg(long, value_name = "H", allow_hyphen_values = true)]
     pub step: Option<f64>,
-    /// Coordinates to check: `all`, a number N (spread over the layers), or `per-layer:N`
-    /// [default: all up to 20000 parameters, else per-layer:1000].
+    /// Coordinates to check: `all`, a number N (N in total, spread over the layers by size), or
+    /// `per-layer:N` [default: all up to 20000 parameters, else per-layer:1000].
     #[arg(long, value_name = "SAMPLE")]
     pub sample: Option<String>,
     /// Random directions per tensor part and over the whole network (J(θ ± h·v) against g·v).
@@ -239,8 +239,9 @@ pub struct ProbeArgs {
     /// A fixed step for every coordinate.
     #[arg(long, value_name = "H", allow_hyphen_values = true)]
     pub step: Option<f64>,
-    /// Coordinates to check against the program's own loss: `all`, N, or `per-layer:N` (per
-    /// tensor) [default: all up to 20000 parameters, else per-layer:1000].
+    /// Coordinates to check against the program's own loss: `all`, N (N in total, spread over the
+    /// tensors by size, as `check` spreads them), or `per-layer:N` (per tensor) [default: all up to
+    /// 20000 parameters, else per-layer:1000].
     #[arg(long, value_name = "SAMPLE")]
     pub sample: Option<String>,
     /// Random directions per tensor and over all of them.

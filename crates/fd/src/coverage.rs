@@ -21,7 +21,7 @@ pub const FULL_CHECK_LIMIT: usize = 20_000;
 pub const DEFAULT_PER_LAYER: usize = 1_000;
 /// Every stratum (a layer's bias weights, or its other weights) gets at least this many
 /// coordinates, or all of them if it has fewer.
-const STRATUM_MINIMUM: usize = 10;
+pub(crate) const STRATUM_MINIMUM: usize = 10;
 
 impl Sample {
     /// The default for a network: everything up to [`FULL_CHECK_LIMIT`] parameters, else
@@ -65,6 +65,42 @@ impl fmt::Display for Sample {
     }
 }
 
+/// `--sample N` (`Sample::Total`): exactly N entries in total over groups of `sizes` (layers for
+/// `check`, tensors for `probe`). Every group gets `minimum` (or all it has); the rest is shared in
+/// proportion to what is left of each group, by largest remainder. When N is smaller than the
+/// minimums add up to, each group gets `least` instead, and the total is those.
+pub fn share(sizes: &[usize], minimum: usize, least: usize, n: usize) -> Vec<usize> {
+    let mut q: Vec<usize> = sizes.iter().map(|&s| s.min(minimum)).collect();
+    if q.iter().sum::<usize>() > n {
+        q = sizes.iter().map(|&s| s.min(least)).collect();
+    }
+    let rest = n.saturating_sub(q.iter().sum());
+    let room: Vec<usize> = sizes.iter().zip(&q).map(|(&s, &b)| s - b).collect();
+    let total_room: usize = room.iter().sum();
+    if rest > 0 && total_room > 0 {
+        let mut shares: Vec<(usize, usize, usize)> = room
+            .iter()
+            .enumerate()
+            .map(|(i, &r)| (i, rest * r / total_room, rest * r % total_room))
+            .collect();
+        for &(i, share, _) in &shares {
+            q[i] += share;
+        }
+        let mut left = rest - shares.iter().map(|s| s.1).sum::<usize>();
+        shares.sort_by_key(|&(i, _, rem)| (std::cmp::Reverse(rem), i));
+        for &(i, _, _) in &shares {
+            if left == 0 {
+                break;
+            }
+            if q[i] < sizes[i] {
+                q[i] += 1;
+                left -= 1;
+            }
+        }
+    }
+    q
+}
+
 /// The coordinates to check, in layer-major, row-major order. `Total(n)` with n above the number
 /// of parameters is an error the caller reports.
 pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, String> {
@@ -80,46 +116,9 @@ pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, St
                     "--sample {n} is more than the network's {total} parameters; use `all` or a smaller number"
                 ));
             }
-            // Every layer gets its strata minimum; the rest is shared in proportion to what is
-            // left of each layer, by largest remainder, so the total is exactly n (or the minimums,
-            // when n is smaller than they add up to).
-            let mut q: Vec<usize> = layers
-                .iter()
-                .map(|l| l.parameters().min(2 * STRATUM_MINIMUM))
-                .collect();
-            if q.iter().sum::<usize>() > n {
-                // Too few for the strata minimums: one bias and one other weight per layer.
-                q = layers.iter().map(|l| l.parameters().min(2)).collect();
-            }
-            let rest = n.saturating_sub(q.iter().sum());
-            let room: Vec<usize> = layers
-                .iter()
-                .zip(&q)
-                .map(|(l, &b)| l.parameters() - b)
-                .collect();
-            let total_room: usize = room.iter().sum();
-            if rest > 0 && total_room > 0 {
-                let mut shares: Vec<(usize, usize, usize)> = room
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &r)| (i, rest * r / total_room, rest * r % total_room))
-                    .collect();
-                for &(i, share, _) in &shares {
-                    q[i] += share;
-                }
-                let mut left = rest - shares.iter().map(|s| s.1).sum::<usize>();
-                shares.sort_by_key(|&(i, _, rem)| (std::cmp::Reverse(rem), i));
-                for &(i, _, _) in &shares {
-                    if left == 0 {
-                        break;
-                    }
-                    if q[i] < layers[i].parameters() {
-                        q[i] += 1;
-                        left -= 1;
-                    }
-                }
-            }
-            q
+            let sizes: Vec<usize> = layers.iter().map(|l| l.parameters()).collect();
+            // Two strata per layer: its bias weights and the others.
+            share(&sizes, 2 * STRATUM_MINIMUM, 2, n)
         }
     };
     let mut out = Vec::new();
@@ -234,6 +233,35 @@ mod tests {
         assert_eq!(per.iter().filter(|c| c.layer == 0).count(), 200);
         assert_eq!(per.iter().filter(|c| c.layer == 1).count(), 200);
         assert!(select(&n, Sample::Total(n.parameters() + 1), 1).is_err());
+    }
+
+    /// `--sample 15` is 15 coordinates in `check` (over layers) and in `probe` (over tensors):
+    /// one meaning, however the groups are cut.
+    #[test]
+    fn a_total_sample_is_that_many_in_check_and_probe() {
+        let n = Network::new(
+            4,
+            &[(5, Activation::Tanh), (3, Activation::Softmax)],
+            Loss::CrossEntropy,
+            0.1,
+        )
+        .unwrap();
+        let augmented = [25, 18];
+        let split = [20, 5, 15, 3];
+        for total in [1, 2, 4, 15, 30, 43] {
+            assert_eq!(
+                select(&n, Sample::Total(total), 3).unwrap().len(),
+                total.max(4)
+            );
+            assert_eq!(
+                crate::select_flat(&augmented, Sample::Total(total), 3).len(),
+                total.max(2)
+            );
+            assert_eq!(
+                crate::select_flat(&split, Sample::Total(total), 3).len(),
+                total.max(4)
+            );
+        }
     }
 
     #[test]

@@ -490,22 +490,14 @@ fn ask<E>(
     Ok(out)
 }
 
-/// (tensor, flat index) pairs to check: all, N spread over the tensors by size (each at least 10 or
-/// all of it), or N per tensor; seeded, sorted.
+/// (tensor, flat index) pairs to check: all, N in total spread over the tensors as `check` spreads
+/// them over layers (`coverage::share`: each tensor at least 10 or all of it, while N allows), or N
+/// per tensor; seeded, sorted.
 pub fn select_flat(sizes: &[usize], sample: Sample, seed: u64) -> Vec<(usize, usize)> {
-    let total: usize = sizes.iter().sum();
     let quotas: Vec<usize> = match sample {
         Sample::All => sizes.to_vec(),
         Sample::PerLayer(n) => sizes.iter().map(|&s| n.min(s)).collect(),
-        Sample::Total(n) => sizes
-            .iter()
-            .map(|&s| {
-                (n.min(total) * s)
-                    .div_ceil(total.max(1))
-                    .max(s.min(10))
-                    .min(s)
-            })
-            .collect(),
+        Sample::Total(n) => crate::coverage::share(sizes, crate::coverage::STRATUM_MINIMUM, 1, n),
     };
     let mut rng = Rng::new(seed ^ 0x0f1a7);
     let mut out = Vec::new();
