@@ -31,13 +31,7 @@ pub fn gradient_dtype(source: &WeightsSource) -> DType {
 }
 
 /// Everything a command that runs the engine needs.
-pub struct Loaded {
-    pub desc: Description,
-    pub weights: Weights<f64>,
-    pub weights_source: WeightsSource,
-    pub batch: Batch,
-    pub data_source: DataSource,
-}
+pub use plumb_fd::report::Loaded;
 
 pub fn init_scheme(arg: InitArg) -> Init {
     match arg {

@@ -2,7 +2,7 @@
 
 use anyhow::{Result, bail};
 use plumb_fd::report::{
-    CheckReport, Code, CoordReport, CoverageReport, MAX_DIRECTIONS, Sources, Tensors, check_report,
+    CheckReport, Code, CoordReport, CoverageReport, MAX_DIRECTIONS, Tensors, check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, SETTLE, Sample, Status, UNSETTLED_SHARE};
 use plumb_report::{
@@ -141,19 +141,7 @@ pub fn compute(
     worst_n: usize,
     progress: plumb_fd::Progress<'_>,
 ) -> Result<CheckReport> {
-    let sources = Sources {
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-    };
-    Ok(check_report(
-        &loaded.desc,
-        &loaded.weights,
-        &loaded.batch,
-        sources,
-        config,
-        worst_n,
-        progress,
-    )?)
+    Ok(check_report(loaded, config, worst_n, progress)?)
 }
 
 /// The check's pictures: relative error per tensor against each coordinate's error bound and the

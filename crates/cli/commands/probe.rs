@@ -21,11 +21,13 @@ use serde::Serialize;
 use crate::args::ProbeArgs;
 use crate::commands::check::{method, step, verdict_cell};
 use crate::commands::compare::{
-    Certification, LossReport, TensorReport, certification_text, certify, error_plot,
-    gradient_cases, judge_gradient, judge_loss, layout_tensors, loss_case, tensor_table,
+    certification_text, error_plot, gradient_cases, loss_case, tensor_table,
 };
 use crate::inputs::{DataSource, Loaded, WeightsSource, load, load_batch};
 use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
+use plumb_diagnose::report::{
+    Certification, LossReport, TensorReport, certify, judge_gradient, judge_loss, layout_tensors,
+};
 use plumb_fd::report::Tensors;
 use plumb_fd::report::{MAX_DIRECTIONS, remedies};
 

@@ -42,7 +42,7 @@ const CAUTION: &str = "A passing check says only what it checked: here, that the
 #[derive(Serialize)]
 struct PlantedReport<'a> {
     code: &'static str,
-    tensors: &'a [compare::TensorReport],
+    tensors: &'a [plumb_diagnose::report::TensorReport],
     findings: &'a [plumb_report::Finding],
 }
 
@@ -225,9 +225,11 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     let buggy =
         desc.network
             .backward_with(&pump.weights, &trace, pump.batch.y.view(), &bug_variant);
-    let outside = compare::layout_tensors(desc, &buggy);
+    let outside = plumb_diagnose::report::layout_tensors(desc, &buggy);
     let (bug_tensors, bug_findings) =
-        compare::judge_gradient(&loaded, &outside, &|_| Tolerances::for_precision(false));
+        plumb_diagnose::report::judge_gradient(&loaded, &outside, &|_| {
+            Tolerances::for_precision(false)
+        });
 
     let probed = probe_example(&loaded, bug_code, settings);
     let shipped = plumb_audit::audit(

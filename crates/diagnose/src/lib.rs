@@ -21,6 +21,7 @@ mod compare;
 mod diagnose;
 mod judge;
 mod names;
+pub mod report;
 
 pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
 pub use compare::{Named, TensorComparison, compare_tensor};

@@ -3,14 +3,14 @@
 
 use std::path::PathBuf;
 
-use plumb_engine::{Batch, Weights};
-use plumb_formats::Description;
+use plumb_engine::Weights;
 use plumb_report::{
     DataSource, Finding, SCHEMA_VERSION, Severity, StripSeries, Verdict, WeightsSource, figure,
     number as num,
 };
 use serde::{Deserialize, Serialize};
 
+use super::Loaded;
 use super::locate::{Place, Tensors};
 use crate::{
     CheckConfig, CheckError, CheckResult, FLOOR, Method, Part, Precision, Progress, SETTLE, Scope,
@@ -212,29 +212,26 @@ pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordR
     }
 }
 
-/// The inputs a check ran on, as its report names them.
-pub struct Sources {
-    pub weights: WeightsSource,
-    pub data: DataSource,
-}
-
 /// Runs the check of the reference gradient and builds its report (the command and the demo).
 pub fn check_report(
-    desc: &Description,
-    weights: &Weights<f64>,
-    batch: &Batch,
-    sources: Sources,
+    loaded: &Loaded,
     config: &CheckConfig,
     worst_n: usize,
     progress: Progress<'_>,
 ) -> Result<CheckReport, CheckError> {
+    let Loaded {
+        desc,
+        weights,
+        batch,
+        ..
+    } = loaded;
     let result = check(&desc.network, weights, batch, config, progress)?;
     let tensors = Tensors::new(desc);
     let facts = RunFacts {
         description: desc.path.clone(),
         description_hash: super::description_hash(desc),
-        weights: sources.weights,
-        data: sources.data,
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
         seed: config.seed,
         samples: batch.len(),
         step: config.step,

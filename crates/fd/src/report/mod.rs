@@ -8,12 +8,24 @@ mod shards;
 
 pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, MAX_DIRECTIONS, RunFacts,
-    Sources, TensorReport, build, check_report, coord_report, remedies,
+    TensorReport, build, check_report, coord_report, remedies,
 };
 pub use locate::{Place, Tensors};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard};
 
+use plumb_engine::{Batch, Weights};
 use plumb_formats::Description;
+use plumb_report::{DataSource, WeightsSource};
+
+/// What a run of the reference engine is on — the description, the weights and the batch — and
+/// where the weights and the data came from, as reports name them.
+pub struct Loaded {
+    pub desc: Description,
+    pub weights: Weights<f64>,
+    pub weights_source: WeightsSource,
+    pub batch: Batch,
+    pub data_source: DataSource,
+}
 
 /// The network's identity: an FNV-1a hash (64 bits) of the canonical description, stable across
 /// versions and machines; a shard and a baseline carry it so that a changed description is seen.

@@ -1,0 +1,571 @@
+//! The report of `plumb compare` (docs/json.md), and the parts `probe` shares: an outside gradient
+//! judged tensor by tensor against the reference, each wrong tensor's diagnosis, the outside loss
+//! against the reference loss, and the findings with their verdict rules.
+
+use std::path::{Path, PathBuf};
+
+use plumb_engine::{Reduction, Weights};
+use plumb_fd::report::{Loaded, Place, Tensors};
+use plumb_fd::{CheckConfig, CheckError, Method, Precision, Status, check};
+use plumb_formats::{DType, Description, Role, TensorFile, disassemble, expected_tensors};
+use plumb_report::{
+    DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, number as num,
+};
+use serde::Serialize;
+
+use crate::{
+    Binding, Expected, NameError, Named, Problem, TensorJudgement, Tolerances, bind_gradient,
+    holds_only_f32, judge, parse_map,
+};
+
+/// Why a comparison could not be made.
+#[derive(Debug, thiserror::Error)]
+pub enum CompareError {
+    /// The complex-step certification of the reference could not run.
+    #[error(transparent)]
+    Check(#[from] CheckError),
+    /// The gradient file's names cannot be bound to the parameters (the file is named).
+    #[error("{}: {error}", path.display())]
+    Names { path: PathBuf, error: NameError },
+}
+
+fn shape(s: &[usize]) -> String {
+    plumb_formats::shape_text(s)
+}
+
+/// The diagnosis of one tensor, for JSON.
+#[derive(Clone, Debug, Serialize)]
+pub struct DiagnosisReport {
+    pub code: &'static str,
+    #[serde(skip_serializing_if = "String::is_empty")]
+    pub detail: String,
+    pub residual: Option<f64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub factor: Option<f64>,
+    /// For `unexplained`: the 1-based layer whose backward step first goes wrong.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub first_wrong_layer: Option<usize>,
+}
+
+/// Which tensor of the gradient file went to which parameter, and how the names were matched.
+#[derive(Clone, Debug, Serialize)]
+pub struct NameReport {
+    pub file: String,
+    pub parameter: String,
+    /// "exact", "habit" or "map".
+    pub matched: &'static str,
+    /// For a habit: the prefix and suffix around the parameter's name, as `d…` or `….grad`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub habit: Option<String>,
+}
+
+impl NameReport {
+    fn of(b: &Binding) -> NameReport {
+        use crate::Matched;
+        let (matched, habit) = match b.matched {
+            Matched::Exact => ("exact", None),
+            Matched::Habit(p, s) => ("habit", Some(format!("{p}…{s}"))),
+            Matched::Map => ("map", None),
+        };
+        NameReport {
+            file: b.file.clone(),
+            parameter: b.parameter.clone(),
+            matched,
+            habit,
+        }
+    }
+}
+
+/// Where a tensor is worst.
+#[derive(Clone, Debug, Serialize)]
+pub struct Worst {
+    /// The coordinate in the augmented matrices (with the tensor and its index there).
+    pub place: Option<Place>,
+    pub index: Vec<usize>,
+    pub outside: f64,
+    pub reference: f64,
+    pub rel_error: f64,
+}
+
+/// One tensor of the report.
+#[derive(Clone, Debug, Serialize)]
+pub struct TensorReport {
+    pub name: String,
+    pub verdict: Verdict,
+    pub expected_shape: Vec<usize>,
+    pub found_shape: Option<Vec<usize>>,
+    pub max_rel_error: Option<f64>,
+    pub median_rel_error: Option<f64>,
+    pub cosine: Option<f64>,
+    pub scale: Option<f64>,
+    pub worst: Option<Worst>,
+    pub diagnosis: Option<DiagnosisReport>,
+    /// Every entry's relative error (for the HTML plot; not in JSON).
+    #[serde(skip)]
+    pub rel_errors: Vec<f64>,
+}
+
+/// The complex-step certification of the reference.
+#[derive(Clone, Debug, Serialize)]
+pub struct Certification {
+    pub method: &'static str,
+    pub checked: usize,
+    pub parameters: usize,
+    pub max_rel_error: f64,
+    pub certified: bool,
+}
+
+/// The user's loss against the reference loss.
+#[derive(Clone, Debug, Serialize)]
+pub struct LossReport {
+    pub outside: f64,
+    pub reference: f64,
+    pub rel_error: f64,
+    pub matches: bool,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub explanation: Option<String>,
+}
+
+/// The JSON report of `plumb compare` (docs/json.md).
+#[derive(Serialize)]
+pub struct CompareReport {
+    pub verdict: Verdict,
+    pub schema_version: u32,
+    pub command: &'static str,
+    pub description: PathBuf,
+    pub weights: WeightsSource,
+    pub data: DataSource,
+    pub gradient: PathBuf,
+    pub precision: &'static str,
+    /// "dtype": the precision is the file's dtype; "values": a float64 file whose values are all
+    /// float32 values, judged as float32.
+    pub precision_from: &'static str,
+    /// The conventions the reference follows (from the description).
+    pub conventions: ConventionsReport,
+    /// Which file tensor went to which parameter.
+    pub names: Vec<NameReport>,
+    pub tolerance: f64,
+    pub residual_tolerance: f64,
+    pub reference: Certification,
+    pub loss: Option<LossReport>,
+    pub tensors: Vec<TensorReport>,
+    pub findings: Vec<Finding>,
+}
+
+/// The layout's tensors of an augmented gradient, as named tensors.
+pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Named> {
+    disassemble(desc, w)
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect()
+}
+
+/// The declared conventions, for reports.
+#[derive(Clone, Debug, Serialize)]
+pub struct ConventionsReport {
+    pub reduction: &'static str,
+    pub l2: f64,
+    pub l2_divisor: &'static str,
+    pub l2_on_bias: bool,
+}
+
+impl ConventionsReport {
+    pub fn of(desc: &Description) -> ConventionsReport {
+        let c = desc.network.conventions();
+        ConventionsReport {
+            reduction: c.reduction.name(),
+            l2: desc.network.l2(),
+            l2_divisor: c.l2_divisor.name(),
+            l2_on_bias: c.l2_on_bias,
+        }
+    }
+
+    /// "mean; L2 (0.1/2m)·Σw² on the weights" and the like.
+    pub fn describe(&self) -> String {
+        let l2 = if self.l2 == 0.0 {
+            "no L2 term".to_string()
+        } else {
+            format!(
+                "L2 term ({}/{})·Σw² over the weights{}",
+                self.l2,
+                self.l2_divisor,
+                if self.l2_on_bias { " and biases" } else { "" }
+            )
+        };
+        format!("data term {} over the batch; {l2}", self.reduction)
+    }
+}
+
+pub fn expected(desc: &Description) -> Vec<Expected> {
+    expected_tensors(desc, desc.layout)
+        .into_iter()
+        .map(|e| Expected {
+            layer: e.layer,
+            name: e.name,
+            shape: e.shape,
+            bias: e.role == Role::Bias,
+        })
+        .collect()
+}
+
+/// The reference certified by the complex step on the default sample.
+pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification, CheckError> {
+    let mut cfg = CheckConfig::new(Method::ComplexStep, Precision::F64);
+    cfg.directions = Some(0);
+    cfg.seed = seed;
+    let r = check(
+        &loaded.desc.network,
+        &loaded.weights,
+        &loaded.batch,
+        &cfg,
+        &|_, _| {},
+    )?;
+    Ok(Certification {
+        method: "complex-step",
+        checked: r.coverage.checked,
+        parameters: r.coverage.parameters,
+        max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),
+        certified: r.coords.iter().all(|c| c.status != Status::Mismatch),
+    })
+}
+
+/// The verdicts on an outside gradient and their findings (shared with `probe`).
+pub fn judge_gradient(
+    loaded: &Loaded,
+    outside: &[Named],
+    tol: &dyn Fn(&str) -> Tolerances,
+) -> (Vec<TensorReport>, Vec<Finding>) {
+    let desc = &loaded.desc;
+    let to_tensors = |w: &Weights<f64>| layout_tensors(desc, w);
+    let problem = Problem::new(&desc.network, &loaded.weights, &loaded.batch, &to_tensors);
+    let judged = judge(&problem, outside, &expected(desc), tol);
+    let tensors = Tensors::new(desc);
+    let mut findings = Vec::new();
+    let mut reports = Vec::new();
+    for j in &judged {
+        let report = tensor_report(&tensors, j, outside);
+        if report.verdict == Verdict::Fail {
+            findings.push(mismatch_finding(&report, tensors.layer_of(&j.name)));
+        }
+        reports.push(report);
+    }
+    // Tensors under other names with the missing ones' shapes, in order: say which name goes where.
+    let absent: Vec<&TensorJudgement> = judged.iter().filter(|j| j.found_shape.is_none()).collect();
+    let strays: Vec<&Named> = outside
+        .iter()
+        .filter(|u| !judged.iter().any(|j| j.name == u.name))
+        .collect();
+    if !absent.is_empty()
+        && absent.len() == strays.len()
+        && absent
+            .iter()
+            .zip(&strays)
+            .all(|(a, u)| a.expected_shape == u.shape)
+    {
+        let pairs: Vec<String> = absent
+            .iter()
+            .zip(&strays)
+            .map(|(a, u)| format!("{}={}", u.name, a.name))
+            .collect();
+        findings.push(Finding::new(
+            "gradient-names",
+            Severity::Error,
+            format!(
+                "the gradient's tensors have the layout's shapes under names plumb cannot match ({}): if they are in that order, run again with --map {}; or write them under the parameters' names",
+                pairs.join(", "),
+                pairs.join(",")
+            ),
+        ));
+    }
+    for u in outside {
+        if !judged.iter().any(|j| j.name == u.name) {
+            findings.push(
+                Finding::new(
+                    "gradient-tensor-unexpected",
+                    Severity::Warning,
+                    format!(
+                        "{} is in the gradient, but no tensor of the layout has that name",
+                        shape(&u.shape)
+                    ),
+                )
+                .tensor(&u.name),
+            );
+        }
+    }
+    (reports, findings)
+}
+
+fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> TensorReport {
+    let worst = j.comparison.as_ref().map(|c| {
+        let u = outside.iter().find(|t| t.name == j.name).expect("compared");
+        let index = u.index_of(c.worst);
+        Worst {
+            place: tensors
+                .coord_of(&j.name, &index)
+                .map(|co| tensors.place(co)),
+            index,
+            outside: c.worst_outside,
+            reference: c.worst_reference,
+            rel_error: c.max_rel_error,
+        }
+    });
+    TensorReport {
+        name: j.name.clone(),
+        verdict: if j.matches {
+            Verdict::Pass
+        } else {
+            Verdict::Fail
+        },
+        expected_shape: j.expected_shape.clone(),
+        found_shape: j.found_shape.clone(),
+        max_rel_error: j.comparison.as_ref().map(|c| c.max_rel_error),
+        median_rel_error: j.comparison.as_ref().map(|c| c.median_rel_error),
+        cosine: j.comparison.as_ref().map(|c| c.cosine),
+        scale: j.comparison.as_ref().map(|c| c.scale),
+        worst,
+        diagnosis: j.diagnosis.as_ref().map(|d| DiagnosisReport {
+            code: d.code,
+            detail: d.label.clone(),
+            residual: d.residual.is_finite().then_some(d.residual),
+            factor: d.factor,
+            first_wrong_layer: d.first_wrong_layer.map(|l| l + 1),
+        }),
+        rel_errors: j
+            .comparison
+            .as_ref()
+            .map_or_else(Vec::new, |c| c.rel_errors.clone()),
+    }
+}
+
+fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
+    let d = t.diagnosis.as_ref();
+    let code = d.map_or("unexplained", |d| d.code);
+    let what = match code {
+        "unexplained" => "wrong, and no catalogued mistake reproduces it".to_string(),
+        c => {
+            let mut s = format!("wrong: {c}");
+            if let Some(d) = d {
+                if !d.detail.is_empty() {
+                    s.push_str(&format!(" ({})", d.detail));
+                }
+                if let Some(f) = d.factor {
+                    s.push_str(&format!(", factor {}", num(f)));
+                }
+                if let Some(r) = d.residual {
+                    s.push_str(&format!(" reproduces it to a residual of {}", num(r)));
+                }
+            }
+            s
+        }
+    };
+    let figures = match (&t.max_rel_error, &t.worst, &t.found_shape) {
+        (Some(m), Some(w), _) => format!(
+            "; max relative error {}, worst at {} (outside {:.6e}, reference {:.6e}), cosine {}, scale {}",
+            num(*m),
+            w.place
+                .as_ref()
+                .map_or_else(|| format!("{:?}", w.index), |p| p.label()),
+            w.outside,
+            w.reference,
+            t.cosine.map_or("—".into(), |c| format!("{c:.6}")),
+            t.scale.map_or("—".into(), num),
+        ),
+        (_, _, Some(found)) => format!(
+            "; its shape is {}, expected {}",
+            shape(found),
+            shape(&t.expected_shape)
+        ),
+        (_, _, None) => "; the tensor is absent from the gradient".to_string(),
+    };
+    let mut f = Finding::new(
+        "gradient-mismatch",
+        Severity::Error,
+        format!("{what}{figures}"),
+    )
+    .tensor(&t.name);
+    if let Some(l) = layer {
+        f = f.layer(l);
+    }
+    f = f.figure("diagnosis", code);
+    if let Some(fa) = d.and_then(|d| d.factor) {
+        f = f.figure("factor", fa);
+    }
+    f
+}
+
+/// The outside loss against the reference, with the likely reason when they differ.
+pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, Option<Finding>) {
+    let net = &loaded.desc.network;
+    let b = &loaded.batch;
+    let trace = net.forward(&loaded.weights, b.x.view());
+    let data = net.data_loss(&trace, b.y.view());
+    let l2 = net.l2_penalty(&loaded.weights, b.len());
+    let reference = data + l2;
+    let tol = if single { 1e-4 } else { 1e-8 };
+    let rel = |v: f64, r: f64| (v - r).abs() / r.abs().max(f64::MIN_POSITIVE);
+    let err = rel(outside, reference);
+    let matches = err <= tol;
+    let m = b.len() as f64;
+    let c = net.conventions();
+    // The L2 term under each divisor, from the declared one.
+    let declared = c.l2_divisor.value(b.len());
+    let other_divisor = plumb_engine::L2Divisor::ALL
+        .into_iter()
+        .filter(|d| *d != c.l2_divisor)
+        .find(|d| l2 > 0.0 && rel(outside, data + l2 * declared / d.value(b.len())) <= tol);
+    let explanation = if matches {
+        None
+    } else if l2 > 0.0 && rel(outside, data) <= tol {
+        Some("the L2 term is left out of the loss".to_string())
+    } else if c.reduction == Reduction::Mean
+        && (rel(outside, m * data + l2) <= tol || rel(outside, m * data + m * l2) <= tol)
+    {
+        Some("the loss is summed over the batch, not averaged as reduction = \"mean\" says".into())
+    } else if c.reduction == Reduction::Sum
+        && (rel(outside, data / m + l2) <= tol || rel(outside, (data + l2) / m) <= tol)
+    {
+        Some("the loss is averaged over the batch, not summed as reduction = \"sum\" says".into())
+    } else {
+        other_divisor.map(|d| {
+            format!(
+                "the L2 term is (λ/{d})·Σw², not (λ/{})·Σw² as l2-divisor = \"{}\" says",
+                c.l2_divisor, c.l2_divisor
+            )
+        })
+    };
+    let finding = (!matches).then(|| {
+        Finding::new(
+            "loss-mismatch",
+            Severity::Error,
+            format!(
+                "the outside loss is {outside:.12e}, the reference {reference:.12e} (relative error {}){}",
+                num(err),
+                explanation
+                    .as_deref()
+                    .map_or(String::new(), |e| format!(": {e}"))
+            ),
+        )
+        .figure("outside", outside)
+        .figure("reference", reference)
+    });
+    (
+        LossReport {
+            outside,
+            reference,
+            rel_error: err,
+            matches,
+            explanation,
+        },
+        finding,
+    )
+}
+
+/// Compares the outside gradient `file` (read from `gradient`, bound to the layout) and, when
+/// given, the outside loss with the reference, and builds the report: names matched (`map` is
+/// `--map`'s text), each tensor held to the precision it was stored or computed in.
+pub fn compare_report(
+    loaded: &Loaded,
+    gradient: &Path,
+    file: TensorFile,
+    map: &str,
+    loss: Option<f64>,
+    seed: u64,
+) -> Result<CompareReport, CompareError> {
+    // A float64 file whose values are all float32 values was computed in float32: judge it so.
+    let f64_values = || {
+        file.tensors
+            .iter()
+            .filter(|t| t.dtype == DType::F64)
+            .flat_map(|t| t.data.iter().copied())
+    };
+    let widened = f64_values().next().is_some()
+        && f64_values().any(|v| v != 0.0)
+        && file
+            .tensors
+            .iter()
+            .filter(|t| t.dtype == DType::F64)
+            .all(|t| holds_only_f32(&t.data));
+    let stored = |d: DType| {
+        if widened && d == DType::F64 {
+            DType::F32
+        } else {
+            d
+        }
+    };
+    let single = !file.tensors.iter().any(|t| stored(t.dtype) == DType::F64);
+    let map = parse_map(map).map_err(|error| CompareError::Names {
+        path: gradient.to_path_buf(),
+        error,
+    })?;
+    let dtypes: Vec<DType> = file.tensors.iter().map(|t| stored(t.dtype)).collect();
+    let outside: Vec<Named> = file
+        .tensors
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect();
+    let (outside, bindings) =
+        bind_gradient(&expected(&loaded.desc), outside, &map).map_err(|error| {
+            CompareError::Names {
+                path: gradient.to_path_buf(),
+                error,
+            }
+        })?;
+    // Each tensor is held to the precision it was stored (or computed) in.
+    let eps_of: std::collections::HashMap<String, f64> = outside
+        .iter()
+        .zip(&dtypes)
+        .map(|(t, d)| {
+            let eps = match d {
+                DType::F64 => f64::EPSILON,
+                DType::F32 => f32::EPSILON as f64,
+                DType::F16 => 9.765625e-4,
+                _ => 7.8125e-3,
+            };
+            (t.name.clone(), eps)
+        })
+        .collect();
+    let tol_of =
+        |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
+    let tol = Tolerances::for_precision(single);
+    let reference = certify(loaded, seed)?;
+    let (tensors, mut findings) = judge_gradient(loaded, &outside, &tol_of);
+    if widened {
+        findings.push(Finding::new(
+            "gradient-precision",
+            Severity::Note,
+            "the gradient is stored as float64, but every value is exactly a float32 value: it was computed in float32, and is judged at float32's resolution",
+        ));
+    }
+    if !reference.certified {
+        findings.push(Finding::new(
+            "reference-uncertified",
+            Severity::Warning,
+            "the complex step disagrees with the reference gradient somewhere on this network; run `plumb check --method complex-step` before trusting the diagnosis",
+        ));
+    }
+    let loss = loss.map(|v| {
+        let (r, f) = judge_loss(loaded, v, single);
+        findings.extend(f);
+        r
+    });
+    let report = CompareReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "compare",
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        gradient: gradient.to_path_buf(),
+        precision: if single { "f32" } else { "f64" },
+        precision_from: if widened { "values" } else { "dtype" },
+        conventions: ConventionsReport::of(&loaded.desc),
+        names: bindings.iter().map(NameReport::of).collect(),
+        tolerance: tol.agreement,
+        residual_tolerance: tol.residual,
+        reference,
+        loss,
+        tensors,
+        findings,
+    };
+    Ok(report)
+}
