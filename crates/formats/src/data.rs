@@ -57,6 +57,12 @@ pub enum DataError {
     NoSamples { path: PathBuf },
 
     #[error(
+        "{}: array `x` holds no samples (its first axis has length 0); save at least one sample",
+        .path.display()
+    )]
+    NoSamplesInArray { path: PathBuf },
+
+    #[error(
         "{}: line 1: the header has {found} columns, but the network needs {inputs} features + \
          {outputs} targets = {}{}; add or remove columns, or fix `inputs` and the output layer's \
          units in the network description",

@@ -216,7 +216,7 @@ fn read_npz(
     let x_layout = FileLayout::of(input, order, ("features", "feature"));
     let m = samples_of_x(path, input, order, &x_layout, &x)?;
     if m == 0 {
-        return Err(DataError::NoSamples {
+        return Err(DataError::NoSamplesInArray {
             path: path.to_path_buf(),
         });
     }
