@@ -16,7 +16,7 @@
 
 use std::path::Path;
 
-use ndarray::{ArrayD, IxDyn};
+use ndarray::{Array2, ArrayD, IxDyn};
 use plumb_engine::Batch;
 use plumb_engine::graph::Shape;
 
@@ -62,25 +62,19 @@ pub fn read_graph_data(
             input: *input,
         });
     }
-    if csv {
-        return match (input, output) {
-            (&Shape::Flat(inputs), &Shape::Flat(outputs)) => read_csv(path, inputs, outputs),
-            _ => Err(DataError::CsvNotFlat {
-                path: path.to_path_buf(),
-                shape: if matches!(input, Shape::Flat(_)) {
-                    *output
-                } else {
-                    *input
-                },
-                what: if matches!(input, Shape::Flat(_)) {
-                    "output"
-                } else {
-                    "input"
-                },
-            }),
-        };
+    if !csv {
+        return read_npz(path, input, output, order);
     }
-    read_npz(path, input, output, order)
+    let (what, shape) = match (input, output) {
+        (&Shape::Flat(inputs), &Shape::Flat(outputs)) => return read_csv(path, inputs, outputs),
+        (Shape::Flat(_), _) => ("output", *output),
+        _ => ("input", *input),
+    };
+    Err(DataError::CsvNotFlat {
+        path: path.to_path_buf(),
+        what,
+        shape,
+    })
 }
 
 fn is_spatial(shape: &Shape) -> bool {
@@ -241,8 +235,8 @@ fn read_npz(
         Targets::Labels { classes, steps } => one_hot(path, &y, classes, steps)?,
     };
     Ok(Batch {
-        x: ndarray::Array2::from_shape_vec((m, input.size()), x).expect("checked shape of x"),
-        y: ndarray::Array2::from_shape_vec((m, output.size()), y).expect("checked shape of y"),
+        x: Array2::from_shape_vec((m, input.size()), x).expect("checked shape of x"),
+        y: Array2::from_shape_vec((m, output.size()), y).expect("checked shape of y"),
     })
 }
 
@@ -291,9 +285,11 @@ fn other_order(shape: &Shape, order: AxisOrder, array: &str, found: &[usize]) ->
     let layout = FileLayout::of(shape, other, ("", ""));
     let mut text = format!("; {flag}, {array} would be {}", layout.text("samples"));
     if found.len() == layout.axes.len() + 1 && found[1..] == layout.dims()[..] {
-        text.push_str(match order {
-            AxisOrder::ChannelsFirst => " — the file holds that order: add --channels-last",
-            AxisOrder::ChannelsLast => " — the file holds that order: drop --channels-last",
+        // The flag is the fix for x; y follows x's order, so for y alone it is not.
+        text.push_str(match (array, order) {
+            ("x", AxisOrder::ChannelsFirst) => " — the file holds that order: add --channels-last",
+            ("x", AxisOrder::ChannelsLast) => " — the file holds that order: drop --channels-last",
+            _ => " — y holds that order, but x and y are read in one order: save both alike",
         });
     }
     text

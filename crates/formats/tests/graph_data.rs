@@ -333,6 +333,32 @@ fn shape_and_value_errors_name_the_file_and_the_expected_shape() {
     );
 }
 
+/// For y alone the flag is not the fix: x and y are read in one order.
+#[test]
+fn targets_in_the_other_order_than_x_are_named() {
+    // x (3, 4, 5, 2) read channels-first as [4, 5, 2]; y (3, 3, 4, 3) is the output [3, 3, 4]
+    // channels-last.
+    let input = Shape::Image {
+        channels: 4,
+        height: 5,
+        width: 2,
+    };
+    let output = Shape::Image {
+        channels: 3,
+        height: 3,
+        width: 4,
+    };
+    assert_has(
+        &error("image-targets-last", &input, &output, ChannelsFirst),
+        &[
+            "array `y` has shape (3, 3, 4, 3)",
+            "y must be (3, 3, 3, 4) (samples, channels, height, width) of targets",
+            "with --channels-last, y would be (samples, 3, 4, 3)",
+            "y holds that order, but x and y are read in one order: save both alike",
+        ],
+    );
+}
+
 #[test]
 fn csv_holds_flat_data_only_and_the_flag_needs_channels() {
     let csv = fixture("small.csv");
