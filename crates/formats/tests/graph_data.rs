@@ -500,3 +500,50 @@ fn random_arrays_against_random_shapes_never_panic() {
     assert!(read > 50 && refused > 50, "{read} read, {refused} refused");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// What the reader returns is what the engine takes: batches read for a graph pass its
+/// `check_batch`, and give a finite loss at seeded weights.
+#[test]
+fn read_batches_pass_the_graphs_check() {
+    use plumb_engine::graph::{
+        Conv, ConvSettings, Dense, Embedding, Flatten, GraphBuilder, LossConfig, Lstm,
+    };
+    use plumb_engine::{Activation, Init, Rng};
+    let mut conv = GraphBuilder::new(IMAGE, LossConfig::cross_entropy());
+    conv.push(None, Activation::Relu, |s| {
+        Conv::new(&ConvSettings::conv2d(4, [2, 2]), s)
+    })
+    .unwrap();
+    conv.push(None, Activation::Identity, Flatten::new).unwrap();
+    conv.push(None, Activation::Softmax, |s| Dense::new(3, s))
+        .unwrap();
+    let conv = conv.finish().unwrap();
+    let mut tokens = GraphBuilder::new(TOKENS, LossConfig::cross_entropy());
+    tokens
+        .push(None, Activation::Identity, |s| Embedding::new(4, s))
+        .unwrap();
+    tokens
+        .push(None, Activation::Identity, |s| {
+            Lstm::new(5, "ifgo", "all", s)
+        })
+        .unwrap();
+    tokens
+        .push(None, Activation::Softmax, |s| Dense::new(3, s))
+        .unwrap();
+    let tokens = tokens.finish().unwrap();
+    for (case, graph, order) in [
+        ("image-first", &conv, ChannelsFirst),
+        ("image-last", &conv, ChannelsLast),
+        ("image-last-fortran", &conv, ChannelsLast),
+        ("tokens-steps", &tokens, ChannelsFirst),
+    ] {
+        let batch =
+            read_graph_data(&graph_file(case), &graph.input(), &graph.output(), order).unwrap();
+        graph
+            .check_batch(batch.x.view(), batch.y.view())
+            .unwrap_or_else(|e| panic!("{case}: {e}"));
+        let params = Init::GlorotUniform.graph_params(graph, &mut Rng::new(1));
+        let loss = graph.loss(&params, batch.x.view(), batch.y.view());
+        assert!(loss.is_finite() && loss > 0.0, "{case}: {loss}");
+    }
+}
