@@ -22,6 +22,7 @@ mod data;
 mod description;
 #[doc(hidden)]
 pub mod fuzz;
+mod graph_data;
 mod input;
 mod layout;
 mod npy;
@@ -43,6 +44,7 @@ pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
+pub use graph_data::{AxisOrder, read_graph_data};
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };
