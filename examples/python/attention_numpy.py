@@ -63,7 +63,7 @@ def forward(p, x):
     split = {n: s[n].reshape(*s[n].shape[:2], HEADS, D).transpose(0, 2, 1, 3)
              for n in ("query", "key", "value")}                       # (m, heads, steps, d)
     s["split"] = split
-    s["P"] = softmax_rows(split["query"] @ split["key"].transpose(0, 1, 3, 2) / np.sqrt(D),
+    s["P"] = softmax_rows(split["query"] @ split["key"].transpose(0, 1, 3, 2) / D ** 0.5,
                           ALLOWED)
     s["O"] = (s["P"] @ split["value"]).transpose(0, 2, 1, 3).reshape(x.shape[0], STEPS, WIDTH)
     s["a"] = s["O"] @ p["attend.output.weight"].T + p["attend.output.bias"]
@@ -97,14 +97,14 @@ def gradient_of(p, x, y, code=None):
     q, k, v = s["split"]["query"], s["split"]["key"], s["split"]["value"]
     P = s["P"]
     if code == "mask-ignored-in-backward":  # P recomputed with every step allowed
-        P = softmax_rows(q @ k.transpose(0, 1, 3, 2) / np.sqrt(D), np.ones_like(ALLOWED))
+        P = softmax_rows(q @ k.transpose(0, 1, 3, 2) / D ** 0.5, np.ones_like(ALLOWED))
     dv = P.transpose(0, 1, 3, 2) @ dO
     dP = dO @ v.transpose(0, 1, 3, 2)
     if code == "softmax-jacobian-diagonal":
         dS = P * (1 - P) * dP
     else:
         dS = P * (dP - (dP * P).sum(axis=-1, keepdims=True))
-    scale = 1.0 if code == "attention-scale-missing" else 1 / np.sqrt(D)
+    scale = 1.0 if code == "attention-scale-missing" else 1 / D ** 0.5
     dq, dk = dS @ k * scale, dS.transpose(0, 1, 3, 2) @ q * scale
     de = 0
     for n, dh in (("query", dq), ("key", dk), ("value", dv)):
