@@ -5,7 +5,7 @@ The network is examples/pump.toml (examples/pump-relu.toml with --hidden relu): 
 centrifugal-pump state classifier (normal, cavitating, bearing wear) from four invented sensor
 readings, 4 inputs -> 8 -> 6 hidden units -> 3 softmax, cross-entropy, l2 = 0.01, augmented layout
 (layerJ is units x (inputs + 1), column 0 multiplies the bias unit). It speaks plumb's wire protocol
-through plumb_wire.py; anything for people goes to stderr.
+through the plumb_wire package (clients/python); anything for people goes to stderr.
 
   --plant CODE[:LAYER]  plant one mistake of docs/mistakes.md (every code but `unexplained`).
                         Whole-network codes change every layer, or only layer LAYER (1..3).
@@ -25,8 +25,12 @@ import time
 
 import numpy as np
 
-sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from plumb_wire import serve  # noqa: E402
+try:
+    from plumb_wire import serve
+except ImportError:  # not installed: the package in this repository (clients/python)
+    sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "..",
+                                    "clients", "python"))
+    from plumb_wire import serve
 
 SIZES = [4, 8, 6, 3]
 L2 = 0.01
