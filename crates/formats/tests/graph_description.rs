@@ -533,3 +533,29 @@ activation = "softmax"
         assert!(d.is_dense());
     }
 }
+
+#[test]
+fn the_demo_descriptions_of_scenarios_b_and_c_parse() {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../fixtures/nets");
+    let cnn = GraphDescription::read(&dir.join("pump-cnn.toml")).unwrap();
+    // By hand: stem 4·1·5 + 4 = 24; its norm 4 + 4; block 4·4·3 + 4 = 52; classes 3·4 + 3 = 15.
+    assert_eq!(cnn.graph.parameters(), 24 + 8 + 52 + 15);
+    // "same" and padding 1 with kernel 3 keep 64; max-pool 4 gives ⌊(64 − 4)/4⌋ + 1 = 16.
+    assert_eq!(
+        outputs(&cnn)[4],
+        Shape::Signal {
+            channels: 4,
+            length: 16
+        }
+    );
+    let seq = GraphDescription::read(&dir.join("pump-sequence.toml")).unwrap();
+    // By hand: lstm 4·8·4 + 4·8·8 + 4·8 = 416; attention 4·(8·8 + 8) = 288; layer-norm 16;
+    // gru 3·6·8 + 3·6·6 + 2·18 = 288; classes 3·6 + 3 = 21.
+    assert_eq!(seq.graph.parameters(), 416 + 288 + 16 + 288 + 21);
+    assert_eq!(seq.graph.output(), Shape::Flat(3));
+    for d in [&cnn, &seq] {
+        assert!(!d.is_dense());
+        let e = Description::read(&d.path).unwrap_err();
+        assert!(e.message.contains("does not take"), "{e}");
+    }
+}
