@@ -21,6 +21,8 @@
 //! ```
 
 mod flow;
+mod graph_audit;
+mod graph_health;
 mod health;
 mod init;
 mod release;
@@ -32,13 +34,19 @@ mod units;
 mod values;
 
 pub use flow::{LayerFlow, layer_flow, sigma_max};
-pub use health::{BINS, LayerHealth, layer_health, sparkline};
+pub use graph_audit::{GraphWeights, audit_graph, fitted_shapes};
+pub use graph_health::{
+    InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
+    output_units,
+};
+pub use health::{BINS, LayerHealth, Units, layer_health, sparkline, unit_health};
 pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
+    tensor_init,
 };
 pub use release::{Audit, Thresholds, audit, verdict_at};
 pub use robust::{Moments, largest, moments, norm};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
 pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
 pub use units::{unit_ranges, units_phrase};
-pub use values::check_values;
+pub use values::{Values, check_values, values_findings};
