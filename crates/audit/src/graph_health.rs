@@ -357,8 +357,11 @@ pub fn inside_findings(
             "unused-rows",
             Severity::Note,
             format!(
-                "{n} of the {} rows of {layer} (token {list}) are never read by the probe data: the audit could not see them used, and rows of tokens absent from the training data keep their initial values",
+                "{n} of the {} rows of {layer} ({} {list}) {} never read by the probe data: the audit could not see {} used, and rows of tokens absent from the training data keep their initial values",
                 h.fractions.len(),
+                of("token", "tokens"),
+                of("is", "are"),
+                of("it", "them"),
             ),
         )
         .figure("tokens", &h.flagged),

@@ -2,80 +2,21 @@
 //! absent on a healthy one, and a dense graph's audit against today's dense audit on the same
 //! weights. Thresholds are plumb's defaults (docs/audit.md).
 
+mod graph_common;
+
 use std::path::Path;
 
-use ndarray::{Array2, ArrayD, IxDyn};
-use plumb_audit::{
-    Audit, GraphWeights, KindThresholds, Thresholds, audit, audit_graph, fitted_shapes,
-};
+use graph_common::{alarms, has, healthy, probe, run};
+
+use ndarray::{ArrayD, IxDyn};
+use plumb_audit::{GraphWeights, KindThresholds, Thresholds, audit, audit_graph, fitted_shapes};
 use plumb_engine::graph::{
     BatchNorm, Conv, ConvSettings, Dense, Flatten, Graph, GraphBuilder, LayerNorm, LossConfig,
     Shape,
 };
-use plumb_engine::{Activation, Batch, Init, Rng};
+use plumb_engine::{Activation, Init};
 use plumb_formats::{DType, Description, FileFormat, Tensor, TensorFile};
 use plumb_report::Severity;
-
-/// He-normal draws for weights (σ = √(2 / fan-in), He et al. 2015), 0.1 for biases, 1 and 0 for
-/// norm scales and shifts.
-fn healthy(g: &Graph, seed: u64) -> Vec<ArrayD<f64>> {
-    let mut rng = Rng::new(seed);
-    g.tensors()
-        .iter()
-        .map(|t| {
-            let s = &t.spec;
-            let sd = (2.0 / s.fan_in as f64).sqrt();
-            ArrayD::from_shape_fn(IxDyn(&s.shape), |_| match t.spec.suffix {
-                "bias" => 0.1,
-                "scale" => 1.0,
-                "shift" => 0.0,
-                _ => sd * rng.normal(),
-            })
-        })
-        .collect()
-}
-
-/// m samples of standard normal inputs and one-hot targets of `classes`.
-fn probe(g: &Graph, m: usize, seed: u64) -> Batch {
-    let mut rng = Rng::new(seed);
-    let n = g.input().size();
-    let c = g.output().size();
-    let x = Array2::from_shape_fn((m, n), |_| rng.normal());
-    let y = Array2::from_shape_fn((m, c), |(i, j)| f64::from(u8::from(i % c == j)));
-    Batch { x, y }
-}
-
-fn run(g: &Graph, params: &[ArrayD<f64>], batch: &Batch) -> Audit {
-    let dtypes = vec![DType::F64; params.len()];
-    let w = GraphWeights {
-        graph: g,
-        params,
-        dtypes: &dtypes,
-    };
-    audit_graph(
-        &w,
-        fitted_shapes(&w),
-        batch,
-        None,
-        &Thresholds::default(),
-        &KindThresholds::default(),
-        7,
-    )
-    .expect("the weights and batch fit")
-}
-
-/// The codes of the warnings and errors (notes such as a zero bias left aside).
-fn alarms(a: &Audit) -> Vec<String> {
-    a.findings
-        .iter()
-        .filter(|f| f.severity > Severity::Note)
-        .map(|f| f.code.clone())
-        .collect()
-}
-
-fn has(a: &Audit, code: &str) -> bool {
-    a.findings.iter().any(|f| f.code == code)
-}
 
 /// conv1d (3 → 4 channels, kernel 3) with `act`, flatten, dense softmax over 3 classes.
 fn conv_net(act: Activation) -> Graph {
@@ -288,6 +229,12 @@ fn collapsed_norm_scales_and_their_boundary() {
         ln.message.contains(&format!("feature {n}")),
         "{}",
         ln.message
+    );
+    // The report shows the measures in a table of their own.
+    assert!(
+        a.sections()
+            .iter()
+            .any(|b| matches!(b, plumb_report::Block::Heading(h) if h == "inside the layers"))
     );
     // The failing scale tensor has a test case of its own.
     assert!(a.cases().iter().any(|c| c.name == "audit layer2.scale"));
