@@ -4,6 +4,8 @@
 //! (`plumb audit`): the shapes, then the values (non-finite, implausible magnitudes, constant
 //! tensors), symmetric units, unit health on probe data, the initialisation scale (and a
 //! Kolmogorov–Smirnov test against a claimed scheme), and the flow of signal and gradient.
+//! [`audit_graph`] is the same release audit on the layer graph, for every kind of layer, with
+//! each kind's own measures besides (channels, norm scales, gates, attention heads, table rows).
 //!
 //! ```
 //! use std::path::Path;
