@@ -3,8 +3,8 @@
 //! the kinds add their own measures).
 
 use ndarray::ArrayD;
-use plumb_engine::graph::{Graph, GraphError, Role};
-use plumb_engine::{Batch, Init, Rng};
+use plumb_engine::graph::{Graph, GraphError, Node, Role};
+use plumb_engine::{Activation, Batch, Init, Rng};
 use plumb_formats::{DType, Layout};
 use plumb_report::Verdict;
 
@@ -176,11 +176,7 @@ pub fn audit_graph(
                 inside.push(h);
             }
             // Hidden layers only: a confident output layer is not a defect.
-            if j == last
-                || (node.tensors().is_empty()
-                    && node.activation.kink().is_none()
-                    && !saturating(node.activation))
-            {
+            if j == last || !measured(node) {
                 continue;
             }
             let h = unit_health(
@@ -234,11 +230,12 @@ pub fn audit_graph(
     })
 }
 
-fn saturating(a: plumb_engine::Activation) -> bool {
-    matches!(
-        a,
-        plumb_engine::Activation::Sigmoid | plumb_engine::Activation::Tanh
-    )
+/// Whether unit health measures anything after this activation (or the layer has weights whose
+/// units the table should show).
+fn measured(node: &Node) -> bool {
+    !node.tensors().is_empty()
+        || node.activation.kink().is_some()
+        || matches!(node.activation, Activation::Sigmoid | Activation::Tanh)
 }
 
 /// Every tensor's values as the value checks read them: weights and tables may not be one

@@ -313,11 +313,9 @@ pub fn inside_findings(
                 "saturated-gate",
                 Severity::Warning,
                 format!(
-                    "gate {gate} of {layer} is within {} of 0 or 1 on at least {pct:.0}% of the steps of all {samples} probe samples in {} {list}: {} fixed there and {} gradient all but vanishes",
-                    t.saturation,
+                    "{} {list} of {layer}: gate {gate} is within {} of 0 or 1 on at least {pct:.0}% of the (step, sample) values of the {samples} probe samples, so it is all but fixed there and passes almost no gradient",
                     of("unit", "units"),
-                    of("it is", "they are"),
-                    of("its", "their"),
+                    t.saturation,
                 ),
             )
             .figure("gate", gate)
@@ -367,10 +365,10 @@ pub fn inside_findings(
         .figure("tokens", &h.flagged),
         _ => return Vec::new(),
     };
-    let finding = if h.measure == "unused" {
-        finding
-    } else {
-        finding.figure("units", &h.flagged)
+    let finding = match h.measure {
+        "unused" => finding,
+        "one-hot" => finding.figure("heads", &h.flagged),
+        _ => finding.figure("units", &h.flagged),
     };
     vec![finding.tensor(tensor).layer(h.layer)]
 }

@@ -111,7 +111,7 @@ fn a_one_hot_head_is_found_and_a_spread_one_is_not() {
         let a = run(&g, &p, &batch);
         let f = findings(&a, "one-hot-head");
         assert_eq!(f.len(), 1, "causal {causal}: {:?}", a.inside);
-        assert_eq!(f[0].figures["units"].to_string(), "[1]");
+        assert_eq!(f[0].figures["heads"].to_string(), "[1]");
         // The fraction of head 1 is a direct count over the engine's attention weights.
         let trace = g.forward(&p, batch.x.view());
         let w = match &g.nodes()[0].layer.inside(batch.x.view(), &trace.steps[0])[0] {
