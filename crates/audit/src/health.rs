@@ -5,6 +5,7 @@
 //! A layer is judged by the share of its units so flagged and by the mean of the fractions over its
 //! units, which sees a layer saturated on most samples in every unit but on 99% in none.
 
+use ndarray::ArrayView2;
 use plumb_engine::{Activation, Network, Trace};
 use serde::Serialize;
 
@@ -21,10 +22,14 @@ pub struct LayerHealth {
     pub layer: usize,
     pub activation: String,
     pub units: usize,
+    /// What a unit is: "unit", or "channel" for a convolution's output (measured over its
+    /// positions and the samples).
+    pub unit_name: &'static str,
     /// What `fractions` measure: `inactive` (ReLU), `negative` (leaky ReLU, ELU), `saturated`
     /// (sigmoid, tanh), or null.
     pub measure: Option<&'static str>,
-    /// Per unit, the fraction of probe samples on which the measure holds.
+    /// Per unit, the fraction of probe samples (and positions or steps) on which the measure
+    /// holds.
     pub fractions: Vec<f64>,
     /// The mean of `fractions`: the share of the layer's (unit, sample) pairs on which it holds.
     pub mean_fraction: f64,
@@ -45,78 +50,132 @@ pub fn layer_health(
     let layers = net.layers();
     (0..layers.len() - 1)
         .map(|l| {
-            let act = layers[l].activation;
             let (z, a) = (&trace.z[l], &trace.a[l + 1]);
-            let m = z.nrows() as f64;
-            let (measure, test): (Option<&'static str>, Test) = match act {
-                Activation::Relu => (Some("inactive"), Box::new(|z, _| z <= 0.0)),
-                Activation::LeakyRelu { .. } | Activation::Elu { .. } => {
-                    (Some("negative"), Box::new(|z, _| z <= 0.0))
-                }
-                Activation::Sigmoid => (
-                    Some("saturated"),
-                    Box::new(move |_, a| a < saturation || a > 1.0 - saturation),
-                ),
-                Activation::Tanh => (
-                    Some("saturated"),
-                    Box::new(move |_, a: f64| a.abs() > 1.0 - saturation),
-                ),
-                _ => (None, Box::new(|_, _| false)),
-            };
-            let fractions: Vec<f64> = (0..z.ncols())
-                .map(|u| {
-                    z.column(u)
-                        .iter()
-                        .zip(a.column(u))
-                        .filter(|&(&zv, &av)| test(zv, av))
-                        .count() as f64
-                        / m
-                })
-                .collect();
-            let flagged = fractions
-                .iter()
-                .enumerate()
-                .filter(|&(_, &f)| match act {
-                    Activation::Relu => f >= 1.0,
-                    Activation::Sigmoid | Activation::Tanh => f >= saturated_fraction,
-                    _ => false,
-                })
-                .map(|(u, _)| u + 1)
-                .collect();
-            let range = match act {
-                Activation::Tanh => (-1.0, 1.0),
-                Activation::Sigmoid => (0.0, 1.0),
-                _ => {
-                    let lo = a.iter().copied().fold(f64::INFINITY, f64::min);
-                    let hi = a.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-                    if lo.is_finite() && hi > lo {
-                        (lo, hi)
-                    } else {
-                        (lo.min(0.0), lo.max(0.0) + 1.0)
-                    }
-                }
-            };
-            let mut histogram = vec![0; BINS];
-            for &v in a.iter() {
-                let t = ((v - range.0) / (range.1 - range.0) * BINS as f64).floor();
-                if t.is_finite() {
-                    histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;
-                }
-            }
-            let mean_fraction = fractions.iter().sum::<f64>() / fractions.len().max(1) as f64;
-            LayerHealth {
-                layer: l + 1,
-                activation: act.to_string(),
-                units: z.ncols(),
-                measure,
-                mean_fraction,
-                fractions,
-                flagged,
-                histogram,
-                range,
-            }
+            let units = Units::columns(z.ncols());
+            unit_health(
+                l + 1,
+                layers[l].activation,
+                z.view(),
+                a.view(),
+                units,
+                saturation,
+                saturated_fraction,
+            )
         })
         .collect()
+}
+
+/// How a layer's output (m × size, each sample in C order of its shape) splits into units: the
+/// sample's values are indexed (o · count + u) · inner + j, so unit u gathers `outer × inner`
+/// values per sample (a channel's positions, a unit's steps).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Units {
+    pub outer: usize,
+    pub count: usize,
+    pub inner: usize,
+    /// "unit", or "channel" for a convolution's output.
+    pub name: &'static str,
+}
+
+impl Units {
+    /// One value per unit and sample: the columns of a dense layer.
+    pub fn columns(count: usize) -> Units {
+        Units {
+            outer: 1,
+            count,
+            inner: 1,
+            name: "unit",
+        }
+    }
+
+    /// The flat indices within a sample of unit `u`'s values.
+    fn indices(&self, u: usize) -> impl Iterator<Item = usize> + '_ {
+        (0..self.outer)
+            .flat_map(move |o| (0..self.inner).map(move |j| (o * self.count + u) * self.inner + j))
+    }
+}
+
+/// One layer's health from its values before (`z`) and after (`a`) its activation: per unit, the
+/// share of its (sample, position) values on which the measure holds.
+pub fn unit_health(
+    layer: usize,
+    act: Activation,
+    z: ArrayView2<f64>,
+    a: ArrayView2<f64>,
+    units: Units,
+    saturation: f64,
+    saturated_fraction: f64,
+) -> LayerHealth {
+    let per_unit = (z.nrows() * units.outer * units.inner) as f64;
+    let (measure, test): (Option<&'static str>, Test) = match act {
+        Activation::Relu => (Some("inactive"), Box::new(|z, _| z <= 0.0)),
+        Activation::LeakyRelu { .. } | Activation::Elu { .. } => {
+            (Some("negative"), Box::new(|z, _| z <= 0.0))
+        }
+        Activation::Sigmoid => (
+            Some("saturated"),
+            Box::new(move |_, a| a < saturation || a > 1.0 - saturation),
+        ),
+        Activation::Tanh => (
+            Some("saturated"),
+            Box::new(move |_, a: f64| a.abs() > 1.0 - saturation),
+        ),
+        _ => (None, Box::new(|_, _| false)),
+    };
+    let fractions: Vec<f64> = (0..units.count)
+        .map(|u| {
+            let count = z
+                .rows()
+                .into_iter()
+                .zip(a.rows())
+                .map(|(zr, ar)| units.indices(u).filter(|&k| test(zr[k], ar[k])).count())
+                .sum::<usize>();
+            count as f64 / per_unit
+        })
+        .collect();
+    let flagged = fractions
+        .iter()
+        .enumerate()
+        .filter(|&(_, &f)| match act {
+            Activation::Relu => f >= 1.0,
+            Activation::Sigmoid | Activation::Tanh => f >= saturated_fraction,
+            _ => false,
+        })
+        .map(|(u, _)| u + 1)
+        .collect();
+    let range = match act {
+        Activation::Tanh => (-1.0, 1.0),
+        Activation::Sigmoid => (0.0, 1.0),
+        _ => {
+            let lo = a.iter().copied().fold(f64::INFINITY, f64::min);
+            let hi = a.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+            if lo.is_finite() && hi > lo {
+                (lo, hi)
+            } else {
+                (lo.min(0.0), lo.max(0.0) + 1.0)
+            }
+        }
+    };
+    let mut histogram = vec![0; BINS];
+    for &v in a.iter() {
+        let t = ((v - range.0) / (range.1 - range.0) * BINS as f64).floor();
+        if t.is_finite() {
+            histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;
+        }
+    }
+    let mean_fraction = fractions.iter().sum::<f64>() / fractions.len().max(1) as f64;
+    LayerHealth {
+        layer,
+        activation: act.to_string(),
+        units: units.count,
+        unit_name: units.name,
+        measure,
+        mean_fraction,
+        fractions,
+        flagged,
+        histogram,
+        range,
+    }
 }
 
 /// A histogram as a one-line sparkline of block characters.

@@ -138,7 +138,22 @@ pub fn layer_init(
     claimed: Option<Init>,
     alpha: f64,
 ) -> LayerInit {
-    let (fan_in, fan_out, activation) = (spec.inputs, spec.units, spec.activation);
+    let fans = (spec.inputs, spec.units);
+    let kinked = spec.activation.kink().is_some();
+    tensor_init(layer, tensor, weights, fans, kinked, claimed, alpha)
+}
+
+/// The figures of one weight tensor with (fan-in, fan-out) `fans`; `kinked` when the units it
+/// feeds are ReLU-like (He's scale is then the reference, Glorot's otherwise).
+pub fn tensor_init(
+    layer: usize,
+    tensor: &str,
+    weights: &[f64],
+    (fan_in, fan_out): (usize, usize),
+    kinked: bool,
+    claimed: Option<Init>,
+    alpha: f64,
+) -> LayerInit {
     let m = crate::robust::moments(weights);
     let std = m.std;
     // Uniform has kurtosis 1.8, the normal 3: split at 2.4.
@@ -152,7 +167,7 @@ pub fn layer_init(
             da.total_cmp(&db)
         })
         .unwrap_or(Init::GlorotUniform);
-    let reference = if activation.kink().is_some() {
+    let reference = if kinked {
         Init::HeNormal
     } else {
         Init::GlorotNormal

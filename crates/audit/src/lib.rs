@@ -4,6 +4,8 @@
 //! (`plumb audit`): the shapes, then the values (non-finite, implausible magnitudes, constant
 //! tensors), symmetric units, unit health on probe data, the initialisation scale (and a
 //! Kolmogorov–Smirnov test against a claimed scheme), and the flow of signal and gradient.
+//! [`audit_graph`] is the same release audit on the layer graph, for every kind of layer, with
+//! each kind's own measures besides (channels, norm scales, gates, attention heads, table rows).
 //!
 //! ```
 //! use std::path::Path;
@@ -21,6 +23,8 @@
 //! ```
 
 mod flow;
+mod graph_audit;
+mod graph_health;
 mod graph_shapes;
 mod health;
 mod init;
@@ -33,14 +37,20 @@ mod units;
 mod values;
 
 pub use flow::{LayerFlow, layer_flow, sigma_max};
+pub use graph_audit::{GraphWeights, audit_graph, fitted_shapes};
+pub use graph_health::{
+    InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
+    output_units,
+};
 pub use graph_shapes::{GraphShapeAudit, KindShapes, audit_graph_shapes};
-pub use health::{BINS, LayerHealth, layer_health, sparkline};
+pub use health::{BINS, LayerHealth, Units, layer_health, sparkline, unit_health};
 pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
+    tensor_init,
 };
 pub use release::{Audit, Thresholds, audit, verdict_at};
 pub use robust::{Moments, largest, moments, norm};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
 pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
 pub use units::{unit_ranges, units_phrase};
-pub use values::check_values;
+pub use values::{Values, check_values, values_findings};

@@ -6,9 +6,9 @@ use plumb_report::{Finding, Severity, Verdict, tally};
 use serde::Serialize;
 
 use crate::{
-    LayerFlow, LayerHealth, LayerInit, ShapeAudit, SymmetricGroup, audit_shapes, check_values,
-    correct_across_layers, layer_flow, layer_health, layer_init, symmetry, unit_ranges,
-    units_phrase,
+    InsideHealth, LayerFlow, LayerHealth, LayerInit, ShapeAudit, SymmetricGroup, audit_shapes,
+    check_values, correct_across_layers, layer_flow, layer_health, layer_init, symmetry,
+    unit_ranges,
 };
 
 /// `fail` when any finding reaches `level`.
@@ -86,6 +86,10 @@ pub struct Audit {
     pub health: Vec<LayerHealth>,
     pub init: Vec<LayerInit>,
     pub flow: Vec<LayerFlow>,
+    /// The layer graph's measures inside its kinds (gates, heads, norm scales, table rows); empty
+    /// for a dense network.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub inside: Vec<InsideHealth>,
     /// Checks that could not run, and why.
     pub skipped: Vec<String>,
     pub findings: Vec<Finding>,
@@ -134,14 +138,14 @@ pub fn audit(
     if let Some(w) = &weights {
         for g in symmetry(w, t.symmetry_tolerance) {
             let output = g.layer == desc.layers.len();
-            findings.extend(symmetry_findings(&g, &names[g.layer - 1], output));
+            findings.extend(symmetry_findings(&g, &names[g.layer - 1], output, false));
         }
     }
     if let (Some(w), true) = (&weights, finite) {
         let trace = net.forward(w, batch.x.view());
         health = layer_health(net, &trace, t.saturation, t.saturated_fraction);
         for h in &health {
-            health_findings(h, &names[h.layer - 1], t, batch.len(), &mut findings);
+            health_findings(h, Some(&names[h.layer - 1]), t, batch.len(), &mut findings);
         }
         for (l, spec) in net.layers().iter().enumerate() {
             let values: Vec<f64> = w
@@ -164,33 +168,7 @@ pub fn audit(
             init_findings(li, spec.activation.name(), t, &mut findings);
         }
         flow = layer_flow(net, w, &trace, batch.y.view(), seed);
-        if let (Some(first), Some(last)) = (flow.first(), flow.last())
-            && flow.len() > 1
-            && first.gradient_rms > 0.0
-            && last.gradient_rms > 0.0
-        {
-            let orders = (first.gradient_rms / last.gradient_rms).log10();
-            if orders.abs() >= t.flow_orders {
-                let (code, what) = if orders < 0.0 {
-                    ("vanishing-gradient", "shrinks")
-                } else {
-                    ("exploding-gradient", "grows")
-                };
-                findings.push(
-                        Finding::new(
-                            code,
-                            Severity::Warning,
-                            format!(
-                                "the gradient {what} by {:.1} orders of magnitude from the output layer (RMS {:.3e}) to the first (RMS {:.3e})",
-                                orders.abs(),
-                                last.gradient_rms,
-                                first.gradient_rms
-                            ),
-                        )
-                        .figure("orders", orders),
-                    );
-            }
-        }
+        flow_findings(&flow, t, &mut findings);
     }
     Audit {
         verdict: verdict_at(&findings, t.fail_on),
@@ -199,14 +177,57 @@ pub fn audit(
         health,
         init,
         flow,
+        inside: Vec::new(),
         skipped,
         findings,
     }
 }
 
+/// A gradient whose RMS changes by `flow_orders` orders of magnitude from the output layer to the
+/// first.
+pub(crate) fn flow_findings(flow: &[LayerFlow], t: &Thresholds, findings: &mut Vec<Finding>) {
+    if let (Some(first), Some(last)) = (flow.first(), flow.last())
+        && flow.len() > 1
+        && first.gradient_rms > 0.0
+        && last.gradient_rms > 0.0
+    {
+        let orders = (first.gradient_rms / last.gradient_rms).log10();
+        if orders.abs() >= t.flow_orders {
+            let (code, what) = if orders < 0.0 {
+                ("vanishing-gradient", "shrinks")
+            } else {
+                ("exploding-gradient", "grows")
+            };
+            findings.push(
+                Finding::new(
+                    code,
+                    Severity::Warning,
+                    format!(
+                        "the gradient {what} by {:.1} orders of magnitude from the output layer (RMS {:.3e}) to the first (RMS {:.3e})",
+                        orders.abs(),
+                        last.gradient_rms,
+                        first.gradient_rms
+                    ),
+                )
+                .figure("orders", orders),
+            );
+        }
+    }
+}
+
 /// Identical incoming rows: the same activation (a warning); identical outgoing columns as well:
 /// the same gradient for ever (an error).
-fn symmetry_findings(g: &SymmetricGroup, tensor: &str, output: bool) -> Vec<Finding> {
+pub(crate) fn symmetry_findings(
+    g: &SymmetricGroup,
+    tensor: &str,
+    output: bool,
+    channels: bool,
+) -> Vec<Finding> {
+    let (names, dup, sym) = if channels {
+        ("channels", "duplicate-channels", "symmetric-channels")
+    } else {
+        ("units", "duplicate-units", "symmetric-units")
+    };
     let mut out = Vec::new();
     let all_inseparable = g.inseparable.len() == 1 && g.inseparable[0].len() == g.units.len();
     if !all_inseparable {
@@ -219,10 +240,10 @@ fn symmetry_findings(g: &SymmetricGroup, tensor: &str, output: bool) -> Vec<Find
         };
         out.push(
             Finding::new(
-                "duplicate-units",
+                dup,
                 Severity::Warning,
                 format!(
-                    "units {} of layer {} have identical incoming weights and bias: they compute the same activation on every input; {outgoing}",
+                    "{names} {} of layer {} have identical incoming weights and bias: they compute the same activation on every input; {outgoing}",
                     unit_ranges(&g.units),
                     g.layer
                 ),
@@ -235,10 +256,10 @@ fn symmetry_findings(g: &SymmetricGroup, tensor: &str, output: bool) -> Vec<Find
     for units in &g.inseparable {
         out.push(
             Finding::new(
-                "symmetric-units",
+                sym,
                 Severity::Error,
                 format!(
-                    "units {} of layer {} have identical incoming weights and bias and identical outgoing weights: they compute the same activation and receive the same gradient, so gradient descent can never separate them",
+                    "{names} {} of layer {} have identical incoming weights and bias and identical outgoing weights: they compute the same activation and receive the same gradient, so gradient descent can never separate them",
                     unit_ranges(units),
                     g.layer
                 ),
@@ -251,32 +272,54 @@ fn symmetry_findings(g: &SymmetricGroup, tensor: &str, output: bool) -> Vec<Find
     out
 }
 
-fn health_findings(
+/// A finding about a tensor when the layer has one (a pooling layer with an activation has none).
+fn about(f: Finding, tensor: Option<&str>) -> Finding {
+    match tensor {
+        Some(t) => f.tensor(t),
+        None => f,
+    }
+}
+
+/// The unit findings of one layer's health: per unit, for the layer's share of flagged units, and
+/// for its mean fraction. A convolution's channels are judged over their positions as well.
+pub(crate) fn health_findings(
     h: &LayerHealth,
-    tensor: &str,
+    tensor: Option<&str>,
     t: &Thresholds,
     samples: usize,
     out: &mut Vec<Finding>,
 ) {
+    let channel = h.unit_name == "channel";
+    let (name, names) = if channel {
+        ("channel", "channels")
+    } else {
+        ("unit", "units")
+    };
+    let at = if channel { " at every position" } else { "" };
     // What a flagged unit does, said of one unit and of several.
     let (unit_code, layer_code, mean_code, one, many) = match h.measure {
         Some("inactive") => (
-            "dead-unit",
+            if channel { "dead-channel" } else { "dead-unit" },
             "dead-layer",
             "mostly-inactive-layer",
-            format!("outputs 0 on all {samples} probe samples: it is dead and learns no more"),
+            format!("outputs 0{at} on all {samples} probe samples: it is dead and learns no more"),
             format!(
-                "each output 0 on all {samples} probe samples: they are dead and learn no more"
+                "each output 0{at} on all {samples} probe samples: they are dead and learn no more"
             ),
         ),
         Some("saturated") => {
+            let over = if channel { " (and positions)" } else { "" };
             let near = format!(
-                "within {} of an asymptote on at least {:.0}% of the {samples} probe samples",
+                "within {} of an asymptote on at least {:.0}% of the {samples} probe samples{over}",
                 t.saturation,
                 t.saturated_fraction * 100.0
             );
             (
-                "saturated-unit",
+                if channel {
+                    "saturated-channel"
+                } else {
+                    "saturated-unit"
+                },
                 "saturated-layer",
                 "mostly-saturated-layer",
                 format!("is {near}: its gradient all but vanishes"),
@@ -285,74 +328,88 @@ fn health_findings(
         }
         _ => return,
     };
+    let pairs = if channel {
+        "(channel, sample, position) values"
+    } else {
+        "(unit, sample) pairs"
+    };
     let layer = format!("layer {} ({})", h.layer, h.activation);
     let share = h.flagged.len() as f64 / h.units.max(1) as f64;
+    let phrase = if h.flagged.len() == 1 {
+        format!("{name} {}", h.flagged[0])
+    } else {
+        format!("{names} {}", unit_ranges(&h.flagged))
+    };
     if !h.flagged.is_empty() && share >= t.layer_fraction {
-        out.push(
+        out.push(about(
             Finding::new(
                 layer_code,
                 Severity::Error,
                 format!(
-                    "{} of the {} units of {layer} — {} — {many}",
+                    "{} of the {} {names} of {layer} — {phrase} — {many}",
                     h.flagged.len(),
                     h.units,
-                    units_phrase(&h.flagged),
                 ),
             )
-            .tensor(tensor)
             .layer(h.layer)
             .figure("units", &h.flagged)
             .figure("fraction", share)
             .figure("mean_fraction", h.mean_fraction),
-        );
+            tensor,
+        ));
         return;
     }
     if h.mean_fraction >= t.layer_mean {
         let state = if layer_code == "dead-layer" {
             format!(
-                "its units output 0 on {:.1}% of the (unit, sample) pairs of the probe data",
+                "its {names} output 0 on {:.1}% of the {pairs} of the probe data",
                 h.mean_fraction * 100.0
             )
         } else {
             format!(
-                "its units are within {} of an asymptote on {:.1}% of the (unit, sample) pairs of the probe data",
+                "its {names} are within {} of an asymptote on {:.1}% of the {pairs} of the probe data",
                 t.saturation,
                 h.mean_fraction * 100.0
             )
         };
-        out.push(
+        out.push(about(
             Finding::new(
                 mean_code,
                 Severity::Warning,
                 format!(
-                    "{layer}: {state} (at or above {:.0}%), though only {} of its {} units {} the per-unit rule: little signal and gradient pass through it",
+                    "{layer}: {state} (at or above {:.0}%), though only {} of its {} {names} {} the per-{name} rule: little signal and gradient pass through it",
                     t.layer_mean * 100.0,
                     h.flagged.len(),
                     h.units,
                     if h.flagged.len() == 1 { "meets" } else { "meet" }
                 ),
             )
-            .tensor(tensor)
             .layer(h.layer)
             .figure("mean_fraction", h.mean_fraction),
-        );
+            tensor,
+        ));
     }
     for &u in &h.flagged {
-        out.push(
+        out.push(about(
             Finding::new(
                 unit_code,
                 Severity::Warning,
-                format!("unit {u} of {layer} {one}"),
+                format!("{name} {u} of {layer} {one}"),
             )
-            .tensor(tensor)
             .layer(h.layer)
             .figure("unit", u)
             .figure("fraction", h.fractions[u - 1]),
-        );
+            tensor,
+        ));
     }
 }
 
-fn init_findings(li: &LayerInit, activation: &str, t: &Thresholds, out: &mut Vec<Finding>) {
+pub(crate) fn init_findings(
+    li: &LayerInit,
+    activation: &str,
+    t: &Thresholds,
+    out: &mut Vec<Finding>,
+) {
     if let Some(test) = &li.test
         && !test.passed
     {
@@ -426,6 +483,7 @@ mod tests {
             layer: 1,
             activation: "relu".into(),
             units: fractions.len(),
+            unit_name: "unit",
             measure: Some("inactive"),
             mean_fraction: fractions.iter().sum::<f64>() / fractions.len() as f64,
             fractions,
@@ -437,7 +495,7 @@ mod tests {
 
     fn codes(h: &LayerHealth) -> Vec<(String, Severity)> {
         let mut out = Vec::new();
-        health_findings(h, "layer1", &Thresholds::default(), 100, &mut out);
+        health_findings(h, Some("layer1"), &Thresholds::default(), 100, &mut out);
         out.into_iter().map(|f| (f.code, f.severity)).collect()
     }
 

@@ -59,6 +59,23 @@ impl Audit {
             }
             out.push(c);
         }
+        // Tensors no initialisation row stands for (biases, norm scales, tables) get a case when
+        // a finding about them fails the audit, so that no failure is left out of the cases.
+        let mut extra: Vec<&str> = Vec::new();
+        for f in &a.findings {
+            if let Some(t) = f.tensor.as_deref()
+                && !a.init.iter().any(|i| i.tensor == t)
+                && !extra.contains(&t)
+                && let Some(f) = failing(Some(t))
+            {
+                extra.push(t);
+                out.push(
+                    Case::new(format!("audit {t}"), true)
+                        .about(t)
+                        .failing(&f.code, f.message.clone()),
+                );
+            }
+        }
         let mut c = Case::new("audit network", true);
         if let Some(f) = failing(None) {
             c = c.failing(&f.code, f.message.clone());
@@ -160,6 +177,25 @@ impl Audit {
                     Cell::from(format!("{} ({}×)", i.closest, ratio(i.ratio))),
                     Cell::from(format!("{} ({}×)", i.reference, ratio(i.reference_ratio))),
                     Cell::new(ks, tone),
+                ]);
+            }
+            out.push(Block::Table(t));
+        }
+        if !a.inside.is_empty() {
+            out.push(Block::Heading("inside the layers".into()));
+            let mut t = Table::new(["layer", "kind", "part", "measure", "mean", "flagged"]);
+            for h in &a.inside {
+                t.push([
+                    Cell::from(h.layer.to_string()),
+                    Cell::from(h.kind),
+                    Cell::from(h.part.clone()),
+                    Cell::from(h.measure),
+                    Cell::from(format!("{:.1}%", h.mean_fraction * 100.0)),
+                    if h.flagged.is_empty() {
+                        Cell::new("none".to_string(), Tone::Good)
+                    } else {
+                        Cell::new(unit_ranges(&h.flagged), Tone::Bad)
+                    },
                 ]);
             }
             out.push(Block::Table(t));

@@ -61,7 +61,7 @@ pub fn symmetric_groups(weights: &Weights<f64>, tolerance: f64) -> Vec<Vec<Vec<u
 }
 
 /// Groups (indices into `vectors`, two or more each) of vectors equal to the relative tolerance.
-fn equal_groups(vectors: &[ArrayView1<f64>], tolerance: f64) -> Vec<Vec<usize>> {
+pub(crate) fn equal_groups(vectors: &[ArrayView1<f64>], tolerance: f64) -> Vec<Vec<usize>> {
     let norms: Vec<f64> = vectors
         .iter()
         .map(|r| r.iter().map(|v| v * v).sum::<f64>().sqrt())

@@ -10,8 +10,7 @@ use crate::Thresholds;
 
 /// Findings on the values of every tensor the layout uses.
 pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Vec<Finding> {
-    let mut out = Vec::new();
-    let mut stored: Vec<(String, usize, DType)> = Vec::new();
+    let mut tensors = Vec::new();
     for e in expected_tensors(desc, desc.layout) {
         let Some(tensor) = file.get(&e.name) else {
             continue;
@@ -19,13 +18,46 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
         if !tensor.dtype.is_float() {
             continue; // the shape audit names it
         }
-        let layer = e.layer + 1;
-        stored.push((e.name.clone(), layer, tensor.dtype));
-        let bad: Vec<usize> = (0..tensor.data.len())
-            .filter(|&k| !tensor.data[k].is_finite())
-            .collect();
+        let (weights, bias) = parts(desc, e.layer, e.role, tensor);
+        tensors.push(Values {
+            name: e.name.clone(),
+            layer: e.layer + 1,
+            shape: tensor.shape.clone(),
+            dtype: tensor.dtype,
+            data: tensor.data.clone(),
+            weights,
+            bias,
+        });
+    }
+    values_findings(&tensors, t)
+}
+
+/// One tensor's values as the checks read them: every value, and which of them are weights (all
+/// one value is a finding) and which biases (all zero is a note).
+#[derive(Clone, Debug)]
+pub struct Values {
+    pub name: String,
+    /// 1-based.
+    pub layer: usize,
+    pub shape: Vec<usize>,
+    /// The dtype it was stored in (every reader widens to f64).
+    pub dtype: DType,
+    pub data: Vec<f64>,
+    pub weights: Option<Vec<f64>>,
+    pub bias: Option<Vec<f64>>,
+}
+
+/// Findings on the values of tensors: non-finite entries, implausible magnitudes, constant
+/// weights, all-zero biases, and tensors stored narrower than the widest.
+pub fn values_findings(tensors: &[Values], t: &Thresholds) -> Vec<Finding> {
+    let mut out = Vec::new();
+    let mut stored: Vec<(String, usize, DType)> = Vec::new();
+    for v in tensors {
+        let (data, name, layer) = (&v.data, &v.name, v.layer);
+        stored.push((name.clone(), layer, v.dtype));
+        let bad: Vec<usize> = (0..data.len()).filter(|&k| !data[k].is_finite()).collect();
         if let Some(&first) = bad.first() {
-            let nan = bad.iter().filter(|&&k| tensor.data[k].is_nan()).count();
+            let nan = bad.iter().filter(|&&k| data[k].is_nan()).count();
             out.push(
                 Finding::new(
                     "non-finite",
@@ -34,23 +66,22 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
                         "{} non-finite values ({nan} NaN, {} infinite), the first at {:?} ({}); a network with them computes nothing",
                         bad.len(),
                         bad.len() - nan,
-                        index_of(tensor, first),
-                        tensor.data[first]
+                        index_of(&v.shape, first),
+                        data[first]
                     ),
                 )
-                .tensor(&e.name)
+                .tensor(name)
                 .layer(layer)
                 .figure("count", bad.len())
-                .figure("first_index", index_of(tensor, first)),
+                .figure("first_index", index_of(&v.shape, first)),
             );
         }
-        let max = tensor
-            .data
+        let max = data
             .iter()
             .filter(|v| v.is_finite())
             .fold(0.0f64, |m, v| m.max(v.abs()));
         if max > t.max_magnitude {
-            let hint = if swapped_plausible(tensor, t.max_magnitude) {
+            let hint = if swapped_plausible(data, v.dtype, t.max_magnitude) {
                 "; read with its bytes in the other order it holds plausible values: the file was written with the wrong byte order"
             } else if max > 1e30 {
                 "; values this large suggest bytes read as the wrong type or in the wrong order"
@@ -63,15 +94,16 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
                     Severity::Error,
                     format!("its largest |value| is {max:.3e}, beyond the {:e} no trained network reaches{hint}", t.max_magnitude),
                 )
-                .tensor(&e.name)
+                .tensor(name)
                 .layer(layer)
                 .figure("max_abs", max),
             );
         }
         // One value throughout: weights that cannot have been trained (or were never written).
-        let (weights, bias) = parts(desc, e.layer, e.role, tensor);
-        if let Some(w) =
-            weights.filter(|w| w.len() > 1 && w.iter().all(|v| *v == w[0]) && w[0].is_finite())
+        if let Some(w) = v
+            .weights
+            .as_ref()
+            .filter(|w| w.len() > 1 && w.iter().all(|v| *v == w[0]) && w[0].is_finite())
         {
             out.push(
                 Finding::new(
@@ -83,19 +115,23 @@ pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Ve
                         format!("every weight (bias aside) is {}: its units all compute the same function", w[0])
                     },
                 )
-                .tensor(&e.name)
+                .tensor(name)
                 .layer(layer)
                 .figure("value", w[0]),
             );
         }
-        if let Some(b) = bias.filter(|b| b.len() > 1 && b.iter().all(|v| *v == 0.0)) {
+        if let Some(b) = v
+            .bias
+            .as_ref()
+            .filter(|b| b.len() > 1 && b.iter().all(|v| *v == 0.0))
+        {
             out.push(
                 Finding::new(
                     "zero-bias",
                     Severity::Note,
                     format!("all {} bias weights are exactly 0: expected straight after initialisation, unusual after training", b.len()),
                 )
-                .tensor(&e.name)
+                .tensor(name)
                 .layer(layer),
             );
         }
@@ -171,18 +207,18 @@ fn parts(
 }
 
 /// Whether the tensor's values, with each one's bytes reversed, would all be plausible.
-fn swapped_plausible(t: &Tensor, limit: f64) -> bool {
+fn swapped_plausible(data: &[f64], dtype: DType, limit: f64) -> bool {
     let ok = |v: f64| v.is_finite() && v.abs() < limit.min(1e3);
-    t.data.iter().all(|&v| match t.dtype {
+    data.iter().all(|&v| match dtype {
         DType::F64 => ok(f64::from_bits(v.to_bits().swap_bytes())),
         DType::F32 => ok(f32::from_bits((v as f32).to_bits().swap_bytes()) as f64),
         _ => false,
     })
 }
 
-fn index_of(t: &Tensor, mut k: usize) -> Vec<usize> {
-    let mut idx = vec![0; t.shape.len()];
-    for (i, &d) in t.shape.iter().enumerate().rev() {
+fn index_of(shape: &[usize], mut k: usize) -> Vec<usize> {
+    let mut idx = vec![0; shape.len()];
+    for (i, &d) in shape.iter().enumerate().rev() {
         idx[i] = k % d.max(1);
         k /= d.max(1);
     }

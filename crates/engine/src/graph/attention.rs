@@ -148,6 +148,18 @@ impl Kind for Attention {
         MISTAKES
     }
 
+    fn inside(&self, _: ArrayView2<f64>, step: &Step<f64>) -> Vec<super::Inside> {
+        let weights = step.saved[3]
+            .view()
+            .into_dimensionality::<ndarray::Ix4>()
+            .expect("attention weights")
+            .to_owned();
+        vec![super::Inside::Attention {
+            weights,
+            causal: self.causal,
+        }]
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         let w = self.seq.width;
         let weight = tensor.is_multiple_of(2);

@@ -234,6 +234,18 @@ impl Kind for Conv {
         MISTAKES
     }
 
+    fn unit_tensors(&self) -> Vec<usize> {
+        if self.settings.bias {
+            vec![0, 1]
+        } else {
+            vec![0]
+        }
+    }
+
+    fn input_unit_tensor(&self) -> Option<usize> {
+        Some(0)
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         if tensor == 1 {
             return format!("out-channel {flat}");

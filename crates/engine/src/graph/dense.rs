@@ -99,6 +99,14 @@ impl Kind for Dense {
         ]
     }
 
+    fn unit_tensors(&self) -> Vec<usize> {
+        vec![0, 1]
+    }
+
+    fn input_unit_tensor(&self) -> Option<usize> {
+        Some(0)
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         if tensor == 1 {
             format!("unit {flat}")

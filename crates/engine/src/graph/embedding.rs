@@ -80,6 +80,16 @@ impl Kind for Embedding {
         &["embedding-rows-overwritten"]
     }
 
+    fn inside(&self, x: ArrayView2<f64>, _: &Step<f64>) -> Vec<super::Inside> {
+        let mut reads = vec![0; self.vocabulary];
+        for &v in x {
+            if let Some(r) = reads.get_mut(Self::id(v)) {
+                *r += 1;
+            }
+        }
+        vec![super::Inside::Rows { tensor: 0, reads }]
+    }
+
     fn locate(&self, _: usize, flat: usize) -> String {
         format!("token {}, feature {}", flat / self.size, flat % self.size)
     }

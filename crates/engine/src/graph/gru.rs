@@ -92,6 +92,10 @@ impl Cell for GruCell {
     fn mistakes(&self) -> &'static [&'static str] {
         &MISTAKES
     }
+    /// The saved values start with r and z whatever the declared order.
+    fn gates(&self) -> Vec<(char, usize)> {
+        vec![('r', 0), ('z', 1)]
+    }
 
     fn forward<S: LayerScalar>(
         &self,

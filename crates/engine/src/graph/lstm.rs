@@ -64,6 +64,11 @@ impl Cell for LstmCell {
     fn mistakes(&self) -> &'static [&'static str] {
         &MISTAKES
     }
+    /// The saved values are the blocks after their activations, in the declared order.
+    fn gates(&self) -> Vec<(char, usize)> {
+        let [ki, kf, _, ko] = self.order;
+        vec![('i', ki), ('f', kf), ('o', ko)]
+    }
 
     fn forward<S: LayerScalar>(
         &self,

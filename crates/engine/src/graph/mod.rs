@@ -40,6 +40,7 @@ mod embedding;
 mod flatten;
 mod global_pool;
 mod gru;
+mod health;
 mod layer_norm;
 mod loss;
 mod lstm;
@@ -72,6 +73,7 @@ pub use embedding::Embedding;
 pub use flatten::Flatten;
 pub use global_pool::GlobalAvgPool;
 pub use gru::{Gru, GruCell, Reset};
+pub use health::Inside;
 pub use layer_norm::LayerNorm;
 pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
@@ -181,6 +183,27 @@ pub trait Kind: Send + Sync + Debug {
     fn locate(&self, tensor: usize, flat: usize) -> String {
         let shape = &self.params()[tensor].shape;
         format!("index {:?}", unravel(flat, shape))
+    }
+    /// The parameter tensors whose first axis runs over this layer's output units (channels):
+    /// unit u's incoming parameters are slice u of each (the audit's duplicate units). Empty when
+    /// a unit owns no such slices (gate blocks, attention heads, norms).
+    fn unit_tensors(&self) -> Vec<usize> {
+        Vec::new()
+    }
+    /// The parameter tensor whose second axis runs over the units (channels) of this layer's
+    /// input, read directly: slice [:, u, …] holds input unit u's outgoing weights.
+    fn input_unit_tensor(&self) -> Option<usize> {
+        None
+    }
+    /// The activation applied inside the kind (a recurrent cell's), when there is one: the audit
+    /// picks the initialisation scale it calls for.
+    fn inner_activation(&self) -> Option<crate::Activation> {
+        None
+    }
+    /// What the forward step `step` on batch `x` shows the release audit inside the layer.
+    fn inside(&self, x: ArrayView2<f64>, step: &Step<f64>) -> Vec<Inside> {
+        let _ = (x, step);
+        Vec::new()
     }
 }
 

@@ -77,6 +77,15 @@ pub trait Cell: Clone + Debug + Send + Sync + 'static {
     fn kink(&self) -> Option<f64> {
         None
     }
+    /// The cell's activation (the candidate's for lstm and gru).
+    fn activation(&self) -> crate::Activation {
+        crate::Activation::Tanh
+    }
+    /// The sigmoid gates the cell saves each step: (letter, block of `units` columns in the saved
+    /// values). Empty for a cell without gates.
+    fn gates(&self) -> Vec<(char, usize)> {
+        Vec::new()
+    }
     /// The new states from step input `x` (m × fan-in) and the previous states, and what the
     /// backward pass needs (m × anything).
     fn forward<S: LayerScalar>(
@@ -188,6 +197,32 @@ impl<C: Cell> Kind for Recurrent<C> {
 
     fn branches(&self) -> bool {
         self.cell.kink().is_some()
+    }
+
+    fn inner_activation(&self) -> Option<crate::Activation> {
+        Some(self.cell.activation())
+    }
+
+    fn inside(&self, _: ArrayView2<f64>, step: &Step<f64>) -> Vec<super::Inside> {
+        let saved = step.saved[1]
+            .view()
+            .into_dimensionality::<ndarray::Ix3>()
+            .expect("saved");
+        let (steps, m, u) = (saved.shape()[0], saved.shape()[1], self.units);
+        self.cell
+            .gates()
+            .into_iter()
+            .map(|(letter, k)| {
+                let block = saved.slice(s![.., .., k * u..(k + 1) * u]);
+                super::Inside::Gate {
+                    letter,
+                    values: block
+                        .to_owned()
+                        .into_shape_with_order((steps * m, u))
+                        .expect("same size"),
+                }
+            })
+            .collect()
     }
 
     fn locate(&self, tensor: usize, flat: usize) -> String {

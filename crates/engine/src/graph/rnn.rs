@@ -67,6 +67,9 @@ impl Cell for RnnCell {
     fn kink(&self) -> Option<f64> {
         self.activation.kink()
     }
+    fn activation(&self) -> Activation {
+        self.activation
+    }
 
     fn forward<S: LayerScalar>(
         &self,
