@@ -19,11 +19,13 @@
 mod catalogue;
 mod compare;
 mod diagnose;
+mod graph;
 mod judge;
 mod names;
 
 pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
 pub use compare::{Named, TensorComparison, compare_tensor};
-pub use diagnose::{Diagnosis, diagnose};
+pub use diagnose::{Diagnosis, Hypotheses, diagnose};
+pub use graph::{GraphProblem, INPUT, judge_graph};
 pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};
 pub use names::{Binding, HABITS, Matched, NameError, bind_gradient, match_names, parse_map};
