@@ -153,7 +153,12 @@ impl<'a> GraphProblem<'a> {
         let mut out = Vec::new();
         match (up, reduction) {
             (true, Reduction::Mean) => {
-                out.push((m, String::new()));
+                let label = if steps > 1.0 {
+                    "summed over the samples, averaged over the steps"
+                } else {
+                    ""
+                };
+                out.push((m, label.into()));
                 if steps > 1.0 {
                     out.push((m * steps, "summed over samples and steps".into()));
                 }

@@ -4,7 +4,9 @@
 //! a tight residual is named for it.
 //!
 //! The crate works on named tensors in the weight file's own layout; the caller says how the
-//! engine's augmented matrices map to them.
+//! engine's augmented matrices map to them. [`judge_graph`] does the same on the layer graph
+//! (`plumb_engine::graph`, every kind) with the graph's canonical tensors; both go through one
+//! verdict rule ([`judge`] over a [`Hypotheses`] source).
 //!
 //! ```
 //! use plumb_diagnose::{Named, compare_tensor};

@@ -81,6 +81,7 @@ fn named_for(what: &str, judgements: &[TensorJudgement], code: &str, layer: Opti
                 assert_eq!(d.layer, layer, "{what}: {} named in another layer", j.name);
             }
         } else {
+            eprintln!("{what}: {} named {}, {code} alike", j.name, d.code);
             assert!(
                 d.alike.iter().any(|(c, _)| *c == code),
                 "{what}: {} named {} ({}), residual {:e}; runners-up {:?}",
