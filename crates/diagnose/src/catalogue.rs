@@ -12,6 +12,7 @@ use plumb_engine::{
 };
 
 use crate::Named;
+use crate::diagnose::Hypotheses;
 
 /// What a hypothesis needs: the network, where it is evaluated, the reference gradient, and how the
 /// engine's augmented matrices map to the tensors of the weight file's layout.
@@ -76,6 +77,8 @@ pub struct Hypothesis {
     pub tensors: Vec<Named>,
     /// Per tensor, the factor of a `constant-factor` hypothesis.
     pub factors: Option<Vec<f64>>,
+    /// The 0-based layer the mistake sits in, when it sits in one.
+    pub layer: Option<usize>,
 }
 
 /// The code whose hypothesis is a fitted factor: named only when no other code reproduces a tensor
@@ -83,19 +86,16 @@ pub struct Hypothesis {
 pub const CONSTANT_FACTOR: &str = "constant-factor";
 
 impl Hypothesis {
-    fn plain(tensors: Vec<Named>) -> Hypothesis {
-        Hypothesis {
-            label: String::new(),
-            tensors,
-            factors: None,
-        }
+    pub(crate) fn plain(tensors: Vec<Named>) -> Hypothesis {
+        Hypothesis::at(String::new(), tensors)
     }
 
-    fn at(label: String, tensors: Vec<Named>) -> Hypothesis {
+    pub(crate) fn at(label: String, tensors: Vec<Named>) -> Hypothesis {
         Hypothesis {
             label,
             tensors,
             factors: None,
+            layer: None,
         }
     }
 }
@@ -115,7 +115,7 @@ fn with(v: impl FnOnce(&mut Variant)) -> Variant {
     out
 }
 
-fn scaled(tensors: &[Named], f: f64) -> Vec<Named> {
+pub(crate) fn scaled(tensors: &[Named], f: f64) -> Vec<Named> {
     tensors
         .iter()
         .map(|t| {
@@ -306,60 +306,84 @@ pub const CATALOGUE: &[Mistake] = &[
     Mistake {
         code: "layers-swapped",
         summary: "gradients assigned to the wrong layers",
-        hypotheses: |p, _| {
-            let r = &p.reference_tensors;
-            let mut out = Vec::new();
-            for i in 0..r.len() {
-                for j in i + 1..r.len() {
-                    let mut t = r.clone();
-                    t[i] = Named::new(r[i].name.clone(), r[j].shape.clone(), r[j].data.clone());
-                    t[j] = Named::new(r[j].name.clone(), r[i].shape.clone(), r[i].data.clone());
-                    out.push(Hypothesis::at(format!("{} ↔ {}", r[i].name, r[j].name), t));
-                }
-            }
-            out
-        },
+        hypotheses: |p, _| swaps(&p.reference_tensors),
     },
     Mistake {
         code: CONSTANT_FACTOR,
         summary: "off by a constant factor",
-        hypotheses: |p, outside| {
-            let mut factors = Vec::new();
-            let tensors = p
-                .reference_tensors
-                .iter()
-                .map(|r| {
-                    let c = outside
-                        .iter()
-                        .find(|u| u.name == r.name && u.shape == r.shape)
-                        .map(|u| {
-                            let rr: f64 = r.data.iter().map(|v| v * v).sum();
-                            let ur: f64 = u.data.iter().zip(&r.data).map(|(a, b)| a * b).sum();
-                            if rr > 0.0 { ur / rr } else { 0.0 }
-                        })
-                        .unwrap_or(0.0);
-                    // A factor within the precision of 1 leaves the tensor unchanged, and factors
-                    // other entries explain rank after them: the diagnosis sees to both.
-                    let c = if c == 0.0 { f64::NAN } else { c };
-                    factors.push(c);
-                    Named::new(
-                        r.name.clone(),
-                        r.shape.clone(),
-                        r.data.iter().map(|v| v * c).collect(),
-                    )
-                })
-                .collect();
-            vec![Hypothesis {
-                label: String::new(),
-                tensors,
-                factors: Some(factors),
-            }]
-        },
+        hypotheses: |p, outside| vec![fitted_factor(&p.reference_tensors, outside)],
     },
 ];
 
+/// Every pair of tensors exchanged (only the two tensors in each hypothesis: the others are
+/// left as the reference has them).
+pub(crate) fn swaps(r: &[Named]) -> Vec<Hypothesis> {
+    let mut out = Vec::new();
+    for i in 0..r.len() {
+        for j in i + 1..r.len() {
+            let t = vec![
+                Named::new(r[i].name.clone(), r[j].shape.clone(), r[j].data.clone()),
+                Named::new(r[j].name.clone(), r[i].shape.clone(), r[i].data.clone()),
+            ];
+            out.push(Hypothesis::at(format!("{} ↔ {}", r[i].name, r[j].name), t));
+        }
+    }
+    out
+}
+
+/// Per tensor the least-squares factor c = ⟨U, G⟩ / ⟨G, G⟩ of the outside gradient U and c·G.
+pub(crate) fn fitted_factor(reference: &[Named], outside: &[Named]) -> Hypothesis {
+    let mut factors = Vec::new();
+    let tensors = reference
+        .iter()
+        .map(|r| {
+            let c = outside
+                .iter()
+                .find(|u| u.name == r.name && u.shape == r.shape)
+                .map(|u| {
+                    let rr: f64 = r.data.iter().map(|v| v * v).sum();
+                    let ur: f64 = u.data.iter().zip(&r.data).map(|(a, b)| a * b).sum();
+                    if rr > 0.0 { ur / rr } else { 0.0 }
+                })
+                .unwrap_or(0.0);
+            // A factor within the precision of 1 leaves the tensor unchanged, and factors other
+            // entries explain rank after them: the diagnosis sees to both.
+            let c = if c == 0.0 { f64::NAN } else { c };
+            factors.push(c);
+            Named::new(
+                r.name.clone(),
+                r.shape.clone(),
+                r.data.iter().map(|v| v * c).collect(),
+            )
+        })
+        .collect();
+    Hypothesis {
+        label: String::new(),
+        tensors,
+        factors: Some(factors),
+        layer: None,
+    }
+}
+
+impl Hypotheses for Problem<'_> {
+    fn reference(&self) -> &[Named] {
+        &self.reference_tensors
+    }
+
+    fn hypotheses(&self, outside: &[Named]) -> Vec<(&'static str, Hypothesis)> {
+        CATALOGUE
+            .iter()
+            .flat_map(|m| {
+                (m.hypotheses)(self, outside)
+                    .into_iter()
+                    .map(move |h| (m.code, h))
+            })
+            .collect()
+    }
+}
+
 /// The L2 gradient's factor on w under a divisor, as the report writes it.
-fn slope_text(d: L2Divisor) -> &'static str {
+pub(crate) fn slope_text(d: L2Divisor) -> &'static str {
     match d {
         L2Divisor::TwoM => "(λ/m)·w",
         L2Divisor::Two => "λ·w",

@@ -1,7 +1,18 @@
 //! Naming the mistake behind a wrong tensor.
 
 use crate::Named;
-use crate::catalogue::{CATALOGUE, CONSTANT_FACTOR, Problem};
+use crate::catalogue::{CONSTANT_FACTOR, Hypothesis};
+
+/// What a diagnosis tests against: the reference tensors (in the layout the outside gradient is
+/// named in) and the hypotheses of a catalogue, each with its code. The dense catalogue
+/// ([`crate::Problem`]) and the layer graph's ([`crate::GraphProblem`]) are two sources; the rule
+/// that names a tensor is one.
+pub trait Hypotheses {
+    fn reference(&self) -> &[Named];
+    /// Every hypothesis, in the order ties are broken; `outside` is the gradient under diagnosis
+    /// (for hypotheses that fit a parameter to it, such as a constant factor).
+    fn hypotheses(&self, outside: &[Named]) -> Vec<(&'static str, Hypothesis)>;
+}
 
 /// What explains one tensor of an outside gradient.
 #[derive(Clone, Debug, PartialEq)]
@@ -16,10 +27,19 @@ pub struct Diagnosis {
     pub factor: Option<f64>,
     /// The next best hypotheses, for the record: (code, label, residual).
     pub runners_up: Vec<(&'static str, String, f64)>,
+    /// Other hypotheses that reproduce the tensor as well (code, label): the gradient cannot tell
+    /// them from the one named (e.g. `time-truncated` and `state-gradient-dropped` when only the
+    /// last step's output is read).
+    pub alike: Vec<(&'static str, String)>,
+    /// The 0-based layer the named mistake sits in, when it sits in one.
+    pub layer: Option<usize>,
     /// For `unexplained`: the 0-based layer whose backward step first goes wrong — the layer of
     /// the wrong tensor nearest the output, where backpropagation starts (set by `judge`).
     pub first_wrong_layer: Option<usize>,
 }
+
+/// A hypothesis scored on one tensor: code, label, residual, fitted factor, layer.
+type Scored = (&'static str, String, f64, Option<f64>, Option<usize>);
 
 fn distance(a: &[f64], b: &[f64]) -> f64 {
     a.iter()
@@ -39,27 +59,20 @@ fn distance(a: &[f64], b: &[f64]) -> f64 {
 /// tensor the smallest residual is named, the catalogue's order breaking ties, with a fitted
 /// `constant-factor` only when no other code reproduces it.
 pub fn diagnose(
-    problem: &Problem<'_>,
+    problem: &dyn Hypotheses,
     outside: &[Named],
     names: &[String],
     tolerances: &[f64],
 ) -> Vec<Diagnosis> {
     // Every hypothesis once, for all tensors.
-    let hypotheses: Vec<(&'static str, crate::Hypothesis)> = CATALOGUE
-        .iter()
-        .flat_map(|m| {
-            (m.hypotheses)(problem, outside)
-                .into_iter()
-                .map(move |h| (m.code, h))
-        })
-        .collect();
+    let hypotheses = problem.hypotheses(outside);
     names
         .iter()
         .zip(tolerances)
         .map(|(name, &tolerance)| {
             let u = outside.iter().find(|t| &t.name == name);
-            let r = problem.reference_tensors.iter().find(|t| &t.name == name);
-            let mut scored: Vec<(&'static str, String, f64, Option<f64>)> = Vec::new();
+            let r = problem.reference().iter().find(|t| &t.name == name);
+            let mut scored: Vec<Scored> = Vec::new();
             if let (Some(u), Some(r)) = (u, r) {
                 for (code, h) in &hypotheses {
                     let Some(k) = h.tensors.iter().position(|t| &t.name == name) else {
@@ -72,27 +85,25 @@ pub fn diagnose(
                     if v.shape == r.shape && distance(&v.data, &r.data) <= tolerance * r.norm() {
                         continue;
                     }
-                    let den = if v.norm() > 0.0 {
-                        v.norm()
-                    } else {
-                        r.norm().max(f64::MIN_POSITIVE)
-                    };
+                    // Relative to the larger of the hypothesis and the reference: a hypothesis that
+                    // is zero up to round-off (a bias whose gradient a norm cancels) is not judged
+                    // against its own noise.
+                    let den = v.norm().max(r.norm()).max(f64::MIN_POSITIVE);
                     let factor = h.factors.as_ref().map(|f| f[k]);
                     scored.push((
                         code,
                         h.label.clone(),
                         distance(&u.data, &v.data) / den,
                         factor,
+                        h.layer,
                     ));
                 }
             }
             // Smallest residual first; the catalogue's order breaks ties; a fitted factor yields to
             // any other code that reproduces the tensor.
             scored.sort_by(|a, b| {
-                let demoted = |x: &(&str, String, f64, Option<f64>)| {
-                    x.0 == CONSTANT_FACTOR && x.2 <= tolerance
-                };
-                let reproduces = |x: &(&str, String, f64, Option<f64>)| x.2 <= tolerance;
+                let demoted = |x: &Scored| x.0 == CONSTANT_FACTOR && x.2 <= tolerance;
+                let reproduces = |x: &Scored| x.2 <= tolerance;
                 reproduces(b)
                     .cmp(&reproduces(a))
                     .then(demoted(a).cmp(&demoted(b)))
@@ -103,17 +114,27 @@ pub fn diagnose(
                 .iter()
                 .skip(1)
                 .take(3)
-                .map(|(c, l, r, _)| (*c, l.clone(), *r))
+                .map(|(c, l, r, _, _)| (*c, l.clone(), *r))
                 .collect();
             match best {
-                Some((code, label, residual, factor)) if residual <= tolerance => Diagnosis {
-                    code,
-                    label,
-                    residual,
-                    factor,
-                    runners_up,
-                    first_wrong_layer: None,
-                },
+                Some((code, label, residual, factor, layer)) if residual <= tolerance => {
+                    let alike = scored
+                        .iter()
+                        .skip(1)
+                        .filter(|s| s.2 <= tolerance && s.0 != CONSTANT_FACTOR)
+                        .map(|s| (s.0, s.1.clone()))
+                        .collect();
+                    Diagnosis {
+                        code,
+                        label,
+                        residual,
+                        factor,
+                        runners_up,
+                        alike,
+                        layer,
+                        first_wrong_layer: None,
+                    }
+                }
                 _ => {
                     let residual = scored.iter().map(|s| s.2).fold(f64::INFINITY, f64::min);
                     Diagnosis {
@@ -122,6 +143,8 @@ pub fn diagnose(
                         residual,
                         factor: None,
                         runners_up,
+                        alike: Vec::new(),
+                        layer: None,
                         first_wrong_layer: None,
                     }
                 }

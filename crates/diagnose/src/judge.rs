@@ -1,9 +1,8 @@
 //! Every tensor of an outside gradient judged: compared with the reference where the shapes allow,
 //! and diagnosed where it is wrong.
 
-use crate::catalogue::Problem;
 use crate::compare::{Named, TensorComparison, compare_tensor};
-use crate::diagnose::{Diagnosis, diagnose};
+use crate::diagnose::{Diagnosis, Hypotheses, diagnose};
 use plumb_fd::relative_floor;
 
 /// How strict to be, set from the outside gradient's precision.
@@ -91,18 +90,21 @@ pub struct TensorJudgement {
     pub matches: bool,
     /// Why it is wrong, when it is.
     pub diagnosis: Option<Diagnosis>,
+    /// Where the tensor is worst in its layer's terms (unit, channel, gate, head), when the
+    /// layer graph says ([`crate::judge_graph`]).
+    pub place: Option<String>,
 }
 
 /// Judges the outside gradient tensor by tensor, each with the tolerances `tol` gives its name.
 pub fn judge(
-    problem: &Problem<'_>,
+    problem: &dyn Hypotheses,
     outside: &[Named],
     expected: &[Expected],
     tol: &dyn Fn(&str) -> Tolerances,
 ) -> Vec<TensorJudgement> {
     // The network's gradient scale, against which a zero or tiny tensor is judged.
     let network = problem
-        .reference_tensors
+        .reference()
         .iter()
         .flat_map(|t| t.data.iter())
         .fold(0.0f64, |m, v| m.max(v.abs()));
@@ -111,7 +113,7 @@ pub fn judge(
         .map(|e| {
             let u = outside.iter().find(|t| t.name == e.name);
             let r = problem
-                .reference_tensors
+                .reference()
                 .iter()
                 .find(|t| t.name == e.name)
                 .expect("reference has every tensor");
@@ -128,6 +130,7 @@ pub fn judge(
                 matches: comparison.as_ref().is_some_and(|c| c.matches),
                 comparison,
                 diagnosis: None,
+                place: None,
             }
         })
         .collect();
@@ -172,6 +175,8 @@ pub fn judge(
                 residual: if e.bias { 0.0 } else { f64::INFINITY },
                 factor: None,
                 runners_up: Vec::new(),
+                alike: Vec::new(),
+                layer: None,
                 first_wrong_layer: None,
             });
         }

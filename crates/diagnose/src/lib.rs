@@ -4,7 +4,9 @@
 //! a tight residual is named for it.
 //!
 //! The crate works on named tensors in the weight file's own layout; the caller says how the
-//! engine's augmented matrices map to them.
+//! engine's augmented matrices map to them. [`judge_graph`] does the same on the layer graph
+//! (`plumb_engine::graph`, every kind) with the graph's canonical tensors; both go through one
+//! verdict rule ([`judge`] over a [`Hypotheses`] source).
 //!
 //! ```
 //! use plumb_diagnose::{Named, compare_tensor};
@@ -19,12 +21,14 @@
 mod catalogue;
 mod compare;
 mod diagnose;
+mod graph;
 mod judge;
 mod names;
 pub mod report;
 
 pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
 pub use compare::{Named, TensorComparison, compare_tensor};
-pub use diagnose::{Diagnosis, diagnose};
+pub use diagnose::{Diagnosis, Hypotheses, diagnose};
+pub use graph::{GraphProblem, INPUT, judge_graph};
 pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};
 pub use names::{Binding, HABITS, Matched, NameError, bind_gradient, match_names, parse_map};

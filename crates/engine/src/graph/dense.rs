@@ -3,6 +3,11 @@
 //! Storage (DESIGN §4.3): the canonical tensors are the split ones (`weight` units × fan-in,
 //! `bias`); `split-transposed` is the permutation `io` of `oi` ([`super::Storage`]); the augmented
 //! matrix is [`Dense::join`] / [`Dense::split`].
+//!
+//! Catalogued mistake: `bias-rows-shifted` — the input gradient formed with the augmented matrix
+//! [b, W] (bias column first) and its last column dropped instead of its first, so the gradient
+//! of input k is that of input k − 1 and input 0 gets the bias column's; the layer's own
+//! parameter gradients are right, the layers below change.
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s};
 
@@ -107,6 +112,10 @@ impl Kind for Dense {
         Some(0)
     }
 
+    fn mistakes(&self) -> &'static [&'static str] {
+        &["bias-rows-shifted"]
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         if tensor == 1 {
             format!("unit {flat}")
@@ -137,7 +146,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
         x: ArrayView2<S>,
         _: &Step<S>,
         dout: ArrayView2<S>,
-        _: Option<&str>,
+        mistake: Option<&str>,
     ) -> Back<S> {
         let w = params[0]
             .view()
@@ -147,7 +156,14 @@ impl<S: LayerScalar> Layer<S> for Dense {
         let d = reshape(dout.to_owned(), (dout.nrows() * r, self.units));
         let dw = d.t().dot(&self.rows(x));
         let db = d.sum_axis(Axis(0));
-        let dx = reshape(d.dot(&w), (x.nrows(), self.input.size()));
+        let dx = if mistake == Some("bias-rows-shifted") {
+            let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+            let augmented = Dense::join(&w.to_owned(), &b.to_owned());
+            d.dot(&augmented.slice(s![.., ..self.fan_in()]))
+        } else {
+            d.dot(&w)
+        };
+        let dx = reshape(dx, (x.nrows(), self.input.size()));
         Back {
             params: vec![dw.into_dyn(), db.into_dyn()],
             dx,

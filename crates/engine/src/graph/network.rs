@@ -6,9 +6,10 @@ use std::ops::Range;
 use ndarray::{Array2, ArrayD, ArrayView2, Zip};
 use thiserror::Error;
 
+use super::hooks::{Hooks, Slope};
 use super::loss::by_rows;
 use super::{AnyLayer, LayerScalar, LossConfig, ParamSpec, Role, Shape, ShapeError, Step};
-use crate::{Activation, Scalar};
+use crate::{Activation, Loss, Regularization, Samples, Scalar};
 
 /// One layer of the graph: its kind, the activation the graph applies after it, its name.
 #[derive(Debug)]
@@ -574,6 +575,21 @@ impl Graph {
         trace: &Trace<S>,
         planted: Option<&Planted>,
     ) -> (Vec<ArrayD<S>>, Array2<S>) {
+        self.backward_hooked(params, x, y, trace, planted, &Hooks::REFERENCE)
+    }
+
+    /// The backward pass with the departures of `hooks` (the mistakes any graph can make, as the
+    /// diagnosis's hypotheses) besides a kind's `planted` one; [`Hooks::REFERENCE`] departs
+    /// nowhere.
+    pub fn backward_hooked<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        trace: &Trace<S>,
+        planted: Option<&Planted>,
+        hooks: &Hooks,
+    ) -> (Vec<ArrayD<S>>, Array2<S>) {
         let x = x.as_standard_layout();
         let y = y.as_standard_layout();
         let m = x.nrows();
@@ -582,25 +598,25 @@ impl Graph {
         // The gradient with respect to each layer's output (after its activation), gathered from
         // the layer above and from every `add` that taps it.
         let mut upstream: Vec<Option<Array2<S>>> = vec![None; n];
-        let last = &self.nodes[n - 1];
         let mut input_grad = None;
         for j in (0..n).rev() {
             let node = &self.nodes[j];
             let step = &trace.steps[j];
             let dz = if j == n - 1 {
-                self.loss.delta(
-                    last.activation,
-                    last.layer.output().rows(),
-                    step.out.view(),
-                    trace.outputs[j].view(),
-                    y.view(),
-                )
+                self.output_delta(hooks, step.out.view(), trace.outputs[j].view(), y.view())
             } else {
                 let da = upstream[j]
                     .take()
                     .unwrap_or_else(|| Array2::zeros(step.out.raw_dim()));
-                node.activation
-                    .backward(step.out.view(), trace.outputs[j].view(), da)
+                let (z, a) = (step.out.view(), trace.outputs[j].view());
+                match hooks.slope.filter(|&(l, _)| l == j).map(|(_, s)| s) {
+                    None => node.activation.backward(z, a, da),
+                    Some(Slope::Missing) => da,
+                    Some(Slope::AtOutput) => {
+                        let at_a = node.activation.apply(a);
+                        node.activation.backward(a, at_a.view(), da)
+                    }
+                }
             };
             let input = if j == 0 {
                 x.view()
@@ -627,11 +643,17 @@ impl Graph {
                 accumulate(&mut upstream[j - 1], back.dx);
             }
         }
-        let factor = self.loss.l2_factor(m);
+        let (factor, toggled) = match hooks.regularization {
+            Regularization::Declared => (self.loss.l2_factor(m), false),
+            Regularization::Missing => (0.0, false),
+            Regularization::Divisor(d) => (self.loss.l2 / d.value(m), false),
+            Regularization::BiasToggled => (self.loss.l2_factor(m), true),
+        };
         if factor != 0.0 {
             let two = S::from_f64(2.0 * factor);
             for (t, (g, p)) in grads.iter_mut().zip(params).enumerate() {
-                if self.decays(t) {
+                let bias = self.tensors[t].spec.role == Role::Bias;
+                if self.decays(t) != (toggled && bias) {
                     Zip::from(g).and(p).for_each(|g, &w| *g += two * w);
                 }
             }
@@ -640,6 +662,46 @@ impl Graph {
             grads,
             input_grad.expect("the first layer hands back the input gradient"),
         )
+    }
+
+    /// dJ/dz of the output layer's data term, with the departures of `hooks`.
+    fn output_delta<S: LayerScalar>(
+        &self,
+        hooks: &Hooks,
+        z: ArrayView2<S>,
+        a: ArrayView2<S>,
+        y: ArrayView2<S>,
+    ) -> Array2<S> {
+        let last = self.nodes.last().expect("non-empty");
+        let rows = last.layer.output().rows();
+        let mut d = if hooks.other_loss_delta {
+            // Cross-entropy's delta is (a − y) over the reduction with no activation step, which
+            // is what it is for a sigmoid output; squared error's takes the activation's step.
+            let (loss, activation) = match self.loss.loss {
+                Loss::CrossEntropy => (Loss::SquaredError, last.activation),
+                Loss::SquaredError => (Loss::CrossEntropy, Activation::Sigmoid),
+            };
+            let other = LossConfig { loss, ..self.loss };
+            other.delta(activation, rows, z, a, y)
+        } else {
+            self.loss.delta(last.activation, rows, z, a, y)
+        };
+        if hooks.data_scale != 1.0 {
+            let f = S::from_f64(hooks.data_scale);
+            d.mapv_inplace(|v| v * f);
+        }
+        let m = d.nrows();
+        let keep = match hooks.samples {
+            Samples::All => 0..m,
+            Samples::First => 0..1,
+            Samples::Last => m - 1..m,
+        };
+        for (i, mut row) in d.outer_iter_mut().enumerate() {
+            if !keep.contains(&i) {
+                row.fill(S::zero());
+            }
+        }
+        d
     }
 
     /// Whether a parameter list fits the graph: one tensor per [`TensorSpec`], canonical shapes.
