@@ -113,6 +113,8 @@ pub enum CheckError {
     BadBatch(String),
     #[error("the gradient to check does not have the network's shapes")]
     BadGradient,
+    #[error("the parameters do not fit the network: {0}")]
+    BadParams(String),
 }
 
 /// The verdict on one coordinate or direction.

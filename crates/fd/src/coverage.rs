@@ -27,7 +27,13 @@ impl Sample {
     /// The default for a network: everything up to [`FULL_CHECK_LIMIT`] parameters, else
     /// [`DEFAULT_PER_LAYER`] per layer.
     pub fn default_for(net: &Network) -> Sample {
-        if net.parameters() <= FULL_CHECK_LIMIT {
+        Sample::default_for_parameters(net.parameters())
+    }
+
+    /// The default for a network of `parameters` parameters (any engine): everything up to
+    /// [`FULL_CHECK_LIMIT`], else [`DEFAULT_PER_LAYER`] per layer.
+    pub fn default_for_parameters(parameters: usize) -> Sample {
+        if parameters <= FULL_CHECK_LIMIT {
             Sample::All
         } else {
             Sample::PerLayer(DEFAULT_PER_LAYER)
@@ -165,6 +171,91 @@ pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, St
     Ok(out)
 }
 
+/// The coordinates of a network of parameter tensors to check, as (tensor, flat index) in tensor
+/// and flat order; `layers[t]` is the layer tensor `t` belongs to. The sample means what it means
+/// for [`select`]: `Total(n)` checks exactly n coordinates over the network (each tensor at least
+/// 10 of them, or all of a smaller one, unless n is too small for that: then one per tensor), the
+/// rest spread by size; `PerLayer(n)` n per layer (all of a smaller layer), spread over the
+/// layer's tensors the same way; every tensor is a stratum, so a bias is never left out.
+pub fn select_tensors(
+    sizes: &[usize],
+    layers: &[usize],
+    sample: Sample,
+    seed: u64,
+) -> Result<Vec<(usize, usize)>, String> {
+    let total: usize = sizes.iter().sum();
+    let quotas: Vec<usize> = match sample {
+        Sample::All => sizes.to_vec(),
+        Sample::Total(n) if n > total => {
+            return Err(format!(
+                "--sample {n} is more than the network's {total} parameters; use `all` or a smaller number"
+            ));
+        }
+        Sample::Total(n) => spread(sizes, n),
+        Sample::PerLayer(n) => {
+            let mut q = vec![0; sizes.len()];
+            let mut seen: Vec<usize> = layers.to_vec();
+            seen.dedup();
+            for layer in seen {
+                let members: Vec<usize> =
+                    (0..sizes.len()).filter(|&t| layers[t] == layer).collect();
+                let own: Vec<usize> = members.iter().map(|&t| sizes[t]).collect();
+                let n = n.min(own.iter().sum());
+                for (&t, share) in members.iter().zip(spread(&own, n)) {
+                    q[t] = share;
+                }
+            }
+            q
+        }
+    };
+    let mut rng = Rng::new(seed ^ 0x0f1a7);
+    let mut out = Vec::new();
+    for (t, (&size, &q)) in sizes.iter().zip(&quotas).enumerate() {
+        let mut idx: Vec<usize> = if q >= size {
+            (0..size).collect()
+        } else {
+            pick(size, &mut rng, q)
+        };
+        idx.sort_unstable();
+        out.extend(idx.into_iter().map(|k| (t, k)));
+    }
+    Ok(out)
+}
+
+/// n coordinates shared over strata of the given sizes: each its minimum (see [`select_tensors`]),
+/// the rest in proportion to what is left of each, by largest remainder.
+fn spread(sizes: &[usize], n: usize) -> Vec<usize> {
+    let mut q: Vec<usize> = sizes.iter().map(|&s| s.min(STRATUM_MINIMUM)).collect();
+    if q.iter().sum::<usize>() > n {
+        q = sizes.iter().map(|&s| s.min(1)).collect();
+    }
+    let rest = n.saturating_sub(q.iter().sum());
+    let room: Vec<usize> = sizes.iter().zip(&q).map(|(&s, &b)| s - b).collect();
+    let total_room: usize = room.iter().sum();
+    if rest > 0 && total_room > 0 {
+        let mut shares: Vec<(usize, usize, usize)> = room
+            .iter()
+            .enumerate()
+            .map(|(i, &r)| (i, rest * r / total_room, rest * r % total_room))
+            .collect();
+        for &(i, share, _) in &shares {
+            q[i] += share;
+        }
+        let mut left = rest - shares.iter().map(|s| s.1).sum::<usize>();
+        shares.sort_by_key(|&(i, _, rem)| (std::cmp::Reverse(rem), i));
+        for &(i, _, _) in &shares {
+            if left == 0 {
+                break;
+            }
+            if q[i] < sizes[i] {
+                q[i] += 1;
+                left -= 1;
+            }
+        }
+    }
+    q
+}
+
 /// k distinct indices of 0..n, seeded (partial Fisher–Yates over a sparse map, so picking a few
 /// coordinates of a huge layer costs no more than the few).
 pub(crate) fn pick(n: usize, rng: &mut Rng, k: usize) -> Vec<usize> {
@@ -262,6 +353,41 @@ mod tests {
                 total.max(4)
             );
         }
+    }
+
+    #[test]
+    fn tensor_samples_mean_what_dense_samples_mean() {
+        // Three layers: conv weight 3·2·5 and bias 3, a parameterless pool, dense 4·12 and 4.
+        let sizes = [30, 3, 48, 4];
+        let layers = [0, 0, 2, 2];
+        let all = select_tensors(&sizes, &layers, Sample::All, 1).unwrap();
+        assert_eq!(all.len(), 85);
+        let n = select_tensors(&sizes, &layers, Sample::Total(40), 3).unwrap();
+        assert_eq!(n.len(), 40, "exactly N");
+        assert_eq!(
+            n,
+            select_tensors(&sizes, &layers, Sample::Total(40), 3).unwrap()
+        );
+        for (t, size) in sizes.iter().enumerate() {
+            let got = n.iter().filter(|c| c.0 == t).count();
+            assert!(got >= (*size).min(10), "tensor {t}: {got}");
+        }
+        let mut d = n.clone();
+        d.dedup();
+        assert_eq!(d.len(), n.len(), "distinct");
+        // Too few for ten each: one per tensor at least, still exactly N.
+        let few = select_tensors(&sizes, &layers, Sample::Total(6), 3).unwrap();
+        assert_eq!(few.len(), 6);
+        assert!((0..4).all(|t| few.iter().any(|c| c.0 == t)));
+        // Per layer: 20 of conv's 33 (its 3 biases all), 20 of dense's 52.
+        let per = select_tensors(&sizes, &layers, Sample::PerLayer(20), 5).unwrap();
+        assert_eq!(per.iter().filter(|c| c.0 < 2).count(), 20);
+        assert_eq!(per.iter().filter(|c| c.0 >= 2).count(), 20);
+        assert_eq!(per.iter().filter(|c| c.0 == 1).count(), 3);
+        assert_eq!(per.iter().filter(|c| c.0 == 3).count(), 4);
+        let big = select_tensors(&sizes, &layers, Sample::PerLayer(500), 5).unwrap();
+        assert_eq!(big, all);
+        assert!(select_tensors(&sizes, &layers, Sample::Total(86), 1).is_err());
     }
 
     #[test]

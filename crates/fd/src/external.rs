@@ -7,8 +7,9 @@ use std::collections::HashMap;
 use plumb_engine::Rng;
 
 use crate::check::{RETRIES, Rule, Status};
-use crate::method::{Method, second_difference_steps, smooth_across};
-use crate::{FLOOR, NOISE, Sample, relative_floor};
+use crate::direction::{Direction, directions};
+use crate::method::{Method, complex_estimate, second_difference_steps, smooth_across};
+use crate::{FLOOR, NOISE, Progress, Sample, relative_floor};
 
 /// One tensor of the outside program: its parameters and the gradient it returned for them.
 #[derive(Clone, Debug)]
@@ -95,6 +96,8 @@ pub struct OutsideDirection {
 pub struct ExternalResult {
     pub coords: Vec<OutsideCoord>,
     pub directions: Vec<OutsideDirection>,
+    /// The floor of the relative error's denominator per tensor ([`relative_floor`]).
+    pub floors: Vec<f64>,
 }
 
 /// The outside loss at `count` perturbations given as changes.
@@ -113,13 +116,54 @@ pub fn check_external<E>(
     inside: &Inside<'_>,
     config: &ExternalConfig,
 ) -> Result<ExternalResult, E> {
+    let sizes: Vec<usize> = tensors.iter().map(|t| t.values.len()).collect();
+    let plan = Plan {
+        picked: select_flat(&sizes, config.sample, config.seed),
+        directions: directions(&sizes, config.directions, config.seed),
+        round: |h| h,
+        progress: &|_, _| {},
+    };
+    check_tensors(tensors, f0, losses, None, inside, config, &plan)
+}
+
+/// What [`check_tensors`] checks besides the configuration: the coordinates and directions chosen
+/// (and sharded) by the caller, how a step is rounded to the precision the loss is computed in,
+/// and where progress goes.
+pub(crate) struct Plan<'a> {
+    pub picked: Vec<(usize, usize)>,
+    pub directions: Vec<Direction>,
+    pub round: fn(f64) -> f64,
+    pub progress: Progress<'a>,
+}
+
+/// The check itself, for any loss plumb can ask for at perturbations: an outside program's, or the
+/// layer graph's. `imaginary(count, changes)`, when the loss can be evaluated at complex
+/// parameters, returns Im J at perturbations by i·delta; it is what the complex step needs. There
+/// `inside.crossed(t, k, ±h)` at a forward difference's step h says whether the point sits on a
+/// non-smooth point of the coordinate (the complex step itself never leaves the branch it starts
+/// on).
+pub(crate) fn check_tensors<E>(
+    tensors: &[OutsideTensor],
+    f0: f64,
+    losses: &mut Losses<'_, E>,
+    mut imaginary: Option<&mut Losses<'_, E>>,
+    inside: &Inside<'_>,
+    config: &ExternalConfig,
+    plan: &Plan<'_>,
+) -> Result<ExternalResult, E> {
+    let total = plan.picked.len() + plan.directions.len();
+    let done = std::cell::Cell::new(0usize);
+    let tick = || {
+        done.set(done.get() + 1);
+        (plan.progress)(done.get(), total);
+    };
     let crossed = inside.crossed;
     let method = config.method;
     let sizes: Vec<usize> = tensors.iter().map(|t| t.values.len()).collect();
-    let picked = select_flat(&sizes, config.sample, config.seed);
+    let picked = &plan.picked;
     let noise = NOISE * config.eps * f0.abs().max(inside.loss_gross);
     let gross = |t: usize, k: usize| tensors[t].gross.get(k).copied().unwrap_or(0.0);
-    let round = |h: f64| h;
+    let round = plan.round;
     let reach = if config.step.is_some() {
         0
     } else {
@@ -147,9 +191,47 @@ pub fn check_external<E>(
             .unwrap_or_else(|| method.default_step(tensors[t].values[k], config.eps))
     };
 
-    // Round one at the default steps, then the kink retries at smaller ones.
+    // The complex step: one evaluation per coordinate, and a look at the branches a real step
+    // would take (a forward difference's, √ε·max(|θ|, 1): small, so that it breaks a tie without
+    // reaching kinks the complex step does not see).
+    let probe_step = |theta: f64| Method::Forward.default_step(theta, config.eps);
     let mut estimates: Vec<Option<(crate::Estimate, bool)>> = vec![None; picked.len()];
-    let mut todo: Vec<usize> = (0..picked.len()).collect();
+    let complex = method == Method::ComplexStep;
+    if complex {
+        let imaginary = imaginary
+            .as_deref_mut()
+            .expect("the complex step needs a loss that takes complex parameters");
+        let all: Vec<usize> = (0..picked.len()).collect();
+        for chunk in all.chunks(BATCH) {
+            let changes: Vec<Change> = chunk
+                .iter()
+                .enumerate()
+                .map(|(p, &i)| {
+                    let (t, k) = picked[i];
+                    Change {
+                        perturbation: p as u32,
+                        tensor: t as u32,
+                        index: k as u64,
+                        delta: step_of(t, k),
+                    }
+                })
+                .collect();
+            let values = imaginary(changes.len(), &changes)?;
+            for (&i, im) in chunk.iter().zip(values) {
+                let (t, k) = picked[i];
+                let hp = probe_step(tensors[t].values[k]);
+                let g = |_: f64| (im, crossed(t, k, hp) || crossed(t, k, -hp));
+                estimates[i] = Some((complex_estimate(&g, step_of(t, k), config.eps), false));
+                tick();
+            }
+        }
+    }
+    // Round one at the default steps, then the kink retries at smaller ones.
+    let mut todo: Vec<usize> = if complex {
+        Vec::new()
+    } else {
+        (0..picked.len()).collect()
+    };
     for (round_no, factor) in std::iter::once(1.0).chain(RETRIES).enumerate() {
         if todo.is_empty() || (round_no > 0 && config.step.is_some()) {
             break;
@@ -196,6 +278,7 @@ pub fn check_external<E>(
                     }
                 } else {
                     estimates[i] = Some((est, round_no > 0));
+                    tick();
                 }
             }
         }
@@ -222,7 +305,7 @@ pub fn check_external<E>(
     // below the first disagreement, wins (a kink had moved the larger ones). Where every step still disagrees, or the steps grow too short to
     // settle anything, the second differences decide ([`smooth_across`]): smooth, a mismatch;
     // not, `unreliable`.
-    if !inside.sees_kinks && config.step.is_none() {
+    if !inside.sees_kinks && config.step.is_none() && !complex {
         // The typical round-off of one evaluation, not the worst case the bounds use (4ε): the
         // test only chooses between mismatch and unreliable, and must see a kink large enough to
         // move an estimate beyond its bound.
@@ -316,27 +399,12 @@ pub fn check_external<E>(
         })
         .collect();
 
-    // Directions: per tensor and over all, unit vectors drawn from the seed.
-    let mut rng = Rng::new(config.seed ^ 0xd1_7ec7);
-    let mut directions = Vec::new();
-    let scopes: Vec<Option<usize>> = std::iter::once(None)
-        .chain((0..tensors.len()).map(Some))
-        .collect();
-    for scope in scopes {
-        for _ in 0..config.directions {
-            let mut v: Vec<Vec<f64>> = tensors
-                .iter()
-                .enumerate()
-                .map(|(t, x)| {
-                    if scope.is_none_or(|s| s == t) {
-                        (0..x.values.len()).map(|_| rng.normal()).collect()
-                    } else {
-                        vec![0.0; x.values.len()]
-                    }
-                })
-                .collect();
-            let norm = v.iter().flatten().map(|x| x * x).sum::<f64>().sqrt();
-            v.iter_mut().flatten().for_each(|x| *x /= norm);
+    // Directions: over all tensors and per tensor, unit vectors drawn from the seed.
+    let mut directions = Vec::with_capacity(plan.directions.len());
+    for direction in &plan.directions {
+        {
+            let scope = direction.tensor;
+            let v = direction.vector(&sizes);
             let theta = tensors
                 .iter()
                 .enumerate()
@@ -348,22 +416,7 @@ pub fn check_external<E>(
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
             // The loss along v at the given steps.
             let mut along = |deltas: &[f64]| -> Result<HashMap<u64, f64>, E> {
-                let mut changes = Vec::new();
-                for (p, &d) in deltas.iter().enumerate() {
-                    for (t, vt) in v.iter().enumerate() {
-                        for (k, &vk) in vt.iter().enumerate() {
-                            if vk != 0.0 {
-                                changes.push(Change {
-                                    perturbation: p as u32,
-                                    tensor: t as u32,
-                                    index: k as u64,
-                                    delta: d * vk,
-                                });
-                            }
-                        }
-                    }
-                }
-                let values = losses(deltas.len(), &changes)?;
+                let values = losses(deltas.len(), &changes_along(&v, deltas))?;
                 Ok(deltas
                     .iter()
                     .zip(&values)
@@ -378,7 +431,19 @@ pub fn check_external<E>(
                 method.estimate_with(&f, f0, h, noise, round, reach)
             };
             let mut est = None;
+            if complex {
+                let imaginary = imaginary
+                    .as_deref_mut()
+                    .expect("the complex step needs a loss that takes complex parameters");
+                let im = imaginary(1, &changes_along(&v, &[h0]))?[0];
+                let hp = probe_step(theta);
+                let crossed = (inside.crossed_along)(&v, hp) || (inside.crossed_along)(&v, -hp);
+                est = Some(complex_estimate(&|_| (im, crossed), h0, config.eps));
+            }
             for factor in std::iter::once(1.0).chain(RETRIES) {
+                if complex {
+                    break;
+                }
                 let h = h0 * factor;
                 let table = along(&method.stencil(h, reach, round))?;
                 let e = estimate_at(&table, h, reach);
@@ -418,7 +483,11 @@ pub fn check_external<E>(
             };
             // As for coordinates: a black box's disagreement must hold at a smaller step on a
             // loss that looks smooth along v.
-            if !inside.sees_kinks && config.step.is_none() && judge(&est).3 == Status::Mismatch {
+            if !inside.sees_kinks
+                && config.step.is_none()
+                && !complex
+                && judge(&est).3 == Status::Mismatch
+            {
                 let s0 = est.step;
                 let first = judge(&est).0;
                 let rtable = along(&second_difference_steps(2.0 * s0))?;
@@ -449,9 +518,34 @@ pub fn check_external<E>(
                 bound,
                 status,
             });
+            tick();
         }
     }
-    Ok(ExternalResult { coords, directions })
+    Ok(ExternalResult {
+        coords,
+        directions,
+        floors,
+    })
+}
+
+/// The changes that move every parameter by `delta`·v, one perturbation per delta.
+fn changes_along(v: &[Vec<f64>], deltas: &[f64]) -> Vec<Change> {
+    let mut changes = Vec::new();
+    for (p, &d) in deltas.iter().enumerate() {
+        for (t, vt) in v.iter().enumerate() {
+            for (k, &vk) in vt.iter().enumerate() {
+                if vk != 0.0 {
+                    changes.push(Change {
+                        perturbation: p as u32,
+                        tensor: t as u32,
+                        index: k as u64,
+                        delta: d * vk,
+                    });
+                }
+            }
+        }
+    }
+    changes
 }
 
 /// The loss at each coordinate's steps, one table (step bits → loss) per coordinate, asked in

@@ -5,6 +5,12 @@
 //! more than the method can explain. Perturbing one weight recomputes only what it changes (see
 //! `evaluate`), in parallel over coordinates, with results independent of the thread count.
 //!
+//! Three entry points share one verdict rule ([`Rule`], [`relative_floor`], [`Status`]): `check`
+//! for the dense engine, `check_external` for an outside program's loss, and `check_graph` for
+//! the layer graph — which is the outside check's core run on a loss whose inside plumb knows
+//! (its branches at kinks, complex arithmetic for the complex step), with coordinates
+//! (tensor, flat index) from [`select_tensors`] and directions from [`directions`].
+//!
 //! ```
 //! use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
 //! use plumb_fd::{CheckConfig, Method, Precision, Status, check};
@@ -19,9 +25,11 @@
 
 mod check;
 mod coverage;
+mod direction;
 mod evaluate;
 mod external;
 mod floor;
+mod graph_check;
 mod gross;
 mod method;
 mod order;
@@ -34,13 +42,18 @@ pub use check::{
     NOISE, Precision, Progress, Rule, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check,
     check_gradient,
 };
-pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select};
+pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select, select_tensors};
+pub use direction::{Direction, directions};
 pub use evaluate::{Base, full_loss};
 pub use external::{
     Change, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
     OutsideTensor, check_external, select_flat,
 };
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};
+pub use graph_check::{
+    GraphCheck, check_graph, check_graph_gradient, loss_magnitude as graph_loss_magnitude,
+    sweep_graph,
+};
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
 pub use order::{worse_error, worst_first};

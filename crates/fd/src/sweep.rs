@@ -17,16 +17,16 @@ pub fn steps(from: f64, to: f64, n: usize) -> Vec<f64> {
         .collect()
 }
 
-/// One coordinate's curve.
+/// One coordinate's curve: a dense [`Coord`], or (tensor, flat index) of a layer graph.
 #[derive(Clone, Debug, PartialEq)]
-pub struct Curve {
-    pub coord: Coord,
+pub struct Curve<K = Coord> {
+    pub coord: K,
     pub analytic: f64,
     /// Per method (in the order asked), the estimate at every step.
     pub estimates: Vec<Vec<f64>>,
 }
 
-impl Curve {
+impl<K> Curve<K> {
     /// Relative error of method `m` at step `i`: |n − a| / max(|a|, |n|, floor).
     pub fn error(&self, m: usize, i: usize, floor: f64) -> f64 {
         let n = self.estimates[m][i];
@@ -52,8 +52,8 @@ impl Curve {
 
 /// What to sweep: coordinates, methods, absolute steps, and the precision to run the engine in.
 #[derive(Clone, Debug)]
-pub struct SweepPlan {
-    pub coords: Vec<Coord>,
+pub struct SweepPlan<K = Coord> {
+    pub coords: Vec<K>,
     pub methods: Vec<Method>,
     pub steps: Vec<f64>,
     pub precision: Precision,

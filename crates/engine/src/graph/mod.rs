@@ -80,8 +80,8 @@ pub use layer_norm::LayerNorm;
 pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
 pub use network::{
-    Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, TensorSpec,
-    Trace,
+    Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, Tail,
+    TensorSpec, Trace,
 };
 pub use pool::{Pool, PoolKind};
 pub use recurrent::{Output, Recurrent};

@@ -316,6 +316,16 @@ impl<S> Trace<S> {
     }
 }
 
+/// The layers from `from` on of a forward pass whose parameters differ from a base pass's only in
+/// those layers ([`Graph::forward_from`]): what a finite-difference check recomputes when it moves
+/// one parameter of layer `from`. Entry i of `steps` and `outputs` is layer `from + i`.
+#[derive(Clone, Debug)]
+pub struct Tail<S> {
+    pub from: usize,
+    pub steps: Vec<Step<S>>,
+    pub outputs: Vec<Array2<S>>,
+}
+
 /// The branches one layer took: its kind's choices and its activation's sides.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct LayerBranches {
@@ -466,6 +476,45 @@ impl Graph {
         Trace { steps, outputs }
     }
 
+    /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
+    /// parameters equal `params` in every layer below `from`: the layers below are read from the
+    /// base (an `add` above tapping one of them too), the rest recomputed.
+    pub fn forward_from<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        from: usize,
+    ) -> Tail<S> {
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
+        assert!(from < self.nodes.len(), "layer {from} is not in the graph");
+        let x = x.as_standard_layout();
+        let mut steps: Vec<Step<S>> = Vec::with_capacity(self.nodes.len() - from);
+        let mut outputs: Vec<Array2<S>> = Vec::with_capacity(self.nodes.len() - from);
+        for (j, node) in self.nodes.iter().enumerate().skip(from) {
+            let output = |i: usize| {
+                if i < from {
+                    base.outputs[i].view()
+                } else {
+                    outputs[i - from].view()
+                }
+            };
+            let input = if j == 0 { x.view() } else { output(j - 1) };
+            let skip = node.tap.map(output);
+            let step = S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
+            let a = self.activate(node, &step.out);
+            steps.push(step);
+            outputs.push(a);
+        }
+        Tail {
+            from,
+            steps,
+            outputs,
+        }
+    }
+
     fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
         match node.activation {
             Activation::Identity => z.clone(),
@@ -486,20 +535,18 @@ impl Graph {
             .nodes
             .iter()
             .zip(&trace.steps)
-            .map(|(node, step)| {
-                let (sides, on_kink) = match node.activation.kink() {
-                    Some(k) => (
-                        step.out.iter().map(|v| v.re() > k).collect(),
-                        step.out.iter().filter(|v| v.re() == k).count(),
-                    ),
-                    None => (Vec::new(), 0),
-                };
-                LayerBranches {
-                    kind: step.branches.clone(),
-                    sides,
-                    ties: step.ties + on_kink,
-                }
-            })
+            .map(|(node, step)| layer_branches(node, step))
+            .collect();
+        Branches { layers }
+    }
+
+    /// The branches of the layers a [`Tail`] recomputed: entry i is layer `tail.from + i`, to be
+    /// compared with the base pass's layers from `tail.from` on.
+    pub fn branches_from<S: Scalar>(&self, tail: &Tail<S>) -> Branches {
+        let layers = self.nodes[tail.from..]
+            .iter()
+            .zip(&tail.steps)
+            .map(|(node, step)| layer_branches(node, step))
             .collect();
         Branches { layers }
     }
@@ -522,9 +569,35 @@ impl Graph {
         trace: &Trace<S>,
         y: ArrayView2<S>,
     ) -> S {
-        let last = self.nodes.last().expect("non-empty");
         let z = &trace.steps.last().expect("non-empty").out;
-        let a = trace.output();
+        self.loss_at(params, z, trace.output(), y)
+    }
+
+    /// The loss from a [`Tail`] (its last layer is the output layer).
+    pub fn loss_from<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        tail: &Tail<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let z = &tail
+            .steps
+            .last()
+            .expect("a tail holds the output layer")
+            .out;
+        let a = tail.outputs.last().expect("a tail holds the output layer");
+        self.loss_at(params, z, a, y)
+    }
+
+    /// The loss from the output layer's z and activation a.
+    fn loss_at<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        z: &Array2<S>,
+        a: &Array2<S>,
+        y: ArrayView2<S>,
+    ) -> S {
+        let last = self.nodes.last().expect("non-empty");
         let m = z.nrows();
         let y = y.as_standard_layout();
         let mut total = self.loss.data(
@@ -773,6 +846,22 @@ impl Graph {
                 )
             })
         })
+    }
+}
+
+/// One layer's branches from its step: the kind's choices and the activation's sides.
+fn layer_branches<S: Scalar>(node: &Node, step: &Step<S>) -> LayerBranches {
+    let (sides, on_kink) = match node.activation.kink() {
+        Some(k) => (
+            step.out.iter().map(|v| v.re() > k).collect(),
+            step.out.iter().filter(|v| v.re() == k).count(),
+        ),
+        None => (Vec::new(), 0),
+    };
+    LayerBranches {
+        kind: step.branches.clone(),
+        sides,
+        ties: step.ties + on_kink,
     }
 }
 

@@ -1,0 +1,616 @@
+//! The finite-difference check of the layer graph (`plumb_engine::graph`): the same checker and
+//! verdict rule as an outside program's ([`check_external`](crate::check_external)), on a loss
+//! whose inside plumb fully knows.
+//!
+//! Coordinates are (tensor, flat index) over [`Graph::tensors`]; the sample and the random
+//! directions come from the one sampler ([`select_tensors`]) and generator ([`directions`]).
+//! Perturbing a tensor of layer L recomputes the graph from layer L over the base pass
+//! ([`Graph::forward_from`]): the layers below are read from it. Perturbations are evaluated in
+//! parallel, each on its own, so the result does not depend on the number of threads. A step is
+//! called across a non-smooth point when the perturbed pass takes another branch than the base
+//! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
+//! value across a break in a derivative the methods' bounds assume (elu with α = 1); such a step
+//! is retried 10, 100 and 1000 times smaller, and a coordinate that still crosses is `unreliable`.
+//! The complex step never leaves the branch it starts on; where the base pass itself sits on a
+//! tie or exactly on a kink at or above the coordinate's layer, it looks at the branches real
+//! steps ±√ε·max(|θ|, 1) take instead, and calls the coordinate `unreliable` when they change.
+
+use std::cell::RefCell;
+use std::collections::HashMap;
+use std::convert::Infallible;
+
+use ndarray::{Array2, ArrayD, ArrayView2};
+use num_complex::Complex;
+use plumb_engine::graph::{Branches, Graph, LayerScalar, Shape, Tail, Trace};
+use plumb_engine::{Activation, Loss, Scalar};
+use rayon::prelude::*;
+
+use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress};
+use crate::direction::directions;
+use crate::external::{Plan, check_tensors};
+use crate::method::{ComplexScalar, complex_estimate, round_to};
+use crate::sweep::{Curve, SweepPlan};
+use crate::{
+    Change, ExternalConfig, Inside, Method, OutsideCoord, OutsideDirection, OutsideTensor, Sample,
+    select_tensors,
+};
+
+/// The result of a check of the graph.
+#[derive(Clone, Debug)]
+pub struct GraphCheck {
+    pub method: Method,
+    pub precision: Precision,
+    /// J(θ) in the precision checked.
+    pub loss: f64,
+    pub coverage: Coverage,
+    /// The relative tolerance, and the floor of the relative error's denominator per tensor.
+    pub tolerance: f64,
+    pub floors: Vec<f64>,
+    /// Per checked coordinate, (tensor, flat index) in tensor and flat order.
+    pub coords: Vec<OutsideCoord>,
+    /// K directions over every tensor, then K per tensor (fewer in a shard).
+    pub directions: Vec<OutsideDirection>,
+    /// The gradient checked (the engine's own unless one was given), one per tensor.
+    pub analytic: Vec<ArrayD<f64>>,
+}
+
+/// Checks the graph's own gradient at `params` (one per [`Graph::tensors`], canonical shapes) on
+/// the batch `x`, `y`, computed in the configured precision.
+pub fn check_graph(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+    config: &CheckConfig,
+    progress: Progress<'_>,
+) -> Result<GraphCheck, CheckError> {
+    fits(graph, params, x, y)?;
+    let analytic = match config.precision {
+        Precision::F64 => graph.gradient(params, x, y, None).params,
+        Precision::F32 => {
+            let p: Vec<ArrayD<f32>> = params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+            let (xs, ys) = (x.mapv(|v| v as f32), y.mapv(|v| v as f32));
+            graph
+                .gradient(&p, xs.view(), ys.view(), None)
+                .params
+                .iter()
+                .map(|g| g.mapv(f64::from))
+                .collect()
+        }
+    };
+    check_graph_gradient(graph, params, x, y, &analytic, config, progress)
+}
+
+/// Checks a given gradient (the engine's, a planted mistake's, a corrupted copy, an outside one)
+/// against finite differences of the graph's loss.
+pub fn check_graph_gradient(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+    analytic: &[ArrayD<f64>],
+    config: &CheckConfig,
+    progress: Progress<'_>,
+) -> Result<GraphCheck, CheckError> {
+    fits(graph, params, x, y)?;
+    if graph.check_params(analytic).is_err() {
+        return Err(CheckError::BadGradient);
+    }
+    if let Some(h) = config.step.filter(|h| !(h.is_finite() && *h > 0.0)) {
+        return Err(CheckError::BadStep(h));
+    }
+    let sizes: Vec<usize> = graph
+        .tensors()
+        .iter()
+        .map(|t| t.spec.shape.iter().product())
+        .collect();
+    let layers: Vec<usize> = graph.tensors().iter().map(|t| t.layer).collect();
+    let default_sample = config.sample.is_none();
+    let sample = config
+        .sample
+        .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
+    let mut picked =
+        select_tensors(&sizes, &layers, sample, config.seed).map_err(CheckError::BadSample)?;
+    let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
+    let mut chosen = directions(&sizes, k, config.seed);
+    if let Some((part, of)) = config.shard {
+        // Every n-th item from the k-th, as for the dense check.
+        let mine = |i: &usize| i % of == part - 1;
+        picked = keep(picked, mine);
+        chosen = keep(chosen, mine);
+    }
+    let eps = config.precision.epsilon();
+    let tolerance = config.tolerance.unwrap_or(config.precision.tolerance());
+    let tensors: Vec<OutsideTensor> = graph
+        .tensors()
+        .iter()
+        .zip(params.iter().zip(analytic))
+        .map(|(spec, (p, g))| OutsideTensor {
+            name: spec.name.clone(),
+            values: p.iter().copied().collect(),
+            gradient: g.iter().copied().collect(),
+            gross: Vec::new(),
+        })
+        .collect();
+    let external = ExternalConfig {
+        method: config.method,
+        step: config.step,
+        sample,
+        directions: k,
+        seed: config.seed,
+        eps,
+        tolerance,
+    };
+    let checked = picked.len();
+    let plan = Plan {
+        picked,
+        directions: chosen,
+        round: match config.precision {
+            Precision::F64 => round_to::<f64>,
+            Precision::F32 => round_to::<f32>,
+        },
+        progress,
+    };
+    let run = Run {
+        graph,
+        params,
+        x,
+        y,
+        tensors: &tensors,
+        config: &external,
+        plan: &plan,
+    };
+    let (loss, result) = match config.precision {
+        Precision::F64 => run.run::<f64, Complex<f64>>(),
+        Precision::F32 => run.run::<f32, Complex<f32>>(),
+    };
+    Ok(GraphCheck {
+        method: config.method,
+        precision: config.precision,
+        loss,
+        coverage: Coverage {
+            sample,
+            default_sample,
+            directions: k,
+            parameters: graph.parameters(),
+            checked,
+        },
+        tolerance,
+        floors: result.floors,
+        coords: result.coords,
+        directions: result.directions,
+        analytic: analytic.to_vec(),
+    })
+}
+
+fn fits(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+) -> Result<(), CheckError> {
+    graph
+        .check_params(params)
+        .map_err(|e| CheckError::BadParams(e.to_string()))?;
+    graph
+        .check_batch(x, y)
+        .map_err(|e| CheckError::BadBatch(e.to_string()))
+}
+
+fn keep<T>(items: Vec<T>, mine: impl Fn(&usize) -> bool) -> Vec<T> {
+    items
+        .into_iter()
+        .enumerate()
+        .filter(|(i, _)| mine(i))
+        .map(|(_, t)| t)
+        .collect()
+}
+
+struct Run<'a> {
+    graph: &'a Graph,
+    params: &'a [ArrayD<f64>],
+    x: ArrayView2<'a, f64>,
+    y: ArrayView2<'a, f64>,
+    tensors: &'a [OutsideTensor],
+    config: &'a ExternalConfig,
+    plan: &'a Plan<'a>,
+}
+
+/// The key of a perturbation's kink verdict: its first change (tensor, index, delta bits) and how
+/// many changes it has — what both a coordinate and a direction can name it by.
+type Key = (u32, u64, u64, usize);
+
+impl Run<'_> {
+    /// The check in real precision S (and its complex type C for the complex step): (J(θ), result).
+    fn run<S: LayerScalar, C: LayerScalar + ComplexScalar>(&self) -> (f64, crate::ExternalResult) {
+        let graph = self.graph;
+        let real = Eval::<S>::new(graph, self.params, self.x, self.y);
+        let f0 = real.loss.re();
+        let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
+        let complex = (self.config.method == Method::ComplexStep)
+            .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
+        // Kink verdicts of the last request, looked up by the checker right after it.
+        let seen: RefCell<HashMap<Key, bool>> = RefCell::new(HashMap::new());
+        let complex_mode = complex.is_some();
+        let eps = self.config.eps;
+        let mut losses = |count: usize, changes: &[Change]| -> Result<Vec<f64>, Infallible> {
+            let buckets = buckets(count, changes);
+            let out: Vec<(f64, bool)> = buckets.par_iter().map(|b| real.at(b)).collect();
+            let mut seen = seen.borrow_mut();
+            seen.clear();
+            for (b, &(_, crossed)) in buckets.iter().zip(&out) {
+                if let Some(key) = key_of(b) {
+                    seen.insert(key, crossed);
+                }
+            }
+            Ok(out.into_iter().map(|(v, _)| v).collect())
+        };
+        let mut imaginary = |count: usize, changes: &[Change]| -> Result<Vec<f64>, Infallible> {
+            let eval = complex.as_ref().expect("built for the complex step");
+            let buckets = buckets(count, changes);
+            // Im J at each perturbation, and for a coordinate on a tie the kink verdicts at the
+            // real probe steps ±h the checker asks for next.
+            let out: Vec<(f64, Vec<(Key, bool)>)> = buckets
+                .par_iter()
+                .map(|b| {
+                    let im = eval.imaginary(b);
+                    let mut probes = Vec::new();
+                    if let [c] = b.as_slice() {
+                        let theta = self.tensors[c.tensor as usize].values[c.index as usize];
+                        let hp = Method::Forward.default_step(theta, eps);
+                        for d in [hp, -hp] {
+                            let probe = [Change { delta: d, ..*c }];
+                            probes.push((key_of(&probe).expect("one change"), real.on_tie(&probe)));
+                        }
+                    }
+                    (im, probes)
+                })
+                .collect();
+            let mut seen = seen.borrow_mut();
+            seen.clear();
+            Ok(out
+                .into_iter()
+                .map(|(im, probes)| {
+                    seen.extend(probes);
+                    im
+                })
+                .collect())
+        };
+        // A verdict the last request did not leave is computed here (one evaluation).
+        let lookup = |changes: &[Change]| -> bool {
+            if let Some(c) = key_of(changes).and_then(|k| seen.borrow().get(&k).copied()) {
+                return c;
+            }
+            if complex_mode {
+                real.on_tie(changes)
+            } else {
+                real.at(changes).1
+            }
+        };
+        let crossed = |t: usize, k: usize, d: f64| {
+            lookup(&[Change {
+                perturbation: 0,
+                tensor: t as u32,
+                index: k as u64,
+                delta: d,
+            }])
+        };
+        let crossed_along = |v: &[Vec<f64>], d: f64| {
+            let changes: Vec<Change> = v
+                .iter()
+                .enumerate()
+                .flat_map(|(t, vt)| {
+                    vt.iter()
+                        .enumerate()
+                        .filter(|(_, w)| **w != 0.0)
+                        .map(move |(k, &w)| Change {
+                            perturbation: 0,
+                            tensor: t as u32,
+                            index: k as u64,
+                            delta: d * w,
+                        })
+                })
+                .collect();
+            lookup(&changes)
+        };
+        let inside = Inside {
+            crossed: &crossed,
+            crossed_along: &crossed_along,
+            loss_gross,
+            sees_kinks: true,
+        };
+        let result = match check_tensors(
+            self.tensors,
+            f0,
+            &mut losses,
+            Some(&mut imaginary),
+            &inside,
+            self.config,
+            self.plan,
+        ) {
+            Ok(r) => r,
+            Err(never) => match never {},
+        };
+        (f0, result)
+    }
+}
+
+/// The changes of each of `count` perturbations.
+fn buckets(count: usize, changes: &[Change]) -> Vec<Vec<Change>> {
+    let mut out = vec![Vec::new(); count];
+    for c in changes {
+        out[c.perturbation as usize].push(*c);
+    }
+    out
+}
+
+fn key_of(changes: &[Change]) -> Option<Key> {
+    changes
+        .first()
+        .map(|c| (c.tensor, c.index, c.delta.to_bits(), changes.len()))
+}
+
+/// The graph at its base point in scalar S, and perturbed evaluations over it.
+struct Eval<'a, S> {
+    graph: &'a Graph,
+    params: Vec<ArrayD<S>>,
+    x: Array2<S>,
+    y: Array2<S>,
+    trace: Trace<S>,
+    loss: S,
+    branches: Branches,
+    /// Per layer, the sides of a derivative's break the kink sides do not cover (elu, α = 1).
+    breaks: Vec<Vec<bool>>,
+    /// Per layer, the ties and values on a kink of the base pass at or above it.
+    ties_from: Vec<usize>,
+}
+
+impl<'a, S: LayerScalar> Eval<'a, S> {
+    fn new(
+        graph: &'a Graph,
+        params: &[ArrayD<f64>],
+        x: ArrayView2<f64>,
+        y: ArrayView2<f64>,
+    ) -> Self {
+        let params: Vec<ArrayD<S>> = params
+            .iter()
+            .map(|p| p.as_standard_layout().mapv(S::from_f64))
+            .collect();
+        let x = x.mapv(S::from_f64);
+        let y = y.mapv(S::from_f64);
+        let trace = graph.forward(&params, x.view());
+        let loss = graph.loss_of(&params, &trace, y.view());
+        let branches = graph.branches(&trace);
+        let breaks = (0..trace.steps.len())
+            .map(|j| breaks(graph, j, &trace.steps[j].out))
+            .collect();
+        let mut ties_from = vec![0; trace.steps.len() + 1];
+        for j in (0..trace.steps.len()).rev() {
+            ties_from[j] = ties_from[j + 1] + branches.layers[j].ties;
+        }
+        Eval {
+            graph,
+            params,
+            x,
+            y,
+            trace,
+            loss,
+            branches,
+            breaks,
+            ties_from,
+        }
+    }
+
+    /// The parameters moved by `changes` (each delta times `unit`), and the first layer moved.
+    fn moved(&self, changes: &[Change], unit: S) -> (Vec<ArrayD<S>>, usize) {
+        let mut moved = self.params.clone();
+        let mut from = usize::MAX;
+        for c in changes {
+            let t = c.tensor as usize;
+            from = from.min(self.graph.tensors()[t].layer);
+            let slot = moved[t]
+                .as_slice_mut()
+                .expect("standard layout")
+                .get_mut(c.index as usize)
+                .expect("index within its tensor");
+            *slot += unit * S::from_f64(c.delta);
+        }
+        (moved, from.min(self.trace.steps.len() - 1))
+    }
+
+    fn tail(&self, moved: &[ArrayD<S>], from: usize) -> Tail<S> {
+        self.graph
+            .forward_from(moved, self.x.view(), &self.trace, from)
+    }
+
+    /// The loss at a real perturbation and whether it took another branch than the base pass.
+    fn at(&self, changes: &[Change]) -> (f64, bool) {
+        let (moved, from) = self.moved(changes, S::one());
+        let tail = self.tail(&moved, from);
+        let loss = self.graph.loss_from(&moved, &tail, self.y.view()).re();
+        (loss, self.crossed(&tail))
+    }
+
+    /// Whether the base pass sits on a tie or a kink at or above the first layer `changes` move,
+    /// and a real step by them takes another branch.
+    fn on_tie(&self, changes: &[Change]) -> bool {
+        let from = changes
+            .iter()
+            .map(|c| self.graph.tensors()[c.tensor as usize].layer)
+            .min()
+            .unwrap_or(0);
+        self.ties_from[from] > 0 && self.at(changes).1
+    }
+
+    fn crossed(&self, tail: &Tail<S>) -> bool {
+        let moved = self.graph.branches_from(tail);
+        let from = tail.from;
+        self.branches.layers[from..]
+            .iter()
+            .zip(&moved.layers)
+            .any(|(a, b)| a.kind != b.kind || a.sides != b.sides)
+            || tail
+                .steps
+                .iter()
+                .enumerate()
+                .any(|(i, s)| breaks(self.graph, from + i, &s.out) != self.breaks[from + i])
+    }
+}
+
+impl<S: LayerScalar + ComplexScalar> Eval<'_, S> {
+    /// Im J at the perturbation by i·delta.
+    fn imaginary(&self, changes: &[Change]) -> f64 {
+        let (moved, from) = self.moved(changes, S::imaginary(1.0));
+        let tail = self.tail(&moved, from);
+        self.graph.loss_from(&moved, &tail, self.y.view()).im()
+    }
+}
+
+/// The error of each method against step size (the V-curve) for chosen (tensor, flat index)
+/// coordinates of the graph, against `analytic`: every method of the plan at every step, each
+/// perturbation recomputed from its layer up.
+pub fn sweep_graph(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+    analytic: &[ArrayD<f64>],
+    plan: &SweepPlan<(usize, usize)>,
+) -> Result<Vec<Curve<(usize, usize)>>, CheckError> {
+    fits(graph, params, x, y)?;
+    if graph.check_params(analytic).is_err() {
+        return Err(CheckError::BadGradient);
+    }
+    let sizes: Vec<usize> = analytic.iter().map(|a| a.len()).collect();
+    if let Some(&(t, k)) = plan
+        .coords
+        .iter()
+        .find(|&&(t, k)| t >= sizes.len() || k >= sizes[t])
+    {
+        return Err(CheckError::BadSample(format!(
+            "coordinate ({t}, {k}) is not in the network's tensors"
+        )));
+    }
+    Ok(match plan.precision {
+        Precision::F64 => sweep_in::<f64, Complex<f64>>(graph, params, x, y, analytic, plan),
+        Precision::F32 => sweep_in::<f32, Complex<f32>>(graph, params, x, y, analytic, plan),
+    })
+}
+
+fn sweep_in<S: LayerScalar, C: LayerScalar + ComplexScalar>(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+    analytic: &[ArrayD<f64>],
+    plan: &SweepPlan<(usize, usize)>,
+) -> Vec<Curve<(usize, usize)>> {
+    let real = Eval::<S>::new(graph, params, x, y);
+    let j0 = real.loss.re();
+    let complex = plan
+        .methods
+        .contains(&Method::ComplexStep)
+        .then(|| Eval::<C>::new(graph, params, x, y));
+    plan.coords
+        .par_iter()
+        .map(|&(t, k)| {
+            let change = |delta: f64| Change {
+                perturbation: 0,
+                tensor: t as u32,
+                index: k as u64,
+                delta,
+            };
+            let f = |d: f64| real.at(&[change(d)]);
+            let estimates = plan
+                .methods
+                .iter()
+                .map(|&m| {
+                    plan.steps
+                        .iter()
+                        .map(|&h| match (m, &complex) {
+                            (Method::ComplexStep, Some(c)) => {
+                                let g = |h: f64| (c.imaginary(&[change(h)]), false);
+                                complex_estimate(&g, h, S::epsilon()).value
+                            }
+                            _ => m.estimate(&f, j0, h, 0.0, round_to::<S>).value,
+                        })
+                        .collect()
+                })
+                .collect();
+            Curve {
+                coord: (t, k),
+                analytic: analytic[t].iter().nth(k).copied().unwrap_or(f64::NAN),
+                estimates,
+            }
+        })
+        .collect()
+}
+
+/// The sides of layer j's values at a break of its activation's derivatives that its kink sides
+/// do not already record; empty where there is none.
+fn breaks<S: Scalar>(graph: &Graph, j: usize, z: &Array2<S>) -> Vec<bool> {
+    let act = graph.nodes()[j].activation;
+    match (act.kink(), act.break_point()) {
+        (None, Some(b)) => z.iter().map(|v| v.re() > b).collect(),
+        _ => Vec::new(),
+    }
+}
+
+/// Σ of the absolute values of the terms the graph's loss sums (under its reduction), plus the L2
+/// term: round-off in J follows these pieces, not |J| (a confident network's loss is a small
+/// difference of large terms).
+pub fn loss_magnitude<S: LayerScalar>(
+    graph: &Graph,
+    params: &[ArrayD<S>],
+    trace: &Trace<S>,
+    y: &Array2<S>,
+) -> f64 {
+    let last = graph.nodes().last().expect("a graph has layers");
+    let rows = match graph.output() {
+        Shape::Sequence { steps, .. } => steps,
+        _ => 1,
+    };
+    let z = &trace.steps.last().expect("a graph has layers").out;
+    let a = trace.output();
+    let n = z.nrows() * rows;
+    let width = z.ncols() / rows.max(1);
+    let re = |v: &S| v.re();
+    let zs: Vec<f64> = z.iter().map(re).collect();
+    let ys: Vec<f64> = y.iter().map(re).collect();
+    let data: f64 = match (graph.loss_config().loss, last.activation) {
+        (Loss::CrossEntropy, Activation::Softmax) => zs
+            .chunks(width.max(1))
+            .zip(ys.chunks(width.max(1)))
+            .map(|(zr, yr)| {
+                let shift = zr.iter().fold(f64::NEG_INFINITY, |m, v| m.max(*v));
+                let lse = shift + zr.iter().map(|v| (v - shift).exp()).sum::<f64>().ln();
+                zr.iter()
+                    .zip(yr)
+                    .map(|(zv, yv)| yv.abs() * (lse.abs() + zv.abs()))
+                    .sum::<f64>()
+            })
+            .sum(),
+        (Loss::CrossEntropy, _) => zs
+            .iter()
+            .zip(&ys)
+            .map(|(&zv, &yv)| Activation::Softplus.value(zv).abs() + (yv * zv).abs())
+            .sum(),
+        (Loss::SquaredError, _) => {
+            0.5 * a
+                .iter()
+                .zip(&ys)
+                .map(|(av, yv)| (av.re().abs() + yv.abs()).powi(2))
+                .sum::<f64>()
+        }
+    };
+    let reduce = graph.loss_config().reduction.factor(n);
+    let l2: f64 = params
+        .iter()
+        .enumerate()
+        .filter(|(t, _)| graph.decays(*t))
+        .flat_map(|(_, p)| p.iter())
+        .map(|w| w.re() * w.re())
+        .sum::<f64>()
+        * graph.loss_config().l2_factor(z.nrows());
+    data * reduce + l2
+}
