@@ -21,6 +21,7 @@
 //! ```
 
 mod flow;
+mod graph_shapes;
 mod health;
 mod init;
 mod release;
@@ -32,6 +33,7 @@ mod units;
 mod values;
 
 pub use flow::{LayerFlow, layer_flow, sigma_max};
+pub use graph_shapes::{GraphShapeAudit, KindShapes, audit_graph_shapes};
 pub use health::{BINS, LayerHealth, layer_health, sparkline};
 pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,

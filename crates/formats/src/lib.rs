@@ -20,14 +20,19 @@
 mod atomic;
 mod data;
 mod description;
+mod file_tensors;
 #[doc(hidden)]
 pub mod fuzz;
+mod graph_description;
 mod input;
+mod layer_settings;
 mod layout;
 mod npy;
 mod npz;
 mod safetensors_file;
+mod settings;
 mod tensor;
+mod walk;
 
 pub use atomic::{Existing, leftovers, write_atomically, write_file};
 pub use input::read_input;
@@ -43,9 +48,12 @@ pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
+pub use file_tensors::{FileStorage, FileTensor};
+pub use graph_description::GraphDescription;
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };
+pub use settings::{KINDS, KindSettings, LayerSettings};
 pub use tensor::{
     DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, shape_text,
     write_tensor_file, write_tensors,
