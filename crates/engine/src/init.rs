@@ -6,11 +6,24 @@
 //! - LeCun, Bottou, Orr & Müller, "Efficient BackProp", 1998: variance 1 / fan_in.
 //!
 //! Normals are plain (not truncated). Bias weights start at zero.
+//!
+//! For the layer graph ([`Init::graph_params`]) every tensor is drawn by its [`Role`]:
+//!
+//! - weights (dense, convolution, recurrent input and recurrent, attention projections): the
+//!   scheme, with the tensor's own fan-in and fan-out from its [`ParamSpec`] — a convolution's
+//!   fan-in is in-channels × kernel area (He et al. 2015), a stacked recurrent weight's fan-out is
+//!   blocks × units, as the matrix the file holds;
+//! - biases and norm shifts: 0, so that a fresh layer adds nothing of its own;
+//! - norm scales: 1, so that a fresh norm passes the normalised values through unchanged;
+//! - embedding tables: standard normal whatever the scheme. A row is not a product of inputs but
+//!   the next layer's input itself, and the schemes size the next layer's weights for inputs of
+//!   about unit variance; fan-in and fan-out have no meaning for a lookup.
 
 use std::fmt;
 
-use ndarray::Array2;
+use ndarray::{Array2, ArrayD, IxDyn};
 
+use crate::graph::{Graph, ParamSpec, Role};
 use crate::{Network, Rng, Weights};
 
 /// An initialisation scheme.
@@ -61,6 +74,16 @@ impl Init {
         matches!(self, Init::GlorotUniform | Init::HeUniform)
     }
 
+    /// One weight of standard deviation `sd`, from the scheme's distribution.
+    fn draw(&self, sd: f64, rng: &mut Rng) -> f64 {
+        if self.is_uniform() {
+            let limit = 3f64.sqrt() * sd;
+            rng.range(-limit, limit)
+        } else {
+            sd * rng.normal()
+        }
+    }
+
     /// Draws weights for a network: non-bias weights from the scheme, bias weights zero.
     pub fn weights(&self, network: &Network, rng: &mut Rng) -> Weights<f64> {
         let layers = network
@@ -68,15 +91,39 @@ impl Init {
             .iter()
             .map(|spec| {
                 let sd = self.std_dev(spec.inputs, spec.units);
-                let limit = 3f64.sqrt() * sd;
                 Array2::from_shape_fn(spec.shape(), |(_, c)| match c {
                     0 => 0.0,
-                    _ if self.is_uniform() => rng.range(-limit, limit),
-                    _ => sd * rng.normal(),
+                    _ => self.draw(sd, rng),
                 })
             })
             .collect();
         Weights::new(layers)
+    }
+
+    /// Draws one parameter tensor of the graph by its role (see the module doc), in its
+    /// canonical shape; values are drawn in C order, and only weights and tables take draws.
+    pub fn tensor(&self, spec: &ParamSpec, rng: &mut Rng) -> ArrayD<f64> {
+        let shape = IxDyn(&spec.shape);
+        match spec.role {
+            Role::Weight => {
+                let sd = self.std_dev(spec.fan_in, spec.fan_out);
+                ArrayD::from_shape_simple_fn(shape, || self.draw(sd, rng))
+            }
+            Role::Bias | Role::Shift => ArrayD::zeros(shape),
+            Role::Scale => ArrayD::ones(shape),
+            Role::Table => ArrayD::from_shape_simple_fn(shape, || rng.normal()),
+        }
+    }
+
+    /// Draws every parameter tensor of a graph, in the order of [`Graph::tensors`]. The same
+    /// seed gives the same values; on a graph of dense layers they are the values
+    /// [`Init::weights`] gives the same network (biases take no draws in either).
+    pub fn graph_params(&self, graph: &Graph, rng: &mut Rng) -> Vec<ArrayD<f64>> {
+        graph
+            .tensors()
+            .iter()
+            .map(|t| self.tensor(&t.spec, rng))
+            .collect()
     }
 }
 

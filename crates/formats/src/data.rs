@@ -1,5 +1,7 @@
 //! Data files: a CSV with a header row, or an NPZ with arrays `x` and `y`, turned into a batch of
-//! features and targets for a network with `inputs` inputs and `outputs` output units.
+//! features and targets for a network with `inputs` inputs and `outputs` output units. The NPZ
+//! reader is the layer graph's ([`crate::read_graph_data`]) on flat shapes; the CSV reader is
+//! this file's, and the graph's reader uses it for flat inputs.
 //!
 //! A single integer target column (or 1-D `y`) with several output units holds class labels, which
 //! are one-hot encoded: that is how labelled data is usually kept, and refusing it would only make
@@ -9,9 +11,10 @@ use std::path::{Path, PathBuf};
 
 use ndarray::Array2;
 use plumb_engine::Batch;
+use plumb_engine::graph::Shape;
 
-use crate::tensor::{Tensor, TensorFileError, shape_text};
-use crate::{FileFormat, read_tensors};
+use crate::graph_data::{AxisOrder, read_graph_data};
+use crate::tensor::{DType, TensorFileError, shape_text};
 
 /// Offending text is quoted up to this many characters.
 const QUOTE_CHARS: usize = 40;
@@ -52,6 +55,12 @@ pub enum DataError {
         .path.display()
     )]
     NoSamples { path: PathBuf },
+
+    #[error(
+        "{}: array `x` holds no samples (its first axis has length 0); save at least one sample",
+        .path.display()
+    )]
+    NoSamplesInArray { path: PathBuf },
 
     #[error(
         "{}: line 1: the header has {found} columns, but the network needs {inputs} features + \
@@ -128,13 +137,51 @@ pub enum DataError {
         expected: String,
     },
 
-    #[error("{}: array `{array}`, element {}: {problem}", .path.display(), index_text(.index))]
+    #[error(
+        "{}: array `{array}`, element {} ({place}): {problem}",
+        .path.display(), index_text(.index)
+    )]
     BadElement {
         path: PathBuf,
         array: &'static str,
+        /// The element's index as NumPy takes it.
         index: Vec<usize>,
+        /// The same place in words: "sample 2, step 5", "sample 0, channel 1, position 7".
+        place: String,
         problem: String,
     },
+
+    #[error(
+        "{}: array `x` is {dtype}, but the network's input is {input}, which takes integer \
+         token ids: save x with an integer dtype, e.g. x.astype(np.int64){}",
+        .path.display(), fraction_text(.fraction)
+    )]
+    TokensNotInteger {
+        path: PathBuf,
+        dtype: DType,
+        input: Shape,
+        /// The first element that is not a whole number, if any: index, place in words, value.
+        fraction: Option<(Vec<usize>, String, f64)>,
+    },
+
+    #[error(
+        "{}: CSV holds flat data only (one row of numbers per sample), but the network's \
+         {what} is {shape}; save x and y with np.savez(path, x=..., y=...) and give the .npz",
+        .path.display()
+    )]
+    CsvNotFlat {
+        path: PathBuf,
+        /// "input" or "output".
+        what: &'static str,
+        shape: Shape,
+    },
+
+    #[error(
+        "{}: --channels-last reads arrays whose channels come last, but the network's input is \
+         {input}, which has no channel axis; drop --channels-last",
+        .path.display()
+    )]
+    ChannelsLastNotSpatial { path: PathBuf, input: Shape },
 }
 
 impl From<TensorFileError> for DataError {
@@ -151,6 +198,16 @@ fn label_alternative(inputs: usize, outputs: usize) -> String {
         )
     } else {
         " columns".to_string()
+    }
+}
+
+fn fraction_text(fraction: &Option<(Vec<usize>, String, f64)>) -> String {
+    match fraction {
+        Some((index, place, value)) => format!(
+            " (element {} ({place}) is {value}, not a whole number: is this the right array?)",
+            index_text(index)
+        ),
+        None => String::new(),
     }
 }
 
@@ -179,19 +236,14 @@ fn quote(text: &str) -> String {
 }
 
 /// Read a data file (by extension: `.csv` or `.npz`) for a network with `inputs` features and
-/// `outputs` output units.
+/// `outputs` output units: [`read_graph_data`] on flat shapes.
 pub fn read_data(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
-    let extension = path
-        .extension()
-        .and_then(|e| e.to_str())
-        .map(str::to_ascii_lowercase);
-    match extension.as_deref() {
-        Some("csv") => read_csv(path, inputs, outputs),
-        Some("npz") => read_npz(path, inputs, outputs),
-        _ => Err(DataError::UnknownExtension {
-            path: path.to_path_buf(),
-        }),
-    }
+    read_graph_data(
+        path,
+        &Shape::Flat(inputs),
+        &Shape::Flat(outputs),
+        AxisOrder::ChannelsFirst,
+    )
 }
 
 /// How the target columns of a file are to be read.
@@ -203,7 +255,7 @@ enum Targets {
     Labels,
 }
 
-fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
+pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
     // Streamed, not read whole: memory is what the samples hold, and an error on line 2 is
     // found without reading the rest.
     let file =
@@ -350,7 +402,7 @@ fn number(field: &str) -> Result<f64, String> {
 }
 
 /// The class a label value names, or why it names none.
-fn label(value: f64, classes: usize) -> Result<usize, String> {
+pub(crate) fn label(value: f64, classes: usize) -> Result<usize, String> {
     let valid = format!(
         "labels are integers 0 to {} (the output layer has {classes} units)",
         classes - 1
@@ -362,110 +414,4 @@ fn label(value: f64, classes: usize) -> Result<usize, String> {
         return Err(format!("is outside 0..={}; {valid}", classes - 1));
     }
     Ok(value as usize)
-}
-
-fn read_npz(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
-    let file = read_tensors(path)?;
-    debug_assert_eq!(file.format, FileFormat::Npz);
-    let find = |name: &'static str| {
-        file.get(name).ok_or_else(|| DataError::MissingArray {
-            path: path.to_path_buf(),
-            name,
-            found: file.tensors.iter().map(|t| t.name.clone()).collect(),
-        })
-    };
-    let (x, y) = (find("x")?, find("y")?);
-    let shape_error = |array, tensor: &Tensor, expected: String| DataError::ArrayShape {
-        path: path.to_path_buf(),
-        array,
-        shape: tensor.shape.clone(),
-        expected,
-    };
-
-    // x: m × inputs (1-D accepted for a single input).
-    let rows = match x.shape[..] {
-        [m, n] if n == inputs => m,
-        [m] if inputs == 1 => m,
-        _ => {
-            return Err(shape_error(
-                "x",
-                x,
-                format!("but the network has {inputs} inputs: x must be (samples, {inputs})"),
-            ));
-        }
-    };
-    if rows == 0 {
-        return Err(DataError::NoSamples {
-            path: path.to_path_buf(),
-        });
-    }
-    check_finite(path, "x", x)?;
-    check_finite(path, "y", y)?;
-
-    let targets = match y.shape[..] {
-        [m, n] if m == rows && n == outputs => Targets::Values,
-        [m] if m == rows && outputs == 1 => Targets::Values,
-        [m, 1] | [m] if m == rows && outputs > 1 => Targets::Labels,
-        _ => {
-            let alternative = if outputs > 1 {
-                format!(", or ({rows},) / ({rows}, 1) of class labels")
-            } else {
-                String::new()
-            };
-            return Err(shape_error(
-                "y",
-                y,
-                format!(
-                    "but x has {rows} samples and the network {outputs} outputs: y must be \
-                     ({rows}, {outputs}){alternative}"
-                ),
-            ));
-        }
-    };
-    let y = match targets {
-        Targets::Values => y.data.clone(),
-        Targets::Labels => {
-            let mut one_hot = Vec::with_capacity(rows * outputs);
-            for (i, &value) in y.data.iter().enumerate() {
-                let class = label(value, outputs).map_err(|problem| DataError::BadElement {
-                    path: path.to_path_buf(),
-                    array: "y",
-                    index: if y.shape.len() == 2 {
-                        vec![i, 0]
-                    } else {
-                        vec![i]
-                    },
-                    problem: format!("the value {value} {problem}"),
-                })?;
-                one_hot.extend((0..outputs).map(|k| if k == class { 1.0 } else { 0.0 }));
-            }
-            one_hot
-        }
-    };
-    Ok(Batch {
-        x: Array2::from_shape_vec((rows, inputs), x.data.clone()).expect("checked shape of x"),
-        y: Array2::from_shape_vec((rows, outputs), y).expect("checked shape of y"),
-    })
-}
-
-fn check_finite(path: &Path, array: &'static str, tensor: &Tensor) -> Result<(), DataError> {
-    let Some(flat) = tensor.data.iter().position(|v| !v.is_finite()) else {
-        return Ok(());
-    };
-    // Turn the flat C-order position back into an index, for the message.
-    let mut index = vec![0; tensor.shape.len()];
-    let mut rest = flat;
-    for (slot, &dim) in index.iter_mut().zip(&tensor.shape).rev() {
-        *slot = rest % dim;
-        rest /= dim;
-    }
-    Err(DataError::BadElement {
-        path: path.to_path_buf(),
-        array,
-        index,
-        problem: format!(
-            "{} is not finite; data must be finite — remove or impute the sample",
-            tensor.data[flat]
-        ),
-    })
 }

@@ -23,6 +23,7 @@ mod description;
 mod file_tensors;
 #[doc(hidden)]
 pub mod fuzz;
+mod graph_data;
 mod graph_description;
 mod input;
 mod layer_settings;
@@ -49,6 +50,7 @@ pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor};
+pub use graph_data::{AxisOrder, read_graph_data};
 pub use graph_description::GraphDescription;
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,

@@ -9,7 +9,8 @@ use std::path::PathBuf;
 use std::sync::Mutex;
 use std::sync::atomic::{AtomicUsize, Ordering};
 
-use plumb_formats::{read_data, read_tensors};
+use plumb_engine::graph::Shape;
+use plumb_formats::{AxisOrder, read_data, read_graph_data, read_tensors};
 use zip::write::SimpleFileOptions;
 use zip::{CompressionMethod, ZipWriter};
 
@@ -142,6 +143,52 @@ fn an_npz_member_inflates_no_further_than_its_npy_header_declares() {
         "{message}"
     );
     assert!(peak < 2 << 20, "peak {peak} bytes");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A channels-last image batch costs the archive, its values as f64 and one permuted copy of
+/// them (docs/budget.md): 4 MiB of float32 pixels peak below 3 × their 8 MiB as f64.
+#[test]
+fn a_channels_last_batch_costs_a_small_multiple_of_its_values() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("channels-last");
+    let (m, h, w, c) = (64usize, 32usize, 32usize, 16usize);
+    let values = m * h * w * c;
+    let pixels: Vec<u8> = (0..values)
+        .flat_map(|i| ((i % 251) as f32 / 8.0).to_le_bytes())
+        .collect();
+    let x = npy(
+        &format!("{{'descr': '<f4', 'fortran_order': False, 'shape': ({m}, {h}, {w}, {c}), }}"),
+        &pixels,
+    );
+    drop(pixels);
+    let labels: Vec<u8> = (0..m).map(|i| (i % 10) as u8).collect();
+    let y = npy(
+        &format!("{{'descr': '|u1', 'fortran_order': False, 'shape': ({m},), }}"),
+        &labels,
+    );
+    let path = dir.join("images.npz");
+    std::fs::write(&path, deflated_zip(&[("x.npy", &x), ("y.npy", &y)])).unwrap();
+    drop((x, y));
+    let input = Shape::Image {
+        channels: c,
+        height: h,
+        width: w,
+    };
+    let (batch, peak) = peak_during(|| {
+        read_graph_data(&path, &input, &Shape::Flat(10), AxisOrder::ChannelsLast).unwrap()
+    });
+    assert_eq!(batch.x.dim(), (m, values / m));
+    // Pixel (row 1, column 2, channel 3) of sample 0 sits at channel-major index 3·h·w + w + 2.
+    let file_index = (w + 2) * c + 3;
+    assert_eq!(
+        batch.x[[0, 3 * h * w + w + 2]],
+        (file_index % 251) as f32 as f64 / 8.0
+    );
+    assert!(
+        peak < 3 * values * 8,
+        "peak {peak} bytes for {values} values"
+    );
     std::fs::remove_dir_all(&dir).unwrap();
 }
 

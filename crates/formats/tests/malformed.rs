@@ -625,7 +625,7 @@ fn malformed_npz_data() {
     let path = write("range.npz", &[x.clone(), labels(vec![0.0, 5.0, 1.0])]);
     assert_has(
         &data_error(&path, 2, 3),
-        &["array `y`, element [1]: the value 5 is outside 0..=2"],
+        &["array `y`, element [1] (sample 1): the value 5 is outside 0..=2"],
     );
     let path = write("rows.npz", &[x.clone(), labels(vec![0.0, 1.0])]);
     assert_has(
@@ -642,7 +642,7 @@ fn malformed_npz_data() {
     let path = write("nan.npz", &[bad_x, labels(vec![0.0, 1.0, 2.0])]);
     assert_has(
         &data_error(&path, 2, 3),
-        &["array `x`, element [1, 0]: NaN is not finite"],
+        &["array `x`, element [1, 0] (sample 1, feature 0): NaN is not finite"],
     );
     let path = put(&dir, "noise.npz", &garbage(100, 3));
     assert_has(&data_error(&path, 2, 3), &["not a readable zip archive"]);
