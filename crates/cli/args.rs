@@ -126,6 +126,10 @@ pub struct Inputs {
     /// whose file sets the samples).
     #[arg(long, value_name = "M", conflicts_with = "data")]
     pub batch: Option<usize>,
+    /// The data file's spatial arrays are (m, length, channels) or (m, height, width, channels)
+    /// instead of channels first (networks with a signal or image input).
+    #[arg(long, requires = "data")]
+    pub channels_last: bool,
 }
 
 #[derive(Debug, Args)]
@@ -139,6 +143,10 @@ pub struct GradArgs {
     /// Element type of the gradient file [default: f64 for float64 weights or none, else f32].
     #[arg(long, value_enum)]
     pub dtype: Option<DTypeArg>,
+    /// Also give the gradient with respect to the input: the tensor `input`, (m, *input), in the
+    /// data's axis order.
+    #[arg(long)]
+    pub input_gradient: bool,
 }
 
 #[derive(Debug, Args)]
@@ -408,6 +416,7 @@ impl ProbeArgs {
             data: self.data.clone(),
             init: self.init,
             batch: self.batch,
+            channels_last: false,
         })
     }
 }

@@ -6,8 +6,10 @@ use std::path::Path;
 use anyhow::{Context, Result, bail};
 use plumb_audit::audit_shapes;
 use plumb_engine::{Batch, Init, Loss, Rng, Weights};
+use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_formats::{
-    DType, Description, FileFormat, TensorFile, assemble, read_data, read_tensors,
+    AnyDescription, AxisOrder, DType, Description, FileFormat, GraphDescription, TensorFile,
+    assemble, read_data, read_tensors,
 };
 pub use plumb_report::{DataSource, WeightsSource};
 use plumb_report::{Severity, Verdict};
@@ -43,8 +45,56 @@ pub fn init_scheme(arg: InitArg) -> Init {
     }
 }
 
+/// What `load_any` read: a dense description runs today's dense engine (its graph kept for what
+/// only the graph gives); any other kind runs the layer graph.
+pub enum AnyLoaded {
+    Dense(Box<Loaded>, Box<GraphDescription>),
+    Graph(Box<GraphLoaded>),
+}
+
+/// Loads a description of any kind, reading it once (the commands that run the graph).
+pub fn load_any(inputs: &Inputs, seed: u64) -> Result<AnyLoaded> {
+    match AnyDescription::read(&inputs.net)? {
+        AnyDescription::Dense(desc, graph) => Ok(AnyLoaded::Dense(
+            Box::new(load_dense(inputs, seed, desc)?),
+            graph,
+        )),
+        AnyDescription::Graph(desc) => {
+            let order = if inputs.channels_last {
+                AxisOrder::ChannelsLast
+            } else {
+                AxisOrder::ChannelsFirst
+            };
+            let graph_inputs = GraphInputs {
+                weights: inputs.weights.as_deref(),
+                data: inputs.data.as_deref(),
+                order,
+                init: init_scheme(inputs.init),
+                seed,
+                samples: inputs.batch.unwrap_or(DEFAULT_BATCH),
+            };
+            Ok(AnyLoaded::Graph(Box::new(GraphLoaded::load(
+                desc,
+                &graph_inputs,
+            )?)))
+        }
+    }
+}
+
+/// Loads a dense description (the commands that run the dense engine only; other kinds are
+/// refused naming the layer and its line).
 pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
-    let desc = Description::read(&inputs.net)?;
+    load_dense(inputs, seed, Description::read(&inputs.net)?)
+}
+
+fn load_dense(inputs: &Inputs, seed: u64, desc: Description) -> Result<Loaded> {
+    if inputs.channels_last {
+        bail!(
+            "--channels-last: the input of {} is {} features, with no channel axis; leave the flag out",
+            desc.path.display(),
+            desc.inputs()
+        );
+    }
     let (weights, weights_source) = match &inputs.weights {
         Some(path) => {
             let file = read_tensors(path)?;

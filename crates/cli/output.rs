@@ -263,6 +263,18 @@ pub fn network_id(desc: &Description) -> NetworkId {
     }
 }
 
+/// [`network_id`] of a description of any kind: its file tensors and their shapes.
+pub fn graph_network_id(desc: &plumb_formats::GraphDescription) -> NetworkId {
+    NetworkId {
+        hash: plumb_fd::report::graph_description_hash(desc),
+        shapes: desc
+            .files
+            .iter()
+            .map(|f| (f.name.clone(), f.shape.clone()))
+            .collect(),
+    }
+}
+
 fn all_findings(doc: &Document) -> Vec<Finding> {
     doc.blocks
         .iter()

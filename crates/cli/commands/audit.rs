@@ -101,6 +101,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         data: args.data.clone(),
         init: crate::args::InitArg::GlorotUniform,
         batch: Some(args.batch),
+        channels_last: false,
     };
     let (batch, data) = load_batch(&inputs, &desc, settings.seed, args.batch)?;
     let claimed = args.init.map(init_scheme);

@@ -1,15 +1,20 @@
-//! `plumb grad NET [-w W] [-d D] [-o G]`: the reference loss and gradient.
+//! `plumb grad NET [-w W] [-d D] [-o G] [--input-gradient]`: the reference loss and gradient, on
+//! the dense engine for dense descriptions and on the layer graph for any other kind.
 
 use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
-use plumb_formats::{DType, FileFormat, Tensor, disassemble, write_tensor_file};
+use plumb_engine::graph::Dense;
+use plumb_fd::report::GraphLoaded;
+use plumb_formats::{DType, FileFormat, GraphDescription, Tensor, disassemble, write_tensor_file};
 use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::{DTypeArg, GradArgs};
-use crate::inputs::{DataSource, Loaded, WeightsSource, check_output, load, output_format};
-use crate::output::{SCHEMA_VERSION, Settings, network_id, num, shape};
+use crate::inputs::{
+    AnyLoaded, DataSource, Loaded, WeightsSource, check_output, load_any, output_format,
+};
+use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, num, shape};
 
 /// Per-tensor summary of the gradient.
 #[derive(Clone, Debug, Serialize)]
@@ -59,11 +64,36 @@ pub fn compute(loaded: &Loaded) -> Computed {
     let grad = net.backward(&loaded.weights, &trace, b.y.view());
     let loss = data_loss + l2_term;
     let tensors = disassemble(&loaded.desc, &grad);
-    let layers = plumb_formats::expected_tensors(&loaded.desc, loaded.desc.layout);
+    let layers: Vec<usize> = plumb_formats::expected_tensors(&loaded.desc, loaded.desc.layout)
+        .iter()
+        .map(|e| e.layer + 1)
+        .collect();
+    summarised(
+        loaded.desc.path.clone(),
+        &loaded.weights_source,
+        &loaded.data_source,
+        b.len(),
+        (loss, data_loss, l2_term),
+        tensors,
+        &layers,
+    )
+}
+
+/// The report of a loss (J, data term, L2 term) and gradient tensors (`layers[i]` is tensor i's
+/// 1-based layer, 0 for the input), with a finding for what is not finite.
+fn summarised(
+    description: PathBuf,
+    weights: &WeightsSource,
+    data: &DataSource,
+    samples: usize,
+    (loss, data_loss, l2_term): (f64, f64, f64),
+    tensors: Vec<Tensor>,
+    layers: &[usize],
+) -> Computed {
     let summaries: Vec<TensorGradient> = tensors
         .iter()
-        .zip(&layers)
-        .map(|(t, e)| summarise(t, e.layer + 1))
+        .zip(layers)
+        .map(|(t, &layer)| summarise(t, layer))
         .collect();
     let mut findings = Vec::new();
     if !loss.is_finite() {
@@ -97,10 +127,10 @@ pub fn compute(loaded: &Loaded) -> Computed {
             verdict,
             schema_version: SCHEMA_VERSION,
             command: "grad",
-            description: loaded.desc.path.clone(),
-            weights: loaded.weights_source.clone(),
-            data: loaded.data_source.clone(),
-            samples: b.len(),
+            description,
+            weights: weights.clone(),
+            data: data.clone(),
+            samples,
             loss,
             data_loss,
             l2_term,
@@ -141,6 +171,55 @@ fn summarise(t: &Tensor, layer: usize) -> TensorGradient {
     }
 }
 
+/// The loss and gradient of a network of any kind on the layer graph, with the input gradient
+/// when asked; gradients are summarised and written per file tensor, in the declared storage.
+pub fn compute_graph(loaded: &GraphLoaded, input_gradient: bool) -> Result<Computed> {
+    let desc = &loaded.desc;
+    let graph = &desc.graph;
+    let b = &loaded.batch;
+    let g = graph.gradient(&loaded.params, b.x.view(), b.y.view(), None);
+    let l2_term = graph.loss_config().l2_factor(b.len())
+        * loaded
+            .params
+            .iter()
+            .enumerate()
+            .filter(|(t, _)| graph.decays(*t))
+            .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
+            .sum::<f64>();
+    let mut tensors = desc.to_file(&g.params)?;
+    let mut layers: Vec<usize> = desc.files.iter().map(|f| f.layer + 1).collect();
+    if input_gradient {
+        tensors.push(desc.input_tensor_in(g.input.view(), loaded.order));
+        layers.push(0);
+    }
+    Ok(summarised(
+        loaded.desc.path.clone(),
+        &loaded.weights_source,
+        &loaded.data_source,
+        b.len(),
+        (g.loss, g.loss - l2_term, l2_term),
+        tensors,
+        &layers,
+    ))
+}
+
+/// The input gradient of a dense network, from the same network as a graph (the dense engine
+/// gives parameter gradients only).
+fn dense_input_gradient(loaded: &Loaded, graph: &GraphDescription) -> Tensor {
+    let params: Vec<_> = loaded
+        .weights
+        .layers()
+        .iter()
+        .flat_map(|m| {
+            let (w, b) = Dense::split(m);
+            [w.into_dyn(), b.into_dyn()]
+        })
+        .collect();
+    let b = &loaded.batch;
+    let g = graph.graph.gradient(&params, b.x.view(), b.y.view(), None);
+    graph.input_tensor(g.input.view())
+}
+
 pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
     let inputs = &args.inputs;
     // Check the output before the work, so a refused path costs nothing.
@@ -154,21 +233,35 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         }
         None => None,
     };
-    let loaded = load(inputs, settings.seed)?;
-    let mut computed = compute(&loaded);
+    let (mut computed, network, weights_source) = match load_any(inputs, settings.seed)? {
+        AnyLoaded::Dense(loaded, graph) => {
+            let mut computed = compute(&loaded);
+            if args.input_gradient {
+                let t = dense_input_gradient(&loaded, &graph);
+                computed.report.tensors.push(summarise(&t, 0));
+                computed.tensors.push(t);
+            }
+            let id = network_id(&loaded.desc);
+            (computed, id, loaded.weights_source)
+        }
+        AnyLoaded::Graph(loaded) => {
+            let computed = compute_graph(&loaded, args.input_gradient)?;
+            let id = graph_network_id(&loaded.desc);
+            (computed, id, loaded.weights_source)
+        }
+    };
     if let (Some(path), Some(format)) = (&args.output, out_format) {
         if format == FileFormat::Npy && computed.tensors.len() != 1 {
             bail!(
-                "{}: a .npy file holds one tensor, but layout `{}` has {}; use .npz or .safetensors",
+                "{}: a .npy file holds one tensor, but this gradient has {}; use .npz or .safetensors",
                 path.display(),
-                loaded.desc.layout,
                 computed.tensors.len()
             );
         }
         let dtype = match args.dtype {
             Some(DTypeArg::F32) => DType::F32,
             Some(DTypeArg::F64) => DType::F64,
-            None => crate::inputs::gradient_dtype(&loaded.weights_source),
+            None => crate::inputs::gradient_dtype(&weights_source),
         };
         write_tensor_file(path, format, &computed.tensors, dtype, settings.existing())?;
         computed.report.output = Some(path.clone());
@@ -181,7 +274,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
     }
     let mut doc = document(&computed.report);
     doc.command = "grad".into();
-    doc.network = Some(network_id(&loaded.desc));
+    doc.network = Some(network);
     doc.cases = computed
         .report
         .tensors
@@ -252,9 +345,11 @@ pub fn document(r: &GradReport) -> Document {
             )),
         ]);
     }
+    // The parameters' gradient: the input's (layer 0), when given, is not part of it.
     let total = r
         .tensors
         .iter()
+        .filter(|s| s.layer > 0)
         .map(|s| s.norm * s.norm)
         .sum::<f64>()
         .sqrt();

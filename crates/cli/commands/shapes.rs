@@ -1,30 +1,36 @@
-//! `plumb shapes NET [--weights W]`: the dimension audit.
+//! `plumb shapes NET [--weights W]`: the dimension audit, of a dense description or of any kind.
 
 use std::path::{Path, PathBuf};
 
 use anyhow::Result;
-use plumb_audit::{ShapeAudit, Status, audit_shapes};
-use plumb_formats::{Description, TensorFile, read_tensors};
-use plumb_report::{Block, Case, Cell, Document, Table, Tone, Verdict};
+use plumb_audit::{
+    GraphShapeAudit, ShapeAudit, Status, StrayTensor, TensorShape, audit_graph_shapes, audit_shapes,
+};
+use plumb_formats::{AnyDescription, Description, GraphDescription, TensorFile, read_tensors};
+use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ShapesArgs;
-use crate::output::{SCHEMA_VERSION, Settings, network_id, shape};
+use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, shape};
 
-/// The JSON report of `plumb shapes` (docs/json.md).
+/// The JSON report of `plumb shapes` (docs/json.md): the dense audit, or the graph audit for a
+/// description of other kinds.
 #[derive(Serialize)]
-pub struct ShapesReport<'a> {
+pub struct ShapesReport<'a, A: Serialize = ShapeAudit> {
     pub verdict: Verdict,
     pub schema_version: u32,
     pub command: &'static str,
     pub description: &'a Path,
     pub weights: Option<&'a Path>,
     #[serde(flatten)]
-    pub audit: &'a ShapeAudit,
+    pub audit: &'a A,
 }
 
 pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
-    let desc = Description::read(&args.net)?;
+    let desc = match AnyDescription::read(&args.net)? {
+        AnyDescription::Dense(desc, _) => desc,
+        AnyDescription::Graph(desc) => return run_graph(args, settings, &desc),
+    };
     let file = args.weights.as_deref().map(read_tensors).transpose()?;
     let audit = audit_shapes(&desc, file.as_ref());
     let report = ShapesReport {
@@ -50,34 +56,63 @@ pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
     settings.emit(&report, doc)
 }
 
+/// The graph dimension audit of a description of any kind.
+fn run_graph(args: &ShapesArgs, settings: &Settings, desc: &GraphDescription) -> Result<Verdict> {
+    let file = args.weights.as_deref().map(read_tensors).transpose()?;
+    let audit = audit_graph_shapes(desc, file.as_ref());
+    let report = ShapesReport {
+        verdict: audit.verdict,
+        schema_version: SCHEMA_VERSION,
+        command: "shapes",
+        description: &args.net,
+        weights: args.weights.as_deref(),
+        audit: &audit,
+    };
+    let weights = args.weights.as_ref().zip(file.as_ref());
+    let mut doc = graph_document(desc, &args.net, weights, &audit);
+    doc.command = "shapes".into();
+    doc.network = Some(graph_network_id(desc));
+    if file.is_some() {
+        let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
+        doc.cases = tensor_cases(tensors, &audit.unexpected, &audit.findings);
+    }
+    settings.emit(&report, doc)
+}
+
 /// One case per tensor the layout expects, and per stray tensor.
 pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
+    let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
+    tensor_cases(tensors, &audit.unexpected, &audit.findings)
+}
+
+fn tensor_cases<'a>(
+    tensors: impl Iterator<Item = &'a TensorShape>,
+    unexpected: &[StrayTensor],
+    findings: &[Finding],
+) -> Vec<Case> {
     let failing = |name: &str| {
-        audit
-            .findings
+        findings
             .iter()
             .find(|f| {
                 f.severity == plumb_report::Severity::Error && f.tensor.as_deref() == Some(name)
             })
-            .or_else(|| audit.findings.iter().find(|f| f.code == "other-layout"))
+            .or_else(|| findings.iter().find(|f| f.code == "other-layout"))
     };
     let mut out = Vec::new();
-    for l in &audit.layers {
-        for t in &l.tensors {
-            let mut c = Case::new(format!("shape {}", t.name), t.status == Status::Ok)
-                .about(&t.name)
-                .figure("parameters", t.expected.iter().product::<usize>() as f64);
-            if t.status != Status::Ok {
-                let (code, message) = failing(&t.name).map_or(
-                    ("wrong-shape".to_string(), format!("{:?}", t.status)),
-                    |f| (f.code.clone(), f.message.clone()),
-                );
-                c = c.failing(&code, message);
-            }
-            out.push(c);
+    for t in tensors {
+        let mut c = Case::new(format!("shape {}", t.name), t.status == Status::Ok)
+            .about(&t.name)
+            .figure("parameters", t.expected.iter().product::<usize>() as f64);
+        if t.status != Status::Ok {
+            let (code, message) = failing(&t.name).map_or(
+                ("wrong-shape".to_string(), format!("{:?}", t.status)),
+                |f| (f.code.clone(), f.message.clone()),
+            );
+            c = c.failing(&code, message);
         }
+        out.push(c);
     }
-    for s in &audit.unexpected {
+    for s in unexpected {
         out.push(
             Case::new(format!("shape {}", s.name), false)
                 .about(&s.name)
@@ -85,6 +120,211 @@ pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
         );
     }
     out
+}
+
+/// The facts line naming the weight file, or that none was given.
+fn weights_fact(weights: Option<(&PathBuf, &TensorFile)>) -> (String, String) {
+    match weights {
+        Some((p, f)) => (
+            "weights".to_string(),
+            format!(
+                "{} ({}, {} tensor{})",
+                p.display(),
+                f.format.name(),
+                f.tensors.len(),
+                if f.tensors.len() == 1 { "" } else { "s" }
+            ),
+        ),
+        None => (
+            "weights".to_string(),
+            "none given: expected shapes only".to_string(),
+        ),
+    }
+}
+
+/// The found-shape cell of a tensor and its tone.
+fn found_cell(ts: &TensorShape) -> Cell {
+    let (found, tone) = match ts.status {
+        Status::Unchecked => ("—".to_string(), Tone::Dim),
+        Status::Missing => ("missing".to_string(), Tone::Bad),
+        Status::Ok => (shape(ts.found.as_deref().unwrap_or_default()), Tone::Good),
+        Status::WrongShape | Status::NotFloat => {
+            (shape(ts.found.as_deref().unwrap_or_default()), Tone::Bad)
+        }
+    };
+    Cell::new(found, tone)
+}
+
+fn verdict_cell(verdict: &'static str) -> Cell {
+    let tone = match verdict {
+        "pass" => Tone::Good,
+        "fail" => Tone::Bad,
+        _ => Tone::Dim,
+    };
+    Cell::new(verdict, tone)
+}
+
+/// The findings, verdict line and caution every shapes document ends with.
+fn closing(
+    doc: &mut Document,
+    weights: bool,
+    findings: &[Finding],
+    verdict: Verdict,
+    total: usize,
+) {
+    if weights {
+        doc.push(Block::Findings(findings.to_vec()));
+    }
+    let errors = findings
+        .iter()
+        .filter(|f| f.severity == plumb_report::Severity::Error)
+        .count();
+    let summary = match (weights, errors) {
+        (false, _) => format!("{total} parameters expected; give --weights to audit a file"),
+        (true, 0) => "every tensor has the shape the description implies".to_string(),
+        (true, n) => format!("{n} shape error{}", if n == 1 { "" } else { "s" }),
+    };
+    doc.push(Block::Verdict(verdict, summary));
+    if weights && verdict == Verdict::Pass {
+        doc.push(Block::Caution(
+            "A passing dimension audit says the file fits the description. It says nothing about \
+             whether the model is accurate, robust or safe to deploy."
+                .into(),
+        ));
+    }
+}
+
+/// The human form of the graph audit: per layer its kind and one sample's shapes in and out,
+/// per file tensor its declared storage, expected and found shapes.
+pub fn graph_document(
+    desc: &GraphDescription,
+    net: &Path,
+    weights: Option<(&PathBuf, &TensorFile)>,
+    audit: &GraphShapeAudit,
+) -> Document {
+    let mut doc = Document::new("plumb shapes — dimension audit");
+    let facts = vec![
+        ("description".to_string(), net.display().to_string()),
+        (
+            "network".to_string(),
+            format!(
+                "{} → {} ({} layers)",
+                desc.graph.input(),
+                desc.graph.output(),
+                audit.layers.len()
+            ),
+        ),
+        weights_fact(weights),
+    ];
+    doc.push(Block::Facts(facts));
+    let mut t = Table::new([
+        "layer",
+        "kind",
+        "in → out",
+        "tensor",
+        "storage",
+        "expected",
+        "found",
+        "dtype",
+        "parameters",
+        "verdict",
+    ]);
+    let storage: std::collections::HashMap<&str, &str> = desc
+        .files
+        .iter()
+        .map(|f| (f.name.as_str(), f.storage.letters()))
+        .collect();
+    for layer in &audit.layers {
+        let head = [
+            Cell::from(format!("{} {}", layer.layer, layer.name)),
+            Cell::from(layer.kind),
+            Cell::from(format!("{} → {}", layer.input, layer.output)),
+        ];
+        if layer.tensors.is_empty() {
+            let [a, b, c] = head;
+            t.push([
+                a,
+                b,
+                c,
+                Cell::from("—"),
+                "".into(),
+                "".into(),
+                "".into(),
+                "".into(),
+                Cell::from("0"),
+                verdict_cell(layer.verdict),
+            ]);
+            continue;
+        }
+        for (i, ts) in layer.tensors.iter().enumerate() {
+            let first = i == 0;
+            let [a, b, c] = if first {
+                head.clone()
+            } else {
+                [Cell::from(""), Cell::from(""), Cell::from("")]
+            };
+            let dtype_tone = if ts.status == Status::NotFloat {
+                Tone::Bad
+            } else {
+                Tone::Plain
+            };
+            t.push([
+                a,
+                b,
+                c,
+                Cell::from(ts.name.clone()),
+                Cell::from(storage.get(ts.name.as_str()).copied().unwrap_or("")),
+                Cell::from(shape(&ts.expected)),
+                found_cell(ts),
+                Cell::new(ts.dtype.unwrap_or("—"), dtype_tone),
+                Cell::from(if first {
+                    layer.parameters.to_string()
+                } else {
+                    String::new()
+                }),
+                if first {
+                    verdict_cell(layer.verdict)
+                } else {
+                    Cell::from("")
+                },
+            ]);
+        }
+    }
+    for s in &audit.unexpected {
+        t.push([
+            Cell::from("—"),
+            Cell::from(""),
+            Cell::from(""),
+            Cell::new(s.name.clone(), Tone::Warn),
+            Cell::from(""),
+            Cell::from("—"),
+            Cell::new(shape(&s.shape), Tone::Warn),
+            Cell::from(s.dtype),
+            Cell::from(""),
+            Cell::new("unused", Tone::Warn),
+        ]);
+    }
+    t.footer([
+        Cell::from("total"),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        Cell::from(audit.total_parameters.to_string()),
+        "".into(),
+    ]);
+    doc.push(Block::Table(t));
+    closing(
+        &mut doc,
+        weights.is_some(),
+        &audit.findings,
+        audit.verdict,
+        audit.total_parameters,
+    );
+    doc
 }
 
 /// The human form of the audit.
@@ -215,29 +455,12 @@ pub fn document(
         "".into(),
     ]);
     doc.push(Block::Table(t));
-    if weights.is_some() {
-        doc.push(Block::Findings(audit.findings.clone()));
-    }
-    let errors = audit
-        .findings
-        .iter()
-        .filter(|f| f.severity == plumb_report::Severity::Error)
-        .count();
-    let summary = match (weights.is_some(), errors) {
-        (false, _) => format!(
-            "{} parameters expected; give --weights to audit a file",
-            audit.total_parameters
-        ),
-        (true, 0) => "every tensor has the shape the description implies".to_string(),
-        (true, n) => format!("{n} shape error{}", if n == 1 { "" } else { "s" }),
-    };
-    doc.push(Block::Verdict(audit.verdict, summary));
-    if weights.is_some() && audit.verdict == Verdict::Pass {
-        doc.push(Block::Caution(
-            "A passing dimension audit says the file fits the description. It says nothing about \
-             whether the model is accurate, robust or safe to deploy."
-                .into(),
-        ));
-    }
+    closing(
+        &mut doc,
+        weights.is_some(),
+        &audit.findings,
+        audit.verdict,
+        audit.total_parameters,
+    );
     doc
 }

@@ -7,11 +7,13 @@ use std::collections::HashMap;
 use std::path::Path;
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Ix1, Ix2, IxDyn};
-use plumb_engine::graph::{Dense, Graph, GraphError, Role, Storage};
+use plumb_engine::graph::{Dense, Graph, GraphError, Role, Shape, Storage};
 
 use crate::settings::{KindSettings, LayerSettings};
 use crate::tensor::shape_text;
-use crate::{DType, FileFormat, GraphDescription, Layout, LayoutError, Tensor, TensorFile};
+use crate::{
+    AxisOrder, DType, FileFormat, GraphDescription, Layout, LayoutError, Tensor, TensorFile,
+};
 
 /// How a file tensor lays out what it holds.
 #[derive(Clone, Debug, PartialEq, Eq)]
@@ -289,6 +291,29 @@ impl GraphDescription {
             shape,
             dtype: DType::F64,
             data: input.iter().copied().collect(),
+        }
+    }
+
+    /// [`GraphDescription::input_tensor`] in a data file's axis order: channels-last moves a
+    /// spatial input's channel axis to the end, as `--channels-last` data holds it.
+    pub fn input_tensor_in(&self, input: ArrayView2<f64>, order: AxisOrder) -> Tensor {
+        let t = self.input_tensor(input);
+        let spatial = matches!(
+            self.graph.input(),
+            Shape::Signal { .. } | Shape::Image { .. }
+        );
+        if order == AxisOrder::ChannelsFirst || !spatial {
+            return t;
+        }
+        let array = ArrayD::from_shape_vec(IxDyn(&t.shape), t.data).expect("the shape fits");
+        let n = t.shape.len();
+        let axes: Vec<usize> = std::iter::once(0).chain(2..n).chain([1]).collect();
+        let moved = array.permuted_axes(IxDyn(&axes));
+        Tensor {
+            name: t.name,
+            shape: moved.shape().to_vec(),
+            dtype: t.dtype,
+            data: moved.iter().copied().collect(),
         }
     }
 }

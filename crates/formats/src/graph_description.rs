@@ -12,7 +12,7 @@ use plumb_engine::graph::{
 use crate::file_tensors::{FileTensor, file_tensors};
 use crate::settings::{self, KeySpans, KindSettings, LayerSettings, Parsed};
 use crate::walk::Walk;
-use crate::{DescriptionError, Layout, MAX_PARAMETERS};
+use crate::{Description, DescriptionError, Layout, MAX_PARAMETERS};
 
 /// A parsed description of any kind of network, built into a [`Graph`].
 #[derive(Debug)]
@@ -301,4 +301,42 @@ fn check_distinct(w: &Walk<'_>, p: &Parsed, files: &[FileTensor]) -> Result<(), 
         }
     }
     Ok(())
+}
+
+/// A description read once and sorted by the engine that runs it: every layer dense on a flat
+/// input goes to the dense engine (with the same network as a graph, for what only the graph
+/// computes, such as the input gradient); any other kind to the layer graph.
+#[derive(Debug)]
+pub enum AnyDescription {
+    Dense(Description, Box<GraphDescription>),
+    Graph(GraphDescription),
+}
+
+impl AnyDescription {
+    /// Reads the file once. A dense description is parsed by the dense engine's rules as well,
+    /// so that its checks and messages are exactly those of [`Description::read`].
+    pub fn read(path: &Path) -> Result<AnyDescription, DescriptionError> {
+        let text = read_text(path)?;
+        let parsed = settings::parse(&Walk::new(path, &text))?;
+        let dense = matches!(parsed.input, Shape::Flat(_))
+            && parsed
+                .layers
+                .iter()
+                .all(|l| matches!(l.kind, KindSettings::Dense { .. }));
+        if dense {
+            let d = Description::parse(path, &text)?;
+            let g = GraphDescription::parse(path, &text)?;
+            Ok(AnyDescription::Dense(d, Box::new(g)))
+        } else {
+            Ok(AnyDescription::Graph(GraphDescription::parse(path, &text)?))
+        }
+    }
+
+    /// The network as a layer graph, whatever its kinds.
+    pub fn graph(&self) -> &GraphDescription {
+        match self {
+            AnyDescription::Dense(_, g) => g,
+            AnyDescription::Graph(g) => g,
+        }
+    }
 }

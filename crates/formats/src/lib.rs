@@ -51,7 +51,7 @@ pub use data::{DataError, read_data};
 pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor};
 pub use graph_data::{AxisOrder, read_graph_data};
-pub use graph_description::GraphDescription;
+pub use graph_description::{AnyDescription, GraphDescription};
 pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };

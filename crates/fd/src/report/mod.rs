@@ -3,12 +3,17 @@
 //! only parses, calls, renders and exits.
 
 mod check;
+mod graph_loaded;
 mod locate;
 mod shards;
 
 pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, MAX_DIRECTIONS, RunFacts,
     TensorReport, build, check_report, coord_report, remedies,
+};
+pub use graph_loaded::{
+    GraphInputs, GraphLoadError, GraphLoaded, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES,
+    graph_description_hash, widest_float,
 };
 pub use locate::{Place, Tensors};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard};
