@@ -13,6 +13,10 @@ use plumb_report::{
 };
 use serde::Serialize;
 
+mod graph;
+
+pub use graph::compare_graph_report;
+
 use crate::{
     Binding, Expected, NameError, Named, Problem, TensorJudgement, Tolerances, bind_gradient,
     holds_only_f32, judge, parse_map,
@@ -27,6 +31,9 @@ pub enum CompareError {
     /// The gradient file's names cannot be bound to the parameters (the file is named).
     #[error("{}: {error}", path.display())]
     Names { path: PathBuf, error: NameError },
+    /// The gradient file does not fit the network (the file is named).
+    #[error("{}: {message}", path.display())]
+    Input { path: PathBuf, message: String },
 }
 
 fn shape(s: &[usize]) -> String {
@@ -81,6 +88,10 @@ impl NameReport {
 pub struct Worst {
     /// The coordinate in the augmented matrices (with the tensor and its index there).
     pub place: Option<Place>,
+    /// On the layer graph: the place in the layer's own terms (`Kind::locate`), `index` being
+    /// the canonical one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub at: Option<String>,
     pub index: Vec<usize>,
     pub outside: f64,
     pub reference: f64,
@@ -91,6 +102,9 @@ pub struct Worst {
 #[derive(Clone, Debug, Serialize)]
 pub struct TensorReport {
     pub name: String,
+    /// On the layer graph: the 1-based layer the tensor belongs to.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub layer: Option<usize>,
     pub verdict: Verdict,
     pub expected_shape: Vec<usize>,
     pub found_shape: Option<Vec<usize>>,
@@ -180,6 +194,16 @@ impl ConventionsReport {
         }
     }
 
+    /// The conventions of a layer graph's loss.
+    pub fn of_config(c: &plumb_engine::graph::LossConfig) -> ConventionsReport {
+        ConventionsReport {
+            reduction: c.reduction.name(),
+            l2: c.l2,
+            l2_divisor: c.l2_divisor.name(),
+            l2_on_bias: c.l2_on_bias,
+        }
+    }
+
     /// "mean; L2 (0.1/2m)·Σw² on the weights" and the like.
     pub fn describe(&self) -> String {
         let l2 = if self.l2 == 0.0 {
@@ -243,24 +267,33 @@ pub fn judge_gradient(
     let mut findings = Vec::new();
     let mut reports = Vec::new();
     for j in &judged {
-        let report = tensor_report(&tensors, j, outside);
+        let report = tensor_report(j, outside, &|name, index| {
+            tensors.coord_of(name, index).map(|co| tensors.place(co))
+        });
         if report.verdict == Verdict::Fail {
             findings.push(mismatch_finding(&report, tensors.layer_of(&j.name)));
         }
         reports.push(report);
     }
-    // Tensors under other names with the missing ones' shapes, in order: say which name goes where.
-    let absent: Vec<&TensorJudgement> = judged.iter().filter(|j| j.found_shape.is_none()).collect();
+    findings.extend(name_findings(&expected(desc), outside));
+    (reports, findings)
+}
+
+/// Findings on the names of an outside gradient: tensors under other names with the missing ones'
+/// shapes, in order (say which name goes where), and tensors no expected one is named like.
+fn name_findings(expected: &[Expected], outside: &[Named]) -> Vec<Finding> {
+    let mut findings = Vec::new();
+    let absent: Vec<&Expected> = expected
+        .iter()
+        .filter(|e| !outside.iter().any(|u| u.name == e.name))
+        .collect();
     let strays: Vec<&Named> = outside
         .iter()
-        .filter(|u| !judged.iter().any(|j| j.name == u.name))
+        .filter(|u| !expected.iter().any(|e| e.name == u.name))
         .collect();
     if !absent.is_empty()
         && absent.len() == strays.len()
-        && absent
-            .iter()
-            .zip(&strays)
-            .all(|(a, u)| a.expected_shape == u.shape)
+        && absent.iter().zip(&strays).all(|(a, u)| a.shape == u.shape)
     {
         let pairs: Vec<String> = absent
             .iter()
@@ -277,32 +310,34 @@ pub fn judge_gradient(
             ),
         ));
     }
-    for u in outside {
-        if !judged.iter().any(|j| j.name == u.name) {
-            findings.push(
-                Finding::new(
-                    "gradient-tensor-unexpected",
-                    Severity::Warning,
-                    format!(
-                        "{} is in the gradient, but no tensor of the layout has that name",
-                        shape(&u.shape)
-                    ),
-                )
-                .tensor(&u.name),
-            );
-        }
+    for u in strays {
+        findings.push(
+            Finding::new(
+                "gradient-tensor-unexpected",
+                Severity::Warning,
+                format!(
+                    "{} is in the gradient, but no tensor of the layout has that name",
+                    shape(&u.shape)
+                ),
+            )
+            .tensor(&u.name),
+        );
     }
-    (reports, findings)
+    findings
 }
 
-fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> TensorReport {
+/// One tensor's report; `place` locates an index of a tensor in the augmented matrices.
+fn tensor_report(
+    j: &TensorJudgement,
+    outside: &[Named],
+    place: &dyn Fn(&str, &[usize]) -> Option<Place>,
+) -> TensorReport {
     let worst = j.comparison.as_ref().map(|c| {
         let u = outside.iter().find(|t| t.name == j.name).expect("compared");
         let index = u.index_of(c.worst);
         Worst {
-            place: tensors
-                .coord_of(&j.name, &index)
-                .map(|co| tensors.place(co)),
+            place: place(&j.name, &index),
+            at: None,
             index,
             outside: c.worst_outside,
             reference: c.worst_reference,
@@ -311,6 +346,7 @@ fn tensor_report(tensors: &Tensors, j: &TensorJudgement, outside: &[Named]) -> T
     });
     TensorReport {
         name: j.name.clone(),
+        layer: None,
         verdict: if j.matches {
             Verdict::Pass
         } else {
@@ -400,28 +436,49 @@ pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, O
     let trace = net.forward(&loaded.weights, b.x.view());
     let data = net.data_loss(&trace, b.y.view());
     let l2 = net.l2_penalty(&loaded.weights, b.len());
+    let c = net.conventions();
+    loss_verdict(
+        outside,
+        (data, l2),
+        b.len(),
+        c.reduction,
+        c.l2_divisor,
+        single,
+    )
+}
+
+/// The outside loss against the reference's data term and L2 term (`terms`) on a batch of `m`,
+/// with the likely reason when they differ: the L2 term left out, a mean for a sum or the
+/// reverse, another L2 divisor.
+fn loss_verdict(
+    outside: f64,
+    (data, l2): (f64, f64),
+    samples: usize,
+    reduction: Reduction,
+    divisor: plumb_engine::L2Divisor,
+    single: bool,
+) -> (LossReport, Option<Finding>) {
     let reference = data + l2;
     let tol = if single { 1e-4 } else { 1e-8 };
     let rel = |v: f64, r: f64| (v - r).abs() / r.abs().max(f64::MIN_POSITIVE);
     let err = rel(outside, reference);
     let matches = err <= tol;
-    let m = b.len() as f64;
-    let c = net.conventions();
+    let m = samples as f64;
     // The L2 term under each divisor, from the declared one.
-    let declared = c.l2_divisor.value(b.len());
+    let declared = divisor.value(samples);
     let other_divisor = plumb_engine::L2Divisor::ALL
         .into_iter()
-        .filter(|d| *d != c.l2_divisor)
-        .find(|d| l2 > 0.0 && rel(outside, data + l2 * declared / d.value(b.len())) <= tol);
+        .filter(|d| *d != divisor)
+        .find(|d| l2 > 0.0 && rel(outside, data + l2 * declared / d.value(samples)) <= tol);
     let explanation = if matches {
         None
     } else if l2 > 0.0 && rel(outside, data) <= tol {
         Some("the L2 term is left out of the loss".to_string())
-    } else if c.reduction == Reduction::Mean
+    } else if reduction == Reduction::Mean
         && (rel(outside, m * data + l2) <= tol || rel(outside, m * data + m * l2) <= tol)
     {
         Some("the loss is summed over the batch, not averaged as reduction = \"mean\" says".into())
-    } else if c.reduction == Reduction::Sum
+    } else if reduction == Reduction::Sum
         && (rel(outside, data / m + l2) <= tol || rel(outside, (data + l2) / m) <= tol)
     {
         Some("the loss is averaged over the batch, not summed as reduction = \"sum\" says".into())
@@ -429,7 +486,7 @@ pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, O
         other_divisor.map(|d| {
             format!(
                 "the L2 term is (λ/{d})·Σw², not (λ/{})·Σw² as l2-divisor = \"{}\" says",
-                c.l2_divisor, c.l2_divisor
+                divisor, divisor
             )
         })
     };
@@ -460,18 +517,9 @@ pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, O
     )
 }
 
-/// Compares the outside gradient `file` (read from `gradient`, bound to the layout) and, when
-/// given, the outside loss with the reference, and builds the report: names matched (`map` is
-/// `--map`'s text), each tensor held to the precision it was stored or computed in.
-pub fn compare_report(
-    loaded: &Loaded,
-    gradient: &Path,
-    file: TensorFile,
-    map: &str,
-    loss: Option<f64>,
-    seed: u64,
-) -> Result<CompareReport, CompareError> {
-    // A float64 file whose values are all float32 values was computed in float32: judge it so.
+/// The element type each tensor of a gradient file was computed in, in file order, and whether a
+/// float64 file was found to hold only float32 values (then computed in float32, judged so).
+fn stored_dtypes(file: &TensorFile) -> (bool, Vec<DType>) {
     let f64_values = || {
         file.tensors
             .iter()
@@ -485,19 +533,65 @@ pub fn compare_report(
             .iter()
             .filter(|t| t.dtype == DType::F64)
             .all(|t| holds_only_f32(&t.data));
-    let stored = |d: DType| {
-        if widened && d == DType::F64 {
-            DType::F32
-        } else {
-            d
-        }
-    };
-    let single = !file.tensors.iter().any(|t| stored(t.dtype) == DType::F64);
+    let dtypes = file
+        .tensors
+        .iter()
+        .map(|t| {
+            if widened && t.dtype == DType::F64 {
+                DType::F32
+            } else {
+                t.dtype
+            }
+        })
+        .collect();
+    (widened, dtypes)
+}
+
+/// The resolution a tensor stored in `d` was computed at.
+fn epsilon(d: DType) -> f64 {
+    match d {
+        DType::F64 => f64::EPSILON,
+        DType::F32 => f32::EPSILON as f64,
+        DType::F16 => 9.765625e-4,
+        _ => 7.8125e-3,
+    }
+}
+
+/// The finding that a float64 gradient was computed in float32.
+fn widened_finding() -> Finding {
+    Finding::new(
+        "gradient-precision",
+        Severity::Note,
+        "the gradient is stored as float64, but every value is exactly a float32 value: it was computed in float32, and is judged at float32's resolution",
+    )
+}
+
+/// The finding that the complex step does not certify the reference.
+fn uncertified_finding() -> Finding {
+    Finding::new(
+        "reference-uncertified",
+        Severity::Warning,
+        "the complex step disagrees with the reference gradient somewhere on this network; run `plumb check --method complex-step` before trusting the diagnosis",
+    )
+}
+
+/// Compares the outside gradient `file` (read from `gradient`, bound to the layout) and, when
+/// given, the outside loss with the reference, and builds the report: names matched (`map` is
+/// `--map`'s text), each tensor held to the precision it was stored or computed in.
+pub fn compare_report(
+    loaded: &Loaded,
+    gradient: &Path,
+    file: TensorFile,
+    map: &str,
+    loss: Option<f64>,
+    seed: u64,
+) -> Result<CompareReport, CompareError> {
+    let (widened, dtypes) = stored_dtypes(&file);
+    let single = !dtypes.contains(&DType::F64);
     let map = parse_map(map).map_err(|error| CompareError::Names {
         path: gradient.to_path_buf(),
         error,
     })?;
-    let dtypes: Vec<DType> = file.tensors.iter().map(|t| stored(t.dtype)).collect();
     let outside: Vec<Named> = file
         .tensors
         .into_iter()
@@ -514,15 +608,7 @@ pub fn compare_report(
     let eps_of: std::collections::HashMap<String, f64> = outside
         .iter()
         .zip(&dtypes)
-        .map(|(t, d)| {
-            let eps = match d {
-                DType::F64 => f64::EPSILON,
-                DType::F32 => f32::EPSILON as f64,
-                DType::F16 => 9.765625e-4,
-                _ => 7.8125e-3,
-            };
-            (t.name.clone(), eps)
-        })
+        .map(|(t, d)| (t.name.clone(), epsilon(*d)))
         .collect();
     let tol_of =
         |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
@@ -530,18 +616,10 @@ pub fn compare_report(
     let reference = certify(loaded, seed)?;
     let (tensors, mut findings) = judge_gradient(loaded, &outside, &tol_of);
     if widened {
-        findings.push(Finding::new(
-            "gradient-precision",
-            Severity::Note,
-            "the gradient is stored as float64, but every value is exactly a float32 value: it was computed in float32, and is judged at float32's resolution",
-        ));
+        findings.push(widened_finding());
     }
     if !reference.certified {
-        findings.push(Finding::new(
-            "reference-uncertified",
-            Severity::Warning,
-            "the complex step disagrees with the reference gradient somewhere on this network; run `plumb check --method complex-step` before trusting the diagnosis",
-        ));
+        findings.push(uncertified_finding());
     }
     let loss = loss.map(|v| {
         let (r, f) = judge_loss(loaded, v, single);

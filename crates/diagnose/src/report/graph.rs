@@ -1,0 +1,286 @@
+//! The report of `plumb compare` on a description of any kind (the layer graph): the gradient
+//! file read through the description's file tensors (each converted from its declared storage to
+//! the graph's canonical shape, as its parameter is), judged by [`crate::judge_graph`], reported in
+//! the dense report's shape with the worst place in the layer's own terms.
+
+use std::collections::HashMap;
+use std::path::Path;
+
+use ndarray::{Array2, ArrayD, Ix2, IxDyn};
+use plumb_engine::graph::{Dense, GraphError, Role, Shape};
+use plumb_fd::report::GraphLoaded;
+use plumb_fd::{CheckConfig, Method, Precision, Status, check_graph};
+use plumb_formats::{AxisOrder, FileStorage, GraphDescription, TensorFile};
+use plumb_report::{SCHEMA_VERSION, Verdict};
+
+use super::{
+    Certification, CompareError, CompareReport, ConventionsReport, NameReport, epsilon,
+    loss_verdict, mismatch_finding, name_findings, stored_dtypes, tensor_report,
+    uncertified_finding, widened_finding,
+};
+use crate::{Expected, INPUT, Named, Tolerances, bind_gradient, judge_graph, parse_map};
+
+/// The file tensors a gradient of `desc` holds, under their file names and file shapes, and the
+/// input gradient `input` of shape `input_shape`.
+fn expected_files(desc: &GraphDescription, input_shape: &[usize]) -> Vec<Expected> {
+    let mut out: Vec<Expected> = desc
+        .files
+        .iter()
+        .map(|f| Expected {
+            name: f.name.clone(),
+            layer: f.layer,
+            shape: f.shape.clone(),
+            bias: f.role == Role::Bias,
+        })
+        .collect();
+    out.push(Expected {
+        name: INPUT.into(),
+        layer: 0,
+        shape: input_shape.to_vec(),
+        bias: false,
+    });
+    out
+}
+
+/// The outside gradient per graph tensor, canonical shapes: a file tensor of the declared shape is
+/// converted from its storage; one of another shape is passed as found, to be judged only against
+/// hypotheses of that shape; an absent one is `None`.
+fn canonical(desc: &GraphDescription, outside: &[Named]) -> Vec<Option<ArrayD<f64>>> {
+    let mut out: Vec<Option<ArrayD<f64>>> = vec![None; desc.graph.tensors().len()];
+    for f in &desc.files {
+        let Some(u) = outside.iter().find(|u| u.name == f.name) else {
+            continue;
+        };
+        if !f.fits(&u.shape) {
+            let found = ArrayD::from_shape_vec(IxDyn(&u.shape), u.data.clone());
+            out[f.tensors[0]] = found.ok();
+            continue;
+        }
+        let array = ArrayD::from_shape_vec(IxDyn(&f.shape), u.data.clone())
+            .expect("a fitting shape holds the file shape's values");
+        match &f.storage {
+            FileStorage::Axes(s) => out[f.tensors[0]] = Some(s.to_canonical(&array)),
+            FileStorage::Augmented => {
+                let matrix = array.into_dimensionality::<Ix2>().expect("two axes");
+                let (w, b) = Dense::split(&matrix);
+                out[f.tensors[0]] = Some(w.into_dyn());
+                out[f.tensors[1]] = Some(b.into_dyn());
+            }
+        }
+    }
+    out
+}
+
+/// The reference certified by the complex step on the default sample of the graph's parameters.
+fn certify_graph(loaded: &GraphLoaded, seed: u64) -> Result<Certification, CompareError> {
+    let mut cfg = CheckConfig::new(Method::ComplexStep, Precision::F64);
+    cfg.directions = Some(0);
+    cfg.seed = seed;
+    let b = &loaded.batch;
+    let r = check_graph(
+        &loaded.desc.graph,
+        &loaded.params,
+        b.x.view(),
+        b.y.view(),
+        &cfg,
+        &|_, _| {},
+    )?;
+    Ok(Certification {
+        method: "complex-step",
+        checked: r.coverage.checked,
+        parameters: r.coverage.parameters,
+        max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),
+        certified: r.coords.iter().all(|c| c.status != Status::Mismatch),
+    })
+}
+
+/// Compares the outside gradient `file` (read from `gradient`) of a network of any kind with the
+/// reference on the layer graph, and builds the report: names matched against the description's
+/// file tensors (and `input`, the input gradient, shape (m, *input) in the data's axis order),
+/// each tensor held to the precision it was stored or computed in. Tensors are reported under the
+/// graph's names (`layer.suffix`) in canonical shape, the input gradient last.
+pub fn compare_graph_report(
+    loaded: &GraphLoaded,
+    gradient: &Path,
+    file: TensorFile,
+    map: &str,
+    loss: Option<f64>,
+    seed: u64,
+) -> Result<CompareReport, CompareError> {
+    let desc = &loaded.desc;
+    let graph = &desc.graph;
+    let b = &loaded.batch;
+    let names_error = |error| CompareError::Names {
+        path: gradient.to_path_buf(),
+        error,
+    };
+    let (widened, dtypes) = stored_dtypes(&file);
+    let single = !dtypes.contains(&plumb_formats::DType::F64);
+    let map = parse_map(map).map_err(names_error)?;
+    let zeros = Array2::<f64>::zeros((b.len(), graph.input().size()));
+    let input_shape = desc.input_tensor_in(zeros.view(), loaded.order).shape;
+    let expected = expected_files(desc, &input_shape);
+    let outside: Vec<Named> = file
+        .tensors
+        .into_iter()
+        .map(|t| Named::new(t.name, t.shape, t.data))
+        .collect();
+    let (outside, bindings) = bind_gradient(&expected, outside, &map).map_err(names_error)?;
+    // Each graph tensor is held to the precision its file tensor was stored (or computed) in.
+    let eps_file: HashMap<&str, f64> = outside
+        .iter()
+        .zip(&dtypes)
+        .map(|(t, d)| (t.name.as_str(), epsilon(*d)))
+        .collect();
+    let specs = graph.tensors();
+    let mut eps_of: HashMap<String, f64> = HashMap::new();
+    for f in &desc.files {
+        if let Some(&e) = eps_file.get(f.name.as_str()) {
+            eps_of.extend(f.tensors.iter().map(|&t| (specs[t].name.clone(), e)));
+        }
+    }
+    if let Some(&e) = eps_file.get(INPUT) {
+        eps_of.insert(INPUT.into(), e);
+    }
+    let tol_of =
+        |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
+    let input = match outside.iter().find(|u| u.name == INPUT) {
+        None => None,
+        Some(u) if u.shape != input_shape => {
+            return Err(CompareError::Input {
+                path: gradient.to_path_buf(),
+                message: format!(
+                    "tensor `{INPUT}` (the input gradient) has shape {}, but the batch's input gradient is {} (samples, then the input's axes in the data's order); write it so, or leave it out",
+                    super::shape(&u.shape),
+                    super::shape(&input_shape)
+                ),
+            });
+        }
+        Some(u) => Some(input_matrix(desc, u, loaded.order)),
+    };
+    let params = canonical(desc, &outside);
+    let judged = judge_graph(
+        graph,
+        &loaded.params,
+        b.x.view(),
+        b.y.view(),
+        &params,
+        input.as_ref().map(|a| a.view()),
+        &tol_of,
+    )
+    .map_err(|e: GraphError| CompareError::Input {
+        path: gradient.to_path_buf(),
+        message: e.to_string(),
+    })?;
+    // The canonical tensors, for the worst entry's index.
+    let mut given: Vec<Named> = specs
+        .iter()
+        .zip(&params)
+        .filter_map(|(t, p)| {
+            p.as_ref().map(|p| {
+                Named::new(
+                    t.name.clone(),
+                    p.shape().to_vec(),
+                    p.iter().copied().collect(),
+                )
+            })
+        })
+        .collect();
+    if let Some(dx) = &input {
+        given.push(Named::new(
+            INPUT,
+            vec![dx.nrows(), dx.ncols()],
+            dx.iter().copied().collect(),
+        ));
+    }
+    let mut findings = Vec::new();
+    let mut tensors = Vec::new();
+    for (t, j) in judged.iter().enumerate() {
+        let mut report = tensor_report(j, &given, &|_, _| None);
+        let layer = specs.get(t).map_or(0, |s| s.layer + 1);
+        report.layer = (layer > 0).then_some(layer);
+        if let Some(w) = report.worst.as_mut() {
+            w.at = j.place.clone();
+        }
+        if report.verdict == Verdict::Fail {
+            findings.push(mismatch_finding(&report, report.layer));
+        }
+        tensors.push(report);
+    }
+    // Names: against the file tensors, the input gradient optional.
+    let files: Vec<Expected> = expected
+        .into_iter()
+        .filter(|e| e.name != INPUT || input.is_some())
+        .collect();
+    findings.extend(name_findings(&files, &outside));
+    if widened {
+        findings.push(widened_finding());
+    }
+    let reference = certify_graph(loaded, seed)?;
+    if !reference.certified {
+        findings.push(uncertified_finding());
+    }
+    let config = graph.loss_config();
+    let loss = loss.map(|v| {
+        let total = graph.loss(&loaded.params, b.x.view(), b.y.view());
+        let l2 = config.l2_factor(b.len())
+            * loaded
+                .params
+                .iter()
+                .enumerate()
+                .filter(|(t, _)| graph.decays(*t))
+                .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
+                .sum::<f64>();
+        let (r, f) = loss_verdict(
+            v,
+            (total - l2, l2),
+            b.len(),
+            config.reduction,
+            config.l2_divisor,
+            single,
+        );
+        findings.extend(f);
+        r
+    });
+    let tol = Tolerances::for_precision(single);
+    Ok(CompareReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "compare",
+        description: desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        gradient: gradient.to_path_buf(),
+        precision: if single { "f32" } else { "f64" },
+        precision_from: if widened { "values" } else { "dtype" },
+        conventions: ConventionsReport::of_config(&config),
+        names: bindings.iter().map(NameReport::of).collect(),
+        tolerance: tol.agreement,
+        residual_tolerance: tol.residual,
+        reference,
+        loss,
+        tensors,
+        findings,
+    })
+}
+
+/// The input gradient as the graph holds it (m × input size): a channels-last file's channel
+/// axis moved back to follow the samples (the inverse of `GraphDescription::input_tensor_in`).
+fn input_matrix(desc: &GraphDescription, u: &Named, order: AxisOrder) -> Array2<f64> {
+    let array = ArrayD::from_shape_vec(IxDyn(&u.shape), u.data.clone()).expect("shape checked");
+    let spatial = matches!(
+        desc.graph.input(),
+        Shape::Signal { .. } | Shape::Image { .. }
+    );
+    let n = u.shape.len();
+    let array = if order == AxisOrder::ChannelsLast && spatial {
+        // (m, *spatial, c) → (m, c, *spatial).
+        let axes: Vec<usize> = std::iter::once(0).chain([n - 1]).chain(1..n - 1).collect();
+        array.permuted_axes(IxDyn(&axes))
+    } else {
+        array
+    };
+    let m = u.shape[0];
+    let values: Vec<f64> = array.iter().copied().collect();
+    Array2::from_shape_vec((m, values.len() / m.max(1)), values).expect("m rows")
+}
