@@ -189,7 +189,9 @@ pub struct SweepArgs {
     #[arg(long, value_enum, default_value_t = PrecisionArg::F64)]
     pub precision: PrecisionArg,
     /// Coordinates as LAYER:ROW:COL in the augmented matrix (layer from 1, row and column from 0,
-    /// column 0 the bias), comma-separated [default: the worst of a quick central check and 3 random ones].
+    /// column 0 the bias) for a dense description, TENSOR:INDEX (a tensor's name and a flat index
+    /// in its canonical shape) for other kinds, comma-separated [default: the worst of a quick
+    /// central check and 3 random ones].
     #[arg(long, value_name = "LIST")]
     pub coords: Option<String>,
     /// Steps FROM:TO:N, log-spaced.

@@ -2,7 +2,8 @@
 
 use anyhow::{Result, bail};
 use plumb_fd::report::{
-    CheckReport, Code, CoordReport, CoverageReport, MAX_DIRECTIONS, Tensors, check_report,
+    CheckReport, Code, CoordReport, CoverageReport, GraphCoordReport, GraphLoaded, MAX_DIRECTIONS,
+    Tensors, check_report, graph_check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, SETTLE, Sample, Status, UNSETTLED_SHARE};
 use plumb_report::{
@@ -11,8 +12,8 @@ use plumb_report::{
 };
 
 use crate::args::{CheckArgs, MethodArg, PrecisionArg};
-use crate::inputs::{Loaded, load};
-use crate::output::{Settings, network_id, num};
+use crate::inputs::{AnyLoaded, Loaded, load_any};
+use crate::output::{Settings, graph_network_id, network_id, num};
 use crate::progress::Progress;
 
 pub fn method(m: MethodArg) -> Method {
@@ -81,11 +82,14 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
     config.seed = settings.seed;
     config.tolerance = args.tolerance;
     config.shard = args.shard.as_deref().map(parse_shard).transpose()?;
-    let loaded = load(&args.inputs, settings.seed)?;
+    let loaded = match load_any(&args.inputs, settings.seed)? {
+        AnyLoaded::Dense(loaded, _) => loaded,
+        AnyLoaded::Graph(loaded) => return run_graph(args, &loaded, &config, settings),
+    };
     let progress = Progress::new(settings, "checking");
     let report = compute(&loaded, &config, args.worst, &|d, t| progress.update(d, t))?;
     progress.finish();
-    let mut doc = document(&report);
+    let mut doc = document(&report, Block::Table(worst_table(&report.worst)));
     doc.command = "check".into();
     doc.network = Some(network_id(&loaded.desc));
     doc.cases = cases(&report);
@@ -95,8 +99,78 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
     settings.emit(&report, doc)
 }
 
+/// `plumb check` on a description of another kind than dense: the layer graph's check, its
+/// report in the dense report's shape. A shard's coordinates are the dense report's, which
+/// `plumb merge` joins by layer, row and column, so a graph check is not sharded.
+fn run_graph(
+    args: &CheckArgs,
+    loaded: &GraphLoaded,
+    config: &CheckConfig,
+    settings: &Settings,
+) -> Result<Verdict> {
+    if args.shard.is_some() {
+        bail!(
+            "{}: --shard is for dense descriptions only: `plumb merge` joins shards by the dense layout's layer, row and column, which this description's layers do not have; check it in one run (narrow it with --sample or --directions)",
+            loaded.desc.path.display()
+        );
+    }
+    let progress = Progress::new(settings, "checking");
+    let report = graph_check_report(loaded, config, args.worst, &|d, t| progress.update(d, t))?;
+    progress.finish();
+    let mut doc = document(&report, Block::Table(graph_worst_table(&report.worst)));
+    doc.command = "check".into();
+    doc.network = Some(graph_network_id(&loaded.desc));
+    doc.cases = cases(&report);
+    if settings.html.is_some() {
+        let strip = strip_plot(
+            "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
+            &report.rel_errors,
+            report.tolerance,
+            &report.precision,
+        );
+        insert_before_findings(&mut doc, strip.into_iter().collect());
+    }
+    settings.emit(&report, doc)
+}
+
+/// The worst coordinates of a graph check: tensor, flat index and the layer's words for it.
+pub fn graph_worst_table(worst: &[GraphCoordReport]) -> Table {
+    let mut t = Table::new([
+        "where",
+        "layer",
+        "in the layer's terms",
+        "analytic",
+        "numeric",
+        "rel error",
+        "rel bound",
+        "status",
+    ]);
+    for w in worst {
+        let tone = status_tone(w.status);
+        t.push([
+            Cell::from(w.place.label()),
+            Cell::from(w.place.layer.to_string()),
+            Cell::from(w.place.location.clone()),
+            Cell::from(format!("{:.9e}", w.analytic)),
+            Cell::from(format!("{:.9e}", w.numeric)),
+            Cell::new(num(w.rel_error), tone),
+            Cell::from(num(w.rel_bound)),
+            Cell::new(w.status.name(), tone),
+        ]);
+    }
+    t
+}
+
+fn status_tone(s: Status) -> Tone {
+    match s {
+        Status::Mismatch => Tone::Bad,
+        Status::Unreliable | Status::Unsettled => Tone::Warn,
+        Status::Match => Tone::Plain,
+    }
+}
+
 /// One case per tensor (shared with the demo).
-pub fn cases(r: &CheckReport) -> Vec<Case> {
+pub fn cases<C>(r: &CheckReport<C>) -> Vec<Case> {
     r.tensors
         .iter()
         .map(|t| {
@@ -274,7 +348,8 @@ pub fn coverage_text(c: &CoverageReport) -> String {
     )
 }
 
-pub fn document(r: &CheckReport) -> Document {
+/// The check's document; `worst` is the table of its worst coordinates.
+pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
     let mut doc = Document::new("plumb check — finite differences against the reference gradient");
     doc.push(Block::Facts(vec![
         ("description".into(), r.description.display().to_string()),
@@ -346,7 +421,7 @@ pub fn document(r: &CheckReport) -> Document {
     doc.push(Block::Table(t));
     if !r.worst.is_empty() {
         doc.push(Block::Heading("worst coordinates".into()));
-        doc.push(Block::Table(worst_table(&r.worst)));
+        doc.push(worst);
     }
     doc.push(Block::Findings(r.findings.clone()));
     let errors = r
@@ -401,11 +476,7 @@ pub fn worst_table(worst: &[CoordReport]) -> Table {
         "status",
     ]);
     for w in worst {
-        let tone = match w.status {
-            Status::Mismatch => Tone::Bad,
-            Status::Unreliable | Status::Unsettled => Tone::Warn,
-            Status::Match => Tone::Plain,
-        };
+        let tone = status_tone(w.status);
         t.push([
             Cell::from(w.place.label()),
             Cell::from(w.place.layer.to_string()),

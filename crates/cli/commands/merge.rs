@@ -6,10 +6,10 @@ use std::path::Path;
 use anyhow::{Context, Result};
 use plumb_fd::report::Shards;
 use plumb_formats::{Description, MAX_REPORT_BYTES, read_input};
-use plumb_report::Verdict;
+use plumb_report::{Block, Verdict};
 
 use crate::args::MergeArgs;
-use crate::commands::check::{cases, document, insert_before_findings, strip_plot};
+use crate::commands::check::{cases, document, insert_before_findings, strip_plot, worst_table};
 use crate::output::{Settings, network_id};
 
 pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
@@ -25,7 +25,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
     let shards = Shards::parse(&files)?;
     let desc = Description::read(Path::new(shards.description()))?;
     let report = shards.merge(&desc, args.worst)?;
-    let mut doc = document(&report);
+    let mut doc = document(&report, Block::Table(worst_table(&report.worst)));
     if settings.html.is_some() {
         // The strip of every coordinate; the V-curve needs the weights and data, which a merge
         // does not load (run `plumb sweep` on the worst coordinates for it).

@@ -13,9 +13,11 @@ use serde::Serialize;
 
 use crate::args::SweepArgs;
 use crate::commands::check::precision;
-use crate::inputs::{DataSource, WeightsSource, check_output, load};
-use crate::output::{SCHEMA_VERSION, Settings, network_id, num};
-use plumb_fd::report::{Place, Tensors};
+use crate::inputs::{AnyLoaded, DataSource, WeightsSource, check_output, load_any};
+use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, num};
+use plumb_fd::report::{GraphLoaded, GraphPlace, Place, Tensors};
+use plumb_fd::{Curve, Precision, check_graph, sweep_graph};
+use plumb_report::NetworkId;
 
 /// The most steps a sweep takes (each costs a few loss evaluations per method and coordinate).
 const MAX_STEPS: usize = 200;
@@ -31,10 +33,11 @@ pub struct MethodCurve {
     pub best_error: f64,
 }
 
+/// A swept coordinate; `P` is how it is located (a dense [`Place`], or a graph's [`GraphPlace`]).
 #[derive(Clone, Debug, Serialize)]
-pub struct CoordSweep {
+pub struct CoordSweep<P = Place> {
     #[serde(flatten)]
-    pub place: Place,
+    pub place: P,
     pub analytic: f64,
     /// Why this coordinate was swept: "asked", "worst" or "random".
     pub chosen: &'static str,
@@ -43,7 +46,7 @@ pub struct CoordSweep {
 
 /// The JSON report of `plumb sweep` (docs/json.md).
 #[derive(Serialize)]
-pub struct SweepReport {
+pub struct SweepReport<P = Place> {
     pub verdict: Verdict,
     pub schema_version: u32,
     pub command: &'static str,
@@ -53,7 +56,7 @@ pub struct SweepReport {
     pub precision: &'static str,
     pub tolerance: f64,
     pub steps: Vec<f64>,
-    pub coordinates: Vec<CoordSweep>,
+    pub coordinates: Vec<CoordSweep<P>>,
     pub plot: Option<PathBuf>,
     pub findings: Vec<Finding>,
 }
@@ -138,7 +141,12 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         ins.extend(args.inputs.data.as_deref());
         check_output(p, settings.force, &ins)?;
     }
-    let loaded = load(&args.inputs, settings.seed)?;
+    let loaded = match load_any(&args.inputs, settings.seed)? {
+        AnyLoaded::Dense(loaded, _) => loaded,
+        AnyLoaded::Graph(loaded) => {
+            return run_graph(args, &loaded, &methods, hs, settings);
+        }
+    };
     let net = &loaded.desc.network;
     let prec = precision(args.precision);
     let asked = args
@@ -185,13 +193,226 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         precision: prec,
     };
     let curves = sweep(net, &loaded.weights, &loaded.batch, &quick.analytic, &plan);
-
     let tensors = Tensors::new(&loaded.desc);
+    let run = Swept {
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        network: network_id(&loaded.desc),
+        precision: prec,
+    };
+    let why: Vec<&'static str> = chosen.iter().map(|(_, w)| *w).collect();
+    finish(args, settings, &run, &methods, hs, &curves, &why, |c| {
+        tensors.place(*c)
+    })
+}
+
+/// `plumb sweep` on a description of another kind than dense: coordinates are TENSOR:INDEX, the
+/// graph tensor (or the file tensor holding it alone) and the flat index in its canonical shape.
+fn run_graph(
+    args: &SweepArgs,
+    loaded: &GraphLoaded,
+    methods: &[Method],
+    hs: Vec<f64>,
+    settings: &Settings,
+) -> Result<Verdict> {
+    let graph = &loaded.desc.graph;
+    let prec = precision(args.precision);
+    let asked = args
+        .coords
+        .as_deref()
+        .map(|t| parse_graph_coords(t, loaded))
+        .transpose()?;
+    let b = &loaded.batch;
+    // As for a dense network: the gradient in the precision swept, and by default the worst
+    // coordinate of a quick central check and a few at random.
+    let mut config = CheckConfig::new(Method::Central, prec);
+    config.sample = Some(Sample::Total(graph.parameters().min(2000)));
+    config.directions = Some(0);
+    config.seed = settings.seed;
+    let quick = check_graph(
+        graph,
+        &loaded.params,
+        b.x.view(),
+        b.y.view(),
+        &config,
+        &|_, _| {},
+    )?;
+    let chosen: Vec<((usize, usize), &'static str)> = match asked {
+        Some(c) => c.into_iter().map(|c| (c, "asked")).collect(),
+        None => {
+            let worst = quick
+                .coords
+                .iter()
+                .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
+                .map(|c| (c.tensor, c.index))
+                .expect("a network has parameters");
+            let mut out = vec![(worst, "worst")];
+            let mut rng = Rng::new(settings.seed ^ 0x5ee9);
+            let sizes: Vec<usize> = quick.analytic.iter().map(|a| a.len()).collect();
+            let all: usize = sizes.iter().sum();
+            let mut tries = 0;
+            while out.len() < (RANDOM_COORDS + 1).min(all) && tries < 100 {
+                tries += 1;
+                let mut k = rng.below(all);
+                let mut t = 0;
+                while k >= sizes[t] {
+                    k -= sizes[t];
+                    t += 1;
+                }
+                if !out.iter().any(|(o, _)| *o == (t, k)) {
+                    out.push(((t, k), "random"));
+                }
+            }
+            out
+        }
+    };
+    let plan = SweepPlan {
+        coords: chosen.iter().map(|(c, _)| *c).collect(),
+        methods: methods.to_vec(),
+        steps: hs.clone(),
+        precision: prec,
+    };
+    let curves = sweep_graph(
+        graph,
+        &loaded.params,
+        b.x.view(),
+        b.y.view(),
+        &quick.analytic,
+        &plan,
+    )?;
+    let run = Swept {
+        description: loaded.desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        network: graph_network_id(&loaded.desc),
+        precision: prec,
+    };
+    let why: Vec<&'static str> = chosen.iter().map(|(_, w)| *w).collect();
+    finish(
+        args,
+        settings,
+        &run,
+        methods,
+        hs,
+        &curves,
+        &why,
+        |&(t, k)| GraphPlace::new(graph, t, k),
+    )
+}
+
+/// Parses TENSOR:INDEX,… against the graph: a graph tensor's name (`layer.suffix`) or a file
+/// tensor holding one graph tensor, and a flat index in the canonical tensor.
+fn parse_graph_coords(text: &str, loaded: &GraphLoaded) -> Result<Vec<(usize, usize)>> {
+    let desc = &loaded.desc;
+    let tensors = desc.graph.tensors();
+    let names: Vec<&str> = tensors.iter().map(|t| t.name.as_str()).collect();
+    text.split(',')
+        .map(|item| {
+            let item = item.trim();
+            let Some((name, index)) = item.rsplit_once(':') else {
+                bail!("--coords: `{item}` is not TENSOR:INDEX (e.g. {}:0 — a tensor of the description and a flat index from 0 in its canonical shape)", names[0]);
+            };
+            let t = names.iter().position(|n| *n == name).or_else(|| {
+                desc.files
+                    .iter()
+                    .find(|f| f.name == name && f.tensors.len() == 1)
+                    .map(|f| f.tensors[0])
+            });
+            let Some(t) = t else {
+                bail!(
+                    "--coords: `{item}`: {} has no tensor `{name}`; its tensors are {}",
+                    desc.path.display(),
+                    names.join(", ")
+                );
+            };
+            let size: usize = tensors[t].spec.shape.iter().product();
+            match index.trim().parse::<usize>() {
+                Ok(k) if k < size => Ok((t, k)),
+                _ => bail!(
+                    "--coords: `{item}`: the index must be a whole number from 0 to {} (tensor `{}` has shape {:?}, read flat in row-major order)",
+                    size.saturating_sub(1),
+                    tensors[t].name,
+                    tensors[t].spec.shape
+                ),
+            }
+        })
+        .collect()
+}
+
+/// How a swept coordinate is named in the report and the document.
+pub trait Located {
+    fn label(&self) -> String;
+    fn tensor(&self) -> &str;
+    fn layer(&self) -> usize;
+    /// Where it is, in the layer's terms.
+    fn detail(&self) -> String;
+}
+
+impl Located for Place {
+    fn label(&self) -> String {
+        Place::label(self)
+    }
+    fn tensor(&self) -> &str {
+        &self.tensor
+    }
+    fn layer(&self) -> usize {
+        self.layer
+    }
+    fn detail(&self) -> String {
+        format!(
+            "layer {}, row {}, column {}{}, unit {}",
+            self.layer,
+            self.row,
+            self.column,
+            if self.bias { " (bias)" } else { "" },
+            self.unit
+        )
+    }
+}
+
+impl Located for GraphPlace {
+    fn label(&self) -> String {
+        GraphPlace::label(self)
+    }
+    fn tensor(&self) -> &str {
+        &self.tensor
+    }
+    fn layer(&self) -> usize {
+        self.layer
+    }
+    fn detail(&self) -> String {
+        format!("layer {}, {}", self.layer, self.location)
+    }
+}
+
+/// What a sweep ran on.
+struct Swept {
+    description: PathBuf,
+    weights: WeightsSource,
+    data: DataSource,
+    network: NetworkId,
+    precision: Precision,
+}
+
+/// The report of the curves, its plot and document, emitted.
+#[allow(clippy::too_many_arguments)]
+fn finish<K, P: Located + Serialize>(
+    args: &SweepArgs,
+    settings: &Settings,
+    run: &Swept,
+    methods: &[Method],
+    hs: Vec<f64>,
+    curves: &[Curve<K>],
+    why: &[&'static str],
+    place_of: impl Fn(&K) -> P,
+) -> Result<Verdict> {
+    let prec = run.precision;
     let tolerance = prec.tolerance();
     let mut findings = Vec::new();
     let mut out = Vec::new();
-    for (curve, (_, why)) in curves.iter().zip(&chosen) {
-        let place = tensors.place(curve.coord);
+    for (curve, why) in curves.iter().zip(why) {
+        let place = place_of(&curve.coord);
         let mcurves: Vec<MethodCurve> = methods
             .iter()
             .enumerate()
@@ -220,8 +441,8 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
                         num(best)
                     ),
                 )
-                .tensor(&place.tensor)
-                .layer(place.layer)
+                .tensor(place.tensor())
+                .layer(place.layer())
                 .figure("best_error", best),
             );
         }
@@ -245,9 +466,9 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         verdict: Verdict::of(&findings),
         schema_version: SCHEMA_VERSION,
         command: "sweep",
-        description: loaded.desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
+        description: run.description.clone(),
+        weights: run.weights.clone(),
+        data: run.data.clone(),
         precision: prec.name(),
         tolerance,
         steps: hs,
@@ -255,9 +476,9 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         plot: args.plot.clone(),
         findings,
     };
-    let mut doc = document(&report, &methods, eps);
+    let mut doc = document(&report, methods, eps);
     doc.command = "sweep".into();
-    doc.network = Some(network_id(&loaded.desc));
+    doc.network = Some(run.network.clone());
     doc.cases = report
         .coordinates
         .iter()
@@ -289,7 +510,7 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
 }
 
 /// One plot panel per swept coordinate: every method's error against the step.
-fn step_panels(coords: &[CoordSweep], steps: &[f64], eps: f64) -> Vec<StepPanel> {
+fn step_panels<P: Located>(coords: &[CoordSweep<P>], steps: &[f64], eps: f64) -> Vec<StepPanel> {
     coords
         .iter()
         .map(|c| StepPanel {
@@ -310,7 +531,7 @@ fn step_panels(coords: &[CoordSweep], steps: &[f64], eps: f64) -> Vec<StepPanel>
         .collect()
 }
 
-fn document(r: &SweepReport, methods: &[Method], eps: f64) -> Document {
+fn document<P: Located>(r: &SweepReport<P>, methods: &[Method], eps: f64) -> Document {
     let mut doc = Document::new("plumb sweep — error against step size");
     doc.push(Block::Facts(vec![
         ("description".into(), r.description.display().to_string()),
@@ -330,13 +551,9 @@ fn document(r: &SweepReport, methods: &[Method], eps: f64) -> Document {
     ));
     for c in &r.coordinates {
         doc.push(Block::Heading(format!(
-            "{} — layer {}, row {}, column {}{}, unit {} ({}); analytic {:.6e}",
+            "{} — {} ({}); analytic {:.6e}",
             c.place.label(),
-            c.place.layer,
-            c.place.row,
-            c.place.column,
-            if c.place.bias { " (bias)" } else { "" },
-            c.place.unit,
+            c.place.detail(),
             c.chosen,
             c.analytic
         )));

@@ -362,7 +362,10 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
          error the method itself can explain, plus random directions over every tensor."
             .into(),
     ));
-    push_all(&mut doc, check::document(&checked));
+    push_all(
+        &mut doc,
+        check::document(&checked, Block::Table(check::worst_table(&checked.worst))),
+    );
     doc.blocks
         .extend(check::plots(&checked, &loaded, Precision::F64));
 

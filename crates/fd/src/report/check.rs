@@ -88,9 +88,10 @@ pub struct CoordReport {
     pub retried: bool,
 }
 
-/// One tensor of the report.
+/// One tensor of the report; `C` is how a coordinate is located (a dense [`CoordReport`], or a
+/// graph's [`GraphCoordReport`](super::GraphCoordReport)).
 #[derive(Clone, Debug, Serialize, Deserialize)]
-pub struct TensorReport {
+pub struct TensorReport<C = CoordReport> {
     pub name: String,
     pub layer: usize,
     pub parameters: usize,
@@ -118,7 +119,7 @@ pub struct TensorReport {
     pub directions: usize,
     pub direction_mismatches: usize,
     pub verdict: Verdict,
-    pub worst: Vec<CoordReport>,
+    pub worst: Vec<C>,
 }
 
 /// One direction of the report.
@@ -149,9 +150,10 @@ pub struct CoverageReport {
     pub directions_per_part: usize,
 }
 
-/// The JSON report of `plumb check` (docs/json.md).
+/// The JSON report of `plumb check` (docs/json.md); `C` as for [`TensorReport`].
 #[derive(Clone, Debug, Serialize, Deserialize)]
-pub struct CheckReport {
+#[serde(bound(deserialize = "C: Deserialize<'de>"))]
+pub struct CheckReport<C = CoordReport> {
     pub verdict: Verdict,
     pub schema_version: u32,
     pub command: String,
@@ -178,11 +180,11 @@ pub struct CheckReport {
     pub shard: Option<[usize; 2]>,
     /// The relative error's floor per layer.
     pub floors: Vec<f64>,
-    pub tensors: Vec<TensorReport>,
-    pub worst: Vec<CoordReport>,
+    pub tensors: Vec<TensorReport<C>>,
+    pub worst: Vec<C>,
     /// Every checked coordinate, in a sharded run (what `plumb merge` joins).
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub coordinates: Option<Vec<CoordReport>>,
+    pub coordinates: Option<Vec<C>>,
     pub directions: Vec<DirectionReport>,
     pub findings: Vec<Finding>,
     /// Every checked coordinate's relative error and relative bound, per tensor (for the HTML

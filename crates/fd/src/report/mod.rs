@@ -3,6 +3,7 @@
 //! only parses, calls, renders and exits.
 
 mod check;
+mod graph_check;
 mod graph_loaded;
 mod locate;
 mod shards;
@@ -10,6 +11,10 @@ mod shards;
 pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, MAX_DIRECTIONS, RunFacts,
     TensorReport, build, check_report, coord_report, remedies,
+};
+pub use graph_check::{
+    GraphCheckReport, GraphCoordReport, GraphPlace, build_graph, graph_check_report,
+    locate as graph_locate,
 };
 pub use graph_loaded::{
     GraphInputs, GraphLoadError, GraphLoaded, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES,
