@@ -324,6 +324,14 @@ pub struct AuditArgs {
     /// the layers).
     #[arg(long, value_name = "A", default_value_t = 0.01)]
     pub ks_alpha: f64,
+    /// |scale| of a norm layer below which its channel or feature has collapsed (networks of
+    /// other kinds than dense).
+    #[arg(long, value_name = "X", default_value_t = 1e-3)]
+    pub collapsed_scale: f64,
+    /// The probe file's spatial arrays are (m, length, channels) or (m, height, width, channels)
+    /// instead of channels first (networks with a signal or image input).
+    #[arg(long, requires = "data")]
+    pub channels_last: bool,
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]

@@ -5,7 +5,9 @@
 use ndarray::ArrayD;
 use plumb_engine::graph::{Graph, GraphError, Node, Role};
 use plumb_engine::{Activation, Batch, Init, Rng};
-use plumb_formats::{DType, Layout};
+use std::path::Path;
+
+use plumb_formats::{DType, FileFormat, GraphDescription, Layout, TensorFile};
 use plumb_report::Verdict;
 
 use crate::graph_health::{
@@ -15,8 +17,8 @@ use crate::release::{flow_findings, health_findings, init_findings, symmetry_fin
 use crate::robust::{largest, moments, norm};
 use crate::values::{Values, values_findings};
 use crate::{
-    Audit, LayerFlow, LayerShapes, ShapeAudit, Status, TensorShape, Thresholds,
-    correct_across_layers, sigma_max, tensor_init, unit_health, verdict_at,
+    Audit, AuditShapes, LayerFlow, LayerShapes, ShapeAudit, Status, TensorShape, Thresholds,
+    audit_graph_shapes, correct_across_layers, sigma_max, tensor_init, unit_health, verdict_at,
 };
 
 /// A graph with the parameters a weight file gave it.
@@ -110,7 +112,7 @@ fn role_name(role: Role) -> &'static str {
 /// not fit the graph are an error, as they are for the passes.
 pub fn audit_graph(
     w: &GraphWeights,
-    shapes: ShapeAudit,
+    shapes: impl Into<AuditShapes>,
     probe: &Batch,
     claimed: Option<Init>,
     t: &Thresholds,
@@ -120,7 +122,8 @@ pub fn audit_graph(
     w.check()?;
     let (g, params) = (w.graph, w.params);
     g.check_batch(probe.x.view(), probe.y.view())?;
-    let mut findings = shapes.findings.clone();
+    let shapes = shapes.into();
+    let mut findings = shapes.findings().to_vec();
     findings.extend(values_findings(&values(w), t));
     let nodes = g.nodes();
     let last = nodes.len() - 1;
@@ -228,6 +231,74 @@ pub fn audit_graph(
         skipped,
         findings,
     })
+}
+
+/// Audits a weight file (read from `path`) against a description of any kind on a probe batch:
+/// the graph shapes audit, then, when every tensor fits, [`audit_graph`] on the file's tensors
+/// in canonical shapes, each with the dtype the file stored it in. When the tensors do not fit,
+/// the report holds the shape findings and says what could not be checked.
+#[allow(clippy::too_many_arguments)]
+pub fn audit_graph_file(
+    desc: &GraphDescription,
+    file: &TensorFile,
+    path: &Path,
+    probe: &Batch,
+    claimed: Option<Init>,
+    t: &Thresholds,
+    k: &KindThresholds,
+    seed: u64,
+) -> Result<Audit, GraphError> {
+    let shapes = audit_graph_shapes(desc, Some(file));
+    let params = match shapes.verdict {
+        Verdict::Pass => desc.read_params(file, path).map_err(|e| e.to_string()),
+        _ => Err("the tensors do not fit the description".into()),
+    };
+    let params = match params {
+        Ok(p) => p,
+        Err(why) => {
+            let findings = shapes.findings.clone();
+            return Ok(Audit {
+                verdict: verdict_at(&findings, t.fail_on),
+                fail_on: t.fail_on,
+                shapes: shapes.into(),
+                health: Vec::new(),
+                init: Vec::new(),
+                flow: Vec::new(),
+                inside: Vec::new(),
+                skipped: vec![format!(
+                    "values, duplicates, unit health, the layers' inside measures, initialisation and flow: {why}"
+                )],
+                findings,
+            });
+        }
+    };
+    let dtypes = stored_dtypes(desc, file);
+    let w = GraphWeights {
+        graph: &desc.graph,
+        params: &params,
+        dtypes: &dtypes,
+    };
+    audit_graph(&w, shapes, probe, claimed, t, k, seed)
+}
+
+/// The dtype the file stored each graph tensor in (an augmented dense matrix gives its weight
+/// and bias the matrix's).
+fn stored_dtypes(desc: &GraphDescription, file: &TensorFile) -> Vec<DType> {
+    let single = file.format == FileFormat::Npy && file.tensors.len() == 1 && desc.files.len() == 1;
+    let mut out = vec![DType::F64; desc.graph.tensors().len()];
+    for f in &desc.files {
+        let found = if single {
+            file.tensors.first()
+        } else {
+            file.tensors.iter().find(|t| t.name == f.name)
+        };
+        if let Some(found) = found {
+            for &t in &f.tensors {
+                out[t] = found.dtype;
+            }
+        }
+    }
+    out
 }
 
 /// Whether unit health measures anything after this activation (or the layer has weights whose

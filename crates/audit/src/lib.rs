@@ -37,7 +37,7 @@ mod units;
 mod values;
 
 pub use flow::{LayerFlow, layer_flow, sigma_max};
-pub use graph_audit::{GraphWeights, audit_graph, fitted_shapes};
+pub use graph_audit::{GraphWeights, audit_graph, audit_graph_file, fitted_shapes};
 pub use graph_health::{
     InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
     output_units,
@@ -48,7 +48,7 @@ pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
     tensor_init,
 };
-pub use release::{Audit, Thresholds, audit, verdict_at};
+pub use release::{Audit, AuditShapes, Thresholds, audit, verdict_at};
 pub use robust::{Moments, largest, moments, norm};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
 pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};

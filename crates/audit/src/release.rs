@@ -6,9 +6,9 @@ use plumb_report::{Finding, Severity, Verdict, tally};
 use serde::Serialize;
 
 use crate::{
-    InsideHealth, LayerFlow, LayerHealth, LayerInit, ShapeAudit, SymmetricGroup, audit_shapes,
-    check_values, correct_across_layers, layer_flow, layer_health, layer_init, symmetry,
-    unit_ranges,
+    GraphShapeAudit, InsideHealth, LayerFlow, LayerHealth, LayerInit, ShapeAudit, Status,
+    StrayTensor, SymmetricGroup, TensorShape, audit_shapes, check_values, correct_across_layers,
+    layer_flow, layer_health, layer_init, symmetry, unit_ranges,
 };
 
 /// `fail` when any finding reaches `level`.
@@ -82,7 +82,7 @@ pub struct Audit {
     /// The lowest severity that fails the audit (the thresholds' `fail_on`).
     #[serde(skip)]
     pub fail_on: Severity,
-    pub shapes: ShapeAudit,
+    pub shapes: AuditShapes,
     pub health: Vec<LayerHealth>,
     pub init: Vec<LayerInit>,
     pub flow: Vec<LayerFlow>,
@@ -93,6 +93,66 @@ pub struct Audit {
     /// Checks that could not run, and why.
     pub skipped: Vec<String>,
     pub findings: Vec<Finding>,
+}
+
+/// The shape audit an [`Audit`] starts from: the dense one for a dense description, the graph's
+/// for any other kind. Either serialises as itself, so a dense report's JSON is unchanged.
+#[derive(Clone, Debug, Serialize)]
+#[serde(untagged)]
+pub enum AuditShapes {
+    Dense(ShapeAudit),
+    Graph(GraphShapeAudit),
+}
+
+impl AuditShapes {
+    pub fn verdict(&self) -> Verdict {
+        match self {
+            AuditShapes::Dense(s) => s.verdict,
+            AuditShapes::Graph(s) => s.verdict,
+        }
+    }
+
+    pub fn findings(&self) -> &[Finding] {
+        match self {
+            AuditShapes::Dense(s) => &s.findings,
+            AuditShapes::Graph(s) => &s.findings,
+        }
+    }
+
+    /// Every tensor the description expects, with what the file holds under its name.
+    pub fn tensors(&self) -> Box<dyn Iterator<Item = &TensorShape> + '_> {
+        match self {
+            AuditShapes::Dense(s) => Box::new(s.layers.iter().flat_map(|l| &l.tensors)),
+            AuditShapes::Graph(s) => Box::new(s.layers.iter().flat_map(|l| &l.tensors)),
+        }
+    }
+
+    /// The file's tensors no layer uses.
+    pub fn unexpected(&self) -> &[StrayTensor] {
+        match self {
+            AuditShapes::Dense(s) => &s.unexpected,
+            AuditShapes::Graph(s) => &s.unexpected,
+        }
+    }
+
+    /// Whether any tensor of the file fits the description (in any layout, for a dense one): a
+    /// file none of whose tensors fits belongs to another network.
+    pub fn fits_any(&self) -> bool {
+        matches!(self, AuditShapes::Dense(s) if s.detected_layout.is_some())
+            || self.tensors().any(|t| t.status == Status::Ok)
+    }
+}
+
+impl From<ShapeAudit> for AuditShapes {
+    fn from(s: ShapeAudit) -> Self {
+        AuditShapes::Dense(s)
+    }
+}
+
+impl From<GraphShapeAudit> for AuditShapes {
+    fn from(s: GraphShapeAudit) -> Self {
+        AuditShapes::Graph(s)
+    }
 }
 
 /// Audits a weight file on a probe batch; `claimed` is the scheme the file says it was drawn from.
@@ -173,7 +233,7 @@ pub fn audit(
     Audit {
         verdict: verdict_at(&findings, t.fail_on),
         fail_on: t.fail_on,
-        shapes,
+        shapes: shapes.into(),
         health,
         init,
         flow,

@@ -1,11 +1,16 @@
-//! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file.
+//! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file, on the dense engine
+//! for dense descriptions and on the layer graph for any other kind.
 
 use std::path::PathBuf;
 
-use anyhow::{Result, bail};
-use plumb_audit::{Audit, Thresholds, audit};
+use anyhow::{Result, anyhow, bail};
+use plumb_audit::{Audit, AuditShapes, KindThresholds, Thresholds, audit, audit_graph_file};
 use plumb_engine::Init;
-use plumb_formats::{Description, assemble, bind, read_tensors};
+use plumb_fd::report::{GraphInputs, GraphLoaded};
+use plumb_formats::{
+    AnyDescription, AxisOrder, Description, GraphDescription, TensorFile, assemble, bind,
+    read_tensors,
+};
 use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
@@ -13,7 +18,7 @@ use crate::args::{AuditArgs, FailOn, Inputs};
 use crate::commands::check::plot;
 use crate::commands::shapes;
 use crate::inputs::{DataSource, init_scheme, load_batch};
-use crate::output::{SCHEMA_VERSION, Settings, network_id};
+use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -27,12 +32,15 @@ pub struct AuditReport<'a> {
     pub fail_on: &'static str,
     pub claimed_init: Option<&'static str>,
     pub thresholds: &'a Thresholds,
+    /// The thresholds of measures only other kinds than dense have; absent for a dense network.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub kind_thresholds: Option<&'a KindThresholds>,
     #[serde(flatten)]
     pub audit: &'a Audit,
 }
 
 pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
-    let checks: [(&str, f64, bool); 9] = [
+    let checks: [(&str, f64, bool); 10] = [
         (
             "--max-magnitude",
             args.max_magnitude,
@@ -70,6 +78,11 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             args.ks_alpha,
             args.ks_alpha > 0.0 && args.ks_alpha < 1.0,
         ),
+        (
+            "--collapsed-scale",
+            args.collapsed_scale,
+            args.collapsed_scale > 0.0,
+        ),
     ];
     for (flag, v, ok) in checks {
         if !(v.is_finite() && ok) {
@@ -93,7 +106,10 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             FailOn::Error => Severity::Error,
         },
     };
-    let desc = Description::read(&args.net)?;
+    let desc = match AnyDescription::read(&args.net)? {
+        AnyDescription::Dense(desc, _) => desc,
+        AnyDescription::Graph(desc) => return run_graph(args, settings, desc, &t),
+    };
     let file = read_tensors(&args.weights)?;
     let inputs = Inputs {
         net: args.net.clone(),
@@ -106,27 +122,8 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     let (batch, data) = load_batch(&inputs, &desc, settings.seed, args.batch)?;
     let claimed = args.init.map(init_scheme);
     let result = audit(&desc, &file, &batch, claimed, &t, settings.seed);
-    // A file none of whose tensors fits, in any layout, is not this network's: unusable input.
-    let fits_any = result.shapes.detected_layout.is_some()
-        || result
-            .shapes
-            .layers
-            .iter()
-            .flat_map(|l| &l.tensors)
-            .any(|t| t.status == plumb_audit::Status::Ok);
-    if !fits_any {
-        let found: Vec<String> = file
-            .tensors
-            .iter()
-            .take(6)
-            .map(|t| format!("`{}` {}", t.name, crate::output::shape(&t.shape)))
-            .collect();
-        bail!(
-            "{}: none of its tensors fits {} in any layout (it holds {}); these weights belong to another network — run `plumb shapes` to compare",
-            args.weights.display(),
-            args.net.display(),
-            found.join(", ")
-        );
+    if !result.shapes.fits_any() {
+        return Err(foreign(args, &file));
     }
     let level = t.fail_on;
     let report = AuditReport {
@@ -139,9 +136,15 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         fail_on: level.name(),
         claimed_init: claimed.map(|c| c.name()),
         thresholds: &t,
+        kind_thresholds: None,
         audit: &result,
     };
-    let mut doc = document(&report, &desc, &file, &args.weights);
+    let AuditShapes::Dense(shape_audit) = &result.shapes else {
+        unreachable!("the dense audit's shapes are dense")
+    };
+    let mut sd = shapes::document(&desc, &args.net, Some((&args.weights, &file)), shape_audit);
+    sd.blocks.retain(|b| matches!(b, Block::Table(_)));
+    let mut doc = document(&report, &file, &args.weights, sd.blocks);
     doc.command = "audit".into();
     doc.network = Some(network_id(&desc));
     doc.fail_on = level;
@@ -152,15 +155,106 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     settings.emit(&report, doc)
 }
 
+/// The audit of a description of another kind than dense, on the layer graph: the weights
+/// through the file tensors, the probe data through the graph's data reader (or a seeded batch).
+fn run_graph(
+    args: &AuditArgs,
+    settings: &Settings,
+    desc: GraphDescription,
+    t: &Thresholds,
+) -> Result<Verdict> {
+    let file = read_tensors(&args.weights)?;
+    let order = if args.channels_last {
+        AxisOrder::ChannelsLast
+    } else {
+        AxisOrder::ChannelsFirst
+    };
+    // Only the probe batch is used from the load; the weights are the file's, finite or not.
+    let probe = GraphLoaded::load(
+        desc,
+        &GraphInputs {
+            weights: None,
+            data: args.data.as_deref(),
+            order,
+            init: Init::GlorotUniform,
+            seed: settings.seed,
+            samples: args.batch,
+        },
+    )?;
+    let desc = &probe.desc;
+    let k = KindThresholds {
+        collapsed_scale: args.collapsed_scale,
+    };
+    let claimed = args.init.map(init_scheme);
+    let result = audit_graph_file(
+        desc,
+        &file,
+        &args.weights,
+        &probe.batch,
+        claimed,
+        t,
+        &k,
+        settings.seed,
+    )
+    .map_err(|e| anyhow!("{}: {e}", args.net.display()))?;
+    if !result.shapes.fits_any() {
+        return Err(foreign(args, &file));
+    }
+    let AuditShapes::Graph(shape_audit) = &result.shapes else {
+        unreachable!("the graph audit's shapes are the graph's")
+    };
+    let report = AuditReport {
+        verdict: result.verdict,
+        schema_version: SCHEMA_VERSION,
+        command: "audit",
+        description: &args.net,
+        weights: &args.weights,
+        data: probe.data_source.clone(),
+        fail_on: t.fail_on.name(),
+        claimed_init: claimed.map(|c| c.name()),
+        thresholds: t,
+        kind_thresholds: Some(&k),
+        audit: &result,
+    };
+    let mut sd = shapes::graph_document(desc, &args.net, Some((&args.weights, &file)), shape_audit);
+    sd.blocks.retain(|b| matches!(b, Block::Table(_)));
+    let mut doc = document(&report, &file, &args.weights, sd.blocks);
+    doc.command = "audit".into();
+    doc.network = Some(graph_network_id(desc));
+    doc.fail_on = t.fail_on;
+    doc.cases = cases(&result);
+    if settings.html.is_some() {
+        crate::commands::check::insert_before_findings(&mut doc, health_plot(&result));
+    }
+    settings.emit(&report, doc)
+}
+
+/// A weight file none of whose tensors fits (in any layout) is another network's: unusable input.
+fn foreign(args: &AuditArgs, file: &TensorFile) -> anyhow::Error {
+    let found: Vec<String> = file
+        .tensors
+        .iter()
+        .take(6)
+        .map(|t| format!("`{}` {}", t.name, crate::output::shape(&t.shape)))
+        .collect();
+    anyhow!(
+        "{}: none of its tensors fits {} in any layout (it holds {}); these weights belong to another network — run `plumb shapes` to compare",
+        args.weights.display(),
+        args.net.display(),
+        found.join(", ")
+    )
+}
+
 /// The shape cases, then the audit's own (one per layer's tensor, one for the network).
 pub fn cases(a: &Audit) -> Vec<Case> {
-    let mut out = shapes::cases(&a.shapes);
+    let s = &a.shapes;
+    let mut out = shapes::tensor_cases(s.tensors(), s.unexpected(), s.findings());
     out.extend(a.cases());
     out
 }
 
-/// The audit's pictures: unit health as a heatmap, each layer's weights against its scheme's density.
-pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) -> Vec<Block> {
+/// Unit health as a heatmap, one row per hidden layer with a measure.
+fn health_plot(a: &Audit) -> Vec<Block> {
     let mut out = Vec::new();
     let rows: Vec<HeatRow> = a
         .health
@@ -182,6 +276,12 @@ pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) ->
             svg,
         ));
     }
+    out
+}
+
+/// The audit's pictures: unit health as a heatmap, each layer's weights against its scheme's density.
+pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) -> Vec<Block> {
+    let mut out = health_plot(a);
     let Ok(weights) = assemble(desc, &bind(desc, file), &desc.path) else {
         return out;
     };
@@ -233,9 +333,9 @@ pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) ->
 
 fn document(
     r: &AuditReport<'_>,
-    desc: &Description,
-    file: &plumb_formats::TensorFile,
+    file: &TensorFile,
     weights: &PathBuf,
+    shape_tables: Vec<Block>,
 ) -> Document {
     let a = r.audit;
     let mut doc = Document::new("plumb audit — is this weight file fit to ship?");
@@ -260,9 +360,7 @@ fn document(
     ]));
 
     doc.push(Block::Heading("shapes".into()));
-    let mut sd = shapes::document(desc, r.description, Some((weights, file)), &a.shapes);
-    sd.blocks.retain(|b| matches!(b, Block::Table(_)));
-    for b in sd.blocks {
+    for b in shape_tables {
         doc.push(b);
     }
 

@@ -85,7 +85,8 @@ pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
     tensor_cases(tensors, &audit.unexpected, &audit.findings)
 }
 
-fn tensor_cases<'a>(
+/// One case per expected tensor and per stray tensor, failed by the tensor's error finding.
+pub fn tensor_cases<'a>(
     tensors: impl Iterator<Item = &'a TensorShape>,
     unexpected: &[StrayTensor],
     findings: &[Finding],
