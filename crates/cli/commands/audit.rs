@@ -1,7 +1,7 @@
 //! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file, on the dense engine
 //! for dense descriptions and on the layer graph for any other kind.
 
-use std::path::PathBuf;
+use std::path::Path;
 
 use anyhow::{Result, anyhow, bail};
 use plumb_audit::{Audit, AuditShapes, KindThresholds, Thresholds, audit, audit_graph_file};
@@ -334,7 +334,7 @@ pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) ->
 fn document(
     r: &AuditReport<'_>,
     file: &TensorFile,
-    weights: &PathBuf,
+    weights: &Path,
     shape_tables: Vec<Block>,
 ) -> Document {
     let a = r.audit;
