@@ -294,28 +294,18 @@ fn dense_descriptions_give_the_input_gradient_too() {
 }
 
 #[test]
-fn other_commands_refuse_other_kinds_naming_layer_and_line() {
-    let (net, weights, _) = files("conv1d-relu-maxpool-dense");
-    for command in ["check", "sweep", "compare", "audit", "probe"] {
-        let mut args = vec![command, net.as_str()];
-        if command == "probe" {
-            args.extend(["--", "true"]);
-        }
-        if command == "compare" {
-            args.extend(["-g", weights.as_str()]);
-        }
-        if command == "audit" {
-            args.extend(["-w", weights.as_str()]);
-        }
-        let run = plumb(&args);
-        run.assert_code(2);
-        assert!(
-            run.stderr.contains("conv1d") && run.stderr.contains("line"),
-            "{command}: {}",
-            run.stderr
-        );
-        assert!(!run.stderr.contains("panicked"), "{}", run.stderr);
-    }
+fn probe_refuses_other_kinds_naming_layer_and_line() {
+    // check, sweep, compare and audit take every kind (tests/graph_check.rs, graph_compare.rs,
+    // graph_audit.rs); probe does not yet.
+    let (net, _, _) = files("conv1d-relu-maxpool-dense");
+    let run = plumb(&["probe", net.as_str(), "--", "true"]);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("conv1d") && run.stderr.contains("line"),
+        "probe: {}",
+        run.stderr
+    );
+    assert!(!run.stderr.contains("panicked"), "{}", run.stderr);
 }
 
 #[test]
