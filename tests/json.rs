@@ -628,6 +628,7 @@ fn audit_report_schema() {
             "layer",
             "activation",
             "units",
+            "unit_name",
             "measure",
             "fractions",
             "mean_fraction",
