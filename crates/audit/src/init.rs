@@ -202,7 +202,7 @@ mod tests {
 
     // The Kolmogorov distribution's classical critical values [memory]: Q(1.358) ≈ 0.05,
     // Q(1.628) ≈ 0.01, Q(1.224) ≈ 0.10 — verified by a second method, a Monte Carlo of the KS
-    // statistic's rejection rate, in tests/init.rs.
+    // statistic's rejection rate, in tests/it/init.rs.
     #[test]
     fn kolmogorov_tail_at_its_critical_values() {
         assert!((q_ks(1.358) - 0.05).abs() < 5e-4, "{}", q_ks(1.358));

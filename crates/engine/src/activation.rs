@@ -277,7 +277,7 @@ mod tests {
     use super::*;
 
     // The slopes against central differences of the values: an internal consistency check of each
-    // closed form (the independent check against num-dual lives in tests/dual.rs).
+    // closed form (the independent check against num-dual lives in tests/it/dual.rs).
     #[test]
     fn slopes_match_central_differences_away_from_kinks() {
         let acts = [

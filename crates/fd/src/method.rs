@@ -53,7 +53,7 @@ const COMPLEX_STEP: f64 = 1e-20;
 /// step is (3ε|J|/|J‴|)^(1/3) (NR §5.7); a network's loss bends slowly enough along one weight
 /// that this lies above ∛ε: on six smooth architectures with Glorot and He weights (20 seeds
 /// each) the largest error per coordinate was 4e-8 at ∛ε, 2e-8 at 2∛ε, and 1.2e-8 when each
-/// coordinate also takes 2h where round-off dominates (crates/fd/tests/accuracy.rs keeps it
+/// coordinate also takes 2h where round-off dominates (crates/fd/tests/it/accuracy.rs keeps it
 /// measured). In f32, ∛ε is already 5e-3: a step twice that leaves the quadratic regime on
 /// networks with large weights, where the two-step bound then undercounts (a review found false
 /// mismatches with weights 4× their initial scale), so f32 keeps h = ∛ε·max(|θ|, 1).

@@ -1,6 +1,6 @@
 //! JUnit XML, for CI systems that show test results: one test suite per run, one test case per
 //! checked tensor or check, a failure element where it failed. Valid against the JUnit schema CI
-//! systems use (fixtures/junit/junit-10.xsd; tests/report.rs validates it).
+//! systems use (fixtures/junit/junit-10.xsd; tests/it/report.rs validates it).
 
 use std::io::{self, Write};
 

@@ -1,0 +1,7 @@
+//! One test binary for the whole directory: every file is a module, so the suite links
+//! once instead of once per file (most of CI's time is building test binaries).
+
+mod graph_cases;
+
+mod conventions;
+mod graph;

@@ -1,0 +1,16 @@
+//! One test binary for the whole directory: every file is a module, so the suite links
+//! once instead of once per file (most of CI's time is building test binaries).
+
+mod graph_common;
+
+mod accuracy;
+mod conventions;
+mod external;
+mod graph_engine;
+mod graph_kinks;
+mod graph_mistakes;
+mod graph_pass;
+mod graph_seeds;
+mod settle;
+mod shard_corpus;
+mod verdicts;

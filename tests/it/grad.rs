@@ -1,0 +1,200 @@
+//! `plumb grad` end to end, against the loss and gradient of a second backpropagation written in NumPy
+//! (fixtures/generate.py, `forward_backward`, committed as fixtures/expected/).
+
+use crate::util;
+
+use plumb_formats::{DType, FileFormat, read_tensors};
+use util::{fixture, plumb, scratch};
+
+fn expected_loss() -> f64 {
+    std::fs::read_to_string(fixture("expected/small-loss.txt"))
+        .unwrap()
+        .trim()
+        .parse()
+        .unwrap()
+}
+
+/// Both are exact up to rounding in f64: 1e-12 relative, against the tensor's largest entry for
+/// entries near zero.
+fn assert_close(got: &[f64], want: &[f64], what: &str) {
+    let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    for (i, (g, w)) in got.iter().zip(want).enumerate() {
+        assert!(
+            (g - w).abs() <= 1e-12 * w.abs().max(1e-6 * scale),
+            "{what}[{i}]: {g} vs {w}"
+        );
+    }
+}
+
+#[test]
+fn loss_and_gradient_match_numpy_and_the_file_keeps_the_layout() {
+    let dir = scratch("grad");
+    let out = dir.join("g.npz");
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented.npz",
+        "-d",
+        "data/small.csv",
+        "-o",
+        out.to_str().unwrap(),
+        "--format",
+        "json",
+    ]);
+    run.assert_code(0);
+    let json = run.json();
+    let loss = json["loss"].as_f64().unwrap();
+    assert!(
+        (loss - expected_loss()).abs() <= 1e-12 * expected_loss(),
+        "{loss}"
+    );
+    assert_eq!(json["samples"], 8);
+
+    let got = read_tensors(&out).unwrap();
+    let want = read_tensors(&fixture("expected/small-grad.npz")).unwrap();
+    assert_eq!(got.format, FileFormat::Npz);
+    let names: Vec<&str> = got.tensors.iter().map(|t| t.name.as_str()).collect();
+    assert_eq!(names, ["layer1", "layer2"]);
+    for t in &want.tensors {
+        let g = got.get(&t.name).unwrap();
+        assert_eq!(g.shape, t.shape);
+        assert_eq!(g.dtype, DType::F64);
+        assert_close(&g.data, &t.data, &t.name);
+    }
+    // The per-tensor norm in the report is that of the written gradient.
+    let norm1 = want.tensors[0]
+        .data
+        .iter()
+        .map(|v| v * v)
+        .sum::<f64>()
+        .sqrt();
+    let reported = json["tensors"][0]["norm"].as_f64().unwrap();
+    assert!((reported - norm1).abs() <= 1e-12 * norm1);
+}
+
+#[test]
+fn npz_data_gives_the_same_loss_as_csv() {
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented.npz",
+        "-d",
+        "data/small.npz",
+        "--format",
+        "json",
+    ]);
+    run.assert_code(0);
+    let loss = run.json()["loss"].as_f64().unwrap();
+    assert!((loss - expected_loss()).abs() <= 1e-12 * expected_loss());
+}
+
+#[test]
+fn split_transposed_gradient_is_written_transposed_to_safetensors() {
+    let dir = scratch("grad-st");
+    let out = dir.join("g.safetensors");
+    plumb(&[
+        "grad",
+        "nets/small-split-transposed.toml",
+        "-w",
+        "weights/small-split-transposed.safetensors",
+        "-d",
+        "data/small.csv",
+        "-o",
+        out.to_str().unwrap(),
+    ])
+    .assert_code(0);
+    let got = read_tensors(&out).unwrap();
+    let want = read_tensors(&fixture("expected/small-grad.npz")).unwrap();
+    // layer2 augmented gradient (3 × 6) → weight (5 × 3) = its columns 1.. transposed, bias = column 0.
+    let aug = want.get("layer2").unwrap();
+    let w = got.get("layer2.weight").unwrap();
+    assert_eq!(w.shape, [5, 3]);
+    for r in 0..5 {
+        for c in 0..3 {
+            let a = aug.data[c * 6 + r + 1];
+            assert!((w.data[r * 3 + c] - a).abs() <= 1e-12 * a.abs().max(1e-9));
+        }
+    }
+    let b = got.get("layer2.bias").unwrap();
+    assert_eq!(b.shape, [3]);
+    for c in 0..3 {
+        assert!((b.data[c] - aug.data[c * 6]).abs() <= 1e-12 * aug.data[c * 6].abs().max(1e-9));
+    }
+}
+
+#[test]
+fn float32_weights_give_a_float32_gradient_file() {
+    let dir = scratch("grad-f32");
+    let out = dir.join("g.npz");
+    plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented-f32.npz",
+        "-o",
+        out.to_str().unwrap(),
+    ])
+    .assert_code(0);
+    let got = read_tensors(&out).unwrap();
+    assert!(got.tensors.iter().all(|t| t.dtype == DType::F32));
+}
+
+#[test]
+fn outputs_never_replace_a_file_unasked_or_an_input() {
+    let dir = scratch("grad-keep");
+    let out = dir.join("g.npz");
+    std::fs::write(&out, b"precious").unwrap();
+    let run = plumb(&["grad", "nets/small.toml", "-o", out.to_str().unwrap()]);
+    run.assert_code(2);
+    assert!(
+        run.stderr.contains("exists") && run.stderr.contains("--force"),
+        "{}",
+        run.stderr
+    );
+    assert_eq!(std::fs::read(&out).unwrap(), b"precious");
+    plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-o",
+        out.to_str().unwrap(),
+        "--force",
+    ])
+    .assert_code(0);
+    assert!(read_tensors(&out).is_ok());
+
+    let w = dir.join("w.npz");
+    std::fs::copy(fixture("weights/small-augmented.npz"), &w).unwrap();
+    let before = std::fs::read(&w).unwrap();
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        w.to_str().unwrap(),
+        "-o",
+        w.to_str().unwrap(),
+        "--force",
+    ]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("input"), "{}", run.stderr);
+    assert_eq!(std::fs::read(&w).unwrap(), before);
+    // No temporary file left behind by any of this.
+    let left: Vec<_> = std::fs::read_dir(&dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name())
+        .collect();
+    assert_eq!(left.len(), 2, "{left:?}");
+}
+
+#[test]
+fn seeded_runs_without_files_are_reproducible() {
+    let a = plumb(&["grad", "nets/small.toml", "--seed", "7", "--format", "json"]);
+    let b = plumb(&["grad", "nets/small.toml", "--seed", "7", "--format", "json"]);
+    let c = plumb(&["grad", "nets/small.toml", "--seed", "8", "--format", "json"]);
+    a.assert_code(0);
+    assert_eq!(a.stdout, b.stdout);
+    assert_ne!(a.json()["loss"], c.json()["loss"]);
+    assert_eq!(a.json()["data"]["source"], "synthetic");
+    assert_eq!(a.json()["weights"]["scheme"], "glorot-uniform");
+}
