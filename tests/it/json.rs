@@ -294,7 +294,34 @@ struct Demo {
     planted: Planted,
     audit: serde_json::Value,
     probe: Option<serde_json::Value>,
+    vibration: DemoScenario,
+    hourly: DemoScenario,
     written: Vec<String>,
+}
+
+/// Scenarios (b) and (c) of the demo, on the layer graph.
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct DemoScenario {
+    verdict: String,
+    scenario: String,
+    loss_before: f64,
+    loss_after: f64,
+    shapes: serde_json::Value,
+    grad: Grad,
+    check: serde_json::Value,
+    planted: DemoPlanted,
+    audit: Option<serde_json::Value>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct DemoPlanted {
+    code: String,
+    layer: String,
+    compare: serde_json::Value,
 }
 
 fn first_key(stdout: &str) -> &str {
@@ -375,6 +402,12 @@ fn demo_report_schema() {
     assert_eq!(r.shapes.verdict, "pass");
     assert_eq!(r.shapes_planted.verdict, "fail");
     assert!(r.scenario.contains("invented"));
+    for s in [&r.vibration, &r.hourly] {
+        assert_eq!(s.verdict, "pass");
+        assert!(s.scenario.contains("invented"));
+        assert_eq!(s.planted.compare["verdict"], "fail");
+    }
+    assert!(r.vibration.audit.is_none() && r.hourly.audit.is_some());
 }
 
 #[test]

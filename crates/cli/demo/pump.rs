@@ -21,7 +21,7 @@ pub const FEATURES: [&str; 4] = [
 pub const STATES: [&str; 3] = ["normal", "cavitating", "bearing-wear"];
 
 /// The invented class means and spreads per feature: (mean, sd).
-const PROFILES: [[(f64, f64); 4]; 3] = [
+pub const PROFILES: [[(f64, f64); 4]; 3] = [
     // normal: steady pressures, low vibration
     [(180.0, 10.0), (620.0, 20.0), (2.0, 0.4), (41.0, 1.5)],
     // cavitating: suction pressure collapses, discharge fluctuates, vibration rises, current drops
