@@ -5,7 +5,9 @@
 //! Coordinates are (tensor, flat index) over [`Graph::tensors`]; the sample and the random
 //! directions come from the one sampler ([`select_tensors`]) and generator ([`directions`]).
 //! Perturbing a tensor of layer L recomputes the graph from layer L over the base pass
-//! ([`Graph::forward_from`]): the layers below are read from it. Perturbations are evaluated in
+//! ([`Graph::forward_from`]): the layers below are read from it. A perturbation of one entry
+//! goes through its kind's incremental hint ([`Graph::forward_moved`]: dense and conv update the
+//! one unit or channel the entry feeds) and the L2 term's change of that entry alone. Perturbations are evaluated in
 //! parallel, each on its own, so the result does not depend on the number of threads. A step is
 //! called across a non-smooth point when the perturbed pass takes another branch than the base
 //! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
@@ -21,7 +23,7 @@ use std::convert::Infallible;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Branches, Graph, LayerScalar, Shape, Tail, Trace};
+use plumb_engine::graph::{Branches, Graph, LayerScalar, Moved, Shape, Tail, Trace};
 use plumb_engine::{Activation, Loss, Scalar};
 use rayon::prelude::*;
 
@@ -358,6 +360,8 @@ struct Eval<'a, S> {
     y: Array2<S>,
     trace: Trace<S>,
     loss: S,
+    /// Σ w² of the decaying tensors at the base point.
+    l2_sum: S,
     branches: Branches,
     /// Per layer, the sides of a derivative's break the kink sides do not cover (elu, α = 1).
     breaks: Vec<Vec<bool>>,
@@ -380,6 +384,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         let y = y.mapv(S::from_f64);
         let trace = graph.forward(&params, x.view());
         let loss = graph.loss_of(&params, &trace, y.view());
+        let l2_sum = graph.l2_sum(&params);
         let branches = graph.branches(&trace);
         let breaks = (0..trace.steps.len())
             .map(|j| breaks(graph, j, &trace.steps[j].out))
@@ -395,6 +400,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             y,
             trace,
             loss,
+            l2_sum,
             branches,
             breaks,
             ties_from,
@@ -423,12 +429,30 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             .forward_from(moved, self.x.view(), &self.trace, from)
     }
 
+    /// The loss (and the recomputed layers) at the perturbation by `changes`, each delta times
+    /// `unit`: one entry through the kinds' hints, several by recomputing from the lowest layer.
+    fn perturbed(&self, changes: &[Change], unit: S) -> (S, Tail<S>) {
+        if let [c] = changes {
+            let moved = Moved {
+                tensor: c.tensor as usize,
+                index: c.index as usize,
+                delta: unit * S::from_f64(c.delta),
+            };
+            let g = self.graph;
+            let tail = g.forward_moved(&self.params, self.x.view(), &self.trace, &moved);
+            let loss = g.loss_moved(&self.params, &tail, self.y.view(), self.l2_sum, &moved);
+            return (loss, tail);
+        }
+        let (moved, from) = self.moved(changes, unit);
+        let tail = self.tail(&moved, from);
+        let loss = self.graph.loss_from(&moved, &tail, self.y.view());
+        (loss, tail)
+    }
+
     /// The loss at a real perturbation and whether it took another branch than the base pass.
     fn at(&self, changes: &[Change]) -> (f64, bool) {
-        let (moved, from) = self.moved(changes, S::one());
-        let tail = self.tail(&moved, from);
-        let loss = self.graph.loss_from(&moved, &tail, self.y.view()).re();
-        (loss, self.crossed(&tail))
+        let (loss, tail) = self.perturbed(changes, S::one());
+        (loss.re(), self.crossed(&tail))
     }
 
     /// Whether the base pass sits on a tie or a kink at or above the first layer `changes` move,
@@ -460,9 +484,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
 impl<S: LayerScalar + ComplexScalar> Eval<'_, S> {
     /// Im J at the perturbation by i·delta.
     fn imaginary(&self, changes: &[Change]) -> f64 {
-        let (moved, from) = self.moved(changes, S::imaginary(1.0));
-        let tail = self.tail(&moved, from);
-        self.graph.loss_from(&moved, &tail, self.y.view()).im()
+        self.perturbed(changes, S::imaginary(1.0)).0.im()
     }
 }
 

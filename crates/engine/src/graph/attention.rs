@@ -12,6 +12,9 @@
 //! - `mask-ignored-in-backward`: P recomputed without the causal mask in both of its uses
 //!   (dV_h and dS); no change when the layer is not causal;
 //! - `softmax-jacobian-diagonal`: dS = P⊙(1 − P)⊙dP.
+//!
+//! Incremental hint: none; one projection entry moves a whole head's weights, so the graph
+//! recomputes the layer.
 
 use ndarray::{Array2, Array4, ArrayD, ArrayView2, Axis, s};
 

@@ -2,6 +2,12 @@
 //! dilation and an optional bias, by im2col and one matrix product. A conv1d is a conv2d of
 //! height 1; its weight keeps its own canonical shape o × i × k.
 //!
+//! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) moved by δ changes
+//! out-channel o only, by δ times the column of the saved im2col matrix that multiplies it — a
+//! rank-one update of that channel over every sample and position; bias o moves channel o by δ.
+//! The other channels keep the base's values bit for bit; channel o differs from a full pass only
+//! by rounding.
+//!
 //! Catalogued mistakes (DESIGN §7): `kernel-flipped` (weight and input gradients with the kernel
 //! turned 180°), `channels-swapped` (the weight gradient's o and i axes exchanged, read back in
 //! the canonical shape), `overlap-overwritten` (overlapping windows assign, the last in row-major
@@ -12,7 +18,8 @@ use ndarray::{Array2, ArrayD, ArrayView2, Axis, IxDyn};
 
 use super::window::{Scatter, Window};
 use super::{
-    Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, reshape, unravel,
+    Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
+    unravel,
 };
 use crate::Scalar;
 
@@ -351,5 +358,39 @@ impl<S: LayerScalar> Layer<S> for Conv {
             dx,
             dskip: None,
         }
+    }
+
+    fn forward_moved(
+        &self,
+        _: &[ArrayD<S>],
+        _: ArrayView2<S>,
+        base: &Step<S>,
+        moved: &Moved<S>,
+    ) -> Option<Step<S>> {
+        let op = self.window.out_positions();
+        let per_channel = self.window.channels * self.window.taps();
+        let (channel, column) = if moved.tensor == 0 {
+            (moved.index / per_channel, Some(moved.index % per_channel))
+        } else {
+            (moved.index, None)
+        };
+        let mut out = base.out.clone();
+        let mut block = out.slice_mut(ndarray::s![.., channel * op..(channel + 1) * op]);
+        match column {
+            Some(c) => {
+                // Rows of the columns matrix are (sample, position), the base's layout.
+                let cols = base.saved[0]
+                    .view()
+                    .into_dimensionality::<ndarray::Ix2>()
+                    .expect("conv saves its columns");
+                let taps = cols.column(c);
+                for (i, mut row) in block.outer_iter_mut().enumerate() {
+                    let from = taps.slice(ndarray::s![i * op..(i + 1) * op]);
+                    row.zip_mut_with(&from, |z, &v| *z += moved.delta * v);
+                }
+            }
+            None => block.mapv_inplace(|z| z + moved.delta),
+        }
+        Some(Step::plain(out))
     }
 }

@@ -4,6 +4,11 @@
 //! `bias`); `split-transposed` is the permutation `io` of `oi` ([`super::Storage`]); the augmented
 //! matrix is [`Dense::join`] / [`Dense::split`].
 //!
+//! Incremental hint ([`Layer::forward_moved`]): weight (r, c) moved by δ changes unit r only, by
+//! δ · x[:, c] on every sample (and step) — a rank-one update of the base output; bias r moves
+//! unit r by δ. The other units keep the base's values bit for bit; unit r differs from a full
+//! pass only by rounding (the update adds δ·x to the rounded sum, the full pass sums again).
+//!
 //! Catalogued mistake: `bias-rows-shifted` — the input gradient formed with the augmented matrix
 //! [b, W] (bias column first) and its last column dropped instead of its first, so the gradient
 //! of input k is that of input k − 1 and input 0 gets the bias column's; the layer's own
@@ -11,7 +16,9 @@
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s};
 
-use super::{Back, Kind, Layer, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step, reshape};
+use super::{
+    Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
+};
 
 /// A dense layer bound to its input shape.
 #[derive(Clone, Debug)]
@@ -169,6 +176,37 @@ impl<S: LayerScalar> Layer<S> for Dense {
             dx,
             dskip: None,
         }
+    }
+
+    fn forward_moved(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
+        moved: &Moved<S>,
+    ) -> Option<Step<S>> {
+        let (unit, input) = if moved.tensor == 0 {
+            (
+                moved.index / self.fan_in(),
+                Some(moved.index % self.fan_in()),
+            )
+        } else {
+            (moved.index, None)
+        };
+        let x = self.rows(x);
+        let mut out = base.out.clone();
+        let m = out.nrows();
+        // One row per sample and step, as the forward product's; unit r is column r.
+        let mut z = out
+            .view_mut()
+            .into_shape_with_order((m * self.input.rows(), self.units))
+            .expect("the base output is standard layout");
+        let mut column = z.column_mut(unit);
+        match input {
+            Some(c) => column.zip_mut_with(&x.column(c), |z, &v| *z += moved.delta * v),
+            None => column.mapv_inplace(|z| z + moved.delta),
+        }
+        Some(Step::plain(out))
     }
 }
 

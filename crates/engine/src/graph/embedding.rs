@@ -7,6 +7,8 @@
 //! Catalogued mistake (DESIGN §7): `embedding-rows-overwritten` — a token seen more than once in
 //! the batch gets its row's gradient assigned, not summed; occurrences are visited sample by
 //! sample and step by step within a sample, so the last one wins.
+//!
+//! Incremental hint: none (a lookup costs less than the update would).
 
 use ndarray::{Array2, ArrayD, ArrayView2, s};
 

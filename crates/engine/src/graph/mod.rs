@@ -231,6 +231,32 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         dout: ArrayView2<S>,
         mistake: Option<&str>,
     ) -> Back<S>;
+
+    /// The kind's incremental-evaluation hint: the step after one parameter entry moved
+    /// (`moved`), from the `base` step of the same input `x` at `params` (the unmoved values),
+    /// doing less work than [`forward`](Layer::forward). `None` when the kind has no hint and the
+    /// graph recomputes the layer. The step serves loss evaluations only: it may keep nothing in
+    /// [`Step::saved`].
+    fn forward_moved(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
+        moved: &Moved<S>,
+    ) -> Option<Step<S>> {
+        let _ = (params, x, base, moved);
+        None
+    }
+}
+
+/// One parameter entry moved by `delta`: entry `index` (flat, C order) of tensor `tensor`,
+/// counted within the layer's tensors (in [`Layer::forward_moved`]) or the graph's (in
+/// [`Graph::forward_moved`]).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Moved<S> {
+    pub tensor: usize,
+    pub index: usize,
+    pub delta: S,
 }
 
 /// Dual numbers join the scalars a layer must support when the `dual` feature is on.

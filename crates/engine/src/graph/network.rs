@@ -8,7 +8,7 @@ use thiserror::Error;
 
 use super::hooks::{Hooks, Slope};
 use super::loss::by_rows;
-use super::{AnyLayer, LayerScalar, LossConfig, ParamSpec, Role, Shape, ShapeError, Step};
+use super::{AnyLayer, LayerScalar, LossConfig, Moved, ParamSpec, Role, Shape, ShapeError, Step};
 use crate::{Activation, Loss, Regularization, Samples, Scalar};
 
 /// One layer of the graph: its kind, the activation the graph applies after it, its name.
@@ -515,6 +515,73 @@ impl Graph {
         }
     }
 
+    /// The forward pass after one parameter entry moved (`moved`, its tensor counted over
+    /// [`Graph::tensors`]), over a `base` pass of the same batch `x` at `params` (the unmoved
+    /// values): the layers below the entry's are read from the base, its layer by its kind's
+    /// [hint](super::Layer::forward_moved) (or recomputed with the entry moved when the kind has
+    /// none), the layers above recomputed. The tail's steps keep nothing for a backward pass.
+    pub fn forward_moved<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        moved: &Moved<S>,
+    ) -> Tail<S> {
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
+        let from = self.tensors[moved.tensor].layer;
+        let node = &self.nodes[from];
+        let x = x.as_standard_layout();
+        let input = if from == 0 {
+            x.view()
+        } else {
+            base.outputs[from - 1].view()
+        };
+        let layer = S::layer(node.layer.as_ref());
+        let own = &params[node.tensors()];
+        let local = Moved {
+            tensor: moved.tensor - node.tensors.start,
+            ..*moved
+        };
+        let step = layer
+            .forward_moved(own, input, &base.steps[from], &local)
+            .unwrap_or_else(|| {
+                let mut own = own.to_vec();
+                let slot = own[local.tensor]
+                    .as_slice_mut()
+                    .expect("parameters in standard layout")
+                    .get_mut(local.index)
+                    .expect("index within its tensor");
+                *slot += local.delta;
+                let skip = node.tap.map(|t| base.outputs[t].view());
+                layer.forward(&own, input, skip)
+            });
+        let a = self.activate(node, &step.out);
+        let mut steps = vec![step];
+        let mut outputs = vec![a];
+        for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
+            let output = |i: usize| {
+                if i < from {
+                    base.outputs[i].view()
+                } else {
+                    outputs[i - from].view()
+                }
+            };
+            let skip = node.tap.map(output);
+            let step =
+                S::layer(node.layer.as_ref()).forward(&params[node.tensors()], output(j - 1), skip);
+            let a = self.activate(node, &step.out);
+            steps.push(step);
+            outputs.push(a);
+        }
+        Tail {
+            from,
+            steps,
+            outputs,
+        }
+    }
+
     fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
         match node.activation {
             Activation::Identity => z.clone(),
@@ -589,6 +656,48 @@ impl Graph {
         self.loss_at(params, z, a, y)
     }
 
+    /// The loss from a [`Graph::forward_moved`] tail: `params` are the unmoved values and
+    /// `l2_sum` their [`Graph::l2_sum`]; the L2 term takes the one entry's change rather than
+    /// summing again (which differs from the full sum by rounding only).
+    pub fn loss_moved<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        tail: &Tail<S>,
+        y: ArrayView2<S>,
+        l2_sum: S,
+        moved: &Moved<S>,
+    ) -> S {
+        let z = &tail
+            .steps
+            .last()
+            .expect("a tail holds the output layer")
+            .out;
+        let a = tail.outputs.last().expect("a tail holds the output layer");
+        let sq = if self.decays(moved.tensor) && self.loss.l2 != 0.0 {
+            let p = &params[moved.tensor];
+            let w = match p.as_slice() {
+                Some(values) => values[moved.index],
+                None => *p.iter().nth(moved.index).expect("index within its tensor"),
+            };
+            let w1 = w + moved.delta;
+            l2_sum - w * w + w1 * w1
+        } else {
+            l2_sum
+        };
+        self.loss_with(z, a, y, sq)
+    }
+
+    /// Σ w² over the tensors the L2 term covers.
+    pub fn l2_sum<S: LayerScalar>(&self, params: &[ArrayD<S>]) -> S {
+        let mut sq = S::zero();
+        for (t, p) in params.iter().enumerate() {
+            if self.decays(t) {
+                p.iter().for_each(|&w| sq += w * w);
+            }
+        }
+        sq
+    }
+
     /// The loss from the output layer's z and activation a.
     fn loss_at<S: LayerScalar>(
         &self,
@@ -596,6 +705,22 @@ impl Graph {
         z: &Array2<S>,
         a: &Array2<S>,
         y: ArrayView2<S>,
+    ) -> S {
+        let sq = if self.loss.l2_factor(z.nrows()) != 0.0 {
+            self.l2_sum(params)
+        } else {
+            S::zero()
+        };
+        self.loss_with(z, a, y, sq)
+    }
+
+    /// The loss from the output layer's z and activation a, and Σ w² for the L2 term.
+    fn loss_with<S: LayerScalar>(
+        &self,
+        z: &Array2<S>,
+        a: &Array2<S>,
+        y: ArrayView2<S>,
+        sq: S,
     ) -> S {
         let last = self.nodes.last().expect("non-empty");
         let m = z.nrows();
@@ -609,12 +734,6 @@ impl Graph {
         );
         let factor = self.loss.l2_factor(m);
         if factor != 0.0 {
-            let mut sq = S::zero();
-            for (t, p) in params.iter().enumerate() {
-                if self.decays(t) {
-                    p.iter().for_each(|&w| sq += w * w);
-                }
-            }
             total += S::from_f64(factor) * sq;
         }
         total

@@ -8,6 +8,9 @@
 //! - `norm-statistics-constant`: dx = inv · dx̂ (the statistics treated as constants);
 //! - `norm-epsilon-misplaced`: the formula above with 1/(√σ² + ε) in place of inv (x̂ as saved);
 //! - `norm-scale-unnormalised`: dγ = Σ dy · x instead of Σ dy · x̂.
+//!
+//! Incremental hint: none. A batch norm's scale or shift entry moves one channel, but the layer
+//! is cheap beside the convolutions around it; the graph recomputes it.
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Ix1, Ix2};
 

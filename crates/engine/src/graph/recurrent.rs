@@ -15,6 +15,9 @@
 //!   last to first, so the first step's term remains (the input gradient is right);
 //! - `gates-reordered` (lstm, gru): the parameters' gradient with its gate blocks in the reverse of
 //!   the declared order (block k holds the gradient of block blocks − 1 − k).
+//!
+//! Incremental hint: none; one entry moves every later step's state, so the graph recomputes the
+//! layer.
 
 use std::fmt::Debug;
 

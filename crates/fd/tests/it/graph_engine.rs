@@ -1,4 +1,5 @@
-//! What the graph check rests on: the incremental evaluation gives the whole forward pass's loss,
+//! What the graph check rests on: the incremental evaluation (from the moved layer up, and through
+//! the kinds' hints for one entry) gives the whole forward pass's loss,
 //! the result does not depend on the number of threads, shards cover the check exactly, and f32
 //! says `inconclusive` where its round-off hides the gradient while f64 settles it.
 
@@ -31,6 +32,46 @@ fn forward_from_equals_the_whole_forward_pass() {
             assert_eq!(fast.to_bits(), full.to_bits(), "{name}, tensor {t}");
             let whole = g.branches(&g.forward(&moved, c.x.view()));
             assert_eq!(g.branches_from(&tail).layers[..], whole.layers[from..]);
+        }
+    }
+}
+
+/// One entry moved through the kinds' hints (what the check does for a coordinate) gives the
+/// whole forward pass's loss within the tolerance stated at `Graph::forward_moved`'s test in
+/// crates/engine/tests/graph_dual.rs (64 · (n + 1) · ε · max(|J|, 1), n the largest fan-in),
+/// and the same branches, for every kind, every tensor, at its first, middle and last entry.
+#[test]
+fn forward_moved_equals_the_whole_forward_pass() {
+    use plumb_engine::graph::Moved;
+    let mut kinds = kinds();
+    kinds.push(("pools1d", pools1d));
+    for (name, build) in kinds {
+        let c = case(build(), 4, 22);
+        let g = &c.graph;
+        let base = g.forward(&c.params, c.x.view());
+        let l2 = g.l2_sum(&c.params);
+        let n_max = g.tensors().iter().map(|t| t.spec.fan_in).max().unwrap() as f64;
+        for t in 0..c.params.len() {
+            let n = c.params[t].len();
+            for k in [0, n / 2, n - 1] {
+                let moved = Moved {
+                    tensor: t,
+                    index: k,
+                    delta: 0.01,
+                };
+                let mut q = c.params.clone();
+                q[t].as_slice_mut().unwrap()[k] += 0.01;
+                let tail = g.forward_moved(&c.params, c.x.view(), &base, &moved);
+                let fast = g.loss_moved(&c.params, &tail, c.y.view(), l2, &moved);
+                let full = g.loss(&q, c.x.view(), c.y.view());
+                let tol = 64.0 * (n_max + 1.0) * f64::EPSILON * full.abs().max(1.0);
+                assert!(
+                    (fast - full).abs() <= tol,
+                    "{name}, tensor {t}[{k}]: {fast} vs {full}"
+                );
+                let whole = g.branches(&g.forward(&q, c.x.view()));
+                assert_eq!(g.branches_from(&tail).layers[..], whole.layers[tail.from..]);
+            }
         }
     }
 }

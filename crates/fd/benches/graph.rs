@@ -1,0 +1,340 @@
+//! The layer graph's speed, side by side in one run (figures in benches/README.md):
+//!
+//! - `cnn`: the full check of the demo CNN (examples/pump-cnn.toml) against a naive NumPy loop
+//!   (the hand-written example's forward pass per perturbation, benches/graph_numpy.py), and the
+//!   same check's perturbed losses with and without the kinds' incremental hints;
+//! - `dense`: a 784-128-64-10 dense network checked through the layer graph against the dense
+//!   engine's check (same weights, batch, sample size and directions);
+//! - `lstm`, `attention`: forward + backward (`Graph::gradient`) of examples/pump-lstm.toml and
+//!   pump-attention.toml against the examples' hand-written NumPy passes;
+//! - `sequence`: the full check of the demo sequence model (fixtures/nets/pump-sequence.toml)
+//!   against a naive NumPy loop.
+//!
+//! Each NumPy side gets the same values (JSON on stdin) and returns its loss, which must equal
+//! plumb's: both sides compute the same function. One thread each (benches/graph.sh sets
+//! RAYON_NUM_THREADS=1 and one BLAS thread). Run: `benches/graph.sh [section…]`, or
+//! `cargo bench -p plumb-fd --bench graph -- [section…]`.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::Instant;
+
+use ndarray::ArrayD;
+use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Moved, Shape, Trace};
+use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, check, check_graph};
+use plumb_formats::GraphDescription;
+use serde_json::{Value, json};
+
+fn root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("../..")
+}
+
+fn load() -> String {
+    std::fs::read_to_string("/proc/loadavg").unwrap_or_default()
+}
+
+/// The fastest of `n` runs of `f`, in seconds, and its last result.
+fn best<T>(n: usize, mut f: impl FnMut() -> T) -> (f64, T) {
+    let mut out = None;
+    let mut t = f64::INFINITY;
+    for _ in 0..n {
+        let s = Instant::now();
+        let r = f();
+        t = t.min(s.elapsed().as_secs_f64());
+        out = Some(r);
+    }
+    (t, out.expect("n ≥ 1"))
+}
+
+/// Runs benches/graph_numpy.py on the graph's values.
+fn numpy(model: &str, task: &str, g: &Graph, p: &[ArrayD<f64>], b: &Batch, extra: Value) -> Value {
+    let x_shape: Vec<usize> = std::iter::once(b.x.nrows())
+        .chain(g.input().dims())
+        .collect();
+    let y_shape: Vec<usize> = std::iter::once(b.y.nrows())
+        .chain(g.output().dims())
+        .collect();
+    let tensors: Vec<Value> = g
+        .tensors()
+        .iter()
+        .zip(p)
+        .map(|(t, v)| json!({"name": t.name, "shape": t.spec.shape, "values": v.iter().collect::<Vec<_>>()}))
+        .collect();
+    let mut job = json!({
+        "model": model, "task": task, "tensors": tensors,
+        "x": b.x.iter().collect::<Vec<_>>(), "x_shape": x_shape,
+        "y": b.y.iter().collect::<Vec<_>>(), "y_shape": y_shape,
+    });
+    job.as_object_mut()
+        .unwrap()
+        .extend(extra.as_object().unwrap().clone());
+    let mut child = Command::new("python3")
+        .arg(root().join("benches/graph_numpy.py"))
+        .envs([
+            ("OPENBLAS_NUM_THREADS", "1"),
+            ("OMP_NUM_THREADS", "1"),
+            ("MKL_NUM_THREADS", "1"),
+        ])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .spawn()
+        .expect("python3 with NumPy");
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(job.to_string().as_bytes())
+        .unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(out.status.success(), "graph_numpy.py failed");
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+fn same_loss(what: &str, plumb: f64, numpy: f64) {
+    let rel = (plumb - numpy).abs() / plumb.abs().max(1e-300);
+    assert!(
+        rel <= 1e-12,
+        "{what}: plumb's loss {plumb} but NumPy's {numpy}"
+    );
+}
+
+fn description(path: &str, m: usize) -> (Graph, Vec<ArrayD<f64>>, Batch) {
+    let d = GraphDescription::read(&root().join(path)).unwrap();
+    let p = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
+    let b = Batch::graph_synthetic(&d.graph, m, 1);
+    (d.graph, p, b)
+}
+
+fn full_check(g: &Graph, p: &[ArrayD<f64>], b: &Batch) -> plumb_fd::GraphCheck {
+    let cfg = CheckConfig {
+        sample: Some(Sample::All),
+        ..CheckConfig::new(Method::Central, Precision::F64)
+    };
+    check_graph(g, p, b.x.view(), b.y.view(), &cfg, &|_, _| {}).unwrap()
+}
+
+/// Every single-entry perturbation's loss at ±h, through the hints and by recomputing from the
+/// entry's layer up (what the check did before the hints): seconds for each.
+fn hints_against_layers(g: &Graph, p: &[ArrayD<f64>], b: &Batch) -> (f64, f64) {
+    let (x, y) = (b.x.view(), b.y.view());
+    let trace: Trace<f64> = g.forward(p, x);
+    let l2 = g.l2_sum(p);
+    let entries: Vec<(usize, usize, f64)> = p
+        .iter()
+        .enumerate()
+        .flat_map(|(t, v)| v.iter().enumerate().map(move |(k, &w)| (t, k, w)))
+        .collect();
+    let (hinted, a) = best(3, || {
+        let mut s = 0.0;
+        for &(t, k, w) in &entries {
+            for d in [1.0, -1.0] {
+                let delta = d * Method::Central.default_step(w, f64::EPSILON);
+                let moved = Moved {
+                    tensor: t,
+                    index: k,
+                    delta,
+                };
+                let tail = g.forward_moved(p, x, &trace, &moved);
+                s += g.loss_moved(p, &tail, y, l2, &moved);
+            }
+        }
+        s
+    });
+    let (layers, c) = best(3, || {
+        let mut s = 0.0;
+        for &(t, k, w) in &entries {
+            for d in [1.0, -1.0] {
+                let delta = d * Method::Central.default_step(w, f64::EPSILON);
+                let mut q = p.to_vec();
+                q[t].as_slice_mut().unwrap()[k] += delta;
+                let tail = g.forward_from(&q, x, &trace, g.tensors()[t].layer);
+                s += g.loss_from(&q, &tail, y);
+            }
+        }
+        s
+    });
+    assert!((a - c).abs() <= 1e-9 * a.abs(), "{a} vs {c}");
+    (hinted, layers)
+}
+
+fn cnn() {
+    let (g, p, b) = description("examples/pump-cnn.toml", 32);
+    let (plumb, r) = best(3, || full_check(&g, &p, &b));
+    let np = numpy(
+        "cnn",
+        "check",
+        &g,
+        &p,
+        &b,
+        json!({"repeat": 3, "directions": 4}),
+    );
+    same_loss("cnn", r.loss, np["loss"].as_f64().unwrap());
+    let naive = np["seconds"].as_f64().unwrap();
+    println!(
+        "cnn  examples/pump-cnn.toml, {} parameters, batch 32: naive NumPy full central check {:.1} ms ({} losses), plumb {:.1} ms: {:.1}×",
+        g.parameters(),
+        naive * 1e3,
+        np["evaluations"],
+        plumb * 1e3,
+        naive / plumb
+    );
+    let (hinted, layers) = hints_against_layers(&g, &p, &b);
+    println!(
+        "cnn  every entry at ±h: through the hints {:.2} ms, recomputing from the entry's layer {:.2} ms: {:.2}×",
+        hinted * 1e3,
+        layers * 1e3,
+        layers / hinted
+    );
+}
+
+fn dense() {
+    let net = Network::new(
+        784,
+        &[
+            (128, Activation::Tanh),
+            (64, Activation::Tanh),
+            (10, Activation::Softmax),
+        ],
+        Loss::CrossEntropy,
+        1e-4,
+    )
+    .unwrap();
+    let w = Init::GlorotUniform.weights(&net, &mut Rng::new(1));
+    let batch = Batch::synthetic(&net, 32, 1);
+    let mut builder = GraphBuilder::new(
+        Shape::Flat(784),
+        LossConfig {
+            l2: 1e-4,
+            ..LossConfig::cross_entropy()
+        },
+    );
+    for (units, act) in [
+        (128, Activation::Tanh),
+        (64, Activation::Tanh),
+        (10, Activation::Softmax),
+    ] {
+        builder.push(None, act, |s| Dense::new(units, s)).unwrap();
+    }
+    let g = builder.finish().unwrap();
+    let p: Vec<ArrayD<f64>> = w
+        .layers()
+        .iter()
+        .flat_map(|a| {
+            let (wt, bias) = Dense::split(a);
+            [wt.into_dyn(), bias.into_dyn()]
+        })
+        .collect();
+    let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
+    cfg.sample = Some(Sample::Total(3000));
+    cfg.directions = Some(4);
+    let (t_dense, rd) = best(3, || check(&net, &w, &batch, &cfg, &|_, _| {}).unwrap());
+    let (t_graph, rg) = best(3, || {
+        check_graph(&g, &p, batch.x.view(), batch.y.view(), &cfg, &|_, _| {}).unwrap()
+    });
+    same_loss("dense", rd.loss, rg.loss);
+    println!(
+        "dense 784-128-64-10 tanh, batch 32, 3000 coordinates + directions: dense engine {:.1} ms, layer graph {:.1} ms: the graph takes {:.2}× the dense engine's time",
+        t_dense * 1e3,
+        t_graph * 1e3,
+        t_graph / t_dense
+    );
+}
+
+fn pass(model: &str, path: &str) {
+    let (g, p, b) = description(path, 32);
+    let inner = 20;
+    let (plumb, grad) = best(5, || {
+        let mut last = None;
+        for _ in 0..inner {
+            last = Some(g.gradient(&p, b.x.view(), b.y.view(), None));
+        }
+        last.unwrap()
+    });
+    let np = numpy(
+        model,
+        "gradient",
+        &g,
+        &p,
+        &b,
+        json!({"repeat": 5, "inner": inner}),
+    );
+    same_loss(model, grad.loss, np["loss"].as_f64().unwrap());
+    // Against the largest entry of any tensor: an attention key bias's gradient is zero up to
+    // rounding (docs/engine.md), so its own largest is no scale.
+    let scale = grad
+        .params
+        .iter()
+        .flat_map(|t| t.iter())
+        .fold(1e-300f64, |m, v| m.max(v.abs()));
+    for (t, gr) in g.tensors().iter().zip(&grad.params) {
+        let theirs = np["gradient"][&t.name].as_array().unwrap();
+        for (a, b) in gr.iter().zip(theirs) {
+            let b = b.as_f64().unwrap();
+            assert!(
+                (a - b).abs() <= 1e-10 * scale,
+                "{model} {}: {a} vs {b}",
+                t.name
+            );
+        }
+    }
+    let naive = np["seconds"].as_f64().unwrap() / inner as f64;
+    let ours = plumb / inner as f64;
+    println!(
+        "{model} {path}, {} parameters, batch 32: forward + backward, NumPy {:.3} ms, plumb {:.3} ms: {:.2}×",
+        g.parameters(),
+        naive * 1e3,
+        ours * 1e3,
+        naive / ours
+    );
+}
+
+fn sequence() {
+    let (g, p, b) = description("fixtures/nets/pump-sequence.toml", 16);
+    let (plumb, r) = best(3, || full_check(&g, &p, &b));
+    let np = numpy(
+        "sequence",
+        "check",
+        &g,
+        &p,
+        &b,
+        json!({"repeat": 1, "directions": 4, "limit": 400}),
+    );
+    same_loss("sequence", r.loss, np["loss"].as_f64().unwrap());
+    let naive = np["seconds"].as_f64().unwrap();
+    println!(
+        "sequence fixtures/nets/pump-sequence.toml, {} parameters, batch 16: naive NumPy full central check {:.0} ms ({} losses, the time per loss measured on the first {}), plumb {:.0} ms: {:.1}×",
+        g.parameters(),
+        naive * 1e3,
+        np["evaluations"],
+        np["measured"],
+        plumb * 1e3,
+        naive / plumb
+    );
+}
+
+fn main() {
+    let asked: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| !a.starts_with("--"))
+        .collect();
+    let run = |s: &str| asked.is_empty() || asked.iter().any(|a| a == s);
+    eprintln!("load average before: {}", load().trim());
+    if run("cnn") {
+        cnn();
+    }
+    if run("dense") {
+        dense();
+    }
+    if run("lstm") {
+        pass("lstm", "examples/pump-lstm.toml");
+    }
+    if run("attention") {
+        pass("attention", "examples/pump-attention.toml");
+    }
+    if run("sequence") {
+        sequence();
+    }
+    eprintln!("load average after: {}", load().trim());
+}
