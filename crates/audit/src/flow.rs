@@ -2,10 +2,10 @@
 //! its gradient is, and the largest singular value of its weight matrix (by power iteration), so
 //! that a gradient that shrinks or grows by orders of magnitude across the layers is seen.
 
-use ndarray::{Array1, ArrayView2, s};
-use plumb_engine::{Network, Rng, Trace, Weights};
+use ndarray::{ArrayView2, s};
+use plumb_engine::{Network, Rng, Scalar, Trace, Weights};
 
-use crate::robust::{largest, moments, norm};
+use crate::robust::{largest, moments_of, norm};
 use serde::Serialize;
 
 #[derive(Clone, Debug, Serialize)]
@@ -20,51 +20,70 @@ pub struct LayerFlow {
     pub sigma_max: f64,
 }
 
-pub fn layer_flow(
+/// Per layer: the spread of its activations, its gradient's norm and RMS, and its weight
+/// matrix's largest singular value, from a forward pass in f64 or f32 (the figures themselves are
+/// taken in f64 on the exactly widened values).
+pub fn layer_flow<S: Scalar>(
     net: &Network,
-    weights: &Weights<f64>,
-    trace: &Trace<f64>,
-    y: ArrayView2<f64>,
+    weights: &Weights<S>,
+    trace: &Trace<S>,
+    y: ArrayView2<S>,
     seed: u64,
 ) -> Vec<LayerFlow> {
     let grad = net.backward(weights, trace, y);
     let mut rng = Rng::new(seed ^ 0x5_1697);
     (0..net.layers().len())
         .map(|l| {
-            let a: Vec<f64> = trace.a[l + 1].iter().copied().collect();
-            let g: Vec<f64> = grad.layer(l).iter().copied().collect();
+            let a = &trace.a[l + 1];
+            let g: Vec<f64> = grad.layer(l).iter().map(|v| v.re()).collect();
             let norm = norm(&g);
+            let w = weights.layer(l).slice(s![.., 1..]).mapv(|v| v.re());
             LayerFlow {
                 layer: l + 1,
-                activation_std: moments(&a).std,
+                activation_std: moments_of(|| a.iter().map(|v| v.re())).std,
                 gradient_norm: norm,
                 gradient_rms: norm / (g.len().max(1) as f64).sqrt(),
-                sigma_max: sigma_max(weights.layer(l).slice(s![.., 1..]), &mut rng),
+                sigma_max: sigma_max(w.view(), &mut rng),
             }
         })
         .collect()
 }
 
+/// The relative change of the estimate between two iterations at which power iteration stops.
+/// The figure is shown to four significant digits; the estimate ‖Wv‖ only grows towards σ₁, by a
+/// step that shrinks geometrically, so stopping at a step of 10⁻⁸ of it leaves it short of its
+/// limit by 10⁻⁸ divided by the ratio's distance from 1 (below 10⁻⁵ unless the two largest
+/// singular values are within 0.1% of each other).
+const POWER_TOLERANCE: f64 = 1e-8;
+
 /// The largest singular value of W by power iteration on WᵀW from a seeded start, on W divided by
-/// its largest |entry| so that no product overflows.
+/// its largest |entry| so that no product overflows; it stops when an iteration changes the
+/// estimate by less than [`POWER_TOLERANCE`] of it, or after 500.
 pub fn sigma_max(w: ArrayView2<f64>, rng: &mut Rng) -> f64 {
     let scale = largest(w.iter().copied());
     if scale == 0.0 {
         return 0.0;
     }
     let w = w.mapv(|x| x / scale);
-    let mut v = Array1::from_shape_fn(w.ncols(), |_| rng.normal());
+    let mut v: Vec<f64> = (0..w.ncols()).map(|_| rng.normal()).collect();
+    let mut u = vec![0.0; w.nrows()];
     let mut sigma = 0.0;
     for _ in 0..500 {
         let nv = v.iter().map(|x| x * x).sum::<f64>().sqrt();
         if nv == 0.0 {
             return 0.0;
         }
-        v /= nv;
-        let u = w.dot(&v);
+        v.iter_mut().for_each(|x| *x /= nv);
+        // u = W v row by row, then v = Wᵀ u as a sum of rows: both read W in its own order.
+        for (ui, row) in u.iter_mut().zip(w.rows()) {
+            *ui = row.iter().zip(&v).map(|(a, b)| a * b).sum();
+        }
         let next = u.iter().map(|x| x * x).sum::<f64>().sqrt();
-        v = w.t().dot(&u);
-        if (next - sigma).abs() <= 1e-12 * next {
+        v.iter_mut().for_each(|x| *x = 0.0);
+        for (&ui, row) in u.iter().zip(w.rows()) {
+            v.iter_mut().zip(row.iter()).for_each(|(x, a)| *x += ui * a);
+        }
+        if (next - sigma).abs() <= POWER_TOLERANCE * next {
             return next * scale;
         }
         sigma = next;

@@ -6,7 +6,7 @@
 //! units, which sees a layer saturated on most samples in every unit but on 99% in none.
 
 use ndarray::ArrayView2;
-use plumb_engine::{Activation, Network, Trace};
+use plumb_engine::{Activation, Network, Scalar, Trace};
 use serde::Serialize;
 
 /// Whether a (pre-activation, activation) pair shows the measured condition.
@@ -40,10 +40,11 @@ pub struct LayerHealth {
     pub range: (f64, f64),
 }
 
-/// The health of every hidden layer (the output layer's confidence is not a defect).
-pub fn layer_health(
+/// The health of every hidden layer (the output layer's confidence is not a defect), from a
+/// forward pass in f64 or f32.
+pub fn layer_health<S: Scalar>(
     net: &Network,
-    trace: &Trace<f64>,
+    trace: &Trace<S>,
     saturation: f64,
     saturated_fraction: f64,
 ) -> Vec<LayerHealth> {
@@ -88,20 +89,20 @@ impl Units {
         }
     }
 
-    /// The flat indices within a sample of unit `u`'s values.
-    fn indices(&self, u: usize) -> impl Iterator<Item = usize> + '_ {
-        (0..self.outer)
-            .flat_map(move |o| (0..self.inner).map(move |j| (o * self.count + u) * self.inner + j))
+    /// The unit of flat index `k` within a sample.
+    fn unit_of(&self, k: usize) -> usize {
+        (k / self.inner) % self.count
     }
 }
 
 /// One layer's health from its values before (`z`) and after (`a`) its activation: per unit, the
-/// share of its (sample, position) values on which the measure holds.
-pub fn unit_health(
+/// share of its (sample, position) values on which the measure holds. The values are read in f64
+/// whatever they were computed in (widening is exact), one sample row at a time.
+pub fn unit_health<S: Scalar>(
     layer: usize,
     act: Activation,
-    z: ArrayView2<f64>,
-    a: ArrayView2<f64>,
+    z: ArrayView2<S>,
+    a: ArrayView2<S>,
     units: Units,
     saturation: f64,
     saturated_fraction: f64,
@@ -122,17 +123,18 @@ pub fn unit_health(
         ),
         _ => (None, Box::new(|_, _| false)),
     };
-    let fractions: Vec<f64> = (0..units.count)
-        .map(|u| {
-            let count = z
-                .rows()
-                .into_iter()
-                .zip(a.rows())
-                .map(|(zr, ar)| units.indices(u).filter(|&k| test(zr[k], ar[k])).count())
-                .sum::<usize>();
-            count as f64 / per_unit
-        })
-        .collect();
+    let mut counts = vec![0usize; units.count];
+    if measure.is_some() {
+        for (zr, ar) in z.rows().into_iter().zip(a.rows()) {
+            let size = units.outer * units.count * units.inner;
+            for (k, (zv, av)) in zr.iter().zip(ar.iter()).take(size).enumerate() {
+                if test(zv.re(), av.re()) {
+                    counts[units.unit_of(k)] += 1;
+                }
+            }
+        }
+    }
+    let fractions: Vec<f64> = counts.iter().map(|&c| c as f64 / per_unit).collect();
     let flagged = fractions
         .iter()
         .enumerate()
@@ -147,8 +149,8 @@ pub fn unit_health(
         Activation::Tanh => (-1.0, 1.0),
         Activation::Sigmoid => (0.0, 1.0),
         _ => {
-            let lo = a.iter().copied().fold(f64::INFINITY, f64::min);
-            let hi = a.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+            let lo = a.iter().map(|v| v.re()).fold(f64::INFINITY, f64::min);
+            let hi = a.iter().map(|v| v.re()).fold(f64::NEG_INFINITY, f64::max);
             if lo.is_finite() && hi > lo {
                 (lo, hi)
             } else {
@@ -157,7 +159,7 @@ pub fn unit_health(
         }
     };
     let mut histogram = vec![0; BINS];
-    for &v in a.iter() {
+    for v in a.iter().map(|v| v.re()) {
         let t = ((v - range.0) / (range.1 - range.0) * BINS as f64).floor();
         if t.is_finite() {
             histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;

@@ -49,7 +49,7 @@ pub use init::{
     tensor_init,
 };
 pub use release::{Audit, AuditShapes, Thresholds, audit, verdict_at};
-pub use robust::{Moments, largest, moments, norm};
+pub use robust::{Moments, largest, moments, moments_of, norm};
 pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
 pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
 pub use units::{unit_ranges, units_phrase};

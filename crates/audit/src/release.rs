@@ -1,7 +1,8 @@
 //! The release audit: every check in turn, as findings.
 
-use plumb_engine::{Batch, Init};
-use plumb_formats::{Description, Role, TensorFile, assemble, bind, expected_tensors};
+use ndarray::ArrayView2;
+use plumb_engine::{Batch, Init, Network, Scalar, Trace, Weights};
+use plumb_formats::{DType, Description, Role, TensorFile, assemble, bind, expected_tensors};
 use plumb_report::{Finding, Severity, Verdict, tally};
 use serde::Serialize;
 
@@ -202,8 +203,31 @@ pub fn audit(
         }
     }
     if let (Some(w), true) = (&weights, finite) {
-        let trace = net.forward(w, batch.x.view());
-        health = layer_health(net, &trace, t.saturation, t.saturated_fraction);
+        // A file stored in f32 (or narrower) runs its probe pass in f32, as it would be used,
+        // at half the cost; should that pass overflow where f64 might not, it runs again in f64.
+        let single = file
+            .tensors
+            .iter()
+            .all(|t| matches!(t.dtype, DType::F32 | DType::F16 | DType::BF16));
+        let (w32, x32, y32) = match single {
+            true => (
+                Some(w.cast::<f32>()),
+                batch.x.mapv(|v| v as f32),
+                batch.y.mapv(|v| v as f32),
+            ),
+            false => (None, Default::default(), Default::default()),
+        };
+        let trace32 = w32
+            .as_ref()
+            .map(|w32| net.forward(w32, x32.view()))
+            .filter(|trace| trace.z.iter().all(|z| z.iter().all(|v| v.is_finite())));
+        (health, flow) = match (&w32, &trace32) {
+            (Some(w32), Some(trace)) => probe_measures(net, w32, trace, y32.view(), t, seed),
+            _ => {
+                let trace = net.forward(w, batch.x.view());
+                probe_measures(net, w, &trace, batch.y.view(), t, seed)
+            }
+        };
         for h in &health {
             health_findings(h, Some(&names[h.layer - 1]), t, batch.len(), &mut findings);
         }
@@ -227,7 +251,6 @@ pub fn audit(
         for (li, spec) in init.iter().zip(net.layers()) {
             init_findings(li, spec.activation.name(), t, &mut findings);
         }
-        flow = layer_flow(net, w, &trace, batch.y.view(), seed);
         flow_findings(&flow, t, &mut findings);
     }
     Audit {
@@ -241,6 +264,19 @@ pub fn audit(
         skipped,
         findings,
     }
+}
+
+/// Unit health and flow from a forward pass over the probe batch in the scalar `S`.
+fn probe_measures<S: Scalar>(
+    net: &Network,
+    w: &Weights<S>,
+    trace: &Trace<S>,
+    y: ArrayView2<S>,
+    t: &Thresholds,
+    seed: u64,
+) -> (Vec<LayerHealth>, Vec<LayerFlow>) {
+    let health = layer_health(net, trace, t.saturation, t.saturated_fraction);
+    (health, layer_flow(net, w, trace, y, seed))
 }
 
 /// A gradient whose RMS changes by `flow_orders` orders of magnitude from the output layer to the

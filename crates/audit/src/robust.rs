@@ -34,17 +34,23 @@ pub struct Moments {
 }
 
 pub fn moments(values: &[f64]) -> Moments {
-    let scale = largest(values.iter().copied());
-    let x: Vec<f64> = values
-        .iter()
-        .filter(|v| v.is_finite())
-        .map(|v| if scale > 0.0 { v / scale } else { 0.0 })
-        .collect();
-    let n = x.len().max(1) as f64;
-    let mean = x.iter().sum::<f64>() / n;
-    let var = x.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n;
+    moments_of(|| values.iter().copied())
+}
+
+/// [`moments`] of values read afresh from `values()` on each of its passes, in the same order and
+/// with the same sums, so that a large tensor (or an f32 one, widened on the fly) is not copied.
+pub fn moments_of<I: Iterator<Item = f64>>(values: impl Fn() -> I) -> Moments {
+    let scale = largest(values());
+    let x = || {
+        values()
+            .filter(|v| v.is_finite())
+            .map(move |v| if scale > 0.0 { v / scale } else { 0.0 })
+    };
+    let n = x().count().max(1) as f64;
+    let mean = x().sum::<f64>() / n;
+    let var = x().map(|v| (v - mean).powi(2)).sum::<f64>() / n;
     let kurtosis = if var > 0.0 {
-        x.iter().map(|v| (v - mean).powi(4)).sum::<f64>() / n / (var * var)
+        x().map(|v| (v - mean).powi(4)).sum::<f64>() / n / (var * var)
     } else {
         3.0
     };
