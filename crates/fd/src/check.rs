@@ -416,38 +416,62 @@ struct Direction {
     rng: Rng,
 }
 
+/// A direction's unit vector over the layers it moves: `layers[i]` is layer `first + i`, zero
+/// outside the span. A direction within one layer holds that layer only.
+struct Drawn {
+    first: usize,
+    layers: Vec<Array2<f64>>,
+}
+
+impl Drawn {
+    /// Σ f(g, v) over the entries of the span (the layers outside it add nothing).
+    fn sum_with(&self, g: &Weights<f64>, f: impl Fn(f64, f64) -> f64) -> f64 {
+        self.layers
+            .iter()
+            .enumerate()
+            .map(|(i, v)| {
+                g.layer(self.first + i)
+                    .iter()
+                    .zip(v.iter())
+                    .map(|(&x, &y)| f(x, y))
+                    .sum::<f64>()
+            })
+            .sum()
+    }
+}
+
 impl Direction {
     /// The unit vector, drawn as it always was: one normal per entry of the span, in layer and
-    /// row-major order, zero elsewhere.
-    fn vector(&self, net: &Network) -> Weights<f64> {
+    /// row-major order, zero elsewhere; held only over the layers it moves.
+    fn vector(&self, net: &Network) -> Drawn {
         let mut rng = self.rng.clone();
         let scope = self.scope;
-        let mut v = Weights::new(
-            net.layers()
-                .iter()
-                .enumerate()
-                .map(|(l, spec)| {
-                    Array2::from_shape_fn(spec.shape(), |(_, c)| {
-                        if spans(scope, l, c) {
-                            rng.normal()
-                        } else {
-                            0.0
-                        }
-                    })
+        let span = match scope {
+            Scope::Global => 0..net.layers().len(),
+            Scope::Part { layer, .. } => layer..layer + 1,
+        };
+        let first = span.start;
+        let mut layers: Vec<Array2<f64>> = span
+            .map(|l| {
+                Array2::from_shape_fn(net.layers()[l].shape(), |(_, c)| {
+                    if spans(scope, l, c) {
+                        rng.normal()
+                    } else {
+                        0.0
+                    }
                 })
-                .collect(),
-        );
-        let norm = v
-            .layers()
+            })
+            .collect();
+        let norm = layers
             .iter()
             .flat_map(|l| l.iter())
             .map(|x| x * x)
             .sum::<f64>()
             .sqrt();
-        for l in v.layers_mut() {
+        for l in &mut layers {
             l.mapv_inplace(|x| x / norm);
         }
-        v
+        Drawn { first, layers }
     }
 }
 
@@ -647,9 +671,9 @@ impl Run<'_> {
             )
         });
         let direction_checks = self.each_direction(directions, |scope, v| {
-            let vs: Weights<S> = v.cast();
+            let vs: Vec<Array2<S>> = v.layers.iter().map(|m| m.mapv(S::from_f64)).collect();
             let f = |t: f64| {
-                let (j, crossed) = base.along(&vs, S::from_f64(t));
+                let (j, crossed) = base.along_from(v.first, &vs, S::from_f64(t));
                 (j.re(), crossed)
             };
             estimate(
@@ -683,9 +707,9 @@ impl Run<'_> {
             (complex_estimate(&g, h, eps), false)
         });
         let direction_checks = self.each_direction(directions, |scope, v| {
-            let vs: Weights<C> = v.cast();
+            let vs: Vec<Array2<C>> = v.layers.iter().map(|m| m.mapv(C::from_f64)).collect();
             let g = |h: f64| {
-                let (j, crossed) = base.along(&vs, C::imaginary(h));
+                let (j, crossed) = base.along_from(v.first, &vs, C::imaginary(h));
                 (j.im(), crossed)
             };
             let h = fixed
@@ -731,16 +755,16 @@ impl Run<'_> {
     fn each_direction(
         &self,
         directions: &[Direction],
-        estimate: impl Fn(Scope, &Weights<f64>) -> Estimate + Sync,
+        estimate: impl Fn(Scope, &Drawn) -> Estimate + Sync,
     ) -> Vec<DirectionCheck> {
         directions
             .par_iter()
             .map(|d| {
                 let (scope, v) = (&d.scope, &d.vector(self.net));
                 let est = estimate(*scope, v);
-                let a = dot(self.analytic, v);
+                let a = v.sum_with(self.analytic, |x, y| x * y);
                 let floor = FLOOR * self.span_norm(*scope);
-                let gross = dot_abs(&self.gross, v);
+                let gross = v.sum_with(&self.gross, |x, y| (x * y).abs());
                 let (abs_error, rel_error, bound, status) =
                     self.judge
                         .judge(a, est.value, floor, gross, est.error, est.crossed);
@@ -770,38 +794,22 @@ impl Run<'_> {
     }
 }
 
+/// f folded over the entries of `w` a scope spans, in layer and row-major order (only the layers
+/// it reaches are visited: a part's fold costs its layer, not the network).
 fn fold_scope(w: &Weights<f64>, scope: Scope, f: impl Fn(f64, f64) -> f64) -> f64 {
+    let span = match scope {
+        Scope::Global => 0..w.layers().len(),
+        Scope::Part { layer, .. } => layer..layer + 1,
+    };
     let mut acc = 0.0f64;
-    for (l, m) in w.layers().iter().enumerate() {
-        for ((_, c), &v) in m.indexed_iter() {
+    for l in span {
+        for ((_, c), &v) in w.layer(l).indexed_iter() {
             if spans(scope, l, c) {
                 acc = f(acc, v);
             }
         }
     }
     acc
-}
-
-/// Σ |g|·|v|: the pieces of a directional derivative.
-fn dot_abs(g: &Weights<f64>, v: &Weights<f64>) -> f64 {
-    g.layers()
-        .iter()
-        .zip(v.layers())
-        .map(|(a, b)| {
-            a.iter()
-                .zip(b.iter())
-                .map(|(x, y)| (x * y).abs())
-                .sum::<f64>()
-        })
-        .sum()
-}
-
-fn dot(g: &Weights<f64>, v: &Weights<f64>) -> f64 {
-    g.layers()
-        .iter()
-        .zip(v.layers())
-        .map(|(a, b)| a.iter().zip(b.iter()).map(|(x, y)| x * y).sum::<f64>())
-        .sum()
 }
 
 #[cfg(test)]
@@ -853,7 +861,17 @@ mod tests {
             for l in eager.layers_mut() {
                 l.mapv_inplace(|x| x / norm.sqrt());
             }
-            assert_eq!(d.vector(&net), eager, "{:?}", d.scope);
+            let v = d.vector(&net);
+            for (l, e) in eager.layers().iter().enumerate() {
+                match l.checked_sub(v.first).and_then(|i| v.layers.get(i)) {
+                    Some(held) => assert_eq!(held, e, "{:?}", d.scope),
+                    // Outside what the direction holds, the eager vector is zero.
+                    None => assert!(e.iter().all(|&x| x == 0.0), "{:?}", d.scope),
+                }
+            }
+            // A direction within one part holds that layer alone.
+            let held = if d.scope == Scope::Global { 3 } else { 1 };
+            assert_eq!(v.layers.len(), held, "{:?}", d.scope);
         }
         // What is kept per direction does not grow with the network.
         assert!(std::mem::size_of::<Direction>() <= 64);

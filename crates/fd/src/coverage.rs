@@ -194,11 +194,12 @@ pub fn select_tensors(
         Sample::Total(n) => spread(sizes, n),
         Sample::PerLayer(n) => {
             let mut q = vec![0; sizes.len()];
-            let mut seen: Vec<usize> = layers.to_vec();
-            seen.dedup();
-            for layer in seen {
-                let members: Vec<usize> =
-                    (0..sizes.len()).filter(|&t| layers[t] == layer).collect();
+            // Each layer's tensors, found in one pass (not a scan of every tensor per layer).
+            let mut of_layer: std::collections::BTreeMap<usize, Vec<usize>> = Default::default();
+            for (t, &layer) in layers.iter().enumerate() {
+                of_layer.entry(layer).or_default().push(t);
+            }
+            for members in of_layer.into_values() {
                 let own: Vec<usize> = members.iter().map(|&t| sizes[t]).collect();
                 let n = n.min(own.iter().sum());
                 for (&t, share) in members.iter().zip(spread(&own, n)) {

@@ -21,6 +21,9 @@ pub struct Base<'a, S> {
     trace: Trace<S>,
     /// Σ w² over the weights that decay, for the L2 term.
     l2_sum: S,
+    /// The same sum, as it stands before each layer: a direction from layer l on adds its terms
+    /// to `l2_before[l]` in the order `Network::l2_sum` does, so its loss is the whole pass's.
+    l2_before: Vec<S>,
     loss: S,
 }
 
@@ -34,6 +37,17 @@ impl<'a, S: Scalar> Base<'a, S> {
     ) -> Self {
         let trace = net.forward(weights, x);
         let l2_sum = net.l2_sum(weights);
+        let l2_before = if net.l2() == 0.0 {
+            Vec::new()
+        } else {
+            let mut sum = S::zero();
+            let mut before = Vec::with_capacity(weights.layers().len());
+            for l in 0..weights.layers().len() {
+                before.push(sum);
+                sum = l2_add(net, sum, weights.layer(l).view());
+            }
+            before
+        };
         let m = x.nrows();
         let loss = net.data_loss(&trace, y.view()) + net.l2_term(l2_sum, m);
         Base {
@@ -42,6 +56,7 @@ impl<'a, S: Scalar> Base<'a, S> {
             y,
             trace,
             l2_sum,
+            l2_before,
             loss,
         }
     }
@@ -111,29 +126,48 @@ impl<'a, S: Scalar> Base<'a, S> {
         (data + net.l2_term(l2_sum, m), crossed)
     }
 
-    /// J(θ + δ·v) for a whole direction v (one matrix per layer), by a full forward pass, with the
-    /// kink test over every layer.
+    /// J(θ + δ·v) for a whole direction v (one matrix per layer), and whether a kinked unit
+    /// changed side.
     pub fn along(&self, direction: &Weights<S>, delta: S) -> (S, bool) {
-        let moved = Weights::new(
-            self.weights
-                .layers()
-                .iter()
-                .zip(direction.layers())
-                .map(|(w, v)| {
-                    let mut out = w.clone();
-                    out.zip_mut_with(v, |o, &d| *o += delta * d);
-                    out
-                })
-                .collect(),
-        );
-        let trace = self.net.forward(&moved, self.trace.a[0].view());
+        self.along_from(0, direction.layers(), delta)
+    }
+
+    /// J(θ + δ·v) for a direction v that moves layers `first`, `first + 1`, … (`direction[i]` is
+    /// layer `first + i`, zero outside the span), and whether a kinked unit changed side. The
+    /// layers below `first` are the base pass's; only one moved layer is held at a time, so a
+    /// direction costs a layer's memory, not a weight set's. Bit for bit the loss of a whole
+    /// forward pass at the moved weights.
+    pub fn along_from(&self, first: usize, direction: &[Array2<S>], delta: S) -> (S, bool) {
+        let net = self.net;
+        let layers = net.layers();
+        let last = layers.len() - 1;
+        let t = &self.trace;
+        let moved = |l: usize| {
+            let v = direction.get(l.checked_sub(first)?)?;
+            let mut w = self.weights.layer(l).clone();
+            w.zip_mut_with(v, |o, &d| *o += delta * d);
+            Some(w)
+        };
         let mut crossed = false;
-        for (l, (z0, z1)) in self.trace.z.iter().zip(&trace.z).enumerate() {
-            crossed |= crosses(self.net.layers()[l].activation, z0.iter(), z1.iter());
+        let mut input: Option<Array2<S>> = None;
+        let mut l2_sum = self.l2_before.get(first).copied().unwrap_or(S::zero());
+        let mut data = S::zero();
+        for l in first..=last {
+            let theta = moved(l);
+            let theta = theta.as_ref().unwrap_or(self.weights.layer(l));
+            if !self.l2_before.is_empty() {
+                l2_sum = l2_add(net, l2_sum, theta.view());
+            }
+            let a = input.as_ref().unwrap_or(&t.a[first]);
+            let z = Network::affine(theta.view(), a.view());
+            crossed |= crosses(layers[l].activation, t.z[l].iter(), z.iter());
+            if l == last {
+                data = self.output_loss(&z);
+            } else {
+                input = Some(layers[l].activation.apply(z.view()));
+            }
         }
-        let j =
-            self.net.data_loss(&trace, self.y.view()) + self.net.l2_penalty(&moved, self.samples());
-        (j, crossed)
+        (data + net.l2_term(l2_sum, self.samples()), crossed)
     }
 
     fn output_loss(&self, z: &Array2<S>) -> S {
@@ -168,6 +202,15 @@ pub fn full_loss<S: Scalar>(
     let mut moved = weights.clone();
     *moved.get_mut(c) += delta;
     net.loss_value(&moved, x, y)
+}
+
+/// `sum` plus the squares of the weights of one layer that decay, in `Network::l2_sum`'s order.
+fn l2_add<S: Scalar>(net: &Network, mut sum: S, theta: ArrayView2<S>) -> S {
+    let first = usize::from(!net.conventions().l2_on_bias);
+    for &v in theta.slice(ndarray::s![.., first..]).iter() {
+        sum += v * v;
+    }
+    sum
 }
 
 /// The side of a kink a pre-activation is on, as the activation's own branch decides it.

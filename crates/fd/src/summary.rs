@@ -1,7 +1,7 @@
 //! Per-tensor figures of a check: how much was covered, how far apart the two gradients are, and
 //! the verdict.
 
-use crate::check::{CheckResult, CoordCheck, Scope, Settlement, Status};
+use crate::check::{CheckResult, CoordCheck, DirectionCheck, Scope, Settlement, Status};
 use crate::order::worst_first;
 
 /// A part of the network a summary covers: a layer's bias weights, its other weights, or both
@@ -72,14 +72,46 @@ impl PartSummary {
     }
 }
 
+/// The indices into `result.coords` of each part's coordinates, in order. One pass over the
+/// coordinates, each tried against its own layer's parts only: a scan of every coordinate per
+/// part would be quadratic in the layers of a deep network.
+pub fn coords_by_part(result: &CheckResult, parts: &[Part]) -> Vec<Vec<usize>> {
+    let mut of_layer: Vec<Vec<usize>> = Vec::new();
+    for (p, part) in parts.iter().enumerate() {
+        if part.layer >= of_layer.len() {
+            of_layer.resize(part.layer + 1, Vec::new());
+        }
+        of_layer[part.layer].push(p);
+    }
+    let mut out = vec![Vec::new(); parts.len()];
+    for (i, c) in result.coords.iter().enumerate() {
+        for &p in of_layer.get(c.coord.layer).into_iter().flatten() {
+            if parts[p].contains(c) {
+                out[p].push(i);
+            }
+        }
+    }
+    out
+}
+
 /// Summarises a check per part; `parameters` gives each part's size.
 pub fn summarise(result: &CheckResult, parts: &[(Part, usize)]) -> Vec<PartSummary> {
+    let just: Vec<Part> = parts.iter().map(|&(p, _)| p).collect();
+    let by_part = coords_by_part(result, &just);
+    // The directions within one layer, by layer (those over every tensor belong to no part).
+    let mut dirs_of_layer: Vec<Vec<&DirectionCheck>> = Vec::new();
+    for d in &result.directions {
+        if let Scope::Part { layer, .. } = d.scope {
+            if layer >= dirs_of_layer.len() {
+                dirs_of_layer.resize(layer + 1, Vec::new());
+            }
+            dirs_of_layer[layer].push(d);
+        }
+    }
     parts
         .iter()
-        .map(|&(part, parameters)| {
-            let idx: Vec<usize> = (0..result.coords.len())
-                .filter(|&i| part.contains(&result.coords[i]))
-                .collect();
+        .zip(by_part)
+        .map(|(&(part, parameters), idx)| {
             let coords: Vec<&CoordCheck> = idx.iter().map(|&i| &result.coords[i]).collect();
             let rel: Vec<f64> = coords.iter().map(|c| c.rel_error).collect();
             let bounds: Vec<f64> = coords
@@ -95,9 +127,11 @@ pub fn summarise(result: &CheckResult, parts: &[(Part, usize)]) -> Vec<PartSumma
                 worst_first((a.status, a.rel_error), (b.status, b.rel_error))
             });
             worst.truncate(3);
-            let dirs: Vec<_> = result
-                .directions
-                .iter()
+            let dirs: Vec<&DirectionCheck> = dirs_of_layer
+                .get(part.layer)
+                .into_iter()
+                .flatten()
+                .copied()
                 .filter(|d| part.covers(d.scope))
                 .collect();
             PartSummary {

@@ -17,4 +17,4 @@ mod error;
 mod program;
 
 pub use error::ProbeError;
-pub use program::{Change, Gradient, Hello, PROTOCOL, Program, TensorSpec};
+pub use program::{Change, Gradient, Hello, PROTOCOL, Program, TensorSpec, fuzz_replies};

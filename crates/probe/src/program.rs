@@ -6,7 +6,7 @@
 
 use std::collections::VecDeque;
 use std::io::{BufRead, BufReader, Read, Write};
-use std::process::{Child, ChildStdout, Command, Stdio};
+use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{self, Receiver, RecvTimeoutError, Sender};
 use std::sync::{Arc, Mutex};
@@ -78,6 +78,7 @@ struct Message {
     payload: Vec<f64>,
 }
 
+#[derive(Debug)]
 enum ReadError {
     Eof,
     /// The program stopped in the middle of a line.
@@ -169,7 +170,7 @@ impl Program {
         });
         let limit = Arc::new(AtomicU64::new(0));
         let reader_limit = Arc::clone(&limit);
-        thread::spawn(move || read_replies(stdout, rtx, reader_limit));
+        thread::spawn(move || read_replies(stdout, &reader_limit, |m| rtx.send(m).is_ok()));
         let tail = Arc::new(Mutex::new(VecDeque::new()));
         let keep = Arc::clone(&tail);
         thread::spawn(move || {
@@ -226,73 +227,9 @@ impl Program {
             header["tensors"] = Value::Array(e.iter().map(TensorSpec::json).collect());
         }
         let reply = self.request("hello", &header, &[], "hello")?;
-        let h = &reply.header;
-        match h.get("protocol").and_then(Value::as_u64) {
-            Some(p) if p == PROTOCOL as u64 => {}
-            other => {
-                return Err(ProbeError::Version {
-                    theirs: other.map_or_else(|| "(none given)".to_string(), |p| p.to_string()),
-                    ours: PROTOCOL,
-                });
-            }
-        }
-        let dtype = h
-            .get("dtype")
-            .and_then(Value::as_str)
-            .unwrap_or("")
-            .to_string();
-        if dtype != "f64" && dtype != "f32" {
-            return Err(malformed(
-                "hello",
-                format!(
-                    "`dtype` must be \"f64\" or \"f32\", not {}",
-                    h.get("dtype").unwrap_or(&Value::Null)
-                ),
-            ));
-        }
-        let tensors = specs(h, "hello")?;
-        if let Some(e) = expected
-            && tensors != e
-        {
-            return Err(ProbeError::Mismatch(format!(
-                "the program declares the tensors {}, but the description expects {}; name and shape them as the description's layout does, or use --blackbox for a model the description cannot express",
-                list(&tensors),
-                list(e)
-            )));
-        }
-        self.declared = tensors.iter().map(|t| t.len() as u64).sum();
-        let sample = |key: &str| -> Result<Option<Vec<usize>>, ProbeError> {
-            let Some(v) = h.get(key) else {
-                return Ok(None);
-            };
-            let shape: Option<Vec<usize>> =
-                v.get("shape").and_then(Value::as_array).and_then(|s| {
-                    s.iter()
-                        .map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok()))
-                        .filter(|d| d.is_none_or(|d| (1..=1 << 20).contains(&d)))
-                        .collect()
-                });
-            match shape {
-                Some(s) if !s.is_empty() => Ok(Some(s)),
-                _ => Err(malformed(
-                    "hello",
-                    format!(
-                        "`{key}` must be {{\"shape\": [sizes ≥ 1]}}, the shape of one sample, not {v}"
-                    ),
-                )),
-            }
-        };
-        Ok(Hello {
-            name: h
-                .get("name")
-                .and_then(Value::as_str)
-                .unwrap_or("")
-                .to_string(),
-            dtype,
-            tensors,
-            x: sample("x")?,
-            y: sample("y")?,
-        })
+        let hello = hello_reply(&reply.header, expected)?;
+        self.declared = hello.tensors.iter().map(|t| t.len() as u64).sum();
+        Ok(hello)
     }
 
     /// Sends the parameters (in the hello's order) and the data; waits for `ready`.
@@ -326,30 +263,7 @@ impl Program {
     /// The program's loss and gradient; each tensor with the shape the reply gives it.
     pub fn gradient(&mut self) -> Result<Gradient, ProbeError> {
         let r = self.request("gradient", &json!({"type": "gradient"}), &[], "gradient")?;
-        let loss = finite_loss(&r.header, "gradient")?;
-        let specs = specs(&r.header, "gradient")?;
-        let mut out = Vec::with_capacity(specs.len());
-        let mut at = 0;
-        for s in specs {
-            let n = s.len();
-            let data = r.payload[at..at + n].to_vec();
-            at += n;
-            if let Some((k, v)) = data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
-                let mut index = vec![0; s.shape.len()];
-                let mut rest = k;
-                for (i, &d) in s.shape.iter().enumerate().rev() {
-                    index[i] = rest % d.max(1);
-                    rest /= d.max(1);
-                }
-                return Err(ProbeError::NonFinite {
-                    what: "gradient".into(),
-                    value: *v,
-                    place: format!("at {index:?} of `{}`", s.name),
-                });
-            }
-            out.push((s, data));
-        }
-        Ok((loss, out))
+        gradient_reply(&r)
     }
 
     /// The loss at `count` perturbations of the loaded parameters, each the changes with its number.
@@ -363,20 +277,7 @@ impl Program {
             payload.extend_from_slice(&c.delta.to_le_bytes());
         }
         let r = self.request("losses", &header, &payload, "losses")?;
-        if r.payload.len() != count {
-            return Err(malformed(
-                "losses",
-                format!("{} losses for {count} perturbations", r.payload.len()),
-            ));
-        }
-        if let Some((k, v)) = r.payload.iter().enumerate().find(|(_, v)| !v.is_finite()) {
-            return Err(ProbeError::NonFinite {
-                what: "loss".into(),
-                value: *v,
-                place: format!("at perturbation {k}"),
-            });
-        }
-        Ok(r.payload)
+        losses_reply(r, count)
     }
 
     /// Says goodbye and waits for the program to exit (killing it after the timeout).
@@ -436,27 +337,7 @@ impl Program {
             });
         }
         match self.replies.recv_timeout(self.timeout) {
-            Ok(Ok(m)) => {
-                let kind = m.header.get("type").and_then(Value::as_str).unwrap_or("");
-                if kind == "error" {
-                    let message = m
-                        .header
-                        .get("message")
-                        .and_then(Value::as_str)
-                        .unwrap_or("(no message)");
-                    return Err(ProbeError::Remote {
-                        request: request.into(),
-                        message: message.into(),
-                    });
-                }
-                if kind != reply {
-                    return Err(malformed(
-                        request,
-                        format!("a reply of type `{kind}`, expected `{reply}`"),
-                    ));
-                }
-                Ok(m)
-            }
+            Ok(Ok(m)) => accept(m, request, reply),
             Ok(Err(ReadError::Garbage(text))) => {
                 self.stop();
                 Err(ProbeError::Garbage {
@@ -593,6 +474,152 @@ impl Drop for Program {
     }
 }
 
+/// The checks of a hello reply: the protocol version, the dtype, the tensors (exactly `expected`
+/// when given), the optional sample shapes.
+fn hello_reply(h: &Value, expected: Option<&[TensorSpec]>) -> Result<Hello, ProbeError> {
+    match h.get("protocol").and_then(Value::as_u64) {
+        Some(p) if p == PROTOCOL as u64 => {}
+        other => {
+            return Err(ProbeError::Version {
+                theirs: other.map_or_else(|| "(none given)".to_string(), |p| p.to_string()),
+                ours: PROTOCOL,
+            });
+        }
+    }
+    let dtype = h
+        .get("dtype")
+        .and_then(Value::as_str)
+        .unwrap_or("")
+        .to_string();
+    if dtype != "f64" && dtype != "f32" {
+        return Err(malformed(
+            "hello",
+            format!(
+                "`dtype` must be \"f64\" or \"f32\", not {}",
+                h.get("dtype").unwrap_or(&Value::Null)
+            ),
+        ));
+    }
+    let tensors = specs(h, "hello")?;
+    if let Some(e) = expected
+        && tensors != e
+    {
+        return Err(ProbeError::Mismatch(format!(
+            "the program declares the tensors {}, but the description expects {}; name and shape them as the description's layout does, or use --blackbox for a model the description cannot express",
+            list(&tensors),
+            list(e)
+        )));
+    }
+    let sample = |key: &str| -> Result<Option<Vec<usize>>, ProbeError> {
+        let Some(v) = h.get(key) else {
+            return Ok(None);
+        };
+        let shape: Option<Vec<usize>> = v.get("shape").and_then(Value::as_array).and_then(|s| {
+            s.iter()
+                .map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok()))
+                .filter(|d| d.is_none_or(|d| (1..=1 << 20).contains(&d)))
+                .collect()
+        });
+        match shape {
+            Some(s) if !s.is_empty() => Ok(Some(s)),
+            _ => Err(malformed(
+                "hello",
+                format!(
+                    "`{key}` must be {{\"shape\": [sizes ≥ 1]}}, the shape of one sample, not {v}"
+                ),
+            )),
+        }
+    };
+    Ok(Hello {
+        name: h
+            .get("name")
+            .and_then(Value::as_str)
+            .unwrap_or("")
+            .to_string(),
+        dtype,
+        tensors,
+        x: sample("x")?,
+        y: sample("y")?,
+    })
+}
+
+/// The checks of a gradient reply: a finite loss, the tensors it names, finite values.
+fn gradient_reply(r: &Message) -> Result<Gradient, ProbeError> {
+    let loss = finite_loss(&r.header, "gradient")?;
+    let specs = specs(&r.header, "gradient")?;
+    let mut out = Vec::with_capacity(specs.len());
+    let mut at = 0;
+    for s in specs {
+        let n = s.len();
+        let Some(data) = r.payload.get(at..at + n).map(<[f64]>::to_vec) else {
+            return Err(malformed(
+                "gradient",
+                format!(
+                    "its payload of {} values is shorter than its tensors",
+                    r.payload.len()
+                ),
+            ));
+        };
+        at += n;
+        if let Some((k, v)) = data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            let mut index = vec![0; s.shape.len()];
+            let mut rest = k;
+            for (i, &d) in s.shape.iter().enumerate().rev() {
+                index[i] = rest % d.max(1);
+                rest /= d.max(1);
+            }
+            return Err(ProbeError::NonFinite {
+                what: "gradient".into(),
+                value: *v,
+                place: format!("at {index:?} of `{}`", s.name),
+            });
+        }
+        out.push((s, data));
+    }
+    Ok((loss, out))
+}
+
+/// The checks of a losses reply: one finite loss per perturbation asked for.
+fn losses_reply(r: Message, count: usize) -> Result<Vec<f64>, ProbeError> {
+    if r.payload.len() != count {
+        return Err(malformed(
+            "losses",
+            format!("{} losses for {count} perturbations", r.payload.len()),
+        ));
+    }
+    if let Some((k, v)) = r.payload.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+        return Err(ProbeError::NonFinite {
+            what: "loss".into(),
+            value: *v,
+            place: format!("at perturbation {k}"),
+        });
+    }
+    Ok(r.payload)
+}
+
+/// A framed reply as the answer to `request`: an error reply said as such, else of type `reply`.
+fn accept(m: Message, request: &str, reply: &str) -> Result<Message, ProbeError> {
+    let kind = m.header.get("type").and_then(Value::as_str).unwrap_or("");
+    if kind == "error" {
+        let message = m
+            .header
+            .get("message")
+            .and_then(Value::as_str)
+            .unwrap_or("(no message)");
+        return Err(ProbeError::Remote {
+            request: request.into(),
+            message: message.into(),
+        });
+    }
+    if kind != reply {
+        return Err(malformed(
+            request,
+            format!("a reply of type `{kind}`, expected `{reply}`"),
+        ));
+    }
+    Ok(m)
+}
+
 fn malformed(request: &str, what: String) -> ProbeError {
     ProbeError::Malformed {
         request: request.into(),
@@ -670,18 +697,21 @@ fn list(t: &[TensorSpec]) -> String {
     format!("[{}]", items.join(", "))
 }
 
-/// Frames the program's stdout into messages until it ends or breaks.
-fn read_replies(
-    stdout: ChildStdout,
-    tx: Sender<Result<Message, ReadError>>,
-    limit: Arc<AtomicU64>,
+/// Frames a program's stdout into replies and hands each to `each`, until the stream ends or
+/// breaks (the error is then the last item) or `each` returns false. `limit` is read before each
+/// payload: the most float64 values the reply to the current request may announce. A payload is
+/// held as it arrives, never allocated ahead at its announced size.
+fn read_replies<R: Read>(
+    stdout: R,
+    limit: &AtomicU64,
+    mut each: impl FnMut(Result<Message, ReadError>) -> bool,
 ) {
     let mut r = BufReader::new(stdout);
     loop {
         let mut line = Vec::new();
         match (&mut r).take(MAX_LINE).read_until(b'\n', &mut line) {
             Ok(0) => {
-                let _ = tx.send(Err(ReadError::Eof));
+                each(Err(ReadError::Eof));
                 return;
             }
             Ok(n) if line.last() != Some(&b'\n') => {
@@ -693,12 +723,12 @@ fn read_replies(
                 } else {
                     ReadError::Cut(shorten(&line))
                 };
-                let _ = tx.send(Err(e));
+                each(Err(e));
                 return;
             }
             Ok(_) => {}
             Err(_) => {
-                let _ = tx.send(Err(ReadError::Eof));
+                each(Err(ReadError::Eof));
                 return;
             }
         }
@@ -714,27 +744,28 @@ fn read_replies(
                 } else {
                     ReadError::Garbage(shorten(&line))
                 };
-                let _ = tx.send(Err(e));
+                each(Err(e));
                 return;
             }
         };
         let count = match payload_values(&header) {
             Ok(n) => n,
             Err(what) => {
-                let _ = tx.send(Err(ReadError::Malformed(what)));
+                each(Err(ReadError::Malformed(what)));
                 return;
             }
         };
         let allowed = limit.load(Ordering::SeqCst);
         if count > allowed {
-            let _ = tx.send(Err(ReadError::Malformed(format!(
+            each(Err(ReadError::Malformed(format!(
                 "it announces {count} float64 values, but the request calls for {allowed}"
             ))));
             return;
         }
-        let mut bytes = vec![0u8; count as usize * 8];
-        if r.read_exact(&mut bytes).is_err() {
-            let _ = tx.send(Err(ReadError::Malformed(format!(
+        let want = count * 8;
+        let mut bytes = Vec::with_capacity(want.min(1 << 20) as usize);
+        if !matches!((&mut r).take(want).read_to_end(&mut bytes), Ok(n) if n as u64 == want) {
+            each(Err(ReadError::Malformed(format!(
                 "its payload of {count} float64 values is cut short"
             ))));
             return;
@@ -743,10 +774,50 @@ fn read_replies(
             .chunks_exact(8)
             .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")))
             .collect();
-        if tx.send(Ok(Message { header, payload })).is_err() {
+        if !each(Ok(Message { header, payload })) {
             return;
         }
     }
+}
+
+/// The reply checks a request makes, for the fuzz target (fuzz/fuzz_targets/protocol.rs) and
+/// the tests that replay its corpus: `bytes[0]` picks the request, `bytes[1]` is the most values
+/// its reply may carry (the declared parameters or the perturbations asked for), the rest is
+/// what the program wrote. Every framed reply goes through the request's checks; the number of
+/// replies accepted, or the first error in words.
+pub fn fuzz_replies(bytes: &[u8]) -> Result<usize, String> {
+    let [pick, limit, stdout @ ..] = bytes else {
+        return Err("too short".into());
+    };
+    let request = ["hello", "load", "loss", "gradient", "losses"][*pick as usize % 5];
+    let count = usize::from(*limit);
+    let limit = AtomicU64::new(u64::from(*limit));
+    let (mut accepted, mut refused) = (0, None);
+    read_replies(stdout, &limit, |m| {
+        let checked = match m {
+            Err(ReadError::Eof) => return false,
+            Err(e) => Err(format!("{e:?}")),
+            Ok(m) => accept(
+                m,
+                request,
+                if request == "load" { "ready" } else { request },
+            )
+            .and_then(|m| match request {
+                "hello" => hello_reply(&m.header, None).map(|_| ()),
+                "loss" => finite_loss(&m.header, request).map(|_| ()),
+                "gradient" => gradient_reply(&m).map(|_| ()),
+                "losses" => losses_reply(m, count).map(|_| ()),
+                _ => Ok(()),
+            })
+            .map_err(|e| e.to_string()),
+        };
+        match checked {
+            Ok(()) => accepted += 1,
+            Err(e) => refused = Some(e),
+        }
+        refused.is_none()
+    });
+    refused.map_or(Ok(accepted), Err)
 }
 
 /// How many float64 values follow a header, refusing counts beyond what plumb will hold.

@@ -1,5 +1,7 @@
 //! A report as the human formats see it: a title and a list of blocks.
 
+use std::collections::HashMap;
+
 use crate::{Finding, Severity, Verdict};
 
 /// The mood of a table cell or line, which the terminal renderer may colour.
@@ -180,15 +182,25 @@ impl Document {
     /// their own (a global direction, a whole-run problem) fail one case named `findings`.
     pub fn fail_cases_for(&mut self, findings: &[Finding]) {
         let mut loose: Vec<&Finding> = Vec::new();
+        // Cases by name (the first of a name) and by tensor, found once: a scan of every case per
+        // finding is quadratic for a file of 100,000 stray tensors.
+        let mut by_case: HashMap<String, usize> = HashMap::new();
+        let mut by_tensor: HashMap<String, Vec<usize>> = HashMap::new();
+        for (i, c) in self.cases.iter().enumerate() {
+            by_case.entry(c.name.clone()).or_insert(i);
+            if let Some(t) = &c.tensor {
+                by_tensor.entry(t.clone()).or_default().push(i);
+            }
+        }
         for f in findings.iter().filter(|f| f.severity >= self.fail_on) {
             let named = f.figures.get("case").and_then(|v| v.as_str());
-            let by_name = named.and_then(|n| self.cases.iter().position(|c| c.name == n));
-            let about: Vec<usize> = match &f.tensor {
-                Some(t) => (0..self.cases.len())
-                    .filter(|&i| self.cases[i].tensor.as_deref() == Some(t))
-                    .collect(),
-                None => Vec::new(),
-            };
+            let by_name = named.and_then(|n| by_case.get(n).copied());
+            let none = Vec::new();
+            let about = f
+                .tensor
+                .as_ref()
+                .and_then(|t| by_tensor.get(t))
+                .unwrap_or(&none);
             let target = match by_name {
                 Some(i) => Some(i),
                 None if about.iter().any(|&i| !self.cases[i].passed) => continue,

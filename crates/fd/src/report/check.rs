@@ -14,7 +14,7 @@ use super::Loaded;
 use super::locate::{Place, Tensors};
 use crate::{
     CheckConfig, CheckError, CheckResult, FLOOR, Method, Part, Precision, Progress, SETTLE, Scope,
-    Settlement, Status, UNSETTLED_SHARE, check, summarise,
+    Settlement, Status, UNSETTLED_SHARE, check, summarise, summary::coords_by_part,
 };
 
 /// A number in scientific notation with nine decimals (enough to see two close values differ).
@@ -558,9 +558,13 @@ pub fn build(
         rel_errors: summaries
             .iter()
             .zip(&tensors.expected)
-            .map(|(s, e)| {
-                let (values, bounds) = (0..result.coords.len())
-                    .filter(|&i| s.part.contains(&result.coords[i]))
+            .zip(coords_by_part(
+                result,
+                &summaries.iter().map(|s| s.part).collect::<Vec<_>>(),
+            ))
+            .map(|((_, e), idx)| {
+                let (values, bounds) = idx
+                    .into_iter()
                     .map(|i| {
                         let c = coord_report(tensors, result, i);
                         (c.rel_error, c.rel_bound)

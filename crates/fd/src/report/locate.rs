@@ -34,14 +34,35 @@ impl Place {
 pub struct Tensors {
     pub expected: Vec<ExpectedTensor>,
     layout: Layout,
+    /// The indices into `expected` of each layer's tensors (one or two), so that locating a
+    /// coordinate looks at its layer only, not at every tensor of a deep network.
+    by_layer: Vec<Vec<usize>>,
 }
 
 impl Tensors {
     pub fn new(desc: &Description) -> Tensors {
-        Tensors {
-            expected: expected_tensors(desc, desc.layout),
-            layout: desc.layout,
+        let expected = expected_tensors(desc, desc.layout);
+        let mut by_layer = vec![Vec::new(); desc.layers.len()];
+        for (i, e) in expected.iter().enumerate() {
+            if e.layer >= by_layer.len() {
+                by_layer.resize(e.layer + 1, Vec::new());
+            }
+            by_layer[e.layer].push(i);
         }
+        Tensors {
+            expected,
+            layout: desc.layout,
+            by_layer,
+        }
+    }
+
+    /// The tensors of layer `layer` (0-based), in the layout's order.
+    fn of_layer(&self, layer: usize) -> impl Iterator<Item = &ExpectedTensor> {
+        self.by_layer
+            .get(layer)
+            .into_iter()
+            .flatten()
+            .map(|&i| &self.expected[i])
     }
 
     /// Each tensor as an fd part, with its parameter count.
@@ -62,15 +83,11 @@ impl Tensors {
     /// The tensor holding a coordinate and its index there.
     pub fn place(&self, c: Coord) -> Place {
         let e = self
-            .expected
-            .iter()
-            .find(|e| {
-                e.layer == c.layer
-                    && match e.role {
-                        Role::Augmented => true,
-                        Role::Bias => c.col == 0,
-                        Role::Weight => c.col > 0,
-                    }
+            .of_layer(c.layer)
+            .find(|e| match e.role {
+                Role::Augmented => true,
+                Role::Bias => c.col == 0,
+                Role::Weight => c.col > 0,
             })
             .expect("every coordinate belongs to a tensor of the layout");
         let index = match (e.role, self.layout) {
@@ -114,15 +131,11 @@ impl Tensors {
 
     /// The tensor a direction's span belongs to.
     pub fn name_of(&self, layer: usize, bias: bool) -> String {
-        self.expected
-            .iter()
-            .find(|e| {
-                e.layer == layer
-                    && match e.role {
-                        Role::Augmented => true,
-                        Role::Bias => bias,
-                        Role::Weight => !bias,
-                    }
+        self.of_layer(layer)
+            .find(|e| match e.role {
+                Role::Augmented => true,
+                Role::Bias => bias,
+                Role::Weight => !bias,
             })
             .map(|e| {
                 if e.role == Role::Augmented {
