@@ -19,7 +19,7 @@ fn every_kind() -> Vec<Build> {
 /// The case of a seed; for "ties", weights on a grid of 1/4 and inputs whole numbers, so that
 /// max-pool windows often hold equal values (exact in f32 and f64).
 fn seeded(name: &str, build: fn() -> plumb_engine::graph::Graph, seed: u64) -> Case {
-    let mut c = case(build(), 4, 100 + seed);
+    let mut c = case(build(), 6, 100 + seed);
     if name.ends_with("ties") {
         for p in &mut c.params {
             p.mapv_inplace(|v| (4.0 * v).round() / 4.0);
