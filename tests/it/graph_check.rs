@@ -71,7 +71,6 @@ fn f32_is_no_false_fail() {
 }
 
 #[test]
-#[ignore = "not yet pass on the sequence net at --sample 60 --directions 2: verdict not investigated before the deadline"]
 fn sequence_net_passes_in_f64() {
     let v = check(&[
         "nets/pump-sequence.toml",

@@ -9,7 +9,7 @@ use plumb_engine::Rng;
 use crate::check::{RETRIES, Rule, Status};
 use crate::direction::{Direction, directions};
 use crate::method::{Method, complex_estimate, second_difference_steps, smooth_across};
-use crate::{FLOOR, NOISE, Progress, Sample, relative_floor};
+use crate::{NOISE, Progress, Sample, relative_floor};
 
 /// One tensor of the outside program: its parameters and the gradient it returned for them.
 #[derive(Clone, Debug)]
@@ -478,9 +478,12 @@ pub(crate) fn check_tensors<E>(
                         .sum::<f64>()
                 })
                 .sum();
-            let judge = |e: &crate::Estimate| {
-                rule.judge(a, e.value, FLOOR * span, gross_dir, e.error, e.crossed)
-            };
+            // The floor of a coordinate of its span, with ‖g‖ over the span for its largest
+            // entry: a direction over a tensor whose gradient is zero by construction (an
+            // attention key bias) is judged against the network's scale, as its coordinates are.
+            let floor = relative_floor(span, scale, config.eps, config.tolerance);
+            let judge =
+                |e: &crate::Estimate| rule.judge(a, e.value, floor, gross_dir, e.error, e.crossed);
             // As for coordinates: a black box's disagreement must hold at a smaller step on a
             // loss that looks smooth along v.
             if !inside.sees_kinks

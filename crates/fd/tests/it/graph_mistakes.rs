@@ -4,7 +4,7 @@
 use crate::graph_common;
 
 use graph_common::*;
-use plumb_fd::{Method, Precision, Sample, Status, check_graph_gradient};
+use plumb_fd::{Method, Precision, SETTLE, Sample, Status, check_graph_gradient};
 
 fn every_kind() -> Vec<Build> {
     let mut k = kinds();
@@ -147,5 +147,76 @@ fn one_entry_off_by_one_percent_is_a_mismatch_there() {
                 );
             }
         }
+    }
+}
+
+/// The boundary in f32, both ways: the largest entry of every tensor moved by 20% is a mismatch
+/// there on every kind, and moved by half the f32 tolerance (0.05%) it is never one. Between the
+/// two the check resolves what its bound allows: the smallest error it resolves at the moved
+/// entries (the larger of the tolerance and the bound over |a|) is printed per kind, and is at
+/// most [`SETTLE`] of the entry wherever the entry is settled.
+#[test]
+fn f32_resolves_twenty_percent_and_never_calls_half_the_tolerance_a_mismatch() {
+    for (name, build) in every_kind() {
+        let c = case(build(), 5, 13);
+        let g = &c.graph;
+        let right = g.gradient(&c.params, c.x.view(), c.y.view(), None).params;
+        let scale = right.iter().map(largest).fold(0.0, f64::max);
+        // The largest entry of each tensor that is not zero by construction.
+        let moved: Vec<(usize, usize)> = (0..right.len())
+            .filter(|&t| largest(&right[t]) > 1e-3 * scale)
+            .map(|t| {
+                let k = right[t]
+                    .iter()
+                    .enumerate()
+                    .max_by(|a, b| a.1.abs().total_cmp(&b.1.abs()))
+                    .unwrap()
+                    .0;
+                (t, k)
+            })
+            .collect();
+        let mut resolution = 0.0f64;
+        for (factor, caught) in [(0.2, true), (5e-4, false)] {
+            let mut wrong = right.clone();
+            for &(t, k) in &moved {
+                wrong[t].as_slice_mut().unwrap()[k] *= 1.0 + factor;
+            }
+            let mut cfg = config(Method::Central, Precision::F32, 4);
+            cfg.sample = Some(Sample::All);
+            let r = check_graph_gradient(
+                g,
+                &c.params,
+                c.x.view(),
+                c.y.view(),
+                &wrong,
+                &cfg,
+                &|_, _| {},
+            )
+            .unwrap();
+            for co in &r.coords {
+                let at_moved = moved.contains(&(co.tensor, co.index));
+                if at_moved && caught && co.status != Status::Unreliable {
+                    let r = co.bound / co.analytic.abs().max(1e-300);
+                    assert!(r <= SETTLE, "{name}: bound {r:e} of the entry");
+                    resolution = resolution.max(r);
+                }
+                let want_mismatch = at_moved && caught && co.status != Status::Unreliable;
+                assert_eq!(
+                    co.status == Status::Mismatch,
+                    want_mismatch,
+                    "{name}: {} #{} moved by {factor} is {} (a={:e} n={:e} bound={:e})",
+                    g.tensors()[co.tensor].name,
+                    co.index,
+                    co.status.name(),
+                    co.analytic,
+                    co.numeric,
+                    co.bound
+                );
+            }
+        }
+        eprintln!(
+            "{name}: f32 resolves an entry moved by {:.1e} of itself",
+            resolution.max(Precision::F32.tolerance())
+        );
     }
 }

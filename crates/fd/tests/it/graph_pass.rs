@@ -38,3 +38,33 @@ fn correct_gradients_of_every_kind_pass_in_f64_f32_and_complex_step() {
         }
     }
 }
+
+/// An attention key bias has a zero gradient by construction (it adds the same q·b to every
+/// score of a query, which softmax ignores), so the loss does not move along it: its directions
+/// compare round-off with round-off. They are judged against the network's gradient scale, as
+/// its coordinates are, and settle as a match — not `unsettled` against a floor of round-off's
+/// own size (what made the sequence net's f64 check inconclusive).
+#[test]
+fn directions_over_a_key_bias_settle_against_the_networks_scale() {
+    let c = case(attention(), 4, 3);
+    let mut cfg = config(Method::Central, Precision::F64, 3);
+    cfg.directions = Some(2);
+    let r = run(&c, &cfg);
+    let keys: Vec<usize> = c
+        .graph
+        .tensors()
+        .iter()
+        .enumerate()
+        .filter(|(_, t)| t.name.ends_with("key.bias"))
+        .map(|(i, _)| i)
+        .collect();
+    assert_eq!(keys.len(), 2);
+    for d in r
+        .directions
+        .iter()
+        .filter(|d| d.tensor.is_some_and(|t| keys.contains(&t)))
+    {
+        assert!(d.analytic.abs() < 1e-12, "{d:?}");
+        assert_eq!(d.status, Status::Match, "{d:?}");
+    }
+}
