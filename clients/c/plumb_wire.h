@@ -22,6 +22,9 @@
  * `tensors`) and the batch (x and y in C order, their shapes with the sample count m first). They
  * write the loss to *out (and the gradient, one array per tensor of the tensor's size, to grads),
  * and return NULL, or a message saying what went wrong: it is sent to plumb as an error reply.
+ * Optionally set s.input_gradient to a callback writing the gradient with respect to x (x's size)
+ * at the same parameters: the hello then says so and every gradient reply carries it as the
+ * tensor "input", which plumb checks against the reference's input gradient.
  * The loss callback must not keep or change the parameters it is given: plumb_serve perturbs them
  * and puts them back between calls. Code that computes on a GPU copies the arrays to the device
  * inside the callbacks; this header only runs on the host.
@@ -68,6 +71,10 @@ typedef const char *(*plumb_gradient_fn)(void *user, double *const *params,
                                          const plumb_batch *batch, double *out,
                                          double *const *grads);
 
+/* The gradient of the loss with respect to x into dx (x's size, C order), at params. */
+typedef const char *(*plumb_input_gradient_fn)(void *user, double *const *params,
+                                               const plumb_batch *batch, double *dx);
+
 /* What the program declares and how it answers. Fill it with plumb_server_init, then set the
  * optional fields. */
 typedef struct plumb_server {
@@ -82,6 +89,8 @@ typedef struct plumb_server {
      * they let `plumb probe --blackbox` draw or split data without a description. */
     int x_rank, y_rank;
     long x_shape[PLUMB_WIRE_MAX_RANK], y_shape[PLUMB_WIRE_MAX_RANK];
+    /* Optional (NULL: not sent): the input gradient, sent after every gradient as "input". */
+    plumb_input_gradient_fn input_gradient;
     FILE *in, *out; /* NULL: stdin and stdout */
 } plumb_server;
 
@@ -388,7 +397,7 @@ typedef struct plumb_session {
     char *line;
     size_t line_cap;
     double **params, **work, **grads; /* loaded, perturbed and gradient arrays per tensor */
-    double *x, *y;
+    double *x, *y, *dx; /* dx: the input gradient, x's size, when the server sends it */
     plumb_batch batch;
     char message[512];
 } plumb_session;
@@ -486,7 +495,8 @@ static inline void plumb_wire_write_shape(FILE *out, int rank, const long *dim)
     putc(']', out);
 }
 
-static inline void plumb_wire_write_tensors(plumb_session *ss)
+/* The "tensors" list of the hello or a gradient reply; with_input adds "input" of x's shape. */
+static inline void plumb_wire_write_tensors(plumb_session *ss, int with_input)
 {
     fputs("\"tensors\":[", ss->out);
     for (int t = 0; t < ss->s->tensor_count; t++) {
@@ -494,6 +504,12 @@ static inline void plumb_wire_write_tensors(plumb_session *ss)
         plumb_wire_write_string(ss->out, ss->s->tensors[t].name);
         fputs(",\"shape\":", ss->out);
         plumb_wire_write_shape(ss->out, ss->s->tensors[t].rank, ss->s->tensors[t].shape);
+        putc('}', ss->out);
+    }
+    if (with_input) {
+        fputs(ss->s->tensor_count ? ",{\"name\":\"input\",\"shape\":" : "{\"name\":\"input\",\"shape\":",
+              ss->out);
+        plumb_wire_write_shape(ss->out, ss->batch.x_rank, ss->batch.x_shape);
         putc('}', ss->out);
     }
     putc(']', ss->out);
@@ -524,8 +540,9 @@ static inline void plumb_wire_free_data(plumb_session *ss)
     free(ss->grads);
     free(ss->x);
     free(ss->y);
+    free(ss->dx);
     ss->params = ss->work = ss->grads = NULL;
-    ss->x = ss->y = NULL;
+    ss->x = ss->y = ss->dx = NULL;
 }
 
 static inline int plumb_wire_hello(plumb_session *ss)
@@ -536,7 +553,7 @@ static inline int plumb_wire_hello(plumb_session *ss)
     fputs(",\"dtype\":", ss->out);
     plumb_wire_write_string(ss->out, s->dtype ? s->dtype : "f64");
     putc(',', ss->out);
-    plumb_wire_write_tensors(ss);
+    plumb_wire_write_tensors(ss, 0);
     if (s->x_rank > 0 && s->y_rank > 0) {
         fputs(",\"x\":{\"shape\":", ss->out);
         plumb_wire_write_shape(ss->out, s->x_rank, s->x_shape);
@@ -544,6 +561,8 @@ static inline int plumb_wire_hello(plumb_session *ss)
         plumb_wire_write_shape(ss->out, s->y_rank, s->y_shape);
         putc('}', ss->out);
     }
+    if (s->input_gradient)
+        fputs(",\"input_gradient\":true", ss->out);
     fputs("}\n", ss->out);
     return 0;
 }
@@ -627,6 +646,12 @@ static inline int plumb_wire_load(plumb_session *ss)
     b->x = ss->x;
     b->y = ss->y;
     b->m = b->x_shape[0];
+    if (s->input_gradient) {
+        long n = plumb_wire_size(b->x_rank, b->x_shape);
+        ss->dx = (double *)calloc((size_t)(n ? n : 1), sizeof(double));
+        if (!ss->dx)
+            return plumb_wire_fail(ss, "load", "out of memory for the input gradient");
+    }
     fputs("{\"type\":\"ready\"}\n", ss->out);
     return 0;
 }
@@ -762,11 +787,19 @@ static inline int plumb_wire_request(plumb_session *ss)
         return plumb_wire_fail(ss, "the gradient failed", why);
     if (plumb_wire_loss_reply(ss, "gradient", loss))
         return -1;
+    if (ss->s->input_gradient) {
+        why = ss->s->input_gradient(ss->s->user, ss->params, &ss->batch, ss->dx);
+        if (why)
+            return plumb_wire_fail(ss, "the input gradient failed", why);
+    }
     putc(',', ss->out);
-    plumb_wire_write_tensors(ss);
+    plumb_wire_write_tensors(ss, ss->s->input_gradient != NULL);
     fputs("}\n", ss->out);
     for (int k = 0; k < ss->s->tensor_count; k++)
         plumb_wire_write_doubles(ss->out, ss->grads[k], plumb_wire_tensor_size(ss, k));
+    if (ss->s->input_gradient)
+        plumb_wire_write_doubles(ss->out, ss->dx,
+                                 plumb_wire_size(ss->batch.x_rank, ss->batch.x_shape));
     return 0;
 }
 

@@ -242,6 +242,10 @@ pub struct ProbeArgs {
     /// Samples in the synthetic batch drawn without --data [default: 32].
     #[arg(long, value_name = "M")]
     pub batch: Option<usize>,
+    /// The data file's spatial arrays are (m, length, channels) or (m, height, width, channels)
+    /// instead of channels first (networks with a signal or image input); the program gets x so.
+    #[arg(long, requires = "data")]
+    pub channels_last: bool,
     /// Finite-difference method for checking the program against its own loss (the complex step
     /// needs complex arithmetic inside the program, so it is not offered).
     #[arg(long, value_enum, default_value_t = ProbeMethodArg::Central)]
@@ -426,7 +430,7 @@ impl ProbeArgs {
             data: self.data.clone(),
             init: self.init,
             batch: self.batch,
-            channels_last: false,
+            channels_last: self.channels_last,
         })
     }
 }

@@ -81,12 +81,6 @@ pub fn load_any(inputs: &Inputs, seed: u64) -> Result<AnyLoaded> {
     }
 }
 
-/// Loads a dense description (the commands that run the dense engine only; other kinds are
-/// refused naming the layer and its line).
-pub fn load(inputs: &Inputs, seed: u64) -> Result<Loaded> {
-    load_dense(inputs, seed, Description::read(&inputs.net)?)
-}
-
 fn load_dense(inputs: &Inputs, seed: u64, desc: Description) -> Result<Loaded> {
     if inputs.channels_last {
         bail!(

@@ -24,6 +24,8 @@ protocol through the plumb_wire package (clients/python); anything for people go
                         norm-statistics-constant, norm-epsilon-misplaced, norm-scale-unnormalised;
                         add: skip-gradient-dropped.
   --dtype f32|f64       compute in that type end to end, and say so in the hello (default f64)
+  --input-gradient      also send the gradient with respect to x (the protocol's "input"), which
+                        plumb checks against the reference's input gradient
   --self-check FILE     no protocol: compare this program's loss and gradient with the reference
                         in FILE (examples/python/reference/cnn.npz, written by autograd), print
                         the relative error per tensor and exit 0 if every one is within 1e-10, 1
@@ -51,6 +53,8 @@ EPSILON = 1e-5  # batch-norm's default
 CONVS = {"conv1": (5, 2, 2, 1, 4, True), "conv2": (3, 1, 1, 4, 4, False),
          "conv3": (3, 1, 1, 4, 4, False)}
 NORMS = ["norm1", "norm2"]
+# The conv mistakes that, in conv1 (its input is x), change only the input gradient.
+INPUT_ONLY = ["overlap-overwritten", "padding-offset"]
 TENSORS = [("conv1.weight", (4, 1, 5)), ("conv1.bias", (4,)), ("conv2.weight", (4, 4, 3)),
            ("norm1.scale", (4,)), ("norm1.shift", (4,)), ("conv3.weight", (4, 4, 3)),
            ("norm2.scale", (4,)), ("norm2.shift", (4,)), ("out.weight", (3, 4)),
@@ -58,10 +62,11 @@ TENSORS = [("conv1.weight", (4, 1, 5)), ("conv1.bias", (4,)), ("conv2.weight", (
 DECAYS = ["conv1.weight", "conv2.weight", "conv3.weight", "out.weight"]
 # In conv1, channels-swapped changes nothing (one input channel: o x i x k and i x o x k are the
 # same buffer), and overlap-overwritten and padding-offset change only the input gradient, which
-# the protocol does not carry: they are planted in conv2 and conv3 only.
+# only --input-gradient sends: planted there only when named (e.g. padding-offset:conv1).
 MISTAKES = {
     "kernel-flipped": list(CONVS), "channels-swapped": ["conv2", "conv3"],
-    "overlap-overwritten": ["conv2", "conv3"], "padding-offset": ["conv2", "conv3"],
+    "overlap-overwritten": ["conv1", "conv2", "conv3"],
+    "padding-offset": ["conv1", "conv2", "conv3"],
     "pool-gradient-spread": ["pool1"],
     "norm-statistics-constant": NORMS, "norm-epsilon-misplaced": NORMS,
     "norm-scale-unnormalised": NORMS,
@@ -181,14 +186,15 @@ def loss_of(p, x, y):
     return -(y * log_p).sum() / m + L2 / (2 * m) * penalty
 
 
-def gradient_of(p, x, y, code=None, layer=None):
-    """The loss and every tensor's gradient, with mistake `code` planted in `layer` (None: every
-    layer of its kind)."""
+def gradient_of(p, x, y, code=None, layer=None, with_input=False):
+    """The loss and every tensor's gradient (and the input gradient, `with_input`), with mistake
+    `code` planted in `layer` (None: every layer of its kind but conv1's input-only ones)."""
     m = x.shape[0]
     s = forward(p, x)
 
     def wrong(name):
-        return code if code is not None and (layer is None or layer == name) and \
+        everywhere = layer is None and not (name == "conv1" and code in INPUT_ONLY)
+        return code if code is not None and (everywhere or layer == name) and \
             name in MISTAKES[code] else None
 
     g = {}
@@ -213,11 +219,13 @@ def gradient_of(p, x, y, code=None, layer=None):
                                            wrong("conv2"))
     da1 = pool_backward(s["pool"], da2 + dskip, wrong("pool1"))
     dz1 = da1 * (1 - s["a1"] ** 2)
-    g["conv1.weight"], _ = conv_backward(p["conv1.weight"], s["xp1"], dz1, "conv1",
+    g["conv1.weight"], dx = conv_backward(p["conv1.weight"], s["xp1"], dz1, "conv1",
                                          wrong("conv1"))
     g["conv1.bias"] = dz1.sum(axis=(0, 2))
     for n in DECAYS:  # the L2 term, added as declared whatever the data term's mistake
         g[n] = g[n] + L2 / m * p[n]
+    if with_input:
+        return loss_of(p, x, y), [g[n] for n, _ in TENSORS], dx
     return loss_of(p, x, y), [g[n] for n, _ in TENSORS]
 
 
@@ -262,6 +270,7 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--plant", type=parse_plant, default=(None, None))
     ap.add_argument("--dtype", choices=["f64", "f32"], default="f64")
+    ap.add_argument("--input-gradient", action="store_true")
     ap.add_argument("--self-check", metavar="FILE")
     ap.add_argument("--save", metavar="FILE")
     args = ap.parse_args()
@@ -276,10 +285,13 @@ def main():
         return loss_of(named(params), *as_batch(x, y))
 
     def grad_fn(params, x, y):
-        return gradient_of(named(params), *as_batch(x, y), code, layer)
+        reply = gradient_of(named(params), *as_batch(x, y), code, layer, args.input_gradient)
+        if args.input_gradient:  # dx in x's own shape, as loaded
+            return reply[0], reply[1], reply[2].reshape(x.shape)
+        return reply
 
     serve("pump-cnn-numpy", args.dtype, TENSORS, loss_fn, grad_fn,
-          x_shape=(CHANNELS, LENGTH), y_shape=(CLASSES,))
+          x_shape=(CHANNELS, LENGTH), y_shape=(CLASSES,), input_gradient=args.input_gradient)
     return 0
 
 

@@ -309,6 +309,109 @@ fn the_c_header_answers_malformed_requests_with_an_error_reply() {
     }
 }
 
+/// The header's optional input gradient: a program that sets `input_gradient` says so in its
+/// hello, and its gradient reply lists `input` last with x's shape and sends it after the
+/// parameters' gradients (docs/protocol.md). A linear toy, loss = Σ_i w[i mod 2]·x_i, whose
+/// gradients are read off by hand: ∂/∂w_j = Σ of the x_i with i mod 2 = j, ∂/∂x_i = w[i mod 2].
+#[test]
+fn the_c_header_sends_the_input_gradient_when_asked() {
+    let dir = scratch("c-input-gradient");
+    let src = dir.join("linear.c");
+    std::fs::write(
+        &src,
+        r#"#include "plumb_wire.h"
+static const char *loss(void *u, double *const *p, const plumb_batch *b, double *out)
+{
+    (void)u;
+    double s = 0;
+    for (long i = 0; i < b->m * 3; i++)
+        s += p[0][i % 2] * b->x[i];
+    *out = s;
+    return NULL;
+}
+static const char *grad(void *u, double *const *p, const plumb_batch *b, double *out,
+                        double *const *g)
+{
+    g[0][0] = g[0][1] = 0;
+    for (long i = 0; i < b->m * 3; i++)
+        g[0][i % 2] += b->x[i];
+    return loss(u, p, b, out);
+}
+static const char *dx(void *u, double *const *p, const plumb_batch *b, double *d)
+{
+    (void)u;
+    for (long i = 0; i < b->m * 3; i++)
+        d[i] = p[0][i % 2];
+    return NULL;
+}
+int main(void)
+{
+    plumb_tensor t[1] = {{"w", 1, {2}}};
+    plumb_server s;
+    plumb_server_init(&s, "linear", 1, t, loss, grad, NULL);
+    s.input_gradient = dx;
+    return plumb_serve(&s);
+}
+"#,
+    )
+    .unwrap();
+    let exe = dir.join("linear");
+    let status = Command::new("cc")
+        .args([
+            "-std=c99",
+            "-pedantic",
+            "-Wall",
+            "-Wextra",
+            "-Werror",
+            "-Iclients/c",
+            "-o",
+        ])
+        .arg(&exe)
+        .arg(&src)
+        .arg("-lm")
+        .current_dir(repo())
+        .status();
+    assert!(status.is_ok_and(|s| s.success()), "cc on linear.c failed");
+    let mut input = b"{\"type\":\"hello\",\"protocol\":1}\n".to_vec();
+    input.extend_from_slice(
+        b"{\"type\":\"load\",\"tensors\":[{\"name\":\"w\",\"shape\":[2]}],\"x\":{\"shape\":[2,3]},\"y\":{\"shape\":[2,1]}}\n",
+    );
+    for v in [0.5, -1.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 0.0, 1.0] {
+        input.extend_from_slice(&f64::to_le_bytes(v));
+    }
+    input.extend_from_slice(b"{\"type\":\"gradient\"}\n{\"type\":\"bye\"}\n");
+    let mut child = Command::new(&exe)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .spawn()
+        .unwrap();
+    use std::io::Write;
+    let mut stdin = child.stdin.take().unwrap();
+    let writer = std::thread::spawn(move || stdin.write_all(&input));
+    let out = child.wait_with_output().unwrap();
+    writer.join().unwrap().unwrap();
+    assert_eq!(out.status.code(), Some(0));
+    let mut lines = out.stdout.splitn(4, |&b| b == b'\n');
+    let json = |l: &[u8]| serde_json::from_slice::<serde_json::Value>(l).unwrap();
+    let hello = json(lines.next().unwrap());
+    assert_eq!(hello["input_gradient"], true, "{hello}");
+    assert_eq!(json(lines.next().unwrap())["type"], "ready");
+    let reply = json(lines.next().unwrap());
+    assert_eq!(
+        reply["tensors"],
+        serde_json::json!([{"name": "w", "shape": [2]}, {"name": "input", "shape": [2, 3]}])
+    );
+    // x = 1..6: loss = 0.5·(1 + 3 + 5) − (2 + 4 + 6) = −7.5.
+    assert_eq!(reply["loss"], -7.5);
+    let values: Vec<f64> = lines
+        .next()
+        .unwrap()
+        .chunks_exact(8)
+        .map(|c| f64::from_le_bytes(c.try_into().unwrap()))
+        .collect();
+    assert_eq!(values, [9.0, 12.0, 0.5, -1.0, 0.5, -1.0, 0.5, -1.0]);
+}
+
 /// The header compiles as C++ (what nvcc makes of CUDA host code), every warning an error.
 #[test]
 fn the_c_header_compiles_as_cpp() {
@@ -616,9 +719,8 @@ fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
 }
 
 /// `plumb probe` on the CNN, both directions: the right program passes, each plant is named at
-/// the tensors it reaches. Enabled once probe reads graph descriptions.
+/// the tensors it reaches.
 #[test]
-#[ignore = "needs graph descriptions in probe (issue 12)"]
 fn probe_names_each_planted_cnn_mistake() {
     let net = repo().join("examples/pump-cnn.toml");
     let probe = |extra: &[&str]| {
@@ -648,6 +750,62 @@ fn probe_names_each_planted_cnn_mistake() {
             let code = t["diagnosis"]["code"].as_str();
             let want = reach.contains(&name).then_some(mistake);
             assert_eq!(code, want, "{plant}, {name}: {t:#}");
+        }
+    }
+}
+
+/// `plumb probe` on the CNN sending its input gradient (protocol hello `"input_gradient": true`):
+/// the right program passes with `input` judged; `padding-offset` and `overlap-overwritten`
+/// planted in conv1, whose input is x, change the input gradient alone (the example's self-check
+/// against autograd says "differs: nothing" for the parameters), and are named on `input` and
+/// nowhere else; `kernel-flipped` in conv1 is named on conv1's weight and on `input`.
+#[test]
+fn probe_names_a_mistake_planted_in_the_input_gradient() {
+    let net = repo().join("examples/pump-cnn.toml");
+    let probe = |extra: &[&str]| {
+        let mut args = vec![
+            "probe",
+            net.to_str().unwrap(),
+            "--seed",
+            "3",
+            "--quiet",
+            "--format",
+            "json",
+            "--",
+            "python3",
+            "examples/python/cnn_numpy.py",
+            "--input-gradient",
+        ];
+        args.extend_from_slice(extra);
+        plumb_in(repo(), &args)
+    };
+    let run = probe(&[]);
+    run.assert_code(0);
+    let j = run.json();
+    let input = j["tensors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["name"] == "input")
+        .unwrap_or_else(|| panic!("no input tensor: {:#}", j["tensors"]));
+    assert_eq!(input["verdict"], "pass", "{input:#}");
+    for (plant, reach) in [
+        ("padding-offset:conv1", vec!["input"]),
+        ("overlap-overwritten:conv1", vec!["input"]),
+        ("kernel-flipped:conv1", vec!["conv1.weight", "input"]),
+    ] {
+        let run = probe(&["--plant", plant]);
+        run.assert_code(1);
+        let j = run.json();
+        let code = plant.split(':').next().unwrap();
+        for t in j["tensors"].as_array().unwrap() {
+            let name = t["name"].as_str().unwrap();
+            let want = reach.contains(&name).then_some(code);
+            assert_eq!(
+                t["diagnosis"]["code"].as_str(),
+                want,
+                "{plant}, {name}: {t:#}"
+            );
         }
     }
 }
@@ -777,9 +935,8 @@ fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
 }
 
 /// `plumb probe` on the LSTM against its description, each recurrent mistake named at the lstm's
-/// tensors. Enabled once probe reads graph descriptions.
+/// tensors.
 #[test]
-#[ignore = "needs graph descriptions in probe (issue 13)"]
 fn probe_names_each_planted_lstm_mistake() {
     let net = repo().join("examples/pump-lstm.toml");
     let probe = |extra: &[&str]| {
@@ -927,10 +1084,8 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
     }
 }
 
-/// `plumb probe` on the attention model against its description. Enabled once probe reads
-/// graph descriptions.
+/// `plumb probe` on the attention model against its description.
 #[test]
-#[ignore = "needs graph descriptions in probe (issue 13)"]
 fn probe_names_each_planted_attention_mistake() {
     let net = repo().join("examples/pump-attention.toml");
     let probe = |extra: &[&str]| {

@@ -294,14 +294,16 @@ fn dense_descriptions_give_the_input_gradient_too() {
 }
 
 #[test]
-fn probe_refuses_other_kinds_naming_layer_and_line() {
-    // check, sweep, compare and audit take every kind (tests/it/graph_check.rs, graph_compare.rs,
-    // graph_audit.rs); probe does not yet.
+fn probe_takes_other_kinds_and_names_the_file_tensors_a_program_must_declare() {
+    // Every command takes every kind; probe's runs are in tests/it/clients.rs (the NumPy CNN, LSTM
+    // and attention block). A program whose hello declares other tensors than the description's
+    // file tensors is refused, exit 2, with both lists.
     let (net, _, _) = files("conv1d-relu-maxpool-dense");
-    let run = plumb(&["probe", net.as_str(), "--", "true"]);
+    let program = concat!(env!("CARGO_MANIFEST_DIR"), "/examples/python/cnn_numpy.py");
+    let run = plumb(&["probe", net.as_str(), "--quiet", "--", "python3", program]);
     run.assert_code(2);
     assert!(
-        run.stderr.contains("conv1d") && run.stderr.contains("line"),
+        run.stderr.contains("the description expects") && run.stderr.contains("c1.weight"),
         "probe: {}",
         run.stderr
     );

@@ -21,8 +21,8 @@ class ProtocolError(Exception):
     """A request this program cannot honour; sent to plumb as an "error" reply."""
 
 
-def serve(name, dtype, tensors, loss_fn, grad_fn, x_shape=None, y_shape=None, *, stdin=None,
-          stdout=None):
+def serve(name, dtype, tensors, loss_fn, grad_fn, x_shape=None, y_shape=None, *,
+          input_gradient=False, stdin=None, stdout=None):
     """Serve a loss and its gradient to `plumb probe` until plumb says "bye".
 
     Arguments:
@@ -40,6 +40,10 @@ def serve(name, dtype, tensors, loss_fn, grad_fn, x_shape=None, y_shape=None, *,
         x_shape, y_shape: optional, one sample's input and target shapes. Declared in the hello,
             they let ``plumb probe --blackbox`` split a CSV file or draw a batch without a network
             description. Give both or neither.
+        input_gradient: if true, ``grad_fn`` returns ``(loss, [gradient arrays], dx)``, where ``dx``
+            is the gradient of the loss with respect to x, of x's shape as loaded; the hello says
+            so and every gradient reply ends with it as the tensor "input", which plumb checks
+            against the reference's input gradient.
         stdin, stdout: binary streams to use instead of the process's (for tests).
 
     The wire always carries little-endian float64; values are cast to ``dtype`` before the
@@ -55,6 +59,7 @@ def serve(name, dtype, tensors, loss_fn, grad_fn, x_shape=None, y_shape=None, *,
     tensors = [(str(n), tuple(int(d) for d in s)) for n, s in tensors]
     session = _Session(name, dtype, tensors, loss_fn, grad_fn, x_shape, y_shape,
                        stdin or sys.stdin.buffer, stdout or sys.stdout.buffer)
+    session.input_gradient = bool(input_gradient)
     try:
         session.run()
     except Exception as e:  # noqa: BLE001 - every failure is reported to plumb
@@ -72,6 +77,7 @@ class _Session:
         self.inp, self.out = inp, out
         self.ftype = DTYPES[dtype]
         self.params = self.x = self.y = None
+        self.input_gradient = False
 
     def run(self):
         while True:
@@ -121,6 +127,8 @@ class _Session:
         if self.x_shape is not None:
             hello["x"] = {"shape": [int(d) for d in self.x_shape]}
             hello["y"] = {"shape": [int(d) for d in self.y_shape]}
+        if self.input_gradient:
+            hello["input_gradient"] = True
         self.send(hello)
 
     def on_load(self, req):
@@ -144,13 +152,24 @@ class _Session:
         self.send({"type": "loss", "loss": float(loss)})
 
     def on_gradient(self, req):
-        loss, grads = self.grad_fn(self.cast(self.params), self.x, self.y)
+        reply = self.grad_fn(self.cast(self.params), self.x, self.y)
+        if self.input_gradient:
+            loss, grads, dx = reply
+        else:
+            loss, grads = reply
         grads = [np.asarray(g) for g in grads]
         if len(grads) != len(self.tensors):
             raise ProtocolError(f"the gradient function returned {len(grads)} arrays for "
                                 f"{len(self.tensors)} tensors")
+        names = [n for n, _ in self.tensors]
+        if self.input_gradient:
+            dx = np.asarray(dx)
+            if dx.shape != self.x.shape:
+                raise ProtocolError(f"the input gradient has shape {list(dx.shape)}, "
+                                    f"x was loaded as {list(self.x.shape)}")
+            grads, names = grads + [dx], names + ["input"]
         self.send({"type": "gradient", "loss": float(loss), "tensors": [
-            {"name": n, "shape": list(g.shape)} for (n, _), g in zip(self.tensors, grads)]}, grads)
+            {"name": n, "shape": list(g.shape)} for n, g in zip(names, grads)]}, grads)
 
     def on_losses(self, req):
         count, n = int(req["perturbations"]), int(req["changes"])

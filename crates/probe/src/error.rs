@@ -56,3 +56,40 @@ fn tail(lines: &[String]) -> String {
         format!("; its last words on stderr:\n    {}", lines.join("\n    "))
     }
 }
+
+/// Why a probe run could not finish: the program failed the protocol, or an input (a weight or
+/// data file, an option against what the program declared) cannot be used. Each says which.
+/// (The causes are boxed: they are large, and a run fails once.)
+#[derive(Debug, Error)]
+pub enum RunError {
+    #[error(transparent)]
+    Program(Box<ProbeError>),
+    #[error(transparent)]
+    Check(Box<plumb_fd::CheckError>),
+    #[error(transparent)]
+    Compare(Box<plumb_diagnose::report::CompareError>),
+    #[error(transparent)]
+    Tensors(Box<plumb_formats::TensorFileError>),
+    #[error(transparent)]
+    Data(Box<plumb_formats::DataError>),
+    #[error("{0}")]
+    Input(String),
+}
+
+macro_rules! boxed_from {
+    ($($variant:ident: $cause:ty),*) => {$(
+        impl From<$cause> for RunError {
+            fn from(e: $cause) -> RunError {
+                RunError::$variant(Box::new(e))
+            }
+        }
+    )*};
+}
+
+boxed_from!(
+    Program: ProbeError,
+    Check: plumb_fd::CheckError,
+    Compare: plumb_diagnose::report::CompareError,
+    Tensors: plumb_formats::TensorFileError,
+    Data: plumb_formats::DataError
+);

@@ -62,6 +62,9 @@ pub struct Hello {
     /// keys `x` and `y`): what a black box without a description needs to draw data for it.
     pub x: Option<Vec<usize>>,
     pub y: Option<Vec<usize>>,
+    /// Whether its gradient replies end with the input gradient, a tensor `input` of the loaded
+    /// x's shape (optional hello key `"input_gradient": true`).
+    pub input_gradient: bool,
 }
 
 /// One change of a perturbation: add `delta` to entry `index` (flat, C order) of tensor `tensor`.
@@ -97,8 +100,11 @@ pub struct Program {
     /// The most float64 values the reply to the current request may announce (the reader checks
     /// before it allocates).
     limit: Arc<AtomicU64>,
-    /// The parameters the program declared (for the gradient reply's limit).
+    /// The parameters the program declared, and x's values when it sends the input gradient
+    /// (for the gradient reply's limit).
     declared: u64,
+    /// Whether the hello said gradient replies carry the input gradient.
+    input_gradient: bool,
     /// Requests made, and losses asked for in `losses` requests.
     requests: usize,
     losses_asked: usize,
@@ -198,6 +204,7 @@ impl Program {
             child,
             limit,
             declared: 0,
+            input_gradient: false,
             requests: 0,
             losses_asked: 0,
             command: text,
@@ -229,16 +236,22 @@ impl Program {
         let reply = self.request("hello", &header, &[], "hello")?;
         let hello = hello_reply(&reply.header, expected)?;
         self.declared = hello.tensors.iter().map(|t| t.len() as u64).sum();
+        self.input_gradient = hello.input_gradient;
         Ok(hello)
     }
 
-    /// Sends the parameters (in the hello's order) and the data; waits for `ready`.
+    /// Sends the parameters (in the hello's order) and the data, x and y each with its shape
+    /// (samples first); waits for `ready`.
     pub fn load(
         &mut self,
         tensors: &[(TensorSpec, &[f64])],
-        x: (&[usize; 2], &[f64]),
-        y: (&[usize; 2], &[f64]),
+        x: (&[usize], &[f64]),
+        y: (&[usize], &[f64]),
     ) -> Result<(), ProbeError> {
+        if self.input_gradient {
+            // The gradient reply also carries the input gradient, one value per value of x.
+            self.declared = self.declared.saturating_add(x.1.len() as u64);
+        }
         let header = json!({
             "type": "load",
             "tensors": tensors.iter().map(|(s, _)| s.json()).collect::<Vec<_>>(),
@@ -530,7 +543,18 @@ fn hello_reply(h: &Value, expected: Option<&[TensorSpec]>) -> Result<Hello, Prob
             )),
         }
     };
+    let input_gradient = match h.get("input_gradient") {
+        None | Some(Value::Bool(false)) => false,
+        Some(Value::Bool(true)) => true,
+        Some(v) => {
+            return Err(malformed(
+                "hello",
+                format!("`input_gradient` must be true or false, not {v}"),
+            ));
+        }
+    };
     Ok(Hello {
+        input_gradient,
         name: h
             .get("name")
             .and_then(Value::as_str)

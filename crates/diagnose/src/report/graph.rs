@@ -13,10 +13,12 @@ use plumb_fd::{CheckConfig, Method, Precision, Status, check_graph};
 use plumb_formats::{AxisOrder, FileStorage, GraphDescription, TensorFile};
 use plumb_report::{SCHEMA_VERSION, Verdict};
 
+use plumb_report::Finding;
+
 use super::{
-    Certification, CompareError, CompareReport, ConventionsReport, NameReport, epsilon,
-    loss_verdict, mismatch_finding, name_findings, stored_dtypes, tensor_report,
-    uncertified_finding, widened_finding,
+    Certification, CompareError, CompareReport, ConventionsReport, LossReport, NameReport,
+    TensorReport, epsilon, loss_verdict, mismatch_finding, name_findings, stored_dtypes,
+    tensor_report, uncertified_finding, widened_finding,
 };
 use crate::{Expected, INPUT, Named, Tolerances, bind_gradient, judge_graph, parse_map};
 
@@ -72,7 +74,7 @@ fn canonical(desc: &GraphDescription, outside: &[Named]) -> Vec<Option<ArrayD<f6
 }
 
 /// The reference certified by the complex step on the default sample of the graph's parameters.
-fn certify_graph(loaded: &GraphLoaded, seed: u64) -> Result<Certification, CompareError> {
+pub fn certify_graph(loaded: &GraphLoaded, seed: u64) -> Result<Certification, CompareError> {
     let mut cfg = CheckConfig::new(Method::ComplexStep, Precision::F64);
     cfg.directions = Some(0);
     cfg.seed = seed;
@@ -109,7 +111,6 @@ pub fn compare_graph_report(
 ) -> Result<CompareReport, CompareError> {
     let desc = &loaded.desc;
     let graph = &desc.graph;
-    let b = &loaded.batch;
     let names_error = |error| CompareError::Names {
         path: gradient.to_path_buf(),
         error,
@@ -117,9 +118,7 @@ pub fn compare_graph_report(
     let (widened, dtypes) = stored_dtypes(&file);
     let single = !dtypes.contains(&plumb_formats::DType::F64);
     let map = parse_map(map).map_err(names_error)?;
-    let zeros = Array2::<f64>::zeros((b.len(), graph.input().size()));
-    let input_shape = desc.input_tensor_in(zeros.view(), loaded.order).shape;
-    let expected = expected_files(desc, &input_shape);
+    let expected = expected_files(desc, &graph_input_shape(loaded));
     let outside: Vec<Named> = file
         .tensors
         .into_iter()
@@ -144,21 +143,121 @@ pub fn compare_graph_report(
     }
     let tol_of =
         |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
+    let (tensors, mut findings) =
+        judge_graph_gradient(loaded, &outside, &tol_of).map_err(|message| CompareError::Input {
+            path: gradient.to_path_buf(),
+            message,
+        })?;
+    let input = outside.iter().find(|u| u.name == INPUT);
+    // Names: against the file tensors, the input gradient optional.
+    let files: Vec<Expected> = expected
+        .into_iter()
+        .filter(|e| e.name != INPUT || input.is_some())
+        .collect();
+    findings.extend(name_findings(&files, &outside));
+    if widened {
+        findings.push(widened_finding());
+    }
+    let reference = certify_graph(loaded, seed)?;
+    if !reference.certified {
+        findings.push(uncertified_finding());
+    }
+    let config = graph.loss_config();
+    let loss = loss.map(|v| {
+        let (r, f) = judge_graph_loss(loaded, v, single);
+        findings.extend(f);
+        r
+    });
+    let tol = Tolerances::for_precision(single);
+    Ok(CompareReport {
+        verdict: Verdict::of(&findings),
+        schema_version: SCHEMA_VERSION,
+        command: "compare",
+        description: desc.path.clone(),
+        weights: loaded.weights_source.clone(),
+        data: loaded.data_source.clone(),
+        gradient: gradient.to_path_buf(),
+        precision: if single { "f32" } else { "f64" },
+        precision_from: if widened { "values" } else { "dtype" },
+        conventions: ConventionsReport::of_config(&config),
+        names: bindings.iter().map(NameReport::of).collect(),
+        tolerance: tol.agreement,
+        residual_tolerance: tol.residual,
+        reference,
+        loss,
+        tensors,
+        findings,
+    })
+}
+
+/// The shape of the batch's input gradient as a program or a file gives it: (m, *input) in the
+/// data's axis order.
+pub fn graph_input_shape(loaded: &GraphLoaded) -> Vec<usize> {
+    let zeros = Array2::<f64>::zeros((loaded.batch.len(), loaded.desc.graph.input().size()));
+    loaded
+        .desc
+        .input_tensor_in(zeros.view(), loaded.order)
+        .shape
+}
+
+/// An outside loss of a network of any kind against the reference (data term and L2 term), with
+/// the likely reason when they differ (shared by compare and probe).
+pub fn judge_graph_loss(
+    loaded: &GraphLoaded,
+    outside: f64,
+    single: bool,
+) -> (LossReport, Option<Finding>) {
+    let graph = &loaded.desc.graph;
+    let b = &loaded.batch;
+    let config = graph.loss_config();
+    let total = graph.loss(&loaded.params, b.x.view(), b.y.view());
+    let l2 = config.l2_factor(b.len())
+        * loaded
+            .params
+            .iter()
+            .enumerate()
+            .filter(|(t, _)| graph.decays(*t))
+            .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
+            .sum::<f64>();
+    loss_verdict(
+        outside,
+        (total - l2, l2),
+        b.len(),
+        config.reduction,
+        config.l2_divisor,
+        single,
+    )
+}
+
+/// An outside gradient of a network of any kind against the reference, with the diagnosis
+/// (shared by compare and probe): `outside` holds the description's file tensors under their
+/// file names, in their declared storage (a tensor of another shape is judged only against
+/// hypotheses of that shape; an absent one is reported absent), and optionally `input`, the input
+/// gradient of shape [`graph_input_shape`]. Each tensor is held to `tol_of(its graph name)`.
+/// Reported under the graph's names in canonical shape, the input gradient last, with a finding
+/// per wrong tensor. `Err` says what is wrong with the input gradient's shape or the batch.
+pub fn judge_graph_gradient(
+    loaded: &GraphLoaded,
+    outside: &[Named],
+    tol_of: &dyn Fn(&str) -> Tolerances,
+) -> Result<(Vec<TensorReport>, Vec<Finding>), String> {
+    let desc = &loaded.desc;
+    let graph = &desc.graph;
+    let b = &loaded.batch;
+    let specs = graph.tensors();
+    let input_shape = graph_input_shape(loaded);
     let input = match outside.iter().find(|u| u.name == INPUT) {
         None => None,
         Some(u) if u.shape != input_shape => {
-            return Err(CompareError::Input {
-                path: gradient.to_path_buf(),
-                message: format!(
-                    "tensor `{INPUT}` (the input gradient) has shape {}, but the batch's input gradient is {} (samples, then the input's axes in the data's order); write it so, or leave it out",
-                    super::shape(&u.shape),
-                    super::shape(&input_shape)
-                ),
-            });
+            return Err(format!(
+                "tensor `{INPUT}` (the input gradient) has shape {}, but the batch's input gradient is {} (samples, then the input's axes in the data's order); write it so, or leave it out",
+                super::shape(&u.shape),
+                super::shape(&input_shape)
+            ));
         }
         Some(u) => Some(input_matrix(desc, u, loaded.order)),
     };
-    let params = canonical(desc, &outside);
+    let params = canonical(desc, outside);
     let judged = judge_graph(
         graph,
         &loaded.params,
@@ -166,12 +265,9 @@ pub fn compare_graph_report(
         b.y.view(),
         &params,
         input.as_ref().map(|a| a.view()),
-        &tol_of,
+        tol_of,
     )
-    .map_err(|e: GraphError| CompareError::Input {
-        path: gradient.to_path_buf(),
-        message: e.to_string(),
-    })?;
+    .map_err(|e: GraphError| e.to_string())?;
     // The canonical tensors, for the worst entry's index.
     let mut given: Vec<Named> = specs
         .iter()
@@ -207,61 +303,7 @@ pub fn compare_graph_report(
         }
         tensors.push(report);
     }
-    // Names: against the file tensors, the input gradient optional.
-    let files: Vec<Expected> = expected
-        .into_iter()
-        .filter(|e| e.name != INPUT || input.is_some())
-        .collect();
-    findings.extend(name_findings(&files, &outside));
-    if widened {
-        findings.push(widened_finding());
-    }
-    let reference = certify_graph(loaded, seed)?;
-    if !reference.certified {
-        findings.push(uncertified_finding());
-    }
-    let config = graph.loss_config();
-    let loss = loss.map(|v| {
-        let total = graph.loss(&loaded.params, b.x.view(), b.y.view());
-        let l2 = config.l2_factor(b.len())
-            * loaded
-                .params
-                .iter()
-                .enumerate()
-                .filter(|(t, _)| graph.decays(*t))
-                .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
-                .sum::<f64>();
-        let (r, f) = loss_verdict(
-            v,
-            (total - l2, l2),
-            b.len(),
-            config.reduction,
-            config.l2_divisor,
-            single,
-        );
-        findings.extend(f);
-        r
-    });
-    let tol = Tolerances::for_precision(single);
-    Ok(CompareReport {
-        verdict: Verdict::of(&findings),
-        schema_version: SCHEMA_VERSION,
-        command: "compare",
-        description: desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        gradient: gradient.to_path_buf(),
-        precision: if single { "f32" } else { "f64" },
-        precision_from: if widened { "values" } else { "dtype" },
-        conventions: ConventionsReport::of_config(&config),
-        names: bindings.iter().map(NameReport::of).collect(),
-        tolerance: tol.agreement,
-        residual_tolerance: tol.residual,
-        reference,
-        loss,
-        tensors,
-        findings,
-    })
+    Ok((tensors, findings))
 }
 
 /// The input gradient as the graph holds it (m × input size): a channels-last file's channel

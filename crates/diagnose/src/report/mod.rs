@@ -15,7 +15,9 @@ use serde::Serialize;
 
 mod graph;
 
-pub use graph::compare_graph_report;
+pub use graph::{
+    certify_graph, compare_graph_report, graph_input_shape, judge_graph_gradient, judge_graph_loss,
+};
 
 use crate::{
     Binding, Expected, NameError, Named, Problem, TensorJudgement, Tolerances, bind_gradient,
@@ -567,7 +569,7 @@ fn widened_finding() -> Finding {
 }
 
 /// The finding that the complex step does not certify the reference.
-fn uncertified_finding() -> Finding {
+pub fn uncertified_finding() -> Finding {
     Finding::new(
         "reference-uncertified",
         Severity::Warning,
