@@ -152,7 +152,7 @@ impl<'a, S: Scalar> Base<'a, S> {
         let mut input: Option<Array2<S>> = None;
         let mut l2_sum = self.l2_before.get(first).copied().unwrap_or(S::zero());
         let mut data = S::zero();
-        for l in first..=last {
+        for (l, layer) in layers.iter().enumerate().skip(first) {
             let theta = moved(l);
             let theta = theta.as_ref().unwrap_or(self.weights.layer(l));
             if !self.l2_before.is_empty() {
@@ -160,11 +160,11 @@ impl<'a, S: Scalar> Base<'a, S> {
             }
             let a = input.as_ref().unwrap_or(&t.a[first]);
             let z = Network::affine(theta.view(), a.view());
-            crossed |= crosses(layers[l].activation, t.z[l].iter(), z.iter());
+            crossed |= crosses(layer.activation, t.z[l].iter(), z.iter());
             if l == last {
                 data = self.output_loss(&z);
             } else {
-                input = Some(layers[l].activation.apply(z.view()));
+                input = Some(layer.activation.apply(z.view()));
             }
         }
         (data + net.l2_term(l2_sum, self.samples()), crossed)
