@@ -608,7 +608,7 @@ pub(super) fn build_report<P: Location + Clone>(
             .figure("direction_mismatches", global_bad),
         );
     }
-    let global = Settlement::of(global.into_iter());
+    let global = Settlement::of(global);
     let coverage = checked.coverage;
     let all_checked = coverage.checked >= coverage.parameters;
     let conclusive = (global.conclusive() || all_checked) && all_conclusive;
