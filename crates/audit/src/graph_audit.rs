@@ -72,12 +72,7 @@ pub fn fitted_shapes(w: &GraphWeights) -> ShapeAudit {
                 .collect();
             LayerShapes {
                 layer: j + 1,
-                terms: LayerTerms::Graph {
-                    name: node.name.clone(),
-                    kind: node.layer.kind(),
-                    input: node.layer.input().to_string(),
-                    output: node.layer.output().to_string(),
-                },
+                terms: LayerTerms::of_node(node),
                 parameters: tensors
                     .iter()
                     .map(|t| t.expected.iter().product::<usize>())

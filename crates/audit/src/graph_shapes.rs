@@ -262,12 +262,7 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
             };
             LayerShapes {
                 layer: j + 1,
-                terms: LayerTerms::Graph {
-                    name: node.name.clone(),
-                    kind: node.layer.kind(),
-                    input: node.layer.input().to_string(),
-                    output: node.layer.output().to_string(),
-                },
+                terms: LayerTerms::of_node(node),
                 parameters: node
                     .layer
                     .params()

@@ -7,6 +7,7 @@
 
 use std::collections::{BTreeSet, HashMap, HashSet};
 
+use plumb_engine::graph::Node;
 use plumb_formats::{
     Description, ExpectedTensor, Layout, Role, Tensor, TensorFile, bind, expected_tensors,
     shape_fits, shape_text,
@@ -76,6 +77,16 @@ pub enum LayerTerms {
 }
 
 impl LayerTerms {
+    /// The terms of a node of the layer graph.
+    pub fn of_node(node: &Node) -> LayerTerms {
+        LayerTerms::Graph {
+            name: node.name.clone(),
+            kind: node.layer.kind(),
+            input: node.layer.input().to_string(),
+            output: node.layer.output().to_string(),
+        }
+    }
+
     /// `dense relu`, `conv2d`: what the layer is.
     pub fn kind(&self) -> String {
         match self {
