@@ -17,8 +17,9 @@ use crate::release::{flow_findings, health_findings, init_findings, symmetry_fin
 use crate::robust::{largest, moments, norm};
 use crate::values::{Values, values_findings};
 use crate::{
-    Audit, AuditShapes, LayerFlow, LayerShapes, ShapeAudit, Status, TensorShape, Thresholds,
-    audit_graph_shapes, correct_across_layers, sigma_max, tensor_init, unit_health, verdict_at,
+    Audit, AuditShapes, LayerFlow, LayerShapes, LayerTerms, ShapeAudit, Status, TensorShape,
+    Thresholds, audit_graph_shapes, correct_across_layers, sigma_max, tensor_init, unit_health,
+    verdict_at,
 };
 
 /// A graph with the parameters a weight file gave it.
@@ -71,9 +72,7 @@ pub fn fitted_shapes(w: &GraphWeights) -> ShapeAudit {
                 .collect();
             LayerShapes {
                 layer: j + 1,
-                inputs: node.layer.input().size(),
-                units: node.layer.output().size(),
-                activation: node.activation.to_string(),
+                terms: LayerTerms::of_node(node),
                 parameters: tensors
                     .iter()
                     .map(|t| t.expected.iter().product::<usize>())

@@ -19,24 +19,8 @@ use plumb_formats::{
 use plumb_report::{Finding, Severity, Verdict};
 use serde::Serialize;
 
-use crate::{Status, StrayTensor, TensorShape};
-
-/// One layer of the graph audit.
-#[derive(Clone, Debug, Serialize)]
-pub struct KindShapes {
-    /// 1-based.
-    pub layer: usize,
-    pub name: String,
-    pub kind: &'static str,
-    /// One sample's shape going in and coming out.
-    pub input: String,
-    pub output: String,
-    pub parameters: usize,
-    /// The file tensors of the layer (an augmented dense matrix is one).
-    pub tensors: Vec<TensorShape>,
-    /// `pass`, `fail`, or `unchecked` without a weight file.
-    pub verdict: &'static str,
-}
+use crate::shapes::by_name;
+use crate::{LayerShapes, LayerTerms, Status, StrayTensor, TensorShape};
 
 /// The whole graph dimension audit.
 #[derive(Clone, Debug, Serialize)]
@@ -46,7 +30,7 @@ pub struct GraphShapeAudit {
     pub verdict: Verdict,
     /// The storage of dense layers the description declares.
     pub layout: Layout,
-    pub layers: Vec<KindShapes>,
+    pub layers: Vec<LayerShapes>,
     pub unexpected: Vec<StrayTensor>,
     pub total_parameters: usize,
     pub findings: Vec<Finding>,
@@ -276,12 +260,9 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
             } else {
                 "fail"
             };
-            KindShapes {
+            LayerShapes {
                 layer: j + 1,
-                name: node.name.clone(),
-                kind: node.layer.kind(),
-                input: node.layer.input().to_string(),
-                output: node.layer.output().to_string(),
+                terms: LayerTerms::of_node(node),
                 parameters: node
                     .layer
                     .params()
@@ -301,15 +282,6 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
         total_parameters: desc.graph.parameters(),
         findings,
     }
-}
-
-/// The file's tensors by name, the first of a name.
-fn by_name(file: &TensorFile) -> HashMap<&str, &Tensor> {
-    file.tensors
-        .iter()
-        .rev()
-        .map(|t| (t.name.as_str(), t))
-        .collect()
 }
 
 /// " (storage \"hwio\")" when the storage is not the canonical one.

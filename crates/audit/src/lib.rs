@@ -42,7 +42,7 @@ pub use graph_health::{
     InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
     output_units,
 };
-pub use graph_shapes::{GraphShapeAudit, KindShapes, audit_graph_shapes};
+pub use graph_shapes::{GraphShapeAudit, audit_graph_shapes};
 pub use health::{BINS, LayerHealth, Units, layer_health, sparkline, unit_health};
 pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
@@ -50,7 +50,9 @@ pub use init::{
 };
 pub use release::{Audit, AuditShapes, Thresholds, audit, verdict_at};
 pub use robust::{Moments, largest, moments, moments_of, norm};
-pub use shapes::{LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes};
+pub use shapes::{
+    LayerShapes, LayerTerms, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes,
+};
 pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
 pub use units::{unit_ranges, units_phrase};
 pub use values::{Values, check_values, values_findings};

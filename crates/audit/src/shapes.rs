@@ -7,6 +7,7 @@
 
 use std::collections::{BTreeSet, HashMap, HashSet};
 
+use plumb_engine::graph::Node;
 use plumb_formats::{
     Description, ExpectedTensor, Layout, Role, Tensor, TensorFile, bind, expected_tensors,
     shape_fits, shape_text,
@@ -41,18 +42,74 @@ pub struct TensorShape {
     pub status: Status,
 }
 
-/// One layer of the audit.
+/// One layer of the audit, of a dense description or of any kind.
 #[derive(Clone, Debug, Serialize)]
 pub struct LayerShapes {
     /// 1-based.
     pub layer: usize,
-    pub inputs: usize,
-    pub units: usize,
-    pub activation: String,
+    #[serde(flatten)]
+    pub terms: LayerTerms,
     pub parameters: usize,
+    /// The file tensors of the layer (an augmented dense matrix is one).
     pub tensors: Vec<TensorShape>,
     /// `pass`, `fail`, or `unchecked` without a weight file.
     pub verdict: &'static str,
+}
+
+/// What a layer is, in its description's terms (docs/json.md: the dense audit's fields, or the
+/// graph audit's).
+#[derive(Clone, Debug, Serialize)]
+#[serde(untagged)]
+pub enum LayerTerms {
+    /// A layer of a dense description: fan-in, units and activation.
+    Dense {
+        inputs: usize,
+        units: usize,
+        activation: String,
+    },
+    /// A layer of the graph: its name and kind, and one sample's shape going in and coming out.
+    Graph {
+        name: String,
+        kind: &'static str,
+        input: String,
+        output: String,
+    },
+}
+
+impl LayerTerms {
+    /// The terms of a node of the layer graph.
+    pub fn of_node(node: &Node) -> LayerTerms {
+        LayerTerms::Graph {
+            name: node.name.clone(),
+            kind: node.layer.kind(),
+            input: node.layer.input().to_string(),
+            output: node.layer.output().to_string(),
+        }
+    }
+
+    /// `dense relu`, `conv2d`: what the layer is.
+    pub fn kind(&self) -> String {
+        match self {
+            LayerTerms::Dense { activation, .. } => format!("dense {activation}"),
+            LayerTerms::Graph { kind, .. } => kind.to_string(),
+        }
+    }
+
+    /// `4 → 3`, `(3, 8, 8) → (6, 8, 8)`.
+    pub fn in_out(&self) -> String {
+        match self {
+            LayerTerms::Dense { inputs, units, .. } => format!("{inputs} → {units}"),
+            LayerTerms::Graph { input, output, .. } => format!("{input} → {output}"),
+        }
+    }
+
+    /// The layer's name, when the description gives one.
+    pub fn name(&self) -> Option<&str> {
+        match self {
+            LayerTerms::Dense { .. } => None,
+            LayerTerms::Graph { name, .. } => Some(name),
+        }
+    }
 }
 
 /// A tensor in the file that no layer uses.
@@ -248,7 +305,7 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
 
 /// The file's tensors by name (the first of a name, as `TensorFile::get` finds it): one lookup
 /// per expected tensor instead of a scan of the file, which may hold 100,000 tensors.
-fn by_name(file: &TensorFile) -> HashMap<&str, &Tensor> {
+pub(crate) fn by_name(file: &TensorFile) -> HashMap<&str, &Tensor> {
     file.tensors
         .iter()
         .rev()
@@ -486,9 +543,11 @@ fn build_layers(
             };
             LayerShapes {
                 layer: l + 1,
-                inputs: spec.inputs,
-                units: spec.units,
-                activation: spec.activation.to_string(),
+                terms: LayerTerms::Dense {
+                    inputs: spec.inputs,
+                    units: spec.units,
+                    activation: spec.activation.to_string(),
+                },
                 parameters: spec.parameters(),
                 tensors,
                 verdict,

@@ -1,224 +1,20 @@
 //! `plumb grad NET [-w W] [-d D] [-o G] [--input-gradient]`: the reference loss and gradient, on
 //! the dense engine for dense descriptions and on the layer graph for any other kind.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use anyhow::{Result, bail};
-use plumb_engine::graph::Dense;
-use plumb_fd::report::GraphLoaded;
-use plumb_formats::{DType, FileFormat, GraphDescription, Tensor, disassemble, write_tensor_file};
-use plumb_report::{Block, Case, Cell, Document, Finding, Severity, Table, Tone, Verdict};
-use serde::Serialize;
+pub use plumb_fd::report::GradReport;
+use plumb_fd::report::{dense_input_gradient, graph_gradient_report};
+use plumb_formats::{DType, FileFormat, write_tensor_file};
+use plumb_report::{Block, Case, Cell, Document, Table, Tone, Verdict};
 
 use crate::args::{DTypeArg, GradArgs};
-use crate::inputs::{
-    AnyLoaded, DataSource, Loaded, WeightsSource, check_output, load_any, output_format,
-};
-use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, num, shape};
+use crate::inputs::{AnyLoaded, WeightsSource, check_output, load_any, output_format};
+use crate::output::{Settings, graph_network_id, network_id, num, shape};
 
-/// Per-tensor summary of the gradient.
-#[derive(Clone, Debug, Serialize)]
-pub struct TensorGradient {
-    pub name: String,
-    /// 1-based layer.
-    pub layer: usize,
-    pub shape: Vec<usize>,
-    /// Euclidean norm of the tensor's gradient.
-    pub norm: f64,
-    /// Largest |∂J/∂θ| in the tensor, and where (its index in the tensor's own shape).
-    pub max_abs: f64,
-    pub max_at: Vec<usize>,
-}
-
-/// The JSON report of `plumb grad` (docs/json.md).
-#[derive(Serialize)]
-pub struct GradReport {
-    pub verdict: Verdict,
-    pub schema_version: u32,
-    pub command: &'static str,
-    pub description: PathBuf,
-    pub weights: WeightsSource,
-    pub data: DataSource,
-    pub samples: usize,
-    /// J = data term + L2 term.
-    pub loss: f64,
-    pub data_loss: f64,
-    pub l2_term: f64,
-    pub tensors: Vec<TensorGradient>,
-    pub output: Option<PathBuf>,
-    pub findings: Vec<Finding>,
-}
-
-pub struct Computed {
-    pub report: GradReport,
-    pub tensors: Vec<Tensor>,
-}
-
-/// Computes the loss and gradient and summarises them (shared with the demo).
-pub fn compute(loaded: &Loaded) -> Computed {
-    let net = &loaded.desc.network;
-    let b = &loaded.batch;
-    let trace = net.forward(&loaded.weights, b.x.view());
-    let data_loss = net.data_loss(&trace, b.y.view());
-    let l2_term = net.l2_penalty(&loaded.weights, b.len());
-    let grad = net.backward(&loaded.weights, &trace, b.y.view());
-    let loss = data_loss + l2_term;
-    let tensors = disassemble(&loaded.desc, &grad);
-    let layers: Vec<usize> = plumb_formats::expected_tensors(&loaded.desc, loaded.desc.layout)
-        .iter()
-        .map(|e| e.layer + 1)
-        .collect();
-    summarised(
-        loaded.desc.path.clone(),
-        &loaded.weights_source,
-        &loaded.data_source,
-        b.len(),
-        (loss, data_loss, l2_term),
-        tensors,
-        &layers,
-    )
-}
-
-/// The report of a loss (J, data term, L2 term) and gradient tensors (`layers[i]` is tensor i's
-/// 1-based layer, 0 for the input), with a finding for what is not finite.
-fn summarised(
-    description: PathBuf,
-    weights: &WeightsSource,
-    data: &DataSource,
-    samples: usize,
-    (loss, data_loss, l2_term): (f64, f64, f64),
-    tensors: Vec<Tensor>,
-    layers: &[usize],
-) -> Computed {
-    let summaries: Vec<TensorGradient> = tensors
-        .iter()
-        .zip(layers)
-        .map(|(t, &layer)| summarise(t, layer))
-        .collect();
-    let mut findings = Vec::new();
-    if !loss.is_finite() {
-        findings.push(
-            Finding::new(
-                "non-finite-loss",
-                Severity::Error,
-                format!(
-                    "the loss is {loss}: the weights or data hold non-finite or huge values, or the network overflows; run `plumb shapes` and inspect the weight file"
-                ),
-            )
-            .figure("loss", loss.to_string()),
-        );
-    }
-    for s in &summaries {
-        if !s.norm.is_finite() {
-            findings.push(
-                Finding::new(
-                    "non-finite-gradient",
-                    Severity::Error,
-                    "the gradient holds NaN or infinite entries".to_string(),
-                )
-                .tensor(&s.name)
-                .layer(s.layer),
-            );
-        }
-    }
-    let verdict = Verdict::of(&findings);
-    Computed {
-        report: GradReport {
-            verdict,
-            schema_version: SCHEMA_VERSION,
-            command: "grad",
-            description,
-            weights: weights.clone(),
-            data: data.clone(),
-            samples,
-            loss,
-            data_loss,
-            l2_term,
-            tensors: summaries,
-            output: None,
-            findings,
-        },
-        tensors,
-    }
-}
-
-fn summarise(t: &Tensor, layer: usize) -> TensorGradient {
-    let norm = t.data.iter().map(|v| v * v).sum::<f64>().sqrt();
-    let (k, max_abs) = t
-        .data
-        .iter()
-        .enumerate()
-        .fold((0, 0.0f64), |(bk, bv), (k, v)| {
-            if v.abs() > bv || v.is_nan() {
-                (k, v.abs())
-            } else {
-                (bk, bv)
-            }
-        });
-    let mut max_at = vec![0; t.shape.len()];
-    let mut rest = k;
-    for (i, &d) in t.shape.iter().enumerate().rev() {
-        max_at[i] = rest % d.max(1);
-        rest /= d.max(1);
-    }
-    TensorGradient {
-        name: t.name.clone(),
-        layer,
-        shape: t.shape.clone(),
-        norm,
-        max_abs,
-        max_at,
-    }
-}
-
-/// The loss and gradient of a network of any kind on the layer graph, with the input gradient
-/// when asked; gradients are summarised and written per file tensor, in the declared storage.
-pub fn compute_graph(loaded: &GraphLoaded, input_gradient: bool) -> Result<Computed> {
-    let desc = &loaded.desc;
-    let graph = &desc.graph;
-    let b = &loaded.batch;
-    let g = graph.gradient(&loaded.params, b.x.view(), b.y.view(), None);
-    let l2_term = graph.loss_config().l2_factor(b.len())
-        * loaded
-            .params
-            .iter()
-            .enumerate()
-            .filter(|(t, _)| graph.decays(*t))
-            .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
-            .sum::<f64>();
-    let mut tensors = desc.to_file(&g.params)?;
-    let mut layers: Vec<usize> = desc.files.iter().map(|f| f.layer + 1).collect();
-    if input_gradient {
-        tensors.push(desc.input_tensor_in(g.input.view(), loaded.order));
-        layers.push(0);
-    }
-    Ok(summarised(
-        loaded.desc.path.clone(),
-        &loaded.weights_source,
-        &loaded.data_source,
-        b.len(),
-        (g.loss, g.loss - l2_term, l2_term),
-        tensors,
-        &layers,
-    ))
-}
-
-/// The input gradient of a dense network, from the same network as a graph (the dense engine
-/// gives parameter gradients only).
-fn dense_input_gradient(loaded: &Loaded, graph: &GraphDescription) -> Tensor {
-    let params: Vec<_> = loaded
-        .weights
-        .layers()
-        .iter()
-        .flat_map(|m| {
-            let (w, b) = Dense::split(m);
-            [w.into_dyn(), b.into_dyn()]
-        })
-        .collect();
-    let b = &loaded.batch;
-    let g = graph.graph.gradient(&params, b.x.view(), b.y.view(), None);
-    graph.input_tensor(g.input.view())
-}
+/// The gradient of a dense network (shared with the demo).
+pub use plumb_fd::report::gradient_report as compute;
 
 pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
     let inputs = &args.inputs;
@@ -237,15 +33,13 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         AnyLoaded::Dense(loaded, graph) => {
             let mut computed = compute(&loaded);
             if args.input_gradient {
-                let t = dense_input_gradient(&loaded, &graph);
-                computed.report.tensors.push(summarise(&t, 0));
-                computed.tensors.push(t);
+                computed.push_input(dense_input_gradient(&loaded, &graph));
             }
             let id = network_id(&loaded.desc);
             (computed, id, loaded.weights_source)
         }
         AnyLoaded::Graph(loaded) => {
-            let computed = compute_graph(&loaded, args.input_gradient)?;
+            let computed = graph_gradient_report(&loaded, args.input_gradient)?;
             let id = graph_network_id(&loaded.desc);
             (computed, id, loaded.weights_source)
         }

@@ -1,10 +1,12 @@
 //! `plumb shapes NET [--weights W]`: the dimension audit, of a dense description or of any kind.
 
+use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use plumb_audit::{
-    GraphShapeAudit, ShapeAudit, Status, StrayTensor, TensorShape, audit_graph_shapes, audit_shapes,
+    GraphShapeAudit, LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_graph_shapes,
+    audit_shapes,
 };
 use plumb_formats::{AnyDescription, Description, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
@@ -195,6 +197,133 @@ fn closing(
     }
 }
 
+/// The one table of a dimension audit, dense or of any kind: per layer what it is and one
+/// sample's sizes in and out, per tensor its expected and found shapes; the storage column when
+/// the description declares storage orders (`storage`: tensor name → order).
+fn layers_table(
+    layers: &[LayerShapes],
+    unexpected: &[StrayTensor],
+    total: usize,
+    storage: Option<&HashMap<&str, &str>>,
+) -> Table {
+    let with_storage = storage.is_some();
+    let row = |cells: [Cell; 10]| -> Vec<Cell> {
+        cells
+            .into_iter()
+            .enumerate()
+            .filter(|(i, _)| with_storage || *i != 4)
+            .map(|(_, c)| c)
+            .collect()
+    };
+    let headers = [
+        "layer",
+        "kind",
+        "in → out",
+        "tensor",
+        "storage",
+        "expected",
+        "found",
+        "dtype",
+        "parameters",
+        "verdict",
+    ];
+    let mut t = Table::new(
+        headers
+            .into_iter()
+            .enumerate()
+            .filter(|(i, _)| with_storage || *i != 4)
+            .map(|(_, h)| h),
+    );
+    for layer in layers {
+        let label = match layer.terms.name() {
+            Some(name) => format!("{} {name}", layer.layer),
+            None => layer.layer.to_string(),
+        };
+        let head = [
+            Cell::from(label),
+            Cell::from(layer.terms.kind()),
+            Cell::from(layer.terms.in_out()),
+        ];
+        if layer.tensors.is_empty() {
+            let [a, b, c] = head;
+            t.push(row([
+                a,
+                b,
+                c,
+                Cell::from("—"),
+                "".into(),
+                "".into(),
+                "".into(),
+                "".into(),
+                Cell::from("0"),
+                verdict_cell(layer.verdict),
+            ]));
+            continue;
+        }
+        for (i, ts) in layer.tensors.iter().enumerate() {
+            let first = i == 0;
+            let [a, b, c] = if first {
+                head.clone()
+            } else {
+                [Cell::from(""), Cell::from(""), Cell::from("")]
+            };
+            let dtype_tone = if ts.status == Status::NotFloat {
+                Tone::Bad
+            } else {
+                Tone::Plain
+            };
+            let order = storage.and_then(|s| s.get(ts.name.as_str()).copied());
+            t.push(row([
+                a,
+                b,
+                c,
+                Cell::from(ts.name.clone()),
+                Cell::from(order.unwrap_or("")),
+                Cell::from(shape(&ts.expected)),
+                found_cell(ts),
+                Cell::new(ts.dtype.unwrap_or("—"), dtype_tone),
+                Cell::from(if first {
+                    layer.parameters.to_string()
+                } else {
+                    String::new()
+                }),
+                if first {
+                    verdict_cell(layer.verdict)
+                } else {
+                    Cell::from("")
+                },
+            ]));
+        }
+    }
+    for s in unexpected {
+        t.push(row([
+            Cell::from("—"),
+            Cell::from(""),
+            Cell::from(""),
+            Cell::new(s.name.clone(), Tone::Warn),
+            Cell::from(""),
+            Cell::from("—"),
+            Cell::new(shape(&s.shape), Tone::Warn),
+            Cell::from(s.dtype),
+            Cell::from(""),
+            Cell::new("unused", Tone::Warn),
+        ]));
+    }
+    t.footer(row([
+        Cell::from("total"),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        "".into(),
+        Cell::from(total.to_string()),
+        "".into(),
+    ]));
+    t
+}
+
 /// The human form of the graph audit: per layer its kind and one sample's shapes in and out,
 /// per file tensor its declared storage, expected and found shapes.
 pub fn graph_document(
@@ -218,105 +347,17 @@ pub fn graph_document(
         weights_fact(weights),
     ];
     doc.push(Block::Facts(facts));
-    let mut t = Table::new([
-        "layer",
-        "kind",
-        "in → out",
-        "tensor",
-        "storage",
-        "expected",
-        "found",
-        "dtype",
-        "parameters",
-        "verdict",
-    ]);
-    let storage: std::collections::HashMap<&str, &str> = desc
+    let storage: HashMap<&str, &str> = desc
         .files
         .iter()
         .map(|f| (f.name.as_str(), f.storage.letters()))
         .collect();
-    for layer in &audit.layers {
-        let head = [
-            Cell::from(format!("{} {}", layer.layer, layer.name)),
-            Cell::from(layer.kind),
-            Cell::from(format!("{} → {}", layer.input, layer.output)),
-        ];
-        if layer.tensors.is_empty() {
-            let [a, b, c] = head;
-            t.push([
-                a,
-                b,
-                c,
-                Cell::from("—"),
-                "".into(),
-                "".into(),
-                "".into(),
-                "".into(),
-                Cell::from("0"),
-                verdict_cell(layer.verdict),
-            ]);
-            continue;
-        }
-        for (i, ts) in layer.tensors.iter().enumerate() {
-            let first = i == 0;
-            let [a, b, c] = if first {
-                head.clone()
-            } else {
-                [Cell::from(""), Cell::from(""), Cell::from("")]
-            };
-            let dtype_tone = if ts.status == Status::NotFloat {
-                Tone::Bad
-            } else {
-                Tone::Plain
-            };
-            t.push([
-                a,
-                b,
-                c,
-                Cell::from(ts.name.clone()),
-                Cell::from(storage.get(ts.name.as_str()).copied().unwrap_or("")),
-                Cell::from(shape(&ts.expected)),
-                found_cell(ts),
-                Cell::new(ts.dtype.unwrap_or("—"), dtype_tone),
-                Cell::from(if first {
-                    layer.parameters.to_string()
-                } else {
-                    String::new()
-                }),
-                if first {
-                    verdict_cell(layer.verdict)
-                } else {
-                    Cell::from("")
-                },
-            ]);
-        }
-    }
-    for s in &audit.unexpected {
-        t.push([
-            Cell::from("—"),
-            Cell::from(""),
-            Cell::from(""),
-            Cell::new(s.name.clone(), Tone::Warn),
-            Cell::from(""),
-            Cell::from("—"),
-            Cell::new(shape(&s.shape), Tone::Warn),
-            Cell::from(s.dtype),
-            Cell::from(""),
-            Cell::new("unused", Tone::Warn),
-        ]);
-    }
-    t.footer([
-        Cell::from("total"),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        Cell::from(audit.total_parameters.to_string()),
-        "".into(),
-    ]);
+    let t = layers_table(
+        &audit.layers,
+        &audit.unexpected,
+        audit.total_parameters,
+        Some(&storage),
+    );
     doc.push(Block::Table(t));
     closing(
         &mut doc,
@@ -345,116 +386,18 @@ pub fn document(
         ("network".to_string(), sizes.join(" → ")),
         ("layout".to_string(), desc.layout.to_string()),
     ];
-    match weights {
-        Some((p, f)) => facts.push((
-            "weights".to_string(),
-            format!(
-                "{} ({}, {} tensor{})",
-                p.display(),
-                f.format.name(),
-                f.tensors.len(),
-                if f.tensors.len() == 1 { "" } else { "s" }
-            ),
-        )),
-        None => facts.push((
-            "weights".to_string(),
-            "none given: expected shapes only".to_string(),
-        )),
-    }
+    facts.push(weights_fact(weights));
     if let Some(l) = audit.detected_layout {
         facts.push(("file's layout".to_string(), l.to_string()));
     }
     doc.push(Block::Facts(facts));
 
-    let mut t = Table::new([
-        "layer",
-        "in → out",
-        "activation",
-        "tensor",
-        "expected",
-        "found",
-        "dtype",
-        "parameters",
-        "verdict",
-    ]);
-    for layer in &audit.layers {
-        for (i, ts) in layer.tensors.iter().enumerate() {
-            let first = i == 0;
-            let (found, tone) = match ts.status {
-                Status::Unchecked => ("—".to_string(), Tone::Dim),
-                Status::Missing => ("missing".to_string(), Tone::Bad),
-                Status::Ok => (shape(ts.found.as_deref().unwrap_or_default()), Tone::Good),
-                Status::WrongShape | Status::NotFloat => {
-                    (shape(ts.found.as_deref().unwrap_or_default()), Tone::Bad)
-                }
-            };
-            let dtype_tone = if ts.status == Status::NotFloat {
-                Tone::Bad
-            } else {
-                Tone::Plain
-            };
-            let verdict_tone = match layer.verdict {
-                "pass" => Tone::Good,
-                "fail" => Tone::Bad,
-                _ => Tone::Dim,
-            };
-            t.push([
-                Cell::from(if first {
-                    layer.layer.to_string()
-                } else {
-                    String::new()
-                }),
-                Cell::from(if first {
-                    format!("{} → {}", layer.inputs, layer.units)
-                } else {
-                    String::new()
-                }),
-                Cell::from(if first {
-                    layer.activation.clone()
-                } else {
-                    String::new()
-                }),
-                Cell::from(ts.name.clone()),
-                Cell::from(shape(&ts.expected)),
-                Cell::new(found, tone),
-                Cell::new(ts.dtype.unwrap_or("—"), dtype_tone),
-                Cell::from(if first {
-                    layer.parameters.to_string()
-                } else {
-                    String::new()
-                }),
-                if first {
-                    Cell::new(layer.verdict, verdict_tone)
-                } else {
-                    Cell::from("")
-                },
-            ]);
-        }
-    }
-    for s in &audit.unexpected {
-        t.push([
-            Cell::from("—"),
-            Cell::from(""),
-            Cell::from(""),
-            Cell::new(s.name.clone(), Tone::Warn),
-            Cell::from("—"),
-            Cell::new(shape(&s.shape), Tone::Warn),
-            Cell::from(s.dtype),
-            Cell::from(""),
-            Cell::new("unused", Tone::Warn),
-        ]);
-    }
-    t.footer([
-        Cell::from("total"),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        "".into(),
-        Cell::from(audit.total_parameters.to_string()),
-        "".into(),
-    ]);
+    let t = layers_table(
+        &audit.layers,
+        &audit.unexpected,
+        audit.total_parameters,
+        None,
+    );
     doc.push(Block::Table(t));
     closing(
         &mut doc,

@@ -33,8 +33,8 @@ mod graph_check;
 mod gross;
 mod method;
 mod order;
+mod part;
 pub mod report;
-mod summary;
 mod sweep;
 
 pub use check::{
@@ -57,5 +57,5 @@ pub use graph_check::{
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
 pub use order::{worse_error, worst_first};
-pub use summary::{Part, PartSummary, summarise};
+pub use part::Part;
 pub use sweep::{Curve, SweepPlan, steps, sweep};

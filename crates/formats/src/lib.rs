@@ -33,6 +33,7 @@ mod npz;
 mod safetensors_file;
 mod settings;
 mod tensor;
+mod tensor_file;
 mod walk;
 
 pub use atomic::{Existing, leftovers, write_atomically, write_file};
@@ -56,7 +57,5 @@ pub use layout::{
     ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
 };
 pub use settings::{KINDS, KindSettings, LayerSettings};
-pub use tensor::{
-    DType, FileFormat, Tensor, TensorFile, TensorFileError, read_tensors, shape_text,
-    write_tensor_file, write_tensors,
-};
+pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, shape_text};
+pub use tensor_file::{read_tensors, write_tensor_file, write_tensors};

@@ -1,12 +1,11 @@
-//! The shared model of a weight or gradient file — named tensors widened to f64 — and the dispatch
-//! from a path to the reader or writer of its format.
+//! The shared model of a weight or gradient file — named tensors widened to f64, the formats and
+//! their errors. It uses no codec: the codecs (npy.rs, npz.rs, safetensors_file.rs) build on it,
+//! and tensor_file.rs dispatches a path to them.
 
 use std::fmt;
 use std::path::{Path, PathBuf};
 
 use ndarray::Array2;
-
-use crate::{npy, npz, safetensors_file};
 
 /// The element type a tensor is stored in. Values are always handed out as f64; the stored type
 /// still matters: it sets the precision a gradient check can expect, and a shape audit reports it.
@@ -147,26 +146,6 @@ impl FileFormat {
             FileFormat::Npz => "NPZ",
             FileFormat::Safetensors => "safetensors",
         }
-    }
-
-    /// What the bytes look like, judged by magic numbers only. `None` when nothing is recognised:
-    /// the reader for the extension then says what is wrong in its own terms.
-    fn sniff(bytes: &[u8]) -> Option<FileFormat> {
-        if bytes.starts_with(npy::MAGIC) {
-            return Some(FileFormat::Npy);
-        }
-        // Local file header, or the end record of an empty archive.
-        if bytes.starts_with(b"PK\x03\x04") || bytes.starts_with(b"PK\x05\x06") {
-            return Some(FileFormat::Npz);
-        }
-        // An 8-byte little-endian header length that fits in the file, then a JSON object.
-        if let (Some(len), Some(b'{')) = (bytes.get(..8), bytes.get(8)) {
-            let len = u64::from_le_bytes(len.try_into().ok()?);
-            if len <= bytes.len() as u64 - 8 {
-                return Some(FileFormat::Safetensors);
-            }
-        }
-        None
     }
 }
 
@@ -464,144 +443,4 @@ fn writer(format: FileFormat) -> &'static str {
         FileFormat::Npz => "np.savez",
         FileFormat::Safetensors => "safetensors' save_file",
     }
-}
-
-/// Read every tensor of a `.npy`, `.npz` or `.safetensors` file (chosen by extension). A single
-/// `.npy` holds one tensor, named after the file stem.
-pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
-    let format = FileFormat::from_path(path);
-    // Reading the whole file bounds every later allocation by what is really there.
-    let bytes = crate::input::read_input(path, crate::MAX_TENSOR_BYTES).map_err(|source| {
-        TensorFileError::Io {
-            path: path.to_path_buf(),
-            action: "read",
-            source,
-        }
-    })?;
-    let content = FileFormat::sniff(&bytes);
-    let Some(format) = format else {
-        return Err(TensorFileError::UnknownExtension {
-            path: path.to_path_buf(),
-            content,
-        });
-    };
-    if let Some(found) = content
-        && found != format
-    {
-        return Err(TensorFileError::WrongContent {
-            path: path.to_path_buf(),
-            expected: format,
-            found,
-        });
-    }
-    let tensors = match format {
-        FileFormat::Npy => {
-            let name = path
-                .file_stem()
-                .map(|s| s.to_string_lossy().into_owned())
-                .unwrap_or_default();
-            vec![npy::read(path, None, &name, &bytes)?]
-        }
-        FileFormat::Npz => npz::read(path, &bytes)?,
-        FileFormat::Safetensors => safetensors_file::read(path, &bytes)?,
-    };
-    Ok(TensorFile { format, tensors })
-}
-
-/// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a
-/// half-written file. A `.npy` takes exactly one tensor (its name is not stored). Replaces an
-/// existing regular file; [`write_tensor_file`] says what may be replaced.
-pub fn write_tensors(
-    path: &Path,
-    format: FileFormat,
-    tensors: &[Tensor],
-    dtype: DType,
-) -> Result<(), TensorFileError> {
-    write_tensor_file(path, format, tensors, dtype, crate::Existing::Replace)
-}
-
-/// [`write_tensors`], with what an existing file at `path` allows (see [`crate::write_file`]).
-pub fn write_tensor_file(
-    path: &Path,
-    format: FileFormat,
-    tensors: &[Tensor],
-    dtype: DType,
-    existing: crate::Existing,
-) -> Result<(), TensorFileError> {
-    if !matches!(dtype, DType::F32 | DType::F64) {
-        return Err(TensorFileError::WriteDType {
-            path: path.to_path_buf(),
-            dtype,
-        });
-    }
-    check_for_writing(path, format, tensors)?;
-    let bytes = match format {
-        FileFormat::Npy => match tensors {
-            [tensor] => npy::write(tensor, dtype),
-            _ => {
-                return Err(TensorFileError::BadTensor {
-                    path: path.to_path_buf(),
-                    tensor: tensors.first().map(|t| t.name.clone()).unwrap_or_default(),
-                    problem: format!(
-                        "an NPY file holds exactly one tensor, and {} were given; write an .npz \
-                         or .safetensors file instead",
-                        tensors.len()
-                    ),
-                });
-            }
-        },
-        FileFormat::Npz => npz::write(path, tensors, dtype)?,
-        FileFormat::Safetensors => safetensors_file::write(path, tensors, dtype)?,
-    };
-    crate::write_file(path, &bytes, existing).map_err(|source| TensorFileError::Io {
-        path: path.to_path_buf(),
-        action: "write",
-        source,
-    })
-}
-
-/// Refuse tensors whose data does not fill their shape, and repeated names, before any bytes are
-/// produced: either would make a file that reads back as something else.
-fn check_for_writing(
-    path: &Path,
-    format: FileFormat,
-    tensors: &[Tensor],
-) -> Result<(), TensorFileError> {
-    let mut seen = std::collections::HashSet::new();
-    for tensor in tensors {
-        if format == FileFormat::Safetensors && tensor.name == "__metadata__" {
-            // The header's key for free-form metadata: a tensor under it makes a file that no
-            // safetensors reader opens.
-            return Err(TensorFileError::BadTensor {
-                path: path.to_path_buf(),
-                tensor: tensor.name.clone(),
-                problem: "safetensors reserves this name for the file's metadata, so no tensor \
-                          may have it; rename the parameter, or write an .npz file"
-                    .into(),
-            });
-        }
-        let elements = tensor
-            .shape
-            .iter()
-            .try_fold(1usize, |acc, &d| acc.checked_mul(d));
-        if elements != Some(tensor.data.len()) {
-            return Err(TensorFileError::BadTensor {
-                path: path.to_path_buf(),
-                tensor: tensor.name.clone(),
-                problem: format!(
-                    "its shape {} does not match its {} values",
-                    shape_text(&tensor.shape),
-                    tensor.data.len()
-                ),
-            });
-        }
-        if !seen.insert(tensor.name.as_str()) {
-            return Err(TensorFileError::BadTensor {
-                path: path.to_path_buf(),
-                tensor: tensor.name.clone(),
-                problem: "the name is given twice; tensor names in a file must be unique".into(),
-            });
-        }
-    }
-    Ok(())
 }

@@ -130,7 +130,7 @@ pub(crate) fn self_check_report(
             .count();
         let settled_coords = Settlement::of(coords.iter().map(|c| c.status));
         let settled_dirs = Settlement::of(dirs.iter().map(|d| d.status));
-        // Directions stand in for unchecked coordinates (plumb_fd::PartSummary::conclusive).
+        // Directions stand in for unchecked coordinates (as in the check report's per-tensor rule, plumb_fd::report).
         let settled = settled_coords.conclusive()
             && (coords.len() >= p.data.len() || settled_dirs.conclusive());
         conclusive &= settled;

@@ -13,18 +13,9 @@ use serde::{Deserialize, Serialize};
 use super::Loaded;
 use super::locate::{Place, Tensors};
 use crate::{
-    CheckConfig, CheckError, CheckResult, FLOOR, Method, Part, Precision, Progress, SETTLE, Scope,
-    Settlement, Status, UNSETTLED_SHARE, check, summarise, summary::coords_by_part,
+    CheckConfig, CheckError, CheckResult, Coverage, DirectionCheck, FLOOR, Method, Part, Precision,
+    Progress, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check, worst_first,
 };
-
-/// A number in scientific notation with nine decimals (enough to see two close values differ).
-struct Sci(f64);
-
-impl std::fmt::Display for Sci {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        write!(f, "{:.9e}", self.0)
-    }
-}
 
 /// The most random directions per part a run takes (each costs four whole forward passes).
 pub const MAX_DIRECTIONS: usize = 1000;
@@ -62,11 +53,13 @@ impl From<Code> for String {
     }
 }
 
-/// One coordinate of the report.
+/// One coordinate of the report; `P` is how it is located (a dense [`Place`], or a graph's
+/// [`GraphPlace`](super::GraphPlace)).
 #[derive(Clone, Debug, Serialize, Deserialize)]
-pub struct CoordReport {
+#[serde(bound(deserialize = "P: Deserialize<'de>"))]
+pub struct CoordReport<P = Place> {
     #[serde(flatten)]
-    pub place: Place,
+    pub place: P,
     #[serde(deserialize_with = "figure")]
     pub analytic: f64,
     #[serde(deserialize_with = "figure")]
@@ -78,7 +71,8 @@ pub struct CoordReport {
     #[serde(deserialize_with = "figure")]
     pub bound: f64,
     /// The bound over the relative error's denominator, max(|a|, |n|, floor): comparable with
-    /// `rel_error`.
+    /// `rel_error`. The report's one relative bound: the tensors' `max_bound` and `median_bound`,
+    /// the tables and the plots all show it.
     #[serde(deserialize_with = "figure")]
     pub rel_bound: f64,
     #[serde(deserialize_with = "figure")]
@@ -88,8 +82,64 @@ pub struct CoordReport {
     pub retried: bool,
 }
 
-/// One tensor of the report; `C` is how a coordinate is located (a dense [`CoordReport`], or a
-/// graph's [`GraphCoordReport`](super::GraphCoordReport)).
+impl<P> CoordReport<P> {
+    /// The row of a checked coordinate at `place`, whose relative error's floor is `floor`.
+    pub(super) fn new(place: P, c: Measured, floor: f64) -> CoordReport<P> {
+        let den = c.analytic.abs().max(c.numeric.abs()).max(floor);
+        CoordReport {
+            place,
+            analytic: c.analytic,
+            numeric: c.numeric,
+            abs_error: c.abs_error,
+            rel_error: c.rel_error,
+            bound: c.bound,
+            rel_bound: if den > 0.0 { c.bound / den } else { 0.0 },
+            step: c.step,
+            status: c.status,
+            retried: c.retried,
+        }
+    }
+}
+
+/// What a check measured at one coordinate, dense or graph.
+pub(super) struct Measured {
+    pub analytic: f64,
+    pub numeric: f64,
+    pub abs_error: f64,
+    pub rel_error: f64,
+    pub bound: f64,
+    pub step: f64,
+    pub status: Status,
+    pub retried: bool,
+}
+
+/// How a report names a coordinate's place in its findings, and what a non-smooth point is in
+/// the networks it checks.
+pub trait Location {
+    /// Where a finite difference cannot judge a coordinate.
+    const NON_SMOOTH: &'static str;
+    /// `layer2.weight[3, 1] (layer 2, row 3, column 2, unit 3)`: the label and the layer's words.
+    fn described(&self) -> String;
+}
+
+impl Location for Place {
+    const NON_SMOOTH: &'static str = "a ReLU-like kink";
+
+    fn described(&self) -> String {
+        format!(
+            "{} (layer {}, row {}, column {}{}, unit {})",
+            self.label(),
+            self.layer,
+            self.row,
+            self.column,
+            if self.bias { " = bias" } else { "" },
+            self.unit
+        )
+    }
+}
+
+/// One tensor of the report; `C` is its coordinates' type (a dense [`CoordReport`], or a graph's
+/// [`GraphCoordReport`](super::GraphCoordReport)).
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct TensorReport<C = CoordReport> {
     pub name: String,
@@ -105,6 +155,7 @@ pub struct TensorReport<C = CoordReport> {
     /// ‖∂J/∂(W, b)‖₂ over the whole tensor (the reference gradient).
     #[serde(deserialize_with = "figure")]
     pub gradient_norm: f64,
+    /// The coordinates' `rel_bound`, largest and median.
     #[serde(deserialize_with = "figure")]
     pub max_bound: f64,
     #[serde(deserialize_with = "figure")]
@@ -193,25 +244,23 @@ pub struct CheckReport<C = CoordReport> {
     pub rel_errors: Vec<StripSeries>,
 }
 
+/// The report row of dense coordinate `i` of a check's results.
 pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
     let c = &result.coords[i];
-    let den = c
-        .analytic
-        .abs()
-        .max(c.numeric.abs())
-        .max(result.floors[c.coord.layer]);
-    CoordReport {
-        rel_bound: if den > 0.0 { c.bound / den } else { 0.0 },
-        place: tensors.place(c.coord),
-        analytic: c.analytic,
-        numeric: c.numeric,
-        abs_error: c.abs_error,
-        rel_error: c.rel_error,
-        bound: c.bound,
-        step: c.step,
-        status: c.status,
-        retried: c.retried,
-    }
+    CoordReport::new(
+        tensors.place(c.coord),
+        Measured {
+            analytic: c.analytic,
+            numeric: c.numeric,
+            abs_error: c.abs_error,
+            rel_error: c.rel_error,
+            bound: c.bound,
+            step: c.step,
+            status: c.status,
+            retried: c.retried,
+        },
+        result.floors[c.coord.layer],
+    )
 }
 
 /// Runs the check of the reference gradient and builds its report (the command and the demo).
@@ -272,86 +321,223 @@ fn part_norm(gradient: &Weights<f64>, part: &Part) -> f64 {
     sum.sqrt()
 }
 
-/// The report of a check's results (shared with `plumb merge`).
+/// The report of a dense check's results (shared with `plumb merge`).
 pub fn build(
     facts: &RunFacts,
     tensors: &Tensors,
     result: &CheckResult,
     worst_n: usize,
 ) -> CheckReport {
-    let summaries = &summarise(result, &tensors.parts());
-    let mut findings = Vec::new();
-    let mut tensor_reports = Vec::new();
-    for (s, e) in summaries.iter().zip(&tensors.expected) {
-        let worst: Vec<CoordReport> = s
-            .worst
+    let parts = tensors.parts();
+    // Each layer's parts, so that finding a coordinate's tensor looks at its own layer only (a scan
+    // of every part per coordinate would be quadratic in a deep network's layers).
+    let mut of_layer: Vec<Vec<usize>> = Vec::new();
+    for (i, (p, _)) in parts.iter().enumerate() {
+        if p.layer >= of_layer.len() {
+            of_layer.resize(p.layer + 1, Vec::new());
+        }
+        of_layer[p.layer].push(i);
+    }
+    let tensor_of = |layer: usize, covers: &dyn Fn(&Part) -> bool| {
+        of_layer
+            .get(layer)
+            .into_iter()
+            .flatten()
+            .copied()
+            .find(|&i| covers(&parts[i].0))
+            .expect("every coordinate and direction belongs to a tensor of the layout")
+    };
+    let checked = Checked {
+        method: result.method,
+        precision: result.precision,
+        loss: result.loss,
+        tolerance: result.tolerance,
+        coverage: &result.coverage,
+        floors: &result.floors,
+        tensors: tensors
+            .expected
             .iter()
-            .map(|&i| coord_report(tensors, result, i))
-            .collect();
-        if s.mismatches > 0 {
+            .zip(&parts)
+            .map(|(e, (_, parameters))| (e.name.clone(), e.layer + 1, *parameters))
+            .collect(),
+        coords: (0..result.coords.len())
+            .map(|i| {
+                let c = &result.coords[i];
+                let t = tensor_of(c.coord.layer, &|p| p.contains(c));
+                (t, coord_report(tensors, result, i))
+            })
+            .collect(),
+        directions: result
+            .directions
+            .iter()
+            .map(|d| match d.scope {
+                Scope::Global => (None, direction_report(d, "all".into(), None, None)),
+                Scope::Part { layer, bias } => (
+                    Some(tensor_of(layer, &|p| p.covers(d.scope))),
+                    direction_report(d, tensors.name_of(layer, bias), Some(layer + 1), Some(bias)),
+                ),
+            })
+            .collect(),
+    };
+    build_report(facts, checked, worst_n)
+}
+
+fn direction_report(
+    d: &DirectionCheck,
+    scope: String,
+    layer: Option<usize>,
+    bias: Option<bool>,
+) -> DirectionReport {
+    DirectionReport {
+        scope,
+        layer,
+        bias,
+        analytic: d.analytic,
+        numeric: d.numeric,
+        rel_error: d.rel_error,
+        bound: d.bound,
+        status: d.status,
+    }
+}
+
+/// A check's results in the report's terms, dense or graph: what [`build_report`] judges.
+pub(super) struct Checked<'a, P> {
+    pub method: Method,
+    pub precision: Precision,
+    pub loss: f64,
+    pub tolerance: f64,
+    pub coverage: &'a Coverage,
+    pub floors: &'a [f64],
+    /// Each tensor of the report: name, 1-based layer, parameter count.
+    pub tensors: Vec<(String, usize, usize)>,
+    /// Each checked coordinate, in check order: its tensor and its row.
+    pub coords: Vec<(usize, CoordReport<P>)>,
+    /// Each direction: its tensor (None over the whole network) and its row.
+    pub directions: Vec<(Option<usize>, DirectionReport)>,
+}
+
+fn median(v: &[f64]) -> f64 {
+    if v.is_empty() {
+        return 0.0;
+    }
+    let mut s = v.to_vec();
+    s.sort_by(f64::total_cmp);
+    let n = s.len();
+    if n % 2 == 1 {
+        s[n / 2]
+    } else {
+        0.5 * (s[n / 2 - 1] + s[n / 2])
+    }
+}
+
+fn worst_order<P>(coords: &mut [&CoordReport<P>]) {
+    coords.sort_by(|a, b| worst_first((a.status, a.rel_error), (b.status, b.rel_error)));
+}
+
+/// The one report builder of `plumb check`, dense or graph: a tensor fails on a mismatch of a
+/// coordinate or a direction over it, and is inconclusive when more of its checked coordinates
+/// (or, when they were sampled, of its directions) are unsettled than a check may leave open; the
+/// whole check likewise, with the directions over the whole network.
+pub(super) fn build_report<P: Location + Clone>(
+    facts: &RunFacts,
+    checked: Checked<'_, P>,
+    worst_n: usize,
+) -> CheckReport<CoordReport<P>> {
+    let (method, precision) = (checked.method, checked.precision);
+    let mut findings = Vec::new();
+    let mut tensors = Vec::new();
+    let mut series = Vec::new();
+    let mut all_conclusive = true;
+    // Coordinates and directions grouped by tensor in one pass each (not one scan per tensor: that
+    // would be quadratic in a deep network's layers).
+    let mut coords_of: Vec<Vec<&CoordReport<P>>> = vec![Vec::new(); checked.tensors.len()];
+    for (t, c) in &checked.coords {
+        coords_of[*t].push(c);
+    }
+    let mut dirs_of: Vec<Vec<&DirectionReport>> = vec![Vec::new(); checked.tensors.len()];
+    for (t, d) in &checked.directions {
+        if let Some(t) = t {
+            dirs_of[*t].push(d);
+        }
+    }
+    for (t, ((name, layer, parameters), (mut coords, dirs))) in checked
+        .tensors
+        .iter()
+        .zip(coords_of.into_iter().zip(dirs_of))
+        .enumerate()
+    {
+        let (name, layer, parameters) = (name.as_str(), *layer, *parameters);
+        let rel: Vec<f64> = coords.iter().map(|c| c.rel_error).collect();
+        let bounds: Vec<f64> = coords.iter().map(|c| c.rel_bound).collect();
+        let (d2, a2) = coords.iter().fold((0.0, 0.0), |(d, a), c| {
+            (d + (c.analytic - c.numeric).powi(2), a + c.analytic.powi(2))
+        });
+        let count = |s: Status| coords.iter().filter(|c| c.status == s).count();
+        let (mismatches, unreliable, unsettled) = (
+            count(Status::Mismatch),
+            count(Status::Unreliable),
+            count(Status::Unsettled),
+        );
+        let direction_mismatches = dirs.iter().filter(|d| d.status == Status::Mismatch).count();
+        let settled = Settlement::of(coords.iter().map(|c| c.status));
+        let settled_dirs = Settlement::of(dirs.iter().map(|d| d.status));
+        let n_checked = coords.len();
+        // Directions stand in for the coordinates a sample leaves out: with every coordinate
+        // checked, theirs do not decide.
+        let conclusive =
+            settled.conclusive() && (n_checked >= parameters || settled_dirs.conclusive());
+        all_conclusive &= conclusive;
+        let max_rel_error = rel.iter().copied().fold(0.0, f64::max);
+        worst_order(&mut coords);
+        let worst: Vec<CoordReport<P>> = coords.iter().take(3).map(|&c| c.clone()).collect();
+        if mismatches > 0 {
             let w = &worst[0];
             findings.push(
                 Finding::new(
                     Code::GradientMismatch,
                     Severity::Error,
                     format!(
-                        "{} of {} checked coordinates disagree beyond what {} differences can explain; worst at {} (layer {}, row {}, column {}{}, unit {}): analytic {}, numeric {}, relative error {}, relative bound {}",
-                        s.mismatches,
-                        s.checked,
-                        result.method,
-                        w.place.label(),
-                        w.place.layer,
-                        w.place.row,
-                        w.place.column,
-                        if w.place.bias { " = bias" } else { "" },
-                        w.place.unit,
-                        Sci(w.analytic),
-                        Sci(w.numeric),
+                        "{mismatches} of {n_checked} checked coordinates disagree beyond what {method} differences can explain; worst at {}: analytic {:.9e}, numeric {:.9e}, relative error {}, relative bound {}",
+                        w.place.described(),
+                        w.analytic,
+                        w.numeric,
                         num(w.rel_error),
                         num(w.rel_bound),
                     ),
                 )
-                .tensor(&e.name)
-                .layer(e.layer + 1)
-                .figure("mismatches", s.mismatches)
-                .figure("checked", s.checked)
-                .figure("max_rel_error", s.max_rel_error),
+                .tensor(name)
+                .layer(layer)
+                .figure("mismatches", mismatches)
+                .figure("checked", n_checked)
+                .figure("max_rel_error", max_rel_error),
             );
         }
-        if s.direction_mismatches > 0 {
+        if direction_mismatches > 0 {
             findings.push(
                 Finding::new(
                     Code::DirectionMismatch,
                     Severity::Error,
                     format!(
-                        "{} of {} random directions over this tensor disagree: its gradient is wrong somewhere, checked coordinate or not",
-                        s.direction_mismatches, s.directions
+                        "{direction_mismatches} of {} random directions over this tensor disagree: its gradient is wrong somewhere, checked coordinate or not",
+                        dirs.len()
                     ),
                 )
-                .tensor(&e.name)
-                .layer(e.layer + 1)
-                .figure("direction_mismatches", s.direction_mismatches),
+                .tensor(name)
+                .layer(layer)
+                .figure("direction_mismatches", direction_mismatches),
             );
         }
-        let conclusive = s.conclusive();
-        let open = s.settled_coords.unsettled;
-        if open > 0 || s.settled_directions.unsettled > 0 {
+        if settled.unsettled > 0 || settled_dirs.unsettled > 0 {
             findings.push(
                 Finding::new(
                     Code::Unsettled,
-                    if conclusive {
-                        Severity::Note
-                    } else {
-                        Severity::Warning
-                    },
+                    if conclusive { Severity::Note } else { Severity::Warning },
                     format!(
-                        "{open} of {} checked coordinates ({} unreliable at kinks) and {} of {} directions are unsettled: {} differences in {} cannot tell a match from a mismatch there (their error bound exceeds {}% of the value){}",
-                        s.checked,
-                        s.unreliable,
-                        s.settled_directions.unsettled,
-                        s.directions,
-                        result.method,
-                        result.precision.name(),
+                        "{} of {n_checked} checked coordinates ({unreliable} unreliable at kinks) and {} of {} directions are unsettled: {method} differences in {} cannot tell a match from a mismatch there (their error bound exceeds {}% of the value){}",
+                        settled.unsettled,
+                        settled_dirs.unsettled,
+                        dirs.len(),
+                        precision.name(),
                         SETTLE * 100.0,
                         if conclusive {
                             format!("; within the {}% a check may leave open", UNSETTLED_SHARE * 100.0)
@@ -360,54 +546,60 @@ pub fn build(
                         }
                     ),
                 )
-                .tensor(&e.name)
-                .layer(e.layer + 1)
-                .figure("unsettled", s.unsettled)
-                .figure("unreliable", s.unreliable)
-                .figure("checked", s.checked)
-                .figure("settled_share", s.settled_coords.share())
-                .figure("unsettled_directions", s.settled_directions.unsettled),
+                .tensor(name)
+                .layer(layer)
+                .figure("unsettled", unsettled)
+                .figure("unreliable", unreliable)
+                .figure("checked", n_checked)
+                .figure("settled_share", settled.share())
+                .figure("unsettled_directions", settled_dirs.unsettled),
             );
         }
-        if s.unreliable > 0 {
+        if unreliable > 0 {
+            let one = unreliable == 1;
             findings.push(
                 Finding::new(
                     Code::KinkUnreliable,
                     Severity::Note,
                     format!(
-                        "{} coordinate{} straddle a ReLU-like kink at every step tried (down to 1/1000 of the default), so finite differences cannot judge {}; not counted as mismatches",
-                        s.unreliable,
-                        if s.unreliable == 1 { "" } else { "s" },
-                        if s.unreliable == 1 { "it" } else { "them" }
+                        "{unreliable} coordinate{} {} at every step tried (down to 1/1000 of the default), so finite differences cannot judge {}; not counted as mismatches",
+                        if one { " straddles" } else { "s straddle" },
+                        P::NON_SMOOTH,
+                        if one { "it" } else { "them" }
                     ),
                 )
-                .tensor(&e.name)
-                .layer(e.layer + 1)
-                .figure("unreliable", s.unreliable),
+                .tensor(name)
+                .layer(layer)
+                .figure("unreliable", unreliable),
             );
         }
-        tensor_reports.push(TensorReport {
-            name: e.name.clone(),
-            layer: e.layer + 1,
-            parameters: s.parameters,
-            checked: s.checked,
-            max_rel_error: s.max_rel_error,
-            median_rel_error: s.median_rel_error,
-            norm_rel_error: s.norm_rel_error,
-            gradient_norm: facts
-                .gradient_norms
-                .get(tensor_reports.len())
-                .copied()
-                .unwrap_or(f64::NAN),
-            max_bound: s.max_bound,
-            median_bound: s.median_bound,
-            mismatches: s.mismatches,
-            unreliable: s.unreliable,
-            unsettled: s.unsettled,
-            settled_share: s.settled_coords.share(),
-            directions: s.directions,
-            direction_mismatches: s.direction_mismatches,
-            verdict: if !s.passed() {
+        series.push(StripSeries {
+            label: name.to_string(),
+            values: rel.clone(),
+            bounds: bounds.clone(),
+        });
+        tensors.push(TensorReport {
+            name: name.to_string(),
+            layer,
+            parameters,
+            checked: n_checked,
+            max_rel_error,
+            median_rel_error: median(&rel),
+            norm_rel_error: if a2 > 0.0 {
+                (d2 / a2).sqrt()
+            } else {
+                d2.sqrt()
+            },
+            gradient_norm: facts.gradient_norms.get(t).copied().unwrap_or(f64::NAN),
+            max_bound: bounds.iter().copied().fold(0.0, f64::max),
+            median_bound: median(&bounds),
+            mismatches,
+            unreliable,
+            unsettled,
+            settled_share: settled.share(),
+            directions: dirs.len(),
+            direction_mismatches,
+            verdict: if mismatches > 0 || direction_mismatches > 0 {
                 Verdict::Fail
             } else if !conclusive {
                 Verdict::Inconclusive
@@ -417,11 +609,13 @@ pub fn build(
             worst,
         });
     }
-    let global_bad = result
+    let global: Vec<Status> = checked
         .directions
         .iter()
-        .filter(|d| d.scope == Scope::Global && d.status == Status::Mismatch)
-        .count();
+        .filter(|(t, _)| t.is_none())
+        .map(|(_, d)| d.status)
+        .collect();
+    let global_bad = global.iter().filter(|&&s| s == Status::Mismatch).count();
     if global_bad > 0 {
         findings.push(
             Finding::new(
@@ -432,24 +626,16 @@ pub fn build(
             .figure("direction_mismatches", global_bad),
         );
     }
-    let global = Settlement::of(
-        result
-            .directions
-            .iter()
-            .filter(|d| d.scope == Scope::Global)
-            .map(|d| d.status),
-    );
-    // Directions stand in for unchecked coordinates: with every coordinate checked, theirs do not
-    // decide (see PartSummary::conclusive).
-    let all_checked = result.coverage.checked >= result.coverage.parameters;
-    let conclusive =
-        (global.conclusive() || all_checked) && summaries.iter().all(|s| s.conclusive());
+    let global = Settlement::of(global);
+    let coverage = checked.coverage;
+    let all_checked = coverage.checked >= coverage.parameters;
+    let conclusive = (global.conclusive() || all_checked) && all_conclusive;
     if !conclusive {
-        let all = Settlement::of(result.coords.iter().map(|c| c.status));
-        let unreliable = result
+        let all = Settlement::of(checked.coords.iter().map(|(_, c)| c.status));
+        let unreliable = checked
             .coords
             .iter()
-            .filter(|c| c.status == Status::Unreliable)
+            .filter(|(_, c)| c.status == Status::Unreliable)
             .count();
         findings.push(
             Finding::new(
@@ -462,7 +648,7 @@ pub fn build(
                     global.unsettled,
                     global.checked,
                     UNSETTLED_SHARE * 100.0,
-                    remedies(result.method, result.precision, unreliable, all.unsettled)
+                    remedies(method, precision, unreliable, all.unsettled)
                 ),
             )
             .figure("unsettled", all.unsettled)
@@ -470,56 +656,26 @@ pub fn build(
             .figure("settled_share", all.share()),
         );
     }
-    let retried = result.coords.iter().filter(|c| c.retried).count();
+    let retried = checked.coords.iter().filter(|(_, c)| c.retried).count();
     if retried > 0 {
         findings.push(
             Finding::new(
                 Code::KinkRetried,
                 Severity::Note,
-                format!("{retried} coordinates straddled a kink at the default step and were checked with a smaller one"),
+                format!(
+                    "{retried} coordinates straddled {} at the default step and were checked with a smaller one",
+                    P::NON_SMOOTH
+                ),
             )
             .figure("retried", retried),
         );
     }
-    let mut order: Vec<usize> = (0..result.coords.len()).collect();
-    order.sort_by(|&i, &j| {
-        let (a, b) = (&result.coords[i], &result.coords[j]);
-        crate::worst_first((a.status, a.rel_error), (b.status, b.rel_error))
-    });
-    let worst = order
-        .iter()
-        .take(worst_n)
-        .map(|&i| coord_report(tensors, result, i))
-        .collect();
-    let directions = result
-        .directions
-        .iter()
-        .map(|d| DirectionReport {
-            scope: match d.scope {
-                Scope::Global => "all".to_string(),
-                Scope::Part { layer, bias } => tensors.name_of(layer, bias),
-            },
-            layer: match d.scope {
-                Scope::Global => None,
-                Scope::Part { layer, .. } => Some(layer + 1),
-            },
-            bias: match d.scope {
-                Scope::Global => None,
-                Scope::Part { bias, .. } => Some(bias),
-            },
-            analytic: d.analytic,
-            numeric: d.numeric,
-            rel_error: d.rel_error,
-            bound: d.bound,
-            status: d.status,
-        })
-        .collect();
+    let mut order: Vec<&CoordReport<P>> = checked.coords.iter().map(|(_, c)| c).collect();
+    worst_order(&mut order);
+    let worst = order.iter().take(worst_n).map(|&c| c.clone()).collect();
     let step_rule = match facts.step {
         Some(h) => format!("fixed h = {h:e} (--step)"),
-        None => result
-            .method
-            .step_rule(result.precision.epsilon())
-            .to_string(),
+        None => method.step_rule(precision.epsilon()).to_string(),
     };
     CheckReport {
         verdict: Verdict::of_check(&findings, conclusive),
@@ -531,52 +687,29 @@ pub fn build(
         data: facts.data.clone(),
         seed: facts.seed,
         samples: facts.samples,
-        method: result.method.name().into(),
+        method: method.name().into(),
         step_rule,
-        precision: result.precision.name().into(),
-        tolerance: result.tolerance,
+        precision: precision.name().into(),
+        tolerance: checked.tolerance,
         floor_fraction: FLOOR,
-        loss: result.loss,
+        loss: checked.loss,
         coverage: CoverageReport {
-            sample: result.coverage.sample.to_string(),
-            default_sample: result.coverage.default_sample,
-            parameters: result.coverage.parameters,
-            checked: result.coverage.checked,
-            directions_per_part: result.coverage.directions,
+            sample: coverage.sample.to_string(),
+            default_sample: coverage.default_sample,
+            parameters: coverage.parameters,
+            checked: coverage.checked,
+            directions_per_part: coverage.directions,
         },
         shard: facts.shard.map(|(k, n)| [k, n]),
-        floors: result.floors.clone(),
-        tensors: tensor_reports,
+        floors: checked.floors.to_vec(),
+        tensors,
         worst,
-        coordinates: facts.shard.map(|_| {
-            (0..result.coords.len())
-                .map(|i| coord_report(tensors, result, i))
-                .collect()
-        }),
-        directions,
+        coordinates: facts
+            .shard
+            .map(|_| checked.coords.into_iter().map(|(_, c)| c).collect()),
+        directions: checked.directions.into_iter().map(|(_, d)| d).collect(),
         findings,
-        rel_errors: summaries
-            .iter()
-            .zip(&tensors.expected)
-            .zip(coords_by_part(
-                result,
-                &summaries.iter().map(|s| s.part).collect::<Vec<_>>(),
-            ))
-            .map(|((_, e), idx)| {
-                let (values, bounds) = idx
-                    .into_iter()
-                    .map(|i| {
-                        let c = coord_report(tensors, result, i);
-                        (c.rel_error, c.rel_bound)
-                    })
-                    .unzip();
-                StripSeries {
-                    label: e.name.clone(),
-                    values,
-                    bounds,
-                }
-            })
-            .collect(),
+        rel_errors: series,
     }
 }
 

@@ -1,16 +1,21 @@
-//! The reports of `plumb check` and `plumb merge`: typed (serialised as docs/json.md says, and read
+//! The reports of `plumb check`, `plumb merge` and `plumb grad`: typed (serialised as docs/json.md says, and read
 //! back by merge), built from the checker's results by the rules here, so that the command line
 //! only parses, calls, renders and exits.
 
 mod check;
+mod grad;
 mod graph_check;
 mod graph_loaded;
 mod locate;
 mod shards;
 
 pub use check::{
-    CheckReport, Code, CoordReport, CoverageReport, DirectionReport, MAX_DIRECTIONS, RunFacts,
-    TensorReport, build, check_report, coord_report, remedies,
+    CheckReport, Code, CoordReport, CoverageReport, DirectionReport, Location, MAX_DIRECTIONS,
+    RunFacts, TensorReport, build, check_report, coord_report, remedies,
+};
+pub use grad::{
+    GradReport, Gradient, TensorGradient, dense_input_gradient, gradient_report,
+    graph_gradient_report,
 };
 pub use graph_check::{
     GraphCheckReport, GraphCoordReport, GraphPlace, build_graph, graph_check_report,
