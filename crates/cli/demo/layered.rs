@@ -20,7 +20,7 @@ use plumb_formats::{AxisOrder, FileFormat, GraphDescription, Tensor, TensorFile}
 use plumb_report::{Block, DataSource, Verdict, WeightsSource};
 use serde::Serialize;
 
-use crate::commands::grad::{self, GradReport};
+use crate::commands::grad::GradReport;
 use crate::commands::shapes::{self, ShapesReport};
 use crate::commands::{check, compare};
 use crate::output::SCHEMA_VERSION;
@@ -161,7 +161,7 @@ impl Scenario {
             },
             order: AxisOrder::ChannelsFirst,
         };
-        let grad = grad::compute_graph(&loaded, false)?.report;
+        let grad = plumb_fd::report::graph_gradient_report(&loaded, false)?.report;
         let mut config = CheckConfig::new(Method::Central, Precision::F64);
         config.seed = seed;
         let check = graph_check_report(&loaded, &config, 3, &|_, _| {})?;
