@@ -329,21 +329,11 @@ pub fn build(
     worst_n: usize,
 ) -> CheckReport {
     let parts = tensors.parts();
-    // Each layer's parts, so that finding a coordinate's tensor looks at its own layer only (a scan
-    // of every part per coordinate would be quadratic in a deep network's layers).
-    let mut of_layer: Vec<Vec<usize>> = Vec::new();
-    for (i, (p, _)) in parts.iter().enumerate() {
-        if p.layer >= of_layer.len() {
-            of_layer.resize(p.layer + 1, Vec::new());
-        }
-        of_layer[p.layer].push(i);
-    }
+    // A coordinate's tensor is looked for among its own layer's only (a scan of every part per
+    // coordinate would be quadratic in a deep network's layers).
     let tensor_of = |layer: usize, covers: &dyn Fn(&Part) -> bool| {
-        of_layer
-            .get(layer)
-            .into_iter()
-            .flatten()
-            .copied()
+        tensors
+            .indices_of_layer(layer)
             .find(|&i| covers(&parts[i].0))
             .expect("every coordinate and direction belongs to a tensor of the layout")
     };

@@ -56,13 +56,14 @@ impl Tensors {
         }
     }
 
+    /// The indices (into `expected` and `parts()`) of layer `layer`'s tensors, in the layout's order.
+    pub(crate) fn indices_of_layer(&self, layer: usize) -> impl Iterator<Item = usize> + '_ {
+        self.by_layer.get(layer).into_iter().flatten().copied()
+    }
+
     /// The tensors of layer `layer` (0-based), in the layout's order.
     fn of_layer(&self, layer: usize) -> impl Iterator<Item = &ExpectedTensor> {
-        self.by_layer
-            .get(layer)
-            .into_iter()
-            .flatten()
-            .map(|&i| &self.expected[i])
+        self.indices_of_layer(layer).map(|i| &self.expected[i])
     }
 
     /// Each tensor as an fd part, with its parameter count.
