@@ -17,6 +17,7 @@ use args::{Cli, Command};
 use output::Settings;
 
 fn main() -> ExitCode {
+    plumb_fd::keep_freed_memory();
     let cli = Cli::parse();
     let settings = Settings::from_args(&cli.common);
     if let Err(e) = settings.check_outputs(

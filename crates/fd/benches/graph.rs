@@ -315,6 +315,7 @@ fn sequence() {
 }
 
 fn main() {
+    plumb_fd::keep_freed_memory();
     let asked: Vec<String> = std::env::args()
         .skip(1)
         .filter(|a| !a.starts_with("--"))

@@ -23,6 +23,7 @@
 //! # Ok::<(), Box<dyn std::error::Error>>(())
 //! ```
 
+mod allocator;
 mod check;
 mod coverage;
 mod direction;
@@ -37,6 +38,7 @@ mod part;
 pub mod report;
 mod sweep;
 
+pub use allocator::keep_freed_memory;
 pub use check::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DEFAULT_DIRECTIONS, DirectionCheck,
     NOISE, Precision, Progress, Rule, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check,
