@@ -171,6 +171,23 @@ impl Activation {
         out
     }
 
+    /// z ← g(z) over some values of a batch, the same bits as [`Activation::apply_in_place`]
+    /// gives them (the graph's channel-wise updates apply it to the channels that changed).
+    /// Softmax reads whole rows: it has no element-wise form.
+    pub fn apply_values<S: Scalar>(&self, z: &mut [S]) {
+        match self {
+            Activation::Softmax => panic!("softmax applies to whole rows, not to some values"),
+            Activation::Tanh => S::tanh_all(z),
+            Activation::Relu => z.iter_mut().for_each(|v| {
+                if v.re() <= 0.0 || v.re().is_nan() {
+                    *v = S::zero();
+                }
+            }),
+            Activation::Identity => {}
+            act => z.iter_mut().for_each(|v| *v = act.value(*v)),
+        }
+    }
+
     /// z ← g(z), for a batch of pre-activations the caller no longer needs.
     pub fn apply_in_place<S: Scalar>(&self, z: &mut Array2<S>) {
         match self {

@@ -53,6 +53,29 @@ impl<S: LayerScalar> Layer<S> for Add {
         Step::plain(&x + &skip)
     }
 
+    fn forward_channels(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+        base: &Step<S>,
+        changed: &[usize],
+    ) -> Option<Step<S>> {
+        let skip = skip.expect("the graph hands `add` its tap");
+        let (x, skip) = (x.as_standard_layout(), skip.as_standard_layout());
+        let (xs, ss) = (x.as_slice()?, skip.as_slice()?);
+        let mut out = base.out.clone();
+        let values = out.as_slice_mut()?;
+        for &c in changed {
+            for run in self.input.channel_runs(x.nrows(), c) {
+                for k in run {
+                    values[k] = xs[k] + ss[k];
+                }
+            }
+        }
+        Some(Step::plain(out))
+    }
+
     fn backward(
         &self,
         _: &[ArrayD<S>],

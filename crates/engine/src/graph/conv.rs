@@ -253,6 +253,14 @@ impl Kind for Conv {
         Some(0)
     }
 
+    fn moved_channel(&self, tensor: usize, index: usize) -> Option<usize> {
+        Some(if tensor == 0 {
+            index / (self.window.channels * self.window.taps())
+        } else {
+            index
+        })
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         if tensor == 1 {
             return format!("out-channel {flat}");
@@ -276,20 +284,23 @@ impl<S: LayerScalar> Layer<S> for Conv {
         );
         let cols = self.window.columns(x);
         let z = cols.dot(&self.matrix(&params[0], false).t());
-        let mut out = Array2::zeros((m, o * op));
-        for i in 0..m {
-            let mut row = out.row_mut(i);
-            for p in 0..op {
-                for c in 0..o {
-                    let bias = if self.settings.bias {
-                        params[1][c]
-                    } else {
-                        S::zero()
-                    };
-                    row[c * op + p] = z[[i * op + p, c]] + bias;
+        // z's rows are (sample, position) × out-channels; the output is channel-major per sample.
+        let z = z.as_standard_layout();
+        let zs = z.as_slice().expect("standard layout");
+        let bias = self
+            .settings
+            .bias
+            .then(|| params[1].as_slice().expect("standard layout"));
+        let mut out = vec![S::zero(); m * o * op];
+        for (i, row) in out.chunks_mut((o * op).max(1)).enumerate() {
+            for (c, channel) in row.chunks_mut(op.max(1)).enumerate() {
+                let b = bias.map_or(S::zero(), |b| b[c]);
+                for (p, v) in channel.iter_mut().enumerate() {
+                    *v = zs[(i * op + p) * o + c] + b;
                 }
             }
         }
+        let out = Array2::from_shape_vec((m, o * op), out).expect("sized above");
         Step {
             out,
             saved: vec![cols.into_dyn()],

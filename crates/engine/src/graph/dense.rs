@@ -119,6 +119,14 @@ impl Kind for Dense {
         Some(0)
     }
 
+    fn moved_channel(&self, tensor: usize, index: usize) -> Option<usize> {
+        Some(if tensor == 0 {
+            index / self.fan_in()
+        } else {
+            index
+        })
+    }
+
     fn mistakes(&self) -> &'static [&'static str] {
         &["bias-rows-shifted"]
     }

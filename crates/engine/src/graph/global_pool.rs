@@ -59,6 +59,34 @@ impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
         Step::plain(out)
     }
 
+    fn forward_channels(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        base: &Step<S>,
+        changed: &[usize],
+    ) -> Option<Step<S>> {
+        let (p, scale) = (
+            self.positions,
+            S::one() / S::from_f64(self.positions as f64),
+        );
+        let mut out = base.out.clone();
+        for (i, mut row) in out.outer_iter_mut().enumerate() {
+            for &c in changed {
+                // The forward pass's sum, in its order.
+                row[c] = x
+                    .row(i)
+                    .iter()
+                    .skip(c * p)
+                    .take(p)
+                    .fold(S::zero(), |acc, &v| acc + v)
+                    * scale;
+            }
+        }
+        Some(Step::plain(out))
+    }
+
     fn backward(
         &self,
         _: &[ArrayD<S>],

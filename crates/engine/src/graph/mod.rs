@@ -202,6 +202,14 @@ pub trait Kind: Send + Sync + Debug {
     fn inner_activation(&self) -> Option<crate::Activation> {
         None
     }
+    /// The one channel of the output's feature axis (a unit, a conv's out-channel, a norm's
+    /// feature) that the kind's [hint](Layer::forward_moved) changes when entry `index` of its
+    /// tensor `tensor` moves; the graph then recomputes only that channel in the channel-wise
+    /// layers above ([`Layer::forward_channels`]). `None` when the hint does not say.
+    fn moved_channel(&self, tensor: usize, index: usize) -> Option<usize> {
+        let _ = (tensor, index);
+        None
+    }
     /// What the forward step `step` on batch `x` shows the release audit inside the layer.
     fn inside(&self, x: ArrayView2<f64>, step: &Step<f64>) -> Vec<Inside> {
         let _ = (x, step);
@@ -245,6 +253,25 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
         let _ = (params, x, base, moved);
+        None
+    }
+
+    /// The step for an input `x` (and `skip`) that differs from the base step's input only in
+    /// the channels `changed` of its feature axis. A channel-wise kind (each output channel
+    /// reads its own input channel: batch norm, `add`, global average pool) recomputes those
+    /// channels with the arithmetic of [`forward`](Layer::forward), so they equal a full pass
+    /// bit for bit, and keeps the base's others; the output's changed channels are the same
+    /// indices. `None` for kinds that mix channels (the graph recomputes the layer). The step
+    /// serves loss evaluations only: it may keep nothing in [`Step::saved`].
+    fn forward_channels(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+        base: &Step<S>,
+        changed: &[usize],
+    ) -> Option<Step<S>> {
+        let _ = (params, x, skip, base, changed);
         None
     }
 }

@@ -519,7 +519,9 @@ impl Graph {
     /// [`Graph::tensors`]), over a `base` pass of the same batch `x` at `params` (the unmoved
     /// values): the layers below the entry's are read from the base, its layer by its kind's
     /// [hint](super::Layer::forward_moved) (or recomputed with the entry moved when the kind has
-    /// none), the layers above recomputed. The tail's steps keep nothing for a backward pass.
+    /// none), the layers above recomputed — a channel-wise layer only in the channels that
+    /// changed ([`Layer::forward_channels`](super::Layer::forward_channels)), bit for bit what a
+    /// full pass gives them. The tail's steps keep nothing for a backward pass.
     pub fn forward_moved<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -544,9 +546,14 @@ impl Graph {
             tensor: moved.tensor - node.tensors.start,
             ..*moved
         };
-        let step = layer
-            .forward_moved(own, input, &base.steps[from], &local)
-            .unwrap_or_else(|| {
+        // The channels of each recomputed layer's output that differ from the base's, when
+        // known: the moved layer's hint names one; channel-wise layers above keep the set.
+        let (step, first) = match layer.forward_moved(own, input, &base.steps[from], &local) {
+            Some(step) => {
+                let channel = node.layer.moved_channel(local.tensor, local.index);
+                (step, channel.map(|c| vec![c]))
+            }
+            None => {
                 let mut own = own.to_vec();
                 let slot = own[local.tensor]
                     .as_slice_mut()
@@ -555,9 +562,11 @@ impl Graph {
                     .expect("index within its tensor");
                 *slot += local.delta;
                 let skip = node.tap.map(|t| base.outputs[t].view());
-                layer.forward(&own, input, skip)
-            });
-        let a = self.activate(node, &step.out);
+                (layer.forward(&own, input, skip), None)
+            }
+        };
+        let mut changed = vec![first];
+        let a = self.activate_changed(node, &step.out, &base.outputs[from], changed[0].as_deref());
         let mut steps = vec![step];
         let mut outputs = vec![a];
         for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
@@ -569,17 +578,60 @@ impl Graph {
                 }
             };
             let skip = node.tap.map(output);
-            let step =
-                S::layer(node.layer.as_ref()).forward(&params[node.tensors()], output(j - 1), skip);
-            let a = self.activate(node, &step.out);
+            // What differs in the input and the tap: a tap below the moved layer differs nowhere.
+            let differs = match node.tap {
+                None => changed[j - 1 - from].clone(),
+                Some(t) if t < from => changed[j - 1 - from].clone(),
+                Some(t) => union(
+                    changed[j - 1 - from].as_deref(),
+                    changed[t - from].as_deref(),
+                ),
+            };
+            let layer = S::layer(node.layer.as_ref());
+            let own = &params[node.tensors()];
+            let input = output(j - 1);
+            let local = differs
+                .as_deref()
+                .and_then(|c| layer.forward_channels(own, input, skip, &base.steps[j], c));
+            let (step, now) = match local {
+                Some(step) => (step, differs),
+                None => (layer.forward(own, input, skip), None),
+            };
+            let a = self.activate_changed(node, &step.out, &base.outputs[j], now.as_deref());
             steps.push(step);
             outputs.push(a);
+            changed.push(now);
         }
         Tail {
             from,
             steps,
             outputs,
         }
+    }
+
+    /// The activation of `z`, a layer's output that differs from the base pass's only in the
+    /// channels `changed` (when known): those channels from z, the rest the base's `a`.
+    fn activate_changed<S: Scalar>(
+        &self,
+        node: &Node,
+        z: &Array2<S>,
+        base: &Array2<S>,
+        changed: Option<&[usize]>,
+    ) -> Array2<S> {
+        let Some(changed) = changed.filter(|_| node.activation != Activation::Softmax) else {
+            return self.activate(node, z);
+        };
+        let mut a = base.clone();
+        let (Some(values), Some(from)) = (a.as_slice_mut(), z.as_slice()) else {
+            return self.activate(node, z);
+        };
+        for &c in changed {
+            for run in node.layer.output().channel_runs(z.nrows(), c) {
+                values[run.clone()].copy_from_slice(&from[run.clone()]);
+                node.activation.apply_values(&mut values[run]);
+            }
+        }
+        a
     }
 
     fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
@@ -966,6 +1018,14 @@ impl Graph {
             })
         })
     }
+}
+
+/// The channels in either set; `None` (unknown: all may differ) when either is.
+fn union(a: Option<&[usize]>, b: Option<&[usize]>) -> Option<Vec<usize>> {
+    let mut all: Vec<usize> = a?.iter().chain(b?).copied().collect();
+    all.sort_unstable();
+    all.dedup();
+    Some(all)
 }
 
 /// One layer's branches from its step: the kind's choices and the activation's sides.

@@ -9,12 +9,15 @@
 //! - `norm-epsilon-misplaced`: the formula above with 1/(√σ² + ε) in place of inv (x̂ as saved);
 //! - `norm-scale-unnormalised`: dγ = Σ dy · x instead of Σ dy · x̂.
 //!
-//! Incremental hint: none. A batch norm's scale or shift entry moves one channel, but the layer
-//! is cheap beside the convolutions around it; the graph recomputes it.
+//! Incremental hints: a scale or shift entry moves one feature (channel) of the output,
+//! recomputed from the base's saved x̂ with the forward pass's arithmetic (so bit for bit a full
+//! pass's); a batch norm whose input changed in some channels only recomputes those channels'
+//! statistics and values ([`Layer::forward_channels`](super::Layer::forward_channels)). Layer-
+//! and rms-norm mix the channels at each position: their input changes recompute the layer.
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Ix1, Ix2};
 
-use super::{Back, LayerScalar, ParamSpec, Role, Shape, ShapeError, Step};
+use super::{Back, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step};
 
 pub(crate) const MISTAKES: &[&str] = &[
     "norm-statistics-constant",
@@ -85,43 +88,29 @@ impl Norm {
         specs
     }
 
-    /// The groups of flat indices (into a standard-layout m × size batch) that share statistics.
-    fn groups(&self, m: usize) -> Vec<Vec<usize>> {
+    /// How many groups of values share statistics in a batch of `m`.
+    fn group_count(&self, m: usize) -> usize {
         let (outer, axis, inner) = self.input.feature_axis();
-        let size = self.input.size();
-        let at = |i: usize, o: usize, a: usize, j: usize| i * size + (o * axis + a) * inner + j;
         match self.over {
-            Over::Batch => (0..axis)
-                .map(|a| {
-                    let mut g = Vec::with_capacity(m * outer * inner);
-                    for i in 0..m {
-                        for o in 0..outer {
-                            for j in 0..inner {
-                                g.push(at(i, o, a, j));
-                            }
-                        }
-                    }
-                    g
-                })
-                .collect(),
-            Over::Features => {
-                let mut groups = Vec::with_capacity(m * outer * inner);
-                for i in 0..m {
-                    for o in 0..outer {
-                        for j in 0..inner {
-                            groups.push((0..axis).map(|a| at(i, o, a, j)).collect());
-                        }
-                    }
-                }
-                groups
-            }
+            Over::Batch => axis,
+            Over::Features => m * outer * inner,
         }
     }
 
-    /// The feature (index into the scale) of a flat batch index.
-    fn feature(&self, flat: usize) -> usize {
-        let (_, axis, inner) = self.input.feature_axis();
-        (flat % self.input.size() / inner) % axis
+    /// The flat indices (into a standard-layout m × size batch) of group `g`, in a fixed order:
+    /// `count` runs of `len` consecutive indices, `stride` apart. A batch-norm feature's values
+    /// are one run of `inner` per sample and outer position; a layer-norm group's are the
+    /// features at one position, `inner` apart.
+    fn group(&self, g: usize, m: usize) -> impl Iterator<Item = usize> + use<> {
+        let (outer, axis, inner) = self.input.feature_axis();
+        let (start, len, stride, count) = match self.over {
+            Over::Batch => (g * inner, inner, axis * inner, m * outer),
+            Over::Features => ((g / inner) * axis * inner + g % inner, 1, inner, axis),
+        };
+        (0..count).flat_map(move |r| {
+            let b = start + r * stride;
+            b..b + len
+        })
     }
 
     pub fn forward<S: LayerScalar>(&self, params: &[ArrayD<S>], x: ArrayView2<S>) -> Step<S> {
@@ -131,34 +120,42 @@ impl Norm {
             .view()
             .into_dimensionality::<Ix1>()
             .expect("scale");
-        let groups = self.groups(x.nrows());
+        let m = x.nrows();
+        let groups = self.group_count(m);
+        let n = S::from_f64((xs.len() / groups.max(1)) as f64);
         let mut xhat = vec![S::zero(); xs.len()];
-        let mut inv = Array1::zeros(groups.len());
-        let mut var = Array1::zeros(groups.len());
-        for (g, idx) in groups.iter().enumerate() {
-            let n = S::from_f64(idx.len() as f64);
+        let mut inv = Array1::zeros(groups);
+        let mut var = Array1::zeros(groups);
+        for g in 0..groups {
             let mean = if self.centre {
-                idx.iter().fold(S::zero(), |acc, &k| acc + xs[k]) / n
+                self.group(g, m).fold(S::zero(), |acc, k| acc + xs[k]) / n
             } else {
                 S::zero()
             };
-            let v = idx.iter().fold(S::zero(), |acc, &k| {
+            let v = self.group(g, m).fold(S::zero(), |acc, k| {
                 let d = xs[k] - mean;
                 acc + d * d
             }) / n;
             let r = S::one() / (v + S::from_f64(self.epsilon)).sqrt();
-            for &k in idx {
+            for k in self.group(g, m) {
                 xhat[k] = (xs[k] - mean) * r;
             }
             inv[g] = r;
             var[g] = v;
         }
-        let mut out = vec![S::zero(); xs.len()];
-        for (k, o) in out.iter_mut().enumerate() {
-            let a = self.feature(k);
-            *o = scale[a] * xhat[k];
-            if self.shift {
-                *o += params[1][a];
+        // y = γ x̂ + β, a run of one feature's `inner` consecutive values at a time.
+        let (_, axis, inner) = self.input.feature_axis();
+        let shift = self
+            .shift
+            .then(|| params[1].as_slice().expect("standard layout"));
+        let mut out = xhat.clone();
+        for (r, run) in out.chunks_mut(inner.max(1)).enumerate() {
+            let a = r % axis;
+            for o in run {
+                *o = scale[a] * *o;
+                if let Some(b) = shift {
+                    *o += b[a];
+                }
             }
         }
         let shape = x.raw_dim();
@@ -174,6 +171,74 @@ impl Norm {
             branches: Vec::new(),
             ties: 0,
         }
+    }
+
+    /// The step after scale or shift entry `moved.index` moved: that feature's values from the
+    /// base's x̂, the others the base's.
+    pub fn forward_moved<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        base: &Step<S>,
+        moved: &Moved<S>,
+    ) -> Option<Step<S>> {
+        let a = moved.index;
+        let xhat = base.saved.first()?.as_slice()?;
+        let mut scale = params[0][a];
+        let mut shift = self.shift.then(|| params[1][a]);
+        match (moved.tensor, shift.as_mut()) {
+            (0, _) => scale += moved.delta,
+            (_, Some(b)) => *b += moved.delta,
+            (_, None) => unreachable!("rms-norm has no shift"),
+        }
+        let mut out = base.out.clone();
+        let values = out.as_slice_mut()?;
+        for run in self.input.channel_runs(base.out.nrows(), a) {
+            for (o, &v) in values[run.clone()].iter_mut().zip(&xhat[run]) {
+                *o = scale * v;
+                if let Some(b) = shift {
+                    *o += b;
+                }
+            }
+        }
+        Some(Step::plain(out))
+    }
+
+    /// A batch norm's step for an input changed in the channels `changed` only: their
+    /// statistics and values again, the others the base's. `None` when the statistics mix the
+    /// channels (layer- and rms-norm).
+    pub fn forward_channels<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
+        changed: &[usize],
+    ) -> Option<Step<S>> {
+        if self.over != Over::Batch {
+            return None;
+        }
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let m = x.nrows();
+        let n = S::from_f64((xs.len() / self.group_count(m).max(1)) as f64);
+        let mut out = base.out.clone();
+        let values = out.as_slice_mut()?;
+        for &a in changed {
+            // The forward pass's arithmetic for group a (one feature over the batch).
+            let mean = self.group(a, m).fold(S::zero(), |acc, k| acc + xs[k]) / n;
+            let v = self.group(a, m).fold(S::zero(), |acc, k| {
+                let d = xs[k] - mean;
+                acc + d * d
+            }) / n;
+            let r = S::one() / (v + S::from_f64(self.epsilon)).sqrt();
+            let (scale, shift) = (params[0][a], self.shift.then(|| params[1][a]));
+            for k in self.group(a, m) {
+                values[k] = scale * ((xs[k] - mean) * r);
+                if let Some(b) = shift {
+                    values[k] += b;
+                }
+            }
+        }
+        Some(Step::plain(out))
     }
 
     pub fn backward<S: LayerScalar>(
@@ -208,18 +273,28 @@ impl Norm {
         let n_f = self.features();
         let mut dscale = Array1::zeros(n_f);
         let mut dshift = Array1::zeros(n_f);
-        let mut dxhat = vec![S::zero(); xs.len()];
         let raw = mistake == Some("norm-scale-unnormalised");
-        for k in 0..xs.len() {
-            let a = self.feature(k);
-            dscale[a] += dy[k] * if raw { xs[k] } else { xhat[k] };
-            dshift[a] += dy[k];
-            dxhat[k] = dy[k] * scale[a];
+        let against = if raw { xs } else { xhat };
+        let (_, axis, inner) = self.input.feature_axis();
+        let mut dxhat = vec![S::zero(); xs.len()];
+        let runs = dxhat
+            .chunks_mut(inner.max(1))
+            .zip(dy.chunks(inner.max(1)).zip(against.chunks(inner.max(1))));
+        for (r, (d, (dy, v))) in runs.enumerate() {
+            let a = r % axis;
+            for ((d, &g), &v) in d.iter_mut().zip(dy).zip(v) {
+                dscale[a] += g * v;
+                dshift[a] += g;
+                *d = g * scale[a];
+            }
         }
+        let m = x.nrows();
+        let groups = self.group_count(m);
+        let n = S::from_f64((xs.len() / groups.max(1)) as f64);
         let mut dx = vec![S::zero(); xs.len()];
-        for (g, idx) in self.groups(x.nrows()).iter().enumerate() {
+        for g in 0..groups {
             if mistake == Some("norm-statistics-constant") {
-                for &k in idx {
+                for k in self.group(g, m) {
                     dx[k] = dxhat[k] * inv[g];
                 }
                 continue;
@@ -229,17 +304,16 @@ impl Norm {
             } else {
                 inv[g]
             };
-            let n = S::from_f64(idx.len() as f64);
             let mean_d = if self.centre {
-                idx.iter().fold(S::zero(), |acc, &k| acc + dxhat[k]) / n
+                self.group(g, m).fold(S::zero(), |acc, k| acc + dxhat[k]) / n
             } else {
                 S::zero()
             };
-            let mean_dx = idx
-                .iter()
-                .fold(S::zero(), |acc, &k| acc + dxhat[k] * xhat[k])
+            let mean_dx = self
+                .group(g, m)
+                .fold(S::zero(), |acc, k| acc + dxhat[k] * xhat[k])
                 / n;
-            for &k in idx {
+            for k in self.group(g, m) {
                 dx[k] = r * (dxhat[k] - mean_d - xhat[k] * mean_dx);
             }
         }
@@ -278,6 +352,9 @@ macro_rules! norm_kind {
             fn locate(&self, _: usize, flat: usize) -> String {
                 format!("feature {flat}")
             }
+            fn moved_channel(&self, _: usize, index: usize) -> Option<usize> {
+                Some(index)
+            }
         }
 
         impl<S: $crate::graph::LayerScalar> $crate::graph::Layer<S> for $t {
@@ -298,6 +375,25 @@ macro_rules! norm_kind {
                 mistake: Option<&str>,
             ) -> $crate::graph::Back<S> {
                 self.norm.backward(params, x, step, dout, mistake)
+            }
+            fn forward_moved(
+                &self,
+                params: &[ndarray::ArrayD<S>],
+                _: ndarray::ArrayView2<S>,
+                base: &$crate::graph::Step<S>,
+                moved: &$crate::graph::Moved<S>,
+            ) -> Option<$crate::graph::Step<S>> {
+                self.norm.forward_moved(params, base, moved)
+            }
+            fn forward_channels(
+                &self,
+                params: &[ndarray::ArrayD<S>],
+                x: ndarray::ArrayView2<S>,
+                _: Option<ndarray::ArrayView2<S>>,
+                base: &$crate::graph::Step<S>,
+                changed: &[usize],
+            ) -> Option<$crate::graph::Step<S>> {
+                self.norm.forward_channels(params, x, base, changed)
             }
         }
     };

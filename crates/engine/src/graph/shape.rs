@@ -25,7 +25,8 @@ pub enum Shape {
 impl Shape {
     /// Values per sample.
     pub fn size(&self) -> usize {
-        self.dims().iter().product()
+        let (outer, axis, inner) = self.feature_axis();
+        outer * axis * inner
     }
 
     /// The axes' lengths in C order.
@@ -86,6 +87,20 @@ impl Shape {
                 width,
             } => (1, channels, height * width),
         }
+    }
+
+    /// Where channel `c` of the feature axis sits in a standard-layout batch of `m` samples:
+    /// one run of `inner` consecutive values per sample and outer position, in flat order.
+    pub(crate) fn channel_runs(
+        &self,
+        m: usize,
+        c: usize,
+    ) -> impl Iterator<Item = std::ops::Range<usize>> + use<> {
+        let (outer, axis, inner) = self.feature_axis();
+        (0..m * outer).map(move |r| {
+            let start = (r * axis + c) * inner;
+            start..start + inner
+        })
     }
 
     /// Rows per sample when the last axis is what a softmax and the loss see as one output

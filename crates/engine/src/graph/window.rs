@@ -149,21 +149,20 @@ impl Window {
             self.taps(),
             self.in_positions(),
         );
-        let mut cols = Array2::zeros((m * op, self.channels * taps));
-        for i in 0..m {
-            let xi = x.row(i);
-            for oy in 0..self.output[0] {
-                for ox in 0..self.output[1] {
-                    let mut row = cols.row_mut(i * op + oy * self.output[1] + ox);
-                    self.for_each_tap(oy, ox, |t, q| {
-                        for c in 0..self.channels {
-                            row[c * taps + t] = xi[c * ip + q];
-                        }
-                    });
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let (width, sample) = (self.channels * taps, self.channels * ip);
+        let mut cols = vec![S::zero(); m * op * width];
+        for (r, row) in cols.chunks_mut(width.max(1)).enumerate() {
+            let (i, p) = (r / op, r % op);
+            let xi = &xs[i * sample..(i + 1) * sample];
+            self.for_each_tap(p / self.output[1], p % self.output[1], |t, q| {
+                for c in 0..self.channels {
+                    row[c * taps + t] = xi[c * ip + q];
                 }
-            }
+            });
         }
-        cols
+        Array2::from_shape_vec((m * op, width), cols).expect("sized above")
     }
 
     /// The inverse gather of [`Window::columns`]: each column entry goes back to the input

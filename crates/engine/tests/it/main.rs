@@ -13,6 +13,7 @@ mod graph_published;
 mod graph_sequence;
 mod graph_sequence_fixtures;
 mod graph_sequence_published;
+mod graph_tails;
 mod init;
 mod iris;
 mod published;
