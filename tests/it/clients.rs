@@ -42,6 +42,49 @@ fn output(mut c: Command) -> (i32, String, String) {
     )
 }
 
+/// `plumb probe` from the repository on `target` (a description, or `--blackbox`) at `seed`,
+/// quiet, as JSON: `flags` for plumb, then `program` after `--`.
+fn probe(target: &str, seed: &str, flags: &[&str], program: &[&str]) -> util::Run {
+    let mut args = vec![
+        "probe", target, "--seed", seed, "--quiet", "--format", "json",
+    ];
+    args.extend_from_slice(flags);
+    args.push("--");
+    args.extend_from_slice(program);
+    plumb_in(repo(), &args)
+}
+
+/// The hand-written NumPy examples of the demo's scenarios (b) and (c).
+const CNN: &str = "examples/python/cnn_numpy.py";
+const LSTM: &str = "examples/python/lstm_numpy.py";
+const ATTENTION: &str = "examples/python/attention_numpy.py";
+
+/// `python3 SCRIPT ARGS…` from the repository: an example program for `probe`.
+fn python3<'a>(script: &'a str, args: &[&'a str]) -> Vec<&'a str> {
+    [&["python3", script][..], args].concat()
+}
+
+/// plumb's flags for a run on a planted mistake. The diagnosis that names it compares the
+/// program's whole gradient with the reference's whatever these say; they thin out only the
+/// check against the program's own loss (20 coordinates, one direction per tensor), which the
+/// right program's run does in full. A run then costs about a third of a full one.
+const PLANTED: [&str; 4] = ["--sample", "20", "--directions", "1"];
+
+/// Asserts that the diagnosis names `mistake` at each tensor `reached` says and at no other.
+fn assert_named_where_reached(run: &util::Run, mistake: &str, reached: impl Fn(&str) -> bool) {
+    run.assert_code(1);
+    let j = run.json();
+    for t in j["tensors"].as_array().unwrap() {
+        let name = t["name"].as_str().unwrap();
+        let want = reached(name).then_some(mistake);
+        assert_eq!(
+            t["diagnosis"]["code"].as_str(),
+            want,
+            "{mistake}, {name}: {t:#}"
+        );
+    }
+}
+
 /// The helper as a test would call it: a correct program passes; a planted mistake raises
 /// ProbeFailed (an AssertionError, which fails a pytest or unittest test) whose message carries
 /// the report's findings; a program that crashes is ProbeUnusable with plumb's reason; no binary
@@ -204,23 +247,8 @@ fn diagnoses(j: &serde_json::Value) -> Vec<Option<String>> {
 fn the_c_header_serves_plumb_in_both_directions() {
     let exe = strict_c_build();
     let exe = exe.to_str().unwrap();
-    let net = repo().join("examples/pump.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "5",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            exe,
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    let run = |program: &[&str]| probe("examples/pump.toml", "5", &[], program);
+    run(&[exe]).assert_code(0);
     let some = |c: &str| Some(c.to_string());
     for (plant, want) in [
         ("sign-flipped:3", vec![None, None, some("sign-flipped")]),
@@ -238,26 +266,14 @@ fn the_c_header_serves_plumb_in_both_directions() {
             ],
         ),
     ] {
-        let run = probe(&["--plant", plant]);
+        let run = run(&[exe, "--plant", plant]);
         run.assert_code(1);
         assert_eq!(diagnoses(&run.json()), want, "{plant}");
     }
     // A black box: the hello's x and y shapes let plumb draw a batch with no description.
-    let bb = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            exe,
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    bb(&[]).assert_code(0);
-    let run = bb(&["--plant", "missing-batch-mean:2"]);
+    let bb = |program: &[&str]| probe("--blackbox", "0", &[], program);
+    bb(&[exe]).assert_code(0);
+    let run = bb(&[exe, "--plant", "missing-batch-mean:2"]);
     run.assert_code(1);
     let j = run.json();
     assert_eq!(j["findings"][0]["code"], "self-inconsistent");
@@ -529,7 +545,7 @@ fn cnn_plants() -> Vec<(&'static str, &'static str, Vec<&'static str>)> {
 }
 
 fn cnn_self_check(extra: &[&str]) -> (i32, String) {
-    self_check("examples/python/cnn_numpy.py", CNN_REFERENCE, extra)
+    self_check(CNN, CNN_REFERENCE, extra)
 }
 
 /// An example's `--self-check` against its reference file: exit 0 or 1, and what it printed.
@@ -682,24 +698,11 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
 /// own loss, both directions (the hello's x and y shapes let plumb draw the batch).
 #[test]
 fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--seed",
-            "1",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    let run = probe(&["--plant", "kernel-flipped:conv2"]);
+    probe("--blackbox", "1", &[], &python3(CNN, &[])).assert_code(0);
+    // A black box has only its own loss to be checked against: the thinned check still finds
+    // the flipped kernel (and the tensors below it), each in several coordinates.
+    let plant = python3(CNN, &["--plant", "kernel-flipped:conv2"]);
+    let run = probe("--blackbox", "1", &PLANTED, &plant);
     run.assert_code(1);
     let j = run.json();
     let named: Vec<&str> = j["findings"]
@@ -722,35 +725,16 @@ fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
 /// the tensors it reaches.
 #[test]
 fn probe_names_each_planted_cnn_mistake() {
-    let net = repo().join("examples/pump-cnn.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    probe("examples/pump-cnn.toml", "3", &[], &python3(CNN, &[])).assert_code(0);
     for (mistake, layer, reach) in cnn_plants() {
         let plant = format!("{mistake}:{layer}");
-        let run = probe(&["--plant", &plant]);
-        run.assert_code(1);
-        let j = run.json();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let code = t["diagnosis"]["code"].as_str();
-            let want = reach.contains(&name).then_some(mistake);
-            assert_eq!(code, want, "{plant}, {name}: {t:#}");
-        }
+        let run = probe(
+            "examples/pump-cnn.toml",
+            "3",
+            &PLANTED,
+            &python3(CNN, &["--plant", &plant]),
+        );
+        assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
     }
 }
 
@@ -761,25 +745,12 @@ fn probe_names_each_planted_cnn_mistake() {
 /// nowhere else; `kernel-flipped` in conv1 is named on conv1's weight and on `input`.
 #[test]
 fn probe_names_a_mistake_planted_in_the_input_gradient() {
-    let net = repo().join("examples/pump-cnn.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-            "--input-gradient",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    let run = probe(&[]);
+    let run = probe(
+        "examples/pump-cnn.toml",
+        "3",
+        &[],
+        &python3(CNN, &["--input-gradient"]),
+    );
     run.assert_code(0);
     let j = run.json();
     let input = j["tensors"]
@@ -794,19 +765,14 @@ fn probe_names_a_mistake_planted_in_the_input_gradient() {
         ("overlap-overwritten:conv1", vec!["input"]),
         ("kernel-flipped:conv1", vec!["conv1.weight", "input"]),
     ] {
-        let run = probe(&["--plant", plant]);
-        run.assert_code(1);
-        let j = run.json();
+        let run = probe(
+            "examples/pump-cnn.toml",
+            "3",
+            &PLANTED,
+            &python3(CNN, &["--input-gradient", "--plant", plant]),
+        );
         let code = plant.split(':').next().unwrap();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let want = reach.contains(&name).then_some(code);
-            assert_eq!(
-                t["diagnosis"]["code"].as_str(),
-                want,
-                "{plant}, {name}: {t:#}"
-            );
-        }
+        assert_named_where_reached(&run, code, |t| reach.contains(&t));
     }
 }
 
@@ -857,8 +823,7 @@ fn pump_lstm_graph() -> Graph {
 /// tensors and not the dense head's.
 #[test]
 fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
-    let program = "examples/python/lstm_numpy.py";
-    let (code, stdout) = self_check(program, LSTM_REFERENCE, &[]);
+    let (code, stdout) = self_check(LSTM, LSTM_REFERENCE, &[]);
     assert_eq!(code, 0, "{stdout}");
     assert!(stdout.ends_with("differs: nothing\n"), "{stdout}");
     let graph = pump_lstm_graph();
@@ -879,7 +844,7 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
     for mistake in LSTM_MISTAKES {
         let saved = dir.join(format!("{mistake}.npz"));
         let (code, stdout) = self_check(
-            program,
+            LSTM,
             LSTM_REFERENCE,
             &["--plant", mistake, "--save", saved.to_str().unwrap()],
         );
@@ -901,26 +866,11 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
 /// The LSTM through `plumb probe` as a black box, both directions.
 #[test]
 fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--seed",
-            "1",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/lstm_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    // One mistake: each black-box run evaluates the loss a few hundred times in a Python loop
-    // over 24 steps; the four are compared with the engine's above.
-    let run = probe(&["--plant", "state-gradient-dropped"]);
+    probe("--blackbox", "1", &[], &python3(LSTM, &[])).assert_code(0);
+    // One mistake, in the thinned check: each loss is a Python loop over 24 steps, and a full
+    // check evaluates it several hundred times; the four are compared with the engine's above.
+    let plant = python3(LSTM, &["--plant", "state-gradient-dropped"]);
+    let run = probe("--blackbox", "1", &PLANTED, &plant);
     run.assert_code(1);
     let j = run.json();
     assert!(
@@ -938,33 +888,17 @@ fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
 /// tensors.
 #[test]
 fn probe_names_each_planted_lstm_mistake() {
-    let net = repo().join("examples/pump-lstm.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/lstm_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    probe("examples/pump-lstm.toml", "3", &[], &python3(LSTM, &[])).assert_code(0);
+    // The plants on 8 samples: the diagnosis names each the same as on the default 32.
+    let planted = [&PLANTED[..], &["--batch", "8"]].concat();
     for mistake in LSTM_MISTAKES {
-        let run = probe(&["--plant", mistake]);
-        run.assert_code(1);
-        let j = run.json();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let want = name.starts_with("lstm.").then_some(mistake);
-            assert_eq!(t["diagnosis"]["code"].as_str(), want, "{mistake}, {name}");
-        }
+        let run = probe(
+            "examples/pump-lstm.toml",
+            "3",
+            &planted,
+            &python3(LSTM, &["--plant", mistake]),
+        );
+        assert_named_where_reached(&run, mistake, |t| t.starts_with("lstm."));
     }
 }
 
@@ -997,6 +931,30 @@ fn pump_attention_graph() -> Graph {
     b.finish().unwrap()
 }
 
+/// Each planted attention mistake and the tensors its gradient changes. Below the attention the
+/// embedding always changes; within it: no scale reaches Q and K (the key bias's gradient stays
+/// zero); P without the mask reaches V's weight too (not its bias: rows of P sum to 1 either
+/// way); the diagonal alone breaks the rows' zero sum, so the key bias moves.
+fn attention_plants() -> [(&'static str, Vec<&'static str>); 3] {
+    let embed = ["embed.weight", "embed.bias"];
+    let qk = [
+        "attend.query.weight",
+        "attend.query.bias",
+        "attend.key.weight",
+    ];
+    [
+        ("attention-scale-missing", [&embed[..], &qk[..]].concat()),
+        (
+            "mask-ignored-in-backward",
+            [&embed[..], &qk[..], &["attend.value.weight"][..]].concat(),
+        ),
+        (
+            "softmax-jacobian-diagonal",
+            [&embed[..], &qk[..], &["attend.key.bias"][..]].concat(),
+        ),
+    ]
+}
+
 /// The attention block's hand-written backward pass against autograd through a plain NumPy
 /// forward pass of scaled dot-product attention (Vaswani et al. 2017;
 /// examples/python/reference/generate_attention.py), and each planted attention mistake against
@@ -1005,8 +963,7 @@ fn pump_attention_graph() -> Graph {
 /// sides hold rounding noise there. Each plant changes the tensors named below and no other.
 #[test]
 fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
-    let program = "examples/python/attention_numpy.py";
-    let (code, stdout) = self_check(program, ATTENTION_REFERENCE, &[]);
+    let (code, stdout) = self_check(ATTENTION, ATTENTION_REFERENCE, &[]);
     assert_eq!(code, 0, "{stdout}");
     let graph = pump_attention_graph();
     let names: Vec<String> = graph.tensors().iter().map(|t| t.name.clone()).collect();
@@ -1038,32 +995,11 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
         let err = close(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
-    // Below the attention the embedding always changes; within it, what each mistake reaches:
-    // no scale reaches Q and K (the key bias's gradient stays zero); P without the mask reaches
-    // V's weight too (not its bias: rows of P sum to 1 either way); the diagonal alone breaks the
-    // rows' zero sum, so the key bias moves.
-    let embed = ["embed.weight", "embed.bias"];
-    let qk = [
-        "attend.query.weight",
-        "attend.query.bias",
-        "attend.key.weight",
-    ];
-    let cases: [(&str, Vec<&str>); 3] = [
-        ("attention-scale-missing", [&embed[..], &qk[..]].concat()),
-        (
-            "mask-ignored-in-backward",
-            [&embed[..], &qk[..], &["attend.value.weight"][..]].concat(),
-        ),
-        (
-            "softmax-jacobian-diagonal",
-            [&embed[..], &qk[..], &["attend.key.bias"][..]].concat(),
-        ),
-    ];
     let dir = scratch("attention-plants");
-    for (mistake, reach) in cases {
+    for (mistake, reach) in attention_plants() {
         let saved = dir.join(format!("{mistake}.npz"));
         let (code, stdout) = self_check(
-            program,
+            ATTENTION,
             ATTENTION_REFERENCE,
             &["--plant", mistake, "--save", saved.to_str().unwrap()],
         );
@@ -1084,45 +1020,26 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
     }
 }
 
-/// `plumb probe` on the attention model against its description.
+/// `plumb probe` on the attention model against its description: the right program passes, each
+/// plant is named at the tensors it reaches.
 #[test]
 fn probe_names_each_planted_attention_mistake() {
-    let net = repo().join("examples/pump-attention.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
+    probe(
+        "examples/pump-attention.toml",
+        "3",
+        &[],
+        &python3(ATTENTION, &[]),
+    )
+    .assert_code(0);
+    // The plants on 8 samples: the diagnosis names each the same as on the default 32.
+    let planted = [&PLANTED[..], &["--batch", "8"]].concat();
+    for (mistake, reach) in attention_plants() {
+        let run = probe(
+            "examples/pump-attention.toml",
             "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/attention_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    for mistake in [
-        "attention-scale-missing",
-        "mask-ignored-in-backward",
-        "softmax-jacobian-diagonal",
-    ] {
-        let run = probe(&["--plant", mistake]);
-        run.assert_code(1);
-        let j = run.json();
-        let named: Vec<&str> = j["tensors"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .filter(|t| t["diagnosis"]["code"].as_str() == Some(mistake))
-            .map(|t| t["name"].as_str().unwrap())
-            .collect();
-        assert!(
-            named.contains(&"attend.query.weight"),
-            "{mistake}: {named:?}"
+            &planted,
+            &python3(ATTENTION, &["--plant", mistake]),
         );
+        assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
     }
 }
