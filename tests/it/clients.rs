@@ -85,6 +85,16 @@ fn assert_named_where_reached(run: &util::Run, mistake: &str, reached: impl Fn(&
     }
 }
 
+/// The tensors a black-box report finds self-inconsistent (gradient against the program's own
+/// loss).
+fn self_inconsistent(j: &serde_json::Value) -> Vec<&str> {
+    util::findings(j)
+        .iter()
+        .filter(|f| f["code"] == "self-inconsistent")
+        .filter_map(|f| f["tensor"].as_str())
+        .collect()
+}
+
 /// The helper as a test would call it: a correct program passes; a planted mistake raises
 /// ProbeFailed (an AssertionError, which fails a pytest or unittest test) whose message carries
 /// the report's findings; a program that crashes is ProbeUnusable with plumb's reason; no binary
@@ -705,13 +715,7 @@ fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
     let run = probe("--blackbox", "1", &PLANTED, &plant);
     run.assert_code(1);
     let j = run.json();
-    let named: Vec<&str> = j["findings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter(|f| f["code"] == "self-inconsistent")
-        .filter_map(|f| f["tensor"].as_str())
-        .collect();
+    let named = self_inconsistent(&j);
     assert!(named.contains(&"conv2.weight"), "{:#}", j["findings"]);
     assert!(
         named
@@ -874,11 +878,7 @@ fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
     run.assert_code(1);
     let j = run.json();
     assert!(
-        j["findings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .any(|f| f["code"] == "self-inconsistent" && f["tensor"] == "lstm.recurrent.weight"),
+        self_inconsistent(&j).contains(&"lstm.recurrent.weight"),
         "{:#}",
         j["findings"]
     );

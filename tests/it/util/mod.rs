@@ -51,6 +51,13 @@ impl Run {
     }
 }
 
+/// The findings of a JSON report.
+pub fn findings(report: &serde_json::Value) -> &[serde_json::Value] {
+    report["findings"]
+        .as_array()
+        .unwrap_or_else(|| panic!("no findings in {report:#}"))
+}
+
 /// Runs plumb with the arguments, colour off and NO_COLOR set, in the given directory.
 pub fn plumb_in(dir: &Path, args: &[&str]) -> Run {
     run(command(dir, args))
