@@ -653,6 +653,42 @@ fn rows(a: &ArrayD<f64>) -> Array2<f64> {
         .unwrap()
 }
 
+/// An example's autograd reference (examples/python/reference/*.npz): the point — the
+/// parameters in the graph's tensor order, x and y — and autograd's gradient there, per tensor.
+struct Reference {
+    params: Vec<ArrayD<f64>>,
+    grads: Vec<ArrayD<f64>>,
+    x: Array2<f64>,
+    y: Array2<f64>,
+}
+
+impl Reference {
+    fn read(path: &str, graph: &Graph) -> Self {
+        let file = npz(&repo().join(path));
+        let per_tensor = |prefix: &str| -> Vec<ArrayD<f64>> {
+            graph
+                .tensors()
+                .iter()
+                .map(|t| file[&format!("{prefix}/{}", t.name)].clone())
+                .collect()
+        };
+        Reference {
+            params: per_tensor("param"),
+            grads: per_tensor("grad"),
+            x: rows(&file["x"]),
+            y: rows(&file["y"]),
+        }
+    }
+
+    /// The engine's gradient at the reference point, with `code` planted in `layer` if given.
+    fn engine(&self, graph: &Graph, plant: Option<(&str, &str)>) -> Vec<ArrayD<f64>> {
+        let planted = plant.map(|(layer, code)| graph.plant(layer, code).unwrap());
+        graph
+            .gradient(&self.params, self.x.view(), self.y.view(), planted.as_ref())
+            .params
+    }
+}
+
 /// The largest difference over the largest entry of the reference.
 fn relative(got: &ArrayD<f64>, want: &ArrayD<f64>) -> f64 {
     assert_eq!(got.shape(), want.shape());
@@ -673,15 +709,10 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
     let graph = pump_cnn_graph();
     let names: Vec<&str> = graph.tensors().iter().map(|t| t.name.as_str()).collect();
     assert_eq!(names, CNN_TENSORS);
-    let reference = npz(&repo().join(CNN_REFERENCE));
-    let params: Vec<ArrayD<f64>> = CNN_TENSORS
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for (n, g) in CNN_TENSORS.iter().zip(&engine.params) {
-        let err = relative(g, &reference[&format!("grad/{n}")]);
+    let reference = Reference::read(CNN_REFERENCE, &graph);
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in CNN_TENSORS.iter().zip(&engine).zip(&reference.grads) {
+        let err = relative(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
     let dir = scratch("cnn-plants");
@@ -692,13 +723,12 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
             cnn_self_check(&["--plant", &plant, "--save", saved.to_str().unwrap()]);
         assert_eq!(code, 1, "{plant}: {stdout}");
         let example = npz(&saved);
-        let planted = graph.plant(layer, mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for (n, g) in CNN_TENSORS.iter().zip(&engine.params) {
+        let engine = reference.engine(&graph, Some((layer, mistake)));
+        for ((n, g), want) in CNN_TENSORS.iter().zip(&engine).zip(&reference.grads) {
             let err = relative(&example[*n], g);
             assert!(err <= 1e-10, "{plant}, {n}: example vs engine {err:e}");
             // And the engine's plant moves exactly the tensors the example's does.
-            let moved = relative(g, &reference[&format!("grad/{n}")]) > 1e-10;
+            let moved = relative(g, want) > 1e-10;
             assert_eq!(moved, reach.contains(n), "{plant}, {n}");
         }
     }
@@ -833,15 +863,10 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
     let graph = pump_lstm_graph();
     let names: Vec<&str> = graph.tensors().iter().map(|t| t.name.as_str()).collect();
     assert_eq!(names, LSTM_TENSORS);
-    let reference = npz(&repo().join(LSTM_REFERENCE));
-    let params: Vec<ArrayD<f64>> = LSTM_TENSORS
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for (n, g) in LSTM_TENSORS.iter().zip(&engine.params) {
-        let err = relative(g, &reference[&format!("grad/{n}")]);
+    let reference = Reference::read(LSTM_REFERENCE, &graph);
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in LSTM_TENSORS.iter().zip(&engine).zip(&reference.grads) {
+        let err = relative(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
     let dir = scratch("lstm-plants");
@@ -858,9 +883,8 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
             "{mistake}: {stdout}"
         );
         let example = npz(&saved);
-        let planted = graph.plant("lstm", mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for (n, g) in LSTM_TENSORS.iter().zip(&engine.params) {
+        let engine = reference.engine(&graph, Some(("lstm", mistake)));
+        for (n, g) in LSTM_TENSORS.iter().zip(&engine) {
             let err = relative(&example[*n], g);
             assert!(err <= 1e-10, "{mistake}, {n}: example vs engine {err:e}");
         }
@@ -967,15 +991,8 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
     assert_eq!(code, 0, "{stdout}");
     let graph = pump_attention_graph();
     let names: Vec<String> = graph.tensors().iter().map(|t| t.name.clone()).collect();
-    let reference = npz(&repo().join(ATTENTION_REFERENCE));
-    let params: Vec<ArrayD<f64>> = names
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let wanted: Vec<&ArrayD<f64>> = names
-        .iter()
-        .map(|n| &reference[&format!("grad/{n}")])
-        .collect();
+    let reference = Reference::read(ATTENTION_REFERENCE, &graph);
+    let wanted = &reference.grads;
     let floor = 1e-6
         * wanted
             .iter()
@@ -989,9 +1006,8 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
             .fold(0f64, |s, (a, b)| s.max((a - b).abs()));
         diff / scale
     };
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for ((n, g), want) in names.iter().zip(&engine.params).zip(&wanted) {
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in names.iter().zip(&engine).zip(wanted) {
         let err = close(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
@@ -1009,9 +1025,8 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
             "{mistake}: {stdout}"
         );
         let example = npz(&saved);
-        let planted = graph.plant("attend", mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for ((n, g), want) in names.iter().zip(&engine.params).zip(&wanted) {
+        let engine = reference.engine(&graph, Some(("attend", mistake)));
+        for ((n, g), want) in names.iter().zip(&engine).zip(wanted) {
             let err = close(&example[n], g);
             assert!(err <= 1e-10, "{mistake}, {n}: example vs engine {err:e}");
             let moved = close(g, want) > 1e-10;
