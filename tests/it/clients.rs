@@ -585,16 +585,25 @@ fn the_numpy_cnn_agrees_with_autograd_and_each_plant_changes_what_it_reaches() {
     }
 }
 
+/// The loss of every pump example: cross-entropy, the mean over the batch, L2 0.01 over 2m on the
+/// weights (not the biases).
+const PUMP_LOSS: LossConfig = LossConfig {
+    loss: Loss::CrossEntropy,
+    reduction: Reduction::Mean,
+    l2: 0.01,
+    l2_divisor: L2Divisor::TwoM,
+    l2_on_bias: false,
+};
+
+/// The input of the LSTM and attention examples: 24 hourly readings of 4 values.
+const HOURLY: Shape = Shape::Sequence {
+    steps: 24,
+    width: 4,
+};
+
 /// The network of examples/pump-cnn.toml built directly on the engine's layer graph (the
 /// description parser cannot read conv descriptions yet).
 fn pump_cnn_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
     let conv = |channels, kernel, padding, bias| ConvSettings {
         padding,
         bias,
@@ -609,7 +618,7 @@ fn pump_cnn_graph() -> Graph {
         channels: 1,
         length: 64,
     };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(input, PUMP_LOSS);
     b.push(Some("conv1"), Activation::Tanh, |s| Conv::new(&c1, s))
         .unwrap();
     b.push(Some("pool1"), Activation::Identity, |s| {
@@ -829,18 +838,7 @@ const LSTM_MISTAKES: [&str; 4] = [
 
 /// The network of examples/pump-lstm.toml on the engine's layer graph.
 fn pump_lstm_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
-    let input = Shape::Sequence {
-        steps: 24,
-        width: 4,
-    };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(HOURLY, PUMP_LOSS);
     b.push(Some("lstm"), Activation::Identity, |s| {
         Lstm::new(6, "ifgo", "all", s)
     })
@@ -932,18 +930,7 @@ const ATTENTION_REFERENCE: &str = "examples/python/reference/attention.npz";
 
 /// The network of examples/pump-attention.toml on the engine's layer graph.
 fn pump_attention_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
-    let input = Shape::Sequence {
-        steps: 24,
-        width: 4,
-    };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(HOURLY, PUMP_LOSS);
     b.push(Some("embed"), Activation::Tanh, |s| Dense::new(8, s))
         .unwrap();
     b.push(Some("attend"), Activation::Identity, |s| {
