@@ -42,6 +42,59 @@ fn output(mut c: Command) -> (i32, String, String) {
     )
 }
 
+/// `plumb probe` from the repository on `target` (a description, or `--blackbox`) at `seed`,
+/// quiet, as JSON: `flags` for plumb, then `program` after `--`.
+fn probe(target: &str, seed: &str, flags: &[&str], program: &[&str]) -> util::Run {
+    let mut args = vec![
+        "probe", target, "--seed", seed, "--quiet", "--format", "json",
+    ];
+    args.extend_from_slice(flags);
+    args.push("--");
+    args.extend_from_slice(program);
+    plumb_in(repo(), &args)
+}
+
+/// The hand-written NumPy examples of the demo's scenarios (b) and (c).
+const CNN: &str = "examples/python/cnn_numpy.py";
+const LSTM: &str = "examples/python/lstm_numpy.py";
+const ATTENTION: &str = "examples/python/attention_numpy.py";
+
+/// `python3 SCRIPT ARGS…` from the repository: an example program for `probe`.
+fn python3<'a>(script: &'a str, args: &[&'a str]) -> Vec<&'a str> {
+    [&["python3", script][..], args].concat()
+}
+
+/// plumb's flags for a run on a planted mistake. The diagnosis that names it compares the
+/// program's whole gradient with the reference's whatever these say; they thin out only the
+/// check against the program's own loss (20 coordinates, one direction per tensor), which the
+/// right program's run does in full. A run then costs about a third of a full one.
+const PLANTED: [&str; 4] = ["--sample", "20", "--directions", "1"];
+
+/// Asserts that the diagnosis names `mistake` at each tensor `reached` says and at no other.
+fn assert_named_where_reached(run: &util::Run, mistake: &str, reached: impl Fn(&str) -> bool) {
+    run.assert_code(1);
+    let j = run.json();
+    for t in j["tensors"].as_array().unwrap() {
+        let name = t["name"].as_str().unwrap();
+        let want = reached(name).then_some(mistake);
+        assert_eq!(
+            t["diagnosis"]["code"].as_str(),
+            want,
+            "{mistake}, {name}: {t:#}"
+        );
+    }
+}
+
+/// The tensors a black-box report finds self-inconsistent (gradient against the program's own
+/// loss).
+fn self_inconsistent(j: &serde_json::Value) -> Vec<&str> {
+    util::findings(j)
+        .iter()
+        .filter(|f| f["code"] == "self-inconsistent")
+        .filter_map(|f| f["tensor"].as_str())
+        .collect()
+}
+
 /// The helper as a test would call it: a correct program passes; a planted mistake raises
 /// ProbeFailed (an AssertionError, which fails a pytest or unittest test) whose message carries
 /// the report's findings; a program that crashes is ProbeUnusable with plumb's reason; no binary
@@ -204,23 +257,8 @@ fn diagnoses(j: &serde_json::Value) -> Vec<Option<String>> {
 fn the_c_header_serves_plumb_in_both_directions() {
     let exe = strict_c_build();
     let exe = exe.to_str().unwrap();
-    let net = repo().join("examples/pump.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "5",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            exe,
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    let run = |program: &[&str]| probe("examples/pump.toml", "5", &[], program);
+    run(&[exe]).assert_code(0);
     let some = |c: &str| Some(c.to_string());
     for (plant, want) in [
         ("sign-flipped:3", vec![None, None, some("sign-flipped")]),
@@ -238,26 +276,14 @@ fn the_c_header_serves_plumb_in_both_directions() {
             ],
         ),
     ] {
-        let run = probe(&["--plant", plant]);
+        let run = run(&[exe, "--plant", plant]);
         run.assert_code(1);
         assert_eq!(diagnoses(&run.json()), want, "{plant}");
     }
     // A black box: the hello's x and y shapes let plumb draw a batch with no description.
-    let bb = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            exe,
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    bb(&[]).assert_code(0);
-    let run = bb(&["--plant", "missing-batch-mean:2"]);
+    let bb = |program: &[&str]| probe("--blackbox", "0", &[], program);
+    bb(&[exe]).assert_code(0);
+    let run = bb(&[exe, "--plant", "missing-batch-mean:2"]);
     run.assert_code(1);
     let j = run.json();
     assert_eq!(j["findings"][0]["code"], "self-inconsistent");
@@ -529,7 +555,7 @@ fn cnn_plants() -> Vec<(&'static str, &'static str, Vec<&'static str>)> {
 }
 
 fn cnn_self_check(extra: &[&str]) -> (i32, String) {
-    self_check("examples/python/cnn_numpy.py", CNN_REFERENCE, extra)
+    self_check(CNN, CNN_REFERENCE, extra)
 }
 
 /// An example's `--self-check` against its reference file: exit 0 or 1, and what it printed.
@@ -559,16 +585,25 @@ fn the_numpy_cnn_agrees_with_autograd_and_each_plant_changes_what_it_reaches() {
     }
 }
 
+/// The loss of every pump example: cross-entropy, the mean over the batch, L2 0.01 over 2m on the
+/// weights (not the biases).
+const PUMP_LOSS: LossConfig = LossConfig {
+    loss: Loss::CrossEntropy,
+    reduction: Reduction::Mean,
+    l2: 0.01,
+    l2_divisor: L2Divisor::TwoM,
+    l2_on_bias: false,
+};
+
+/// The input of the LSTM and attention examples: 24 hourly readings of 4 values.
+const HOURLY: Shape = Shape::Sequence {
+    steps: 24,
+    width: 4,
+};
+
 /// The network of examples/pump-cnn.toml built directly on the engine's layer graph (the
 /// description parser cannot read conv descriptions yet).
 fn pump_cnn_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
     let conv = |channels, kernel, padding, bias| ConvSettings {
         padding,
         bias,
@@ -583,7 +618,7 @@ fn pump_cnn_graph() -> Graph {
         channels: 1,
         length: 64,
     };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(input, PUMP_LOSS);
     b.push(Some("conv1"), Activation::Tanh, |s| Conv::new(&c1, s))
         .unwrap();
     b.push(Some("pool1"), Activation::Identity, |s| {
@@ -627,6 +662,42 @@ fn rows(a: &ArrayD<f64>) -> Array2<f64> {
         .unwrap()
 }
 
+/// An example's autograd reference (examples/python/reference/*.npz): the point — the
+/// parameters in the graph's tensor order, x and y — and autograd's gradient there, per tensor.
+struct Reference {
+    params: Vec<ArrayD<f64>>,
+    grads: Vec<ArrayD<f64>>,
+    x: Array2<f64>,
+    y: Array2<f64>,
+}
+
+impl Reference {
+    fn read(path: &str, graph: &Graph) -> Self {
+        let file = npz(&repo().join(path));
+        let per_tensor = |prefix: &str| -> Vec<ArrayD<f64>> {
+            graph
+                .tensors()
+                .iter()
+                .map(|t| file[&format!("{prefix}/{}", t.name)].clone())
+                .collect()
+        };
+        Reference {
+            params: per_tensor("param"),
+            grads: per_tensor("grad"),
+            x: rows(&file["x"]),
+            y: rows(&file["y"]),
+        }
+    }
+
+    /// The engine's gradient at the reference point, with `code` planted in `layer` if given.
+    fn engine(&self, graph: &Graph, plant: Option<(&str, &str)>) -> Vec<ArrayD<f64>> {
+        let planted = plant.map(|(layer, code)| graph.plant(layer, code).unwrap());
+        graph
+            .gradient(&self.params, self.x.view(), self.y.view(), planted.as_ref())
+            .params
+    }
+}
+
 /// The largest difference over the largest entry of the reference.
 fn relative(got: &ArrayD<f64>, want: &ArrayD<f64>) -> f64 {
     assert_eq!(got.shape(), want.shape());
@@ -647,15 +718,10 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
     let graph = pump_cnn_graph();
     let names: Vec<&str> = graph.tensors().iter().map(|t| t.name.as_str()).collect();
     assert_eq!(names, CNN_TENSORS);
-    let reference = npz(&repo().join(CNN_REFERENCE));
-    let params: Vec<ArrayD<f64>> = CNN_TENSORS
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for (n, g) in CNN_TENSORS.iter().zip(&engine.params) {
-        let err = relative(g, &reference[&format!("grad/{n}")]);
+    let reference = Reference::read(CNN_REFERENCE, &graph);
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in CNN_TENSORS.iter().zip(&engine).zip(&reference.grads) {
+        let err = relative(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
     let dir = scratch("cnn-plants");
@@ -666,13 +732,12 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
             cnn_self_check(&["--plant", &plant, "--save", saved.to_str().unwrap()]);
         assert_eq!(code, 1, "{plant}: {stdout}");
         let example = npz(&saved);
-        let planted = graph.plant(layer, mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for (n, g) in CNN_TENSORS.iter().zip(&engine.params) {
+        let engine = reference.engine(&graph, Some((layer, mistake)));
+        for ((n, g), want) in CNN_TENSORS.iter().zip(&engine).zip(&reference.grads) {
             let err = relative(&example[*n], g);
             assert!(err <= 1e-10, "{plant}, {n}: example vs engine {err:e}");
             // And the engine's plant moves exactly the tensors the example's does.
-            let moved = relative(g, &reference[&format!("grad/{n}")]) > 1e-10;
+            let moved = relative(g, want) > 1e-10;
             assert_eq!(moved, reach.contains(n), "{plant}, {n}");
         }
     }
@@ -682,33 +747,14 @@ fn the_numpy_cnn_plants_the_engines_mistakes() {
 /// own loss, both directions (the hello's x and y shapes let plumb draw the batch).
 #[test]
 fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--seed",
-            "1",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    let run = probe(&["--plant", "kernel-flipped:conv2"]);
+    probe("--blackbox", "1", &[], &python3(CNN, &[])).assert_code(0);
+    // A black box has only its own loss to be checked against: the thinned check still finds
+    // the flipped kernel (and the tensors below it), each in several coordinates.
+    let plant = python3(CNN, &["--plant", "kernel-flipped:conv2"]);
+    let run = probe("--blackbox", "1", &PLANTED, &plant);
     run.assert_code(1);
     let j = run.json();
-    let named: Vec<&str> = j["findings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter(|f| f["code"] == "self-inconsistent")
-        .filter_map(|f| f["tensor"].as_str())
-        .collect();
+    let named = self_inconsistent(&j);
     assert!(named.contains(&"conv2.weight"), "{:#}", j["findings"]);
     assert!(
         named
@@ -722,35 +768,16 @@ fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
 /// the tensors it reaches.
 #[test]
 fn probe_names_each_planted_cnn_mistake() {
-    let net = repo().join("examples/pump-cnn.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    probe("examples/pump-cnn.toml", "3", &[], &python3(CNN, &[])).assert_code(0);
     for (mistake, layer, reach) in cnn_plants() {
         let plant = format!("{mistake}:{layer}");
-        let run = probe(&["--plant", &plant]);
-        run.assert_code(1);
-        let j = run.json();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let code = t["diagnosis"]["code"].as_str();
-            let want = reach.contains(&name).then_some(mistake);
-            assert_eq!(code, want, "{plant}, {name}: {t:#}");
-        }
+        let run = probe(
+            "examples/pump-cnn.toml",
+            "3",
+            &PLANTED,
+            &python3(CNN, &["--plant", &plant]),
+        );
+        assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
     }
 }
 
@@ -761,25 +788,12 @@ fn probe_names_each_planted_cnn_mistake() {
 /// nowhere else; `kernel-flipped` in conv1 is named on conv1's weight and on `input`.
 #[test]
 fn probe_names_a_mistake_planted_in_the_input_gradient() {
-    let net = repo().join("examples/pump-cnn.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/cnn_numpy.py",
-            "--input-gradient",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    let run = probe(&[]);
+    let run = probe(
+        "examples/pump-cnn.toml",
+        "3",
+        &[],
+        &python3(CNN, &["--input-gradient"]),
+    );
     run.assert_code(0);
     let j = run.json();
     let input = j["tensors"]
@@ -794,19 +808,14 @@ fn probe_names_a_mistake_planted_in_the_input_gradient() {
         ("overlap-overwritten:conv1", vec!["input"]),
         ("kernel-flipped:conv1", vec!["conv1.weight", "input"]),
     ] {
-        let run = probe(&["--plant", plant]);
-        run.assert_code(1);
-        let j = run.json();
+        let run = probe(
+            "examples/pump-cnn.toml",
+            "3",
+            &PLANTED,
+            &python3(CNN, &["--input-gradient", "--plant", plant]),
+        );
         let code = plant.split(':').next().unwrap();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let want = reach.contains(&name).then_some(code);
-            assert_eq!(
-                t["diagnosis"]["code"].as_str(),
-                want,
-                "{plant}, {name}: {t:#}"
-            );
-        }
+        assert_named_where_reached(&run, code, |t| reach.contains(&t));
     }
 }
 
@@ -829,18 +838,7 @@ const LSTM_MISTAKES: [&str; 4] = [
 
 /// The network of examples/pump-lstm.toml on the engine's layer graph.
 fn pump_lstm_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
-    let input = Shape::Sequence {
-        steps: 24,
-        width: 4,
-    };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(HOURLY, PUMP_LOSS);
     b.push(Some("lstm"), Activation::Identity, |s| {
         Lstm::new(6, "ifgo", "all", s)
     })
@@ -857,29 +855,23 @@ fn pump_lstm_graph() -> Graph {
 /// tensors and not the dense head's.
 #[test]
 fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
-    let program = "examples/python/lstm_numpy.py";
-    let (code, stdout) = self_check(program, LSTM_REFERENCE, &[]);
+    let (code, stdout) = self_check(LSTM, LSTM_REFERENCE, &[]);
     assert_eq!(code, 0, "{stdout}");
     assert!(stdout.ends_with("differs: nothing\n"), "{stdout}");
     let graph = pump_lstm_graph();
     let names: Vec<&str> = graph.tensors().iter().map(|t| t.name.as_str()).collect();
     assert_eq!(names, LSTM_TENSORS);
-    let reference = npz(&repo().join(LSTM_REFERENCE));
-    let params: Vec<ArrayD<f64>> = LSTM_TENSORS
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for (n, g) in LSTM_TENSORS.iter().zip(&engine.params) {
-        let err = relative(g, &reference[&format!("grad/{n}")]);
+    let reference = Reference::read(LSTM_REFERENCE, &graph);
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in LSTM_TENSORS.iter().zip(&engine).zip(&reference.grads) {
+        let err = relative(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
     let dir = scratch("lstm-plants");
     for mistake in LSTM_MISTAKES {
         let saved = dir.join(format!("{mistake}.npz"));
         let (code, stdout) = self_check(
-            program,
+            LSTM,
             LSTM_REFERENCE,
             &["--plant", mistake, "--save", saved.to_str().unwrap()],
         );
@@ -889,9 +881,8 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
             "{mistake}: {stdout}"
         );
         let example = npz(&saved);
-        let planted = graph.plant("lstm", mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for (n, g) in LSTM_TENSORS.iter().zip(&engine.params) {
+        let engine = reference.engine(&graph, Some(("lstm", mistake)));
+        for (n, g) in LSTM_TENSORS.iter().zip(&engine) {
             let err = relative(&example[*n], g);
             assert!(err <= 1e-10, "{mistake}, {n}: example vs engine {err:e}");
         }
@@ -901,34 +892,15 @@ fn the_numpy_lstm_agrees_with_autograd_and_plants_the_engines_mistakes() {
 /// The LSTM through `plumb probe` as a black box, both directions.
 #[test]
 fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            "--blackbox",
-            "--seed",
-            "1",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/lstm_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    // One mistake: each black-box run evaluates the loss a few hundred times in a Python loop
-    // over 24 steps; the four are compared with the engine's above.
-    let run = probe(&["--plant", "state-gradient-dropped"]);
+    probe("--blackbox", "1", &[], &python3(LSTM, &[])).assert_code(0);
+    // One mistake, in the thinned check: each loss is a Python loop over 24 steps, and a full
+    // check evaluates it several hundred times; the four are compared with the engine's above.
+    let plant = python3(LSTM, &["--plant", "state-gradient-dropped"]);
+    let run = probe("--blackbox", "1", &PLANTED, &plant);
     run.assert_code(1);
     let j = run.json();
     assert!(
-        j["findings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .any(|f| f["code"] == "self-inconsistent" && f["tensor"] == "lstm.recurrent.weight"),
+        self_inconsistent(&j).contains(&"lstm.recurrent.weight"),
         "{:#}",
         j["findings"]
     );
@@ -938,33 +910,17 @@ fn the_numpy_lstm_passes_and_fails_as_a_black_box() {
 /// tensors.
 #[test]
 fn probe_names_each_planted_lstm_mistake() {
-    let net = repo().join("examples/pump-lstm.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
-            "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/lstm_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
+    probe("examples/pump-lstm.toml", "3", &[], &python3(LSTM, &[])).assert_code(0);
+    // The plants on 8 samples: the diagnosis names each the same as on the default 32.
+    let planted = [&PLANTED[..], &["--batch", "8"]].concat();
     for mistake in LSTM_MISTAKES {
-        let run = probe(&["--plant", mistake]);
-        run.assert_code(1);
-        let j = run.json();
-        for t in j["tensors"].as_array().unwrap() {
-            let name = t["name"].as_str().unwrap();
-            let want = name.starts_with("lstm.").then_some(mistake);
-            assert_eq!(t["diagnosis"]["code"].as_str(), want, "{mistake}, {name}");
-        }
+        let run = probe(
+            "examples/pump-lstm.toml",
+            "3",
+            &planted,
+            &python3(LSTM, &["--plant", mistake]),
+        );
+        assert_named_where_reached(&run, mistake, |t| t.starts_with("lstm."));
     }
 }
 
@@ -974,18 +930,7 @@ const ATTENTION_REFERENCE: &str = "examples/python/reference/attention.npz";
 
 /// The network of examples/pump-attention.toml on the engine's layer graph.
 fn pump_attention_graph() -> Graph {
-    let config = LossConfig {
-        loss: Loss::CrossEntropy,
-        reduction: Reduction::Mean,
-        l2: 0.01,
-        l2_divisor: L2Divisor::TwoM,
-        l2_on_bias: false,
-    };
-    let input = Shape::Sequence {
-        steps: 24,
-        width: 4,
-    };
-    let mut b = GraphBuilder::new(input, config);
+    let mut b = GraphBuilder::new(HOURLY, PUMP_LOSS);
     b.push(Some("embed"), Activation::Tanh, |s| Dense::new(8, s))
         .unwrap();
     b.push(Some("attend"), Activation::Identity, |s| {
@@ -997,6 +942,30 @@ fn pump_attention_graph() -> Graph {
     b.finish().unwrap()
 }
 
+/// Each planted attention mistake and the tensors its gradient changes. Below the attention the
+/// embedding always changes; within it: no scale reaches Q and K (the key bias's gradient stays
+/// zero); P without the mask reaches V's weight too (not its bias: rows of P sum to 1 either
+/// way); the diagonal alone breaks the rows' zero sum, so the key bias moves.
+fn attention_plants() -> [(&'static str, Vec<&'static str>); 3] {
+    let embed = ["embed.weight", "embed.bias"];
+    let qk = [
+        "attend.query.weight",
+        "attend.query.bias",
+        "attend.key.weight",
+    ];
+    [
+        ("attention-scale-missing", [&embed[..], &qk[..]].concat()),
+        (
+            "mask-ignored-in-backward",
+            [&embed[..], &qk[..], &["attend.value.weight"][..]].concat(),
+        ),
+        (
+            "softmax-jacobian-diagonal",
+            [&embed[..], &qk[..], &["attend.key.bias"][..]].concat(),
+        ),
+    ]
+}
+
 /// The attention block's hand-written backward pass against autograd through a plain NumPy
 /// forward pass of scaled dot-product attention (Vaswani et al. 2017;
 /// examples/python/reference/generate_attention.py), and each planted attention mistake against
@@ -1005,20 +974,12 @@ fn pump_attention_graph() -> Graph {
 /// sides hold rounding noise there. Each plant changes the tensors named below and no other.
 #[test]
 fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
-    let program = "examples/python/attention_numpy.py";
-    let (code, stdout) = self_check(program, ATTENTION_REFERENCE, &[]);
+    let (code, stdout) = self_check(ATTENTION, ATTENTION_REFERENCE, &[]);
     assert_eq!(code, 0, "{stdout}");
     let graph = pump_attention_graph();
     let names: Vec<String> = graph.tensors().iter().map(|t| t.name.clone()).collect();
-    let reference = npz(&repo().join(ATTENTION_REFERENCE));
-    let params: Vec<ArrayD<f64>> = names
-        .iter()
-        .map(|n| reference[&format!("param/{n}")].clone())
-        .collect();
-    let wanted: Vec<&ArrayD<f64>> = names
-        .iter()
-        .map(|n| &reference[&format!("grad/{n}")])
-        .collect();
+    let reference = Reference::read(ATTENTION_REFERENCE, &graph);
+    let wanted = &reference.grads;
     let floor = 1e-6
         * wanted
             .iter()
@@ -1032,38 +993,16 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
             .fold(0f64, |s, (a, b)| s.max((a - b).abs()));
         diff / scale
     };
-    let (x, y) = (rows(&reference["x"]), rows(&reference["y"]));
-    let engine = graph.gradient(&params, x.view(), y.view(), None);
-    for ((n, g), want) in names.iter().zip(&engine.params).zip(&wanted) {
+    let engine = reference.engine(&graph, None);
+    for ((n, g), want) in names.iter().zip(&engine).zip(wanted) {
         let err = close(g, want);
         assert!(err <= 1e-10, "engine vs autograd, {n}: {err:e}");
     }
-    // Below the attention the embedding always changes; within it, what each mistake reaches:
-    // no scale reaches Q and K (the key bias's gradient stays zero); P without the mask reaches
-    // V's weight too (not its bias: rows of P sum to 1 either way); the diagonal alone breaks the
-    // rows' zero sum, so the key bias moves.
-    let embed = ["embed.weight", "embed.bias"];
-    let qk = [
-        "attend.query.weight",
-        "attend.query.bias",
-        "attend.key.weight",
-    ];
-    let cases: [(&str, Vec<&str>); 3] = [
-        ("attention-scale-missing", [&embed[..], &qk[..]].concat()),
-        (
-            "mask-ignored-in-backward",
-            [&embed[..], &qk[..], &["attend.value.weight"][..]].concat(),
-        ),
-        (
-            "softmax-jacobian-diagonal",
-            [&embed[..], &qk[..], &["attend.key.bias"][..]].concat(),
-        ),
-    ];
     let dir = scratch("attention-plants");
-    for (mistake, reach) in cases {
+    for (mistake, reach) in attention_plants() {
         let saved = dir.join(format!("{mistake}.npz"));
         let (code, stdout) = self_check(
-            program,
+            ATTENTION,
             ATTENTION_REFERENCE,
             &["--plant", mistake, "--save", saved.to_str().unwrap()],
         );
@@ -1073,9 +1012,8 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
             "{mistake}: {stdout}"
         );
         let example = npz(&saved);
-        let planted = graph.plant("attend", mistake).unwrap();
-        let engine = graph.gradient(&params, x.view(), y.view(), Some(&planted));
-        for ((n, g), want) in names.iter().zip(&engine.params).zip(&wanted) {
+        let engine = reference.engine(&graph, Some(("attend", mistake)));
+        for ((n, g), want) in names.iter().zip(&engine).zip(wanted) {
             let err = close(&example[n], g);
             assert!(err <= 1e-10, "{mistake}, {n}: example vs engine {err:e}");
             let moved = close(g, want) > 1e-10;
@@ -1084,45 +1022,26 @@ fn the_numpy_attention_agrees_with_autograd_and_plants_the_engines_mistakes() {
     }
 }
 
-/// `plumb probe` on the attention model against its description.
+/// `plumb probe` on the attention model against its description: the right program passes, each
+/// plant is named at the tensors it reaches.
 #[test]
 fn probe_names_each_planted_attention_mistake() {
-    let net = repo().join("examples/pump-attention.toml");
-    let probe = |extra: &[&str]| {
-        let mut args = vec![
-            "probe",
-            net.to_str().unwrap(),
-            "--seed",
+    probe(
+        "examples/pump-attention.toml",
+        "3",
+        &[],
+        &python3(ATTENTION, &[]),
+    )
+    .assert_code(0);
+    // The plants on 8 samples: the diagnosis names each the same as on the default 32.
+    let planted = [&PLANTED[..], &["--batch", "8"]].concat();
+    for (mistake, reach) in attention_plants() {
+        let run = probe(
+            "examples/pump-attention.toml",
             "3",
-            "--quiet",
-            "--format",
-            "json",
-            "--",
-            "python3",
-            "examples/python/attention_numpy.py",
-        ];
-        args.extend_from_slice(extra);
-        plumb_in(repo(), &args)
-    };
-    probe(&[]).assert_code(0);
-    for mistake in [
-        "attention-scale-missing",
-        "mask-ignored-in-backward",
-        "softmax-jacobian-diagonal",
-    ] {
-        let run = probe(&["--plant", mistake]);
-        run.assert_code(1);
-        let j = run.json();
-        let named: Vec<&str> = j["tensors"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .filter(|t| t["diagnosis"]["code"].as_str() == Some(mistake))
-            .map(|t| t["name"].as_str().unwrap())
-            .collect();
-        assert!(
-            named.contains(&"attend.query.weight"),
-            "{mistake}: {named:?}"
+            &planted,
+            &python3(ATTENTION, &["--plant", mistake]),
         );
+        assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
     }
 }

@@ -4,7 +4,7 @@
 
 use crate::util;
 
-use util::{fixture, plumb};
+use util::{findings, fixture, plumb};
 
 fn cases() -> Vec<serde_json::Value> {
     let text = std::fs::read_to_string(fixture("compare/expected.json")).unwrap();
@@ -322,9 +322,7 @@ fn ambiguous_names_are_an_input_error_until_mapped() {
     assert_eq!(j["names"][0]["matched"], "map");
     // The other candidate is left over, and said so.
     assert!(
-        j["findings"]
-            .as_array()
-            .unwrap()
+        findings(&j)
             .iter()
             .any(|f| f["code"] == "gradient-tensor-unexpected" && f["tensor"] == "dW1")
     );
@@ -352,9 +350,7 @@ fn float32_values_in_a_float64_file_are_judged_as_float32() {
     assert_eq!(j["precision"], "f32");
     assert_eq!(j["precision_from"], "values");
     assert!(
-        j["findings"]
-            .as_array()
-            .unwrap()
+        findings(&j)
             .iter()
             .any(|f| f["code"] == "gradient-precision" && f["severity"] == "note")
     );

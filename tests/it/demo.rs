@@ -5,7 +5,7 @@
 use crate::util;
 
 use serde_json::Value;
-use util::{plumb, plumb_in, scratch};
+use util::{plumb, plumb_in};
 
 /// The conv bugs of (b) and the recurrent bugs of (c), in the order the seed picks them (seed % 4).
 const CNN_BUGS: [&str; 4] = [
@@ -60,10 +60,10 @@ fn the_demo_runs_from_nothing_and_explains_itself() {
 
 #[test]
 fn written_files_replay_the_demo() {
-    let dir = scratch("demo");
+    // The shared run's files, copied: the commands below add files, and --force rewrites them.
+    let demo = &util::demo::written().run;
+    let dir = util::demo::copy_written("demo");
     let d = dir.to_str().unwrap();
-    let demo = plumb(&["demo", "--write", d, "--format", "json"]);
-    demo.assert_code(0);
     let shown = demo.json()["grad"]["loss"].as_f64().unwrap();
     assert_eq!(demo.json()["written"].as_array().unwrap().len(), 13);
     let readme = std::fs::read_to_string(dir.join("pump-README.txt")).unwrap();
@@ -188,9 +188,9 @@ fn written_files_replay_the_demo() {
 
 #[test]
 fn the_demo_is_reproducible_per_seed() {
-    let a = plumb(&["demo", "--format", "json", "--seed", "3"]);
-    let b = plumb(&["demo", "--format", "json", "--seed", "3"]);
-    assert_eq!(a.stdout, b.stdout);
+    let twice = util::demo::twice();
+    twice.first.assert_code(0);
+    assert_eq!(twice.first.stdout, twice.second.stdout);
 }
 
 // Every seed picks one conv bug for (b) and one recurrent bug for (c); over four seeds each of the
@@ -198,7 +198,7 @@ fn the_demo_is_reproducible_per_seed() {
 #[test]
 fn each_scenario_names_its_planted_bug() {
     for seed in 0..4u64 {
-        let run = plumb(&["demo", "--format", "json", "--seed", &seed.to_string()]);
+        let run = util::demo::report(seed);
         run.assert_code(0);
         let r = run.json();
         assert_eq!(r["verdict"], "pass", "seed {seed}");

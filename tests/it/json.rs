@@ -395,7 +395,7 @@ fn grad_report_schema() {
 
 #[test]
 fn demo_report_schema() {
-    let run = plumb(&["demo", "--format", "json"]);
+    let run = &util::demo::written().run;
     run.assert_code(0);
     let r: Demo = serde_json::from_str(&run.stdout).unwrap();
     assert_eq!(r.verdict, "pass");

@@ -9,16 +9,16 @@ use std::path::{Path, PathBuf};
 use std::sync::OnceLock;
 use std::time::Instant;
 
-use util::{plumb, plumb_in, scratch};
+use util::{plumb_in, scratch};
 
 fn repo() -> &'static Path {
     Path::new(env!("CARGO_MANIFEST_DIR"))
 }
 
-/// The demo's files (weights trained on the invented data), written once.
+/// The demo's files (weights trained on the invented data), shared with the other tests.
 fn demo() -> &'static PathBuf {
-    static DIR: OnceLock<PathBuf> = OnceLock::new();
-    DIR.get_or_init(|| {
+    static NUMPY: OnceLock<()> = OnceLock::new();
+    NUMPY.get_or_init(|| {
         let ok = std::process::Command::new("python3")
             .args(["-c", "import numpy"])
             .status()
@@ -27,10 +27,8 @@ fn demo() -> &'static PathBuf {
             ok,
             "these tests need python3 with NumPy: pip install numpy (see .ci/run)"
         );
-        let dir = scratch("probe-demo");
-        plumb(&["demo", "--write", dir.to_str().unwrap(), "--quiet"]).assert_code(0);
-        dir
-    })
+    });
+    &util::demo::written().dir
 }
 
 fn probe(extra: &[&str], program: &[&str]) -> util::Run {

@@ -288,24 +288,22 @@ fn probe_help_does_not_offer_the_complex_step() {
 // seed: it still is replaced (it is the demo's own file, named by its seed), and says so.
 #[test]
 fn the_demo_says_when_it_replaces_its_earlier_report() {
-    let tmp = scratch("demo-tmp");
-    let run = || {
-        let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
-            .args(["demo", "--seed", "4242", "--format", "json"])
-            .env("TMPDIR", &tmp)
-            .env("NO_COLOR", "1")
-            .output()
-            .unwrap();
-        assert_eq!(out.status.code(), Some(0));
-        String::from_utf8_lossy(&out.stderr).into_owned()
-    };
-    let report = tmp.join("plumb-demo-report-seed4242.html");
-    let first = run();
-    assert!(report.is_file(), "{first}");
-    assert!(!first.contains("replaced"), "{first}");
-    let second = run();
-    assert!(second.contains("replaced"), "{second}");
-    assert!(second.contains(report.to_str().unwrap()), "{second}");
+    let twice = util::demo::twice();
+    let (first, second) = (&twice.first, &twice.second);
+    first.assert_code(0);
+    second.assert_code(0);
+    let report = twice.tmp.join(format!(
+        "plumb-demo-report-seed{}.html",
+        util::demo::TWICE_SEED
+    ));
+    assert!(report.is_file(), "{}", first.stderr);
+    assert!(!first.stderr.contains("replaced"), "{}", first.stderr);
+    assert!(second.stderr.contains("replaced"), "{}", second.stderr);
+    assert!(
+        second.stderr.contains(report.to_str().unwrap()),
+        "{}",
+        second.stderr
+    );
 }
 
 // The JUnit failure of a wrong gradient tensor in `compare` has the diagnosis as its type (the

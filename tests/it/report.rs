@@ -603,12 +603,9 @@ fn an_unusable_baseline_exits_2_naming_it() {
 // ---------------------------------------------------------------------------------------------
 // The HTML report
 
-/// The demo's report, written once into a scratch directory.
+/// The demo's report, beside the files of the shared demo run.
 fn demo_report() -> PathBuf {
-    let dir = scratch("html-demo");
-    let html = dir.join("report.html");
-    plumb(&["demo", "--quiet", "--html", html.to_str().unwrap()]).assert_code(0);
-    html
+    util::demo::written().dir.join("pump-report.html")
 }
 
 /// Every `<svg …>` start tag's width and height attributes.

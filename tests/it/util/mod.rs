@@ -6,6 +6,8 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
+pub mod demo;
+
 /// The repository's fixtures directory.
 pub fn fixture(rel: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -49,22 +51,36 @@ impl Run {
     }
 }
 
+/// The findings of a JSON report.
+pub fn findings(report: &serde_json::Value) -> &[serde_json::Value] {
+    report["findings"]
+        .as_array()
+        .unwrap_or_else(|| panic!("no findings in {report:#}"))
+}
+
 /// Runs plumb with the arguments, colour off and NO_COLOR set, in the given directory.
 pub fn plumb_in(dir: &Path, args: &[&str]) -> Run {
-    let out: Output = Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args(args)
-        .current_dir(dir)
-        .env("NO_COLOR", "1")
-        .output()
-        .expect("run plumb");
-    Run {
-        code: out.status.code().unwrap_or(-1),
-        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
-    }
+    run(command(dir, args))
 }
 
 /// Runs plumb from the fixtures directory, so relative fixture paths work.
 pub fn plumb(args: &[&str]) -> Run {
     plumb_in(&fixture(""), args)
+}
+
+/// The built plumb with the arguments, colour off and NO_COLOR set, in the given directory.
+pub fn command(dir: &Path, args: &[&str]) -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_plumb"));
+    c.args(args).current_dir(dir).env("NO_COLOR", "1");
+    c
+}
+
+/// Runs the command to its end and keeps what it printed.
+pub fn run(mut c: Command) -> Run {
+    let out: Output = c.output().expect("run plumb");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
 }
