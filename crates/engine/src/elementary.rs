@@ -1,5 +1,5 @@
-//! tanh for f64, written out so that it is cheap enough to run a few thousand times per perturbed
-//! loss.
+//! tanh for f64, and exp, ln and tanh for f32, written out so that they are cheap enough to run a
+//! few thousand times per perturbed loss.
 //!
 //! A finite-difference check of a tanh network spends most of its time in tanh: moving one weight
 //! of layer j changes every pre-activation of layer j + 1, and each must go through tanh again.
@@ -11,6 +11,11 @@
 //! cancellation: u = k·ln 2 + r with |r| ≤ ln 2 / 2, eʳ − 1 from its Taylor series (the first 14
 //! terms; the 15th is below 2⁻⁶⁰ of the sum), and eᵘ − 1 = 2ᵏ(eʳ − 1) + (2ᵏ − 1). Beyond |x| = 22,
 //! tanh is 1 to double precision.
+//!
+//! The f32 functions ([`exp_f32`], [`ln_f32`], [`tanh_f32`]) are the same constructions in single
+//! precision, computed in f32 throughout (no widening to f64), so that a check in f32 costs less
+//! than one in f64; their slice loops ([`exp_in_place_f32`], [`tanh_in_place_f32`]) run eight
+//! values at a time under AVX2 with the same bits as one value at a time.
 
 /// ln 2 split so that k·LN2_HI is exact for the |k| ≤ 64 used here (LN2_HI has 21 trailing zero
 /// bits), and LN2_HI + LN2_LO = ln 2 to about 1e-27. The split is the one of the freely
@@ -92,6 +97,165 @@ fn tanh_loop(values: &mut [f64]) {
 unsafe fn tanh_in_place_avx2(values: &mut [f64]) {
     tanh_loop(values);
 }
+
+/// Runs `$body` on a slice compiled for AVX2 as well, chosen at run time. The AVX2 build does the
+/// same IEEE operations on each value (no fused multiply-add is enabled, and Rust never contracts
+/// a product and a sum into one), so its results are bit for bit those of the plain build.
+macro_rules! dispatched {
+    ($(#[$doc:meta])* $name:ident, $avx2:ident, $t:ty, $f:path) => {
+        $(#[$doc])*
+        pub fn $name(values: &mut [$t]) {
+            #[inline(always)]
+            fn each(values: &mut [$t]) {
+                for v in values {
+                    *v = $f(*v);
+                }
+            }
+            #[cfg(target_arch = "x86_64")]
+            #[target_feature(enable = "avx2")]
+            unsafe fn $avx2(values: &mut [$t]) {
+                each(values);
+            }
+            #[cfg(target_arch = "x86_64")]
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has just been found to support AVX2, all the function requires.
+                unsafe { $avx2(values) };
+                return;
+            }
+            each(values);
+        }
+    };
+}
+
+/// ln 2 split for f32 so that k·LN2_HI_F32 is exact for |k| < 2⁹ (it has nine trailing zero bits)
+/// and LN2_HI_F32 + LN2_LO_F32 = ln 2 to about 1e-14: the split of the freely distributable
+/// fdlibm library's expf, checked in the tests below.
+const LN2_HI_F32: f32 = f32::from_bits(0x3f31_7200); // 0.693145751953125
+const LN2_LO_F32: f32 = f32::from_bits(0x35bf_be8e); // 1.4286068e-6
+
+/// 1.5 · 2²³: adding it to a number of magnitude below 2²² rounds that number to an integer, held
+/// in the low bits of the sum.
+const SHIFT_F32: f32 = 12_582_912.0;
+
+/// 1/n! for n = 2..=8 in f32.
+const INV_FACTORIAL_F32: [f32; 7] = [
+    1.0 / 2.0,
+    1.0 / 6.0,
+    1.0 / 24.0,
+    1.0 / 120.0,
+    1.0 / 720.0,
+    1.0 / 5040.0,
+    1.0 / 40320.0,
+];
+
+/// x = k·ln 2 + r with |r| ≤ ln 2 / 2 (to rounding), for |x| < 2²¹.
+#[inline(always)]
+fn reduce_f32(x: f32) -> (f32, i32) {
+    let shifted = x * std::f32::consts::LOG2_E + SHIFT_F32;
+    let k = shifted - SHIFT_F32;
+    let r = (x - k * LN2_HI_F32) - k * LN2_LO_F32;
+    let k_bits = shifted.to_bits().wrapping_sub(SHIFT_F32.to_bits()) as i32;
+    (r, k_bits)
+}
+
+/// eʳ − 1 for |r| ≤ ln 2 / 2: r + r²·(1/2! + r/3! + … + r⁶/8!); the next term is below 2⁻³⁰ of
+/// the sum.
+#[inline(always)]
+fn exp_m1_reduced_f32(r: f32) -> f32 {
+    let mut p = INV_FACTORIAL_F32[6];
+    let mut n = 5;
+    loop {
+        p = p * r + INV_FACTORIAL_F32[n];
+        if n == 0 {
+            break;
+        }
+        n -= 1;
+    }
+    r + r * r * p
+}
+
+/// 2ᵏ for −126 ≤ k ≤ 127, from k's bits.
+#[inline(always)]
+fn pow2_f32(k: i32) -> f32 {
+    f32::from_bits(((k + 127) as u32) << 23)
+}
+
+/// eˣ in f32, within 1 ulp of the C library's expf (tested below on every 509th f32): +∞ beyond
+/// 88.73, gradual underflow to 0 below −87.34, NaN for NaN.
+#[inline]
+pub fn exp_f32(x: f32) -> f32 {
+    // Below −104 the result rounds to 0, above 89 to +∞; the clamp keeps k in range.
+    let (r, k) = reduce_f32(x.clamp(-104.0, 89.0));
+    let p = 1.0 + exp_m1_reduced_f32(r);
+    // 2ᵏ as 2^(k/2) · 2^(k − k/2), both normal: the first product is exact, the second rounds once
+    // (to +∞, or into the subnormals).
+    let half = k >> 1;
+    let e = p * pow2_f32(half) * pow2_f32(k - half);
+    if x.is_nan() { x } else { e }
+}
+
+/// The natural logarithm in f32, within 1 ulp of the C library's logf (tested below on every
+/// 509th f32): −∞ at ±0, NaN below 0 and for NaN, +∞ at +∞; subnormals are scaled by 2²⁵ first.
+///
+/// x = 2ᵉ·m with √½ ≤ m < √2 and f = m − 1; ln(1 + f) = 2·atanh(s) with s = f / (2 + f),
+/// |s| ≤ 0.172, summed as f − f²/2 + s·(f²/2 + R) with R = 2s²/3 + 2s⁴/5 + … + 2s¹⁰/11 (the next
+/// term is below 2⁻³⁰ of the sum), and e·ln 2 added in the two parts of its split.
+#[inline]
+pub fn ln_f32(x: f32) -> f32 {
+    /// The bits of √½ rounded to f32.
+    const SQRT_HALF_BITS: i32 = 0x3f35_04f3;
+    let sub = x < f32::MIN_POSITIVE;
+    let scaled = if sub { x * 33_554_432.0 } else { x }; // 2²⁵
+    let ix = (scaled.to_bits() as i32).wrapping_sub(SQRT_HALF_BITS);
+    let e = (ix >> 23) - if sub { 25 } else { 0 };
+    let m = f32::from_bits(((ix & 0x007f_ffff) + SQRT_HALF_BITS) as u32);
+    let f = m - 1.0;
+    let s = f / (2.0 + f);
+    let z = s * s;
+    let r =
+        z * (2.0 / 3.0 + z * (2.0 / 5.0 + z * (2.0 / 7.0 + z * (2.0 / 9.0 + z * (2.0 / 11.0)))));
+    let hfsq = 0.5 * f * f;
+    let k = e as f32;
+    let y = k * LN2_HI_F32 - ((hfsq - (s * (hfsq + r) + k * LN2_LO_F32)) - f);
+    if x.is_nan() || x < 0.0 {
+        f32::NAN
+    } else if x == 0.0 {
+        f32::NEG_INFINITY
+    } else if x == f32::INFINITY {
+        x
+    } else {
+        y
+    }
+}
+
+/// The hyperbolic tangent in f32, within 2 ulp of the C library's tanhf (tested below on every
+/// 509th f32); odd, ±1 beyond ±9.1 (where 1 − tanh falls below half an ulp of 1), NaN for NaN.
+/// tanh(x) = e / (e + 2) with e = e²ˡˣˡ − 1 = 2ᵏ(eʳ − 1) + (2ᵏ − 1), as the f64 [`tanh`].
+#[inline]
+pub fn tanh_f32(x: f32) -> f32 {
+    let (r, k) = reduce_f32(2.0 * x.abs().min(10.0));
+    let scale = pow2_f32(k);
+    let e = exp_m1_reduced_f32(r) * scale + (scale - 1.0);
+    let t = e / (e + 2.0);
+    if x.is_nan() { x } else { t.copysign(x) }
+}
+
+dispatched!(
+    /// [`exp_f32`] of every value, in place: the loop of the f32 softmax and cross-entropy.
+    exp_in_place_f32,
+    exp_in_place_f32_avx2,
+    f32,
+    exp_f32
+);
+
+dispatched!(
+    /// [`tanh_f32`] of every value, in place: the loop of the engine's f32 tanh layers.
+    tanh_in_place_f32,
+    tanh_in_place_f32_avx2,
+    f32,
+    tanh_f32
+);
+
 
 #[cfg(test)]
 mod tests {
@@ -179,5 +343,151 @@ mod tests {
             worst = worst.max(ulps(exp_m1_small(u), u.exp_m1()));
         }
         assert!(worst <= 2.0, "{worst} ulp");
+    }
+
+    /// The distance between two f32 in units in the last place: how many f32 lie between them,
+    /// across zero too (±0 are one point).
+    fn ulps_f32(a: f32, b: f32) -> u64 {
+        let ordered = |x: f32| {
+            let bits = x.to_bits();
+            if bits >> 31 == 0 {
+                i64::from(bits)
+            } else {
+                -i64::from(bits & 0x7fff_ffff)
+            }
+        };
+        ordered(a).abs_diff(ordered(b))
+    }
+
+    /// The largest distance in ulp of `ours` from `reference` over every 509th f32 (8.4 million
+    /// of them: both signs, subnormals, normals, ±∞ and NaNs) and the values in `extra`; NaN must
+    /// give NaN and an infinity or zero the same infinity or signed zero.
+    fn worst_f32(
+        ours: fn(f32) -> f32,
+        reference: impl Fn(f32) -> f32,
+        extra: &[f32],
+    ) -> (u64, f32) {
+        let mut worst = (0u64, 0.0f32);
+        let sweep = (0..=u32::MAX / 509).map(|i| f32::from_bits(i * 509));
+        for x in sweep.chain(extra.iter().copied()) {
+            let (a, b) = (ours(x), reference(x));
+            if b.is_nan() || a.is_nan() {
+                assert!(a.is_nan() && b.is_nan(), "at {x:e}: {a:e} against {b:e}");
+                continue;
+            }
+            if b.is_infinite() || b == 0.0 {
+                assert_eq!(a.to_bits(), b.to_bits(), "at {x:e}: {a:e} against {b:e}");
+                continue;
+            }
+            let d = ulps_f32(a, b);
+            if d > worst.0 {
+                worst = (d, x);
+            }
+        }
+        worst
+    }
+
+    /// Edges: zeros, the smallest subnormal and normal, the largest f32, ±∞, NaN, and where each
+    /// function turns over (overflow, underflow, tanh's 1).
+    const EDGES_F32: [f32; 20] = [
+        0.0,
+        -0.0,
+        1e-45,
+        -1e-45,
+        f32::MIN_POSITIVE,
+        f32::MAX,
+        f32::MIN,
+        f32::INFINITY,
+        f32::NEG_INFINITY,
+        f32::NAN,
+        88.72283,
+        88.72284,
+        -87.33654,
+        -103.27893,
+        -103.97208,
+        -104.0,
+        9.010913,
+        9.1,
+        -10.0,
+        1.0,
+    ];
+
+    // Against the C library (std's f32 exp, ln and tanh call libm's expf, logf, tanhf) and against
+    // the f64 functions rounded to f32, which are within an f32 rounding of the exact values.
+    #[test]
+    fn f32_exp_agrees_with_the_c_library_within_1_ulp() {
+        let (worst, at) = worst_f32(exp_f32, f32::exp, &EDGES_F32);
+        assert!(worst <= 1, "{worst} ulp at {at:e}");
+        let (worst, at) = worst_f32(exp_f32, |x| f64::from(x).exp() as f32, &EDGES_F32);
+        assert!(worst <= 1, "{worst} ulp from the f64 exp at {at:e}");
+    }
+
+    #[test]
+    fn f32_ln_agrees_with_the_c_library_within_1_ulp() {
+        let (worst, at) = worst_f32(ln_f32, f32::ln, &EDGES_F32);
+        assert!(worst <= 1, "{worst} ulp at {at:e}");
+        let (worst, at) = worst_f32(ln_f32, |x| f64::from(x).ln() as f32, &EDGES_F32);
+        assert!(worst <= 1, "{worst} ulp from the f64 ln at {at:e}");
+    }
+
+    #[test]
+    fn f32_tanh_agrees_with_the_c_library_within_2_ulp() {
+        let (worst, at) = worst_f32(tanh_f32, f32::tanh, &EDGES_F32);
+        assert!(worst <= 2, "{worst} ulp at {at:e}");
+        let (worst, at) = worst_f32(tanh_f32, |x| f64::from(x).tanh() as f32, &EDGES_F32);
+        assert!(worst <= 2, "{worst} ulp from the f64 tanh at {at:e}");
+        // Dense where the reduction's k steps and where tanh reaches 1: every f32 of [0.1, 0.2]
+        // and of [8.9, 9.2].
+        for (lo, hi) in [(0.1f32, 0.2f32), (8.9, 9.2)] {
+            for bits in lo.to_bits()..=hi.to_bits() {
+                let x = f32::from_bits(bits);
+                let d = ulps_f32(tanh_f32(x), f32::tanh(x));
+                assert!(d <= 2, "{d} ulp at {x:e}");
+            }
+        }
+    }
+
+    #[test]
+    fn f32_slice_versions_match_bit_for_bit() {
+        let mut values: Vec<f32> = (0..4099)
+            .map(|i| (f32::from(i as u16) * 0.37).sin() * 90.0)
+            .collect();
+        values.extend(EDGES_F32);
+        for (f, all) in [
+            (
+                exp_f32 as fn(f32) -> f32,
+                exp_in_place_f32 as fn(&mut [f32]),
+            ),
+            (tanh_f32, tanh_in_place_f32),
+        ] {
+            let one_by_one: Vec<u32> = values.iter().map(|&v| f(v).to_bits()).collect();
+            let mut at_once = values.clone();
+            all(&mut at_once);
+            let at_once: Vec<u32> = at_once.iter().map(|v| v.to_bits()).collect();
+            assert_eq!(at_once, one_by_one);
+        }
+    }
+
+    #[test]
+    fn f32_special_values_and_the_split() {
+        assert_eq!(exp_f32(0.0), 1.0);
+        assert_eq!(exp_f32(f32::NEG_INFINITY), 0.0);
+        assert_eq!(exp_f32(f32::INFINITY), f32::INFINITY);
+        assert_eq!(ln_f32(1.0), 0.0);
+        assert_eq!(ln_f32(0.0), f32::NEG_INFINITY);
+        assert_eq!(ln_f32(-0.0), f32::NEG_INFINITY);
+        assert!(ln_f32(-1.0).is_nan() && ln_f32(f32::NEG_INFINITY).is_nan());
+        assert_eq!(tanh_f32(-0.0).to_bits(), (-0.0f32).to_bits());
+        assert_eq!(tanh_f32(1e-45), 1e-45);
+        assert_eq!(tanh_f32(f32::NEG_INFINITY), -1.0);
+        for i in 0..10_000u16 {
+            let x = f32::from(i) * 1e-3;
+            assert_eq!(tanh_f32(-x), -tanh_f32(x));
+        }
+        // k·LN2_HI_F32 is exact for |k| < 2⁹; the two parts sum to ln 2 (f64's LN_2, itself within
+        // 2.4e-17 of ln 2) to the f32 split's 1e-14.
+        assert_eq!(LN2_HI_F32.to_bits() & 0x1ff, 0);
+        let sum = f64::from(LN2_HI_F32) + f64::from(LN2_LO_F32);
+        assert!((sum - std::f64::consts::LN_2).abs() < 1e-14, "{sum:e}");
     }
 }
