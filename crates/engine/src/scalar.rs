@@ -24,7 +24,7 @@ pub trait Scalar:
     fn ln(self) -> Self;
     fn ln_1p(self) -> Self;
     fn tanh(self) -> Self;
-    /// tanh of every value in place (f64 has a faster loop than one call per value).
+    /// tanh of every value in place (f64 and f32 have faster loops than one call per value).
     fn tanh_all(values: &mut [Self]) {
         for v in values {
             *v = v.tanh();
