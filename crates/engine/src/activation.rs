@@ -196,9 +196,13 @@ impl Activation {
                     // Shift by the row's largest real part; any shift gives the same softmax.
                     let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
                     let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
+                    row.mapv_inplace(|v| v - shift);
+                    match row.as_slice_mut() {
+                        Some(values) => S::exp_all(values),
+                        None => row.mapv_inplace(Scalar::exp),
+                    }
                     let mut total = S::zero();
-                    for v in row.iter_mut() {
-                        *v = (*v - shift).exp();
+                    for v in row.iter() {
                         total += *v;
                     }
                     for v in row.iter_mut() {

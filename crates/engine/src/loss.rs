@@ -72,8 +72,16 @@ impl Loss {
         let mut total = S::zero();
         match (self, output) {
             (Loss::CrossEntropy, Activation::Softmax) => {
-                for (zrow, yrow) in z.axis_iter(Axis(0)).zip(y.axis_iter(Axis(0))) {
-                    let lse = log_sum_exp(zrow);
+                // Every row's shifted exponentials at once, in one loop the scalar can run wide.
+                let (shifts, exps) = shifted_exps(z);
+                for (((zrow, yrow), erow), shift) in z
+                    .axis_iter(Axis(0))
+                    .zip(y.axis_iter(Axis(0)))
+                    .zip(exps.axis_iter(Axis(0)))
+                    .zip(shifts)
+                {
+                    let sum = erow.iter().fold(S::zero(), |acc, &e| acc + e);
+                    let lse = shift + sum.ln();
                     for (&zv, &yv) in zrow.iter().zip(yrow.iter()) {
                         total += yv * (lse - zv);
                     }
@@ -163,12 +171,24 @@ impl fmt::Display for Loss {
     }
 }
 
-/// ln Σ eᶻ over a row, shifted by the largest real part so that nothing overflows.
-fn log_sum_exp<S: Scalar>(row: ndarray::ArrayView1<S>) -> S {
-    let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
-    let shift = S::from_f64(if shift.is_finite() { shift } else { 0.0 });
-    let sum = row
-        .iter()
-        .fold(S::zero(), |acc, &v| acc + (v - shift).exp());
-    shift + sum.ln()
+/// Per row, the shift by its largest real part (so that nothing overflows, 0 when that is not
+/// finite) and e^(z − shift) of each value: the terms of the row's log-sum-exp, ln Σ eᶻ =
+/// shift + ln Σ e^(z − shift).
+fn shifted_exps<S: Scalar>(z: ArrayView2<S>) -> (Vec<S>, Array2<S>) {
+    let shifts: Vec<S> = z
+        .axis_iter(Axis(0))
+        .map(|row| {
+            let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
+            S::from_f64(if shift.is_finite() { shift } else { 0.0 })
+        })
+        .collect();
+    let mut exps = z.to_owned();
+    for (mut row, &shift) in exps.axis_iter_mut(Axis(0)).zip(&shifts) {
+        row.mapv_inplace(|v| v - shift);
+    }
+    match exps.as_slice_mut() {
+        Some(values) => S::exp_all(values),
+        None => exps.mapv_inplace(Scalar::exp),
+    }
+    (shifts, exps)
 }
