@@ -171,10 +171,12 @@ impl Activation {
         out
     }
 
-    /// z ← g(z) over some values of a batch, the same bits as [`Activation::apply_in_place`]
-    /// gives them (the graph's channel-wise updates apply it to the channels that changed).
+    /// z ← g(z) over some values of a batch (all of them for [`Activation::apply_in_place`]; the
+    /// graph's channel-wise updates apply it to the channels that changed).
     /// Softmax reads whole rows: it has no element-wise form.
     pub fn apply_values<S: Scalar>(&self, z: &mut [S]) {
+        // The common cases get a loop of their own, so the function inlines into it (and
+        // vectorises) instead of a call and a match per element.
         match self {
             Activation::Softmax => panic!("softmax applies to whole rows, not to some values"),
             Activation::Tanh => S::tanh_all(z),
@@ -210,15 +212,10 @@ impl Activation {
                     }
                 }
             }
-            // The common cases get a loop of their own, so the function inlines into it (and
-            // vectorises) instead of a call and a match per element.
-            Activation::Tanh => match z.as_slice_mut() {
-                Some(values) => S::tanh_all(values),
-                None => z.mapv_inplace(Scalar::tanh),
+            act => match z.as_slice_mut() {
+                Some(values) => act.apply_values(values),
+                None => z.mapv_inplace(|v| act.value(v)),
             },
-            Activation::Relu => z.mapv_inplace(|v| if v.re() > 0.0 { v } else { S::zero() }),
-            Activation::Identity => {}
-            act => z.mapv_inplace(|v| act.value(v)),
         }
     }
 
