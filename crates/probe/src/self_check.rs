@@ -57,7 +57,7 @@ pub(crate) fn self_check_report(
             });
             continue;
         };
-        let coords: Vec<_> = r.coords.iter().filter(|c| c.tensor == t).collect();
+        let coords: Vec<_> = r.coords.iter().filter(|c| c.coord.tensor == t).collect();
         let dirs: Vec<_> = r
             .directions
             .iter()
@@ -78,7 +78,7 @@ pub(crate) fn self_check_report(
             .count();
         let direction_mismatches = dirs.iter().filter(|d| d.status == Status::Mismatch).count();
         let worst = worst.map(|w| SelfWorst {
-            index: Named::index_of(p, w.index),
+            index: Named::index_of(p, w.coord.index),
             gradient: w.analytic,
             differences: w.numeric,
             rel_error: w.rel_error,
