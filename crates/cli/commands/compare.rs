@@ -95,7 +95,10 @@ pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
                 c = c.figure("median_rel_error", m);
             }
             if t.verdict == Verdict::Fail {
-                let code = t.diagnosis.as_ref().map_or("gradient-mismatch", |d| d.code);
+                let code = t
+                    .diagnosis
+                    .as_ref()
+                    .map_or("gradient-mismatch", |d| d.code.as_str());
                 let why = t.diagnosis.as_ref().map_or_else(String::new, |d| {
                     if d.detail.is_empty() {
                         d.code.to_string()

@@ -83,11 +83,11 @@ pub(crate) fn self_check_report(
             differences: w.numeric,
             rel_error: w.rel_error,
             bound: w.bound,
-            status: w.status.name(),
+            status: w.status,
         });
         if mismatches > 0 || direction_mismatches > 0 {
             // Only a coordinate that disagrees is quoted (not an unreliable one).
-            let at = worst.as_ref().filter(|w| w.status == "mismatch").map_or(String::new(), |w| {
+            let at = worst.as_ref().filter(|w| w.status == Status::Mismatch).map_or(String::new(), |w| {
                 format!(
                     "; worst at {}{:?}: gradient {:.6e}, differences {:.6e} (relative error {}, bound {})",
                     p.name,
@@ -247,7 +247,7 @@ pub(crate) fn self_check_report(
     }
     SelfCheck {
         conclusive,
-        method: cfg.method.name(),
+        method: cfg.method.name().into(),
         step_rule: cfg.step.map_or_else(
             || cfg.method.step_rule(cfg.eps).to_string(),
             |h| format!("fixed h = {h:e} (--step)"),
