@@ -10,8 +10,9 @@ use plumb_formats::{
     Description, Existing, MAX_REPORT_BYTES, expected_tensors, read_input, write_file,
 };
 use plumb_report::{
-    BASELINE_VERSION, Baseline, Block, ColorChoice, Document, Finding, Format, NetworkId, Verdict,
-    render_html, render_json, render_junit, render_markdown, render_table, tally, use_color,
+    BASELINE_VERSION, Baseline, Block, Cell, ColorChoice, Document, Finding, Format, NetworkId,
+    Tone, Verdict, render_html, render_json, render_junit, render_markdown, render_table, tally,
+    use_color,
 };
 use serde::Serialize;
 
@@ -323,4 +324,30 @@ pub fn shape(s: &[usize]) -> String {
 /// A number for a table: 4 significant digits, scientific when far from 1.
 pub fn num(v: f64) -> String {
     plumb_report::number(v)
+}
+
+/// A verdict as a table cell, in its colour.
+pub fn verdict_cell(v: Verdict) -> Cell {
+    match v {
+        Verdict::Pass => Cell::new("pass", Tone::Good),
+        Verdict::Fail => Cell::new("fail", Tone::Bad),
+        Verdict::Inconclusive => Cell::new("inconclusive", Tone::Warn),
+    }
+}
+
+/// A count as a table cell: plain at zero, in `tone` above (mismatches bad, unsettled a warning).
+pub fn count_cell(n: usize, tone: Tone) -> Cell {
+    Cell::new(n.to_string(), if n > 0 { tone } else { Tone::Plain })
+}
+
+/// A tensor's random directions as `agreeing/checked`, bad when any mismatched.
+pub fn directions_cell(directions: usize, mismatches: usize) -> Cell {
+    Cell::new(
+        format!("{}/{directions}", directions - mismatches),
+        if mismatches > 0 {
+            Tone::Bad
+        } else {
+            Tone::Plain
+        },
+    )
 }

@@ -38,6 +38,8 @@ import sys
 
 import numpy as np
 
+from reference_check import self_check
+
 try:
     from plumb_wire import serve
 except ImportError:  # not installed: the package in this repository (clients/python)
@@ -245,27 +247,6 @@ def as_batch(x, y):
     return x.reshape(x.shape[0], CHANNELS, LENGTH), y.reshape(y.shape[0], CLASSES)
 
 
-def self_check(path, code, layer, save=None):
-    """Compares the loss and gradient with a reference file; 0 if all within 1e-10, else 1."""
-    ref = np.load(path)
-    p = {n: ref["param/" + n] for n, _ in TENSORS}
-    x, y = as_batch(ref["x"], ref["y"])
-    loss, grads = gradient_of(p, x, y, code, layer)
-    if save:
-        np.savez(save, **{n: g for (n, _), g in zip(TENSORS, grads)})
-    worst = abs(loss - ref["loss"]) / abs(ref["loss"])
-    print(f"loss: relative error {worst:.2e}")
-    bad = [] if worst <= 1e-10 else ["loss"]
-    for (n, _), got in zip(TENSORS, grads):
-        want = ref["grad/" + n]
-        err = np.abs(got - want).max() / max(np.abs(want).max(), 1e-300)
-        print(f"{n}: max relative error {err:.2e}" + ("  DIFFERS" if err > 1e-10 else ""))
-        if err > 1e-10:
-            bad.append(n)
-    print("differs: " + (", ".join(bad) if bad else "nothing"))
-    return 1 if bad else 0
-
-
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--plant", type=parse_plant, default=(None, None))
@@ -276,7 +257,8 @@ def main():
     args = ap.parse_args()
     code, layer = args.plant
     if args.self_check:
-        return self_check(args.self_check, code, layer, args.save)
+        return self_check(args.self_check, TENSORS,
+                          lambda p, x, y: gradient_of(p, *as_batch(x, y), code, layer), args.save)
 
     def named(params):
         return dict(zip((n for n, _ in TENSORS), params))

@@ -205,32 +205,9 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
         }
     }
 
-    let unexpected: Vec<StrayTensor> = file
-        .map(|f| {
-            f.tensors
-                .iter()
-                .filter(|t| !used.contains(t.name.as_str()))
-                .map(|t| StrayTensor {
-                    name: t.name.clone(),
-                    shape: t.shape.clone(),
-                    dtype: t.dtype.name(),
-                })
-                .collect()
-        })
-        .unwrap_or_default();
+    let unexpected = StrayTensor::left_over(file, &used);
     for s in &unexpected {
-        findings.push(
-            Finding::new(
-                "tensor-unexpected",
-                Severity::Error,
-                format!(
-                    "{} {} is in the file, but no layer of the description uses it: remove it, or check the layer names",
-                    shape_text(&s.shape),
-                    s.dtype
-                ),
-            )
-            .tensor(&s.name),
-        );
+        findings.push(s.finding("remove it, or check the layer names"));
     }
 
     let layers = desc

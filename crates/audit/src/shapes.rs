@@ -120,6 +120,38 @@ pub struct StrayTensor {
     pub dtype: &'static str,
 }
 
+impl StrayTensor {
+    /// The tensors of `file` whose names are not in `used` (what the layers took), in file order.
+    pub(crate) fn left_over(file: Option<&TensorFile>, used: &BTreeSet<&str>) -> Vec<StrayTensor> {
+        file.map(|f| {
+            f.tensors
+                .iter()
+                .filter(|t| !used.contains(t.name.as_str()))
+                .map(|t| StrayTensor {
+                    name: t.name.clone(),
+                    shape: t.shape.clone(),
+                    dtype: t.dtype.name(),
+                })
+                .collect()
+        })
+        .unwrap_or_default()
+    }
+
+    /// The error finding that names this tensor; `fix` says how to make a layer use it.
+    pub(crate) fn finding(&self, fix: &str) -> Finding {
+        Finding::new(
+            "tensor-unexpected",
+            Severity::Error,
+            format!(
+                "{} {} is in the file, but no layer of the description uses it: {fix}",
+                shape_text(&self.shape),
+                self.dtype
+            ),
+        )
+        .tensor(&self.name)
+    }
+}
+
 /// The whole dimension audit.
 #[derive(Clone, Debug, Serialize)]
 pub struct ShapeAudit {
@@ -246,19 +278,7 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
         }
     }
 
-    let unexpected: Vec<StrayTensor> = file
-        .map(|f| {
-            f.tensors
-                .iter()
-                .filter(|t| !used.contains(t.name.as_str()))
-                .map(|t| StrayTensor {
-                    name: t.name.clone(),
-                    shape: t.shape.clone(),
-                    dtype: t.dtype.name(),
-                })
-                .collect()
-        })
-        .unwrap_or_default();
+    let unexpected = StrayTensor::left_over(file, &used);
     if detected_layout.is_none() {
         let stand_ins: HashSet<String> = findings
             .iter()
@@ -269,18 +289,7 @@ pub fn audit_shapes(desc: &Description, file: Option<&TensorFile>) -> ShapeAudit
             if stand_ins.contains(&s.name) {
                 continue; // already named as the likely stand-in for a missing tensor
             }
-            findings.push(
-                Finding::new(
-                    "tensor-unexpected",
-                    Severity::Error,
-                    format!(
-                        "{} {} is in the file, but no layer of the description uses it: remove it, or name it in a [[layer]] with weight = / bias =",
-                        shape_text(&s.shape),
-                        s.dtype
-                    ),
-                )
-                .tensor(&s.name),
-            );
+            findings.push(s.finding("remove it, or name it in a [[layer]] with weight = / bias ="));
         }
     }
 

@@ -13,7 +13,9 @@ use plumb_report::{
 
 use crate::args::{CheckArgs, MethodArg, PrecisionArg};
 use crate::inputs::{AnyLoaded, Loaded, load_any};
-use crate::output::{Settings, graph_network_id, network_id, num};
+use crate::output::{
+    Settings, count_cell, directions_cell, graph_network_id, network_id, num, verdict_cell,
+};
 use crate::progress::Progress;
 
 pub fn method(m: MethodArg) -> Method {
@@ -146,19 +148,28 @@ pub fn graph_worst_table(worst: &[GraphCoordReport]) -> Table {
         "status",
     ]);
     for w in worst {
-        let tone = status_tone(w.status);
-        t.push([
+        let place = [
             Cell::from(w.place.label()),
             Cell::from(w.place.layer.to_string()),
             Cell::from(w.place.location.clone()),
-            Cell::from(format!("{:.9e}", w.analytic)),
-            Cell::from(format!("{:.9e}", w.numeric)),
-            Cell::new(num(w.rel_error), tone),
-            Cell::from(num(w.rel_bound)),
-            Cell::new(w.status.name(), tone),
-        ]);
+        ];
+        t.push(place.into_iter().chain(measured_cells(w)));
     }
     t
+}
+
+/// The cells a worst-coordinates row ends with, after its place: analytic, numeric, relative
+/// error, relative bound (the JSON's own figure, over max(|a|, |n|, floor) like the relative
+/// error) and status.
+fn measured_cells<P>(w: &CoordReport<P>) -> [Cell; 5] {
+    let tone = status_tone(w.status);
+    [
+        Cell::from(format!("{:.9e}", w.analytic)),
+        Cell::from(format!("{:.9e}", w.numeric)),
+        Cell::new(num(w.rel_error), tone),
+        Cell::from(num(w.rel_bound)),
+        Cell::new(w.status.name(), tone),
+    ]
 }
 
 fn status_tone(s: Status) -> Tone {
@@ -382,39 +393,22 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
         "verdict",
     ]);
     for tr in &r.tensors {
-        let bad = |n: usize| if n > 0 { Tone::Bad } else { Tone::Plain };
+        let bad = if tr.mismatches > 0 {
+            Tone::Bad
+        } else {
+            Tone::Plain
+        };
         t.push([
             Cell::from(tr.name.clone()),
             Cell::from(tr.parameters.to_string()),
             Cell::from(tr.checked.to_string()),
-            Cell::new(num(tr.max_rel_error), bad(tr.mismatches)),
+            Cell::new(num(tr.max_rel_error), bad),
             Cell::from(num(tr.median_rel_error)),
             Cell::from(num(tr.median_bound)),
-            Cell::new(tr.mismatches.to_string(), bad(tr.mismatches)),
-            Cell::new(
-                tr.unreliable.to_string(),
-                if tr.unreliable > 0 {
-                    Tone::Warn
-                } else {
-                    Tone::Plain
-                },
-            ),
-            Cell::new(
-                tr.unsettled.to_string(),
-                if tr.unsettled > 0 {
-                    Tone::Warn
-                } else {
-                    Tone::Plain
-                },
-            ),
-            Cell::new(
-                format!(
-                    "{}/{}",
-                    tr.directions - tr.direction_mismatches,
-                    tr.directions
-                ),
-                bad(tr.direction_mismatches),
-            ),
+            count_cell(tr.mismatches, Tone::Bad),
+            count_cell(tr.unreliable, Tone::Warn),
+            count_cell(tr.unsettled, Tone::Warn),
+            directions_cell(tr.directions, tr.direction_mismatches),
             verdict_cell(tr.verdict),
         ]);
     }
@@ -454,14 +448,6 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
     doc
 }
 
-pub fn verdict_cell(v: Verdict) -> Cell {
-    match v {
-        Verdict::Pass => Cell::new("pass", Tone::Good),
-        Verdict::Fail => Cell::new("fail", Tone::Bad),
-        Verdict::Inconclusive => Cell::new("inconclusive", Tone::Warn),
-    }
-}
-
 pub fn worst_table(worst: &[CoordReport]) -> Table {
     let mut t = Table::new([
         "where",
@@ -476,8 +462,7 @@ pub fn worst_table(worst: &[CoordReport]) -> Table {
         "status",
     ]);
     for w in worst {
-        let tone = status_tone(w.status);
-        t.push([
+        let place = [
             Cell::from(w.place.label()),
             Cell::from(w.place.layer.to_string()),
             Cell::from(w.place.row.to_string()),
@@ -487,13 +472,8 @@ pub fn worst_table(worst: &[CoordReport]) -> Table {
                 w.place.column.to_string()
             }),
             Cell::from(w.place.unit.to_string()),
-            Cell::from(format!("{:.9e}", w.analytic)),
-            Cell::from(format!("{:.9e}", w.numeric)),
-            Cell::new(num(w.rel_error), tone),
-            // The JSON's own figure: the bound over max(|a|, |n|, floor), like `rel error`.
-            Cell::from(num(w.rel_bound)),
-            Cell::new(w.status.name(), tone),
-        ]);
+        ];
+        t.push(place.into_iter().chain(measured_cells(w)));
     }
     t
 }

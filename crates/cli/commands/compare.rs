@@ -10,9 +10,9 @@ use plumb_formats::{Description, TensorFile, bind, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, StripSeries, Table, Tone, Verdict};
 
 use crate::args::CompareArgs;
-use crate::commands::check::{strip_plot, verdict_cell};
+use crate::commands::check::strip_plot;
 use crate::inputs::{AnyLoaded, load_any};
-use crate::output::{Settings, graph_network_id, network_id, num, shape};
+use crate::output::{Settings, graph_network_id, network_id, num, shape, verdict_cell};
 
 pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
     let file = |loaded: Option<&Description>| -> Result<TensorFile> {
@@ -95,7 +95,10 @@ pub fn gradient_cases(prefix: &str, tensors: &[TensorReport]) -> Vec<Case> {
                 c = c.figure("median_rel_error", m);
             }
             if t.verdict == Verdict::Fail {
-                let code = t.diagnosis.as_ref().map_or("gradient-mismatch", |d| d.code);
+                let code = t
+                    .diagnosis
+                    .as_ref()
+                    .map_or("gradient-mismatch", |d| d.code.as_str());
                 let why = t.diagnosis.as_ref().map_or_else(String::new, |d| {
                     if d.detail.is_empty() {
                         d.code.to_string()

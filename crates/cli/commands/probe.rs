@@ -12,12 +12,14 @@ use plumb_report::{Block, Case, Cell, Document, Severity, Table, Tone, Verdict};
 pub use plumb_probe::{ProbeOptions, ProbeReport, Source};
 
 use crate::args::ProbeArgs;
-use crate::commands::check::{method, step, verdict_cell};
+use crate::commands::check::{method, step};
 use crate::commands::compare::{
     certification_text, error_plot, gradient_cases, loss_case, tensor_table,
 };
 use crate::inputs::{AnyLoaded, Loaded, WeightsSource, load_any, load_batch};
-use crate::output::{Settings, graph_network_id, network_id, num};
+use crate::output::{
+    Settings, count_cell, directions_cell, graph_network_id, network_id, num, verdict_cell,
+};
 
 pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
     let method = method(args.method.into());
@@ -220,31 +222,21 @@ pub fn document_with(r: &ProbeReport, conventions: Option<(String, bool)>) -> Do
         "verdict",
     ]);
     for st in &s.tensors {
-        let bad = |n: usize| if n > 0 { Tone::Bad } else { Tone::Plain };
+        let bad = if st.mismatches > 0 {
+            Tone::Bad
+        } else {
+            Tone::Plain
+        };
         t.push([
             Cell::from(st.name.clone()),
             Cell::from(st.parameters.to_string()),
             Cell::from(st.checked.to_string()),
-            Cell::new(num(st.max_rel_error), bad(st.mismatches)),
+            Cell::new(num(st.max_rel_error), bad),
             Cell::from(num(st.median_rel_error)),
-            Cell::new(st.mismatches.to_string(), bad(st.mismatches)),
+            count_cell(st.mismatches, Tone::Bad),
             Cell::from(st.unreliable.to_string()),
-            Cell::new(
-                st.unsettled.to_string(),
-                if st.unsettled > 0 {
-                    Tone::Warn
-                } else {
-                    Tone::Plain
-                },
-            ),
-            Cell::new(
-                format!(
-                    "{}/{}",
-                    st.directions - st.direction_mismatches,
-                    st.directions
-                ),
-                bad(st.direction_mismatches),
-            ),
+            count_cell(st.unsettled, Tone::Warn),
+            directions_cell(st.directions, st.direction_mismatches),
             verdict_cell(st.verdict),
         ]);
     }

@@ -245,7 +245,7 @@ fn run_graph(
                 .coords
                 .iter()
                 .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
-                .map(|c| (c.tensor, c.index))
+                .map(|c| (c.coord.tensor, c.coord.index))
                 .expect("a network has parameters");
             let mut out = vec![(worst, "worst")];
             let mut rng = Rng::new(settings.seed ^ 0x5ee9);

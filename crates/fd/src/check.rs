@@ -212,10 +212,11 @@ impl Settlement {
     }
 }
 
-/// One coordinate's check.
+/// One coordinate's check; `K` names the coordinate: a dense network's [`Coord`], or an entry
+/// of an outside program's or the layer graph's tensors ([`Entry`](crate::Entry)).
 #[derive(Clone, Debug, PartialEq)]
-pub struct CoordCheck {
-    pub coord: Coord,
+pub struct CoordCheck<K = Coord> {
+    pub coord: K,
     pub analytic: f64,
     pub numeric: f64,
     pub abs_error: f64,

@@ -6,7 +6,7 @@ use std::collections::HashMap;
 
 use plumb_engine::Rng;
 
-use crate::check::{RETRIES, Rule, Status};
+use crate::check::{CoordCheck, RETRIES, Rule, Status};
 use crate::direction::{Direction, directions};
 use crate::method::{Method, complex_estimate, second_difference_steps, smooth_across};
 use crate::{NOISE, Progress, Sample, relative_floor};
@@ -66,20 +66,15 @@ pub struct ExternalConfig {
     pub tolerance: f64,
 }
 
-/// One coordinate's verdict.
-#[derive(Clone, Debug, PartialEq)]
-pub struct OutsideCoord {
+/// Entry `index` (flat, in the tensor's canonical order) of tensor `tensor`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Entry {
     pub tensor: usize,
     pub index: usize,
-    pub analytic: f64,
-    pub numeric: f64,
-    pub abs_error: f64,
-    pub rel_error: f64,
-    pub bound: f64,
-    pub step: f64,
-    pub status: Status,
-    pub retried: bool,
 }
+
+/// One coordinate's verdict, at an entry of the tensors.
+pub type OutsideCoord = CoordCheck<Entry>;
 
 /// One random direction's verdict; `tensor` is None for a direction over every tensor.
 #[derive(Clone, Debug, PartialEq)]
@@ -385,8 +380,10 @@ pub(crate) fn check_tensors<E>(
         .map(|(i, (&(t, k), (est, retried)))| {
             let (abs_error, rel_error, bound, status) = judge(i, est);
             OutsideCoord {
-                tensor: t,
-                index: k,
+                coord: Entry {
+                    tensor: t,
+                    index: k,
+                },
                 analytic: tensors[t].gradient[k],
                 numeric: est.value,
                 abs_error,

@@ -48,7 +48,7 @@ pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select, select_t
 pub use direction::{Direction, directions};
 pub use evaluate::{Base, full_loss};
 pub use external::{
-    Change, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
+    Change, Entry, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
     OutsideTensor, check_external, select_flat,
 };
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};

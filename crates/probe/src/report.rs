@@ -4,11 +4,13 @@
 use std::path::PathBuf;
 
 use plumb_diagnose::report::{Certification, LossReport, TensorReport};
+use plumb_fd::Status;
+use plumb_report::figure;
 use plumb_report::{DataSource, Finding, Verdict, WeightsSource};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 /// The program probed: its command line, the name its hello gives and the type it computes in.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct ProgramReport {
     pub command: String,
     pub name: String,
@@ -16,24 +18,30 @@ pub struct ProgramReport {
 }
 
 /// The worst coordinate of a tensor in the self-check.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SelfWorst {
     pub index: Vec<usize>,
+    #[serde(deserialize_with = "figure")]
     pub gradient: f64,
+    #[serde(deserialize_with = "figure")]
     pub differences: f64,
+    #[serde(deserialize_with = "figure")]
     pub rel_error: f64,
+    #[serde(deserialize_with = "figure")]
     pub bound: f64,
-    pub status: &'static str,
+    pub status: Status,
 }
 
 /// One tensor of the self-check: the program's gradient against differences of its own loss.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SelfTensor {
     pub name: String,
     pub verdict: Verdict,
     pub parameters: usize,
     pub checked: usize,
+    #[serde(deserialize_with = "figure")]
     pub max_rel_error: f64,
+    #[serde(deserialize_with = "figure")]
     pub median_rel_error: f64,
     pub mismatches: usize,
     pub unreliable: usize,
@@ -45,10 +53,11 @@ pub struct SelfTensor {
 }
 
 /// The program's gradient against finite differences of its own loss.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SelfCheck {
-    pub method: &'static str,
+    pub method: String,
     pub step_rule: String,
+    #[serde(deserialize_with = "figure")]
     pub tolerance: f64,
     pub sample: String,
     pub checked: usize,
@@ -60,11 +69,11 @@ pub struct SelfCheck {
 }
 
 /// The JSON report of `plumb probe` (docs/json.md).
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct ProbeReport {
     pub verdict: Verdict,
     pub schema_version: u32,
-    pub command: &'static str,
+    pub command: String,
     pub program: ProgramReport,
     pub blackbox: bool,
     /// The network description; null for a black box probed without one.

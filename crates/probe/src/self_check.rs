@@ -57,7 +57,7 @@ pub(crate) fn self_check_report(
             });
             continue;
         };
-        let coords: Vec<_> = r.coords.iter().filter(|c| c.tensor == t).collect();
+        let coords: Vec<_> = r.coords.iter().filter(|c| c.coord.tensor == t).collect();
         let dirs: Vec<_> = r
             .directions
             .iter()
@@ -78,16 +78,16 @@ pub(crate) fn self_check_report(
             .count();
         let direction_mismatches = dirs.iter().filter(|d| d.status == Status::Mismatch).count();
         let worst = worst.map(|w| SelfWorst {
-            index: Named::index_of(p, w.index),
+            index: Named::index_of(p, w.coord.index),
             gradient: w.analytic,
             differences: w.numeric,
             rel_error: w.rel_error,
             bound: w.bound,
-            status: w.status.name(),
+            status: w.status,
         });
         if mismatches > 0 || direction_mismatches > 0 {
             // Only a coordinate that disagrees is quoted (not an unreliable one).
-            let at = worst.as_ref().filter(|w| w.status == "mismatch").map_or(String::new(), |w| {
+            let at = worst.as_ref().filter(|w| w.status == Status::Mismatch).map_or(String::new(), |w| {
                 format!(
                     "; worst at {}{:?}: gradient {:.6e}, differences {:.6e} (relative error {}, bound {})",
                     p.name,
@@ -247,7 +247,7 @@ pub(crate) fn self_check_report(
     }
     SelfCheck {
         conclusive,
-        method: cfg.method.name(),
+        method: cfg.method.name().into(),
         step_rule: cfg.step.map_or_else(
             || cfg.method.step_rule(cfg.eps).to_string(),
             |h| format!("fixed h = {h:e} (--step)"),

@@ -358,7 +358,7 @@ pub fn probe(
     Ok(ProbeReport {
         verdict: Verdict::of_check(&findings, self_check.conclusive),
         schema_version: SCHEMA_VERSION,
-        command: "probe",
+        command: "probe".into(),
         program: ProgramReport {
             command,
             name: hello.name,

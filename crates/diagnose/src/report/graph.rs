@@ -88,7 +88,7 @@ pub fn certify_graph(loaded: &GraphLoaded, seed: u64) -> Result<Certification, C
         &|_, _| {},
     )?;
     Ok(Certification {
-        method: "complex-step",
+        method: "complex-step".into(),
         checked: r.coverage.checked,
         parameters: r.coverage.parameters,
         max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),

@@ -9,9 +9,9 @@ use plumb_fd::report::{Loaded, Place, Tensors};
 use plumb_fd::{CheckConfig, CheckError, Method, Precision, Status, check};
 use plumb_formats::{DType, Description, Role, TensorFile, disassemble, expected_tensors};
 use plumb_report::{
-    DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, number as num,
+    DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure, number as num,
 };
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 mod graph;
 
@@ -43,10 +43,10 @@ fn shape(s: &[usize]) -> String {
 }
 
 /// The diagnosis of one tensor, for JSON.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct DiagnosisReport {
-    pub code: &'static str,
-    #[serde(skip_serializing_if = "String::is_empty")]
+    pub code: String,
+    #[serde(default, skip_serializing_if = "String::is_empty")]
     pub detail: String,
     pub residual: Option<f64>,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -86,7 +86,7 @@ impl NameReport {
 }
 
 /// Where a tensor is worst.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Worst {
     /// The coordinate in the augmented matrices (with the tensor and its index there).
     pub place: Option<Place>,
@@ -95,13 +95,16 @@ pub struct Worst {
     #[serde(skip_serializing_if = "Option::is_none")]
     pub at: Option<String>,
     pub index: Vec<usize>,
+    #[serde(deserialize_with = "figure")]
     pub outside: f64,
+    #[serde(deserialize_with = "figure")]
     pub reference: f64,
+    #[serde(deserialize_with = "figure")]
     pub rel_error: f64,
 }
 
 /// One tensor of the report.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct TensorReport {
     pub name: String,
     /// On the layer graph: the 1-based layer the tensor belongs to.
@@ -122,20 +125,24 @@ pub struct TensorReport {
 }
 
 /// The complex-step certification of the reference.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Certification {
-    pub method: &'static str,
+    pub method: String,
     pub checked: usize,
     pub parameters: usize,
+    #[serde(deserialize_with = "figure")]
     pub max_rel_error: f64,
     pub certified: bool,
 }
 
 /// The user's loss against the reference loss.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LossReport {
+    #[serde(deserialize_with = "figure")]
     pub outside: f64,
+    #[serde(deserialize_with = "figure")]
     pub reference: f64,
+    #[serde(deserialize_with = "figure")]
     pub rel_error: f64,
     pub matches: bool,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -247,7 +254,7 @@ pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification, CheckError> 
         &|_, _| {},
     )?;
     Ok(Certification {
-        method: "complex-step",
+        method: "complex-step".into(),
         checked: r.coverage.checked,
         parameters: r.coverage.parameters,
         max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),
@@ -362,7 +369,7 @@ fn tensor_report(
         scale: j.comparison.as_ref().map(|c| c.scale),
         worst,
         diagnosis: j.diagnosis.as_ref().map(|d| DiagnosisReport {
-            code: d.code,
+            code: d.code.to_string(),
             detail: d.label.clone(),
             residual: d.residual.is_finite().then_some(d.residual),
             factor: d.factor,
@@ -377,7 +384,7 @@ fn tensor_report(
 
 fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
     let d = t.diagnosis.as_ref();
-    let code = d.map_or("unexplained", |d| d.code);
+    let code = d.map_or("unexplained", |d| d.code.as_str());
     let what = match code {
         "unexplained" => "wrong, and no catalogued mistake reproduces it".to_string(),
         c => {

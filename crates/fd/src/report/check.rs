@@ -13,8 +13,9 @@ use serde::{Deserialize, Serialize};
 use super::Loaded;
 use super::locate::{Place, Tensors};
 use crate::{
-    CheckConfig, CheckError, CheckResult, Coverage, DirectionCheck, FLOOR, Method, Part, Precision,
-    Progress, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check, worst_first,
+    CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DirectionCheck, FLOOR, Method,
+    Part, Precision, Progress, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check,
+    worst_first,
 };
 
 /// The most random directions per part a run takes (each costs four whole forward passes).
@@ -84,7 +85,8 @@ pub struct CoordReport<P = Place> {
 
 impl<P> CoordReport<P> {
     /// The row of a checked coordinate at `place`, whose relative error's floor is `floor`.
-    pub(super) fn new(place: P, c: Measured, floor: f64) -> CoordReport<P> {
+    /// The row of `c`, at `place`; `floor` is the relative error's floor where `c` lies.
+    pub(super) fn new<K>(place: P, c: &CoordCheck<K>, floor: f64) -> CoordReport<P> {
         let den = c.analytic.abs().max(c.numeric.abs()).max(floor);
         CoordReport {
             place,
@@ -99,18 +101,21 @@ impl<P> CoordReport<P> {
             retried: c.retried,
         }
     }
-}
 
-/// What a check measured at one coordinate, dense or graph.
-pub(super) struct Measured {
-    pub analytic: f64,
-    pub numeric: f64,
-    pub abs_error: f64,
-    pub rel_error: f64,
-    pub bound: f64,
-    pub step: f64,
-    pub status: Status,
-    pub retried: bool,
+    /// The checker's record of this row, at `coord` (what `plumb merge` judges again).
+    pub(super) fn check_at<K>(&self, coord: K) -> CoordCheck<K> {
+        CoordCheck {
+            coord,
+            analytic: self.analytic,
+            numeric: self.numeric,
+            abs_error: self.abs_error,
+            rel_error: self.rel_error,
+            bound: self.bound,
+            step: self.step,
+            status: self.status,
+            retried: self.retried,
+        }
+    }
 }
 
 /// How a report names a coordinate's place in its findings, and what a non-smooth point is in
@@ -247,20 +252,7 @@ pub struct CheckReport<C = CoordReport> {
 /// The report row of dense coordinate `i` of a check's results.
 pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
     let c = &result.coords[i];
-    CoordReport::new(
-        tensors.place(c.coord),
-        Measured {
-            analytic: c.analytic,
-            numeric: c.numeric,
-            abs_error: c.abs_error,
-            rel_error: c.rel_error,
-            bound: c.bound,
-            step: c.step,
-            status: c.status,
-            retried: c.retried,
-        },
-        result.floors[c.coord.layer],
-    )
+    CoordReport::new(tensors.place(c.coord), c, result.floors[c.coord.layer])
 }
 
 /// Runs the check of the reference gradient and builds its report (the command and the demo).

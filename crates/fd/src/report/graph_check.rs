@@ -5,11 +5,9 @@
 use plumb_engine::graph::Graph;
 use serde::{Deserialize, Serialize};
 
-use super::check::{
-    CheckReport, Checked, CoordReport, DirectionReport, Location, Measured, build_report,
-};
+use super::check::{CheckReport, Checked, CoordReport, DirectionReport, Location, build_report};
 use super::{GraphLoaded, graph_description_hash};
-use crate::{CheckConfig, CheckError, GraphCheck, OutsideCoord, Progress, check_graph};
+use crate::{CheckConfig, CheckError, Entry, GraphCheck, OutsideCoord, Progress, check_graph};
 
 /// A parameter of the graph located for people and for JSON (the graph's [`Place`](super::Place)).
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -64,20 +62,9 @@ pub fn locate(graph: &Graph, t: usize, index: usize) -> String {
 }
 
 fn coord_report(graph: &Graph, r: &GraphCheck, c: &OutsideCoord) -> GraphCoordReport {
-    CoordReport::new(
-        GraphPlace::new(graph, c.tensor, c.index),
-        Measured {
-            analytic: c.analytic,
-            numeric: c.numeric,
-            abs_error: c.abs_error,
-            rel_error: c.rel_error,
-            bound: c.bound,
-            step: c.step,
-            status: c.status,
-            retried: c.retried,
-        },
-        r.floors.get(c.tensor).copied().unwrap_or(0.0),
-    )
+    let Entry { tensor, index } = c.coord;
+    let floor = r.floors.get(tensor).copied().unwrap_or(0.0);
+    CoordReport::new(GraphPlace::new(graph, tensor, index), c, floor)
 }
 
 /// Runs the check of the graph's own gradient on loaded inputs and builds its report.
@@ -137,7 +124,7 @@ pub fn build_graph(
         coords: result
             .coords
             .iter()
-            .map(|c| (c.tensor, coord_report(graph, result, c)))
+            .map(|c| (c.coord.tensor, coord_report(graph, result, c)))
             .collect(),
         directions: result
             .directions

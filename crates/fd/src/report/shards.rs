@@ -427,17 +427,7 @@ fn coord_check(c: &CoordReport, net: &Network) -> Result<CoordCheck, String> {
             layer + 1
         ));
     }
-    Ok(CoordCheck {
-        coord: Coord { layer, row, col },
-        analytic: c.analytic,
-        numeric: c.numeric,
-        abs_error: c.abs_error,
-        rel_error: c.rel_error,
-        bound: c.bound,
-        step: c.step,
-        status: c.status,
-        retried: c.retried,
-    })
+    Ok(c.check_at(Coord { layer, row, col }))
 }
 
 /// The checker's record of a direction the report lists.

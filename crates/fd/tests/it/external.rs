@@ -92,7 +92,7 @@ fn a_right_gradient_passes_and_a_wrong_entry_is_found() {
         .coords
         .iter()
         .filter(|c| c.status == Status::Mismatch)
-        .map(|c| (c.tensor, c.index))
+        .map(|c| (c.coord.tensor, c.coord.index))
         .collect();
     assert_eq!(found, vec![(1, target.1 * 7 + target.2)]); // layer 2 is 5 × (6 + 1)
 }

@@ -110,7 +110,7 @@ fn shards_cover_the_check_exactly() {
         coords.extend(r.coords);
         directions += r.directions.len();
     }
-    coords.sort_by_key(|c| (c.tensor, c.index));
+    coords.sort_by_key(|c| (c.coord.tensor, c.coord.index));
     assert_eq!(coords, whole.coords);
     assert_eq!(directions, whole.directions.len());
 }

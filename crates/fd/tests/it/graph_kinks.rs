@@ -67,7 +67,7 @@ fn a_max_pool_tie_is_unreliable_not_a_mismatch() {
         let status = |t: usize, k: usize| {
             r.coords
                 .iter()
-                .find(|c| c.tensor == t && c.index == k)
+                .find(|c| c.coord.tensor == t && c.coord.index == k)
                 .unwrap()
                 .status
         };
@@ -88,7 +88,7 @@ fn a_max_pool_tie_is_unreliable_not_a_mismatch() {
         assert!(
             r.coords
                 .iter()
-                .filter(|c| c.tensor >= 2)
+                .filter(|c| c.coord.tensor >= 2)
                 .all(|c| c.status == Status::Match),
             "{what}"
         );

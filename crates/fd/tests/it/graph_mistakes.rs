@@ -130,18 +130,19 @@ fn one_entry_off_by_one_percent_is_a_mismatch_there() {
             )
             .unwrap();
             for co in &r.coords {
-                let want = if (co.tensor, co.index) == (t, k) {
+                let want = if (co.coord.tensor, co.coord.index) == (t, k) {
                     Status::Mismatch
                 } else {
                     co.status.min(Status::Unreliable)
                 };
                 assert!(
-                    co.status == want && (co.tensor, co.index) == (t, k)
-                        || co.status != Status::Mismatch && (co.tensor, co.index) != (t, k),
+                    co.status == want && (co.coord.tensor, co.coord.index) == (t, k)
+                        || co.status != Status::Mismatch
+                            && (co.coord.tensor, co.coord.index) != (t, k),
                     "{name}: {} #{k} off by 1%: ({}, {}) is {} (want {})",
                     g.tensors()[t].name,
-                    co.tensor,
-                    co.index,
+                    co.coord.tensor,
+                    co.coord.index,
                     co.status.name(),
                     want.name()
                 );
@@ -194,7 +195,7 @@ fn f32_resolves_twenty_percent_and_never_calls_half_the_tolerance_a_mismatch() {
             )
             .unwrap();
             for co in &r.coords {
-                let at_moved = moved.contains(&(co.tensor, co.index));
+                let at_moved = moved.contains(&(co.coord.tensor, co.coord.index));
                 if at_moved && caught && co.status != Status::Unreliable {
                     let r = co.bound / co.analytic.abs().max(1e-300);
                     assert!(r <= SETTLE, "{name}: bound {r:e} of the entry");
@@ -205,8 +206,8 @@ fn f32_resolves_twenty_percent_and_never_calls_half_the_tolerance_a_mismatch() {
                     co.status == Status::Mismatch,
                     want_mismatch,
                     "{name}: {} #{} moved by {factor} is {} (a={:e} n={:e} bound={:e})",
-                    g.tensors()[co.tensor].name,
-                    co.index,
+                    g.tensors()[co.coord.tensor].name,
+                    co.coord.index,
                     co.status.name(),
                     co.analytic,
                     co.numeric,

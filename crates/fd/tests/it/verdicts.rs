@@ -3,10 +3,17 @@
 
 use ndarray::{Array2, s};
 use plumb_engine::{Activation, Batch, Coord, Init, Loss, Network, Rng, Weights};
-use plumb_fd::{CheckConfig, Method, Precision, Sample, Scope, Status, check, check_gradient};
+use plumb_fd::{
+    CheckConfig, CheckResult, Method, Precision, Sample, Scope, Status, check, check_gradient,
+};
+
+/// A cross-entropy classifier: `inputs`, then `layers` as (units, activation), L2 `l2`.
+fn classifier(inputs: usize, layers: &[(usize, Activation)], l2: f64) -> Network {
+    Network::new(inputs, layers, Loss::CrossEntropy, l2).unwrap()
+}
 
 fn relu_net() -> Network {
-    Network::new(
+    classifier(
         6,
         &[
             (10, Activation::Relu),
@@ -14,10 +21,8 @@ fn relu_net() -> Network {
             (7, Activation::LeakyRelu { slope: 0.1 }),
             (3, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.01,
     )
-    .unwrap()
 }
 
 fn config(method: Method, precision: Precision) -> CheckConfig {
@@ -27,6 +32,59 @@ fn config(method: Method, precision: Precision) -> CheckConfig {
 }
 
 fn none(_: usize, _: usize) {}
+
+/// Every coordinate of the engine's own gradient checked.
+fn run(net: &Network, w: &Weights<f64>, batch: &Batch, m: Method, p: Precision) -> CheckResult {
+    check(net, w, batch, &config(m, p), &none).unwrap()
+}
+
+/// Every coordinate of `grad` checked.
+fn run_given(
+    net: &Network,
+    w: &Weights<f64>,
+    batch: &Batch,
+    grad: &Weights<f64>,
+    m: Method,
+    p: Precision,
+) -> CheckResult {
+    check_gradient(net, w, batch, grad, &config(m, p), &none).unwrap()
+}
+
+/// The coordinates called a mismatch, in check order.
+fn mismatches(r: &CheckResult) -> Vec<Coord> {
+    r.coords
+        .iter()
+        .filter(|c| c.status == Status::Mismatch)
+        .map(|c| c.coord)
+        .collect()
+}
+
+/// Whether any random direction was called a mismatch.
+fn any_direction_mismatch(r: &CheckResult) -> bool {
+    r.directions.iter().any(|d| d.status == Status::Mismatch)
+}
+
+/// `g` with its largest entry made 1% larger, and where that entry is.
+fn largest_one_percent_off(g: &Weights<f64>) -> (Weights<f64>, Coord) {
+    let mut best = (
+        Coord {
+            layer: 0,
+            row: 0,
+            col: 0,
+        },
+        0.0f64,
+    );
+    for (layer, m) in g.layers().iter().enumerate() {
+        for ((row, col), &v) in m.indexed_iter() {
+            if v.abs() > best.1 {
+                best = (Coord { layer, row, col }, v.abs());
+            }
+        }
+    }
+    let mut wrong = g.clone();
+    *wrong.get_mut(best.0) *= 1.01;
+    (wrong, best.0)
+}
 
 /// He-initialised ReLU networks (He et al. 2015 [pub] for the scale), 20 seeds: no coordinate and no
 /// direction is a mismatch, with central differences and with the complex step.
@@ -42,17 +100,9 @@ fn relu_networks_raise_no_false_alarm_over_20_seeds() {
         }
         let batch = Batch::synthetic(&net, 16, seed);
         for method in [Method::Central, Method::ComplexStep] {
-            let r = check(&net, &w, &batch, &config(method, Precision::F64), &none).unwrap();
-            let bad: Vec<_> = r
-                .coords
-                .iter()
-                .filter(|c| c.status == Status::Mismatch)
-                .collect();
-            assert!(bad.is_empty(), "seed {seed} {method}: {:?}", bad.first());
-            assert!(
-                r.directions.iter().all(|d| d.status != Status::Mismatch),
-                "seed {seed} {method}"
-            );
+            let r = run(&net, &w, &batch, method, Precision::F64);
+            assert_eq!(mismatches(&r), vec![], "seed {seed} {method}");
+            assert!(!any_direction_mismatch(&r), "seed {seed} {method}");
         }
     }
 }
@@ -64,13 +114,7 @@ fn relu_networks_raise_no_false_alarm_over_20_seeds() {
 /// resolves it.
 #[test]
 fn kinks_are_unreliable_and_retried() {
-    let net = Network::new(
-        3,
-        &[(4, Activation::Relu), (2, Activation::Softmax)],
-        Loss::CrossEntropy,
-        0.0,
-    )
-    .unwrap();
+    let net = classifier(3, &[(4, Activation::Relu), (2, Activation::Softmax)], 0.0);
     let mut w = Init::HeNormal.weights(&net, &mut Rng::new(1));
     let mut x = Array2::from_shape_fn((5, 3), |(i, j)| ((i * 3 + j) as f64 * 0.37).sin());
     x.row_mut(0).fill(0.0);
@@ -79,14 +123,7 @@ fn kinks_are_unreliable_and_retried() {
         y[[i, i % 2]] = 1.0;
     }
     let batch = Batch { x, y };
-    let r = check(
-        &net,
-        &w,
-        &batch,
-        &config(Method::Central, Precision::F64),
-        &none,
-    )
-    .unwrap();
+    let r = run(&net, &w, &batch, Method::Central, Precision::F64);
     for c in &r.coords {
         if c.coord.layer == 0 && c.coord.col == 0 {
             assert_eq!(c.status, Status::Unreliable, "{:?}", c.coord);
@@ -97,26 +134,13 @@ fn kinks_are_unreliable_and_retried() {
     w.layers_mut()[0]
         .column_mut(0)
         .assign(&ndarray::array![3e-7, 0.5, 0.5, 0.5]);
-    let r = check(
-        &net,
-        &w,
-        &batch,
-        &config(Method::Central, Precision::F64),
-        &none,
-    )
-    .unwrap();
-    let bias0 = r
-        .coords
-        .iter()
-        .find(|c| {
-            c.coord
-                == Coord {
-                    layer: 0,
-                    row: 0,
-                    col: 0,
-                }
-        })
-        .unwrap();
+    let r = run(&net, &w, &batch, Method::Central, Precision::F64);
+    let first_bias = Coord {
+        layer: 0,
+        row: 0,
+        col: 0,
+    };
+    let bias0 = r.coords.iter().find(|c| c.coord == first_bias).unwrap();
     assert!(bias0.retried, "{bias0:?}");
     assert_eq!(bias0.status, Status::Match);
     // The retried step stays on the unit's side of 0.
@@ -128,17 +152,15 @@ fn kinks_are_unreliable_and_retried() {
 /// of a near-zero entry is below any method's resolution.
 #[test]
 fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
-    let net = Network::new(
+    let net = classifier(
         5,
         &[
             (7, Activation::Tanh),
             (6, Activation::Relu),
             (3, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.05,
-    )
-    .unwrap();
+    );
     let mut rng = Rng::new(77);
     for seed in 0..12 {
         let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
@@ -156,19 +178,9 @@ fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
         let target = big[rng.below(big.len())];
         let mut bad = g.clone();
         *bad.get_mut(target) *= 1.01;
-        for (method, precision) in [
-            (Method::Central, Precision::F64),
-            (Method::ComplexStep, Precision::F64),
-        ] {
-            let r =
-                check_gradient(&net, &w, &batch, &bad, &config(method, precision), &none).unwrap();
-            let found: Vec<Coord> = r
-                .coords
-                .iter()
-                .filter(|c| c.status == Status::Mismatch)
-                .map(|c| c.coord)
-                .collect();
-            assert_eq!(found, vec![target], "seed {seed} {method}");
+        for method in [Method::Central, Method::ComplexStep] {
+            let r = run_given(&net, &w, &batch, &bad, method, Precision::F64);
+            assert_eq!(mismatches(&r), vec![target], "seed {seed} {method}");
         }
     }
 }
@@ -178,17 +190,15 @@ fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
 /// and no other part.
 #[test]
 fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
-    let net = Network::new(
+    let net = classifier(
         6,
         &[
             (9, Activation::Tanh),
             (7, Activation::Sigmoid),
             (4, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.05,
-    )
-    .unwrap();
+    );
     for seed in 0..20u64 {
         let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
         let batch = Batch::synthetic(&net, 12, seed);
@@ -240,68 +250,21 @@ fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
 #[test]
 fn single_precision_passes_right_and_fails_wrong() {
     let nets = [
-        Network::new(
-            5,
-            &[(8, Activation::Tanh), (3, Activation::Softmax)],
-            Loss::CrossEntropy,
-            0.05,
-        )
-        .unwrap(),
+        classifier(5, &[(8, Activation::Tanh), (3, Activation::Softmax)], 0.05),
         relu_net(),
     ];
     for net in &nets {
         for seed in 0..5 {
             let w = Init::GlorotUniform.weights(net, &mut Rng::new(seed));
             let batch = Batch::synthetic(net, 16, seed);
-            let r = check(
-                net,
-                &w,
-                &batch,
-                &config(Method::Central, Precision::F32),
-                &none,
-            )
-            .unwrap();
-            let bad: Vec<_> = r
-                .coords
-                .iter()
-                .filter(|c| c.status == Status::Mismatch)
-                .collect();
-            assert!(bad.is_empty(), "seed {seed}: {:?}", bad.first());
+            let r = run(net, &w, &batch, Method::Central, Precision::F32);
+            assert_eq!(mismatches(&r), vec![], "seed {seed}");
 
-            let mut wrong = r.analytic.clone();
-            let (layer, row, col) = largest(&wrong);
-            let target = Coord { layer, row, col };
-            *wrong.get_mut(target) *= 1.01;
-            let r = check_gradient(
-                net,
-                &w,
-                &batch,
-                &wrong,
-                &config(Method::Central, Precision::F32),
-                &none,
-            )
-            .unwrap();
-            let found: Vec<Coord> = r
-                .coords
-                .iter()
-                .filter(|c| c.status == Status::Mismatch)
-                .map(|c| c.coord)
-                .collect();
-            assert_eq!(found, vec![target], "seed {seed}");
+            let (wrong, target) = largest_one_percent_off(&r.analytic);
+            let r = run_given(net, &w, &batch, &wrong, Method::Central, Precision::F32);
+            assert_eq!(mismatches(&r), vec![target], "seed {seed}");
         }
     }
-}
-
-fn largest(g: &Weights<f64>) -> (usize, usize, usize) {
-    let mut best = (0, 0, 0, 0.0f64);
-    for (l, m) in g.layers().iter().enumerate() {
-        for ((r, c), &v) in m.indexed_iter() {
-            if v.abs() > best.3 {
-                best = (l, r, c, v.abs());
-            }
-        }
-    }
-    (best.0, best.1, best.2)
 }
 
 /// A confident network: the loss is a small difference of large terms (softplus(z) − y·z with
@@ -310,13 +273,7 @@ fn largest(g: &Weights<f64>) -> (usize, usize, usize) {
 /// central differences and the complex step (regression: review found 20 of 37 false mismatches).
 #[test]
 fn confident_networks_raise_no_false_alarm() {
-    let net = Network::new(
-        4,
-        &[(5, Activation::Tanh), (2, Activation::Sigmoid)],
-        Loss::CrossEntropy,
-        0.0,
-    )
-    .unwrap();
+    let net = classifier(4, &[(5, Activation::Tanh), (2, Activation::Sigmoid)], 0.0);
     for bias in [10.0, 30.0] {
         for seed in 0..5 {
             let mut w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
@@ -329,22 +286,10 @@ fn confident_networks_raise_no_false_alarm() {
                 (Method::Central, Precision::F32),
                 (Method::Richardson, Precision::F64),
             ] {
-                let r = check(&net, &w, &batch, &config(method, precision), &none).unwrap();
-                let bad = r
-                    .coords
-                    .iter()
-                    .filter(|c| c.status == Status::Mismatch)
-                    .count();
-                let bad_dirs = r
-                    .directions
-                    .iter()
-                    .filter(|d| d.status == Status::Mismatch)
-                    .count();
-                assert_eq!(
-                    (bad, bad_dirs),
-                    (0, 0),
-                    "bias {bias} seed {seed} {method} {precision:?}"
-                );
+                let r = run(&net, &w, &batch, method, precision);
+                let what = format!("bias {bias} seed {seed} {method} {precision:?}");
+                assert_eq!(mismatches(&r), vec![], "{what}");
+                assert!(!any_direction_mismatch(&r), "{what}");
             }
         }
     }
@@ -354,7 +299,7 @@ fn confident_networks_raise_no_false_alarm() {
 /// steps, not judged (regression: review found 23 of 28 directions left unreliable).
 #[test]
 fn relu_directions_in_f32_are_retried_off_their_kinks() {
-    let net = Network::new(
+    let net = classifier(
         6,
         &[
             (20, Activation::Relu),
@@ -362,31 +307,16 @@ fn relu_directions_in_f32_are_retried_off_their_kinks() {
             (12, Activation::Relu),
             (4, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.0,
-    )
-    .unwrap();
+    );
     let mut judged = 0;
     let mut total = 0;
     for seed in 0..5 {
         let w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
         let batch = Batch::synthetic(&net, 16, seed);
-        let r = check(
-            &net,
-            &w,
-            &batch,
-            &config(Method::Central, Precision::F32),
-            &none,
-        )
-        .unwrap();
-        assert!(
-            r.coords.iter().all(|c| c.status != Status::Mismatch),
-            "seed {seed}"
-        );
-        assert!(
-            r.directions.iter().all(|d| d.status != Status::Mismatch),
-            "seed {seed}"
-        );
+        let r = run(&net, &w, &batch, Method::Central, Precision::F32);
+        assert_eq!(mismatches(&r), vec![], "seed {seed}");
+        assert!(!any_direction_mismatch(&r), "seed {seed}");
         judged += r
             .directions
             .iter()
@@ -405,7 +335,7 @@ fn relu_directions_in_f32_are_retried_off_their_kinks() {
 /// fail here (found in review). No false alarm over 20 seeds.
 #[test]
 fn single_precision_with_large_weights_raises_no_false_alarm() {
-    let net = Network::new(
+    let net = classifier(
         10,
         &[
             (16, Activation::Tanh),
@@ -413,30 +343,16 @@ fn single_precision_with_large_weights_raises_no_false_alarm() {
             (8, Activation::Tanh),
             (4, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.0,
-    )
-    .unwrap();
+    );
     for seed in 0..20 {
         let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
         for layer in w.layers_mut() {
             layer.mapv_inplace(|v| 4.0 * v);
         }
         let batch = Batch::synthetic(&net, 32, seed);
-        let r = check(
-            &net,
-            &w,
-            &batch,
-            &config(Method::Central, Precision::F32),
-            &|_, _| {},
-        )
-        .unwrap();
-        let bad: Vec<_> = r
-            .coords
-            .iter()
-            .filter(|c| c.status == Status::Mismatch)
-            .collect();
-        assert!(bad.is_empty(), "seed {seed}: {bad:?}");
+        let r = run(&net, &w, &batch, Method::Central, Precision::F32);
+        assert_eq!(mismatches(&r), vec![], "seed {seed}");
     }
 }
 
@@ -447,17 +363,15 @@ fn single_precision_with_large_weights_raises_no_false_alarm() {
 /// networks below); and a 1% error in one entry is still found there.
 #[test]
 fn elu_networks_raise_no_false_alarm_with_any_method() {
-    let net = Network::new(
+    let net = classifier(
         6,
         &[
             (12, Activation::Elu { alpha: 1.0 }),
             (8, Activation::Elu { alpha: 1.0 }),
             (3, Activation::Softmax),
         ],
-        Loss::CrossEntropy,
         0.01,
-    )
-    .unwrap();
+    );
     for seed in 0..10 {
         let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
         let mut rng = Rng::new(seed + 50);
@@ -471,44 +385,20 @@ fn elu_networks_raise_no_false_alarm_with_any_method() {
             (Method::Central, Precision::F32),
             (Method::Central, Precision::F64),
         ] {
-            let r = check(&net, &w, &batch, &config(method, precision), &none).unwrap();
-            let bad: Vec<_> = r
-                .coords
-                .iter()
-                .filter(|c| c.status == Status::Mismatch)
-                .collect();
-            assert!(
-                bad.is_empty(),
-                "seed {seed} {method} {precision:?}: {:?}",
-                bad.first()
-            );
-            assert!(
-                r.directions.iter().all(|d| d.status != Status::Mismatch),
-                "seed {seed} {method} {precision:?}"
-            );
+            let r = run(&net, &w, &batch, method, precision);
+            let what = format!("seed {seed} {method} {precision:?}");
+            assert_eq!(mismatches(&r), vec![], "{what}");
+            assert!(!any_direction_mismatch(&r), "{what}");
             if seed < 3 {
                 // The other direction: the largest entry 1% off is found, and only there.
-                let mut wrong = r.analytic.clone();
-                let (layer, row, col) = largest(&wrong);
-                let target = Coord { layer, row, col };
-                *wrong.get_mut(target) *= 1.01;
-                let r = check_gradient(&net, &w, &batch, &wrong, &config(method, precision), &none)
-                    .unwrap();
-                let found: Vec<Coord> = r
-                    .coords
-                    .iter()
-                    .filter(|c| c.status == Status::Mismatch)
-                    .map(|c| c.coord)
-                    .collect();
+                let (wrong, target) = largest_one_percent_off(&r.analytic);
+                let r = run_given(&net, &w, &batch, &wrong, method, precision);
+                let found = mismatches(&r);
                 let at = r.coords.iter().find(|c| c.coord == target).unwrap();
                 // Found, unless the method's bound there (after a retry off the break) is too
                 // wide to see 1%: then it must say it is not a match it can vouch for beyond that.
                 if at.bound < at.abs_error {
-                    assert_eq!(
-                        found,
-                        vec![target],
-                        "seed {seed} {method} {precision:?}: {at:?}"
-                    );
+                    assert_eq!(found, vec![target], "{what}: {at:?}");
                 } else {
                     assert!(
                         found.is_empty() && at.retried,

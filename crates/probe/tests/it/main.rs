@@ -2,3 +2,4 @@
 //! once instead of once per file (most of CI's time is building test binaries).
 
 mod faults;
+mod report_json;

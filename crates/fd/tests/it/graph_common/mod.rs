@@ -419,8 +419,8 @@ pub fn worst(r: &GraphCheck) -> String {
         .map(|c| {
             format!(
                 "t{} #{} {} a={:e} n={:e} rel={:e} bound={:e}",
-                c.tensor,
-                c.index,
+                c.coord.tensor,
+                c.coord.index,
                 c.status.name(),
                 c.analytic,
                 c.numeric,
