@@ -1,6 +1,6 @@
 //! `global-avg-pool`: each channel's mean over its positions, [channels, …] → [channels].
 
-use ndarray::{Array2, ArrayD, ArrayView2};
+use ndarray::{Array2, ArrayD, ArrayView1, ArrayView2};
 
 use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
 
@@ -28,6 +28,19 @@ impl GlobalAvgPool {
     }
 }
 
+impl GlobalAvgPool {
+    /// Channel c's mean over its positions in one sample's row (the full pass and the
+    /// channel-wise update sum in the same order).
+    fn mean<S: LayerScalar>(&self, row: ArrayView1<S>, c: usize) -> S {
+        let p = self.positions;
+        row.iter()
+            .skip(c * p)
+            .take(p)
+            .fold(S::zero(), |acc, &v| acc + v)
+            * (S::one() / S::from_f64(p as f64))
+    }
+}
+
 impl Kind for GlobalAvgPool {
     fn kind(&self) -> &'static str {
         "global-avg-pool"
@@ -44,18 +57,8 @@ impl Kind for GlobalAvgPool {
 
 impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
     fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
-        let (p, scale) = (
-            self.positions,
-            S::one() / S::from_f64(self.positions as f64),
-        );
-        let out = Array2::from_shape_fn((x.nrows(), self.channels), |(i, c)| {
-            x.row(i)
-                .iter()
-                .skip(c * p)
-                .take(p)
-                .fold(S::zero(), |acc, &v| acc + v)
-                * scale
-        });
+        let out =
+            Array2::from_shape_fn((x.nrows(), self.channels), |(i, c)| self.mean(x.row(i), c));
         Step::plain(out)
     }
 
@@ -67,21 +70,10 @@ impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
         base: &Step<S>,
         changed: &[usize],
     ) -> Option<Step<S>> {
-        let (p, scale) = (
-            self.positions,
-            S::one() / S::from_f64(self.positions as f64),
-        );
         let mut out = base.out.clone();
         for (i, mut row) in out.outer_iter_mut().enumerate() {
             for &c in changed {
-                // The forward pass's sum, in its order.
-                row[c] = x
-                    .row(i)
-                    .iter()
-                    .skip(c * p)
-                    .take(p)
-                    .fold(S::zero(), |acc, &v| acc + v)
-                    * scale;
+                row[c] = self.mean(x.row(i), c);
             }
         }
         Some(Step::plain(out))

@@ -113,6 +113,21 @@ impl Norm {
         })
     }
 
+    /// Group g's mean (0 without centring), biased variance and 1/√(σ² + ε), over the `n`
+    /// values of a standard-layout batch `xs` of `m` samples.
+    fn statistics<S: LayerScalar>(&self, xs: &[S], g: usize, m: usize, n: S) -> (S, S, S) {
+        let mean = if self.centre {
+            self.group(g, m).fold(S::zero(), |acc, k| acc + xs[k]) / n
+        } else {
+            S::zero()
+        };
+        let v = self.group(g, m).fold(S::zero(), |acc, k| {
+            let d = xs[k] - mean;
+            acc + d * d
+        }) / n;
+        (mean, v, S::one() / (v + S::from_f64(self.epsilon)).sqrt())
+    }
+
     pub fn forward<S: LayerScalar>(&self, params: &[ArrayD<S>], x: ArrayView2<S>) -> Step<S> {
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("standard layout");
@@ -127,16 +142,7 @@ impl Norm {
         let mut inv = Array1::zeros(groups);
         let mut var = Array1::zeros(groups);
         for g in 0..groups {
-            let mean = if self.centre {
-                self.group(g, m).fold(S::zero(), |acc, k| acc + xs[k]) / n
-            } else {
-                S::zero()
-            };
-            let v = self.group(g, m).fold(S::zero(), |acc, k| {
-                let d = xs[k] - mean;
-                acc + d * d
-            }) / n;
-            let r = S::one() / (v + S::from_f64(self.epsilon)).sqrt();
+            let (mean, v, r) = self.statistics(xs, g, m, n);
             for k in self.group(g, m) {
                 xhat[k] = (xs[k] - mean) * r;
             }
@@ -224,12 +230,7 @@ impl Norm {
         let values = out.as_slice_mut()?;
         for &a in changed {
             // The forward pass's arithmetic for group a (one feature over the batch).
-            let mean = self.group(a, m).fold(S::zero(), |acc, k| acc + xs[k]) / n;
-            let v = self.group(a, m).fold(S::zero(), |acc, k| {
-                let d = xs[k] - mean;
-                acc + d * d
-            }) / n;
-            let r = S::one() / (v + S::from_f64(self.epsilon)).sqrt();
+            let (mean, _, r) = self.statistics(xs, a, m, n);
             let (scale, shift) = (params[0][a], self.shift.then(|| params[1][a]));
             for k in self.group(a, m) {
                 values[k] = scale * ((xs[k] - mean) * r);
