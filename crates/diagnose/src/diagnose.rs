@@ -38,6 +38,10 @@ pub struct Diagnosis {
     pub first_wrong_layer: Option<usize>,
 }
 
+/// The share of the disagreement between the outside tensor and the reference a hypothesis may
+/// leave unexplained and still be scored: it must account for nine tenths of it.
+const UNEXPLAINED_SHARE: f64 = 0.1;
+
 /// A hypothesis scored on one tensor: code, label, residual, fitted factor, layer.
 type Scored = (&'static str, String, f64, Option<f64>, Option<usize>);
 
@@ -53,9 +57,12 @@ fn distance(a: &[f64], b: &[f64]) -> f64 {
 /// catalogue; a hypothesis explains a tensor when its residual is at most that tensor's entry of
 /// `tolerances`.
 ///
-/// A hypothesis that leaves a tensor as the reference has it (bitwise, or within the tolerance:
-/// the L2 term's reach at λ = 0, a swap of two other layers, a slope left out above the layer)
-/// never names that tensor: it cannot be what made it wrong. Of the hypotheses that reproduce a
+/// A hypothesis that does not move the reference most of the way to the outside tensor (one that
+/// leaves it as the reference has it: the L2 term's reach at λ = 0, a swap of two other layers, a
+/// slope left out above the layer) never names that tensor: it cannot be what made it wrong. The
+/// test is relative to the disagreement, not to the tensor's size, so a mistake whose effect on a
+/// far tensor is itself near the agreement tolerance (a norm's ε misplaced, seen three layers
+/// down) still names it when the hypothesis reproduces that effect. Of the hypotheses that reproduce a
 /// tensor the smallest residual is named, the catalogue's order breaking ties, with a fitted
 /// `constant-factor` only when no other code reproduces it.
 pub fn diagnose(
@@ -82,7 +89,10 @@ pub fn diagnose(
                     if v.shape != u.shape || v.data.iter().any(|x| !x.is_finite()) {
                         continue;
                     }
-                    if v.shape == r.shape && distance(&v.data, &r.data) <= tolerance * r.norm() {
+                    if v.shape == r.shape
+                        && distance(&u.data, &v.data)
+                            > UNEXPLAINED_SHARE * distance(&u.data, &r.data)
+                    {
                         continue;
                     }
                     // Relative to the larger of the hypothesis and the reference: a hypothesis that

@@ -10,8 +10,7 @@ use plumb_fd::relative_floor;
 pub struct Tolerances {
     /// The largest relative error (with the floor) that counts as agreement.
     pub agreement: f64,
-    /// The largest residual at which a hypothesis counts as reproducing a tensor, and within which
-    /// a hypothesis counts as leaving a tensor unchanged.
+    /// The largest residual at which a hypothesis counts as reproducing a tensor.
     pub residual: f64,
     /// The machine epsilon of the precision judged (for the floor of `plumb_fd::relative_floor`).
     pub epsilon: f64,
