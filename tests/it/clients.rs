@@ -1067,3 +1067,47 @@ fn probe_names_each_planted_attention_mistake() {
         assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
     }
 }
+
+/// The examples computing in float32 end to end (`--dtype f32`, said in the hello): the right
+/// programs pass and every plant of the sequence kinds is named at the tensors it reaches, as in
+/// float64 — the diagnosis judging at float32's tolerances. The CNN's self-check in float32 on
+/// these weights leaves most coordinates unsettled (round-off through two batch norms); its verdict
+/// rests on the comparison with the reference, which its loss and every tensor pass.
+#[test]
+fn float32_programs_pass_and_their_plants_are_named() {
+    let thin = [&PLANTED[..], &["--batch", "8"]].concat();
+    let f32 = |script: &'static str, plant: Option<&'static str>| {
+        let mut args = vec!["--dtype", "f32"];
+        args.extend(plant.map(|p| ["--plant", p]).into_iter().flatten());
+        python3(script, &args)
+    };
+    let cnn = probe("examples/pump-cnn.toml", "3", &[], &f32(CNN, None));
+    cnn.assert_code(0);
+    let j = cnn.json();
+    assert_eq!(j["program"]["dtype"], "f32");
+    assert_eq!(j["loss"]["matches"], true);
+    for (net, script) in [
+        ("examples/pump-lstm.toml", LSTM),
+        ("examples/pump-attention.toml", ATTENTION),
+    ] {
+        probe(net, "3", &thin, &f32(script, None)).assert_code(0);
+    }
+    for mistake in LSTM_MISTAKES {
+        let run = probe(
+            "examples/pump-lstm.toml",
+            "3",
+            &thin,
+            &f32(LSTM, Some(mistake)),
+        );
+        assert_named_where_reached(&run, mistake, |t| t.starts_with("lstm."));
+    }
+    for (mistake, reach) in attention_plants() {
+        let run = probe(
+            "examples/pump-attention.toml",
+            "3",
+            &thin,
+            &f32(ATTENTION, Some(mistake)),
+        );
+        assert_named_where_reached(&run, mistake, |t| reach.contains(&t));
+    }
+}

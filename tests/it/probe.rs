@@ -150,19 +150,18 @@ fn a_correct_program_passes_in_f64_f32_and_with_relu() {
         let prog: Vec<&str> = prog.iter().map(String::as_str).collect();
         let run = probe(&[], &prog);
         let j = run.json();
-        // On the demo's trained weights f32 round-off leaves much of the self-check unsettled:
-        // an honest probe says inconclusive (exit 1) and what would settle it, never pass or fail.
-        if extra.is_empty() {
-            run.assert_code(0);
-        } else {
-            assert_eq!(j["verdict"], "inconclusive", "{:#}", j["findings"]);
-            run.assert_code(1);
+        run.assert_code(0);
+        // On the demo's trained weights f32 round-off leaves much of the self-check unsettled; it
+        // says so and what would settle it, and the verdict rests on the comparison with the
+        // reference, which the program's loss and gradient pass.
+        if !extra.is_empty() {
+            assert_eq!(j["self_check"]["conclusive"], false);
             let f = j["findings"].as_array().unwrap();
             let why = f.iter().find(|f| f["code"] == "inconclusive").unwrap();
-            assert!(
-                why["message"].as_str().unwrap().contains("float64"),
-                "{why}"
-            );
+            let text = why["message"].as_str().unwrap();
+            assert!(text.contains("float64"), "{why}");
+            assert!(text.contains("rests on the comparison with the reference"));
+            assert_eq!(why["severity"], "note");
         }
         assert_eq!(
             j["program"]["dtype"],
