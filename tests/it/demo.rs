@@ -194,7 +194,8 @@ fn the_demo_is_reproducible_per_seed() {
 }
 
 // Every seed picks one conv bug for (b) and one recurrent bug for (c); over four seeds each of the
-// four is planted, and the diagnosis names it on every wrong tensor (the demo passes only then).
+// four is planted, and the diagnosis names it on every wrong tensor (the demo passes only then),
+// in the reference engine's planted gradient and in the NumPy example's, probed.
 #[test]
 fn each_scenario_names_its_planted_bug() {
     for seed in 0..4u64 {
@@ -212,6 +213,14 @@ fn each_scenario_names_its_planted_bug() {
                     .all(|c| c == code),
                 "seed {seed}, {key}: {}",
                 s["planted"]["compare"]
+            );
+            // The same bug planted in the hand-written NumPy example, probed: named likewise.
+            let probed = &s["probe"];
+            assert_eq!(probed["verdict"], "fail", "seed {seed}, {key}");
+            let named = diagnosed(probed);
+            assert!(
+                !named.is_empty() && named.iter().all(|c| c == code),
+                "seed {seed}, {key}: {named:?}"
             );
             assert!(s["scenario"].as_str().unwrap().contains("invented"));
             assert_eq!(s["check"]["verdict"], "pass", "seed {seed}, {key}");

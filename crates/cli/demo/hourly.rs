@@ -100,5 +100,7 @@ pub fn scenario(seed: u64) -> Scenario {
         seed: seed ^ 0x9a3b_0013,
         steps: 150,
         rate: 0.5,
+        example: "examples/python/lstm_numpy.py",
+        plant: |b| b.code.to_string(),
     }
 }

@@ -17,13 +17,15 @@ use plumb_engine::{Batch, Init, Rng};
 use plumb_fd::report::{GraphCheckReport, GraphLoaded, graph_check_report};
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{AxisOrder, FileFormat, GraphDescription, Tensor, TensorFile};
+use plumb_probe::ProbeReport;
 use plumb_report::{Block, DataSource, Verdict, WeightsSource};
 use serde::Serialize;
 
 use crate::commands::grad::GradReport;
 use crate::commands::shapes::{self, ShapesReport};
-use crate::commands::{check, compare};
+use crate::commands::{check, compare, probe};
 use crate::output::SCHEMA_VERSION;
+use crate::output::Settings;
 
 /// A catalogued mistake the demo plants in one layer of its "hand-written" gradient.
 #[derive(Clone, Copy)]
@@ -48,6 +50,10 @@ pub struct Scenario {
     /// Gradient-descent steps and their rate.
     pub steps: usize,
     pub rate: f64,
+    /// The hand-written NumPy program of this network in examples/, and the `--plant` argument
+    /// that plants a bug in it.
+    pub example: &'static str,
+    pub plant: fn(&Bug) -> String,
 }
 
 /// What the demo found on a scenario, and the files that replay it.
@@ -70,6 +76,11 @@ pub struct Outcome {
     pub compare: CompareReport,
     /// The release audit, for the scenarios that show it.
     pub audit: Option<Audit>,
+    pub example: &'static str,
+    /// The `--plant` argument of the example for the bug.
+    pub plant: String,
+    /// The example probed with the bug planted, when it could be run.
+    pub probe: Option<ProbeReport>,
 }
 
 /// The planted bug of a scenario's "hand-written" gradient and the `compare` report on it.
@@ -93,6 +104,9 @@ pub struct ScenarioReport<'a> {
     pub planted: PlantedGraphReport<'a>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub audit: Option<&'a Audit>,
+    /// The NumPy example probed with the same bug (null without python3 and NumPy or the
+    /// checkout).
+    pub probe: Option<&'a ProbeReport>,
 }
 
 impl Scenario {
@@ -123,6 +137,7 @@ impl Scenario {
         };
         let data = data_tensors(&desc, b);
         let bug = self.bug;
+        let plant = (self.plant)(&bug);
         let planted = graph.plant(bug.layer, bug.code)?;
         let wrong = graph.gradient(&params, b.x.view(), b.y.view(), Some(&planted));
         let planted = TensorFile {
@@ -185,6 +200,9 @@ impl Scenario {
             check,
             compare,
             audit,
+            example: self.example,
+            plant,
+            probe: None,
         })
     }
 }
@@ -210,6 +228,17 @@ fn data_tensors(desc: &GraphDescription, b: &Batch) -> Vec<Tensor> {
 }
 
 impl Outcome {
+    /// Probes the scenario's NumPy example with the bug planted, as `plumb probe` would.
+    pub fn probe_example(&mut self, settings: &Settings) {
+        self.probe = super::probe_example(
+            plumb_probe::Source::Graph(&self.loaded),
+            self.example,
+            &self.plant,
+            true,
+            settings,
+        );
+    }
+
     /// The wrong tensors of the planted gradient, each explained by the planted code.
     pub fn named(&self) -> bool {
         let wrong: Vec<_> = self
@@ -265,6 +294,7 @@ impl Outcome {
                 compare: &self.compare,
             },
             audit: self.audit.as_ref(),
+            probe: self.probe.as_ref(),
         }
     }
 
@@ -310,6 +340,32 @@ impl Outcome {
         )));
         out.push(Block::Table(compare::tensor_table(&self.compare.tensors)));
         out.push(Block::Findings(self.compare.findings.clone()));
+        match &self.probe {
+            Some(r) => {
+                out.push(Block::Text(format!(
+                    "The same bug planted in a real program — {} --plant {}, a hand-written NumPy \
+                     backward pass talking to plumb over its wire protocol — and what `plumb probe` \
+                     finds: its gradient against differences of its own loss (at {} coordinates \
+                     and one direction per tensor), its loss and its whole gradient against the \
+                     reference:",
+                    self.example,
+                    self.plant,
+                    super::THIN_SAMPLE
+                )));
+                let config = desc.graph.loss_config();
+                let doc = probe::document_with(r, Some((config.loss.to_string(), config.l2 > 0.0)));
+                out.extend(
+                    doc.blocks
+                        .into_iter()
+                        .filter(|b| matches!(b, Block::Table(_))),
+                );
+            }
+            None => out.push(Block::Text(format!(
+                "(Run the demo from a checkout of the repository with python3 and NumPy installed \
+                 to see `plumb probe` drive {} with the same bug planted.)",
+                self.example
+            ))),
+        }
         if let Some(a) = &self.audit {
             out.push(Block::Text(
                 "`plumb audit` on the trained weights: values, duplicate units, health on the \

@@ -70,29 +70,45 @@ fn plant_switch(code: &str) -> &'static str {
     }
 }
 
-/// Probes the NumPy example with the demo's bug planted, when it is there to run (from a checkout
-/// of the repository, with python3 and NumPy); `None` otherwise.
-fn probe_example(loaded: &Loaded, code: &str, settings: &Settings) -> Option<probe::ProbeReport> {
-    let script = Path::new("examples/python/pump_numpy.py");
+/// Probes a NumPy example (`script`, run with `--plant plant`) on `src`, when it is there to run
+/// (in the working directory or the checkout this binary was built from, with python3 and NumPy);
+/// `None` otherwise. `thin` checks
+/// the program's own loss at 20 coordinates and one direction per tensor (each loss is a Python
+/// loop over a CNN's windows or an LSTM's hours); the comparison with the reference is whole
+/// either way.
+pub(crate) fn probe_example(
+    src: probe::Source<'_>,
+    script: &str,
+    plant: &str,
+    thin: bool,
+    settings: &Settings,
+) -> Option<probe::ProbeReport> {
     let numpy = std::process::Command::new("python3")
         .args(["-c", "import numpy"])
         .stderr(std::process::Stdio::null())
         .status()
         .is_ok_and(|s| s.success());
-    if !script.exists() || !numpy {
+    // From the checkout's root, or from anywhere on the machine that built this binary.
+    let found = [
+        PathBuf::from(script),
+        Path::new(env!("CARGO_MANIFEST_DIR")).join(script),
+    ]
+    .into_iter()
+    .find(|p| p.is_file());
+    let (Some(script), true) = (found, numpy) else {
         return None;
-    }
+    };
     let opts = probe::ProbeOptions {
         command: vec![
             "python3".into(),
             script.display().to_string(),
             "--plant".into(),
-            plant_switch(code).into(),
+            plant.into(),
         ],
         method: Method::Central,
         step: None,
-        sample: None,
-        directions: 4,
+        sample: thin.then_some(plumb_fd::Sample::Total(THIN_SAMPLE)),
+        directions: if thin { 1 } else { 4 },
         timeout: 60.0,
         blackbox: false,
         weights: None,
@@ -101,8 +117,11 @@ fn probe_example(loaded: &Loaded, code: &str, settings: &Settings) -> Option<pro
         quiet: true,
         ..settings.clone()
     };
-    probe::compute(probe::Source::Described(loaded), &opts, &quiet).ok()
+    probe::compute(src, &opts, &quiet).ok()
 }
+
+/// Coordinates a thinned probe checks against the program's own loss.
+pub(crate) const THIN_SAMPLE: usize = 20;
 
 /// The demo's bugs, one picked by the seed: (code, where, the backward pass that makes it).
 fn planted_bug(seed: u64) -> (&'static str, &'static str, Variant) {
@@ -249,7 +268,13 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             Tolerances::for_precision(false)
         });
 
-    let probed = probe_example(&loaded, bug_code, settings);
+    let probed = probe_example(
+        probe::Source::Described(&loaded),
+        "examples/python/pump_numpy.py",
+        plant_switch(bug_code),
+        false,
+        settings,
+    );
     let shipped = plumb_audit::audit(
         desc,
         &good,
@@ -260,8 +285,10 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     );
 
     // Scenarios (b) and (c), on the layer graph; only (c) shows the release audit.
-    let vib = vibration::scenario(settings.seed).run(false, settings.seed)?;
-    let hours = hourly::scenario(settings.seed).run(true, settings.seed)?;
+    let mut vib = vibration::scenario(settings.seed).run(false, settings.seed)?;
+    let mut hours = hourly::scenario(settings.seed).run(true, settings.seed)?;
+    vib.probe_example(settings);
+    hours.probe_example(settings);
 
     let written = match &args.write {
         Some(dir) => write_files(dir, settings.force, &pump, &good, &planted, &[&vib, &hours])?,

@@ -101,5 +101,7 @@ pub fn scenario(seed: u64) -> Scenario {
         seed: seed ^ 0x9a3b_0012,
         steps: 150,
         rate: 0.2,
+        example: "examples/python/cnn_numpy.py",
+        plant: |b| format!("{}:{}", b.code, b.layer),
     }
 }
