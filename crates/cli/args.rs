@@ -108,7 +108,7 @@ pub struct ShapesArgs {
 }
 
 /// Where the weights and data come from; shared by the commands that run the engine.
-#[derive(Debug, Args)]
+#[derive(Clone, Debug, Args)]
 pub struct Inputs {
     /// The network description (TOML).
     #[arg(value_name = "NET")]

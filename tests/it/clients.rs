@@ -764,6 +764,25 @@ fn the_numpy_cnn_passes_and_fails_as_a_black_box() {
     );
 }
 
+/// A black box sized by a description of the layer graph: the description draws the batch (8
+/// samples of [1, 64] here) and nothing else; the program's tensors and its own loss are what is
+/// checked, both directions.
+#[test]
+fn a_black_box_takes_its_batch_from_a_layer_graph_description() {
+    let sized = ["examples/pump-cnn.toml", "--batch", "8"];
+    let right = probe("--blackbox", "1", &sized, &python3(CNN, &[]));
+    right.assert_code(0);
+    let j = right.json();
+    assert_eq!(j["blackbox"], true);
+    assert_eq!(j["data"]["samples"], 8);
+    assert_eq!(j["description"], "examples/pump-cnn.toml");
+    let plant = python3(CNN, &["--plant", "kernel-flipped:conv2"]);
+    let wrong = probe("--blackbox", "1", &[&PLANTED[..], &sized].concat(), &plant);
+    wrong.assert_code(1);
+    let named = self_inconsistent(&wrong.json()).len();
+    assert!(named > 0, "{}", wrong.stdout);
+}
+
 /// `plumb probe` on the CNN, both directions: the right program passes, each plant is named at
 /// the tensors it reaches.
 #[test]

@@ -11,15 +11,18 @@ use plumb_report::{Block, Case, Cell, Document, Severity, Table, Tone, Verdict};
 
 pub use plumb_probe::{ProbeOptions, ProbeReport, Source};
 
+use crate::args::Inputs;
 use crate::args::ProbeArgs;
 use crate::commands::check::{method, step};
 use crate::commands::compare::{
     certification_text, error_plot, gradient_cases, loss_case, tensor_table,
 };
-use crate::inputs::{AnyLoaded, Loaded, WeightsSource, load_any, load_batch};
+use crate::inputs::{AnyLoaded, Loaded, WeightsSource, load_any};
 use crate::output::{
     Settings, count_cell, directions_cell, graph_network_id, network_id, num, verdict_cell,
 };
+use plumb_engine::Batch;
+use plumb_report::DataSource;
 
 pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
     let method = method(args.method.into());
@@ -81,18 +84,13 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         (inputs, true) => {
             // A black box: the tensors are the program's; a description, if given, only sizes
             // the data. The weights are read by name (never fitted to a description).
-            let desc = args
-                .net
-                .as_deref()
-                .map(plumb_formats::Description::read)
-                .transpose()?;
             let seed = settings.seed;
             let data = args.data.clone();
             let batch_size = args.batch;
-            let batch = move |hello: &plumb_probe::Hello| match (&desc, &inputs) {
-                (Some(d), Some(i)) => load_batch(i, d, seed, 32)
+            let batch = move |hello: &plumb_probe::Hello| match &inputs {
+                Some(i) => described_batch(i, seed)
                     .map_err(|e| plumb_probe::RunError::Input(format!("{e:#}"))),
-                _ => plumb_probe::blackbox_data(
+                None => plumb_probe::blackbox_data(
                     hello,
                     data.as_deref(),
                     batch_size.unwrap_or(32),
@@ -149,6 +147,20 @@ pub fn compute(src: Source<'_>, opts: &ProbeOptions, settings: &Settings) -> Res
     let note = |text: &str| settings.note(text);
     let progress: Option<&dyn Fn(&str)> = if settings.quiet { None } else { Some(&note) };
     Ok(plumb_probe::probe(src, opts, settings.seed, progress)?)
+}
+
+/// The batch a description of any kind sizes for a black box: its data file or a seeded synthetic
+/// batch (x as (samples, values), a layer graph's input in channels-first order). The weights are
+/// the program's, read by name, so the description's are not loaded.
+fn described_batch(inputs: &Inputs, seed: u64) -> Result<(Batch, DataSource)> {
+    let data_only = Inputs {
+        weights: None,
+        ..inputs.clone()
+    };
+    Ok(match load_any(&data_only, seed)? {
+        AnyLoaded::Dense(l, _) => (l.batch, l.data_source),
+        AnyLoaded::Graph(l) => (l.batch, l.data_source),
+    })
 }
 
 /// The probe's report as a document, for a dense description (`loaded`) or none.
