@@ -313,6 +313,7 @@ struct DemoScenario {
     check: serde_json::Value,
     planted: DemoPlanted,
     audit: Option<serde_json::Value>,
+    probe: Option<serde_json::Value>,
 }
 
 #[derive(Deserialize)]
@@ -406,6 +407,12 @@ fn demo_report_schema() {
         assert_eq!(s.verdict, "pass");
         assert!(s.scenario.contains("invented"));
         assert_eq!(s.planted.compare["verdict"], "fail");
+        // The NumPy example probed with the same bug: a `probe` report.
+        let probe = s
+            .probe
+            .as_ref()
+            .expect("python3 with NumPy runs the examples");
+        assert_eq!(probe["command"], "probe");
     }
     assert!(r.vibration.audit.is_none() && r.hourly.audit.is_some());
 }
