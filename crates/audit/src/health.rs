@@ -10,8 +10,6 @@ use plumb_engine::{Activation, Network, Scalar, Trace};
 use serde::Serialize;
 
 /// Whether a (pre-activation, activation) pair shows the measured condition.
-type Test = Box<dyn Fn(f64, f64) -> bool>;
-
 /// Bins of the activation histogram.
 pub const BINS: usize = 16;
 
@@ -88,11 +86,42 @@ impl Units {
             name: "unit",
         }
     }
+}
 
-    /// The unit of flat index `k` within a sample.
-    fn unit_of(&self, k: usize) -> usize {
-        (k / self.inner) % self.count
+/// Per unit, how many of its values in `v` (m × size) satisfy `test`: each sample's values walked
+/// in runs of `inner` that belong to one unit, so no index is divided.
+fn count_where<S: Scalar>(
+    v: ArrayView2<S>,
+    units: Units,
+    test: impl Fn(f64) -> bool,
+) -> Vec<usize> {
+    let mut counts = vec![0usize; units.count];
+    if units.inner == 0 || units.count == 0 {
+        return counts;
     }
+    fn tally(
+        mut values: impl Iterator<Item = f64>,
+        units: Units,
+        counts: &mut [usize],
+        test: &impl Fn(f64) -> bool,
+    ) {
+        for _ in 0..units.outer {
+            for c in counts.iter_mut() {
+                *c += values
+                    .by_ref()
+                    .take(units.inner)
+                    .filter(|&x| test(x))
+                    .count();
+            }
+        }
+    }
+    for row in v.rows() {
+        match row.as_slice() {
+            Some(r) => tally(r.iter().map(|x| x.re()), units, &mut counts, &test),
+            None => tally(row.iter().map(|x| x.re()), units, &mut counts, &test),
+        }
+    }
+    counts
 }
 
 /// One layer's health from its values before (`z`) and after (`a`) its activation: per unit, the
@@ -108,32 +137,21 @@ pub fn unit_health<S: Scalar>(
     saturated_fraction: f64,
 ) -> LayerHealth {
     let per_unit = (z.nrows() * units.outer * units.inner) as f64;
-    let (measure, test): (Option<&'static str>, Test) = match act {
-        Activation::Relu => (Some("inactive"), Box::new(|z, _| z <= 0.0)),
+    let (measure, counts) = match act {
+        Activation::Relu => (Some("inactive"), count_where(z, units, |z| z <= 0.0)),
         Activation::LeakyRelu { .. } | Activation::Elu { .. } => {
-            (Some("negative"), Box::new(|z, _| z <= 0.0))
+            (Some("negative"), count_where(z, units, |z| z <= 0.0))
         }
         Activation::Sigmoid => (
             Some("saturated"),
-            Box::new(move |_, a| a < saturation || a > 1.0 - saturation),
+            count_where(a, units, |a| a < saturation || a > 1.0 - saturation),
         ),
         Activation::Tanh => (
             Some("saturated"),
-            Box::new(move |_, a: f64| a.abs() > 1.0 - saturation),
+            count_where(a, units, |a| a.abs() > 1.0 - saturation),
         ),
-        _ => (None, Box::new(|_, _| false)),
+        _ => (None, vec![0; units.count]),
     };
-    let mut counts = vec![0usize; units.count];
-    if measure.is_some() {
-        for (zr, ar) in z.rows().into_iter().zip(a.rows()) {
-            let size = units.outer * units.count * units.inner;
-            for (k, (zv, av)) in zr.iter().zip(ar.iter()).take(size).enumerate() {
-                if test(zv.re(), av.re()) {
-                    counts[units.unit_of(k)] += 1;
-                }
-            }
-        }
-    }
     let fractions: Vec<f64> = counts.iter().map(|&c| c as f64 / per_unit).collect();
     let flagged = fractions
         .iter()
@@ -160,7 +178,8 @@ pub fn unit_health<S: Scalar>(
     };
     let mut histogram = vec![0; BINS];
     for v in a.iter().map(|v| v.re()) {
-        let t = ((v - range.0) / (range.1 - range.0) * BINS as f64).floor();
+        let t = (v - range.0) / (range.1 - range.0) * BINS as f64;
+        // Truncation is the floor on the bins (t ≥ 0); below 0 goes to the first bin.
         if t.is_finite() {
             histogram[(t.max(0.0) as usize).min(BINS - 1)] += 1;
         }
