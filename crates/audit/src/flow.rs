@@ -1,5 +1,5 @@
 //! Signal and gradient flow on the probe batch: how spread each layer's activations are, how large
-//! its gradient is, and the largest singular value of its weight matrix (by power iteration), so
+//! its gradient is, and the largest singular value of its weight matrix (by Lanczos bidiagonalisation), so
 //! that a gradient that shrinks or grows by orders of magnitude across the layers is seen.
 
 use ndarray::{ArrayView2, s};
