@@ -49,10 +49,10 @@ pub fn layer_flow<S: Scalar>(
         .collect()
 }
 
-/// The relative change of the estimate between two steps at which the bidiagonalisation stops.
-/// The figure is shown to four significant digits; the estimates only grow towards σ₁ and
-/// converge faster than geometrically, so two steps that agree to 10⁻¹⁰ leave the estimate
-/// short of its limit by far less than the digit shown.
+/// The residual, relative to the estimate, at which the bidiagonalisation stops: a singular value
+/// of W then lies within 10⁻¹⁰ of the estimate (shown to four digits). The change between two
+/// steps is no such bound: near a cluster of singular values the estimate can stall for a few
+/// steps and then rise again.
 const SIGMA_TOLERANCE: f64 = 1e-10;
 
 /// The most steps the bidiagonalisation takes: the matrix's smaller side, or this.
@@ -69,7 +69,13 @@ pub fn sigma_max(w: ArrayView2<f64>, rng: &mut Rng) -> f64 {
     if scale == 0.0 {
         return 0.0;
     }
-    let w = w.mapv(|x| x / scale);
+    // Run from the smaller side (Wᵀ has W's singular values): the Krylov space then lies in the
+    // row space, and after min(m, n) steps it is the whole of it.
+    let w = if w.nrows() < w.ncols() {
+        w.t().as_standard_layout().mapv(|x| x / scale)
+    } else {
+        w.mapv(|x| x / scale)
+    };
     let (m, n) = w.dim();
     let steps = m.min(n).min(SIGMA_STEPS);
     let mut us: Vec<Vec<f64>> = Vec::with_capacity(steps);
@@ -94,7 +100,9 @@ pub fn sigma_max(w: ArrayView2<f64>, rng: &mut Rng) -> f64 {
         vs.push(std::mem::take(&mut v));
         alpha.push(a);
         if a == 0.0 {
-            break;
+            // W v lies in the span of the earlier u: the space closed, and Bₖ (with this zero
+            // on its diagonal) holds W's values.
+            return largest_singular_value(&alpha, &beta).0 * scale;
         }
         // v = Wᵀ u − α v₋, as a sum of rows.
         let mut next = vec![0.0; n];
@@ -107,17 +115,23 @@ pub fn sigma_max(w: ArrayView2<f64>, rng: &mut Rng) -> f64 {
         us.push(u);
         reorthogonalise(&mut next, &vs);
         let b = normalise(&mut next);
-        let estimate = largest_singular_value(&alpha, &beta);
-        let settled = (estimate - sigma).abs() <= SIGMA_TOLERANCE * estimate;
-        sigma = estimate;
+        // With Bₖ's top singular triplet (θ, p, q), W Vₖq = θ Uₖp exactly and Wᵀ Uₖp = θ Vₖq
+        // + β αₖ qₖ/θ · v: some singular value of W lies within that residual of θ, and θ ≤ σ₁.
+        let (theta, q_last) = largest_singular_value(&alpha, &beta);
+        sigma = theta;
+        let residual = if theta > 0.0 {
+            b * a * q_last / theta
+        } else {
+            0.0
+        };
         // β = 0: the Krylov space holds an invariant subspace, and Bₖ's values are W's.
-        if settled || b == 0.0 {
-            break;
+        if residual <= SIGMA_TOLERANCE * theta || b == 0.0 {
+            return sigma * scale;
         }
         beta.push(b);
         v = next;
     }
-    largest_singular_value(&alpha, &beta) * scale
+    sigma * scale
 }
 
 /// Σ row·v, in four running sums (so that the compiler can keep them in vector registers).
@@ -164,10 +178,11 @@ fn reorthogonalise(x: &mut [f64], basis: &[Vec<f64>]) {
 }
 
 /// The largest singular value of the upper bidiagonal B with `alpha` on its diagonal and `beta`
-/// above it (`beta` as long as `alpha` or one shorter): the square root of the largest eigenvalue
-/// of the tridiagonal BᵀB, by bisection on Sturm counts (the number of eigenvalues below x is the
-/// number of negative pivots of BᵀB − x).
-fn largest_singular_value(alpha: &[f64], beta: &[f64]) -> f64 {
+/// above it (`beta` as long as `alpha` or one shorter), and the last entry (in magnitude) of its
+/// right singular vector: the square root of the largest eigenvalue of the tridiagonal BᵀB, by
+/// bisection on Sturm counts (the number of eigenvalues below x is the number of negative pivots
+/// of BᵀB − x), and that eigenvalue's eigenvector by inverse iteration.
+fn largest_singular_value(alpha: &[f64], beta: &[f64]) -> (f64, f64) {
     let k = alpha.len();
     // BᵀB: diagonal αᵢ² + βᵢ² (βᵢ the entry above αᵢ, none for i = 0), off-diagonal αᵢβᵢ₊₁.
     let diag: Vec<f64> = (0..k)
@@ -219,7 +234,43 @@ fn largest_singular_value(alpha: &[f64], beta: &[f64]) -> f64 {
             lo = mid;
         }
     }
-    hi.sqrt()
+    (hi.sqrt(), last_of_eigenvector(&diag, &off, hi))
+}
+
+/// |qₖ| of the unit eigenvector q of the symmetric tridiagonal T (`diag`, `off`) for its
+/// eigenvalue λ, by two steps of inverse iteration: solving (T − μ)x = b with μ a hair above λ
+/// (by the tridiagonal elimination, a zero pivot nudged) multiplies q's share of b by 1/(μ − λ).
+fn last_of_eigenvector(diag: &[f64], off: &[f64], lambda: f64) -> f64 {
+    let k = diag.len();
+    let mu = lambda * (1.0 + 64.0 * f64::EPSILON) + f64::MIN_POSITIVE;
+    let tiny = f64::EPSILON * lambda.abs().max(f64::MIN_POSITIVE);
+    let mut x = vec![1.0; k];
+    for _ in 0..2 {
+        let mut c = vec![0.0; k];
+        let mut y = vec![0.0; k];
+        for i in 0..k {
+            let mut pivot = diag[i] - mu;
+            let mut rhs = x[i];
+            if i > 0 {
+                pivot -= off[i - 1] * c[i - 1];
+                rhs -= off[i - 1] * y[i - 1];
+            }
+            if pivot.abs() < tiny {
+                pivot = tiny;
+            }
+            c[i] = off.get(i).map_or(0.0, |e| e / pivot);
+            y[i] = rhs / pivot;
+        }
+        for i in (0..k.saturating_sub(1)).rev() {
+            y[i] -= c[i] * y[i + 1];
+        }
+        let n = y.iter().map(|v| v * v).sum::<f64>().sqrt();
+        if !(n.is_finite() && n > 0.0) {
+            return 1.0;
+        }
+        x = y.iter().map(|v| v / n).collect();
+    }
+    x[k - 1].abs()
 }
 
 #[cfg(test)]
@@ -253,7 +304,7 @@ mod tests {
                 f64::from(u8::from(i == j)) - 2.0 * h[i] * h[j] / hh
             })
         };
-        for (m, n) in [(120, 80), (80, 120)] {
+        for (m, n) in [(120, 80), (80, 120), (10, 1024)] {
             let k = m.min(n);
             let d = ndarray::Array2::from_shape_fn((m, n), |(i, j)| {
                 if i == j { 1.0 - 1e-4 * i as f64 } else { 0.0 }
