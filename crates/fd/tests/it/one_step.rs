@@ -53,8 +53,8 @@ fn the_bound_decides_with_the_band_met() {
     let f = |d: f64| ((x0 + d).sin(), false);
     let f0 = x0.sin();
     let tolerance = 1e-6;
-    for (h, settles) in [(0.02, false), (1e-4, true)] {
-        let quotient = x0.cos() * (h as f64).sin() / h;
+    for (h, settles) in [(0.02f64, false), (1e-4, true)] {
+        let quotient = x0.cos() * h.sin() / h;
         let scale = tolerance * quotient.abs();
         let target = Target {
             analytic: quotient,
