@@ -144,6 +144,7 @@ struct Coordinate {
     step: f64,
     status: String,
     retried: bool,
+    one_step: bool,
 }
 
 #[derive(Deserialize)]
@@ -164,6 +165,7 @@ struct CheckTensor {
     unreliable: usize,
     unsettled: usize,
     settled_share: f64,
+    one_step: usize,
     directions: usize,
     direction_mismatches: usize,
     verdict: String,
@@ -182,6 +184,7 @@ struct Direction {
     rel_error: f64,
     bound: f64,
     status: String,
+    one_step: bool,
 }
 
 #[derive(Deserialize)]

@@ -180,6 +180,13 @@ fn cnn() {
         plumb * 1e3,
         naive / plumb
     );
+    println!(
+        "cnn  settled at ±h alone (three losses, not four): {} of {} coordinates, {} of {} directions",
+        r.coords.iter().filter(|c| c.one_step).count(),
+        r.coords.len(),
+        r.directions.iter().filter(|d| d.one_step).count(),
+        r.directions.len()
+    );
     let (hinted, layers) = hints_against_layers(&g, &p, &b);
     println!(
         "cnn  every entry at ±h: through the hints {:.2} ms, recomputing from the entry's layer {:.2} ms: {:.2}×",

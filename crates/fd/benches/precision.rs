@@ -9,7 +9,7 @@
 
 use std::time::Instant;
 
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng, Weights};
 use plumb_fd::{CheckConfig, CheckResult, Method, Precision, Sample, Status, check};
 
 fn main() {
@@ -57,12 +57,12 @@ fn main() {
     println!("  f32: {f32_best:.2} s");
     println!("  f32 / f64: {:.2}", f32_best / f64_best);
     for r in &results {
-        println!("  {}: {}", r.precision.name(), summary(r));
+        println!("  {}: {}", r.precision.name(), summary(r, &w));
     }
 }
 
 /// The FNV-1a hash of the loss and every estimate's bits, and the count of each verdict.
-fn summary(r: &CheckResult) -> String {
+fn summary(r: &CheckResult, w: &Weights<f64>) -> String {
     let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
     let mut eat = |x: f64| {
         for byte in x.to_bits().to_le_bytes() {
@@ -94,5 +94,27 @@ fn summary(r: &CheckResult) -> String {
         .iter()
         .map(|s| format!("{} {}", counts[*s as usize], s.name()))
         .collect();
-    format!("results {hash:016x}; {}", counts.join(", "))
+    format!(
+        "results {hash:016x}; {}; steps kept {}",
+        counts.join(", "),
+        steps(r, w)
+    )
+}
+
+/// How many coordinates kept each step of the ladder, as multiples of the default step h: the
+/// same on any tree, so a run before and after a change shows where the estimates moved.
+fn steps(r: &CheckResult, w: &Weights<f64>) -> String {
+    let mut kept = std::collections::BTreeMap::<u64, usize>::new();
+    for c in &r.coords {
+        let h = Method::Central.default_step(*w.get(c.coord), r.precision.epsilon());
+        let h = match r.precision {
+            Precision::F64 => h,
+            Precision::F32 => h as f32 as f64,
+        };
+        *kept.entry((c.step / h).round() as u64).or_default() += 1;
+    }
+    kept.iter()
+        .map(|(k, n)| format!("{k}h {n}"))
+        .collect::<Vec<_>>()
+        .join(", ")
 }

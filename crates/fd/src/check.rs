@@ -11,6 +11,11 @@
 //! (a wrong value could have passed); `match` otherwise. A check whose unsettled and unreliable
 //! items exceed [`UNSETTLED_SHARE`] is inconclusive ([`Settlement`]).
 //!
+//! Central differences at the default step are told what they will be judged against
+//! ([`Rule::target`]): a coordinate or direction whose quotient at ±h already lands within a tenth
+//! of the tolerance of its value, with a bound (round-off at h, and the truncation a third loss at
+//! 2h shows) within half of it, settles there on three losses ([`Target`] says why the third).
+//!
 //! Tolerances [practice, no formal source]: 1e-6 in f64 and 1e-3 in f32, well above the best
 //! accuracy of a central difference in each (ε^(2/3): about 4e-11 and 2e-5, Numerical Recipes
 //! §5.7) and well below the error a mistake in a backward pass makes. The tolerance alone never
@@ -26,7 +31,9 @@ use thiserror::Error;
 
 use crate::evaluate::Base;
 use crate::gross::{gradient_magnitude, loss_magnitude};
-use crate::method::{ComplexScalar, Estimate, complex_estimate, round_to};
+use crate::method::{
+    ComplexScalar, Estimate, ONE_STEP_BAND, ONE_STEP_BOUND, Target, complex_estimate, round_to,
+};
 use crate::{FLOOR, Method, Sample, coverage, relative_floor};
 
 /// The arithmetic the check runs the engine in.
@@ -227,6 +234,8 @@ pub struct CoordCheck<K = Coord> {
     pub status: Status,
     /// Whether a smaller step was needed to step off a kink.
     pub retried: bool,
+    /// Whether central differences settled it at ±h alone ([`Target`]).
+    pub one_step: bool,
 }
 
 /// What a direction spans.
@@ -249,6 +258,8 @@ pub struct DirectionCheck {
     pub bound: f64,
     pub step: f64,
     pub status: Status,
+    /// Whether central differences settled it at ±h alone ([`Target`]).
+    pub one_step: bool,
 }
 
 /// What a check covered.
@@ -552,6 +563,25 @@ impl Rule {
         }
         .judge(a, n, floor, gross, method_error, crossed)
     }
+
+    /// What an estimate of the analytic value `a`, judged with the relative error's `floor`, must
+    /// land within to settle at ±h alone ([`Target`]).
+    pub fn target(&self, a: f64, floor: f64) -> Target {
+        target(self.tolerance, a, floor)
+    }
+}
+
+/// The one rule for [`Target`]: the quotient at ±h within [`ONE_STEP_BAND`] of the tolerance of
+/// the value judged, its bound within [`ONE_STEP_BOUND`] of it. The value judged is taken as
+/// max(|a|, floor) — without the estimate's own |n|, which is not known yet, so the band is never
+/// wider than the verdict's denominator allows.
+fn target(tolerance: f64, a: f64, floor: f64) -> Target {
+    let scale = tolerance * a.abs().max(floor);
+    Target {
+        analytic: a,
+        within: ONE_STEP_BAND * scale,
+        bound: ONE_STEP_BOUND * scale,
+    }
 }
 
 /// The verdict rule (module doc).
@@ -636,32 +666,42 @@ impl Run<'_> {
         let fixed = self.config.step;
         // A fixed step is taken as it is; the default one is retried smaller off a kink.
         let reach = method.reach(self.judge.eps);
-        let estimate = |f: &dyn Fn(f64) -> (f64, bool), default_step: f64| match fixed {
-            Some(h) => (
-                method.estimate_with(f, j0, h, noise, round_to::<S>, 0),
-                false,
-            ),
-            None => {
-                let est = method.estimate_with(f, j0, default_step, noise, round_to::<S>, reach);
-                if est.crossed {
-                    for r in RETRIES {
-                        let e = method.estimate_with(
-                            f,
-                            j0,
-                            default_step * r,
-                            noise,
-                            round_to::<S>,
-                            reach,
-                        );
-                        if !e.crossed {
-                            return (e, true);
+        let estimate =
+            |f: &dyn Fn(f64) -> (f64, bool), default_step: f64, target: Target| match fixed {
+                Some(h) => (
+                    method.estimate_with(f, j0, h, noise, round_to::<S>, 0),
+                    false,
+                ),
+                None => {
+                    let est = method.estimate_toward(
+                        f,
+                        j0,
+                        default_step,
+                        noise,
+                        round_to::<S>,
+                        reach,
+                        Some(target),
+                    );
+                    if est.crossed {
+                        for r in RETRIES {
+                            let e = method.estimate_toward(
+                                f,
+                                j0,
+                                default_step * r,
+                                noise,
+                                round_to::<S>,
+                                reach,
+                                Some(target),
+                            );
+                            if !e.crossed {
+                                return (e, true);
+                            }
                         }
                     }
+                    (est, false)
                 }
-                (est, false)
-            }
-        };
-        let coord_checks = self.each_coord(coords, |c| {
+            };
+        let coord_checks = self.each_coord(coords, |c, target| {
             let f = |d: f64| {
                 let (j, crossed) = base.perturbed(c, S::from_f64(d));
                 (j.re(), crossed)
@@ -669,9 +709,10 @@ impl Run<'_> {
             estimate(
                 &f,
                 method.default_step(*self.weights.get(c), self.judge.eps),
+                target,
             )
         });
-        let direction_checks = self.each_direction(directions, |scope, v| {
+        let direction_checks = self.each_direction(directions, |scope, v, target| {
             let vs: Vec<Array2<S>> = v.layers.iter().map(|m| m.mapv(S::from_f64)).collect();
             let f = |t: f64| {
                 let (j, crossed) = base.along_from(v.first, &vs, S::from_f64(t));
@@ -680,6 +721,7 @@ impl Run<'_> {
             estimate(
                 &f,
                 method.default_step(self.scope_scale(scope), self.judge.eps),
+                target,
             )
             .0
         });
@@ -698,7 +740,7 @@ impl Run<'_> {
         let j0 = base.loss().re();
         let eps = self.judge.eps;
         let fixed = self.config.step;
-        let coord_checks = self.each_coord(coords, |c| {
+        let coord_checks = self.each_coord(coords, |c, _| {
             let g = |h: f64| {
                 let (j, crossed) = base.perturbed(c, C::imaginary(h));
                 (j.im(), crossed)
@@ -707,7 +749,7 @@ impl Run<'_> {
                 .unwrap_or_else(|| Method::ComplexStep.default_step(*self.weights.get(c), eps));
             (complex_estimate(&g, h, eps), false)
         });
-        let direction_checks = self.each_direction(directions, |scope, v| {
+        let direction_checks = self.each_direction(directions, |scope, v, _| {
             let vs: Vec<Array2<C>> = v.layers.iter().map(|m| m.mapv(C::from_f64)).collect();
             let g = |h: f64| {
                 let (j, crossed) = base.along_from(v.first, &vs, C::imaginary(h));
@@ -725,14 +767,14 @@ impl Run<'_> {
     fn each_coord(
         &self,
         coords: &[Coord],
-        estimate: impl Fn(Coord) -> (Estimate, bool) + Sync,
+        estimate: impl Fn(Coord, Target) -> (Estimate, bool) + Sync,
     ) -> Vec<CoordCheck> {
         coords
             .par_iter()
             .map(|&c| {
-                let (est, retried) = estimate(c);
                 let a = *self.analytic.get(c);
                 let floor = self.judge.floors[c.layer];
+                let (est, retried) = estimate(c, target(self.judge.tolerance, a, floor));
                 let gross = *self.gross.get(c);
                 let (abs_error, rel_error, bound, status) =
                     self.judge
@@ -748,6 +790,7 @@ impl Run<'_> {
                     step: est.step,
                     status,
                     retried,
+                    one_step: est.one_step,
                 }
             })
             .collect()
@@ -756,15 +799,15 @@ impl Run<'_> {
     fn each_direction(
         &self,
         directions: &[Direction],
-        estimate: impl Fn(Scope, &Drawn) -> Estimate + Sync,
+        estimate: impl Fn(Scope, &Drawn, Target) -> Estimate + Sync,
     ) -> Vec<DirectionCheck> {
         directions
             .par_iter()
             .map(|d| {
                 let (scope, v) = (&d.scope, &d.vector(self.net));
-                let est = estimate(*scope, v);
                 let a = v.sum_with(self.analytic, |x, y| x * y);
                 let floor = FLOOR * self.span_norm(*scope);
+                let est = estimate(*scope, v, target(self.judge.tolerance, a, floor));
                 let gross = v.sum_with(&self.gross, |x, y| (x * y).abs());
                 let (abs_error, rel_error, bound, status) =
                     self.judge
@@ -779,6 +822,7 @@ impl Run<'_> {
                     bound,
                     step: est.step,
                     status,
+                    one_step: est.one_step,
                 }
             })
             .collect()

@@ -85,6 +85,8 @@ pub struct OutsideDirection {
     pub rel_error: f64,
     pub bound: f64,
     pub status: Status,
+    /// Whether central differences settled it at ±h alone ([`Target`](crate::Target)).
+    pub one_step: bool,
 }
 
 #[derive(Clone, Debug)]
@@ -221,7 +223,14 @@ pub(crate) fn check_tensors<E>(
             }
         }
     }
-    // Round one at the default steps, then the kink retries at smaller ones.
+    // Round one at the default steps, then the kink retries at smaller ones. Central differences
+    // first ask for ±h and 2h alone: a coordinate that settles there ([`Method::settle_one_step`])
+    // costs three losses; the others are asked for the rest of their stencil in a second request.
+    let settle = method == Method::Central && config.step.is_none();
+    let target_of = |i: usize| {
+        let (t, k) = picked[i];
+        rule.target(tensors[t].gradient[k], floors[t])
+    };
     let mut todo: Vec<usize> = if complex {
         Vec::new()
     } else {
@@ -231,50 +240,69 @@ pub(crate) fn check_tensors<E>(
         if todo.is_empty() || (round_no > 0 && config.step.is_some()) {
             break;
         }
-        let mut next = Vec::new();
-        for chunk in todo.chunks((BATCH / method.evaluations().max(1)).max(1)) {
-            let mut changes = Vec::new();
-            let mut slots: Vec<Vec<f64>> = Vec::with_capacity(chunk.len());
-            for &i in chunk {
-                let (t, k) = picked[i];
-                let deltas = method.stencil(step_of(t, k) * factor, reach, round);
-                for &d in &deltas {
-                    changes.push(Change {
-                        perturbation: changes.len() as u32,
-                        tensor: t as u32,
-                        index: k as u64,
-                        delta: d,
-                    });
-                }
-                slots.push(deltas);
-            }
-            let values = losses(changes.len(), &changes)?;
-            let mut at = 0;
-            for (&i, deltas) in chunk.iter().zip(&slots) {
-                let (t, k) = picked[i];
-                let table: HashMap<u64, f64> = deltas
-                    .iter()
-                    .zip(&values[at..at + deltas.len()])
-                    .map(|(d, v)| (d.to_bits(), *v))
-                    .collect();
-                at += deltas.len();
-                let f = |d: f64| {
-                    (
-                        table.get(&d.to_bits()).copied().unwrap_or(f64::NAN),
-                        crossed(t, k, d),
-                    )
-                };
-                let h = step_of(t, k) * factor;
-                let est = method.estimate_with(&f, f0, h, noise, round, reach);
-                if est.crossed && round_no < RETRIES.len() && config.step.is_none() {
-                    next.push(i);
-                    if estimates[i].is_none() {
-                        estimates[i] = Some((est, false));
-                    }
+        let h_of = |i: usize| {
+            let (t, k) = picked[i];
+            step_of(t, k) * factor
+        };
+        let first: Vec<((usize, usize), Vec<f64>)> = todo
+            .iter()
+            .map(|&i| {
+                let steps = if settle {
+                    method.one_step_stencil(h_of(i), round)
                 } else {
+                    method.stencil(h_of(i), reach, round)
+                };
+                (picked[i], steps)
+            })
+            .collect();
+        let per = first.first().map_or(1, |(_, s)| s.len());
+        let mut tables = ask_marked(losses, crossed, &first, per)?;
+        let mut open = Vec::new();
+        for (j, &i) in todo.iter().enumerate() {
+            let f = |d: f64| look_up(&tables[j], d);
+            match settle
+                .then(|| method.settle_one_step(&f, f0, h_of(i), noise, round, target_of(i)))
+                .flatten()
+            {
+                Some(est) => {
                     estimates[i] = Some((est, round_no > 0));
                     tick();
                 }
+                None => open.push(j),
+            }
+        }
+        if settle && !open.is_empty() {
+            let rest: Vec<((usize, usize), Vec<f64>)> = open
+                .iter()
+                .map(|&j| {
+                    let i = todo[j];
+                    let asked = &tables[j];
+                    let steps = method
+                        .stencil(h_of(i), reach, round)
+                        .into_iter()
+                        .filter(|d| !asked.iter().any(|(b, _)| *b == d.to_bits()))
+                        .collect();
+                    (picked[i], steps)
+                })
+                .collect();
+            let more = ask_marked(losses, crossed, &rest, method.evaluations())?;
+            for (&j, m) in open.iter().zip(more) {
+                tables[j].extend(m);
+            }
+        }
+        let mut next = Vec::new();
+        for j in open {
+            let i = todo[j];
+            let f = |d: f64| look_up(&tables[j], d);
+            let est = method.estimate_with(&f, f0, h_of(i), noise, round, reach);
+            if est.crossed && round_no < RETRIES.len() && config.step.is_none() {
+                next.push(i);
+                if estimates[i].is_none() {
+                    estimates[i] = Some((est, false));
+                }
+            } else {
+                estimates[i] = Some((est, round_no > 0));
+                tick();
             }
         }
         todo = next;
@@ -392,6 +420,7 @@ pub(crate) fn check_tensors<E>(
                 step: est.step,
                 status,
                 retried: *retried,
+                one_step: est.one_step,
             }
         })
         .collect();
@@ -411,22 +440,37 @@ pub(crate) fn check_tensors<E>(
             let h0 = config
                 .step
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
-            // The loss along v at the given steps.
-            let mut along = |deltas: &[f64]| -> Result<HashMap<u64, f64>, E> {
+            // The loss along v at the given steps, and whether each step crossed a kink (asked
+            // right after the request: the graph keeps the last request's verdicts).
+            let mut along = |deltas: &[f64]| -> Result<Table, E> {
                 let values = losses(deltas.len(), &changes_along(&v, deltas))?;
                 Ok(deltas
                     .iter()
                     .zip(&values)
-                    .map(|(d, v)| (d.to_bits(), *v))
+                    .map(|(d, value)| (d.to_bits(), (*value, (inside.crossed_along)(&v, *d))))
                     .collect())
             };
-            let estimate_at = |table: &HashMap<u64, f64>, h: f64, reach: u32| {
-                let f = |d: f64| {
-                    let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
-                    (value, (inside.crossed_along)(&v, d))
-                };
+            let estimate_at = |table: &Table, h: f64, reach: u32| {
+                let f = |d: f64| look_up(table, d);
                 method.estimate_with(&f, f0, h, noise, round, reach)
             };
+            let a: f64 = tensors
+                .iter()
+                .zip(&v)
+                .map(|(x, vt)| x.gradient.iter().zip(vt).map(|(g, w)| g * w).sum::<f64>())
+                .sum();
+            let span: f64 = tensors
+                .iter()
+                .enumerate()
+                .filter(|(t, _)| scope.is_none_or(|s| s == *t))
+                .flat_map(|(_, x)| x.gradient.iter())
+                .map(|g| g * g)
+                .sum::<f64>()
+                .sqrt();
+            // The floor of a coordinate of its span, with ‖g‖ over the span for its largest
+            // entry: a direction over a tensor whose gradient is zero by construction (an
+            // attention key bias) is judged against the network's scale, as its coordinates are.
+            let floor = relative_floor(span, scale, config.eps, config.tolerance);
             let mut est = None;
             if complex {
                 let imaginary = imaginary
@@ -442,7 +486,24 @@ pub(crate) fn check_tensors<E>(
                     break;
                 }
                 let h = h0 * factor;
-                let table = along(&method.stencil(h, reach, round))?;
+                // As for coordinates: ±h and 2h first, the rest of the stencil if they do not
+                // settle it.
+                let mut table = Table::new();
+                if settle {
+                    table = along(&method.one_step_stencil(h, round))?;
+                    let f = |d: f64| look_up(&table, d);
+                    let target = rule.target(a, floor);
+                    if let Some(e) = method.settle_one_step(&f, f0, h, noise, round, target) {
+                        est = Some(e);
+                        break;
+                    }
+                }
+                let rest: Vec<f64> = method
+                    .stencil(h, reach, round)
+                    .into_iter()
+                    .filter(|d| !table.iter().any(|(b, _)| *b == d.to_bits()))
+                    .collect();
+                table.extend(along(&rest)?);
                 let e = estimate_at(&table, h, reach);
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
@@ -451,19 +512,6 @@ pub(crate) fn check_tensors<E>(
                 }
             }
             let mut est = est.expect("estimated at least once");
-            let a: f64 = tensors
-                .iter()
-                .zip(&v)
-                .map(|(x, vt)| x.gradient.iter().zip(vt).map(|(g, w)| g * w).sum::<f64>())
-                .sum();
-            let span: f64 = tensors
-                .iter()
-                .enumerate()
-                .filter(|(t, _)| scope.is_none_or(|s| s == *t))
-                .flat_map(|(_, x)| x.gradient.iter())
-                .map(|g| g * g)
-                .sum::<f64>()
-                .sqrt();
             let gross_dir: f64 = tensors
                 .iter()
                 .zip(&v)
@@ -475,10 +523,6 @@ pub(crate) fn check_tensors<E>(
                         .sum::<f64>()
                 })
                 .sum();
-            // The floor of a coordinate of its span, with ‖g‖ over the span for its largest
-            // entry: a direction over a tensor whose gradient is zero by construction (an
-            // attention key bias) is judged against the network's scale, as its coordinates are.
-            let floor = relative_floor(span, scale, config.eps, config.tolerance);
             let judge =
                 |e: &crate::Estimate| rule.judge(a, e.value, floor, gross_dir, e.error, e.crossed);
             // As for coordinates: a black box's disagreement must hold at a smaller step on a
@@ -491,7 +535,7 @@ pub(crate) fn check_tensors<E>(
                 let s0 = est.step;
                 let first = judge(&est).0;
                 let rtable = along(&second_difference_steps(2.0 * s0))?;
-                let r = |d: f64| rtable.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
+                let r = |d: f64| look_up(&rtable, d).0;
                 let smooth = smooth_across(&r, f0, 2.0 * s0, 2.0 * config.eps * f0.abs());
                 let mut resolved = false;
                 for factor in std::iter::once(0.5).chain(RETRIES) {
@@ -517,6 +561,7 @@ pub(crate) fn check_tensors<E>(
                 rel_error,
                 bound,
                 status,
+                one_step: est.one_step,
             });
             tick();
         }
@@ -546,6 +591,45 @@ fn changes_along(v: &[Vec<f64>], deltas: &[f64]) -> Vec<Change> {
         }
     }
     changes
+}
+
+/// The losses at some steps of one coordinate or direction, with whether each step crossed a kink:
+/// (step bits, (loss, crossed)). A few entries, searched in order.
+type Table = Vec<(u64, (f64, bool))>;
+
+/// The loss and kink verdict at step `d` of a table; NaN for a step never asked for.
+fn look_up(table: &Table, d: f64) -> (f64, bool) {
+    let key = d.to_bits();
+    table
+        .iter()
+        .find(|(b, _)| *b == key)
+        .map_or((f64::NAN, false), |(_, v)| *v)
+}
+
+/// As [`ask`], with each step's kink verdict `crossed(t, k, d)` taken right after its request
+/// (the graph keeps the verdicts of the last request only).
+fn ask_marked<E>(
+    losses: &mut Losses<'_, E>,
+    crossed: &dyn Fn(usize, usize, f64) -> bool,
+    wanted: &[((usize, usize), Vec<f64>)],
+    per: usize,
+) -> Result<Vec<Table>, E> {
+    let mut out = Vec::with_capacity(wanted.len());
+    for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
+        let tables = ask(losses, chunk, per)?;
+        for (((t, k), deltas), table) in chunk.iter().zip(tables) {
+            out.push(
+                deltas
+                    .iter()
+                    .map(|d| {
+                        let value = table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
+                        (d.to_bits(), (value, crossed(*t, *k, *d)))
+                    })
+                    .collect(),
+            );
+        }
+    }
+    Ok(out)
 }
 
 /// The loss at each coordinate's steps, one table (step bits → loss) per coordinate, asked in

@@ -57,7 +57,10 @@ pub use graph_check::{
     sweep_graph,
 };
 pub use gross::{gradient_magnitude, loss_magnitude};
-pub use method::{Estimate, Method, complex_estimate, second_difference_steps, smooth_across};
+pub use method::{
+    Estimate, Method, ONE_STEP_BAND, ONE_STEP_BOUND, Target, complex_estimate,
+    second_difference_steps, smooth_across,
+};
 pub use order::{worse_error, worst_first};
 pub use part::Part;
 pub use sweep::{Curve, SweepPlan, steps, sweep};

@@ -14,8 +14,8 @@ use super::Loaded;
 use super::locate::{Place, Tensors};
 use crate::{
     CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DirectionCheck, FLOOR, Method,
-    Part, Precision, Progress, SETTLE, Scope, Settlement, Status, UNSETTLED_SHARE, check,
-    worst_first,
+    ONE_STEP_BAND, ONE_STEP_BOUND, Part, Precision, Progress, SETTLE, Scope, Settlement, Status,
+    UNSETTLED_SHARE, check, worst_first,
 };
 
 /// The most random directions per part a run takes (each costs four whole forward passes).
@@ -33,6 +33,8 @@ pub enum Code {
     /// The whole check can neither pass nor fail.
     Inconclusive,
     KinkRetried,
+    /// How many coordinates and directions central differences settled at ±h alone (a note).
+    OneStep,
 }
 
 impl Code {
@@ -44,6 +46,7 @@ impl Code {
             Code::KinkUnreliable => "kink-unreliable",
             Code::Inconclusive => "inconclusive",
             Code::KinkRetried => "kink-retried",
+            Code::OneStep => "one-step",
         }
     }
 }
@@ -81,6 +84,11 @@ pub struct CoordReport<P = Place> {
     pub status: Status,
     /// Whether a smaller step was needed to step off a kink.
     pub retried: bool,
+    /// Whether central differences settled it at ±h alone (`plumb_fd::Target`): `step` is h,
+    /// `bound` the round-off at h plus the truncation a third loss at 2h showed. Absent in
+    /// reports written before the field existed: false.
+    #[serde(default)]
+    pub one_step: bool,
 }
 
 impl<P> CoordReport<P> {
@@ -99,6 +107,7 @@ impl<P> CoordReport<P> {
             step: c.step,
             status: c.status,
             retried: c.retried,
+            one_step: c.one_step,
         }
     }
 
@@ -114,6 +123,7 @@ impl<P> CoordReport<P> {
             step: self.step,
             status: self.status,
             retried: self.retried,
+            one_step: self.one_step,
         }
     }
 }
@@ -172,6 +182,10 @@ pub struct TensorReport<C = CoordReport> {
     /// The share of checked coordinates settled (a match or a mismatch).
     #[serde(deserialize_with = "figure")]
     pub settled_share: f64,
+    /// Checked coordinates central differences settled at ±h alone (three losses, not the
+    /// ladder's); 0 in reports written before the field existed.
+    #[serde(default)]
+    pub one_step: usize,
     pub directions: usize,
     pub direction_mismatches: usize,
     pub verdict: Verdict,
@@ -195,6 +209,9 @@ pub struct DirectionReport {
     #[serde(deserialize_with = "figure")]
     pub bound: f64,
     pub status: Status,
+    /// Whether central differences settled it at ±h alone, as a coordinate's `one_step`.
+    #[serde(default)]
+    pub one_step: bool,
 }
 
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -379,6 +396,7 @@ fn direction_report(
         rel_error: d.rel_error,
         bound: d.bound,
         status: d.status,
+        one_step: d.one_step,
     }
 }
 
@@ -579,6 +597,7 @@ pub(super) fn build_report<P: Location + Clone>(
             unreliable,
             unsettled,
             settled_share: settled.share(),
+            one_step: coords.iter().filter(|c| c.one_step).count(),
             directions: dirs.len(),
             direction_mismatches,
             verdict: if mismatches > 0 || direction_mismatches > 0 {
@@ -650,6 +669,30 @@ pub(super) fn build_report<P: Location + Clone>(
                 ),
             )
             .figure("retried", retried),
+        );
+    }
+    let one_step = checked.coords.iter().filter(|(_, c)| c.one_step).count();
+    let one_step_dirs = checked
+        .directions
+        .iter()
+        .filter(|(_, d)| d.one_step)
+        .count();
+    if one_step + one_step_dirs > 0 {
+        findings.push(
+            Finding::new(
+                Code::OneStep,
+                Severity::Note,
+                format!(
+                    "{one_step} of {} checked coordinates and {one_step_dirs} of {} directions settled at ±h alone: the quotient there agreed with the analytic value within {}% of the tolerance, and its bound — the round-off at h plus twice the truncation a third loss at 2h shows — stayed within {}% of it, so a larger step was not needed",
+                    checked.coords.len(),
+                    checked.directions.len(),
+                    ONE_STEP_BAND * 100.0,
+                    ONE_STEP_BOUND * 100.0,
+                ),
+            )
+            .figure("one_step", one_step)
+            .figure("one_step_directions", one_step_dirs)
+            .figure("checked", checked.coords.len()),
         );
     }
     let mut order: Vec<&CoordReport<P>> = checked.coords.iter().map(|(_, c)| c).collect();

@@ -141,6 +141,7 @@ pub fn build_graph(
                     rel_error: d.rel_error,
                     bound: d.bound,
                     status: d.status,
+                    one_step: d.one_step,
                 };
                 (d.tensor, report)
             })

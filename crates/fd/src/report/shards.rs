@@ -449,6 +449,7 @@ fn direction_check(d: &DirectionReport, net: &Network) -> Result<DirectionCheck,
         bound: d.bound,
         step: 0.0,
         status: d.status,
+        one_step: d.one_step,
     })
 }
 

@@ -11,6 +11,7 @@ mod graph_kinks;
 mod graph_mistakes;
 mod graph_pass;
 mod graph_seeds;
+mod one_step;
 mod settle;
 mod shard_corpus;
 mod verdicts;
