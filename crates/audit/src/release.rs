@@ -186,15 +186,15 @@ pub fn audit(
             "unit health, initialisation and flow: the weights hold non-finite values".into(),
         );
     }
-    let names: Vec<String> = (0..desc.layers.len())
-        .map(|l| {
-            expected_tensors(desc, desc.layout)
-                .into_iter()
-                .find(|e| e.layer == l && e.role != Role::Bias)
-                .map(|e| e.name)
-                .unwrap_or_default()
-        })
-        .collect();
+    // Each layer's first tensor that is not its bias, from one list of what is expected (a list
+    // per layer was quadratic in the layers).
+    let mut names: Vec<Option<String>> = vec![None; desc.layers.len()];
+    for e in expected_tensors(desc, desc.layout) {
+        if e.role != Role::Bias && names[e.layer].is_none() {
+            names[e.layer] = Some(e.name);
+        }
+    }
+    let names: Vec<String> = names.into_iter().map(Option::unwrap_or_default).collect();
     let net = &desc.network;
     if let Some(w) = &weights {
         for g in symmetry(w, t.symmetry_tolerance) {

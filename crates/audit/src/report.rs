@@ -1,7 +1,9 @@
 //! The audit as a report: its test cases and its tables, built here so that the command only
 //! renders them.
 
-use plumb_report::{Block, Case, Cell, Table, Tone, number};
+use std::collections::{HashMap, HashSet};
+
+use plumb_report::{Block, Case, Cell, Finding, Table, Tone, number};
 
 use crate::{Audit, sparkline, unit_ranges};
 
@@ -12,63 +14,66 @@ impl Audit {
     pub fn cases(&self) -> Vec<Case> {
         let a = self;
         let level = self.fail_on;
+        // The first failing finding per tensor (`None`: about no tensor), and each layer's first
+        // health and flow row, found in one pass each: a file of 100,000 stray tensors has a
+        // finding each, and a scan of them per tensor was quadratic.
+        let mut failing: HashMap<Option<&str>, &Finding> = HashMap::new();
+        for f in a.findings.iter().filter(|f| {
+            f.severity >= level
+                && !f.code.starts_with("shape")
+                && !matches!(
+                    f.code.as_str(),
+                    "transposed-matrix"
+                        | "bias-column-missing"
+                        | "bias-column-extra"
+                        | "bias-wrong-length"
+                        | "layers-out-of-order"
+                        | "wrong-shape"
+                        | "tensor-missing"
+                        | "tensor-unexpected"
+                        | "other-layout"
+                        | "dtype-not-float"
+                )
+        }) {
+            failing.entry(f.tensor.as_deref()).or_insert(f);
+        }
+        let mut health = HashMap::new();
+        for h in &a.health {
+            health.entry(h.layer).or_insert(h);
+        }
+        let mut flow = HashMap::new();
+        for f in &a.flow {
+            flow.entry(f.layer).or_insert(f);
+        }
         let mut out = Vec::new();
-        let failing = |tensor: Option<&str>| {
-            a.findings
-                .iter()
-                .filter(|f| {
-                    f.severity >= level
-                        && !f.code.starts_with("shape")
-                        && f.tensor.as_deref() == tensor
-                })
-                .find(|f| {
-                    !matches!(
-                        f.code.as_str(),
-                        "transposed-matrix"
-                            | "bias-column-missing"
-                            | "bias-column-extra"
-                            | "bias-wrong-length"
-                            | "layers-out-of-order"
-                            | "wrong-shape"
-                            | "tensor-missing"
-                            | "tensor-unexpected"
-                            | "other-layout"
-                            | "dtype-not-float"
-                    )
-                })
-        };
         for i in &a.init {
-            let flagged = a
-                .health
-                .iter()
-                .find(|h| h.layer == i.layer)
-                .map_or(0, |h| h.flagged.len());
+            let flagged = health.get(&i.layer).map_or(0, |h| h.flagged.len());
             let mut c = Case::new(format!("audit {}", i.tensor), true)
                 .about(&i.tensor)
                 .figure("flagged_units", flagged as f64)
                 .figure("weight_std", i.std)
                 .figure("std_ratio", i.reference_ratio);
-            if let Some(f) = a.flow.iter().find(|f| f.layer == i.layer) {
+            if let Some(f) = flow.get(&i.layer) {
                 c = c
                     .figure("activation_std", f.activation_std)
                     .figure("gradient_norm", f.gradient_norm)
                     .figure("sigma_max", f.sigma_max);
             }
-            if let Some(f) = failing(Some(&i.tensor)) {
+            if let Some(f) = failing.get(&Some(i.tensor.as_str())) {
                 c = c.failing(&f.code, f.message.clone());
             }
             out.push(c);
         }
         // Tensors no initialisation row stands for (biases, norm scales, tables) get a case when
         // a finding about them fails the audit, so that no failure is left out of the cases.
-        let mut extra: Vec<&str> = Vec::new();
+        let init: HashSet<&str> = a.init.iter().map(|i| i.tensor.as_str()).collect();
+        let mut extra: HashSet<&str> = HashSet::new();
         for f in &a.findings {
             if let Some(t) = f.tensor.as_deref()
-                && !a.init.iter().any(|i| i.tensor == t)
-                && !extra.contains(&t)
-                && let Some(f) = failing(Some(t))
+                && !init.contains(t)
+                && let Some(f) = failing.get(&Some(t))
+                && extra.insert(t)
             {
-                extra.push(t);
                 out.push(
                     Case::new(format!("audit {t}"), true)
                         .about(t)
@@ -77,7 +82,7 @@ impl Audit {
             }
         }
         let mut c = Case::new("audit network", true);
-        if let Some(f) = failing(None) {
+        if let Some(f) = failing.get(&None) {
             c = c.failing(&f.code, f.message.clone());
         }
         out.push(c);

@@ -38,6 +38,9 @@ pub trait Scalar:
     }
     /// The machine epsilon of the underlying real type.
     fn epsilon() -> f64;
+    /// Whether two values are the same bits (`==` calls −0 and +0 equal, and a NaN unequal to
+    /// itself): a pass that meets its base pass's values bit for bit goes on as the base did.
+    fn same_bits(self, other: Self) -> bool;
 }
 
 macro_rules! real_scalar {
@@ -74,6 +77,10 @@ macro_rules! real_scalar {
             #[inline]
             fn epsilon() -> f64 {
                 <$t>::EPSILON as f64
+            }
+            #[inline]
+            fn same_bits(self, other: Self) -> bool {
+                self.to_bits() == other.to_bits()
             }
             $($extra)*
         }
@@ -154,6 +161,10 @@ macro_rules! complex_scalar {
             fn epsilon() -> f64 {
                 <$t>::EPSILON as f64
             }
+            #[inline]
+            fn same_bits(self, other: Self) -> bool {
+                self.re.to_bits() == other.re.to_bits() && self.im.to_bits() == other.im.to_bits()
+            }
         }
     };
 }
@@ -194,6 +205,10 @@ impl Scalar for num_dual::Dual64 {
     #[inline]
     fn epsilon() -> f64 {
         f64::EPSILON
+    }
+    #[inline]
+    fn same_bits(self, other: Self) -> bool {
+        self.re.to_bits() == other.re.to_bits() && self.eps.to_bits() == other.eps.to_bits()
     }
 }
 

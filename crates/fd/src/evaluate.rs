@@ -9,6 +9,11 @@
 //! The evaluator also reports whether any unit with a kink (ReLU-like) changed side relative to the
 //! unperturbed pass: then the loss is not smooth along this step and a difference quotient is not
 //! to be trusted.
+//!
+//! A perturbation that dies out stops costing: once a layer's pre-activations above everything
+//! moved are the base pass's bit for bit, every layer above would repeat the base pass, so the
+//! data term is the base's (a deep stack of squashing layers rounds a small step away within
+//! a few dozen layers). Exact, not an approximation: the comparison is of bits.
 
 use ndarray::{Array1, Array2, ArrayView2};
 use plumb_engine::{Activation, Coord, Network, Scalar, Trace, Weights};
@@ -25,6 +30,9 @@ pub struct Base<'a, S> {
     /// to `l2_before[l]` in the order `Network::l2_sum` does, so its loss is the whole pass's.
     l2_before: Vec<S>,
     loss: S,
+    /// The data term as a perturbed evaluation computes it from the output layer's z: what one
+    /// whose change has died out comes to.
+    data: S,
 }
 
 impl<'a, S: Scalar> Base<'a, S> {
@@ -50,7 +58,7 @@ impl<'a, S: Scalar> Base<'a, S> {
         };
         let m = x.nrows();
         let loss = net.data_loss(&trace, y.view()) + net.l2_term(l2_sum, m);
-        Base {
+        let mut base = Base {
             net,
             weights,
             y,
@@ -58,7 +66,10 @@ impl<'a, S: Scalar> Base<'a, S> {
             l2_sum,
             l2_before,
             loss,
-        }
+            data: S::zero(),
+        };
+        base.data = base.output_loss(base.trace.z.last().expect("a network has a layer"));
+        base
     }
 
     /// J(θ), the unperturbed loss.
@@ -108,14 +119,24 @@ impl<'a, S: Scalar> Base<'a, S> {
             }
             crossed |= crosses(layers[l + 1].activation, t.z[l + 1].iter(), z.iter());
             // The layers above, without keeping a trace: each pre-activation is compared with the
-            // unperturbed one for kinks as it is made, then only its activation is kept.
+            // unperturbed one for kinks as it is made, then only its activation is kept; once it
+            // is the base pass's bit for bit, so is everything above.
+            // Two buffers take turns as a layer's input and output: no allocation per layer.
+            let mut data = None;
+            let mut spare = Array2::zeros((0, 0));
             for layer in l + 2..=last {
+                if same_bits(&z, &t.z[layer - 1]) {
+                    data = Some(self.data);
+                    break;
+                }
                 let mut a = z;
                 layers[layer - 1].activation.apply_in_place(&mut a);
-                z = Network::affine(self.weights.layer(layer).view(), a.view());
+                Network::affine_into(self.weights.layer(layer).view(), a.view(), &mut spare);
+                z = spare;
+                spare = a;
                 crossed |= crosses(layers[layer].activation, t.z[layer].iter(), z.iter());
             }
-            self.output_loss(&z)
+            data.unwrap_or_else(|| self.output_loss(&z))
         };
         let mut l2_sum = self.l2_sum;
         if net.decays(c) && net.l2() != 0.0 {
@@ -148,25 +169,44 @@ impl<'a, S: Scalar> Base<'a, S> {
             w.zip_mut_with(v, |o, &d| *o += delta * d);
             Some(w)
         };
+        // The layers from here on are not moved.
+        let unmoved = first + direction.len();
         let mut crossed = false;
+        // A layer's input (none: the base pass's at `first`) and a buffer for its output; the two
+        // take turns, so a layer allocates nothing.
         let mut input: Option<Array2<S>> = None;
+        let mut z = Array2::zeros((0, 0));
         let mut l2_sum = self.l2_before.get(first).copied().unwrap_or(S::zero());
-        let mut data = S::zero();
+        let mut data = None;
         for (l, layer) in layers.iter().enumerate().skip(first) {
+            if data.is_some() {
+                // The data term is settled; the L2 sum still takes every layer, in order.
+                if self.l2_before.is_empty() {
+                    break;
+                }
+                l2_sum = l2_add(net, l2_sum, self.weights.layer(l).view());
+                continue;
+            }
             let theta = moved(l);
             let theta = theta.as_ref().unwrap_or(self.weights.layer(l));
             if !self.l2_before.is_empty() {
                 l2_sum = l2_add(net, l2_sum, theta.view());
             }
             let a = input.as_ref().unwrap_or(&t.a[first]);
-            let z = Network::affine(theta.view(), a.view());
+            Network::affine_into(theta.view(), a.view(), &mut z);
             crossed |= crosses(layer.activation, t.z[l].iter(), z.iter());
             if l == last {
-                data = self.output_loss(&z);
+                data = Some(self.output_loss(&z));
+            } else if l + 1 >= unmoved && same_bits(&z, &t.z[l]) {
+                // Nothing above moves and this layer is the base's again: so is the rest.
+                data = Some(self.data);
             } else {
-                input = Some(layer.activation.apply(z.view()));
+                layer.activation.apply_in_place(&mut z);
+                let used = input.replace(z);
+                z = used.unwrap_or_else(|| Array2::zeros((0, 0)));
             }
         }
+        let data = data.expect("the output layer is reached or the base's data term taken");
         (data + net.l2_term(l2_sum, self.samples()), crossed)
     }
 
@@ -202,6 +242,11 @@ pub fn full_loss<S: Scalar>(
     let mut moved = weights.clone();
     *moved.get_mut(c) += delta;
     net.loss_value(&moved, x, y)
+}
+
+/// Whether two arrays hold the same values bit for bit.
+fn same_bits<S: Scalar>(a: &Array2<S>, b: &Array2<S>) -> bool {
+    a.dim() == b.dim() && a.iter().zip(b.iter()).all(|(&x, &y)| x.same_bits(y))
 }
 
 /// `sum` plus the squares of the weights of one layer that decay, in `Network::l2_sum`'s order.

@@ -2,8 +2,9 @@
 
 use std::path::Path;
 
-use plumb_audit::audit_shapes;
-use plumb_formats::{DType, Description, FileFormat, Tensor, TensorFile};
+use plumb_audit::{Thresholds, audit, audit_shapes};
+use plumb_engine::{Batch, Rng};
+use plumb_formats::{DType, Description, FileFormat, GraphDescription, Tensor, TensorFile};
 
 /// A file of 100,000 stray tensors against a 2,000-layer description: every expected tensor is
 /// looked up by name and every stray one checked once. The scans this replaced (each stray tensor
@@ -45,4 +46,57 @@ fn a_description_of_29000_layers_parses_in_near_linear_time() {
     let desc = Description::parse(Path::new("wide.toml"), &text).unwrap();
     assert!(desc.layers.len() > 29_000);
     assert_eq!(desc.layers[29_000].line, 3 + 3 * 29_000);
+    // The same text as the layer graph every command also builds: a repeated layer name is
+    // looked up in a map (a scan of the names so far per layer took seconds here).
+    let graph = GraphDescription::parse(Path::new("wide.toml"), &text).unwrap();
+    assert_eq!(graph.graph.nodes().len(), desc.layers.len());
+    assert_eq!(graph.graph.nodes()[29_000].name, "layer29001");
+}
+
+/// The release audit of a file that fits a 2,000-layer description and holds 98,000 stray tensors
+/// beside it: its JUnit cases are matched to its 98,000 findings through a map (a scan of the
+/// findings per tensor and per finding was quadratic: over two minutes for `plumb audit` on
+/// such a file), and each layer's tensor name is taken from one list of expected tensors, not
+/// a list per layer. Time is not asserted; what the cases hold is.
+#[test]
+fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_time() {
+    let mut text = String::from("inputs = 1\nloss = \"squared-error\"\n");
+    for _ in 0..2_000 {
+        text.push_str("[[layer]]\nunits = 1\nactivation = \"tanh\"\n");
+    }
+    let desc = Description::parse(Path::new("deep.toml"), &text).unwrap();
+    let mut rng = Rng::new(3);
+    let mut tensors: Vec<Tensor> = (1..=2_000)
+        .map(|j| Tensor {
+            name: format!("layer{j}"),
+            shape: vec![1, 2],
+            dtype: DType::F32,
+            data: vec![0.0, rng.normal()],
+        })
+        .collect();
+    tensors.extend((0..98_000).map(|i| Tensor {
+        name: format!("t{i}"),
+        shape: vec![1],
+        dtype: DType::F32,
+        data: vec![0.0],
+    }));
+    let file = TensorFile {
+        format: FileFormat::Npz,
+        tensors,
+    };
+    let batch = Batch::synthetic(&desc.network, 8, 1);
+    let audit = audit(&desc, &file, &batch, None, &Thresholds::default(), 1);
+    assert_eq!(audit.init.len(), 2_000);
+    let strays = audit
+        .findings
+        .iter()
+        .filter(|f| f.code == "tensor-unexpected")
+        .count();
+    assert_eq!(strays, 98_000);
+    let cases = audit.cases();
+    // One per layer's weight and one for the network: a stray tensor's finding is a shape
+    // finding, which has a case among the shape cases, not here.
+    assert_eq!(cases.len(), 2_001);
+    assert_eq!(cases[1_999].name, "audit layer2000");
+    assert_eq!(cases[2_000].name, "audit network");
 }

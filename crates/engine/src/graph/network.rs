@@ -1,6 +1,7 @@
 //! The graph: a chain of layers with named taps, its forward pass (with the branches taken at
 //! non-smooth points), its loss and the backward pass down to the input.
 
+use std::collections::HashMap;
 use std::ops::Range;
 
 use ndarray::{Array2, ArrayD, ArrayView2, Zip};
@@ -140,6 +141,9 @@ pub struct GraphBuilder {
     loss: LossConfig,
     nodes: Vec<Node>,
     tensors: Vec<TensorSpec>,
+    /// Each layer's index by its name: a repeated name and a tap's source are looked up, not
+    /// searched for (a scan per layer was quadratic: seconds for a description of 29,000 layers).
+    names: HashMap<String, usize>,
 }
 
 impl GraphBuilder {
@@ -149,6 +153,7 @@ impl GraphBuilder {
             loss,
             nodes: Vec::new(),
             tensors: Vec::new(),
+            names: HashMap::new(),
         }
     }
 
@@ -166,7 +171,7 @@ impl GraphBuilder {
     ) -> Result<&mut Self, GraphError> {
         let layer = self.nodes.len() + 1;
         let name = name.map_or_else(|| format!("layer{layer}"), str::to_string);
-        if let Some(first) = self.nodes.iter().position(|n| n.name == name) {
+        if let Some(&first) = self.names.get(&name) {
             return Err(GraphError::DuplicateName {
                 layer,
                 name,
@@ -204,15 +209,11 @@ impl GraphBuilder {
         let tap = match built.tap() {
             None => None,
             Some(from) => {
-                let t = self
-                    .nodes
-                    .iter()
-                    .position(|n| n.name == from)
-                    .ok_or_else(|| GraphError::TapUnknown {
-                        layer,
-                        name: name.clone(),
-                        from: from.to_string(),
-                    })?;
+                let t = *self.names.get(from).ok_or_else(|| GraphError::TapUnknown {
+                    layer,
+                    name: name.clone(),
+                    from: from.to_string(),
+                })?;
                 let found = self.nodes[t].layer.output();
                 if found != input {
                     return Err(GraphError::TapShape {
@@ -234,6 +235,7 @@ impl GraphBuilder {
                 spec,
             });
         }
+        self.names.insert(name.clone(), self.nodes.len());
         self.nodes.push(Node {
             name,
             layer: Box::new(built),
@@ -282,11 +284,19 @@ impl GraphBuilder {
                 activation: output.to_string(),
             });
         }
+        // The last layer that reads each layer's output: the next one, or a later tap.
+        let mut last_readers: Vec<usize> = (1..=self.nodes.len()).collect();
+        for (k, node) in self.nodes.iter().enumerate() {
+            if let Some(t) = node.tap {
+                last_readers[t] = last_readers[t].max(k);
+            }
+        }
         Ok(Graph {
             input: self.input,
             loss: self.loss,
             nodes: self.nodes,
             tensors: self.tensors,
+            last_readers,
         })
     }
 }
@@ -298,6 +308,8 @@ pub struct Graph {
     loss: LossConfig,
     nodes: Vec<Node>,
     tensors: Vec<TensorSpec>,
+    /// Per layer, the last layer that reads its output (the next one, or a later tap).
+    last_readers: Vec<usize>,
 }
 
 /// What the forward pass leaves for the backward pass and for inspection.
@@ -324,6 +336,28 @@ pub struct Tail<S> {
     pub from: usize,
     pub steps: Vec<Step<S>>,
     pub outputs: Vec<Array2<S>>,
+    /// Set when the recomputed layers stop short of the output layer ([`Graph::forward_moved`]):
+    /// the last one's output is the base pass's again bit for bit and nothing above reads one
+    /// that is not, so every layer above is the base's. Holds the output layer's z and output,
+    /// copied from the base.
+    pub settled: Option<(Array2<S>, Array2<S>)>,
+}
+
+impl<S> Tail<S> {
+    /// The output layer's z (before its activation) and output.
+    pub fn output_layer(&self) -> (&Array2<S>, &Array2<S>) {
+        match &self.settled {
+            Some((z, a)) => (z, a),
+            None => (
+                &self
+                    .steps
+                    .last()
+                    .expect("a tail holds the output layer")
+                    .out,
+                self.outputs.last().expect("a tail holds the output layer"),
+            ),
+        }
+    }
 }
 
 /// The branches one layer took: its kind's choices and its activation's sides.
@@ -512,6 +546,7 @@ impl Graph {
             from,
             steps,
             outputs,
+            settled: None,
         }
     }
 
@@ -521,7 +556,9 @@ impl Graph {
     /// [hint](super::Layer::forward_moved) (or recomputed with the entry moved when the kind has
     /// none), the layers above recomputed — a channel-wise layer only in the channels that
     /// changed ([`Layer::forward_channels`](super::Layer::forward_channels)), bit for bit what a
-    /// full pass gives them. The tail's steps keep nothing for a backward pass.
+    /// full pass gives them. The tail's steps keep nothing for a backward pass. It stops at a
+    /// layer whose output is the base's again bit for bit when no layer above taps one that is
+    /// not ([`Tail::settled`]): a change that has died out costs nothing further.
     pub fn forward_moved<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -569,7 +606,20 @@ impl Graph {
         let a = self.activate_changed(node, &step.out, &base.outputs[from], changed[0].as_deref());
         let mut steps = vec![step];
         let mut outputs = vec![a];
+        // The last layer that reads any recomputed layer but the newest (the next one, or a tap).
+        let mut open = 0;
         for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
+            let below = j - 1;
+            if open < j && same_bits(&outputs[below - from], &base.outputs[below]) {
+                let last = self.nodes.len() - 1;
+                return Tail {
+                    from,
+                    steps,
+                    outputs,
+                    settled: Some((base.steps[last].out.clone(), base.outputs[last].clone())),
+                };
+            }
+            open = open.max(self.last_readers[below]);
             let output = |i: usize| {
                 if i < from {
                     base.outputs[i].view()
@@ -606,6 +656,7 @@ impl Graph {
             from,
             steps,
             outputs,
+            settled: None,
         }
     }
 
@@ -699,12 +750,7 @@ impl Graph {
         tail: &Tail<S>,
         y: ArrayView2<S>,
     ) -> S {
-        let z = &tail
-            .steps
-            .last()
-            .expect("a tail holds the output layer")
-            .out;
-        let a = tail.outputs.last().expect("a tail holds the output layer");
+        let (z, a) = tail.output_layer();
         self.loss_at(params, z, a, y)
     }
 
@@ -719,12 +765,7 @@ impl Graph {
         l2_sum: S,
         moved: &Moved<S>,
     ) -> S {
-        let z = &tail
-            .steps
-            .last()
-            .expect("a tail holds the output layer")
-            .out;
-        let a = tail.outputs.last().expect("a tail holds the output layer");
+        let (z, a) = tail.output_layer();
         let sq = if self.decays(moved.tensor) && self.loss.l2 != 0.0 {
             let p = &params[moved.tensor];
             let w = match p.as_slice() {
@@ -1021,6 +1062,11 @@ impl Graph {
 }
 
 /// The channels in either set; `None` (unknown: all may differ) when either is.
+/// Whether two arrays hold the same values bit for bit.
+fn same_bits<S: Scalar>(a: &Array2<S>, b: &Array2<S>) -> bool {
+    a.dim() == b.dim() && a.iter().zip(b.iter()).all(|(&x, &y)| x.same_bits(y))
+}
+
 fn union(a: Option<&[usize]>, b: Option<&[usize]>) -> Option<Vec<usize>> {
     let mut all: Vec<usize> = a?.iter().chain(b?).copied().collect();
     all.sort_unstable();

@@ -4,6 +4,7 @@
 mod graph_common;
 
 mod accuracy;
+mod budget;
 mod conventions;
 mod external;
 mod graph_engine;
