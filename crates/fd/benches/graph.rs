@@ -8,7 +8,10 @@
 //! - `lstm`, `attention`: forward + backward (`Graph::gradient`) of examples/pump-lstm.toml and
 //!   pump-attention.toml against the examples' hand-written NumPy passes;
 //! - `sequence`: the full check of the demo sequence model (fixtures/nets/pump-sequence.toml)
-//!   against a naive NumPy loop.
+//!   against a naive NumPy loop;
+//! - `cnn-plumb` (only when named): plumb's side of `cnn` alone, the fastest of 10 runs, with a
+//!   fingerprint of the results and the count of each verdict — for before/after runs of two
+//!   builds on a busy machine, where NumPy's time is not needed.
 //!
 //! Each NumPy side gets the same values (JSON on stdin) and returns its loss, which must equal
 //! plumb's: both sides compute the same function. One thread each (benches/graph.sh sets
@@ -23,7 +26,7 @@ use std::time::Instant;
 use ndarray::ArrayD;
 use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Moved, Shape, Trace};
 use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
-use plumb_fd::{CheckConfig, Method, Precision, Sample, check, check_graph};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, Status, check, check_graph};
 use plumb_formats::GraphDescription;
 use serde_json::{Value, json};
 
@@ -126,7 +129,7 @@ fn hints_against_layers(g: &Graph, p: &[ArrayD<f64>], b: &Batch) -> (f64, f64) {
         .enumerate()
         .flat_map(|(t, v)| v.iter().enumerate().map(move |(k, &w)| (t, k, w)))
         .collect();
-    let (hinted, a) = best(3, || {
+    let (hinted, a) = best(10, || {
         let mut s = 0.0;
         for &(t, k, w) in &entries {
             for d in [1.0, -1.0] {
@@ -142,7 +145,7 @@ fn hints_against_layers(g: &Graph, p: &[ArrayD<f64>], b: &Batch) -> (f64, f64) {
         }
         s
     });
-    let (layers, c) = best(3, || {
+    let (layers, c) = best(10, || {
         let mut s = 0.0;
         for &(t, k, w) in &entries {
             for d in [1.0, -1.0] {
@@ -193,6 +196,55 @@ fn cnn() {
         hinted * 1e3,
         layers * 1e3,
         layers / hinted
+    );
+}
+
+/// The FNV-1a hash of the loss and every estimate's bits, and the count of each verdict.
+fn summary(r: &plumb_fd::GraphCheck) -> String {
+    let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
+    let mut eat = |x: f64| {
+        for byte in x.to_bits().to_le_bytes() {
+            hash = (hash ^ u64::from(byte)).wrapping_mul(0x0000_0100_0000_01b3);
+        }
+    };
+    eat(r.loss);
+    for c in &r.coords {
+        eat(c.numeric);
+        eat(c.analytic);
+    }
+    for d in &r.directions {
+        eat(d.numeric);
+        eat(d.analytic);
+    }
+    let statuses = r.coords.iter().map(|c| c.status);
+    let statuses = statuses.chain(r.directions.iter().map(|d| d.status));
+    let mut counts = [0usize; 4];
+    for s in statuses {
+        counts[s as usize] += 1;
+    }
+    let names = [
+        Status::Match,
+        Status::Unsettled,
+        Status::Unreliable,
+        Status::Mismatch,
+    ];
+    let counts: Vec<String> = names
+        .iter()
+        .map(|s| format!("{} {}", counts[*s as usize], s.name()))
+        .collect();
+    format!("results {hash:016x}; {}", counts.join(", "))
+}
+
+fn cnn_plumb() {
+    let (g, p, b) = description("examples/pump-cnn.toml", 32);
+    let (plumb, r) = best(10, || full_check(&g, &p, &b));
+    let (hinted, layers) = hints_against_layers(&g, &p, &b);
+    println!(
+        "cnn-plumb  full central check {:.2} ms (fastest of 10), every entry at ±h through the hints {:.2} ms, from the entry's layer {:.2} ms; {}",
+        plumb * 1e3,
+        hinted * 1e3,
+        layers * 1e3,
+        summary(&r)
     );
 }
 
@@ -331,6 +383,9 @@ fn main() {
     eprintln!("load average before: {}", load().trim());
     if run("cnn") {
         cnn();
+    }
+    if asked.iter().any(|a| a == "cnn-plumb") {
+        cnn_plumb();
     }
     if run("dense") {
         dense();

@@ -1,12 +1,14 @@
 //! `conv1d` and `conv2d`: cross-correlation (the kernel is not turned) with stride, padding,
-//! dilation and an optional bias, by im2col and one matrix product. A conv1d is a conv2d of
-//! height 1; its weight keeps its own canonical shape o × i × k.
+//! dilation and an optional bias. The forward pass is a direct loop ([`Conv::correlate`]): per
+//! sample and out-channel, each in-channel's taps in row-major order, each tap adding w · x over
+//! the output rectangle it reaches inside the unpadded input (padding reads 0 and adds nothing),
+//! then the bias. The backward pass builds the im2col matrix from its input and uses two
+//! matrix products. A conv1d is a conv2d of height 1; its weight keeps its own canonical shape
+//! o × i × k.
 //!
-//! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) moved by δ changes
-//! out-channel o only, by δ times the column of the saved im2col matrix that multiplies it — a
-//! rank-one update of that channel over every sample and position; bias o moves channel o by δ.
-//! The other channels keep the base's values bit for bit; channel o differs from a full pass only
-//! by rounding.
+//! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) or bias o moved
+//! changes out-channel o only; the hint recomputes that channel with the same loop and the moved
+//! value, so it equals a full pass bit for bit, and keeps the base's other channels.
 //!
 //! Catalogued mistakes (DESIGN §7): `kernel-flipped` (weight and input gradients with the kernel
 //! turned 180°), `channels-swapped` (the weight gradient's o and i axes exchanged, read back in
@@ -16,7 +18,7 @@
 
 use ndarray::{Array2, ArrayD, ArrayView2, Axis, IxDyn};
 
-use super::window::{Scatter, Window};
+use super::window::{Scatter, Span, Window};
 use super::{
     Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
     unravel,
@@ -77,6 +79,8 @@ pub struct Conv {
     settings: ConvSettings,
     input: Shape,
     window: Window,
+    /// Each tap's reach over the output, for the direct loop (computed once).
+    spans: Vec<Span>,
 }
 
 const MISTAKES: &[&str] = &[
@@ -160,6 +164,7 @@ impl Conv {
         Ok(Conv {
             settings,
             input: *input,
+            spans: window.spans(),
             window,
         })
     }
@@ -176,6 +181,61 @@ impl Conv {
     /// The padding actually applied, [before, after] per axis ([height, width]).
     pub fn padding(&self) -> [[usize; 2]; 2] {
         [self.window.before, self.window.after]
+    }
+
+    /// One sample's out-channel into `out` (its output positions): from 0, for each in-channel
+    /// and each tap in row-major order, w · x added over the tap's span, then the bias (last, so
+    /// that outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a
+    /// tie, as it does in exact arithmetic). `w` holds
+    /// the out-channel's in-channels × taps weights, `xi` the sample's input. Every pass that
+    /// computes a conv output value goes through here, so they all round alike. On x86-64
+    /// machines with AVX2 the loop is compiled for AVX2 as well; that build does the same IEEE
+    /// operations on each value (no fused multiply-add is enabled, and Rust never contracts a
+    /// product and a sum into one), so its results are bit for bit the same.
+    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
+            unsafe { self.correlate_avx2(w, bias, xi, out) };
+            return;
+        }
+        self.correlate_loop(w, bias, xi, out);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn correlate_avx2<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
+        self.correlate_loop(w, bias, xi, out);
+    }
+
+    #[inline(always)]
+    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
+        let win = &self.window;
+        let (taps, ip, iw, ow) = (win.taps(), win.in_positions(), win.input[1], win.output[1]);
+        let [sy, sx] = win.stride;
+        out.fill(S::zero());
+        for (c, xc) in xi.chunks_exact(ip).enumerate() {
+            let wc = &w[c * taps..(c + 1) * taps];
+            for span in &self.spans {
+                let wv = wc[span.tap];
+                for (r, oy) in span.rows.clone().enumerate() {
+                    let from = (span.y0 + r * sy) * iw + span.x0;
+                    let to = &mut out[oy * ow + span.cols.start..oy * ow + span.cols.end];
+                    if sx == 1 {
+                        for (o, &v) in to.iter_mut().zip(&xc[from..]) {
+                            *o += wv * v;
+                        }
+                    } else {
+                        for (o, &v) in to.iter_mut().zip(xc[from..].iter().step_by(sx)) {
+                            *o += wv * v;
+                        }
+                    }
+                }
+            }
+        }
+        if let Some(b) = bias {
+            out.iter_mut().for_each(|v| *v += b);
+        }
     }
 
     /// The weight as a matrix, out-channels × (in-channels · taps), optionally turned 180°.
@@ -282,38 +342,33 @@ impl<S: LayerScalar> Layer<S> for Conv {
             self.settings.channels,
             self.window.out_positions(),
         );
-        let cols = self.window.columns(x);
-        let z = cols.dot(&self.matrix(&params[0], false).t());
-        // z's rows are (sample, position) × out-channels; the output is channel-major per sample.
-        let z = z.as_standard_layout();
-        let zs = z.as_slice().expect("standard layout");
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let w = params[0].as_standard_layout();
+        let ws = w.as_slice().expect("standard layout");
         let bias = self
             .settings
             .bias
             .then(|| params[1].as_slice().expect("standard layout"));
+        let (per, sample) = (
+            ws.len() / o,
+            self.window.channels * self.window.in_positions(),
+        );
         let mut out = vec![S::zero(); m * o * op];
-        for (i, row) in out.chunks_mut((o * op).max(1)).enumerate() {
-            for (c, channel) in row.chunks_mut(op.max(1)).enumerate() {
-                let b = bias.map_or(S::zero(), |b| b[c]);
-                for (p, v) in channel.iter_mut().enumerate() {
-                    *v = zs[(i * op + p) * o + c] + b;
-                }
+        for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
+            for (c, channel) in row.chunks_exact_mut(op).enumerate() {
+                let b = bias.map(|b| b[c]);
+                self.correlate(&ws[c * per..(c + 1) * per], b, xi, channel);
             }
         }
-        let out = Array2::from_shape_vec((m, o * op), out).expect("sized above");
-        Step {
-            out,
-            saved: vec![cols.into_dyn()],
-            branches: Vec::new(),
-            ties: 0,
-        }
+        Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
     }
 
     fn backward(
         &self,
         params: &[ArrayD<S>],
         x: ArrayView2<S>,
-        step: &Step<S>,
+        _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
     ) -> Back<S> {
@@ -322,10 +377,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
             self.settings.channels,
             self.window.out_positions(),
         );
-        let cols = step.saved[0]
-            .view()
-            .into_dimensionality::<ndarray::Ix2>()
-            .expect("conv saves its columns");
+        let cols = self.window.columns(x);
         // dout as rows (sample, position) × out-channels, the layout of the forward product.
         let d = Array2::from_shape_fn((m * op, o), |(r, c)| dout[[r / op, c * op + r % op]]);
         let flipped = mistake == Some("kernel-flipped");
@@ -373,34 +425,35 @@ impl<S: LayerScalar> Layer<S> for Conv {
 
     fn forward_moved(
         &self,
-        _: &[ArrayD<S>],
-        _: ArrayView2<S>,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
         base: &Step<S>,
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
         let op = self.window.out_positions();
-        let per_channel = self.window.channels * self.window.taps();
-        let (channel, column) = if moved.tensor == 0 {
-            (moved.index / per_channel, Some(moved.index % per_channel))
+        let per = self.window.channels * self.window.taps();
+        let channel = self.moved_channel(moved.tensor, moved.index)?;
+        let w = params[0].as_standard_layout();
+        let mut w = w.as_slice()?[channel * per..(channel + 1) * per].to_vec();
+        let mut b = if self.settings.bias {
+            Some(params[1].as_slice()?[channel])
         } else {
-            (moved.index, None)
+            None
         };
+        // The moved value as a full pass at the moved parameters holds it: θ + δ, rounded once.
+        match (moved.tensor, b.as_mut()) {
+            (0, _) => w[moved.index % per] += moved.delta,
+            (_, Some(b)) => *b += moved.delta,
+            (_, None) => return None,
+        }
+        let x = x.as_standard_layout();
+        let xs = x.as_slice()?;
+        let sample = self.window.channels * self.window.in_positions();
         let mut out = base.out.clone();
-        let mut block = out.slice_mut(ndarray::s![.., channel * op..(channel + 1) * op]);
-        match column {
-            Some(c) => {
-                // Rows of the columns matrix are (sample, position), the base's layout.
-                let cols = base.saved[0]
-                    .view()
-                    .into_dimensionality::<ndarray::Ix2>()
-                    .expect("conv saves its columns");
-                let taps = cols.column(c);
-                for (i, mut row) in block.outer_iter_mut().enumerate() {
-                    let from = taps.slice(ndarray::s![i * op..(i + 1) * op]);
-                    row.zip_mut_with(&from, |z, &v| *z += moved.delta * v);
-                }
-            }
-            None => block.mapv_inplace(|z| z + moved.delta),
+        let values = out.as_slice_mut()?;
+        let width = self.settings.channels * op;
+        for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
+            self.correlate(&w, b, xi, &mut row[channel * op..(channel + 1) * op]);
         }
         Some(Step::plain(out))
     }

@@ -3,10 +3,15 @@
 //! maximum in row-major window order; which position that is, is the branch the forward pass
 //! records, and a shared maximum is a tie (a non-smooth point).
 //!
+//! Channel-wise ([`Layer::forward_channels`]): output channel c reads input channel c alone, so
+//! when only some input channels changed, those output channels (with their branches and ties)
+//! are recomputed by the function a full pass uses and the others kept; a max-pool keeps its
+//! ties per channel in [`Step::saved`] for that.
+//!
 //! Catalogued mistake: `pool-gradient-spread` — max-pool's gradient sent to every position of the
 //! window, avg-pool's not divided by the window's element count.
 
-use ndarray::{Array2, ArrayD, ArrayView2};
+use ndarray::{Array1, Array2, ArrayD, ArrayView2};
 
 use super::window::Window;
 use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
@@ -119,57 +124,141 @@ impl Kind for Pool {
     }
 }
 
-impl<S: LayerScalar> Layer<S> for Pool {
-    fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+impl Pool {
+    /// One sample's channel: its input values `xc` (the channel's positions), its outputs `out`,
+    /// and for a max-pool each window's argmax as an index into the sample's input (channel `c`)
+    /// in `branches`; returns how many windows were tied. Every pass that pools a channel goes
+    /// through here, so they all agree bit for bit.
+    fn channel<S: LayerScalar>(
+        &self,
+        xc: &[S],
+        c: usize,
+        out: &mut [S],
+        branches: &mut [u32],
+    ) -> usize {
         let w = &self.window;
-        let (m, c_n, ip, op) = (x.nrows(), w.channels, w.in_positions(), w.out_positions());
-        let mut out = Array2::zeros((m, c_n * op));
-        let mut branches = Vec::new();
-        let mut ties = 0;
+        let base = (c * w.in_positions()) as u32;
         let scale = S::one() / S::from_f64(w.taps() as f64);
-        for i in 0..m {
-            let xi = x.row(i);
-            for c in 0..c_n {
-                for oy in 0..w.output[0] {
-                    for ox in 0..w.output[1] {
-                        let o = c * op + oy * w.output[1] + ox;
-                        match self.op {
-                            PoolKind::Avg => {
-                                let mut sum = S::zero();
-                                w.for_each_tap(oy, ox, |_, q| sum += xi[c * ip + q]);
-                                out[[i, o]] = sum * scale;
+        let mut ties = 0;
+        for oy in 0..w.output[0] {
+            for ox in 0..w.output[1] {
+                let o = oy * w.output[1] + ox;
+                match self.op {
+                    PoolKind::Avg => {
+                        let mut sum = S::zero();
+                        w.for_each_tap(oy, ox, |_, q| sum += xc[q]);
+                        out[o] = sum * scale;
+                    }
+                    PoolKind::Max => {
+                        let mut best: Option<usize> = None;
+                        let mut tied = false;
+                        w.for_each_tap(oy, ox, |_, q| {
+                            let v = xc[q].re();
+                            match best {
+                                Some(b) if v > xc[b].re() => {
+                                    best = Some(q);
+                                    tied = false;
+                                }
+                                Some(b) if v == xc[b].re() => tied = true,
+                                Some(_) => {}
+                                None => best = Some(q),
                             }
-                            PoolKind::Max => {
-                                let mut best: Option<usize> = None;
-                                let mut tied = false;
-                                w.for_each_tap(oy, ox, |_, q| {
-                                    let v = xi[c * ip + q].re();
-                                    match best {
-                                        Some(b) if v > xi[c * ip + b].re() => {
-                                            best = Some(q);
-                                            tied = false;
-                                        }
-                                        Some(b) if v == xi[c * ip + b].re() => tied = true,
-                                        Some(_) => {}
-                                        None => best = Some(q),
-                                    }
-                                });
-                                let q = best.expect("a window holds at least one position");
-                                out[[i, o]] = xi[c * ip + q];
-                                branches.push((c * ip + q) as u32);
-                                ties += tied as usize;
-                            }
-                        }
+                        });
+                        let q = best.expect("a window holds at least one position");
+                        out[o] = xc[q];
+                        branches[o] = base + q as u32;
+                        ties += tied as usize;
                     }
                 }
             }
         }
-        Step {
-            out,
-            saved: Vec::new(),
-            branches,
-            ties,
+        ties
+    }
+
+    /// Pools channels `channels` of every sample of `x` into `out` (and `branches`, laid out as
+    /// `out`), returning each channel's ties over the samples.
+    fn channels<S: LayerScalar>(
+        &self,
+        x: ArrayView2<S>,
+        channels: impl Iterator<Item = usize> + Clone,
+        out: &mut [S],
+        branches: &mut [u32],
+    ) -> Vec<(usize, usize)> {
+        let w = &self.window;
+        let (ip, op) = (w.in_positions(), w.out_positions());
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let width = w.channels * op;
+        let mut ties: Vec<(usize, usize)> = channels.clone().map(|c| (c, 0)).collect();
+        for (i, xi) in xs.chunks_exact(w.channels * ip).enumerate() {
+            for (slot, c) in ties.iter_mut().zip(channels.clone()) {
+                let at = i * width + c * op..i * width + (c + 1) * op;
+                let b = if self.op == PoolKind::Max {
+                    &mut branches[at.clone()]
+                } else {
+                    &mut []
+                };
+                slot.1 += self.channel(&xi[c * ip..(c + 1) * ip], c, &mut out[at], b);
+            }
         }
+        ties
+    }
+}
+
+impl<S: LayerScalar> Layer<S> for Pool {
+    fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+        let w = &self.window;
+        let (m, size) = (x.nrows(), w.channels * w.out_positions());
+        let mut out = vec![S::zero(); m * size];
+        let max = self.op == PoolKind::Max;
+        let mut branches = vec![0; if max { m * size } else { 0 }];
+        let ties = self.channels(x, 0..w.channels, &mut out, &mut branches);
+        let saved = if max {
+            // Ties per channel (small whole numbers, exact in every scalar), for the update.
+            let per = ties.iter().map(|&(_, t)| S::from_f64(t as f64));
+            vec![Array1::from_iter(per).into_dyn()]
+        } else {
+            Vec::new()
+        };
+        Step {
+            out: Array2::from_shape_vec((m, size), out).expect("sized above"),
+            saved,
+            branches,
+            ties: ties.iter().map(|&(_, t)| t).sum(),
+        }
+    }
+
+    fn forward_channels(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        base: &Step<S>,
+        changed: &[usize],
+    ) -> Option<Step<S>> {
+        let mut out = base.out.clone();
+        let mut branches = base.branches.clone();
+        let ties = self.channels(
+            x,
+            changed.iter().copied(),
+            out.as_slice_mut()?,
+            &mut branches,
+        );
+        let mut saved = base.saved.clone();
+        let mut total = base.ties;
+        if let Some(per) = saved.first_mut() {
+            for (c, t) in ties {
+                let slot = per.as_slice_mut()?.get_mut(c)?;
+                total = total - slot.re() as usize + t;
+                *slot = S::from_f64(t as f64);
+            }
+        }
+        Some(Step {
+            out,
+            saved,
+            branches,
+            ties: total,
+        })
     }
 
     fn backward(

@@ -163,3 +163,224 @@ fn channel_wise_layers_match_a_full_pass_in_other_orders() {
         "conv2d, batch norm, rms norm, add",
     );
 }
+
+/// A moved conv entry through the whole graph: the conv's hint recomputes the moved out-channel
+/// with the loop of a full pass, and the layers above (pools 1-D and 2-D, max and average,
+/// among them) recompute the changed channels alike, so every output of the tail and the loss
+/// (no L2 term here) equal a full forward pass at the moved parameters bit for bit — the
+/// reference is [`Graph::forward`] itself, in f64 and f32.
+fn whole_tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
+    let mut rng = Rng::new(seed);
+    let params = random_params(g, &mut rng);
+    let x = random_x(g, 3, &mut rng);
+    let y = crate::graph_common::random_y(g, 3, &mut rng);
+    let p: Vec<ArrayD<S>> = params.iter().map(|t| t.mapv(S::from_f64)).collect();
+    let (x, y) = (x.mapv(S::from_f64), y.mapv(S::from_f64));
+    assert_eq!(
+        g.loss_config().l2,
+        0.0,
+        "{what}: the loss compared bit for bit"
+    );
+    let base = g.forward(&p, x.view());
+    let l2 = g.l2_sum(&p);
+    for (t, spec) in g.tensors().iter().enumerate() {
+        let j = spec.layer;
+        if !g.nodes()[j].layer.kind().starts_with("conv") {
+            continue;
+        }
+        for k in 0..p[t].len() {
+            for d in [0.37, -1e-3] {
+                let delta = S::from_f64(d);
+                let moved = Moved {
+                    tensor: t,
+                    index: k,
+                    delta,
+                };
+                let tail = g.forward_moved(&p, x.view(), &base, &moved);
+                let mut q = p.clone();
+                q[t].as_slice_mut().unwrap()[k] += delta;
+                let full = g.forward(&q, x.view());
+                for (i, (got, want)) in tail.outputs.iter().zip(&full.outputs[j..]).enumerate() {
+                    let layer = j + i;
+                    let kind = g.nodes()[layer].layer.kind();
+                    for (e, (u, v)) in got.iter().zip(want).enumerate() {
+                        assert_eq!(
+                            u.re().to_bits(),
+                            v.re().to_bits(),
+                            "{what}: {}[{k}] δ {d}: layer {layer} ({kind}), entry {e}",
+                            spec.name
+                        );
+                    }
+                    let (a, b) = (&tail.steps[i], &full.steps[layer]);
+                    assert_eq!(a.branches, b.branches, "{what}: layer {layer} branches");
+                    assert_eq!(a.ties, b.ties, "{what}: layer {layer} ties");
+                }
+                let (li, lf) = (
+                    g.loss_moved(&p, &tail, y.view(), l2, &moved),
+                    g.loss_of(&q, &full, y.view()),
+                );
+                assert_eq!(
+                    li.re().to_bits(),
+                    lf.re().to_bits(),
+                    "{what}: loss, {}[{k}] δ {d}",
+                    spec.name
+                );
+            }
+        }
+    }
+}
+
+/// Strides, dilations, explicit and "same" padding, with and without bias, under max and
+/// average pools of both dimensionalities (overlapping windows and a ragged tail among them).
+#[test]
+fn a_moved_conv_entry_gives_a_full_pass_bit_for_bit_through_pools() {
+    let signal = Shape::Signal {
+        channels: 2,
+        length: 17,
+    };
+    for (n, op) in [PoolKind::Max, PoolKind::Avg].into_iter().enumerate() {
+        let mut b = GraphBuilder::new(signal, LossConfig::cross_entropy());
+        let strided = ConvSettings {
+            stride: [1, 2],
+            dilation: [1, 2],
+            padding: Padding::Explicit([0, 3]),
+            ..ConvSettings::conv1d(3, 3)
+        };
+        b.push(Some("c1"), Activation::Relu, |s| Conv::new(&strided, s))
+            .unwrap();
+        b.push(None, Activation::Identity, |s| {
+            Pool::new(op, 1, [1, 3], [1, 2], s)
+        })
+        .unwrap();
+        let same = conv1d(2, 4, Padding::Same, false);
+        b.push(None, Activation::Tanh, |s| Conv::new(&same, s))
+            .unwrap();
+        b.push(None, Activation::Identity, |s| {
+            Pool::new(PoolKind::Max, 1, [1, 2], [1, 2], s)
+        })
+        .unwrap();
+        b.push(None, Activation::Identity, GlobalAvgPool::new)
+            .unwrap();
+        b.push(None, Activation::Softmax, |s| Dense::new(3, s))
+            .unwrap();
+        let g = b.finish().unwrap();
+        whole_tails_agree::<f64>(&g, 21 + n as u64, &format!("conv1d {op:?} f64"));
+        whole_tails_agree::<f32>(&g, 21 + n as u64, &format!("conv1d {op:?} f32"));
+    }
+    let image = Shape::Image {
+        channels: 2,
+        height: 9,
+        width: 8,
+    };
+    for (n, op) in [PoolKind::Max, PoolKind::Avg].into_iter().enumerate() {
+        let mut b = GraphBuilder::new(image, LossConfig::squared_error());
+        let strided = ConvSettings {
+            stride: [2, 1],
+            dilation: [1, 2],
+            padding: Padding::Explicit([1, 2]),
+            ..ConvSettings::conv2d(3, [3, 2])
+        };
+        b.push(Some("c1"), Activation::Identity, |s| Conv::new(&strided, s))
+            .unwrap();
+        b.push(None, Activation::Sigmoid, |s| {
+            Pool::new(op, 2, [2, 2], [1, 2], s)
+        })
+        .unwrap();
+        let same = ConvSettings {
+            padding: Padding::Same,
+            bias: false,
+            ..ConvSettings::conv2d(2, [2, 3])
+        };
+        b.push(None, Activation::Identity, |s| Conv::new(&same, s))
+            .unwrap();
+        b.push(None, Activation::Relu, |s| {
+            Pool::new(PoolKind::Avg, 2, [2, 3], [2, 2], s)
+        })
+        .unwrap();
+        b.push(None, Activation::Identity, |s| {
+            plumb_engine::graph::Flatten::new(s)
+        })
+        .unwrap();
+        b.push(None, Activation::Identity, |s| Dense::new(2, s))
+            .unwrap();
+        let g = b.finish().unwrap();
+        whole_tails_agree::<f64>(&g, 31 + n as u64, &format!("conv2d {op:?} f64"));
+        whole_tails_agree::<f32>(&g, 31 + n as u64, &format!("conv2d {op:?} f32"));
+    }
+}
+
+/// Max-pool's channel-wise update where ties come and go: the input has tied windows in both
+/// channels; changing channel 1 so that one of its ties breaks and another appears must give the
+/// full pass's outputs, branches (first maximum in row-major order) and tie count, and keep
+/// channel 0's.
+#[test]
+fn max_pool_updates_a_channel_with_its_ties_as_a_full_pass_does() {
+    use plumb_engine::graph::Layer;
+    let input = Shape::Image {
+        channels: 2,
+        height: 2,
+        width: 4,
+    };
+    for dims in [1, 2] {
+        let (pool, x) = if dims == 2 {
+            let pool = Pool::new(PoolKind::Max, 2, [2, 2], [1, 2], &input).unwrap();
+            // Channel 0: window (0, 0) tied (3 and 3); channel 1: window (0, 1) tied (5, 5).
+            let x = ndarray::arr2(&[[
+                3., 1., 0., 2., 3., 0., 1., 1., 0., 1., 5., 5., 2., 0., 4., 1.,
+            ]]);
+            (pool, x)
+        } else {
+            let signal = Shape::Signal {
+                channels: 2,
+                length: 8,
+            };
+            let pool = Pool::new(PoolKind::Max, 1, [1, 3], [1, 2], &signal).unwrap();
+            let x = ndarray::arr2(&[[
+                3., 3., 0., 2., 1., 0., 1., 1., 0., 1., 5., 5., 2., 0., 4., 1.,
+            ]]);
+            (pool, x)
+        };
+        let base = Layer::<f64>::forward(&pool, &[], x.view(), None);
+        assert!(
+            base.ties >= 2,
+            "dims {dims}: the base has a tie in each channel"
+        );
+        // Channel 1 moves: its tie at 5, 5 breaks (4.5 against 5), and a new one appears (4
+        // meets 4).
+        let mut x2 = x.clone();
+        x2[[0, 10]] = 4.5;
+        x2[[0, 12]] = 4.0;
+        x2[[0, 9]] = 4.0;
+        let full = Layer::<f64>::forward(&pool, &[], x2.view(), None);
+        let update = Layer::<f64>::forward_channels(&pool, &[], x2.view(), None, &base, &[1])
+            .expect("max-pool is channel-wise");
+        assert_eq!(update.out, full.out, "dims {dims}: outputs");
+        assert_eq!(update.branches, full.branches, "dims {dims}: branches");
+        assert_eq!(update.ties, full.ties, "dims {dims}: ties");
+        assert_ne!(
+            full.branches, base.branches,
+            "dims {dims}: the argmax moved"
+        );
+        // A second change on top of the first, one more tie (4.5 meets 4.5): the count is
+        // carried per channel.
+        let mut x3 = x2.clone();
+        x3[[0, 11]] = 4.5;
+        let full3 = Layer::<f64>::forward(&pool, &[], x3.view(), None);
+        let update3 = Layer::<f64>::forward_channels(&pool, &[], x3.view(), None, &update, &[1])
+            .expect("max-pool is channel-wise");
+        assert_eq!(
+            update3.out, full3.out,
+            "dims {dims}: outputs after two changes"
+        );
+        assert_eq!(update3.branches, full3.branches, "dims {dims}: branches");
+        assert_eq!(
+            update3.ties, full3.ties,
+            "dims {dims}: ties after two changes"
+        );
+        assert_eq!(
+            update3.ties,
+            update.ties + 1,
+            "dims {dims}: the new tie counted"
+        );
+    }
+}

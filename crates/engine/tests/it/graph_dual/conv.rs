@@ -66,6 +66,33 @@ fn conv_borders() {
     }
 }
 
+/// Taps that never reach the input (the direct loop skips them; im2col reads their zeros): a
+/// one-column image under a wide kernel with wide padding, at stride 1 and 2.
+#[test]
+fn conv_taps_that_read_only_padding() {
+    let image = Shape::Image {
+        channels: 2,
+        height: 3,
+        width: 1,
+    };
+    for (seed, stride) in [[1, 1], [1, 2], [2, 2]].into_iter().enumerate() {
+        let s = ConvSettings {
+            stride,
+            padding: Padding::Explicit([1, 3]),
+            ..ConvSettings::conv2d(2, [2, 5])
+        };
+        let mut b = GraphBuilder::new(image, LossConfig::squared_error());
+        b.push(None, Activation::Tanh, |sh| Conv::new(&s, sh))
+            .unwrap();
+        finish_and_check(
+            b,
+            Activation::Identity,
+            50 + seed as u64,
+            "padding-only taps",
+        );
+    }
+}
+
 #[test]
 fn graph_errors_name_the_layer() {
     let mut b = GraphBuilder::new(Shape::Flat(3), LossConfig::squared_error());

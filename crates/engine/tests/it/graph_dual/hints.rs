@@ -10,9 +10,10 @@ use crate::graph_common::{random_params, random_x, random_y};
 /// The incremental hints ([`Graph::forward_moved`], [`Graph::loss_moved`]) against the full
 /// forward pass at the moved parameters, entry by entry, in scalar S (ε its machine epsilon).
 ///
-/// At the moved layer: a dense or conv layer's other units (channels) keep the base's values and
-/// must equal the full pass bit for bit; the moved unit's values are the base's rounded sum plus
-/// δ·a where the full pass sums again, so the two may differ by both sums' rounding. The bound
+/// At the moved layer: a dense layer's other units keep the base's values and must equal the
+/// full pass bit for bit; the moved unit's values are the base's rounded sum plus δ·a where the
+/// full pass sums again, so the two may differ by both sums' rounding. A conv layer recomputes
+/// the moved out-channel with the full pass's own loop: every value bit for bit. The bound
 /// for a sum of n products and a bias (Higham, *Accuracy and Stability of Numerical Algorithms*,
 /// 2nd ed., §3.1) is γ(n+1) · (Σ|w||a| + |b|), γ(k) = k·u / (1 − k·u), u = ε/2; with the update's
 /// own rounding the test allows γ(n+1) · (S_base + S_moved) + u · (|δ|·max|a| + |z|), S being
@@ -92,10 +93,9 @@ fn hints_agree<S: LayerScalar>(
                 }
                 let (zi, zf) = (&tail.steps[0].out, &full.steps[j].out);
                 let at = |e: usize| format!("{what}: {}[{k}] δ {d}, entry {e}", spec.name);
-                let hinted = matches!(node.layer.kind(), "dense" | "conv1d" | "conv2d");
+                let hinted = node.layer.kind() == "dense";
                 if hinted {
-                    // The moved unit's columns: dense r at every step; conv channel o's positions.
-                    let out = node.layer.output();
+                    // The moved unit's columns: r at every step.
                     let shape = &g.tensors()[own.start].spec.shape;
                     let channels = shape[0];
                     let unit = if t == own.start {
@@ -103,15 +103,7 @@ fn hints_agree<S: LayerScalar>(
                     } else {
                         k
                     };
-                    let per = out.size() / channels;
-                    let dense = node.layer.kind() == "dense";
-                    let in_unit = |c: usize| {
-                        if dense {
-                            c % channels == unit
-                        } else {
-                            c / per == unit
-                        }
-                    };
+                    let in_unit = |c: usize| c % channels == unit;
                     let own_abs: Vec<ArrayD<S>> = p[own.clone()].iter().map(abs).collect();
                     let mut q_abs = own_abs.clone();
                     q_abs[t - own.start] = abs(&q[t]);
