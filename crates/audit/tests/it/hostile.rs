@@ -53,11 +53,11 @@ fn a_description_of_29000_layers_parses_in_near_linear_time() {
     assert_eq!(graph.graph.nodes()[29_000].name, "layer29001");
 }
 
-/// The release audit of a file that fits a 2,000-layer description and holds 98,000 stray tensors
-/// beside it: its JUnit cases are matched to its 98,000 findings through a map (a scan of the
-/// findings per tensor and per finding was quadratic: over two minutes for `plumb audit` on
-/// such a file), and each layer's tensor name is taken from one list of expected tensors, not
-/// a list per layer. Time is not asserted; what the cases hold is.
+/// The release audit of a file that holds a 2,000-layer description's tensors and 98,000 stray
+/// tensors beside them: every stray is named (an error, so the shapes fail and the measures are
+/// skipped, saying why), and the JUnit cases are built from the 98,000 findings in one pass
+/// through a map (a scan of the findings per tensor and per finding was quadratic: over two
+/// minutes for `plumb audit` on such a file). Time is not asserted; what the report holds is.
 #[test]
 fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_time() {
     let mut text = String::from("inputs = 1\nloss = \"squared-error\"\n");
@@ -86,7 +86,11 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
     };
     let batch = Batch::synthetic(&desc.network, 8, 1);
     let audit = audit(&desc, &file, &batch, None, &Thresholds::default(), 1);
-    assert_eq!(audit.init.len(), 2_000);
+    assert!(audit.init.is_empty());
+    assert_eq!(
+        audit.skipped,
+        ["symmetry, unit health, initialisation and flow: the tensors do not fit the description"]
+    );
     let strays = audit
         .findings
         .iter()
@@ -94,9 +98,8 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
         .count();
     assert_eq!(strays, 98_000);
     let cases = audit.cases();
-    // One per layer's weight and one for the network: a stray tensor's finding is a shape
-    // finding, which has a case among the shape cases, not here.
-    assert_eq!(cases.len(), 2_001);
-    assert_eq!(cases[1_999].name, "audit layer2000");
-    assert_eq!(cases[2_000].name, "audit network");
+    // A stray tensor's finding is a shape finding, which has a case among the shape cases, not
+    // here; with the measures skipped, the network's case is all that is left.
+    assert_eq!(cases.len(), 1);
+    assert_eq!(cases[0].name, "audit network");
 }
