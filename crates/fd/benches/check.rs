@@ -3,27 +3,14 @@
 //! every perturbation. Run: `cargo bench -p plumb-fd --bench check`; the side-by-side run with the
 //! full check and thread scaling is `benches/side-by-side.sh` at the repository root.
 
+mod common;
+
 use criterion::{Criterion, criterion_group, criterion_main};
-use plumb_engine::{Activation, Batch, Coord, Init, Loss, Network, Rng, Weights};
+use plumb_engine::{Batch, Coord, Network, Weights};
 use plumb_fd::{Base, CheckConfig, Method, Precision, Sample, check, full_loss, select};
 use std::hint::black_box;
 
-pub fn network() -> (Network, Weights<f64>, Batch) {
-    let net = Network::new(
-        784,
-        &[
-            (128, Activation::Tanh),
-            (64, Activation::Tanh),
-            (10, Activation::Softmax),
-        ],
-        Loss::CrossEntropy,
-        1e-4,
-    )
-    .unwrap();
-    let w = Init::GlorotUniform.weights(&net, &mut Rng::new(1));
-    let batch = Batch::synthetic(&net, 32, 1);
-    (net, w, batch)
-}
+use common::network;
 
 /// The naive central difference of one coordinate: four whole forward passes.
 fn naive(net: &Network, w: &Weights<f64>, b: &Batch, c: Coord) -> f64 {

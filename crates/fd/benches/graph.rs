@@ -18,6 +18,8 @@
 //! RAYON_NUM_THREADS=1 and one BLAS thread). Run: `benches/graph.sh [section…]`, or
 //! `cargo bench -p plumb-fd --bench graph -- [section…]`.
 
+mod common;
+
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
@@ -25,8 +27,8 @@ use std::time::Instant;
 
 use ndarray::ArrayD;
 use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Moved, Shape, Trace};
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
-use plumb_fd::{CheckConfig, Method, Precision, Sample, Status, check, check_graph};
+use plumb_engine::{Activation, Batch, Init, Rng};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, check, check_graph};
 use plumb_formats::GraphDescription;
 use serde_json::{Value, json};
 
@@ -199,40 +201,14 @@ fn cnn() {
     );
 }
 
-/// The FNV-1a hash of the loss and every estimate's bits, and the count of each verdict.
+/// The fingerprint of a graph check's results (`common::fingerprint`).
 fn summary(r: &plumb_fd::GraphCheck) -> String {
-    let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
-    let mut eat = |x: f64| {
-        for byte in x.to_bits().to_le_bytes() {
-            hash = (hash ^ u64::from(byte)).wrapping_mul(0x0000_0100_0000_01b3);
-        }
-    };
-    eat(r.loss);
-    for c in &r.coords {
-        eat(c.numeric);
-        eat(c.analytic);
-    }
-    for d in &r.directions {
-        eat(d.numeric);
-        eat(d.analytic);
-    }
-    let statuses = r.coords.iter().map(|c| c.status);
-    let statuses = statuses.chain(r.directions.iter().map(|d| d.status));
-    let mut counts = [0usize; 4];
-    for s in statuses {
-        counts[s as usize] += 1;
-    }
-    let names = [
-        Status::Match,
-        Status::Unsettled,
-        Status::Unreliable,
-        Status::Mismatch,
-    ];
-    let counts: Vec<String> = names
+    let coords = r.coords.iter().map(|c| (c.numeric, c.analytic, c.status));
+    let directions = r
+        .directions
         .iter()
-        .map(|s| format!("{} {}", counts[*s as usize], s.name()))
-        .collect();
-    format!("results {hash:016x}; {}", counts.join(", "))
+        .map(|d| (d.numeric, d.analytic, d.status));
+    common::fingerprint(r.loss, coords.chain(directions))
 }
 
 fn cnn_plumb() {
@@ -249,19 +225,7 @@ fn cnn_plumb() {
 }
 
 fn dense() {
-    let net = Network::new(
-        784,
-        &[
-            (128, Activation::Tanh),
-            (64, Activation::Tanh),
-            (10, Activation::Softmax),
-        ],
-        Loss::CrossEntropy,
-        1e-4,
-    )
-    .unwrap();
-    let w = Init::GlorotUniform.weights(&net, &mut Rng::new(1));
-    let batch = Batch::synthetic(&net, 32, 1);
+    let (net, w, batch) = common::network();
     let mut builder = GraphBuilder::new(
         Shape::Flat(784),
         LossConfig {

@@ -7,25 +7,15 @@
 //! bit) and its verdicts, so that a run before and after a change shows what moved: f64's
 //! fingerprint must not.
 
+mod common;
+
 use std::time::Instant;
 
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng, Weights};
-use plumb_fd::{CheckConfig, CheckResult, Method, Precision, Sample, Status, check};
+use plumb_engine::Weights;
+use plumb_fd::{CheckConfig, CheckResult, Method, Precision, Sample, check};
 
 fn main() {
-    let net = Network::new(
-        784,
-        &[
-            (128, Activation::Tanh),
-            (64, Activation::Tanh),
-            (10, Activation::Softmax),
-        ],
-        Loss::CrossEntropy,
-        1e-4,
-    )
-    .unwrap();
-    let w = Init::GlorotUniform.weights(&net, &mut Rng::new(1));
-    let batch = Batch::synthetic(&net, 32, 1);
+    let (net, w, batch) = common::network();
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(1)
         .build()
@@ -61,42 +51,16 @@ fn main() {
     }
 }
 
-/// The FNV-1a hash of the loss and every estimate's bits, and the count of each verdict.
+/// The fingerprint of a check's results (`common::fingerprint`) and the steps its coordinates kept.
 fn summary(r: &CheckResult, w: &Weights<f64>) -> String {
-    let mut hash: u64 = 0xcbf2_9ce4_8422_2325;
-    let mut eat = |x: f64| {
-        for byte in x.to_bits().to_le_bytes() {
-            hash = (hash ^ u64::from(byte)).wrapping_mul(0x0000_0100_0000_01b3);
-        }
-    };
-    eat(r.loss);
-    for c in &r.coords {
-        eat(c.numeric);
-        eat(c.analytic);
-    }
-    for d in &r.directions {
-        eat(d.numeric);
-        eat(d.analytic);
-    }
-    let statuses = r.coords.iter().map(|c| c.status);
-    let statuses = statuses.chain(r.directions.iter().map(|d| d.status));
-    let mut counts = [0usize; 4];
-    for s in statuses {
-        counts[s as usize] += 1;
-    }
-    let names = [
-        Status::Match,
-        Status::Unsettled,
-        Status::Unreliable,
-        Status::Mismatch,
-    ];
-    let counts: Vec<String> = names
+    let coords = r.coords.iter().map(|c| (c.numeric, c.analytic, c.status));
+    let directions = r
+        .directions
         .iter()
-        .map(|s| format!("{} {}", counts[*s as usize], s.name()))
-        .collect();
+        .map(|d| (d.numeric, d.analytic, d.status));
     format!(
-        "results {hash:016x}; {}; steps kept {}",
-        counts.join(", "),
+        "{}; steps kept {}",
+        common::fingerprint(r.loss, coords.chain(directions)),
         steps(r, w)
     )
 }
