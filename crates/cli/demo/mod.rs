@@ -83,11 +83,15 @@ pub(crate) fn probe_example(
     thin: bool,
     settings: &Settings,
 ) -> Option<probe::ProbeReport> {
-    let numpy = std::process::Command::new("python3")
-        .args(["-c", "import numpy"])
-        .stderr(std::process::Stdio::null())
-        .status()
-        .is_ok_and(|s| s.success());
+    // Asked of python3 once per run, for the three scenarios' examples.
+    static NUMPY: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    let numpy = *NUMPY.get_or_init(|| {
+        std::process::Command::new("python3")
+            .args(["-c", "import numpy"])
+            .stderr(std::process::Stdio::null())
+            .status()
+            .is_ok_and(|s| s.success())
+    });
     // From the checkout's root, or from anywhere on the machine that built this binary.
     let found = [
         PathBuf::from(script),
