@@ -94,6 +94,23 @@ pub enum DataError {
     )]
     Unterminated { path: PathBuf, line: u64 },
 
+    #[error(
+        "{}: line {line}: the {samples} samples before this line already hold {} of values{}; \
+         a gradient check needs a batch, not a whole data set: save a few hundred samples \
+         (e.g. `head -n 1001 {}` for the header and 1,000 rows)",
+        .path.display(), bytes_text(*.bytes), if *.refused { ", and the machine would not give \
+         more memory" } else { ", plumb's limit for a data file's values" }, .path.display()
+    )]
+    TooManyValues {
+        path: PathBuf,
+        line: u64,
+        samples: usize,
+        /// Bytes the parsed values take (8 per value).
+        bytes: u64,
+        /// The allocator refused the memory (true), or the values reached the limit (false).
+        refused: bool,
+    },
+
     #[error("{}: line {line}, column `{column}`: {problem}", .path.display())]
     BadValue {
         path: PathBuf,
@@ -212,6 +229,15 @@ fn fraction_text(fraction: &Option<(Vec<usize>, String, f64)>) -> String {
 }
 
 /// An index as NumPy takes it: `[3]`, `[2, 1]`.
+fn bytes_text(bytes: u64) -> String {
+    let mib = bytes as f64 / f64::from(1u32 << 20);
+    if mib >= 1024.0 {
+        format!("{:.1} GiB", mib / 1024.0)
+    } else {
+        format!("{mib:.1} MiB")
+    }
+}
+
 fn index_text(index: &[usize]) -> String {
     let parts: Vec<String> = index.iter().map(usize::to_string).collect();
     format!("[{}]", parts.join(", "))
@@ -245,6 +271,10 @@ pub fn read_data(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, Da
         AxisOrder::ChannelsFirst,
     )
 }
+
+/// The most a CSV's parsed values may take (4 GiB, 512 Mi values as f64): past it the file is
+/// refused, before the machine's memory is what stops it.
+pub const MAX_VALUE_BYTES: u64 = crate::MAX_DATA_BYTES;
 
 /// How the target columns of a file are to be read.
 #[derive(Clone, Copy)]
@@ -306,6 +336,7 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
     let mut y = Vec::new();
     let mut rows = 0usize;
     let mut record = csv::StringRecord::new();
+    let per_row = inputs + outputs;
     loop {
         let line = reader.position().line();
         match reader.read_record(&mut record) {
@@ -326,6 +357,19 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
                 line,
                 expected: columns,
                 found: record.len(),
+            });
+        }
+        // Room for the row, asked of the allocator fallibly: a file of short valid rows can hold
+        // more values than the machine has memory for (4 GiB of "0," is 2 Gi values).
+        let held = (x.len() + y.len()) as u64 * 8;
+        let limit = held + per_row as u64 * 8 > MAX_VALUE_BYTES;
+        if limit || x.try_reserve(inputs).is_err() || y.try_reserve(outputs).is_err() {
+            return Err(DataError::TooManyValues {
+                path: path.to_path_buf(),
+                line,
+                samples: rows,
+                bytes: held,
+                refused: !limit,
             });
         }
         let bad = |column: usize, problem: String| DataError::BadValue {
