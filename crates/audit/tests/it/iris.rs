@@ -1,15 +1,22 @@
-//! Unit health on real data: the Iris measurements (Fisher 1936, as compiled into linfa-datasets),
-//! standardised, through a He-initialised 4-16-16-3 ReLU network. The dead and inactive fractions
+//! Unit health on real data: the Iris measurements (Fisher 1936, the UCI version in
+//! fixtures/data/iris.csv), standardised, through a He-initialised 4-16-16-3 ReLU network. The dead and inactive fractions
 //! the audit reports must be those a direct count over the engine's activations gives.
 
 use ndarray::Array2;
 use plumb_audit::layer_health;
 use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
 
+/// fixtures/data/iris.csv (its provenance is in fixtures/data/README.md): four measurements, then
+/// the species 0–2.
 fn iris() -> Batch {
-    let data = linfa_datasets::iris();
-    let records: Vec<f64> = data.records().iter().copied().collect();
-    let labels: Vec<usize> = data.targets().iter().copied().collect();
+    let text = include_str!("../../../../fixtures/data/iris.csv");
+    let mut records = Vec::new();
+    let mut labels = Vec::new();
+    for line in text.lines().skip(1) {
+        let fields: Vec<f64> = line.split(',').map(|f| f.parse().unwrap()).collect();
+        records.extend_from_slice(&fields[..4]);
+        labels.push(fields[4] as usize);
+    }
     let m = labels.len();
     let mut x = Array2::from_shape_vec((m, 4), records).unwrap();
     for mut col in x.columns_mut() {
