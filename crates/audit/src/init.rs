@@ -1,5 +1,5 @@
 //! Whether a layer's weights look drawn from an initialisation scheme: the Kolmogorov–Smirnov test
-//! against the scheme's distribution (statrs's Normal and Uniform CDFs), with the p-value from the
+//! against the scheme's distribution (its normal or uniform CDF), with the p-value from the
 //! Kolmogorov distribution, Q_KS(λ) = 2 Σ (−1)^{j−1} e^{−2j²λ²} at λ = (√n + 0.12 + 0.11/√n)·D
 //! (Numerical Recipes, 2nd ed., §14.3). Scales from the published formulas (plumb_engine::Init).
 //!
@@ -10,7 +10,6 @@
 
 use plumb_engine::{Init, LayerSpec};
 use serde::Serialize;
-use statrs::distribution::{ContinuousCDF, Normal, Uniform};
 
 /// The KS statistic D = sup |F_n − F| of a sample against a CDF, and its p-value.
 pub fn ks_test(values: &[f64], cdf: impl Fn(f64) -> f64) -> (f64, f64) {
@@ -50,16 +49,16 @@ pub fn q_ks(lambda: f64) -> f64 {
     (2.0 * sum).clamp(0.0, 1.0)
 }
 
-/// The CDF of a scheme's weights for a layer.
+/// The CDF of a scheme's weights for a layer: uniform on [−a, a] with a = √3·σ, or normal with
+/// mean 0 and σ, Φ(x/σ) = erfc(−x/(σ√2))/2 (erfc from the libm crate, a port of musl's, so the
+/// far tails keep their relative accuracy where 1 − erf would round to 0).
 pub fn scheme_cdf(init: Init, fan_in: usize, fan_out: usize) -> Box<dyn Fn(f64) -> f64> {
     let sd = init.std_dev(fan_in, fan_out);
     if init.is_uniform() {
         let a = 3f64.sqrt() * sd;
-        let u = Uniform::new(-a, a).expect("a > 0");
-        Box::new(move |x| u.cdf(x))
+        Box::new(move |x| ((x + a) / (2.0 * a)).clamp(0.0, 1.0))
     } else {
-        let n = Normal::new(0.0, sd).expect("sd > 0");
-        Box::new(move |x| n.cdf(x))
+        Box::new(move |x| 0.5 * libm::erfc(-x / (sd * std::f64::consts::SQRT_2)))
     }
 }
 

@@ -226,35 +226,7 @@ pub fn select_tensors(
 /// n coordinates shared over strata of the given sizes: each its minimum (see [`select_tensors`]),
 /// the rest in proportion to what is left of each, by largest remainder.
 fn spread(sizes: &[usize], n: usize) -> Vec<usize> {
-    let mut q: Vec<usize> = sizes.iter().map(|&s| s.min(STRATUM_MINIMUM)).collect();
-    if q.iter().sum::<usize>() > n {
-        q = sizes.iter().map(|&s| s.min(1)).collect();
-    }
-    let rest = n.saturating_sub(q.iter().sum());
-    let room: Vec<usize> = sizes.iter().zip(&q).map(|(&s, &b)| s - b).collect();
-    let total_room: usize = room.iter().sum();
-    if rest > 0 && total_room > 0 {
-        let mut shares: Vec<(usize, usize, usize)> = room
-            .iter()
-            .enumerate()
-            .map(|(i, &r)| (i, rest * r / total_room, rest * r % total_room))
-            .collect();
-        for &(i, share, _) in &shares {
-            q[i] += share;
-        }
-        let mut left = rest - shares.iter().map(|s| s.1).sum::<usize>();
-        shares.sort_by_key(|&(i, _, rem)| (std::cmp::Reverse(rem), i));
-        for &(i, _, _) in &shares {
-            if left == 0 {
-                break;
-            }
-            if q[i] < sizes[i] {
-                q[i] += 1;
-                left -= 1;
-            }
-        }
-    }
-    q
+    share(sizes, STRATUM_MINIMUM, 1, n)
 }
 
 /// k distinct indices of 0..n, seeded (partial Fisher–Yates over a sparse map, so picking a few

@@ -26,6 +26,41 @@ fn p(values: &[f64], scheme: Init) -> f64 {
     ks_test(values, scheme_cdf(scheme, 40, 400)).1
 }
 
+/// The schemes' CDFs at multiples of σ against the standard normal's Φ (Abramowitz & Stegun,
+/// table 26.1, quoted from memory to 7 decimals; checked a second way with Python's
+/// `0.5 * math.erfc(-k / math.sqrt(2))`, which gives 0.8413447460685429, 0.9750021048517795,
+/// 0.006209665325776139 and 9.865876450377012e-10) and the uniform's (k·σ on [−√3σ, √3σ]).
+#[test]
+fn scheme_cdfs_are_the_normal_and_uniform_distributions() {
+    let (fan_in, fan_out) = (40, 400);
+    let normal = Init::GlorotNormal;
+    let sd = normal.std_dev(fan_in, fan_out);
+    let cdf = scheme_cdf(normal, fan_in, fan_out);
+    for (k, phi) in [
+        (1.0, 0.8413447),
+        (1.96, 0.9750021),
+        (-2.5, 0.0062097),
+        (0.0, 0.5),
+    ] {
+        assert!((cdf(k * sd) - phi).abs() < 5e-8, "Φ({k}) = {}", cdf(k * sd));
+    }
+    // The far tail keeps its relative accuracy (1 − erf would give 0 or a few ulp of 1 here).
+    let tail = cdf(-6.0 * sd);
+    assert!(
+        (tail / 9.865876450377012e-10 - 1.0).abs() < 1e-12,
+        "Φ(−6) = {tail}"
+    );
+    let uniform = Init::GlorotUniform;
+    let sd = uniform.std_dev(fan_in, fan_out);
+    let cdf = scheme_cdf(uniform, fan_in, fan_out);
+    let a = 3f64.sqrt() * sd;
+    assert_eq!(cdf(-a), 0.0);
+    assert_eq!(cdf(a), 1.0);
+    assert_eq!(cdf(-2.0 * a), 0.0);
+    assert_eq!(cdf(0.0), 0.5);
+    assert!((cdf(sd) - (0.5 + 1.0 / (2.0 * 3f64.sqrt()))).abs() < 1e-15);
+}
+
 #[test]
 fn each_scheme_passes_its_own_test_at_the_one_percent_level() {
     for scheme in Init::ALL {
