@@ -10,9 +10,8 @@ use plumb_formats::{
     Description, Existing, MAX_REPORT_BYTES, expected_tensors, read_input, write_file,
 };
 use plumb_report::{
-    BASELINE_VERSION, Baseline, Block, Cell, ColorChoice, Document, Finding, Format, NetworkId,
-    Tone, Verdict, render_html, render_json, render_junit, render_markdown, render_table, tally,
-    use_color,
+    BASELINE_VERSION, Baseline, Cell, ColorChoice, Document, Format, NetworkId, Tone, Verdict,
+    render_html, render_json, render_junit, render_markdown, render_table, use_color,
 };
 use serde::Serialize;
 
@@ -123,7 +122,7 @@ impl Settings {
     /// baseline files asked for — and returns the run's verdict.
     pub fn emit<T: Serialize>(&self, json: &T, mut doc: Document) -> Result<Verdict> {
         let mut value = serde_json::to_value(json).context("the report serialises")?;
-        let findings = all_findings(&doc);
+        let findings = doc.findings();
         let mut verdict = doc.verdict().unwrap_or(Verdict::Pass);
         // The JUnit cases must fail where the findings do, baseline changes included.
         let mut every = findings.clone();
@@ -133,50 +132,26 @@ impl Settings {
             if let Some(why) = base.unfit_for(&doc) {
                 bail!("{}: {why}", path.display());
             }
-            let changes = base.compare(&doc, &findings);
-            every.extend(changes.iter().cloned());
-            // Changes judged like findings: those at the run's --fail-on level or worse fail it.
-            let worse = changes.iter().filter(|f| f.severity >= doc.fail_on).count();
+            let judged = base.judge(&path.display().to_string(), &mut doc, &findings);
+            verdict = judged.verdict;
             if let Some(obj) = value.as_object_mut() {
                 obj.insert(
                     "baseline".into(),
-                    serde_json::json!({"path": path, "changes": changes.len(), "worse": worse}),
+                    serde_json::json!({"path": path, "changes": judged.changes.len(), "worse": judged.worse}),
                 );
                 if let Some(list) = obj.get_mut("findings").and_then(|f| f.as_array_mut()) {
                     list.extend(
-                        changes
+                        judged
+                            .changes
                             .iter()
                             .map(|f| serde_json::to_value(f).expect("a finding serialises")),
                     );
                 }
-            }
-            insert_before_verdict(
-                &mut doc,
-                vec![
-                    Block::Heading(format!("against the baseline {}", path.display())),
-                    Block::Findings(changes.clone()),
-                ],
-            );
-            if !changes.is_empty() {
-                // The verdict line counts what the report lists: the baseline's changes too.
-                let since = format!("since the baseline {}: {}", path.display(), tally(&changes));
-                let summary = match (worse, verdict_summary(&doc)) {
-                    (0, Some(own)) => format!("{own}; {since}"),
-                    (0, None) => since,
-                    _ => format!(
-                        "{worse} change{} at {} or worse {since}",
-                        if worse == 1 { "" } else { "s" },
-                        doc.fail_on
-                    ),
-                };
-                if worse > 0 {
-                    verdict = Verdict::Fail;
-                    if let Some(obj) = value.as_object_mut() {
-                        obj.insert("verdict".into(), serde_json::json!("fail"));
-                    }
+                if judged.worse > 0 {
+                    obj.insert("verdict".into(), serde_json::json!("fail"));
                 }
-                set_verdict(&mut doc, verdict, &summary);
             }
+            every.extend(judged.changes);
         }
         doc.fail_cases_for(&every);
         let mut buf = Vec::new();
@@ -273,46 +248,6 @@ pub fn graph_network_id(desc: &plumb_formats::GraphDescription) -> NetworkId {
             .iter()
             .map(|f| (f.name.clone(), f.shape.clone()))
             .collect(),
-    }
-}
-
-fn all_findings(doc: &Document) -> Vec<Finding> {
-    doc.blocks
-        .iter()
-        .filter_map(|b| match b {
-            Block::Findings(f) => Some(f.clone()),
-            _ => None,
-        })
-        .flatten()
-        .collect()
-}
-
-fn insert_before_verdict(doc: &mut Document, blocks: Vec<Block>) {
-    let at = doc
-        .blocks
-        .iter()
-        .rposition(|b| matches!(b, Block::Verdict(..)))
-        .unwrap_or(doc.blocks.len());
-    for (i, b) in blocks.into_iter().enumerate() {
-        doc.blocks.insert(at + i, b);
-    }
-}
-
-fn verdict_summary(doc: &Document) -> Option<String> {
-    doc.blocks.iter().rev().find_map(|b| match b {
-        Block::Verdict(_, s) => Some(s.clone()),
-        _ => None,
-    })
-}
-
-fn set_verdict(doc: &mut Document, v: Verdict, summary: &str) {
-    if let Some(b) = doc
-        .blocks
-        .iter_mut()
-        .rev()
-        .find(|b| matches!(b, Block::Verdict(..)))
-    {
-        *b = Block::Verdict(v, summary.to_string());
     }
 }
 

@@ -14,7 +14,18 @@ use std::collections::BTreeMap;
 use serde::{Deserialize, Serialize};
 
 use crate::document::figure;
-use crate::{Document, Finding, Severity};
+use crate::{Block, Document, Finding, Severity, Verdict, tally};
+
+/// A run judged against a baseline ([`Baseline::judge`]).
+#[derive(Clone, Debug)]
+pub struct Judged {
+    /// What changed since the baseline, as findings.
+    pub changes: Vec<Finding>,
+    /// How many of the changes are at the run's `fail_on` severity or worse.
+    pub worse: usize,
+    /// The run's verdict with the changes counted.
+    pub verdict: Verdict,
+}
 
 /// What identifies the network a run was made on.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -96,6 +107,41 @@ impl Baseline {
                     .into(),
             ),
             _ => None,
+        }
+    }
+
+    /// Judges a run against this baseline: the changes since it are findings of the run,
+    /// listed before its verdict, and those at the run's `fail_on` level or worse fail it, as its
+    /// own findings would; the verdict line then counts them too. `findings` are the run's own;
+    /// `source` names the baseline (its path) in the report.
+    pub fn judge(&self, source: &str, doc: &mut Document, findings: &[Finding]) -> Judged {
+        let changes = self.compare(doc, findings);
+        let worse = changes.iter().filter(|f| f.severity >= doc.fail_on).count();
+        let mut verdict = doc.verdict().unwrap_or(Verdict::Pass);
+        doc.insert_before_verdict(vec![
+            Block::Heading(format!("against the baseline {source}")),
+            Block::Findings(changes.clone()),
+        ]);
+        if !changes.is_empty() {
+            let since = format!("since the baseline {source}: {}", tally(&changes));
+            let summary = match (worse, doc.verdict_summary()) {
+                (0, Some(own)) => format!("{own}; {since}"),
+                (0, None) => since,
+                _ => format!(
+                    "{worse} change{} at {} or worse {since}",
+                    if worse == 1 { "" } else { "s" },
+                    doc.fail_on
+                ),
+            };
+            if worse > 0 {
+                verdict = Verdict::Fail;
+            }
+            doc.set_verdict(verdict, &summary);
+        }
+        Judged {
+            changes,
+            worse,
+            verdict,
         }
     }
 

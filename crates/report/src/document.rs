@@ -226,6 +226,50 @@ impl Document {
         }
     }
 
+    /// Every finding the document lists, in order.
+    pub fn findings(&self) -> Vec<Finding> {
+        self.blocks
+            .iter()
+            .filter_map(|b| match b {
+                Block::Findings(f) => Some(f.clone()),
+                _ => None,
+            })
+            .flatten()
+            .collect()
+    }
+
+    /// The verdict block's summary line, if the document has one.
+    pub fn verdict_summary(&self) -> Option<String> {
+        self.blocks.iter().rev().find_map(|b| match b {
+            Block::Verdict(_, s) => Some(s.clone()),
+            _ => None,
+        })
+    }
+
+    /// Replaces the verdict block's verdict and summary (a document without one is left as is).
+    pub fn set_verdict(&mut self, v: crate::Verdict, summary: &str) {
+        if let Some(b) = self
+            .blocks
+            .iter_mut()
+            .rev()
+            .find(|b| matches!(b, Block::Verdict(..)))
+        {
+            *b = Block::Verdict(v, summary.to_string());
+        }
+    }
+
+    /// Inserts blocks just before the verdict block (at the end when there is none).
+    pub fn insert_before_verdict(&mut self, blocks: Vec<Block>) {
+        let at = self
+            .blocks
+            .iter()
+            .rposition(|b| matches!(b, Block::Verdict(..)))
+            .unwrap_or(self.blocks.len());
+        for (i, b) in blocks.into_iter().enumerate() {
+            self.blocks.insert(at + i, b);
+        }
+    }
+
     /// Appends blocks, e.g. an optional plot.
     pub fn extend(&mut self, blocks: impl IntoIterator<Item = Block>) {
         self.blocks.extend(blocks);

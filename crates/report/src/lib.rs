@@ -25,7 +25,7 @@ mod plot;
 mod render;
 mod sources;
 
-pub use baseline::{BASELINE_VERSION, Baseline, NetworkId, Recorded};
+pub use baseline::{BASELINE_VERSION, Baseline, Judged, NetworkId, Recorded};
 pub use document::{Block, Case, Cell, Document, Table, Tone, number};
 pub use finding::{Finding, Severity, Verdict, tally};
 pub use html::render_html;
