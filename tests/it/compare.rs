@@ -201,7 +201,7 @@ fn an_unusable_gradient_file_exits_2() {
     assert!(run.stderr.contains("int64"), "{}", run.stderr);
 }
 
-/// A loss summed over the batch with its L2 term (J·m): the gradient is m·G exactly. Named as
+/// A loss summed over the batch with its L2 term (J·m): the gradient is m·G exactly. Tensor as
 /// missing-batch-mean with that detail (regression: review found it unexplained). The gradient is
 /// the NumPy fixture's correct one, scaled here by the batch size of fixtures/data/compare.csv (10).
 #[test]

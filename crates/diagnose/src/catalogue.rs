@@ -11,8 +11,8 @@ use plumb_engine::{
     Weights,
 };
 
-use crate::Named;
 use crate::diagnose::Hypotheses;
+use plumb_formats::Tensor;
 
 /// What a hypothesis needs: the network, where it is evaluated, the reference gradient, and how the
 /// engine's augmented matrices map to the tensors of the weight file's layout.
@@ -20,10 +20,10 @@ pub struct Problem<'a> {
     pub net: &'a Network,
     pub weights: &'a Weights<f64>,
     pub batch: &'a Batch,
-    pub to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Named>,
+    pub to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Tensor>,
     trace: Trace<f64>,
     pub reference: Weights<f64>,
-    pub reference_tensors: Vec<Named>,
+    pub reference_tensors: Vec<Tensor>,
 }
 
 impl<'a> Problem<'a> {
@@ -31,7 +31,7 @@ impl<'a> Problem<'a> {
         net: &'a Network,
         weights: &'a Weights<f64>,
         batch: &'a Batch,
-        to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Named>,
+        to_tensors: &'a dyn Fn(&Weights<f64>) -> Vec<Tensor>,
     ) -> Problem<'a> {
         let trace = net.forward(weights, batch.x.view());
         let reference = net.backward(weights, &trace, batch.y.view());
@@ -48,7 +48,7 @@ impl<'a> Problem<'a> {
     }
 
     /// The gradient of a departure from the reference backward pass, as layout tensors.
-    pub fn variant(&self, v: &Variant) -> Vec<Named> {
+    pub fn variant(&self, v: &Variant) -> Vec<Tensor> {
         let g = self
             .net
             .backward_with(self.weights, &self.trace, self.batch.y.view(), v);
@@ -74,7 +74,7 @@ impl<'a> Problem<'a> {
 pub struct Hypothesis {
     /// Where or how, for the report ("hidden layer 2", "last sample", …); empty when there is one way.
     pub label: String,
-    pub tensors: Vec<Named>,
+    pub tensors: Vec<Tensor>,
     /// Per tensor, the factor of a `constant-factor` hypothesis.
     pub factors: Option<Vec<f64>>,
     /// The 0-based layer the mistake sits in, when it sits in one.
@@ -86,11 +86,11 @@ pub struct Hypothesis {
 pub const CONSTANT_FACTOR: &str = "constant-factor";
 
 impl Hypothesis {
-    pub(crate) fn plain(tensors: Vec<Named>) -> Hypothesis {
+    pub(crate) fn plain(tensors: Vec<Tensor>) -> Hypothesis {
         Hypothesis::at(String::new(), tensors)
     }
 
-    pub(crate) fn at(label: String, tensors: Vec<Named>) -> Hypothesis {
+    pub(crate) fn at(label: String, tensors: Vec<Tensor>) -> Hypothesis {
         Hypothesis {
             label,
             tensors,
@@ -106,7 +106,7 @@ pub struct Mistake {
     pub summary: &'static str,
     /// The hypotheses for a problem; `outside` is the gradient under diagnosis (used only by
     /// mistakes that fit a parameter to it, such as a constant factor).
-    pub hypotheses: fn(&Problem<'_>, &[Named]) -> Vec<Hypothesis>,
+    pub hypotheses: fn(&Problem<'_>, &[Tensor]) -> Vec<Hypothesis>,
 }
 
 fn with(v: impl FnOnce(&mut Variant)) -> Variant {
@@ -115,11 +115,11 @@ fn with(v: impl FnOnce(&mut Variant)) -> Variant {
     out
 }
 
-pub(crate) fn scaled(tensors: &[Named], f: f64) -> Vec<Named> {
+pub(crate) fn scaled(tensors: &[Tensor], f: f64) -> Vec<Tensor> {
     tensors
         .iter()
         .map(|t| {
-            Named::new(
+            Tensor::new(
                 t.name.clone(),
                 t.shape.clone(),
                 t.data.iter().map(|v| v * f).collect(),
@@ -258,7 +258,7 @@ pub const CATALOGUE: &[Mistake] = &[
         summary: "the gradient's rows and columns swapped",
         hypotheses: |p, _| {
             vec![Hypothesis::plain(
-                p.reference_tensors.iter().map(Named::transposed).collect(),
+                p.reference_tensors.iter().map(Tensor::transposed).collect(),
             )]
         },
     },
@@ -317,13 +317,13 @@ pub const CATALOGUE: &[Mistake] = &[
 
 /// Every pair of tensors exchanged (only the two tensors in each hypothesis: the others are
 /// left as the reference has them).
-pub(crate) fn swaps(r: &[Named]) -> Vec<Hypothesis> {
+pub(crate) fn swaps(r: &[Tensor]) -> Vec<Hypothesis> {
     let mut out = Vec::new();
     for i in 0..r.len() {
         for j in i + 1..r.len() {
             let t = vec![
-                Named::new(r[i].name.clone(), r[j].shape.clone(), r[j].data.clone()),
-                Named::new(r[j].name.clone(), r[i].shape.clone(), r[i].data.clone()),
+                Tensor::new(r[i].name.clone(), r[j].shape.clone(), r[j].data.clone()),
+                Tensor::new(r[j].name.clone(), r[i].shape.clone(), r[i].data.clone()),
             ];
             out.push(Hypothesis::at(format!("{} ↔ {}", r[i].name, r[j].name), t));
         }
@@ -332,7 +332,7 @@ pub(crate) fn swaps(r: &[Named]) -> Vec<Hypothesis> {
 }
 
 /// Per tensor the least-squares factor c = ⟨U, G⟩ / ⟨G, G⟩ of the outside gradient U and c·G.
-pub(crate) fn fitted_factor(reference: &[Named], outside: &[Named]) -> Hypothesis {
+pub(crate) fn fitted_factor(reference: &[Tensor], outside: &[Tensor]) -> Hypothesis {
     let mut factors = Vec::new();
     let tensors = reference
         .iter()
@@ -350,7 +350,7 @@ pub(crate) fn fitted_factor(reference: &[Named], outside: &[Named]) -> Hypothesi
             // entries explain rank after them: the diagnosis sees to both.
             let c = if c == 0.0 { f64::NAN } else { c };
             factors.push(c);
-            Named::new(
+            Tensor::new(
                 r.name.clone(),
                 r.shape.clone(),
                 r.data.iter().map(|v| v * c).collect(),
@@ -366,11 +366,11 @@ pub(crate) fn fitted_factor(reference: &[Named], outside: &[Named]) -> Hypothesi
 }
 
 impl Hypotheses for Problem<'_> {
-    fn reference(&self) -> &[Named] {
+    fn reference(&self) -> &[Tensor] {
         &self.reference_tensors
     }
 
-    fn hypotheses(&self, outside: &[Named]) -> Vec<(&'static str, Hypothesis)> {
+    fn hypotheses(&self, outside: &[Tensor]) -> Vec<(&'static str, Hypothesis)> {
         CATALOGUE
             .iter()
             .flat_map(|m| {

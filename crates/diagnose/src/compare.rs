@@ -1,52 +1,6 @@
 //! One outside tensor against the reference: how far apart, how aligned, and where it is worst.
 
-/// A named tensor in C order, in the weight file's own layout.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Named {
-    pub name: String,
-    pub shape: Vec<usize>,
-    pub data: Vec<f64>,
-}
-
-impl Named {
-    pub fn new(name: impl Into<String>, shape: Vec<usize>, data: Vec<f64>) -> Named {
-        Named {
-            name: name.into(),
-            shape,
-            data,
-        }
-    }
-
-    pub fn norm(&self) -> f64 {
-        self.data.iter().map(|v| v * v).sum::<f64>().sqrt()
-    }
-
-    /// A 2-D tensor transposed (shape reversed); others unchanged.
-    pub fn transposed(&self) -> Named {
-        match self.shape.as_slice() {
-            &[r, c] => {
-                let mut data = vec![0.0; self.data.len()];
-                for i in 0..r {
-                    for j in 0..c {
-                        data[j * r + i] = self.data[i * c + j];
-                    }
-                }
-                Named::new(self.name.clone(), vec![c, r], data)
-            }
-            _ => self.clone(),
-        }
-    }
-
-    /// The multi-index of a flat C-order position.
-    pub fn index_of(&self, mut k: usize) -> Vec<usize> {
-        let mut idx = vec![0; self.shape.len()];
-        for (i, &d) in self.shape.iter().enumerate().rev() {
-            idx[i] = k % d.max(1);
-            k /= d.max(1);
-        }
-        idx
-    }
-}
+use plumb_formats::Tensor;
 
 /// The figures of one outside tensor against the reference (same shape).
 #[derive(Clone, Debug, PartialEq)]
@@ -71,8 +25,8 @@ pub struct TensorComparison {
 /// agreement; `floor` the least denominator of a relative error (`plumb_fd::relative_floor`: the
 /// tensor's scale, or the network's for a tensor that is zero or tiny).
 pub fn compare_tensor(
-    outside: &Named,
-    reference: &Named,
+    outside: &Tensor,
+    reference: &Tensor,
     tolerance: f64,
     floor: f64,
 ) -> TensorComparison {
@@ -134,8 +88,8 @@ mod tests {
 
     #[test]
     fn figures_of_a_scaled_copy() {
-        let r = Named::new("t", vec![3], vec![1.0, 2.0, -3.0]);
-        let u = Named::new("t", vec![3], vec![2.0, 4.0, -6.0]);
+        let r = Tensor::new("t", vec![3], vec![1.0, 2.0, -3.0]);
+        let u = Tensor::new("t", vec![3], vec![2.0, 4.0, -6.0]);
         let c = compare_tensor(&u, &r, 1e-6, 0.3);
         assert!((c.scale - 2.0).abs() < 1e-15);
         assert!((c.cosine - 1.0).abs() < 1e-15);
@@ -147,7 +101,7 @@ mod tests {
 
     #[test]
     fn transposition_and_indices() {
-        let t = Named::new("t", vec![2, 3], vec![0.0, 1.0, 2.0, 3.0, 4.0, 5.0]);
+        let t = Tensor::new("t", vec![2, 3], vec![0.0, 1.0, 2.0, 3.0, 4.0, 5.0]);
         let tt = t.transposed();
         assert_eq!(tt.shape, [3, 2]);
         assert_eq!(tt.data, [0.0, 3.0, 1.0, 4.0, 2.0, 5.0]);

@@ -1,17 +1,17 @@
 //! Naming the mistake behind a wrong tensor.
 
-use crate::Named;
 use crate::catalogue::{CONSTANT_FACTOR, Hypothesis};
+use plumb_formats::Tensor;
 
 /// What a diagnosis tests against: the reference tensors (in the layout the outside gradient is
 /// named in) and the hypotheses of a catalogue, each with its code. The dense catalogue
 /// ([`crate::Problem`]) and the layer graph's ([`crate::GraphProblem`]) are two sources; the rule
 /// that names a tensor is one.
 pub trait Hypotheses {
-    fn reference(&self) -> &[Named];
+    fn reference(&self) -> &[Tensor];
     /// Every hypothesis, in the order ties are broken; `outside` is the gradient under diagnosis
     /// (for hypotheses that fit a parameter to it, such as a constant factor).
-    fn hypotheses(&self, outside: &[Named]) -> Vec<(&'static str, Hypothesis)>;
+    fn hypotheses(&self, outside: &[Tensor]) -> Vec<(&'static str, Hypothesis)>;
 }
 
 /// What explains one tensor of an outside gradient.
@@ -67,7 +67,7 @@ fn distance(a: &[f64], b: &[f64]) -> f64 {
 /// `constant-factor` only when no other code reproduces it.
 pub fn diagnose(
     problem: &dyn Hypotheses,
-    outside: &[Named],
+    outside: &[Tensor],
     names: &[String],
     tolerances: &[f64],
 ) -> Vec<Diagnosis> {

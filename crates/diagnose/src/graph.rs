@@ -18,9 +18,9 @@ use plumb_engine::graph::{
 use plumb_engine::{Activation, L2Divisor, Regularization, Samples};
 
 use crate::catalogue::{CONSTANT_FACTOR, Hypothesis, fitted_factor, scaled, slope_text, swaps};
-use crate::compare::Named;
 use crate::diagnose::Hypotheses;
 use crate::judge::{Expected, TensorJudgement, Tolerances, judge};
+use plumb_formats::Tensor;
 
 /// The name the input gradient goes by among the tensors.
 pub const INPUT: &str = "input";
@@ -35,7 +35,7 @@ pub struct GraphProblem<'a> {
     trace: Trace<f64>,
     /// Whether the input gradient is among the tensors (last).
     with_input: bool,
-    reference: Vec<Named>,
+    reference: Vec<Tensor>,
 }
 
 impl<'a> GraphProblem<'a> {
@@ -70,21 +70,21 @@ impl<'a> GraphProblem<'a> {
 
     /// The gradient of a backward pass with a kind's mistake planted and the departures of
     /// `hooks`, as named tensors.
-    pub fn departed(&self, planted: Option<&Planted>, hooks: &Hooks) -> Vec<Named> {
+    pub fn departed(&self, planted: Option<&Planted>, hooks: &Hooks) -> Vec<Tensor> {
         let (params, input) =
             self.graph
                 .backward_hooked(self.params, self.x, self.y, &self.trace, planted, hooks);
         self.named(params, input)
     }
 
-    fn named(&self, params: Vec<ArrayD<f64>>, input: Array2<f64>) -> Vec<Named> {
-        let mut out: Vec<Named> = self
+    fn named(&self, params: Vec<ArrayD<f64>>, input: Array2<f64>) -> Vec<Tensor> {
+        let mut out: Vec<Tensor> = self
             .graph
             .tensors()
             .iter()
             .zip(params)
             .map(|(t, g)| {
-                Named::new(
+                Tensor::new(
                     t.name.clone(),
                     g.shape().to_vec(),
                     g.iter().copied().collect(),
@@ -92,7 +92,7 @@ impl<'a> GraphProblem<'a> {
             })
             .collect();
         if self.with_input {
-            out.push(Named::new(
+            out.push(Tensor::new(
                 INPUT,
                 vec![input.nrows(), input.ncols()],
                 input.iter().copied().collect(),
@@ -101,7 +101,7 @@ impl<'a> GraphProblem<'a> {
         out
     }
 
-    fn hooked(&self, change: impl FnOnce(&mut Hooks)) -> Vec<Named> {
+    fn hooked(&self, change: impl FnOnce(&mut Hooks)) -> Vec<Tensor> {
         let mut hooks = Hooks::REFERENCE;
         change(&mut hooks);
         self.departed(None, &hooks)
@@ -140,7 +140,7 @@ impl<'a> GraphProblem<'a> {
             .collect()
     }
 
-    fn in_layer(&self, j: usize, tensors: Vec<Named>) -> Hypothesis {
+    fn in_layer(&self, j: usize, tensors: Vec<Tensor>) -> Hypothesis {
         let mut h = Hypothesis::at(self.layer_label(j), tensors);
         h.layer = Some(j);
         h
@@ -184,11 +184,11 @@ impl<'a> GraphProblem<'a> {
 }
 
 impl Hypotheses for GraphProblem<'_> {
-    fn reference(&self) -> &[Named] {
+    fn reference(&self) -> &[Tensor] {
         &self.reference
     }
 
-    fn hypotheses(&self, outside: &[Named]) -> Vec<(&'static str, Hypothesis)> {
+    fn hypotheses(&self, outside: &[Tensor]) -> Vec<(&'static str, Hypothesis)> {
         let r = &self.reference;
         let config = self.graph.loss_config();
         let mut out: Vec<(&'static str, Hypothesis)> = Vec::new();
@@ -273,15 +273,17 @@ impl Hypotheses for GraphProblem<'_> {
         );
         add(
             "transposed",
-            vec![Hypothesis::plain(r.iter().map(Named::transposed).collect())],
+            vec![Hypothesis::plain(
+                r.iter().map(Tensor::transposed).collect(),
+            )],
         );
-        let biases: Vec<Named> = self
+        let biases: Vec<Tensor> = self
             .graph
             .tensors()
             .iter()
             .zip(r)
             .filter(|(t, _)| t.spec.role == Role::Bias)
-            .map(|(_, g)| Named::new(g.name.clone(), g.shape.clone(), vec![0.0; g.data.len()]))
+            .map(|(_, g)| Tensor::new(g.name.clone(), g.shape.clone(), vec![0.0; g.data.len()]))
             .collect();
         add("bias-gradient-missing", vec![Hypothesis::plain(biases)]);
         add(
@@ -341,12 +343,12 @@ pub fn judge_graph(
         });
     }
     let problem = GraphProblem::new(graph, params, x, y, input.is_some())?;
-    let mut given: Vec<Named> = specs
+    let mut given: Vec<Tensor> = specs
         .iter()
         .zip(outside)
         .filter_map(|(t, u)| {
             u.as_ref().map(|u| {
-                Named::new(
+                Tensor::new(
                     t.name.clone(),
                     u.shape().to_vec(),
                     u.iter().copied().collect(),
@@ -364,7 +366,7 @@ pub fn judge_graph(
         })
         .collect();
     if let Some(dx) = input {
-        given.push(Named::new(
+        given.push(Tensor::new(
             INPUT,
             vec![dx.nrows(), dx.ncols()],
             dx.iter().copied().collect(),

@@ -1,9 +1,10 @@
 //! Every tensor of an outside gradient judged: compared with the reference where the shapes allow,
 //! and diagnosed where it is wrong.
 
-use crate::compare::{Named, TensorComparison, compare_tensor};
+use crate::compare::{TensorComparison, compare_tensor};
 use crate::diagnose::{Diagnosis, Hypotheses, diagnose};
 use plumb_fd::relative_floor;
+use plumb_formats::Tensor;
 
 /// How strict to be, set from the outside gradient's precision.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -97,7 +98,7 @@ pub struct TensorJudgement {
 /// Judges the outside gradient tensor by tensor, each with the tolerances `tol` gives its name.
 pub fn judge(
     problem: &dyn Hypotheses,
-    outside: &[Named],
+    outside: &[Tensor],
     expected: &[Expected],
     tol: &dyn Fn(&str) -> Tolerances,
 ) -> Vec<TensorJudgement> {

@@ -9,10 +9,11 @@
 //! verdict rule ([`judge`] over a [`Hypotheses`] source).
 //!
 //! ```
-//! use plumb_diagnose::{Named, compare_tensor};
+//! use plumb_diagnose::compare_tensor;
+//! use plumb_formats::Tensor;
 //!
-//! let reference = Named::new("layer1", vec![2, 2], vec![1.0, -2.0, 0.5, 4.0]);
-//! let outside = Named::new("layer1", vec![2, 2], vec![-1.0, 2.0, -0.5, -4.0]);
+//! let reference = Tensor::new("layer1", vec![2, 2], vec![1.0, -2.0, 0.5, 4.0]);
+//! let outside = Tensor::new("layer1", vec![2, 2], vec![-1.0, 2.0, -0.5, -4.0]);
 //! let c = compare_tensor(&outside, &reference, 1e-6, 0.4);
 //! assert!(!c.matches);
 //! assert!((c.scale + 1.0).abs() < 1e-15 && (c.cosine + 1.0).abs() < 1e-15);
@@ -27,7 +28,7 @@ mod names;
 pub mod report;
 
 pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
-pub use compare::{Named, TensorComparison, compare_tensor};
+pub use compare::{TensorComparison, compare_tensor};
 pub use diagnose::{Diagnosis, Hypotheses, diagnose};
 pub use graph::{GraphProblem, INPUT, judge_graph};
 pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};

@@ -11,7 +11,8 @@ use std::fmt;
 
 use thiserror::Error;
 
-use crate::{Expected, Named};
+use crate::Expected;
+use plumb_formats::Tensor;
 
 /// The habits, as (prefix, suffix) around the parameter's name.
 pub const HABITS: [(&str, &str); 5] = [
@@ -245,9 +246,9 @@ pub fn match_names(
 /// be judged in the mapped tensor's place.
 pub fn bind_gradient(
     expected: &[Expected],
-    outside: Vec<Named>,
+    outside: Vec<Tensor>,
     map: &[(String, String)],
-) -> Result<(Vec<Named>, Vec<Binding>), NameError> {
+) -> Result<(Vec<Tensor>, Vec<Binding>), NameError> {
     let parameters: Vec<&str> = expected.iter().map(|e| e.name.as_str()).collect();
     let file: Vec<&str> = outside.iter().map(|t| t.name.as_str()).collect();
     let bindings = match_names(&parameters, &file, map)?;
@@ -389,12 +390,12 @@ mod tests {
         }];
         // The weights first in the file, the gradient second, mapped.
         let outside = vec![
-            Named::new("W1", vec![1, 2], vec![5.0, 6.0]),
-            Named::new("dW1", vec![1, 2], vec![0.1, 0.2]),
+            Tensor::new("W1", vec![1, 2], vec![5.0, 6.0]),
+            Tensor::new("dW1", vec![1, 2], vec![0.1, 0.2]),
         ];
         let map = parse_map("dW1=W1").unwrap();
         let (t, _) = bind_gradient(&expected, outside, &map).unwrap();
-        let judged: Vec<&Named> = t.iter().filter(|t| t.name == "W1").collect();
+        let judged: Vec<&Tensor> = t.iter().filter(|t| t.name == "W1").collect();
         assert_eq!(judged.len(), 1);
         assert_eq!(judged[0].data, [0.1, 0.2]);
         assert_eq!(t[0].name, format!("W1{UNBOUND}"));
@@ -429,8 +430,8 @@ mod tests {
             },
         ];
         let outside = vec![
-            Named::new("db1", vec![1, 3], vec![1.0, 2.0, 3.0]),
-            Named::new("dW1", vec![1, 3], vec![1.0, 2.0, 3.0]),
+            Tensor::new("db1", vec![1, 3], vec![1.0, 2.0, 3.0]),
+            Tensor::new("dW1", vec![1, 3], vec![1.0, 2.0, 3.0]),
         ];
         let (t, b) = bind_gradient(&expected, outside, &[]).unwrap();
         assert_eq!(b.len(), 2);

@@ -97,6 +97,52 @@ impl Tensor {
         }
     }
 
+    /// A float64 tensor of that shape, its data in C order.
+    pub fn new(name: impl Into<String>, shape: Vec<usize>, data: Vec<f64>) -> Tensor {
+        Tensor {
+            name: name.into(),
+            shape,
+            dtype: DType::F64,
+            data,
+        }
+    }
+
+    /// The Euclidean norm of the data.
+    pub fn norm(&self) -> f64 {
+        self.data.iter().map(|v| v * v).sum::<f64>().sqrt()
+    }
+
+    /// A 2-D tensor transposed (shape reversed); others unchanged.
+    pub fn transposed(&self) -> Tensor {
+        match self.shape.as_slice() {
+            &[r, c] => {
+                let mut data = vec![0.0; self.data.len()];
+                for i in 0..r {
+                    for j in 0..c {
+                        data[j * r + i] = self.data[i * c + j];
+                    }
+                }
+                Tensor {
+                    name: self.name.clone(),
+                    shape: vec![c, r],
+                    dtype: self.dtype,
+                    data,
+                }
+            }
+            _ => self.clone(),
+        }
+    }
+
+    /// The multi-index of a flat C-order position.
+    pub fn index_of(&self, mut k: usize) -> Vec<usize> {
+        let mut idx = vec![0; self.shape.len()];
+        for (i, &d) in self.shape.iter().enumerate().rev() {
+            idx[i] = k % d.max(1);
+            k /= d.max(1);
+        }
+        idx
+    }
+
     /// A float64 tensor holding a matrix.
     pub fn from_array2(name: impl Into<String>, matrix: &Array2<f64>) -> Tensor {
         Tensor {

@@ -3,9 +3,9 @@
 
 use std::path::PathBuf;
 
-use plumb_diagnose::Named;
 use plumb_engine::{Batch, Rng};
 use plumb_fd::report::widest_float;
+use plumb_formats::Tensor;
 use plumb_formats::{read_tensors, shape_text};
 use plumb_report::{DataSource, WeightsSource};
 
@@ -17,7 +17,7 @@ pub(crate) fn blackbox_parameters(
     tensors: &[TensorSpec],
     weights: &Option<PathBuf>,
     seed: u64,
-) -> Result<(Vec<Named>, WeightsSource), RunError> {
+) -> Result<(Vec<Tensor>, WeightsSource), RunError> {
     match weights {
         Some(path) => {
             let file = read_tensors(path)?;
@@ -45,7 +45,7 @@ pub(crate) fn blackbox_parameters(
                             shape_text(&s.shape)
                         );
                     }
-                    Ok(Named::new(s.name.clone(), s.shape.clone(), t.data.clone()))
+                    Ok(Tensor::new(s.name.clone(), s.shape.clone(), t.data.clone()))
                 })
                 .collect::<Result<_, RunError>>()?;
             Ok((named, source))
@@ -59,7 +59,7 @@ pub(crate) fn blackbox_parameters(
                         [.., fan_in] if s.shape.len() >= 2 => 1.0 / (*fan_in.max(&1) as f64).sqrt(),
                         _ => 0.1,
                     };
-                    Named::new(
+                    Tensor::new(
                         s.name.clone(),
                         s.shape.clone(),
                         (0..s.len()).map(|_| sd * rng.normal()).collect(),

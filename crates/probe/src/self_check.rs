@@ -2,11 +2,11 @@
 //! differences of its own loss (match, mismatch, unreliable at a kink, unsettled), with the
 //! findings that say which tensor disagrees, where, and whether enough was settled to judge.
 
-use plumb_diagnose::Named;
 use plumb_fd::report::remedies;
 use plumb_fd::{
     ExternalConfig, ExternalResult, Precision, SETTLE, Settlement, Status, UNSETTLED_SHARE,
 };
+use plumb_formats::Tensor;
 use plumb_formats::shape_text;
 use plumb_report::{Finding, Severity, Verdict, number};
 
@@ -17,7 +17,7 @@ use crate::report::{SelfCheck, SelfTensor, SelfWorst};
 /// `fitting` those whose gradient has their shape (the others fail outright), `r` the checker's
 /// result over the fitting ones.
 pub(crate) fn self_check_report(
-    params: &[Named],
+    params: &[Tensor],
     fitting: &[usize],
     grads: &[(TensorSpec, Vec<f64>)],
     r: &ExternalResult,
@@ -78,7 +78,7 @@ pub(crate) fn self_check_report(
             .count();
         let direction_mismatches = dirs.iter().filter(|d| d.status == Status::Mismatch).count();
         let worst = worst.map(|w| SelfWorst {
-            index: Named::index_of(p, w.coord.index),
+            index: Tensor::index_of(p, w.coord.index),
             gradient: w.analytic,
             differences: w.numeric,
             rel_error: w.rel_error,

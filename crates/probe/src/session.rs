@@ -10,13 +10,14 @@ use plumb_diagnose::report::{
     certify, certify_graph, judge_gradient, judge_graph_gradient, judge_graph_loss, judge_loss,
     layout_tensors,
 };
-use plumb_diagnose::{INPUT, Named, Tolerances};
+use plumb_diagnose::{INPUT, Tolerances};
 use plumb_engine::Batch;
 use plumb_fd::report::{GraphLoaded, Loaded, Tensors};
 use plumb_fd::{
     Base, Change, ExternalConfig, Inside, Method, OutsideTensor, Precision, Sample, check_external,
     gradient_magnitude, graph_loss_magnitude, loss_magnitude,
 };
+use plumb_formats::Tensor;
 use plumb_formats::shape_text;
 use plumb_report::{DataSource, Finding, SCHEMA_VERSION, Severity, Verdict};
 
@@ -88,15 +89,12 @@ pub fn probe(
     };
     // The tensors a description expects, with the values sent: the dense layout's, or the file
     // tensors in their declared storage.
-    let layout: Vec<Named> = match reference {
+    let layout: Vec<Tensor> = match reference {
         Some(Reference::Dense(l)) => layout_tensors(&l.desc, &l.weights),
         Some(Reference::Graph(l)) => l
             .desc
             .to_file(&l.params)
-            .map_err(|e| RunError::Input(format!("{}: {e}", l.desc.path.display())))?
-            .into_iter()
-            .map(|t| Named::new(t.name, t.shape, t.data))
-            .collect(),
+            .map_err(|e| RunError::Input(format!("{}: {e}", l.desc.path.display())))?,
         None => Vec::new(),
     };
     let specs: Vec<TensorSpec> = layout
@@ -214,7 +212,7 @@ pub fn probe(
     let crossed = |t: usize, flat: usize, d: f64| -> bool {
         let p = &params[fitting[t]];
         if let Some((_, tensors, base)) = &dense {
-            let index = Named::index_of(p, flat);
+            let index = Tensor::index_of(p, flat);
             return tensors
                 .coord_of(&p.name, &index)
                 .is_some_and(|c| base.perturbed(c, d).1);
@@ -231,7 +229,7 @@ pub fn probe(
                 let p = &params[fitting[t]];
                 for (k, &x) in vt.iter().enumerate() {
                     if x != 0.0
-                        && let Some(c) = tensors.coord_of(&p.name, &Named::index_of(p, k))
+                        && let Some(c) = tensors.coord_of(&p.name, &Tensor::index_of(p, k))
                     {
                         *dir.get_mut(c) = x;
                     }
@@ -308,9 +306,9 @@ pub fn probe(
 
     // (b) and (c): the loss and the gradient against the reference.
     let tolerance = |_: &str| Tolerances::for_precision(single);
-    let outside: Vec<Named> = grads
+    let outside: Vec<Tensor> = grads
         .iter()
-        .map(|(s, d)| Named::new(s.name.clone(), s.shape.clone(), d.clone()))
+        .map(|(s, d)| Tensor::new(s.name.clone(), s.shape.clone(), d.clone()))
         .collect();
     let (loss_report, certification, tensors) = match reference {
         Some(Reference::Dense(l)) => {
@@ -332,7 +330,7 @@ pub fn probe(
             findings.extend(lf);
             let mut given = outside;
             if let Some(dx) = input_gradient {
-                given.push(Named::new(INPUT, x_shape.clone(), dx));
+                given.push(Tensor::new(INPUT, x_shape.clone(), dx));
             }
             let (tr, tf) = judge_graph_gradient(l, &given, &tolerance)
                 .map_err(|e| RunError::Input(format!("the program's gradient: {e}")))?;

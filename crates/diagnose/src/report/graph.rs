@@ -20,7 +20,8 @@ use super::{
     TensorReport, epsilon, loss_verdict, mismatch_finding, name_findings, stored_dtypes,
     tensor_report, uncertified_finding, widened_finding,
 };
-use crate::{Expected, INPUT, Named, Tolerances, bind_gradient, judge_graph, parse_map};
+use crate::{Expected, INPUT, Tolerances, bind_gradient, judge_graph, parse_map};
+use plumb_formats::Tensor;
 
 /// The file tensors a gradient of `desc` holds, under their file names and file shapes, and the
 /// input gradient `input` of shape `input_shape`.
@@ -47,7 +48,7 @@ fn expected_files(desc: &GraphDescription, input_shape: &[usize]) -> Vec<Expecte
 /// The outside gradient per graph tensor, canonical shapes: a file tensor of the declared shape is
 /// converted from its storage; one of another shape is passed as found, to be judged only against
 /// hypotheses of that shape; an absent one is `None`.
-fn canonical(desc: &GraphDescription, outside: &[Named]) -> Vec<Option<ArrayD<f64>>> {
+fn canonical(desc: &GraphDescription, outside: &[Tensor]) -> Vec<Option<ArrayD<f64>>> {
     let mut out: Vec<Option<ArrayD<f64>>> = vec![None; desc.graph.tensors().len()];
     for f in &desc.files {
         let Some(u) = outside.iter().find(|u| u.name == f.name) else {
@@ -119,11 +120,7 @@ pub fn compare_graph_report(
     let single = !dtypes.contains(&plumb_formats::DType::F64);
     let map = parse_map(map).map_err(names_error)?;
     let expected = expected_files(desc, &graph_input_shape(loaded));
-    let outside: Vec<Named> = file
-        .tensors
-        .into_iter()
-        .map(|t| Named::new(t.name, t.shape, t.data))
-        .collect();
+    let outside: Vec<Tensor> = file.tensors;
     let (outside, bindings) = bind_gradient(&expected, outside, &map).map_err(names_error)?;
     // Each graph tensor is held to the precision its file tensor was stored (or computed) in.
     let eps_file: HashMap<&str, f64> = outside
@@ -238,7 +235,7 @@ pub fn judge_graph_loss(
 /// per wrong tensor. `Err` says what is wrong with the input gradient's shape or the batch.
 pub fn judge_graph_gradient(
     loaded: &GraphLoaded,
-    outside: &[Named],
+    outside: &[Tensor],
     tol_of: &dyn Fn(&str) -> Tolerances,
 ) -> Result<(Vec<TensorReport>, Vec<Finding>), String> {
     let desc = &loaded.desc;
@@ -269,12 +266,12 @@ pub fn judge_graph_gradient(
     )
     .map_err(|e: GraphError| e.to_string())?;
     // The canonical tensors, for the worst entry's index.
-    let mut given: Vec<Named> = specs
+    let mut given: Vec<Tensor> = specs
         .iter()
         .zip(&params)
         .filter_map(|(t, p)| {
             p.as_ref().map(|p| {
-                Named::new(
+                Tensor::new(
                     t.name.clone(),
                     p.shape().to_vec(),
                     p.iter().copied().collect(),
@@ -283,7 +280,7 @@ pub fn judge_graph_gradient(
         })
         .collect();
     if let Some(dx) = &input {
-        given.push(Named::new(
+        given.push(Tensor::new(
             INPUT,
             vec![dx.nrows(), dx.ncols()],
             dx.iter().copied().collect(),
@@ -308,7 +305,7 @@ pub fn judge_graph_gradient(
 
 /// The input gradient as the graph holds it (m × input size): a channels-last file's channel
 /// axis moved back to follow the samples (the inverse of `GraphDescription::input_tensor_in`).
-fn input_matrix(desc: &GraphDescription, u: &Named, order: AxisOrder) -> Array2<f64> {
+fn input_matrix(desc: &GraphDescription, u: &Tensor, order: AxisOrder) -> Array2<f64> {
     let array = ArrayD::from_shape_vec(IxDyn(&u.shape), u.data.clone()).expect("shape checked");
     let spatial = matches!(
         desc.graph.input(),

@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 use plumb_engine::{Reduction, Weights};
 use plumb_fd::report::{Loaded, Place, Tensors};
 use plumb_fd::{CheckConfig, CheckError, Method, Precision, Status, check};
-use plumb_formats::{DType, Description, Role, TensorFile, disassemble, expected_tensors};
+use plumb_formats::{DType, Description, Role, Tensor, TensorFile, disassemble, expected_tensors};
 use plumb_report::{
     DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure, number as num,
 };
@@ -20,7 +20,7 @@ pub use graph::{
 };
 
 use crate::{
-    Binding, Expected, NameError, Named, Problem, TensorJudgement, Tolerances, bind_gradient,
+    Binding, Expected, NameError, Problem, TensorJudgement, Tolerances, bind_gradient,
     holds_only_f32, judge, parse_map,
 };
 
@@ -176,11 +176,8 @@ pub struct CompareReport {
 }
 
 /// The layout's tensors of an augmented gradient, as named tensors.
-pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Named> {
+pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Tensor> {
     disassemble(desc, w)
-        .into_iter()
-        .map(|t| Named::new(t.name, t.shape, t.data))
-        .collect()
 }
 
 /// The declared conventions, for reports.
@@ -265,7 +262,7 @@ pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification, CheckError> 
 /// The verdicts on an outside gradient and their findings (shared with `probe`).
 pub fn judge_gradient(
     loaded: &Loaded,
-    outside: &[Named],
+    outside: &[Tensor],
     tol: &dyn Fn(&str) -> Tolerances,
 ) -> (Vec<TensorReport>, Vec<Finding>) {
     let desc = &loaded.desc;
@@ -290,13 +287,13 @@ pub fn judge_gradient(
 
 /// Findings on the names of an outside gradient: tensors under other names with the missing ones'
 /// shapes, in order (say which name goes where), and tensors no expected one is named like.
-fn name_findings(expected: &[Expected], outside: &[Named]) -> Vec<Finding> {
+fn name_findings(expected: &[Expected], outside: &[Tensor]) -> Vec<Finding> {
     let mut findings = Vec::new();
     let absent: Vec<&Expected> = expected
         .iter()
         .filter(|e| !outside.iter().any(|u| u.name == e.name))
         .collect();
-    let strays: Vec<&Named> = outside
+    let strays: Vec<&Tensor> = outside
         .iter()
         .filter(|u| !expected.iter().any(|e| e.name == u.name))
         .collect();
@@ -338,7 +335,7 @@ fn name_findings(expected: &[Expected], outside: &[Named]) -> Vec<Finding> {
 /// One tensor's report; `place` locates an index of a tensor in the augmented matrices.
 fn tensor_report(
     j: &TensorJudgement,
-    outside: &[Named],
+    outside: &[Tensor],
     place: &dyn Fn(&str, &[usize]) -> Option<Place>,
 ) -> TensorReport {
     let worst = j.comparison.as_ref().map(|c| {
@@ -601,11 +598,7 @@ pub fn compare_report(
         path: gradient.to_path_buf(),
         error,
     })?;
-    let outside: Vec<Named> = file
-        .tensors
-        .into_iter()
-        .map(|t| Named::new(t.name, t.shape, t.data))
-        .collect();
+    let outside: Vec<Tensor> = file.tensors;
     let (outside, bindings) =
         bind_gradient(&expected(&loaded.desc), outside, &map).map_err(|error| {
             CompareError::Names {

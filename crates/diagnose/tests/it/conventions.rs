@@ -3,18 +3,19 @@
 //! convention's own gradient is not wrong at all. (The values here are the engine's; the same rule
 //! against gradients written apart from the engine, in NumPy, is in tests/it/compare.rs.)
 
-use plumb_diagnose::{Expected, Named, Problem, Tolerances, judge};
+use plumb_diagnose::{Expected, Problem, Tolerances, judge};
 use plumb_engine::{
     Activation, Batch, Conventions, Init, L2Divisor, Loss, Network, Reduction, Rng, Weights,
 };
+use plumb_formats::Tensor;
 
-fn tensors(w: &Weights<f64>) -> Vec<Named> {
+fn tensors(w: &Weights<f64>) -> Vec<Tensor> {
     w.layers()
         .iter()
         .enumerate()
         .map(|(l, t)| {
             let (r, c) = t.dim();
-            Named::new(
+            Tensor::new(
                 format!("layer{}", l + 1),
                 vec![r, c],
                 t.iter().copied().collect(),
