@@ -91,17 +91,6 @@ fn sequence_net_passes_in_f64() {
     assert!(names.iter().any(|n| n.starts_with("memory.")), "{names:?}");
 }
 
-#[test]
-fn shards_of_a_graph_check_are_refused() {
-    let run = plumb(&["check", "nets/pump-cnn.toml", "--shard", "1/2"]);
-    run.assert_code(2);
-    assert!(
-        run.stderr.contains("pump-cnn.toml") && run.stderr.contains("--shard"),
-        "{}",
-        run.stderr
-    );
-}
-
 /// One gradient entry moved by 1% of the tensor's scale: the report fails, naming the tensor,
 /// the flat index and the layer's words for it.
 #[test]

@@ -13,6 +13,7 @@ mod graph;
 mod graph_audit;
 mod graph_check;
 mod graph_compare;
+mod graph_shards;
 mod hostile;
 mod json;
 mod malformed;

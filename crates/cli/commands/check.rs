@@ -2,10 +2,11 @@
 
 use anyhow::{Result, bail};
 use plumb_fd::report::{
-    CheckReport, Code, CoordReport, CoverageReport, GraphCoordReport, GraphLoaded, MAX_DIRECTIONS,
-    Tensors, check_report, graph_check_report,
+    CheckReport, Code, CoordReport, CoverageReport, GraphCheckReport, GraphCoordReport,
+    GraphLoaded, MAX_DIRECTIONS, Tensors, check_report, graph_check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, SETTLE, Sample, Status, UNSETTLED_SHARE};
+use plumb_formats::GraphDescription;
 use plumb_report::{
     Block, Case, Cell, Document, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
     error_strip, step_plot,
@@ -102,27 +103,32 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
 }
 
 /// `plumb check` on a description of another kind than dense: the layer graph's check, its
-/// report in the dense report's shape. A shard's coordinates are the dense report's, which
-/// `plumb merge` joins by layer, row and column, so a graph check is not sharded.
+/// report in the dense report's shape; a shard's coordinates are (tensor, flat index), which
+/// `plumb merge` joins.
 fn run_graph(
     args: &CheckArgs,
     loaded: &GraphLoaded,
     config: &CheckConfig,
     settings: &Settings,
 ) -> Result<Verdict> {
-    if args.shard.is_some() {
-        bail!(
-            "{}: --shard is for dense descriptions only: `plumb merge` joins shards by the dense layout's layer, row and column, which this description's layers do not have; check it in one run (narrow it with --sample or --directions)",
-            loaded.desc.path.display()
-        );
-    }
     let progress = Progress::new(settings, "checking");
     let report = graph_check_report(loaded, config, args.worst, &|d, t| progress.update(d, t))?;
     progress.finish();
-    let mut doc = document(&report, Block::Table(graph_worst_table(&report.worst)));
+    let doc = graph_document(&report, &loaded.desc, settings);
+    settings.emit(&report, doc)
+}
+
+/// The document of a graph check's report (a run's or a merge's): the worst coordinates in the
+/// layer's terms, one case per tensor, and with `--html` the strip of every checked coordinate.
+pub fn graph_document(
+    report: &GraphCheckReport,
+    desc: &GraphDescription,
+    settings: &Settings,
+) -> Document {
+    let mut doc = document(report, Block::Table(graph_worst_table(&report.worst)));
     doc.command = "check".into();
-    doc.network = Some(graph_network_id(&loaded.desc));
-    doc.cases = cases(&report);
+    doc.network = Some(graph_network_id(desc));
+    doc.cases = cases(report);
     if settings.html.is_some() {
         let strip = strip_plot(
             "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
@@ -132,7 +138,7 @@ fn run_graph(
         );
         insert_before_findings(&mut doc, strip.into_iter().collect());
     }
-    settings.emit(&report, doc)
+    doc
 }
 
 /// The worst coordinates of a graph check: tensor, flat index and the layer's words for it.

@@ -61,7 +61,8 @@ pub fn locate(graph: &Graph, t: usize, index: usize) -> String {
     node.layer.locate(t - node.tensors().start, index)
 }
 
-fn coord_report(graph: &Graph, r: &GraphCheck, c: &OutsideCoord) -> GraphCoordReport {
+/// The report row of a graph check's coordinate `c` (shared with `plumb merge`).
+pub(super) fn coord_report(graph: &Graph, r: &GraphCheck, c: &OutsideCoord) -> GraphCoordReport {
     let Entry { tensor, index } = c.coord;
     let floor = r.floors.get(tensor).copied().unwrap_or(0.0);
     CoordReport::new(GraphPlace::new(graph, tensor, index), c, floor)

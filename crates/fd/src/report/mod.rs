@@ -26,7 +26,7 @@ pub use graph_loaded::{
     graph_description_hash, widest_float,
 };
 pub use locate::{Place, Tensors};
-pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard};
+pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard, shard_description};
 
 use plumb_engine::{Batch, Weights};
 use plumb_formats::Description;

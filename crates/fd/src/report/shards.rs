@@ -2,17 +2,26 @@
 //! joined into the report the whole check would have given (same coordinates, same figures, same
 //! verdicts) — after making sure they are the shares of one run, each once and unedited.
 
+use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use plumb_engine::{Coord, Network, Weights};
-use plumb_formats::Description;
+use plumb_formats::{Description, GraphDescription};
 use plumb_report::SCHEMA_VERSION;
 use serde::Deserialize;
+use serde::de::DeserializeOwned;
 use serde_json::Value;
 
 use super::check::{CheckReport, CoordReport, DirectionReport, RunFacts, build, coord_report};
-use super::locate::Tensors;
-use crate::{CheckResult, CoordCheck, Coverage, DirectionCheck, Method, Precision, Sample, Scope};
+use super::graph_check::{
+    GraphCheckReport, GraphPlace, build_graph, coord_report as graph_coord_report,
+};
+use super::graph_description_hash;
+use super::locate::{Place, Tensors};
+use crate::{
+    CheckResult, CoordCheck, Coverage, DirectionCheck, Entry, GraphCheck, Method, OutsideDirection,
+    Precision, Sample, Scope, select_tensors,
+};
 
 /// The most shards a check can be split into (the bound `--shard` gives).
 pub const MAX_SHARDS: usize = 10_000;
@@ -26,43 +35,69 @@ fn refuse<T>(message: String) -> Result<T, ShardError> {
     Err(ShardError(message))
 }
 
-/// One shard's report, with its place in the split.
+/// One shard's report, with its place in the split; `P` locates its coordinates (a dense
+/// [`Place`] or a graph's [`GraphPlace`]).
 #[derive(Debug)]
-struct Shard {
+struct Shard<P> {
     path: PathBuf,
     k: usize,
     n: usize,
-    report: CheckReport,
+    report: CheckReport<CoordReport<P>>,
 }
 
-impl Shard {
-    /// A shard from the bytes of `path`: a `plumb check` report of this schema version with a
-    /// `shard` and its coordinates, every item of the type the report writes.
-    fn read(path: &Path, bytes: &[u8]) -> Result<Shard, ShardError> {
+/// The checks every shard passes before its network's kind matters: a JSON `plumb check` report
+/// of this schema version with a `shard` and its coordinates.
+fn header(path: &Path, bytes: &[u8]) -> Result<Value, ShardError> {
+    let at = path.display();
+    let v: Value = serde_json::from_slice(bytes)
+        .map_err(|e| ShardError(format!("{at}: not a JSON report: {e}")))?;
+    if v["command"] != "check" {
+        return refuse(format!("{at}: not a `plumb check` report"));
+    }
+    if v["schema_version"].as_u64() != Some(SCHEMA_VERSION.into()) {
+        return refuse(format!(
+            "{at}: `schema_version` is {}, and this plumb reads {SCHEMA_VERSION}: run the \
+             check again with this plumb",
+            v["schema_version"]
+        ));
+    }
+    if !v["shard"].is_array() || !v["coordinates"].is_array() {
+        return refuse(format!(
+            "{at}: not a shard: run the check with --shard K/N --format json"
+        ));
+    }
+    Ok(v)
+}
+
+/// The description the first of `files` was run on, as it names it: what decides whether the
+/// shards are read as a dense check's or a layer graph's.
+pub fn shard_description(files: &[(PathBuf, Vec<u8>)]) -> Result<PathBuf, ShardError> {
+    let Some((path, bytes)) = files.first() else {
+        return refuse("no shard given: name the files of every share of the split".into());
+    };
+    let v = header(path, bytes)?;
+    match v["description"].as_str() {
+        Some(d) => Ok(PathBuf::from(d)),
+        None => refuse(format!(
+            "{}: `description` is {}, not the path of a description",
+            path.display(),
+            v["description"]
+        )),
+    }
+}
+
+impl<P: DeserializeOwned> Shard<P> {
+    /// A shard from the bytes of `path`: its [`header`], then every item of the type the report
+    /// writes.
+    fn read(path: &Path, bytes: &[u8]) -> Result<Shard<P>, ShardError> {
         let at = path.display();
-        let mut v: Value = serde_json::from_slice(bytes)
-            .map_err(|e| ShardError(format!("{at}: not a JSON report: {e}")))?;
-        if v["command"] != "check" {
-            return refuse(format!("{at}: not a `plumb check` report"));
-        }
-        if v["schema_version"].as_u64() != Some(SCHEMA_VERSION.into()) {
-            return refuse(format!(
-                "{at}: `schema_version` is {}, and this plumb reads {SCHEMA_VERSION}: run the \
-                 check again with this plumb",
-                v["schema_version"]
-            ));
-        }
-        if !v["shard"].is_array() || !v["coordinates"].is_array() {
-            return refuse(format!(
-                "{at}: not a shard: run the check with --shard K/N --format json"
-            ));
-        }
+        let mut v = header(path, bytes)?;
         // The lists are read item by item, so that an error names the item.
         let coords = v["coordinates"].take();
         let dirs = v["directions"].take();
         v["coordinates"] = Value::Null;
         v["directions"] = Value::Array(Vec::new());
-        let mut report = CheckReport::deserialize(&v)
+        let mut report = CheckReport::<CoordReport<P>>::deserialize(&v)
             .map_err(|e| ShardError(format!("{at}: not a check report as plumb writes it: {e}")))?;
         report.coordinates = Some(items(&coords, "coordinate", &at)?);
         report.directions = items(&dirs, "direction", &at)?;
@@ -82,8 +117,10 @@ impl Shard {
             report,
         })
     }
+}
 
-    fn coordinates(&self) -> &[CoordReport] {
+impl<P> Shard<P> {
+    fn coordinates(&self) -> &[CoordReport<P>] {
         self.report.coordinates.as_deref().unwrap_or_default()
     }
 }
@@ -106,16 +143,18 @@ fn items<T: for<'de> Deserialize<'de>>(
 }
 
 /// The shards of one split: the same run (inputs and settings) split the same n ways, each share
-/// given exactly once.
+/// given exactly once. `P` locates the coordinates: [`Place`] for a dense description (the
+/// default), [`GraphPlace`] for the layer graph — the kind of the description the shards name
+/// ([`shard_description`]).
 #[derive(Debug)]
-pub struct Shards {
-    list: Vec<Shard>,
+pub struct Shards<P = Place> {
+    list: Vec<Shard<P>>,
 }
 
-impl Shards {
+impl<P: DeserializeOwned> Shards<P> {
     /// Reads the shards from their files' bytes and checks they belong together.
-    pub fn parse(files: &[(PathBuf, Vec<u8>)]) -> Result<Shards, ShardError> {
-        let list: Vec<Shard> = files
+    pub fn parse(files: &[(PathBuf, Vec<u8>)]) -> Result<Shards<P>, ShardError> {
+        let list: Vec<Shard<P>> = files
             .iter()
             .map(|(p, b)| Shard::read(p, b))
             .collect::<Result<_, _>>()?;
@@ -147,12 +186,110 @@ impl Shards {
         each_share_once(&list, n)?;
         Ok(Shards { list })
     }
+}
 
+impl<P> Shards<P> {
     /// The description the shards were run on, as they name it.
     pub fn description(&self) -> &Path {
         &self.list[0].report.description
     }
 
+    /// Refuses a description whose hash is not the one the shards recorded.
+    fn same_description(&self, path: &Path, hash: &str) -> Result<(), ShardError> {
+        let recorded = &self.list[0].report.description_hash;
+        if recorded != hash {
+            return refuse(format!(
+                "{}: the description is not the one the shards were run on (its hash is {hash}, \
+                 the shards' {recorded}): merge where the shards' inputs are, unchanged",
+                path.display(),
+            ));
+        }
+        Ok(())
+    }
+
+    /// The run's settings as the shards record them (they agree: [`Shards::parse`]).
+    fn settings(&self) -> Result<Settings, ShardError> {
+        let first = &self.list[0];
+        let r = &first.report;
+        let at = |key: &str| format!("{}: `{key}`", first.path.display());
+        let sample = Sample::parse(&r.coverage.sample)
+            .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
+        let method = Method::from_name(&r.method)
+            .ok_or_else(|| ShardError(format!("{} is not a method plumb knows", at("method"))))?;
+        let precision = match r.precision.as_str() {
+            "f64" => Precision::F64,
+            "f32" => Precision::F32,
+            _ => return refuse(format!("{} is neither f64 nor f32", at("precision"))),
+        };
+        let step = r
+            .step_rule
+            .strip_prefix("fixed h = ")
+            .and_then(|rule| rule.split(' ').next())
+            .and_then(|h| h.parse().ok());
+        Ok(Settings {
+            sample,
+            method,
+            precision,
+            step,
+        })
+    }
+
+    /// Every shard's items of one list (`what`: coordinate or direction) in the whole run's
+    /// order. Shard k of n holds items k-1, k-1+n, k-1+2n, … of the run's `total` (the split of
+    /// `fd::check` and `fd::check_graph`); the whole list is known without the shards (the sample
+    /// is drawn from the seed, the directions are K per scope), so each shard must hold as many
+    /// as its place implies, and `place` checks each item against the run's item `at` and turns
+    /// it into the checker's record. A dropped, repeated, invented or edited item is refused,
+    /// naming its shard.
+    fn rejoin<I, T>(
+        &self,
+        what: &str,
+        total: usize,
+        items: impl Fn(&Shard<P>) -> &[I],
+        mut place: impl FnMut(&I, usize) -> Result<T, String>,
+    ) -> Result<Vec<T>, ShardError> {
+        let n = self.list[0].n;
+        let mut out = Vec::new();
+        for s in &self.list {
+            let file = s.path.display();
+            let given = items(s);
+            // The items i < total with i % n == k - 1.
+            let expected = total / n + usize::from(s.k - 1 < total % n);
+            if given.len() != expected {
+                return refuse(format!(
+                    "{file}: {} {what}s where shard {}/{n} of the run's {total} must have \
+                     {expected}: this shard was cut short or edited",
+                    given.len(),
+                    s.k
+                ));
+            }
+            for (j, item) in given.iter().enumerate() {
+                let at = s.k - 1 + j * n;
+                let checked = place(item, at)
+                    .map_err(|e| ShardError(format!("{file}: {what} {}: {e}", j + 1)))?;
+                out.push((at, checked));
+            }
+        }
+        out.sort_by_key(|(at, _)| *at);
+        Ok(out.into_iter().map(|(_, t)| t).collect())
+    }
+}
+
+/// What the shards record of how the run was made, read back.
+struct Settings {
+    sample: Sample,
+    method: Method,
+    precision: Precision,
+    step: Option<f64>,
+}
+
+/// The scope of the run's direction `at` when there are `per_part` per scope: the first
+/// `per_part` over everything, then `per_part` over each part (dense) or tensor (graph) in order.
+fn scope_at(at: usize, per_part: usize) -> Option<usize> {
+    (at / per_part.max(1)).checked_sub(1)
+}
+
+impl Shards<Place> {
     /// The whole run's report from its shares, `worst_n` coordinates in its worst list. Refuses a
     /// description that is not the one the shards ran on, and a dropped, repeated, invented or
     /// edited item, naming its shard.
@@ -161,54 +298,23 @@ impl Shards {
         let at = |key: &str| format!("{}: `{key}`", first.path.display());
         let r = &first.report;
         let hash = super::description_hash(desc);
-        if r.description_hash != hash {
-            return refuse(format!(
-                "{}: the description is not the one the shards were run on (its hash is {hash}, \
-                 the shards' {}): merge where the shards' inputs are, unchanged",
-                desc.path.display(),
-                r.description_hash
-            ));
-        }
+        self.same_description(&desc.path, &hash)?;
         let tensors = Tensors::new(desc);
         let net = &desc.network;
-        let n = first.n;
-        // Shard k of n holds items k-1, k-1+n, k-1+2n, … of the whole run's lists (fd::check).
-        // The whole lists are known without the shards: the coordinates are the sample drawn from
-        // the seed, the directions K per part. So each item is checked against the one that belongs
-        // in its place: a dropped, repeated or invented item is refused, naming its shard.
-        let sample = Sample::parse(&r.coverage.sample)
-            .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
-        let whole = crate::select(net, sample, r.seed)
+        let set = self.settings()?;
+        let whole = crate::select(net, set.sample, r.seed)
             .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
         let per_part = r.coverage.directions_per_part;
         let parts = 1 + 2 * net.layers().len();
-        let whole_directions = per_part.saturating_mul(parts);
-        let mut coords = Vec::new();
-        let mut directions = Vec::new();
-        for s in &self.list {
-            let file = s.path.display();
-            for (what, given, total) in [
-                ("coordinates", s.coordinates().len(), whole.len()),
-                ("directions", s.report.directions.len(), whole_directions),
-            ] {
-                let expected = (total + n - s.k) / n;
-                if given != expected {
-                    return refuse(format!(
-                        "{file}: {given} {what} where shard {}/{n} of the run's {total} must have \
-                         {expected}: this shard was cut short or edited",
-                        s.k
-                    ));
-                }
-            }
-            for (j, c) in s.coordinates().iter().enumerate() {
-                let at = s.k - 1 + j * n;
-                let check = coord_check(c, net)
-                    .map_err(|e| ShardError(format!("{file}: coordinate {}: {e}", j + 1)))?;
+        let coords: Vec<CoordCheck> = self.rejoin(
+            "coordinate",
+            whole.len(),
+            |s| s.coordinates(),
+            |c, at| {
+                let check = coord_check(c, net)?;
                 if check.coord != whole[at] || c.place != tensors.place(check.coord) {
-                    return refuse(format!(
-                        "{file}: coordinate {} is {} ({}), and the run's item {} is {} ({}): the \
-                         shard was edited",
-                        j + 1,
+                    return Err(format!(
+                        "{} ({}) is not the run's item {}, {} ({}): the shard was edited",
                         place(check.coord),
                         c.place.label(),
                         at + 1,
@@ -216,36 +322,33 @@ impl Shards {
                         tensors.place(whole[at]).label()
                     ));
                 }
-                coords.push((at, check));
-            }
-            for (j, d) in s.report.directions.iter().enumerate() {
-                let at = s.k - 1 + j * n;
-                let check = direction_check(d, net)
-                    .map_err(|e| ShardError(format!("{file}: direction {}: {e}", j + 1)))?;
-                let expected = match at / per_part.max(1) {
-                    0 => Scope::Global,
-                    p => Scope::Part {
-                        layer: (p - 1) / 2,
-                        bias: (p - 1) % 2 == 1,
+                Ok(check)
+            },
+        )?;
+        let directions: Vec<DirectionCheck> = self.rejoin(
+            "direction",
+            per_part.saturating_mul(parts),
+            |s| &s.report.directions,
+            |d, at| {
+                let check = direction_check(d, net)?;
+                let expected = match scope_at(at, per_part) {
+                    None => Scope::Global,
+                    Some(p) => Scope::Part {
+                        layer: p / 2,
+                        bias: p % 2 == 1,
                     },
                 };
                 if check.scope != expected {
-                    return refuse(format!(
-                        "{file}: direction {} spans {}, and the run's item {} spans {}: the shard \
-                         was edited",
-                        j + 1,
+                    return Err(format!(
+                        "spans {}, and the run's item {} spans {}: the shard was edited",
                         span(check.scope),
                         at + 1,
                         span(expected)
                     ));
                 }
-                directions.push((at, check));
-            }
-        }
-        coords.sort_by_key(|(i, _)| *i);
-        directions.sort_by_key(|(i, _)| *i);
-        let coords: Vec<CoordCheck> = coords.into_iter().map(|(_, c)| c).collect();
-        let directions: Vec<DirectionCheck> = directions.into_iter().map(|(_, d)| d).collect();
+                Ok(check)
+            },
+        )?;
         if r.floors.len() != net.layers().len() {
             return refuse(format!(
                 "{} lists {} floors for a network of {} layers",
@@ -262,19 +365,12 @@ impl Shards {
                 tensors.expected.len()
             ));
         }
-        let method = Method::from_name(&r.method)
-            .ok_or_else(|| ShardError(format!("{} is not a method plumb knows", at("method"))))?;
-        let precision = match r.precision.as_str() {
-            "f64" => Precision::F64,
-            "f32" => Precision::F32,
-            _ => return refuse(format!("{} is neither f64 nor f32", at("precision"))),
-        };
         let result = CheckResult {
-            method,
-            precision,
+            method: set.method,
+            precision: set.precision,
             loss: r.loss,
             coverage: Coverage {
-                sample,
+                sample: set.sample,
                 default_sample: r.coverage.default_sample,
                 directions: per_part,
                 parameters: r.coverage.parameters,
@@ -286,22 +382,7 @@ impl Shards {
             directions,
             analytic: Weights::new(Vec::new()),
         };
-        let facts = RunFacts {
-            description: r.description.clone(),
-            description_hash: hash,
-            weights: r.weights.clone(),
-            data: r.data.clone(),
-            seed: r.seed,
-            samples: r.samples,
-            step: r
-                .step_rule
-                .strip_prefix("fixed h = ")
-                .and_then(|rule| rule.split(' ').next())
-                .and_then(|h| h.parse().ok()),
-            shard: None,
-            // The reference gradient's norms are the whole tensor's, the same in every shard.
-            gradient_norms: r.tensors.iter().map(|t| t.gradient_norm).collect(),
-        };
+        let facts = self.facts(hash, set.step);
         let mut report = build(&facts, &tensors, &result, worst_n);
         report.coordinates = Some(
             (0..result.coords.len())
@@ -312,8 +393,187 @@ impl Shards {
     }
 }
 
+impl Shards<GraphPlace> {
+    /// The whole run's report of a layer-graph check from its shares, as [`Shards::merge`] for a
+    /// dense one: a coordinate is (tensor, flat index), each the one of the run's sample that
+    /// belongs in its place, named as the graph names it; a direction spans every tensor or the
+    /// one its place in the run implies.
+    pub fn merge_graph(
+        &self,
+        desc: &GraphDescription,
+        worst_n: usize,
+    ) -> Result<GraphCheckReport, ShardError> {
+        let first = &self.list[0];
+        let at = |key: &str| format!("{}: `{key}`", first.path.display());
+        let r = &first.report;
+        let hash = graph_description_hash(desc);
+        self.same_description(&desc.path, &hash)?;
+        let graph = &desc.graph;
+        let specs = graph.tensors();
+        let sizes: Vec<usize> = specs
+            .iter()
+            .map(|t| t.spec.shape.iter().product())
+            .collect();
+        let layers: Vec<usize> = specs.iter().map(|t| t.layer).collect();
+        let by_name: HashMap<&str, usize> = specs
+            .iter()
+            .enumerate()
+            .map(|(t, s)| (s.name.as_str(), t))
+            .collect();
+        let tensor_of = |name: &str| {
+            by_name.get(name).copied().ok_or_else(|| {
+                let names: Vec<String> = specs.iter().map(|s| format!("`{}`", s.name)).collect();
+                format!(
+                    "`{name}` is not a tensor of {} (its tensors: {})",
+                    desc.path.display(),
+                    list_some(&names)
+                )
+            })
+        };
+        let set = self.settings()?;
+        let whole = select_tensors(&sizes, &layers, set.sample, r.seed)
+            .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
+        let per_part = r.coverage.directions_per_part;
+        let coords = self.rejoin(
+            "coordinate",
+            whole.len(),
+            |s| s.coordinates(),
+            |c, at| {
+                let t = tensor_of(&c.place.tensor)?;
+                let index = c.place.index;
+                if index >= sizes[t] {
+                    return Err(format!(
+                        "index {index} is outside `{}`, whose flat indices run from 0 to {}",
+                        specs[t].name,
+                        sizes[t] - 1
+                    ));
+                }
+                let (wt, wk) = whole[at];
+                let expected = GraphPlace::new(graph, wt, wk);
+                if c.place != expected {
+                    return Err(format!(
+                        "{} (layer {}, {}) is not the run's item {}, {} (layer {}, {}): the shard \
+                         was edited",
+                        c.place.label(),
+                        c.place.layer,
+                        c.place.location,
+                        at + 1,
+                        expected.label(),
+                        expected.layer,
+                        expected.location
+                    ));
+                }
+                Ok(c.check_at(Entry { tensor: t, index }))
+            },
+        )?;
+        let spans =
+            |t: Option<usize>| t.map_or("every tensor".to_string(), |t| specs[t].name.clone());
+        let directions = self.rejoin(
+            "direction",
+            per_part.saturating_mul(1 + specs.len()),
+            |s| &s.report.directions,
+            |d: &DirectionReport, at| {
+                let tensor = match d.scope.as_str() {
+                    "all" => None,
+                    name => Some(tensor_of(name)?),
+                };
+                if d.layer != tensor.map(|t| layers[t] + 1) || d.bias.is_some() {
+                    return Err(format!(
+                        "`layer` {} and `bias` {} are not those of its scope `{}`: the shard was \
+                         edited",
+                        d.layer.map_or("null".into(), |l| l.to_string()),
+                        d.bias.map_or("null".into(), |b| b.to_string()),
+                        d.scope
+                    ));
+                }
+                let expected = scope_at(at, per_part);
+                if tensor != expected {
+                    return Err(format!(
+                        "spans {}, and the run's item {} spans {}: the shard was edited",
+                        spans(tensor),
+                        at + 1,
+                        spans(expected)
+                    ));
+                }
+                Ok(OutsideDirection {
+                    tensor,
+                    analytic: d.analytic,
+                    numeric: d.numeric,
+                    rel_error: d.rel_error,
+                    bound: d.bound,
+                    status: d.status,
+                    one_step: d.one_step,
+                })
+            },
+        )?;
+        if r.floors.len() != specs.len() {
+            return refuse(format!(
+                "{} lists {} floors, and the graph has {} tensors",
+                at("floors"),
+                r.floors.len(),
+                specs.len()
+            ));
+        }
+        if r.tensors.len() != specs.len()
+            || r.tensors.iter().zip(specs).any(|(a, b)| a.name != b.name)
+        {
+            return refuse(format!(
+                "{} are not the graph's tensors in its order: the shard was edited",
+                at("tensors")
+            ));
+        }
+        let result = GraphCheck {
+            method: set.method,
+            precision: set.precision,
+            loss: r.loss,
+            coverage: Coverage {
+                sample: set.sample,
+                default_sample: r.coverage.default_sample,
+                directions: per_part,
+                parameters: r.coverage.parameters,
+                checked: coords.len(),
+            },
+            tolerance: r.tolerance,
+            floors: r.floors.clone(),
+            coords,
+            directions,
+            analytic: Vec::new(),
+        };
+        let facts = self.facts(hash, set.step);
+        let mut report = build_graph(&facts, graph, &result, worst_n);
+        report.coordinates = Some(
+            result
+                .coords
+                .iter()
+                .map(|c| graph_coord_report(graph, &result, c))
+                .collect(),
+        );
+        Ok(report)
+    }
+}
+
+impl<P> Shards<P> {
+    /// What the merged report says of the run besides its results: the shards' inputs and
+    /// settings, no shard, and the reference gradient's norms, which are the whole tensor's, the
+    /// same in every shard.
+    fn facts(&self, description_hash: String, step: Option<f64>) -> RunFacts {
+        let r = &self.list[0].report;
+        RunFacts {
+            description: r.description.clone(),
+            description_hash,
+            weights: r.weights.clone(),
+            data: r.data.clone(),
+            seed: r.seed,
+            samples: r.samples,
+            step,
+            shard: None,
+            gradient_norms: r.tensors.iter().map(|t| t.gradient_norm).collect(),
+        }
+    }
+}
+
 /// The first setting in which two shards' runs differ, by its key in the report.
-fn differs(a: &CheckReport, b: &CheckReport) -> Option<&'static str> {
+fn differs<C>(a: &CheckReport<C>, b: &CheckReport<C>) -> Option<&'static str> {
     let same_figures = |x: &[f64], y: &[f64]| {
         x.len() == y.len() && x.iter().zip(y).all(|(p, q)| p.to_bits() == q.to_bits())
     };
@@ -350,7 +610,7 @@ fn differs(a: &CheckReport, b: &CheckReport) -> Option<&'static str> {
 
 /// Each share of the split exactly once, naming the files that repeat a share or the shares
 /// missing.
-fn each_share_once(shards: &[Shard], n: usize) -> Result<(), ShardError> {
+fn each_share_once<P>(shards: &[Shard<P>], n: usize) -> Result<(), ShardError> {
     let mut given: Vec<Option<&Path>> = vec![None; n];
     for s in shards {
         if let Some(other) = given[s.k - 1] {
@@ -454,9 +714,13 @@ fn direction_check(d: &DirectionReport, net: &Network) -> Result<DirectionCheck,
 }
 
 /// The fuzz target's entry (fuzz/fuzz_targets/shard.rs) and the corpus replay's: `bytes` read as
-/// one shard and as a split of one; the error's message, if any.
+/// one shard and as a split of one, both as a layer graph's and as a dense check's (the kind a
+/// merge reads them as comes from the description they name); the dense reading's count of
+/// coordinates or its error's message.
 pub fn fuzz_shard(bytes: &[u8]) -> Result<usize, String> {
-    let shards = Shards::parse(&[(PathBuf::from("fuzz.json"), bytes.to_vec())])
-        .map_err(|e| e.to_string())?;
+    let files = [(PathBuf::from("fuzz.json"), bytes.to_vec())];
+    let _ = shard_description(&files);
+    let _ = Shards::<GraphPlace>::parse(&files);
+    let shards = Shards::<Place>::parse(&files).map_err(|e| e.to_string())?;
     Ok(shards.list[0].coordinates().len())
 }
