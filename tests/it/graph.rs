@@ -327,6 +327,85 @@ fn a_malformed_conv_description_exits_2_naming_key_and_line() {
     }
 }
 
+/// Malformed sequence inputs through the binary: each description error exits 2 naming the file,
+/// the key and its line; token ids and per-step labels out of range (files written by
+/// fixtures/data/generate_graph.py) exit 2 naming the file, the array, the sample and the step.
+#[test]
+fn malformed_sequence_inputs_exit_2_naming_the_key_or_the_file_and_place() {
+    let dir = scratch("graph-malformed-sequence");
+    let head = "input = { steps = 6, features = 4 }\nloss = \"squared-error\"\n\n[[layer]]\n";
+    for (name, layer, line, needles) in [
+        (
+            "heads.toml",
+            "units = 4\nactivation = \"identity\"\n\n[[layer]]\nkind = \"attention\"\nheads = 3\n",
+            ":10:",
+            &["`heads`", "width 4 is not divisible by `heads = 3`"][..],
+        ),
+        (
+            "gate-order.toml",
+            "kind = \"lstm\"\nunits = 2\ngate-order = \"ifgi\"\n",
+            ":7:",
+            &["`gate-order`", "\"ifgi\"", "exactly once"][..],
+        ),
+        (
+            "output.toml",
+            "kind = \"rnn\"\nunits = 2\noutput = \"first\"\n",
+            ":7:",
+            &["`output`", "\"first\"", "\"last\""][..],
+        ),
+    ] {
+        let net = dir.join(name);
+        std::fs::write(&net, format!("{head}{layer}")).unwrap();
+        for command in ["shapes", "grad"] {
+            let run = plumb(&[command, net.to_str().unwrap()]);
+            run.assert_code(2);
+            let e = &run.stderr;
+            assert!(e.contains(&format!("{name}{line}")), "{name}: {e}");
+            for n in needles {
+                assert!(e.contains(n), "{name}: `{n}` not in {e}");
+            }
+        }
+    }
+    let tokens = dir.join("tokens.toml");
+    std::fs::write(
+        &tokens,
+        "input = { tokens = 9, vocabulary = 20 }\nloss = \"cross-entropy\"\n\n[[layer]]\nkind = \"embedding\"\nsize = 2\n\n[[layer]]\nkind = \"rnn\"\nunits = 2\n\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n",
+    )
+    .unwrap();
+    let per_step = dir.join("per-step.toml");
+    std::fs::write(
+        &per_step,
+        "input = { steps = 6, features = 4 }\nloss = \"cross-entropy\"\n\n[[layer]]\nkind = \"gru\"\nunits = 2\noutput = \"all\"\n\n[[layer]]\nunits = 5\nactivation = \"softmax\"\n",
+    )
+    .unwrap();
+    for (net, data, needles) in [
+        (&tokens, "data/graph/tokens-int64.npz", &[][..]),
+        (
+            &tokens,
+            "data/graph/tokens-out-of-range.npz",
+            &[
+                "tokens-out-of-range.npz: array `x`, element [2, 5] (sample 2, step 5)",
+                "the token id 20 is outside the vocabulary",
+            ][..],
+        ),
+        (
+            &per_step,
+            "data/graph/steps-labels-out-of-range.npz",
+            &["steps-labels-out-of-range.npz: array `y`, element [2, 4] (sample 2, step 4)"][..],
+        ),
+    ] {
+        let run = plumb(&["grad", net.to_str().unwrap(), "-d", data]);
+        run.assert_code(if needles.is_empty() { 0 } else { 2 });
+        for n in needles {
+            assert!(
+                run.stderr.contains(n),
+                "{data}: `{n}` not in {}",
+                run.stderr
+            );
+        }
+    }
+}
+
 #[test]
 fn shapes_pass_on_numpy_written_sequence_weights_and_grad_runs_seeded_on_every_kind() {
     // fixtures/storage/generate.py writes these files with NumPy, each tensor in its declared

@@ -223,6 +223,52 @@ pub fn select_tensors(
     Ok(out)
 }
 
+/// Makes a sample of (tensor, flat index) pairs, sorted as [`select_tensors`] gives them, reach
+/// every block of each tensor its share can (`blocks(t)` blocks, `block(t, k)` the block of
+/// index k: an lstm's gate blocks, an attention projection's heads): a block left out takes the
+/// place of a coordinate of the tensor's fullest block, so the count stays the one asked for.
+/// Seeded; a tensor sampled whole, or of one block, is left as it is.
+pub fn cover_blocks(
+    picked: &mut [(usize, usize)],
+    sizes: &[usize],
+    blocks: impl Fn(usize) -> usize,
+    block: impl Fn(usize, usize) -> usize,
+    seed: u64,
+) {
+    let mut rng = Rng::new(seed ^ 0xb10c);
+    let mut start = 0;
+    while start < picked.len() {
+        let t = picked[start].0;
+        let end = start + picked[start..].iter().take_while(|p| p.0 == t).count();
+        let n = blocks(t);
+        if n > 1 && end - start < sizes[t] {
+            let mut members: Vec<Vec<usize>> = vec![Vec::new(); n];
+            for &(_, k) in &picked[start..end] {
+                members[block(t, k)].push(k);
+            }
+            for b in 0..n {
+                if !members[b].is_empty() {
+                    continue;
+                }
+                let fullest = (0..n).max_by_key(|&c| (members[c].len(), c)).unwrap();
+                if members[fullest].len() < 2 {
+                    break; // fewer coordinates than blocks: nothing to move
+                }
+                let own: Vec<usize> = (0..sizes[t]).filter(|&k| block(t, k) == b).collect();
+                let drop = rng.below(members[fullest].len());
+                members[fullest].remove(drop);
+                members[b].push(own[rng.below(own.len())]);
+            }
+            let mut all: Vec<usize> = members.into_iter().flatten().collect();
+            all.sort_unstable();
+            for (slot, k) in picked[start..end].iter_mut().zip(all) {
+                slot.1 = k;
+            }
+        }
+        start = end;
+    }
+}
+
 /// n coordinates shared over strata of the given sizes: each its minimum (see [`select_tensors`]),
 /// the rest in proportion to what is left of each, by largest remainder.
 fn spread(sizes: &[usize], n: usize) -> Vec<usize> {

@@ -28,6 +28,7 @@ use plumb_engine::{Activation, Loss, Scalar};
 use rayon::prelude::*;
 
 use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress};
+use crate::coverage::cover_blocks;
 use crate::direction::directions;
 use crate::external::{Plan, check_tensors};
 use crate::method::{ComplexScalar, complex_estimate, round_to};
@@ -113,6 +114,7 @@ pub fn check_graph_gradient(
         .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
     let mut picked =
         select_tensors(&sizes, &layers, sample, config.seed).map_err(CheckError::BadSample)?;
+    cover_graph_blocks(graph, &sizes, &mut picked, config.seed);
     let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
     let mut chosen = directions(&sizes, k, config.seed);
     if let Some((part, of)) = config.shard {
@@ -635,4 +637,26 @@ pub fn loss_magnitude<S: LayerScalar>(
         .sum::<f64>()
         * graph.loss_config().l2_factor(z.nrows());
     data * reduce + l2
+}
+
+/// Every gate block and head of a sampled tensor reached ([`cover_blocks`]).
+fn cover_graph_blocks(graph: &Graph, sizes: &[usize], picked: &mut [(usize, usize)], seed: u64) {
+    let at = |t: usize| {
+        let layer = graph.tensors()[t].layer;
+        let node = &graph.nodes()[layer];
+        (node, t - node.tensors().start)
+    };
+    cover_blocks(
+        picked,
+        sizes,
+        |t| {
+            let (node, own) = at(t);
+            node.layer.sample_blocks(own)
+        },
+        |t, k| {
+            let (node, own) = at(t);
+            node.layer.sample_block(own, k)
+        },
+        seed,
+    );
 }

@@ -54,6 +54,10 @@ pub struct DiagnosisReport {
     /// For `unexplained`: the 1-based layer whose backward step first goes wrong.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub first_wrong_layer: Option<usize>,
+    /// Other codes that reproduce the tensor as well: the gradient cannot tell them from `code`
+    /// (e.g. `state-gradient-dropped` beside `time-truncated` when only the last state is read).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub alike: Vec<String>,
 }
 
 /// Which tensor of the gradient file went to which parameter, and how the names were matched.
@@ -371,6 +375,7 @@ fn tensor_report(
             residual: d.residual.is_finite().then_some(d.residual),
             factor: d.factor,
             first_wrong_layer: d.first_wrong_layer.map(|l| l + 1),
+            alike: d.alike.iter().map(|(c, _)| c.to_string()).collect(),
         }),
         rel_errors: j
             .comparison
@@ -395,6 +400,12 @@ fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
                 }
                 if let Some(r) = d.residual {
                     s.push_str(&format!(" reproduces it to a residual of {}", num(r)));
+                }
+                if !d.alike.is_empty() {
+                    s.push_str(&format!(
+                        " (so does {}: the gradient cannot tell them apart)",
+                        d.alike.join(", ")
+                    ));
                 }
             }
             s

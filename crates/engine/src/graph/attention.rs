@@ -163,6 +163,22 @@ impl Kind for Attention {
         }]
     }
 
+    /// Every projection but the output bias is cut by head: the query, key and value rows, the
+    /// output weight's columns.
+    fn sample_blocks(&self, tensor: usize) -> usize {
+        if tensor == 7 { 1 } else { self.heads }
+    }
+
+    fn sample_block(&self, tensor: usize, flat: usize) -> usize {
+        let w = self.seq.width;
+        match tensor {
+            7 => 0,
+            6 => flat % w / self.head_width(),
+            t if t % 2 == 0 => flat / w / self.head_width(),
+            _ => flat / self.head_width(),
+        }
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         let w = self.seq.width;
         let weight = tensor.is_multiple_of(2);

@@ -186,6 +186,17 @@ pub trait Kind: Send + Sync + Debug {
         let shape = &self.params()[tensor].shape;
         format!("index {:?}", unravel(flat, shape))
     }
+    /// How many blocks tensor `tensor` holds that a sampled check must each reach (an lstm's or
+    /// gru's gate blocks, an attention projection's heads), and the block of flat index `flat`:
+    /// a mistake may sit in one block alone. One block by default.
+    fn sample_blocks(&self, tensor: usize) -> usize {
+        let _ = tensor;
+        1
+    }
+    fn sample_block(&self, tensor: usize, flat: usize) -> usize {
+        let _ = (tensor, flat);
+        0
+    }
     /// The parameter tensors whose first axis runs over this layer's output units (channels):
     /// unit u's incoming parameters are slice u of each (the audit's duplicate units). Empty when
     /// a unit owns no such slices (gate blocks, attention heads, norms).

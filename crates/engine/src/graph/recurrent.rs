@@ -228,6 +228,19 @@ impl<C: Cell> Kind for Recurrent<C> {
             .collect()
     }
 
+    fn sample_blocks(&self, _: usize) -> usize {
+        self.cell.blocks()
+    }
+
+    fn sample_block(&self, tensor: usize, flat: usize) -> usize {
+        let cols = match tensor {
+            0 => self.seq.width,
+            1 => self.units,
+            _ => 1,
+        };
+        flat / cols / self.units
+    }
+
     fn locate(&self, tensor: usize, flat: usize) -> String {
         let shape = &self.params()[tensor].shape;
         let cols = if shape.len() == 2 { shape[1] } else { 1 };

@@ -82,3 +82,60 @@ fn central_f32_over_twenty_seeds() {
 fn complex_step_over_twenty_seeds() {
     over_seeds(Method::ComplexStep, Precision::F64, Some(40));
 }
+
+/// A sample smaller than a tensor still reaches every gate block and every head (a mistake may
+/// sit in one of them alone), told apart here by the place the report names (`gate i`, `head 1`),
+/// and the count asked for stays exact. 20 seeds, `--sample` at a quarter of the parameters (a
+/// plain draw per tensor then misses some block of an lstm weight about every other time).
+#[test]
+fn a_small_sample_reaches_every_gate_block_and_head() {
+    use std::collections::{BTreeMap, BTreeSet};
+    for (name, build) in [
+        ("lstm", lstm as fn() -> plumb_engine::graph::Graph),
+        ("attention", attention),
+        ("embedding + gru", embedding),
+    ] {
+        for seed in 0..20 {
+            let c = case(build(), 2, 300 + seed);
+            let g = &c.graph;
+            let total = g.parameters() / 4;
+            let mut cfg = config(Method::Central, Precision::F64, seed);
+            cfg.sample = Some(Sample::Total(total));
+            let r = run(&c, &cfg);
+            assert_eq!(r.coords.len(), total, "{name} seed {seed}");
+            // The gate letter or head number of an entry, from the layer's own place name.
+            let part = |t: usize, k: usize| {
+                let node = &g.nodes()[g.tensors()[t].layer];
+                let place = node.layer.locate(t - node.tensors().start, k);
+                place
+                    .split(", ")
+                    .find(|p| p.starts_with("gate ") || p.starts_with("head "))
+                    .map(String::from)
+            };
+            let mut seen: BTreeMap<usize, BTreeSet<String>> = BTreeMap::new();
+            let mut quota: BTreeMap<usize, usize> = BTreeMap::new();
+            for coord in &r.coords {
+                let (t, k) = (coord.coord.tensor, coord.coord.index);
+                *quota.entry(t).or_default() += 1;
+                if let Some(p) = part(t, k) {
+                    seen.entry(t).or_default().insert(p);
+                }
+            }
+            for (t, spec) in g.tensors().iter().enumerate() {
+                let size: usize = spec.spec.shape.iter().product();
+                let all: BTreeSet<String> = (0..size).filter_map(|k| part(t, k)).collect();
+                if all.len() < 2 || spec.name.ends_with("output.bias") {
+                    continue;
+                }
+                let got = seen.get(&t).map_or(0, BTreeSet::len);
+                assert_eq!(
+                    got,
+                    quota[&t].min(all.len()),
+                    "{name} seed {seed}: {} ({} of {size} sampled)",
+                    spec.name,
+                    quota[&t]
+                );
+            }
+        }
+    }
+}

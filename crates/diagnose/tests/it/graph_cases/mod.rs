@@ -141,6 +141,10 @@ fn input_shape(case: &Value, file: &str) -> Shape {
     }
     let dims = usizes(input);
     match (dims.len(), file) {
+        (2, "sequence.json") if case["tokens"].as_bool() == Some(true) => Shape::Tokens {
+            steps: dims[0],
+            vocabulary: dims[1],
+        },
         (2, "sequence.json") => Shape::Sequence {
             steps: dims[0],
             width: dims[1],
@@ -201,9 +205,11 @@ fn build(case: &Value, file: &str, config: LossConfig) -> Graph {
             "embedding" => b.push(name, act, |s| {
                 Embedding::new(layer["size"].as_u64().unwrap() as usize, s)
             }),
-            // The cell's activation (tanh by default); the node after it takes the identity.
+            // The cell's activation (`cell` in sequence.json, `activation` in diagnosis.json;
+            // tanh by default); the node after it takes the identity.
             "rnn" => b.push(name, Activation::Identity, |s| {
-                let cell = activation(layer["activation"].as_str().unwrap_or("tanh"));
+                let cell = layer["cell"].as_str().or(layer["activation"].as_str());
+                let cell = activation(cell.unwrap_or("tanh"));
                 Rnn::new(units, cell, &text("output"), s)
             }),
             "lstm" => b.push(name, act, |s| {
