@@ -107,14 +107,11 @@ pub fn check_graph_gradient(
         .iter()
         .map(|t| t.spec.shape.iter().product())
         .collect();
-    let layers: Vec<usize> = graph.tensors().iter().map(|t| t.layer).collect();
     let default_sample = config.sample.is_none();
     let sample = config
         .sample
         .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
-    let mut picked =
-        select_tensors(&sizes, &layers, sample, config.seed).map_err(CheckError::BadSample)?;
-    cover_graph_blocks(graph, &sizes, &mut picked, config.seed);
+    let mut picked = graph_sample(graph, sample, config.seed).map_err(CheckError::BadSample)?;
     let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
     let mut chosen = directions(&sizes, k, config.seed);
     if let Some((part, of)) = config.shard {
@@ -637,6 +634,25 @@ pub fn loss_magnitude<S: LayerScalar>(
         .sum::<f64>()
         * graph.loss_config().l2_factor(z.nrows());
     data * reduce + l2
+}
+
+/// The (tensor, flat index) pairs a graph check of this sample and seed takes, sorted: the one
+/// sampler ([`select_tensors`]) with every gate block and head of a sampled tensor reached. The
+/// check and the merge of its shards both take it from here.
+pub fn graph_sample(
+    graph: &Graph,
+    sample: Sample,
+    seed: u64,
+) -> Result<Vec<(usize, usize)>, String> {
+    let sizes: Vec<usize> = graph
+        .tensors()
+        .iter()
+        .map(|t| t.spec.shape.iter().product())
+        .collect();
+    let layers: Vec<usize> = graph.tensors().iter().map(|t| t.layer).collect();
+    let mut picked = select_tensors(&sizes, &layers, sample, seed)?;
+    cover_graph_blocks(graph, &sizes, &mut picked, seed);
+    Ok(picked)
 }
 
 /// Every gate block and head of a sampled tensor reached ([`cover_blocks`]).

@@ -53,8 +53,8 @@ pub use external::{
 };
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};
 pub use graph_check::{
-    GraphCheck, check_graph, check_graph_gradient, loss_magnitude as graph_loss_magnitude,
-    sweep_graph,
+    GraphCheck, check_graph, check_graph_gradient, graph_sample,
+    loss_magnitude as graph_loss_magnitude, sweep_graph,
 };
 pub use gross::{gradient_magnitude, loss_magnitude};
 pub use method::{

@@ -20,7 +20,7 @@ use super::graph_description_hash;
 use super::locate::{Place, Tensors};
 use crate::{
     CheckResult, CoordCheck, Coverage, DirectionCheck, Entry, GraphCheck, Method, OutsideDirection,
-    Precision, Sample, Scope, select_tensors,
+    Precision, Sample, Scope, graph_sample,
 };
 
 /// The most shards a check can be split into (the bound `--shard` gives).
@@ -431,7 +431,7 @@ impl Shards<GraphPlace> {
             })
         };
         let set = self.settings()?;
-        let whole = select_tensors(&sizes, &layers, set.sample, r.seed)
+        let whole = graph_sample(graph, set.sample, r.seed)
             .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
         let per_part = r.coverage.directions_per_part;
         let coords = self.rejoin(
