@@ -12,6 +12,7 @@ mod graph_kinks;
 mod graph_mistakes;
 mod graph_pass;
 mod graph_seeds;
+mod graph_units;
 mod one_step;
 mod settle;
 mod shard_corpus;
