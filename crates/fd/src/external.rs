@@ -575,7 +575,8 @@ pub(crate) fn check_tensors<E>(
 
 /// The changes that move every parameter by `delta`·v, one perturbation per delta.
 fn changes_along(v: &[Vec<f64>], deltas: &[f64]) -> Vec<Change> {
-    let mut changes = Vec::new();
+    // A direction moves (nearly) every parameter: room for all at once, not by doubling.
+    let mut changes = Vec::with_capacity(deltas.len() * v.iter().map(Vec::len).sum::<usize>());
     for (p, &d) in deltas.iter().enumerate() {
         for (t, vt) in v.iter().enumerate() {
             for (k, &vk) in vt.iter().enumerate() {

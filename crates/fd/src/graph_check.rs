@@ -6,8 +6,9 @@
 //! directions come from the one sampler ([`select_tensors`]) and generator ([`directions`]).
 //! Perturbing a tensor of layer L recomputes the graph from layer L over the base pass
 //! ([`Graph::forward_from`]): the layers below are read from it. A perturbation of one entry
-//! goes through its kind's incremental hint ([`Graph::forward_moved`]: dense and conv update the
-//! one unit or channel the entry feeds) and the L2 term's change of that entry alone. Perturbations are evaluated in
+//! goes through its kind's incremental hint ([`Graph::moved_loss`]: dense and conv update the
+//! one unit or channel the entry feeds, a dense layer above it only by that unit's change) and
+//! the L2 term's change of that entry alone. Perturbations are evaluated in
 //! parallel, each on its own, so the result does not depend on the number of threads. A step is
 //! called across a non-smooth point when the perturbed pass takes another branch than the base
 //! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
@@ -17,14 +18,15 @@
 //! tie or exactly on a kink at or above the coordinate's layer, it looks at the branches real
 //! steps ±√ε·max(|θ|, 1) take instead, and calls the coordinate `unreliable` when they change.
 
+use std::borrow::Cow;
 use std::cell::RefCell;
 use std::collections::HashMap;
 use std::convert::Infallible;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Branches, Graph, LayerScalar, Moved, Shape, Tail, Trace};
-use plumb_engine::{Activation, Loss, Scalar};
+use plumb_engine::graph::{Graph, LayerScalar, Moved, Shape, Tail, Trace};
+use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
 use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress};
@@ -256,7 +258,7 @@ impl Run<'_> {
                 .map(|b| {
                     let im = eval.imaginary(b);
                     let mut probes = Vec::new();
-                    if let [c] = b.as_slice() {
+                    if let [c] = b.as_ref() {
                         let theta = self.tensors[c.tensor as usize].values[c.index as usize];
                         let hp = Method::Forward.default_step(theta, eps);
                         for d in [hp, -hp] {
@@ -297,6 +299,20 @@ impl Run<'_> {
             }])
         };
         let crossed_along = |v: &[Vec<f64>], d: f64| {
+            // The key names the first change and the count: no list of every parameter's change
+            // is built for a verdict the last request left.
+            let mut nonzero = v.iter().enumerate().flat_map(|(t, vt)| {
+                vt.iter()
+                    .enumerate()
+                    .filter(|(_, w)| **w != 0.0)
+                    .map(move |(k, &w)| (t, k, w))
+            });
+            if let Some((t, k, w)) = nonzero.next() {
+                let key = (t as u32, k as u64, (d * w).to_bits(), 1 + nonzero.count());
+                if let Some(&c) = seen.borrow().get(&key) {
+                    return c;
+                }
+            }
             let changes: Vec<Change> = v
                 .iter()
                 .enumerate()
@@ -336,11 +352,24 @@ impl Run<'_> {
     }
 }
 
-/// The changes of each of `count` perturbations.
-fn buckets(count: usize, changes: &[Change]) -> Vec<Vec<Change>> {
-    let mut out = vec![Vec::new(); count];
-    for c in changes {
-        out[c.perturbation as usize].push(*c);
+/// The changes of each of `count` perturbations: slices of `changes` where they come grouped by
+/// perturbation in order (as the checker sends them: a direction's are the whole network's
+/// parameters once per step, not worth copying), copies otherwise.
+fn buckets(count: usize, changes: &[Change]) -> Vec<Cow<'_, [Change]>> {
+    let mut out = vec![Cow::Borrowed(&changes[..0]); count];
+    let mut next = 0;
+    for run in changes.chunk_by(|a, b| a.perturbation == b.perturbation) {
+        let p = run[0].perturbation as usize;
+        if p < next {
+            // Out of order: gathered by copying.
+            let mut owned = vec![Vec::new(); count];
+            for c in changes {
+                owned[c.perturbation as usize].push(*c);
+            }
+            return owned.into_iter().map(Cow::Owned).collect();
+        }
+        out[p] = Cow::Borrowed(run);
+        next = p + 1;
     }
     out
 }
@@ -361,9 +390,6 @@ struct Eval<'a, S> {
     loss: S,
     /// Σ w² of the decaying tensors at the base point.
     l2_sum: S,
-    branches: Branches,
-    /// Per layer, the sides of a derivative's break the kink sides do not cover (elu, α = 1).
-    breaks: Vec<Vec<bool>>,
     /// Per layer, the ties and values on a kink of the base pass at or above it.
     ties_from: Vec<usize>,
 }
@@ -385,9 +411,6 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         let loss = graph.loss_of(&params, &trace, y.view());
         let l2_sum = graph.l2_sum(&params);
         let branches = graph.branches(&trace);
-        let breaks = (0..trace.steps.len())
-            .map(|j| breaks(graph, j, &trace.steps[j].out))
-            .collect();
         let mut ties_from = vec![0; trace.steps.len() + 1];
         for j in (0..trace.steps.len()).rev() {
             ties_from[j] = ties_from[j + 1] + branches.layers[j].ties;
@@ -400,8 +423,6 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             trace,
             loss,
             l2_sum,
-            branches,
-            breaks,
             ties_from,
         }
     }
@@ -410,15 +431,15 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     fn moved(&self, changes: &[Change], unit: S) -> (Vec<ArrayD<S>>, usize) {
         let mut moved = self.params.clone();
         let mut from = usize::MAX;
+        // A direction moves every parameter: each tensor's slice is looked up once.
+        let mut slices: Vec<&mut [S]> = moved
+            .iter_mut()
+            .map(|p| p.as_slice_mut().expect("standard layout"))
+            .collect();
         for c in changes {
             let t = c.tensor as usize;
             from = from.min(self.graph.tensors()[t].layer);
-            let slot = moved[t]
-                .as_slice_mut()
-                .expect("standard layout")
-                .get_mut(c.index as usize)
-                .expect("index within its tensor");
-            *slot += unit * S::from_f64(c.delta);
+            slices[t][c.index as usize] += unit * S::from_f64(c.delta);
         }
         (moved, from.min(self.trace.steps.len() - 1))
     }
@@ -437,10 +458,10 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
                 index: c.index as usize,
                 delta: unit * S::from_f64(c.delta),
             };
-            let g = self.graph;
-            let tail = g.forward_moved(&self.params, self.x.view(), &self.trace, &moved);
-            let loss = g.loss_moved(&self.params, &tail, self.y.view(), self.l2_sum, &moved);
-            return (loss, tail);
+            let (x, y) = (self.x.view(), self.y.view());
+            return self
+                .graph
+                .moved_loss(&self.params, x, &self.trace, y, self.l2_sum, &moved);
         }
         let (moved, from) = self.moved(changes, unit);
         let tail = self.tail(&moved, from);
@@ -465,18 +486,23 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         self.ties_from[from] > 0 && self.at(changes).1
     }
 
+    /// Whether a layer the tail recomputed took another branch than the base pass: a kind's
+    /// choice ([`Graph::branches`]), or a value on the other side of its activation's kink or of
+    /// a break in a derivative (elu with α = 1), compared value by value with nothing collected.
     fn crossed(&self, tail: &Tail<S>) -> bool {
-        let moved = self.graph.branches_from(tail);
-        let from = tail.from;
-        self.branches.layers[from..]
-            .iter()
-            .zip(&moved.layers)
-            .any(|(a, b)| a.kind != b.kind || a.sides != b.sides)
-            || tail
-                .steps
-                .iter()
-                .enumerate()
-                .any(|(i, s)| breaks(self.graph, from + i, &s.out) != self.breaks[from + i])
+        tail.steps.iter().enumerate().any(|(i, step)| {
+            let j = tail.from + i;
+            let base = &self.trace.steps[j];
+            let act = self.graph.nodes()[j].activation;
+            step.branches != base.branches
+                || act.break_point().is_some_and(|k| {
+                    let side = |v: &S| v.re() > k;
+                    step.out
+                        .iter()
+                        .zip(&base.out)
+                        .any(|(a, b)| side(a) != side(b))
+                })
+        })
     }
 }
 
@@ -565,16 +591,6 @@ fn sweep_in<S: LayerScalar, C: LayerScalar + ComplexScalar>(
             }
         })
         .collect()
-}
-
-/// The sides of layer j's values at a break of its activation's derivatives that its kink sides
-/// do not already record; empty where there is none.
-fn breaks<S: Scalar>(graph: &Graph, j: usize, z: &Array2<S>) -> Vec<bool> {
-    let act = graph.nodes()[j].activation;
-    match (act.kink(), act.break_point()) {
-        (None, Some(b)) => z.iter().map(|v| v.re() > b).collect(),
-        _ => Vec::new(),
-    }
 }
 
 /// Σ of the absolute values of the terms the graph's loss sums (under its reduction), plus the L2

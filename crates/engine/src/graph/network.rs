@@ -556,7 +556,9 @@ impl Graph {
     /// [hint](super::Layer::forward_moved) (or recomputed with the entry moved when the kind has
     /// none), the layers above recomputed — a channel-wise layer only in the channels that
     /// changed ([`Layer::forward_channels`](super::Layer::forward_channels)), bit for bit what a
-    /// full pass gives them. The tail's steps keep nothing for a backward pass. It stops at a
+    /// full pass gives them; a dense layer whose input changed in a few units by the change
+    /// alone ([`Layer::forward_units`](super::Layer::forward_units), a rank-k update, equal to
+    /// a full pass up to rounding). The tail's steps keep nothing for a backward pass. It stops at a
     /// layer whose output is the base's again bit for bit when no layer above taps one that is
     /// not ([`Tail::settled`]): a change that has died out costs nothing further.
     pub fn forward_moved<S: LayerScalar>(
@@ -565,6 +567,36 @@ impl Graph {
         x: ArrayView2<S>,
         base: &Trace<S>,
         moved: &Moved<S>,
+    ) -> Tail<S> {
+        self.moved_tail(params, x, base, moved, true)
+    }
+
+    /// The loss after one parameter entry moved and the tail it came from: [`Graph::forward_moved`]
+    /// then [`Graph::loss_moved`], except that the output layer's activation is left out (its
+    /// entry of the tail's outputs has no columns) where the loss reads only z — cross-entropy
+    /// takes its log-sum-exp from z, so a softmax would be computed for nothing.
+    pub fn moved_loss<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        y: ArrayView2<S>,
+        l2_sum: S,
+        moved: &Moved<S>,
+    ) -> (S, Tail<S>) {
+        let reads = self.loss.loss.reads_activations();
+        let tail = self.moved_tail(params, x, base, moved, reads);
+        (self.loss_moved(params, &tail, y, l2_sum, moved), tail)
+    }
+
+    /// [`Graph::forward_moved`], with the output layer's activation only when `output_activation`.
+    fn moved_tail<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        moved: &Moved<S>,
+        output_activation: bool,
     ) -> Tail<S> {
         if let Err(e) = self.check_params(params) {
             panic!("{e} (check_params before a pass)");
@@ -602,8 +634,17 @@ impl Graph {
                 (layer.forward(&own, input, skip), None)
             }
         };
+        let last = self.nodes.len() - 1;
+        // The activation of layer j's z, or nothing for an output layer the loss does not read.
+        let activate = |j: usize, z: &Array2<S>, changed: Option<&[usize]>| {
+            if j == last && !output_activation {
+                Array2::zeros((z.nrows(), 0))
+            } else {
+                self.activate_changed(&self.nodes[j], z, &base.outputs[j], changed)
+            }
+        };
         let mut changed = vec![first];
-        let a = self.activate_changed(node, &step.out, &base.outputs[from], changed[0].as_deref());
+        let a = activate(from, &step.out, changed[0].as_deref());
         let mut steps = vec![step];
         let mut outputs = vec![a];
         // The last layer that reads any recomputed layer but the newest (the next one, or a tap).
@@ -611,7 +652,6 @@ impl Graph {
         for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
             let below = j - 1;
             if open < j && same_bits(&outputs[below - from], &base.outputs[below]) {
-                let last = self.nodes.len() - 1;
                 return Tail {
                     from,
                     steps,
@@ -640,14 +680,25 @@ impl Graph {
             let layer = S::layer(node.layer.as_ref());
             let own = &params[node.tensors()];
             let input = output(j - 1);
+            let step = &base.steps[j];
             let local = differs
                 .as_deref()
-                .and_then(|c| layer.forward_channels(own, input, skip, &base.steps[j], c));
+                .and_then(|c| layer.forward_channels(own, input, skip, step, c));
             let (step, now) = match local {
                 Some(step) => (step, differs),
-                None => (layer.forward(own, input, skip), None),
+                None => {
+                    let base_input = base.outputs[j - 1].view();
+                    let units = differs
+                        .as_deref()
+                        .filter(|_| node.tap.is_none())
+                        .and_then(|c| layer.forward_units(own, input, base_input, step, c));
+                    (
+                        units.unwrap_or_else(|| layer.forward(own, input, skip)),
+                        None,
+                    )
+                }
             };
-            let a = self.activate_changed(node, &step.out, &base.outputs[j], now.as_deref());
+            let a = activate(j, &step.out, now.as_deref());
             steps.push(step);
             outputs.push(a);
             changed.push(now);

@@ -13,6 +13,7 @@ mod graph_mistakes;
 mod graph_pass;
 mod graph_seeds;
 mod graph_shards;
+mod graph_units;
 mod one_step;
 mod settle;
 mod shard_corpus;
