@@ -11,7 +11,7 @@ use plumb_engine::Init;
 use plumb_fd::report::{
     GraphCheckReport, GraphInputs, GraphLoaded, GraphPlace, Shards, fuzz_shard, graph_check_report,
 };
-use plumb_fd::{CheckConfig, Method, Precision, Sample, select_tensors};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, graph_sample};
 use plumb_formats::{AxisOrder, GraphDescription};
 use serde_json::Value;
 
@@ -120,16 +120,10 @@ fn merged_graph_shards_equal_the_whole_check() {
 
         // The shares partition the run's sample exactly: every coordinate once, in its order.
         let graph = &l.desc.graph;
-        let sizes: Vec<usize> = graph
-            .tensors()
-            .iter()
-            .map(|t| t.spec.shape.iter().product())
-            .collect();
-        let layers: Vec<usize> = graph.tensors().iter().map(|t| t.layer).collect();
         let sample = run
             .sample
             .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
-        let drawn = select_tensors(&sizes, &layers, sample, 3).unwrap();
+        let drawn = graph_sample(graph, sample, 3).unwrap();
         let joined: Vec<(String, usize)> = merged
             .coordinates
             .as_ref()
