@@ -199,3 +199,49 @@ fn sweep_of_a_conv_coordinate_has_a_v_curve_below_the_tolerance() {
     bad.assert_code(2);
     assert!(bad.stderr.contains("0 to 47"), "{}", bad.stderr);
 }
+
+/// The sweep on sequence kinds: an lstm's recurrent weight, an attention projection and a gru's
+/// recurrent weight of the demo sequence model, each with a V-curve whose best step is below the
+/// tolerance (the reference gradient is right, so only the method's error remains).
+#[test]
+fn sweep_of_sequence_coordinates_has_v_curves_below_the_tolerance() {
+    let coords = [
+        ("memory.recurrent.weight", 12),
+        ("look-back.query.weight", 40),
+        ("layer4.recurrent.weight", 34),
+    ];
+    let list: Vec<String> = coords.iter().map(|(t, k)| format!("{t}:{k}")).collect();
+    let run = plumb(&[
+        "sweep",
+        "nets/pump-sequence.toml",
+        "--format",
+        "json",
+        "--seed",
+        "3",
+        "--coords",
+        &list.join(","),
+        "--methods",
+        "central",
+    ]);
+    run.assert_code(0);
+    let v = run.json();
+    let tolerance = v["tolerance"].as_f64().unwrap();
+    for (i, (tensor, index)) in coords.iter().enumerate() {
+        let c = &v["coordinates"][i];
+        assert_eq!(c["tensor"], *tensor, "{v}");
+        assert_eq!(c["index"], *index, "{v}");
+        let m = &c["methods"][0];
+        let best = m["best_error"].as_f64().unwrap();
+        assert!(best < tolerance, "{tensor}[{index}]: best {best}");
+        let errors: Vec<f64> = m["errors"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|e| e.as_f64().unwrap_or(f64::INFINITY))
+            .collect();
+        assert!(
+            errors[errors.len() - 1] > 100.0 * best,
+            "{tensor}[{index}]: {errors:?}"
+        );
+    }
+}
