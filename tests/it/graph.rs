@@ -436,3 +436,47 @@ fn shapes_pass_on_numpy_written_sequence_weights_and_grad_runs_seeded_on_every_k
         assert_eq!(run.json()["samples"], 3);
     }
 }
+
+/// `shapes` through the binary on sequence weights gone wrong (the NumPy-written file of
+/// fixtures/storage, one tensor changed at a time): an lstm weight stored out × in though
+/// `storage = "transposed"` is declared, recurrent blocks of the wrong multiple, an attention
+/// projection of the wrong width — each named at its tensor with its code, exit 1.
+#[test]
+fn shapes_names_sequence_weights_gone_wrong_through_the_binary() {
+    use plumb_formats::{DType, FileFormat, write_tensors};
+    let dir = scratch("sequence-shapes");
+    let good = read_tensors(&fixture("storage/sequence-weights.npz")).unwrap();
+    let cases: [(&str, Vec<usize>, bool, &str); 3] = [
+        ("layer1.input.weight", vec![8, 3], true, "transposed-matrix"),
+        ("layer1.recurrent.weight", vec![2, 6], false, "gate-blocks"),
+        ("layer2.value.weight", vec![2, 3], false, "attention-width"),
+    ];
+    for (tensor, shape, transpose, code) in cases {
+        let mut file = good.clone();
+        let t = file.tensors.iter_mut().find(|t| t.name == tensor).unwrap();
+        *t = if transpose {
+            t.transposed()
+        } else {
+            let n = shape.iter().product();
+            plumb_formats::Tensor::new(tensor, shape.clone(), vec![0.1; n])
+        };
+        let path = dir.join(format!("{code}.npz"));
+        write_tensors(&path, FileFormat::Npz, &file.tensors, DType::F64).unwrap();
+        let run = plumb(&[
+            "shapes",
+            "storage/sequence.toml",
+            "-w",
+            path.to_str().unwrap(),
+            "--format",
+            "json",
+        ]);
+        run.assert_code(1);
+        let v = run.json();
+        let named = v["findings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|f| f["code"] == code && f["tensor"] == tensor && f["severity"] == "error");
+        assert!(named, "{tensor}: no {code} error in {v}");
+    }
+}
