@@ -489,14 +489,3 @@ impl Command {
         }
     }
 }
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-    use clap::CommandFactory;
-
-    #[test]
-    fn the_command_line_is_well_formed() {
-        Cli::command().debug_assert();
-    }
-}
