@@ -228,7 +228,7 @@ fn fraction_text(fraction: &Option<(Vec<usize>, String, f64)>) -> String {
     }
 }
 
-/// An index as NumPy takes it: `[3]`, `[2, 1]`.
+/// A byte count in MiB, or GiB from 1 GiB on.
 fn bytes_text(bytes: u64) -> String {
     let mib = bytes as f64 / f64::from(1u32 << 20);
     if mib >= 1024.0 {
@@ -238,6 +238,7 @@ fn bytes_text(bytes: u64) -> String {
     }
 }
 
+/// An index as NumPy takes it: `[3]`, `[2, 1]`.
 fn index_text(index: &[usize]) -> String {
     let parts: Vec<String> = index.iter().map(usize::to_string).collect();
     format!("[{}]", parts.join(", "))
@@ -274,7 +275,7 @@ pub fn read_data(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, Da
 
 /// The most a CSV's parsed values may take (4 GiB, 512 Mi values as f64): past it the file is
 /// refused, before the machine's memory is what stops it.
-pub const MAX_VALUE_BYTES: u64 = crate::MAX_DATA_BYTES;
+const MAX_VALUE_BYTES: u64 = crate::MAX_DATA_BYTES;
 
 /// How the target columns of a file are to be read.
 #[derive(Clone, Copy)]
