@@ -369,13 +369,7 @@ impl Shards<Place> {
             method: set.method,
             precision: set.precision,
             loss: r.loss,
-            coverage: Coverage {
-                sample: set.sample,
-                default_sample: r.coverage.default_sample,
-                directions: per_part,
-                parameters: r.coverage.parameters,
-                checked: coords.len(),
-            },
+            coverage: self.coverage(set.sample, coords.len()),
             tolerance: r.tolerance,
             floors: r.floors.clone(),
             coords,
@@ -526,13 +520,7 @@ impl Shards<GraphPlace> {
             method: set.method,
             precision: set.precision,
             loss: r.loss,
-            coverage: Coverage {
-                sample: set.sample,
-                default_sample: r.coverage.default_sample,
-                directions: per_part,
-                parameters: r.coverage.parameters,
-                checked: coords.len(),
-            },
+            coverage: self.coverage(set.sample, coords.len()),
             tolerance: r.tolerance,
             floors: r.floors.clone(),
             coords,
@@ -553,6 +541,19 @@ impl Shards<GraphPlace> {
 }
 
 impl<P> Shards<P> {
+    /// What the merged run covered: the shards' sample and directions per part, `checked`
+    /// coordinates joined.
+    fn coverage(&self, sample: Sample, checked: usize) -> Coverage {
+        let r = &self.list[0].report.coverage;
+        Coverage {
+            sample,
+            default_sample: r.default_sample,
+            directions: r.directions_per_part,
+            parameters: r.parameters,
+            checked,
+        }
+    }
+
     /// What the merged report says of the run besides its results: the shards' inputs and
     /// settings, no shard, and the reference gradient's norms, which are the whole tensor's, the
     /// same in every shard.
