@@ -10,7 +10,7 @@ use crate::util;
 use std::path::Path;
 
 use serde_json::Value;
-use util::{fixture, plumb, scratch};
+use util::{fixture, merge, plumb, refused, scratch, write};
 
 /// `plumb check` on `args` with `--format json`, exit 0 or 1 as its verdict says.
 fn check(args: &[&str]) -> (i32, Value) {
@@ -37,18 +37,6 @@ fn shards(dir: &Path, args: &[&str], n: usize) -> Vec<String> {
             write(dir, &format!("shard{k}.json"), &v)
         })
         .collect()
-}
-
-fn write(dir: &Path, name: &str, v: &Value) -> String {
-    let p = dir.join(name);
-    std::fs::write(&p, v.to_string()).unwrap();
-    p.to_str().unwrap().to_string()
-}
-
-fn merge(files: &[&str]) -> util::Run {
-    let mut args = vec!["merge", "--format", "json", "--quiet"];
-    args.extend(files);
-    plumb(&args)
 }
 
 /// The merge of a conv network's check in f64 and of a sequence network's in f32 is the
@@ -117,14 +105,6 @@ fn merged_graph_shards_equal_the_whole_check() {
     let run = plumb(&["merge", &files[0], &files[1]]);
     run.assert_code(0);
     assert!(run.stdout.contains("block.weight"), "{}", run.stdout);
-}
-
-fn refused(run: &util::Run, says: &[&str]) {
-    run.assert_code(2);
-    assert!(!run.stderr.contains("panicked"), "{}", run.stderr);
-    for s in says {
-        assert!(run.stderr.contains(s), "`{s}` not in: {}", run.stderr);
-    }
 }
 
 #[test]

@@ -7,7 +7,7 @@ use crate::util;
 use std::path::{Path, PathBuf};
 
 use serde_json::Value;
-use util::{fixture, plumb, scratch};
+use util::{fixture, merge, plumb, refused, scratch, write};
 
 fn mkfifo(path: &Path) {
     let status = std::process::Command::new("mkfifo")
@@ -32,26 +32,6 @@ fn shard(spec: &str) -> Value {
     ]);
     run.assert_code(0);
     run.json()
-}
-
-fn write(dir: &Path, name: &str, v: &Value) -> String {
-    let p = dir.join(name);
-    std::fs::write(&p, v.to_string()).unwrap();
-    p.to_str().unwrap().to_string()
-}
-
-fn merge(files: &[&str]) -> util::Run {
-    let mut args = vec!["merge", "--format", "json", "--quiet"];
-    args.extend(files);
-    plumb(&args)
-}
-
-fn refused(run: &util::Run, says: &[&str]) {
-    run.assert_code(2);
-    assert!(!run.stderr.contains("panicked"), "{}", run.stderr);
-    for s in says {
-        assert!(run.stderr.contains(s), "`{s}` not in: {}", run.stderr);
-    }
 }
 
 /// A coordinate whose rel_error is null (NaN or infinite when written) sorts without the panic

@@ -51,6 +51,29 @@ impl Run {
     }
 }
 
+/// A JSON value written to `dir/name`; its path as text, for a command line.
+pub fn write(dir: &Path, name: &str, v: &serde_json::Value) -> String {
+    let p = dir.join(name);
+    std::fs::write(&p, v.to_string()).unwrap();
+    p.to_str().unwrap().to_string()
+}
+
+/// `plumb merge` of these shard files, JSON on stdout.
+pub fn merge(files: &[&str]) -> Run {
+    let mut args = vec!["merge", "--format", "json", "--quiet"];
+    args.extend(files);
+    plumb(&args)
+}
+
+/// An input refused: exit 2, no panic, and each of `says` in stderr.
+pub fn refused(run: &Run, says: &[&str]) {
+    run.assert_code(2);
+    assert!(!run.stderr.contains("panicked"), "{}", run.stderr);
+    for s in says {
+        assert!(run.stderr.contains(s), "`{s}` not in: {}", run.stderr);
+    }
+}
+
 /// The findings of a JSON report.
 pub fn findings(report: &serde_json::Value) -> &[serde_json::Value] {
     report["findings"]
