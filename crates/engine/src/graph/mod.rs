@@ -339,6 +339,39 @@ impl<T> AnyLayer for T where
 {
 }
 
+/// Boxes each kind as the graph holds it. These impls are not generic, so the passes of every
+/// kind in every scalar are compiled here once; a generic boxing in
+/// [`GraphBuilder::push`] compiled them again in every crate (and test binary) that builds a graph.
+macro_rules! boxed_kinds {
+    ($($kind:ty),* $(,)?) => {
+        $(
+            impl From<$kind> for Box<dyn AnyLayer> {
+                #[inline(never)]
+                fn from(layer: $kind) -> Self {
+                    Box::new(layer)
+                }
+            }
+        )*
+    };
+}
+
+boxed_kinds!(
+    Add,
+    Attention,
+    BatchNorm,
+    Conv,
+    Dense,
+    Embedding,
+    Flatten,
+    GlobalAvgPool,
+    Gru,
+    LayerNorm,
+    Lstm,
+    Pool,
+    RmsNorm,
+    Rnn,
+);
+
 /// The scalars the graph computes in: [`Scalar`] plus what the new kinds need (a square root for
 /// the norms) and the way to see a layer in this scalar.
 ///

@@ -146,6 +146,9 @@ pub struct GraphBuilder {
     names: HashMap<String, usize>,
 }
 
+/// How [`GraphBuilder::push`] hands a layer's construction on: from the shape it reads.
+type BuildLayer<'a> = dyn FnOnce(&Shape) -> Result<Box<dyn AnyLayer>, ShapeError> + 'a;
+
 impl GraphBuilder {
     pub fn new(input: Shape, loss: LossConfig) -> Self {
         GraphBuilder {
@@ -163,11 +166,27 @@ impl GraphBuilder {
     }
 
     /// Appends a layer built by `build` from the current shape. `name` defaults to `layerJ`.
-    pub fn push<L: AnyLayer + 'static>(
+    ///
+    /// The layer is boxed by its kind's `From` impl in this crate, so the passes of every kind in
+    /// every scalar are compiled once, in the engine, not again in each crate that builds a graph.
+    pub fn push<L: Into<Box<dyn AnyLayer>>>(
         &mut self,
         name: Option<&str>,
         activation: Activation,
         build: impl FnOnce(&Shape) -> Result<L, ShapeError>,
+    ) -> Result<&mut Self, GraphError> {
+        self.push_boxed(
+            name,
+            activation,
+            Box::new(|s: &Shape| build(s).map(Into::into)),
+        )
+    }
+
+    fn push_boxed(
+        &mut self,
+        name: Option<&str>,
+        activation: Activation,
+        build: Box<BuildLayer<'_>>,
     ) -> Result<&mut Self, GraphError> {
         let layer = self.nodes.len() + 1;
         let name = name.map_or_else(|| format!("layer{layer}"), str::to_string);
@@ -238,7 +257,7 @@ impl GraphBuilder {
         self.names.insert(name.clone(), self.nodes.len());
         self.nodes.push(Node {
             name,
-            layer: Box::new(built),
+            layer: built,
             activation,
             tap,
             tensors: start..self.tensors.len(),
