@@ -467,3 +467,51 @@ fn the_loss_is_judged_under_the_declared_reduction() {
         j["loss"]
     );
 }
+
+/// A dense description's gradient is judged in the file's own tensors: the augmented matrices of
+/// compare.toml, whose bias column (column 0) NumPy zeroed in bias-gradient-missing.npz
+/// (fixtures/compare/generate.py), are named on `layerJ` and worst in that column, which the
+/// report words as the layer's bias; the split layout's `bJ` are their own tensors.
+#[test]
+fn a_dense_gradient_is_named_on_the_files_tensors_in_the_layers_words() {
+    let (run, j) = compare_json(
+        "nets/compare.toml",
+        "weights/compare.npz",
+        "compare/bias-gradient-missing.npz",
+        &[],
+    );
+    run.assert_code(1);
+    for (k, t) in j["tensors"].as_array().unwrap().iter().enumerate() {
+        let name = format!("layer{}", k + 1);
+        assert_eq!(t["name"], name.as_str(), "{t:#}");
+        assert_eq!(t["layer"], k + 1);
+        assert_eq!(t["diagnosis"]["code"], "bias-gradient-missing", "{t:#}");
+        let worst = &t["worst"];
+        assert_eq!(worst["index"][1], 0, "{t:#}");
+        let unit = worst["index"][0].as_u64().unwrap();
+        assert_eq!(
+            worst["at"],
+            format!("{name}.bias: unit {unit}").as_str(),
+            "{t:#}"
+        );
+    }
+    // A transposed weight part: its place is a unit and an input of the layer.
+    let (run, j) = compare_json(
+        "nets/compare.toml",
+        "weights/compare.npz",
+        "compare/sign-flipped-layer2.npz",
+        &[],
+    );
+    run.assert_code(1);
+    let t = &j["tensors"][1];
+    let (unit, column) = (
+        t["worst"]["index"][0].as_u64().unwrap(),
+        t["worst"]["index"][1].as_u64().unwrap(),
+    );
+    let want = if column == 0 {
+        format!("layer2.bias: unit {unit}")
+    } else {
+        format!("layer2.weight: unit {unit}, input {}", column - 1)
+    };
+    assert_eq!(t["worst"]["at"], want.as_str(), "{t:#}");
+}

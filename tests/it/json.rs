@@ -505,6 +505,8 @@ struct PlaceJson {
 #[allow(dead_code)]
 struct WorstJson {
     place: Option<PlaceJson>,
+    /// The layer's words for the entry (unit and input; the graph tensor when the file's holds two).
+    at: Option<String>,
     index: Vec<usize>,
     outside: f64,
     reference: f64,
@@ -516,6 +518,7 @@ struct WorstJson {
 #[allow(dead_code)]
 struct CompareTensor {
     name: String,
+    layer: Option<usize>,
     verdict: String,
     expected_shape: Vec<usize>,
     found_shape: Option<Vec<usize>>,

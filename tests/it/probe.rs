@@ -383,6 +383,7 @@ fn probe_report_schema() {
         keys(t),
         set(&[
             "name",
+            "layer",
             "verdict",
             "expected_shape",
             "found_shape",

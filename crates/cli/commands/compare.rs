@@ -4,66 +4,50 @@
 use anyhow::{Result, bail};
 use plumb_diagnose::report::{
     Certification, CompareReport, LossReport, NameReport, TensorReport, compare_graph_report,
-    compare_report,
 };
-use plumb_formats::{Description, TensorFile, bind, read_tensors};
+use plumb_formats::{FileFormat, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, StripSeries, Table, Tone, Verdict};
 
 use crate::args::CompareArgs;
 use crate::commands::check::strip_plot;
-use crate::inputs::{AnyLoaded, load_any};
-use crate::output::{Settings, graph_network_id, network_id, num, shape, verdict_cell};
+use crate::inputs::load_graph;
+use crate::output::{Settings, num, shape, verdict_cell};
 
 pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
-    let file = |loaded: Option<&Description>| -> Result<TensorFile> {
-        let file = read_tensors(&args.gradient)?;
-        let file = match loaded {
-            Some(desc) => bind(desc, &file).into_owned(),
-            None => file,
-        };
-        if let Some(t) = file.tensors.iter().find(|t| !t.dtype.is_float()) {
-            bail!(
-                "{}: tensor `{}` holds {} values; a gradient must be floating point (float32 or float64)",
-                args.gradient.display(),
-                t.name,
-                t.dtype.name()
-            );
-        }
-        Ok(file)
-    };
-    let map = args.map.join(",");
-    let (report, network) = match load_any(&args.inputs, settings.seed)? {
-        AnyLoaded::Dense(loaded, _) => {
-            let file = file(Some(&loaded.desc))?;
-            let report = compare_report(
-                &loaded,
-                &args.gradient,
-                file,
-                &map,
-                args.loss,
-                settings.seed,
-            )?;
-            (report, network_id(&loaded.desc))
-        }
-        AnyLoaded::Graph(loaded) => {
-            let file = file(None)?;
-            let report = compare_graph_report(
-                &loaded,
-                &args.gradient,
-                file,
-                &map,
-                args.loss,
-                settings.seed,
-            )?;
-            (report, graph_network_id(&loaded.desc))
-        }
-    };
+    let (loaded, network) = load_graph(&args.inputs, settings.seed)?;
+    let file = npy_named(&loaded.desc, read_tensors(&args.gradient)?);
+    if let Some(t) = file.tensors.iter().find(|t| !t.dtype.is_float()) {
+        bail!(
+            "{}: tensor `{}` holds {} values; a gradient must be floating point (float32 or float64)",
+            args.gradient.display(),
+            t.name,
+            t.dtype.name()
+        );
+    }
+    let report = compare_graph_report(
+        &loaded,
+        &args.gradient,
+        file,
+        &args.map.join(","),
+        args.loss,
+        settings.seed,
+    )?;
     let mut doc = document(&report);
     doc.command = "compare".into();
     doc.network = Some(network);
     doc.cases = gradient_cases("gradient ", &report.tensors);
     doc.cases.extend(report.loss.as_ref().map(loss_case));
     settings.emit(&report, doc)
+}
+
+/// A `.npy` file holds one tensor, named after the file: when the description has one file
+/// tensor, that is the one, whatever the file is called.
+fn npy_named(desc: &GraphDescription, mut file: TensorFile) -> TensorFile {
+    if let (FileFormat::Npy, [t], [f]) = (file.format, file.tensors.as_mut_slice(), &desc.files[..])
+    {
+        t.name = f.name.clone();
+    }
+    file
 }
 
 /// The case of the outside loss against the reference loss (shared with probe).
@@ -270,11 +254,7 @@ pub fn tensor_table(tensors: &[TensorReport]) -> Table {
             Cell::from(
                 tr.worst
                     .as_ref()
-                    .map_or("—".to_string(), |w| match (&w.place, &w.at) {
-                        (Some(p), _) => p.label(),
-                        (None, Some(at)) => format!("{} {:?}: {at}", tr.name, w.index),
-                        (None, None) => format!("{:?}", w.index),
-                    }),
+                    .map_or("—".to_string(), |w| w.label(&tr.name)),
             ),
             verdict_cell(tr.verdict),
             Cell::new(

@@ -1,20 +1,17 @@
-//! `plumb grad NET [-w W] [-d D] [-o G] [--input-gradient]`: the reference loss and gradient, on
-//! the dense engine for dense descriptions and on the layer graph for any other kind.
+//! `plumb grad NET [-w W] [-d D] [-o G] [--input-gradient]`: the reference loss and gradient on
+//! the layer graph, for a description of any kind.
 
 use std::path::Path;
 
 use anyhow::{Result, bail};
 pub use plumb_fd::report::GradReport;
-use plumb_fd::report::{dense_input_gradient, graph_gradient_report};
+use plumb_fd::report::graph_gradient_report;
 use plumb_formats::{DType, FileFormat, write_tensor_file};
 use plumb_report::{Block, Case, Cell, Document, Table, Tone, Verdict};
 
 use crate::args::{DTypeArg, GradArgs};
-use crate::inputs::{AnyLoaded, WeightsSource, check_output, load_any, output_format};
-use crate::output::{Settings, graph_network_id, network_id, num, shape};
-
-/// The gradient of a dense network (shared with the demo).
-pub use plumb_fd::report::gradient_report as compute;
+use crate::inputs::{WeightsSource, check_output, load_graph, output_format};
+use crate::output::{Settings, num, shape};
 
 pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
     let inputs = &args.inputs;
@@ -29,21 +26,9 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         }
         None => None,
     };
-    let (mut computed, network, weights_source) = match load_any(inputs, settings.seed)? {
-        AnyLoaded::Dense(loaded, graph) => {
-            let mut computed = compute(&loaded);
-            if args.input_gradient {
-                computed.push_input(dense_input_gradient(&loaded, &graph));
-            }
-            let id = network_id(&loaded.desc);
-            (computed, id, loaded.weights_source)
-        }
-        AnyLoaded::Graph(loaded) => {
-            let computed = graph_gradient_report(&loaded, args.input_gradient)?;
-            let id = graph_network_id(&loaded.desc);
-            (computed, id, loaded.weights_source)
-        }
-    };
+    let (loaded, network) = load_graph(inputs, settings.seed)?;
+    let mut computed = graph_gradient_report(&loaded, args.input_gradient)?;
+    let weights_source = loaded.weights_source;
     if let (Some(path), Some(format)) = (&args.output, out_format) {
         if format == FileFormat::Npy && computed.tensors.len() != 1 {
             bail!(

@@ -17,11 +17,10 @@ use crate::commands::check::{method, step};
 use crate::commands::compare::{
     certification_text, error_plot, gradient_cases, loss_case, tensor_table,
 };
-use crate::inputs::{AnyLoaded, Loaded, WeightsSource, load_any};
-use crate::output::{
-    Settings, count_cell, directions_cell, graph_network_id, network_id, num, verdict_cell,
-};
+use crate::inputs::{WeightsSource, load_graph};
+use crate::output::{Settings, count_cell, directions_cell, num, verdict_cell};
 use plumb_engine::Batch;
+use plumb_fd::report::GraphLoaded;
 use plumb_report::DataSource;
 
 pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
@@ -62,22 +61,13 @@ pub fn run(args: &ProbeArgs, settings: &Settings) -> Result<Verdict> {
         weights: args.weights.clone(),
     };
     let (report, doc) = match (args.inputs(), args.blackbox) {
-        (Some(inputs), false) => match load_any(&inputs, settings.seed)? {
-            AnyLoaded::Dense(loaded, _) => {
-                let report = compute(Source::Described(&loaded), &opts, settings)?;
-                let mut doc = document(&report, Some(&loaded));
-                doc.network = Some(network_id(&loaded.desc));
-                (report, doc)
-            }
-            AnyLoaded::Graph(loaded) => {
-                let report = compute(Source::Graph(&loaded), &opts, settings)?;
-                let config = loaded.desc.graph.loss_config();
-                let mut doc =
-                    document_with(&report, Some((config.loss.to_string(), config.l2 > 0.0)));
-                doc.network = Some(graph_network_id(&loaded.desc));
-                (report, doc)
-            }
-        },
+        (Some(inputs), false) => {
+            let (loaded, network) = load_graph(&inputs, settings.seed)?;
+            let report = compute(Source::Graph(&loaded), &opts, settings)?;
+            let mut doc = document(&report, Some(&loaded));
+            doc.network = Some(network);
+            (report, doc)
+        }
         (None, false) => bail!(
             "give the network description NET (e.g. plumb probe net.toml -- CMD), or --blackbox to check the program against its own loss with the tensors its hello declares"
         ),
@@ -157,17 +147,18 @@ fn described_batch(inputs: &Inputs, seed: u64) -> Result<(Batch, DataSource)> {
         weights: None,
         ..inputs.clone()
     };
-    Ok(match load_any(&data_only, seed)? {
-        AnyLoaded::Dense(l, _) => (l.batch, l.data_source),
-        AnyLoaded::Graph(l) => (l.batch, l.data_source),
-    })
+    let (l, _) = load_graph(&data_only, seed)?;
+    Ok((l.batch, l.data_source))
 }
 
-/// The probe's report as a document, for a dense description (`loaded`) or none.
-pub fn document(r: &ProbeReport, loaded: Option<&Loaded>) -> Document {
+/// The probe's report as a document, for a description (`loaded`) or none.
+pub fn document(r: &ProbeReport, loaded: Option<&GraphLoaded>) -> Document {
     document_with(
         r,
-        loaded.map(|l| (l.desc.network.loss().to_string(), l.desc.network.l2() > 0.0)),
+        loaded.map(|l| {
+            let config = l.desc.graph.loss_config();
+            (config.loss.to_string(), config.l2 > 0.0)
+        }),
     )
 }
 

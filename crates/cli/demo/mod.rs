@@ -17,10 +17,14 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result};
 use plumb_audit::{Thresholds, audit_shapes};
 use plumb_diagnose::Tolerances;
-use plumb_engine::{Regularization, Variant};
+use plumb_diagnose::report::judge_graph_gradient;
+use plumb_engine::Regularization;
+use plumb_engine::graph::{Hooks, Slope};
+use plumb_fd::report::graph_gradient_report;
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
-    DType, Existing, FileFormat, Tensor, TensorFile, disassemble, write_file, write_tensor_file,
+    DType, Existing, FileFormat, GraphDescription, Tensor, TensorFile, disassemble, write_file,
+    write_tensor_file,
 };
 use plumb_report::{Block, Case, Document, Verdict};
 use serde::Serialize;
@@ -30,7 +34,7 @@ use crate::commands::check;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
 use crate::commands::{audit, compare, probe};
-use crate::inputs::{DataSource, Loaded, WeightsSource};
+use crate::inputs::{DataSource, Loaded, WeightsSource, dense_as_graph};
 use crate::output::{SCHEMA_VERSION, Settings};
 use layered::{Outcome, ScenarioReport};
 use plumb_fd::report::CheckReport;
@@ -127,40 +131,41 @@ pub(crate) fn probe_example(
 /// Coordinates a thinned probe checks against the program's own loss.
 pub(crate) const THIN_SAMPLE: usize = 20;
 
-/// The demo's bugs, one picked by the seed: (code, where, the backward pass that makes it).
-fn planted_bug(seed: u64) -> (&'static str, &'static str, Variant) {
-    let mut v = Variant::REFERENCE;
+/// The demo's bugs, one picked by the seed: (code, where, the backward pass's departure that
+/// makes it).
+fn planted_bug(seed: u64) -> (&'static str, &'static str, Hooks) {
+    let mut h = Hooks::REFERENCE;
     match seed % 4 {
         0 => {
-            v.slope_missing = Some(1);
+            h.slope = Some((1, Slope::Missing));
             (
                 "activation-derivative-missing",
                 "the tanh derivative of hidden layer 2 is left out",
-                v,
+                h,
             )
         }
         1 => {
-            v.regularization = Regularization::BiasToggled;
+            h.regularization = Regularization::BiasToggled;
             (
                 "bias-regularized",
                 "the L2 term is applied to the bias weights too",
-                v,
+                h,
             )
         }
         2 => {
-            v.data_scale = 60.0;
+            h.data_scale = 60.0;
             (
                 "missing-batch-mean",
                 "the data term is summed over the 60 samples, not averaged",
-                v,
+                h,
             )
         }
         _ => {
-            v.slope_at_activation = Some(0);
+            h.slope = Some((0, Slope::AtOutput));
             (
                 "derivative-at-output",
                 "tanh′ of hidden layer 1 is taken at the activation, not at z",
-                v,
+                h,
             )
         }
     }
@@ -252,7 +257,19 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             samples: pump.batch.len(),
         },
     };
-    let computed = grad::compute(&loaded);
+    // The same run on the layer graph, for grad, compare and probe.
+    let on_graph = dense_as_graph(
+        Loaded {
+            desc: desc.clone(),
+            weights: pump.weights.clone(),
+            weights_source: loaded.weights_source.clone(),
+            batch: pump.batch.clone(),
+            data_source: loaded.data_source.clone(),
+        },
+        GraphDescription::parse(&net_path, pump::DESCRIPTION)
+            .expect("the demo's description is valid"),
+    );
+    let computed = graph_gradient_report(&on_graph, false)?;
     let checked = check::compute(
         &loaded,
         &CheckConfig::new(Method::Central, Precision::F64),
@@ -261,19 +278,24 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     )?;
 
     // The "hand-written" implementation's bug, planted from the seed, and what compare makes of it.
-    let (bug_code, bug_label, bug_variant) = planted_bug(settings.seed);
-    let trace = desc.network.forward(&pump.weights, pump.batch.x.view());
-    let buggy =
-        desc.network
-            .backward_with(&pump.weights, &trace, pump.batch.y.view(), &bug_variant);
-    let outside = plumb_diagnose::report::layout_tensors(desc, &buggy);
+    let (bug_code, bug_label, bug_hooks) = planted_bug(settings.seed);
+    let (graph, b) = (&on_graph.desc.graph, &on_graph.batch);
+    let trace = graph.forward(&on_graph.params, b.x.view());
+    let (buggy, _) = graph.backward_hooked(
+        &on_graph.params,
+        b.x.view(),
+        b.y.view(),
+        &trace,
+        None,
+        &bug_hooks,
+    );
+    let outside = on_graph.desc.to_file(&buggy)?;
     let (bug_tensors, bug_findings) =
-        plumb_diagnose::report::judge_gradient(&loaded, &outside, &|_| {
-            Tolerances::for_precision(false)
-        });
+        judge_graph_gradient(&on_graph, &outside, &|_| Tolerances::for_precision(false))
+            .map_err(anyhow::Error::msg)?;
 
     let probed = probe_example(
-        probe::Source::Described(&loaded),
+        probe::Source::Graph(&on_graph),
         "examples/python/pump_numpy.py",
         plant_switch(bug_code),
         false,
@@ -455,7 +477,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
                 "The same bug planted in a real program — examples/python/pump_numpy.py --plant {}, a hand-written NumPy backprop talking to plumb over its wire protocol — and what `plumb probe` finds: its gradient against differences of its own loss, its loss against the reference, its gradient against the reference:",
                 plant_switch(bug_code)
             )));
-            for b in probe::document(r, Some(&loaded)).blocks {
+            for b in probe::document(r, Some(&on_graph)).blocks {
                 if matches!(b, Block::Table(_)) {
                     doc.push(b);
                 }

@@ -4,9 +4,9 @@ use crate::catalogue::{CONSTANT_FACTOR, Hypothesis};
 use plumb_formats::Tensor;
 
 /// What a diagnosis tests against: the reference tensors (in the layout the outside gradient is
-/// named in) and the hypotheses of a catalogue, each with its code. The dense catalogue
-/// ([`crate::Problem`]) and the layer graph's ([`crate::GraphProblem`]) are two sources; the rule
-/// that names a tensor is one.
+/// named in) and the hypotheses of a catalogue, each with its code. The layer graph's canonical
+/// tensors ([`crate::GraphProblem`]) and a weight file's tensors (`crate::file_view`) are two
+/// sources; the rule that names a tensor is one.
 pub trait Hypotheses {
     fn reference(&self) -> &[Tensor];
     /// Every hypothesis, in the order ties are broken; `outside` is the gradient under diagnosis

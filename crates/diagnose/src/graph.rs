@@ -5,7 +5,7 @@
 //! samples, the other loss's output delta, an activation derivative left out or taken at the
 //! output in one layer, the L2 term's form), each kind's own mistakes as [`Graph::plant`] in one
 //! layer at a time, and the rest (a sign, a transposition, a swap, a missing bias, a fitted
-//! factor) are read off the reference gradient. The verdict rule is the dense one
+//! factor) are read off the reference gradient. The verdict rule is the one of every source
 //! ([`crate::judge`]), shared.
 //!
 //! Tensors are the graph's, in canonical order and shape, named `layer.suffix`; the input
@@ -308,7 +308,13 @@ impl Hypotheses for GraphProblem<'_> {
                     .plant(&node.name, code)
                     .expect("a kind's own code plants in its layer");
                 let tensors = self.departed(Some(&planted), &Hooks::REFERENCE);
-                add(code, vec![self.in_layer(j, tensors)]);
+                let mut h = self.in_layer(j, tensors);
+                if code == "bias-rows-shifted" && j > 0 {
+                    // It shifts the rows of the gradient that reaches the layer below: named for
+                    // that layer, whose rows they are.
+                    h.label = format!("hidden layer {j}");
+                }
+                add(code, vec![h]);
             }
         }
         add(CONSTANT_FACTOR, vec![fitted_factor(r, outside)]);

@@ -3,10 +3,10 @@
 //! engine computes the gradient that mistake would produce, and the one that reproduces a tensor to
 //! a tight residual is named for it.
 //!
-//! The crate works on named tensors in the weight file's own layout; the caller says how the
-//! engine's augmented matrices map to them. [`judge_graph`] does the same on the layer graph
-//! (`plumb_engine::graph`, every kind) with the graph's canonical tensors; both go through one
-//! verdict rule ([`judge`] over a [`Hypotheses`] source).
+//! The reference and the hypotheses are the layer graph's (`plumb_engine::graph`, every kind):
+//! [`judge_graph`] judges the graph's canonical tensors, [`judge_files`] the weight file's own
+//! tensors (a dense layout's augmented matrices, transposed weights, its names); both go through
+//! one verdict rule ([`judge`] over a [`Hypotheses`] source).
 //!
 //! ```
 //! use plumb_diagnose::compare_tensor;
@@ -22,14 +22,16 @@
 mod catalogue;
 mod compare;
 mod diagnose;
+mod file_view;
 mod graph;
 mod judge;
 mod names;
 pub mod report;
 
-pub use catalogue::{CATALOGUE, CONSTANT_FACTOR, Hypothesis, Mistake, Problem};
+pub use catalogue::{CONSTANT_FACTOR, Hypothesis};
 pub use compare::{TensorComparison, compare_tensor};
 pub use diagnose::{Diagnosis, Hypotheses, diagnose};
+pub use file_view::{file_places, judge_files};
 pub use graph::{GraphProblem, INPUT, judge_graph};
 pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};
 pub use names::{Binding, HABITS, Matched, NameError, bind_gradient, match_names, parse_map};

@@ -4,9 +4,9 @@
 //! side, a max-pool window's argmax, a break in a derivative the methods rely on (elu, α = 1).
 //! The program's own branches cannot be seen; its reference's are the same where it is right.
 
-use ndarray::{Array2, ArrayD, IxDyn};
-use plumb_engine::graph::{Branches, Dense, Graph, Trace};
-use plumb_formats::{FileStorage, GraphDescription};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::{Branches, Graph, Trace};
+use plumb_formats::GraphDescription;
 
 /// The graph at the probe's base point, and where each file tensor's entries live in it.
 pub(crate) struct GraphKinks<'a> {
@@ -42,7 +42,7 @@ impl<'a> GraphKinks<'a> {
             trace,
             branches,
             breaks,
-            places: places(desc),
+            places: plumb_diagnose::file_places(desc),
         }
     }
 
@@ -77,37 +77,6 @@ impl<'a> GraphKinks<'a> {
                 .enumerate()
                 .any(|(i, s)| breaks(self.graph, from + i, &s.out) != self.breaks[from + i])
     }
-}
-
-/// Per file tensor, where each flat file index lands among the graph's canonical tensors: the
-/// file's indices run through the same conversion the values do.
-fn places(desc: &GraphDescription) -> Vec<Vec<(usize, usize)>> {
-    desc.files
-        .iter()
-        .map(|f| {
-            let n: usize = f.shape.iter().product();
-            let mut out = vec![(0, 0); n];
-            let index = ArrayD::from_shape_vec(IxDyn(&f.shape), (0..n).collect::<Vec<usize>>())
-                .expect("the file shape holds n values");
-            let mut put = |t: usize, canonical: &ArrayD<usize>| {
-                for (i, &k) in canonical.iter().enumerate() {
-                    out[k] = (t, i);
-                }
-            };
-            match &f.storage {
-                FileStorage::Axes(s) => put(f.tensors[0], &s.to_canonical(&index)),
-                FileStorage::Augmented => {
-                    let matrix = index
-                        .into_dimensionality::<ndarray::Ix2>()
-                        .expect("an augmented matrix has two axes");
-                    let (w, b) = Dense::split(&matrix);
-                    put(f.tensors[0], &w.into_dyn());
-                    put(f.tensors[1], &b.into_dyn());
-                }
-            }
-            out
-        })
-        .collect()
 }
 
 /// Per value of layer `j`'s pre-activation, which side of its activation's derivative break it

@@ -6,20 +6,17 @@
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
 
-use plumb_diagnose::report::{
-    certify, certify_graph, judge_gradient, judge_graph_gradient, judge_graph_loss, judge_loss,
-    layout_tensors,
-};
+use plumb_diagnose::report::{certify_graph, judge_graph_gradient, judge_graph_loss};
 use plumb_diagnose::{INPUT, Tolerances};
 use plumb_engine::Batch;
-use plumb_fd::report::{GraphLoaded, Loaded, Tensors};
+use plumb_fd::report::GraphLoaded;
 use plumb_fd::{
-    Base, Change, ExternalConfig, Inside, Method, OutsideTensor, Precision, Sample, check_external,
-    gradient_magnitude, graph_loss_magnitude, loss_magnitude,
+    Change, ExternalConfig, Inside, Method, OutsideTensor, Precision, Sample, check_external,
+    graph_loss_magnitude,
 };
 use plumb_formats::Tensor;
 use plumb_formats::shape_text;
-use plumb_report::{DataSource, Finding, SCHEMA_VERSION, Severity, Verdict};
+use plumb_report::{DataSource, SCHEMA_VERSION, Severity, Verdict};
 
 use crate::blackbox::{blackbox_batch, blackbox_parameters};
 use crate::graph_inside::GraphKinks;
@@ -41,11 +38,10 @@ pub struct ProbeOptions {
     pub weights: Option<PathBuf>,
 }
 
-/// What a probe runs on: a dense description with its weights and data, a description of any
-/// other kind (the layer graph), or a black box whose tensors its hello declares and whose data
-/// is drawn once the hello is known.
+/// What a probe runs on: a description of any kind with its weights and data (the layer graph),
+/// or a black box whose tensors its hello declares and whose data is drawn once the hello is
+/// known.
 pub enum Source<'a> {
-    Described(&'a Loaded),
     Graph(&'a GraphLoaded),
     Blackbox {
         description: Option<PathBuf>,
@@ -66,13 +62,6 @@ pub fn blackbox_data(
     blackbox_batch(hello, data, samples, seed)
 }
 
-/// The reference a described probe is judged against.
-#[derive(Clone, Copy)]
-enum Reference<'a> {
-    Dense(&'a Loaded),
-    Graph(&'a GraphLoaded),
-}
-
 /// Runs the program through the three checks and builds the report. `seed` draws the sample, the
 /// directions and a black box's parameters and data; `note` takes progress lines for people
 /// (`None`: quiet, the program's stderr is kept back too).
@@ -83,15 +72,13 @@ pub fn probe(
     note: Option<&dyn Fn(&str)>,
 ) -> Result<ProbeReport, RunError> {
     let (reference, description, batch_for) = match src {
-        Source::Described(l) => (Some(Reference::Dense(l)), Some(l.desc.path.clone()), None),
-        Source::Graph(l) => (Some(Reference::Graph(l)), Some(l.desc.path.clone()), None),
+        Source::Graph(l) => (Some(l), Some(l.desc.path.clone()), None),
         Source::Blackbox { description, batch } => (None, description, Some(batch)),
     };
-    // The tensors a description expects, with the values sent: the dense layout's, or the file
-    // tensors in their declared storage.
+    // The tensors a description expects, with the values sent: the file tensors in their declared
+    // layout and storage.
     let layout: Vec<Tensor> = match reference {
-        Some(Reference::Dense(l)) => layout_tensors(&l.desc, &l.weights),
-        Some(Reference::Graph(l)) => l
+        Some(l) => l
             .desc
             .to_file(&l.params)
             .map_err(|e| RunError::Input(format!("{}: {e}", l.desc.path.display())))?,
@@ -120,27 +107,25 @@ pub fn probe(
         );
     }
     let (params, weights_source) = match reference {
-        Some(Reference::Dense(l)) => (layout, l.weights_source.clone()),
-        Some(Reference::Graph(l)) => (layout, l.weights_source.clone()),
+        Some(l) => (layout, l.weights_source.clone()),
         None => blackbox_parameters(&hello.tensors, &opts.weights, seed)?,
     };
     let (batch, data_source) = match (reference, batch_for) {
-        (Some(Reference::Dense(l)), _) => (l.batch.clone(), l.data_source.clone()),
-        (Some(Reference::Graph(l)), _) => (l.batch.clone(), l.data_source.clone()),
+        (Some(l), _) => (l.batch.clone(), l.data_source.clone()),
         (None, Some(f)) => f(&hello)?,
         (None, None) => unreachable!("a black box comes with its batch"),
     };
     let b = &batch;
-    // x and y as the program receives them: a graph's with the input's and the output's axes
-    // (the input in the data's axis order), a dense or black-box batch as (samples, values).
+    // x and y as the program receives them: a description's with the input's and the output's
+    // axes (the input in the data's axis order), a black box's batch as (samples, values).
     let (x_shape, x, y_shape) = match reference {
-        Some(Reference::Graph(l)) => {
+        Some(l) => {
             let t = l.desc.input_tensor_in(b.x.view(), l.order);
             let mut y_shape = vec![b.len()];
             y_shape.extend(l.desc.graph.output().dims());
             (t.shape, t.data, y_shape)
         }
-        _ => (
+        None => (
             vec![b.len(), b.x.ncols()],
             b.x.iter().copied().collect(),
             vec![b.len(), b.y.ncols()],
@@ -168,7 +153,7 @@ pub fn probe(
     let fitting: Vec<usize> = (0..params.len())
         .filter(|&i| grads[i].0.shape == params[i].shape)
         .collect();
-    let mut outside: Vec<OutsideTensor> = fitting
+    let outside: Vec<OutsideTensor> = fitting
         .iter()
         .map(|&i| OutsideTensor {
             name: params[i].name.clone(),
@@ -197,47 +182,15 @@ pub fn probe(
         tolerance: precision.tolerance(),
     };
     // Kinks are seen through the reference, which runs the same network (not for a black box).
-    let dense = match reference {
-        Some(Reference::Dense(l)) => Some((
-            l,
-            Tensors::new(&l.desc),
-            Base::new(&l.desc.network, &l.weights, b.x.view(), &b.y),
-        )),
-        _ => None,
-    };
-    let graph = match reference {
-        Some(Reference::Graph(l)) => Some((l, GraphKinks::new(&l.desc, &l.params, &b.x))),
-        _ => None,
-    };
+    let kinks = reference.map(|l| GraphKinks::new(&l.desc, &l.params, &b.x));
     let crossed = |t: usize, flat: usize, d: f64| -> bool {
-        let p = &params[fitting[t]];
-        if let Some((_, tensors, base)) = &dense {
-            let index = Tensor::index_of(p, flat);
-            return tensors
-                .coord_of(&p.name, &index)
-                .is_some_and(|c| base.perturbed(c, d).1);
-        }
-        graph
+        kinks
             .as_ref()
-            .is_some_and(|(_, kinks)| kinks.crossed(&[(fitting[t], flat, d)]))
+            .is_some_and(|k| k.crossed(&[(fitting[t], flat, d)]))
     };
     // Along a direction: the direction's entries placed into the reference's own parameters.
     let crossed_along = |v: &[Vec<f64>], d: f64| -> bool {
-        if let Some((l, tensors, base)) = &dense {
-            let mut dir = l.weights.map(|_| 0.0);
-            for (t, vt) in v.iter().enumerate() {
-                let p = &params[fitting[t]];
-                for (k, &x) in vt.iter().enumerate() {
-                    if x != 0.0
-                        && let Some(c) = tensors.coord_of(&p.name, &Tensor::index_of(p, k))
-                    {
-                        *dir.get_mut(c) = x;
-                    }
-                }
-            }
-            return base.along(&dir, d).1;
-        }
-        graph.as_ref().is_some_and(|(_, kinks)| {
+        kinks.as_ref().is_some_and(|k| {
             let changes: Vec<(usize, usize, f64)> = v
                 .iter()
                 .enumerate()
@@ -249,31 +202,14 @@ pub fn probe(
                         .map(move |(k, &w)| (file, k, d * w))
                 })
                 .collect();
-            kinks.crossed(&changes)
+            k.crossed(&changes)
         })
     };
-    let loss_gross = match (&dense, &graph) {
-        (Some((l, _, bs)), _) => loss_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
-        (_, Some((l, _))) => {
-            let g = &l.desc.graph;
-            let trace = g.forward(&l.params, b.x.view());
-            graph_loss_magnitude(g, &l.params, &trace, &b.y)
-        }
-        _ => 0.0,
-    };
-    if let Some((l, _, bs)) = &dense {
-        let gross = layout_tensors(
-            &l.desc,
-            &gradient_magnitude(&l.desc.network, &l.weights, bs.trace(), &b.y),
-        );
-        for (o, &i) in outside.iter_mut().zip(&fitting) {
-            o.gross = gross
-                .iter()
-                .find(|g| g.name == params[i].name)
-                .map(|g| g.data.clone())
-                .unwrap_or_default();
-        }
-    }
+    let loss_gross = reference.map_or(0.0, |l| {
+        let g = &l.desc.graph;
+        let trace = g.forward(&l.params, b.x.view());
+        graph_loss_magnitude(g, &l.params, &trace, &b.y)
+    });
     let inside = Inside {
         crossed: &crossed,
         crossed_along: &crossed_along,
@@ -311,21 +247,7 @@ pub fn probe(
         .map(|(s, d)| Tensor::new(s.name.clone(), s.shape.clone(), d.clone()))
         .collect();
     let (loss_report, certification, tensors) = match reference {
-        Some(Reference::Dense(l)) => {
-            let (lr, lf) = judge_loss(l, loss, single);
-            findings.extend(lf);
-            if input_gradient.is_some() {
-                findings.push(Finding::new(
-                    "input-gradient-unchecked",
-                    Severity::Note,
-                    "the program sends its input gradient, which plumb judges on descriptions of the layer graph only; on a dense description it is not checked",
-                ));
-            }
-            let (tr, tf) = judge_gradient(l, &outside, &tolerance);
-            findings.extend(tf);
-            (Some(lr), Some(certify(l, seed)?), tr)
-        }
-        Some(Reference::Graph(l)) => {
+        Some(l) => {
             let (lr, lf) = judge_graph_loss(l, loss, single);
             findings.extend(lf);
             let mut given = outside;

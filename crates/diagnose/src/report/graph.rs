@@ -1,7 +1,9 @@
 //! The report of `plumb compare` on a description of any kind (the layer graph): the gradient
-//! file read through the description's file tensors (each converted from its declared storage to
-//! the graph's canonical shape, as its parameter is), judged by [`crate::judge_graph`], reported in
-//! the dense report's shape with the worst place in the layer's own terms.
+//! file read through the description's file tensors and judged on the layer graph, with the worst
+//! place in the layer's own terms. A dense description's gradient is judged in the file's own
+//! tensors ([`crate::judge_files`]: its layout's names, augmented matrices, transposed weights);
+//! any other kind's is converted from its declared storage to the graph's canonical shape, as its
+//! parameter is, and judged by [`crate::judge_graph`].
 
 use std::collections::HashMap;
 use std::path::Path;
@@ -20,7 +22,7 @@ use super::{
     TensorReport, epsilon, loss_verdict, mismatch_finding, name_findings, stored_dtypes,
     tensor_report, uncertified_finding, widened_finding,
 };
-use crate::{Expected, INPUT, Tolerances, bind_gradient, judge_graph, parse_map};
+use crate::{Expected, INPUT, Tolerances, bind_gradient, judge_files, judge_graph, parse_map};
 use plumb_formats::Tensor;
 
 /// The file tensors a gradient of `desc` holds, under their file names and file shapes, and the
@@ -101,7 +103,8 @@ pub fn certify_graph(loaded: &GraphLoaded, seed: u64) -> Result<Certification, C
 /// reference on the layer graph, and builds the report: names matched against the description's
 /// file tensors (and `input`, the input gradient, shape (m, *input) in the data's axis order),
 /// each tensor held to the precision it was stored or computed in. Tensors are reported under the
-/// graph's names (`layer.suffix`) in canonical shape, the input gradient last.
+/// file's names and shapes for a dense description, else under the graph's names
+/// (`layer.suffix`) in canonical shape; the input gradient last.
 pub fn compare_graph_report(
     loaded: &GraphLoaded,
     gradient: &Path,
@@ -135,9 +138,8 @@ pub fn compare_graph_report(
             eps_of.extend(f.tensors.iter().map(|&t| (specs[t].name.clone(), e)));
         }
     }
-    if let Some(&e) = eps_file.get(INPUT) {
-        eps_of.insert(INPUT.into(), e);
-    }
+    // The file's own names too (a dense description is judged in them), and the input gradient.
+    eps_of.extend(eps_file.iter().map(|(n, &e)| (n.to_string(), e)));
     let tol_of =
         |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
     let (tensors, mut findings) =
@@ -230,8 +232,9 @@ pub fn judge_graph_loss(
 /// (shared by compare and probe): `outside` holds the description's file tensors under their
 /// file names, in their declared storage (a tensor of another shape is judged only against
 /// hypotheses of that shape; an absent one is reported absent), and optionally `input`, the input
-/// gradient of shape [`graph_input_shape`]. Each tensor is held to `tol_of(its graph name)`.
-/// Reported under the graph's names in canonical shape, the input gradient last, with a finding
+/// gradient of shape [`graph_input_shape`]. Each tensor is held to `tol_of(its name)`. A dense
+/// description's are judged and reported as the file's tensors (names, shapes, layout); any other
+/// kind's under the graph's names in canonical shape. The input gradient comes last; a finding
 /// per wrong tensor. `Err` says what is wrong with the input gradient's shape or the batch.
 pub fn judge_graph_gradient(
     loaded: &GraphLoaded,
@@ -254,6 +257,9 @@ pub fn judge_graph_gradient(
         }
         Some(u) => Some(input_matrix(desc, u, loaded.order)),
     };
+    if desc.is_dense() {
+        return judge_file_gradient(loaded, outside, tol_of);
+    }
     let params = canonical(desc, outside);
     let judged = judge_graph(
         graph,
@@ -289,12 +295,37 @@ pub fn judge_graph_gradient(
     let mut findings = Vec::new();
     let mut tensors = Vec::new();
     for (t, j) in judged.iter().enumerate() {
-        let mut report = tensor_report(j, &given, &|_, _| None);
-        let layer = specs.get(t).map_or(0, |s| s.layer + 1);
-        report.layer = (layer > 0).then_some(layer);
-        if let Some(w) = report.worst.as_mut() {
-            w.at = j.place.clone();
+        let report = tensor_report(j, &given, specs.get(t).map(|s| s.layer + 1));
+        if report.verdict == Verdict::Fail {
+            findings.push(mismatch_finding(&report, report.layer));
         }
+        tensors.push(report);
+    }
+    Ok((tensors, findings))
+}
+
+/// [`judge_graph_gradient`] of a dense description: in the file's own tensors.
+fn judge_file_gradient(
+    loaded: &GraphLoaded,
+    outside: &[Tensor],
+    tol_of: &dyn Fn(&str) -> Tolerances,
+) -> Result<(Vec<TensorReport>, Vec<Finding>), String> {
+    let desc = &loaded.desc;
+    let b = &loaded.batch;
+    let judged = judge_files(
+        desc,
+        &loaded.params,
+        b.x.view(),
+        b.y.view(),
+        loaded.order,
+        outside,
+        tol_of,
+    )
+    .map_err(|e| e.to_string())?;
+    let mut findings = Vec::new();
+    let mut tensors = Vec::new();
+    for (f, j) in judged.iter().enumerate() {
+        let report = tensor_report(j, outside, desc.files.get(f).map(|f| f.layer + 1));
         if report.verdict == Verdict::Fail {
             findings.push(mismatch_finding(&report, report.layer));
         }

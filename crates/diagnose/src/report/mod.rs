@@ -2,15 +2,13 @@
 //! judged tensor by tensor against the reference, each wrong tensor's diagnosis, the outside loss
 //! against the reference loss, and the findings with their verdict rules.
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
-use plumb_engine::{Reduction, Weights};
-use plumb_fd::report::{Loaded, Place, Tensors};
-use plumb_fd::{CheckConfig, CheckError, Method, Precision, Status, check};
-use plumb_formats::{DType, Description, Role, Tensor, TensorFile, disassemble, expected_tensors};
-use plumb_report::{
-    DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure, number as num,
-};
+use plumb_engine::Reduction;
+use plumb_fd::CheckError;
+use plumb_fd::report::Place;
+use plumb_formats::{DType, Tensor, TensorFile};
+use plumb_report::{DataSource, Finding, Severity, Verdict, WeightsSource, figure, number as num};
 use serde::{Deserialize, Serialize};
 
 mod graph;
@@ -19,10 +17,7 @@ pub use graph::{
     certify_graph, compare_graph_report, graph_input_shape, judge_graph_gradient, judge_graph_loss,
 };
 
-use crate::{
-    Binding, Expected, NameError, Problem, TensorJudgement, Tolerances, bind_gradient,
-    holds_only_f32, judge, parse_map,
-};
+use crate::{Binding, Expected, NameError, TensorJudgement, holds_only_f32};
 
 /// Why a comparison could not be made.
 #[derive(Debug, thiserror::Error)]
@@ -89,13 +84,15 @@ impl NameReport {
     }
 }
 
-/// Where a tensor is worst.
+/// Where a tensor is worst: its index in the tensor as reported, and the place in the layer's
+/// own terms.
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Worst {
-    /// The coordinate in the augmented matrices (with the tensor and its index there).
+    /// Always null: schema 1 kept the field of the dense engine's located coordinate, which `at`
+    /// and `index` replace (docs/json.md).
     pub place: Option<Place>,
-    /// On the layer graph: the place in the layer's own terms (`Kind::locate`), `index` being
-    /// the canonical one.
+    /// The place in the layer's own terms (`Kind::locate`: unit and input, channel and kernel
+    /// position, gate, head; the graph tensor's name first when the file tensor holds two).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub at: Option<String>,
     pub index: Vec<usize>,
@@ -107,11 +104,22 @@ pub struct Worst {
     pub rel_error: f64,
 }
 
+impl Worst {
+    /// `W1[2, 0] (layer1.bias: unit 2)`: the entry of `tensor`, and the layer's words for it.
+    pub fn label(&self, tensor: &str) -> String {
+        let idx: Vec<String> = self.index.iter().map(usize::to_string).collect();
+        match &self.at {
+            Some(at) => format!("{tensor}[{}] ({at})", idx.join(", ")),
+            None => format!("{tensor}[{}]", idx.join(", ")),
+        }
+    }
+}
+
 /// One tensor of the report.
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct TensorReport {
     pub name: String,
-    /// On the layer graph: the 1-based layer the tensor belongs to.
+    /// The 1-based layer the tensor belongs to (none for the input gradient).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub layer: Option<usize>,
     pub verdict: Verdict,
@@ -179,11 +187,6 @@ pub struct CompareReport {
     pub findings: Vec<Finding>,
 }
 
-/// The layout's tensors of an augmented gradient, as named tensors.
-pub fn layout_tensors(desc: &Description, w: &Weights<f64>) -> Vec<Tensor> {
-    disassemble(desc, w)
-}
-
 /// The declared conventions, for reports.
 #[derive(Clone, Debug, Serialize)]
 pub struct ConventionsReport {
@@ -194,16 +197,6 @@ pub struct ConventionsReport {
 }
 
 impl ConventionsReport {
-    pub fn of(desc: &Description) -> ConventionsReport {
-        let c = desc.network.conventions();
-        ConventionsReport {
-            reduction: c.reduction.name(),
-            l2: desc.network.l2(),
-            l2_divisor: c.l2_divisor.name(),
-            l2_on_bias: c.l2_on_bias,
-        }
-    }
-
     /// The conventions of a layer graph's loss.
     pub fn of_config(c: &plumb_engine::graph::LossConfig) -> ConventionsReport {
         ConventionsReport {
@@ -228,65 +221,6 @@ impl ConventionsReport {
         };
         format!("data term {} over the batch; {l2}", self.reduction)
     }
-}
-
-pub fn expected(desc: &Description) -> Vec<Expected> {
-    expected_tensors(desc, desc.layout)
-        .into_iter()
-        .map(|e| Expected {
-            layer: e.layer,
-            name: e.name,
-            shape: e.shape,
-            bias: e.role == Role::Bias,
-        })
-        .collect()
-}
-
-/// The reference certified by the complex step on the default sample.
-pub fn certify(loaded: &Loaded, seed: u64) -> Result<Certification, CheckError> {
-    let mut cfg = CheckConfig::new(Method::ComplexStep, Precision::F64);
-    cfg.directions = Some(0);
-    cfg.seed = seed;
-    let r = check(
-        &loaded.desc.network,
-        &loaded.weights,
-        &loaded.batch,
-        &cfg,
-        &|_, _| {},
-    )?;
-    Ok(Certification {
-        method: "complex-step".into(),
-        checked: r.coverage.checked,
-        parameters: r.coverage.parameters,
-        max_rel_error: r.coords.iter().map(|c| c.rel_error).fold(0.0, f64::max),
-        certified: r.coords.iter().all(|c| c.status != Status::Mismatch),
-    })
-}
-
-/// The verdicts on an outside gradient and their findings (shared with `probe`).
-pub fn judge_gradient(
-    loaded: &Loaded,
-    outside: &[Tensor],
-    tol: &dyn Fn(&str) -> Tolerances,
-) -> (Vec<TensorReport>, Vec<Finding>) {
-    let desc = &loaded.desc;
-    let to_tensors = |w: &Weights<f64>| layout_tensors(desc, w);
-    let problem = Problem::new(&desc.network, &loaded.weights, &loaded.batch, &to_tensors);
-    let judged = judge(&problem, outside, &expected(desc), tol);
-    let tensors = Tensors::new(desc);
-    let mut findings = Vec::new();
-    let mut reports = Vec::new();
-    for j in &judged {
-        let report = tensor_report(j, outside, &|name, index| {
-            tensors.coord_of(name, index).map(|co| tensors.place(co))
-        });
-        if report.verdict == Verdict::Fail {
-            findings.push(mismatch_finding(&report, tensors.layer_of(&j.name)));
-        }
-        reports.push(report);
-    }
-    findings.extend(name_findings(&expected(desc), outside));
-    (reports, findings)
 }
 
 /// Findings on the names of an outside gradient: tensors under other names with the missing ones'
@@ -336,18 +270,15 @@ fn name_findings(expected: &[Expected], outside: &[Tensor]) -> Vec<Finding> {
     findings
 }
 
-/// One tensor's report; `place` locates an index of a tensor in the augmented matrices.
-fn tensor_report(
-    j: &TensorJudgement,
-    outside: &[Tensor],
-    place: &dyn Fn(&str, &[usize]) -> Option<Place>,
-) -> TensorReport {
+/// One tensor's report: `outside` holds the tensors as judged (for the worst entry's index),
+/// `layer` is the tensor's 1-based layer.
+fn tensor_report(j: &TensorJudgement, outside: &[Tensor], layer: Option<usize>) -> TensorReport {
     let worst = j.comparison.as_ref().map(|c| {
         let u = outside.iter().find(|t| t.name == j.name).expect("compared");
         let index = u.index_of(c.worst);
         Worst {
-            place: place(&j.name, &index),
-            at: None,
+            place: None,
+            at: j.place.clone(),
             index,
             outside: c.worst_outside,
             reference: c.worst_reference,
@@ -356,7 +287,7 @@ fn tensor_report(
     });
     TensorReport {
         name: j.name.clone(),
-        layer: None,
+        layer,
         verdict: if j.matches {
             Verdict::Pass
         } else {
@@ -415,9 +346,7 @@ fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
         (Some(m), Some(w), _) => format!(
             "; max relative error {}, worst at {} (outside {:.6e}, reference {:.6e}), cosine {}, scale {}",
             num(*m),
-            w.place
-                .as_ref()
-                .map_or_else(|| format!("{:?}", w.index), |p| p.label()),
+            w.label(&t.name),
             w.outside,
             w.reference,
             t.cosine.map_or("—".into(), |c| format!("{c:.6}")),
@@ -444,24 +373,6 @@ fn mismatch_finding(t: &TensorReport, layer: Option<usize>) -> Finding {
         f = f.figure("factor", fa);
     }
     f
-}
-
-/// The outside loss against the reference, with the likely reason when they differ.
-pub fn judge_loss(loaded: &Loaded, outside: f64, single: bool) -> (LossReport, Option<Finding>) {
-    let net = &loaded.desc.network;
-    let b = &loaded.batch;
-    let trace = net.forward(&loaded.weights, b.x.view());
-    let data = net.data_loss(&trace, b.y.view());
-    let l2 = net.l2_penalty(&loaded.weights, b.len());
-    let c = net.conventions();
-    loss_verdict(
-        outside,
-        (data, l2),
-        b.len(),
-        c.reduction,
-        c.l2_divisor,
-        single,
-    )
 }
 
 /// The outside loss against the reference's data term and L2 term (`terms`) on a batch of `m`,
@@ -590,73 +501,4 @@ pub fn uncertified_finding() -> Finding {
         Severity::Warning,
         "the complex step disagrees with the reference gradient somewhere on this network; run `plumb check --method complex-step` before trusting the diagnosis",
     )
-}
-
-/// Compares the outside gradient `file` (read from `gradient`, bound to the layout) and, when
-/// given, the outside loss with the reference, and builds the report: names matched (`map` is
-/// `--map`'s text), each tensor held to the precision it was stored or computed in.
-pub fn compare_report(
-    loaded: &Loaded,
-    gradient: &Path,
-    file: TensorFile,
-    map: &str,
-    loss: Option<f64>,
-    seed: u64,
-) -> Result<CompareReport, CompareError> {
-    let (widened, dtypes) = stored_dtypes(&file);
-    let single = !dtypes.contains(&DType::F64);
-    let map = parse_map(map).map_err(|error| CompareError::Names {
-        path: gradient.to_path_buf(),
-        error,
-    })?;
-    let outside: Vec<Tensor> = file.tensors;
-    let (outside, bindings) =
-        bind_gradient(&expected(&loaded.desc), outside, &map).map_err(|error| {
-            CompareError::Names {
-                path: gradient.to_path_buf(),
-                error,
-            }
-        })?;
-    // Each tensor is held to the precision it was stored (or computed) in.
-    let eps_of: std::collections::HashMap<String, f64> = outside
-        .iter()
-        .zip(&dtypes)
-        .map(|(t, d)| (t.name.clone(), epsilon(*d)))
-        .collect();
-    let tol_of =
-        |name: &str| Tolerances::for_epsilon(eps_of.get(name).copied().unwrap_or(f64::EPSILON));
-    let tol = Tolerances::for_precision(single);
-    let reference = certify(loaded, seed)?;
-    let (tensors, mut findings) = judge_gradient(loaded, &outside, &tol_of);
-    if widened {
-        findings.push(widened_finding());
-    }
-    if !reference.certified {
-        findings.push(uncertified_finding());
-    }
-    let loss = loss.map(|v| {
-        let (r, f) = judge_loss(loaded, v, single);
-        findings.extend(f);
-        r
-    });
-    let report = CompareReport {
-        verdict: Verdict::of(&findings),
-        schema_version: SCHEMA_VERSION,
-        command: "compare",
-        description: loaded.desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        gradient: gradient.to_path_buf(),
-        precision: if single { "f32" } else { "f64" },
-        precision_from: if widened { "values" } else { "dtype" },
-        conventions: ConventionsReport::of(&loaded.desc),
-        names: bindings.iter().map(NameReport::of).collect(),
-        tolerance: tol.agreement,
-        residual_tolerance: tol.residual,
-        reference,
-        loss,
-        tensors,
-        findings,
-    };
-    Ok(report)
 }

@@ -3,25 +3,24 @@
 //! convention's own gradient is not wrong at all. (The values here are the engine's; the same rule
 //! against gradients written apart from the engine, in NumPy, is in tests/it/compare.rs.)
 
-use plumb_diagnose::{Expected, Problem, Tolerances, judge};
-use plumb_engine::{
-    Activation, Batch, Conventions, Init, L2Divisor, Loss, Network, Reduction, Rng, Weights,
-};
-use plumb_formats::Tensor;
+use std::path::Path;
 
-fn tensors(w: &Weights<f64>) -> Vec<Tensor> {
-    w.layers()
-        .iter()
-        .enumerate()
-        .map(|(l, t)| {
-            let (r, c) = t.dim();
-            Tensor::new(
-                format!("layer{}", l + 1),
-                vec![r, c],
-                t.iter().copied().collect(),
-            )
-        })
-        .collect()
+use ndarray::ArrayD;
+use plumb_diagnose::{Tolerances, judge_files};
+use plumb_engine::graph::Role;
+use plumb_engine::{Batch, Conventions, Init, L2Divisor, Reduction, Rng};
+use plumb_formats::{AxisOrder, GraphDescription};
+
+/// A 4 → 6 tanh → 3 softmax network with cross-entropy, λ = 0.2 and conventions `c`, its weights
+/// in augmented matrices (each layer's bias column beside its weights, as the file holds them).
+fn described(c: Conventions) -> GraphDescription {
+    let text = format!(
+        "inputs = 4\nlayout = \"augmented\"\nloss = \"cross-entropy\"\nl2 = 0.2\nreduction = \"{}\"\nl2-divisor = \"{}\"\nl2-on-bias = {}\n\n[[layer]]\nunits = 6\nactivation = \"tanh\"\n\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n",
+        c.reduction.name(),
+        c.l2_divisor.name(),
+        c.l2_on_bias
+    );
+    GraphDescription::parse(Path::new("conventions.toml"), &text).expect("a valid description")
 }
 
 fn every() -> Vec<Conventions> {
@@ -42,36 +41,37 @@ fn every() -> Vec<Conventions> {
 
 #[test]
 fn one_key_apart_is_named_for_that_key() {
-    let base = Network::new(
-        4,
-        &[(6, Activation::Tanh), (3, Activation::Softmax)],
-        Loss::CrossEntropy,
-        0.2,
-    )
-    .unwrap();
-    let mut w = Init::GlorotUniform.weights(&base, &mut Rng::new(8));
-    for l in w.layers_mut() {
-        l.column_mut(0).fill(0.3);
+    let base = described(every()[0]);
+    let mut params = Init::GlorotUniform.graph_params(&base.graph, &mut Rng::new(8));
+    // Biases away from zero, so that their decay shows.
+    for (p, t) in params.iter_mut().zip(base.graph.tensors()) {
+        if t.spec.role == Role::Bias {
+            p.fill(0.3);
+        }
     }
-    let batch = Batch::synthetic(&base, 9, 8);
-    let expected: Vec<Expected> = base
-        .layers()
-        .iter()
-        .enumerate()
-        .map(|(l, s)| Expected {
-            name: format!("layer{}", l + 1),
-            layer: l,
-            shape: vec![s.units, s.inputs + 1],
-            bias: false,
-        })
-        .collect();
+    let batch = Batch::graph_synthetic(&base.graph, 9, 8);
+    let (x, y) = (batch.x.view(), batch.y.view());
     let tol = |_: &str| Tolerances::for_precision(false);
+    let gradient =
+        |d: &GraphDescription| -> Vec<ArrayD<f64>> { d.graph.gradient(&params, x, y, None).params };
     for declared in every() {
-        let net = base.clone().with_conventions(declared);
-        let problem = Problem::new(&net, &w, &batch, &tensors);
-        let own = judge(&problem, &problem.reference_tensors, &expected, &tol);
+        let desc = described(declared);
+        let judged = |g: &[ArrayD<f64>]| {
+            let outside = desc.to_file(g).unwrap();
+            assert_eq!(outside.len(), 2, "one augmented matrix per layer");
+            judge_files(
+                &desc,
+                &params,
+                x,
+                y,
+                AxisOrder::ChannelsFirst,
+                &outside,
+                &tol,
+            )
+            .unwrap()
+        };
         assert!(
-            own.iter().all(|j| j.matches),
+            judged(&gradient(&desc)).iter().all(|j| j.matches),
             "{declared:?}: its own gradient"
         );
         for other in every() {
@@ -83,11 +83,6 @@ fn one_key_apart_is_named_for_that_key() {
             if differs.iter().filter(|d| **d).count() != 1 {
                 continue;
             }
-            let g = base
-                .clone()
-                .with_conventions(other)
-                .gradient(&w, batch.x.view(), batch.y.view())
-                .1;
             let want = if differs[0] {
                 match declared.reduction {
                     Reduction::Mean => "missing-batch-mean",
@@ -98,7 +93,7 @@ fn one_key_apart_is_named_for_that_key() {
             } else {
                 "bias-regularized"
             };
-            for j in judge(&problem, &tensors(&g), &expected, &tol) {
+            for j in judged(&gradient(&described(other))) {
                 let d = j.diagnosis.as_ref().expect("wrong");
                 assert_eq!(
                     d.code, want,
