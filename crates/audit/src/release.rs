@@ -139,8 +139,11 @@ impl AuditShapes {
     /// Whether any tensor of the file fits the description (in any layout, for a dense one): a
     /// file none of whose tensors fits belongs to another network.
     pub fn fits_any(&self) -> bool {
-        matches!(self, AuditShapes::Dense(s) if s.detected_layout.is_some())
-            || self.tensors().any(|t| t.status == Status::Ok)
+        let detected = match self {
+            AuditShapes::Dense(s) => s.detected_layout,
+            AuditShapes::Graph(s) => s.detected_layout,
+        };
+        detected.is_some() || self.tensors().any(|t| t.status == Status::Ok)
     }
 }
 
