@@ -55,11 +55,6 @@ fn bench(c: &mut Criterion) {
     let mut g = c.benchmark_group("audit 784-1024-1024-10 f32, 10000 probe samples");
     g.sample_size(10);
     g.bench_function("audit", |b| b.iter(|| run(&desc, &file, &batch)));
-    // Before: the dense audit this session replaces, on the same file and batch.
-    let dense = plumb_formats::Description::parse(&desc.path, &desc_text(&[1024, 1024])).unwrap();
-    g.bench_function("dense audit (before)", |b| {
-        b.iter(|| plumb_audit::audit(&dense, &file, &batch, Some(Init::HeNormal), &t, 1))
-    });
     g.finish();
 }
 

@@ -21,9 +21,9 @@ use crate::robust::{largest, moments_of, norm};
 use crate::shapes::by_name;
 use crate::values::{Values, values_findings};
 use crate::{
-    Audit, AuditShapes, GraphShapeAudit, LayerFlow, LayerHealth, LayerShapes, LayerTerms, Status,
-    TensorShape, Thresholds, audit_graph_shapes, correct_across_layers, sigma_max, tensor_init,
-    unit_health, verdict_at,
+    Audit, GraphShapeAudit, LayerFlow, LayerHealth, LayerShapes, LayerTerms, Status, TensorShape,
+    Thresholds, audit_graph_shapes, correct_across_layers, sigma_max, tensor_init, unit_health,
+    verdict_at,
 };
 
 /// A graph with the parameters a weight file gave it.
@@ -116,7 +116,7 @@ fn role_name(role: Role) -> &'static str {
 /// passes.
 pub fn audit_graph(
     w: &GraphWeights,
-    shapes: impl Into<AuditShapes>,
+    shapes: GraphShapeAudit,
     probe: &Batch,
     claimed: Option<Init>,
     t: &Thresholds,
@@ -125,8 +125,7 @@ pub fn audit_graph(
 ) -> Result<Audit, GraphError> {
     w.check()?;
     w.graph.check_batch(probe.x.view(), probe.y.view())?;
-    let shapes = shapes.into();
-    let mut findings = shapes.findings().to_vec();
+    let mut findings = shapes.findings.clone();
     findings.extend(values_findings(&graph_values(w), t));
     let names: Vec<String> = w.graph.tensors().iter().map(|s| s.name.clone()).collect();
     Ok(measure(
@@ -165,7 +164,7 @@ pub fn audit_graph_file(
             return Ok(Audit {
                 verdict: verdict_at(&findings, t.fail_on),
                 fail_on: t.fail_on,
-                shapes: shapes.into(),
+                shapes,
                 health: Vec::new(),
                 init: Vec::new(),
                 flow: Vec::new(),
@@ -186,7 +185,7 @@ pub fn audit_graph_file(
     Ok(measure(
         &w,
         &file_names(desc),
-        shapes.into(),
+        shapes,
         findings,
         probe,
         claimed,
@@ -228,7 +227,7 @@ fn has_inside(node: &Node) -> bool {
 fn measure(
     w: &GraphWeights,
     names: &[String],
-    shapes: AuditShapes,
+    shapes: GraphShapeAudit,
     mut findings: Vec<Finding>,
     probe: &Batch,
     claimed: Option<Init>,

@@ -39,6 +39,19 @@ pub struct GraphShapeAudit {
     pub findings: Vec<Finding>,
 }
 
+impl GraphShapeAudit {
+    /// Every tensor the description expects, with what the file holds under its name.
+    pub fn tensors(&self) -> impl Iterator<Item = &TensorShape> {
+        self.layers.iter().flat_map(|l| &l.tensors)
+    }
+
+    /// Whether any tensor of the file fits the description (in any layout of its dense layers): a
+    /// file none of whose tensors fits belongs to another network.
+    pub fn fits_any(&self) -> bool {
+        self.detected_layout.is_some() || self.tensors().any(|t| t.status == Status::Ok)
+    }
+}
+
 /// Audits a weight file against a description of any kind (or, with `None`, lists what the
 /// description expects).
 pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) -> GraphShapeAudit {

@@ -4,7 +4,7 @@
 use std::path::Path;
 
 use anyhow::{Result, anyhow, bail};
-use plumb_audit::{Audit, AuditShapes, KindThresholds, Thresholds, audit_graph_file};
+use plumb_audit::{Audit, KindThresholds, Thresholds, audit_graph_file};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_formats::{AnyDescription, AxisOrder, GraphDescription, TensorFile, read_tensors};
@@ -146,9 +146,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     if !result.shapes.fits_any() {
         return Err(foreign(args, &file));
     }
-    let AuditShapes::Graph(shape_audit) = &result.shapes else {
-        unreachable!("the graph audit's shapes are the graph's")
-    };
+    let shape_audit = &result.shapes;
     let report = AuditReport {
         verdict: result.verdict,
         schema_version: SCHEMA_VERSION,
@@ -194,7 +192,7 @@ fn foreign(args: &AuditArgs, file: &TensorFile) -> anyhow::Error {
 /// The shape cases, then the audit's own (one per layer's tensor, one for the network).
 pub fn cases(a: &Audit) -> Vec<Case> {
     let s = &a.shapes;
-    let mut out = shapes::tensor_cases(s.tensors(), s.unexpected(), s.findings());
+    let mut out = shapes::tensor_cases(s.tensors(), &s.unexpected, &s.findings);
     out.extend(a.cases());
     out
 }
