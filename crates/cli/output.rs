@@ -251,6 +251,15 @@ pub fn graph_network_id(desc: &plumb_formats::GraphDescription) -> NetworkId {
     }
 }
 
+/// The network id of a description as read: a dense one keeps [`network_id`] (the hash its
+/// baselines were recorded with), any other kind [`graph_network_id`].
+pub fn any_network_id(desc: &plumb_formats::AnyDescription) -> NetworkId {
+    match desc {
+        plumb_formats::AnyDescription::Dense(d, _) => network_id(d),
+        plumb_formats::AnyDescription::Graph(g) => graph_network_id(g),
+    }
+}
+
 /// A shape as NumPy prints it.
 pub fn shape(s: &[usize]) -> String {
     plumb_formats::shape_text(s)

@@ -36,6 +36,10 @@ struct TensorShape {
 #[allow(dead_code)]
 struct LayerShapes {
     layer: usize,
+    name: String,
+    kind: String,
+    input: String,
+    output: String,
     inputs: usize,
     units: usize,
     activation: String,

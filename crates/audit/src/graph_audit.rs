@@ -1,23 +1,27 @@
-//! The release audit on the layer graph: every kind's health measures, as the findings and tables
-//! of the one [`Audit`] report the dense audit produces (same codes, same rules, same thresholds;
-//! the kinds add their own measures).
+//! The release audit on the layer graph, for a description of any kind (dense ones included):
+//! every kind's health measures, as the findings and tables of the one [`Audit`] report (same
+//! codes, same rules, same thresholds; the kinds add their own measures). Findings name the
+//! weight file's own tensors (an augmented dense matrix `W1`, not the graph's `layer1.weight`).
 
-use ndarray::ArrayD;
-use plumb_engine::graph::{Graph, GraphError, Node, Role};
+use ndarray::{ArrayD, ArrayView2};
+use plumb_engine::graph::{Graph, GraphError, LayerScalar, Node, Role};
 use plumb_engine::{Activation, Batch, Init, Rng};
 use std::path::Path;
 
-use plumb_formats::{DType, FileFormat, GraphDescription, Layout, TensorFile};
-use plumb_report::Verdict;
+use plumb_formats::{DType, FileStorage, GraphDescription, Layout, TensorFile};
+use plumb_report::{Finding, Verdict};
 
 use crate::graph_health::{
-    KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health, output_units,
+    InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
+    output_units,
 };
+use crate::graph_shapes::find;
 use crate::release::{flow_findings, health_findings, init_findings, symmetry_findings};
-use crate::robust::{largest, moments, norm};
+use crate::robust::{largest, moments_of, norm};
+use crate::shapes::by_name;
 use crate::values::{Values, values_findings};
 use crate::{
-    Audit, AuditShapes, LayerFlow, LayerShapes, LayerTerms, ShapeAudit, Status, TensorShape,
+    Audit, GraphShapeAudit, LayerFlow, LayerHealth, LayerShapes, LayerTerms, Status, TensorShape,
     Thresholds, audit_graph_shapes, correct_across_layers, sigma_max, tensor_init, unit_health,
     verdict_at,
 };
@@ -49,7 +53,7 @@ impl GraphWeights<'_> {
 /// The shape audit of tensors already fitted to the graph: every tensor present with its
 /// expected shape. A caller that read a file with tensors that do not fit reports those through
 /// its own shape audit instead.
-pub fn fitted_shapes(w: &GraphWeights) -> ShapeAudit {
+pub fn fitted_shapes(w: &GraphWeights) -> GraphShapeAudit {
     let g = w.graph;
     let layers = g
         .nodes()
@@ -72,7 +76,7 @@ pub fn fitted_shapes(w: &GraphWeights) -> ShapeAudit {
                 .collect();
             LayerShapes {
                 layer: j + 1,
-                terms: LayerTerms::of_node(node),
+                terms: LayerTerms::of_node(node, false),
                 parameters: tensors
                     .iter()
                     .map(|t| t.expected.iter().product::<usize>())
@@ -82,7 +86,7 @@ pub fn fitted_shapes(w: &GraphWeights) -> ShapeAudit {
             }
         })
         .collect();
-    ShapeAudit {
+    GraphShapeAudit {
         verdict: Verdict::Pass,
         layout: Layout::Split,
         detected_layout: None,
@@ -107,11 +111,12 @@ fn role_name(role: Role) -> &'static str {
 /// the shape audit `shapes` that fitted them: values, duplicate units and channels, collapsed norm
 /// scales, unit and channel health, the kinds' inside measures (gates, heads, table rows), the
 /// initialisation scale per weight tensor (and the KS test against `claimed`, Holm-corrected
-/// across the tensors), and the gradient's flow through the layers. Parameters or a batch that do
-/// not fit the graph are an error, as they are for the passes.
+/// across the tensors), and the gradient's flow through the layers. Findings name the graph's
+/// tensors. Parameters or a batch that do not fit the graph are an error, as they are for the
+/// passes.
 pub fn audit_graph(
     w: &GraphWeights,
-    shapes: impl Into<AuditShapes>,
+    shapes: GraphShapeAudit,
     probe: &Batch,
     claimed: Option<Init>,
     t: &Thresholds,
@@ -119,11 +124,118 @@ pub fn audit_graph(
     seed: u64,
 ) -> Result<Audit, GraphError> {
     w.check()?;
+    w.graph.check_batch(probe.x.view(), probe.y.view())?;
+    let mut findings = shapes.findings.clone();
+    findings.extend(values_findings(&graph_values(w), t));
+    let names: Vec<String> = w.graph.tensors().iter().map(|s| s.name.clone()).collect();
+    Ok(measure(
+        w, &names, shapes, findings, probe, claimed, t, k, seed,
+    ))
+}
+
+/// Audits a weight file (read from `path`) against a description of any kind on a probe batch:
+/// the shape audit; the values of every file tensor present in a float dtype (as the file holds
+/// it, indices in its own axis order); then, when every tensor fits, the measures of
+/// [`audit_graph`] on the file's tensors in canonical shapes, each with the dtype the file
+/// stored it in, the findings naming the file's tensors. When the tensors do not fit, the report
+/// holds the shape and value findings and says what could not be checked.
+#[allow(clippy::too_many_arguments)]
+pub fn audit_graph_file(
+    desc: &GraphDescription,
+    file: &TensorFile,
+    path: &Path,
+    probe: &Batch,
+    claimed: Option<Init>,
+    t: &Thresholds,
+    k: &KindThresholds,
+    seed: u64,
+) -> Result<Audit, GraphError> {
+    desc.graph.check_batch(probe.x.view(), probe.y.view())?;
+    let shapes = audit_graph_shapes(desc, Some(file));
+    let mut findings = shapes.findings.clone();
+    findings.extend(values_findings(&file_values(desc, file), t));
+    let params = match shapes.verdict {
+        Verdict::Pass => desc.read_params(file, path).map_err(|e| e.to_string()),
+        _ => Err("the tensors do not fit the description".into()),
+    };
+    let params = match params {
+        Ok(p) => p,
+        Err(why) => {
+            return Ok(Audit {
+                verdict: verdict_at(&findings, t.fail_on),
+                fail_on: t.fail_on,
+                shapes,
+                health: Vec::new(),
+                init: Vec::new(),
+                flow: Vec::new(),
+                inside: Vec::new(),
+                skipped: vec![format!(
+                    "duplicates, unit health, the layers' inside measures, initialisation and flow: {why}"
+                )],
+                findings,
+            });
+        }
+    };
+    let dtypes = stored_dtypes(desc, file);
+    let w = GraphWeights {
+        graph: &desc.graph,
+        params: &params,
+        dtypes: &dtypes,
+    };
+    Ok(measure(
+        &w,
+        &file_names(desc),
+        shapes,
+        findings,
+        probe,
+        claimed,
+        t,
+        k,
+        seed,
+    ))
+}
+
+/// The name of the file tensor that holds each graph tensor (an augmented dense matrix holds
+/// its layer's weight and bias).
+pub fn file_names(desc: &GraphDescription) -> Vec<String> {
+    let mut out: Vec<String> = desc
+        .graph
+        .tensors()
+        .iter()
+        .map(|s| s.name.clone())
+        .collect();
+    for f in &desc.files {
+        for &t in &f.tensors {
+            out[t] = f.name.clone();
+        }
+    }
+    out
+}
+
+/// Kinds whose inside measures ([`plumb_engine::graph::Kind::inside`]) read an f64 pass.
+fn has_inside(node: &Node) -> bool {
+    matches!(
+        node.layer.kind(),
+        "rnn" | "lstm" | "gru" | "attention" | "embedding"
+    )
+}
+
+/// Everything after the values: duplicates, norm scales, and on a finite file the probe pass's
+/// unit health and inside measures, the initialisation scale and the flow. `names[t]` is the
+/// name findings give graph tensor t.
+#[allow(clippy::too_many_arguments)]
+fn measure(
+    w: &GraphWeights,
+    names: &[String],
+    shapes: GraphShapeAudit,
+    mut findings: Vec<Finding>,
+    probe: &Batch,
+    claimed: Option<Init>,
+    t: &Thresholds,
+    k: &KindThresholds,
+    seed: u64,
+) -> Audit {
     let (g, params) = (w.graph, w.params);
-    g.check_batch(probe.x.view(), probe.y.view())?;
-    let shapes = shapes.into();
-    let mut findings = shapes.findings().to_vec();
-    findings.extend(values_findings(&values(w), t));
     let nodes = g.nodes();
     let last = nodes.len() - 1;
     // The tensor a layer's findings name: its first weight (or table), else its first tensor.
@@ -134,9 +246,7 @@ pub fn audit_graph(
             let weight = ts
                 .clone()
                 .find(|&t| matches!(g.tensors()[t].spec.role, Role::Weight | Role::Table));
-            weight
-                .or_else(|| ts.next())
-                .map(|t| g.tensors()[t].name.clone())
+            weight.or_else(|| ts.next()).map(|t| names[t].clone())
         })
         .collect();
     for s in graph_symmetry(g, params, t.symmetry_tolerance) {
@@ -152,6 +262,11 @@ pub fn audit_graph(
             "channel" => "channel",
             _ => "feature",
         };
+        let tensor = g
+            .tensors()
+            .iter()
+            .position(|s| s.name == tensor)
+            .map_or(tensor, |i| names[i].clone());
         findings.extend(inside_findings(&h, &tensor, noun, probe.len(), t));
         inside.push(h);
     }
@@ -163,36 +278,51 @@ pub fn audit_graph(
             "unit health, the layers' inside measures, initialisation and flow: the weights hold non-finite values".into(),
         );
     } else {
-        let trace = g.forward(params, probe.x.view());
-        for (j, node) in nodes.iter().enumerate() {
-            let step = &trace.steps[j];
-            let input = if j == 0 {
-                probe.x.view()
-            } else {
-                trace.outputs[j - 1].view()
-            };
-            let measures = inside_health(g, j, &node.layer.inside(input, step), t);
-            for h in measures {
-                let tensor = named[j].as_deref().unwrap_or_default();
-                findings.extend(inside_findings(&h, tensor, "unit", probe.len(), t));
-                inside.push(h);
+        // A file stored in f32 (or narrower) runs its probe pass in f32, as it would be used,
+        // at half the cost, unless a layer's inside measures need an f64 pass; should that pass
+        // overflow where f64 might not, it runs again in f64.
+        let single = w
+            .dtypes
+            .iter()
+            .all(|d| matches!(d, DType::F32 | DType::F16 | DType::BF16))
+            && !nodes.iter().any(has_inside);
+        let in_f32 = single
+            .then(|| {
+                let p32: Vec<ArrayD<f32>> = params.iter().map(|p| p.mapv(|v| v as f32)).collect();
+                let (x, y) = (probe.x.mapv(|v| v as f32), probe.y.mapv(|v| v as f32));
+                probe_pass(
+                    g,
+                    &p32,
+                    params,
+                    x.view(),
+                    y.view(),
+                    &named,
+                    t,
+                    seed,
+                    |_, _| Vec::new(),
+                )
+            })
+            .flatten();
+        let (h, f, mut pass_findings, ins) = match in_f32 {
+            Some(done) => done,
+            None => {
+                let (x, y) = (probe.x.view(), probe.y.view());
+                let trace = g.forward(params, x);
+                let inside_of = |j: usize, node: &Node| {
+                    let input = if j == 0 {
+                        x
+                    } else {
+                        trace.outputs[j - 1].view()
+                    };
+                    node.layer.inside(input, &trace.steps[j])
+                };
+                probe_pass_with(g, params, params, x, y, &trace, &named, t, seed, inside_of)
             }
-            // Hidden layers only: a confident output layer is not a defect.
-            if j == last || !measured(node) {
-                continue;
-            }
-            let h = unit_health(
-                j + 1,
-                node.activation,
-                step.out.view(),
-                trace.outputs[j].view(),
-                output_units(&node.layer.output()),
-                t.saturation,
-                t.saturated_fraction,
-            );
-            health_findings(&h, named[j].as_deref(), t, probe.len(), &mut findings);
-            health.push(h);
-        }
+        };
+        (health, flow) = (h, f);
+        // The inside measures' findings and the health findings, layer by layer, as before.
+        findings.append(&mut pass_findings);
+        inside.extend(ins);
         for (i, spec) in g.tensors().iter().enumerate() {
             if spec.spec.role != Role::Weight {
                 continue;
@@ -202,7 +332,7 @@ pub fn audit_graph(
             let values: Vec<f64> = params[i].iter().copied().collect();
             init.push(tensor_init(
                 spec.layer + 1,
-                &spec.name,
+                &names[i],
                 &values,
                 (spec.spec.fan_in, spec.spec.fan_out),
                 act.kink().is_some() || node.activation.kink().is_some(),
@@ -216,10 +346,9 @@ pub fn audit_graph(
             let act = node.layer.inner_activation().unwrap_or(node.activation);
             init_findings(li, act.name(), t, &mut findings);
         }
-        flow = graph_flow(g, params, &trace.outputs, probe, seed);
         flow_findings(&flow, t, &mut findings);
     }
-    Ok(Audit {
+    Audit {
         verdict: verdict_at(&findings, t.fail_on),
         fail_on: t.fail_on,
         shapes,
@@ -229,75 +358,139 @@ pub fn audit_graph(
         inside,
         skipped,
         findings,
-    })
+    }
 }
 
-/// Audits a weight file (read from `path`) against a description of any kind on a probe batch:
-/// the graph shapes audit, then, when every tensor fits, [`audit_graph`] on the file's tensors
-/// in canonical shapes, each with the dtype the file stored it in. When the tensors do not fit,
-/// the report holds the shape findings and says what could not be checked.
+/// What [`probe_pass_with`] gives: unit health, flow, their findings, the inside measures.
+type Pass = (
+    Vec<LayerHealth>,
+    Vec<LayerFlow>,
+    Vec<Finding>,
+    Vec<InsideHealth>,
+);
+
+/// The probe pass in the scalar `S`, `None` when its outputs overflow.
 #[allow(clippy::too_many_arguments)]
-pub fn audit_graph_file(
-    desc: &GraphDescription,
-    file: &TensorFile,
-    path: &Path,
-    probe: &Batch,
-    claimed: Option<Init>,
+fn probe_pass<S: LayerScalar>(
+    g: &Graph,
+    params: &[ArrayD<S>],
+    wide: &[ArrayD<f64>],
+    x: ArrayView2<S>,
+    y: ArrayView2<S>,
+    named: &[Option<String>],
     t: &Thresholds,
-    k: &KindThresholds,
     seed: u64,
-) -> Result<Audit, GraphError> {
-    let shapes = audit_graph_shapes(desc, Some(file));
-    let params = match shapes.verdict {
-        Verdict::Pass => desc.read_params(file, path).map_err(|e| e.to_string()),
-        _ => Err("the tensors do not fit the description".into()),
-    };
-    let params = match params {
-        Ok(p) => p,
-        Err(why) => {
-            let findings = shapes.findings.clone();
-            return Ok(Audit {
-                verdict: verdict_at(&findings, t.fail_on),
-                fail_on: t.fail_on,
-                shapes: shapes.into(),
-                health: Vec::new(),
-                init: Vec::new(),
-                flow: Vec::new(),
-                inside: Vec::new(),
-                skipped: vec![format!(
-                    "values, duplicates, unit health, the layers' inside measures, initialisation and flow: {why}"
-                )],
-                findings,
-            });
+    inside_of: impl Fn(usize, &Node) -> Vec<plumb_engine::graph::Inside>,
+) -> Option<Pass> {
+    let trace = g.forward(params, x);
+    let finite = trace
+        .outputs
+        .iter()
+        .all(|o| o.iter().all(|v| v.re().is_finite()));
+    finite.then(|| probe_pass_with(g, params, wide, x, y, &trace, named, t, seed, inside_of))
+}
+
+/// Unit health and the inside measures per layer (hidden layers only for health: a confident
+/// output layer is not a defect), with their findings, and the flow, from a forward pass
+/// `trace` in the scalar `S`; `wide` are the parameters in f64 for the singular values.
+#[allow(clippy::too_many_arguments)]
+fn probe_pass_with<S: LayerScalar>(
+    g: &Graph,
+    params: &[ArrayD<S>],
+    wide: &[ArrayD<f64>],
+    x: ArrayView2<S>,
+    y: ArrayView2<S>,
+    trace: &plumb_engine::graph::Trace<S>,
+    named: &[Option<String>],
+    t: &Thresholds,
+    seed: u64,
+    inside_of: impl Fn(usize, &Node) -> Vec<plumb_engine::graph::Inside>,
+) -> Pass {
+    let nodes = g.nodes();
+    let last = nodes.len() - 1;
+    let samples = x.nrows();
+    let (mut health, mut findings, mut inside) = (Vec::new(), Vec::new(), Vec::new());
+    for (j, node) in nodes.iter().enumerate() {
+        let step = &trace.steps[j];
+        for h in inside_health(g, j, &inside_of(j, node), t) {
+            let tensor = named[j].as_deref().unwrap_or_default();
+            findings.extend(inside_findings(&h, tensor, "unit", samples, t));
+            inside.push(h);
         }
-    };
-    let dtypes = stored_dtypes(desc, file);
-    let w = GraphWeights {
-        graph: &desc.graph,
-        params: &params,
-        dtypes: &dtypes,
-    };
-    audit_graph(&w, shapes, probe, claimed, t, k, seed)
+        if j == last || !measured(node) {
+            continue;
+        }
+        let h = unit_health(
+            j + 1,
+            node.activation,
+            step.out.view(),
+            trace.outputs[j].view(),
+            output_units(&node.layer.output()),
+            t.saturation,
+            t.saturated_fraction,
+        );
+        health_findings(&h, named[j].as_deref(), t, samples, &mut findings);
+        health.push(h);
+    }
+    let flow = graph_flow(g, params, wide, x, y, trace, seed);
+    (health, flow, findings, inside)
 }
 
 /// The dtype the file stored each graph tensor in (an augmented dense matrix gives its weight
 /// and bias the matrix's).
 fn stored_dtypes(desc: &GraphDescription, file: &TensorFile) -> Vec<DType> {
-    let single = file.format == FileFormat::Npy && file.tensors.len() == 1 && desc.files.len() == 1;
+    let index = by_name(file);
     let mut out = vec![DType::F64; desc.graph.tensors().len()];
     for f in &desc.files {
-        let found = if single {
-            file.tensors.first()
-        } else {
-            file.tensors.iter().find(|t| t.name == f.name)
-        };
-        if let Some(found) = found {
+        if let Some(found) = find(desc, file, &index, &f.name) {
             for &t in &f.tensors {
                 out[t] = found.dtype;
             }
         }
     }
     out
+}
+
+/// The values of every file tensor the description uses that the file holds in a float dtype,
+/// as the file holds them (an augmented matrix's column 0 is its bias).
+fn file_values(desc: &GraphDescription, file: &TensorFile) -> Vec<Values> {
+    let index = by_name(file);
+    desc.files
+        .iter()
+        .filter_map(|f| {
+            let tensor = find(desc, file, &index, &f.name)?;
+            if !tensor.dtype.is_float() {
+                return None; // the shape audit names it
+            }
+            let data = &tensor.data;
+            let (weights, bias) = match (&f.storage, f.role) {
+                (FileStorage::Augmented, _) => {
+                    let cols = f.shape[1].max(1);
+                    let (mut w, mut b) = (Vec::new(), Vec::new());
+                    for (k, v) in data.iter().enumerate() {
+                        if k % cols == 0 {
+                            b.push(*v)
+                        } else {
+                            w.push(*v)
+                        }
+                    }
+                    (Some(w), Some(b))
+                }
+                (_, Role::Weight | Role::Table) => (Some(data.clone()), None),
+                (_, Role::Bias) => (None, Some(data.clone())),
+                _ => (None, None),
+            };
+            Some(Values {
+                name: f.name.clone(),
+                layer: f.layer + 1,
+                shape: tensor.shape.clone(),
+                dtype: tensor.dtype,
+                data: data.clone(),
+                weights,
+                bias,
+            })
+        })
+        .collect()
 }
 
 /// Whether unit health measures anything after this activation (or the layer has weights whose
@@ -310,7 +503,7 @@ fn measured(node: &Node) -> bool {
 
 /// Every tensor's values as the value checks read them: weights and tables may not be one
 /// value throughout, biases are noted when all zero.
-fn values(w: &GraphWeights) -> Vec<Values> {
+fn graph_values(w: &GraphWeights) -> Vec<Values> {
     w.graph
         .tensors()
         .iter()
@@ -334,32 +527,35 @@ fn values(w: &GraphWeights) -> Vec<Values> {
 
 /// Per layer with parameters: its activations' spread, its gradient's norm and RMS over all its
 /// tensors, and the largest singular value of its first weight (or table) as a matrix of rows ×
-/// the rest (a 1-D scale, a diagonal, gives its largest |entry|).
-fn graph_flow(
+/// the rest (a 1-D scale, a diagonal, gives its largest |entry|). The gradient is the backward
+/// pass of the probe pass `trace` in its scalar; the figures are taken in f64 on the exactly
+/// widened values.
+fn graph_flow<S: LayerScalar>(
     g: &Graph,
-    params: &[ArrayD<f64>],
-    outputs: &[ndarray::Array2<f64>],
-    probe: &Batch,
+    params: &[ArrayD<S>],
+    wide: &[ArrayD<f64>],
+    x: ArrayView2<S>,
+    y: ArrayView2<S>,
+    trace: &plumb_engine::graph::Trace<S>,
     seed: u64,
 ) -> Vec<LayerFlow> {
-    let grad = g.gradient(params, probe.x.view(), probe.y.view(), None);
+    let (grad, _) = g.backward(params, x, y, trace, None);
     let mut rng = Rng::new(seed ^ 0x5_1697);
     g.nodes()
         .iter()
         .enumerate()
         .filter(|(_, n)| !n.tensors().is_empty())
         .map(|(j, node)| {
-            let a: Vec<f64> = outputs[j].iter().copied().collect();
             let gv: Vec<f64> = node
                 .tensors()
-                .flat_map(|t| grad.params[t].iter().copied().collect::<Vec<_>>())
+                .flat_map(|t| grad[t].iter().map(|v| v.re()).collect::<Vec<_>>())
                 .collect();
             let gn = norm(&gv);
             let main = node
                 .tensors()
                 .find(|&t| matches!(g.tensors()[t].spec.role, Role::Weight | Role::Table))
                 .unwrap_or(node.tensors().start);
-            let p = &params[main];
+            let p = &wide[main];
             let sigma = if p.ndim() == 1 {
                 largest(p.iter().copied())
             } else {
@@ -370,9 +566,10 @@ fn graph_flow(
                     .expect("standard layout");
                 sigma_max(m, &mut rng)
             };
+            let a = &trace.outputs[j];
             LayerFlow {
                 layer: j + 1,
-                activation_std: moments(&a).std,
+                activation_std: moments_of(|| a.iter().map(|v| v.re())).std,
                 gradient_norm: gn,
                 gradient_rms: gn / (gv.len().max(1) as f64).sqrt(),
                 sigma_max: sigma,

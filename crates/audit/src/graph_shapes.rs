@@ -22,7 +22,7 @@ use serde::Serialize;
 use crate::shapes::by_name;
 use crate::{LayerShapes, LayerTerms, Status, StrayTensor, TensorShape};
 
-/// The whole graph dimension audit.
+/// The whole dimension audit.
 #[derive(Clone, Debug, Serialize)]
 pub struct GraphShapeAudit {
     /// Carried by the command's report, at its top.
@@ -30,10 +30,26 @@ pub struct GraphShapeAudit {
     pub verdict: Verdict,
     /// The storage of dense layers the description declares.
     pub layout: Layout,
+    /// The layout the file's dense layers are actually in, when every tensor fits another one
+    /// than declared.
+    pub detected_layout: Option<Layout>,
     pub layers: Vec<LayerShapes>,
     pub unexpected: Vec<StrayTensor>,
     pub total_parameters: usize,
     pub findings: Vec<Finding>,
+}
+
+impl GraphShapeAudit {
+    /// Every tensor the description expects, with what the file holds under its name.
+    pub fn tensors(&self) -> impl Iterator<Item = &TensorShape> {
+        self.layers.iter().flat_map(|l| &l.tensors)
+    }
+
+    /// Whether any tensor of the file fits the description (in any layout of its dense layers): a
+    /// file none of whose tensors fits belongs to another network.
+    pub fn fits_any(&self) -> bool {
+        self.detected_layout.is_some() || self.tensors().any(|t| t.status == Status::Ok)
+    }
 }
 
 /// Audits a weight file against a description of any kind (or, with `None`, lists what the
@@ -41,6 +57,7 @@ pub struct GraphShapeAudit {
 pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) -> GraphShapeAudit {
     let mut findings = Vec::new();
     let mut used: BTreeSet<&str> = BTreeSet::new();
+    let dense_description = desc.is_dense();
     let statuses: Vec<(Option<&Tensor>, Status)> = match file {
         None => desc
             .files
@@ -49,17 +66,10 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
             .collect(),
         Some(file) => {
             let index = by_name(file);
-            // A `.npy` holds one tensor, named after the file: when one is expected, that one.
-            let single =
-                file.format == FileFormat::Npy && file.tensors.len() == 1 && desc.files.len() == 1;
             desc.files
                 .iter()
                 .map(|f| {
-                    let t = if single {
-                        Some(&file.tensors[0])
-                    } else {
-                        index.get(f.name.as_str()).copied()
-                    };
+                    let t = find(desc, file, &index, &f.name);
                     if let Some(t) = t {
                         used.insert(t.name.as_str());
                     }
@@ -75,139 +85,50 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
         }
     };
 
-    if let Some(file) = file {
-        // Unclaimed tensors by shape, the first of each: a missing tensor's likely stand-in.
-        let mut strays: HashMap<&[usize], &Tensor> = HashMap::new();
-        for t in file.tensors.iter().rev() {
-            if !used.contains(t.name.as_str()) {
-                strays.insert(t.shape.as_slice(), t);
+    let mut detected_layout = None;
+    if let Some(file) = file
+        && statuses.iter().any(|(_, s)| *s != Status::Ok)
+    {
+        if let Some((layout, ambiguous)) = other_layout(desc, file) {
+            detected_layout = Some(layout);
+            let index = by_name(file);
+            for (name, _, _) in layout_tensors(desc, layout) {
+                if let Some(t) = find(desc, file, &index, &name) {
+                    used.insert(t.name.as_str());
+                }
             }
-        }
-        for (f, (t, status)) in desc.files.iter().zip(&statuses) {
-            let layer = f.layer + 1;
-            match status {
-                Status::WrongShape => {
-                    let t = t.expect("present");
-                    let (code, advice) = explain(desc, f, &t.shape);
-                    findings.push(
-                        Finding::new(
-                            code,
-                            Severity::Error,
-                            format!(
-                                "is {}, expected {}{}: {advice}",
-                                shape_text(&t.shape),
-                                shape_text(&f.shape),
-                                declared(f)
-                            ),
-                        )
-                        .tensor(&f.name)
-                        .layer(layer)
-                        .figure("expected", &f.shape)
-                        .figure("found", &t.shape)
-                        .figure("storage", f.storage.letters()),
-                    );
-                }
-                Status::Missing => {
-                    let stand_in = strays.get(f.shape.as_slice()).copied();
-                    let kind = desc.layers[f.layer].kind_name();
-                    let message = match stand_in {
-                        Some(s) => format!(
-                            "is not in the file; `{}` has its shape {}: if that is layer {layer}'s {}, rename it in the file{}",
-                            s.name,
-                            shape_text(&f.shape),
-                            f.role_name(),
-                            if matches!(desc.layers[f.layer].kind, KindSettings::Dense { .. }) {
-                                format!(
-                                    " or write {} = \"{}\" in [[layer]] {layer}",
-                                    if f.role == Role::Bias {
-                                        "bias"
-                                    } else {
-                                        "weight"
-                                    },
-                                    s.name
-                                )
-                            } else {
-                                String::new()
-                            }
-                        ),
-                        None if f.role == Role::Bias
-                            && matches!(desc.layers[f.layer].kind, KindSettings::Conv { .. }) =>
-                        {
-                            format!(
-                                "is not in the file: layer {layer} ({kind}) has a bias unless it says bias = false; add the bias of shape {}, or write bias = false in [[layer]] {layer}",
-                                shape_text(&f.shape)
-                            )
-                        }
-                        None => format!(
-                            "is not in the file: layer {layer} ({kind}) needs its {} of shape {}{}",
-                            f.role_name(),
-                            shape_text(&f.shape),
-                            declared(f)
-                        ),
-                    };
-                    let code = if f.role == Role::Bias && stand_in.is_none() {
-                        "bias-missing"
-                    } else {
-                        "tensor-missing"
-                    };
-                    let mut finding = Finding::new(code, Severity::Error, message)
-                        .tensor(&f.name)
-                        .layer(layer)
-                        .figure("expected", &f.shape);
-                    if let Some(s) = stand_in {
-                        used.insert(s.name.as_str());
-                        strays.remove(s.shape.as_slice());
-                        finding = finding.figure("source", &s.name);
-                    }
-                    findings.push(finding);
-                }
-                Status::NotFloat => {
-                    let t = t.expect("present");
-                    findings.push(
-                        Finding::new(
-                            "dtype-not-float",
-                            Severity::Error,
-                            format!(
-                                "holds {} values; weights must be floating point (f16, bf16, f32 or f64): save it as float32 or float64",
-                                t.dtype.name()
-                            ),
-                        )
-                        .tensor(&f.name)
-                        .layer(layer)
-                        .figure("dtype", t.dtype.name()),
-                    );
-                }
-                Status::Ok => {
-                    if let (KindSettings::Conv { .. }, FileStorage::Axes(declared), Role::Weight) =
-                        (&desc.layers[f.layer].kind, &f.storage, f.role)
-                    {
-                        let canonical = &desc.graph.tensors()[f.tensors[0]].spec.shape;
-                        let alike = orders_of_shape(declared, canonical, &f.shape);
-                        if !alike.is_empty() {
-                            findings.push(
-                                Finding::new(
-                                    "storage-ambiguous",
-                                    Severity::Note,
-                                    format!(
-                                        "fits the declared order \"{}\", but equal axis lengths give {} the same shape: the dimension audit cannot rule those out; a gradient or value check can",
-                                        declared.letters(),
-                                        quoted(&alike)
-                                    ),
-                                )
-                                .tensor(&f.name)
-                                .layer(layer),
-                            );
-                        }
-                    }
-                }
-                Status::Unchecked => {}
+            let mut msg = format!(
+                "the file is in layout `{layout}`, but the description says `{}`: set layout = \"{layout}\" in the description",
+                desc.layout
+            );
+            if let Some(other) = ambiguous {
+                msg.push_str(&format!(
+                    " (every layer is square, so `{other}` fits as well: check whether your code computes W·x + b or x·W + b)"
+                ));
             }
+            findings.push(
+                Finding::new("other-layout", Severity::Error, msg)
+                    .figure("declared", desc.layout.name())
+                    .figure("found", layout.name()),
+            );
+        } else {
+            diagnose(desc, file, &statuses, &mut used, &mut findings);
         }
+    }
+    if file.is_some() {
+        notes(desc, &statuses, &mut findings);
     }
 
     let unexpected = StrayTensor::left_over(file, &used);
-    for s in &unexpected {
-        findings.push(s.finding("remove it, or check the layer names"));
+    if detected_layout.is_none() {
+        let fix = if dense_description {
+            "remove it, or name it in a [[layer]] with weight = / bias ="
+        } else {
+            "remove it, or check the layer names"
+        };
+        for s in &unexpected {
+            findings.push(s.finding(fix));
+        }
     }
 
     let layers = desc
@@ -232,14 +153,14 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
                 .collect();
             let verdict = if file.is_none() {
                 "unchecked"
-            } else if tensors.iter().all(|t| t.status == Status::Ok) {
+            } else if detected_layout.is_none() && tensors.iter().all(|t| t.status == Status::Ok) {
                 "pass"
             } else {
                 "fail"
             };
             LayerShapes {
                 layer: j + 1,
-                terms: LayerTerms::of_node(node),
+                terms: LayerTerms::of_node(node, dense_description),
                 parameters: node
                     .layer
                     .params()
@@ -254,11 +175,346 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
     GraphShapeAudit {
         verdict: Verdict::of(&findings),
         layout: desc.layout,
+        detected_layout,
         layers,
         unexpected,
         total_parameters: desc.graph.parameters(),
         findings,
     }
+}
+
+/// The file's tensor of this name. A `.npy` holds one tensor, named after the file: when the
+/// description expects one, that one, whatever the file is called.
+pub(crate) fn find<'f>(
+    desc: &GraphDescription,
+    file: &'f TensorFile,
+    index: &HashMap<&str, &'f Tensor>,
+    name: &str,
+) -> Option<&'f Tensor> {
+    if file.format == FileFormat::Npy && file.tensors.len() == 1 && desc.files.len() == 1 {
+        return file.tensors.first();
+    }
+    index.get(name).copied()
+}
+
+/// Whether a layer is dense.
+fn is_dense(desc: &GraphDescription, layer: usize) -> bool {
+    matches!(desc.layers[layer].kind, KindSettings::Dense { .. })
+}
+
+/// A dense layer's (fan-in, units).
+fn dense_sizes(desc: &GraphDescription, layer: usize) -> (usize, usize) {
+    let node = &desc.graph.nodes()[layer];
+    (node.layer.input().size(), node.layer.output().size())
+}
+
+/// The file tensors (name, shape, whether a bias) the description implies when its dense layers
+/// are stored in `layout`; other kinds' tensors as the description has them.
+fn layout_tensors(desc: &GraphDescription, layout: Layout) -> Vec<(String, Vec<usize>, bool)> {
+    let mut out = Vec::with_capacity(desc.files.len());
+    for (j, node) in desc.graph.nodes().iter().enumerate() {
+        match &desc.layers[j].kind {
+            KindSettings::Dense { weight, bias, .. } => {
+                let (fan_in, units) = dense_sizes(desc, j);
+                let specs = &desc.graph.tensors()[node.tensors()];
+                let weight_name = || weight.clone().unwrap_or_else(|| specs[0].name.clone());
+                let bias_name = bias.clone().unwrap_or_else(|| specs[1].name.clone());
+                match layout {
+                    Layout::Augmented => out.push((
+                        weight.clone().unwrap_or_else(|| node.name.clone()),
+                        vec![units, fan_in + 1],
+                        false,
+                    )),
+                    Layout::Split => {
+                        out.push((weight_name(), vec![units, fan_in], false));
+                        out.push((bias_name, vec![units], true));
+                    }
+                    Layout::SplitTransposed => {
+                        out.push((weight_name(), vec![fan_in, units], false));
+                        out.push((bias_name, vec![units], true));
+                    }
+                }
+            }
+            _ => out.extend(
+                desc.files
+                    .iter()
+                    .filter(|f| f.layer == j)
+                    .map(|f| (f.name.clone(), f.shape.clone(), f.shape.len() == 1)),
+            ),
+        }
+    }
+    out
+}
+
+/// The layout, other than the declared one, under which every tensor is present with a fitting
+/// shape; with the second layout that fits as well when split and split-transposed cannot be
+/// told apart (all dense layers square). Only for descriptions with dense layers.
+fn other_layout(desc: &GraphDescription, file: &TensorFile) -> Option<(Layout, Option<Layout>)> {
+    if !(0..desc.layers.len()).any(|j| is_dense(desc, j)) {
+        return None;
+    }
+    let index = by_name(file);
+    let fits = |layout: Layout| {
+        layout_tensors(desc, layout)
+            .iter()
+            .all(|(name, shape, vector)| {
+                find(desc, file, &index, name).is_some_and(|t| {
+                    t.shape == *shape
+                        || (*vector
+                            && t.shape.len() == 2
+                            && t.shape.contains(&1)
+                            && t.shape.iter().product::<usize>() == shape[0])
+                })
+            })
+    };
+    let candidates: Vec<Layout> = Layout::ALL
+        .into_iter()
+        .filter(|&l| l != desc.layout && fits(l))
+        .collect();
+    match candidates.as_slice() {
+        [] => None,
+        [one] => Some((*one, None)),
+        [a, b, ..] => Some((*a, Some(*b))),
+    }
+}
+
+/// Names what is wrong with each tensor that is missing or of the wrong shape, trying the known
+/// explanations in turn.
+fn diagnose<'f>(
+    desc: &GraphDescription,
+    file: &'f TensorFile,
+    statuses: &[(Option<&Tensor>, Status)],
+    used: &mut BTreeSet<&'f str>,
+    findings: &mut Vec<Finding>,
+) {
+    // Unclaimed tensors by shape, the first of each: a missing tensor's likely stand-in.
+    let mut strays: HashMap<&[usize], usize> = HashMap::new();
+    for (i, t) in file.tensors.iter().enumerate().rev() {
+        if !used.contains(t.name.as_str()) {
+            strays.insert(t.shape.as_slice(), i);
+        }
+    }
+    for (k, (f, (t, status))) in desc.files.iter().zip(statuses).enumerate() {
+        let layer = f.layer + 1;
+        let dense = is_dense(desc, f.layer);
+        match status {
+            Status::WrongShape => {
+                let t = t.expect("present");
+                let (code, advice) = match swapped_with(desc, statuses, k, &t.shape) {
+                    Some(other) => (
+                        "layers-out-of-order",
+                        format!(
+                            "that is the shape layer {} expects; the layers are stored in another order than the description lists them",
+                            other + 1
+                        ),
+                    ),
+                    None => explain(desc, f, &t.shape),
+                };
+                let mut finding = Finding::new(
+                    code,
+                    Severity::Error,
+                    format!(
+                        "is {}, expected {}{}: {advice}",
+                        shape_text(&t.shape),
+                        shape_text(&f.shape),
+                        if dense { String::new() } else { declared(f) }
+                    ),
+                )
+                .tensor(&f.name)
+                .layer(layer)
+                .figure("expected", &f.shape)
+                .figure("found", &t.shape);
+                if !dense {
+                    finding = finding.figure("storage", f.storage.letters());
+                }
+                findings.push(finding);
+            }
+            Status::Missing => {
+                // What `fits` accepts: the shape, or for a vector of n also n × 1 and 1 × n.
+                let mut shapes = vec![f.shape.clone()];
+                if f.shape.len() == 1 {
+                    shapes.extend([vec![f.shape[0], 1], vec![1, f.shape[0]]]);
+                }
+                let stand_in = shapes
+                    .iter()
+                    .filter_map(|s| strays.get(s.as_slice()).copied())
+                    .min()
+                    .map(|i| &file.tensors[i]);
+                let kind = desc.layers[f.layer].kind_name();
+                let message = match stand_in {
+                    Some(s) => format!(
+                        "is not in the file; `{}` has its shape {}: if that is layer {layer}'s {}, rename it in the file{}",
+                        s.name,
+                        shape_text(&f.shape),
+                        f.role_name(),
+                        if dense {
+                            format!(
+                                " or write {} = \"{}\" in [[layer]] {layer}",
+                                if f.role == Role::Bias {
+                                    "bias"
+                                } else {
+                                    "weight"
+                                },
+                                s.name
+                            )
+                        } else {
+                            String::new()
+                        }
+                    ),
+                    None if dense => format!(
+                        "is not in the file: layer {layer} needs {} tensor of shape {} under layout `{}`",
+                        match (&f.storage, f.role) {
+                            (FileStorage::Augmented, _) => "an augmented",
+                            (_, Role::Bias) => "a bias",
+                            _ => "a weight",
+                        },
+                        shape_text(&f.shape),
+                        desc.layout
+                    ),
+                    None if f.role == Role::Bias
+                        && matches!(desc.layers[f.layer].kind, KindSettings::Conv { .. }) =>
+                    {
+                        format!(
+                            "is not in the file: layer {layer} ({kind}) has a bias unless it says bias = false; add the bias of shape {}, or write bias = false in [[layer]] {layer}",
+                            shape_text(&f.shape)
+                        )
+                    }
+                    None => format!(
+                        "is not in the file: layer {layer} ({kind}) needs its {} of shape {}{}",
+                        f.role_name(),
+                        shape_text(&f.shape),
+                        declared(f)
+                    ),
+                };
+                // A dense layer's missing bias is a missing tensor, as it has always been named.
+                let code = if f.role == Role::Bias && stand_in.is_none() && !dense {
+                    "bias-missing"
+                } else {
+                    "tensor-missing"
+                };
+                let mut finding = Finding::new(code, Severity::Error, message)
+                    .tensor(&f.name)
+                    .layer(layer)
+                    .figure("expected", &f.shape);
+                if let Some(s) = stand_in {
+                    used.insert(s.name.as_str());
+                    strays.retain(|_, &mut i| file.tensors[i].name != s.name);
+                    finding = finding.figure("source", &s.name);
+                }
+                findings.push(finding);
+            }
+            _ => {}
+        }
+    }
+}
+
+/// The notes and dtype errors of tensors whose shape fits: a tensor that is not floating point;
+/// a square dense matrix (a transposed copy has its shape); a dense bias stored as a matrix; a
+/// conv weight whose equal axis lengths let other orders fit.
+fn notes(
+    desc: &GraphDescription,
+    statuses: &[(Option<&Tensor>, Status)],
+    findings: &mut Vec<Finding>,
+) {
+    for (f, (t, status)) in desc.files.iter().zip(statuses) {
+        let layer = f.layer + 1;
+        let dense = is_dense(desc, f.layer);
+        if *status == Status::NotFloat {
+            let t = t.expect("present");
+            findings.push(
+                Finding::new(
+                    "dtype-not-float",
+                    Severity::Error,
+                    format!(
+                        "holds {} values; weights must be floating point (f16, bf16, f32 or f64): save it as float32 or float64",
+                        t.dtype.name()
+                    ),
+                )
+                .tensor(&f.name)
+                .layer(layer)
+                .figure("dtype", t.dtype.name()),
+            );
+        }
+        if *status != Status::Ok {
+            continue;
+        }
+        if dense && f.shape.len() == 2 && f.shape[0] == f.shape[1] {
+            findings.push(
+                Finding::new(
+                    "square-matrix",
+                    Severity::Note,
+                    format!(
+                        "is square ({0} × {0}), so a transposed copy would have the same shape: the dimension audit cannot rule that out; a gradient or value check can",
+                        f.shape[0]
+                    ),
+                )
+                .tensor(&f.name)
+                .layer(layer),
+            );
+        }
+        if let Some(t) = t.filter(|t| dense && f.role == Role::Bias && t.shape.len() == 2) {
+            findings.push(
+                Finding::new(
+                    "bias-as-matrix",
+                    Severity::Note,
+                    format!(
+                        "is stored as a {} matrix; read as a vector of {}",
+                        shape_text(&t.shape),
+                        f.shape[0]
+                    ),
+                )
+                .tensor(&f.name)
+                .layer(layer),
+            );
+        }
+        if let (KindSettings::Conv { .. }, FileStorage::Axes(declared), Role::Weight) =
+            (&desc.layers[f.layer].kind, &f.storage, f.role)
+        {
+            let canonical = &desc.graph.tensors()[f.tensors[0]].spec.shape;
+            let alike = orders_of_shape(declared, canonical, &f.shape);
+            if !alike.is_empty() {
+                findings.push(
+                    Finding::new(
+                        "storage-ambiguous",
+                        Severity::Note,
+                        format!(
+                            "fits the declared order \"{}\", but equal axis lengths give {} the same shape: the dimension audit cannot rule those out; a gradient or value check can",
+                            declared.letters(),
+                            quoted(&alike)
+                        ),
+                    )
+                    .tensor(&f.name)
+                    .layer(layer),
+                );
+            }
+        }
+    }
+}
+
+/// The layer whose dense tensor of the same role this one's found shape fits while that one's
+/// found shape fits this one: the two are swapped, the layers stored in another order.
+fn swapped_with(
+    desc: &GraphDescription,
+    statuses: &[(Option<&Tensor>, Status)],
+    k: usize,
+    found: &[usize],
+) -> Option<usize> {
+    let f = &desc.files[k];
+    if !is_dense(desc, f.layer) {
+        return None;
+    }
+    desc.files
+        .iter()
+        .zip(statuses)
+        .find(|(o, (t, st))| {
+            o.layer != f.layer
+                && is_dense(desc, o.layer)
+                && o.role_name() == f.role_name()
+                && *st != Status::Ok
+                && o.fits(found)
+                && t.is_some_and(|t| f.fits(&t.shape))
+        })
+        .map(|(o, _)| o.layer)
 }
 
 /// " (storage \"hwio\")" when the storage is not the canonical one.
@@ -407,38 +663,7 @@ fn explain(desc: &GraphDescription, f: &FileTensor, found: &[usize]) -> (&'stati
                 ),
             )
         }
-        (KindSettings::Dense { .. }, FileStorage::Augmented, _) => {
-            let (units, fan_in) = (f.shape[0], f.shape[1] - 1);
-            match *found {
-                [r, c] if r == units && c == fan_in => (
-                    "bias-column-missing",
-                    format!(
-                        "the bias column is missing: the augmented layout keeps the {units} bias weights in column 0; add them, or store them apart with layout = \"split\""
-                    ),
-                ),
-                [r, c] if r == fan_in + 1 && c == units => (
-                    "transposed-matrix",
-                    "the matrix is stored transposed ((inputs + 1) × units); transpose it"
-                        .to_string(),
-                ),
-                _ => plain(desc, f),
-            }
-        }
-        (KindSettings::Dense { .. }, FileStorage::Axes(s), Role::Weight)
-            if found == reversed(&f.shape) =>
-        {
-            (
-                "transposed-matrix",
-                format!(
-                    "the matrix is stored transposed; transpose it, or if every dense layer is stored this way, set layout = \"{}\"",
-                    if s.is_canonical() {
-                        "split-transposed"
-                    } else {
-                        "split"
-                    }
-                ),
-            )
-        }
+        (KindSettings::Dense { .. }, storage, role) => dense(desc, f, storage, role, found),
         (_, _, Role::Bias) => (
             "bias-wrong-length",
             format!(
@@ -449,6 +674,83 @@ fn explain(desc: &GraphDescription, f: &FileTensor, found: &[usize]) -> (&'stati
         ),
         _ => plain(desc, f),
     }
+}
+
+/// A dense tensor of the wrong shape: a bias of another length, a bias column missing or extra,
+/// a matrix stored transposed.
+fn dense(
+    desc: &GraphDescription,
+    f: &FileTensor,
+    storage: &FileStorage,
+    role: Role,
+    found: &[usize],
+) -> (&'static str, String) {
+    let layer = f.layer + 1;
+    let (inputs, units) = dense_sizes(desc, f.layer);
+    match (storage, role, found) {
+        (FileStorage::Axes(_), Role::Bias, [k] | [1, k] | [k, 1]) => {
+            let hint = if *k == inputs {
+                format!(
+                    " — {k} is the number of the layer's inputs, so the bias may belong to the layer below"
+                )
+            } else {
+                String::new()
+            };
+            (
+                "bias-wrong-length",
+                format!("the bias has {k} entries but layer {layer} has {units} units{hint}"),
+            )
+        }
+        (FileStorage::Augmented, _, &[r, c]) if r == units && c == inputs => (
+            "bias-column-missing",
+            format!(
+                "the bias column is missing: the augmented layout keeps the {units} bias weights in column 0; add them, or store them apart with layout = \"split\""
+            ),
+        ),
+        (FileStorage::Augmented, _, &[r, c]) if r == units && c == inputs + 2 => (
+            "bias-column-extra",
+            "one column too many: there is a second bias column, or the matrix belongs to a layer with one more input".to_string(),
+        ),
+        (FileStorage::Augmented, _, &[r, c]) if r == inputs + 1 && c == units => (
+            "transposed-matrix",
+            "the matrix is stored transposed ((inputs + 1) × units); transpose it, or check whether your code multiplies x·W".to_string(),
+        ),
+        (FileStorage::Axes(s), Role::Weight, &[r, c]) => {
+            let split = s.is_canonical();
+            if split && r == units && c == inputs + 1 {
+                return (
+                    "bias-column-extra",
+                    "the weight matrix carries an extra column, likely the bias: that is the augmented layout; set layout = \"augmented\" or drop the column".to_string(),
+                );
+            }
+            if !split && r == inputs + 1 && c == units {
+                return (
+                    "bias-column-extra",
+                    "the weight matrix carries an extra row, likely the bias: store the bias apart, or drop the row".to_string(),
+                );
+            }
+            if [c, r] == [f.shape[0], f.shape[1]] {
+                return (
+                    "transposed-matrix",
+                    format!(
+                        "the matrix is stored transposed; transpose it, or if every layer is stored this way, set layout = \"{}\"",
+                        if split { "split-transposed" } else { "split" }
+                    ),
+                );
+            }
+            dense_plain(layer, inputs, units)
+        }
+        _ => dense_plain(layer, inputs, units),
+    }
+}
+
+fn dense_plain(layer: usize, inputs: usize, units: usize) -> (&'static str, String) {
+    (
+        "wrong-shape",
+        format!(
+            "layer {layer} maps {inputs} inputs to {units} units; check the description's unit counts against the file"
+        ),
+    )
 }
 
 fn plain(desc: &GraphDescription, f: &FileTensor) -> (&'static str, String) {

@@ -6,10 +6,9 @@
 //! units, which sees a layer saturated on most samples in every unit but on 99% in none.
 
 use ndarray::ArrayView2;
-use plumb_engine::{Activation, Network, Scalar, Trace};
+use plumb_engine::{Activation, Scalar};
 use serde::Serialize;
 
-/// Whether a (pre-activation, activation) pair shows the measured condition.
 /// Bins of the activation histogram.
 pub const BINS: usize = 16;
 
@@ -36,32 +35,6 @@ pub struct LayerHealth {
     /// Counts of the layer's activations in `BINS` equal bins over `range`.
     pub histogram: Vec<usize>,
     pub range: (f64, f64),
-}
-
-/// The health of every hidden layer (the output layer's confidence is not a defect), from a
-/// forward pass in f64 or f32.
-pub fn layer_health<S: Scalar>(
-    net: &Network,
-    trace: &Trace<S>,
-    saturation: f64,
-    saturated_fraction: f64,
-) -> Vec<LayerHealth> {
-    let layers = net.layers();
-    (0..layers.len() - 1)
-        .map(|l| {
-            let (z, a) = (&trace.z[l], &trace.a[l + 1]);
-            let units = Units::columns(z.ncols());
-            unit_health(
-                l + 1,
-                layers[l].activation,
-                z.view(),
-                a.view(),
-                units,
-                saturation,
-                saturated_fraction,
-            )
-        })
-        .collect()
 }
 
 /// How a layer's output (m × size, each sample in C order of its shape) splits into units: the

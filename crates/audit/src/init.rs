@@ -8,7 +8,7 @@
 //! Holm's step-down procedure (Holm, Scandinavian Journal of Statistics 6(2):65–70, 1979), which
 //! keeps the chance of rejecting any genuine layer of the file at most α.
 
-use plumb_engine::{Init, LayerSpec};
+use plumb_engine::Init;
 use serde::Serialize;
 
 /// The KS statistic D = sup |F_n − F| of a sample against a CDF, and its p-value.
@@ -126,20 +126,6 @@ pub fn correct_across_layers(layers: &mut [LayerInit], alpha: f64) {
             t.passed = adjusted >= alpha;
         }
     }
-}
-
-/// The figures of one layer's non-bias weights.
-pub fn layer_init(
-    layer: usize,
-    tensor: &str,
-    weights: &[f64],
-    spec: &LayerSpec,
-    claimed: Option<Init>,
-    alpha: f64,
-) -> LayerInit {
-    let fans = (spec.inputs, spec.units);
-    let kinked = spec.activation.kink().is_some();
-    tensor_init(layer, tensor, weights, fans, kinked, claimed, alpha)
 }
 
 /// The figures of one weight tensor with (fan-in, fan-out) `fans`; `kinked` when the units it

@@ -1,11 +1,13 @@
-//! Audits of a weight file against its network description.
+//! Audits of a weight file against its network description, on the layer graph for every kind of
+//! layer (dense descriptions included).
 //!
-//! [`audit_shapes`] is the dimension audit (`plumb shapes`); [`audit`] is the release audit
-//! (`plumb audit`): the shapes, then the values (non-finite, implausible magnitudes, constant
-//! tensors), symmetric units, unit health on probe data, the initialisation scale (and a
-//! Kolmogorov–Smirnov test against a claimed scheme), and the flow of signal and gradient.
-//! [`audit_graph`] is the same release audit on the layer graph, for every kind of layer, with
-//! each kind's own measures besides (channels, norm scales, gates, attention heads, table rows).
+//! [`audit_graph_shapes`] is the dimension audit (`plumb shapes`); [`audit_graph_file`] is the
+//! release audit (`plumb audit`): the shapes, then the values (non-finite, implausible
+//! magnitudes, constant tensors), duplicate units, unit health on probe data, the initialisation
+//! scale (and a Kolmogorov–Smirnov test against a claimed scheme), and the flow of signal and
+//! gradient, with each kind's own measures besides (channels, norm scales, gates, attention
+//! heads, table rows); [`audit_graph`] runs the same on parameters already in the graph's shapes.
+//! [`audit_shapes`] is the dense dimension audit the CLI still loads dense weights through.
 //!
 //! ```
 //! use std::path::Path;
@@ -36,23 +38,22 @@ mod symmetry;
 mod units;
 mod values;
 
-pub use flow::{LayerFlow, layer_flow, sigma_max};
+pub use flow::{LayerFlow, sigma_max};
 pub use graph_audit::{GraphWeights, audit_graph, audit_graph_file, fitted_shapes};
 pub use graph_health::{
     InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
     output_units,
 };
 pub use graph_shapes::{GraphShapeAudit, audit_graph_shapes};
-pub use health::{BINS, LayerHealth, Units, layer_health, sparkline, unit_health};
+pub use health::{BINS, LayerHealth, Units, sparkline, unit_health};
 pub use init::{
-    KsTest, LayerInit, correct_across_layers, holm, ks_test, layer_init, q_ks, scheme_cdf,
-    tensor_init,
+    KsTest, LayerInit, correct_across_layers, holm, ks_test, q_ks, scheme_cdf, tensor_init,
 };
-pub use release::{Audit, AuditShapes, Thresholds, audit, verdict_at};
+pub use release::{Audit, Thresholds, verdict_at};
 pub use robust::{Moments, largest, moments, moments_of, norm};
 pub use shapes::{
     LayerShapes, LayerTerms, ShapeAudit, Status, StrayTensor, TensorShape, audit_shapes,
 };
-pub use symmetry::{SymmetricGroup, symmetric_groups, symmetry};
+pub use symmetry::SymmetricGroup;
 pub use units::{unit_ranges, units_phrase};
-pub use values::{Values, check_values, values_findings};
+pub use values::{Values, values_findings};

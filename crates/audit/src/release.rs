@@ -1,15 +1,11 @@
 //! The release audit: every check in turn, as findings.
 
-use ndarray::ArrayView2;
-use plumb_engine::{Batch, Init, Network, Scalar, Trace, Weights};
-use plumb_formats::{DType, Description, Role, TensorFile, assemble, bind, expected_tensors};
+use plumb_engine::Init;
 use plumb_report::{Finding, Severity, Verdict, tally};
 use serde::Serialize;
 
 use crate::{
-    GraphShapeAudit, InsideHealth, LayerFlow, LayerHealth, LayerInit, ShapeAudit, Status,
-    StrayTensor, SymmetricGroup, TensorShape, audit_shapes, check_values, correct_across_layers,
-    layer_flow, layer_health, layer_init, symmetry, unit_ranges,
+    GraphShapeAudit, InsideHealth, LayerFlow, LayerHealth, LayerInit, SymmetricGroup, unit_ranges,
 };
 
 /// `fail` when any finding reaches `level`.
@@ -83,7 +79,7 @@ pub struct Audit {
     /// The lowest severity that fails the audit (the thresholds' `fail_on`).
     #[serde(skip)]
     pub fail_on: Severity,
-    pub shapes: AuditShapes,
+    pub shapes: GraphShapeAudit,
     pub health: Vec<LayerHealth>,
     pub init: Vec<LayerInit>,
     pub flow: Vec<LayerFlow>,
@@ -94,189 +90,6 @@ pub struct Audit {
     /// Checks that could not run, and why.
     pub skipped: Vec<String>,
     pub findings: Vec<Finding>,
-}
-
-/// The shape audit an [`Audit`] starts from: the dense one for a dense description, the graph's
-/// for any other kind. Either serialises as itself, so a dense report's JSON is unchanged.
-#[derive(Clone, Debug, Serialize)]
-#[serde(untagged)]
-pub enum AuditShapes {
-    Dense(ShapeAudit),
-    Graph(GraphShapeAudit),
-}
-
-impl AuditShapes {
-    pub fn verdict(&self) -> Verdict {
-        match self {
-            AuditShapes::Dense(s) => s.verdict,
-            AuditShapes::Graph(s) => s.verdict,
-        }
-    }
-
-    pub fn findings(&self) -> &[Finding] {
-        match self {
-            AuditShapes::Dense(s) => &s.findings,
-            AuditShapes::Graph(s) => &s.findings,
-        }
-    }
-
-    /// Every tensor the description expects, with what the file holds under its name.
-    pub fn tensors(&self) -> Box<dyn Iterator<Item = &TensorShape> + '_> {
-        match self {
-            AuditShapes::Dense(s) => Box::new(s.layers.iter().flat_map(|l| &l.tensors)),
-            AuditShapes::Graph(s) => Box::new(s.layers.iter().flat_map(|l| &l.tensors)),
-        }
-    }
-
-    /// The file's tensors no layer uses.
-    pub fn unexpected(&self) -> &[StrayTensor] {
-        match self {
-            AuditShapes::Dense(s) => &s.unexpected,
-            AuditShapes::Graph(s) => &s.unexpected,
-        }
-    }
-
-    /// Whether any tensor of the file fits the description (in any layout, for a dense one): a
-    /// file none of whose tensors fits belongs to another network.
-    pub fn fits_any(&self) -> bool {
-        matches!(self, AuditShapes::Dense(s) if s.detected_layout.is_some())
-            || self.tensors().any(|t| t.status == Status::Ok)
-    }
-}
-
-impl From<ShapeAudit> for AuditShapes {
-    fn from(s: ShapeAudit) -> Self {
-        AuditShapes::Dense(s)
-    }
-}
-
-impl From<GraphShapeAudit> for AuditShapes {
-    fn from(s: GraphShapeAudit) -> Self {
-        AuditShapes::Graph(s)
-    }
-}
-
-/// Audits a weight file on a probe batch; `claimed` is the scheme the file says it was drawn from.
-pub fn audit(
-    desc: &Description,
-    file: &TensorFile,
-    batch: &Batch,
-    claimed: Option<Init>,
-    t: &Thresholds,
-    seed: u64,
-) -> Audit {
-    let file = &*bind(desc, file);
-    let shapes = audit_shapes(desc, Some(file));
-    let mut findings = shapes.findings.clone();
-    findings.extend(check_values(desc, file, t));
-    let mut skipped = Vec::new();
-    let (mut health, mut init, mut flow) = (Vec::new(), Vec::new(), Vec::new());
-    let weights = match (shapes.verdict, assemble(desc, file, &desc.path)) {
-        (Verdict::Pass, Ok(w)) => Some(w),
-        _ => {
-            skipped.push("symmetry, unit health, initialisation and flow: the tensors do not fit the description".into());
-            None
-        }
-    };
-    let finite = weights
-        .as_ref()
-        .is_some_and(|w| w.layers().iter().all(|l| l.iter().all(|v| v.is_finite())));
-    if weights.is_some() && !finite {
-        skipped.push(
-            "unit health, initialisation and flow: the weights hold non-finite values".into(),
-        );
-    }
-    // Each layer's first tensor that is not its bias, from one list of what is expected (a list
-    // per layer was quadratic in the layers).
-    let mut names: Vec<Option<String>> = vec![None; desc.layers.len()];
-    for e in expected_tensors(desc, desc.layout) {
-        if e.role != Role::Bias && names[e.layer].is_none() {
-            names[e.layer] = Some(e.name);
-        }
-    }
-    let names: Vec<String> = names.into_iter().map(Option::unwrap_or_default).collect();
-    let net = &desc.network;
-    if let Some(w) = &weights {
-        for g in symmetry(w, t.symmetry_tolerance) {
-            let output = g.layer == desc.layers.len();
-            findings.extend(symmetry_findings(&g, &names[g.layer - 1], output, false));
-        }
-    }
-    if let (Some(w), true) = (&weights, finite) {
-        // A file stored in f32 (or narrower) runs its probe pass in f32, as it would be used,
-        // at half the cost; should that pass overflow where f64 might not, it runs again in f64.
-        let single = file
-            .tensors
-            .iter()
-            .all(|t| matches!(t.dtype, DType::F32 | DType::F16 | DType::BF16));
-        let (w32, x32, y32) = match single {
-            true => (
-                Some(w.cast::<f32>()),
-                batch.x.mapv(|v| v as f32),
-                batch.y.mapv(|v| v as f32),
-            ),
-            false => (None, Default::default(), Default::default()),
-        };
-        let trace32 = w32
-            .as_ref()
-            .map(|w32| net.forward(w32, x32.view()))
-            .filter(|trace| trace.z.iter().all(|z| z.iter().all(|v| v.is_finite())));
-        (health, flow) = match (&w32, &trace32) {
-            (Some(w32), Some(trace)) => probe_measures(net, w32, trace, y32.view(), t, seed),
-            _ => {
-                let trace = net.forward(w, batch.x.view());
-                probe_measures(net, w, &trace, batch.y.view(), t, seed)
-            }
-        };
-        for h in &health {
-            health_findings(h, Some(&names[h.layer - 1]), t, batch.len(), &mut findings);
-        }
-        for (l, spec) in net.layers().iter().enumerate() {
-            let values: Vec<f64> = w
-                .layer(l)
-                .slice(ndarray::s![.., 1..])
-                .iter()
-                .copied()
-                .collect();
-            init.push(layer_init(
-                l + 1,
-                &names[l],
-                &values,
-                spec,
-                claimed,
-                t.ks_alpha,
-            ));
-        }
-        correct_across_layers(&mut init, t.ks_alpha);
-        for (li, spec) in init.iter().zip(net.layers()) {
-            init_findings(li, spec.activation.name(), t, &mut findings);
-        }
-        flow_findings(&flow, t, &mut findings);
-    }
-    Audit {
-        verdict: verdict_at(&findings, t.fail_on),
-        fail_on: t.fail_on,
-        shapes: shapes.into(),
-        health,
-        init,
-        flow,
-        inside: Vec::new(),
-        skipped,
-        findings,
-    }
-}
-
-/// Unit health and flow from a forward pass over the probe batch in the scalar `S`.
-fn probe_measures<S: Scalar>(
-    net: &Network,
-    w: &Weights<S>,
-    trace: &Trace<S>,
-    y: ArrayView2<S>,
-    t: &Thresholds,
-    seed: u64,
-) -> (Vec<LayerHealth>, Vec<LayerFlow>) {
-    let health = layer_health(net, trace, t.saturation, t.saturated_fraction);
-    (health, layer_flow(net, w, trace, y, seed))
 }
 
 /// A gradient whose RMS changes by `flow_orders` orders of magnitude from the output layer to the

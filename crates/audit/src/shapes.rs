@@ -56,58 +56,68 @@ pub struct LayerShapes {
     pub verdict: &'static str,
 }
 
-/// What a layer is, in its description's terms (docs/json.md: the dense audit's fields, or the
-/// graph audit's).
+/// What a layer is, in its description's terms (docs/json.md): its name and kind and one
+/// sample's shape going in and coming out; for a layer of a dense description also its fan-in,
+/// units and activation, the fields the dense audit has always reported.
 #[derive(Clone, Debug, Serialize)]
-#[serde(untagged)]
-pub enum LayerTerms {
-    /// A layer of a dense description: fan-in, units and activation.
-    Dense {
-        inputs: usize,
-        units: usize,
-        activation: String,
-    },
-    /// A layer of the graph: its name and kind, and one sample's shape going in and coming out.
-    Graph {
-        name: String,
-        kind: &'static str,
-        input: String,
-        output: String,
-    },
+pub struct LayerTerms {
+    pub name: String,
+    pub kind: &'static str,
+    pub input: String,
+    pub output: String,
+    #[serde(flatten)]
+    pub dense: Option<DenseTerms>,
+}
+
+/// A dense layer in the terms of a dense description.
+#[derive(Clone, Debug, Serialize)]
+pub struct DenseTerms {
+    pub inputs: usize,
+    pub units: usize,
+    pub activation: String,
 }
 
 impl LayerTerms {
-    /// The terms of a node of the layer graph.
-    pub fn of_node(node: &Node) -> LayerTerms {
-        LayerTerms::Graph {
+    /// The terms of a node of the layer graph; `dense` for a description of dense layers only,
+    /// whose layers are also shown as fan-in → units with their activation.
+    pub fn of_node(node: &Node, dense: bool) -> LayerTerms {
+        let (input, output) = (node.layer.input(), node.layer.output());
+        let dense = dense.then(|| DenseTerms {
+            inputs: input.size(),
+            units: output.size(),
+            activation: node.activation.to_string(),
+        });
+        LayerTerms {
             name: node.name.clone(),
             kind: node.layer.kind(),
-            input: node.layer.input().to_string(),
-            output: node.layer.output().to_string(),
+            input: input.to_string(),
+            output: output.to_string(),
+            dense,
         }
     }
 
     /// `dense relu`, `conv2d`: what the layer is.
     pub fn kind(&self) -> String {
-        match self {
-            LayerTerms::Dense { activation, .. } => format!("dense {activation}"),
-            LayerTerms::Graph { kind, .. } => kind.to_string(),
+        match &self.dense {
+            Some(d) => format!("dense {}", d.activation),
+            None => self.kind.to_string(),
         }
     }
 
     /// `4 → 3`, `(3, 8, 8) → (6, 8, 8)`.
     pub fn in_out(&self) -> String {
-        match self {
-            LayerTerms::Dense { inputs, units, .. } => format!("{inputs} → {units}"),
-            LayerTerms::Graph { input, output, .. } => format!("{input} → {output}"),
+        match &self.dense {
+            Some(d) => format!("{} → {}", d.inputs, d.units),
+            None => format!("{} → {}", self.input, self.output),
         }
     }
 
-    /// The layer's name, when the description gives one.
+    /// The layer's name beside its number, except in a dense description (its layers are
+    /// numbered, and named `layerJ` by default).
     pub fn name(&self) -> Option<&str> {
-        match self {
-            LayerTerms::Dense { .. } => None,
-            LayerTerms::Graph { name, .. } => Some(name),
+        match self.dense {
+            Some(_) => None,
+            None => Some(&self.name),
         }
     }
 }
@@ -552,10 +562,16 @@ fn build_layers(
             };
             LayerShapes {
                 layer: l + 1,
-                terms: LayerTerms::Dense {
-                    inputs: spec.inputs,
-                    units: spec.units,
-                    activation: spec.activation.to_string(),
+                terms: LayerTerms {
+                    name: format!("layer{}", l + 1),
+                    kind: "dense",
+                    input: plumb_engine::graph::Shape::Flat(spec.inputs).to_string(),
+                    output: plumb_engine::graph::Shape::Flat(spec.units).to_string(),
+                    dense: Some(DenseTerms {
+                        inputs: spec.inputs,
+                        units: spec.units,
+                        activation: spec.activation.to_string(),
+                    }),
                 },
                 parameters: spec.parameters(),
                 tensors,

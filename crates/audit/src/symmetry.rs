@@ -5,7 +5,6 @@
 //! differ, their gradients differ and training can still separate them.
 
 use ndarray::ArrayView1;
-use plumb_engine::Weights;
 
 /// A group of units of one layer with identical incoming rows.
 #[derive(Clone, Debug, PartialEq)]
@@ -17,47 +16,6 @@ pub struct SymmetricGroup {
     /// Subsets (1-based units, two or more each) whose outgoing columns in the next layer are
     /// identical as well: indistinguishable for ever. Empty for the output layer.
     pub inseparable: Vec<Vec<usize>>,
-}
-
-/// Groups of units with identical incoming rows, each split by its outgoing columns.
-pub fn symmetry(weights: &Weights<f64>, tolerance: f64) -> Vec<SymmetricGroup> {
-    let layers = weights.layers();
-    let mut out = Vec::new();
-    for (l, groups) in symmetric_groups(weights, tolerance).into_iter().enumerate() {
-        for g in groups {
-            let inseparable = match layers.get(l + 1) {
-                // Unit u of layer l is multiplied by column u + 1 of layer l + 1 (column 0: the bias).
-                Some(next) => {
-                    let cols: Vec<ArrayView1<f64>> =
-                        g.iter().map(|&u| next.column(u + 1)).collect();
-                    equal_groups(&cols, tolerance)
-                        .into_iter()
-                        .map(|sub| sub.into_iter().map(|k| g[k] + 1).collect())
-                        .collect()
-                }
-                None => Vec::new(),
-            };
-            out.push(SymmetricGroup {
-                layer: l + 1,
-                units: g.iter().map(|u| u + 1).collect(),
-                inseparable,
-            });
-        }
-    }
-    out
-}
-
-/// Groups of (0-based) units with equal incoming rows, per layer: rows i and j are equal when
-/// ‖rᵢ − rⱼ‖ ≤ tolerance · max(‖rᵢ‖, ‖rⱼ‖) (and both zero counts as equal).
-pub fn symmetric_groups(weights: &Weights<f64>, tolerance: f64) -> Vec<Vec<Vec<usize>>> {
-    weights
-        .layers()
-        .iter()
-        .map(|theta| {
-            let rows: Vec<ArrayView1<f64>> = theta.rows().into_iter().collect();
-            equal_groups(&rows, tolerance)
-        })
-        .collect()
 }
 
 /// Groups (indices into `vectors`, two or more each) of vectors equal to the relative tolerance.
@@ -174,24 +132,29 @@ mod tests {
     use super::*;
     use ndarray::array;
 
+    fn groups(m: &ndarray::Array2<f64>, tolerance: f64) -> Vec<Vec<usize>> {
+        let rows: Vec<ArrayView1<f64>> = m.rows().into_iter().collect();
+        equal_groups(&rows, tolerance)
+    }
+
     #[test]
     fn finds_equal_and_nearly_equal_rows_only() {
-        let w = Weights::new(vec![array![
+        let w = array![
             [0.1, 0.5, -0.2],
             [0.3, 0.1, 0.9],
             [0.1, 0.5, -0.2 + 1e-9],
             [0.1, 0.5, -0.21],
-        ]]);
-        assert_eq!(symmetric_groups(&w, 1e-6), vec![vec![vec![0, 2]]]);
-        assert_eq!(symmetric_groups(&w, 1e-12), vec![Vec::<Vec<usize>>::new()]);
+        ];
+        assert_eq!(groups(&w, 1e-6), vec![vec![0, 2]]);
+        assert_eq!(groups(&w, 1e-12), Vec::<Vec<usize>>::new());
         // Rows whose norm is infinite (an Inf, or squares that overflow) match nothing.
-        let w = Weights::new(vec![array![
+        let w = array![
             [f64::INFINITY, 1.0],
             [1.0, f64::INFINITY],
             [1e300, 1e300],
             [-1e300, 1e300]
-        ]]);
-        assert_eq!(symmetric_groups(&w, 1e-6), vec![Vec::<Vec<usize>>::new()]);
+        ];
+        assert_eq!(groups(&w, 1e-6), Vec::<Vec<usize>>::new());
     }
 
     /// The scan of every pair this module replaced: the definition the groups keep.
@@ -271,16 +234,26 @@ mod tests {
         }
     }
 
-    // Units 1 and 2 of layer 1 share their incoming rows; the next layer's columns 1 and 2 (after
-    // the bias column) are equal, column 3 (unit 3, also a copy) differs: 1 and 2 are inseparable,
-    // 3 only computes the same activation.
+    // Units 1, 2 and 3 of layer 1 share their incoming weights and bias; the next layer's columns
+    // 1 and 2 are equal, column 3 (unit 3) differs: 1 and 2 are inseparable, 3 only computes the
+    // same activation.
     #[test]
     fn outgoing_columns_split_a_group() {
-        let w = Weights::new(vec![
-            array![[0.1, 0.5], [0.1, 0.5], [0.1, 0.5], [0.2, -0.3]],
-            array![[0.0, 0.7, 0.7, -0.4, 0.3], [0.1, -0.2, -0.2, 0.9, 0.5]],
-        ]);
-        let groups = symmetry(&w, 1e-6);
+        use plumb_engine::Activation;
+        use plumb_engine::graph::{Dense, GraphBuilder, LossConfig, Shape};
+        let mut b = GraphBuilder::new(Shape::Flat(1), LossConfig::cross_entropy());
+        b.push(None, Activation::Tanh, |s| Dense::new(4, s))
+            .unwrap();
+        b.push(None, Activation::Softmax, |s| Dense::new(2, s))
+            .unwrap();
+        let g = b.finish().unwrap();
+        let params = [
+            array![[0.5], [0.5], [0.5], [-0.3]].into_dyn(),
+            array![0.1, 0.1, 0.1, 0.2].into_dyn(),
+            array![[0.7, 0.7, -0.4, 0.3], [-0.2, -0.2, 0.9, 0.5]].into_dyn(),
+            array![0.0, 0.1].into_dyn(),
+        ];
+        let groups = crate::graph_symmetry(&g, &params, 1e-6);
         assert_eq!(
             groups,
             vec![SymmetricGroup {

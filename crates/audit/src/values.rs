@@ -3,34 +3,10 @@
 //! tensors that are all one value, and a layer stored at a lower precision than the rest of the
 //! file (the readers widen every tensor to f64, but each keeps the dtype it was stored in).
 
-use plumb_formats::{DType, Description, Role, Tensor, TensorFile, expected_tensors};
+use plumb_formats::DType;
 use plumb_report::{Finding, Severity};
 
 use crate::Thresholds;
-
-/// Findings on the values of every tensor the layout uses.
-pub fn check_values(desc: &Description, file: &TensorFile, t: &Thresholds) -> Vec<Finding> {
-    let mut tensors = Vec::new();
-    for e in expected_tensors(desc, desc.layout) {
-        let Some(tensor) = file.get(&e.name) else {
-            continue;
-        };
-        if !tensor.dtype.is_float() {
-            continue; // the shape audit names it
-        }
-        let (weights, bias) = parts(desc, e.layer, e.role, tensor);
-        tensors.push(Values {
-            name: e.name.clone(),
-            layer: e.layer + 1,
-            shape: tensor.shape.clone(),
-            dtype: tensor.dtype,
-            data: tensor.data.clone(),
-            weights,
-            bias,
-        });
-    }
-    values_findings(&tensors, t)
-}
 
 /// One tensor's values as the checks read them: every value, and which of them are weights (all
 /// one value is a finding) and which biases (all zero is a note).
@@ -179,31 +155,6 @@ fn mixed_precision(stored: &[(String, usize, DType)]) -> Vec<Finding> {
             .figure("widest", widest.name())
         })
         .collect()
-}
-
-/// The non-bias and bias values of a layout tensor.
-fn parts(
-    desc: &Description,
-    layer: usize,
-    role: Role,
-    t: &Tensor,
-) -> (Option<Vec<f64>>, Option<Vec<f64>>) {
-    match role {
-        Role::Weight => (Some(t.data.clone()), None),
-        Role::Bias => (None, Some(t.data.clone())),
-        Role::Augmented => {
-            let cols = desc.network.layers()[layer].inputs + 1;
-            let (mut w, mut b) = (Vec::new(), Vec::new());
-            for (k, v) in t.data.iter().enumerate() {
-                if k % cols == 0 {
-                    b.push(*v)
-                } else {
-                    w.push(*v)
-                }
-            }
-            (Some(w), Some(b))
-        }
-    }
 }
 
 /// Whether the tensor's values, with each one's bytes reversed, would all be plausible.

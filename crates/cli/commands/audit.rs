@@ -1,24 +1,21 @@
-//! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file, on the dense engine
-//! for dense descriptions and on the layer graph for any other kind.
+//! `plumb audit NET -w W [-d PROBE]`: the release audit of a weight file, on the layer graph for
+//! a description of any kind.
 
 use std::path::Path;
 
 use anyhow::{Result, anyhow, bail};
-use plumb_audit::{Audit, AuditShapes, KindThresholds, Thresholds, audit, audit_graph_file};
+use plumb_audit::{Audit, KindThresholds, Thresholds, audit_graph_file};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_formats::{
-    AnyDescription, AxisOrder, Description, GraphDescription, TensorFile, assemble, bind,
-    read_tensors,
-};
+use plumb_formats::{AnyDescription, AxisOrder, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
-use crate::args::{AuditArgs, FailOn, Inputs};
+use crate::args::{AuditArgs, FailOn};
 use crate::commands::check::plot;
 use crate::commands::shapes;
-use crate::inputs::{DataSource, init_scheme, load_batch};
-use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id};
+use crate::inputs::{DataSource, init_scheme};
+use crate::output::{SCHEMA_VERSION, Settings, any_network_id};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -106,63 +103,12 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             FailOn::Error => Severity::Error,
         },
     };
-    let desc = match AnyDescription::read(&args.net)? {
-        AnyDescription::Dense(desc, _) => desc,
-        AnyDescription::Graph(desc) => return run_graph(args, settings, desc, &t),
+    let any = AnyDescription::read(&args.net)?;
+    let network = any_network_id(&any);
+    let desc = match any {
+        AnyDescription::Dense(_, g) => *g,
+        AnyDescription::Graph(g) => g,
     };
-    let file = read_tensors(&args.weights)?;
-    let inputs = Inputs {
-        net: args.net.clone(),
-        weights: None,
-        data: args.data.clone(),
-        init: crate::args::InitArg::GlorotUniform,
-        batch: Some(args.batch),
-        channels_last: false,
-    };
-    let (batch, data) = load_batch(&inputs, &desc, settings.seed, args.batch)?;
-    let claimed = args.init.map(init_scheme);
-    let result = audit(&desc, &file, &batch, claimed, &t, settings.seed);
-    if !result.shapes.fits_any() {
-        return Err(foreign(args, &file));
-    }
-    let level = t.fail_on;
-    let report = AuditReport {
-        verdict: result.verdict,
-        schema_version: SCHEMA_VERSION,
-        command: "audit",
-        description: &args.net,
-        weights: &args.weights,
-        data,
-        fail_on: level.name(),
-        claimed_init: claimed.map(|c| c.name()),
-        thresholds: &t,
-        kind_thresholds: None,
-        audit: &result,
-    };
-    let AuditShapes::Dense(shape_audit) = &result.shapes else {
-        unreachable!("the dense audit's shapes are dense")
-    };
-    let mut sd = shapes::document(&desc, &args.net, Some((&args.weights, &file)), shape_audit);
-    sd.blocks.retain(|b| matches!(b, Block::Table(_)));
-    let mut doc = document(&report, &file, &args.weights, sd.blocks);
-    doc.command = "audit".into();
-    doc.network = Some(network_id(&desc));
-    doc.fail_on = level;
-    doc.cases = cases(&result);
-    if settings.html.is_some() {
-        crate::commands::check::insert_before_findings(&mut doc, plots(&result, &desc, &file));
-    }
-    settings.emit(&report, doc)
-}
-
-/// The audit of a description of another kind than dense, on the layer graph: the weights
-/// through the file tensors, the probe data through the graph's data reader (or a seeded batch).
-fn run_graph(
-    args: &AuditArgs,
-    settings: &Settings,
-    desc: GraphDescription,
-    t: &Thresholds,
-) -> Result<Verdict> {
     let file = read_tensors(&args.weights)?;
     let order = if args.channels_last {
         AxisOrder::ChannelsLast
@@ -192,7 +138,7 @@ fn run_graph(
         &args.weights,
         &probe.batch,
         claimed,
-        t,
+        &t,
         &k,
         settings.seed,
     )
@@ -200,9 +146,7 @@ fn run_graph(
     if !result.shapes.fits_any() {
         return Err(foreign(args, &file));
     }
-    let AuditShapes::Graph(shape_audit) = &result.shapes else {
-        unreachable!("the graph audit's shapes are the graph's")
-    };
+    let shape_audit = &result.shapes;
     let report = AuditReport {
         verdict: result.verdict,
         schema_version: SCHEMA_VERSION,
@@ -212,19 +156,19 @@ fn run_graph(
         data: probe.data_source.clone(),
         fail_on: t.fail_on.name(),
         claimed_init: claimed.map(|c| c.name()),
-        thresholds: t,
-        kind_thresholds: Some(&k),
+        thresholds: &t,
+        kind_thresholds: (!desc.is_dense()).then_some(&k),
         audit: &result,
     };
     let mut sd = shapes::graph_document(desc, &args.net, Some((&args.weights, &file)), shape_audit);
     sd.blocks.retain(|b| matches!(b, Block::Table(_)));
     let mut doc = document(&report, &file, &args.weights, sd.blocks);
     doc.command = "audit".into();
-    doc.network = Some(graph_network_id(desc));
+    doc.network = Some(network);
     doc.fail_on = t.fail_on;
     doc.cases = cases(&result);
     if settings.html.is_some() {
-        crate::commands::check::insert_before_findings(&mut doc, health_plot(&result));
+        crate::commands::check::insert_before_findings(&mut doc, plots(&result, desc, &file));
     }
     settings.emit(&report, doc)
 }
@@ -248,7 +192,7 @@ fn foreign(args: &AuditArgs, file: &TensorFile) -> anyhow::Error {
 /// The shape cases, then the audit's own (one per layer's tensor, one for the network).
 pub fn cases(a: &Audit) -> Vec<Case> {
     let s = &a.shapes;
-    let mut out = shapes::tensor_cases(s.tensors(), s.unexpected(), s.findings());
+    let mut out = shapes::tensor_cases(s.tensors(), &s.unexpected, &s.findings);
     out.extend(a.cases());
     out
 }
@@ -279,19 +223,22 @@ fn health_plot(a: &Audit) -> Vec<Block> {
     out
 }
 
-/// The audit's pictures: unit health as a heatmap, each layer's weights against its scheme's density.
-pub fn plots(a: &Audit, desc: &Description, file: &plumb_formats::TensorFile) -> Vec<Block> {
+/// The audit's pictures: unit health as a heatmap, each weight tensor against its scheme's
+/// density (a dense layer's weights without the bias).
+pub fn plots(a: &Audit, desc: &GraphDescription, file: &TensorFile) -> Vec<Block> {
     let mut out = health_plot(a);
-    let Ok(weights) = assemble(desc, &bind(desc, file), &desc.path) else {
+    if a.init.is_empty() {
+        return out;
+    }
+    let Ok(params) = desc.read_params(file, &desc.path) else {
         return out;
     };
-    for (l, i) in a.init.iter().enumerate() {
-        let values: Vec<f64> = weights
-            .layer(l)
-            .slice(ndarray::s![.., 1..])
-            .iter()
-            .copied()
-            .collect();
+    for i in &a.init {
+        // The init row names the file tensor; its graph weight is the first tensor it holds.
+        let Some(f) = desc.files.iter().find(|f| f.name == i.tensor) else {
+            continue;
+        };
+        let values: Vec<f64> = params[f.tensors[0]].iter().copied().collect();
         let scheme = i
             .test
             .as_ref()

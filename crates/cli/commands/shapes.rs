@@ -1,24 +1,22 @@
-//! `plumb shapes NET [--weights W]`: the dimension audit, of a dense description or of any kind.
+//! `plumb shapes NET [--weights W]`: the dimension audit of a description of any kind.
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use plumb_audit::{
-    GraphShapeAudit, LayerShapes, ShapeAudit, Status, StrayTensor, TensorShape, audit_graph_shapes,
-    audit_shapes,
+    GraphShapeAudit, LayerShapes, Status, StrayTensor, TensorShape, audit_graph_shapes,
 };
-use plumb_formats::{AnyDescription, Description, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{AnyDescription, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ShapesArgs;
-use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, shape};
+use crate::output::{SCHEMA_VERSION, Settings, any_network_id, shape};
 
-/// The JSON report of `plumb shapes` (docs/json.md): the dense audit, or the graph audit for a
-/// description of other kinds.
+/// The JSON report of `plumb shapes` (docs/json.md).
 #[derive(Serialize)]
-pub struct ShapesReport<'a, A: Serialize = ShapeAudit> {
+pub struct ShapesReport<'a, A: Serialize = GraphShapeAudit> {
     pub verdict: Verdict,
     pub schema_version: u32,
     pub command: &'static str,
@@ -29,37 +27,8 @@ pub struct ShapesReport<'a, A: Serialize = ShapeAudit> {
 }
 
 pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
-    let desc = match AnyDescription::read(&args.net)? {
-        AnyDescription::Dense(desc, _) => desc,
-        AnyDescription::Graph(desc) => return run_graph(args, settings, &desc),
-    };
-    let file = args.weights.as_deref().map(read_tensors).transpose()?;
-    let audit = audit_shapes(&desc, file.as_ref());
-    let report = ShapesReport {
-        verdict: audit.verdict,
-        schema_version: SCHEMA_VERSION,
-        command: "shapes",
-        description: &args.net,
-        weights: args.weights.as_deref(),
-        audit: &audit,
-    };
-    let doc = document(
-        &desc,
-        &args.net,
-        args.weights.as_ref().zip(file.as_ref()),
-        &audit,
-    );
-    let mut doc = doc;
-    doc.command = "shapes".into();
-    doc.network = Some(network_id(&desc));
-    if file.is_some() {
-        doc.cases = cases(&audit);
-    }
-    settings.emit(&report, doc)
-}
-
-/// The graph dimension audit of a description of any kind.
-fn run_graph(args: &ShapesArgs, settings: &Settings, desc: &GraphDescription) -> Result<Verdict> {
+    let any = AnyDescription::read(&args.net)?;
+    let desc = any.graph();
     let file = args.weights.as_deref().map(read_tensors).transpose()?;
     let audit = audit_graph_shapes(desc, file.as_ref());
     let report = ShapesReport {
@@ -73,18 +42,12 @@ fn run_graph(args: &ShapesArgs, settings: &Settings, desc: &GraphDescription) ->
     let weights = args.weights.as_ref().zip(file.as_ref());
     let mut doc = graph_document(desc, &args.net, weights, &audit);
     doc.command = "shapes".into();
-    doc.network = Some(graph_network_id(desc));
+    doc.network = Some(any_network_id(&any));
     if file.is_some() {
         let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
         doc.cases = tensor_cases(tensors, &audit.unexpected, &audit.findings);
     }
     settings.emit(&report, doc)
-}
-
-/// One case per tensor the layout expects, and per stray tensor.
-pub fn cases(audit: &ShapeAudit) -> Vec<Case> {
-    let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
-    tensor_cases(tensors, &audit.unexpected, &audit.findings)
 }
 
 /// One case per expected tensor and per stray tensor, failed by the tensor's error finding.
@@ -333,9 +296,18 @@ pub fn graph_document(
     audit: &GraphShapeAudit,
 ) -> Document {
     let mut doc = Document::new("plumb shapes — dimension audit");
-    let facts = vec![
-        ("description".to_string(), net.display().to_string()),
-        (
+    let dense = desc.is_dense();
+    let mut facts = vec![("description".to_string(), net.display().to_string())];
+    if dense {
+        // A dense network reads as its sizes, and its weight file as a layout.
+        let sizes: Vec<String> = std::iter::once(desc.graph.input().size())
+            .chain(desc.graph.nodes().iter().map(|n| n.layer.output().size()))
+            .map(|n| n.to_string())
+            .collect();
+        facts.push(("network".to_string(), sizes.join(" → ")));
+        facts.push(("layout".to_string(), desc.layout.to_string()));
+    } else {
+        facts.push((
             "network".to_string(),
             format!(
                 "{} → {} ({} layers)",
@@ -343,9 +315,12 @@ pub fn graph_document(
                 desc.graph.output(),
                 audit.layers.len()
             ),
-        ),
-        weights_fact(weights),
-    ];
+        ));
+    }
+    facts.push(weights_fact(weights));
+    if let Some(l) = audit.detected_layout {
+        facts.push(("file's layout".to_string(), l.to_string()));
+    }
     doc.push(Block::Facts(facts));
     let storage: HashMap<&str, &str> = desc
         .files
@@ -356,47 +331,7 @@ pub fn graph_document(
         &audit.layers,
         &audit.unexpected,
         audit.total_parameters,
-        Some(&storage),
-    );
-    doc.push(Block::Table(t));
-    closing(
-        &mut doc,
-        weights.is_some(),
-        &audit.findings,
-        audit.verdict,
-        audit.total_parameters,
-    );
-    doc
-}
-
-/// The human form of the audit.
-pub fn document(
-    desc: &Description,
-    net: &Path,
-    weights: Option<(&PathBuf, &TensorFile)>,
-    audit: &ShapeAudit,
-) -> Document {
-    let mut doc = Document::new("plumb shapes — dimension audit");
-    let sizes: Vec<String> = std::iter::once(desc.inputs())
-        .chain(desc.network.layers().iter().map(|l| l.units))
-        .map(|n| n.to_string())
-        .collect();
-    let mut facts = vec![
-        ("description".to_string(), net.display().to_string()),
-        ("network".to_string(), sizes.join(" → ")),
-        ("layout".to_string(), desc.layout.to_string()),
-    ];
-    facts.push(weights_fact(weights));
-    if let Some(l) = audit.detected_layout {
-        facts.push(("file's layout".to_string(), l.to_string()));
-    }
-    doc.push(Block::Facts(facts));
-
-    let t = layers_table(
-        &audit.layers,
-        &audit.unexpected,
-        audit.total_parameters,
-        None,
+        (!dense).then_some(&storage),
     );
     doc.push(Block::Table(t));
     closing(

@@ -15,7 +15,7 @@ mod vibration;
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use plumb_audit::{Thresholds, audit_shapes};
+use plumb_audit::{KindThresholds, Thresholds, audit_graph_file, audit_graph_shapes};
 use plumb_diagnose::Tolerances;
 use plumb_diagnose::report::judge_graph_gradient;
 use plumb_engine::Regularization;
@@ -240,8 +240,10 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             })
             .collect(),
     };
-    let audit_good = audit_shapes(desc, Some(&good));
-    let audit_planted = audit_shapes(desc, Some(&planted));
+    // The shapes and the release audit run on the layer graph, as `plumb shapes` and `audit` do.
+    let graph_desc = GraphDescription::parse(&net_path, pump::DESCRIPTION)?;
+    let audit_good = audit_graph_shapes(&graph_desc, Some(&good));
+    let audit_planted = audit_graph_shapes(&graph_desc, Some(&planted));
 
     let loaded = Loaded {
         desc: desc.clone(),
@@ -301,14 +303,17 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         false,
         settings,
     );
-    let shipped = plumb_audit::audit(
-        desc,
+    let shipped = audit_graph_file(
+        &graph_desc,
         &good,
+        &weights_path,
         &pump.batch,
         None,
         &Thresholds::default(),
+        &KindThresholds::default(),
         settings.seed,
-    );
+    )
+    .context("the demo's release audit")?;
 
     // Scenarios (b) and (c), on the layer graph; only (c) shows the release audit.
     let mut vib = vibration::scenario(settings.seed).run(false, settings.seed)?;
@@ -408,7 +413,12 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     push_all(
         &mut doc,
-        shapes::document(desc, &net_path, Some((&weights_path, &good)), &audit_good),
+        shapes::graph_document(
+            &graph_desc,
+            &net_path,
+            Some((&weights_path, &good)),
+            &audit_good,
+        ),
     );
 
     doc.push(Block::Heading(
@@ -422,8 +432,8 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     push_all(
         &mut doc,
-        shapes::document(
-            desc,
+        shapes::graph_document(
+            &graph_desc,
             &net_path,
             Some((&planted_path, &planted)),
             &audit_planted,
@@ -500,7 +510,8 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     for b in shipped.sections() {
         doc.push(b);
     }
-    doc.blocks.extend(audit::plots(&shipped, desc, &good));
+    doc.blocks
+        .extend(audit::plots(&shipped, &graph_desc, &good));
     doc.push(Block::Findings(shipped.findings.clone()));
 
     doc.push(Block::Heading(

@@ -1,6 +1,6 @@
 //! The release audit on the layer graph: each finding raised on a network built to have it and
-//! absent on a healthy one, and a dense graph's audit against today's dense audit on the same
-//! weights. Thresholds are plumb's defaults (docs/audit.md).
+//! absent on a healthy one, and a dense description's weight file audited as `plumb audit` reads
+//! it, in both layouts, against the audit of the same parameters. Thresholds are plumb's defaults (docs/audit.md).
 
 use crate::graph_common;
 
@@ -9,13 +9,15 @@ use std::path::Path;
 use graph_common::{alarms, has, healthy, probe, run};
 
 use ndarray::{ArrayD, IxDyn};
-use plumb_audit::{GraphWeights, KindThresholds, Thresholds, audit, audit_graph, fitted_shapes};
+use plumb_audit::{
+    GraphWeights, KindThresholds, Thresholds, audit_graph, audit_graph_file, fitted_shapes,
+};
 use plumb_engine::graph::{
     BatchNorm, Conv, ConvSettings, Dense, Flatten, Graph, GraphBuilder, LayerNorm, LossConfig,
     Shape,
 };
 use plumb_engine::{Activation, Init};
-use plumb_formats::{DType, Description, FileFormat, Tensor, TensorFile};
+use plumb_formats::{DType, FileFormat, GraphDescription, TensorFile};
 use plumb_report::Severity;
 
 /// conv1d (3 → 4 channels, kernel 3) with `act`, flatten, dense softmax over 3 classes.
@@ -340,30 +342,24 @@ units = 3
 activation = "softmax"
 "#;
 
-// The same weights through today's dense audit and the graph's: the same findings (codes,
-// severities, tensors, layers, figures and messages), the same unit health, initialisation and
-// flow figures. Planted: a dead unit, two units with identical rows and next-layer columns, a
-// saturated tanh unit, a zero bias.
+// A dense description's file audited through `audit_graph_file` (as `plumb audit` runs it) against
+// `audit_graph` on the same parameters: the same findings (codes, severities, layers, figures and
+// messages), the same unit health, initialisation and flow; findings name the file's tensors, the
+// graph's under the split layout and the augmented matrix `layerJ` under the augmented one. The
+// audit's figures come from plumb's own passes; what is checked here is that the file path and
+// the parameter path agree and name the tensors the file holds. Planted: a dead unit, two units
+// with identical rows and next-layer columns, a saturated tanh unit, a zero bias.
 #[test]
-fn a_dense_graph_audit_agrees_with_the_dense_audit() {
-    let desc = Description::parse(Path::new("net.toml"), DENSE).unwrap();
-    let mut b = GraphBuilder::new(
-        Shape::Flat(6),
-        LossConfig {
-            l2: 0.01,
-            ..LossConfig::cross_entropy()
-        },
-    );
-    for (units, act) in [
-        (8, Activation::Relu),
-        (5, Activation::Tanh),
-        (3, Activation::Softmax),
-    ] {
-        b.push(None, act, |s| Dense::new(units, s)).unwrap();
-    }
-    let g = b.finish().unwrap();
+fn a_dense_file_audit_agrees_with_the_graph_audit_and_names_the_file_tensors() {
+    let split = GraphDescription::parse(Path::new("net.toml"), DENSE).unwrap();
+    let augmented = GraphDescription::parse(
+        Path::new("net.toml"),
+        &DENSE.replace("layout = \"split\"", "layout = \"augmented\""),
+    )
+    .unwrap();
+    let g = &split.graph;
     for variant in 0..3 {
-        let mut p = healthy(&g, 20 + variant);
+        let mut p = healthy(g, 20 + variant);
         if variant > 0 {
             // Layer 1 unit 3 dead; units 5 and 6 alike, read alike by layer 2.
             p[0].slice_mut(ndarray::s![2, ..]).fill(0.0);
@@ -384,30 +380,15 @@ fn a_dense_graph_audit_agrees_with_the_dense_audit() {
                 p[1][[u]] = -50.0;
             }
         }
-        let file = TensorFile {
-            format: FileFormat::Npz,
-            tensors: g
-                .tensors()
-                .iter()
-                .zip(&p)
-                .map(|(t, v)| Tensor {
-                    name: t.name.clone(),
-                    shape: v.shape().to_vec(),
-                    dtype: DType::F64,
-                    data: v.iter().copied().collect(),
-                })
-                .collect(),
-        };
-        let batch = probe(&g, 100, 30 + variant);
+        let batch = probe(g, 100, 30 + variant);
         let t = Thresholds::default();
-        let dense = audit(&desc, &file, &batch, Some(Init::HeNormal), &t, 5);
+        let k = KindThresholds::default();
         let dtypes = vec![DType::F64; p.len()];
         let w = GraphWeights {
-            graph: &g,
+            graph: g,
             params: &p,
             dtypes: &dtypes,
         };
-        let k = KindThresholds::default();
         let graph = audit_graph(
             &w,
             fitted_shapes(&w),
@@ -427,28 +408,61 @@ fn a_dense_graph_audit_agrees_with_the_dense_audit() {
                 "dead-layer"
             };
             for code in [dead, "symmetric-units", "saturated-unit", "zero-bias"] {
-                assert!(has(&dense, code), "variant {variant}: {code} planted");
+                assert!(has(&graph, code), "variant {variant}: {code} planted");
             }
+            assert!(!has(&graph, "duplicate-units"), "variant {variant}");
         }
-        assert_eq!(dense.findings, graph.findings, "variant {variant}");
-        assert_eq!(dense.health.len(), graph.health.len());
-        for (d, h) in dense.health.iter().zip(&graph.health) {
-            assert_eq!(d.fractions, h.fractions);
-            assert_eq!(d.flagged, h.flagged);
-            assert_eq!(d.histogram, h.histogram);
-        }
-        assert_eq!(dense.init.len(), graph.init.len());
-        for (d, h) in dense.init.iter().zip(&graph.init) {
-            assert_eq!((d.fan_in, d.fan_out, d.std), (h.fan_in, h.fan_out, h.std));
-            let (dt, ht) = (d.test.as_ref().unwrap(), h.test.as_ref().unwrap());
-            assert_eq!(dt.adjusted_p_value, ht.adjusted_p_value);
-        }
-        assert_eq!(dense.flow.len(), graph.flow.len());
-        for (d, h) in dense.flow.iter().zip(&graph.flow) {
-            let close = |a: f64, b: f64| (a - b).abs() <= 1e-12 * a.abs().max(b.abs());
-            assert!(close(d.activation_std, h.activation_std));
-            assert!(close(d.gradient_norm, h.gradient_norm), "{d:?} {h:?}");
-            assert!(close(d.sigma_max, h.sigma_max), "{d:?} {h:?}");
+        for (desc, file_name) in [
+            (&split, None),
+            (
+                &augmented,
+                Some(|t: &str| t.split('.').next().unwrap().to_string()),
+            ),
+        ] {
+            let file = TensorFile {
+                format: FileFormat::Npz,
+                tensors: desc.to_file(&p).unwrap(),
+            };
+            let read = audit_graph_file(
+                desc,
+                &file,
+                Path::new("w.npz"),
+                &batch,
+                Some(Init::HeNormal),
+                &t,
+                &k,
+                5,
+            )
+            .unwrap();
+            let mut want = graph.findings.clone();
+            if let Some(rename) = file_name {
+                for f in &mut want {
+                    f.tensor = f.tensor.as_deref().map(rename);
+                }
+                for f in &read.findings {
+                    let t = f.tensor.as_deref().unwrap_or("layer1");
+                    assert!(["layer1", "layer2", "layer3"].contains(&t), "{f:?}");
+                }
+            }
+            assert_eq!(read.findings, want, "variant {variant}");
+            assert_eq!(read.health.len(), graph.health.len());
+            for (d, h) in read.health.iter().zip(&graph.health) {
+                assert_eq!(d.fractions, h.fractions);
+                assert_eq!(d.flagged, h.flagged);
+                assert_eq!(d.histogram, h.histogram);
+            }
+            assert_eq!(read.init.len(), graph.init.len());
+            for (d, h) in read.init.iter().zip(&graph.init) {
+                assert_eq!((d.fan_in, d.fan_out, d.std), (h.fan_in, h.fan_out, h.std));
+                let (dt, ht) = (d.test.as_ref().unwrap(), h.test.as_ref().unwrap());
+                assert_eq!(dt.adjusted_p_value, ht.adjusted_p_value);
+            }
+            assert_eq!(read.flow.len(), graph.flow.len());
+            for (d, h) in read.flow.iter().zip(&graph.flow) {
+                assert_eq!(d.activation_std, h.activation_std);
+                assert_eq!(d.gradient_norm, h.gradient_norm);
+                assert_eq!(d.sigma_max, h.sigma_max);
+            }
         }
     }
 }

@@ -2,7 +2,7 @@
 
 use std::path::Path;
 
-use plumb_audit::{Thresholds, audit, audit_shapes};
+use plumb_audit::{KindThresholds, Thresholds, audit_graph_file, audit_graph_shapes};
 use plumb_engine::{Batch, Rng};
 use plumb_formats::{DType, Description, FileFormat, GraphDescription, Tensor, TensorFile};
 
@@ -16,7 +16,7 @@ fn shapes_of_a_file_with_100000_tensors_are_audited_in_near_linear_time() {
     for _ in 0..2_000 {
         text.push_str("[[layer]]\nunits = 1\nactivation = \"tanh\"\n");
     }
-    let desc = Description::parse(Path::new("deep.toml"), &text).unwrap();
+    let desc = GraphDescription::parse(Path::new("deep.toml"), &text).unwrap();
     assert_eq!(desc.layers.len(), 2_000);
     let tensors = (0..100_000)
         .map(|i| Tensor {
@@ -30,7 +30,7 @@ fn shapes_of_a_file_with_100000_tensors_are_audited_in_near_linear_time() {
         format: FileFormat::Safetensors,
         tensors,
     };
-    let audit = audit_shapes(&desc, Some(&file));
+    let audit = audit_graph_shapes(&desc, Some(&file));
     assert_eq!(audit.unexpected.len(), 100_000);
     assert_eq!(audit.layers.len(), 2_000);
 }
@@ -64,7 +64,7 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
     for _ in 0..2_000 {
         text.push_str("[[layer]]\nunits = 1\nactivation = \"tanh\"\n");
     }
-    let desc = Description::parse(Path::new("deep.toml"), &text).unwrap();
+    let desc = GraphDescription::parse(Path::new("deep.toml"), &text).unwrap();
     let mut rng = Rng::new(3);
     let mut tensors: Vec<Tensor> = (1..=2_000)
         .map(|j| Tensor {
@@ -84,12 +84,24 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
         format: FileFormat::Npz,
         tensors,
     };
-    let batch = Batch::synthetic(&desc.network, 8, 1);
-    let audit = audit(&desc, &file, &batch, None, &Thresholds::default(), 1);
+    let batch = Batch::graph_synthetic(&desc.graph, 8, 1);
+    let audit = audit_graph_file(
+        &desc,
+        &file,
+        Path::new("deep.npz"),
+        &batch,
+        None,
+        &Thresholds::default(),
+        &KindThresholds::default(),
+        1,
+    )
+    .unwrap();
     assert!(audit.init.is_empty());
     assert_eq!(
         audit.skipped,
-        ["symmetry, unit health, initialisation and flow: the tensors do not fit the description"]
+        [
+            "duplicates, unit health, the layers' inside measures, initialisation and flow: the tensors do not fit the description"
+        ]
     );
     let strays = audit
         .findings

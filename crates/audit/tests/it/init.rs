@@ -1,25 +1,20 @@
 //! The initialisation tests against the published scales (Glorot & Bengio 2010,
 //! He et al. 2015, LeCun et al. 1998), through the Kolmogorov–Smirnov test (NR §14.3).
 
-use plumb_audit::{ks_test, layer_init, q_ks, scheme_cdf};
-use plumb_engine::{Activation, Init, LayerSpec, Loss, Network, Rng};
+use std::path::Path;
+
+use plumb_audit::{ks_test, q_ks, scheme_cdf, tensor_init};
+use plumb_engine::{Init, Rng};
+use plumb_formats::GraphDescription;
 
 /// A layer with fan-in 40 and fan-out 400: Glorot σ = √(2/440) ≈ 0.067, He σ = √(2/40) ≈ 0.224,
 /// LeCun σ = √(1/40) ≈ 0.158 — Glorot is more than 2× from the other two.
 fn draw(scheme: Init, seed: u64) -> Vec<f64> {
-    let net = Network::new(
-        40,
-        &[(400, Activation::Relu), (2, Activation::Softmax)],
-        Loss::CrossEntropy,
-        0.0,
-    )
-    .unwrap();
-    let w = scheme.weights(&net, &mut Rng::new(seed));
-    w.layer(0)
-        .slice(ndarray::s![.., 1..])
-        .iter()
-        .copied()
-        .collect()
+    let text = "inputs = 40\nloss = \"cross-entropy\"\n[[layer]]\nunits = 400\nactivation = \"relu\"\n[[layer]]\nunits = 2\nactivation = \"softmax\"\n";
+    let desc = GraphDescription::parse(Path::new("draw.toml"), text).unwrap();
+    let params = scheme.graph_params(&desc.graph, &mut Rng::new(seed));
+    // Layer 1's weight, 400 × 40, without its bias.
+    params[0].iter().copied().collect()
 }
 
 fn p(values: &[f64], scheme: Init) -> f64 {
@@ -113,12 +108,8 @@ fn schemes_whose_scales_differ_by_2x_or_more_are_rejected() {
 fn the_closest_scheme_is_named() {
     for scheme in Init::ALL {
         let v = draw(scheme, 9);
-        let spec = LayerSpec {
-            inputs: 40,
-            units: 400,
-            activation: Activation::Relu,
-        };
-        let li = layer_init(1, "layer1", &v, &spec, None, 0.01);
+        // Fan-in 40, fan-out 400, ReLU units (He's scale is the reference).
+        let li = tensor_init(1, "layer1", &v, (40, 400), true, None, 0.01);
         // Uniform and normal draws of one family share σ; the kurtosis tells them apart.
         assert_eq!(li.closest, scheme.name(), "{scheme}");
         assert!((li.ratio - 1.0).abs() < 0.02, "{scheme}: {}", li.ratio);

@@ -2,9 +2,12 @@
 //! fixtures/data/iris.csv), standardised, through a He-initialised 4-16-16-3 ReLU network. The dead and inactive fractions
 //! the audit reports must be those a direct count over the engine's activations gives.
 
+use std::path::Path;
+
 use ndarray::Array2;
-use plumb_audit::layer_health;
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_audit::{GraphWeights, KindThresholds, Thresholds, audit_graph, fitted_shapes};
+use plumb_engine::{Batch, Init, Rng};
+use plumb_formats::{DType, GraphDescription};
 
 /// fixtures/data/iris.csv (its provenance is in fixtures/data/README.md): four measurements, then
 /// the species 0–2.
@@ -33,26 +36,34 @@ fn iris() -> Batch {
 
 #[test]
 fn reported_dead_fractions_match_a_direct_count() {
-    let net = Network::new(
-        4,
-        &[
-            (16, Activation::Relu),
-            (16, Activation::Relu),
-            (3, Activation::Softmax),
-        ],
-        Loss::CrossEntropy,
-        0.0,
-    )
-    .unwrap();
+    let text = "inputs = 4\nloss = \"cross-entropy\"\n[[layer]]\nunits = 16\nactivation = \"relu\"\n[[layer]]\nunits = 16\nactivation = \"relu\"\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n";
+    let desc = GraphDescription::parse(Path::new("iris.toml"), text).unwrap();
+    let g = &desc.graph;
     let batch = iris();
     let mut saw_dead = false;
     for seed in 0..10 {
-        let w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
-        let trace = net.forward(&w, batch.x.view());
-        let health = layer_health(&net, &trace, 0.01, 0.99);
+        let params = Init::HeNormal.graph_params(g, &mut Rng::new(seed));
+        let dtypes = vec![DType::F64; params.len()];
+        let w = GraphWeights {
+            graph: g,
+            params: &params,
+            dtypes: &dtypes,
+        };
+        let audit = audit_graph(
+            &w,
+            fitted_shapes(&w),
+            &batch,
+            None,
+            &Thresholds::default(),
+            &KindThresholds::default(),
+            1,
+        )
+        .unwrap();
+        let trace = g.forward(&params, batch.x.view());
+        let health = &audit.health;
         assert_eq!(health.len(), 2);
-        for h in &health {
-            let a = &trace.a[h.layer];
+        for h in health {
+            let a = &trace.outputs[h.layer - 1];
             for u in 0..16 {
                 let zero = a.column(u).iter().filter(|&&v| v == 0.0).count();
                 assert_eq!(
