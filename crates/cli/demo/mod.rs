@@ -20,7 +20,8 @@ use plumb_diagnose::Tolerances;
 use plumb_engine::{Regularization, Variant};
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
-    DType, Existing, FileFormat, Tensor, TensorFile, disassemble, write_file, write_tensor_file,
+    DType, Existing, FileFormat, GraphDescription, Tensor, TensorFile, disassemble, write_file,
+    write_tensor_file,
 };
 use plumb_report::{Block, Case, Document, Verdict};
 use serde::Serialize;
@@ -33,7 +34,7 @@ use crate::commands::{audit, compare, probe};
 use crate::inputs::{DataSource, Loaded, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
 use layered::{Outcome, ScenarioReport};
-use plumb_fd::report::CheckReport;
+use plumb_fd::report::{GraphCheckReport, GraphLoaded, graph_check_report};
 
 pub use pump::Pump;
 
@@ -177,7 +178,7 @@ struct DemoReport<'a> {
     shapes: ShapesReport<'a>,
     shapes_planted: ShapesReport<'a>,
     grad: &'a GradReport,
-    check: &'a CheckReport,
+    check: &'a GraphCheckReport,
     planted: PlantedReport<'a>,
     audit: &'a plumb_audit::Audit,
     /// The NumPy example probed with the same bug, when it could be run.
@@ -253,8 +254,19 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         },
     };
     let computed = grad::compute(&loaded);
-    let checked = check::compute(
-        &loaded,
+    // The check runs on the description's layer graph, as `plumb check` does.
+    let on_graph = GraphLoaded::from_dense(
+        Loaded {
+            desc: desc.clone(),
+            weights: loaded.weights.clone(),
+            weights_source: loaded.weights_source.clone(),
+            batch: loaded.batch.clone(),
+            data_source: loaded.data_source.clone(),
+        },
+        GraphDescription::parse(&desc.path, &desc.to_toml(""))?,
+    );
+    let checked = graph_check_report(
+        &on_graph,
         &CheckConfig::new(Method::Central, Precision::F64),
         3,
         &|_, _| {},
@@ -427,10 +439,19 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     push_all(
         &mut doc,
-        check::document(&checked, Block::Table(check::worst_table(&checked.worst))),
+        check::document(
+            &checked,
+            Block::Table(check::graph_worst_table(&checked.worst)),
+        ),
     );
+    doc.blocks.extend(check::strip_plot(
+        "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
+        &checked.rel_errors,
+        checked.tolerance,
+        &checked.precision,
+    ));
     doc.blocks
-        .extend(check::plots(&checked, &loaded, Precision::F64));
+        .extend(check::v_curves(&checked, &on_graph, Precision::F64));
 
     doc.push(Block::Heading(
         "6. A hand-written gradient with a bug".into(),

@@ -6,6 +6,7 @@
 use std::path::{Path, PathBuf};
 
 use ndarray::ArrayD;
+use plumb_engine::graph::Dense;
 use plumb_engine::{Batch, Init, Loss, Rng};
 use plumb_formats::{
     AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
@@ -156,6 +157,28 @@ impl GraphLoaded {
             data_source,
             order,
         })
+    }
+}
+
+impl GraphLoaded {
+    /// A dense description's run on its layer graph (`AnyDescription::Dense` carries both): the
+    /// same weights, each augmented matrix split into the graph's weight and bias, and the same
+    /// batch, sources and messages as the dense loading gave.
+    pub fn from_dense(loaded: super::Loaded, desc: GraphDescription) -> GraphLoaded {
+        let mut params = Vec::with_capacity(2 * loaded.weights.layers().len());
+        for matrix in loaded.weights.layers() {
+            let (w, b) = Dense::split(matrix);
+            params.push(w.into_dyn());
+            params.push(b.into_dyn());
+        }
+        GraphLoaded {
+            desc,
+            params,
+            weights_source: loaded.weights_source,
+            batch: loaded.batch,
+            data_source: loaded.data_source,
+            order: AxisOrder::ChannelsFirst,
+        }
     }
 }
 
