@@ -29,7 +29,9 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
             (desc, id)
         }
     };
-    let report = Shards::<GraphPlace>::parse(&files)?.merge_graph(&desc, args.worst)?;
+    // The network's identity as its check wrote it (a dense description's: its dense hash).
+    let hash = network.hash.clone();
+    let report = Shards::<GraphPlace>::parse(&files)?.merge_with_hash(&desc, hash, args.worst)?;
     // The strip of every coordinate; the V-curve needs the weights and data, which a merge does
     // not load (run `plumb sweep` on the worst coordinates for it).
     let doc = graph_document(&report, network, settings);

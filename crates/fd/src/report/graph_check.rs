@@ -2,9 +2,9 @@
 //! tensor of the weight file, each coordinate named by (file tensor, flat index there) and the
 //! layer's own words for it ([`Places`]), built by the one report builder of `check.rs`.
 
+use super::GraphLoaded;
 use super::check::{CheckReport, Checked, CoordReport, DirectionReport, Location, build_report};
 use super::place::{GraphPlace, Places};
-use super::{GraphLoaded, graph_description_hash};
 use crate::{CheckConfig, CheckError, Entry, GraphCheck, OutsideCoord, Progress, check_graph};
 
 /// One coordinate of a graph check.
@@ -48,7 +48,7 @@ pub fn graph_check_report(
     )?;
     let facts = super::RunFacts {
         description: loaded.desc.path.clone(),
-        description_hash: graph_description_hash(&loaded.desc),
+        description_hash: loaded.description_hash.clone(),
         weights: loaded.weights_source.clone(),
         data: loaded.data_source.clone(),
         seed: config.seed,

@@ -31,6 +31,10 @@ pub struct GraphLoaded {
     pub data_source: DataSource,
     /// The axis order of the data file (channels-first for a synthetic batch).
     pub order: AxisOrder,
+    /// The network's identity in reports (`description_hash`): [`graph_description_hash`], or
+    /// for a dense description its dense hash ([`super::description_hash`], which covers its
+    /// conventions), as baselines and shards have always named it.
+    pub description_hash: String,
 }
 
 /// Where a graph run's weights and data come from.
@@ -150,6 +154,7 @@ impl GraphLoaded {
             )));
         }
         Ok(GraphLoaded {
+            description_hash: graph_description_hash(&desc),
             desc,
             params,
             weights_source,
@@ -172,6 +177,7 @@ impl GraphLoaded {
             params.push(b.into_dyn());
         }
         GraphLoaded {
+            description_hash: super::description_hash(&loaded.desc),
             desc,
             params,
             weights_source: loaded.weights_source,

@@ -396,10 +396,20 @@ impl Shards<GraphPlace> {
         desc: &GraphDescription,
         worst_n: usize,
     ) -> Result<GraphCheckReport, ShardError> {
+        self.merge_with_hash(desc, graph_description_hash(desc), worst_n)
+    }
+
+    /// [`Shards::merge_graph`] of a description whose identity is `hash` (a dense
+    /// description's: `description_hash` of it, as its check writes).
+    pub fn merge_with_hash(
+        &self,
+        desc: &GraphDescription,
+        hash: String,
+        worst_n: usize,
+    ) -> Result<GraphCheckReport, ShardError> {
         let first = &self.list[0];
         let at = |key: &str| format!("{}: `{key}`", first.path.display());
         let r = &first.report;
-        let hash = graph_description_hash(desc);
         self.same_description(&desc.path, &hash)?;
         let graph = &desc.graph;
         let specs = graph.tensors();
