@@ -5,7 +5,6 @@ use std::path::Path;
 
 use anyhow::{Context, Result, bail};
 use plumb_audit::audit_shapes;
-use plumb_engine::graph::Dense;
 use plumb_engine::{Batch, Init, Loss, Rng, Weights};
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_formats::{
@@ -57,40 +56,18 @@ pub enum AnyLoaded {
 /// Loads a description of any kind onto the layer graph, with the network's identity for
 /// baselines. A dense description is read and checked by the dense loader (its messages: the
 /// weights' dimension audit, the data file's lines), then run as the same weights, batch and
-/// sources on the graph ([`dense_as_graph`]); its identity stays the one baselines recorded.
+/// sources on the graph ([`GraphLoaded::from_dense`]); its identity stays the one baselines recorded.
 pub fn load_graph(inputs: &Inputs, seed: u64) -> Result<(GraphLoaded, NetworkId)> {
     Ok(match load_any(inputs, seed)? {
         AnyLoaded::Dense(loaded, desc) => {
             let id = network_id(&loaded.desc);
-            (dense_as_graph(*loaded, *desc), id)
+            (GraphLoaded::from_dense(*loaded, *desc), id)
         }
         AnyLoaded::Graph(loaded) => {
             let id = graph_network_id(&loaded.desc);
             (*loaded, id)
         }
     })
-}
-
-/// A dense run on the layer graph of the same description: each augmented matrix split into the
-/// layer's weight and bias (column 0), the batch and the sources as they are.
-pub fn dense_as_graph(loaded: Loaded, desc: GraphDescription) -> GraphLoaded {
-    let params = loaded
-        .weights
-        .layers()
-        .iter()
-        .flat_map(|m| {
-            let (w, b) = Dense::split(m);
-            [w.into_dyn(), b.into_dyn()]
-        })
-        .collect();
-    GraphLoaded {
-        desc,
-        params,
-        weights_source: loaded.weights_source,
-        batch: loaded.batch,
-        data_source: loaded.data_source,
-        order: AxisOrder::ChannelsFirst,
-    }
 }
 
 /// Loads a description of any kind, reading it once (the commands that run the graph).

@@ -92,21 +92,24 @@ fn check_reports_per_tensor_of_the_layout_and_locates_coordinates() {
         ]
     );
     assert_eq!(j["worst"].as_array().unwrap().len(), 2);
-    // A split-transposed weight at augmented (row r, column c) sits at [c − 1, r] of its tensor.
+    // A split-transposed weight of unit u, input i (both from 1) of a layer of U units is stored
+    // in × out: flat index (i − 1)·U + (u − 1) of its tensor; a bias's is u − 1 (docs/json.md).
     for w in j["worst"].as_array().unwrap() {
-        let (row, col) = (w["row"].as_u64().unwrap(), w["column"].as_u64().unwrap());
-        let idx: Vec<u64> = w["index"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|v| v.as_u64().unwrap())
+        let location = w["location"].as_str().unwrap();
+        let words: Vec<&str> = location
+            .split([' ', ','])
+            .filter(|s| !s.is_empty())
             .collect();
-        if w["bias"] == true {
-            assert_eq!(idx, [row]);
+        let unit: u64 = words[1].parse().unwrap();
+        let units = if w["layer"] == 1 { 5 } else { 3 };
+        let index = w["index"].as_u64().unwrap();
+        if w["tensor"].as_str().unwrap().ends_with(".bias") {
+            assert_eq!(words[2..], ["bias"], "{w}");
+            assert_eq!(index, unit - 1, "{w}");
         } else {
-            assert_eq!(idx, [col - 1, row]);
+            let input: u64 = words[3].parse().unwrap();
+            assert_eq!(index, (input - 1) * units + unit - 1, "{w}");
         }
-        assert_eq!(w["unit"].as_u64().unwrap(), row + 1);
     }
     let table = plumb(&["check", "nets/small.toml"]);
     assert!(
@@ -193,11 +196,18 @@ fn sweep_writes_a_plot_and_marks_the_best_step() {
     assert_eq!(j["steps"].as_array().unwrap().len(), 27);
     let coords = j["coordinates"].as_array().unwrap();
     assert_eq!(coords.len(), 2);
+    // Augmented layer 2 is 3 × 6: row 0, column 3 is flat index 3; layer 1's (5 × 5) row 4,
+    // column 0 (the bias) is 4·5 + 0.
     assert_eq!(
-        (coords[0]["tensor"].as_str(), coords[0]["index"][1].as_u64()),
+        (coords[0]["tensor"].as_str(), coords[0]["index"].as_u64()),
         (Some("layer2"), Some(3))
     );
-    assert_eq!(coords[1]["bias"], true);
+    assert_eq!(coords[0]["location"], "unit 1, input 3");
+    assert_eq!(
+        (coords[1]["tensor"].as_str(), coords[1]["index"].as_u64()),
+        (Some("layer1"), Some(20))
+    );
+    assert_eq!(coords[1]["location"], "unit 5, bias");
     for m in coords[0]["methods"].as_array().unwrap() {
         if m["method"] == "central" {
             // NR §5.7 [pub]: the best central step lies near ∛ε ≈ 6e-6 (within a factor of 30 here).

@@ -8,7 +8,7 @@ use crate::util;
 use std::path::Path;
 
 use plumb_engine::Init;
-use plumb_fd::report::{GraphInputs, GraphLoaded, RunFacts, build_graph};
+use plumb_fd::report::{GraphInputs, GraphLoaded, Places, RunFacts, build_graph};
 use plumb_fd::{CheckConfig, Method, Precision, check_graph_gradient};
 use plumb_formats::{AxisOrder, GraphDescription};
 use plumb_report::Verdict;
@@ -37,13 +37,15 @@ fn cnn_passes_central_and_complex_step_in_f64() {
         assert_eq!(v["verdict"], "pass", "{method}: {v}");
         assert_eq!(v["method"], method);
         let tensors = v["tensors"].as_array().unwrap();
-        assert_eq!(tensors.len(), 8, "the CNN's eight tensors");
+        // The weight file's seven tensors: the dense head's augmented matrix holds its weight
+        // and bias (the graph's eight tensors).
+        assert_eq!(tensors.len(), 7, "the CNN's seven file tensors");
         for t in tensors {
             assert_eq!(t["mismatches"], 0);
             assert!(t["max_rel_error"].is_number() && t["median_rel_error"].is_number());
             assert!(t["max_bound"].is_number() && t["unreliable"].is_number());
         }
-        // The worst coordinates name the graph tensor, the flat index and the layer's own words.
+        // The worst coordinates name the file tensor, its flat index and the layer's own words.
         let w = &v["worst"][0];
         assert!(w["tensor"].is_string() && w["index"].is_u64(), "{w}");
         assert!(w["location"].as_str().unwrap().contains("channel"), "{w}");
@@ -138,10 +140,17 @@ fn a_moved_gradient_entry_fails_and_is_located() {
         samples: b.len(),
         step: None,
         shard: None,
-        gradient_norms: vec![1.0; g.len()],
+        gradient_norms: vec![1.0; loaded.desc.files.len()],
     };
-    let report = build_graph(&facts, graph, &result, 5);
+    let report = build_graph(&facts, &Places::new(&loaded.desc), &result, 5);
     assert_eq!(report.verdict, Verdict::Fail);
+    // The report's tensors are the weight file's; this conv weight is stored canonically, so
+    // its file index is the graph's.
+    let t = report
+        .tensors
+        .iter()
+        .position(|r| r.name == "block.weight")
+        .unwrap();
     let bad = &report.tensors[t];
     assert_eq!(bad.verdict, Verdict::Fail);
     assert_eq!(bad.mismatches, 1);

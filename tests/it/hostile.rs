@@ -131,9 +131,22 @@ fn merge_refuses_edited_coordinates_and_schema_versions() {
         (
             edit("invented.json", &|v| {
                 let c = &mut v["coordinates"][0];
-                c["column"] = if c["column"] == 0 { 1 } else { 0 }.into();
+                let k = c["index"].as_u64().unwrap();
+                c["index"] = if k == 0 { 1 } else { k - 1 }.into();
             }),
             vec!["invented.json", "coordinate 1", "edited"],
+        ),
+        (
+            // A shard of schema version 1, which located a dense coordinate by an index array
+            // and its augmented row and column: refused by its version, not misread.
+            edit("v1.json", &|v| {
+                v["schema_version"] = 1.into();
+                let c = &mut v["coordinates"][0];
+                c["index"] = serde_json::json!([0, 3]);
+                c["row"] = 0.into();
+                c["column"] = 3.into();
+            }),
+            vec!["v1.json", "`schema_version` is 1", "run the check again"],
         ),
         (
             edit("direction.json", &|v| {

@@ -133,12 +133,9 @@ struct Grad {
 #[allow(dead_code)]
 struct Coordinate {
     tensor: String,
-    index: Vec<usize>,
+    index: usize,
     layer: usize,
-    row: usize,
-    column: usize,
-    unit: usize,
-    bias: bool,
+    location: String,
     analytic: f64,
     numeric: f64,
     abs_error: f64,
@@ -247,12 +244,9 @@ struct MethodCurve {
 #[allow(dead_code)]
 struct SweptCoordinate {
     tensor: String,
-    index: Vec<usize>,
+    index: usize,
     layer: usize,
-    row: usize,
-    column: usize,
-    unit: usize,
-    bias: bool,
+    location: String,
     analytic: f64,
     chosen: String,
     methods: Vec<MethodCurve>,
@@ -361,7 +355,7 @@ fn shapes_report_schema() {
         assert_eq!(first_key(&run.stdout), "\"verdict\"");
         let r: Shapes = serde_json::from_str(&run.stdout).unwrap();
         assert_eq!(r.verdict, verdict);
-        assert_eq!((r.schema_version, r.command.as_str()), (1, "shapes"));
+        assert_eq!((r.schema_version, r.command.as_str()), (2, "shapes"));
         assert!(
             r.findings
                 .iter()
@@ -391,7 +385,7 @@ fn grad_report_schema() {
     let r: Grad = serde_json::from_str(&run.stdout).unwrap();
     assert_eq!(
         (r.schema_version, r.command.as_str(), r.verdict.as_str()),
-        (1, "grad", "pass")
+        (2, "grad", "pass")
     );
     assert!(matches!(r.weights, WeightsSource::File { .. }));
     assert!(matches!(r.data, DataSource::File { samples: 8, .. }));
@@ -437,8 +431,13 @@ fn check_and_sweep_report_schemas() {
     assert_eq!(first_key(&run.stdout), "\"verdict\"");
     let r: Check = serde_json::from_str(&run.stdout).unwrap();
     assert_eq!(
-        (r.command.as_str(), r.verdict.as_str(), r.tensors.len()),
-        ("check", "pass", 4)
+        (
+            r.schema_version,
+            r.command.as_str(),
+            r.verdict.as_str(),
+            r.tensors.len()
+        ),
+        (2, "check", "pass", 4)
     );
     let run = plumb(&[
         "sweep",

@@ -947,15 +947,15 @@ fn broken_or_foreign_shards_exit_2_naming_the_file() {
     for (name, says, f) in [
         (
             "layer0.json",
-            "not a layer",
+            "the shard was edited",
             &(|v: &mut serde_json::Value| v["coordinates"][0]["layer"] = 0.into())
                 as &dyn Fn(&mut serde_json::Value),
         ),
-        ("layer99.json", "not a layer", &|v| {
+        ("layer99.json", "the shard was edited", &|v| {
             v["coordinates"][0]["layer"] = 99.into()
         }),
-        ("row.json", "is not in layer", &|v| {
-            v["coordinates"][0]["row"] = 1_000_000.into()
+        ("index.json", "is outside", &|v| {
+            v["coordinates"][0]["index"] = 1_000_000.into()
         }),
         ("huge-n.json", "not [K, N]", &|v| {
             v["shard"] = serde_json::json!([2, 4_611_686_018_427_387_904u64])

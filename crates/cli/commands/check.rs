@@ -3,20 +3,17 @@
 use anyhow::{Result, bail};
 use plumb_fd::report::{
     CheckReport, Code, CoordReport, CoverageReport, GraphCheckReport, GraphCoordReport,
-    GraphLoaded, MAX_DIRECTIONS, Tensors, check_report, graph_check_report,
+    GraphLoaded, MAX_DIRECTIONS, Places, graph_check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, SETTLE, Sample, Status, UNSETTLED_SHARE};
-use plumb_formats::GraphDescription;
 use plumb_report::{
-    Block, Case, Cell, Document, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
+    Block, Case, Cell, Document, NetworkId, Severity, StepPanel, StripSeries, Table, Tone, Verdict,
     error_strip, step_plot,
 };
 
 use crate::args::{CheckArgs, MethodArg, PrecisionArg};
-use crate::inputs::{AnyLoaded, Loaded, load_any};
-use crate::output::{
-    Settings, count_cell, directions_cell, graph_network_id, network_id, num, verdict_cell,
-};
+use crate::inputs::load_graph;
+use crate::output::{Settings, count_cell, directions_cell, num, verdict_cell};
 use crate::progress::Progress;
 
 pub fn method(m: MethodArg) -> Method {
@@ -85,49 +82,31 @@ pub fn run(args: &CheckArgs, settings: &Settings) -> Result<Verdict> {
     config.seed = settings.seed;
     config.tolerance = args.tolerance;
     config.shard = args.shard.as_deref().map(parse_shard).transpose()?;
-    let loaded = match load_any(&args.inputs, settings.seed)? {
-        AnyLoaded::Dense(loaded, _) => loaded,
-        AnyLoaded::Graph(loaded) => return run_graph(args, &loaded, &config, settings),
-    };
+    // A dense description runs on its layer graph like every other kind; its baseline identity
+    // stays the dense description's (its hash and file tensors), so baselines recorded before
+    // still judge it.
+    let (loaded, network) = load_graph(&args.inputs, settings.seed)?;
     let progress = Progress::new(settings, "checking");
-    let report = compute(&loaded, &config, args.worst, &|d, t| progress.update(d, t))?;
+    let report = graph_check_report(&loaded, &config, args.worst, &|d, t| progress.update(d, t))?;
     progress.finish();
-    let mut doc = document(&report, Block::Table(worst_table(&report.worst)));
-    doc.command = "check".into();
-    doc.network = Some(network_id(&loaded.desc));
-    doc.cases = cases(&report);
+    let mut doc = graph_document(&report, network, settings);
     if settings.html.is_some() {
-        insert_before_findings(&mut doc, plots(&report, &loaded, config.precision));
+        insert_before_findings(&mut doc, v_curves(&report, &loaded, config.precision));
     }
     settings.emit(&report, doc)
 }
 
-/// `plumb check` on a description of another kind than dense: the layer graph's check, its
-/// report in the dense report's shape; a shard's coordinates are (tensor, flat index), which
-/// `plumb merge` joins.
-fn run_graph(
-    args: &CheckArgs,
-    loaded: &GraphLoaded,
-    config: &CheckConfig,
-    settings: &Settings,
-) -> Result<Verdict> {
-    let progress = Progress::new(settings, "checking");
-    let report = graph_check_report(loaded, config, args.worst, &|d, t| progress.update(d, t))?;
-    progress.finish();
-    let doc = graph_document(&report, &loaded.desc, settings);
-    settings.emit(&report, doc)
-}
-
-/// The document of a graph check's report (a run's or a merge's): the worst coordinates in the
-/// layer's terms, one case per tensor, and with `--html` the strip of every checked coordinate.
+/// The document of a check's report (a run's or a merge's): the worst coordinates in the
+/// layer's terms, one case per tensor of the weight file, and with `--html` the strip of every
+/// checked coordinate.
 pub fn graph_document(
     report: &GraphCheckReport,
-    desc: &GraphDescription,
+    network: NetworkId,
     settings: &Settings,
 ) -> Document {
     let mut doc = document(report, Block::Table(graph_worst_table(&report.worst)));
     doc.command = "check".into();
-    doc.network = Some(graph_network_id(desc));
+    doc.network = Some(network);
     doc.cases = cases(report);
     if settings.html.is_some() {
         let strip = strip_plot(
@@ -139,6 +118,63 @@ pub fn graph_document(
         insert_before_findings(&mut doc, strip.into_iter().collect());
     }
     doc
+}
+
+/// The V-curve of the two worst coordinates: every method's error against the step (`--html`).
+pub fn v_curves(r: &GraphCheckReport, loaded: &GraphLoaded, precision: Precision) -> Vec<Block> {
+    let places = Places::new(&loaded.desc);
+    let coords: Vec<(usize, usize)> = r
+        .worst
+        .iter()
+        .take(2)
+        .filter_map(|w| places.entry(places.file_named(&w.place.tensor)?, w.place.index))
+        .collect();
+    if coords.is_empty() {
+        return Vec::new();
+    }
+    let graph = &loaded.desc.graph;
+    let (x, y) = (loaded.batch.x.view(), loaded.batch.y.view());
+    let analytic = graph.gradient(&loaded.params, x, y, None).params;
+    let hs = plumb_fd::steps(1e-1, 1e-14, 27);
+    let plan = plumb_fd::SweepPlan {
+        coords,
+        methods: Method::ALL.to_vec(),
+        steps: hs.clone(),
+        precision,
+    };
+    let Ok(curves) = plumb_fd::sweep_graph(graph, &loaded.params, x, y, &analytic, &plan) else {
+        return Vec::new();
+    };
+    let eps = precision.epsilon();
+    let panels: Vec<StepPanel> = curves
+        .iter()
+        .map(|c| StepPanel {
+            title: format!(
+                "{} (worst), analytic {:.4e}",
+                places.place(c.coord.0, c.coord.1).label(),
+                c.analytic
+            ),
+            steps: hs.clone(),
+            series: Method::ALL
+                .iter()
+                .enumerate()
+                .map(|(m, name)| {
+                    (
+                        name.name().to_string(),
+                        (0..hs.len()).map(|i| c.error(m, i, 0.0)).collect(),
+                    )
+                })
+                .collect(),
+            marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
+        })
+        .collect();
+    match step_plot(&panels) {
+        Ok(svg) => vec![plot(
+            "Error against step size for the worst coordinates: truncation falls as h shrinks until round-off (ε/h) takes over.",
+            svg,
+        )],
+        Err(_) => Vec::new(),
+    }
 }
 
 /// The worst coordinates of a graph check: tensor, flat index and the layer's words for it.
@@ -223,84 +259,6 @@ pub fn cases<C>(r: &CheckReport<C>) -> Vec<Case> {
             }
         })
         .collect()
-}
-
-/// Runs the check on loaded inputs and returns its report (shared with the demo).
-pub fn compute(
-    loaded: &Loaded,
-    config: &CheckConfig,
-    worst_n: usize,
-    progress: plumb_fd::Progress<'_>,
-) -> Result<CheckReport> {
-    Ok(check_report(loaded, config, worst_n, progress)?)
-}
-
-/// The check's pictures: relative error per tensor against each coordinate's error bound and the
-/// tolerance, and the V-curve of the worst coordinates (shared with the demo).
-pub fn plots(r: &CheckReport, loaded: &Loaded, precision: Precision) -> Vec<Block> {
-    let mut out: Vec<Block> = strip_plot(
-        "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
-        &r.rel_errors,
-        r.tolerance,
-        &r.precision,
-    )
-    .into_iter()
-    .collect();
-    let net = &loaded.desc.network;
-    let coords: Vec<plumb_engine::Coord> = r
-        .worst
-        .iter()
-        .take(2)
-        .map(|w| plumb_engine::Coord {
-            layer: w.place.layer - 1,
-            row: w.place.row,
-            col: w.place.column,
-        })
-        .collect();
-    if coords.is_empty() {
-        return out;
-    }
-    let (_, analytic) = net.gradient(
-        &loaded.weights,
-        loaded.batch.x.view(),
-        loaded.batch.y.view(),
-    );
-    let hs = plumb_fd::steps(1e-1, 1e-14, 27);
-    let plan = plumb_fd::SweepPlan {
-        coords,
-        methods: Method::ALL.to_vec(),
-        steps: hs.clone(),
-        precision,
-    };
-    let curves = plumb_fd::sweep(net, &loaded.weights, &loaded.batch, &analytic, &plan);
-    let tensors = Tensors::new(&loaded.desc);
-    let eps = precision.epsilon();
-    let panels: Vec<StepPanel> = curves
-        .iter()
-        .map(|c| StepPanel {
-            title: format!(
-                "{} (worst), analytic {:.4e}",
-                tensors.place(c.coord).label(),
-                c.analytic
-            ),
-            steps: hs.clone(),
-            series: Method::ALL
-                .iter()
-                .enumerate()
-                .map(|(m, name)| {
-                    (
-                        name.name().to_string(),
-                        (0..hs.len()).map(|i| c.error(m, i, 0.0)).collect(),
-                    )
-                })
-                .collect(),
-            marks: vec![("∛ε".into(), eps.cbrt()), ("√ε".into(), eps.sqrt())],
-        })
-        .collect();
-    if let Ok(svg) = step_plot(&panels) {
-        out.push(plot("Error against step size for the worst coordinates: truncation falls as h shrinks until round-off (ε/h) takes over.", svg));
-    }
-    out
 }
 
 /// Relative errors per tensor on a log axis (check, compare, probe), against plumb's own figures:
@@ -452,34 +410,4 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
     };
     doc.push(Block::Verdict(r.verdict, summary));
     doc
-}
-
-pub fn worst_table(worst: &[CoordReport]) -> Table {
-    let mut t = Table::new([
-        "where",
-        "layer",
-        "row",
-        "col",
-        "unit",
-        "analytic",
-        "numeric",
-        "rel error",
-        "rel bound",
-        "status",
-    ]);
-    for w in worst {
-        let place = [
-            Cell::from(w.place.label()),
-            Cell::from(w.place.layer.to_string()),
-            Cell::from(w.place.row.to_string()),
-            Cell::from(if w.place.bias {
-                "0 (bias)".to_string()
-            } else {
-                w.place.column.to_string()
-            }),
-            Cell::from(w.place.unit.to_string()),
-        ];
-        t.push(place.into_iter().chain(measured_cells(w)));
-    }
-    t
 }

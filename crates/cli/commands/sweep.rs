@@ -3,8 +3,9 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use plumb_engine::{Coord, Network, Rng};
-use plumb_fd::{CheckConfig, Method, Sample, SweepPlan, check, steps, sweep};
+use plumb_engine::Rng;
+use plumb_engine::graph::Graph;
+use plumb_fd::{CheckConfig, Method, Sample, SweepPlan, steps};
 use plumb_formats::write_file;
 use plumb_report::{
     Block, Case, Cell, Document, Finding, Severity, StepPanel, Table, Tone, Verdict, step_plot,
@@ -13,9 +14,9 @@ use serde::Serialize;
 
 use crate::args::SweepArgs;
 use crate::commands::check::precision;
-use crate::inputs::{AnyLoaded, DataSource, WeightsSource, check_output, load_any};
-use crate::output::{SCHEMA_VERSION, Settings, graph_network_id, network_id, num};
-use plumb_fd::report::{GraphLoaded, GraphPlace, Place, Tensors};
+use crate::inputs::{DataSource, WeightsSource, check_output, load_graph};
+use crate::output::{SCHEMA_VERSION, Settings, num};
+use plumb_fd::report::{GraphLoaded, GraphPlace, Places};
 use plumb_fd::{Curve, Precision, check_graph, sweep_graph};
 use plumb_report::NetworkId;
 
@@ -33,9 +34,9 @@ pub struct MethodCurve {
     pub best_error: f64,
 }
 
-/// A swept coordinate; `P` is how it is located (a dense [`Place`], or a graph's [`GraphPlace`]).
+/// A swept coordinate, located in the weight file ([`GraphPlace`]).
 #[derive(Clone, Debug, Serialize)]
-pub struct CoordSweep<P = Place> {
+pub struct CoordSweep<P = GraphPlace> {
     #[serde(flatten)]
     pub place: P,
     pub analytic: f64,
@@ -46,7 +47,7 @@ pub struct CoordSweep<P = Place> {
 
 /// The JSON report of `plumb sweep` (docs/json.md).
 #[derive(Serialize)]
-pub struct SweepReport<P = Place> {
+pub struct SweepReport<P = GraphPlace> {
     pub verdict: Verdict,
     pub schema_version: u32,
     pub command: &'static str,
@@ -107,29 +108,35 @@ fn parse_methods(text: Option<&str>) -> Result<Vec<Method>> {
         .collect()
 }
 
-/// Parses LAYER:ROW:COL,… against the network.
-fn parse_coords(text: &str, net: &Network) -> Result<Vec<Coord>> {
-    text.split(',')
-        .map(|item| {
-            let nums: Vec<Option<usize>> = item.split(':').map(|s| s.trim().parse().ok()).collect();
-            let [Some(layer), Some(row), Some(col)] = nums.as_slice() else {
-                bail!("--coords: `{item}` is not LAYER:ROW:COL (e.g. 2:0:3 — layer from 1, row and column from 0, column 0 the bias)");
-            };
-            let layers = net.layers();
-            if *layer == 0 || *layer > layers.len() {
-                bail!("--coords: `{item}`: the network has layers 1 to {}", layers.len());
-            }
-            let (units, cols) = layers[layer - 1].shape();
-            if *row >= units || *col >= cols {
-                bail!(
-                    "--coords: `{item}`: layer {layer}'s augmented matrix is {units} × {cols}: rows 0 to {}, columns 0 to {}",
-                    units - 1,
-                    cols - 1
-                );
-            }
-            Ok(Coord { layer: layer - 1, row: *row, col: *col })
-        })
-        .collect()
+/// Parses LAYER:ROW:COL (a dense description's augmented matrix: layer from 1, row and column
+/// from 0, column 0 the bias) as the graph's (tensor, flat index): layer J's weight and bias are
+/// its graph tensors 2(J − 1) and 2(J − 1) + 1.
+fn dense_coord(item: &str, graph: &Graph) -> Result<(usize, usize)> {
+    let nums: Vec<Option<usize>> = item.split(':').map(|s| s.trim().parse().ok()).collect();
+    let [Some(layer), Some(row), Some(col)] = nums.as_slice() else {
+        bail!(
+            "--coords: `{item}` is not LAYER:ROW:COL (e.g. 2:0:3 — layer from 1, row and column from 0, column 0 the bias) or TENSOR:INDEX"
+        );
+    };
+    let depth = graph.nodes().len();
+    if *layer == 0 || *layer > depth {
+        bail!("--coords: `{item}`: the network has layers 1 to {depth}");
+    }
+    let w = graph.nodes()[layer - 1].tensors().start;
+    let shape = &graph.tensors()[w].spec.shape;
+    let (units, cols) = (shape[0], shape[1] + 1);
+    if *row >= units || *col >= cols {
+        bail!(
+            "--coords: `{item}`: layer {layer}'s augmented matrix is {units} × {cols}: rows 0 to {}, columns 0 to {}",
+            units - 1,
+            cols - 1
+        );
+    }
+    Ok(if *col == 0 {
+        (w + 1, *row)
+    } else {
+        (w, row * (cols - 1) + col - 1)
+    })
 }
 
 pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
@@ -141,87 +148,32 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
         ins.extend(args.inputs.data.as_deref());
         check_output(p, settings.force, &ins)?;
     }
-    let loaded = match load_any(&args.inputs, settings.seed)? {
-        AnyLoaded::Dense(loaded, _) => loaded,
-        AnyLoaded::Graph(loaded) => {
-            return run_graph(args, &loaded, &methods, hs, settings);
-        }
-    };
-    let net = &loaded.desc.network;
-    let prec = precision(args.precision);
-    let asked = args
-        .coords
-        .as_deref()
-        .map(|t| parse_coords(t, net))
-        .transpose()?;
-
-    // The analytic gradient in the precision swept, and the default coordinates: the worst of a
-    // quick central check, and a few at random.
-    let mut config = CheckConfig::new(Method::Central, prec);
-    config.sample = Some(Sample::Total(net.parameters().min(2000)));
-    config.directions = Some(0);
-    config.seed = settings.seed;
-    let quick = check(net, &loaded.weights, &loaded.batch, &config, &|_, _| {})?;
-    let chosen: Vec<(Coord, &'static str)> = match asked {
-        Some(c) => c.into_iter().map(|c| (c, "asked")).collect(),
-        None => {
-            let worst = quick
-                .coords
-                .iter()
-                .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
-                .map(|c| c.coord)
-                .expect("a network has parameters");
-            let mut out = vec![(worst, "worst")];
-            let mut rng = Rng::new(settings.seed ^ 0x5ee9);
-            let all = net.parameters();
-            let mut tries = 0;
-            while out.len() < (RANDOM_COORDS + 1).min(all) && tries < 100 {
-                tries += 1;
-                let c = quick.analytic.coord(rng.below(all)).expect("in range");
-                if !out.iter().any(|(o, _)| *o == c) {
-                    out.push((c, "random"));
-                }
-            }
-            out
-        }
-    };
-    let coords: Vec<Coord> = chosen.iter().map(|(c, _)| *c).collect();
-    let plan = SweepPlan {
-        coords,
-        methods: methods.clone(),
-        steps: hs.clone(),
-        precision: prec,
-    };
-    let curves = sweep(net, &loaded.weights, &loaded.batch, &quick.analytic, &plan);
-    let tensors = Tensors::new(&loaded.desc);
-    let run = Swept {
-        description: loaded.desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        network: network_id(&loaded.desc),
-        precision: prec,
-    };
-    let why: Vec<&'static str> = chosen.iter().map(|(_, w)| *w).collect();
-    finish(args, settings, &run, &methods, hs, &curves, &why, |c| {
-        tensors.place(*c)
-    })
+    // A dense description runs on its layer graph like every other kind, and also takes its
+    // augmented matrix's LAYER:ROW:COL.
+    let (loaded, network) = load_graph(&args.inputs, settings.seed)?;
+    let dense = loaded.desc.is_dense();
+    run_graph(args, &loaded, network, dense, &methods, hs, settings)
 }
 
-/// `plumb sweep` on a description of another kind than dense: coordinates are TENSOR:INDEX, the
-/// graph tensor (or the file tensor holding it alone) and the flat index in its canonical shape.
+/// The sweep on the layer graph: coordinates are TENSOR:INDEX, a tensor of the weight file and
+/// the flat index in its shape there (or a graph tensor and the flat index in its canonical
+/// shape), and for a dense description also LAYER:ROW:COL.
 fn run_graph(
     args: &SweepArgs,
     loaded: &GraphLoaded,
+    network: NetworkId,
+    dense: bool,
     methods: &[Method],
     hs: Vec<f64>,
     settings: &Settings,
 ) -> Result<Verdict> {
     let graph = &loaded.desc.graph;
+    let places = Places::new(&loaded.desc);
     let prec = precision(args.precision);
     let asked = args
         .coords
         .as_deref()
-        .map(|t| parse_graph_coords(t, loaded))
+        .map(|t| parse_graph_coords(t, &places, loaded, dense))
         .transpose()?;
     let b = &loaded.batch;
     // As for a dense network: the gradient in the precision swept, and by default the worst
@@ -285,7 +237,7 @@ fn run_graph(
         description: loaded.desc.path.clone(),
         weights: loaded.weights_source.clone(),
         data: loaded.data_source.clone(),
-        network: graph_network_id(&loaded.desc),
+        network,
         precision: prec,
     };
     let why: Vec<&'static str> = chosen.iter().map(|(_, w)| *w).collect();
@@ -297,42 +249,60 @@ fn run_graph(
         hs,
         &curves,
         &why,
-        |&(t, k)| GraphPlace::new(graph, t, k),
+        |&(t, k)| places.place(t, k),
     )
 }
 
-/// Parses TENSOR:INDEX,… against the graph: a graph tensor's name (`layer.suffix`) or a file
-/// tensor holding one graph tensor, and a flat index in the canonical tensor.
-fn parse_graph_coords(text: &str, loaded: &GraphLoaded) -> Result<Vec<(usize, usize)>> {
+/// Parses TENSOR:INDEX,… against the description: a tensor of the weight file and a flat index
+/// in its shape there, or a graph tensor (`layer.suffix`) and a flat index in its canonical
+/// shape; for a dense description also LAYER:ROW:COL.
+fn parse_graph_coords(
+    text: &str,
+    places: &Places,
+    loaded: &GraphLoaded,
+    dense: bool,
+) -> Result<Vec<(usize, usize)>> {
     let desc = &loaded.desc;
     let tensors = desc.graph.tensors();
-    let names: Vec<&str> = tensors.iter().map(|t| t.name.as_str()).collect();
+    let names: Vec<&str> = desc.files.iter().map(|f| f.name.as_str()).collect();
     text.split(',')
         .map(|item| {
             let item = item.trim();
+            if dense && item.split(':').count() == 3 {
+                return dense_coord(item, &desc.graph);
+            }
             let Some((name, index)) = item.rsplit_once(':') else {
-                bail!("--coords: `{item}` is not TENSOR:INDEX (e.g. {}:0 — a tensor of the description and a flat index from 0 in its canonical shape)", names[0]);
-            };
-            let t = names.iter().position(|n| *n == name).or_else(|| {
-                desc.files
-                    .iter()
-                    .find(|f| f.name == name && f.tensors.len() == 1)
-                    .map(|f| f.tensors[0])
-            });
-            let Some(t) = t else {
                 bail!(
-                    "--coords: `{item}`: {} has no tensor `{name}`; its tensors are {}",
+                    "--coords: `{item}` is not TENSOR:INDEX (e.g. {}:0 — a tensor of the weight file and a flat index from 0 in its shape there){}",
+                    names[0],
+                    if dense { " or LAYER:ROW:COL" } else { "" }
+                );
+            };
+            let index = index.trim().parse::<usize>().ok();
+            if let Some(f) = places.file_named(name) {
+                let file = &desc.files[f];
+                return match index.and_then(|k| places.entry(f, k)) {
+                    Some(c) => Ok(c),
+                    None => bail!(
+                        "--coords: `{item}`: the index must be a whole number from 0 to {} (tensor `{name}` has shape {:?} in the weight file, read flat in row-major order)",
+                        places.file_size(f).saturating_sub(1),
+                        file.shape
+                    ),
+                };
+            }
+            let Some(t) = tensors.iter().position(|t| t.name == name) else {
+                bail!(
+                    "--coords: `{item}`: {} has no tensor `{name}`; its weight file's tensors are {}",
                     desc.path.display(),
                     names.join(", ")
                 );
             };
             let size: usize = tensors[t].spec.shape.iter().product();
-            match index.trim().parse::<usize>() {
-                Ok(k) if k < size => Ok((t, k)),
+            match index {
+                Some(k) if k < size => Ok((t, k)),
                 _ => bail!(
-                    "--coords: `{item}`: the index must be a whole number from 0 to {} (tensor `{}` has shape {:?}, read flat in row-major order)",
+                    "--coords: `{item}`: the index must be a whole number from 0 to {} (graph tensor `{name}` has shape {:?}, read flat in row-major order)",
                     size.saturating_sub(1),
-                    tensors[t].name,
                     tensors[t].spec.shape
                 ),
             }
@@ -347,28 +317,6 @@ pub trait Located {
     fn layer(&self) -> usize;
     /// Where it is, in the layer's terms.
     fn detail(&self) -> String;
-}
-
-impl Located for Place {
-    fn label(&self) -> String {
-        Place::label(self)
-    }
-    fn tensor(&self) -> &str {
-        &self.tensor
-    }
-    fn layer(&self) -> usize {
-        self.layer
-    }
-    fn detail(&self) -> String {
-        format!(
-            "layer {}, row {}, column {}{}, unit {}",
-            self.layer,
-            self.row,
-            self.column,
-            if self.bias { " (bias)" } else { "" },
-            self.unit
-        )
-    }
 }
 
 impl Located for GraphPlace {

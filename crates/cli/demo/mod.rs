@@ -34,10 +34,10 @@ use crate::commands::check;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
 use crate::commands::{audit, compare, probe};
-use crate::inputs::{DataSource, Loaded, WeightsSource, dense_as_graph};
+use crate::inputs::{DataSource, Loaded, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
 use layered::{Outcome, ScenarioReport};
-use plumb_fd::report::CheckReport;
+use plumb_fd::report::{GraphCheckReport, GraphLoaded, graph_check_report};
 
 pub use pump::Pump;
 
@@ -182,7 +182,7 @@ struct DemoReport<'a> {
     shapes: ShapesReport<'a>,
     shapes_planted: ShapesReport<'a>,
     grad: &'a GradReport,
-    check: &'a CheckReport,
+    check: &'a GraphCheckReport,
     planted: PlantedReport<'a>,
     audit: &'a plumb_audit::Audit,
     /// The NumPy example probed with the same bug, when it could be run.
@@ -259,21 +259,20 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             samples: pump.batch.len(),
         },
     };
-    // The same run on the layer graph, for grad, compare and probe.
-    let on_graph = dense_as_graph(
+    // Grad, check, compare and probe run on the description's layer graph, as the commands do.
+    let on_graph = GraphLoaded::from_dense(
         Loaded {
             desc: desc.clone(),
-            weights: pump.weights.clone(),
+            weights: loaded.weights.clone(),
             weights_source: loaded.weights_source.clone(),
-            batch: pump.batch.clone(),
+            batch: loaded.batch.clone(),
             data_source: loaded.data_source.clone(),
         },
-        GraphDescription::parse(&net_path, pump::DESCRIPTION)
-            .expect("the demo's description is valid"),
+        GraphDescription::parse(&desc.path, &desc.to_toml(""))?,
     );
     let computed = graph_gradient_report(&on_graph, false)?;
-    let checked = check::compute(
-        &loaded,
+    let checked = graph_check_report(
+        &on_graph,
         &CheckConfig::new(Method::Central, Precision::F64),
         3,
         &|_, _| {},
@@ -459,10 +458,19 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     ));
     push_all(
         &mut doc,
-        check::document(&checked, Block::Table(check::worst_table(&checked.worst))),
+        check::document(
+            &checked,
+            Block::Table(check::graph_worst_table(&checked.worst)),
+        ),
     );
+    doc.blocks.extend(check::strip_plot(
+        "relative error |a − n| / max(|a|, |n|, floor) of every checked coordinate",
+        &checked.rel_errors,
+        checked.tolerance,
+        &checked.precision,
+    ));
     doc.blocks
-        .extend(check::plots(&checked, &loaded, Precision::F64));
+        .extend(check::v_curves(&checked, &on_graph, Precision::F64));
 
     doc.push(Block::Heading(
         "6. A hand-written gradient with a bug".into(),

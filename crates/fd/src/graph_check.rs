@@ -33,6 +33,7 @@ use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precis
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
 use crate::external::{Plan, check_tensors};
+use crate::gross::graph_gradient_magnitude;
 use crate::method::{ComplexScalar, complex_estimate, round_to};
 use crate::sweep::{Curve, SweepPlan};
 use crate::{
@@ -124,15 +125,19 @@ pub fn check_graph_gradient(
     }
     let eps = config.precision.epsilon();
     let tolerance = config.tolerance.unwrap_or(config.precision.tolerance());
+    // A dense description's entries carry the bound on their pieces the dense check gave them
+    // (`graph_gradient_magnitude`); other kinds have none yet.
+    let mut gross = graph_gradient_magnitude(graph, params, x, y).unwrap_or_default();
     let tensors: Vec<OutsideTensor> = graph
         .tensors()
         .iter()
         .zip(params.iter().zip(analytic))
-        .map(|(spec, (p, g))| OutsideTensor {
+        .enumerate()
+        .map(|(t, (spec, (p, g)))| OutsideTensor {
             name: spec.name.clone(),
             values: p.iter().copied().collect(),
             gradient: g.iter().copied().collect(),
-            gross: Vec::new(),
+            gross: gross.get_mut(t).map(std::mem::take).unwrap_or_default(),
         })
         .collect();
     let external = ExternalConfig {

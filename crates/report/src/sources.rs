@@ -6,7 +6,7 @@ use std::path::PathBuf;
 use serde::{Deserialize, Deserializer, Serialize};
 
 /// The version of every JSON report's schema (docs/json.md). Bumped on any incompatible change.
-pub const SCHEMA_VERSION: u32 = 1;
+pub const SCHEMA_VERSION: u32 = 2;
 
 /// Where the weights came from.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]

@@ -1,43 +1,11 @@
-//! The report of `plumb check` on a layer graph: the dense report's shape ([`CheckReport`]) with
-//! each coordinate named by (tensor, flat index) and the layer's own words for it
-//! (`Kind::locate`), built by the one report builder of `check.rs`.
+//! The report of `plumb check` on a layer graph (a dense description's too): one tensor per
+//! tensor of the weight file, each coordinate named by (file tensor, flat index there) and the
+//! layer's own words for it ([`Places`]), built by the one report builder of `check.rs`.
 
-use plumb_engine::graph::Graph;
-use serde::{Deserialize, Serialize};
-
+use super::GraphLoaded;
 use super::check::{CheckReport, Checked, CoordReport, DirectionReport, Location, build_report};
-use super::{GraphLoaded, graph_description_hash};
+use super::place::{GraphPlace, Places};
 use crate::{CheckConfig, CheckError, Entry, GraphCheck, OutsideCoord, Progress, check_graph};
-
-/// A parameter of the graph located for people and for JSON (the graph's [`Place`](super::Place)).
-#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
-pub struct GraphPlace {
-    /// The graph tensor (`layer.suffix`), its flat index in the canonical shape, and its 1-based
-    /// layer.
-    pub tensor: String,
-    pub index: usize,
-    pub layer: usize,
-    /// The index in the layer's own terms (unit, channel, kernel position, gate, head).
-    pub location: String,
-}
-
-impl GraphPlace {
-    /// Flat index `index` of graph tensor `t`.
-    pub fn new(graph: &Graph, t: usize, index: usize) -> GraphPlace {
-        let spec = &graph.tensors()[t];
-        GraphPlace {
-            tensor: spec.name.clone(),
-            index,
-            layer: spec.layer + 1,
-            location: locate(graph, t, index),
-        }
-    }
-
-    /// `conv1.weight[17]`.
-    pub fn label(&self) -> String {
-        format!("{}[{}]", self.tensor, self.index)
-    }
-}
 
 /// One coordinate of a graph check.
 pub type GraphCoordReport = CoordReport<GraphPlace>;
@@ -54,18 +22,11 @@ impl Location for GraphPlace {
     }
 }
 
-/// The layer's words for flat index `index` of graph tensor `t`.
-pub fn locate(graph: &Graph, t: usize, index: usize) -> String {
-    let spec = &graph.tensors()[t];
-    let node = &graph.nodes()[spec.layer];
-    node.layer.locate(t - node.tensors().start, index)
-}
-
 /// The report row of a graph check's coordinate `c` (shared with `plumb merge`).
-pub(super) fn coord_report(graph: &Graph, r: &GraphCheck, c: &OutsideCoord) -> GraphCoordReport {
+pub(super) fn coord_report(places: &Places, r: &GraphCheck, c: &OutsideCoord) -> GraphCoordReport {
     let Entry { tensor, index } = c.coord;
     let floor = r.floors.get(tensor).copied().unwrap_or(0.0);
-    CoordReport::new(GraphPlace::new(graph, tensor, index), c, floor)
+    CoordReport::new(places.place(tensor, index), c, floor)
 }
 
 /// Runs the check of the graph's own gradient on loaded inputs and builds its report.
@@ -87,29 +48,44 @@ pub fn graph_check_report(
     )?;
     let facts = super::RunFacts {
         description: loaded.desc.path.clone(),
-        description_hash: graph_description_hash(&loaded.desc),
+        description_hash: loaded.description_hash.clone(),
         weights: loaded.weights_source.clone(),
         data: loaded.data_source.clone(),
         seed: config.seed,
         samples: b.len(),
         step: config.step,
         shard: config.shard,
-        gradient_norms: result
-            .analytic
+        gradient_norms: loaded
+            .desc
+            .files
             .iter()
-            .map(|g| g.iter().map(|v| v * v).sum::<f64>().sqrt())
+            .map(|f| {
+                let sum: f64 = f
+                    .tensors
+                    .iter()
+                    .flat_map(|&t| result.analytic[t].iter())
+                    .map(|v| v * v)
+                    .sum();
+                sum.sqrt()
+            })
             .collect(),
     };
-    Ok(build_graph(&facts, graph, &result, worst_n))
+    Ok(build_graph(
+        &facts,
+        &Places::new(&loaded.desc),
+        &result,
+        worst_n,
+    ))
 }
 
 /// The report of a graph check's results, by the one builder of check reports.
 pub fn build_graph(
     facts: &super::RunFacts,
-    graph: &Graph,
+    places: &Places,
     result: &GraphCheck,
     worst_n: usize,
 ) -> GraphCheckReport {
+    let graph = places.graph();
     let checked = Checked {
         method: result.method,
         precision: result.precision,
@@ -117,26 +93,30 @@ pub fn build_graph(
         tolerance: result.tolerance,
         coverage: &result.coverage,
         floors: &result.floors,
-        tensors: graph
-            .tensors()
+        tensors: places
+            .files()
             .iter()
-            .map(|t| (t.name.clone(), t.layer + 1, t.spec.shape.iter().product()))
+            .enumerate()
+            .map(|(f, file)| (file.name.clone(), file.layer + 1, places.file_size(f)))
             .collect(),
         coords: result
             .coords
             .iter()
-            .map(|c| (c.coord.tensor, coord_report(graph, result, c)))
+            .map(|c| {
+                (
+                    places.file_of(c.coord.tensor),
+                    coord_report(places, result, c),
+                )
+            })
             .collect(),
         directions: result
             .directions
             .iter()
             .map(|d| {
                 let report = DirectionReport {
-                    scope: d
-                        .tensor
-                        .map_or("all".to_string(), |t| graph.tensors()[t].name.clone()),
+                    scope: d.tensor.map_or("all".to_string(), |t| places.span(t)),
                     layer: d.tensor.map(|t| graph.tensors()[t].layer + 1),
-                    bias: None,
+                    bias: d.tensor.and_then(|t| places.span_bias(t)),
                     analytic: d.analytic,
                     numeric: d.numeric,
                     rel_error: d.rel_error,
@@ -144,7 +124,7 @@ pub fn build_graph(
                     status: d.status,
                     one_step: d.one_step,
                 };
-                (d.tensor, report)
+                (d.tensor.map(|t| places.file_of(t)), report)
             })
             .collect(),
     };

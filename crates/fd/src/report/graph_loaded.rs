@@ -6,6 +6,7 @@
 use std::path::{Path, PathBuf};
 
 use ndarray::ArrayD;
+use plumb_engine::graph::Dense;
 use plumb_engine::{Batch, Init, Loss, Rng};
 use plumb_formats::{
     AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
@@ -30,6 +31,10 @@ pub struct GraphLoaded {
     pub data_source: DataSource,
     /// The axis order of the data file (channels-first for a synthetic batch).
     pub order: AxisOrder,
+    /// The network's identity in reports (`description_hash`): [`graph_description_hash`], or
+    /// for a dense description its dense hash ([`super::description_hash`], which covers its
+    /// conventions), as baselines and shards have always named it.
+    pub description_hash: String,
 }
 
 /// Where a graph run's weights and data come from.
@@ -149,6 +154,7 @@ impl GraphLoaded {
             )));
         }
         Ok(GraphLoaded {
+            description_hash: graph_description_hash(&desc),
             desc,
             params,
             weights_source,
@@ -156,6 +162,29 @@ impl GraphLoaded {
             data_source,
             order,
         })
+    }
+}
+
+impl GraphLoaded {
+    /// A dense description's run on its layer graph (`AnyDescription::Dense` carries both): the
+    /// same weights, each augmented matrix split into the graph's weight and bias, and the same
+    /// batch, sources and messages as the dense loading gave.
+    pub fn from_dense(loaded: super::Loaded, desc: GraphDescription) -> GraphLoaded {
+        let mut params = Vec::with_capacity(2 * loaded.weights.layers().len());
+        for matrix in loaded.weights.layers() {
+            let (w, b) = Dense::split(matrix);
+            params.push(w.into_dyn());
+            params.push(b.into_dyn());
+        }
+        GraphLoaded {
+            description_hash: super::description_hash(&loaded.desc),
+            desc,
+            params,
+            weights_source: loaded.weights_source,
+            batch: loaded.batch,
+            data_source: loaded.data_source,
+            order: AxisOrder::ChannelsFirst,
+        }
     }
 }
 

@@ -7,6 +7,7 @@ mod grad;
 mod graph_check;
 mod graph_loaded;
 mod locate;
+mod place;
 mod shards;
 
 pub use check::{
@@ -17,15 +18,13 @@ pub use grad::{
     GradReport, Gradient, TensorGradient, dense_input_gradient, gradient_report,
     graph_gradient_report,
 };
-pub use graph_check::{
-    GraphCheckReport, GraphCoordReport, GraphPlace, build_graph, graph_check_report,
-    locate as graph_locate,
-};
+pub use graph_check::{GraphCheckReport, GraphCoordReport, build_graph, graph_check_report};
 pub use graph_loaded::{
     GraphInputs, GraphLoadError, GraphLoaded, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES,
     graph_description_hash, widest_float,
 };
 pub use locate::{Place, Tensors};
+pub use place::{GraphPlace, Places, location as graph_location};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard, shard_description};
 
 use plumb_engine::{Batch, Weights};

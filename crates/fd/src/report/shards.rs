@@ -13,11 +13,10 @@ use serde::de::DeserializeOwned;
 use serde_json::Value;
 
 use super::check::{CheckReport, CoordReport, DirectionReport, RunFacts, build, coord_report};
-use super::graph_check::{
-    GraphCheckReport, GraphPlace, build_graph, coord_report as graph_coord_report,
-};
+use super::graph_check::{GraphCheckReport, build_graph, coord_report as graph_coord_report};
 use super::graph_description_hash;
 use super::locate::{Place, Tensors};
+use super::place::{GraphPlace, Places};
 use crate::{
     CheckResult, CoordCheck, Coverage, DirectionCheck, Entry, GraphCheck, Method, OutsideDirection,
     Precision, Sample, Scope, graph_sample,
@@ -397,33 +396,30 @@ impl Shards<GraphPlace> {
         desc: &GraphDescription,
         worst_n: usize,
     ) -> Result<GraphCheckReport, ShardError> {
+        self.merge_with_hash(desc, graph_description_hash(desc), worst_n)
+    }
+
+    /// [`Shards::merge_graph`] of a description whose identity is `hash` (a dense
+    /// description's: `description_hash` of it, as its check writes).
+    pub fn merge_with_hash(
+        &self,
+        desc: &GraphDescription,
+        hash: String,
+        worst_n: usize,
+    ) -> Result<GraphCheckReport, ShardError> {
         let first = &self.list[0];
         let at = |key: &str| format!("{}: `{key}`", first.path.display());
         let r = &first.report;
-        let hash = graph_description_hash(desc);
         self.same_description(&desc.path, &hash)?;
         let graph = &desc.graph;
         let specs = graph.tensors();
-        let sizes: Vec<usize> = specs
-            .iter()
-            .map(|t| t.spec.shape.iter().product())
-            .collect();
-        let layers: Vec<usize> = specs.iter().map(|t| t.layer).collect();
-        let by_name: HashMap<&str, usize> = specs
+        let places = Places::new(desc);
+        let files = places.files();
+        let by_name: HashMap<&str, usize> = files
             .iter()
             .enumerate()
-            .map(|(t, s)| (s.name.as_str(), t))
+            .map(|(f, file)| (file.name.as_str(), f))
             .collect();
-        let tensor_of = |name: &str| {
-            by_name.get(name).copied().ok_or_else(|| {
-                let names: Vec<String> = specs.iter().map(|s| format!("`{}`", s.name)).collect();
-                format!(
-                    "`{name}` is not a tensor of {} (its tensors: {})",
-                    desc.path.display(),
-                    list_some(&names)
-                )
-            })
-        };
         let set = self.settings()?;
         let whole = graph_sample(graph, set.sample, r.seed)
             .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
@@ -433,17 +429,26 @@ impl Shards<GraphPlace> {
             whole.len(),
             |s| s.coordinates(),
             |c, at| {
-                let t = tensor_of(&c.place.tensor)?;
-                let index = c.place.index;
-                if index >= sizes[t] {
+                let Some(&f) = by_name.get(c.place.tensor.as_str()) else {
+                    let names: Vec<String> =
+                        files.iter().map(|f| format!("`{}`", f.name)).collect();
+                    return Err(format!(
+                        "`{}` is not a tensor of {}'s weight file (its tensors: {})",
+                        c.place.tensor,
+                        desc.path.display(),
+                        list_some(&names)
+                    ));
+                };
+                let (index, size) = (c.place.index, places.file_size(f));
+                if index >= size {
                     return Err(format!(
                         "index {index} is outside `{}`, whose flat indices run from 0 to {}",
-                        specs[t].name,
-                        sizes[t] - 1
+                        files[f].name,
+                        size - 1
                     ));
                 }
                 let (wt, wk) = whole[at];
-                let expected = GraphPlace::new(graph, wt, wk);
+                let expected = places.place(wt, wk);
                 if c.place != expected {
                     return Err(format!(
                         "{} (layer {}, {}) is not the run's item {}, {} (layer {}, {}): the shard \
@@ -457,21 +462,31 @@ impl Shards<GraphPlace> {
                         expected.location
                     ));
                 }
-                Ok(c.check_at(Entry { tensor: t, index }))
+                Ok(c.check_at(Entry {
+                    tensor: wt,
+                    index: wk,
+                }))
             },
         )?;
-        let spans =
-            |t: Option<usize>| t.map_or("every tensor".to_string(), |t| specs[t].name.clone());
+        let spans = |t: Option<usize>| t.map_or("every tensor".to_string(), |t| places.span(t));
         let directions = self.rejoin(
             "direction",
             per_part.saturating_mul(1 + specs.len()),
             |s| &s.report.directions,
             |d: &DirectionReport, at| {
-                let tensor = match d.scope.as_str() {
-                    "all" => None,
-                    name => Some(tensor_of(name)?),
-                };
-                if d.layer != tensor.map(|t| layers[t] + 1) || d.bias.is_some() {
+                let expected = scope_at(at, per_part);
+                let scope = expected.map_or("all".to_string(), |t| places.span(t));
+                if d.scope != scope {
+                    return Err(format!(
+                        "spans {}, and the run's item {} spans {}: the shard was edited",
+                        d.scope,
+                        at + 1,
+                        spans(expected)
+                    ));
+                }
+                let layer = expected.map(|t| specs[t].layer + 1);
+                let bias = expected.and_then(|t| places.span_bias(t));
+                if d.layer != layer || d.bias != bias {
                     return Err(format!(
                         "`layer` {} and `bias` {} are not those of its scope `{}`: the shard was \
                          edited",
@@ -480,17 +495,8 @@ impl Shards<GraphPlace> {
                         d.scope
                     ));
                 }
-                let expected = scope_at(at, per_part);
-                if tensor != expected {
-                    return Err(format!(
-                        "spans {}, and the run's item {} spans {}: the shard was edited",
-                        spans(tensor),
-                        at + 1,
-                        spans(expected)
-                    ));
-                }
                 Ok(OutsideDirection {
-                    tensor,
+                    tensor: expected,
                     analytic: d.analytic,
                     numeric: d.numeric,
                     rel_error: d.rel_error,
@@ -508,11 +514,12 @@ impl Shards<GraphPlace> {
                 specs.len()
             ));
         }
-        if r.tensors.len() != specs.len()
-            || r.tensors.iter().zip(specs).any(|(a, b)| a.name != b.name)
+        if r.tensors.len() != files.len()
+            || r.tensors.iter().zip(files).any(|(a, b)| a.name != b.name)
         {
             return refuse(format!(
-                "{} are not the graph's tensors in its order: the shard was edited",
+                "{} are not the weight file's tensors in the description's order: the shard was \
+                 edited",
                 at("tensors")
             ));
         }
@@ -528,12 +535,12 @@ impl Shards<GraphPlace> {
             analytic: Vec::new(),
         };
         let facts = self.facts(hash, set.step);
-        let mut report = build_graph(&facts, graph, &result, worst_n);
+        let mut report = build_graph(&facts, &places, &result, worst_n);
         report.coordinates = Some(
             result
                 .coords
                 .iter()
-                .map(|c| graph_coord_report(graph, &result, c))
+                .map(|c| graph_coord_report(&places, &result, c))
                 .collect(),
         );
         Ok(report)
@@ -715,13 +722,11 @@ fn direction_check(d: &DirectionReport, net: &Network) -> Result<DirectionCheck,
 }
 
 /// The fuzz target's entry (fuzz/fuzz_targets/shard.rs) and the corpus replay's: `bytes` read as
-/// one shard and as a split of one, both as a layer graph's and as a dense check's (the kind a
-/// merge reads them as comes from the description they name); the dense reading's count of
-/// coordinates or its error's message.
+/// one shard and as a split of one (every description's check runs on its layer graph, so that is
+/// how a merge reads them); its count of coordinates or its error's message.
 pub fn fuzz_shard(bytes: &[u8]) -> Result<usize, String> {
     let files = [(PathBuf::from("fuzz.json"), bytes.to_vec())];
     let _ = shard_description(&files);
-    let _ = Shards::<GraphPlace>::parse(&files);
-    let shards = Shards::<Place>::parse(&files).map_err(|e| e.to_string())?;
+    let shards = Shards::<GraphPlace>::parse(&files).map_err(|e| e.to_string())?;
     Ok(shards.list[0].coordinates().len())
 }

@@ -9,7 +9,8 @@ use std::path::{Path, PathBuf};
 
 use plumb_engine::Init;
 use plumb_fd::report::{
-    GraphCheckReport, GraphInputs, GraphLoaded, GraphPlace, Shards, fuzz_shard, graph_check_report,
+    GraphCheckReport, GraphInputs, GraphLoaded, GraphPlace, Places, Shards, fuzz_shard,
+    graph_check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, Sample, graph_sample};
 use plumb_formats::{AxisOrder, GraphDescription};
@@ -131,9 +132,15 @@ fn merged_graph_shards_equal_the_whole_check() {
             .iter()
             .map(|c| (c.place.tensor.clone(), c.place.index))
             .collect();
+        // Located in the weight file (the dense head's augmented matrix holds its weight and
+        // bias): the places of the drawn (tensor, flat index) pairs.
+        let places = Places::new(&l.desc);
         let expected: Vec<(String, usize)> = drawn
             .iter()
-            .map(|&(t, k)| (graph.tensors()[t].name.clone(), k))
+            .map(|&(t, k)| {
+                let p = places.place(t, k);
+                (p.tensor, p.index)
+            })
             .collect();
         assert_eq!(joined, expected, "{what}");
         let counts: Vec<usize> = files
@@ -317,7 +324,7 @@ fn edited_graph_shards_are_refused_naming_the_file() {
 }
 
 /// The fuzz corpus's graph shard (fuzz/README.md) reads as one — only its other half is missing —
-/// and not as a dense check's.
+/// by `plumb merge`'s reader and by the fuzz target's.
 #[test]
 fn the_corpus_graph_shard_reads_as_a_graph_shard() {
     let path =
@@ -330,7 +337,7 @@ fn the_corpus_graph_shard_reads_as_a_graph_shard() {
     );
     let e = fuzz_shard(&files[0].1).unwrap_err();
     assert!(
-        e.starts_with("fuzz.json: not a check report as plumb writes it"),
+        e.contains("2/2 missing") && e.contains("fuzz.json (1/2)"),
         "{e}"
     );
 }

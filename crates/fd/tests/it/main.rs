@@ -11,6 +11,7 @@ mod graph_engine;
 mod graph_kinks;
 mod graph_mistakes;
 mod graph_pass;
+mod graph_places;
 mod graph_seeds;
 mod graph_shards;
 mod graph_units;

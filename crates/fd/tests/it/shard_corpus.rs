@@ -4,8 +4,8 @@
 
 use std::path::{Path, PathBuf};
 
-use plumb_fd::report::{Shards, fuzz_shard};
-use plumb_formats::Description;
+use plumb_fd::report::{GraphPlace, Shards, description_hash, fuzz_shard};
+use plumb_formats::{Description, GraphDescription};
 
 fn corpus() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../../fuzz/corpus/shard")
@@ -34,6 +34,11 @@ fn every_shard_corpus_file_is_read_without_panic() {
 fn hostile_shards_are_refused_naming_what_is_wrong() {
     for (file, says) in [
         ("hostile-schema-999.json", "`schema_version` is 999"),
+        // A dense check's shard of schema version 1 (index arrays, augmented row and column).
+        (
+            "hostile-schema-1-dense.json",
+            "`schema_version` is 1, and this plumb reads 2",
+        ),
         ("hostile-schema-string.json", "`schema_version` is \"1\""),
         (
             "hostile-status-unknown.json",
@@ -70,9 +75,12 @@ fn hostile_shards_are_refused_naming_what_is_wrong() {
 fn a_split_of_one_merges_into_its_own_report() {
     let bytes = std::fs::read(corpus().join("small-1of1.json")).unwrap();
     let shard: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
-    let shards = Shards::parse(&[(PathBuf::from("small-1of1.json"), bytes)]).unwrap();
-    let desc = Description::read(&Path::new("../..").join(shards.description())).unwrap();
-    let merged = shards.merge(&desc, 5).unwrap();
+    let shards = Shards::<GraphPlace>::parse(&[(PathBuf::from("small-1of1.json"), bytes)]).unwrap();
+    // A dense description: its identity is its dense hash, as its check wrote it.
+    let path = Path::new("../..").join(shards.description());
+    let hash = description_hash(&Description::read(&path).unwrap());
+    let desc = GraphDescription::read(&path).unwrap();
+    let merged = shards.merge_with_hash(&desc, hash, 5).unwrap();
     let merged = serde_json::to_value(&merged).unwrap();
     for key in [
         "verdict",
