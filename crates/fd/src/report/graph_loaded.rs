@@ -221,15 +221,22 @@ pub fn widest_float(file: &TensorFile) -> &'static str {
         .map_or("float64", |d| d.name())
 }
 
-/// A graph network's identity, like [`super::description_hash`]: an FNV-1a hash (64 bits) of each
-/// layer's kind, name and shapes and each file tensor's name, shape and storage.
+/// A graph network's identity, like [`super::description_hash`]: an FNV-1a hash (64 bits) of the
+/// loss and its conventions, each layer's kind, name, settings (stride, padding, heads, gate
+/// order…: what changes the function with the same shapes), output shape and activation, and
+/// each file tensor's name, shape and storage. Line numbers and comments do not enter it.
 pub fn graph_description_hash(desc: &GraphDescription) -> String {
-    let mut text = format!("input {}\n", desc.graph.input());
+    let mut text = format!(
+        "input {}\n{:?}\n",
+        desc.graph.input(),
+        desc.graph.loss_config()
+    );
     for (l, n) in desc.layers.iter().zip(desc.graph.nodes()) {
         text.push_str(&format!(
-            "{} {} {} {:?}\n",
+            "{} {} {:?} {} {:?}\n",
             l.kind_name(),
             n.name,
+            l.kind,
             n.layer.output(),
             n.activation
         ));

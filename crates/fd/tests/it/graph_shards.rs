@@ -346,3 +346,30 @@ fn the_corpus_graph_shard_reads_as_a_graph_shard() {
 fn coords(v: &mut Value) -> &mut Vec<Value> {
     v["coordinates"].as_array_mut().unwrap()
 }
+
+/// A shard records the description's identity, and merge refuses shards of another description.
+/// Settings that change the function but not one shape — attention heads, the causal mask, L2,
+/// the reduction — must change that identity (they once did not: the hash held shapes only), and
+/// a comment or blank line must not.
+#[test]
+fn the_graph_identity_follows_every_setting_that_changes_the_function() {
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../examples/pump-attention.toml"),
+    )
+    .unwrap();
+    let hash = |text: &str| {
+        let desc = GraphDescription::parse(Path::new("pump-attention.toml"), text).unwrap();
+        plumb_fd::report::graph_description_hash(&desc)
+    };
+    let base = hash(&text);
+    assert_eq!(hash(&format!("# a comment\n\n{text}")), base);
+    for (what, edited) in [
+        ("heads", text.replace("heads = 2", "heads = 4")),
+        ("causal", text.replace("causal = true", "causal = false")),
+        ("l2", text.replace("l2 = 0.01", "l2 = 0.02")),
+        ("reduction", format!("reduction = \"sum\"\n{text}")),
+    ] {
+        assert_ne!(edited, text, "{what}: the edit must apply");
+        assert_ne!(hash(&edited), base, "{what} left the identity unchanged");
+    }
+}
