@@ -92,8 +92,8 @@ fn check_reports_per_tensor_of_the_layout_and_locates_coordinates() {
         ]
     );
     assert_eq!(j["worst"].as_array().unwrap().len(), 2);
-    // A split-transposed weight of unit u, input i (both from 1) of a layer of U units is stored
-    // in × out: flat index (i − 1)·U + (u − 1) of its tensor; a bias's is u − 1 (docs/json.md).
+    // A split-transposed weight of unit u, input i (both from 0) of a layer of U units is stored
+    // in × out: flat index i·U + u of its tensor; a bias's is u (docs/json.md).
     for w in j["worst"].as_array().unwrap() {
         let location = w["location"].as_str().unwrap();
         let words: Vec<&str> = location
@@ -105,10 +105,10 @@ fn check_reports_per_tensor_of_the_layout_and_locates_coordinates() {
         let index = w["index"].as_u64().unwrap();
         if w["tensor"].as_str().unwrap().ends_with(".bias") {
             assert_eq!(words[2..], ["bias"], "{w}");
-            assert_eq!(index, unit - 1, "{w}");
+            assert_eq!(index, unit, "{w}");
         } else {
             let input: u64 = words[3].parse().unwrap();
-            assert_eq!(index, (input - 1) * units + unit - 1, "{w}");
+            assert_eq!(index, input * units + unit, "{w}");
         }
     }
     let table = plumb(&["check", "nets/small.toml"]);
@@ -202,12 +202,12 @@ fn sweep_writes_a_plot_and_marks_the_best_step() {
         (coords[0]["tensor"].as_str(), coords[0]["index"].as_u64()),
         (Some("layer2"), Some(3))
     );
-    assert_eq!(coords[0]["location"], "unit 1, input 3");
+    assert_eq!(coords[0]["location"], "unit 0, input 2");
     assert_eq!(
         (coords[1]["tensor"].as_str(), coords[1]["index"].as_u64()),
         (Some("layer1"), Some(20))
     );
-    assert_eq!(coords[1]["location"], "unit 5, bias");
+    assert_eq!(coords[1]["location"], "unit 4, bias");
     for m in coords[0]["methods"].as_array().unwrap() {
         if m["method"] == "central" {
             // NR §5.7 [pub]: the best central step lies near ∛ε ≈ 6e-6 (within a factor of 30 here).

@@ -175,19 +175,19 @@ fn file_order(desc: &GraphDescription, file: &FileTensor) -> Option<Vec<usize>> 
     Some(order)
 }
 
-/// The layer's words for flat index `index` of graph tensor `t`: a dense layer's as its
-/// augmented matrix numbers them (unit from 1, input from 1, column 0 the bias), any other kind's
-/// from the kind (`Kind::locate`).
+/// The layer's words for flat index `index` of graph tensor `t`, counted from 0 like flat indices
+/// and every kind's own words (`Kind::locate`): a dense layer's say which entries are the bias,
+/// since an augmented file tensor holds the weight and the bias together.
 pub fn location(graph: &Graph, t: usize, index: usize) -> String {
     let spec = &graph.tensors()[t];
     let node = &graph.nodes()[spec.layer];
     let local = t - node.tensors().start;
     if node.layer.kind() == "dense" {
         return match spec.spec.role {
-            Role::Bias => format!("unit {}, bias", index + 1),
+            Role::Bias => format!("unit {index}, bias"),
             _ => {
                 let fan_in = spec.spec.shape[1];
-                format!("unit {}, input {}", index / fan_in + 1, index % fan_in + 1)
+                format!("unit {}, input {}", index / fan_in, index % fan_in)
             }
         };
     }

@@ -37,15 +37,15 @@ fn an_augmented_matrix_numbers_its_entries_with_the_bias_in_column_zero() {
     let d = desc(DENSE);
     let places = Places::new(&d);
     // Layer 1: weight 5 × 4 (graph tensor 0), bias (graph tensor 1), file `layer1` 5 × 5.
-    let w = places.place(0, 2 * 4 + 3); // unit 3, input 4 (from 1)
+    let w = places.place(0, 2 * 4 + 3); // unit 2, input 3 (from 0)
     assert_eq!(
         (w.tensor.as_str(), w.index, w.layer),
         ("layer1", 2 * 5 + 4, 1)
     );
-    assert_eq!(w.location, "unit 3, input 4");
+    assert_eq!(w.location, "unit 2, input 3");
     let b = places.place(1, 2);
     assert_eq!((b.tensor.as_str(), b.index), ("layer1", 2 * 5));
-    assert_eq!(b.location, "unit 3, bias");
+    assert_eq!(b.location, "unit 2, bias");
     assert_eq!(places.span(0), "layer1 (weights)");
     assert_eq!(places.span(1), "layer1 (bias column)");
     assert_eq!(places.span_bias(1), Some(true));
@@ -60,10 +60,10 @@ fn a_split_transposed_weight_is_indexed_in_its_in_by_out_order() {
         "inputs = 4\nlayout = \"split-transposed\"\n",
     ));
     let places = Places::new(&d);
-    // Layer 2: weight 3 × 5 canonical, stored 5 × 3; unit 2 (from 0: 1), input 4 (from 0: 3).
+    // Layer 2: weight 3 × 5 canonical, stored 5 × 3; unit 1, input 3 (from 0).
     let w = places.place(2, 5 + 3);
     assert_eq!((w.tensor.as_str(), w.index), ("layer2.weight", 3 * 3 + 1));
-    assert_eq!(w.location, "unit 2, input 4");
+    assert_eq!(w.location, "unit 1, input 3");
     let b = places.place(3, 1);
     assert_eq!((b.tensor.as_str(), b.index), ("layer2.bias", 1));
     assert_eq!(places.span(2), "layer2.weight");
