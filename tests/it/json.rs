@@ -493,21 +493,7 @@ struct ConventionsJson {
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 #[allow(dead_code)]
-struct PlaceJson {
-    tensor: String,
-    index: Vec<usize>,
-    layer: usize,
-    row: usize,
-    column: usize,
-    unit: usize,
-    bias: bool,
-}
-
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-#[allow(dead_code)]
 struct WorstJson {
-    place: Option<PlaceJson>,
     /// The layer's words for the entry (unit and input; the graph tensor when the file's holds two).
     at: Option<String>,
     index: Vec<usize>,

@@ -6,7 +6,6 @@ use std::path::PathBuf;
 
 use plumb_engine::Reduction;
 use plumb_fd::CheckError;
-use plumb_fd::report::Place;
 use plumb_formats::{DType, Tensor, TensorFile};
 use plumb_report::{DataSource, Finding, Severity, Verdict, WeightsSource, figure, number as num};
 use serde::{Deserialize, Serialize};
@@ -88,9 +87,6 @@ impl NameReport {
 /// own terms.
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Worst {
-    /// Always null: schema 1 kept the field of the dense engine's located coordinate, which `at`
-    /// and `index` replace (docs/json.md).
-    pub place: Option<Place>,
     /// The place in the layer's own terms (`Kind::locate`: unit and input, channel and kernel
     /// position, gate, head; the graph tensor's name first when the file tensor holds two).
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -277,7 +273,6 @@ fn tensor_report(j: &TensorJudgement, outside: &[Tensor], layer: Option<usize>) 
         let u = outside.iter().find(|t| t.name == j.name).expect("compared");
         let index = u.index_of(c.worst);
         Worst {
-            place: None,
             at: j.place.clone(),
             index,
             outside: c.worst_outside,
