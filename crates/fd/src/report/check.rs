@@ -3,19 +3,16 @@
 
 use std::path::PathBuf;
 
-use plumb_engine::Weights;
 use plumb_report::{
     DataSource, Finding, SCHEMA_VERSION, Severity, StripSeries, Verdict, WeightsSource, figure,
     number as num,
 };
 use serde::{Deserialize, Serialize};
 
-use super::Loaded;
-use super::locate::{Place, Tensors};
+use super::locate::Place;
 use crate::{
-    CheckConfig, CheckError, CheckResult, CoordCheck, Coverage, DirectionCheck, FLOOR, Method,
-    ONE_STEP_BAND, ONE_STEP_BOUND, Part, Precision, Progress, SETTLE, Scope, Settlement, Status,
-    UNSETTLED_SHARE, check, worst_first,
+    CoordCheck, Coverage, FLOOR, Method, ONE_STEP_BAND, ONE_STEP_BOUND, Precision, SETTLE,
+    Settlement, Status, UNSETTLED_SHARE, worst_first,
 };
 
 /// The most random directions per part a run takes (each costs four whole forward passes).
@@ -266,45 +263,6 @@ pub struct CheckReport<C = CoordReport> {
     pub rel_errors: Vec<StripSeries>,
 }
 
-/// The report row of dense coordinate `i` of a check's results.
-pub fn coord_report(tensors: &Tensors, result: &CheckResult, i: usize) -> CoordReport {
-    let c = &result.coords[i];
-    CoordReport::new(tensors.place(c.coord), c, result.floors[c.coord.layer])
-}
-
-/// Runs the check of the reference gradient and builds its report (the command and the demo).
-pub fn check_report(
-    loaded: &Loaded,
-    config: &CheckConfig,
-    worst_n: usize,
-    progress: Progress<'_>,
-) -> Result<CheckReport, CheckError> {
-    let Loaded {
-        desc,
-        weights,
-        batch,
-        ..
-    } = loaded;
-    let result = check(&desc.network, weights, batch, config, progress)?;
-    let tensors = Tensors::new(desc);
-    let facts = RunFacts {
-        description: desc.path.clone(),
-        description_hash: super::description_hash(desc),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        seed: config.seed,
-        samples: batch.len(),
-        step: config.step,
-        shard: config.shard,
-        gradient_norms: tensors
-            .parts()
-            .iter()
-            .map(|(p, _)| part_norm(&result.analytic, p))
-            .collect(),
-    };
-    Ok(build(&facts, &tensors, &result, worst_n))
-}
-
 /// What a report says of the run besides its results.
 pub struct RunFacts {
     pub description: PathBuf,
@@ -317,87 +275,6 @@ pub struct RunFacts {
     pub shard: Option<(usize, usize)>,
     /// ‖∂J/∂(W, b)‖₂ of each tensor, over all its entries (checked or not).
     pub gradient_norms: Vec<f64>,
-}
-
-/// The 2-norm of a gradient over a part (a tensor under the layout).
-fn part_norm(gradient: &Weights<f64>, part: &Part) -> f64 {
-    let layer = gradient.layer(part.layer);
-    let sum: f64 = layer
-        .indexed_iter()
-        .filter(|((_, col), _)| if *col == 0 { part.bias } else { part.weights })
-        .map(|(_, v)| v * v)
-        .sum();
-    sum.sqrt()
-}
-
-/// The report of a dense check's results (shared with `plumb merge`).
-pub fn build(
-    facts: &RunFacts,
-    tensors: &Tensors,
-    result: &CheckResult,
-    worst_n: usize,
-) -> CheckReport {
-    let parts = tensors.parts();
-    // A coordinate's tensor is looked for among its own layer's only (a scan of every part per
-    // coordinate would be quadratic in a deep network's layers).
-    let tensor_of = |layer: usize, covers: &dyn Fn(&Part) -> bool| {
-        tensors
-            .indices_of_layer(layer)
-            .find(|&i| covers(&parts[i].0))
-            .expect("every coordinate and direction belongs to a tensor of the layout")
-    };
-    let checked = Checked {
-        method: result.method,
-        precision: result.precision,
-        loss: result.loss,
-        tolerance: result.tolerance,
-        coverage: &result.coverage,
-        floors: &result.floors,
-        tensors: tensors
-            .expected
-            .iter()
-            .zip(&parts)
-            .map(|(e, (_, parameters))| (e.name.clone(), e.layer + 1, *parameters))
-            .collect(),
-        coords: (0..result.coords.len())
-            .map(|i| {
-                let c = &result.coords[i];
-                let t = tensor_of(c.coord.layer, &|p| p.contains(c));
-                (t, coord_report(tensors, result, i))
-            })
-            .collect(),
-        directions: result
-            .directions
-            .iter()
-            .map(|d| match d.scope {
-                Scope::Global => (None, direction_report(d, "all".into(), None, None)),
-                Scope::Part { layer, bias } => (
-                    Some(tensor_of(layer, &|p| p.covers(d.scope))),
-                    direction_report(d, tensors.name_of(layer, bias), Some(layer + 1), Some(bias)),
-                ),
-            })
-            .collect(),
-    };
-    build_report(facts, checked, worst_n)
-}
-
-fn direction_report(
-    d: &DirectionCheck,
-    scope: String,
-    layer: Option<usize>,
-    bias: Option<bool>,
-) -> DirectionReport {
-    DirectionReport {
-        scope,
-        layer,
-        bias,
-        analytic: d.analytic,
-        numeric: d.numeric,
-        rel_error: d.rel_error,
-        bound: d.bound,
-        status: d.status,
-        one_step: d.one_step,
-    }
 }
 
 /// A check's results in the report's terms, dense or graph: what [`build_report`] judges.

@@ -12,7 +12,7 @@ mod shards;
 
 pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, Location, MAX_DIRECTIONS,
-    RunFacts, TensorReport, build, check_report, coord_report, remedies,
+    RunFacts, TensorReport, remedies,
 };
 pub use grad::{
     GradReport, Gradient, TensorGradient, dense_input_gradient, gradient_report,

@@ -5,21 +5,18 @@
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
-use plumb_engine::{Coord, Network, Weights};
-use plumb_formats::{Description, GraphDescription};
+use plumb_formats::GraphDescription;
 use plumb_report::SCHEMA_VERSION;
 use serde::Deserialize;
 use serde::de::DeserializeOwned;
 use serde_json::Value;
 
-use super::check::{CheckReport, CoordReport, DirectionReport, RunFacts, build, coord_report};
+use super::check::{CheckReport, CoordReport, DirectionReport, RunFacts};
 use super::graph_check::{GraphCheckReport, build_graph, coord_report as graph_coord_report};
 use super::graph_description_hash;
-use super::locate::{Place, Tensors};
 use super::place::{GraphPlace, Places};
 use crate::{
-    CheckResult, CoordCheck, Coverage, DirectionCheck, Entry, GraphCheck, Method, OutsideDirection,
-    Precision, Sample, Scope, graph_sample,
+    Coverage, Entry, GraphCheck, Method, OutsideDirection, Precision, Sample, graph_sample,
 };
 
 /// The most shards a check can be split into (the bound `--shard` gives).
@@ -142,11 +139,10 @@ fn items<T: for<'de> Deserialize<'de>>(
 }
 
 /// The shards of one split: the same run (inputs and settings) split the same n ways, each share
-/// given exactly once. `P` locates the coordinates: [`Place`] for a dense description (the
-/// default), [`GraphPlace`] for the layer graph — the kind of the description the shards name
-/// ([`shard_description`]).
+/// given exactly once. `P` locates the coordinates: [`GraphPlace`], as every description's check
+/// runs on the layer graph (the dense engine's merge went with its check).
 #[derive(Debug)]
-pub struct Shards<P = Place> {
+pub struct Shards<P = GraphPlace> {
     list: Vec<Shard<P>>,
 }
 
@@ -288,107 +284,10 @@ fn scope_at(at: usize, per_part: usize) -> Option<usize> {
     (at / per_part.max(1)).checked_sub(1)
 }
 
-impl Shards<Place> {
-    /// The whole run's report from its shares, `worst_n` coordinates in its worst list. Refuses a
-    /// description that is not the one the shards ran on, and a dropped, repeated, invented or
-    /// edited item, naming its shard.
-    pub fn merge(&self, desc: &Description, worst_n: usize) -> Result<CheckReport, ShardError> {
-        let first = &self.list[0];
-        let at = |key: &str| format!("{}: `{key}`", first.path.display());
-        let r = &first.report;
-        let hash = super::description_hash(desc);
-        self.same_description(&desc.path, &hash)?;
-        let tensors = Tensors::new(desc);
-        let net = &desc.network;
-        let set = self.settings()?;
-        let whole = crate::select(net, set.sample, r.seed)
-            .map_err(|e| ShardError(format!("{}: {e}", at("coverage.sample"))))?;
-        let per_part = r.coverage.directions_per_part;
-        let parts = 1 + 2 * net.layers().len();
-        let coords: Vec<CoordCheck> = self.rejoin(
-            "coordinate",
-            whole.len(),
-            |s| s.coordinates(),
-            |c, at| {
-                let check = coord_check(c, net)?;
-                if check.coord != whole[at] || c.place != tensors.place(check.coord) {
-                    return Err(format!(
-                        "{} ({}) is not the run's item {}, {} ({}): the shard was edited",
-                        place(check.coord),
-                        c.place.label(),
-                        at + 1,
-                        place(whole[at]),
-                        tensors.place(whole[at]).label()
-                    ));
-                }
-                Ok(check)
-            },
-        )?;
-        let directions: Vec<DirectionCheck> = self.rejoin(
-            "direction",
-            per_part.saturating_mul(parts),
-            |s| &s.report.directions,
-            |d, at| {
-                let check = direction_check(d, net)?;
-                let expected = match scope_at(at, per_part) {
-                    None => Scope::Global,
-                    Some(p) => Scope::Part {
-                        layer: p / 2,
-                        bias: p % 2 == 1,
-                    },
-                };
-                if check.scope != expected {
-                    return Err(format!(
-                        "spans {}, and the run's item {} spans {}: the shard was edited",
-                        span(check.scope),
-                        at + 1,
-                        span(expected)
-                    ));
-                }
-                Ok(check)
-            },
-        )?;
-        if r.floors.len() != net.layers().len() {
-            return refuse(format!(
-                "{} lists {} floors for a network of {} layers",
-                at("floors"),
-                r.floors.len(),
-                net.layers().len()
-            ));
-        }
-        if r.tensors.len() != tensors.expected.len() {
-            return refuse(format!(
-                "{} lists {} tensors, and the description's layout has {}",
-                at("tensors"),
-                r.tensors.len(),
-                tensors.expected.len()
-            ));
-        }
-        let result = CheckResult {
-            method: set.method,
-            precision: set.precision,
-            loss: r.loss,
-            coverage: self.coverage(set.sample, coords.len()),
-            tolerance: r.tolerance,
-            floors: r.floors.clone(),
-            coords,
-            directions,
-            analytic: Weights::new(Vec::new()),
-        };
-        let facts = self.facts(hash, set.step);
-        let mut report = build(&facts, &tensors, &result, worst_n);
-        report.coordinates = Some(
-            (0..result.coords.len())
-                .map(|i| coord_report(&tensors, &result, i))
-                .collect(),
-        );
-        Ok(report)
-    }
-}
-
 impl Shards<GraphPlace> {
-    /// The whole run's report of a layer-graph check from its shares, as [`Shards::merge`] for a
-    /// dense one: a coordinate is (tensor, flat index), each the one of the run's sample that
+    /// The whole run's report of a layer-graph check from its shares, refusing a description
+    /// that is not the one the shards ran on and a dropped, repeated, invented or edited item,
+    /// naming its shard: a coordinate is (tensor, flat index), each the one of the run's sample that
     /// belongs in its place, named as the graph names it; a direction spans every tensor or the
     /// one its place in the run implies.
     pub fn merge_graph(
@@ -658,67 +557,6 @@ fn list_some(items: &[String]) -> String {
         text.push_str(&format!(" and {} more", items.len() - SHOWN));
     }
     text
-}
-
-fn place(c: Coord) -> String {
-    format!("layer {} (row {}, column {})", c.layer + 1, c.row, c.col)
-}
-
-fn span(s: Scope) -> String {
-    match s {
-        Scope::Global => "every parameter".into(),
-        Scope::Part { layer, bias: true } => format!("layer {}'s biases", layer + 1),
-        Scope::Part { layer, bias: false } => format!("layer {}'s other weights", layer + 1),
-    }
-}
-
-/// A 1-based layer of the network, as a 0-based index.
-fn layer_index(layer: usize, net: &Network) -> Result<usize, String> {
-    if (1..=net.layers().len()).contains(&layer) {
-        Ok(layer - 1)
-    } else {
-        Err(format!(
-            "`layer` is {layer}, not a layer of this {}-layer network",
-            net.layers().len()
-        ))
-    }
-}
-
-/// The checker's record of a coordinate the report lists, refusing one outside the network.
-fn coord_check(c: &CoordReport, net: &Network) -> Result<CoordCheck, String> {
-    let layer = layer_index(c.place.layer, net)?;
-    let (rows, cols) = net.layers()[layer].shape();
-    let (row, col) = (c.place.row, c.place.column);
-    if row >= rows || col >= cols {
-        return Err(format!(
-            "(row {row}, column {col}) is not in layer {}'s {rows} × {cols} matrix",
-            layer + 1
-        ));
-    }
-    Ok(c.check_at(Coord { layer, row, col }))
-}
-
-/// The checker's record of a direction the report lists.
-fn direction_check(d: &DirectionReport, net: &Network) -> Result<DirectionCheck, String> {
-    let scope = match (d.layer, d.bias) {
-        (None, _) => Scope::Global,
-        (Some(layer), Some(bias)) => Scope::Part {
-            layer: layer_index(layer, net)?,
-            bias,
-        },
-        (Some(_), None) => return Err("a direction over a layer without `bias`".into()),
-    };
-    Ok(DirectionCheck {
-        scope,
-        analytic: d.analytic,
-        numeric: d.numeric,
-        abs_error: (d.analytic - d.numeric).abs(),
-        rel_error: d.rel_error,
-        bound: d.bound,
-        step: 0.0,
-        status: d.status,
-        one_step: d.one_step,
-    })
 }
 
 /// The fuzz target's entry (fuzz/fuzz_targets/shard.rs) and the corpus replay's: `bytes` read as
