@@ -49,6 +49,28 @@ pub fn file_places(desc: &GraphDescription) -> Vec<Vec<(usize, usize)>> {
         .collect()
 }
 
+/// The file tensors a gradient of `desc` holds, under their file names and file shapes (an
+/// augmented matrix is a weight: its role), and the input gradient when its shape is given.
+pub(crate) fn expected_files(desc: &GraphDescription, input: Option<Vec<usize>>) -> Vec<Expected> {
+    let mut out: Vec<Expected> = desc
+        .files
+        .iter()
+        .map(|f| Expected {
+            name: f.name.clone(),
+            layer: f.layer,
+            shape: f.shape.clone(),
+            bias: f.role == Role::Bias,
+        })
+        .collect();
+    out.extend(input.map(|shape| Expected {
+        name: INPUT.into(),
+        layer: 0,
+        shape,
+        bias: false,
+    }));
+    out
+}
+
 /// The graph's hypotheses as the file's tensors.
 struct FileView<'a> {
     problem: GraphProblem<'a>,
@@ -150,25 +172,11 @@ pub fn judge_files(
     let input = outside.iter().find(|u| u.name == INPUT);
     let problem = GraphProblem::new(graph, params, x, y, input.is_some())?;
     let view = FileView::new(problem, desc, order);
-    let mut expected: Vec<Expected> = desc
-        .files
-        .iter()
-        .map(|f| Expected {
-            name: f.name.clone(),
-            layer: f.layer,
-            shape: f.shape.clone(),
-            bias: f.role == Role::Bias && f.storage != FileStorage::Augmented,
-        })
-        .collect();
-    if input.is_some() {
+    let input_shape = input.map(|_| {
         let zeros = Array2::<f64>::zeros((x.nrows(), x.ncols()));
-        expected.push(Expected {
-            name: INPUT.into(),
-            layer: 0,
-            shape: desc.input_tensor_in(zeros.view(), order).shape,
-            bias: false,
-        });
-    }
+        desc.input_tensor_in(zeros.view(), order).shape
+    });
+    let expected = expected_files(desc, input_shape);
     let mut judged = judge(&view, outside, &expected, tolerances);
     let places = file_places(desc);
     let specs = graph.tensors();

@@ -9,7 +9,7 @@ use std::collections::HashMap;
 use std::path::Path;
 
 use ndarray::{Array2, ArrayD, Ix2, IxDyn};
-use plumb_engine::graph::{Dense, GraphError, Role, Shape};
+use plumb_engine::graph::{Dense, GraphError, Shape};
 use plumb_fd::report::GraphLoaded;
 use plumb_fd::{CheckConfig, Method, Precision, Status, check_graph};
 use plumb_formats::{AxisOrder, FileStorage, GraphDescription, TensorFile};
@@ -22,30 +22,9 @@ use super::{
     TensorReport, epsilon, loss_verdict, mismatch_finding, name_findings, stored_dtypes,
     tensor_report, uncertified_finding, widened_finding,
 };
+use crate::file_view::expected_files;
 use crate::{Expected, INPUT, Tolerances, bind_gradient, judge_files, judge_graph, parse_map};
 use plumb_formats::Tensor;
-
-/// The file tensors a gradient of `desc` holds, under their file names and file shapes, and the
-/// input gradient `input` of shape `input_shape`.
-fn expected_files(desc: &GraphDescription, input_shape: &[usize]) -> Vec<Expected> {
-    let mut out: Vec<Expected> = desc
-        .files
-        .iter()
-        .map(|f| Expected {
-            name: f.name.clone(),
-            layer: f.layer,
-            shape: f.shape.clone(),
-            bias: f.role == Role::Bias,
-        })
-        .collect();
-    out.push(Expected {
-        name: INPUT.into(),
-        layer: 0,
-        shape: input_shape.to_vec(),
-        bias: false,
-    });
-    out
-}
 
 /// The outside gradient per graph tensor, canonical shapes: a file tensor of the declared shape is
 /// converted from its storage; one of another shape is passed as found, to be judged only against
@@ -122,7 +101,7 @@ pub fn compare_graph_report(
     let (widened, dtypes) = stored_dtypes(&file);
     let single = !dtypes.contains(&plumb_formats::DType::F64);
     let map = parse_map(map).map_err(names_error)?;
-    let expected = expected_files(desc, &graph_input_shape(loaded));
+    let expected = expected_files(desc, Some(graph_input_shape(loaded)));
     let outside: Vec<Tensor> = file.tensors;
     let (outside, bindings) = bind_gradient(&expected, outside, &map).map_err(names_error)?;
     // Each graph tensor is held to the precision its file tensor was stored (or computed) in.
