@@ -290,17 +290,7 @@ fn measure(
             .then(|| {
                 let p32: Vec<ArrayD<f32>> = params.iter().map(|p| p.mapv(|v| v as f32)).collect();
                 let (x, y) = (probe.x.mapv(|v| v as f32), probe.y.mapv(|v| v as f32));
-                probe_pass(
-                    g,
-                    &p32,
-                    params,
-                    x.view(),
-                    y.view(),
-                    &named,
-                    t,
-                    seed,
-                    |_, _| Vec::new(),
-                )
+                probe_pass(g, &p32, params, x.view(), y.view(), &named, t, seed)
             })
             .flatten();
         let (h, f, mut pass_findings, ins) = match in_f32 {
@@ -369,7 +359,8 @@ type Pass = (
     Vec<InsideHealth>,
 );
 
-/// The probe pass in the scalar `S`, `None` when its outputs overflow.
+/// The probe pass in the narrower scalar `S` of a network without inside measures, `None` when
+/// its outputs overflow.
 #[allow(clippy::too_many_arguments)]
 fn probe_pass<S: LayerScalar>(
     g: &Graph,
@@ -380,14 +371,14 @@ fn probe_pass<S: LayerScalar>(
     named: &[Option<String>],
     t: &Thresholds,
     seed: u64,
-    inside_of: impl Fn(usize, &Node) -> Vec<plumb_engine::graph::Inside>,
 ) -> Option<Pass> {
     let trace = g.forward(params, x);
     let finite = trace
         .outputs
         .iter()
         .all(|o| o.iter().all(|v| v.re().is_finite()));
-    finite.then(|| probe_pass_with(g, params, wide, x, y, &trace, named, t, seed, inside_of))
+    let no_inside = |_: usize, _: &Node| Vec::new();
+    finite.then(|| probe_pass_with(g, params, wide, x, y, &trace, named, t, seed, no_inside))
 }
 
 /// Unit health and the inside measures per layer (hidden layers only for health: a confident
