@@ -134,23 +134,7 @@ impl Settings {
             }
             let judged = base.judge(&path.display().to_string(), &mut doc, &findings);
             verdict = judged.verdict;
-            if let Some(obj) = value.as_object_mut() {
-                obj.insert(
-                    "baseline".into(),
-                    serde_json::json!({"path": path, "changes": judged.changes.len(), "worse": judged.worse}),
-                );
-                if let Some(list) = obj.get_mut("findings").and_then(|f| f.as_array_mut()) {
-                    list.extend(
-                        judged
-                            .changes
-                            .iter()
-                            .map(|f| serde_json::to_value(f).expect("a finding serialises")),
-                    );
-                }
-                if judged.worse > 0 {
-                    obj.insert("verdict".into(), serde_json::json!("fail"));
-                }
-            }
+            judged.annotate(&path.display().to_string(), &mut value);
             every.extend(judged.changes);
         }
         doc.fail_cases_for(&every);

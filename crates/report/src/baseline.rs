@@ -27,6 +27,31 @@ pub struct Judged {
     pub verdict: Verdict,
 }
 
+impl Judged {
+    /// Writes the judgement into a run's JSON report: a `baseline` object (`path`, `changes`,
+    /// `worse`), the changes appended to `findings`, and `"verdict": "fail"` when a change is at
+    /// the run's `fail_on` level or worse (docs/json.md).
+    pub fn annotate(&self, path: &str, report: &mut serde_json::Value) {
+        let Some(obj) = report.as_object_mut() else {
+            return;
+        };
+        obj.insert(
+            "baseline".into(),
+            serde_json::json!({"path": path, "changes": self.changes.len(), "worse": self.worse}),
+        );
+        if let Some(list) = obj.get_mut("findings").and_then(|f| f.as_array_mut()) {
+            list.extend(
+                self.changes
+                    .iter()
+                    .map(|f| serde_json::to_value(f).expect("a finding serialises")),
+            );
+        }
+        if self.worse > 0 {
+            obj.insert("verdict".into(), serde_json::json!("fail"));
+        }
+    }
+}
+
 /// What identifies the network a run was made on.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct NetworkId {
