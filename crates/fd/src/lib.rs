@@ -56,7 +56,7 @@ pub use graph_check::{
     GraphCheck, check_graph, check_graph_gradient, graph_sample,
     loss_magnitude as graph_loss_magnitude, sweep_graph,
 };
-pub use gross::{gradient_magnitude, loss_magnitude};
+pub use gross::{gradient_magnitude, graph_gradient_magnitude, loss_magnitude};
 pub use method::{
     Estimate, Method, ONE_STEP_BAND, ONE_STEP_BOUND, Target, complex_estimate,
     second_difference_steps, smooth_across,

@@ -6,13 +6,14 @@
 use std::path::PathBuf;
 use std::time::{Duration, Instant};
 
+use ndarray::ArrayD;
 use plumb_diagnose::report::{certify_graph, judge_graph_gradient, judge_graph_loss};
 use plumb_diagnose::{INPUT, Tolerances};
 use plumb_engine::Batch;
 use plumb_fd::report::GraphLoaded;
 use plumb_fd::{
     Change, ExternalConfig, Inside, Method, OutsideTensor, Precision, Sample, check_external,
-    graph_loss_magnitude,
+    graph_gradient_magnitude, graph_loss_magnitude,
 };
 use plumb_formats::Tensor;
 use plumb_formats::shape_text;
@@ -153,13 +154,17 @@ pub fn probe(
     let fitting: Vec<usize> = (0..params.len())
         .filter(|&i| grads[i].0.shape == params[i].shape)
         .collect();
+    // A dense description's entries carry the bound on their pieces that `check` gives them,
+    // from the reference (the program computes the same sums, so its round-off follows them);
+    // other kinds and a black box are judged without it.
+    let mut gross = reference.map_or_else(Vec::new, |l| file_gross(l, b));
     let outside: Vec<OutsideTensor> = fitting
         .iter()
         .map(|&i| OutsideTensor {
             name: params[i].name.clone(),
             values: params[i].data.clone(),
             gradient: grads[i].1.clone(),
-            gross: Vec::new(),
+            gross: gross.get_mut(i).map(std::mem::take).unwrap_or_default(),
         })
         .collect();
     let total: usize = params.iter().map(|p| p.data.len()).sum();
@@ -373,4 +378,65 @@ fn check_reply_shapes(
         }
     }
     Ok(())
+}
+
+/// [`graph_gradient_magnitude`] of the reference, as the file's tensors (an augmented dense
+/// matrix holds its weight's and bias's bounds as it holds their values); empty when the graph
+/// has none (not a chain of dense layers).
+fn file_gross(l: &GraphLoaded, b: &Batch) -> Vec<Vec<f64>> {
+    let g = &l.desc.graph;
+    let Some(per_tensor) = graph_gradient_magnitude(g, &l.params, b.x.view(), b.y.view()) else {
+        return Vec::new();
+    };
+    let arrays: Option<Vec<ArrayD<f64>>> = per_tensor
+        .into_iter()
+        .zip(g.tensors())
+        .map(|(v, s)| ArrayD::from_shape_vec(s.spec.shape.clone(), v).ok())
+        .collect();
+    arrays
+        .and_then(|a| l.desc.to_file(&a).ok())
+        .map_or_else(Vec::new, |files| {
+            files.into_iter().map(|t| t.data).collect()
+        })
+}
+
+#[cfg(test)]
+mod tests {
+    use std::path::Path;
+
+    use plumb_engine::Init;
+    use plumb_fd::report::GraphInputs;
+    use plumb_formats::{AxisOrder, GraphDescription};
+
+    use super::*;
+
+    /// The triangle inequality: a sum's bound Σ|pieces| is at least |Σ pieces|, so the bound of
+    /// every file entry is at least the reference gradient's magnitude there — which also shows
+    /// that each bound went to its own entry of the augmented matrices (bias column 0 included).
+    #[test]
+    fn a_dense_file_entrys_bound_covers_its_gradient() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../examples/pump.toml");
+        let desc = GraphDescription::read(&path).unwrap();
+        let inputs = GraphInputs {
+            weights: None,
+            data: None,
+            order: AxisOrder::ChannelsFirst,
+            init: Init::GlorotUniform,
+            seed: 5,
+            samples: 12,
+        };
+        let l = GraphLoaded::load(desc, &inputs).unwrap();
+        let g = &l.desc.graph;
+        let grad = g.gradient(&l.params, l.batch.x.view(), l.batch.y.view(), None);
+        let files = l.desc.to_file(&grad.params).unwrap();
+        let gross = file_gross(&l, &l.batch);
+        assert_eq!(gross.len(), files.len());
+        for (f, b) in files.iter().zip(&gross) {
+            assert_eq!(f.data.len(), b.len(), "{}", f.name);
+            for (k, (a, m)) in f.data.iter().zip(b).enumerate() {
+                assert!(a.abs() <= m * (1.0 + 1e-12), "{}[{k}]: |{a}| > {m}", f.name);
+                assert!(*m > 0.0, "{}[{k}]", f.name);
+            }
+        }
+    }
 }
