@@ -1,66 +1,19 @@
 //! `plumb sweep`: the error of each method against step size, for chosen coordinates.
 
-use std::path::PathBuf;
-
 use anyhow::{Context, Result, bail};
-use plumb_engine::Rng;
 use plumb_engine::graph::Graph;
-use plumb_fd::{CheckConfig, Method, Sample, SweepPlan, steps};
+use plumb_fd::report::{CoordSweep, GraphLoaded, Places, SweepAsk, SweepReport, sweep_report};
+use plumb_fd::{Method, steps};
 use plumb_formats::write_file;
-use plumb_report::{
-    Block, Case, Cell, Document, Finding, Severity, StepPanel, Table, Tone, Verdict, step_plot,
-};
-use serde::Serialize;
+use plumb_report::{Block, Case, Cell, Document, StepPanel, Table, Tone, Verdict, step_plot};
 
 use crate::args::SweepArgs;
 use crate::commands::check::precision;
-use crate::inputs::{DataSource, WeightsSource, check_output, load_graph};
-use crate::output::{SCHEMA_VERSION, Settings, num};
-use plumb_fd::report::{GraphLoaded, GraphPlace, Places};
-use plumb_fd::{Curve, Precision, check_graph, sweep_graph};
-use plumb_report::NetworkId;
+use crate::inputs::{check_output, load_graph};
+use crate::output::{Settings, num};
 
 /// The most steps a sweep takes (each costs a few loss evaluations per method and coordinate).
 const MAX_STEPS: usize = 200;
-/// Coordinates the default choice adds at random to the worst one.
-const RANDOM_COORDS: usize = 3;
-
-#[derive(Clone, Debug, Serialize)]
-pub struct MethodCurve {
-    pub method: &'static str,
-    /// Relative error at each step (null where not finite).
-    pub errors: Vec<f64>,
-    pub best_step: f64,
-    pub best_error: f64,
-}
-
-/// A swept coordinate, located in the weight file ([`GraphPlace`]).
-#[derive(Clone, Debug, Serialize)]
-pub struct CoordSweep<P = GraphPlace> {
-    #[serde(flatten)]
-    pub place: P,
-    pub analytic: f64,
-    /// Why this coordinate was swept: "asked", "worst" or "random".
-    pub chosen: &'static str,
-    pub methods: Vec<MethodCurve>,
-}
-
-/// The JSON report of `plumb sweep` (docs/json.md).
-#[derive(Serialize)]
-pub struct SweepReport<P = GraphPlace> {
-    pub verdict: Verdict,
-    pub schema_version: u32,
-    pub command: &'static str,
-    pub description: PathBuf,
-    pub weights: WeightsSource,
-    pub data: DataSource,
-    pub precision: &'static str,
-    pub tolerance: f64,
-    pub steps: Vec<f64>,
-    pub coordinates: Vec<CoordSweep<P>>,
-    pub plot: Option<PathBuf>,
-    pub findings: Vec<Finding>,
-}
 
 /// Parses FROM:TO:N.
 fn parse_steps(text: &str) -> Result<Vec<f64>> {
@@ -151,106 +104,56 @@ pub fn run(args: &SweepArgs, settings: &Settings) -> Result<Verdict> {
     // A dense description runs on its layer graph like every other kind, and also takes its
     // augmented matrix's LAYER:ROW:COL.
     let (loaded, network) = load_graph(&args.inputs, settings.seed)?;
-    let dense = loaded.desc.is_dense();
-    run_graph(args, &loaded, network, dense, &methods, hs, settings)
-}
-
-/// The sweep on the layer graph: coordinates are TENSOR:INDEX, a tensor of the weight file and
-/// the flat index in its shape there (or a graph tensor and the flat index in its canonical
-/// shape), and for a dense description also LAYER:ROW:COL.
-fn run_graph(
-    args: &SweepArgs,
-    loaded: &GraphLoaded,
-    network: NetworkId,
-    dense: bool,
-    methods: &[Method],
-    hs: Vec<f64>,
-    settings: &Settings,
-) -> Result<Verdict> {
-    let graph = &loaded.desc.graph;
     let places = Places::new(&loaded.desc);
-    let prec = precision(args.precision);
-    let asked = args
+    let coords = args
         .coords
         .as_deref()
-        .map(|t| parse_graph_coords(t, &places, loaded, dense))
+        .map(|t| parse_graph_coords(t, &places, &loaded))
         .transpose()?;
-    let b = &loaded.batch;
-    // As for a dense network: the gradient in the precision swept, and by default the worst
-    // coordinate of a quick central check and a few at random.
-    let mut config = CheckConfig::new(Method::Central, prec);
-    config.sample = Some(Sample::Total(graph.parameters().min(2000)));
-    config.directions = Some(0);
-    config.seed = settings.seed;
-    let quick = check_graph(
-        graph,
-        &loaded.params,
-        b.x.view(),
-        b.y.view(),
-        &config,
-        &|_, _| {},
-    )?;
-    let chosen: Vec<((usize, usize), &'static str)> = match asked {
-        Some(c) => c.into_iter().map(|c| (c, "asked")).collect(),
-        None => {
-            let worst = quick
-                .coords
-                .iter()
-                .min_by(|a, b| plumb_fd::worse_error(a.rel_error, b.rel_error))
-                .map(|c| (c.coord.tensor, c.coord.index))
-                .expect("a network has parameters");
-            let mut out = vec![(worst, "worst")];
-            let mut rng = Rng::new(settings.seed ^ 0x5ee9);
-            let sizes: Vec<usize> = quick.analytic.iter().map(|a| a.len()).collect();
-            let all: usize = sizes.iter().sum();
-            let mut tries = 0;
-            while out.len() < (RANDOM_COORDS + 1).min(all) && tries < 100 {
-                tries += 1;
-                let mut k = rng.below(all);
-                let mut t = 0;
-                while k >= sizes[t] {
-                    k -= sizes[t];
-                    t += 1;
-                }
-                if !out.iter().any(|(o, _)| *o == (t, k)) {
-                    out.push(((t, k), "random"));
-                }
+    let ask = SweepAsk {
+        coords,
+        methods: methods.clone(),
+        steps: hs,
+        precision: precision(args.precision),
+        seed: settings.seed,
+        plot: args.plot.clone(),
+    };
+    let report = sweep_report(&loaded, &ask)?;
+    let eps = ask.precision.epsilon();
+    let panels = step_panels(&report.coordinates, &report.steps, eps);
+    if let Some(p) = &args.plot {
+        let svg = step_plot(&panels).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
+        write_file(p, svg.as_bytes(), settings.existing())
+            .with_context(|| format!("{}: cannot write the plot", p.display()))?;
+        settings.note(&format!("wrote the plot to {}", p.display()));
+    }
+    let mut doc = document(&report, &methods, eps);
+    doc.command = "sweep".into();
+    doc.network = Some(network);
+    doc.cases = report
+        .coordinates
+        .iter()
+        .map(|c| {
+            let best = c.best_error();
+            let mut case = Case::new(format!("sweep {}", c.place.label()), report.agrees(c))
+                .figure("best_error", best);
+            for m in &c.methods {
+                case = case.figure(&format!("{} best_error", m.method), m.best_error);
             }
-            out
-        }
-    };
-    let plan = SweepPlan {
-        coords: chosen.iter().map(|(c, _)| *c).collect(),
-        methods: methods.to_vec(),
-        steps: hs.clone(),
-        precision: prec,
-    };
-    let curves = sweep_graph(
-        graph,
-        &loaded.params,
-        b.x.view(),
-        b.y.view(),
-        &quick.analytic,
-        &plan,
-    )?;
-    let run = Swept {
-        description: loaded.desc.path.clone(),
-        weights: loaded.weights_source.clone(),
-        data: loaded.data_source.clone(),
-        network,
-        precision: prec,
-    };
-    let why: Vec<&'static str> = chosen.iter().map(|(_, w)| *w).collect();
-    finish(
-        args,
-        settings,
-        &run,
-        methods,
-        hs,
-        &curves,
-        &why,
-        |&(t, k)| places.place(t, k),
-    )
+            if report.agrees(c) {
+                case
+            } else {
+                case.failing("no-agreement", "no method agrees at any step")
+            }
+        })
+        .collect();
+    if settings.html.is_some()
+        && let Ok(svg) = step_plot(&panels)
+    {
+        let b = crate::commands::check::plot("Error against step size, per method", svg);
+        crate::commands::check::insert_before_findings(&mut doc, vec![b]);
+    }
+    settings.emit(&report, doc)
 }
 
 /// Parses TENSOR:INDEX,… against the description: a tensor of the weight file and a flat index
@@ -260,9 +163,9 @@ fn parse_graph_coords(
     text: &str,
     places: &Places,
     loaded: &GraphLoaded,
-    dense: bool,
 ) -> Result<Vec<(usize, usize)>> {
     let desc = &loaded.desc;
+    let dense = desc.is_dense();
     let tensors = desc.graph.tensors();
     let names: Vec<&str> = desc.files.iter().map(|f| f.name.as_str()).collect();
     text.split(',')
@@ -310,155 +213,8 @@ fn parse_graph_coords(
         .collect()
 }
 
-/// How a swept coordinate is named in the report and the document.
-pub trait Located {
-    fn label(&self) -> String;
-    fn tensor(&self) -> &str;
-    fn layer(&self) -> usize;
-    /// Where it is, in the layer's terms.
-    fn detail(&self) -> String;
-}
-
-impl Located for GraphPlace {
-    fn label(&self) -> String {
-        GraphPlace::label(self)
-    }
-    fn tensor(&self) -> &str {
-        &self.tensor
-    }
-    fn layer(&self) -> usize {
-        self.layer
-    }
-    fn detail(&self) -> String {
-        format!("layer {}, {}", self.layer, self.location)
-    }
-}
-
-/// What a sweep ran on.
-struct Swept {
-    description: PathBuf,
-    weights: WeightsSource,
-    data: DataSource,
-    network: NetworkId,
-    precision: Precision,
-}
-
-/// The report of the curves, its plot and document, emitted.
-#[allow(clippy::too_many_arguments)]
-fn finish<K, P: Located + Serialize>(
-    args: &SweepArgs,
-    settings: &Settings,
-    run: &Swept,
-    methods: &[Method],
-    hs: Vec<f64>,
-    curves: &[Curve<K>],
-    why: &[&'static str],
-    place_of: impl Fn(&K) -> P,
-) -> Result<Verdict> {
-    let prec = run.precision;
-    let tolerance = prec.tolerance();
-    let mut findings = Vec::new();
-    let mut out = Vec::new();
-    for (curve, why) in curves.iter().zip(why) {
-        let place = place_of(&curve.coord);
-        let mcurves: Vec<MethodCurve> = methods
-            .iter()
-            .enumerate()
-            .map(|(m, method)| {
-                let b = curve.best(m, 0.0);
-                MethodCurve {
-                    method: method.name(),
-                    errors: (0..hs.len()).map(|i| curve.error(m, i, 0.0)).collect(),
-                    best_step: hs[b],
-                    best_error: curve.error(m, b, 0.0),
-                }
-            })
-            .collect();
-        let best = mcurves
-            .iter()
-            .map(|m| m.best_error)
-            .fold(f64::INFINITY, f64::min);
-        if best > tolerance {
-            findings.push(
-                Finding::new(
-                    "no-agreement",
-                    Severity::Error,
-                    format!(
-                        "no method at any step brings the numeric derivative within {tolerance:e} of the analytic one at {} (best {}): the gradient is likely wrong here, or the loss is not smooth at this point",
-                        place.label(),
-                        num(best)
-                    ),
-                )
-                .tensor(place.tensor())
-                .layer(place.layer())
-                .figure("best_error", best),
-            );
-        }
-        out.push(CoordSweep {
-            place,
-            analytic: curve.analytic,
-            chosen: why,
-            methods: mcurves,
-        });
-    }
-
-    let eps = prec.epsilon();
-    let panels = step_panels(&out, &hs, eps);
-    if let Some(p) = &args.plot {
-        let svg = step_plot(&panels).map_err(|e| anyhow::anyhow!("cannot draw the plot: {e}"))?;
-        write_file(p, svg.as_bytes(), settings.existing())
-            .with_context(|| format!("{}: cannot write the plot", p.display()))?;
-        settings.note(&format!("wrote the plot to {}", p.display()));
-    }
-    let report = SweepReport {
-        verdict: Verdict::of(&findings),
-        schema_version: SCHEMA_VERSION,
-        command: "sweep",
-        description: run.description.clone(),
-        weights: run.weights.clone(),
-        data: run.data.clone(),
-        precision: prec.name(),
-        tolerance,
-        steps: hs,
-        coordinates: out,
-        plot: args.plot.clone(),
-        findings,
-    };
-    let mut doc = document(&report, methods, eps);
-    doc.command = "sweep".into();
-    doc.network = Some(run.network.clone());
-    doc.cases = report
-        .coordinates
-        .iter()
-        .map(|c| {
-            let best = c
-                .methods
-                .iter()
-                .map(|m| m.best_error)
-                .fold(f64::INFINITY, f64::min);
-            let mut case = Case::new(format!("sweep {}", c.place.label()), best <= tolerance)
-                .figure("best_error", best);
-            for m in &c.methods {
-                case = case.figure(&format!("{} best_error", m.method), m.best_error);
-            }
-            if best > tolerance {
-                case.failing("no-agreement", "no method agrees at any step")
-            } else {
-                case
-            }
-        })
-        .collect();
-    if settings.html.is_some()
-        && let Ok(svg) = step_plot(&panels)
-    {
-        let b = crate::commands::check::plot("Error against step size, per method", svg);
-        crate::commands::check::insert_before_findings(&mut doc, vec![b]);
-    }
-    settings.emit(&report, doc)
-}
-
 /// One plot panel per swept coordinate: every method's error against the step.
-fn step_panels<P: Located>(coords: &[CoordSweep<P>], steps: &[f64], eps: f64) -> Vec<StepPanel> {
+fn step_panels(coords: &[CoordSweep], steps: &[f64], eps: f64) -> Vec<StepPanel> {
     coords
         .iter()
         .map(|c| StepPanel {
@@ -479,7 +235,7 @@ fn step_panels<P: Located>(coords: &[CoordSweep<P>], steps: &[f64], eps: f64) ->
         .collect()
 }
 
-fn document<P: Located>(r: &SweepReport<P>, methods: &[Method], eps: f64) -> Document {
+fn document(r: &SweepReport, methods: &[Method], eps: f64) -> Document {
     let mut doc = Document::new("plumb sweep — error against step size");
     doc.push(Block::Facts(vec![
         ("description".into(), r.description.display().to_string()),
@@ -499,9 +255,10 @@ fn document<P: Located>(r: &SweepReport<P>, methods: &[Method], eps: f64) -> Doc
     ));
     for c in &r.coordinates {
         doc.push(Block::Heading(format!(
-            "{} — {} ({}); analytic {:.6e}",
+            "{} — layer {}, {} ({}); analytic {:.6e}",
             c.place.label(),
-            c.place.detail(),
+            c.place.layer,
+            c.place.location,
             c.chosen,
             c.analytic
         )));

@@ -1,4 +1,4 @@
-//! The reports of `plumb check`, `plumb merge` and `plumb grad`: typed (serialised as docs/json.md says, and read
+//! The reports of `plumb check`, `plumb merge`, `plumb sweep` and `plumb grad`: typed (serialised as docs/json.md says, and read
 //! back by merge), built from the checker's results by the rules here, so that the command line
 //! only parses, calls, renders and exits.
 
@@ -9,6 +9,7 @@ mod graph_loaded;
 mod locate;
 mod place;
 mod shards;
+mod sweep;
 
 pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, Location, MAX_DIRECTIONS,
@@ -26,6 +27,7 @@ pub use graph_loaded::{
 pub use locate::{Place, Tensors};
 pub use place::{GraphPlace, Places, location as graph_location};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard, shard_description};
+pub use sweep::{CoordSweep, MethodCurve, SweepAsk, SweepReport, sweep_report};
 
 use plumb_engine::{Batch, Weights};
 use plumb_formats::Description;

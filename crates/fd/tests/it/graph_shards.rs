@@ -7,34 +7,14 @@
 
 use std::path::{Path, PathBuf};
 
-use plumb_engine::Init;
+use plumb_formats::GraphDescription;
+
+use crate::graph_common::{loaded, net};
 use plumb_fd::report::{
-    GraphCheckReport, GraphInputs, GraphLoaded, GraphPlace, Places, Shards, fuzz_shard,
-    graph_check_report,
+    GraphCheckReport, GraphLoaded, GraphPlace, Places, Shards, fuzz_shard, graph_check_report,
 };
 use plumb_fd::{CheckConfig, Method, Precision, Sample, graph_sample};
-use plumb_formats::{AxisOrder, GraphDescription};
 use serde_json::Value;
-
-fn net(name: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("../../fixtures/nets")
-        .join(name)
-}
-
-/// The description's weights and batch drawn from seed 3 (Glorot uniform, `samples` samples).
-fn loaded(name: &str, samples: usize) -> GraphLoaded {
-    let desc = GraphDescription::read(&net(name)).unwrap();
-    let inputs = GraphInputs {
-        weights: None,
-        data: None,
-        order: AxisOrder::ChannelsFirst,
-        init: Init::GlorotUniform,
-        seed: 3,
-        samples,
-    };
-    GraphLoaded::load(desc, &inputs).unwrap()
-}
 
 /// One way of checking a network.
 struct Run {

@@ -18,4 +18,5 @@ mod graph_units;
 mod one_step;
 mod settle;
 mod shard_corpus;
+mod sweep_report;
 mod verdicts;

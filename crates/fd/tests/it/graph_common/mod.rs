@@ -4,14 +4,18 @@
 
 #![allow(dead_code)]
 
+use std::path::{Path, PathBuf};
+
 use ndarray::{Array2, ArrayD, IxDyn};
 use plumb_engine::graph::{
     Add, Attention, BatchNorm, Conv, ConvSettings, Dense, Embedding, Flatten, GlobalAvgPool, Graph,
     GraphBuilder, Gru, LayerNorm, LossConfig, Lstm, Padding, Pool, PoolKind, RmsNorm, Rnn, Role,
     Shape,
 };
-use plumb_engine::{Activation, Loss, Rng};
+use plumb_engine::{Activation, Init, Loss, Rng};
+use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_fd::{CheckConfig, GraphCheck, Method, Precision, Status, check_graph};
+use plumb_formats::{AxisOrder, GraphDescription};
 
 /// One test case: a graph, parameters and a batch.
 pub struct Case {
@@ -430,4 +434,26 @@ pub fn worst(r: &GraphCheck) -> String {
         })
         .collect::<Vec<_>>()
         .join("; ")
+}
+
+/// A description of fixtures/nets.
+pub fn net(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../../fixtures/nets")
+        .join(name)
+}
+
+/// The description's weights and batch drawn from seed 3 (Glorot uniform, `samples` samples),
+/// loaded as every command loads them.
+pub fn loaded(name: &str, samples: usize) -> GraphLoaded {
+    let desc = GraphDescription::read(&net(name)).unwrap();
+    let inputs = GraphInputs {
+        weights: None,
+        data: None,
+        order: AxisOrder::ChannelsFirst,
+        init: Init::GlorotUniform,
+        seed: 3,
+        samples,
+    };
+    GraphLoaded::load(desc, &inputs).unwrap()
 }
