@@ -371,6 +371,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let (m, o, op) = (
             x.nrows(),
@@ -400,18 +401,20 @@ impl<S: LayerScalar> Layer<S> for Conv {
             let flat: Vec<S> = swapped.iter().copied().collect();
             dw = ArrayD::from_shape_vec(IxDyn(&shape), flat).expect("same element count");
         }
-        let dcols = d.dot(&self.matrix(&params[0], flipped));
-        let scatter = if mistake == Some("overlap-overwritten") {
-            Scatter::Overwrite
-        } else {
-            Scatter::Sum
-        };
-        let offset = if mistake == Some("padding-offset") {
-            [0, 0]
-        } else {
-            self.window.before
-        };
-        let dx = self.window.scatter(dcols.view(), m, scatter, offset);
+        let dx = need_input.then(|| {
+            let dcols = d.dot(&self.matrix(&params[0], flipped));
+            let scatter = if mistake == Some("overlap-overwritten") {
+                Scatter::Overwrite
+            } else {
+                Scatter::Sum
+            };
+            let offset = if mistake == Some("padding-offset") {
+                [0, 0]
+            } else {
+                self.window.before
+            };
+            self.window.scatter(dcols.view(), m, scatter, offset)
+        });
         let mut grads = vec![dw];
         if self.settings.bias {
             grads.push(d.sum_axis(Axis(0)).into_dyn());

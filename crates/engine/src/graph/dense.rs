@@ -167,6 +167,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let w = params[0]
             .view()
@@ -176,14 +177,16 @@ impl<S: LayerScalar> Layer<S> for Dense {
         let d = reshape(dout.to_owned(), (dout.nrows() * r, self.units));
         let dw = d.t().dot(&self.rows(x));
         let db = d.sum_axis(Axis(0));
-        let dx = if mistake == Some("bias-rows-shifted") {
-            let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
-            let augmented = Dense::join(&w.to_owned(), &b.to_owned());
-            d.dot(&augmented.slice(s![.., ..self.fan_in()]))
-        } else {
-            d.dot(&w)
-        };
-        let dx = reshape(dx, (x.nrows(), self.input.size()));
+        let dx = need_input.then(|| {
+            let dx = if mistake == Some("bias-rows-shifted") {
+                let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+                let augmented = Dense::join(&w.to_owned(), &b.to_owned());
+                d.dot(&augmented.slice(s![.., ..self.fan_in()]))
+            } else {
+                d.dot(&w)
+            };
+            reshape(dx, (x.nrows(), self.input.size()))
+        });
         Back {
             params: vec![dw.into_dyn(), db.into_dyn()],
             dx,
