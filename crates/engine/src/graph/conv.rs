@@ -24,6 +24,7 @@ use super::{
     unravel,
 };
 use crate::Scalar;
+use crate::product::matmul;
 
 /// How a convolution pads its input.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -382,7 +383,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         // dout as rows (sample, position) × out-channels, the layout of the forward product.
         let d = Array2::from_shape_fn((m * op, o), |(r, c)| dout[[r / op, c * op + r % op]]);
         let flipped = mistake == Some("kernel-flipped");
-        let mut dw = d.t().dot(&cols);
+        let mut dw = matmul(d.t(), cols.view());
         if flipped {
             let taps = self.window.taps();
             dw = Array2::from_shape_fn(dw.raw_dim(), |(r, c)| {
@@ -402,7 +403,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
             dw = ArrayD::from_shape_vec(IxDyn(&shape), flat).expect("same element count");
         }
         let dx = need_input.then(|| {
-            let dcols = d.dot(&self.matrix(&params[0], flipped));
+            let dcols = matmul(d.view(), self.matrix(&params[0], flipped).view());
             let scatter = if mistake == Some("overlap-overwritten") {
                 Scatter::Overwrite
             } else {
