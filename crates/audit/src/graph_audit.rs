@@ -530,7 +530,7 @@ fn graph_flow<S: LayerScalar>(
     trace: &plumb_engine::graph::Trace<S>,
     seed: u64,
 ) -> Vec<LayerFlow> {
-    let (grad, _) = g.backward(params, x, y, trace, None);
+    let (grad, _) = g.backward(params, x, y, trace, None, false);
     let mut rng = Rng::new(seed ^ 0x5_1697);
     g.nodes()
         .iter()

@@ -289,6 +289,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         &trace,
         None,
         &bug_hooks,
+        false,
     );
     let outside = on_graph.desc.to_file(&buggy)?;
     let (bug_tensors, bug_findings) =

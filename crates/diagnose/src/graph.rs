@@ -71,13 +71,19 @@ impl<'a> GraphProblem<'a> {
     /// The gradient of a backward pass with a kind's mistake planted and the departures of
     /// `hooks`, as named tensors.
     pub fn departed(&self, planted: Option<&Planted>, hooks: &Hooks) -> Vec<Tensor> {
-        let (params, input) =
-            self.graph
-                .backward_hooked(self.params, self.x, self.y, &self.trace, planted, hooks);
+        let (params, input) = self.graph.backward_hooked(
+            self.params,
+            self.x,
+            self.y,
+            &self.trace,
+            planted,
+            hooks,
+            self.with_input,
+        );
         self.named(params, input)
     }
 
-    fn named(&self, params: Vec<ArrayD<f64>>, input: Array2<f64>) -> Vec<Tensor> {
+    fn named(&self, params: Vec<ArrayD<f64>>, input: Option<Array2<f64>>) -> Vec<Tensor> {
         let mut out: Vec<Tensor> = self
             .graph
             .tensors()
@@ -91,7 +97,7 @@ impl<'a> GraphProblem<'a> {
                 )
             })
             .collect();
-        if self.with_input {
+        if let Some(input) = input {
             out.push(Tensor::new(
                 INPUT,
                 vec![input.nrows(), input.ncols()],

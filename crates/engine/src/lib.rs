@@ -28,6 +28,7 @@ pub mod graph;
 mod init;
 mod loss;
 mod network;
+mod product;
 mod rng;
 mod scalar;
 mod variant;

@@ -83,11 +83,12 @@ impl<S: LayerScalar> Layer<S> for Add {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let dskip = (mistake != Some("skip-gradient-dropped")).then(|| dout.to_owned());
         Back {
             params: Vec::new(),
-            dx: dout.to_owned(),
+            dx: need_input.then(|| dout.to_owned()),
             dskip,
         }
     }

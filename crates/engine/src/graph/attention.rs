@@ -241,6 +241,7 @@ impl<S: LayerScalar> Layer<S> for Attention {
         step: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let (t, d, w) = (self.seq.steps, self.head_width(), self.seq.width);
         let m = x.nrows();
@@ -301,15 +302,17 @@ impl<S: LayerScalar> Layer<S> for Attention {
             }
         }
         let rows = self.seq.rows(x);
-        let mut dx = Array2::zeros((m * t, w));
+        let mut dx = need_input.then(|| Array2::zeros((m * t, w)));
         for (j, g) in [dq, dk, dv].into_iter().enumerate() {
             grads[2 * j] = g.t().dot(&rows).into_dyn();
             grads[2 * j + 1] = g.sum_axis(Axis(0)).into_dyn();
-            dx += &g.dot(&mat(&params[2 * j]));
+            if let Some(dx) = dx.as_mut() {
+                *dx += &g.dot(&mat(&params[2 * j]));
+            }
         }
         Back {
             params: grads,
-            dx: self.seq.batch_of_rows(&dx),
+            dx: dx.map(|dx| self.seq.batch_of_rows(&dx)),
             dskip: None,
         }
     }

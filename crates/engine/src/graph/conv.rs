@@ -24,6 +24,7 @@ use super::{
     unravel,
 };
 use crate::Scalar;
+use crate::product::matmul;
 
 /// How a convolution pads its input.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -371,6 +372,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let (m, o, op) = (
             x.nrows(),
@@ -381,7 +383,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         // dout as rows (sample, position) × out-channels, the layout of the forward product.
         let d = Array2::from_shape_fn((m * op, o), |(r, c)| dout[[r / op, c * op + r % op]]);
         let flipped = mistake == Some("kernel-flipped");
-        let mut dw = d.t().dot(&cols);
+        let mut dw = matmul(d.t(), cols.view());
         if flipped {
             let taps = self.window.taps();
             dw = Array2::from_shape_fn(dw.raw_dim(), |(r, c)| {
@@ -400,18 +402,20 @@ impl<S: LayerScalar> Layer<S> for Conv {
             let flat: Vec<S> = swapped.iter().copied().collect();
             dw = ArrayD::from_shape_vec(IxDyn(&shape), flat).expect("same element count");
         }
-        let dcols = d.dot(&self.matrix(&params[0], flipped));
-        let scatter = if mistake == Some("overlap-overwritten") {
-            Scatter::Overwrite
-        } else {
-            Scatter::Sum
-        };
-        let offset = if mistake == Some("padding-offset") {
-            [0, 0]
-        } else {
-            self.window.before
-        };
-        let dx = self.window.scatter(dcols.view(), m, scatter, offset);
+        let dx = need_input.then(|| {
+            let dcols = matmul(d.view(), self.matrix(&params[0], flipped).view());
+            let scatter = if mistake == Some("overlap-overwritten") {
+                Scatter::Overwrite
+            } else {
+                Scatter::Sum
+            };
+            let offset = if mistake == Some("padding-offset") {
+                [0, 0]
+            } else {
+                self.window.before
+            };
+            self.window.scatter(dcols.view(), m, scatter, offset)
+        });
         let mut grads = vec![dw];
         if self.settings.bias {
             grads.push(d.sum_axis(Axis(0)).into_dyn());

@@ -24,6 +24,7 @@ use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s
 use super::{
     Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
 };
+use crate::product::{add_matmul, matmul};
 
 /// A dense layer bound to its input shape.
 #[derive(Clone, Debug)]
@@ -153,8 +154,13 @@ impl<S: LayerScalar> Layer<S> for Dense {
             .into_dimensionality::<Ix2>()
             .expect("weight");
         let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
-        let mut z = self.rows(x).dot(&w.t());
-        z += &b;
+        let rows = self.rows(x);
+        // The bias first and the product added to it: one pass over z.
+        let mut z = b
+            .broadcast((rows.nrows(), self.units))
+            .expect("one bias per unit")
+            .to_owned();
+        add_matmul(&mut z, rows, w.t());
         let m = x.nrows();
         let out = reshape(z, (m, self.output().size()));
         Step::plain(out)
@@ -167,6 +173,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let w = params[0]
             .view()
@@ -174,16 +181,18 @@ impl<S: LayerScalar> Layer<S> for Dense {
             .expect("weight");
         let r = self.input.rows();
         let d = reshape(dout.to_owned(), (dout.nrows() * r, self.units));
-        let dw = d.t().dot(&self.rows(x));
+        let dw = matmul(d.t(), self.rows(x));
         let db = d.sum_axis(Axis(0));
-        let dx = if mistake == Some("bias-rows-shifted") {
-            let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
-            let augmented = Dense::join(&w.to_owned(), &b.to_owned());
-            d.dot(&augmented.slice(s![.., ..self.fan_in()]))
-        } else {
-            d.dot(&w)
-        };
-        let dx = reshape(dx, (x.nrows(), self.input.size()));
+        let dx = need_input.then(|| {
+            let dx = if mistake == Some("bias-rows-shifted") {
+                let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+                let augmented = Dense::join(&w.to_owned(), &b.to_owned());
+                matmul(d.view(), augmented.slice(s![.., ..self.fan_in()]))
+            } else {
+                matmul(d.view(), w)
+            };
+            reshape(dx, (x.nrows(), self.input.size()))
+        });
         Back {
             params: vec![dw.into_dyn(), db.into_dyn()],
             dx,

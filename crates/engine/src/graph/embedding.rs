@@ -116,6 +116,7 @@ impl<S: LayerScalar> Layer<S> for Embedding {
         _: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let n = self.size;
         let overwrite = mistake == Some("embedding-rows-overwritten");
@@ -131,7 +132,8 @@ impl<S: LayerScalar> Layer<S> for Embedding {
         }
         Back {
             params: vec![table.into_dyn()],
-            dx: Array2::zeros(x.raw_dim()),
+            // Token ids are data: the loss does not move with them.
+            dx: need_input.then(|| Array2::zeros(x.raw_dim())),
             dskip: None,
         }
     }

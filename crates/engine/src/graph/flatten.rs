@@ -43,10 +43,11 @@ impl<S: LayerScalar> Layer<S> for Flatten {
         _: &Step<S>,
         dout: ArrayView2<S>,
         _: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         Back {
             params: Vec::new(),
-            dx: dout.to_owned(),
+            dx: need_input.then(|| dout.to_owned()),
             dskip: None,
         }
     }

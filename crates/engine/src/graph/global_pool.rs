@@ -86,12 +86,14 @@ impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
         _: &Step<S>,
         dout: ArrayView2<S>,
         _: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let (p, scale) = (
             self.positions,
             S::one() / S::from_f64(self.positions as f64),
         );
-        let dx = Array2::from_shape_fn(x.raw_dim(), |(i, q)| dout[[i, q / p]] * scale);
+        let dx = need_input
+            .then(|| Array2::from_shape_fn(x.raw_dim(), |(i, q)| dout[[i, q / p]] * scale));
         Back {
             params: Vec::new(),
             dx,

@@ -152,7 +152,7 @@ impl Cell for GruCell {
             block(saved, 2, units),
             block(saved, 3, units),
         );
-        let (w, uw) = (mat(&p[0]), mat(&p[1]));
+        let uw = mat(&p[1]);
         let one = S::one();
         let dz = Zip::from(dh)
             .and(h)
@@ -207,6 +207,6 @@ impl Cell for GruCell {
             dax.sum_axis(Axis(0)).into_dyn(),
             dah.sum_axis(Axis(0)).into_dyn(),
         ];
-        (terms, dax.dot(&w), vec![dhp])
+        (terms, dax, vec![dhp])
     }
 }

@@ -162,10 +162,7 @@ impl Cell for LstmCell {
             da.t().dot(&prev[0]).into_dyn(),
             da.sum_axis(Axis(0)).into_dyn(),
         ];
-        (
-            terms,
-            da.dot(&mat(&p[0])),
-            vec![da.dot(&mat(&p[1])), dc_prev],
-        )
+        let dprev = vec![da.dot(&mat(&p[1])), dc_prev];
+        (terms, da, dprev)
     }
 }

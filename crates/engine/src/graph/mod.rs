@@ -149,8 +149,9 @@ impl<S> Step<S> {
 pub struct Back<S> {
     /// One gradient per declared parameter tensor, canonical shapes.
     pub params: Vec<ArrayD<S>>,
-    /// The gradient with respect to the layer's input (m × input size).
-    pub dx: Array2<S>,
+    /// The gradient with respect to the layer's input (m × input size); `None` when the pass was
+    /// told nobody reads it (the first layer's, unless the caller wants the input gradient).
+    pub dx: Option<Array2<S>>,
     /// The gradient with respect to the tapped layer's output (`add` only); `None` when none
     /// flows there.
     pub dskip: Option<Array2<S>>,
@@ -241,7 +242,9 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
 
     /// The gradients of the layer's parameters and input from `dout`, the gradient of its output.
     /// `mistake`, one of the kind's [catalogued codes](Kind::mistakes), asks for the gradient that
-    /// mistake would produce instead.
+    /// mistake would produce instead. `need_input` false says nobody reads the input gradient:
+    /// the kind leaves [`Back::dx`] `None` and skips its work (for a dense first layer over many
+    /// inputs, a third of the backward pass).
     fn backward(
         &self,
         params: &[ArrayD<S>],
@@ -249,6 +252,7 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         step: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S>;
 
     /// The kind's incremental-evaluation hint: the step after one parameter entry moved

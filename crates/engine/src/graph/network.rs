@@ -902,8 +902,8 @@ impl Graph {
         total
     }
 
-    /// The loss and its analytic gradient; `planted` makes one layer's backward pass reproduce a
-    /// catalogued mistake.
+    /// The loss and its analytic gradient, the input gradient included; `planted` makes one
+    /// layer's backward pass reproduce a catalogued mistake.
     pub fn gradient<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -913,15 +913,32 @@ impl Graph {
     ) -> Gradient<S> {
         let trace = self.forward(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (params_grad, input) = self.backward(params, x, y, &trace, planted);
+        let (params_grad, input) = self.backward(params, x, y, &trace, planted, true);
         Gradient {
             loss,
             params: params_grad,
-            input,
+            input: input.expect("asked for"),
         }
     }
 
-    /// The backward pass from a forward pass already made: (parameter gradients, input gradient).
+    /// The loss and the parameters' gradient without the input gradient, which no user of the
+    /// loss's gradient needs (at a dense first layer over many inputs it is a third of the
+    /// backward pass).
+    pub fn parameter_gradient<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        planted: Option<&Planted>,
+    ) -> (S, Vec<ArrayD<S>>) {
+        let trace = self.forward(params, x);
+        let loss = self.loss_of(params, &trace, y);
+        let (grads, _) = self.backward(params, x, y, &trace, planted, false);
+        (loss, grads)
+    }
+
+    /// The backward pass from a forward pass already made: the parameter gradients, and the input
+    /// gradient when `input_gradient` asks for it.
     pub fn backward<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -929,13 +946,24 @@ impl Graph {
         y: ArrayView2<S>,
         trace: &Trace<S>,
         planted: Option<&Planted>,
-    ) -> (Vec<ArrayD<S>>, Array2<S>) {
-        self.backward_hooked(params, x, y, trace, planted, &Hooks::REFERENCE)
+        input_gradient: bool,
+    ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
+        self.backward_hooked(
+            params,
+            x,
+            y,
+            trace,
+            planted,
+            &Hooks::REFERENCE,
+            input_gradient,
+        )
     }
 
     /// The backward pass with the departures of `hooks` (the mistakes any graph can make, as the
     /// diagnosis's hypotheses) besides a kind's `planted` one; [`Hooks::REFERENCE`] departs
-    /// nowhere.
+    /// nowhere. A layer's input gradient is formed only where something reads it: the layers
+    /// below with parameters, or the caller when `input_gradient` asks for the input's.
+    #[allow(clippy::too_many_arguments)]
     pub fn backward_hooked<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -944,7 +972,8 @@ impl Graph {
         trace: &Trace<S>,
         planted: Option<&Planted>,
         hooks: &Hooks,
-    ) -> (Vec<ArrayD<S>>, Array2<S>) {
+        input_gradient: bool,
+    ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
         let x = x.as_standard_layout();
         let y = y.as_standard_layout();
         let m = x.nrows();
@@ -954,7 +983,14 @@ impl Graph {
         // the layer above and from every `add` that taps it.
         let mut upstream: Vec<Option<Array2<S>>> = vec![None; n];
         let mut input_grad = None;
+        // Layer j's input gradient is read when the caller wants the input's or a layer below j
+        // has parameters (every gradient reaching a layer below comes through layer j's input or
+        // through a tap, which `add` hands on whatever this says).
+        let lowest = self.nodes.iter().position(|n| !n.tensors().is_empty());
         for j in (0..n).rev() {
+            if !input_gradient && lowest.is_none_or(|l| j < l) {
+                break; // nothing at or below layer j has a gradient anyone reads
+            }
             let node = &self.nodes[j];
             let step = &trace.steps[j];
             let dz = if j == n - 1 {
@@ -985,6 +1021,7 @@ impl Graph {
                 step,
                 dz.view(),
                 mistake,
+                input_gradient || lowest.is_some_and(|l| l < j),
             );
             for (t, g) in node.tensors().zip(back.params) {
                 grads[t] = g;
@@ -992,10 +1029,10 @@ impl Graph {
             if let (Some(t), Some(ds)) = (node.tap, back.dskip) {
                 accumulate(&mut upstream[t], ds);
             }
-            if j == 0 {
-                input_grad = Some(back.dx);
-            } else {
-                accumulate(&mut upstream[j - 1], back.dx);
+            match back.dx {
+                Some(dx) if j == 0 => input_grad = Some(dx),
+                Some(dx) => accumulate(&mut upstream[j - 1], dx),
+                None => {}
             }
         }
         let (factor, toggled) = match hooks.regularization {
@@ -1013,10 +1050,7 @@ impl Graph {
                 }
             }
         }
-        (
-            grads,
-            input_grad.expect("the first layer hands back the input gradient"),
-        )
+        (grads, input_grad)
     }
 
     /// dJ/dz of the output layer's data term, with the departures of `hooks`.

@@ -249,6 +249,7 @@ impl Norm {
         step: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("standard layout");
@@ -292,39 +293,42 @@ impl Norm {
         let m = x.nrows();
         let groups = self.group_count(m);
         let n = S::from_f64((xs.len() / groups.max(1)) as f64);
-        let mut dx = vec![S::zero(); xs.len()];
-        for g in 0..groups {
-            if mistake == Some("norm-statistics-constant") {
-                for k in self.group(g, m) {
-                    dx[k] = dxhat[k] * inv[g];
+        let dx = need_input.then(|| {
+            let mut dx = vec![S::zero(); xs.len()];
+            for g in 0..groups {
+                if mistake == Some("norm-statistics-constant") {
+                    for k in self.group(g, m) {
+                        dx[k] = dxhat[k] * inv[g];
+                    }
+                    continue;
                 }
-                continue;
+                let r = if mistake == Some("norm-epsilon-misplaced") {
+                    S::one() / (var[g].sqrt() + S::from_f64(self.epsilon))
+                } else {
+                    inv[g]
+                };
+                let mean_d = if self.centre {
+                    self.group(g, m).fold(S::zero(), |acc, k| acc + dxhat[k]) / n
+                } else {
+                    S::zero()
+                };
+                let mean_dx = self
+                    .group(g, m)
+                    .fold(S::zero(), |acc, k| acc + dxhat[k] * xhat[k])
+                    / n;
+                for k in self.group(g, m) {
+                    dx[k] = r * (dxhat[k] - mean_d - xhat[k] * mean_dx);
+                }
             }
-            let r = if mistake == Some("norm-epsilon-misplaced") {
-                S::one() / (var[g].sqrt() + S::from_f64(self.epsilon))
-            } else {
-                inv[g]
-            };
-            let mean_d = if self.centre {
-                self.group(g, m).fold(S::zero(), |acc, k| acc + dxhat[k]) / n
-            } else {
-                S::zero()
-            };
-            let mean_dx = self
-                .group(g, m)
-                .fold(S::zero(), |acc, k| acc + dxhat[k] * xhat[k])
-                / n;
-            for k in self.group(g, m) {
-                dx[k] = r * (dxhat[k] - mean_d - xhat[k] * mean_dx);
-            }
-        }
+            Array2::from_shape_vec(x.raw_dim(), dx).expect("same size")
+        });
         let mut grads = vec![dscale.into_dyn()];
         if self.shift {
             grads.push(dshift.into_dyn());
         }
         Back {
             params: grads,
-            dx: Array2::from_shape_vec(x.raw_dim(), dx).expect("same size"),
+            dx,
             dskip: None,
         }
     }
@@ -374,8 +378,10 @@ macro_rules! norm_kind {
                 step: &$crate::graph::Step<S>,
                 dout: ndarray::ArrayView2<S>,
                 mistake: Option<&str>,
+                need_input: bool,
             ) -> $crate::graph::Back<S> {
-                self.norm.backward(params, x, step, dout, mistake)
+                self.norm
+                    .backward(params, x, step, dout, mistake, need_input)
             }
             fn forward_moved(
                 &self,

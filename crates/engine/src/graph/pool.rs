@@ -268,7 +268,15 @@ impl<S: LayerScalar> Layer<S> for Pool {
         step: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
+        if !need_input {
+            return Back {
+                params: Vec::new(),
+                dx: None,
+                dskip: None,
+            };
+        }
         let w = &self.window;
         let (m, c_n, ip, op) = (x.nrows(), w.channels, w.in_positions(), w.out_positions());
         let spread = mistake == Some("pool-gradient-spread");
@@ -301,7 +309,7 @@ impl<S: LayerScalar> Layer<S> for Pool {
         }
         Back {
             params: Vec::new(),
-            dx,
+            dx: Some(dx),
             dskip: None,
         }
     }

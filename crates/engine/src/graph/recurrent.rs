@@ -97,8 +97,9 @@ pub trait Cell: Clone + Debug + Send + Sync + 'static {
         x: ArrayView2<S>,
         prev: &[Array2<S>],
     ) -> (Vec<Array2<S>>, Array2<S>);
-    /// From the gradients `d` of this step's states: the parameters' terms, dx, and the
-    /// gradients of the previous states.
+    /// From the gradients `d` of this step's states: the parameters' terms, the gradient of the
+    /// input's pre-activations (m × blocks · units: dx is it times the input weight, formed by
+    /// the layer only when someone reads it), and the gradients of the previous states.
     #[allow(clippy::too_many_arguments)]
     fn backward<S: LayerScalar>(
         &self,
@@ -304,6 +305,7 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
         step: &Step<S>,
         dout: ArrayView2<S>,
         mistake: Option<&str>,
+        need_input: bool,
     ) -> Back<S> {
         let xs = self.seq.time_major(x);
         let (m, u, steps) = (x.nrows(), self.units, self.seq.steps);
@@ -330,7 +332,8 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
                 .collect()
         };
         let mut grads: Vec<ArrayD<S>> = params.iter().map(|p| ArrayD::zeros(p.raw_dim())).collect();
-        let mut dxs = Array3::zeros((steps, m, self.seq.width));
+        let mut dxs = need_input.then(|| Array3::zeros((steps, m, self.seq.width)));
+        let w_in = mat(&params[0]);
         let mut carry = self.zeros(m);
         let first = if mistake == Some("time-truncated") {
             steps - 1
@@ -340,7 +343,7 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
         for t in (first..steps).rev() {
             let mut d = carry;
             d[0] += &incoming.index_axis(Axis(0), t);
-            let (terms, dx, dprev) = self.cell.backward(
+            let (terms, dgates, dprev) = self.cell.backward(
                 params,
                 xs.index_axis(Axis(0), t),
                 &state(t),
@@ -355,7 +358,9 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
                     *acc += &term;
                 }
             }
-            dxs.index_axis_mut(Axis(0), t).assign(&dx);
+            if let Some(dxs) = dxs.as_mut() {
+                dxs.index_axis_mut(Axis(0), t).assign(&dgates.dot(&w_in));
+            }
             carry = if mistake == Some("state-gradient-dropped") {
                 self.zeros(m)
             } else {
@@ -368,7 +373,7 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
         }
         Back {
             params: grads,
-            dx: self.seq.batch_of_time_major(&dxs),
+            dx: dxs.map(|dxs| self.seq.batch_of_time_major(&dxs)),
             dskip: None,
         }
     }

@@ -96,6 +96,7 @@ impl Cell for RnnCell {
             da.t().dot(&prev[0]).into_dyn(),
             da.sum_axis(Axis(0)).into_dyn(),
         ];
-        (terms, da.dot(&mat(&p[0])), vec![da.dot(&mat(&p[1]))])
+        let dprev = vec![da.dot(&mat(&p[1]))];
+        (terms, da, dprev)
     }
 }

@@ -16,7 +16,7 @@ mod storage;
 
 use crate::graph_common;
 
-use graph_common::{dual_gradient, random_params, random_x, random_y, worst};
+use graph_common::{dual_gradient, max_relative, random_params, random_x, random_y, worst};
 use plumb_engine::graph::{
     Conv, ConvSettings, Dense, Flatten, Graph, GraphBuilder, L2Divisor, LossConfig, Padding,
     Reduction, Shape,
@@ -92,6 +92,17 @@ fn check(g: &Graph, seed: u64, what: &str) {
     );
     let (err, at) = worst(&grad, &dual, FLOOR);
     assert!(err <= TOL, "{what} seed {seed}: {err:e} at {at}\n{g:#?}");
+    // Without the input gradient (the first layer then forms no dx): the same parameter
+    // gradients against num-dual.
+    let (loss, without) = g.parameter_gradient(&params, x.view(), y.view(), None);
+    assert_eq!(loss.to_bits(), grad.loss.to_bits(), "{what} seed {seed}");
+    for (t, (a, r)) in without.iter().zip(&dual.params).enumerate() {
+        let err = max_relative(a.iter(), r.iter(), FLOOR);
+        assert!(
+            err <= TOL,
+            "{what} seed {seed}: {err:e} at tensor {t} without the input gradient"
+        );
+    }
 }
 
 fn conv_settings(rng: &mut Rng, dims: usize, stride_one: bool) -> ConvSettings {

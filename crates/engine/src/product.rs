@@ -1,0 +1,66 @@
+//! The matrix products of the layers' passes, in one place. f64 and f32 go through the `gemm`
+//! crate (faer's kernels, picked at run time for the processor: AVX-512, AVX2 with FMA, or
+//! portable code), which measured about twice matrixmultiply's rate at the engine's sizes
+//! (benches/README.md, "Matrix products"); complex and dual numbers keep ndarray's `dot`. One
+//! thread: the finite-difference check runs its evaluations in parallel already, and a product's
+//! bits must not depend on how many threads there are.
+
+use std::any::TypeId;
+
+use ndarray::{Array2, ArrayView2};
+
+use crate::Scalar;
+
+/// a · b.
+pub(crate) fn matmul<S: Scalar + 'static>(a: ArrayView2<S>, b: ArrayView2<S>) -> Array2<S> {
+    let mut c = Array2::zeros((a.nrows(), b.ncols()));
+    add_matmul(&mut c, a, b);
+    c
+}
+
+/// c += a · b (c m × n): a bias placed in c first is added in the same pass.
+pub(crate) fn add_matmul<S: Scalar + 'static>(
+    c: &mut Array2<S>,
+    a: ArrayView2<S>,
+    b: ArrayView2<S>,
+) {
+    let ((m, k), n) = (a.dim(), b.ncols());
+    assert_eq!((k, c.dim()), (b.nrows(), (m, n)), "product shapes");
+    let by_gemm =
+        TypeId::of::<S>() == TypeId::of::<f64>() || TypeId::of::<S>() == TypeId::of::<f32>();
+    if !by_gemm || !c.is_standard_layout() {
+        ndarray::linalg::general_mat_mul(S::one(), &a, &b, S::one(), c);
+        return;
+    }
+    if m == 0 || n == 0 || k == 0 {
+        return;
+    }
+    let (sa, sb, sc) = (a.strides(), b.strides(), c.strides());
+    let (c_cs, c_rs) = (sc[1], sc[0]);
+    // SAFETY: S is f64 or f32 (checked above), which gemm supports; every pointer and stride
+    // describes an array as ndarray holds it (a and b read, c of m × n in standard layout read
+    // and written), and none aliases c, which is borrowed mutably.
+    unsafe {
+        gemm::gemm(
+            m,
+            n,
+            k,
+            c.as_mut_ptr(),
+            c_cs,
+            c_rs,
+            true,
+            a.as_ptr(),
+            sa[1],
+            sa[0],
+            b.as_ptr(),
+            sb[1],
+            sb[0],
+            S::one(),
+            S::one(),
+            false,
+            false,
+            false,
+            gemm::Parallelism::None,
+        );
+    }
+}
