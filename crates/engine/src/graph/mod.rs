@@ -288,7 +288,7 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
 
     /// The step for an input `x` that differs from `base_x`, the base step's input, only in the
     /// units (channels) `changed` of its feature axis, for a kind whose output is linear in its
-    /// input (dense): the base output plus the change's product with those units' weights, a
+    /// input (dense, conv): the base output plus the change's product with those units' weights, a
     /// rank-k update instead of the whole product. Every output channel may change. Not bit for
     /// bit a full pass — the update adds to the base's rounded sums where a full pass sums again;
     /// docs/engine.md gives the bound — so a kind offers it only where it saves most of the work
