@@ -746,11 +746,25 @@ impl Graph {
         let (Some(values), Some(from)) = (a.as_slice_mut(), z.as_slice()) else {
             return self.activate(node, z);
         };
-        for &c in changed {
-            for run in node.layer.output().channel_runs(z.nrows(), c) {
-                values[run.clone()].copy_from_slice(&from[run.clone()]);
-                node.activation.apply_values(&mut values[run]);
-            }
+        // The changed channels' values gathered and activated in one call: a dense layer's
+        // channel is one value per sample, and a call per value costs more than the value.
+        // Element-wise, so the same bits as activating the whole output.
+        let shape = node.layer.output();
+        let runs = || {
+            changed
+                .iter()
+                .flat_map(move |&c| shape.channel_runs(z.nrows(), c))
+        };
+        let mut gathered = Vec::with_capacity(runs().map(|r| r.len()).sum());
+        for run in runs() {
+            gathered.extend_from_slice(&from[run]);
+        }
+        node.activation.apply_values(&mut gathered);
+        let mut rest = &gathered[..];
+        for run in runs() {
+            let (now, more) = rest.split_at(run.len());
+            values[run].copy_from_slice(now);
+            rest = more;
         }
         a
     }
