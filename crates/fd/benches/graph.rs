@@ -4,8 +4,9 @@
 //!   (the hand-written example's forward pass per perturbation, benches/graph_numpy.py), and the
 //!   same check's perturbed losses with and without the kinds' incremental hints;
 //! - `dense`: a 784-128-64-10 dense network checked through the layer graph against the dense
-//!   engine's check (same weights, batch, sample size and directions; the dense engine's side is
-//!   common/dense_engine.rs, which goes with the dense engine);
+//!   engine's check (same weights, batch, sample size and directions; alternating, the fastest
+//!   of 7 each; the dense engine's side is common/dense_engine.rs, which goes with the dense
+//!   engine);
 //! - `mlp`: the full check of that network against a naive NumPy loop (issue 14's figure);
 //! - `lstm`, `attention`: forward + backward (`Graph::gradient`) of examples/pump-lstm.toml and
 //!   pump-attention.toml against the examples' hand-written NumPy passes;
@@ -227,8 +228,17 @@ fn dense() {
     let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
     cfg.sample = Some(Sample::Total(3000));
     cfg.directions = Some(4);
-    let (t_dense, rd) = best(3, || common::dense_engine::run(&net, &w, &batch, &cfg));
-    let (t_graph, rg) = best(3, || dense_graph(&g, &p, &gb, &cfg));
+    // Alternating, the fastest of 7 each: a busy moment of the shared machine counts against
+    // both sides alike.
+    let (mut t_dense, mut t_graph) = (f64::INFINITY, f64::INFINITY);
+    let (mut rd, mut rg) = (None, None);
+    for _ in 0..7 {
+        let (t, r) = best(1, || common::dense_engine::run(&net, &w, &batch, &cfg));
+        (t_dense, rd) = (t_dense.min(t), Some(r));
+        let (t, r) = best(1, || dense_graph(&g, &p, &gb, &cfg));
+        (t_graph, rg) = (t_graph.min(t), Some(r));
+    }
+    let (rd, rg) = (rd.unwrap(), rg.unwrap());
     same_loss("dense", rd.loss, rg.loss);
     println!(
         "dense 784-128-64-10 tanh, batch 32, 3000 coordinates + directions: dense engine {:.1} ms, layer graph {:.1} ms: the graph takes {:.2}× the dense engine's time; graph check {}",
