@@ -403,6 +403,9 @@ struct Eval<'a, S> {
     l2_sum: S,
     /// Per layer, the ties and values on a kink of the base pass at or above it.
     ties_from: Vec<usize>,
+    /// Per layer, whether it or a layer above can take another branch (a kind that records
+    /// its choices, an activation with a kink or a break in its derivative).
+    kinks_from: Vec<bool>,
 }
 
 impl<'a, S: LayerScalar> Eval<'a, S> {
@@ -426,6 +429,11 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         for j in (0..trace.steps.len()).rev() {
             ties_from[j] = ties_from[j + 1] + branches.layers[j].ties;
         }
+        let mut kinks_from = vec![false; trace.steps.len() + 1];
+        for (j, node) in graph.nodes().iter().enumerate().rev() {
+            let kinked = node.layer.branches() || node.activation.break_point().is_some();
+            kinks_from[j] = kinks_from[j + 1] || kinked;
+        }
         Eval {
             graph,
             params,
@@ -435,6 +443,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             loss,
             l2_sum,
             ties_from,
+            kinks_from,
         }
     }
 
@@ -545,6 +554,9 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// choice ([`Graph::branches`]), or a value on the other side of its activation's kink or of
     /// a break in a derivative (elu with α = 1), compared value by value with nothing collected.
     fn crossed(&self, tail: &Tail<S>) -> bool {
+        if !self.kinks_from[tail.from] {
+            return false;
+        }
         tail.steps.iter().enumerate().any(|(i, step)| {
             let j = tail.from + i;
             let base = &self.trace.steps[j];

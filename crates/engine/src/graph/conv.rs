@@ -504,10 +504,10 @@ impl<S: LayerScalar> Layer<S> for Conv {
     fn forward_units(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
         base_x: ArrayView2<S>,
         base: &Step<S>,
         changed: &[usize],
+        now: &[S],
     ) -> Option<Step<S>> {
         // The update costs the changed in-channels' share of the loop, plus a subtraction and a
         // copy of the output: offered while at most half the in-channels changed.
@@ -515,8 +515,12 @@ impl<S: LayerScalar> Layer<S> for Conv {
         if changed.is_empty() || 2 * changed.len() > channels {
             return None;
         }
-        let (x, base_x) = (x.as_standard_layout(), base_x.as_standard_layout());
-        let (xs, bs) = (x.as_slice()?, base_x.as_slice()?);
+        let m = base_x.nrows();
+        if now.len() != m * ip * changed.len() {
+            return None;
+        }
+        let base_x = base_x.as_standard_layout();
+        let bs = base_x.as_slice()?;
         let w = params[0].as_standard_layout();
         let ws = w.as_slice()?;
         let mut out = base.out.clone();
@@ -524,13 +528,14 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let values = out.as_slice_mut()?;
         let mut dx = vec![S::zero(); ip];
         let sample = channels * ip;
-        for ((row, xi), bi) in values
+        for (i, (row, bi)) in values
             .chunks_exact_mut(width)
-            .zip(xs.chunks_exact(sample))
             .zip(bs.chunks_exact(sample))
+            .enumerate()
         {
-            for &c in changed {
-                let (now, was) = (&xi[c * ip..(c + 1) * ip], &bi[c * ip..(c + 1) * ip]);
+            for (k, &c) in changed.iter().enumerate() {
+                let at = (k * m + i) * ip;
+                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
                 // A sample whose channel did not move keeps the base's bits.
                 if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
                     continue;
