@@ -12,7 +12,8 @@ Tasks:
 Models: "cnn" (examples/pump-cnn.toml, examples/python/cnn_numpy.py), "lstm"
 (examples/pump-lstm.toml, lstm_numpy.py), "attention" (examples/pump-attention.toml,
 attention_numpy.py), "sequence" (fixtures/nets/pump-sequence.toml, written out below: lstm,
-causal attention, layer norm, gru with the reset before the recurrent product, dense softmax).
+causal attention, layer norm, gru with the reset before the recurrent product, dense softmax),
+"mlp" (the 784-128-64-10 tanh network of crates/fd/benches/common, written out below).
 
 Prints JSON on stdout: the loss at the given values (the bench compares it with plumb's, so the
 two sides compute the same function), the best time over the repeats, the losses evaluated, and
@@ -88,11 +89,31 @@ def sequence_loss(p, x, y):
     return -(y * log_p).sum() / m
 
 
+def mlp_loss(p, x, y):
+    """A chain of dense layers named layer1, layer2, … (weight units × fan-in, bias), tanh hidden
+    layers, softmax output; cross-entropy averaged over samples plus (λ / 2m) · Σ W² with
+    λ = 1e-4 (biases not decayed): the 784-128-64-10 network of crates/fd/benches/common."""
+    m = x.shape[0]
+    layers = len(p) // 2
+    a = x
+    l2 = 0.0
+    for j in range(1, layers + 1):
+        w, b = p[f"layer{j}.weight"], p[f"layer{j}.bias"]
+        a = a @ w.T + b
+        if j < layers:
+            a = np.tanh(a)
+        l2 += (w * w).sum()
+    a = a - a.max(axis=1, keepdims=True)
+    log_p = a - np.log(np.exp(a).sum(axis=1, keepdims=True))
+    return -(y * log_p).sum() / m + 1e-4 / (2 * m) * l2
+
+
 MODELS = {
     "cnn": (cnn_numpy.loss_of, cnn_numpy.gradient_of, cnn_numpy.TENSORS),
     "lstm": (lstm_numpy.loss_of, lstm_numpy.gradient_of, lstm_numpy.TENSORS),
     "attention": (attention_numpy.loss_of, attention_numpy.gradient_of, attention_numpy.TENSORS),
     "sequence": (sequence_loss, None, None),
+    "mlp": (mlp_loss, None, None),
 }
 
 

@@ -100,6 +100,23 @@ pub struct ExternalResult {
 /// The outside loss at `count` perturbations given as changes.
 pub type Losses<'a, E> = dyn FnMut(usize, &[Change]) -> Result<Vec<f64>, E> + 'a;
 
+/// What the checker asks a loss for: perturbations listed as changes (coordinates), or steps
+/// along one direction `v` (one vector per tensor, zero outside its span), which a loss that
+/// holds the parameters itself takes as the vector it is rather than one change per parameter.
+pub(crate) enum Request<'r> {
+    Changes {
+        count: usize,
+        changes: &'r [Change],
+    },
+    Along {
+        v: &'r [Vec<f64>],
+        deltas: &'r [f64],
+    },
+}
+
+/// A loss the checker asks: one value per perturbation of the request.
+pub(crate) type Ask<'a, E> = dyn FnMut(Request<'_>) -> Result<Vec<f64>, E> + 'a;
+
 /// Most perturbations in one request.
 const BATCH: usize = 2048;
 
@@ -120,7 +137,12 @@ pub fn check_external<E>(
         round: |h| h,
         progress: &|_, _| {},
     };
-    check_tensors(tensors, f0, losses, None, inside, config, &plan)
+    // An outside program takes every perturbation as changes.
+    let mut ask = |request: Request<'_>| match request {
+        Request::Changes { count, changes } => losses(count, changes),
+        Request::Along { v, deltas } => losses(deltas.len(), &changes_along(v, deltas)),
+    };
+    check_tensors(tensors, f0, &mut ask, None, inside, config, &plan)
 }
 
 /// What [`check_tensors`] checks besides the configuration: the coordinates and directions chosen
@@ -134,7 +156,7 @@ pub(crate) struct Plan<'a> {
 }
 
 /// The check itself, for any loss plumb can ask for at perturbations: an outside program's, or the
-/// layer graph's. `imaginary(count, changes)`, when the loss can be evaluated at complex
+/// layer graph's. `imaginary`, when the loss can be evaluated at complex
 /// parameters, returns Im J at perturbations by i·delta; it is what the complex step needs. There
 /// `inside.crossed(t, k, ±h)` at a forward difference's step h says whether the point sits on a
 /// non-smooth point of the coordinate (the complex step itself never leaves the branch it starts
@@ -142,8 +164,8 @@ pub(crate) struct Plan<'a> {
 pub(crate) fn check_tensors<E>(
     tensors: &[OutsideTensor],
     f0: f64,
-    losses: &mut Losses<'_, E>,
-    mut imaginary: Option<&mut Losses<'_, E>>,
+    losses: &mut Ask<'_, E>,
+    mut imaginary: Option<&mut Ask<'_, E>>,
     inside: &Inside<'_>,
     config: &ExternalConfig,
     plan: &Plan<'_>,
@@ -213,7 +235,10 @@ pub(crate) fn check_tensors<E>(
                     }
                 })
                 .collect();
-            let values = imaginary(changes.len(), &changes)?;
+            let values = imaginary(Request::Changes {
+                count: changes.len(),
+                changes: &changes,
+            })?;
             for (&i, im) in chunk.iter().zip(values) {
                 let (t, k) = picked[i];
                 let hp = probe_step(tensors[t].values[k]);
@@ -443,7 +468,7 @@ pub(crate) fn check_tensors<E>(
             // The loss along v at the given steps, and whether each step crossed a kink (asked
             // right after the request: the graph keeps the last request's verdicts).
             let mut along = |deltas: &[f64]| -> Result<Table, E> {
-                let values = losses(deltas.len(), &changes_along(&v, deltas))?;
+                let values = losses(Request::Along { v: &v, deltas })?;
                 Ok(deltas
                     .iter()
                     .zip(&values)
@@ -476,7 +501,10 @@ pub(crate) fn check_tensors<E>(
                 let imaginary = imaginary
                     .as_deref_mut()
                     .expect("the complex step needs a loss that takes complex parameters");
-                let im = imaginary(1, &changes_along(&v, &[h0]))?[0];
+                let im = imaginary(Request::Along {
+                    v: &v,
+                    deltas: &[h0],
+                })?[0];
                 let hp = probe_step(theta);
                 let crossed = (inside.crossed_along)(&v, hp) || (inside.crossed_along)(&v, -hp);
                 est = Some(complex_estimate(&|_| (im, crossed), h0, config.eps));
@@ -610,7 +638,7 @@ fn look_up(table: &Table, d: f64) -> (f64, bool) {
 /// As [`ask`], with each step's kink verdict `crossed(t, k, d)` taken right after its request
 /// (the graph keeps the verdicts of the last request only).
 fn ask_marked<E>(
-    losses: &mut Losses<'_, E>,
+    losses: &mut Ask<'_, E>,
     crossed: &dyn Fn(usize, usize, f64) -> bool,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
@@ -636,7 +664,7 @@ fn ask_marked<E>(
 /// The loss at each coordinate's steps, one table (step bits → loss) per coordinate, asked in
 /// requests of at most [`BATCH`] perturbations.
 fn ask<E>(
-    losses: &mut Losses<'_, E>,
+    losses: &mut Ask<'_, E>,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
 ) -> Result<Vec<HashMap<u64, f64>>, E> {
@@ -653,7 +681,10 @@ fn ask<E>(
                 });
             }
         }
-        let values = losses(changes.len(), &changes)?;
+        let values = losses(Request::Changes {
+            count: changes.len(),
+            changes: &changes,
+        })?;
         let mut at = 0;
         for (_, deltas) in chunk {
             out.push(

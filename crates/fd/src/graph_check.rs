@@ -7,8 +7,10 @@
 //! Perturbing a tensor of layer L recomputes the graph from layer L over the base pass
 //! ([`Graph::forward_from`]): the layers below are read from it. A perturbation of one entry
 //! goes through its kind's incremental hint ([`Graph::moved_loss`]: dense and conv update the
-//! one unit or channel the entry feeds, a dense layer above it only by that unit's change) and
-//! the L2 term's change of that entry alone. Perturbations are evaluated in
+//! one unit or channel the entry feeds, a dense or conv layer above it only by that unit's or
+//! channel's change) and the L2 term's change of that entry alone. A random direction comes as
+//! the vector it is ([`Request::Along`]): the parameters moved along it, recomputed from the
+//! lowest layer it moves, with no list of one change per parameter. Perturbations are evaluated in
 //! parallel, each on its own, so the result does not depend on the number of threads. A step is
 //! called across a non-smooth point when the perturbed pass takes another branch than the base
 //! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
@@ -32,7 +34,7 @@ use rayon::prelude::*;
 use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress};
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
-use crate::external::{Plan, check_tensors};
+use crate::external::{Plan, Request, check_tensors};
 use crate::gross::graph_gradient_magnitude;
 use crate::method::{ComplexScalar, complex_estimate, round_to};
 use crate::sweep::{Curve, SweepPlan};
@@ -237,24 +239,52 @@ impl Run<'_> {
         let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
-        // Kink verdicts of the last request, looked up by the checker right after it.
+        // Kink verdicts of the last request, looked up by the checker right after it: of
+        // coordinates by their change, of steps along a direction by the step.
         let seen: RefCell<HashMap<Key, bool>> = RefCell::new(HashMap::new());
+        let seen_along: RefCell<HashMap<u64, bool>> = RefCell::new(HashMap::new());
         let complex_mode = complex.is_some();
         let eps = self.config.eps;
-        let mut losses = |count: usize, changes: &[Change]| -> Result<Vec<f64>, Infallible> {
-            let buckets = buckets(count, changes);
-            let out: Vec<(f64, bool)> = buckets.par_iter().map(|b| real.at(b)).collect();
-            let mut seen = seen.borrow_mut();
-            seen.clear();
-            for (b, &(_, crossed)) in buckets.iter().zip(&out) {
-                if let Some(key) = key_of(b) {
-                    seen.insert(key, crossed);
+        let mut losses = |request: Request<'_>| -> Result<Vec<f64>, Infallible> {
+            seen.borrow_mut().clear();
+            seen_along.borrow_mut().clear();
+            match request {
+                Request::Changes { count, changes } => {
+                    let buckets = buckets(count, changes);
+                    let out: Vec<(f64, bool)> = buckets.par_iter().map(|b| real.at(b)).collect();
+                    let mut seen = seen.borrow_mut();
+                    for (b, &(_, crossed)) in buckets.iter().zip(&out) {
+                        if let Some(key) = key_of(b) {
+                            seen.insert(key, crossed);
+                        }
+                    }
+                    Ok(out.into_iter().map(|(v, _)| v).collect())
+                }
+                Request::Along { v, deltas } => {
+                    let out: Vec<(f64, bool)> =
+                        deltas.par_iter().map(|&d| real.at_along(v, d)).collect();
+                    let mut seen = seen_along.borrow_mut();
+                    for (d, &(_, crossed)) in deltas.iter().zip(&out) {
+                        seen.insert(d.to_bits(), crossed);
+                    }
+                    Ok(out.into_iter().map(|(v, _)| v).collect())
                 }
             }
-            Ok(out.into_iter().map(|(v, _)| v).collect())
         };
-        let mut imaginary = |count: usize, changes: &[Change]| -> Result<Vec<f64>, Infallible> {
+        let mut imaginary = |request: Request<'_>| -> Result<Vec<f64>, Infallible> {
             let eval = complex.as_ref().expect("built for the complex step");
+            seen.borrow_mut().clear();
+            seen_along.borrow_mut().clear();
+            let (count, changes) = match request {
+                Request::Changes { count, changes } => (count, changes),
+                // The kink verdicts at the real probe steps are computed when the checker asks.
+                Request::Along { v, deltas } => {
+                    return Ok(deltas
+                        .par_iter()
+                        .map(|&d| eval.imaginary_along(v, d))
+                        .collect());
+                }
+            };
             let buckets = buckets(count, changes);
             // Im J at each perturbation, and for a coordinate on a tie the kink verdicts at the
             // real probe steps ±h the checker asks for next.
@@ -275,7 +305,6 @@ impl Run<'_> {
                 })
                 .collect();
             let mut seen = seen.borrow_mut();
-            seen.clear();
             Ok(out
                 .into_iter()
                 .map(|(im, probes)| {
@@ -304,36 +333,14 @@ impl Run<'_> {
             }])
         };
         let crossed_along = |v: &[Vec<f64>], d: f64| {
-            // The key names the first change and the count: no list of every parameter's change
-            // is built for a verdict the last request left.
-            let mut nonzero = v.iter().enumerate().flat_map(|(t, vt)| {
-                vt.iter()
-                    .enumerate()
-                    .filter(|(_, w)| **w != 0.0)
-                    .map(move |(k, &w)| (t, k, w))
-            });
-            if let Some((t, k, w)) = nonzero.next() {
-                let key = (t as u32, k as u64, (d * w).to_bits(), 1 + nonzero.count());
-                if let Some(&c) = seen.borrow().get(&key) {
-                    return c;
-                }
+            if let Some(&c) = seen_along.borrow().get(&d.to_bits()) {
+                return c;
             }
-            let changes: Vec<Change> = v
-                .iter()
-                .enumerate()
-                .flat_map(|(t, vt)| {
-                    vt.iter()
-                        .enumerate()
-                        .filter(|(_, w)| **w != 0.0)
-                        .map(move |(k, &w)| Change {
-                            perturbation: 0,
-                            tensor: t as u32,
-                            index: k as u64,
-                            delta: d * w,
-                        })
-                })
-                .collect();
-            lookup(&changes)
+            if complex_mode {
+                real.on_tie_along(v, d)
+            } else {
+                real.at_along(v, d).1
+            }
         };
         let inside = Inside {
             crossed: &crossed,
@@ -358,8 +365,7 @@ impl Run<'_> {
 }
 
 /// The changes of each of `count` perturbations: slices of `changes` where they come grouped by
-/// perturbation in order (as the checker sends them: a direction's are the whole network's
-/// parameters once per step, not worth copying), copies otherwise.
+/// perturbation in order (as the checker sends them), copies otherwise.
 fn buckets(count: usize, changes: &[Change]) -> Vec<Cow<'_, [Change]>> {
     let mut out = vec![Cow::Borrowed(&changes[..0]); count];
     let mut next = 0;
@@ -397,6 +403,9 @@ struct Eval<'a, S> {
     l2_sum: S,
     /// Per layer, the ties and values on a kink of the base pass at or above it.
     ties_from: Vec<usize>,
+    /// Per layer, whether it or a layer above can take another branch (a kind that records
+    /// its choices, an activation with a kink or a break in its derivative).
+    kinks_from: Vec<bool>,
 }
 
 impl<'a, S: LayerScalar> Eval<'a, S> {
@@ -420,6 +429,11 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         for j in (0..trace.steps.len()).rev() {
             ties_from[j] = ties_from[j + 1] + branches.layers[j].ties;
         }
+        let mut kinks_from = vec![false; trace.steps.len() + 1];
+        for (j, node) in graph.nodes().iter().enumerate().rev() {
+            let kinked = node.layer.branches() || node.activation.break_point().is_some();
+            kinks_from[j] = kinks_from[j + 1] || kinked;
+        }
         Eval {
             graph,
             params,
@@ -429,6 +443,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             loss,
             l2_sum,
             ties_from,
+            kinks_from,
         }
     }
 
@@ -447,6 +462,50 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             slices[t][c.index as usize] += unit * S::from_f64(c.delta);
         }
         (moved, from.min(self.trace.steps.len() - 1))
+    }
+
+    /// The parameters moved by d·v (each entry's delta d·v times `unit`), and the first layer
+    /// moved. Entries where v is 0 are left alone, as a list of changes would leave them.
+    fn moved_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (Vec<ArrayD<S>>, usize) {
+        let mut moved = self.params.clone();
+        let mut from = usize::MAX;
+        for (t, (p, vt)) in moved.iter_mut().zip(v).enumerate() {
+            let mut any = false;
+            let values = p.as_slice_mut().expect("standard layout");
+            for (x, &w) in values.iter_mut().zip(vt) {
+                if w != 0.0 {
+                    *x += unit * S::from_f64(d * w);
+                    any = true;
+                }
+            }
+            if any {
+                from = from.min(self.graph.tensors()[t].layer);
+            }
+        }
+        (moved, from.min(self.trace.steps.len() - 1))
+    }
+
+    /// The loss (and the recomputed layers) at the step d·v along a direction, times `unit`.
+    fn perturbed_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (S, Tail<S>) {
+        let (moved, from) = self.moved_along(v, d, unit);
+        let tail = self.tail(&moved, from);
+        let loss = self.graph.loss_from(&moved, &tail, self.y.view());
+        (loss, tail)
+    }
+
+    /// The loss at the real step d·v and whether it took another branch than the base pass.
+    fn at_along(&self, v: &[Vec<f64>], d: f64) -> (f64, bool) {
+        let (loss, tail) = self.perturbed_along(v, d, S::one());
+        (loss.re(), self.crossed(&tail))
+    }
+
+    /// [`Eval::on_tie`] for the step d·v.
+    fn on_tie_along(&self, v: &[Vec<f64>], d: f64) -> bool {
+        let from = v
+            .iter()
+            .position(|vt| vt.iter().any(|w| *w != 0.0))
+            .map_or(0, |t| self.graph.tensors()[t].layer);
+        self.ties_from[from] > 0 && self.at_along(v, d).1
     }
 
     fn tail(&self, moved: &[ArrayD<S>], from: usize) -> Tail<S> {
@@ -495,19 +554,31 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// choice ([`Graph::branches`]), or a value on the other side of its activation's kink or of
     /// a break in a derivative (elu with α = 1), compared value by value with nothing collected.
     fn crossed(&self, tail: &Tail<S>) -> bool {
+        if !self.kinks_from[tail.from] {
+            return false;
+        }
         tail.steps.iter().enumerate().any(|(i, step)| {
             let j = tail.from + i;
             let base = &self.trace.steps[j];
             let act = self.graph.nodes()[j].activation;
             step.branches != base.branches
-                || act.break_point().is_some_and(|k| {
-                    let side = |v: &S| v.re() > k;
-                    step.out
-                        .iter()
-                        .zip(&base.out)
-                        .any(|(a, b)| side(a) != side(b))
-                })
+                || act
+                    .break_point()
+                    .is_some_and(|k| sides_differ(&step.out, &base.out, k))
         })
+    }
+}
+
+/// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
+/// without a branch per value (they vectorise), stopping at the first block that differs.
+fn sides_differ<S: LayerScalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
+    let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
+    match (a.as_slice(), b.as_slice()) {
+        (Some(a), Some(b)) => a
+            .chunks(64)
+            .zip(b.chunks(64))
+            .any(|(x, y)| x.iter().zip(y).fold(false, |any, p| any | differs(p))),
+        _ => a.iter().zip(b).any(differs),
     }
 }
 
@@ -515,6 +586,11 @@ impl<S: LayerScalar + ComplexScalar> Eval<'_, S> {
     /// Im J at the perturbation by i·delta.
     fn imaginary(&self, changes: &[Change]) -> f64 {
         self.perturbed(changes, S::imaginary(1.0)).0.im()
+    }
+
+    /// Im J at the step i·d·v.
+    fn imaginary_along(&self, v: &[Vec<f64>], d: f64) -> f64 {
+        self.perturbed_along(v, d, S::imaginary(1.0)).0.im()
     }
 }
 

@@ -10,6 +10,12 @@
 //! changes out-channel o only; the hint recomputes that channel with the same loop and the moved
 //! value, so it equals a full pass bit for bit, and keeps the base's other channels.
 //!
+//! Moved in-channels ([`Layer::forward_units`]): above a moved entry, an input that changed in
+//! k of its C channels (k ≤ C/2) changes every out-channel by the correlation of the change with
+//! those channels' taps alone — the base output plus that, k/C of the loop (a convolution is
+//! linear in its input, as a dense layer is). Up to rounding a full pass, as dense's update is
+//! (docs/engine.md).
+//!
 //! Catalogued mistakes (DESIGN §7): `kernel-flipped` (weight and input gradients with the kernel
 //! turned 180°), `channels-swapped` (the weight gradient's o and i axes exchanged, read back in
 //! the canonical shape), `overlap-overwritten` (overlapping windows assign, the last in row-major
@@ -211,31 +217,68 @@ impl Conv {
 
     #[inline(always)]
     fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
-        let win = &self.window;
-        let (taps, ip, iw, ow) = (win.taps(), win.in_positions(), win.input[1], win.output[1]);
-        let [sy, sx] = win.stride;
+        let (taps, ip) = (self.window.taps(), self.window.in_positions());
         out.fill(S::zero());
         for (c, xc) in xi.chunks_exact(ip).enumerate() {
-            let wc = &w[c * taps..(c + 1) * taps];
-            for span in &self.spans {
-                let wv = wc[span.tap];
-                for (r, oy) in span.rows.clone().enumerate() {
-                    let from = (span.y0 + r * sy) * iw + span.x0;
-                    let to = &mut out[oy * ow + span.cols.start..oy * ow + span.cols.end];
-                    if sx == 1 {
-                        for (o, &v) in to.iter_mut().zip(&xc[from..]) {
-                            *o += wv * v;
-                        }
-                    } else {
-                        for (o, &v) in to.iter_mut().zip(xc[from..].iter().step_by(sx)) {
-                            *o += wv * v;
-                        }
+            self.add_channel(&w[c * taps..(c + 1) * taps], xc, out);
+        }
+        if let Some(b) = bias {
+            out.iter_mut().for_each(|v| *v += b);
+        }
+    }
+
+    /// Adds one in-channel's part to an out-channel's values: each tap in row-major order adding
+    /// w · x over its span. `wc` holds the channel's taps, `xc` its input positions.
+    #[inline(always)]
+    fn add_channel<S: Scalar>(&self, wc: &[S], xc: &[S], out: &mut [S]) {
+        let win = &self.window;
+        let (iw, ow) = (win.input[1], win.output[1]);
+        let [sy, sx] = win.stride;
+        for span in &self.spans {
+            let wv = wc[span.tap];
+            for (r, oy) in span.rows.clone().enumerate() {
+                let from = (span.y0 + r * sy) * iw + span.x0;
+                let to = &mut out[oy * ow + span.cols.start..oy * ow + span.cols.end];
+                if sx == 1 {
+                    for (o, &v) in to.iter_mut().zip(&xc[from..]) {
+                        *o += wv * v;
+                    }
+                } else {
+                    for (o, &v) in to.iter_mut().zip(xc[from..].iter().step_by(sx)) {
+                        *o += wv * v;
                     }
                 }
             }
         }
-        if let Some(b) = bias {
-            out.iter_mut().for_each(|v| *v += b);
+    }
+
+    /// One sample's output (every out-channel) moved by the change `dx` of in-channel `c` of
+    /// its input: [`Conv::add_channel`] of each out-channel's taps of `c`. `w` is the whole
+    /// weight, `row` the sample's output.
+    fn add_change<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
+            unsafe { self.add_change_avx2(w, c, dx, row) };
+            return;
+        }
+        self.add_change_loop(w, c, dx, row);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
+        self.add_change_loop(w, c, dx, row);
+    }
+
+    #[inline(always)]
+    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
+        let taps = self.window.taps();
+        let per = self.window.channels * taps;
+        let op = self.window.out_positions();
+        for (o, out) in row.chunks_exact_mut(op).enumerate() {
+            let at = o * per + c * taps;
+            self.add_channel(&w[at..at + taps], dx, out);
         }
     }
 
@@ -458,6 +501,54 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let width = self.settings.channels * op;
         for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
             self.correlate(&w, b, xi, &mut row[channel * op..(channel + 1) * op]);
+        }
+        Some(Step::plain(out))
+    }
+
+    fn forward_units(
+        &self,
+        params: &[ArrayD<S>],
+        base_x: ArrayView2<S>,
+        base: &Step<S>,
+        changed: &[usize],
+        now: &[S],
+    ) -> Option<Step<S>> {
+        // The update costs the changed in-channels' share of the loop, plus a subtraction and a
+        // copy of the output: offered while at most half the in-channels changed.
+        let (channels, ip) = (self.window.channels, self.window.in_positions());
+        if changed.is_empty() || 2 * changed.len() > channels {
+            return None;
+        }
+        let m = base_x.nrows();
+        if now.len() != m * ip * changed.len() {
+            return None;
+        }
+        let base_x = base_x.as_standard_layout();
+        let bs = base_x.as_slice()?;
+        let w = params[0].as_standard_layout();
+        let ws = w.as_slice()?;
+        let mut out = base.out.clone();
+        let width = self.settings.channels * self.window.out_positions();
+        let values = out.as_slice_mut()?;
+        let mut dx = vec![S::zero(); ip];
+        let sample = channels * ip;
+        for (i, (row, bi)) in values
+            .chunks_exact_mut(width)
+            .zip(bs.chunks_exact(sample))
+            .enumerate()
+        {
+            for (k, &c) in changed.iter().enumerate() {
+                let at = (k * m + i) * ip;
+                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
+                // A sample whose channel did not move keeps the base's bits.
+                if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
+                    continue;
+                }
+                for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
+                    *d = a - b;
+                }
+                self.add_change(ws, c, &dx, row);
+            }
         }
         Some(Step::plain(out))
     }

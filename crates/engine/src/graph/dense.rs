@@ -234,10 +234,10 @@ impl<S: LayerScalar> Layer<S> for Dense {
     fn forward_units(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
         base_x: ArrayView2<S>,
         base: &Step<S>,
         changed: &[usize],
+        now: &[S],
     ) -> Option<Step<S>> {
         // The update costs k/n of the product's multiplications, but a product runs several
         // times faster per multiplication (packed, vectorised): below an eighth the update wins
@@ -246,16 +246,20 @@ impl<S: LayerScalar> Layer<S> for Dense {
             return None;
         }
         let w = params[0].view().into_dimensionality::<Ix2>().ok()?;
-        let (x, xb) = (self.rows(x), self.rows(base_x));
+        let xb = self.rows(base_x);
+        let rows = xb.nrows();
+        if now.len() != rows * changed.len() {
+            return None;
+        }
         let mut out = base.out.clone();
         let z = out.as_slice_mut()?;
         let mut column = Vec::with_capacity(self.units);
-        for &c in changed {
+        for (&c, now) in changed.iter().zip(now.chunks_exact(rows)) {
             column.clear();
             column.extend(w.column(c).iter().copied());
             // One row per sample and step: z[i, :] += (x[i, c] − x_base[i, c]) · W[:, c]. A row
             // whose input did not move keeps the base's bits.
-            let moved = x.column(c).into_iter().zip(xb.column(c));
+            let moved = now.iter().zip(xb.column(c));
             for (row, (&now, &was)) in z.chunks_exact_mut(self.units).zip(moved) {
                 // Equal inputs give +0 exactly.
                 let d = now - was;

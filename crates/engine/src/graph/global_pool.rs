@@ -33,11 +33,19 @@ impl GlobalAvgPool {
     /// channel-wise update sum in the same order).
     fn mean<S: LayerScalar>(&self, row: ArrayView1<S>, c: usize) -> S {
         let p = self.positions;
-        row.iter()
-            .skip(c * p)
-            .take(p)
-            .fold(S::zero(), |acc, &v| acc + v)
-            * (S::one() / S::from_f64(p as f64))
+        // The channel's slice where the row has one (the graph's batches do): an iterator that
+        // skips to it walks every value before it.
+        let sum = match row.as_slice() {
+            Some(values) => values[c * p..(c + 1) * p]
+                .iter()
+                .fold(S::zero(), |acc, &v| acc + v),
+            None => row
+                .iter()
+                .skip(c * p)
+                .take(p)
+                .fold(S::zero(), |acc, &v| acc + v),
+        };
+        sum * (S::one() / S::from_f64(p as f64))
     }
 }
 

@@ -290,23 +290,27 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         None
     }
 
-    /// The step for an input `x` that differs from `base_x`, the base step's input, only in the
-    /// units (channels) `changed` of its feature axis, for a kind whose output is linear in its
-    /// input (dense): the base output plus the change's product with those units' weights, a
-    /// rank-k update instead of the whole product. Every output channel may change. Not bit for
-    /// bit a full pass — the update adds to the base's rounded sums where a full pass sums again;
-    /// docs/engine.md gives the bound — so a kind offers it only where it saves most of the work
-    /// (few units against its fan-in), and `None` otherwise (the graph recomputes the layer).
-    /// The step serves loss evaluations only: it may keep nothing in [`Step::saved`].
+    /// The step for an input that differs from `base_x`, the base step's input, only in the
+    /// units (channels) `changed` of its feature axis, whose new values are `now`: each changed
+    /// channel in turn, over its runs in flat order (a dense layer's unit is one value per
+    /// sample and step, a conv's channel one run of positions per sample) — all such a kind
+    /// reads of the new input, so the graph need not build it whole. For a kind whose output is
+    /// linear in its input (dense, conv): the base output plus the change's product with those
+    /// units' weights, a rank-k update instead of the whole product. Every output channel may
+    /// change. Not bit for bit a full pass — the update adds to the base's rounded sums where a
+    /// full pass sums again; docs/engine.md gives the bound — so a kind offers it only where it
+    /// saves most of the work (few units against its fan-in), and `None` otherwise (the graph
+    /// recomputes the layer). The step serves loss evaluations only: it may keep nothing in
+    /// [`Step::saved`].
     fn forward_units(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
         base_x: ArrayView2<S>,
         base: &Step<S>,
         changed: &[usize],
+        now: &[S],
     ) -> Option<Step<S>> {
-        let _ = (params, x, base_x, base, changed);
+        let _ = (params, base_x, base, changed, now);
         None
     }
 }

@@ -593,7 +593,12 @@ impl Graph {
     /// The loss after one parameter entry moved and the tail it came from: [`Graph::forward_moved`]
     /// then [`Graph::loss_moved`], except that the output layer's activation is left out (its
     /// entry of the tail's outputs has no columns) where the loss reads only z — cross-entropy
-    /// takes its log-sum-exp from z, so a softmax would be computed for nothing.
+    /// takes its log-sum-exp from z, so a softmax would be computed for nothing — that the
+    /// moved layer's output is not built (its entry has no columns either) when only the next
+    /// layer reads it and that layer updates from the changed channels alone, and that a layer
+    /// below the output whose activation has no break point keeps no z (its step's `out` has no
+    /// columns: the activation is made in its place). What a check reads of the tail is there:
+    /// the loss, each layer's branches, and z where an activation has a kink.
     pub fn moved_loss<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -655,22 +660,61 @@ impl Graph {
         };
         let last = self.nodes.len() - 1;
         // The activation of layer j's z, or nothing for an output layer the loss does not read.
-        let activate = |j: usize, z: &Array2<S>, changed: Option<&[usize]>| {
+        // A recomputed layer's step and activation. For the loss alone, a layer below the
+        // output whose activation has no break point keeps no z (the check reads a tail's z
+        // only for the sides of a kink): its activation is made in z's place, no copy.
+        let finish = |j: usize, mut step: Step<S>, changed: Option<&[usize]>| {
+            let node = &self.nodes[j];
+            let act = node.activation;
+            let rows = step.out.nrows();
             if j == last && !output_activation {
-                Array2::zeros((z.nrows(), 0))
-            } else {
-                self.activate_changed(&self.nodes[j], z, &base.outputs[j], changed)
+                return (step, Array2::zeros((rows, 0)));
             }
+            let keep_z = output_activation
+                || j == last
+                || act.break_point().is_some()
+                || act == Activation::Softmax;
+            if !keep_z && (changed.is_none() || act == Activation::Identity) {
+                let mut a = std::mem::replace(&mut step.out, Array2::zeros((rows, 0)));
+                act.apply_in_place(&mut a);
+                return (step, a);
+            }
+            let a = self.activate_changed(node, &step.out, &base.outputs[j], changed);
+            (step, a)
+        };
+        let m = x.nrows();
+        // For the loss alone, when only the next layer reads the moved one, the moved layer's
+        // changed channels are activated by themselves and its output built whole only if the
+        // next layer cannot update from them (`Layer::forward_units`): a first dense layer's
+        // output is copied per loss otherwise, twice (its z and its activation).
+        let lean = !output_activation
+            && from < last
+            && self.last_readers[from] == from + 1
+            && self.nodes[from + 1].tap.is_none()
+            && node.activation != Activation::Softmax;
+        let fresh = first
+            .as_deref()
+            .filter(|_| lean)
+            .map(|c| (c.to_vec(), self.activated_channels(node, &step.out, c)));
+        let (step, a) = match &fresh {
+            Some(_) => (step, Array2::zeros((m, 0))),
+            None => finish(from, step, first.as_deref()),
         };
         let mut changed = vec![first];
-        let a = activate(from, &step.out, changed[0].as_deref());
         let mut steps = vec![step];
         let mut outputs = vec![a];
         // The last layer that reads any recomputed layer but the newest (the next one, or a tap).
         let mut open = 0;
         for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
             let below = j - 1;
-            if open < j && same_bits(&outputs[below - from], &base.outputs[below]) {
+            let settled = match (&fresh, j == from + 1) {
+                (Some((c, now)), true) => {
+                    let was = self.nodes[below].layer.output();
+                    same_values(now, &gather(was, m, c, &base.outputs[below]))
+                }
+                _ => open < j && same_bits(&outputs[below - from], &base.outputs[below]),
+            };
+            if settled {
                 return Tail {
                     from,
                     steps,
@@ -679,6 +723,21 @@ impl Graph {
                 };
             }
             open = open.max(self.last_readers[below]);
+            if let (Some((c, now)), true) = (&fresh, j == from + 1) {
+                let layer = S::layer(node.layer.as_ref());
+                let (own, step) = (&params[node.tensors()], &base.steps[j]);
+                let base_input = base.outputs[below].view();
+                if let Some(step) = layer.forward_units(own, base_input, step, c, now) {
+                    let (step, a) = finish(j, step, None);
+                    steps.push(step);
+                    outputs.push(a);
+                    changed.push(None);
+                    continue;
+                }
+                // The next layer needs the whole input after all.
+                let shape = self.nodes[below].layer.output();
+                outputs[0] = put(shape, m, c, now, base.outputs[below].clone());
+            }
             let output = |i: usize| {
                 if i < from {
                     base.outputs[i].view()
@@ -707,17 +766,21 @@ impl Graph {
                 Some(step) => (step, differs),
                 None => {
                     let base_input = base.outputs[j - 1].view();
+                    let was = self.nodes[j - 1].layer.output();
                     let units = differs
                         .as_deref()
                         .filter(|_| node.tap.is_none())
-                        .and_then(|c| layer.forward_units(own, input, base_input, step, c));
+                        .and_then(|c| {
+                            let now = gather(was, m, c, &outputs[j - 1 - from]);
+                            layer.forward_units(own, base_input, step, c, &now)
+                        });
                     (
                         units.unwrap_or_else(|| layer.forward(own, input, skip)),
                         None,
                     )
                 }
             };
-            let a = activate(j, &step.out, now.as_deref());
+            let (step, a) = finish(j, step, now.as_deref());
             steps.push(step);
             outputs.push(a);
             changed.push(now);
@@ -742,17 +805,25 @@ impl Graph {
         let Some(changed) = changed.filter(|_| node.activation != Activation::Softmax) else {
             return self.activate(node, z);
         };
-        let mut a = base.clone();
-        let (Some(values), Some(from)) = (a.as_slice_mut(), z.as_slice()) else {
+        if !(z.is_standard_layout() && base.is_standard_layout()) {
             return self.activate(node, z);
-        };
-        for &c in changed {
-            for run in node.layer.output().channel_runs(z.nrows(), c) {
-                values[run.clone()].copy_from_slice(&from[run.clone()]);
-                node.activation.apply_values(&mut values[run]);
-            }
         }
-        a
+        let now = self.activated_channels(node, z, changed);
+        put(node.layer.output(), z.nrows(), changed, &now, base.clone())
+    }
+
+    /// The activations of channels `changed` of `z`, gathered ([`gather`]). Element-wise, so
+    /// the same bits as activating the whole output; in one call, since a dense layer's channel
+    /// is one value per sample and a call per value cost more than the value.
+    fn activated_channels<S: Scalar>(
+        &self,
+        node: &Node,
+        z: &Array2<S>,
+        changed: &[usize],
+    ) -> Vec<S> {
+        let mut now = gather(node.layer.output(), z.nrows(), changed, z);
+        node.activation.apply_values(&mut now);
+        now
     }
 
     fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
@@ -1176,6 +1247,49 @@ fn union(a: Option<&[usize]>, b: Option<&[usize]>) -> Option<Vec<usize>> {
     all.sort_unstable();
     all.dedup();
     Some(all)
+}
+
+/// The values of channels `changed` of a standard-layout batch `a` of `m` samples of `shape`:
+/// each channel in turn, over its [runs](Shape::channel_runs) in order — what
+/// [`Layer::forward_units`](super::Layer::forward_units) reads of a changed input.
+fn gather<S: Copy>(shape: Shape, m: usize, changed: &[usize], a: &Array2<S>) -> Vec<S> {
+    let values = a
+        .as_slice()
+        .expect("the graph's batches are standard layout");
+    let mut out = Vec::new();
+    for &c in changed {
+        for run in shape.channel_runs(m, c) {
+            out.extend_from_slice(&values[run]);
+        }
+    }
+    out
+}
+
+/// `a` with channels `changed` set to `now` ([`gather`]'s order).
+fn put<S: Copy>(
+    shape: Shape,
+    m: usize,
+    changed: &[usize],
+    now: &[S],
+    mut a: Array2<S>,
+) -> Array2<S> {
+    let values = a
+        .as_slice_mut()
+        .expect("the graph's batches are standard layout");
+    let mut rest = now;
+    for &c in changed {
+        for run in shape.channel_runs(m, c) {
+            let (these, more) = rest.split_at(run.len());
+            values[run].copy_from_slice(these);
+            rest = more;
+        }
+    }
+    a
+}
+
+/// Whether two value lists are the same bit for bit.
+fn same_values<S: Scalar>(a: &[S], b: &[S]) -> bool {
+    a.len() == b.len() && a.iter().zip(b).all(|(x, y)| x.same_bits(*y))
 }
 
 /// One layer's branches from its step: the kind's choices and the activation's sides.

@@ -1,8 +1,9 @@
 //! The layers above a moved parameter ([`Graph::forward_moved`]): channel-wise layers (batch
-//! norm, `add`, global average pool and their activations) recompute only the channels that
-//! changed, and must give exactly what recomputing the whole layer gives. The reference: the
-//! moved layer's own step as the hint made it, then a full pass of every layer above it
-//! ([`Graph::forward_from`]) — the two must agree bit for bit, in f64 and f32.
+//! norm, `add`, pools, global average pool and their activations) recompute only the channels
+//! that changed, and must give exactly what recomputing the whole layer gives. The reference:
+//! each layer of the tail recomputed whole on the tail's own input — bit for bit, in f64 and
+//! f32 — except a conv or dense layer whose input changed in few channels, which updates its
+//! base output by their change (`Layer::forward_units`): equal up to the rounding of its sums.
 
 use crate::graph_common::{random_params, random_x};
 use ndarray::ArrayD;
@@ -29,10 +30,6 @@ fn tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
                     delta: S::from_f64(d),
                 };
                 let tail = g.forward_moved(&p, x.view(), &base, &moved);
-                // The moved layer as the hint left it, everything above recomputed in full.
-                let mut reference = base.clone();
-                reference.steps[j] = tail.steps[0].clone();
-                reference.outputs[j] = tail.outputs[0].clone();
                 let activation = g.nodes()[j].activation;
                 if activation != Activation::Softmax {
                     let a = activation.apply(tail.steps[0].out.view());
@@ -46,20 +43,68 @@ fn tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
                         );
                     }
                 }
-                if j + 1 == g.nodes().len() {
-                    continue;
-                }
-                let full = g.forward_from(&p, x.view(), &reference, j + 1);
-                for (i, (got, want)) in tail.outputs[1..].iter().zip(&full.outputs).enumerate() {
-                    let layer = j + 1 + i;
-                    let kind = g.nodes()[layer].layer.kind();
-                    for (e, (u, v)) in got.iter().zip(want).enumerate() {
-                        assert_eq!(
-                            u.re().to_bits(),
-                            v.re().to_bits(),
-                            "{what}: {}[{k}] δ {d}: layer {layer} ({kind}), entry {e}",
-                            spec.name
-                        );
+                // Each layer above against a whole pass of that layer on the tail's own input
+                // and tap: bit for bit, but for a conv or dense layer whose input changed in
+                // few channels, which adds their change alone (`Layer::forward_units`): within
+                // the rounding of its sums (graph_units.rs holds the tight bound).
+                let out_of = |i: usize| {
+                    if i < j {
+                        &base.outputs[i]
+                    } else {
+                        &tail.outputs[i - j]
+                    }
+                };
+                for (i, step) in tail.steps.iter().enumerate().skip(1) {
+                    let layer = j + i;
+                    let node = &g.nodes()[layer];
+                    let kind = node.layer.kind();
+                    let skip = node.layer.tap().map(|n| out_of(g.layer(n).unwrap()).view());
+                    let own = &p[node.tensors()];
+                    let pass = S::layer(node.layer.as_ref());
+                    let full = pass.forward(own, out_of(layer - 1).view(), skip).out;
+                    let updates = matches!(kind, "conv1d" | "conv2d" | "dense");
+                    let bound = if updates {
+                        let abs: Vec<ArrayD<S>> = own
+                            .iter()
+                            .map(|t| t.mapv(|v| S::from_f64(v.re().abs())))
+                            .collect();
+                        let input = out_of(layer - 1).mapv(|v| S::from_f64(v.re().abs()));
+                        let before = base.outputs[layer - 1].mapv(|v| S::from_f64(v.re().abs()));
+                        let n = node.layer.params()[0].fan_in as f64 + 2.0;
+                        let eps = S::epsilon();
+                        let s = |x: &ndarray::Array2<S>| pass.forward(&abs, x.view(), None).out;
+                        Some((s(&input), s(&before), 2.0 * n * eps))
+                    } else {
+                        None
+                    };
+                    for (e, (u, v)) in step.out.iter().zip(&full).enumerate() {
+                        let at = || {
+                            format!(
+                                "{what}: {}[{k}] δ {d}: layer {layer} ({kind}), entry {e}",
+                                spec.name
+                            )
+                        };
+                        match &bound {
+                            None => assert_eq!(u.re().to_bits(), v.re().to_bits(), "{}", at()),
+                            Some((now, before, g)) => {
+                                let b = g
+                                    * (now.as_slice().unwrap()[e].re()
+                                        + before.as_slice().unwrap()[e].re());
+                                let off = (u.re() - v.re()).abs();
+                                assert!(off <= b, "{}: {off:e} > {b:e}", at());
+                            }
+                        }
+                    }
+                    if node.activation != Activation::Softmax {
+                        let a = node.activation.apply(step.out.view());
+                        for (e, (u, v)) in a.iter().zip(&tail.outputs[i]).enumerate() {
+                            assert_eq!(
+                                u.re().to_bits(),
+                                v.re().to_bits(),
+                                "{what}: {}[{k}] δ {d}: layer {layer}'s activation, entry {e}",
+                                spec.name
+                            );
+                        }
                     }
                 }
             }
@@ -166,10 +211,13 @@ fn channel_wise_layers_match_a_full_pass_in_other_orders() {
 
 /// A moved conv entry through the whole graph: the conv's hint recomputes the moved out-channel
 /// with the loop of a full pass, and the layers above (pools 1-D and 2-D, max and average,
-/// among them) recompute the changed channels alike, so every output of the tail and the loss
-/// (no L2 term here) equal a full forward pass at the moved parameters bit for bit — the
-/// reference is [`Graph::forward`] itself, in f64 and f32.
-fn whole_tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
+/// among them) recompute the changed channels alike, so every output of the tail equals a full
+/// forward pass at the moved parameters bit for bit — the reference is [`Graph::forward`]
+/// itself, in f64 and f32 — up to a conv or dense layer that updates by the changed channels
+/// (`Layer::forward_units`); the loss (no L2 term here) is then the full pass's up to
+/// rounding, and bit for bit where no layer updated. Returns how many tails updated.
+fn whole_tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) -> usize {
+    let mut updated = 0;
     let mut rng = Rng::new(seed);
     let params = random_params(g, &mut rng);
     let x = random_x(g, 3, &mut rng);
@@ -200,9 +248,18 @@ fn whole_tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
                 let mut q = p.clone();
                 q[t].as_slice_mut().unwrap()[k] += delta;
                 let full = g.forward(&q, x.view());
+                // Bit for bit up to the first layer that updates by moved channels; from there
+                // on the loss up to rounding (graph_units.rs).
+                let mut departed = None;
                 for (i, (got, want)) in tail.outputs.iter().zip(&full.outputs[j..]).enumerate() {
                     let layer = j + i;
                     let kind = g.nodes()[layer].layer.kind();
+                    let (a, b) = (&tail.steps[i], &full.steps[layer]);
+                    let same = a.out.iter().zip(&b.out).all(|(u, v)| u.same_bits(*v));
+                    if !same && i > 0 && matches!(kind, "conv1d" | "conv2d" | "dense") {
+                        departed = Some(layer);
+                        break;
+                    }
                     for (e, (u, v)) in got.iter().zip(want).enumerate() {
                         assert_eq!(
                             u.re().to_bits(),
@@ -211,29 +268,36 @@ fn whole_tails_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) {
                             spec.name
                         );
                     }
-                    let (a, b) = (&tail.steps[i], &full.steps[layer]);
                     assert_eq!(a.branches, b.branches, "{what}: layer {layer} branches");
                     assert_eq!(a.ties, b.ties, "{what}: layer {layer} ties");
                 }
                 let (li, lf) = (
-                    g.loss_moved(&p, &tail, y.view(), l2, &moved),
-                    g.loss_of(&q, &full, y.view()),
+                    g.loss_moved(&p, &tail, y.view(), l2, &moved).re(),
+                    g.loss_of(&q, &full, y.view()).re(),
                 );
-                assert_eq!(
-                    li.re().to_bits(),
-                    lf.re().to_bits(),
-                    "{what}: loss, {}[{k}] δ {d}",
-                    spec.name
-                );
+                let at = format!("{what}: loss, {}[{k}] δ {d}", spec.name);
+                match departed {
+                    None => assert_eq!(li.to_bits(), lf.to_bits(), "{at}"),
+                    Some(_) => {
+                        let n = g.tensors().iter().map(|t| t.spec.fan_in).max().unwrap();
+                        let tol = 64.0 * (n + 1) as f64 * S::epsilon() * lf.abs().max(1.0);
+                        assert!((li - lf).abs() <= tol, "{at}: {li} vs {lf}");
+                        updated += 1;
+                    }
+                }
             }
         }
     }
+    updated
 }
 
 /// Strides, dilations, explicit and "same" padding, with and without bias, under max and
 /// average pools of both dimensionalities (overlapping windows and a ragged tail among them).
 #[test]
 fn a_moved_conv_entry_gives_a_full_pass_bit_for_bit_through_pools() {
+    // The second conv reads the first's three channels through a pool: a first-conv entry
+    // changes one, and the second updates by it.
+    let mut updated = 0;
     let signal = Shape::Signal {
         channels: 2,
         length: 17,
@@ -264,8 +328,8 @@ fn a_moved_conv_entry_gives_a_full_pass_bit_for_bit_through_pools() {
         b.push(None, Activation::Softmax, |s| Dense::new(3, s))
             .unwrap();
         let g = b.finish().unwrap();
-        whole_tails_agree::<f64>(&g, 21 + n as u64, &format!("conv1d {op:?} f64"));
-        whole_tails_agree::<f32>(&g, 21 + n as u64, &format!("conv1d {op:?} f32"));
+        updated += whole_tails_agree::<f64>(&g, 21 + n as u64, &format!("conv1d {op:?} f64"));
+        updated += whole_tails_agree::<f32>(&g, 21 + n as u64, &format!("conv1d {op:?} f32"));
     }
     let image = Shape::Image {
         channels: 2,
@@ -304,9 +368,10 @@ fn a_moved_conv_entry_gives_a_full_pass_bit_for_bit_through_pools() {
         b.push(None, Activation::Identity, |s| Dense::new(2, s))
             .unwrap();
         let g = b.finish().unwrap();
-        whole_tails_agree::<f64>(&g, 31 + n as u64, &format!("conv2d {op:?} f64"));
-        whole_tails_agree::<f32>(&g, 31 + n as u64, &format!("conv2d {op:?} f32"));
+        updated += whole_tails_agree::<f64>(&g, 31 + n as u64, &format!("conv2d {op:?} f64"));
+        updated += whole_tails_agree::<f32>(&g, 31 + n as u64, &format!("conv2d {op:?} f32"));
     }
+    assert!(updated > 0, "the update by moved channels taken");
 }
 
 /// Max-pool's channel-wise update where ties come and go: the input has tied windows in both

@@ -1,0 +1,194 @@
+//! The graph check's fast paths against the plain path: the same checker asked as an outside
+//! program is ([`check_external`]), every perturbation a list of changes and each loss a whole
+//! forward pass of the engine at the moved parameters (`Graph::loss`): no hint, no tail, no
+//! update by moved units, no direction taken as a vector. Kinks are seen on both sides (the
+//! plain side compares a whole pass's branches with the base's), and the loss's round-off
+//! magnitude is the same, so the two differ only in how each loss is computed.
+//!
+//! - Directions go to the graph as the vectors they are: the same losses bit for bit, so every
+//!   direction's figures and verdict are equal.
+//! - A convolution or dense layer above a moved entry updates by the channels that changed
+//!   (`Layer::forward_units`), equal to a whole pass up to rounding: the same verdict at every
+//!   coordinate, the estimates within their bounds of each other.
+//!
+//! Both ways: the engine's own gradient, and a gradient with a catalogued mistake planted
+//! (`Graph::plant`), which must be a mismatch at the same coordinates on both paths. The
+//! networks' gradients are the engine's, which crates/engine/tests checks against num-dual
+//! (every kind, random settings) and autograd (fixtures/graph/cases.json; the demo CNN in
+//! tests/it/clients.rs).
+
+use std::path::Path;
+
+use ndarray::ArrayD;
+use plumb_engine::graph::Graph;
+use plumb_engine::{Batch, Init, Rng};
+use plumb_fd::{
+    Change, ExternalConfig, ExternalResult, GraphCheck, Inside, Method, OutsideTensor, Precision,
+    Sample, Status, check_external, check_graph_gradient, graph_loss_magnitude,
+};
+use plumb_formats::GraphDescription;
+
+use crate::graph_common::{self, Case, config};
+
+/// The plain path's result for `analytic` (every coordinate, `k` directions, seed 1).
+fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
+    let g = &c.graph;
+    let (x, y) = (c.x.view(), c.y.view());
+    let base = g.forward(&c.params, x);
+    let f0 = g.loss_of(&c.params, &base, y);
+    let branches = g.branches(&base);
+    let moved = |changes: &[Change]| {
+        let mut q = c.params.clone();
+        for ch in changes {
+            q[ch.tensor as usize].as_slice_mut().unwrap()[ch.index as usize] += ch.delta;
+        }
+        q
+    };
+    let crossed_at =
+        |q: &[ArrayD<f64>]| !g.branches(&g.forward(q, x)).changed(&branches).is_empty();
+    let mut losses = |count: usize, changes: &[Change]| -> Result<Vec<f64>, ()> {
+        Ok((0..count as u32)
+            .map(|p| {
+                let mine: Vec<Change> = changes
+                    .iter()
+                    .filter(|c| c.perturbation == p)
+                    .copied()
+                    .collect();
+                g.loss(&moved(&mine), x, y)
+            })
+            .collect())
+    };
+    let crossed = |t: usize, k: usize, d: f64| {
+        crossed_at(&moved(&[Change {
+            perturbation: 0,
+            tensor: t as u32,
+            index: k as u64,
+            delta: d,
+        }]))
+    };
+    let crossed_along = |v: &[Vec<f64>], d: f64| {
+        let mut q = c.params.clone();
+        for (p, vt) in q.iter_mut().zip(v) {
+            for (w, &e) in p.as_slice_mut().unwrap().iter_mut().zip(vt) {
+                if e != 0.0 {
+                    *w += d * e;
+                }
+            }
+        }
+        crossed_at(&q)
+    };
+    let inside = Inside {
+        crossed: &crossed,
+        crossed_along: &crossed_along,
+        loss_gross: graph_loss_magnitude(g, &c.params, &base, &c.y),
+        sees_kinks: true,
+    };
+    let tensors: Vec<OutsideTensor> = g
+        .tensors()
+        .iter()
+        .zip(c.params.iter().zip(analytic))
+        .map(|(t, (p, a))| OutsideTensor {
+            name: t.name.clone(),
+            values: p.iter().copied().collect(),
+            gradient: a.iter().copied().collect(),
+            gross: Vec::new(),
+        })
+        .collect();
+    let cfg = ExternalConfig {
+        method: Method::Central,
+        step: None,
+        sample: Sample::All,
+        directions: k,
+        seed: 1,
+        eps: f64::EPSILON,
+        tolerance: Precision::F64.tolerance(),
+    };
+    check_external(&tensors, f0, &mut losses, &inside, &cfg).unwrap()
+}
+
+/// The graph check and the plain path agree: directions bit for bit, coordinates in verdict.
+fn agree(what: &str, c: &Case, analytic: &[ArrayD<f64>]) -> GraphCheck {
+    let k = 2;
+    let cfg = plumb_fd::CheckConfig {
+        sample: Some(Sample::All),
+        directions: Some(k),
+        ..config(Method::Central, Precision::F64, 1)
+    };
+    let (x, y) = (c.x.view(), c.y.view());
+    let fast = check_graph_gradient(&c.graph, &c.params, x, y, analytic, &cfg, &|_, _| {}).unwrap();
+    let slow = plain(c, analytic, k);
+    assert_eq!(fast.directions, slow.directions, "{what}: directions");
+    assert_eq!(fast.coords.len(), slow.coords.len(), "{what}");
+    for (a, b) in fast.coords.iter().zip(&slow.coords) {
+        assert_eq!(a.coord, b.coord, "{what}");
+        let at = format!("{what}: tensor {} #{}", a.coord.tensor, a.coord.index);
+        assert_eq!(a.status, b.status, "{at}: {a:?} against {b:?}");
+        let apart = (a.numeric - b.numeric).abs();
+        assert!(
+            apart <= a.bound.max(b.bound),
+            "{at}: estimates {} and {} further apart than their bounds",
+            a.numeric,
+            b.numeric
+        );
+    }
+    fast
+}
+
+/// The engine's gradient, and one with `code` planted in layer `layer`: the same verdicts on
+/// both paths, all matches for the first, mismatches (the same ones) for the second.
+fn both_ways(what: &str, c: &Case, layer: &str, code: &str) {
+    let g = &c.graph;
+    let (x, y) = (c.x.view(), c.y.view());
+    let right = g.gradient(&c.params, x, y, None).params;
+    let r = agree(what, c, &right);
+    let bad = |s: Status| r.coords.iter().filter(|c| c.status == s).count();
+    assert_eq!(
+        bad(Status::Mismatch),
+        0,
+        "{what}: {}",
+        graph_common::worst(&r)
+    );
+    let planted = g.plant(layer, code).unwrap();
+    let wrong = g.gradient(&c.params, x, y, Some(&planted)).params;
+    assert_ne!(wrong, right, "{what}: {code} changes the gradient");
+    let r = agree(&format!("{what}, {code}"), c, &wrong);
+    let mismatches = r
+        .coords
+        .iter()
+        .filter(|c| c.status == Status::Mismatch)
+        .count();
+    assert!(mismatches > 0, "{what}: {code} is found");
+}
+
+fn named(g: &Graph, j: usize) -> String {
+    g.nodes()[j].name.clone()
+}
+
+#[test]
+fn a_conv_above_a_moved_channel_gives_the_plain_paths_verdicts() {
+    // conv1d (2 → 3 channels) tanh, a conv1d reading its 3 channels (one changes per moved
+    // entry of the first: updated by that channel), flatten, dense softmax.
+    let c = graph_common::case(graph_common::conv1d(), 6, 3);
+    let first = named(&c.graph, 0);
+    both_ways("conv1d", &c, &first, "kernel-flipped");
+    // A residual block: relu conv, conv "same" (updated by the changed channel), batch norm,
+    // add, max-pool, dense.
+    let c = graph_common::case(graph_common::residual(), 6, 5);
+    let second = named(&c.graph, 1);
+    both_ways("residual", &c, &second, "channels-swapped");
+}
+
+#[test]
+fn the_demo_cnn_gives_the_plain_paths_verdicts() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
+    let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
+    let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
+    let b = Batch::graph_synthetic(&d.graph, 8, 1);
+    let c = Case {
+        graph: d.graph,
+        params,
+        x: b.x,
+        y: b.y,
+    };
+    both_ways("pump-cnn", &c, "conv2", "kernel-flipped");
+}
