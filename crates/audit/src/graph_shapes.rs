@@ -183,6 +183,42 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
     }
 }
 
+/// Refuses a dense description's weight file that its dimension audit fails, with the first
+/// errors (tensor, message, code) and the command that shows the whole audit: the message a
+/// command that loads such a file stops with. Other kinds' files are left to
+/// [`GraphDescription::read_params`], which names the first tensor that does not fit.
+pub fn refuse_misfit(
+    desc: &GraphDescription,
+    file: &TensorFile,
+    path: &std::path::Path,
+) -> Result<(), String> {
+    if !desc.is_dense() {
+        return Ok(());
+    }
+    let audit = audit_graph_shapes(desc, Some(file));
+    if audit.verdict != Verdict::Fail {
+        return Ok(());
+    }
+    let problems: Vec<String> = audit
+        .findings
+        .iter()
+        .filter(|f| f.severity == Severity::Error)
+        .take(4)
+        .map(|f| match &f.tensor {
+            Some(t) => format!("  - {t}: {} ({})", f.message, f.code),
+            None => format!("  - {} ({})", f.message, f.code),
+        })
+        .collect();
+    Err(format!(
+        "{}: the weights do not fit {}:\n{}\nrun `plumb shapes {} --weights {}` for the full dimension audit",
+        path.display(),
+        desc.path.display(),
+        problems.join("\n"),
+        desc.path.display(),
+        path.display()
+    ))
+}
+
 /// The file's tensor of this name. A `.npy` holds one tensor, named after the file: when the
 /// description expects one, that one, whatever the file is called.
 pub(crate) fn find<'f>(

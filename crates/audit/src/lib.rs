@@ -44,7 +44,7 @@ pub use graph_health::{
     InsideHealth, KindThresholds, collapsed_scales, graph_symmetry, inside_findings, inside_health,
     output_units,
 };
-pub use graph_shapes::{GraphShapeAudit, audit_graph_shapes};
+pub use graph_shapes::{GraphShapeAudit, audit_graph_shapes, refuse_misfit};
 pub use health::{BINS, LayerHealth, Units, sparkline, unit_health};
 pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, q_ks, scheme_cdf, tensor_init,

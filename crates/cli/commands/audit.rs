@@ -15,7 +15,7 @@ use crate::args::{AuditArgs, FailOn};
 use crate::commands::check::plot;
 use crate::commands::shapes;
 use crate::inputs::{DataSource, init_scheme};
-use crate::output::{SCHEMA_VERSION, Settings, any_network_id};
+use crate::output::{SCHEMA_VERSION, Settings, network_id};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -104,7 +104,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         },
     };
     let any = AnyDescription::read(&args.net)?;
-    let network = any_network_id(&any);
+    let network = network_id(any.graph());
     let desc = match any {
         AnyDescription::Dense(_, g) => *g,
         AnyDescription::Graph(g) => g,

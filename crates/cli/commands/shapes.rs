@@ -12,7 +12,7 @@ use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ShapesArgs;
-use crate::output::{SCHEMA_VERSION, Settings, any_network_id, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, shape};
 
 /// The JSON report of `plumb shapes` (docs/json.md).
 #[derive(Serialize)]
@@ -42,7 +42,7 @@ pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
     let weights = args.weights.as_ref().zip(file.as_ref());
     let mut doc = graph_document(desc, &args.net, weights, &audit);
     doc.command = "shapes".into();
-    doc.network = Some(any_network_id(&any));
+    doc.network = Some(network_id(any.graph()));
     if file.is_some() {
         let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
         doc.cases = tensor_cases(tensors, &audit.unexpected, &audit.findings);

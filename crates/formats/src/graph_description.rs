@@ -3,11 +3,11 @@
 
 use std::path::{Path, PathBuf};
 
-use plumb_engine::Activation;
 use plumb_engine::graph::{
     Add, Attention, BatchNorm, Conv, Dense, Embedding, Flatten, GlobalAvgPool, Graph, GraphBuilder,
     GraphError, Gru, LayerNorm, Lstm, Padding, Pool, RmsNorm, Rnn, Shape, ShapeError,
 };
+use plumb_engine::{Activation, Conventions};
 
 use crate::file_tensors::{FileTensor, file_tensors};
 use crate::settings::{self, KeySpans, KindSettings, LayerSettings, Parsed};
@@ -59,6 +59,71 @@ impl GraphDescription {
                 .layers
                 .iter()
                 .all(|l| matches!(l.kind, KindSettings::Dense { .. }))
+    }
+
+    /// A dense description's canonical text, `comment` as its first lines: what its identity hash
+    /// is taken of (the text the dense engine wrote, so baselines keep their hash); the
+    /// conventions only where they depart from the defaults. `None` for other kinds.
+    pub fn dense_text(&self, comment: &str) -> Option<String> {
+        let Shape::Flat(inputs) = self.graph.input() else {
+            return None;
+        };
+        if !self.is_dense() {
+            return None;
+        }
+        let mut out = String::new();
+        for line in comment.lines() {
+            out.push_str(&format!("# {line}\n"));
+        }
+        let c = self.graph.loss_config();
+        out.push_str(&format!("inputs = {inputs}\n"));
+        out.push_str(&format!("loss = \"{}\"\n", c.loss.name()));
+        out.push_str(&format!("l2 = {:?}\n", c.l2));
+        let default = Conventions::default();
+        if c.reduction != default.reduction {
+            out.push_str(&format!("reduction = \"{}\"\n", c.reduction));
+        }
+        if c.l2_divisor != default.l2_divisor {
+            out.push_str(&format!("l2-divisor = \"{}\"\n", c.l2_divisor));
+        }
+        if c.l2_on_bias != default.l2_on_bias {
+            out.push_str(&format!("l2-on-bias = {}\n", c.l2_on_bias));
+        }
+        out.push_str(&format!("layout = \"{}\"\n", self.layout.name()));
+        for layer in &self.layers {
+            let KindSettings::Dense {
+                units,
+                weight,
+                bias,
+            } = &layer.kind
+            else {
+                return None;
+            };
+            out.push_str(&format!("\n[[layer]]\nunits = {units}\n"));
+            out.push_str(&format!("activation = \"{}\"\n", layer.activation.name()));
+            match layer.activation {
+                Activation::LeakyRelu { slope } => out.push_str(&format!("slope = {slope:?}\n")),
+                Activation::Elu { alpha } => out.push_str(&format!("alpha = {alpha:?}\n")),
+                _ => {}
+            }
+            // A `name` prefixes the layer's tensors: the text names them as the file does.
+            let (weight, bias) = match (&layer.name, self.layout) {
+                (Some(n), Layout::Augmented) => (weight.clone().or_else(|| Some(n.clone())), None),
+                (Some(n), _) => (
+                    weight.clone().or_else(|| Some(format!("{n}.weight"))),
+                    bias.clone().or_else(|| Some(format!("{n}.bias"))),
+                ),
+                (None, _) => (weight.clone(), bias.clone()),
+            };
+            let quote = |s: &str| format!("\"{}\"", s.replace('\\', "\\\\").replace('"', "\\\""));
+            if let Some(w) = weight {
+                out.push_str(&format!("weight = {}\n", quote(&w)));
+            }
+            if let Some(b) = bias {
+                out.push_str(&format!("bias = {}\n", quote(&b)));
+            }
+        }
+        Some(out)
     }
 }
 
@@ -336,6 +401,14 @@ impl AnyDescription {
     pub fn graph(&self) -> &GraphDescription {
         match self {
             AnyDescription::Dense(_, g) => g,
+            AnyDescription::Graph(g) => g,
+        }
+    }
+
+    /// The network as a layer graph, whatever its kinds.
+    pub fn into_graph(self) -> GraphDescription {
+        match self {
+            AnyDescription::Dense(_, g) => *g,
             AnyDescription::Graph(g) => g,
         }
     }
