@@ -18,8 +18,7 @@ use anyhow::{Context, Result};
 use plumb_audit::{KindThresholds, Thresholds, audit_graph_file, audit_graph_shapes};
 use plumb_diagnose::Tolerances;
 use plumb_diagnose::report::judge_graph_gradient;
-use plumb_engine::Regularization;
-use plumb_engine::graph::{Hooks, Slope};
+use plumb_engine::graph::{Hooks, Regularization, Slope};
 use plumb_fd::report::graph_gradient_report;
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{

@@ -75,7 +75,7 @@ pub use flatten::Flatten;
 pub use global_pool::GlobalAvgPool;
 pub use gru::{Gru, GruCell, Reset};
 pub use health::Inside;
-pub use hooks::{Hooks, Slope};
+pub use hooks::{Hooks, Regularization, Samples, Slope};
 pub use layer_norm::LayerNorm;
 pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
