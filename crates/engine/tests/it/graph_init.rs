@@ -229,9 +229,10 @@ fn the_same_seed_gives_the_same_weights() {
 }
 
 /// A graph of dense layers draws what plumb's dense engine drew for the same network (so seeded
-/// weights, reports and baselines stay the same): each layer's augmented matrix units × (fan-in +
-/// 1) row by row, the bias column 0 taking no draw, a weight U(±√3·σ) or σ·N(0, 1); and a synthetic
-/// batch of standard-normal rows, then one class per sample. Both orders are written out here.
+/// weights, reports and baselines stay the same): each layer's augmented matrix, units by
+/// fan-in + 1, row by row, the bias column 0 taking no draw, a weight U(±√3·σ) or σ·N(0, 1); and
+/// a synthetic batch of standard-normal rows, then one class per sample. Both orders are written
+/// out here.
 #[test]
 fn a_dense_graph_draws_what_the_dense_engine_drew() {
     let layers = [
