@@ -7,7 +7,7 @@ use anyhow::{Context, Result, bail};
 use plumb_audit::refuse_misfit;
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_formats::{AnyDescription, AxisOrder, DType, FileFormat};
+use plumb_formats::{AxisOrder, DType, FileFormat, GraphDescription};
 use plumb_report::NetworkId;
 pub use plumb_report::{DataSource, WeightsSource};
 
@@ -39,7 +39,7 @@ pub fn init_scheme(arg: InitArg) -> Init {
 /// the dimension audit, or drawn from the seed), its batch (a file or drawn from the seed) and
 /// the network's identity for baselines.
 pub fn load_graph(inputs: &Inputs, seed: u64) -> Result<(GraphLoaded, NetworkId)> {
-    let desc = AnyDescription::read(&inputs.net)?.into_graph();
+    let desc = GraphDescription::read(&inputs.net)?;
     if inputs.channels_last && desc.is_dense() {
         bail!(
             "--channels-last: the input of {} is {} features, with no channel axis; leave the flag out",

@@ -6,8 +6,9 @@
 //! or which orders fit alike when equal lengths make it ambiguous), kernel axes exchanged, a
 //! missing bias, a norm scale of the wrong length, a recurrent or attention weight stored
 //! transposed, gate blocks of the wrong multiple, an attention projection of the wrong width, an
-//! embedding table with its axes exchanged. The report types and codes are the dense audit's
-//! ([`crate::audit_shapes`]) where the two meet.
+//! embedding table with its axes exchanged. A dense layer's tensors keep the names and codes the
+//! dense audit gave them (another layout, a transposed matrix, a bias column missing or extra,
+//! layers in another order, a renamed tensor).
 
 use std::collections::{BTreeSet, HashMap};
 

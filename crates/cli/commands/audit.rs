@@ -7,7 +7,7 @@ use anyhow::{Result, anyhow, bail};
 use plumb_audit::{Audit, KindThresholds, Thresholds, audit_graph_file};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_formats::{AnyDescription, AxisOrder, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{AxisOrder, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
@@ -103,12 +103,8 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             FailOn::Error => Severity::Error,
         },
     };
-    let any = AnyDescription::read(&args.net)?;
-    let network = network_id(any.graph());
-    let desc = match any {
-        AnyDescription::Dense(_, g) => *g,
-        AnyDescription::Graph(g) => g,
-    };
+    let desc = GraphDescription::read(&args.net)?;
+    let network = network_id(&desc);
     let file = read_tensors(&args.weights)?;
     let order = if args.channels_last {
         AxisOrder::ChannelsLast

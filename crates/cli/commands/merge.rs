@@ -4,7 +4,7 @@
 
 use anyhow::{Context, Result};
 use plumb_fd::report::{GraphPlace, Shards, shard_description};
-use plumb_formats::{AnyDescription, MAX_REPORT_BYTES, read_input};
+use plumb_formats::{GraphDescription, MAX_REPORT_BYTES, read_input};
 use plumb_report::Verdict;
 
 use crate::args::MergeArgs;
@@ -22,7 +22,7 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
         })
         .collect::<Result<Vec<_>>>()?;
     // A dense description's shards are its layer graph's, as its check is.
-    let desc = AnyDescription::read(&shard_description(&files)?)?.into_graph();
+    let desc = GraphDescription::read(&shard_description(&files)?)?;
     let report = Shards::<GraphPlace>::parse(&files)?.merge_graph(&desc, args.worst)?;
     let network = network_id(&desc);
     // The strip of every coordinate; the V-curve needs the weights and data, which a merge does

@@ -3,8 +3,6 @@
 //! - `cnn`: the full check of the demo CNN (examples/pump-cnn.toml) against a naive NumPy loop
 //!   (the hand-written example's forward pass per perturbation, benches/graph_numpy.py), and the
 //!   same check's perturbed losses with and without the kinds' incremental hints;
-//! - `dense`: a 784-128-64-10 dense network checked through the layer graph against the dense
-//!   engine's check (same weights, batch, sample size and directions);
 //! - `lstm`, `attention`: forward + backward (`Graph::gradient`) of examples/pump-lstm.toml and
 //!   pump-attention.toml against the examples' hand-written NumPy passes;
 //! - `sequence`: the full check of the demo sequence model (fixtures/nets/pump-sequence.toml)
@@ -26,9 +24,9 @@ use std::process::{Command, Stdio};
 use std::time::Instant;
 
 use ndarray::ArrayD;
-use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Moved, Shape, Trace};
-use plumb_engine::{Activation, Batch, Init, Rng};
-use plumb_fd::{CheckConfig, Method, Precision, Sample, check, check_graph};
+use plumb_engine::graph::{Graph, Moved, Trace};
+use plumb_engine::{Batch, Init, Rng};
+use plumb_fd::{CheckConfig, Method, Precision, Sample, check_graph};
 use plumb_formats::GraphDescription;
 use serde_json::{Value, json};
 
@@ -224,48 +222,6 @@ fn cnn_plumb() {
     );
 }
 
-fn dense() {
-    let (net, w, batch) = common::network();
-    let mut builder = GraphBuilder::new(
-        Shape::Flat(784),
-        LossConfig {
-            l2: 1e-4,
-            ..LossConfig::cross_entropy()
-        },
-    );
-    for (units, act) in [
-        (128, Activation::Tanh),
-        (64, Activation::Tanh),
-        (10, Activation::Softmax),
-    ] {
-        builder.push(None, act, |s| Dense::new(units, s)).unwrap();
-    }
-    let g = builder.finish().unwrap();
-    let p: Vec<ArrayD<f64>> = w
-        .layers()
-        .iter()
-        .flat_map(|a| {
-            let (wt, bias) = Dense::split(a);
-            [wt.into_dyn(), bias.into_dyn()]
-        })
-        .collect();
-    let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
-    cfg.sample = Some(Sample::Total(3000));
-    cfg.directions = Some(4);
-    let (t_dense, rd) = best(3, || check(&net, &w, &batch, &cfg, &|_, _| {}).unwrap());
-    let (t_graph, rg) = best(3, || {
-        check_graph(&g, &p, batch.x.view(), batch.y.view(), &cfg, &|_, _| {}).unwrap()
-    });
-    same_loss("dense", rd.loss, rg.loss);
-    println!(
-        "dense 784-128-64-10 tanh, batch 32, 3000 coordinates + directions: dense engine {:.1} ms, layer graph {:.1} ms: the graph takes {:.2}× the dense engine's time; graph check {}",
-        t_dense * 1e3,
-        t_graph * 1e3,
-        t_graph / t_dense,
-        summary(&rg)
-    );
-}
-
 fn pass(model: &str, path: &str) {
     let (g, p, b) = description(path, 32);
     let inner = 20;
@@ -351,9 +307,6 @@ fn main() {
     }
     if asked.iter().any(|a| a == "cnn-plumb") {
         cnn_plumb();
-    }
-    if run("dense") {
-        dense();
     }
     if run("lstm") {
         pass("lstm", "examples/pump-lstm.toml");

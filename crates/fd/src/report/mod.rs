@@ -6,7 +6,6 @@ mod check;
 mod grad;
 mod graph_check;
 mod graph_loaded;
-mod locate;
 mod place;
 mod shards;
 
@@ -20,6 +19,5 @@ pub use graph_loaded::{
     GraphInputs, GraphLoadError, GraphLoaded, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES, Vet,
     description_hash, widest_float,
 };
-pub use locate::{Place, Tensors};
 pub use place::{GraphPlace, Places, location as graph_location};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard, shard_description};

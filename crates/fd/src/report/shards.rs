@@ -31,8 +31,8 @@ fn refuse<T>(message: String) -> Result<T, ShardError> {
     Err(ShardError(message))
 }
 
-/// One shard's report, with its place in the split; `P` locates its coordinates (a dense
-/// [`Place`] or a graph's [`GraphPlace`]).
+/// One shard's report, with its place in the split; `P` locates its coordinates (a graph's
+/// [`GraphPlace`]).
 #[derive(Debug)]
 struct Shard<P> {
     path: PathBuf,
