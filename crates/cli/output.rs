@@ -6,9 +6,7 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use plumb_formats::{
-    Description, Existing, MAX_REPORT_BYTES, expected_tensors, read_input, write_file,
-};
+use plumb_formats::{Existing, MAX_REPORT_BYTES, read_input, write_file};
 use plumb_report::{
     BASELINE_VERSION, Baseline, Cell, ColorChoice, Document, Format, NetworkId, Tone, Verdict,
     render_html, render_json, render_junit, render_markdown, render_table, use_color,
@@ -212,35 +210,16 @@ fn read_baseline(path: &Path) -> Result<Baseline> {
     Ok(base)
 }
 
-/// The network a run is about, for baselines: a hash of the canonical description and the shapes.
-pub fn network_id(desc: &Description) -> NetworkId {
+/// The network a run is about, for baselines: its identity hash
+/// ([`plumb_fd::report::description_hash`]) and its file tensors with their shapes.
+pub fn network_id(desc: &plumb_formats::GraphDescription) -> NetworkId {
     NetworkId {
         hash: plumb_fd::report::description_hash(desc),
-        shapes: expected_tensors(desc, desc.layout)
-            .into_iter()
-            .map(|e| (e.name, e.shape))
-            .collect(),
-    }
-}
-
-/// [`network_id`] of a description of any kind: its file tensors and their shapes.
-pub fn graph_network_id(desc: &plumb_formats::GraphDescription) -> NetworkId {
-    NetworkId {
-        hash: plumb_fd::report::graph_description_hash(desc),
         shapes: desc
             .files
             .iter()
             .map(|f| (f.name.clone(), f.shape.clone()))
             .collect(),
-    }
-}
-
-/// The network id of a description as read: a dense one keeps [`network_id`] (the hash its
-/// baselines were recorded with), any other kind [`graph_network_id`].
-pub fn any_network_id(desc: &plumb_formats::AnyDescription) -> NetworkId {
-    match desc {
-        plumb_formats::AnyDescription::Dense(d, _) => network_id(d),
-        plumb_formats::AnyDescription::Graph(g) => graph_network_id(g),
     }
 }
 

@@ -6,8 +6,9 @@
 //! or which orders fit alike when equal lengths make it ambiguous), kernel axes exchanged, a
 //! missing bias, a norm scale of the wrong length, a recurrent or attention weight stored
 //! transposed, gate blocks of the wrong multiple, an attention projection of the wrong width, an
-//! embedding table with its axes exchanged. The report types and codes are the dense audit's
-//! ([`crate::audit_shapes`]) where the two meet.
+//! embedding table with its axes exchanged. A dense layer's tensors keep the names and codes the
+//! dense audit gave them (another layout, a transposed matrix, a bias column missing or extra,
+//! layers in another order, a renamed tensor).
 
 use std::collections::{BTreeSet, HashMap};
 
@@ -181,6 +182,42 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
         total_parameters: desc.graph.parameters(),
         findings,
     }
+}
+
+/// Refuses a dense description's weight file that its dimension audit fails, with the first
+/// errors (tensor, message, code) and the command that shows the whole audit: the message a
+/// command that loads such a file stops with. Other kinds' files are left to
+/// [`GraphDescription::read_params`], which names the first tensor that does not fit.
+pub fn refuse_misfit(
+    desc: &GraphDescription,
+    file: &TensorFile,
+    path: &std::path::Path,
+) -> Result<(), String> {
+    if !desc.is_dense() {
+        return Ok(());
+    }
+    let audit = audit_graph_shapes(desc, Some(file));
+    if audit.verdict != Verdict::Fail {
+        return Ok(());
+    }
+    let problems: Vec<String> = audit
+        .findings
+        .iter()
+        .filter(|f| f.severity == Severity::Error)
+        .take(4)
+        .map(|f| match &f.tensor {
+            Some(t) => format!("  - {t}: {} ({})", f.message, f.code),
+            None => format!("  - {} ({})", f.message, f.code),
+        })
+        .collect();
+    Err(format!(
+        "{}: the weights do not fit {}:\n{}\nrun `plumb shapes {} --weights {}` for the full dimension audit",
+        path.display(),
+        desc.path.display(),
+        problems.join("\n"),
+        desc.path.display(),
+        path.display()
+    ))
 }
 
 /// The file's tensor of this name. A `.npy` holds one tensor, named after the file: when the

@@ -7,7 +7,7 @@ use anyhow::{Result, anyhow, bail};
 use plumb_audit::{Audit, KindThresholds, Thresholds, audit_graph_file};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_formats::{AnyDescription, AxisOrder, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{AxisOrder, GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
@@ -15,7 +15,7 @@ use crate::args::{AuditArgs, FailOn};
 use crate::commands::check::plot;
 use crate::commands::shapes;
 use crate::inputs::{DataSource, init_scheme};
-use crate::output::{SCHEMA_VERSION, Settings, any_network_id};
+use crate::output::{SCHEMA_VERSION, Settings, network_id};
 
 /// The JSON report of `plumb audit` (docs/json.md).
 #[derive(Serialize)]
@@ -103,12 +103,8 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             FailOn::Error => Severity::Error,
         },
     };
-    let any = AnyDescription::read(&args.net)?;
-    let network = any_network_id(&any);
-    let desc = match any {
-        AnyDescription::Dense(_, g) => *g,
-        AnyDescription::Graph(g) => g,
-    };
+    let desc = GraphDescription::read(&args.net)?;
+    let network = network_id(&desc);
     let file = read_tensors(&args.weights)?;
     let order = if args.channels_last {
         AxisOrder::ChannelsLast

@@ -4,12 +4,12 @@
 
 use anyhow::{Context, Result};
 use plumb_fd::report::{GraphPlace, Shards, shard_description};
-use plumb_formats::{AnyDescription, MAX_REPORT_BYTES, read_input};
+use plumb_formats::{GraphDescription, MAX_REPORT_BYTES, read_input};
 use plumb_report::Verdict;
 
 use crate::args::MergeArgs;
 use crate::commands::check::graph_document;
-use crate::output::{Settings, graph_network_id, network_id};
+use crate::output::{Settings, network_id};
 
 pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
     let files = args
@@ -22,16 +22,9 @@ pub fn run(args: &MergeArgs, settings: &Settings) -> Result<Verdict> {
         })
         .collect::<Result<Vec<_>>>()?;
     // A dense description's shards are its layer graph's, as its check is.
-    let (desc, network) = match AnyDescription::read(&shard_description(&files)?)? {
-        AnyDescription::Dense(dense, graph) => (*graph, network_id(&dense)),
-        AnyDescription::Graph(desc) => {
-            let id = graph_network_id(&desc);
-            (desc, id)
-        }
-    };
-    // The network's identity as its check wrote it (a dense description's: its dense hash).
-    let hash = network.hash.clone();
-    let report = Shards::<GraphPlace>::parse(&files)?.merge_with_hash(&desc, hash, args.worst)?;
+    let desc = GraphDescription::read(&shard_description(&files)?)?;
+    let report = Shards::<GraphPlace>::parse(&files)?.merge_graph(&desc, args.worst)?;
+    let network = network_id(&desc);
     // The strip of every coordinate; the V-curve needs the weights and data, which a merge does
     // not load (run `plumb sweep` on the worst coordinates for it).
     let doc = graph_document(&report, network, settings);

@@ -7,12 +7,12 @@ use anyhow::Result;
 use plumb_audit::{
     GraphShapeAudit, LayerShapes, Status, StrayTensor, TensorShape, audit_graph_shapes,
 };
-use plumb_formats::{AnyDescription, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
 use serde::Serialize;
 
 use crate::args::ShapesArgs;
-use crate::output::{SCHEMA_VERSION, Settings, any_network_id, shape};
+use crate::output::{SCHEMA_VERSION, Settings, network_id, shape};
 
 /// The JSON report of `plumb shapes` (docs/json.md).
 #[derive(Serialize)]
@@ -27,8 +27,7 @@ pub struct ShapesReport<'a, A: Serialize = GraphShapeAudit> {
 }
 
 pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
-    let any = AnyDescription::read(&args.net)?;
-    let desc = any.graph();
+    let desc = &GraphDescription::read(&args.net)?;
     let file = args.weights.as_deref().map(read_tensors).transpose()?;
     let audit = audit_graph_shapes(desc, file.as_ref());
     let report = ShapesReport {
@@ -42,7 +41,7 @@ pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
     let weights = args.weights.as_ref().zip(file.as_ref());
     let mut doc = graph_document(desc, &args.net, weights, &audit);
     doc.command = "shapes".into();
-    doc.network = Some(any_network_id(&any));
+    doc.network = Some(network_id(desc));
     if file.is_some() {
         let tensors = audit.layers.iter().flat_map(|l| &l.tensors);
         doc.cases = tensor_cases(tensors, &audit.unexpected, &audit.findings);

@@ -163,7 +163,7 @@ impl Scenario {
         };
         let loaded = GraphLoaded {
             params: desc.read_params(&weights, &weights_path)?,
-            description_hash: plumb_fd::report::graph_description_hash(&desc),
+            description_hash: plumb_fd::report::description_hash(&desc),
             desc,
             weights_source: WeightsSource::File {
                 path: weights_path.clone(),

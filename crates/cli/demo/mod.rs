@@ -18,12 +18,11 @@ use anyhow::{Context, Result};
 use plumb_audit::{KindThresholds, Thresholds, audit_graph_file, audit_graph_shapes};
 use plumb_diagnose::Tolerances;
 use plumb_diagnose::report::judge_graph_gradient;
-use plumb_engine::Regularization;
-use plumb_engine::graph::{Hooks, Slope};
+use plumb_engine::graph::{Hooks, Regularization, Slope};
 use plumb_fd::report::graph_gradient_report;
 use plumb_fd::{CheckConfig, Method, Precision};
 use plumb_formats::{
-    DType, Existing, FileFormat, GraphDescription, Tensor, TensorFile, disassemble, write_file,
+    AxisOrder, DType, Existing, FileFormat, GraphDescription, Tensor, TensorFile, write_file,
     write_tensor_file,
 };
 use plumb_report::{Block, Case, Document, Verdict};
@@ -34,10 +33,10 @@ use crate::commands::check;
 use crate::commands::grad::{self, GradReport};
 use crate::commands::shapes::{self, ShapesReport};
 use crate::commands::{audit, compare, probe};
-use crate::inputs::{DataSource, Loaded, WeightsSource};
+use crate::inputs::{DataSource, WeightsSource};
 use crate::output::{SCHEMA_VERSION, Settings};
 use layered::{Outcome, ScenarioReport};
-use plumb_fd::report::{GraphCheckReport, GraphLoaded, graph_check_report};
+use plumb_fd::report::{GraphCheckReport, GraphLoaded, description_hash, graph_check_report};
 
 pub use pump::Pump;
 
@@ -221,7 +220,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     let weights_path = PathBuf::from("pump-weights.npz");
     let planted_path = PathBuf::from("pump-weights-transposed.npz");
 
-    let tensors = disassemble(desc, &pump.weights);
+    let tensors = desc.to_file(&pump.params)?;
     let good = TensorFile {
         format: FileFormat::Npz,
         tensors: tensors.clone(),
@@ -245,9 +244,11 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     let audit_good = audit_graph_shapes(&graph_desc, Some(&good));
     let audit_planted = audit_graph_shapes(&graph_desc, Some(&planted));
 
-    let loaded = Loaded {
-        desc: desc.clone(),
-        weights: pump.weights.clone(),
+    // Grad, check, compare and probe run on the description's layer graph, as the commands do.
+    let on_graph = GraphLoaded {
+        description_hash: description_hash(desc),
+        desc: GraphDescription::parse(&desc.path, pump::DESCRIPTION)?,
+        params: pump.params.clone(),
         weights_source: WeightsSource::File {
             path: weights_path.clone(),
             format: FileFormat::Npz.name().into(),
@@ -258,18 +259,8 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
             path: PathBuf::from("pump-data.csv"),
             samples: pump.batch.len(),
         },
+        order: AxisOrder::ChannelsFirst,
     };
-    // Grad, check, compare and probe run on the description's layer graph, as the commands do.
-    let on_graph = GraphLoaded::from_dense(
-        Loaded {
-            desc: desc.clone(),
-            weights: loaded.weights.clone(),
-            weights_source: loaded.weights_source.clone(),
-            batch: loaded.batch.clone(),
-            data_source: loaded.data_source.clone(),
-        },
-        GraphDescription::parse(&desc.path, &desc.to_toml(""))?,
-    );
     let computed = graph_gradient_report(&on_graph, false)?;
     let checked = graph_check_report(
         &on_graph,

@@ -5,9 +5,9 @@
 
 use std::path::Path;
 
-use ndarray::Array2;
-use plumb_engine::{Batch, Init, Rng, Weights};
-use plumb_formats::Description;
+use ndarray::{Array2, ArrayD};
+use plumb_engine::{Batch, Init, Rng};
+use plumb_formats::GraphDescription;
 
 /// The sensor readings, in the order of the input columns (standardised: z-scores, no units).
 pub const FEATURES: [&str; 4] = [
@@ -60,12 +60,13 @@ activation = "softmax"
 
 /// The generated example: description, raw and standardised data, trained weights.
 pub struct Pump {
-    pub description: Description,
+    pub description: GraphDescription,
     /// Class of each sample (index into [`STATES`]).
     pub labels: Vec<usize>,
     /// The standardised batch the network trains and is checked on.
     pub batch: Batch,
-    pub weights: Weights<f64>,
+    /// The trained parameters, in the graph's tensor order.
+    pub params: Vec<ArrayD<f64>>,
     /// Training loss before and after.
     pub loss_before: f64,
     pub loss_after: f64,
@@ -73,9 +74,9 @@ pub struct Pump {
 
 impl Pump {
     pub fn generate(seed: u64) -> Pump {
-        let description = Description::parse(Path::new("pump.toml"), DESCRIPTION)
+        let description = GraphDescription::parse(Path::new("pump.toml"), DESCRIPTION)
             .expect("the demo's description is valid");
-        let net = &description.network;
+        let net = &description.graph;
         let mut rng = Rng::new(seed ^ 0x9a3b_0001);
         let m = PER_STATE * STATES.len();
         let mut raw = Array2::zeros((m, 4));
@@ -94,20 +95,20 @@ impl Pump {
             y[[i, c]] = 1.0;
         }
         let batch = Batch { x, y };
-        let mut weights = Init::GlorotUniform.weights(net, &mut rng);
-        let loss_before = net.loss_value(&weights, batch.x.view(), batch.y.view());
+        let mut params = Init::GlorotUniform.graph_params(net, &mut rng);
+        let loss_before = net.loss(&params, batch.x.view(), batch.y.view());
         for _ in 0..STEPS {
-            let (_, g) = net.gradient(&weights, batch.x.view(), batch.y.view());
-            for (w, gl) in weights.layers_mut().iter_mut().zip(g.layers()) {
-                w.scaled_add(-RATE, gl);
+            let g = net.gradient(&params, batch.x.view(), batch.y.view(), None);
+            for (w, gw) in params.iter_mut().zip(&g.params) {
+                w.scaled_add(-RATE, gw);
             }
         }
-        let loss_after = net.loss_value(&weights, batch.x.view(), batch.y.view());
+        let loss_after = net.loss(&params, batch.x.view(), batch.y.view());
         Pump {
             description,
             labels,
             batch,
-            weights,
+            params,
             loss_before,
             loss_after,
         }

@@ -13,9 +13,10 @@
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use plumb_engine::graph::{
-    Graph, GraphError, Hooks, Planted, Reduction, Role, Shape, Slope, Trace,
+    Graph, GraphError, Hooks, Planted, Reduction, Regularization, Role, Samples, Shape, Slope,
+    Trace,
 };
-use plumb_engine::{Activation, L2Divisor, Regularization, Samples};
+use plumb_engine::{Activation, L2Divisor};
 
 use crate::catalogue::{CONSTANT_FACTOR, Hypothesis, fitted_factor, scaled, slope_text, swaps};
 use crate::diagnose::Hypotheses;

@@ -3,7 +3,7 @@
 use ndarray::Array2;
 
 use crate::graph::{Graph, Shape};
-use crate::{Activation, Network, Rng, Scalar};
+use crate::{Activation, Rng, Scalar};
 
 /// Inputs and targets, one sample per row, in f64 as read from a file. For the layer graph, x is
 /// m × the input's size and y m × the output's size, each row in C order of its [`Shape`]
@@ -30,32 +30,12 @@ impl Batch {
         (self.x.mapv(S::from_f64), self.y.mapv(S::from_f64))
     }
 
-    /// A seeded synthetic batch for a network, used when no data file is given: standard-normal
-    /// features, and targets the loss accepts — one-hot classes for softmax outputs, 0/1 for
-    /// sigmoid outputs with cross-entropy, standard-normal values otherwise.
-    pub fn synthetic(network: &Network, m: usize, seed: u64) -> Batch {
-        let mut rng = Rng::new(seed ^ 0x5eed_da7a);
-        let x = Array2::from_shape_fn((m, network.inputs()), |_| rng.normal());
-        let k = network.outputs();
-        let output = network.layers()[network.layers().len() - 1].activation;
-        let mut y = Array2::zeros((m, k));
-        match output {
-            Activation::Softmax => {
-                for mut row in y.rows_mut() {
-                    row[rng.below(k)] = 1.0;
-                }
-            }
-            Activation::Sigmoid => y.mapv_inplace(|_| if rng.uniform() < 0.5 { 0.0 } else { 1.0 }),
-            _ => y.mapv_inplace(|_| rng.normal()),
-        }
-        Batch { x, y }
-    }
-
     /// A seeded synthetic batch of `m` samples for a graph, used when no data file is given. x:
     /// standard-normal values, or token ids drawn uniformly from 0..vocabulary for a token input.
     /// y: what the loss accepts — one-hot classes for a softmax output (one per step for a
     /// per-step output), 0/1 for a sigmoid output, standard-normal values otherwise. On a graph of
-    /// dense layers it is the batch [`Batch::synthetic`] draws for the same network.
+    /// dense layers it is the batch plumb's dense engine drew for the same network, so seeded runs
+    /// keep their numbers.
     pub fn graph_synthetic(graph: &Graph, m: usize, seed: u64) -> Batch {
         let mut rng = Rng::new(seed ^ 0x5eed_da7a);
         let x = match graph.input() {

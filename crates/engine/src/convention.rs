@@ -102,18 +102,6 @@ pub struct Conventions {
     pub l2_on_bias: bool,
 }
 
-impl Conventions {
-    /// The factor on Σ w² in the loss: λ / divisor.
-    pub fn l2_factor(&self, l2: f64, m: usize) -> f64 {
-        l2 / self.l2_divisor.value(m)
-    }
-
-    /// The factor on w in the L2 term's gradient: 2λ / divisor.
-    pub fn l2_slope(&self, l2: f64, m: usize) -> f64 {
-        2.0 * self.l2_factor(l2, m)
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -133,12 +121,10 @@ mod tests {
     fn the_default_is_lambda_over_2m() {
         // d/dw (λ/2m)·w² = (λ/m)·w; under divisor "2": λ·w.
         let c = Conventions::default();
-        assert_eq!(c.l2_slope(0.3, 10), 0.3 / 10.0);
-        let two = Conventions {
-            l2_divisor: L2Divisor::Two,
-            ..c
-        };
-        assert_eq!(two.l2_slope(0.3, 10), 0.3);
+        assert_eq!(c.l2_divisor, L2Divisor::TwoM);
+        let slope = |d: L2Divisor| 2.0 * 0.3 / d.value(10);
+        assert_eq!(slope(c.l2_divisor), 0.3 / 10.0);
+        assert_eq!(slope(L2Divisor::Two), 0.3);
         assert_eq!(Reduction::Sum.factor(10), 1.0);
     }
 }

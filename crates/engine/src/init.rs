@@ -21,10 +21,10 @@
 
 use std::fmt;
 
-use ndarray::{Array2, ArrayD, IxDyn};
+use ndarray::{ArrayD, IxDyn};
 
+use crate::Rng;
 use crate::graph::{Graph, ParamSpec, Role};
-use crate::{Network, Rng, Weights};
 
 /// An initialisation scheme.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -84,22 +84,6 @@ impl Init {
         }
     }
 
-    /// Draws weights for a network: non-bias weights from the scheme, bias weights zero.
-    pub fn weights(&self, network: &Network, rng: &mut Rng) -> Weights<f64> {
-        let layers = network
-            .layers()
-            .iter()
-            .map(|spec| {
-                let sd = self.std_dev(spec.inputs, spec.units);
-                Array2::from_shape_fn(spec.shape(), |(_, c)| match c {
-                    0 => 0.0,
-                    _ => self.draw(sd, rng),
-                })
-            })
-            .collect();
-        Weights::new(layers)
-    }
-
     /// Draws one parameter tensor of the graph by its role (see the module doc), in its
     /// canonical shape; values are drawn in C order, and only weights and tables take draws.
     pub fn tensor(&self, spec: &ParamSpec, rng: &mut Rng) -> ArrayD<f64> {
@@ -116,8 +100,8 @@ impl Init {
     }
 
     /// Draws every parameter tensor of a graph, in the order of [`Graph::tensors`]. The same
-    /// seed gives the same values; on a graph of dense layers they are the values
-    /// [`Init::weights`] gives the same network (biases take no draws in either).
+    /// seed gives the same values; on a graph of dense layers they are the values plumb's dense
+    /// engine drew (its augmented matrices row by row, the bias column taking no draw).
     pub fn graph_params(&self, graph: &Graph, rng: &mut Rng) -> Vec<ArrayD<f64>> {
         graph
             .tensors()

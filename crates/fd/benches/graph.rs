@@ -3,16 +3,15 @@
 //! - `cnn`: the full check of the demo CNN (examples/pump-cnn.toml) against a naive NumPy loop
 //!   (the hand-written example's forward pass per perturbation, benches/graph_numpy.py), and the
 //!   same check's perturbed losses with and without the kinds' incremental hints;
-//! - `dense`: a 784-128-64-10 dense network checked through the layer graph against the dense
-//!   engine's check (same weights, batch, sample size and directions; alternating, the fastest
-//!   of 7 each; the dense engine's side is common/dense_engine.rs, which goes with the dense
-//!   engine);
-//! - `mlp`: the full check of that network against a naive NumPy loop (issue 14's figure);
+//! - `mlp`: the full check of a 784-128-64-10 tanh network against a naive NumPy loop (issue
+//!   14's figure);
 //! - `lstm`, `attention`: forward + backward (`Graph::gradient`) of examples/pump-lstm.toml and
 //!   pump-attention.toml against the examples' hand-written NumPy passes;
 //! - `sequence`: the full check of the demo sequence model (fixtures/nets/pump-sequence.toml)
 //!   against a naive NumPy loop;
-//! - `dense-plumb` (only when named): the graph's side of `dense` alone, with its fingerprint;
+//! - `dense-plumb` (only when named): the graph's check of the 784-128-64-10 network at 3,000
+//!   coordinates plus directions, with its fingerprint (the figure compared with the dense
+//!   engine's check before it went, benches/README.md);
 //! - `cnn-plumb` (only when named): plumb's side of `cnn` alone, the fastest of 10 runs, with a
 //!   fingerprint of the results and the count of each verdict — for before/after runs of two
 //!   builds on a busy machine, where NumPy's time is not needed.
@@ -218,37 +217,6 @@ fn cnn_plumb() {
     );
 }
 
-/// The graph's check of the dense network against the dense engine's (the figure from before
-/// every check ran on the graph; it goes with `common::dense_engine`).
-fn dense() {
-    let (net, w, batch) = common::dense_engine::network();
-    let (g, p, gb) = common::network();
-    assert_eq!(p, common::dense_engine::tensors(&w), "the same weights");
-    assert_eq!((&gb.x, &gb.y), (&batch.x, &batch.y), "the same batch");
-    let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
-    cfg.sample = Some(Sample::Total(3000));
-    cfg.directions = Some(4);
-    // Alternating, the fastest of 7 each: a busy moment of the shared machine counts against
-    // both sides alike.
-    let (mut t_dense, mut t_graph) = (f64::INFINITY, f64::INFINITY);
-    let (mut rd, mut rg) = (None, None);
-    for _ in 0..7 {
-        let (t, r) = best(1, || common::dense_engine::run(&net, &w, &batch, &cfg));
-        (t_dense, rd) = (t_dense.min(t), Some(r));
-        let (t, r) = best(1, || dense_graph(&g, &p, &gb, &cfg));
-        (t_graph, rg) = (t_graph.min(t), Some(r));
-    }
-    let (rd, rg) = (rd.unwrap(), rg.unwrap());
-    same_loss("dense", rd.loss, rg.loss);
-    println!(
-        "dense 784-128-64-10 tanh, batch 32, 3000 coordinates + directions: dense engine {:.1} ms, layer graph {:.1} ms: the graph takes {:.2}× the dense engine's time; graph check {}",
-        t_dense * 1e3,
-        t_graph * 1e3,
-        t_graph / t_dense,
-        common::summary(&rg)
-    );
-}
-
 fn dense_graph(g: &Graph, p: &[ArrayD<f64>], b: &Batch, cfg: &CheckConfig) -> plumb_fd::GraphCheck {
     check_graph(g, p, b.x.view(), b.y.view(), cfg, &|_, _| {}).unwrap()
 }
@@ -381,9 +349,6 @@ fn main() {
     }
     if asked.iter().any(|a| a == "cnn-plumb") {
         cnn_plumb();
-    }
-    if run("dense") {
-        dense();
     }
     if asked.iter().any(|a| a == "dense-plumb") {
         dense_plumb();

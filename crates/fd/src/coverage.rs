@@ -1,9 +1,9 @@
 //! Which coordinates a check looks at: all, a seeded sample, or a sample per layer — stratified so
-//! that a small part such as a layer's bias weights is never left out.
+//! that a small tensor such as a layer's bias is never left out.
 
 use std::fmt;
 
-use plumb_engine::{Coord, Network, Rng};
+use plumb_engine::Rng;
 
 /// `--sample`.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -24,13 +24,7 @@ pub const DEFAULT_PER_LAYER: usize = 1_000;
 pub(crate) const STRATUM_MINIMUM: usize = 10;
 
 impl Sample {
-    /// The default for a network: everything up to [`FULL_CHECK_LIMIT`] parameters, else
-    /// [`DEFAULT_PER_LAYER`] per layer.
-    pub fn default_for(net: &Network) -> Sample {
-        Sample::default_for_parameters(net.parameters())
-    }
-
-    /// The default for a network of `parameters` parameters (any engine): everything up to
+    /// The default for a network of `parameters` parameters: everything up to
     /// [`FULL_CHECK_LIMIT`], else [`DEFAULT_PER_LAYER`] per layer.
     pub fn default_for_parameters(parameters: usize) -> Sample {
         if parameters <= FULL_CHECK_LIMIT {
@@ -107,73 +101,9 @@ pub fn share(sizes: &[usize], minimum: usize, least: usize, n: usize) -> Vec<usi
     q
 }
 
-/// The coordinates to check, in layer-major, row-major order. `Total(n)` with n above the number
-/// of parameters is an error the caller reports.
-pub fn select(net: &Network, sample: Sample, seed: u64) -> Result<Vec<Coord>, String> {
-    let mut rng = Rng::new(seed ^ 0xc0_0bd5);
-    let layers = net.layers();
-    let quotas: Vec<usize> = match sample {
-        Sample::All => layers.iter().map(|l| l.parameters()).collect(),
-        Sample::PerLayer(n) => layers.iter().map(|l| n.min(l.parameters())).collect(),
-        Sample::Total(n) => {
-            let total = net.parameters();
-            if n > total {
-                return Err(format!(
-                    "--sample {n} is more than the network's {total} parameters; use `all` or a smaller number"
-                ));
-            }
-            let sizes: Vec<usize> = layers.iter().map(|l| l.parameters()).collect();
-            // Two strata per layer: its bias weights and the others.
-            share(&sizes, 2 * STRATUM_MINIMUM, 2, n)
-        }
-    };
-    let mut out = Vec::new();
-    for (l, (spec, &quota)) in layers.iter().zip(&quotas).enumerate() {
-        let (units, cols) = spec.shape();
-        let params = spec.parameters();
-        if quota >= params {
-            for row in 0..units {
-                for col in 0..cols {
-                    out.push(Coord { layer: l, row, col });
-                }
-            }
-            continue;
-        }
-        // Bias weights: their share of the quota, at least the stratum minimum, leaving at least
-        // one coordinate for the other weights.
-        let bias = (quota * units)
-            .div_ceil(params)
-            .max(STRATUM_MINIMUM)
-            .min(units)
-            .min(quota.saturating_sub(1).max(1));
-        let weights = quota - bias;
-        let mut chosen: Vec<Coord> = pick(units, &mut rng, bias)
-            .into_iter()
-            .map(|row| Coord {
-                layer: l,
-                row,
-                col: 0,
-            })
-            .collect();
-        let w_cols = cols - 1;
-        chosen.extend(
-            pick(units * w_cols, &mut rng, weights)
-                .into_iter()
-                .map(|k| Coord {
-                    layer: l,
-                    row: k / w_cols,
-                    col: 1 + k % w_cols,
-                }),
-        );
-        chosen.sort();
-        out.extend(chosen);
-    }
-    Ok(out)
-}
-
 /// The coordinates of a network of parameter tensors to check, as (tensor, flat index) in tensor
 /// and flat order; `layers[t]` is the layer tensor `t` belongs to. The sample means what it means
-/// for [`select`]: `Total(n)` checks exactly n coordinates over the network (each tensor at least
+/// for every checker: `Total(n)` checks exactly n coordinates over the network (each tensor at least
 /// 10 of them, or all of a smaller one, unless n is too small for that: then one per tensor), the
 /// rest spread by size; `PerLayer(n)` n per layer (all of a smaller layer), spread over the
 /// layer's tensors the same way; every tensor is a stratum, so a bias is never left out.
@@ -294,73 +224,19 @@ pub(crate) fn pick(n: usize, rng: &mut Rng, k: usize) -> Vec<usize> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use plumb_engine::{Activation, Loss};
 
-    fn net() -> Network {
-        Network::new(
-            300,
-            &[(100, Activation::Relu), (10, Activation::Softmax)],
-            Loss::CrossEntropy,
-            0.0,
-        )
-        .unwrap()
-    }
-
-    #[test]
-    fn all_is_every_coordinate_once() {
-        let n = net();
-        let c = select(&n, Sample::All, 1).unwrap();
-        assert_eq!(c.len(), n.parameters());
-        let mut d = c.clone();
-        d.dedup();
-        assert_eq!(d.len(), c.len());
-    }
-
-    #[test]
-    fn samples_are_distinct_seeded_and_never_miss_a_bias() {
-        let n = net();
-        for sample in [Sample::Total(500), Sample::PerLayer(200), Sample::Total(30)] {
-            let a = select(&n, sample, 7).unwrap();
-            assert_eq!(a, select(&n, sample, 7).unwrap(), "seeded");
-            assert_ne!(a, select(&n, sample, 8).unwrap());
-            let mut d = a.clone();
-            d.dedup();
-            assert_eq!(d.len(), a.len(), "distinct");
-            for layer in 0..2 {
-                assert!(
-                    a.iter().any(|c| c.layer == layer && c.col == 0),
-                    "{sample}: bias of layer {layer}"
-                );
-                assert!(
-                    a.iter().any(|c| c.layer == layer && c.col > 0),
-                    "{sample}: weights of layer {layer}"
-                );
-            }
-        }
-        assert_eq!(select(&n, Sample::Total(500), 1).unwrap().len(), 500);
-        // The 10 × 101 output layer is smaller than 200: all of it.
-        let per = select(&n, Sample::PerLayer(200), 1).unwrap();
-        assert_eq!(per.iter().filter(|c| c.layer == 0).count(), 200);
-        assert_eq!(per.iter().filter(|c| c.layer == 1).count(), 200);
-        assert!(select(&n, Sample::Total(n.parameters() + 1), 1).is_err());
-    }
-
-    /// `--sample 15` is 15 coordinates in `check` (over layers) and in `probe` (over tensors):
-    /// one meaning, however the groups are cut.
+    /// `--sample 15` is 15 coordinates in `check` (over the graph's tensors) and in `probe` (over
+    /// the program's tensors): one meaning, however the groups are cut.
     #[test]
     fn a_total_sample_is_that_many_in_check_and_probe() {
-        let n = Network::new(
-            4,
-            &[(5, Activation::Tanh), (3, Activation::Softmax)],
-            Loss::CrossEntropy,
-            0.1,
-        )
-        .unwrap();
+        // A 4-5-3 dense network: weights 5 × 4 and 3 × 5 with their biases, or augmented.
         let augmented = [25, 18];
         let split = [20, 5, 15, 3];
         for total in [1, 2, 4, 15, 30, 43] {
             assert_eq!(
-                select(&n, Sample::Total(total), 3).unwrap().len(),
+                select_tensors(&split, &[0, 0, 1, 1], Sample::Total(total), 3)
+                    .unwrap()
+                    .len(),
                 total.max(4)
             );
             assert_eq!(
@@ -386,6 +262,10 @@ mod tests {
         assert_eq!(
             n,
             select_tensors(&sizes, &layers, Sample::Total(40), 3).unwrap()
+        );
+        assert_ne!(
+            n,
+            select_tensors(&sizes, &layers, Sample::Total(40), 4).unwrap()
         );
         for (t, size) in sizes.iter().enumerate() {
             let got = n.iter().filter(|c| c.0 == t).count();

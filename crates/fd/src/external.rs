@@ -17,7 +17,7 @@ pub struct OutsideTensor {
     pub name: String,
     pub values: Vec<f64>,
     pub gradient: Vec<f64>,
-    /// A bound on the pieces each gradient entry is summed from (`gradient_magnitude` of the
+    /// A bound on the pieces each gradient entry is summed from (`graph_gradient_magnitude` of the
     /// reference), for the round-off allowance; empty when nothing is known of the inside.
     pub gross: Vec<f64>,
 }

@@ -3,106 +3,15 @@
 //! − y·z for z ≈ 10 is 10.00005 − 10), and its gradient a small difference a − y of numbers near 1;
 //! judging their round-off by |J| or |g| alone would call correct gradients wrong.
 
-use ndarray::{Array2, ArrayD, ArrayView2, Axis, Ix2, s};
+use ndarray::{Array2, ArrayD, ArrayView2, Axis, Ix2};
 use plumb_engine::graph::{Graph, Shape};
-use plumb_engine::{Activation, Loss, Network, Trace, Weights};
+use plumb_engine::{Activation, Loss};
 
-/// Σ of the absolute values of the terms the loss sums (times 1/m under the mean reduction), plus
-/// the L2 term.
-pub fn loss_magnitude(
-    net: &Network,
-    weights: &Weights<f64>,
-    trace: &Trace<f64>,
-    y: &Array2<f64>,
-) -> f64 {
-    let depth = net.layers().len();
-    let out = net.layers()[depth - 1].activation;
-    let (z, a) = (&trace.z[depth - 1], &trace.a[depth]);
-    let reduce = net.conventions().reduction.factor(z.nrows());
-    let data: f64 = match (net.loss(), out) {
-        (Loss::CrossEntropy, Activation::Softmax) => z
-            .rows()
-            .into_iter()
-            .zip(y.rows())
-            .map(|(zr, yr)| {
-                let shift = zr.iter().fold(f64::NEG_INFINITY, |m, v| m.max(*v));
-                let lse = shift + zr.iter().map(|v| (v - shift).exp()).sum::<f64>().ln();
-                zr.iter()
-                    .zip(yr)
-                    .map(|(zv, yv)| yv.abs() * (lse.abs() + zv.abs()))
-                    .sum::<f64>()
-            })
-            .sum(),
-        (Loss::CrossEntropy, _) => z
-            .iter()
-            .zip(y.iter())
-            .map(|(&zv, &yv)| Activation::Softplus.value(zv).abs() + (yv * zv).abs())
-            .sum(),
-        (Loss::SquaredError, _) => {
-            0.5 * a
-                .iter()
-                .zip(y.iter())
-                .map(|(av, yv)| (av.abs() + yv.abs()).powi(2))
-                .sum::<f64>()
-        }
-    };
-    data * reduce + net.l2_penalty(weights, z.nrows())
-}
-
-/// A bound on each gradient entry's pieces: backpropagation of absolute values (|a| + |y| at the
-/// output, |W| and |g′| on the way down), so that rounding in a − y and in the sums is allowed for.
-pub fn gradient_magnitude(
-    net: &Network,
-    weights: &Weights<f64>,
-    trace: &Trace<f64>,
-    y: &Array2<f64>,
-) -> Weights<f64> {
-    let depth = net.layers().len();
-    let m = trace.a[0].nrows();
-    let conventions = net.conventions();
-    let out = net.layers()[depth - 1].activation;
-    let a_out = &trace.a[depth];
-    let mut delta = (a_out.mapv(f64::abs) + y.mapv(f64::abs)) * conventions.reduction.factor(m);
-    if net.loss() == Loss::SquaredError && out != Activation::Identity {
-        let slope = match out {
-            // |∂softmax| is bounded by a(1 + a) per entry.
-            Activation::Softmax => a_out.mapv(|v| v.abs() * (1.0 + v.abs())),
-            act => Array2::from_shape_fn(a_out.raw_dim(), |(i, k)| {
-                act.slope(trace.z[depth - 1][[i, k]], a_out[[i, k]]).abs()
-            }),
-        };
-        delta = delta * slope;
-    }
-    let mut grads = Vec::with_capacity(depth);
-    for l in (0..depth).rev() {
-        let theta = weights.layer(l);
-        let mut g = Array2::zeros(theta.raw_dim());
-        g.column_mut(0).assign(&delta.sum_axis(Axis(0)));
-        g.slice_mut(s![.., 1..])
-            .assign(&delta.t().dot(&trace.a[l].mapv(f64::abs)));
-        if net.l2() != 0.0 {
-            let reg = conventions.l2_slope(net.l2(), m);
-            let from = usize::from(!conventions.l2_on_bias);
-            g.slice_mut(s![.., from..])
-                .zip_mut_with(&theta.slice(s![.., from..]), |gv, wv| *gv += reg * wv.abs());
-        }
-        grads.push(g);
-        if l > 0 {
-            let up = delta.dot(&theta.slice(s![.., 1..]).mapv(f64::abs));
-            let act = net.layers()[l - 1].activation;
-            let slope = Array2::from_shape_fn(up.raw_dim(), |(i, k)| {
-                act.slope(trace.z[l - 1][[i, k]], trace.a[l][[i, k]]).abs()
-            });
-            delta = up * slope;
-        }
-    }
-    grads.reverse();
-    Weights::new(grads)
-}
-
-/// [`gradient_magnitude`] on the layer graph, for a chain of dense layers on a flat input (what a
-/// dense description builds): per graph tensor (weight, bias of each layer), a bound on each
-/// entry's pieces. None for any other graph, whose entries are judged without it.
+/// A bound on each gradient entry's pieces, for a chain of dense layers on a flat input (what a
+/// dense description builds): backpropagation of absolute values (|a| + |y| at the output, |W| and
+/// |g′| on the way down), so that rounding in a − y and in the sums is allowed for; per graph
+/// tensor (weight, bias of each layer). None for any other graph, whose entries are judged
+/// without it.
 pub fn graph_gradient_magnitude(
     graph: &Graph,
     params: &[ArrayD<f64>],

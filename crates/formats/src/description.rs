@@ -1,15 +1,17 @@
-//! The dense engine's network description: a TOML file naming dense layers, activations, loss, L2
-//! strength and the weight file's layout (docs/description.md). It is read by the one parser of
-//! every kind (`settings.rs`), then refused when a layer is not dense.
+//! What is wrong with a description and where ([`DescriptionError`]), the weight file's layout of
+//! dense layers ([`Layout`]), and the rules a description of dense layers on a flat input keeps
+//! before its graph is built, with the messages plumb has always given for them (a layer's units,
+//! softmax on the output layer only and over more than one unit, activation parameters, a loss
+//! that needs probabilities, λ, the parameter limit, distinct tensor names).
 
 use std::fmt;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
+use plumb_engine::Activation;
 use plumb_engine::graph::Shape;
-use plumb_engine::{Activation, Conventions, Network, NetworkError};
 use thiserror::Error;
 
-use crate::settings::{self, KindSettings, Parsed};
+use crate::settings::{KindSettings, Parsed};
 use crate::walk::Walk;
 
 /// How a weight file stores each layer.
@@ -51,30 +53,6 @@ impl fmt::Display for Layout {
     }
 }
 
-/// One `[[layer]]` table as written.
-#[derive(Clone, Debug, PartialEq)]
-pub struct LayerDescription {
-    pub units: usize,
-    pub activation: Activation,
-    /// Explicit name of the weight tensor in the weight file (overrides the layout's default).
-    pub weight: Option<String>,
-    /// Explicit name of the bias tensor (split layouts only).
-    pub bias: Option<String>,
-    /// The line of the `[[layer]]` header, for messages.
-    pub line: usize,
-}
-
-/// A parsed and validated network description.
-#[derive(Clone, Debug)]
-pub struct Description {
-    /// The file it was read from (for messages).
-    pub path: PathBuf,
-    pub layout: Layout,
-    pub layers: Vec<LayerDescription>,
-    /// The architecture the engine runs.
-    pub network: Network,
-}
-
 /// What is wrong with a description, and where.
 #[derive(Clone, Debug, Error, PartialEq)]
 #[error("{}{}: {message}", path.display(), place(*line, *column))]
@@ -99,137 +77,26 @@ fn place(line: Option<usize>, column: Option<usize>) -> String {
 /// terabytes.
 pub const MAX_PARAMETERS: usize = 1 << 26;
 
-impl Description {
-    /// Reads and validates a description file of dense layers. A file with other kinds is
-    /// refused, naming the first such layer: the commands that take a `Description` run the dense
-    /// engine ([`crate::GraphDescription`] reads every kind).
-    pub fn read(path: &Path) -> Result<Description, DescriptionError> {
-        let text = crate::graph_description::read_text(path)?;
-        Description::parse(path, &text)
-    }
-
-    /// Parses and validates a description from its text; `path` is used in messages only.
-    pub fn parse(path: &Path, text: &str) -> Result<Description, DescriptionError> {
-        let w = Walk::new(path, text);
-        let parsed = settings::parse(&w)?;
-        dense(&w, parsed)
-    }
-
-    /// The number of input features.
-    pub fn inputs(&self) -> usize {
-        self.network.inputs()
-    }
-
-    /// The description as TOML text (used by the demo to write its example files).
-    pub fn to_toml(&self, comment: &str) -> String {
-        let mut out = String::new();
-        for line in comment.lines() {
-            out.push_str(&format!("# {line}\n"));
-        }
-        let net = &self.network;
-        out.push_str(&format!("inputs = {}\n", net.inputs()));
-        out.push_str(&format!("loss = \"{}\"\n", net.loss().name()));
-        out.push_str(&format!("l2 = {:?}\n", net.l2()));
-        // The conventions only when they depart from the defaults: the text is what a baseline's
-        // description hash is taken of, and descriptions written before these keys keep theirs.
-        let c = net.conventions();
-        let default = Conventions::default();
-        if c.reduction != default.reduction {
-            out.push_str(&format!("reduction = \"{}\"\n", c.reduction));
-        }
-        if c.l2_divisor != default.l2_divisor {
-            out.push_str(&format!("l2-divisor = \"{}\"\n", c.l2_divisor));
-        }
-        if c.l2_on_bias != default.l2_on_bias {
-            out.push_str(&format!("l2-on-bias = {}\n", c.l2_on_bias));
-        }
-        out.push_str(&format!("layout = \"{}\"\n", self.layout.name()));
-        for layer in &self.layers {
-            out.push_str(&format!("\n[[layer]]\nunits = {}\n", layer.units));
-            out.push_str(&format!("activation = \"{}\"\n", layer.activation.name()));
-            match layer.activation {
-                Activation::LeakyRelu { slope } => out.push_str(&format!("slope = {slope:?}\n")),
-                Activation::Elu { alpha } => out.push_str(&format!("alpha = {alpha:?}\n")),
-                _ => {}
-            }
-            if let Some(w) = &layer.weight {
-                out.push_str(&format!("weight = {}\n", quote(w)));
-            }
-            if let Some(b) = &layer.bias {
-                out.push_str(&format!("bias = {}\n", quote(b)));
-            }
-        }
-        out
-    }
-}
-
-fn quote(s: &str) -> String {
-    format!("\"{}\"", s.replace('\\', "\\\\").replace('"', "\\\""))
-}
-
-/// The dense engine's description from the one parser's result: every layer dense, the input
-/// flat. The checks and messages are the dense engine's own.
-fn dense(w: &Walk<'_>, parsed: Parsed) -> Result<Description, DescriptionError> {
-    if let Some((l, spans)) = parsed
-        .layers
-        .iter()
-        .zip(&parsed.spans)
-        .find(|(l, _)| !matches!(l.kind, KindSettings::Dense { .. }))
-    {
-        return Err(w.error(
-            Some(spans.of("kind")),
-            format!(
-                "layer {} is a {} layer (line {}); this command does not take {} layers yet, only dense ones: check such a network with the commands that read any kind",
-                l.number,
-                l.kind_name(),
-                l.line,
-                l.kind_name()
-            ),
-        ));
-    }
+/// The rules of a description of dense layers on a flat input, checked on the parser's result
+/// before the graph is built (the graph's builder would refuse the same networks, in its own
+/// words). Other descriptions pass.
+pub(crate) fn check_dense(w: &Walk<'_>, parsed: &Parsed) -> Result<(), DescriptionError> {
     let Shape::Flat(inputs) = parsed.input else {
-        return Err(w.error(
-            Some(parsed.input_span.clone()),
-            format!(
-                "the input is {}; this command does not take that input yet, only a number of features",
-                parsed.input
-            ),
-        ));
+        return Ok(());
     };
     let mut layers = Vec::with_capacity(parsed.layers.len());
     for l in &parsed.layers {
-        let KindSettings::Dense {
-            units,
-            weight,
-            bias,
-        } = &l.kind
-        else {
-            unreachable!("checked above");
+        let KindSettings::Dense { units, .. } = l.kind else {
+            return Ok(());
         };
-        // A `name` prefixes the layer's tensors as it does in the graph.
-        let (weight, bias) = match (&l.name, parsed.layout) {
-            (Some(n), Layout::Augmented) => (weight.clone().or_else(|| Some(n.clone())), None),
-            (Some(n), _) => (
-                weight.clone().or_else(|| Some(format!("{n}.weight"))),
-                bias.clone().or_else(|| Some(format!("{n}.bias"))),
-            ),
-            (None, _) => (weight.clone(), bias.clone()),
-        };
-        layers.push(LayerDescription {
-            units: *units,
-            activation: l.activation,
-            weight,
-            bias,
-            line: l.line,
-        });
+        layers.push((units, l.activation));
     }
     let spans = &parsed.spans;
 
     let mut parameters: usize = 0;
     let mut fan_in = inputs;
-    for (i, layer) in layers.iter().enumerate() {
-        let count = layer
-            .units
+    for (i, &(units, _)) in layers.iter().enumerate() {
+        let count = units
             .checked_mul(fan_in + 1)
             .and_then(|c| c.checked_add(parameters));
         match count {
@@ -245,69 +112,95 @@ fn dense(w: &Walk<'_>, parsed: Parsed) -> Result<Description, DescriptionError> 
                 ));
             }
         }
-        fan_in = layer.units;
+        fan_in = units;
     }
 
-    let spec: Vec<(usize, Activation)> = layers.iter().map(|l| (l.units, l.activation)).collect();
-    let loss = parsed.loss;
-    let network = Network::new(inputs, &spec, loss.loss, loss.l2)
-        .map_err(|e| {
-            let span = match &e {
-                NetworkError::NoInputs => Some(parsed.input_span.clone()),
-                NetworkError::NoUnits { layer } => Some(spans[layer - 1].of("units")),
-                NetworkError::SoftmaxHidden { layer, .. }
-                | NetworkError::SoftmaxSingleUnit { layer }
-                | NetworkError::BadActivationParameter { layer, .. } => {
-                    Some(spans[layer - 1].of("activation"))
-                }
-                NetworkError::LossNeedsProbabilities { .. } => Some(parsed.loss_span.clone()),
-                NetworkError::BadL2 { .. } | NetworkError::NoLayers => None,
-            };
-            w.error(span, e.to_string())
-        })?
-        .with_conventions(Conventions {
-            reduction: loss.reduction,
-            l2_divisor: loss.l2_divisor,
-            l2_on_bias: loss.l2_on_bias,
-        });
-
-    let desc = Description {
-        path: w.path.to_path_buf(),
-        layout: parsed.layout,
-        layers,
-        network,
-    };
-    // Two layers (or a weight and a bias) under one name would read one tensor twice.
-    let names = crate::layout::expected_tensors(&desc, desc.layout);
-    let mut first = std::collections::HashMap::with_capacity(names.len());
-    for (i, a) in names.iter().enumerate() {
-        if let Some(b) = first.insert(a.name.as_str(), i).map(|j| &names[j]) {
-            let line = desc.layers[a.layer].line;
-            return Err(DescriptionError {
-                path: w.path.to_path_buf(),
-                line: Some(line),
-                column: None,
-                message: format!(
-                    "the tensor name `{}` is used twice: by layer {}'s {} and by layer {}'s {}; give each tensor its own name",
-                    a.name,
-                    b.layer + 1,
-                    b.role.name(),
-                    a.layer + 1,
-                    a.role.name()
-                ),
-            });
+    if layers.is_empty() {
+        return Err(w.error(
+            None,
+            "the network has no layers: add at least one [[layer]]",
+        ));
+    }
+    if inputs == 0 {
+        return Err(w.error(
+            Some(parsed.input_span.clone()),
+            "`inputs` is 0: a network needs at least one input feature",
+        ));
+    }
+    let l2 = parsed.loss.l2;
+    if !(l2.is_finite() && l2 >= 0.0) {
+        return Err(w.error(None, format!("l2 is {l2}; it must be a finite number ≥ 0")));
+    }
+    let last = layers.len();
+    for (i, &(units, activation)) in layers.iter().enumerate() {
+        let layer = i + 1;
+        if units == 0 {
+            return Err(w.error(
+                Some(spans[i].of("units")),
+                format!("layer {layer} has 0 units: every layer needs at least one"),
+            ));
+        }
+        let at = Some(spans[i].of("activation"));
+        let bad = |what: &str, value: f64, rule: &str| {
+            w.error(
+                at.clone(),
+                format!("layer {layer}: {what} is {value}; {rule}"),
+            )
+        };
+        match activation {
+            Activation::LeakyRelu { slope }
+                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
+            {
+                return Err(bad("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"));
+            }
+            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
+                return Err(bad(
+                    "the elu alpha",
+                    alpha,
+                    "it must be a finite number > 0",
+                ));
+            }
+            Activation::Softmax if layer != last => {
+                return Err(w.error(
+                    at.clone(),
+                    format!(
+                        "layer {layer} uses softmax, which is only allowed on the output layer (layer {last}); use another activation there"
+                    ),
+                ));
+            }
+            Activation::Softmax if units == 1 => {
+                return Err(w.error(
+                    at.clone(),
+                    format!(
+                        "layer {layer} is a softmax over a single unit, which is always 1; use sigmoid for one output"
+                    ),
+                ));
+            }
+            _ => {}
         }
     }
-    Ok(desc)
+    let output = layers[last - 1].1;
+    if !parsed.loss.loss.accepts(output) {
+        return Err(w.error(
+            Some(parsed.loss_span.clone()),
+            format!(
+                "cross-entropy needs sigmoid or softmax outputs, but the output layer uses {output}; change the output activation or use squared-error"
+            ),
+        ));
+    }
+    Ok(())
 }
 
 #[cfg(test)]
 mod tests {
+    use std::path::Path;
+
     use super::*;
+    use crate::{GraphDescription, KindSettings};
     use plumb_engine::{L2Divisor, Reduction};
 
-    fn parse(text: &str) -> Result<Description, DescriptionError> {
-        Description::parse(Path::new("net.toml"), text)
+    fn parse(text: &str) -> Result<GraphDescription, DescriptionError> {
+        GraphDescription::parse(Path::new("net.toml"), text)
     }
 
     const GOOD: &str = r#"
@@ -328,19 +221,20 @@ activation = "softmax"
     #[test]
     fn reads_the_example() {
         let d = parse(GOOD).unwrap();
-        assert_eq!(d.inputs(), 4);
+        assert_eq!(d.graph.input(), Shape::Flat(4));
         assert_eq!(d.layout, Layout::Augmented);
-        assert_eq!(d.network.l2(), 0.01);
+        assert_eq!(d.graph.loss_config().l2, 0.01);
         assert_eq!(d.layers[0].activation, Activation::LeakyRelu { slope: 0.2 });
         assert_eq!(d.layers[1].line, 11);
-        assert_eq!(d.network.parameters(), 5 * 5 + 3 * 6);
+        assert_eq!(d.graph.parameters(), 5 * 5 + 3 * 6);
     }
 
     #[test]
     fn round_trips_through_its_own_text() {
         let d = parse(GOOD).unwrap();
-        let again = parse(&d.to_toml("generated")).unwrap();
-        assert_eq!(again.network, d.network);
+        let again = parse(&d.dense_text("generated").unwrap()).unwrap();
+        assert_eq!(again.dense_text(""), d.dense_text(""));
+        assert_eq!(again.graph.loss_config(), d.graph.loss_config());
         assert_eq!(again.layout, d.layout);
     }
 
@@ -413,7 +307,10 @@ activation = "softmax"
         let e = parse(&text).unwrap_err();
         assert!(e.message.contains("augmented layout keeps the bias"), "{e}");
         let d = parse(&format!("layout = \"split\"\n{text}")).unwrap();
-        assert_eq!(d.layers[1].bias.as_deref(), Some("out.b"));
+        let KindSettings::Dense { bias, .. } = &d.layers[1].kind else {
+            panic!("a dense layer")
+        };
+        assert_eq!(bias.as_deref(), Some("out.b"));
     }
 
     #[test]
@@ -431,28 +328,32 @@ activation = "softmax"
     #[test]
     fn conventions_are_read_and_default_to_mean_2m_no_bias() {
         let d = parse(GOOD).unwrap();
-        assert_eq!(d.network.conventions(), Conventions::default());
+        let c = d.graph.loss_config();
+        assert_eq!(
+            (c.reduction, c.l2_divisor, c.l2_on_bias),
+            (Reduction::Mean, L2Divisor::TwoM, false)
+        );
         let text = format!("reduction = \"sum\"\nl2-divisor = \"2\"\nl2-on-bias = true\n{GOOD}");
         let d = parse(&text).unwrap();
-        let c = d.network.conventions();
+        let c = d.graph.loss_config();
         assert_eq!(c.reduction, Reduction::Sum);
         assert_eq!(c.l2_divisor, L2Divisor::Two);
         assert!(c.l2_on_bias);
-        let again = parse(&d.to_toml("")).unwrap();
-        assert_eq!(again.network, d.network);
+        let again = parse(&d.dense_text("").unwrap()).unwrap();
+        assert_eq!(again.graph.loss_config(), d.graph.loss_config());
         // A number for the divisor reads as the same name.
         let d = parse(&format!("l2-divisor = 1\n{GOOD}")).unwrap();
-        assert_eq!(d.network.conventions().l2_divisor, L2Divisor::One);
+        assert_eq!(d.graph.loss_config().l2_divisor, L2Divisor::One);
     }
 
     #[test]
     fn default_conventions_leave_the_canonical_text_unchanged() {
         // Baselines hash this text: a description written before the keys existed, and the same
         // one with the defaults spelled out, must give the same text.
-        let plain = parse(GOOD).unwrap().to_toml("");
+        let plain = parse(GOOD).unwrap().dense_text("").unwrap();
         let spelled =
             format!("reduction = \"mean\"\nl2-divisor = \"2m\"\nl2-on-bias = false\n{GOOD}");
-        assert_eq!(parse(&spelled).unwrap().to_toml(""), plain);
+        assert_eq!(parse(&spelled).unwrap().dense_text("").unwrap(), plain);
         assert!(!plain.contains("reduction") && !plain.contains("l2-divisor"));
     }
 

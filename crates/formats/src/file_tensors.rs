@@ -11,9 +11,7 @@ use plumb_engine::graph::{Dense, Graph, GraphError, Role, Shape, Storage};
 
 use crate::settings::{KindSettings, LayerSettings};
 use crate::tensor::shape_text;
-use crate::{
-    AxisOrder, DType, FileFormat, GraphDescription, Layout, LayoutError, Tensor, TensorFile,
-};
+use crate::{AxisOrder, DType, FileFormat, GraphDescription, Layout, Tensor, TensorFile};
 
 /// How a file tensor lays out what it holds.
 #[derive(Clone, Debug, PartialEq, Eq)]
@@ -163,6 +161,15 @@ pub(crate) fn file_tensors(
         }
     }
     out
+}
+
+/// A weight file that does not fit its description.
+#[derive(Clone, Debug, thiserror::Error, PartialEq)]
+#[error("{}: tensor `{tensor}`: {message}", path.display())]
+pub struct LayoutError {
+    pub path: std::path::PathBuf,
+    pub tensor: String,
+    pub message: String,
 }
 
 impl GraphDescription {

@@ -3,16 +3,16 @@
 
 use std::path::{Path, PathBuf};
 
-use plumb_engine::Activation;
 use plumb_engine::graph::{
     Add, Attention, BatchNorm, Conv, Dense, Embedding, Flatten, GlobalAvgPool, Graph, GraphBuilder,
     GraphError, Gru, LayerNorm, Lstm, Padding, Pool, RmsNorm, Rnn, Shape, ShapeError,
 };
+use plumb_engine::{Activation, Conventions};
 
 use crate::file_tensors::{FileTensor, file_tensors};
 use crate::settings::{self, KeySpans, KindSettings, LayerSettings, Parsed};
 use crate::walk::Walk;
-use crate::{Description, DescriptionError, Layout, MAX_PARAMETERS};
+use crate::{DescriptionError, Layout, MAX_PARAMETERS};
 
 /// A parsed description of any kind of network, built into a [`Graph`].
 #[derive(Debug)]
@@ -39,6 +39,7 @@ impl GraphDescription {
     pub fn parse(path: &Path, text: &str) -> Result<GraphDescription, DescriptionError> {
         let w = Walk::new(path, text);
         let parsed = settings::parse(&w)?;
+        crate::description::check_dense(&w, &parsed)?;
         let graph = build(&w, &parsed)?;
         let files = file_tensors(&graph, &parsed.layers, parsed.layout);
         check_distinct(&w, &parsed, &files)?;
@@ -51,14 +52,79 @@ impl GraphDescription {
         })
     }
 
-    /// Whether every layer is dense on a flat input: what the dense engine (and so every command
-    /// today) runs.
+    /// Whether every layer is dense on a flat input: a description whose rules, messages, layouts
+    /// and identity hash are those plumb gave before the layer graph.
     pub fn is_dense(&self) -> bool {
         matches!(self.graph.input(), Shape::Flat(_))
             && self
                 .layers
                 .iter()
                 .all(|l| matches!(l.kind, KindSettings::Dense { .. }))
+    }
+
+    /// A dense description's canonical text, `comment` as its first lines: what its identity hash
+    /// is taken of (the text the dense engine wrote, so baselines keep their hash); the
+    /// conventions only where they depart from the defaults. `None` for other kinds.
+    pub fn dense_text(&self, comment: &str) -> Option<String> {
+        let Shape::Flat(inputs) = self.graph.input() else {
+            return None;
+        };
+        if !self.is_dense() {
+            return None;
+        }
+        let mut out = String::new();
+        for line in comment.lines() {
+            out.push_str(&format!("# {line}\n"));
+        }
+        let c = self.graph.loss_config();
+        out.push_str(&format!("inputs = {inputs}\n"));
+        out.push_str(&format!("loss = \"{}\"\n", c.loss.name()));
+        out.push_str(&format!("l2 = {:?}\n", c.l2));
+        let default = Conventions::default();
+        if c.reduction != default.reduction {
+            out.push_str(&format!("reduction = \"{}\"\n", c.reduction));
+        }
+        if c.l2_divisor != default.l2_divisor {
+            out.push_str(&format!("l2-divisor = \"{}\"\n", c.l2_divisor));
+        }
+        if c.l2_on_bias != default.l2_on_bias {
+            out.push_str(&format!("l2-on-bias = {}\n", c.l2_on_bias));
+        }
+        out.push_str(&format!("layout = \"{}\"\n", self.layout.name()));
+        for layer in &self.layers {
+            let KindSettings::Dense {
+                units,
+                weight,
+                bias,
+            } = &layer.kind
+            else {
+                return None;
+            };
+            out.push_str(&format!("\n[[layer]]\nunits = {units}\n"));
+            out.push_str(&format!("activation = \"{}\"\n", layer.activation.name()));
+            match layer.activation {
+                Activation::LeakyRelu { slope } => out.push_str(&format!("slope = {slope:?}\n")),
+                Activation::Elu { alpha } => out.push_str(&format!("alpha = {alpha:?}\n")),
+                _ => {}
+            }
+            // A `name` prefixes the layer's tensors: the text names them as the file does.
+            let (weight, bias) = match (&layer.name, self.layout) {
+                (Some(n), Layout::Augmented) => (weight.clone().or_else(|| Some(n.clone())), None),
+                (Some(n), _) => (
+                    weight.clone().or_else(|| Some(format!("{n}.weight"))),
+                    bias.clone().or_else(|| Some(format!("{n}.bias"))),
+                ),
+                (None, _) => (weight.clone(), bias.clone()),
+            };
+            let quote = |s: &str| format!("\"{}\"", s.replace('\\', "\\\\").replace('"', "\\\""));
+            if let Some(w) = weight {
+                out.push_str(&format!("weight = {}\n", quote(&w)));
+            }
+            if let Some(b) = bias {
+                out.push_str(&format!("bias = {}\n", quote(&b)));
+            }
+        }
+        Some(out)
     }
 }
 
@@ -284,10 +350,14 @@ fn graph_error(w: &Walk<'_>, p: &Parsed, e: GraphError) -> DescriptionError {
 
 /// Two file tensors under one name would read one tensor twice.
 fn check_distinct(w: &Walk<'_>, p: &Parsed, files: &[FileTensor]) -> Result<(), DescriptionError> {
+    let dense = matches!(p.input, Shape::Flat(_))
+        && p.layers
+            .iter()
+            .all(|l| matches!(l.kind, KindSettings::Dense { .. }));
     let mut first = std::collections::HashMap::with_capacity(files.len());
     for (i, a) in files.iter().enumerate() {
         if let Some(b) = first.insert(a.name.as_str(), i).map(|j| &files[j]) {
-            return Err(w.error(
+            let mut e = w.error(
                 Some(p.spans[a.layer].header.clone()),
                 format!(
                     "the tensor name `{}` is used twice: by layer {}'s {} and by layer {}'s {}; give each tensor its own name",
@@ -297,46 +367,13 @@ fn check_distinct(w: &Walk<'_>, p: &Parsed, files: &[FileTensor]) -> Result<(), 
                     a.layer + 1,
                     a.role_name()
                 ),
-            ));
+            );
+            // A dense description's message names the line alone, as it always has.
+            if dense {
+                e.column = None;
+            }
+            return Err(e);
         }
     }
     Ok(())
-}
-
-/// A description read once and sorted by the engine that runs it: every layer dense on a flat
-/// input goes to the dense engine (with the same network as a graph, for what only the graph
-/// computes, such as the input gradient); any other kind to the layer graph.
-#[derive(Debug)]
-pub enum AnyDescription {
-    Dense(Description, Box<GraphDescription>),
-    Graph(GraphDescription),
-}
-
-impl AnyDescription {
-    /// Reads the file once. A dense description is parsed by the dense engine's rules as well,
-    /// so that its checks and messages are exactly those of [`Description::read`].
-    pub fn read(path: &Path) -> Result<AnyDescription, DescriptionError> {
-        let text = read_text(path)?;
-        let parsed = settings::parse(&Walk::new(path, &text))?;
-        let dense = matches!(parsed.input, Shape::Flat(_))
-            && parsed
-                .layers
-                .iter()
-                .all(|l| matches!(l.kind, KindSettings::Dense { .. }));
-        if dense {
-            let d = Description::parse(path, &text)?;
-            let g = GraphDescription::parse(path, &text)?;
-            Ok(AnyDescription::Dense(d, Box::new(g)))
-        } else {
-            Ok(AnyDescription::Graph(GraphDescription::parse(path, &text)?))
-        }
-    }
-
-    /// The network as a layer graph, whatever its kinds.
-    pub fn graph(&self) -> &GraphDescription {
-        match self {
-            AnyDescription::Dense(_, g) => g,
-            AnyDescription::Graph(g) => g,
-        }
-    }
 }

@@ -7,12 +7,12 @@
 //!
 //! ```
 //! use std::path::Path;
-//! use plumb_formats::{Description, Layout, expected_tensors};
+//! use plumb_formats::GraphDescription;
 //!
-//! let text = "inputs = 4\nloss = \"cross-entropy\"\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n";
-//! let desc = Description::parse(Path::new("net.toml"), text)?;
+//! let text = "inputs = 4\nloss = \"cross-entropy\"\nlayout = \"split\"\n[[layer]]\nunits = 3\nactivation = \"softmax\"\n";
+//! let desc = GraphDescription::parse(Path::new("net.toml"), text)?;
 //! let split: Vec<(String, Vec<usize>)> =
-//!     expected_tensors(&desc, Layout::Split).into_iter().map(|t| (t.name, t.shape)).collect();
+//!     desc.files.iter().map(|f| (f.name.clone(), f.shape.clone())).collect();
 //! assert_eq!(split, [("layer1.weight".into(), vec![3, 4]), ("layer1.bias".into(), vec![3])]);
 //! # Ok::<(), plumb_formats::DescriptionError>(())
 //! ```
@@ -27,7 +27,6 @@ mod graph_data;
 mod graph_description;
 mod input;
 mod layer_settings;
-mod layout;
 mod npy;
 mod npz;
 mod safetensors_file;
@@ -49,13 +48,10 @@ pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 /// a million coordinates of a check; a JSON value in memory costs a few times its text.
 pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
-pub use description::{Description, DescriptionError, LayerDescription, Layout, MAX_PARAMETERS};
-pub use file_tensors::{FileStorage, FileTensor};
+pub use description::{DescriptionError, Layout, MAX_PARAMETERS};
+pub use file_tensors::{FileStorage, FileTensor, LayoutError};
 pub use graph_data::{AxisOrder, read_graph_data};
-pub use graph_description::{AnyDescription, GraphDescription};
-pub use layout::{
-    ExpectedTensor, LayoutError, Role, assemble, bind, disassemble, expected_tensors, shape_fits,
-};
+pub use graph_description::GraphDescription;
 pub use settings::{KINDS, KindSettings, LayerSettings};
 pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, shape_text};
 pub use tensor_file::{read_tensors, write_tensor_file, write_tensors};

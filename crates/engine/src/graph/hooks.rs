@@ -4,7 +4,31 @@
 //! them to [`Graph::backward_hooked`](super::Graph::backward_hooked) as hypotheses
 //! (docs/mistakes.md); each kind's own mistakes go through [`Graph::plant`](super::Graph::plant).
 
-use crate::{Regularization, Samples};
+use crate::L2Divisor;
+
+/// How the regularisation term's gradient is formed, relative to the declared conventions.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Regularization {
+    /// (2λ / divisor)·w on the weights that decay, as declared: the reference.
+    Declared,
+    /// Left out.
+    Missing,
+    /// Formed with another divisor than the declared one (e.g. λ·w instead of (λ/m)·w).
+    Divisor(L2Divisor),
+    /// Applied to the biases when the description says they do not decay, or left off them when
+    /// it says they do.
+    BiasToggled,
+}
+
+/// Which samples the data term sums over.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Samples {
+    All,
+    /// Only the first sample (still reduced as declared: divided by m under the mean).
+    First,
+    /// Only the last sample (reduced as declared): a loop that assigns instead of adding.
+    Last,
+}
 
 /// How one hidden layer's activation derivative departs from g′(z).
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

@@ -75,7 +75,7 @@ pub use flatten::Flatten;
 pub use global_pool::GlobalAvgPool;
 pub use gru::{Gru, GruCell, Reset};
 pub use health::Inside;
-pub use hooks::{Hooks, Slope};
+pub use hooks::{Hooks, Regularization, Samples, Slope};
 pub use layer_norm::LayerNorm;
 pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
@@ -383,8 +383,8 @@ boxed_kinds!(
 /// The scalars the graph computes in: [`Scalar`] plus what the new kinds need (a square root for
 /// the norms) and the way to see a layer in this scalar.
 ///
-/// Kept apart from [`Scalar`] while the dense engine still uses that alone; the two merge when it
-/// moves onto the graph.
+/// Kept apart from [`Scalar`], which the dense engine used alone; now that the graph is the only
+/// engine the two could merge.
 pub trait LayerScalar: Scalar + 'static {
     fn sqrt(self) -> Self;
     /// This scalar's view of a layer (trait upcasting).

@@ -7,10 +7,10 @@ use std::ops::Range;
 use ndarray::{Array2, ArrayD, ArrayView2, Zip};
 use thiserror::Error;
 
-use super::hooks::{Hooks, Slope};
+use super::hooks::{Hooks, Regularization, Samples, Slope};
 use super::loss::by_rows;
 use super::{AnyLayer, LayerScalar, LossConfig, Moved, ParamSpec, Role, Shape, ShapeError, Step};
-use crate::{Activation, Loss, Regularization, Samples, Scalar};
+use crate::{Activation, Loss, Scalar};
 
 /// One layer of the graph: its kind, the activation the graph applies after it, its name.
 #[derive(Debug)]

@@ -1,21 +1,23 @@
-//! The engine's analytic gradient against num-dual's forward-mode gradient (an independent exact
-//! derivative of the same loss), over random architectures, every activation and both losses.
+//! The engine's analytic gradient of networks of dense layers against num-dual's forward-mode
+//! gradient (an independent exact derivative of the same loss), over random architectures, every
+//! activation and both losses.
 
 use crate::common;
 
-use common::{HIDDEN, dual_gradient, max_relative, random_weights};
-use ndarray::Array2;
-use plumb_engine::{Activation, Batch, Loss, Network, Rng};
+use common::{HIDDEN, dense, dense_with, dual_gradient, max_relative, random_weights};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::{Graph, LossConfig};
+use plumb_engine::{Activation, Batch, Loss, Rng};
 
 /// Agreement demanded: both are exact up to rounding, so 1e-12 relative, with entries below 1e-9 of
 /// the gradient's largest entry judged against that floor.
 const TOL: f64 = 1e-12;
 const FLOOR: f64 = 1e-9;
 
-fn targets(net: &Network, m: usize, rng: &mut Rng, soft: bool) -> Array2<f64> {
-    let k = net.outputs();
-    let out = net.layers().last().unwrap().activation;
-    match (net.loss(), out) {
+fn targets(net: &Graph, m: usize, rng: &mut Rng, soft: bool) -> Array2<f64> {
+    let k = net.output().size();
+    let out = net.nodes().last().unwrap().activation;
+    match (net.loss_config().loss, out) {
         (Loss::CrossEntropy, Activation::Softmax) if soft => {
             // Rows of positive weights that need not sum to one: the general form of the delta.
             Array2::from_shape_fn((m, k), |_| rng.uniform())
@@ -35,14 +37,14 @@ fn targets(net: &Network, m: usize, rng: &mut Rng, soft: bool) -> Array2<f64> {
     }
 }
 
-fn check(net: &Network, seed: u64, m: usize, soft: bool) {
+fn check(net: &Graph, seed: u64, m: usize, soft: bool) {
     let mut rng = Rng::new(seed);
     let w = random_weights(net, &mut rng);
-    let x = Array2::from_shape_fn((m, net.inputs()), |_| rng.normal());
+    let x = Array2::from_shape_fn((m, net.input().size()), |_| rng.normal());
     let y = targets(net, m, &mut rng, soft);
-    let batch = Batch { x, y };
-    let (loss, grad) = net.gradient(&w, batch.x.view(), batch.y.view());
-    let (dual_loss, dual_grad) = dual_gradient(net, &w, &batch);
+    let g = net.gradient(&w, x.view(), y.view(), None);
+    let (loss, grad) = (g.loss, g.params);
+    let (dual_loss, dual_grad) = dual_gradient(net, &w, &x, &y);
     assert!(
         (loss - dual_loss).abs() <= TOL * dual_loss.abs().max(1e-300),
         "loss {loss} vs num-dual {dual_loss} for {net:?}"
@@ -58,23 +60,21 @@ fn check(net: &Network, seed: u64, m: usize, soft: bool) {
 fn every_hidden_activation_with_both_losses_and_l2() {
     for (i, &act) in HIDDEN.iter().enumerate() {
         for l2 in [0.0, 0.3] {
-            let ce = Network::new(
+            let ce = dense(
                 5,
                 &[(4, act), (6, Activation::Tanh), (3, Activation::Softmax)],
                 Loss::CrossEntropy,
                 l2,
-            )
-            .unwrap();
+            );
             check(&ce, 10 + i as u64, 4, false);
-            let se = Network::new(3, &[(7, act), (2, act)], Loss::SquaredError, l2).unwrap();
+            let se = dense(3, &[(7, act), (2, act)], Loss::SquaredError, l2);
             check(&se, 40 + i as u64, 5, false);
-            let bce = Network::new(
+            let bce = dense(
                 3,
                 &[(6, act), (2, Activation::Sigmoid)],
                 Loss::CrossEntropy,
                 l2,
-            )
-            .unwrap();
+            );
             check(&bce, 70 + i as u64, 3, true);
         }
     }
@@ -82,15 +82,14 @@ fn every_hidden_activation_with_both_losses_and_l2() {
 
 #[test]
 fn softmax_output_with_squared_error_and_soft_targets() {
-    let net = Network::new(
+    let net = dense(
         4,
         &[(5, Activation::Gelu), (3, Activation::Softmax)],
         Loss::SquaredError,
         0.1,
-    )
-    .unwrap();
+    );
     check(&net, 3, 6, false);
-    let ce = Network::new(
+    let ce = dense(
         4,
         &[
             (5, Activation::Elu { alpha: 1.0 }),
@@ -98,8 +97,7 @@ fn softmax_output_with_squared_error_and_soft_targets() {
         ],
         Loss::CrossEntropy,
         0.0,
-    )
-    .unwrap();
+    );
     check(&ce, 4, 6, true);
 }
 
@@ -128,7 +126,7 @@ fn random_architectures() {
         } else {
             rng.uniform()
         };
-        let net = Network::new(1 + rng.below(5), &layers, loss, l2).unwrap();
+        let net = dense(1 + rng.below(5), &layers, loss, l2);
         check(&net, seed, 3 + rng.below(6), rng.uniform() < 0.3);
     }
 }
@@ -137,20 +135,23 @@ fn random_architectures() {
 /// to what single precision allows (common practice: a few hundred ε₃₂ relative on a small network).
 #[test]
 fn single_precision_tracks_double() {
-    let net = Network::new(
+    let net = dense(
         4,
         &[(6, Activation::Tanh), (3, Activation::Softmax)],
         Loss::CrossEntropy,
         0.1,
-    )
-    .unwrap();
+    );
     let mut rng = Rng::new(5);
     let w = random_weights(&net, &mut rng);
-    let batch = Batch::synthetic(&net, 16, 5);
-    let (_, g64) = net.gradient(&w, batch.x.view(), batch.y.view());
+    let batch = Batch::graph_synthetic(&net, 16, 5);
+    let g64 = net
+        .gradient(&w, batch.x.view(), batch.y.view(), None)
+        .params;
     let (x32, y32) = batch.cast::<f32>();
-    let (_, g32) = net.gradient(&w.cast::<f32>(), x32.view(), y32.view());
-    let err = max_relative(&g32.map(|&v| v as f64), &g64, 1e-3);
+    let w32: Vec<ArrayD<f32>> = w.iter().map(|t| t.mapv(|v| v as f32)).collect();
+    let g32 = net.gradient(&w32, x32.view(), y32.view(), None).params;
+    let g32: Vec<ArrayD<f64>> = g32.iter().map(|t| t.mapv(|v| v as f64)).collect();
+    let err = max_relative(&g32, &g64, 1e-3);
     assert!(err < 300.0 * f32::EPSILON as f64, "{err:e}");
 }
 
@@ -161,44 +162,35 @@ fn single_precision_tracks_double() {
 /// here by hand from the weights.
 #[test]
 fn every_convention() {
-    use plumb_engine::{Conventions, L2Divisor, Reduction};
+    use plumb_engine::{L2Divisor, Reduction};
     let (m, l2) = (5, 0.3);
-    let base = Network::new(
-        4,
-        &[(5, Activation::Tanh), (3, Activation::Softmax)],
-        Loss::CrossEntropy,
-        l2,
-    )
-    .unwrap();
+    let layers = [(5, Activation::Tanh), (3, Activation::Softmax)];
+    let base = dense(4, &layers, Loss::CrossEntropy, l2);
+    let plain = dense(4, &layers, Loss::CrossEntropy, 0.0);
     let mut rng = Rng::new(77);
     let w = random_weights(&base, &mut rng);
     let x = Array2::from_shape_fn((m, 4), |_| rng.normal());
     let y = targets(&base, m, &mut rng, false);
-    let batch = Batch { x, y };
-    let trace = base.forward(&w, batch.x.view());
-    let mean_data = base.data_loss(&trace, batch.y.view());
-    let squares = |from: usize| -> f64 {
-        w.layers()
-            .iter()
-            .map(|l| {
-                l.columns()
-                    .into_iter()
-                    .skip(from)
-                    .flatten()
-                    .map(|v| v * v)
-                    .sum::<f64>()
-            })
+    // The mean data term: the loss without L2.
+    let mean_data = plain.loss(&w, x.view(), y.view());
+    // Σ w² over the weights (even tensors), and the biases (odd ones) too.
+    let squares = |biases: bool| -> f64 {
+        w.iter()
+            .enumerate()
+            .filter(|(t, _)| biases || t % 2 == 0)
+            .map(|(_, t)| t.iter().map(|v| v * v).sum::<f64>())
             .sum()
     };
     for reduction in Reduction::ALL {
         for divisor in L2Divisor::ALL {
             for on_bias in [false, true] {
-                let c = Conventions {
+                let c = LossConfig {
                     reduction,
                     l2_divisor: divisor,
                     l2_on_bias: on_bias,
+                    ..base.loss_config()
                 };
-                let net = base.clone().with_conventions(c);
+                let net = dense_with(4, &layers, c);
                 check(&net, 90, m, false);
                 let data = match reduction {
                     Reduction::Mean => mean_data,
@@ -210,8 +202,8 @@ fn every_convention() {
                     L2Divisor::M => m as f64,
                     L2Divisor::One => 1.0,
                 };
-                let want = data + l2 / d * squares(usize::from(!on_bias));
-                let got = net.loss_value(&w, batch.x.view(), batch.y.view());
+                let want = data + l2 / d * squares(on_bias);
+                let got = net.loss(&w, x.view(), y.view());
                 assert!(
                     (got - want).abs() <= 1e-13 * want.abs(),
                     "{c:?}: loss {got} against the formula's {want}"

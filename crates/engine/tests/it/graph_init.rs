@@ -2,12 +2,12 @@
 //! tensor against the published formulas, the fixed values of the other roles, reproducibility,
 //! and synthetic batches that every kind's graph accepts.
 
-use ndarray::{ArrayD, s};
+use ndarray::{Array2, ArrayD, s};
 use plumb_engine::graph::{
     Add, Attention, BatchNorm, Conv, ConvSettings, Dense, Embedding, Flatten, GlobalAvgPool, Graph,
     GraphBuilder, Gru, LayerNorm, LossConfig, Lstm, Pool, PoolKind, RmsNorm, Rnn, Role, Shape,
 };
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 
 /// Conv2d 16 → 64 channels, kernel 3 × 5, then global pooling and two dense layers.
 fn conv_graph() -> Graph {
@@ -228,36 +228,50 @@ fn the_same_seed_gives_the_same_weights() {
     }
 }
 
-/// A graph of dense layers draws what the dense engine draws for the same network, so seeded
-/// weights stay the same when a command moves onto the graph.
+/// A graph of dense layers draws what plumb's dense engine drew for the same network (so seeded
+/// weights, reports and baselines stay the same): each layer's augmented matrix, units by
+/// fan-in + 1, row by row, the bias column 0 taking no draw, a weight U(±√3·σ) or σ·N(0, 1); and
+/// a synthetic batch of standard-normal rows, then one class per sample. Both orders are written
+/// out here.
 #[test]
-fn a_dense_graph_draws_what_the_dense_engine_draws() {
+fn a_dense_graph_draws_what_the_dense_engine_drew() {
     let layers = [
         (7, Activation::Tanh),
         (5, Activation::Relu),
         (3, Activation::Softmax),
     ];
-    let net = Network::new(4, &layers, Loss::CrossEntropy, 0.0).unwrap();
     let mut b = GraphBuilder::new(Shape::Flat(4), LossConfig::cross_entropy());
     for &(units, act) in &layers {
         b.push(None, act, |s| Dense::new(units, s)).unwrap();
     }
     let g = b.finish().unwrap();
     for init in Init::ALL {
-        let dense = init.weights(&net, &mut Rng::new(21));
         let graph = init.graph_params(&g, &mut Rng::new(21));
-        for j in 0..layers.len() {
-            let augmented = dense.layer(j);
+        let mut rng = Rng::new(21);
+        let mut fan_in = 4;
+        for (j, &(units, _)) in layers.iter().enumerate() {
+            let sd = init.std_dev(fan_in, units);
+            let augmented = Array2::from_shape_fn((units, fan_in + 1), |(_, c)| match c {
+                0 => 0.0,
+                _ if init.is_uniform() => rng.range(-3f64.sqrt() * sd, 3f64.sqrt() * sd),
+                _ => sd * rng.normal(),
+            });
             let weight = graph[2 * j].view().into_dimensionality().unwrap();
             assert_eq!(augmented.slice(s![.., 1..]), weight, "{init} layer {j}");
             assert_eq!(
                 augmented.column(0),
                 graph[2 * j + 1].view().into_dimensionality().unwrap()
             );
+            fan_in = units;
         }
-        let batch = Batch::synthetic(&net, 6, 33);
-        assert_eq!(Batch::graph_synthetic(&g, 6, 33), batch);
     }
+    let mut rng = Rng::new(33 ^ 0x5eed_da7a);
+    let x = Array2::from_shape_fn((6, 4), |_| rng.normal());
+    let mut y = Array2::zeros((6, 3));
+    for mut row in y.rows_mut() {
+        row[rng.below(3)] = 1.0;
+    }
+    assert_eq!(Batch::graph_synthetic(&g, 6, 33), Batch { x, y });
 }
 
 /// One graph per kind (and per output form), each ending in a head its loss accepts.

@@ -4,9 +4,9 @@
 
 use crate::common;
 
-use common::{dual_gradient, max_relative};
+use common::{dense, dual_gradient, max_relative};
 use ndarray::Array2;
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 
 /// fixtures/data/iris.csv (its provenance is in fixtures/data/README.md): four measurements, then
 /// the species 0–2.
@@ -61,18 +61,18 @@ fn iris_has_the_published_size() {
 
 #[test]
 fn gradient_matches_num_dual_on_iris() {
-    let net = Network::new(
+    let net = dense(
         4,
         &[(8, Activation::Tanh), (3, Activation::Softmax)],
         Loss::CrossEntropy,
         0.05,
-    )
-    .unwrap();
+    );
     let batch = iris();
     for seed in [1, 2, 3] {
-        let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
-        let (loss, grad) = net.gradient(&w, batch.x.view(), batch.y.view());
-        let (dual_loss, dual_grad) = dual_gradient(&net, &w, &batch);
+        let w = Init::GlorotUniform.graph_params(&net, &mut Rng::new(seed));
+        let g = net.gradient(&w, batch.x.view(), batch.y.view(), None);
+        let (loss, grad) = (g.loss, g.params);
+        let (dual_loss, dual_grad) = dual_gradient(&net, &w, &batch.x, &batch.y);
         assert!((loss - dual_loss).abs() <= 1e-12 * dual_loss);
         let err = max_relative(&grad, &dual_grad, 1e-9);
         assert!(err <= 1e-12, "seed {seed}: {err:e}");

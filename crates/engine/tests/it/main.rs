@@ -15,6 +15,5 @@ mod graph_sequence_fixtures;
 mod graph_sequence_published;
 mod graph_tails;
 mod graph_units;
-mod init;
 mod iris;
 mod published;

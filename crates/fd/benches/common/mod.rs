@@ -3,8 +3,6 @@
 //! results that a run before and after a change compares. Each bench uses part of it.
 #![allow(dead_code)]
 
-pub mod dense_engine;
-
 use ndarray::ArrayD;
 use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Shape};
 use plumb_engine::{Activation, Batch, Init, Rng};

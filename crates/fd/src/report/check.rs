@@ -9,7 +9,7 @@ use plumb_report::{
 };
 use serde::{Deserialize, Serialize};
 
-use super::locate::Place;
+use super::GraphPlace;
 use crate::{
     CoordCheck, Coverage, FLOOR, Method, ONE_STEP_BAND, ONE_STEP_BOUND, Precision, SETTLE,
     Settlement, Status, UNSETTLED_SHARE, worst_first,
@@ -54,11 +54,10 @@ impl From<Code> for String {
     }
 }
 
-/// One coordinate of the report; `P` is how it is located (a dense [`Place`], or a graph's
-/// [`GraphPlace`](super::GraphPlace)).
+/// One coordinate of the report; `P` is how it is located (a graph parameter's [`GraphPlace`]).
 #[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(bound(deserialize = "P: Deserialize<'de>"))]
-pub struct CoordReport<P = Place> {
+pub struct CoordReport<P = GraphPlace> {
     #[serde(flatten)]
     pub place: P,
     #[serde(deserialize_with = "figure")]
@@ -134,24 +133,7 @@ pub trait Location {
     fn described(&self) -> String;
 }
 
-impl Location for Place {
-    const NON_SMOOTH: &'static str = "a ReLU-like kink";
-
-    fn described(&self) -> String {
-        format!(
-            "{} (layer {}, row {}, column {}{}, unit {})",
-            self.label(),
-            self.layer,
-            self.row,
-            self.column,
-            if self.bias { " = bias" } else { "" },
-            self.unit
-        )
-    }
-}
-
-/// One tensor of the report; `C` is its coordinates' type (a dense [`CoordReport`], or a graph's
-/// [`GraphCoordReport`](super::GraphCoordReport)).
+/// One tensor of the report; `C` is its coordinates' type ([`GraphCoordReport`](super::GraphCoordReport)).
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct TensorReport<C = CoordReport> {
     pub name: String,

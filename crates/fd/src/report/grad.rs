@@ -3,12 +3,12 @@
 
 use std::path::PathBuf;
 
-use plumb_engine::graph::{Dense, GraphError};
-use plumb_formats::{GraphDescription, Tensor, disassemble, expected_tensors};
+use plumb_engine::graph::GraphError;
+use plumb_formats::Tensor;
 use plumb_report::{DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure};
 use serde::{Deserialize, Serialize};
 
-use super::{GraphLoaded, Loaded};
+use super::GraphLoaded;
 
 /// Per-tensor summary of the gradient.
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -94,49 +94,6 @@ impl Gradient {
         self.report.tensors.push(TensorGradient::of(&t, 0));
         self.tensors.push(t);
     }
-}
-
-/// The loss and gradient of a dense network on the dense engine, in the description's layout.
-pub fn gradient_report(loaded: &Loaded) -> Gradient {
-    let net = &loaded.desc.network;
-    let b = &loaded.batch;
-    let trace = net.forward(&loaded.weights, b.x.view());
-    let data_loss = net.data_loss(&trace, b.y.view());
-    let l2_term = net.l2_penalty(&loaded.weights, b.len());
-    let grad = net.backward(&loaded.weights, &trace, b.y.view());
-    let tensors = disassemble(&loaded.desc, &grad);
-    let layers: Vec<usize> = expected_tensors(&loaded.desc, loaded.desc.layout)
-        .iter()
-        .map(|e| e.layer + 1)
-        .collect();
-    summarised(
-        Run {
-            description: loaded.desc.path.clone(),
-            weights: &loaded.weights_source,
-            data: &loaded.data_source,
-            samples: b.len(),
-        },
-        (data_loss + l2_term, data_loss, l2_term),
-        tensors,
-        &layers,
-    )
-}
-
-/// The input gradient of a dense network, from the same network as a graph (the dense engine
-/// gives parameter gradients only).
-pub fn dense_input_gradient(loaded: &Loaded, graph: &GraphDescription) -> Tensor {
-    let params: Vec<_> = loaded
-        .weights
-        .layers()
-        .iter()
-        .flat_map(|m| {
-            let (w, b) = Dense::split(m);
-            [w.into_dyn(), b.into_dyn()]
-        })
-        .collect();
-    let b = &loaded.batch;
-    let g = graph.graph.gradient(&params, b.x.view(), b.y.view(), None);
-    graph.input_tensor(g.input.view())
 }
 
 /// The loss and gradient of a network of any kind on the layer graph, with the input gradient

@@ -1,12 +1,12 @@
-//! What a run of the layer graph is on — the counterpart of [`super::Loaded`] for descriptions of
-//! any kind: the graph's parameters from a weight file (through the description's file tensors,
-//! in their declared storage) or drawn from a seed, and a batch from a data file (in either axis
-//! order) or drawn from a seed, each checked against the graph and plumb's memory budget.
+//! What a run of the layer graph is on: the graph's parameters from a weight file (through the
+//! description's file tensors, in their declared storage — a dense description's augmented,
+//! split or split-transposed layout) or drawn from a seed, and a batch from a data file (CSV or
+//! npz, in either axis order) or drawn from a seed, each checked against the graph and plumb's
+//! memory budget, with messages that name the file and the place.
 
 use std::path::{Path, PathBuf};
 
 use ndarray::ArrayD;
-use plumb_engine::graph::Dense;
 use plumb_engine::{Batch, Init, Loss, Rng};
 use plumb_formats::{
     AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
@@ -14,11 +14,9 @@ use plumb_formats::{
 };
 use plumb_report::{DataSource, WeightsSource};
 
-/// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo; the
-/// dense engine's figure.
+/// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo.
 pub const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
-/// The most activation values a forward pass may hold (2²⁷ = 1 GiB of f64); the dense engine's
-/// figure.
+/// The most activation values a forward pass may hold (2²⁷ = 1 GiB of f64).
 pub const MAX_ACTIVATION_VALUES: usize = 1 << 27;
 
 /// A graph run's description, parameters (canonical shapes, [`plumb_engine::graph::Graph::tensors`]
@@ -31,9 +29,7 @@ pub struct GraphLoaded {
     pub data_source: DataSource,
     /// The axis order of the data file (channels-first for a synthetic batch).
     pub order: AxisOrder,
-    /// The network's identity in reports (`description_hash`): [`graph_description_hash`], or
-    /// for a dense description its dense hash ([`super::description_hash`], which covers its
-    /// conventions), as baselines and shards have always named it.
+    /// The network's identity in reports (`description_hash`): [`description_hash`].
     pub description_hash: String,
 }
 
@@ -60,7 +56,17 @@ pub enum GraphLoadError {
     Data(#[from] DataError),
     #[error("{}: {message}", path.display())]
     Input { path: PathBuf, message: String },
+    /// A number of samples or targets that cannot be used (the message names the flag or place).
+    #[error("{0}")]
+    Usage(String),
+    /// A weight file that does not fit the description, as the caller's vetting said.
+    #[error("{0}")]
+    Misfit(String),
 }
+
+/// A caller's verdict on a weight file before it is read into parameters: `Err` with the whole
+/// message when it does not fit (the CLI's is a dense description's dimension audit).
+pub type Vet<'a> = &'a dyn Fn(&GraphDescription, &TensorFile, &Path) -> Result<(), String>;
 
 impl GraphLoaded {
     /// Loads the weights and the batch for `desc`.
@@ -68,9 +74,20 @@ impl GraphLoaded {
         desc: GraphDescription,
         inputs: &GraphInputs,
     ) -> Result<GraphLoaded, GraphLoadError> {
+        GraphLoaded::load_vetted(desc, inputs, &|_, _, _| Ok(()))
+    }
+
+    /// [`GraphLoaded::load`], with the weight file first put to `vet`.
+    pub fn load_vetted(
+        desc: GraphDescription,
+        inputs: &GraphInputs,
+        vet: Vet,
+    ) -> Result<GraphLoaded, GraphLoadError> {
+        let graph = &desc.graph;
         let (params, weights_source) = match inputs.weights {
             Some(path) => {
                 let file = read_tensors(path)?;
+                vet(&desc, &file, path).map_err(GraphLoadError::Misfit)?;
                 check_finite(&file, path)?;
                 let params = desc.read_params(&file, path)?;
                 let source = WeightsSource::File {
@@ -80,17 +97,16 @@ impl GraphLoaded {
                 };
                 (params, source)
             }
+            // On a graph of dense layers these are the values the dense engine drew from the
+            // same seed (its augmented matrices row by row, the bias column taking no draw).
             None => (
-                inputs
-                    .init
-                    .graph_params(&desc.graph, &mut Rng::new(inputs.seed)),
+                inputs.init.graph_params(graph, &mut Rng::new(inputs.seed)),
                 WeightsSource::Init {
                     scheme: inputs.init.name().into(),
                     seed: inputs.seed,
                 },
             ),
         };
-        let graph = &desc.graph;
         let (batch, data_source, order) = match inputs.data {
             Some(path) => {
                 let batch = read_graph_data(path, &graph.input(), &graph.output(), inputs.order)?;
@@ -103,14 +119,16 @@ impl GraphLoaded {
             }
             None => {
                 let m = inputs.samples;
+                if m == 0 {
+                    return Err(GraphLoadError::Usage(
+                        "--batch is 0: a synthetic batch needs at least one sample".into(),
+                    ));
+                }
                 let values = m.checked_mul(graph.input().size() + graph.output().size());
-                if m == 0 || values.is_none_or(|v| v > MAX_SYNTHETIC_VALUES) {
-                    return Err(GraphLoadError::Input {
-                        path: desc.path.clone(),
-                        message: format!(
-                            "a synthetic batch of {m} samples for this network is empty or would draw more than {MAX_SYNTHETIC_VALUES} values; give --batch between 1 and a smaller number, or --data"
-                        ),
-                    });
+                if values.is_none_or(|v| v > MAX_SYNTHETIC_VALUES) {
+                    return Err(GraphLoadError::Usage(format!(
+                        "--batch {m} would draw more than {MAX_SYNTHETIC_VALUES} values for this network; use a smaller batch or give --data"
+                    )));
                 }
                 let batch = Batch::graph_synthetic(graph, m, inputs.seed);
                 let source = DataSource::Synthetic {
@@ -121,13 +139,12 @@ impl GraphLoaded {
             }
         };
         let where_data = inputs.data.unwrap_or(&desc.path).to_path_buf();
-        let bad = |message: String| GraphLoadError::Input {
-            path: where_data.clone(),
-            message,
-        };
         graph
             .check_batch(batch.x.view(), batch.y.view())
-            .map_err(|e| bad(format!("the data does not fit the network: {e}")))?;
+            .map_err(|e| GraphLoadError::Input {
+                path: where_data,
+                message: format!("the data does not fit the network: {e}"),
+            })?;
         let per_sample: usize = graph.input().size()
             + graph
                 .nodes()
@@ -136,25 +153,21 @@ impl GraphLoaded {
                 .sum::<usize>();
         let values = batch.len().checked_mul(2 * per_sample);
         if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
-            return Err(bad(format!(
-                "a batch of {} samples through this network needs more than the {MAX_ACTIVATION_VALUES} activation values plumb holds; use fewer samples",
-                batch.len()
-            )));
+            return Err(GraphLoadError::Input {
+                path: desc.path.clone(),
+                message: format!(
+                    "a batch of {} samples through this network needs {} activation values, more than the {} plumb holds; use fewer samples (--batch, or a smaller data file) or check the unit counts",
+                    batch.len(),
+                    values.map_or("too many".to_string(), |v| v.to_string()),
+                    MAX_ACTIVATION_VALUES
+                ),
+            });
         }
-        if graph.loss_config().loss == Loss::CrossEntropy
-            && let Some(((i, k), v)) = batch
-                .y
-                .indexed_iter()
-                .find(|(_, v)| !(0.0..=1.0).contains(*v))
-        {
-            return Err(bad(format!(
-                "sample {}, target {}: {v} is outside [0, 1]; cross-entropy needs targets between 0 and 1 (one-hot labels or probabilities) — use squared-error for other targets",
-                i + 1,
-                k + 1
-            )));
+        if graph.loss_config().loss == Loss::CrossEntropy {
+            check_probabilities(&batch, &data_source)?;
         }
         Ok(GraphLoaded {
-            description_hash: graph_description_hash(&desc),
+            description_hash: description_hash(&desc),
             desc,
             params,
             weights_source,
@@ -165,39 +178,65 @@ impl GraphLoaded {
     }
 }
 
-impl GraphLoaded {
-    /// A dense description's run on its layer graph (`AnyDescription::Dense` carries both): the
-    /// same weights, each augmented matrix split into the graph's weight and bias, and the same
-    /// batch, sources and messages as the dense loading gave.
-    pub fn from_dense(loaded: super::Loaded, desc: GraphDescription) -> GraphLoaded {
-        let mut params = Vec::with_capacity(2 * loaded.weights.layers().len());
-        for matrix in loaded.weights.layers() {
-            let (w, b) = Dense::split(matrix);
-            params.push(w.into_dyn());
-            params.push(b.into_dyn());
-        }
-        GraphLoaded {
-            description_hash: super::description_hash(&loaded.desc),
-            desc,
-            params,
-            weights_source: loaded.weights_source,
-            batch: loaded.batch,
-            data_source: loaded.data_source,
-            order: AxisOrder::ChannelsFirst,
-        }
+/// Cross-entropy needs targets in [0, 1]: one-hot labels or probabilities. The first that is not
+/// is named by sample and target (and line, in a CSV file).
+fn check_probabilities(batch: &Batch, source: &DataSource) -> Result<(), GraphLoadError> {
+    let bad = batch
+        .y
+        .indexed_iter()
+        .find(|(_, v)| !(0.0..=1.0).contains(*v));
+    if let Some(((i, k), v)) = bad {
+        let place = match source {
+            DataSource::File { path, .. } => {
+                let line = if path
+                    .extension()
+                    .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
+                {
+                    format!(" (line {})", i + 2)
+                } else {
+                    String::new()
+                };
+                format!(
+                    "{}: sample {}{line}, target {}",
+                    path.display(),
+                    i + 1,
+                    k + 1
+                )
+            }
+            DataSource::Synthetic { .. } => format!("synthetic sample {}, target {}", i + 1, k + 1),
+        };
+        return Err(GraphLoadError::Usage(format!(
+            "{place}: {v} is outside [0, 1]; cross-entropy needs targets between 0 and 1 (one-hot labels or probabilities) — use squared-error for other targets"
+        )));
     }
+    Ok(())
 }
 
-/// Non-finite weights make every figure meaningless: the first one is named, by tensor and flat
-/// index.
+/// Non-finite weights make every figure meaningless: the first one is named by tensor and index
+/// in the file's shape, with how many more there are.
 fn check_finite(file: &TensorFile, path: &Path) -> Result<(), GraphLoadError> {
     for t in &file.tensors {
-        if let Some((k, v)) = t.data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+        let mut bad = t.data.iter().enumerate().filter(|(_, v)| !v.is_finite());
+        if let Some((k, v)) = bad.next() {
+            let more = bad.count();
+            let mut index = vec![0; t.shape.len()];
+            let mut rest = k;
+            for (i, &d) in t.shape.iter().enumerate().rev() {
+                index[i] = rest % d.max(1);
+                rest /= d.max(1);
+            }
+            let idx: Vec<String> = index.iter().map(usize::to_string).collect();
             return Err(GraphLoadError::Input {
                 path: path.to_path_buf(),
                 message: format!(
-                    "tensor `{}` holds {v} at flat index {k}; a loss or gradient of such weights means nothing — fix the export (byte order or dtype?) or the training run that produced it",
-                    t.name
+                    "tensor `{}` holds {v} at [{}]{}; a loss or gradient of such weights means nothing — fix the export (byte order or dtype?) or the training run that produced it",
+                    t.name,
+                    idx.join(", "),
+                    if more > 0 {
+                        format!(" and {more} more non-finite values")
+                    } else {
+                        String::new()
+                    }
                 ),
             });
         }
@@ -221,34 +260,40 @@ pub fn widest_float(file: &TensorFile) -> &'static str {
         .map_or("float64", |d| d.name())
 }
 
-/// A graph network's identity, like [`super::description_hash`]: an FNV-1a hash (64 bits) of the
-/// loss and its conventions, each layer's kind, name, settings (stride, padding, heads, gate
-/// order…: what changes the function with the same shapes), output shape and activation, and
-/// each file tensor's name, shape and storage. Line numbers and comments do not enter it.
-pub fn graph_description_hash(desc: &GraphDescription) -> String {
-    let mut text = format!(
-        "input {}\n{:?}\n",
-        desc.graph.input(),
-        desc.graph.loss_config()
-    );
-    for (l, n) in desc.layers.iter().zip(desc.graph.nodes()) {
-        text.push_str(&format!(
-            "{} {} {:?} {} {:?}\n",
-            l.kind_name(),
-            n.name,
-            l.kind,
-            n.layer.output(),
-            n.activation
-        ));
-    }
-    for f in &desc.files {
-        text.push_str(&format!(
-            "{} {:?} {}\n",
-            f.name,
-            f.shape,
-            f.storage.letters()
-        ));
-    }
+/// A network's identity: an FNV-1a hash (64 bits), stable across versions and machines, that a
+/// shard and a baseline carry so that a changed description is seen. A dense description's is
+/// taken of its canonical text ([`GraphDescription::dense_text`], the hash baselines have always
+/// recorded, which covers its conventions); any other's of the loss and its conventions, each
+/// layer's kind, name, settings (stride, padding, heads, gate order…: what changes the function
+/// with the same shapes), output shape and activation, and each file tensor's name, shape and
+/// storage. Line numbers and comments enter neither.
+pub fn description_hash(desc: &GraphDescription) -> String {
+    let text = desc.dense_text("").unwrap_or_else(|| {
+        let mut text = format!(
+            "input {}\n{:?}\n",
+            desc.graph.input(),
+            desc.graph.loss_config()
+        );
+        for (l, n) in desc.layers.iter().zip(desc.graph.nodes()) {
+            text.push_str(&format!(
+                "{} {} {:?} {} {:?}\n",
+                l.kind_name(),
+                n.name,
+                l.kind,
+                n.layer.output(),
+                n.activation
+            ));
+        }
+        for f in &desc.files {
+            text.push_str(&format!(
+                "{} {:?} {}\n",
+                f.name,
+                f.shape,
+                f.storage.letters()
+            ));
+        }
+        text
+    });
     let hash = text.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
         (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
     });

@@ -12,8 +12,8 @@ use serde::de::DeserializeOwned;
 use serde_json::Value;
 
 use super::check::{CheckReport, CoordReport, DirectionReport, RunFacts};
+use super::description_hash;
 use super::graph_check::{GraphCheckReport, build_graph, coord_report as graph_coord_report};
-use super::graph_description_hash;
 use super::place::{GraphPlace, Places};
 use crate::{
     Coverage, Entry, GraphCheck, Method, OutsideDirection, Precision, Sample, graph_sample,
@@ -31,8 +31,8 @@ fn refuse<T>(message: String) -> Result<T, ShardError> {
     Err(ShardError(message))
 }
 
-/// One shard's report, with its place in the split; `P` locates its coordinates (a dense
-/// [`Place`] or a graph's [`GraphPlace`]).
+/// One shard's report, with its place in the split; `P` locates its coordinates (a graph's
+/// [`GraphPlace`]).
 #[derive(Debug)]
 struct Shard<P> {
     path: PathBuf,
@@ -295,21 +295,10 @@ impl Shards<GraphPlace> {
         desc: &GraphDescription,
         worst_n: usize,
     ) -> Result<GraphCheckReport, ShardError> {
-        self.merge_with_hash(desc, graph_description_hash(desc), worst_n)
-    }
-
-    /// [`Shards::merge_graph`] of a description whose identity is `hash` (a dense
-    /// description's: `description_hash` of it, as its check writes).
-    pub fn merge_with_hash(
-        &self,
-        desc: &GraphDescription,
-        hash: String,
-        worst_n: usize,
-    ) -> Result<GraphCheckReport, ShardError> {
         let first = &self.list[0];
         let at = |key: &str| format!("{}: `{key}`", first.path.display());
         let r = &first.report;
-        self.same_description(&desc.path, &hash)?;
+        self.same_description(&desc.path, &description_hash(desc))?;
         let graph = &desc.graph;
         let specs = graph.tensors();
         let places = Places::new(desc);
@@ -433,7 +422,7 @@ impl Shards<GraphPlace> {
             directions,
             analytic: Vec::new(),
         };
-        let facts = self.facts(hash, set.step);
+        let facts = self.facts(description_hash(desc), set.step);
         let mut report = build_graph(&facts, &places, &result, worst_n);
         report.coordinates = Some(
             result

@@ -339,7 +339,7 @@ fn the_graph_identity_follows_every_setting_that_changes_the_function() {
     .unwrap();
     let hash = |text: &str| {
         let desc = GraphDescription::parse(Path::new("pump-attention.toml"), text).unwrap();
-        plumb_fd::report::graph_description_hash(&desc)
+        plumb_fd::report::description_hash(&desc)
     };
     let base = hash(&text);
     assert_eq!(hash(&format!("# a comment\n\n{text}")), base);

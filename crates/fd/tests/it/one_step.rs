@@ -5,11 +5,16 @@
 
 use std::cell::Cell;
 
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng};
+use ndarray::ArrayD;
+use plumb_engine::graph::Graph;
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 use plumb_fd::{
     Change, CheckConfig, ExternalConfig, Inside, Method, ONE_STEP_BAND, ONE_STEP_BOUND,
-    OutsideTensor, Precision, Rule, Sample, Status, Target, check, check_external, check_gradient,
+    OutsideTensor, Precision, Rule, Sample, Status, Target, check_external, check_graph,
+    check_graph_gradient,
 };
+
+use crate::graph_common::dense;
 
 fn ident(h: f64) -> f64 {
     h
@@ -179,8 +184,8 @@ fn the_ladder_after_a_failed_settle_takes_no_loss_twice() {
     }
 }
 
-fn tanh_net() -> (Network, plumb_engine::Weights<f64>, Batch) {
-    let net = Network::new(
+fn tanh_net() -> (Graph, Vec<ArrayD<f64>>, Batch) {
+    let net = dense(
         6,
         &[
             (8, Activation::Tanh),
@@ -189,10 +194,9 @@ fn tanh_net() -> (Network, plumb_engine::Weights<f64>, Batch) {
         ],
         Loss::CrossEntropy,
         1e-3,
-    )
-    .unwrap();
-    let w = Init::GlorotUniform.weights(&net, &mut Rng::new(3));
-    let batch = Batch::synthetic(&net, 12, 3);
+    );
+    let w = Init::GlorotUniform.graph_params(&net, &mut Rng::new(3));
+    let batch = Batch::graph_synthetic(&net, 12, 3);
     (net, w, batch)
 }
 
@@ -203,10 +207,11 @@ fn tanh_net() -> (Network, plumb_engine::Weights<f64>, Batch) {
 #[test]
 fn a_dense_check_settles_on_one_step_and_still_finds_a_mistake() {
     let (net, w, batch) = tanh_net();
+    let (x, y) = (batch.x.view(), batch.y.view());
     let mut cfg = CheckConfig::new(Method::Central, Precision::F64);
     cfg.sample = Some(Sample::All);
     cfg.directions = Some(2);
-    let r = check(&net, &w, &batch, &cfg, &|_, _| {}).unwrap();
+    let r = check_graph(&net, &w, x, y, &cfg, &|_, _| {}).unwrap();
     let settled: Vec<_> = r.coords.iter().filter(|c| c.one_step).collect();
     assert!(
         settled.len() * 2 > r.coords.len(),
@@ -216,16 +221,17 @@ fn a_dense_check_settles_on_one_step_and_still_finds_a_mistake() {
     );
     assert!(r.coords.iter().all(|c| c.status == Status::Match));
     assert!(r.directions.iter().all(|d| d.status == Status::Match));
+    let value = |g: &[ArrayD<f64>], e: plumb_fd::Entry| g[e.tensor].as_slice().unwrap()[e.index];
     for c in &settled {
-        let h = Method::Central.default_step(*w.get(c.coord), f64::EPSILON);
+        let h = Method::Central.default_step(value(&w, c.coord), f64::EPSILON);
         assert_eq!(c.step, h, "{c:?}");
         assert!(c.rel_error <= ONE_STEP_BAND * r.tolerance, "{c:?}");
     }
     // Plant a mistake of 3× the tolerance at a coordinate that settled.
     let at = settled[settled.len() / 2].coord;
     let mut wrong = r.analytic.clone();
-    *wrong.get_mut(at) *= 1.0 + 3.0 * r.tolerance;
-    let r2 = check_gradient(&net, &w, &batch, &wrong, &cfg, &|_, _| {}).unwrap();
+    wrong[at.tensor].as_slice_mut().unwrap()[at.index] *= 1.0 + 3.0 * r.tolerance;
+    let r2 = check_graph_gradient(&net, &w, x, y, &wrong, &cfg, &|_, _| {}).unwrap();
     let c = r2.coords.iter().find(|c| c.coord == at).unwrap();
     assert_eq!(c.status, Status::Mismatch, "{c:?}");
     assert!(!c.one_step);
@@ -239,13 +245,14 @@ fn a_dense_check_settles_on_one_step_and_still_finds_a_mistake() {
 #[test]
 fn an_outside_check_asks_for_fewer_losses() {
     let (net, w, batch) = tanh_net();
-    let (_, grad) = net.gradient(&w, batch.x.view(), batch.y.view());
-    let tensors = |g: &plumb_engine::Weights<f64>| -> Vec<OutsideTensor> {
-        (0..net.layers().len())
-            .map(|l| OutsideTensor {
-                name: format!("layer{l}"),
-                values: w.layer(l).iter().copied().collect(),
-                gradient: g.layer(l).iter().copied().collect(),
+    let (x, y) = (batch.x.view(), batch.y.view());
+    let grad = net.gradient(&w, x, y, None).params;
+    let tensors = |g: &[ArrayD<f64>]| -> Vec<OutsideTensor> {
+        (0..w.len())
+            .map(|t| OutsideTensor {
+                name: format!("tensor{t}"),
+                values: w[t].iter().copied().collect(),
+                gradient: g[t].iter().copied().collect(),
                 gross: Vec::new(),
             })
             .collect()
@@ -255,15 +262,10 @@ fn an_outside_check_asks_for_fewer_losses() {
         asked.set(asked.get() + count);
         let mut out = vec![w.clone(); count];
         for c in changes {
-            let layer = &mut out[c.perturbation as usize].layers_mut()[c.tensor as usize];
-            let cols = layer.ncols();
-            let k = c.index as usize;
-            layer[(k / cols, k % cols)] += c.delta;
+            let t = &mut out[c.perturbation as usize][c.tensor as usize];
+            t.as_slice_mut().unwrap()[c.index as usize] += c.delta;
         }
-        Ok(out
-            .iter()
-            .map(|p| net.loss_value(p, batch.x.view(), batch.y.view()))
-            .collect())
+        Ok(out.iter().map(|p| net.loss(p, x, y)).collect())
     };
     let cfg = ExternalConfig {
         method: Method::Central,
@@ -274,7 +276,7 @@ fn an_outside_check_asks_for_fewer_losses() {
         eps: f64::EPSILON,
         tolerance: 1e-6,
     };
-    let f0 = net.loss_value(&w, batch.x.view(), batch.y.view());
+    let f0 = net.loss(&w, x, y);
     let r = check_external(&tensors(&grad), f0, &mut losses, &Inside::opaque(), &cfg).unwrap();
     let n = r.coords.len();
     assert!(r.coords.iter().all(|c| c.status == Status::Match));
@@ -282,21 +284,17 @@ fn an_outside_check_asks_for_fewer_losses() {
     assert!(settled * 2 > n, "{settled} of {n}");
     // Three losses each for the settled, four for the rest.
     assert_eq!(asked.get(), 3 * settled + 4 * (n - settled));
+    // Layer 2's weight (tensor 2, 5 × 8), unit 2, input 2.
     let mut wrong = grad.clone();
-    let at = plumb_engine::Coord {
-        layer: 1,
-        row: 2,
-        col: 3,
-    };
-    *wrong.get_mut(at) *= 1.0 + 3.0 * cfg.tolerance;
+    let at = 2 * 8 + 2;
+    wrong[2].as_slice_mut().unwrap()[at] *= 1.0 + 3.0 * cfg.tolerance;
     let r2 = check_external(&tensors(&wrong), f0, &mut losses, &Inside::opaque(), &cfg).unwrap();
-    let cols = net.layers()[1].shape().1;
     let bad: Vec<_> = r2
         .coords
         .iter()
         .filter(|c| c.status != Status::Match)
         .collect();
     assert_eq!(bad.len(), 1, "{bad:?}");
-    assert_eq!((bad[0].coord.tensor, bad[0].coord.index), (1, 2 * cols + 3));
+    assert_eq!((bad[0].coord.tensor, bad[0].coord.index), (2, at));
     assert_eq!(bad[0].status, Status::Mismatch);
 }

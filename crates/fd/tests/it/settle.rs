@@ -4,20 +4,23 @@
 //! steps), on classes a fixed random linear teacher assigns — invented data, for the shape of a
 //! trained network only.
 
-use ndarray::Array2;
-use plumb_engine::{Activation, Batch, Init, Loss, Network, Rng, Weights};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::Graph;
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 use plumb_fd::{
-    CheckConfig, CheckResult, Method, Precision, SETTLE, Sample, Settlement, Status,
-    UNSETTLED_SHARE, check,
+    CheckConfig, GraphCheck, Method, Precision, SETTLE, Sample, Settlement, Status,
+    UNSETTLED_SHARE, check_graph,
 };
 
+use crate::graph_common::dense;
+
 /// Gradient descent for `steps` steps at rate `rate`, from Glorot-uniform weights of `seed`.
-fn train(net: &Network, batch: &Batch, seed: u64, steps: usize, rate: f64) -> Weights<f64> {
-    let mut w = Init::GlorotUniform.weights(net, &mut Rng::new(seed));
+fn train(net: &Graph, batch: &Batch, seed: u64, steps: usize, rate: f64) -> Vec<ArrayD<f64>> {
+    let mut w = Init::GlorotUniform.graph_params(net, &mut Rng::new(seed));
     for _ in 0..steps {
-        let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
-        for (l, gl) in w.layers_mut().iter_mut().zip(g.layers()) {
-            l.scaled_add(-rate, gl);
+        let g = net.gradient(&w, batch.x.view(), batch.y.view(), None);
+        for (t, gt) in w.iter_mut().zip(&g.params) {
+            t.scaled_add(-rate, gt);
         }
     }
     w
@@ -25,13 +28,13 @@ fn train(net: &Network, batch: &Batch, seed: u64, steps: usize, rate: f64) -> We
 
 /// A batch whose classes a random linear map of x decides (softmax outputs), or whose targets it
 /// gives (other outputs).
-fn taught(net: &Network, m: usize, seed: u64) -> Batch {
+fn taught(net: &Graph, m: usize, seed: u64) -> Batch {
     let mut rng = Rng::new(seed ^ 0x7eac);
-    let (n, k) = (net.inputs(), net.outputs());
+    let (n, k) = (net.input().size(), net.output().size());
     let x = Array2::from_shape_fn((m, n), |_| rng.normal());
     let t = Array2::from_shape_fn((n, k), |_| rng.normal());
     let z = x.dot(&t);
-    let softmax = net.layers().last().unwrap().activation == Activation::Softmax;
+    let softmax = net.nodes().last().unwrap().activation == Activation::Softmax;
     let y = if softmax {
         Array2::from_shape_fn((m, k), |(i, j)| {
             let row = z.row(i);
@@ -46,11 +49,11 @@ fn taught(net: &Network, m: usize, seed: u64) -> Batch {
 
 /// The three networks of the measurement: the 10-32-16-3 (tanh, relu, softmax with L2), an
 /// all-tanh one, and a sigmoid one with squared error.
-fn networks() -> Vec<(&'static str, Network, Weights<f64>, Batch)> {
-    let specs: Vec<(&str, Network)> = vec![
+fn networks() -> Vec<(&'static str, Graph, Vec<ArrayD<f64>>, Batch)> {
+    let specs: Vec<(&str, Graph)> = vec![
         (
             "10-32-16-3 tanh-relu-softmax",
-            Network::new(
+            dense(
                 10,
                 &[
                     (32, Activation::Tanh),
@@ -59,12 +62,11 @@ fn networks() -> Vec<(&'static str, Network, Weights<f64>, Batch)> {
                 ],
                 Loss::CrossEntropy,
                 0.01,
-            )
-            .unwrap(),
+            ),
         ),
         (
             "10-32-16-3 tanh-tanh-softmax",
-            Network::new(
+            dense(
                 10,
                 &[
                     (32, Activation::Tanh),
@@ -73,18 +75,16 @@ fn networks() -> Vec<(&'static str, Network, Weights<f64>, Batch)> {
                 ],
                 Loss::CrossEntropy,
                 0.01,
-            )
-            .unwrap(),
+            ),
         ),
         (
             "8-24-4 sigmoid-identity squared",
-            Network::new(
+            dense(
                 8,
                 &[(24, Activation::Sigmoid), (4, Activation::Identity)],
                 Loss::SquaredError,
                 0.001,
-            )
-            .unwrap(),
+            ),
         ),
     ];
     specs
@@ -94,9 +94,8 @@ fn networks() -> Vec<(&'static str, Network, Weights<f64>, Batch)> {
             let w = train(&net, &batch, 5, 300, 0.1);
             eprintln!(
                 "{name}: max |w| {:.3}",
-                w.layers()
-                    .iter()
-                    .flat_map(|l| l.iter())
+                w.iter()
+                    .flat_map(|t| t.iter())
                     .fold(0.0f64, |m, v| m.max(v.abs()))
             );
             (name, net, w, batch)
@@ -107,7 +106,7 @@ fn networks() -> Vec<(&'static str, Network, Weights<f64>, Batch)> {
 /// The share of checked coordinates settled: a match or a mismatch whose method bound is within
 /// a tenth of the value judged, max(|a|, |n|, floor). Computed from the figures, not the status, so
 /// that the same measure applies to a check that knew no `unsettled` status.
-fn settled_share(r: &CheckResult) -> f64 {
+fn settled_share(r: &GraphCheck) -> f64 {
     let settled = r
         .coords
         .iter()
@@ -116,7 +115,7 @@ fn settled_share(r: &CheckResult) -> f64 {
                 .analytic
                 .abs()
                 .max(c.numeric.abs())
-                .max(r.floors[c.coord.layer]);
+                .max(r.floors[c.coord.tensor]);
             c.status != Status::Unreliable && c.bound <= SETTLE * den
         })
         .count();
@@ -137,7 +136,8 @@ fn trained_networks_in_f32_settle_what_they_can_and_never_pass_unsettled() {
         for method in [Method::Central, Method::Richardson, Method::FivePoint] {
             let mut c = CheckConfig::new(method, Precision::F32);
             c.sample = Some(Sample::All);
-            let r = check(&net, &w, &batch, &c, &|_, _| {}).unwrap();
+            let (x, y) = (batch.x.view(), batch.y.view());
+            let r = check_graph(&net, &w, x, y, &c, &|_, _| {}).unwrap();
             let bad: Vec<_> = r
                 .coords
                 .iter()
@@ -149,7 +149,7 @@ fn trained_networks_in_f32_settle_what_they_can_and_never_pass_unsettled() {
                     .analytic
                     .abs()
                     .max(c.numeric.abs())
-                    .max(r.floors[c.coord.layer]);
+                    .max(r.floors[c.coord.tensor]);
                 if c.status == Status::Match {
                     assert!(c.bound <= SETTLE * den, "{name} {method}: {c:?}");
                 }

@@ -1,18 +1,22 @@
-//! Verdicts in both directions: no false alarm on correct gradients (ReLU networks with kinks, f32),
-//! and every planted error found where it was planted.
+//! Verdicts in both directions on networks of dense layers: no false alarm on correct gradients
+//! (ReLU networks with kinks, f32), and every planted error found where it was planted.
 
-use ndarray::{Array2, s};
-use plumb_engine::{Activation, Batch, Coord, Init, Loss, Network, Rng, Weights};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::Graph;
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 use plumb_fd::{
-    CheckConfig, CheckResult, Method, Precision, Sample, Scope, Status, check, check_gradient,
+    CheckConfig, Entry, GraphCheck, Method, Precision, Sample, Status, check_graph,
+    check_graph_gradient,
 };
 
+use crate::graph_common::dense;
+
 /// A cross-entropy classifier: `inputs`, then `layers` as (units, activation), L2 `l2`.
-fn classifier(inputs: usize, layers: &[(usize, Activation)], l2: f64) -> Network {
-    Network::new(inputs, layers, Loss::CrossEntropy, l2).unwrap()
+fn classifier(inputs: usize, layers: &[(usize, Activation)], l2: f64) -> Graph {
+    dense(inputs, layers, Loss::CrossEntropy, l2)
 }
 
-fn relu_net() -> Network {
+fn relu_net() -> Graph {
     classifier(
         6,
         &[
@@ -34,24 +38,25 @@ fn config(method: Method, precision: Precision) -> CheckConfig {
 fn none(_: usize, _: usize) {}
 
 /// Every coordinate of the engine's own gradient checked.
-fn run(net: &Network, w: &Weights<f64>, batch: &Batch, m: Method, p: Precision) -> CheckResult {
-    check(net, w, batch, &config(m, p), &none).unwrap()
+fn run(g: &Graph, w: &[ArrayD<f64>], batch: &Batch, m: Method, p: Precision) -> GraphCheck {
+    check_graph(g, w, batch.x.view(), batch.y.view(), &config(m, p), &none).unwrap()
 }
 
 /// Every coordinate of `grad` checked.
 fn run_given(
-    net: &Network,
-    w: &Weights<f64>,
+    g: &Graph,
+    w: &[ArrayD<f64>],
     batch: &Batch,
-    grad: &Weights<f64>,
+    grad: &[ArrayD<f64>],
     m: Method,
     p: Precision,
-) -> CheckResult {
-    check_gradient(net, w, batch, grad, &config(m, p), &none).unwrap()
+) -> GraphCheck {
+    let (x, y) = (batch.x.view(), batch.y.view());
+    check_graph_gradient(g, w, x, y, grad, &config(m, p), &none).unwrap()
 }
 
 /// The coordinates called a mismatch, in check order.
-fn mismatches(r: &CheckResult) -> Vec<Coord> {
+fn mismatches(r: &GraphCheck) -> Vec<Entry> {
     r.coords
         .iter()
         .filter(|c| c.status == Status::Mismatch)
@@ -60,30 +65,36 @@ fn mismatches(r: &CheckResult) -> Vec<Coord> {
 }
 
 /// Whether any random direction was called a mismatch.
-fn any_direction_mismatch(r: &CheckResult) -> bool {
+fn any_direction_mismatch(r: &GraphCheck) -> bool {
     r.directions.iter().any(|d| d.status == Status::Mismatch)
 }
 
 /// `g` with its largest entry made 1% larger, and where that entry is.
-fn largest_one_percent_off(g: &Weights<f64>) -> (Weights<f64>, Coord) {
+fn largest_one_percent_off(g: &[ArrayD<f64>]) -> (Vec<ArrayD<f64>>, Entry) {
     let mut best = (
-        Coord {
-            layer: 0,
-            row: 0,
-            col: 0,
+        Entry {
+            tensor: 0,
+            index: 0,
         },
         0.0f64,
     );
-    for (layer, m) in g.layers().iter().enumerate() {
-        for ((row, col), &v) in m.indexed_iter() {
+    for (tensor, t) in g.iter().enumerate() {
+        for (index, &v) in t.iter().enumerate() {
             if v.abs() > best.1 {
-                best = (Coord { layer, row, col }, v.abs());
+                best = (Entry { tensor, index }, v.abs());
             }
         }
     }
-    let mut wrong = g.clone();
-    *wrong.get_mut(best.0) *= 1.01;
+    let mut wrong = g.to_vec();
+    wrong[best.0.tensor].as_slice_mut().unwrap()[best.0.index] *= 1.01;
     (wrong, best.0)
+}
+
+/// Every bias (tensor 2l + 1 of dense layer l) drawn as `scale` times a standard normal.
+fn random_biases(w: &mut [ArrayD<f64>], scale: f64, rng: &mut Rng) {
+    for b in w.iter_mut().skip(1).step_by(2) {
+        b.mapv_inplace(|_| scale * rng.normal());
+    }
 }
 
 /// He-initialised ReLU networks (He et al. 2015 [pub] for the scale), 20 seeds: no coordinate and no
@@ -92,13 +103,10 @@ fn largest_one_percent_off(g: &Weights<f64>) -> (Weights<f64>, Coord) {
 fn relu_networks_raise_no_false_alarm_over_20_seeds() {
     let net = relu_net();
     for seed in 0..20 {
-        let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
+        let mut w = Init::HeNormal.graph_params(&net, &mut Rng::new(seed));
         // Non-zero biases, so that pre-activations sit on both sides of the kink.
-        let mut rng = Rng::new(seed + 100);
-        for l in w.layers_mut() {
-            l.column_mut(0).mapv_inplace(|_| 0.1 * rng.normal());
-        }
-        let batch = Batch::synthetic(&net, 16, seed);
+        random_biases(&mut w, 0.1, &mut Rng::new(seed + 100));
+        let batch = Batch::graph_synthetic(&net, 16, seed);
         for method in [Method::Central, Method::ComplexStep] {
             let r = run(&net, &w, &batch, method, Precision::F64);
             assert_eq!(mismatches(&r), vec![], "seed {seed} {method}");
@@ -115,7 +123,7 @@ fn relu_networks_raise_no_false_alarm_over_20_seeds() {
 #[test]
 fn kinks_are_unreliable_and_retried() {
     let net = classifier(3, &[(4, Activation::Relu), (2, Activation::Softmax)], 0.0);
-    let mut w = Init::HeNormal.weights(&net, &mut Rng::new(1));
+    let mut w = Init::HeNormal.graph_params(&net, &mut Rng::new(1));
     let mut x = Array2::from_shape_fn((5, 3), |(i, j)| ((i * 3 + j) as f64 * 0.37).sin());
     x.row_mut(0).fill(0.0);
     let mut y = Array2::zeros((5, 2));
@@ -125,20 +133,17 @@ fn kinks_are_unreliable_and_retried() {
     let batch = Batch { x, y };
     let r = run(&net, &w, &batch, Method::Central, Precision::F64);
     for c in &r.coords {
-        if c.coord.layer == 0 && c.coord.col == 0 {
+        if c.coord.tensor == 1 {
             assert_eq!(c.status, Status::Unreliable, "{:?}", c.coord);
         }
         assert_ne!(c.status, Status::Mismatch, "{:?}", c.coord);
     }
     // Unit 0 of layer 1 at 3e-7 on the zero sample; all other units far from 0 there.
-    w.layers_mut()[0]
-        .column_mut(0)
-        .assign(&ndarray::array![3e-7, 0.5, 0.5, 0.5]);
+    w[1] = ndarray::array![3e-7, 0.5, 0.5, 0.5].into_dyn();
     let r = run(&net, &w, &batch, Method::Central, Precision::F64);
-    let first_bias = Coord {
-        layer: 0,
-        row: 0,
-        col: 0,
+    let first_bias = Entry {
+        tensor: 1,
+        index: 0,
     };
     let bias0 = r.coords.iter().find(|c| c.coord == first_bias).unwrap();
     assert!(bias0.retried, "{bias0:?}");
@@ -147,9 +152,9 @@ fn kinks_are_unreliable_and_retried() {
     assert!(bias0.step < 3e-7, "{}", bias0.step);
 }
 
-/// The engine's gradient, one entry of one layer made 1% larger: found at that (layer, row, column)
-/// and nowhere else. Entries are drawn among those at least 10% of their layer's largest, since 1%
-/// of a near-zero entry is below any method's resolution.
+/// The engine's gradient, one entry of one layer's weight or bias made 1% larger: found at that
+/// entry and nowhere else. Entries are drawn among those at least 10% of their layer's largest,
+/// since 1% of a near-zero entry is below any method's resolution.
 #[test]
 fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
     let net = classifier(
@@ -163,21 +168,30 @@ fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
     );
     let mut rng = Rng::new(77);
     for seed in 0..12 {
-        let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
-        let batch = Batch::synthetic(&net, 10, seed);
-        let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
+        let w = Init::GlorotUniform.graph_params(&net, &mut Rng::new(seed));
+        let batch = Batch::graph_synthetic(&net, 10, seed);
+        let g = net
+            .gradient(&w, batch.x.view(), batch.y.view(), None)
+            .params;
         let layer = seed as usize % 3;
-        let big: Vec<Coord> = {
-            let m = g.layer(layer);
-            let top = m.iter().fold(0.0f64, |a, v| a.max(v.abs()));
-            m.indexed_iter()
-                .filter(|(_, v)| v.abs() >= 0.1 * top)
-                .map(|((row, col), _)| Coord { layer, row, col })
+        let big: Vec<Entry> = {
+            let top = g[2 * layer..2 * layer + 2]
+                .iter()
+                .flat_map(|t| t.iter())
+                .fold(0.0f64, |a, v| a.max(v.abs()));
+            (2 * layer..2 * layer + 2)
+                .flat_map(|tensor| {
+                    g[tensor]
+                        .iter()
+                        .enumerate()
+                        .filter(|(_, v)| v.abs() >= 0.1 * top)
+                        .map(move |(index, _)| Entry { tensor, index })
+                })
                 .collect()
         };
         let target = big[rng.below(big.len())];
         let mut bad = g.clone();
-        *bad.get_mut(target) *= 1.01;
+        bad[target.tensor].as_slice_mut().unwrap()[target.index] *= 1.01;
         for method in [Method::Central, Method::ComplexStep] {
             let r = run_given(&net, &w, &batch, &bad, method, Precision::F64);
             assert_eq!(mismatches(&r), vec![target], "seed {seed} {method}");
@@ -185,9 +199,9 @@ fn a_one_percent_error_in_one_entry_is_found_where_it_is() {
     }
 }
 
-/// Random directions: the gradient of one part (a layer's weights, or its bias weights) made wrong
-/// by 1% of its norm in a random direction. `--directions 4` flags that part in all of 20 seeds,
-/// and no other part.
+/// Random directions: the gradient of one tensor (a layer's weight or its bias) made wrong by 1%
+/// of its norm in a random direction. `--directions 4` flags that tensor in all of 20 seeds, and
+/// no other tensor.
 #[test]
 fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
     let net = classifier(
@@ -200,20 +214,18 @@ fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
         0.05,
     );
     for seed in 0..20u64 {
-        let w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
-        let batch = Batch::synthetic(&net, 12, seed);
-        let (_, g) = net.gradient(&w, batch.x.view(), batch.y.view());
+        let w = Init::GlorotUniform.graph_params(&net, &mut Rng::new(seed));
+        let batch = Batch::graph_synthetic(&net, 12, seed);
+        let g = net
+            .gradient(&w, batch.x.view(), batch.y.view(), None)
+            .params;
         let layer = (seed % 3) as usize;
         let bias = seed % 2 == 0;
+        let tensor = 2 * layer + bias as usize;
         let mut bad = g.clone();
         let mut rng = Rng::new(seed + 500);
         {
-            let m = &mut bad.layers_mut()[layer];
-            let mut part = if bias {
-                m.slice_mut(s![.., 0..1])
-            } else {
-                m.slice_mut(s![.., 1..])
-            };
+            let part = &mut bad[tensor];
             let norm = part.iter().map(|v| v * v).sum::<f64>().sqrt();
             let noise: Vec<f64> = (0..part.len()).map(|_| rng.normal()).collect();
             let nn = noise.iter().map(|v| v * v).sum::<f64>().sqrt();
@@ -225,20 +237,18 @@ fn four_directions_catch_a_one_percent_error_in_any_single_tensor() {
         cfg.sample = Some(Sample::Total(20));
         cfg.directions = Some(4);
         cfg.seed = seed;
-        let r = check_gradient(&net, &w, &batch, &bad, &cfg, &none).unwrap();
-        let flagged: Vec<Scope> = r
+        let (x, y) = (batch.x.view(), batch.y.view());
+        let r = check_graph_gradient(&net, &w, x, y, &bad, &cfg, &none).unwrap();
+        let flagged: Vec<Option<usize>> = r
             .directions
             .iter()
             .filter(|d| d.status == Status::Mismatch)
-            .map(|d| d.scope)
+            .map(|d| d.tensor)
             .collect();
-        assert!(
-            flagged.contains(&Scope::Part { layer, bias }),
-            "seed {seed}: {flagged:?}"
-        );
+        assert!(flagged.contains(&Some(tensor)), "seed {seed}: {flagged:?}");
         for s in &flagged {
             assert!(
-                matches!(s, Scope::Global) || *s == Scope::Part { layer, bias },
+                s.is_none() || *s == Some(tensor),
                 "seed {seed}: {s:?} flagged"
             );
         }
@@ -255,8 +265,8 @@ fn single_precision_passes_right_and_fails_wrong() {
     ];
     for net in &nets {
         for seed in 0..5 {
-            let w = Init::GlorotUniform.weights(net, &mut Rng::new(seed));
-            let batch = Batch::synthetic(net, 16, seed);
+            let w = Init::GlorotUniform.graph_params(net, &mut Rng::new(seed));
+            let batch = Batch::graph_synthetic(net, 16, seed);
             let r = run(net, &w, &batch, Method::Central, Precision::F32);
             assert_eq!(mismatches(&r), vec![], "seed {seed}");
 
@@ -276,9 +286,9 @@ fn confident_networks_raise_no_false_alarm() {
     let net = classifier(4, &[(5, Activation::Tanh), (2, Activation::Sigmoid)], 0.0);
     for bias in [10.0, 30.0] {
         for seed in 0..5 {
-            let mut w = Init::GlorotUniform.weights(&net, &mut Rng::new(seed));
-            w.layers_mut()[1].column_mut(0).fill(bias);
-            let mut batch = Batch::synthetic(&net, 12, seed);
+            let mut w = Init::GlorotUniform.graph_params(&net, &mut Rng::new(seed));
+            w[3].fill(bias);
+            let mut batch = Batch::graph_synthetic(&net, 12, seed);
             batch.y.fill(1.0);
             for (method, precision) in [
                 (Method::Central, Precision::F64),
@@ -312,8 +322,8 @@ fn relu_directions_in_f32_are_retried_off_their_kinks() {
     let mut judged = 0;
     let mut total = 0;
     for seed in 0..5 {
-        let w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
-        let batch = Batch::synthetic(&net, 16, seed);
+        let w = Init::HeNormal.graph_params(&net, &mut Rng::new(seed));
+        let batch = Batch::graph_synthetic(&net, 16, seed);
         let r = run(&net, &w, &batch, Method::Central, Precision::F32);
         assert_eq!(mismatches(&r), vec![], "seed {seed}");
         assert!(!any_direction_mismatch(&r), "seed {seed}");
@@ -346,11 +356,11 @@ fn single_precision_with_large_weights_raises_no_false_alarm() {
         0.0,
     );
     for seed in 0..20 {
-        let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
-        for layer in w.layers_mut() {
-            layer.mapv_inplace(|v| 4.0 * v);
+        let mut w = Init::HeNormal.graph_params(&net, &mut Rng::new(seed));
+        for t in &mut w {
+            t.mapv_inplace(|v| 4.0 * v);
         }
-        let batch = Batch::synthetic(&net, 32, seed);
+        let batch = Batch::graph_synthetic(&net, 32, seed);
         let r = run(&net, &w, &batch, Method::Central, Precision::F32);
         assert_eq!(mismatches(&r), vec![], "seed {seed}");
     }
@@ -373,12 +383,9 @@ fn elu_networks_raise_no_false_alarm_with_any_method() {
         0.01,
     );
     for seed in 0..10 {
-        let mut w = Init::HeNormal.weights(&net, &mut Rng::new(seed));
-        let mut rng = Rng::new(seed + 50);
-        for l in w.layers_mut() {
-            l.column_mut(0).mapv_inplace(|_| 0.1 * rng.normal());
-        }
-        let batch = Batch::synthetic(&net, 32, seed);
+        let mut w = Init::HeNormal.graph_params(&net, &mut Rng::new(seed));
+        random_biases(&mut w, 0.1, &mut Rng::new(seed + 50));
+        let batch = Batch::graph_synthetic(&net, 32, seed);
         for (method, precision) in [
             (Method::FivePoint, Precision::F32),
             (Method::Richardson, Precision::F64),

@@ -1,41 +1,72 @@
-//! Helpers shared by the engine's tests: random networks and an independent gradient by num-dual.
+//! Helpers for the tests of networks of dense layers: the graph of a layer list, random weights,
+//! num-dual's gradient of the parameters and the relative comparison over every tensor.
 
 #![allow(dead_code)]
 
-use ndarray::Array2;
-use num_dual::Dual64;
-use plumb_engine::{Activation, Batch, Network, Rng, Weights};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::{Dense, Graph, GraphBuilder, LossConfig, Shape};
+use plumb_engine::{Activation, Loss, Rng};
 
-/// dJ/dθ for every parameter by forward-mode automatic differentiation (num-dual): one pass per
-/// parameter with that parameter's derivative part set to 1. Independent of the engine's backward
-/// pass: it differentiates the forward pass and the loss as written, operation by operation.
-pub fn dual_gradient(net: &Network, w: &Weights<f64>, batch: &Batch) -> (f64, Weights<f64>) {
-    let (x, y) = batch.cast::<Dual64>();
-    let base: Weights<Dual64> = w.cast();
-    let mut grad = w.map(|_| 0.0);
-    let mut loss = f64::NAN;
-    for k in 0..w.parameters() {
-        let c = w.coord(k).unwrap();
-        let mut wd = base.clone();
-        wd.get_mut(c).eps = 1.0;
-        let j = net.loss_value(&wd, x.view(), y.view());
-        loss = j.re;
-        *grad.get_mut(c) = j.eps;
+use crate::graph_common;
+
+/// A network of dense layers on `inputs` features: `layers` as (units, activation), the loss and
+/// L2 strength λ with the default conventions. Layer l's weight (units × fan-in) is tensor 2l, its
+/// bias tensor 2l + 1.
+pub fn dense(inputs: usize, layers: &[(usize, Activation)], loss: Loss, l2: f64) -> Graph {
+    let config = LossConfig {
+        loss,
+        l2,
+        ..LossConfig::cross_entropy()
+    };
+    dense_with(inputs, layers, config)
+}
+
+/// [`dense`] under a loss configuration of its own (reduction, L2 divisor, bias decay).
+pub fn dense_with(inputs: usize, layers: &[(usize, Activation)], loss: LossConfig) -> Graph {
+    let mut b = GraphBuilder::new(Shape::Flat(inputs), loss);
+    for &(units, activation) in layers {
+        b.push(None, activation, |s| Dense::new(units, s)).unwrap();
     }
-    (loss, grad)
+    b.finish().unwrap()
+}
+
+/// Random weights with non-zero biases, scaled by 1/√fan-in so no unit saturates outright: each
+/// layer drawn as one units × (fan-in + 1) matrix, bias in column 0, then split.
+pub fn random_weights(g: &Graph, rng: &mut Rng) -> Vec<ArrayD<f64>> {
+    let mut out = Vec::new();
+    for t in g.tensors().chunks(2) {
+        let (units, fan_in) = (t[0].spec.shape[0], t[0].spec.shape[1]);
+        let sd = 1.0 / (fan_in as f64).sqrt();
+        let matrix = Array2::from_shape_fn((units, fan_in + 1), |_| sd * rng.normal());
+        let (w, b) = Dense::split(&matrix);
+        out.push(w.into_dyn());
+        out.push(b.into_dyn());
+    }
+    out
+}
+
+/// (J, dJ/dθ) by num-dual's forward mode through the graph's forward pass
+/// ([`graph_common::dual_gradient`]).
+pub fn dual_gradient(
+    g: &Graph,
+    w: &[ArrayD<f64>],
+    x: &Array2<f64>,
+    y: &Array2<f64>,
+) -> (f64, Vec<ArrayD<f64>>) {
+    let d = graph_common::dual_gradient(g, w, x, y);
+    (d.loss, d.params)
 }
 
 /// The largest coordinate-wise relative difference between two gradients, with a floor of
-/// `floor · max|reference|` in the denominator so that entries that are zero up to rounding in both
-/// do not dominate.
-pub fn max_relative(got: &Weights<f64>, reference: &Weights<f64>, floor: f64) -> f64 {
+/// `floor · max|reference|` (over every tensor) in the denominator so that entries that are zero
+/// up to rounding in both do not dominate.
+pub fn max_relative(got: &[ArrayD<f64>], reference: &[ArrayD<f64>], floor: f64) -> f64 {
     let scale = reference
-        .layers()
         .iter()
-        .flat_map(|l| l.iter())
+        .flat_map(|t| t.iter())
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let mut worst = 0.0f64;
-    for (a, d) in got.layers().iter().zip(reference.layers()) {
+    for (a, d) in got.iter().zip(reference) {
         for (&av, &dv) in a.iter().zip(d.iter()) {
             let den = av.abs().max(dv.abs()).max(floor * scale);
             if den > 0.0 {
@@ -44,19 +75,6 @@ pub fn max_relative(got: &Weights<f64>, reference: &Weights<f64>, floor: f64) ->
         }
     }
     worst
-}
-
-/// Random weights with non-zero biases, scaled by 1/√fan_in so no unit saturates outright.
-pub fn random_weights(net: &Network, rng: &mut Rng) -> Weights<f64> {
-    Weights::new(
-        net.layers()
-            .iter()
-            .map(|spec| {
-                let sd = 1.0 / (spec.inputs as f64).sqrt();
-                Array2::from_shape_fn(spec.shape(), |_| sd * rng.normal())
-            })
-            .collect(),
-    )
 }
 
 /// Every element-wise activation, with non-default parameters for those that take one.

@@ -457,3 +457,26 @@ pub fn loaded(name: &str, samples: usize) -> GraphLoaded {
     };
     GraphLoaded::load(desc, &inputs).unwrap()
 }
+
+/// A network of dense layers on `inputs` features: `layers` as (units, activation), the loss
+/// and L2 strength λ with the default conventions. Its tensors are each layer's weight (units ×
+/// fan-in) then bias: tensor 2l and 2l + 1 of layer l.
+pub fn dense(inputs: usize, layers: &[(usize, Activation)], loss: Loss, l2: f64) -> Graph {
+    let config = match loss {
+        Loss::CrossEntropy => LossConfig::cross_entropy(),
+        Loss::SquaredError => LossConfig {
+            loss,
+            ..LossConfig::cross_entropy()
+        },
+    };
+    dense_with(inputs, layers, LossConfig { l2, ..config })
+}
+
+/// [`dense`] under a loss configuration of its own (reduction, L2 divisor, bias decay).
+pub fn dense_with(inputs: usize, layers: &[(usize, Activation)], loss: LossConfig) -> Graph {
+    let mut b = GraphBuilder::new(Shape::Flat(inputs), loss);
+    for &(units, activation) in layers {
+        b.push(None, activation, |s| Dense::new(units, s)).unwrap();
+    }
+    b.finish().unwrap()
+}
