@@ -134,7 +134,7 @@ pub fn v_curves(r: &GraphCheckReport, loaded: &GraphLoaded, precision: Precision
     }
     let graph = &loaded.desc.graph;
     let (x, y) = (loaded.batch.x.view(), loaded.batch.y.view());
-    let analytic = graph.gradient(&loaded.params, x, y, None).params;
+    let analytic = graph.parameter_gradient(&loaded.params, x, y, None).1;
     let hs = plumb_fd::steps(1e-1, 1e-14, 27);
     let plan = plumb_fd::SweepPlan {
         coords,

@@ -124,8 +124,8 @@ impl Scenario {
         let mut params = Init::GlorotUniform.graph_params(graph, &mut Rng::new(self.seed));
         let loss_before = graph.loss(&params, b.x.view(), b.y.view());
         for _ in 0..self.steps {
-            let g = graph.gradient(&params, b.x.view(), b.y.view(), None);
-            for (p, d) in params.iter_mut().zip(&g.params) {
+            let (_, g) = graph.parameter_gradient(&params, b.x.view(), b.y.view(), None);
+            for (p, d) in params.iter_mut().zip(&g) {
                 p.scaled_add(-self.rate, d);
             }
         }

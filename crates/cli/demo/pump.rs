@@ -98,8 +98,8 @@ impl Pump {
         let mut params = Init::GlorotUniform.graph_params(net, &mut rng);
         let loss_before = net.loss(&params, batch.x.view(), batch.y.view());
         for _ in 0..STEPS {
-            let g = net.gradient(&params, batch.x.view(), batch.y.view(), None);
-            for (w, gw) in params.iter_mut().zip(&g.params) {
+            let (_, g) = net.parameter_gradient(&params, batch.x.view(), batch.y.view(), None);
+            for (w, gw) in params.iter_mut().zip(&g) {
                 w.scaled_add(-RATE, gw);
             }
         }

@@ -74,13 +74,13 @@ pub fn check_graph(
 ) -> Result<GraphCheck, CheckError> {
     fits(graph, params, x, y)?;
     let analytic = match config.precision {
-        Precision::F64 => graph.gradient(params, x, y, None).params,
+        Precision::F64 => graph.parameter_gradient(params, x, y, None).1,
         Precision::F32 => {
             let p: Vec<ArrayD<f32>> = params.iter().map(|t| t.mapv(|v| v as f32)).collect();
             let (xs, ys) = (x.mapv(|v| v as f32), y.mapv(|v| v as f32));
             graph
-                .gradient(&p, xs.view(), ys.view(), None)
-                .params
+                .parameter_gradient(&p, xs.view(), ys.view(), None)
+                .1
                 .iter()
                 .map(|g| g.mapv(f64::from))
                 .collect()

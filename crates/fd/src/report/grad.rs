@@ -105,7 +105,14 @@ pub fn graph_gradient_report(
     let desc = &loaded.desc;
     let graph = &desc.graph;
     let b = &loaded.batch;
-    let g = graph.gradient(&loaded.params, b.x.view(), b.y.view(), None);
+    // The input gradient is formed only when it is written.
+    let (loss, grads, input) = if input_gradient {
+        let g = graph.gradient(&loaded.params, b.x.view(), b.y.view(), None);
+        (g.loss, g.params, Some(g.input))
+    } else {
+        let (loss, grads) = graph.parameter_gradient(&loaded.params, b.x.view(), b.y.view(), None);
+        (loss, grads, None)
+    };
     let l2_term = graph.loss_config().l2_factor(b.len())
         * loaded
             .params
@@ -114,10 +121,10 @@ pub fn graph_gradient_report(
             .filter(|(t, _)| graph.decays(*t))
             .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
             .sum::<f64>();
-    let mut tensors = desc.to_file(&g.params)?;
+    let mut tensors = desc.to_file(&grads)?;
     let mut layers: Vec<usize> = desc.files.iter().map(|f| f.layer + 1).collect();
-    if input_gradient {
-        tensors.push(desc.input_tensor_in(g.input.view(), loaded.order));
+    if let Some(input) = input {
+        tensors.push(desc.input_tensor_in(input.view(), loaded.order));
         layers.push(0);
     }
     Ok(summarised(
@@ -127,7 +134,7 @@ pub fn graph_gradient_report(
             data: &loaded.data_source,
             samples: b.len(),
         },
-        (g.loss, g.loss - l2_term, l2_term),
+        (loss, loss - l2_term, l2_term),
         tensors,
         &layers,
     ))
