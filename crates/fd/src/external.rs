@@ -350,8 +350,10 @@ pub(crate) fn check_tensors<E>(
     // A black box's kinks are not seen, so a disagreement must hold at smaller steps, on a loss
     // that looks smooth across the stencil, to be a mismatch. Each suspect is estimated again at
     // half its step, then 1/10, 1/100, 1/1000: a step that settles it as a match, with a bound
-    // below the first disagreement, wins (a kink had moved the larger ones). Where every step still disagrees, or the steps grow too short to
-    // settle anything, the second differences decide ([`smooth_across`]): smooth, a mismatch;
+    // below the first disagreement, wins (a kink had moved the larger ones); a match whose bound
+    // cannot rule the disagreement out but whose value lies nearer the analytic value than the
+    // first estimate ([`nearer`]) says the disagreement did not hold: `unreliable`. Where every step still disagrees, or the steps grow too short
+    // to settle anything, the second differences decide ([`smooth_across`]): smooth, a mismatch;
     // not, `unreliable`.
     if !inside.sees_kinks && config.step.is_none() && !complex {
         // The typical round-off of one evaluation, not the worst case the bounds use (4ε): the
@@ -412,6 +414,10 @@ pub(crate) fn check_tensors<E>(
                     Status::Match if bound < first => {
                         estimates[i] = (est, true);
                         suspects[j].1 = 0.0;
+                    }
+                    Status::Match if nearer(&est, &estimates[i].0, tensors[t].gradient[k]) => {
+                        estimates[i].0.crossed = true;
+                        estimates[i].1 = true;
                     }
                     Status::Mismatch => next.push(j),
                     _ => {}
@@ -566,6 +572,7 @@ pub(crate) fn check_tensors<E>(
                 let r = |d: f64| look_up(&rtable, d).0;
                 let smooth = smooth_across(&r, f0, 2.0 * s0, 2.0 * config.eps * f0.abs());
                 let mut resolved = false;
+                let mut kinked = false;
                 for factor in std::iter::once(0.5).chain(RETRIES) {
                     let table = along(&method.stencil(s0 * factor, 1, round))?;
                     let again = estimate_at(&table, s0 * factor, 1);
@@ -575,11 +582,15 @@ pub(crate) fn check_tensors<E>(
                         resolved = true;
                         break;
                     }
+                    if status == Status::Match && nearer(&again, &est, a) {
+                        kinked = true;
+                        break;
+                    }
                     if status != Status::Mismatch {
                         break;
                     }
                 }
-                est.crossed |= !resolved && !smooth;
+                est.crossed |= !resolved && (kinked || !smooth);
             }
             let (_, rel_error, bound, status) = judge(&est);
             directions.push(OutsideDirection {
@@ -721,4 +732,20 @@ pub fn select_flat(sizes: &[usize], sample: Sample, seed: u64) -> Vec<(usize, us
         out.extend(idx.into_iter().map(|k| (t, k)));
     }
     out
+}
+
+/// Whether `again`, a match at a smaller step whose bound could not rule out the disagreement
+/// of `first` with the analytic value `a`, still shows that the disagreement did not hold: it
+/// lies nearer `a` than `first`, and its bound is within twice the disagreement (its typical
+/// round-off, a quarter of the worst case the bound counts, within half of it). On a loss smooth
+/// across both stencils the two estimate one derivative, so `again` stays nearer `first` unless
+/// its error exceeds half the disagreement; a kink inside the first stencil only (which a black
+/// box does not show) moves `first` alone, and `again` back toward the derivative. Such a
+/// coordinate or direction is `unreliable`, not a mismatch, however smooth the second
+/// differences over the wider stencil of [`smooth_across`] look. A planted error well above the
+/// round-off keeps the estimates together, far from `a`; a retry at a step so short that its
+/// round-off swamps the disagreement says nothing either way.
+fn nearer(again: &crate::Estimate, first: &crate::Estimate, a: f64) -> bool {
+    let disagreement = (first.value - a).abs();
+    again.error <= 2.0 * disagreement && (again.value - a).abs() < (again.value - first.value).abs()
 }
