@@ -125,7 +125,7 @@ impl Norm {
         let mean = if self.centre {
             let mut sum = S::zero();
             for run in self.runs(g, m) {
-                xs[run].iter().for_each(|&v| sum = sum + v);
+                xs[run].iter().for_each(|&v| sum += v);
             }
             sum / n
         } else {
@@ -135,7 +135,7 @@ impl Norm {
         for run in self.runs(g, m) {
             xs[run].iter().for_each(|&v| {
                 let d = v - mean;
-                sum = sum + d * d;
+                sum += d * d;
             });
         }
         let v = sum / n;
