@@ -659,8 +659,8 @@ impl Graph {
             }
         };
         let last = self.nodes.len() - 1;
-        // The activation of layer j's z, or nothing for an output layer the loss does not read.
-        // A recomputed layer's step and activation. For the loss alone, a layer below the
+        // A recomputed layer's step and activation (nothing for an output layer the loss does
+        // not read). For the loss alone, a layer below the
         // output whose activation has no break point keeps no z (the check reads a tail's z
         // only for the sides of a kink): its activation is made in z's place, no copy.
         let finish = |j: usize, mut step: Step<S>, changed: Option<&[usize]>| {

@@ -102,12 +102,18 @@ impl Norm {
     /// are one run of `inner` per sample and outer position; a layer-norm group's are the
     /// features at one position, `inner` apart.
     fn group(&self, g: usize, m: usize) -> impl Iterator<Item = usize> + use<> {
+        self.runs(g, m).flatten()
+    }
+
+    /// Group g's indices as the runs [`Norm::group`] walks, in its order: the passes over a
+    /// group loop over slices (the same values in the same order) instead of index by index.
+    fn runs(&self, g: usize, m: usize) -> impl Iterator<Item = std::ops::Range<usize>> + use<> {
         let (outer, axis, inner) = self.input.feature_axis();
         let (start, len, stride, count) = match self.over {
             Over::Batch => (g * inner, inner, axis * inner, m * outer),
             Over::Features => ((g / inner) * axis * inner + g % inner, 1, inner, axis),
         };
-        (0..count).flat_map(move |r| {
+        (0..count).map(move |r| {
             let b = start + r * stride;
             b..b + len
         })
@@ -117,14 +123,22 @@ impl Norm {
     /// values of a standard-layout batch `xs` of `m` samples.
     fn statistics<S: LayerScalar>(&self, xs: &[S], g: usize, m: usize, n: S) -> (S, S, S) {
         let mean = if self.centre {
-            self.group(g, m).fold(S::zero(), |acc, k| acc + xs[k]) / n
+            let mut sum = S::zero();
+            for run in self.runs(g, m) {
+                xs[run].iter().for_each(|&v| sum += v);
+            }
+            sum / n
         } else {
             S::zero()
         };
-        let v = self.group(g, m).fold(S::zero(), |acc, k| {
-            let d = xs[k] - mean;
-            acc + d * d
-        }) / n;
+        let mut sum = S::zero();
+        for run in self.runs(g, m) {
+            xs[run].iter().for_each(|&v| {
+                let d = v - mean;
+                sum += d * d;
+            });
+        }
+        let v = sum / n;
         (mean, v, S::one() / (v + S::from_f64(self.epsilon)).sqrt())
     }
 
@@ -143,8 +157,10 @@ impl Norm {
         let mut var = Array1::zeros(groups);
         for g in 0..groups {
             let (mean, v, r) = self.statistics(xs, g, m, n);
-            for k in self.group(g, m) {
-                xhat[k] = (xs[k] - mean) * r;
+            for run in self.runs(g, m) {
+                for (h, &x) in xhat[run.clone()].iter_mut().zip(&xs[run]) {
+                    *h = (x - mean) * r;
+                }
             }
             inv[g] = r;
             var[g] = v;
@@ -232,10 +248,12 @@ impl Norm {
             // The forward pass's arithmetic for group a (one feature over the batch).
             let (mean, _, r) = self.statistics(xs, a, m, n);
             let (scale, shift) = (params[0][a], self.shift.then(|| params[1][a]));
-            for k in self.group(a, m) {
-                values[k] = scale * ((xs[k] - mean) * r);
-                if let Some(b) = shift {
-                    values[k] += b;
+            for run in self.runs(a, m) {
+                for (y, &x) in values[run.clone()].iter_mut().zip(&xs[run]) {
+                    *y = scale * ((x - mean) * r);
+                    if let Some(b) = shift {
+                        *y += b;
+                    }
                 }
             }
         }
