@@ -39,6 +39,23 @@ pub enum Activation {
 }
 
 impl Activation {
+    /// Whether the activation's parameter is one it is defined for: `Err((what, value, rule))`
+    /// names the parameter, its value and the rule it breaks (a leaky-relu slope in [0, 1), an
+    /// elu alpha finite and > 0).
+    pub fn check_parameter(&self) -> Result<(), (&'static str, f64, &'static str)> {
+        match *self {
+            Activation::LeakyRelu { slope }
+                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
+            {
+                Err(("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"))
+            }
+            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
+                Err(("the elu alpha", alpha, "it must be a finite number > 0"))
+            }
+            _ => Ok(()),
+        }
+    }
+
     /// The names a network description uses, in the order the docs list them.
     pub const NAMES: [&'static str; 9] = [
         "identity",

@@ -147,19 +147,10 @@ pub(crate) fn check_dense(w: &Walk<'_>, parsed: &Parsed) -> Result<(), Descripti
                 format!("layer {layer}: {what} is {value}; {rule}"),
             )
         };
+        if let Err((what, value, rule)) = activation.check_parameter() {
+            return Err(bad(what, value, rule));
+        }
         match activation {
-            Activation::LeakyRelu { slope }
-                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
-            {
-                return Err(bad("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"));
-            }
-            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
-                return Err(bad(
-                    "the elu alpha",
-                    alpha,
-                    "it must be a finite number > 0",
-                ));
-            }
             Activation::Softmax if layer != last => {
                 return Err(w.error(
                     at.clone(),

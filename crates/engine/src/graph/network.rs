@@ -204,20 +204,8 @@ impl GraphBuilder {
             value,
             rule,
         };
-        match activation {
-            Activation::LeakyRelu { slope }
-                if !(slope.is_finite() && (0.0..1.0).contains(&slope)) =>
-            {
-                return Err(bad("the leaky-relu slope", slope, "it must be ≥ 0 and < 1"));
-            }
-            Activation::Elu { alpha } if !(alpha.is_finite() && alpha > 0.0) => {
-                return Err(bad(
-                    "the elu alpha",
-                    alpha,
-                    "it must be a finite number > 0",
-                ));
-            }
-            _ => {}
+        if let Err((what, value, rule)) = activation.check_parameter() {
+            return Err(bad(what, value, rule));
         }
         let input = self.shape();
         let built = build(&input).map_err(|source| GraphError::Layer {
