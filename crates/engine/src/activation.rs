@@ -197,11 +197,10 @@ impl Activation {
         match self {
             Activation::Softmax => panic!("softmax applies to whole rows, not to some values"),
             Activation::Tanh => S::tanh_all(z),
-            Activation::Relu => z.iter_mut().for_each(|v| {
-                if v.re() <= 0.0 || v.re().is_nan() {
-                    *v = S::zero();
-                }
-            }),
+            // A select, not a branch, so that the loop vectorises; NaN and -0 go to 0 as well.
+            Activation::Relu => z
+                .iter_mut()
+                .for_each(|v| *v = if v.re() > 0.0 { *v } else { S::zero() }),
             Activation::Identity => {}
             act => z.iter_mut().for_each(|v| *v = act.value(*v)),
         }
@@ -259,6 +258,13 @@ impl Activation {
                         *dv = *av * (*dv - dot);
                     }
                 }
+            }
+            // ReLU's slope in a loop of its own (the same factor, 1 or 0, as `slope`): a match
+            // per element kept the commonest backward step from vectorising.
+            Activation::Relu => {
+                Zip::from(&mut out).and(z).for_each(|d, &zv| {
+                    *d *= if zv.re() > 0.0 { S::one() } else { S::zero() };
+                });
             }
             act => {
                 Zip::from(&mut out)
