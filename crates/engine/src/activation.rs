@@ -259,12 +259,23 @@ impl Activation {
                     }
                 }
             }
-            // ReLU's slope in a loop of its own (the same factor, 1 or 0, as `slope`): a match
-            // per element kept the commonest backward step from vectorising.
+            // ReLU's, tanh's and the sigmoid's slopes in loops of their own (the same factors
+            // as `slope`): a match per element kept the commonest backward steps from
+            // vectorising.
             Activation::Relu => {
                 Zip::from(&mut out).and(z).for_each(|d, &zv| {
                     *d *= if zv.re() > 0.0 { S::one() } else { S::zero() };
                 });
+            }
+            Activation::Tanh => {
+                Zip::from(&mut out)
+                    .and(a)
+                    .for_each(|d, &av| *d *= S::one() - av * av);
+            }
+            Activation::Sigmoid => {
+                Zip::from(&mut out)
+                    .and(a)
+                    .for_each(|d, &av| *d *= av * (S::one() - av));
             }
             act => {
                 Zip::from(&mut out)
