@@ -10,7 +10,7 @@ use std::path::Path;
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded, Places, RunFacts, build_graph};
 use plumb_fd::{CheckConfig, Method, Precision, check_graph_gradient};
-use plumb_formats::{AxisOrder, GraphDescription};
+use plumb_formats::GraphDescription;
 use plumb_report::Verdict;
 use util::{fixture, plumb};
 
@@ -98,14 +98,7 @@ fn sequence_net_passes_in_f64() {
 #[test]
 fn a_moved_gradient_entry_fails_and_is_located() {
     let desc = GraphDescription::read(&fixture("nets/pump-cnn.toml")).unwrap();
-    let inputs = GraphInputs {
-        weights: None,
-        data: None,
-        order: AxisOrder::ChannelsFirst,
-        init: Init::GlorotUniform,
-        seed: 3,
-        samples: 16,
-    };
+    let inputs = GraphInputs::drawn(Init::GlorotUniform, 3, 16);
     let loaded = GraphLoaded::load(desc, &inputs).unwrap();
     let graph = &loaded.desc.graph;
     let b = &loaded.batch;

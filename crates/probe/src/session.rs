@@ -406,7 +406,7 @@ mod tests {
 
     use plumb_engine::Init;
     use plumb_fd::report::GraphInputs;
-    use plumb_formats::{AxisOrder, GraphDescription};
+    use plumb_formats::GraphDescription;
 
     use super::*;
 
@@ -417,14 +417,7 @@ mod tests {
     fn a_dense_file_entrys_bound_covers_its_gradient() {
         let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../examples/pump.toml");
         let desc = GraphDescription::read(&path).unwrap();
-        let inputs = GraphInputs {
-            weights: None,
-            data: None,
-            order: AxisOrder::ChannelsFirst,
-            init: Init::GlorotUniform,
-            seed: 5,
-            samples: 12,
-        };
+        let inputs = GraphInputs::drawn(Init::GlorotUniform, 5, 12);
         let l = GraphLoaded::load(desc, &inputs).unwrap();
         let g = &l.desc.graph;
         let grad = g.gradient(&l.params, l.batch.x.view(), l.batch.y.view(), None);

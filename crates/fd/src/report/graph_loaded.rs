@@ -45,6 +45,21 @@ pub struct GraphInputs<'a> {
     pub samples: usize,
 }
 
+impl GraphInputs<'static> {
+    /// No files: weights drawn by `init` from `seed`, a synthetic batch of `samples` drawn from
+    /// the same seed (the data's axes need no order).
+    pub fn drawn(init: Init, seed: u64, samples: usize) -> Self {
+        GraphInputs {
+            weights: None,
+            data: None,
+            order: AxisOrder::ChannelsFirst,
+            init,
+            seed,
+            samples,
+        }
+    }
+}
+
 /// Why a graph run's inputs cannot be used; each names the file and what to do.
 #[derive(Debug, thiserror::Error)]
 pub enum GraphLoadError {

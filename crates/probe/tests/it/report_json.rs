@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_fd::{Method, Sample};
-use plumb_formats::{AxisOrder, GraphDescription};
+use plumb_formats::GraphDescription;
 use plumb_probe::{ProbeOptions, ProbeReport, Source, blackbox_data, probe};
 use plumb_report::Verdict;
 
@@ -60,14 +60,7 @@ fn assert_round_trip(r: &ProbeReport, what: &str) -> serde_json::Value {
 fn dense() -> GraphLoaded {
     let desc = GraphDescription::read(&repo().join("examples/pump.toml")).unwrap();
     assert!(desc.is_dense());
-    let inputs = GraphInputs {
-        weights: None,
-        data: None,
-        order: AxisOrder::ChannelsFirst,
-        init: Init::GlorotUniform,
-        seed: 3,
-        samples: 16,
-    };
+    let inputs = GraphInputs::drawn(Init::GlorotUniform, 3, 16);
     GraphLoaded::load(desc, &inputs).unwrap()
 }
 
@@ -108,14 +101,7 @@ fn a_graph_probe_report_reads_back_to_the_same_bytes() {
         return;
     }
     let desc = GraphDescription::read(&repo().join("examples/pump-cnn.toml")).unwrap();
-    let inputs = GraphInputs {
-        weights: None,
-        data: None,
-        order: AxisOrder::ChannelsFirst,
-        init: Init::HeNormal,
-        seed: 4,
-        samples: 8,
-    };
+    let inputs = GraphInputs::drawn(Init::HeNormal, 4, 8);
     let loaded = GraphLoaded::load(desc, &inputs).unwrap();
     let program = repo().join("examples/python/cnn_numpy.py");
     let program = program.to_str().unwrap();

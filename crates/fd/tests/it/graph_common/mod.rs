@@ -15,7 +15,7 @@ use plumb_engine::graph::{
 use plumb_engine::{Activation, Init, Loss, Rng};
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_fd::{CheckConfig, GraphCheck, Method, Precision, Status, check_graph};
-use plumb_formats::{AxisOrder, GraphDescription};
+use plumb_formats::GraphDescription;
 
 /// One test case: a graph, parameters and a batch.
 pub struct Case {
@@ -447,14 +447,7 @@ pub fn net(name: &str) -> PathBuf {
 /// loaded as every command loads them.
 pub fn loaded(name: &str, samples: usize) -> GraphLoaded {
     let desc = GraphDescription::read(&net(name)).unwrap();
-    let inputs = GraphInputs {
-        weights: None,
-        data: None,
-        order: AxisOrder::ChannelsFirst,
-        init: Init::GlorotUniform,
-        seed: 3,
-        samples,
-    };
+    let inputs = GraphInputs::drawn(Init::GlorotUniform, 3, samples);
     GraphLoaded::load(desc, &inputs).unwrap()
 }
 
