@@ -49,6 +49,12 @@ impl CoordSweep {
             .map(|m| m.best_error)
             .fold(f64::INFINITY, f64::min)
     }
+
+    /// Whether some method at some step agrees with the analytic value within `tolerance` — the
+    /// rule behind the `no-agreement` finding and each test case.
+    pub fn agrees_within(&self, tolerance: f64) -> bool {
+        self.best_error() <= tolerance
+    }
 }
 
 /// The JSON report of `plumb sweep` (docs/json.md).
@@ -69,10 +75,9 @@ pub struct SweepReport {
 }
 
 impl SweepReport {
-    /// Whether some method at some step agrees with the analytic value at `c` within the
-    /// precision's tolerance — the rule behind the `no-agreement` finding and each test case.
+    /// Whether `c` agrees within the report's tolerance ([`CoordSweep::agrees_within`]).
     pub fn agrees(&self, c: &CoordSweep) -> bool {
-        c.best_error() <= self.tolerance
+        c.agrees_within(self.tolerance)
     }
 }
 
@@ -163,8 +168,8 @@ pub fn sweep_report(loaded: &GraphLoaded, ask: &SweepAsk) -> Result<SweepReport,
             chosen: (*why).into(),
             methods,
         };
-        let best = c.best_error();
-        if best > tolerance {
+        if !c.agrees_within(tolerance) {
+            let best = c.best_error();
             findings.push(
                 Finding::new(
                     "no-agreement",
