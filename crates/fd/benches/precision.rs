@@ -49,10 +49,11 @@ fn main() {
     println!("  f32 / f64: {:.2}", f32_best / f64_best);
     for r in &results {
         println!(
-            "  {}: {}; steps kept {}",
+            "  {}: {}; steps kept {}; settled on one step {}",
             r.precision.name(),
             common::summary(r),
-            steps(r, &p)
+            steps(r, &p),
+            r.coords.iter().filter(|c| c.one_step).count()
         );
     }
 }
