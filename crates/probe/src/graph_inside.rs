@@ -6,6 +6,7 @@
 
 use ndarray::{Array2, ArrayD};
 use plumb_engine::graph::{Branches, Graph, Trace};
+use plumb_fd::graph_loss_magnitude;
 use plumb_formats::GraphDescription;
 
 /// The graph at the probe's base point, and where each file tensor's entries live in it.
@@ -44,6 +45,12 @@ impl<'a> GraphKinks<'a> {
             breaks,
             places: plumb_diagnose::file_places(desc),
         }
+    }
+
+    /// The bound on the loss's round-off pieces at the reference's base pass
+    /// ([`graph_loss_magnitude`]), from the pass the kinks are read from.
+    pub(crate) fn loss_gross(&self, y: &Array2<f64>) -> f64 {
+        graph_loss_magnitude(self.graph, &self.params, &self.trace, y)
     }
 
     /// Whether adding `delta` to the listed (file tensor, flat file index) entries takes another

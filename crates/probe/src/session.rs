@@ -13,7 +13,7 @@ use plumb_engine::Batch;
 use plumb_fd::report::GraphLoaded;
 use plumb_fd::{
     Change, ExternalConfig, Inside, Method, OutsideTensor, Precision, Sample, check_external,
-    graph_gradient_magnitude, graph_loss_magnitude,
+    graph_gradient_magnitude,
 };
 use plumb_formats::Tensor;
 use plumb_formats::shape_text;
@@ -210,11 +210,7 @@ pub fn probe(
             k.crossed(&changes)
         })
     };
-    let loss_gross = reference.map_or(0.0, |l| {
-        let g = &l.desc.graph;
-        let trace = g.forward(&l.params, b.x.view());
-        graph_loss_magnitude(g, &l.params, &trace, &b.y)
-    });
+    let loss_gross = kinks.as_ref().map_or(0.0, |k| k.loss_gross(&b.y));
     let inside = Inside {
         crossed: &crossed,
         crossed_along: &crossed_along,
