@@ -14,7 +14,9 @@
 //!   engine's check before it went, benches/README.md);
 //! - `cnn-plumb` (only when named): plumb's side of `cnn` alone, the fastest of 10 runs, with a
 //!   fingerprint of the results and the count of each verdict — for before/after runs of two
-//!   builds on a busy machine, where NumPy's time is not needed.
+//!   builds on a busy machine, where NumPy's time is not needed;
+//! - `cnn-loop` (only when named): plumb's full check of the demo CNN 300 times and nothing
+//!   else, for a profiler (`perf record -g … cnn-loop --bench`).
 //!
 //! Each NumPy side gets the same values (JSON on stdin) and returns its loss, which must equal
 //! plumb's: both sides compute the same function. One thread each (benches/graph.sh sets
@@ -217,6 +219,17 @@ fn cnn_plumb() {
     );
 }
 
+/// The full check of the demo CNN over and over, for a profile of that alone.
+fn cnn_loop() {
+    let (g, p, b) = description("examples/pump-cnn.toml", 32);
+    let (t, r) = best(300, || full_check(&g, &p, &b));
+    println!(
+        "cnn-loop  full central check {:.2} ms (fastest of 300); {}",
+        t * 1e3,
+        common::summary(&r)
+    );
+}
+
 fn dense_graph(g: &Graph, p: &[ArrayD<f64>], b: &Batch, cfg: &CheckConfig) -> plumb_fd::GraphCheck {
     check_graph(g, p, b.x.view(), b.y.view(), cfg, &|_, _| {}).unwrap()
 }
@@ -349,6 +362,9 @@ fn main() {
     }
     if asked.iter().any(|a| a == "cnn-plumb") {
         cnn_plumb();
+    }
+    if asked.iter().any(|a| a == "cnn-loop") {
+        cnn_loop();
     }
     if asked.iter().any(|a| a == "dense-plumb") {
         dense_plumb();
