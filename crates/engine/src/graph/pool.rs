@@ -139,34 +139,36 @@ impl Pool {
         let w = &self.window;
         let base = (c * w.in_positions()) as u32;
         let scale = S::one() / S::from_f64(w.taps() as f64);
+        let ([kh, kw], [sy, sx], iw) = (w.kernel, w.stride, w.input[1]);
         let mut ties = 0;
+        // A pool has no padding and its windows fit the input (Pool::new), so every tap of every
+        // window is inside: no test per tap. Taps in row-major order.
         for oy in 0..w.output[0] {
             for ox in 0..w.output[1] {
                 let o = oy * w.output[1] + ox;
+                let corner = oy * sy * iw + ox * sx;
+                let rows = (0..kh).map(|ky| &xc[corner + ky * iw..][..kw]);
                 match self.op {
                     PoolKind::Avg => {
                         let mut sum = S::zero();
-                        w.for_each_tap(oy, ox, |_, q| sum += xc[q]);
+                        rows.flatten().for_each(|&v| sum += v);
                         out[o] = sum * scale;
                     }
                     PoolKind::Max => {
-                        let mut best: Option<usize> = None;
-                        let mut tied = false;
-                        w.for_each_tap(oy, ox, |_, q| {
-                            let v = xc[q].re();
-                            match best {
-                                Some(b) if v > xc[b].re() => {
-                                    best = Some(q);
-                                    tied = false;
-                                }
-                                Some(b) if v == xc[b].re() => tied = true,
-                                Some(_) => {}
-                                None => best = Some(q),
+                        // Selects, not branches: which value wins is data, and a branch on it
+                        // was mispredicted half the time.
+                        let (mut best, mut at, mut tied) = (xc[corner].re(), corner, false);
+                        for (ky, row) in rows.enumerate() {
+                            for (kx, v) in row.iter().enumerate() {
+                                let (v, first) = (v.re(), ky == 0 && kx == 0);
+                                let (above, level) = (v > best, v == best && !first);
+                                tied = !above & (tied | level);
+                                at = if above { corner + ky * iw + kx } else { at };
+                                best = if above { v } else { best };
                             }
-                        });
-                        let q = best.expect("a window holds at least one position");
-                        out[o] = xc[q];
-                        branches[o] = base + q as u32;
+                        }
+                        out[o] = xc[at];
+                        branches[o] = base + at as u32;
                         ties += tied as usize;
                     }
                 }
