@@ -138,6 +138,13 @@ impl Pool {
     ) -> usize {
         let w = &self.window;
         let base = (c * w.in_positions()) as u32;
+        if self.op == PoolKind::Max && w.kernel[0] == 1 {
+            match w.kernel[1] {
+                2 => return self.max_rows::<S, 2>(xc, base, out, branches),
+                3 => return self.max_rows::<S, 3>(xc, base, out, branches),
+                _ => {}
+            }
+        }
         let scale = S::one() / S::from_f64(w.taps() as f64);
         let ([kh, kw], [sy, sx], iw) = (w.kernel, w.stride, w.input[1]);
         let mut ties = 0;
@@ -172,6 +179,41 @@ impl Pool {
                         ties += tied as usize;
                     }
                 }
+            }
+        }
+        ties
+    }
+
+    /// [`Pool::channel`] for a max-pool whose windows are K values of one row (the 1-D pools
+    /// of 2 and 3): the same choices, with the window's length known to the compiler (the
+    /// general loop's bookkeeping cost more than the comparisons).
+    fn max_rows<S: LayerScalar, const K: usize>(
+        &self,
+        xc: &[S],
+        base: u32,
+        out: &mut [S],
+        branches: &mut [u32],
+    ) -> usize {
+        let w = &self.window;
+        let ([sy, sx], iw, ow) = (w.stride, w.input[1], w.output[1]);
+        let mut ties = 0;
+        let rows = out.chunks_exact_mut(ow).zip(branches.chunks_exact_mut(ow));
+        for (oy, (out, branches)) in rows.enumerate() {
+            let row = &xc[oy * sy * iw..][..iw];
+            for (ox, (o, b)) in out.iter_mut().zip(branches.iter_mut()).enumerate() {
+                let start = ox * sx;
+                let window: &[S; K] = row[start..start + K].try_into().expect("inside");
+                let (mut best, mut at, mut tied) = (window[0].re(), 0, false);
+                for (k, v) in window.iter().enumerate().skip(1) {
+                    let v = v.re();
+                    let above = v > best;
+                    tied = !above & (tied | (v == best));
+                    at = if above { k } else { at };
+                    best = if above { v } else { best };
+                }
+                *o = window[at];
+                *b = base + (oy * sy * iw + start + at) as u32;
+                ties += tied as usize;
             }
         }
         ties

@@ -264,6 +264,33 @@ fn max_pool_ties_take_the_first_maximum_and_are_reported() {
     assert_eq!(a.changed(&c), vec![0]);
 }
 
+/// The same rule on overlapping windows of three, worked by hand: a later equal value is a tie,
+/// a later greater one takes the window and clears the tie. Channel 0 = [2, 1, 2, 3, 3]: windows
+/// [2, 1, 2] → position 0, tied; [1, 2, 3] → 3; [2, 3, 3] → 3, tied. Channel 1 = [1, 1, 2, 0, 0]
+/// (positions 5–9): [1, 1, 2] → 7, the early tie cleared; [1, 2, 0] → 7; [2, 0, 0] → 7.
+#[test]
+fn max_pool_windows_of_three_take_the_first_maximum_and_count_ties() {
+    let input = Shape::Signal {
+        channels: 2,
+        length: 5,
+    };
+    let pool = Pool::new(PoolKind::Max, 1, [1, 3], [1, 1], &input).unwrap();
+    let x = ndarray::array![[2.0, 1.0, 2.0, 3.0, 3.0, 1.0, 1.0, 2.0, 0.0, 0.0]];
+    for step in [Layer::<f64>::forward(&pool, &[], x.view(), None), {
+        let s = Layer::<f32>::forward(&pool, &[], x.mapv(|v| v as f32).view(), None);
+        plumb_engine::graph::Step {
+            out: s.out.mapv(f64::from),
+            saved: Vec::new(),
+            branches: s.branches,
+            ties: s.ties,
+        }
+    }] {
+        assert_eq!(step.branches, vec![0, 3, 3, 7, 7, 7]);
+        assert_eq!(step.out.row(0).to_vec(), vec![2.0, 3.0, 3.0, 2.0, 2.0, 2.0]);
+        assert_eq!(step.ties, 2);
+    }
+}
+
 fn layer_error(e: Result<&mut GraphBuilder, GraphError>) -> ShapeError {
     match e {
         Err(GraphError::Layer { source, .. }) => source,
