@@ -265,11 +265,25 @@ fn cnn_layers() {
         let layer = <f64 as plumb_engine::graph::LayerScalar>::layer(node.layer.as_ref());
         let (secs, _) = best(200, || layer.forward(&p[node.tensors()], input, skip));
         let (act, _) = best(200, || node.activation.apply(trace.steps[j].out.view()));
+        // The parameters' gradient alone: for a convolution, im2col and one product of the
+        // forward product's size, what an im2col + GEMM forward pass would cost at least.
+        let dout = trace.steps[j].out.view();
+        let (back, _) = best(200, || {
+            layer.backward(
+                &p[node.tensors()],
+                input,
+                &trace.steps[j],
+                dout,
+                None,
+                false,
+            )
+        });
         println!(
-            "cnn-layers  {:<6} forward {:.2} µs, activation {:.2} µs",
+            "cnn-layers  {:<6} forward {:.2} µs, activation {:.2} µs, parameters' gradient {:.2} µs",
             node.name,
             secs * 1e6,
-            act * 1e6
+            act * 1e6,
+            back * 1e6
         );
     }
 }
