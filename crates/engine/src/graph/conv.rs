@@ -2,9 +2,10 @@
 //! dilation and an optional bias. The forward pass is a direct loop ([`Conv::correlate`]): per
 //! sample and out-channel, each output value sums w · x over the in-channels and each one's taps
 //! in row-major order over the input laid out with its zero padding, in register blocks of
-//! consecutive values, then adds the bias. The backward pass builds the im2col matrix from its input and uses two
-//! matrix products. A conv1d is a conv2d of height 1; its weight keeps its own canonical shape
-//! o × i × k.
+//! consecutive values, then adds the bias (at these layers' sizes, a third of the time im2col
+//! and one matrix product take: benches/README.md, session 11). The backward pass builds the
+//! im2col matrix from its input and uses two matrix products. A conv1d is a conv2d of height 1;
+//! its weight keeps its own canonical shape o × i × k.
 //!
 //! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) or bias o moved
 //! changes out-channel o only; the hint recomputes that channel with the same loop and the moved
