@@ -14,7 +14,11 @@
 //!   engine's check before it went, benches/README.md);
 //! - `cnn-plumb` (only when named): plumb's side of `cnn` alone, the fastest of 10 runs, with a
 //!   fingerprint of the results and the count of each verdict — for before/after runs of two
-//!   builds on a busy machine, where NumPy's time is not needed.
+//!   builds on a busy machine, where NumPy's time is not needed;
+//! - `cnn-loop` (only when named): plumb's full check of the demo CNN 300 times and nothing
+//!   else, for a profiler (`perf record -g … cnn-loop --bench`);
+//! - `cnn-layers` (only when named): per tensor of the demo CNN, one entry's loss at ±h through
+//!   the hints, and each layer's forward pass and activation alone.
 //!
 //! Each NumPy side gets the same values (JSON on stdin) and returns its loss, which must equal
 //! plumb's: both sides compute the same function. One thread each (benches/graph.sh sets
@@ -217,6 +221,84 @@ fn cnn_plumb() {
     );
 }
 
+/// Per tensor of the demo CNN, the time of one entry's loss at ±h through the hints.
+fn cnn_layers() {
+    let (g, p, b) = description("examples/pump-cnn.toml", 32);
+    let (x, y) = (b.x.view(), b.y.view());
+    let trace: Trace<f64> = g.forward(&p, x);
+    let l2 = g.l2_sum(&p);
+    for (t, v) in p.iter().enumerate() {
+        let (secs, _) = best(50, || {
+            let mut s = 0.0;
+            for (k, &w) in v.iter().enumerate() {
+                for d in [1.0, -1.0] {
+                    let delta = d * Method::Central.default_step(w, f64::EPSILON);
+                    let moved = Moved {
+                        tensor: t,
+                        index: k,
+                        delta,
+                    };
+                    s += g.moved_loss(&p, x, &trace, y, l2, &moved).0;
+                }
+            }
+            s
+        });
+        println!(
+            "cnn-layers  {:<14} {:>4} entries: {:.2} µs per loss",
+            g.tensors()[t].name,
+            v.len(),
+            secs * 1e6 / (2 * v.len()) as f64
+        );
+    }
+    let (secs, _) = best(50, || g.forward(&p, x));
+    println!("cnn-layers  a whole forward pass: {:.2} µs", secs * 1e6);
+    for (j, node) in g.nodes().iter().enumerate() {
+        let input = if j == 0 {
+            x
+        } else {
+            trace.outputs[j - 1].view()
+        };
+        let skip = node
+            .layer
+            .tap()
+            .map(|t| trace.outputs[g.layer(t).unwrap()].view());
+        let layer = <f64 as plumb_engine::graph::LayerScalar>::layer(node.layer.as_ref());
+        let (secs, _) = best(200, || layer.forward(&p[node.tensors()], input, skip));
+        let (act, _) = best(200, || node.activation.apply(trace.steps[j].out.view()));
+        // The parameters' gradient alone: for a convolution, im2col and one product of the
+        // forward product's size, what an im2col + GEMM forward pass would cost at least.
+        let dout = trace.steps[j].out.view();
+        let (back, _) = best(200, || {
+            layer.backward(
+                &p[node.tensors()],
+                input,
+                &trace.steps[j],
+                dout,
+                None,
+                false,
+            )
+        });
+        println!(
+            "cnn-layers  {:<6} forward {:.2} µs, activation {:.2} µs, parameters' gradient {:.2} µs",
+            node.name,
+            secs * 1e6,
+            act * 1e6,
+            back * 1e6
+        );
+    }
+}
+
+/// The full check of the demo CNN over and over, for a profile of that alone.
+fn cnn_loop() {
+    let (g, p, b) = description("examples/pump-cnn.toml", 32);
+    let (t, r) = best(300, || full_check(&g, &p, &b));
+    println!(
+        "cnn-loop  full central check {:.2} ms (fastest of 300); {}",
+        t * 1e3,
+        common::summary(&r)
+    );
+}
+
 fn dense_graph(g: &Graph, p: &[ArrayD<f64>], b: &Batch, cfg: &CheckConfig) -> plumb_fd::GraphCheck {
     check_graph(g, p, b.x.view(), b.y.view(), cfg, &|_, _| {}).unwrap()
 }
@@ -349,6 +431,12 @@ fn main() {
     }
     if asked.iter().any(|a| a == "cnn-plumb") {
         cnn_plumb();
+    }
+    if asked.iter().any(|a| a == "cnn-layers") {
+        cnn_layers();
+    }
+    if asked.iter().any(|a| a == "cnn-loop") {
+        cnn_loop();
     }
     if asked.iter().any(|a| a == "dense-plumb") {
         dense_plumb();

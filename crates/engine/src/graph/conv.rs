@@ -1,10 +1,11 @@
 //! `conv1d` and `conv2d`: cross-correlation (the kernel is not turned) with stride, padding,
 //! dilation and an optional bias. The forward pass is a direct loop ([`Conv::correlate`]): per
-//! sample and out-channel, each in-channel's taps in row-major order, each tap adding w · x over
-//! the output rectangle it reaches inside the unpadded input (padding reads 0 and adds nothing),
-//! then the bias. The backward pass builds the im2col matrix from its input and uses two
-//! matrix products. A conv1d is a conv2d of height 1; its weight keeps its own canonical shape
-//! o × i × k.
+//! sample and out-channel, each output value sums w · x over the in-channels and each one's taps
+//! in row-major order over the input laid out with its zero padding, in register blocks of
+//! consecutive values, then adds the bias (at these layers' sizes, a third of the time im2col
+//! and one matrix product take: benches/README.md, session 11). The backward pass builds the
+//! im2col matrix from its input and uses two matrix products. A conv1d is a conv2d of height 1;
+//! its weight keeps its own canonical shape o × i × k.
 //!
 //! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) or bias o moved
 //! changes out-channel o only; the hint recomputes that channel with the same loop and the moved
@@ -24,7 +25,7 @@
 
 use ndarray::{Array2, ArrayD, ArrayView2, Axis, IxDyn};
 
-use super::window::{Scatter, Span, Window};
+use super::window::{Scatter, Window};
 use super::{
     Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
     unravel,
@@ -86,8 +87,6 @@ pub struct Conv {
     settings: ConvSettings,
     input: Shape,
     window: Window,
-    /// Each tap's reach over the output, for the direct loop (computed once).
-    spans: Vec<Span>,
 }
 
 const MISTAKES: &[&str] = &[
@@ -171,7 +170,6 @@ impl Conv {
         Ok(Conv {
             settings,
             input: *input,
-            spans: window.spans(),
             window,
         })
     }
@@ -190,95 +188,189 @@ impl Conv {
         [self.window.before, self.window.after]
     }
 
+    /// The padded input's height and width.
+    fn padded(&self) -> [usize; 2] {
+        let w = &self.window;
+        [0, 1].map(|a| w.before[a] + w.input[a] + w.after[a])
+    }
+
+    /// `x` (whole channels of one sample) laid out with its padding as zeros into `buf`.
+    fn pad_into<S: Scalar>(&self, x: &[S], buf: &mut Vec<S>) {
+        let w = &self.window;
+        let ([ph, pw], [iw, ip]) = (self.padded(), [w.input[1], w.in_positions()]);
+        let channels = x.len() / ip;
+        buf.clear();
+        buf.resize(channels * ph * pw, S::zero());
+        for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
+            for (y, xr) in xc.chunks_exact(iw).enumerate() {
+                let at = (y + w.before[0]) * pw + w.before[1];
+                bc[at..at + iw].copy_from_slice(xr);
+            }
+        }
+    }
+
     /// One sample's out-channel into `out` (its output positions): from 0, for each in-channel
-    /// and each tap in row-major order, w · x added over the tap's span, then the bias (last, so
-    /// that outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a
-    /// tie, as it does in exact arithmetic). `w` holds
-    /// the out-channel's in-channels × taps weights, `xi` the sample's input. Every pass that
-    /// computes a conv output value goes through here, so they all round alike. On x86-64
-    /// machines with AVX2 the loop is compiled for AVX2 as well; that build does the same IEEE
-    /// operations on each value (no fused multiply-add is enabled, and Rust never contracts a
-    /// product and a sum into one), so its results are bit for bit the same.
-    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
+    /// and each tap in row-major order, w · x added, then the bias (last, so that outputs with
+    /// equal sums stay equal when the bias moves: a max-pool tie above stays a tie, as it does
+    /// in exact arithmetic). `w` holds the out-channel's in-channels × taps weights, `xp` the
+    /// sample's input padded ([`Conv::pad_into`]). Every pass that computes a conv output value
+    /// goes through here, so they all round alike. On x86-64 machines with AVX2 the loop is
+    /// compiled for AVX2 as well; that build does the same IEEE operations on each value (no
+    /// fused multiply-add is enabled, and Rust never contracts a product and a sum into one),
+    /// so its results are bit for bit the same.
+    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, xi, out) };
+            unsafe { self.correlate_avx2(w, bias, xp, out) };
             return;
         }
-        self.correlate_loop(w, bias, xi, out);
+        self.correlate_loop(w, bias, xp, out);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn correlate_avx2<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
-        self.correlate_loop(w, bias, xi, out);
+    unsafe fn correlate_avx2<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
+        self.correlate_loop(w, bias, xp, out);
     }
 
     #[inline(always)]
-    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, xi: &[S], out: &mut [S]) {
-        let (taps, ip) = (self.window.taps(), self.window.in_positions());
-        out.fill(S::zero());
-        for (c, xc) in xi.chunks_exact(ip).enumerate() {
-            self.add_channel(&w[c * taps..(c + 1) * taps], xc, out);
-        }
+    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
+        self.sum_into(w, xp, out, true);
         if let Some(b) = bias {
             out.iter_mut().for_each(|v| *v += b);
         }
     }
 
-    /// Adds one in-channel's part to an out-channel's values: each tap in row-major order adding
-    /// w · x over its span. `wc` holds the channel's taps, `xc` its input positions.
+    /// Adds to each value of one out-channel `out` (from 0 when `fresh`, else from its values)
+    /// the products w · x of the in-channels `xp` holds (padded, one channel after another)
+    /// with their taps in `w`: per value, in-channel by in-channel, each tap in row-major order.
+    /// Consecutive values go in blocks whose partial sums stay in registers across the taps (a
+    /// pass over the row per tap was bound by its loads and stores). A tap in the padding adds
+    /// w · 0 = ±0, which leaves every sum as skipping it would (a sum that starts at +0 never
+    /// becomes −0, and s + ±0 = s otherwise), so the padding costs no test per tap; with a
+    /// weight that is not finite (w · 0 is NaN) the taps in the padding are skipped instead.
     #[inline(always)]
-    fn add_channel<S: Scalar>(&self, wc: &[S], xc: &[S], out: &mut [S]) {
-        let win = &self.window;
-        let (iw, ow) = (win.input[1], win.output[1]);
-        let [sy, sx] = win.stride;
-        for span in &self.spans {
-            let wv = wc[span.tap];
-            for (r, oy) in span.rows.clone().enumerate() {
-                let from = (span.y0 + r * sy) * iw + span.x0;
-                let to = &mut out[oy * ow + span.cols.start..oy * ow + span.cols.end];
-                if sx == 1 {
-                    for (o, &v) in to.iter_mut().zip(&xc[from..]) {
-                        *o += wv * v;
-                    }
-                } else {
-                    for (o, &v) in to.iter_mut().zip(xc[from..].iter().step_by(sx)) {
-                        *o += wv * v;
-                    }
+    fn sum_into<S: Scalar>(&self, w: &[S], xp: &[S], out: &mut [S], fresh: bool) {
+        let ow = self.window.output[1];
+        // w · 0 is ±0 (in every part of a complex or dual number) unless w is not finite.
+        let z = S::zero();
+        let finite = w.iter().all(|&v| (v * z + z).same_bits(z));
+        for (oy, row) in out.chunks_exact_mut(ow).enumerate() {
+            if !finite {
+                for (ox, v) in row.iter_mut().enumerate() {
+                    self.sum_skipping(w, xp, oy, ox, v, fresh);
                 }
+                continue;
+            }
+            let mut ox = 0;
+            while ox + 16 <= ow {
+                self.sum_block::<S, 16>(w, xp, oy, ox, &mut row[ox..ox + 16], fresh);
+                ox += 16;
+            }
+            if ox + 8 <= ow {
+                self.sum_block::<S, 8>(w, xp, oy, ox, &mut row[ox..ox + 8], fresh);
+                ox += 8;
+            }
+            if ox + 4 <= ow {
+                self.sum_block::<S, 4>(w, xp, oy, ox, &mut row[ox..ox + 4], fresh);
+                ox += 4;
+            }
+            while ox < ow {
+                self.sum_block::<S, 1>(w, xp, oy, ox, &mut row[ox..ox + 1], fresh);
+                ox += 1;
             }
         }
     }
 
-    /// One sample's output (every out-channel) moved by the change `dx` of in-channel `c` of
-    /// its input: [`Conv::add_channel`] of each out-channel's taps of `c`. `w` is the whole
-    /// weight, `row` the sample's output.
-    fn add_change<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
+    /// [`Conv::sum_into`] for B consecutive values of output row `oy` from column `ox0`.
+    #[inline(always)]
+    fn sum_block<S: Scalar, const B: usize>(
+        &self,
+        w: &[S],
+        xp: &[S],
+        oy: usize,
+        ox0: usize,
+        out: &mut [S],
+        fresh: bool,
+    ) {
+        let win = &self.window;
+        let ([ph, pw], taps, kw) = (self.padded(), win.taps(), win.kernel[1]);
+        let ([sy, sx], [dy, dx]) = (win.stride, win.dilation);
+        let out: &mut [S; B] = out.try_into().expect("a block of B values");
+        let mut acc = if fresh { [S::zero(); B] } else { *out };
+        for (wc, xc) in w.chunks_exact(taps).zip(xp.chunks_exact(ph * pw)) {
+            for (ky, wr) in wc.chunks_exact(kw).enumerate() {
+                let row = &xc[(oy * sy + ky * dy) * pw..][..pw];
+                for (kx, &wv) in wr.iter().enumerate() {
+                    let x0 = ox0 * sx + kx * dx;
+                    if sx == 1 {
+                        let xs: &[S; B] = row[x0..x0 + B].try_into().expect("inside the row");
+                        for (a, &v) in acc.iter_mut().zip(xs) {
+                            *a += wv * v;
+                        }
+                    } else {
+                        for (j, a) in acc.iter_mut().enumerate() {
+                            *a += wv * row[x0 + j * sx];
+                        }
+                    }
+                }
+            }
+        }
+        *out = acc;
+    }
+
+    /// [`Conv::sum_into`] for the one value at output position (oy, ox), the taps in the
+    /// padding skipped.
+    #[cold]
+    fn sum_skipping<S: Scalar>(
+        &self,
+        w: &[S],
+        xp: &[S],
+        oy: usize,
+        ox: usize,
+        out: &mut S,
+        fresh: bool,
+    ) {
+        let win = &self.window;
+        let ([ph, pw], taps, iw) = (self.padded(), win.taps(), win.input[1]);
+        let mut acc = if fresh { S::zero() } else { *out };
+        for (wc, xc) in w.chunks_exact(taps).zip(xp.chunks_exact(ph * pw)) {
+            win.for_each_tap(oy, ox, |t, q| {
+                let (y, x) = (q / iw + win.before[0], q % iw + win.before[1]);
+                acc += wc[t] * xc[y * pw + x];
+            });
+        }
+        *out = acc;
+    }
+
+    /// One sample's output (every out-channel) moved by the change `dp` of in-channel `c` of
+    /// its input (padded): [`Conv::sum_into`] of each out-channel's taps of `c` onto its
+    /// values. `w` is the whole weight, `row` the sample's output.
+    fn add_change<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.add_change_avx2(w, c, dx, row) };
+            unsafe { self.add_change_avx2(w, c, dp, row) };
             return;
         }
-        self.add_change_loop(w, c, dx, row);
+        self.add_change_loop(w, c, dp, row);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
-        self.add_change_loop(w, c, dx, row);
+    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
+        self.add_change_loop(w, c, dp, row);
     }
 
     #[inline(always)]
-    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, dx: &[S], row: &mut [S]) {
+    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
         let taps = self.window.taps();
         let per = self.window.channels * taps;
         let op = self.window.out_positions();
         for (o, out) in row.chunks_exact_mut(op).enumerate() {
             let at = o * per + c * taps;
-            self.add_channel(&w[at..at + taps], dx, out);
+            self.sum_into(&w[at..at + taps], dp, out, false);
         }
     }
 
@@ -399,10 +491,12 @@ impl<S: LayerScalar> Layer<S> for Conv {
             self.window.channels * self.window.in_positions(),
         );
         let mut out = vec![S::zero(); m * o * op];
+        let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
+            self.pad_into(xi, &mut xp);
             for (c, channel) in row.chunks_exact_mut(op).enumerate() {
                 let b = bias.map(|b| b[c]);
-                self.correlate(&ws[c * per..(c + 1) * per], b, xi, channel);
+                self.correlate(&ws[c * per..(c + 1) * per], b, &xp, channel);
             }
         }
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
@@ -499,8 +593,10 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut out = base.out.clone();
         let values = out.as_slice_mut()?;
         let width = self.settings.channels * op;
+        let mut xp = Vec::new();
         for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
-            self.correlate(&w, b, xi, &mut row[channel * op..(channel + 1) * op]);
+            self.pad_into(xi, &mut xp);
+            self.correlate(&w, b, &xp, &mut row[channel * op..(channel + 1) * op]);
         }
         Some(Step::plain(out))
     }
@@ -530,7 +626,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut out = base.out.clone();
         let width = self.settings.channels * self.window.out_positions();
         let values = out.as_slice_mut()?;
-        let mut dx = vec![S::zero(); ip];
+        let (mut dx, mut dp) = (vec![S::zero(); ip], Vec::new());
         let sample = channels * ip;
         for (i, (row, bi)) in values
             .chunks_exact_mut(width)
@@ -547,7 +643,8 @@ impl<S: LayerScalar> Layer<S> for Conv {
                 for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
                     *d = a - b;
                 }
-                self.add_change(ws, c, &dx, row);
+                self.pad_into(&dx, &mut dp);
+                self.add_change(ws, c, &dp, row);
             }
         }
         Some(Step::plain(out))

@@ -1,7 +1,8 @@
 //! `global-avg-pool`: each channel's mean over its positions, [channels, …] → [channels].
 
-use ndarray::{Array2, ArrayD, ArrayView1, ArrayView2};
+use ndarray::{Array2, ArrayD, ArrayView2};
 
+use super::norm::lane_sum;
 use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
 
 /// A global average pool bound to its input shape.
@@ -29,23 +30,26 @@ impl GlobalAvgPool {
 }
 
 impl GlobalAvgPool {
-    /// Channel c's mean over its positions in one sample's row (the full pass and the
-    /// channel-wise update sum in the same order).
-    fn mean<S: LayerScalar>(&self, row: ArrayView1<S>, c: usize) -> S {
+    /// A channel's mean over its positions `values` (the full pass and the channel-wise update
+    /// both go through here): summed in partial sums ([`lane_sum`]), not waiting on one
+    /// accumulator per value.
+    fn mean<S: LayerScalar>(&self, values: &[S]) -> S {
         let p = self.positions;
-        // The channel's slice where the row has one (the graph's batches do): an iterator that
-        // skips to it walks every value before it.
-        let sum = match row.as_slice() {
-            Some(values) => values[c * p..(c + 1) * p]
-                .iter()
-                .fold(S::zero(), |acc, &v| acc + v),
-            None => row
-                .iter()
-                .skip(c * p)
-                .take(p)
-                .fold(S::zero(), |acc, &v| acc + v),
-        };
-        sum * (S::one() / S::from_f64(p as f64))
+        lane_sum(std::iter::once(values), |v| v) * (S::one() / S::from_f64(p as f64))
+    }
+
+    /// Sample i's channels `channels` of a standard-layout batch `xs` into `out` (sample i's
+    /// outputs).
+    fn means<S: LayerScalar>(
+        &self,
+        xi: &[S],
+        channels: impl Iterator<Item = usize>,
+        out: &mut [S],
+    ) {
+        let p = self.positions;
+        for c in channels {
+            out[c] = self.mean(&xi[c * p..(c + 1) * p]);
+        }
     }
 }
 
@@ -65,8 +69,17 @@ impl Kind for GlobalAvgPool {
 
 impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
     fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
-        let out =
-            Array2::from_shape_fn((x.nrows(), self.channels), |(i, c)| self.mean(x.row(i), c));
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let mut out = Array2::zeros((x.nrows(), self.channels));
+        let rows = out.as_slice_mut().expect("made standard");
+        let sample = self.channels * self.positions;
+        for (o, xi) in rows
+            .chunks_exact_mut(self.channels)
+            .zip(xs.chunks_exact(sample))
+        {
+            self.means(xi, 0..self.channels, o);
+        }
         Step::plain(out)
     }
 
@@ -78,11 +91,16 @@ impl<S: LayerScalar> Layer<S> for GlobalAvgPool {
         base: &Step<S>,
         changed: &[usize],
     ) -> Option<Step<S>> {
+        let x = x.as_standard_layout();
+        let xs = x.as_slice()?;
         let mut out = base.out.clone();
-        for (i, mut row) in out.outer_iter_mut().enumerate() {
-            for &c in changed {
-                row[c] = self.mean(x.row(i), c);
-            }
+        let rows = out.as_slice_mut()?;
+        let sample = self.channels * self.positions;
+        for (o, xi) in rows
+            .chunks_exact_mut(self.channels)
+            .zip(xs.chunks_exact(sample))
+        {
+            self.means(xi, changed.iter().copied(), o);
         }
         Some(Step::plain(out))
     }

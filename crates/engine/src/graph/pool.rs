@@ -138,38 +138,82 @@ impl Pool {
     ) -> usize {
         let w = &self.window;
         let base = (c * w.in_positions()) as u32;
+        if self.op == PoolKind::Max && w.kernel[0] == 1 {
+            match w.kernel[1] {
+                2 => return self.max_rows::<S, 2>(xc, base, out, branches),
+                3 => return self.max_rows::<S, 3>(xc, base, out, branches),
+                _ => {}
+            }
+        }
         let scale = S::one() / S::from_f64(w.taps() as f64);
+        let ([kh, kw], [sy, sx], iw) = (w.kernel, w.stride, w.input[1]);
         let mut ties = 0;
+        // A pool has no padding and its windows fit the input (Pool::new), so every tap of every
+        // window is inside: no test per tap. Taps in row-major order.
         for oy in 0..w.output[0] {
             for ox in 0..w.output[1] {
                 let o = oy * w.output[1] + ox;
+                let corner = oy * sy * iw + ox * sx;
+                let rows = (0..kh).map(|ky| &xc[corner + ky * iw..][..kw]);
                 match self.op {
                     PoolKind::Avg => {
                         let mut sum = S::zero();
-                        w.for_each_tap(oy, ox, |_, q| sum += xc[q]);
+                        rows.flatten().for_each(|&v| sum += v);
                         out[o] = sum * scale;
                     }
                     PoolKind::Max => {
-                        let mut best: Option<usize> = None;
-                        let mut tied = false;
-                        w.for_each_tap(oy, ox, |_, q| {
-                            let v = xc[q].re();
-                            match best {
-                                Some(b) if v > xc[b].re() => {
-                                    best = Some(q);
-                                    tied = false;
-                                }
-                                Some(b) if v == xc[b].re() => tied = true,
-                                Some(_) => {}
-                                None => best = Some(q),
+                        // Selects, not branches: which value wins is data, and a branch on it
+                        // was mispredicted half the time.
+                        let (mut best, mut at, mut tied) = (xc[corner].re(), corner, false);
+                        for (ky, row) in rows.enumerate() {
+                            for (kx, v) in row.iter().enumerate() {
+                                let (v, first) = (v.re(), ky == 0 && kx == 0);
+                                let (above, level) = (v > best, v == best && !first);
+                                tied = !above & (tied | level);
+                                at = if above { corner + ky * iw + kx } else { at };
+                                best = if above { v } else { best };
                             }
-                        });
-                        let q = best.expect("a window holds at least one position");
-                        out[o] = xc[q];
-                        branches[o] = base + q as u32;
+                        }
+                        out[o] = xc[at];
+                        branches[o] = base + at as u32;
                         ties += tied as usize;
                     }
                 }
+            }
+        }
+        ties
+    }
+
+    /// [`Pool::channel`] for a max-pool whose windows are K values of one row (the 1-D pools
+    /// of 2 and 3): the same choices, with the window's length known to the compiler (the
+    /// general loop's bookkeeping cost more than the comparisons).
+    fn max_rows<S: LayerScalar, const K: usize>(
+        &self,
+        xc: &[S],
+        base: u32,
+        out: &mut [S],
+        branches: &mut [u32],
+    ) -> usize {
+        let w = &self.window;
+        let ([sy, sx], iw, ow) = (w.stride, w.input[1], w.output[1]);
+        let mut ties = 0;
+        let rows = out.chunks_exact_mut(ow).zip(branches.chunks_exact_mut(ow));
+        for (oy, (out, branches)) in rows.enumerate() {
+            let row = &xc[oy * sy * iw..][..iw];
+            for (ox, (o, b)) in out.iter_mut().zip(branches.iter_mut()).enumerate() {
+                let start = ox * sx;
+                let window: &[S; K] = row[start..start + K].try_into().expect("inside");
+                let (mut best, mut at, mut tied) = (window[0].re(), 0, false);
+                for (k, v) in window.iter().enumerate().skip(1) {
+                    let v = v.re();
+                    let above = v > best;
+                    tied = !above & (tied | (v == best));
+                    at = if above { k } else { at };
+                    best = if above { v } else { best };
+                }
+                *o = window[at];
+                *b = base + (oy * sy * iw + start + at) as u32;
+                ties += tied as usize;
             }
         }
         ties

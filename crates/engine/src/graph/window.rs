@@ -1,9 +1,6 @@
 //! Sliding windows over [channels, height, width] samples: the output-size arithmetic shared by
-//! convolution and pooling, each kernel tap's reach over the output (the direct loops' spans), and
-//! the window ↔ column copies (im2col) the convolution's backward pass uses. A signal is an image
-//! of height 1.
-
-use std::ops::Range;
+//! convolution and pooling, the taps of each output position, and the window ↔ column copies
+//! (im2col) the convolution's backward pass uses. A signal is an image of height 1.
 
 use ndarray::{Array2, ArrayView2};
 
@@ -40,19 +37,6 @@ pub(crate) struct Window {
     pub before: [usize; 2],
     pub after: [usize; 2],
     pub output: [usize; 2],
-}
-
-/// One kernel tap's reach: the output rectangle (`rows` × `cols`) whose windows read this tap
-/// inside the unpadded input, and the input row and column the rectangle's first corner reads
-/// (the next output along an axis reads one stride further).
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub(crate) struct Span {
-    /// The tap, row-major over the kernel.
-    pub tap: usize,
-    pub rows: Range<usize>,
-    pub cols: Range<usize>,
-    pub y0: usize,
-    pub x0: usize,
 }
 
 /// How a column of window gradients goes back into the input.
@@ -130,40 +114,6 @@ impl Window {
 
     pub fn taps(&self) -> usize {
         self.kernel[0] * self.kernel[1]
-    }
-
-    /// The spans of the taps that reach the unpadded input anywhere, taps in row-major order.
-    pub fn spans(&self) -> Vec<Span> {
-        // Output o reads tap k at padded position o·s + k·d: inside when before ≤ it < before + in.
-        let reach = |a: usize, k: usize| -> Option<(Range<usize>, usize)> {
-            let (s, before) = (self.stride[a], self.before[a]);
-            let offset = k * self.dilation[a];
-            let last = before + self.input[a] - 1;
-            if offset > last {
-                return None;
-            }
-            let lo = before.saturating_sub(offset).div_ceil(s);
-            let hi = ((last - offset) / s + 1).min(self.output[a]);
-            (lo < hi).then(|| (lo..hi, lo * s + offset - before))
-        };
-        let mut spans = Vec::new();
-        for ky in 0..self.kernel[0] {
-            let Some((rows, y0)) = reach(0, ky) else {
-                continue;
-            };
-            for kx in 0..self.kernel[1] {
-                if let Some((cols, x0)) = reach(1, kx) {
-                    spans.push(Span {
-                        tap: ky * self.kernel[1] + kx,
-                        rows: rows.clone(),
-                        cols,
-                        y0,
-                        x0,
-                    });
-                }
-            }
-        }
-        spans
     }
 
     /// Calls `f(kernel tap, input position)` for every tap of output position (oy, ox) that

@@ -154,6 +154,39 @@ fn batch_norm_normalises_with_the_biased_batch_variance() {
     }
 }
 
+/// Zero padding (Dumoulin & Visin, arXiv 1603.07285, §2: the input is extended with zeros) adds
+/// no term where a tap falls in the padding: with an infinite weight, IEEE's ∞ · 0 is NaN, so a
+/// loop that multiplies the padding through must skip it for such a weight. Worked by hand:
+/// x = [1, 2, 3], w = [∞, 1, 1], padding 1: y0 = 1·1 + 1·2 = 3 (the ∞ tap reads the padding),
+/// y1 = ∞·1 + 2 + 3 = ∞, y2 = ∞·2 + 3 = ∞ (the last tap reads the padding).
+#[test]
+fn a_tap_in_the_zero_padding_adds_nothing_even_for_an_infinite_weight() {
+    let mut settings = ConvSettings::conv1d(1, 3);
+    settings.padding = Padding::Explicit([0, 1]);
+    settings.bias = false;
+    let input = Shape::Signal {
+        channels: 1,
+        length: 3,
+    };
+    let conv = Conv::new(&settings, &input).unwrap();
+    let w = ArrayD::from_shape_vec(IxDyn(&[1, 1, 3]), vec![f64::INFINITY, 1.0, 1.0]).unwrap();
+    let x = Array2::from_shape_vec((1, 3), vec![1.0, 2.0, 3.0]).unwrap();
+    let y = Layer::<f64>::forward(&conv, std::slice::from_ref(&w), x.view(), None).out;
+    assert_eq!(y.row(0).to_vec(), vec![3.0, f64::INFINITY, f64::INFINITY]);
+    // The same in f32.
+    let w = w.mapv(|v| v as f32);
+    let y = Layer::<f32>::forward(&conv, &[w], x.mapv(|v| v as f32).view(), None).out;
+    assert_eq!(y.row(0).to_vec(), vec![3.0, f32::INFINITY, f32::INFINITY]);
+    let w = ArrayD::from_shape_vec(IxDyn(&[1, 1, 3]), vec![1.0, 1.0, f64::NEG_INFINITY]).unwrap();
+    let y = Layer::<f64>::forward(&conv, &[w], x.view(), None).out;
+    // The infinite tap last: y0 = 1 + (−∞)·2, y1 = 1 + 2 + (−∞)·3, y2 = 2 + 3 (the −∞ tap
+    // reads the padding).
+    assert_eq!(
+        y.row(0).to_vec(),
+        vec![f64::NEG_INFINITY, f64::NEG_INFINITY, 5.0]
+    );
+}
+
 /// He et al. 2015 ("Delving deep into rectifiers", §2.2): a convolution's fan-in is the input
 /// channels times the kernel area; the bias, scales and shifts never decay under L2.
 #[test]
@@ -229,6 +262,33 @@ fn max_pool_ties_take_the_first_maximum_and_are_reported() {
     let a = g.branches(&g.forward(&[], ndarray::array![[0.5, -1e-12]].view()));
     let c = g.branches(&g.forward(&[], ndarray::array![[0.5, 1e-12]].view()));
     assert_eq!(a.changed(&c), vec![0]);
+}
+
+/// The same rule on overlapping windows of three, worked by hand: a later equal value is a tie,
+/// a later greater one takes the window and clears the tie. Channel 0 = [2, 1, 2, 3, 3]: windows
+/// [2, 1, 2] → position 0, tied; [1, 2, 3] → 3; [2, 3, 3] → 3, tied. Channel 1 = [1, 1, 2, 0, 0]
+/// (positions 5–9): [1, 1, 2] → 7, the early tie cleared; [1, 2, 0] → 7; [2, 0, 0] → 7.
+#[test]
+fn max_pool_windows_of_three_take_the_first_maximum_and_count_ties() {
+    let input = Shape::Signal {
+        channels: 2,
+        length: 5,
+    };
+    let pool = Pool::new(PoolKind::Max, 1, [1, 3], [1, 1], &input).unwrap();
+    let x = ndarray::array![[2.0, 1.0, 2.0, 3.0, 3.0, 1.0, 1.0, 2.0, 0.0, 0.0]];
+    for step in [Layer::<f64>::forward(&pool, &[], x.view(), None), {
+        let s = Layer::<f32>::forward(&pool, &[], x.mapv(|v| v as f32).view(), None);
+        plumb_engine::graph::Step {
+            out: s.out.mapv(f64::from),
+            saved: Vec::new(),
+            branches: s.branches,
+            ties: s.ties,
+        }
+    }] {
+        assert_eq!(step.branches, vec![0, 3, 3, 7, 7, 7]);
+        assert_eq!(step.out.row(0).to_vec(), vec![2.0, 3.0, 3.0, 2.0, 2.0, 2.0]);
+        assert_eq!(step.ties, 2);
+    }
 }
 
 fn layer_error(e: Result<&mut GraphBuilder, GraphError>) -> ShapeError {
