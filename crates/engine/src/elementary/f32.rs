@@ -189,6 +189,16 @@ super::dispatched!(
 );
 
 super::dispatched!(
+    /// [`ln_f32`] of every value, in place: the f32 log-sum-exp of the cross-entropy.
+    ln_in_place_f32,
+    ln_plain_f32,
+    ln_avx2_f32,
+    ln_avx512_f32,
+    f32,
+    ln_f32
+);
+
+super::dispatched!(
     /// [`sigmoid_f32`] of every value, in place: the loop of the engine's f32 sigmoid layers.
     sigmoid_in_place_f32,
     sigmoid_plain_f32,
@@ -424,6 +434,14 @@ mod tests {
             f32
         );
         same_bits_every_way(&values, bits, tanh_f32, &loops);
+        let loops = builds!(
+            ln_plain_f32,
+            ln_in_place_f32,
+            ln_avx2_f32,
+            ln_avx512_f32,
+            f32
+        );
+        same_bits_every_way(&values, bits, ln_f32, &loops);
         let loops = builds!(
             sigmoid_plain_f32,
             sigmoid_in_place_f32,

@@ -1,5 +1,4 @@
-//! tanh, eˣ and the logistic function for f64, and eˣ, ln, tanh and the logistic function for
-//! f32, written out so that they are cheap enough to run a few thousand times per perturbed loss.
+//! tanh, eˣ, ln and the logistic function for f64 and f32, written out so that they are cheap enough to run a few thousand times per perturbed loss.
 //!
 //! A finite-difference check of a tanh network spends most of its time in tanh: moving one weight
 //! of layer j changes every pre-activation of layer j + 1, and each must go through tanh again;
@@ -22,9 +21,10 @@ mod f32;
 mod f64;
 
 pub use self::f32::{
-    exp_f32, exp_in_place_f32, ln_f32, sigmoid_in_place_f32, tanh_f32, tanh_in_place_f32,
+    exp_f32, exp_in_place_f32, ln_f32, ln_in_place_f32, sigmoid_in_place_f32, tanh_f32,
+    tanh_in_place_f32,
 };
-pub use self::f64::{exp, exp_in_place, sigmoid_in_place, tanh, tanh_in_place};
+pub use self::f64::{exp, exp_in_place, ln, ln_in_place, sigmoid_in_place, tanh, tanh_in_place};
 
 /// A slice loop over a function of one value (`$f`), compiled three times: plainly (`$plain`),
 /// for AVX2 (`$avx2`) and for AVX-512 (`$avx512`); `$name` runs the widest the CPU has.
