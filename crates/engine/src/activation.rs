@@ -197,6 +197,7 @@ impl Activation {
         match self {
             Activation::Softmax => panic!("softmax applies to whole rows, not to some values"),
             Activation::Tanh => S::tanh_all(z),
+            Activation::Sigmoid => S::sigmoid_all(z),
             // A select, not a branch, so that the loop vectorises; NaN and -0 go to 0 as well.
             Activation::Relu => z
                 .iter_mut()
@@ -363,6 +364,27 @@ mod tests {
         assert_eq!(Activation::Tanh.value(0.0), 0.0);
         assert!((Activation::Softplus.value(0.0) - std::f64::consts::LN_2).abs() < 1e-16);
         assert_eq!(Activation::Gelu.value(0.0), 0.0);
+    }
+
+    // The slice loops of tanh and the sigmoid (elementary/, SIMD) against the per-element
+    // `value`: the incremental paths mix the two, so they must agree bit for bit.
+    #[test]
+    fn slice_loops_give_the_bits_of_value() {
+        let z: Vec<f64> = (0..1000)
+            .map(|i| (f64::from(i) * 0.61).sin() * 40.0)
+            .chain([0.0, -0.0, 800.0, -800.0, f64::NAN, f64::INFINITY, -1e-300])
+            .collect();
+        for act in [Activation::Sigmoid, Activation::Tanh] {
+            let mut wide = z.clone();
+            act.apply_values(&mut wide);
+            let mut narrow: Vec<f32> = z.iter().map(|&v| v as f32).collect();
+            let expected32: Vec<u32> = narrow.iter().map(|&v| act.value(v).to_bits()).collect();
+            act.apply_values(&mut narrow);
+            for (i, &v) in z.iter().enumerate() {
+                assert_eq!(wide[i].to_bits(), act.value(v).to_bits(), "{act} at {v:e}");
+                assert_eq!(narrow[i].to_bits(), expected32[i], "{act} f32 at {v:e}");
+            }
+        }
     }
 
     #[test]

@@ -72,20 +72,12 @@ impl Loss {
         let mut total = S::zero();
         match (self, output) {
             (Loss::CrossEntropy, Activation::Softmax) => {
-                // Every row's shifted exponentials at once, in one loop the scalar can run wide.
-                let (shifts, exps) = shifted_exps(z);
-                for (((zrow, yrow), erow), shift) in z
-                    .axis_iter(Axis(0))
-                    .zip(y.axis_iter(Axis(0)))
-                    .zip(exps.axis_iter(Axis(0)))
-                    .zip(shifts)
-                {
-                    let sum = erow.iter().fold(S::zero(), |acc, &e| acc + e);
-                    let lse = shift + sum.ln();
-                    for (&zv, &yv) in zrow.iter().zip(yrow.iter()) {
-                        total += yv * (lse - zv);
-                    }
-                }
+                assert_eq!(z.dim(), y.dim(), "one target per output");
+                let width = z.ncols();
+                let (z, y) = (z.as_standard_layout(), y.as_standard_layout());
+                let (z, y) = (z.as_slice(), y.as_slice());
+                let (z, y) = (z.expect("standard layout"), y.expect("standard layout"));
+                total = softmax_cross_entropy(z, y, width);
             }
             (Loss::CrossEntropy, Activation::Sigmoid) => {
                 Zip::from(z)
@@ -171,24 +163,42 @@ impl fmt::Display for Loss {
     }
 }
 
-/// Per row, the shift by its largest real part (so that nothing overflows, 0 when that is not
-/// finite) and e^(z − shift) of each value: the terms of the row's log-sum-exp, ln Σ eᶻ =
-/// shift + ln Σ e^(z − shift).
-fn shifted_exps<S: Scalar>(z: ArrayView2<S>) -> (Vec<S>, Array2<S>) {
+/// Σᵢ Σₖ yᵢₖ · (lseᵢ − zᵢₖ) over rows of `width` values, lseᵢ = ln Σₖ e^zᵢₖ computed as
+/// shift + ln Σₖ e^(zᵢₖ − shift), the shift the row's largest real part (so that nothing
+/// overflows; 0 when that is not finite). The exponentials of all rows and then the logarithms
+/// of all sums in one slice loop each, which the scalar can run wide.
+fn softmax_cross_entropy<S: Scalar>(z: &[S], y: &[S], width: usize) -> S {
+    let mut total = S::zero();
+    if width == 0 {
+        return total;
+    }
     let shifts: Vec<S> = z
-        .axis_iter(Axis(0))
+        .chunks_exact(width)
         .map(|row| {
             let shift = row.iter().fold(f64::NEG_INFINITY, |acc, v| acc.max(v.re()));
             S::from_f64(if shift.is_finite() { shift } else { 0.0 })
         })
         .collect();
-    let mut exps = z.to_owned();
-    for (mut row, &shift) in exps.axis_iter_mut(Axis(0)).zip(&shifts) {
-        row.mapv_inplace(|v| v - shift);
+    let mut exps = z.to_vec();
+    for (row, &shift) in exps.chunks_exact_mut(width).zip(&shifts) {
+        row.iter_mut().for_each(|v| *v -= shift);
     }
-    match exps.as_slice_mut() {
-        Some(values) => S::exp_all(values),
-        None => exps.mapv_inplace(Scalar::exp),
+    S::exp_all(&mut exps);
+    let mut logs: Vec<S> = exps
+        .chunks_exact(width)
+        .map(|row| row.iter().fold(S::zero(), |acc, &e| acc + e))
+        .collect();
+    S::ln_all(&mut logs);
+    for (((zrow, yrow), &shift), &log) in z
+        .chunks_exact(width)
+        .zip(y.chunks_exact(width))
+        .zip(&shifts)
+        .zip(&logs)
+    {
+        let lse = shift + log;
+        for (&zv, &yv) in zrow.iter().zip(yrow) {
+            total += yv * (lse - zv);
+        }
     }
-    (shifts, exps)
+    total
 }

@@ -30,10 +30,23 @@ pub trait Scalar:
             *v = v.tanh();
         }
     }
-    /// eˣ of every value in place (f32 has a faster loop than one call per value).
+    /// eˣ of every value in place (f64 and f32 have faster loops than one call per value).
     fn exp_all(values: &mut [Self]) {
         for v in values {
             *v = v.exp();
+        }
+    }
+    /// ln of every value in place (f64 and f32 have faster loops than one call per value).
+    fn ln_all(values: &mut [Self]) {
+        for v in values {
+            *v = v.ln();
+        }
+    }
+    /// The logistic function of every value in place, bit for bit what the engine's `sigmoid`
+    /// gives on each (f64 and f32 have faster loops).
+    fn sigmoid_all(values: &mut [Self]) {
+        for v in values {
+            *v = crate::activation::sigmoid(*v);
         }
     }
     /// The machine epsilon of the underlying real type.
@@ -87,15 +100,24 @@ macro_rules! real_scalar {
     };
 }
 
-// f64's tanh and f32's exp, ln and tanh are the engine's own (elementary.rs): a finite-difference
-// check spends most of its time there, and an f32 check must not cost more than an f64 one.
+// exp, ln and tanh of f64 and f32 are the engine's own (elementary/): a finite-difference check
+// spends most of its time there, and an f32 check must not cost more than an f64 one.
 real_scalar!(
     f64,
-    f64::exp,
-    f64::ln,
+    crate::elementary::exp,
+    crate::elementary::ln,
     crate::elementary::tanh,
     fn tanh_all(values: &mut [Self]) {
         crate::elementary::tanh_in_place(values)
+    },
+    fn exp_all(values: &mut [Self]) {
+        crate::elementary::exp_in_place(values)
+    },
+    fn ln_all(values: &mut [Self]) {
+        crate::elementary::ln_in_place(values)
+    },
+    fn sigmoid_all(values: &mut [Self]) {
+        crate::elementary::sigmoid_in_place(values)
     }
 );
 real_scalar!(
@@ -108,6 +130,12 @@ real_scalar!(
     },
     fn exp_all(values: &mut [Self]) {
         crate::elementary::exp_in_place_f32(values)
+    },
+    fn ln_all(values: &mut [Self]) {
+        crate::elementary::ln_in_place_f32(values)
+    },
+    fn sigmoid_all(values: &mut [Self]) {
+        crate::elementary::sigmoid_in_place_f32(values)
     }
 );
 
