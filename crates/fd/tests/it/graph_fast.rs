@@ -5,8 +5,10 @@
 //! plain side compares a whole pass's branches with the base's), and the loss's round-off
 //! magnitude is the same, so the two differ only in how each loss is computed.
 //!
-//! - Directions go to the graph as the vectors they are: the same losses bit for bit, so every
-//!   direction's figures and verdict are equal.
+//! - Directions go to the graph as the vectors they are: the same data term bit for bit, and
+//!   the L2 term as the base's Σ w² plus the change of the moved entries, where the plain path
+//!   sums Σ w² afresh. The two L2 sums differ by rounding far below the loss's last place on
+//!   these networks, so the losses, and every direction's figures and verdict, are equal.
 //! - A convolution or dense layer above a moved entry updates by the channels that changed
 //!   (`Layer::forward_units`), equal to a whole pass up to rounding: the same verdict at every
 //!   coordinate, the estimates within their bounds of each other.
