@@ -148,18 +148,40 @@ impl Kind for Dense {
 }
 
 impl<S: LayerScalar> Layer<S> for Dense {
-    fn forward(&self, params: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+    fn forward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+    ) -> Step<S> {
+        self.forward_into(params, x, skip, &mut Vec::new())
+    }
+
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
         let w = params[0]
             .view()
             .into_dimensionality::<Ix2>()
             .expect("weight");
         let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
         let rows = self.rows(x);
-        // The bias first and the product added to it: one pass over z.
-        let mut z = b
-            .broadcast((rows.nrows(), self.units))
-            .expect("one bias per unit")
-            .to_owned();
+        // The bias in every row first and the product added to it: one pass over z.
+        let mut z = std::mem::take(buffer);
+        z.clear();
+        z.reserve(rows.nrows() * self.units);
+        for _ in 0..rows.nrows() {
+            match b.as_slice() {
+                Some(bias) => z.extend_from_slice(bias),
+                None => z.extend(b.iter().copied()),
+            }
+        }
+        let mut z =
+            Array2::from_shape_vec((rows.nrows(), self.units), z).expect("one bias per unit");
         add_matmul(&mut z, rows, w.t());
         let m = x.nrows();
         let out = reshape(z, (m, self.output().size()));

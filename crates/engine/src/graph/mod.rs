@@ -240,6 +240,20 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         skip: Option<ArrayView2<S>>,
     ) -> Step<S>;
 
+    /// [`forward`](Layer::forward) with its output written into `buffer` (any length and
+    /// contents on entry) when the kind can: what the graph's perturbed passes call with a
+    /// [`Workspace`]'s buffer. The same values as `forward`; by default that, `buffer` unused.
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
+        let _ = buffer;
+        self.forward(params, x, skip)
+    }
+
     /// The gradients of the layer's parameters and input from `dout`, the gradient of its output.
     /// `mistake`, one of the kind's [catalogued codes](Kind::mistakes), asks for the gradient that
     /// mistake would produce instead. `need_input` false says nobody reads the input gradient:

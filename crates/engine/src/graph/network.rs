@@ -813,7 +813,7 @@ impl Graph {
             let own = &params[node.tensors()];
             if let (Some((c, now)), true) = (&fresh, is_next) {
                 let (step, base_input) = (&base.steps[j], base.outputs[below].view());
-                let mut buffer = ws.take(0);
+                let mut buffer = ws.take(step.out.len());
                 let units = layer.forward_units_into(
                     own,
                     base_input,
@@ -864,9 +864,9 @@ impl Graph {
                     let was = self.nodes[j - 1].layer.output();
                     let mut units = None;
                     if let Some(c) = differs.as_deref().filter(|_| node.tap.is_none()) {
-                        let mut now = ws.take(0);
+                        let mut now = ws.take(m * was.size() / was.feature_axis().1 * c.len());
                         gather_into(was, m, c, &outputs[j - 1 - from], &mut now);
-                        let mut buffer = ws.take(0);
+                        let mut buffer = ws.take(step.out.len());
                         units =
                             layer.forward_units_into(own, base_input, step, c, &now, &mut buffer);
                         ws.give(buffer);
@@ -875,10 +875,13 @@ impl Graph {
                     if let Some(set) = differs {
                         ws.give_set(set);
                     }
-                    (
-                        units.unwrap_or_else(|| layer.forward(own, input, skip)),
-                        None,
-                    )
+                    let step = units.unwrap_or_else(|| {
+                        let mut buffer = ws.take(m * node.layer.output().size());
+                        let step = layer.forward_into(own, input, skip, &mut buffer);
+                        ws.give(buffer);
+                        step
+                    });
+                    (step, None)
                 }
             };
             let (step, a) = self.finish(ws, base, j, step, now.as_deref(), output_activation);
@@ -951,7 +954,7 @@ impl Graph {
             return self.activate(node, z);
         }
         let shape = node.layer.output();
-        let mut now = ws.take(0);
+        let mut now = ws.take(z.len() / shape.feature_axis().1 * changed.len());
         gather_into(shape, z.nrows(), changed, z, &mut now);
         node.activation.apply_values(&mut now);
         let mut a = ws.copy_of(base);
@@ -1486,11 +1489,16 @@ impl<S: Copy> Workspace<S> {
         self.tail.as_ref()
     }
 
-    /// An empty buffer, one that holds at least `len` values when a spare does.
+    /// An empty buffer: the smallest spare that holds `len` values, else the largest (which
+    /// grows), else a new one.
     fn take(&mut self, len: usize) -> Vec<S> {
-        let mut v = match self.spare.iter().position(|v| v.capacity() >= len) {
+        let fits = (0..self.spare.len())
+            .filter(|&i| self.spare[i].capacity() >= len)
+            .min_by_key(|&i| self.spare[i].capacity());
+        let largest = || (0..self.spare.len()).max_by_key(|&i| self.spare[i].capacity());
+        let mut v = match fits.or_else(largest) {
             Some(i) => self.spare.swap_remove(i),
-            None => self.spare.pop().unwrap_or_default(),
+            None => Vec::with_capacity(len),
         };
         v.clear();
         v
