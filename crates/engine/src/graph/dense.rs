@@ -293,6 +293,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
         // copied first.
         let mut z = std::mem::take(buffer);
         z.clear();
+        z.reserve(start.len());
         let mut column = Vec::with_capacity(self.units);
         for (i, (&c, now)) in changed.iter().zip(now.chunks_exact(rows)).enumerate() {
             column.clear();

@@ -1490,7 +1490,7 @@ impl<S: Copy> Workspace<S> {
     }
 
     /// An empty buffer: the smallest spare that holds `len` values, else the largest (which
-    /// grows), else a new one.
+    /// grows), else a new one with no room yet (a kind that does not use it costs nothing).
     fn take(&mut self, len: usize) -> Vec<S> {
         let fits = (0..self.spare.len())
             .filter(|&i| self.spare[i].capacity() >= len)
@@ -1498,7 +1498,7 @@ impl<S: Copy> Workspace<S> {
         let largest = || (0..self.spare.len()).max_by_key(|&i| self.spare[i].capacity());
         let mut v = match fits.or_else(largest) {
             Some(i) => self.spare.swap_remove(i),
-            None => Vec::with_capacity(len),
+            None => Vec::new(),
         };
         v.clear();
         v
