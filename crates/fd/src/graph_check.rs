@@ -257,6 +257,7 @@ impl Run<'_> {
                         .par_iter()
                         .map_init(|| real.lend(), |ws, b| real.at_in(ws, b))
                         .collect();
+                    real.release();
                     let mut seen = seen.borrow_mut();
                     for (b, &(_, crossed)) in buckets.iter().zip(&out) {
                         if let Some(key) = key_of(b) {
@@ -315,6 +316,7 @@ impl Run<'_> {
                     },
                 )
                 .collect();
+            eval.release();
             let mut seen = seen.borrow_mut();
             Ok(out
                 .into_iter()
@@ -417,8 +419,8 @@ struct Eval<'a, S> {
     /// Per layer, whether it or a layer above can take another branch (a kind that records
     /// its choices, an activation with a kink or a break in its derivative).
     kinks_from: Vec<bool>,
-    /// The workspaces of the threads evaluating losses: as many as ever ran at once, each
-    /// reused by one thread at a time ([`Eval::lend`]).
+    /// The workspaces of the threads evaluating a request's losses: as many as ran at once,
+    /// each reused by one thread at a time ([`Eval::lend`]), dropped after the request.
     pool: Mutex<Vec<Workspace<S>>>,
 }
 
@@ -487,6 +489,14 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             ties_from,
             kinks_from,
             pool: Mutex::new(Vec::new()),
+        }
+    }
+
+    /// Drops the pool's workspaces: after a request, so that their buffers are not held
+    /// through the directions (whose passes copy layers) or the rest of the check.
+    fn release(&self) {
+        if let Ok(mut pool) = self.pool.lock() {
+            pool.clear();
         }
     }
 
