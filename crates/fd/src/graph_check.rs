@@ -10,10 +10,12 @@
 //! one unit or channel the entry feeds, a dense or conv layer above it only by that unit's or
 //! channel's change) and the L2 term's change of that entry alone. A random direction comes as
 //! the vector it is ([`Request::Along`]): the parameters moved along it, recomputed from the
-//! lowest layer it moves, with no list of one change per parameter. Perturbations are evaluated in
-//! parallel, each on its own, so the result does not depend on the number of threads. A step is
-//! called across a non-smooth point when the perturbed pass takes another branch than the base
-//! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
+//! lowest layer it moves (each moved layer copied for its own pass alone, the L2 term's change
+//! summed over the moved entries), with no list of one change per parameter. Perturbations are
+//! evaluated in parallel, each on its own in a workspace its thread reuses (whose buffers carry
+//! no values from one loss to the next), so the result does not depend on the number of threads.
+//! A step is called across a non-smooth point when the perturbed pass takes another branch than
+//! the base pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
 //! value across a break in a derivative the methods' bounds assume (elu with α = 1); such a step
 //! is retried 10, 100 and 1000 times smaller, and a coordinate that still crosses is `unreliable`.
 //! The complex step never leaves the branch it starts on; where the base pass itself sits on a
@@ -317,6 +319,7 @@ impl Run<'_> {
                 )
                 .collect();
             eval.release();
+            real.release();
             let mut seen = seen.borrow_mut();
             Ok(out
                 .into_iter()
