@@ -989,7 +989,9 @@ impl Graph {
     }
 
     /// The branches of the layers a [`Tail`] recomputed: entry i is layer `tail.from + i`, to be
-    /// compared with the base pass's layers from `tail.from` on.
+    /// compared with the base pass's layers from `tail.from` on. For tails of
+    /// [`Graph::forward_from`] and [`Graph::forward_moved`], which keep every z; a tail of
+    /// [`Graph::moved_loss`] keeps z only where a kink test reads it ([`Graph::tail_crossed`]).
     pub fn branches_from<S: Scalar>(&self, tail: &Tail<S>) -> Branches {
         let layers = self.nodes[tail.from..]
             .iter()
