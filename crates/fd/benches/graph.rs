@@ -12,6 +12,8 @@
 //! - `dense-plumb` (only when named): the graph's check of the 784-128-64-10 network at 3,000
 //!   coordinates plus directions, with its fingerprint (the figure compared with the dense
 //!   engine's check before it went, benches/README.md);
+//! - `mlp-plumb` (only when named): plumb's side of `mlp` alone, the fastest of 3 full checks,
+//!   with its fingerprint — for before/after runs of two builds;
 //! - `cnn-plumb` (only when named): plumb's side of `cnn` alone, the fastest of 10 runs, with a
 //!   fingerprint of the results and the count of each verdict — for before/after runs of two
 //!   builds on a busy machine, where NumPy's time is not needed;
@@ -346,6 +348,17 @@ fn mlp() {
     );
 }
 
+/// The plumb side of `mlp` alone, the fastest of 3, with its fingerprint.
+fn mlp_plumb() {
+    let (g, p, b) = common::network();
+    let (t, r) = best(3, || full_check(&g, &p, &b));
+    println!(
+        "mlp-plumb 784-128-64-10 tanh, batch 32, full central check: {:.3} s (fastest of 3); {}",
+        t,
+        common::summary(&r)
+    );
+}
+
 fn pass(model: &str, path: &str) {
     let (g, p, b) = description(path, 32);
     let inner = 20;
@@ -443,6 +456,9 @@ fn main() {
     }
     if run("mlp") {
         mlp();
+    }
+    if asked.iter().any(|a| a == "mlp-plumb") {
+        mlp_plumb();
     }
     if run("lstm") {
         pass("lstm", "examples/pump-lstm.toml");

@@ -16,8 +16,9 @@ pub struct Direction {
 }
 
 impl Direction {
-    /// The unit vector, one entry per parameter of each tensor of `sizes` (zero outside the span):
-    /// one normal per entry of the span, in tensor and flat order.
+    /// The unit vector, one entry per parameter of each tensor of `sizes` it moves and none for
+    /// the others (a direction over one tensor stores that tensor's entries alone): one normal
+    /// per entry of the span, in tensor and flat order.
     pub fn vector(&self, sizes: &[usize]) -> Vec<Vec<f64>> {
         let mut rng = self.rng.clone();
         let mut v: Vec<Vec<f64>> = sizes
@@ -27,7 +28,7 @@ impl Direction {
                 if self.spans(t) {
                     (0..n).map(|_| rng.normal()).collect()
                 } else {
-                    vec![0.0; n]
+                    Vec::new()
                 }
             })
             .collect();
@@ -86,7 +87,7 @@ mod tests {
                     if d.tensor.is_none_or(|s| s == t) {
                         (0..n).map(|_| rng.normal()).collect()
                     } else {
-                        vec![0.0; n]
+                        Vec::new()
                     }
                 })
                 .collect();

@@ -101,7 +101,7 @@ pub struct ExternalResult {
 pub type Losses<'a, E> = dyn FnMut(usize, &[Change]) -> Result<Vec<f64>, E> + 'a;
 
 /// What the checker asks a loss for: perturbations listed as changes (coordinates), or steps
-/// along one direction `v` (one vector per tensor, zero outside its span), which a loss that
+/// along one direction `v` (one vector per tensor, empty outside its span), which a loss that
 /// holds the parameters itself takes as the vector it is rather than one change per parameter.
 pub(crate) enum Request<'r> {
     Changes {

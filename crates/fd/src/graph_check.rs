@@ -10,10 +10,12 @@
 //! one unit or channel the entry feeds, a dense or conv layer above it only by that unit's or
 //! channel's change) and the L2 term's change of that entry alone. A random direction comes as
 //! the vector it is ([`Request::Along`]): the parameters moved along it, recomputed from the
-//! lowest layer it moves, with no list of one change per parameter. Perturbations are evaluated in
-//! parallel, each on its own, so the result does not depend on the number of threads. A step is
-//! called across a non-smooth point when the perturbed pass takes another branch than the base
-//! pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
+//! lowest layer it moves (each moved layer copied for its own pass alone, the L2 term's change
+//! summed over the moved entries), with no list of one change per parameter. Perturbations are
+//! evaluated in parallel, each on its own in a workspace its thread reuses (whose buffers carry
+//! no values from one loss to the next), so the result does not depend on the number of threads.
+//! A step is called across a non-smooth point when the perturbed pass takes another branch than
+//! the base pass ([`Graph::branches`]: a ReLU-like side, a max-pool window's argmax) in any layer, or moves a
 //! value across a break in a derivative the methods' bounds assume (elu with α = 1); such a step
 //! is retried 10, 100 and 1000 times smaller, and a coordinate that still crosses is `unreliable`.
 //! The complex step never leaves the branch it starts on; where the base pass itself sits on a
@@ -24,10 +26,12 @@ use std::borrow::Cow;
 use std::cell::RefCell;
 use std::collections::HashMap;
 use std::convert::Infallible;
+use std::ops::{Deref, DerefMut};
+use std::sync::Mutex;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Graph, LayerScalar, Moved, Shape, Tail, Trace};
+use plumb_engine::graph::{Graph, LayerScalar, Moved, Shape, Tail, Trace, Workspace};
 use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
@@ -251,7 +255,11 @@ impl Run<'_> {
             match request {
                 Request::Changes { count, changes } => {
                     let buckets = buckets(count, changes);
-                    let out: Vec<(f64, bool)> = buckets.par_iter().map(|b| real.at(b)).collect();
+                    let out: Vec<(f64, bool)> = buckets
+                        .par_iter()
+                        .map_init(|| real.lend(), |ws, b| real.at_in(ws, b))
+                        .collect();
+                    real.release();
                     let mut seen = seen.borrow_mut();
                     for (b, &(_, crossed)) in buckets.iter().zip(&out) {
                         if let Some(key) = key_of(b) {
@@ -290,20 +298,28 @@ impl Run<'_> {
             // real probe steps ±h the checker asks for next.
             let out: Vec<(f64, Vec<(Key, bool)>)> = buckets
                 .par_iter()
-                .map(|b| {
-                    let im = eval.imaginary(b);
-                    let mut probes = Vec::new();
-                    if let [c] = b.as_ref() {
-                        let theta = self.tensors[c.tensor as usize].values[c.index as usize];
-                        let hp = Method::Forward.default_step(theta, eps);
-                        for d in [hp, -hp] {
-                            let probe = [Change { delta: d, ..*c }];
-                            probes.push((key_of(&probe).expect("one change"), real.on_tie(&probe)));
+                .map_init(
+                    || eval.lend(),
+                    |ws, b| {
+                        let im = eval.imaginary_in(ws, b);
+                        let mut probes = Vec::new();
+                        if let [c] = b.as_ref() {
+                            let theta = self.tensors[c.tensor as usize].values[c.index as usize];
+                            let hp = Method::Forward.default_step(theta, eps);
+                            for d in [hp, -hp] {
+                                let probe = [Change { delta: d, ..*c }];
+                                probes.push((
+                                    key_of(&probe).expect("one change"),
+                                    real.on_tie(&probe),
+                                ));
+                            }
                         }
-                    }
-                    (im, probes)
-                })
+                        (im, probes)
+                    },
+                )
                 .collect();
+            eval.release();
+            real.release();
             let mut seen = seen.borrow_mut();
             Ok(out
                 .into_iter()
@@ -406,6 +422,37 @@ struct Eval<'a, S> {
     /// Per layer, whether it or a layer above can take another branch (a kind that records
     /// its choices, an activation with a kink or a break in its derivative).
     kinks_from: Vec<bool>,
+    /// The workspaces of the threads evaluating a request's losses: as many as ran at once,
+    /// each reused by one thread at a time ([`Eval::lend`]), dropped after the request.
+    pool: Mutex<Vec<Workspace<S>>>,
+}
+
+/// A workspace lent from an [`Eval`]'s pool for one thread's share of a request, given back
+/// when dropped.
+struct Lent<'p, S: Copy> {
+    pool: &'p Mutex<Vec<Workspace<S>>>,
+    ws: Option<Workspace<S>>,
+}
+
+impl<S: Copy> Deref for Lent<'_, S> {
+    type Target = Workspace<S>;
+    fn deref(&self) -> &Workspace<S> {
+        self.ws.as_ref().expect("lent until dropped")
+    }
+}
+
+impl<S: Copy> DerefMut for Lent<'_, S> {
+    fn deref_mut(&mut self) -> &mut Workspace<S> {
+        self.ws.as_mut().expect("lent until dropped")
+    }
+}
+
+impl<S: Copy> Drop for Lent<'_, S> {
+    fn drop(&mut self) {
+        if let (Some(ws), Ok(mut pool)) = (self.ws.take(), self.pool.lock()) {
+            pool.push(ws);
+        }
+    }
 }
 
 impl<'a, S: LayerScalar> Eval<'a, S> {
@@ -444,6 +491,24 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             l2_sum,
             ties_from,
             kinks_from,
+            pool: Mutex::new(Vec::new()),
+        }
+    }
+
+    /// Drops the pool's workspaces: after a request, so that their buffers are not held
+    /// through the directions (whose passes copy layers) or the rest of the check.
+    fn release(&self) {
+        if let Ok(mut pool) = self.pool.lock() {
+            pool.clear();
+        }
+    }
+
+    /// A workspace for one thread's losses, from the pool (or new).
+    fn lend(&self) -> Lent<'_, S> {
+        let ws = self.pool.lock().ok().and_then(|mut p| p.pop());
+        Lent {
+            pool: &self.pool,
+            ws: Some(ws.unwrap_or_default()),
         }
     }
 
@@ -464,32 +529,46 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         (moved, from.min(self.trace.steps.len() - 1))
     }
 
-    /// The parameters moved by d·v (each entry's delta d·v times `unit`), and the first layer
-    /// moved. Entries where v is 0 are left alone, as a list of changes would leave them.
-    fn moved_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (Vec<ArrayD<S>>, usize) {
-        let mut moved = self.params.clone();
-        let mut from = usize::MAX;
-        for (t, (p, vt)) in moved.iter_mut().zip(v).enumerate() {
-            let mut any = false;
-            let values = p.as_slice_mut().expect("standard layout");
-            for (x, &w) in values.iter_mut().zip(vt) {
-                if w != 0.0 {
-                    *x += unit * S::from_f64(d * w);
-                    any = true;
+    /// The loss (and the recomputed layers) at the step d·v along a direction, times `unit`.
+    /// Only the layers v moves are copied, one at a time while their pass runs (entries where v
+    /// is 0 are left alone, as a list of changes would leave them), and the L2 term is the
+    /// base's Σ w² plus Σ (w′ − w)(w′ + w) over the moved entries of the decaying tensors, in
+    /// tensor and flat order. That sum rounds each term within 3u of its value and adds k of
+    /// them within γ(k) (u = ε/2, Higham §3.1), so the L2 term is within
+    /// γ(k + 3)·Σ|w′² − w²| + u·(Σ w² + Σ w′²) of exact, where a fresh sum over all n decaying
+    /// entries is within γ(n)·Σ w′²: for a step, whose Σ|w′² − w²| is about 2|d|·Σ|w·v|, the
+    /// difference f(θ + d·v) − f(θ) keeps the base's Σ w² exactly and rounds the change alone.
+    fn perturbed_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (S, Tail<S>) {
+        let graph = self.graph;
+        let moves = |t: usize| v[t].iter().any(|w| *w != 0.0);
+        let from = (0..v.len())
+            .find(|&t| moves(t))
+            .map_or(0, |t| graph.tensors()[t].layer);
+        let mut change = S::zero();
+        let mut moving = |j: usize, own: &[ArrayD<S>]| -> Option<Vec<ArrayD<S>>> {
+            let tensors = graph.nodes()[j].tensors();
+            if !tensors.clone().any(moves) {
+                return None;
+            }
+            let mut copy = own.to_vec();
+            for (t, p) in tensors.zip(copy.iter_mut()) {
+                let decays = graph.decays(t);
+                let values = p.as_slice_mut().expect("standard layout");
+                for (x, &w) in values.iter_mut().zip(&v[t]) {
+                    if w != 0.0 {
+                        let was = *x;
+                        *x += unit * S::from_f64(d * w);
+                        if decays {
+                            change += (*x - was) * (*x + was);
+                        }
+                    }
                 }
             }
-            if any {
-                from = from.min(self.graph.tensors()[t].layer);
-            }
-        }
-        (moved, from.min(self.trace.steps.len() - 1))
-    }
-
-    /// The loss (and the recomputed layers) at the step d·v along a direction, times `unit`.
-    fn perturbed_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (S, Tail<S>) {
-        let (moved, from) = self.moved_along(v, d, unit);
-        let tail = self.tail(&moved, from);
-        let loss = self.graph.loss_from(&moved, &tail, self.y.view());
+            Some(copy)
+        };
+        let tail =
+            graph.forward_from_moving(&self.params, self.x.view(), &self.trace, from, &mut moving);
+        let loss = graph.loss_from_sum(&tail, self.y.view(), self.l2_sum + change);
         (loss, tail)
     }
 
@@ -513,9 +592,16 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             .forward_from(moved, self.x.view(), &self.trace, from)
     }
 
-    /// The loss (and the recomputed layers) at the perturbation by `changes`, each delta times
-    /// `unit`: one entry through the kinds' hints, several by recomputing from the lowest layer.
-    fn perturbed(&self, changes: &[Change], unit: S) -> (S, Tail<S>) {
+    /// The loss at the perturbation by `changes`, each delta times `unit`, and whether it took
+    /// another branch than the base pass: one entry through the kinds' hints in the buffers of
+    /// `ws` (its tail left there), several by recomputing from the lowest layer.
+    fn perturbed_in(
+        &self,
+        ws: &mut Workspace<S>,
+        changes: &[Change],
+        unit: S,
+        branches: bool,
+    ) -> (S, bool) {
         if let [c] = changes {
             let moved = Moved {
                 tensor: c.tensor as usize,
@@ -523,20 +609,27 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
                 delta: unit * S::from_f64(c.delta),
             };
             let (x, y) = (self.x.view(), self.y.view());
-            return self
-                .graph
-                .moved_loss(&self.params, x, &self.trace, y, self.l2_sum, &moved);
+            let loss =
+                self.graph
+                    .moved_loss_in(ws, &self.params, x, &self.trace, y, self.l2_sum, &moved);
+            let tail = ws.tail().expect("left by the loss");
+            return (loss, branches && self.crossed(tail));
         }
         let (moved, from) = self.moved(changes, unit);
         let tail = self.tail(&moved, from);
         let loss = self.graph.loss_from(&moved, &tail, self.y.view());
-        (loss, tail)
+        (loss, branches && self.crossed(&tail))
     }
 
     /// The loss at a real perturbation and whether it took another branch than the base pass.
     fn at(&self, changes: &[Change]) -> (f64, bool) {
-        let (loss, tail) = self.perturbed(changes, S::one());
-        (loss.re(), self.crossed(&tail))
+        self.at_in(&mut self.lend(), changes)
+    }
+
+    /// [`Eval::at`] in the buffers of `ws`.
+    fn at_in(&self, ws: &mut Workspace<S>, changes: &[Change]) -> (f64, bool) {
+        let (loss, crossed) = self.perturbed_in(ws, changes, S::one(), true);
+        (loss.re(), crossed)
     }
 
     /// Whether the base pass sits on a tie or a kink at or above the first layer `changes` move,
@@ -554,38 +647,21 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// choice ([`Graph::branches`]), or a value on the other side of its activation's kink or of
     /// a break in a derivative (elu with α = 1), compared value by value with nothing collected.
     fn crossed(&self, tail: &Tail<S>) -> bool {
-        if !self.kinks_from[tail.from] {
-            return false;
-        }
-        tail.steps.iter().enumerate().any(|(i, step)| {
-            let j = tail.from + i;
-            let base = &self.trace.steps[j];
-            let act = self.graph.nodes()[j].activation;
-            step.branches != base.branches
-                || act
-                    .break_point()
-                    .is_some_and(|k| sides_differ(&step.out, &base.out, k))
-        })
-    }
-}
-
-/// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
-/// without a branch per value (they vectorise), stopping at the first block that differs.
-fn sides_differ<S: LayerScalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
-    let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
-    match (a.as_slice(), b.as_slice()) {
-        (Some(a), Some(b)) => a
-            .chunks(64)
-            .zip(b.chunks(64))
-            .any(|(x, y)| x.iter().zip(y).fold(false, |any, p| any | differs(p))),
-        _ => a.iter().zip(b).any(differs),
+        self.kinks_from[tail.from] && self.graph.tail_crossed(&self.trace, tail)
     }
 }
 
 impl<S: LayerScalar + ComplexScalar> Eval<'_, S> {
     /// Im J at the perturbation by i·delta.
     fn imaginary(&self, changes: &[Change]) -> f64 {
-        self.perturbed(changes, S::imaginary(1.0)).0.im()
+        self.imaginary_in(&mut self.lend(), changes)
+    }
+
+    /// [`Eval::imaginary`] in the buffers of `ws`.
+    fn imaginary_in(&self, ws: &mut Workspace<S>, changes: &[Change]) -> f64 {
+        self.perturbed_in(ws, changes, S::imaginary(1.0), false)
+            .0
+            .im()
     }
 
     /// Im J at the step i·d·v.

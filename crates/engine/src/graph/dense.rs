@@ -148,18 +148,40 @@ impl Kind for Dense {
 }
 
 impl<S: LayerScalar> Layer<S> for Dense {
-    fn forward(&self, params: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+    fn forward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+    ) -> Step<S> {
+        self.forward_into(params, x, skip, &mut Vec::new())
+    }
+
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
         let w = params[0]
             .view()
             .into_dimensionality::<Ix2>()
             .expect("weight");
         let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
         let rows = self.rows(x);
-        // The bias first and the product added to it: one pass over z.
-        let mut z = b
-            .broadcast((rows.nrows(), self.units))
-            .expect("one bias per unit")
-            .to_owned();
+        // The bias in every row first and the product added to it: one pass over z.
+        let mut z = std::mem::take(buffer);
+        z.clear();
+        z.reserve(rows.nrows() * self.units);
+        for _ in 0..rows.nrows() {
+            match b.as_slice() {
+                Some(bias) => z.extend_from_slice(bias),
+                None => z.extend(b.iter().copied()),
+            }
+        }
+        let mut z =
+            Array2::from_shape_vec((rows.nrows(), self.units), z).expect("one bias per unit");
         add_matmul(&mut z, rows, w.t());
         let m = x.nrows();
         let out = reshape(z, (m, self.output().size()));
@@ -239,6 +261,18 @@ impl<S: LayerScalar> Layer<S> for Dense {
         changed: &[usize],
         now: &[S],
     ) -> Option<Step<S>> {
+        self.forward_units_into(params, base_x, base, changed, now, &mut Vec::new())
+    }
+
+    fn forward_units_into(
+        &self,
+        params: &[ArrayD<S>],
+        base_x: ArrayView2<S>,
+        base: &Step<S>,
+        changed: &[usize],
+        now: &[S],
+        buffer: &mut Vec<S>,
+    ) -> Option<Step<S>> {
         // The update costs k/n of the product's multiplications, but a product runs several
         // times faster per multiplication (packed, vectorised): below an eighth the update wins
         // clearly, and a small layer keeps the full pass's bits.
@@ -248,20 +282,35 @@ impl<S: LayerScalar> Layer<S> for Dense {
         let w = params[0].view().into_dimensionality::<Ix2>().ok()?;
         let xb = self.rows(base_x);
         let rows = xb.nrows();
+        let start = base.out.as_slice()?;
         if now.len() != rows * changed.len() {
             return None;
         }
-        let mut out = base.out.clone();
-        let z = out.as_slice_mut()?;
+        // The base output, then each changed unit's update: z[i, :] += (x[i, c] − x_base[i, c])
+        // · W[:, c], one row per sample and step. A row whose input did not move keeps the
+        // base's bits (equal inputs give +0 exactly). The first unit's update reads the base's
+        // row and writes the result (z + d·w, as adding to a copy would), so the base is not
+        // copied first.
+        let mut z = std::mem::take(buffer);
+        z.clear();
+        z.reserve(start.len());
         let mut column = Vec::with_capacity(self.units);
-        for (&c, now) in changed.iter().zip(now.chunks_exact(rows)) {
+        for (i, (&c, now)) in changed.iter().zip(now.chunks_exact(rows)).enumerate() {
             column.clear();
             column.extend(w.column(c).iter().copied());
-            // One row per sample and step: z[i, :] += (x[i, c] − x_base[i, c]) · W[:, c]. A row
-            // whose input did not move keeps the base's bits.
             let moved = now.iter().zip(xb.column(c));
+            if i == 0 {
+                for (row, (&now, &was)) in start.chunks_exact(self.units).zip(moved) {
+                    let d = now - was;
+                    if d.same_bits(S::zero()) {
+                        z.extend_from_slice(row);
+                    } else {
+                        z.extend(row.iter().zip(&column).map(|(&z, &w)| z + d * w));
+                    }
+                }
+                continue;
+            }
             for (row, (&now, &was)) in z.chunks_exact_mut(self.units).zip(moved) {
-                // Equal inputs give +0 exactly.
                 let d = now - was;
                 if d.same_bits(S::zero()) {
                     continue;
@@ -271,7 +320,34 @@ impl<S: LayerScalar> Layer<S> for Dense {
                 }
             }
         }
+        let out = Array2::from_shape_vec(base.out.raw_dim(), z).ok()?;
         Some(Step::plain(out))
+    }
+
+    fn moved_values(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
+        moved: &Moved<S>,
+        out: &mut Vec<S>,
+    ) -> bool {
+        let Some(z) = base.out.as_slice() else {
+            return false;
+        };
+        let unit = self.moved_channel(moved.tensor, moved.index).unwrap_or(0);
+        // Unit r is column r of one row per sample and step; z + δ·x[:, c] (bias: z + δ), as
+        // [`Layer::forward_moved`] adds it to its copy of the base.
+        let column = z.iter().skip(unit).step_by(self.units);
+        out.clear();
+        if moved.tensor == 0 {
+            let x = self.rows(x);
+            let c = moved.index % self.fan_in();
+            out.extend(column.zip(x.column(c)).map(|(&z, &v)| z + moved.delta * v));
+        } else {
+            out.extend(column.map(|&z| z + moved.delta));
+        }
+        true
     }
 }
 

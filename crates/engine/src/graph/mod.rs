@@ -80,8 +80,8 @@ pub use layer_norm::LayerNorm;
 pub use loss::LossConfig;
 pub use lstm::{Lstm, LstmCell};
 pub use network::{
-    Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Node, Planted, Tail,
-    TensorSpec, Trace,
+    Branches, Gradient, Graph, GraphBuilder, GraphError, LayerBranches, Moving, Node, Planted,
+    Tail, TensorSpec, Trace, Workspace,
 };
 pub use pool::{Pool, PoolKind};
 pub use recurrent::{Output, Recurrent};
@@ -240,6 +240,20 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         skip: Option<ArrayView2<S>>,
     ) -> Step<S>;
 
+    /// [`forward`](Layer::forward) with its output written into `buffer` (any length and
+    /// contents on entry) when the kind can: what the graph's perturbed passes call with a
+    /// [`Workspace`]'s buffer. The same values as `forward`; by default that, `buffer` unused.
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
+        let _ = buffer;
+        self.forward(params, x, skip)
+    }
+
     /// The gradients of the layer's parameters and input from `dout`, the gradient of its output.
     /// `mistake`, one of the kind's [catalogued codes](Kind::mistakes), asks for the gradient that
     /// mistake would produce instead. `need_input` false says nobody reads the input gradient:
@@ -312,6 +326,42 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
     ) -> Option<Step<S>> {
         let _ = (params, base_x, base, changed, now);
         None
+    }
+
+    /// [`forward_units`](Layer::forward_units) with its output written into `buffer` (any
+    /// length and contents on entry) when the kind can, rather than into a new array: the graph
+    /// hands in a [`Workspace`]'s buffer, so a check's perturbed passes allocate nothing in the
+    /// steady state. The same values as `forward_units`; by default that, and `buffer` unused.
+    fn forward_units_into(
+        &self,
+        params: &[ArrayD<S>],
+        base_x: ArrayView2<S>,
+        base: &Step<S>,
+        changed: &[usize],
+        now: &[S],
+        buffer: &mut Vec<S>,
+    ) -> Option<Step<S>> {
+        let _ = buffer;
+        self.forward_units(params, base_x, base, changed, now)
+    }
+
+    /// The values of the one output channel the kind's [hint](Layer::forward_moved) changes
+    /// ([`Kind::moved_channel`]) after `moved`, over its runs in flat order (as
+    /// [`forward_units`](Layer::forward_units) reads them), written to `out` — without building
+    /// the output, most of which is the base's: what the graph needs of the moved layer when
+    /// only the next layer reads it and updates from its changed channels. The same values as
+    /// the hint's step holds there. `false` (and `out` untouched) when the kind has no such
+    /// path; the graph then takes the hint's whole step.
+    fn moved_values(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
+        moved: &Moved<S>,
+        out: &mut Vec<S>,
+    ) -> bool {
+        let _ = (params, x, base, moved, out);
+        false
     }
 }
 

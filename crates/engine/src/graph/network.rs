@@ -134,6 +134,10 @@ pub enum GraphError {
     },
 }
 
+/// What [`Graph::forward_from_moving`] asks of each recomputed layer j with its tensors `own`:
+/// the layer's tensors moved, or `None` where they are not.
+pub type Moving<'a, S> = dyn FnMut(usize, &[ArrayD<S>]) -> Option<Vec<ArrayD<S>>> + 'a;
+
 /// Builds a graph layer by layer; each layer is made from the shape the previous one produces.
 #[derive(Debug)]
 pub struct GraphBuilder {
@@ -348,6 +352,11 @@ pub struct Tail<S> {
     /// that is not, so every layer above is the base's. Holds the output layer's z and output,
     /// copied from the base.
     pub settled: Option<(Array2<S>, Array2<S>)>,
+    /// Set when the moved layer's output was not built ([`Graph::moved_loss`] for the loss
+    /// alone, where the next layer updates from the one channel the hint changed): its step's
+    /// `out` has no columns, and this is that channel and its z over the channel's runs in flat
+    /// order; the layer's other values are the base pass's.
+    pub moved_channel: Option<(usize, Vec<S>)>,
 }
 
 impl<S> Tail<S> {
@@ -527,6 +536,22 @@ impl Graph {
         base: &Trace<S>,
         from: usize,
     ) -> Tail<S> {
+        self.forward_from_moving(params, x, base, from, &mut |_, _| None)
+    }
+
+    /// [`Graph::forward_from`] over a base pass at `params`, with the layers from `from` on
+    /// moved where `moving(j, own)` says so: it returns layer j's tensors moved (a copy of
+    /// `own`, the layer's tensors in `params`, with its changes), or `None` where the layer
+    /// keeps `own`. Each copy lives for its layer's pass alone, so a change of many layers (a
+    /// random direction) holds one layer's tensors at a time, not a whole weight set.
+    pub fn forward_from_moving<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        from: usize,
+        moving: &mut Moving<'_, S>,
+    ) -> Tail<S> {
         if let Err(e) = self.check_params(params) {
             panic!("{e} (check_params before a pass)");
         }
@@ -544,7 +569,10 @@ impl Graph {
             };
             let input = if j == 0 { x.view() } else { output(j - 1) };
             let skip = node.tap.map(output);
-            let step = S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
+            let own = &params[node.tensors()];
+            let moved = moving(j, own);
+            let own = moved.as_deref().unwrap_or(own);
+            let step = S::layer(node.layer.as_ref()).forward(own, input, skip);
             let a = self.activate(node, &step.out);
             steps.push(step);
             outputs.push(a);
@@ -554,6 +582,7 @@ impl Graph {
             steps,
             outputs,
             settled: None,
+            moved_channel: None,
         }
     }
 
@@ -575,7 +604,7 @@ impl Graph {
         base: &Trace<S>,
         moved: &Moved<S>,
     ) -> Tail<S> {
-        self.moved_tail(params, x, base, moved, true)
+        self.moved_tail(&mut Workspace::new(), params, x, base, moved, true)
     }
 
     /// The loss after one parameter entry moved and the tail it came from: [`Graph::forward_moved`]
@@ -583,10 +612,12 @@ impl Graph {
     /// entry of the tail's outputs has no columns) where the loss reads only z — cross-entropy
     /// takes its log-sum-exp from z, so a softmax would be computed for nothing — that the
     /// moved layer's output is not built (its entry has no columns either) when only the next
-    /// layer reads it and that layer updates from the changed channels alone, and that a layer
-    /// below the output whose activation has no break point keeps no z (its step's `out` has no
-    /// columns: the activation is made in its place). What a check reads of the tail is there:
-    /// the loss, each layer's branches, and z where an activation has a kink.
+    /// layer reads it and that layer updates from the changed channels alone (its z is then
+    /// built only where the kind can give the changed channel alone, [`Tail::moved_channel`]),
+    /// and that a layer below the output whose activation has no break point keeps no z (its
+    /// step's `out` has no columns: the activation is made in its place). What a check reads of
+    /// the tail is there: the loss, and whether it took another branch than the base
+    /// ([`Graph::tail_crossed`]).
     pub fn moved_loss<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -596,14 +627,71 @@ impl Graph {
         l2_sum: S,
         moved: &Moved<S>,
     ) -> (S, Tail<S>) {
-        let reads = self.loss.loss.reads_activations();
-        let tail = self.moved_tail(params, x, base, moved, reads);
-        (self.loss_moved(params, &tail, y, l2_sum, moved), tail)
+        let mut ws = Workspace::new();
+        let loss = self.moved_loss_in(&mut ws, params, x, base, y, l2_sum, moved);
+        (loss, ws.tail.take().expect("left by the call"))
     }
 
-    /// [`Graph::forward_moved`], with the output layer's activation only when `output_activation`.
+    /// [`Graph::moved_loss`] in the buffers of `ws`, one workspace per thread: the tail stays in
+    /// the workspace ([`Workspace::tail`]) until the next call takes its arrays back, so a check
+    /// evaluating many losses allocates nothing per loss once the buffers have their sizes. The
+    /// same bits as `moved_loss`, whatever the workspace held before.
+    #[allow(clippy::too_many_arguments)]
+    pub fn moved_loss_in<S: LayerScalar>(
+        &self,
+        ws: &mut Workspace<S>,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        y: ArrayView2<S>,
+        l2_sum: S,
+        moved: &Moved<S>,
+    ) -> S {
+        ws.recycle();
+        let reads = self.loss.loss.reads_activations();
+        let tail = self.moved_tail(ws, params, x, base, moved, reads);
+        let loss = self.loss_moved(params, &tail, y, l2_sum, moved);
+        ws.tail = Some(tail);
+        loss
+    }
+
+    /// Whether a tail of [`Graph::moved_loss`] took another branch than the `base` pass it was
+    /// computed over: a kind's choice ([`Step::branches`]), or a value on the other side of its
+    /// activation's kink or of a break in a derivative (elu with α = 1), compared value by value
+    /// with nothing collected; the moved layer's changed channel alone where that is all the
+    /// tail holds of it ([`Tail::moved_channel`]).
+    pub fn tail_crossed<S: LayerScalar>(&self, base: &Trace<S>, tail: &Tail<S>) -> bool {
+        if let Some((c, z)) = &tail.moved_channel {
+            let j = tail.from;
+            let shape = self.nodes[j].layer.output();
+            let was = base.steps[j].out.as_slice().expect("standard layout");
+            let m = base.steps[j].out.nrows();
+            let runs = shape.channel_runs(m, *c).flat_map(|run| &was[run]);
+            if let Some(k) = self.nodes[j].activation.break_point() {
+                let side = |v: &S| v.re() > k;
+                if z.iter().zip(runs).any(|(a, b)| side(a) != side(b)) {
+                    return true;
+                }
+            }
+        }
+        tail.steps.iter().enumerate().any(|(i, step)| {
+            let j = tail.from + i;
+            let was = &base.steps[j];
+            let lean = i == 0 && tail.moved_channel.is_some();
+            step.branches != was.branches
+                || (!lean
+                    && self.nodes[j]
+                        .activation
+                        .break_point()
+                        .is_some_and(|k| sides_differ(&step.out, &was.out, k)))
+        })
+    }
+
+    /// [`Graph::forward_moved`] in the buffers of `ws`, with the output layer's activation only
+    /// when `output_activation` (and then every layer's output built whole).
     fn moved_tail<S: LayerScalar>(
         &self,
+        ws: &mut Workspace<S>,
         params: &[ArrayD<S>],
         x: ArrayView2<S>,
         base: &Trace<S>,
@@ -627,49 +715,7 @@ impl Graph {
             tensor: moved.tensor - node.tensors.start,
             ..*moved
         };
-        // The channels of each recomputed layer's output that differ from the base's, when
-        // known: the moved layer's hint names one; channel-wise layers above keep the set.
-        let (step, first) = match layer.forward_moved(own, input, &base.steps[from], &local) {
-            Some(step) => {
-                let channel = node.layer.moved_channel(local.tensor, local.index);
-                (step, channel.map(|c| vec![c]))
-            }
-            None => {
-                let mut own = own.to_vec();
-                let slot = own[local.tensor]
-                    .as_slice_mut()
-                    .expect("parameters in standard layout")
-                    .get_mut(local.index)
-                    .expect("index within its tensor");
-                *slot += local.delta;
-                let skip = node.tap.map(|t| base.outputs[t].view());
-                (layer.forward(&own, input, skip), None)
-            }
-        };
         let last = self.nodes.len() - 1;
-        // A recomputed layer's step and activation (nothing for an output layer the loss does
-        // not read). For the loss alone, a layer below the
-        // output whose activation has no break point keeps no z (the check reads a tail's z
-        // only for the sides of a kink): its activation is made in z's place, no copy.
-        let finish = |j: usize, mut step: Step<S>, changed: Option<&[usize]>| {
-            let node = &self.nodes[j];
-            let act = node.activation;
-            let rows = step.out.nrows();
-            if j == last && !output_activation {
-                return (step, Array2::zeros((rows, 0)));
-            }
-            let keep_z = output_activation
-                || j == last
-                || act.break_point().is_some()
-                || act == Activation::Softmax;
-            if !keep_z && (changed.is_none() || act == Activation::Identity) {
-                let mut a = std::mem::replace(&mut step.out, Array2::zeros((rows, 0)));
-                act.apply_in_place(&mut a);
-                return (step, a);
-            }
-            let a = self.activate_changed(node, &step.out, &base.outputs[j], changed);
-            (step, a)
-        };
         let m = x.nrows();
         // For the loss alone, when only the next layer reads the moved one, the moved layer's
         // changed channels are activated by themselves and its output built whole only if the
@@ -680,43 +726,105 @@ impl Graph {
             && self.last_readers[from] == from + 1
             && self.nodes[from + 1].tap.is_none()
             && node.activation != Activation::Softmax;
-        let fresh = first
-            .as_deref()
-            .filter(|_| lean)
-            .map(|c| (c.to_vec(), self.activated_channels(node, &step.out, c)));
-        let (step, a) = match &fresh {
-            Some(_) => (step, Array2::zeros((m, 0))),
-            None => finish(from, step, first.as_deref()),
-        };
-        let mut changed = vec![first];
-        let mut steps = vec![step];
-        let mut outputs = vec![a];
+        let channel = node.layer.moved_channel(local.tensor, local.index);
+        let mut steps = std::mem::take(&mut ws.steps);
+        let mut outputs = std::mem::take(&mut ws.outputs);
+        let mut changed = std::mem::take(&mut ws.changed);
+        // The moved layer's changed channel and its activated values, when the next layer
+        // reads them alone; and its z there when the layer's output is not built at all.
+        let mut fresh: Option<(usize, Vec<S>)> = None;
+        let mut moved_channel = None;
+        if let Some(c) = channel.filter(|_| lean && !node.layer.branches()) {
+            let mut z = ws.take(m);
+            if layer.moved_values(own, input, &base.steps[from], &local, &mut z) {
+                let mut a = ws.take(z.len());
+                a.extend_from_slice(&z);
+                node.activation.apply_values(&mut a);
+                fresh = Some((c, a));
+                moved_channel = Some((c, z));
+                steps.push(Step::plain(Array2::zeros((m, 0))));
+                outputs.push(Array2::zeros((m, 0)));
+            } else {
+                ws.give(z);
+            }
+        }
+        if fresh.is_none() {
+            // The channels of each recomputed layer's output that differ from the base's, when
+            // known: the moved layer's hint names one; channel-wise layers above keep the set.
+            let (step, hinted) = match layer.forward_moved(own, input, &base.steps[from], &local) {
+                Some(step) => (step, true),
+                None => {
+                    let mut own = own.to_vec();
+                    let slot = own[local.tensor]
+                        .as_slice_mut()
+                        .expect("parameters in standard layout")
+                        .get_mut(local.index)
+                        .expect("index within its tensor");
+                    *slot += local.delta;
+                    let skip = node.tap.map(|t| base.outputs[t].view());
+                    (layer.forward(&own, input, skip), false)
+                }
+            };
+            let first = channel.filter(|_| hinted);
+            match first.filter(|_| lean) {
+                Some(c) => {
+                    let mut a = ws.take(m);
+                    gather_into(node.layer.output(), m, &[c], &step.out, &mut a);
+                    node.activation.apply_values(&mut a);
+                    fresh = Some((c, a));
+                    steps.push(step);
+                    outputs.push(Array2::zeros((m, 0)));
+                }
+                None => {
+                    let set = first.map(|c| ws.set(&[c]));
+                    let (step, a) =
+                        self.finish(ws, base, from, step, set.as_deref(), output_activation);
+                    steps.push(step);
+                    outputs.push(a);
+                    changed.push(set);
+                }
+            }
+        }
+        if let Some((c, _)) = &fresh {
+            changed.push(Some(ws.set(&[*c])));
+        }
         // The last layer that reads any recomputed layer but the newest (the next one, or a tap).
         let mut open = 0;
+        let mut settled = None;
         for (j, node) in self.nodes.iter().enumerate().skip(from + 1) {
             let below = j - 1;
-            let settled = match (&fresh, j == from + 1) {
+            let is_next = j == from + 1;
+            let done = match (&fresh, is_next) {
                 (Some((c, now)), true) => {
                     let was = self.nodes[below].layer.output();
-                    same_values(now, &gather(was, m, c, &base.outputs[below]))
+                    same_channel(was, m, *c, now, &base.outputs[below])
                 }
                 _ => open < j && same_bits(&outputs[below - from], &base.outputs[below]),
             };
-            if settled {
-                return Tail {
-                    from,
-                    steps,
-                    outputs,
-                    settled: Some((base.steps[last].out.clone(), base.outputs[last].clone())),
-                };
+            if done {
+                settled = Some((
+                    ws.copy_of(&base.steps[last].out),
+                    ws.copy_of(&base.outputs[last]),
+                ));
+                break;
             }
             open = open.max(self.last_readers[below]);
-            if let (Some((c, now)), true) = (&fresh, j == from + 1) {
-                let layer = S::layer(node.layer.as_ref());
-                let (own, step) = (&params[node.tensors()], &base.steps[j]);
-                let base_input = base.outputs[below].view();
-                if let Some(step) = layer.forward_units(own, base_input, step, c, now) {
-                    let (step, a) = finish(j, step, None);
+            let layer = S::layer(node.layer.as_ref());
+            let own = &params[node.tensors()];
+            if let (Some((c, now)), true) = (&fresh, is_next) {
+                let (step, base_input) = (&base.steps[j], base.outputs[below].view());
+                let mut buffer = ws.take(step.out.len());
+                let units = layer.forward_units_into(
+                    own,
+                    base_input,
+                    step,
+                    std::slice::from_ref(c),
+                    now,
+                    &mut buffer,
+                );
+                ws.give(buffer);
+                if let Some(step) = units {
+                    let (step, a) = self.finish(ws, base, j, step, None, output_activation);
                     steps.push(step);
                     outputs.push(a);
                     changed.push(None);
@@ -724,7 +832,9 @@ impl Graph {
                 }
                 // The next layer needs the whole input after all.
                 let shape = self.nodes[below].layer.output();
-                outputs[0] = put(shape, m, c, now, base.outputs[below].clone());
+                let mut whole = ws.copy_of(&base.outputs[below]);
+                put(shape, m, &[*c], now, &mut whole);
+                outputs[0] = whole;
             }
             let output = |i: usize| {
                 if i < from {
@@ -736,15 +846,12 @@ impl Graph {
             let skip = node.tap.map(output);
             // What differs in the input and the tap: a tap below the moved layer differs nowhere.
             let differs = match node.tap {
-                None => changed[j - 1 - from].clone(),
-                Some(t) if t < from => changed[j - 1 - from].clone(),
-                Some(t) => union(
+                Some(t) if t >= from => union(
                     changed[j - 1 - from].as_deref(),
                     changed[t - from].as_deref(),
                 ),
+                _ => changed[j - 1 - from].as_deref().map(|c| ws.set(c)),
             };
-            let layer = S::layer(node.layer.as_ref());
-            let own = &params[node.tensors()];
             let input = output(j - 1);
             let step = &base.steps[j];
             let local = differs
@@ -755,36 +862,86 @@ impl Graph {
                 None => {
                     let base_input = base.outputs[j - 1].view();
                     let was = self.nodes[j - 1].layer.output();
-                    let units = differs
-                        .as_deref()
-                        .filter(|_| node.tap.is_none())
-                        .and_then(|c| {
-                            let now = gather(was, m, c, &outputs[j - 1 - from]);
-                            layer.forward_units(own, base_input, step, c, &now)
-                        });
-                    (
-                        units.unwrap_or_else(|| layer.forward(own, input, skip)),
-                        None,
-                    )
+                    let mut units = None;
+                    if let Some(c) = differs.as_deref().filter(|_| node.tap.is_none()) {
+                        let mut now = ws.take(m * was.size() / was.feature_axis().1 * c.len());
+                        gather_into(was, m, c, &outputs[j - 1 - from], &mut now);
+                        let mut buffer = ws.take(step.out.len());
+                        units =
+                            layer.forward_units_into(own, base_input, step, c, &now, &mut buffer);
+                        ws.give(buffer);
+                        ws.give(now);
+                    }
+                    if let Some(set) = differs {
+                        ws.give_set(set);
+                    }
+                    let step = units.unwrap_or_else(|| {
+                        let mut buffer = ws.take(m * node.layer.output().size());
+                        let step = layer.forward_into(own, input, skip, &mut buffer);
+                        ws.give(buffer);
+                        step
+                    });
+                    (step, None)
                 }
             };
-            let (step, a) = finish(j, step, now.as_deref());
+            let (step, a) = self.finish(ws, base, j, step, now.as_deref(), output_activation);
             steps.push(step);
             outputs.push(a);
             changed.push(now);
         }
+        if let Some((_, a)) = fresh {
+            ws.give(a);
+        }
+        for set in changed.drain(..).flatten() {
+            ws.give_set(set);
+        }
+        ws.changed = changed;
         Tail {
             from,
             steps,
             outputs,
-            settled: None,
+            settled,
+            moved_channel,
         }
+    }
+
+    /// A recomputed layer's step and activation (nothing for an output layer the loss does not
+    /// read), `changed` the channels of z that differ from the base's when known. For the loss
+    /// alone (not `output_activation`), a layer below the output whose activation has no break
+    /// point keeps no z (the check reads a tail's z only for the sides of a kink): its
+    /// activation is made in z's place, no copy.
+    fn finish<S: LayerScalar>(
+        &self,
+        ws: &mut Workspace<S>,
+        base: &Trace<S>,
+        j: usize,
+        mut step: Step<S>,
+        changed: Option<&[usize]>,
+        output_activation: bool,
+    ) -> (Step<S>, Array2<S>) {
+        let node = &self.nodes[j];
+        let act = node.activation;
+        let rows = step.out.nrows();
+        let last = j == self.nodes.len() - 1;
+        if last && !output_activation {
+            return (step, Array2::zeros((rows, 0)));
+        }
+        let keep_z =
+            output_activation || last || act.break_point().is_some() || act == Activation::Softmax;
+        if !keep_z && (changed.is_none() || act == Activation::Identity) {
+            let mut a = std::mem::replace(&mut step.out, Array2::zeros((rows, 0)));
+            act.apply_in_place(&mut a);
+            return (step, a);
+        }
+        let a = self.activate_changed(ws, node, &step.out, &base.outputs[j], changed);
+        (step, a)
     }
 
     /// The activation of `z`, a layer's output that differs from the base pass's only in the
     /// channels `changed` (when known): those channels from z, the rest the base's `a`.
     fn activate_changed<S: Scalar>(
         &self,
+        ws: &mut Workspace<S>,
         node: &Node,
         z: &Array2<S>,
         base: &Array2<S>,
@@ -796,22 +953,14 @@ impl Graph {
         if !(z.is_standard_layout() && base.is_standard_layout()) {
             return self.activate(node, z);
         }
-        let now = self.activated_channels(node, z, changed);
-        put(node.layer.output(), z.nrows(), changed, &now, base.clone())
-    }
-
-    /// The activations of channels `changed` of `z`, gathered ([`gather`]). Element-wise, so
-    /// the same bits as activating the whole output; in one call, since a dense layer's channel
-    /// is one value per sample and a call per value cost more than the value.
-    fn activated_channels<S: Scalar>(
-        &self,
-        node: &Node,
-        z: &Array2<S>,
-        changed: &[usize],
-    ) -> Vec<S> {
-        let mut now = gather(node.layer.output(), z.nrows(), changed, z);
+        let shape = node.layer.output();
+        let mut now = ws.take(z.len() / shape.feature_axis().1 * changed.len());
+        gather_into(shape, z.nrows(), changed, z, &mut now);
         node.activation.apply_values(&mut now);
-        now
+        let mut a = ws.copy_of(base);
+        put(shape, z.nrows(), changed, &now, &mut a);
+        ws.give(now);
+        a
     }
 
     fn activate<S: Scalar>(&self, node: &Node, z: &Array2<S>) -> Array2<S> {
@@ -840,7 +989,9 @@ impl Graph {
     }
 
     /// The branches of the layers a [`Tail`] recomputed: entry i is layer `tail.from + i`, to be
-    /// compared with the base pass's layers from `tail.from` on.
+    /// compared with the base pass's layers from `tail.from` on. For tails of
+    /// [`Graph::forward_from`] and [`Graph::forward_moved`], which keep every z; a tail of
+    /// [`Graph::moved_loss`] keeps z only where a kink test reads it ([`Graph::tail_crossed`]).
     pub fn branches_from<S: Scalar>(&self, tail: &Tail<S>) -> Branches {
         let layers = self.nodes[tail.from..]
             .iter()
@@ -881,6 +1032,13 @@ impl Graph {
     ) -> S {
         let (z, a) = tail.output_layer();
         self.loss_at(params, z, a, y)
+    }
+
+    /// The loss from a [`Tail`] with `l2_sum` as its Σ w² (the L2 term's sum, kept by a caller
+    /// that moved the parameters itself).
+    pub fn loss_from_sum<S: LayerScalar>(&self, tail: &Tail<S>, y: ArrayView2<S>, l2_sum: S) -> S {
+        let (z, a) = tail.output_layer();
+        self.loss_with(z, a, y, l2_sum)
     }
 
     /// The loss from a [`Graph::forward_moved`] tail: `params` are the unmoved values and
@@ -1237,30 +1395,28 @@ fn union(a: Option<&[usize]>, b: Option<&[usize]>) -> Option<Vec<usize>> {
     Some(all)
 }
 
-/// The values of channels `changed` of a standard-layout batch `a` of `m` samples of `shape`:
-/// each channel in turn, over its [runs](Shape::channel_runs) in order — what
-/// [`Layer::forward_units`](super::Layer::forward_units) reads of a changed input.
-fn gather<S: Copy>(shape: Shape, m: usize, changed: &[usize], a: &Array2<S>) -> Vec<S> {
+/// Appends to `out` the values of channels `changed` of a standard-layout batch `a` of `m`
+/// samples of `shape`: each channel in turn, over its [runs](Shape::channel_runs) in order —
+/// what [`Layer::forward_units`](super::Layer::forward_units) reads of a changed input.
+fn gather_into<S: Copy>(
+    shape: Shape,
+    m: usize,
+    changed: &[usize],
+    a: &Array2<S>,
+    out: &mut Vec<S>,
+) {
     let values = a
         .as_slice()
         .expect("the graph's batches are standard layout");
-    let mut out = Vec::new();
     for &c in changed {
         for run in shape.channel_runs(m, c) {
             out.extend_from_slice(&values[run]);
         }
     }
-    out
 }
 
-/// `a` with channels `changed` set to `now` ([`gather`]'s order).
-fn put<S: Copy>(
-    shape: Shape,
-    m: usize,
-    changed: &[usize],
-    now: &[S],
-    mut a: Array2<S>,
-) -> Array2<S> {
+/// Sets channels `changed` of `a` to `now` ([`gather_into`]'s order).
+fn put<S: Copy>(shape: Shape, m: usize, changed: &[usize], now: &[S], a: &mut Array2<S>) {
     let values = a
         .as_slice_mut()
         .expect("the graph's batches are standard layout");
@@ -1272,12 +1428,155 @@ fn put<S: Copy>(
             rest = more;
         }
     }
-    a
 }
 
-/// Whether two value lists are the same bit for bit.
-fn same_values<S: Scalar>(a: &[S], b: &[S]) -> bool {
-    a.len() == b.len() && a.iter().zip(b).all(|(x, y)| x.same_bits(*y))
+/// Whether channel `c` of `a` holds `now` ([`gather_into`]'s order) bit for bit.
+fn same_channel<S: Scalar>(shape: Shape, m: usize, c: usize, now: &[S], a: &Array2<S>) -> bool {
+    let values = a
+        .as_slice()
+        .expect("the graph's batches are standard layout");
+    let mut was = shape.channel_runs(m, c).flat_map(|run| &values[run]);
+    now.iter()
+        .all(|v| was.next().is_some_and(|w| v.same_bits(*w)))
+        && was.next().is_none()
+}
+
+/// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
+/// without a branch per value (they vectorise), stopping at the first block that differs.
+fn sides_differ<S: Scalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
+    let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
+    match (a.as_slice(), b.as_slice()) {
+        (Some(a), Some(b)) => a
+            .chunks(64)
+            .zip(b.chunks(64))
+            .any(|(x, y)| x.iter().zip(y).fold(false, |any, p| any | differs(p))),
+        _ => a.iter().zip(b).any(differs),
+    }
+}
+
+/// The buffers one thread reuses across the perturbed losses of a check
+/// ([`Graph::moved_loss_in`]): the last tail (which the caller reads until the next loss) and
+/// the arrays, value lists and channel sets of the tails before it. Nothing in it carries
+/// values from one loss to the next: each buffer is written whole before it is read.
+#[derive(Debug)]
+pub struct Workspace<S> {
+    tail: Option<Tail<S>>,
+    /// Spare value buffers, any length (an array's is taken back as its list of values).
+    spare: Vec<Vec<S>>,
+    /// Spare channel sets.
+    sets: Vec<Vec<usize>>,
+    /// The tail's lists, emptied.
+    steps: Vec<Step<S>>,
+    outputs: Vec<Array2<S>>,
+    changed: Vec<Option<Vec<usize>>>,
+}
+
+/// Spare buffers a workspace keeps: a tail holds a few per layer it recomputes.
+const SPARE: usize = 16;
+
+impl<S: Copy> Workspace<S> {
+    pub fn new() -> Self {
+        Workspace {
+            tail: None,
+            spare: Vec::new(),
+            sets: Vec::new(),
+            steps: Vec::new(),
+            outputs: Vec::new(),
+            changed: Vec::new(),
+        }
+    }
+
+    /// The tail of the last [`Graph::moved_loss_in`].
+    pub fn tail(&self) -> Option<&Tail<S>> {
+        self.tail.as_ref()
+    }
+
+    /// An empty buffer: the smallest spare that holds `len` values, else the largest (which
+    /// grows), else a new one with no room yet (a kind that does not use it costs nothing).
+    fn take(&mut self, len: usize) -> Vec<S> {
+        let fits = (0..self.spare.len())
+            .filter(|&i| self.spare[i].capacity() >= len)
+            .min_by_key(|&i| self.spare[i].capacity());
+        let largest = || (0..self.spare.len()).max_by_key(|&i| self.spare[i].capacity());
+        let mut v = match fits.or_else(largest) {
+            Some(i) => self.spare.swap_remove(i),
+            None => Vec::new(),
+        };
+        v.clear();
+        v
+    }
+
+    fn give(&mut self, v: Vec<S>) {
+        if v.capacity() > 0 && self.spare.len() < SPARE {
+            self.spare.push(v);
+        }
+    }
+
+    /// A copy of `a` (standard layout) in a spare buffer.
+    fn copy_of(&mut self, a: &Array2<S>) -> Array2<S> {
+        let mut v = self.take(a.len());
+        match a.as_slice() {
+            Some(values) => v.extend_from_slice(values),
+            None => v.extend(a.iter().copied()),
+        }
+        Array2::from_shape_vec(a.raw_dim(), v).expect("as many values as the shape")
+    }
+
+    /// A channel set holding `c`.
+    fn set(&mut self, c: &[usize]) -> Vec<usize> {
+        let mut v = self.sets.pop().unwrap_or_default();
+        v.clear();
+        v.extend_from_slice(c);
+        v
+    }
+
+    fn give_set(&mut self, v: Vec<usize>) {
+        if self.sets.len() < SPARE {
+            self.sets.push(v);
+        }
+    }
+
+    fn give_array(&mut self, a: Array2<S>) {
+        let (v, offset) = a.into_raw_vec_and_offset();
+        if offset.is_none_or(|o| o == 0) {
+            self.give(v);
+        }
+    }
+
+    /// Takes the last tail's buffers back.
+    fn recycle(&mut self) {
+        let Some(tail) = self.tail.take() else {
+            return;
+        };
+        let Tail {
+            mut steps,
+            mut outputs,
+            settled,
+            moved_channel,
+            ..
+        } = tail;
+        for step in steps.drain(..) {
+            self.give_array(step.out);
+        }
+        for a in outputs.drain(..) {
+            self.give_array(a);
+        }
+        if let Some((z, a)) = settled {
+            self.give_array(z);
+            self.give_array(a);
+        }
+        if let Some((_, z)) = moved_channel {
+            self.give(z);
+        }
+        self.steps = steps;
+        self.outputs = outputs;
+    }
+}
+
+impl<S: Copy> Default for Workspace<S> {
+    fn default() -> Self {
+        Workspace::new()
+    }
 }
 
 /// One layer's branches from its step: the kind's choices and the activation's sides.

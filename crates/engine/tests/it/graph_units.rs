@@ -18,7 +18,7 @@
 use ndarray::{Array2, ArrayD, Ix2};
 use plumb_engine::graph::{
     Dense, Graph, GraphBuilder, L2Divisor, LayerScalar, LossConfig, Moved, Reduction, Shape,
-    Storage,
+    Storage, Workspace,
 };
 use plumb_engine::{Activation, Loss, Rng};
 
@@ -106,6 +106,8 @@ fn units_agree<S: LayerScalar>(g: &Graph, seed: u64, eps: f64, what: &str) -> (u
     let gamma = |n: usize| (n + 1) as f64 * u / (1.0 - (n + 1) as f64 * u);
     let n_max = g.tensors().iter().map(|t| t.spec.fan_in).max().unwrap();
     let (mut updated, mut recomputed) = (0, 0);
+    // One workspace for every loss below, as a check's thread reuses it.
+    let mut ws = Workspace::new();
     for (t, spec) in g.tensors().iter().enumerate() {
         let j = spec.layer;
         let size = p[t].len();
@@ -128,6 +130,16 @@ fn units_agree<S: LayerScalar>(g: &Graph, seed: u64, eps: f64, what: &str) -> (u
                 // Leaving out an output softmax the loss does not read changes nothing.
                 let (lm, _) = g.moved_loss(&p, x.view(), &base, y.view(), l2, &moved);
                 assert_eq!(li.re().to_bits(), lm.re().to_bits(), "{at}: moved_loss");
+                // In a reused workspace: the same bits, and the same kink verdict as the whole
+                // tail's (the moved layer's changed unit alone where its output is not built).
+                let lw = g.moved_loss_in(&mut ws, &p, x.view(), &base, y.view(), l2, &moved);
+                assert_eq!(li.re().to_bits(), lw.re().to_bits(), "{at}: moved_loss_in");
+                let lean = ws.tail().unwrap();
+                assert_eq!(
+                    g.tail_crossed(&base, lean),
+                    g.tail_crossed(&base, &tail),
+                    "{at}: crossed"
+                );
 
                 let mut q = p.clone();
                 q[t].as_slice_mut().unwrap()[k] += delta;
