@@ -174,10 +174,14 @@ pub fn check_graph_gradient(
         config: &external,
         plan: &plan,
     };
-    let (loss, result) = match config.precision {
+    // The whole check on one of rayon's threads: a request's parallel losses are then spawned
+    // from inside the pool, not handed to it from outside and waited for (a caller outside
+    // the pool sleeps and is woken once per request: the demo CNN's check, whose directions are
+    // small requests of three losses each, took 1.07x its time so; benches/README.md).
+    let (loss, result) = rayon::scope(|_| match config.precision {
         Precision::F64 => run.run::<f64, Complex<f64>>(),
         Precision::F32 => run.run::<f32, Complex<f32>>(),
-    };
+    });
     Ok(GraphCheck {
         method: config.method,
         precision: config.precision,
