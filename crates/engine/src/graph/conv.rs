@@ -42,6 +42,14 @@ pub enum Padding {
     Same,
 }
 
+/// One sample's input channels to a conv loop: as they are, and laid out with their padding
+/// ([`Conv::pad_into`]; empty where a padded copy would not pay).
+#[derive(Clone, Copy)]
+struct Inputs<'a, S> {
+    plain: &'a [S],
+    padded: &'a [S],
+}
+
 /// A convolution's settings, as a description gives them. 1-D settings sit in the second slot of
 /// each pair, the first being 1 (or 0 for padding).
 #[derive(Clone, Debug, PartialEq)]
@@ -194,12 +202,29 @@ impl Conv {
         [0, 1].map(|a| w.before[a] + w.input[a] + w.after[a])
     }
 
-    /// `x` (whole channels of one sample) laid out with its padding as zeros into `buf`.
+    /// Whether the padded copy of an input is small against the work it serves: a padded
+    /// channel within four times its input plus the taps the outputs read. Padding or dilation
+    /// far past the kernel with a large stride (a handful of outputs over a vast padded plane)
+    /// would otherwise allocate in proportion to the padding, not to the input or the work; such
+    /// a layer reads the unpadded input tap by tap ([`Conv::sum_skipping`]), the same sums.
+    fn padding_pays(&self) -> bool {
+        let w = &self.window;
+        let [ph, pw] = self.padded();
+        let work = w.in_positions() + w.out_positions() * w.taps();
+        ph.checked_mul(pw)
+            .is_some_and(|padded| padded <= work.saturating_mul(4))
+    }
+
+    /// `x` (whole channels of one sample) laid out with its padding as zeros into `buf`; `buf`
+    /// left empty where the padding does not pay ([`Conv::padding_pays`]).
     fn pad_into<S: Scalar>(&self, x: &[S], buf: &mut Vec<S>) {
         let w = &self.window;
         let ([ph, pw], [iw, ip]) = (self.padded(), [w.input[1], w.in_positions()]);
         let channels = x.len() / ip;
         buf.clear();
+        if !self.padding_pays() {
+            return;
+        }
         buf.resize(channels * ph * pw, S::zero());
         for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
             for (y, xr) in xc.chunks_exact(iw).enumerate() {
@@ -218,25 +243,31 @@ impl Conv {
     /// compiled for AVX2 as well; that build does the same IEEE operations on each value (no
     /// fused multiply-add is enabled, and Rust never contracts a product and a sum into one),
     /// so its results are bit for bit the same.
-    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
+    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, xp, out) };
+            unsafe { self.correlate_avx2(w, bias, x, out) };
             return;
         }
-        self.correlate_loop(w, bias, xp, out);
+        self.correlate_loop(w, bias, x, out);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn correlate_avx2<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
-        self.correlate_loop(w, bias, xp, out);
+    unsafe fn correlate_avx2<S: Scalar>(
+        &self,
+        w: &[S],
+        bias: Option<S>,
+        x: Inputs<S>,
+        out: &mut [S],
+    ) {
+        self.correlate_loop(w, bias, x, out);
     }
 
     #[inline(always)]
-    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, xp: &[S], out: &mut [S]) {
-        self.sum_into(w, xp, out, true);
+    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
+        self.sum_into(w, x, out, true);
         if let Some(b) = bias {
             out.iter_mut().for_each(|v| *v += b);
         }
@@ -249,17 +280,19 @@ impl Conv {
     /// pass over the row per tap was bound by its loads and stores). A tap in the padding adds
     /// w · 0 = ±0, which leaves every sum as skipping it would (a sum that starts at +0 never
     /// becomes −0, and s + ±0 = s otherwise), so the padding costs no test per tap; with a
-    /// weight that is not finite (w · 0 is NaN) the taps in the padding are skipped instead.
+    /// weight that is not finite (w · 0 is NaN), or no padded copy (it would not pay), the
+    /// taps in the padding are skipped instead.
     #[inline(always)]
-    fn sum_into<S: Scalar>(&self, w: &[S], xp: &[S], out: &mut [S], fresh: bool) {
+    fn sum_into<S: Scalar>(&self, w: &[S], x: Inputs<S>, out: &mut [S], fresh: bool) {
         let ow = self.window.output[1];
         // w · 0 is ±0 (in every part of a complex or dual number) unless w is not finite.
         let z = S::zero();
         let finite = w.iter().all(|&v| (v * z + z).same_bits(z));
+        let xp = x.padded;
         for (oy, row) in out.chunks_exact_mut(ow).enumerate() {
-            if !finite {
+            if !finite || xp.is_empty() {
                 for (ox, v) in row.iter_mut().enumerate() {
-                    self.sum_skipping(w, xp, oy, ox, v, fresh);
+                    self.sum_skipping(w, x.plain, oy, ox, v, fresh);
                 }
                 continue;
             }
@@ -320,57 +353,56 @@ impl Conv {
         *out = acc;
     }
 
-    /// [`Conv::sum_into`] for the one value at output position (oy, ox), the taps in the
-    /// padding skipped.
+    /// [`Conv::sum_into`] for the one value at output position (oy, ox) of the unpadded input
+    /// `x`, the taps in the padding skipped.
     #[cold]
     fn sum_skipping<S: Scalar>(
         &self,
         w: &[S],
-        xp: &[S],
+        x: &[S],
         oy: usize,
         ox: usize,
         out: &mut S,
         fresh: bool,
     ) {
         let win = &self.window;
-        let ([ph, pw], taps, iw) = (self.padded(), win.taps(), win.input[1]);
         let mut acc = if fresh { S::zero() } else { *out };
-        for (wc, xc) in w.chunks_exact(taps).zip(xp.chunks_exact(ph * pw)) {
-            win.for_each_tap(oy, ox, |t, q| {
-                let (y, x) = (q / iw + win.before[0], q % iw + win.before[1]);
-                acc += wc[t] * xc[y * pw + x];
-            });
+        for (wc, xc) in w
+            .chunks_exact(win.taps())
+            .zip(x.chunks_exact(win.in_positions()))
+        {
+            win.for_each_tap(oy, ox, |t, q| acc += wc[t] * xc[q]);
         }
         *out = acc;
     }
 
-    /// One sample's output (every out-channel) moved by the change `dp` of in-channel `c` of
-    /// its input (padded): [`Conv::sum_into`] of each out-channel's taps of `c` onto its
-    /// values. `w` is the whole weight, `row` the sample's output.
-    fn add_change<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
+    /// One sample's output (every out-channel) moved by the change `d` of in-channel `c` of
+    /// its input: [`Conv::sum_into`] of each out-channel's taps of `c` onto its values. `w` is
+    /// the whole weight, `row` the sample's output.
+    fn add_change<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.add_change_avx2(w, c, dp, row) };
+            unsafe { self.add_change_avx2(w, c, d, row) };
             return;
         }
-        self.add_change_loop(w, c, dp, row);
+        self.add_change_loop(w, c, d, row);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
-        self.add_change_loop(w, c, dp, row);
+    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
+        self.add_change_loop(w, c, d, row);
     }
 
     #[inline(always)]
-    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, dp: &[S], row: &mut [S]) {
+    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
         let taps = self.window.taps();
         let per = self.window.channels * taps;
         let op = self.window.out_positions();
         for (o, out) in row.chunks_exact_mut(op).enumerate() {
             let at = o * per + c * taps;
-            self.sum_into(&w[at..at + taps], dp, out, false);
+            self.sum_into(&w[at..at + taps], d, out, false);
         }
     }
 
@@ -494,9 +526,13 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
             self.pad_into(xi, &mut xp);
+            let x = Inputs {
+                plain: xi,
+                padded: &xp,
+            };
             for (c, channel) in row.chunks_exact_mut(op).enumerate() {
                 let b = bias.map(|b| b[c]);
-                self.correlate(&ws[c * per..(c + 1) * per], b, &xp, channel);
+                self.correlate(&ws[c * per..(c + 1) * per], b, x, channel);
             }
         }
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
@@ -596,7 +632,11 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut xp = Vec::new();
         for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
             self.pad_into(xi, &mut xp);
-            self.correlate(&w, b, &xp, &mut row[channel * op..(channel + 1) * op]);
+            let x = Inputs {
+                plain: xi,
+                padded: &xp,
+            };
+            self.correlate(&w, b, x, &mut row[channel * op..(channel + 1) * op]);
         }
         Some(Step::plain(out))
     }
@@ -644,7 +684,11 @@ impl<S: LayerScalar> Layer<S> for Conv {
                     *d = a - b;
                 }
                 self.pad_into(&dx, &mut dp);
-                self.add_change(ws, c, &dp, row);
+                let d = Inputs {
+                    plain: &dx,
+                    padded: &dp,
+                };
+                self.add_change(ws, c, d, row);
             }
         }
         Some(Step::plain(out))

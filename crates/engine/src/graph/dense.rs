@@ -336,6 +336,13 @@ impl<S: LayerScalar> Layer<S> for Dense {
             return false;
         };
         let unit = self.moved_channel(moved.tensor, moved.index).unwrap_or(0);
+        // An entry past the tensor would read a shifted column without complaint (the checker
+        // only asks for entries it sampled within their tensors).
+        debug_assert!(
+            unit < self.units,
+            "entry {} past the layer's units",
+            moved.index
+        );
         // Unit r is column r of one row per sample and step; z + δ·x[:, c] (bias: z + δ), as
         // [`Layer::forward_moved`] adds it to its copy of the base.
         let column = z.iter().skip(unit).step_by(self.units);

@@ -187,6 +187,36 @@ fn a_tap_in_the_zero_padding_adds_nothing_even_for_an_infinite_weight() {
     );
 }
 
+/// Dumoulin & Visin (arXiv 1603.07285, §2, relationship 6: out = ⌊(i + 2p − k)/s⌋ + 1): a 4 × 4
+/// input, kernel 1, stride and padding p gives ⌊(3 + 2p)/p⌋ + 1 = 3 outputs per axis for any
+/// p ≥ 4, output (a, b) reading input (a·p − p, b·p − p): only the centre reads the input (its
+/// first pixel), every other output reads the zero padding. Worked by hand with w = 2, bias 0.5,
+/// x₀₀ = 3: the centre 2·3 + 0.5 = 6.5, the rest 0.5. At p = 4 the layer pads a copy of the
+/// input; at p = 10⁶ a padded copy would be 4·10¹² values, so the layer must read the input tap
+/// by tap — the same numbers, in time and memory of the input and the work, not the padding.
+#[test]
+fn a_vast_padding_with_a_large_stride_costs_what_the_outputs_read() {
+    let input = Shape::Image {
+        channels: 1,
+        height: 4,
+        width: 4,
+    };
+    let x = Array2::from_shape_vec((1, 16), (0..16).map(|k| 3.0 + k as f64).collect()).unwrap();
+    let w = ArrayD::from_shape_vec(IxDyn(&[1, 1, 1, 1]), vec![2.0]).unwrap();
+    let b = ArrayD::from_shape_vec(IxDyn(&[1]), vec![0.5]).unwrap();
+    let mut expected = vec![0.5; 9];
+    expected[4] = 6.5;
+    for p in [4, 1_000_000] {
+        let mut settings = ConvSettings::conv2d(1, [1, 1]);
+        settings.stride = [p, p];
+        settings.padding = Padding::Explicit([p, p]);
+        let conv = Conv::new(&settings, &input).unwrap();
+        let params = [w.clone(), b.clone()];
+        let y = Layer::<f64>::forward(&conv, &params, x.view(), None).out;
+        assert_eq!(y.row(0).to_vec(), expected, "padding {p}");
+    }
+}
+
 /// He et al. 2015 ("Delving deep into rectifiers", §2.2): a convolution's fan-in is the input
 /// channels times the kernel area; the bias, scales and shifts never decay under L2.
 #[test]
