@@ -453,6 +453,20 @@ fn corrupt_zip_archives() {
         &["member `w.npy`", "declares 1000 bytes"],
     );
 
+    // A stored member's data damaged (its last byte, inside the array): read in place, it is
+    // held to the CRC-32 the archive records for it (the zip format's own check).
+    let mut flipped = zip_of(
+        &[("w.npy", &fixture("c_f8.npy"))],
+        CompressionMethod::Stored,
+    );
+    let local = find(&flipped, b"PK\x01\x02") - 1;
+    flipped[local] ^= 0x01;
+    let path = put(&dir, "flipped.npz", &flipped);
+    assert_has(
+        &tensor_error(&path),
+        &["flipped.npz", "member `w.npy`", "checksum", "damaged"],
+    );
+
     // Members that are not arrays, and two arrays of one name.
     let npy = fixture("c_f8.npy");
     let path = put(
