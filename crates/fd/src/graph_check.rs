@@ -545,9 +545,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     fn perturbed_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (S, Tail<S>) {
         let graph = self.graph;
         let moves = |t: usize| v[t].iter().any(|w| *w != 0.0);
-        let from = (0..v.len())
-            .find(|&t| moves(t))
-            .map_or(0, |t| graph.tensors()[t].layer);
+        let from = self.lowest_moved(v);
         let mut change = S::zero();
         let mut moving = |j: usize, own: &[ArrayD<S>]| -> Option<Vec<ArrayD<S>>> {
             let tensors = graph.nodes()[j].tensors();
@@ -584,11 +582,14 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
 
     /// [`Eval::on_tie`] for the step d·v.
     fn on_tie_along(&self, v: &[Vec<f64>], d: f64) -> bool {
-        let from = v
-            .iter()
+        self.ties_from[self.lowest_moved(v)] > 0 && self.at_along(v, d).1
+    }
+
+    /// The lowest layer the direction v moves (tensors are numbered in layer order), 0 if none.
+    fn lowest_moved(&self, v: &[Vec<f64>]) -> usize {
+        v.iter()
             .position(|vt| vt.iter().any(|w| *w != 0.0))
-            .map_or(0, |t| self.graph.tensors()[t].layer);
-        self.ties_from[from] > 0 && self.at_along(v, d).1
+            .map_or(0, |t| self.graph.tensors()[t].layer)
     }
 
     fn tail(&self, moved: &[ArrayD<S>], from: usize) -> Tail<S> {
