@@ -43,7 +43,7 @@ pub enum Padding {
 }
 
 /// One sample's input channels to a conv loop: as they are, and laid out with their padding
-/// ([`Conv::pad_into`]; empty where a padded copy would not pay).
+/// ([`Conv::inputs`]; empty where a padded copy would not pay).
 #[derive(Clone, Copy)]
 struct Inputs<'a, S> {
     plain: &'a [S],
@@ -215,22 +215,25 @@ impl Conv {
             .is_some_and(|padded| padded <= work.saturating_mul(4))
     }
 
-    /// `x` (whole channels of one sample) laid out with its padding as zeros into `buf`; `buf`
-    /// left empty where the padding does not pay ([`Conv::padding_pays`]).
-    fn pad_into<S: Scalar>(&self, x: &[S], buf: &mut Vec<S>) {
+    /// `x` (whole channels of one sample) and its copy laid out with its padding as zeros in
+    /// `buf`; `buf` left empty where the padding does not pay ([`Conv::padding_pays`]).
+    fn inputs<'a, S: Scalar>(&self, x: &'a [S], buf: &'a mut Vec<S>) -> Inputs<'a, S> {
         let w = &self.window;
         let ([ph, pw], [iw, ip]) = (self.padded(), [w.input[1], w.in_positions()]);
         let channels = x.len() / ip;
         buf.clear();
-        if !self.padding_pays() {
-            return;
-        }
-        buf.resize(channels * ph * pw, S::zero());
-        for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
-            for (y, xr) in xc.chunks_exact(iw).enumerate() {
-                let at = (y + w.before[0]) * pw + w.before[1];
-                bc[at..at + iw].copy_from_slice(xr);
+        if self.padding_pays() {
+            buf.resize(channels * ph * pw, S::zero());
+            for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
+                for (y, xr) in xc.chunks_exact(iw).enumerate() {
+                    let at = (y + w.before[0]) * pw + w.before[1];
+                    bc[at..at + iw].copy_from_slice(xr);
+                }
             }
+        }
+        Inputs {
+            plain: x,
+            padded: buf,
         }
     }
 
@@ -238,7 +241,7 @@ impl Conv {
     /// and each tap in row-major order, w · x added, then the bias (last, so that outputs with
     /// equal sums stay equal when the bias moves: a max-pool tie above stays a tie, as it does
     /// in exact arithmetic). `w` holds the out-channel's in-channels × taps weights, `xp` the
-    /// sample's input padded ([`Conv::pad_into`]). Every pass that computes a conv output value
+    /// sample's input padded ([`Conv::inputs`]). Every pass that computes a conv output value
     /// goes through here, so they all round alike. On x86-64 machines with AVX2 the loop is
     /// compiled for AVX2 as well; that build does the same IEEE operations on each value (no
     /// fused multiply-add is enabled, and Rust never contracts a product and a sum into one),
@@ -525,11 +528,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut out = vec![S::zero(); m * o * op];
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
-            self.pad_into(xi, &mut xp);
-            let x = Inputs {
-                plain: xi,
-                padded: &xp,
-            };
+            let x = self.inputs(xi, &mut xp);
             for (c, channel) in row.chunks_exact_mut(op).enumerate() {
                 let b = bias.map(|b| b[c]);
                 self.correlate(&ws[c * per..(c + 1) * per], b, x, channel);
@@ -631,11 +630,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let width = self.settings.channels * op;
         let mut xp = Vec::new();
         for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
-            self.pad_into(xi, &mut xp);
-            let x = Inputs {
-                plain: xi,
-                padded: &xp,
-            };
+            let x = self.inputs(xi, &mut xp);
             self.correlate(&w, b, x, &mut row[channel * op..(channel + 1) * op]);
         }
         Some(Step::plain(out))
@@ -683,11 +678,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
                 for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
                     *d = a - b;
                 }
-                self.pad_into(&dx, &mut dp);
-                let d = Inputs {
-                    plain: &dx,
-                    padded: &dp,
-                };
+                let d = self.inputs(&dx, &mut dp);
                 self.add_change(ws, c, d, row);
             }
         }
