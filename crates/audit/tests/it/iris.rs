@@ -4,34 +4,22 @@
 
 use std::path::Path;
 
-use ndarray::Array2;
 use plumb_audit::{GraphWeights, KindThresholds, Thresholds, audit_graph, fitted_shapes};
 use plumb_engine::{Batch, Init, Rng};
-use plumb_formats::{DType, GraphDescription};
+use plumb_formats::{DType, GraphDescription, read_data};
 
-/// fixtures/data/iris.csv (its provenance is in fixtures/data/README.md): four measurements, then
-/// the species 0–2.
+/// fixtures/data/iris.csv (its provenance is in fixtures/data/README.md) read as `plumb audit -d`
+/// reads it (four measurements, the species 0–2 one-hot encoded), then standardised per column.
 fn iris() -> Batch {
-    let text = include_str!("../../../../fixtures/data/iris.csv");
-    let mut records = Vec::new();
-    let mut labels = Vec::new();
-    for line in text.lines().skip(1) {
-        let fields: Vec<f64> = line.split(',').map(|f| f.parse().unwrap()).collect();
-        records.extend_from_slice(&fields[..4]);
-        labels.push(fields[4] as usize);
-    }
-    let m = labels.len();
-    let mut x = Array2::from_shape_vec((m, 4), records).unwrap();
-    for mut col in x.columns_mut() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../fixtures/data/iris.csv");
+    let mut batch = read_data(&path, 4, 3).unwrap();
+    for mut col in batch.x.columns_mut() {
         let mean = col.mean().unwrap();
         let sd = col.std(0.0);
         col.mapv_inplace(|v| (v - mean) / sd);
     }
-    let mut y = Array2::zeros((m, 3));
-    for (i, &c) in labels.iter().enumerate() {
-        y[[i, c]] = 1.0;
-    }
-    Batch { x, y }
+    assert_eq!(batch.y.sum_axis(ndarray::Axis(0)).to_vec(), [50.0; 3]);
+    batch
 }
 
 #[test]
