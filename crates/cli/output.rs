@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result, bail};
 use plumb_formats::{Existing, MAX_REPORT_BYTES, read_input, write_file};
 use plumb_report::{
-    BASELINE_VERSION, Baseline, Cell, ColorChoice, Document, Format, NetworkId, Tone, Verdict,
-    render_html, render_json, render_junit, render_markdown, render_table, use_color,
+    BASELINE_VERSION, Baseline, Cell, ColorChoice, Document, Format, NetworkId, Table, Tone,
+    Verdict, render_html, render_json, render_junit, render_markdown, render_table, use_color,
 };
 use serde::Serialize;
 
@@ -257,4 +257,62 @@ pub fn directions_cell(directions: usize, mismatches: usize) -> Cell {
             Tone::Plain
         },
     )
+}
+
+/// One tensor's row of a finite-difference check's table (`check`'s own, `probe`'s self-check):
+/// the figures both reports carry, `bound` only where the report has it.
+pub struct CheckRow<'a> {
+    pub name: &'a str,
+    pub parameters: usize,
+    pub checked: usize,
+    pub max_rel: f64,
+    pub median_rel: f64,
+    pub median_bound: Option<f64>,
+    pub mismatches: usize,
+    pub unreliable: usize,
+    pub unsettled: usize,
+    pub directions: usize,
+    pub direction_mismatches: usize,
+    pub verdict: Verdict,
+}
+
+/// The per-tensor table of a finite-difference check, one row per tensor; the `bound` column
+/// when the first row has one.
+pub fn check_table<'a>(rows: impl IntoIterator<Item = CheckRow<'a>>) -> Table {
+    let mut rows = rows.into_iter().peekable();
+    let bound = rows.peek().is_some_and(|r| r.median_bound.is_some());
+    let mut head = vec!["tensor", "parameters", "checked", "max rel", "median rel"];
+    head.extend(bound.then_some("bound"));
+    head.extend([
+        "mismatch",
+        "unreliable",
+        "unsettled",
+        "directions",
+        "verdict",
+    ]);
+    let mut t = Table::new(head);
+    for r in rows {
+        let bad = if r.mismatches > 0 {
+            Tone::Bad
+        } else {
+            Tone::Plain
+        };
+        let mut cells = vec![
+            Cell::from(r.name.to_string()),
+            Cell::from(r.parameters.to_string()),
+            Cell::from(r.checked.to_string()),
+            Cell::new(num(r.max_rel), bad),
+            Cell::from(num(r.median_rel)),
+        ];
+        cells.extend(bound.then(|| Cell::from(num(r.median_bound.unwrap_or(f64::NAN)))));
+        cells.extend([
+            count_cell(r.mismatches, Tone::Bad),
+            count_cell(r.unreliable, Tone::Warn),
+            count_cell(r.unsettled, Tone::Warn),
+            directions_cell(r.directions, r.direction_mismatches),
+            verdict_cell(r.verdict),
+        ]);
+        t.push(cells);
+    }
+    t
 }

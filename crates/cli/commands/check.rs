@@ -13,7 +13,7 @@ use plumb_report::{
 
 use crate::args::{CheckArgs, MethodArg, PrecisionArg};
 use crate::inputs::load_graph;
-use crate::output::{Settings, count_cell, directions_cell, num, verdict_cell};
+use crate::output::{CheckRow, Settings, check_table, num};
 use crate::progress::Progress;
 
 pub fn method(m: MethodArg) -> Method {
@@ -343,39 +343,20 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
             ),
         ),
     ]));
-    let mut t = Table::new([
-        "tensor",
-        "parameters",
-        "checked",
-        "max rel",
-        "median rel",
-        "bound",
-        "mismatch",
-        "unreliable",
-        "unsettled",
-        "directions",
-        "verdict",
-    ]);
-    for tr in &r.tensors {
-        let bad = if tr.mismatches > 0 {
-            Tone::Bad
-        } else {
-            Tone::Plain
-        };
-        t.push([
-            Cell::from(tr.name.clone()),
-            Cell::from(tr.parameters.to_string()),
-            Cell::from(tr.checked.to_string()),
-            Cell::new(num(tr.max_rel_error), bad),
-            Cell::from(num(tr.median_rel_error)),
-            Cell::from(num(tr.median_bound)),
-            count_cell(tr.mismatches, Tone::Bad),
-            count_cell(tr.unreliable, Tone::Warn),
-            count_cell(tr.unsettled, Tone::Warn),
-            directions_cell(tr.directions, tr.direction_mismatches),
-            verdict_cell(tr.verdict),
-        ]);
-    }
+    let t = check_table(r.tensors.iter().map(|tr| CheckRow {
+        name: &tr.name,
+        parameters: tr.parameters,
+        checked: tr.checked,
+        max_rel: tr.max_rel_error,
+        median_rel: tr.median_rel_error,
+        median_bound: Some(tr.median_bound),
+        mismatches: tr.mismatches,
+        unreliable: tr.unreliable,
+        unsettled: tr.unsettled,
+        directions: tr.directions,
+        direction_mismatches: tr.direction_mismatches,
+        verdict: tr.verdict,
+    }));
     doc.push(Block::Table(t));
     if !r.worst.is_empty() {
         doc.push(Block::Heading("worst coordinates".into()));

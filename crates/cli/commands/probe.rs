@@ -7,7 +7,7 @@ use anyhow::{Result, bail};
 use plumb_diagnose::Tolerances;
 use plumb_fd::report::MAX_DIRECTIONS;
 use plumb_fd::{Method, Sample};
-use plumb_report::{Block, Case, Cell, Document, Severity, Table, Tone, Verdict};
+use plumb_report::{Block, Case, Document, Severity, Verdict};
 
 pub use plumb_probe::{ProbeOptions, ProbeReport, Source};
 
@@ -18,7 +18,7 @@ use crate::commands::compare::{
     certification_text, error_plot, gradient_cases, loss_case, tensor_table,
 };
 use crate::inputs::{WeightsSource, load_graph};
-use crate::output::{Settings, count_cell, directions_cell, num, verdict_cell};
+use crate::output::{CheckRow, Settings, check_table};
 use plumb_engine::Batch;
 use plumb_fd::report::GraphLoaded;
 use plumb_report::DataSource;
@@ -212,37 +212,20 @@ pub fn document_with(r: &ProbeReport, conventions: Option<(String, bool)>) -> Do
         "{} differences ({}), tolerance {:e}; {} of {} parameters, {} random directions per tensor.",
         s.method, s.step_rule, s.tolerance, s.checked, s.parameters, s.directions_per_tensor
     )));
-    let mut t = Table::new([
-        "tensor",
-        "parameters",
-        "checked",
-        "max rel",
-        "median rel",
-        "mismatch",
-        "unreliable",
-        "unsettled",
-        "directions",
-        "verdict",
-    ]);
-    for st in &s.tensors {
-        let bad = if st.mismatches > 0 {
-            Tone::Bad
-        } else {
-            Tone::Plain
-        };
-        t.push([
-            Cell::from(st.name.clone()),
-            Cell::from(st.parameters.to_string()),
-            Cell::from(st.checked.to_string()),
-            Cell::new(num(st.max_rel_error), bad),
-            Cell::from(num(st.median_rel_error)),
-            count_cell(st.mismatches, Tone::Bad),
-            Cell::from(st.unreliable.to_string()),
-            count_cell(st.unsettled, Tone::Warn),
-            directions_cell(st.directions, st.direction_mismatches),
-            verdict_cell(st.verdict),
-        ]);
-    }
+    let t = check_table(s.tensors.iter().map(|st| CheckRow {
+        name: &st.name,
+        parameters: st.parameters,
+        checked: st.checked,
+        max_rel: st.max_rel_error,
+        median_rel: st.median_rel_error,
+        median_bound: None,
+        mismatches: st.mismatches,
+        unreliable: st.unreliable,
+        unsettled: st.unsettled,
+        directions: st.directions,
+        direction_mismatches: st.direction_mismatches,
+        verdict: st.verdict,
+    }));
     doc.push(Block::Table(t));
 
     if let (Some(l), Some((loss, l2))) = (&r.loss, conventions) {
