@@ -507,7 +507,22 @@ impl Kind for Conv {
 }
 
 impl<S: LayerScalar> Layer<S> for Conv {
-    fn forward(&self, params: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+    fn forward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+    ) -> Step<S> {
+        self.forward_into(params, x, skip, &mut Vec::new())
+    }
+
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
         let (m, o, op) = (
             x.nrows(),
             self.settings.channels,
@@ -525,7 +540,9 @@ impl<S: LayerScalar> Layer<S> for Conv {
             ws.len() / o,
             self.window.channels * self.window.in_positions(),
         );
-        let mut out = vec![S::zero(); m * o * op];
+        let mut out = std::mem::take(buffer);
+        out.clear();
+        out.resize(m * o * op, S::zero());
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
             let x = self.inputs(xi, &mut xp);

@@ -357,6 +357,10 @@ pub struct Tail<S> {
     /// `out` has no columns, and this is that channel and its z over the channel's runs in flat
     /// order; the layer's other values are the base pass's.
     pub moved_channel: Option<(usize, Vec<S>)>,
+    /// Per recomputed layer (entry i is layer `from + i`), the channels of its output that may
+    /// differ from the base's when known ([`Graph::moved_loss`] follows them); the others hold
+    /// the base's values and branches bit for bit. Empty, or `None` for a layer: unknown.
+    pub changed: Vec<Option<Vec<usize>>>,
 }
 
 impl<S> Tail<S> {
@@ -583,6 +587,7 @@ impl Graph {
             outputs,
             settled: None,
             moved_channel: None,
+            changed: Vec::new(),
         }
     }
 
@@ -678,12 +683,61 @@ impl Graph {
             let j = tail.from + i;
             let was = &base.steps[j];
             let lean = i == 0 && tail.moved_channel.is_some();
+            let kink = self.nodes[j].activation.break_point().filter(|_| !lean);
+            match tail.changed.get(i).and_then(|c| c.as_deref()) {
+                Some(channels) => self.channels_crossed(j, was, step, channels, kink),
+                None => {
+                    step.branches != was.branches
+                        || kink.is_some_and(|k| sides_differ(&step.out, &was.out, k))
+                }
+            }
+        })
+    }
+
+    /// [`Graph::tail_crossed`] for recomputed layer j whose output differs from the base's in
+    /// `channels` alone: the branches and kink sides of those channels compared, not the whole
+    /// layer's (the rest are the base's bit for bit). Branches laid out otherwise than one per
+    /// output value are compared whole.
+    fn channels_crossed<S: Scalar>(
+        &self,
+        j: usize,
+        was: &Step<S>,
+        step: &Step<S>,
+        channels: &[usize],
+        kink: Option<f64>,
+    ) -> bool {
+        let shape = self.nodes[j].layer.output();
+        let m = was.out.nrows();
+        let per_value = m * shape.size();
+        let branched = if step.branches.len() == per_value && was.branches.len() == per_value {
+            channels.iter().any(|&c| {
+                shape
+                    .channel_runs(m, c)
+                    .any(|run| step.branches[run.clone()] != was.branches[run])
+            })
+        } else {
             step.branches != was.branches
-                || (!lean
-                    && self.nodes[j]
-                        .activation
-                        .break_point()
-                        .is_some_and(|k| sides_differ(&step.out, &was.out, k)))
+        };
+        if branched {
+            return true;
+        }
+        let Some(k) = kink else {
+            return false;
+        };
+        let (Some(now), Some(then)) = (step.out.as_slice(), was.out.as_slice()) else {
+            return sides_differ(&step.out, &was.out, k);
+        };
+        if now.len() != then.len() {
+            return false; // no z kept: nothing to compare, as sides_differ finds
+        }
+        let side = |v: &S| v.re() > k;
+        channels.iter().any(|&c| {
+            shape.channel_runs(m, c).any(|run| {
+                now[run.clone()]
+                    .iter()
+                    .zip(&then[run])
+                    .fold(false, |any, (a, b)| any | (side(a) != side(b)))
+            })
         })
     }
 
@@ -892,16 +946,13 @@ impl Graph {
         if let Some((_, a)) = fresh {
             ws.give(a);
         }
-        for set in changed.drain(..).flatten() {
-            ws.give_set(set);
-        }
-        ws.changed = changed;
         Tail {
             from,
             steps,
             outputs,
             settled,
             moved_channel,
+            changed,
         }
     }
 
@@ -1553,8 +1604,13 @@ impl<S: Copy> Workspace<S> {
             mut outputs,
             settled,
             moved_channel,
+            mut changed,
             ..
         } = tail;
+        for set in changed.drain(..).flatten() {
+            self.give_set(set);
+        }
+        self.changed = changed;
         for step in steps.drain(..) {
             self.give_array(step.out);
         }
