@@ -237,23 +237,32 @@ impl Conv {
         }
     }
 
-    /// One sample's out-channel into `out` (its output positions): from 0, for each in-channel
-    /// and each tap in row-major order, w · x added, then the bias (last, so that outputs with
-    /// equal sums stay equal when the bias moves: a max-pool tie above stays a tie, as it does
-    /// in exact arithmetic). `w` holds the out-channel's in-channels × taps weights, `xp` the
-    /// sample's input padded ([`Conv::inputs`]). Every pass that computes a conv output value
-    /// goes through here, so they all round alike. On x86-64 machines with AVX2 the loop is
-    /// compiled for AVX2 as well; that build does the same IEEE operations on each value (no
-    /// fused multiply-add is enabled, and Rust never contracts a product and a sum into one),
-    /// so its results are bit for bit the same.
-    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
+    /// Out-channels `first..` of every sample of the batch `xs` into `out` (the batch's output,
+    /// m × out-channels × positions; the other channels untouched): per value from 0, for each
+    /// in-channel and each tap in row-major order, w · x added, then the bias (last, so that
+    /// outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a tie,
+    /// as it does in exact arithmetic). `w` holds the channels' in-channels × taps weights one
+    /// channel after another, `bias` one value per channel. Every pass that computes a conv
+    /// output value goes through here, so they all round alike. On x86-64 machines with AVX2
+    /// the loop is compiled for AVX2 as well, in one call for the whole batch (a call per sample
+    /// and channel cost as much as the sums at the demo CNN's sizes); that build does the same
+    /// IEEE operations on each value (no fused multiply-add is enabled, and Rust never contracts
+    /// a product and a sum into one), so its results are bit for bit the same.
+    fn correlate<S: Scalar>(
+        &self,
+        w: &[S],
+        bias: Option<&[S]>,
+        first: usize,
+        xs: &[S],
+        out: &mut [S],
+    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, x, out) };
+            unsafe { self.correlate_avx2(w, bias, first, xs, out) };
             return;
         }
-        self.correlate_loop(w, bias, x, out);
+        self.correlate_loop(w, bias, first, xs, out);
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -261,18 +270,39 @@ impl Conv {
     unsafe fn correlate_avx2<S: Scalar>(
         &self,
         w: &[S],
-        bias: Option<S>,
-        x: Inputs<S>,
+        bias: Option<&[S]>,
+        first: usize,
+        xs: &[S],
         out: &mut [S],
     ) {
-        self.correlate_loop(w, bias, x, out);
+        self.correlate_loop(w, bias, first, xs, out);
     }
 
     #[inline(always)]
-    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
-        self.sum_into(w, x, out, true);
-        if let Some(b) = bias {
-            out.iter_mut().for_each(|v| *v += b);
+    fn correlate_loop<S: Scalar>(
+        &self,
+        w: &[S],
+        bias: Option<&[S]>,
+        first: usize,
+        xs: &[S],
+        out: &mut [S],
+    ) {
+        let (op, per) = (
+            self.window.out_positions(),
+            self.window.channels * self.window.taps(),
+        );
+        let width = self.settings.channels * op;
+        let sample = self.window.channels * self.window.in_positions();
+        let mut xp = Vec::new();
+        for (row, xi) in out.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
+            let x = self.inputs(xi, &mut xp);
+            let channels = row[first * op..].chunks_exact_mut(op);
+            for (j, (wc, channel)) in w.chunks_exact(per).zip(channels).enumerate() {
+                self.sum_into(wc, x, channel, true);
+                if let Some(b) = bias {
+                    channel.iter_mut().for_each(|v| *v += b[j]);
+                }
+            }
         }
     }
 
@@ -379,33 +409,78 @@ impl Conv {
         *out = acc;
     }
 
-    /// One sample's output (every out-channel) moved by the change `d` of in-channel `c` of
-    /// its input: [`Conv::sum_into`] of each out-channel's taps of `c` onto its values. `w` is
-    /// the whole weight, `row` the sample's output.
-    fn add_change<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
+    /// The batch's output `values` (every out-channel) moved by the change of in-channels
+    /// `changed` of its input, from `was` (the base input) to `now` (each changed channel over
+    /// the samples, [`Layer::forward_units`]'s order): per sample and changed channel,
+    /// [`Conv::sum_into`] of each out-channel's taps of it onto its values; a sample whose channel
+    /// did not move keeps the base's bits. `w` is the whole weight. One AVX2 call for the batch,
+    /// as [`Conv::correlate`].
+    fn add_changes<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.add_change_avx2(w, c, d, row) };
+            unsafe { self.add_changes_avx2(w, changed, now, was, values) };
             return;
         }
-        self.add_change_loop(w, c, d, row);
+        self.add_changes_loop(w, changed, now, was, values);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
-        self.add_change_loop(w, c, d, row);
+    unsafe fn add_changes_avx2<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
+        self.add_changes_loop(w, changed, now, was, values);
     }
 
     #[inline(always)]
-    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
-        let taps = self.window.taps();
-        let per = self.window.channels * taps;
-        let op = self.window.out_positions();
-        for (o, out) in row.chunks_exact_mut(op).enumerate() {
-            let at = o * per + c * taps;
-            self.sum_into(&w[at..at + taps], d, out, false);
+    fn add_changes_loop<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
+        let (channels, ip) = (self.window.channels, self.window.in_positions());
+        let (taps, op) = (self.window.taps(), self.window.out_positions());
+        let per = channels * taps;
+        let width = self.settings.channels * op;
+        let m = values.len() / width;
+        let (mut dx, mut dp) = (vec![S::zero(); ip], Vec::new());
+        let sample = channels * ip;
+        for (i, (row, bi)) in values
+            .chunks_exact_mut(width)
+            .zip(was.chunks_exact(sample))
+            .enumerate()
+        {
+            for (k, &c) in changed.iter().enumerate() {
+                let at = (k * m + i) * ip;
+                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
+                if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
+                    continue;
+                }
+                for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
+                    *d = a - b;
+                }
+                let d = self.inputs(&dx, &mut dp);
+                for (o, out) in row.chunks_exact_mut(op).enumerate() {
+                    let at = o * per + c * taps;
+                    self.sum_into(&w[at..at + taps], d, out, false);
+                }
+            }
         }
     }
 
@@ -536,21 +611,10 @@ impl<S: LayerScalar> Layer<S> for Conv {
             .settings
             .bias
             .then(|| params[1].as_slice().expect("standard layout"));
-        let (per, sample) = (
-            ws.len() / o,
-            self.window.channels * self.window.in_positions(),
-        );
         let mut out = std::mem::take(buffer);
         out.clear();
         out.resize(m * o * op, S::zero());
-        let mut xp = Vec::new();
-        for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
-            let x = self.inputs(xi, &mut xp);
-            for (c, channel) in row.chunks_exact_mut(op).enumerate() {
-                let b = bias.map(|b| b[c]);
-                self.correlate(&ws[c * per..(c + 1) * per], b, x, channel);
-            }
-        }
+        self.correlate(ws, bias, 0, xs, &mut out);
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
     }
 
@@ -623,7 +687,6 @@ impl<S: LayerScalar> Layer<S> for Conv {
         base: &Step<S>,
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
-        let op = self.window.out_positions();
         let per = self.window.channels * self.window.taps();
         let channel = self.moved_channel(moved.tensor, moved.index)?;
         let w = params[0].as_standard_layout();
@@ -641,15 +704,15 @@ impl<S: LayerScalar> Layer<S> for Conv {
         }
         let x = x.as_standard_layout();
         let xs = x.as_slice()?;
-        let sample = self.window.channels * self.window.in_positions();
         let mut out = base.out.clone();
         let values = out.as_slice_mut()?;
-        let width = self.settings.channels * op;
-        let mut xp = Vec::new();
-        for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
-            let x = self.inputs(xi, &mut xp);
-            self.correlate(&w, b, x, &mut row[channel * op..(channel + 1) * op]);
-        }
+        self.correlate(
+            &w,
+            b.as_ref().map(std::slice::from_ref),
+            channel,
+            xs,
+            values,
+        );
         Some(Step::plain(out))
     }
 
@@ -676,29 +739,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let w = params[0].as_standard_layout();
         let ws = w.as_slice()?;
         let mut out = base.out.clone();
-        let width = self.settings.channels * self.window.out_positions();
-        let values = out.as_slice_mut()?;
-        let (mut dx, mut dp) = (vec![S::zero(); ip], Vec::new());
-        let sample = channels * ip;
-        for (i, (row, bi)) in values
-            .chunks_exact_mut(width)
-            .zip(bs.chunks_exact(sample))
-            .enumerate()
-        {
-            for (k, &c) in changed.iter().enumerate() {
-                let at = (k * m + i) * ip;
-                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
-                // A sample whose channel did not move keeps the base's bits.
-                if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
-                    continue;
-                }
-                for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
-                    *d = a - b;
-                }
-                let d = self.inputs(&dx, &mut dp);
-                self.add_change(ws, c, d, row);
-            }
-        }
+        self.add_changes(ws, changed, now, bs, out.as_slice_mut()?);
         Some(Step::plain(out))
     }
 }

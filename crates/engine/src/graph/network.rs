@@ -687,7 +687,7 @@ impl Graph {
             match tail.changed.get(i).and_then(|c| c.as_deref()) {
                 Some(channels) => self.channels_crossed(j, was, step, channels, kink),
                 None => {
-                    step.branches != was.branches
+                    branches_differ(&step.branches, &was.branches)
                         || kink.is_some_and(|k| sides_differ(&step.out, &was.out, k))
                 }
             }
@@ -711,12 +711,17 @@ impl Graph {
         let per_value = m * shape.size();
         let branched = if step.branches.len() == per_value && was.branches.len() == per_value {
             channels.iter().any(|&c| {
-                shape
-                    .channel_runs(m, c)
-                    .any(|run| step.branches[run.clone()] != was.branches[run])
+                shape.channel_runs(m, c).any(|run| {
+                    // A fold, not a slice comparison: runs are short, and memcmp's call per
+                    // run cost more than the comparisons.
+                    step.branches[run.clone()]
+                        .iter()
+                        .zip(&was.branches[run])
+                        .fold(false, |any, (a, b)| any | (a != b))
+                })
             })
         } else {
-            step.branches != was.branches
+            branches_differ(&step.branches, &was.branches)
         };
         if branched {
             return true;
@@ -1490,6 +1495,12 @@ fn same_channel<S: Scalar>(shape: Shape, m: usize, c: usize, now: &[S], a: &Arra
     now.iter()
         .all(|v| was.next().is_some_and(|w| v.same_bits(*w)))
         && was.next().is_none()
+}
+
+/// Whether two lists of branch choices differ; two empty lists (a kind without choices) are
+/// told apart without a call to memcmp, which a slice comparison makes even for none.
+fn branches_differ(a: &[u32], b: &[u32]) -> bool {
+    !(a.is_empty() && b.is_empty()) && a != b
 }
 
 /// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
