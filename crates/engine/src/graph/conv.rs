@@ -237,8 +237,9 @@ impl Conv {
         }
     }
 
-    /// Out-channels `first..` of every sample of the batch `xs` into `out` (the batch's output,
-    /// m × out-channels × positions; the other channels untouched): per value from 0, for each
+    /// Out-channels `first..` of every sample of the batch `xs` into `out`, `width` values per
+    /// sample (the batch's output, m × out-channels × positions, the other channels untouched;
+    /// or one channel's positions alone, `first` 0): per value from 0, for each
     /// in-channel and each tap in row-major order, w · x added, then the bias (last, so that
     /// outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a tie,
     /// as it does in exact arithmetic). `w` holds the channels' in-channels × taps weights one
@@ -252,17 +253,17 @@ impl Conv {
         &self,
         w: &[S],
         bias: Option<&[S]>,
-        first: usize,
+        (first, width): (usize, usize),
         xs: &[S],
         out: &mut [S],
     ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, first, xs, out) };
+            unsafe { self.correlate_avx2(w, bias, (first, width), xs, out) };
             return;
         }
-        self.correlate_loop(w, bias, first, xs, out);
+        self.correlate_loop(w, bias, (first, width), xs, out);
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -271,11 +272,11 @@ impl Conv {
         &self,
         w: &[S],
         bias: Option<&[S]>,
-        first: usize,
+        (first, width): (usize, usize),
         xs: &[S],
         out: &mut [S],
     ) {
-        self.correlate_loop(w, bias, first, xs, out);
+        self.correlate_loop(w, bias, (first, width), xs, out);
     }
 
     #[inline(always)]
@@ -283,7 +284,7 @@ impl Conv {
         &self,
         w: &[S],
         bias: Option<&[S]>,
-        first: usize,
+        (first, width): (usize, usize),
         xs: &[S],
         out: &mut [S],
     ) {
@@ -291,7 +292,6 @@ impl Conv {
             self.window.out_positions(),
             self.window.channels * self.window.taps(),
         );
-        let width = self.settings.channels * op;
         let sample = self.window.channels * self.window.in_positions();
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
@@ -484,6 +484,29 @@ impl Conv {
         }
     }
 
+    /// The out-channel one parameter entry feeds, with its weights and bias after the move:
+    /// θ + δ rounded once, as a full pass at the moved parameters holds it.
+    fn moved_weights<S: Scalar>(
+        &self,
+        params: &[ArrayD<S>],
+        moved: &Moved<S>,
+    ) -> Option<(usize, Vec<S>, Option<S>)> {
+        let per = self.window.channels * self.window.taps();
+        let channel = self.moved_channel(moved.tensor, moved.index)?;
+        let mut w = params[0].as_slice()?[channel * per..(channel + 1) * per].to_vec();
+        let mut b = if self.settings.bias {
+            Some(params[1].as_slice()?[channel])
+        } else {
+            None
+        };
+        match (moved.tensor, b.as_mut()) {
+            (0, _) => w[moved.index % per] += moved.delta,
+            (_, Some(b)) => *b += moved.delta,
+            (_, None) => return None,
+        }
+        Some((channel, w, b))
+    }
+
     /// The weight as a matrix, out-channels × (in-channels · taps), optionally turned 180°.
     fn matrix<S: Scalar>(&self, w: &ArrayD<S>, flipped: bool) -> Array2<S> {
         let (o, taps) = (self.settings.channels, self.window.taps());
@@ -614,7 +637,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut out = std::mem::take(buffer);
         out.clear();
         out.resize(m * o * op, S::zero());
-        self.correlate(ws, bias, 0, xs, &mut out);
+        self.correlate(ws, bias, (0, o * op), xs, &mut out);
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
     }
 
@@ -687,33 +710,37 @@ impl<S: LayerScalar> Layer<S> for Conv {
         base: &Step<S>,
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
-        let per = self.window.channels * self.window.taps();
-        let channel = self.moved_channel(moved.tensor, moved.index)?;
-        let w = params[0].as_standard_layout();
-        let mut w = w.as_slice()?[channel * per..(channel + 1) * per].to_vec();
-        let mut b = if self.settings.bias {
-            Some(params[1].as_slice()?[channel])
-        } else {
-            None
-        };
-        // The moved value as a full pass at the moved parameters holds it: θ + δ, rounded once.
-        match (moved.tensor, b.as_mut()) {
-            (0, _) => w[moved.index % per] += moved.delta,
-            (_, Some(b)) => *b += moved.delta,
-            (_, None) => return None,
-        }
+        let (channel, w, b) = self.moved_weights(params, moved)?;
         let x = x.as_standard_layout();
-        let xs = x.as_slice()?;
+        let width = self.settings.channels * self.window.out_positions();
         let mut out = base.out.clone();
-        let values = out.as_slice_mut()?;
-        self.correlate(
-            &w,
-            b.as_ref().map(std::slice::from_ref),
-            channel,
-            xs,
-            values,
-        );
+        let b = b.as_ref().map(std::slice::from_ref);
+        self.correlate(&w, b, (channel, width), x.as_slice()?, out.as_slice_mut()?);
         Some(Step::plain(out))
+    }
+
+    fn moved_values(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: &Step<S>,
+        moved: &Moved<S>,
+        out: &mut Vec<S>,
+    ) -> bool {
+        let Some((_, w, b)) = self.moved_weights(params, moved) else {
+            return false;
+        };
+        let x = x.as_standard_layout();
+        let Some(xs) = x.as_slice() else {
+            return false;
+        };
+        // The hint's channel with the hint's loop, each sample's positions one after another:
+        // the channel's runs in flat order.
+        let op = self.window.out_positions();
+        out.clear();
+        out.resize(x.nrows() * op, S::zero());
+        self.correlate(&w, b.as_ref().map(std::slice::from_ref), (0, op), xs, out);
+        true
     }
 
     fn forward_units(
