@@ -532,7 +532,8 @@ impl Graph {
 
     /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
     /// parameters equal `params` in every layer below `from`: the layers below are read from the
-    /// base (an `add` above tapping one of them too), the rest recomputed.
+    /// base (an `add` above tapping one of them too), the rest recomputed (the steps keep what
+    /// [`Graph::forward_from_moving`] says).
     pub fn forward_from<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -544,7 +545,9 @@ impl Graph {
     }
 
     /// [`Graph::forward_from`] over a base pass at `params`, with the layers from `from` on
-    /// moved where `moving(j, own)` says so: it returns layer j's tensors moved (a copy of
+    /// moved where `moving(j, own)` says so. The tail's steps keep nothing for a backward pass,
+    /// and a layer below the output with the identity activation keeps no z (its step's `out`
+    /// has no columns; its output is z): it returns layer j's tensors moved (a copy of
     /// `own`, the layer's tensors in `params`, with its changes), or `None` where the layer
     /// keeps `own`. Each copy lives for its layer's pass alone, so a change of many layers (a
     /// random direction) holds one layer's tensors at a time, not a whole weight set.
@@ -576,8 +579,16 @@ impl Graph {
             let own = &params[node.tensors()];
             let moved = moving(j, own);
             let own = moved.as_deref().unwrap_or(own);
-            let step = S::layer(node.layer.as_ref()).forward(own, input, skip);
-            let a = self.activate(node, &step.out);
+            // What the backward pass would need (a norm's x̂) is not kept: a tail serves losses.
+            let layer = S::layer(node.layer.as_ref());
+            let mut step = layer.forward_into(own, input, skip, &mut Vec::new());
+            let a = if node.activation == Activation::Identity && j + 1 < self.nodes.len() {
+                // z is the output: moved there, not copied (a step without z, as below).
+                let rows = step.out.nrows();
+                std::mem::replace(&mut step.out, Array2::zeros((rows, 0)))
+            } else {
+                self.activate(node, &step.out)
+            };
             steps.push(step);
             outputs.push(a);
         }
@@ -1046,8 +1057,9 @@ impl Graph {
 
     /// The branches of the layers a [`Tail`] recomputed: entry i is layer `tail.from + i`, to be
     /// compared with the base pass's layers from `tail.from` on. For tails of
-    /// [`Graph::forward_from`] and [`Graph::forward_moved`], which keep every z; a tail of
-    /// [`Graph::moved_loss`] keeps z only where a kink test reads it ([`Graph::tail_crossed`]).
+    /// [`Graph::forward_from`] (which keeps z wherever an activation has a kink) and
+    /// [`Graph::forward_moved`], which keeps every z; a tail of [`Graph::moved_loss`] keeps z
+    /// only where a kink test reads it ([`Graph::tail_crossed`]).
     pub fn branches_from<S: Scalar>(&self, tail: &Tail<S>) -> Branches {
         let layers = self.nodes[tail.from..]
             .iter()
