@@ -216,14 +216,23 @@ impl Conv {
     }
 
     /// `x` (whole channels of one sample) and its copy laid out with its padding as zeros in
-    /// `buf`; `buf` left empty where the padding does not pay ([`Conv::padding_pays`]).
+    /// `buf`; `buf` left empty where the padding does not pay ([`Conv::padding_pays`]). `buf`
+    /// must be empty or left by an earlier call of this layer's (the loops reuse it per sample).
     fn inputs<'a, S: Scalar>(&self, x: &'a [S], buf: &'a mut Vec<S>) -> Inputs<'a, S> {
         let w = &self.window;
         let ([ph, pw], [iw, ip]) = (self.padded(), [w.input[1], w.in_positions()]);
         let channels = x.len() / ip;
-        buf.clear();
-        if self.padding_pays() {
-            buf.resize(channels * ph * pw, S::zero());
+        if !self.padding_pays() {
+            buf.clear();
+        } else {
+            // `buf` is empty or holds this layer's last padded copy of as many channels: its
+            // padding is zeros already, and only the inside is written again (zeroing the
+            // whole buffer per sample cost as much as the copy).
+            let len = channels * ph * pw;
+            if buf.len() != len {
+                buf.clear();
+                buf.resize(len, S::zero());
+            }
             for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
                 for (y, xr) in xc.chunks_exact(iw).enumerate() {
                     let at = (y + w.before[0]) * pw + w.before[1];
