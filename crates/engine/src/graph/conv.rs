@@ -305,14 +305,107 @@ impl Conv {
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
             let x = self.inputs(xi, &mut xp);
-            let channels = row[first * op..].chunks_exact_mut(op);
-            for (j, (wc, channel)) in w.chunks_exact(per).zip(channels).enumerate() {
-                self.sum_into(wc, x, channel, true);
-                if let Some(b) = bias {
-                    channel.iter_mut().for_each(|v| *v += b[j]);
+            let row = &mut row[first * op..];
+            let pairs = if std::mem::size_of::<S>() <= 8 {
+                w.len() / (2 * per)
+            } else {
+                0
+            };
+            // Two out-channels at a time where the scalar is real: one load of the input per
+            // tap serves both, and twice as many sums run side by side (each value's sum alone
+            // waits on its last addition). The same operations per value as one at a time.
+            for j in 0..pairs {
+                let (w0, w1) = w[2 * j * per..(2 * j + 2) * per].split_at(per);
+                let (o0, o1) = row[2 * j * op..(2 * j + 2) * op].split_at_mut(op);
+                self.sum_pair(w0, w1, x, o0, o1);
+            }
+            for j in 2 * pairs..w.len() / per {
+                self.sum_into(
+                    &w[j * per..(j + 1) * per],
+                    x,
+                    &mut row[j * op..(j + 1) * op],
+                    true,
+                );
+            }
+            if let Some(b) = bias {
+                for (channel, &b) in row.chunks_exact_mut(op).zip(b) {
+                    channel.iter_mut().for_each(|v| *v += b);
                 }
             }
         }
+    }
+
+    /// [`Conv::sum_into`] from 0 for two out-channels' weights `w0`, `w1` into `o0`, `o1`.
+    #[inline(always)]
+    fn sum_pair<S: Scalar>(&self, w0: &[S], w1: &[S], x: Inputs<S>, o0: &mut [S], o1: &mut [S]) {
+        let z = S::zero();
+        let finite = w0.iter().chain(w1).all(|&v| (v * z + z).same_bits(z));
+        let ow = self.window.output[1];
+        if !finite || x.padded.is_empty() || ow < 16 {
+            self.sum_into(w0, x, o0, true);
+            self.sum_into(w1, x, o1, true);
+            return;
+        }
+        let xp = x.padded;
+        for (oy, (r0, r1)) in o0
+            .chunks_exact_mut(ow)
+            .zip(o1.chunks_exact_mut(ow))
+            .enumerate()
+        {
+            let mut ox = 0;
+            while ox + 16 <= ow {
+                let (b0, b1) = (&mut r0[ox..ox + 16], &mut r1[ox..ox + 16]);
+                self.sum_block_pair::<S, 16>(w0, w1, xp, (oy, ox), b0, b1);
+                ox += 16;
+            }
+            self.sum_row(w0, xp, oy, ox, r0, true);
+            self.sum_row(w1, xp, oy, ox, r1, true);
+        }
+    }
+
+    /// [`Conv::sum_block`] from 0 for two out-channels at once.
+    #[inline(always)]
+    fn sum_block_pair<S: Scalar, const B: usize>(
+        &self,
+        w0: &[S],
+        w1: &[S],
+        xp: &[S],
+        (oy, ox0): (usize, usize),
+        out0: &mut [S],
+        out1: &mut [S],
+    ) {
+        let win = &self.window;
+        let ([ph, pw], taps, kw) = (self.padded(), win.taps(), win.kernel[1]);
+        let ([sy, sx], [dy, dx]) = (win.stride, win.dilation);
+        let (out0, out1): (&mut [S; B], &mut [S; B]) = (
+            out0.try_into().expect("a block of B values"),
+            out1.try_into().expect("a block of B values"),
+        );
+        let (mut a0, mut a1) = ([S::zero(); B], [S::zero(); B]);
+        let weights = w0.chunks_exact(taps).zip(w1.chunks_exact(taps));
+        for ((wc0, wc1), xc) in weights.zip(xp.chunks_exact(ph * pw)) {
+            for (ky, (wr0, wr1)) in wc0.chunks_exact(kw).zip(wc1.chunks_exact(kw)).enumerate() {
+                let row = &xc[(oy * sy + ky * dy) * pw..][..pw];
+                for (kx, (&v0, &v1)) in wr0.iter().zip(wr1).enumerate() {
+                    let x0 = ox0 * sx + kx * dx;
+                    if sx == 1 {
+                        let xs: &[S; B] = row[x0..x0 + B].try_into().expect("inside the row");
+                        for ((a, b), &v) in a0.iter_mut().zip(a1.iter_mut()).zip(xs) {
+                            *a += v0 * v;
+                            *b += v1 * v;
+                        }
+                    } else {
+                        for (j, (a, b)) in a0.iter_mut().zip(a1.iter_mut()).enumerate() {
+                            let v = row[x0 + j * sx];
+                            *a += v0 * v;
+                            *b += v1 * v;
+                        }
+                    }
+                }
+            }
+        }
+        *out0 = a0;
+        *out1 = a1;
     }
 
     /// Adds to each value of one out-channel `out` (from 0 when `fresh`, else from its values)
@@ -338,23 +431,37 @@ impl Conv {
                 }
                 continue;
             }
-            let mut ox = 0;
-            while ox + 16 <= ow {
-                self.sum_block::<S, 16>(w, xp, oy, ox, &mut row[ox..ox + 16], fresh);
-                ox += 16;
-            }
-            if ox + 8 <= ow {
-                self.sum_block::<S, 8>(w, xp, oy, ox, &mut row[ox..ox + 8], fresh);
-                ox += 8;
-            }
-            if ox + 4 <= ow {
-                self.sum_block::<S, 4>(w, xp, oy, ox, &mut row[ox..ox + 4], fresh);
-                ox += 4;
-            }
-            while ox < ow {
-                self.sum_block::<S, 1>(w, xp, oy, ox, &mut row[ox..ox + 1], fresh);
-                ox += 1;
-            }
+            self.sum_row(w, xp, oy, 0, row, fresh);
+        }
+    }
+
+    /// [`Conv::sum_into`] for output row `oy` (`row`) from column `ox` on, input padded.
+    #[inline(always)]
+    fn sum_row<S: Scalar>(
+        &self,
+        w: &[S],
+        xp: &[S],
+        oy: usize,
+        mut ox: usize,
+        row: &mut [S],
+        fresh: bool,
+    ) {
+        let ow = row.len();
+        while ox + 16 <= ow {
+            self.sum_block::<S, 16>(w, xp, oy, ox, &mut row[ox..ox + 16], fresh);
+            ox += 16;
+        }
+        if ox + 8 <= ow {
+            self.sum_block::<S, 8>(w, xp, oy, ox, &mut row[ox..ox + 8], fresh);
+            ox += 8;
+        }
+        if ox + 4 <= ow {
+            self.sum_block::<S, 4>(w, xp, oy, ox, &mut row[ox..ox + 4], fresh);
+            ox += 4;
+        }
+        while ox < ow {
+            self.sum_block::<S, 1>(w, xp, oy, ox, &mut row[ox..ox + 1], fresh);
+            ox += 1;
         }
     }
 
