@@ -675,7 +675,8 @@ impl Graph {
     /// computed over: a kind's choice ([`Step::branches`]), or a value on the other side of its
     /// activation's kink or of a break in a derivative (elu with α = 1), compared value by value
     /// with nothing collected; the moved layer's changed channel alone where that is all the
-    /// tail holds of it ([`Tail::moved_channel`]).
+    /// tail holds of it ([`Tail::moved_channel`]), and a layer's changed channels alone where
+    /// the tail knows them ([`Tail::changed`]).
     pub fn tail_crossed<S: LayerScalar>(&self, base: &Trace<S>, tail: &Tail<S>) -> bool {
         if let Some((c, z)) = &tail.moved_channel {
             let j = tail.from;
