@@ -5,7 +5,7 @@
 //! Catalogued mistake: `skip-gradient-dropped` — the gradient through the connection (to `from`)
 //! left out; only tensors below the tapped layer change.
 
-use ndarray::{ArrayD, ArrayView2};
+use ndarray::{Array2, ArrayD, ArrayView2};
 
 use super::{Back, Kind, Layer, LayerScalar, Shape, ShapeError, Step};
 
@@ -49,8 +49,29 @@ impl Kind for Add {
 
 impl<S: LayerScalar> Layer<S> for Add {
     fn forward(&self, _: &[ArrayD<S>], x: ArrayView2<S>, skip: Option<ArrayView2<S>>) -> Step<S> {
+        self.forward_into(&[], x, skip, &mut Vec::new())
+    }
+
+    fn forward_into(
+        &self,
+        _: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
         let skip = skip.expect("the graph hands `add` its tap");
-        Step::plain(&x + &skip)
+        let (x, skip) = (x.as_standard_layout(), skip.as_standard_layout());
+        let (xs, ss) = (
+            x.as_slice().expect("standard"),
+            skip.as_slice().expect("standard"),
+        );
+        let mut out = std::mem::take(buffer);
+        out.clear();
+        out.resize(xs.len(), S::zero());
+        for (o, (&a, &b)) in out.iter_mut().zip(xs.iter().zip(ss)) {
+            *o = a + b;
+        }
+        Step::plain(Array2::from_shape_vec(x.raw_dim(), out).expect("same size"))
     }
 
     fn forward_channels(

@@ -216,14 +216,23 @@ impl Conv {
     }
 
     /// `x` (whole channels of one sample) and its copy laid out with its padding as zeros in
-    /// `buf`; `buf` left empty where the padding does not pay ([`Conv::padding_pays`]).
+    /// `buf`; `buf` left empty where the padding does not pay ([`Conv::padding_pays`]). `buf`
+    /// must be empty or left by an earlier call of this layer's (the loops reuse it per sample).
     fn inputs<'a, S: Scalar>(&self, x: &'a [S], buf: &'a mut Vec<S>) -> Inputs<'a, S> {
         let w = &self.window;
         let ([ph, pw], [iw, ip]) = (self.padded(), [w.input[1], w.in_positions()]);
         let channels = x.len() / ip;
-        buf.clear();
-        if self.padding_pays() {
-            buf.resize(channels * ph * pw, S::zero());
+        if !self.padding_pays() {
+            buf.clear();
+        } else {
+            // `buf` is empty or holds this layer's last padded copy of as many channels: its
+            // padding is zeros already, and only the inside is written again (zeroing the
+            // whole buffer per sample cost as much as the copy).
+            let len = channels * ph * pw;
+            if buf.len() != len {
+                buf.clear();
+                buf.resize(len, S::zero());
+            }
             for (xc, bc) in x.chunks_exact(ip).zip(buf.chunks_exact_mut(ph * pw)) {
                 for (y, xr) in xc.chunks_exact(iw).enumerate() {
                     let at = (y + w.before[0]) * pw + w.before[1];
@@ -237,23 +246,33 @@ impl Conv {
         }
     }
 
-    /// One sample's out-channel into `out` (its output positions): from 0, for each in-channel
-    /// and each tap in row-major order, w · x added, then the bias (last, so that outputs with
-    /// equal sums stay equal when the bias moves: a max-pool tie above stays a tie, as it does
-    /// in exact arithmetic). `w` holds the out-channel's in-channels × taps weights, `xp` the
-    /// sample's input padded ([`Conv::inputs`]). Every pass that computes a conv output value
-    /// goes through here, so they all round alike. On x86-64 machines with AVX2 the loop is
-    /// compiled for AVX2 as well; that build does the same IEEE operations on each value (no
-    /// fused multiply-add is enabled, and Rust never contracts a product and a sum into one),
-    /// so its results are bit for bit the same.
-    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
+    /// Out-channels `first..` of every sample of the batch `xs` into `out`, `width` values per
+    /// sample (the batch's output, m × out-channels × positions, the other channels untouched;
+    /// or one channel's positions alone, `first` 0): per value from 0, for each
+    /// in-channel and each tap in row-major order, w · x added, then the bias (last, so that
+    /// outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a tie,
+    /// as it does in exact arithmetic). `w` holds the channels' in-channels × taps weights one
+    /// channel after another, `bias` one value per channel. Every pass that computes a conv
+    /// output value goes through here, so they all round alike. On x86-64 machines with AVX2
+    /// the loop is compiled for AVX2 as well, in one call for the whole batch (a call per sample
+    /// and channel cost as much as the sums at the demo CNN's sizes); that build does the same
+    /// IEEE operations on each value (no fused multiply-add is enabled, and Rust never contracts
+    /// a product and a sum into one), so its results are bit for bit the same.
+    fn correlate<S: Scalar>(
+        &self,
+        w: &[S],
+        bias: Option<&[S]>,
+        (first, width): (usize, usize),
+        xs: &[S],
+        out: &mut [S],
+    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, x, out) };
+            unsafe { self.correlate_avx2(w, bias, (first, width), xs, out) };
             return;
         }
-        self.correlate_loop(w, bias, x, out);
+        self.correlate_loop(w, bias, (first, width), xs, out);
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -261,19 +280,132 @@ impl Conv {
     unsafe fn correlate_avx2<S: Scalar>(
         &self,
         w: &[S],
-        bias: Option<S>,
-        x: Inputs<S>,
+        bias: Option<&[S]>,
+        (first, width): (usize, usize),
+        xs: &[S],
         out: &mut [S],
     ) {
-        self.correlate_loop(w, bias, x, out);
+        self.correlate_loop(w, bias, (first, width), xs, out);
     }
 
     #[inline(always)]
-    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<S>, x: Inputs<S>, out: &mut [S]) {
-        self.sum_into(w, x, out, true);
-        if let Some(b) = bias {
-            out.iter_mut().for_each(|v| *v += b);
+    fn correlate_loop<S: Scalar>(
+        &self,
+        w: &[S],
+        bias: Option<&[S]>,
+        (first, width): (usize, usize),
+        xs: &[S],
+        out: &mut [S],
+    ) {
+        let (op, per) = (
+            self.window.out_positions(),
+            self.window.channels * self.window.taps(),
+        );
+        let sample = self.window.channels * self.window.in_positions();
+        let mut xp = Vec::new();
+        for (row, xi) in out.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
+            let x = self.inputs(xi, &mut xp);
+            let row = &mut row[first * op..];
+            let pairs = if std::mem::size_of::<S>() <= 8 {
+                w.len() / (2 * per)
+            } else {
+                0
+            };
+            // Two out-channels at a time where the scalar is real: one load of the input per
+            // tap serves both, and twice as many sums run side by side (each value's sum alone
+            // waits on its last addition). The same operations per value as one at a time.
+            for j in 0..pairs {
+                let (w0, w1) = w[2 * j * per..(2 * j + 2) * per].split_at(per);
+                let (o0, o1) = row[2 * j * op..(2 * j + 2) * op].split_at_mut(op);
+                self.sum_pair(w0, w1, x, o0, o1);
+            }
+            for j in 2 * pairs..w.len() / per {
+                self.sum_into(
+                    &w[j * per..(j + 1) * per],
+                    x,
+                    &mut row[j * op..(j + 1) * op],
+                    true,
+                );
+            }
+            if let Some(b) = bias {
+                for (channel, &b) in row.chunks_exact_mut(op).zip(b) {
+                    channel.iter_mut().for_each(|v| *v += b);
+                }
+            }
         }
+    }
+
+    /// [`Conv::sum_into`] from 0 for two out-channels' weights `w0`, `w1` into `o0`, `o1`.
+    #[inline(always)]
+    fn sum_pair<S: Scalar>(&self, w0: &[S], w1: &[S], x: Inputs<S>, o0: &mut [S], o1: &mut [S]) {
+        let z = S::zero();
+        let finite = w0.iter().chain(w1).all(|&v| (v * z + z).same_bits(z));
+        let ow = self.window.output[1];
+        if !finite || x.padded.is_empty() || ow < 16 {
+            self.sum_into(w0, x, o0, true);
+            self.sum_into(w1, x, o1, true);
+            return;
+        }
+        let xp = x.padded;
+        for (oy, (r0, r1)) in o0
+            .chunks_exact_mut(ow)
+            .zip(o1.chunks_exact_mut(ow))
+            .enumerate()
+        {
+            let mut ox = 0;
+            while ox + 16 <= ow {
+                let (b0, b1) = (&mut r0[ox..ox + 16], &mut r1[ox..ox + 16]);
+                self.sum_block_pair::<S, 16>(w0, w1, xp, (oy, ox), b0, b1);
+                ox += 16;
+            }
+            self.sum_row(w0, xp, oy, ox, r0, true);
+            self.sum_row(w1, xp, oy, ox, r1, true);
+        }
+    }
+
+    /// [`Conv::sum_block`] from 0 for two out-channels at once.
+    #[inline(always)]
+    fn sum_block_pair<S: Scalar, const B: usize>(
+        &self,
+        w0: &[S],
+        w1: &[S],
+        xp: &[S],
+        (oy, ox0): (usize, usize),
+        out0: &mut [S],
+        out1: &mut [S],
+    ) {
+        let win = &self.window;
+        let ([ph, pw], taps, kw) = (self.padded(), win.taps(), win.kernel[1]);
+        let ([sy, sx], [dy, dx]) = (win.stride, win.dilation);
+        let (out0, out1): (&mut [S; B], &mut [S; B]) = (
+            out0.try_into().expect("a block of B values"),
+            out1.try_into().expect("a block of B values"),
+        );
+        let (mut a0, mut a1) = ([S::zero(); B], [S::zero(); B]);
+        let weights = w0.chunks_exact(taps).zip(w1.chunks_exact(taps));
+        for ((wc0, wc1), xc) in weights.zip(xp.chunks_exact(ph * pw)) {
+            for (ky, (wr0, wr1)) in wc0.chunks_exact(kw).zip(wc1.chunks_exact(kw)).enumerate() {
+                let row = &xc[(oy * sy + ky * dy) * pw..][..pw];
+                for (kx, (&v0, &v1)) in wr0.iter().zip(wr1).enumerate() {
+                    let x0 = ox0 * sx + kx * dx;
+                    if sx == 1 {
+                        let xs: &[S; B] = row[x0..x0 + B].try_into().expect("inside the row");
+                        for ((a, b), &v) in a0.iter_mut().zip(a1.iter_mut()).zip(xs) {
+                            *a += v0 * v;
+                            *b += v1 * v;
+                        }
+                    } else {
+                        for (j, (a, b)) in a0.iter_mut().zip(a1.iter_mut()).enumerate() {
+                            let v = row[x0 + j * sx];
+                            *a += v0 * v;
+                            *b += v1 * v;
+                        }
+                    }
+                }
+            }
+        }
+        *out0 = a0;
+        *out1 = a1;
     }
 
     /// Adds to each value of one out-channel `out` (from 0 when `fresh`, else from its values)
@@ -299,23 +431,37 @@ impl Conv {
                 }
                 continue;
             }
-            let mut ox = 0;
-            while ox + 16 <= ow {
-                self.sum_block::<S, 16>(w, xp, oy, ox, &mut row[ox..ox + 16], fresh);
-                ox += 16;
-            }
-            if ox + 8 <= ow {
-                self.sum_block::<S, 8>(w, xp, oy, ox, &mut row[ox..ox + 8], fresh);
-                ox += 8;
-            }
-            if ox + 4 <= ow {
-                self.sum_block::<S, 4>(w, xp, oy, ox, &mut row[ox..ox + 4], fresh);
-                ox += 4;
-            }
-            while ox < ow {
-                self.sum_block::<S, 1>(w, xp, oy, ox, &mut row[ox..ox + 1], fresh);
-                ox += 1;
-            }
+            self.sum_row(w, xp, oy, 0, row, fresh);
+        }
+    }
+
+    /// [`Conv::sum_into`] for output row `oy` (`row`) from column `ox` on, input padded.
+    #[inline(always)]
+    fn sum_row<S: Scalar>(
+        &self,
+        w: &[S],
+        xp: &[S],
+        oy: usize,
+        mut ox: usize,
+        row: &mut [S],
+        fresh: bool,
+    ) {
+        let ow = row.len();
+        while ox + 16 <= ow {
+            self.sum_block::<S, 16>(w, xp, oy, ox, &mut row[ox..ox + 16], fresh);
+            ox += 16;
+        }
+        if ox + 8 <= ow {
+            self.sum_block::<S, 8>(w, xp, oy, ox, &mut row[ox..ox + 8], fresh);
+            ox += 8;
+        }
+        if ox + 4 <= ow {
+            self.sum_block::<S, 4>(w, xp, oy, ox, &mut row[ox..ox + 4], fresh);
+            ox += 4;
+        }
+        while ox < ow {
+            self.sum_block::<S, 1>(w, xp, oy, ox, &mut row[ox..ox + 1], fresh);
+            ox += 1;
         }
     }
 
@@ -379,34 +525,102 @@ impl Conv {
         *out = acc;
     }
 
-    /// One sample's output (every out-channel) moved by the change `d` of in-channel `c` of
-    /// its input: [`Conv::sum_into`] of each out-channel's taps of `c` onto its values. `w` is
-    /// the whole weight, `row` the sample's output.
-    fn add_change<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
+    /// The batch's output `values` (every out-channel) moved by the change of in-channels
+    /// `changed` of its input, from `was` (the base input) to `now` (each changed channel over
+    /// the samples, [`Layer::forward_units`]'s order): per sample and changed channel,
+    /// [`Conv::sum_into`] of each out-channel's taps of it onto its values; a sample whose channel
+    /// did not move keeps the base's bits. `w` is the whole weight. One AVX2 call for the batch,
+    /// as [`Conv::correlate`].
+    fn add_changes<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.add_change_avx2(w, c, d, row) };
+            unsafe { self.add_changes_avx2(w, changed, now, was, values) };
             return;
         }
-        self.add_change_loop(w, c, d, row);
+        self.add_changes_loop(w, changed, now, was, values);
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn add_change_avx2<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
-        self.add_change_loop(w, c, d, row);
+    unsafe fn add_changes_avx2<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
+        self.add_changes_loop(w, changed, now, was, values);
     }
 
     #[inline(always)]
-    fn add_change_loop<S: Scalar>(&self, w: &[S], c: usize, d: Inputs<S>, row: &mut [S]) {
-        let taps = self.window.taps();
-        let per = self.window.channels * taps;
-        let op = self.window.out_positions();
-        for (o, out) in row.chunks_exact_mut(op).enumerate() {
-            let at = o * per + c * taps;
-            self.sum_into(&w[at..at + taps], d, out, false);
+    fn add_changes_loop<S: Scalar>(
+        &self,
+        w: &[S],
+        changed: &[usize],
+        now: &[S],
+        was: &[S],
+        values: &mut [S],
+    ) {
+        let (channels, ip) = (self.window.channels, self.window.in_positions());
+        let (taps, op) = (self.window.taps(), self.window.out_positions());
+        let per = channels * taps;
+        let width = self.settings.channels * op;
+        let m = values.len() / width;
+        let (mut dx, mut dp) = (vec![S::zero(); ip], Vec::new());
+        let sample = channels * ip;
+        for (i, (row, bi)) in values
+            .chunks_exact_mut(width)
+            .zip(was.chunks_exact(sample))
+            .enumerate()
+        {
+            for (k, &c) in changed.iter().enumerate() {
+                let at = (k * m + i) * ip;
+                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
+                if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
+                    continue;
+                }
+                for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
+                    *d = a - b;
+                }
+                let d = self.inputs(&dx, &mut dp);
+                for (o, out) in row.chunks_exact_mut(op).enumerate() {
+                    let at = o * per + c * taps;
+                    self.sum_into(&w[at..at + taps], d, out, false);
+                }
+            }
         }
+    }
+
+    /// The out-channel one parameter entry feeds, with its weights and bias after the move:
+    /// θ + δ rounded once, as a full pass at the moved parameters holds it.
+    fn moved_weights<S: Scalar>(
+        &self,
+        params: &[ArrayD<S>],
+        moved: &Moved<S>,
+    ) -> Option<(usize, Vec<S>, Option<S>)> {
+        let per = self.window.channels * self.window.taps();
+        let channel = self.moved_channel(moved.tensor, moved.index)?;
+        let mut w = params[0].as_slice()?[channel * per..(channel + 1) * per].to_vec();
+        let mut b = if self.settings.bias {
+            Some(params[1].as_slice()?[channel])
+        } else {
+            None
+        };
+        match (moved.tensor, b.as_mut()) {
+            (0, _) => w[moved.index % per] += moved.delta,
+            (_, Some(b)) => *b += moved.delta,
+            (_, None) => return None,
+        }
+        Some((channel, w, b))
     }
 
     /// The weight as a matrix, out-channels × (in-channels · taps), optionally turned 180°.
@@ -507,7 +721,22 @@ impl Kind for Conv {
 }
 
 impl<S: LayerScalar> Layer<S> for Conv {
-    fn forward(&self, params: &[ArrayD<S>], x: ArrayView2<S>, _: Option<ArrayView2<S>>) -> Step<S> {
+    fn forward(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        skip: Option<ArrayView2<S>>,
+    ) -> Step<S> {
+        self.forward_into(params, x, skip, &mut Vec::new())
+    }
+
+    fn forward_into(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: Option<ArrayView2<S>>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
         let (m, o, op) = (
             x.nrows(),
             self.settings.channels,
@@ -521,19 +750,10 @@ impl<S: LayerScalar> Layer<S> for Conv {
             .settings
             .bias
             .then(|| params[1].as_slice().expect("standard layout"));
-        let (per, sample) = (
-            ws.len() / o,
-            self.window.channels * self.window.in_positions(),
-        );
-        let mut out = vec![S::zero(); m * o * op];
-        let mut xp = Vec::new();
-        for (row, xi) in out.chunks_exact_mut(o * op).zip(xs.chunks_exact(sample)) {
-            let x = self.inputs(xi, &mut xp);
-            for (c, channel) in row.chunks_exact_mut(op).enumerate() {
-                let b = bias.map(|b| b[c]);
-                self.correlate(&ws[c * per..(c + 1) * per], b, x, channel);
-            }
-        }
+        let mut out = std::mem::take(buffer);
+        out.clear();
+        out.resize(m * o * op, S::zero());
+        self.correlate(ws, bias, (0, o * op), xs, &mut out);
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
     }
 
@@ -606,34 +826,37 @@ impl<S: LayerScalar> Layer<S> for Conv {
         base: &Step<S>,
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
-        let op = self.window.out_positions();
-        let per = self.window.channels * self.window.taps();
-        let channel = self.moved_channel(moved.tensor, moved.index)?;
-        let w = params[0].as_standard_layout();
-        let mut w = w.as_slice()?[channel * per..(channel + 1) * per].to_vec();
-        let mut b = if self.settings.bias {
-            Some(params[1].as_slice()?[channel])
-        } else {
-            None
-        };
-        // The moved value as a full pass at the moved parameters holds it: θ + δ, rounded once.
-        match (moved.tensor, b.as_mut()) {
-            (0, _) => w[moved.index % per] += moved.delta,
-            (_, Some(b)) => *b += moved.delta,
-            (_, None) => return None,
-        }
+        let (channel, w, b) = self.moved_weights(params, moved)?;
         let x = x.as_standard_layout();
-        let xs = x.as_slice()?;
-        let sample = self.window.channels * self.window.in_positions();
+        let width = self.settings.channels * self.window.out_positions();
         let mut out = base.out.clone();
-        let values = out.as_slice_mut()?;
-        let width = self.settings.channels * op;
-        let mut xp = Vec::new();
-        for (row, xi) in values.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
-            let x = self.inputs(xi, &mut xp);
-            self.correlate(&w, b, x, &mut row[channel * op..(channel + 1) * op]);
-        }
+        let b = b.as_ref().map(std::slice::from_ref);
+        self.correlate(&w, b, (channel, width), x.as_slice()?, out.as_slice_mut()?);
         Some(Step::plain(out))
+    }
+
+    fn moved_values(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        _: &Step<S>,
+        moved: &Moved<S>,
+        out: &mut Vec<S>,
+    ) -> bool {
+        let Some((_, w, b)) = self.moved_weights(params, moved) else {
+            return false;
+        };
+        let x = x.as_standard_layout();
+        let Some(xs) = x.as_slice() else {
+            return false;
+        };
+        // The hint's channel with the hint's loop, each sample's positions one after another:
+        // the channel's runs in flat order.
+        let op = self.window.out_positions();
+        out.clear();
+        out.resize(x.nrows() * op, S::zero());
+        self.correlate(&w, b.as_ref().map(std::slice::from_ref), (0, op), xs, out);
+        true
     }
 
     fn forward_units(
@@ -659,29 +882,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let w = params[0].as_standard_layout();
         let ws = w.as_slice()?;
         let mut out = base.out.clone();
-        let width = self.settings.channels * self.window.out_positions();
-        let values = out.as_slice_mut()?;
-        let (mut dx, mut dp) = (vec![S::zero(); ip], Vec::new());
-        let sample = channels * ip;
-        for (i, (row, bi)) in values
-            .chunks_exact_mut(width)
-            .zip(bs.chunks_exact(sample))
-            .enumerate()
-        {
-            for (k, &c) in changed.iter().enumerate() {
-                let at = (k * m + i) * ip;
-                let (now, was) = (&now[at..at + ip], &bi[c * ip..(c + 1) * ip]);
-                // A sample whose channel did not move keeps the base's bits.
-                if now.iter().zip(was).all(|(a, b)| a.same_bits(*b)) {
-                    continue;
-                }
-                for (d, (&a, &b)) in dx.iter_mut().zip(now.iter().zip(was)) {
-                    *d = a - b;
-                }
-                let d = self.inputs(&dx, &mut dp);
-                self.add_change(ws, c, d, row);
-            }
-        }
+        self.add_changes(ws, changed, now, bs, out.as_slice_mut()?);
         Some(Step::plain(out))
     }
 }

@@ -357,6 +357,10 @@ pub struct Tail<S> {
     /// `out` has no columns, and this is that channel and its z over the channel's runs in flat
     /// order; the layer's other values are the base pass's.
     pub moved_channel: Option<(usize, Vec<S>)>,
+    /// Per recomputed layer (entry i is layer `from + i`), the channels of its output that may
+    /// differ from the base's when known ([`Graph::moved_loss`] follows them); the others hold
+    /// the base's values and branches bit for bit. Empty, or `None` for a layer: unknown.
+    pub changed: Vec<Option<Vec<usize>>>,
 }
 
 impl<S> Tail<S> {
@@ -528,7 +532,8 @@ impl Graph {
 
     /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
     /// parameters equal `params` in every layer below `from`: the layers below are read from the
-    /// base (an `add` above tapping one of them too), the rest recomputed.
+    /// base (an `add` above tapping one of them too), the rest recomputed (the steps keep what
+    /// [`Graph::forward_from_moving`] says).
     pub fn forward_from<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -540,7 +545,9 @@ impl Graph {
     }
 
     /// [`Graph::forward_from`] over a base pass at `params`, with the layers from `from` on
-    /// moved where `moving(j, own)` says so: it returns layer j's tensors moved (a copy of
+    /// moved where `moving(j, own)` says so. The tail's steps keep nothing for a backward pass,
+    /// and a layer below the output with the identity activation keeps no z (its step's `out`
+    /// has no columns; its output is z): it returns layer j's tensors moved (a copy of
     /// `own`, the layer's tensors in `params`, with its changes), or `None` where the layer
     /// keeps `own`. Each copy lives for its layer's pass alone, so a change of many layers (a
     /// random direction) holds one layer's tensors at a time, not a whole weight set.
@@ -572,8 +579,16 @@ impl Graph {
             let own = &params[node.tensors()];
             let moved = moving(j, own);
             let own = moved.as_deref().unwrap_or(own);
-            let step = S::layer(node.layer.as_ref()).forward(own, input, skip);
-            let a = self.activate(node, &step.out);
+            // What the backward pass would need (a norm's x̂) is not kept: a tail serves losses.
+            let layer = S::layer(node.layer.as_ref());
+            let mut step = layer.forward_into(own, input, skip, &mut Vec::new());
+            let a = if node.activation == Activation::Identity && j + 1 < self.nodes.len() {
+                // z is the output: moved there, not copied (a step without z, as below).
+                let rows = step.out.nrows();
+                std::mem::replace(&mut step.out, Array2::zeros((rows, 0)))
+            } else {
+                self.activate(node, &step.out)
+            };
             steps.push(step);
             outputs.push(a);
         }
@@ -583,6 +598,7 @@ impl Graph {
             outputs,
             settled: None,
             moved_channel: None,
+            changed: Vec::new(),
         }
     }
 
@@ -659,7 +675,8 @@ impl Graph {
     /// computed over: a kind's choice ([`Step::branches`]), or a value on the other side of its
     /// activation's kink or of a break in a derivative (elu with α = 1), compared value by value
     /// with nothing collected; the moved layer's changed channel alone where that is all the
-    /// tail holds of it ([`Tail::moved_channel`]).
+    /// tail holds of it ([`Tail::moved_channel`]), and a layer's changed channels alone where
+    /// the tail knows them ([`Tail::changed`]).
     pub fn tail_crossed<S: LayerScalar>(&self, base: &Trace<S>, tail: &Tail<S>) -> bool {
         if let Some((c, z)) = &tail.moved_channel {
             let j = tail.from;
@@ -678,12 +695,66 @@ impl Graph {
             let j = tail.from + i;
             let was = &base.steps[j];
             let lean = i == 0 && tail.moved_channel.is_some();
-            step.branches != was.branches
-                || (!lean
-                    && self.nodes[j]
-                        .activation
-                        .break_point()
-                        .is_some_and(|k| sides_differ(&step.out, &was.out, k)))
+            let kink = self.nodes[j].activation.break_point().filter(|_| !lean);
+            match tail.changed.get(i).and_then(|c| c.as_deref()) {
+                Some(channels) => self.channels_crossed(j, was, step, channels, kink),
+                None => {
+                    branches_differ(&step.branches, &was.branches)
+                        || kink.is_some_and(|k| sides_differ(&step.out, &was.out, k))
+                }
+            }
+        })
+    }
+
+    /// [`Graph::tail_crossed`] for recomputed layer j whose output differs from the base's in
+    /// `channels` alone: the branches and kink sides of those channels compared, not the whole
+    /// layer's (the rest are the base's bit for bit). Branches laid out otherwise than one per
+    /// output value are compared whole.
+    fn channels_crossed<S: Scalar>(
+        &self,
+        j: usize,
+        was: &Step<S>,
+        step: &Step<S>,
+        channels: &[usize],
+        kink: Option<f64>,
+    ) -> bool {
+        let shape = self.nodes[j].layer.output();
+        let m = was.out.nrows();
+        let per_value = m * shape.size();
+        let branched = if step.branches.len() == per_value && was.branches.len() == per_value {
+            channels.iter().any(|&c| {
+                shape.channel_runs(m, c).any(|run| {
+                    // A fold, not a slice comparison: runs are short, and memcmp's call per
+                    // run cost more than the comparisons.
+                    step.branches[run.clone()]
+                        .iter()
+                        .zip(&was.branches[run])
+                        .fold(false, |any, (a, b)| any | (a != b))
+                })
+            })
+        } else {
+            branches_differ(&step.branches, &was.branches)
+        };
+        if branched {
+            return true;
+        }
+        let Some(k) = kink else {
+            return false;
+        };
+        let (Some(now), Some(then)) = (step.out.as_slice(), was.out.as_slice()) else {
+            return sides_differ(&step.out, &was.out, k);
+        };
+        if now.len() != then.len() {
+            return false; // no z kept: nothing to compare, as sides_differ finds
+        }
+        let side = |v: &S| v.re() > k;
+        channels.iter().any(|&c| {
+            shape.channel_runs(m, c).any(|run| {
+                now[run.clone()]
+                    .iter()
+                    .zip(&then[run])
+                    .fold(false, |any, (a, b)| any | (side(a) != side(b)))
+            })
         })
     }
 
@@ -892,16 +963,13 @@ impl Graph {
         if let Some((_, a)) = fresh {
             ws.give(a);
         }
-        for set in changed.drain(..).flatten() {
-            ws.give_set(set);
-        }
-        ws.changed = changed;
         Tail {
             from,
             steps,
             outputs,
             settled,
             moved_channel,
+            changed,
         }
     }
 
@@ -990,8 +1058,9 @@ impl Graph {
 
     /// The branches of the layers a [`Tail`] recomputed: entry i is layer `tail.from + i`, to be
     /// compared with the base pass's layers from `tail.from` on. For tails of
-    /// [`Graph::forward_from`] and [`Graph::forward_moved`], which keep every z; a tail of
-    /// [`Graph::moved_loss`] keeps z only where a kink test reads it ([`Graph::tail_crossed`]).
+    /// [`Graph::forward_from`] (which keeps z wherever an activation has a kink) and
+    /// [`Graph::forward_moved`], which keeps every z; a tail of [`Graph::moved_loss`] keeps z
+    /// only where a kink test reads it ([`Graph::tail_crossed`]).
     pub fn branches_from<S: Scalar>(&self, tail: &Tail<S>) -> Branches {
         let layers = self.nodes[tail.from..]
             .iter()
@@ -1441,6 +1510,12 @@ fn same_channel<S: Scalar>(shape: Shape, m: usize, c: usize, now: &[S], a: &Arra
         && was.next().is_none()
 }
 
+/// Whether two lists of branch choices differ; two empty lists (a kind without choices) are
+/// told apart without a call to memcmp, which a slice comparison makes even for none.
+fn branches_differ(a: &[u32], b: &[u32]) -> bool {
+    !(a.is_empty() && b.is_empty()) && a != b
+}
+
 /// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
 /// without a branch per value (they vectorise), stopping at the first block that differs.
 fn sides_differ<S: Scalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
@@ -1553,8 +1628,13 @@ impl<S: Copy> Workspace<S> {
             mut outputs,
             settled,
             moved_channel,
+            mut changed,
             ..
         } = tail;
+        for set in changed.drain(..).flatten() {
+            self.give_set(set);
+        }
+        self.changed = changed;
         for step in steps.drain(..) {
             self.give_array(step.out);
         }

@@ -140,40 +140,17 @@ impl Norm {
     pub fn forward<S: LayerScalar>(&self, params: &[ArrayD<S>], x: ArrayView2<S>) -> Step<S> {
         let x = x.as_standard_layout();
         let xs = x.as_slice().expect("standard layout");
-        let scale = params[0]
-            .view()
-            .into_dimensionality::<Ix1>()
-            .expect("scale");
-        let m = x.nrows();
-        let groups = self.group_count(m);
-        let n = S::from_f64((xs.len() / groups.max(1)) as f64);
-        let (_, axis, inner) = self.input.feature_axis();
-        let shift = self
-            .shift
-            .then(|| params[1].as_slice().expect("standard layout"));
+        let groups = self.group_count(x.nrows());
         let mut xhat = vec![S::zero(); xs.len()];
         let mut out = vec![S::zero(); xs.len()];
         let mut inv = Array1::zeros(groups);
         let mut var = Array1::zeros(groups);
-        for g in 0..groups {
-            let (mean, v, r) = self.statistics(xs, g, m, n);
-            for run in self.runs(g, m) {
-                // y = γ x̂ + β with the feature of the run's first value: a batch norm's run
-                // is one feature's, a layer norm's a single value.
-                let a = (run.start / inner.max(1)) % axis;
-                let (scale, shift) = (scale[a], shift.map(|b| b[a]));
-                let values = xhat[run.clone()].iter_mut().zip(&mut out[run.clone()]);
-                for ((h, o), &x) in values.zip(&xs[run]) {
-                    *h = (x - mean) * r;
-                    *o = scale * *h;
-                    if let Some(b) = shift {
-                        *o += b;
-                    }
-                }
-            }
-            inv[g] = r;
-            var[g] = v;
-        }
+        let saved = Saved {
+            xhat: &mut xhat,
+            inv: inv.as_slice_mut().expect("new"),
+            var: var.as_slice_mut().expect("new"),
+        };
+        self.normalise(params, xs, x.nrows(), &mut out, Some(saved));
         let shape = x.raw_dim();
         Step {
             out: Array2::from_shape_vec(shape, out).expect("same size"),
@@ -186,6 +163,75 @@ impl Norm {
             ],
             branches: Vec::new(),
             ties: 0,
+        }
+    }
+
+    /// [`Norm::forward`]'s output alone, in `buffer`: what a perturbed pass reads (the
+    /// backward pass's x̂ and statistics are neither stored nor allocated). The same bits.
+    pub fn forward_into<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        buffer: &mut Vec<S>,
+    ) -> Step<S> {
+        let x = x.as_standard_layout();
+        let xs = x.as_slice().expect("standard layout");
+        let mut out = std::mem::take(buffer);
+        out.clear();
+        out.resize(xs.len(), S::zero());
+        self.normalise(params, xs, x.nrows(), &mut out, None);
+        Step::plain(Array2::from_shape_vec(x.raw_dim(), out).expect("same size"))
+    }
+
+    /// y = γ x̂ + β of a standard-layout batch `xs` of `m` samples into `out`, and x̂ with each
+    /// group's 1/√(σ² + ε) and σ² into `saved` when given.
+    fn normalise<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        xs: &[S],
+        m: usize,
+        out: &mut [S],
+        mut saved: Option<Saved<'_, S>>,
+    ) {
+        let scale = params[0].as_slice().expect("standard layout");
+        let groups = self.group_count(m);
+        let n = S::from_f64((xs.len() / groups.max(1)) as f64);
+        let (_, axis, inner) = self.input.feature_axis();
+        let shift = self
+            .shift
+            .then(|| params[1].as_slice().expect("standard layout"));
+        for g in 0..groups {
+            let (mean, v, r) = self.statistics(xs, g, m, n);
+            for run in self.runs(g, m) {
+                // y = γ x̂ + β with the feature of the run's first value: a batch norm's run
+                // is one feature's, a layer norm's a single value.
+                let a = (run.start / inner.max(1)) % axis;
+                let (scale, shift) = (scale[a], shift.map(|b| b[a]));
+                let values = out[run.clone()].iter_mut().zip(&xs[run.clone()]);
+                match saved.as_mut() {
+                    Some(s) => {
+                        for (h, (o, &x)) in s.xhat[run].iter_mut().zip(values) {
+                            *h = (x - mean) * r;
+                            *o = scale * *h;
+                            if let Some(b) = shift {
+                                *o += b;
+                            }
+                        }
+                    }
+                    None => {
+                        for (o, &x) in values {
+                            *o = scale * ((x - mean) * r);
+                            if let Some(b) = shift {
+                                *o += b;
+                            }
+                        }
+                    }
+                }
+            }
+            if let Some(s) = saved.as_mut() {
+                s.inv[g] = r;
+                s.var[g] = v;
+            }
         }
     }
 
@@ -346,6 +392,13 @@ impl Norm {
     }
 }
 
+/// What a full forward pass keeps for the backward pass: x̂, and per group 1/√(σ² + ε) and σ².
+struct Saved<'a, S> {
+    xhat: &'a mut [S],
+    inv: &'a mut [S],
+    var: &'a mut [S],
+}
+
 /// How many partial sums [`lane_sum`] keeps: enough independent additions in flight to hide
 /// their latency (four AVX2 vectors of f64, two of f32).
 const LANES: usize = 16;
@@ -419,6 +472,15 @@ macro_rules! norm_kind {
                 _: Option<ndarray::ArrayView2<S>>,
             ) -> $crate::graph::Step<S> {
                 self.norm.forward(params, x)
+            }
+            fn forward_into(
+                &self,
+                params: &[ndarray::ArrayD<S>],
+                x: ndarray::ArrayView2<S>,
+                _: Option<ndarray::ArrayView2<S>>,
+                buffer: &mut Vec<S>,
+            ) -> $crate::graph::Step<S> {
+                self.norm.forward_into(params, x, buffer)
             }
             fn backward(
                 &self,
