@@ -16,10 +16,6 @@ use plumb_report::Verdict;
 use args::{Cli, Command};
 use output::Settings;
 
-/// Large blocks on huge pages (plumb_fd's allocator says why: the page faults of a large batch).
-#[global_allocator]
-static ALLOCATOR: plumb_fd::LargeBlocksOnHugePages = plumb_fd::LargeBlocksOnHugePages;
-
 fn main() -> ExitCode {
     plumb_fd::keep_freed_memory();
     let cli = Cli::parse();

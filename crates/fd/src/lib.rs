@@ -42,7 +42,7 @@ mod order;
 pub mod report;
 mod sweep;
 
-pub use allocator::{HUGE_PAGE_BLOCK, LargeBlocksOnHugePages, keep_freed_memory};
+pub use allocator::keep_freed_memory;
 pub use check::{
     CheckConfig, CheckError, CoordCheck, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
     Rule, SETTLE, Settlement, Status, UNSETTLED_SHARE,
