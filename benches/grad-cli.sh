@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # `plumb grad` as a whole command against a NumPy script doing the same job, files in and out
 # (benches/grad_cli.py says what and how; figures go to benches/README.md). One thread each side;
-# OPENBLAS_CORETYPE and OPENBLAS_L2_SIZE unset as in benches/grad-numpy.sh.
+# OPENBLAS_CORETYPE and OPENBLAS_L2_SIZE unset as in benches/grad-numpy.sh. BEFORE=path/to/plumb
+# (an older build, e.g. /tmp/plumb-main) times that binary too, alternating, with same-run ratios.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 cargo build --release --locked

@@ -12,6 +12,10 @@ fastest of the runs of each, their ratio, and the same for NumPy's time inside t
 `import numpy`: loading, the pass, writing), and asserts both gradient files agree (1e-9 of each
 tensor's largest entry in float64, 2e-2 in float32: plumb computes in f64 whatever the file's
 precision, NumPy in the file's).
+
+With BEFORE=path/to/another/plumb (a build of an older commit), that binary runs too, in the same
+alternation (before, plumb, NumPy), and each run's time of all three is printed, with the ratios
+from the same run; the two plumb gradient files must then be equal byte for byte.
 """
 
 import json
@@ -95,6 +99,7 @@ def main():
         numpy_side(*sys.argv[2:5])
         return
     plumb = os.environ.get("PLUMB", "target/release/plumb")
+    before = os.environ.get("BEFORE")
     runs = int(os.environ.get("RUNS", "7"))
     rng = np.random.default_rng(1)
     print("precision, batch | plumb grad | python3 + NumPy (whole) | NumPy / plumb "
@@ -104,19 +109,32 @@ def main():
             with tempfile.TemporaryDirectory() as folder:
                 make(folder, dtype, m, rng)
                 p = lambda name: os.path.join(folder, name)
-                ours, theirs, inside = [], [], []
+                ours, theirs, inside, olds = [], [], [], []
+                grad = lambda binary, out: [binary, "grad", p("net.toml"), "-w", p("w.npz"),
+                                            "-d", p("d.npz"), "-o", p(out), "--quiet",
+                                            "--format", "json"]
                 for _ in range(runs):
-                    for g in ["g-plumb.npz", "g-numpy.npz"]:
+                    for g in ["g-plumb.npz", "g-numpy.npz", "g-before.npz"]:
                         if os.path.exists(p(g)):
                             os.remove(p(g))
-                    t, _ = timed([plumb, "grad", p("net.toml"), "-w", p("w.npz"), "-d",
-                                  p("d.npz"), "-o", p("g-plumb.npz"), "--quiet", "--format",
-                                  "json"])
+                    if before:
+                        t, _ = timed(grad(before, "g-before.npz"))
+                        olds.append(t)
+                    t, _ = timed(grad(plumb, "g-plumb.npz"))
                     ours.append(t)
                     t, out = timed([sys.executable, os.path.abspath(__file__), "numpy",
                                     p("w.npz"), p("d.npz"), p("g-numpy.npz")])
                     theirs.append(t)
                     inside.append(json.loads(out)["inside"])
+                if before:
+                    with open(p("g-before.npz"), "rb") as f, open(p("g-plumb.npz"), "rb") as g:
+                        assert f.read() == g.read(), (dtype, m, "the gradient files differ")
+                    print(f"{dtype}, {m}, each run (ms), before / plumb / NumPy: " + ", ".join(
+                        f"{o * 1e3:.1f} / {t * 1e3:.1f} / {n * 1e3:.1f}"
+                        for o, t, n in zip(olds, ours, theirs)))
+                    print(f"{dtype}, {m}, fastest: before {min(olds) * 1e3:.1f} ms, before / "
+                          f"plumb {min(olds) / min(ours):.2f}×, NumPy / before "
+                          f"{min(theirs) / min(olds):.2f}× (gradient files equal byte for byte)")
                 a, b = np.load(p("g-plumb.npz")), np.load(p("g-numpy.npz"))
                 # In float32, NumPy's sums over 8,192 samples and the ReLU sides that flip at
                 # z ≈ 0 move entries by up to ~1% of a tensor's largest against plumb's f64.

@@ -183,6 +183,11 @@ impl Activation {
 
     /// a = g(z) for a batch of pre-activations (one sample per row).
     pub fn apply<S: Scalar>(&self, z: ArrayView2<S>) -> Array2<S> {
+        if *self == Activation::Relu {
+            // One pass that reads z and writes a, instead of a copy and a second pass over it
+            // (17 MB each at a batch of 8,192); the select of `apply_values`.
+            return z.mapv(|v| if v.re() > 0.0 { v } else { S::zero() });
+        }
         let mut out = z.to_owned();
         self.apply_in_place(&mut out);
         out
