@@ -355,16 +355,20 @@ impl<S: LayerScalar> Response<S> {
         let base = top.as_slice()?;
         let o = self.outputs;
         let mut out = ws.take(base.len());
+        out.resize(base.len(), S::zero());
         let [m1, m2, m3] = &unit.m;
-        for (n, &dn) in d.iter().enumerate() {
-            let at = n * o..(n + 1) * o;
-            for (((zb, a1), a2), a3) in base[at.clone()]
-                .iter()
-                .zip(&m1[at.clone()])
-                .zip(&m2[at.clone()])
-                .zip(&m3[at])
-            {
-                out.push(*zb + dn * (*a1 + dn * (*a2 + dn * *a3)));
+        // Horner's form per value, a sample's row at a time (slices of one length: vectorised).
+        let rows = out
+            .chunks_exact_mut(o)
+            .zip(base.chunks_exact(o))
+            .zip(d.iter());
+        let coeffs = m1
+            .chunks_exact(o)
+            .zip(m2.chunks_exact(o))
+            .zip(m3.chunks_exact(o));
+        for (((now, was), &dn), ((a1, a2), a3)) in rows.zip(coeffs) {
+            for ((((v, zb), a1), a2), a3) in now.iter_mut().zip(was).zip(a1).zip(a2).zip(a3) {
+                *v = *zb + dn * (*a1 + dn * (*a2 + dn * *a3));
             }
         }
         let z_top = Array2::from_shape_vec(top.raw_dim(), out).expect("the output's size");
