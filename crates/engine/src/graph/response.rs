@@ -39,7 +39,8 @@
 //! Covered: σ = tanh, logistic sigmoid, identity (exact at first order: no truncation). L's own
 //! activation may have a kink or break (relu, elu, …): the moved unit's sides are compared with
 //! the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L, other
-//! kinds, a tap, another loss or output) has no response.
+//! kinds, a tap, another loss or output) has no response, nor has a layer whose coefficients
+//! would pass [`MOST_VALUES`].
 
 use std::sync::OnceLock;
 
@@ -48,6 +49,10 @@ use ndarray::{Array2, ArrayD, ArrayView2};
 use super::network::Workspace;
 use super::{Graph, LayerScalar, Moved, Shape, Trace};
 use crate::{Activation, Loss};
+
+/// The most coefficients a response keeps (3 per output value, sample and unit of L): 16 MiB in
+/// f64. Past it (a wide layer on a large batch) there is no response, and the plain path runs.
+pub const MOST_VALUES: usize = 1 << 21;
 
 /// The response of the two dense layers above a dense layer L (see the module doc), built at the
 /// base point of a check; each unit's coefficients are formed the first time one of its entries
@@ -167,6 +172,11 @@ impl<S: LayerScalar> Response<S> {
         let m = trace.outputs[layer].nrows();
         let hidden = mid.layer.output().size();
         let outputs = top.layer.output().size();
+        let units = low.layer.output().size();
+        // Every unit's coefficients are kept for the check's length: not past a budget.
+        if units.saturating_mul(3 * m * outputs) > MOST_VALUES {
+            return None;
+        }
         let a = trace.outputs[layer + 1].as_slice()?;
         let mut slopes: [Vec<S>; 3] = Default::default();
         for v in a {
@@ -187,9 +197,7 @@ impl<S: LayerScalar> Response<S> {
             most,
             lipschitz,
             limit,
-            units: (0..low.layer.output().size())
-                .map(|_| OnceLock::new())
-                .collect(),
+            units: (0..units).map(|_| OnceLock::new()).collect(),
         })
     }
 

@@ -17,10 +17,13 @@
 //!   not (the caller then takes the plain path).
 //! - A kinked first layer: the response's side test against `Graph::tail_crossed` of the plain
 //!   path's tail, every entry and step.
+//! - No response where its coefficients would pass its memory budget.
 
 use ndarray::ArrayD;
 use num_dual::{Dual64, DualNum, third_derivative};
-use plumb_engine::graph::{Graph, Moved, Reduction, Response, Workspace, fourth_bound, slopes};
+use plumb_engine::graph::{
+    Graph, MOST_VALUES, Moved, Reduction, Response, Workspace, fourth_bound, slopes,
+};
 use plumb_engine::{Activation, Loss, Rng};
 
 use crate::common::dense_with;
@@ -235,4 +238,24 @@ fn a_kinked_first_layer_reports_the_plain_paths_side_changes() {
         }
     }
     assert!(crossings > 10, "{crossings} steps cross a kink");
+}
+
+#[test]
+fn a_response_past_its_memory_budget_is_not_built() {
+    // 64 first-layer units, 10 outputs: 3 · 64 · 10 = 1,920 coefficients per sample.
+    let layers = [
+        (64, Activation::Tanh),
+        (8, Activation::Tanh),
+        (10, Activation::Softmax),
+    ];
+    let g = dense_with(4, &layers, plumb_engine::graph::LossConfig::cross_entropy());
+    let mut rng = Rng::new(2);
+    let p = random_params(&g, &mut rng);
+    for (m, built) in [(1000, true), (1200, false)] {
+        assert_eq!(1920 * m <= MOST_VALUES, built);
+        let (x, y) = (random_x(&g, m, &mut rng), random_y(&g, m, &mut rng));
+        let trace = g.forward(&p, x.view());
+        let r = Response::new(&g, &trace, y.view(), 0, f64::INFINITY);
+        assert_eq!(r.is_some(), built, "batch {m}");
+    }
 }
