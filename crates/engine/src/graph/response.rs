@@ -36,9 +36,14 @@
 //! path. A verdict could then move only where the plain path's own round-off, ten times the
 //! response's error, could move it as well. It is not bit for bit the plain path.
 //!
-//! Covered: σ = tanh, logistic sigmoid, identity (exact at first order: no truncation). L's own
-//! activation may have a kink or break (relu, elu, …): the moved unit's sides are compared with
-//! the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L, other
+//! Covered: σ = tanh, logistic sigmoid, identity (exact at first order: no truncation), and
+//! relu and leaky relu, exact at first order (slope 1 above the kink, 0 or the leak below it)
+//! while no value of L+1 changes side: per unit and sample the changes d[n] that keep every
+//! side are an interval, worked out once ((k − z)/w_j per value, narrowed by a relative 1e-6
+//! for the plain path's rounding), so a loss tests m values where the plain path's kink test
+//! reads m·units(L+1); a change outside it takes the plain path, which finds the crossing. L's
+//! own activation may have a kink or break (relu, elu, …): the moved unit's sides are compared
+//! with the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L, other
 //! kinds, a tap, another loss or output) has no response, nor has a layer whose coefficients
 //! would pass [`MOST_VALUES`].
 
@@ -71,6 +76,9 @@ pub struct Response<S> {
     most: [f64; 3],
     /// 2r·Σ|y|: the data term's change per unit of the largest output change.
     lipschitz: f64,
+    /// For a piecewise-linear L+1, k − z_{L+1} per value (m × hidden, k its kink); empty for a
+    /// smooth one.
+    lifts: Vec<f64>,
     limit: f64,
     units: Vec<OnceLock<Unit<S>>>,
 }
@@ -82,6 +90,9 @@ struct Unit<S> {
     /// Per output value: the truncation's factor of d⁴ and the round-off's of d, d², d³.
     truncation: f64,
     rounding: [f64; 3],
+    /// For a piecewise-linear L+1, per sample the changes d[n] (lo, hi) within which no value
+    /// of L+1 changes side, narrowed by [`KINK_MARGIN`]; empty for a smooth one.
+    windows: Vec<(f64, f64)>,
 }
 
 /// A loss through the response.
@@ -100,16 +111,33 @@ pub struct Responded<S> {
 /// logistic: σ′ = a(1 − a), σ″ = σ′(1 − 2a), σ‴ = σ′(1 − 6a + 6a²), σ⁗ = σ′(1 − 2a)(1 − 12a + 12a²).
 /// The maxima are those polynomials' over a in [−1, 1] and [0, 1], rounded up (tested against
 /// num-dual's derivatives on a grid).
+/// relu and leaky relu are linear on each side of their kink: slope 1 above, `below` under it,
+/// no higher terms while no value changes side ([`below_kink`]).
 fn taylor(act: Activation) -> Option<([f64; 3], f64)> {
     match act {
         Activation::Tanh => Some(([1.0, 0.385, 1.0 / 3.0], 4.09)),
         Activation::Sigmoid => Some(([0.25, 0.0482, 0.0209], 0.128)),
         Activation::Identity => Some(([1.0, 0.0, 0.0], 0.0)),
+        _ => below_kink(act).map(|below| ([below.abs().max(1.0), 0.0, 0.0], 0.0)),
+    }
+}
+
+/// The slope of a piecewise-linear activation at or below its kink (above it: 1).
+fn below_kink(act: Activation) -> Option<f64> {
+    match act {
+        Activation::Relu => Some(0.0),
+        Activation::LeakyRelu { slope } => Some(slope),
         _ => None,
     }
 }
 
-/// σ⁽ᵏ⁾(z)/k! for k = 1, 2, 3 from a = σ(z) (formulas in [`taylor`]).
+/// How close (relative) a change may come to moving a value of a piecewise-linear L+1 across
+/// its kink before the plain path takes the loss: the plain path's rounded z + d·w decides the
+/// side there, within a few units of rounding of the exact threshold.
+const KINK_MARGIN: f64 = 1e-6;
+
+/// σ⁽ᵏ⁾(z)/k! for k = 1, 2, 3 from a = σ(z) for the smooth activations (formulas in
+/// [`taylor`]; identity and anything else: 1, 0, 0).
 pub fn slopes<S: LayerScalar>(act: Activation, a: S) -> [S; 3] {
     let c = S::from_f64;
     let one = S::one();
@@ -177,12 +205,27 @@ impl<S: LayerScalar> Response<S> {
         if units.saturating_mul(3 * m * outputs) > MOST_VALUES {
             return None;
         }
-        let a = trace.outputs[layer + 1].as_slice()?;
         let mut slopes: [Vec<S>; 3] = Default::default();
-        for v in a {
-            let s = self::slopes(mid.activation, *v);
-            for k in 0..3 {
-                slopes[k].push(s[k]);
+        let mut lifts = Vec::new();
+        match (mid.activation.kink(), below_kink(mid.activation)) {
+            (Some(k), Some(below)) => {
+                // Linear on each side: the slope by the side the plain path's kink test reads.
+                let z = trace.steps[layer + 1].out.as_slice()?;
+                slopes[0] = z
+                    .iter()
+                    .map(|v| S::from_f64(if v.re() > k { 1.0 } else { below }))
+                    .collect();
+                slopes[1] = vec![S::zero(); z.len()];
+                slopes[2] = vec![S::zero(); z.len()];
+                lifts = z.iter().map(|v| k - v.re()).collect();
+            }
+            _ => {
+                for v in trace.outputs[layer + 1].as_slice()? {
+                    let s = self::slopes(mid.activation, *v);
+                    for k in 0..3 {
+                        slopes[k].push(s[k]);
+                    }
+                }
             }
         }
         let r = loss.reduction.factor(m);
@@ -196,6 +239,7 @@ impl<S: LayerScalar> Response<S> {
             fourth: fourth / 24.0,
             most,
             lipschitz,
+            lifts,
             limit,
             units: (0..units).map(|_| OnceLock::new()).collect(),
         })
@@ -259,10 +303,37 @@ impl<S: LayerScalar> Response<S> {
             let ru = S::epsilon() / 2.0;
             let products = gamma(h, ru) + gamma(5, ru) + 4.0 * ru;
             let rounding = [0, 1, 2].map(|k| (products * self.most[k] + 32.0 * ru) * b[k]);
+            // Per sample, the nearest change that moves a value of L+1 to the kink's other
+            // side, below and above 0: z + d·w_j crosses at d = (k − z)/w_j (a value on the
+            // kink, which is on its lower side, crosses at any d·w_j > 0).
+            let windows = self
+                .lifts
+                .chunks_exact(h)
+                .map(|lifts| {
+                    let (mut lo, mut hi) = (f64::NEG_INFINITY, f64::INFINITY);
+                    for (lift, wj) in lifts.iter().zip(&w) {
+                        let wj = wj.re();
+                        if wj == 0.0 {
+                            continue;
+                        }
+                        let t = lift / wj;
+                        if t.is_nan() {
+                            return (0.0, 0.0);
+                        }
+                        if t < 0.0 || (t == 0.0 && wj < 0.0) {
+                            lo = lo.max(t);
+                        } else {
+                            hi = hi.min(t);
+                        }
+                    }
+                    (lo * (1.0 - KINK_MARGIN), hi * (1.0 - KINK_MARGIN))
+                })
+                .collect();
             Unit {
                 m: coeffs,
                 truncation: self.fourth * b[3],
                 rounding,
+                windows,
             }
         })
     }
@@ -349,6 +420,12 @@ impl<S: LayerScalar> Response<S> {
             largest = largest.max(v.re().abs());
         }
         let unit = self.unit(graph, params, u);
+        // A piecewise-linear L+1: exact at first order only while no value changes side; near
+        // or across the kink the plain path takes the loss (and its kink test).
+        let inside = |(dn, (lo, hi)): (&S, &(f64, f64))| *lo < dn.re() && dn.re() < *hi;
+        if !unit.windows.is_empty() && !d.iter().zip(&unit.windows).all(inside) {
+            return None;
+        }
         let t = largest;
         let per_value = unit.truncation * t.powi(4)
             + unit.rounding[0] * t

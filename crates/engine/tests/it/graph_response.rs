@@ -68,7 +68,8 @@ fn the_taylor_slopes_are_num_duals_derivatives_and_the_fourth_is_bounded() {
             "{act:?}: the bound {bound} is far above the largest |σ⁗| seen, {fourth}"
         );
     }
-    assert_eq!(fourth_bound(Activation::Relu), None);
+    assert_eq!(fourth_bound(Activation::Relu), Some(0.0));
+    assert_eq!(fourth_bound(Activation::Gelu), None);
 }
 
 /// A random stack inputs → first (activation `low`) → mid (`act`) → outputs, softmax and
@@ -258,4 +259,67 @@ fn a_response_past_its_memory_budget_is_not_built() {
         let r = Response::new(&g, &trace, y.view(), 0, f64::INFINITY);
         assert_eq!(r.is_some(), built, "batch {m}");
     }
+}
+
+#[test]
+fn a_piecewise_linear_layer_above_responds_exactly_while_no_value_changes_side() {
+    // relu and leaky relu at L+1: linear on each side of the kink, so the response's loss is a
+    // whole pass's within its bound (round-off alone) wherever no value of L+1 changes side,
+    // and the response declines (the plain path then runs) exactly where the plain path's
+    // kink test sees a change of side.
+    let mut rng = Rng::new(17);
+    let (mut answered, mut declined) = (0, 0);
+    for seed in 0..12 {
+        let act = [Activation::Relu, Activation::LeakyRelu { slope: 0.1 }][seed % 2];
+        let low = [Activation::Tanh, Activation::Relu][seed / 2 % 2];
+        let g = stack(&mut rng, low, act);
+        let p = random_params(&g, &mut rng);
+        let m = 3 + rng.below(5);
+        let (x, y) = (random_x(&g, m, &mut rng), random_y(&g, m, &mut rng));
+        let trace = g.forward(&p, x.view());
+        let l2 = g.l2_sum(&p);
+        let r = Response::new(&g, &trace, y.view(), 0, f64::INFINITY).expect("a response");
+        let mid = g.nodes()[1]
+            .layer
+            .input()
+            .size()
+            .max(g.nodes()[2].layer.input().size());
+        let (mut ws, mut plain) = (Workspace::new(), Workspace::new());
+        for (t, i) in entries(&g) {
+            for delta in [1e-5, -1e-3, 0.05, -0.3, 1.0] {
+                let moved = Moved {
+                    tensor: t,
+                    index: i,
+                    delta,
+                };
+                let got = r.loss_in(&mut ws, &g, &p, x.view(), &trace, y.view(), l2, &moved);
+                g.moved_loss_in(&mut plain, &p, x.view(), &trace, y.view(), l2, &moved);
+                // The plain path's kink test (L's sides and L+1's).
+                let crossed = g.tail_crossed(&trace, plain.tail().unwrap());
+                let at = format!("seed {seed} ({low:?}, {act:?}): ({t}, {i}) at {delta}");
+                match got {
+                    Some(a) => {
+                        answered += 1;
+                        assert_eq!(a.crossed, crossed, "{at}: the plain path's kink test");
+                        let whole = g.loss(&moved_params(&p, &moved), x.view(), y.view());
+                        let rounding =
+                            64.0 * (mid + 1) as f64 * f64::EPSILON * whole.abs().max(1.0);
+                        assert!(
+                            (a.loss - whole).abs() <= a.bound + rounding,
+                            "{at}: {} against {whole}",
+                            a.loss
+                        );
+                    }
+                    None => {
+                        declined += 1;
+                        assert!(crossed, "{at}: declined where no value changes side");
+                    }
+                }
+            }
+        }
+    }
+    assert!(
+        answered > 100 && declined > 20,
+        "{answered} answered, {declined} declined"
+    );
 }

@@ -249,14 +249,15 @@ fn a_relu_dense_stack_gives_the_plain_paths_verdicts_on_any_thread_count() {
 }
 
 #[test]
-fn a_smooth_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
+fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
     use plumb_engine::graph::{Moved, Response, Workspace};
     use plumb_engine::{Activation, Loss};
     // The first layer's entries go through the response of the two layers above it
     // (plumb_engine::graph::Response: L+1's activation in Taylor terms, used only within a
-    // tenth of the loss's assumed round-off); the plain path takes whole passes. Verdicts both
-    // ways (a mistake planted in the second layer's input gradient: the first layer's gradient,
-    // where the response answers, is wrong), thread counts.
+    // tenth of the loss's assumed round-off; a relu L+1 while no value changes side); the plain
+    // path takes whole passes. Verdicts both ways (a mistake planted in the second layer's input
+    // gradient: the first layer's gradient, where the response answers, is wrong), thread
+    // counts.
     let (tanh, sigmoid) = (Activation::Tanh, Activation::Sigmoid);
     for (what, layers) in [
         ("10-16-12-3 tanh", [(16, tanh), (12, tanh)]),
@@ -268,10 +269,22 @@ fn a_smooth_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
             "10-12-8-3 sigmoid, identity",
             [(12, sigmoid), (8, Activation::Identity)],
         ),
+        (
+            "10-16-12-3 tanh, relu",
+            [(16, tanh), (12, Activation::Relu)],
+        ),
     ] {
         let layers = [layers[0], layers[1], (3, Activation::Softmax)];
+        let kinked = layers[1].1 == Activation::Relu;
         let g = graph_common::dense(10, &layers, Loss::CrossEntropy, 0.05);
-        let c = graph_common::case(g, 7, 4);
+        let mut c = graph_common::case(g, 7, 4);
+        if kinked {
+            // Sample 0 of the second layer's unit 0 set 1e-9 above the kink: a step of many
+            // first-layer entries crosses it there (the response declines; both paths retry).
+            let z = c.graph.forward(&c.params, c.x.view()).steps[1].out[[0, 0]];
+            c.params[3].as_slice_mut().unwrap()[0] += 1e-9 - z;
+        }
+        let c = c;
         let (x, y) = (c.x.view(), c.y.view());
         // The response answers at the check's default step, under the check's limit.
         let base = c.graph.forward(&c.params, x);
@@ -301,5 +314,7 @@ fn a_smooth_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
         let (one, three) = (on(1), on(3));
         assert_eq!(one.coords, three.coords, "{what}");
         assert_eq!(one.directions, three.directions, "{what}");
+        let crossed = one.coords.iter().filter(|c| c.retried).count();
+        assert_eq!(crossed > 0, kinked, "{what}: {crossed} steps cross a kink");
     }
 }
