@@ -249,7 +249,10 @@ impl Run<'_> {
         let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
         // A loss through a response errs by at most a tenth of the round-off the checker
         // assumes for it (`noise` of check_tensors), or the plain path computes it.
-        real.respond(0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross));
+        real.respond(
+            0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross),
+            &self.plan.picked,
+        );
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of
@@ -416,6 +419,11 @@ fn key_of(changes: &[Change]) -> Option<Key> {
         .map(|c| (c.tensor, c.index, c.delta.to_bits(), changes.len()))
 }
 
+/// A unit's entries checked (three losses each, or more) for its response's coefficients,
+/// about three plain losses, to be worth forming: a sampled check of a wide layer, with one or
+/// two entries a unit, keeps the plain path.
+const RESPONSE_ENTRIES: usize = 8;
+
 /// The graph at its base point in scalar S, and perturbed evaluations over it.
 struct Eval<'a, S> {
     graph: &'a Graph,
@@ -509,11 +517,15 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     }
 
     /// Takes one-entry losses through each layer's response where it has one, for losses whose
-    /// bound is at most `limit` (the plain path otherwise).
-    fn respond(&mut self, limit: f64) {
+    /// bound is at most `limit` (the plain path otherwise), of the units with at least
+    /// [`RESPONSE_ENTRIES`] of the `picked` entries.
+    fn respond(&mut self, limit: f64, picked: &[(usize, usize)]) {
         let (graph, y) = (self.graph, self.y.view());
         self.responses = (0..graph.nodes().len())
-            .map(|j| Response::new(graph, &self.trace, y, j, limit))
+            .map(|j| {
+                Response::new(graph, &self.trace, y, j, limit)
+                    .map(|r| r.for_entries(graph, picked, RESPONSE_ENTRIES))
+            })
             .collect();
     }
 

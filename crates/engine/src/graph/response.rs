@@ -81,6 +81,8 @@ pub struct Response<S> {
     lifts: Vec<f64>,
     limit: f64,
     units: Vec<OnceLock<Unit<S>>>,
+    /// The units whose entries take the response ([`Response::for_entries`]; all by default).
+    wanted: Vec<bool>,
 }
 
 /// One unit's coefficients: M_k (m × outputs each) and the bound's factors per dᵏ.
@@ -242,12 +244,30 @@ impl<S: LayerScalar> Response<S> {
             lifts,
             limit,
             units: (0..units).map(|_| OnceLock::new()).collect(),
+            wanted: vec![true; units],
         })
     }
 
     /// The layer L whose entries this response takes.
     pub fn layer(&self) -> usize {
         self.layer
+    }
+
+    /// Leaves out the units of L with fewer than `least` entries among `entries` ((tensor, flat
+    /// index) pairs of the graph, those a check will move): a unit's coefficients cost about
+    /// as much as three plain losses (one above a piecewise-linear layer), which a unit with
+    /// few entries to check does not win back. Their losses take the plain path.
+    pub fn for_entries(mut self, graph: &Graph, entries: &[(usize, usize)], least: usize) -> Self {
+        let node = &graph.nodes()[self.layer];
+        let mut counts = vec![0usize; self.units.len()];
+        for &(t, index) in entries.iter().filter(|(t, _)| node.tensors().contains(t)) {
+            let unit = node.layer.moved_channel(t - node.tensors().start, index);
+            if let Some(c) = unit.and_then(|u| counts.get_mut(u)) {
+                *c += 1;
+            }
+        }
+        self.wanted = counts.into_iter().map(|c| c >= least).collect();
+        self
     }
 
     /// Unit u's coefficients: M_k = (σ⁽ᵏ⁾/k! · wᵏ) · W_{L+2}ᵀ and the bound's factors.
@@ -266,9 +286,14 @@ impl<S: LayerScalar> Response<S> {
             let mut coeffs: [Vec<S>; 3] = Default::default();
             let mut g = vec![S::zero(); h];
             let mut wk = vec![S::one(); h];
-            for (slopes, out) in self.slopes.iter().zip(&mut coeffs) {
+            for (k, (slopes, out)) in self.slopes.iter().zip(&mut coeffs).enumerate() {
                 for (p, wj) in wk.iter_mut().zip(&w) {
                     *p *= *wj;
+                }
+                if self.most[k] == 0.0 {
+                    // No such term (identity, relu and leaky relu above the first).
+                    out.resize(m * o, S::zero());
+                    continue;
                 }
                 out.reserve(m * o);
                 // Sample n's row: Σ_j W_{L+2}[c, j] · σ⁽ᵏ⁾(z[n, j])/k! · w_jᵏ for each output c.
@@ -363,6 +388,9 @@ impl<S: LayerScalar> Response<S> {
             ..*moved
         };
         let u = node.layer.moved_channel(local.tensor, local.index)?;
+        if !self.wanted.get(u).copied().unwrap_or(false) {
+            return None;
+        }
         let input = if self.layer == 0 {
             x
         } else {

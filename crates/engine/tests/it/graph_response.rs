@@ -323,3 +323,31 @@ fn a_piecewise_linear_layer_above_responds_exactly_while_no_value_changes_side()
         "{answered} answered, {declined} declined"
     );
 }
+
+#[test]
+fn units_with_few_entries_to_check_keep_the_plain_path() {
+    let mut rng = Rng::new(23);
+    let g = stack(&mut rng, Activation::Tanh, Activation::Tanh);
+    let p = random_params(&g, &mut rng);
+    let (x, y) = (random_x(&g, 4, &mut rng), random_y(&g, 4, &mut rng));
+    let trace = g.forward(&p, x.view());
+    let fan_in = g.tensors()[0].spec.shape[1];
+    // Unit 0: two weights and its bias; unit 1: one weight.
+    let entries = [(0, 0), (0, 1), (1, 0), (0, fan_in)];
+    let r = Response::new(&g, &trace, y.view(), 0, f64::INFINITY)
+        .unwrap()
+        .for_entries(&g, &entries, 2);
+    let l2 = g.l2_sum(&p);
+    let mut ws = Workspace::new();
+    let mut at = |tensor: usize, index: usize| {
+        let moved = Moved {
+            tensor,
+            index,
+            delta: 1e-5,
+        };
+        r.loss_in(&mut ws, &g, &p, x.view(), &trace, y.view(), l2, &moved)
+            .is_some()
+    };
+    assert!(at(0, 2) && at(1, 0), "unit 0 has three entries");
+    assert!(!at(0, fan_in) && !at(1, 1), "unit 1 has one");
+}
