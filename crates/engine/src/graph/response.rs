@@ -43,8 +43,8 @@
 //! for the plain path's rounding), so a loss tests m values where the plain path's kink test
 //! reads m·units(L+1); a change outside it takes the plain path, which finds the crossing. L's
 //! own activation may have a kink or break (relu, elu, …): the moved unit's sides are compared
-//! with the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L, other
-//! kinds, a tap, another loss or output) has no response, nor has a layer whose coefficients
+//! with the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L,
+//! other kinds, a tap, another loss or output) has no response, nor has a layer whose coefficients
 //! would pass [`MOST_VALUES`].
 
 use std::sync::OnceLock;
@@ -110,7 +110,8 @@ pub struct Responded<S> {
 /// The Taylor slopes σ⁽ᵏ⁾/k! (k = 1, 2, 3) from the activation's value a = σ(z), and the largest
 /// |σ⁽ᵏ⁾|/k! and |σ⁗| over the real line; `None` for activations without them here.
 /// tanh: σ′ = 1 − a², σ″ = −2a(1 − a²), σ‴ = −2(1 − a²)(1 − 3a²), σ⁗ = 8a(1 − a²)(2 − 3a²);
-/// logistic: σ′ = a(1 − a), σ″ = σ′(1 − 2a), σ‴ = σ′(1 − 6a + 6a²), σ⁗ = σ′(1 − 2a)(1 − 12a + 12a²).
+/// logistic: σ′ = a(1 − a), σ″ = σ′(1 − 2a), σ‴ = σ′(1 − 6a + 6a²),
+/// σ⁗ = σ′(1 − 2a)(1 − 12a + 12a²).
 /// The maxima are those polynomials' over a in [−1, 1] and [0, 1], rounded up (tested against
 /// num-dual's derivatives on a grid).
 /// relu and leaky relu are linear on each side of their kink: slope 1 above, `below` under it,
@@ -172,8 +173,9 @@ fn gamma(n: usize, u: f64) -> f64 {
 }
 
 impl<S: LayerScalar> Response<S> {
-    /// The response above dense layer `layer` at the base pass `trace` (targets `y`), used for a loss when its bound is at most `limit`; `None` where the graph has none
-    /// there (module doc).
+    /// The response above dense layer `layer` at the base pass `trace` (targets `y`), used for
+    /// a loss when its bound is at most `limit`; `None` where the graph has none there (module
+    /// doc).
     pub fn new(
         graph: &Graph,
         trace: &Trace<S>,
