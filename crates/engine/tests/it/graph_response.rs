@@ -13,6 +13,7 @@
 //!   (64·(n + 1)·ε·max(|J|, 1), the allowance graph_units.rs takes for a dense update); at the
 //!   larger steps the bound is what is tested, and it is not vacuous (dropping the cubic term's
 //!   sign fails it at a step of 1e-3).
+//! - The same in f32 at the f32 ladder's rungs (h to 32h), against f32 whole passes.
 //! - With the check's limit, the default step goes through the response and a large one does
 //!   not (the caller then takes the plain path).
 //! - A kinked first layer: the response's side test against `Graph::tail_crossed` of the plain
@@ -350,4 +351,56 @@ fn units_with_few_entries_to_check_keep_the_plain_path() {
     };
     assert!(at(0, 2) && at(1, 0), "unit 0 has three entries");
     assert!(!at(0, fan_in) && !at(1, 1), "unit 1 has one");
+}
+
+#[test]
+fn in_f32_the_responses_loss_is_a_whole_pass_within_its_bound() {
+    // The f32 check takes the response too (its larger rungs fall back under its limit).
+    let mut rng = Rng::new(29);
+    let mut seen = 0;
+    for seed in 0..9 {
+        let g = stack(&mut rng, Activation::Tanh, ACTIVATIONS[seed % 3]);
+        let p: Vec<ArrayD<f32>> = random_params(&g, &mut rng)
+            .iter()
+            .map(|t| t.mapv(|v| v as f32))
+            .collect();
+        let m = 3 + rng.below(5);
+        let x = random_x(&g, m, &mut rng).mapv(|v| v as f32);
+        let y = random_y(&g, m, &mut rng).mapv(|v| v as f32);
+        let trace = g.forward(&p, x.view());
+        let l2 = g.l2_sum(&p);
+        let r = Response::new(&g, &trace, y.view(), 0, f64::INFINITY).unwrap();
+        let mid = g.nodes()[1]
+            .layer
+            .input()
+            .size()
+            .max(g.nodes()[2].layer.input().size());
+        let mut ws = Workspace::new();
+        for (t, i) in entries(&g) {
+            let h = f32::EPSILON.cbrt() * p[t].as_slice().unwrap()[i].abs().max(1.0);
+            for delta in [h, -2.0 * h, 8.0 * h, 32.0 * h] {
+                let moved = Moved {
+                    tensor: t,
+                    index: i,
+                    delta,
+                };
+                let mut q = p.clone();
+                q[t].as_slice_mut().unwrap()[i] += delta;
+                let whole = g.loss(&q, x.view(), y.view());
+                let got = r
+                    .loss_in(&mut ws, &g, &p, x.view(), &trace, y.view(), l2, &moved)
+                    .unwrap();
+                let eps = f32::EPSILON as f64;
+                let rounding = 64.0 * (mid + 1) as f64 * eps * (whole.abs() as f64).max(1.0);
+                let apart = (got.loss as f64 - whole as f64).abs();
+                assert!(
+                    apart <= got.bound + rounding,
+                    "seed {seed}: ({t}, {i}) at {delta}: apart {apart:e}, bound {:e}",
+                    got.bound
+                );
+                seen += 1;
+            }
+        }
+    }
+    assert!(seen > 500, "{seen}");
 }
