@@ -123,6 +123,9 @@ pub fn check_graph_gradient(
         .sample
         .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
     let mut picked = graph_sample(graph, sample, config.seed).map_err(CheckError::BadSample)?;
+    // Which units take a response is decided on the whole sample, so a shard computes each
+    // loss as the whole check does (merged shards equal it bit for bit).
+    let sampled = picked.clone();
     let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
     let mut chosen = directions(&sizes, k, config.seed);
     if let Some((part, of)) = config.shard {
@@ -175,6 +178,7 @@ pub fn check_graph_gradient(
         tensors: &tensors,
         config: &external,
         plan: &plan,
+        sampled: &sampled,
     };
     // The whole check on one of rayon's threads: a request's parallel losses are then spawned
     // from inside the pool, not handed to it from outside and waited for (a caller outside
@@ -234,6 +238,8 @@ struct Run<'a> {
     tensors: &'a [OutsideTensor],
     config: &'a ExternalConfig,
     plan: &'a Plan<'a>,
+    /// The check's whole sample, before any shard took its share.
+    sampled: &'a [(usize, usize)],
 }
 
 /// The key of a perturbation's kink verdict: its first change (tensor, index, delta bits) and how
@@ -251,7 +257,7 @@ impl Run<'_> {
         // assumes for it (`noise` of check_tensors), or the plain path computes it.
         real.respond(
             0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross),
-            &self.plan.picked,
+            self.sampled,
         );
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
