@@ -31,11 +31,13 @@ use std::sync::Mutex;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Graph, LayerScalar, Moved, Shape, Tail, Trace, Workspace};
+use plumb_engine::graph::{Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace};
 use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
-use crate::check::{CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress};
+use crate::check::{
+    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
+};
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
 use crate::external::{Plan, Request, check_tensors};
@@ -121,6 +123,9 @@ pub fn check_graph_gradient(
         .sample
         .unwrap_or_else(|| Sample::default_for_parameters(graph.parameters()));
     let mut picked = graph_sample(graph, sample, config.seed).map_err(CheckError::BadSample)?;
+    // Which units take a response is decided on the whole sample, so a shard computes each
+    // loss as the whole check does (merged shards equal it bit for bit).
+    let sampled = picked.clone();
     let k = config.directions.unwrap_or(DEFAULT_DIRECTIONS);
     let mut chosen = directions(&sizes, k, config.seed);
     if let Some((part, of)) = config.shard {
@@ -173,6 +178,7 @@ pub fn check_graph_gradient(
         tensors: &tensors,
         config: &external,
         plan: &plan,
+        sampled: &sampled,
     };
     // The whole check on one of rayon's threads: a request's parallel losses are then spawned
     // from inside the pool, not handed to it from outside and waited for (a caller outside
@@ -232,6 +238,8 @@ struct Run<'a> {
     tensors: &'a [OutsideTensor],
     config: &'a ExternalConfig,
     plan: &'a Plan<'a>,
+    /// The check's whole sample, before any shard took its share.
+    sampled: &'a [(usize, usize)],
 }
 
 /// The key of a perturbation's kink verdict: its first change (tensor, index, delta bits) and how
@@ -242,9 +250,15 @@ impl Run<'_> {
     /// The check in real precision S (and its complex type C for the complex step): (J(θ), result).
     fn run<S: LayerScalar, C: LayerScalar + ComplexScalar>(&self) -> (f64, crate::ExternalResult) {
         let graph = self.graph;
-        let real = Eval::<S>::new(graph, self.params, self.x, self.y);
+        let mut real = Eval::<S>::new(graph, self.params, self.x, self.y);
         let f0 = real.loss.re();
         let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
+        // A loss through a response errs by at most a tenth of the round-off the checker
+        // assumes for it (`noise` of check_tensors), or the plain path computes it.
+        real.respond(
+            0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross),
+            self.sampled,
+        );
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of
@@ -411,6 +425,11 @@ fn key_of(changes: &[Change]) -> Option<Key> {
         .map(|c| (c.tensor, c.index, c.delta.to_bits(), changes.len()))
 }
 
+/// A unit's entries checked (three losses each, or more) for its response's coefficients,
+/// about three plain losses, to be worth forming: a sampled check of a wide layer, with one or
+/// two entries a unit, keeps the plain path.
+const RESPONSE_ENTRIES: usize = 8;
+
 /// The graph at its base point in scalar S, and perturbed evaluations over it.
 struct Eval<'a, S> {
     graph: &'a Graph,
@@ -429,6 +448,9 @@ struct Eval<'a, S> {
     /// The workspaces of the threads evaluating a request's losses: as many as ran at once,
     /// each reused by one thread at a time ([`Eval::lend`]), dropped after the request.
     pool: Mutex<Vec<Workspace<S>>>,
+    /// Per layer, the response of the two layers above it ([`Response`]), when it has one and
+    /// the check asked for them ([`Eval::respond`]): one-entry losses of that layer through it.
+    responses: Vec<Option<Response<S>>>,
 }
 
 /// A workspace lent from an [`Eval`]'s pool for one thread's share of a request, given back
@@ -496,7 +518,21 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             ties_from,
             kinks_from,
             pool: Mutex::new(Vec::new()),
+            responses: Vec::new(),
         }
+    }
+
+    /// Takes one-entry losses through each layer's response where it has one, for losses whose
+    /// bound is at most `limit` (the plain path otherwise), of the units with at least
+    /// [`RESPONSE_ENTRIES`] of the `picked` entries.
+    fn respond(&mut self, limit: f64, picked: &[(usize, usize)]) {
+        let (graph, y) = (self.graph, self.y.view());
+        self.responses = (0..graph.nodes().len())
+            .map(|j| {
+                Response::new(graph, &self.trace, y, j, limit)
+                    .map(|r| r.for_entries(graph, picked, RESPONSE_ENTRIES))
+            })
+            .collect();
     }
 
     /// Drops the pool's workspaces: after a request, so that their buffers are not held
@@ -614,6 +650,13 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
                 delta: unit * S::from_f64(c.delta),
             };
             let (x, y) = (self.x.view(), self.y.view());
+            let layer = self.graph.tensors()[moved.tensor].layer;
+            if let Some(r) = self.responses.get(layer).and_then(Option::as_ref) {
+                let (params, trace, l2) = (&self.params, &self.trace, self.l2_sum);
+                if let Some(a) = r.loss_in(ws, self.graph, params, x, trace, y, l2, &moved) {
+                    return (a.loss, branches && a.crossed);
+                }
+            }
             let loss =
                 self.graph
                     .moved_loss_in(ws, &self.params, x, &self.trace, y, self.l2_sum, &moved);

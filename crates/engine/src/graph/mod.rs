@@ -49,6 +49,7 @@ mod network;
 mod norm;
 mod pool;
 mod recurrent;
+mod response;
 mod rms_norm;
 mod rnn;
 mod sequence;
@@ -85,6 +86,7 @@ pub use network::{
 };
 pub use pool::{Pool, PoolKind};
 pub use recurrent::{Output, Recurrent};
+pub use response::{MOST_VALUES, Responded, Response, fourth_bound, slopes};
 pub use rms_norm::RmsNorm;
 pub use rnn::{Rnn, RnnCell};
 pub use shape::Shape;

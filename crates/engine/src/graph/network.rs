@@ -1122,18 +1122,26 @@ impl Graph {
         moved: &Moved<S>,
     ) -> S {
         let (z, a) = tail.output_layer();
-        let sq = if self.decays(moved.tensor) && self.loss.l2 != 0.0 {
-            let p = &params[moved.tensor];
-            let w = match p.as_slice() {
-                Some(values) => values[moved.index],
-                None => *p.iter().nth(moved.index).expect("index within its tensor"),
-            };
-            let w1 = w + moved.delta;
-            l2_sum - w * w + w1 * w1
-        } else {
-            l2_sum
+        self.loss_with(z, a, y, self.moved_l2_sum(params, l2_sum, moved))
+    }
+
+    /// Σ w² after one entry moved, from the base's `l2_sum`: the entry's change alone.
+    pub(super) fn moved_l2_sum<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        l2_sum: S,
+        moved: &Moved<S>,
+    ) -> S {
+        if !(self.decays(moved.tensor) && self.loss.l2 != 0.0) {
+            return l2_sum;
+        }
+        let p = &params[moved.tensor];
+        let w = match p.as_slice() {
+            Some(values) => values[moved.index],
+            None => *p.iter().nth(moved.index).expect("index within its tensor"),
         };
-        self.loss_with(z, a, y, sq)
+        let w1 = w + moved.delta;
+        l2_sum - w * w + w1 * w1
     }
 
     /// Σ w² over the tensors the L2 term covers.
@@ -1164,7 +1172,7 @@ impl Graph {
     }
 
     /// The loss from the output layer's z and activation a, and Σ w² for the L2 term.
-    fn loss_with<S: LayerScalar>(
+    pub(super) fn loss_with<S: LayerScalar>(
         &self,
         z: &Array2<S>,
         a: &Array2<S>,
@@ -1568,7 +1576,7 @@ impl<S: Copy> Workspace<S> {
 
     /// An empty buffer: the smallest spare that holds `len` values, else the largest (which
     /// grows), else a new one with no room yet (a kind that does not use it costs nothing).
-    fn take(&mut self, len: usize) -> Vec<S> {
+    pub(super) fn take(&mut self, len: usize) -> Vec<S> {
         let fits = (0..self.spare.len())
             .filter(|&i| self.spare[i].capacity() >= len)
             .min_by_key(|&i| self.spare[i].capacity());
@@ -1581,7 +1589,7 @@ impl<S: Copy> Workspace<S> {
         v
     }
 
-    fn give(&mut self, v: Vec<S>) {
+    pub(super) fn give(&mut self, v: Vec<S>) {
         if v.capacity() > 0 && self.spare.len() < SPARE {
             self.spare.push(v);
         }
@@ -1611,7 +1619,7 @@ impl<S: Copy> Workspace<S> {
         }
     }
 
-    fn give_array(&mut self, a: Array2<S>) {
+    pub(super) fn give_array(&mut self, a: Array2<S>) {
         let (v, offset) = a.into_raw_vec_and_offset();
         if offset.is_none_or(|o| o == 0) {
             self.give(v);

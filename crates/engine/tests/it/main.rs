@@ -10,6 +10,7 @@ mod graph_fixtures;
 mod graph_init;
 mod graph_mistakes;
 mod graph_published;
+mod graph_response;
 mod graph_sequence;
 mod graph_sequence_fixtures;
 mod graph_sequence_published;

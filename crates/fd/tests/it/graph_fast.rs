@@ -247,3 +247,74 @@ fn a_relu_dense_stack_gives_the_plain_paths_verdicts_on_any_thread_count() {
         assert_eq!(one.directions, three.directions, "{what}");
     }
 }
+
+#[test]
+fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
+    use plumb_engine::graph::{Moved, Response, Workspace};
+    use plumb_engine::{Activation, Loss};
+    // The first layer's entries go through the response of the two layers above it
+    // (plumb_engine::graph::Response: L+1's activation in Taylor terms, used only within a
+    // tenth of the loss's assumed round-off; a relu L+1 while no value changes side); the plain
+    // path takes whole passes. Verdicts both ways (a mistake planted in the second layer's input
+    // gradient: the first layer's gradient, where the response answers, is wrong), thread
+    // counts.
+    let (tanh, sigmoid) = (Activation::Tanh, Activation::Sigmoid);
+    for (what, layers) in [
+        ("10-16-12-3 tanh", [(16, tanh), (12, tanh)]),
+        (
+            "10-9-20-3 relu, sigmoid",
+            [(9, Activation::Relu), (20, sigmoid)],
+        ),
+        (
+            "10-12-8-3 sigmoid, identity",
+            [(12, sigmoid), (8, Activation::Identity)],
+        ),
+        (
+            "10-16-12-3 tanh, relu",
+            [(16, tanh), (12, Activation::Relu)],
+        ),
+    ] {
+        let layers = [layers[0], layers[1], (3, Activation::Softmax)];
+        let kinked = layers[1].1 == Activation::Relu;
+        let g = graph_common::dense(10, &layers, Loss::CrossEntropy, 0.05);
+        let mut c = graph_common::case(g, 7, 4);
+        if kinked {
+            // Sample 0 of the second layer's unit 0 set 1e-9 above the kink: a step of many
+            // first-layer entries crosses it there (the response declines; both paths retry).
+            let z = c.graph.forward(&c.params, c.x.view()).steps[1].out[[0, 0]];
+            c.params[3].as_slice_mut().unwrap()[0] += 1e-9 - z;
+        }
+        let c = c;
+        let (x, y) = (c.x.view(), c.y.view());
+        // The response answers at the check's default step, under the check's limit.
+        let base = c.graph.forward(&c.params, x);
+        let f0 = c.graph.loss_of(&c.params, &base, y);
+        let gross = graph_loss_magnitude(&c.graph, &c.params, &base, &c.y);
+        let limit = 0.1 * plumb_fd::NOISE * f64::EPSILON * f0.abs().max(gross);
+        let r = Response::new(&c.graph, &base, y, 0, limit).expect("a response");
+        let h = f64::EPSILON.cbrt() * c.params[0].as_slice().unwrap()[5].abs().max(1.0);
+        let moved = Moved {
+            tensor: 0,
+            index: 5,
+            delta: h,
+        };
+        let l2 = c.graph.l2_sum(&c.params);
+        let ws = &mut Workspace::new();
+        let answer = r.loss_in(ws, &c.graph, &c.params, x, &base, y, l2, &moved);
+        assert!(answer.is_some(), "{what}: the default step responds");
+        both_ways(what, &c, &named(&c.graph, 1), "bias-rows-shifted");
+        let right = c.graph.gradient(&c.params, x, y, None).params;
+        let on = |threads: usize| {
+            rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap()
+                .install(|| agree(what, &c, &right))
+        };
+        let (one, three) = (on(1), on(3));
+        assert_eq!(one.coords, three.coords, "{what}");
+        assert_eq!(one.directions, three.directions, "{what}");
+        let crossed = one.coords.iter().filter(|c| c.retried).count();
+        assert_eq!(crossed > 0, kinked, "{what}: {crossed} steps cross a kink");
+    }
+}

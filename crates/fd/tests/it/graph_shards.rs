@@ -27,7 +27,7 @@ struct Run {
     n: usize,
 }
 
-const RUNS: [Run; 4] = [
+const RUNS: [Run; 5] = [
     Run {
         net: "pump-cnn.toml",
         samples: 16,
@@ -59,6 +59,16 @@ const RUNS: [Run; 4] = [
         sample: Some(Sample::PerLayer(9)),
         directions: 2,
         n: 5,
+    },
+    // The whole check takes first-layer losses through the response (13 entries a unit), each
+    // shard a third of them: the shards must decide as the whole check does.
+    Run {
+        net: "response.toml",
+        samples: 6,
+        precision: Precision::F64,
+        sample: None,
+        directions: 2,
+        n: 3,
     },
 ];
 
