@@ -16,6 +16,11 @@ precision, NumPy in the file's).
 With BEFORE=path/to/another/plumb (a build of an older commit), that binary runs too, in the same
 alternation (before, plumb, NumPy), and each run's time of all three is printed, with the ratios
 from the same run; the two plumb gradient files must then be equal byte for byte.
+
+For float32 files a third side runs too, in the same alternation: `grad_cli.py numpy-f64`, the same
+NumPy job widened to float64 after loading and its gradient rounded to float32 before writing — the
+arithmetic `plumb grad` does on such files (it computes the reference in f64 whatever the files'
+precision) — with its files asserted to agree with plumb's to 1e-6 of each tensor's largest entry.
 """
 
 import json
@@ -49,8 +54,9 @@ activation = "softmax"
 """
 
 
-def numpy_side(w_path, d_path, g_path):
-    """The NumPy job: load, compute, write; prints its own time after the import."""
+def numpy_side(w_path, d_path, g_path, wide=False):
+    """The NumPy job: load, compute, write; prints its own time after the import. `wide`: in
+    float64 whatever the files hold, the gradient written in the files' precision."""
     start = time.perf_counter()
     sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
     from grad_numpy import gradient
@@ -61,14 +67,19 @@ def numpy_side(w_path, d_path, g_path):
     ws = [w[f"layer{j + 1}.weight"] for j in range(n)]
     bs = [w[f"layer{j + 1}.bias"] for j in range(n)]
     x = d["x"]
+    stored = x.dtype
+    if wide:
+        ws = [a.astype(np.float64) for a in ws]
+        bs = [a.astype(np.float64) for a in bs]
+        x = x.astype(np.float64)
     labels = d["y"]
     y = np.zeros((x.shape[0], SIZES[-1]), dtype=x.dtype)
     y[np.arange(x.shape[0]), labels] = 1
     loss, grads = gradient(ws, bs, x, y, L2)
     out = {}
     for j, (dw, db) in enumerate(grads):
-        out[f"layer{j + 1}.weight"] = dw
-        out[f"layer{j + 1}.bias"] = db
+        out[f"layer{j + 1}.weight"] = dw.astype(stored, copy=False)
+        out[f"layer{j + 1}.bias"] = db.astype(stored, copy=False)
     np.savez(g_path, **out)
     print(json.dumps({"loss": float(loss), "inside": time.perf_counter() - start}))
 
@@ -95,8 +106,8 @@ def timed(cmd):
 
 
 def main():
-    if len(sys.argv) > 1 and sys.argv[1] == "numpy":
-        numpy_side(*sys.argv[2:5])
+    if len(sys.argv) > 1 and sys.argv[1] in ("numpy", "numpy-f64"):
+        numpy_side(*sys.argv[2:5], wide=sys.argv[1] == "numpy-f64")
         return
     plumb = os.environ.get("PLUMB", "target/release/plumb")
     before = os.environ.get("BEFORE")
@@ -109,12 +120,12 @@ def main():
             with tempfile.TemporaryDirectory() as folder:
                 make(folder, dtype, m, rng)
                 p = lambda name: os.path.join(folder, name)
-                ours, theirs, inside, olds = [], [], [], []
+                ours, theirs, inside, olds, wides = [], [], [], [], []
                 grad = lambda binary, out: [binary, "grad", p("net.toml"), "-w", p("w.npz"),
                                             "-d", p("d.npz"), "-o", p(out), "--quiet",
                                             "--format", "json"]
                 for _ in range(runs):
-                    for g in ["g-plumb.npz", "g-numpy.npz", "g-before.npz"]:
+                    for g in ["g-plumb.npz", "g-numpy.npz", "g-before.npz", "g-wide.npz"]:
                         if os.path.exists(p(g)):
                             os.remove(p(g))
                     if before:
@@ -126,6 +137,10 @@ def main():
                                     p("w.npz"), p("d.npz"), p("g-numpy.npz")])
                     theirs.append(t)
                     inside.append(json.loads(out)["inside"])
+                    if dtype == "float32":
+                        t, _ = timed([sys.executable, os.path.abspath(__file__), "numpy-f64",
+                                      p("w.npz"), p("d.npz"), p("g-wide.npz")])
+                        wides.append(t)
                 if before:
                     with open(p("g-before.npz"), "rb") as f, open(p("g-plumb.npz"), "rb") as g:
                         assert f.read() == g.read(), (dtype, m, "the gradient files differ")
@@ -143,6 +158,15 @@ def main():
                     scale = np.abs(b[name]).max()
                     gap = np.abs(a[name].astype(np.float64) - b[name].astype(np.float64)).max()
                     assert gap <= tol * scale, (dtype, m, name, gap, scale)
+                if wides:
+                    c = np.load(p("g-wide.npz"))
+                    for name in c.files:
+                        gap = np.abs(a[name].astype(np.float64) - c[name].astype(np.float64)).max()
+                        assert gap <= 1e-6 * np.abs(c[name]).max(), (dtype, m, name, gap)
+                    print(f"{dtype}, {m}, NumPy in f64 as plumb computes (whole process): "
+                          f"{min(wides) * 1e3:.1f} ms, NumPy-f64 / plumb "
+                          f"{min(wides) / min(ours):.2f}×; each run (ms) plumb / NumPy-f64: "
+                          + ", ".join(f"{t * 1e3:.1f} / {w * 1e3:.1f}" for t, w in zip(ours, wides)))
                 o, n, i = min(ours), min(theirs), min(inside)
                 print(f"{dtype}, {m} | {o * 1e3:.1f} ms | {n * 1e3:.1f} ms | {n / o:.2f}× "
                       f"| {i * 1e3:.1f} ms | {i / o:.2f}×")
