@@ -524,12 +524,14 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
 
     /// Takes one-entry losses through each layer's response where it has one, for losses whose
     /// bound is at most `limit` (the plain path otherwise), of the units with at least
-    /// [`RESPONSE_ENTRIES`] of the `picked` entries.
+    /// [`RESPONSE_ENTRIES`] of the `picked` entries; none when the limit is not finite (a base
+    /// loss of ±inf or NaN leaves no round-off to stay under).
     fn respond(&mut self, limit: f64, picked: &[(usize, usize)]) {
         let (graph, y) = (self.graph, self.y.view());
         self.responses = (0..graph.nodes().len())
             .map(|j| {
                 Response::new(graph, &self.trace, y, j, limit)
+                    .filter(|_| limit.is_finite())
                     .map(|r| r.for_entries(graph, picked, RESPONSE_ENTRIES))
             })
             .collect();

@@ -366,7 +366,7 @@ impl<S: LayerScalar> Layer<S> for Dense {
 
 /// A dense layer updates its output from the base by the change of at most one input unit in
 /// this many ([`Layer::forward_units`]); above that it recomputes the product.
-const UNITS_PER_UPDATE: usize = 8;
+pub(super) const UNITS_PER_UPDATE: usize = 8;
 
 #[cfg(test)]
 mod tests {

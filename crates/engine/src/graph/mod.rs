@@ -86,7 +86,7 @@ pub use network::{
 };
 pub use pool::{Pool, PoolKind};
 pub use recurrent::{Output, Recurrent};
-pub use response::{MOST_VALUES, Responded, Response, fourth_bound, slopes};
+pub use response::{MOST_VALUES, Responded, Response, fourth_bound, slope_bounds, slopes};
 pub use rms_norm::RmsNorm;
 pub use rnn::{Rnn, RnnCell};
 pub use shape::Shape;

@@ -51,6 +51,7 @@ use std::sync::OnceLock;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 
+use super::dense::UNITS_PER_UPDATE;
 use super::network::Workspace;
 use super::{Graph, LayerScalar, Moved, Shape, Trace};
 use crate::{Activation, Loss};
@@ -89,6 +90,8 @@ pub struct Response<S> {
 #[derive(Debug)]
 struct Unit<S> {
     m: [Vec<S>; 3],
+    /// Whether every coefficient and factor is finite; a unit that is not never answers.
+    finite: bool,
     /// Per output value: the truncation's factor of d⁴ and the round-off's of d, d², d³.
     truncation: f64,
     rounding: [f64; 3],
@@ -118,7 +121,7 @@ pub struct Responded<S> {
 /// no higher terms while no value changes side ([`below_kink`]).
 fn taylor(act: Activation) -> Option<([f64; 3], f64)> {
     match act {
-        Activation::Tanh => Some(([1.0, 0.385, 1.0 / 3.0], 4.09)),
+        Activation::Tanh => Some(([1.0, 0.385, 0.33334], 4.09)),
         Activation::Sigmoid => Some(([0.25, 0.0482, 0.0209], 0.128)),
         Activation::Identity => Some(([1.0, 0.0, 0.0], 0.0)),
         _ => below_kink(act).map(|below| ([below.abs().max(1.0), 0.0, 0.0], 0.0)),
@@ -159,6 +162,12 @@ pub fn slopes<S: LayerScalar>(act: Activation, a: S) -> [S; 3] {
         }
         _ => [one, S::zero(), S::zero()],
     }
+}
+
+/// max|σ⁽ᵏ⁾|/k!, k = 1, 2, 3, over the real line as the response's round-off terms take them (see
+/// [`taylor`]).
+pub fn slope_bounds(act: Activation) -> Option<[f64; 3]> {
+    taylor(act).map(|(most, _)| most)
 }
 
 /// max|σ⁗| over the real line as the response's bound takes it (see [`taylor`]).
@@ -205,6 +214,12 @@ impl<S: LayerScalar> Response<S> {
         let hidden = mid.layer.output().size();
         let outputs = top.layer.output().size();
         let units = low.layer.output().size();
+        // Above a kink the response's margin assumes the plain path's z + d·w rounds relative
+        // to the value near the kink: true of dense's rank-one update, not of the whole product
+        // it recomputes below `UNITS_PER_UPDATE` units (its rounding scales with Σ|W||a|).
+        if mid.activation.kink().is_some() && units < UNITS_PER_UPDATE {
+            return None;
+        }
         // Every unit's coefficients are kept for the check's length: not past a budget.
         if units.saturating_mul(3 * m * outputs) > MOST_VALUES {
             return None;
@@ -356,8 +371,13 @@ impl<S: LayerScalar> Response<S> {
                     (lo * (1.0 - KINK_MARGIN), hi * (1.0 - KINK_MARGIN))
                 })
                 .collect();
+            // Coefficients or factors past the working precision's range (huge weights in f32)
+            // make a loss no bound speaks for: such a unit never answers.
+            let finite = coeffs.iter().flatten().all(|v| v.re().is_finite())
+                && b.iter().all(|v| v.is_finite());
             Unit {
                 m: coeffs,
+                finite,
                 truncation: self.fourth * b[3],
                 rounding,
                 windows,
@@ -447,9 +467,19 @@ impl<S: LayerScalar> Response<S> {
         let mut largest = 0.0f64;
         for (n, v) in d.iter_mut().enumerate() {
             *v -= base_a[n * units + u];
-            largest = largest.max(v.re().abs());
+            // Not `max`, which passes over a NaN: a non-finite change takes the plain path.
+            let a = v.re().abs();
+            if !(a <= largest) {
+                largest = a;
+            }
+        }
+        if !largest.is_finite() {
+            return None;
         }
         let unit = self.unit(graph, params, u);
+        if !unit.finite {
+            return None;
+        }
         // A piecewise-linear L+1: exact at first order only while no value changes side; near
         // or across the kink the plain path takes the loss (and its kink test).
         let inside = |(dn, (lo, hi)): (&S, &(f64, f64))| *lo < dn.re() && dn.re() < *hi;
@@ -463,7 +493,7 @@ impl<S: LayerScalar> Response<S> {
             + unit.rounding[2] * t.powi(3);
         let bound = self.lipschitz * per_value;
         // A NaN anywhere takes the plain path.
-        if bound.is_nan() || bound > self.limit {
+        if !(bound <= self.limit) {
             return None;
         }
         let top = &trace.steps[self.layer + 2].out;
