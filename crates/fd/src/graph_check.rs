@@ -11,7 +11,9 @@
 //! channel's change) and the L2 term's change of that entry alone. A random direction comes as
 //! the vector it is ([`Request::Along`]): the parameters moved along it, recomputed from the
 //! lowest layer it moves (each moved layer copied for its own pass alone, the L2 term's change
-//! summed over the moved entries), with no list of one change per parameter. Perturbations are
+//! summed over the moved entries), with no list of one change per parameter; the steps of one
+//! request share that layer's change of z where its kind's z is linear in its tensors
+//! ([`Graph::forward_along`]). Perturbations are
 //! evaluated in parallel, each on its own in a workspace its thread reuses (whose buffers carry
 //! no values from one loss to the next), so the result does not depend on the number of threads.
 //! A step is called across a non-smooth point when the perturbed pass takes another branch than
