@@ -11,7 +11,9 @@
 //! channel's change) and the L2 term's change of that entry alone. A random direction comes as
 //! the vector it is ([`Request::Along`]): the parameters moved along it, recomputed from the
 //! lowest layer it moves (each moved layer copied for its own pass alone, the L2 term's change
-//! summed over the moved entries), with no list of one change per parameter. Perturbations are
+//! summed over the moved entries), with no list of one change per parameter; the steps of one
+//! request share that layer's change of z where its kind's z is linear in its tensors
+//! ([`Graph::forward_along`]). Perturbations are
 //! evaluated in parallel, each on its own in a workspace its thread reuses (whose buffers carry
 //! no values from one loss to the next), so the result does not depend on the number of threads.
 //! A step is called across a non-smooth point when the perturbed pass takes another branch than
@@ -287,8 +289,12 @@ impl Run<'_> {
                     Ok(out.into_iter().map(|(v, _)| v).collect())
                 }
                 Request::Along { v, deltas } => {
-                    let out: Vec<(f64, bool)> =
-                        deltas.par_iter().map(|&d| real.at_along(v, d)).collect();
+                    // Several steps share the lowest moved layer's change of z.
+                    let change = (deltas.len() > 1).then(|| real.along_change(v)).flatten();
+                    let out: Vec<(f64, bool)> = deltas
+                        .par_iter()
+                        .map(|&d| real.at_along(v, d, change.as_ref()))
+                        .collect();
                     let mut seen = seen_along.borrow_mut();
                     for (d, &(_, crossed)) in deltas.iter().zip(&out) {
                         seen.insert(d.to_bits(), crossed);
@@ -373,7 +379,7 @@ impl Run<'_> {
             if complex_mode {
                 real.on_tie_along(v, d)
             } else {
-                real.at_along(v, d).1
+                real.at_along(v, d, None).1
             }
         };
         let inside = Inside {
@@ -580,7 +586,16 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// γ(k + 3)·Σ|w′² − w²| + u·(Σ w² + Σ w′²) of exact, where a fresh sum over all n decaying
     /// entries is within γ(n)·Σ w′²: for a step, whose Σ|w′² − w²| is about 2|d|·Σ|w·v|, the
     /// difference f(θ + d·v) − f(θ) keeps the base's Σ w² exactly and rounds the change alone.
-    fn perturbed_along(&self, v: &[Vec<f64>], d: f64, unit: S) -> (S, Tail<S>) {
+    ///
+    /// With `hint` ([`Eval::along_change`]), the lowest moved layer's z is the base's plus
+    /// the step times it rather than recomputed.
+    fn perturbed_along(
+        &self,
+        v: &[Vec<f64>],
+        d: f64,
+        unit: S,
+        hint: Option<&Array2<S>>,
+    ) -> (S, Tail<S>) {
         let graph = self.graph;
         let moves = |t: usize| v[t].iter().any(|w| *w != 0.0);
         let from = self.lowest_moved(v);
@@ -606,21 +621,48 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             }
             Some(copy)
         };
-        let tail =
-            graph.forward_from_moving(&self.params, self.x.view(), &self.trace, from, &mut moving);
+        let (params, x, base) = (&self.params, self.x.view(), &self.trace);
+        let tail = match hint {
+            Some(c) => {
+                let t = unit * S::from_f64(d);
+                graph.forward_along(params, x, base, from, c, t, &mut moving)
+            }
+            None => graph.forward_from_moving(params, x, base, from, &mut moving),
+        };
         let loss = graph.loss_from_sum(&tail, self.y.view(), self.l2_sum + change);
         (loss, tail)
     }
 
     /// The loss at the real step d·v and whether it took another branch than the base pass.
-    fn at_along(&self, v: &[Vec<f64>], d: f64) -> (f64, bool) {
-        let (loss, tail) = self.perturbed_along(v, d, S::one());
+    fn at_along(&self, v: &[Vec<f64>], d: f64, change: Option<&Array2<S>>) -> (f64, bool) {
+        let (loss, tail) = self.perturbed_along(v, d, S::one(), change);
         (loss.re(), self.crossed(&tail))
+    }
+
+    /// The change of the lowest layer v moves in its z per unit step along v, where that layer's
+    /// z is linear in its tensors ([`Graph::along_change`]); `None` otherwise.
+    fn along_change(&self, v: &[Vec<f64>]) -> Option<Array2<S>> {
+        let from = self.lowest_moved(v);
+        let node = &self.graph.nodes()[from];
+        let tensors: Vec<ArrayD<S>> = node
+            .tensors()
+            .map(|t| self.params[t].mapv(|_| S::zero()))
+            .zip(node.tensors())
+            .map(|(mut a, t)| {
+                let slot = a.as_slice_mut().expect("standard layout");
+                for (s, &w) in slot.iter_mut().zip(&v[t]) {
+                    *s = S::from_f64(w);
+                }
+                a
+            })
+            .collect();
+        self.graph
+            .along_change(self.x.view(), &self.trace, from, &tensors)
     }
 
     /// [`Eval::on_tie`] for the step d·v.
     fn on_tie_along(&self, v: &[Vec<f64>], d: f64) -> bool {
-        self.ties_from[self.lowest_moved(v)] > 0 && self.at_along(v, d).1
+        self.ties_from[self.lowest_moved(v)] > 0 && self.at_along(v, d, None).1
     }
 
     /// The lowest layer the direction v moves (tensors are numbered in layer order), 0 if none.
@@ -716,7 +758,7 @@ impl<S: LayerScalar + ComplexScalar> Eval<'_, S> {
 
     /// Im J at the step i·d·v.
     fn imaginary_along(&self, v: &[Vec<f64>], d: f64) -> f64 {
-        self.perturbed_along(v, d, S::imaginary(1.0)).0.im()
+        self.perturbed_along(v, d, S::imaginary(1.0), None).0.im()
     }
 }
 

@@ -642,6 +642,10 @@ impl Conv {
 }
 
 impl Kind for Conv {
+    fn linear_in_params(&self) -> bool {
+        true
+    }
+
     fn kind(&self) -> &'static str {
         if self.settings.dims == 1 {
             "conv1d"

@@ -78,6 +78,10 @@ impl Dense {
 }
 
 impl Kind for Dense {
+    fn linear_in_params(&self) -> bool {
+        true
+    }
+
     fn kind(&self) -> &'static str {
         "dense"
     }

@@ -224,6 +224,12 @@ pub trait Kind: Send + Sync + Debug {
         let _ = (tensor, index);
         None
     }
+    /// Whether z, at a fixed input, is linear in the layer's tensors together (a product plus a
+    /// bias, γ·x̂ + β): then z(θ + t·v) = z(θ) + t·z_v with z_v the pass with tensors v, which a
+    /// check along a direction computes once for all its steps ([`Graph::along_change`]).
+    fn linear_in_params(&self) -> bool {
+        false
+    }
     /// What the forward step `step` on batch `x` shows the release audit inside the layer.
     fn inside(&self, x: ArrayView2<f64>, step: &Step<f64>) -> Vec<Inside> {
         let _ = (x, step);

@@ -559,6 +559,61 @@ impl Graph {
         from: usize,
         moving: &mut Moving<'_, S>,
     ) -> Tail<S> {
+        self.forward_tail(params, x, base, from, None, moving)
+    }
+
+    /// The change of layer `from`'s z per unit step along `v` (the layer's tensors of a
+    /// direction), when its kind's z is linear in its tensors ([`Kind::linear_in_params`](super::Kind::linear_in_params)): the
+    /// layer's pass with tensors `v` over the base's input. `None` for other kinds.
+    pub fn along_change<S: LayerScalar>(
+        &self,
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        from: usize,
+        v: &[ArrayD<S>],
+    ) -> Option<Array2<S>> {
+        let node = &self.nodes[from];
+        if !node.layer.linear_in_params() {
+            return None;
+        }
+        let x = x.as_standard_layout();
+        let input = if from == 0 {
+            x.view()
+        } else {
+            base.outputs[from - 1].view()
+        };
+        let skip = node.tap.map(|t| base.outputs[t].view());
+        Some(S::layer(node.layer.as_ref()).forward(v, input, skip).out)
+    }
+
+    /// [`Graph::forward_from_moving`] with layer `from`'s z taken as the base's plus `t` times
+    /// `change` ([`Graph::along_change`]) instead of recomputed: the three steps of a
+    /// direction's one-step estimate share one pass of that layer. z + t·change rounds once per
+    /// value where the recomputed pass rounds a whole product, and its rounding is the same
+    /// for each step, so the steps' differences carry less round-off, not more.
+    #[allow(clippy::too_many_arguments)]
+    pub fn forward_along<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        from: usize,
+        change: &Array2<S>,
+        t: S,
+        moving: &mut Moving<'_, S>,
+    ) -> Tail<S> {
+        self.forward_tail(params, x, base, from, Some((change, t)), moving)
+    }
+
+    fn forward_tail<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Trace<S>,
+        from: usize,
+        start: Option<(&Array2<S>, S)>,
+        moving: &mut Moving<'_, S>,
+    ) -> Tail<S> {
         if let Err(e) = self.check_params(params) {
             panic!("{e} (check_params before a pass)");
         }
@@ -581,7 +636,14 @@ impl Graph {
             let own = moved.as_deref().unwrap_or(own);
             // What the backward pass would need (a norm's x̂) is not kept: a tail serves losses.
             let layer = S::layer(node.layer.as_ref());
-            let mut step = layer.forward_into(own, input, skip, &mut Vec::new());
+            let mut step = match start {
+                Some((change, t)) if j == from => {
+                    let mut z = base.steps[j].out.clone();
+                    z.zip_mut_with(change, |z, &c| *z += t * c);
+                    Step::plain(z)
+                }
+                _ => layer.forward_into(own, input, skip, &mut Vec::new()),
+            };
             let a = if node.activation == Activation::Identity && j + 1 < self.nodes.len() {
                 // z is the output: moved there, not copied (a step without z, as below).
                 let rows = step.out.nrows();

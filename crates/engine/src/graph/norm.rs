@@ -441,6 +441,9 @@ pub(crate) fn lane_sum<'v, S: LayerScalar>(
 macro_rules! norm_kind {
     ($t:ty, $name:literal) => {
         impl $crate::graph::Kind for $t {
+            fn linear_in_params(&self) -> bool {
+                true
+            }
             fn kind(&self) -> &'static str {
                 $name
             }

@@ -14,6 +14,10 @@
 //!   (`Layer::forward_units`), equal to a whole pass up to rounding: the same verdict at every
 //!   coordinate, the estimates within their bounds of each other.
 //!
+//! - A direction's lowest moved layer, where its kind's z is linear in its tensors (conv,
+//!   dense, norms), gives z(θ) + t·z_v for each step t instead of a pass at θ + t·v
+//!   (`Graph::forward_along`): equal up to rounding, the same verdict for every direction.
+//!
 //! Both ways: the engine's own gradient, and a gradient with a catalogued mistake planted
 //! (`Graph::plant`), which must be a mismatch at the same coordinates on both paths. The
 //! networks' gradients are the engine's, which crates/engine/tests checks against num-dual
@@ -112,7 +116,11 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
 /// The graph check and the plain path agree in verdict, coordinates and directions, their
 /// estimates within their bounds of each other.
 fn agree(what: &str, c: &Case, analytic: &[ArrayD<f64>]) -> GraphCheck {
-    let k = 2;
+    agree_with(what, c, analytic, 2)
+}
+
+/// [`agree`] with `k` directions.
+fn agree_with(what: &str, c: &Case, analytic: &[ArrayD<f64>], k: usize) -> GraphCheck {
     let cfg = plumb_fd::CheckConfig {
         sample: Some(Sample::All),
         directions: Some(k),
@@ -194,19 +202,98 @@ fn a_conv_above_a_moved_channel_gives_the_plain_paths_verdicts() {
     both_ways("residual", &c, &second, "channels-swapped");
 }
 
-#[test]
-fn the_demo_cnn_gives_the_plain_paths_verdicts() {
+fn demo_cnn() -> Case {
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
     let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
     let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
     let b = Batch::graph_synthetic(&d.graph, 8, 1);
-    let c = Case {
+    Case {
         graph: d.graph,
         params,
         x: b.x,
         y: b.y,
-    };
-    both_ways("pump-cnn", &c, "conv2", "kernel-flipped");
+    }
+}
+
+#[test]
+fn the_demo_cnn_gives_the_plain_paths_verdicts() {
+    both_ways("pump-cnn", &demo_cnn(), "conv2", "kernel-flipped");
+}
+
+#[test]
+fn a_directions_shared_change_of_z_is_a_pass_at_each_step() {
+    // Linearity (z of a product plus a bias, or γ·x̂ + β, at a fixed input): for every layer
+    // whose kind says so, z at θ + t·v from a whole forward pass equals the base's z plus t
+    // times the pass with tensors v, up to a few roundings of the values summed.
+    for (what, c) in [
+        (
+            "residual",
+            graph_common::case(graph_common::residual(), 6, 5),
+        ),
+        ("pump-cnn", demo_cnn()),
+    ] {
+        let g = &c.graph;
+        let x = c.x.view();
+        let base = g.forward(&c.params, x);
+        let mut rng = Rng::new(7);
+        let mut hinted = 0;
+        for (j, node) in g.nodes().iter().enumerate() {
+            let v: Vec<ArrayD<f64>> = c.params[node.tensors()]
+                .iter()
+                .map(|p| p.mapv(|_| 2.0 * rng.uniform() - 1.0))
+                .collect();
+            let Some(change) = g.along_change(x, &base, j, &v) else {
+                continue;
+            };
+            hinted += 1;
+            for t in [1e-6, -1e-6, 2e-6, 0.5] {
+                let mut q = c.params.clone();
+                for (p, w) in q[node.tensors()].iter_mut().zip(&v) {
+                    p.zip_mut_with(w, |p, &w| *p += t * w);
+                }
+                let pass = g.forward(&q, x);
+                let scale = 1.0 + base.steps[j].out.iter().fold(0.0f64, |m, z| m.max(z.abs()));
+                for ((&z, &z0), &dz) in pass.steps[j]
+                    .out
+                    .iter()
+                    .zip(&base.steps[j].out)
+                    .zip(&change)
+                {
+                    let hint = z0 + t * dz;
+                    assert!(
+                        (z - hint).abs() <= 1e-13 * scale,
+                        "{what}: layer {j}, step {t}: pass {z}, z + t·change {hint}"
+                    );
+                }
+            }
+        }
+        assert!(hinted >= 3, "{what}: {hinted} layers give a change");
+    }
+}
+
+#[test]
+fn the_demo_cnns_directions_find_a_planted_mistake_as_the_plain_path_does() {
+    // Eight directions over all tensors and per tensor, every one through the shared change of
+    // its lowest layer (conv, batch norm or dense): the plain path's verdicts, all matches for
+    // the engine's gradient, mismatches with a mistake planted in norm2's backward pass.
+    let c = demo_cnn();
+    let (x, y) = (c.x.view(), c.y.view());
+    let right = c.graph.gradient(&c.params, x, y, None).params;
+    let r = agree_with("pump-cnn", &c, &right, 8);
+    assert!(
+        r.directions.iter().all(|d| d.status == Status::Match),
+        "pump-cnn: {:?}",
+        r.directions
+    );
+    let planted = c.graph.plant("norm2", "norm-scale-unnormalised").unwrap();
+    let wrong = c.graph.gradient(&c.params, x, y, Some(&planted)).params;
+    assert_ne!(wrong, right, "the planted mistake changes the gradient");
+    let r = agree_with("pump-cnn, norm-scale-unnormalised", &c, &wrong, 8);
+    assert!(
+        r.directions.iter().any(|d| d.status == Status::Mismatch),
+        "pump-cnn: a direction finds norm-scale-unnormalised: {:?}",
+        r.directions
+    );
 }
 
 #[test]
