@@ -469,7 +469,7 @@ impl<S: LayerScalar> Response<S> {
             *v -= base_a[n * units + u];
             // Not `max`, which passes over a NaN: a non-finite change takes the plain path.
             let a = v.re().abs();
-            if !(a <= largest) {
+            if a.is_nan() || a > largest {
                 largest = a;
             }
         }
@@ -493,7 +493,7 @@ impl<S: LayerScalar> Response<S> {
             + unit.rounding[2] * t.powi(3);
         let bound = self.lipschitz * per_value;
         // A NaN anywhere takes the plain path.
-        if !(bound <= self.limit) {
+        if bound.is_nan() || bound > self.limit {
             return None;
         }
         let top = &trace.steps[self.layer + 2].out;
