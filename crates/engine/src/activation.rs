@@ -105,6 +105,17 @@ impl Activation {
         }
     }
 
+    /// Whether any pair (now, was) of pre-activations lies on two sides of [`Self::break_point`]
+    /// (a value on it counts as below): the kink test of a moved unit or channel, which the
+    /// plain path ([`crate::graph::Graph::tail_crossed`]) and the response share.
+    pub fn sides_change<'a, S: Scalar + 'a>(
+        &self,
+        mut pairs: impl Iterator<Item = (&'a S, &'a S)>,
+    ) -> bool {
+        self.break_point()
+            .is_some_and(|k| pairs.any(|(a, b)| (a.re() > k) != (b.re() > k)))
+    }
+
     /// g(z) for one element (not for softmax, which needs the whole row).
     #[inline]
     pub fn value<S: Scalar>(&self, z: S) -> S {

@@ -746,11 +746,8 @@ impl Graph {
             let was = base.steps[j].out.as_slice().expect("standard layout");
             let m = base.steps[j].out.nrows();
             let runs = shape.channel_runs(m, *c).flat_map(|run| &was[run]);
-            if let Some(k) = self.nodes[j].activation.break_point() {
-                let side = |v: &S| v.re() > k;
-                if z.iter().zip(runs).any(|(a, b)| side(a) != side(b)) {
-                    return true;
-                }
+            if self.nodes[j].activation.sides_change(z.iter().zip(runs)) {
+                return true;
             }
         }
         tail.steps.iter().enumerate().any(|(i, step)| {

@@ -455,12 +455,7 @@ impl<S: LayerScalar> Response<S> {
         let base_z = trace.steps[self.layer].out.as_slice()?;
         let base_a = trace.outputs[self.layer].as_slice()?;
         let units = trace.outputs[self.layer].ncols();
-        let crossed = act.break_point().is_some_and(|k| {
-            let side = |v: &S| v.re() > k;
-            z.iter()
-                .enumerate()
-                .any(|(n, v)| side(v) != side(&base_z[n * units + u]))
-        });
+        let crossed = act.sides_change(z.iter().zip(base_z[u..].iter().step_by(units)));
         // The change of unit u's activation, as the plain path's update takes it.
         d.extend_from_slice(z);
         act.apply_values(d);
