@@ -36,7 +36,8 @@ use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
 use crate::check::{
-    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
+    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress, RESPONSE_SHARE,
+    loss_noise,
 };
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
@@ -254,11 +255,9 @@ impl Run<'_> {
         let f0 = real.loss.re();
         let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
         // A loss through a response errs by at most a tenth of the round-off the checker
-        // assumes for it (`noise` of check_tensors), or the plain path computes it.
-        real.respond(
-            0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross),
-            self.sampled,
-        );
+        // assumes for it, or the plain path computes it.
+        let noise = loss_noise(self.config.eps, f0, loss_gross);
+        real.respond(RESPONSE_SHARE * noise, self.sampled);
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of

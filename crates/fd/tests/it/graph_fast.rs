@@ -290,7 +290,7 @@ fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
         let base = c.graph.forward(&c.params, x);
         let f0 = c.graph.loss_of(&c.params, &base, y);
         let gross = graph_loss_magnitude(&c.graph, &c.params, &base, &c.y);
-        let limit = 0.1 * plumb_fd::NOISE * f64::EPSILON * f0.abs().max(gross);
+        let limit = 0.1 * plumb_fd::loss_noise(f64::EPSILON, f0, gross);
         let r = Response::new(&c.graph, &base, y, 0, limit).expect("a response");
         let h = f64::EPSILON.cbrt() * c.params[0].as_slice().unwrap()[5].abs().max(1.0);
         let moved = Moved {
