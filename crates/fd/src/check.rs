@@ -248,6 +248,9 @@ pub struct Coverage {
     pub directions: usize,
     pub parameters: usize,
     pub checked: usize,
+    /// The one-entry losses the check took through a response of the layers above (the
+    /// engine's `Response`) rather than a plain forward pass; 0 where no layer has one.
+    pub responded: usize,
 }
 
 /// Progress: called with (done, total) as coordinates finish, from any thread.
