@@ -247,3 +247,27 @@ fn sweep_of_sequence_coordinates_has_v_curves_below_the_tolerance() {
         );
     }
 }
+
+/// The report says how many losses came through the response of the layers above a moved entry
+/// (docs/engine.md, "The response"): response.toml's first-layer units have 13 entries each, so
+/// a whole check takes some, said in JSON and in a line of the table; small.toml (two layers)
+/// has no response, and neither says any.
+#[test]
+fn the_report_counts_the_losses_through_the_response() {
+    let v = check(&["nets/response.toml"]);
+    assert_eq!(v["verdict"], "pass", "{v}");
+    let n = v["coverage"]["responded"].as_u64().unwrap();
+    assert!(n > 0, "{v}");
+    let table = plumb(&["check", "--seed", "3", "nets/response.toml"]);
+    let line = format!("{n} one-entry losses through the response");
+    assert!(table.stdout.contains(&line), "{}", table.stdout);
+
+    let v = check(&["nets/small.toml"]);
+    assert_eq!(v["coverage"]["responded"], 0, "{v}");
+    let table = plumb(&["check", "--seed", "3", "nets/small.toml"]);
+    assert!(
+        !table.stdout.contains("through the response"),
+        "{}",
+        table.stdout
+    );
+}

@@ -197,6 +197,7 @@ struct CheckCoverage {
     parameters: usize,
     checked: usize,
     directions_per_part: usize,
+    responded: usize,
 }
 
 #[derive(Deserialize)]

@@ -326,11 +326,14 @@ pub fn coverage_text(c: &CoverageReport) -> String {
 /// The check's document; `worst` is the table of its worst coordinates.
 pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
     let mut doc = Document::new("plumb check — finite differences against the reference gradient");
-    doc.push(Block::Facts(vec![
+    let mut facts = vec![
         ("description".into(), r.description.display().to_string()),
         ("weights".into(), r.weights.describe()),
         ("data".into(), r.data.describe()),
-        ("method".into(), format!("{} ({}), in {}", r.method, r.step_rule, r.precision)),
+        (
+            "method".into(),
+            format!("{} ({}), in {}", r.method, r.step_rule, r.precision),
+        ),
         ("coverage".into(), coverage_text(&r.coverage)),
         (
             "verdict rule".into(),
@@ -342,7 +345,18 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
                 UNSETTLED_SHARE * 100.0
             ),
         ),
-    ]));
+    ];
+    // Losses not from a whole forward pass are said so (docs/engine.md, "The response").
+    if r.coverage.responded > 0 {
+        facts.push((
+            "response".into(),
+            format!(
+                "{} one-entry losses through the response of the two dense layers above (a Taylor form within a tenth of a loss's round-off), not a whole pass",
+                r.coverage.responded
+            ),
+        ));
+    }
+    doc.push(Block::Facts(facts));
     let t = check_table(r.tensors.iter().map(|tr| CheckRow {
         name: &tr.name,
         parameters: tr.parameters,

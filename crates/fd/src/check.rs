@@ -97,6 +97,17 @@ impl CheckConfig {
 /// under it for when the two happen to agree.
 pub const NOISE: f64 = 4.0;
 
+/// The round-off taken for one evaluation of a loss J in precision ε: [`NOISE`]·ε·max(|J|,
+/// Σ|pieces|), `gross` the magnitude of the pieces J is summed from (0 if unknown). The check's
+/// step and verdict rules, and the response's limit (a tenth of it), all read this one figure.
+pub fn loss_noise(eps: f64, loss: f64, gross: f64) -> f64 {
+    NOISE * eps * loss.abs().max(gross)
+}
+
+/// The share of [`loss_noise`] a loss through a response may err by at most: below it the
+/// plain path's own round-off could move a verdict as much (docs/engine.md, "The response").
+pub const RESPONSE_SHARE: f64 = 0.1;
+
 /// Directions checked per part and globally when not asked otherwise.
 pub const DEFAULT_DIRECTIONS: usize = 4;
 
@@ -237,6 +248,9 @@ pub struct Coverage {
     pub directions: usize,
     pub parameters: usize,
     pub checked: usize,
+    /// The one-entry losses the check took through a response of the layers above (the
+    /// engine's `Response`) rather than a plain forward pass; 0 where no layer has one.
+    pub responded: usize,
 }
 
 /// Progress: called with (done, total) as coordinates finish, from any thread.

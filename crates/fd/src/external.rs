@@ -9,7 +9,7 @@ use plumb_engine::Rng;
 use crate::check::{CoordCheck, RETRIES, Rule, Status};
 use crate::direction::{Direction, directions};
 use crate::method::{Method, complex_estimate, second_difference_steps, smooth_across};
-use crate::{NOISE, Progress, Sample, relative_floor};
+use crate::{Progress, Sample, loss_noise, relative_floor};
 
 /// One tensor of the outside program: its parameters and the gradient it returned for them.
 #[derive(Clone, Debug)]
@@ -180,7 +180,7 @@ pub(crate) fn check_tensors<E>(
     let method = config.method;
     let sizes: Vec<usize> = tensors.iter().map(|t| t.values.len()).collect();
     let picked = &plan.picked;
-    let noise = NOISE * config.eps * f0.abs().max(inside.loss_gross);
+    let noise = loss_noise(config.eps, f0, inside.loss_gross);
     let gross = |t: usize, k: usize| tensors[t].gross.get(k).copied().unwrap_or(0.0);
     let round = plan.round;
     let reach = if config.step.is_some() {

@@ -25,7 +25,7 @@
 //! steps ±√ε·max(|θ|, 1) take instead, and calls the coordinate `unreliable` when they change.
 
 use std::borrow::Cow;
-use std::cell::RefCell;
+use std::cell::{Cell, RefCell};
 use std::collections::HashMap;
 use std::convert::Infallible;
 use std::ops::{Deref, DerefMut};
@@ -38,7 +38,8 @@ use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
 use crate::check::{
-    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
+    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress, RESPONSE_SHARE,
+    loss_noise,
 };
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
@@ -186,7 +187,7 @@ pub fn check_graph_gradient(
     // from inside the pool, not handed to it from outside and waited for (a caller outside
     // the pool sleeps and is woken once per request: the demo CNN's check, whose directions are
     // small requests of three losses each, took 1.07x its time so; benches/README.md).
-    let (loss, result) = rayon::scope(|_| match config.precision {
+    let (loss, result, responded) = rayon::scope(|_| match config.precision {
         Precision::F64 => run.run::<f64, Complex<f64>>(),
         Precision::F32 => run.run::<f32, Complex<f32>>(),
     });
@@ -200,6 +201,7 @@ pub fn check_graph_gradient(
             directions: k,
             parameters: graph.parameters(),
             checked,
+            responded,
         },
         tolerance,
         floors: result.floors,
@@ -249,18 +251,19 @@ struct Run<'a> {
 type Key = (u32, u64, u64, usize);
 
 impl Run<'_> {
-    /// The check in real precision S (and its complex type C for the complex step): (J(θ), result).
-    fn run<S: LayerScalar, C: LayerScalar + ComplexScalar>(&self) -> (f64, crate::ExternalResult) {
+    /// The check in real precision S (and its complex type C for the complex step): (J(θ),
+    /// result, the one-entry losses it took through a response).
+    fn run<S: LayerScalar, C: LayerScalar + ComplexScalar>(
+        &self,
+    ) -> (f64, crate::ExternalResult, usize) {
         let graph = self.graph;
         let mut real = Eval::<S>::new(graph, self.params, self.x, self.y);
         let f0 = real.loss.re();
         let loss_gross = loss_magnitude(graph, &real.params, &real.trace, &real.y);
         // A loss through a response errs by at most a tenth of the round-off the checker
-        // assumes for it (`noise` of check_tensors), or the plain path computes it.
-        real.respond(
-            0.1 * NOISE * self.config.eps * f0.abs().max(loss_gross),
-            self.sampled,
-        );
+        // assumes for it, or the plain path computes it.
+        let noise = loss_noise(self.config.eps, f0, loss_gross);
+        real.respond(RESPONSE_SHARE * noise, self.sampled);
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of
@@ -269,24 +272,28 @@ impl Run<'_> {
         let seen_along: RefCell<HashMap<u64, bool>> = RefCell::new(HashMap::new());
         let complex_mode = complex.is_some();
         let eps = self.config.eps;
+        // The losses the checker asked for that came through a response (not the look-ups of
+        // kink verdicts below, whose number depends on how requests were grouped).
+        let responded = Cell::new(0usize);
         let mut losses = |request: Request<'_>| -> Result<Vec<f64>, Infallible> {
             seen.borrow_mut().clear();
             seen_along.borrow_mut().clear();
             match request {
                 Request::Changes { count, changes } => {
                     let buckets = buckets(count, changes);
-                    let out: Vec<(f64, bool)> = buckets
+                    let out: Vec<(f64, bool, bool)> = buckets
                         .par_iter()
                         .map_init(|| real.lend(), |ws, b| real.at_in(ws, b))
                         .collect();
                     real.release();
+                    responded.set(responded.get() + out.iter().filter(|o| o.2).count());
                     let mut seen = seen.borrow_mut();
-                    for (b, &(_, crossed)) in buckets.iter().zip(&out) {
+                    for (b, &(_, crossed, _)) in buckets.iter().zip(&out) {
                         if let Some(key) = key_of(b) {
                             seen.insert(key, crossed);
                         }
                     }
-                    Ok(out.into_iter().map(|(v, _)| v).collect())
+                    Ok(out.into_iter().map(|(v, _, _)| v).collect())
                 }
                 Request::Along { v, deltas } => {
                     // Several steps share the lowest moved layer's change of z.
@@ -400,7 +407,7 @@ impl Run<'_> {
             Ok(r) => r,
             Err(never) => match never {},
         };
-        (f0, result)
+        (f0, result, responded.get())
     }
 }
 
@@ -677,8 +684,8 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             .forward_from(moved, self.x.view(), &self.trace, from)
     }
 
-    /// The loss at the perturbation by `changes`, each delta times `unit`, and whether it took
-    /// another branch than the base pass: one entry through the kinds' hints in the buffers of
+    /// The loss at the perturbation by `changes`, each delta times `unit`, whether it took
+    /// another branch than the base pass, and whether it came through a response: one entry through the kinds' hints in the buffers of
     /// `ws` (its tail left there), several by recomputing from the lowest layer.
     fn perturbed_in(
         &self,
@@ -686,7 +693,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         changes: &[Change],
         unit: S,
         branches: bool,
-    ) -> (S, bool) {
+    ) -> (S, bool, bool) {
         if let [c] = changes {
             let moved = Moved {
                 tensor: c.tensor as usize,
@@ -698,30 +705,31 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             if let Some(r) = self.responses.get(layer).and_then(Option::as_ref) {
                 let (params, trace, l2) = (&self.params, &self.trace, self.l2_sum);
                 if let Some(a) = r.loss_in(ws, self.graph, params, x, trace, y, l2, &moved) {
-                    return (a.loss, branches && a.crossed);
+                    return (a.loss, branches && a.crossed, true);
                 }
             }
             let loss =
                 self.graph
                     .moved_loss_in(ws, &self.params, x, &self.trace, y, self.l2_sum, &moved);
             let tail = ws.tail().expect("left by the loss");
-            return (loss, branches && self.crossed(tail));
+            return (loss, branches && self.crossed(tail), false);
         }
         let (moved, from) = self.moved(changes, unit);
         let tail = self.tail(&moved, from);
         let loss = self.graph.loss_from(&moved, &tail, self.y.view());
-        (loss, branches && self.crossed(&tail))
+        (loss, branches && self.crossed(&tail), false)
     }
 
     /// The loss at a real perturbation and whether it took another branch than the base pass.
     fn at(&self, changes: &[Change]) -> (f64, bool) {
-        self.at_in(&mut self.lend(), changes)
+        let (loss, crossed, _) = self.at_in(&mut self.lend(), changes);
+        (loss, crossed)
     }
 
-    /// [`Eval::at`] in the buffers of `ws`.
-    fn at_in(&self, ws: &mut Workspace<S>, changes: &[Change]) -> (f64, bool) {
-        let (loss, crossed) = self.perturbed_in(ws, changes, S::one(), true);
-        (loss.re(), crossed)
+    /// [`Eval::at`] in the buffers of `ws`, and whether the loss came through a response.
+    fn at_in(&self, ws: &mut Workspace<S>, changes: &[Change]) -> (f64, bool, bool) {
+        let (loss, crossed, responded) = self.perturbed_in(ws, changes, S::one(), true);
+        (loss.re(), crossed, responded)
     }
 
     /// Whether the base pass sits on a tie or a kink at or above the first layer `changes` move,

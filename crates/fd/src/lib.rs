@@ -45,7 +45,7 @@ mod sweep;
 pub use allocator::keep_freed_memory;
 pub use check::{
     CheckConfig, CheckError, CoordCheck, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
-    Rule, SETTLE, Settlement, Status, UNSETTLED_SHARE,
+    Rule, SETTLE, Settlement, Status, UNSETTLED_SHARE, loss_noise,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select_tensors};
 pub use direction::{Direction, directions};

@@ -16,6 +16,8 @@
 //! - The same in f32 at the f32 ladder's rungs (h to 32h), against f32 whole passes.
 //! - With the check's limit, the default step goes through the response and a large one does
 //!   not (the caller then takes the plain path).
+//! - The limit is inclusive: a limit equal to a loss's returned bound answers, the next f64
+//!   below it declines (the contract of `Response::loss_in`: its bound at most the limit).
 //! - A kinked first layer: the response's side test against `Graph::tail_crossed` of the plain
 //!   path's tail, every entry and step.
 //! - No response where its coefficients would pass its memory budget.
@@ -220,6 +222,48 @@ fn with_the_checks_limit_small_steps_respond_and_large_steps_fall_back() {
             }
         }
     }
+}
+
+#[test]
+fn a_limit_equal_to_the_bound_answers_and_the_next_f64_below_declines() {
+    let mut rng = Rng::new(23);
+    let mut tested = 0;
+    for seed in 0..6 {
+        let g = stack(&mut rng, Activation::Tanh, ACTIVATIONS[seed % 3]);
+        let p = random_params(&g, &mut rng);
+        let (x, y) = (random_x(&g, 4, &mut rng), random_y(&g, 4, &mut rng));
+        let trace = g.forward(&p, x.view());
+        let l2 = g.l2_sum(&p);
+        let with = |limit: f64| Response::new(&g, &trace, y.view(), 0, limit).unwrap();
+        let free = with(f64::INFINITY);
+        let mut ws = Workspace::new();
+        for (t, i) in entries(&g) {
+            for delta in [1e-5, -3e-2] {
+                let moved = Moved {
+                    tensor: t,
+                    index: i,
+                    delta,
+                };
+                let mut at = |r: &Response<f64>| {
+                    r.loss_in(&mut ws, &g, &p, x.view(), &trace, y.view(), l2, &moved)
+                };
+                let bound = at(&free).expect("no limit").bound;
+                assert!(
+                    bound.is_finite() && bound > 0.0,
+                    "seed {seed}: bound {bound:e}"
+                );
+                let equal = at(&with(bound)).expect("a limit equal to the bound answers");
+                assert_eq!(equal.bound, bound);
+                assert_eq!(
+                    at(&with(bound.next_down())),
+                    None,
+                    "seed {seed}: ({t}, {i}) at {delta}: a limit just below {bound:e} answered"
+                );
+                tested += 1;
+            }
+        }
+    }
+    assert!(tested > 50, "{tested} entries tested");
 }
 
 #[test]

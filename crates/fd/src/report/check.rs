@@ -200,6 +200,9 @@ pub struct CoverageReport {
     pub parameters: usize,
     pub checked: usize,
     pub directions_per_part: usize,
+    /// [`Coverage::responded`]; absent (0) in reports written before it.
+    #[serde(default)]
+    pub responded: usize,
 }
 
 /// The JSON report of `plumb check` (docs/json.md); `C` as for [`TensorReport`].
@@ -583,6 +586,7 @@ pub(super) fn build_report<P: Location + Clone>(
             parameters: coverage.parameters,
             checked: coverage.checked,
             directions_per_part: coverage.directions,
+            responded: coverage.responded,
         },
         shard: facts.shard.map(|(k, n)| [k, n]),
         floors: checked.floors.to_vec(),

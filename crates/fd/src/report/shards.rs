@@ -437,7 +437,8 @@ impl Shards<GraphPlace> {
 
 impl<P> Shards<P> {
     /// What the merged run covered: the shards' sample and directions per part, `checked`
-    /// coordinates joined.
+    /// coordinates joined, and their losses through a response summed (each coordinate's are
+    /// taken in its one shard as the whole check takes them).
     fn coverage(&self, sample: Sample, checked: usize) -> Coverage {
         let r = &self.list[0].report.coverage;
         Coverage {
@@ -446,6 +447,7 @@ impl<P> Shards<P> {
             directions: r.directions_per_part,
             parameters: r.parameters,
             checked,
+            responded: self.list.iter().map(|s| s.report.coverage.responded).sum(),
         }
     }
 

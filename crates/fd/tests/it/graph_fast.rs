@@ -377,7 +377,7 @@ fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
         let base = c.graph.forward(&c.params, x);
         let f0 = c.graph.loss_of(&c.params, &base, y);
         let gross = graph_loss_magnitude(&c.graph, &c.params, &base, &c.y);
-        let limit = 0.1 * plumb_fd::NOISE * f64::EPSILON * f0.abs().max(gross);
+        let limit = 0.1 * plumb_fd::loss_noise(f64::EPSILON, f0, gross);
         let r = Response::new(&c.graph, &base, y, 0, limit).expect("a response");
         let h = f64::EPSILON.cbrt() * c.params[0].as_slice().unwrap()[5].abs().max(1.0);
         let moved = Moved {
@@ -403,5 +403,46 @@ fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
         assert_eq!(one.directions, three.directions, "{what}");
         let crossed = one.coords.iter().filter(|c| c.retried).count();
         assert_eq!(crossed > 0, kinked, "{what}: {crossed} steps cross a kink");
+        // The check took its first-layer losses through the response (the verdicts above are
+        // the plain path's): at least the ±h pair of each first-layer entry, as many on any
+        // thread count. Without the response every loss is a whole pass and the count is 0.
+        let first: usize = c.graph.nodes()[0]
+            .tensors()
+            .map(|t| c.graph.tensors()[t].spec.shape.iter().product::<usize>())
+            .sum();
+        let responded = one.coverage.responded;
+        assert!(
+            responded >= 2 * first,
+            "{what}: {responded} losses responded"
+        );
+        assert_eq!(responded, three.coverage.responded, "{what}");
     }
+}
+
+#[test]
+fn a_network_without_a_response_counts_no_loss_through_one() {
+    use plumb_engine::{Activation, Loss};
+    // The response needs dense L, dense L+1 with a covered activation, and a dense softmax
+    // output under cross-entropy (crates/engine/src/graph/response.rs). The same 10-16-12-3
+    // tanh stack with a squared-error identity output, and a conv network, have none: every
+    // loss is a whole pass and the count is 0; the cross-entropy twin counts some (both
+    // directions of the count).
+    let tanh = Activation::Tanh;
+    let responded = |c: &Case| {
+        let right = c
+            .graph
+            .gradient(&c.params, c.x.view(), c.y.view(), None)
+            .params;
+        agree("count", c, &right).coverage.responded
+    };
+    let stack = |output: Activation, loss: Loss| {
+        let layers = [(16, tanh), (12, tanh), (3, output)];
+        graph_common::case(graph_common::dense(10, &layers, loss, 0.05), 7, 4)
+    };
+    let squared = responded(&stack(Activation::Identity, Loss::SquaredError));
+    assert_eq!(squared, 0, "squared error");
+    let twin = responded(&stack(Activation::Softmax, Loss::CrossEntropy));
+    assert!(twin > 0, "the cross-entropy twin: {twin}");
+    let conv = responded(&graph_common::case(graph_common::conv1d(), 6, 3));
+    assert_eq!(conv, 0, "conv1d");
 }

@@ -142,6 +142,23 @@ fn merged_graph_shards_equal_the_whole_check() {
             .collect();
         assert!(counts.iter().all(|&c| c > 0), "{what}: {counts:?}");
         assert_eq!(merged.directions.len(), whole.directions.len(), "{what}");
+        // The losses through a response: each shard's own, adding up to the whole check's
+        // (the JSON compared below holds the count too); none where the net has no response.
+        let responded: Vec<u64> = files
+            .iter()
+            .map(|(_, b)| {
+                let v: Value = serde_json::from_slice(b).unwrap();
+                v["coverage"]["responded"].as_u64().unwrap()
+            })
+            .collect();
+        let total = whole.coverage.responded;
+        assert_eq!(merged.coverage.responded, total, "{what}");
+        assert_eq!(responded.iter().sum::<u64>(), total as u64, "{what}");
+        if run.net == "response.toml" {
+            assert!(responded.iter().all(|&r| r > 0), "{what}: {responded:?}");
+        } else {
+            assert_eq!(total, 0, "{what}: no response in this net");
+        }
 
         // Field by field: the whole JSON, less the list of every coordinate a merge adds.
         let mut m = serde_json::to_value(&merged).unwrap();
@@ -161,6 +178,36 @@ fn merged_graph_shards_equal_the_whole_check() {
             assert_eq!(bits(&a.bounds), bits(&b.bounds), "{what}: {}", a.label);
         }
     }
+}
+
+/// Shards written before `coverage.responded` existed still merge (the field reads as 0, and so
+/// does the merged count); with it, the merged count is their sum.
+#[test]
+fn shards_without_the_response_count_still_merge() {
+    let run = &RUNS[4];
+    assert_eq!(run.net, "response.toml");
+    let l = loaded(run.net, run.samples);
+    let files = shard_files(&l, run);
+    let with = Shards::<GraphPlace>::parse(&files)
+        .unwrap()
+        .merge_graph(&l.desc, 5)
+        .unwrap();
+    assert!(with.coverage.responded > 0);
+    let older: Vec<(PathBuf, Vec<u8>)> = files
+        .iter()
+        .map(|(p, b)| {
+            let mut v: Value = serde_json::from_slice(b).unwrap();
+            let cov = v["coverage"].as_object_mut().unwrap();
+            assert!(cov.remove("responded").is_some());
+            (p.clone(), serde_json::to_vec(&v).unwrap())
+        })
+        .collect();
+    let merged = Shards::<GraphPlace>::parse(&older)
+        .unwrap()
+        .merge_graph(&l.desc, 5)
+        .unwrap();
+    assert_eq!(merged.coverage.responded, 0);
+    assert_eq!(merged.coverage.checked, with.coverage.checked);
 }
 
 /// The shards of the conv network's f64 check, as JSON values, and a way to merge edited ones.
