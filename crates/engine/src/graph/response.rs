@@ -44,7 +44,7 @@
 //! reads m·units(L+1); a change outside it takes the plain path, which finds the crossing. L's
 //! own activation may have a kink or break (relu, elu, …): the moved unit's sides are compared
 //! with the base's, as [`Graph::tail_crossed`] does. Anything else (other activations above L,
-//! other kinds, a tap, another loss or output) has no response, nor has a layer whose coefficients
+//! other kinds, a tap, another loss or output) has no response, nor has a layer whose kept values
 //! would pass [`MOST_VALUES`].
 
 use std::sync::OnceLock;
@@ -56,8 +56,10 @@ use super::network::Workspace;
 use super::{Graph, LayerScalar, Moved, Shape, Trace};
 use crate::{Activation, Loss};
 
-/// The most coefficients a response keeps (3 per output value, sample and unit of L): 16 MiB in
-/// f64. Past it (a wide layer on a large batch) there is no response, and the plain path runs.
+/// The most values a response keeps for a check's length — its coefficients (3 per output value,
+/// sample and unit of L), the slopes (3 per sample and unit of L+1) and, above a kink, the
+/// distances to it and each unit's windows: 16 MiB in f64. Past it (a wide layer on a large
+/// batch) there is no response, and the plain path runs.
 pub const MOST_VALUES: usize = 1 << 21;
 
 /// The response of the two dense layers above a dense layer L (see the module doc), built at the
@@ -221,7 +223,10 @@ impl<S: LayerScalar> Response<S> {
             return None;
         }
         // Every unit's coefficients are kept for the check's length: not past a budget.
-        if units.saturating_mul(3 * m * outputs) > MOST_VALUES {
+        let kinked = mid.activation.kink().is_some();
+        let per_sample = units.saturating_mul(3 * outputs + 2 * kinked as usize)
+            + hidden * (3 + kinked as usize);
+        if per_sample.saturating_mul(m) > MOST_VALUES {
             return None;
         }
         let mut slopes: [Vec<S>; 3] = Default::default();
