@@ -781,15 +781,8 @@ impl Graph {
         let m = was.out.nrows();
         let per_value = m * shape.size();
         let branched = if step.branches.len() == per_value && was.branches.len() == per_value {
-            channels.iter().any(|&c| {
-                shape.channel_runs(m, c).any(|run| {
-                    // A fold, not a slice comparison: runs are short, and memcmp's call per
-                    // run cost more than the comparisons.
-                    step.branches[run.clone()]
-                        .iter()
-                        .zip(&was.branches[run])
-                        .fold(false, |any, (a, b)| any | (a != b))
-                })
+            runs_differ(shape, m, channels, &step.branches, &was.branches, |a, b| {
+                a != b
             })
         } else {
             branches_differ(&step.branches, &was.branches)
@@ -807,14 +800,7 @@ impl Graph {
             return false; // no z kept: nothing to compare, as sides_differ finds
         }
         let side = |v: &S| v.re() > k;
-        channels.iter().any(|&c| {
-            shape.channel_runs(m, c).any(|run| {
-                now[run.clone()]
-                    .iter()
-                    .zip(&then[run])
-                    .fold(false, |any, (a, b)| any | (side(a) != side(b)))
-            })
-        })
+        runs_differ(shape, m, channels, now, then, |a, b| side(a) != side(b))
     }
 
     /// [`Graph::forward_moved`] in the buffers of `ws`, with the output layer's activation only
@@ -1575,6 +1561,28 @@ fn same_channel<S: Scalar>(shape: Shape, m: usize, c: usize, now: &[S], a: &Arra
     now.iter()
         .all(|v| was.next().is_some_and(|w| v.same_bits(*w)))
         && was.next().is_none()
+}
+
+/// Whether `differ` holds for any value of `channels` in `now` against `then` (both one value
+/// per output value, over `m` samples of `shape`). A fold per run, not a slice comparison or an
+/// early exit per value: runs are short, and memcmp's call per run cost more than the
+/// comparisons.
+fn runs_differ<T>(
+    shape: Shape,
+    m: usize,
+    channels: &[usize],
+    now: &[T],
+    then: &[T],
+    differ: impl Fn(&T, &T) -> bool,
+) -> bool {
+    channels.iter().any(|&c| {
+        shape.channel_runs(m, c).any(|run| {
+            now[run.clone()]
+                .iter()
+                .zip(&then[run])
+                .fold(false, |any, (a, b)| any | differ(a, b))
+        })
+    })
 }
 
 /// Whether two lists of branch choices differ; two empty lists (a kind without choices) are
