@@ -540,11 +540,13 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// [`RESPONSE_ENTRIES`] of the `picked` entries; none when the limit is not finite (a base
     /// loss of ±inf or NaN leaves no round-off to stay under).
     fn respond(&mut self, limit: f64, picked: &[(usize, usize)]) {
+        if !limit.is_finite() {
+            return;
+        }
         let (graph, y) = (self.graph, self.y.view());
         self.responses = (0..graph.nodes().len())
             .map(|j| {
                 Response::new(graph, &self.trace, y, j, limit)
-                    .filter(|_| limit.is_finite())
                     .map(|r| r.for_entries(graph, picked, RESPONSE_ENTRIES))
             })
             .collect();
@@ -653,11 +655,10 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         let node = &self.graph.nodes()[from];
         let tensors: Vec<ArrayD<S>> = node
             .tensors()
-            .map(|t| self.params[t].mapv(|_| S::zero()))
-            .zip(node.tensors())
-            .map(|(mut a, t)| {
-                let slot = a.as_slice_mut().expect("standard layout");
-                for (s, &w) in slot.iter_mut().zip(&v[t]) {
+            .map(|t| {
+                // A tensor the direction does not span has no values in v: zeros.
+                let mut a = self.params[t].mapv(|_| S::zero());
+                for (s, &w) in a.iter_mut().zip(&v[t]) {
                     *s = S::from_f64(w);
                 }
                 a
@@ -685,8 +686,9 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     }
 
     /// The loss at the perturbation by `changes`, each delta times `unit`, whether it took
-    /// another branch than the base pass, and whether it came through a response: one entry through the kinds' hints in the buffers of
-    /// `ws` (its tail left there), several by recomputing from the lowest layer.
+    /// another branch than the base pass, and whether it came through a response: one entry
+    /// through its layer's response or the kinds' hints in the buffers of `ws` (its tail left
+    /// there), several by recomputing from the lowest layer.
     fn perturbed_in(
         &self,
         ws: &mut Workspace<S>,
