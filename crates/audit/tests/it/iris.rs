@@ -18,6 +18,7 @@ fn iris() -> Batch {
         let sd = col.std(0.0);
         col.mapv_inplace(|v| (v - mean) / sd);
     }
+    // Fisher (1936) measured 50 flowers of each of the three species.
     assert_eq!(batch.y.sum_axis(ndarray::Axis(0)).to_vec(), [50.0; 3]);
     batch
 }

@@ -510,6 +510,9 @@ fn a_unit_whose_coefficients_leave_f32s_range_never_answers() {
     let y = random_y(&g, m, &mut rng).mapv(|v| v as f32);
     let trace = g.forward(&p, x.view());
     let l2 = g.l2_sum(&p);
+    // The reference: the plain f32 pass gives a finite loss here, so a non-finite answer would
+    // be the response's own error.
+    assert!(g.loss(&p, x.view(), y.view()).is_finite());
     let r = Response::new(&g, &trace, y.view(), 0, 1e3).expect("a response");
     let mut ws = Workspace::new();
     let mut declined = 0;
