@@ -69,6 +69,16 @@ impl Dense {
         )
     }
 
+    /// The weight, units × fan-in in standard layout, from a dense layer's own tensors (the
+    /// engine's canonical storage whatever the file's layout): for code that reads a dense
+    /// layer's entries by unit without a pass.
+    pub(super) fn weight<S>(params: &[ArrayD<S>]) -> ArrayView2<'_, S> {
+        params[0]
+            .view()
+            .into_dimensionality::<Ix2>()
+            .expect("a dense weight has two axes")
+    }
+
     /// (m · rows) × fan-in: one row per sample and step.
     fn rows<'a, S>(&self, x: ArrayView2<'a, S>) -> ArrayView2<'a, S> {
         let r = self.input.rows();

@@ -51,7 +51,7 @@ use std::sync::OnceLock;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 
-use super::dense::UNITS_PER_UPDATE;
+use super::dense::{Dense, UNITS_PER_UPDATE};
 use super::network::Workspace;
 use super::{Graph, LayerScalar, Moved, Shape, Trace};
 use crate::{Activation, Loss};
@@ -297,12 +297,12 @@ impl<S: LayerScalar> Response<S> {
         self.units[u].get_or_init(|| {
             let nodes = graph.nodes();
             let low = nodes[self.layer].layer.output().size();
-            let w_mid = params[nodes[self.layer + 1].tensors().start]
-                .as_slice()
-                .expect("standard layout");
-            let w_top = params[nodes[self.layer + 2].tensors().start]
-                .as_slice()
-                .expect("standard layout");
+            let w_mid = Dense::weight(&params[nodes[self.layer + 1].tensors()]);
+            let w_top = Dense::weight(&params[nodes[self.layer + 2].tensors()]);
+            let (w_mid, w_top) = (
+                w_mid.as_slice().expect("standard layout"),
+                w_top.as_slice().expect("standard layout"),
+            );
             let (m, h, o) = (self.m, self.hidden, self.outputs);
             let w: Vec<S> = (0..h).map(|j| w_mid[j * low + u]).collect();
             let mut coeffs: [Vec<S>; 3] = Default::default();
