@@ -14,6 +14,7 @@ mod graph_response;
 mod graph_sequence;
 mod graph_sequence_fixtures;
 mod graph_sequence_published;
+mod graph_tail_kinks;
 mod graph_tails;
 mod graph_units;
 mod iris;
