@@ -7,6 +7,7 @@ mod accuracy;
 mod budget;
 mod conventions;
 mod external;
+mod graph_along;
 mod graph_engine;
 mod graph_fast;
 mod graph_kinks;

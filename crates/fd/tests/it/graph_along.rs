@@ -1,0 +1,185 @@
+//! A direction's shared change of z in f32 (`Graph::along_change`, `Graph::forward_along`: the
+//! lowest moved layer's z taken as z(θ) + t·z_v instead of a pass at θ + t·v), against whole
+//! passes: the loss at each step, and the difference of the ±t pair an estimate divides, within
+//! the round-off the check assumes per loss ([`loss_noise`]) of a whole f64 pass at the same
+//! parameters. Steps from the central difference's default h to 64h (the f32 ladder's reach),
+//! one direction over all tensors and one per layer over its tensors alone, so that each
+//! kind that shares its change — conv, dense, batch, layer and rms norm — is the lowest moved
+//! layer of some direction; networks with an L2 term (on biases too, in `norms`), whose change
+//! is summed over the moved entries as the check sums it (crates/fd/src/graph_check.rs,
+//! `perturbed_along`). graph_fast.rs holds the f64 side against the plain path's verdicts.
+
+use std::path::Path;
+
+use ndarray::ArrayD;
+use plumb_engine::graph::{Graph, Moving};
+use plumb_engine::{Batch, Init, Rng};
+use plumb_fd::{Method, graph_loss_magnitude, loss_noise};
+use plumb_formats::GraphDescription;
+
+use crate::graph_common::{self, Case};
+
+fn demo_cnn() -> Case {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
+    let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
+    let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
+    let b = Batch::graph_synthetic(&d.graph, 8, 1);
+    Case {
+        graph: d.graph,
+        params,
+        x: b.x,
+        y: b.y,
+    }
+}
+
+/// Unit directions from `seed`: one over every tensor, then one per layer with tensors.
+fn directions(g: &Graph, seed: u64) -> Vec<Vec<Vec<f64>>> {
+    let mut rng = Rng::new(seed);
+    let mut scopes = vec![None];
+    scopes.extend(
+        (0..g.nodes().len())
+            .filter(|&j| !g.nodes()[j].tensors().is_empty())
+            .map(Some),
+    );
+    scopes
+        .into_iter()
+        .map(|scope| {
+            let v: Vec<Vec<f64>> = g
+                .tensors()
+                .iter()
+                .map(|spec| {
+                    let on = scope.is_none_or(|j| spec.layer == j);
+                    let n = spec.spec.shape.iter().product::<usize>();
+                    (0..n)
+                        .map(|_| if on { rng.normal() } else { 0.0 })
+                        .collect()
+                })
+                .collect();
+            let norm = v.iter().flatten().map(|w| w * w).sum::<f64>().sqrt();
+            v.into_iter()
+                .map(|t| t.into_iter().map(|w| w / norm).collect())
+                .collect()
+        })
+        .collect()
+}
+
+/// The largest error of the shared change's losses and of their ±t differences, in units of
+/// the assumed per-loss round-off, and the kinds that were a direction's lowest moved layer.
+fn worst_errors(what: &str, c: &Case, seed: u64) -> (f64, f64, Vec<&'static str>) {
+    let g = &c.graph;
+    let p: Vec<ArrayD<f32>> = c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+    let p64: Vec<ArrayD<f64>> = p.iter().map(|t| t.mapv(f64::from)).collect();
+    let (x, y) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
+    let (x64, y64) = (x.mapv(f64::from), y.mapv(f64::from));
+    let base = g.forward(&p, x.view());
+    let base64 = g.forward(&p64, x64.view());
+    let f0 = f64::from(g.loss_of(&p, &base, y.view()));
+    let eps = f64::from(f32::EPSILON);
+    let noise = loss_noise(eps, f0, graph_loss_magnitude(g, &p64, &base64, &y64));
+    let l2 = g.l2_sum(&p);
+    let theta = p64.iter().flatten().fold(0.0f64, |m, v| m.max(v.abs()));
+    let h = Method::Central.default_step(theta, eps);
+    let (mut per_loss, mut per_difference, mut kinds) = (0.0f64, 0.0f64, Vec::new());
+    for v in directions(g, seed) {
+        let moves = |t: usize| v[t].iter().any(|w| *w != 0.0);
+        let from = g.tensors()[(0..v.len()).find(|&t| moves(t)).unwrap()].layer;
+        let node = &g.nodes()[from];
+        let vt: Vec<ArrayD<f32>> = node
+            .tensors()
+            .map(|t| {
+                let mut a = p[t].mapv(|_| 0.0f32);
+                for (s, &w) in a.iter_mut().zip(&v[t]) {
+                    *s = w as f32;
+                }
+                a
+            })
+            .collect();
+        let change = g
+            .along_change(x.view(), &base, from, &vt)
+            .unwrap_or_else(|| panic!("{what}: {} shares its change", node.layer.kind()));
+        kinds.push(node.layer.kind());
+        // The loss at step t through the shared change (the moved layers above as the check
+        // moves them, the L2 term's change summed over the moved entries), and a whole f64
+        // pass at the same parameters: θ in f32, plus t·v.
+        let at = |t: f64| -> (f64, f64) {
+            let mut l2_change = 0.0f32;
+            let mut moving = |j: usize, own: &[ArrayD<f32>]| -> Option<Vec<ArrayD<f32>>> {
+                let tensors = g.nodes()[j].tensors();
+                if !tensors.clone().any(moves) {
+                    return None;
+                }
+                let mut copy = own.to_vec();
+                for (t_, q) in tensors.zip(copy.iter_mut()) {
+                    for (value, &w) in q.as_slice_mut().unwrap().iter_mut().zip(&v[t_]) {
+                        if w != 0.0 {
+                            let was = *value;
+                            *value += (t * w) as f32;
+                            if g.decays(t_) {
+                                l2_change += (*value - was) * (*value + was);
+                            }
+                        }
+                    }
+                }
+                Some(copy)
+            };
+            let moving: &mut Moving<'_, f32> = &mut moving;
+            let tail = g.forward_along(&p, x.view(), &base, from, &change, t as f32, moving);
+            let shared = f64::from(g.loss_from_sum(&tail, y.view(), l2 + l2_change));
+            let mut q = p64.clone();
+            for (qt, vt) in q.iter_mut().zip(&v) {
+                for (value, &w) in qt.iter_mut().zip(vt) {
+                    *value += t * w;
+                }
+            }
+            (shared, g.loss(&q, x64.view(), y64.view()))
+        };
+        for k in [1.0, 2.0, 8.0, 64.0] {
+            let ((sp, ep), (sm, em)) = (at(k * h), at(-k * h));
+            per_loss = per_loss.max((sp - ep).abs().max((sm - em).abs()) / noise);
+            per_difference = per_difference.max(((sp - sm) - (ep - em)).abs() / noise);
+        }
+    }
+    (per_loss, per_difference, kinds)
+}
+
+#[test]
+fn a_directions_shared_change_in_f32_errs_within_the_checks_round_off() {
+    let cases = [
+        ("pump-cnn", demo_cnn()),
+        ("norms", graph_common::case(graph_common::norms(), 6, 3)),
+        (
+            "batch-norm",
+            graph_common::case(graph_common::batch_norm(), 6, 3),
+        ),
+        ("conv2d", graph_common::case(graph_common::conv2d(), 6, 5)),
+    ];
+    let mut kinds = Vec::new();
+    for (what, c) in &cases {
+        for seed in 0..3 {
+            let (per_loss, per_difference, seen) = worst_errors(what, c, seed);
+            // Each loss within the round-off assumed for it; a difference of two within two.
+            assert!(
+                per_loss <= 1.0,
+                "{what}, seed {seed}: a loss off by {per_loss} noises"
+            );
+            assert!(
+                per_difference <= 2.0,
+                "{what}, seed {seed}: a difference off by {per_difference} noises"
+            );
+            kinds.extend(seen);
+        }
+    }
+    for kind in [
+        "conv1d",
+        "conv2d",
+        "dense",
+        "batch-norm",
+        "layer-norm",
+        "rms-norm",
+    ] {
+        assert!(
+            kinds.contains(&kind),
+            "{kind} is some direction's lowest moved layer"
+        );
+    }
+}
