@@ -651,6 +651,11 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     /// The change of the lowest layer v moves in its z per unit step along v, where that layer's
     /// z is linear in its tensors ([`Graph::along_change`]); `None` otherwise.
     fn along_change(&self, v: &[Vec<f64>]) -> Option<Array2<S>> {
+        // In f64 only: in f32 the shared change moved verdicts at the tolerance's edge
+        // (docs/engine.md, "A request of several steps"); f32 takes a pass per step.
+        if S::epsilon() > f64::EPSILON {
+            return None;
+        }
         let from = self.lowest_moved(v);
         let node = &self.graph.nodes()[from];
         let tensors: Vec<ArrayD<S>> = node

@@ -225,8 +225,8 @@ pub trait Kind: Send + Sync + Debug {
         None
     }
     /// Whether z, at a fixed input, is linear in the layer's tensors together (a product plus a
-    /// bias, γ·x̂ + β): then z(θ + t·v) = z(θ) + t·z_v with z_v the pass with tensors v, which a
-    /// check along a direction computes once for all its steps ([`Graph::along_change`]).
+    /// bias, γ·x̂ + β): then z(θ + t·v) = z(θ) + t·z_v with z_v the pass with tensors v, which
+    /// several steps along one direction can share ([`Graph::along_change`]).
     fn linear_in_params(&self) -> bool {
         false
     }

@@ -587,10 +587,11 @@ impl Graph {
     }
 
     /// [`Graph::forward_from_moving`] with layer `from`'s z taken as the base's plus `t` times
-    /// `change` ([`Graph::along_change`]) instead of recomputed: the three steps of a
-    /// direction's one-step estimate share one pass of that layer. z + t·change rounds once per
-    /// value where the recomputed pass rounds a whole product, and its rounding is the same
-    /// for each step, so the steps' differences carry less round-off, not more.
+    /// `change` ([`Graph::along_change`]) instead of recomputed: several steps along one
+    /// direction share one pass of that layer. z + t·change rounds twice per value (the
+    /// product t·change, the sum) where the recomputed pass rounds a whole product: about the
+    /// same round-off, within what a loss is assumed to carry (crates/fd/tests/it/graph_along.rs
+    /// measures at most 0.32 of it per loss in f32), not bit for bit the pass at θ + t·v.
     #[allow(clippy::too_many_arguments)]
     pub fn forward_along<S: LayerScalar>(
         &self,
@@ -639,6 +640,8 @@ impl Graph {
             let mut step = match start {
                 Some((change, t)) if j == from => {
                     let mut z = base.steps[j].out.clone();
+                    // Same shape, or zip_mut_with would broadcast a wrong change silently.
+                    assert_eq!(z.dim(), change.dim(), "a change of layer {j}'s z");
                     z.zip_mut_with(change, |z, &c| *z += t * c);
                     Step::plain(z)
                 }
@@ -797,7 +800,10 @@ impl Graph {
             return sides_differ(&step.out, &was.out, k);
         };
         if now.len() != then.len() {
-            return false; // no z kept: nothing to compare, as sides_differ finds
+            // No z kept to compare: the side cannot be told, so the step counts as crossed (the
+            // coordinate unreliable, never a false mismatch). No path drops z at a kink today.
+            debug_assert!(false, "a layer with a kink kept no z");
+            return true;
         }
         let side = |v: &S| v.re() > k;
         runs_differ(shape, m, channels, now, then, |a, b| side(a) != side(b))
@@ -1504,12 +1510,12 @@ impl Graph {
     }
 }
 
-/// The channels in either set; `None` (unknown: all may differ) when either is.
 /// Whether two arrays hold the same values bit for bit.
 fn same_bits<S: Scalar>(a: &Array2<S>, b: &Array2<S>) -> bool {
     a.dim() == b.dim() && a.iter().zip(b.iter()).all(|(&x, &y)| x.same_bits(y))
 }
 
+/// The channels in either set; `None` (unknown: all may differ) when either is.
 fn union(a: Option<&[usize]>, b: Option<&[usize]>) -> Option<Vec<usize>> {
     let mut all: Vec<usize> = a?.iter().chain(b?).copied().collect();
     all.sort_unstable();
@@ -1594,6 +1600,10 @@ fn branches_differ(a: &[u32], b: &[u32]) -> bool {
 /// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
 /// without a branch per value (they vectorise), stopping at the first block that differs.
 fn sides_differ<S: Scalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
+    if a.dim() != b.dim() {
+        // Nothing to pair value by value (no z kept on one side): counted as crossed, as above.
+        return true;
+    }
     let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
     match (a.as_slice(), b.as_slice()) {
         (Some(a), Some(b)) => a
