@@ -251,6 +251,10 @@ pub struct Coverage {
     /// The one-entry losses the check took through a response of the layers above (the
     /// engine's `Response`) rather than a plain forward pass; 0 where no layer has one.
     pub responded: usize,
+    /// The losses along a random direction that started from the lowest moved layer's z plus
+    /// the step times its change, shared by the direction's steps, rather than that layer's
+    /// pass (the engine's `Graph::forward_along`; f64 only); 0 where none did.
+    pub shared: usize,
 }
 
 /// Progress: called with (done, total) as coordinates finish, from any thread.

@@ -187,7 +187,7 @@ pub fn check_graph_gradient(
     // from inside the pool, not handed to it from outside and waited for (a caller outside
     // the pool sleeps and is woken once per request: the demo CNN's check, whose directions are
     // small requests of three losses each, took 1.07x its time so; benches/README.md).
-    let (loss, result, responded) = rayon::scope(|_| match config.precision {
+    let (loss, result, responded, shared) = rayon::scope(|_| match config.precision {
         Precision::F64 => run.run::<f64, Complex<f64>>(),
         Precision::F32 => run.run::<f32, Complex<f32>>(),
     });
@@ -202,6 +202,7 @@ pub fn check_graph_gradient(
             parameters: graph.parameters(),
             checked,
             responded,
+            shared,
         },
         tolerance,
         floors: result.floors,
@@ -252,10 +253,11 @@ type Key = (u32, u64, u64, usize);
 
 impl Run<'_> {
     /// The check in real precision S (and its complex type C for the complex step): (J(θ),
-    /// result, the one-entry losses it took through a response).
+    /// result, the one-entry losses it took through a response, the direction losses that
+    /// started from a shared change of z).
     fn run<S: LayerScalar, C: LayerScalar + ComplexScalar>(
         &self,
-    ) -> (f64, crate::ExternalResult, usize) {
+    ) -> (f64, crate::ExternalResult, usize, usize) {
         let graph = self.graph;
         let mut real = Eval::<S>::new(graph, self.params, self.x, self.y);
         let f0 = real.loss.re();
@@ -275,6 +277,8 @@ impl Run<'_> {
         // The losses the checker asked for that came through a response (not the look-ups of
         // kink verdicts below, whose number depends on how requests were grouped).
         let responded = Cell::new(0usize);
+        // The direction losses that started from a shared change of z (Graph::forward_along).
+        let shared = Cell::new(0usize);
         let mut losses = |request: Request<'_>| -> Result<Vec<f64>, Infallible> {
             seen.borrow_mut().clear();
             seen_along.borrow_mut().clear();
@@ -298,6 +302,9 @@ impl Run<'_> {
                 Request::Along { v, deltas } => {
                     // Several steps share the lowest moved layer's change of z.
                     let change = (deltas.len() > 1).then(|| real.along_change(v)).flatten();
+                    if change.is_some() {
+                        shared.set(shared.get() + deltas.len());
+                    }
                     let out: Vec<(f64, bool)> = deltas
                         .par_iter()
                         .map(|&d| real.at_along(v, d, change.as_ref()))
@@ -407,7 +414,7 @@ impl Run<'_> {
             Ok(r) => r,
             Err(never) => match never {},
         };
-        (f0, result, responded.get())
+        (f0, result, responded.get(), shared.get())
     }
 }
 

@@ -203,6 +203,9 @@ pub struct CoverageReport {
     /// [`Coverage::responded`]; absent (0) in reports written before it.
     #[serde(default)]
     pub responded: usize,
+    /// [`Coverage::shared`]; absent (0) in reports written before it.
+    #[serde(default)]
+    pub shared: usize,
 }
 
 /// The JSON report of `plumb check` (docs/json.md); `C` as for [`TensorReport`].
@@ -587,6 +590,7 @@ pub(super) fn build_report<P: Location + Clone>(
             checked: coverage.checked,
             directions_per_part: coverage.directions,
             responded: coverage.responded,
+            shared: coverage.shared,
         },
         shard: facts.shard.map(|(k, n)| [k, n]),
         floors: checked.floors.to_vec(),

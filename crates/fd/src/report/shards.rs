@@ -448,6 +448,7 @@ impl<P> Shards<P> {
             parameters: r.parameters,
             checked,
             responded: self.list.iter().map(|s| s.report.coverage.responded).sum(),
+            shared: self.list.iter().map(|s| s.report.coverage.shared).sum(),
         }
     }
 

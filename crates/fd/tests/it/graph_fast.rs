@@ -446,3 +446,49 @@ fn a_network_without_a_response_counts_no_loss_through_one() {
     let conv = responded(&graph_common::case(graph_common::conv1d(), 6, 3));
     assert_eq!(conv, 0, "conv1d");
 }
+
+#[test]
+fn a_directions_steps_share_their_change_of_z_in_f64_only() {
+    // Where a direction's lowest moved layer is linear in its tensors (conv, dense, norms), its
+    // steps start from z + t·z_v (Graph::forward_along), counted in `coverage.shared`; in f32
+    // every step takes a pass (docs/engine.md, "A request of several steps"), and where the
+    // lowest moved layer is recurrent no step can share. The f64 counts are at least the
+    // ±h pair of each direction that settles on one step; the verdicts are the plain path's
+    // (the tests above).
+    let count = |c: &Case, precision: Precision| {
+        let cfg = plumb_fd::CheckConfig {
+            sample: Some(Sample::All),
+            directions: Some(3),
+            ..config(Method::Central, precision, 1)
+        };
+        let r = graph_common::run(c, &cfg);
+        assert_eq!(
+            graph_common::count(&r, Status::Mismatch),
+            (0, 0),
+            "{}",
+            graph_common::worst(&r)
+        );
+        (r.coverage.shared, r.directions.len())
+    };
+    for (what, c) in [
+        ("conv1d", graph_common::case(graph_common::conv1d(), 6, 3)),
+        ("norms", graph_common::case(graph_common::norms(), 6, 3)),
+    ] {
+        let (shared, directions) = count(&c, Precision::F64);
+        assert!(
+            shared >= 2 * directions,
+            "{what}: {shared} of {directions} directions' losses shared"
+        );
+        let (shared, _) = count(&c, Precision::F32);
+        assert_eq!(shared, 0, "{what} in f32");
+    }
+    // A recurrent layer is not linear in its tensors: the directions over its tensors, and
+    // over the whole network (whose lowest moved layer is the rnn), take a pass per step; only
+    // those over the dense layer's tensors share, so fewer than three losses per direction.
+    let rnn = graph_common::case(graph_common::rnn(), 6, 3);
+    let (shared, directions) = count(&rnn, Precision::F64);
+    assert!(
+        shared > 0 && shared < 3 * directions,
+        "rnn: {shared} of {directions} directions' losses shared"
+    );
+}

@@ -154,6 +154,16 @@ fn merged_graph_shards_equal_the_whole_check() {
         let total = whole.coverage.responded;
         assert_eq!(merged.coverage.responded, total, "{what}");
         assert_eq!(responded.iter().sum::<u64>(), total as u64, "{what}");
+        // The direction losses from a shared change of z: the shards' sum is the whole's.
+        let shared: u64 = files
+            .iter()
+            .map(|(_, b)| {
+                let v: Value = serde_json::from_slice(b).unwrap();
+                v["coverage"]["shared"].as_u64().unwrap()
+            })
+            .sum();
+        assert_eq!(merged.coverage.shared, whole.coverage.shared, "{what}");
+        assert_eq!(shared, whole.coverage.shared as u64, "{what}");
         if run.net == "response.toml" {
             assert!(responded.iter().all(|&r| r > 0), "{what}: {responded:?}");
         } else {
