@@ -185,10 +185,12 @@ impl Norm {
     }
 
     /// y = γ x̂ + β of a standard-layout batch `xs` of `m` samples into `out`, and x̂ with each
-    /// group's 1/√(σ² + ε) and σ² into `saved` when given. On x86-64 machines with AVX2 the
-    /// loops are compiled for AVX2 as well (twice the values per instruction of the baseline
-    /// build); the same IEEE operations on each value in the same order (no fused multiply-add
-    /// is enabled, and Rust never reorders or contracts them), so bit for bit the same.
+    /// group's 1/√(σ² + ε) and σ² into `saved` when given. On x86-64 machines with AVX2 a batch
+    /// norm's loops are compiled for AVX2 as well (twice the values per instruction of the
+    /// baseline build over its runs of positions); the same IEEE operations on each value in the
+    /// same order (no fused multiply-add is enabled, and Rust never reorders or contracts them),
+    /// so bit for bit the same. A layer norm's groups are strided single values, which the
+    /// AVX2 build ran slower (the sequence model's check by 3%).
     fn normalise<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
@@ -198,7 +200,7 @@ impl Norm {
         saved: Option<Saved<'_, S>>,
     ) {
         #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
+        if self.over == Over::Batch && std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
             unsafe { self.normalise_avx2(params, xs, m, out, saved) };
             return;
