@@ -123,7 +123,6 @@ impl Norm {
     /// values of a standard-layout batch `xs` of `m` samples. Both sums go through
     /// [`lane_sum`]: one accumulator made them latency-bound (a batch norm's full pass was a
     /// quarter of the demo CNN's check).
-    #[inline(always)]
     fn statistics<S: LayerScalar>(&self, xs: &[S], g: usize, m: usize, n: S) -> (S, S, S) {
         let mean = if self.centre {
             lane_sum(self.runs(g, m).map(|run| &xs[run]), |v| v) / n
