@@ -185,11 +185,11 @@ impl Norm {
 
     /// y = γ x̂ + β of a standard-layout batch `xs` of `m` samples into `out`, and x̂ with each
     /// group's 1/√(σ² + ε) and σ² into `saved` when given. On x86-64 machines with AVX2 a batch
-    /// norm's loops are compiled for AVX2 as well (twice the values per instruction of the
-    /// baseline build over its runs of positions); the same IEEE operations on each value in the
-    /// same order (no fused multiply-add is enabled, and Rust never reorders or contracts them),
-    /// so bit for bit the same. A layer norm's groups are strided single values, which the
-    /// AVX2 build ran slower (the sequence model's check by 3%).
+    /// norm's value loops are compiled for AVX2 as well (twice the values per instruction of
+    /// the baseline build over its runs of positions); the same IEEE operations on each value in
+    /// the same order (no fused multiply-add is enabled, and Rust never reorders or contracts
+    /// them), so bit for bit the same. A layer norm's groups are strided single values, where
+    /// the AVX2 build showed no gain (the sequence model's check, benches/README.md session 13).
     fn normalise<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
