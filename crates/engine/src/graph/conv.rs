@@ -8,8 +8,13 @@
 //! its weight keeps its own canonical shape o × i × k.
 //!
 //! Incremental hint ([`Layer::forward_moved`]): a kernel entry (o, i, tap) or bias o moved
-//! changes out-channel o only; the hint recomputes that channel with the same loop and the moved
-//! value, so it equals a full pass bit for bit, and keeps the base's other channels.
+//! changes out-channel o only, and linearly: the hint adds δ times the input under tap (i, tap)
+//! (a bias, δ) to the base's channel, one product and one rounding per value where a full pass
+//! sums C_in·taps products again, and keeps the base's other channels bit for bit. Like dense's
+//! hint, the moved channel is a full pass's only up to rounding: within γ(n+1)·(S_base +
+//! S_moved) + u·(|δ·x| + |z|) per value (n the fan-in, S the layer over |w|, |b|, |x|; tested in
+//! crates/engine/tests/it/graph_dual/hints.rs), and the base's rounding is common to every
+//! step of the check, so differences of losses carry less round-off than whole passes.
 //!
 //! Moved in-channels ([`Layer::forward_units`]): above a moved entry, an input that changed in
 //! k of its C channels (k ≤ C/2) changes every out-channel by the correlation of the change with
@@ -246,33 +251,25 @@ impl Conv {
         }
     }
 
-    /// Out-channels `first..` of every sample of the batch `xs` into `out`, `width` values per
-    /// sample (the batch's output, m × out-channels × positions, the other channels untouched;
-    /// or one channel's positions alone, `first` 0): per value from 0, for each
-    /// in-channel and each tap in row-major order, w · x added, then the bias (last, so that
+    /// Every out-channel of every sample of the batch `xs` into `out` (m × out-channels ×
+    /// positions): per value from 0, for each in-channel and each tap in row-major order, w · x added, then the bias (last, so that
     /// outputs with equal sums stay equal when the bias moves: a max-pool tie above stays a tie,
     /// as it does in exact arithmetic). `w` holds the channels' in-channels × taps weights one
     /// channel after another, `bias` one value per channel. Every pass that computes a conv
-    /// output value goes through here, so they all round alike. On x86-64 machines with AVX2
+    /// output value from its sum goes through here, so they all round alike (a moved entry's
+    /// channel is the base's plus the change instead: [`Conv::moved_channel_into`]). On x86-64 machines with AVX2
     /// the loop is compiled for AVX2 as well, in one call for the whole batch (a call per sample
     /// and channel cost as much as the sums at the demo CNN's sizes); that build does the same
     /// IEEE operations on each value (no fused multiply-add is enabled, and Rust never contracts
     /// a product and a sum into one), so its results are bit for bit the same.
-    fn correlate<S: Scalar>(
-        &self,
-        w: &[S],
-        bias: Option<&[S]>,
-        (first, width): (usize, usize),
-        xs: &[S],
-        out: &mut [S],
-    ) {
+    fn correlate<S: Scalar>(&self, w: &[S], bias: Option<&[S]>, xs: &[S], out: &mut [S]) {
         #[cfg(target_arch = "x86_64")]
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
-            unsafe { self.correlate_avx2(w, bias, (first, width), xs, out) };
+            unsafe { self.correlate_avx2(w, bias, xs, out) };
             return;
         }
-        self.correlate_loop(w, bias, (first, width), xs, out);
+        self.correlate_loop(w, bias, xs, out);
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -281,31 +278,23 @@ impl Conv {
         &self,
         w: &[S],
         bias: Option<&[S]>,
-        (first, width): (usize, usize),
         xs: &[S],
         out: &mut [S],
     ) {
-        self.correlate_loop(w, bias, (first, width), xs, out);
+        self.correlate_loop(w, bias, xs, out);
     }
 
     #[inline(always)]
-    fn correlate_loop<S: Scalar>(
-        &self,
-        w: &[S],
-        bias: Option<&[S]>,
-        (first, width): (usize, usize),
-        xs: &[S],
-        out: &mut [S],
-    ) {
+    fn correlate_loop<S: Scalar>(&self, w: &[S], bias: Option<&[S]>, xs: &[S], out: &mut [S]) {
         let (op, per) = (
             self.window.out_positions(),
             self.window.channels * self.window.taps(),
         );
         let sample = self.window.channels * self.window.in_positions();
+        let width = self.settings.channels * op;
         let mut xp = Vec::new();
         for (row, xi) in out.chunks_exact_mut(width).zip(xs.chunks_exact(sample)) {
             let x = self.inputs(xi, &mut xp);
-            let row = &mut row[first * op..];
             let pairs = if std::mem::size_of::<S>() <= 8 {
                 w.len() / (2 * per)
             } else {
@@ -600,27 +589,68 @@ impl Conv {
         }
     }
 
-    /// The out-channel one parameter entry feeds, with its weights and bias after the move:
-    /// θ + δ rounded once, as a full pass at the moved parameters holds it.
-    fn moved_weights<S: Scalar>(
+    /// The out-channel `moved` changes (its kernel entry (o, i, tap) or bias o moved by δ) and
+    /// that channel's values after the move into `out`, each sample's positions one after
+    /// another: the base's z plus δ times the input value under the tap (bias: plus δ), as
+    /// dense's hint adds δ·x. The channel is linear in the entry, so this is the channel's sum
+    /// again with one rounding per value instead of the sum's C_in·taps; a position whose tap
+    /// lies in the padding keeps the base's value (its input is 0). `None` where the base's z is
+    /// not laid out as the forward pass leaves it.
+    fn moved_channel_into<S: Scalar>(
         &self,
-        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        base: &Step<S>,
         moved: &Moved<S>,
-    ) -> Option<(usize, Vec<S>, Option<S>)> {
-        let per = self.window.channels * self.window.taps();
-        let channel = self.moved_channel(moved.tensor, moved.index)?;
-        let mut w = params[0].as_slice()?[channel * per..(channel + 1) * per].to_vec();
-        let mut b = if self.settings.bias {
-            Some(params[1].as_slice()?[channel])
-        } else {
-            None
+        out: &mut Vec<S>,
+    ) -> Option<usize> {
+        let win = &self.window;
+        let (op, ip, taps) = (win.out_positions(), win.in_positions(), win.taps());
+        let per = win.channels * taps;
+        let (o, tap) = match moved.tensor {
+            0 => (moved.index / per, Some(moved.index % per)),
+            _ if self.settings.bias => (moved.index, None),
+            _ => return None,
         };
-        match (moved.tensor, b.as_mut()) {
-            (0, _) => w[moved.index % per] += moved.delta,
-            (_, Some(b)) => *b += moved.delta,
-            (_, None) => return None,
+        let width = self.settings.channels * op;
+        let x = x.as_standard_layout();
+        let (xs, z) = (x.as_slice()?, base.out.as_slice()?);
+        if o >= self.settings.channels || z.len() != x.nrows() * width {
+            return None;
         }
-        Some((channel, w, b))
+        let d = moved.delta;
+        let ([ih, iw], ow) = (win.input, win.output[1]);
+        let ([sy, sx], [dy, dx], [by, bx]) = (win.stride, win.dilation, win.before);
+        out.clear();
+        out.reserve(x.nrows() * op);
+        for (zn, xn) in z
+            .chunks_exact(width)
+            .zip(xs.chunks_exact(win.channels * ip))
+        {
+            let zc = &zn[o * op..(o + 1) * op];
+            let Some(tap) = tap else {
+                out.extend(zc.iter().map(|&v| v + d));
+                continue;
+            };
+            let (i, ky, kx) = (tap / taps, tap % taps / win.kernel[1], tap % win.kernel[1]);
+            let xc = &xn[i * ip..(i + 1) * ip];
+            // Output columns lo..hi read this tap inside the input row; the others its padding.
+            let first_at = |edge: usize| edge.saturating_sub(kx * dx).div_ceil(sx).min(ow);
+            let (lo, hi) = (first_at(bx), first_at(bx + iw));
+            for (oy, zr) in zc.chunks_exact(ow).enumerate() {
+                let Some(iy) = (oy * sy + ky * dy).checked_sub(by).filter(|&r| r < ih) else {
+                    out.extend_from_slice(zr);
+                    continue;
+                };
+                let xr = &xc[iy * iw..(iy + 1) * iw];
+                out.extend_from_slice(&zr[..lo]);
+                if lo < hi {
+                    let under = xr[lo * sx + kx * dx - bx..].iter().step_by(sx);
+                    out.extend(zr[lo..hi].iter().zip(under).map(|(&v, &a)| v + d * a));
+                }
+                out.extend_from_slice(&zr[hi..]);
+            }
+        }
+        Some(o)
     }
 
     /// The weight as a matrix, out-channels × (in-channels · taps), optionally turned 180°.
@@ -757,7 +787,7 @@ impl<S: LayerScalar> Layer<S> for Conv {
         let mut out = std::mem::take(buffer);
         out.clear();
         out.resize(m * o * op, S::zero());
-        self.correlate(ws, bias, (0, o * op), xs, &mut out);
+        self.correlate(ws, bias, xs, &mut out);
         Step::plain(Array2::from_shape_vec((m, o * op), out).expect("sized above"))
     }
 
@@ -825,42 +855,33 @@ impl<S: LayerScalar> Layer<S> for Conv {
 
     fn forward_moved(
         &self,
-        params: &[ArrayD<S>],
+        _: &[ArrayD<S>],
         x: ArrayView2<S>,
         base: &Step<S>,
         moved: &Moved<S>,
     ) -> Option<Step<S>> {
-        let (channel, w, b) = self.moved_weights(params, moved)?;
-        let x = x.as_standard_layout();
-        let width = self.settings.channels * self.window.out_positions();
+        let mut values = Vec::new();
+        let o = self.moved_channel_into(x, base, moved, &mut values)?;
+        let op = self.window.out_positions();
         let mut out = base.out.clone();
-        let b = b.as_ref().map(std::slice::from_ref);
-        self.correlate(&w, b, (channel, width), x.as_slice()?, out.as_slice_mut()?);
+        let rows = out
+            .as_slice_mut()?
+            .chunks_exact_mut(self.settings.channels * op);
+        for (row, v) in rows.zip(values.chunks_exact(op)) {
+            row[o * op..(o + 1) * op].copy_from_slice(v);
+        }
         Some(Step::plain(out))
     }
 
     fn moved_values(
         &self,
-        params: &[ArrayD<S>],
+        _: &[ArrayD<S>],
         x: ArrayView2<S>,
-        _: &Step<S>,
+        base: &Step<S>,
         moved: &Moved<S>,
         out: &mut Vec<S>,
     ) -> bool {
-        let Some((_, w, b)) = self.moved_weights(params, moved) else {
-            return false;
-        };
-        let x = x.as_standard_layout();
-        let Some(xs) = x.as_slice() else {
-            return false;
-        };
-        // The hint's channel with the hint's loop, each sample's positions one after another:
-        // the channel's runs in flat order.
-        let op = self.window.out_positions();
-        out.clear();
-        out.resize(x.nrows() * op, S::zero());
-        self.correlate(&w, b.as_ref().map(std::slice::from_ref), (0, op), xs, out);
-        true
+        self.moved_channel_into(x, base, moved, out).is_some()
     }
 
     fn forward_units(

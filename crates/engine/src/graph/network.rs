@@ -1598,7 +1598,8 @@ fn branches_differ(a: &[u32], b: &[u32]) -> bool {
 }
 
 /// Whether any value of `a` lies on the other side of `k` than the same value of `b`: blocks
-/// without a branch per value (they vectorise), stopping at the first block that differs.
+/// without a branch per value (they vectorise, for AVX2 where the CPU has it), stopping at the
+/// first block that differs.
 fn sides_differ<S: Scalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
     if a.dim() != b.dim() {
         // Nothing to pair value by value (no z kept on one side): counted as crossed, as above.
@@ -1606,12 +1607,29 @@ fn sides_differ<S: Scalar>(a: &Array2<S>, b: &Array2<S>, k: f64) -> bool {
     }
     let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
     match (a.as_slice(), b.as_slice()) {
-        (Some(a), Some(b)) => a
-            .chunks(64)
-            .zip(b.chunks(64))
-            .any(|(x, y)| x.iter().zip(y).fold(false, |any, p| any | differs(p))),
+        #[cfg(target_arch = "x86_64")]
+        (Some(a), Some(b)) if std::arch::is_x86_feature_detected!("avx2") => {
+            // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
+            unsafe { blocks_differ_avx2(a, b, k) }
+        }
+        (Some(a), Some(b)) => blocks_differ(a, b, k),
         _ => a.iter().zip(b).any(differs),
     }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn blocks_differ_avx2<S: Scalar>(a: &[S], b: &[S], k: f64) -> bool {
+    blocks_differ(a, b, k)
+}
+
+/// [`sides_differ`] over two lists of values, in blocks of 64.
+#[inline(always)]
+fn blocks_differ<S: Scalar>(a: &[S], b: &[S], k: f64) -> bool {
+    let differs = |(x, y): (&S, &S)| (x.re() > k) != (y.re() > k);
+    a.chunks(64)
+        .zip(b.chunks(64))
+        .any(|(x, y)| x.iter().zip(y).fold(false, |any, p| any | differs(p)))
 }
 
 /// The buffers one thread reuses across the perturbed losses of a check

@@ -184,8 +184,44 @@ impl Norm {
     }
 
     /// y = γ x̂ + β of a standard-layout batch `xs` of `m` samples into `out`, and x̂ with each
-    /// group's 1/√(σ² + ε) and σ² into `saved` when given.
+    /// group's 1/√(σ² + ε) and σ² into `saved` when given. On x86-64 machines with AVX2 a batch
+    /// norm's value loops are compiled for AVX2 as well (twice the values per instruction of
+    /// the baseline build over its runs of positions); the same IEEE operations on each value in
+    /// the same order (no fused multiply-add is enabled, and Rust never reorders or contracts
+    /// them), so bit for bit the same. A layer norm's groups are strided single values, where
+    /// the AVX2 build showed no gain (the sequence model's check, benches/README.md session 13).
     fn normalise<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        xs: &[S],
+        m: usize,
+        out: &mut [S],
+        saved: Option<Saved<'_, S>>,
+    ) {
+        #[cfg(target_arch = "x86_64")]
+        if self.over == Over::Batch && std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
+            unsafe { self.normalise_avx2(params, xs, m, out, saved) };
+            return;
+        }
+        self.normalise_loop(params, xs, m, out, saved);
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn normalise_avx2<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        xs: &[S],
+        m: usize,
+        out: &mut [S],
+        saved: Option<Saved<'_, S>>,
+    ) {
+        self.normalise_loop(params, xs, m, out, saved);
+    }
+
+    #[inline(always)]
+    fn normalise_loop<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
         xs: &[S],
@@ -284,6 +320,42 @@ impl Norm {
         let n = S::from_f64((xs.len() / self.group_count(m).max(1)) as f64);
         let mut out = base.out.clone();
         let values = out.as_slice_mut()?;
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has just been found to support AVX2, all that the function needs.
+            unsafe { self.channels_avx2(params, xs, m, n, changed, values) };
+            return Some(Step::plain(out));
+        }
+        self.channels_loop(params, xs, m, n, changed, values);
+        Some(Step::plain(out))
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn channels_avx2<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        xs: &[S],
+        m: usize,
+        n: S,
+        changed: &[usize],
+        values: &mut [S],
+    ) {
+        self.channels_loop(params, xs, m, n, changed, values);
+    }
+
+    /// [`Norm::forward_channels`]'s values of the channels `changed` (compiled for AVX2 where
+    /// the CPU has it, as [`Norm::normalise`]).
+    #[inline(always)]
+    fn channels_loop<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        xs: &[S],
+        m: usize,
+        n: S,
+        changed: &[usize],
+        values: &mut [S],
+    ) {
         for &a in changed {
             // The forward pass's arithmetic for group a (one feature over the batch).
             let (mean, _, r) = self.statistics(xs, a, m, n);
@@ -297,7 +369,6 @@ impl Norm {
                 }
             }
         }
-        Some(Step::plain(out))
     }
 
     pub fn backward<S: LayerScalar>(

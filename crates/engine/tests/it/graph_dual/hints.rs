@@ -12,8 +12,9 @@ use crate::graph_common::{random_params, random_x, random_y};
 ///
 /// At the moved layer: a dense layer's other units keep the base's values and must equal the
 /// full pass bit for bit; the moved unit's values are the base's rounded sum plus δ·a where the
-/// full pass sums again, so the two may differ by both sums' rounding. A conv layer recomputes
-/// the moved out-channel with the full pass's own loop: every value bit for bit. The bound
+/// full pass sums again, so the two may differ by both sums' rounding; a conv layer's moved
+/// out-channel likewise (the base's sum plus δ times the input under the moved tap), its
+/// other channels bit for bit. The bound
 /// for a sum of n products and a bias (Higham, *Accuracy and Stability of Numerical Algorithms*,
 /// 2nd ed., §3.1) is γ(n+1) · (Σ|w||a| + |b|), γ(k) = k·u / (1 − k·u), u = ε/2; with the update's
 /// own rounding the test allows γ(n+1) · (S_base + S_moved) + u · (|δ|·max|a| + |z|), S being
@@ -94,7 +95,8 @@ fn hints_agree<S: LayerScalar>(
                 }
                 let (zi, zf) = (&tail.steps[0].out, &full.steps[j].out);
                 let at = |e: usize| format!("{what}: {}[{k}] δ {d}, entry {e}", spec.name);
-                let hinted = node.layer.kind() == "dense";
+                let kind = node.layer.kind();
+                let hinted = matches!(kind, "dense" | "conv1d" | "conv2d");
                 if hinted {
                     // The moved unit's columns: r at every step.
                     let shape = &g.tensors()[own.start].spec.shape;
@@ -104,7 +106,13 @@ fn hints_agree<S: LayerScalar>(
                     } else {
                         k
                     };
-                    let in_unit = |c: usize| c % channels == unit;
+                    // Dense: unit r is every `channels`-th column; conv: out-channel o is the
+                    // o-th run of positions.
+                    let positions = zi.ncols() / channels;
+                    let in_unit = |c: usize| match kind {
+                        "dense" => c % channels == unit,
+                        _ => c / positions == unit,
+                    };
                     let own_abs: Vec<ArrayD<S>> = p[own.clone()].iter().map(abs).collect();
                     let mut q_abs = own_abs.clone();
                     q_abs[t - own.start] = abs(&q[t]);
