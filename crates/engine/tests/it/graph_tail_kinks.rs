@@ -9,9 +9,9 @@
 //! in f64 and f32; both verdicts occur on every network.
 //!
 //! And the conv hint's values at output rows of 16 and more, where a full pass sums two
-//! out-channels at a time in blocks of 16: the moved channel (`Layer::forward_moved`,
-//! `Layer::moved_values`) equals a full pass at the moved parameters bit for bit, the property
-//! the tail's "the others are the base's bit for bit" and its early stop rest on.
+//! out-channels at a time in blocks of 16: the channels the entry does not move equal a full
+//! pass at the moved parameters bit for bit (the property the tail's "the others are the
+//! base's" and its early stop rest on), the moved one within the update's stated rounding.
 
 use crate::graph_common::{random_params, random_x, random_y};
 use ndarray::ArrayD;
@@ -163,8 +163,13 @@ fn the_kink_test_over_recomputed_channels_matches_a_whole_pass_through_norms_add
     }
 }
 
-/// Every entry of a single conv layer moved by 0.37: the hint's step and the moved channel's
-/// values against a full pass at the moved parameters, bit for bit.
+/// Every entry of a single conv layer moved by 0.37: the hint's step against a full pass at the
+/// moved parameters — the other channels bit for bit (the base's, which the full pass sums
+/// again in the same order), the moved channel (the base's sum plus δ times the input under
+/// the tap) within both sums' rounding and the update's: γ(n+1)·(S_base + S_moved) +
+/// u·(|δ|·max|x| + |z|), S the sum of |w||x| and |b| (Higham, *Accuracy and Stability of
+/// Numerical Algorithms*, 2nd ed., §3.1; γ(k) = k·u/(1 − k·u), u = ε/2) — and the moved
+/// channel's values alone (`moved_values`) the hint's bit for bit.
 fn wide_conv_moves_agree<S: LayerScalar>(settings: &ConvSettings, input: Shape, what: &str) {
     let conv = Conv::new(settings, &input).unwrap();
     let mut b = GraphBuilder::new(input, LossConfig::squared_error());
@@ -179,6 +184,17 @@ fn wide_conv_moves_agree<S: LayerScalar>(settings: &ConvSettings, input: Shape, 
     let size = conv.output().size();
     let op = size / settings.channels;
     assert!(op >= 16 && conv.output().dims()[conv.output().dims().len() - 1] >= 16);
+    let abs = |a: &ArrayD<S>| a.mapv(|v| S::from_f64(v.re().abs()));
+    let x_abs = x.mapv(|v| S::from_f64(v.re().abs()));
+    let x_most = x.iter().fold(0.0f64, |m, v| m.max(v.re().abs()));
+    let sums = |q: &[ArrayD<S>]| {
+        let q: Vec<ArrayD<S>> = q.iter().map(abs).collect();
+        Layer::<S>::forward(&conv, &q, x_abs.view(), None).out
+    };
+    let s_base = sums(&p);
+    let n = p[0].len() / settings.channels;
+    let u = S::epsilon() / 2.0;
+    let gamma = (n + 1) as f64 * u / (1.0 - (n + 1) as f64 * u);
     for t in 0..p.len() {
         for k in 0..p[t].len() {
             let delta = S::from_f64(0.37);
@@ -190,11 +206,23 @@ fn wide_conv_moves_agree<S: LayerScalar>(settings: &ConvSettings, input: Shape, 
             let mut q = p.clone();
             q[t].as_slice_mut().unwrap()[k] += delta;
             let full = Layer::<S>::forward(&conv, &q, x.view(), None).out;
+            let s_moved = sums(&q);
             let hint = Layer::<S>::forward_moved(&conv, &p, x.view(), &base, &moved).unwrap();
+            let c = conv.moved_channel(t, k).unwrap();
             for (e, (a, b)) in hint.out.iter().zip(&full).enumerate() {
+                if (e % size) / op != c {
+                    assert!(
+                        a.same_bits(*b),
+                        "{what}: {t}[{k}], value {e}: {a:?} against {b:?}"
+                    );
+                    continue;
+                }
+                let (i, col) = (e / size, e % size);
+                let bound = gamma * (s_base[[i, col]].re() + s_moved[[i, col]].re())
+                    + u * (0.37 * x_most + b.re().abs());
                 assert!(
-                    a.same_bits(*b),
-                    "{what}: {t}[{k}], value {e}: {a:?} against {b:?}"
+                    (a.re() - b.re()).abs() <= bound,
+                    "{what}: {t}[{k}], moved value {e}: {a:?} against {b:?}, bound {bound:e}"
                 );
             }
             let mut values = Vec::new();
@@ -206,9 +234,8 @@ fn wide_conv_moves_agree<S: LayerScalar>(settings: &ConvSettings, input: Shape, 
                 &moved,
                 &mut values
             ));
-            let c = conv.moved_channel(t, k).unwrap();
-            let full = full.as_slice().unwrap();
-            let want = (0..x.nrows()).flat_map(|i| &full[i * size + c * op..][..op]);
+            let hinted = hint.out.as_slice().unwrap();
+            let want = (0..x.nrows()).flat_map(|i| &hinted[i * size + c * op..][..op]);
             assert_eq!(values.len(), x.nrows() * op, "{what}: {t}[{k}]");
             for (e, (a, b)) in values.iter().zip(want).enumerate() {
                 assert!(a.same_bits(*b), "{what}: {t}[{k}], moved value {e}");
@@ -218,7 +245,7 @@ fn wide_conv_moves_agree<S: LayerScalar>(settings: &ConvSettings, input: Shape, 
 }
 
 #[test]
-fn a_moved_conv_entry_is_a_full_pass_bit_for_bit_at_rows_of_sixteen_and_more() {
+fn a_moved_conv_entry_agrees_with_a_full_pass_at_rows_of_sixteen_and_more() {
     let signal = Shape::Signal {
         channels: 3,
         length: 41,
