@@ -198,6 +198,7 @@ struct CheckCoverage {
     checked: usize,
     directions_per_part: usize,
     responded: usize,
+    shared: usize,
 }
 
 #[derive(Deserialize)]

@@ -356,15 +356,6 @@ pub fn document<C>(r: &CheckReport<C>, worst: Block) -> Document {
             ),
         ));
     }
-    if r.coverage.shared > 0 {
-        facts.push((
-            "shared change".into(),
-            format!(
-                "{} direction losses started from the lowest moved layer's output plus the step times its change, computed once per direction, not from that layer's pass",
-                r.coverage.shared
-            ),
-        ));
-    }
     doc.push(Block::Facts(facts));
     let t = check_table(r.tensors.iter().map(|tr| CheckRow {
         name: &tr.name,
