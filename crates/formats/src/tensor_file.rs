@@ -11,6 +11,14 @@ use crate::{npy, npz, safetensors_file};
 /// `.npy` holds one tensor, named after the file stem.
 pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
     let format = FileFormat::from_path(path);
+    if format == Some(FileFormat::Npz)
+        && let Some(tensors) = streamed_npz(path)
+    {
+        return Ok(TensorFile {
+            format: FileFormat::Npz,
+            tensors,
+        });
+    }
     // Reading the whole file bounds every later allocation by what is really there.
     let bytes = crate::input::read_input(path, crate::MAX_TENSOR_BYTES).map_err(|source| {
         TensorFileError::Io {
@@ -47,6 +55,22 @@ pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
         FileFormat::Safetensors => safetensors_file::read(path, &bytes)?,
     };
     Ok(TensorFile { format, tensors })
+}
+
+/// The tensors of an archive of stored members (what `np.savez` writes), each widened as it is
+/// read from the file rather than after the whole file is in memory; `None` for anything else
+/// (the whole-file read then reads it or says what is wrong).
+fn streamed_npz(path: &Path) -> Option<Vec<crate::Tensor>> {
+    use std::io::{Read, Seek};
+    let mut file = crate::input::open_input(path, crate::MAX_TENSOR_BYTES).ok()?;
+    // The signature that makes `sniff` call the file an archive.
+    let mut first = [0u8; 4];
+    file.read_exact(&mut first).ok()?;
+    if &first != b"PK\x03\x04" {
+        return None;
+    }
+    file.rewind().ok()?;
+    npz::read_streamed(path, &mut file)
 }
 
 /// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a
