@@ -339,6 +339,39 @@ impl<S> Trace<S> {
     }
 }
 
+/// A forward pass's trace as a backward pass reads it. An owned one is freed layer by layer as
+/// the pass goes down: at a batch of 8,192 the layers above hold tens of megabytes that the
+/// gradients formed below can then reuse instead of fresh pages.
+enum Spent<'a, S> {
+    Borrowed(&'a Trace<S>),
+    Owned(Trace<S>),
+}
+
+impl<S> Spent<'_, S> {
+    fn get(&self) -> &Trace<S> {
+        match self {
+            Spent::Borrowed(t) => t,
+            Spent::Owned(t) => t,
+        }
+    }
+
+    /// Frees layer j's z and output (a kind's backward reads its step's `saved` and `branches`,
+    /// never `out`).
+    fn free_outputs(&mut self, j: usize) {
+        if let Spent::Owned(t) = self {
+            t.outputs[j] = Array2::from_shape_vec((0, 0), Vec::new()).expect("empty");
+            t.steps[j].out = Array2::from_shape_vec((0, 0), Vec::new()).expect("empty");
+        }
+    }
+
+    /// Frees what layer j's kind kept for its backward pass.
+    fn free_step(&mut self, j: usize) {
+        if let Spent::Owned(t) = self {
+            t.steps[j].saved = Vec::new();
+        }
+    }
+}
+
 /// The layers from `from` on of a forward pass whose parameters differ from a base pass's only in
 /// those layers ([`Graph::forward_from`]): what a finite-difference check recomputes when it moves
 /// one parameter of layer `from`. Entry i of `steps` and `outputs` is layer `from + i`.
@@ -1252,7 +1285,15 @@ impl Graph {
     ) -> Gradient<S> {
         let trace = self.forward(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (params_grad, input) = self.backward(params, x, y, &trace, planted, true);
+        let (params_grad, input) = self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Owned(trace),
+            planted,
+            &Hooks::REFERENCE,
+            true,
+        );
         Gradient {
             loss,
             params: params_grad,
@@ -1272,7 +1313,15 @@ impl Graph {
     ) -> (S, Vec<ArrayD<S>>) {
         let trace = self.forward(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (grads, _) = self.backward(params, x, y, &trace, planted, false);
+        let (grads, _) = self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Owned(trace),
+            planted,
+            &Hooks::REFERENCE,
+            false,
+        );
         (loss, grads)
     }
 
@@ -1313,6 +1362,30 @@ impl Graph {
         hooks: &Hooks,
         input_gradient: bool,
     ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
+        self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Borrowed(trace),
+            planted,
+            hooks,
+            input_gradient,
+        )
+    }
+
+    /// [`Graph::backward_hooked`] over a trace that is borrowed, or owned and freed layer by
+    /// layer as the pass goes down.
+    #[allow(clippy::too_many_arguments)]
+    fn backward_through<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        mut trace: Spent<'_, S>,
+        planted: Option<&Planted>,
+        hooks: &Hooks,
+        input_gradient: bool,
+    ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
         let x = x.as_standard_layout();
         let y = y.as_standard_layout();
         let m = x.nrows();
@@ -1331,14 +1404,15 @@ impl Graph {
                 break; // nothing at or below layer j has a gradient anyone reads
             }
             let node = &self.nodes[j];
-            let step = &trace.steps[j];
+            let t = trace.get();
+            let step = &t.steps[j];
             let dz = if j == n - 1 {
-                self.output_delta(hooks, step.out.view(), trace.outputs[j].view(), y.view())
+                self.output_delta(hooks, step.out.view(), t.outputs[j].view(), y.view())
             } else {
                 let da = upstream[j]
                     .take()
                     .unwrap_or_else(|| Array2::zeros(step.out.raw_dim()));
-                let (z, a) = (step.out.view(), trace.outputs[j].view());
+                let (z, a) = (step.out.view(), t.outputs[j].view());
                 match hooks.slope.filter(|&(l, _)| l == j).map(|(_, s)| s) {
                     None => node.activation.backward(z, a, da),
                     Some(Slope::Missing) => da,
@@ -1348,10 +1422,14 @@ impl Graph {
                     }
                 }
             };
+            // Layer j's z and output are read by nothing below: every reader is above it.
+            trace.free_outputs(j);
+            let t = trace.get();
+            let step = &t.steps[j];
             let input = if j == 0 {
                 x.view()
             } else {
-                trace.outputs[j - 1].view()
+                t.outputs[j - 1].view()
             };
             let mistake = planted.filter(|p| p.layer == j).map(|p| p.code);
             let back = S::layer(node.layer.as_ref()).backward(
@@ -1362,6 +1440,7 @@ impl Graph {
                 mistake,
                 input_gradient || lowest.is_some_and(|l| l < j),
             );
+            trace.free_step(j);
             for (t, g) in node.tensors().zip(back.params) {
                 grads[t] = g;
             }
