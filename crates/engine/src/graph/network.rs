@@ -344,32 +344,43 @@ impl<S> Trace<S> {
 /// gradients formed below can then reuse instead of fresh pages.
 enum Spent<'a, S> {
     Borrowed(&'a Trace<S>),
-    Owned(Trace<S>),
+    /// With, per layer, whether its z went already ([`Graph::forward_spare`]).
+    Owned(Trace<S>, Vec<bool>),
 }
 
 impl<S> Spent<'_, S> {
     fn get(&self) -> &Trace<S> {
         match self {
             Spent::Borrowed(t) => t,
-            Spent::Owned(t) => t,
+            Spent::Owned(t, _) => t,
         }
+    }
+
+    /// Whether layer j's activation's backward reads its output in place of z (gone).
+    fn spared(&self, j: usize) -> bool {
+        matches!(self, Spent::Owned(_, spared) if spared[j])
     }
 
     /// Frees layer j's z and output (a kind's backward reads its step's `saved` and `branches`,
     /// never `out`).
     fn free_outputs(&mut self, j: usize) {
-        if let Spent::Owned(t) = self {
-            t.outputs[j] = Array2::from_shape_vec((0, 0), Vec::new()).expect("empty");
-            t.steps[j].out = Array2::from_shape_vec((0, 0), Vec::new()).expect("empty");
+        if let Spent::Owned(t, _) = self {
+            t.outputs[j] = empty();
+            t.steps[j].out = empty();
         }
     }
 
     /// Frees what layer j's kind kept for its backward pass.
     fn free_step(&mut self, j: usize) {
-        if let Spent::Owned(t) = self {
+        if let Spent::Owned(t, _) = self {
             t.steps[j].saved = Vec::new();
         }
     }
+}
+
+/// An array of no values, where a freed one was.
+fn empty<S>() -> Array2<S> {
+    Array2::from_shape_vec((0, 0), Vec::new()).expect("no values")
 }
 
 /// The layers from `from` on of a forward pass whose parameters differ from a base pass's only in
@@ -561,6 +572,56 @@ impl Graph {
             outputs.push(a);
         }
         Trace { steps, outputs }
+    }
+
+    /// [`Graph::forward`] for a gradient: a layer below the output whose activation's backward
+    /// can work from its output alone (ReLU through the output's sign, which is z's; tanh, the
+    /// logistic and the identity through the output itself) gets its activation applied where
+    /// its kind wrote z, and its step keeps no z (an empty `out`): one batch-sized array per
+    /// such layer instead of two, the same values. Entry j of the second vector says layer j's
+    /// z went.
+    fn forward_spare<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+    ) -> (Trace<S>, Vec<bool>) {
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
+        let x = x.as_standard_layout();
+        let n = self.nodes.len();
+        let mut steps: Vec<Step<S>> = Vec::with_capacity(n);
+        let mut outputs: Vec<Array2<S>> = Vec::with_capacity(n);
+        let mut spared = Vec::with_capacity(n);
+        for (j, node) in self.nodes.iter().enumerate() {
+            let input = if j == 0 {
+                x.view()
+            } else {
+                outputs[j - 1].view()
+            };
+            let skip = node.tap.map(|t| outputs[t].view());
+            let mut step =
+                S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
+            let from_output = j + 1 < n
+                && matches!(
+                    node.activation,
+                    Activation::Relu
+                        | Activation::Tanh
+                        | Activation::Sigmoid
+                        | Activation::Identity
+                );
+            let a = if from_output {
+                let mut a = std::mem::replace(&mut step.out, empty());
+                node.activation.apply_in_place(&mut a);
+                a
+            } else {
+                self.activate(node, &step.out)
+            };
+            steps.push(step);
+            outputs.push(a);
+            spared.push(from_output);
+        }
+        (Trace { steps, outputs }, spared)
     }
 
     /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
@@ -1283,13 +1344,13 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> Gradient<S> {
-        let trace = self.forward(params, x);
+        let (trace, spared) = self.forward_spare(params, x);
         let loss = self.loss_of(params, &trace, y);
         let (params_grad, input) = self.backward_through(
             params,
             x,
             y,
-            Spent::Owned(trace),
+            Spent::Owned(trace, spared),
             planted,
             &Hooks::REFERENCE,
             true,
@@ -1311,13 +1372,13 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> (S, Vec<ArrayD<S>>) {
-        let trace = self.forward(params, x);
+        let (trace, spared) = self.forward_spare(params, x);
         let loss = self.loss_of(params, &trace, y);
         let (grads, _) = self.backward_through(
             params,
             x,
             y,
-            Spent::Owned(trace),
+            Spent::Owned(trace, spared),
             planted,
             &Hooks::REFERENCE,
             false,
@@ -1409,10 +1470,13 @@ impl Graph {
             let dz = if j == n - 1 {
                 self.output_delta(hooks, step.out.view(), t.outputs[j].view(), y.view())
             } else {
+                let a = t.outputs[j].view();
                 let da = upstream[j]
                     .take()
-                    .unwrap_or_else(|| Array2::zeros(step.out.raw_dim()));
-                let (z, a) = (step.out.view(), t.outputs[j].view());
+                    .unwrap_or_else(|| Array2::zeros(a.raw_dim()));
+                // A spared layer's activation reads z only through its sign (ReLU), which
+                // its output shares, or not at all.
+                let z = if trace.spared(j) { a } else { step.out.view() };
                 match hooks.slope.filter(|&(l, _)| l == j).map(|(_, s)| s) {
                     None => node.activation.backward(z, a, da),
                     Some(Slope::Missing) => da,
