@@ -170,7 +170,9 @@ const PIECE: usize = 128 << 10;
 /// arrives, so the member's bytes are never in memory whole (a batch of 8,192 images in f32 is
 /// 26 MB of fresh pages otherwise). `None` for anything but a well-formed member of exactly
 /// `len` bytes, or a failed read: the caller then reads the file whole, and [`read`] says what
-/// is wrong in the words it always has.
+/// is wrong in the words it always has. With the tensor, where its first value that is not
+/// finite lies (`Some(None)`: all are finite), found while each piece is in cache; `None` for
+/// a column-major member, whose file order is not the tensor's.
 pub(crate) fn read_streamed(
     path: &Path,
     member: &str,
@@ -178,7 +180,7 @@ pub(crate) fn read_streamed(
     head: &[u8],
     rest: &mut impl Read,
     len: usize,
-) -> Option<Tensor> {
+) -> Option<(Tensor, Option<Option<usize>>)> {
     let at = At {
         path,
         member: Some(member),
@@ -193,13 +195,29 @@ pub(crate) fn read_streamed(
     let mut source = (&head[d.header_end..]).chain(rest);
     let mut piece = vec![0u8; PIECE.min(d.needed)];
     let mut left = d.needed;
+    let mut not_finite = None;
     while left > 0 {
         let n = left.min(PIECE);
         source.read_exact(&mut piece[..n]).ok()?;
+        let start = data.len();
         decode_into(&piece[..n], dtype, big_endian, &mut data);
+        // Without a branch per value, so that the test vectorises; searched only on a hit.
+        if not_finite.is_none()
+            && !data[start..]
+                .iter()
+                .fold(true, |all, v| all & v.is_finite())
+        {
+            not_finite = data[start..]
+                .iter()
+                .position(|v| !v.is_finite())
+                .map(|i| start + i);
+        }
         left -= n;
     }
-    tensor(at, name, d.header_start, d.header, data).ok()
+    // Found in file order, which is the tensor's order only for a row-major member.
+    let seen = !(d.header.fortran_order && d.header.shape.len() > 1);
+    let tensor = tensor(at, name, d.header_start, d.header, data).ok()?;
+    Some((tensor, seen.then_some(not_finite)))
 }
 
 /// The tensor of a parsed header and its values in file order (column-major ones laid out in

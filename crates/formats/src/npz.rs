@@ -16,6 +16,7 @@ use zip::{CompressionMethod, ZipArchive, ZipWriter};
 
 use crate::npy;
 use crate::tensor::{DType, Tensor, TensorFileError};
+use crate::tensor_file::Seen;
 
 /// Deflate's longest match (258 bytes) takes at least two bits to encode, so a stream inflates at
 /// most 1032-fold. A member declaring more than that for its compressed size is lying.
@@ -187,7 +188,8 @@ const HEAD: usize = 4096;
 /// (what [`read`] does from the file's bytes, without the whole file in memory first). `None`
 /// when the archive is anything else — a deflated or damaged member, a duplicate or odd name,
 /// a failed read: the caller then reads the file whole and [`read`] reports what it finds.
-pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<Tensor>> {
+/// With each tensor, what [`npy::read_streamed`] found of its values' finiteness.
+pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor, Seen)>> {
     let file_len = file.metadata().ok()?.len();
     let mut archive = ZipArchive::new(&mut *file).ok()?;
     if archive.has_duplicate_names() {
@@ -220,11 +222,11 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<Tensor>>
         };
         let mut head = vec![0; len.min(HEAD)];
         content.read_exact(&mut head).ok()?;
-        let tensor = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
+        let read = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
         if content.crc.finalize() != crc {
             return None;
         }
-        tensors.push(tensor);
+        tensors.push(read);
     }
     Some(tensors)
 }

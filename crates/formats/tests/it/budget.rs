@@ -262,6 +262,63 @@ fn a_stored_archive_is_widened_as_it_is_read() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
+/// The finite check of a streamed x (made piece by piece as the archive is read) names the same
+/// element as a search of the whole array: NumPy's C-order place of a NaN in a later piece than
+/// the first, the first of two in one piece, and in a column-major x (whose file order is not
+/// the array's) the first in C order, not in the file.
+#[test]
+fn a_streamed_batch_names_its_first_value_that_is_not_finite() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("not-finite");
+    let (m, n) = (100usize, 1000usize);
+    let y = npy(
+        &format!("{{'descr': '|u1', 'fortran_order': False, 'shape': ({m},), }}"),
+        &vec![0u8; m],
+    );
+    let write = |name: &str, fortran: bool, bad: &[(usize, usize, f32)]| {
+        let mut values = vec![0.5f32; m * n];
+        for &(i, j, v) in bad {
+            values[if fortran { j * m + i } else { i * n + j }] = v;
+        }
+        let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let x = npy(
+            &format!(
+                "{{'descr': '<f4', 'fortran_order': {}, 'shape': ({m}, {n}), }}",
+                if fortran { "True" } else { "False" }
+            ),
+            &bytes,
+        );
+        let path = dir.join(name);
+        std::fs::write(
+            &path,
+            zip_of(&[("x.npy", &x), ("y.npy", &y)], CompressionMethod::Stored),
+        )
+        .unwrap();
+        read_data(&path, n, 1).unwrap_err().to_string()
+    };
+    // Sample 90, feature 10: value 90,010, past the first 128 KiB piece (32,768 f32 values).
+    let message = write(
+        "late.npz",
+        false,
+        &[(90, 10, f32::NAN), (90, 500, f32::INFINITY)],
+    );
+    assert!(
+        message.contains("element [90, 10] (sample 90, feature 10): NaN is not finite"),
+        "{message}"
+    );
+    // Column-major: (5, 900) comes first in C order, (60, 2) first in the file.
+    let message = write(
+        "columns.npz",
+        true,
+        &[(60, 2, f32::NEG_INFINITY), (5, 900, f32::NAN)],
+    );
+    assert!(
+        message.contains("element [5, 900] (sample 5, feature 900): NaN is not finite"),
+        "{message}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
 /// CSV is streamed: an error on line 3 of a 32 MiB file is found reading a few kilobytes, not
 /// the whole file.
 #[test]
