@@ -20,9 +20,10 @@ use ndarray::{Array2, ArrayD, IxDyn};
 use plumb_engine::Batch;
 use plumb_engine::graph::Shape;
 
+use crate::FileFormat;
 use crate::data::{DataError, label, read_csv};
 use crate::tensor::{DType, Tensor};
-use crate::{FileFormat, read_tensors};
+use crate::tensor_file::{Seen, read_tensors_seen};
 
 /// The axis order of a spatial array in the file.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
@@ -195,18 +196,18 @@ fn read_npz(
     output: &Shape,
     order: AxisOrder,
 ) -> Result<Batch, DataError> {
-    let mut file = read_tensors(path)?;
+    let (mut file, mut seen) = read_tensors_seen(path)?;
     debug_assert_eq!(file.format, FileFormat::Npz);
     let names: Vec<String> = file.tensors.iter().map(|t| t.name.clone()).collect();
     let mut take = |name: &'static str| match file.tensors.iter().position(|t| t.name == name) {
-        Some(i) => Ok(file.tensors.swap_remove(i)),
+        Some(i) => Ok((file.tensors.swap_remove(i), seen.swap_remove(i))),
         None => Err(DataError::MissingArray {
             path: path.to_path_buf(),
             name,
             found: names.clone(),
         }),
     };
-    let (x, y) = (take("x")?, take("y")?);
+    let ((x, x_seen), (y, y_seen)) = (take("x")?, take("y")?);
     let x_layout = FileLayout::of(input, order, ("features", "feature"));
     let m = samples_of_x(path, input, order, &x_layout, &x)?;
     if m == 0 {
@@ -217,7 +218,7 @@ fn read_npz(
     let x = if let Shape::Tokens { vocabulary, .. } = *input {
         token_ids(path, input, vocabulary, &x_layout, x)?
     } else {
-        check_finite(path, "x", &x_layout, &x)?;
+        check_finite(path, "x", &x_layout, &x, x_seen)?;
         to_shape_order(&x_layout, m, x.data)
     };
 
@@ -229,7 +230,7 @@ fn read_npz(
     let y_layout = FileLayout::of(output, y_order, ("outputs", "output"));
     let y = match targets_of_y(path, output, order, &y_layout, &y, m)? {
         Targets::Values => {
-            check_finite(path, "y", &y_layout, &y)?;
+            check_finite(path, "y", &y_layout, &y, y_seen)?;
             to_shape_order(&y_layout, m, y.data)
         }
         Targets::Labels { classes, steps } => one_hot(path, &y, classes, steps)?,
@@ -392,8 +393,10 @@ fn check_finite(
     array: &'static str,
     layout: &FileLayout,
     tensor: &Tensor,
+    seen: Seen,
 ) -> Result<(), DataError> {
-    let Some(flat) = tensor.data.iter().position(|v| !v.is_finite()) else {
+    let first = seen.unwrap_or_else(|| tensor.data.iter().position(|v| !v.is_finite()));
+    let Some(flat) = first else {
         return Ok(());
     };
     let (index, place) = place(&tensor.shape, &element_names(layout), flat);

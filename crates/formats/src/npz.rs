@@ -7,6 +7,7 @@
 //! have produced from the bytes in the file.
 
 use std::collections::HashSet;
+use std::fs::File;
 use std::io::{Cursor, Read, Write};
 use std::path::Path;
 
@@ -15,6 +16,7 @@ use zip::{CompressionMethod, ZipArchive, ZipWriter};
 
 use crate::npy;
 use crate::tensor::{DType, Tensor, TensorFileError};
+use crate::tensor_file::Seen;
 
 /// Deflate's longest match (258 bytes) takes at least two bits to encode, so a stream inflates at
 /// most 1032-fold. A member declaring more than that for its compressed size is lying.
@@ -176,6 +178,71 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
         tensors.push(npy::read(path, Some(&member), &name, &content)?);
     }
     Ok(tensors)
+}
+
+/// The first bytes of a streamed member read before its header is parsed: NumPy's headers take
+/// 128 bytes (a longer one falls back to the whole-file read).
+const HEAD: usize = 4096;
+
+/// Every member of an archive of stored members, read from the open file a piece at a time
+/// (what [`read`] does from the file's bytes, without the whole file in memory first). `None`
+/// when the archive is anything else — a deflated or damaged member, a duplicate or odd name,
+/// a failed read: the caller then reads the file whole and [`read`] reports what it finds.
+/// With each tensor, what [`npy::read_streamed`] found of its values' finiteness.
+pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor, Seen)>> {
+    let file_len = file.metadata().ok()?.len();
+    let mut archive = ZipArchive::new(&mut *file).ok()?;
+    if archive.has_duplicate_names() {
+        return None;
+    }
+    let mut tensors = Vec::with_capacity(archive.len());
+    let mut names = HashSet::new();
+    for index in 0..archive.len() {
+        let raw = archive.by_index_raw(index).ok()?;
+        let member = std::str::from_utf8(raw.name_raw()).ok()?.to_string();
+        let name = member.strip_suffix(".npy")?.to_string();
+        let len = raw.size();
+        // The member's bytes must lie inside the file: that bounds what is allocated for them.
+        let inside = raw
+            .data_start()
+            .and_then(|start| start.checked_add(len))
+            .is_some_and(|end| end <= file_len);
+        if !names.insert(name.clone())
+            || raw.compression() != CompressionMethod::Stored
+            || len != raw.compressed_size()
+            || !inside
+        {
+            return None;
+        }
+        let crc = raw.crc32();
+        let len = usize::try_from(len).ok()?;
+        let mut content = Checksummed {
+            inner: raw,
+            crc: crc32fast::Hasher::new(),
+        };
+        let mut head = vec![0; len.min(HEAD)];
+        content.read_exact(&mut head).ok()?;
+        let read = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
+        if content.crc.finalize() != crc {
+            return None;
+        }
+        tensors.push(read);
+    }
+    Some(tensors)
+}
+
+/// A reader that keeps the CRC-32 of what it has read (the archive's checksum of a member).
+struct Checksummed<R> {
+    inner: R,
+    crc: crc32fast::Hasher,
+}
+
+impl<R: Read> Read for Checksummed<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.crc.update(&buf[..n]);
+        Ok(n)
+    }
 }
 
 /// Serialise tensors as a stored (uncompressed) archive, the way `np.savez` does, in the given

@@ -266,7 +266,8 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
     /// `mistake`, one of the kind's [catalogued codes](Kind::mistakes), asks for the gradient that
     /// mistake would produce instead. `need_input` false says nobody reads the input gradient:
     /// the kind leaves [`Back::dx`] `None` and skips its work (for a dense first layer over many
-    /// inputs, a third of the backward pass).
+    /// inputs, a third of the backward pass). `step.out` may be empty: the graph's whole-batch
+    /// gradient frees it once the activation's backward has read it; a kind reads what it saved.
     fn backward(
         &self,
         params: &[ArrayD<S>],

@@ -339,6 +339,50 @@ impl<S> Trace<S> {
     }
 }
 
+/// A forward pass's trace as a backward pass reads it. An owned one is freed layer by layer as
+/// the pass goes down: at a batch of 8,192 the layers above hold tens of megabytes that the
+/// gradients formed below can then reuse instead of fresh pages.
+enum Spent<'a, S> {
+    Borrowed(&'a Trace<S>),
+    /// With, per layer, whether its z went already ([`Graph::forward_spare`]).
+    Owned(Trace<S>, Vec<bool>),
+}
+
+impl<S> Spent<'_, S> {
+    fn get(&self) -> &Trace<S> {
+        match self {
+            Spent::Borrowed(t) => t,
+            Spent::Owned(t, _) => t,
+        }
+    }
+
+    /// Whether layer j's activation's backward reads its output in place of z (gone).
+    fn spared(&self, j: usize) -> bool {
+        matches!(self, Spent::Owned(_, spared) if spared[j])
+    }
+
+    /// Frees layer j's z and output (a kind's backward reads its step's `saved` and `branches`,
+    /// never `out`).
+    fn free_outputs(&mut self, j: usize) {
+        if let Spent::Owned(t, _) = self {
+            t.outputs[j] = empty();
+            t.steps[j].out = empty();
+        }
+    }
+
+    /// Frees what layer j's kind kept for its backward pass.
+    fn free_step(&mut self, j: usize) {
+        if let Spent::Owned(t, _) = self {
+            t.steps[j].saved = Vec::new();
+        }
+    }
+}
+
+/// An array of no values, where a freed one was.
+fn empty<S>() -> Array2<S> {
+    Array2::from_shape_vec((0, 0), Vec::new()).expect("no values")
+}
+
 /// The layers from `from` on of a forward pass whose parameters differ from a base pass's only in
 /// those layers ([`Graph::forward_from`]): what a finite-difference check recomputes when it moves
 /// one parameter of layer `from`. Entry i of `steps` and `outputs` is layer `from + i`.
@@ -528,6 +572,56 @@ impl Graph {
             outputs.push(a);
         }
         Trace { steps, outputs }
+    }
+
+    /// [`Graph::forward`] for a gradient: a layer below the output whose activation's backward
+    /// can work from its output alone (ReLU through the output's sign, which is z's; tanh, the
+    /// logistic and the identity through the output itself) gets its activation applied where
+    /// its kind wrote z, and its step keeps no z (an empty `out`): one batch-sized array per
+    /// such layer instead of two, the same values. Entry j of the second vector says layer j's
+    /// z went.
+    fn forward_spare<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+    ) -> (Trace<S>, Vec<bool>) {
+        if let Err(e) = self.check_params(params) {
+            panic!("{e} (check_params before a pass)");
+        }
+        let x = x.as_standard_layout();
+        let n = self.nodes.len();
+        let mut steps: Vec<Step<S>> = Vec::with_capacity(n);
+        let mut outputs: Vec<Array2<S>> = Vec::with_capacity(n);
+        let mut spared = Vec::with_capacity(n);
+        for (j, node) in self.nodes.iter().enumerate() {
+            let input = if j == 0 {
+                x.view()
+            } else {
+                outputs[j - 1].view()
+            };
+            let skip = node.tap.map(|t| outputs[t].view());
+            let mut step =
+                S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
+            let from_output = j + 1 < n
+                && matches!(
+                    node.activation,
+                    Activation::Relu
+                        | Activation::Tanh
+                        | Activation::Sigmoid
+                        | Activation::Identity
+                );
+            let a = if from_output {
+                let mut a = std::mem::replace(&mut step.out, empty());
+                node.activation.apply_in_place(&mut a);
+                a
+            } else {
+                self.activate(node, &step.out)
+            };
+            steps.push(step);
+            outputs.push(a);
+            spared.push(from_output);
+        }
+        (Trace { steps, outputs }, spared)
     }
 
     /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
@@ -1256,9 +1350,17 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> Gradient<S> {
-        let trace = self.forward(params, x);
+        let (trace, spared) = self.forward_spare(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (params_grad, input) = self.backward(params, x, y, &trace, planted, true);
+        let (params_grad, input) = self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Owned(trace, spared),
+            planted,
+            &Hooks::REFERENCE,
+            true,
+        );
         Gradient {
             loss,
             params: params_grad,
@@ -1276,9 +1378,17 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> (S, Vec<ArrayD<S>>) {
-        let trace = self.forward(params, x);
+        let (trace, spared) = self.forward_spare(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (grads, _) = self.backward(params, x, y, &trace, planted, false);
+        let (grads, _) = self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Owned(trace, spared),
+            planted,
+            &Hooks::REFERENCE,
+            false,
+        );
         (loss, grads)
     }
 
@@ -1319,6 +1429,30 @@ impl Graph {
         hooks: &Hooks,
         input_gradient: bool,
     ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
+        self.backward_through(
+            params,
+            x,
+            y,
+            Spent::Borrowed(trace),
+            planted,
+            hooks,
+            input_gradient,
+        )
+    }
+
+    /// [`Graph::backward_hooked`] over a trace that is borrowed, or owned and freed layer by
+    /// layer as the pass goes down.
+    #[allow(clippy::too_many_arguments)]
+    fn backward_through<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        mut trace: Spent<'_, S>,
+        planted: Option<&Planted>,
+        hooks: &Hooks,
+        input_gradient: bool,
+    ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
         let x = x.as_standard_layout();
         let y = y.as_standard_layout();
         let m = x.nrows();
@@ -1337,14 +1471,18 @@ impl Graph {
                 break; // nothing at or below layer j has a gradient anyone reads
             }
             let node = &self.nodes[j];
-            let step = &trace.steps[j];
+            let t = trace.get();
+            let step = &t.steps[j];
             let dz = if j == n - 1 {
-                self.output_delta(hooks, step.out.view(), trace.outputs[j].view(), y.view())
+                self.output_delta(hooks, step.out.view(), t.outputs[j].view(), y.view())
             } else {
+                let a = t.outputs[j].view();
                 let da = upstream[j]
                     .take()
-                    .unwrap_or_else(|| Array2::zeros(step.out.raw_dim()));
-                let (z, a) = (step.out.view(), trace.outputs[j].view());
+                    .unwrap_or_else(|| Array2::zeros(a.raw_dim()));
+                // A spared layer's activation reads z only through its sign (ReLU), which
+                // its output shares, or not at all.
+                let z = if trace.spared(j) { a } else { step.out.view() };
                 match hooks.slope.filter(|&(l, _)| l == j).map(|(_, s)| s) {
                     None => node.activation.backward(z, a, da),
                     Some(Slope::Missing) => da,
@@ -1354,10 +1492,14 @@ impl Graph {
                     }
                 }
             };
+            // Layer j's z and output are read by nothing below: every reader is above it.
+            trace.free_outputs(j);
+            let t = trace.get();
+            let step = &t.steps[j];
             let input = if j == 0 {
                 x.view()
             } else {
-                trace.outputs[j - 1].view()
+                t.outputs[j - 1].view()
             };
             let mistake = planted.filter(|p| p.layer == j).map(|p| p.code);
             let back = S::layer(node.layer.as_ref()).backward(
@@ -1368,6 +1510,7 @@ impl Graph {
                 mistake,
                 input_gradient || lowest.is_some_and(|l| l < j),
             );
+            trace.free_step(j);
             for (t, g) in node.tensors().zip(back.params) {
                 grads[t] = g;
             }

@@ -81,10 +81,14 @@ fn npy(dict: &str, data: &[u8]) -> Vec<u8> {
 }
 
 fn deflated_zip(members: &[(&str, &[u8])]) -> Vec<u8> {
+    zip_of(members, CompressionMethod::Deflated)
+}
+
+fn zip_of(members: &[(&str, &[u8])], method: CompressionMethod) -> Vec<u8> {
     let mut w = ZipWriter::new(Cursor::new(Vec::new()));
     for (name, bytes) in members {
         let options = SimpleFileOptions::default()
-            .compression_method(CompressionMethod::Deflated)
+            .compression_method(method)
             .large_file(false);
         w.start_file(*name, options).unwrap();
         w.write_all(bytes).unwrap();
@@ -197,6 +201,120 @@ fn a_channels_last_batch_costs_a_small_multiple_of_its_values() {
     assert!(
         peak < 3 * values * 8,
         "peak {peak} bytes for {values} values"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A stored archive (what `np.savez` writes) is read a piece at a time, each piece widened as it
+/// arrives: 8 MiB of float32 values peak below their 16 MiB as f64 plus 1 MiB, where reading the
+/// file whole first would hold its 8 MiB besides. The values are the file's, exactly: widening
+/// f32 to f64 is exact (IEEE 754); a big-endian column-major member comes out in row-major order
+/// (the NPY format's `fortran_order`, as NumPy defines it).
+#[test]
+fn a_stored_archive_is_widened_as_it_is_read() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("stored");
+    let values = 2 << 20;
+    let x: Vec<u8> = (0..values)
+        .flat_map(|i| ((i % 251) as f32 / 8.0 - 15.0).to_le_bytes())
+        .collect();
+    let x = npy(
+        &format!(
+            "{{'descr': '<f4', 'fortran_order': False, 'shape': ({}, 512), }}",
+            values / 512
+        ),
+        &x,
+    );
+    // [[1, 2, 3], [4, 5, 6]] stored column by column, big-endian.
+    let w: Vec<u8> = [1.0f32, 4.0, 2.0, 5.0, 3.0, 6.0]
+        .iter()
+        .flat_map(|v| v.to_be_bytes())
+        .collect();
+    let w = npy(
+        "{'descr': '>f4', 'fortran_order': True, 'shape': (2, 3), }",
+        &w,
+    );
+    let path = dir.join("stored.npz");
+    std::fs::write(
+        &path,
+        zip_of(&[("x.npy", &x), ("w.npy", &w)], CompressionMethod::Stored),
+    )
+    .unwrap();
+    drop((x, w));
+    let (file, peak) = peak_during(|| read_tensors(&path).unwrap());
+    let x = file.get("x").unwrap();
+    assert_eq!(x.shape, [values / 512, 512]);
+    assert!(
+        x.data
+            .iter()
+            .enumerate()
+            .all(|(i, &v)| v == f64::from((i % 251) as f32 / 8.0 - 15.0))
+    );
+    let w = file.get("w").unwrap();
+    assert_eq!(
+        (w.shape.as_slice(), w.data.as_slice()),
+        (&[2, 3][..], &[1.0, 2.0, 3.0, 4.0, 5.0, 6.0][..])
+    );
+    assert!(
+        peak < values * 8 + (1 << 20),
+        "peak {peak} bytes for {values} values"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The finite check of a streamed x (made piece by piece as the archive is read) names the same
+/// element as a search of the whole array: NumPy's C-order place of a NaN in a later piece than
+/// the first, the first of two in one piece, and in a column-major x (whose file order is not
+/// the array's) the first in C order, not in the file.
+#[test]
+fn a_streamed_batch_names_its_first_value_that_is_not_finite() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("not-finite");
+    let (m, n) = (100usize, 1000usize);
+    let y = npy(
+        &format!("{{'descr': '|u1', 'fortran_order': False, 'shape': ({m},), }}"),
+        &vec![0u8; m],
+    );
+    let write = |name: &str, fortran: bool, bad: &[(usize, usize, f32)]| {
+        let mut values = vec![0.5f32; m * n];
+        for &(i, j, v) in bad {
+            values[if fortran { j * m + i } else { i * n + j }] = v;
+        }
+        let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+        let x = npy(
+            &format!(
+                "{{'descr': '<f4', 'fortran_order': {}, 'shape': ({m}, {n}), }}",
+                if fortran { "True" } else { "False" }
+            ),
+            &bytes,
+        );
+        let path = dir.join(name);
+        std::fs::write(
+            &path,
+            zip_of(&[("x.npy", &x), ("y.npy", &y)], CompressionMethod::Stored),
+        )
+        .unwrap();
+        read_data(&path, n, 1).unwrap_err().to_string()
+    };
+    // Sample 90, feature 10: value 90,010, past the first 128 KiB piece (32,768 f32 values).
+    let message = write(
+        "late.npz",
+        false,
+        &[(90, 10, f32::NAN), (90, 500, f32::INFINITY)],
+    );
+    assert!(
+        message.contains("element [90, 10] (sample 90, feature 10): NaN is not finite"),
+        "{message}"
+    );
+    // Column-major: (5, 900) comes first in C order, (60, 2) first in the file.
+    let message = write(
+        "columns.npz",
+        true,
+        &[(60, 2, f32::NEG_INFINITY), (5, 900, f32::NAN)],
+    );
+    assert!(
+        message.contains("element [5, 900] (sample 5, feature 900): NaN is not finite"),
+        "{message}"
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }

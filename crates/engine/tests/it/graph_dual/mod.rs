@@ -92,6 +92,27 @@ fn check(g: &Graph, seed: u64, what: &str) {
     );
     let (err, at) = worst(&grad, &dual, FLOOR);
     assert!(err <= TOL, "{what} seed {seed}: {err:e} at {at}\n{g:#?}");
+    // The backward pass over a kept forward pass (what the diagnosis runs) against the one that
+    // frees the trace as it goes and keeps one array for an activation working from its output:
+    // the same arithmetic, so the same bits as the gradient judged against num-dual above.
+    let trace = g.forward(&params, x.view());
+    let (kept, input) = g.backward(&params, x.view(), y.view(), &trace, None, true);
+    for (t, (a, b)) in kept.iter().zip(&grad.params).enumerate() {
+        assert!(
+            a.iter()
+                .zip(b.iter())
+                .all(|(a, b)| a.to_bits() == b.to_bits()),
+            "{what} seed {seed}: tensor {t} differs between the kept and the freed trace"
+        );
+    }
+    let input = input.expect("asked for");
+    assert!(
+        input
+            .iter()
+            .zip(grad.input.iter())
+            .all(|(a, b)| a.to_bits() == b.to_bits()),
+        "{what} seed {seed}: the input gradient differs between the kept and the freed trace"
+    );
     // Without the input gradient (the first layer then forms no dx): the same parameter
     // gradients against num-dual.
     let (loss, without) = g.parameter_gradient(&params, x.view(), y.view(), None);
