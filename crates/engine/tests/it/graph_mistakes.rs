@@ -140,6 +140,7 @@ fn each_mistake_changes_exactly_the_tensors_it_reaches() {
         let y = random_y(&g, 4, &mut rng);
         let base = g.gradient(&params, x.view(), y.view(), None);
         let reference = (base.params, base.input);
+        graph_common::freed_trace_matches_kept(&g, &params, &x, &y, &format!("seed {seed}"));
         for (layer, code, names) in expected {
             let planted = g.plant(layer, code).unwrap();
             let got = g.gradient(&params, x.view(), y.view(), Some(&planted));

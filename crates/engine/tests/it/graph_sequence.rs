@@ -94,6 +94,7 @@ fn check_with(g: &Graph, x: &Array2<f64>, seed: u64, what: &str) {
     let y = random_y(g, x.nrows(), &mut rng);
     let grad = g.gradient(&params, x.view(), y.view(), None);
     let dual = dual_gradient(g, &params, x, &y);
+    graph_common::freed_trace_matches_kept(g, &params, x, &y, &format!("{what} seed {seed}"));
     assert!(
         (grad.loss - dual.loss).abs() <= TOL * dual.loss.abs().max(1e-300),
         "{what} seed {seed}: loss {} vs num-dual {}",

@@ -524,3 +524,230 @@ fn max_pool_updates_a_channel_with_its_ties_as_a_full_pass_does() {
         );
     }
 }
+
+/// The cross-correlation's definition, written out here apart from the engine's loops: output
+/// position (oy, ox) of out-channel o reads input (i, oy·sy + ky·dy − by, ox·sx + kx·dx − bx)
+/// under tap (ky, kx), zero where that lies in the padding; "same" padding puts d(k − 1)/2
+/// (rounded down) before and the rest after. Returns the value under the tap, `None` in the
+/// padding, for sample input `xn` laid out channels × height × width.
+#[allow(clippy::too_many_arguments)]
+fn under_tap(
+    xn: &[f64],
+    [h, w]: [usize; 2],
+    [i, ky, kx]: [usize; 3],
+    [oy, ox]: [usize; 2],
+    s: &ConvSettings,
+    before: [usize; 2],
+) -> Option<f64> {
+    let iy = (oy * s.stride[0] + ky * s.dilation[0]).checked_sub(before[0])?;
+    let ix = (ox * s.stride[1] + kx * s.dilation[1]).checked_sub(before[1])?;
+    (iy < h && ix < w).then(|| xn[(i * h + iy) * w + ix])
+}
+
+/// A moved conv entry's out-channel (`forward_moved`, `moved_values`) is the base's z plus δ
+/// times the input under the entry's tap, rounded once each (z + δ·x, IEEE 754), at every
+/// position — the base's z itself where the tap falls in the padding — and the other channels
+/// are the base's bit for bit; over conv1d and conv2d, strides 1–3, dilations 1–3, explicit
+/// padding up to 4 (past the kernel, where the loops read the unpadded input tap by tap) and
+/// "same" padding with even and odd kernels, f64 and f32. The reference is the definition
+/// above, held to the engine's full pass first (within the rounding of its sums, Higham
+/// §3.1), so that its reading of the layout and of the padding is the engine's.
+#[test]
+fn a_moved_conv_entry_adds_delta_times_the_input_under_its_tap() {
+    fn run<S: LayerScalar>(seed: u64) -> usize {
+        use plumb_engine::graph::{Kind, Layer};
+        let mut rng = Rng::new(seed);
+        let mut tried = 0;
+        for _ in 0..150 {
+            let dims = 1 + rng.below(2);
+            let (h, w) = if dims == 1 {
+                (1, 1 + rng.below(9))
+            } else {
+                (1 + rng.below(6), 1 + rng.below(7))
+            };
+            let c = 1 + rng.below(3);
+            let k = [1 + rng.below(4), 1 + rng.below(4)];
+            let mut s = if dims == 1 {
+                ConvSettings::conv1d(1 + rng.below(3), k[1])
+            } else {
+                ConvSettings::conv2d(1 + rng.below(3), k)
+            };
+            s.stride = [1 + rng.below(3), 1 + rng.below(3)];
+            s.dilation = [1 + rng.below(3), 1 + rng.below(3)];
+            s.padding = if rng.below(3) == 0 {
+                s.stride = [1, 1];
+                Padding::Same
+            } else {
+                Padding::Explicit([rng.below(5), rng.below(5)])
+            };
+            s.bias = rng.below(3) != 0;
+            if dims == 1 {
+                s.kernel[0] = 1;
+                s.stride[0] = 1;
+                s.dilation[0] = 1;
+                if let Padding::Explicit(p) = &mut s.padding {
+                    p[0] = 0;
+                }
+            }
+            let shape = if dims == 1 {
+                Shape::Signal {
+                    channels: c,
+                    length: w,
+                }
+            } else {
+                Shape::Image {
+                    channels: c,
+                    height: h,
+                    width: w,
+                }
+            };
+            let Ok(conv) = Conv::new(&s, &shape) else {
+                continue; // no output position fits
+            };
+            tried += 1;
+            let before = match s.padding {
+                Padding::Explicit(p) => p,
+                Padding::Same => [0, 1].map(|a| s.dilation[a] * (s.kernel[a] - 1) / 2),
+            };
+            let params: Vec<ArrayD<f64>> = Kind::params(&conv)
+                .iter()
+                .map(|p| ArrayD::from_shape_fn(p.shape.as_slice(), |_| rng.normal()))
+                .collect();
+            let m = 2;
+            let x = ndarray::Array2::from_shape_fn((m, c * h * w), |_| rng.normal());
+            // Exactly representable in f32, so both precisions read the same values.
+            let params: Vec<ArrayD<f64>> = params
+                .iter()
+                .map(|t| t.mapv(|v| f64::from(v as f32)))
+                .collect();
+            let x = x.mapv(|v| f64::from(v as f32));
+            let p: Vec<ArrayD<S>> = params.iter().map(|t| t.mapv(S::from_f64)).collect();
+            let xs = x.mapv(S::from_f64);
+            let base = Layer::<S>::forward(&conv, &p, xs.view(), None);
+            let (o_count, taps) = (s.channels, s.kernel[0] * s.kernel[1]);
+            let op = base.out.ncols() / o_count;
+            // The output size from the definition: ⌊(n + pads − d(k − 1) − 1)/s⌋ + 1.
+            let out_size = |a: usize, n: usize| {
+                let pads = match s.padding {
+                    Padding::Explicit(p) => 2 * p[a],
+                    Padding::Same => s.dilation[a] * (s.kernel[a] - 1),
+                };
+                (n + pads - s.dilation[a] * (s.kernel[a] - 1) - 1) / s.stride[a] + 1
+            };
+            let (oh, ow) = (out_size(0, h), out_size(1, w));
+            assert_eq!(op, oh * ow, "{s:?} on {shape:?}: output positions");
+            // The definition against the engine's full pass.
+            let wt = params[0].as_slice().unwrap();
+            for n in 0..m {
+                let xn = x.row(n).to_vec();
+                for o in 0..o_count {
+                    for (pos, (oy, ox)) in (0..oh)
+                        .flat_map(|y| (0..ow).map(move |x| (y, x)))
+                        .enumerate()
+                    {
+                        let (mut sum, mut size) = (0.0, 0.0);
+                        for i in 0..c {
+                            for ky in 0..s.kernel[0] {
+                                for kx in 0..s.kernel[1] {
+                                    let wv = wt[(o * c + i) * taps + ky * s.kernel[1] + kx];
+                                    let a =
+                                        under_tap(&xn, [h, w], [i, ky, kx], [oy, ox], &s, before)
+                                            .unwrap_or(0.0);
+                                    sum += wv * a;
+                                    size += (wv * a).abs();
+                                }
+                            }
+                        }
+                        if s.bias {
+                            sum += params[1][o];
+                            size += params[1][o].abs();
+                        }
+                        let got = base.out[(n, o * op + pos)].re();
+                        let tol = 2.0 * (c * taps + 2) as f64 * S::epsilon() * size;
+                        assert!(
+                            (got - sum).abs() <= tol,
+                            "{s:?} on {shape:?}: full pass z[{n}, {o}, {pos}] {got} vs {sum}"
+                        );
+                    }
+                }
+            }
+            // Every entry of every tensor, moved.
+            for (t, tensor) in params.iter().enumerate() {
+                for e in 0..tensor.len() {
+                    for d in [0.375, -1.5e-3] {
+                        let delta = S::from_f64(d);
+                        let moved = Moved {
+                            tensor: t,
+                            index: e,
+                            delta,
+                        };
+                        let step = Layer::<S>::forward_moved(&conv, &p, xs.view(), &base, &moved)
+                            .expect("a conv entry has a hint");
+                        let mut values = Vec::new();
+                        assert!(Layer::<S>::moved_values(
+                            &conv,
+                            &p,
+                            xs.view(),
+                            &base,
+                            &moved,
+                            &mut values
+                        ));
+                        let (o, tap) = if t == 0 {
+                            (e / (c * taps), Some(e % (c * taps)))
+                        } else {
+                            (e, None)
+                        };
+                        assert_eq!(values.len(), m * op, "{s:?}: moved values");
+                        for n in 0..m {
+                            let xn = x.row(n).to_vec();
+                            for col in 0..o_count * op {
+                                let (got, z) = (step.out[(n, col)], base.out[(n, col)]);
+                                let at = format!(
+                                    "{s:?} on {shape:?}: tensor {t} entry {e} δ {d}, sample {n}, value {col}"
+                                );
+                                if col / op != o {
+                                    assert!(
+                                        got.same_bits(z),
+                                        "{at}: not the moved channel, not the base's"
+                                    );
+                                    continue;
+                                }
+                                let pos = col % op;
+                                let want = match tap {
+                                    None => z + delta,
+                                    Some(r) => {
+                                        let (i, ky, kx) =
+                                            (r / taps, r % taps / s.kernel[1], r % s.kernel[1]);
+                                        match under_tap(
+                                            &xn,
+                                            [h, w],
+                                            [i, ky, kx],
+                                            [pos / ow, pos % ow],
+                                            &s,
+                                            before,
+                                        ) {
+                                            Some(a) => z + delta * S::from_f64(a),
+                                            None => z,
+                                        }
+                                    }
+                                };
+                                assert!(
+                                    got.same_bits(want),
+                                    "{at}: {got:?}, want {want:?} (base {z:?})"
+                                );
+                                assert!(
+                                    values[n * op + pos].same_bits(want),
+                                    "{at}: moved_values {:?}, want {want:?}",
+                                    values[n * op + pos]
+                                );
+                            }
+                        }
+                    }
+                }
+            }
+        }
+        tried
+    }
+    let tried = run::<f64>(71) + run::<f32>(72);
+    assert!(tried > 200, "{tried} layers built");
+}

@@ -183,3 +183,81 @@ fn a_directions_shared_change_in_f32_errs_within_the_checks_round_off() {
         );
     }
 }
+
+/// The largest error, in units of the assumed per-loss round-off, of a moved conv entry's loss
+/// in f32 through the incremental hint (`Graph::moved_loss`: the moved out-channel taken as the
+/// base's z plus δ times the input under the entry's tap) and of a whole f32 pass at the moved
+/// parameters, both against a whole f64 pass at the same parameters (θ in f32 plus δ, exact in
+/// f64); and the largest error of a ±δ pair's difference through the hint.
+fn moved_conv_errors(c: &Case) -> (f64, f64, f64, usize) {
+    use plumb_engine::graph::Moved;
+    let g = &c.graph;
+    let p: Vec<ArrayD<f32>> = c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+    let p64: Vec<ArrayD<f64>> = p.iter().map(|t| t.mapv(f64::from)).collect();
+    let (x, y) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
+    let (x64, y64) = (x.mapv(f64::from), y.mapv(f64::from));
+    let base = g.forward(&p, x.view());
+    let base64 = g.forward(&p64, x64.view());
+    let f0 = f64::from(g.loss_of(&p, &base, y.view()));
+    let eps = f64::from(f32::EPSILON);
+    let noise = loss_noise(eps, f0, graph_loss_magnitude(g, &p64, &base64, &y64));
+    let l2 = g.l2_sum(&p);
+    let (mut hinted, mut whole, mut pair, mut entries) = (0.0f64, 0.0f64, 0.0f64, 0);
+    for (t, spec) in g.tensors().iter().enumerate() {
+        if !g.nodes()[spec.layer].layer.kind().starts_with("conv") {
+            continue;
+        }
+        for k in 0..p[t].len() {
+            entries += 1;
+            let theta = f64::from(p[t].as_slice().unwrap()[k]);
+            let h = Method::Central.default_step(theta, eps);
+            let at = |d: f32| -> (f64, f64, f64) {
+                let moved = Moved {
+                    tensor: t,
+                    index: k,
+                    delta: d,
+                };
+                let (li, _) = g.moved_loss(&p, x.view(), &base, y.view(), l2, &moved);
+                let mut q = p.clone();
+                q[t].as_slice_mut().unwrap()[k] += d;
+                let lw = g.loss(&q, x.view(), y.view());
+                let mut q64 = p64.clone();
+                q64[t].as_slice_mut().unwrap()[k] += f64::from(d);
+                (
+                    f64::from(li),
+                    f64::from(lw),
+                    g.loss(&q64, x64.view(), y64.view()),
+                )
+            };
+            for s in [1.0, 2.0, 8.0, 64.0] {
+                let d = (s * h) as f32;
+                let ((ip, wp, ep), (im, wm, em)) = (at(d), at(-d));
+                hinted = hinted.max((ip - ep).abs().max((im - em).abs()) / noise);
+                whole = whole.max((wp - ep).abs().max((wm - em).abs()) / noise);
+                pair = pair.max(((ip - im) - (ep - em)).abs() / noise);
+            }
+        }
+    }
+    (hinted, whole, pair, entries)
+}
+
+/// A moved conv entry's loss in f32 through the incremental hint errs within the round-off the
+/// check assumes per loss ([`loss_noise`]) of a whole f64 pass at the same parameters, and a
+/// ±δ pair's difference within two, on the demo CNN (conv1d, residual block) and a conv2d
+/// network, steps from the central difference's default h to 64h.
+#[test]
+fn a_moved_conv_entry_in_f32_errs_within_the_checks_round_off() {
+    for (what, c) in [
+        ("pump-cnn", demo_cnn()),
+        ("conv1d", graph_common::case(graph_common::conv1d(), 6, 5)),
+        ("conv2d", graph_common::case(graph_common::conv2d(), 6, 5)),
+    ] {
+        let (hinted, whole, pair, entries) = moved_conv_errors(&c);
+        eprintln!(
+            "{what}: {entries} entries, hinted {hinted:.3}, whole f32 pass {whole:.3}, pairs {pair:.3} noises"
+        );
+        assert!(entries > 0, "{what}: conv entries moved");
+        assert!(hinted <= 1.0, "{what}: a loss off by {hinted} noises");
+        assert!(pair <= 2.0, "{what}: a difference off by {pair} noises");
+    }
+}

@@ -410,3 +410,60 @@ fn csv_rows_of_one_empty_field_and_unclosed_quotes_are_errors() {
     assert_eq!(read_data(&fine, 2, 1).unwrap().x.nrows(), 2);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A stored archive whose central directory lists one member's bytes under many names
+/// (APPNOTE.TXT §4.3.12: each entry points at a local header by its offset; nothing in the
+/// format stops two from pointing at the same one): reading it must keep to the budget of
+/// docs/budget.md — the file's bytes plus its values as f64, at most 8 bytes per value with a
+/// value at least 1 byte of the file — or be refused. 64 names over 64 KiB of booleans would
+/// otherwise widen the same bytes 64 times (at 2,000 names over 1 MB, `plumb shapes` peaked at
+/// 15.6 GB of resident memory reading a 1.1 MB file).
+#[test]
+fn one_member_listed_under_many_names_costs_no_more_than_the_file_holds() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("aliases");
+    let values = 64 << 10;
+    let member = npy(
+        &format!("{{'descr': '|b1', 'fortran_order': False, 'shape': ({values},), }}"),
+        &vec![1u8; values],
+    );
+    for method in [CompressionMethod::Stored] {
+        let one = zip_of(&[("0000.npy", &member)], method);
+        let at = |sig: &[u8]| one.windows(4).position(|w| w == sig).unwrap();
+        let (central, end) = (at(b"PK\x01\x02"), at(b"PK\x05\x06"));
+        let entry = &one[central..end];
+        let names = 64usize;
+        let mut bytes = one[..central].to_vec();
+        for k in 0..names {
+            let renamed = entry
+                .windows(8)
+                .position(|w| w == b"0000.npy")
+                .map(|i| {
+                    let mut e = entry.to_vec();
+                    e[i..i + 8].copy_from_slice(format!("{k:04}.npy").as_bytes());
+                    e
+                })
+                .unwrap();
+            bytes.extend(renamed);
+        }
+        let mut tail = one[end..].to_vec();
+        tail[8..10].copy_from_slice(&(names as u16).to_le_bytes());
+        tail[10..12].copy_from_slice(&(names as u16).to_le_bytes());
+        tail[12..16].copy_from_slice(&((entry.len() * names) as u32).to_le_bytes());
+        bytes.extend(tail);
+        let path = dir.join(format!("aliases-{method}.npz"));
+        std::fs::write(&path, &bytes).unwrap();
+        let (read, peak) = peak_during(|| read_tensors(&path));
+        let budget = 9 * bytes.len() + (1 << 20);
+        match read {
+            Err(_) => {}
+            Ok(file) => assert!(
+                peak <= budget,
+                "{method}: {} tensors read from {} bytes, peak {peak} bytes (budget {budget})",
+                file.tensors.len(),
+                bytes.len()
+            ),
+        }
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

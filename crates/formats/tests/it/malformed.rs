@@ -720,3 +720,29 @@ fn no_cut_or_flipped_byte_makes_a_reader_panic() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A stored member flagged as encrypted (bit 0 of the general-purpose flags, APPNOTE.TXT
+/// §4.4.4) whose bytes are otherwise a valid array with a matching CRC-32: the zip reader asks
+/// for a password and plumb refuses the archive naming the member — whether the archive is
+/// read whole or streamed from the file a piece at a time (the streamed read must not take
+/// what the whole-file read refuses). The flag sits at byte 6 of the local header, 8 of the
+/// central one.
+#[test]
+fn a_member_flagged_encrypted_is_refused() {
+    let dir = scratch("encrypted");
+    for (name, flag_in) in [("both", [true, true]), ("central", [false, true])] {
+        let mut bytes = zip_of(
+            &[("w.npy", &fixture("c_f8.npy"))],
+            CompressionMethod::Stored,
+        );
+        let central = find(&bytes, b"PK\x01\x02");
+        for (at, on) in [6, central + 8].into_iter().zip(flag_in) {
+            if on {
+                bytes[at] |= 0x01;
+            }
+        }
+        let path = put(&dir, &format!("{name}.npz"), &bytes);
+        assert_has(&tensor_error(&path), &["member `w.npy`"]);
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -184,3 +184,66 @@ pub fn activation(name: &str) -> plumb_engine::Activation {
         other => panic!("activation {other}"),
     }
 }
+
+/// The whole-batch gradient (`Graph::gradient`, `Graph::parameter_gradient`: a trace that keeps
+/// no z where the activation's backward reads its output, freed layer by layer as the backward
+/// goes down) against the backward pass over a kept forward pass (`Graph::backward`, what a
+/// diagnosis's hooked passes read), bit for bit — the same arithmetic on the same values —
+/// with no mistake and with each catalogued mistake of every layer planted (the hypotheses a
+/// diagnosis runs through the whole-batch gradient), the input gradient asked for and not.
+pub fn freed_trace_matches_kept(
+    g: &Graph,
+    params: &[ArrayD<f64>],
+    x: &Array2<f64>,
+    y: &Array2<f64>,
+    what: &str,
+) {
+    let same = |a: &[ArrayD<f64>], b: &[ArrayD<f64>]| {
+        a.len() == b.len()
+            && a.iter().zip(b).all(|(a, b)| {
+                a.shape() == b.shape()
+                    && a.iter()
+                        .zip(b.iter())
+                        .all(|(u, v)| u.to_bits() == v.to_bits())
+            })
+    };
+    let trace = g.forward(params, x.view());
+    let loss = g.loss_of(params, &trace, y.view());
+    let mut plants = vec![None];
+    for node in g.nodes() {
+        for code in node.layer.mistakes() {
+            plants.push(Some((
+                g.plant(&node.name, code).unwrap(),
+                format!("{code} in {}", node.name),
+            )));
+        }
+    }
+    for plant in &plants {
+        let (planted, named) = match plant {
+            Some((p, named)) => (Some(p), named.as_str()),
+            None => (None, "no mistake"),
+        };
+        let got = g.gradient(params, x.view(), y.view(), planted);
+        assert_eq!(
+            got.loss.to_bits(),
+            loss.to_bits(),
+            "{what}, {named}: the loss"
+        );
+        let (kept, input) = g.backward(params, x.view(), y.view(), &trace, planted, true);
+        assert!(
+            same(&got.params, &kept),
+            "{what}, {named}: the parameter gradients differ between the freed and the kept trace"
+        );
+        let input = input.expect("asked for").into_dyn();
+        assert!(
+            same(&[got.input.into_dyn()], &[input]),
+            "{what}, {named}: the input gradient differs between the freed and the kept trace"
+        );
+        let (_, without) = g.parameter_gradient(params, x.view(), y.view(), planted);
+        let (kept, _) = g.backward(params, x.view(), y.view(), &trace, planted, false);
+        assert!(
+            same(&without, &kept),
+            "{what}, {named}: without the input gradient, the parameter gradients differ"
+        );
+    }
+}

@@ -92,6 +92,7 @@ fn check(g: &Graph, seed: u64, what: &str) {
     );
     let (err, at) = worst(&grad, &dual, FLOOR);
     assert!(err <= TOL, "{what} seed {seed}: {err:e} at {at}\n{g:#?}");
+    graph_common::freed_trace_matches_kept(g, &params, &x, &y, &format!("{what} seed {seed}"));
     // The backward pass over a kept forward pass (what the diagnosis runs) against the one that
     // frees the trace as it goes and keeps one array for an activation working from its output:
     // the same arithmetic, so the same bits as the gradient judged against num-dual above.
