@@ -39,6 +39,22 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
         });
     }
 
+    // Before anything is inflated: no byte may be listed under two names.
+    let mut listed_bytes = 0u64;
+    for index in 0..archive.len() {
+        let raw = archive
+            .by_index_raw(index)
+            .map_err(|e| zip_error(None, e))?;
+        listed_bytes = listed_bytes.saturating_add(raw.compressed_size());
+        if listed_bytes > bytes.len() as u64 {
+            return Err(TensorFileError::BadMember {
+                path: path.to_path_buf(),
+                member: String::from_utf8_lossy(raw.name_raw()).into_owned(),
+                problem: shared_bytes(listed_bytes, bytes.len() as u64),
+            });
+        }
+    }
+
     let mut tensors = Vec::with_capacity(archive.len());
     let mut names = HashSet::new();
     for index in 0..archive.len() {
@@ -180,6 +196,17 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
     Ok(tensors)
 }
 
+/// What is wrong with an archive whose members' bytes add up to more than the file holds: its
+/// directory lists some bytes under several names, and each name would be read (and widened)
+/// again — a file of a few kilobytes could ask for gigabytes.
+fn shared_bytes(listed: u64, file: u64) -> String {
+    format!(
+        "the archive's members list at least {listed} bytes, more than the file's {file}: entries \
+         share their bytes, which no archive NumPy writes does; the archive is damaged or \
+         crafted — write it again with np.savez"
+    )
+}
+
 /// The first bytes of a streamed member read before its header is parsed: NumPy's headers take
 /// 128 bytes (a longer one falls back to the whole-file read).
 const HEAD: usize = 4096;
@@ -195,6 +222,15 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor,
     if archive.has_duplicate_names() {
         return None;
     }
+    // Members sharing bytes: the whole-file read says what is wrong.
+    let mut listed_bytes = 0u64;
+    for index in 0..archive.len() {
+        listed_bytes =
+            listed_bytes.saturating_add(archive.by_index_raw(index).ok()?.compressed_size());
+    }
+    if listed_bytes > file_len {
+        return None;
+    }
     let mut tensors = Vec::with_capacity(archive.len());
     let mut names = HashSet::new();
     for index in 0..archive.len() {
@@ -207,8 +243,10 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor,
             .data_start()
             .and_then(|start| start.checked_add(len))
             .is_some_and(|end| end <= file_len);
+        // An encrypted member: the whole-file read refuses it, naming the member.
         if !names.insert(name.clone())
             || raw.compression() != CompressionMethod::Stored
+            || raw.encrypted()
             || len != raw.compressed_size()
             || !inside
         {
