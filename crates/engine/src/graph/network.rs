@@ -1350,17 +1350,7 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> Gradient<S> {
-        let (trace, spared) = self.forward_spare(params, x);
-        let loss = self.loss_of(params, &trace, y);
-        let (params_grad, input) = self.backward_through(
-            params,
-            x,
-            y,
-            Spent::Owned(trace, spared),
-            planted,
-            &Hooks::REFERENCE,
-            true,
-        );
+        let (loss, params_grad, input) = self.spent_gradient(params, x, y, planted, true);
         Gradient {
             loss,
             params: params_grad,
@@ -1378,18 +1368,33 @@ impl Graph {
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> (S, Vec<ArrayD<S>>) {
+        let (loss, grads, _) = self.spent_gradient(params, x, y, planted, false);
+        (loss, grads)
+    }
+
+    /// The loss and gradients from a forward pass whose trace the backward pass owns and frees
+    /// layer by layer ([`Spent`]): what `gradient` and `parameter_gradient` share.
+    fn spent_gradient<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        y: ArrayView2<S>,
+        planted: Option<&Planted>,
+        input_gradient: bool,
+    ) -> (S, Vec<ArrayD<S>>, Option<Array2<S>>) {
         let (trace, spared) = self.forward_spare(params, x);
         let loss = self.loss_of(params, &trace, y);
-        let (grads, _) = self.backward_through(
+        let spent = Spent::Owned(trace, spared);
+        let (grads, input) = self.backward_through(
             params,
             x,
             y,
-            Spent::Owned(trace, spared),
+            spent,
             planted,
             &Hooks::REFERENCE,
-            false,
+            input_gradient,
         );
-        (loss, grads)
+        (loss, grads, input)
     }
 
     /// The backward pass from a forward pass already made: the parameter gradients, and the input
