@@ -40,19 +40,15 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
     }
 
     // Before anything is inflated: no byte may be listed under two names.
-    let mut listed_bytes = 0u64;
-    for index in 0..archive.len() {
-        let raw = archive
-            .by_index_raw(index)
-            .map_err(|e| zip_error(None, e))?;
-        listed_bytes = listed_bytes.saturating_add(raw.compressed_size());
-        if listed_bytes > bytes.len() as u64 {
-            return Err(TensorFileError::BadMember {
-                path: path.to_path_buf(),
-                member: String::from_utf8_lossy(raw.name_raw()).into_owned(),
-                problem: shared_bytes(listed_bytes, bytes.len() as u64),
-            });
-        }
+    let file_len = bytes.len() as u64;
+    if let Some((member, listed)) =
+        sharing_member(&mut archive, file_len).map_err(|e| zip_error(None, e))?
+    {
+        return Err(TensorFileError::BadMember {
+            path: path.to_path_buf(),
+            member,
+            problem: shared_bytes(listed, file_len),
+        });
     }
 
     let mut tensors = Vec::with_capacity(archive.len());
@@ -196,6 +192,27 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
     Ok(tensors)
 }
 
+/// The member at which the archive's listed member bytes pass the file's `file_len`, with the
+/// count so far: `Some` when its directory lists some bytes under several names (what
+/// [`shared_bytes`] says); read from the directory and local headers alone, before any member.
+fn sharing_member<R: Read + std::io::Seek>(
+    archive: &mut ZipArchive<R>,
+    file_len: u64,
+) -> zip::result::ZipResult<Option<(String, u64)>> {
+    let mut listed = 0u64;
+    for index in 0..archive.len() {
+        let raw = archive.by_index_raw(index)?;
+        listed = listed.saturating_add(raw.compressed_size());
+        if listed > file_len {
+            return Ok(Some((
+                String::from_utf8_lossy(raw.name_raw()).into_owned(),
+                listed,
+            )));
+        }
+    }
+    Ok(None)
+}
+
 /// What is wrong with an archive whose members' bytes add up to more than the file holds: its
 /// directory lists some bytes under several names, and each name would be read (and widened)
 /// again — a file of a few kilobytes could ask for gigabytes.
@@ -223,12 +240,7 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor,
         return None;
     }
     // Members sharing bytes: the whole-file read says what is wrong.
-    let mut listed_bytes = 0u64;
-    for index in 0..archive.len() {
-        listed_bytes =
-            listed_bytes.saturating_add(archive.by_index_raw(index).ok()?.compressed_size());
-    }
-    if listed_bytes > file_len {
+    if sharing_member(&mut archive, file_len).ok()?.is_some() {
         return None;
     }
     let mut tensors = Vec::with_capacity(archive.len());
