@@ -102,8 +102,9 @@ fn sequence_norms() -> Graph {
 
 /// For every entry and steps from 1e-6 to 3: the kink test of the check's tail
 /// (`moved_loss_in`, one workspace) and of `forward_moved` against a whole pass's branches.
-/// Returns how many steps crossed and how many did not.
-fn kink_tests_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) -> (usize, usize) {
+/// Returns how many steps crossed and how many did not. graph_tails.rs runs it on its
+/// residual CNN.
+pub(crate) fn kink_tests_agree<S: LayerScalar>(g: &Graph, seed: u64, what: &str) -> (usize, usize) {
     let mut rng = Rng::new(seed);
     let params = random_params(g, &mut rng);
     let (x, y) = (random_x(g, 4, &mut rng), random_y(g, 4, &mut rng));

@@ -5,11 +5,12 @@
 //! f32 — except a conv or dense layer whose input changed in few channels, which updates its
 //! base output by their change (`Layer::forward_units`): equal up to the rounding of its sums.
 
-use crate::graph_common::{random_params, random_x, random_y};
+use crate::graph_common::{random_params, random_x};
+use crate::graph_tail_kinks::kink_tests_agree;
 use ndarray::ArrayD;
 use plumb_engine::graph::{
     Add, BatchNorm, Conv, ConvSettings, Dense, GlobalAvgPool, Graph, GraphBuilder, LayerNorm,
-    LayerScalar, LossConfig, Moved, Padding, Pool, PoolKind, RmsNorm, Shape, Workspace,
+    LayerScalar, LossConfig, Moved, Padding, Pool, PoolKind, RmsNorm, Shape,
 };
 use plumb_engine::{Activation, Rng};
 
@@ -172,40 +173,7 @@ fn residual_cnn() -> Graph {
 /// verdicts occur, so a test that missed crossings, or saw crossings that are not there, fails.
 #[test]
 fn the_kink_test_over_recomputed_channels_matches_a_whole_pass() {
-    let g = residual_cnn();
-    let mut rng = Rng::new(11);
-    let p = random_params(&g, &mut rng);
-    let (x, y) = (random_x(&g, 4, &mut rng), random_y(&g, 4, &mut rng));
-    let base = g.forward(&p, x.view());
-    let before = g.branches(&base);
-    let l2 = g.l2_sum(&p);
-    let mut ws = Workspace::new();
-    let (mut crossed, mut kept) = (0, 0);
-    for (t, spec) in g.tensors().iter().enumerate() {
-        for k in 0..p[t].len() {
-            for d in [1e-6, -1e-3, 0.05, -0.4, 3.0] {
-                let moved = Moved {
-                    tensor: t,
-                    index: k,
-                    delta: d,
-                };
-                let mut q = p.clone();
-                q[t].as_slice_mut().unwrap()[k] += d;
-                let after = g.branches(&g.forward(&q, x.view()));
-                let whole = !before.changed(&after).is_empty();
-                g.moved_loss_in(&mut ws, &p, x.view(), &base, y.view(), l2, &moved);
-                let at = format!("{}[{k}] δ {d}", spec.name);
-                assert_eq!(g.tail_crossed(&base, ws.tail().unwrap()), whole, "{at}");
-                let tail = g.forward_moved(&p, x.view(), &base, &moved);
-                assert_eq!(g.tail_crossed(&base, &tail), whole, "{at}: forward_moved");
-                if whole {
-                    crossed += 1;
-                } else {
-                    kept += 1;
-                }
-            }
-        }
-    }
+    let (crossed, kept) = kink_tests_agree::<f64>(&residual_cnn(), 11, "residual cnn");
     assert!(crossed > 20 && kept > 20, "{crossed} crossed, {kept} kept");
 }
 
