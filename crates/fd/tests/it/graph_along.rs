@@ -9,28 +9,12 @@
 //! is summed over the moved entries as the check sums it (crates/fd/src/graph_check.rs,
 //! `perturbed_along`). graph_fast.rs holds the f64 side against the plain path's verdicts.
 
-use std::path::Path;
-
-use ndarray::ArrayD;
-use plumb_engine::graph::{Graph, Moving};
-use plumb_engine::{Batch, Init, Rng};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::Rng;
+use plumb_engine::graph::{Graph, Moving, Trace};
 use plumb_fd::{Method, graph_loss_magnitude, loss_noise};
-use plumb_formats::GraphDescription;
 
 use crate::graph_common::{self, Case};
-
-fn demo_cnn() -> Case {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
-    let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
-    let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
-    let b = Batch::graph_synthetic(&d.graph, 8, 1);
-    Case {
-        graph: d.graph,
-        params,
-        x: b.x,
-        y: b.y,
-    }
-}
 
 /// Unit directions from `seed`: one over every tensor, then one per layer with tensors.
 fn directions(g: &Graph, seed: u64) -> Vec<Vec<Vec<f64>>> {
@@ -63,20 +47,65 @@ fn directions(g: &Graph, seed: u64) -> Vec<Vec<Vec<f64>>> {
         .collect()
 }
 
+/// A case in f32 (its parameters and batch rounded to f32), the same values in f64 (exact), the
+/// f32 base pass, and the round-off the check assumes per f32 loss there ([`loss_noise`]).
+struct F32Base {
+    p: Vec<ArrayD<f32>>,
+    p64: Vec<ArrayD<f64>>,
+    x: Array2<f32>,
+    y: Array2<f32>,
+    x64: Array2<f64>,
+    y64: Array2<f64>,
+    base: Trace<f32>,
+    eps: f64,
+    noise: f64,
+    l2: f32,
+}
+
+impl F32Base {
+    fn of(c: &Case) -> F32Base {
+        let g = &c.graph;
+        let p: Vec<ArrayD<f32>> = c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+        let p64: Vec<ArrayD<f64>> = p.iter().map(|t| t.mapv(f64::from)).collect();
+        let (x, y) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
+        let (x64, y64) = (x.mapv(f64::from), y.mapv(f64::from));
+        let base = g.forward(&p, x.view());
+        let base64 = g.forward(&p64, x64.view());
+        let f0 = f64::from(g.loss_of(&p, &base, y.view()));
+        let eps = f64::from(f32::EPSILON);
+        let noise = loss_noise(eps, f0, graph_loss_magnitude(g, &p64, &base64, &y64));
+        let l2 = g.l2_sum(&p);
+        F32Base {
+            p,
+            p64,
+            x,
+            y,
+            x64,
+            y64,
+            base,
+            eps,
+            noise,
+            l2,
+        }
+    }
+}
+
 /// The largest error of the shared change's losses and of their ±t differences, in units of
 /// the assumed per-loss round-off, and the kinds that were a direction's lowest moved layer.
 fn worst_errors(what: &str, c: &Case, seed: u64) -> (f64, f64, Vec<&'static str>) {
     let g = &c.graph;
-    let p: Vec<ArrayD<f32>> = c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
-    let p64: Vec<ArrayD<f64>> = p.iter().map(|t| t.mapv(f64::from)).collect();
-    let (x, y) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
-    let (x64, y64) = (x.mapv(f64::from), y.mapv(f64::from));
-    let base = g.forward(&p, x.view());
-    let base64 = g.forward(&p64, x64.view());
-    let f0 = f64::from(g.loss_of(&p, &base, y.view()));
-    let eps = f64::from(f32::EPSILON);
-    let noise = loss_noise(eps, f0, graph_loss_magnitude(g, &p64, &base64, &y64));
-    let l2 = g.l2_sum(&p);
+    let F32Base {
+        p,
+        p64,
+        x,
+        y,
+        x64,
+        y64,
+        base,
+        eps,
+        noise,
+        l2,
+    } = F32Base::of(c);
     let theta = p64.iter().flatten().fold(0.0f64, |m, v| m.max(v.abs()));
     let h = Method::Central.default_step(theta, eps);
     let (mut per_loss, mut per_difference, mut kinds) = (0.0f64, 0.0f64, Vec::new());
@@ -145,7 +174,7 @@ fn worst_errors(what: &str, c: &Case, seed: u64) -> (f64, f64, Vec<&'static str>
 #[test]
 fn a_directions_shared_change_in_f32_errs_within_the_checks_round_off() {
     let cases = [
-        ("pump-cnn", demo_cnn()),
+        ("pump-cnn", graph_common::demo_cnn()),
         ("norms", graph_common::case(graph_common::norms(), 6, 3)),
         (
             "batch-norm",
@@ -192,16 +221,18 @@ fn a_directions_shared_change_in_f32_errs_within_the_checks_round_off() {
 fn moved_conv_errors(c: &Case) -> (f64, f64, f64, usize) {
     use plumb_engine::graph::Moved;
     let g = &c.graph;
-    let p: Vec<ArrayD<f32>> = c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
-    let p64: Vec<ArrayD<f64>> = p.iter().map(|t| t.mapv(f64::from)).collect();
-    let (x, y) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
-    let (x64, y64) = (x.mapv(f64::from), y.mapv(f64::from));
-    let base = g.forward(&p, x.view());
-    let base64 = g.forward(&p64, x64.view());
-    let f0 = f64::from(g.loss_of(&p, &base, y.view()));
-    let eps = f64::from(f32::EPSILON);
-    let noise = loss_noise(eps, f0, graph_loss_magnitude(g, &p64, &base64, &y64));
-    let l2 = g.l2_sum(&p);
+    let F32Base {
+        p,
+        p64,
+        x,
+        y,
+        x64,
+        y64,
+        base,
+        eps,
+        noise,
+        l2,
+    } = F32Base::of(c);
     let (mut hinted, mut whole, mut pair, mut entries) = (0.0f64, 0.0f64, 0.0f64, 0);
     for (t, spec) in g.tensors().iter().enumerate() {
         if !g.nodes()[spec.layer].layer.kind().starts_with("conv") {
@@ -248,7 +279,7 @@ fn moved_conv_errors(c: &Case) -> (f64, f64, f64, usize) {
 #[test]
 fn a_moved_conv_entry_in_f32_errs_within_the_checks_round_off() {
     for (what, c) in [
-        ("pump-cnn", demo_cnn()),
+        ("pump-cnn", graph_common::demo_cnn()),
         ("conv1d", graph_common::case(graph_common::conv1d(), 6, 5)),
         ("conv2d", graph_common::case(graph_common::conv2d(), 6, 5)),
     ] {

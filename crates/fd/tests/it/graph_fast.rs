@@ -24,16 +24,13 @@
 //! (every kind, random settings) and autograd (fixtures/graph/cases.json; the demo CNN in
 //! tests/it/clients.rs).
 
-use std::path::Path;
-
 use ndarray::ArrayD;
+use plumb_engine::Rng;
 use plumb_engine::graph::Graph;
-use plumb_engine::{Batch, Init, Rng};
 use plumb_fd::{
     Change, ExternalConfig, ExternalResult, GraphCheck, Inside, Method, OutsideTensor, Precision,
     Sample, Status, check_external, check_graph_gradient, graph_loss_magnitude,
 };
-use plumb_formats::GraphDescription;
 
 use crate::graph_common::{self, Case, config};
 
@@ -158,6 +155,22 @@ fn agree_with(what: &str, c: &Case, analytic: &[ArrayD<f64>], k: usize) -> Graph
     fast
 }
 
+/// [`agree`] on a pool of one thread and on a pool of three, for tests that the reports match.
+fn on_one_and_three_threads(
+    what: &str,
+    c: &Case,
+    analytic: &[ArrayD<f64>],
+) -> (GraphCheck, GraphCheck) {
+    let on = |threads: usize| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(|| agree(what, c, analytic))
+    };
+    (on(1), on(3))
+}
+
 /// The engine's gradient, and one with `code` planted in layer `layer`: the same verdicts on
 /// both paths, all matches for the first, mismatches (the same ones) for the second.
 fn both_ways(what: &str, c: &Case, layer: &str, code: &str) {
@@ -202,22 +215,14 @@ fn a_conv_above_a_moved_channel_gives_the_plain_paths_verdicts() {
     both_ways("residual", &c, &second, "channels-swapped");
 }
 
-fn demo_cnn() -> Case {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
-    let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
-    let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
-    let b = Batch::graph_synthetic(&d.graph, 8, 1);
-    Case {
-        graph: d.graph,
-        params,
-        x: b.x,
-        y: b.y,
-    }
-}
-
 #[test]
 fn the_demo_cnn_gives_the_plain_paths_verdicts() {
-    both_ways("pump-cnn", &demo_cnn(), "conv2", "kernel-flipped");
+    both_ways(
+        "pump-cnn",
+        &graph_common::demo_cnn(),
+        "conv2",
+        "kernel-flipped",
+    );
 }
 
 #[test]
@@ -230,7 +235,7 @@ fn a_directions_shared_change_of_z_is_a_pass_at_each_step() {
             "residual",
             graph_common::case(graph_common::residual(), 6, 5),
         ),
-        ("pump-cnn", demo_cnn()),
+        ("pump-cnn", graph_common::demo_cnn()),
     ] {
         let g = &c.graph;
         let x = c.x.view();
@@ -276,7 +281,7 @@ fn the_demo_cnns_directions_find_a_planted_mistake_as_the_plain_path_does() {
     // Eight directions over all tensors and per tensor, every one through the shared change of
     // its lowest layer (conv, batch norm or dense): the plain path's verdicts, all matches for
     // the engine's gradient, mismatches with a mistake planted in norm2's backward pass.
-    let c = demo_cnn();
+    let c = graph_common::demo_cnn();
     let (x, y) = (c.x.view(), c.y.view());
     let right = c.graph.gradient(&c.params, x, y, None).params;
     let r = agree_with("pump-cnn", &c, &right, 8);
@@ -320,14 +325,7 @@ fn a_relu_dense_stack_gives_the_plain_paths_verdicts_on_any_thread_count() {
             .graph
             .gradient(&c.params, c.x.view(), c.y.view(), None)
             .params;
-        let on = |threads: usize| {
-            rayon::ThreadPoolBuilder::new()
-                .num_threads(threads)
-                .build()
-                .unwrap()
-                .install(|| agree(what, &c, &right))
-        };
-        let (one, three) = (on(1), on(3));
+        let (one, three) = on_one_and_three_threads(what, &c, &right);
         assert_eq!(one.coords, three.coords, "{what}");
         let crossed = one.coords.iter().filter(|c| c.retried).count();
         assert!(crossed > 0, "{what}: a step crosses the kink");
@@ -391,14 +389,7 @@ fn a_dense_stack_through_the_response_gives_the_plain_paths_verdicts() {
         assert!(answer.is_some(), "{what}: the default step responds");
         both_ways(what, &c, &named(&c.graph, 1), "bias-rows-shifted");
         let right = c.graph.gradient(&c.params, x, y, None).params;
-        let on = |threads: usize| {
-            rayon::ThreadPoolBuilder::new()
-                .num_threads(threads)
-                .build()
-                .unwrap()
-                .install(|| agree(what, &c, &right))
-        };
-        let (one, three) = (on(1), on(3));
+        let (one, three) = on_one_and_three_threads(what, &c, &right);
         assert_eq!(one.coords, three.coords, "{what}");
         assert_eq!(one.directions, three.directions, "{what}");
         let crossed = one.coords.iter().filter(|c| c.retried).count();

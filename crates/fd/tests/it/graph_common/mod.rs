@@ -12,7 +12,7 @@ use plumb_engine::graph::{
     GraphBuilder, Gru, LayerNorm, LossConfig, Lstm, Padding, Pool, PoolKind, RmsNorm, Rnn, Role,
     Shape,
 };
-use plumb_engine::{Activation, Init, Loss, Rng};
+use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_fd::{CheckConfig, GraphCheck, Method, Precision, Status, check_graph};
 use plumb_formats::GraphDescription;
@@ -390,6 +390,21 @@ pub fn config(method: Method, precision: Precision, seed: u64) -> CheckConfig {
     CheckConfig {
         seed,
         ..CheckConfig::new(method, precision)
+    }
+}
+
+/// The demo CNN (examples/pump-cnn.toml) at Glorot-uniform weights from seed 1 and a synthetic
+/// batch of 8.
+pub fn demo_cnn() -> Case {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
+    let d = GraphDescription::read(&root.join("examples/pump-cnn.toml")).unwrap();
+    let params = Init::GlorotUniform.graph_params(&d.graph, &mut Rng::new(1));
+    let b = Batch::graph_synthetic(&d.graph, 8, 1);
+    Case {
+        graph: d.graph,
+        params,
+        x: b.x,
+        y: b.y,
     }
 }
 
