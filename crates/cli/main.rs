@@ -11,7 +11,7 @@ mod progress;
 use std::process::ExitCode;
 
 use clap::Parser;
-use plumb_report::Verdict;
+use plumb_report::{Verdict, visible};
 
 use args::{Cli, Command};
 use output::Settings;
@@ -25,7 +25,7 @@ fn main() -> ExitCode {
         &cli.command.inputs(),
         &cli.command.outputs(),
     ) {
-        eprintln!("plumb: error: {}", message(&e));
+        eprintln!("plumb: error: {}", visible(&message(&e), false));
         return ExitCode::from(2);
     }
     let result = match &cli.command {
@@ -43,7 +43,7 @@ fn main() -> ExitCode {
         Ok(Verdict::Pass) => ExitCode::SUCCESS,
         Ok(Verdict::Fail | Verdict::Inconclusive) => ExitCode::from(1),
         Err(e) => {
-            eprintln!("plumb: error: {}", message(&e));
+            eprintln!("plumb: error: {}", visible(&message(&e), false));
             ExitCode::from(2)
         }
     }

@@ -112,7 +112,7 @@ impl Settings {
     /// A note for the user on stderr (not part of the report), unless --quiet.
     pub fn note(&self, text: &str) {
         if !self.quiet {
-            eprintln!("plumb: {text}");
+            eprintln!("plumb: {}", plumb_report::visible(text, false));
         }
     }
 

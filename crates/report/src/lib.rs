@@ -31,5 +31,7 @@ pub use finding::{Finding, Severity, Verdict, tally};
 pub use html::render_html;
 pub use junit::render_junit;
 pub use plot::{HeatRow, StepPanel, StripSeries, error_strip, heatmap, histogram, step_plot};
-pub use render::{ColorChoice, Format, render_json, render_markdown, render_table, use_color};
+pub use render::{
+    ColorChoice, Format, render_json, render_markdown, render_table, use_color, visible,
+};
 pub use sources::{DataSource, SCHEMA_VERSION, WeightsSource, figure};

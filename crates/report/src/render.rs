@@ -54,6 +54,47 @@ const WIDTH: usize = 100;
 
 /// Writes a document for a terminal: aligned tables, findings worst first, the verdict last.
 pub fn render_table(doc: &Document, out: &mut impl Write, color: bool) -> io::Result<()> {
+    // Rendered whole first, so that text read from files passes through `visible` once.
+    let mut buf = Vec::new();
+    table_into(doc, &mut buf, color)?;
+    out.write_all(visible(&String::from_utf8_lossy(&buf), color).as_bytes())
+}
+
+/// Text safe to write to a terminal: control characters other than a newline and a tab — which
+/// a file's names, keys and fields can carry (an escape sequence that clears the screen or sets
+/// the window's title) — written as visible escapes (`\x1b`, `\u{9b}`), and with `colour` the
+/// renderer's own styling (ESC `[` digits `m`) kept. Every message plumb writes from a file's
+/// bytes goes through it.
+pub fn visible(text: &str, colour: bool) -> std::borrow::Cow<'_, str> {
+    let raw = |c: char| c.is_control() && c != '\n' && c != '\t';
+    if !text.chars().any(raw) {
+        return std::borrow::Cow::Borrowed(text);
+    }
+    let mut out = String::with_capacity(text.len() + 16);
+    let mut rest = text;
+    while let Some(c) = rest.chars().next() {
+        if colour && c == '\x1b' {
+            let style = rest[1..].strip_prefix('[').and_then(|t| {
+                let digits = t.find(|d: char| !(d.is_ascii_digit() || d == ';'))?;
+                t[digits..].starts_with('m').then_some(2 + digits + 1)
+            });
+            if let Some(n) = style {
+                out.push_str(&rest[..n]);
+                rest = &rest[n..];
+                continue;
+            }
+        }
+        match c {
+            c if raw(c) && (c as u32) < 0x80 => out.push_str(&format!("\\x{:02x}", c as u32)),
+            c if raw(c) => out.push_str(&format!("\\u{{{:x}}}", c as u32)),
+            c => out.push(c),
+        }
+        rest = &rest[c.len_utf8()..];
+    }
+    std::borrow::Cow::Owned(out)
+}
+
+fn table_into(doc: &Document, out: &mut impl Write, color: bool) -> io::Result<()> {
     let paint = Paint { on: color };
     writeln!(out, "{}", paint.bold(&doc.title))?;
     for block in &doc.blocks {
@@ -128,6 +169,12 @@ pub fn render_table(doc: &Document, out: &mut impl Write, color: bool) -> io::Re
 
 /// Writes a document as GitHub-flavoured Markdown (for pull-request comments).
 pub fn render_markdown(doc: &Document, out: &mut impl Write) -> io::Result<()> {
+    let mut buf = Vec::new();
+    markdown_into(doc, &mut buf)?;
+    out.write_all(visible(&String::from_utf8_lossy(&buf), false).as_bytes())
+}
+
+fn markdown_into(doc: &Document, out: &mut impl Write) -> io::Result<()> {
     writeln!(out, "# {}", doc.title)?;
     for block in &doc.blocks {
         writeln!(out)?;
@@ -405,6 +452,28 @@ mod tests {
         assert!(err < note, "{s}");
         assert!(s.contains("verdict: FAIL — 1 error"));
         assert!(!s.contains('\x1b'));
+    }
+
+    #[test]
+    fn control_characters_from_files_are_written_as_escapes() {
+        // ECMA-48: ESC [ 2 J erases the display, ESC ] 0 ; … BEL sets a window title, and
+        // U+009B is the one-character CSI; a rendition (ESC [ n m) is what plumb's colour writes.
+        let text = "a\u{1b}[2Jb\u{1b}]0;t\u{7}c\u{9b}d\te\nf";
+        assert_eq!(visible(text, false), "a\\x1b[2Jb\\x1b]0;t\\x07c\\u{9b}d\te\nf");
+        let painted = "\u{1b}[31mred\u{1b}[0m \u{1b}[2J";
+        assert_eq!(visible(painted, true), "\u{1b}[31mred\u{1b}[0m \\x1b[2J");
+        assert_eq!(visible(painted, false), "\\x1b[31mred\\x1b[0m \\x1b[2J");
+        let mut doc = Document::new("t\u{1b}[2J");
+        doc.push(Block::Text("x\u{7}".into()));
+        for colour in [false, true] {
+            let mut out = Vec::new();
+            render_table(&doc, &mut out, colour).unwrap();
+            let out = String::from_utf8(out).unwrap();
+            assert!(!out.contains('\u{7}') && !out.contains("\u{1b}[2J"), "{out:?}");
+        }
+        let mut out = Vec::new();
+        render_markdown(&doc, &mut out).unwrap();
+        assert!(!String::from_utf8(out).unwrap().contains(['\u{1b}', '\u{7}']));
     }
 
     #[test]
