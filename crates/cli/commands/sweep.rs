@@ -168,7 +168,8 @@ fn parse_graph_coords(
     let dense = desc.is_dense();
     let tensors = desc.graph.tensors();
     let names: Vec<&str> = desc.files.iter().map(|f| f.name.as_str()).collect();
-    text.split(',')
+    let parsed = text
+        .split(',')
         .map(|item| {
             let item = item.trim();
             if dense && item.split(':').count() == 3 {
@@ -210,7 +211,18 @@ fn parse_graph_coords(
                 ),
             }
         })
-        .collect()
+        .collect::<Result<Vec<_>>>()?;
+    // A coordinate given twice would be swept and reported twice (and 20,000 times over).
+    let items: Vec<&str> = text.split(',').map(str::trim).collect();
+    let mut first = std::collections::HashMap::new();
+    for (item, c) in items.iter().zip(&parsed) {
+        if let Some(earlier) = first.insert(*c, *item) {
+            bail!(
+                "--coords: `{earlier}` and `{item}` name the same coordinate; give each coordinate once"
+            );
+        }
+    }
+    Ok(parsed)
 }
 
 /// One plot panel per swept coordinate: every method's error against the step.
