@@ -177,6 +177,13 @@ fn foreign(args: &AuditArgs, file: &TensorFile) -> anyhow::Error {
         .take(6)
         .map(|t| format!("`{}` {}", t.name, crate::output::shape(&t.shape)))
         .collect();
+    if found.is_empty() {
+        return anyhow!(
+            "{}: the file holds no tensors; give the weight file of {} (write it with np.savez or safetensors' save_file)",
+            args.weights.display(),
+            args.net.display()
+        );
+    }
     anyhow!(
         "{}: none of its tensors fits {} in any layout (it holds {}); these weights belong to another network — run `plumb shapes` to compare",
         args.weights.display(),
