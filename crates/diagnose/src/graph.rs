@@ -24,7 +24,7 @@ use crate::judge::{Expected, TensorJudgement, Tolerances, judge};
 use plumb_formats::Tensor;
 
 /// The name the input gradient goes by among the tensors.
-pub const INPUT: &str = "input";
+pub const INPUT: &str = plumb_formats::INPUT_GRADIENT;
 
 /// A graph at given parameters and batch, with its reference gradient: the source of the graph's
 /// hypotheses.

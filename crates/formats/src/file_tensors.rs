@@ -13,6 +13,9 @@ use crate::settings::{KindSettings, LayerSettings};
 use crate::tensor::shape_text;
 use crate::{AxisOrder, DType, FileFormat, GraphDescription, Layout, Tensor, TensorFile};
 
+/// The name a gradient file gives the input gradient (DESIGN §5); no parameter may take it.
+pub const INPUT_GRADIENT: &str = "input";
+
 /// How a file tensor lays out what it holds.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub enum FileStorage {
@@ -294,7 +297,7 @@ impl GraphDescription {
         let mut shape = vec![input.nrows()];
         shape.extend(self.graph.input().dims());
         Tensor {
-            name: "input".into(),
+            name: INPUT_GRADIENT.into(),
             shape,
             dtype: DType::F64,
             data: input.iter().copied().collect(),

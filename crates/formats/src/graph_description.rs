@@ -9,6 +9,7 @@ use plumb_engine::graph::{
 };
 use plumb_engine::{Activation, Conventions};
 
+use crate::file_tensors::INPUT_GRADIENT;
 use crate::file_tensors::{FileTensor, file_tensors};
 use crate::settings::{self, KeySpans, KindSettings, LayerSettings, Parsed};
 use crate::walk::Walk;
@@ -354,6 +355,22 @@ fn check_distinct(w: &Walk<'_>, p: &Parsed, files: &[FileTensor]) -> Result<(), 
         && p.layers
             .iter()
             .all(|l| matches!(l.kind, KindSettings::Dense { .. }));
+    // A gradient file's tensor `input` is the input gradient (DESIGN §5): a parameter of that
+    // name would be read as one, and `grad -o` would write a file `compare` refuses.
+    if let Some(a) = files.iter().find(|f| f.name == INPUT_GRADIENT) {
+        let spans = &p.spans[a.layer];
+        let at = ["weight", "bias", "name"]
+            .iter()
+            .find_map(|k| spans.keys.iter().find(|(key, _)| key == k))
+            .map_or(spans.header.clone(), |(_, r)| r.clone());
+        return Err(w.error(
+            Some(at),
+            format!(
+                "layer {}'s tensor would be named `{INPUT_GRADIENT}`, the name gradient files keep for the input gradient; give the layer another `name`",
+                a.layer + 1
+            ),
+        ));
+    }
     let mut first = std::collections::HashMap::with_capacity(files.len());
     for (i, a) in files.iter().enumerate() {
         if let Some(b) = first.insert(a.name.as_str(), i).map(|j| &files[j]) {
