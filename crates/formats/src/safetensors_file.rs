@@ -14,12 +14,20 @@ use crate::tensor::{DType, Tensor, TensorFileError};
 
 /// Read every tensor, in the order of their data offsets (the order they were written in).
 pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileError> {
-    let (header_len, metadata) =
-        SafeTensors::read_metadata(bytes).map_err(|source| TensorFileError::Safetensors {
-            path: path.to_path_buf(),
-            hint: hint(&source),
-            source,
-        })?;
+    let (header_len, metadata) = SafeTensors::read_metadata(bytes).map_err(|source| {
+        // JSON keeps the last of a repeated name, and the crate then blames the offsets.
+        match repeated_name(bytes) {
+            Some(tensor) => TensorFileError::RepeatedName {
+                path: path.to_path_buf(),
+                tensor,
+            },
+            None => TensorFileError::Safetensors {
+                path: path.to_path_buf(),
+                hint: hint(&source),
+                source,
+            },
+        }
+    })?;
     let data_start = 8 + header_len;
     let mut tensors = Vec::new();
     for name in metadata.offset_keys() {
@@ -77,6 +85,34 @@ fn gloss(dtype: Dtype) -> &'static str {
         Dtype::C64 => "complex",
         _ => "a float format narrower than 16 bits",
     }
+}
+
+/// The first name the header's top-level object gives twice, if its JSON reads that far.
+fn repeated_name(bytes: &[u8]) -> Option<String> {
+    use serde::de::{Deserializer, IgnoredAny, MapAccess, Visitor};
+    struct Keys;
+    impl<'de> Visitor<'de> for Keys {
+        type Value = Option<String>;
+        fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+            f.write_str("a JSON object")
+        }
+        fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Option<String>, A::Error> {
+            let mut seen = std::collections::HashSet::new();
+            while let Some(key) = map.next_key::<String>()? {
+                if !seen.insert(key.clone()) {
+                    return Ok(Some(key));
+                }
+                map.next_value::<IgnoredAny>()?;
+            }
+            Ok(None)
+        }
+    }
+    let len = usize::try_from(u64::from_le_bytes(bytes.get(..8)?.try_into().ok()?)).ok()?;
+    let header = bytes.get(8..8usize.checked_add(len)?)?;
+    serde_json::Deserializer::from_slice(header)
+        .deserialize_map(Keys)
+        .ok()
+        .flatten()
 }
 
 /// What the crate's error most likely means for the user.

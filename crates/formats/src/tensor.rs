@@ -378,6 +378,13 @@ pub enum TensorFileError {
     )]
     WriteDType { path: PathBuf, dtype: DType },
 
+    #[error(
+        "{}: the safetensors header names the tensor `{tensor}` twice; each tensor needs a name \
+         of its own: write the file again with safetensors' save_file",
+        .path.display()
+    )]
+    RepeatedName { path: PathBuf, tensor: String },
+
     #[error("{}: cannot write tensor `{tensor}`: {problem}", .path.display())]
     BadTensor {
         path: PathBuf,
@@ -404,6 +411,7 @@ impl TensorFileError {
             | TensorFileError::DuplicateMembers { path }
             | TensorFileError::Safetensors { path, .. }
             | TensorFileError::WriteDType { path, .. }
+            | TensorFileError::RepeatedName { path, .. }
             | TensorFileError::BadTensor { path, .. } => path,
         }
     }
