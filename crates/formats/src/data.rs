@@ -95,6 +95,14 @@ pub enum DataError {
     Unterminated { path: PathBuf, line: u64 },
 
     #[error(
+        "{}: line {line}: a quoted field opened on this line is not closed before the line \
+         ends, so the lines after it were read into that field; close the quote, or double a \
+         quote inside a field",
+        .path.display()
+    )]
+    OpenQuote { path: PathBuf, line: u64 },
+
+    #[error(
         "{}: line {line}: the {samples} samples before this line already hold {} of values{}; \
          a gradient check needs a batch, not a whole data set: save a few hundred samples \
          (e.g. `head -n 1001 {}` for the header and 1,000 rows)",
@@ -352,6 +360,13 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
         // An empty line yields no record at all; any other row of the wrong number of fields is
         // an error, a row holding only `""` included (it is not a sample, and dropping it would
         // change the batch silently).
+        // No number spans lines: a field that does swallowed them behind an open quote.
+        if record.iter().any(|f| f.contains(['\n', '\r'])) {
+            return Err(DataError::OpenQuote {
+                path: path.to_path_buf(),
+                line,
+            });
+        }
         if record.len() != columns {
             return Err(DataError::Ragged {
                 path: path.to_path_buf(),
