@@ -217,6 +217,20 @@ impl GraphBuilder {
             name: name.clone(),
             source,
         })?;
+        // Token ids are indices: only an embedding looks them up. Any other kind would compute
+        // with them as values and hand an embedding above it ids that are no longer ids.
+        if matches!(input, Shape::Tokens { .. }) && built.kind() != "embedding" {
+            return Err(GraphError::Layer {
+                layer,
+                name,
+                source: ShapeError::Input {
+                    kind: built.kind(),
+                    needs: "float values",
+                    found: input,
+                    fix: "token ids are indices, not values: put an embedding first",
+                },
+            });
+        }
         let tap = match built.tap() {
             None => None,
             Some(from) => {
