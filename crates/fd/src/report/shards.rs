@@ -45,8 +45,12 @@ struct Shard<P> {
 /// of this schema version with a `shard` and its coordinates.
 fn header(path: &Path, bytes: &[u8]) -> Result<Value, ShardError> {
     let at = path.display();
-    let v: Value = serde_json::from_slice(bytes)
-        .map_err(|e| ShardError(format!("{at}: not a JSON report: {e}")))?;
+    let v: Value = serde_json::from_slice(bytes).map_err(|e| {
+        ShardError(format!(
+            "{at}: not a JSON report ({e}): the file is cut short or was edited; run that \
+                 share of the check again (--shard K/N --format json)"
+        ))
+    })?;
     if v["command"] != "check" {
         return refuse(format!("{at}: not a `plumb check` report"));
     }
@@ -93,8 +97,12 @@ impl<P: DeserializeOwned> Shard<P> {
         let dirs = v["directions"].take();
         v["coordinates"] = Value::Null;
         v["directions"] = Value::Array(Vec::new());
-        let mut report = CheckReport::<CoordReport<P>>::deserialize(&v)
-            .map_err(|e| ShardError(format!("{at}: not a check report as plumb writes it: {e}")))?;
+        let mut report = CheckReport::<CoordReport<P>>::deserialize(&v).map_err(|e| {
+            ShardError(format!(
+                "{at}: not a check report as plumb writes it ({e}): the shard was edited; \
+                     run that share of the check again"
+            ))
+        })?;
         report.coordinates = Some(items(&coords, "coordinate", &at)?);
         report.directions = items(&dirs, "direction", &at)?;
         let (k, n) = match report.shard {
@@ -128,12 +136,21 @@ fn items<T: for<'de> Deserialize<'de>>(
     at: &impl std::fmt::Display,
 ) -> Result<Vec<T>, ShardError> {
     let Some(list) = list.as_array() else {
-        return refuse(format!("{at}: the {what}s are not a list"));
+        return refuse(format!(
+            "{at}: the {what}s are not a list: the shard was edited; run that share of the \
+             check again"
+        ));
     };
     list.iter()
         .enumerate()
         .map(|(j, item)| {
-            T::deserialize(item).map_err(|e| ShardError(format!("{at}: {what} {}: {e}", j + 1)))
+            T::deserialize(item).map_err(|e| {
+                ShardError(format!(
+                    "{at}: {what} {}: {e}: the shard was edited; run that share of the check \
+                     again",
+                    j + 1
+                ))
+            })
         })
         .collect()
 }
