@@ -88,6 +88,15 @@ pub fn check_output(path: &Path, force: bool, inputs: &[&Path]) -> Result<()> {
             i.display()
         );
     }
+    // The directory it goes in, found out now rather than after the whole run.
+    let parent = path.parent().filter(|p| !p.as_os_str().is_empty());
+    if let Some(dir) = parent.filter(|d| !d.is_dir()) {
+        bail!(
+            "{}: the directory {} does not exist; create it, or write the output elsewhere",
+            path.display(),
+            dir.display()
+        );
+    }
     // What is at the path itself: a dangling symbolic link exists as much as a file does.
     if let Ok(meta) = std::fs::symlink_metadata(path) {
         let kind = meta.file_type();
