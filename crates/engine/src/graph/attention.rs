@@ -114,6 +114,16 @@ impl Kind for Attention {
         }
     }
 
+    /// The weights of every head (heads × steps², and one head's scores as they are formed)
+    /// and the four projections' steps × width.
+    fn held(&self) -> usize {
+        let t = self.seq.steps;
+        let square = t.saturating_mul(t);
+        square
+            .saturating_mul(self.heads.saturating_add(1))
+            .saturating_add(t.saturating_mul(self.seq.width).saturating_mul(4))
+    }
+
     fn params(&self) -> Vec<ParamSpec> {
         let w = self.seq.width;
         PROJECTIONS

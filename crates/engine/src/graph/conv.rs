@@ -693,6 +693,21 @@ impl Kind for Conv {
             .with_spatial(self.settings.channels, self.window.output)
     }
 
+    /// The window matrix (input channels × taps × output positions), the padded input and z.
+    fn held(&self) -> usize {
+        let w = &self.window;
+        let padded =
+            (w.input[0] + w.before[0] + w.after[0]) * (w.input[1] + w.before[1] + w.after[1]);
+        let positions = w.output[0] * w.output[1];
+        let window = w
+            .channels
+            .saturating_mul(w.taps())
+            .saturating_mul(positions);
+        window
+            .saturating_add(w.channels.saturating_mul(padded))
+            .saturating_add(self.settings.channels.saturating_mul(positions))
+    }
+
     fn params(&self) -> Vec<ParamSpec> {
         let taps = self.window.taps();
         let mut specs = vec![ParamSpec {

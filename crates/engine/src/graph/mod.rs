@@ -167,6 +167,12 @@ pub trait Kind: Send + Sync + Debug {
     fn input(&self) -> Shape;
     /// One sample's shape coming out.
     fn output(&self) -> Shape;
+    /// Values one sample's pass holds at once besides its input and output — saved tensors and
+    /// scratch (a convolution's window matrix, attention's weights, a recurrent layer's states
+    /// and gates over every step): what a caller budgets before a pass allocates them.
+    fn held(&self) -> usize {
+        0
+    }
     /// The parameter tensors, in the order [`Layer`] receives them.
     fn params(&self) -> Vec<ParamSpec> {
         Vec::new()

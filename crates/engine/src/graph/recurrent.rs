@@ -160,6 +160,16 @@ impl<C: Cell> Kind for Recurrent<C> {
         self.input
     }
 
+    /// Every step's states and what the cell saves (at most one pre-activation per gate block
+    /// and unit, and the candidate's), and the input in time-major order.
+    fn held(&self) -> usize {
+        let per_step = (self.cell.states() + self.cell.blocks() + 1).saturating_mul(self.units);
+        self.seq
+            .steps
+            .saturating_add(1)
+            .saturating_mul(per_step.saturating_add(self.seq.width))
+    }
+
     fn output(&self) -> Shape {
         match self.output {
             Output::Last => Shape::Flat(self.units),
@@ -265,18 +275,22 @@ impl<S: LayerScalar, C: Cell> Layer<S> for Recurrent<C> {
         let (m, u, steps) = (x.nrows(), self.units, self.seq.steps);
         let ns = self.cell.states();
         let mut states = Array4::zeros((steps + 1, ns, m, u));
-        let mut saved = Vec::with_capacity(steps);
+        // What the cell saves goes straight into one array (its width known from the first
+        // step): no array per step, and no second copy to stack them.
+        let mut saved: Option<Array3<S>> = None;
         let mut prev = self.zeros(m);
         for t in 0..steps {
             let (next, kept) = self.cell.forward(params, xs.index_axis(Axis(0), t), &prev);
             for (k, state) in next.iter().enumerate() {
                 states.slice_mut(s![t + 1, k, .., ..]).assign(state);
             }
-            saved.push(kept);
+            saved
+                .get_or_insert_with(|| Array3::zeros((steps, kept.nrows(), kept.ncols())))
+                .index_axis_mut(Axis(0), t)
+                .assign(&kept);
             prev = next;
         }
-        let views: Vec<_> = saved.iter().map(|a| a.view()).collect();
-        let saved = ndarray::stack(Axis(0), &views).expect("same shape every step");
+        let saved = saved.unwrap_or_else(|| Array3::zeros((0, m, 0)));
         let out = match self.output {
             Output::Last => reshape(prev.swap_remove(0), (m, u)),
             Output::All => {

@@ -160,12 +160,13 @@ impl GraphLoaded {
                 path: where_data,
                 message: format!("the data does not fit the network: {e}"),
             })?;
-        let per_sample: usize = graph.input().size()
-            + graph
+        let per_sample: usize = graph.input().size().saturating_add(
+            graph
                 .nodes()
                 .iter()
-                .map(|n| n.layer.output().size())
-                .sum::<usize>();
+                .map(|n| n.layer.output().size().saturating_add(n.layer.held()))
+                .fold(0usize, usize::saturating_add),
+        );
         let values = batch.len().checked_mul(2 * per_sample);
         if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
             return Err(GraphLoadError::Input {
