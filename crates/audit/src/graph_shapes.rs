@@ -127,9 +127,7 @@ pub fn audit_graph_shapes(desc: &GraphDescription, file: Option<&TensorFile>) ->
         } else {
             "remove it, or check the layer names"
         };
-        for s in &unexpected {
-            findings.push(s.finding(fix));
-        }
+        findings.extend(StrayTensor::findings(&unexpected, fix));
     }
 
     let layers = desc

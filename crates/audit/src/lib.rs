@@ -50,7 +50,7 @@ pub use init::{
 };
 pub use release::{Audit, Thresholds, verdict_at};
 pub use robust::{Moments, largest, moments, moments_of, norm};
-pub use shapes::{LayerShapes, LayerTerms, Status, StrayTensor, TensorShape};
+pub use shapes::{LayerShapes, LayerTerms, STRAY_LISTED, Status, StrayTensor, TensorShape};
 pub use symmetry::SymmetricGroup;
 pub use units::{unit_ranges, units_phrase};
 pub use values::{Values, values_findings};

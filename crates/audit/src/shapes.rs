@@ -115,6 +115,9 @@ impl LayerTerms {
     }
 }
 
+/// Unused tensors named one by one in findings, tables and test cases; the rest are counted.
+pub const STRAY_LISTED: usize = 50;
+
 /// A tensor in the file that no layer uses.
 #[derive(Clone, Debug, Serialize)]
 pub struct StrayTensor {
@@ -138,6 +141,28 @@ impl StrayTensor {
                 .collect()
         })
         .unwrap_or_default()
+    }
+
+    /// The findings for `stray`: one per tensor up to [`STRAY_LISTED`], then one for the rest, so
+    /// that a file of 200,000 unused tensors does not make a report hundreds of times its size
+    /// (the JSON report's `unexpected` list still names every one).
+    pub(crate) fn findings(stray: &[StrayTensor], fix: &str) -> Vec<Finding> {
+        let mut out: Vec<Finding> = stray
+            .iter()
+            .take(STRAY_LISTED)
+            .map(|s| s.finding(fix))
+            .collect();
+        if stray.len() > STRAY_LISTED {
+            out.push(Finding::new(
+                "tensor-unexpected",
+                Severity::Error,
+                format!(
+                    "{} more tensors are in the file that no layer of the description uses (the JSON report's `unexpected` list names them all); for each: {fix}",
+                    stray.len() - STRAY_LISTED
+                ),
+            ));
+        }
+        out
     }
 
     /// The error finding that names this tensor; `fix` says how to make a layer use it.

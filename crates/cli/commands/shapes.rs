@@ -5,7 +5,8 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use plumb_audit::{
-    GraphShapeAudit, LayerShapes, Status, StrayTensor, TensorShape, audit_graph_shapes,
+    GraphShapeAudit, LayerShapes, STRAY_LISTED, Status, StrayTensor, TensorShape,
+    audit_graph_shapes,
 };
 use plumb_formats::{GraphDescription, TensorFile, read_tensors};
 use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
@@ -77,7 +78,7 @@ pub fn tensor_cases<'a>(
         }
         out.push(c);
     }
-    for s in unexpected {
+    for s in unexpected.iter().take(STRAY_LISTED) {
         out.push(
             Case::new(format!("shape {}", s.name), false)
                 .about(&s.name)
@@ -257,7 +258,7 @@ fn layers_table(
             ]));
         }
     }
-    for s in unexpected {
+    for s in unexpected.iter().take(STRAY_LISTED) {
         t.push(row([
             Cell::from("—"),
             Cell::from(""),
