@@ -124,6 +124,10 @@ pub enum CheckError {
     BadGradient,
     #[error("the parameters do not fit the network: {0}")]
     BadParams(String),
+    /// A value the check's precision cannot hold, or a loss or gradient that is not finite
+    /// there: no difference of losses can be judged (the message says which and what to do).
+    #[error("{0}")]
+    Unusable(String),
 }
 
 /// The verdict on one coordinate or direction.

@@ -82,20 +82,68 @@ pub fn check_graph(
     progress: Progress<'_>,
 ) -> Result<GraphCheck, CheckError> {
     fits(graph, params, x, y)?;
-    let analytic = match config.precision {
-        Precision::F64 => graph.parameter_gradient(params, x, y, None).1,
+    if config.precision == Precision::F32 {
+        beyond_f32(graph, params, x, y)?;
+    }
+    let (loss, analytic) = match config.precision {
+        Precision::F64 => graph.parameter_gradient(params, x, y, None),
         Precision::F32 => {
             let p: Vec<ArrayD<f32>> = params.iter().map(|t| t.mapv(|v| v as f32)).collect();
             let (xs, ys) = (x.mapv(|v| v as f32), y.mapv(|v| v as f32));
-            graph
-                .parameter_gradient(&p, xs.view(), ys.view(), None)
-                .1
-                .iter()
-                .map(|g| g.mapv(f64::from))
-                .collect()
+            let (loss, g) = graph.parameter_gradient(&p, xs.view(), ys.view(), None);
+            (
+                f64::from(loss),
+                g.iter().map(|g| g.mapv(f64::from)).collect(),
+            )
         }
     };
+    if !loss.is_finite() {
+        return Err(CheckError::Unusable(format!(
+            "the loss at these weights is {loss} in {}: a check needs a finite loss; look at the weights' and the data's scale (plumb audit)",
+            config.precision.name()
+        )));
+    }
+    // NaN or ±inf in the gradient (weights so large that the loss overflows): every difference
+    // would be NaN, and NaN against NaN is no verdict on anybody's backward pass.
+    let tensors = graph.tensors();
+    if let Some(t) = analytic
+        .iter()
+        .position(|g| g.iter().any(|v| !v.is_finite()))
+    {
+        return Err(CheckError::Unusable(format!(
+            "the reference gradient at these weights is not finite in {} (tensor `{}` holds NaN or an infinity): a check needs a finite loss and gradient; look at the weights' and the data's scale (plumb audit)",
+            config.precision.name(),
+            tensors[t].name
+        )));
+    }
     check_graph_gradient(graph, params, x, y, &analytic, config, progress)
+}
+
+/// Refuses a weight or batch value past f32's largest finite value (about 3.4e38, IEEE 754
+/// binary32): it would be infinite in an f32 check.
+fn beyond_f32(
+    graph: &Graph,
+    params: &[ArrayD<f64>],
+    x: ArrayView2<f64>,
+    y: ArrayView2<f64>,
+) -> Result<(), CheckError> {
+    let past = |v: &f64| v.abs() > f64::from(f32::MAX);
+    let say = |what: String, k: usize, v: f64| {
+        CheckError::Unusable(format!(
+            "{what} index {k} holds {v:e}, past the largest f32 value (3.4e38): check in f64 (--precision f64), or look at its scale (plumb audit)"
+        ))
+    };
+    for (t, p) in params.iter().enumerate() {
+        if let Some((k, v)) = p.iter().enumerate().find(|(_, v)| past(v)) {
+            return Err(say(format!("tensor `{}`", graph.tensors()[t].name), k, *v));
+        }
+    }
+    for (what, a) in [("the data's x", x), ("the data's y", y)] {
+        if let Some((k, v)) = a.iter().enumerate().find(|(_, v)| past(v)) {
+            return Err(say(what.to_string(), k, *v));
+        }
+    }
+    Ok(())
 }
 
 /// Checks a given gradient (the engine's, a planted mistake's, a corrupted copy, an outside one)

@@ -45,7 +45,17 @@ pub fn graph_check_report(
         b.y.view(),
         config,
         progress,
-    )?;
+    )
+    .map_err(|e| match e {
+        CheckError::Unusable(why) => {
+            let from = match &loaded.data_source {
+                _ if !why.starts_with("the data") => loaded.weights_source.describe(),
+                data => data.describe(),
+            };
+            CheckError::Unusable(format!("{from}: {why}"))
+        }
+        other => other,
+    })?;
     let facts = super::RunFacts {
         description: loaded.desc.path.clone(),
         description_hash: loaded.description_hash.clone(),
