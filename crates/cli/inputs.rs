@@ -5,7 +5,7 @@ use std::path::Path;
 
 use anyhow::{Context, Result, bail};
 use plumb_audit::refuse_misfit;
-use plumb_engine::Init;
+use plumb_engine::{Features, Init};
 use plumb_fd::report::{GraphInputs, GraphLoaded};
 use plumb_formats::{AxisOrder, DType, FileFormat, GraphDescription};
 use plumb_report::NetworkId;
@@ -39,6 +39,24 @@ pub fn init_scheme(arg: InitArg) -> Init {
 /// the dimension audit, or drawn from the seed), its batch (a file or drawn from the seed) and
 /// the network's identity for baselines.
 pub fn load_graph(inputs: &Inputs, seed: u64) -> Result<(GraphLoaded, NetworkId)> {
+    load_graph_with(inputs, seed, |desc, inputs| {
+        Ok(GraphLoaded::load_vetted(desc, inputs, &refuse_misfit)?)
+    })
+}
+
+/// [`load_graph`], with a data file's flat f32 x kept in f32 (`plumb grad`'s whole-batch
+/// gradient reads it so).
+pub fn load_graph_kept(inputs: &Inputs, seed: u64) -> Result<(GraphLoaded<Features>, NetworkId)> {
+    load_graph_with(inputs, seed, |desc, inputs| {
+        Ok(GraphLoaded::load_kept(desc, inputs, &refuse_misfit)?)
+    })
+}
+
+fn load_graph_with<X>(
+    inputs: &Inputs,
+    seed: u64,
+    load: impl FnOnce(GraphDescription, &GraphInputs) -> Result<GraphLoaded<X>>,
+) -> Result<(GraphLoaded<X>, NetworkId)> {
     let desc = GraphDescription::read(&inputs.net)?;
     if inputs.channels_last && desc.is_dense() {
         bail!(
@@ -60,7 +78,7 @@ pub fn load_graph(inputs: &Inputs, seed: u64) -> Result<(GraphLoaded, NetworkId)
         seed,
         samples: inputs.batch.unwrap_or(DEFAULT_BATCH),
     };
-    let loaded = GraphLoaded::load_vetted(desc, &graph_inputs, &refuse_misfit)?;
+    let loaded = load(desc, &graph_inputs)?;
     let id = network_id(&loaded.desc);
     Ok((loaded, id))
 }

@@ -10,7 +10,7 @@ use plumb_formats::{DType, FileFormat, write_tensor_file};
 use plumb_report::{Block, Case, Cell, Document, Table, Tone, Verdict};
 
 use crate::args::{DTypeArg, GradArgs};
-use crate::inputs::{WeightsSource, check_output, load_graph, output_format};
+use crate::inputs::{WeightsSource, check_output, load_graph_kept, output_format};
 use crate::output::{Settings, num, shape};
 
 pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
@@ -26,7 +26,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         }
         None => None,
     };
-    let (loaded, network) = load_graph(inputs, settings.seed)?;
+    let (loaded, network) = load_graph_kept(inputs, settings.seed)?;
     let mut computed = graph_gradient_report(&loaded, args.input_gradient)?;
     let weights_source = loaded.weights_source;
     if let (Some(path), Some(format)) = (&args.output, out_format) {

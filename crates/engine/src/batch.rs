@@ -1,17 +1,100 @@
 //! A batch of samples: features and targets, one sample per row.
 
-use ndarray::Array2;
+use ndarray::{Array2, ArrayView2};
 
 use crate::graph::{Graph, Shape};
 use crate::{Activation, Rng, Scalar};
 
 /// Inputs and targets, one sample per row, in f64 as read from a file. For the layer graph, x is
 /// m × the input's size and y m × the output's size, each row in C order of its [`Shape`]
-/// (token ids as whole numbers; an `output = "all"` sequence's targets step by step).
+/// (token ids as whole numbers; an `output = "all"` sequence's targets step by step). `X` is
+/// what holds x: f64 values, or [`Features`] for `plumb grad`, which keeps an f32 file's x in f32.
 #[derive(Clone, Debug, PartialEq)]
-pub struct Batch {
-    pub x: Array2<f64>,
+pub struct Batch<X = Array2<f64>> {
+    pub x: X,
     pub y: Array2<f64>,
+}
+
+impl Batch<Features> {
+    /// Number of samples.
+    pub fn len(&self) -> usize {
+        self.x.inputs().nrows()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+}
+
+/// A batch's x as a file stored it: f64, or f32 kept narrow. A batch of 8,192 images of 784
+/// pixels is 26 MB in f32 and 51 MB widened to f64, all of it fresh pages; a first dense layer
+/// reads the f32 values a block of samples at a time instead ([`Inputs::F32`]).
+#[derive(Clone, Debug, PartialEq)]
+pub enum Features {
+    F64(Array2<f64>),
+    F32(Array2<f32>),
+}
+
+impl Features {
+    /// The values as the whole-batch gradient reads them.
+    pub fn inputs(&self) -> Inputs<'_, f64> {
+        match self {
+            Features::F64(x) => Inputs::Own(x.view()),
+            Features::F32(x) => Inputs::F32(x.view()),
+        }
+    }
+
+    /// The values in f64 (each f32 widened exactly).
+    pub fn into_f64(self) -> Array2<f64> {
+        match self {
+            Features::F64(x) => x,
+            Features::F32(x) => x.mapv(f64::from),
+        }
+    }
+}
+
+/// x of a whole-batch gradient ([`Graph::gradient`]): in the pass's own scalar, or f32 values
+/// that the first layer widens where it reads them (the pass's arithmetic is the same as on the
+/// widened batch: every f32 is exactly an f64).
+#[derive(Clone, Copy, Debug)]
+pub enum Inputs<'a, S> {
+    Own(ArrayView2<'a, S>),
+    F32(ArrayView2<'a, f32>),
+}
+
+impl<'a, S> From<&'a Array2<S>> for Inputs<'a, S> {
+    fn from(x: &'a Array2<S>) -> Self {
+        Inputs::Own(x.view())
+    }
+}
+
+impl<'a> From<&'a Features> for Inputs<'a, f64> {
+    fn from(x: &'a Features) -> Self {
+        x.inputs()
+    }
+}
+
+impl<'a, S> From<ArrayView2<'a, S>> for Inputs<'a, S> {
+    fn from(x: ArrayView2<'a, S>) -> Self {
+        Inputs::Own(x)
+    }
+}
+
+impl<S: Scalar> Inputs<'_, S> {
+    /// The batch in the pass's scalar: a copy widened from f32 (an f32 value is exact in f64).
+    pub fn widened(&self) -> Array2<S> {
+        match self {
+            Inputs::Own(x) => x.to_owned(),
+            Inputs::F32(x) => x.mapv(|v| S::from_f64(f64::from(v))),
+        }
+    }
+
+    pub fn nrows(&self) -> usize {
+        match self {
+            Inputs::Own(x) => x.nrows(),
+            Inputs::F32(x) => x.nrows(),
+        }
+    }
 }
 
 impl Batch {

@@ -35,7 +35,7 @@ mod rng;
 mod scalar;
 
 pub use activation::Activation;
-pub use batch::Batch;
+pub use batch::{Batch, Features, Inputs};
 pub use convention::{Conventions, L2Divisor, Reduction};
 pub use init::Init;
 pub use loss::Loss;

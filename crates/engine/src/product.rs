@@ -7,7 +7,7 @@
 
 use std::any::TypeId;
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::{Array2, ArrayBase, ArrayView2, DataMut, Ix2};
 
 use crate::Scalar;
 
@@ -25,9 +25,10 @@ pub(crate) fn matmul<S: Scalar + 'static>(a: ArrayView2<S>, b: ArrayView2<S>) ->
     c
 }
 
-/// c += a · b (c m × n): a bias placed in c first is added in the same pass.
-pub(crate) fn add_matmul<S: Scalar + 'static>(
-    c: &mut Array2<S>,
+/// c += a · b (c m × n, an array or a view of one): a bias placed in c first is added in the
+/// same pass.
+pub(crate) fn add_matmul<S: Scalar + 'static, D: DataMut<Elem = S>>(
+    c: &mut ArrayBase<D, Ix2>,
     a: ArrayView2<S>,
     b: ArrayView2<S>,
 ) {

@@ -17,13 +17,13 @@
 use std::path::Path;
 
 use ndarray::{Array2, ArrayD, IxDyn};
-use plumb_engine::Batch;
 use plumb_engine::graph::Shape;
+use plumb_engine::{Batch, Features};
 
 use crate::FileFormat;
 use crate::data::{DataError, label, read_csv};
 use crate::tensor::{DType, Tensor};
-use crate::tensor_file::{Seen, read_tensors_seen};
+use crate::tensor_file::{Seen, read_tensors_kept};
 
 /// The axis order of a spatial array in the file.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
@@ -44,6 +44,29 @@ pub fn read_graph_data(
     output: &Shape,
     order: AxisOrder,
 ) -> Result<Batch, DataError> {
+    let Batch { x, y } = read_graph(path, input, output, order, false)?;
+    Ok(Batch { x: x.into_f64(), y })
+}
+
+/// [`read_graph_data`], with a flat x that an archive of stored members (`np.savez`) holds in
+/// f32 kept in f32 ([`Features::F32`]): `plumb grad`'s first dense layer widens it a block of
+/// samples at a time. The same checks and messages; any other x is widened as read.
+pub fn read_graph_data_kept(
+    path: &Path,
+    input: &Shape,
+    output: &Shape,
+    order: AxisOrder,
+) -> Result<Batch<Features>, DataError> {
+    read_graph(path, input, output, order, true)
+}
+
+fn read_graph(
+    path: &Path,
+    input: &Shape,
+    output: &Shape,
+    order: AxisOrder,
+    keep: bool,
+) -> Result<Batch<Features>, DataError> {
     let extension = path
         .extension()
         .and_then(|e| e.to_str())
@@ -64,10 +87,16 @@ pub fn read_graph_data(
         });
     }
     if !csv {
-        return read_npz(path, input, output, order);
+        return read_npz(path, input, output, order, keep);
     }
     let (what, shape) = match (input, output) {
-        (&Shape::Flat(inputs), &Shape::Flat(outputs)) => return read_csv(path, inputs, outputs),
+        (&Shape::Flat(inputs), &Shape::Flat(outputs)) => {
+            let Batch { x, y } = read_csv(path, inputs, outputs)?;
+            return Ok(Batch {
+                x: Features::F64(x),
+                y,
+            });
+        }
         (Shape::Flat(_), _) => ("output", *output),
         _ => ("input", *input),
     };
@@ -195,10 +224,16 @@ fn read_npz(
     input: &Shape,
     output: &Shape,
     order: AxisOrder,
-) -> Result<Batch, DataError> {
-    let (mut file, mut seen) = read_tensors_seen(path)?;
+    keep: bool,
+) -> Result<Batch<Features>, DataError> {
+    // Only a flat x is kept in f32: the engine's dense layer reads it so.
+    let narrow = (keep && matches!(input, Shape::Flat(_))).then_some("x");
+    let (mut file, mut seen, kept) = read_tensors_kept(path, narrow)?;
     debug_assert_eq!(file.format, FileFormat::Npz);
-    let names: Vec<String> = file.tensors.iter().map(|t| t.name.clone()).collect();
+    let mut names: Vec<String> = file.tensors.iter().map(|t| t.name.clone()).collect();
+    if let Some((at, (x, _))) = &kept {
+        names.insert(*at, x.name.clone());
+    }
     let mut take = |name: &'static str| match file.tensors.iter().position(|t| t.name == name) {
         Some(i) => Ok((file.tensors.swap_remove(i), seen.swap_remove(i))),
         None => Err(DataError::MissingArray {
@@ -207,20 +242,40 @@ fn read_npz(
             found: names.clone(),
         }),
     };
-    let ((x, x_seen), (y, y_seen)) = (take("x")?, take("y")?);
     let x_layout = FileLayout::of(input, order, ("features", "feature"));
-    let m = samples_of_x(path, input, order, &x_layout, &x)?;
-    if m == 0 {
-        return Err(DataError::NoSamplesInArray {
-            path: path.to_path_buf(),
-        });
-    }
-    let x = if let Shape::Tokens { vocabulary, .. } = *input {
-        token_ids(path, input, vocabulary, &x_layout, x)?
-    } else {
-        check_finite(path, "x", &x_layout, &x, x_seen)?;
-        to_shape_order(&x_layout, m, x.data)
+    let (x, m, y) = match kept {
+        Some((_, (x, x_seen))) => {
+            let y = take("y")?;
+            let m = samples_of_x(path, input, order, &x_layout, &x.shape)?;
+            if m == 0 {
+                return Err(DataError::NoSamplesInArray {
+                    path: path.to_path_buf(),
+                });
+            }
+            check_finite(path, "x", &x_layout, &x, x_seen)?;
+            let x = to_shape_order(&x_layout, m, x.data);
+            let x = Array2::from_shape_vec((m, input.size()), x).expect("checked shape of x");
+            (Features::F32(x), m, y)
+        }
+        None => {
+            let ((x, x_seen), y) = (take("x")?, take("y")?);
+            let m = samples_of_x(path, input, order, &x_layout, &x.shape)?;
+            if m == 0 {
+                return Err(DataError::NoSamplesInArray {
+                    path: path.to_path_buf(),
+                });
+            }
+            let x = if let Shape::Tokens { vocabulary, .. } = *input {
+                token_ids(path, input, vocabulary, &x_layout, x)?
+            } else {
+                check_finite(path, "x", &x_layout, &x, x_seen)?;
+                to_shape_order(&x_layout, m, x.data)
+            };
+            let x = Array2::from_shape_vec((m, input.size()), x).expect("checked shape of x");
+            (Features::F64(x), m, y)
+        }
     };
+    let (y, y_seen) = y;
 
     let y_order = if is_spatial(output) {
         order
@@ -236,7 +291,7 @@ fn read_npz(
         Targets::Labels { classes, steps } => one_hot(path, &y, classes, steps)?,
     };
     Ok(Batch {
-        x: Array2::from_shape_vec((m, input.size()), x).expect("checked shape of x"),
+        x,
         y: Array2::from_shape_vec((m, output.size()), y).expect("checked shape of y"),
     })
 }
@@ -247,10 +302,10 @@ fn samples_of_x(
     input: &Shape,
     order: AxisOrder,
     layout: &FileLayout,
-    x: &Tensor,
+    x_shape: &[usize],
 ) -> Result<usize, DataError> {
     let dims = layout.dims();
-    match x.shape.split_first() {
+    match x_shape.split_first() {
         Some((&m, rest)) if rest == dims.as_slice() => return Ok(m),
         // A single feature may come as a vector of samples.
         Some((&m, [])) if *input == Shape::Flat(1) => return Ok(m),
@@ -264,11 +319,11 @@ fn samples_of_x(
     if let Shape::Tokens { .. } = input {
         expected.push_str(" of integer token ids");
     }
-    expected.push_str(&other_order(input, order, "x", &x.shape));
+    expected.push_str(&other_order(input, order, "x", x_shape));
     Err(DataError::ArrayShape {
         path: path.to_path_buf(),
         array: "x",
-        shape: x.shape.clone(),
+        shape: x_shape.to_vec(),
         expected,
     })
 }
@@ -376,7 +431,7 @@ fn join(dims: &[usize]) -> String {
 
 /// The values of an array in C order of the engine's shape: permuted when the file's axes are in
 /// another order, moved as they are otherwise.
-fn to_shape_order(layout: &FileLayout, m: usize, data: Vec<f64>) -> Vec<f64> {
+fn to_shape_order<T: Copy>(layout: &FileLayout, m: usize, data: Vec<T>) -> Vec<T> {
     if !layout.permuted() {
         return data;
     }
@@ -388,14 +443,14 @@ fn to_shape_order(layout: &FileLayout, m: usize, data: Vec<f64>) -> Vec<f64> {
     array.permuted_axes(IxDyn(&axes)).iter().copied().collect()
 }
 
-fn check_finite(
+fn check_finite<T: Copy + Into<f64>>(
     path: &Path,
     array: &'static str,
     layout: &FileLayout,
-    tensor: &Tensor,
+    tensor: &Tensor<T>,
     seen: Seen,
 ) -> Result<(), DataError> {
-    let first = seen.unwrap_or_else(|| tensor.data.iter().position(|v| !v.is_finite()));
+    let first = seen.unwrap_or_else(|| tensor.data.iter().position(|&v| !v.into().is_finite()));
     let Some(flat) = first else {
         return Ok(());
     };
@@ -407,7 +462,7 @@ fn check_finite(
         place,
         problem: format!(
             "{} is not finite; data must be finite — remove or impute the sample",
-            tensor.data[flat]
+            tensor.data[flat].into()
         ),
     })
 }

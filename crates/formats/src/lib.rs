@@ -50,7 +50,7 @@ pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 pub use data::{DataError, read_data};
 pub use description::{DescriptionError, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor, INPUT_GRADIENT, LayoutError};
-pub use graph_data::{AxisOrder, read_graph_data};
+pub use graph_data::{AxisOrder, read_graph_data, read_graph_data_kept};
 pub use graph_description::GraphDescription;
 pub use settings::{KINDS, KindSettings, LayerSettings};
 pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, shape_text};

@@ -173,20 +173,20 @@ const PIECE: usize = 128 << 10;
 /// is wrong in the words it always has. With the tensor, where its first value that is not
 /// finite lies (`Some(None)`: all are finite), found while each piece is in cache; `None` for
 /// a column-major member, whose file order is not the tensor's.
-pub(crate) fn read_streamed(
+pub(crate) fn read_streamed<T: Element>(
     path: &Path,
     member: &str,
     name: &str,
     head: &[u8],
     rest: &mut impl Read,
     len: usize,
-) -> Option<(Tensor, Option<Option<usize>>)> {
+) -> Option<(Tensor<T>, Option<Option<usize>>)> {
     let at = At {
         path,
         member: Some(member),
     };
     let d = declared(at, name, head).ok()?;
-    if d.header_end.checked_add(d.needed)? != len {
+    if d.header_end.checked_add(d.needed)? != len || !T::holds(d.header.dtype) {
         return None;
     }
     let (dtype, big_endian) = (d.header.dtype, d.header.big_endian);
@@ -200,16 +200,12 @@ pub(crate) fn read_streamed(
         let n = left.min(PIECE);
         source.read_exact(&mut piece[..n]).ok()?;
         let start = data.len();
-        decode_into(&piece[..n], dtype, big_endian, &mut data);
+        T::decode(&piece[..n], dtype, big_endian, &mut data);
         // Without a branch per value, so that the test vectorises; searched only on a hit.
-        if not_finite.is_none()
-            && !data[start..]
-                .iter()
-                .fold(true, |all, v| all & v.is_finite())
-        {
+        if not_finite.is_none() && !data[start..].iter().fold(true, |all, v| all & v.finite()) {
             not_finite = data[start..]
                 .iter()
-                .position(|v| !v.is_finite())
+                .position(|v| !v.finite())
                 .map(|i| start + i);
         }
         left -= n;
@@ -220,15 +216,61 @@ pub(crate) fn read_streamed(
     Some((tensor, seen.then_some(not_finite)))
 }
 
+/// The dtype a member's header declares, from its first bytes (`None` if they do not parse).
+pub(crate) fn head_dtype(path: &Path, name: &str, head: &[u8]) -> Option<DType> {
+    let at = At { path, member: None };
+    declared(at, name, head).ok().map(|d| d.header.dtype)
+}
+
+/// What a streamed member's values become: f64 from any dtype (widened), or f32 from an f32
+/// member, as stored.
+pub(crate) trait Element: Copy {
+    /// Whether values of `dtype` decode into this type exactly.
+    fn holds(dtype: DType) -> bool;
+    fn decode(bytes: &[u8], dtype: DType, big_endian: bool, out: &mut Vec<Self>);
+    fn finite(self) -> bool;
+}
+
+impl Element for f64 {
+    fn holds(_: DType) -> bool {
+        true
+    }
+    fn decode(bytes: &[u8], dtype: DType, big_endian: bool, out: &mut Vec<f64>) {
+        decode_into(bytes, dtype, big_endian, out);
+    }
+    fn finite(self) -> bool {
+        self.is_finite()
+    }
+}
+
+impl Element for f32 {
+    fn holds(dtype: DType) -> bool {
+        dtype == DType::F32
+    }
+    fn decode(bytes: &[u8], _: DType, big_endian: bool, out: &mut Vec<f32>) {
+        out.extend(bytes.chunks_exact(4).map(|chunk| {
+            let raw: [u8; 4] = chunk.try_into().expect("chunks_exact yields 4 bytes");
+            if big_endian {
+                f32::from_be_bytes(raw)
+            } else {
+                f32::from_le_bytes(raw)
+            }
+        }));
+    }
+    fn finite(self) -> bool {
+        self.is_finite()
+    }
+}
+
 /// The tensor of a parsed header and its values in file order (column-major ones laid out in
 /// row-major order).
-fn tensor(
+fn tensor<T: Copy>(
     at: At<'_>,
     name: &str,
     header_start: usize,
     header: Header,
-    mut data: Vec<f64>,
-) -> Result<Tensor, TensorFileError> {
+    mut data: Vec<T>,
+) -> Result<Tensor<T>, TensorFileError> {
     if header.fortran_order && header.shape.len() > 1 {
         // Lay the column-major values out under their logical index, then walk that index in
         // row-major order. The length was checked by the caller, so the shape always fits.

@@ -233,7 +233,11 @@ const HEAD: usize = 4096;
 /// when the archive is anything else — a deflated or damaged member, a duplicate or odd name,
 /// a failed read: the caller then reads the file whole and [`read`] reports what it finds.
 /// With each tensor, what [`npy::read_streamed`] found of its values' finiteness.
-pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor, Seen)>> {
+pub(crate) fn read_streamed(
+    path: &Path,
+    file: &mut File,
+    narrow: Option<&str>,
+) -> Option<Streamed> {
     let file_len = file.metadata().ok()?.len();
     let mut archive = ZipArchive::new(&mut *file).ok()?;
     if archive.has_duplicate_names() {
@@ -243,7 +247,10 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor,
     if sharing_member(&mut archive, file_len).ok()?.is_some() {
         return None;
     }
-    let mut tensors = Vec::with_capacity(archive.len());
+    let mut read = Streamed {
+        tensors: Vec::with_capacity(archive.len()),
+        narrow: None,
+    };
     let mut names = HashSet::new();
     for index in 0..archive.len() {
         let raw = archive.by_index_raw(index).ok()?;
@@ -272,13 +279,28 @@ pub(crate) fn read_streamed(path: &Path, file: &mut File) -> Option<Vec<(Tensor,
         };
         let mut head = vec![0; len.min(HEAD)];
         content.read_exact(&mut head).ok()?;
-        let read = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
+        let kept = narrow == Some(name.as_str())
+            && npy::head_dtype(path, &name, &head).is_some_and(<f32 as npy::Element>::holds);
+        if kept {
+            let member = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
+            read.narrow = Some((read.tensors.len(), member));
+        } else {
+            let member = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
+            read.tensors.push(member);
+        }
         if content.crc.finalize() != crc {
             return None;
         }
-        tensors.push(read);
     }
-    Some(tensors)
+    Some(read)
+}
+
+/// The members of a streamed archive: each widened to f64 with what was seen of its values'
+/// finiteness, and the member asked for in f32 when it is stored in f32, with the number of
+/// members before it in the archive.
+pub(crate) struct Streamed {
+    pub tensors: Vec<(Tensor, Seen)>,
+    pub narrow: Option<(usize, (Tensor<f32>, Seen))>,
 }
 
 /// A reader that keeps the CRC-32 of what it has read (the archive's checksum of a member).

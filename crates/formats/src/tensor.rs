@@ -70,13 +70,14 @@ impl fmt::Display for DType {
 
 /// One named tensor. `data` is in C (row-major) order whatever the file's order, and widened to
 /// f64 whatever the file's type, so that integer or bool tensors can still be reported by a shape
-/// audit instead of being refused at the door.
+/// audit instead of being refused at the door. `Tensor<f32>` is an f32 member a data file's
+/// reader kept as stored (`plumb grad`'s batch, [`crate::read_graph_data_kept`]).
 #[derive(Clone, Debug, PartialEq)]
-pub struct Tensor {
+pub struct Tensor<T = f64> {
     pub name: String,
     pub shape: Vec<usize>,
     pub dtype: DType,
-    pub data: Vec<f64>,
+    pub data: Vec<T>,
 }
 
 impl Tensor {

@@ -21,16 +21,29 @@ pub(crate) type Seen = Option<Option<usize>>;
 /// values are tested piece by piece while in cache; a batch of 8,192 images is 51 MB to read
 /// again otherwise).
 pub(crate) fn read_tensors_seen(path: &Path) -> Result<(TensorFile, Vec<Seen>), TensorFileError> {
+    read_tensors_kept(path, None).map(|(file, seen, _)| (file, seen))
+}
+
+/// An f32 member kept as stored: its place among the file's members (the number before it),
+/// its tensor and what the read saw of its finiteness.
+pub(crate) type Kept = Option<(usize, (Tensor<f32>, Seen))>;
+
+/// [`read_tensors_seen`], with the member named `narrow`, when an archive of stored members
+/// holds it in f32, kept in f32 and left out of the file's tensors.
+pub(crate) fn read_tensors_kept(
+    path: &Path,
+    narrow: Option<&str>,
+) -> Result<(TensorFile, Vec<Seen>, Kept), TensorFileError> {
     let format = FileFormat::from_path(path);
     if format == Some(FileFormat::Npz)
-        && let Some(read) = streamed_npz(path)
+        && let Some(read) = streamed_npz(path, narrow)
     {
-        let (tensors, seen) = read.into_iter().unzip();
+        let (tensors, seen) = read.tensors.into_iter().unzip();
         let file = TensorFile {
             format: FileFormat::Npz,
             tensors,
         };
-        return Ok((file, seen));
+        return Ok((file, seen, read.narrow));
     }
     // Reading the whole file bounds every later allocation by what is really there.
     let bytes = crate::input::read_input(path, crate::MAX_TENSOR_BYTES).map_err(|source| {
@@ -68,13 +81,14 @@ pub(crate) fn read_tensors_seen(path: &Path) -> Result<(TensorFile, Vec<Seen>), 
         FileFormat::Safetensors => safetensors_file::read(path, &bytes)?,
     };
     let seen = vec![None; tensors.len()];
-    Ok((TensorFile { format, tensors }, seen))
+    Ok((TensorFile { format, tensors }, seen, None))
 }
 
-/// The tensors of an archive of stored members (what `np.savez` writes), each widened as it is
-/// read from the file rather than after the whole file is in memory; `None` for anything else
-/// (the whole-file read then reads it or says what is wrong).
-fn streamed_npz(path: &Path) -> Option<Vec<(crate::Tensor, Seen)>> {
+/// The tensors of an archive of stored members, each widened as it is read from the file
+/// rather than after the whole file is in memory (the member `narrow` kept in f32 if it is
+/// stored so); `None` for anything else (the whole-file read then reads it or says what is
+/// wrong).
+fn streamed_npz(path: &Path, narrow: Option<&str>) -> Option<npz::Streamed> {
     use std::io::{Read, Seek};
     let mut file = crate::input::open_input(path, crate::MAX_TENSOR_BYTES).ok()?;
     // The signature that makes `sniff` call the file an archive.
@@ -84,7 +98,7 @@ fn streamed_npz(path: &Path) -> Option<Vec<(crate::Tensor, Seen)>> {
         return None;
     }
     file.rewind().ok()?;
-    npz::read_streamed(path, &mut file)
+    npz::read_streamed(path, &mut file, narrow)
 }
 
 /// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a

@@ -459,7 +459,10 @@ mod tests {
         // ECMA-48: ESC [ 2 J erases the display, ESC ] 0 ; … BEL sets a window title, and
         // U+009B is the one-character CSI; a rendition (ESC [ n m) is what plumb's colour writes.
         let text = "a\u{1b}[2Jb\u{1b}]0;t\u{7}c\u{9b}d\te\nf";
-        assert_eq!(visible(text, false), "a\\x1b[2Jb\\x1b]0;t\\x07c\\u{9b}d\te\nf");
+        assert_eq!(
+            visible(text, false),
+            "a\\x1b[2Jb\\x1b]0;t\\x07c\\u{9b}d\te\nf"
+        );
         let painted = "\u{1b}[31mred\u{1b}[0m \u{1b}[2J";
         assert_eq!(visible(painted, true), "\u{1b}[31mred\u{1b}[0m \\x1b[2J");
         assert_eq!(visible(painted, false), "\\x1b[31mred\\x1b[0m \\x1b[2J");
@@ -469,11 +472,18 @@ mod tests {
             let mut out = Vec::new();
             render_table(&doc, &mut out, colour).unwrap();
             let out = String::from_utf8(out).unwrap();
-            assert!(!out.contains('\u{7}') && !out.contains("\u{1b}[2J"), "{out:?}");
+            assert!(
+                !out.contains('\u{7}') && !out.contains("\u{1b}[2J"),
+                "{out:?}"
+            );
         }
         let mut out = Vec::new();
         render_markdown(&doc, &mut out).unwrap();
-        assert!(!String::from_utf8(out).unwrap().contains(['\u{1b}', '\u{7}']));
+        assert!(
+            !String::from_utf8(out)
+                .unwrap()
+                .contains(['\u{1b}', '\u{7}'])
+        );
     }
 
     #[test]

@@ -24,6 +24,7 @@ use ndarray::{Array1, Array2, ArrayD, ArrayView2, Axis, Ix1, Ix2, concatenate, s
 use super::{
     Back, Kind, Layer, LayerScalar, Moved, ParamSpec, Role, Shape, ShapeError, Step, reshape,
 };
+use crate::Scalar;
 use crate::product::{add_matmul, matmul};
 
 /// A dense layer bound to its input shape.
@@ -77,6 +78,48 @@ impl Dense {
             .view()
             .into_dimensionality::<Ix2>()
             .expect("a dense weight has two axes")
+    }
+
+    /// Whether [`Layer::forward_f32`] reads a batch of `m` samples in blocks (F32_BLOCK): a
+    /// flat input, a batch of two blocks or more, and a product that gemm computes on its
+    /// general path whole and in blocks alike (more than 64 units or inputs; gemm's vector
+    /// paths for one unit or a fan-in of two sum in their own order).
+    fn reads_f32(&self, m: usize) -> bool {
+        matches!(self.input, Shape::Flat(_))
+            && m >= 2 * F32_BLOCK
+            && self.units >= 2
+            && self.fan_in() >= 3
+            && self.units.max(self.fan_in()) > 64
+    }
+
+    /// The gradients from dW and the output's gradient d (one row per sample and step) over a
+    /// batch of `m` samples: what [`Layer::backward`] and [`Layer::backward_f32`] share.
+    fn back<S: LayerScalar>(
+        &self,
+        params: &[ArrayD<S>],
+        dw: Array2<S>,
+        d: ArrayView2<S>,
+        m: usize,
+        mistake: Option<&str>,
+        need_input: bool,
+    ) -> Back<S> {
+        let w = Dense::weight(params);
+        let db = d.sum_axis(Axis(0));
+        let dx = need_input.then(|| {
+            let dx = if mistake == Some("bias-rows-shifted") {
+                let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+                let augmented = Dense::join(&w.to_owned(), &b.to_owned());
+                matmul(d, augmented.slice(s![.., ..self.fan_in()]))
+            } else {
+                matmul(d, w)
+            };
+            reshape(dx, (m, self.input.size()))
+        });
+        Back {
+            params: vec![dw.into_dyn(), db.into_dyn()],
+            dx,
+            dskip: None,
+        }
     }
 
     /// (m · rows) × fan-in: one row per sample and step.
@@ -211,10 +254,6 @@ impl<S: LayerScalar> Layer<S> for Dense {
         mistake: Option<&str>,
         need_input: bool,
     ) -> Back<S> {
-        let w = params[0]
-            .view()
-            .into_dimensionality::<Ix2>()
-            .expect("weight");
         let r = self.input.rows();
         // dout as it lies when it is standard layout (the graph's always are), not a copy: at a
         // batch of 8,192 that copy was 17 MB of fresh memory per layer.
@@ -224,22 +263,61 @@ impl<S: LayerScalar> Layer<S> for Dense {
             .into_shape_with_order((dout.nrows() * r, self.units))
             .expect("standard layout, one row per sample and step");
         let dw = matmul(d.t(), self.rows(x));
-        let db = d.sum_axis(Axis(0));
-        let dx = need_input.then(|| {
-            let dx = if mistake == Some("bias-rows-shifted") {
-                let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
-                let augmented = Dense::join(&w.to_owned(), &b.to_owned());
-                matmul(d.view(), augmented.slice(s![.., ..self.fan_in()]))
-            } else {
-                matmul(d.view(), w)
-            };
-            reshape(dx, (x.nrows(), self.input.size()))
-        });
-        Back {
-            params: vec![dw.into_dyn(), db.into_dyn()],
-            dx,
-            dskip: None,
+        self.back(params, dw, d, x.nrows(), mistake, need_input)
+    }
+
+    fn forward_f32(&self, params: &[ArrayD<S>], x: ArrayView2<f32>) -> Option<Step<S>> {
+        if !self.reads_f32(x.nrows()) {
+            return None;
         }
+        let w = Dense::weight(params);
+        let b = params[1].view().into_dimensionality::<Ix1>().expect("bias");
+        let x = x.as_standard_layout();
+        let m = x.nrows();
+        let bias = b.to_vec();
+        let mut z = Vec::with_capacity(m * self.units);
+        for _ in 0..m {
+            z.extend_from_slice(&bias);
+        }
+        let mut z = Array2::from_shape_vec((m, self.units), z).expect("one bias per unit");
+        // Row blocks: each value's sum is the whole product's, as F32_BLOCK says.
+        let mut block = Vec::new();
+        let starts: Vec<usize> = (0..m / F32_BLOCK).map(|i| i * F32_BLOCK).collect();
+        for (i, &start) in starts.iter().enumerate() {
+            let end = starts.get(i + 1).copied().unwrap_or(m);
+            let rows = widened(x.slice(s![start..end, ..]), &mut block);
+            add_matmul(&mut z.slice_mut(s![start..end, ..]), rows, w.t());
+        }
+        Some(Step::plain(z))
+    }
+
+    fn backward_f32(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<f32>,
+        _: &Step<S>,
+        dout: ArrayView2<S>,
+        mistake: Option<&str>,
+        need_input: bool,
+    ) -> Back<S> {
+        let x = x.as_standard_layout();
+        let dout = dout.as_standard_layout();
+        let d = dout.view();
+        let m = x.nrows();
+        // dW = dzᵀ·x summed over the samples in blocks, each added to the sum of those before
+        // it in order: the whole product's depth blocks, as F32_BLOCK says.
+        let mut dw = Vec::with_capacity(self.units * self.fan_in());
+        dw.resize(self.units * self.fan_in(), S::zero());
+        let mut dw =
+            Array2::from_shape_vec((self.units, self.fan_in()), dw).expect("units × fan-in");
+        let depth = m.div_ceil(m.div_ceil(F32_BLOCK));
+        let mut block = Vec::new();
+        for start in (0..m).step_by(depth) {
+            let end = (start + depth).min(m);
+            let rows = widened(x.slice(s![start..end, ..]), &mut block);
+            add_matmul(&mut dw, d.slice(s![start..end, ..]).t(), rows);
+        }
+        self.back(params, dw, d, m, mistake, need_input)
     }
 
     fn forward_moved(
@@ -376,6 +454,30 @@ impl<S: LayerScalar> Layer<S> for Dense {
         }
         true
     }
+}
+
+/// Samples per block when the first dense layer reads an f32 batch ([`Layer::forward_f32`]).
+/// The forward product runs over blocks of rows (the last one takes the rest): a value's sum
+/// runs over the fan-in alone, which gemm cuts into the same depth blocks whatever the rows.
+/// dW = dzᵀ·x sums over the samples, and gemm 0.19 cuts that depth k into blocks of
+/// ⌈k / ⌈k / kc⌉⌉, the first added to c's zeros and each next one to c, with kc from the
+/// machine's caches (gemm-common's `kernel_params`: at least 512, and 512 on the machines
+/// measured). Blocks of ⌈m / ⌈m / 512⌉⌉ samples summed in order are those blocks, so dW has the
+/// whole product's bits wherever kc is 512; each block is within one of gemm's depth blocks on
+/// any machine, so where kc is larger dW differs from the whole product's last bits but not
+/// from machine to machine — the whole product's bits depend on kc already.
+const F32_BLOCK: usize = 512;
+
+/// Rows of an f32 batch widened to S in `buffer` (reused from block to block).
+fn widened<'a, S: Scalar>(x: ArrayView2<f32>, buffer: &'a mut Vec<S>) -> ArrayView2<'a, S> {
+    buffer.clear();
+    let widen = |&v: &f32| S::from_f64(f64::from(v));
+    // A block of whole rows of a standard-layout batch is one slice: a loop that vectorises.
+    match x.as_slice() {
+        Some(values) => buffer.extend(values.iter().map(widen)),
+        None => buffer.extend(x.iter().map(widen)),
+    }
+    ArrayView2::from_shape(x.dim(), buffer).expect("the block's rows")
 }
 
 /// A dense layer updates its output from the base by the change of at most one input unit in

@@ -284,6 +284,31 @@ pub trait Layer<S: LayerScalar>: Send + Sync {
         need_input: bool,
     ) -> Back<S>;
 
+    /// [`forward`](Layer::forward) of the graph's first layer on a batch a file stored in f32,
+    /// widened to S where it is read rather than as a whole first: the same values bit for bit
+    /// as `forward` on the widened batch. `None`: the kind reads no f32 batch (the graph then
+    /// widens the whole batch), and [`backward_f32`](Layer::backward_f32) is not called.
+    fn forward_f32(&self, params: &[ArrayD<S>], x: ArrayView2<f32>) -> Option<Step<S>> {
+        let _ = (params, x);
+        None
+    }
+
+    /// [`backward`](Layer::backward) over the f32 batch of a step that
+    /// [`forward_f32`](Layer::forward_f32) made, with the same values bit for bit as on the
+    /// widened batch.
+    fn backward_f32(
+        &self,
+        params: &[ArrayD<S>],
+        x: ArrayView2<f32>,
+        step: &Step<S>,
+        dout: ArrayView2<S>,
+        mistake: Option<&str>,
+        need_input: bool,
+    ) -> Back<S> {
+        let x = x.mapv(|v| S::from_f64(f64::from(v)));
+        self.backward(params, x.view(), step, dout, mistake, need_input)
+    }
+
     /// The kind's incremental-evaluation hint: the step after one parameter entry moved
     /// (`moved`), from the `base` step of the same input `x` at `params` (the unmoved values),
     /// doing less work than [`forward`](Layer::forward). `None` when the kind has no hint and the

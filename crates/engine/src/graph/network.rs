@@ -10,7 +10,7 @@ use thiserror::Error;
 use super::hooks::{Hooks, Regularization, Samples, Slope};
 use super::loss::by_rows;
 use super::{AnyLayer, LayerScalar, LossConfig, Moved, ParamSpec, Role, Shape, ShapeError, Step};
-use crate::{Activation, Loss, Scalar};
+use crate::{Activation, Inputs, Loss, Scalar};
 
 /// One layer of the graph: its kind, the activation the graph applies after it, its name.
 #[derive(Debug)]
@@ -597,25 +597,27 @@ impl Graph {
     fn forward_spare<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
-    ) -> (Trace<S>, Vec<bool>) {
+        x: Inputs<'_, S>,
+    ) -> Option<(Trace<S>, Vec<bool>)> {
         if let Err(e) = self.check_params(params) {
             panic!("{e} (check_params before a pass)");
         }
-        let x = x.as_standard_layout();
         let n = self.nodes.len();
         let mut steps: Vec<Step<S>> = Vec::with_capacity(n);
         let mut outputs: Vec<Array2<S>> = Vec::with_capacity(n);
         let mut spared = Vec::with_capacity(n);
         for (j, node) in self.nodes.iter().enumerate() {
-            let input = if j == 0 {
-                x.view()
-            } else {
-                outputs[j - 1].view()
+            let layer = S::layer(node.layer.as_ref());
+            let own = &params[node.tensors()];
+            let mut step = match (j, x) {
+                (0, Inputs::Own(x)) => layer.forward(own, x.as_standard_layout().view(), None),
+                // The first layer only can read an f32 batch; it says whether it does.
+                (0, Inputs::F32(x)) => layer.forward_f32(own, x)?,
+                _ => {
+                    let skip = node.tap.map(|t| outputs[t].view());
+                    layer.forward(own, outputs[j - 1].view(), skip)
+                }
             };
-            let skip = node.tap.map(|t| outputs[t].view());
-            let mut step =
-                S::layer(node.layer.as_ref()).forward(&params[node.tensors()], input, skip);
             let from_output = j + 1 < n
                 && matches!(
                     node.activation,
@@ -635,7 +637,7 @@ impl Graph {
             outputs.push(a);
             spared.push(from_output);
         }
-        (Trace { steps, outputs }, spared)
+        Some((Trace { steps, outputs }, spared))
     }
 
     /// The forward pass from layer `from` on, over a `base` pass of the same batch `x` whose
@@ -1356,15 +1358,16 @@ impl Graph {
     }
 
     /// The loss and its analytic gradient, the input gradient included; `planted` makes one
-    /// layer's backward pass reproduce a catalogued mistake.
-    pub fn gradient<S: LayerScalar>(
+    /// layer's backward pass reproduce a catalogued mistake. x is a batch in S, or one a file
+    /// stored in f32 ([`Inputs::F32`]: the same values as on the batch widened).
+    pub fn gradient<'x, S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
+        x: impl Into<Inputs<'x, S>>,
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> Gradient<S> {
-        let (loss, params_grad, input) = self.spent_gradient(params, x, y, planted, true);
+        let (loss, params_grad, input) = self.spent_gradient(params, x.into(), y, planted, true);
         Gradient {
             loss,
             params: params_grad,
@@ -1374,29 +1377,34 @@ impl Graph {
 
     /// The loss and the parameters' gradient without the input gradient, which no user of the
     /// loss's gradient needs (at a dense first layer over many inputs it is a third of the
-    /// backward pass).
-    pub fn parameter_gradient<S: LayerScalar>(
+    /// backward pass). x as [`Graph::gradient`] takes it.
+    pub fn parameter_gradient<'x, S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
+        x: impl Into<Inputs<'x, S>>,
         y: ArrayView2<S>,
         planted: Option<&Planted>,
     ) -> (S, Vec<ArrayD<S>>) {
-        let (loss, grads, _) = self.spent_gradient(params, x, y, planted, false);
+        let (loss, grads, _) = self.spent_gradient(params, x.into(), y, planted, false);
         (loss, grads)
     }
 
     /// The loss and gradients from a forward pass whose trace the backward pass owns and frees
-    /// layer by layer ([`Spent`]): what `gradient` and `parameter_gradient` share.
+    /// layer by layer ([`Spent`]): what `gradient` and `parameter_gradient` share. An f32 batch
+    /// whose first layer does not read f32 is widened whole first.
     fn spent_gradient<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
+        x: Inputs<'_, S>,
         y: ArrayView2<S>,
         planted: Option<&Planted>,
         input_gradient: bool,
     ) -> (S, Vec<ArrayD<S>>, Option<Array2<S>>) {
-        let (trace, spared) = self.forward_spare(params, x);
+        let Some((trace, spared)) = self.forward_spare(params, x) else {
+            let widened = x.widened();
+            let x = Inputs::Own(widened.view());
+            return self.spent_gradient(params, x, y, planted, input_gradient);
+        };
         let loss = self.loss_of(params, &trace, y);
         let spent = Spent::Owned(trace, spared);
         let (grads, input) = self.backward_through(
@@ -1450,7 +1458,7 @@ impl Graph {
     ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
         self.backward_through(
             params,
-            x,
+            Inputs::Own(x),
             y,
             Spent::Borrowed(trace),
             planted,
@@ -1465,14 +1473,17 @@ impl Graph {
     fn backward_through<S: LayerScalar>(
         &self,
         params: &[ArrayD<S>],
-        x: ArrayView2<S>,
+        x: Inputs<'_, S>,
         y: ArrayView2<S>,
         mut trace: Spent<'_, S>,
         planted: Option<&Planted>,
         hooks: &Hooks,
         input_gradient: bool,
     ) -> (Vec<ArrayD<S>>, Option<Array2<S>>) {
-        let x = x.as_standard_layout();
+        let own = match &x {
+            Inputs::Own(x) => Some(x.as_standard_layout()),
+            Inputs::F32(_) => None,
+        };
         let y = y.as_standard_layout();
         let m = x.nrows();
         let n = self.nodes.len();
@@ -1515,20 +1526,27 @@ impl Graph {
             trace.free_outputs(j);
             let t = trace.get();
             let step = &t.steps[j];
-            let input = if j == 0 {
-                x.view()
-            } else {
-                t.outputs[j - 1].view()
-            };
             let mistake = planted.filter(|p| p.layer == j).map(|p| p.code);
-            let back = S::layer(node.layer.as_ref()).backward(
-                &params[node.tensors()],
-                input,
-                step,
-                dz.view(),
-                mistake,
-                input_gradient || lowest.is_some_and(|l| l < j),
-            );
+            let layer = S::layer(node.layer.as_ref());
+            let own_params = &params[node.tensors()];
+            let need_input = input_gradient || lowest.is_some_and(|l| l < j);
+            let back = match (j, x, &own) {
+                // An f32 batch reaches here only when the first layer's forward read it.
+                (0, Inputs::F32(x), _) => {
+                    layer.backward_f32(own_params, x, step, dz.view(), mistake, need_input)
+                }
+                (0, _, Some(x)) => {
+                    layer.backward(own_params, x.view(), step, dz.view(), mistake, need_input)
+                }
+                _ => layer.backward(
+                    own_params,
+                    t.outputs[j - 1].view(),
+                    step,
+                    dz.view(),
+                    mistake,
+                    need_input,
+                ),
+            };
             trace.free_step(j);
             for (t, g) in node.tensors().zip(back.params) {
                 grads[t] = g;
@@ -1624,10 +1642,10 @@ impl Graph {
     /// Whether a batch fits the graph: m ≥ 1 samples of the input's size, targets of the output's.
     /// Token inputs must be whole numbers below the vocabulary (the first one that is not is
     /// named by sample and step).
-    pub fn check_batch<S: Scalar>(
+    pub fn check_batch<S: Scalar, T: Scalar>(
         &self,
         x: ArrayView2<S>,
-        y: ArrayView2<S>,
+        y: ArrayView2<T>,
     ) -> Result<(), GraphError> {
         let what = if x.nrows() == 0 {
             "has no samples".to_string()

@@ -6,6 +6,7 @@ mod graph_common;
 
 mod dual;
 mod graph_dual;
+mod graph_f32_batch;
 mod graph_fixtures;
 mod graph_init;
 mod graph_mistakes;

@@ -3,6 +3,7 @@
 
 use std::path::PathBuf;
 
+use plumb_engine::Inputs;
 use plumb_engine::graph::GraphError;
 use plumb_formats::Tensor;
 use plumb_report::{DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure};
@@ -98,22 +99,27 @@ impl Gradient {
 
 /// The loss and gradient of a network of any kind on the layer graph, with the input gradient
 /// when asked; gradients are summarised and given per file tensor, in the declared storage.
-pub fn graph_gradient_report(
-    loaded: &GraphLoaded,
+/// An f32 batch kept in f32 ([`GraphLoaded::load_kept`]) gives the widened batch's values.
+pub fn graph_gradient_report<X>(
+    loaded: &GraphLoaded<X>,
     input_gradient: bool,
-) -> Result<Gradient, GraphError> {
+) -> Result<Gradient, GraphError>
+where
+    for<'a> &'a X: Into<Inputs<'a, f64>>,
+{
     let desc = &loaded.desc;
     let graph = &desc.graph;
     let b = &loaded.batch;
+    let x: Inputs<'_, f64> = (&b.x).into();
     // The input gradient is formed only when it is written.
     let (loss, grads, input) = if input_gradient {
-        let g = graph.gradient(&loaded.params, b.x.view(), b.y.view(), None);
+        let g = graph.gradient(&loaded.params, x, b.y.view(), None);
         (g.loss, g.params, Some(g.input))
     } else {
-        let (loss, grads) = graph.parameter_gradient(&loaded.params, b.x.view(), b.y.view(), None);
+        let (loss, grads) = graph.parameter_gradient(&loaded.params, x, b.y.view(), None);
         (loss, grads, None)
     };
-    let l2_term = graph.loss_config().l2_factor(b.len())
+    let l2_term = graph.loss_config().l2_factor(x.nrows())
         * loaded
             .params
             .iter()
@@ -132,7 +138,7 @@ pub fn graph_gradient_report(
             description: desc.path.clone(),
             weights: &loaded.weights_source,
             data: &loaded.data_source,
-            samples: b.len(),
+            samples: x.nrows(),
         },
         (loss, loss - l2_term, l2_term),
         tensors,

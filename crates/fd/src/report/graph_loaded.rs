@@ -6,11 +6,12 @@
 
 use std::path::{Path, PathBuf};
 
-use ndarray::ArrayD;
-use plumb_engine::{Batch, Init, Loss, Rng};
+use ndarray::{Array2, ArrayD};
+use plumb_engine::graph::{Graph, GraphError};
+use plumb_engine::{Batch, Features, Init, Inputs, Loss, Rng};
 use plumb_formats::{
     AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
-    read_graph_data, read_tensors,
+    read_graph_data, read_graph_data_kept, read_tensors,
 };
 use plumb_report::{DataSource, WeightsSource};
 
@@ -20,12 +21,13 @@ pub const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
 pub const MAX_ACTIVATION_VALUES: usize = 1 << 27;
 
 /// A graph run's description, parameters (canonical shapes, [`plumb_engine::graph::Graph::tensors`]
-/// order) and batch, with where they came from.
-pub struct GraphLoaded {
+/// order) and batch, with where they came from. `X` holds the batch's x: f64 values, or
+/// [`Features`] for `plumb grad` ([`GraphLoaded::load_kept`]).
+pub struct GraphLoaded<X = Array2<f64>> {
     pub desc: GraphDescription,
     pub params: Vec<ArrayD<f64>>,
     pub weights_source: WeightsSource,
-    pub batch: Batch,
+    pub batch: Batch<X>,
     pub data_source: DataSource,
     /// The axis order of the data file (channels-first for a synthetic batch).
     pub order: AxisOrder,
@@ -98,6 +100,72 @@ impl GraphLoaded {
         inputs: &GraphInputs,
         vet: Vet,
     ) -> Result<GraphLoaded, GraphLoadError> {
+        GraphLoaded::load_with(desc, inputs, vet)
+    }
+}
+
+impl GraphLoaded<Features> {
+    /// [`GraphLoaded::load_vetted`], with a data file's flat f32 x kept in f32
+    /// ([`read_graph_data_kept`]) for the whole-batch gradient; the same checks and messages.
+    pub fn load_kept(
+        desc: GraphDescription,
+        inputs: &GraphInputs,
+        vet: Vet,
+    ) -> Result<GraphLoaded<Features>, GraphLoadError> {
+        GraphLoaded::load_with(desc, inputs, vet)
+    }
+}
+
+/// How a loaded batch's x is read, drawn and checked.
+pub trait LoadedX: Sized {
+    fn read(path: &Path, graph: &Graph, order: AxisOrder) -> Result<Batch<Self>, DataError>;
+    fn drawn(batch: Batch) -> Batch<Self>;
+    fn check(graph: &Graph, batch: &Batch<Self>) -> Result<(), GraphError>;
+    fn samples(batch: &Batch<Self>) -> usize;
+}
+
+impl LoadedX for Array2<f64> {
+    fn read(path: &Path, graph: &Graph, order: AxisOrder) -> Result<Batch, DataError> {
+        read_graph_data(path, &graph.input(), &graph.output(), order)
+    }
+    fn drawn(batch: Batch) -> Batch {
+        batch
+    }
+    fn check(graph: &Graph, batch: &Batch) -> Result<(), GraphError> {
+        graph.check_batch(batch.x.view(), batch.y.view())
+    }
+    fn samples(batch: &Batch) -> usize {
+        batch.len()
+    }
+}
+
+impl LoadedX for Features {
+    fn read(path: &Path, graph: &Graph, order: AxisOrder) -> Result<Batch<Self>, DataError> {
+        read_graph_data_kept(path, &graph.input(), &graph.output(), order)
+    }
+    fn drawn(batch: Batch) -> Batch<Self> {
+        Batch {
+            x: Features::F64(batch.x),
+            y: batch.y,
+        }
+    }
+    fn check(graph: &Graph, batch: &Batch<Self>) -> Result<(), GraphError> {
+        match batch.x.inputs() {
+            Inputs::Own(x) => graph.check_batch(x, batch.y.view()),
+            Inputs::F32(x) => graph.check_batch(x, batch.y.view()),
+        }
+    }
+    fn samples(batch: &Batch<Self>) -> usize {
+        batch.len()
+    }
+}
+
+impl<X: LoadedX> GraphLoaded<X> {
+    fn load_with(
+        desc: GraphDescription,
+        inputs: &GraphInputs,
+        vet: Vet,
+    ) -> Result<GraphLoaded<X>, GraphLoadError> {
         let graph = &desc.graph;
         let (params, weights_source) = match inputs.weights {
             Some(path) => {
@@ -124,8 +192,8 @@ impl GraphLoaded {
         };
         let (batch, data_source, order) = match inputs.data {
             Some(path) => {
-                let batch = read_graph_data(path, &graph.input(), &graph.output(), inputs.order)?;
-                let samples = batch.len();
+                let batch = X::read(path, graph, inputs.order)?;
+                let samples = X::samples(&batch);
                 let source = DataSource::File {
                     path: path.to_path_buf(),
                     samples,
@@ -145,7 +213,7 @@ impl GraphLoaded {
                         "--batch {m} would draw more than {MAX_SYNTHETIC_VALUES} values for this network; use a smaller batch or give --data"
                     )));
                 }
-                let batch = Batch::graph_synthetic(graph, m, inputs.seed);
+                let batch = X::drawn(Batch::graph_synthetic(graph, m, inputs.seed));
                 let source = DataSource::Synthetic {
                     samples: m,
                     seed: inputs.seed,
@@ -154,12 +222,10 @@ impl GraphLoaded {
             }
         };
         let where_data = inputs.data.unwrap_or(&desc.path).to_path_buf();
-        graph
-            .check_batch(batch.x.view(), batch.y.view())
-            .map_err(|e| GraphLoadError::Input {
-                path: where_data,
-                message: format!("the data does not fit the network: {e}"),
-            })?;
+        X::check(graph, &batch).map_err(|e| GraphLoadError::Input {
+            path: where_data,
+            message: format!("the data does not fit the network: {e}"),
+        })?;
         let per_sample: usize = graph.input().size().saturating_add(
             graph
                 .nodes()
@@ -167,20 +233,21 @@ impl GraphLoaded {
                 .map(|n| n.layer.output().size().saturating_add(n.layer.held()))
                 .fold(0usize, usize::saturating_add),
         );
-        let values = batch.len().checked_mul(2 * per_sample);
+        let samples = X::samples(&batch);
+        let values = per_sample.checked_mul(2).and_then(|v| samples.checked_mul(v));
         if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
             return Err(GraphLoadError::Input {
                 path: desc.path.clone(),
                 message: format!(
                     "a batch of {} samples through this network needs {} activation values, more than the {} plumb holds; use fewer samples (--batch, or a smaller data file) or check the unit counts",
-                    batch.len(),
+                    samples,
                     values.map_or("too many".to_string(), |v| v.to_string()),
                     MAX_ACTIVATION_VALUES
                 ),
             });
         }
         if graph.loss_config().loss == Loss::CrossEntropy {
-            check_probabilities(&batch, &data_source)?;
+            check_probabilities(&batch.y, &data_source)?;
         }
         Ok(GraphLoaded {
             description_hash: description_hash(&desc),
@@ -196,11 +263,8 @@ impl GraphLoaded {
 
 /// Cross-entropy needs targets in [0, 1]: one-hot labels or probabilities. The first that is not
 /// is named by sample and target (and line, in a CSV file).
-fn check_probabilities(batch: &Batch, source: &DataSource) -> Result<(), GraphLoadError> {
-    let bad = batch
-        .y
-        .indexed_iter()
-        .find(|(_, v)| !(0.0..=1.0).contains(*v));
+fn check_probabilities(y: &Array2<f64>, source: &DataSource) -> Result<(), GraphLoadError> {
+    let bad = y.indexed_iter().find(|(_, v)| !(0.0..=1.0).contains(*v));
     if let Some(((i, k), v)) = bad {
         let place = match source {
             DataSource::File { path, .. } => {

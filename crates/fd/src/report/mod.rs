@@ -17,8 +17,8 @@ pub use check::{
 pub use grad::{GradReport, Gradient, TensorGradient, graph_gradient_report};
 pub use graph_check::{GraphCheckReport, GraphCoordReport, build_graph, graph_check_report};
 pub use graph_loaded::{
-    GraphInputs, GraphLoadError, GraphLoaded, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES, Vet,
-    description_hash, widest_float,
+    GraphInputs, GraphLoadError, GraphLoaded, LoadedX, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES,
+    Vet, description_hash, widest_float,
 };
 pub use place::{GraphPlace, Places, location as graph_location};
 pub use shards::{MAX_SHARDS, ShardError, Shards, fuzz_shard, shard_description};

@@ -547,3 +547,65 @@ fn read_batches_pass_the_graphs_check() {
         assert!(loss.is_finite() && loss > 0.0, "{case}: {loss}");
     }
 }
+
+/// `read_graph_data_kept` keeps a flat f32 x of a stored archive in f32: widened, its values
+/// are `read_graph_data`'s (tested against NumPy above) exactly, y is the same, and a value that
+/// is not finite is refused with the same message; an f64 x, or an input that is not flat,
+/// is widened as read. The archives are written by `write_tensors` (stored, as `np.savez`
+/// writes them), 200 × 784 values: five of the reader's 128 KiB pieces.
+#[test]
+fn a_flat_f32_batch_is_kept_in_f32_with_the_same_values_and_messages() {
+    use plumb_engine::Features;
+    use plumb_formats::{DType, FileFormat, Tensor, read_graph_data_kept, write_tensors};
+    let folder = std::env::temp_dir().join(format!("plumb-kept-{}", std::process::id()));
+    std::fs::create_dir_all(&folder).unwrap();
+    let (m, n) = (200, 784);
+    let x: Vec<f64> = (0..m * n)
+        .map(|i| f64::from(((i * 7919) % 1000) as f32 / 37.0 - 13.0))
+        .collect();
+    let y: Vec<f64> = (0..m).map(|i| (i % 10) as f64).collect();
+    let write_shaped = |name: &str, x: &[f64], shape: Vec<usize>, dtype: DType| {
+        let path = folder.join(name);
+        let tensors = [
+            Tensor::new("x", shape, x.to_vec()),
+            Tensor::new("y", vec![m], y.clone()),
+        ];
+        write_tensors(&path, FileFormat::Npz, &tensors, dtype).unwrap();
+        path
+    };
+    let write = |name: &str, x: &[f64], dtype: DType| write_shaped(name, x, vec![m, n], dtype);
+    let (input, output) = (Shape::Flat(n), Shape::Flat(10));
+    let path = write("f32.npz", &x, DType::F32);
+    let wide = read_graph_data(&path, &input, &output, ChannelsFirst).unwrap();
+    let kept = read_graph_data_kept(&path, &input, &output, ChannelsFirst).unwrap();
+    let Features::F32(narrow) = &kept.x else {
+        panic!("an f32 x is kept in f32");
+    };
+    assert_eq!(narrow.mapv(f64::from), wide.x);
+    assert_eq!(kept.y, wide.y);
+    let path = write("f64.npz", &x, DType::F64);
+    let kept = read_graph_data_kept(&path, &input, &output, ChannelsFirst).unwrap();
+    assert!(
+        matches!(kept.x, Features::F64(_)),
+        "an f64 x is read as f64"
+    );
+    // Not flat: the same f32 values as 784 steps of one feature are widened as read.
+    let steps = Shape::Sequence { steps: n, width: 1 };
+    let path = write_shaped("steps.npz", &x, vec![m, n, 1], DType::F32);
+    let kept = read_graph_data_kept(&path, &steps, &output, ChannelsFirst).unwrap();
+    assert_eq!(kept.x, Features::F64(wide.x.clone()));
+    for (flat, bad) in [(3, f64::NAN), (150 * n + 700, f64::INFINITY)] {
+        let mut x = x.clone();
+        x[flat] = bad;
+        let path = write("bad.npz", &x, DType::F32);
+        let wide = read_graph_data(&path, &input, &output, ChannelsFirst).unwrap_err();
+        let kept = read_graph_data_kept(&path, &input, &output, ChannelsFirst).unwrap_err();
+        assert_eq!(kept.to_string(), wide.to_string());
+        assert!(
+            kept.to_string()
+                .contains(&format!("sample {}, feature {}", flat / n, flat % n)),
+            "{kept}"
+        );
+    }
+    std::fs::remove_dir_all(&folder).unwrap();
+}
