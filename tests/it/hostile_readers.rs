@@ -1,0 +1,342 @@
+//! Hostile files against plumb's readers (DESIGN §3: no input, however malformed, may make plumb
+//! panic, hang, or allocate much more than the input could need; every exit-2 message names the
+//! file and the place, says what is wrong and how to fix it). Runs that could allocate far past
+//! what their files hold run under an address-space limit (`ulimit -v`), so a regression is an
+//! allocation failure (abort, exit 134) here, not a machine out of memory.
+
+use crate::util;
+
+use std::path::Path;
+use std::process::Command;
+
+use util::{Run, fixture, plumb_in, refused, scratch};
+
+/// Runs plumb in `dir` under an address-space limit of `kib` KiB (the shell's `ulimit -v`).
+fn limited(dir: &Path, kib: u64, args: &[&str]) -> Run {
+    let mut c = Command::new("sh");
+    c.arg("-c")
+        .arg(format!("ulimit -v {kib} && exec \"$0\" \"$@\""))
+        .arg(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .current_dir(dir)
+        .env("NO_COLOR", "1");
+    util::run(c)
+}
+
+/// Half a GiB: plumb's own runs on these small files need a few tens of MiB.
+const HALF_GIB: u64 = 512 << 10;
+
+/// What is wrong with how a run ended, if anything: an abort for memory (exit 134; -1 when the
+/// signal is seen), a panic (101), or an exit code other than `codes`; a refusal (2) must name
+/// each of `names`.
+fn ended_badly(what: &str, run: &Run, codes: &[i32], names: &[&str]) -> Option<String> {
+    let starved = run.stderr.contains("memory allocation of") || run.stderr.contains("panicked");
+    let unnamed = run.code == 2 && names.iter().any(|n| !run.stderr.contains(n));
+    (starved || !codes.contains(&run.code) || unnamed).then(|| {
+        let head: String = run.stderr.lines().take(2).collect::<Vec<_>>().join(" / ");
+        format!("{what}: exit {}: {head}", run.code)
+    })
+}
+
+/// Fails with every case that ended badly, not only the first.
+fn all_ended_well(failures: Vec<Option<String>>) {
+    let failures: Vec<String> = failures.into_iter().flatten().collect();
+    assert!(failures.is_empty(), "{}", failures.join("\n"));
+}
+
+/// A safetensors file in the format's published layout (an 8-byte little-endian header length,
+/// the JSON header, the data), the header text given as is so that it can hold what a JSON
+/// writer would not write.
+fn safetensors_bytes(header: &str, data: &[u8]) -> Vec<u8> {
+    let mut out = (header.len() as u64).to_le_bytes().to_vec();
+    out.extend_from_slice(header.as_bytes());
+    out.extend_from_slice(data);
+    out
+}
+
+/// fixtures/malformed/inflates.npz (generate_hostile.py; NumPy's np.load reads its `notes` member
+/// as 10^8 bools): about 100 KB whose unused member inflates to 100 MB, 800 MB once widened to
+/// f64. Neither a shape audit nor a data file's reader needs that member's values: reading it
+/// whole cost 907 MB here, and aborted under the limit.
+#[test]
+fn a_member_nothing_uses_is_not_inflated_and_widened() {
+    let dir = fixture("");
+    let names = ["inflates.npz", "notes.npy"];
+    let file = "malformed/inflates.npz";
+    let shapes = limited(&dir, HALF_GIB, &["shapes", "nets/small.toml", "-w", file]);
+    let grad = limited(&dir, HALF_GIB, &["grad", "nets/small.toml", "-d", file]);
+    all_ended_well(vec![
+        // Its tensors are not small.toml's (exit 1), or the member is refused by name (exit 2).
+        ended_badly("shapes -w inflates.npz", &shapes, &[1, 2], &names),
+        // x and y are good data for small.toml: used (exit 0), or the stray member refused.
+        ended_badly("grad -d inflates.npz", &grad, &[0, 2], &names),
+    ]);
+}
+
+/// 200,000 one-element tensors, 17 MB of safetensors: the shape audit lists each as unexpected,
+/// which cost 984 MB (58 times the file) and aborted under the limit.
+#[test]
+fn a_file_of_many_unexpected_tensors_costs_about_its_size() {
+    let dir = scratch("many-tensors");
+    let n = 200_000;
+    let entries: Vec<String> = (0..n)
+        .map(|i| {
+            format!(
+                "\"t{i}\":{{\"dtype\":\"F64\",\"shape\":[1],\"data_offsets\":[{},{}]}}",
+                8 * i,
+                8 * i + 8
+            )
+        })
+        .collect();
+    let header = format!("{{{}}}", entries.join(","));
+    std::fs::write(
+        dir.join("many.safetensors"),
+        safetensors_bytes(&header, &vec![0u8; 8 * n]),
+    )
+    .unwrap();
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let run = limited(
+        &dir,
+        HALF_GIB,
+        &["shapes", "small.toml", "-w", "many.safetensors"],
+    );
+    all_ended_well(vec![ended_badly(
+        "shapes -w many.safetensors",
+        &run,
+        &[1],
+        &[],
+    )]);
+}
+
+/// Descriptions of a hundred bytes whose passes need far more than the activation budget the
+/// layers' outputs are counted against (`MAX_ACTIVATION_VALUES`, 2^27 values): a conv1d's window
+/// matrix (1,024 taps × 64,513 positions × 32 samples: one request of 16.9 GB) and an attention
+/// layer's scores (4,000² per sample × 32: one request of 4.1 GB). Each must be refused naming
+/// the description (exit 2) before it is allocated, or run within what it needs.
+#[test]
+fn what_a_layer_holds_during_a_pass_is_budgeted_before_it_is_allocated() {
+    let dir = scratch("workspace");
+    let cases = [
+        (
+            "window.toml",
+            "input = [1, 65536]\nloss = \"squared-error\"\n[[layer]]\nkind = \"conv1d\"\nchannels = 1\nkernel = 1024\n[[layer]]\nkind = \"global-avg-pool\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+        ),
+        (
+            "scores.toml",
+            "input = { steps = 4000, features = 1 }\nloss = \"squared-error\"\n[[layer]]\nkind = \"attention\"\nheads = 1\n[[layer]]\nkind = \"rnn\"\nunits = 1\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+        ),
+    ];
+    let failures = cases
+        .into_iter()
+        .map(|(name, text)| {
+            std::fs::write(dir.join(name), text).unwrap();
+            let run = limited(&dir, 2 * HALF_GIB, &["grad", name, "--quiet"]);
+            ended_badly(name, &run, &[0, 2], &[name])
+        })
+        .collect();
+    all_ended_well(failures);
+}
+
+/// One sample of 10^7 steps through an rnn of one unit: 80 MB of input, and a trace of a few
+/// values per step (h and its pre-activation: 160 MB more). `grad --batch 1` took 1.65 GB (about
+/// 165 bytes a step) and 17 s, `check` over 60 s; under 1 GiB it aborted. Refused naming the
+/// description, or run within what its values need.
+#[test]
+fn an_rnn_over_ten_million_steps_holds_what_its_trace_needs() {
+    let dir = scratch("steps");
+    std::fs::write(
+        dir.join("steps.toml"),
+        "input = { steps = 10000000, features = 1 }\nloss = \"squared-error\"\n[[layer]]\nkind = \"rnn\"\nunits = 1\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    let run = limited(
+        &dir,
+        2 * HALF_GIB,
+        &["grad", "steps.toml", "--batch", "1", "--quiet"],
+    );
+    all_ended_well(vec![ended_badly(
+        "steps.toml",
+        &run,
+        &[0, 2],
+        &["steps.toml"],
+    )]);
+}
+
+/// Bytes from a file are quoted in messages and tables; a control character among them (an
+/// escape sequence that clears the screen or retitles the terminal) must not reach the terminal
+/// as is. Under NO_COLOR plumb writes no escape of its own.
+#[test]
+fn control_characters_from_files_are_not_echoed_raw() {
+    let dir = scratch("control-chars");
+    // TOML's own escapes put ESC and BEL in a key and a string.
+    std::fs::write(
+        dir.join("key.toml"),
+        "input = [4]\nloss = \"squared-error\"\n[[layer]]\n\"\\u001b[2J\" = 1\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    std::fs::write(
+        dir.join("from.toml"),
+        "input = [4]\nloss = \"squared-error\"\n[[layer]]\nunits = 4\nactivation = \"identity\"\n[[layer]]\nkind = \"add\"\nfrom = \"\\u001b]0;title\\u0007\"\n",
+    )
+    .unwrap();
+    std::fs::write(
+        dir.join("data.csv"),
+        "f1,f2,f3,f4,label\n1,2,3,\u{1b}[2J\u{1b}[31mx,0\n",
+    )
+    .unwrap();
+    std::fs::write(
+        dir.join("names.safetensors"),
+        safetensors_bytes(
+            // JSON's escapes: a raw control character in a JSON string is itself an error.
+            "{\"\\u001b[2J\\u001b[31mx\":{\"dtype\":\"F64\",\"shape\":[1],\"data_offsets\":[0,8]}}",
+            &[0; 8],
+        ),
+    )
+    .unwrap();
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let runs = [
+        ("key.toml", plumb_in(&dir, &["shapes", "key.toml"])),
+        ("from.toml", plumb_in(&dir, &["shapes", "from.toml"])),
+        (
+            "data.csv",
+            plumb_in(&dir, &["grad", "small.toml", "-d", "data.csv"]),
+        ),
+        (
+            "names.safetensors",
+            plumb_in(&dir, &["shapes", "small.toml", "-w", "names.safetensors"]),
+        ),
+    ];
+    let mut failures = Vec::new();
+    for (file, run) in runs {
+        // A refusal names the file on stderr; a shape audit's report names it on stdout.
+        failures.push(ended_badly(file, &run, &[1, 2], &[file]));
+        if run.code == 1 && !run.stdout.contains(file) {
+            failures.push(Some(format!("{file}: the report does not name the file")));
+        }
+        for (stream, text) in [("stderr", &run.stderr), ("stdout", &run.stdout)] {
+            if let Some(line) = text.lines().find(|l| l.contains(['\u{1b}', '\u{7}'])) {
+                failures.push(Some(format!(
+                    "{file}: a control character from the file is on {stream}: {line:?}"
+                )));
+            }
+        }
+    }
+    all_ended_well(failures);
+}
+
+/// The shards of a check in `dir` on its copy of small.toml, written there as a.json and b.json.
+fn shards_in(dir: &Path) {
+    std::fs::copy(fixture("nets/small.toml"), dir.join("net.toml")).unwrap();
+    for (k, file) in [("1/2", "a.json"), ("2/2", "b.json")] {
+        let run = plumb_in(
+            dir,
+            &[
+                "check", "net.toml", "--seed", "4", "--shard", k, "--format", "json", "--quiet",
+            ],
+        );
+        run.assert_code(0);
+        std::fs::write(dir.join(file), &run.stdout).unwrap();
+    }
+}
+
+/// `plumb merge` reads the description its shards name: that file is an input of the run, which
+/// every other command refuses to replace even with --force. Merge replaced it with JUnit XML.
+#[test]
+fn merge_never_replaces_the_description_it_reads() {
+    let dir = scratch("merge-input");
+    shards_in(&dir);
+    let before = std::fs::read_to_string(dir.join("net.toml")).unwrap();
+    let run = plumb_in(
+        &dir,
+        &[
+            "merge", "a.json", "b.json", "--junit", "net.toml", "--force", "--quiet",
+        ],
+    );
+    let after = std::fs::read_to_string(dir.join("net.toml")).unwrap();
+    assert!(
+        after == before,
+        "merge (exit {}) replaced the description it read; it now starts {:?}",
+        run.code,
+        after.lines().next().unwrap_or_default()
+    );
+    refused(&run, &["net.toml", "input of the run"]);
+}
+
+/// A merge run where the shards' relative description path does not resolve: the message named
+/// only `net.toml` ("No such file or directory"), not the shard that recorded it nor that a
+/// merge runs where the check ran.
+#[test]
+fn merge_names_the_shard_that_records_a_missing_description() {
+    let dir = scratch("merge-elsewhere");
+    shards_in(&dir);
+    let elsewhere = scratch("merge-elsewhere-run");
+    let (a, b) = (dir.join("a.json"), dir.join("b.json"));
+    let run = plumb_in(
+        &elsewhere,
+        &["merge", a.to_str().unwrap(), b.to_str().unwrap(), "--quiet"],
+    );
+    refused(&run, &["net.toml", "a.json"]);
+}
+
+/// A safetensors header naming `layer1` twice: JSON keeps the last, and the message blamed the
+/// data offsets ("invalid offset for tensor `layer1`") instead of the repeated name.
+#[test]
+fn a_name_twice_in_a_safetensors_header_is_called_so() {
+    let dir = scratch("st-twice");
+    let header = "{\"layer1\":{\"dtype\":\"F64\",\"shape\":[5,5],\"data_offsets\":[0,200]},\"layer1\":{\"dtype\":\"F64\",\"shape\":[3,6],\"data_offsets\":[200,344]}}";
+    std::fs::write(
+        dir.join("header.safetensors"),
+        safetensors_bytes(header, &[0; 344]),
+    )
+    .unwrap();
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let run = plumb_in(&dir, &["shapes", "small.toml", "-w", "header.safetensors"]);
+    refused(&run, &["header.safetensors", "layer1"]);
+    assert!(
+        ["twice", "duplicate", "same name"]
+            .iter()
+            .any(|w| run.stderr.contains(w)),
+        "the repeated name is not what the message says: {}",
+        run.stderr
+    );
+}
+
+/// A quote opened in a field and never closed swallows the rest of the file into that field;
+/// the message counted the fields that were left ("3 fields where the header has 5") instead of
+/// naming the open quote, which plumb's reader has its own message for.
+#[test]
+fn an_unclosed_quote_is_named_not_counted_as_fields() {
+    let dir = scratch("csv-quote");
+    std::fs::write(
+        dir.join("field.csv"),
+        "f1,f2,f3,f4,label\n1,2,\"3,4,0\n1,2,3,4,1\n",
+    )
+    .unwrap();
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let run = plumb_in(&dir, &["grad", "small.toml", "-d", "field.csv"]);
+    refused(&run, &["field.csv", "quote"]);
+}
+
+/// An NPY header declaring (0, 2^32, 2^32): no values at all, read in C order as an empty tensor
+/// of that shape; in Fortran order the same header was refused with ndarray's own words
+/// ("ShapeError/Overflow: arithmetic overflow") and no tensor name. One header, one reading.
+#[test]
+fn an_empty_shape_reads_alike_in_both_orders() {
+    let dir = scratch("npy-orders");
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let mut codes = Vec::new();
+    for (file, fortran) in [("c.npy", "False"), ("f.npy", "True")] {
+        // NPY 1.0 (NumPy's format description): magic, version, header length, the dict.
+        let dict = format!(
+            "{{'descr': '<f8', 'fortran_order': {fortran}, 'shape': (0, 4294967296, 4294967296), }}\n"
+        );
+        let mut bytes = b"\x93NUMPY\x01\x00".to_vec();
+        bytes.extend_from_slice(&(dict.len() as u16).to_le_bytes());
+        bytes.extend_from_slice(dict.as_bytes());
+        std::fs::write(dir.join(file), bytes).unwrap();
+        let run = plumb_in(&dir, &["shapes", "small.toml", "-w", file]);
+        assert!(!run.stderr.contains("ShapeError"), "{file}: {}", run.stderr);
+        codes.push(run.code);
+    }
+    assert_eq!(codes[0], codes[1], "C order and Fortran order read apart");
+}
