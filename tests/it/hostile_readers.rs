@@ -399,3 +399,38 @@ fn a_layer_named_input_does_not_break_the_gradient_round_trip() {
     );
     run.assert_code(0);
 }
+
+/// Good small files for small.toml, each followed by a gigabyte of zeros (a sparse file: no
+/// disk is written): the NPY header declares 200 bytes of data, the safetensors header 344, and
+/// the zip's end record is no longer at the end. Each was read whole into one allocation of the
+/// file's length before its header was looked at, which aborted under the limit; each header
+/// says from its first bytes that the rest cannot be right. Refused naming the file (exit 2).
+#[test]
+fn a_file_far_longer_than_its_header_declares_is_refused_before_it_is_read() {
+    let dir = scratch("long-files");
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    // NPY 1.0 (NumPy's format description) and safetensors (its published layout), by hand.
+    let dict = "{'descr': '<f8', 'fortran_order': False, 'shape': (5, 5), }";
+    let mut npy = b"\x93NUMPY\x01\x00".to_vec();
+    let padded = format!("{dict:<117}\n");
+    npy.extend_from_slice(&(padded.len() as u16).to_le_bytes());
+    npy.extend_from_slice(padded.as_bytes());
+    npy.extend_from_slice(&[0; 200]);
+    let header = "{\"layer1\":{\"dtype\":\"F64\",\"shape\":[5,5],\"data_offsets\":[0,200]},\"layer2\":{\"dtype\":\"F64\",\"shape\":[3,6],\"data_offsets\":[200,344]}}";
+    let st = safetensors_bytes(header, &[0; 344]);
+    let npz = std::fs::read(fixture("weights/small-augmented.npz")).unwrap();
+    let mut failures = Vec::new();
+    for (file, bytes) in [
+        ("long.npy", npy),
+        ("long.safetensors", st),
+        ("long.npz", npz),
+    ] {
+        let path = dir.join(file);
+        std::fs::write(&path, &bytes).unwrap();
+        let f = std::fs::OpenOptions::new().write(true).open(&path).unwrap();
+        f.set_len(1 << 30).unwrap();
+        let run = limited(&dir, HALF_GIB, &["shapes", "small.toml", "-w", file]);
+        failures.push(ended_badly(file, &run, &[2], &[file]));
+    }
+    all_ended_well(failures);
+}
