@@ -434,3 +434,32 @@ fn a_file_far_longer_than_its_header_declares_is_refused_before_it_is_read() {
     }
     all_ended_well(failures);
 }
+
+/// Twelve class labels for a network of 2^25 − 1 classes (input 1, one softmax layer: within
+/// `MAX_PARAMETERS`): one-hot, y is 12 × 33,554,431 values, 3.2 GB, from an 83-byte CSV or a
+/// 682-byte NPZ (fixtures/malformed/labels.npz, generate_hostile.py). The rows were built before
+/// any budget was asked (2.4 GB, then the allocator's refusal, for the CSV; 3.4 GB, then the
+/// activation budget's refusal, for the NPZ). The labels' count is known from the file before a
+/// row is built: refused naming the data file or the description (exit 2) within the limit.
+#[test]
+fn one_hot_rows_are_budgeted_before_they_are_built() {
+    let dir = scratch("one-hot");
+    std::fs::write(
+        dir.join("wide.toml"),
+        "input = 1\nloss = \"cross-entropy\"\n[[layer]]\nunits = 33554431\nactivation = \"softmax\"\n",
+    )
+    .unwrap();
+    let rows: String = (0..12).map(|k| format!("0.5,{k}\n")).collect();
+    std::fs::write(dir.join("labels.csv"), format!("x,label\n{rows}")).unwrap();
+    std::fs::copy(fixture("malformed/labels.npz"), dir.join("labels.npz")).unwrap();
+    let failures = ["labels.csv", "labels.npz"]
+        .into_iter()
+        .map(|data| {
+            let run = limited(&dir, 2 * HALF_GIB, &["grad", "wide.toml", "-d", data]);
+            let named = run.stderr.contains(data) || run.stderr.contains("wide.toml");
+            ended_badly(data, &run, &[2], &[])
+                .or_else(|| (!named).then(|| format!("{data}: names no file: {}", run.stderr)))
+        })
+        .collect();
+    all_ended_well(failures);
+}
