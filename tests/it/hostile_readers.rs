@@ -463,3 +463,18 @@ fn one_hot_rows_are_budgeted_before_they_are_built() {
         .collect();
     all_ended_well(failures);
 }
+
+/// An archive of no members (the 22-byte end record alone, as the zip format lays it out): the
+/// audit's refusal read "none of its tensors fits small.toml in any layout (it holds )", the
+/// list of what the file holds left blank. It holds no tensors, and the message says so.
+#[test]
+fn an_empty_archive_is_called_empty_by_the_audit() {
+    let dir = scratch("empty-archive");
+    std::fs::copy(fixture("nets/small.toml"), dir.join("small.toml")).unwrap();
+    let mut end = b"PK\x05\x06".to_vec();
+    end.extend_from_slice(&[0; 18]);
+    std::fs::write(dir.join("none.npz"), end).unwrap();
+    let run = plumb_in(&dir, &["audit", "small.toml", "-w", "none.npz"]);
+    refused(&run, &["none.npz"]);
+    assert!(!run.stderr.contains("holds )"), "{}", run.stderr);
+}
