@@ -478,3 +478,58 @@ fn an_empty_archive_is_called_empty_by_the_audit() {
     refused(&run, &["none.npz"]);
     assert!(!run.stderr.contains("holds )"), "{}", run.stderr);
 }
+
+/// A safetensors file of float64 tensors (name, shape, every value), in the published layout.
+fn safetensors_f64(tensors: &[(&str, &[usize], f64)]) -> Vec<u8> {
+    let (mut entries, mut data) = (Vec::new(), Vec::new());
+    for (name, shape, value) in tensors {
+        let n: usize = shape.iter().product();
+        let dims: Vec<String> = shape.iter().map(usize::to_string).collect();
+        entries.push(format!(
+            "\"{name}\":{{\"dtype\":\"F64\",\"shape\":[{}],\"data_offsets\":[{},{}]}}",
+            dims.join(","),
+            data.len(),
+            data.len() + 8 * n
+        ));
+        for _ in 0..n {
+            data.extend_from_slice(&value.to_le_bytes());
+        }
+    }
+    safetensors_bytes(&format!("{{{}}}", entries.join(",")), &data)
+}
+
+/// `input = { tokens, vocabulary }` read by a batch-norm, then an embedding: the description
+/// was accepted (a dense layer there is refused: token ids are not features), the norm's output
+/// kept the "token ids" shape, and the embedding looked its table up at the normalised values.
+/// With the norm's scale 100 and shift 50 from a weight file, `grad`, `check` and `audit`
+/// panicked (crates/engine/src/graph/embedding.rs:107, `index < dim`); with shift −500 every id
+/// read as 0 and the run passed. Refused naming the description's line (exit 2), never a panic.
+#[test]
+fn a_norm_over_token_ids_is_refused_not_looked_up() {
+    let dir = scratch("norm-tokens");
+    std::fs::write(
+        dir.join("net.toml"),
+        "input = { tokens = 3, vocabulary = 4 }\nloss = \"squared-error\"\n[[layer]]\nkind = \"batch-norm\"\n[[layer]]\nkind = \"embedding\"\nsize = 2\n[[layer]]\nkind = \"flatten\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    std::fs::write(
+        dir.join("w.safetensors"),
+        safetensors_f64(&[
+            ("layer1.scale", &[3], 100.0),
+            ("layer1.shift", &[3], 50.0),
+            ("layer2.table", &[4, 2], 1.0),
+            ("layer4", &[1, 7], 1.0),
+        ]),
+    )
+    .unwrap();
+    let failures = ["grad", "check", "audit"]
+        .into_iter()
+        .map(|command| {
+            let run = plumb_in(&dir, &[command, "net.toml", "-w", "w.safetensors"]);
+            ended_badly(command, &run, &[2], &["net.toml"])
+        })
+        .collect();
+    all_ended_well(failures);
+    let run = plumb_in(&dir, &["shapes", "net.toml"]);
+    refused(&run, &["net.toml:4", "batch-norm"]);
+}
