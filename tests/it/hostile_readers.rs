@@ -533,3 +533,29 @@ fn a_norm_over_token_ids_is_refused_not_looked_up() {
     let run = plumb_in(&dir, &["shapes", "net.toml"]);
     refused(&run, &["net.toml:4", "batch-norm"]);
 }
+
+/// A shard cut in the middle of its JSON, and one whose coordinate index is negative: the
+/// messages named the file and quoted the JSON reader ("EOF while parsing an object at line
+/// 366", "invalid value: integer `-1`, expected usize") but said nothing of what to do.
+/// The other refusals of a shard end "run the check again" or say the shard was edited.
+#[test]
+fn a_damaged_shard_says_how_to_get_a_good_one() {
+    let dir = scratch("damaged-shard");
+    shards_in(&dir);
+    let b = std::fs::read_to_string(dir.join("b.json")).unwrap();
+    std::fs::write(dir.join("cut.json"), &b[..b.len() / 2]).unwrap();
+    let mut v: serde_json::Value = serde_json::from_str(&b).unwrap();
+    v["coordinates"][0]["index"] = (-1).into();
+    std::fs::write(dir.join("negative.json"), v.to_string()).unwrap();
+    let failures = ["cut.json", "negative.json"]
+        .into_iter()
+        .map(|file| {
+            let run = plumb_in(&dir, &["merge", "a.json", file, "--quiet"]);
+            let fix = ["again", "edited"].iter().any(|w| run.stderr.contains(w));
+            ended_badly(file, &run, &[2], &[file]).or_else(|| {
+                (!fix).then(|| format!("{file}: no way to a good shard in: {}", run.stderr))
+            })
+        })
+        .collect();
+    all_ended_well(failures);
+}
