@@ -591,3 +591,22 @@ fn an_output_in_a_missing_directory_is_refused_before_any_work() {
     .collect();
     all_ended_well(failures);
 }
+
+/// fixtures/malformed/samples.npz (generate_hostile.py; np.load reads x as (25000000, 4) bool and
+/// y as (25000000,) int8): 120 KB whose arrays declare 25 million samples, a batch the activation
+/// budget refuses (6 × 10^8 values for small.toml) whatever is done with them. They were inflated
+/// and widened first (1.59 GB, 3.9 s), then refused; under the limit, an abort. The headers say
+/// how many samples there are before a byte of data is inflated.
+#[test]
+fn a_batch_past_the_budget_is_refused_from_its_headers() {
+    let run = limited(
+        &fixture(""),
+        HALF_GIB,
+        &["grad", "nets/small.toml", "-d", "malformed/samples.npz"],
+    );
+    let named = run.stderr.contains("samples.npz") || run.stderr.contains("small.toml");
+    all_ended_well(vec![
+        ended_badly("grad -d samples.npz", &run, &[2], &[])
+            .or_else(|| (!named).then(|| format!("names no file: {}", run.stderr))),
+    ]);
+}
