@@ -672,3 +672,46 @@ fn large_equal_weights_are_no_false_alarm() {
         "a right gradient failed: {alarms:?}"
     );
 }
+
+/// A float64 weight file holding 10^39, finite in f64 and past f32's largest finite value
+/// (about 3.4 × 10^38, IEEE 754 binary32), checked with `--precision f32`: the weights became
+/// infinite, every loss NaN, and the check failed all 43 coordinates as mismatches ("analytic
+/// NaN, numeric NaN, relative error 0, relative bound 0"). Non-finite weights are refused at
+/// loading (exit 2, naming the tensor); weights f32 cannot hold are refused the same way, or
+/// the run is inconclusive — never a failure nobody's gradient caused.
+#[test]
+fn weights_past_f32_are_no_mismatch_in_f32() {
+    let dir = scratch("past-f32");
+    std::fs::write(
+        dir.join("w.safetensors"),
+        safetensors_f64(&[("layer1", &[5, 5], 1e39), ("layer2", &[3, 6], 0.5)]),
+    )
+    .unwrap();
+    let w = dir.join("w.safetensors");
+    let run = plumb(&[
+        "check",
+        "nets/small.toml",
+        "-w",
+        w.to_str().unwrap(),
+        "--precision",
+        "f32",
+        "--format",
+        "json",
+        "--quiet",
+    ]);
+    if run.code == 2 {
+        refused(&run, &["w.safetensors", "layer1"]);
+        return;
+    }
+    let report = run.json();
+    let alarms: Vec<&serde_json::Value> = util::findings(&report)
+        .iter()
+        .filter(|f| f["code"].as_str().unwrap_or_default().contains("mismatch"))
+        .collect();
+    assert!(
+        report["verdict"] != "fail" && alarms.is_empty(),
+        "weights f32 cannot hold failed the check: {} findings, the first {:?}",
+        alarms.len(),
+        alarms.first()
+    );
+}
