@@ -756,3 +756,46 @@ fn data_past_f32_is_no_mismatch_in_f32() {
         "data f32 cannot hold failed the check with {alarms} mismatch findings"
     );
 }
+
+/// A squared-error target of 10^20 is finite in f32, its square is not: under `--precision f32`
+/// the loss was infinite (written as null), every numeric derivative too, and the check failed
+/// all 13 coordinates as mismatches against finite analytic values; in f64 the same file is
+/// inconclusive. A loss f32 cannot hold is said so (exit 2), or the check is inconclusive.
+#[test]
+fn a_loss_past_f32_is_no_mismatch_in_f32() {
+    let dir = scratch("loss-past-f32");
+    std::fs::write(
+        dir.join("net.toml"),
+        "inputs = 2\nloss = \"squared-error\"\n[[layer]]\nunits = 3\nactivation = \"tanh\"\n[[layer]]\nunits = 1\nactivation = \"identity\"\n",
+    )
+    .unwrap();
+    std::fs::write(dir.join("far.csv"), "a,b,y\n1,2,1e20\n0.5,1,2\n").unwrap();
+    let run = plumb_in(
+        &dir,
+        &[
+            "check",
+            "net.toml",
+            "-d",
+            "far.csv",
+            "--precision",
+            "f32",
+            "--format",
+            "json",
+            "--quiet",
+        ],
+    );
+    if run.code == 2 {
+        refused(&run, &["far.csv"]);
+        return;
+    }
+    let report = run.json();
+    let alarms = util::findings(&report)
+        .iter()
+        .filter(|f| f["code"].as_str().unwrap_or_default().contains("mismatch"))
+        .count();
+    assert!(
+        report["verdict"] != "fail" && alarms == 0,
+        "a loss f32 cannot hold failed the check with {alarms} mismatch findings (loss {})",
+        report["loss"]
+    );
+}
