@@ -275,7 +275,12 @@ fn merge_names_the_shard_that_records_a_missing_description() {
         &elsewhere,
         &["merge", a.to_str().unwrap(), b.to_str().unwrap(), "--quiet"],
     );
-    refused(&run, &["net.toml", "a.json"]);
+    refused(&run, &["net.toml"]);
+    assert!(
+        run.stderr.contains("a.json") || run.stderr.contains("b.json"),
+        "no shard named: {}",
+        run.stderr
+    );
 }
 
 /// A safetensors header naming `layer1` twice: JSON keeps the last, and the message blamed the
