@@ -15,6 +15,7 @@ mod graph_check;
 mod graph_compare;
 mod graph_shards;
 mod hostile;
+mod hostile_readers;
 mod json;
 mod malformed;
 mod probe;
