@@ -128,6 +128,23 @@ pub enum CheckError {
     /// there: no difference of losses can be judged (the message says which and what to do).
     #[error("{0}")]
     Unusable(String),
+    /// The loss at the weights and data is not finite in the check's precision.
+    #[error(
+        "the loss there is {loss} in {precision}: a check needs a finite loss; look at the weights' and the data's scale (plumb audit)"
+    )]
+    LossNotFinite { loss: f64, precision: &'static str },
+    /// A batch value past f32's range in an f32 check: sample and column from 0, of x or y.
+    #[error(
+        "sample {} holds {value:e} in {of} (column {}), past the largest f32 value (3.4e38): check in f64 (--precision f64), or scale the data",
+        .sample + 1,
+        .column + 1
+    )]
+    DataBeyondF32 {
+        sample: usize,
+        column: usize,
+        of: &'static str,
+        value: f64,
+    },
 }
 
 /// The verdict on one coordinate or direction.

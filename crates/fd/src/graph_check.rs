@@ -98,10 +98,10 @@ pub fn check_graph(
         }
     };
     if !loss.is_finite() {
-        return Err(CheckError::Unusable(format!(
-            "the loss at these weights is {loss} in {}: a check needs a finite loss; look at the weights' and the data's scale (plumb audit)",
-            config.precision.name()
-        )));
+        return Err(CheckError::LossNotFinite {
+            loss,
+            precision: config.precision.name(),
+        });
     }
     // NaN or ±inf in the gradient (weights so large that the loss overflows): every difference
     // would be NaN, and NaN against NaN is no verdict on anybody's backward pass.
@@ -138,9 +138,14 @@ fn beyond_f32(
             return Err(say(format!("tensor `{}`", graph.tensors()[t].name), k, *v));
         }
     }
-    for (what, a) in [("the data's x", x), ("the data's y", y)] {
-        if let Some((k, v)) = a.iter().enumerate().find(|(_, v)| past(v)) {
-            return Err(say(what.to_string(), k, *v));
+    for (what, a) in [("x", x), ("y", y)] {
+        if let Some(((sample, column), &value)) = a.indexed_iter().find(|(_, v)| past(v)) {
+            return Err(CheckError::DataBeyondF32 {
+                sample,
+                column,
+                of: what,
+                value,
+            });
         }
     }
     Ok(())

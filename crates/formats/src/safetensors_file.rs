@@ -97,14 +97,15 @@ fn repeated_name(bytes: &[u8]) -> Option<String> {
             f.write_str("a JSON object")
         }
         fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Option<String>, A::Error> {
-            let mut seen = std::collections::HashSet::new();
+            // Read to the end: the JSON reader checks the object closes after the visit.
+            let (mut seen, mut twice) = (std::collections::HashSet::new(), None);
             while let Some(key) = map.next_key::<String>()? {
-                if !seen.insert(key.clone()) {
-                    return Ok(Some(key));
+                if !seen.insert(key.clone()) && twice.is_none() {
+                    twice = Some(key);
                 }
                 map.next_value::<IgnoredAny>()?;
             }
-            Ok(None)
+            Ok(twice)
         }
     }
     let len = usize::try_from(u64::from_le_bytes(bytes.get(..8)?.try_into().ok()?)).ok()?;

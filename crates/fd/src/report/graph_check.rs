@@ -47,12 +47,19 @@ pub fn graph_check_report(
         progress,
     )
     .map_err(|e| match e {
+        // Said where the user can find it: the sample's file and line, or the weights (and the
+        // data, for a loss that overflows).
+        e @ CheckError::DataBeyondF32 { sample, .. } => CheckError::Unusable(format!(
+            "{}: {e}",
+            super::graph_loaded::sample_place(&loaded.data_source, sample)
+        )),
+        e @ CheckError::LossNotFinite { .. } => CheckError::Unusable(format!(
+            "weights {}, data {}: {e}",
+            loaded.weights_source.describe(),
+            loaded.data_source.describe()
+        )),
         CheckError::Unusable(why) => {
-            let from = match &loaded.data_source {
-                _ if !why.starts_with("the data") => loaded.weights_source.describe(),
-                data => data.describe(),
-            };
-            CheckError::Unusable(format!("{from}: {why}"))
+            CheckError::Unusable(format!("{}: {why}", loaded.weights_source.describe()))
         }
         other => other,
     })?;

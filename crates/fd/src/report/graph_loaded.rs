@@ -234,7 +234,9 @@ impl<X: LoadedX> GraphLoaded<X> {
                 .fold(0usize, usize::saturating_add),
         );
         let samples = X::samples(&batch);
-        let values = per_sample.checked_mul(2).and_then(|v| samples.checked_mul(v));
+        let values = per_sample
+            .checked_mul(2)
+            .and_then(|v| samples.checked_mul(v));
         if values.is_none_or(|v| v > MAX_ACTIVATION_VALUES) {
             return Err(GraphLoadError::Input {
                 path: desc.path.clone(),
@@ -266,30 +268,31 @@ impl<X: LoadedX> GraphLoaded<X> {
 fn check_probabilities(y: &Array2<f64>, source: &DataSource) -> Result<(), GraphLoadError> {
     let bad = y.indexed_iter().find(|(_, v)| !(0.0..=1.0).contains(*v));
     if let Some(((i, k), v)) = bad {
-        let place = match source {
-            DataSource::File { path, .. } => {
-                let line = if path
-                    .extension()
-                    .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
-                {
-                    format!(" (line {})", i + 2)
-                } else {
-                    String::new()
-                };
-                format!(
-                    "{}: sample {}{line}, target {}",
-                    path.display(),
-                    i + 1,
-                    k + 1
-                )
-            }
-            DataSource::Synthetic { .. } => format!("synthetic sample {}, target {}", i + 1, k + 1),
-        };
+        let place = format!("{}, target {}", sample_place(source, i), k + 1);
         return Err(GraphLoadError::Usage(format!(
             "{place}: {v} is outside [0, 1]; cross-entropy needs targets between 0 and 1 (one-hot labels or probabilities) — use squared-error for other targets"
         )));
     }
     Ok(())
+}
+
+/// Where sample `i` (from 0) of a batch is: "data.csv: sample 3 (line 4)", "d.npz: sample 3",
+/// "synthetic sample 3".
+pub fn sample_place(source: &DataSource, i: usize) -> String {
+    match source {
+        DataSource::File { path, .. } => {
+            let csv = path
+                .extension()
+                .is_some_and(|e| e.eq_ignore_ascii_case("csv"));
+            let line = if csv {
+                format!(" (line {})", i + 2)
+            } else {
+                String::new()
+            };
+            format!("{}: sample {}{line}", path.display(), i + 1)
+        }
+        DataSource::Synthetic { .. } => format!("synthetic sample {}", i + 1),
+    }
 }
 
 /// Non-finite weights make every figure meaningless: the first one is named by tensor and index
