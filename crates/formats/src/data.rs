@@ -103,6 +103,21 @@ pub enum DataError {
     OpenQuote { path: PathBuf, line: u64 },
 
     #[error(
+        "{}: {labels} class labels one-hot over {classes} classes are {} of targets{}; a \
+         gradient check needs a batch, not a whole data set: save a few hundred samples, or check \
+         the output layer's units",
+        .path.display(), bytes_text(*.bytes), if *.refused { ", more than the machine would \
+         give" } else { ", past the 2^27 values plumb holds for a batch" }
+    )]
+    TooManyTargets {
+        path: PathBuf,
+        labels: usize,
+        classes: usize,
+        bytes: u64,
+        refused: bool,
+    },
+
+    #[error(
         "{}: line {line}: the {samples} samples before this line already hold {} of values{}; \
          a gradient check needs a batch, not a whole data set: save a few hundred samples \
          (e.g. `head -n 1001 {}` for the header and 1,000 rows)",

@@ -543,7 +543,20 @@ fn one_hot(path: &Path, y: &Tensor, classes: usize, steps: usize) -> Result<Vec<
     } else {
         &["sample"]
     };
-    let mut out = Vec::with_capacity(y.data.len() * classes);
+    // Budgeted before a row is built: a few labels over many classes are gigabytes of rows.
+    let values = (y.data.len() as u64).saturating_mul(classes as u64);
+    let bytes = values.saturating_mul(8);
+    let mut out = Vec::new();
+    let limit = values > crate::MAX_BATCH_VALUES as u64;
+    if limit || out.try_reserve_exact(values as usize).is_err() {
+        return Err(DataError::TooManyTargets {
+            path: path.to_path_buf(),
+            labels: y.data.len(),
+            classes,
+            bytes,
+            refused: !limit,
+        });
+    }
     for (flat, &value) in y.data.iter().enumerate() {
         let class = label(value, classes).map_err(|problem| {
             let (index, place) = place(&y.shape, names, flat);

@@ -13,7 +13,17 @@ pub fn read_input(path: &Path, limit: u64) -> io::Result<Vec<u8>> {
     let file = File::open(path)?;
     // The same checks on what was opened: the path may have been replaced in between.
     let len = regular(&file.metadata()?, limit)?;
-    let mut bytes = Vec::with_capacity(len as usize);
+    // Asked of the allocator fallibly: a file within the limit may still be more than this
+    // machine (or a memory limit) can hold, which is a refusal, not an abort.
+    let mut bytes = Vec::new();
+    bytes.try_reserve_exact(len as usize).map_err(|_| {
+        io::Error::new(
+            io::ErrorKind::OutOfMemory,
+            format!(
+                "its {len} bytes do not fit in the memory plumb can have; is it the file you meant?"
+            ),
+        )
+    })?;
     file.take(limit.saturating_add(1)).read_to_end(&mut bytes)?;
     if bytes.len() as u64 > limit {
         return Err(too_large(bytes.len() as u64, limit));

@@ -47,6 +47,9 @@ pub const MAX_DESCRIPTION_BYTES: u64 = 1 << 20;
 /// The largest JSON report plumb reads back (a shard for `merge`, a `--baseline`): 256 MiB, about
 /// a million coordinates of a check; a JSON value in memory costs a few times its text.
 pub const MAX_REPORT_BYTES: u64 = 256 << 20;
+/// The most values a batch's pass may hold at once (outputs, saved tensors, scratch: 1 GiB in
+/// f64); a data file's one-hot targets alone are held to it before they are built.
+pub const MAX_BATCH_VALUES: usize = 1 << 27;
 pub use data::{DataError, read_data};
 pub use description::{DescriptionError, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor, INPUT_GRADIENT, LayoutError};

@@ -271,7 +271,9 @@ fn tensor<T: Copy>(
     header: Header,
     mut data: Vec<T>,
 ) -> Result<Tensor<T>, TensorFileError> {
-    if header.fortran_order && header.shape.len() > 1 {
+    // No values, no order to undo (and a shape like (0, 2^32, 2^32) is more than an index
+    // can span).
+    if header.fortran_order && header.shape.len() > 1 && !data.is_empty() {
         // Lay the column-major values out under their logical index, then walk that index in
         // row-major order. The length was checked by the caller, so the shape always fits.
         data = ArrayD::from_shape_vec(IxDyn(&header.shape).f(), data)

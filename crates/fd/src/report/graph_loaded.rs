@@ -18,7 +18,7 @@ use plumb_report::{DataSource, WeightsSource};
 /// The largest synthetic batch, in values (2²⁶ = 512 MiB of f64), a guard against a typo.
 pub const MAX_SYNTHETIC_VALUES: usize = 1 << 26;
 /// The most activation values a forward pass may hold (2²⁷ = 1 GiB of f64).
-pub const MAX_ACTIVATION_VALUES: usize = 1 << 27;
+pub const MAX_ACTIVATION_VALUES: usize = plumb_formats::MAX_BATCH_VALUES;
 
 /// A graph run's description, parameters (canonical shapes, [`plumb_engine::graph::Graph::tensors`]
 /// order) and batch, with where they came from. `X` holds the batch's x: f64 values, or
