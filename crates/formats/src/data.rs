@@ -103,6 +103,18 @@ pub enum DataError {
     OpenQuote { path: PathBuf, line: u64 },
 
     #[error(
+        "{}: array `x` declares {samples} samples, whose pass would hold at least {values} \
+         values, past the 2^27 plumb holds for a batch; a gradient check needs a batch, not a \
+         whole data set: save a few hundred samples",
+        .path.display()
+    )]
+    TooManySamples {
+        path: PathBuf,
+        samples: usize,
+        values: u64,
+    },
+
+    #[error(
         "{}: {labels} class labels one-hot over {classes} classes are {} of targets{}; a \
          gradient check needs a batch, not a whole data set: save a few hundred samples, or check \
          the output layer's units",

@@ -226,6 +226,22 @@ fn read_npz(
     order: AxisOrder,
     keep: bool,
 ) -> Result<Batch<Features>, DataError> {
+    // The samples x declares, from its header: a pass holds at least the input and the output
+    // of each sample twice, so a batch past the budget is refused before a byte is inflated.
+    if let Some(shapes) = crate::npz::declared_shapes(path)
+        && let Some((_, shape)) = shapes.iter().find(|(name, _)| name == "x")
+        && let Some(&samples) = shape.first()
+    {
+        let per_sample = 2 * (input.size() + output.size()) as u64;
+        let values = (samples as u64).saturating_mul(per_sample);
+        if values > crate::MAX_BATCH_VALUES as u64 {
+            return Err(DataError::TooManySamples {
+                path: path.to_path_buf(),
+                samples,
+                values,
+            });
+        }
+    }
     // Only a flat x is kept in f32: the engine's dense layer reads it so.
     let narrow = (keep && matches!(input, Shape::Flat(_))).then_some("x");
     let (mut file, mut seen, kept) = read_tensors_kept(path, narrow)?;

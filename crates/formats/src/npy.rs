@@ -222,6 +222,12 @@ pub(crate) fn head_dtype(path: &Path, name: &str, head: &[u8]) -> Option<DType> 
     declared(at, name, head).ok().map(|d| d.header.dtype)
 }
 
+/// The shape an NPY header at the start of `head` declares, if it reads.
+pub(crate) fn head_shape(path: &Path, name: &str, head: &[u8]) -> Option<Vec<usize>> {
+    let at = At { path, member: None };
+    declared(at, name, head).ok().map(|d| d.header.shape)
+}
+
 /// What a streamed member's values become: f64 from any dtype (widened), or f32 from an f32
 /// member, as stored.
 pub(crate) trait Element: Copy {

@@ -295,6 +295,26 @@ pub(crate) fn read_streamed(
     Some(read)
 }
 
+/// The shape each member's NPY header declares, read from the first bytes of each member alone
+/// (a deflated member is inflated only that far): what an archive holds, before any of it is
+/// read. `None` where anything does not read cleanly: the whole read then says what is wrong.
+pub(crate) fn declared_shapes(path: &Path) -> Option<Vec<(String, Vec<usize>)>> {
+    let file = crate::input::open_input(path, crate::MAX_TENSOR_BYTES).ok()?;
+    let mut archive = ZipArchive::new(file).ok()?;
+    let mut out = Vec::with_capacity(archive.len().min(1 << 16));
+    for index in 0..archive.len() {
+        let member = archive.by_index(index).ok()?;
+        let name = std::str::from_utf8(member.name_raw())
+            .ok()?
+            .strip_suffix(".npy")?
+            .to_string();
+        let mut head = Vec::with_capacity(HEAD);
+        member.take(HEAD as u64).read_to_end(&mut head).ok()?;
+        out.push((name.clone(), npy::head_shape(path, &name, &head)?));
+    }
+    Some(out)
+}
+
 /// The members of a streamed archive: each widened to f64 with what was seen of its values'
 /// finiteness, and the member asked for in f32 when it is stored in f32, with the number of
 /// members before it in the archive.
