@@ -33,7 +33,9 @@ use std::sync::Mutex;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace};
+use plumb_engine::graph::{
+    Difference, Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace,
+};
 use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
@@ -266,12 +268,18 @@ impl Run<'_> {
         // assumes for it, or the plain path computes it.
         let noise = loss_noise(self.config.eps, f0, loss_gross);
         real.respond(RESPONSE_SHARE * noise, self.sampled);
+        // In f32, losses of one entry are also asked for as changes (module doc).
+        if S::epsilon() > f64::EPSILON && self.config.method == Method::Central {
+            real.differ(self.sampled);
+        }
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of
         // coordinates by their change, of steps along a direction by the step.
         let seen: RefCell<HashMap<Key, bool>> = RefCell::new(HashMap::new());
         let seen_along: RefCell<HashMap<u64, bool>> = RefCell::new(HashMap::new());
+        // The bounds of the last request's losses as changes (None: the loss came whole).
+        let seen_bounds: RefCell<HashMap<Key, Option<f64>>> = RefCell::new(HashMap::new());
         let complex_mode = complex.is_some();
         let eps = self.config.eps;
         // The losses the checker asked for that came through a response (not the look-ups of
@@ -299,6 +307,25 @@ impl Run<'_> {
                     }
                     Ok(out.into_iter().map(|(v, _, _)| v).collect())
                 }
+                Request::Differences { count, changes } => {
+                    let buckets = buckets(count, changes);
+                    let out: Vec<(f64, bool, bool, Option<f64>)> = buckets
+                        .par_iter()
+                        .map_init(|| real.lend(), |ws, b| real.change_in(ws, b))
+                        .collect();
+                    real.release();
+                    responded.set(responded.get() + out.iter().filter(|o| o.2).count());
+                    let mut seen = seen.borrow_mut();
+                    let mut bounds = seen_bounds.borrow_mut();
+                    bounds.clear();
+                    for (b, &(_, crossed, _, bound)) in buckets.iter().zip(&out) {
+                        if let Some(key) = key_of(b) {
+                            seen.insert(key, crossed);
+                            bounds.insert(key, bound);
+                        }
+                    }
+                    Ok(out.into_iter().map(|(v, _, _, _)| v).collect())
+                }
                 Request::Along { v, deltas } => {
                     // Several steps share the lowest moved layer's change of z.
                     let change = (deltas.len() > 1).then(|| real.along_change(v)).flatten();
@@ -322,7 +349,9 @@ impl Run<'_> {
             seen.borrow_mut().clear();
             seen_along.borrow_mut().clear();
             let (count, changes) = match request {
-                Request::Changes { count, changes } => (count, changes),
+                Request::Changes { count, changes } | Request::Differences { count, changes } => {
+                    (count, changes)
+                }
                 // The kink verdicts at the real probe steps are computed when the checker asks.
                 Request::Along { v, deltas } => {
                     return Ok(deltas
@@ -396,11 +425,19 @@ impl Run<'_> {
                 real.at_along(v, d, None).1
             }
         };
+        let bound_of = |t: usize, k: usize, d: f64| -> Option<f64> {
+            let key = (t as u32, k as u64, d.to_bits(), 1);
+            seen_bounds.borrow().get(&key).copied().flatten()
+        };
         let inside = Inside {
             crossed: &crossed,
             crossed_along: &crossed_along,
             loss_gross,
             sees_kinks: true,
+            differences: real
+                .difference
+                .is_some()
+                .then_some(&bound_of as &dyn Fn(usize, usize, f64) -> Option<f64>),
         };
         let result = match check_tensors(
             self.tensors,
@@ -471,6 +508,9 @@ struct Eval<'a, S> {
     /// Per layer, the response of the two layers above it ([`Response`]), when it has one and
     /// the check asked for them ([`Eval::respond`]): one-entry losses of that layer through it.
     responses: Vec<Option<Response<S>>>,
+    /// The losses of one entry as changes ([`Difference`]), where the check asked for them
+    /// ([`Eval::differ`]).
+    difference: Option<Difference<S>>,
 }
 
 /// A workspace lent from an [`Eval`]'s pool for one thread's share of a request, given back
@@ -539,7 +579,54 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             kinks_from,
             pool: Mutex::new(Vec::new()),
             responses: Vec::new(),
+            difference: None,
         }
+    }
+
+    /// Takes one-entry losses as changes where the graph has a difference form, from the
+    /// base pass in f64 at the same (rounded) parameters, its values rounded once to S
+    /// ([`Difference::new`]), through the responses of the units with at least
+    /// [`RESPONSE_ENTRIES`] of the `picked` entries.
+    fn differ(&mut self, picked: &[(usize, usize)]) {
+        let wide = |a: &ArrayD<S>| a.mapv(|v| v.re());
+        let params: Vec<ArrayD<f64>> = self.params.iter().map(wide).collect();
+        let (x, y) = (self.x.mapv(|v| v.re()), self.y.mapv(|v| v.re()));
+        let exact = self.graph.forward(&params, x.view());
+        self.difference = Difference::new(self.graph, &exact, y.view()).map(|mut d| {
+            d.respond(self.graph, self.y.view(), picked, RESPONSE_ENTRIES);
+            d
+        });
+    }
+
+    /// The loss at one entry's change as the base's loss plus its change, with the change's
+    /// bound, where there is a difference form; otherwise as [`Eval::at_in`] with no bound.
+    /// (loss, crossed, through a response, bound).
+    fn change_in(
+        &self,
+        ws: &mut Workspace<S>,
+        changes: &[Change],
+    ) -> (f64, bool, bool, Option<f64>) {
+        if let (Some(diff), [c]) = (&self.difference, changes) {
+            let moved = Moved {
+                tensor: c.tensor as usize,
+                index: c.index as usize,
+                delta: S::from_f64(c.delta),
+            };
+            let (x, y) = (self.x.view(), self.y.view());
+            let changed = diff.loss_change(self.graph, &self.params, x, y, &moved);
+            if let Some(ch) =
+                changed.filter(|ch| ch.change.re().is_finite() && ch.bound.is_finite())
+            {
+                return (
+                    self.loss.re() + ch.change.re(),
+                    false,
+                    false,
+                    Some(ch.bound),
+                );
+            }
+        }
+        let (loss, crossed, responded) = self.at_in(ws, changes);
+        (loss, crossed, responded, None)
     }
 
     /// Takes one-entry losses through each layer's response where it has one, for losses whose
