@@ -318,7 +318,13 @@ pub(crate) fn check_tensors<E>(
             match settle
                 .then(|| {
                     let noise = noise_of(j, i)?;
-                    method.settle_one_step(&f, f0, h_of(i), noise, round, target_of(i))
+                    let target = target_of(i);
+                    if differences.is_some() {
+                        return method
+                            .one_step_estimate(&f, f0, h_of(i), noise, round)
+                            .filter(|e| e.error <= target.bound);
+                    }
+                    method.settle_one_step(&f, f0, h_of(i), noise, round, target)
                 })
                 .flatten()
             {

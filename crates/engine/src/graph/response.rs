@@ -561,10 +561,17 @@ impl<S: LayerScalar> Response<S> {
                 return None;
             }
             let shared = unit.truncation * t.powi(4);
-            let (f1, f2, f3) = (factor[0] * t, factor[1] * t * t, factor[2] * t * t * t);
+            // In S, each factor taken 16u larger for the rounding of this sum itself.
+            let c = |f: f64| S::from_f64(f * (1.0 + 16.0 * ru));
+            let (f1, f2, f3) = (
+                c(factor[0] * t),
+                c(factor[1] * t * t),
+                c(factor[2] * t * t * t),
+            );
+            let abs = |v: &S| S::from_f64(v.re().abs());
             for ((a1, a2), a3) in a1.iter().zip(a2).zip(a3) {
-                let e = f1 * a1.re().abs() + f2 * a2.re().abs() + f3 * a3.re().abs();
-                err.push(shared + e);
+                let e = f1 * abs(a1) + f2 * abs(a2) + f3 * abs(a3);
+                err.push(shared + e.re() * (1.0 + 16.0 * ru));
             }
         }
         out.clear();
