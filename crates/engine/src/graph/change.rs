@@ -32,7 +32,7 @@
 use ndarray::{ArrayD, ArrayView2};
 
 use super::dense::Dense;
-use super::loss::{OutputBase, gamma};
+use super::loss::{Errors, OutputBase, gamma};
 use super::{Graph, LayerScalar, Moved, Response, Shape, Step, Trace};
 use crate::{Activation, Loss};
 
@@ -173,7 +173,7 @@ impl<S: LayerScalar> Difference<S> {
     ) {
         self.responses = (0..graph.nodes().len())
             .map(|j| {
-                Response::over_wide(graph, &self.trace, &self.wide, y, j)
+                Response::over_wide(graph, &self.trace, &self.wide, y, j, &self.slopes)
                     .map(|r| r.for_entries(graph, entries, least))
             })
             .collect();
@@ -235,7 +235,7 @@ impl<S: LayerScalar> Difference<S> {
                 top[n * o + u] = *d;
                 err[n * o + u] = ru * d.re().abs();
             }
-            (top, err)
+            (top, Ok(err))
         } else {
             let act = node.activation;
             let ulps = act.change_ulps()?;
@@ -254,8 +254,11 @@ impl<S: LayerScalar> Difference<S> {
                 Some((top, err))
             });
             match responded {
-                Some(t) => t,
-                None => self.up_from(graph, params, trace, layer, u, &da, rel)?,
+                Some((top, per_sample)) => (top, Err(per_sample)),
+                None => {
+                    let (top, err) = self.up_from(graph, params, trace, layer, u, &da, rel)?;
+                    (top, Ok(err))
+                }
             }
         };
         let base = OutputBase {
@@ -273,7 +276,10 @@ impl<S: LayerScalar> Difference<S> {
             outputs,
             &base,
             &top,
-            &err,
+            match &err {
+                Ok(values) => Errors::Values(values),
+                Err(samples) => Errors::Samples(samples),
+            },
         )?;
         let factor = loss.l2_factor(m);
         if factor != 0.0 && graph.decays(moved.tensor) {

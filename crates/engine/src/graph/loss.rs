@@ -117,11 +117,19 @@ pub(crate) struct OutputBase<'a, S> {
     pub base_error: f64,
 }
 
+/// The errors of a top change's values ([`LossConfig::data_change`]).
+pub(crate) enum Errors<'a> {
+    /// A bound per value (m × outputs, sample rows).
+    Values(&'a [f64]),
+    /// Per sample, for a softmax only: Σ_c |Σy·p_c − y_c|·e_c (`OutputBase::slopes` times each
+    /// value's bound) and the largest e_c — all that its bound reads of them.
+    Samples(&'a [(f64, f64)]),
+}
+
 impl LossConfig {
     /// The change of the data term (reduction applied) when the output layer's z moves by `dz`
     /// (m × outputs, sample rows), computed as a change (never as the difference of two
-    /// losses), with a bound on its error: `err[n]` bounds the error of each of sample n's
-    /// values of dz. Identities (any calculus text): softmax cross-entropy per sample,
+    /// losses), with a bound on its error: `err` bounds the error of dz's values. Identities (any calculus text): softmax cross-entropy per sample,
     /// (Σ_c y_c)·ln(1 + Σ_c p_c(e^(dz_c) − 1)) − Σ_c y_c·dz_c, from log-sum-exp's change
     /// ln Σ_c p_c·e^(dz_c); logistic cross-entropy per value, softplus's change (from
     /// [`Activation::change`]) − y·dz; squared error per value, ½((a + δa − y)² − (a − y)²) =
@@ -138,11 +146,28 @@ impl LossConfig {
         outputs: usize,
         base: &OutputBase<'_, S>,
         dz: &[S],
-        err: &[f64],
+        err: Errors<'_>,
     ) -> Option<(S, f64)> {
         let u = S::epsilon() / 2.0;
         let o = outputs;
-        let m = err.len() / o.max(1);
+        let m = dz.len() / o.max(1);
+        let softmax = (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax);
+        let (values, samples): (&[f64], Vec<(f64, f64)>) = match err {
+            Errors::Values(v) if softmax => {
+                let per = v
+                    .chunks_exact(o)
+                    .zip(base.slopes.chunks_exact(o))
+                    .map(|(e, s0)| {
+                        let along: f64 = e.iter().zip(s0).map(|(e, s)| e * s).sum();
+                        (along, e.iter().fold(0.0f64, |m, &e| m.max(e)))
+                    })
+                    .collect();
+                (&[], per)
+            }
+            Errors::Values(v) => (v, Vec::new()),
+            Errors::Samples(_) if !softmax => return None,
+            Errors::Samples(p) => (&[], p.to_vec()),
+        };
         let mut total = S::zero();
         let (mut gross, mut bound) = (0.0f64, 0.0f64);
         // For a softmax, p·(e^dz − 1) of every value first, in one loop the compiler can
@@ -158,19 +183,15 @@ impl LossConfig {
                 grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1(d)));
             }
         }
-        let rows = dz
-            .chunks_exact(o)
-            .zip(base.y.chunks_exact(o))
-            .zip(err.chunks_exact(o));
-        for (n, ((dzr, yr), er)) in rows.enumerate() {
+        for (n, (dzr, yr)) in dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate() {
             let at = n * o..(n + 1) * o;
             let (change, b) = match (self.loss, output) {
                 (Loss::CrossEntropy, Activation::Softmax) => {
-                    let slope0 = &base.slopes[at.clone()];
-                    softmax_change(&grown[at], slope0, dzr, yr, er, base.base_error, u)?
+                    softmax_change(&grown[at], dzr, yr, samples[n], base.base_error, u)?
                 }
                 (Loss::CrossEntropy, Activation::Sigmoid) => {
                     let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
+                    let er = &values[at.clone()];
                     for (((&z, &d), &y), &e) in base.z[at].iter().zip(dzr).zip(yr).zip(er) {
                         let sp = Activation::Softplus.change(z, z, d)?;
                         let v = sp - y * d;
@@ -188,8 +209,9 @@ impl LossConfig {
                     let ulps = act.change_ulps()?;
                     let slope = act.max_slope();
                     let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
-                    let values = base.z[at.clone()].iter().zip(&base.a[at]);
-                    for ((((&z, &a), &d), &y), &e) in values.zip(dzr).zip(yr).zip(er) {
+                    let er = &values[at.clone()];
+                    let base_values = base.z[at.clone()].iter().zip(&base.a[at]);
+                    for ((((&z, &a), &d), &y), &e) in base_values.zip(dzr).zip(yr).zip(er) {
                         let da = act.change(z, a, d)?;
                         let v = da * (a - y + S::from_f64(0.5) * da);
                         let (dar, gap) = (da.re().abs(), (a - y).re().abs());
@@ -217,14 +239,13 @@ impl LossConfig {
 }
 
 /// One sample's change of a softmax cross-entropy and its bound ([`LossConfig::data_change`]):
-/// `grown` holds p_c·(e^(dz_c) − 1), `slope0` |Σy·p_c − y_c| per output at the base, `err` the
-/// error of each dz.
+/// `grown` holds p_c·(e^(dz_c) − 1); `(along, most_err)` is Σ_c |Σy·p_c − y_c|·e_c and the
+/// largest e_c ([`Errors::Samples`]).
 fn softmax_change<S: Scalar>(
     grown: &[S],
-    slope0: &[f64],
     dz: &[S],
     y: &[S],
-    err: &[f64],
+    (along, most_err): (f64, f64),
     base: f64,
     u: f64,
 ) -> Option<(S, f64)> {
@@ -245,13 +266,8 @@ fn softmax_change<S: Scalar>(
     let up = 1.0 + 2.0 * g;
     let (gs, gy, gyd) = (gs.re() * up, gy.re() * up, gyd.re() * up);
     let sr = s.re().abs();
-    let (mut most_err, mut along) = (0.0f64, 0.0f64);
-    for (&e, &s0) in err.iter().zip(slope0) {
-        most_err = most_err.max(e);
-        along += s0 * e;
-    }
     // (A NaN error fails the comparison and takes the plain path too.)
-    if sr > 0.5 || most_err.is_nan() || most_err > 0.125 {
+    if sr > 0.5 || most_err.is_nan() || along.is_nan() || most_err > 0.125 {
         return None;
     }
     let l = ln1p(s);

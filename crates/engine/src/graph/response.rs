@@ -90,6 +90,8 @@ pub struct Response<S> {
     wide: bool,
     /// The slopes in f64 (smooth L+1 over a wide base only).
     wide_slopes: Option<[Vec<f64>; 3]>,
+    /// Per output value, what its error counts for in the loss ([`Response::over_wide`]).
+    weights: Vec<f64>,
 }
 
 /// One unit's coefficients: M_k (m × outputs each) and the bound's factors per dᵏ.
@@ -101,6 +103,9 @@ struct Unit<S> {
     /// Per output value: the truncation's factor of d⁴ and the round-off's of d, d², d³.
     truncation: f64,
     rounding: [f64; 3],
+    /// Over a wide base, per sample: Σ_c weight·|M_k| for k = 1..3, max_c |M_k| for k = 1..3,
+    /// and Σ_c weight (each taken 2u larger than the rounded coefficients say).
+    sums: Vec<[f64; 7]>,
 
     /// For a piecewise-linear L+1, per sample the changes d[n] (lo, hi) within which no value
     /// of L+1 changes side, narrowed by [`KINK_MARGIN`]; empty for a smooth one.
@@ -207,14 +212,23 @@ impl<S: LayerScalar> Response<S> {
     /// that pass and rounded once (so each is within u of its value, not 32u of the largest),
     /// and each unit also keeps G_k = Σ_j |W_{L+2}[c, j]|·|σ⁽ᵏ⁾/k!|·|w_j|ᵏ per sample and
     /// output, the magnitude its coefficients' rounding scales with ([`Response::top_change`]).
+    /// `weights` (m × outputs) are what each output value's error counts for in the loss
+    /// (the softmax cross-entropy's |Σy·p_c − y_c|): each unit keeps, per sample, Σ_c of them
+    /// times |M_k| and the largest |M_k|, so that a loss's bound reads m values, not m·outputs.
     pub(crate) fn over_wide(
         graph: &Graph,
         trace: &Trace<S>,
         wide: &Trace<f64>,
         y: ArrayView2<S>,
         layer: usize,
+        weights: &[f64],
     ) -> Option<Response<S>> {
-        Self::build(graph, trace, Some(wide), y, layer, f64::INFINITY)
+        let mut r = Self::build(graph, trace, Some(wide), y, layer, f64::INFINITY)?;
+        if weights.len() != r.m * r.outputs {
+            return None;
+        }
+        r.weights = weights.to_vec();
+        Some(r)
     }
 
     fn build(
@@ -314,6 +328,7 @@ impl<S: LayerScalar> Response<S> {
             wanted: vec![true; units],
             wide: wide.is_some(),
             wide_slopes,
+            weights: Vec::new(),
         })
     }
 
@@ -447,7 +462,24 @@ impl<S: LayerScalar> Response<S> {
             // make a loss no bound speaks for: such a unit never answers.
             let finite = coeffs.iter().flatten().all(|v| v.re().is_finite())
                 && b.iter().all(|v| v.is_finite());
+            let mut sums = Vec::new();
+            if self.wide && self.weights.len() == m * o {
+                let ru = S::epsilon() / 2.0;
+                for (n, w) in self.weights.chunks_exact(o).enumerate() {
+                    let mut row = [0.0f64; 7];
+                    for (k, mk) in coeffs.iter().enumerate() {
+                        for (c, wc) in w.iter().enumerate() {
+                            let a = mk[n * o + c].re().abs() * (1.0 + 2.0 * ru);
+                            row[k] += wc * a;
+                            row[3 + k] = row[3 + k].max(a);
+                        }
+                    }
+                    row[6] = w.iter().sum();
+                    sums.push(row.map(|v| v * (1.0 + 1e-12)));
+                }
+            }
             Unit {
+                sums,
                 m: coeffs,
                 finite,
                 truncation: self.fourth * b[3],
@@ -510,7 +542,8 @@ impl<S: LayerScalar> Response<S> {
 
     /// The change of L+2's z (m × outputs, sample rows, into `out`) when unit u of L changes
     /// its activation by `d` (one per sample) — the response's Σ_k M_k·dᵏ, already a change —
-    /// and a bound on the error of each of its values (into `err`): the truncation (module
+    /// and a bound on the error of its values, per sample as the loss reads it (into `err`:
+    /// Σ_c weight·e_c and the largest e_c, [`Response::over_wide`]): the truncation (module
     /// doc), the coefficients' one rounding and Horner's, and what a relative error `rel` of
     /// each d moves it by. For a response [`Response::over_wide`] only, whose coefficients
     /// are formed in f64. `None` where the response would not answer (a unit it leaves out,
@@ -524,7 +557,7 @@ impl<S: LayerScalar> Response<S> {
         d: &[S],
         rel: f64,
         out: &mut Vec<S>,
-        err: &mut Vec<f64>,
+        err: &mut Vec<(f64, f64)>,
     ) -> Option<()> {
         if !self.wide {
             return None;
@@ -548,31 +581,21 @@ impl<S: LayerScalar> Response<S> {
         // of d moves the k-th term by k·rel of it.
         let horner = gamma(6, ru);
         let factor = [1.0, 2.0, 3.0].map(|k| (ru + horner + rel * k) * (1.0 + 8.0 * ru));
+        if unit.sums.len() != d.len() {
+            return None;
+        }
         err.clear();
-        err.reserve(self.m * o);
-        let [m1, m2, m3] = &unit.m;
-        let rows = m1
-            .chunks_exact(o)
-            .zip(m2.chunks_exact(o))
-            .zip(m3.chunks_exact(o));
-        for (v, ((a1, a2), a3)) in d.iter().zip(rows) {
+        err.reserve(self.m);
+        for (v, sums) in d.iter().zip(&unit.sums) {
             let t = v.re().abs();
             if !t.is_finite() {
                 return None;
             }
             let shared = unit.truncation * t.powi(4);
-            // In S, each factor taken 16u larger for the rounding of this sum itself.
-            let c = |f: f64| S::from_f64(f * (1.0 + 16.0 * ru));
-            let (f1, f2, f3) = (
-                c(factor[0] * t),
-                c(factor[1] * t * t),
-                c(factor[2] * t * t * t),
-            );
-            let abs = |v: &S| S::from_f64(v.re().abs());
-            for ((a1, a2), a3) in a1.iter().zip(a2).zip(a3) {
-                let e = f1 * abs(a1) + f2 * abs(a2) + f3 * abs(a3);
-                err.push(shared + e.re() * (1.0 + 16.0 * ru));
-            }
+            let f = [factor[0] * t, factor[1] * t * t, factor[2] * t * t * t];
+            let along = shared * sums[6] + f[0] * sums[0] + f[1] * sums[1] + f[2] * sums[2];
+            let most = shared + f[0] * sums[3] + f[1] * sums[4] + f[2] * sums[5];
+            err.push((along, most));
         }
         out.clear();
         out.resize(self.m * o, S::zero());
