@@ -50,6 +50,9 @@ pub struct Difference<S> {
     /// The output's softmax probabilities at the base (m × outputs), rounded once from f64;
     /// empty for another output.
     p: Vec<S>,
+    /// Per tanh layer, g′(z) of each base value in f64, rounded once (empty for the others:
+    /// only tanh's form reads it, [`Activation::change_from`]).
+    slopes_at: Vec<Vec<S>>,
     /// Per value, |Σy·p_c − y_c| at the base (softmax only; see `OutputBase`).
     slopes: Vec<f64>,
     /// Per layer, its [`Response`] over `trace` where it has one and was asked for.
@@ -117,6 +120,20 @@ impl<S: LayerScalar> Difference<S> {
                     .fold(0.0f64, |m, (a, b)| m.max((a.re() - b).abs()))
             })
             .collect();
+        let slopes_at = nodes
+            .iter()
+            .zip(&wide.steps)
+            .map(|(node, z)| match node.activation {
+                // 1 − tanh² z as sech² z = 1/cosh² z, which keeps its relative accuracy where
+                // tanh z is near ±1 (1 − a² there would be 0 or a few ulp of 1).
+                Activation::Tanh => z
+                    .out
+                    .iter()
+                    .map(|&z| S::from_f64(z.cosh().powi(-2)))
+                    .collect(),
+                _ => Vec::new(),
+            })
+            .collect();
         let trace = Trace {
             steps,
             outputs: wide.outputs.iter().map(narrow).collect(),
@@ -157,6 +174,7 @@ impl<S: LayerScalar> Difference<S> {
             },
             base_error,
             p,
+            slopes_at,
             slopes,
             responses: Vec::new(),
         })
@@ -177,6 +195,11 @@ impl<S: LayerScalar> Difference<S> {
                     .map(|r| r.for_entries(graph, entries, least))
             })
             .collect();
+    }
+
+    /// g′(z) at value k of layer j's base where its form reads it (see `slopes_at`), else 0.
+    fn slope(&self, j: usize, k: usize) -> S {
+        self.slopes_at[j].get(k).copied().unwrap_or(S::zero())
     }
 
     /// The lowest layer whose entries have a difference form.
@@ -242,7 +265,7 @@ impl<S: LayerScalar> Difference<S> {
             let mut da = Vec::with_capacity(m);
             for (n, &d) in dz.iter().enumerate() {
                 let at = n * units + u;
-                da.push(act.change(z[at], a[at], d)?);
+                da.push(act.change_from(z[at], a[at], self.slope(layer, at), d)?);
             }
             // Relative error of each change of unit u: δ·x's rounding, the change's own, and
             // the base's error in z through the activation's curvature.
@@ -331,7 +354,7 @@ impl<S: LayerScalar> Difference<S> {
             let mut change = Vec::with_capacity(dz.len());
             let mut change_err = Vec::with_capacity(dz.len());
             for (k, (&d, &e)) in dz.iter().zip(&err).enumerate() {
-                let c = act.change(z[k], a[k], d)?;
+                let c = act.change_from(z[k], a[k], self.slope(j, k), d)?;
                 change_err.push(own * c.re().abs() + slope * e * (1.0 + own));
                 change.push(c);
             }
