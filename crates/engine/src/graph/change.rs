@@ -55,6 +55,8 @@ pub struct Difference<S> {
     slopes_at: Vec<Vec<S>>,
     /// Per value, |Σy·p_c − y_c| at the base (softmax only; see `OutputBase`).
     slopes: Vec<f64>,
+    /// Per sample, Σy rounded once and Σ|y| (softmax only; see `OutputBase`).
+    ysums: Vec<(S, f64)>,
     /// Per layer, its [`Response`] over `trace` where it has one and was asked for.
     responses: Vec<Option<Response<S>>>,
 }
@@ -138,7 +140,7 @@ impl<S: LayerScalar> Difference<S> {
             steps,
             outputs: wide.outputs.iter().map(narrow).collect(),
         };
-        let (mut p, mut slopes) = (Vec::new(), Vec::new());
+        let (mut p, mut slopes, mut ysums) = (Vec::new(), Vec::new(), Vec::new());
         if last.activation == Activation::Softmax {
             let z = &wide.steps[nodes.len() - 1].out;
             p.reserve(z.len());
@@ -147,6 +149,7 @@ impl<S: LayerScalar> Difference<S> {
                 let e: Vec<f64> = row.iter().map(|v| (v - top).exp()).collect();
                 let sum: f64 = e.iter().sum();
                 let sy: f64 = yr.iter().sum();
+                ysums.push((S::from_f64(sy), yr.iter().map(|v| v.abs()).sum::<f64>()));
                 // With room for this f64 sum's own rounding.
                 slopes.extend(
                     e.iter()
@@ -176,6 +179,7 @@ impl<S: LayerScalar> Difference<S> {
             p,
             slopes_at,
             slopes,
+            ysums,
             responses: Vec::new(),
         })
     }
@@ -290,6 +294,7 @@ impl<S: LayerScalar> Difference<S> {
             p: &self.p,
             y: y.to_slice()?,
             slopes: &self.slopes,
+            ysums: &self.ysums,
             base_error: self.base_error[nodes.len() - 1],
         };
         let loss = graph.loss_config();

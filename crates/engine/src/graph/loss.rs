@@ -114,6 +114,8 @@ pub(crate) struct OutputBase<'a, S> {
     /// Per value, |Σy·p_c − y_c| (with margin for its own rounding): the softmax
     /// cross-entropy's slope in z at the base; empty for another output.
     pub slopes: &'a [f64],
+    /// Per sample, Σ_c y_c (summed in f64, rounded once) and Σ_c |y_c| (softmax only).
+    pub ysums: &'a [(S, f64)],
     pub base_error: f64,
 }
 
@@ -189,7 +191,8 @@ impl LossConfig {
             let at = n * o..(n + 1) * o;
             let (change, b) = match (self.loss, output) {
                 (Loss::CrossEntropy, Activation::Softmax) => {
-                    softmax_change(&grown[at], dzr, yr, samples[n], base.base_error, u)?
+                    let ys = base.ysums[n];
+                    softmax_change(&grown[at], dzr, yr, ys, samples[n], base.base_error, u)?
                 }
                 (Loss::CrossEntropy, Activation::Sigmoid) => {
                     let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
@@ -247,18 +250,17 @@ fn softmax_change<S: Scalar>(
     grown: &[S],
     dz: &[S],
     y: &[S],
+    (sy, gy): (S, f64),
     (along, most_err): (f64, f64),
     base: f64,
     u: f64,
 ) -> Option<(S, f64)> {
     let o = dz.len();
-    let (mut s, mut sy, mut yd) = (S::zero(), S::zero(), S::zero());
-    let (mut gs, mut gy, mut gyd) = (S::zero(), S::zero(), S::zero());
+    let (mut s, mut yd) = (S::zero(), S::zero());
+    let (mut gs, mut gyd) = (S::zero(), S::zero());
     for ((&t, &d), &yc) in grown.iter().zip(dz).zip(y) {
         s += t;
         gs += S::from_f64(t.re().abs());
-        sy += yc;
-        gy += S::from_f64(yc.re().abs());
         let v = yc * d;
         yd += v;
         gyd += S::from_f64(v.re().abs());
@@ -266,7 +268,7 @@ fn softmax_change<S: Scalar>(
     // Sums of magnitudes, each within γ(o) of its value: taken that much larger.
     let g = gamma(o + 1, u);
     let up = 1.0 + 2.0 * g;
-    let (gs, gy, gyd) = (gs.re() * up, gy.re() * up, gyd.re() * up);
+    let (gs, gyd) = (gs.re() * up, gyd.re() * up);
     let sr = s.re().abs();
     // (A NaN error fails the comparison and takes the plain path too.)
     if sr > 0.5 || most_err.is_nan() || along.is_nan() || most_err > 0.125 {
@@ -280,7 +282,8 @@ fn softmax_change<S: Scalar>(
     // q moves by at most 3e of itself more (e ≤ 1/8). An error e_c in each dz_c moves the
     // change by at most Σ_c |Σy·p_c − y_c|·e_c + |Σy|·e·(Σ_c|q_c − p_c| + 3e·Σ_c q_c), e the
     // largest e_c.
-    let shift = (gs * (1.0 + 16.0 * u) + sr) / (1.0 - sr);
+    // 1/(1 − |s|) ≤ 1 + 2|s| for |s| ≤ ½.
+    let shift = (gs * (1.0 + 16.0 * u) + sr) * (1.0 + 2.0 * sr);
     let syr = sy.re().abs();
     let moved = along + syr * most_err * (shift + 3.0 * most_err * (1.0 + shift) * 1.01);
     // Each p·(e^d − 1) within 14u (p rounded once, [`expm1`] within 12u, the product), their
