@@ -613,7 +613,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
                 delta: S::from_f64(c.delta),
             };
             let (x, y) = (self.x.view(), self.y.view());
-            let changed = diff.loss_change(self.graph, &self.params, x, y, &moved);
+            let changed = diff.loss_change(ws, self.graph, &self.params, x, y, &moved);
             if let Some(ch) =
                 changed.filter(|ch| ch.change.re().is_finite() && ch.bound.is_finite())
             {

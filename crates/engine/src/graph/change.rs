@@ -33,7 +33,7 @@ use ndarray::{ArrayD, ArrayView2};
 
 use super::dense::Dense;
 use super::loss::{Errors, OutputBase, gamma};
-use super::{Graph, LayerScalar, Moved, Response, Shape, Step, Trace};
+use super::{Graph, LayerScalar, Moved, Response, Shape, Step, Trace, Workspace};
 use crate::{Activation, Loss};
 
 /// The base point's values the difference form reads, built once per check.
@@ -214,8 +214,10 @@ impl<S: LayerScalar> Difference<S> {
     /// The change of the loss after `moved` (an entry of the graph's tensors), with its
     /// bound. `None` where there is no difference form (module doc): the caller takes the
     /// plain path.
+    #[allow(clippy::too_many_arguments)]
     pub fn loss_change(
         &self,
+        ws: &mut Workspace<S>,
         graph: &Graph,
         params: &[ArrayD<S>],
         x: ArrayView2<S>,
@@ -242,12 +244,13 @@ impl<S: LayerScalar> Difference<S> {
         let fan_in = input.ncols();
         let ru = S::epsilon() / 2.0;
         // Unit u's change of z: δ·x[n, j] for a weight, δ for a bias (one rounding each).
-        let dz: Vec<S> = if local == 0 {
+        let mut dz = ws.take(m);
+        if local == 0 {
             let j = moved.index % fan_in;
-            input.column(j).iter().map(|&v| moved.delta * v).collect()
+            dz.extend(input.column(j).iter().map(|&v| moved.delta * v));
         } else {
-            vec![moved.delta; m]
-        };
+            dz.resize(m, moved.delta);
+        }
         let (z, a) = (
             trace.steps[layer].out.as_slice()?,
             trace.outputs[layer].as_slice()?,
@@ -266,7 +269,7 @@ impl<S: LayerScalar> Difference<S> {
         } else {
             let act = node.activation;
             let ulps = act.change_ulps()?;
-            let mut da = Vec::with_capacity(m);
+            let mut da = ws.take(m);
             for (n, &d) in dz.iter().enumerate() {
                 let at = n * units + u;
                 da.push(act.change_from(z[at], a[at], self.slope(layer, at), d)?);
@@ -275,19 +278,24 @@ impl<S: LayerScalar> Difference<S> {
             // the base's error in z through the activation's curvature.
             let rel = (1.0 + ulps) * ru + act.curvature() * self.base_error[layer];
             let response = self.responses.get(layer).and_then(Option::as_ref);
+            let mut top = ws.take(m * nodes[nodes.len() - 1].layer.output().size());
             let responded = response.and_then(|r| {
-                let (mut top, mut err) = (Vec::new(), Vec::new());
+                let mut err = Vec::new();
                 r.top_change(graph, params, u, &da, rel, &mut top, &mut err)?;
-                Some((top, err))
+                Some(err)
             });
-            match responded {
-                Some((top, per_sample)) => (top, Err(per_sample)),
+            let made = match responded {
+                Some(per_sample) => (top, Err(per_sample)),
                 None => {
+                    ws.give(top);
                     let (top, err) = self.up_from(graph, params, trace, layer, u, &da, rel)?;
                     (top, Ok(err))
                 }
-            }
+            };
+            ws.give(da);
+            made
         };
+        ws.give(dz);
         let base = OutputBase {
             z: trace.steps[nodes.len() - 1].out.as_slice()?,
             a: trace.outputs[nodes.len() - 1].as_slice()?,
@@ -299,6 +307,7 @@ impl<S: LayerScalar> Difference<S> {
         };
         let loss = graph.loss_config();
         let outputs = nodes[nodes.len() - 1].layer.output().size();
+        let mut grown = ws.take(top.len());
         let (mut change, mut bound) = loss.data_change(
             nodes[nodes.len() - 1].activation,
             outputs,
@@ -308,7 +317,10 @@ impl<S: LayerScalar> Difference<S> {
                 Ok(values) => Errors::Values(values),
                 Err(samples) => Errors::Samples(samples),
             },
+            &mut grown,
         )?;
+        ws.give(grown);
+        ws.give(top);
         let factor = loss.l2_factor(m);
         if factor != 0.0 && graph.decays(moved.tensor) {
             let w = params[moved.tensor].as_slice()?[moved.index];

@@ -141,7 +141,7 @@ impl LossConfig {
     /// (softmax: |Σy| + Σ|y|), and the base's error in z times the sensitivity of the
     /// probabilities (2 per unit) or slopes ([`Activation::curvature`]). `None` for a
     /// sequence output, an output or loss without a difference form, or past the ranges
-    /// where the bound holds (|Σ p(e^dz − 1)| ≤ ½).
+    /// where the bound holds (|Σ p(e^dz − 1)| ≤ ½). `grown` is a buffer it may use.
     pub(crate) fn data_change<S: Scalar>(
         &self,
         output: Activation,
@@ -149,6 +149,7 @@ impl LossConfig {
         base: &OutputBase<'_, S>,
         dz: &[S],
         err: Errors<'_>,
+        grown: &mut Vec<S>,
     ) -> Option<(S, f64)> {
         let u = S::epsilon() / 2.0;
         let o = outputs;
@@ -174,7 +175,7 @@ impl LossConfig {
         let (mut gross, mut bound) = (0.0f64, 0.0f64);
         // For a softmax, p·(e^dz − 1) of every value first, in one loop the compiler can
         // vectorise (the series of [`expm1`] where every |dz| allows it).
-        let mut grown = Vec::new();
+        grown.clear();
         if (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax) {
             grown.reserve(dz.len());
             let widest = dz.iter().fold(0.0f64, |m, d| m.max(d.re().abs()));

@@ -5,7 +5,9 @@
 //! parameters and step (whose own round-off, ~1e-16·|J|, is far below the bounds checked).
 
 use ndarray::ArrayD;
-use plumb_engine::graph::{Dense, Difference, Graph, GraphBuilder, LossConfig, Moved, Shape};
+use plumb_engine::graph::{
+    Dense, Difference, Graph, GraphBuilder, LossConfig, Moved, Shape, Workspace,
+};
 use plumb_engine::{Activation, Batch, Init, Loss, Reduction, Rng};
 
 /// The f64 reference of g(z + d) − g(z) from libm at f32 arguments, with d and z exact.
@@ -195,7 +197,8 @@ fn worst_ratio(
                 index: k,
                 delta: d,
             };
-            let Some(c) = diff.loss_change(g, &p32, x32.view(), y32.view(), &moved) else {
+            let ws = &mut Workspace::default();
+            let Some(c) = diff.loss_change(ws, g, &p32, x32.view(), y32.view(), &moved) else {
                 continue;
             };
             answered += 1;
