@@ -17,9 +17,10 @@
 //! absolute values), carried alongside each change: a relative error per value while a change
 //! passes through products and activations one value at a time, an absolute one per value once
 //! a sum mixes several (γ(J)·Σ|w||Δa| plus the incoming errors through |W|). It also counts the
-//! base point's own rounding: the base's z of each layer differs from exact arithmetic at the
-//! same parameters by `base_error[layer]` (which the caller measures against a pass in f64),
-//! which moves each slope by up to [`Activation::curvature`] times that, relative. Two dense
+//! base point's own rounding: the base is the engine's pass in f64 at the parameters the check
+//! holds, each value rounded once (`Difference::new`), so its z of each layer differs from that
+//! pass by at most `base_error[layer]` (measured), which moves each slope by up to
+//! [`Activation::curvature`] times that, relative. Two dense
 //! layers above L with a softmax cross-entropy on top take the change of the top z from the
 //! [`Response`] (Σ_k M_k·dᵏ), with its own bound.
 //!
@@ -204,11 +205,6 @@ impl<S: LayerScalar> Difference<S> {
     /// g′(z) at value k of layer j's base where its form reads it (see `slopes_at`), else 0.
     fn slope(&self, j: usize, k: usize) -> S {
         self.slopes_at[j].get(k).copied().unwrap_or(S::zero())
-    }
-
-    /// The lowest layer whose entries have a difference form.
-    pub fn first(&self) -> usize {
-        self.first
     }
 
     /// The change of the loss after `moved` (an entry of the graph's tensors), with its
