@@ -592,10 +592,11 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         let params: Vec<ArrayD<f64>> = self.params.iter().map(wide).collect();
         let (x, y) = (self.x.mapv(|v| v.re()), self.y.mapv(|v| v.re()));
         let exact = self.graph.forward(&params, x.view());
-        self.difference = Difference::new(self.graph, &exact, y.view()).map(|mut d| {
-            d.respond(self.graph, self.y.view(), picked, RESPONSE_ENTRIES);
-            d
-        });
+        self.difference =
+            Difference::new(self.graph, &exact, self.x.view(), y.view()).map(|mut d| {
+                d.respond(self.graph, self.y.view(), picked, RESPONSE_ENTRIES);
+                d
+            });
     }
 
     /// The loss at one entry's change as the base's loss plus its change, with the change's

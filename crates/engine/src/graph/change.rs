@@ -51,6 +51,8 @@ pub struct Difference<S> {
     /// The output's softmax probabilities at the base (m × outputs), rounded once from f64;
     /// empty for another output.
     p: Vec<S>,
+    /// Per layer from `first`, its input transposed (fan-in × m, x's for layer 0).
+    columns: Vec<Vec<S>>,
     /// Per tanh layer, g′(z) of each base value in f64, rounded once (empty for the others:
     /// only tanh's form reads it, [`Activation::change_from`]).
     slopes_at: Vec<Vec<S>>,
@@ -75,7 +77,12 @@ impl<S: LayerScalar> Difference<S> {
     /// carry γ(fan-in) of Σ|w·x|, which moves every slope, and so every change, by as much);
     /// `None` where no layer has one (module doc). The base pass is computed once, not in the
     /// loop of losses.
-    pub fn new(graph: &Graph, wide: &Trace<f64>, y: ArrayView2<f64>) -> Option<Difference<S>> {
+    pub fn new(
+        graph: &Graph,
+        wide: &Trace<f64>,
+        x: ArrayView2<S>,
+        y: ArrayView2<f64>,
+    ) -> Option<Difference<S>> {
         let nodes = graph.nodes();
         let loss = graph.loss_config();
         let last = nodes.last()?;
@@ -137,6 +144,21 @@ impl<S: LayerScalar> Difference<S> {
                 _ => Vec::new(),
             })
             .collect();
+        // Each dense layer's input by columns (fan-in × m): a weight entry reads one column,
+        // contiguous here, strided (one cache line per sample) in the batch's rows.
+        let columns = (0..nodes.len())
+            .map(|j| {
+                if j < first {
+                    return Vec::new();
+                }
+                let input = if j == 0 {
+                    x.to_owned()
+                } else {
+                    wide.outputs[j - 1].mapv(S::from_f64)
+                };
+                input.t().iter().copied().collect()
+            })
+            .collect();
         let trace = Trace {
             steps,
             outputs: wide.outputs.iter().map(narrow).collect(),
@@ -162,6 +184,7 @@ impl<S: LayerScalar> Difference<S> {
         }
         Some(Difference {
             first,
+            columns,
             trace,
             wide: Trace {
                 steps: wide
@@ -231,19 +254,15 @@ impl<S: LayerScalar> Difference<S> {
         let local = moved.tensor - tensors.start;
         let u = node.layer.moved_channel(local, moved.index)?;
         let units = node.layer.output().size();
-        let input = if layer == 0 {
-            x
-        } else {
-            trace.outputs[layer - 1].view()
-        };
-        let m = input.nrows();
-        let fan_in = input.ncols();
+        let m = x.nrows();
+        let columns = &self.columns[layer];
+        let fan_in = columns.len() / m.max(1);
         let ru = S::epsilon() / 2.0;
         // Unit u's change of z: δ·x[n, j] for a weight, δ for a bias (one rounding each).
         let mut dz = ws.take(m);
         if local == 0 {
             let j = moved.index % fan_in;
-            dz.extend(input.column(j).iter().map(|&v| moved.delta * v));
+            dz.extend(columns[j * m..(j + 1) * m].iter().map(|&v| moved.delta * v));
         } else {
             dz.resize(m, moved.delta);
         }

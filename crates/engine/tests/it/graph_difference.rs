@@ -172,7 +172,8 @@ fn worst_ratio(
     let p32: Vec<ArrayD<f32>> = p.iter().map(|t| t.mapv(|v| v as f32)).collect();
     let (x32, y32) = (b.x.mapv(|v| v as f32), b.y.mapv(|v| v as f32));
     let wide = g.forward(p, b.x.view());
-    let mut diff = Difference::<f32>::new(g, &wide, b.y.view()).expect("a difference form");
+    let mut diff =
+        Difference::<f32>::new(g, &wide, x32.view(), b.y.view()).expect("a difference form");
     let mut rng = Rng::new(7);
     let mut picked = Vec::new();
     for (t, spec) in g.tensors().iter().enumerate() {
