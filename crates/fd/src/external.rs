@@ -32,6 +32,13 @@ pub struct Inside<'a> {
     /// Whether `crossed` sees the kinks. When it does not, a coordinate that would be a mismatch
     /// is first asked whether the loss is smooth across its stencil ([`smooth_across`]).
     pub sees_kinks: bool,
+    /// Where the loss can also be asked for as a change ([`Request::Differences`]), the bound
+    /// on the error of each such loss of the last request, by coordinate and step: `None` for a
+    /// loss that came whole. Central differences then first try to settle each coordinate on
+    /// losses as changes, judged by their own bounds rather than the scalar round-off of a
+    /// whole loss; a coordinate that does not settle so takes the ladder of whole losses, as
+    /// without them. `None` for an outside program (the scalar model).
+    pub differences: Option<&'a dyn Fn(usize, usize, f64) -> Option<f64>>,
 }
 
 impl Inside<'static> {
@@ -41,6 +48,7 @@ impl Inside<'static> {
             crossed_along: &|_, _| false,
             loss_gross: 0.0,
             sees_kinks: false,
+            differences: None,
         }
     }
 }
@@ -112,6 +120,12 @@ pub(crate) enum Request<'r> {
         v: &'r [Vec<f64>],
         deltas: &'r [f64],
     },
+    /// As `Changes`, each loss computed as the base's loss plus its change where the loss can
+    /// ([`Inside::differences`] then bounds each one's error); whole where it cannot.
+    Differences {
+        count: usize,
+        changes: &'r [Change],
+    },
 }
 
 /// A loss the checker asks: one value per perturbation of the request.
@@ -139,7 +153,9 @@ pub fn check_external<E>(
     };
     // An outside program takes every perturbation as changes.
     let mut ask = |request: Request<'_>| match request {
-        Request::Changes { count, changes } => losses(count, changes),
+        Request::Changes { count, changes } | Request::Differences { count, changes } => {
+            losses(count, changes)
+        }
         Request::Along { v, deltas } => losses(deltas.len(), &changes_along(v, deltas)),
     };
     check_tensors(tensors, f0, &mut ask, None, inside, config, &plan)
@@ -252,6 +268,7 @@ pub(crate) fn check_tensors<E>(
     // first ask for ±h and 2h alone: a coordinate that settles there ([`Method::settle_one_step`])
     // costs three losses; the others are asked for the rest of their stencil in a second request.
     let settle = method == Method::Central && config.step.is_none();
+    let differences = inside.differences.filter(|_| settle);
     let target_of = |i: usize| {
         let (t, k) = picked[i];
         rule.target(tensors[t].gradient[k], floors[t])
@@ -281,12 +298,34 @@ pub(crate) fn check_tensors<E>(
             })
             .collect();
         let per = first.first().map_or(1, |(_, s)| s.len());
-        let mut tables = ask_marked(losses, crossed, &first, per)?;
+        let (mut tables, bounds) = ask_marked(losses, crossed, &first, per, differences)?;
+        // With losses as changes, each coordinate's own round-off: the largest bound of its
+        // three losses, plus the f64 rounding of adding each change to the base's loss (none
+        // of the three came whole, or the coordinate takes the whole ladder below).
+        let noise_of = |j: usize, i: usize| -> Option<f64> {
+            if differences.is_none() {
+                return Some(noise);
+            }
+            let mut most = 0.0f64;
+            for d in method.one_step_stencil(h_of(i), round) {
+                most = most.max(look_up_bound(&bounds[j], d)?);
+            }
+            Some(most + 2.0 * f64::EPSILON * f0.abs())
+        };
         let mut open = Vec::new();
         for (j, &i) in todo.iter().enumerate() {
             let f = |d: f64| look_up(&tables[j], d);
             match settle
-                .then(|| method.settle_one_step(&f, f0, h_of(i), noise, round, target_of(i)))
+                .then(|| {
+                    let noise = noise_of(j, i)?;
+                    let target = target_of(i);
+                    if differences.is_some() {
+                        return method
+                            .one_step_estimate(&f, f0, h_of(i), noise, round)
+                            .filter(|e| e.error <= target.bound);
+                    }
+                    method.settle_one_step(&f, f0, h_of(i), noise, round, target)
+                })
                 .flatten()
             {
                 Some(est) => {
@@ -302,17 +341,25 @@ pub(crate) fn check_tensors<E>(
                 .map(|&j| {
                     let i = todo[j];
                     let asked = &tables[j];
+                    // Losses as changes are not mixed with whole ones: the ladder asks for
+                    // its whole stencil again.
                     let steps = method
                         .stencil(h_of(i), reach, round)
                         .into_iter()
-                        .filter(|d| !asked.iter().any(|(b, _)| *b == d.to_bits()))
+                        .filter(|d| {
+                            differences.is_some() || !asked.iter().any(|(b, _)| *b == d.to_bits())
+                        })
                         .collect();
                     (picked[i], steps)
                 })
                 .collect();
-            let more = ask_marked(losses, crossed, &rest, method.evaluations())?;
+            let (more, _) = ask_marked(losses, crossed, &rest, method.evaluations(), None)?;
             for (&j, m) in open.iter().zip(more) {
-                tables[j].extend(m);
+                if differences.is_some() {
+                    tables[j] = m;
+                } else {
+                    tables[j].extend(m);
+                }
             }
         }
         let mut next = Vec::new();
@@ -696,15 +743,21 @@ fn look_up(table: &Table, d: f64) -> (f64, bool) {
 
 /// As [`ask`], with each step's kink verdict `crossed(t, k, d)` taken right after its request
 /// (the graph keeps the verdicts of the last request only).
+///
+/// With `differences`, the losses are asked for as changes ([`Request::Differences`]), and
+/// each coordinate's bounds (`differences(t, k, d)` per step: `None` for a loss that came
+/// whole) are returned beside its table.
 fn ask_marked<E>(
     losses: &mut Ask<'_, E>,
     crossed: &dyn Fn(usize, usize, f64) -> bool,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
-) -> Result<Vec<Table>, E> {
+    differences: Option<&dyn Fn(usize, usize, f64) -> Option<f64>>,
+) -> Result<(Vec<Table>, Vec<Bounds>), E> {
     let mut out = Vec::with_capacity(wanted.len());
+    let mut bounds = Vec::new();
     for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
-        let tables = ask(losses, chunk, per)?;
+        let tables = ask_as(losses, chunk, per, differences.is_some())?;
         for (((t, k), deltas), table) in chunk.iter().zip(tables) {
             out.push(
                 deltas
@@ -715,9 +768,26 @@ fn ask_marked<E>(
                     })
                     .collect(),
             );
+            if let Some(bound) = differences {
+                bounds.push(
+                    deltas
+                        .iter()
+                        .map(|d| (d.to_bits(), bound(*t, *k, *d)))
+                        .collect(),
+                );
+            }
         }
     }
-    Ok(out)
+    Ok((out, bounds))
+}
+
+/// The bounds of a coordinate's losses as changes, by step bits ([`ask_marked`]).
+type Bounds = Vec<(u64, Option<f64>)>;
+
+/// The bound of the loss at step `d`; `None` where it came whole or was not asked for.
+fn look_up_bound(bounds: &Bounds, d: f64) -> Option<f64> {
+    let key = d.to_bits();
+    bounds.iter().find(|(b, _)| *b == key).and_then(|(_, v)| *v)
 }
 
 /// The loss at each coordinate's steps, one table (step bits → loss) per coordinate, asked in
@@ -726,6 +796,16 @@ fn ask<E>(
     losses: &mut Ask<'_, E>,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
+) -> Result<Vec<HashMap<u64, f64>>, E> {
+    ask_as(losses, wanted, per, false)
+}
+
+/// [`ask`], as changes where `differences` ([`Request::Differences`]).
+fn ask_as<E>(
+    losses: &mut Ask<'_, E>,
+    wanted: &[((usize, usize), Vec<f64>)],
+    per: usize,
+    differences: bool,
 ) -> Result<Vec<HashMap<u64, f64>>, E> {
     let mut out = Vec::with_capacity(wanted.len());
     for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
@@ -740,9 +820,11 @@ fn ask<E>(
                 });
             }
         }
-        let values = losses(Request::Changes {
-            count: changes.len(),
-            changes: &changes,
+        let (count, changes) = (changes.len(), &changes[..]);
+        let values = losses(if differences {
+            Request::Differences { count, changes }
+        } else {
+            Request::Changes { count, changes }
         })?;
         let mut at = 0;
         for (_, deltas) in chunk {

@@ -33,7 +33,9 @@ use std::sync::Mutex;
 
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
-use plumb_engine::graph::{Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace};
+use plumb_engine::graph::{
+    Difference, Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace,
+};
 use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
@@ -319,11 +321,17 @@ impl Run<'_> {
         // assumes for it, or the plain path computes it.
         let noise = loss_noise(self.config.eps, f0, loss_gross);
         real.respond(RESPONSE_SHARE * noise, self.sampled);
+        // In f32, losses of one entry are also asked for as changes (module doc).
+        if S::epsilon() > f64::EPSILON && self.config.method == Method::Central {
+            real.differ(self.sampled);
+        }
         let complex = (self.config.method == Method::ComplexStep)
             .then(|| Eval::<C>::new(graph, self.params, self.x, self.y));
         // Kink verdicts of the last request, looked up by the checker right after it: of
         // coordinates by their change, of steps along a direction by the step.
-        let seen: RefCell<HashMap<Key, bool>> = RefCell::new(HashMap::new());
+        // With each coordinate's verdict, the bound of its loss where it came as a change
+        // (`Request::Differences`; None where it came whole).
+        let seen: RefCell<Seen> = RefCell::default();
         let seen_along: RefCell<HashMap<u64, bool>> = RefCell::new(HashMap::new());
         let complex_mode = complex.is_some();
         let eps = self.config.eps;
@@ -347,10 +355,26 @@ impl Run<'_> {
                     let mut seen = seen.borrow_mut();
                     for (b, &(_, crossed, _)) in buckets.iter().zip(&out) {
                         if let Some(key) = key_of(b) {
-                            seen.insert(key, crossed);
+                            seen.insert(key, (crossed, None));
                         }
                     }
                     Ok(out.into_iter().map(|(v, _, _)| v).collect())
+                }
+                Request::Differences { count, changes } => {
+                    let buckets = buckets(count, changes);
+                    let out: Vec<(f64, bool, bool, Option<f64>)> = buckets
+                        .par_iter()
+                        .map_init(|| real.lend(), |ws, b| real.change_in(ws, b))
+                        .collect();
+                    real.release();
+                    responded.set(responded.get() + out.iter().filter(|o| o.2).count());
+                    let mut seen = seen.borrow_mut();
+                    for (b, &(_, crossed, _, bound)) in buckets.iter().zip(&out) {
+                        if let Some(key) = key_of(b) {
+                            seen.insert(key, (crossed, bound));
+                        }
+                    }
+                    Ok(out.into_iter().map(|(v, _, _, _)| v).collect())
                 }
                 Request::Along { v, deltas } => {
                     // Several steps share the lowest moved layer's change of z.
@@ -375,7 +399,9 @@ impl Run<'_> {
             seen.borrow_mut().clear();
             seen_along.borrow_mut().clear();
             let (count, changes) = match request {
-                Request::Changes { count, changes } => (count, changes),
+                Request::Changes { count, changes } | Request::Differences { count, changes } => {
+                    (count, changes)
+                }
                 // The kink verdicts at the real probe steps are computed when the checker asks.
                 Request::Along { v, deltas } => {
                     return Ok(deltas
@@ -415,14 +441,14 @@ impl Run<'_> {
             Ok(out
                 .into_iter()
                 .map(|(im, probes)| {
-                    seen.extend(probes);
+                    seen.extend(probes.into_iter().map(|(k, c)| (k, (c, None))));
                     im
                 })
                 .collect())
         };
         // A verdict the last request did not leave is computed here (one evaluation).
         let lookup = |changes: &[Change]| -> bool {
-            if let Some(c) = key_of(changes).and_then(|k| seen.borrow().get(&k).copied()) {
+            if let Some(c) = key_of(changes).and_then(|k| seen.borrow().get(&k).map(|v| v.0)) {
                 return c;
             }
             if complex_mode {
@@ -449,11 +475,19 @@ impl Run<'_> {
                 real.at_along(v, d, None).1
             }
         };
+        let bound_of = |t: usize, k: usize, d: f64| -> Option<f64> {
+            let key = (t as u32, k as u64, d.to_bits(), 1);
+            seen.borrow().get(&key).and_then(|v| v.1)
+        };
         let inside = Inside {
             crossed: &crossed,
             crossed_along: &crossed_along,
             loss_gross,
             sees_kinks: true,
+            differences: real
+                .difference
+                .is_some()
+                .then_some(&bound_of as &dyn Fn(usize, usize, f64) -> Option<f64>),
         };
         let result = match check_tensors(
             self.tensors,
@@ -492,6 +526,38 @@ fn buckets(count: usize, changes: &[Change]) -> Vec<Cow<'_, [Change]>> {
     out
 }
 
+/// The last request's kink verdicts and bounds by key, hashed by [`KeyHasher`].
+type Seen = HashMap<Key, (bool, Option<f64>), std::hash::BuildHasherDefault<KeyHasher>>;
+
+/// A multiply-rotate hash of a [`Key`]'s four words: the checker looks a verdict up several
+/// times per loss, where the default hasher (SipHash, built against hostile keys, which these
+/// are not) took 2–3% of a check.
+#[derive(Default)]
+struct KeyHasher(u64);
+
+impl std::hash::Hasher for KeyHasher {
+    fn finish(&self) -> u64 {
+        // High bits folded into the low ones the table indexes by (a step's sign and exponent
+        // sit at the top of its bits).
+        let x = (self.0 ^ (self.0 >> 33)).wrapping_mul(0xff51_afd7_ed55_8ccd);
+        x ^ (x >> 33)
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.write_u64(u64::from(b));
+        }
+    }
+    fn write_u64(&mut self, v: u64) {
+        self.0 = (self.0.rotate_left(5) ^ v).wrapping_mul(0x9e37_79b9_7f4a_7c15);
+    }
+    fn write_u32(&mut self, v: u32) {
+        self.write_u64(u64::from(v));
+    }
+    fn write_usize(&mut self, v: usize) {
+        self.write_u64(v as u64);
+    }
+}
+
 fn key_of(changes: &[Change]) -> Option<Key> {
     changes
         .first()
@@ -524,6 +590,9 @@ struct Eval<'a, S> {
     /// Per layer, the response of the two layers above it ([`Response`]), when it has one and
     /// the check asked for them ([`Eval::respond`]): one-entry losses of that layer through it.
     responses: Vec<Option<Response<S>>>,
+    /// The losses of one entry as changes ([`Difference`]), where the check asked for them
+    /// ([`Eval::differ`]).
+    difference: Option<Difference<S>>,
 }
 
 /// A workspace lent from an [`Eval`]'s pool for one thread's share of a request, given back
@@ -592,7 +661,55 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             kinks_from,
             pool: Mutex::new(Vec::new()),
             responses: Vec::new(),
+            difference: None,
         }
+    }
+
+    /// Takes one-entry losses as changes where the graph has a difference form, from the
+    /// base pass in f64 at the same (rounded) parameters, its values rounded once to S
+    /// ([`Difference::new`]), through the responses of the units with at least
+    /// [`RESPONSE_ENTRIES`] of the `picked` entries.
+    fn differ(&mut self, picked: &[(usize, usize)]) {
+        let wide = |a: &ArrayD<S>| a.mapv(|v| v.re());
+        let params: Vec<ArrayD<f64>> = self.params.iter().map(wide).collect();
+        let (x, y) = (self.x.mapv(|v| v.re()), self.y.mapv(|v| v.re()));
+        let exact = self.graph.forward(&params, x.view());
+        self.difference =
+            Difference::new(self.graph, &exact, self.x.view(), y.view()).map(|mut d| {
+                d.respond(self.graph, self.y.view(), picked, RESPONSE_ENTRIES);
+                d
+            });
+    }
+
+    /// The loss at one entry's change as the base's loss plus its change, with the change's
+    /// bound, where there is a difference form; otherwise as [`Eval::at_in`] with no bound.
+    /// (loss, crossed, through a response, bound).
+    fn change_in(
+        &self,
+        ws: &mut Workspace<S>,
+        changes: &[Change],
+    ) -> (f64, bool, bool, Option<f64>) {
+        if let (Some(diff), [c]) = (&self.difference, changes) {
+            let moved = Moved {
+                tensor: c.tensor as usize,
+                index: c.index as usize,
+                delta: S::from_f64(c.delta),
+            };
+            let (x, y) = (self.x.view(), self.y.view());
+            let changed = diff.loss_change(ws, self.graph, &self.params, x, y, &moved);
+            if let Some(ch) =
+                changed.filter(|ch| ch.change.re().is_finite() && ch.bound.is_finite())
+            {
+                return (
+                    self.loss.re() + ch.change.re(),
+                    false,
+                    false,
+                    Some(ch.bound),
+                );
+            }
+        }
+        let (loss, crossed, responded) = self.at_in(ws, changes);
+        (loss, crossed, responded, None)
     }
 
     /// Takes one-entry losses through each layer's response where it has one, for losses whose

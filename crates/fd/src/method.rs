@@ -325,6 +325,44 @@ impl Method {
         })
     }
 
+    /// Central differences on ±h and 2h alone, whatever they say, for losses whose round-off
+    /// bound is their own ([`crate::Inside::differences`]): the quotient at ±h, with the error
+    /// [`Method::settle_one_step`] would give it; `None` where a step crosses a kink or the
+    /// method is not central. Its caller takes it when that error is within the target's bound,
+    /// agreeing or not: an estimate that precise decides a disagreement as well (a mistake is
+    /// then a mismatch at once rather than a question for the ladder of whole losses, whose
+    /// round-off is far coarser).
+    pub fn one_step_estimate(
+        &self,
+        f: &dyn Fn(f64) -> (f64, bool),
+        f0: f64,
+        h: f64,
+        noise: f64,
+        round: fn(f64) -> f64,
+    ) -> Option<Estimate> {
+        if *self != Method::Central {
+            return None;
+        }
+        let h = round(h);
+        let (p, cp) = f(h);
+        let (m, cm) = f(-h);
+        let (q, cq) = f(2.0 * h);
+        if cp || cm || cq {
+            return None;
+        }
+        let truncation = (q - 3.0 * p + 3.0 * f0 - m).abs() / (6.0 * h);
+        let error = 2.0 * truncation + 2.0 * noise / h;
+        // A NaN anywhere is no estimate.
+        let value = (p - m) / (2.0 * h);
+        (value.is_finite() && error.is_finite()).then_some(Estimate {
+            value,
+            error,
+            step: h,
+            crossed: false,
+            one_step: true,
+        })
+    }
+
     /// Every method without a target.
     fn estimate_plain(
         &self,

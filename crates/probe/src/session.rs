@@ -216,6 +216,7 @@ pub fn probe(
         crossed_along: &crossed_along,
         loss_gross,
         sees_kinks: reference.is_some(),
+        differences: None,
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<crate::Change> = changes

@@ -110,7 +110,11 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
         .collect();
     assert_eq!(strays.len(), plumb_audit::STRAY_LISTED + 1);
     let rest = 98_000 - plumb_audit::STRAY_LISTED;
-    assert!(strays[plumb_audit::STRAY_LISTED].message.starts_with(&format!("{rest} more")));
+    assert!(
+        strays[plumb_audit::STRAY_LISTED]
+            .message
+            .starts_with(&format!("{rest} more"))
+    );
     let cases = audit.cases();
     // A stray tensor's finding is a shape finding, which has a case among the shape cases, not
     // here; with the measures skipped, the network's case is all that is left.

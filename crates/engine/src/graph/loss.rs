@@ -93,3 +93,325 @@ pub(crate) fn by_rows<S>(x: ArrayView2<S>, n: usize) -> ArrayView2<S> {
     x.into_shape_with_order((n, total / n.max(1)))
         .expect("batches are standard layout")
 }
+
+/// γ(n) = n·u / (1 − n·u), Higham (Accuracy and Stability of Numerical Algorithms, §3.1): a sum
+/// or dot product of n terms in a precision of unit roundoff u errs by at most γ(n) times the
+/// sum of the terms' absolute values.
+#[inline]
+pub(crate) fn gamma(n: usize, u: f64) -> f64 {
+    let nu = n as f64 * u;
+    nu / (1.0 - nu)
+}
+
+/// What [`LossConfig::data_change`] reads of the base point: the output layer's z and a, and
+/// (for a softmax) its probabilities, each m × outputs in sample rows, with the largest
+/// error of the base's z against exact arithmetic (`base_error`).
+pub(crate) struct OutputBase<'a, S> {
+    pub z: &'a [S],
+    pub a: &'a [S],
+    pub p: &'a [S],
+    pub y: &'a [S],
+    /// Per value, |Σy·p_c − y_c| (with margin for its own rounding): the softmax
+    /// cross-entropy's slope in z at the base; empty for another output.
+    pub slopes: &'a [f64],
+    /// Per sample, Σ_c y_c (summed in f64, rounded once) and Σ_c |y_c| (softmax only).
+    pub ysums: &'a [(S, f64)],
+    pub base_error: f64,
+}
+
+/// The errors of a top change's values ([`LossConfig::data_change`]).
+pub(crate) enum Errors<'a> {
+    /// A bound per value (m × outputs, sample rows).
+    Values(&'a [f64]),
+    /// Per sample, for a softmax only: Σ_c |Σy·p_c − y_c|·e_c (`OutputBase::slopes` times each
+    /// value's bound) and the largest e_c — all that its bound reads of them.
+    Samples(&'a [(f64, f64)]),
+}
+
+impl LossConfig {
+    /// The change of the data term (reduction applied) when the output layer's z moves by `dz`
+    /// (m × outputs, sample rows), computed as a change (never as the difference of two
+    /// losses), with a bound on its error: `err` bounds the error of dz's values. Identities (any calculus text): softmax cross-entropy per sample,
+    /// (Σ_c y_c)·ln(1 + Σ_c p_c(e^(dz_c) − 1)) − Σ_c y_c·dz_c, from log-sum-exp's change
+    /// ln Σ_c p_c·e^(dz_c); logistic cross-entropy per value, softplus's change (from
+    /// [`Activation::change`]) − y·dz; squared error per value, ½((a + δa − y)² − (a − y)²) =
+    /// δa·(a − y + δa/2) with δa the output activation's change. The bound sums, per
+    /// operation, its rounding (u each, γ(n) for a sum of n terms, Higham §3.1) times the
+    /// magnitude it acts on, the error of dz times the loss's largest slope in it
+    /// (softmax: |Σy| + Σ|y|), and the base's error in z times the sensitivity of the
+    /// probabilities (2 per unit) or slopes ([`Activation::curvature`]). `None` for a
+    /// sequence output, an output or loss without a difference form, or past the ranges
+    /// where the bound holds (|Σ p(e^dz − 1)| ≤ ½). `grown` is a buffer it may use.
+    pub(crate) fn data_change<S: Scalar>(
+        &self,
+        output: Activation,
+        outputs: usize,
+        base: &OutputBase<'_, S>,
+        dz: &[S],
+        err: Errors<'_>,
+        grown: &mut Vec<S>,
+    ) -> Option<(S, f64)> {
+        let u = S::epsilon() / 2.0;
+        let o = outputs;
+        let m = dz.len() / o.max(1);
+        let softmax = (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax);
+        let (values, samples): (&[f64], Vec<(f64, f64)>) = match err {
+            Errors::Values(v) if softmax => {
+                let per = v
+                    .chunks_exact(o)
+                    .zip(base.slopes.chunks_exact(o))
+                    .map(|(e, s0)| {
+                        let along: f64 = e.iter().zip(s0).map(|(e, s)| e * s).sum();
+                        (along, e.iter().fold(0.0f64, |m, &e| m.max(e)))
+                    })
+                    .collect();
+                (&[], per)
+            }
+            Errors::Values(v) => (v, Vec::new()),
+            Errors::Samples(_) if !softmax => return None,
+            Errors::Samples(p) => (&[], p.to_vec()),
+        };
+        let mut total = S::zero();
+        let (mut gross, mut bound) = (0.0f64, 0.0f64);
+        // For a softmax, p·(e^dz − 1) of every value first, in one loop the compiler can
+        // vectorise (the series of [`expm1`] where every |dz| allows it).
+        grown.clear();
+        if (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax) {
+            grown.reserve(dz.len());
+            let widest = dz.iter().fold(0.0f64, |m, d| m.max(d.re().abs()));
+            let small = S::epsilon() > 1e-10 && widest <= 0.5;
+            if small && widest <= 1.0 / 64.0 {
+                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_short(d)));
+            } else if small {
+                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_series(d)));
+            } else {
+                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1(d)));
+            }
+        }
+        for (n, (dzr, yr)) in dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate() {
+            let at = n * o..(n + 1) * o;
+            let (change, b) = match (self.loss, output) {
+                (Loss::CrossEntropy, Activation::Softmax) => {
+                    let ys = base.ysums[n];
+                    softmax_change(&grown[at], dzr, yr, ys, samples[n], base.base_error, u)?
+                }
+                (Loss::CrossEntropy, Activation::Sigmoid) => {
+                    let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
+                    let er = &values[at.clone()];
+                    for (((&z, &d), &y), &e) in base.z[at].iter().zip(dzr).zip(yr).zip(er) {
+                        let sp = Activation::Softplus.change(z, z, d)?;
+                        let v = sp - y * d;
+                        let ulps = Activation::Softplus.change_ulps()? + 4.0;
+                        b += sp.re().abs() * (ulps * u + base.base_error)
+                            + 2.0 * u * (y * d).re().abs()
+                            + (1.0 + y.re().abs()) * e
+                            + u * v.re().abs();
+                        g += v.re().abs();
+                        c += v;
+                    }
+                    (c, b + gamma(o, u) * g)
+                }
+                (Loss::SquaredError, act) => {
+                    let ulps = act.change_ulps()?;
+                    let slope = act.max_slope();
+                    let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
+                    let er = &values[at.clone()];
+                    let base_values = base.z[at.clone()].iter().zip(&base.a[at]);
+                    for ((((&z, &a), &d), &y), &e) in base_values.zip(dzr).zip(yr).zip(er) {
+                        let da = act.change(z, a, d)?;
+                        let v = da * (a - y + S::from_f64(0.5) * da);
+                        let (dar, gap) = (da.re().abs(), (a - y).re().abs());
+                        let rel = (ulps + 4.0) * u + act.curvature() * base.base_error;
+                        b += v.re().abs() * rel
+                            + dar * (2.0 * u * (a.re().abs() + y.re().abs()))
+                            + dar * slope * base.base_error
+                            + (gap + dar) * slope * e * (1.0 + rel);
+                        g += v.re().abs();
+                        c += v;
+                    }
+                    (c, b + gamma(o, u) * g)
+                }
+                _ => return None,
+            };
+            gross += change.re().abs();
+            bound += b;
+            total += change;
+        }
+        let r = self.reduction.factor(m);
+        let total = total * S::from_f64(r);
+        let bound = r * (bound + gamma(m, u) * gross) + 2.0 * u * total.re().abs();
+        Some((total, bound))
+    }
+}
+
+/// One sample's change of a softmax cross-entropy and its bound ([`LossConfig::data_change`]):
+/// `grown` holds p_c·(e^(dz_c) − 1); `(along, most_err)` is Σ_c |Σy·p_c − y_c|·e_c and the
+/// largest e_c ([`Errors::Samples`]).
+fn softmax_change<S: Scalar>(
+    grown: &[S],
+    dz: &[S],
+    y: &[S],
+    (sy, gy): (S, f64),
+    (along, most_err): (f64, f64),
+    base: f64,
+    u: f64,
+) -> Option<(S, f64)> {
+    let o = dz.len();
+    let (mut s, mut yd) = (S::zero(), S::zero());
+    let (mut gs, mut gyd) = (S::zero(), S::zero());
+    for ((&t, &d), &yc) in grown.iter().zip(dz).zip(y) {
+        s += t;
+        gs += S::from_f64(t.re().abs());
+        let v = yc * d;
+        yd += v;
+        gyd += S::from_f64(v.re().abs());
+    }
+    // Sums of magnitudes, each within γ(o) of its value: taken that much larger.
+    let g = gamma(o + 1, u);
+    let up = 1.0 + 2.0 * g;
+    let (gs, gyd) = (gs.re() * up, gyd.re() * up);
+    let sr = s.re().abs();
+    // (A NaN error fails the comparison and takes the plain path too.)
+    if sr > 0.5 || most_err.is_nan() || along.is_nan() || most_err > 0.125 {
+        return None;
+    }
+    let l = ln1p(s);
+    let change = sy * l - yd;
+    // The data term's slope in dz_c between the computed and the exact dz is Σy·q_c − y_c, q
+    // the probabilities there: q_c = p_c·e^(dz_c)/(1 + s) at the computed dz, so
+    // Σ_c|q_c − p_c| ≤ (Σ_c p_c|e^(dz_c) − 1| + |s|)/(1 − |s|) (Σp = 1), and across the error
+    // q moves by at most 3e of itself more (e ≤ 1/8). An error e_c in each dz_c moves the
+    // change by at most Σ_c |Σy·p_c − y_c|·e_c + |Σy|·e·(Σ_c|q_c − p_c| + 3e·Σ_c q_c), e the
+    // largest e_c.
+    // 1/(1 − |s|) ≤ 1 + 2|s| for |s| ≤ ½.
+    let shift = (gs * (1.0 + 16.0 * u) + sr) * (1.0 + 2.0 * sr);
+    let syr = sy.re().abs();
+    let moved = along + syr * most_err * (shift + 3.0 * most_err * (1.0 + shift) * 1.01);
+    // Each p·(e^d − 1) within 14u (p rounded once, [`expm1`] within 12u, the product), their
+    // sum within γ(o) of Σ|p(e^d − 1)|; the base's error in z moves each p by 2·base relative;
+    // ln(1 + s) ([`ln1p`]) adds 4u of itself and at most twice the error of s (|s| ≤ ½).
+    let ds = (14.0 * u + g + 2.0 * base) * gs;
+    let lr = l.re().abs();
+    let bound = syr * (4.0 * u * lr + 2.0 * ds)
+        + g * gy * lr
+        + u * syr * lr
+        + g * gyd
+        + 2.0 * u * change.re().abs()
+        + moved * (1.0 + 4.0 * u);
+    Some((change, bound))
+}
+
+/// e^d − 1 within 12 units of rounding of itself: in a precision coarser than f64, Taylor's
+/// series to d⁹ for |d| ≤ ½ (its remainder below 2⁻²⁸ of the value; Horner's form within a few
+/// u), and e^d − 1 from the engine's exp beyond (within 1 ulp of e^d, which is at most
+/// 1.7·e^d/|e^d − 1| ≤ 5 ulp of the difference there); the C library's expm1 in f64. The
+/// loss's loop of changes calls it once per output, where the C library's f32 expm1 took a
+/// third of the check's time.
+#[inline]
+pub(crate) fn expm1<S: Scalar>(d: S) -> S {
+    if S::epsilon() < 1e-10 {
+        return d.exp_m1();
+    }
+    if d.re().abs() > 0.5 {
+        return d.exp() - S::one();
+    }
+    expm1_series(d)
+}
+
+/// ln(1 + s) within 4 units of rounding of itself: in a precision coarser than f64, the
+/// alternating series s − s²/2 + … to s⁸ for |s| ≤ 1/16 (its remainder below 2⁻³¹ of the
+/// value; Horner's form within 3u), the C library's log1p otherwise.
+#[inline]
+pub(crate) fn ln1p<S: Scalar>(s: S) -> S {
+    if S::epsilon() < 1e-10 || s.re().abs() > 0.0625 {
+        return s.ln_1p();
+    }
+    let mut acc = S::from_f64(-1.0 / 8.0);
+    for k in (2..=7).rev() {
+        let c = if k % 2 == 0 { -1.0 } else { 1.0 } / k as f64;
+        acc = S::from_f64(c) + s * acc;
+    }
+    s + s * (s * acc)
+}
+
+/// [`expm1`]'s series to d⁵ for |d| ≤ 1/64 in a precision coarser than f64: its remainder is
+/// below d⁵/120·1.01, under 2⁻³¹ of the value (the loss's usual changes of z are ~1e-3).
+#[inline]
+fn expm1_short<S: Scalar>(d: S) -> S {
+    let c = S::from_f64;
+    d + d * (d * (c(0.5) + d * (c(1.0 / 6.0) + d * (c(1.0 / 24.0) + d * c(1.0 / 120.0)))))
+}
+
+/// [`expm1`]'s series, for |d| ≤ ½ in a precision coarser than f64.
+#[inline]
+fn expm1_series<S: Scalar>(d: S) -> S {
+    const C: [f64; 8] = [
+        1.0 / 2.0,
+        1.0 / 6.0,
+        1.0 / 24.0,
+        1.0 / 120.0,
+        1.0 / 720.0,
+        1.0 / 5040.0,
+        1.0 / 40320.0,
+        1.0 / 362880.0,
+    ];
+    let mut acc = S::from_f64(C[7]);
+    for &c in C[..7].iter().rev() {
+        acc = S::from_f64(c) + d * acc;
+    }
+    d + d * (d * acc)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::expm1;
+
+    // [C library: Rust's f64::exp_m1 calls libm's expm1] The f32 expm1 within its stated 12u
+    // of libm's f64 expm1 at the same f32 argument, from 1e-30 to 20 in both signs.
+    #[test]
+    fn expm1_short_in_f32_is_within_its_ulps_of_libm() {
+        let u = f32::EPSILON as f64 / 2.0;
+        let mut x = 1e-30f32;
+        while x <= 1.0 / 64.0 {
+            for d in [x, -x] {
+                let want = (d as f64).exp_m1();
+                let off = (super::expm1_short(d) as f64 - want).abs() / want.abs() / u;
+                assert!(off <= 12.0, "expm1_short({d}): {off:.1} u off");
+            }
+            x *= 1.01;
+        }
+    }
+
+    #[test]
+    fn expm1_in_f32_is_within_its_ulps_of_libm() {
+        let u = f32::EPSILON as f64 / 2.0;
+        let mut worst = 0.0f64;
+        let mut x = 1e-30f32;
+        while x < 20.0 {
+            for d in [x, -x] {
+                let want = (d as f64).exp_m1();
+                let off = (expm1(d) as f64 - want).abs() / want.abs() / u;
+                assert!(off <= 12.0, "expm1({d}): {off:.1} u off");
+                worst = worst.max(off);
+            }
+            x *= 1.01;
+        }
+        assert!(worst > 0.0, "compared something");
+    }
+
+    // [C library: Rust's f64::ln_1p calls libm's log1p] The f32 ln1p within its stated 4u of
+    // libm's f64 log1p at the same f32 argument, from 1e-30 to 0.4 in both signs.
+    #[test]
+    fn ln1p_in_f32_is_within_its_ulps_of_libm() {
+        let u = f32::EPSILON as f64 / 2.0;
+        let mut x = 1e-30f32;
+        while x < 0.4 {
+            for s in [x, -x] {
+                let want = (s as f64).ln_1p();
+                let off = (super::ln1p(s) as f64 - want).abs() / want.abs() / u;
+                assert!(off <= 4.0, "ln1p({s}): {off:.1} u off");
+            }
+            x *= 1.01;
+        }
+    }
+}

@@ -34,6 +34,7 @@
 mod add;
 mod attention;
 mod batch_norm;
+mod change;
 mod conv;
 mod dense;
 mod embedding;
@@ -69,6 +70,7 @@ pub use crate::convention::{L2Divisor, Reduction};
 pub use add::Add;
 pub use attention::Attention;
 pub use batch_norm::BatchNorm;
+pub use change::{Changed, Difference};
 pub use conv::{Conv, ConvSettings, Padding};
 pub use dense::Dense;
 pub use embedding::Embedding;

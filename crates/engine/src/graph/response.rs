@@ -86,6 +86,12 @@ pub struct Response<S> {
     units: Vec<OnceLock<Unit<S>>>,
     /// The units whose entries take the response ([`Response::for_entries`]; all by default).
     wanted: Vec<bool>,
+    /// Whether the coefficients are formed in f64 and rounded once ([`Response::over_wide`]).
+    wide: bool,
+    /// The slopes in f64 (smooth L+1 over a wide base only).
+    wide_slopes: Option<[Vec<f64>; 3]>,
+    /// Per output value, what its error counts for in the loss ([`Response::over_wide`]).
+    weights: Vec<f64>,
 }
 
 /// One unit's coefficients: M_k (m × outputs each) and the bound's factors per dᵏ.
@@ -97,6 +103,10 @@ struct Unit<S> {
     /// Per output value: the truncation's factor of d⁴ and the round-off's of d, d², d³.
     truncation: f64,
     rounding: [f64; 3],
+    /// Over a wide base, per sample: Σ_c weight·|M_k| for k = 1..3, max_c |M_k| for k = 1..3,
+    /// and Σ_c weight (each taken 2u larger than the rounded coefficients say).
+    sums: Vec<[f64; 7]>,
+
     /// For a piecewise-linear L+1, per sample the changes d[n] (lo, hi) within which no value
     /// of L+1 changes side, narrowed by [`KINK_MARGIN`]; empty for a smooth one.
     windows: Vec<(f64, f64)>,
@@ -194,6 +204,41 @@ impl<S: LayerScalar> Response<S> {
         layer: usize,
         limit: f64,
     ) -> Option<Response<S>> {
+        Self::build(graph, trace, None, y, layer, limit)
+    }
+
+    /// The response over a base whose values were rounded once from the f64 pass `wide`, for
+    /// the difference form ([`super::Difference`]): its slopes σ⁽ᵏ⁾/k! are formed in f64 from
+    /// that pass and rounded once (so each is within u of its value, not 32u of the largest),
+    /// and each unit also keeps G_k = Σ_j |W_{L+2}[c, j]|·|σ⁽ᵏ⁾/k!|·|w_j|ᵏ per sample and
+    /// output, the magnitude its coefficients' rounding scales with ([`Response::top_change`]).
+    /// `weights` (m × outputs) are what each output value's error counts for in the loss
+    /// (the softmax cross-entropy's |Σy·p_c − y_c|): each unit keeps, per sample, Σ_c of them
+    /// times |M_k| and the largest |M_k|, so that a loss's bound reads m values, not m·outputs.
+    pub(crate) fn over_wide(
+        graph: &Graph,
+        trace: &Trace<S>,
+        wide: &Trace<f64>,
+        y: ArrayView2<S>,
+        layer: usize,
+        weights: &[f64],
+    ) -> Option<Response<S>> {
+        let mut r = Self::build(graph, trace, Some(wide), y, layer, f64::INFINITY)?;
+        if weights.len() != r.m * r.outputs {
+            return None;
+        }
+        r.weights = weights.to_vec();
+        Some(r)
+    }
+
+    fn build(
+        graph: &Graph,
+        trace: &Trace<S>,
+        wide: Option<&Trace<f64>>,
+        y: ArrayView2<S>,
+        layer: usize,
+        limit: f64,
+    ) -> Option<Response<S>> {
         let nodes = graph.nodes();
         if layer + 3 != nodes.len() {
             return None;
@@ -230,6 +275,7 @@ impl<S: LayerScalar> Response<S> {
             return None;
         }
         let mut slopes: [Vec<S>; 3] = Default::default();
+        let mut wide_slopes = None;
         let mut lifts = Vec::new();
         match (mid.activation.kink(), below_kink(mid.activation)) {
             (Some(k), Some(below)) => {
@@ -243,14 +289,27 @@ impl<S: LayerScalar> Response<S> {
                 slopes[2] = vec![S::zero(); z.len()];
                 lifts = z.iter().map(|v| k - v.re()).collect();
             }
-            _ => {
-                for v in trace.outputs[layer + 1].as_slice()? {
-                    let s = self::slopes(mid.activation, *v);
-                    for k in 0..3 {
-                        slopes[k].push(s[k]);
+            _ => match wide {
+                Some(wide) => {
+                    let mut exact: [Vec<f64>; 3] = Default::default();
+                    for v in wide.outputs[layer + 1].as_slice()? {
+                        let s = self::slopes(mid.activation, *v);
+                        for k in 0..3 {
+                            slopes[k].push(S::from_f64(s[k]));
+                            exact[k].push(s[k]);
+                        }
+                    }
+                    wide_slopes = Some(exact);
+                }
+                None => {
+                    for v in trace.outputs[layer + 1].as_slice()? {
+                        let s = self::slopes(mid.activation, *v);
+                        for k in 0..3 {
+                            slopes[k].push(s[k]);
+                        }
                     }
                 }
-            }
+            },
         }
         let r = loss.reduction.factor(m);
         let lipschitz = 2.0 * r * y.iter().map(|v| v.re().abs()).sum::<f64>();
@@ -267,6 +326,9 @@ impl<S: LayerScalar> Response<S> {
             limit,
             units: (0..units).map(|_| OnceLock::new()).collect(),
             wanted: vec![true; units],
+            wide: wide.is_some(),
+            wide_slopes,
+            weights: Vec::new(),
         })
     }
 
@@ -315,6 +377,26 @@ impl<S: LayerScalar> Response<S> {
                 if self.most[k] == 0.0 {
                     // No such term (identity, relu and leaky relu above the first).
                     out.resize(m * o, S::zero());
+                    continue;
+                }
+                if self.wide {
+                    // Over a wide base: each coefficient summed in f64 (once per unit, not per
+                    // loss) from the f64 slopes, and rounded once.
+                    let wide: Vec<f64> = match &self.wide_slopes {
+                        Some(exact) => exact[k].clone(),
+                        None => slopes.iter().map(|v| v.re()).collect(),
+                    };
+                    let wk: Vec<f64> = w.iter().map(|v| v.re().powi(k as i32 + 1)).collect();
+                    out.reserve(m * o);
+                    for s in wide.chunks_exact(h) {
+                        for row in w_top.chunks_exact(h) {
+                            let mut sum = 0.0f64;
+                            for ((a, sj), p) in row.iter().zip(s).zip(&wk) {
+                                sum += a.re() * (sj * p);
+                            }
+                            out.push(S::from_f64(sum));
+                        }
+                    }
                     continue;
                 }
                 out.reserve(m * o);
@@ -380,7 +462,24 @@ impl<S: LayerScalar> Response<S> {
             // make a loss no bound speaks for: such a unit never answers.
             let finite = coeffs.iter().flatten().all(|v| v.re().is_finite())
                 && b.iter().all(|v| v.is_finite());
+            let mut sums = Vec::new();
+            if self.wide && self.weights.len() == m * o {
+                let ru = S::epsilon() / 2.0;
+                for (n, w) in self.weights.chunks_exact(o).enumerate() {
+                    let mut row = [0.0f64; 7];
+                    for (k, mk) in coeffs.iter().enumerate() {
+                        for (c, wc) in w.iter().enumerate() {
+                            let a = mk[n * o + c].re().abs() * (1.0 + 2.0 * ru);
+                            row[k] += wc * a;
+                            row[3 + k] = row[3 + k].max(a);
+                        }
+                    }
+                    row[6] = w.iter().sum();
+                    sums.push(row.map(|v| v * (1.0 + 1e-12)));
+                }
+            }
             Unit {
+                sums,
                 m: coeffs,
                 finite,
                 truncation: self.fourth * b[3],
@@ -439,6 +538,78 @@ impl<S: LayerScalar> Response<S> {
         ws.give(z);
         ws.give(d);
         answer
+    }
+
+    /// The change of L+2's z (m × outputs, sample rows, into `out`) when unit u of L changes
+    /// its activation by `d` (one per sample) — the response's Σ_k M_k·dᵏ, already a change —
+    /// and a bound on the error of its values, per sample as the loss reads it (into `err`:
+    /// Σ_c weight·e_c and the largest e_c, [`Response::over_wide`]): the truncation (module
+    /// doc), the coefficients' one rounding and Horner's, and what a relative error `rel` of
+    /// each d moves it by. For a response [`Response::over_wide`] only, whose coefficients
+    /// are formed in f64. `None` where the response would not answer (a unit it leaves out,
+    /// a side change above a kink, a coefficient past the precision's range).
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn top_change(
+        &self,
+        graph: &Graph,
+        params: &[ArrayD<S>],
+        u: usize,
+        d: &[S],
+        rel: f64,
+        out: &mut Vec<S>,
+        err: &mut Vec<(f64, f64)>,
+    ) -> Option<()> {
+        if !self.wide {
+            return None;
+        }
+        if !self.wanted.get(u).copied().unwrap_or(false) {
+            return None;
+        }
+        let unit = self.unit(graph, params, u);
+        if !unit.finite {
+            return None;
+        }
+        let inside = |(dn, (lo, hi)): (&S, &(f64, f64))| *lo < dn.re() && dn.re() < *hi;
+        if !unit.windows.is_empty() && !d.iter().zip(&unit.windows).all(inside) {
+            return None;
+        }
+        let o = self.outputs;
+        let ru = S::epsilon() / 2.0;
+        // Each coefficient M_k is within u of its value (summed in f64 from f64 slopes, then
+        // rounded once; the f64 sum's own error, about h·2⁻⁵³ of Σ|terms|, is left out);
+        // Horner's form adds γ(6) of Σ_k|M_k|·|d|ᵏ (Higham §5.1), and a relative error `rel`
+        // of d moves the k-th term by k·rel of it.
+        let horner = gamma(6, ru);
+        let factor = [1.0, 2.0, 3.0].map(|k| (ru + horner + rel * k) * (1.0 + 8.0 * ru));
+        if unit.sums.len() != d.len() {
+            return None;
+        }
+        err.clear();
+        err.reserve(self.m);
+        for (v, sums) in d.iter().zip(&unit.sums) {
+            let t = v.re().abs();
+            if !t.is_finite() {
+                return None;
+            }
+            let shared = unit.truncation * t.powi(4);
+            let f = [factor[0] * t, factor[1] * t * t, factor[2] * t * t * t];
+            let along = shared * sums[6] + f[0] * sums[0] + f[1] * sums[1] + f[2] * sums[2];
+            let most = shared + f[0] * sums[3] + f[1] * sums[4] + f[2] * sums[5];
+            err.push((along, most));
+        }
+        out.clear();
+        out.resize(self.m * o, S::zero());
+        let [m1, m2, m3] = &unit.m;
+        let coeffs = m1
+            .chunks_exact(o)
+            .zip(m2.chunks_exact(o))
+            .zip(m3.chunks_exact(o));
+        for ((now, &dn), ((a1, a2), a3)) in out.chunks_exact_mut(o).zip(d).zip(coeffs) {
+            for (((v, a1), a2), a3) in now.iter_mut().zip(a1).zip(a2).zip(a3) {
+                *v = dn * (*a1 + dn * (*a2 + dn * *a3));
+            }
+        }
+        Some(())
     }
 
     /// [`Response::loss_in`] from the moved unit's new z.

@@ -86,6 +86,7 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
         crossed_along: &crossed_along,
         loss_gross: graph_loss_magnitude(g, &c.params, &base, &c.y),
         sees_kinks: true,
+        differences: None,
     };
     let tensors: Vec<OutsideTensor> = g
         .tensors()

@@ -8,6 +8,7 @@ mod budget;
 mod conventions;
 mod external;
 mod graph_along;
+mod graph_difference;
 mod graph_engine;
 mod graph_fast;
 mod graph_kinks;

@@ -1,0 +1,253 @@
+//! The f32 check with one-entry losses taken as changes (`plumb_engine::graph::Difference`): no
+//! false alarm on dense chains of every covered activation over 20 seeds, a planted mistake of
+//! ten times the f32 tolerance caught and one of a tenth of it not, and at the edge of f32's
+//! precision no match claimed that the f64 gradient (the truth the check approximates)
+//! contradicts.
+
+use crate::graph_common;
+
+use graph_common::*;
+use plumb_engine::graph::{Graph, LossConfig};
+use plumb_engine::{Activation, Loss, Reduction};
+use plumb_fd::{Method, Precision, Sample, Status, check_graph_gradient};
+
+/// Dense chains the difference form covers: every smooth activation and relu, both losses, both
+/// reductions, L2 on and off; three layers (the response above the first) and four.
+fn chains() -> Vec<(&'static str, Graph)> {
+    let ce = |reduction, l2| LossConfig {
+        reduction,
+        l2,
+        ..LossConfig::cross_entropy()
+    };
+    let se = |reduction, l2| LossConfig {
+        loss: Loss::SquaredError,
+        ..ce(reduction, l2)
+    };
+    let soft = Activation::Softmax;
+    let id = Activation::Identity;
+    vec![
+        (
+            "tanh, ce, mean, l2",
+            dense_with(
+                12,
+                &[(10, Activation::Tanh), (8, Activation::Tanh), (4, soft)],
+                ce(Reduction::Mean, 1e-3),
+            ),
+        ),
+        (
+            "logistic, se, sum",
+            dense_with(
+                12,
+                &[(10, Activation::Sigmoid), (8, Activation::Sigmoid), (3, id)],
+                se(Reduction::Sum, 0.0),
+            ),
+        ),
+        (
+            "relu, ce, sum",
+            dense_with(
+                12,
+                &[(10, Activation::Relu), (8, Activation::Relu), (4, soft)],
+                ce(Reduction::Sum, 0.0),
+            ),
+        ),
+        (
+            "softplus, se, mean, l2, four layers",
+            dense_with(
+                10,
+                &[
+                    (8, Activation::Softplus),
+                    (8, Activation::Softplus),
+                    (6, Activation::Softplus),
+                    (3, id),
+                ],
+                se(Reduction::Mean, 1e-3),
+            ),
+        ),
+        (
+            "elu, ce, mean, four layers",
+            dense_with(
+                10,
+                &[
+                    (8, Activation::Elu { alpha: 1.0 }),
+                    (8, Activation::Tanh),
+                    (6, Activation::Elu { alpha: 1.0 }),
+                    (4, soft),
+                ],
+                ce(Reduction::Mean, 0.0),
+            ),
+        ),
+    ]
+}
+
+// No false alarm: the engine's own f32 gradient of each chain is never a mismatch over 20 seeds,
+// with most coordinates settled on one step (the losses as changes at work: on the whole-loss
+// path f32 settled none of the benchmark's 109,386).
+#[test]
+fn dense_chains_in_f32_over_twenty_seeds() {
+    for (i, (name, _)) in chains().into_iter().enumerate() {
+        let (mut one_step, mut checked) = (0, 0);
+        for seed in 0..20 {
+            let c = case(chains().swap_remove(i).1, 8, 200 + seed);
+            let mut cfg = config(Method::Central, Precision::F32, seed);
+            cfg.sample = Some(Sample::All);
+            let r = run(&c, &cfg);
+            let (coords, directions) = count(&r, Status::Mismatch);
+            assert_eq!(
+                (coords, directions),
+                (0, 0),
+                "{name}, seed {seed}: {}",
+                worst(&r)
+            );
+            one_step += r.coords.iter().filter(|c| c.one_step).count();
+            checked += r.coords.len();
+        }
+        eprintln!("{name}: {one_step} of {checked} coordinates settled on one step in f32");
+        assert!(
+            2 * one_step > checked,
+            "{name}: {one_step} of {checked} on one step"
+        );
+    }
+}
+
+/// The engine's gradient with entry `k` of tensor `t` times 1 + `factor`.
+fn planted(c: &Case, (t, k): (usize, usize), factor: f64) -> Vec<ndarray::ArrayD<f64>> {
+    let mut g = c
+        .graph
+        .gradient(&c.params, c.x.view(), c.y.view(), None)
+        .params;
+    g[t].as_slice_mut().unwrap()[k] *= 1.0 + factor;
+    g
+}
+
+// Both directions at one coordinate per tensor (its largest entry, settled by the form): moved by
+// ten times the f32 tolerance (1%) it is a mismatch; moved by a tenth of it (0.01%) it is not,
+// and no other coordinate is either.
+#[test]
+fn a_mistake_of_ten_times_the_tolerance_is_caught_and_a_tenth_is_not() {
+    let tol = Precision::F32.tolerance();
+    for (name, graph) in chains() {
+        let c = case(graph, 8, 7);
+        let right = c
+            .graph
+            .gradient(&c.params, c.x.view(), c.y.view(), None)
+            .params;
+        for (t, rt) in right.iter().enumerate() {
+            let k = rt
+                .iter()
+                .enumerate()
+                .max_by(|a, b| a.1.abs().total_cmp(&b.1.abs()))
+                .unwrap()
+                .0;
+            if rt.as_slice().unwrap()[k].abs() < 1e-6 {
+                continue;
+            }
+            for (factor, caught) in [(10.0 * tol, true), (0.1 * tol, false)] {
+                let wrong = planted(&c, (t, k), factor);
+                let mut cfg = config(Method::Central, Precision::F32, 1);
+                cfg.sample = Some(Sample::All);
+                let r = check_graph_gradient(
+                    &c.graph,
+                    &c.params,
+                    c.x.view(),
+                    c.y.view(),
+                    &wrong,
+                    &cfg,
+                    &|_, _| {},
+                )
+                .unwrap();
+                for co in &r.coords {
+                    let here = (co.coord.tensor, co.coord.index) == (t, k);
+                    if here && co.status == Status::Unreliable {
+                        continue;
+                    }
+                    assert_eq!(
+                        co.status == Status::Mismatch,
+                        here && caught,
+                        "{name}: tensor {t} #{k} moved by {factor}: #{} of {} is {} (a={:e} n={:e} bound={:e})",
+                        co.coord.index,
+                        co.coord.tensor,
+                        co.status.name(),
+                        co.analytic,
+                        co.numeric,
+                        co.bound
+                    );
+                }
+            }
+        }
+    }
+}
+
+// At f32's edge: squared error against targets of ±3000, so the loss is ~1e7 while the gradient
+// entries of the first layer are of order one or below, and the tanh units saturate. No
+// coordinate may be called a match whose analytic value the f64 gradient (the truth) puts beyond
+// the tolerance, with the right gradient and with one entry planted 1% off; what the check cannot
+// settle it calls unsettled, not a match.
+#[test]
+fn at_the_edge_of_f32_nothing_is_claimed_that_f64_contradicts() {
+    let graph = || {
+        dense_with(
+            6,
+            &[
+                (6, Activation::Tanh),
+                (5, Activation::Tanh),
+                (2, Activation::Identity),
+            ],
+            LossConfig {
+                loss: Loss::SquaredError,
+                ..LossConfig::cross_entropy()
+            },
+        )
+    };
+    let mut unsettled = 0;
+    for seed in 0..5 {
+        let mut c = case(graph(), 8, 300 + seed);
+        c.y.mapv_inplace(|v| 3000.0 * v.signum());
+        for p in &mut c.params {
+            p.mapv_inplace(|v| 3.0 * v);
+        }
+        // The truth at the parameters f32 holds.
+        let mut held = c.params.clone();
+        for p in &mut held {
+            p.mapv_inplace(|v| v as f32 as f64);
+        }
+        let (x, y) = (c.x.mapv(|v| v as f32 as f64), c.y.mapv(|v| v as f32 as f64));
+        let truth = c.graph.gradient(&held, x.view(), y.view(), None).params;
+        for plant in [None, Some((0usize, 3usize))] {
+            let mut given = truth.clone();
+            if let Some((t, k)) = plant {
+                given[t].as_slice_mut().unwrap()[k] *= 1.01;
+            }
+            let mut cfg = config(Method::Central, Precision::F32, seed);
+            cfg.sample = Some(Sample::All);
+            let r = check_graph_gradient(
+                &c.graph,
+                &c.params,
+                c.x.view(),
+                c.y.view(),
+                &given,
+                &cfg,
+                &|_, _| {},
+            )
+            .unwrap();
+            for co in &r.coords {
+                let want = truth[co.coord.tensor].as_slice().unwrap()[co.coord.index];
+                let floor = r.floors[co.coord.tensor];
+                let off = (co.analytic - want).abs() / want.abs().max(co.analytic.abs()).max(floor);
+                // A match says the analytic value lies within its bound of the derivative
+                // (and settled on one step, within the tolerance): the truth must agree.
+                let within = (co.analytic - want).abs() <= co.bound
+                    && (!co.one_step || off <= Precision::F32.tolerance());
+                if co.status == Status::Match {
+                    assert!(
+                        within,
+                        "seed {seed}: #{} of {} called a match {off:e} off the f64 gradient (n={:e} bound={:e})",
+                        co.coord.index, co.coord.tensor, co.numeric, co.bound
+                    );
+                }
+                unsettled += usize::from(co.status == Status::Unsettled);
+            }
+        }
+    }
+    eprintln!("at f32's edge: {unsettled} coordinates unsettled over 5 seeds");
+    assert!(unsettled > 0, "the edge was not reached");
+}
