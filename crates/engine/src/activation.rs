@@ -290,7 +290,7 @@ impl Activation {
     pub fn change_ulps(&self) -> Option<f64> {
         match *self {
             Activation::Identity | Activation::Relu => Some(0.0),
-            Activation::LeakyRelu { .. } => Some(1.0),
+            Activation::LeakyRelu { .. } => Some(2.0),
             Activation::Tanh => Some(12.0),
             Activation::Sigmoid => Some(32.0 + LOGISTIC_RANGE),
             Activation::Softplus => Some(12.0),

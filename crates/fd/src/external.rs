@@ -405,8 +405,9 @@ pub(crate) fn check_tensors<E>(
     // Where the kinks are seen, a disagreement must still hold at half the step: past the
     // quadratic regime (weights so large that the softmax acts as a maximum) the two steps'
     // truncation estimate can fall short, and a right gradient would be failed. The estimate at
-    // half the step stands when it is a match whose bound is below the first disagreement (it
-    // could have seen it): a noisier estimate that merely fails to disagree proves nothing.
+    // half the step stands when it is a match whose bound is below half the first disagreement
+    // (a mistake of that size would have shown beyond its bound): a noisier estimate that merely
+    // fails to disagree proves nothing.
     if inside.sees_kinks && config.step.is_none() && !complex {
         let suspects: Vec<usize> = (0..picked.len())
             .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
@@ -435,7 +436,7 @@ pub(crate) fn check_tensors<E>(
             };
             let est = method.estimate_with(&f, f0, s, noise, round, 1);
             let (_, _, bound, status) = judge(i, &est);
-            if status == Status::Match && bound < judge(i, &estimates[i].0).0 {
+            if status == Status::Match && 2.0 * bound < judge(i, &estimates[i].0).0 {
                 estimates[i] = (est, true);
             }
         }
@@ -655,7 +656,7 @@ pub(crate) fn check_tensors<E>(
                 let table = along(&method.stencil(h, 1, round))?;
                 let again = estimate_at(&table, h, 1);
                 let (_, _, bound, status) = judge(&again);
-                if status == Status::Match && bound < judge(&est).0 {
+                if status == Status::Match && 2.0 * bound < judge(&est).0 {
                     est = again;
                 }
             }

@@ -258,6 +258,9 @@ impl<S: LayerScalar> Difference<S> {
         let columns = &self.columns[layer];
         let fan_in = columns.len() / m.max(1);
         let ru = S::epsilon() / 2.0;
+        // Above the first layer the column is the f64 pass's output rounded once: one more
+        // rounding in δ·x than the product's own.
+        let column = if layer > 0 && local == 0 { ru } else { 0.0 };
         // Unit u's change of z: δ·x[n, j] for a weight, δ for a bias (one rounding each).
         let mut dz = ws.take(m);
         if local == 0 {
@@ -278,7 +281,7 @@ impl<S: LayerScalar> Difference<S> {
             let mut err = vec![0.0; m * o];
             for (n, d) in dz.iter().enumerate() {
                 top[n * o + u] = *d;
-                err[n * o + u] = ru * d.re().abs();
+                err[n * o + u] = (ru + column) * d.re().abs();
             }
             (top, Ok(err))
         } else {
@@ -291,7 +294,7 @@ impl<S: LayerScalar> Difference<S> {
             }
             // Relative error of each change of unit u: δ·x's rounding, the change's own, and
             // the base's error in z through the activation's curvature.
-            let rel = (1.0 + ulps) * ru + act.curvature() * self.base_error[layer];
+            let rel = (1.0 + ulps) * ru + column + act.curvature() * self.base_error[layer];
             let response = self.responses.get(layer).and_then(Option::as_ref);
             let mut top = ws.take(m * nodes[nodes.len() - 1].layer.output().size());
             let responded = response.and_then(|r| {

@@ -251,3 +251,61 @@ fn at_the_edge_of_f32_nothing_is_claimed_that_f64_contradicts() {
     eprintln!("at f32's edge: {unsettled} coordinates unsettled over 5 seeds");
     assert!(unsettled > 0, "the edge was not reached");
 }
+
+// Every entry of a right gradient moved by 1% (ten times the f32 tolerance), on a tanh and a relu
+// chain: an entry the relative error's floor does not cover (|a| at least the check's floor for
+// its tensor, so the relative error is the plant's own 1%) is never called a match — in particular not after
+// the check looked again at half the step with whole losses, whose coarser bound could cover 1%
+// (a second reading found 121 of 254 such entries lost when that look could overrule a
+// disagreement it could not have seen).
+#[test]
+fn a_one_percent_mistake_in_every_entry_is_never_a_match() {
+    for acts in [
+        [Activation::Tanh, Activation::Tanh],
+        [Activation::Relu, Activation::Relu],
+    ] {
+        let g = dense_with(
+            12,
+            &[(10, acts[0]), (8, acts[1]), (4, Activation::Softmax)],
+            LossConfig::cross_entropy(),
+        );
+        let c = case(g, 8, 7);
+        let mut wrong = c
+            .graph
+            .gradient(&c.params, c.x.view(), c.y.view(), None)
+            .params;
+        for t in &mut wrong {
+            t.mapv_inplace(|v| v * 1.01);
+        }
+        let mut cfg = config(Method::Central, Precision::F32, 1);
+        cfg.sample = Some(Sample::All);
+        let r = check_graph_gradient(
+            &c.graph,
+            &c.params,
+            c.x.view(),
+            c.y.view(),
+            &wrong,
+            &cfg,
+            &|_, _| {},
+        )
+        .unwrap();
+        let mut seen = 0;
+        for co in &r.coords {
+            let t = co.coord.tensor;
+            if co.analytic.abs() < r.floors[t] {
+                continue;
+            }
+            seen += 1;
+            assert_ne!(
+                co.status,
+                Status::Match,
+                "{acts:?}: t{t} #{} a={:e} n={:e} bound={:e}",
+                co.coord.index,
+                co.analytic,
+                co.numeric,
+                co.bound
+            );
+        }
+        assert!(seen > 50, "{acts:?}: only {seen} entries above the floor");
+    }
+}
