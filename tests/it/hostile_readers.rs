@@ -812,3 +812,59 @@ fn a_loss_past_the_precision_is_no_mismatch() {
     }
     all_ended_well(failures);
 }
+
+/// fixtures/nets/pump-sequence.toml (an lstm, then the `classes` dense layer) with every weight
+/// 10^30: the logits of the three classes tie at about 10^31, and at any step a weight of 10^30
+/// can take the loss is a maximum of them — a kink the engine does not model. The softmax
+/// cross-entropy's gradient in an output bias is mean(p_k − y_k) (Bishop, Pattern Recognition
+/// and Machine Learning, 2006, eq. 4.109), which the reference gives; central differences across
+/// the tie agree at h and 2h (the loss is piecewise linear there), so their bound was tiny and
+/// `classes` failed on three biases and four directions. A right gradient passes or is
+/// inconclusive, its unresolvable coordinates unreliable.
+#[test]
+fn tied_logits_at_huge_weights_are_no_false_alarm() {
+    let dir = scratch("tied-logits");
+    let net = fixture("nets/pump-sequence.toml");
+    let shapes = plumb(&[
+        "shapes",
+        net.to_str().unwrap(),
+        "--format",
+        "json",
+        "--quiet",
+    ]);
+    let report = shapes.json();
+    let mut tensors: Vec<(String, Vec<usize>)> = Vec::new();
+    for layer in report["layers"].as_array().unwrap() {
+        for t in layer["tensors"].as_array().unwrap() {
+            let shape = t["expected"].as_array().unwrap();
+            tensors.push((
+                t["name"].as_str().unwrap().to_string(),
+                shape.iter().map(|d| d.as_u64().unwrap() as usize).collect(),
+            ));
+        }
+    }
+    let list: Vec<(&str, &[usize], f64)> = tensors
+        .iter()
+        .map(|(n, s)| (n.as_str(), s.as_slice(), 1e30))
+        .collect();
+    std::fs::write(dir.join("w.safetensors"), safetensors_f64(&list)).unwrap();
+    let w = dir.join("w.safetensors");
+    let run = plumb(&[
+        "check",
+        net.to_str().unwrap(),
+        "-w",
+        w.to_str().unwrap(),
+        "--format",
+        "json",
+        "--quiet",
+    ]);
+    let report = run.json();
+    let alarms: Vec<&serde_json::Value> = util::findings(&report)
+        .iter()
+        .filter(|f| f["code"].as_str().unwrap_or_default().contains("mismatch"))
+        .collect();
+    assert!(
+        report["verdict"] != "fail" && alarms.is_empty(),
+        "a right gradient failed: {alarms:?}"
+    );
+}
