@@ -219,15 +219,9 @@ impl Activation {
         match *self {
             Activation::Identity => Some(d),
             Activation::Tanh => {
-                let td = d.tanh();
-                let p = a * td;
-                if p.re().abs() > half {
-                    return None;
-                }
                 let s = (S::from_f64(-2.0) * S::from_f64(z.re().abs())).exp();
                 let one_s = one + s;
-                let sech2 = S::from_f64(4.0) * s / (one_s * one_s);
-                Some(td * sech2 / (one + p))
+                tanh_change(a, S::from_f64(4.0) * s / (one_s * one_s), d)
             }
             Activation::Sigmoid => {
                 if (z + d).re().abs() > LOGISTIC_RANGE {
@@ -270,12 +264,7 @@ impl Activation {
         if *self != Activation::Tanh {
             return self.change(z, a, d);
         }
-        let td = d.tanh();
-        let p = a * td;
-        if p.re().abs() > 0.5 {
-            return None;
-        }
-        Some(td * slope / (S::one() + p))
+        tanh_change(a, slope, d)
     }
 
     /// The relative error of [`Self::change`], in units of rounding u = ε/2, for an exact d and
@@ -467,6 +456,18 @@ pub(crate) fn softplus<S: Scalar>(z: S) -> S {
 #[inline]
 fn gelu_tanh<S: Scalar>(z: S) -> S {
     (S::from_f64(GELU_C) * (z + S::from_f64(GELU_K) * z * z * z)).tanh()
+}
+
+/// tanh(z + d) − tanh(z) = tanh d · sech² z / (1 + tanh z · tanh d) (the tanh addition
+/// formula), from a = tanh z and sech² z; `None` past |tanh z · tanh d| > ½, where the
+/// denominator's condition passes 2.
+fn tanh_change<S: Scalar>(a: S, sech2: S, d: S) -> Option<S> {
+    let td = d.tanh();
+    let p = a * td;
+    if p.re().abs() > 0.5 {
+        return None;
+    }
+    Some(td * sech2 / (S::one() + p))
 }
 
 #[cfg(test)]

@@ -52,6 +52,7 @@ use std::sync::OnceLock;
 use ndarray::{Array2, ArrayD, ArrayView2};
 
 use super::dense::{Dense, UNITS_PER_UPDATE};
+use super::loss::gamma;
 use super::network::Workspace;
 use super::{Graph, LayerScalar, Moved, Shape, Trace};
 use crate::{Activation, Loss};
@@ -185,12 +186,6 @@ pub fn slope_bounds(act: Activation) -> Option<[f64; 3]> {
 /// max|σ⁗| over the real line as the response's bound takes it (see [`taylor`]).
 pub fn fourth_bound(act: Activation) -> Option<f64> {
     taylor(act).map(|(_, f)| f)
-}
-
-/// γ(n) = n·u / (1 − n·u), Higham §3.1.
-fn gamma(n: usize, u: f64) -> f64 {
-    let nu = n as f64 * u;
-    nu / (1.0 - nu)
 }
 
 impl<S: LayerScalar> Response<S> {
