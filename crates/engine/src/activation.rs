@@ -160,6 +160,26 @@ impl Activation {
         }
     }
 
+    /// The size of the terms [`Self::slope`] forms g′(z) from, in f64 (not for softmax): its
+    /// rounding in a precision of unit roundoff u is a few u of this, not of g′. Where g′ is a
+    /// small difference of larger terms — the logistic's a(1 − a) and tanh's 1 − a² at
+    /// saturation, gelu's ½(1 + t) far below 0 — this is the larger terms' size (a(1 + a),
+    /// 1 + a², ½(1 + |t|) + ½|z|(1 + t²)·|inner|): an f32 gradient through a unit at σ(12) has
+    /// its slope 6e-6 right to about 1% only (1 − a loses all but two digits of a), and the
+    /// verdict's allowance for the analytic side must say so. Elsewhere |g′|.
+    pub fn slope_terms(&self, z: f64, a: f64) -> f64 {
+        match *self {
+            Activation::Sigmoid => a.abs() * (1.0 + a.abs()),
+            Activation::Tanh => 1.0 + a * a,
+            Activation::Gelu => {
+                let t = gelu_tanh(z);
+                let inner = GELU_C * (1.0 + 3.0 * GELU_K * z * z);
+                0.5 * (1.0 + t.abs()) + 0.5 * z.abs() * (1.0 + t * t) * inner.abs()
+            }
+            _ => self.slope(z, a).abs(),
+        }
+    }
+
     /// g′(z) for one element, given a = g(z) as well (not for softmax).
     #[inline]
     pub fn slope<S: Scalar>(&self, z: S, a: S) -> S {

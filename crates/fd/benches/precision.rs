@@ -49,11 +49,13 @@ fn main() {
     println!("  f32 / f64: {:.2}", f32_best / f64_best);
     for r in &results {
         println!(
-            "  {}: {}; steps kept {}; settled on one step {}",
+            "  {}: {}; steps kept {}; settled on one step {}; directions on one step {} of {}",
             r.precision.name(),
             common::summary(r),
             steps(r, &p),
-            r.coords.iter().filter(|c| c.one_step).count()
+            r.coords.iter().filter(|c| c.one_step).count(),
+            r.directions.iter().filter(|d| d.one_step).count(),
+            r.directions.len()
         );
     }
 }

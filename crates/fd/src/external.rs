@@ -39,6 +39,9 @@ pub struct Inside<'a> {
     /// whole loss; a coordinate that does not settle so takes the ladder of whole losses, as
     /// without them. `None` for an outside program (the scalar model).
     pub differences: Option<&'a dyn Fn(usize, usize, f64) -> Option<f64>>,
+    /// As `differences`, for the steps along a direction ([`Request::AlongDifferences`]): the
+    /// bound of the last request's loss at step d, `None` where it came whole.
+    pub differences_along: Option<&'a dyn Fn(f64) -> Option<f64>>,
 }
 
 impl Inside<'static> {
@@ -49,6 +52,7 @@ impl Inside<'static> {
             loss_gross: 0.0,
             sees_kinks: false,
             differences: None,
+            differences_along: None,
         }
     }
 }
@@ -126,6 +130,12 @@ pub(crate) enum Request<'r> {
         count: usize,
         changes: &'r [Change],
     },
+    /// As `Along`, each loss computed as the base's loss plus its change where the loss can
+    /// ([`Inside::differences_along`] then bounds each one's error); whole where it cannot.
+    AlongDifferences {
+        v: &'r [Vec<f64>],
+        deltas: &'r [f64],
+    },
 }
 
 /// A loss the checker asks: one value per perturbation of the request.
@@ -156,7 +166,9 @@ pub fn check_external<E>(
         Request::Changes { count, changes } | Request::Differences { count, changes } => {
             losses(count, changes)
         }
-        Request::Along { v, deltas } => losses(deltas.len(), &changes_along(v, deltas)),
+        Request::Along { v, deltas } | Request::AlongDifferences { v, deltas } => {
+            losses(deltas.len(), &changes_along(v, deltas))
+        }
     };
     check_tensors(tensors, f0, &mut ask, None, inside, config, &plan)
 }
@@ -589,8 +601,13 @@ pub(crate) fn check_tensors<E>(
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
             // The loss along v at the given steps, and whether each step crossed a kink (asked
             // right after the request: the graph keeps the last request's verdicts).
-            let mut along = |deltas: &[f64]| -> Result<Table, E> {
-                let values = losses(Request::Along { v: &v, deltas })?;
+            // With `changes`, asked for as changes ([`Request::AlongDifferences`]).
+            let mut along = |deltas: &[f64], changes: bool| -> Result<Table, E> {
+                let values = losses(if changes {
+                    Request::AlongDifferences { v: &v, deltas }
+                } else {
+                    Request::Along { v: &v, deltas }
+                })?;
                 Ok(deltas
                     .iter()
                     .zip(&values)
@@ -639,8 +656,30 @@ pub(crate) fn check_tensors<E>(
                 // As for coordinates: ±h and 2h first, the rest of the stencil if they do not
                 // settle it.
                 let mut table = Table::new();
+                if let (true, Some(bound_at)) = (settle, inside.differences_along) {
+                    // As for coordinates: losses as changes first, judged by their own bounds;
+                    // a step that came whole, or an estimate that does not settle, leaves the
+                    // direction to the whole losses below (not mixed with these).
+                    let steps = method.one_step_stencil(h, round);
+                    let changed = along(&steps, true)?;
+                    let most = steps
+                        .iter()
+                        .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
+                    let f = |d: f64| look_up(&changed, d);
+                    let target = rule.target(a, floor);
+                    let settled = most.and_then(|most| {
+                        let noise = most + 2.0 * f64::EPSILON * f0.abs();
+                        method
+                            .one_step_estimate(&f, f0, h, noise, round)
+                            .filter(|e| e.error <= target.bound)
+                    });
+                    if let Some(e) = settled {
+                        est = Some(e);
+                        break;
+                    }
+                }
                 if settle {
-                    table = along(&method.one_step_stencil(h, round))?;
+                    table = along(&method.one_step_stencil(h, round), false)?;
                     let f = |d: f64| look_up(&table, d);
                     let target = rule.target(a, floor);
                     if let Some(e) = method.settle_one_step(&f, f0, h, noise, round, target) {
@@ -653,7 +692,7 @@ pub(crate) fn check_tensors<E>(
                     .into_iter()
                     .filter(|d| !table.iter().any(|(b, _)| *b == d.to_bits()))
                     .collect();
-                table.extend(along(&rest)?);
+                table.extend(along(&rest, false)?);
                 let e = estimate_at(&table, h, reach);
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
@@ -683,14 +722,14 @@ pub(crate) fn check_tensors<E>(
                 && judge(&est).3 == Status::Mismatch
             {
                 let h = est.step * 0.5;
-                let table = along(&method.stencil(h, 1, round))?;
+                let table = along(&method.stencil(h, 1, round), false)?;
                 let again = estimate_at(&table, h, 1);
                 let (_, _, bound, status) = judge(&again);
                 if status == Status::Match && 2.0 * bound < judge(&est).0 {
                     est = again;
                 } else {
                     let s0 = 2.0 * est.step;
-                    let rtable = along(&second_difference_steps(s0))?;
+                    let rtable = along(&second_difference_steps(s0), false)?;
                     let r = |d: f64| look_up(&rtable, d).0;
                     let seen = rtable.iter().any(|(_, (_, kinked))| *kinked);
                     est.crossed |= !seen && !smooth_across(&r, f0, s0, noise);
@@ -703,13 +742,13 @@ pub(crate) fn check_tensors<E>(
             {
                 let s0 = est.step;
                 let first = judge(&est).0;
-                let rtable = along(&second_difference_steps(2.0 * s0))?;
+                let rtable = along(&second_difference_steps(2.0 * s0), false)?;
                 let r = |d: f64| look_up(&rtable, d).0;
                 let smooth = smooth_across(&r, f0, 2.0 * s0, 2.0 * config.eps * f0.abs());
                 let mut resolved = false;
                 let mut kinked = false;
                 for factor in std::iter::once(0.5).chain(RETRIES) {
-                    let table = along(&method.stencil(s0 * factor, 1, round))?;
+                    let table = along(&method.stencil(s0 * factor, 1, round), false)?;
                     let again = estimate_at(&table, s0 * factor, 1);
                     let (_, _, bound, status) = judge(&again);
                     if status == Status::Match && bound < first {

@@ -34,7 +34,7 @@ use std::sync::Mutex;
 use ndarray::{Array2, ArrayD, ArrayView2};
 use num_complex::Complex;
 use plumb_engine::graph::{
-    Difference, Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace,
+    Along, Difference, Graph, LayerScalar, Moved, Response, Shape, Tail, Trace, Workspace,
 };
 use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
@@ -332,7 +332,8 @@ impl Run<'_> {
         // With each coordinate's verdict, the bound of its loss where it came as a change
         // (`Request::Differences`; None where it came whole).
         let seen: RefCell<Seen> = RefCell::default();
-        let seen_along: RefCell<HashMap<u64, bool>> = RefCell::new(HashMap::new());
+        // Of steps along a direction, with the bound of a loss that came as a change.
+        let seen_along: RefCell<HashMap<u64, (bool, Option<f64>)>> = RefCell::new(HashMap::new());
         let complex_mode = complex.is_some();
         let eps = self.config.eps;
         // The losses the checker asked for that came through a response (not the look-ups of
@@ -388,9 +389,29 @@ impl Run<'_> {
                         .collect();
                     let mut seen = seen_along.borrow_mut();
                     for (d, &(_, crossed)) in deltas.iter().zip(&out) {
-                        seen.insert(d.to_bits(), crossed);
+                        seen.insert(d.to_bits(), (crossed, None));
                     }
                     Ok(out.into_iter().map(|(v, _)| v).collect())
+                }
+                Request::AlongDifferences { v, deltas } => {
+                    let along = real.along_differ(v);
+                    let out: Vec<(f64, bool, Option<f64>)> = deltas
+                        .par_iter()
+                        .map(|&d| {
+                            if let Some((loss, bound)) =
+                                along.as_ref().and_then(|a| real.change_along(a, d))
+                            {
+                                return (loss, false, Some(bound));
+                            }
+                            let (loss, crossed) = real.at_along(v, d, None);
+                            (loss, crossed, None)
+                        })
+                        .collect();
+                    let mut seen = seen_along.borrow_mut();
+                    for (d, &(_, crossed, bound)) in deltas.iter().zip(&out) {
+                        seen.insert(d.to_bits(), (crossed, bound));
+                    }
+                    Ok(out.into_iter().map(|(v, _, _)| v).collect())
                 }
             }
         };
@@ -403,7 +424,7 @@ impl Run<'_> {
                     (count, changes)
                 }
                 // The kink verdicts at the real probe steps are computed when the checker asks.
-                Request::Along { v, deltas } => {
+                Request::Along { v, deltas } | Request::AlongDifferences { v, deltas } => {
                     return Ok(deltas
                         .par_iter()
                         .map(|&d| eval.imaginary_along(v, d))
@@ -466,7 +487,7 @@ impl Run<'_> {
             }])
         };
         let crossed_along = |v: &[Vec<f64>], d: f64| {
-            if let Some(&c) = seen_along.borrow().get(&d.to_bits()) {
+            if let Some(&(c, _)) = seen_along.borrow().get(&d.to_bits()) {
                 return c;
             }
             if complex_mode {
@@ -479,6 +500,8 @@ impl Run<'_> {
             let key = (t as u32, k as u64, d.to_bits(), 1);
             seen.borrow().get(&key).and_then(|v| v.1)
         };
+        let bound_along =
+            |d: f64| -> Option<f64> { seen_along.borrow().get(&d.to_bits()).and_then(|v| v.1) };
         let inside = Inside {
             crossed: &crossed,
             crossed_along: &crossed_along,
@@ -488,6 +511,10 @@ impl Run<'_> {
                 .difference
                 .is_some()
                 .then_some(&bound_of as &dyn Fn(usize, usize, f64) -> Option<f64>),
+            differences_along: real
+                .along
+                .is_some()
+                .then_some(&bound_along as &dyn Fn(f64) -> Option<f64>),
         };
         let result = match check_tensors(
             self.tensors,
@@ -593,6 +620,18 @@ struct Eval<'a, S> {
     /// The losses of one entry as changes ([`Difference`]), where the check asked for them
     /// ([`Eval::differ`]).
     difference: Option<Difference<S>>,
+    /// The steps along a direction as changes in f64 at the parameters S holds
+    /// ([`Eval::along_differ`]), built with `difference`.
+    along: Option<AlongBase>,
+}
+
+/// What the steps along a direction read as changes: the difference form over the f64 pass at
+/// the parameters the check holds in S, with those parameters and the batch widened (exactly).
+struct AlongBase {
+    difference: Difference<f64>,
+    params: Vec<ArrayD<f64>>,
+    x: Array2<f64>,
+    y: Array2<f64>,
 }
 
 /// A workspace lent from an [`Eval`]'s pool for one thread's share of a request, given back
@@ -662,6 +701,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             pool: Mutex::new(Vec::new()),
             responses: Vec::new(),
             difference: None,
+            along: None,
         }
     }
 
@@ -678,6 +718,13 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             Difference::new(self.graph, &exact, self.x.view(), y.view()).map(|mut d| {
                 d.respond(self.graph, self.y.view(), picked, RESPONSE_ENTRIES);
                 d
+            });
+        self.along =
+            Difference::new(self.graph, &exact, x.view(), y.view()).map(|difference| AlongBase {
+                difference,
+                params,
+                x,
+                y,
             });
     }
 
@@ -710,6 +757,31 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         }
         let (loss, crossed, responded) = self.at_in(ws, changes);
         (loss, crossed, responded, None)
+    }
+
+    /// What the steps along v share as changes ([`Difference::along`]), where the graph has a
+    /// difference form that covers every layer v moves. In f64 at the parameters S holds, not
+    /// in S: a direction moves every unit of a layer at once, and in f32 the running bound of
+    /// such a change (γ(fan-in) of each product's terms, u of each sample's change, summed
+    /// over cancelling terms) stood 10³–10⁴ times above its actual error, so that 5 of the
+    /// benchmark's 28 directions settled on one step (docs/engine.md, "Losses as changes").
+    /// A check has a few dozen directions against a hundred thousand coordinates: their
+    /// losses are not the check's time.
+    fn along_differ(&self, v: &[Vec<f64>]) -> Option<Along<f64>> {
+        let wide = self.along.as_ref()?;
+        wide.difference
+            .along(self.graph, &wide.params, wide.x.view(), v)
+    }
+
+    /// The loss at the step d along a direction as the base's loss plus its change, with the
+    /// change's bound ([`Difference::along_change`]); `None` where it has no difference form.
+    fn change_along(&self, along: &Along<f64>, d: f64) -> Option<(f64, f64)> {
+        let wide = self.along.as_ref()?;
+        let ch = wide
+            .difference
+            .along_change(self.graph, &wide.params, wide.y.view(), along, d)?;
+        (ch.change.is_finite() && ch.bound.is_finite())
+            .then(|| (self.loss.re() + ch.change, ch.bound))
     }
 
     /// Takes one-entry losses through each layer's response where it has one, for losses whose

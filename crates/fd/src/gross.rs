@@ -9,7 +9,8 @@ use plumb_engine::{Activation, Loss};
 
 /// A bound on each gradient entry's pieces, for a chain of dense layers on a flat input (what a
 /// dense description builds): backpropagation of absolute values (|a| + |y| at the output, |W| and
-/// |g′| on the way down), so that rounding in a − y and in the sums is allowed for; per graph
+/// the size of g′'s terms on the way down, [`Activation::slope_terms`]), so that rounding in
+/// a − y, in a saturated unit's slope and in the sums is allowed for; per graph
 /// tensor (weight, bias of each layer). None for any other graph, whose entries are judged
 /// without it.
 pub fn graph_gradient_magnitude(
@@ -39,7 +40,7 @@ pub fn graph_gradient_magnitude(
             // |∂softmax| is bounded by a(1 + a) per entry.
             Activation::Softmax => a_out.mapv(|v| v.abs() * (1.0 + v.abs())),
             act => Array2::from_shape_fn(a_out.raw_dim(), |(i, k)| {
-                act.slope(z[[i, k]], a_out[[i, k]]).abs()
+                act.slope_terms(z[[i, k]], a_out[[i, k]])
             }),
         };
         delta = delta * slope;
@@ -71,7 +72,7 @@ pub fn graph_gradient_magnitude(
             let act = nodes[l - 1].activation;
             let (z, a) = (&trace.steps[l - 1].out, &trace.outputs[l - 1]);
             let slope =
-                Array2::from_shape_fn(up.raw_dim(), |(i, k)| act.slope(z[[i, k]], a[[i, k]]).abs());
+                Array2::from_shape_fn(up.raw_dim(), |(i, k)| act.slope_terms(z[[i, k]], a[[i, k]]));
             delta = up * slope;
         }
     }

@@ -217,6 +217,7 @@ pub fn probe(
         loss_gross,
         sees_kinks: reference.is_some(),
         differences: None,
+        differences_along: None,
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<crate::Change> = changes

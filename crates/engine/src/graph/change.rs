@@ -35,6 +35,7 @@ use ndarray::{ArrayD, ArrayView2};
 use super::dense::Dense;
 use super::loss::{Errors, OutputBase, gamma};
 use super::{Graph, LayerScalar, Moved, Response, Shape, Step, Trace, Workspace};
+use crate::product::{add_matmul, matmul};
 use crate::{Activation, Loss};
 
 /// The base point's values the difference form reads, built once per check.
@@ -351,6 +352,195 @@ impl<S: LayerScalar> Difference<S> {
         Some(Changed { change, bound })
     }
 
+    /// What the steps along a direction v share (one vector per tensor of the graph, empty
+    /// outside its span), where every layer v moves is at or above the lowest with a difference
+    /// form: v's entries rounded to S, and the lowest moved layer's change of z per unit step,
+    /// a·Vᵀ + v_b, with its bound. `None` where v moves a layer below it (module doc).
+    pub fn along(
+        &self,
+        graph: &Graph,
+        params: &[ArrayD<S>],
+        x: ArrayView2<S>,
+        v: &[Vec<f64>],
+    ) -> Option<Along<S>> {
+        let nodes = graph.nodes();
+        let moves = |t: usize| v.get(t).is_some_and(|vt| vt.iter().any(|w| *w != 0.0));
+        let t0 = (0..graph.tensors().len()).find(|&t| moves(t))?;
+        let from = graph.tensors()[t0].layer;
+        if from < self.first {
+            return None;
+        }
+        let ru = S::epsilon() / 2.0;
+        let narrow: Vec<Vec<S>> = v
+            .iter()
+            .map(|vt| {
+                if vt.iter().any(|w| *w != 0.0) {
+                    vt.iter().map(|&w| S::from_f64(w)).collect()
+                } else {
+                    Vec::new()
+                }
+            })
+            .collect();
+        let input = if from == 0 {
+            x
+        } else {
+            self.trace.outputs[from - 1].view()
+        };
+        let (start, start_err) = spanned(
+            &nodes[from]
+                .tensors()
+                .map(|t| narrow[t].as_slice())
+                .collect::<Vec<_>>(),
+            &params[nodes[from].tensors()],
+            input,
+            // Above the first layer the input is the f64 pass's output rounded once.
+            if from == 0 { 0.0 } else { ru },
+        )?;
+        // The L2 term's change at step d is factor·(2d·Σ w·v + d²·Σ v²) over the decaying
+        // tensors, in f64 (each product of an S value and a rounded v exact there).
+        let (mut wv, mut wv_gross, mut vv, mut count) = (0.0f64, 0.0f64, 0.0f64, 0usize);
+        for (t, vt) in narrow.iter().enumerate() {
+            if vt.is_empty() || !graph.decays(t) {
+                continue;
+            }
+            let w = params[t].as_slice()?;
+            for (&wk, &vk) in w.iter().zip(vt) {
+                let p = wk.re() * vk.re();
+                wv += p;
+                wv_gross += p.abs();
+                vv += vk.re() * vk.re();
+            }
+            count += vt.len();
+        }
+        Some(Along {
+            from,
+            v: narrow,
+            start,
+            start_err,
+            l2: (wv, wv_gross, vv, count),
+        })
+    }
+
+    /// The change of the loss after the step `d` along a direction ([`Difference::along`]), in
+    /// f64 (the data term's change computed in S, the L2 term's in f64), with its bound: layer
+    /// by layer from the lowest moved one, each activation's change as for one entry, and each
+    /// dense layer above's z changed by Δa·Wᵀ plus, where v moves that layer, d·((a + Δa)·Vᵀ +
+    /// v_b), every product's rounding bounded by γ(n) of its terms' magnitudes (Higham §3.1)
+    /// and the incoming errors carried through |W| and |V|. The step taken is d·v with v's
+    /// entries rounded to S (at most u of each, which moves the directional derivative by at
+    /// most u·Σ|g·v|, within the verdict's allowance for the analytic side). `None` where a
+    /// change has no difference form (a kink crossed, a range left): the caller takes the
+    /// whole loss.
+    pub fn along_change(
+        &self,
+        graph: &Graph,
+        params: &[ArrayD<S>],
+        y: ArrayView2<S>,
+        along: &Along<S>,
+        d: S,
+    ) -> Option<Changed<f64>> {
+        let nodes = graph.nodes();
+        let trace = &self.trace;
+        let ru = S::epsilon() / 2.0;
+        let dr = d.re().abs();
+        let mut dz: Vec<S> = along.start.iter().map(|&c| d * c).collect();
+        let mut err: Vec<f64> = along
+            .start_err
+            .iter()
+            .zip(&dz)
+            .map(|(&e, v)| dr * e + ru * v.re().abs())
+            .collect();
+        let m = y.nrows();
+        for j in along.from..nodes.len() - 1 {
+            // Layer j's activation changes, then layer j + 1's z.
+            let act = nodes[j].activation;
+            let ulps = act.change_ulps()?;
+            let (z, a) = (trace.steps[j].out.as_slice()?, trace.outputs[j].as_slice()?);
+            let own = ulps * ru + act.curvature() * self.base_error[j];
+            let slope = act.max_slope();
+            let mut da = Vec::with_capacity(dz.len());
+            let mut da_err = Vec::with_capacity(dz.len());
+            for (k, (&c, &e)) in dz.iter().zip(&err).enumerate() {
+                let change = act.change_from(z[k], a[k], self.slope(j, k), c)?;
+                da_err.push(own * change.re().abs() + slope * e * (1.0 + own));
+                da.push(change);
+            }
+            let next = &params[nodes[j + 1].tensors()];
+            let w = Dense::weight(next);
+            let (outs, ins) = w.dim();
+            let g = gamma(ins, ru);
+            let da = ndarray::Array2::from_shape_vec((m, ins), da).ok()?;
+            let product = matmul(da.view(), w.t());
+            // Σ|W|·(γ|Δa| + e), then (1 + γ) for the carried errors' own sums.
+            let carried: Vec<f64> = da
+                .iter()
+                .zip(&da_err)
+                .map(|(v, e)| g * v.re().abs() + e)
+                .collect();
+            let carried = ndarray::Array2::from_shape_vec((m, ins), carried).ok()?;
+            let bound = matmul(carried.view(), w.mapv(|v| v.re().abs()).t());
+            dz = product.into_iter().collect();
+            err = bound.iter().map(|b| b * (1.0 + g)).collect();
+            let spans: Vec<&[S]> = nodes[j + 1]
+                .tensors()
+                .map(|t| along.v[t].as_slice())
+                .collect();
+            if spans.iter().any(|s| !s.is_empty()) {
+                // a + Δa, one rounding; a itself the f64 pass's output rounded once.
+                let moved: Vec<S> = a.iter().zip(&da).map(|(&a, &c)| a + c).collect();
+                let column: Vec<f64> = moved
+                    .iter()
+                    .zip(a)
+                    .zip(&da_err)
+                    .map(|((v, a), e)| ru * (v.re().abs() + a.re().abs()) + e)
+                    .collect();
+                let moved = ndarray::Array2::from_shape_vec((m, ins), moved).ok()?;
+                let (own_change, own_err) = spanned_with(&spans, next, moved.view(), &column)?;
+                for (k, (&c, &e)) in own_change.iter().zip(&own_err).enumerate() {
+                    let t = d * c;
+                    let sum = dz[k] + t;
+                    err[k] += dr * e + ru * t.re().abs() + ru * sum.re().abs();
+                    dz[k] = sum;
+                }
+            }
+            debug_assert_eq!(dz.len(), m * outs);
+        }
+        let top = nodes.len() - 1;
+        let base = OutputBase {
+            z: trace.steps[top].out.as_slice()?,
+            a: trace.outputs[top].as_slice()?,
+            p: &self.p,
+            y: y.to_slice()?,
+            slopes: &self.slopes,
+            ysums: &self.ysums,
+            base_error: self.base_error[top],
+        };
+        let loss = graph.loss_config();
+        let outputs = nodes[top].layer.output().size();
+        let mut grown = Vec::new();
+        let (data, data_bound) = loss.data_change(
+            nodes[top].activation,
+            outputs,
+            &base,
+            &dz,
+            Errors::Values(&err),
+            &mut grown,
+        )?;
+        let mut change = data.re();
+        let mut bound = data_bound;
+        let factor = loss.l2_factor(m);
+        let (wv, wv_gross, vv, count) = along.l2;
+        if factor != 0.0 && count > 0 {
+            let dw = d.re();
+            let l2 = factor * (2.0 * dw * wv + dw * dw * vv);
+            let e64 = f64::EPSILON / 2.0;
+            bound += gamma(count + 4, e64) * factor * (2.0 * dw.abs() * wv_gross + dw * dw * vv);
+            change += l2;
+        }
+        bound += f64::EPSILON * change.abs();
+        Some(Changed { change, bound })
+    }
+
     /// The top layer's change and the error bound of each of its values, from unit u of
     /// `layer` changing its activation by `da` (each within `rel` of its value, relative),
     /// through every dense layer above: the first by a rank-one product (relative errors), the
@@ -415,4 +605,76 @@ impl<S: LayerScalar> Difference<S> {
         }
         Some((dz, err))
     }
+}
+
+/// A direction's shared values ([`Difference::along`]).
+#[derive(Debug)]
+pub struct Along<S> {
+    /// The lowest layer the direction moves.
+    from: usize,
+    /// Per tensor, v's entries rounded to S (empty outside its span).
+    v: Vec<Vec<S>>,
+    /// Layer `from`'s change of z per unit step (m × units, sample rows) and each value's bound.
+    start: Vec<S>,
+    start_err: Vec<f64>,
+    /// Over the decaying tensors: Σ w·v, Σ |w·v|, Σ v² (f64) and how many entries.
+    l2: (f64, f64, f64, usize),
+}
+
+/// A dense layer's change of z per unit step along its share `v` of a direction (weight then
+/// bias, each empty where v does not move it), a·Vᵀ + v_b, and a bound on each value's error:
+/// the product's γ(fan-in + 1) of its terms' magnitudes, plus each input's rounding, `column`
+/// relative to its value.
+fn spanned<S: LayerScalar>(
+    v: &[&[S]],
+    own: &[ArrayD<S>],
+    input: ArrayView2<S>,
+    column: f64,
+) -> Option<(Vec<S>, Vec<f64>)> {
+    let errors: Vec<f64> = input.iter().map(|a| column * a.re().abs()).collect();
+    spanned_with(v, own, input, &errors)
+}
+
+/// [`spanned`] with a bound per input value (m × fan-in, sample rows).
+fn spanned_with<S: LayerScalar>(
+    v: &[&[S]],
+    own: &[ArrayD<S>],
+    input: ArrayView2<S>,
+    input_err: &[f64],
+) -> Option<(Vec<S>, Vec<f64>)> {
+    let w = Dense::weight(own);
+    let (units, fan_in) = w.dim();
+    let m = input.nrows();
+    let ru = S::epsilon() / 2.0;
+    let g = gamma(fan_in + 1, ru);
+    let weight = v.first().copied().unwrap_or(&[]);
+    let bias = v.get(1).copied().unwrap_or(&[]);
+    let mut out = ndarray::Array2::from_elem((m, units), S::zero());
+    if !bias.is_empty() {
+        for mut row in out.rows_mut() {
+            row.iter_mut().zip(bias).for_each(|(o, &b)| *o = b);
+        }
+    }
+    let mut bound = ndarray::Array2::from_elem((m, units), 0.0f64);
+    if !weight.is_empty() {
+        let vw = ArrayView2::from_shape((units, fan_in), weight).ok()?;
+        add_matmul(&mut out, input, vw.t());
+        // Σ|V|·(γ|a| + e) per value, then (1 + γ) for the carried errors' own sums.
+        let carried: Vec<f64> = input
+            .iter()
+            .zip(input_err)
+            .map(|(a, e)| g * a.re().abs() + e)
+            .collect();
+        let carried = ndarray::Array2::from_shape_vec((m, fan_in), carried).ok()?;
+        bound = matmul(carried.view(), vw.mapv(|x| x.re().abs()).t());
+        bound.mapv_inplace(|b| b * (1.0 + g));
+    }
+    if !bias.is_empty() {
+        for mut row in bound.rows_mut() {
+            row.iter_mut()
+                .zip(bias)
+                .for_each(|(e, b)| *e += g * b.re().abs());
+        }
+    }
+    Some((out.into_iter().collect(), bound.into_iter().collect()))
 }

@@ -70,7 +70,7 @@ pub use crate::convention::{L2Divisor, Reduction};
 pub use add::Add;
 pub use attention::Attention;
 pub use batch_norm::BatchNorm;
-pub use change::{Changed, Difference};
+pub use change::{Along, Changed, Difference};
 pub use conv::{Conv, ConvSettings, Padding};
 pub use dense::Dense;
 pub use embedding::Embedding;

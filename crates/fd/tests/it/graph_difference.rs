@@ -86,6 +86,7 @@ fn chains() -> Vec<(&'static str, Graph)> {
 fn dense_chains_in_f32_over_twenty_seeds() {
     for (i, (name, _)) in chains().into_iter().enumerate() {
         let (mut one_step, mut checked) = (0, 0);
+        let (mut along_one_step, mut along) = (0, 0);
         for seed in 0..20 {
             let c = case(chains().swap_remove(i).1, 8, 200 + seed);
             let mut cfg = config(Method::Central, Precision::F32, seed);
@@ -100,11 +101,19 @@ fn dense_chains_in_f32_over_twenty_seeds() {
             );
             one_step += r.coords.iter().filter(|c| c.one_step).count();
             checked += r.coords.len();
+            along_one_step += r.directions.iter().filter(|d| d.one_step).count();
+            along += r.directions.len();
         }
-        eprintln!("{name}: {one_step} of {checked} coordinates settled on one step in f32");
+        eprintln!(
+            "{name}: {one_step} of {checked} coordinates and {along_one_step} of {along} directions settled on one step in f32"
+        );
         assert!(
             2 * one_step > checked,
             "{name}: {one_step} of {checked} on one step"
+        );
+        assert!(
+            2 * along_one_step > along,
+            "{name}: {along_one_step} of {along} directions on one step"
         );
     }
 }
@@ -170,6 +179,78 @@ fn a_mistake_of_ten_times_the_tolerance_is_caught_and_a_tenth_is_not() {
                         co.analytic,
                         co.numeric,
                         co.bound
+                    );
+                }
+            }
+        }
+    }
+}
+
+// Directions, whose steps come as changes in f64 at the f32 parameters: every entry of one
+// tensor moved by ten times the f32 tolerance (1%) moves the directional derivative along any
+// direction over that tensor by the same 1%, a mismatch; moved by a tenth of it, no direction
+// and no coordinate is one. Tensors whose gradient is below the check's floor are left out (their
+// relative error is judged against the floor).
+#[test]
+fn directions_catch_a_tensor_ten_times_the_tolerance_off_and_pass_a_tenth() {
+    let tol = Precision::F32.tolerance();
+    for (name, graph) in chains() {
+        let c = case(graph, 8, 11);
+        let right = c
+            .graph
+            .gradient(&c.params, c.x.view(), c.y.view(), None)
+            .params;
+        for t in 0..right.len() {
+            for (factor, caught) in [(10.0 * tol, true), (0.1 * tol, false)] {
+                let mut wrong = right.clone();
+                wrong[t].mapv_inplace(|v| v * (1.0 + factor));
+                let mut cfg = config(Method::Central, Precision::F32, 3);
+                cfg.sample = Some(Sample::PerLayer(1));
+                let r = check_graph_gradient(
+                    &c.graph,
+                    &c.params,
+                    c.x.view(),
+                    c.y.view(),
+                    &wrong,
+                    &cfg,
+                    &|_, _| {},
+                )
+                .unwrap();
+                let above = right[t].iter().fold(0.0f64, |m, v| m.max(v.abs())) >= r.floors[t];
+                let over: Vec<_> = r
+                    .directions
+                    .iter()
+                    .filter(|d| d.tensor == Some(t))
+                    .collect();
+                assert!(!over.is_empty(), "{name}: no direction over tensor {t}");
+                let caught_here = over.iter().any(|d| d.status == Status::Mismatch);
+                let listed: Vec<String> = over
+                    .iter()
+                    .map(|d| {
+                        format!(
+                            "{} a={:e} n={:e} bound={:e} one step {}",
+                            d.status.name(),
+                            d.analytic,
+                            d.numeric,
+                            d.bound,
+                            d.one_step
+                        )
+                    })
+                    .collect();
+                if caught && above {
+                    assert!(
+                        caught_here,
+                        "{name}: tensor {t} off by {factor}: {listed:?}"
+                    );
+                }
+                if !caught {
+                    assert!(
+                        !caught_here,
+                        "{name}: tensor {t} off by {factor}: {listed:?}"
+                    );
+                    assert!(
+                        r.coords.iter().all(|co| co.status != Status::Mismatch),
+                        "{name}: tensor {t} off by {factor}: a coordinate failed"
                     );
                 }
             }
@@ -307,5 +388,61 @@ fn a_one_percent_mistake_in_every_entry_is_never_a_match() {
             );
         }
         assert!(seen > 50, "{acts:?}: only {seen} entries above the floor");
+    }
+}
+
+// The verdict's allowance for the analytic side's own rounding, 16ε times the size of the pieces
+// each entry is summed from (`graph_gradient_magnitude`), covers what f32 arithmetic does to the
+// engine's own gradient, measured against the same gradient in f64 at the same f32 parameters
+// and batch: on chains of saturating activations with weights up to 30× their initialisation
+// (units at σ(±12) and beyond, whose slope a(1 − a) keeps two digits in f32), every entry.
+#[test]
+fn the_analytic_allowance_covers_f32_gradients_of_saturated_units() {
+    let eps = f32::EPSILON as f64;
+    for act in [Activation::Sigmoid, Activation::Tanh, Activation::Gelu] {
+        for loss in [LossConfig::cross_entropy(), LossConfig::squared_error()] {
+            let out = if loss.loss == Loss::CrossEntropy {
+                Activation::Softmax
+            } else {
+                Activation::Sigmoid
+            };
+            for scale in [1.0, 10.0, 30.0] {
+                let g = dense_with(6, &[(8, act), (6, act), (3, out)], loss);
+                let mut c = case(g, 8, 41);
+                for p in &mut c.params {
+                    p.mapv_inplace(|v| (v * scale) as f32 as f64);
+                }
+                c.x.mapv_inplace(|v| v as f32 as f64);
+                c.y.mapv_inplace(|v| v as f32 as f64);
+                let p32: Vec<ndarray::ArrayD<f32>> =
+                    c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+                let (x32, y32) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
+                let g32 = c.graph.gradient(&p32, x32.view(), y32.view(), None).params;
+                let g64 = c
+                    .graph
+                    .gradient(&c.params, c.x.view(), c.y.view(), None)
+                    .params;
+                let gross =
+                    plumb_fd::graph_gradient_magnitude(&c.graph, &c.params, c.x.view(), c.y.view())
+                        .expect("a dense chain");
+                let scale_g = g64
+                    .iter()
+                    .flat_map(|t| t.iter())
+                    .fold(0.0f64, |m, v| m.max(v.abs()));
+                for (t, (a, b)) in g32.iter().zip(&g64).enumerate() {
+                    for (k, (&v32, &v64)) in a.iter().zip(b.iter()).enumerate() {
+                        // The allowance of the verdict's rule (plumb_fd::Rule::judge).
+                        let allowed = 64.0 * eps * (v64.abs().max(v32 as f64).abs() + scale_g)
+                            + 16.0 * eps * gross[t][k];
+                        let off = (v32 as f64 - v64).abs();
+                        assert!(
+                            off <= allowed,
+                            "{act} {:?} ×{scale}: t{t} #{k}: f32 {v32:e}, f64 {v64:e}, off {off:e} > {allowed:e}",
+                            loss.loss
+                        );
+                    }
+                }
+            }
+        }
     }
 }

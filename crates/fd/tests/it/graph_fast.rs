@@ -87,6 +87,7 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
         loss_gross: graph_loss_magnitude(g, &c.params, &base, &c.y),
         sees_kinks: true,
         differences: None,
+        differences_along: None,
     };
     let tensors: Vec<OutsideTensor> = g
         .tensors()
