@@ -25,6 +25,7 @@ fn case(hidden: &[usize], dtype: DType, samples: usize) -> (GraphDescription, Te
     }
     let file = TensorFile {
         format: FileFormat::Npz,
+        unread: Vec::new(),
         tensors,
     };
     let batch = Batch::graph_synthetic(&desc.graph, samples, 1);

@@ -322,11 +322,13 @@ fn diagnose<'f>(
     used: &mut BTreeSet<&'f str>,
     findings: &mut Vec<Finding>,
 ) {
-    // Unclaimed tensors by shape, the first of each: a missing tensor's likely stand-in.
+    // Unclaimed tensors by shape, the first of each: a missing tensor's likely stand-in (read
+    // or listed from its header alone: only its name and shape are needed).
+    let listed: Vec<(&'f str, &'f [usize])> = file.listing().map(|(n, s, _)| (n, s)).collect();
     let mut strays: HashMap<&[usize], usize> = HashMap::new();
-    for (i, t) in file.tensors.iter().enumerate().rev() {
-        if !used.contains(t.name.as_str()) {
-            strays.insert(t.shape.as_slice(), i);
+    for (i, &(name, shape)) in listed.iter().enumerate().rev() {
+        if !used.contains(name) {
+            strays.insert(shape, i);
         }
     }
     for (k, (f, (t, status))) in desc.files.iter().zip(statuses).enumerate() {
@@ -374,12 +376,12 @@ fn diagnose<'f>(
                     .iter()
                     .filter_map(|s| strays.get(s.as_slice()).copied())
                     .min()
-                    .map(|i| &file.tensors[i]);
+                    .map(|i| listed[i].0);
                 let kind = desc.layers[f.layer].kind_name();
                 let message = match stand_in {
                     Some(s) => format!(
                         "is not in the file; `{}` has its shape {}: if that is layer {layer}'s {}, rename it in the file{}",
-                        s.name,
+                        s,
                         shape_text(&f.shape),
                         f.role_name(),
                         if dense {
@@ -390,7 +392,7 @@ fn diagnose<'f>(
                                 } else {
                                     "weight"
                                 },
-                                s.name
+                                s
                             )
                         } else {
                             String::new()
@@ -432,9 +434,9 @@ fn diagnose<'f>(
                     .layer(layer)
                     .figure("expected", &f.shape);
                 if let Some(s) = stand_in {
-                    used.insert(s.name.as_str());
-                    strays.retain(|_, &mut i| file.tensors[i].name != s.name);
-                    finding = finding.figure("source", &s.name);
+                    used.insert(s);
+                    strays.retain(|_, &mut i| listed[i].0 != s);
+                    finding = finding.figure("source", s);
                 }
                 findings.push(finding);
             }

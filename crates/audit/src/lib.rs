@@ -17,7 +17,7 @@
 //! let desc = GraphDescription::parse(Path::new("net.toml"), text)?;
 //! // Layer 1 should be 3 × (4 + 1); this file stores it transposed.
 //! let t = Tensor { name: "layer1".into(), shape: vec![5, 3], dtype: DType::F32, data: vec![0.0; 15] };
-//! let file = TensorFile { format: FileFormat::Npz, tensors: vec![t] };
+//! let file = TensorFile::new(FileFormat::Npz, vec![t]);
 //! let audit = audit_graph_shapes(&desc, Some(&file));
 //! assert_eq!(audit.findings[0].code, "transposed-matrix");
 //! # Ok::<(), plumb_formats::DescriptionError>(())

@@ -127,16 +127,16 @@ pub struct StrayTensor {
 }
 
 impl StrayTensor {
-    /// The tensors of `file` whose names are not in `used` (what the layers took), in file order.
+    /// The tensors of `file` whose names are not in `used` (what the layers took), in file order,
+    /// read or listed from their headers alone.
     pub(crate) fn left_over(file: Option<&TensorFile>, used: &BTreeSet<&str>) -> Vec<StrayTensor> {
         file.map(|f| {
-            f.tensors
-                .iter()
-                .filter(|t| !used.contains(t.name.as_str()))
-                .map(|t| StrayTensor {
-                    name: t.name.clone(),
-                    shape: t.shape.clone(),
-                    dtype: t.dtype.name(),
+            f.listing()
+                .filter(|(name, ..)| !used.contains(name))
+                .map(|(name, shape, dtype)| StrayTensor {
+                    name: name.to_string(),
+                    shape: shape.to_vec(),
+                    dtype: dtype.name(),
                 })
                 .collect()
         })

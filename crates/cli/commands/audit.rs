@@ -7,7 +7,7 @@ use anyhow::{Result, anyhow, bail};
 use plumb_audit::{Audit, KindThresholds, Thresholds, audit_graph_file};
 use plumb_engine::Init;
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_formats::{AxisOrder, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{AxisOrder, GraphDescription, TensorFile};
 use plumb_report::{Block, Case, Document, HeatRow, Severity, Verdict, heatmap, histogram};
 use serde::Serialize;
 
@@ -105,7 +105,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
     };
     let desc = GraphDescription::read(&args.net)?;
     let network = network_id(&desc);
-    let file = read_tensors(&args.weights)?;
+    let file = desc.read_weights(&args.weights)?;
     let order = if args.channels_last {
         AxisOrder::ChannelsLast
     } else {
@@ -172,10 +172,9 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
 /// A weight file none of whose tensors fits (in any layout) is another network's: unusable input.
 fn foreign(args: &AuditArgs, file: &TensorFile) -> anyhow::Error {
     let found: Vec<String> = file
-        .tensors
-        .iter()
+        .listing()
         .take(6)
-        .map(|t| format!("`{}` {}", t.name, crate::output::shape(&t.shape)))
+        .map(|(name, shape, _)| format!("`{name}` {}", crate::output::shape(shape)))
         .collect();
     if found.is_empty() {
         return anyhow!(
@@ -297,7 +296,7 @@ fn document(
                 "{} ({}, {} tensors)",
                 weights.display(),
                 file.format.name(),
-                file.tensors.len()
+                file.count()
             ),
         ),
         ("probe data".into(), r.data.describe()),

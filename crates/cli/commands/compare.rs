@@ -4,8 +4,9 @@
 use anyhow::{Result, bail};
 use plumb_diagnose::report::{
     Certification, CompareReport, LossReport, NameReport, TensorReport, compare_graph_report,
+    read_gradient,
 };
-use plumb_formats::{FileFormat, GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{FileFormat, GraphDescription, TensorFile};
 use plumb_report::{Block, Case, Cell, Document, StripSeries, Table, Tone, Verdict};
 
 use crate::args::CompareArgs;
@@ -15,20 +16,20 @@ use crate::output::{Settings, num, shape, verdict_cell};
 
 pub fn run(args: &CompareArgs, settings: &Settings) -> Result<Verdict> {
     let (loaded, network) = load_graph(&args.inputs, settings.seed)?;
-    let file = npy_named(&loaded.desc, read_tensors(&args.gradient)?);
-    if let Some(t) = file.tensors.iter().find(|t| !t.dtype.is_float()) {
+    let map = args.map.join(",");
+    let file = npy_named(&loaded.desc, read_gradient(&loaded, &args.gradient, &map)?);
+    if let Some((name, _, dtype)) = file.listing().find(|(_, _, d)| !d.is_float()) {
         bail!(
-            "{}: tensor `{}` holds {} values; a gradient must be floating point (float32 or float64)",
+            "{}: tensor `{name}` holds {} values; a gradient must be floating point (float32 or float64)",
             args.gradient.display(),
-            t.name,
-            t.dtype.name()
+            dtype.name()
         );
     }
     let report = compare_graph_report(
         &loaded,
         &args.gradient,
         file,
-        &args.map.join(","),
+        &map,
         args.loss,
         settings.seed,
     )?;

@@ -8,7 +8,7 @@ use plumb_audit::{
     GraphShapeAudit, LayerShapes, STRAY_LISTED, Status, StrayTensor, TensorShape,
     audit_graph_shapes,
 };
-use plumb_formats::{GraphDescription, TensorFile, read_tensors};
+use plumb_formats::{GraphDescription, TensorFile};
 use plumb_report::{Block, Case, Cell, Document, Finding, Table, Tone, Verdict};
 use serde::Serialize;
 
@@ -29,7 +29,12 @@ pub struct ShapesReport<'a, A: Serialize = GraphShapeAudit> {
 
 pub fn run(args: &ShapesArgs, settings: &Settings) -> Result<Verdict> {
     let desc = &GraphDescription::read(&args.net)?;
-    let file = args.weights.as_deref().map(read_tensors).transpose()?;
+    // A tensor no layer can name is listed from its header: the audit needs its shape only.
+    let file = args
+        .weights
+        .as_deref()
+        .map(|w| desc.read_weights(w))
+        .transpose()?;
     let audit = audit_graph_shapes(desc, file.as_ref());
     let report = ShapesReport {
         verdict: audit.verdict,
@@ -97,8 +102,8 @@ fn weights_fact(weights: Option<(&PathBuf, &TensorFile)>) -> (String, String) {
                 "{} ({}, {} tensor{})",
                 p.display(),
                 f.format.name(),
-                f.tensors.len(),
-                if f.tensors.len() == 1 { "" } else { "s" }
+                f.count(),
+                if f.count() == 1 { "" } else { "s" }
             ),
         ),
         None => (

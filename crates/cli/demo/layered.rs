@@ -133,6 +133,7 @@ impl Scenario {
 
         let weights = TensorFile {
             format: FileFormat::Npz,
+            unread: Vec::new(),
             tensors: desc.to_file(&params)?,
         };
         let data = data_tensors(&desc, b);
@@ -142,6 +143,7 @@ impl Scenario {
         let wrong = graph.gradient(&params, b.x.view(), b.y.view(), Some(&planted));
         let planted = TensorFile {
             format: FileFormat::Npz,
+            unread: Vec::new(),
             tensors: desc.to_file(&wrong.params)?,
         };
 

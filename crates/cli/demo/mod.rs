@@ -223,11 +223,13 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
     let tensors = desc.to_file(&pump.params)?;
     let good = TensorFile {
         format: FileFormat::Npz,
+        unread: Vec::new(),
         tensors: tensors.clone(),
     };
     // The planted mistake: an exporter that writes layer 2 in the x·W convention, transposed.
     let planted = TensorFile {
         format: FileFormat::Npz,
+        unread: Vec::new(),
         tensors: tensors
             .iter()
             .map(|t| {

@@ -34,4 +34,6 @@ pub use diagnose::{Diagnosis, Hypotheses, diagnose};
 pub use file_view::{file_places, judge_files};
 pub use graph::{GraphProblem, INPUT, judge_graph};
 pub use judge::{Expected, TensorJudgement, Tolerances, holds_only_f32, judge};
-pub use names::{Binding, HABITS, Matched, NameError, bind_gradient, match_names, parse_map};
+pub use names::{
+    Binding, HABITS, Matched, NameError, bind_gradient, match_names, may_bind, parse_map,
+};

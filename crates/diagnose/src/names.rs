@@ -7,6 +7,7 @@
 //! compare the wrong tensors and report a mistake the user never made. A bias gradient stored as a
 //! 1 × n or n × 1 matrix is read as the vector it is, as weight files are.
 
+use std::collections::HashSet;
 use std::fmt;
 
 use thiserror::Error;
@@ -136,6 +137,20 @@ fn habit(file: &str, parameter: &str) -> Option<(&'static str, &'static str)> {
             && file.ends_with(s)
             && &file[p.len()..file.len() - s.len()] == parameter
     })
+}
+
+/// Whether a gradient file's tensor named `file` could be bound to one of `parameters` — by
+/// `map`, its exact name or a habit — and so must be read; any other is only listed, its values
+/// unread (an archive member may inflate to gigabytes that no comparison uses).
+pub fn may_bind(parameters: &HashSet<&str>, map: &[(String, String)], file: &str) -> bool {
+    map.iter().any(|(f, _)| f == file)
+        || parameters.contains(file)
+        || HABITS.iter().any(|(p, s)| {
+            file.len() >= p.len() + s.len()
+                && file.starts_with(p)
+                && file.ends_with(s)
+                && parameters.contains(&file[p.len()..file.len() - s.len()])
+        })
 }
 
 /// Binds file tensors to parameters: `map` first, then exact names, then the habits. Returns one
@@ -288,6 +303,38 @@ mod tests {
         bs.iter()
             .map(|b| (b.file.as_str(), b.parameter.as_str()))
             .collect()
+    }
+
+    /// Every name `match_names` binds is one `may_bind` reads, and names it cannot bind are not:
+    /// the habits of the module doc, `--map`, and near misses (`ddW1`, `dW10`, `W1_grad2`).
+    #[test]
+    fn what_may_bind_is_what_binds() {
+        let params: HashSet<&str> = ["W1", "layer3.weight", "input"].into();
+        let map = parse_map("g=W1").unwrap();
+        for name in [
+            "W1",
+            "dW1",
+            "grad_W1",
+            "grad.W1",
+            "W1.grad",
+            "W1_grad",
+            "dlayer3.weight",
+            "layer3.weight.grad",
+            "input",
+            "dinput",
+            "g",
+        ] {
+            assert!(may_bind(&params, &map, name), "{name}");
+        }
+        for name in ["ddW1", "dW10", "W1_grad2", "gradW1", "h", "", "d", "notes"] {
+            assert!(!may_bind(&params, &map, name), "{name}");
+        }
+        // What match_names binds (the one candidate of each parameter) is read.
+        let file = ["dW1", "grad_layer3.weight", "ddW1"];
+        let p: Vec<&str> = params.iter().copied().collect();
+        for b in match_names(&p, &file, &[]).unwrap() {
+            assert!(may_bind(&params, &[], &b.file), "{}", b.file);
+        }
     }
 
     #[test]

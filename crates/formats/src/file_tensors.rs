@@ -3,7 +3,7 @@
 //! the graph's canonical arrays, and canonical arrays (parameters or gradients) back into file
 //! tensors in the declared storage.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::Path;
 
 use ndarray::{Array1, Array2, ArrayD, ArrayView2, Ix1, Ix2, IxDyn};
@@ -11,7 +11,9 @@ use plumb_engine::graph::{Dense, Graph, GraphError, Role, Shape, Storage};
 
 use crate::settings::{KindSettings, LayerSettings};
 use crate::tensor::shape_text;
-use crate::{AxisOrder, DType, FileFormat, GraphDescription, Layout, Tensor, TensorFile};
+use crate::{
+    AxisOrder, DType, FileFormat, GraphDescription, Layout, Tensor, TensorFile, TensorFileError,
+};
 
 /// The name a gradient file gives the input gradient (DESIGN §5); no parameter may take it.
 pub const INPUT_GRADIENT: &str = "input";
@@ -176,6 +178,29 @@ pub struct LayoutError {
 }
 
 impl GraphDescription {
+    /// The names a weight file's tensors may have for this description to use them: its file
+    /// tensors' names, and its dense layers' under every other layout (a dimension audit knows
+    /// a file stored in another layout by them).
+    pub fn weight_names(&self) -> HashSet<String> {
+        let mut names: HashSet<String> = self.files.iter().map(|f| f.name.clone()).collect();
+        let dense = |l: &LayerSettings| matches!(l.kind, KindSettings::Dense { .. });
+        if self.layers.iter().any(dense) {
+            for layout in Layout::ALL.into_iter().filter(|&l| l != self.layout) {
+                let files = file_tensors(&self.graph, &self.layers, layout);
+                names.extend(files.into_iter().map(|f| f.name));
+            }
+        }
+        names
+    }
+
+    /// The weight file at `path`, its tensors of [`GraphDescription::weight_names`] read and any
+    /// other listed from its header alone ([`crate::read_tensors_for`]): a stray archive member
+    /// costs its header, whatever it would inflate to.
+    pub fn read_weights(&self, path: &Path) -> Result<TensorFile, TensorFileError> {
+        let names = self.weight_names();
+        crate::read_tensors_for(path, &|name| names.contains(name))
+    }
+
     /// The file's tensors as the graph's parameters, canonical shapes, in [`Graph::tensors`]
     /// order. `path` is the weight file, for messages. Tensors the description does not use are
     /// ignored here (a shapes audit reports them).

@@ -5,7 +5,7 @@
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicU64, Ordering};
 
-use crate::{GraphDescription, read_data, read_tensors};
+use crate::{GraphDescription, read_data, read_tensors, read_tensors_for};
 
 /// A temporary file of this process and call, with extension `ext`.
 fn temp(ext: &str, bytes: &[u8]) -> PathBuf {
@@ -23,11 +23,20 @@ fn temp(ext: &str, bytes: &[u8]) -> PathBuf {
 /// error, if any.
 pub fn tensors(ext: &str, bytes: &[u8]) -> Result<usize, String> {
     let path = temp(ext, bytes);
-    let out = read_tensors(&path)
-        .map(|f| f.tensors.len())
-        .map_err(|e| e.to_string());
+    let whole = read_tensors(&path);
+    // Every tensor listed from its header alone: a file that reads lists the same names,
+    // shapes and dtypes in the same order (a listing checks less, so it may list what does
+    // not read).
+    let listed = read_tensors_for(&path, &|_| false);
     let _ = std::fs::remove_file(&path);
-    out
+    if let Ok(whole) = &whole {
+        let listed = listed.unwrap_or_else(|e| panic!("reads whole but not listed: {e}"));
+        assert!(
+            whole.listing().eq(listed.listing()),
+            "the listing is not the file's tensors"
+        );
+    }
+    whole.map(|f| f.tensors.len()).map_err(|e| e.to_string())
 }
 
 /// Reads `bytes[2..]` as a data file of extension `ext` (csv, npz) for a network of

@@ -219,6 +219,9 @@ fn element_names(layout: &FileLayout) -> Vec<&'static str> {
         .collect()
 }
 
+/// The arrays a data archive's reader uses; it lists any other member without reading it.
+const DATA: [&str; 2] = ["x", "y"];
+
 fn read_npz(
     path: &Path,
     input: &Shape,
@@ -244,9 +247,10 @@ fn read_npz(
     }
     // Only a flat x is kept in f32: the engine's dense layer reads it so.
     let narrow = (keep && matches!(input, Shape::Flat(_))).then_some("x");
-    let (mut file, mut seen, kept) = read_tensors_kept(path, narrow)?;
+    // Any other member (a note, the labels' names) is listed from its header, never inflated.
+    let (mut file, mut seen, kept) = read_tensors_kept(path, narrow, &|name| DATA.contains(&name))?;
     debug_assert_eq!(file.format, FileFormat::Npz);
-    let mut names: Vec<String> = file.tensors.iter().map(|t| t.name.clone()).collect();
+    let mut names: Vec<String> = file.listing().map(|(name, ..)| name.to_string()).collect();
     if let Some((at, (x, _))) = &kept {
         names.insert(*at, x.name.clone());
     }

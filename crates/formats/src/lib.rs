@@ -56,5 +56,5 @@ pub use file_tensors::{FileStorage, FileTensor, INPUT_GRADIENT, LayoutError};
 pub use graph_data::{AxisOrder, read_graph_data, read_graph_data_kept};
 pub use graph_description::GraphDescription;
 pub use settings::{KINDS, KindSettings, LayerSettings};
-pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, shape_text};
-pub use tensor_file::{read_tensors, write_tensor_file, write_tensors};
+pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, Unread, shape_text};
+pub use tensor_file::{read_tensors, read_tensors_for, write_tensor_file, write_tensors};

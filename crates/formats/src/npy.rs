@@ -129,12 +129,48 @@ pub(crate) fn read(
         header,
         needed,
     } = declared(at, name, bytes)?;
+    fits_length(at, name, &header, header_end, needed, bytes.len())?;
+    let data = decode(&bytes[header_end..], header.dtype, header.big_endian);
+    tensor(at, name, header_start, header, data)
+}
+
+/// What the header of an NPZ member of `len` bytes declares, its shape and stored type, from
+/// `head`, its first bytes (the whole header among them): the member's values are not read.
+/// The same refusals as [`read`] where they can be told from the header and the length the
+/// archive gives (a shape past `len`, or short of it, is truncated or trailing data).
+pub(crate) fn head(
+    path: &Path,
+    member: &str,
+    name: &str,
+    head: &[u8],
+    len: u64,
+) -> Result<(Vec<usize>, DType), TensorFileError> {
+    let at = At {
+        path,
+        member: Some(member),
+    };
+    let d = declared(at, name, head)?;
+    let len = usize::try_from(len).unwrap_or(usize::MAX);
+    fits_length(at, name, &d.header, d.header_end, d.needed, len)?;
+    Ok((d.header.shape, d.header.dtype))
+}
+
+/// Refuses an array whose `len` bytes, header and data, are not what its header declares: data
+/// from `header_end` on, `needed` bytes of it.
+fn fits_length(
+    at: At<'_>,
+    name: &str,
+    header: &Header,
+    header_end: usize,
+    needed: usize,
+    len: usize,
+) -> Result<(), TensorFileError> {
     let dtype = header.dtype;
     let offset = header_end as u64;
-    let available = (bytes.len() - header_end) as u64;
+    let available = len.saturating_sub(header_end) as u64;
     if needed as u64 != available {
-        let (path, member) = (path.to_path_buf(), member.map(str::to_string));
-        let (tensor, shape) = (name.to_string(), header.shape.into());
+        let (path, member) = (at.path.to_path_buf(), at.member.map(str::to_string));
+        let (tensor, shape) = (name.to_string(), header.shape.clone().into());
         return Err(if available < needed as u64 {
             TensorFileError::Truncated {
                 path,
@@ -157,9 +193,7 @@ pub(crate) fn read(
             }
         });
     }
-
-    let data = decode(&bytes[header_end..], dtype, header.big_endian);
-    tensor(at, name, header_start, header, data)
+    Ok(())
 }
 
 /// Bytes read from a file at a time by [`read_streamed`]: a multiple of every element size.

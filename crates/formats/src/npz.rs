@@ -15,7 +15,7 @@ use zip::write::SimpleFileOptions;
 use zip::{CompressionMethod, ZipArchive, ZipWriter};
 
 use crate::npy;
-use crate::tensor::{DType, Tensor, TensorFileError};
+use crate::tensor::{DType, Tensor, TensorFileError, Unread};
 use crate::tensor_file::Seen;
 
 /// Deflate's longest match (258 bytes) takes at least two bits to encode, so a stream inflates at
@@ -25,8 +25,15 @@ const DEFLATE_MAX_RATIO: u64 = 1032;
 /// Slack for the stream's own framing on tiny members.
 const DEFLATE_SLACK: u64 = 1024;
 
-/// Read every member of an archive, in archive order, each named after its member without `.npy`.
-pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileError> {
+/// Read the members of an archive, in archive order, each named after its member without
+/// `.npy`: those whose name is `wanted` whole, the others from their NPY headers alone (a
+/// deflated one inflated only as far as its header), their values neither inflated nor
+/// widened. Every member's name, entry and header are checked alike.
+pub(crate) fn read(
+    path: &Path,
+    bytes: &[u8],
+    wanted: Wanted<'_>,
+) -> Result<(Vec<Tensor>, Vec<Unread>), TensorFileError> {
     let zip_error = |member: Option<String>, source| TensorFileError::Zip {
         path: path.to_path_buf(),
         member,
@@ -52,6 +59,7 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
     }
 
     let mut tensors = Vec::with_capacity(archive.len());
+    let mut unread = Vec::new();
     let mut names = HashSet::new();
     for index in 0..archive.len() {
         let listed = archive
@@ -109,9 +117,10 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
                 )));
             }
         };
+        let used = wanted(&name);
         // A stored member is read where it lies in the file's bytes, not copied out first (a
         // batch of 8,192 images is 51 MB); its checksum is verified as the zip reader would.
-        if file.compression() == CompressionMethod::Stored {
+        if used && file.compression() == CompressionMethod::Stored {
             let content = file
                 .data_start()
                 .and_then(|start| usize::try_from(start).ok())
@@ -161,6 +170,18 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
                 )));
             }
             inflate(&mut content, end)?;
+            if !used {
+                // The header alone: what a listing needs, checked as a read would check it.
+                let (shape, dtype) = npy::head(path, &member, &name, &content, declared)?;
+                drop(file);
+                unread.push(Unread {
+                    name,
+                    shape,
+                    dtype,
+                    after: tensors.len(),
+                });
+                continue;
+            }
             if content.len() == end {
                 let whole = npy::declared_len(path, Some(&member), &name, &content)?;
                 inflate(&mut content, whole.saturating_add(1))?;
@@ -189,8 +210,11 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
         drop(file);
         tensors.push(npy::read(path, Some(&member), &name, &content)?);
     }
-    Ok(tensors)
+    Ok((tensors, unread))
 }
+
+/// Which names of a file's tensors a reader will use: the others are listed, not read.
+pub(crate) type Wanted<'a> = &'a dyn Fn(&str) -> bool;
 
 /// The member at which the archive's listed member bytes pass the file's `file_len`, with the
 /// count so far: `Some` when its directory lists some bytes under several names (what
@@ -237,6 +261,7 @@ pub(crate) fn read_streamed(
     path: &Path,
     file: &mut File,
     narrow: Option<&str>,
+    wanted: Wanted<'_>,
 ) -> Option<Streamed> {
     let file_len = file.metadata().ok()?.len();
     let mut archive = ZipArchive::new(&mut *file).ok()?;
@@ -250,6 +275,7 @@ pub(crate) fn read_streamed(
     let mut read = Streamed {
         tensors: Vec::with_capacity(archive.len()),
         narrow: None,
+        unread: Vec::new(),
     };
     let mut names = HashSet::new();
     for index in 0..archive.len() {
@@ -279,11 +305,25 @@ pub(crate) fn read_streamed(
         };
         let mut head = vec![0; len.min(HEAD)];
         content.read_exact(&mut head).ok()?;
+        if !wanted(&name) {
+            // Its header alone, whole within the first bytes (else the whole read lists it).
+            if npy::header_end(&head).is_none_or(|end| end > head.len()) {
+                return None;
+            }
+            let (shape, dtype) = npy::head(path, &member, &name, &head, len as u64).ok()?;
+            read.unread.push(Unread {
+                name,
+                shape,
+                dtype,
+                after: read.tensors.len(),
+            });
+            continue;
+        }
         let kept = narrow == Some(name.as_str())
             && npy::head_dtype(path, &name, &head).is_some_and(<f32 as npy::Element>::holds);
         if kept {
             let member = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
-            read.narrow = Some((read.tensors.len(), member));
+            read.narrow = Some((read.tensors.len() + read.unread.len(), member));
         } else {
             let member = npy::read_streamed(path, &member, &name, &head, &mut content, len)?;
             read.tensors.push(member);
@@ -317,10 +357,12 @@ pub(crate) fn declared_shapes(path: &Path) -> Option<Vec<(String, Vec<usize>)>> 
 
 /// The members of a streamed archive: each widened to f64 with what was seen of its values'
 /// finiteness, and the member asked for in f32 when it is stored in f32, with the number of
-/// members before it in the archive.
+/// members before it in the archive (read or not); those not wanted from their headers alone,
+/// each placed among the others (`after`, the kept member not counted).
 pub(crate) struct Streamed {
     pub tensors: Vec<(Tensor, Seen)>,
     pub narrow: Option<(usize, (Tensor<f32>, Seen))>,
+    pub unread: Vec<Unread>,
 }
 
 /// A reader that keeps the CRC-32 of what it has read (the archive's checksum of a member).

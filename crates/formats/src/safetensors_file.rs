@@ -10,10 +10,16 @@ use safetensors::tensor::{Dtype, TensorView};
 use safetensors::{SafeTensorError, SafeTensors};
 
 use crate::npy;
-use crate::tensor::{DType, Tensor, TensorFileError};
+use crate::npz::Wanted;
+use crate::tensor::{DType, Tensor, TensorFileError, Unread};
 
-/// Read every tensor, in the order of their data offsets (the order they were written in).
-pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileError> {
+/// Read every tensor, in the order of their data offsets (the order they were written in): those
+/// whose name is `wanted` widened, the others listed from the header alone.
+pub(crate) fn read(
+    path: &Path,
+    bytes: &[u8],
+    wanted: Wanted<'_>,
+) -> Result<(Vec<Tensor>, Vec<Unread>), TensorFileError> {
     let (header_len, metadata) = SafeTensors::read_metadata(bytes).map_err(|source| {
         // JSON keeps the last of a repeated name, and the crate then blames the offsets.
         match repeated_name(bytes) {
@@ -29,7 +35,7 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
         }
     })?;
     let data_start = 8 + header_len;
-    let mut tensors = Vec::new();
+    let (mut tensors, mut unread) = (Vec::new(), Vec::new());
     for name in metadata.offset_keys() {
         let Some(info) = metadata.info(&name) else {
             continue;
@@ -51,6 +57,15 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
                 source: SafeTensorError::InvalidOffset(name),
             });
         };
+        if !wanted(&name) {
+            unread.push(Unread {
+                name,
+                shape: info.shape.clone(),
+                dtype,
+                after: tensors.len(),
+            });
+            continue;
+        }
         tensors.push(Tensor {
             name,
             shape: info.shape.clone(),
@@ -58,7 +73,7 @@ pub(crate) fn read(path: &Path, bytes: &[u8]) -> Result<Vec<Tensor>, TensorFileE
             data: npy::decode(raw, dtype, false),
         });
     }
-    Ok(tensors)
+    Ok((tensors, unread))
 }
 
 fn dtype_of(dtype: Dtype) -> Option<DType> {

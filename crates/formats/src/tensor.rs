@@ -207,14 +207,60 @@ impl fmt::Display for FileFormat {
 #[derive(Clone, Debug, PartialEq)]
 pub struct TensorFile {
     pub format: FileFormat,
+    /// The tensors read, values and all.
     pub tensors: Vec<Tensor>,
+    /// The tensors listed from their headers alone (empty unless the reader was told which
+    /// names it may use: [`crate::read_tensors_for`]).
+    pub unread: Vec<Unread>,
 }
 
 impl TensorFile {
-    /// The tensor of that name, if the file has one.
+    /// A file whose every tensor was read.
+    pub fn new(format: FileFormat, tensors: Vec<Tensor>) -> TensorFile {
+        TensorFile {
+            format,
+            tensors,
+            unread: Vec::new(),
+        }
+    }
+
+    /// The tensor of that name, if the file has one and it was read.
     pub fn get(&self, name: &str) -> Option<&Tensor> {
         self.tensors.iter().find(|t| t.name == name)
     }
+
+    /// Every tensor of the file, read or not, in the file's order: its name, shape and stored
+    /// type. What a report lists of a file; a file's values are in [`TensorFile::tensors`].
+    pub fn listing(&self) -> impl Iterator<Item = (&str, &[usize], DType)> {
+        let mut unread = self.unread.iter().peekable();
+        let mut read = self.tensors.iter().enumerate().peekable();
+        std::iter::from_fn(move || {
+            let next_read = read.peek().map(|(i, _)| *i).unwrap_or(usize::MAX);
+            if let Some(u) = unread.next_if(|u| u.after <= next_read) {
+                return Some((u.name.as_str(), u.shape.as_slice(), u.dtype));
+            }
+            read.next()
+                .map(|(_, t)| (t.name.as_str(), t.shape.as_slice(), t.dtype))
+        })
+    }
+
+    /// How many tensors the file holds, read or not.
+    pub fn count(&self) -> usize {
+        self.tensors.len() + self.unread.len()
+    }
+}
+
+/// A tensor of a file known from its header alone — name, shape and stored type — whose values
+/// were neither inflated nor widened: no name the reader could use matches it (a note in a data
+/// archive, a stray array beside the weights), and an archive member can inflate to gigabytes
+/// from a few kilobytes. Reports still list it.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Unread {
+    pub name: String,
+    pub shape: Vec<usize>,
+    pub dtype: DType,
+    /// How many of the file's read tensors come before it: its place in the file's order.
+    pub after: usize,
 }
 
 /// Why a tensor file could not be read or written. Every variant carries the path and, where one

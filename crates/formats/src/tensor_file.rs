@@ -4,44 +4,55 @@
 
 use std::path::Path;
 
+use crate::npz::Wanted;
 use crate::tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, shape_text};
 use crate::{npy, npz, safetensors_file};
 
 /// Read every tensor of a `.npy`, `.npz` or `.safetensors` file (chosen by extension). A single
 /// `.npy` holds one tensor, named after the file stem.
 pub fn read_tensors(path: &Path) -> Result<TensorFile, TensorFileError> {
-    read_tensors_seen(path).map(|(file, _)| file)
+    read_tensors_for(path, &|_| true)
+}
+
+/// [`read_tensors`] for a reader that uses only the tensors whose names are `wanted`: the others
+/// are listed in [`TensorFile::unread`] from their headers (an NPZ member's NPY header, a
+/// safetensors header entry), their values neither inflated nor widened, so that an archive
+/// member nothing uses costs its header, whatever it inflates to. Every header is still checked:
+/// a damaged one is refused naming the file and member, as a read would. A `.npy` holds one
+/// tensor and is read whole.
+pub fn read_tensors_for(
+    path: &Path,
+    wanted: &dyn Fn(&str) -> bool,
+) -> Result<TensorFile, TensorFileError> {
+    read_tensors_kept(path, None, wanted).map(|(file, _, _)| file)
 }
 
 /// Where a tensor's first value that is not finite lies, when a read looked on the way:
 /// `Some(None)` all are finite, `Some(Some(i))` flat index i is not, `None` nobody looked.
 pub(crate) type Seen = Option<Option<usize>>;
 
-/// [`read_tensors`], with what the read saw of each tensor's finiteness (a streamed archive's
-/// values are tested piece by piece while in cache; a batch of 8,192 images is 51 MB to read
-/// again otherwise).
-pub(crate) fn read_tensors_seen(path: &Path) -> Result<(TensorFile, Vec<Seen>), TensorFileError> {
-    read_tensors_kept(path, None).map(|(file, seen, _)| (file, seen))
-}
-
-/// An f32 member kept as stored: its place among the file's members (the number before it),
-/// its tensor and what the read saw of its finiteness.
+/// An f32 member kept as stored: its place among the file's members (the number before it,
+/// read or not), its tensor and what the read saw of its finiteness.
 pub(crate) type Kept = Option<(usize, (Tensor<f32>, Seen))>;
 
-/// [`read_tensors_seen`], with the member named `narrow`, when an archive of stored members
+/// [`read_tensors_for`], with what the read saw of each tensor's finiteness (a streamed
+/// archive's values are tested piece by piece while in cache; a batch of 8,192 images is 51 MB
+/// to read again otherwise), and the member named `narrow`, when an archive of stored members
 /// holds it in f32, kept in f32 and left out of the file's tensors.
 pub(crate) fn read_tensors_kept(
     path: &Path,
     narrow: Option<&str>,
+    wanted: Wanted<'_>,
 ) -> Result<(TensorFile, Vec<Seen>, Kept), TensorFileError> {
     let format = FileFormat::from_path(path);
     if format == Some(FileFormat::Npz)
-        && let Some(read) = streamed_npz(path, narrow)
+        && let Some(read) = streamed_npz(path, narrow, wanted)
     {
         let (tensors, seen) = read.tensors.into_iter().unzip();
         let file = TensorFile {
             format: FileFormat::Npz,
             tensors,
+            unread: read.unread,
         };
         return Ok((file, seen, read.narrow));
     }
@@ -69,26 +80,31 @@ pub(crate) fn read_tensors_kept(
             found,
         });
     }
-    let tensors = match format {
+    let (tensors, unread) = match format {
         FileFormat::Npy => {
             let name = path
                 .file_stem()
                 .map(|s| s.to_string_lossy().into_owned())
                 .unwrap_or_default();
-            vec![npy::read(path, None, &name, &bytes)?]
+            (vec![npy::read(path, None, &name, &bytes)?], Vec::new())
         }
-        FileFormat::Npz => npz::read(path, &bytes)?,
-        FileFormat::Safetensors => safetensors_file::read(path, &bytes)?,
+        FileFormat::Npz => npz::read(path, &bytes, wanted)?,
+        FileFormat::Safetensors => safetensors_file::read(path, &bytes, wanted)?,
     };
     let seen = vec![None; tensors.len()];
-    Ok((TensorFile { format, tensors }, seen, None))
+    let file = TensorFile {
+        format,
+        tensors,
+        unread,
+    };
+    Ok((file, seen, None))
 }
 
 /// The tensors of an archive of stored members, each widened as it is read from the file
 /// rather than after the whole file is in memory (the member `narrow` kept in f32 if it is
 /// stored so); `None` for anything else (the whole-file read then reads it or says what is
 /// wrong).
-fn streamed_npz(path: &Path, narrow: Option<&str>) -> Option<npz::Streamed> {
+fn streamed_npz(path: &Path, narrow: Option<&str>, wanted: Wanted<'_>) -> Option<npz::Streamed> {
     use std::io::{Read, Seek};
     let mut file = crate::input::open_input(path, crate::MAX_TENSOR_BYTES).ok()?;
     // The signature that makes `sniff` call the file an archive.
@@ -98,7 +114,7 @@ fn streamed_npz(path: &Path, narrow: Option<&str>) -> Option<npz::Streamed> {
         return None;
     }
     file.rewind().ok()?;
-    npz::read_streamed(path, &mut file, narrow)
+    npz::read_streamed(path, &mut file, narrow, wanted)
 }
 
 /// Write tensors in a format, stored as `dtype` (F32 or F64), atomically: a reader never sees a

@@ -1,12 +1,13 @@
 //! A black box: the program's own tensors, with parameters from a weight file by name or drawn
 //! from the seed, and data from a file or drawn from the shapes its hello declares.
 
+use std::collections::HashSet;
 use std::path::PathBuf;
 
 use plumb_engine::{Batch, Rng};
 use plumb_fd::report::widest_float;
 use plumb_formats::Tensor;
-use plumb_formats::{read_tensors, shape_text};
+use plumb_formats::{read_tensors_for, shape_text};
 use plumb_report::{DataSource, WeightsSource};
 
 use crate::{Hello, RunError, TensorSpec};
@@ -20,7 +21,9 @@ pub(crate) fn blackbox_parameters(
 ) -> Result<(Vec<Tensor>, WeightsSource), RunError> {
     match weights {
         Some(path) => {
-            let file = read_tensors(path)?;
+            // Only the tensors the program declares are read; any other is listed.
+            let declared: HashSet<&str> = tensors.iter().map(|s| s.name.as_str()).collect();
+            let file = read_tensors_for(path, &|name| declared.contains(name))?;
             let source = WeightsSource::File {
                 path: path.clone(),
                 format: file.format.name().into(),
@@ -91,7 +94,7 @@ pub fn blackbox_batch(
     let npz = data.is_some_and(|p| p.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz")));
     if let Some(path) = data {
         let batch = if npz {
-            let file = read_tensors(path)?;
+            let file = read_tensors_for(path, &|name| ["x", "y"].contains(&name))?;
             let two_d = |name: &str| -> Result<ndarray::Array2<f64>, RunError> {
                 let Some(t) = file.get(name) else {
                     bail!(

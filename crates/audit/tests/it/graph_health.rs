@@ -421,6 +421,7 @@ fn a_dense_file_audit_agrees_with_the_graph_audit_and_names_the_file_tensors() {
         ] {
             let file = TensorFile {
                 format: FileFormat::Npz,
+                unread: Vec::new(),
                 tensors: desc.to_file(&p).unwrap(),
             };
             let read = audit_graph_file(

@@ -16,6 +16,7 @@ fn parse(text: &str) -> GraphDescription {
 fn fitting(d: &GraphDescription) -> TensorFile {
     TensorFile {
         format: FileFormat::Npz,
+        unread: Vec::new(),
         tensors: d
             .files
             .iter()

@@ -28,6 +28,7 @@ fn shapes_of_a_file_with_100000_tensors_are_audited_in_near_linear_time() {
         .collect();
     let file = TensorFile {
         format: FileFormat::Safetensors,
+        unread: Vec::new(),
         tensors,
     };
     let audit = audit_graph_shapes(&desc, Some(&file));
@@ -81,6 +82,7 @@ fn a_release_audit_of_100000_tensors_matches_findings_to_cases_in_near_linear_ti
     }));
     let file = TensorFile {
         format: FileFormat::Npz,
+        unread: Vec::new(),
         tensors,
     };
     let batch = Batch::graph_synthetic(&desc.graph, 8, 1);

@@ -5,14 +5,14 @@
 //! any other kind's is converted from its declared storage to the graph's canonical shape, as its
 //! parameter is, and judged by [`crate::judge_graph`].
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::Path;
 
 use ndarray::{Array2, ArrayD, Ix2, IxDyn};
 use plumb_engine::graph::{Dense, GraphError, Shape};
 use plumb_fd::report::GraphLoaded;
 use plumb_fd::{CheckConfig, Method, Precision, Status, check_graph};
-use plumb_formats::{AxisOrder, FileStorage, GraphDescription, TensorFile};
+use plumb_formats::{AxisOrder, DType, FileStorage, GraphDescription, TensorFile};
 use plumb_report::{SCHEMA_VERSION, Verdict};
 
 use plumb_report::Finding;
@@ -23,7 +23,11 @@ use super::{
     tensor_report, uncertified_finding, widened_finding,
 };
 use crate::file_view::expected_files;
-use crate::{Expected, INPUT, Tolerances, bind_gradient, judge_files, judge_graph, parse_map};
+use crate::names::NameList;
+use crate::{
+    Expected, INPUT, NameError, Tolerances, bind_gradient, judge_files, judge_graph, may_bind,
+    parse_map,
+};
 use plumb_formats::Tensor;
 
 /// The outside gradient per graph tensor, canonical shapes: a file tensor of the declared shape is
@@ -99,11 +103,29 @@ pub fn compare_graph_report(
         error,
     };
     let (widened, dtypes) = stored_dtypes(&file);
-    let single = !dtypes.contains(&plumb_formats::DType::F64);
+    let f64_listed = file.unread.iter().any(|u| u.dtype == DType::F64);
+    let single = !dtypes.contains(&DType::F64) && !f64_listed;
     let map = parse_map(map).map_err(names_error)?;
     let expected = expected_files(desc, Some(graph_input_shape(loaded)));
-    let outside: Vec<Tensor> = file.tensors;
-    let (outside, bindings) = bind_gradient(&expected, outside, &map).map_err(names_error)?;
+    // Every name the file holds, read or listed, for a map that names none of them.
+    let held: Vec<String> = file.listing().map(|(name, ..)| name.to_string()).collect();
+    let TensorFile {
+        format,
+        tensors: outside,
+        unread,
+    } = file;
+    let (outside, bindings) = bind_gradient(&expected, outside, &map)
+        .map_err(|error| match error {
+            NameError::MapNoTensor {
+                file, parameter, ..
+            } => NameError::MapNoTensor {
+                file,
+                parameter,
+                held: NameList(held),
+            },
+            error => error,
+        })
+        .map_err(names_error)?;
     // Each graph tensor is held to the precision its file tensor was stored (or computed) in.
     let eps_file: HashMap<&str, f64> = outside
         .iter()
@@ -132,7 +154,12 @@ pub fn compare_graph_report(
         .into_iter()
         .filter(|e| e.name != INPUT || input.is_some())
         .collect();
-    findings.extend(name_findings(&files, &outside));
+    let bound = TensorFile {
+        format,
+        tensors: outside,
+        unread,
+    };
+    findings.extend(name_findings(&files, &bound));
     if widened {
         findings.push(widened_finding());
     }
@@ -166,6 +193,24 @@ pub fn compare_graph_report(
         tensors,
         findings,
     })
+}
+
+/// The gradient file at `path` that `compare` judges against `loaded` with the `--map` pairs
+/// `map`: the tensors a parameter or the input gradient can be bound to ([`may_bind`]) read,
+/// any other listed from its header alone, its values neither inflated nor widened.
+pub fn read_gradient(
+    loaded: &GraphLoaded,
+    path: &Path,
+    map: &str,
+) -> Result<TensorFile, CompareError> {
+    let map = parse_map(map).map_err(|error| CompareError::Names {
+        path: path.to_path_buf(),
+        error,
+    })?;
+    let expected = expected_files(&loaded.desc, Some(graph_input_shape(loaded)));
+    let parameters: HashSet<&str> = expected.iter().map(|e| e.name.as_str()).collect();
+    let wanted = |name: &str| may_bind(&parameters, &map, name);
+    Ok(plumb_formats::read_tensors_for(path, &wanted)?)
 }
 
 /// The shape of the batch's input gradient as a program or a file gives it: (m, *input) in the

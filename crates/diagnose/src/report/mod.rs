@@ -14,6 +14,7 @@ mod graph;
 
 pub use graph::{
     certify_graph, compare_graph_report, graph_input_shape, judge_graph_gradient, judge_graph_loss,
+    read_gradient,
 };
 
 use crate::{Binding, Expected, NameError, TensorJudgement, holds_only_f32};
@@ -30,6 +31,9 @@ pub enum CompareError {
     /// The gradient file does not fit the network (the file is named).
     #[error("{}: {message}", path.display())]
     Input { path: PathBuf, message: String },
+    /// The gradient file cannot be read (its error names it).
+    #[error(transparent)]
+    File(#[from] plumb_formats::TensorFileError),
 }
 
 fn shape(s: &[usize]) -> String {
@@ -219,17 +223,26 @@ impl ConventionsReport {
     }
 }
 
+/// A gradient file's tensor under a name no expected tensor has.
+struct Stray<'a> {
+    name: &'a str,
+    shape: &'a [usize],
+}
+
 /// Findings on the names of an outside gradient: tensors under other names with the missing ones'
 /// shapes, in order (say which name goes where), and tensors no expected one is named like.
-fn name_findings(expected: &[Expected], outside: &[Tensor]) -> Vec<Finding> {
+/// `listed` holds the file's tensors as bound (under their parameters' names) and those listed
+/// from their headers alone, which no parameter can be bound to.
+fn name_findings(expected: &[Expected], listed: &TensorFile) -> Vec<Finding> {
     let mut findings = Vec::new();
     let absent: Vec<&Expected> = expected
         .iter()
-        .filter(|e| !outside.iter().any(|u| u.name == e.name))
+        .filter(|e| !listed.tensors.iter().any(|u| u.name == e.name))
         .collect();
-    let strays: Vec<&Tensor> = outside
-        .iter()
-        .filter(|u| !expected.iter().any(|e| e.name == u.name))
+    let strays: Vec<Stray> = listed
+        .listing()
+        .filter(|(name, ..)| !expected.iter().any(|e| e.name == *name))
+        .map(|(name, shape, _)| Stray { name, shape })
         .collect();
     if !absent.is_empty()
         && absent.len() == strays.len()
@@ -257,10 +270,10 @@ fn name_findings(expected: &[Expected], outside: &[Tensor]) -> Vec<Finding> {
                 Severity::Warning,
                 format!(
                     "{} is in the gradient, but no tensor of the layout has that name",
-                    shape(&u.shape)
+                    shape(u.shape)
                 ),
             )
-            .tensor(&u.name),
+            .tensor(u.name),
         );
     }
     findings
@@ -441,7 +454,8 @@ fn loss_verdict(
 }
 
 /// The element type each tensor of a gradient file was computed in, in file order, and whether a
-/// float64 file was found to hold only float32 values (then computed in float32, judged so).
+/// float64 file was found to hold only float32 values (then computed in float32, judged so). A
+/// float64 tensor listed from its header alone is not known to hold float32 values.
 fn stored_dtypes(file: &TensorFile) -> (bool, Vec<DType>) {
     let f64_values = || {
         file.tensors
@@ -451,6 +465,7 @@ fn stored_dtypes(file: &TensorFile) -> (bool, Vec<DType>) {
     };
     let widened = f64_values().next().is_some()
         && f64_values().any(|v| v != 0.0)
+        && !file.unread.iter().any(|u| u.dtype == DType::F64)
         && file
             .tensors
             .iter()

@@ -11,7 +11,7 @@ use plumb_engine::graph::{Graph, GraphError};
 use plumb_engine::{Batch, Features, Init, Inputs, Loss, Rng};
 use plumb_formats::{
     AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
-    read_graph_data, read_graph_data_kept, read_tensors,
+    read_graph_data, read_graph_data_kept,
 };
 use plumb_report::{DataSource, WeightsSource};
 
@@ -169,7 +169,8 @@ impl<X: LoadedX> GraphLoaded<X> {
         let graph = &desc.graph;
         let (params, weights_source) = match inputs.weights {
             Some(path) => {
-                let file = read_tensors(path)?;
+                // Only the tensors the description can name are read; strays are listed.
+                let file = desc.read_weights(path)?;
                 vet(&desc, &file, path).map_err(GraphLoadError::Misfit)?;
                 check_finite(&file, path)?;
                 let params = desc.read_params(&file, path)?;
@@ -327,7 +328,8 @@ fn check_finite(file: &TensorFile, path: &Path) -> Result<(), GraphLoadError> {
     Ok(())
 }
 
-/// The widest floating-point type among a file's tensors (float64 if any, else the narrower).
+/// The widest floating-point type among a file's tensors, read or listed (float64 if any, else
+/// the narrower).
 pub fn widest_float(file: &TensorFile) -> &'static str {
     use plumb_formats::DType;
     let rank = |d: DType| match d {
@@ -336,9 +338,8 @@ pub fn widest_float(file: &TensorFile) -> &'static str {
         DType::F16 | DType::BF16 => 1,
         _ => 0,
     };
-    file.tensors
-        .iter()
-        .map(|t| t.dtype)
+    file.listing()
+        .map(|(_, _, dtype)| dtype)
         .max_by_key(|&d| rank(d))
         .map_or("float64", |d| d.name())
 }

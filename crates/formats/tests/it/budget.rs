@@ -10,7 +10,7 @@ use std::sync::Mutex;
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use plumb_engine::graph::Shape;
-use plumb_formats::{AxisOrder, read_data, read_graph_data, read_tensors};
+use plumb_formats::{AxisOrder, DType, read_data, read_graph_data, read_tensors};
 use zip::write::SimpleFileOptions;
 use zip::{CompressionMethod, ZipWriter};
 
@@ -473,6 +473,74 @@ fn one_member_listed_under_many_names_costs_no_more_than_the_file_holds() {
                 bytes.len()
             ),
         }
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A member no reader asks for is listed from its NPY header, never inflated or widened: 16 MiB
+/// of bool zeros beside a small x and y, deflated (about 16 KiB: deflate's ratio on zeros) and
+/// stored, cost below the archive's size plus 1 MiB as weights (`read_tensors_for`) and as data
+/// (`read_data`, which takes x and y only); read whole they are 16 MiB inflated and 128 MiB as
+/// f64, which the same bound must catch. The listing gives the header's shape and dtype (the NPY
+/// format's `|b1`, bool) in the archive's order.
+#[test]
+fn a_member_no_reader_asks_for_costs_its_header() {
+    let _one = ONE_AT_A_TIME.lock().unwrap();
+    let dir = scratch("unread");
+    let notes_len = 16 << 20;
+    let mut notes = npy(
+        &format!("{{'descr': '|b1', 'fortran_order': False, 'shape': ({notes_len},), }}"),
+        &[],
+    );
+    notes.resize(notes.len() + notes_len, 0);
+    let x = npy(
+        "{'descr': '<f8', 'fortran_order': False, 'shape': (2, 2), }",
+        &[0; 32],
+    );
+    let y = npy(
+        "{'descr': '<f8', 'fortran_order': False, 'shape': (2, 1), }",
+        &[0; 16],
+    );
+    let members = [
+        ("x.npy", &x[..]),
+        ("notes.npy", &notes[..]),
+        ("y.npy", &y[..]),
+    ];
+    for method in [CompressionMethod::Deflated, CompressionMethod::Stored] {
+        let archive = zip_of(&members, method);
+        let path = dir.join("notes.npz");
+        std::fs::write(&path, &archive).unwrap();
+        // The file's bytes when read whole (a deflated archive), and a few reading buffers.
+        let bound = if method == CompressionMethod::Deflated {
+            archive.len() + (1 << 20)
+        } else {
+            1 << 20
+        };
+        let wanted = |name: &str| name != "notes";
+        let (file, peak) = peak_during(|| plumb_formats::read_tensors_for(&path, &wanted));
+        let file = file.unwrap();
+        assert!(peak < bound, "{method:?}: peak {peak} bytes, bound {bound}");
+        let listing: Vec<(&str, &[usize], DType)> = file.listing().collect();
+        assert_eq!(
+            listing,
+            [
+                ("x", &[2, 2][..], DType::F64),
+                ("notes", &[notes_len][..], DType::Bool),
+                ("y", &[2, 1][..], DType::F64),
+            ],
+            "{method:?}"
+        );
+        assert_eq!(file.tensors.len(), 2, "{method:?}: read x and y only");
+        let (batch, peak) = peak_during(|| read_data(&path, 2, 1));
+        assert_eq!(batch.unwrap().x.dim(), (2, 2), "{method:?}");
+        assert!(peak < bound, "{method:?}: data, peak {peak} bytes");
+        // The other direction: read whole, the member costs its values as f64.
+        let (file, peak) = peak_during(|| read_tensors(&path));
+        assert_eq!(file.unwrap().get("notes").unwrap().len(), notes_len);
+        assert!(
+            peak >= notes_len * 8,
+            "{method:?}: whole, peak {peak} bytes"
+        );
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
