@@ -87,6 +87,10 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
         loss_gross: graph_loss_magnitude(g, &c.params, &base, &c.y),
         sees_kinks: true,
         differences: None,
+        bent: None,
+        bent_along: None,
+        round_off: None,
+        round_off_along: None,
     };
     let tensors: Vec<OutsideTensor> = g
         .tensors()
