@@ -173,7 +173,8 @@ fn other_activations_at_large_weight_scales_raise_no_false_alarm() {
     eprintln!("other activations, f32, share matched by scale {SCALES:?}: {shares:.3?}");
     // Not asserted: tanh's estimates at 30x-100x under squared error, settled on one step by
     // losses as changes, can lie up to 3 times their bound from the truth while within the
-    // tolerance (an open undercount of the difference form's bound, not a false alarm).
+    // tolerance: the third difference undercounts the truncation there (docs/engine.md,
+    // "Bends"; open, not a false alarm).
     eprintln!("other activations: {beyond} coordinates beyond their bound from the truth");
     assert!(shares.iter().all(|&s| s > 0.5), "{shares:?}");
 }
