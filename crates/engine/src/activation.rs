@@ -123,6 +123,29 @@ impl Activation {
             .is_some_and(|k| pairs.any(|(a, b)| (a.re() > k) != (b.re() > k)))
     }
 
+    /// Whether moving this activation's argument from `z` to `now` goes past `share` of the
+    /// radius of convergence of its Taylor series about z: the distance from z to the nearest
+    /// complex point where the function is not analytic (any complex-analysis text: tanh has
+    /// poles at iπ(k + ½), so the radius is √(z² + (π/2)²); the logistic function's poles and
+    /// softplus's branch points lie at iπ(2k + 1), √(z² + π²); gelu's come from tanh of its
+    /// argument √(2/π)(z + 0.044715z³), taken there). A finite difference's error estimate
+    /// assumes the loss is near its Taylor polynomial across the stencil; past a fair share of
+    /// that radius a smooth unit acts as a kink at the step's scale (softplus or tanh with
+    /// weights hundreds of times their usual scale in f32, whose step moves z by tens).
+    /// Identity, relu, leaky relu and elu have no such point (elu below 0 is α(eᶻ − 1), entire;
+    /// their kinks are [`Self::kink`]'s and [`Self::break_point`]'s); softmax's is the graph's
+    /// to judge over a row. NaN is never past.
+    pub fn bends(&self, z: f64, now: f64, share: f64) -> bool {
+        let gelu = |v: f64| GELU_C * (v + GELU_K * v * v * v);
+        let (from, to, pole) = match *self {
+            Activation::Tanh => (z, now, std::f64::consts::FRAC_PI_2),
+            Activation::Sigmoid | Activation::Softplus => (z, now, std::f64::consts::PI),
+            Activation::Gelu => (gelu(z), gelu(now), std::f64::consts::FRAC_PI_2),
+            _ => return false,
+        };
+        (to - from).abs() > share * from.hypot(pole)
+    }
+
     /// g(z) for one element (not for softmax, which needs the whole row).
     #[inline]
     pub fn value<S: Scalar>(&self, z: S) -> S {

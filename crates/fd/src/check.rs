@@ -108,6 +108,13 @@ pub fn loss_noise(eps: f64, loss: f64, gross: f64) -> f64 {
 /// plain path's own round-off could move a verdict as much (docs/engine.md, "The response").
 pub const RESPONSE_SHARE: f64 = 0.1;
 
+/// The share of an activation's Taylor radius (`Activation::bends`) a step may move it by
+/// before a disagreement found across that step is estimated again with the step counted as a
+/// crossing. The ladder's truncation estimate assumes the loss near its Taylor polynomial over
+/// the stencil, and its terms fall by (step/radius)² from one order to the next: at half the
+/// radius a quarter, which the estimate's doubling covers.
+pub const BEND_SHARE: f64 = 0.5;
+
 /// Directions checked per part and globally when not asked otherwise.
 pub const DEFAULT_DIRECTIONS: usize = 4;
 

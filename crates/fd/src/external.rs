@@ -42,7 +42,22 @@ pub struct Inside<'a> {
     /// As `differences`, for the steps along a direction ([`Request::AlongDifferences`]): the
     /// bound of the last request's loss at step d, `None` where it came whole.
     pub differences_along: Option<&'a dyn Fn(f64) -> Option<f64>>,
+    /// Whether a step along one coordinate (`bent`) or a direction (`bent_along`) moves some
+    /// activation past [`BEND_SHARE`](crate::BEND_SHARE) of its Taylor radius: a disagreement
+    /// whose stencil does is estimated again with such steps counted as crossings. `None`
+    /// where nothing is known of the inside.
+    pub bent: Option<&'a dyn Fn(usize, usize, f64) -> bool>,
+    pub bent_along: Option<&'a AlongVerdict<'a, bool>>,
+    /// The round-off a loss at a step along one coordinate (`round_off`) or a direction
+    /// (`round_off_along`) actually carries, measured against the same loss in f64: a
+    /// disagreement is judged again with it where it exceeds the round-off assumed per loss.
+    /// `None` where the loss is f64's own or nothing is known of the inside.
+    pub round_off: Option<&'a dyn Fn(usize, usize, f64) -> f64>,
+    pub round_off_along: Option<&'a AlongVerdict<'a, f64>>,
 }
+
+/// A figure of the step d along a direction v (one vector per tensor), for [`Inside`].
+pub type AlongVerdict<'a, T> = dyn Fn(&[Vec<f64>], f64) -> T + 'a;
 
 impl Inside<'static> {
     pub fn opaque() -> Inside<'static> {
@@ -53,6 +68,10 @@ impl Inside<'static> {
             sees_kinks: false,
             differences: None,
             differences_along: None,
+            bent: None,
+            bent_along: None,
+            round_off: None,
+            round_off_along: None,
         }
     }
 }
@@ -412,6 +431,52 @@ pub(crate) fn check_tensors<E>(
     // half the step stands when it is a match whose bound is below half the first disagreement
     // (a mistake of that size would have shown beyond its bound): a noisier estimate that merely
     // fails to disagree proves nothing.
+    // Past the quadratic regime: an estimate farther from the analytic value than its bound
+    // (a mismatch, or a match by the tolerance alone) whose stencil, at twice its step (the
+    // rung its truncation estimate read), took some activation past its share of the Taylor
+    // radius is estimated again on the ladder with every such step counted as a crossing,
+    // from the default step and then 10, 100 and 1000 times smaller, as for a kink. Softplus or a
+    // softmax at weights hundreds of times their usual scale is a kink at f32's steps: the
+    // ladder's quotients flatten past it and agree with each other, far from the derivative.
+    if let (Some(bent), None, false) = (inside.bent, config.step, complex) {
+        let mut open: Vec<usize> = (0..picked.len())
+            .filter(|&i| {
+                let ((t, k), s) = (picked[i], estimates[i].0.step);
+                let (off, _, bound, status) = judge(i, &estimates[i].0);
+                status != Status::Unreliable
+                    && off > bound
+                    && [2.0 * s, -2.0 * s].into_iter().any(|d| bent(t, k, d))
+            })
+            .collect();
+        for factor in std::iter::once(1.0).chain(RETRIES) {
+            if open.is_empty() {
+                break;
+            }
+            let h_at = |i: usize| {
+                let (t, k) = picked[i];
+                step_of(t, k) * factor
+            };
+            let wanted: Vec<((usize, usize), Vec<f64>)> = open
+                .iter()
+                .map(|&i| (picked[i], method.stencil(h_at(i), reach, round)))
+                .collect();
+            let (tables, _) = ask_marked(losses, crossed, &wanted, method.evaluations(), None)?;
+            let mut next = Vec::new();
+            for (&i, table) in open.iter().zip(&tables) {
+                let (t, k) = picked[i];
+                let f = |d: f64| {
+                    let (value, kinked) = look_up(table, d);
+                    (value, kinked || bent(t, k, d))
+                };
+                let est = method.estimate_with(&f, f0, h_at(i), noise, round, reach);
+                if est.crossed {
+                    next.push(i);
+                }
+                estimates[i] = (est, true);
+            }
+            open = next;
+        }
+    }
     if inside.sees_kinks && config.step.is_none() && !complex {
         let suspects: Vec<usize> = (0..picked.len())
             .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
@@ -472,6 +537,28 @@ pub(crate) fn check_tensors<E>(
             if !seen && !smooth_across(&r, f0, s, noise) {
                 estimates[i].0.crossed = true;
                 estimates[i].1 = true;
+            }
+        }
+    }
+    // The round-off assumed per loss (`noise`, a few ε of its pieces) is what a loss carries
+    // at the usual scale; at weights hundreds of times it, each layer's rounding is carried up
+    // by the weights above and a whole f32 loss erred by 500 times that (tanh at 300x). A
+    // disagreement that still holds is judged again with the round-off its stencil's losses
+    // (±s and ±2s) actually carried, where that is more: its value's share (2/s per unit) and
+    // the truncation estimate's (read from the neighbouring rung), 4/s per unit in all.
+    if let (Some(measure), None, false) = (inside.round_off, config.step, complex) {
+        for i in 0..picked.len() {
+            // Losses as changes carry their own bounds: the whole losses' round-off is not theirs.
+            let own = estimates[i].0.one_step && differences.is_some();
+            if own || judge(i, &estimates[i].0).3 != Status::Mismatch {
+                continue;
+            }
+            let ((t, k), s) = (picked[i], estimates[i].0.step);
+            let carried = [s, -s, 2.0 * s, -2.0 * s]
+                .into_iter()
+                .fold(0.0f64, |m, d| m.max(measure(t, k, d)));
+            if carried > noise {
+                estimates[i].0.error += 4.0 * (carried - noise) / s;
             }
         }
     }
@@ -599,6 +686,25 @@ pub(crate) fn check_tensors<E>(
             let h0 = config
                 .step
                 .unwrap_or_else(|| method.default_step(theta, config.eps));
+            // A step d along v puts each entry at θᵢ + d·vᵢ as the loss's precision holds it
+            // (d·vᵢ rounded, then the sum): within u·(|θᵢ| + 2|d·vᵢ|) of it, u = ε/2 (Higham
+            // §2.2), so the loss is taken up to Σ|gᵢ|·u·(|θᵢ| + 2|d·vᵢ|) away from its value at
+            // θ + d·v, a round-off of each evaluation that does not shrink with the step (one
+            // coordinate's own entry moves by the step itself). At weights hundreds of times their
+            // usual scale an f32 direction's smaller steps erred by ten times the loss's own
+            // round-off so. Counted with it, at the ladder's largest step.
+            let noise = {
+                let u = config.eps / 2.0;
+                let top = h0 * f64::from(1u32 << reach.min(16));
+                let placed: f64 = tensors
+                    .iter()
+                    .zip(&v)
+                    .flat_map(|(x, vt)| x.values.iter().zip(&x.gradient).zip(vt))
+                    .filter(|(_, w)| **w != 0.0)
+                    .map(|((theta, g), w)| g.abs() * (theta.abs() + 2.0 * top * w.abs()))
+                    .sum();
+                noise + u * placed
+            };
             // The loss along v at the given steps, and whether each step crossed a kink (asked
             // right after the request: the graph keeps the last request's verdicts).
             // With `changes`, asked for as changes ([`Request::AlongDifferences`]).
@@ -714,6 +820,29 @@ pub(crate) fn check_tensors<E>(
                 .sum();
             let judge =
                 |e: &crate::Estimate| rule.judge(a, e.value, floor, gross_dir, e.error, e.crossed);
+            // As for coordinates: an estimate beyond its bound across a step past an
+            // activation's share of its Taylor radius is estimated again with such steps
+            // counted as crossings.
+            if let (Some(bent), None, false) = (inside.bent_along, config.step, complex) {
+                let (s, (off, _, bound, status)) = (est.step, judge(&est));
+                if status != Status::Unreliable
+                    && off > bound
+                    && [2.0 * s, -2.0 * s].into_iter().any(|d| bent(&v, d))
+                {
+                    for factor in std::iter::once(1.0).chain(RETRIES) {
+                        let h = h0 * factor;
+                        let table = along(&method.stencil(h, reach, round), false)?;
+                        let f = |d: f64| {
+                            let (value, kinked) = look_up(&table, d);
+                            (value, kinked || bent(&v, d))
+                        };
+                        est = method.estimate_with(&f, f0, h, noise, round, reach);
+                        if !est.crossed {
+                            break;
+                        }
+                    }
+                }
+            }
             // As for coordinates: a disagreement must hold at half the step where the kinks
             // are seen; a black box's at a smaller step on a loss that looks smooth along v.
             if inside.sees_kinks
@@ -765,6 +894,17 @@ pub(crate) fn check_tensors<E>(
                     }
                 }
                 est.crossed |= !resolved && (kinked || !smooth);
+            }
+            if let (Some(measure), None, false) = (inside.round_off_along, config.step, complex)
+                && judge(&est).3 == Status::Mismatch
+            {
+                let s = est.step;
+                let carried = [s, -s, 2.0 * s, -2.0 * s]
+                    .into_iter()
+                    .fold(0.0f64, |m, d| m.max(measure(&v, d)));
+                if carried > noise {
+                    est.error += 4.0 * (carried - noise) / s;
+                }
             }
             let (_, rel_error, bound, status) = judge(&est);
             directions.push(OutsideDirection {

@@ -40,12 +40,12 @@ use plumb_engine::{Activation, Loss};
 use rayon::prelude::*;
 
 use crate::check::{
-    CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress, RESPONSE_SHARE,
-    loss_noise,
+    BEND_SHARE, CheckConfig, CheckError, Coverage, DEFAULT_DIRECTIONS, Precision, Progress,
+    RESPONSE_SHARE, loss_noise,
 };
 use crate::coverage::cover_blocks;
 use crate::direction::directions;
-use crate::external::{Plan, Request, check_tensors};
+use crate::external::{AlongVerdict, Plan, Request, check_tensors};
 use crate::gross::graph_gradient_magnitude;
 use crate::method::{ComplexScalar, complex_estimate, round_to};
 use crate::sweep::{Curve, SweepPlan};
@@ -502,6 +502,38 @@ impl Run<'_> {
         };
         let bound_along =
             |d: f64| -> Option<f64> { seen_along.borrow().get(&d.to_bits()).and_then(|v| v.1) };
+        let bent = |t: usize, k: usize, d: f64| {
+            real.bent(&[Change {
+                perturbation: 0,
+                tensor: t as u32,
+                index: k as u64,
+                delta: d,
+            }])
+        };
+        let bent_along = |v: &[Vec<f64>], d: f64| real.bent_along(v, d);
+        // Below f64, the round-off a loss carries, against the same loss in f64.
+        let wide = S::epsilon() > f64::EPSILON;
+        let round_off = |t: usize, k: usize, d: f64| {
+            let change = [Change {
+                perturbation: 0,
+                tensor: t as u32,
+                index: k as u64,
+                delta: d,
+            }];
+            let (loss, _) = real.at(&change);
+            let (mut moved, _) = real.moved(&[], S::one());
+            let mut wide: Vec<ArrayD<f64>> = moved.iter_mut().map(|p| p.mapv(|v| v.re())).collect();
+            // The entry moved by the step as S holds it, exactly (the one-entry hints add δ
+            // itself, not θ + δ rounded).
+            wide[t].as_slice_mut().expect("standard layout")[k] += S::from_f64(d).re();
+            (loss - real.wide_loss(&wide)).abs()
+        };
+        let round_off_along = |v: &[Vec<f64>], d: f64| {
+            let (loss, _) = real.at_along(v, d, None);
+            let moved = real.moved_along(v, d);
+            let wide: Vec<ArrayD<f64>> = moved.iter().map(|p| p.mapv(|v| v.re())).collect();
+            (loss - real.wide_loss(&wide)).abs()
+        };
         let inside = Inside {
             crossed: &crossed,
             crossed_along: &crossed_along,
@@ -515,6 +547,10 @@ impl Run<'_> {
                 .along
                 .is_some()
                 .then_some(&bound_along as &dyn Fn(f64) -> Option<f64>),
+            bent: Some(&bent),
+            bent_along: Some(&bent_along),
+            round_off: wide.then_some(&round_off as &dyn Fn(usize, usize, f64) -> f64),
+            round_off_along: wide.then_some(&round_off_along as &AlongVerdict<'_, f64>),
         };
         let result = match check_tensors(
             self.tensors,
@@ -997,6 +1033,42 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             .min()
             .unwrap_or(0);
         self.ties_from[from] > 0 && self.at(changes).1
+    }
+
+    /// Whether the step by `changes` takes some activation past [`BEND_SHARE`] of its Taylor
+    /// radius around the base pass ([`Graph::bent`]), by a whole pass at the moved parameters:
+    /// asked for a disagreement only, so its cost is not the check's.
+    fn bent(&self, changes: &[Change]) -> bool {
+        let (moved, _) = self.moved(changes, S::one());
+        let trace = self.graph.forward(&moved, self.x.view());
+        self.graph.bent(&self.trace, &trace, BEND_SHARE)
+    }
+
+    /// [`Eval::bent`] for the step d·v along a direction.
+    fn bent_along(&self, v: &[Vec<f64>], d: f64) -> bool {
+        let trace = self.graph.forward(&self.moved_along(v, d), self.x.view());
+        self.graph.bent(&self.trace, &trace, BEND_SHARE)
+    }
+
+    /// The parameters at the step d·v, each moved entry rounded as [`Eval::perturbed_along`]
+    /// rounds it.
+    fn moved_along(&self, v: &[Vec<f64>], d: f64) -> Vec<ArrayD<S>> {
+        let mut moved = self.params.clone();
+        for (p, vt) in moved.iter_mut().zip(v) {
+            let values = p.as_slice_mut().expect("standard layout");
+            for (x, &w) in values.iter_mut().zip(vt) {
+                if w != 0.0 {
+                    *x += S::from_f64(d * w);
+                }
+            }
+        }
+        moved
+    }
+
+    /// The loss at `params` (S's values widened) computed in f64 on the batch as S holds it.
+    fn wide_loss(&self, params: &[ArrayD<f64>]) -> f64 {
+        let (x, y) = (self.x.mapv(|v| v.re()), self.y.mapv(|v| v.re()));
+        self.graph.loss(params, x.view(), y.view())
     }
 
     /// Whether a layer the tail recomputed took another branch than the base pass: a kind's

@@ -44,14 +44,14 @@ mod sweep;
 
 pub use allocator::keep_freed_memory;
 pub use check::{
-    CheckConfig, CheckError, CoordCheck, Coverage, DEFAULT_DIRECTIONS, NOISE, Precision, Progress,
-    Rule, SETTLE, Settlement, Status, UNSETTLED_SHARE, loss_noise,
+    BEND_SHARE, CheckConfig, CheckError, CoordCheck, Coverage, DEFAULT_DIRECTIONS, NOISE,
+    Precision, Progress, Rule, SETTLE, Settlement, Status, UNSETTLED_SHARE, loss_noise,
 };
 pub use coverage::{DEFAULT_PER_LAYER, FULL_CHECK_LIMIT, Sample, select_tensors};
 pub use direction::{Direction, directions};
 pub use external::{
-    Change, Entry, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord, OutsideDirection,
-    OutsideTensor, check_external, select_flat,
+    AlongVerdict, Change, Entry, ExternalConfig, ExternalResult, Inside, Losses, OutsideCoord,
+    OutsideDirection, OutsideTensor, check_external, select_flat,
 };
 pub use floor::{FLOOR, ROUND_OFF, relative_floor};
 pub use graph_check::{

@@ -218,6 +218,10 @@ pub fn probe(
         sees_kinks: reference.is_some(),
         differences: None,
         differences_along: None,
+        bent: None,
+        bent_along: None,
+        round_off: None,
+        round_off_along: None,
     };
     let mut ask = |count: usize, changes: &[Change]| {
         let wire: Vec<crate::Change> = changes

@@ -1206,6 +1206,36 @@ impl Graph {
         }
     }
 
+    /// Whether the pass `moved` took some value of a layer's activation past `share` of the
+    /// radius of convergence of its Taylor series around the `base` pass
+    /// ([`Activation::bends`]); for a softmax, each value's gap to its row's largest in the
+    /// base, whose log-sum-exp is singular where two values differ by iπ (radius
+    /// √(gap² + π²)). Both passes must keep every z ([`Graph::forward`]). What a checker asks
+    /// before it trusts a disagreement whose error estimate assumed the loss near its Taylor
+    /// polynomial. The kinds' own nonlinearities (recurrent gates, attention's softmax, a
+    /// norm's 1/√var) are not looked at: the activations the graph applies only.
+    pub fn bent<S: LayerScalar>(&self, base: &Trace<S>, moved: &Trace<S>, share: f64) -> bool {
+        self.nodes
+            .iter()
+            .zip(base.steps.iter().zip(&moved.steps))
+            .any(|(node, (was, now))| match node.activation {
+                Activation::Softmax => {
+                    let width = node.layer.output().dims().last().copied().unwrap_or(1);
+                    let (Some(was), Some(now)) = (was.out.as_slice(), now.out.as_slice()) else {
+                        return false;
+                    };
+                    was.chunks(width.max(1))
+                        .zip(now.chunks(width.max(1)))
+                        .any(|(w, n)| softmax_bends(w, n, share))
+                }
+                act => was
+                    .out
+                    .iter()
+                    .zip(&now.out)
+                    .any(|(a, b)| act.bends(a.re(), b.re(), share)),
+            })
+    }
+
     /// The branches a forward pass took (see [`Branches`]).
     pub fn branches<S: Scalar>(&self, trace: &Trace<S>) -> Branches {
         let layers = self
@@ -1768,6 +1798,19 @@ fn runs_differ<T>(
                 .zip(&then[run])
                 .fold(false, |any, (a, b)| any | differ(a, b))
         })
+    })
+}
+
+/// [`Graph::bent`] for one softmax row: whether some value's gap to the base's largest moved
+/// past `share` of √(gap² + π²), the distance to log-sum-exp's nearest singularity.
+fn softmax_bends<S: Scalar>(was: &[S], now: &[S], share: f64) -> bool {
+    let Some(top) = (0..was.len()).max_by(|&a, &b| was[a].re().total_cmp(&was[b].re())) else {
+        return false;
+    };
+    was.iter().zip(now).any(|(w, n)| {
+        let gap = w.re() - was[top].re();
+        let moved = n.re() - now[top].re() - gap;
+        moved.abs() > share * gap.hypot(std::f64::consts::PI)
     })
 }
 

@@ -5,6 +5,7 @@ mod common;
 mod graph_common;
 
 mod dual;
+mod graph_bends;
 mod graph_difference;
 mod graph_dual;
 mod graph_f32_batch;

@@ -88,6 +88,10 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
         sees_kinks: true,
         differences: None,
         differences_along: None,
+        bent: None,
+        bent_along: None,
+        round_off: None,
+        round_off_along: None,
     };
     let tensors: Vec<OutsideTensor> = g
         .tensors()

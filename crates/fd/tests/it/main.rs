@@ -15,6 +15,7 @@ mod graph_kinks;
 mod graph_mistakes;
 mod graph_pass;
 mod graph_places;
+mod graph_scales;
 mod graph_seeds;
 mod graph_shards;
 mod graph_units;
