@@ -307,7 +307,7 @@ impl<S: LayerScalar> Difference<S> {
                 Some(per_sample) => (top, Err(per_sample)),
                 None => {
                     ws.give(top);
-                    let (top, err) = self.up_from(graph, params, trace, layer, u, &da, rel)?;
+                    let (top, err) = self.up_from(graph, params, layer, u, &da, rel)?;
                     (top, Ok(err))
                 }
             };
@@ -453,34 +453,11 @@ impl<S: LayerScalar> Difference<S> {
         let m = y.nrows();
         for j in along.from..nodes.len() - 1 {
             // Layer j's activation changes, then layer j + 1's z.
-            let act = nodes[j].activation;
-            let ulps = act.change_ulps()?;
-            let (z, a) = (trace.steps[j].out.as_slice()?, trace.outputs[j].as_slice()?);
-            let own = ulps * ru + act.curvature() * self.base_error[j];
-            let slope = act.max_slope();
-            let mut da = Vec::with_capacity(dz.len());
-            let mut da_err = Vec::with_capacity(dz.len());
-            for (k, (&c, &e)) in dz.iter().zip(&err).enumerate() {
-                let change = act.change_from(z[k], a[k], self.slope(j, k), c)?;
-                da_err.push(own * change.re().abs() + slope * e * (1.0 + own));
-                da.push(change);
-            }
+            let a = trace.outputs[j].as_slice()?;
+            let (da, da_err) = self.activation_change(graph, j, &dz, &err)?;
             let next = &params[nodes[j + 1].tensors()];
-            let w = Dense::weight(next);
-            let (outs, ins) = w.dim();
-            let g = gamma(ins, ru);
-            let da = ndarray::Array2::from_shape_vec((m, ins), da).ok()?;
-            let product = matmul(da.view(), w.t());
-            // Σ|W|·(γ|Δa| + e), then (1 + γ) for the carried errors' own sums.
-            let carried: Vec<f64> = da
-                .iter()
-                .zip(&da_err)
-                .map(|(v, e)| g * v.re().abs() + e)
-                .collect();
-            let carried = ndarray::Array2::from_shape_vec((m, ins), carried).ok()?;
-            let bound = matmul(carried.view(), w.mapv(|v| v.re().abs()).t());
-            dz = product.into_iter().collect();
-            err = bound.iter().map(|b| b * (1.0 + g)).collect();
+            let ins = da.len() / m.max(1);
+            (dz, err) = weighted(next, &da, &da_err, m);
             let spans: Vec<&[S]> = nodes[j + 1]
                 .tensors()
                 .map(|t| along.v[t].as_slice())
@@ -503,7 +480,6 @@ impl<S: LayerScalar> Difference<S> {
                     dz[k] = sum;
                 }
             }
-            debug_assert_eq!(dz.len(), m * outs);
         }
         let top = nodes.len() - 1;
         let base = OutputBase {
@@ -541,16 +517,42 @@ impl<S: LayerScalar> Difference<S> {
         Some(Changed { change, bound })
     }
 
+    /// Layer j's activation's change from its z's change `dz` (each value within `err`), with
+    /// each value's bound: the change form's own ulps, the base's error in z through the
+    /// curvature, and the incoming error through the largest slope. `None` where a value has no
+    /// difference form (a kink crossed, a range left).
+    fn activation_change(
+        &self,
+        graph: &Graph,
+        j: usize,
+        dz: &[S],
+        err: &[f64],
+    ) -> Option<(Vec<S>, Vec<f64>)> {
+        let ru = S::epsilon() / 2.0;
+        let act = graph.nodes()[j].activation;
+        let ulps = act.change_ulps()?;
+        let trace = &self.trace;
+        let (z, a) = (trace.steps[j].out.as_slice()?, trace.outputs[j].as_slice()?);
+        let own = ulps * ru + act.curvature() * self.base_error[j];
+        let slope = act.max_slope();
+        let mut change = Vec::with_capacity(dz.len());
+        let mut change_err = Vec::with_capacity(dz.len());
+        for (k, (&d, &e)) in dz.iter().zip(err).enumerate() {
+            let c = act.change_from(z[k], a[k], self.slope(j, k), d)?;
+            change_err.push(own * c.re().abs() + slope * e * (1.0 + own));
+            change.push(c);
+        }
+        Some((change, change_err))
+    }
+
     /// The top layer's change and the error bound of each of its values, from unit u of
     /// `layer` changing its activation by `da` (each within `rel` of its value, relative),
     /// through every dense layer above: the first by a rank-one product (relative errors), the
     /// others by whole products summed in f64 and rounded once (absolute errors, Higham §3.1).
-    #[allow(clippy::too_many_arguments)]
     fn up_from(
         &self,
         graph: &Graph,
         params: &[ArrayD<S>],
-        trace: &Trace<S>,
         layer: usize,
         u: usize,
         da: &[S],
@@ -571,41 +573,8 @@ impl<S: LayerScalar> Difference<S> {
         let mut err: Vec<f64> = dz.iter().map(|v| (rel + ru) * v.re().abs()).collect();
         for j in next..nodes.len() - 1 {
             // Layer j's activation changes, then layer j + 1's z by that times its weights.
-            let act = nodes[j].activation;
-            let ulps = act.change_ulps()?;
-            let (z, a) = (trace.steps[j].out.as_slice()?, trace.outputs[j].as_slice()?);
-            let own = ulps * ru + act.curvature() * self.base_error[j];
-            let slope = act.max_slope();
-            let mut change = Vec::with_capacity(dz.len());
-            let mut change_err = Vec::with_capacity(dz.len());
-            for (k, (&d, &e)) in dz.iter().zip(&err).enumerate() {
-                let c = act.change_from(z[k], a[k], self.slope(j, k), d)?;
-                change_err.push(own * c.re().abs() + slope * e * (1.0 + own));
-                change.push(c);
-            }
-            let w = Dense::weight(&params[nodes[j + 1].tensors()]);
-            let (outs, ins) = w.dim();
-            // Each sum formed in f64 (a product of two f32 values is exact there) and rounded
-            // once: γ(fan-in) in S of the terms' magnitudes, which cancel, kept most losses of a
-            // wide relu layer's units off one step (784-512-512-10 in f32: 950 of its first
-            // layer's 1,000 coordinates unsettled). The products by gemm in f64: Δa·Wᵀ, and
-            // (γ|Δa| + e)·|W|ᵀ for the bound, times (1 + γ) for the carried errors' own sums.
-            let g = gamma(ins, f64::EPSILON / 2.0);
-            let wide = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| change[n * ins + i].re());
-            let carried = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| {
-                g * wide[[n, i]].abs() + change_err[n * ins + i]
-            });
-            let w64 = w.mapv(|v| v.re());
-            let sums = matmul(wide.view(), w64.t());
-            let bounds = matmul(carried.view(), w64.mapv(f64::abs).t());
-            dz.clear();
-            err.clear();
-            for (&s, &b) in sums.iter().zip(&bounds) {
-                let rounded = S::from_f64(s);
-                dz.push(rounded);
-                err.push(b * (1.0 + g) + ru * rounded.re().abs());
-            }
-            debug_assert_eq!(dz.len(), m * outs);
+            let (change, change_err) = self.activation_change(graph, j, &dz, &err)?;
+            (dz, err) = weighted(&params[nodes[j + 1].tensors()], &change, &change_err, m);
         }
         Some((dz, err))
     }
@@ -623,6 +592,39 @@ pub struct Along<S> {
     start_err: Vec<f64>,
     /// Over the decaying tensors: Σ w·v, Σ |w·v|, Σ v² (f64) and how many entries.
     l2: (f64, f64, f64, usize),
+}
+
+/// A dense layer's change of z from its input's change `change` (m samples × fan-in, each
+/// value within `change_err`), Δa·Wᵀ with W the layer's own weight (no bias), and each value's
+/// bound. Each sum formed in f64 (a product of two f32 values is exact there) and rounded
+/// once: γ(fan-in) in S of the terms' magnitudes, which cancel, kept most losses of a wide relu
+/// layer's units off one step (784-512-512-10 in f32: 950 of its first layer's 1,000
+/// coordinates unsettled). The products by gemm in f64: Δa·Wᵀ, and (γ|Δa| + e)·|W|ᵀ for the
+/// bound, times (1 + γ) for the carried errors' own sums, plus the final rounding.
+fn weighted<S: LayerScalar>(
+    own: &[ArrayD<S>],
+    change: &[S],
+    change_err: &[f64],
+    m: usize,
+) -> (Vec<S>, Vec<f64>) {
+    let w = Dense::weight(own);
+    let ins = w.ncols();
+    let ru = S::epsilon() / 2.0;
+    let g = gamma(ins, f64::EPSILON / 2.0);
+    let wide = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| change[n * ins + i].re());
+    let carried = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| {
+        g * wide[[n, i]].abs() + change_err[n * ins + i]
+    });
+    let w64 = w.mapv(|v| v.re());
+    let sums = matmul(wide.view(), w64.t());
+    let bounds = matmul(carried.view(), w64.mapv(f64::abs).t());
+    sums.iter()
+        .zip(&bounds)
+        .map(|(&s, &b)| {
+            let rounded = S::from_f64(s);
+            (rounded, b * (1.0 + g) + ru * rounded.re().abs())
+        })
+        .unzip()
 }
 
 /// A dense layer's change of z per unit step along its share `v` of a direction (weight then
