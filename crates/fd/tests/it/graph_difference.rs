@@ -9,7 +9,7 @@ use crate::graph_common;
 use graph_common::*;
 use plumb_engine::graph::{Graph, LossConfig};
 use plumb_engine::{Activation, Loss, Reduction};
-use plumb_fd::{Method, Precision, Sample, Status, check_graph_gradient};
+use plumb_fd::{Method, Precision, Sample, Status};
 
 /// Dense chains the difference form covers: every smooth activation and relu, both losses, both
 /// reductions, L2 on and off; three layers (the response above the first) and four.
@@ -154,16 +154,7 @@ fn a_mistake_of_ten_times_the_tolerance_is_caught_and_a_tenth_is_not() {
                 let wrong = planted(&c, (t, k), factor);
                 let mut cfg = config(Method::Central, Precision::F32, 1);
                 cfg.sample = Some(Sample::All);
-                let r = check_graph_gradient(
-                    &c.graph,
-                    &c.params,
-                    c.x.view(),
-                    c.y.view(),
-                    &wrong,
-                    &cfg,
-                    &|_, _| {},
-                )
-                .unwrap();
+                let r = run_given(&c, &wrong, &cfg);
                 for co in &r.coords {
                     let here = (co.coord.tensor, co.coord.index) == (t, k);
                     if here && co.status == Status::Unreliable {
@@ -206,16 +197,7 @@ fn directions_catch_a_tensor_ten_times_the_tolerance_off_and_pass_a_tenth() {
                 wrong[t].mapv_inplace(|v| v * (1.0 + factor));
                 let mut cfg = config(Method::Central, Precision::F32, 3);
                 cfg.sample = Some(Sample::PerLayer(1));
-                let r = check_graph_gradient(
-                    &c.graph,
-                    &c.params,
-                    c.x.view(),
-                    c.y.view(),
-                    &wrong,
-                    &cfg,
-                    &|_, _| {},
-                )
-                .unwrap();
+                let r = run_given(&c, &wrong, &cfg);
                 let above = right[t].iter().fold(0.0f64, |m, v| m.max(v.abs())) >= r.floors[t];
                 let over: Vec<_> = r
                     .directions
@@ -300,16 +282,7 @@ fn at_the_edge_of_f32_nothing_is_claimed_that_f64_contradicts() {
             }
             let mut cfg = config(Method::Central, Precision::F32, seed);
             cfg.sample = Some(Sample::All);
-            let r = check_graph_gradient(
-                &c.graph,
-                &c.params,
-                c.x.view(),
-                c.y.view(),
-                &given,
-                &cfg,
-                &|_, _| {},
-            )
-            .unwrap();
+            let r = run_given(&c, &given, &cfg);
             for co in &r.coords {
                 let want = truth[co.coord.tensor].as_slice().unwrap()[co.coord.index];
                 let floor = r.floors[co.coord.tensor];
@@ -360,16 +333,7 @@ fn a_one_percent_mistake_in_every_entry_is_never_a_match() {
         }
         let mut cfg = config(Method::Central, Precision::F32, 1);
         cfg.sample = Some(Sample::All);
-        let r = check_graph_gradient(
-            &c.graph,
-            &c.params,
-            c.x.view(),
-            c.y.view(),
-            &wrong,
-            &cfg,
-            &|_, _| {},
-        )
-        .unwrap();
+        let r = run_given(&c, &wrong, &cfg);
         let mut seen = 0;
         for co in &r.coords {
             let t = co.coord.tensor;

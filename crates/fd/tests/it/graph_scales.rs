@@ -22,7 +22,7 @@ use graph_common::*;
 use ndarray::ArrayD;
 use plumb_engine::graph::{Graph, LossConfig};
 use plumb_engine::{Activation, Loss, Reduction};
-use plumb_fd::{GraphCheck, Method, Precision, Sample, Status, check_graph_gradient};
+use plumb_fd::{GraphCheck, Method, Precision, Sample, Status};
 
 /// The weight scales: the usual initialisation (1/√fan-in) times these.
 const SCALES: [f64; 5] = [1.0, 30.0, 100.0, 300.0, 1000.0];
@@ -63,16 +63,7 @@ fn scaled(graph: Graph, scale: f64, seed: u64) -> (Case, Vec<ArrayD<f64>>) {
 fn check(c: &Case, given: &[ArrayD<f64>], precision: Precision, seed: u64) -> GraphCheck {
     let mut cfg = config(Method::Central, precision, seed);
     cfg.sample = Some(Sample::All);
-    check_graph_gradient(
-        &c.graph,
-        &c.params,
-        c.x.view(),
-        c.y.view(),
-        given,
-        &cfg,
-        &|_, _| {},
-    )
-    .unwrap()
+    run_given(c, given, &cfg)
 }
 
 /// What went wrong in a check of the truth: each mismatch (coordinate or direction), and with

@@ -14,7 +14,9 @@ use plumb_engine::graph::{
 };
 use plumb_engine::{Activation, Batch, Init, Loss, Rng};
 use plumb_fd::report::{GraphInputs, GraphLoaded};
-use plumb_fd::{CheckConfig, GraphCheck, Method, Precision, Status, check_graph};
+use plumb_fd::{
+    CheckConfig, GraphCheck, Method, Precision, Status, check_graph, check_graph_gradient,
+};
 use plumb_formats::GraphDescription;
 
 /// One test case: a graph, parameters and a batch.
@@ -415,6 +417,20 @@ pub fn run(c: &Case, config: &CheckConfig) -> GraphCheck {
         &c.params,
         c.x.view(),
         c.y.view(),
+        config,
+        &|_, _| {},
+    )
+    .unwrap()
+}
+
+/// A given gradient (the engine's with a planted mistake, or the truth in f64) checked.
+pub fn run_given(c: &Case, given: &[ArrayD<f64>], config: &CheckConfig) -> GraphCheck {
+    check_graph_gradient(
+        &c.graph,
+        &c.params,
+        c.x.view(),
+        c.y.view(),
+        given,
         config,
         &|_, _| {},
     )
