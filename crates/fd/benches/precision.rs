@@ -33,6 +33,19 @@ fn main() {
     // counts against both alike.
     let (mut f64_best, mut f32_best) = (f64::INFINITY, f64::INFINITY);
     let mut results = Vec::new();
+    // `PRECISION_ONLY=f32` (or `f64`): that precision alone, four times, for a profiler.
+    if let Ok(only) = std::env::var("PRECISION_ONLY") {
+        let precision = if only == "f32" {
+            Precision::F32
+        } else {
+            Precision::F64
+        };
+        for _ in 0..4 {
+            let (t, _) = run(precision);
+            println!("{}: {t:.3} s", precision.name());
+        }
+        return;
+    }
     for _ in 0..2 {
         let (t, r64) = run(Precision::F64);
         f64_best = f64_best.min(t);

@@ -175,15 +175,22 @@ impl LossConfig {
         // The samples' changes summed in f64 (each widened exactly): they cancel, so that in S
         // the sum's γ(m) of their magnitudes was most of a change's bound at a batch of 32,
         // and kept all but 242 of 1,800 coordinates off one step at 256.
-        let mut total = 0.0f64;
-        let (mut gross, mut bound) = (0.0f64, 0.0f64);
-        // For a softmax, p·(e^dz − 1) of every value first, in one loop the compiler can
-        // vectorise (the series of [`expm1`] where every |dz| allows it).
-        grown.clear();
-        if (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax) {
-            grown.reserve(dz.len());
-            let widest = dz.iter().fold(0.0f64, |m, d| m.max(d.re().abs()));
+        let mut sums = Sums::default();
+        if softmax {
+            // p·(e^dz − 1) of every value first, in one loop the compiler can vectorise (the
+            // series of [`expm1`] where every |dz| allows it), then blocks of samples. The
+            // largest |dz| in lanes (a NaN left out), so that it vectorises too.
+            let mut lanes = [0.0f64; LANES];
+            for block in dz.chunks(LANES) {
+                for (m, d) in lanes.iter_mut().zip(block) {
+                    let r = d.re().abs();
+                    *m = if r > *m { r } else { *m };
+                }
+            }
+            let widest = lanes.iter().fold(0.0f64, |m, &r| m.max(r));
             let small = S::epsilon() > 1e-10 && widest <= 0.5;
+            grown.clear();
+            grown.reserve(dz.len());
             if small && widest <= 1.0 / 64.0 {
                 grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_short(d)));
             } else if small {
@@ -191,14 +198,20 @@ impl LossConfig {
             } else {
                 grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1(d)));
             }
+            let rows = LANES * o;
+            let blocks = grown
+                .chunks(rows)
+                .zip(dz.chunks(rows))
+                .zip(base.y.chunks(rows));
+            let lanes = base.ysums.chunks(LANES).zip(samples.chunks(LANES));
+            for (((t, d), y), (ys, e)) in blocks.zip(lanes) {
+                softmax_block(t, d, y, ys, e, base.base_error, u, &mut sums)?;
+            }
         }
-        for (n, (dzr, yr)) in dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate() {
+        let per_sample = dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate();
+        for (n, (dzr, yr)) in per_sample.take(if softmax { 0 } else { m }) {
             let at = n * o..(n + 1) * o;
             let (change, b) = match (self.loss, output) {
-                (Loss::CrossEntropy, Activation::Softmax) => {
-                    let ys = base.ysums[n];
-                    softmax_change(&grown[at], dzr, yr, ys, samples[n], base.base_error, u)?
-                }
                 (Loss::CrossEntropy, Activation::Sigmoid) => {
                     let (mut c, mut b, mut g) = (S::zero(), 0.0, 0.0);
                     let er = &values[at.clone()];
@@ -237,10 +250,15 @@ impl LossConfig {
                 }
                 _ => return None,
             };
-            gross += change.re().abs();
-            bound += b;
-            total += change.re();
+            sums.gross += change.re().abs();
+            sums.bound += b;
+            sums.total += change.re();
         }
+        let Sums {
+            total,
+            gross,
+            bound,
+        } = sums;
         let r = self.reduction.factor(m);
         let total = S::from_f64(total * r);
         // The f64 sum and product within γ(m + 1) in f64 of their terms; one rounding to S.
@@ -250,61 +268,107 @@ impl LossConfig {
     }
 }
 
-/// One sample's change of a softmax cross-entropy and its bound ([`LossConfig::data_change`]):
-/// `grown` holds p_c·(e^(dz_c) − 1); `(along, most_err)` is Σ_c |Σy·p_c − y_c|·e_c and the
-/// largest e_c ([`Errors::Samples`]).
-fn softmax_change<S: Scalar>(
+/// How many samples [`softmax_block`] takes together.
+const LANES: usize = 8;
+
+/// The running sums of [`LossConfig::data_change`] over samples, in f64 and in sample order.
+#[derive(Default)]
+struct Sums {
+    total: f64,
+    gross: f64,
+    bound: f64,
+}
+
+/// The changes of a softmax cross-entropy and their bounds for a block of up to [`LANES`]
+/// samples (rows of `grown`, `dz` and `y`), added to `sums` in sample order; `None` past the
+/// form's range in any of them. `grown` holds p_c·(e^(dz_c) − 1); `ysums` Σy (rounded once)
+/// and Σ|y| per sample; `errors` Σ_c |Σy·p_c − y_c|·e_c and the largest e_c
+/// ([`Errors::Samples`]). The block's samples go through each stage side by side: one sample
+/// at a time, its sums and its ln(1 + s) were chains of dependent operations, most of an f32
+/// check's time. Each sample's arithmetic is the same as alone, so results do not depend on
+/// the block.
+#[allow(clippy::too_many_arguments)]
+fn softmax_block<S: Scalar>(
     grown: &[S],
     dz: &[S],
     y: &[S],
-    (sy, gy): (S, f64),
-    (along, most_err): (f64, f64),
+    ysums: &[(S, f64)],
+    errors: &[(f64, f64)],
     base: f64,
     u: f64,
-) -> Option<(S, f64)> {
-    let o = dz.len();
-    let (mut s, mut yd) = (S::zero(), S::zero());
-    let (mut gs, mut gyd) = (S::zero(), S::zero());
-    for ((&t, &d), &yc) in grown.iter().zip(dz).zip(y) {
-        s += t;
-        gs += S::from_f64(t.re().abs());
-        let v = yc * d;
-        yd += v;
-        gyd += S::from_f64(v.re().abs());
+    sums: &mut Sums,
+) -> Option<()> {
+    let k = ysums.len();
+    let o = dz.len() / k.max(1);
+    // Lanes past k stay zero: their changes and bounds are zero and are not added.
+    let (mut s, mut yd) = ([S::zero(); LANES], [S::zero(); LANES]);
+    let (mut gs, mut gyd) = ([S::zero(); LANES], [S::zero(); LANES]);
+    let (mut sy, mut gy) = ([S::zero(); LANES], [0.0f64; LANES]);
+    let (mut along, mut most_err) = ([0.0f64; LANES], [0.0f64; LANES]);
+    let rows = grown
+        .chunks_exact(o)
+        .zip(dz.chunks_exact(o))
+        .zip(y.chunks_exact(o));
+    for (j, ((t, d), y)) in rows.enumerate() {
+        for ((&t, &d), &yc) in t.iter().zip(d).zip(y) {
+            s[j] += t;
+            gs[j] += S::from_f64(t.re().abs());
+            let v = yc * d;
+            yd[j] += v;
+            gyd[j] += S::from_f64(v.re().abs());
+        }
+        (sy[j], gy[j]) = ysums[j];
+        (along[j], most_err[j]) = errors[j];
     }
     // Sums of magnitudes, each within γ(o) of its value: taken that much larger.
     let g = gamma(o + 1, u);
     let up = 1.0 + 2.0 * g;
-    let (gs, gyd) = (gs.re() * up, gyd.re() * up);
-    let sr = s.re().abs();
     // (A NaN error fails the comparison and takes the plain path too.)
-    if sr > 0.5 || most_err.is_nan() || along.is_nan() || most_err > 0.125 {
+    let outside = |j: usize| {
+        let e = most_err[j];
+        s[j].re().abs() > 0.5 || e.is_nan() || along[j].is_nan() || e > 0.125
+    };
+    if (0..LANES).any(outside) {
         return None;
     }
-    let l = ln1p(s);
-    let change = sy * l - yd;
-    // The data term's slope in dz_c between the computed and the exact dz is Σy·q_c − y_c, q
-    // the probabilities there: q_c = p_c·e^(dz_c)/(1 + s) at the computed dz, so
-    // Σ_c|q_c − p_c| ≤ (Σ_c p_c|e^(dz_c) − 1| + |s|)/(1 − |s|) (Σp = 1), and across the error
-    // q moves by at most 3e of itself more (e ≤ 1/8). An error e_c in each dz_c moves the
-    // change by at most Σ_c |Σy·p_c − y_c|·e_c + |Σy|·e·(Σ_c|q_c − p_c| + 3e·Σ_c q_c), e the
-    // largest e_c.
-    // 1/(1 − |s|) ≤ 1 + 2|s| for |s| ≤ ½.
-    let shift = (gs * (1.0 + 16.0 * u) + sr) * (1.0 + 2.0 * sr);
-    let syr = sy.re().abs();
-    let moved = along + syr * most_err * (shift + 3.0 * most_err * (1.0 + shift) * 1.01);
-    // Each p·(e^d − 1) within 14u (p rounded once, [`expm1`] within 12u, the product), their
-    // sum within γ(o) of Σ|p(e^d − 1)|; the base's error in z moves each p by 2·base relative;
-    // ln(1 + s) ([`ln1p`]) adds 4u of itself and at most twice the error of s (|s| ≤ ½).
-    let ds = (14.0 * u + g + 2.0 * base) * gs;
-    let lr = l.re().abs();
-    let bound = syr * (4.0 * u * lr + 2.0 * ds)
-        + g * gy * lr
-        + u * syr * lr
-        + g * gyd
-        + 2.0 * u * change.re().abs()
-        + moved * (1.0 + 4.0 * u);
-    Some((change, bound))
+    let mut l = [S::zero(); LANES];
+    ln1p_all(&s, &mut l);
+    let mut change = [S::zero(); LANES];
+    let mut bound = [0.0f64; LANES];
+    for j in 0..LANES {
+        let (sy, gy, along, most_err) = (sy[j], gy[j], along[j], most_err[j]);
+        let (gs, gyd) = (gs[j].re() * up, gyd[j].re() * up);
+        let sr = s[j].re().abs();
+        change[j] = sy * l[j] - yd[j];
+        // The data term's slope in dz_c between the computed and the exact dz is Σy·q_c − y_c, q
+        // the probabilities there: q_c = p_c·e^(dz_c)/(1 + s) at the computed dz, so
+        // Σ_c|q_c − p_c| ≤ (Σ_c p_c|e^(dz_c) − 1| + |s|)/(1 − |s|) (Σp = 1), and across the
+        // error q moves by at most 3e of itself more (e ≤ 1/8). An error e_c in each dz_c moves
+        // the change by at most Σ_c |Σy·p_c − y_c|·e_c + |Σy|·e·(Σ_c|q_c − p_c| + 3e·Σ_c q_c),
+        // e the largest e_c.
+        // 1/(1 − |s|) ≤ 1 + 2|s| for |s| ≤ ½.
+        let shift = (gs * (1.0 + 16.0 * u) + sr) * (1.0 + 2.0 * sr);
+        let syr = sy.re().abs();
+        let moved = along + syr * most_err * (shift + 3.0 * most_err * (1.0 + shift) * 1.01);
+        // Each p·(e^d − 1) within 14u (p rounded once, [`expm1`] within 12u, the product), their
+        // sum within γ(o) of Σ|p(e^d − 1)|; the base's error in z moves each p by 2·base
+        // relative; ln(1 + s) ([`ln1p`]) adds 4u of itself and at most twice the error of s
+        // (|s| ≤ ½).
+        let ds = (14.0 * u + g + 2.0 * base) * gs;
+        let lr = l[j].re().abs();
+        bound[j] = syr * (4.0 * u * lr + 2.0 * ds)
+            + g * gy * lr
+            + u * syr * lr
+            + g * gyd
+            + 2.0 * u * change[j].re().abs()
+            + moved * (1.0 + 4.0 * u);
+    }
+    for j in 0..k {
+        sums.gross += change[j].re().abs();
+        sums.bound += bound[j];
+        sums.total += change[j].re();
+    }
+    Some(())
 }
 
 /// e^d − 1 within 12 units of rounding of itself: in a precision coarser than f64, Taylor's
@@ -338,6 +402,30 @@ pub(crate) fn ln1p<S: Scalar>(s: S) -> S {
         acc = S::from_f64(c) + s * acc;
     }
     s + s * (s * acc)
+}
+
+/// [`ln1p`] of every value of `s` into `l`: where all of them take the series, lane by lane
+/// so that the compiler can vectorise it (the same operations as [`ln1p`] on each).
+#[inline]
+fn ln1p_all<S: Scalar>(s: &[S], l: &mut [S]) {
+    // (A NaN takes [`ln1p`] too, as it would alone.)
+    let series = s.iter().all(|v| v.re().abs() <= 0.0625);
+    if S::epsilon() < 1e-10 || !series {
+        for (l, &s) in l.iter_mut().zip(s) {
+            *l = ln1p(s);
+        }
+        return;
+    }
+    l.fill(S::from_f64(-1.0 / 8.0));
+    for k in (2..=7).rev() {
+        let c = S::from_f64(if k % 2 == 0 { -1.0 } else { 1.0 } / k as f64);
+        for (acc, &s) in l.iter_mut().zip(s) {
+            *acc = c + s * *acc;
+        }
+    }
+    for (acc, &s) in l.iter_mut().zip(s) {
+        *acc = s + s * (s * *acc);
+    }
 }
 
 /// [`expm1`]'s series to d⁵ for |d| ≤ 1/64 in a precision coarser than f64: its remainder is
