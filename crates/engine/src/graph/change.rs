@@ -30,7 +30,9 @@
 //! moves a piecewise activation across its kink has none: the caller takes the plain path and
 //! its kink test. Anything else (other kinds, sequences, gelu) returns `None`.
 
-use ndarray::{ArrayD, ArrayView2};
+use std::sync::OnceLock;
+
+use ndarray::{Array2, ArrayD, ArrayView2};
 
 use super::dense::Dense;
 use super::loss::{Errors, OutputBase, gamma};
@@ -63,7 +65,14 @@ pub struct Difference<S> {
     ysums: Vec<(S, f64)>,
     /// Per layer, its [`Response`] over `trace` where it has one and was asked for.
     responses: Vec<Option<Response<S>>>,
+    /// Per layer, its weight widened to f64 and that weight's magnitudes, for [`weighted`]:
+    /// formed the first time a change passes through the layer, from the parameters every
+    /// call passes (the check's own), where each change had copied them again.
+    weights: Vec<OnceLock<Widened>>,
 }
+
+/// A dense layer's weight in f64 and its magnitudes ([`Difference::widened`]).
+type Widened = (Array2<f64>, Array2<f64>);
 
 /// A loss's change and the bound on its error (absolute, in the loss's units).
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -206,6 +215,7 @@ impl<S: LayerScalar> Difference<S> {
             slopes,
             ysums,
             responses: Vec::new(),
+            weights: (0..nodes.len()).map(|_| OnceLock::new()).collect(),
         })
     }
 
@@ -457,7 +467,7 @@ impl<S: LayerScalar> Difference<S> {
             let (da, da_err) = self.activation_change(graph, j, &dz, &err)?;
             let next = &params[nodes[j + 1].tensors()];
             let ins = da.len() / m.max(1);
-            (dz, err) = weighted(next, &da, &da_err, m);
+            (dz, err) = weighted(self.widened(j + 1, next), &da, &da_err, m);
             let spans: Vec<&[S]> = nodes[j + 1]
                 .tensors()
                 .map(|t| along.v[t].as_slice())
@@ -574,9 +584,21 @@ impl<S: LayerScalar> Difference<S> {
         for j in next..nodes.len() - 1 {
             // Layer j's activation changes, then layer j + 1's z by that times its weights.
             let (change, change_err) = self.activation_change(graph, j, &dz, &err)?;
-            (dz, err) = weighted(&params[nodes[j + 1].tensors()], &change, &change_err, m);
+            let w = self.widened(j + 1, &params[nodes[j + 1].tensors()]);
+            (dz, err) = weighted(w, &change, &change_err, m);
         }
         Some((dz, err))
+    }
+}
+
+impl<S: LayerScalar> Difference<S> {
+    /// Dense layer j's weight (from its tensors `own`) in f64, and its magnitudes.
+    fn widened(&self, j: usize, own: &[ArrayD<S>]) -> &Widened {
+        self.weights[j].get_or_init(|| {
+            let w = Dense::weight(own).mapv(|v| v.re());
+            let magnitudes = w.mapv(f64::abs);
+            (w, magnitudes)
+        })
     }
 }
 
@@ -602,22 +624,23 @@ pub struct Along<S> {
 /// coordinates unsettled). The products by gemm in f64: Δa·Wᵀ, and (γ|Δa| + e)·|W|ᵀ for the
 /// bound, times (1 + γ) for the carried errors' own sums, plus the final rounding.
 fn weighted<S: LayerScalar>(
-    own: &[ArrayD<S>],
+    (w64, magnitudes): &Widened,
     change: &[S],
     change_err: &[f64],
     m: usize,
 ) -> (Vec<S>, Vec<f64>) {
-    let w = Dense::weight(own);
-    let ins = w.ncols();
+    let ins = w64.ncols();
     let ru = S::epsilon() / 2.0;
     let g = gamma(ins, f64::EPSILON / 2.0);
-    let wide = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| change[n * ins + i].re());
-    let carried = ndarray::Array2::from_shape_fn((m, ins), |(n, i)| {
-        g * wide[[n, i]].abs() + change_err[n * ins + i]
-    });
-    let w64 = w.mapv(|v| v.re());
-    let sums = matmul(wide.view(), w64.t());
-    let bounds = matmul(carried.view(), w64.mapv(f64::abs).t());
+    let wide: Vec<f64> = change.iter().map(|v| v.re()).collect();
+    let carried: Vec<f64> = wide
+        .iter()
+        .zip(change_err)
+        .map(|(v, e)| g * v.abs() + e)
+        .collect();
+    let as_rows = |v: Vec<f64>| Array2::from_shape_vec((m, ins), v).expect("m × fan-in values");
+    let sums = matmul(as_rows(wide).view(), w64.t());
+    let bounds = matmul(as_rows(carried).view(), magnitudes.t());
     sums.iter()
         .zip(&bounds)
         .map(|(&s, &b)| {
