@@ -77,7 +77,8 @@ fn main() {
 /// same on any tree, so a run before and after a change shows where the estimates moved.
 fn steps(r: &GraphCheck, p: &[ArrayD<f64>]) -> String {
     let mut kept = std::collections::BTreeMap::<u64, usize>::new();
-    for c in &r.coords {
+    let wide = r.coords.iter().filter(|c| c.wide).count();
+    for c in r.coords.iter().filter(|c| !c.wide) {
         let theta = p[c.coord.tensor].as_slice().unwrap()[c.coord.index];
         let h = Method::Central.default_step(theta, r.precision.epsilon());
         let h = match r.precision {
@@ -86,8 +87,9 @@ fn steps(r: &GraphCheck, p: &[ArrayD<f64>]) -> String {
         };
         *kept.entry((c.step / h).round() as u64).or_default() += 1;
     }
-    kept.iter()
-        .map(|(k, n)| format!("{k}h {n}"))
-        .collect::<Vec<_>>()
-        .join(", ")
+    let mut out: Vec<String> = kept.iter().map(|(k, n)| format!("{k}h {n}")).collect();
+    if wide > 0 {
+        out.push(format!("on f64 losses at f64's step {wide}"));
+    }
+    out.join(", ")
 }

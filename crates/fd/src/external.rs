@@ -39,6 +39,10 @@ pub struct Inside<'a> {
     /// whole loss; a coordinate that does not settle so takes the ladder of whole losses, as
     /// without them. `None` for an outside program (the scalar model).
     pub differences: Option<&'a dyn Fn(usize, usize, f64) -> Option<f64>>,
+    /// Whether the loss can also compute those changes in f64 at the parameters it holds
+    /// (`Request::Differences` with `wide`): a coordinate whose changes do not settle it is
+    /// asked again so before it takes the ladder.
+    pub widens: bool,
     /// As `differences`, for the steps along a direction ([`Request::AlongDifferences`]): the
     /// bound of the last request's loss at step d, `None` where it came whole.
     pub differences_along: Option<&'a dyn Fn(f64) -> Option<f64>>,
@@ -67,6 +71,7 @@ impl Inside<'static> {
             loss_gross: 0.0,
             sees_kinks: false,
             differences: None,
+            widens: false,
             differences_along: None,
             bent: None,
             bent_along: None,
@@ -144,10 +149,12 @@ pub(crate) enum Request<'r> {
         deltas: &'r [f64],
     },
     /// As `Changes`, each loss computed as the base's loss plus its change where the loss can
-    /// ([`Inside::differences`] then bounds each one's error); whole where it cannot.
+    /// ([`Inside::differences`] then bounds each one's error); whole where it cannot. With
+    /// `wide`, the changes in f64 at the parameters the loss holds ([`Inside::widens`]).
     Differences {
         count: usize,
         changes: &'r [Change],
+        wide: bool,
     },
     /// As `Along`, each loss computed as the base's loss plus its change where the loss can
     /// ([`Inside::differences_along`] then bounds each one's error); whole where it cannot.
@@ -182,7 +189,7 @@ pub fn check_external<E>(
     };
     // An outside program takes every perturbation as changes.
     let mut ask = |request: Request<'_>| match request {
-        Request::Changes { count, changes } | Request::Differences { count, changes } => {
+        Request::Changes { count, changes } | Request::Differences { count, changes, .. } => {
             losses(count, changes)
         }
         Request::Along { v, deltas } | Request::AlongDifferences { v, deltas } => {
@@ -262,6 +269,8 @@ pub(crate) fn check_tensors<E>(
     // reaching kinks the complex step does not see).
     let probe_step = |theta: f64| Method::Forward.default_step(theta, config.eps);
     let mut estimates: Vec<Option<(crate::Estimate, bool)>> = vec![None; picked.len()];
+    // Which coordinates settled on losses in f64 ([`Inside::widens`]).
+    let mut widened = vec![false; picked.len()];
     let complex = method == Method::ComplexStep;
     if complex {
         let imaginary = imaginary
@@ -329,42 +338,72 @@ pub(crate) fn check_tensors<E>(
             })
             .collect();
         let per = first.first().map_or(1, |(_, s)| s.len());
-        let (mut tables, bounds) = ask_marked(losses, crossed, &first, per, differences)?;
+        let (mut tables, mut bounds) =
+            ask_marked(losses, crossed, &first, per, differences, false)?;
+        // Settles coordinate i on its one-step stencil (j its place in this round), or `None`.
         // With losses as changes, each coordinate's own round-off: the largest bound of its
         // three losses, plus the f64 rounding of adding each change to the base's loss (none
         // of the three came whole, or the coordinate takes the whole ladder below).
-        let noise_of = |j: usize, i: usize| -> Option<f64> {
+        let settled = |tables: &[Table], bounds: &[Bounds], j: usize, i: usize, h: f64| {
+            if !settle {
+                return None;
+            }
+            let f = |d: f64| look_up(&tables[j], d);
+            let target = target_of(i);
             if differences.is_none() {
-                return Some(noise);
+                return method.settle_one_step(&f, f0, h, noise, round, target);
             }
             let mut most = 0.0f64;
-            for d in method.one_step_stencil(h_of(i), round) {
+            for d in method.one_step_stencil(h, round) {
                 most = most.max(look_up_bound(&bounds[j], d)?);
             }
-            Some(most + 2.0 * f64::EPSILON * f0.abs())
+            let noise = most + 2.0 * f64::EPSILON * f0.abs();
+            method
+                .one_step_estimate(&f, f0, h, noise, round)
+                .filter(|e| e.error <= target.bound)
         };
         let mut open = Vec::new();
         for (j, &i) in todo.iter().enumerate() {
-            let f = |d: f64| look_up(&tables[j], d);
-            match settle
-                .then(|| {
-                    let noise = noise_of(j, i)?;
-                    let target = target_of(i);
-                    if differences.is_some() {
-                        return method
-                            .one_step_estimate(&f, f0, h_of(i), noise, round)
-                            .filter(|e| e.error <= target.bound);
-                    }
-                    method.settle_one_step(&f, f0, h_of(i), noise, round, target)
-                })
-                .flatten()
-            {
+            match settled(&tables, &bounds, j, i, h_of(i)) {
                 Some(est) => {
                     estimates[i] = Some((est, round_no > 0));
                     tick();
                 }
                 None => open.push(j),
             }
+        }
+        // Where the loss computes changes in f64 too, the coordinates its changes did not
+        // settle are asked so before the ladder, at the step an f64 check takes (scaled as
+        // this round's): in f32 a change's bound sums every sample's round-off, which the
+        // samples' cancelling changes leave above a small gradient's tolerance at a large
+        // batch, and f32's own step is long enough to bend a large weight's activations.
+        let wide_h = |i: usize| {
+            let (t, k) = picked[i];
+            method.default_step(tensors[t].values[k], f64::EPSILON) * factor
+        };
+        if differences.is_some() && inside.widens && !open.is_empty() {
+            let again: Vec<((usize, usize), Vec<f64>)> = open
+                .iter()
+                .map(|&j| {
+                    let i = todo[j];
+                    (picked[i], method.one_step_stencil(wide_h(i), round))
+                })
+                .collect();
+            let (wide, wide_bounds) = ask_marked(losses, crossed, &again, per, differences, true)?;
+            for ((&j, t), b) in open.iter().zip(wide).zip(wide_bounds) {
+                tables[j] = t;
+                bounds[j] = b;
+            }
+            open.retain(|&j| {
+                let i = todo[j];
+                let Some(est) = settled(&tables, &bounds, j, i, wide_h(i)) else {
+                    return true;
+                };
+                widened[i] = true;
+                estimates[i] = Some((est, round_no > 0));
+                tick();
+                false
+            });
         }
         if settle && !open.is_empty() {
             let rest: Vec<((usize, usize), Vec<f64>)> = open
@@ -384,7 +423,7 @@ pub(crate) fn check_tensors<E>(
                     (picked[i], steps)
                 })
                 .collect();
-            let (more, _) = ask_marked(losses, crossed, &rest, method.evaluations(), None)?;
+            let (more, _) = ask_marked(losses, crossed, &rest, method.evaluations(), None, false)?;
             for (&j, m) in open.iter().zip(more) {
                 if differences.is_some() {
                     tables[j] = m;
@@ -460,7 +499,8 @@ pub(crate) fn check_tensors<E>(
                 .iter()
                 .map(|&i| (picked[i], method.stencil(h_at(i), reach, round)))
                 .collect();
-            let (tables, _) = ask_marked(losses, crossed, &wanted, method.evaluations(), None)?;
+            let (tables, _) =
+                ask_marked(losses, crossed, &wanted, method.evaluations(), None, false)?;
             let mut next = Vec::new();
             for (&i, table) in open.iter().zip(&tables) {
                 let (t, k) = picked[i];
@@ -667,6 +707,7 @@ pub(crate) fn check_tensors<E>(
                 status,
                 retried: *retried,
                 one_step: est.one_step,
+                wide: widened[i] && est.one_step,
             }
         })
         .collect();
@@ -963,20 +1004,26 @@ fn look_up(table: &Table, d: f64) -> (f64, bool) {
 /// As [`ask`], with each step's kink verdict `crossed(t, k, d)` taken right after its request
 /// (the graph keeps the verdicts of the last request only).
 ///
-/// With `differences`, the losses are asked for as changes ([`Request::Differences`]), and
-/// each coordinate's bounds (`differences(t, k, d)` per step: `None` for a loss that came
-/// whole) are returned beside its table.
+/// With `differences`, the losses are asked for as changes ([`Request::Differences`], in f64
+/// where `wide`), and each coordinate's bounds (`differences(t, k, d)` per step: `None` for a
+/// loss that came whole) are returned beside its table.
 fn ask_marked<E>(
     losses: &mut Ask<'_, E>,
     crossed: &dyn Fn(usize, usize, f64) -> bool,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
     differences: Option<&dyn Fn(usize, usize, f64) -> Option<f64>>,
+    wide: bool,
 ) -> Result<(Vec<Table>, Vec<Bounds>), E> {
     let mut out = Vec::with_capacity(wanted.len());
     let mut bounds = Vec::new();
+    let form = match differences {
+        None => Form::Whole,
+        Some(_) if wide => Form::WideChanges,
+        Some(_) => Form::Changes,
+    };
     for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
-        let tables = ask_as(losses, chunk, per, differences.is_some())?;
+        let tables = ask_as(losses, chunk, per, form)?;
         for (((t, k), deltas), table) in chunk.iter().zip(tables) {
             out.push(
                 deltas
@@ -1016,15 +1063,24 @@ fn ask<E>(
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
 ) -> Result<Vec<HashMap<u64, f64>>, E> {
-    ask_as(losses, wanted, per, false)
+    ask_as(losses, wanted, per, Form::Whole)
 }
 
-/// [`ask`], as changes where `differences` ([`Request::Differences`]).
+/// How [`ask_as`] asks for losses: whole, as changes, or as changes in f64
+/// ([`Request::Differences`]).
+#[derive(Clone, Copy, PartialEq)]
+enum Form {
+    Whole,
+    Changes,
+    WideChanges,
+}
+
+/// [`ask`], in the given form.
 fn ask_as<E>(
     losses: &mut Ask<'_, E>,
     wanted: &[((usize, usize), Vec<f64>)],
     per: usize,
-    differences: bool,
+    form: Form,
 ) -> Result<Vec<HashMap<u64, f64>>, E> {
     let mut out = Vec::with_capacity(wanted.len());
     for chunk in wanted.chunks((BATCH / per.max(1)).max(1)) {
@@ -1040,10 +1096,13 @@ fn ask_as<E>(
             }
         }
         let (count, changes) = (changes.len(), &changes[..]);
-        let values = losses(if differences {
-            Request::Differences { count, changes }
-        } else {
-            Request::Changes { count, changes }
+        let values = losses(match form {
+            Form::Whole => Request::Changes { count, changes },
+            Form::Changes | Form::WideChanges => Request::Differences {
+                count,
+                changes,
+                wide: form == Form::WideChanges,
+            },
         })?;
         let mut at = 0;
         for (_, deltas) in chunk {

@@ -217,6 +217,7 @@ pub fn probe(
         loss_gross,
         sees_kinks: reference.is_some(),
         differences: None,
+        widens: false,
         differences_along: None,
         bent: None,
         bent_along: None,

@@ -32,6 +32,8 @@ pub enum Code {
     KinkRetried,
     /// How many coordinates and directions central differences settled at ±h alone (a note).
     OneStep,
+    /// How many coordinates an f32 check settled on losses computed in f64 (a note).
+    WideLosses,
 }
 
 impl Code {
@@ -44,6 +46,7 @@ impl Code {
             Code::Inconclusive => "inconclusive",
             Code::KinkRetried => "kink-retried",
             Code::OneStep => "one-step",
+            Code::WideLosses => "wide-losses",
         }
     }
 }
@@ -85,6 +88,11 @@ pub struct CoordReport<P = GraphPlace> {
     /// reports written before the field existed: false.
     #[serde(default)]
     pub one_step: bool,
+    /// Whether its losses were computed in f64 at the parameters an f32 check holds, because
+    /// f32's could not settle it. Written only when true (a report without it reads as
+    /// false, as do reports written before the field existed).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub wide: bool,
 }
 
 impl<P> CoordReport<P> {
@@ -104,6 +112,7 @@ impl<P> CoordReport<P> {
             status: c.status,
             retried: c.retried,
             one_step: c.one_step,
+            wide: c.wide,
         }
     }
 
@@ -120,6 +129,7 @@ impl<P> CoordReport<P> {
             status: self.status,
             retried: self.retried,
             one_step: self.one_step,
+            wide: self.wide,
         }
     }
 }
@@ -557,6 +567,21 @@ pub(super) fn build_report<P: Location + Clone>(
             )
             .figure("one_step", one_step)
             .figure("one_step_directions", one_step_dirs)
+            .figure("checked", checked.coords.len()),
+        );
+    }
+    let wide = checked.coords.iter().filter(|(_, c)| c.wide).count();
+    if wide > 0 {
+        findings.push(
+            Finding::new(
+                Code::WideLosses,
+                Severity::Note,
+                format!(
+                    "{wide} of {} checked coordinates were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step: f32's own losses could not settle them (their round-off, summed over the batch's samples, stayed above the tolerance's share); their analytic values are still judged against f32's tolerance",
+                    checked.coords.len(),
+                ),
+            )
+            .figure("wide", wide)
             .figure("checked", checked.coords.len()),
         );
     }

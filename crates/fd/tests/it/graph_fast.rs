@@ -87,6 +87,7 @@ fn plain(c: &Case, analytic: &[ArrayD<f64>], k: usize) -> ExternalResult {
         loss_gross: graph_loss_magnitude(g, &c.params, &base, &c.y),
         sees_kinks: true,
         differences: None,
+        widens: false,
         differences_along: None,
         bent: None,
         bent_along: None,
