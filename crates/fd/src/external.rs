@@ -123,6 +123,9 @@ pub struct OutsideDirection {
     pub status: Status,
     /// Whether central differences settled it at ±h alone ([`Target`](crate::Target)).
     pub one_step: bool,
+    /// Whether its losses were computed in f64 at the parameters a coarser precision holds
+    /// ([`Inside::widens`]), as a coordinate's.
+    pub wide: bool,
 }
 
 #[derive(Clone, Debug)]
@@ -144,9 +147,13 @@ pub(crate) enum Request<'r> {
         count: usize,
         changes: &'r [Change],
     },
+    /// With `wide`, each loss as the base's loss plus its change in f64 at the parameters the
+    /// loss holds, whole losses in f64 subtracted ([`Inside::widens`]; its bound then comes
+    /// from [`Inside::differences_along`], `None` where a step crossed a kink).
     Along {
         v: &'r [Vec<f64>],
         deltas: &'r [f64],
+        wide: bool,
     },
     /// As `Changes`, each loss computed as the base's loss plus its change where the loss can
     /// ([`Inside::differences`] then bounds each one's error); whole where it cannot. With
@@ -192,7 +199,7 @@ pub fn check_external<E>(
         Request::Changes { count, changes } | Request::Differences { count, changes, .. } => {
             losses(count, changes)
         }
-        Request::Along { v, deltas } | Request::AlongDifferences { v, deltas } => {
+        Request::Along { v, deltas, .. } | Request::AlongDifferences { v, deltas } => {
             losses(deltas.len(), &changes_along(v, deltas))
         }
     };
@@ -734,9 +741,8 @@ pub(crate) fn check_tensors<E>(
             // coordinate's own entry moves by the step itself). At weights hundreds of times their
             // usual scale an f32 direction's smaller steps erred by ten times the loss's own
             // round-off so. Counted with it, at the ladder's largest step.
-            let noise = {
-                let u = config.eps / 2.0;
-                let top = h0 * f64::from(1u32 << reach.min(16));
+            // The same in `u` at steps up to `top`.
+            let placed = |u: f64, top: f64| -> f64 {
                 let placed: f64 = tensors
                     .iter()
                     .zip(&v)
@@ -744,16 +750,23 @@ pub(crate) fn check_tensors<E>(
                     .filter(|(_, w)| **w != 0.0)
                     .map(|((theta, g), w)| g.abs() * (theta.abs() + 2.0 * top * w.abs()))
                     .sum();
-                noise + u * placed
+                u * placed
             };
+            let noise = noise + placed(config.eps / 2.0, h0 * f64::from(1u32 << reach.min(16)));
+            // For losses in f64 at steps up to 2h (a one-step stencil's).
+            let placed_wide = |h: f64| placed(f64::EPSILON / 2.0, 2.0 * h);
             // The loss along v at the given steps, and whether each step crossed a kink (asked
             // right after the request: the graph keeps the last request's verdicts).
-            // With `changes`, asked for as changes ([`Request::AlongDifferences`]).
-            let mut along = |deltas: &[f64], changes: bool| -> Result<Table, E> {
-                let values = losses(if changes {
-                    Request::AlongDifferences { v: &v, deltas }
-                } else {
-                    Request::Along { v: &v, deltas }
+            // As changes ([`Request::AlongDifferences`]), or in f64 ([`Request::Along`]'s `wide`)
+            // by `form`.
+            let mut along = |deltas: &[f64], form: Form| -> Result<Table, E> {
+                let values = losses(match form {
+                    Form::Changes => Request::AlongDifferences { v: &v, deltas },
+                    Form::Whole | Form::WideChanges => Request::Along {
+                        v: &v,
+                        deltas,
+                        wide: form == Form::WideChanges,
+                    },
                 })?;
                 Ok(deltas
                     .iter()
@@ -783,6 +796,8 @@ pub(crate) fn check_tensors<E>(
             // attention key bias) is judged against the network's scale, as its coordinates are.
             let floor = relative_floor(span, scale, config.eps, config.tolerance);
             let mut est = None;
+            // Whether it settled on losses in f64 ([`Inside::widens`]).
+            let mut wide = false;
             if complex {
                 let imaginary = imaginary
                     .as_deref_mut()
@@ -790,6 +805,7 @@ pub(crate) fn check_tensors<E>(
                 let im = imaginary(Request::Along {
                     v: &v,
                     deltas: &[h0],
+                    wide: false,
                 })?[0];
                 let hp = probe_step(theta);
                 let crossed = (inside.crossed_along)(&v, hp) || (inside.crossed_along)(&v, -hp);
@@ -808,7 +824,7 @@ pub(crate) fn check_tensors<E>(
                     // a step that came whole, or an estimate that does not settle, leaves the
                     // direction to the whole losses below (not mixed with these).
                     let steps = method.one_step_stencil(h, round);
-                    let changed = along(&steps, true)?;
+                    let changed = along(&steps, Form::Changes)?;
                     let most = steps
                         .iter()
                         .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
@@ -825,8 +841,34 @@ pub(crate) fn check_tensors<E>(
                         break;
                     }
                 }
+                // As for coordinates: in f64 at the parameters the loss holds, at an f64
+                // check's step, before the whole losses (a direction over a relu layer crosses
+                // some kink at f32's step, so its changes come whole).
+                if let (true, true, Some(bound_at)) =
+                    (settle, inside.widens, inside.differences_along)
+                {
+                    let hw = method.default_step(theta, f64::EPSILON) * factor;
+                    let steps = method.one_step_stencil(hw, round);
+                    let changed = along(&steps, Form::WideChanges)?;
+                    let most = steps
+                        .iter()
+                        .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
+                    let f = |d: f64| look_up(&changed, d);
+                    let target = rule.target(a, floor);
+                    let settled = most.and_then(|most| {
+                        let noise = most + 2.0 * f64::EPSILON * f0.abs() + placed_wide(hw);
+                        method
+                            .one_step_estimate(&f, f0, hw, noise, round)
+                            .filter(|e| e.error <= target.bound)
+                    });
+                    if let Some(e) = settled {
+                        est = Some(e);
+                        wide = true;
+                        break;
+                    }
+                }
                 if settle {
-                    table = along(&method.one_step_stencil(h, round), false)?;
+                    table = along(&method.one_step_stencil(h, round), Form::Whole)?;
                     let f = |d: f64| look_up(&table, d);
                     let target = rule.target(a, floor);
                     if let Some(e) = method.settle_one_step(&f, f0, h, noise, round, target) {
@@ -839,7 +881,7 @@ pub(crate) fn check_tensors<E>(
                     .into_iter()
                     .filter(|d| !table.iter().any(|(b, _)| *b == d.to_bits()))
                     .collect();
-                table.extend(along(&rest, false)?);
+                table.extend(along(&rest, Form::Whole)?);
                 let e = estimate_at(&table, h, reach);
                 let done = !e.crossed || config.step.is_some();
                 est = Some(e);
@@ -872,7 +914,7 @@ pub(crate) fn check_tensors<E>(
                 {
                     for factor in std::iter::once(1.0).chain(RETRIES) {
                         let h = h0 * factor;
-                        let table = along(&method.stencil(h, reach, round), false)?;
+                        let table = along(&method.stencil(h, reach, round), Form::Whole)?;
                         let f = |d: f64| {
                             let (value, kinked) = look_up(&table, d);
                             (value, kinked || bent(&v, d))
@@ -892,14 +934,14 @@ pub(crate) fn check_tensors<E>(
                 && judge(&est).3 == Status::Mismatch
             {
                 let h = est.step * 0.5;
-                let table = along(&method.stencil(h, 1, round), false)?;
+                let table = along(&method.stencil(h, 1, round), Form::Whole)?;
                 let again = estimate_at(&table, h, 1);
                 let (_, _, bound, status) = judge(&again);
                 if status == Status::Match && 2.0 * bound < judge(&est).0 {
                     est = again;
                 } else {
                     let s0 = 2.0 * est.step;
-                    let rtable = along(&second_difference_steps(s0), false)?;
+                    let rtable = along(&second_difference_steps(s0), Form::Whole)?;
                     let r = |d: f64| look_up(&rtable, d).0;
                     let seen = rtable.iter().any(|(_, (_, kinked))| *kinked);
                     est.crossed |= !seen && !smooth_across(&r, f0, s0, noise);
@@ -912,13 +954,13 @@ pub(crate) fn check_tensors<E>(
             {
                 let s0 = est.step;
                 let first = judge(&est).0;
-                let rtable = along(&second_difference_steps(2.0 * s0), false)?;
+                let rtable = along(&second_difference_steps(2.0 * s0), Form::Whole)?;
                 let r = |d: f64| look_up(&rtable, d).0;
                 let smooth = smooth_across(&r, f0, 2.0 * s0, 2.0 * config.eps * f0.abs());
                 let mut resolved = false;
                 let mut kinked = false;
                 for factor in std::iter::once(0.5).chain(RETRIES) {
-                    let table = along(&method.stencil(s0 * factor, 1, round), false)?;
+                    let table = along(&method.stencil(s0 * factor, 1, round), Form::Whole)?;
                     let again = estimate_at(&table, s0 * factor, 1);
                     let (_, _, bound, status) = judge(&again);
                     if status == Status::Match && bound < first {
@@ -956,6 +998,7 @@ pub(crate) fn check_tensors<E>(
                 bound,
                 status,
                 one_step: est.one_step,
+                wide: wide && est.one_step,
             });
             tick();
         }

@@ -390,7 +390,30 @@ impl Run<'_> {
                     }
                     Ok(out.into_iter().map(|(v, _, _, _)| v).collect())
                 }
-                Request::Along { v, deltas } => {
+                Request::Along {
+                    v,
+                    deltas,
+                    wide: true,
+                } => {
+                    // The base's loss in S plus the change of the loss in f64 at the
+                    // parameters S holds, as for one entry ([`Eval::wide_change_in`]).
+                    let (wide, noise) = widened();
+                    let change = (deltas.len() > 1).then(|| wide.along_change(v)).flatten();
+                    let out: Vec<(f64, bool)> = deltas
+                        .par_iter()
+                        .map(|&d| wide.at_along(v, d, change.as_ref()))
+                        .collect();
+                    let mut seen = seen_along.borrow_mut();
+                    for (d, &(_, crossed)) in deltas.iter().zip(&out) {
+                        seen.insert(d.to_bits(), (crossed, (!crossed).then_some(2.0 * noise)));
+                    }
+                    let base = real.loss.re();
+                    Ok(out
+                        .into_iter()
+                        .map(|(l, _)| base + (l - wide.loss))
+                        .collect())
+                }
+                Request::Along { v, deltas, .. } => {
                     // Several steps share the lowest moved layer's change of z.
                     let change = (deltas.len() > 1).then(|| real.along_change(v)).flatten();
                     if change.is_some() {
@@ -436,7 +459,7 @@ impl Run<'_> {
                 Request::Changes { count, changes }
                 | Request::Differences { count, changes, .. } => (count, changes),
                 // The kink verdicts at the real probe steps are computed when the checker asks.
-                Request::Along { v, deltas } | Request::AlongDifferences { v, deltas } => {
+                Request::Along { v, deltas, .. } | Request::AlongDifferences { v, deltas } => {
                     return Ok(deltas
                         .par_iter()
                         .map(|&d| eval.imaginary_along(v, d))

@@ -201,6 +201,10 @@ pub struct DirectionReport {
     /// Whether central differences settled it at ±h alone, as a coordinate's `one_step`.
     #[serde(default)]
     pub one_step: bool,
+    /// Whether an f32 check settled it on losses in f64, as a coordinate's `wide` (written
+    /// only when true).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub wide: bool,
 }
 
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -571,17 +575,20 @@ pub(super) fn build_report<P: Location + Clone>(
         );
     }
     let wide = checked.coords.iter().filter(|(_, c)| c.wide).count();
-    if wide > 0 {
+    let wide_dirs = checked.directions.iter().filter(|(_, d)| d.wide).count();
+    if wide + wide_dirs > 0 {
         findings.push(
             Finding::new(
                 Code::WideLosses,
                 Severity::Note,
                 format!(
-                    "{wide} of {} checked coordinates were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step: f32's own losses could not settle them (their round-off, summed over the batch's samples, stayed above the tolerance's share); their analytic values are still judged against f32's tolerance",
+                    "{wide} of {} checked coordinates and {wide_dirs} of {} directions were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step: f32's own losses could not settle them (their round-off, summed over the batch's samples, stayed above the tolerance's share, or f32's step crossed a kink); their analytic values are still judged against f32's tolerance",
                     checked.coords.len(),
+                    checked.directions.len(),
                 ),
             )
             .figure("wide", wide)
+            .figure("wide_directions", wide_dirs)
             .figure("checked", checked.coords.len()),
         );
     }

@@ -140,6 +140,7 @@ pub fn build_graph(
                     bound: d.bound,
                     status: d.status,
                     one_step: d.one_step,
+                    wide: d.wide,
                 };
                 (d.tensor.map(|t| places.file_of(t)), report)
             })

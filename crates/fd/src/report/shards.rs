@@ -408,6 +408,7 @@ impl Shards<GraphPlace> {
                     bound: d.bound,
                     status: d.status,
                     one_step: d.one_step,
+                    wide: d.wide,
                 })
             },
         )?;

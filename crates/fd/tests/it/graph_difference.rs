@@ -532,3 +532,72 @@ fn wide_losses_settle_a_large_batch_and_still_catch_a_mistake() {
         }
     }
 }
+
+// Directions over relu layers of 64 units cross some kink at f32's step; they are asked again
+// on losses in f64 at an f64 check's step (a direction's `wide`). On those the engine's gradient
+// passes every direction, a tensor moved by ten times the f32 tolerance fails a direction over
+// it, and one moved by a tenth of it fails none.
+#[test]
+fn directions_over_relu_layers_settle_on_wide_losses_and_catch_a_mistake() {
+    let tol = Precision::F32.tolerance();
+    let g = dense_with(
+        24,
+        &[
+            (64, Activation::Relu),
+            (64, Activation::Relu),
+            (10, Activation::Softmax),
+        ],
+        LossConfig::cross_entropy(),
+    );
+    let c = case(g, 32, 9);
+    let right = c
+        .graph
+        .gradient(&c.params, c.x.view(), c.y.view(), None)
+        .params;
+    let mut cfg = config(Method::Central, Precision::F32, 4);
+    cfg.sample = Some(Sample::PerLayer(1));
+    let r = run_given(&c, &right, &cfg);
+    let wide = r.directions.iter().filter(|d| d.wide).count();
+    assert!(
+        r.directions.iter().all(|d| d.status == Status::Match),
+        "{:?}",
+        r.directions
+    );
+    assert!(
+        wide * 2 > r.directions.len(),
+        "{wide} of {} wide",
+        r.directions.len()
+    );
+    let mut caught_wide = 0;
+    for t in 0..right.len() {
+        for (factor, caught) in [(10.0 * tol, true), (0.1 * tol, false)] {
+            let mut wrong = right.clone();
+            wrong[t].mapv_inplace(|v| v * (1.0 + factor));
+            let r = run_given(&c, &wrong, &cfg);
+            let over: Vec<_> = r
+                .directions
+                .iter()
+                .filter(|d| d.tensor == Some(t))
+                .collect();
+            let failed = over.iter().filter(|d| d.status == Status::Mismatch).count();
+            if caught {
+                assert!(failed > 0, "tensor {t} ×(1 + {factor}): {over:?}");
+                caught_wide += over
+                    .iter()
+                    .filter(|d| d.wide && d.status == Status::Mismatch)
+                    .count();
+            } else {
+                assert!(
+                    r.directions.iter().all(|d| d.status != Status::Mismatch),
+                    "tensor {t} ×(1 + {factor}): {:?}",
+                    r.directions
+                );
+            }
+        }
+    }
+    eprintln!(
+        "relu 24-64-64-10: {wide} of {} directions on wide losses; {caught_wide} mistakes caught on them",
+        r.directions.len()
+    );
+    assert!(caught_wide > 0);
+}
