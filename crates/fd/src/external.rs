@@ -820,50 +820,40 @@ pub(crate) fn check_tensors<E>(
                 // settle it.
                 let mut table = Table::new();
                 if let (true, Some(bound_at)) = (settle, inside.differences_along) {
-                    // As for coordinates: losses as changes first, judged by their own bounds;
-                    // a step that came whole, or an estimate that does not settle, leaves the
-                    // direction to the whole losses below (not mixed with these).
-                    let steps = method.one_step_stencil(h, round);
-                    let changed = along(&steps, Form::Changes)?;
-                    let most = steps
-                        .iter()
-                        .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
-                    let f = |d: f64| look_up(&changed, d);
-                    let target = rule.target(a, floor);
-                    let settled = most.and_then(|most| {
-                        let noise = most + 2.0 * f64::EPSILON * f0.abs();
-                        method
-                            .one_step_estimate(&f, f0, h, noise, round)
-                            .filter(|e| e.error <= target.bound)
-                    });
-                    if let Some(e) = settled {
-                        est = Some(e);
-                        break;
+                    // As for coordinates: losses as changes first, judged by their own bounds,
+                    // then (where the loss can) in f64 at the parameters it holds, at an f64
+                    // check's step (a direction over a relu layer crosses some kink at f32's
+                    // step, so its changes come whole); a step that came whole, or an estimate
+                    // that does not settle, leaves the direction to the whole losses below (not
+                    // mixed with these).
+                    let mut forms = vec![(Form::Changes, h, 0.0)];
+                    if inside.widens {
+                        let hw = method.default_step(theta, f64::EPSILON) * factor;
+                        forms.push((Form::WideChanges, hw, placed_wide(hw)));
                     }
-                }
-                // As for coordinates: in f64 at the parameters the loss holds, at an f64
-                // check's step, before the whole losses (a direction over a relu layer crosses
-                // some kink at f32's step, so its changes come whole).
-                if let (true, true, Some(bound_at)) =
-                    (settle, inside.widens, inside.differences_along)
-                {
-                    let hw = method.default_step(theta, f64::EPSILON) * factor;
-                    let steps = method.one_step_stencil(hw, round);
-                    let changed = along(&steps, Form::WideChanges)?;
-                    let most = steps
-                        .iter()
-                        .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
-                    let f = |d: f64| look_up(&changed, d);
-                    let target = rule.target(a, floor);
-                    let settled = most.and_then(|most| {
-                        let noise = most + 2.0 * f64::EPSILON * f0.abs() + placed_wide(hw);
-                        method
-                            .one_step_estimate(&f, f0, hw, noise, round)
-                            .filter(|e| e.error <= target.bound)
-                    });
-                    if let Some(e) = settled {
+                    let mut settled = None;
+                    for (form, h, placed) in forms {
+                        let steps = method.one_step_stencil(h, round);
+                        let changed = along(&steps, form)?;
+                        let most = steps
+                            .iter()
+                            .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
+                        let f = |d: f64| look_up(&changed, d);
+                        let target = rule.target(a, floor);
+                        settled = most.and_then(|most| {
+                            let noise = most + 2.0 * f64::EPSILON * f0.abs() + placed;
+                            method
+                                .one_step_estimate(&f, f0, h, noise, round)
+                                .filter(|e| e.error <= target.bound)
+                                .map(|e| (e, form == Form::WideChanges))
+                        });
+                        if settled.is_some() {
+                            break;
+                        }
+                    }
+                    if let Some((e, in_f64)) = settled {
                         est = Some(e);
-                        wide = true;
+                        wide = in_f64;
                         break;
                     }
                 }

@@ -398,11 +398,7 @@ impl Run<'_> {
                     // The base's loss in S plus the change of the loss in f64 at the
                     // parameters S holds, as for one entry ([`Eval::wide_change_in`]).
                     let (wide, noise) = widened();
-                    let change = (deltas.len() > 1).then(|| wide.along_change(v)).flatten();
-                    let out: Vec<(f64, bool)> = deltas
-                        .par_iter()
-                        .map(|&d| wide.at_along(v, d, change.as_ref()))
-                        .collect();
+                    let (out, _) = wide.losses_along(v, deltas);
                     let mut seen = seen_along.borrow_mut();
                     for (d, &(_, crossed)) in deltas.iter().zip(&out) {
                         seen.insert(d.to_bits(), (crossed, (!crossed).then_some(2.0 * noise)));
@@ -414,15 +410,10 @@ impl Run<'_> {
                         .collect())
                 }
                 Request::Along { v, deltas, .. } => {
-                    // Several steps share the lowest moved layer's change of z.
-                    let change = (deltas.len() > 1).then(|| real.along_change(v)).flatten();
-                    if change.is_some() {
+                    let (out, from_shared) = real.losses_along(v, deltas);
+                    if from_shared {
                         shared.set(shared.get() + deltas.len());
                     }
-                    let out: Vec<(f64, bool)> = deltas
-                        .par_iter()
-                        .map(|&d| real.at_along(v, d, change.as_ref()))
-                        .collect();
                     let mut seen = seen_along.borrow_mut();
                     for (d, &(_, crossed)) in deltas.iter().zip(&out) {
                         seen.insert(d.to_bits(), (crossed, None));
@@ -1017,6 +1008,17 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
     fn at_along(&self, v: &[Vec<f64>], d: f64, change: Option<&Array2<S>>) -> (f64, bool) {
         let (loss, tail) = self.perturbed_along(v, d, S::one(), change);
         (loss.re(), self.crossed(&tail))
+    }
+
+    /// [`Eval::at_along`] at each of `deltas`, several steps sharing the lowest moved layer's
+    /// change of z where it has one ([`Eval::along_change`]; the second value says whether).
+    fn losses_along(&self, v: &[Vec<f64>], deltas: &[f64]) -> (Vec<(f64, bool)>, bool) {
+        let change = (deltas.len() > 1).then(|| self.along_change(v)).flatten();
+        let out = deltas
+            .par_iter()
+            .map(|&d| self.at_along(v, d, change.as_ref()))
+            .collect();
+        (out, change.is_some())
     }
 
     /// The change of the lowest layer v moves in its z per unit step along v, where that layer's
