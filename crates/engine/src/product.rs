@@ -43,6 +43,26 @@ pub(crate) fn add_matmul<S: Scalar + 'static, D: DataMut<Elem = S>>(
     if m == 0 || n == 0 || k == 0 {
         return;
     }
+    // Off the pool's workers (the audit's probe pass, `plumb grad`'s batch), a product large
+    // enough for gemm to split takes the pool's threads; on a worker (a check's losses, each
+    // already a task) it stays on that thread. gemm splits the output's tiles, never a sum over
+    // k (its blocks depend on the shapes alone), so the bits do not depend on the threads
+    // (test `a_product_has_the_same_bits_on_any_number_of_threads`).
+    let parallelism = match rayon::current_thread_index() {
+        None => gemm::Parallelism::Rayon(0),
+        Some(_) => gemm::Parallelism::None,
+    };
+    gemm_into(c, a, b, parallelism);
+}
+
+/// c += a · b by gemm, for f64 and f32 with c in standard layout and no dimension 0.
+fn gemm_into<S: Scalar + 'static, D: DataMut<Elem = S>>(
+    c: &mut ArrayBase<D, Ix2>,
+    a: ArrayView2<S>,
+    b: ArrayView2<S>,
+    parallelism: gemm::Parallelism,
+) {
+    let ((m, k), n) = (a.dim(), b.ncols());
     let (sa, sb, sc) = (a.strides(), b.strides(), c.strides());
     let (c_cs, c_rs) = (sc[1], sc[0]);
     // SAFETY: S is f64 or f32 (checked above), which gemm supports; every pointer and stride
@@ -68,7 +88,46 @@ pub(crate) fn add_matmul<S: Scalar + 'static, D: DataMut<Elem = S>>(
             false,
             false,
             false,
-            gemm::Parallelism::None,
+            parallelism,
         );
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use ndarray::Array2;
+
+    use super::gemm_into;
+
+    // What `add_matmul` relies on: gemm gives a product the same bits on four threads as on
+    // one, in f64 and f32, at shapes far past its threading threshold and not multiples of its
+    // tiles (an audit's probe pass is 10,000 × 784 · 784 × 1,024).
+    #[test]
+    fn a_product_has_the_same_bits_on_any_number_of_threads() {
+        fn both<S: crate::Scalar + 'static>(of: impl Fn(f64) -> S) {
+            let (m, k, n) = (1003, 517, 389);
+            let a = Array2::from_shape_fn((m, k), |(i, j)| {
+                of(((i * 7 + j * 13) % 101) as f64 / 37.0 - 1.3)
+            });
+            let b = Array2::from_shape_fn((k, n), |(i, j)| {
+                of(((i * 11 + j * 3) % 97) as f64 / 29.0 - 1.7)
+            });
+            let mut one = Array2::from_elem((m, n), S::zero());
+            let mut four = one.clone();
+            gemm_into(&mut one, a.view(), b.view(), gemm::Parallelism::None);
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(4)
+                .build()
+                .unwrap();
+            pool.install(|| gemm_into(&mut four, a.view(), b.view(), gemm::Parallelism::Rayon(4)));
+            assert!(
+                one.iter()
+                    .zip(&four)
+                    .all(|(x, y)| x.re().to_bits() == y.re().to_bits())
+            );
+            assert!(one.iter().any(|v| v.re() != 0.0));
+        }
+        both(|v| v);
+        both(|v| v as f32);
     }
 }
