@@ -484,6 +484,26 @@ fn wide_losses_settle_a_large_batch_and_still_catch_a_mistake() {
     let mut cfg = config(Method::Central, Precision::F32, 2);
     cfg.sample = Some(Sample::All);
     let r = run_given(&c, &right, &cfg);
+    // The same report on one thread as on three (the losses in f64 and their responses are
+    // formed once, whichever thread asks first).
+    let on = |threads: usize| {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build();
+        pool.unwrap().install(|| run_given(&c, &right, &cfg))
+    };
+    let (one, three) = (on(1), on(3));
+    for ((a, b), o) in one.coords.iter().zip(&three.coords).zip(&r.coords) {
+        assert_eq!((a.coord, a.wide, a.status), (b.coord, b.wide, b.status));
+        assert_eq!(
+            a.numeric.to_bits(),
+            b.numeric.to_bits(),
+            "{a:?} against {b:?}"
+        );
+        assert_eq!(
+            a.numeric.to_bits(),
+            o.numeric.to_bits(),
+            "{a:?} against {o:?}"
+        );
+    }
     assert!(
         r.coords.iter().all(|co| co.status == Status::Match),
         "{:?}",
