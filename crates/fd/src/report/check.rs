@@ -582,7 +582,7 @@ pub(super) fn build_report<P: Location + Clone>(
                 Code::WideLosses,
                 Severity::Note,
                 format!(
-                    "{wide} of {} checked coordinates and {wide_dirs} of {} directions were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step: f32's own losses could not settle them (their round-off, summed over the batch's samples, stayed above the tolerance's share, or f32's step crossed a kink); their analytic values are still judged against f32's tolerance",
+                    "{wide} of {} checked coordinates and {wide_dirs} of {} directions were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step, where f32's own losses did not settle them at one step (their round-off above the tolerance's share, or f32's step across a kink); their analytic values are still judged against f32's tolerance",
                     checked.coords.len(),
                     checked.directions.len(),
                 ),
