@@ -265,8 +265,8 @@ pub struct CoordCheck<K = Entry> {
     pub retried: bool,
     /// Whether central differences settled it at ±h alone ([`Target`]).
     pub one_step: bool,
-    /// Whether its losses were computed in f64 at the parameters a coarser precision holds
-    /// (`Inside::widens`): its own precision's could not settle it.
+    /// Whether its estimate came from losses computed in f64 at the parameters a coarser
+    /// precision holds (`Inside::widens`): its own precision's did not settle it at one step.
     pub wide: bool,
 }
 

@@ -39,9 +39,11 @@ pub struct Inside<'a> {
     /// whole loss; a coordinate that does not settle so takes the ladder of whole losses, as
     /// without them. `None` for an outside program (the scalar model).
     pub differences: Option<&'a dyn Fn(usize, usize, f64) -> Option<f64>>,
-    /// Whether the loss can also compute those changes in f64 at the parameters it holds
-    /// (`Request::Differences` with `wide`): a coordinate whose changes do not settle it is
-    /// asked again so before it takes the ladder.
+    /// Whether the loss can also be taken in f64 at the parameters it holds, as the base's
+    /// loss plus the difference of two f64 losses (`Request::Differences` and `Request::Along`
+    /// with `wide`, their bounds then from `differences` and `differences_along`): a
+    /// coordinate or direction its own losses do not settle at one step is asked again so, at
+    /// an f64 check's step, before it takes the ladder.
     pub widens: bool,
     /// As `differences`, for the steps along a direction ([`Request::AlongDifferences`]): the
     /// bound of the last request's loss at step d, `None` where it came whole.
@@ -350,7 +352,8 @@ pub(crate) fn check_tensors<E>(
         // Settles coordinate i on its one-step stencil (j its place in this round), or `None`.
         // With losses as changes, each coordinate's own round-off: the largest bound of its
         // three losses, plus the f64 rounding of adding each change to the base's loss (none
-        // of the three came whole, or the coordinate takes the whole ladder below).
+        // of the three came whole, or the coordinate is asked again in f64 where the loss can,
+        // then takes the whole ladder below).
         let settled = |tables: &[Table], bounds: &[Bounds], j: usize, i: usize, h: f64| {
             if !settle {
                 return None;
@@ -796,8 +799,9 @@ pub(crate) fn check_tensors<E>(
             // attention key bias) is judged against the network's scale, as its coordinates are.
             let floor = relative_floor(span, scale, config.eps, config.tolerance);
             let mut est = None;
-            // Whether it settled on losses in f64 ([`Inside::widens`]).
-            let mut wide = false;
+            // Whether it settled on losses with their own bounds (as changes, or in f64), and
+            // whether in f64 ([`Inside::widens`]).
+            let (mut own, mut wide) = (false, false);
             if complex {
                 let imaginary = imaginary
                     .as_deref_mut()
@@ -853,7 +857,7 @@ pub(crate) fn check_tensors<E>(
                     }
                     if let Some((e, in_f64)) = settled {
                         est = Some(e);
-                        wide = in_f64;
+                        (own, wide) = (true, in_f64);
                         break;
                     }
                 }
@@ -968,7 +972,11 @@ pub(crate) fn check_tensors<E>(
                 }
                 est.crossed |= !resolved && (kinked || !smooth);
             }
+            // As for coordinates: losses with their own bounds carry no whole loss's round-off
+            // (and one in f64 at f64's step would be judged by f32's at a step 400 times
+            // shorter, hiding a real mismatch as unsettled or even a match).
             if let (Some(measure), None, false) = (inside.round_off_along, config.step, complex)
+                && !(own && est.one_step)
                 && judge(&est).3 == Status::Mismatch
             {
                 let s = est.step;

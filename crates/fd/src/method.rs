@@ -55,9 +55,11 @@ pub struct Estimate {
 /// f(2h): the third difference f(2h) − 3f(h) + 3f(0) − f(−h) = h³·f‴ + O(h⁴) measures T, and the
 /// estimate settles only when twice that, plus the round-off at h (2·noise/h), is within
 /// [`ONE_STEP_BOUND`] of the tolerance too. Then |a − g| ≤ |a − d(h)| + |d(h) − g| stays below
-/// the tolerance of the value, so no mistake the tolerance would call one can settle on one step;
-/// where T is of a mistake's size the third difference shows it and the ladder decides as it
-/// always has. Three losses instead of the ladder's four (f64) or fourteen (f32); none is wasted
+/// the tolerance of the value, so no mistake the tolerance would call one can settle on one step
+/// as a match on the estimate's own error; where T is of a mistake's size the third difference
+/// shows it and the ladder decides as it always has. (The verdict then adds the analytic value's
+/// own round-off allowance, `Rule::judge`: at weights far above their usual scale that allowance
+/// in f32 can pass the tolerance, and a mistake within it is a match there as on any step.) Three losses instead of the ladder's four (f64) or fourteen (f32); none is wasted
 /// when the settle fails, as ±h and 2h are the ladder's first points.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Target {

@@ -593,12 +593,22 @@ impl<S: LayerScalar> Difference<S> {
 
 impl<S: LayerScalar> Difference<S> {
     /// Dense layer j's weight (from its tensors `own`) in f64, and its magnitudes.
+    /// Formed from the first call's tensors: every call passes the check's own parameters
+    /// (checked in debug builds on the weight's shape and its first and last entries).
     fn widened(&self, j: usize, own: &[ArrayD<S>]) -> &Widened {
-        self.weights[j].get_or_init(|| {
+        let widened = self.weights[j].get_or_init(|| {
             let w = Dense::weight(own).mapv(|v| v.re());
             let magnitudes = w.mapv(f64::abs);
             (w, magnitudes)
-        })
+        });
+        debug_assert!({
+            let (w, given) = (&widened.0, Dense::weight(own));
+            let ends = |a: &ndarray::ArrayView2<'_, S>| {
+                (a.first().map(|v| v.re()), a.last().map(|v| v.re()))
+            };
+            w.dim() == given.dim() && (w.first().copied(), w.last().copied()) == ends(&given.view())
+        });
+        widened
     }
 }
 

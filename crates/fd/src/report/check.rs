@@ -84,13 +84,15 @@ pub struct CoordReport<P = GraphPlace> {
     /// Whether a smaller step was needed to step off a kink.
     pub retried: bool,
     /// Whether central differences settled it at ±h alone (`plumb_fd::Target`): `step` is h,
-    /// `bound` the round-off at h plus the truncation a third loss at 2h showed. Absent in
+    /// the estimate's error the round-off at h plus the truncation a third loss at 2h showed
+    /// (`bound`, the verdict's, adds the analytic value's round-off allowance). Absent in
     /// reports written before the field existed: false.
     #[serde(default)]
     pub one_step: bool,
-    /// Whether its losses were computed in f64 at the parameters an f32 check holds, because
-    /// f32's could not settle it. Written only when true (a report without it reads as
-    /// false, as do reports written before the field existed).
+    /// Whether its estimate came from losses computed in f64 at the parameters an f32 check
+    /// holds, because f32's own did not settle it at one step (its status says whether these
+    /// did). Written only when true (a report without it reads as false, as do reports written
+    /// before the field existed).
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub wide: bool,
 }
@@ -582,7 +584,7 @@ pub(super) fn build_report<P: Location + Clone>(
                 Code::WideLosses,
                 Severity::Note,
                 format!(
-                    "{wide} of {} checked coordinates and {wide_dirs} of {} directions were settled on losses computed in f64 at the parameters f32 holds, at an f64 check's step, where f32's own losses did not settle them at one step (their round-off above the tolerance's share, or f32's step across a kink); their analytic values are still judged against f32's tolerance",
+                    "{wide} of {} checked coordinates and {wide_dirs} of {} directions were estimated on losses computed in f64 at the parameters f32 holds, at an f64 check's step, because f32's own losses did not settle them at one step (their round-off above the tolerance's share, or f32's step across a kink); they are judged against f32's tolerance like the rest",
                     checked.coords.len(),
                     checked.directions.len(),
                 ),

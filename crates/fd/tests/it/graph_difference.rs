@@ -504,6 +504,14 @@ fn wide_losses_settle_a_large_batch_and_still_catch_a_mistake() {
             "{a:?} against {o:?}"
         );
     }
+    for (a, b) in one.directions.iter().zip(&three.directions) {
+        assert_eq!((a.wide, a.status), (b.wide, b.status));
+        assert_eq!(
+            a.numeric.to_bits(),
+            b.numeric.to_bits(),
+            "{a:?} against {b:?}"
+        );
+    }
     assert!(
         r.coords.iter().all(|co| co.status == Status::Match),
         "{:?}",
@@ -620,4 +628,55 @@ fn directions_over_relu_layers_settle_on_wide_losses_and_catch_a_mistake() {
         r.directions.len()
     );
     assert!(caught_wide > 0);
+}
+
+// A direction settled on losses with their own bounds (as changes, or in f64 at f64's step)
+// must keep them: judged again with the round-off whole f32 losses carry at its step (400
+// times shorter than f32's for a loss in f64), a tensor moved by ten times the tolerance came
+// out unsettled on every direction over it, or even a match (a second reading found 8 of 8
+// unsettled here, softplus under squared error at 30× weights, batch 256).
+#[test]
+fn a_direction_on_its_own_bounds_is_not_judged_by_whole_losses_round_off() {
+    let tol = Precision::F32.tolerance();
+    for (scale, seed) in [(30.0, 0u64), (100.0, 1)] {
+        let g = dense_with(
+            12,
+            &[
+                (10, Activation::Softplus),
+                (8, Activation::Softplus),
+                (3, Activation::Identity),
+            ],
+            LossConfig {
+                loss: Loss::SquaredError,
+                ..LossConfig::cross_entropy()
+            },
+        );
+        let mut c = case(g, 256, 500 + seed);
+        for p in &mut c.params {
+            p.mapv_inplace(|v| (scale * v) as f32 as f64);
+        }
+        c.x.mapv_inplace(|v| v as f32 as f64);
+        c.y.mapv_inplace(|v| v as f32 as f64);
+        let truth = c
+            .graph
+            .gradient(&c.params, c.x.view(), c.y.view(), None)
+            .params;
+        let mut cfg = config(Method::Central, Precision::F32, seed);
+        cfg.sample = Some(Sample::PerLayer(1));
+        // The hidden layers' tensors and the output's weights (the output's bias has a
+        // gradient small against the network's, judged against the floor, where 1% of its own
+        // value is a match).
+        for t in 0..truth.len() - 1 {
+            let mut wrong = truth.clone();
+            wrong[t].mapv_inplace(|v| v * (1.0 + 10.0 * tol));
+            let r = run_given(&c, &wrong, &cfg);
+            let over: Vec<_> = r
+                .directions
+                .iter()
+                .filter(|d| d.tensor == Some(t))
+                .collect();
+            let what = format!("×{scale}, seed {seed}, tensor {t}: {over:?}");
+            assert!(over.iter().any(|d| d.status == Status::Mismatch), "{what}");
+        }
+    }
 }
