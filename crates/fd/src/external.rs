@@ -531,62 +531,88 @@ pub(crate) fn check_tensors<E>(
         let suspects: Vec<usize> = (0..picked.len())
             .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
             .collect();
-        let again = ask(
-            losses,
-            &suspects
+        // A coordinate estimated on losses in f64 is looked at again on them too, with their
+        // bounds: at f64's step f32's whole losses are all round-off.
+        let looks = [(false, None), (true, differences)];
+        for (in_f64, bounds_of) in looks {
+            let suspects: Vec<usize> = suspects
+                .iter()
+                .copied()
+                .filter(|&i| widened[i] == in_f64)
+                .collect();
+            if suspects.is_empty() {
+                continue;
+            }
+            // The round-off of a look's losses: the scalar model's, or (in f64) the largest
+            // bound of its stencil plus the f64 rounding of adding each change to J.
+            let noise_of = |bounds: &Bounds, steps: &[f64]| -> f64 {
+                if !in_f64 {
+                    return noise;
+                }
+                let most = steps
+                    .iter()
+                    .map(|&d| look_up_bound(bounds, d).unwrap_or(f64::INFINITY))
+                    .fold(0.0f64, f64::max);
+                most + 2.0 * f64::EPSILON * f0.abs()
+            };
+            let wanted: Vec<((usize, usize), Vec<f64>)> = suspects
                 .iter()
                 .map(|&i| {
-                    (
-                        picked[i],
-                        method.stencil(estimates[i].0.step * 0.5, 1, round),
-                    )
+                    let s = estimates[i].0.step * 0.5;
+                    (picked[i], method.stencil(s, 1, round))
                 })
-                .collect::<Vec<_>>(),
-            method.evaluations(),
-        )?;
-        for (&i, table) in suspects.iter().zip(&again) {
-            let (t, k) = picked[i];
-            let s = estimates[i].0.step * 0.5;
-            let f = |d: f64| {
-                (
-                    table.get(&d.to_bits()).copied().unwrap_or(f64::NAN),
-                    crossed(t, k, d),
-                )
-            };
-            let est = method.estimate_with(&f, f0, s, noise, round, 1);
-            let (_, _, bound, status) = judge(i, &est);
-            if status == Status::Match && 2.0 * bound < judge(i, &estimates[i].0).0 {
-                estimates[i] = (est, true);
+                .collect();
+            let (again, again_bounds) = ask_marked(
+                losses,
+                crossed,
+                &wanted,
+                method.evaluations(),
+                bounds_of,
+                in_f64,
+            )?;
+            for (n, (&i, table)) in suspects.iter().zip(&again).enumerate() {
+                let s = estimates[i].0.step * 0.5;
+                let f = |d: f64| look_up(table, d);
+                let noise = match again_bounds.get(n) {
+                    Some(b) => noise_of(b, &wanted[n].1),
+                    None => noise,
+                };
+                let est = method.estimate_with(&f, f0, s, noise, round, 1);
+                let (_, _, bound, status) = judge(i, &est);
+                if status == Status::Match && 2.0 * bound < judge(i, &estimates[i].0).0 {
+                    estimates[i] = (est, true);
+                }
             }
-        }
-        // A kink the engine does not model (softmax's ties at weights of 1e30, whose loss is a
-        // maximum at any step the weights can take) leaves the two steps agreeing and the bound
-        // tiny: a disagreement that held on a loss whose second differences do not look smooth
-        // across the stencil is `unreliable`, as for a black box.
-        let held: Vec<usize> = suspects
-            .into_iter()
-            .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
-            .collect();
-        let ratio = ask(
-            losses,
-            &held
+            // A kink the engine does not model (softmax's ties at weights of 1e30, whose loss
+            // is a maximum at any step the weights can take) leaves the two steps agreeing and
+            // the bound tiny: a disagreement that held on a loss whose second differences do
+            // not look smooth across the stencil is `unreliable`, as for a black box.
+            let held: Vec<usize> = suspects
+                .into_iter()
+                .filter(|&i| judge(i, &estimates[i].0).3 == Status::Mismatch)
+                .collect();
+            let wanted: Vec<((usize, usize), Vec<f64>)> = held
                 .iter()
                 .map(|&i| {
                     let s = 2.0 * estimates[i].0.step;
                     (picked[i], second_difference_steps(s).to_vec())
                 })
-                .collect::<Vec<_>>(),
-            6,
-        )?;
-        for (&i, table) in held.iter().zip(&ratio) {
-            let (t, k) = picked[i];
-            let s = 2.0 * estimates[i].0.step;
-            // A kink the engine sees inside the wider stencil explains the shape: not this case.
-            let seen = second_difference_steps(s).iter().any(|&d| crossed(t, k, d));
-            let r = |d: f64| table.get(&d.to_bits()).copied().unwrap_or(f64::NAN);
-            if !seen && !smooth_across(&r, f0, s, noise) {
-                estimates[i].0.crossed = true;
-                estimates[i].1 = true;
+                .collect();
+            let (ratio, ratio_bounds) = ask_marked(losses, crossed, &wanted, 6, bounds_of, in_f64)?;
+            for (n, (&i, table)) in held.iter().zip(&ratio).enumerate() {
+                let s = 2.0 * estimates[i].0.step;
+                // A kink the engine sees inside the wider stencil explains the shape: not
+                // this case.
+                let seen = table.iter().any(|(_, (_, kinked))| *kinked);
+                let r = |d: f64| look_up(table, d).0;
+                let noise = match ratio_bounds.get(n) {
+                    Some(b) => noise_of(b, &wanted[n].1),
+                    None => noise,
+                };
+                if !seen && !smooth_across(&r, f0, s, noise) {
+                    estimates[i].0.crossed = true;
+                    estimates[i].1 = true;
+                }
             }
         }
     }
@@ -927,17 +953,41 @@ pub(crate) fn check_tensors<E>(
                 && !complex
                 && judge(&est).3 == Status::Mismatch
             {
+                // One estimated on losses in f64 is looked at again on them, with their bounds
+                // (at f64's step f32's whole losses are all round-off).
+                let in_f64 = wide && est.one_step;
+                let form = if in_f64 {
+                    Form::WideChanges
+                } else {
+                    Form::Whole
+                };
+                let noise_at = |steps: &[f64], top: f64| -> f64 {
+                    match (in_f64, inside.differences_along) {
+                        (true, Some(bound_at)) => {
+                            let most = steps
+                                .iter()
+                                .map(|&d| bound_at(d).unwrap_or(f64::INFINITY))
+                                .fold(0.0f64, f64::max);
+                            most + 2.0 * f64::EPSILON * f0.abs() + placed_wide(top)
+                        }
+                        _ => noise,
+                    }
+                };
                 let h = est.step * 0.5;
-                let table = along(&method.stencil(h, 1, round), Form::Whole)?;
-                let again = estimate_at(&table, h, 1);
+                let steps = method.stencil(h, 1, round);
+                let table = along(&steps, form)?;
+                let f = |d: f64| look_up(&table, d);
+                let again = method.estimate_with(&f, f0, h, noise_at(&steps, 2.0 * h), round, 1);
                 let (_, _, bound, status) = judge(&again);
                 if status == Status::Match && 2.0 * bound < judge(&est).0 {
                     est = again;
                 } else {
                     let s0 = 2.0 * est.step;
-                    let rtable = along(&second_difference_steps(s0), Form::Whole)?;
+                    let steps = second_difference_steps(s0);
+                    let rtable = along(&steps, form)?;
                     let r = |d: f64| look_up(&rtable, d).0;
                     let seen = rtable.iter().any(|(_, (_, kinked))| *kinked);
+                    let noise = noise_at(&steps, 2.0 * s0);
                     est.crossed |= !seen && !smooth_across(&r, f0, s0, noise);
                 }
             }
