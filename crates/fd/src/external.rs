@@ -363,11 +363,8 @@ pub(crate) fn check_tensors<E>(
             if differences.is_none() {
                 return method.settle_one_step(&f, f0, h, noise, round, target);
             }
-            let mut most = 0.0f64;
-            for d in method.one_step_stencil(h, round) {
-                most = most.max(look_up_bound(&bounds[j], d)?);
-            }
-            let noise = most + 2.0 * f64::EPSILON * f0.abs();
+            let steps = method.one_step_stencil(h, round);
+            let noise = own_noise(&steps, |d| look_up_bound(&bounds[j], d), f0)?;
             method
                 .one_step_estimate(&f, f0, h, noise, round)
                 .filter(|e| e.error <= target.bound)
@@ -543,17 +540,11 @@ pub(crate) fn check_tensors<E>(
             if suspects.is_empty() {
                 continue;
             }
-            // The round-off of a look's losses: the scalar model's, or (in f64) the largest
-            // bound of its stencil plus the f64 rounding of adding each change to J.
-            let noise_of = |bounds: &Bounds, steps: &[f64]| -> f64 {
-                if !in_f64 {
-                    return noise;
-                }
-                let most = steps
-                    .iter()
-                    .map(|&d| look_up_bound(bounds, d).unwrap_or(f64::INFINITY))
-                    .fold(0.0f64, f64::max);
-                most + 2.0 * f64::EPSILON * f0.abs()
+            // The round-off of the n-th look's losses at `steps`: their own where they came
+            // with bounds (in f64; unbounded where one came whole), else the scalar model's.
+            let noise_of = |bounds: &[Bounds], n: usize, steps: &[f64]| match bounds.get(n) {
+                Some(b) => own_noise(steps, |d| look_up_bound(b, d), f0).unwrap_or(f64::INFINITY),
+                None => noise,
             };
             let wanted: Vec<((usize, usize), Vec<f64>)> = suspects
                 .iter()
@@ -573,10 +564,7 @@ pub(crate) fn check_tensors<E>(
             for (n, (&i, table)) in suspects.iter().zip(&again).enumerate() {
                 let s = estimates[i].0.step * 0.5;
                 let f = |d: f64| look_up(table, d);
-                let noise = match again_bounds.get(n) {
-                    Some(b) => noise_of(b, &wanted[n].1),
-                    None => noise,
-                };
+                let noise = noise_of(&again_bounds, n, &wanted[n].1);
                 let est = method.estimate_with(&f, f0, s, noise, round, 1);
                 let (_, _, bound, status) = judge(i, &est);
                 if status == Status::Match && 2.0 * bound < judge(i, &estimates[i].0).0 {
@@ -605,10 +593,7 @@ pub(crate) fn check_tensors<E>(
                 // this case.
                 let seen = table.iter().any(|(_, (_, kinked))| *kinked);
                 let r = |d: f64| look_up(table, d).0;
-                let noise = match ratio_bounds.get(n) {
-                    Some(b) => noise_of(b, &wanted[n].1),
-                    None => noise,
-                };
+                let noise = noise_of(&ratio_bounds, n, &wanted[n].1);
                 if !seen && !smooth_across(&r, f0, s, noise) {
                     estimates[i].0.crossed = true;
                     estimates[i].1 = true;
@@ -865,13 +850,10 @@ pub(crate) fn check_tensors<E>(
                     for (form, h, placed) in forms {
                         let steps = method.one_step_stencil(h, round);
                         let changed = along(&steps, form)?;
-                        let most = steps
-                            .iter()
-                            .try_fold(0.0f64, |m, &d| bound_at(d).map(|b| m.max(b)));
                         let f = |d: f64| look_up(&changed, d);
                         let target = rule.target(a, floor);
-                        settled = most.and_then(|most| {
-                            let noise = most + 2.0 * f64::EPSILON * f0.abs() + placed;
+                        settled = own_noise(&steps, bound_at, f0).and_then(|own| {
+                            let noise = own + placed;
                             method
                                 .one_step_estimate(&f, f0, h, noise, round)
                                 .filter(|e| e.error <= target.bound)
@@ -964,11 +946,8 @@ pub(crate) fn check_tensors<E>(
                 let noise_at = |steps: &[f64], top: f64| -> f64 {
                     match (in_f64, inside.differences_along) {
                         (true, Some(bound_at)) => {
-                            let most = steps
-                                .iter()
-                                .map(|&d| bound_at(d).unwrap_or(f64::INFINITY))
-                                .fold(0.0f64, f64::max);
-                            most + 2.0 * f64::EPSILON * f0.abs() + placed_wide(top)
+                            let own = own_noise(steps, bound_at, f0).unwrap_or(f64::INFINITY);
+                            own + placed_wide(top)
                         }
                         _ => noise,
                     }
@@ -1140,6 +1119,16 @@ fn ask_marked<E>(
 
 /// The bounds of a coordinate's losses as changes, by step bits ([`ask_marked`]).
 type Bounds = Vec<(u64, Option<f64>)>;
+
+/// The round-off of losses that came with their own bounds (`bound(d)` at each of `steps`):
+/// the largest of them, plus the f64 rounding of adding each change to the base's loss `f0`;
+/// `None` where one came whole.
+fn own_noise(steps: &[f64], bound: impl Fn(f64) -> Option<f64>, f0: f64) -> Option<f64> {
+    let most = steps
+        .iter()
+        .try_fold(0.0f64, |m, &d| bound(d).map(|b| m.max(b)))?;
+    Some(most + 2.0 * f64::EPSILON * f0.abs())
+}
 
 /// The bound of the loss at step `d`; `None` where it came whole or was not asked for.
 fn look_up_bound(bounds: &Bounds, d: f64) -> Option<f64> {

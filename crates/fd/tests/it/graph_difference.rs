@@ -651,16 +651,7 @@ fn a_direction_on_its_own_bounds_is_not_judged_by_whole_losses_round_off() {
                 ..LossConfig::cross_entropy()
             },
         );
-        let mut c = case(g, 256, 500 + seed);
-        for p in &mut c.params {
-            p.mapv_inplace(|v| (scale * v) as f32 as f64);
-        }
-        c.x.mapv_inplace(|v| v as f32 as f64);
-        c.y.mapv_inplace(|v| v as f32 as f64);
-        let truth = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let (c, truth) = scaled(g, 256, scale, seed);
         let mut cfg = config(Method::Central, Precision::F32, seed);
         cfg.sample = Some(Sample::PerLayer(1));
         // The hidden layers' tensors and the output's weights (the output's bias has a

@@ -43,22 +43,6 @@ fn chain(act: Activation, loss: Loss, reduction: Reduction, l2: f64) -> Graph {
     dense_with(12, &[(10, act), (8, act), out], config)
 }
 
-/// A batch of 32 from `seed` with every parameter times `scale`, all values as f32 holds them,
-/// and the engine's f64 gradient there (the truth).
-fn scaled(graph: Graph, scale: f64, seed: u64) -> (Case, Vec<ArrayD<f64>>) {
-    let mut c = case(graph, 32, 500 + seed);
-    for p in &mut c.params {
-        p.mapv_inplace(|v| (scale * v) as f32 as f64);
-    }
-    c.x.mapv_inplace(|v| v as f32 as f64);
-    c.y.mapv_inplace(|v| v as f32 as f64);
-    let truth = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
-    (c, truth)
-}
-
 /// The central check of `given` at every coordinate, with the default directions.
 fn check(c: &Case, given: &[ArrayD<f64>], precision: Precision, seed: u64) -> GraphCheck {
     let mut cfg = config(Method::Central, precision, seed);
@@ -110,7 +94,8 @@ fn no_faults(acts: &[Activation], l2s: &[f64], seeds: u64, strict: bool) -> (Vec
                 for &l2 in l2s {
                     for (s, &scale) in SCALES.iter().enumerate() {
                         for seed in 0..seeds {
-                            let (c, truth) = scaled(chain(act, loss, reduction, l2), scale, seed);
+                            let (c, truth) =
+                                scaled(chain(act, loss, reduction, l2), 32, scale, seed);
                             let what = format!(
                                 "{act}, {loss:?}, {reduction:?}, l2 {l2}, weights x{scale}, seed {seed}"
                             );
@@ -180,7 +165,7 @@ fn a_planted_mistake_at_large_weight_scales_is_still_caught() {
         for loss in [Loss::CrossEntropy, Loss::SquaredError] {
             for seed in 0..3 {
                 let graph = chain(Activation::Softplus, loss, Reduction::Mean, 0.0);
-                let (c, truth) = scaled(graph, scale, seed);
+                let (c, truth) = scaled(graph, 32, scale, seed);
                 let mut wrong = truth.clone();
                 let mut at = Vec::new();
                 for (t, g) in wrong.iter_mut().enumerate() {

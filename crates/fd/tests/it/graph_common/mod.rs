@@ -388,6 +388,22 @@ pub fn case(graph: Graph, m: usize, seed: u64) -> Case {
     }
 }
 
+/// A batch of `m` from `seed` with every parameter times `scale`, all values as f32 holds
+/// them, and the engine's f64 gradient there (the truth).
+pub fn scaled(graph: Graph, m: usize, scale: f64, seed: u64) -> (Case, Vec<ArrayD<f64>>) {
+    let mut c = case(graph, m, 500 + seed);
+    for p in &mut c.params {
+        p.mapv_inplace(|v| (scale * v) as f32 as f64);
+    }
+    c.x.mapv_inplace(|v| v as f32 as f64);
+    c.y.mapv_inplace(|v| v as f32 as f64);
+    let truth = c
+        .graph
+        .gradient(&c.params, c.x.view(), c.y.view(), None)
+        .params;
+    (c, truth)
+}
+
 pub fn config(method: Method, precision: Precision, seed: u64) -> CheckConfig {
     CheckConfig {
         seed,
