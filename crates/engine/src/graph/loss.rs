@@ -156,9 +156,13 @@ impl LossConfig {
         let o = outputs;
         let m = dz.len() / o.max(1);
         let softmax = (self.loss, output) == (Loss::CrossEntropy, Activation::Softmax);
-        let (values, samples): (&[f64], Vec<(f64, f64)>) = match err {
+        // The samples' changes summed in f64 (each widened exactly): they cancel, so that in S
+        // the sum's γ(m) of their magnitudes was most of a change's bound at a batch of 32,
+        // and kept all but 242 of 1,800 coordinates off one step at 256.
+        let sums = match err {
+            Errors::Samples(per) if softmax => softmax_sums(base, dz, per, grown, o, u)?,
             Errors::Values(v) if softmax => {
-                let per = v
+                let per: Vec<(f64, f64)> = v
                     .chunks_exact(o)
                     .zip(base.slopes.chunks_exact(o))
                     .map(|(e, s0)| {
@@ -166,50 +170,38 @@ impl LossConfig {
                         (along, e.iter().fold(0.0f64, |m, &e| m.max(e)))
                     })
                     .collect();
-                (&[], per)
+                softmax_sums(base, dz, &per, grown, o, u)?
             }
-            Errors::Values(v) => (v, Vec::new()),
-            Errors::Samples(_) if !softmax => return None,
-            Errors::Samples(p) => (&[], p.to_vec()),
+            Errors::Values(v) => self.value_sums(output, o, base, dz, v, u)?,
+            Errors::Samples(_) => return None,
         };
-        // The samples' changes summed in f64 (each widened exactly): they cancel, so that in S
-        // the sum's γ(m) of their magnitudes was most of a change's bound at a batch of 32,
-        // and kept all but 242 of 1,800 coordinates off one step at 256.
+        let Sums {
+            total,
+            gross,
+            bound,
+        } = sums;
+        let r = self.reduction.factor(m);
+        let total = S::from_f64(total * r);
+        // The f64 sum and product within γ(m + 1) in f64 of their terms; one rounding to S.
+        let wide = gamma(m + 1, f64::EPSILON / 2.0);
+        let bound = r * (bound + wide * gross) + u * total.re().abs() * (1.0 + wide);
+        Some((total, bound))
+    }
+
+    /// [`LossConfig::data_change`]'s sums over samples for a logistic cross-entropy or a
+    /// squared error, value by value: each value's change and its bound, `values` the errors
+    /// of dz's values.
+    fn value_sums<S: Scalar>(
+        &self,
+        output: Activation,
+        o: usize,
+        base: &OutputBase<'_, S>,
+        dz: &[S],
+        values: &[f64],
+        u: f64,
+    ) -> Option<Sums> {
         let mut sums = Sums::default();
-        if softmax {
-            // p·(e^dz − 1) of every value first, in one loop the compiler can vectorise (the
-            // series of [`expm1`] where every |dz| allows it), then blocks of samples. The
-            // largest |dz| in lanes (a NaN left out), so that it vectorises too.
-            let mut lanes = [0.0f64; LANES];
-            for block in dz.chunks(LANES) {
-                for (m, d) in lanes.iter_mut().zip(block) {
-                    let r = d.re().abs();
-                    *m = if r > *m { r } else { *m };
-                }
-            }
-            let widest = lanes.iter().fold(0.0f64, |m, &r| m.max(r));
-            let small = S::epsilon() > 1e-10 && widest <= 0.5;
-            grown.clear();
-            grown.reserve(dz.len());
-            if small && widest <= 1.0 / 64.0 {
-                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_short(d)));
-            } else if small {
-                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_series(d)));
-            } else {
-                grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1(d)));
-            }
-            let rows = LANES * o;
-            let blocks = grown
-                .chunks(rows)
-                .zip(dz.chunks(rows))
-                .zip(base.y.chunks(rows));
-            let lanes = base.ysums.chunks(LANES).zip(samples.chunks(LANES));
-            for (((t, d), y), (ys, e)) in blocks.zip(lanes) {
-                softmax_block(t, d, y, ys, e, base.base_error, u, &mut sums)?;
-            }
-        }
-        let per_sample = dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate();
-        for (n, (dzr, yr)) in per_sample.take(if softmax { 0 } else { m }) {
+        for (n, (dzr, yr)) in dz.chunks_exact(o).zip(base.y.chunks_exact(o)).enumerate() {
             let at = n * o..(n + 1) * o;
             let (change, b) = match (self.loss, output) {
                 (Loss::CrossEntropy, Activation::Sigmoid) => {
@@ -254,17 +246,7 @@ impl LossConfig {
             sums.bound += b;
             sums.total += change.re();
         }
-        let Sums {
-            total,
-            gross,
-            bound,
-        } = sums;
-        let r = self.reduction.factor(m);
-        let total = S::from_f64(total * r);
-        // The f64 sum and product within γ(m + 1) in f64 of their terms; one rounding to S.
-        let wide = gamma(m + 1, f64::EPSILON / 2.0);
-        let bound = r * (bound + wide * gross) + u * total.re().abs() * (1.0 + wide);
-        Some((total, bound))
+        Some(sums)
     }
 }
 
@@ -277,6 +259,51 @@ struct Sums {
     total: f64,
     gross: f64,
     bound: f64,
+}
+
+/// [`LossConfig::data_change`]'s sums over samples for a softmax cross-entropy, in blocks of
+/// [`LANES`] samples ([`softmax_block`]); `samples` is each sample's error figures
+/// ([`Errors::Samples`]), `grown` a buffer.
+fn softmax_sums<S: Scalar>(
+    base: &OutputBase<'_, S>,
+    dz: &[S],
+    samples: &[(f64, f64)],
+    grown: &mut Vec<S>,
+    o: usize,
+    u: f64,
+) -> Option<Sums> {
+    let mut sums = Sums::default();
+    // p·(e^dz − 1) of every value first, in one loop the compiler can vectorise (the
+    // series of [`expm1`] where every |dz| allows it), then blocks of samples. The
+    // largest |dz| in lanes (a NaN left out), so that it vectorises too.
+    let mut lanes = [0.0f64; LANES];
+    for block in dz.chunks(LANES) {
+        for (m, d) in lanes.iter_mut().zip(block) {
+            let r = d.re().abs();
+            *m = if r > *m { r } else { *m };
+        }
+    }
+    let widest = lanes.iter().fold(0.0f64, |m, &r| m.max(r));
+    let small = S::epsilon() > 1e-10 && widest <= 0.5;
+    grown.clear();
+    grown.reserve(dz.len());
+    if small && widest <= 1.0 / 64.0 {
+        grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_short(d)));
+    } else if small {
+        grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1_series(d)));
+    } else {
+        grown.extend(base.p.iter().zip(dz).map(|(&p, &d)| p * expm1(d)));
+    }
+    let rows = LANES * o;
+    let blocks = grown
+        .chunks(rows)
+        .zip(dz.chunks(rows))
+        .zip(base.y.chunks(rows));
+    let lanes = base.ysums.chunks(LANES).zip(samples.chunks(LANES));
+    for (((t, d), y), (ys, e)) in blocks.zip(lanes) {
+        softmax_block(t, d, y, ys, e, base.base_error, u, &mut sums)?;
+    }
+    Some(sums)
 }
 
 /// The changes of a softmax cross-entropy and their bounds for a block of up to [`LANES`]
