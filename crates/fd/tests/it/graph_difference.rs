@@ -2,7 +2,10 @@
 //! false alarm on dense chains of every covered activation over 20 seeds, a planted mistake of
 //! ten times the f32 tolerance caught and one of a tenth of it not, and at the edge of f32's
 //! precision no match claimed that the f64 gradient (the truth the check approximates)
-//! contradicts.
+//! contradicts. The same holds for the coordinates and directions an f32 check settles on
+//! losses in f64 (`wide`). The truth throughout is the engine's f64 gradient, itself checked
+//! against num-dual's exact derivatives in crates/engine/tests/it/graph_dual; a planted mistake
+//! is that gradient moved by a stated multiple of the f32 tolerance.
 
 use crate::graph_common;
 
