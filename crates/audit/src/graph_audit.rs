@@ -3,9 +3,9 @@
 //! codes, same rules, same thresholds; the kinds add their own measures). Findings name the
 //! weight file's own tensors (an augmented dense matrix `W1`, not the graph's `layer1.weight`).
 
-use ndarray::{ArrayD, ArrayView2};
+use ndarray::{ArrayD, ArrayView2, CowArray, Ix2};
 use plumb_engine::graph::{Graph, GraphError, LayerScalar, Node, Role};
-use plumb_engine::{Activation, Batch, Init, Rng};
+use plumb_engine::{Activation, Batch, Init, Inputs, Rng};
 use std::path::Path;
 
 use plumb_formats::{DType, FileStorage, GraphDescription, Layout, TensorFile};
@@ -17,7 +17,7 @@ use crate::graph_health::{
 };
 use crate::graph_shapes::find;
 use crate::release::{flow_findings, health_findings, init_findings, symmetry_findings};
-use crate::robust::{largest, moments_of, norm};
+use crate::robust::{largest, norm, std_of};
 use crate::shapes::by_name;
 use crate::values::{Values, values_findings};
 use crate::{
@@ -128,6 +128,10 @@ pub fn audit_graph(
     let mut findings = shapes.findings.clone();
     findings.extend(values_findings(&graph_values(w), t));
     let names: Vec<String> = w.graph.tensors().iter().map(|s| s.name.clone()).collect();
+    let probe = Probe {
+        x: Inputs::Own(probe.x.view()),
+        y: probe.y.view(),
+    };
     Ok(measure(
         w, &names, shapes, findings, probe, claimed, t, k, seed,
     ))
@@ -138,19 +142,31 @@ pub fn audit_graph(
 /// it, indices in its own axis order); then, when every tensor fits, the measures of
 /// [`audit_graph`] on the file's tensors in canonical shapes, each with the dtype the file
 /// stored it in, the findings naming the file's tensors. When the tensors do not fit, the report
-/// holds the shape and value findings and says what could not be checked.
+/// holds the shape and value findings and says what could not be checked. The probe's x may be
+/// f32 as a data file stored it ([`plumb_engine::Features`]): the probe pass of an f32 file then
+/// reads it without a copy.
 #[allow(clippy::too_many_arguments)]
-pub fn audit_graph_file(
+pub fn audit_graph_file<X>(
     desc: &GraphDescription,
     file: &TensorFile,
     path: &Path,
-    probe: &Batch,
+    probe: &Batch<X>,
     claimed: Option<Init>,
     t: &Thresholds,
     k: &KindThresholds,
     seed: u64,
-) -> Result<Audit, GraphError> {
-    desc.graph.check_batch(probe.x.view(), probe.y.view())?;
+) -> Result<Audit, GraphError>
+where
+    for<'a> &'a X: Into<Inputs<'a, f64>>,
+{
+    let probe = Probe {
+        x: (&probe.x).into(),
+        y: probe.y.view(),
+    };
+    match probe.x {
+        Inputs::Own(x) => desc.graph.check_batch(x, probe.y)?,
+        Inputs::F32(x) => desc.graph.check_batch(x, probe.y)?,
+    }
     let shapes = audit_graph_shapes(desc, Some(file));
     let mut findings = shapes.findings.clone();
     findings.extend(values_findings(&file_values(desc, file), t));
@@ -220,6 +236,36 @@ fn has_inside(node: &Node) -> bool {
     )
 }
 
+/// A probe batch as the audit reads it: x in f64, or as the f32 a data file stored it in (an f32
+/// probe pass then reads it without a copy, an f64 one widens it).
+#[derive(Clone, Copy)]
+struct Probe<'a> {
+    x: Inputs<'a, f64>,
+    y: ArrayView2<'a, f64>,
+}
+
+impl Probe<'_> {
+    fn len(&self) -> usize {
+        self.x.nrows()
+    }
+
+    /// x in f32: as stored, or each f64 value rounded.
+    fn x32(&self) -> CowArray<'_, f32, Ix2> {
+        match self.x {
+            Inputs::F32(x) => x.into(),
+            Inputs::Own(x) => x.mapv(|v| v as f32).into(),
+        }
+    }
+
+    /// x in f64: as given, or each f32 value widened (exactly).
+    fn x64(&self) -> CowArray<'_, f64, Ix2> {
+        match self.x {
+            Inputs::Own(x) => x.into(),
+            Inputs::F32(x) => x.mapv(f64::from).into(),
+        }
+    }
+}
+
 /// Everything after the values: duplicates, norm scales, and on a finite file the probe pass's
 /// unit health and inside measures, the initialisation scale and the flow. `names[t]` is the
 /// name findings give graph tensor t.
@@ -229,7 +275,7 @@ fn measure(
     names: &[String],
     shapes: GraphShapeAudit,
     mut findings: Vec<Finding>,
-    probe: &Batch,
+    probe: Probe<'_>,
     claimed: Option<Init>,
     t: &Thresholds,
     k: &KindThresholds,
@@ -289,14 +335,15 @@ fn measure(
         let in_f32 = single
             .then(|| {
                 let p32: Vec<ArrayD<f32>> = params.iter().map(|p| p.mapv(|v| v as f32)).collect();
-                let (x, y) = (probe.x.mapv(|v| v as f32), probe.y.mapv(|v| v as f32));
+                let (x, y) = (probe.x32(), probe.y.mapv(|v| v as f32));
                 probe_pass(g, &p32, params, x.view(), y.view(), &named, t, seed)
             })
             .flatten();
         let (h, f, mut pass_findings, ins) = match in_f32 {
             Some(done) => done,
             None => {
-                let (x, y) = (probe.x.view(), probe.y.view());
+                let wide = probe.x64();
+                let (x, y) = (wide.view(), probe.y);
                 let trace = g.forward(params, x);
                 let inside_of = |j: usize, node: &Node| {
                     let input = if j == 0 {
@@ -560,7 +607,7 @@ fn graph_flow<S: LayerScalar>(
             let a = &trace.outputs[j];
             LayerFlow {
                 layer: j + 1,
-                activation_std: moments_of(|| a.iter().map(|v| v.re())).std,
+                activation_std: std_of(|| a.iter().map(|v| v.re())),
                 gradient_norm: gn,
                 gradient_rms: gn / (gv.len().max(1) as f64).sqrt(),
                 sigma_max: sigma,

@@ -140,8 +140,12 @@ pub fn unit_health<S: Scalar>(
         Activation::Tanh => (-1.0, 1.0),
         Activation::Sigmoid => (0.0, 1.0),
         _ => {
-            let lo = a.iter().map(|v| v.re()).fold(f64::INFINITY, f64::min);
-            let hi = a.iter().map(|v| v.re()).fold(f64::NEG_INFINITY, f64::max);
+            let (lo, hi) = a
+                .iter()
+                .map(|v| v.re())
+                .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), v| {
+                    (lo.min(v), hi.max(v))
+                });
             if lo.is_finite() && hi > lo {
                 (lo, hi)
             } else {

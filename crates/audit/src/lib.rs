@@ -49,7 +49,7 @@ pub use init::{
     KsTest, LayerInit, correct_across_layers, holm, ks_test, q_ks, scheme_cdf, tensor_init,
 };
 pub use release::{Audit, Thresholds, verdict_at};
-pub use robust::{Moments, largest, moments, moments_of, norm};
+pub use robust::{Moments, largest, moments, moments_of, norm, std_of};
 pub use shapes::{LayerShapes, LayerTerms, STRAY_LISTED, Status, StrayTensor, TensorShape};
 pub use symmetry::SymmetricGroup;
 pub use units::{unit_ranges, units_phrase};

@@ -40,16 +40,31 @@ pub fn moments(values: &[f64]) -> Moments {
 /// [`moments`] of values read afresh from `values()` on each of its passes, in the same order and
 /// with the same sums, so that a large tensor (or an f32 one, widened on the fly) is not copied.
 pub fn moments_of<I: Iterator<Item = f64>>(values: impl Fn() -> I) -> Moments {
+    moments_in(values, true)
+}
+
+/// The standard deviation of [`moments_of`], the same bits, without the pass the kurtosis takes.
+pub fn std_of<I: Iterator<Item = f64>>(values: impl Fn() -> I) -> f64 {
+    moments_in(values, false).std
+}
+
+/// Three passes (the largest |v|; count and sum; the squares), and a fourth for the kurtosis
+/// when asked (NaN when not).
+fn moments_in<I: Iterator<Item = f64>>(values: impl Fn() -> I, kurtosis: bool) -> Moments {
     let scale = largest(values());
     let x = || {
         values()
             .filter(|v| v.is_finite())
             .map(move |v| if scale > 0.0 { v / scale } else { 0.0 })
     };
-    let n = x().count().max(1) as f64;
-    let mean = x().sum::<f64>() / n;
+    // -0.0 is where `Iterator::sum` of f64 starts.
+    let (count, sum) = x().fold((0usize, -0.0f64), |(c, s), v| (c + 1, s + v));
+    let n = count.max(1) as f64;
+    let mean = sum / n;
     let var = x().map(|v| (v - mean).powi(2)).sum::<f64>() / n;
-    let kurtosis = if var > 0.0 {
+    let kurtosis = if !kurtosis {
+        f64::NAN
+    } else if var > 0.0 {
         x().map(|v| (v - mean).powi(4)).sum::<f64>() / n / (var * var)
     } else {
         3.0

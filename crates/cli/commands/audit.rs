@@ -112,7 +112,8 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
         AxisOrder::ChannelsFirst
     };
     // Only the probe batch is used from the load; the weights are the file's, finite or not.
-    let probe = GraphLoaded::load(
+    // An f32 data file's x is kept in f32: the probe pass of an f32 file reads it as it is.
+    let probe = GraphLoaded::load_kept(
         desc,
         &GraphInputs {
             weights: None,
@@ -122,6 +123,7 @@ pub fn run(args: &AuditArgs, settings: &Settings) -> Result<Verdict> {
             seed: settings.seed,
             samples: args.batch,
         },
+        &|_, _, _| Ok(()),
     )?;
     let desc = &probe.desc;
     let k = KindThresholds {
