@@ -21,6 +21,8 @@ For float32 files a third side runs too, in the same alternation: `grad_cli.py n
 NumPy job widened to float64 after loading and its gradient rounded to float32 before writing — the
 arithmetic `plumb grad` does on such files (it computes the reference in f64 whatever the files'
 precision) — with its files asserted to agree with plumb's to 1e-6 of each tensor's largest entry.
+And a fourth, `plumb grad --precision f32`: plumb computing in f32 as NumPy does on such files,
+its gradient asserted to agree with NumPy's to the same 2e-2 of each tensor's largest entry.
 """
 
 import json
@@ -120,12 +122,13 @@ def main():
             with tempfile.TemporaryDirectory() as folder:
                 make(folder, dtype, m, rng)
                 p = lambda name: os.path.join(folder, name)
-                ours, theirs, inside, olds, wides = [], [], [], [], []
+                ours, theirs, inside, olds, wides, singles = [], [], [], [], [], []
                 grad = lambda binary, out: [binary, "grad", p("net.toml"), "-w", p("w.npz"),
                                             "-d", p("d.npz"), "-o", p(out), "--quiet",
                                             "--format", "json"]
                 for _ in range(runs):
-                    for g in ["g-plumb.npz", "g-numpy.npz", "g-before.npz", "g-wide.npz"]:
+                    for g in ["g-plumb.npz", "g-numpy.npz", "g-before.npz", "g-wide.npz",
+                              "g-single.npz"]:
                         if os.path.exists(p(g)):
                             os.remove(p(g))
                     if before:
@@ -141,6 +144,8 @@ def main():
                         t, _ = timed([sys.executable, os.path.abspath(__file__), "numpy-f64",
                                       p("w.npz"), p("d.npz"), p("g-wide.npz")])
                         wides.append(t)
+                        t, _ = timed(grad(plumb, "g-single.npz") + ["--precision", "f32"])
+                        singles.append(t)
                 if before:
                     with open(p("g-before.npz"), "rb") as f, open(p("g-plumb.npz"), "rb") as g:
                         assert f.read() == g.read(), (dtype, m, "the gradient files differ")
@@ -167,6 +172,17 @@ def main():
                           f"{min(wides) * 1e3:.1f} ms, NumPy-f64 / plumb "
                           f"{min(wides) / min(ours):.2f}×; each run (ms) plumb / NumPy-f64: "
                           + ", ".join(f"{t * 1e3:.1f} / {w * 1e3:.1f}" for t, w in zip(ours, wides)))
+                if singles:
+                    c = np.load(p("g-single.npz"))
+                    for name in b.files:
+                        scale = np.abs(b[name]).max()
+                        gap = np.abs(c[name].astype(np.float64) - b[name].astype(np.float64)).max()
+                        assert gap <= 2e-2 * scale, (dtype, m, name, gap, scale)
+                    print(f"{dtype}, {m}, plumb in f32 as NumPy computes (--precision f32): "
+                          f"{min(singles) * 1e3:.1f} ms, NumPy / plumb-f32 "
+                          f"{min(theirs) / min(singles):.2f}×; each run (ms) plumb-f32 / NumPy: "
+                          + ", ".join(f"{t * 1e3:.1f} / {n * 1e3:.1f}"
+                                      for t, n in zip(singles, theirs)))
                 o, n, i = min(ours), min(theirs), min(inside)
                 print(f"{dtype}, {m} | {o * 1e3:.1f} ms | {n * 1e3:.1f} ms | {n / o:.2f}× "
                       f"| {i * 1e3:.1f} ms | {i / o:.2f}×")

@@ -140,9 +140,14 @@ pub struct GradArgs {
     /// (.npz, .safetensors, or .npy for a one-tensor layout).
     #[arg(short, long, value_name = "G")]
     pub output: Option<PathBuf>,
-    /// Element type of the gradient file [default: f64 for float64 weights or none, else f32].
+    /// Element type of the gradient file [default: f32 with --precision f32 or weights other than
+    /// float64, else f64].
     #[arg(long, value_enum)]
     pub dtype: Option<DTypeArg>,
+    /// Arithmetic to compute in: f64, the reference; f32, as an f32 implementation computes
+    /// (weights and data rounded to f32, every sum in f32).
+    #[arg(long, value_enum, default_value_t = PrecisionArg::F64)]
+    pub precision: PrecisionArg,
     /// Also give the gradient with respect to the input: the tensor `input`, (m, *input), in the
     /// data's axis order.
     #[arg(long)]

@@ -198,3 +198,88 @@ fn seeded_runs_without_files_are_reproducible() {
     assert_eq!(a.json()["data"]["source"], "synthetic");
     assert_eq!(a.json()["weights"]["scheme"], "glorot-uniform");
 }
+
+/// `--precision f32` runs the pass in f32: against the same NumPy backpropagation in f64
+/// (fixtures/expected/), each entry within 1e-5 of its tensor's largest — f32 keeps 24 bits
+/// (ε ≈ 1.2e-7) and this 4-5-3 network's values pass through a few dozen roundings each — and the
+/// loss is an f32 value (computed in f64 it almost never is), written as f32 by default.
+#[test]
+fn f32_arithmetic_gives_the_gradient_to_f32_accuracy() {
+    let dir = scratch("grad-f32-arith");
+    let out = dir.join("g.npz");
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented.npz",
+        "-d",
+        "data/small.csv",
+        "-o",
+        out.to_str().unwrap(),
+        "--precision",
+        "f32",
+        "--format",
+        "json",
+    ]);
+    run.assert_code(0);
+    let json = run.json();
+    assert_eq!(json["precision"], "f32");
+    let loss = json["loss"].as_f64().unwrap();
+    assert_eq!(f64::from(loss as f32), loss, "the loss is f32's");
+    assert!(
+        (loss - expected_loss()).abs() <= 1e-6 * expected_loss(),
+        "{loss} vs {}",
+        expected_loss()
+    );
+    assert_ne!(loss, expected_loss());
+    let got = read_tensors(&out).unwrap();
+    let want = read_tensors(&fixture("expected/small-grad.npz")).unwrap();
+    for t in &want.tensors {
+        let g = got.get(&t.name).unwrap();
+        assert_eq!(g.dtype, DType::F32);
+        let scale = t.data.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        for (i, (a, b)) in g.data.iter().zip(&t.data).enumerate() {
+            assert!((a - b).abs() <= 1e-5 * scale, "{}[{i}]: {a} vs {b}", t.name);
+        }
+    }
+    // The default is the f64 reference, and says so.
+    let json = plumb(&["grad", "nets/small.toml", "--format", "json"]).json();
+    assert_eq!(json["precision"], "f64");
+}
+
+/// A weight past f32's largest value (3.4e38, IEEE 754 binary32) cannot be computed in f32: an
+/// input error naming the file, the file's tensor and index (the augmented matrix's column 0 is
+/// the bias, so the weight's canonical index 3 is the file's 4) and what to do — in `grad` and
+/// in `check` alike — not an infinite loss.
+#[test]
+fn f32_arithmetic_refuses_a_weight_past_f32s_range() {
+    use plumb_formats::{Existing, Tensor, write_tensor_file};
+    let dir = scratch("grad-f32-range");
+    let w = dir.join("w.npz");
+    let mut tensors: Vec<Tensor> = read_tensors(&fixture("weights/small-augmented.npz"))
+        .unwrap()
+        .tensors;
+    tensors[1].data[4] = 1e39;
+    write_tensor_file(&w, FileFormat::Npz, &tensors, DType::F64, Existing::Keep).unwrap();
+    for command in ["grad", "check"] {
+        let args = [command, "nets/small.toml", "-w", w.to_str().unwrap()];
+        let run = plumb(&[&args[..], &["--precision", "f32"]].concat());
+        run.assert_code(2);
+        for part in [
+            "w.npz",
+            "`layer2` index 4",
+            "unit 0, input 3",
+            "1e39",
+            "--precision f64",
+        ] {
+            assert!(
+                run.stderr.contains(part),
+                "{command}, {part}: {}",
+                run.stderr
+            );
+        }
+        if command == "grad" {
+            plumb(&args).assert_code(0);
+        }
+    }
+}

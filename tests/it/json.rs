@@ -120,6 +120,7 @@ struct Grad {
     weights: WeightsSource,
     data: DataSource,
     samples: usize,
+    precision: String,
     loss: Option<f64>,
     data_loss: Option<f64>,
     l2_term: Option<f64>,
@@ -391,6 +392,7 @@ fn grad_report_schema() {
     );
     assert!(matches!(r.weights, WeightsSource::File { .. }));
     assert!(matches!(r.data, DataSource::File { samples: 8, .. }));
+    assert_eq!(r.precision, "f64");
     let r: Grad =
         serde_json::from_str(&plumb(&["grad", "nets/small.toml", "--format", "json"]).stdout)
             .unwrap();

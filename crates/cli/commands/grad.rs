@@ -4,6 +4,7 @@
 use std::path::Path;
 
 use anyhow::{Result, bail};
+use plumb_fd::Precision;
 pub use plumb_fd::report::GradReport;
 use plumb_fd::report::graph_gradient_report;
 use plumb_formats::{DType, FileFormat, write_tensor_file};
@@ -27,7 +28,8 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         None => None,
     };
     let (loaded, network) = load_graph_kept(inputs, settings.seed)?;
-    let mut computed = graph_gradient_report(&loaded, args.input_gradient)?;
+    let precision = super::check::precision(args.precision);
+    let mut computed = graph_gradient_report(&loaded, args.input_gradient, precision)?;
     let weights_source = loaded.weights_source;
     if let (Some(path), Some(format)) = (&args.output, out_format) {
         if format == FileFormat::Npy && computed.tensors.len() != 1 {
@@ -40,6 +42,7 @@ pub fn run(args: &GradArgs, settings: &Settings) -> Result<Verdict> {
         let dtype = match args.dtype {
             Some(DTypeArg::F32) => DType::F32,
             Some(DTypeArg::F64) => DType::F64,
+            None if precision == Precision::F32 => DType::F32,
             None => crate::inputs::gradient_dtype(&weights_source),
         };
         write_tensor_file(path, format, &computed.tensors, dtype, settings.existing())?;
@@ -93,10 +96,18 @@ pub fn document(r: &GradReport) -> Document {
         ),
         ("weights".to_string(), weights),
         ("data".to_string(), r.data.describe()),
+    ];
+    if r.precision != "f64" {
+        facts.push((
+            "arithmetic".to_string(),
+            format!("{} (a reference to trust is computed in f64)", r.precision),
+        ));
+    }
+    facts.extend([
         ("loss J".to_string(), format!("{:.12}", r.loss)),
         ("  data term".to_string(), format!("{:.12}", r.data_loss)),
         ("  L2 term".to_string(), format!("{:.12}", r.l2_term)),
-    ];
+    ]);
     if let Some(o) = &r.output {
         facts.push(("written to".to_string(), o.display().to_string()));
     }

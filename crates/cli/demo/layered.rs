@@ -179,7 +179,7 @@ impl Scenario {
             },
             order: AxisOrder::ChannelsFirst,
         };
-        let grad = plumb_fd::report::graph_gradient_report(&loaded, false)?.report;
+        let grad = plumb_fd::report::graph_gradient_report(&loaded, false, Precision::F64)?.report;
         let mut config = CheckConfig::new(Method::Central, Precision::F64);
         config.seed = seed;
         let check = graph_check_report(&loaded, &config, 3, &|_, _| {})?;

@@ -263,7 +263,7 @@ pub fn run(args: &DemoArgs, settings: &Settings) -> Result<Verdict> {
         },
         order: AxisOrder::ChannelsFirst,
     };
-    let computed = graph_gradient_report(&on_graph, false)?;
+    let computed = graph_gradient_report(&on_graph, false, Precision::F64)?;
     let checked = graph_check_report(
         &on_graph,
         &CheckConfig::new(Method::Central, Precision::F64),

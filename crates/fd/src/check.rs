@@ -140,9 +140,20 @@ pub enum CheckError {
         "the loss there is {loss} in {precision}: a check needs a finite loss; look at the weights' and the data's scale (plumb audit)"
     )]
     LossNotFinite { loss: f64, precision: &'static str },
-    /// A batch value past f32's range in an f32 check: sample and column from 0, of x or y.
+    /// A parameter past f32's range in an f32 pass: graph tensor `tensor` (named `name`), flat
+    /// index `index` in its canonical shape (reports say where it is in the file).
     #[error(
-        "sample {} holds {value:e} in {of} (column {}), past the largest f32 value (3.4e38): check in f64 (--precision f64), or scale the data",
+        "tensor `{name}` index {index} holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or look at its scale (plumb audit)"
+    )]
+    ParamBeyondF32 {
+        tensor: usize,
+        name: String,
+        index: usize,
+        value: f64,
+    },
+    /// A batch value past f32's range in an f32 pass: sample and column from 0, of x or y.
+    #[error(
+        "sample {} holds {value:e} in {of} (column {}), past the largest f32 value (3.4e38): run in f64 (--precision f64), or scale the data",
         .sample + 1,
         .column + 1
     )]

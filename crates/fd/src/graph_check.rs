@@ -85,7 +85,7 @@ pub fn check_graph(
 ) -> Result<GraphCheck, CheckError> {
     fits(graph, params, x, y)?;
     if config.precision == Precision::F32 {
-        beyond_f32(graph, params, x, y)?;
+        beyond_f32(graph, params, Some(x), y)?;
     }
     let (loss, analytic) = match config.precision {
         Precision::F64 => graph.parameter_gradient(params, x, y, None),
@@ -122,25 +122,26 @@ pub fn check_graph(
 }
 
 /// Refuses a weight or batch value past f32's largest finite value (about 3.4e38, IEEE 754
-/// binary32): it would be infinite in an f32 check.
-fn beyond_f32(
+/// binary32): it would be infinite in an f32 pass. `x` is `None` for a batch held in f32.
+pub(crate) fn beyond_f32(
     graph: &Graph,
     params: &[ArrayD<f64>],
-    x: ArrayView2<f64>,
+    x: Option<ArrayView2<f64>>,
     y: ArrayView2<f64>,
 ) -> Result<(), CheckError> {
     let past = |v: &f64| v.abs() > f64::from(f32::MAX);
-    let say = |what: String, k: usize, v: f64| {
-        CheckError::Unusable(format!(
-            "{what} index {k} holds {v:e}, past the largest f32 value (3.4e38): check in f64 (--precision f64), or look at its scale (plumb audit)"
-        ))
-    };
     for (t, p) in params.iter().enumerate() {
-        if let Some((k, v)) = p.iter().enumerate().find(|(_, v)| past(v)) {
-            return Err(say(format!("tensor `{}`", graph.tensors()[t].name), k, *v));
+        if let Some((index, &value)) = p.iter().enumerate().find(|(_, v)| past(v)) {
+            return Err(CheckError::ParamBeyondF32 {
+                tensor: t,
+                name: graph.tensors()[t].name.clone(),
+                index,
+                value,
+            });
         }
     }
-    for (what, a) in [("x", x), ("y", y)] {
+    for (what, a) in [("x", x), ("y", Some(y))] {
+        let Some(a) = a else { continue };
         if let Some(((sample, column), &value)) = a.indexed_iter().find(|(_, v)| past(v)) {
             return Err(CheckError::DataBeyondF32 {
                 sample,

@@ -3,13 +3,17 @@
 
 use std::path::PathBuf;
 
+use ndarray::{Array2, ArrayD, ArrayView2};
 use plumb_engine::Inputs;
-use plumb_engine::graph::GraphError;
+use plumb_engine::graph::{Graph, GraphError, LayerScalar};
 use plumb_formats::Tensor;
 use plumb_report::{DataSource, Finding, SCHEMA_VERSION, Severity, Verdict, WeightsSource, figure};
 use serde::{Deserialize, Serialize};
+use thiserror::Error;
 
 use super::GraphLoaded;
+use crate::check::{CheckError, Precision};
+use crate::graph_check::beyond_f32;
 
 /// Per-tensor summary of the gradient.
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -70,6 +74,10 @@ pub struct GradReport {
     pub weights: WeightsSource,
     pub data: DataSource,
     pub samples: usize,
+    /// The arithmetic the loss and gradient were computed in: "f64" (the reference), or "f32"
+    /// (as an f32 implementation computes them; reports before it existed were all f64).
+    #[serde(default = "f64_name")]
+    pub precision: String,
     /// J = data term + L2 term.
     #[serde(deserialize_with = "figure")]
     pub loss: f64,
@@ -99,11 +107,14 @@ impl Gradient {
 
 /// The loss and gradient of a network of any kind on the layer graph, with the input gradient
 /// when asked; gradients are summarised and given per file tensor, in the declared storage.
-/// An f32 batch kept in f32 ([`GraphLoaded::load_kept`]) gives the widened batch's values.
+/// An f32 batch kept in f32 ([`GraphLoaded::load_kept`]) gives the widened batch's values in
+/// f64. In f32 the parameters and batch are rounded to f32 (refused past its range) and the
+/// whole pass runs in f32; its results are widened exactly for the report and the files.
 pub fn graph_gradient_report<X>(
     loaded: &GraphLoaded<X>,
     input_gradient: bool,
-) -> Result<Gradient, GraphError>
+    precision: Precision,
+) -> Result<Gradient, GradError>
 where
     for<'a> &'a X: Into<Inputs<'a, f64>>,
 {
@@ -111,22 +122,36 @@ where
     let graph = &desc.graph;
     let b = &loaded.batch;
     let x: Inputs<'_, f64> = (&b.x).into();
-    // The input gradient is formed only when it is written.
-    let (loss, grads, input) = if input_gradient {
-        let g = graph.gradient(&loaded.params, x, b.y.view(), None);
-        (g.loss, g.params, Some(g.input))
-    } else {
-        let (loss, grads) = graph.parameter_gradient(&loaded.params, x, b.y.view(), None);
-        (loss, grads, None)
+    let (loss, grads, input, l2_sum) = match precision {
+        Precision::F64 => {
+            let (loss, grads, input) = pass(graph, &loaded.params, x, b.y.view(), input_gradient);
+            (loss, grads, input, squares(graph, &loaded.params))
+        }
+        Precision::F32 => {
+            let held = match x {
+                Inputs::Own(x) => Some(x),
+                Inputs::F32(_) => None,
+            };
+            beyond_f32(graph, &loaded.params, held, b.y.view())
+                .map_err(|e| super::graph_check::said_where(loaded, e))?;
+            let p: Vec<ArrayD<f32>> = loaded.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
+            let rounded;
+            let xs: ArrayView2<f32> = match x {
+                Inputs::F32(x) => x,
+                Inputs::Own(x) => {
+                    rounded = x.mapv(|v| v as f32);
+                    rounded.view()
+                }
+            };
+            let ys = b.y.mapv(|v| v as f32);
+            let (loss, grads, input) = pass(graph, &p, xs.into(), ys.view(), input_gradient);
+            let wide: Vec<ArrayD<f64>> = grads.iter().map(|g| g.mapv(f64::from)).collect();
+            let widened = |t: &ArrayD<f32>| t.mapv(f64::from);
+            let l2 = squares(graph, &p.iter().map(widened).collect::<Vec<_>>());
+            (f64::from(loss), wide, input.map(|i| i.mapv(f64::from)), l2)
+        }
     };
-    let l2_term = graph.loss_config().l2_factor(x.nrows())
-        * loaded
-            .params
-            .iter()
-            .enumerate()
-            .filter(|(t, _)| graph.decays(*t))
-            .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
-            .sum::<f64>();
+    let l2_term = graph.loss_config().l2_factor(x.nrows()) * l2_sum;
     let mut tensors = desc.to_file(&grads)?;
     let mut layers: Vec<usize> = desc.files.iter().map(|f| f.layer + 1).collect();
     if let Some(input) = input {
@@ -139,11 +164,55 @@ where
             weights: &loaded.weights_source,
             data: &loaded.data_source,
             samples: x.nrows(),
+            precision,
         },
         (loss, loss - l2_term, l2_term),
         tensors,
         &layers,
     ))
+}
+
+/// Why a gradient cannot be computed: the layout's files do not fit, or a value is past the
+/// range of the asked precision.
+#[derive(Debug, Error)]
+pub enum GradError {
+    #[error(transparent)]
+    Graph(#[from] GraphError),
+    #[error(transparent)]
+    Precision(#[from] CheckError),
+}
+
+/// The loss, parameter gradients and (when asked) input gradient of one pass in `S`; the input
+/// gradient is formed only when it is written.
+#[allow(clippy::type_complexity)]
+fn pass<S: LayerScalar>(
+    graph: &Graph,
+    params: &[ArrayD<S>],
+    x: Inputs<'_, S>,
+    y: ArrayView2<S>,
+    input_gradient: bool,
+) -> (S, Vec<ArrayD<S>>, Option<Array2<S>>) {
+    if input_gradient {
+        let g = graph.gradient(params, x, y, None);
+        (g.loss, g.params, Some(g.input))
+    } else {
+        let (loss, grads) = graph.parameter_gradient(params, x, y, None);
+        (loss, grads, None)
+    }
+}
+
+/// Σ w² over the tensors the L2 term decays, in f64.
+fn squares(graph: &Graph, params: &[ArrayD<f64>]) -> f64 {
+    params
+        .iter()
+        .enumerate()
+        .filter(|(t, _)| graph.decays(*t))
+        .map(|(_, p)| p.iter().map(|w| w * w).sum::<f64>())
+        .sum()
+}
+
+fn f64_name() -> String {
+    Precision::F64.name().into()
 }
 
 /// What a gradient was computed on.
@@ -152,6 +221,7 @@ struct Run<'a> {
     weights: &'a WeightsSource,
     data: &'a DataSource,
     samples: usize,
+    precision: Precision,
 }
 
 /// The report of a loss (J, data term, L2 term) and gradient tensors (`layers[i]` is tensor i's
@@ -202,6 +272,7 @@ fn summarised(
             weights: run.weights.clone(),
             data: run.data.clone(),
             samples: run.samples,
+            precision: run.precision.name().into(),
             loss,
             data_loss,
             l2_term,

@@ -30,6 +30,42 @@ pub(super) fn coord_report(places: &Places, r: &GraphCheck, c: &OutsideCoord) ->
 }
 
 /// Runs the check of the graph's own gradient on loaded inputs and builds its report.
+/// A check error said where the user can find it: a parameter at its place in the weight file,
+/// a sample at its file and line, the weights (and the data, for a loss that overflows).
+pub(crate) fn said_where<X>(loaded: &GraphLoaded<X>, e: CheckError) -> CheckError {
+    match e {
+        CheckError::ParamBeyondF32 {
+            tensor,
+            index,
+            value,
+            ..
+        } => {
+            let at = Places::new(&loaded.desc).place(tensor, index);
+            CheckError::Unusable(format!(
+                "{}: tensor `{}` index {} (layer {}, {}) holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or look at its scale (plumb audit)",
+                loaded.weights_source.describe(),
+                at.tensor,
+                at.index,
+                at.layer,
+                at.location
+            ))
+        }
+        e @ CheckError::DataBeyondF32 { sample, .. } => CheckError::Unusable(format!(
+            "{}: {e}",
+            super::graph_loaded::sample_place(&loaded.data_source, sample)
+        )),
+        e @ CheckError::LossNotFinite { .. } => CheckError::Unusable(format!(
+            "weights {}, data {}: {e}",
+            loaded.weights_source.describe(),
+            loaded.data_source.describe()
+        )),
+        CheckError::Unusable(why) => {
+            CheckError::Unusable(format!("{}: {why}", loaded.weights_source.describe()))
+        }
+        other => other,
+    }
+}
+
 pub fn graph_check_report(
     loaded: &GraphLoaded,
     config: &CheckConfig,
@@ -46,23 +82,7 @@ pub fn graph_check_report(
         config,
         progress,
     )
-    .map_err(|e| match e {
-        // Said where the user can find it: the sample's file and line, or the weights (and the
-        // data, for a loss that overflows).
-        e @ CheckError::DataBeyondF32 { sample, .. } => CheckError::Unusable(format!(
-            "{}: {e}",
-            super::graph_loaded::sample_place(&loaded.data_source, sample)
-        )),
-        e @ CheckError::LossNotFinite { .. } => CheckError::Unusable(format!(
-            "weights {}, data {}: {e}",
-            loaded.weights_source.describe(),
-            loaded.data_source.describe()
-        )),
-        CheckError::Unusable(why) => {
-            CheckError::Unusable(format!("{}: {why}", loaded.weights_source.describe()))
-        }
-        other => other,
-    })?;
+    .map_err(|e| said_where(loaded, e))?;
     let facts = super::RunFacts {
         description: loaded.desc.path.clone(),
         description_hash: loaded.description_hash.clone(),

@@ -14,7 +14,7 @@ pub use check::{
     CheckReport, Code, CoordReport, CoverageReport, DirectionReport, Location, MAX_DIRECTIONS,
     RunFacts, TensorReport, remedies,
 };
-pub use grad::{GradReport, Gradient, TensorGradient, graph_gradient_report};
+pub use grad::{GradError, GradReport, Gradient, TensorGradient, graph_gradient_report};
 pub use graph_check::{GraphCheckReport, GraphCoordReport, build_graph, graph_check_report};
 pub use graph_loaded::{
     GraphInputs, GraphLoadError, GraphLoaded, LoadedX, MAX_ACTIVATION_VALUES, MAX_SYNTHETIC_VALUES,
