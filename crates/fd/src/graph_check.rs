@@ -375,7 +375,7 @@ impl Run<'_> {
                         .par_iter()
                         .map_init(
                             || (real.lend(), Workspace::default()),
-                            |(ws, ws64), b| match wide {
+                            |(ws, ws64), b| match wide && real.sides_agree(real.lowest_changed(b)) {
                                 true => real.wide_change_in(widened(), ws64, b),
                                 false => real.change_in(ws, b),
                             },
@@ -395,7 +395,7 @@ impl Run<'_> {
                     v,
                     deltas,
                     wide: true,
-                } => {
+                } if real.sides_agree(real.lowest_moved(v)) => {
                     // The base's loss in S plus the change of the loss in f64 at the
                     // parameters S holds, as for one entry ([`Eval::wide_change_in`]).
                     let (wide, noise) = widened();
@@ -422,7 +422,10 @@ impl Run<'_> {
                     Ok(out.into_iter().map(|(v, _)| v).collect())
                 }
                 Request::AlongDifferences { v, deltas } => {
-                    let along = real.along_differ(v);
+                    let along = real
+                        .sides_agree(real.lowest_moved(v))
+                        .then(|| real.along_differ(v))
+                        .flatten();
                     let out: Vec<(f64, bool, Option<f64>)> = deltas
                         .par_iter()
                         .map(|&d| {
@@ -694,6 +697,11 @@ struct Eval<'a, S> {
     /// The steps along a direction as changes in f64 at the parameters S holds
     /// ([`Eval::along_differ`]), built with `difference`.
     along: Option<AlongBase>,
+    /// The highest layer whose branches differ between the base pass in S and the f64 pass
+    /// at the same parameters (a relu unit S's rounding puts on the other side of 0), found
+    /// with `difference`: a loss taken on the f64 pass for a change at or below it could find
+    /// another side's derivative than S's gradient takes ([`Eval::sides_agree`]).
+    split_to: Option<usize>,
 }
 
 /// What the steps along a direction read as changes: the difference form over the f64 pass at
@@ -773,6 +781,7 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             responses: Vec::new(),
             difference: None,
             along: None,
+            split_to: None,
         }
     }
 
@@ -785,6 +794,8 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
         let params: Vec<ArrayD<f64>> = self.params.iter().map(wide).collect();
         let (x, y) = (self.x.mapv(|v| v.re()), self.y.mapv(|v| v.re()));
         let exact = self.graph.forward(&params, x.view());
+        let own = self.graph.branches(&self.trace);
+        self.split_to = self.graph.branches(&exact).changed(&own).last().copied();
         self.difference =
             Difference::new(self.graph, &exact, self.x.view(), y.view()).map(|mut d| {
                 d.respond(self.graph, self.y.view(), picked, CHANGE_RESPONSE_ENTRIES);
@@ -799,15 +810,36 @@ impl<'a, S: LayerScalar> Eval<'a, S> {
             });
     }
 
+    /// Whether losses taken on the f64 pass (changes over it, losses in f64) see the branches
+    /// S's own pass takes above layer `from`, the lowest a perturbation moves. Where they do
+    /// not, such a loss could sit on another side of a kink than S's gradient, with no step
+    /// crossing it: the perturbation takes S's own whole losses, with no bound of their own.
+    fn sides_agree(&self, from: usize) -> bool {
+        self.split_to.is_none_or(|top| from > top)
+    }
+
+    /// The lowest layer a perturbation by `changes` moves.
+    fn lowest_changed(&self, changes: &[Change]) -> usize {
+        let tensors = self.graph.tensors();
+        changes
+            .iter()
+            .map(|c| tensors[c.tensor as usize].layer)
+            .min()
+            .unwrap_or(0)
+    }
+
     /// The loss at one entry's change as the base's loss plus its change, with the change's
-    /// bound, where there is a difference form; otherwise as [`Eval::at_in`] with no bound.
-    /// (loss, crossed, through a response, bound).
+    /// bound, where there is a difference form (and its f64 base takes S's branches above the
+    /// entry); otherwise as [`Eval::at_in`] with no bound. (loss, crossed, through a response,
+    /// bound).
     fn change_in(
         &self,
         ws: &mut Workspace<S>,
         changes: &[Change],
     ) -> (f64, bool, bool, Option<f64>) {
-        if let (Some(diff), [c]) = (&self.difference, changes) {
+        if let (Some(diff), [c]) = (&self.difference, changes)
+            && self.sides_agree(self.lowest_changed(changes))
+        {
             let moved = Moved {
                 tensor: c.tensor as usize,
                 index: c.index as usize,

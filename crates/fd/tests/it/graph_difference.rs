@@ -674,3 +674,84 @@ fn a_direction_on_its_own_bounds_is_not_judged_by_whole_losses_round_off() {
         }
     }
 }
+
+/// A relu unit whose pre-activation f32's rounding puts on the other side of 0 than f64's, at
+/// the same (f32) parameters and input: z = 1 − 4e-8 + 5e-8 − 1 (inputs as f32 holds them,
+/// weights 1, bias −1) is +1e-8 in f64, while in f32 the engine's sums round it to −2⁻²⁴
+/// (IEEE 754 binary32 keeps 24 bits: 1 + 5e-8 rounds to 1, 1 − 4e-8 to 1 − 2⁻²⁴; which
+/// happens depends on the order of the sum, so the premise is asserted on the engine's own
+/// passes). The unit's weight from a fourth input of 1e-3 (held at 0) has derivative 0 on f32's
+/// side and, on f64's, the unit's effect on the loss times 1e-3; an f64 check's step moves z by
+/// 6e-9, less than the gap, so losses taken on the f64 pass would find f64's side and call the
+/// f32 gradient wrong. The f32 check judges such entries on its own losses, so the engine's f32
+/// gradient, which is right there, is called right or left open, never a mismatch.
+#[test]
+fn a_unit_on_the_other_side_of_zero_in_f64_raises_no_false_alarm() {
+    use ndarray::{ArrayD, IxDyn, array};
+    let g = dense_with(
+        4,
+        &[(2, Activation::Relu), (1, Activation::Identity)],
+        LossConfig {
+            loss: Loss::SquaredError,
+            ..LossConfig::cross_entropy()
+        },
+    );
+    let f32s = |v: Vec<f64>, shape: &[usize]| {
+        ArrayD::from_shape_vec(
+            IxDyn(shape),
+            v.into_iter().map(|v| v as f32 as f64).collect(),
+        )
+        .unwrap()
+    };
+    let params = vec![
+        f32s(vec![1.0, 1.0, 1.0, 0.0, 0.5, 0.3, -0.2, 0.1], &[2, 4]),
+        f32s(vec![-1.0, 0.2], &[2]),
+        f32s(vec![1.5, 1.0], &[1, 2]),
+        f32s(vec![0.0], &[1]),
+    ];
+    let x = array![[1.0, -4e-8, 5e-8, 1e-3]].mapv(|v: f64| v as f32 as f64);
+    let y = array![[-1.0]];
+    // The premise, on the engine's passes: unit 0's z is below 0 in f32, above it in f64.
+    let z64 = g.forward(&params, x.view()).steps[0].out[[0, 0]];
+    let p32: Vec<ArrayD<f32>> = params.iter().map(|p| p.mapv(|v| v as f32)).collect();
+    let z32 = g.forward(&p32, x.mapv(|v| v as f32).view()).steps[0].out[[0, 0]];
+    assert!(z64 > 0.0 && z32 < 0.0, "z in f64 {z64:e}, in f32 {z32:e}");
+    let c = Case {
+        graph: g,
+        params,
+        x,
+        y,
+    };
+    let mut cfg = config(Method::Central, Precision::F32, 1);
+    cfg.sample = Some(Sample::All);
+    let r = run(&c, &cfg);
+    let at = |t: usize, k: usize| {
+        r.coords
+            .iter()
+            .find(|o| o.coord.tensor == t && o.coord.index == k)
+            .unwrap()
+    };
+    // f32's own gradient of that weight is 0 (its unit is off in f32); f64's is not.
+    assert_eq!(at(0, 3).analytic, 0.0);
+    let wide = c
+        .graph
+        .gradient(&c.params, c.x.view(), c.y.view(), None)
+        .params;
+    assert!(wide[0][[0, 3]].abs() > 1e-4, "{}", wide[0][[0, 3]]);
+    eprintln!("(0, 3): {:?}", at(0, 3));
+    // Judged on f32's own losses, not on the f64 pass.
+    assert!(!at(0, 3).wide);
+    assert!(
+        r.coords.iter().all(|o| o.status != Status::Mismatch),
+        "{:?}",
+        r.coords
+            .iter()
+            .filter(|o| o.status == Status::Mismatch)
+            .collect::<Vec<_>>()
+    );
+    assert!(
+        r.directions.iter().all(|d| d.status != Status::Mismatch),
+        "{:?}",
+        r.directions
+    );
+}
