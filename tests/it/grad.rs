@@ -232,6 +232,31 @@ fn f32_arithmetic_gives_the_gradient_to_f32_accuracy() {
         expected_loss()
     );
     assert_ne!(loss, expected_loss());
+    // The L2 term as the f32 pass added it (an f32 value), the data term the rest; both within
+    // f32's rounding of the f64 reference's.
+    let reference = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-w",
+        "weights/small-augmented.npz",
+        "-d",
+        "data/small.csv",
+        "--format",
+        "json",
+    ])
+    .json();
+    let l2 = json["l2_term"].as_f64().unwrap();
+    assert_eq!(f64::from(l2 as f32), l2);
+    for term in ["l2_term", "data_loss"] {
+        let (a, b) = (
+            json[term].as_f64().unwrap(),
+            reference[term].as_f64().unwrap(),
+        );
+        assert!(
+            (a - b).abs() <= 1e-6 * expected_loss(),
+            "{term}: {a} vs {b}"
+        );
+    }
     let got = read_tensors(&out).unwrap();
     let want = read_tensors(&fixture("expected/small-grad.npz")).unwrap();
     for t in &want.tensors {
@@ -282,4 +307,88 @@ fn f32_arithmetic_refuses_a_weight_past_f32s_range() {
             plumb(&args).assert_code(0);
         }
     }
+}
+
+/// A data value past f32's range is named where it is in the file, in `--precision f32`: a CSV
+/// file's line and column with its header (the reader skips empty lines, so lines are counted
+/// again, here by hand: header on line 1, samples on lines 2, 3, then two empty lines, the value
+/// on line 6), an npz array's index in the file's own axes (channels last as the flag read it).
+/// The CSV reader's own errors count lines the same way.
+#[test]
+fn f32_arithmetic_names_a_data_value_past_f32s_range_where_it_is() {
+    use plumb_formats::{Existing, Tensor, write_tensor_file};
+    let dir = scratch("grad-f32-data");
+    let csv = std::fs::read_to_string(fixture("data/small.csv")).unwrap();
+    let lines: Vec<&str> = csv.lines().collect();
+    let row = |line: &str, first: &str| {
+        let rest = line.split_once(',').unwrap().1;
+        format!("{first},{rest}")
+    };
+    let text = |first: &str| {
+        let mut out = vec![lines[0].to_string(), lines[1].into(), lines[2].into()];
+        out.extend([String::new(), String::new(), row(lines[3], first)]);
+        out.extend(lines[4..].iter().map(|l| l.to_string()));
+        out.join("\n") + "\n"
+    };
+    let big = dir.join("big.csv");
+    std::fs::write(&big, text("1e40")).unwrap();
+    let run = plumb(&[
+        "grad",
+        "nets/small.toml",
+        "-d",
+        big.to_str().unwrap(),
+        "--precision",
+        "f32",
+    ]);
+    run.assert_code(2);
+    for part in [
+        "big.csv: line 6 (sample 3), column 1 `f1`",
+        "1e40",
+        "--precision f64",
+    ] {
+        assert!(run.stderr.contains(part), "{part}: {}", run.stderr);
+    }
+    let bad = dir.join("bad.csv");
+    std::fs::write(&bad, text("abc")).unwrap();
+    let run = plumb(&["grad", "nets/small.toml", "-d", bad.to_str().unwrap()]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("line 6, column `f1`"), "{}", run.stderr);
+
+    // The demo CNN reads [1 channel, 64 positions]; channels last the file is (m, 64, 1).
+    let mut x = vec![0.5; 3 * 64];
+    x[64 + 5] = 1e39;
+    let y: Vec<f64> = (0..9).map(|k| f64::from(k % 4 == 0)).collect();
+    let tensors = [
+        Tensor {
+            name: "x".into(),
+            shape: vec![3, 64, 1],
+            dtype: DType::F64,
+            data: x,
+        },
+        Tensor {
+            name: "y".into(),
+            shape: vec![3, 3],
+            dtype: DType::F64,
+            data: y,
+        },
+    ];
+    let npz = dir.join("d.npz");
+    write_tensor_file(&npz, FileFormat::Npz, &tensors, DType::F64, Existing::Keep).unwrap();
+    let root = fixture("../examples/pump-cnn.toml");
+    let run = plumb(&[
+        "grad",
+        root.to_str().unwrap(),
+        "-d",
+        npz.to_str().unwrap(),
+        "--channels-last",
+        "--precision",
+        "f32",
+    ]);
+    run.assert_code(2);
+    assert!(
+        run.stderr
+            .contains("d.npz: x[1, 5, 0] (sample 2) holds 1e39"),
+        "{}",
+        run.stderr
+    );
 }

@@ -151,6 +151,14 @@ pub enum CheckError {
         index: usize,
         value: f64,
     },
+    /// A token id an f32 pass cannot hold exactly (f32 holds every integer up to 2²⁴ and not
+    /// all above): sample and step from 0.
+    #[error(
+        "sample {} holds the token id {id} at step {}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)",
+        .sample + 1,
+        .step + 1
+    )]
+    TokenBeyondF32 { sample: usize, step: usize, id: f64 },
     /// A batch value past f32's range in an f32 pass: sample and column from 0, of x or y.
     #[error(
         "sample {} holds {value:e} in {of} (column {}), past the largest f32 value (3.4e38): run in f64 (--precision f64), or scale the data",

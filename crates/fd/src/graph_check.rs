@@ -140,6 +140,12 @@ pub(crate) fn beyond_f32(
             });
         }
     }
+    if let (Shape::Tokens { .. }, Some(x)) = (graph.input(), x) {
+        let exact = f64::from(1u32 << f32::MANTISSA_DIGITS);
+        if let Some(((sample, step), &id)) = x.indexed_iter().find(|(_, v)| v.abs() > exact) {
+            return Err(CheckError::TokenBeyondF32 { sample, step, id });
+        }
+    }
     for (what, a) in [("x", x), ("y", Some(y))] {
         let Some(a) = a else { continue };
         if let Some(((sample, column), &value)) = a.indexed_iter().find(|(_, v)| past(v)) {

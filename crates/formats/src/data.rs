@@ -324,20 +324,7 @@ enum Targets {
 pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Batch, DataError> {
     // Streamed, not read whole: memory is what the samples hold, and an error on line 2 is
     // found without reading the rest.
-    let file =
-        crate::input::open_input(path, crate::MAX_DATA_BYTES).map_err(|source| DataError::Io {
-            path: path.to_path_buf(),
-            source,
-        })?;
-    let mut reader = csv::ReaderBuilder::new()
-        .has_headers(true)
-        // Row lengths are checked here, to report them with the header's count.
-        .flexible(true)
-        .trim(csv::Trim::All)
-        .from_reader(Quotes {
-            inner: std::io::Read::take(file, crate::MAX_DATA_BYTES),
-            count: 0,
-        });
+    let mut reader = csv_reader(path)?;
     let csv_error = |line: u64, source: csv::Error| DataError::Csv {
         path: path.to_path_buf(),
         line,
@@ -394,10 +381,14 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
                 line,
             });
         }
+        // The reader's position is where it began looking for the record, before any empty
+        // lines it skipped; on an error the sample's own line is counted again (records are
+        // single lines once no field holds a line break).
+        let line_of = || sample_line(path, rows).unwrap_or(line);
         if record.len() != columns {
             return Err(DataError::Ragged {
                 path: path.to_path_buf(),
-                line,
+                line: line_of(),
                 expected: columns,
                 found: record.len(),
             });
@@ -409,7 +400,7 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
         if limit || x.try_reserve(inputs).is_err() || y.try_reserve(outputs).is_err() {
             return Err(DataError::TooManyValues {
                 path: path.to_path_buf(),
-                line,
+                line: line_of(),
                 samples: rows,
                 bytes: held,
                 refused: !limit,
@@ -417,7 +408,7 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
         }
         let bad = |column: usize, problem: String| DataError::BadValue {
             path: path.to_path_buf(),
-            line,
+            line: line_of(),
             column: header[column].to_string(),
             problem,
         };
@@ -457,6 +448,58 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
         x: Array2::from_shape_vec((rows, inputs), x).expect("one row of features per sample"),
         y: Array2::from_shape_vec((rows, outputs), y).expect("one row of targets per sample"),
     })
+}
+
+/// The CSV reader of a data file, as [`read_data`] reads it.
+fn csv_reader(path: &Path) -> Result<csv::Reader<Quotes<std::io::Take<std::fs::File>>>, DataError> {
+    let file =
+        crate::input::open_input(path, crate::MAX_DATA_BYTES).map_err(|source| DataError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+    Ok(csv::ReaderBuilder::new()
+        .has_headers(true)
+        // Row lengths are checked by the caller, to report them with the header's count.
+        .flexible(true)
+        .trim(csv::Trim::All)
+        .from_reader(Quotes {
+            inner: std::io::Read::take(file, crate::MAX_DATA_BYTES),
+            count: 0,
+        }))
+}
+
+/// Where sample `sample` (from 0) of a CSV data file [`read_data`] read is: its line (from 1)
+/// and the header's name of column `column` (from 0). `None` if the file no longer reads so far.
+pub fn csv_place(path: &Path, sample: usize, column: usize) -> Option<(u64, String)> {
+    let mut reader = csv_reader(path).ok()?;
+    let name = reader.headers().ok()?.get(column)?.to_string();
+    Some((sample_line(path, sample)?, name))
+}
+
+/// The line (from 1) of sample `sample` (from 0) of a CSV file whose records are single lines:
+/// the header is its first line that is not empty, and the reader skips empty lines (none or
+/// only a carriage return before the line feed). Only asked on the way to an error message.
+fn sample_line(path: &Path, sample: usize) -> Option<u64> {
+    use std::io::BufRead;
+    let file = crate::input::open_input(path, crate::MAX_DATA_BYTES).ok()?;
+    let mut reader = std::io::BufReader::new(std::io::Read::take(file, crate::MAX_DATA_BYTES));
+    let mut line = Vec::new();
+    let (mut number, mut seen) = (0u64, 0usize);
+    loop {
+        line.clear();
+        if reader.read_until(b'\n', &mut line).ok()? == 0 {
+            return None;
+        }
+        number += 1;
+        if matches!(line.as_slice(), b"\n" | b"\r\n" | b"\r") {
+            continue;
+        }
+        // The header is the first record the reader keeps.
+        if seen == sample + 1 {
+            return Some(number);
+        }
+        seen += 1;
+    }
 }
 
 /// A reader that counts the quote characters passing through it.

@@ -50,7 +50,7 @@ pub const MAX_REPORT_BYTES: u64 = 256 << 20;
 /// The most values a batch's pass may hold at once (outputs, saved tensors, scratch: 1 GiB in
 /// f64); a data file's one-hot targets alone are held to it before they are built.
 pub const MAX_BATCH_VALUES: usize = 1 << 27;
-pub use data::{DataError, read_data};
+pub use data::{DataError, csv_place, read_data};
 pub use description::{DescriptionError, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor, INPUT_GRADIENT, LayoutError};
 pub use graph_data::{AxisOrder, read_graph_data, read_graph_data_kept};

@@ -122,10 +122,11 @@ where
     let graph = &desc.graph;
     let b = &loaded.batch;
     let x: Inputs<'_, f64> = (&b.x).into();
-    let (loss, grads, input, l2_sum) = match precision {
+    let factor = graph.loss_config().l2_factor(x.nrows());
+    let (loss, grads, input, l2_term) = match precision {
         Precision::F64 => {
             let (loss, grads, input) = pass(graph, &loaded.params, x, b.y.view(), input_gradient);
-            (loss, grads, input, squares(graph, &loaded.params))
+            (loss, grads, input, factor * squares(graph, &loaded.params))
         }
         Precision::F32 => {
             let held = match x {
@@ -146,12 +147,16 @@ where
             let ys = b.y.mapv(|v| v as f32);
             let (loss, grads, input) = pass(graph, &p, xs.into(), ys.view(), input_gradient);
             let wide: Vec<ArrayD<f64>> = grads.iter().map(|g| g.mapv(f64::from)).collect();
-            let widened = |t: &ArrayD<f32>| t.mapv(f64::from);
-            let l2 = squares(graph, &p.iter().map(widened).collect::<Vec<_>>());
-            (f64::from(loss), wide, input.map(|i| i.mapv(f64::from)), l2)
+            // The L2 term as the f32 pass added it to the loss.
+            let l2 = if factor != 0.0 {
+                factor as f32 * graph.l2_sum(&p)
+            } else {
+                0.0
+            };
+            let input = input.map(|i| i.mapv(f64::from));
+            (f64::from(loss), wide, input, f64::from(l2))
         }
     };
-    let l2_term = graph.loss_config().l2_factor(x.nrows()) * l2_sum;
     let mut tensors = desc.to_file(&grads)?;
     let mut layers: Vec<usize> = desc.files.iter().map(|f| f.layer + 1).collect();
     if let Some(input) = input {
@@ -239,12 +244,18 @@ fn summarised(
         .collect();
     let mut findings = Vec::new();
     if !loss.is_finite() {
+        let overflow = match run.precision {
+            Precision::F64 => "the network overflows",
+            Precision::F32 => {
+                "the network overflows f32 (largest value 3.4e38; leave out --precision f32 to compute in f64)"
+            }
+        };
         findings.push(
             Finding::new(
                 "non-finite-loss",
                 Severity::Error,
                 format!(
-                    "the loss is {loss}: the weights or data hold non-finite or huge values, or the network overflows; run `plumb shapes` and inspect the weight file"
+                    "the loss is {loss}: the weights or data hold non-finite or huge values, or {overflow}; run `plumb shapes` and inspect the weight file"
                 ),
             )
             .figure("loss", loss.to_string()),

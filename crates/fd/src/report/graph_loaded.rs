@@ -7,10 +7,10 @@
 use std::path::{Path, PathBuf};
 
 use ndarray::{Array2, ArrayD};
-use plumb_engine::graph::{Graph, GraphError};
+use plumb_engine::graph::{Graph, GraphError, Shape};
 use plumb_engine::{Batch, Features, Init, Inputs, Loss, Rng};
 use plumb_formats::{
-    AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
+    AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError, csv_place,
     read_graph_data, read_graph_data_kept,
 };
 use plumb_report::{DataSource, WeightsSource};
@@ -282,18 +282,80 @@ fn check_probabilities(y: &Array2<f64>, source: &DataSource) -> Result<(), Graph
 pub fn sample_place(source: &DataSource, i: usize) -> String {
     match source {
         DataSource::File { path, .. } => {
-            let csv = path
-                .extension()
-                .is_some_and(|e| e.eq_ignore_ascii_case("csv"));
-            let line = if csv {
-                format!(" (line {})", i + 2)
-            } else {
-                String::new()
+            let line = match is_csv(path).then(|| csv_place(path, i, 0)).flatten() {
+                Some((line, _)) => format!(" (line {line})"),
+                None => String::new(),
             };
             format!("{}: sample {}{line}", path.display(), i + 1)
         }
         DataSource::Synthetic { .. } => format!("synthetic sample {}", i + 1),
     }
+}
+
+/// Where value `column` (from 0, in the engine's order of one sample's x or y) of sample `i`
+/// (from 0) is in the data: a CSV file's line and column, with the header's name; an npz
+/// array's index in the file's own axes (channels last where the file was read so).
+pub fn value_place<X>(loaded: &GraphLoaded<X>, of: &str, i: usize, column: usize) -> String {
+    let graph = &loaded.desc.graph;
+    match &loaded.data_source {
+        DataSource::File { path, .. } if is_csv(path) => {
+            // A row holds x's columns, then y's.
+            let at = if of == "y" {
+                graph.input().size() + column
+            } else {
+                column
+            };
+            match csv_place(path, i, at) {
+                Some((line, name)) => format!(
+                    "{}: line {line} (sample {}), column {} `{name}`",
+                    path.display(),
+                    i + 1,
+                    at + 1
+                ),
+                None => format!(
+                    "{}, column {}",
+                    sample_place(&loaded.data_source, i),
+                    at + 1
+                ),
+            }
+        }
+        DataSource::File { path, .. } => {
+            let shape = if of == "y" {
+                graph.output()
+            } else {
+                graph.input()
+            };
+            let dims = shape.dims();
+            let mut index = vec![0; dims.len()];
+            let mut rest = column;
+            for (k, &d) in dims.iter().enumerate().rev() {
+                index[k] = rest % d.max(1);
+                rest /= d.max(1);
+            }
+            let spatial = matches!(shape, Shape::Signal { .. } | Shape::Image { .. });
+            if of == "x" && spatial && loaded.order == AxisOrder::ChannelsLast {
+                index.rotate_left(1);
+            }
+            let index: Vec<String> = std::iter::once(i)
+                .chain(index)
+                .map(|k| k.to_string())
+                .collect();
+            format!(
+                "{}: {of}[{}] (sample {})",
+                path.display(),
+                index.join(", "),
+                i + 1
+            )
+        }
+        DataSource::Synthetic { .. } => {
+            format!("synthetic sample {}, {of} value {}", i + 1, column + 1)
+        }
+    }
+}
+
+fn is_csv(path: &Path) -> bool {
+    path.extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
 }
 
 /// Non-finite weights make every figure meaningless: the first one is named by tensor and index

@@ -109,7 +109,8 @@ pub fn sweep_report(loaded: &GraphLoaded, ask: &SweepAsk) -> Result<SweepReport,
         b.y.view(),
         &config,
         &|_, _| {},
-    )?;
+    )
+    .map_err(|e| super::graph_check::said_where(loaded, e))?;
     let chosen: Vec<((usize, usize), &str)> = match &ask.coords {
         Some(c) => c.iter().map(|&c| (c, "asked")).collect(),
         None => {
