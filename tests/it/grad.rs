@@ -26,22 +26,24 @@ fn assert_close(got: &[f64], want: &[f64], what: &str) {
     }
 }
 
-#[test]
-fn loss_and_gradient_match_numpy_and_the_file_keeps_the_layout() {
-    let dir = scratch("grad");
-    let out = dir.join("g.npz");
-    let run = plumb(&[
+/// `plumb grad` of the small network at its fixture weights and data, with `more` arguments.
+fn grad_small(more: &[&str]) -> util::Run {
+    let args = [
         "grad",
         "nets/small.toml",
         "-w",
         "weights/small-augmented.npz",
         "-d",
         "data/small.csv",
-        "-o",
-        out.to_str().unwrap(),
-        "--format",
-        "json",
-    ]);
+    ];
+    plumb(&[&args[..], more].concat())
+}
+
+#[test]
+fn loss_and_gradient_match_numpy_and_the_file_keeps_the_layout() {
+    let dir = scratch("grad");
+    let out = dir.join("g.npz");
+    let run = grad_small(&["-o", out.to_str().unwrap(), "--format", "json"]);
     run.assert_code(0);
     let json = run.json();
     let loss = json["loss"].as_f64().unwrap();
@@ -207,13 +209,7 @@ fn seeded_runs_without_files_are_reproducible() {
 fn f32_arithmetic_gives_the_gradient_to_f32_accuracy() {
     let dir = scratch("grad-f32-arith");
     let out = dir.join("g.npz");
-    let run = plumb(&[
-        "grad",
-        "nets/small.toml",
-        "-w",
-        "weights/small-augmented.npz",
-        "-d",
-        "data/small.csv",
+    let run = grad_small(&[
         "-o",
         out.to_str().unwrap(),
         "--precision",
@@ -234,17 +230,7 @@ fn f32_arithmetic_gives_the_gradient_to_f32_accuracy() {
     assert_ne!(loss, expected_loss());
     // The L2 term as the f32 pass added it (an f32 value), the data term the rest; both within
     // f32's rounding of the f64 reference's.
-    let reference = plumb(&[
-        "grad",
-        "nets/small.toml",
-        "-w",
-        "weights/small-augmented.npz",
-        "-d",
-        "data/small.csv",
-        "--format",
-        "json",
-    ])
-    .json();
+    let reference = grad_small(&["--format", "json"]).json();
     let l2 = json["l2_term"].as_f64().unwrap();
     assert_eq!(f64::from(l2 as f32), l2);
     for term in ["l2_term", "data_loss"] {
