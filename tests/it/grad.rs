@@ -298,8 +298,8 @@ fn f32_arithmetic_refuses_a_weight_past_f32s_range() {
 /// A data value past f32's range is named where it is in the file, in `--precision f32`: a CSV
 /// file's line and column with its header (the reader skips empty lines, so lines are counted
 /// again, here by hand: header on line 1, samples on lines 2, 3, then two empty lines, the value
-/// on line 6), an npz array's index in the file's own axes (channels last as the flag read it).
-/// The CSV reader's own errors count lines the same way.
+/// on line 6), an npz array's element as the reader names one, in the file's own axes (channels
+/// last as the flag read it). The CSV reader's own errors count lines the same way.
 #[test]
 fn f32_arithmetic_names_a_data_value_past_f32s_range_where_it_is() {
     use plumb_formats::{Existing, Tensor, write_tensor_file};
@@ -339,6 +339,19 @@ fn f32_arithmetic_names_a_data_value_past_f32s_range_where_it_is() {
     let run = plumb(&["grad", "nets/small.toml", "-d", bad.to_str().unwrap()]);
     run.assert_code(2);
     assert!(run.stderr.contains("line 6, column `f1`"), "{}", run.stderr);
+    // A line of carriage returns alone is an empty line to the reader: the value after it is on
+    // line 4.
+    let crs = dir.join("crs.csv");
+    let rows = format!(
+        "{}\n\r\r\n{}\n{}\n",
+        lines[0],
+        lines[1],
+        row(lines[2], "abc")
+    );
+    std::fs::write(&crs, rows).unwrap();
+    let run = plumb(&["grad", "nets/small.toml", "-d", crs.to_str().unwrap()]);
+    run.assert_code(2);
+    assert!(run.stderr.contains("line 4, column `f1`"), "{}", run.stderr);
 
     // The demo CNN reads [1 channel, 64 positions]; channels last the file is (m, 64, 1).
     let mut x = vec![0.5; 3 * 64];
@@ -371,10 +384,6 @@ fn f32_arithmetic_names_a_data_value_past_f32s_range_where_it_is() {
         "f32",
     ]);
     run.assert_code(2);
-    assert!(
-        run.stderr
-            .contains("d.npz: x[1, 5, 0] (sample 2) holds 1e39"),
-        "{}",
-        run.stderr
-    );
+    let said = "d.npz: array `x`, element [1, 5, 0] (sample 1, position 5, channel 0) holds 1e39";
+    assert!(run.stderr.contains(said), "{}", run.stderr);
 }

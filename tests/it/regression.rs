@@ -75,7 +75,8 @@ fn cross_entropy_targets_outside_zero_to_one_are_refused() {
     let run = plumb(&["grad", "nets/small.toml", "-d", d.to_str().unwrap()]);
     run.assert_code(2);
     assert!(
-        run.stderr.contains("sample 2 (line 3), target 2") && run.stderr.contains("outside [0, 1]"),
+        run.stderr.contains("line 3 (sample 2), column 6 `t2`")
+            && run.stderr.contains("outside [0, 1]"),
         "{}",
         run.stderr
     );

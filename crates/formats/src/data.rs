@@ -366,11 +366,12 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
             Ok(true) => {}
             Ok(false) => break,
             Err(e) => {
-                let line = e.position().map_or(line, |p| p.line());
+                let line = e.position().map_or(line, |p| started(path, p));
                 return Err(csv_error(line, e));
             }
         }
-        let line = record.position().map_or(line, |p| p.line());
+        // Counted only on the way to an error: it reads the file again.
+        let line_of = || record.position().map_or(line, |p| started(path, p));
         // An empty line yields no record at all; any other row of the wrong number of fields is
         // an error, a row holding only `""` included (it is not a sample, and dropping it would
         // change the batch silently).
@@ -378,13 +379,9 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
         if record.iter().any(|f| f.contains(['\n', '\r'])) {
             return Err(DataError::OpenQuote {
                 path: path.to_path_buf(),
-                line,
+                line: line_of(),
             });
         }
-        // The reader's position is where it began looking for the record, before any empty
-        // lines it skipped; on an error the sample's own line is counted again (records are
-        // single lines once no field holds a line break).
-        let line_of = || sample_line(path, rows).unwrap_or(line);
         if record.len() != columns {
             return Err(DataError::Ragged {
                 path: path.to_path_buf(),
@@ -468,38 +465,47 @@ fn csv_reader(path: &Path) -> Result<csv::Reader<Quotes<std::io::Take<std::fs::F
         }))
 }
 
-/// Where sample `sample` (from 0) of a CSV data file [`read_data`] read is: its line (from 1)
-/// and the header's name of column `column` (from 0). `None` if the file no longer reads so far.
+/// Where sample `sample` (from 0) of a CSV data file [`read_data`] read is: the line (from 1)
+/// its record starts on and the header's name of column `column` (from 0). `None` if the file
+/// no longer reads so far.
 pub fn csv_place(path: &Path, sample: usize, column: usize) -> Option<(u64, String)> {
     let mut reader = csv_reader(path).ok()?;
     let name = reader.headers().ok()?.get(column)?.to_string();
-    Some((sample_line(path, sample)?, name))
-}
-
-/// The line (from 1) of sample `sample` (from 0) of a CSV file whose records are single lines:
-/// the header is its first line that is not empty, and the reader skips empty lines (none or
-/// only a carriage return before the line feed). Only asked on the way to an error message.
-fn sample_line(path: &Path, sample: usize) -> Option<u64> {
-    use std::io::BufRead;
-    let file = crate::input::open_input(path, crate::MAX_DATA_BYTES).ok()?;
-    let mut reader = std::io::BufReader::new(std::io::Read::take(file, crate::MAX_DATA_BYTES));
-    let mut line = Vec::new();
-    let (mut number, mut seen) = (0u64, 0usize);
-    loop {
-        line.clear();
-        if reader.read_until(b'\n', &mut line).ok()? == 0 {
+    let mut record = csv::StringRecord::new();
+    for _ in 0..=sample {
+        if !reader.read_record(&mut record).ok()? {
             return None;
         }
-        number += 1;
-        if matches!(line.as_slice(), b"\n" | b"\r\n" | b"\r") {
-            continue;
-        }
-        // The header is the first record the reader keeps.
-        if seen == sample + 1 {
-            return Some(number);
-        }
-        seen += 1;
     }
+    Some((started(path, record.position()?), name))
+}
+
+/// The line (from 1) a record begins on. The reader's position of a record is where it began
+/// looking for it, before the line ends of the empty lines it skips (a run of `\r` and `\n`):
+/// the line feeds of that run are counted here, reading the file from that byte in small
+/// pieces. Only asked on the way to a message; the reader's own line if the file does not read.
+fn started(path: &Path, at: &csv::Position) -> u64 {
+    use std::io::{Read, Seek, SeekFrom};
+    let count = || -> Option<u64> {
+        let mut file = crate::input::open_input(path, crate::MAX_DATA_BYTES).ok()?;
+        file.seek(SeekFrom::Start(at.byte())).ok()?;
+        let mut piece = [0u8; 4096];
+        let mut feeds = 0;
+        loop {
+            let n = file.read(&mut piece).ok()?;
+            if n == 0 {
+                return Some(feeds);
+            }
+            for &b in &piece[..n] {
+                match b {
+                    b'\n' => feeds += 1,
+                    b'\r' => {}
+                    _ => return Some(feeds),
+                }
+            }
+        }
+    };
+    at.line() + count().unwrap_or(0)
 }
 
 /// A reader that counts the quote characters passing through it.

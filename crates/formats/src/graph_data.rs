@@ -219,6 +219,51 @@ fn element_names(layout: &FileLayout) -> Vec<&'static str> {
         .collect()
 }
 
+/// Where value `flat` (in the engine's C order of one sample of `shape`) of sample `sample` of
+/// array `array` (`"x"` or `"y"`) of a data archive read under `order` lies in the file: the
+/// element's index as NumPy takes it and the same place in words, as the reader's own messages
+/// name an element (an array stored without a length-1 axis is indexed as stored). `None` if the
+/// archive no longer declares the array.
+pub fn archive_place(
+    path: &Path,
+    array: &str,
+    shape: &Shape,
+    order: AxisOrder,
+    sample: usize,
+    flat: usize,
+) -> Option<(Vec<usize>, String)> {
+    let shapes = crate::npz::declared_shapes(path)?;
+    let (_, stored) = shapes.into_iter().find(|(name, _)| name == array)?;
+    let last = if array == "y" {
+        ("outputs", "output")
+    } else {
+        ("features", "feature")
+    };
+    let layout = FileLayout::of(shape, order, last);
+    let dims = shape.dims();
+    let mut engine = vec![0; dims.len()];
+    let mut rest = flat;
+    for (slot, &n) in engine.iter_mut().zip(&dims).rev() {
+        *slot = rest % n.max(1);
+        rest /= n.max(1);
+    }
+    let mut in_file = vec![0; dims.len()];
+    for (k, &axis) in layout.to_shape.iter().enumerate() {
+        in_file[axis] = engine[k];
+    }
+    let within = layout
+        .dims()
+        .iter()
+        .zip(&in_file)
+        .fold(0, |acc, (&n, &i)| acc * n + i);
+    let per_sample: usize = layout.dims().iter().product();
+    Some(place(
+        &stored,
+        &element_names(&layout),
+        sample * per_sample + within,
+    ))
+}
+
 /// The arrays a data archive's reader uses; it lists any other member without reading it.
 const DATA: [&str; 2] = ["x", "y"];
 

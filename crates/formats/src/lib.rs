@@ -53,7 +53,7 @@ pub const MAX_BATCH_VALUES: usize = 1 << 27;
 pub use data::{DataError, csv_place, read_data};
 pub use description::{DescriptionError, Layout, MAX_PARAMETERS};
 pub use file_tensors::{FileStorage, FileTensor, INPUT_GRADIENT, LayoutError};
-pub use graph_data::{AxisOrder, read_graph_data, read_graph_data_kept};
+pub use graph_data::{AxisOrder, archive_place, read_graph_data, read_graph_data_kept};
 pub use graph_description::GraphDescription;
 pub use settings::{KINDS, KindSettings, LayerSettings};
 pub use tensor::{DType, FileFormat, Tensor, TensorFile, TensorFileError, Unread, shape_text};

@@ -7,11 +7,11 @@
 use std::path::{Path, PathBuf};
 
 use ndarray::{Array2, ArrayD};
-use plumb_engine::graph::{Graph, GraphError, Shape};
+use plumb_engine::graph::{Graph, GraphError};
 use plumb_engine::{Batch, Features, Init, Inputs, Loss, Rng};
 use plumb_formats::{
-    AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError, csv_place,
-    read_graph_data, read_graph_data_kept,
+    AxisOrder, DataError, GraphDescription, LayoutError, TensorFile, TensorFileError,
+    archive_place, csv_place, read_graph_data, read_graph_data_kept,
 };
 use plumb_report::{DataSource, WeightsSource};
 
@@ -250,7 +250,7 @@ impl<X: LoadedX> GraphLoaded<X> {
             });
         }
         if graph.loss_config().loss == Loss::CrossEntropy {
-            check_probabilities(&batch.y, &data_source)?;
+            check_probabilities(&batch.y, &data_source, graph, inputs.order)?;
         }
         Ok(GraphLoaded {
             description_hash: description_hash(&desc),
@@ -265,11 +265,16 @@ impl<X: LoadedX> GraphLoaded<X> {
 }
 
 /// Cross-entropy needs targets in [0, 1]: one-hot labels or probabilities. The first that is not
-/// is named by sample and target (and line, in a CSV file).
-fn check_probabilities(y: &Array2<f64>, source: &DataSource) -> Result<(), GraphLoadError> {
+/// is named where it is in the data file ([`value_place`]).
+fn check_probabilities(
+    y: &Array2<f64>,
+    source: &DataSource,
+    graph: &Graph,
+    order: AxisOrder,
+) -> Result<(), GraphLoadError> {
     let bad = y.indexed_iter().find(|(_, v)| !(0.0..=1.0).contains(*v));
     if let Some(((i, k), v)) = bad {
-        let place = format!("{}, target {}", sample_place(source, i), k + 1);
+        let place = value_place_in(source, graph, order, "y", i, k);
         return Err(GraphLoadError::Usage(format!(
             "{place}: {v} is outside [0, 1]; cross-entropy needs targets between 0 and 1 (one-hot labels or probabilities) — use squared-error for other targets"
         )));
@@ -294,10 +299,22 @@ pub fn sample_place(source: &DataSource, i: usize) -> String {
 
 /// Where value `column` (from 0, in the engine's order of one sample's x or y) of sample `i`
 /// (from 0) is in the data: a CSV file's line and column, with the header's name; an npz
-/// array's index in the file's own axes (channels last where the file was read so).
+/// array's element as the reader names one ([`archive_place`]).
 pub fn value_place<X>(loaded: &GraphLoaded<X>, of: &str, i: usize, column: usize) -> String {
-    let graph = &loaded.desc.graph;
-    match &loaded.data_source {
+    let source = &loaded.data_source;
+    value_place_in(source, &loaded.desc.graph, loaded.order, of, i, column)
+}
+
+/// [`value_place`] of a batch read from `source` for `graph` under `order`.
+fn value_place_in(
+    source: &DataSource,
+    graph: &Graph,
+    order: AxisOrder,
+    of: &str,
+    i: usize,
+    column: usize,
+) -> String {
+    match source {
         DataSource::File { path, .. } if is_csv(path) => {
             // A row holds x's columns, then y's.
             let at = if of == "y" {
@@ -312,11 +329,7 @@ pub fn value_place<X>(loaded: &GraphLoaded<X>, of: &str, i: usize, column: usize
                     i + 1,
                     at + 1
                 ),
-                None => format!(
-                    "{}, column {}",
-                    sample_place(&loaded.data_source, i),
-                    at + 1
-                ),
+                None => format!("{}, column {}", sample_place(source, i), at + 1),
             }
         }
         DataSource::File { path, .. } => {
@@ -325,27 +338,17 @@ pub fn value_place<X>(loaded: &GraphLoaded<X>, of: &str, i: usize, column: usize
             } else {
                 graph.input()
             };
-            let dims = shape.dims();
-            let mut index = vec![0; dims.len()];
-            let mut rest = column;
-            for (k, &d) in dims.iter().enumerate().rev() {
-                index[k] = rest % d.max(1);
-                rest /= d.max(1);
+            match archive_place(path, of, &shape, order, i, column) {
+                Some((index, words)) => {
+                    let index: Vec<String> = index.iter().map(usize::to_string).collect();
+                    format!(
+                        "{}: array `{of}`, element [{}] ({words})",
+                        path.display(),
+                        index.join(", ")
+                    )
+                }
+                None => format!("{}, {of} value {}", sample_place(source, i), column + 1),
             }
-            let spatial = matches!(shape, Shape::Signal { .. } | Shape::Image { .. });
-            if of == "x" && spatial && loaded.order == AxisOrder::ChannelsLast {
-                index.rotate_left(1);
-            }
-            let index: Vec<String> = std::iter::once(i)
-                .chain(index)
-                .map(|k| k.to_string())
-                .collect();
-            format!(
-                "{}: {of}[{}] (sample {})",
-                path.display(),
-                index.join(", "),
-                i + 1
-            )
         }
         DataSource::Synthetic { .. } => {
             format!("synthetic sample {}, {of} value {}", i + 1, column + 1)
