@@ -156,13 +156,14 @@ pub enum DataError {
     },
 
     #[error(
-        "{}: line {line}: {source}; save the data as UTF-8 comma-separated text",
-        .path.display()
+        "{}: line {line}: {}; save the data as UTF-8 comma-separated text",
+        .path.display(), csv_problem(.error)
     )]
     Csv {
         path: PathBuf,
         line: u64,
-        source: csv::Error,
+        /// Not a `source`: its own text counts lines otherwise (`csv_problem`).
+        error: csv::Error,
     },
 
     /// The NPZ could not be read as a tensor file (boxed: it is by far the largest variant).
@@ -274,6 +275,21 @@ fn bytes_text(bytes: u64) -> String {
 }
 
 /// An index as NumPy takes it: `[3]`, `[2, 1]`.
+/// What the CSV reader found wrong, without its own count of lines (the message's line is
+/// plumb's, which counts the empty lines the reader skips).
+fn csv_problem(e: &csv::Error) -> String {
+    match e.kind() {
+        csv::ErrorKind::Utf8 { err, .. } => {
+            format!(
+                "CSV parse error: invalid UTF-8 in field {}",
+                err.field() + 1
+            )
+        }
+        csv::ErrorKind::Io(io) => format!("CSV read error: {io}"),
+        _ => format!("CSV parse error: {e}"),
+    }
+}
+
 fn index_text(index: &[usize]) -> String {
     let parts: Vec<String> = index.iter().map(usize::to_string).collect();
     format!("[{}]", parts.join(", "))
@@ -325,10 +341,10 @@ pub(crate) fn read_csv(path: &Path, inputs: usize, outputs: usize) -> Result<Bat
     // Streamed, not read whole: memory is what the samples hold, and an error on line 2 is
     // found without reading the rest.
     let mut reader = csv_reader(path)?;
-    let csv_error = |line: u64, source: csv::Error| DataError::Csv {
+    let csv_error = |line: u64, error: csv::Error| DataError::Csv {
         path: path.to_path_buf(),
         line,
-        source,
+        error,
     };
     let header = reader.headers().map_err(|e| csv_error(1, e))?.clone();
     if header.is_empty() || (header.len() == 1 && header[0].is_empty()) {
@@ -480,32 +496,38 @@ pub fn csv_place(path: &Path, sample: usize, column: usize) -> Option<(u64, Stri
     Some((started(path, record.position()?), name))
 }
 
-/// The line (from 1) a record begins on. The reader's position of a record is where it began
-/// looking for it, before the line ends of the empty lines it skips (a run of `\r` and `\n`):
-/// the line feeds of that run are counted here, reading the file from that byte in small
-/// pieces. Only asked on the way to a message; the reader's own line if the file does not read.
+/// The line (from 1) a record begins on, counting every line end an editor counts (`\r\n`,
+/// `\n` or a lone `\r`): the line ends before the reader's position of the record, and those
+/// of the empty lines it skipped from there (that position is where it began looking for the
+/// record). The file is read from its start in small pieces, up to the record; only on the way
+/// to a message. The reader's own line (which counts line feeds only) if the file does not read.
 fn started(path: &Path, at: &csv::Position) -> u64 {
-    use std::io::{Read, Seek, SeekFrom};
+    use std::io::Read;
     let count = || -> Option<u64> {
-        let mut file = crate::input::open_input(path, crate::MAX_DATA_BYTES).ok()?;
-        file.seek(SeekFrom::Start(at.byte())).ok()?;
+        let file = crate::input::open_input(path, crate::MAX_DATA_BYTES).ok()?;
+        let mut file = file.take(crate::MAX_DATA_BYTES);
         let mut piece = [0u8; 4096];
-        let mut feeds = 0;
+        let (mut line, mut read, mut after_cr) = (1u64, 0u64, false);
         loop {
             let n = file.read(&mut piece).ok()?;
             if n == 0 {
-                return Some(feeds);
+                return Some(line);
             }
             for &b in &piece[..n] {
-                match b {
-                    b'\n' => feeds += 1,
-                    b'\r' => {}
-                    _ => return Some(feeds),
+                if read >= at.byte() && b != b'\r' && b != b'\n' {
+                    return Some(line);
                 }
+                match b {
+                    b'\n' if after_cr => {}
+                    b'\n' | b'\r' => line += 1,
+                    _ => {}
+                }
+                after_cr = b == b'\r';
+                read += 1;
             }
         }
     };
-    at.line() + count().unwrap_or(0)
+    count().unwrap_or(at.line())
 }
 
 /// A reader that counts the quote characters passing through it.

@@ -60,9 +60,8 @@ pub(crate) fn said_where<X>(loaded: &GraphLoaded<X>, e: CheckError) -> CheckErro
             super::graph_loaded::value_place(loaded, of, sample, column)
         )),
         CheckError::TokenBeyondF32 { sample, step, id } => CheckError::Unusable(format!(
-            "{} (step {}) holds the token id {id}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)",
+            "{} holds the token id {id}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)",
             super::graph_loaded::value_place(loaded, "x", sample, step),
-            step + 1
         )),
         e @ CheckError::LossNotFinite { .. } => CheckError::Unusable(format!(
             "weights {}, data {}: {e}",
