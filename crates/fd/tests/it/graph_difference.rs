@@ -123,10 +123,7 @@ fn dense_chains_in_f32_over_twenty_seeds() {
 
 /// The engine's gradient with entry `k` of tensor `t` times 1 + `factor`.
 fn planted(c: &Case, (t, k): (usize, usize), factor: f64) -> Vec<ndarray::ArrayD<f64>> {
-    let mut g = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
+    let mut g = c.gradient();
     g[t].as_slice_mut().unwrap()[k] *= 1.0 + factor;
     g
 }
@@ -139,10 +136,7 @@ fn a_mistake_of_ten_times_the_tolerance_is_caught_and_a_tenth_is_not() {
     let tol = Precision::F32.tolerance();
     for (name, graph) in chains() {
         let c = case(graph, 8, 7);
-        let right = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let right = c.gradient();
         for (t, rt) in right.iter().enumerate() {
             let k = rt
                 .iter()
@@ -190,10 +184,7 @@ fn directions_catch_a_tensor_ten_times_the_tolerance_off_and_pass_a_tenth() {
     let tol = Precision::F32.tolerance();
     for (name, graph) in chains() {
         let c = case(graph, 8, 11);
-        let right = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let right = c.gradient();
         for t in 0..right.len() {
             for (factor, caught) in [(10.0 * tol, true), (0.1 * tol, false)] {
                 let mut wrong = right.clone();
@@ -332,10 +323,7 @@ fn a_one_percent_mistake_in_every_entry_is_never_a_match() {
             LossConfig::cross_entropy(),
         );
         let c = case(g, 8, 7);
-        let mut wrong = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let mut wrong = c.gradient();
         for t in &mut wrong {
             t.mapv_inplace(|v| v * 1.01);
         }
@@ -390,10 +378,7 @@ fn the_analytic_allowance_covers_f32_gradients_of_saturated_units() {
                     c.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
                 let (x32, y32) = (c.x.mapv(|v| v as f32), c.y.mapv(|v| v as f32));
                 let g32 = c.graph.gradient(&p32, x32.view(), y32.view(), None).params;
-                let g64 = c
-                    .graph
-                    .gradient(&c.params, c.x.view(), c.y.view(), None)
-                    .params;
+                let g64 = c.gradient();
                 let gross =
                     plumb_fd::graph_gradient_magnitude(&c.graph, &c.params, c.x.view(), c.y.view())
                         .expect("a dense chain");
@@ -480,10 +465,7 @@ fn wide_losses_settle_a_large_batch_and_still_catch_a_mistake() {
         LossConfig::cross_entropy(),
     );
     let c = case(g, 256, 5);
-    let right = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
+    let right = c.gradient();
     let mut cfg = config(Method::Central, Precision::F32, 2);
     cfg.sample = Some(Sample::All);
     let r = run_given(&c, &right, &cfg);
@@ -581,10 +563,7 @@ fn directions_over_relu_layers_settle_on_wide_losses_and_catch_a_mistake() {
         LossConfig::cross_entropy(),
     );
     let c = case(g, 32, 9);
-    let right = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
+    let right = c.gradient();
     let mut cfg = config(Method::Central, Precision::F32, 4);
     cfg.sample = Some(Sample::PerLayer(1));
     let r = run_given(&c, &right, &cfg);
@@ -733,10 +712,7 @@ fn a_unit_on_the_other_side_of_zero_in_f64_raises_no_false_alarm() {
     };
     // f32's own gradient of that weight is 0 (its unit is off in f32); f64's is not.
     assert_eq!(at(0, 3).analytic, 0.0);
-    let wide = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
+    let wide = c.gradient();
     assert!(wide[0][[0, 3]].abs() > 1e-4, "{}", wide[0][[0, 3]]);
     eprintln!("(0, 3): {:?}", at(0, 3));
     // Judged on f32's own losses, not on the f64 pass.

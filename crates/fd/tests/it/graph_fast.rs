@@ -328,10 +328,7 @@ fn a_relu_dense_stack_gives_the_plain_paths_verdicts_on_any_thread_count() {
         c.params[1].as_slice_mut().unwrap()[0] += 1e-9 - z;
         both_ways(what, &c, &named(&c.graph, 1), "bias-rows-shifted");
         // The workspaces a thread reuses carry nothing from one loss to the next.
-        let right = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let right = c.gradient();
         let (one, three) = on_one_and_three_threads(what, &c, &right);
         assert_eq!(one.coords, three.coords, "{what}");
         let crossed = one.coords.iter().filter(|c| c.retried).count();
@@ -427,10 +424,7 @@ fn a_network_without_a_response_counts_no_loss_through_one() {
     // directions of the count).
     let tanh = Activation::Tanh;
     let responded = |c: &Case| {
-        let right = c
-            .graph
-            .gradient(&c.params, c.x.view(), c.y.view(), None)
-            .params;
+        let right = c.gradient();
         agree("count", c, &right).coverage.responded
     };
     let stack = |output: Activation, loss: Loss| {

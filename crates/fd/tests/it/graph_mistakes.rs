@@ -22,7 +22,7 @@ fn every_planted_mistake_that_changes_the_gradient_is_a_mismatch() {
     for (name, build) in every_kind() {
         let c = case(build(), 5, 7);
         let g = &c.graph;
-        let right = g.gradient(&c.params, c.x.view(), c.y.view(), None).params;
+        let right = c.gradient();
         let scale = right.iter().map(largest).fold(0.0, f64::max);
         for node in g.nodes() {
             for &code in node.layer.mistakes() {
@@ -101,7 +101,7 @@ fn one_entry_off_by_one_percent_is_a_mismatch_there() {
     for (name, build) in every_kind() {
         let c = case(build(), 5, 11);
         let g = &c.graph;
-        let right = g.gradient(&c.params, c.x.view(), c.y.view(), None).params;
+        let right = c.gradient();
         let scale = right.iter().map(largest).fold(0.0, f64::max);
         for t in 0..right.len() {
             if largest(&right[t]) <= 1e-9 * scale {
@@ -161,7 +161,7 @@ fn f32_resolves_twenty_percent_and_never_calls_half_the_tolerance_a_mismatch() {
     for (name, build) in every_kind() {
         let c = case(build(), 5, 13);
         let g = &c.graph;
-        let right = g.gradient(&c.params, c.x.view(), c.y.view(), None).params;
+        let right = c.gradient();
         let scale = right.iter().map(largest).fold(0.0, f64::max);
         // The largest entry of each tensor that is not zero by construction.
         let moved: Vec<(usize, usize)> = (0..right.len())

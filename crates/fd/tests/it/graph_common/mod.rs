@@ -27,6 +27,15 @@ pub struct Case {
     pub y: Array2<f64>,
 }
 
+impl Case {
+    /// The engine's own gradient at the case, in f64: the truth a check is held to (the engine
+    /// is checked against num-dual's exact derivatives in crates/engine/tests/it/graph_dual).
+    pub fn gradient(&self) -> Vec<ArrayD<f64>> {
+        let (x, y) = (self.x.view(), self.y.view());
+        self.graph.gradient(&self.params, x, y, None).params
+    }
+}
+
 /// A named network builder.
 pub type Build = (&'static str, fn() -> Graph);
 
@@ -397,10 +406,7 @@ pub fn scaled(graph: Graph, m: usize, scale: f64, seed: u64) -> (Case, Vec<Array
     }
     c.x.mapv_inplace(|v| v as f32 as f64);
     c.y.mapv_inplace(|v| v as f32 as f64);
-    let truth = c
-        .graph
-        .gradient(&c.params, c.x.view(), c.y.view(), None)
-        .params;
+    let truth = c.gradient();
     (c, truth)
 }
 
