@@ -3,7 +3,7 @@
 //! codes, same rules, same thresholds; the kinds add their own measures). Findings name the
 //! weight file's own tensors (an augmented dense matrix `W1`, not the graph's `layer1.weight`).
 
-use ndarray::{ArrayD, ArrayView2, CowArray, Ix2};
+use ndarray::{ArrayD, ArrayView2};
 use plumb_engine::graph::{Graph, GraphError, LayerScalar, Node, Role};
 use plumb_engine::{Activation, Batch, Init, Inputs, Rng};
 use std::path::Path;
@@ -248,22 +248,6 @@ impl Probe<'_> {
     fn len(&self) -> usize {
         self.x.nrows()
     }
-
-    /// x in f32: as stored, or each f64 value rounded.
-    fn x32(&self) -> CowArray<'_, f32, Ix2> {
-        match self.x {
-            Inputs::F32(x) => x.into(),
-            Inputs::Own(x) => x.mapv(|v| v as f32).into(),
-        }
-    }
-
-    /// x in f64: as given, or each f32 value widened (exactly).
-    fn x64(&self) -> CowArray<'_, f64, Ix2> {
-        match self.x {
-            Inputs::Own(x) => x.into(),
-            Inputs::F32(x) => x.mapv(f64::from).into(),
-        }
-    }
 }
 
 /// Everything after the values: duplicates, norm scales, and on a finite file the probe pass's
@@ -335,14 +319,14 @@ fn measure(
         let in_f32 = single
             .then(|| {
                 let p32: Vec<ArrayD<f32>> = params.iter().map(|p| p.mapv(|v| v as f32)).collect();
-                let (x, y) = (probe.x32(), probe.y.mapv(|v| v as f32));
+                let (x, y) = (probe.x.in_f32(), probe.y.mapv(|v| v as f32));
                 probe_pass(g, &p32, params, x.view(), y.view(), &named, t, seed)
             })
             .flatten();
         let (h, f, mut pass_findings, ins) = match in_f32 {
             Some(done) => done,
             None => {
-                let wide = probe.x64();
+                let wide = probe.x.in_f64();
                 let (x, y) = (wide.view(), probe.y);
                 let trace = g.forward(params, x);
                 let inside_of = |j: usize, node: &Node| {

@@ -1,6 +1,6 @@
 //! A batch of samples: features and targets, one sample per row.
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::{Array2, ArrayView2, CowArray, Ix2};
 
 use crate::graph::{Graph, Shape};
 use crate::{Activation, Rng, Scalar};
@@ -93,6 +93,24 @@ impl<S: Scalar> Inputs<'_, S> {
         match self {
             Inputs::Own(x) => x.nrows(),
             Inputs::F32(x) => x.nrows(),
+        }
+    }
+}
+
+impl Inputs<'_, f64> {
+    /// The batch in f32: as a file stored it (no copy), or each f64 value rounded.
+    pub fn in_f32(&self) -> CowArray<'_, f32, Ix2> {
+        match *self {
+            Inputs::F32(x) => x.into(),
+            Inputs::Own(x) => x.mapv(|v| v as f32).into(),
+        }
+    }
+
+    /// The batch in f64: as given (no copy), or each f32 value widened (exactly).
+    pub fn in_f64(&self) -> CowArray<'_, f64, Ix2> {
+        match *self {
+            Inputs::Own(x) => x.into(),
+            Inputs::F32(x) => x.mapv(f64::from).into(),
         }
     }
 }

@@ -142,9 +142,7 @@ pub enum CheckError {
     LossNotFinite { loss: f64, precision: &'static str },
     /// A parameter past f32's range in an f32 pass: graph tensor `tensor` (named `name`), flat
     /// index `index` in its canonical shape (reports say where it is in the file).
-    #[error(
-        "tensor `{name}` index {index} holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or look at its scale (plumb audit)"
-    )]
+    #[error("tensor `{name}` index {index} {}", past_f32(*.value, SCALE_HINT))]
     ParamBeyondF32 {
         tensor: usize,
         name: String,
@@ -153,17 +151,14 @@ pub enum CheckError {
     },
     /// A token id an f32 pass cannot hold exactly (f32 holds every integer up to 2²⁴ and not
     /// all above): sample and step from 0.
-    #[error(
-        "sample {} holds the token id {id} at step {}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)",
-        .sample + 1,
-        .step + 1
-    )]
+    #[error("sample {}, step {} {}", .sample + 1, .step + 1, token_past_f32(*.id))]
     TokenBeyondF32 { sample: usize, step: usize, id: f64 },
     /// A batch value past f32's range in an f32 pass: sample and column from 0, of x or y.
     #[error(
-        "sample {} holds {value:e} in {of} (column {}), past the largest f32 value (3.4e38): run in f64 (--precision f64), or scale the data",
+        "sample {}, {of} column {} {}",
         .sample + 1,
-        .column + 1
+        .column + 1,
+        past_f32(*.value, DATA_HINT)
     )]
     DataBeyondF32 {
         sample: usize,
@@ -171,6 +166,26 @@ pub enum CheckError {
         of: &'static str,
         value: f64,
     },
+}
+
+/// What to do besides computing in f64 about a parameter, and about a data value, past f32's
+/// range.
+pub(crate) const SCALE_HINT: &str = "look at its scale (plumb audit)";
+pub(crate) const DATA_HINT: &str = "scale the data";
+
+/// What a value past f32's range holds and what to do: the words after its place, which a
+/// [`CheckError`] gives in the engine's terms and a report in the user's files.
+pub(crate) fn past_f32(value: f64, hint: &str) -> String {
+    format!(
+        "holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or {hint}"
+    )
+}
+
+/// [`past_f32`] for a token id f32 cannot hold exactly.
+pub(crate) fn token_past_f32(id: f64) -> String {
+    format!(
+        "holds the token id {id}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)"
+    )
 }
 
 /// The verdict on one coordinate or direction.

@@ -234,35 +234,29 @@ pub fn archive_place(
 ) -> Option<(Vec<usize>, String)> {
     let shapes = crate::npz::declared_shapes(path)?;
     let (_, stored) = shapes.into_iter().find(|(name, _)| name == array)?;
-    let last = if array == "y" {
-        ("outputs", "output")
-    } else {
-        ("features", "feature")
-    };
+    let last = if array == "y" { Y_NAMES } else { X_NAMES };
     let layout = FileLayout::of(shape, order, last);
-    let dims = shape.dims();
-    let mut engine = vec![0; dims.len()];
-    let mut rest = flat;
-    for (slot, &n) in engine.iter_mut().zip(&dims).rev() {
-        *slot = rest % n.max(1);
-        rest /= n.max(1);
+    let (engine, _) = place(&shape.dims(), &[], flat);
+    let mut in_file = vec![0; engine.len()];
+    for (&k, &axis) in engine.iter().zip(&layout.to_shape) {
+        in_file[axis] = k;
     }
-    let mut in_file = vec![0; dims.len()];
-    for (k, &axis) in layout.to_shape.iter().enumerate() {
-        in_file[axis] = engine[k];
-    }
-    let within = layout
-        .dims()
+    let dims = layout.dims();
+    let within = dims
         .iter()
         .zip(&in_file)
         .fold(0, |acc, (&n, &i)| acc * n + i);
-    let per_sample: usize = layout.dims().iter().product();
+    let per_sample: usize = dims.iter().product();
     Some(place(
         &stored,
         &element_names(&layout),
         sample * per_sample + within,
     ))
 }
+
+/// The names of a flat or per-step vector's entries in x and in y ([`FileLayout::of`]).
+const X_NAMES: (&str, &str) = ("features", "feature");
+const Y_NAMES: (&str, &str) = ("outputs", "output");
 
 /// The arrays a data archive's reader uses; it lists any other member without reading it.
 const DATA: [&str; 2] = ["x", "y"];
@@ -307,7 +301,7 @@ fn read_npz(
             found: names.clone(),
         }),
     };
-    let x_layout = FileLayout::of(input, order, ("features", "feature"));
+    let x_layout = FileLayout::of(input, order, X_NAMES);
     let (x, m, y) = match kept {
         Some((_, (x, x_seen))) => {
             let y = take("y")?;
@@ -347,7 +341,7 @@ fn read_npz(
     } else {
         AxisOrder::ChannelsFirst
     };
-    let y_layout = FileLayout::of(output, y_order, ("outputs", "output"));
+    let y_layout = FileLayout::of(output, y_order, Y_NAMES);
     let y = match targets_of_y(path, output, order, &y_layout, &y, m)? {
         Targets::Values => {
             check_finite(path, "y", &y_layout, &y, y_seen)?;

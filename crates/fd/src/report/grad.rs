@@ -136,16 +136,8 @@ where
             beyond_f32(graph, &loaded.params, held, b.y.view())
                 .map_err(|e| super::graph_check::said_where(loaded, e))?;
             let p: Vec<ArrayD<f32>> = loaded.params.iter().map(|t| t.mapv(|v| v as f32)).collect();
-            let rounded;
-            let xs: ArrayView2<f32> = match x {
-                Inputs::F32(x) => x,
-                Inputs::Own(x) => {
-                    rounded = x.mapv(|v| v as f32);
-                    rounded.view()
-                }
-            };
-            let ys = b.y.mapv(|v| v as f32);
-            let (loss, grads, input) = pass(graph, &p, xs.into(), ys.view(), input_gradient);
+            let (xs, ys) = (x.in_f32(), b.y.mapv(|v| v as f32));
+            let (loss, grads, input) = pass(graph, &p, xs.view().into(), ys.view(), input_gradient);
             let wide: Vec<ArrayD<f64>> = grads.iter().map(|g| g.mapv(f64::from)).collect();
             // The L2 term as the f32 pass added it to the loss.
             let l2 = if factor != 0.0 {

@@ -4,7 +4,9 @@
 
 use super::GraphLoaded;
 use super::check::{CheckReport, Checked, CoordReport, DirectionReport, Location, build_report};
+use super::graph_loaded::value_place;
 use super::place::{GraphPlace, Places};
+use crate::check::{DATA_HINT, SCALE_HINT, past_f32, token_past_f32};
 use crate::{CheckConfig, CheckError, Entry, GraphCheck, OutsideCoord, Progress, check_graph};
 
 /// One coordinate of a graph check.
@@ -42,12 +44,13 @@ pub(crate) fn said_where<X>(loaded: &GraphLoaded<X>, e: CheckError) -> CheckErro
         } => {
             let at = Places::new(&loaded.desc).place(tensor, index);
             CheckError::Unusable(format!(
-                "{}: tensor `{}` index {} (layer {}, {}) holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or look at its scale (plumb audit)",
+                "{}: tensor `{}` index {} (layer {}, {}) {}",
                 loaded.weights_source.describe(),
                 at.tensor,
                 at.index,
                 at.layer,
-                at.location
+                at.location,
+                past_f32(value, SCALE_HINT)
             ))
         }
         CheckError::DataBeyondF32 {
@@ -56,12 +59,14 @@ pub(crate) fn said_where<X>(loaded: &GraphLoaded<X>, e: CheckError) -> CheckErro
             of,
             value,
         } => CheckError::Unusable(format!(
-            "{} holds {value:e}, past the largest f32 value (3.4e38): run in f64 (--precision f64), or scale the data",
-            super::graph_loaded::value_place(loaded, of, sample, column)
+            "{} {}",
+            value_place(loaded, of, sample, column),
+            past_f32(value, DATA_HINT)
         )),
         CheckError::TokenBeyondF32 { sample, step, id } => CheckError::Unusable(format!(
-            "{} holds the token id {id}, which f32 cannot hold exactly (it holds every integer only up to 2^24 = 16777216): run in f64 (--precision f64)",
-            super::graph_loaded::value_place(loaded, "x", sample, step),
+            "{} {}",
+            value_place(loaded, "x", sample, step),
+            token_past_f32(id)
         )),
         e @ CheckError::LossNotFinite { .. } => CheckError::Unusable(format!(
             "weights {}, data {}: {e}",
